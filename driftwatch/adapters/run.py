@@ -1,0 +1,242 @@
+"""Frames, runs and the read context shared by every adapter.
+
+A reader yields :class:`Frame` objects, one per *completed* ionic step. It may
+also take a :class:`ReadContext` to report warnings (a truncated file, a single
+structure where a trajectory was expected) and the DFT code's own settings
+(symmetry switches). :func:`collect` stacks frames into a frozen :class:`Run`.
+
+Units: lengths Å, energies eV, forces eV/Å, stress eV/Å³ (Voigt order
+xx yy zz yz xz xy, ASE's sign convention: positive = tensile).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Iterable, Iterator
+
+import numpy as np
+
+from ..errors import InputError
+
+__all__ = ["Frame", "Run", "ReadContext", "frame_from_atoms", "collect", "checked"]
+
+
+@dataclass(frozen=True, eq=False)
+class Frame:
+    """One completed ionic step."""
+
+    cell: np.ndarray
+    """(3, 3) float, rows are the cell vectors, Å."""
+    positions: np.ndarray
+    """(N, 3) float, cartesian, Å."""
+    numbers: np.ndarray
+    """(N,) int, atomic numbers."""
+    pbc: np.ndarray
+    """(3,) bool, periodic along each cell vector."""
+    step: int
+    """Ionic step index as the code counts it, 0-based."""
+    energy: float | None = None
+    """Total energy, eV (the code's force-consistent energy where it has one)."""
+    forces: np.ndarray | None = None
+    """(N, 3) eV/Å."""
+    stress: np.ndarray | None = None
+    """(6,) eV/Å³, Voigt (xx, yy, zz, yz, xz, xy), ASE sign convention."""
+
+
+@dataclass(frozen=True, eq=False)
+class Run:
+    """A whole relaxation, frames stacked along a leading axis of length n."""
+
+    source: str
+    """The file actually read."""
+    format: str
+    """Registry name of the adapter that read it."""
+    cells: np.ndarray
+    """(n, 3, 3) Å."""
+    positions: np.ndarray
+    """(n, N, 3) Å, cartesian."""
+    numbers: np.ndarray
+    """(N,) int."""
+    pbc: np.ndarray
+    """(3,) bool (of the first frame)."""
+    steps: np.ndarray
+    """(n,) int, ionic step index as the code counts it, 0-based."""
+    energies: np.ndarray | None = None
+    """(n,) eV, NaN where a frame has none; None when no frame has one."""
+    forces: np.ndarray | None = None
+    """(n, N, 3) eV/Å, NaN where missing; None when no frame has them."""
+    stress: np.ndarray | None = None
+    """(n, 6) eV/Å³ Voigt, NaN where missing; None when no frame has it."""
+    warnings: tuple = ()
+    """Human-readable warnings, each naming the file (truncation, single structure, ...)."""
+    code_settings: dict = field(default_factory=dict)
+    """The DFT code's own settings that bear on symmetry, e.g.
+    ``{"code": "vasp", "ISYM": 2, "SYMPREC": 1e-5, "ISIF": 3, "IBRION": 2}`` or
+    ``{"code": "espresso", "calculation": "vc-relax", "nosym": False, "noinv": False,
+    "cell_dofree": "2Dxy", "nsym": 8}``; ``{}`` when unknown."""
+    title: str | None = None
+    """A title found in the file (POSCAR comment, system name), else None."""
+    run_dir: str | None = None
+    """The folder, for folder runs; None when a single file was given."""
+
+    def __len__(self) -> int:
+        return len(self.cells)
+
+    @property
+    def natoms(self) -> int:
+        return len(self.numbers)
+
+
+class ReadContext:
+    """What a reader reports besides frames: warnings, code settings, a title."""
+
+    def __init__(self, path):
+        self.path = str(path)
+        self.warnings: list[str] = []
+        self.settings: dict = {}
+        self.title: str | None = None
+
+    def warn(self, message: str) -> None:
+        """Record a warning; it is prefixed with the file name unless it names it already."""
+        if self.path not in message:
+            message = f"{self.path}: {message}"
+        if message not in self.warnings:
+            self.warnings.append(message)
+
+
+def frame_from_atoms(atoms, step: int) -> Frame:
+    """Convert an ``ase.Atoms`` (with an optional single-point calculator) to a Frame."""
+    energy = forces = stress = None
+    calc = atoms.calc
+    if calc is not None:
+        res = getattr(calc, "results", {}) or {}
+        energy = res.get("free_energy", res.get("energy"))
+        energy = None if energy is None else float(energy)
+        forces = res.get("forces")
+        stress = res.get("stress")
+        if stress is not None:
+            stress = np.asarray(stress, float)
+            if stress.shape == (3, 3):
+                stress = stress.reshape(9)[[0, 4, 8, 5, 2, 1]]
+    return Frame(
+        cell=np.array(atoms.cell.array, float),
+        positions=np.array(atoms.positions, float),
+        numbers=np.array(atoms.numbers, int),
+        pbc=np.array(atoms.pbc, bool),
+        step=int(step),
+        energy=energy,
+        forces=None if forces is None else np.array(forces, float),
+        stress=stress,
+    )
+
+
+def checked(frames: Iterable, path) -> Iterator[Frame]:
+    """Validate a stream of frames: same atoms throughout, finite numbers, sane shapes.
+
+    ``ase.Atoms`` items are converted (step = running index), so a third-party
+    reader may simply yield Atoms.
+    """
+    first = None
+    for i, fr in enumerate(frames):
+        if not isinstance(fr, Frame):
+            fr = frame_from_atoms(fr, i)
+        step = fr.step
+        cell = np.asarray(fr.cell, float)
+        pos = np.asarray(fr.positions, float)
+        if cell.shape != (3, 3):
+            raise InputError(path, f"cell of shape {cell.shape} at step {step}")
+        if pos.ndim != 2 or pos.shape[1] != 3:
+            raise InputError(path, f"positions of shape {pos.shape} at step {step}")
+        if first is None:
+            first = fr
+            if len(pos) == 0:
+                raise InputError(path, f"no atoms at step {step}")
+        else:
+            if len(pos) != len(first.positions):
+                raise InputError(path, f"atoms count changes at step {step} "
+                                       f"({len(first.positions)} -> {len(pos)})")
+            if not np.array_equal(fr.numbers, first.numbers):
+                raise InputError(path, f"atomic numbers change at step {step}")
+        if not np.isfinite(cell).all():
+            raise InputError(path, f"non-finite cell at step {step}")
+        if not np.isfinite(pos).all():
+            raise InputError(path, f"non-finite positions at step {step}")
+        if fr.forces is not None and np.shape(fr.forces) != pos.shape:
+            raise InputError(path, f"forces of shape {np.shape(fr.forces)} at step {step}")
+        if fr.stress is not None and np.shape(fr.stress) != (6,):
+            raise InputError(path, f"stress of shape {np.shape(fr.stress)} at step {step}")
+        yield fr
+
+
+def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
+            run_dir=None) -> Run:
+    """Stack validated frames into a Run. Zero frames is an InputError.
+
+    Frames are copied into fixed-size numpy blocks as they arrive (no per-frame Python
+    objects are kept), so peak memory is about twice the arrays of the finished Run
+    (the blocks plus the final concatenation), whatever the size of the file.
+    """
+    blocks, cur, first, n = [], None, None, 0
+    have = {"energy": False, "forces": False, "stress": False}
+    for fr in frames:
+        if first is None:
+            first = fr
+        if cur is None or cur.full:
+            cur = _Block(len(first.positions))
+            blocks.append(cur)
+        cur.add(fr, have)
+        n += 1
+    if first is None:
+        detail = f" ({ctx.warnings[-1].split(': ', 1)[-1]})" if ctx.warnings else ""
+        raise InputError(path, "no completed ionic step" + detail)
+
+    def cat(name, wanted=True):
+        return np.concatenate([getattr(b, name)[: b.n] for b in blocks]) if wanted else None
+
+    return Run(
+        source=str(path), format=fmt,
+        cells=cat("cells"), positions=cat("positions"),
+        numbers=np.array(first.numbers, int), pbc=np.array(first.pbc, bool),
+        steps=cat("steps"),
+        energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
+        stress=cat("stress", have["stress"]),
+        warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings), title=ctx.title,
+        run_dir=None if run_dir is None else str(run_dir),
+    )
+
+
+class _Block:
+    """Up to SIZE frames in preallocated arrays (NaN where a frame lacks a result)."""
+
+    SIZE = 64
+
+    def __init__(self, natoms):
+        m = self.SIZE
+        self.n = 0
+        self.cells = np.empty((m, 3, 3))
+        self.positions = np.empty((m, natoms, 3))
+        self.steps = np.empty(m, int)
+        self.energies = np.full(m, np.nan)
+        self.forces = np.full((m, natoms, 3), np.nan)
+        self.stress = np.full((m, 6), np.nan)
+
+    @property
+    def full(self):
+        return self.n == self.SIZE
+
+    def add(self, fr: Frame, have: dict):
+        i = self.n
+        self.cells[i] = fr.cell
+        self.positions[i] = fr.positions
+        self.steps[i] = fr.step
+        if fr.energy is not None:
+            self.energies[i] = fr.energy
+            have["energy"] = True
+        if fr.forces is not None:
+            self.forces[i] = fr.forces
+            have["forces"] = True
+        if fr.stress is not None:
+            self.stress[i] = fr.stress
+            have["stress"] = True
+        self.n += 1
+
+

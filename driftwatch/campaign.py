@@ -1,0 +1,794 @@
+"""Campaign audit: discover runs, analyse them on local cores or a Dask cluster, cache, write outputs.
+
+``audit(roots, output)`` is what ``driftwatch audit`` runs. In order:
+
+1. **Output folder** (default ``./driftwatch-audit``): a marker ``.driftwatch-audit.json`` names the
+   roots it belongs to. An existing non-empty folder without a marker, or with a marker for other
+   roots, is refused unless ``overwrite=True``. Nothing driftwatch did not write is ever deleted.
+2. **Discovery** (:func:`discover`): run folders (a VASP set, or one pw.x output) count once, their
+   files are not counted again; other files count when an adapter recognises them. Hidden entries,
+   the output folder and the database file are skipped; symlinked folders are followed once (real
+   paths are tracked, so loops end); an unreadable folder becomes a failed entry.
+3. **Cache** (:mod:`driftwatch.cache`): a run whose inputs, config and versions are unchanged is
+   not analysed again. Failed runs are cached too (deterministic failures only: a file driftwatch
+   cannot read today is retried tomorrow).
+4. **Execution**: ``workers=1`` in this process; more: a ``ProcessPoolExecutor`` of long-lived
+   workers fed chunks of runs; ``scheduler=ADDRESS``: a ``distributed.Client`` and its executor; or
+   any ``concurrent.futures.Executor`` passed as ``executor=``. A worker never raises: it returns
+   the record or a one-line error, so one bad run never stops the audit. A worker process that dies
+   (a crash in a native library, out of memory) breaks the pool: the runs not finished are re-run
+   one at a time so that only the culprit is reported failed.
+5. **Outputs**, each written atomically: ``records/<run>.json`` as results arrive (without the
+   ``timing`` block, which differs between runs, so an interrupted and re-run audit leaves the same
+   bytes as an uninterrupted one; per-run timing stays in the cache entry and the campaign total
+   in ``campaign.json``), ``campaign.csv``, ``runs.db`` (ase.db, one row per run), ``campaign.json``
+   (the summary returned) and the HTML report. Records of runs no longer in the campaign (or now
+   failing) are moved to ``records/stale/``, so ``records/`` holds exactly the current campaign.
+"""
+
+from __future__ import annotations
+
+import csv
+import fnmatch
+import io
+import json
+import math
+import os
+import sys
+import threading
+import time
+from collections import Counter
+from concurrent.futures import Executor, FIRST_COMPLETED, wait
+from dataclasses import dataclass
+from pathlib import Path
+
+from . import records
+from .cache import Cache, FileDigests, run_key, versions as _versions
+from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
+
+__all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "DEFAULT_OUTPUT", "tolerance_advice"]
+
+SCHEMA = "driftwatch/campaign-1"
+MARKER = ".driftwatch-audit.json"
+DEFAULT_OUTPUT = "driftwatch-audit"
+TABLE_LIMIT = 500          # the printed table lists every run up to this many, else only notable ones
+SAFE_MARGIN = 2.0          # campaign symprec advice: verdict constant within this factor either side
+
+
+# ----------------------------------------------------------------------------- discovery
+@dataclass(frozen=True)
+class RunSpec:
+    """One run of a campaign."""
+
+    id: str
+    """Unique run id: the root's name, then the path below the root (``/`` separated)."""
+    path: str
+    """Path the run is read from (the root as given joined with the relative path)."""
+    kind: str
+    """``"file"`` or ``"folder"``."""
+
+
+_VASP_PREFIXES = ("vasprun", "OUTCAR", "XDATCAR")
+_QE_SUFFIXES = (".out", ".pwo")
+
+
+def _strip(name: str) -> str:
+    from .adapters._io import strip_compression
+    return strip_compression(name)
+
+
+def _is_vasp(name: str) -> bool:
+    n = _strip(name)
+    return n.startswith(_VASP_PREFIXES) and (not n.startswith("vasprun") or n.endswith(".xml"))
+
+
+def _is_pwx(path: str, name: str) -> bool:
+    if not _strip(name).endswith(_QE_SUFFIXES):
+        return False
+    from .adapters._io import peek
+    return b"Program PWSCF" in peek(path, 50_000)
+
+
+def _format_globs() -> list[str]:
+    from .adapters import registry
+    return [g.lower() for f in getattr(registry, "_formats", {}).values() for g in f.globs]
+
+
+def _is_candidate(path: str, name: str, globs: list[str]) -> bool:
+    """A file an adapter recognises; a broken file counts when its name says what it should be."""
+    from .adapters import detect
+    try:
+        detect(path)
+        return True
+    except UnknownFormatError:
+        return False
+    except (InputError, OSError):
+        low = _strip(name).lower()
+        return any(fnmatch.fnmatchcase(low, g) for g in globs)
+
+
+def _root_name(root: Path) -> str:
+    return root.name if root.name not in ("", ".", "..") else (root.resolve().name or "root")
+
+
+def _matches(spec: RunSpec, patterns) -> bool:
+    return any(fnmatch.fnmatchcase(spec.id, p) or fnmatch.fnmatchcase(spec.path, p)
+               for p in patterns)
+
+
+def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, globs):
+    """Yield RunSpecs and failed entries (dicts) below ``root`` (depth first, sorted)."""
+    stack = [(root, prefix)]
+    while stack:
+        folder, rid = stack.pop()
+        real = os.path.realpath(folder)
+        if real in seen_dirs or real in skip:
+            continue
+        seen_dirs.add(real)
+        try:
+            with os.scandir(folder) as it:
+                entries = sorted((e for e in it if not e.name.startswith(".")), key=lambda e: e.name)
+            files = [e for e in entries if e.is_file()]
+            dirs = [e for e in entries if e.is_dir()]
+        except OSError as exc:
+            yield {"run": rid, "source": str(folder),
+                   "error": f"{folder}: cannot list folder ({exc.strerror or exc})"}
+            continue
+        pwx = [e for e in files if _is_pwx(e.path, e.name)]
+        if any(_is_vasp(e.name) for e in files) or len(pwx) == 1:
+            if real not in seen_runs:
+                seen_runs.add(real)
+                yield RunSpec(rid, str(folder), "folder")
+        else:
+            for e in files:
+                freal = os.path.realpath(e.path)
+                if freal in seen_runs or freal in skip:
+                    continue
+                if _is_candidate(e.path, e.name, globs):
+                    seen_runs.add(freal)
+                    yield RunSpec(f"{rid}/{e.name}", str(Path(folder) / e.name), "file")
+        for e in reversed(dirs):
+            stack.append((Path(folder) / e.name, f"{rid}/{e.name}"))
+
+
+def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], list[dict]]:
+    """Runs under ``roots`` (folders or files) and failed entries for what could not be searched.
+
+    Args:
+        roots: folders or files.
+        include: fnmatch globs; when given, a run is kept only if its id or path matches one.
+        exclude: fnmatch globs; a run whose id or path matches one is dropped.
+        skip: paths never entered or counted (the output folder, the database file).
+
+    Returns:
+        (runs sorted by id, failed entries ``{"run", "source", "error"}``). Ids are unique.
+    """
+    if isinstance(roots, (str, os.PathLike)):
+        roots = [roots]
+    skip_real = {os.path.realpath(p) for p in skip}
+    seen_dirs, seen_runs = set(), set()
+    globs = _format_globs()
+    runs, failed, ids = [], [], set()
+    for root in roots:
+        root = Path(root)
+        name = _root_name(root)
+        if not root.exists():
+            failed.append({"run": name, "source": str(root),
+                           "error": f"{root}: no such file or directory"})
+            continue
+        if root.is_file():
+            real = os.path.realpath(root)
+            found = [] if real in seen_runs else [RunSpec(name, str(root), "file")]
+            seen_runs.add(real)
+        else:
+            found = _walk(root, name, skip_real, seen_dirs, seen_runs, globs)
+        for item in found:
+            if isinstance(item, dict):
+                if not _matches(RunSpec(item["run"], item["source"], "folder"), exclude):
+                    failed.append(item)
+                continue
+            if include and not _matches(item, include):
+                continue
+            if exclude and _matches(item, exclude):
+                continue
+            rid, k = item.id, 1
+            while rid in ids:
+                k += 1
+                rid = f"{item.id}~{k}"
+            ids.add(rid)
+            runs.append(RunSpec(rid, item.path, item.kind))
+    return sorted(runs, key=lambda r: r.id), failed
+
+
+# ----------------------------------------------------------------------------- the worker
+_WORKER_CFG = None
+
+
+def _init_worker(cfg) -> None:
+    global _WORKER_CFG
+    _WORKER_CFG = cfg
+    import driftwatch.track  # noqa: F401  (import once per worker process, not per run)
+
+
+def _one_line(exc: BaseException, path: str) -> str:
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    if not isinstance(exc, DriftwatchError):
+        text = f"{type(exc).__name__}: {text}"
+    if path not in text:
+        text = f"{path}: {text}"
+    return text if len(text) <= 400 else text[:397] + "..."
+
+
+def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
+    """Analyse one run; never raises (except KeyboardInterrupt/SystemExit).
+
+    Returns ``{"run", "source", "ok": True, "record", "structure", "timing"}`` (record without its
+    ``timing`` block, as plain JSON types; structure = final frame's cell, positions, numbers, pbc)
+    or ``{"run", "source", "ok": False, "error": one line, "cacheable": bool}``.
+    """
+    try:
+        from .adapters import read_run
+        from .track import analyze
+        run = read_run(path)
+        rec = analyze(run, cfg)
+        timing = rec.pop("timing", None)
+        structure = {"cell": run.cells[-1].tolist(), "positions": run.positions[-1].tolist(),
+                     "numbers": [int(z) for z in run.numbers], "pbc": [bool(p) for p in run.pbc]}
+        return {"run": run_id, "source": path, "ok": True,
+                "record": json.loads(records.dumps(rec, indent=None)),
+                "structure": structure, "timing": json.loads(records.dumps(timing, indent=None))}
+    except Exception as exc:
+        # A file that could not be opened (permissions, I/O) or memory exhaustion may go away:
+        # do not cache those. Everything else is a property of the inputs and this version.
+        transient = isinstance(exc, (MemoryError, OSError)) and not isinstance(exc, DriftwatchError)
+        return {"run": run_id, "source": path, "ok": False, "error": _one_line(exc, path),
+                "cacheable": not transient}
+
+
+def _analyse_chunk(items, cfg=None) -> list[dict]:
+    cfg = _WORKER_CFG if cfg is None else cfg
+    return [analyse_run(rid, path, cfg) for rid, path in items]
+
+
+# ----------------------------------------------------------------------------- execution
+def _chunks(items, size):
+    return [items[i:i + size] for i in range(0, len(items), size)]
+
+
+def _chunk_size(n: int, workers: int) -> int:
+    """About four chunks per worker (load balance), at most 16 runs per chunk (fresh records)."""
+    return max(1, min(16, n // max(1, 4 * workers)))
+
+
+def _mp_context():
+    import multiprocessing as mp
+    # fork is fastest but unsafe once threads run (a Dask client, a progress monitor): then forkserver.
+    if "fork" in mp.get_all_start_methods() and threading.active_count() == 1:
+        return mp.get_context("fork")
+    if "forkserver" in mp.get_all_start_methods():
+        return mp.get_context("forkserver")
+    return mp.get_context("spawn")
+
+
+def _failed_chunk(chunk, why: str) -> list[dict]:
+    return [{"run": rid, "source": path, "ok": False, "cacheable": False,
+             "error": f"{path}: {why}"} for rid, path in chunk]
+
+
+def _drain(executor: Executor, chunks, cfg, *, pass_cfg: bool):
+    """Yield results of every chunk from an executor, as they complete."""
+    futs = {}
+    for chunk in chunks:
+        fut = executor.submit(_analyse_chunk, chunk, cfg) if pass_cfg else \
+            executor.submit(_analyse_chunk, chunk)
+        futs[fut] = chunk
+    pending = set(futs)
+    try:
+        while pending:
+            done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in done:
+                try:
+                    yield from fut.result()
+                except Exception as exc:
+                    yield from _failed_chunk(futs[fut], f"worker failed ({type(exc).__name__}: "
+                                                        f"{' '.join(str(exc).split())})")
+    finally:
+        for fut in pending:
+            fut.cancel()
+
+
+def _local_pool(todo, cfg, workers):
+    """Process pool; after a worker death, the unfinished runs go one at a time in a fresh pool."""
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
+    size = _chunk_size(len(todo), workers)
+    finished = set()
+    ex = ProcessPoolExecutor(max_workers=workers, mp_context=_mp_context(),
+                             initializer=_init_worker, initargs=(cfg,))
+    broken = False
+    try:
+        for res in _drain(ex, _chunks(todo, size), cfg, pass_cfg=False):
+            if "worker failed (BrokenProcessPool" in res.get("error", ""):
+                broken = True
+                continue
+            finished.add(res["run"])
+            yield res
+    finally:
+        ex.shutdown(wait=not broken, cancel_futures=True)
+    if not broken:
+        return
+    for rid, path in [t for t in todo if t[0] not in finished]:
+        ex = ProcessPoolExecutor(max_workers=1, mp_context=_mp_context(),
+                                 initializer=_init_worker, initargs=(cfg,))
+        try:
+            yield ex.submit(_analyse_chunk, [(rid, path)]).result()[0]
+        except BrokenProcessPool:
+            yield _failed_chunk([(rid, path)], "the worker process died while analysing this run "
+                                              "(crash in a native library or out of memory)")[0]
+        finally:
+            ex.shutdown(wait=False, cancel_futures=True)
+
+
+def _execute(todo, cfg, *, workers, scheduler, executor):
+    """Yield a result for every (run id, path) in ``todo``. Returns (generator, description)."""
+    if not todo:
+        return iter(()), "none"
+    if executor is not None:
+        n = getattr(executor, "_max_workers", None) or 2
+        return _drain(executor, _chunks(todo, _chunk_size(len(todo), n)), cfg, pass_cfg=True), \
+            type(executor).__name__
+    if scheduler:
+        return _dask(todo, cfg, scheduler), f"dask {scheduler}"
+    workers = max(1, min(workers, len(todo)))
+    if workers == 1:
+        return (analyse_run(rid, path, cfg) for rid, path in todo), "in process"
+    return _local_pool(todo, cfg, workers), f"{workers} local processes"
+
+
+def _dask(todo, cfg, scheduler):
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise ConfigError("--scheduler needs Dask: pip install 'driftwatch[dask]' "
+                          "(dask[distributed])") from exc
+    try:
+        client = Client(scheduler, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise ConfigError(f"--scheduler {scheduler}: cannot connect ({type(exc).__name__}: {exc})"
+                          ) from exc
+    try:
+        n = max(1, sum(client.nthreads().values()))
+        yield from _drain(client.get_executor(), _chunks(todo, _chunk_size(len(todo), n)), cfg,
+                          pass_cfg=True)
+    finally:
+        client.close()
+
+
+# ----------------------------------------------------------------------------- progress
+class _Progress:
+    """tqdm on stderr when available, else a plain line; nothing when disabled."""
+
+    def __init__(self, total: int, enabled: bool, initial: int = 0):
+        self.bar = None
+        self.enabled = enabled and total > 0
+        self.total, self.n, self.failed = total, initial, 0
+        self._last = 0.0
+        if not self.enabled:
+            return
+        try:
+            from tqdm import tqdm
+            self.bar = tqdm(total=total, initial=initial, unit="run", file=sys.stderr,
+                            desc="driftwatch audit", dynamic_ncols=True, leave=True)
+        except ImportError:
+            self.bar = None
+
+    def update(self, result: dict) -> None:
+        if not self.enabled:
+            return
+        self.n += 1
+        self.failed += not result["ok"]
+        if self.bar is not None:
+            self.bar.set_postfix_str(f"failed {self.failed}", refresh=False)
+            self.bar.update(1)
+        elif time.monotonic() - self._last > 1.0 or self.n == self.total:
+            self._last = time.monotonic()
+            end = "\n" if self.n == self.total or not sys.stderr.isatty() else ""
+            sys.stderr.write(f"\rdriftwatch audit: {self.n}/{self.total} runs, "
+                             f"{self.failed} failed{end}")
+            sys.stderr.flush()
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _progress_on(progress) -> bool:
+    if progress in (True, "on"):
+        return True
+    if progress in (False, "off"):
+        return False
+    env = os.environ.get("DRIFTWATCH_PROGRESS", "").strip().lower()
+    if env in ("0", "off", "false", "no"):
+        return False
+    if env in ("1", "on", "true", "yes"):
+        return True
+    return bool(getattr(sys.stderr, "isatty", lambda: False)())
+
+
+# ----------------------------------------------------------------------------- output folder
+def _read_marker(out: Path) -> dict | None:
+    try:
+        data = json.loads((out / MARKER).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return data if isinstance(data, dict) and data.get("tool") == "driftwatch" else None
+
+
+def _write_marker(out: Path, roots: list[str], record_files: list[str]) -> None:
+    from . import __version__
+    records.write_text_atomic(out / MARKER, json.dumps(
+        {"tool": "driftwatch", "kind": "campaign audit", "version": __version__, "roots": roots,
+         "records": sorted(record_files)}, indent=1) + "\n")
+
+
+def _prepare_output(out: Path, roots: list[str], overwrite: bool) -> dict:
+    """Check the output folder may be used; create it and its marker. Returns the old marker."""
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{out}: exists and is not a folder; choose another --output")
+    marker = _read_marker(out) if out.is_dir() else None
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        if marker is None:
+            raise OutputError(f"{out}: folder exists, is not empty and holds no driftwatch audit; "
+                              f"choose another --output, or pass --overwrite to write into it")
+        if sorted(marker.get("roots", [])) != roots:
+            raise OutputError(f"{out}: holds the audit of other roots "
+                              f"({', '.join(marker.get('roots', [])) or 'unknown'}); choose another "
+                              f"--output, or pass --overwrite to replace its audit files")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        _write_marker(out, roots, (marker or {}).get("records", []))
+    except OSError as exc:
+        raise OutputError(f"{out}: cannot write the output folder ({exc.strerror or exc})") from exc
+    return marker or {}
+
+
+def _record_names(runs: list[RunSpec]) -> dict[str, str]:
+    """Run id -> record file name (safe, unique; a colliding name gets a hash of the id)."""
+    import hashlib
+    base = {r.id: records.safe_name(r.id) for r in runs}
+    counts = Counter(n.lower() for n in base.values())
+    out = {}
+    for rid, name in base.items():
+        if counts[name.lower()] > 1:
+            name = f"{name[:100]}-{hashlib.sha256(rid.encode()).hexdigest()[:10]}"
+        out[rid] = f"{name}.json"
+    return out
+
+
+def _inside(folder: Path, file: Path) -> Path:
+    f = file.resolve()
+    if not f.is_relative_to(folder.resolve()):
+        raise OutputError(f"{file}: would be written outside the output folder {folder}")
+    return f
+
+
+def _write_if_changed(path: Path, text: str) -> None:
+    try:
+        if path.read_text(encoding="utf-8") == text:
+            return
+    except (OSError, UnicodeDecodeError):
+        pass
+    records.write_text_atomic(path, text)
+
+
+def _retire_stale(rec_dir: Path, previous: list[str], current: set[str]) -> list[str]:
+    """Move records driftwatch wrote earlier that are no longer current to records/stale/."""
+    moved = []
+    for name in previous:
+        src = rec_dir / name
+        if name in current or "/" in name or not src.is_file():
+            continue
+        dst = rec_dir / "stale" / name
+        dst.parent.mkdir(exist_ok=True)
+        os.replace(src, dst)
+        moved.append(name)
+    return moved
+
+
+# ----------------------------------------------------------------------------- summary
+def _near_key(at: dict, s: float):
+    if not at:
+        return None
+    keys = list(at)
+    return min(keys, key=lambda k: abs(math.log(float(k) / s)))
+
+
+def _safe_at(spec_ranges, s, lo_end, hi_end, margin=SAFE_MARGIN) -> float | None:
+    """Log margin (>= log margin) of ``s`` inside a one-verdict plateau, or None when not safe."""
+    for lo, hi, group, _ in spec_ranges:
+        if not group or not (lo <= s <= hi):
+            continue
+        a = math.inf if lo <= lo_end * (1 + 1e-9) else math.log(s / lo)
+        b = math.inf if hi >= hi_end * (1 - 1e-9) else math.log(hi / s)
+        m = min(a, b)
+        return m if m >= math.log(margin) else None
+    return None
+
+
+def tolerance_advice(results: list[dict], common: list[float], window=(1e-4, 0.2)) -> dict:
+    """Campaign tolerance advice from the final-frame spectra of the analysed runs.
+
+    ``changes`` counts the runs whose spglib verdict (group number) on the final structure differs
+    between consecutive ``common`` symprecs (Å). A run is *safe* at a symprec when that value sits
+    inside a plateau of one verdict with at least a factor ``SAFE_MARGIN`` to the next breakpoint on
+    both sides (a plateau reaching the end of the run's grid counts as open there). The recommended
+    symprec is the geometric centre of the widest range inside ``window`` (Å) where the most runs are
+    safe. It is a starting point for the user's own check, not a guarantee.
+    """
+    common = sorted(float(s) for s in common)
+    per_run = []
+    for r in results:
+        rec = r["record"]
+        tol = rec["summary"]["tolerance"]
+        spec = rec["frames"][-1].get("symmetry") or {}
+        grid = spec.get("symprec") or []
+        if not tol.get("at") or not grid:
+            continue
+        groups = [tol["at"][_near_key(tol["at"], s)][0] for s in common]
+        per_run.append((r["run"], groups, tol, min(grid), max(grid)))
+    changes = []
+    for i in range(len(common) - 1):
+        ids = [rid for rid, g, *_ in per_run if g[i] != g[i + 1]]
+        changes.append({"low": common[i], "high": common[i + 1], "runs": len(ids),
+                        "run_ids": ids[:50]})
+    varying = [rid for rid, g, *_ in per_run if len(set(g)) > 1]
+    out = {"symprecs": common, "unit": "Å", "runs_considered": len(per_run),
+           "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying[:50],
+           "recommended_symprec": None, "safe_runs": 0, "window": list(window),
+           "reason": "no run has a symmetry spectrum of its final frame"}
+    if not per_run:
+        return out
+
+    def safe(s):
+        return [rid for rid, _, t, lo, hi in per_run
+                if _safe_at(t.get("stable_ranges", []), s, lo, hi) is not None]
+
+    grid = [window[0] * (window[1] / window[0]) ** (i / 96) for i in range(97)]
+    counts = [len(safe(s)) for s in grid]
+    top = max(counts)
+    if top == 0:
+        out["reason"] = (f"no symprec in {window[0]:g}-{window[1]:g} Å keeps one verdict within a "
+                         f"factor {SAFE_MARGIN:g} for any run: check each run's spectrum")
+        return out
+    blocks, start = [], None                 # longest stretch of the top count, in log symprec
+    for i, c in enumerate(counts + [-1]):
+        if c == top and start is None:
+            start = i
+        elif c != top and start is not None:
+            blocks.append((i - start, start, i - 1))
+            start = None
+    _, a, b = max(blocks)
+    s = math.sqrt(grid[a] * grid[b])
+    ok = safe(s)
+    out.update(recommended_symprec=s, safe_runs=len(ok),
+               unsafe_run_ids=[rid for rid, *_ in per_run if rid not in ok][:50],
+               reason=f"{len(ok)} of {len(per_run)} runs keep one spglib verdict on the final "
+                      f"structure within a factor {SAFE_MARGIN:g} either side of {s:.2g} Å; this is "
+                      f"the centre of the widest symprec range ({grid[a]:.2g}-{grid[b]:.2g} Å) where "
+                      f"the most runs are safe. A starting point: check the other runs by hand")
+    return out
+
+
+def _summary_rows(ok: list[dict], failed: list[dict]) -> list[list[str]]:
+    rows = []
+    for r in ok:
+        s, rec = r["record"]["summary"], r["record"]
+        d = s.get("drift") or {}
+        drift = (f"{d['type']} {d['initial']:.3g}->{d['final']:.3g}"
+                 if d and d.get("initial") is not None and d.get("final") is not None else "-")
+        flags = ",".join(sorted({f["code"] for f in rec["flags"]})) or "-"
+        rows.append([r["run"], str(rec["geometry"]["dimension"]) + "D",
+                     f"{s['initial']['type']} -> {s['final']['type']}", drift, s["verdict"], flags])
+    for f in failed:
+        rows.append([f["run"], "-", "-", "-", "failed", f["error"]])
+    return sorted(rows, key=lambda x: x[0])
+
+
+def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
+    head = ["run", "dim", "initial -> final", "drift/Å (deformation)", "verdict", "flags"]
+    shown = rows
+    if len(rows) > TABLE_LIMIT:
+        shown = [r for r in rows if r[4] not in ("steady", "fixed-cell") or r[5] != "-"]
+    widths = [max(len(head[i]), *(len(r[i]) for r in shown)) if shown else len(head[i])
+              for i in range(5)]
+    line = lambda r: "  ".join(c.ljust(w) for c, w in zip(r, widths)) + "  " + r[5]  # noqa: E731
+    print(line(head), file=stream)
+    for r in shown:
+        print(line(r), file=stream)
+    if len(shown) < len(rows):
+        print(f"({len(rows) - len(shown)} steady runs without flags not shown: see campaign.csv)",
+              file=stream)
+    vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
+    fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
+    print(f"\n{summary['runs']} runs ({summary['analysed']} analysed, {summary['cached']} from "
+          f"cache, {len(summary['failed'])} failed) in {summary['elapsed_s']:.1f} s", file=stream)
+    print(f"verdicts: {vc}", file=stream)
+    print(f"flags (runs): {fc}", file=stream)
+    tol = summary["tolerance"]
+    for c in tol["changes"]:
+        print(f"spglib verdict changes between symprec {c['low']:g} and {c['high']:g} Å: "
+              f"{c['runs']} of {tol['runs_considered']} runs", file=stream)
+    if tol["recommended_symprec"]:
+        print(f"campaign symprec: {tol['recommended_symprec']:.3g} Å ({tol['reason']})",
+              file=stream)
+    print("flags and verdicts are diagnostics to check, not proofs of stability or of a phase",
+          file=stream)
+    print(f"outputs: {summary['output']}", file=stream)
+
+
+# ----------------------------------------------------------------------------- the audit
+def _csv_text(rows: list[dict]) -> str:
+    buf = io.StringIO()
+    w = csv.DictWriter(buf, fieldnames=list(records.CSV_COLUMNS), lineterminator="\n")
+    w.writeheader()
+    w.writerows(rows)
+    return buf.getvalue()
+
+
+def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=None,
+          scheduler=None, db=None, use_cache=True, overwrite=False, report=True, progress="auto",
+          fail_on=(), executor: Executor | None = None, quiet: bool | None = None) -> dict:
+    """Audit a campaign: every run under ``roots`` analysed (or taken from the cache) and written out.
+
+    Args:
+        roots: folders or files (a str/path or a list of them).
+        output: output folder (default ``./driftwatch-audit``).
+        config: preset name, YAML path, mapping or loaded config.
+        include, exclude: fnmatch globs on run ids and paths.
+        workers: local processes (default: the number of cores; 1 = in this process).
+        scheduler: Dask scheduler address (needs ``dask[distributed]``).
+        db: ase.db file or URL (default ``OUTPUT/runs.db``).
+        use_cache: False: analyse every run again (results are still cached for next time).
+        overwrite: allow writing into a folder that is not this campaign's audit.
+        report: build the HTML report in ``OUTPUT/report``.
+        progress: "auto" (a bar when stderr is a terminal; ``$DRIFTWATCH_PROGRESS`` overrides),
+            "on" or "off".
+        fail_on: flag codes or levels; runs where one fires are listed in ``gated``.
+        executor: any ``concurrent.futures.Executor`` to run on (overrides workers/scheduler).
+        quiet: True: print no table; None: print unless progress is "off" and stdout is no terminal.
+
+    Returns:
+        The campaign summary (schema ``driftwatch/campaign-1``), also written to
+        ``OUTPUT/campaign.json``.
+    """
+    from . import config as _config
+    from .rules import gate
+    t0 = time.perf_counter()
+    cfg = _config.coerce(config)
+    roots = [roots] if isinstance(roots, (str, os.PathLike)) else list(roots)
+    if not roots:
+        raise ConfigError("audit: give at least one folder or file to search for runs")
+    out = Path(output if output is not None else DEFAULT_OUTPUT)
+    roots_abs = sorted(str(Path(r).resolve()) for r in roots)
+    db_name = _db_name(db, out)
+    from .store import check_lock
+    check_lock(db_name)                       # fail before hours of analysis, not after
+    old_marker = _prepare_output(out, roots_abs, overwrite)
+    rec_dir = out / "records"
+    rec_dir.mkdir(exist_ok=True)
+
+    skip = [out] + ([db_name] if not db_name.startswith(("postgres", "mysql", "mariadb")) else [])
+    runs, failed = discover(roots, include=include, exclude=exclude, skip=skip)
+    names = _record_names(runs)
+    cache = Cache(out / ".cache", enabled=use_cache)
+    digests = FileDigests(out / ".cache" / "digests.json")
+    fp, vers = _config.fingerprint(cfg), _versions()
+    results: dict[str, dict] = {}
+    keys: dict[str, str] = {}
+    todo = []
+    for r in runs:
+        try:
+            keys[r.id] = run_key(r.path, r.kind, fp, vers, digests)
+        except OSError as exc:
+            results[r.id] = {"run": r.id, "source": r.path, "ok": False, "cacheable": False,
+                             "error": _one_line(exc, r.path)}
+            continue
+        hit = cache.get(keys[r.id])
+        if hit is not None:
+            results[r.id] = dict(hit, run=r.id, source=r.path, cached=True)
+        else:
+            todo.append((r.id, r.path))
+    digests.save()
+    n_cached = sum(1 for v in results.values() if v.get("cached"))
+
+    def store(res):
+        rid = res["run"]
+        if rid in keys and (res["ok"] or res.get("cacheable")):
+            cache.put(keys[rid], {k: v for k, v in res.items() if k not in ("run", "source")})
+        if res["ok"]:
+            _write_if_changed(_inside(rec_dir, rec_dir / names[rid]),
+                              records.dumps(res["record"]) + "\n")
+        results[rid] = res
+
+    for res in results.values():             # cached records may be missing (deleted by the user)
+        if res["ok"]:
+            _write_if_changed(_inside(rec_dir, rec_dir / names[res["run"]]),
+                              records.dumps(res["record"]) + "\n")
+    gen, how = _execute(todo, cfg, workers=workers or os.cpu_count() or 1, scheduler=scheduler,
+                        executor=executor)
+    bar = _Progress(len(runs), _progress_on(progress), initial=len(runs) - len(todo))
+    try:
+        for res in gen:
+            store(res)
+            bar.update(res)
+    finally:
+        bar.close()
+        close = getattr(gen, "close", None)
+        if close:
+            close()
+
+    ok = [results[r.id] for r in runs if results[r.id]["ok"]]
+    failed = failed + [{"run": results[r.id]["run"], "source": r.path,
+                        "error": results[r.id]["error"]} for r in runs if not results[r.id]["ok"]]
+    current = {names[r["run"]] for r in ok}
+    stale = _retire_stale(rec_dir, list(old_marker.get("records", [])), current)
+
+    csv_rows = [records.csv_row(r["record"], r["run"]) for r in ok]
+    csv_rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
+                 for f in failed]
+    records.write_text_atomic(out / "campaign.csv",
+                              _csv_text(sorted(csv_rows, key=lambda row: row["run"])))
+
+    from .store import write_rows
+    rows = [(r["run"], r["structure"], records.db_key_values(r["record"], r["run"])) for r in ok]
+    rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
+                               "dw_error": f["error"][:300]}) for f in failed]
+    db_problems = write_rows(db_name, sorted(rows, key=lambda x: x[0]))
+
+    gated = [{"run": r["run"], "code": f["code"], "step": f["step"]}
+             for r in ok for f in gate(r["record"]["flags"], list(fail_on))]
+    summary = {
+        "schema": SCHEMA,
+        "output": str(out),
+        "roots": [str(r) for r in roots],
+        "runs": len(ok) + len(failed),
+        "analysed": len(todo),
+        "cached": n_cached,
+        "failed": sorted(failed, key=lambda f: f["run"]),
+        "gated": gated,
+        "flag_counts": dict(sorted(Counter(c for r in ok for c in
+                                           {f["code"] for f in r["record"]["flags"]}).items())),
+        "verdict_counts": dict(sorted(Counter([r["record"]["summary"]["verdict"] for r in ok]
+                                              + ["failed"] * len(failed)).items())),
+        "tolerance": tolerance_advice(ok, cfg["report"]["common_symprecs"]),
+        "records": {r["run"]: f"records/{names[r['run']]}" for r in ok},
+        "stale_records": [f"records/stale/{n}" for n in stale],
+        "db": db_name,
+        "db_problems": db_problems,
+        "executor": how,
+        "analysis_s": sum((r.get("timing") or {}).get("total_s", 0.0) for r in ok
+                          if not r.get("cached")),
+        "elapsed_s": 0.0,
+    }
+    summary["elapsed_s"] = time.perf_counter() - t0
+    records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
+    _write_marker(out, roots_abs, sorted(current))
+    if report:
+        _build_report(out, summary)
+    summary["elapsed_s"] = time.perf_counter() - t0
+    records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
+    if quiet is None:
+        quiet = progress in ("off", False) and not getattr(sys.stdout, "isatty", lambda: False)()
+    if not quiet:
+        _print_table(summary, _summary_rows(ok, failed), sys.stdout)
+    return summary
+
+
+def _db_name(db, out: Path) -> str:
+    from .store import db_location
+    return db_location(db, out)
+
+
+def _build_report(out: Path, summary: dict) -> None:
+    from .report import build
+    build([out / "records"], out / "report", overwrite=True, campaign=summary)

@@ -1,0 +1,343 @@
+"""Command line: ``driftwatch SUBCOMMAND ...``. Thin: parse, call, print.
+
+Exit codes (all subcommands):
+  0  success
+  1  an input, config or output problem (one-line message; ``--debug`` for the traceback)
+  2  usage error (bad options)
+  3  a flag listed in ``--fail-on`` (or the config's ``fail_on``) fired
+  4  audit only: finished, but some runs could not be analysed (see the summary)
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_GATED, EXIT_PARTIAL = 0, 1, 2, 3, 4
+
+_EPILOG = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
+3 a --fail-on flag fired, 4 (audit) some runs failed.
+Flags are diagnostics to check, not proofs of stability or of a phase."""
+
+
+def _common(p: argparse.ArgumentParser, gate=True) -> None:
+    p.add_argument("-c", "--config", metavar="YAML|PRESET",
+                   help="config file or preset (default, monolayer, bulk, tolerance); "
+                        "default: $DRIFTWATCH_CONFIG or 'default'")
+    p.add_argument("--json", action="store_true", help="print machine-readable JSON on stdout")
+    p.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
+    if gate:
+        p.add_argument("--fail-on", metavar="CODES", default=None,
+                       help="comma-separated flag codes or levels (info, warning) that make the "
+                            "command exit 3, e.g. 'snapped,handedness-flip'")
+
+
+def _parser() -> argparse.ArgumentParser:
+    top = argparse.ArgumentParser(
+        prog="driftwatch",
+        description="Track whether relaxations changed a structure's symmetry: continuous lattice "
+                    "distances to every higher-symmetry type, per ionic step, next to spglib's "
+                    "verdict across tolerances.",
+        epilog=_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    top.add_argument("--version", action="store_true", help="print the version and exit")
+    sub = top.add_subparsers(dest="command", metavar="COMMAND")
+    fmt = argparse.RawDescriptionHelpFormatter
+
+    p = sub.add_parser("inspect", help="one run in detail: per-step table, flags, summary",
+                       formatter_class=fmt, epilog="examples:\n"
+                       "  driftwatch inspect runs/L-03/            # a QE or VASP run folder\n"
+                       "  driftwatch inspect relax.traj --json > record.json\n"
+                       "  driftwatch inspect OUTCAR --all-frames --fail-on snapped\n\n" + _EPILOG)
+    p.add_argument("path", help="trajectory file or run folder")
+    p.add_argument("-f", "--format", help="adapter name, overriding detection (see --list-formats)")
+    p.add_argument("--all-frames", action="store_true", help="run spglib on every frame")
+    p.add_argument("-o", "--output", metavar="FILE", help="also write the run record (JSON) here")
+    _common(p)
+
+    p = sub.add_parser("audit", help="audit a campaign of runs under one or more folders",
+                       formatter_class=fmt, epilog="examples:\n"
+                       "  driftwatch audit campaign/ -o audit-out/\n"
+                       "  driftwatch audit a/ b/ --include '*relax*' --exclude '*/old/*' -j 2\n"
+                       "  driftwatch audit campaign/ --scheduler tcp://head:8786 --db runs.db\n\n"
+                       + _EPILOG)
+    p.add_argument("roots", nargs="+", help="folders or files to search for runs")
+    p.add_argument("-o", "--output", metavar="DIR", default=None,
+                   help="output folder (default: driftwatch-audit; an existing non-empty folder "
+                        "from another campaign is refused unless --overwrite)")
+    p.add_argument("--include", action="append", default=[], metavar="GLOB",
+                   help="only runs whose path matches (repeatable)")
+    p.add_argument("--exclude", action="append", default=[], metavar="GLOB",
+                   help="skip runs whose path matches (repeatable)")
+    p.add_argument("-j", "--workers", type=int, default=None,
+                   help="local worker processes (default: number of cores)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address (needs dask[distributed])")
+    p.add_argument("--db", metavar="URL", help="ase.db file or URL (default: OUTPUT/runs.db)")
+    p.add_argument("--no-cache", action="store_true", help="ignore cached results")
+    p.add_argument("--overwrite", action="store_true", help="allow replacing outputs of another campaign")
+    p.add_argument("--no-report", action="store_true", help="skip the HTML report")
+    p.add_argument("--progress", choices=("auto", "on", "off"), default="auto")
+    _common(p)
+
+    p = sub.add_parser("follow", help="follow a running VASP or QE job (or a growing trajectory)",
+                       formatter_class=fmt, epilog="examples:\n"
+                       "  driftwatch follow run/pw.out\n"
+                       "  driftwatch follow run/ --stop-on snapped            # soft stop via STOPCAR/.EXIT\n"
+                       "  driftwatch follow run/ --stop-on snapped --dry-run\n\n" + _EPILOG)
+    p.add_argument("path", help="output file or run folder")
+    p.add_argument("-f", "--format", help="adapter name, overriding detection")
+    p.add_argument("--stop-on", metavar="CODES", help="request the code's soft stop when one fires")
+    p.add_argument("--dry-run", action="store_true", help="say what the soft stop would do; write nothing")
+    p.add_argument("--idle", type=float, default=300.0, metavar="SECONDS",
+                   help="end after this long without growth (default 300)")
+    p.add_argument("--poll", type=float, default=2.0, metavar="SECONDS", help="poll interval")
+    p.add_argument("-o", "--output", metavar="FILE", help="write the run record (JSON) here")
+    _common(p)
+
+    p = sub.add_parser("tolerance", help="tolerance study of one structure: spglib across symprec",
+                       formatter_class=fmt, epilog="examples:\n"
+                       "  driftwatch tolerance CONTCAR\n"
+                       "  driftwatch tolerance relax.traj --frame 0 --json\n\n" + _EPILOG)
+    p.add_argument("path", help="structure or trajectory file, or run folder")
+    p.add_argument("-f", "--format", help="adapter name, overriding detection")
+    p.add_argument("--frame", type=int, default=-1, help="frame index (default: last)")
+    _common(p, gate=False)
+
+    p = sub.add_parser("report", help="rebuild HTML/CSV reports from saved run records",
+                       formatter_class=fmt, epilog="examples:\n"
+                       "  driftwatch report audit-out/records -o audit-out/report\n\n" + _EPILOG)
+    p.add_argument("records", nargs="+", help="record files (JSON) or folders of them")
+    p.add_argument("-o", "--output", metavar="DIR", required=True, help="report folder")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+    _common(p, gate=False)
+
+    p = sub.add_parser("formats", help="list the input formats driftwatch reads")
+    p.add_argument("--json", action="store_true")
+    p.add_argument("--debug", action="store_true")
+    return top
+
+
+def _fail_codes(args, cfg) -> list[str]:
+    if getattr(args, "fail_on", None):
+        return [c.strip() for c in args.fail_on.split(",") if c.strip()]
+    return list(cfg.get("fail_on", []))
+
+
+def _check_codes(codes):
+    from .errors import ConfigError
+    from .rules import FLAGS
+    bad = [c for c in codes if c not in FLAGS and c not in ("info", "warning")]
+    if bad:
+        raise ConfigError(f"--fail-on: unknown flag code(s) {', '.join(bad)} "
+                          f"(codes: {', '.join(FLAGS)}; levels: info, warning)")
+
+
+def _print_json(obj) -> None:
+    from .records import dumps
+    sys.stdout.write(dumps(obj) + "\n")
+
+
+def _fmt(x, spec=".3g"):
+    return "-" if x is None else format(x, spec)
+
+
+def _inspect_table(rec: dict) -> str:
+    """Per-step table: deformation to the nearest types, sign (layers), spglib at 1e-3 Å."""
+    from .rules import NAMES
+    frames, dim = rec["frames"], rec["geometry"]["dimension"]
+    last = frames[-1]["deformation"]
+    shown = sorted((t for t in last if t != "mirror"), key=lambda t: last[t])[:3]
+    head = ["step", "energy/eV"] + [f"{t}/Å" for t in shown] + (["sign", "chiral/Å"] if dim == 2 else [])
+    head += ["spglib@1e-3"]
+    rows = [head]
+    for f in frames:
+        row = [str(f["step"]), _fmt(f["energy"], ".6f")]
+        row += [_fmt(f["deformation"][t]) for t in shown]
+        if dim == 2:
+            row += [f"{f['sign']:+d}" if f["sign"] else "0", _fmt(f["chiral_distance"])]
+        spec = f.get("symmetry")
+        if spec:
+            import numpy as np
+            i = int(np.argmin(np.abs(np.log(np.asarray(spec["symprec"]) / 1e-3))))
+            row.append(f"{spec['group_symbol'][i]} ({spec['group'][i]})")
+        else:
+            row.append("")
+        rows.append(row)
+    widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
+    lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in rows]
+    s = rec["summary"]
+    lines.append("")
+    kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
+    lines.append(f"{rec['run']['source']}: {kind}, {rec['run']['n_frames']} frames, "
+                 f"{rec['run']['formula']}; deformation columns are Å of lattice-vector change "
+                 f"to each type")
+    for tag in ("initial", "final"):
+        st = s[tag]
+        near = (f"; nearest other type {st['nearest']} ({NAMES[st['nearest']]}) at deformation "
+                f"{_fmt(st['deformation'])} Å, root distance {_fmt(st['distance'])} Å"
+                if st["nearest"] else "")
+        lines.append(f"{tag:>8}: type {st['type']} ({NAMES[st['type']]}){near}")
+    lines.append(f" verdict: {s['verdict']}")
+    if s.get("lattice_note"):
+        lines.append(f"    note: {s['lattice_note']}")
+    tol = s["tolerance"]
+    if tol["recommended_symprec"]:
+        lines.append(f"  symprec: {tol['recommended_symprec']:.2g} Å suggested ({tol['reason']})")
+    for w in rec["run"]["warnings"]:
+        lines.append(f" warning: {w}")
+    for fl in rec["flags"]:
+        lines.append(f"    flag: [{fl['level']}] {fl['code']} (step {fl['step']}): {fl['message']}")
+    if not rec["flags"]:
+        lines.append("   flags: none (a diagnostic, not a proof of stability)")
+    return "\n".join(lines)
+
+
+def _cmd_inspect(args) -> int:
+    from . import config as _config, records, rules
+    from .track import analyze
+    overrides = {"selection.all_frames": True} if args.all_frames else None
+    cfg = _config.load(args.config, overrides)
+    codes = _fail_codes(args, cfg)
+    _check_codes(codes)
+    rec = analyze(args.path, cfg, format=args.format)
+    if args.output:
+        records.write_json(rec, args.output)
+    if args.json:
+        _print_json(rec)
+    else:
+        print(_inspect_table(rec))
+    return EXIT_GATED if rules.gate(rec["flags"], codes) else EXIT_OK
+
+
+def _cmd_tolerance(args) -> int:
+    from . import config as _config, geometry, symmetry
+    from .adapters import read_run
+    from .rules import advice
+    from .track import symprec_grid
+    cfg = _config.load(args.config)
+    run = read_run(args.path, format=args.format)
+    n = len(run.cells)
+    i = args.frame if args.frame >= 0 else n + args.frame
+    if not 0 <= i < n:
+        from .errors import InputError
+        raise InputError(args.path, f"frame {args.frame} out of range (the run has {n} frames)")
+    geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+    s = cfg["symmetry"]
+    spec = symmetry.spectrum(run.cells[i], run.positions[i], run.numbers, symprecs=symprec_grid(cfg),
+                             angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
+                             bisect=s["bisect"], precision=s["precision"])
+    spec["displacement"] = symmetry.drift_table(run.cells[i], run.positions[i], run.numbers, spec,
+                                                vacuum_axis=geo.vacuum_axis)
+    adv = advice(spec)
+    out = {"source": run.source, "frame": i, "dimension": geo.dimension, "spectrum": spec,
+           "advice": adv}
+    if args.json:
+        _print_json(out)
+        return EXIT_OK
+    kind = "layer group" if geo.dimension == 2 else "space group"
+    print(f"{run.source}, frame {i}: {kind} and lattice type across symprec (Å), "
+          f"angle_tolerance {spec['angle_tolerance']:g} deg")
+    print(f"{'symprec/Å':>10}  {kind:>22}  {'ops':>4}  lattice")
+    for x, g, sym, ops, lat in zip(spec["symprec"], spec["group"], spec["group_symbol"],
+                                   spec["operations"], spec["lattice"]):
+        print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}")
+    for b in spec["breakpoints"]:
+        print(f"breakpoint ({b['kind']}): {b['from']} -> {b['to']} between {b['low']:.4g} and "
+              f"{b['high']:.4g} Å")
+    for g, d in spec["displacement"].items():
+        print(f"to {d['symbol']} ({g}): atoms move rms {d['rms']:.3g} Å, max {d['max']:.3g} Å; "
+              f"lattice strain {d['strain']:.2g}")
+    if adv["recommended_symprec"]:
+        print(f"suggested symprec {adv['recommended_symprec']:.2g} Å: {adv['reason']}")
+    return EXIT_OK
+
+
+def _cmd_audit(args) -> int:
+    from . import config as _config
+    from .campaign import audit
+    cfg = _config.load(args.config)
+    codes = _fail_codes(args, cfg)
+    _check_codes(codes)
+    result = audit(args.roots, args.output, config=cfg, include=args.include, exclude=args.exclude,
+                   workers=args.workers, scheduler=args.scheduler, db=args.db,
+                   use_cache=not args.no_cache, overwrite=args.overwrite, report=not args.no_report,
+                   progress=args.progress, fail_on=codes)
+    if args.json:
+        _print_json(result)
+    if result.get("gated"):
+        return EXIT_GATED
+    return EXIT_PARTIAL if result.get("failed") else EXIT_OK
+
+
+def _cmd_follow(args) -> int:
+    from . import config as _config
+    from .live import follow
+    cfg = _config.load(args.config)
+    codes = _fail_codes(args, cfg)
+    _check_codes(codes)
+    stop = [c.strip() for c in args.stop_on.split(",")] if args.stop_on else []
+    _check_codes(stop)
+    rec = follow(args.path, config=cfg, format=args.format, stop_on=stop, dry_run=args.dry_run,
+                 idle=args.idle, poll=args.poll, output=args.output, quiet=args.json)
+    if args.json:
+        _print_json(rec)
+    from .rules import gate
+    return EXIT_GATED if gate(rec["flags"], codes) else EXIT_OK
+
+
+def _cmd_report(args) -> int:
+    from .report import build
+    index = build(args.records, args.output, overwrite=args.overwrite)
+    if args.json:
+        _print_json({"index": str(index)})
+    else:
+        print(f"report: {index}")
+    return EXIT_OK
+
+
+def _cmd_formats(args) -> int:
+    from .adapters import formats
+    table = formats()
+    if args.json:
+        _print_json(table)
+    else:
+        for name, desc in table.items():
+            print(f"{name:14} {desc}")
+    return EXIT_OK
+
+
+_COMMANDS = {"inspect": _cmd_inspect, "audit": _cmd_audit, "follow": _cmd_follow,
+             "tolerance": _cmd_tolerance, "report": _cmd_report, "formats": _cmd_formats}
+
+
+def main(argv=None) -> int:
+    """Entry point of the ``driftwatch`` console script; returns the exit code."""
+    parser = _parser()
+    args = parser.parse_args(argv)
+    if args.version:
+        from . import __version__
+        print(f"driftwatch {__version__}")
+        return EXIT_OK
+    if not args.command:
+        parser.print_help()
+        return EXIT_USAGE
+    try:
+        return _COMMANDS[args.command](args)
+    except KeyboardInterrupt:
+        print("driftwatch: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # one line for the user; the traceback only with --debug
+        if args.debug:
+            raise
+        from .errors import DriftwatchError
+        if isinstance(exc, DriftwatchError):
+            msg = str(exc)
+        elif isinstance(exc, OSError) and exc.filename:
+            msg = f"{exc.filename}: {exc.strerror or exc}"
+        else:
+            msg = f"{type(exc).__name__}: {exc} (internal error; rerun with --debug and report it)"
+        print(f"driftwatch: error: {msg}", file=sys.stderr)
+        return EXIT_ERROR
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,48 @@
+"""Error types. Every error driftwatch raises on purpose is a DriftwatchError.
+
+Each subclass also inherits the builtin it specialises, so callers can catch
+either (``except ValueError`` keeps working). Messages are one line and name
+the file and the problem.
+"""
+
+__all__ = [
+    "DriftwatchError", "LatticeError", "InputError", "UnknownFormatError",
+    "GeometryError", "ConfigError", "SymmetryError", "OutputError",
+]
+
+
+class DriftwatchError(Exception):
+    """Base class of every error driftwatch raises on purpose."""
+
+
+class LatticeError(DriftwatchError, ValueError):
+    """A basis is not a lattice: zero, collinear/coplanar, singular or non-finite vectors."""
+
+
+class InputError(DriftwatchError, ValueError):
+    """A file or run folder cannot be read as a relaxation. ``path`` names it."""
+
+    def __init__(self, path, problem):
+        self.path = str(path)
+        self.problem = str(problem)
+        super().__init__(f"{self.path}: {self.problem}")
+
+
+class UnknownFormatError(InputError):
+    """No registered adapter recognises the file."""
+
+
+class GeometryError(DriftwatchError, ValueError):
+    """The cell is not what the analysis needs (e.g. 1D/0D, or no layer when one is required)."""
+
+
+class ConfigError(DriftwatchError, ValueError):
+    """A configuration file or value is invalid. The message names the key."""
+
+
+class SymmetryError(DriftwatchError, RuntimeError):
+    """spglib could not analyse a structure (it returned None or raised)."""
+
+
+class OutputError(DriftwatchError, OSError):
+    """An output cannot be written safely (locked database, path outside the output folder, ...)."""

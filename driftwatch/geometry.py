@@ -1,0 +1,227 @@
+"""Layer or bulk, the vacuum axis, the in-plane 2D lattice with its viewing side, layers in bulk.
+
+Conventions (binding for the whole project):
+
+* **Vacuum axis.** If ``pbc`` has exactly one False entry, that cell vector is the
+  vacuum axis. Two or three False entries: a 1D/0D system, ``GeometryError``.
+  Otherwise (pbc all True, as DFT codes write it) the *empty gap* along each axis
+  decides: for cell vector k, project the atoms onto the unit normal of the
+  plane of the other two vectors; the largest periodic gap between consecutive
+  projected heights, in Å, is the gap of axis k. Exactly one gap above the
+  threshold (default 6 Å): a layer with that vacuum axis. None: bulk. Several:
+  ``GeometryError`` naming the axes (a wire or molecule in a box, not a layer).
+  The decision is made on the first frame; later frames are reported in ``reason``
+  if they would decide differently.
+* **Viewing side.** A layer is viewed from the side its cell vector along the
+  vacuum axis points to: the unit normal n of the layer plane is oriented so that
+  n · c_vac > 0, frame by frame (so a cell that rotates during a relaxation keeps
+  its side). The in-plane frame is e1 = a/|a|, e2 = n × e1, with (a, b) the two
+  periodic vectors in cyclic order after the vacuum axis (vacuum axis 2: a0, a1;
+  0: a1, a2; 1: a2, a0). The 2D basis rows are (v·e1, v·e2). With this choice
+  det(2D basis) = (a × b) · n, whose sign is that of det(cell); a reflected layer
+  (or a vacuum vector flipped to the other side) flips it. Because the side is
+  fixed by the cell itself, **a sign change within one trajectory is a real change
+  of handedness** of the layer's lattice, never an artefact of orientation.
+
+Lengths in Å. Arrays carry a leading frame axis; (3, 3) / (N, 3) inputs are accepted.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import GeometryError
+
+__all__ = ["Geometry", "Layer", "classify", "vacuum_gaps", "plane_normals", "inplane_bases",
+           "find_layers", "layers_in_bulk", "DEFAULT_GAP"]
+
+DEFAULT_GAP = 6.0
+"""Å. Vacuum thicker than this along exactly one axis makes a cell a layer (common practice:
+slab models use 10-20 Å of vacuum; interlayer gaps of van der Waals bulk crystals are ~3-4 Å)."""
+
+_INPLANE = {0: (1, 2), 1: (2, 0), 2: (0, 1)}
+
+
+@dataclass(frozen=True, eq=False)
+class Geometry:
+    """What a run's cell holds."""
+
+    dimension: int
+    """2 for a layer in a slab cell, 3 for bulk."""
+    vacuum_axis: int | None
+    """Index of the cell vector along the vacuum (None for bulk)."""
+    viewing_side: np.ndarray | None
+    """(3,) unit normal of the layer plane in the first frame, oriented along the vacuum
+    cell vector (None for bulk)."""
+    reason: str
+    """How the decision was made, in words."""
+    gaps: np.ndarray | None = None
+    """(3,) Å, the largest empty gap along each axis in the first frame (None if pbc decided)."""
+
+
+@dataclass(frozen=True, eq=False)
+class Layer:
+    """One 2D component of a bulk crystal."""
+
+    indices: np.ndarray
+    """Atoms of the cell that belong to this layer."""
+    basis: np.ndarray
+    """(2, 2) Å, primitive in-plane lattice of the layer, in its own plane frame."""
+    vectors: np.ndarray
+    """(2, 3) Å, the same two lattice vectors in the cell's cartesian frame."""
+    normal: np.ndarray
+    """(3,) unit normal (the viewing side, see :func:`find_layers`)."""
+    height: float
+    """Å, mean position of the layer's atoms along ``normal`` (stacking order)."""
+
+
+def _frames(cells, positions=None):
+    cells = np.asarray(cells, float)
+    single = cells.ndim == 2
+    cells = cells.reshape(-1, 3, 3)
+    if positions is None:
+        return cells, None, single
+    pos = np.asarray(positions, float)
+    pos = pos.reshape(-1, pos.shape[-2], 3)
+    if len(pos) != len(cells):
+        raise GeometryError(f"{len(cells)} cells but {len(pos)} position frames")
+    return cells, pos, single
+
+
+def vacuum_gaps(cells, positions) -> np.ndarray:
+    """(n, 3) Å: largest empty gap between atom planes along each axis's plane normal."""
+    cells, pos, single = _frames(cells, positions)
+    vol = np.abs(np.linalg.det(cells))
+    if np.any(vol < 1e-9):
+        raise GeometryError("singular cell: cannot measure vacuum gaps")
+    frac = np.linalg.solve(np.transpose(cells, (0, 2, 1)), np.transpose(pos, (0, 2, 1)))
+    frac = np.sort(frac % 1.0, axis=2)                        # (n, 3, N)
+    inner = np.diff(frac, axis=2)
+    wrap = 1.0 - frac[:, :, -1] + frac[:, :, 0]
+    gmax = np.maximum(wrap, inner.max(axis=2) if inner.shape[2] else 0.0)
+    spacing = np.empty((len(cells), 3))
+    for k, (i, j) in _INPLANE.items():
+        spacing[:, k] = vol / np.linalg.norm(np.cross(cells[:, i], cells[:, j]), axis=1)
+    out = gmax * spacing
+    return out[0] if single else out
+
+
+def classify(cells, pbc, positions, gap: float = DEFAULT_GAP) -> Geometry:
+    """Decide whether a run's cell holds a layer (dimension 2) or bulk (3). See the module doc.
+
+    Raises ``GeometryError`` for 1D/0D cells (two or three non-periodic axes, or vacuum
+    along more than one axis).
+    """
+    cells, pos, _ = _frames(cells, positions)
+    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
+    free = [k for k in range(3) if not pbc[k]]
+    if len(free) >= 2:
+        kind = "0D (molecule or cluster)" if len(free) == 3 else "1D (wire or chain)"
+        raise GeometryError(f"not a layer: pbc = {pbc.tolist()} makes the cell {kind}; "
+                            f"driftwatch analyses layers (one non-periodic axis) and bulk")
+    if len(free) == 1:
+        k = free[0]
+        n = plane_normals(cells[:1], k)[0]
+        return Geometry(2, k, n, f"pbc = {pbc.tolist()}: axis {k} is non-periodic")
+    gaps = vacuum_gaps(cells, pos)                              # (n, 3)
+    big = [k for k in range(3) if gaps[0, k] > gap]
+    later = {tuple(k for k in range(3) if g[k] > gap) for g in gaps[1:]}
+    drift = "" if later <= {tuple(big)} else \
+        f"; later frames have vacuum on axes {sorted(map(list, later - {tuple(big)}))}"
+    desc = ", ".join(f"{g:.2f}" for g in gaps[0])
+    if len(big) > 1:
+        raise GeometryError(f"not a layer: empty gaps > {gap} Å along axes {big} "
+                            f"(gaps {desc} Å): a 1D/0D system in a box")
+    if not big:
+        return Geometry(3, None, None, f"bulk: largest empty gaps {desc} Å, none above "
+                                       f"{gap} Å{drift}", gaps[0])
+    k = big[0]
+    n = plane_normals(cells[:1], k)[0]
+    return Geometry(2, k, n, f"layer: empty gap {gaps[0, k]:.2f} Å > {gap} Å along axis {k} "
+                             f"(gaps {desc} Å){drift}", gaps[0])
+
+
+def plane_normals(cells, vacuum_axis: int) -> np.ndarray:
+    """(n, 3) unit normals of the layer plane, oriented so that n · c_vac > 0 (the viewing side)."""
+    cells, _, single = _frames(cells)
+    i, j = _INPLANE[int(vacuum_axis)]
+    cr = np.cross(cells[:, i], cells[:, j])
+    norm = np.linalg.norm(cr, axis=1)
+    if np.any(norm < 1e-12):
+        raise GeometryError("degenerate in-plane cell vectors (parallel or zero)")
+    side = np.sign(np.einsum("nk,nk->n", cr, cells[:, vacuum_axis]))
+    if np.any(side == 0):
+        raise GeometryError("the vacuum cell vector lies in the layer plane")
+    n = cr / (norm * side)[:, None]
+    return n[0] if single else n
+
+
+def _plane_basis(a, b, n):
+    e1 = a / np.linalg.norm(a, axis=-1, keepdims=True)
+    e2 = np.cross(n, e1)
+    va = np.stack([np.einsum("...k,...k", a, e1), np.einsum("...k,...k", a, e2)], -1)
+    vb = np.stack([np.einsum("...k,...k", b, e1), np.einsum("...k,...k", b, e2)], -1)
+    return np.stack([va, vb], -2)
+
+
+def inplane_bases(cells, vacuum_axis: int) -> np.ndarray:
+    """(n, 2, 2) Å: the two periodic cell vectors in the layer's plane frame (rows are vectors).
+
+    Frame: e1 = a/|a|, e2 = n × e1, n the unit normal with n · c_vac > 0 (see the module
+    doc). The first row is always (|a|, 0). det > 0 for a right-handed cell; a sign change
+    within one trajectory is a real change of handedness.
+    """
+    cells, _, single = _frames(cells)
+    if vacuum_axis not in (0, 1, 2):
+        raise GeometryError(f"vacuum_axis must be 0, 1 or 2, not {vacuum_axis!r}")
+    i, j = _INPLANE[int(vacuum_axis)]
+    out = _plane_basis(cells[:, i], cells[:, j], plane_normals(cells, vacuum_axis))
+    return out[0] if single else out
+
+
+def find_layers(cell, positions, numbers, kcutoff: float | None = None) -> list[Layer]:
+    """The 2D components of a bulk cell (ASE's rank-determination dimensionality analysis).
+
+    Each layer gets its primitive in-plane lattice (ASE's choice of the smallest-area
+    pair of periodic vectors) in its own plane frame. Viewing side: the normal is
+    oriented along the cell vector that is most nearly perpendicular to the layer
+    (the stacking vector), so all layers of a stack are viewed from the same side.
+    Returns [] when the structure has no 2D component at ASE's best-scoring cutoff
+    (``kcutoff`` overrides it). Layers are sorted by height along the normal.
+    """
+    from ase import Atoms
+    from ase.geometry.dimensionality.isolation import construct_inplane_basis, traverse_graph
+
+    cell = np.asarray(cell, float)
+    atoms = Atoms(numbers=np.asarray(numbers), positions=np.asarray(positions, float),
+                  cell=cell, pbc=True)
+    components, all_visited, ranks = traverse_graph(atoms, kcutoff)
+    layers = []
+    for k, visited in all_visited.items():
+        if ranks[k] != 2:
+            continue
+        visited = sorted(visited)
+        a, b, _ = construct_inplane_basis(atoms, k, visited)
+        members = np.unique([c for c, _ in visited])
+        idx = np.flatnonzero(np.isin(components, members))
+        n = np.cross(a, b)
+        n /= np.linalg.norm(n)
+        proj = cell @ n
+        stack = int(np.argmax(np.abs(proj)))
+        if proj[stack] < 0:
+            n = -n
+        if np.dot(np.cross(a, b), n) < 0:       # keep the pair right-handed about n
+            a, b = b, a
+        basis = _plane_basis(a, b, n)
+        layers.append(Layer(idx, basis, np.array([a, b]), n,
+                            float(np.mean(atoms.positions[idx] @ n))))
+    return sorted(layers, key=lambda L: L.height)
+
+
+def layers_in_bulk(cell, positions, numbers, kcutoff: float | None = None) -> list:
+    """Per-layer (2, 2) in-plane bases (Å) of a layered bulk crystal, in stacking order.
+
+    [] when the crystal is not layered. See :func:`find_layers` for atoms and normals.
+    """
+    return [L.basis for L in find_layers(cell, positions, numbers, kcutoff)]

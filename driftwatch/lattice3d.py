@@ -1,0 +1,619 @@
+"""Continuous invariants of 3D lattices (pure numpy, vectorised over frames).
+
+Conventions (team reference ``shared/math.md`` sections 0, 2 and 5):
+
+* A basis is a (3, 3) array whose **rows** are the lattice vectors, in Angstrom.
+  Every function accepts a stack ``(n, 3, 3)`` (one basis per frame) or a single
+  ``(3, 3)`` basis; a single basis gives outputs without the frame axis.
+* Superbase v0..v3 (v0 + v1 + v2 + v3 = 0, v1, v2, v3 a basis); obtuse when all
+  v_i . v_j <= 0.  Conorms p_ij = -v_i . v_j (Å^2) in the order (01, 02, 03, 12, 13,
+  23); root products r_ij = sqrt(p_ij) (Å).
+
+Reduction (``selling_reduce``): a vectorised pairwise Gauss reduction first (each
+pass subtracts the *rounded* multiple of one vector from another, so a skew of
+10^k costs ~k passes instead of 10^k subtractive Selling steps), then Selling
+steps (v_i -> -v_i, v_k -> v_k + v_i, v_l -> v_l + v_i on the largest positive
+v_i . v_j) until every v_i . v_j <= 1e-13 max|v|^2.  The integer transformation is
+carried along and the vectors are recomputed from the input after every pass, so
+rounding does not accumulate.  Loops run only on the frames that still change.
+
+Fano 7-vector (Conway-Sloane): the 7 non-zero classes of L/2L form a Fano plane,
+and the Fano conorms of a lattice are the six conorms of any obtuse superbase
+plus one 0 (the class of v0 = v1 + v2 + v3 mod 2), in the point order
+100, 010, 001, 110, 101, 011, 111 <-> p01, p02, p03, p12, p13, p23, 0.  Relabelling
+the classes (a change of basis) permutes these 7 points by one of the 168
+elements of GL(3, 2); each zero of the 7-vector is one class of obtuse
+superbases.  ``fano_roots`` = sqrt of the 7-vector, sorted ascending.
+
+Canonical root products (``root_products``): over all obtuse superbases (every
+zero of the 7-vector moved to the 7th point by GL(3, 2)) and all 24 index
+permutations, the lexicographically smallest conorm 6-vector (p01, p02, p03, p12,
+p13, p23), comparing conorms with a tolerance of 1e-9 x the largest conorm; then
+square roots.  Identical (to rounding) for isometric lattices.  It is a display
+and record format only: a lexicographic choice jumps at near ties, so distances
+never use it.
+
+Lattice distance (``lattice_distance``, "fano7"): d(A, B) = min over g in
+GL(3, 2) of |R7(A) - g R7(B)| (L2 or L-inf), R7 = sqrt of the Fano conorms.  The
+group permutes coordinates, so d is a pseudometric (triangle inequality) and it
+is 0 for isometric lattices; it is continuous everywhere, including across
+zero-conorm walls where the six root products of one Selling superbase jump
+(shared/math.md 2.3).  It is 1-Lipschitz in R7, hence Hölder-1/2 in the basis.
+
+Distances to Bravais types (``distances``): the distance (same metric) from R7
+to the closure of a type, i.e. to the union over GL(3, 2) of the pattern cones
+{x_i = 0 on the zero class, x_i equal inside each class} of the type.  L2:
+replace each class by its mean; L-inf: (max - min)/2 within a class and the
+largest value of the zero class.  For each type T the cones are the *maximal*
+zero/equality patterns among all patterns whose lattices are of type T or of a
+type specialising T (``_PATTERNS`` below).  They come from an exhaustive
+enumeration of the zero/equality patterns of the 7-vector (60 up to GL(3, 2),
+57 non-degenerate), each realised with random values and typed by spglib on a
+one-atom cell; ``tests/test_lattice3d.py`` repeats that derivation against
+spglib and checks this table.  19 cones, 546 labelled patterns in total.  A
+cubic lattice is at distance 0 from tP, oP, ... (closure); ``SPECIALISES`` is
+the containment graph.
+
+Deformation (``deformation``): the root-space distances grow like sqrt(strain)
+near a zero conorm, so they are not comparable with spglib's ``symprec``
+(shared/math.md 5).  ``deformation`` computes the same cone distance Δp (Å^2)
+from the Fano *conorm* vector p (no square roots) and divides it by
+ℓ = sqrt(sum of the six superbase conorms / 3) (ℓ = a for a cube of edge a).
+Conorms are polynomial in the basis, so this is locally Lipschitz; it is roughly
+the lattice-vector displacement (Å) needed to reach the type.
+
+Calibration against spglib 2.8 (one-atom cell, ``angle_tolerance`` = -1,
+bisection in log symprec for the smallest symprec at which spglib's lattice
+(Bravais type of the one-atom cell) is the target type or a specialisation of
+it; ratio R = deformation[type] / symprec_crit, L2;
+``tests/test_lattice3d.py::test_deformation_calibrated_to_spglib``):
+
+CALIBRATION_TABLE
+
+So ``deformation <= symprec`` agrees with spglib's lattice verdict within a
+factor of about 2 either way; use it, not the root-space distances, for
+thresholds that users compare with ``symprec``.  This is an agreement measured
+on these families, not a guarantee: spglib's metric test and this measure are
+different functions of the cell.
+"""
+
+from __future__ import annotations
+
+import itertools
+from functools import lru_cache
+
+import numpy as np
+
+from .errors import LatticeError
+
+__all__ = [
+    "TYPES", "SYSTEMS", "SPECIALISES", "selling_reduce", "conorms", "fano_conorms",
+    "root_products", "fano_roots", "distances", "deformation", "system_distances",
+    "lattice_distance", "most_specific",
+]
+
+TYPES = ("mP", "mS", "oP", "oS", "oI", "oF", "tP", "tI", "hR", "hP", "cP", "cI", "cF")
+"""The 13 non-triclinic 3D Bravais types (Pearson symbols); ``aP`` is triclinic."""
+
+SPECIALISES = {
+    "cP": ("tP", "hR"), "cI": ("tI", "hR"), "cF": ("tI", "hR"),
+    "tP": ("oP", "oS"), "tI": ("oI", "oF"), "hP": ("oS",), "hR": ("mS",),
+    "oP": ("mP",), "oS": ("mP", "mS"), "oI": ("mS",), "oF": ("mS",),
+    "mP": ("aP",), "mS": ("aP",), "aP": (),
+}
+"""Direct containment: every lattice of the key type is also of each listed type
+(the closure of the listed type contains the key type).  Transitive closure gives
+all containments, e.g. cP is in tP, hR, oP, oS, mP, mS, aP; cP is not in tI."""
+
+SYSTEMS = {
+    "monoclinic": ("mP", "mS"),
+    "orthorhombic": ("oP", "oS", "oI", "oF"),
+    "tetragonal": ("tP", "tI"),
+    "rhombohedral": ("hR",),
+    "hexagonal": ("hP",),
+    "cubic": ("cP", "cI", "cF"),
+}
+"""The six non-triclinic lattice systems and their Bravais types."""
+
+_LEVEL = {"mP": 4, "mS": 4, "oP": 8, "oS": 8, "oI": 8, "oF": 8, "hR": 12,
+          "tP": 16, "tI": 16, "hP": 24, "cP": 48, "cI": 48, "cF": 48}
+"""Order of the holohedry (point group of the lattice) of each type."""
+
+# Maximal conorm patterns of each type (see module docstring).  Names: the six
+# superbase conorms "01".."23" and "*" for the seventh Fano point (the zero of
+# the Selling superbase); "zero" lists the conorms that vanish besides "*",
+# "eq" the classes of equal conorms; the rest are free.
+_PATTERNS = {
+    "mP": [("01 02", ())],
+    "mS": [("", ("01 23", "02 13")), ("", ("01 02", "13 23")), ("01", ("02 03",))],
+    "oP": [("01 02 12", ())],
+    "oS": [("01 02", ("12 13",))],
+    "oI": [("", ("01 23", "02 13", "03 12")), ("01", ("02 03", "12 13"))],
+    "oF": [("", ("01 02 13 23",))],
+    "tP": [("01 02 12", ("03 13",))],
+    "tI": [("", ("01 02 13 23", "03 12")), ("01", ("02 03 12 13",))],
+    "hR": [("", ("01 02 03", "12 13 23")), ("01 23", ("02 03 12",))],
+    "hP": [("01 02", ("12 13 23",))],
+    "cP": [("01 02 12", ("03 13 23",))],
+    "cI": [("", ("01 02 03 12 13 23",))],
+    "cF": [("01 23", ("02 03 12 13",))],
+}
+_NAMES = ("01", "02", "03", "12", "13", "23", "*")
+_PAIRS = ((0, 1), (0, 2), (0, 3), (1, 2), (1, 3), (2, 3))
+_FANO = ((1, 0, 0), (0, 1, 0), (0, 0, 1), (1, 1, 0), (1, 0, 1), (0, 1, 1), (1, 1, 1))
+
+_SINGULAR = 1e-12   # |det| <= this * prod |b_i|: singular
+_SELLING_TOL = 1e-13  # v_i.v_j > this * max|v|^2 triggers a Selling step
+_LEX_TOL = 1e-9     # canonical form: conorm ties within this * max conorm
+_ZERO_TOL = 1e-9    # a Fano conorm <= this * max conorm is a zero (extra superbase)
+_MAXIT = 2000
+_CHUNK = 256  # frames per block in the cone distances (cache-sized)
+
+
+# ----------------------------------------------------------------------------- tables
+
+@lru_cache(maxsize=None)
+def _gl32():
+    """(168, 7) int: the permutations of the 7 Fano points induced by GL(3, 2).
+
+    Row g maps point k to point g[k]; a relabelled vector is ``x[..., g]``.
+    """
+    pts = np.array(_FANO)
+    index = {p: i for i, p in enumerate(_FANO)}
+    perms = set()
+    for bits in itertools.product((0, 1), repeat=9):
+        m = np.array(bits).reshape(3, 3)
+        if round(np.linalg.det(m)) % 2 == 0:
+            continue
+        perms.add(tuple(index[tuple(int(c) for c in (m @ p) % 2)] for p in pts))
+    out = np.array(sorted(perms), dtype=np.intp)
+    assert out.shape == (168, 7)
+    return out
+
+
+@lru_cache(maxsize=None)
+def _stab_perms():
+    """(24, 7): the GL(3, 2) elements fixing point 6 (= the 24 index permutations of S4)."""
+    g = _gl32()
+    return g[g[:, 6] == 6]
+
+
+@lru_cache(maxsize=None)
+def _to_star():
+    """(7, 24, 7): for each point z, the relabellings that move z to point 6 ("*")."""
+    g = _gl32()
+    return np.stack([g[g[:, 6] == z] for z in range(7)])
+
+
+def _parse(spec):
+    zero, eqs = spec
+    zs = {_NAMES.index(s) for s in zero.split()} | {6}
+    blocks = [tuple(_NAMES.index(s) for s in e.split()) for e in eqs]
+    return frozenset(zs), tuple(frozenset(b) for b in blocks)
+
+
+@lru_cache(maxsize=None)
+def _pattern_table():
+    """All distinct GL(3, 2)-relabelled patterns of every type, as index tables.
+
+    A labelled pattern k is a zero set Z_k and up to three classes B (>= 2 points)
+    of equal coordinates; its squared L2 distance is sum_{Z_k} x^2 +
+    sum_B sum_{i in B} (x_i - mean_B)^2, its L-inf distance the largest of max_{Z_k} x
+    and (max_B - min_B)/2.  Both are computed once per *distinct* zero set and
+    class (features), then combined per pattern with row gathers.  Returns
+      ``starts`` (13,) first labelled pattern of each type (patterns grouped by type);
+      ``parts``  (K, 4) feature rows of each pattern (zero set, classes; padding
+                 points to a constant-0 row);
+      ``zidx, zstart`` / ``bidx, bstart, bsize``: flattened point lists of the
+                 distinct zero sets / classes, for ``reduceat``.
+    """
+    g = _gl32()
+    labelled = []
+    for t, specs in enumerate(_PATTERNS[k] for k in TYPES):
+        seen = set()
+        for spec in specs:
+            z0, b0 = _parse(spec)
+            for perm in g:
+                z = frozenset(int(perm[i]) for i in z0)
+                b = frozenset(frozenset(int(perm[i]) for i in blk) for blk in b0)
+                if (z, b) not in seen:
+                    seen.add((z, b))
+                    labelled.append((t, z, b))
+    zero_list = sorted({z for _, z, _ in labelled}, key=sorted)
+    block_list = sorted({blk for _, _, b in labelled for blk in b}, key=sorted)
+    zindex = {z: i for i, z in enumerate(zero_list)}
+    bindex = {blk: i for i, blk in enumerate(block_list)}
+    nz, nb = len(zero_list), len(block_list)
+    parts = np.full((len(labelled), 4), nz + nb, np.intp)
+    for k, (t, z, b) in enumerate(labelled):
+        parts[k, 0] = zindex[z]
+        for m, blk in enumerate(sorted(b, key=sorted)):
+            parts[k, 1 + m] = nz + bindex[blk]
+    types = np.array([t for t, _, _ in labelled], dtype=np.intp)
+
+    def flat(sets):
+        idx = np.array([i for st in sets for i in sorted(st)], np.intp)
+        size = np.array([len(st) for st in sets])
+        return idx, np.concatenate([[0], np.cumsum(size)[:-1]]), size
+
+    zidx, zstart, _ = flat(zero_list)
+    bidx, bstart, bsize = flat(block_list)
+    bowner = np.repeat(np.arange(nb), bsize)
+    # groups of patterns with the same number of parts (fewer gathers), sorted by type
+    nparts = (parts < nz + nb).sum(axis=1)
+    groups = []
+    for c in range(1, 5):
+        sel = np.flatnonzero(nparts == c)
+        if len(sel):
+            sel = sel[np.argsort(types[sel], kind="stable")]
+            present, first = np.unique(types[sel], return_index=True)
+            groups.append((parts[sel, :c], first, present))
+    return {"starts": np.searchsorted(types, np.arange(len(TYPES))), "parts": parts,
+            "nz": nz, "nb": nb, "zidx": zidx, "zstart": zstart, "bidx": bidx,
+            "bstart": bstart, "bsize": bsize, "bowner": bowner, "K": len(labelled),
+            "groups": groups}
+
+
+# ----------------------------------------------------------------------------- input
+
+def _frames(bases):
+    arr = np.asarray(bases, dtype=float)
+    if arr.shape == (3, 3):
+        return arr[None], True
+    if arr.ndim == 3 and arr.shape[1:] == (3, 3):
+        return arr, False
+    raise LatticeError(f"3D bases must have shape (n, 3, 3) or (3, 3), got {arr.shape}")
+
+
+def _where(i, single):
+    return "basis" if single else f"frame {i}"
+
+
+def _validate(arr, single):
+    """Raise LatticeError naming the first bad frame (non-finite, zero vector, singular)."""
+    finite = np.isfinite(arr).all(axis=(1, 2))
+    if not finite.all():
+        i = int(np.flatnonzero(~finite)[0])
+        raise LatticeError(f"{_where(i, single)}: cell contains non-finite numbers "
+                           f"(NaN or inf): {arr[i].tolist()}")
+    lengths = np.sqrt(np.einsum("nij,nij->ni", arr, arr))
+    zero = lengths == 0
+    if zero.any():
+        i, k = (int(v) for v in np.argwhere(zero)[0])
+        raise LatticeError(f"{_where(i, single)}: cell vector {k} is zero: {arr[i].tolist()}")
+    det = np.linalg.det(arr)
+    bad = np.abs(det) <= _SINGULAR * lengths.prod(axis=1)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise LatticeError(f"{_where(i, single)}: singular cell, vectors are coplanar "
+                           f"(|det| = {abs(det[i]):.3g} Å^3): {arr[i].tolist()}")
+
+
+# ----------------------------------------------------------------------------- reduction
+
+_GAUSS_PAIRS = ((1, 0), (2, 0), (2, 1), (0, 1), (0, 2), (1, 2))
+
+
+def _selling_steps():
+    """(6, 4, 4) integer matrices of the Selling step at each pair (i, j)."""
+    out = np.zeros((6, 4, 4))
+    for s, (i, j) in enumerate(_PAIRS):
+        t = np.eye(4)
+        t[i, i] = -1.0
+        for k in range(4):
+            if k not in (i, j):
+                t[k, i] = 1.0
+        out[s] = t
+    return out
+
+
+_STEPS = _selling_steps()
+
+
+def _dots(v):
+    """(n, 6) v_i . v_j for the pairs (01, 02, 03, 12, 13, 23)."""
+    return np.stack([np.einsum("ni,ni->n", v[:, i], v[:, j]) for i, j in _PAIRS], axis=1)
+
+
+def _reduce(arr):
+    """Obtuse superbase (n, 4, 3) of validated bases (n, 3, 3)."""
+    n = arr.shape[0]
+    U = np.broadcast_to(np.eye(3), (n, 3, 3)).copy()  # exact integers in float
+    B = arr.copy()
+    idx = np.arange(n)
+    for _ in range(_MAXIT):  # pairwise Gauss passes with rounding
+        b, u = B[idx], U[idx]
+        changed = np.zeros(len(idx), bool)
+        for i, j in _GAUSS_PAIRS:
+            mu = (np.einsum("ni,ni->n", b[:, i], b[:, j])
+                  / np.einsum("ni,ni->n", b[:, j], b[:, j]))
+            # |mu| = 1/2 (a tie, common in symmetric cells) must not flip back and forth
+            m = np.where(np.abs(mu) > 0.5 + 1e-9, np.rint(mu), 0.0)
+            nz = m != 0
+            if nz.any():
+                u[:, i] -= m[:, None] * u[:, j]
+                b[:, i] -= m[:, None] * b[:, j]
+                changed |= nz
+        if not changed.any():
+            break
+        U[idx] = u
+        B[idx] = u @ arr[idx]
+        idx = idx[changed]
+    else:  # pragma: no cover - a strictly decreasing integer process
+        raise LatticeError(f"frame {int(idx[0])}: basis reduction did not converge")
+    C = np.concatenate([-U.sum(axis=1, keepdims=True), U], axis=1)  # (n, 4, 3)
+    V = C @ arr
+    idx = np.arange(n)
+    for _ in range(_MAXIT):  # Selling steps
+        v = V[idx]
+        d = _dots(v)
+        scale = np.einsum("nki,nki->nk", v, v).max(axis=1)
+        k = d.argmax(axis=1)
+        pos = d[np.arange(len(idx)), k] > _SELLING_TOL * scale
+        if not pos.any():
+            break
+        idx, k = idx[pos], k[pos]
+        C[idx] = _STEPS[k] @ C[idx]
+        V[idx] = C[idx] @ arr[idx]
+    else:  # pragma: no cover
+        raise LatticeError(f"frame {int(idx[0])}: Selling reduction did not converge")
+    return V
+
+
+def _superbase(bases):
+    arr, single = _frames(bases)
+    _validate(arr, single)
+    v = _reduce(arr)
+    p = -_dots(v)
+    return v, np.maximum(p, 0.0), single
+
+
+def _out(x, single):
+    return x[0] if single else x
+
+
+def _p7(p6):
+    return np.concatenate([p6, np.zeros((p6.shape[0], 1))], axis=1)
+
+
+def selling_reduce(bases):
+    """Obtuse superbase (n, 4, 3) Å: rows v0..v3, sum 0, all v_i . v_j <= 0 (to 1e-13 |v|^2).
+
+    v1, v2, v3 form a basis of the same lattice (a unimodular transform of the
+    input rows).  Raises LatticeError for singular or non-finite cells.
+    """
+    arr, single = _frames(bases)
+    _validate(arr, single)
+    return _out(_reduce(arr), single)
+
+
+def conorms(bases):
+    """Conorms (n, 6) Å^2 of the Selling superbase, order (01, 02, 03, 12, 13, 23), >= 0.
+
+    Not canonical (depends on the superbase's labelling); see ``root_products``.
+    """
+    _, p, single = _superbase(bases)
+    return _out(p, single)
+
+
+def fano_conorms(bases):
+    """Fano conorm 7-vector (n, 7) Å^2, sorted ascending (smallest is 0)."""
+    _, p, single = _superbase(bases)
+    return _out(np.sort(_p7(p), axis=1), single)
+
+
+def fano_roots(bases):
+    """Root Fano 7-vector (n, 7) Å: sqrt of the Fano conorms, sorted ascending."""
+    _, p, single = _superbase(bases)
+    return _out(np.sqrt(np.sort(_p7(p), axis=1)), single)
+
+
+def _lexmin(cand, valid, tol):
+    """Row-wise lexicographic minimum with tolerance of cand (n, K, 6) over valid (n, K)."""
+    alive = valid.copy()
+    for c in range(cand.shape[2]):
+        col = np.where(alive, cand[:, :, c], np.inf)
+        m = col.min(axis=1)
+        alive &= col <= (m + tol)[:, None]
+    first = alive.argmax(axis=1)
+    return cand[np.arange(cand.shape[0]), first]
+
+
+@lru_cache(maxsize=None)
+def _fast_tables():
+    """Lookup tables of the tie-free canonical labelling.
+
+    ``adj[e]``: the 4 edges of K4 sharing one vertex with edge e;
+    ``perm[e, j]``: the 6 conorm indices of the labelling whose edge 01 is e and
+    whose edge 02 is adj[e][j] (vertex 0 = the shared vertex).
+    """
+    edge = {frozenset(pq): i for i, pq in enumerate(_PAIRS)}
+    adj = np.zeros((6, 4), np.intp)
+    perm = np.zeros((6, 4, 6), np.intp)
+    for e, (a, b) in enumerate(_PAIRS):
+        others = [v for v in range(4) if v not in (a, b)]
+        j = 0
+        for s0, s1 in ((a, b), (b, a)):
+            for s2 in others:
+                s3 = [v for v in others if v != s2][0]
+                sigma = (s0, s1, s2, s3)
+                adj[e, j] = edge[frozenset((s0, s2))]
+                perm[e, j] = [edge[frozenset((sigma[i], sigma[k]))] for i, k in _PAIRS]
+                j += 1
+    return adj, perm
+
+
+def _canonical(p6):
+    """Canonical conorm 6-vectors (n, 6) (see module docstring)."""
+    n = p6.shape[0]
+    x = _p7(p6)
+    top = x.max(axis=1)
+    tol = _LEX_TOL * top
+    out = np.empty((n, 6))
+    multi = (p6 <= (_ZERO_TOL * top)[:, None]).any(axis=1)
+    # tie-free frames: the smallest edge and its smallest neighbour fix the labelling
+    adj, perm = _fast_tables()
+    rows = np.arange(n)
+    e = p6.argmin(axis=1)
+    m1 = p6[rows, e]
+    unique = (p6 <= (m1 + tol)[:, None]).sum(axis=1) == 1
+    nb = p6[rows[:, None], adj[e]]
+    j = nb.argmin(axis=1)
+    m2 = nb[rows, j]
+    unique &= (nb <= (m2 + tol)[:, None]).sum(axis=1) == 1
+    unique &= ~multi
+    fast = np.flatnonzero(unique)
+    out[fast] = p6[fast[:, None], perm[e[fast], j[fast]]]
+    one = np.flatnonzero(~unique & ~multi)
+    if len(one):  # a single obtuse superbase with ties: the 24 index permutations
+        cand = x[one][:, _stab_perms()[:, :6]]
+        out[one] = _lexmin(cand, np.ones(cand.shape[:2], bool), tol[one])
+    many = np.flatnonzero(multi)
+    if len(many):  # several superbases: every zero moved to "*" in turn
+        zeros = x[many] <= (_ZERO_TOL * top[many])[:, None]
+        zeros[:, 6] = True
+        g = _to_star().reshape(168, 7)
+        cand = x[many][:, g[:, :6]]
+        valid = np.repeat(zeros, 24, axis=1)
+        out[many] = _lexmin(cand, valid, tol[many])
+    return out
+
+
+def root_products(bases):
+    """Canonical root products (n, 6) Å: (r01, r02, r03, r12, r13, r23).
+
+    The lexicographically smallest conorm 6-vector over all obtuse superbases
+    and all 24 index permutations (ties within 1e-9 of the largest conorm), then
+    square roots.  Same value for isometric lattices; for display and records
+    (it jumps at near ties; distances never use it).  E.g. a cube of edge a gives
+    (0, 0, a, 0, a, a).
+    """
+    _, p, single = _superbase(bases)
+    return _out(np.sqrt(_canonical(p)), single)
+
+
+# ----------------------------------------------------------------------------- distances
+
+def _check_metric(metric):
+    if metric not in ("l2", "linf"):
+        raise ValueError(f"metric must be 'l2' or 'linf', got {metric!r}")
+
+
+def _cone(x, metric):
+    """(n, 13) distance (L2 or L-inf) from 7-vectors x (n, 7), x >= 0, to each type's closure."""
+    tab = _pattern_table()
+    out = np.empty((x.shape[0], len(TYPES)))
+    for s in range(0, x.shape[0], _CHUNK):
+        xt = np.ascontiguousarray(x[s:s + _CHUNK].T)  # (7, m): rows are gathered
+        m = xt.shape[1]
+        zv, bv = xt[tab["zidx"]], xt[tab["bidx"]]
+        if metric == "l2":
+            zf = np.add.reduceat(zv * zv, tab["zstart"], axis=0)
+            mean = np.add.reduceat(bv, tab["bstart"], axis=0) / tab["bsize"][:, None]
+            dev = bv - mean[tab["bowner"]]
+            bf = np.add.reduceat(dev * dev, tab["bstart"], axis=0)
+            combine = np.add
+        else:
+            zf = np.maximum.reduceat(zv, tab["zstart"], axis=0)
+            bf = (np.maximum.reduceat(bv, tab["bstart"], axis=0)
+                  - np.minimum.reduceat(bv, tab["bstart"], axis=0)) / 2.0
+            combine = np.maximum
+        feat = np.concatenate([zf, bf], axis=0)
+        best = np.full((len(TYPES), m), np.inf)
+        for parts, first, present in tab["groups"]:
+            dk = feat[parts[:, 0]]
+            for c in range(1, parts.shape[1]):
+                combine(dk, feat[parts[:, c]], out=dk)
+            best[present] = np.minimum(best[present],
+                                       np.minimum.reduceat(dk, first, axis=0))
+        out[s:s + _CHUNK] = (np.sqrt(best) if metric == "l2" else best).T
+    return out
+
+
+def distances(bases, metric="l2"):
+    """Distance (Å) from each lattice to the closure of each type, dict ``TYPES`` -> (n,).
+
+    Pattern-cone projection of the root Fano 7-vector (module docstring), L2 or
+    L-inf ("linf").  0 for lattices of the type and of every type specialising it;
+    continuous everywhere, but Hölder-1/2 near a zero conorm (a strain eps moves
+    a zero root product by ~sqrt(eps)); compare ``deformation`` with symprec.
+    """
+    _check_metric(metric)
+    _, p, single = _superbase(bases)
+    d = _cone(np.sqrt(_p7(p)), metric)
+    return {t: _out(d[:, i], single) for i, t in enumerate(TYPES)}
+
+
+def deformation(bases, metric="l2"):
+    """Lipschitz deformation measure (Å), dict ``TYPES`` -> (n,).
+
+    Δp / ℓ: Δp (Å^2) is the pattern-cone distance of the Fano *conorm* vector
+    (same patterns and relabellings as ``distances``, metric "l2" or "linf"),
+    ℓ = sqrt(sum of the six superbase conorms / 3) Å (= a for a cube of edge a).
+    Roughly the lattice-vector displacement needed to reach the type; calibrated
+    against spglib's symprec in the module docstring.
+    """
+    _check_metric(metric)
+    _, p, single = _superbase(bases)
+    ell = np.sqrt(p.sum(axis=1) / 3.0)
+    d = _cone(_p7(p), metric) / ell[:, None]
+    return {t: _out(d[:, i], single) for i, t in enumerate(TYPES)}
+
+
+def system_distances(bases, metric="l2"):
+    """Distance (Å) to each lattice system (min over its types), dict ``SYSTEMS`` -> (n,)."""
+    d = distances(bases, metric)
+    return {s: np.minimum.reduce([np.asarray(d[t]) for t in ts]) if len(ts) > 1
+            else d[ts[0]] for s, ts in SYSTEMS.items()}
+
+
+def lattice_distance(a, b, metric="l2"):
+    """fano7 distance (Å) between lattices ``a`` and ``b``, broadcast over frames.
+
+    min over the 168 relabellings g of GL(3, 2) of |R7(a) - g R7(b)| (L2 or L-inf).
+    A pseudometric: symmetric, triangle inequality, 0 for isometric lattices;
+    continuous across zero-conorm walls.  Scalar for two single bases.
+    """
+    _check_metric(metric)
+    _, pa, sa = _superbase(a)
+    _, pb, sb = _superbase(b)
+    if pa.shape[0] != pb.shape[0] and 1 not in (pa.shape[0], pb.shape[0]):
+        raise ValueError(f"cannot broadcast {pa.shape[0]} frames against {pb.shape[0]}")
+    n = max(pa.shape[0], pb.shape[0])
+    x = np.broadcast_to(np.sqrt(_p7(pa)), (n, 7))
+    y = np.broadcast_to(np.sqrt(_p7(pb)), (n, 7))
+    g = _gl32()
+    out = np.empty(n)
+    for s in range(0, n, _CHUNK):
+        yc = y[s:s + _CHUNK][:, g]  # (m, 168, 7)
+        diff = x[s:s + _CHUNK][:, None, :] - yc
+        if metric == "l2":
+            out[s:s + _CHUNK] = np.sqrt(np.einsum("mgi,mgi->mg", diff, diff).min(axis=1))
+        else:
+            out[s:s + _CHUNK] = np.abs(diff).max(axis=2).min(axis=1)
+    return float(out[0]) if (sa and sb) else out
+
+
+def most_specific(dist, tol):
+    """Most specific type whose distance is <= ``tol`` (units of ``dist``), else ``"aP"``.
+
+    ``dist`` is a dict keyed by ``TYPES`` (scalars or (n,) arrays), as from
+    ``distances`` or ``deformation``.  Types are ranked by the order of their
+    holohedry (cubic 48 > hP 24 > tetragonal 16 > hR 12 > orthorhombic 8 >
+    monoclinic 4); within a rank the smaller distance wins.  Returns a str for
+    scalar input, else an (n,) array of str.
+    """
+    d = {k: np.asarray(dist[k], dtype=float) for k in TYPES}
+    tol = np.asarray(tol, dtype=float)
+    shape = np.broadcast_shapes(tol.shape, *(v.shape for v in d.values()))
+    out = np.full(shape, "aP", dtype="<U2")
+    for level in sorted(set(_LEVEL.values())):  # more specific levels override
+        best = np.full(shape, np.inf)
+        name = np.full(shape, "", dtype="<U2")
+        for k in (t for t in TYPES if _LEVEL[t] == level):
+            v = np.broadcast_to(d[k], shape)
+            take = (v <= tol) & (v < best)
+            best = np.where(take, v, best)
+            name = np.where(take, k, name)
+        out = np.where(name != "", name, out)
+    return str(out) if out.ndim == 0 else out

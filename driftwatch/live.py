@@ -1,0 +1,759 @@
+"""Live monitoring: an ASE optimizer observer, a follower for running VASP / pw.x jobs, the codes'
+documented soft stop, and a pass/fail check for job scripts.
+
+* :class:`SymmetryWatch` -- attach to any ASE optimizer (``opt.attach(watch, interval=n)``); it
+  records each observed step, runs the rules, rewrites the run record atomically, and, by choice,
+  only records, warns (:class:`SymmetryDriftWarning`) or stops the optimisation by raising
+  :class:`SymmetryCollapse` when a chosen flag fires.
+* :func:`follow` -- follow a growing pw.x / VASP output (or any format the adapters read): one line
+  per *completed* ionic step, ending at the code's end marker or after ``idle`` seconds without
+  growth; optionally requests the code's soft stop when a chosen flag fires.
+* :func:`request_stop` -- VASP: ``STOPCAR`` with ``LSTOP = .TRUE.`` in the run folder; pw.x:
+  ``<prefix>.EXIT`` in its ``outdir``. Never kills a process; writes only inside the run folder.
+* :func:`check_run` -- ``(passed, record)`` for a finished run, for job scripts and workflow tools.
+
+The live record is the same record :func:`driftwatch.track.analyze` builds (schema
+``driftwatch/run-1``), plus a ``live`` section (how following ended, the soft stop requested, the
+flags that fired). A flag is a diagnostic that asks for a look, not a proof that a structure is
+(un)stable or that a phase is real: stopping on one is the user's call.
+"""
+
+from __future__ import annotations
+
+import re
+import sys
+import time
+import warnings
+from pathlib import Path
+
+from . import __version__, config as _config, geometry, records, rules, symmetry, track
+from .adapters import ReadContext, iter_frames
+from .adapters._io import tail_bytes
+from .adapters.run import Frame, collect, frame_from_atoms
+from .errors import ConfigError, DriftwatchError, GeometryError, InputError, OutputError
+
+__all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker", "follow",
+           "request_stop", "check_run", "qe_stop_settings", "code_of_format", "END_MARKERS",
+           "SPECTRUM_FLAGS"]
+
+#: Flags whose rules read spglib spectra of the newest frame (the others use invariants only).
+SPECTRUM_FLAGS = frozenset({"tolerance-sensitive", "spglib-overcall", "atoms-break-lattice",
+                            "atoms-settled", "code-imposed"})
+
+#: Text the codes print once, when a run ends (searched in the last 8 kB of the output).
+#: pw.x: ``JOB DONE.`` (also printed after a soft stop) and its error banner; VASP: the timing block
+#: at the end of OUTCAR, the closing tag of vasprun.xml.
+END_MARKERS = {
+    "espresso-out": ((re.compile(rb"JOB DONE\."), "JOB DONE."),
+                     (re.compile(rb"Error in routine[\s\S]*stopping \.\.\."), "pw.x error banner")),
+    "vasp-out": ((re.compile(rb"General timing and accounting"), "General timing and accounting"),),
+    "vasp-xml": ((re.compile(rb"</modeling>"), "</modeling>"),),
+}
+
+
+class SymmetryDriftWarning(UserWarning):
+    """Issued by :class:`SymmetryWatch` in mode ``"warn"``, once per newly fired flag.
+
+    ``.flag`` holds the flag dict (``code``, ``level``, ``frame``, ``step``, ``type``, ``message``).
+    """
+
+    def __init__(self, message, flag=None):
+        super().__init__(message)
+        self.flag = flag
+
+
+class SymmetryCollapse(DriftwatchError, RuntimeError):
+    """Raised by :class:`SymmetryWatch` in mode ``"stop"`` from inside the optimizer's observer call.
+
+    ``.record`` is the run record at that step (already written to the watch's ``output``);
+    ``.flags`` the flags that fired.
+    """
+
+    def __init__(self, record: dict, flags: list[dict]):
+        self.record = record
+        self.flags = list(flags)
+        f = self.flags[0]
+        more = f" (+{len(self.flags) - 1} more)" if len(self.flags) > 1 else ""
+        super().__init__(f"{f['code']} at step {f['step']}: {f['message']}{more}")
+
+
+# ---------------------------------------------------------------- helpers
+def _codes(codes, what="stop_on") -> list[str]:
+    """Flag codes or levels from a comma-separated string or an iterable; unknown ones raise."""
+    if codes is None:
+        return []
+    if isinstance(codes, str):
+        codes = codes.split(",")
+    out = [str(c).strip() for c in codes if str(c).strip()]
+    bad = [c for c in out if c not in rules.FLAGS and c not in ("info", "warning")]
+    if bad:
+        raise ConfigError(f"{what}: unknown flag code(s) {', '.join(bad)} "
+                          f"(codes: {', '.join(rules.FLAGS)}; levels: info, warning)")
+    return out
+
+
+def _needs_spectra(codes) -> bool:
+    """True when a watched code (or level) can only fire with spglib run on the newest frame."""
+    return any(c in SPECTRUM_FLAGS or any(rules.FLAGS[s] == c for s in SPECTRUM_FLAGS)
+               for c in codes)
+
+
+def _key(flag) -> tuple:
+    return flag["code"], flag["type"]
+
+
+def code_of_format(fmt: str | None) -> str | None:
+    """``"espresso"`` for pw.x outputs, ``"vasp"`` for VASP ones, None for formats with no soft stop."""
+    if fmt == "espresso-out":
+        return "espresso"
+    if fmt and fmt.startswith("vasp"):
+        return "vasp"
+    return None
+
+
+def _same_frame(a: Frame, b: Frame) -> bool:
+    import numpy as np
+    return (a.step == b.step and a.energy == b.energy and np.array_equal(a.cell, b.cell)
+            and np.array_equal(a.positions, b.positions))
+
+
+# ---------------------------------------------------------------- incremental record
+class Tracker:
+    """The record of a growing run: invariants on every frame, spglib spectra cached per frame.
+
+    ``record(newest=True)`` equals :func:`driftwatch.track.analyze` of the frames so far (same
+    frames, flags and summary): spglib runs on the frames :func:`driftwatch.track.select_frames`
+    picks, and each spectrum is computed once and reused while its frame stays the same.
+    ``newest=False`` skips the newest frame's spectrum (it is picked by ``select_frames`` only
+    because it is last); the flags in :data:`SPECTRUM_FLAGS` then wait for the next record.
+
+    Args:
+        config: preset name, YAML path, mapping or loaded config.
+        source, format, run_dir: what the record's ``run`` section names.
+        layer: None decides from the cell (:func:`driftwatch.geometry.classify`); True requires a
+            layer (``GeometryError`` otherwise); False analyses the 3D cell even of a slab.
+    """
+
+    def __init__(self, config=None, *, source="<live>", format="live", run_dir=None, layer=None):
+        self.cfg = _config.coerce(config)
+        self.source, self.format = str(source), format
+        self.run_dir = None if run_dir is None else str(run_dir)
+        self.layer = layer
+        self.frames: list[Frame] = []
+        self.warnings: list[str] = []
+        self.code_settings: dict = {}
+        self.title: str | None = None
+        self._spectra: dict[int, dict] = {}
+        self._spectra_for = None
+        self._grid = track.symprec_grid(self.cfg)
+
+    def __len__(self) -> int:
+        return len(self.frames)
+
+    def append(self, frame: Frame) -> None:
+        self.frames.append(frame)
+
+    def replace(self, frames) -> int:
+        """Set all frames read so far; returns how many leading frames were unchanged.
+
+        A frame that differs from the one held before (a rewritten or restarted output) drops the
+        cached spectra from there on.
+        """
+        frames = list(frames)
+        k = 0
+        for old, new in zip(self.frames, frames):
+            if not _same_frame(old, new):
+                break
+            k += 1
+        if k < len(self.frames):
+            self._spectra = {i: s for i, s in self._spectra.items() if i < k}
+        self.frames = frames
+        return k
+
+    def _geometry(self, run):
+        cfg = self.cfg
+        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+        if (cfg["geometry"]["require_layer"] or self.layer is True) and geo.dimension != 2:
+            raise GeometryError(f"{self.source}: not a layer ({geo.reason}); a layer was required")
+        if self.layer is False and geo.dimension == 2:
+            geo = geometry.Geometry(3, None, None, f"{geo.reason}; analysed as bulk (layer=False)")
+        return geo
+
+    def record(self, *, newest: bool = True) -> dict:
+        """The run record of the frames so far (see the class docstring)."""
+        if not self.frames:
+            raise InputError(self.source, "no completed ionic step yet")
+        t0 = time.perf_counter()
+        cfg = self.cfg
+        ctx = ReadContext(self.source)
+        ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
+        run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
+        geo = self._geometry(run)
+        table = track.lattice_table(run, geo, cfg["lattice"]["metric"])
+        entries = track._frame_entries(run, table)
+        t1 = time.perf_counter()
+        n = len(entries)
+        chosen = track.select_frames(table["deformation"], cfg["selection"])
+        if not newest and n > 1:
+            chosen = [i for i in chosen if i < n - 1]
+        if self._spectra_for != (geo.dimension, geo.vacuum_axis):
+            self._spectra, self._spectra_for = {}, (geo.dimension, geo.vacuum_axis)
+        computed = 0
+        for i in chosen:
+            if i not in self._spectra:
+                self._spectra[i] = track._symmetry_entry(run, i, geo, cfg, self._grid)
+                computed += 1
+            entries[i]["symmetry"] = self._spectra[i]
+        t2 = time.perf_counter()
+        record = records.new_record(run, geo, cfg, entries, fixed_cell=track._fixed_cell(run.cells),
+                                    versions={"driftwatch": __version__, **symmetry.versions()})
+        record["flags"] = rules.evaluate(record, cfg)
+        record["summary"] = rules.summarize(record, cfg)
+        record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
+                            "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen),
+                            "spglib_frames_computed": computed}
+        return record
+
+
+# ---------------------------------------------------------------- ASE observer
+class SymmetryWatch:
+    """ASE optimizer observer: per-step invariants, rules, and the run record as the run goes.
+
+    Usage::
+
+        watch = SymmetryWatch(atoms, mode="stop", stop_on=("snapped",), output="record.json")
+        opt = BFGS(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), trajectory="relax.traj")
+        opt.attach(watch, interval=1)          # or interval=n, optimizer=opt (see below)
+        try:
+            opt.run(fmax=0.01)
+        except SymmetryCollapse as exc:
+            print(exc, exc.record["summary"]["verdict"])
+
+    Give the *real* ``Atoms`` (not the filter): with a filter the optimizer's ``atoms`` is the filter
+    (a filter passed here is unwrapped to its ``.atoms``). ASE calls observers with no arguments
+    (step 0 = the starting structure, then every ``interval`` steps); frames are numbered by call
+    unless the optimizer is known: pass ``optimizer=opt`` here or through
+    ``opt.attach(watch, interval=n, optimizer=opt)`` to number them by ``opt.nsteps``.
+
+    Modes (what happens when a flag matching ``stop_on`` -- codes or the levels ``info``/``warning``
+    -- fires for the first time):
+
+    * ``"record"``: nothing besides ``watch.fired`` and the record;
+    * ``"warn"``: ``warnings.warn(SymmetryDriftWarning(...))``, once per new flag;
+    * ``"stop"``: raise :class:`SymmetryCollapse` (carrying ``.record`` and ``.flags``) from inside
+      the observer call. ASE does not catch it, so it propagates out of ``opt.run()`` /
+      ``opt.irun()``: ``run()`` returns nothing, ``opt.nsteps`` is the step that fired, the
+      trajectory already holds that step (ASE's writer runs before later-attached observers),
+      the atoms keep that step's structure, and ``output`` holds the record up to that step.
+
+    A softer stop needs no exception: use mode ``"record"`` and drive the generator yourself::
+
+        for converged in opt.irun(fmax=0.01):
+            if watch.fired:
+                break
+
+    ``watch.record`` is the current record (same content as :func:`driftwatch.track.analyze` of
+    the observed steps: spglib runs on the frames it would choose, which always includes the newest,
+    each spectrum computed once); ``output`` is rewritten atomically on every call (rank 0 only
+    under MPI; every rank computes, so every rank raises together). An analysis error
+    (e.g. a molecule, which is neither layer nor bulk) never stops the relaxation: it is issued once
+    as a ``RuntimeWarning`` and kept in ``watch.error``.
+    """
+
+    MODES = ("record", "warn", "stop")
+
+    def __init__(self, atoms, *, config=None, mode="record", stop_on=("snapped",), output=None,
+                 layer=None, optimizer=None):
+        if mode not in self.MODES:
+            raise ConfigError(f"mode: must be one of {', '.join(self.MODES)}, got {mode!r}")
+        inner = getattr(atoms, "atoms", None)
+        if inner is not None and hasattr(inner, "cell") and not hasattr(atoms, "cell"):
+            atoms = inner                      # an ASE filter: watch the real Atoms
+        if not hasattr(atoms, "cell") or not hasattr(atoms, "positions"):
+            raise TypeError(f"SymmetryWatch needs an ase.Atoms, got {type(atoms).__name__}")
+        self.atoms = atoms
+        self.mode = mode
+        self.stop_on = _codes(stop_on)
+        self.output = None if output is None else Path(output)
+        self.optimizer = optimizer
+        self.fired: list[dict] = []
+        self.record: dict | None = None
+        self.error: DriftwatchError | None = None
+        self._seen: set = set()
+        self._calls = 0
+        self._tracker = Tracker(config, source=f"ase-observer:{atoms.get_chemical_formula()}",
+                                format="ase-observer", layer=layer)
+
+    def __call__(self, optimizer=None):
+        opt = optimizer if optimizer is not None else self.optimizer
+        step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
+        self._calls += 1
+        self._tracker.append(frame_from_atoms(self.atoms, step))
+        try:
+            rec = self._tracker.record(newest=True)
+        except DriftwatchError as exc:
+            if self.error is None:
+                warnings.warn(f"driftwatch: cannot analyse the relaxation ({exc}); it continues "
+                              f"unwatched", RuntimeWarning, stacklevel=2)
+            self.error = exc
+            return
+        new = [f for f in rules.gate(rec["flags"], self.stop_on) if _key(f) not in self._seen]
+        self._seen.update(_key(f) for f in new)
+        self.fired.extend(new)
+        rec["live"] = {"observer": {"mode": self.mode, "stop_on": self.stop_on,
+                                    "calls": self._calls},
+                       "fired": [dict(f) for f in self.fired]}
+        self.record = rec
+        if self.output is not None and _rank() == 0:
+            records.write_json(rec, self.output)
+        if not new:
+            return
+        if self.mode == "warn":
+            for f in new:
+                warnings.warn(SymmetryDriftWarning(
+                    f"driftwatch: {f['code']} at step {f['step']}: {f['message']}", f), stacklevel=2)
+        elif self.mode == "stop":
+            raise SymmetryCollapse(rec, new)
+
+
+def _rank() -> int:
+    try:
+        from ase.parallel import world
+        return int(world.rank)
+    except Exception:  # no ase.parallel: serial
+        return 0
+
+
+# ---------------------------------------------------------------- soft stop
+_NAMELIST_VALUE = r"(?im)^[^!\n]*?\b{key}\s*=\s*(['\"])(.*?)\1"
+_SAVE_DIR = re.compile(rb"Writing output data file (\S*?)([^/\s]+)\.save/?\s*$", re.M)
+
+
+def _pw_inputs(run_dir: Path) -> list[Path]:
+    seen, out = set(), []
+    for pat in ("pw.in", "*.pwi", "*.in", "*.inp"):
+        for p in sorted(run_dir.glob(pat)):
+            if p in seen or not p.is_file():
+                continue
+            seen.add(p)
+            try:
+                head = p.read_bytes()[:50_000].lower()
+            except OSError:
+                continue
+            if b"&control" in head:
+                out.append(p)
+    return out
+
+
+def _control_values(text: str) -> dict:
+    m = re.search(r"(?is)&control\b(.*?)^\s*/\s*$", text, re.M)
+    block = m.group(1) if m else ""
+    got = {}
+    for key in ("prefix", "outdir"):
+        v = re.search(_NAMELIST_VALUE.format(key=key), block)
+        if v:
+            got[key] = v.group(2).strip()
+    return got
+
+
+def qe_stop_settings(run_dir, prefix=None, outdir=None) -> dict:
+    """``{"prefix", "outdir", "from"}`` of a pw.x run folder, for the ``<prefix>.EXIT`` file.
+
+    Explicit arguments win; then ``&CONTROL`` of the folder's pw.x input (``pw.in``, ``*.pwi``,
+    ``*.in``, ``*.inp`` holding ``&control``); then the output's ``Writing output data file
+    OUTDIR/PREFIX.save/`` line; then pw.x's defaults ``pwscf`` and ``./``.
+    """
+    run_dir = Path(run_dir)
+    found: dict = {}
+    where = "pw.x defaults"
+    if prefix is None or outdir is None:
+        sets = {}
+        for p in _pw_inputs(run_dir):
+            vals = _control_values(p.read_text(encoding="utf-8", errors="replace"))
+            sets[p.name] = (vals.get("prefix", "pwscf"), vals.get("outdir", "./"))
+        if len(set(sets.values())) > 1:
+            raise OutputError(f"{run_dir}: several pw.x inputs with different prefix/outdir "
+                              f"({', '.join(sets)}); pass prefix= and outdir=")
+        if sets:
+            name, (pf, od) = next(iter(sets.items()))
+            found, where = {"prefix": pf, "outdir": od}, name
+        else:
+            for out in sorted(run_dir.glob("*.out")) + sorted(run_dir.glob("*.pwo")):
+                m = None
+                for m in _SAVE_DIR.finditer(tail_bytes(out, 200_000)):
+                    pass
+                if m:
+                    od = m.group(1).decode(errors="replace").rstrip("/") or "."
+                    found, where = {"prefix": m.group(2).decode(errors="replace"), "outdir": od}, \
+                        out.name
+                    break
+    return {"prefix": prefix if prefix is not None else found.get("prefix", "pwscf"),
+            "outdir": outdir if outdir is not None else found.get("outdir", "./"),
+            "from": "arguments" if prefix is not None and outdir is not None else where}
+
+
+def _inside(path: Path, folder: Path) -> bool:
+    try:
+        path.relative_to(folder)
+        return True
+    except ValueError:
+        return False
+
+
+def request_stop(run_dir, code, *, reason, dry_run=False, prefix=None, outdir=None) -> dict:
+    """Ask a running VASP or pw.x job to stop cleanly, through the code's documented file.
+
+    * VASP (``code="vasp"``): ``STOPCAR`` in ``run_dir`` with ``LSTOP = .TRUE.`` (stop after the
+      current ionic step, writing the usual outputs) and a ``#`` comment line stating why.
+    * pw.x (``code="espresso"`` or ``"qe"``): ``<prefix>.EXIT`` in the run's ``outdir`` (read from
+      the folder's pw.x input, see :func:`qe_stop_settings`), holding the reason. pw.x 6.7 checks
+      for it at each SCF iteration, stops, writes its data and deletes the file.
+
+    Never kills a process. Writes atomically, only inside ``run_dir`` (paths resolved, symlinks
+    followed): an ``outdir`` outside it raises ``OutputError`` (pw.x 6.7 also reads the file from
+    its working directory: pass ``outdir="."`` to write it there). An existing stop file is left
+    as it is (``action: "exists"``). ``dry_run`` writes nothing and returns what it would write.
+
+    Returns:
+        ``{"action": "wrote" | "dry-run" | "exists", "path", "text", "code", "reason"}``.
+    """
+    folder = Path(run_dir).resolve()
+    if not folder.is_dir():
+        raise OutputError(f"{run_dir}: not a run folder (no such directory)")
+    name = str(code).lower()
+    why = " ".join(str(reason).split()) or "no reason given"
+    if name == "vasp":
+        target = folder / "STOPCAR"
+        text = f"LSTOP = .TRUE.\n# driftwatch soft stop: {why}\n"
+    elif name in ("espresso", "qe", "pw.x", "pwscf", "quantum-espresso"):
+        name = "espresso"
+        s = qe_stop_settings(folder, prefix, outdir)
+        if not re.fullmatch(r"[\w.+-]+", s["prefix"]) or s["prefix"] in (".", ".."):
+            raise OutputError(f"{folder}: pw.x prefix {s['prefix']!r} is not a plain file name")
+        target = (folder / s["outdir"] / f"{s['prefix']}.EXIT")
+        text = f"driftwatch soft stop: {why}\n"
+    else:
+        raise ConfigError(f"code: no soft stop for {code!r} (known: vasp, espresso)")
+    resolved = target.resolve()
+    if not _inside(resolved, folder):
+        raise OutputError(f"{folder}: the stop file would be {resolved}, outside the run folder "
+                          f"(pw.x 6.7 also reads <prefix>.EXIT from its working directory: "
+                          f"pass outdir='.' to write it there)")
+    out = {"action": "dry-run", "path": str(resolved), "text": text, "code": name, "reason": why}
+    if resolved.exists():
+        out["action"] = "exists"
+        return out
+    if dry_run:
+        return out
+    records.write_text_atomic(resolved, text)
+    out["action"] = "wrote"
+    return out
+
+
+# ---------------------------------------------------------------- follower
+def _end_marker(source, fmt) -> str | None:
+    markers = END_MARKERS.get(fmt)
+    if not markers or not source or not Path(source).is_file():
+        return None
+    tail = tail_bytes(source, 8192)
+    for pattern, label in markers:
+        if pattern.search(tail):
+            return label
+    return None
+
+
+def _signature(path: Path):
+    try:
+        st = path.stat()
+    except OSError:
+        return None
+    return st.st_size, st.st_mtime_ns
+
+
+def _read(path, format):
+    """(frames, ctx, error): every completed step readable now, or the InputError why not."""
+    ctx = ReadContext(path)
+    try:
+        return list(iter_frames(path, format, context=ctx)), ctx, None
+    except InputError as exc:
+        return [], ctx, exc
+
+
+def _fmt(x, spec=".3g"):
+    return "-" if x is None else format(x, spec)
+
+
+def _step_line(f: dict, dim: int, within: float) -> str:
+    """``step  energy  at TYPE  nearest T1 d1, T2 d2  [sign  chiral]`` for one frame entry."""
+    dfm = {t: v for t, v in f["deformation"].items() if t != "mirror"}
+    at = [t for t, v in dfm.items() if v <= within]
+    at_type = max(at, key=lambda t: rules.ORDER[t]) if at else ("mp" if dim == 2 else "aP")
+    near = sorted((t for t in dfm if dfm[t] > within), key=lambda t: dfm[t])[:2]
+    nearest = ", ".join(f"{t} {dfm[t]:.3g}" for t in near) or "-"
+    line = (f"step {f['step']:>4}  E {_fmt(f['energy'], '.6f'):>14} eV  at {at_type:<2}  "
+            f"nearest {nearest} Å")
+    if dim == 2:
+        sign = f"{f['sign']:+d}" if f["sign"] else " 0"
+        line += f"  sign {sign}  chiral {f['chiral_distance']:+.3g} Å"
+    return line
+
+
+def _flag_text(f: dict) -> str:
+    return f"{f['code']}" + (f"({f['type']})" if f["type"] else "")
+
+
+class _Printer:
+    def __init__(self, stream, quiet):
+        self.stream, self.quiet = stream, quiet
+
+    def __call__(self, text: str) -> None:
+        if not self.quiet:
+            self.stream.write(text + "\n")
+            self.stream.flush()
+
+
+def follow(path, *, config=None, format=None, stop_on=(), dry_run=False, idle=300.0, poll=2.0,
+           output=None, quiet=False, stream=None, prefix=None, outdir=None) -> dict:
+    """Follow a running job's output until it ends; return the final run record.
+
+    Prints one line per completed ionic step (step, energy in eV, the most specific Bravais type the
+    lattice is at, the two nearest types it is not at with their deformation in Å, and for layers
+    the sign and signed chiral deformation), then the flags new at that step. Only completed steps
+    are read (the adapters never yield a step still being written). Ends at the code's end marker
+    (:data:`END_MARKERS`: pw.x ``JOB DONE.``, VASP OUTCAR's timing block), or after ``idle`` seconds
+    without growth; while no step is complete it waits (``idle`` bounds that too).
+
+    Args:
+        path: output file or run folder (re-resolved while the job writes).
+        config: preset, YAML path, mapping or loaded config.
+        format: adapter name, overriding detection.
+        stop_on: flag codes or levels; when one fires, request the code's soft stop once
+            (:func:`request_stop`; VASP and pw.x runs only). The job then stops by itself.
+        dry_run: say what the soft stop would write, write nothing.
+        idle: seconds without growth after which following ends.
+        poll: seconds between checks.
+        output: record path, rewritten atomically after each new step and at the end.
+        quiet: print nothing.
+        stream: where lines go (default ``sys.stdout``).
+        prefix, outdir: pw.x settings for the ``.EXIT`` file when the input is not in the folder.
+
+    Returns:
+        The final record (``track.analyze`` content of all completed steps) with a ``live``
+        section: ``ended`` (why following stopped), ``stop`` (the soft-stop request or None),
+        ``stop_on``, ``dry_run``, ``fired`` (the ``stop_on`` flags that fired).
+
+    Raises:
+        InputError: no completed step appeared within ``idle`` seconds (names the last problem), or
+            ``stop_on`` was given for a format with no soft stop.
+    """
+    f = _Follower(path, _config.coerce(config), format, _codes(stop_on), dry_run, output,
+                  _Printer(sys.stdout if stream is None else stream, quiet), prefix, outdir)
+    try:
+        return f.run(idle, poll)
+    except KeyboardInterrupt:
+        if f.tracker is not None and len(f.tracker):
+            f.ended = "interrupted"
+            f.finish()
+        raise
+
+
+class _Follower:
+    """State of one :func:`follow` call."""
+
+    def __init__(self, path, cfg, format, stop_codes, dry_run, output, say, prefix, outdir):
+        self.path, self.cfg, self.format = Path(path), cfg, format
+        self.stop_codes, self.dry_run, self.say = stop_codes, dry_run, say
+        self.output = None if output is None else Path(output)
+        self.prefix, self.outdir = prefix, outdir
+        self.newest = _needs_spectra(stop_codes)
+        self.tracker: Tracker | None = None
+        self.source: Path | None = None          # the output file, once known
+        self.printed = 0
+        self.seen: set = set()
+        self.fired: list[dict] = []
+        self.stop_info = None
+        self.ended = None
+        self.error = None
+
+    def live_section(self) -> dict:
+        return {"following": str(self.path), "ended": self.ended, "stop_on": self.stop_codes,
+                "dry_run": self.dry_run, "stop": self.stop_info,
+                "fired": [dict(x) for x in self.fired]}
+
+    def run(self, idle: float, poll: float) -> dict:
+        last_sig, last_growth, waited = None, time.monotonic(), False
+        while True:
+            now = time.monotonic()
+            sig = _signature(self.source or self.path)
+            changed = sig != last_sig
+            if changed:
+                last_sig, last_growth = sig, now
+            if changed or self.tracker is None:
+                # the end marker is looked for *before* reading: every step written before it is read
+                end = _end_marker(self.source, self.tracker.format) if self.tracker else None
+                if not self.read(ended=bool(end)) and not waited:
+                    self.say(f"driftwatch: waiting for a completed ionic step in {self.path} "
+                             f"({self.error})")
+                    waited = True
+                if self.tracker is not None and (end or _end_marker(self.source, self.tracker.format)):
+                    self.ended = f"end marker: {end or _end_marker(self.source, self.tracker.format)}"
+                    return self.finish()
+            elif now - last_growth > idle:
+                if self.tracker is None:
+                    raise InputError(self.path, f"no completed ionic step after {idle:g} s without "
+                                                f"growth ({self.error or 'nothing to read'})")
+                self.ended = f"idle: no growth for {idle:g} s"
+                return self.finish()
+            time.sleep(poll)
+
+    def read(self, ended: bool = False) -> bool:
+        """Re-read the completed steps; print, check and write what is new. False: none yet.
+
+        ``ended``: the end marker was already there, so no soft stop is requested (a stop file
+        left for a finished job would stop its restart at once).
+        """
+        frames, ctx, self.error = _read(self.path, self.format)
+        if Path(ctx.path).is_file():
+            self.source = Path(ctx.path)
+        if not frames:
+            return False
+        if self.tracker is None:
+            self.tracker = self._start(ctx)
+        self.source = Path(ctx.path)
+        t = self.tracker
+        t.source, t.warnings, t.code_settings, t.title = ctx.path, list(ctx.warnings), \
+            dict(ctx.settings), ctx.title
+        k = t.replace(frames)
+        if k < self.printed:
+            self.say(f"driftwatch: {ctx.path} was rewritten; re-reading from frame {k}")
+            self.printed = k
+        if len(frames) <= self.printed:
+            return True
+        rec = t.record(newest=self.newest)
+        if self.printed == 0:
+            self.say(_header(rec))
+        self.report(rec)
+        hits = rules.gate(rec["flags"], self.stop_codes)
+        for fl in hits:
+            if _key(fl) not in {_key(x) for x in self.fired}:
+                self.fired.append(fl)
+        if hits and self.stop_info is None and not ended:
+            self.stop_info = _soft_stop(t, hits[0], self.dry_run, self.prefix, self.outdir, self.say)
+        if self.output is not None:
+            rec["live"] = self.live_section()
+            records.write_json(rec, self.output)
+        return True
+
+    def report(self, rec: dict) -> None:
+        new = [fl for fl in rec["flags"] if _key(fl) not in self.seen]
+        self.seen.update(_key(fl) for fl in new)
+        _print_steps(self.say, rec, self.printed, new, self.cfg)
+        self.printed = len(rec["frames"])
+
+    def _start(self, ctx) -> Tracker:
+        from .adapters import detect
+        fmt = self.format or detect(self.path)
+        run_dir = self.path if self.path.is_dir() else Path(ctx.path).parent
+        if self.stop_codes and code_of_format(fmt) is None:
+            raise InputError(ctx.path, f"cannot soft-stop a {fmt!r} run: the soft stop exists for "
+                                       f"VASP (STOPCAR) and pw.x (<prefix>.EXIT) outputs")
+        return Tracker(self.cfg, source=ctx.path, format=fmt, run_dir=run_dir)
+
+    def finish(self) -> dict:
+        frames, ctx, _ = _read(self.path, self.format)          # everything up to the end
+        t = self.tracker
+        if frames:
+            t.replace(frames)
+            t.source, t.warnings, t.code_settings = ctx.path, list(ctx.warnings), dict(ctx.settings)
+        final = t.record(newest=True)
+        self.report(final)
+        for fl in rules.gate(final["flags"], self.stop_codes):
+            if _key(fl) not in {_key(x) for x in self.fired}:
+                self.fired.append(fl)
+        if self.ended.startswith("end marker") and self.stop_info:
+            self._tidy_stop_file()
+        final["live"] = self.live_section()
+        if self.output is not None:
+            records.write_json(final, self.output)
+        self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps, verdict "
+                 f"{final['summary']['verdict']}"
+                 + (f"; record {self.output}" if self.output is not None else ""))
+        return final
+
+
+    def _tidy_stop_file(self) -> None:
+        """After the job ended: remove our own stop file if the code left it (pw.x deletes the
+        ``.EXIT`` file it acts on; VASP does not always delete STOPCAR), so a restart in this folder
+        does not stop at once. A file whose content is not ours is left alone."""
+        info = self.stop_info
+        p = Path(info["path"])
+        info["left_by_code"] = False
+        if info["action"] != "wrote" or not p.is_file():
+            return
+        try:
+            if p.read_text(encoding="utf-8") == info["text"]:
+                p.unlink()
+                info["left_by_code"] = True
+                self.say(f"driftwatch: the job ended and left {p}; removed it so a restart here "
+                         f"does not stop at once")
+        except OSError:
+            pass
+
+
+def _header(rec: dict) -> str:
+    g = rec["geometry"]
+    kind = "layer, 2D lattice" if g["dimension"] == 2 else "bulk, 3D lattice"
+    return (f"driftwatch: following {rec['run']['source']} ({rec['run']['format']}; {kind}); "
+            f"deformations are Å of lattice-vector change")
+
+
+def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:
+    frames, dim = rec["frames"], rec["geometry"]["dimension"]
+    within = cfg["rules"]["snapped"]["within"]
+    last = len(frames) - 1
+    by_frame: dict[int, list] = {}
+    for f in new:
+        at = f["frame"] if start <= f["frame"] <= last else last
+        by_frame.setdefault(at, []).append(f)
+    for i in range(start, len(frames)):
+        line = _step_line(frames[i], dim, within)
+        if i in by_frame:
+            line += "  new: " + " ".join(_flag_text(f) for f in by_frame[i])
+        say(line)
+        for f in by_frame.get(i, ()):
+            say(f"  flag [{f['level']}] {f['code']} (step {f['step']}): {f['message']}")
+    if start > last and new:           # flags that appeared without a new step (end of run)
+        for f in new:
+            say(f"  flag [{f['level']}] {f['code']} (step {f['step']}): {f['message']}")
+
+
+def _soft_stop(tracker: Tracker, flag: dict, dry_run, prefix, outdir, say) -> dict:
+    code = code_of_format(tracker.format)
+    reason = (f"flag {_flag_text(flag)} fired at ionic step {flag['step']} of "
+              f"{Path(tracker.source).name}: {flag['message']}")
+    info = request_stop(tracker.run_dir, code, reason=reason, dry_run=dry_run, prefix=prefix,
+                        outdir=outdir)
+    info["flag"] = dict(flag)
+    verb = {"wrote": "soft stop requested: wrote", "dry-run": "dry run: would write",
+            "exists": "soft stop already requested:"}[info["action"]]
+    say(f"driftwatch: {verb} {info['path']} ({reason})")
+    return info
+
+
+# ---------------------------------------------------------------- job scripts
+def check_run(path, *, config=None, fail_on=("snapped",), format=None) -> tuple[bool, dict]:
+    """Pass/fail verdict of a finished run (file or run folder) and its record.
+
+    ``passed`` is False when a flag listed in ``fail_on`` (codes, or the levels ``info`` /
+    ``warning``) fired. For job scripts and workflow managers, after a relaxation::
+
+        ok, record = check_run("relax/", fail_on=("snapped", "handedness-flip"))
+        if not ok:
+            sys.exit(3)
+
+    A pass is not a proof of stability: it only says none of the chosen diagnostics fired.
+    Raises ``InputError`` when the run cannot be read.
+    """
+    codes = _codes(fail_on, "fail_on")
+    record = track.analyze(path, _config.coerce(config), format=format)
+    return not rules.gate(record["flags"], codes), record

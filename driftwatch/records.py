@@ -1,0 +1,184 @@
+"""The run record (JSON, schema ``driftwatch/run-1``), its CSV row and its ase.db row.
+
+The record is documented field by field in ``docs/record.md``. Writers are atomic: a temporary file in
+the destination folder, flushed and fsynced, then renamed over the target, so a killed process leaves
+either the old file or the new one, never a torn one.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["SCHEMA", "new_record", "write_json", "read_json", "write_text_atomic", "dumps",
+           "csv_row", "CSV_COLUMNS", "db_key_values", "safe_name"]
+
+SCHEMA = "driftwatch/run-1"
+
+
+def _default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, Path):
+        return str(obj)
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def _finite(obj):
+    """Replace NaN/inf by None so the JSON is standard (no bare NaN tokens)."""
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite(v) for v in obj]
+    return obj
+
+
+def dumps(record: dict, indent: int | None = 1) -> str:
+    """Standard JSON text of a record (numpy scalars converted, non-finite numbers as null)."""
+    return json.dumps(_finite(json.loads(json.dumps(record, default=_default))), indent=indent,
+                      allow_nan=False)
+
+
+def write_text_atomic(path, text: str) -> Path:
+    """Write ``text`` to ``path`` atomically (temp file in the same folder, fsync, rename)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return path
+
+
+def write_json(record: dict, path) -> Path:
+    """Write a record as JSON, atomically."""
+    return write_text_atomic(path, dumps(record) + "\n")
+
+
+def read_json(path) -> dict:
+    """Read a record; raises ValueError naming the file for non-records."""
+    with open(path, encoding="utf-8") as fh:
+        data = json.load(fh)
+    if not isinstance(data, dict) or not str(data.get("schema", "")).startswith("driftwatch/run-"):
+        raise ValueError(f"{path}: not a driftwatch run record (no 'schema: driftwatch/run-N')")
+    return data
+
+
+def safe_name(text: str, limit: int = 120) -> str:
+    """A file-name-safe token from a run id (no separators, no '..', no leading dot)."""
+    out = "".join(c if c.isalnum() or c in "-_.+=" else "_" for c in str(text))
+    out = out.replace("..", "_").lstrip(".") or "run"
+    return out[:limit]
+
+
+def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, versions: dict) -> dict:
+    """Assemble a record from a run, its geometry, the effective config and per-frame entries."""
+    from collections import Counter
+
+    from ase.data import chemical_symbols
+    counts = Counter(int(z) for z in run.numbers)
+    formula = "".join(f"{chemical_symbols[z]}{n if n > 1 else ''}" for z, n in sorted(counts.items()))
+    return {
+        "schema": SCHEMA,
+        "run": {
+            "source": str(run.source),
+            "run_dir": run.run_dir,
+            "format": run.format,
+            "title": run.title,
+            "n_frames": int(len(run.cells)),
+            "n_atoms": int(len(run.numbers)),
+            "formula": formula,
+            "code_settings": dict(run.code_settings),
+            "warnings": list(run.warnings),
+            "fixed_cell": fixed_cell,
+        },
+        "geometry": {
+            "dimension": int(geo.dimension),
+            "vacuum_axis": None if geo.vacuum_axis is None else int(geo.vacuum_axis),
+            "viewing_side": None if geo.viewing_side is None else [float(x) for x in geo.viewing_side],
+            "reason": geo.reason,
+        },
+        "config": {k: v for k, v in cfg.items() if not k.startswith("_")},
+        "versions": versions,
+        "frames": frames,
+    }
+
+
+CSV_COLUMNS = ("run", "source", "format", "dimension", "n_frames", "n_atoms", "formula",
+               "fixed_cell", "initial_type", "final_type", "nearest_type", "final_distance_A",
+               "final_deformation_A", "verdict", "flags", "recommended_symprec_A",
+               "final_group_at_1e-3", "warnings", "error")
+
+
+def csv_row(record: dict, run_id: str = "") -> dict:
+    """One CSV row (dict keyed by CSV_COLUMNS) of a record, or of a failed run ``{"error": ...}``."""
+    if "error" in record and "summary" not in record:
+        return {c: "" for c in CSV_COLUMNS} | {"run": run_id, "source": record.get("source", ""),
+                                                "verdict": "failed", "error": record["error"]}
+    s, r = record["summary"], record["run"]
+    fin = s["final"]
+    return {
+        "run": run_id, "source": r["source"], "format": r["format"],
+        "dimension": record["geometry"]["dimension"], "n_frames": r["n_frames"],
+        "n_atoms": r["n_atoms"], "formula": r["formula"], "fixed_cell": r["fixed_cell"],
+        "initial_type": s["initial"]["type"], "final_type": fin["type"],
+        "nearest_type": fin["nearest"] or "", "final_distance_A": _fmt(fin["distance"]),
+        "final_deformation_A": _fmt(fin["deformation"]), "verdict": s["verdict"],
+        "flags": " ".join(sorted({f["code"] for f in record["flags"]})),
+        "recommended_symprec_A": _fmt(s["tolerance"]["recommended_symprec"]),
+        "final_group_at_1e-3": s["tolerance"].get("group_at_1e-3") or "",
+        "warnings": " | ".join(r["warnings"]), "error": "",
+    }
+
+
+def _fmt(x):
+    return "" if x is None else f"{x:.6g}"
+
+
+def db_key_values(record: dict, run_id: str) -> dict:
+    """ase.db key-value pairs for a run (names valid for ase.db; no reserved keys, no None)."""
+    s = record["summary"]
+    kv = {
+        "run_id": run_id,
+        "dw_dimension": int(record["geometry"]["dimension"]),
+        "dw_frames": int(record["run"]["n_frames"]),
+        "dw_fixed_cell": bool(record["run"]["fixed_cell"]),
+        "initial_type": s["initial"]["type"],
+        "final_type": s["final"]["type"],
+        "verdict": s["verdict"],
+        "n_flags": len(record["flags"]),
+        "source_format": record["run"]["format"],
+    }
+    if s["final"]["nearest"]:
+        kv["nearest_type"] = s["final"]["nearest"]
+    for key, val in (("final_distance", s["final"]["distance"]),
+                     ("final_deformation", s["final"]["deformation"]),
+                     ("initial_deformation", s["initial"]["deformation"]),
+                     ("recommended_symprec", s["tolerance"]["recommended_symprec"])):
+        if val is not None and math.isfinite(val):
+            kv[key] = float(val)
+    for code in sorted({f["code"] for f in record["flags"]}):
+        kv["flag_" + code.replace("-", "_")] = True
+    return kv

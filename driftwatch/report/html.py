@@ -1,0 +1,775 @@
+"""Static HTML report from run records: ``OUTPUT/index.html`` (the campaign) and ``OUTPUT/runs/<name>.html``.
+
+Everything a page needs is inside the output folder: CSS inline, plots as inline SVG, one small inline
+script (table sorting and filtering) allowed by a Content-Security-Policy hash; pages load nothing from
+the network. Every string that came from an input file (titles, paths, formulas, warnings, flag
+messages, code settings, group symbols) goes through :func:`html.escape`; plots never parse mathtext.
+Reports read records only, never raw run files.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import html
+import json
+import math
+import os
+from pathlib import Path
+from urllib.parse import quote
+
+from .. import records as _records
+from ..errors import OutputError
+from . import campaign as _camp
+from . import plots
+
+__all__ = ["build", "FLAG_TEXT"]
+
+FLAG_TEXT = {
+    "snapped": "the lattice ended on a Bravais type it started clearly away from (deformation below "
+               "the 'within' threshold at the end, above 'start away' at the start)",
+    "approaching": "the lattice moved a large part of the way toward a type without reaching it",
+    "handedness-flip": "the layer's 2D lattice changed handedness, so it passed through a lattice with "
+                       "a mirror line on the way",
+    "tolerance-sensitive": "spglib's verdict on the final structure depends on which symprec in the "
+                           "tested band you choose",
+    "spglib-overcall": "spglib assigns a lattice type that, by the continuous deformation, the lattice "
+                       "is still far from",
+    "atoms-break-lattice": "the lattice is metrically close to a type, but the atoms are not: the "
+                           "structure's group has a lower lattice type",
+    "atoms-settled": "the atoms moved onto more symmetric sites: the structure's group gained "
+                     "operations during the run",
+    "code-imposed": "the DFT code's own symmetry handling was on and may have held (not found) the "
+                    "final symmetry",
+}
+"""Plain-language meaning of each flag code (codes and levels are defined in :mod:`driftwatch.rules`)."""
+
+DISCLAIMER = ("A flag is a diagnostic that asks you to look at a run; it is not a proof of stability, "
+              "of instability or of a phase. Distances, deformations and spglib verdicts depend on "
+              "thresholds and tolerances; check what matters to you with your own validation.")
+
+READ_ME = [
+    "Distances are Euclidean distances in root-invariant space, in Å. They are square roots of "
+    "conorms, so near rectangular lattices (a zero conorm) they grow like the square root of a "
+    "deformation: a cell a hundredth of a degree from a right angle can be a few hundredths of an "
+    "Å away.",
+    "Deformation is Å of lattice-vector change needed to reach the type (Lipschitz in the cell). It is "
+    "comparable with spglib's symprec, and the flag thresholds use it.",
+    "The tolerance spectrum is spglib's verdict on a log grid of symprec (Å); a breakpoint is a "
+    "bracket [low, high] Å in which the verdict changes. Verdicts that change inside the range you "
+    "use are fragile.",
+    "The displacement to a group is how far the atoms must move (RMS and max, Å) to be exactly "
+    "symmetric under that group. In a fixed-cell run the lattice cannot drift; its symmetry drift is "
+    "in the atoms, and this is where it shows.",
+    DISCLAIMER,
+]
+
+_SCRIPT = """
+(function () {
+  function key(td) {
+    var v = td.getAttribute('data-v');
+    return v === null ? td.textContent.trim() : v;
+  }
+  document.querySelectorAll('table.sortable').forEach(function (t) {
+    var heads = t.tHead.rows[0].cells;
+    Array.prototype.forEach.call(heads, function (th, i) {
+      th.tabIndex = 0;
+      th.setAttribute('aria-sort', 'none');
+      function go() {
+        var asc = th.getAttribute('aria-sort') !== 'ascending';
+        Array.prototype.forEach.call(heads, function (h) { h.setAttribute('aria-sort', 'none'); });
+        th.setAttribute('aria-sort', asc ? 'ascending' : 'descending');
+        var body = t.tBodies[0];
+        var rows = Array.prototype.slice.call(body.rows);
+        rows.sort(function (a, b) {
+          var x = key(a.cells[i]), y = key(b.cells[i]);
+          if (x === '' || y === '') { return (x === '') - (y === ''); }
+          var nx = Number(x), ny = Number(y), c;
+          c = (!isNaN(nx) && !isNaN(ny)) ? nx - ny : x.localeCompare(y);
+          return asc ? c : -c;
+        });
+        rows.forEach(function (r) { body.appendChild(r); });
+      }
+      th.addEventListener('click', go);
+      th.addEventListener('keydown', function (ev) {
+        if (ev.key === 'Enter' || ev.key === ' ') { ev.preventDefault(); go(); }
+      });
+    });
+  });
+  var box = document.getElementById('filter');
+  if (box) {
+    box.addEventListener('input', function () {
+      var q = box.value.toLowerCase();
+      document.querySelectorAll('#runs tbody tr').forEach(function (r) {
+        r.hidden = q !== '' && r.textContent.toLowerCase().indexOf(q) < 0;
+      });
+    });
+  }
+})();
+"""
+_SCRIPT_HASH = base64.b64encode(hashlib.sha256(_SCRIPT.encode()).digest()).decode()
+_CSP = ("default-src 'none'; img-src data:; style-src 'unsafe-inline'; "
+        f"script-src 'sha256-{_SCRIPT_HASH}'; base-uri 'none'; form-action 'none'")
+
+_CSS = """
+:root { --ink:#1d2430; --muted:#5b6575; --line:#d8dde5; --bg:#ffffff; --soft:#f5f7fa;
+        --warn:#b35c00; --warnbg:#fff3e0; --info:#1d5fa5; --infobg:#e8f1fb; --ok:#1b7a4a; }
+* { box-sizing: border-box; }
+body { margin: 0; font: 15px/1.5 system-ui, -apple-system, "Segoe UI", Roboto, "DejaVu Sans", sans-serif;
+       color: var(--ink); background: var(--bg); }
+header.top { background: #1f2b3d; color: #fff; padding: 14px 28px; }
+header.top a { color: #cfe1ff; }
+header.top .crumb { font-size: 13px; opacity: .9; }
+header.top h1 { margin: 4px 0 2px; font-size: 22px; font-weight: 600; overflow-wrap: anywhere; }
+header.top .sub { font-size: 13px; color: #c9d3e0; overflow-wrap: anywhere; }
+main { max-width: 1180px; margin: 0 auto; padding: 12px 28px 40px; }
+h2 { font-size: 18px; margin: 28px 0 8px; padding-bottom: 4px; border-bottom: 1px solid var(--line); }
+h3 { font-size: 15px; margin: 18px 0 6px; }
+p, li { max-width: 80ch; }
+.note { background: var(--warnbg); border-left: 4px solid var(--warn); padding: 8px 12px; margin: 12px 0;
+        font-size: 14px; }
+.muted { color: var(--muted); font-size: 13px; }
+table { border-collapse: collapse; margin: 6px 0 10px; font-size: 13.5px; }
+#runs { font-size: 13px; }
+#runs td .badge { margin: 1px 0; }
+#runs th, #runs td { padding: 4px 7px; }
+#runs th { white-space: normal; vertical-align: bottom; }
+th, td { border-bottom: 1px solid var(--line); padding: 4px 10px; text-align: left; vertical-align: top; }
+th { background: var(--soft); font-weight: 600; white-space: nowrap; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+table.kv th { width: 15em; background: none; color: var(--muted); font-weight: 500; white-space: normal; }
+table.kv td { overflow-wrap: anywhere; }
+table.sortable th { cursor: pointer; user-select: none; }
+table.sortable th::after { content: " \\2195"; color: #9aa4b2; font-size: 11px; }
+table.sortable th[aria-sort=ascending]::after { content: " \\2191"; color: var(--ink); }
+table.sortable th[aria-sort=descending]::after { content: " \\2193"; color: var(--ink); }
+.wide { overflow-x: auto; }
+.badge { display: inline-block; padding: 0 7px; border-radius: 9px; font-size: 12px; font-weight: 600;
+         white-space: nowrap; }
+.warning { background: var(--warnbg); color: var(--warn); }
+.info { background: var(--infobg); color: var(--info); }
+.v-snapped { background: #fde4d6; color: #9a3600; }
+.v-handedness-flip { background: #f7e1ef; color: #8a2d6a; }
+.v-approaching { background: #fff0cc; color: #7a5200; }
+.v-fixed-cell { background: #e0f0fb; color: #1d5f8a; }
+.v-steady { background: #dff3e8; color: var(--ok); }
+.v-unreadable, .v-failed { background: #eee; color: #555; }
+figure { margin: 14px 0 22px; }
+figure svg { width: 100%; max-width: 980px; height: auto; display: block; }
+.grid2 figure svg { max-width: 100%; }
+figcaption { font-size: 13px; color: var(--muted); max-width: 95ch; margin-top: 4px; }
+.grid2 { display: grid; grid-template-columns: repeat(auto-fit, minmax(480px, 1fr)); gap: 8px 24px; }
+.big { font-size: 20px; font-weight: 600; }
+code, .mono { font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: 12.5px;
+              overflow-wrap: anywhere; }
+input#filter { font: inherit; padding: 4px 8px; width: 22em; border: 1px solid var(--line);
+               border-radius: 4px; }
+footer { color: var(--muted); font-size: 12px; margin-top: 40px; border-top: 1px solid var(--line);
+         padding-top: 8px; }
+"""
+
+
+def e(x) -> str:
+    """HTML-escaped text of anything (None -> empty)."""
+    return "" if x is None else html.escape(str(x), quote=True)
+
+
+def _fnum(x):
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return None
+    return x if math.isfinite(x) else None
+
+
+def _q(x, unit="Å", digits=3):
+    """A quantity with its unit, escaped; '—' when missing."""
+    x = _fnum(x)
+    if x is None:
+        return "—"
+    return f"{x:.{digits}g}&nbsp;{e(unit)}" if unit else f"{x:.{digits}g}"
+
+
+def _td_num(x, unit="", digits=3):
+    v = _fnum(x)
+    return (f'<td class="num" data-v="{"" if v is None else repr(v)}">'
+            f'{_q(v, unit, digits) if v is not None else "—"}</td>')
+
+
+def _type_name(t):
+    from ..rules import NAMES
+    if not t:
+        return "—"
+    return f"{e(t)} ({e(NAMES.get(t, 'unknown type'))})"
+
+
+def _badge(text, cls):
+    return f'<span class="badge {e(cls)}">{e(text)}</span>'
+
+
+def _page(title, header, body, *, crumb="", script=False):
+    return (
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
+        f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">\n'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
+        '<meta name="referrer" content="no-referrer">\n'
+        f"<title>{e(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
+        f'<header class="top">{crumb}{header}</header>\n<main>\n{body}\n'
+        f"<footer>driftwatch static report, built from run records; no network access is needed to "
+        f"view it.</footer>\n</main>\n"
+        + (f"<script>{_SCRIPT}</script>\n" if script else "")
+        + "</body>\n</html>\n")
+
+
+def _figure(svg, caption):
+    if not svg:
+        return ""
+    return f"<figure>{svg}<figcaption>{caption}</figcaption></figure>"
+
+
+def _kv(rows):
+    return ('<table class="kv">' + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in rows)
+            + "</table>")
+
+
+# ------------------------------------------------------------------------------------------- inputs
+
+def _is_campaign(data) -> bool:
+    return isinstance(data, dict) and (str(data.get("schema", "")).startswith("driftwatch/campaign")
+                                       or {"runs", "failed", "flag_counts"} <= set(data))
+
+
+def _check_record(rec: dict):
+    for key in ("run", "geometry", "frames", "summary"):
+        if key not in rec:
+            raise ValueError(f"record has no '{key}'")
+    if not rec["frames"]:
+        raise ValueError("record has no frames")
+
+
+def _collect(items):
+    """-> (entries [(label, record, origin)], unreadable [(origin, problem)], campaign dict or None)."""
+    entries, bad, found_campaign = [], [], None
+    files = []
+    for item in items:
+        if isinstance(item, dict):
+            files.append(item)
+            continue
+        p = Path(item)
+        if p.is_dir():
+            files.extend(sorted(p.glob("*.json")))
+        else:
+            files.append(p)
+    for f in files:
+        if isinstance(f, dict):
+            rec, origin = f, None
+            try:
+                _check_record(rec)
+            except ValueError as exc:
+                bad.append(("(record given in memory)", str(exc)))
+                continue
+            entries.append((_label(rec, None), rec, None))
+            continue
+        try:
+            rec = _records.read_json(f)
+            _check_record(rec)
+        except (OSError, UnicodeDecodeError, ValueError) as exc:
+            if found_campaign is None and _maybe_campaign(f):
+                found_campaign = _maybe_campaign(f)
+                continue
+            problem = str(exc)
+            if isinstance(exc, FileNotFoundError):
+                problem = "no such file"
+            elif isinstance(exc, json.JSONDecodeError):
+                problem = f"not JSON ({exc.msg} at line {exc.lineno})"
+            bad.append((str(f), problem.replace(f"{f}: ", "")))
+            continue
+        entries.append((_label(rec, f), rec, str(f)))
+    return entries, bad, found_campaign
+
+
+def _maybe_campaign(path):
+    try:
+        with open(path, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (OSError, UnicodeDecodeError, ValueError):
+        return None
+    return data if _is_campaign(data) else None
+
+
+def _label(rec, path):
+    if path is not None:
+        return Path(path).stem
+    r = rec.get("run") or {}
+    src = r.get("run_dir") or r.get("source") or "run"
+    parts = Path(str(src)).parts
+    return "_".join(parts[-2:]) if len(parts) >= 2 else (parts[-1] if parts else "run")
+
+
+def _assign_names(entries):
+    used, out = set(), []
+    for label, rec, origin in entries:
+        base = _records.safe_name(label)
+        name, k = base, 2
+        while name.lower() in used:
+            name, k = f"{base}-{k}", k + 1
+        used.add(name.lower())
+        out.append((name, label, rec, origin))
+    return out
+
+
+# ------------------------------------------------------------------------------------------ run page
+
+def _cfg(rec, *keys):
+    d = rec.get("config") or {}
+    for k in keys:
+        if not isinstance(d, dict) or k not in d:
+            return None
+        d = d[k]
+    return _fnum(d)
+
+
+def _common(rec):
+    vals = ((rec.get("config") or {}).get("report") or {}).get("common_symprecs")
+    vals = [v for v in (_fnum(x) for x in (vals or [])) if v and v > 0]
+    return tuple(vals) or _camp.DEFAULT_COMMON
+
+
+def _summary_section(rec):
+    run, geo, s = rec["run"], rec["geometry"], rec["summary"]
+    ini, fin = s.get("initial") or {}, s.get("final") or {}
+    dim = geo.get("dimension")
+    drift = s.get("drift")
+    verdict = s.get("verdict")
+    rows = [
+        ("verdict", _badge(verdict, f"v-{verdict}")),
+        ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
+                      f"{e(run.get('n_frames'))} ionic steps"),
+        ("kind", ("layer (2D lattice in the plane; vacuum along axis "
+                  f"{e(geo.get('vacuum_axis'))})" if dim == 2 else "bulk (3D lattice)")
+         + f"<br><span class=\"muted\">{e(geo.get('reason'))}</span>"),
+        ("type at the start", _type_name(ini.get("type"))),
+        ("type at the end", _type_name(fin.get("type"))),
+        ("nearest other type at the end", _type_name(fin.get("nearest"))),
+        ("its distance / deformation", f"{_q(fin.get('distance'))} root space / "
+                                       f"{_q(fin.get('deformation'))} deformation"),
+    ]
+    if drift:
+        frac = _fnum(drift.get("fraction"))
+        rows.append(("drift", f"toward {_type_name(drift.get('type'))}: deformation "
+                              f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"
+                              + ("" if frac is None else f" ({100 * frac:.0f} % of the way)")))
+    if dim == 2:
+        vs = geo.get("viewing_side")
+        if vs:
+            rows.append(("viewing side (sign is seen from)",
+                         "(" + ", ".join(f"{float(x):.3g}" for x in vs) + ")"))
+    rows.append(("source", f"<span class=\"mono\">{e(run.get('source'))}</span> "
+                           f"(format {e(run.get('format'))})"))
+    body = _kv(rows)
+    if run.get("fixed_cell"):
+        body += (f'<p class="note"><b>Fixed cell.</b> {e(s.get("lattice_note") or "")} Every frame has '
+                 "the same cell, so the lattice distances cannot change; look at the tolerance spectrum "
+                 "and the displacement to each group for symmetry drift of the atoms.</p>")
+    return "<h2>Summary</h2>" + body
+
+
+def _flags_section(rec):
+    flags = rec.get("flags") or []
+    if not flags:
+        return ("<h2>Flags</h2><p>No flag fired for this run at the configured thresholds. That is not "
+                "a proof that nothing changed; see the plots below.</p>")
+    rows = "".join(
+        f"<tr><td>{_badge(f.get('level'), f.get('level'))}</td><td><b>{e(f.get('code'))}</b></td>"
+        f"<td class=\"num\">{e(f.get('step'))}</td><td>{e(f.get('type') or '')}</td>"
+        f"<td>{e(f.get('message'))}<br><span class=\"muted\">{e(FLAG_TEXT.get(f.get('code'), ''))}"
+        f"</span></td></tr>" for f in flags)
+    return ("<h2>Flags</h2><p class=\"muted\">Each flag is a diagnostic to be checked, not a proof of "
+            "stability or of a phase. 'step' is the first ionic step from which it holds.</p>"
+            "<table><thead><tr><th>level</th><th>code</th><th>step</th><th>type</th><th>what was seen"
+            f"</th></tr></thead><tbody>{rows}</tbody></table>")
+
+
+def _tolerance_section(rec):
+    tol = (rec.get("summary") or {}).get("tolerance") or {}
+    spec = _camp.final_spectrum(rec)
+    out = ["<h2>Tolerance advice</h2>"]
+    recv = tol.get("recommended_symprec")
+    out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> recommended for this run'
+               f"{'' if recv is None else ''}.<br><span class=\"muted\">Reason: {e(tol.get('reason'))}."
+               " A starting point for your own check, not a guarantee.</span></p>")
+    ranges = tol.get("stable_ranges") or []
+    if ranges:
+        rows = "".join(
+            f"<tr>{_td_num(r[0], 'Å')}{_td_num(r[1], 'Å')}<td>{e(r[3])} ({e(r[2])})</td>"
+            f"<td class=\"num\">{_ratio(r[0], r[1])}</td></tr>" for r in ranges if len(r) >= 4)
+        out.append("<h3>Ranges of symprec with one verdict (final structure)</h3><table><thead><tr>"
+                   "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th></tr></thead>"
+                   f"<tbody>{rows}</tbody></table>")
+    if spec:
+        common = _common(rec)
+        cells = "".join(f"<th>{c:g} Å</th>" for c in common)
+        g = "".join(f"<td>{e(_camp.verdict_at(spec, c)[1])} ({e(_camp.verdict_at(spec, c)[0])})</td>"
+                    for c in common)
+        lat = "".join(f"<td>{e(_camp.verdict_at(spec, c, 'lattice'))}</td>" for c in common) \
+            if spec.get("lattice") else ""
+        out.append("<h3>Verdict at common choices of symprec</h3><table><thead><tr><th></th>"
+                   f"{cells}</tr></thead><tbody><tr><th>structure group</th>{g}</tr>"
+                   + (f"<tr><th>lattice alone</th>{lat}</tr>" if lat else "") + "</tbody></table>")
+        ang = _fnum(spec.get("angle_tolerance"))
+        out.append(f'<p class="muted">angle_tolerance = {"spglib default" if ang == -1 else _q(ang, "°")}'
+                   f"; grid of {len(spec.get('symprec') or [])} symprec values from "
+                   f"{_q(min(spec['symprec']))} to {_q(max(spec['symprec']))}.</p>")
+    else:
+        out.append("<p>No frame of this run was analysed with spglib, so there is no tolerance spectrum.</p>")
+    return "".join(out)
+
+
+def _ratio(a, b):
+    a, b = _fnum(a), _fnum(b)
+    if not a or not b or a <= 0:
+        return "—"
+    return f"{b / a:.3g}"
+
+
+def _settings_section(rec):
+    cs = (rec.get("run") or {}).get("code_settings") or {}
+    if not cs:
+        body = "<p>The code's own symmetry settings are not known for this run.</p>"
+    else:
+        body = ("<table><thead><tr><th>setting</th><th>value</th></tr></thead><tbody>"
+                + "".join(f"<tr><td class=\"mono\">{e(k)}</td><td class=\"mono\">{e(_val(v))}</td></tr>"
+                          for k, v in cs.items()) + "</tbody></table>")
+    return ("<h2>Code-side symmetry settings</h2><p class=\"muted\">What the DFT code itself did with "
+            "symmetry. With symmetry on, the code can keep the symmetry of the start; a relaxation that "
+            "ends symmetric may then be held there rather than have found it.</p>" + body)
+
+
+def _val(v):
+    if isinstance(v, (dict, list)):
+        return json.dumps(v, ensure_ascii=False)
+    return str(v)
+
+
+def _warnings_section(rec):
+    w = (rec.get("run") or {}).get("warnings") or []
+    if not w:
+        return "<h2>Warnings</h2><p>No warnings from reading this run.</p>"
+    return "<h2>Warnings</h2><ul>" + "".join(f"<li>{e(x)}</li>" for x in w) + "</ul>"
+
+
+def _plots_section(rec):
+    frames = rec["frames"]
+    dim = rec["geometry"].get("dimension")
+    thr = [(_cfg(rec, "rules", "snapped", "within"), "snapped within"),
+           (_cfg(rec, "rules", "snapped", "start_away"), "start away")]
+    out = ["<h2>Plots</h2>"]
+    if dim == 2:
+        types = [t for t in ("op", "oc", "tp", "hp", "mirror") if t in frames[0].get("deformation", {})]
+        out.append(_figure(plots.layer_map(frames),
+                   "Path of the layer's 2D lattice on the projected-invariant map, one point per ionic "
+                   "step (colour), start circled, end starred. Horizontal axis: sign × x, vertical: y, "
+                   "with (x, y) = ((r02 − r01)/s, 3 r12/s), s = r12 + r01 + r02. The right half holds "
+                   "lattices of sign +1, the left half their mirror images (sign −1), both seen from the "
+                   "viewing side. Boundaries are where the sign is 0: the bottom edge is rectangular (op), "
+                   "the vertical centre line and both slanted edges are centred rectangular (oc), square "
+                   "(tp) sits at the bottom centre and hexagonal (hp) at the top. Bottom and slanted "
+                   "edges appear once per half; a path crossing them continues from the mirror point on "
+                   "the other half (dotted). Frames with sign 0 are drawn in the half of the step "
+                   "before them."))
+        thr.append((_cfg(rec, "rules", "handedness_flip", "min_chiral"), "min chiral"))
+        out.append(_figure(plots.deformation_plot(frames, types, thr),
+                   "Deformation (Å of lattice-vector change, comparable with symprec) to each 2D type "
+                   "and to the nearest lattice with a mirror, against ionic step; dashed lines are the "
+                   "flag thresholds."))
+        out.append(_figure(plots.distance_plot(frames, types),
+                   "Root-space distance (Å) to each type. Near rectangular lattices it grows like the "
+                   "square root of a deformation, so it is larger than the deformation there."))
+    else:
+        types = list(frames[0].get("deformation", {}))
+        out.append(_figure(plots.deformation_plot(frames, types, thr,
+                                                  title="deformation to each of the 13 Bravais types"),
+                   "Deformation (Å of lattice-vector change, comparable with symprec) to each of the 13 "
+                   "non-triclinic Bravais types against ionic step; dashed lines are the flag "
+                   "thresholds."))
+        if frames[0].get("systems"):
+            out.append(_figure(plots.distance_plot(frames, list(frames[0]["systems"]), key="systems",
+                                                   title="distance to each lattice system",
+                                                   ylabel="distance (Å)"),
+                       "Distance (Å, root space) to each lattice system (the nearest of its types)."))
+    if any(f.get("symmetry") for f in frames):
+        out.append(_figure(plots.spectrum_plot(frames, _common(rec)),
+                   "Tolerance spectrum: spglib's verdict (colour) at each symprec (log axis, Å) for the "
+                   "frames analysed with spglib. Black bars mark breakpoints (the verdict changes "
+                   "between two symprec values, shown at their geometric centre); dotted lines are "
+                   "common choices of symprec. Left: the whole structure (layer group for layers); "
+                   "right: the lattice alone."))
+        out.append(_figure(plots.displacement_plot(frames),
+                   "How far the atoms must move (Å; solid RMS, dashed max) to be exactly symmetric under "
+                   "each group spglib found at some symprec. A curve falling to the bottom axis means "
+                   "the atoms reached that symmetry."))
+    else:
+        out.append("<p>No frame was analysed with spglib: no tolerance spectrum or displacement plot.</p>")
+    return "".join(out)
+
+
+def _provenance_section(rec):
+    v = rec.get("versions") or {}
+    t = rec.get("timing") or {}
+    rows = [("schema", e(rec.get("schema"))),
+            ("versions", e(", ".join(f"{k} {_val(x)}" for k, x in v.items()))),
+            ("metric", e(((rec.get("config") or {}).get("lattice") or {}).get("metric"))),
+            ("time", e(", ".join(f"{k} {x:.3g}" if isinstance(x, float) else f"{k} {x}"
+                                 for k, x in t.items())))]
+    return "<h2>Provenance</h2>" + _kv(rows)
+
+
+def _how_to_read():
+    return "<h2>How to read this</h2><ul>" + "".join(f"<li>{e(x)}</li>" for x in READ_ME) + "</ul>"
+
+
+def run_page(name, label, rec, origin) -> str:
+    """HTML text of one run's page (linked from ``../index.html``)."""
+    run = rec["run"]
+    title = run.get("title") or label
+    header = (f"<h1>{e(title)}</h1><div class=\"sub\">run {e(label)}"
+              + (f" · record {e(origin)}" if origin else "") + "</div>")
+    body = (f'<p class="note">{e(DISCLAIMER)}</p>' + _summary_section(rec) + _flags_section(rec)
+            + _tolerance_section(rec) + _plots_section(rec) + _settings_section(rec)
+            + _warnings_section(rec) + _how_to_read() + _provenance_section(rec))
+    crumb = '<div class="crumb"><a href="../index.html">← campaign index</a></div>'
+    return _page(f"{title} · driftwatch", header, body, crumb=crumb)
+
+
+# -------------------------------------------------------------------------------------------- index
+
+def _index_page(runs, bad, failed, campaign, pages) -> str:
+    recs = [(n, r) for n, _, r, _ in runs if n in pages]
+    common = _common(recs[0][1]) if recs else _camp.DEFAULT_COMMON
+    tol = _camp.tolerance_advice(recs, common)
+    counts = _camp.flag_counts([r for _, r in recs])
+    levels = {}
+    for _, r in recs:
+        for f in r.get("flags") or []:
+            levels[f["code"]] = f.get("level")
+    n_flagged = sum(1 for _, r in recs if r.get("flags"))
+    verdicts = {}
+    for _, r in recs:
+        v = r["summary"].get("verdict")
+        verdicts[v] = verdicts.get(v, 0) + 1
+    header = ("<h1>driftwatch campaign report</h1><div class=\"sub\">"
+              f"{len(recs)} runs · {n_flagged} with flags · {len(bad)} unreadable inputs · "
+              f"{len(failed)} failed runs</div>")
+    parts = [f'<p class="note">{e(DISCLAIMER)}</p>']
+    parts.append("<h2>Overview</h2>" + _kv([
+        ("runs in this report", str(len(recs))),
+        ("verdicts", ", ".join(f"{_badge(k, f'v-{k}')} {n}" for k, n in sorted(verdicts.items()))
+         or "—"),
+        ("runs with at least one flag", str(n_flagged)),
+        ("unreadable inputs / failed runs", f"{len(bad)} / {len(failed)}"),
+    ]))
+    parts.append(_campaign_tolerance(tol))
+    # plots
+    pts = []
+    for _, r in recs:
+        d = r["summary"].get("drift")
+        if d and _fnum(d.get("initial")) is not None:
+            pts.append((_fnum(d.get("initial")), _fnum(d.get("final")), r["summary"].get("verdict"),
+                        r["geometry"].get("dimension")))
+    gb, lb = [], []
+    for _, r in recs:
+        spec = _camp.final_spectrum(r)
+        if spec:
+            gb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "group")]
+            lb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "lattice")]
+    parts.append("<h2>Across the campaign</h2><div class=\"grid2\">")
+    parts.append(_figure(plots.campaign_scatter(pts),
+                         f"Deformation (Å) to the type each run moved toward, at its first against its "
+                         f"last step ({len(pts)} runs; circles layers, squares bulk). Points on the "
+                         f"dashed diagonal did not move; runs that reached the type fall onto the "
+                         f"bottom axis."))
+    parts.append(_figure(plots.breakpoint_histogram(gb, lb, common),
+                         "Where spglib's verdict on each run's final structure changes, pooled over "
+                         "runs (log symprec, Å). Dotted lines: common choices. A common choice sitting "
+                         "in a crowd of breakpoints gives verdicts that flip with small changes."))
+    if counts:
+        parts.append(_figure(plots.flag_bars(counts, levels), "Runs carrying each flag."))
+    parts.append("</div>")
+    parts.append(_flag_table(counts, levels, campaign))
+    parts.append(_runs_table(runs, pages))
+    parts.append(_problems(bad, failed))
+    parts.append(_how_to_read())
+    return _page("driftwatch campaign report", header, "".join(parts), script=True)
+
+
+def _campaign_tolerance(tol):
+    out = ["<h2>Tolerance advice for the campaign</h2>"]
+    rec = tol.get("recommended_symprec")
+    out.append(f'<p><span class="big">symprec ≈ {_q(rec)}</span> for this campaign'
+               f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum)."
+               f"<br><span class=\"muted\">Reason: {e(tol.get('reason'))}."
+               + ("" if tol.get("runs_near_recommended") is None else
+                  f" Runs with a breakpoint within a factor {_camp.NEAR:g} of it: "
+                  f"{len(tol['runs_near_recommended'])}.")
+               + " A starting point for your own check, not a guarantee.</span></p>")
+    if tol["stable_ranges"]:
+        rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
+                       for a, b in [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5])
+        out.append("<h3>Ranges of symprec where no run changes its verdict (widest first, factor "
+                   "≥ 1.5)</h3><table>"
+                   "<thead><tr><th>from</th><th>to</th><th>width (factor)</th></tr></thead>"
+                   f"<tbody>{rows}</tbody></table>")
+    elif tol["n_with_spectrum"]:
+        out.append("<p>No range of symprec on the grid is free of every run's breakpoints.</p>")
+    if tol["changes"]:
+        rows = []
+        for c in tol["changes"]:
+            names = ", ".join(e(n) for n in c["runs"][:8]) + (" …" if len(c["runs"]) > 8 else "")
+            rows.append(f"<tr><td class=\"num\">{c['a']:g} Å</td><td class=\"num\">{c['b']:g} Å</td>"
+                        f"<td class=\"num\">{len(c['runs'])}</td><td class=\"mono\">{names}</td></tr>")
+        out.append("<h3>Runs whose verdict changes between common choices of symprec</h3><table>"
+                   "<thead><tr><th>symprec</th><th>against</th><th>runs that change</th><th>which</th>"
+                   f"</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+                   "<p class=\"muted\">Verdict = spglib's space group (layer group for layers) of each "
+                   "run's last analysed frame, at the grid value nearest to each symprec.</p>")
+    return "".join(out)
+
+
+def _flag_table(counts, levels, campaign):
+    ext = (campaign or {}).get("flag_counts") if isinstance(campaign, dict) else None
+    if not counts and not ext:
+        return "<h2>Flags</h2><p>No flag fired in any run at the configured thresholds.</p>"
+    codes = list(counts) + [c for c in (ext or {}) if c not in counts]
+    rows = "".join(
+        f"<tr><td>{_badge(levels.get(c, ''), levels.get(c, ''))}</td><td><b>{e(c)}</b></td>"
+        f"<td class=\"num\">{counts.get(c, 0)}</td>"
+        + (f"<td class=\"num\">{e(_val(ext.get(c, 0)))}</td>" if ext else "")
+        + f"<td>{e(FLAG_TEXT.get(c, ''))}</td></tr>" for c in codes)
+    return ("<h2>Flags</h2><table><thead><tr><th>level</th><th>code</th><th>runs (this report)</th>"
+            + ("<th>runs (audit summary)</th>" if ext else "")
+            + f"<th>meaning</th></tr></thead><tbody>{rows}</tbody></table>")
+
+
+def _runs_table(runs, pages):
+    from ..rules import FLAGS as levels
+    rows = []
+    for name, label, rec, origin in runs:
+        if name not in pages:
+            continue
+        s, r, g = rec["summary"], rec["run"], rec["geometry"]
+        fin, ini = s.get("final") or {}, s.get("initial") or {}
+        tol = s.get("tolerance") or {}
+        codes = sorted({f["code"] for f in rec.get("flags") or []})
+        verdict = s.get("verdict")
+        kind = "layer" if g.get("dimension") == 2 else "bulk"
+        rows.append(
+            f'<tr><td><a href="runs/{quote(name)}.html">{e(label)}</a>'
+            f'<br><span class="muted">{e(r.get("title") or "")}</span></td>'
+            f"<td>{e(r.get('formula'))}<br><span class=\"muted\">{kind}</span></td>"
+            f"{_td_num(r.get('n_frames'))}"
+            f"<td data-v=\"{e(ini.get('type'))} {e(fin.get('type'))}\">{e(ini.get('type'))} → "
+            f"<b>{e(fin.get('type'))}</b></td>"
+            f"<td>{e(fin.get('nearest') or '')}</td>{_td_num(fin.get('deformation'), 'Å')}"
+            f"{_td_num(fin.get('distance'), 'Å')}"
+            f'<td data-v="{e(verdict)}">{_badge(verdict, f"v-{verdict}")}</td>'
+            f"<td data-v=\"{len(codes):03d} {e(' '.join(codes))}\">"
+            f"{' '.join(_badge(c, levels.get(c, '')) for c in codes) or '—'}</td>"
+            f"{_td_num(tol.get('recommended_symprec'), 'Å')}<td>{e(tol.get('group_at_1e-3') or '')}</td>"
+            "</tr>")
+    head = ("<tr><th>run</th><th>formula</th><th>steps</th><th>start → end type</th>"
+            "<th>nearest</th><th>deformation</th><th>distance</th><th>verdict</th>"
+            "<th>flags</th><th>advised symprec</th><th>group at 1e-3 Å</th></tr>")
+    return ("<h2>Runs</h2><p class=\"muted\">Click a column head to sort. 'nearest' is the nearest type "
+            "the final lattice is not at; deformation (Å, comparable with symprec) and root-space "
+            "distance (Å) are to that type.</p>"
+            '<p><label>Filter: <input id="filter" type="search" placeholder="name, formula, flag …">'
+            "</label></p>"
+            f'<div class="wide"><table id="runs" class="sortable"><thead>{head}</thead><tbody>'
+            f"{''.join(rows)}</tbody></table></div>")
+
+
+def _problems(bad, failed):
+    if not bad and not failed:
+        return ""
+    out = ["<h2>Inputs that could not be used</h2>"]
+    if bad:
+        rows = "".join(f"<tr><td class=\"mono\">{e(p)}</td><td>{_badge('unreadable', 'v-unreadable')} "
+                       f"{e(msg)}</td></tr>" for p, msg in bad)
+        out.append("<h3>Unreadable inputs</h3><table><thead><tr><th>file</th><th>problem</th></tr>"
+                   f"</thead><tbody>{rows}</tbody></table>")
+    if failed:
+        rows = "".join(f"<tr><td class=\"mono\">{e(f.get('run'))}</td><td class=\"mono\">"
+                       f"{e(f.get('source'))}</td><td>{e(f.get('error'))}</td></tr>" for f in failed
+                       if isinstance(f, dict))
+        out.append("<h3>Runs the audit could not analyse</h3><table><thead><tr><th>run</th>"
+                   f"<th>source</th><th>error</th></tr></thead><tbody>{rows}</tbody></table>")
+    return "".join(out)
+
+
+# -------------------------------------------------------------------------------------------- build
+
+def _write_file(root: Path, path: Path, text: str) -> Path:
+    """Atomic write inside the report folder, readable like any file the user creates (umask)."""
+    _records.write_text_atomic(_inside(root, path), text)
+    mask = os.umask(0)
+    os.umask(mask)
+    os.chmod(path, 0o666 & ~mask)
+    return path
+
+
+def _prepare_output(output, overwrite):
+    out = Path(output)
+    if out.exists() and not out.is_dir():
+        raise OutputError(f"{out}: exists and is not a folder")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
+        raise OutputError(f"{out}: folder exists and is not empty; pass overwrite=True (--overwrite) "
+                          f"to replace the report in it")
+    (out / "runs").mkdir(parents=True, exist_ok=True)
+    return out
+
+
+def _inside(root: Path, path: Path) -> Path:
+    r, p = os.path.realpath(root), os.path.realpath(path)
+    if os.path.commonpath([r, p]) != r:
+        raise OutputError(f"{path}: outside the report folder {root}")
+    return path
+
+
+def build(records, output, *, overwrite=False, campaign=None) -> Path:
+    """Build the static HTML report; returns the path of ``OUTPUT/index.html``.
+
+    Args:
+        records: run-record JSON files and/or folders of them (``*.json``, not recursive); record dicts
+            are accepted too. A file that is not a record is listed on the index as unreadable; an audit
+            summary found among them is used as ``campaign`` when none is given.
+        output: report folder; created if needed. ``OUTPUT/runs/<name>.html`` holds one page per run.
+        overwrite: allow writing into an existing non-empty folder (else :class:`OutputError`).
+        campaign: optional audit summary dict (``failed`` runs and ``flag_counts`` are shown).
+    """
+    if isinstance(records, (str, os.PathLike, dict)):
+        records = [records]
+    out = _prepare_output(output, overwrite)
+    entries, bad, found = _collect(records)
+    campaign = campaign if campaign is not None else found
+    failed = [f for f in (campaign or {}).get("failed") or [] if isinstance(f, dict)]
+    runs = _assign_names(entries)
+    with plots.session():
+        return _write(out, runs, bad, failed, campaign)
+
+
+def _write(out, runs, bad, failed, campaign):
+    pages = {}
+    for name, label, rec, origin in runs:
+        try:
+            text = run_page(name, label, rec, origin)
+        except Exception as exc:  # a malformed record must not stop the report
+            pages[name] = (f"{type(exc).__name__}: {exc}",)
+            continue
+        _write_file(out, out / "runs" / f"{name}.html", text)
+        pages[name] = f"runs/{name}.html"
+    broken = [(origin or label, f"page could not be built: {pages[name][0]}")
+              for name, label, _, origin in runs if not isinstance(pages[name], str)]
+    ok = {n: p for n, p in pages.items() if isinstance(p, str)}
+    index = out / "index.html"
+    _write_file(out, index, _index_page(runs, bad + broken, failed, campaign, ok))
+    return index

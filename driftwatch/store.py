@@ -1,0 +1,103 @@
+"""The campaign's ASE database: one row per run, final structure plus searchable key-value pairs.
+
+Any ``ase.db.connect`` name works (``runs.db`` SQLite by default, ``.json``, ``postgresql://...``).
+Rows are keyed by ``run_id``: a re-audit replaces a run's row instead of adding a second one; rows
+of other runs are never touched. All rows go in one ``with db:`` transaction.
+
+ase.db guards a file database with ``<file>.lock`` and waits for it *forever*; a job killed while
+writing leaves that file behind. :func:`check_lock` therefore refuses to start when the lock file
+exists (one-line :class:`~driftwatch.errors.OutputError` naming it), and the lock's own wait is
+capped at :data:`LOCK_WAIT_S` so a lock taken by another writer between the check and the write
+cannot hang the audit either.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from .errors import OutputError
+
+__all__ = ["db_location", "lock_path", "check_lock", "write_rows", "LOCK_WAIT_S"]
+
+LOCK_WAIT_S = 10.0
+_URL_PREFIXES = ("postgresql://", "postgres://", "mysql://", "mariadb://")
+
+
+def db_location(db, output: Path) -> str:
+    """The database name: ``OUTPUT/runs.db`` by default, a URL unchanged, a file path absolute."""
+    if db is None:
+        return str((Path(output) / "runs.db").absolute())
+    db = str(db)
+    if db.startswith(_URL_PREFIXES):
+        return db
+    return str(Path(db).expanduser().absolute())
+
+
+def lock_path(name: str) -> Path | None:
+    """ase.db's lock file for a file database (None for server URLs)."""
+    if name.startswith(_URL_PREFIXES):
+        return None
+    return Path(os.path.abspath(name) + ".lock")
+
+
+def check_lock(name: str) -> None:
+    """Raise OutputError when ase.db's lock file of ``name`` exists (ase.db would wait forever)."""
+    lock = lock_path(name)
+    if lock is not None and lock.exists():
+        raise OutputError(f"{lock}: lock file of the results database exists (a killed job leaves "
+                          f"one); delete it if no other driftwatch audit or ase.db writer is "
+                          f"running, then re-run (finished runs come from the cache)")
+
+
+def _connect(name: str):
+    import ase.db
+    try:
+        db = ase.db.connect(name, use_lock_file=lock_path(name) is not None)
+    except (ValueError, ImportError, OSError) as exc:
+        raise OutputError(f"{name}: cannot open the results database ({type(exc).__name__}: "
+                          f"{exc})") from exc
+    if getattr(db, "lock", None) is not None:
+        db.lock.timeout = LOCK_WAIT_S
+    return db
+
+
+def _atoms(structure: dict | None):
+    from ase import Atoms
+    if not structure:
+        return Atoms()
+    return Atoms(numbers=structure["numbers"], positions=structure["positions"],
+                 cell=structure["cell"], pbc=structure["pbc"])
+
+
+def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str]:
+    """Upsert rows ``(run_id, structure or None, key_value_pairs)`` in one transaction.
+
+    Returns one-line problems for rows ase.db rejected (the other rows are still written).
+    Raises OutputError for a locked or unwritable database.
+    """
+    check_lock(name)
+    if not name.startswith(_URL_PREFIXES):
+        Path(name).parent.mkdir(parents=True, exist_ok=True)
+    db = _connect(name)
+    problems = []
+    try:
+        with db:
+            for run_id, structure, kvp in rows:
+                old = [row.id for row in db.select(run_id=run_id)]
+                if old:
+                    db.delete(old)
+                try:
+                    db.write(_atoms(structure), key_value_pairs=kvp)
+                except (ValueError, KeyError, TypeError) as exc:
+                    problems.append(f"{run_id}: database row rejected ({exc})")
+    except TimeoutError as exc:
+        raise OutputError(f"{lock_path(name)}: results database is locked by another writer "
+                          f"(waited {LOCK_WAIT_S:g} s); delete the lock file if none is running"
+                          ) from exc
+    except OutputError:
+        raise
+    except Exception as exc:  # sqlite3.OperationalError ('database is locked'), disk full, ...
+        raise OutputError(f"{name}: cannot write the results database ({type(exc).__name__}: "
+                          f"{exc})") from exc
+    return problems

@@ -1,0 +1,825 @@
+"""symmetry: the one place that calls spglib.
+
+Three questions per frame:
+
+* ``spectrum``: spglib's verdict over a log-spaced ``symprec`` grid (Å) for the full structure
+  (space group, or layer group when a vacuum axis is given) and for the lattice alone (a one-atom
+  cell: its Bravais type), plus the ``symprec`` values where a verdict changes, bracketed by
+  bisection in log ``symprec``.
+* ``displacement_to_group``: how far the atoms are (Å, RMS and max, input setting) from a
+  configuration that is exactly symmetric under the group spglib finds at one ``symprec``, and the
+  lattice strain that group needs (unitless).
+* ``drift_table``: that displacement for every group seen in a spectrum.
+
+Conventions
+-----------
+``cell`` is (3, 3), rows are lattice vectors in Å; ``positions`` are *cartesian* Å (as
+``ase.Atoms.get_positions()``); ``numbers`` are atomic numbers (any integer species labels).
+``symprec`` is spglib's distance tolerance in Å; ``angle_tolerance`` is spglib's, in degrees, with
+-1 meaning spglib's default. For layers (``vacuum_axis`` 0, 1 or 2) the cell axes are permuted
+cyclically (handedness kept) so that the vacuum axis is c before spglib's layer-group routine is
+called; cartesian results do not depend on the permutation. The vacuum vector is also replaced
+by its component along the layer normal (a leaning vacuum vector would hide layer operations
+from spglib). spglib 2.8's layer routine takes no ``angle_tolerance``; spectra record whether it
+was applied (``angle_tolerance_applied``).
+
+Reading the results
+-------------------
+spglib's verdict is not a clean step function of ``symprec``: near a change it can flicker
+(windows well under 1 % wide where it falls back to a lower group were seen on rattled Si), so
+breakpoints come as brackets whose two ends spglib has been asked about, and a spectrum may go
+up and down. None of this proves a structure stable or a tolerance "safe": it shows where
+spglib's answer changes for this frame.
+
+spglib failures
+---------------
+spglib fails in one of two ways depending on process state: it returns ``None`` (its old error
+handling, the 2.8 default) or raises ``SpglibError`` (when ``SPGLIB_OLD_ERROR_HANDLING`` is false,
+which ASE's symmetry code sets for the whole process). ``_call`` handles both, and silences only
+spglib's per-call "Set OLD_ERROR_HANDLING" ``DeprecationWarning``. We never change spglib's mode.
+``warnings.catch_warnings`` is not thread-safe: run spectra in processes, not threads.
+"""
+from __future__ import annotations
+
+import collections
+import copy
+import functools
+import hashlib
+import inspect
+import math
+import os
+import warnings
+
+import numpy as np
+import spglib
+
+from .errors import ConfigError, GeometryError, LatticeError, SymmetryError
+
+__all__ = [
+    "DEFAULT_SYMPRECS", "DEFAULT_PRECISION", "spectrum", "displacement_to_group", "drift_table",
+    "symmetrize", "versions", "clear_cache",
+]
+
+#: Default grid: 17 values log-spaced from 1e-5 Å to 0.5 Å (neighbours differ by a factor ~1.97).
+DEFAULT_SYMPRECS = tuple(float(s) for s in np.logspace(-5.0, math.log10(0.5), 17))
+#: Default bracket precision: every breakpoint has ``high / low <= 1.02``.
+DEFAULT_PRECISION = 1.02
+
+_DEPRECATION = r"Set OLD_ERROR_HANDLING"
+_SEEN = {"returned_none": 0, "raised": 0}
+
+
+# ----------------------------------------------------------------------------------------------
+# the one wrapper around spglib
+# ----------------------------------------------------------------------------------------------
+@functools.lru_cache(maxsize=None)
+def _accepts(fn, name):
+    try:
+        return name in inspect.signature(fn).parameters
+    except (TypeError, ValueError):  # pragma: no cover - C functions without signatures
+        return False
+
+
+def _call(fn, *args, **kwargs):
+    """Call a spglib function; return ``(result, None)`` or ``(None, message)``.
+
+    Handles both failure modes (``None`` returned / ``SpglibError`` raised) and counts which one
+    was seen (reported by ``versions()``).
+    """
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=_DEPRECATION, category=DeprecationWarning)
+            out = fn(*args, **kwargs)
+    except spglib.error.SpglibError as exc:
+        _SEEN["raised"] += 1
+        return None, str(exc).strip() or type(exc).__name__
+    if out is None:
+        _SEEN["returned_none"] += 1
+        return None, _message_after_none(fn, args, kwargs)
+    return out, None
+
+
+def _message_after_none(fn, args, kwargs):
+    """spglib 2.8's ``get_error_message()`` loses the message; ask once more with ``_throw``.
+
+    ``_throw`` is a per-call keyword of spglib's own functions (not the process-wide switch);
+    it is used only to recover the text of a failure that already happened.
+    """
+    generic = "spglib returned None"
+    if not _accepts(fn, "_throw"):
+        return generic
+    try:
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=_DEPRECATION, category=DeprecationWarning)
+            fn(*args, _throw=True, **kwargs)
+    except spglib.error.SpglibError as exc:
+        return str(exc).strip() or generic
+    except Exception as exc:  # noqa: BLE001 - only used to build a message
+        return f"{generic} ({type(exc).__name__}: {exc})"
+    return generic
+
+
+def _layer_function():
+    fn = getattr(spglib, "get_symmetry_layerdataset", None)
+    if fn is None:
+        raise SymmetryError(f"spglib {spglib.__version__} has no layer-group support "
+                            "(get_symmetry_layerdataset); install spglib >= 2.1")
+    return fn
+
+
+def _dataset(lattice, frac, numbers, symprec, angle_tolerance, layer):
+    """spglib dataset at one symprec, ``(dataset, None)`` or ``(None, message)``.
+
+    For ``layer`` the aperiodic axis must already be c (see ``_to_c_axis``).
+    """
+    cell = (lattice, frac, numbers)
+    if not layer:
+        return _call(spglib.get_symmetry_dataset, cell, symprec=symprec,
+                     angle_tolerance=angle_tolerance)
+    fn = _layer_function()
+    kwargs = {"symprec": symprec}
+    if _accepts(fn, "aperiodic_dir"):
+        kwargs["aperiodic_dir"] = 2
+    if _accepts(fn, "angle_tolerance"):
+        kwargs["angle_tolerance"] = angle_tolerance
+    return _call(fn, cell, **kwargs)
+
+
+def _layer_angle_tolerance_applied():
+    fn = getattr(spglib, "get_symmetry_layerdataset", None)
+    return fn is not None and _accepts(fn, "angle_tolerance")
+
+
+# ----------------------------------------------------------------------------------------------
+# input checks and the layer permutation
+# ----------------------------------------------------------------------------------------------
+def _prepare(cell, positions, numbers, vacuum_axis):
+    cell = np.asarray(cell, dtype=float)
+    positions = np.asarray(positions, dtype=float)
+    numbers = np.asarray(numbers)
+    if cell.shape != (3, 3) or not np.all(np.isfinite(cell)):
+        raise LatticeError(f"cell must be a finite (3, 3) array of row vectors in Å, got shape {cell.shape}")
+    volume = abs(np.linalg.det(cell))
+    if volume < 1e-9 * max(1.0, float(np.abs(cell).max())) ** 3:
+        raise LatticeError("cell is singular (zero volume): its vectors are coplanar or zero")
+    if positions.ndim != 2 or positions.shape[1] != 3 or len(positions) == 0:
+        raise GeometryError(f"positions must be (N, 3) cartesian Å with N >= 1, got shape {positions.shape}")
+    if not np.all(np.isfinite(positions)):
+        raise GeometryError("positions contain non-finite values")
+    if numbers.shape != (len(positions),) or not np.issubdtype(numbers.dtype, np.integer):
+        raise GeometryError(f"numbers must be {len(positions)} integers, got shape {numbers.shape}")
+    if vacuum_axis not in (None, 0, 1, 2):
+        raise GeometryError(f"vacuum_axis must be None, 0, 1 or 2, got {vacuum_axis!r}")
+    lattice = _to_c_axis(cell, vacuum_axis)
+    if vacuum_axis is not None:
+        lattice = _perpendicular_vacuum(lattice)
+    frac = np.linalg.solve(lattice.T, positions.T).T
+    return lattice, np.ascontiguousarray(frac), numbers.astype(np.intc)
+
+
+def _to_c_axis(cell, vacuum_axis):
+    """Cyclic permutation of the cell axes putting the vacuum axis last (keeps handedness)."""
+    if vacuum_axis is None or vacuum_axis == 2:
+        return np.array(cell, dtype=float)
+    return np.array(cell[[(vacuum_axis + 1) % 3, (vacuum_axis + 2) % 3, vacuum_axis]], dtype=float)
+
+
+def _perpendicular_vacuum(lattice):
+    """Replace the vacuum vector by its component along the layer normal.
+
+    A layer's symmetry does not depend on how the vacuum vector leans, but spglib's layer routine
+    treats the cell as given (a leaning c hides operations), so it always sees c normal to the
+    layer, with the same slab period along the normal. Cartesian positions are kept."""
+    normal = np.cross(lattice[0], lattice[1])
+    normal /= np.linalg.norm(normal)
+    height = float(np.dot(lattice[2], normal))
+    if abs(height) < 1e-6:
+        raise GeometryError("the vacuum vector lies in the layer plane (slab height 0 Å)")
+    lattice[2] = normal * height
+    return lattice
+
+
+def _check_grid(symprecs, precision):
+    grid = DEFAULT_SYMPRECS if symprecs is None else symprecs
+    try:
+        grid = np.array(grid, dtype=float).ravel()
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"symprecs: not a list of numbers ({exc})") from exc
+    if grid.size == 0 or not np.all(np.isfinite(grid)) or np.any(grid <= 0):
+        raise ConfigError("symprecs: need at least one positive, finite value (Å)")
+    grid = np.unique(grid)
+    if not (isinstance(precision, (int, float)) and math.isfinite(precision) and precision > 1.0):
+        raise ConfigError(f"precision: the bracket ratio high/low must be a number > 1, got {precision!r}")
+    return tuple(float(s) for s in grid)
+
+
+# ----------------------------------------------------------------------------------------------
+# verdicts
+# ----------------------------------------------------------------------------------------------
+def _pearson3d(number, symbol):
+    """Pearson symbol (International Tables) of a space group's lattice: aP mP mS oP oS ... cF."""
+    system = ("a" if number <= 2 else "m" if number <= 15 else "o" if number <= 74 else
+              "t" if number <= 142 else "h" if number <= 194 else "c")
+    centring = symbol.strip()[0].upper()
+    if system == "a":
+        return "aP"
+    if system == "h":
+        return "hR" if centring == "R" else "hP"
+    return system + ("S" if centring in "ABC" else centring)
+
+
+def _pearson2d(number, symbol):
+    """2D Bravais type of a layer group's lattice: mp (oblique) op oc tp hp."""
+    if number <= 7:
+        return "mp"
+    if number <= 48:
+        return "oc" if symbol.strip().lower().startswith("c") else "op"
+    return "tp" if number <= 64 else "hp"
+
+
+def _one_atom_cell(lattice, layer):
+    """The lattice alone: one atom at the origin; for layers a long vacuum vector along the normal."""
+    if layer:
+        a, b = lattice[0], lattice[1]
+        normal = np.cross(a, b)
+        length = 10.0 * max(np.linalg.norm(a), np.linalg.norm(b), 3.0)
+        lattice = np.array([a, b, normal / np.linalg.norm(normal) * length])
+    return np.ascontiguousarray(lattice), np.zeros((1, 3)), np.ones(1, dtype=np.intc)
+
+
+# ----------------------------------------------------------------------------------------------
+# scanning a grid and bisecting between neighbours whose verdicts differ
+# ----------------------------------------------------------------------------------------------
+def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
+    """Verdicts on ``grid`` and bracketed changes between neighbours.
+
+    ``probe(s)`` returns a verdict, ``key(verdict)`` what must change to count as a change.
+    ``hints`` are (low, high) brackets from a previous, similar spectrum: they are probed first
+    (so a still-valid bracket costs two calls) and the search continues from what they show.
+    ``values`` are grid verdicts already known. Returns (verdicts on the grid, list of
+    (low, v_low, high, v_high)).
+    """
+    values = [probe(s) for s in grid] if values is None else list(values)
+    brackets = []
+    if not bisect:
+        return values, brackets
+    for i in range(len(grid) - 1):
+        lo, hi = grid[i], grid[i + 1]
+        if key(values[i]) == key(values[i + 1]):
+            continue
+        points = [(lo, values[i]), (hi, values[i + 1])]
+        for low, high in hints:
+            for s in (low, high):
+                if lo < s < hi and all(abs(math.log(s / p)) > 1e-12 for p, _ in points):
+                    points.append((s, probe(s)))
+        points.sort(key=lambda p: p[0])
+        for (s0, v0), (s1, v1) in zip(points, points[1:]):
+            if key(v0) != key(v1):
+                brackets += _bisect(probe, key, s0, v0, s1, v1, ratio)
+    return values, brackets
+
+
+def _bisect(probe, key, lo, vlo, hi, vhi, ratio):
+    """Bisect in log symprec until ``hi / lo <= ratio``; a third verdict in between splits it."""
+    if hi / lo <= ratio:
+        return [(lo, vlo, hi, vhi)]
+    mid = math.sqrt(lo * hi)
+    vmid = probe(mid)
+    out = []
+    if key(vmid) != key(vlo):
+        out += _bisect(probe, key, lo, vlo, mid, vmid, ratio)
+    if key(vmid) != key(vhi):
+        out += _bisect(probe, key, mid, vmid, hi, vhi, ratio)
+    return out
+
+
+class _Prober:
+    """Evaluates verdicts at one symprec and remembers failures and call counts."""
+
+    def __init__(self, kind, lattice, frac, numbers, angle_tolerance, layer):
+        self.kind, self.layer = kind, layer
+        self.cell = (lattice, frac, numbers)
+        self.angle_tolerance = angle_tolerance
+        self.failures, self.calls, self.seen = [], 0, {}
+
+    def __call__(self, symprec):
+        if symprec not in self.seen:
+            self.seen[symprec] = self._verdict(symprec)
+        return self.seen[symprec]
+
+    def _verdict(self, symprec):
+        self.calls += 1
+        ds, msg = _dataset(*self.cell, symprec, self.angle_tolerance, self.layer)
+        if ds is None:
+            self.failures.append({"kind": self.kind, "symprec": symprec, "message": msg})
+            return (0, "", 0) if self.kind == "group" else None
+        if self.kind == "group":
+            return int(ds.number), str(ds.international), int(len(ds.rotations))
+        pearson = _pearson2d if self.layer else _pearson3d
+        return pearson(int(ds.number), str(ds.international))
+
+
+def _group_key(verdict):
+    return verdict[0], verdict[2]  # group number and operation count (lost translations count)
+
+
+def _hint_brackets(previous, kind):
+    if not previous:
+        return ()
+    return tuple((b["low"], b["high"]) for b in previous.get("breakpoints", ()) if b["kind"] == kind)
+
+
+_LATTICE_CACHE: "collections.OrderedDict[tuple, tuple]" = collections.OrderedDict()
+_SPECTRUM_CACHE: "collections.OrderedDict[bytes, dict]" = collections.OrderedDict()
+_CACHE_SIZE = 512
+
+
+def _cached(cache, key, compute):
+    if key in cache:
+        cache.move_to_end(key)
+        return cache[key], True
+    value = compute()
+    cache[key] = value
+    if len(cache) > _CACHE_SIZE:
+        cache.popitem(last=False)
+    return value, False
+
+
+def _lattice_spectrum(lattice, angle_tolerance, layer, grid, bisect, ratio, shortcut):
+    """Lattice-only verdicts and brackets, cached on the exact lattice (fixed-cell runs: one call).
+
+    With ``shortcut`` the grid is walked upwards only until spglib gives the type it gives at the
+    largest symprec (the holohedry it settles on); the grid points above are given that type
+    without asking (spglib's lattice search takes ~10 ms per call for cubic cells). This assumes
+    the lattice verdict does not leave and come back above that point; ``shortcut=False`` asks
+    at every grid point. Returns (values, brackets, failures, calls, first assumed symprec|None).
+    """
+    one = _one_atom_cell(lattice, layer)
+    key = (one[0].tobytes(), float(angle_tolerance), layer, grid, bisect, float(ratio), shortcut)
+
+    def compute():
+        prober = _Prober("lattice", *one, angle_tolerance, layer)
+        values, assumed = None, None
+        if shortcut and len(grid) > 2:
+            top = prober(grid[-1])
+            values = []
+            for i, s in enumerate(grid[:-1]):
+                values.append(prober(s))
+                if values[-1] == top and top is not None:
+                    values += [top] * (len(grid) - 1 - len(values)) + [top]
+                    assumed = grid[i + 1] if i + 1 < len(grid) - 1 else None
+                    break
+            else:
+                values.append(top)
+        values, brackets = _scan(prober, lambda v: v, grid, bisect, ratio, values=values)
+        return tuple(values), tuple(brackets), tuple(prober.failures), prober.calls, assumed
+
+    value, hit = _cached(_LATTICE_CACHE, key, compute)
+    return value, hit
+
+
+# ----------------------------------------------------------------------------------------------
+# public: spectrum
+# ----------------------------------------------------------------------------------------------
+def spectrum(cell, positions, numbers, *, symprecs=None, angle_tolerance=-1.0, vacuum_axis=None,
+             bisect=True, precision=DEFAULT_PRECISION, previous=None, lattice_shortcut=True):
+    """spglib's verdict across a symprec grid, and where it changes.
+
+    Parameters
+    ----------
+    cell : (3, 3) rows are lattice vectors, Å.  positions : (N, 3) cartesian Å.  numbers : (N,) int.
+    symprecs : grid of spglib ``symprec`` values, Å (default ``DEFAULT_SYMPRECS``: 17 log-spaced
+        values, 1e-5 to 0.5 Å). Sorted and de-duplicated.
+    angle_tolerance : spglib's, degrees (-1: spglib's default). Not applied by spglib 2.8's layer
+        routine (see ``angle_tolerance_applied``).
+    vacuum_axis : None for bulk (space groups, 3D Pearson symbols), or 0/1/2 for a layer (layer
+        groups 1-80, 2D lattice types ``mp op oc tp hp``).
+    bisect : bracket every change between neighbouring grid points.
+    precision : bracket ratio: each breakpoint has ``high / low <= precision`` (default 1.02).
+    previous : the spectrum of a similar earlier frame (e.g. the previous ionic step); its group
+        breakpoints are probed first, so a bracket that still holds costs two spglib calls instead
+        of ~6. The result is still decided by spglib on this frame only (brackets may differ from
+        a cold run's when several changes are close). Measured: 35-50% fewer calls but only
+        5-20% less time, because the calls left are the slow ones next to a change. Exact repeats
+        of a frame are served from a cache (``calls`` = 0); the lattice-only spectrum is cached on
+        the exact lattice, so a fixed-cell run computes it once.
+    lattice_shortcut : stop asking spglib about the lattice alone once it gives the type it gives
+        at the largest symprec, and take that type for the grid points above
+        (``lattice_assumed_from`` says from where; None when every point was asked). False: ask
+        at every grid point.
+
+    Returns
+    -------
+    dict with ``symprec`` (the grid, Å), ``angle_tolerance``, ``group`` (number per symprec, 0
+    where spglib failed), ``group_symbol``, ``operations`` (operations spglib lists for the input
+    cell: only those integral in its basis, times its pure translations), ``lattice`` (Bravais
+    type of the *cell's* lattice alone, None where spglib failed; for a supercell this can be
+    lower than the crystal's translation lattice, e.g. ``op`` for an orthohexagonal cell of a
+    hexagonal layer), ``breakpoints``
+    (dicts ``kind`` "group"|"lattice", ``low``/``high`` Å with spglib's verdict ``from`` at
+    ``low`` and ``to`` at ``high``; group ones also carry symbols and operation counts),
+    ``failures`` (``kind``, ``symprec``, ``message``), ``spglib_version``, ``vacuum_axis``,
+    ``precision``, ``calls`` (spglib calls made for this result).
+
+    Notes
+    -----
+    A group change is a change of the group number *or* of the operation count (a supercell that
+    loses a translation keeps its group type but not its group). Changes are searched only between
+    neighbouring grid points whose verdicts differ: an excursion that leaves and returns between two
+    grid points (e.g. A -> B -> A) is not found, so the grid spacing bounds what is seen. Verdicts
+    need not be monotonic in symprec; every change found is reported, including ones to a lower
+    group. Bisection also reports every change it meets inside one grid interval.
+    """
+    grid = _check_grid(symprecs, precision)
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    layer = vacuum_axis is not None
+    angle_tolerance = float(angle_tolerance)
+    hints = _hint_brackets(previous, "group")
+    digest = hashlib.sha1(b"".join([
+        lattice.tobytes(), frac.tobytes(), nums.tobytes(), np.array(grid).tobytes(),
+        repr((angle_tolerance, vacuum_axis, bool(bisect), float(precision), hints,
+              bool(lattice_shortcut))).encode(),
+    ])).digest()
+    result, hit = _cached(_SPECTRUM_CACHE, digest, lambda: _spectrum(
+        lattice, frac, nums, grid, angle_tolerance, vacuum_axis, bool(bisect), float(precision), hints,
+        bool(lattice_shortcut)))
+    result = copy.deepcopy(result)
+    if hit:
+        result["calls"] = 0
+    return result
+
+
+def _spectrum(lattice, frac, nums, grid, angle_tolerance, vacuum_axis, bisect, ratio, hints,
+              lattice_shortcut):
+    layer = vacuum_axis is not None
+    prober = _Prober("group", lattice, frac, nums, angle_tolerance, layer)
+    groups, gbrackets = _scan(prober, _group_key, grid, bisect, ratio, hints)
+    (lats, lbrackets, lfail, lcalls, assumed), lhit = _lattice_spectrum(
+        lattice, angle_tolerance, layer, grid, bisect, ratio, lattice_shortcut)
+    failures = prober.failures + list(copy.deepcopy(lfail))
+    if all(g[0] == 0 for g in groups) and all(v is None for v in lats):
+        msgs = sorted({f["message"] for f in failures})
+        raise SymmetryError(f"spglib failed at every symprec in {grid[0]:g}..{grid[-1]:g} Å: "
+                            + "; ".join(msgs))
+    breakpoints = [{"kind": "group", "low": lo, "high": hi, "from": vlo[0], "to": vhi[0],
+                    "from_symbol": vlo[1], "to_symbol": vhi[1],
+                    "from_operations": vlo[2], "to_operations": vhi[2]}
+                   for lo, vlo, hi, vhi in gbrackets]
+    breakpoints += [{"kind": "lattice", "low": lo, "high": hi, "from": vlo, "to": vhi}
+                    for lo, vlo, hi, vhi in lbrackets]
+    breakpoints.sort(key=lambda b: (b["low"], b["kind"]))
+    return {
+        "symprec": list(grid),
+        "angle_tolerance": angle_tolerance,
+        "angle_tolerance_applied": (not layer) or _layer_angle_tolerance_applied(),
+        "vacuum_axis": vacuum_axis,
+        "group_kind": "layer" if layer else "space",
+        "group": [g[0] for g in groups],
+        "group_symbol": [g[1] for g in groups],
+        "operations": [g[2] for g in groups],
+        "lattice": list(lats),
+        "lattice_assumed_from": assumed,
+        "breakpoints": breakpoints,
+        "failures": sorted(failures, key=lambda f: (f["kind"], f["symprec"])),
+        "precision": ratio,
+        "spglib_version": spglib.__version__,
+        "calls": prober.calls + (0 if lhit else lcalls),
+    }
+
+
+# ----------------------------------------------------------------------------------------------
+# the full group in the input setting, and the Reynolds projection
+# ----------------------------------------------------------------------------------------------
+def _snap(matrix, denominator=720, tol=1e-8):
+    """Round entries that are within ``tol`` of a multiple of 1/denominator (removes fp noise)."""
+    scaled = matrix * denominator
+    near = np.abs(scaled - np.round(scaled)) < tol * denominator
+    return np.where(near, np.round(scaled) / denominator, matrix)
+
+
+def _std_operations(ds, layer):
+    """The whole group's operations in the standardised basis of ``ds`` (exact rationals).
+
+    Bulk: spglib's database for ``ds.hall_number``. Layers (no database in spglib 2.8): spglib's
+    layer routine on the idealised standard cell, accepted only if it finds the same layer group.
+    Returns (rotations, translations) or None.
+    """
+    if not layer:
+        db, _ = _call(spglib.get_symmetry_from_database, int(ds.hall_number))
+        if db is None:
+            return None
+        return np.array(db["rotations"], dtype=float), np.array(db["translations"], dtype=float)
+    std, _ = _dataset(np.array(ds.std_lattice), np.array(ds.std_positions),
+                      np.array(ds.std_types, dtype=np.intc), 1e-5, -1.0, True)
+    if std is None or int(std.number) != int(ds.number):
+        return None
+    return np.array(std.rotations, dtype=float), np.array(std.translations, dtype=float)
+
+
+def _group_in_input_setting(ds, layer):
+    """Point-operation representatives (one per rotation) of the whole group, input basis.
+
+    With x_std = P x + p (spglib's transformation_matrix P and origin_shift p), an operation
+    (W_s, w_s) of the standard setting acts on input fractional coordinates as
+    W = P^-1 W_s P, w = P^-1 (W_s p + w_s - p). W need not be integral when the input cell is a
+    supercell whose lattice lacks some of the crystal's symmetry (e.g. an orthohexagonal cell);
+    that is why the input cell's own operation list (only the integral ones) is not enough.
+    Returns (W (k, 3, 3), w (k, 3), complete: bool).
+    """
+    ops = _std_operations(ds, layer)
+    if ops is None:  # fall back to the operations integral in the input cell (a subgroup)
+        rot, tr = np.array(ds.rotations, dtype=float), np.array(ds.translations, dtype=float)
+        complete = False
+    else:
+        P = _snap(np.array(ds.transformation_matrix, dtype=float))
+        p = np.array(ds.origin_shift, dtype=float)
+        Pinv = _snap(np.linalg.inv(P))
+        rs, ts = ops
+        rot = np.einsum("ij,kjl,lm->kim", Pinv, rs, P)
+        tr = np.einsum("ij,kj->ki", Pinv, np.einsum("kij,j->ki", rs, p) + ts - p)
+        complete = True
+    _, first = np.unique(np.round(rot, 6).reshape(len(rot), -1), axis=0, return_index=True)
+    first = np.sort(first)
+    return rot[first], tr[first], complete
+
+
+def _pure_translations(ds):
+    rot = np.array(ds.rotations)
+    mask = np.all(rot == np.eye(3, dtype=rot.dtype), axis=(1, 2))
+    return np.array(ds.translations, dtype=float)[mask]
+
+
+def _integer_basis(rows):
+    """Basis (3 integer rows, upper triangular) of the lattice generated by integer ``rows``."""
+    pool = [list(map(int, r)) for r in rows if any(r)]
+    basis = []
+    for col in range(3):
+        while True:
+            nonzero = sorted((r for r in pool if r[col] != 0), key=lambda r: abs(r[col]))
+            if len(nonzero) <= 1:
+                break
+            pivot = nonzero[0]
+            for r in nonzero[1:]:
+                q = r[col] // pivot[col]
+                for k in range(3):
+                    r[k] -= q * pivot[k]
+        nonzero = [r for r in pool if r[col] != 0]
+        basis.append(nonzero[0])
+        pool = [r for r in pool if r is not nonzero[0] and any(r)]
+    return np.array(basis, dtype=float)
+
+
+def _primitive_basis(lattice, translations):
+    """Rows: a basis of the primitive lattice (input lattice plus the pure translations), in input
+    fractional coordinates, Niggli-reduced for clean minimum images. None if the translations are
+    not multiples of 1/len(translations) (then the input lattice is used)."""
+    n = len(translations)
+    if n <= 1:
+        return np.eye(3)
+    scaled = translations * n
+    if np.abs(scaled - np.round(scaled)).max() > 1e-5 * n:
+        return None
+    rows = np.vstack([n * np.eye(3), np.round(scaled)])
+    basis = _integer_basis(rows) / n
+    if abs(abs(np.linalg.det(basis)) * n - 1.0) > 1e-8:
+        return None
+    reduced, _ = _call(spglib.niggli_reduce, basis @ lattice)
+    if reduced is not None:
+        candidate = _snap(np.array(reduced) @ np.linalg.inv(lattice), denominator=n, tol=1e-6)
+        if abs(abs(np.linalg.det(candidate)) * n - 1.0) < 1e-8:
+            basis = candidate
+    return basis
+
+
+def _match(images, frac, numbers_src, numbers, lattice, basis):
+    """For images (k, M, 3) of M atoms, the nearest atom of ``frac`` (N, 3) with the same species,
+    modulo the lattice whose basis rows (input fractional) are ``basis``.
+    Returns (target (k, M), offset (k, M, 3) frac, distance (k, M) Å)."""
+    diff = images[:, :, None, :] - frac[None, None, :, :]
+    inv = np.linalg.inv(basis)
+    z = diff @ inv
+    diff = (z - np.round(z)) @ basis
+    cart = diff @ lattice
+    dist2 = np.einsum("knmi,knmi->knm", cart, cart)
+    dist2[:, numbers_src[:, None] != numbers[None, :]] = np.inf
+    target = np.argmin(dist2, axis=2)
+    k_idx, i_idx = np.indices(target.shape)
+    return target, diff[k_idx, i_idx, target], np.sqrt(dist2[k_idx, i_idx, target])
+
+
+def _average(frac, numbers, lattice, rotations, translations, basis, chunk_elems=3_000_000):
+    """Reynolds average over operations acting on a periodic structure (input fractional coords).
+
+    Each operation must permute the atoms modulo the lattice with basis rows ``basis``; atom j
+    receives the offset of the image that lands on it. Returns (averaged frac, orbit targets
+    (k, N), largest matched distance Å); SymmetryError if an operation is not a permutation.
+    """
+    n = len(frac)
+    acc = np.zeros_like(frac)
+    targets, worst = [], 0.0
+    step = max(1, chunk_elems // (3 * n * n))
+    for start in range(0, len(rotations), step):
+        W, w = rotations[start:start + step], translations[start:start + step]
+        images = np.einsum("kij,nj->kni", W, frac) + w[:, None, :]
+        target, offset, dist = _match(images, frac, numbers, numbers, lattice, basis)
+        if np.any(np.sort(target, axis=1) != np.arange(n)):
+            raise SymmetryError("the group's operations do not map the atoms onto one another "
+                                "(symprec too large for this structure?)")
+        np.add.at(acc, target.ravel(), offset.reshape(-1, 3))
+        targets.append(target)
+        worst = max(worst, float(dist.max()))
+    return frac + acc / len(rotations), np.vstack(targets), worst
+
+
+def _translation_average(frac, numbers, lattice, T, basis, ds):
+    """Average over the pure translations T. Returns (y, representative atom of each atom's class).
+
+    An atom's images under T are the atoms of its primitive class (spglib's mapping_to_primitive),
+    so the average is the mean minimum-image offset within each class (O(N |T|) work); if spglib's
+    classes do not have |T| members each, every translation is matched explicitly instead."""
+    classes = np.asarray(getattr(ds, "mapping_to_primitive", np.zeros(0)), dtype=int)
+    counts = np.bincount(classes) if classes.shape == (len(frac),) else np.zeros(0)
+    if len(T) > 1 and counts.size and np.all(counts == len(T)):
+        y = frac.copy()
+        rep_of = np.empty(len(frac), dtype=int)
+        inv = np.linalg.inv(basis)
+        for c in range(counts.size):
+            idx = np.flatnonzero(classes == c)
+            if np.any(numbers[idx] != numbers[idx[0]]):
+                break
+            d = frac[idx][:, None, :] - frac[idx][None, :, :]  # d[i, j] = x_i - x_j
+            z = d @ inv
+            y[idx] = frac[idx] + ((z - np.round(z)) @ basis).mean(axis=0)
+            rep_of[idx] = idx[0]
+        else:
+            return y, rep_of
+    eye = np.repeat(np.eye(3)[None], len(T), axis=0)
+    y, orbit, _ = _average(frac, numbers, lattice, eye, T, np.eye(3))
+    return y, orbit.min(axis=0)
+
+
+def _projection(lattice, frac, numbers, symprec, angle_tolerance, layer):
+    """Symmetric positions (input fractional) for the group found at symprec; see
+    ``displacement_to_group``. Returns (dataset, point rotations, xbar, cart shift, complete)."""
+    ds, msg = _dataset(lattice, frac, numbers, symprec, angle_tolerance, layer)
+    if ds is None:
+        raise SymmetryError(f"spglib found no symmetry at symprec={symprec:g} Å: {msg}")
+    rot, tr, complete = _group_in_input_setting(ds, layer)
+    T = _pure_translations(ds)
+    basis = _primitive_basis(lattice, T) if complete else None
+    if basis is None:  # only the operations integral in the input cell
+        rot, tr, complete = (np.array(ds.rotations, dtype=float), np.array(ds.translations, dtype=float),
+                             False)
+        T, basis = np.zeros((1, 3)), np.eye(3)
+    # 1) pure translations: y becomes periodic with the primitive lattice
+    y, rep_of = _translation_average(frac, numbers, lattice, T, basis, ds)
+    reps = np.unique(rep_of)
+    # 2) one operation per point operation, acting on the classes (modulo the primitive lattice)
+    ybar, _, _ = _average(y[reps], numbers[reps], lattice, rot, tr, basis)
+    index = np.searchsorted(reps, rep_of)
+    xbar = ybar[index] + (y - y[rep_of])
+    # minimum over origin choices: a uniform shift of a symmetric configuration stays symmetric
+    # (under the translated group); removing the mean displacement is the least-squares shift.
+    shift = (xbar - frac) @ lattice
+    shift -= shift.mean(axis=0)
+    xbar = frac + shift @ np.linalg.inv(lattice)
+    return ds, rot, xbar, shift, complete
+
+
+def _metric_average(lattice, rotations):
+    """Group average of the metric tensor, sum_W W^T G W / k (the nearest invariant metric)."""
+    G = lattice @ lattice.T
+    return np.einsum("kji,jl,klm->im", rotations, G, rotations) / len(rotations)
+
+
+def _strain_norm(lattice, rotations, layer):
+    """Frobenius norm of the Green-Lagrange strain E = (F^T F - I)/2 from the input lattice to the
+    group-averaged one (same orientation; eigenvalues of E are (eig(G^-1 Gbar) - 1)/2).
+    For layers only the in-plane 2x2 block counts (the vacuum vector is not a lattice vector)."""
+    G, Gbar = lattice @ lattice.T, _metric_average(lattice, rotations)
+    if layer:
+        G, Gbar = G[:2, :2], Gbar[:2, :2]
+    lam = np.linalg.eigvals(np.linalg.solve(G, Gbar)).real
+    return float(0.5 * np.sqrt(np.sum((lam - 1.0) ** 2)))
+
+
+# ----------------------------------------------------------------------------------------------
+# public: displacement, drift table, symmetrize, versions
+# ----------------------------------------------------------------------------------------------
+def displacement_to_group(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None):
+    """Displacement the atoms need to be exactly symmetric under the group spglib finds at ``symprec``.
+
+    Method: the Reynolds projection (average over the group's operations) in the input cell's
+    fractional coordinates, first over the pure translations, then over one operation per point
+    operation of the *whole* group (taken from spglib's standard setting and transformed to the
+    input basis, so supercells whose lattice lacks part of the symmetry are treated right). The
+    result is invariant under the group by construction; the best uniform shift (origin choice) is
+    then applied, which removes the mean displacement. Distances are minimum-image, cartesian Å
+    with the *input* lattice; the lattice change needed is reported separately as ``strain``.
+    For a fixed-cell relaxation (symmetric lattice, strain ~ 0) this is the whole drift.
+
+    What it is and is not: the projection is the least-squares nearest configuration invariant
+    under *this* instance of the group (spglib's operations at this symprec, any origin), for the
+    atom matching those operations induce, exactly so when the lattice is already symmetric and
+    to first order in the strain otherwise. Other orientations or settings of the same group type
+    are not searched, so it is an upper bound on the displacement to that group type.
+
+    Returns dict: ``group`` (number; layer group for layers), ``symbol``, ``symprec`` Å,
+    ``angle_tolerance``, ``rms`` and ``max`` Å (per-atom displacement), ``max_atom`` (index),
+    ``strain`` (Frobenius norm of the Green-Lagrange strain to the group-averaged lattice,
+    unitless), ``operations`` (point operations averaged), ``complete`` (False if only the
+    operations integral in the input cell could be used: then the displacement is to a subgroup
+    and may be too small). Raises SymmetryError if spglib fails at this symprec.
+    """
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    layer = vacuum_axis is not None
+    ds, rot, _, shift, complete = _projection(lattice, frac, nums, float(symprec),
+                                                 float(angle_tolerance), layer)
+    norms = np.linalg.norm(shift, axis=1)
+    return {
+        "group": int(ds.number), "symbol": str(ds.international),
+        "symprec": float(symprec), "angle_tolerance": float(angle_tolerance),
+        "rms": float(np.sqrt(np.mean(norms ** 2))), "max": float(norms.max()),
+        "max_atom": int(np.argmax(norms)),
+        "strain": _strain_norm(lattice, rot, layer),
+        "operations": int(len(rot)), "complete": bool(complete),
+    }
+
+
+def symmetrize(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None):
+    """The symmetric configuration behind ``displacement_to_group``: (cell (3, 3) Å, positions (N, 3)
+    cartesian Å, group number). The cell is the group-averaged lattice in the input orientation
+    (right stretch U = sqrt(F^T F), no rotation); for layers the vacuum vector is left alone."""
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    layer = vacuum_axis is not None
+    ds, rot, xbar, _, _ = _projection(lattice, frac, nums, float(symprec), float(angle_tolerance), layer)
+    Gbar = _metric_average(lattice, rot)
+    Linv = np.linalg.inv(lattice)
+    C = Linv @ Gbar @ Linv.T
+    vals, vecs = np.linalg.eigh((C + C.T) / 2)
+    U = vecs @ np.diag(np.sqrt(vals)) @ vecs.T
+    new = lattice @ U
+    if layer:
+        new[2] = lattice[2]
+    positions_out = xbar @ new
+    if layer:  # give back the user's own vacuum vector (cartesian positions do not depend on it)
+        new[2] = _to_c_axis(np.asarray(cell, dtype=float), vacuum_axis)[2]
+    if vacuum_axis is not None and vacuum_axis != 2:  # undo the cyclic permutation
+        new = new[np.argsort([(vacuum_axis + 1) % 3, (vacuum_axis + 2) % 3, vacuum_axis])]
+    return new, positions_out, int(ds.number)
+
+
+def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None):
+    """Displacement to each group seen in ``spec`` (a ``spectrum`` result for this structure).
+
+    Keyed by group number as str; each entry is ``displacement_to_group`` at the smallest symprec
+    at which spglib gave that group (grid points and bisection bracket ends), or ``{"group",
+    "symprec", "error"}`` when that failed. ``vacuum_axis`` defaults to the spectrum's own.
+    """
+    axis = spec.get("vacuum_axis") if vacuum_axis is None else vacuum_axis
+    if "vacuum_axis" in spec and spec["vacuum_axis"] != axis:
+        raise GeometryError(f"vacuum_axis={vacuum_axis!r} but the spectrum was computed with "
+                            f"vacuum_axis={spec['vacuum_axis']!r}")
+    smallest = {}
+    for s, g in zip(spec["symprec"], spec["group"]):
+        if g and s < smallest.get(g, math.inf):
+            smallest[g] = s
+    for b in spec["breakpoints"]:
+        if b["kind"] != "group":
+            continue
+        for s, g in ((b["low"], b["from"]), (b["high"], b["to"])):
+            if g and s < smallest.get(g, math.inf):
+                smallest[g] = s
+    table = {}
+    for g, s in sorted(smallest.items(), key=lambda item: item[1]):
+        try:
+            table[str(g)] = displacement_to_group(
+                cell, positions, numbers, symprec=s, angle_tolerance=spec["angle_tolerance"],
+                vacuum_axis=axis)
+        except SymmetryError as exc:
+            table[str(g)] = {"group": g, "symprec": s, "error": str(exc)}
+    return table
+
+
+def clear_cache():
+    """Forget cached spectra and lattice spectra (they are keyed on exact input bytes)."""
+    _SPECTRUM_CACHE.clear()
+    _LATTICE_CACHE.clear()
+
+
+def versions():
+    """spglib version, layer-group support, and the error-handling modes seen in this process."""
+    env = os.environ.get("SPGLIB_OLD_ERROR_HANDLING")
+    old = getattr(spglib.error, "OLD_ERROR_HANDLING", None)
+    if env is not None:
+        current = "returns None" if env.lower() not in ("false", "0") else "raises SpglibError"
+    elif old is not None:
+        current = "returns None" if old else "raises SpglibError"
+    else:
+        current = "raises SpglibError"
+    return {
+        "spglib": spglib.__version__,
+        "layer_groups": hasattr(spglib, "get_symmetry_layerdataset"),
+        "error_mode_now": current,
+        "failures_seen": dict(_SEEN),
+    }

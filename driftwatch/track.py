@@ -1,0 +1,163 @@
+"""One run through the pipeline: frames -> invariants on every frame -> spglib on chosen frames -> record.
+
+``analyze(path_or_run, config)`` returns the run record (schema ``driftwatch/run-1``, see
+``docs/record.md``). The lattice invariants are computed for all frames in one vectorised call; spglib
+runs only on the frames :func:`select_frames` picks.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterable
+
+import numpy as np
+
+from . import __version__, config as _config, geometry, lattice2d, lattice3d, records, rules, symmetry
+from .adapters import Run, read_run
+from .errors import GeometryError
+
+__all__ = ["analyze", "lattice_table", "select_frames", "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
+
+LAYER_TYPES = lattice2d.TYPES
+BULK_TYPES = lattice3d.TYPES
+
+
+def _as_lists(d: dict, i: int) -> dict:
+    return {k: float(v[i]) for k, v in d.items()}
+
+
+def lattice_table(run: Run, geo, metric: str = "l2") -> dict:
+    """Invariants of every frame as arrays (n, ...). Layers use the in-plane 2D lattice; bulk the 3D cell."""
+    if geo.dimension == 2:
+        bases = geometry.inplane_bases(run.cells, geo.vacuum_axis)
+        return {
+            "dimension": 2,
+            "bases": bases,
+            "root_invariant": lattice2d.root_invariant(bases),
+            "sign": lattice2d.sign(bases),
+            "projected": lattice2d.projected(bases),
+            "distance": lattice2d.distances(bases, metric=metric),
+            "distance_projected": lattice2d.distances(bases, metric=metric, space="projected"),
+            "deformation": lattice2d.deformation(bases, metric=metric),
+        }
+    return {
+        "dimension": 3,
+        "bases": run.cells,
+        "root_products": lattice3d.root_products(run.cells),
+        "distance": lattice3d.distances(run.cells, metric=metric),
+        "deformation": lattice3d.deformation(run.cells, metric=metric),
+        "systems": lattice3d.system_distances(run.cells, metric=metric),
+    }
+
+
+def select_frames(deformation: dict, sel: dict) -> list[int]:
+    """Frames for spglib: first, last, every Nth, and where any deformation moved > on_change (Å)."""
+    d = np.stack([np.asarray(v, float) for v in deformation.values()], axis=1)  # (n, types)
+    n = d.shape[0]
+    if sel["all_frames"]:
+        return list(range(n))
+    chosen = {0, n - 1}
+    if sel["every"]:
+        chosen.update(range(0, n, sel["every"]))
+    last = d[0]
+    for i in range(1, n):
+        if i in chosen or np.max(np.abs(d[i] - last)) > sel["on_change"]:
+            chosen.add(i)
+            last = d[i]
+    return sorted(chosen)
+
+
+def symprec_grid(cfg: dict) -> list[float]:
+    """Log-spaced symprec grid (Å) plus every symprec a rule or the report quotes, so those are exact."""
+    s = cfg["symmetry"]
+    grid = np.geomspace(s["symprec_min"], s["symprec_max"], s["grid_points"])
+    half_step = 0.5 * np.log(grid[1] / grid[0])
+    r = cfg["rules"]
+    extra = [r["tolerance_sensitive"]["low"], r["tolerance_sensitive"]["high"],
+             r["spglib_overcall"]["symprec"], r["atoms_break_lattice"]["symprec"],
+             r["atoms_settled"]["symprec"], *cfg["report"]["common_symprecs"]]
+    out = list(grid)
+    for x in extra:
+        if not s["symprec_min"] <= x <= s["symprec_max"]:
+            continue
+        i = int(np.argmin(np.abs(np.log(grid / x))))
+        if abs(np.log(grid[i] / x)) < half_step and grid[i] not in (grid[0], grid[-1]):
+            out[i] = x          # move the nearest interior grid point onto the quoted value
+        else:
+            out.append(x)
+    return sorted({round(float(x), 12) for x in out})
+
+
+def _fixed_cell(cells: np.ndarray) -> bool:
+    scale = max(float(np.abs(cells[0]).max()), 1.0)
+    return bool(np.all(np.abs(cells - cells[0]) <= 1e-9 * scale))
+
+
+def _frame_entries(run: Run, table: dict) -> list[dict]:
+    n = len(run.cells)
+    forces = run.forces
+    fmax = None if forces is None else np.sqrt((np.asarray(forces) ** 2).sum(-1)).max(-1)
+    out = []
+    for i in range(n):
+        f = {"index": i, "step": int(run.steps[i]),
+             "energy": None if run.energies is None else float(run.energies[i]),
+             "fmax": None if fmax is None else float(fmax[i])}
+        if table["dimension"] == 2:
+            f["root_invariant"] = [float(x) for x in table["root_invariant"][i]]
+            f["sign"] = int(table["sign"][i])
+            f["projected"] = [float(x) for x in table["projected"][i]]
+            f["distance"] = _as_lists(table["distance"], i)
+            f["distance_projected"] = _as_lists(table["distance_projected"], i)
+            f["deformation"] = _as_lists(table["deformation"], i)
+            f["chiral_distance"] = f["sign"] * f["distance"]["mirror"]
+        else:
+            f["root_products"] = [float(x) for x in table["root_products"][i]]
+            f["distance"] = _as_lists(table["distance"], i)
+            f["deformation"] = _as_lists(table["deformation"], i)
+            f["systems"] = _as_lists(table["systems"], i)
+        out.append(f)
+    return out
+
+
+def _symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float]) -> dict:
+    s = cfg["symmetry"]
+    spec = symmetry.spectrum(run.cells[i], run.positions[i], run.numbers, symprecs=grid,
+                             angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
+                             bisect=s["bisect"], precision=s["precision"])
+    spec["displacement"] = symmetry.drift_table(run.cells[i], run.positions[i], run.numbers, spec,
+                                                vacuum_axis=geo.vacuum_axis)
+    return spec
+
+
+def analyze(path_or_run, config=None, *, format: str | None = None,
+            frames: Iterable[int] | None = None) -> dict:
+    """Analyse one run and return its record (schema ``driftwatch/run-1``).
+
+    Args:
+        path_or_run: a file, a run folder, or a :class:`~driftwatch.adapters.Run`.
+        config: preset name, YAML path, mapping, or an already loaded config (None: default).
+        format: adapter name, overriding detection.
+        frames: analyse spglib on exactly these frame indices (default: the config's selection).
+    """
+    t0 = time.perf_counter()
+    cfg = _config.coerce(config)
+    run = path_or_run if isinstance(path_or_run, Run) else read_run(path_or_run, format=format)
+    geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+    if cfg["geometry"]["require_layer"] and geo.dimension != 2:
+        raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
+    table = lattice_table(run, geo, cfg["lattice"]["metric"])
+    entries = _frame_entries(run, table)
+    t1 = time.perf_counter()
+    chosen = sorted(set(frames)) if frames is not None else select_frames(table["deformation"],
+                                                                          cfg["selection"])
+    grid = symprec_grid(cfg)
+    for i in chosen:
+        entries[i]["symmetry"] = _symmetry_entry(run, i, geo, cfg, grid)
+    t2 = time.perf_counter()
+    record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
+                                versions={"driftwatch": __version__, **symmetry.versions()})
+    record["flags"] = rules.evaluate(record, cfg)
+    record["summary"] = rules.summarize(record, cfg)
+    record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
+                        "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen)}
+    return record

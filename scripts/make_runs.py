@@ -1,0 +1,363 @@
+#!/usr/bin/env python3
+"""Regenerate driftwatch's real relaxation data: the pw.x fixtures and the demo campaign.
+
+Everything this script writes is produced here by real programs:
+
+* Quantum ESPRESSO ``pw.x`` (Debian's package, LDA pseudopotentials from
+  ``quantum-espresso-data``) for the ``pw.in`` + ``pw.out`` folders;
+* ASE optimizers (BFGS / FIRE, optionally on a ``FrechetCellFilter``) driving ASE's own
+  ``EMT`` calculator for the ``.traj`` and extended-XYZ runs.
+
+All cells and compound labels are invented (demo campaign "Saltmarsh-12", see
+``example_runs/README.md``); only the elements and their shipped pseudopotentials are real.
+
+Outputs (relative to ``--out``, default: the repository root)::
+
+    tests/data/qe/<name>/pw.in, pw.out[.gz]        small pw.x fixtures for the adapter tests
+    tests/data/qe/pseudo/*.UPF                      pseudopotentials those inputs use
+    example_runs/<name>/pw.in, pw.out[.gz]          pw.x runs of the demo campaign
+    example_runs/<name>.traj, <name>.extxyz         ASE runs of the demo campaign
+    example_runs/pseudo/*.UPF
+
+Inputs use ``pseudo_dir='../pseudo'`` and a scratch ``outdir`` that is deleted after each run,
+so no absolute machine path lands in a committed file (checked after every run).
+
+Usage::
+
+    python scripts/make_runs.py                     # everything (about 6-9 min on 2 idle cores)
+    python scripts/make_runs.py --only L01-hex-snap --only qe-fixtures
+    python scripts/make_runs.py --list
+    python scripts/make_runs.py --out /tmp/regen    # write somewhere else
+
+pw.x is run as ``OMP_NUM_THREADS=1 mpirun --allow-run-as-root -np 2 pw.x -nk 2`` (``--np 1`` for
+a single process), one run at a time.
+"""
+from __future__ import annotations
+
+import argparse
+import gzip
+import os
+import re
+import shutil
+import subprocess
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+PSEUDO_SRC = Path("/usr/share/espresso/pseudo")
+REPO = Path(__file__).resolve().parent.parent
+GZIP_ABOVE = 300_000  # bytes: pw.out files larger than this are committed gzipped
+
+MASSES = {"Al": 26.9815, "Si": 28.0855, "Mg": 24.305, "C": 12.011, "B": 10.811}
+PSEUDO = {"Al": "Al.pz-vbc.UPF", "Si": "Si.pz-vbc.UPF", "Mg": "Mg.pz-n-vbc.UPF"}
+
+
+# --------------------------------------------------------------------------------------
+# small geometry helpers
+# --------------------------------------------------------------------------------------
+def layer_cell(a: float, b: float, gamma_deg: float, c: float) -> np.ndarray:
+    """In-plane vectors a (along x) and b at angle gamma, c along z (Å)."""
+    g = np.radians(gamma_deg)
+    return np.array([[a, 0.0, 0.0], [b * np.cos(g), b * np.sin(g), 0.0], [0.0, 0.0, c]])
+
+
+def fcc_primitive(a: float, c: float | None = None) -> np.ndarray:
+    """fcc primitive vectors of a conventional a x a x c cell (c != a: body-centred tetragonal)."""
+    c = a if c is None else c
+    return np.array([[0.0, a / 2, c / 2], [a / 2, 0.0, c / 2], [a / 2, a / 2, 0.0]])
+
+
+def bcc_primitive(a: float, c: float | None = None) -> np.ndarray:
+    c = a if c is None else c
+    return np.array([[-a / 2, a / 2, c / 2], [a / 2, -a / 2, c / 2], [a / 2, a / 2, -c / 2]])
+
+
+# --------------------------------------------------------------------------------------
+# pw.x runs
+# --------------------------------------------------------------------------------------
+@dataclass
+class QERun:
+    name: str
+    tree: str                      # "tests/data/qe" or "example_runs"
+    calculation: str               # "vc-relax" | "relax"
+    cell: np.ndarray               # (3, 3) Å, rows
+    symbols: list[str]
+    frac: np.ndarray               # (N, 3) crystal coordinates
+    kpts: tuple = (6, 6, 1, 0, 0, 0)
+    ecutwfc: float = 20.0
+    system: dict = field(default_factory=dict)    # extra &system entries
+    control: dict = field(default_factory=dict)   # extra &control entries
+    ions: dict = field(default_factory=dict)
+    cellnl: dict = field(default_factory=dict)
+    fix: list | None = None        # per-atom (fx, fy, fz) 0/1 if_pos flags
+    truncate: dict | None = None   # cut the finished pw.out like a killed job (see cut_like_killed)
+    note: str = ""
+
+
+def _fmt(v) -> str:
+    if isinstance(v, bool):
+        return ".true." if v else ".false."
+    if isinstance(v, str):
+        return f"'{v}'"
+    if isinstance(v, float):
+        return repr(v)
+    return str(v)
+
+
+def _namelist(name: str, entries: dict) -> str:
+    body = "".join(f"  {k} = {_fmt(v)}\n" for k, v in entries.items())
+    return f"&{name}\n{body}/\n"
+
+
+def pw_input(run: QERun) -> str:
+    control = {
+        "calculation": run.calculation,
+        "prefix": "pw",
+        "pseudo_dir": "../pseudo",
+        "outdir": "./scratch",
+        "disk_io": "none",
+        "tprnfor": True,
+        "tstress": True,
+        "etot_conv_thr": 1.0e-6,
+        "forc_conv_thr": 1.0e-4,
+        "nstep": 80,
+    }
+    control.update(run.control)
+    species = sorted(set(run.symbols), key=run.symbols.index)
+    system = {
+        "ibrav": 0,
+        "nat": len(run.symbols),
+        "ntyp": len(species),
+        "ecutwfc": run.ecutwfc,
+        "occupations": "smearing",
+        "smearing": "mv",
+        "degauss": 0.02,
+    }
+    system.update(run.system)
+    if system["occupations"] != "smearing":
+        system.pop("smearing")
+        system.pop("degauss")
+    electrons = {"conv_thr": 1.0e-9, "mixing_beta": 0.5}
+    text = _namelist("control", control) + _namelist("system", system) + _namelist("electrons", electrons)
+    text += _namelist("ions", {"ion_dynamics": "bfgs", **run.ions})
+    if run.calculation == "vc-relax":
+        text += _namelist("cell", {"cell_dynamics": "bfgs", "press_conv_thr": 0.05, **run.cellnl})
+    text += "ATOMIC_SPECIES\n"
+    for s in species:
+        text += f"  {s} {MASSES[s]} {PSEUDO[s]}\n"
+    text += "CELL_PARAMETERS angstrom\n"
+    for row in run.cell:
+        text += "  " + " ".join(f"{x:15.10f}" for x in row) + "\n"
+    text += "ATOMIC_POSITIONS crystal\n"
+    for i, (s, p) in enumerate(zip(run.symbols, run.frac)):
+        line = f"  {s} " + " ".join(f"{x:15.10f}" for x in p)
+        if run.fix is not None:
+            line += " " + " ".join(str(int(f)) for f in run.fix[i])
+        text += line + "\n"
+    text += "K_POINTS automatic\n  " + " ".join(str(k) for k in run.kpts) + "\n"
+    return text
+
+
+def cut_like_killed(text: str, step: int, scf_iteration: int) -> str:
+    """Cut a finished pw.out inside SCF iteration ``scf_iteration`` of ionic step ``step``.
+
+    This is what a job killed by the queue leaves behind: everything pw.x flushed up to the
+    middle of an SCF cycle, no final summary, no JOB DONE.  Steps count from 0 (the first SCF).
+    """
+    lines = text.splitlines(keepends=True)
+    seen_step = -1
+    for i, line in enumerate(lines):
+        if "Self-consistent Calculation" in line:
+            seen_step += 1
+        if seen_step == step and re.match(rf"\s+iteration #\s*{scf_iteration}\s", line):
+            # keep the iteration header and a few lines of its output, then stop mid-line
+            keep = "".join(lines[: i + 3])
+            return keep + lines[i + 3][: len(lines[i + 3]) // 2]
+    raise RuntimeError(f"could not find step {step} iteration {scf_iteration} to cut at")
+
+
+def _check_no_abs_paths(path: Path) -> None:
+    opener = gzip.open if path.suffix == ".gz" else open
+    with opener(path, "rt", errors="replace") as fh:
+        text = fh.read()
+    for bad in (str(REPO), "/work/", "/tmp/", "/root", "/home/", "/usr/share/espresso"):
+        if bad in text:
+            raise RuntimeError(f"{path}: absolute path {bad!r} found in output")
+
+
+def run_qe(run: QERun, out_root: Path, np_: int) -> dict:
+    tree = out_root / run.tree
+    pseudo_dir = tree / "pseudo"
+    pseudo_dir.mkdir(parents=True, exist_ok=True)
+    for s in set(run.symbols):
+        dst = pseudo_dir / PSEUDO[s]
+        if not dst.exists():
+            shutil.copy2(PSEUDO_SRC / PSEUDO[s], dst)
+    rundir = tree / run.name
+    if rundir.exists():
+        shutil.rmtree(rundir)
+    rundir.mkdir(parents=True)
+    (rundir / "pw.in").write_text(pw_input(run))
+    env = dict(os.environ, OMP_NUM_THREADS="1")
+    if np_ > 1:
+        cmd = ["mpirun", "--allow-run-as-root", "-np", str(np_), "pw.x", "-nk", str(np_), "-in", "pw.in"]
+    else:
+        cmd = ["pw.x", "-in", "pw.in"]
+    t0 = time.time()
+    with open(rundir / "pw.out.partial", "w") as fh:
+        proc = subprocess.run(cmd, cwd=rundir, stdout=fh, stderr=subprocess.PIPE, env=env, text=True)
+    wall = time.time() - t0
+    shutil.rmtree(rundir / "scratch", ignore_errors=True)
+    text = (rundir / "pw.out.partial").read_text()
+    (rundir / "pw.out.partial").unlink()
+    if proc.returncode != 0 and run.truncate is None:
+        raise RuntimeError(f"pw.x failed for {run.name} (rc {proc.returncode}): {proc.stderr[-2000:]}")
+    if "JOB DONE" not in text:
+        raise RuntimeError(f"pw.x did not finish for {run.name}")
+    if run.truncate is not None:
+        text = cut_like_killed(text, **run.truncate)
+    # leave only pw.in and pw.out in the folder
+    for extra in rundir.iterdir():
+        if extra.name not in ("pw.in",):
+            if extra.is_dir():
+                shutil.rmtree(extra)
+            else:
+                extra.unlink()
+    data = text.encode()
+    if len(data) > GZIP_ABOVE:
+        target = rundir / "pw.out.gz"
+        with gzip.GzipFile(target, "wb", mtime=0) as gz:
+            gz.write(data)
+    else:
+        target = rundir / "pw.out"
+        target.write_bytes(data)
+    _check_no_abs_paths(rundir / "pw.in")
+    _check_no_abs_paths(target)
+    return {"name": run.name, "wall_s": round(wall, 1), "file": str(target.relative_to(out_root)),
+            "bytes": target.stat().st_size}
+
+
+# --------------------------------------------------------------------------------------
+# run catalogue
+# --------------------------------------------------------------------------------------
+# Constant-cutoff modified kinetic functional: keeps the plane-wave basis from freezing the
+# starting cell's anisotropy into the relaxed lattice (see shared qe-notes).
+CONSTANT_CUTOFF = {"ecfixed": 16.0, "qcutz": 150.0, "q2sigma": 2.0}
+
+QE_RUNS: list[QERun] = [
+    # ---- fixtures for the adapter tests (tests/data/qe) -------------------------------
+    QERun(
+        name="layer_oblique_to_hex", tree="tests/data/qe", calculation="vc-relax",
+        cell=layer_cell(3.78, 3.92, 116.0, 16.0), symbols=["Si", "Si"],
+        frac=np.array([[0.0, 0.0, 0.5], [0.35, 0.64, 0.53]]),
+        system={**CONSTANT_CUTOFF, "degauss": 0.01}, cellnl={"cell_dofree": "2Dxy"},
+        note="buckled two-atom Si layer, oblique start, relaxes onto the hexagonal lattice",
+    ),
+    QERun(
+        name="bulk_tetragonal_to_cubic", tree="tests/data/qe", calculation="vc-relax",
+        cell=fcc_primitive(4.00, 4.16), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
+        kpts=(8, 8, 8, 0, 0, 0), system={**CONSTANT_CUTOFF},
+        note="one-atom fcc-type Al cell strained 4% along c (body-centred tetragonal), relaxes to cubic",
+    ),
+    QERun(
+        name="relax_atoms_to_sites", tree="tests/data/qe", calculation="relax",
+        cell=fcc_primitive(5.40), symbols=["Si", "Si"],
+        frac=np.array([[0.0, 0.0, 0.0], [0.25, 0.25, 0.25]]) + np.array([[0.0, 0.0, 0.0], [0.028, -0.017, 0.009]]),
+        kpts=(4, 4, 4, 0, 0, 0), ecutwfc=18.0, system={"occupations": "fixed"},
+        note="two-atom diamond-type Si cell, one atom pushed off its site, fixed cell: atoms return",
+    ),
+    # ---- demo campaign "Saltmarsh-12" (example_runs) --------------------------------------
+    QERun(
+        name="L01_qe_vcrelax", tree="example_runs", calculation="vc-relax",
+        cell=layer_cell(3.70, 3.98, 113.0, 16.0), symbols=["Si", "Si"],
+        frac=np.array([[0.0, 0.0, 0.5], [0.36, 0.65, 0.528]]),
+        system={**CONSTANT_CUTOFF, "degauss": 0.01}, cellnl={"cell_dofree": "2Dxy", "press_conv_thr": 0.02},
+        note="SM-L01, buckled Si2 layer from an oblique start, constant-cutoff functional",
+    ),
+    QERun(
+        name="L02_qe_vcrelax", tree="example_runs", calculation="vc-relax",
+        cell=layer_cell(3.70, 3.98, 113.0, 16.0), symbols=["Si", "Si"],
+        frac=np.array([[0.0, 0.0, 0.5], [0.36, 0.65, 0.528]]),
+        system={"degauss": 0.01}, cellnl={"cell_dofree": "2Dxy", "press_conv_thr": 0.02},
+        note="SM-L02, same start as SM-L01 with a plain fixed plane-wave basis",
+    ),
+    QERun(
+        name="L03_qe_vcrelax", tree="example_runs", calculation="vc-relax",
+        cell=layer_cell(2.70, 2.85, 112.0, 14.0), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.5]]),
+        system={**CONSTANT_CUTOFF}, cellnl={"cell_dofree": "2Dxy"},
+        note="SM-L03, one-atom Al layer from an oblique start",
+    ),
+    QERun(
+        name="L04_qe_relax", tree="example_runs", calculation="relax",
+        cell=layer_cell(3.846, 3.846, 120.0, 16.0), symbols=["Si", "Si"],
+        frac=np.array([[0.0, 0.0, 0.5], [0.372, 0.641, 0.531]]),
+        system={"degauss": 0.01},
+        note="SM-L04, Si2 layer in a fixed hexagonal cell, second atom off its site",
+    ),
+    QERun(
+        name="L05_qe_killed", tree="example_runs", calculation="vc-relax",
+        cell=layer_cell(2.62, 2.80, 106.0, 14.0), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.5]]),
+        system={**CONSTANT_CUTOFF}, cellnl={"cell_dofree": "2Dxy"},
+        truncate={"step": 6, "scf_iteration": 3},
+        note="SM-L05, one-atom Al layer; pw.out cut inside the SCF of ionic step 6 (killed job)",
+    ),
+    QERun(
+        name="B01_qe_vcrelax", tree="example_runs", calculation="vc-relax",
+        cell=np.array([[0.0, 4.04 / 2, 4.12 / 2], [3.96 / 2, 0.0, 4.12 / 2], [3.96 / 2, 4.04 / 2, 0.0]]),
+        symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
+        kpts=(8, 8, 8, 0, 0, 0), system={**CONSTANT_CUTOFF},
+        note="SM-B01, one-atom face-centred orthorhombic Al cell (a, b, c = 3.96, 4.04, 4.12)",
+    ),
+    QERun(
+        name="B02_qe_vcrelax_sym", tree="example_runs", calculation="vc-relax",
+        cell=bcc_primitive(3.20), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
+        kpts=(7, 8, 9, 0, 0, 0), system={**CONSTANT_CUTOFF},
+        note="SM-B02, one-atom body-centred cubic Al cell, symmetry detection on, uneven 7x8x9 mesh",
+    ),
+    QERun(
+        name="B03_qe_vcrelax_nosym", tree="example_runs", calculation="vc-relax",
+        cell=bcc_primitive(3.20), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
+        kpts=(7, 8, 9, 0, 0, 0), system={**CONSTANT_CUTOFF, "nosym": True},
+        note="SM-B03, same start and mesh as SM-B02 with nosym=.true.",
+    ),
+]
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--only", action="append", default=[],
+                    help="run name, or a group: qe-fixtures, qe, ase, examples (repeatable)")
+    ap.add_argument("--out", type=Path, default=REPO, help="output root (default: repository root)")
+    ap.add_argument("--np", type=int, default=2, help="MPI processes for pw.x (1 or 2; default 2)")
+    ap.add_argument("--list", action="store_true", help="list the runs and exit")
+    args = ap.parse_args(argv)
+    if args.np not in (1, 2):
+        ap.error("--np must be 1 or 2 (the machine is shared)")
+    runs = [("qe", r) for r in QE_RUNS]
+    if args.list:
+        for kind, r in runs:
+            print(f"{r.name:32s} {kind:4s} {r.tree}  {r.note}")
+        return 0
+    selected = []
+    for kind, r in runs:
+        groups = {r.name, kind, "qe-fixtures" if r.tree.startswith("tests") else "examples"}
+        if not args.only or groups & set(args.only):
+            selected.append((kind, r))
+    known = {r.name for _, r in runs} | {"qe", "ase", "qe-fixtures", "examples"}
+    unknown = set(args.only) - known
+    if unknown:
+        ap.error(f"unknown run name(s): {', '.join(sorted(unknown))} (see --list)")
+    t0 = time.time()
+    for kind, r in selected:
+        if kind == "qe":
+            res = run_qe(r, args.out, args.np)
+        print(f"{res['name']:32s} {res['wall_s']:7.1f} s  {res['bytes']:8d} B  {res['file']}", flush=True)
+    print(f"total {time.time() - t0:.1f} s")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

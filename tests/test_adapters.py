@@ -1,0 +1,552 @@
+"""Adapters: registry, detection, every format, run folders, truncation, streaming, memory.
+
+External references used here (named beside each check):
+* genuine VASP files shipped in ASE's test data (copied to tests/data/vasp/, see its README);
+* real Quantum ESPRESSO pw.x outputs made here (tests/data/qe/, pw.x 6.7 from Debian);
+* ASE's own readers (ase.io.read, ase.db), pymatgen's Vasprun and Xdatcar;
+* multi-step VASP fixtures from tests/vasp_gen.py (invented trajectories, VASP layouts).
+"""
+from __future__ import annotations
+
+import bz2
+import gzip
+import json
+import lzma
+import re
+import shutil
+import tracemalloc
+import warnings
+from importlib.metadata import EntryPoint
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import ase.db
+import ase.io
+from ase import Atoms
+from ase.calculators.singlepoint import SinglePointCalculator
+
+from driftwatch.adapters import Frame, detect, formats, iter_frames, read_run, register
+from driftwatch.adapters import registry
+from driftwatch.errors import InputError, UnknownFormatError
+
+import vasp_gen
+
+DATA = Path(__file__).parent / "data"
+VASP = DATA / "vasp"
+QE_OUTS = sorted((DATA / "qe").glob("*/pw.out*"))
+GENUINE_VASP = [VASP / "vasprun_pstress.xml", VASP / "vasprun_dfpt.xml",
+                VASP / "OUTCAR_example_1.gz"]
+needs_qe = pytest.mark.skipif(not QE_OUTS, reason="no pw.x outputs in tests/data/qe yet")
+
+
+@pytest.fixture(autouse=True)
+def _restore_registry():
+    """Tests that register formats must not leak them (as ASE's test_external_io_formats does)."""
+    saved = dict(registry._formats)
+    yield
+    registry._formats.clear()
+    registry._formats.update(saved)
+
+
+@pytest.fixture(scope="module")
+def traj():
+    return vasp_gen.drifting_layer(6)
+
+
+def _ase_images(t, pbc=(True, True, False)):
+    out = []
+    for k in range(len(t.cells)):
+        a = Atoms(t.symbols, cell=t.cells[k], scaled_positions=t.frac[k], pbc=pbc)
+        a.calc = SinglePointCalculator(a, energy=t.energies[k], free_energy=t.energies[k],
+                                       forces=t.forces[k], stress=np.arange(6) * 1e-3 * k)
+        out.append(a)
+    return out
+
+
+def _unzipped(path: Path, tmp_path: Path) -> Path:
+    if path.suffix != ".gz":
+        return path
+    out = tmp_path / path.stem
+    out.write_bytes(gzip.decompress(path.read_bytes()))
+    return out
+
+
+def _assert_same_as_ase(run, path, ase_format=None, atol=0.0):
+    """Frame by frame: cells, positions, numbers, energies, forces, stress equal to ASE's reader."""
+    ref = ase.io.read(path, ":", format=ase_format)
+    assert len(run) == len(ref)
+    for i, a in enumerate(ref):
+        np.testing.assert_allclose(run.cells[i], a.cell.array, atol=atol, rtol=0)
+        np.testing.assert_allclose(run.positions[i], a.positions, atol=atol, rtol=0)
+        assert np.array_equal(run.numbers, a.numbers)
+        if a.calc is not None:
+            res = a.calc.results
+            e = res.get("free_energy", res.get("energy"))
+            if e is not None:
+                assert run.energies[i] == pytest.approx(e, abs=1e-10)
+            if "forces" in res:
+                np.testing.assert_allclose(run.forces[i], res["forces"], atol=1e-10, rtol=0)
+            if "stress" in res:
+                np.testing.assert_allclose(run.stress[i], res["stress"], atol=1e-12, rtol=0)
+
+
+# ---------------------------------------------------------------- every registered format
+def _write_vasp_xml(t, d):
+    return vasp_gen.write_vasprun(d / "vasprun.xml", t)
+
+
+def _write_outcar(t, d):
+    return vasp_gen.write_outcar(d / "OUTCAR", t)
+
+
+def _write_xdatcar(t, d):
+    return vasp_gen.write_xdatcar(d / "XDATCAR", t)
+
+
+def _write_poscar(t, d):
+    return vasp_gen.write_poscar(d / "POSCAR", t.cells[0], t.frac[0], t.symbols)
+
+
+def _write_traj(t, d):
+    ase.io.write(d / "relax.traj", _ase_images(t))
+    return d / "relax.traj"
+
+
+def _write_extxyz(t, d):
+    ase.io.write(d / "relax.xyz", _ase_images(t), format="extxyz")
+    return d / "relax.xyz"
+
+
+def _write_db(t, d, name="relax.db"):
+    with ase.db.connect(d / name) as db:
+        for a in _ase_images(t):
+            db.write(a, campaign="invented")
+    return d / name
+
+
+def _write_pmg(t, d):
+    from pymatgen.io.ase import AseAtomsAdaptor
+    p = d / "structures.json"
+    p.write_text(json.dumps([AseAtomsAdaptor.get_structure(a).as_dict() for a in _ase_images(t)]))
+    return p
+
+
+WRITERS = {
+    "vasp-xml": _write_vasp_xml, "vasp-out": _write_outcar, "vasp-xdatcar": _write_xdatcar,
+    "vasp-poscar": _write_poscar, "traj": _write_traj, "extxyz": _write_extxyz,
+    "ase-db": _write_db, "ase-json-db": lambda t, d: _write_db(t, d, "relax.json"),
+    "pymatgen-json": _write_pmg,
+}
+BUILTIN = list(formats())
+
+
+@pytest.mark.parametrize("name", BUILTIN)
+def test_every_registered_format_round_trips(name, traj, tmp_path):
+    """Parametrised over the registry, like ASE's test_ioformats: write with the format's
+    own producer (ASE writers, pymatgen as_dict, tests/vasp_gen.py), detect, read back."""
+    if name == "espresso-out":
+        if not QE_OUTS:
+            pytest.skip("no pw.x outputs yet")
+        path = _unzipped(QE_OUTS[0], tmp_path)
+        assert detect(path) == name
+        _assert_same_as_ase(read_run(path), path)            # real pw.x output vs ASE's reader
+        return
+    path = WRITERS[name](traj, tmp_path)
+    assert detect(path) == name
+    run = read_run(path)
+    assert run.format == name and run.source == str(path)
+    n = 1 if name == "vasp-poscar" else len(traj.cells)
+    assert len(run) == n
+    # generator values, written as text with >= 8 decimals (extxyz: ASE writes 8)
+    np.testing.assert_allclose(run.cells, traj.cells[:n], atol=1e-7, rtol=0)
+    np.testing.assert_allclose(run.positions, traj.positions[:n], atol=1e-7, rtol=0)
+    assert np.array_equal(run.numbers, traj.numbers)
+    assert run.steps.tolist() == list(range(n))
+    if name in ("vasp-xml", "vasp-out", "traj", "extxyz", "ase-db", "ase-json-db"):
+        np.testing.assert_allclose(run.energies, traj.energies, atol=1e-7)
+        np.testing.assert_allclose(run.forces, traj.forces, atol=1e-7)
+    if name in ("traj", "extxyz", "ase-db", "ase-json-db", "pymatgen-json"):
+        assert run.pbc.tolist() == [True, True, False]        # kept from the ASE Atoms
+    frames = list(iter_frames(path))
+    assert all(isinstance(f, Frame) for f in frames) and len(frames) == n
+
+
+def test_registry_has_the_formats_of_the_issue():
+    """The formats the issue lists (common practice: names follow ASE's where they exist)."""
+    assert {"traj", "extxyz", "vasp-xml", "vasp-out", "vasp-xdatcar", "espresso-out",
+            "ase-db", "pymatgen-json"} <= set(formats())
+    assert set(WRITERS) | {"espresso-out"} >= set(BUILTIN), "new format without a round trip"
+
+
+# ---------------------------------------------------------------- detection
+def test_detection_by_content_glob_override_and_compression(traj, tmp_path):
+    p = vasp_gen.write_outcar(tmp_path / "stage1.log", traj)     # name says nothing: magic decides
+    assert detect(p) == "vasp-out"
+    x = vasp_gen.write_xdatcar(tmp_path / "XDATCAR_relax", traj)
+    assert detect(x) == "vasp-xdatcar"
+    poscar = vasp_gen.write_poscar(tmp_path / "CONTCAR", traj.cells[-1], traj.frac[-1],
+                                   traj.symbols)
+    assert detect(poscar) == "vasp-poscar"                        # glob only (no magic)
+    raw = vasp_gen.write_vasprun(tmp_path / "vasprun.xml", traj).read_bytes()
+    ref = read_run(tmp_path / "vasprun.xml")
+    for ext, comp in ((".gz", gzip.compress), (".bz2", bz2.compress), (".xz", lzma.compress)):
+        c = tmp_path / f"vasprun.xml{ext}"
+        c.write_bytes(comp(raw))
+        run = read_run(c)
+        assert run.format == "vasp-xml" and np.array_equal(run.cells, ref.cells)
+    # compressed without a suffix: recognised by its own magic bytes
+    (tmp_path / "odd").write_bytes(gzip.compress(raw))
+    assert detect(tmp_path / "odd") == "vasp-xml"
+    # user override beats detection
+    xyz = _write_extxyz(traj, tmp_path)
+    assert read_run(xyz, format="extxyz").format == "extxyz"
+    with pytest.raises(UnknownFormatError, match="unknown format 'nope'"):
+        read_run(xyz, format="nope")
+
+
+def test_errors_are_one_line_and_name_the_file(tmp_path):
+    (tmp_path / "empty.out").write_text("")
+    with pytest.raises(InputError, match="empty.out: empty file"):
+        read_run(tmp_path / "empty.out")
+    (tmp_path / "notes.txt").write_text("nothing to see\n")
+    with pytest.raises(UnknownFormatError) as e:
+        read_run(tmp_path / "notes.txt")
+    assert "known formats: vasp-xml" in str(e.value) and "\n" not in str(e.value)
+    with pytest.raises(InputError, match="no such file"):
+        read_run(tmp_path / "missing.traj")
+    with pytest.raises(InputError, match="not a run folder"):
+        read_run(tmp_path)
+    # explicit but wrong format: a one-line InputError naming the file, not a traceback
+    with pytest.raises(InputError, match="notes.txt"):
+        read_run(tmp_path / "notes.txt", format="vasp-out")
+
+
+def test_consistency_checks(traj, tmp_path):
+    """Frames are validated: atom count, non-finite values (common practice)."""
+    a, b = _ase_images(traj)[:2]
+    ase.io.write(tmp_path / "grow.xyz", [a, b + Atoms("S", positions=[[0, 0, 9]])],
+                 format="extxyz")
+    with pytest.raises(InputError, match="atoms count changes at step 1"):
+        read_run(tmp_path / "grow.xyz")
+    x = vasp_gen.write_xdatcar(tmp_path / "XDATCAR", traj).read_text().splitlines()
+    k = [i for i, ln in enumerate(x) if "configuration=     3" in ln][0]
+    x[k + 1] = "  nan nan nan"
+    (tmp_path / "XDATCAR").write_text("\n".join(x) + "\n")
+    with pytest.raises(InputError, match="non-finite positions at step 2"):
+        read_run(tmp_path / "XDATCAR")
+
+
+# ---------------------------------------------------------------- extension points
+def test_new_format_is_one_registered_function(traj, tmp_path):
+    p = tmp_path / "frames.npz"
+    np.savez(p, cells=traj.cells, pos=traj.positions, numbers=traj.numbers)
+
+    def read_npz(path):                       # a one-argument reader yielding ase.Atoms
+        d = np.load(path)
+        for c, x in zip(d["cells"], d["pos"]):
+            yield Atoms(numbers=d["numbers"], positions=x, cell=c, pbc=True)
+
+    register("npz-demo", read_npz, globs=("*.npz",), description="demo npz")
+    assert "npz-demo" in formats() and detect(p) == "npz-demo"
+    run = read_run(p)
+    assert len(run) == len(traj.cells) and run.steps.tolist() == list(range(len(run)))
+    with pytest.raises(ValueError, match="already registered"):
+        register("npz-demo", read_npz)
+
+
+PLUGIN_SPEC = {"name": "spec-plugin", "reader": "driftwatch.adapters.vasp:read_xdatcar",
+               "globs": ("*.xdat",), "description": "a plugin given as a dict"}
+
+
+def test_entry_point_plugins_register_or_warn():
+    """Third-party adapters via the entry-point group; a broken one warns (ASE's convention)."""
+    good = EntryPoint(name="demo-plugin", value="driftwatch.adapters.vasp:read_xdatcar",
+                      group="driftwatch.adapters")
+    registry._register_entry_point(good)
+    assert "demo-plugin" in formats()
+    spec = EntryPoint(name="ignored", value="test_adapters:PLUGIN_SPEC", group="driftwatch.adapters")
+    registry._register_entry_point(spec)
+    assert formats()["spec-plugin"] == "a plugin given as a dict"
+    bad = EntryPoint(name="broken", value="no_such_module_xyz:reader", group="driftwatch.adapters")
+    with pytest.warns(UserWarning, match="failed to register external adapter 'broken'"):
+        registry._register_entry_point(bad)
+    assert "broken" not in formats()
+
+
+# ---------------------------------------------------------------- genuine VASP files (ASE test data)
+@pytest.mark.parametrize("path", GENUINE_VASP, ids=lambda p: p.name)
+def test_genuine_vasp_files_match_ase(path, tmp_path):
+    """Genuine VASP files from ASE's test data: frame count, cells, results equal to ASE's reader."""
+    run = read_run(path)
+    _assert_same_as_ase(run, _unzipped(path, tmp_path))
+    assert len(run) == 1 and run.warnings == ()
+    assert run.pbc.all()
+
+
+def test_genuine_vasp_symmetry_settings():
+    """Values as printed in the genuine files (ASE test data): OUTCAR_example_1 has
+    'ISYM = 0', the two vasprun.xml files ISYM 2 and SYMPREC 1e-5 in <parameters>."""
+    out = read_run(VASP / "OUTCAR_example_1.gz").code_settings
+    assert out["code"] == "vasp" and out["ISYM"] == 0 and out["IBRION"] == -1
+    assert out["ISIF"] == 2
+    for name in ("vasprun_pstress.xml", "vasprun_dfpt.xml"):
+        s = read_run(VASP / name).code_settings
+        assert s["ISYM"] == 2 and s["SYMPREC"] == pytest.approx(1e-5) and s["ISIF"] == 2
+
+
+# ---------------------------------------------------------------- generated multi-step VASP
+def test_generated_vasp_three_readers_agree(traj, tmp_path):
+    """tests/vasp_gen.py output: driftwatch == ASE == pymatgen (Vasprun, Xdatcar), cells to 1e-8 Å."""
+    from pymatgen.io.vasp.outputs import Vasprun, Xdatcar
+    d = vasp_gen.write_run_folder(tmp_path / "run", traj)
+    xml, out, xdat = (read_run(d / n) for n in ("vasprun.xml", "OUTCAR", "XDATCAR"))
+    for run, name in ((xml, "vasprun.xml"), (out, "OUTCAR"), (xdat, "XDATCAR")):
+        _assert_same_as_ase(run, d / name, atol=1e-12)                    # ASE
+        np.testing.assert_allclose(run.cells, xml.cells, atol=1e-8, rtol=0)
+        np.testing.assert_allclose(run.positions, xml.positions, atol=1e-8, rtol=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")                                  # "unconverged run"
+        vr = Vasprun(d / "vasprun.xml", parse_dos=False, parse_eigen=False,
+                     parse_potcar_file=False)
+    pm_cells = np.array([s.lattice.matrix for s in vr.structures])
+    np.testing.assert_allclose(xml.cells, pm_cells, atol=1e-8, rtol=0)   # pymatgen Vasprun
+    np.testing.assert_allclose(xml.positions, [s.cart_coords for s in vr.structures],
+                               atol=1e-8, rtol=0)
+    np.testing.assert_allclose(xml.energies, [s["e_fr_energy"] for s in vr.ionic_steps])
+    np.testing.assert_allclose(xml.forces, [s["forces"] for s in vr.ionic_steps], atol=1e-12)
+    xd = Xdatcar(d / "XDATCAR")                                          # pymatgen Xdatcar
+    np.testing.assert_allclose(xdat.cells, [s.lattice.matrix for s in xd.structures],
+                               atol=1e-8, rtol=0)
+    # OUTCAR and vasprun.xml agree on results too (ASE conventions for stress)
+    np.testing.assert_allclose(out.stress, xml.stress, atol=1e-12)
+    np.testing.assert_allclose(out.energies, xml.energies, atol=1e-10)
+    assert xml.code_settings["ISYM"] == 2 and xml.code_settings["ISIF"] == 3
+    assert xml.title == "invented drifting layer"
+
+
+# ---------------------------------------------------------------- run folders
+def test_vasp_folder_picks_the_richest_complete_source(traj, tmp_path):
+    d = vasp_gen.write_run_folder(tmp_path / "done", traj)
+    run = read_run(d)
+    assert run.source == str(d / "vasprun.xml") and run.run_dir == str(d)
+    assert run.format == "vasp-xml" and len(run) == len(traj.cells) and run.warnings == ()
+
+    # killed job: vasprun.xml cut (VASP buffers it), OUTCAR complete -> OUTCAR, said in warnings
+    k = tmp_path / "killed"
+    shutil.copytree(d, k)
+    raw = (k / "vasprun.xml").read_bytes()
+    (k / "vasprun.xml").write_bytes(raw[: len(raw) // 2])
+    run = read_run(k)
+    assert run.source == str(k / "OUTCAR") and len(run) == len(traj.cells)
+    assert any("vasprun.xml is incomplete" in w for w in run.warnings)
+
+    # both cut: OUTCAR still preferred; completed steps + a warning naming the file
+    raw = (k / "OUTCAR").read_bytes()
+    (k / "OUTCAR").write_bytes(raw[: int(len(raw) * 0.7)])
+    run = read_run(k)
+    assert run.source == str(k / "OUTCAR") and 0 < len(run) < len(traj.cells)
+    assert any(str(k / "OUTCAR") in w and "truncated after step" in w for w in run.warnings)
+
+    # only XDATCAR: positions and cells, settings from INCAR
+    x = vasp_gen.write_run_folder(tmp_path / "xdat", traj, files=("XDATCAR", "INCAR"))
+    run = read_run(x)
+    assert run.format == "vasp-xdatcar" and run.energies is None
+    assert run.code_settings["ISYM"] == 2 and run.code_settings["settings_from"] == "INCAR"
+
+    # CONTCAR alone: one frame, and the warning says so
+    c = vasp_gen.write_run_folder(tmp_path / "cont", traj, files=("CONTCAR",))
+    run = read_run(c)
+    assert len(run) == 1 and any("single structure" in w for w in run.warnings)
+
+
+def test_incar_disagreeing_with_output_is_a_warning(traj, tmp_path):
+    d = vasp_gen.write_run_folder(tmp_path / "r", traj, files=("vasprun.xml",))
+    vasp_gen.write_incar(d / "INCAR", ISYM=0, SYMPREC="1E-3")
+    run = read_run(d)
+    assert run.code_settings["ISYM"] == 2                      # what VASP says it used
+    assert any("INCAR sets ISYM = 0" in w for w in run.warnings)
+
+
+@needs_qe
+@pytest.mark.parametrize("out", QE_OUTS, ids=lambda p: p.parent.name)
+def test_real_pwx_outputs_match_ase_and_report_settings(out, tmp_path):
+    """Real pw.x outputs (made here): frames equal to ASE's espresso-out reader; settings from
+    pw.in (ASE's namelist reader) and the symmetry-operation count pw.x prints."""
+    from ase.io.espresso import read_fortran_namelist
+    plain = _unzipped(out, tmp_path)
+    run = read_run(out.parent)                                   # the folder
+    assert run.source == str(out) and run.run_dir == str(out.parent)
+    _assert_same_as_ase(run, plain)
+    assert run.warnings == () and run.pbc.all()
+    with open(out.parent / "pw.in") as fh:
+        nml, _ = read_fortran_namelist(fh)
+    s = run.code_settings
+    assert s["code"] == "espresso" and s["calculation"] == nml["control"]["calculation"]
+    assert s["nosym"] == bool(nml["system"].get("nosym", False))
+    text = plain.read_text()
+    m = re.search(r"^\s*(\d+) Sym\. Ops\.", text, re.M)
+    assert s["nsym"] == (int(m.group(1)) if m else 1)            # 'No symmetry found' -> 1
+    if s["calculation"] == "vc-relax":
+        assert s["cell_dofree"] == nml["cell"].get("cell_dofree", "all")
+
+
+def test_ambiguous_folder_is_an_error(traj, tmp_path):
+    if not QE_OUTS:
+        pytest.skip("no pw.x outputs yet")
+    d = vasp_gen.write_run_folder(tmp_path / "mix", traj, files=("OUTCAR",))
+    shutil.copy(_unzipped(QE_OUTS[0], tmp_path), d / "pw.out")
+    with pytest.raises(InputError, match="ambiguous run folder"):
+        read_run(d)
+    assert read_run(d / "pw.out").format == "espresso-out"      # naming the file resolves it
+
+
+# ---------------------------------------------------------------- killed jobs
+def _truncation_cases():
+    cases = [(p, None) for p in GENUINE_VASP] + [(p, "espresso-out") for p in QE_OUTS]
+    return cases + [("gen:vasprun.xml", None), ("gen:OUTCAR", None), ("gen:XDATCAR", None)]
+
+
+def _materialise(spec, tmp_path, traj):
+    if isinstance(spec, str) and spec.startswith("gen:"):
+        name = spec[4:]
+        return vasp_gen.write_run_folder(tmp_path / "gen", traj, files=(name,)) / name
+    return _unzipped(spec, tmp_path)
+
+
+def _case_id(x):
+    if isinstance(x, Path):
+        return f"{x.parent.name}/{x.name}"
+    return str(x) if x else "auto"
+
+
+@pytest.mark.parametrize("spec,fmt", _truncation_cases(), ids=_case_id)
+def test_truncated_files_give_completed_steps_and_a_warning(spec, fmt, tmp_path, traj):
+    """Cut real files (ASE's genuine VASP files, real pw.x outputs) and generated ones at 40
+    byte offsets: never a crash, never more frames than the full file, frames equal to the
+    full file's prefix, and a warning naming the file whenever a step was lost."""
+    src = _materialise(spec, tmp_path, traj)
+    fmt = fmt or detect(src)
+    full = read_run(src)
+    data = src.read_bytes()
+    cut = tmp_path / "cut" / src.name
+    cut.parent.mkdir()
+    offsets = np.unique(np.linspace(1, len(data) - 1, 40).astype(int))
+    seen = set()
+    for off in offsets:
+        cut.write_bytes(data[:off])
+        try:
+            run = read_run(cut, format=fmt)
+        except InputError as exc:                 # only "nothing completed" is allowed
+            assert re.search(r"no completed ionic step|empty file|not a", str(exc)), exc
+            assert str(cut) in str(exc)
+            seen.add(0)
+            continue
+        n = len(run)
+        seen.add(n)
+        assert 1 <= n <= len(full)
+        assert np.array_equal(run.cells, full.cells[:n])
+        assert np.array_equal(run.positions, full.positions[:n])
+        for key in ("energies", "forces", "stress"):
+            a, b = getattr(run, key), getattr(full, key)
+            assert (a is None) == (b is None), (off, key)
+            if a is not None:
+                assert np.array_equal(a, b[:n], equal_nan=True), (off, key)
+        # XDATCAR has no end marker: a cut exactly between two configurations looks like a
+        # complete file (nothing of a step was lost, nothing to warn about)
+        between = fmt == "vasp-xdatcar" and data[off:].startswith((b"invented", b"Direct"))
+        if n < len(full) and not between:
+            assert any(str(cut) in w and "truncated" in w for w in run.warnings), (off, run.warnings)
+    assert len(seen) >= min(len(full), 3)          # the offsets really exercised several steps
+
+
+@needs_qe
+def test_ase_pwx_failure_modes_are_handled(tmp_path):
+    """The killed-job failure modes of ASE's espresso-out reader (../shared/qe-notes.md):
+    cuts inside the stress block, inside the forces block and right after an energy line."""
+    out = _unzipped(QE_OUTS[0], tmp_path)
+    text = out.read_text()
+    full = read_run(out)
+    starts = {"stress": text.index("total   stress") + 200,
+              "forces": text.index("Forces acting on atoms") + 120,
+              "energy": text.index("\n", text.index("!    total energy")) + 1}
+    for what, off in starts.items():
+        cut = tmp_path / f"cut_{what}.out"
+        cut.write_text(text[:off])
+        with pytest.raises(InputError, match="no completed ionic step") as e:
+            read_run(cut)                         # first step incomplete: an error, not a frame
+        assert "truncated before the first ionic step" in str(e.value)
+    # the same cuts inside the *second* step keep the first step, complete with results
+    second = text.index("!    total energy", text.index("!    total energy") + 10)
+    cut = tmp_path / "cut2.out"
+    cut.write_text(text[: second + 40])
+    run = read_run(cut)
+    assert len(run) == 1 and run.forces is not None
+    assert np.array_equal(run.forces[0], full.forces[0])
+    if full.stress is not None:
+        assert np.array_equal(run.stress[0], full.stress[0])
+
+
+# ---------------------------------------------------------------- streaming / live files
+def test_iter_frames_follows_a_growing_file(traj, tmp_path):
+    """A live job: the partially written last step is never yielded; later reads add steps."""
+    src = vasp_gen.write_outcar(tmp_path / "full_OUTCAR", traj).read_text()
+    live = tmp_path / "OUTCAR"
+    marks = [m.start() for m in re.finditer("FREE ENERGIE", src)]
+    counts = []
+    for cut in (marks[2] + 10, marks[4] + 10, len(src)):
+        live.write_text(src[:cut])
+        counts.append(len(list(iter_frames(live))))
+    assert counts == [2, 4, len(traj.cells)]
+    it = iter_frames(live)
+    first = next(it)                              # streams: no need to read everything first
+    assert first.step == 0 and first.energy == pytest.approx(traj.energies[0])
+
+
+def _warm(path):
+    read_run(path)          # imports and caches outside the measurement
+
+
+def _peak(path):
+    tracemalloc.start()
+    try:
+        run = read_run(path)
+        return tracemalloc.get_traced_memory()[1], run
+    finally:
+        tracemalloc.stop()
+
+
+def _long_pw_out(tmp_path, nframes):
+    """A long pw.x output made from a real one by repeating one real vc-relax step block."""
+    src = next(p for p in QE_OUTS if "vc-relax" in (p.parent / "pw.in").read_text())
+    text = _unzipped(src, tmp_path).read_text()
+    i1 = text.index("CELL_PARAMETERS")
+    i2 = text.index("CELL_PARAMETERS", i1 + 10)
+    n0 = len(read_run(src))
+    out = tmp_path / f"long_{nframes}.out"
+    out.write_text(text[:i2] + text[i1:i2] * (nframes - n0) + text[i2:])
+    return out
+
+
+def test_peak_memory_does_not_grow_beyond_the_frames_kept(tmp_path):
+    """tracemalloc peak for 100 vs 1000 frames: the growth per frame stays within ~2x the bytes
+    of the arrays kept per frame (block buffers + final concatenation), not the file size."""
+    t100, t1000 = vasp_gen.drifting_layer(100), vasp_gen.drifting_layer(1000)
+    files = [(vasp_gen.write_outcar(tmp_path / "a_OUTCAR", t100),
+              vasp_gen.write_outcar(tmp_path / "b_OUTCAR", t1000))]
+    if QE_OUTS:
+        files.append((_long_pw_out(tmp_path, 100), _long_pw_out(tmp_path, 1000)))
+    for small, big in files:
+        _warm(small)
+        (p1, r1), (p2, r2) = _peak(small), _peak(big)
+        assert (len(r1), len(r2)) == (100, 1000)
+        kept = sum(getattr(r2, k).nbytes for k in ("cells", "positions", "steps", "energies",
+                                                   "forces", "stress")) / len(r2)
+        growth = (p2 - p1) / 900
+        file_per_frame = big.stat().st_size / 1000
+        print(f"{big.name}: peak {p1 / 1e3:.0f} kB (100 frames) -> {p2 / 1e3:.0f} kB (1000); "
+              f"growth {growth:.0f} B/frame, kept {kept:.0f} B/frame, "
+              f"file {file_per_frame:.0f} B/frame")
+        assert growth < 2.5 * kept + 256
+        assert growth < 0.5 * file_per_frame          # the text itself is not kept

@@ -1,0 +1,401 @@
+"""Campaign audit: discovery, bad runs, cache, interruption, ase.db output, executors.
+
+Everything is real: real pw.x outputs (tests/data/qe, produced by Debian's Quantum ESPRESSO through
+scripts/make_runs.py), ASE trajectories written here with ase.io, real SQLite through ase.db and
+ASE's own ``ase db`` command line, a real ProcessPoolExecutor and a real Dask LocalCluster.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from ase import Atoms
+import ase.db
+import ase.io
+
+from driftwatch import records
+from driftwatch.campaign import MARKER, RunSpec, _inside, _record_names, audit, discover
+from driftwatch.errors import OutputError
+
+REPO = Path(__file__).resolve().parent.parent
+QE = REPO / "tests" / "data" / "qe"
+
+
+# ----------------------------------------------------------------------------- helpers
+def write_layer(path: Path, g0=100.0, b0=3.2, g1=120.0, b1=3.0, n=6, a=3.0):
+    """A one-atom layer (16 Å cell along z, atom in the middle: a vacuum gap > 6 Å) whose in-plane
+    cell moves linearly from (a, b0, gamma0) to (a, b1, gamma1). With b1 = a and gamma1 = 120 deg the
+    last frame is exactly hexagonal (International Tables: hp lattice, a = b, gamma = 120 deg)."""
+    frames = []
+    for t in np.linspace(0.0, 1.0, n):
+        g, b = np.radians(g0 + t * (g1 - g0)), b0 + t * (b1 - b0)
+        cell = [[a, 0, 0], [b * np.cos(g), b * np.sin(g), 0], [0, 0, 16.0]]
+        frames.append(Atoms("C", positions=[[0, 0, 8.0]], cell=cell, pbc=True))
+    path.parent.mkdir(parents=True, exist_ok=True)
+    ase.io.write(path, frames)
+    return path
+
+
+def make_campaign(root: Path, qe: bool = True, n_extra: int = 0) -> Path:
+    camp = root / "camp"
+    write_layer(camp / "layers" / "L-hex.traj")                          # snaps to hexagonal
+    write_layer(camp / "layers" / "L-obl.traj", g1=101.0, b1=3.21)      # stays oblique
+    for i in range(n_extra):
+        write_layer(camp / "more" / f"M-{i:02d}.traj", g0=95.0 + i, g1=101.0 + i)
+    if qe:
+        for name in ("layer_oblique_to_hex", "relax_atoms_to_sites"):
+            shutil.copytree(QE / name, camp / "qe" / name)
+    (camp / "bad").mkdir(parents=True)
+    (camp / "bad" / "empty.traj").write_bytes(b"")
+    (camp / "bad" / "garbage.traj").write_bytes(b"this is not an ASE trajectory\n" * 20)
+    write_layer(camp / ".hidden" / "L-secret.traj")
+    (camp / "notes.txt").write_text("campaign notes, not a run\n")
+    return camp
+
+
+def record_bytes(out: Path) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in sorted((out / "records").glob("*.json"))}
+
+
+def run_audit(roots, out, **kw):
+    kw.setdefault("workers", 1)
+    kw.setdefault("report", False)
+    kw.setdefault("progress", "off")
+    return audit(roots, out, **kw)
+
+
+# ----------------------------------------------------------------------------- discovery
+def test_discovery_counts_run_folders_once_and_skips_hidden_and_unknown(tmp_path):
+    camp = make_campaign(tmp_path)
+    runs, failed = discover([camp])
+    ids = {r.id: r.kind for r in runs}
+    # pw.x run folders are one run each; their pw.out / pw.in are not counted again
+    assert ids == {"camp/bad/empty.traj": "file", "camp/bad/garbage.traj": "file",
+                   "camp/layers/L-hex.traj": "file", "camp/layers/L-obl.traj": "file",
+                   "camp/qe/layer_oblique_to_hex": "folder",
+                   "camp/qe/relax_atoms_to_sites": "folder"}
+    assert failed == []
+    # an overlapping second root adds nothing (no double counting)
+    runs2, _ = discover([camp, camp / "layers", camp / "layers" / "L-hex.traj"])
+    assert sorted(r.id for r in runs2) == sorted(ids)
+    # include / exclude are fnmatch globs on the run id and the path
+    inc, _ = discover([camp], include=["*L-*"])
+    assert [r.id for r in inc] == ["camp/layers/L-hex.traj", "camp/layers/L-obl.traj"]
+    exc, _ = discover([camp], exclude=["*/bad/*", str(camp / "qe" / "relax*")])
+    assert sorted(r.id for r in exc) == ["camp/layers/L-hex.traj", "camp/layers/L-obl.traj",
+                                         "camp/qe/layer_oblique_to_hex"]
+
+
+def test_discovery_follows_symlinks_once_and_ends_on_loops(tmp_path):
+    camp = make_campaign(tmp_path, qe=False)
+    (camp / "layers" / "back").symlink_to(camp, target_is_directory=True)   # a loop
+    (camp / "alias").symlink_to(camp / "layers", target_is_directory=True)  # a second path
+    (camp / "L-link.traj").symlink_to(camp / "layers" / "L-hex.traj")
+    runs, failed = discover([camp])
+    assert failed == []
+    assert sorted(r.id for r in runs) == ["camp/bad/empty.traj", "camp/bad/garbage.traj",
+                                          "camp/layers/L-hex.traj", "camp/layers/L-obl.traj"] \
+        or sorted(r.id for r in runs) == ["camp/L-link.traj", "camp/bad/empty.traj",
+                                          "camp/bad/garbage.traj", "camp/layers/L-obl.traj"]
+    assert len({os.path.realpath(r.path) for r in runs}) == len(runs) == 4
+
+
+def _discover_as(uid, root, conn):
+    os.setgid(uid)
+    os.setuid(uid)
+    try:
+        runs, failed = discover([root])
+        conn.send(([r.id for r in runs], failed))
+    except BaseException as exc:  # pragma: no cover - reported to the parent
+        conn.send(exc)
+
+
+def test_unreadable_folder_is_a_failed_entry_not_a_crash(tmp_path):
+    import multiprocessing as mp
+    import tempfile
+    base = Path(tempfile.mkdtemp(dir="/tmp", prefix="dw-perm-"))
+    try:
+        camp = make_campaign(base, qe=False)
+        for p in [base, *base.rglob("*")]:
+            p.chmod(0o755 if p.is_dir() else 0o644)
+        locked = camp / "locked"
+        write_layer(locked / "L-hidden-by-perms.traj")
+        locked.chmod(0o000)
+        if os.geteuid() != 0:
+            runs, failed = discover([camp])
+            ids = [r.id for r in runs]
+        else:   # root reads everything: search as 'nobody' in a forked child (modules loaded)
+            import driftwatch.adapters.espresso  # noqa: F401
+            import driftwatch.adapters.vasp  # noqa: F401
+            parent, child = mp.get_context("fork").Pipe()
+            proc = mp.get_context("fork").Process(target=_discover_as, args=(65534, camp, child))
+            proc.start()
+            got = parent.recv()
+            proc.join(30)
+            assert not isinstance(got, BaseException), got
+            ids, failed = got
+        assert "camp/layers/L-hex.traj" in ids and "camp/locked/L-hidden-by-perms.traj" not in ids
+        assert len(failed) == 1 and failed[0]["run"] == "camp/locked"
+        assert "cannot list folder" in failed[0]["error"] and str(locked) in failed[0]["error"]
+    finally:
+        (base / "camp" / "locked").chmod(0o755)
+        shutil.rmtree(base)
+
+
+# ----------------------------------------------------------------------------- one audit
+@pytest.fixture(scope="module")
+def audited(tmp_path_factory):
+    base = tmp_path_factory.mktemp("audit")
+    camp = make_campaign(base)
+    out = base / "out"
+    summary = run_audit([camp], out, fail_on=["snapped"])
+    return camp, out, summary
+
+
+def test_bad_runs_are_listed_and_do_not_stop_the_audit(audited):
+    camp, out, s = audited
+    assert s["schema"] == "driftwatch/campaign-1" and s["runs"] == 6
+    assert s["analysed"] == 6 and s["cached"] == 0
+    failed = {f["run"]: f for f in s["failed"]}
+    assert set(failed) == {"camp/bad/empty.traj", "camp/bad/garbage.traj"}
+    assert "empty" in failed["camp/bad/empty.traj"]["error"]
+    for f in failed.values():
+        assert f["source"] in f["error"] and "\n" not in f["error"]
+    assert sorted(p.name for p in (out / "records").glob("*.json")) == [
+        "camp_layers_L-hex.traj.json", "camp_layers_L-obl.traj.json",
+        "camp_qe_layer_oblique_to_hex.json", "camp_qe_relax_atoms_to_sites.json"]
+    assert json.loads((out / "campaign.json").read_text()) == json.loads(records.dumps(s))
+    assert json.loads((out / MARKER).read_text())["roots"] == [str(camp.resolve())]
+
+
+def test_verdicts_and_gating_of_the_campaign(audited):
+    _, out, s = audited
+    recs = {rid: records.read_json(out / f) for rid, f in s["records"].items()}
+    # L-hex ends exactly hexagonal (a = b, gamma = 120 deg: International Tables hp lattice);
+    # the pw.x layer relaxation drifts from oblique to hexagonal (see tests/data/qe and test_track)
+    assert recs["camp/layers/L-hex.traj"]["summary"]["verdict"] == "snapped"
+    assert recs["camp/layers/L-hex.traj"]["summary"]["final"]["type"] == "hp"
+    assert recs["camp/qe/layer_oblique_to_hex"]["summary"]["verdict"] == "snapped"
+    assert recs["camp/layers/L-obl.traj"]["summary"]["verdict"] == "steady"
+    assert recs["camp/qe/relax_atoms_to_sites"]["summary"]["verdict"] == "fixed-cell"
+    assert s["verdict_counts"] == {"failed": 2, "fixed-cell": 1, "snapped": 2, "steady": 1}
+    assert s["flag_counts"]["snapped"] == 2
+    assert {g["run"] for g in s["gated"]} == {"camp/layers/L-hex.traj",
+                                              "camp/qe/layer_oblique_to_hex"}
+    assert all("timing" not in r for r in recs.values())      # records are timing-free
+    tol = s["tolerance"]
+    assert tol["symprecs"] == [1e-5, 1e-3, 1e-2, 0.1] and tol["runs_considered"] == 4
+    assert 1e-4 <= tol["recommended_symprec"] <= 0.2 and 0 < tol["safe_runs"] <= 4
+    # the count of verdict changes between 1e-5 and 1e-3 Å, read straight from the records
+    direct = sum(1 for r in recs.values()
+                 if r["summary"]["tolerance"]["at"]["1e-05"][0]
+                 != r["summary"]["tolerance"]["at"]["0.001"][0])
+    assert tol["changes"][0]["runs"] == direct
+
+
+def test_campaign_csv_has_one_row_per_run(audited):
+    _, out, _ = audited
+    with open(out / "campaign.csv", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    assert tuple(rows[0]) == records.CSV_COLUMNS
+    assert [r["run"] for r in rows] == sorted(r["run"] for r in rows) and len(rows) == 6
+    bad = [r for r in rows if r["verdict"] == "failed"]
+    assert len(bad) == 2 and all(r["error"] for r in bad)
+
+
+def test_ase_db_rows_queryable_with_ase_tools(audited):
+    camp, out, s = audited
+    db = ase.db.connect(out / "runs.db")
+    assert db.count() == 6
+    snapped = {row.run_id for row in db.select("verdict=snapped")}
+    assert snapped == {"camp/layers/L-hex.traj", "camp/qe/layer_oblique_to_hex"}
+    row = db.get(run_id="camp/layers/L-hex.traj")
+    final = ase.io.read(camp / "layers" / "L-hex.traj", index=-1)
+    assert np.allclose(row.cell, final.cell) and np.allclose(row.positions, final.positions)
+    assert list(row.numbers) == [6] and row.final_type == "hp" and row.flag_snapped
+    # spglib on the stored final structure agrees it is hexagonal (P6/mmm, 191) (reference: spglib)
+    import spglib
+    ds = spglib.get_symmetry_dataset((row.cell, row.positions @ np.linalg.inv(row.cell),
+                                      row.numbers), symprec=1e-3)
+    assert ds.number == 191
+    # ASE's own command line (python -m ase db) reads the same rows
+    cli = subprocess.run([sys.executable, "-m", "ase", "db", str(out / "runs.db"), "verdict=snapped",
+                          "-c", "+run_id"], capture_output=True, text=True, timeout=120)
+    assert cli.returncode == 0, cli.stderr
+    assert "camp/layers/L-hex.traj" in cli.stdout and "camp/qe/layer_oblique_to_hex" in cli.stdout
+    assert "L-obl" not in cli.stdout
+
+
+# ----------------------------------------------------------------------------- cache
+def test_reaudit_uses_cache_then_only_new_and_changed_runs(tmp_path):
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    s1 = run_audit([camp], out)
+    first = record_bytes(out)
+    assert (s1["analysed"], s1["cached"], len(s1["failed"])) == (4, 0, 2)
+    s2 = run_audit([camp], out)                      # nothing changed: all from the cache,
+    assert (s2["analysed"], s2["cached"]) == (0, 4)  # failed runs included
+    assert record_bytes(out) == first and len(s2["failed"]) == 2
+    assert ase.db.connect(out / "runs.db").count() == 4       # rows replaced, not duplicated
+    write_layer(camp / "layers" / "L-new.traj", g0=92.0)       # the campaign grows by one run
+    s3 = run_audit([camp], out)
+    assert (s3["analysed"], s3["cached"], s3["runs"]) == (1, 4, 5)
+    write_layer(camp / "layers" / "L-obl.traj", g1=104.0, b1=3.21)   # a run changes
+    s4 = run_audit([camp], out)
+    assert (s4["analysed"], s4["cached"]) == (1, 4)
+    # a corrupt cache entry is ignored and recomputed, giving the same record bytes
+    before = record_bytes(out)
+    entries = [p for p in (out / ".cache").glob("*.json") if p.name != "digests.json"]
+    assert len(entries) == 7          # 5 current runs (2 failed) + the old L-obl result
+    for p in entries:
+        p.write_text("{ torn")
+    s5 = run_audit([camp], out)
+    assert (s5["analysed"], s5["cached"]) == (5, 0) and record_bytes(out) == before
+    # use_cache=False analyses everything again and still gives the same bytes
+    s6 = run_audit([camp], out, use_cache=False)
+    assert s6["analysed"] == 5 and record_bytes(out) == before
+    assert ase.db.connect(out / "runs.db").count() == 5
+
+
+def test_records_of_removed_runs_move_to_stale(tmp_path):
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    run_audit([camp], out)
+    user_file = out / "records" / "my-notes.json"
+    user_file.write_text("{}")
+    (camp / "layers" / "L-obl.traj").unlink()
+    s = run_audit([camp], out)
+    assert not (out / "records" / "camp_layers_L-obl.traj.json").exists()
+    assert (out / "records" / "stale" / "camp_layers_L-obl.traj.json").is_file()
+    assert s["stale_records"] == ["records/stale/camp_layers_L-obl.traj.json"]
+    assert user_file.read_text() == "{}"          # never touched: driftwatch did not write it
+
+
+@pytest.mark.slow
+def test_interrupted_audit_rerun_gives_identical_records(tmp_path):
+    camp = make_campaign(tmp_path, qe=True, n_extra=6)
+    ref, out = tmp_path / "ref", tmp_path / "out"
+    total = 10
+    code = (f"from driftwatch.campaign import audit\n"
+            f"audit([{str(camp)!r}], {str(out)!r}, workers=1, report=False, progress='off')\n")
+    proc = subprocess.Popen([sys.executable, "-c", code], cwd=REPO)
+    n = 0
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline and proc.poll() is None:
+        n = len(list((out / "records").glob("*.json"))) if (out / "records").is_dir() else 0
+        if n >= 2:
+            proc.send_signal(signal.SIGKILL)
+            break
+        time.sleep(0.005)
+    proc.wait(30)
+    assert proc.returncode == -signal.SIGKILL, "the audit finished before it could be killed"
+    assert 2 <= n < total - 2
+    resumed = run_audit([camp], out)
+    assert resumed["cached"] >= n and resumed["analysed"] + resumed["cached"] == total
+    run_audit([camp], ref)
+    assert record_bytes(out) == record_bytes(ref) and len(record_bytes(ref)) == total - 2
+    assert (out / "campaign.csv").read_bytes() == (ref / "campaign.csv").read_bytes()
+    assert not list((out / "records").glob(".*.tmp"))       # no torn temporary files left behind
+
+
+# ----------------------------------------------------------------------------- output safety
+def test_stale_database_lock_fails_fast_with_a_message(tmp_path):
+    camp = make_campaign(tmp_path, qe=False)
+    db = tmp_path / "shared.db"
+    lock = Path(str(db) + ".lock")
+    lock.write_text("")                       # what a job killed inside ase.db leaves behind
+    t0 = time.monotonic()
+    cli = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp / "layers"), "-o",
+                          str(tmp_path / "out"), "--db", str(db), "--no-report", "--progress", "off"],
+                         capture_output=True, text=True, timeout=60, cwd=REPO)
+    assert time.monotonic() - t0 < 30
+    assert cli.returncode == 1 and str(lock) in cli.stderr and "delete it" in cli.stderr
+    assert len(cli.stderr.strip().splitlines()) == 1
+    from driftwatch.store import write_rows
+    with pytest.raises(OutputError, match="lock"):
+        write_rows(str(db), [])
+
+
+def test_output_folder_safety(tmp_path):
+    camp = make_campaign(tmp_path, qe=False)
+    other = tmp_path / "other"
+    write_layer(other / "L-x.traj")
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "thesis.tex").write_text("do not touch")
+    with pytest.raises(OutputError, match="not empty"):
+        run_audit([camp], foreign)
+    out = tmp_path / "out"
+    run_audit([camp], out)
+    run_audit([camp], out)                                  # same campaign: accepted
+    with pytest.raises(OutputError, match="other roots"):
+        run_audit([other], out)
+    s = run_audit([camp], foreign, overwrite=True)          # asked for: written, nothing deleted
+    assert s["runs"] == 4 and (foreign / "thesis.tex").read_text() == "do not touch"
+    (tmp_path / "afile").write_text("x")
+    with pytest.raises(OutputError, match="not a folder"):
+        run_audit([camp], tmp_path / "afile")
+
+
+def test_run_ids_with_dotdot_map_inside_the_output(tmp_path):
+    runs = [RunSpec(i, "x", "file") for i in
+            ("camp/../../etc/passwd", "../escape", "..", "a/b", "a_b", "camp/.. /x")]
+    names = _record_names(runs)
+    assert len(set(names.values())) == len(runs)
+    rec_dir = tmp_path / "records"
+    rec_dir.mkdir()
+    for name in names.values():
+        assert "/" not in name and ".." not in name and not name.startswith(".")
+        assert _inside(rec_dir, rec_dir / name).parent == rec_dir.resolve()
+    with pytest.raises(OutputError):
+        _inside(rec_dir, rec_dir / ".." / "x.json")
+    # end to end: a run whose name holds '..' is written inside OUTPUT/records
+    camp = tmp_path / "camp"
+    write_layer(camp / "a..b" / "..x..traj".lstrip("."))
+    s = run_audit([camp], tmp_path / "out")
+    (rid, rel), = s["records"].items()
+    assert rid == "camp/a..b/x..traj"
+    assert (tmp_path / "out" / rel).resolve().parent == (tmp_path / "out" / "records").resolve()
+
+
+# ----------------------------------------------------------------------------- executors
+def test_process_pool_and_dask_cluster_give_the_same_records(tmp_path):
+    from distributed import LocalCluster
+    camp = make_campaign(tmp_path, qe=False, n_extra=2)
+    serial = run_audit([camp], tmp_path / "serial")
+    pool = run_audit([camp], tmp_path / "pool", workers=2)
+    assert pool["executor"] == "2 local processes"
+    # a real Dask cluster in this process (ecosystem.md B.6), reached by its scheduler address
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=None) as cluster:
+        dask = run_audit([camp], tmp_path / "dask", scheduler=cluster.scheduler_address)
+    assert dask["executor"].startswith("dask ")
+    ref = record_bytes(tmp_path / "serial")
+    assert len(ref) == 4
+    assert record_bytes(tmp_path / "pool") == ref and record_bytes(tmp_path / "dask") == ref
+    for s in (pool, dask):
+        assert s["failed"] == serial["failed"] and s["verdict_counts"] == serial["verdict_counts"]
+
+
+def test_progress_and_summary_table(tmp_path, capsys):
+    camp = make_campaign(tmp_path, qe=False)
+    run_audit([camp / "layers"], tmp_path / "out", progress="on")
+    got = capsys.readouterr()
+    assert "driftwatch audit" in got.err                    # the bar (tqdm) on stderr
+    lines = got.out.splitlines()
+    assert lines[0].split()[:2] == ["run", "dim"]
+    assert any(ln.startswith("layers/L-hex.traj") and "snapped" in ln and "mp -> hp" in ln
+               for ln in lines)
+    assert any(ln.startswith("2 runs (2 analysed, 0 from cache, 0 failed)") for ln in lines)
+    run_audit([camp / "layers"], tmp_path / "out", progress="off")   # batch: stdout stays clean
+    assert capsys.readouterr().out == ""

@@ -1,0 +1,90 @@
+"""Config loading: presets, units, validation messages naming the key."""
+
+import pytest
+
+from driftwatch import config
+from driftwatch.errors import ConfigError
+
+
+@pytest.mark.parametrize("name", config.PRESETS)
+def test_presets_load_and_carry_units(name):
+    cfg = config.load(name)
+    # lengths come back in Å as floats; the default grid spans 1e-5..0.5 Å (design.md)
+    assert cfg["symmetry"]["symprec_min"] == pytest.approx(1e-5)
+    assert cfg["symmetry"]["symprec_max"] == pytest.approx(0.5)
+    assert isinstance(cfg["geometry"]["vacuum_gap"], float)
+
+
+def test_presets_differ_where_documented():
+    assert config.load("monolayer")["geometry"]["require_layer"] is True
+    assert config.load("tolerance")["selection"]["all_frames"] is True
+    assert "snapped" in config.load("bulk")["fail_on"]
+
+
+@pytest.mark.parametrize("text,value", [
+    ("1e-3 Å", 1e-3), ("0.1 A", 0.1), ("2 nm", 20.0), ("50 pm", 0.5),
+    ("1 bohr", 0.529177210903),  # CODATA 2018 Bohr radius in Å
+    ("1.0e-2 angstrom", 1e-2)])
+def test_length_units(text, value):
+    assert config.parse_length(text) == pytest.approx(value)
+
+
+@pytest.mark.parametrize("tree,needle", [
+    ({"geometry": {"vacuum_gap": 6}}, "geometry.vacuum_gap: missing unit"),
+    ({"geometry": {"vaccum_gap": "6 Å"}}, "unknown key 'geometry.vaccum_gap'"),
+    ({"selection": {"every": "often"}}, "selection.every"),
+    ({"symmetry": {"symprec_min": "1e-5 furlong"}}, "unknown length unit 'furlong'"),
+    ({"lattice": {"metric": "l3"}}, "lattice.metric: must be one of l2, linf"),
+    ({"selection": {"all_frames": "yes"}}, "selection.all_frames: expected true or false"),
+    ({"symmetry": {"symprec_min": "1 Å", "symprec_max": "0.5 Å"}}, "symprec_min must be"),
+    ({"rules": {"approaching": {"fraction": "0.5 Å"}}}, "rules.approaching.fraction"),
+    ({"gap": "6 Å"}, "unknown key 'gap'"),
+])
+def test_bad_configs_name_the_key(tree, needle):
+    with pytest.raises(ConfigError, match=None) as err:
+        config.load(tree)
+    assert needle in str(err.value)
+
+
+def test_yaml_file_errors(tmp_path):
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("geometry: [unclosed\n")
+    with pytest.raises(ConfigError, match="invalid YAML at line"):
+        config.load(bad)
+    notmap = tmp_path / "list.yaml"
+    notmap.write_text("- 1\n- 2\n")
+    with pytest.raises(ConfigError, match="must be a mapping"):
+        config.load(notmap)
+    with pytest.raises(ConfigError, match="cannot read config"):
+        config.load(tmp_path / "missing.yaml")
+
+
+def test_yaml_is_safe_loaded(tmp_path):
+    # yaml.safe_load refuses python object tags (PyYAML documentation): nothing is executed
+    evil = tmp_path / "evil.yaml"
+    evil.write_text("geometry: !!python/object/apply:os.system ['echo pwned']\n")
+    with pytest.raises(ConfigError, match="invalid YAML"):
+        config.load(evil)
+
+
+def test_extends_file_chain_and_overrides(tmp_path):
+    base = tmp_path / "base.yaml"
+    base.write_text("extends: monolayer\nselection:\n  every: 3\n")
+    child = tmp_path / "child.yaml"
+    child.write_text(f"extends: {base}\nrules:\n  snapped:\n    within: 2e-3 Å\n")
+    cfg = config.load(child, overrides={"selection.all_frames": True})
+    assert cfg["geometry"]["require_layer"] is True
+    assert cfg["selection"]["every"] == 3
+    assert cfg["rules"]["snapped"]["within"] == pytest.approx(2e-3)
+    assert cfg["selection"]["all_frames"] is True
+    loop = tmp_path / "loop.yaml"
+    loop.write_text(f"extends: {loop}\n")
+    with pytest.raises(ConfigError, match="loops back"):
+        config.load(loop)
+
+
+def test_coerce_and_fingerprint():
+    cfg = config.load()
+    assert config.coerce(cfg) is cfg
+    assert config.fingerprint(cfg) == config.fingerprint(config.load("default"))
+    assert config.fingerprint(cfg) != config.fingerprint(config.load("bulk"))

@@ -1,0 +1,320 @@
+"""Tests of the static HTML report (driftwatch.report) on records of real pw.x relaxations.
+
+Sources named beside each check:
+* real pw.x output: tests/data/qe/* (Quantum ESPRESSO from Debian, run here), analysed with
+  driftwatch.analyze -- the report is built from those records, never from invented data;
+* spglib run directly on the final structure read by ASE's own espresso-out reader (external to the
+  project) for the campaign's "runs that change verdict between common symprec choices";
+* a real browser: headless Chromium (Debian package ``chromium``) loads the pages, runs their script
+  and dumps the resulting DOM; an injected ``<script>``/``<img onerror>`` must stay text;
+* shared/math.md 1.2 and 1.5 for the two-sided projected-invariant map (vertices, edge reflections);
+* HTML structure checks (links resolve, no external URLs, everything inline): common practice.
+"""
+
+from __future__ import annotations
+
+import copy
+import html
+import json
+import os
+import shutil
+import subprocess
+import tempfile
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+
+import driftwatch
+from driftwatch import records
+from driftwatch.errors import OutputError
+from driftwatch.report import build
+from driftwatch.report import campaign as camp
+from driftwatch.report import plots
+
+QE = Path(__file__).parent / "data" / "qe"
+RUNS = sorted(p.name for p in QE.iterdir() if (p / "pw.out").exists())
+CHROMIUM = shutil.which("chromium")
+needs_browser = pytest.mark.skipif(CHROMIUM is None, reason="headless chromium (Debian package "
+                                   "'chromium') is not installed")
+PWNED_TITLE = "<script>document.title='pwned'</script>"
+PWNED_IMG = "<img src=x onerror=\"document.title='pwned-img'\">"
+
+
+# ------------------------------------------------------------------------------------------ fixtures
+
+@pytest.fixture(scope="module")
+def real_records():
+    """Records of the real pw.x runs in tests/data/qe (the report's input in production)."""
+    assert RUNS, "no real pw.x runs in tests/data/qe"
+    return {name: driftwatch.analyze(QE / name) for name in RUNS}
+
+
+def _hostile(rec):
+    """A copy of a real record whose input-derived strings carry HTML/JS and mathtext payloads."""
+    r = copy.deepcopy(rec)
+    r["run"]["title"] = f"Hostile {PWNED_TITLE} layer"
+    r["run"]["source"] = f"/campaign/{PWNED_IMG}/pw.out"
+    r["run"]["formula"] = "Si2<u>under</u>"
+    r["run"]["warnings"] = [f"truncated {PWNED_IMG}"]
+    r["run"]["code_settings"] = dict(r["run"]["code_settings"], **{"<i>key</i>": PWNED_TITLE})
+    for f in r["flags"]:
+        f["message"] = f["message"] + " " + PWNED_IMG
+    for fr in r["frames"]:
+        spec = fr.get("symmetry")
+        if spec:  # an unbalanced mathtext string: matplotlib would raise if it parsed it
+            spec["group_symbol"] = [s + r"$\frac{" for s in spec["group_symbol"]]
+    return r
+
+
+@pytest.fixture(scope="module")
+def report(real_records, tmp_path_factory):
+    """One report from record files: the real runs, a hostile copy, a non-record and a broken record."""
+    src = tmp_path_factory.mktemp("records")
+    for name, rec in real_records.items():
+        records.write_json(rec, src / f"{name}.json")
+    layer = next(n for n, r in real_records.items() if r["geometry"]["dimension"] == 2)
+    records.write_json(_hostile(real_records[layer]), src / "hostile.json")
+    (src / "notes.json").write_text(json.dumps({"hello": "not a record"}))
+    (src / "garbage.json").write_text("{ this is not json")
+    broken = copy.deepcopy(real_records[layer])
+    del broken["summary"]
+    records.write_json(broken, src / "no_summary.json")
+    out = tmp_path_factory.mktemp("report") / "site"
+    index = build([src], out)
+    return {"index": index, "out": out, "src": src, "names": sorted([*real_records, "hostile"])}
+
+
+class _Tags(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.tags, self.text = [], []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_startendtag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def _parse(text):
+    p = _Tags()
+    p.feed(text)
+    return p
+
+
+def _chromium(*args, timeout=90):
+    with tempfile.TemporaryDirectory() as profile:
+        cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+               "--no-first-run", "--disable-background-networking", "--disable-component-update",
+               "--disable-sync", f"--user-data-dir={profile}", *args]
+        res = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout)
+    assert res.returncode == 0, res.stderr[-2000:]
+    return res.stdout
+
+
+# ----------------------------------------------------------------------------------------- structure
+
+def test_pages_exist_and_links_resolve(report):
+    # common practice: every local link of the index and of each run page points at a file that exists
+    out = report["out"]
+    assert report["index"] == out / "index.html" and report["index"].is_file()
+    pages = sorted(p.stem for p in (out / "runs").glob("*.html"))
+    assert pages == report["names"]
+    for page in [report["index"], *(out / "runs").glob("*.html")]:
+        tags = _parse(page.read_text(encoding="utf-8")).tags
+        hrefs = [a["href"] for t, a in tags if t == "a" and "href" in a]
+        assert hrefs, page
+        for h in hrefs:
+            target = (page.parent / h.split("#")[0]).resolve()
+            assert target.is_file(), (page, h)
+            assert out.resolve() in target.parents or target.parent == out.resolve()
+
+
+def test_everything_inline_and_no_external_urls(report):
+    # common practice: a self-contained page loads nothing; plots are inline <svg>, styles inline
+    for page in [report["index"], *(report["out"] / "runs").glob("*.html")]:
+        text = page.read_text(encoding="utf-8")
+        tags = _parse(text).tags
+        for tag, attrs in tags:
+            for key in ("src", "href", "xlink:href", "action", "poster", "data"):
+                val = attrs.get(key) or ""
+                assert not val.lower().startswith(("http:", "https:", "//", "ftp:")), (page, tag, val)
+            if tag == "link":
+                pytest.fail(f"{page}: external stylesheet/link element {attrs}")
+            if tag == "script":
+                assert "src" not in attrs
+        assert "url(http" not in text and "@import" not in text
+        assert "Content-Security-Policy" in text
+    run_page = report["out"] / "runs" / f"{report['names'][0]}.html"
+    n_svg = sum(1 for t, _ in _parse(run_page.read_text(encoding="utf-8")).tags if t == "svg")
+    assert n_svg >= 3  # deformation, spectrum, displacement (+ map or systems)
+    idx_svg = sum(1 for t, _ in _parse(report["index"].read_text(encoding="utf-8")).tags if t == "svg")
+    assert idx_svg >= 2  # drift scatter and breakpoint distribution (+ flag counts)
+
+
+def test_layer_page_has_map_and_bulk_page_has_13_types(report, real_records):
+    # shared/math.md 1.2: square (0, 0) and hexagonal (0, 1) vertices, op/oc edges labelled on the map
+    for name, rec in real_records.items():
+        text = (report["out"] / "runs" / f"{name}.html").read_text(encoding="utf-8")
+        if rec["geometry"]["dimension"] == 2:
+            for label in ("tp square (0, 0)", "hp hexagonal (0, 1)", "op rectangular (y = 0)",
+                          "oc centred rectangular", "sign −1"):
+                assert label in text, label
+        else:
+            assert "deformation to each of the 13 Bravais types" in text
+            for t in ("mP", "oF", "tI", "hR", "cF"):
+                assert f">{t}<" in text, t
+        assert "not a proof" in text and "root-invariant space" in text
+        if rec["run"]["fixed_cell"]:
+            assert "Fixed cell." in text
+
+
+def test_unreadable_inputs_listed_not_fatal(report):
+    # one bad input never stops the report: non-records and broken records are listed on the index
+    text = report["index"].read_text(encoding="utf-8")
+    section = text[text.index("Unreadable inputs"):]
+    for name in ("notes.json", "garbage.json", "no_summary.json"):
+        assert name in section, name
+    assert "not a driftwatch run record" in section
+    assert "record has no &#x27;summary&#x27;" in section
+
+
+def test_overwrite_protection(report, tmp_path, real_records):
+    # nothing the user had is overwritten: a non-empty folder is refused unless overwrite=True
+    out = tmp_path / "site"
+    out.mkdir()
+    keep = out / "mine.txt"
+    keep.write_text("user data")
+    rec = next(iter(real_records.values()))
+    with pytest.raises(OutputError, match="not empty"):
+        build([rec], out)
+    assert not (out / "index.html").exists() and keep.read_text() == "user data"
+    assert build([rec], out, overwrite=True) == out / "index.html"
+    assert keep.read_text() == "user data"
+    (tmp_path / "empty").mkdir()
+    assert build([rec], tmp_path / "empty").is_file()  # an existing empty folder is fine
+    f = tmp_path / "afile"
+    f.write_text("x")
+    with pytest.raises(OutputError):
+        build([rec], f)
+
+
+def test_page_names_stay_inside_output(tmp_path, real_records):
+    # common practice: names from inputs never escape the output folder
+    rec = copy.deepcopy(next(iter(real_records.values())))
+    rec["run"]["run_dir"] = "../../../etc/passwd"
+    rec2 = copy.deepcopy(rec)
+    out = tmp_path / "site"
+    build([rec, rec2], out)
+    pages = sorted(p.name for p in (out / "runs").iterdir())
+    assert len(pages) == 2 and all(".." not in p and "/" not in p for p in pages)
+    assert sorted(p.name for p in out.iterdir()) == ["index.html", "runs"]
+    assert not list(tmp_path.glob("*.html"))
+
+
+def test_matplotlib_text_is_not_parsed(report):
+    # the hostile record's group symbols end in an unbalanced "$\frac{": with mathtext on, matplotlib
+    # raises a ParseException; the page was built, and the SVG draws the dollar literally
+    text = (report["out"] / "runs" / "hostile.html").read_text(encoding="utf-8")
+    svgs = [chunk.split("</svg>")[0] for chunk in text.split("<svg")[1:]]
+    assert any("$\\frac{" in svg for svg in svgs)
+
+
+def test_campaign_changes_match_spglib(real_records):
+    # external check: spglib on ASE's reading of each bulk run's final structure decides whether the
+    # run changes space group between two common symprec values; the report must count the same runs
+    import spglib
+    from ase.io import read
+
+    pairs = [(1e-5, 1e-3), (1e-3, 1e-2), (1e-2, 0.1)]
+    advice = camp.tolerance_advice(list(real_records.items()), (1e-5, 1e-3, 1e-2, 0.1))
+    got = {(c["a"], c["b"]): set(c["runs"]) for c in advice["changes"]}
+    for name, rec in real_records.items():
+        if rec["geometry"]["dimension"] != 3:
+            continue  # the record holds layer groups for layers; spglib's space group differs
+        atoms = read(QE / name / "pw.out", index=-1, format="espresso-out")
+        cell = (atoms.cell[:], atoms.get_scaled_positions(), atoms.numbers)
+        for a, b in pairs:
+            ga = spglib.get_symmetry_dataset(cell, symprec=a).number
+            gb = spglib.get_symmetry_dataset(cell, symprec=b).number
+            assert (name in got[(a, b)]) == (ga != gb), (name, a, b, ga, gb)
+    rec = advice["recommended_symprec"]
+    assert rec is not None and camp.WINDOW[0] <= rec <= camp.WINDOW[1]
+    if advice["stable_ranges"]:
+        # the recommendation lies in a range where no run has a breakpoint
+        assert advice["runs_near_recommended"] is not None
+        assert any(lo <= rec <= hi for lo, hi in advice["stable_ranges"])
+
+
+def test_flag_counts_match_records(report, real_records):
+    # the index's counts per flag are the number of runs carrying each code (the hostile copy adds one)
+    counts = camp.flag_counts(list(real_records.values()))
+    assert counts == {c: sum(c in {f["code"] for f in r["flags"]} for r in real_records.values())
+                      for c in counts}
+    text = report["index"].read_text(encoding="utf-8")
+    for code in counts:
+        assert f"<b>{code}</b>" in text
+
+
+def test_two_sided_map_convention():
+    # shared/math.md 1.5: the shortest path between opposite signs reflects in one edge; only the x = 0
+    # edge is continuous in the sign*x plane, crossings of y = 0 or x + y = 1 jump between the halves
+    assert not plots._jump((0.02, 0.5), (0.03, 0.5))        # across x = 0 (nearest image (-x, y))
+    assert plots._jump((0.4, 0.01), (0.4, 0.02))           # across y = 0
+    assert plots._jump((0.45, 0.54), (0.46, 0.53))         # across x + y = 1
+    # sign 0 frames (on a boundary) are drawn in the half of the step before them
+    assert list(plots._effective_signs([0, 1, 0, -1, 0])) == [1, 1, 1, -1, -1]
+    assert list(plots._effective_signs([0, 0, -1])) == [-1, -1, -1]
+
+
+# ------------------------------------------------------------------------------------------- browser
+
+@needs_browser
+@pytest.mark.browser
+def test_injected_markup_renders_as_text_in_chromium(report):
+    # real browser: the hostile title/source/warnings/flag messages must be text, not elements
+    page = report["out"] / "runs" / "hostile.html"
+    dom = _chromium("--dump-dom", page.as_uri())
+    p = _parse(dom)
+    title = html.unescape(dom[dom.index("<title>") + 7:dom.index("</title>")])
+    assert title == f"Hostile {PWNED_TITLE} layer · driftwatch"  # not 'pwned' or 'pwned-img'
+    assert not [a for t, a in p.tags if t == "img"], "an injected <img> became an element"
+    assert not [a for t, a in p.tags if t == "script"], "an injected <script> became an element"
+    assert not [a for t, a in p.tags if t in ("u", "i")], "injected markup became an element"
+    text = "".join(p.text)
+    assert PWNED_TITLE in text and PWNED_IMG in text and "Si2<u>under</u>" in text
+
+
+@needs_browser
+@pytest.mark.browser
+def test_index_renders_and_script_runs_in_chromium(report):
+    # real browser: the index's own script runs under its CSP hash (it marks the sortable headers),
+    # the hostile run's title stays text in the table, and nothing injected became an element
+    dom = _chromium("--dump-dom", report["index"].as_uri())
+    p = _parse(dom)
+    ths = [a for t, a in p.tags if t == "th" and "aria-sort" in a]
+    assert len(ths) >= 10, "the sortable-table script did not run"
+    assert [a for t, a in p.tags if t == "script"] == [{}]  # our one inline script, nothing else
+    assert not [a for t, a in p.tags if t == "img"]
+    title = html.unescape(dom[dom.index("<title>") + 7:dom.index("</title>")])
+    assert title == "driftwatch campaign report"
+    assert PWNED_TITLE in "".join(p.text)
+
+
+@needs_browser
+@pytest.mark.browser
+def test_screenshots(report, tmp_path):
+    # real browser: both pages render to a non-trivial image (the screenshots are also kept in /tmp
+    # for a human look: driftwatch-report-index.png, driftwatch-report-run.png)
+    layer = next(n for n in report["names"] if n != "hostile" and "layer" in n) \
+        if any("layer" in n for n in report["names"]) else report["names"][0]
+    for page, name in ((report["index"], "index"), (report["out"] / "runs" / f"{layer}.html", "run")):
+        png = Path(tempfile.gettempdir()) / f"driftwatch-report-{name}.png"
+        _chromium(f"--screenshot={png}", "--window-size=1280,2000", "--hide-scrollbars",
+                  page.as_uri())
+        data = png.read_bytes()
+        assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 50_000, (png, len(data))

@@ -1,0 +1,487 @@
+"""Tests for driftwatch.symmetry (the spglib wrapper).
+
+Sources: spglib's own verdicts (direct ``spglib.get_symmetry_dataset`` / layer-dataset calls, not
+through driftwatch), International Tables facts (fcc Al Fm-3m 225, diamond Si Fd-3m 227, Pearson
+symbols of their lattices), ASE's 2D Bravais classification, and closed forms derived in comments.
+"""
+import math
+import os
+import subprocess
+import sys
+import warnings
+
+import numpy as np
+import pytest
+import spglib
+from ase.build import bulk, mx2
+from ase.cell import Cell
+
+from driftwatch import symmetry as S
+from driftwatch.errors import ConfigError, LatticeError, SymmetryError
+
+
+# ---------------------------------------------------------------- direct spglib (the reference)
+def spg_group(cell, positions, numbers, symprec, layer_axis=None):
+    """spglib's group number straight from spglib (no driftwatch code), 0 on failure."""
+    frac = np.linalg.solve(np.asarray(cell).T, np.asarray(positions).T).T
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        try:
+            if layer_axis is None:
+                ds = spglib.get_symmetry_dataset((cell, frac, numbers), symprec=symprec)
+            else:
+                ds = spglib.get_symmetry_layerdataset((cell, frac, numbers), layer_axis, symprec)
+        except spglib.error.SpglibError:
+            return 0, 0
+    return (0, 0) if ds is None else (ds.number, len(ds.rotations))
+
+
+def spg_lattice_number(cell, symprec):
+    return spg_group(cell, [[0.0, 0.0, 0.0]], [1], symprec)[0]
+
+
+def rattled_si(reps=(1, 2, 3), amp=0.003, seed=7):
+    atoms = bulk("Si", "diamond", a=5.43, cubic=True).repeat(reps)
+    atoms.rattle(amp, seed=seed)
+    return atoms.cell[:], atoms.get_positions(), atoms.numbers
+
+
+def check_brackets(spec, cell, positions, numbers):
+    """Every group breakpoint is a real change: spglib gives `from` at `low` and `to` at `high`
+    (source: spglib called directly). Points just outside a bracket are not checked: spglib's
+    verdict has narrow islands near a change (seen here: P1 windows ~0.3% wide in symprec between
+    P-1 and Fd-3m), so a neighbouring bracket can start right at `high`."""
+    group_bps = [b for b in spec["breakpoints"] if b["kind"] == "group"]
+    for b in group_bps:
+        assert b["high"] / b["low"] <= spec["precision"] * (1 + 1e-12)
+        assert spg_group(cell, positions, numbers, b["low"]) == (b["from"], b["from_operations"])
+        assert spg_group(cell, positions, numbers, b["high"]) == (b["to"], b["to_operations"])
+    # every change between grid neighbours has at least one breakpoint inside it
+    grid = spec["symprec"]
+    for i in range(len(grid) - 1):
+        if (spec["group"][i], spec["operations"][i]) != (spec["group"][i + 1], spec["operations"][i + 1]):
+            assert any(grid[i] <= b["low"] and b["high"] <= grid[i + 1] for b in group_bps)
+    return group_bps
+
+
+# ---------------------------------------------------------------- handbook facts
+def test_fcc_al_and_diamond_si_handbook_groups():
+    # International Tables: fcc Al is Fm-3m (225), diamond Si is Fd-3m (227); both lattices are cF.
+    for atoms, number in ((bulk("Al", "fcc", a=4.05), 225), (bulk("Si", "diamond", a=5.43), 227)):
+        spec = S.spectrum(atoms.cell[:], atoms.get_positions(), atoms.numbers)
+        assert set(spec["group"]) == {number}
+        assert set(spec["lattice"]) == {"cF"}
+        assert spec["breakpoints"] == [] and spec["failures"] == []
+        assert len(spec["symprec"]) == 17 and spec["symprec"][0] == pytest.approx(1e-5)
+        assert spec["symprec"][-1] == pytest.approx(0.5)
+        assert spec["spglib_version"] == spglib.__version__
+
+
+def test_pearson_symbols_of_one_atom_cells_match_handbook_and_ase():
+    # Pearson symbols of the 14 Bravais lattices (International Tables), cells built by ASE's
+    # bravais-lattice classes; ASE's own classification names the same lattice.
+    from ase.lattice import (BCC, BCT, CUB, FCC, HEX, MCL, MCLC, ORC, ORCC, ORCF, ORCI, RHL,
+                             TET, TRI)
+    cases = [(CUB(3.0), "cP"), (FCC(3.0), "cF"), (BCC(3.0), "cI"), (TET(3.0, 4.0), "tP"),
+             (BCT(3.0, 4.0), "tI"), (ORC(3.0, 4.0, 5.0), "oP"), (ORCF(3.0, 4.0, 5.0), "oF"),
+             (ORCI(3.0, 4.0, 5.0), "oI"), (ORCC(3.0, 4.0, 5.0), "oS"), (HEX(3.0, 5.0), "hP"),
+             (RHL(3.0, 70.0), "hR"), (MCL(3.0, 4.0, 5.0, 80.0), "mP"),
+             (MCLC(3.0, 4.0, 5.0, 70.0), "mS"), (TRI(3.0, 4.0, 5.0, 70.0, 80.0, 85.0), "aP")]
+    for lat, pearson in cases:
+        cell = lat.tocell()[:]
+        spec = S.spectrum(cell, [[0.0, 0.0, 0.0]], [1], symprecs=[1e-5, 1e-3])
+        assert spec["lattice"] == [pearson, pearson], lat
+        # ASE agrees (ASE writes the side-centred types oC/mC; International Tables' oS/mS)
+        assert Cell(cell).get_bravais_lattice().pearson_symbol.replace("C", "S") == pearson
+
+
+def test_2d_lattice_types_of_one_atom_slabs_match_ase():
+    # ASE's 2D Bravais classification (Cell.get_bravais_lattice with pbc=[1,1,0]) names the type.
+    ase_name = {"tp": "SQR", "hp": "HEX2D", "op": "RECT", "oc": "CRECT", "mp": "OBL"}
+    inplane = {"tp": [[3, 0], [0, 3]], "hp": [[3, 0], [1.5, 1.5 * math.sqrt(3)]],
+               "op": [[3, 0], [0, 4]], "oc": [[3, 0], [1.0, math.sqrt(8.0)]],
+               "mp": [[3, 0], [0.7, 4.1]]}
+    for kind, (a, b) in inplane.items():
+        flat = np.array([[a[0], a[1], 0.0], [b[0], b[1], 0.0], [0.0, 0.0, 0.0]])
+        assert Cell(flat).get_bravais_lattice(pbc=[1, 1, 0]).name == ase_name[kind]
+        for axis in (0, 1, 2):  # the vacuum axis may be any cell axis
+            cell = np.array([flat[0], flat[1], [0.0, 0.0, 15.0]])
+            order = [(axis + 1) % 3, (axis + 2) % 3, axis]
+            cell = cell[np.argsort(order)]
+            spec = S.spectrum(cell, [[0.0, 0.0, 7.5]], [1], symprecs=[1e-4, 1e-2], vacuum_axis=axis)
+            assert spec["lattice"] == [kind, kind], (kind, axis)
+
+
+# ---------------------------------------------------------------- spectra and breakpoints
+def test_breakpoints_of_rattled_si_bracket_real_changes():
+    cell, pos, num = rattled_si()
+    spec = S.spectrum(cell, pos, num)
+    bps = check_brackets(spec, cell, pos, num)
+    assert bps, "a rattled crystal must change verdict somewhere between 1e-5 and 0.5 Å"
+    assert spec["group"][0] == 1 and spec["group"][-1] == 227  # spglib at the grid ends
+    assert spec["group"] == [spg_group(cell, pos, num, s)[0] for s in spec["symprec"]]  # spglib
+
+
+def test_strained_fcc_lattice_breakpoint_and_strain():
+    # fcc conventional cell with c stretched by (1 + eps): body-centred tetragonal lattice (tI) at
+    # small symprec, cF at large symprec (International Tables lattice types; spglib decides where).
+    eps = 2e-3
+    atoms = bulk("Al", "fcc", a=4.05)  # primitive cell: its one-atom lattice is the fcc lattice
+    atoms.set_cell(atoms.cell[:] @ np.diag([1, 1, 1 + eps]), scale_atoms=True)
+    cell, pos, num = atoms.cell[:], atoms.get_positions(), atoms.numbers
+    spec = S.spectrum(cell, pos, num)
+    assert spec["lattice"][0] == "tI" and spec["lattice"][-1] == "cF"
+    lat_bps = [b for b in spec["breakpoints"] if b["kind"] == "lattice"]
+    assert [(b["from"], b["to"]) for b in lat_bps] == [("tI", "cF")]
+    b = lat_bps[0]
+    assert b["high"] / b["low"] <= 1.02
+    # spglib directly, one-atom cell: I4/mmm (139) below, Fm-3m (225) above
+    assert spg_lattice_number(cell, b["low"]) == 139 and spg_lattice_number(cell, b["high"]) == 225
+    check_brackets(spec, cell, pos, num)
+    # Strain to Fm-3m: the cubic average of diag(a², a², a²(1+eps)²) is m I with
+    # m = a²(2 + (1+eps)²)/3 (derived: the group average of a metric over m-3m is isotropic);
+    # Green-Lagrange eigenvalues ((m/a²) - 1)/2 twice and (m/(a²(1+eps)²) - 1)/2 once.
+    d = S.displacement_to_group(cell, pos, num, symprec=0.1)
+    assert d["group"] == 225
+    m = (2 + (1 + eps) ** 2) / 3
+    expected = 0.5 * math.sqrt(2 * (m - 1) ** 2 + (m / (1 + eps) ** 2 - 1) ** 2)
+    assert d["strain"] == pytest.approx(expected, rel=1e-9)
+    assert d["max"] < 1e-12  # fractional positions are already the fcc ones
+
+
+def test_warm_start_and_cache():
+    cell, pos, num = rattled_si()
+    first = S.spectrum(cell, pos, num)
+    again = S.spectrum(cell, pos, num)
+    assert again["calls"] == 0 and again["group"] == first["group"]  # cached exact frame
+    again["group"][0] = -1
+    assert S.spectrum(cell, pos, num)["group"][0] == first["group"][0]  # callers get copies
+    pos2 = pos + 1e-5 * np.random.default_rng(3).standard_normal(pos.shape)
+    cold = S.spectrum(cell, pos2, num, precision=1.0201)  # different key: no cache hit
+    warm = S.spectrum(cell, pos2, num, previous=first)
+    assert warm["group"] == cold["group"]
+    check_brackets(warm, cell, pos2, num)  # warm brackets are verified spglib changes too
+    assert warm["calls"] <= cold["calls"]
+
+
+def test_no_bisection_and_custom_grid():
+    cell, pos, num = rattled_si()
+    spec = S.spectrum(cell, pos, num, symprecs=[0.1, 1e-4, 1e-2], bisect=False)
+    assert spec["symprec"] == [1e-4, 1e-2, 0.1] and spec["breakpoints"] == []
+    assert spec["group"] == [spg_group(cell, pos, num, s)[0] for s in spec["symprec"]]  # spglib
+
+
+def test_bad_arguments():
+    cell, pos, num = rattled_si((1, 1, 1))
+    with pytest.raises(ConfigError, match="symprecs"):
+        S.spectrum(cell, pos, num, symprecs=[0.1, -1.0])
+    with pytest.raises(ConfigError, match="precision"):
+        S.spectrum(cell, pos, num, precision=1.0)
+    with pytest.raises(LatticeError):
+        S.spectrum(np.zeros((3, 3)), pos, num)
+
+
+# ---------------------------------------------------------------- spglib failures
+def duplicated_al():
+    atoms = bulk("Al", "fcc", a=4.05, cubic=True)
+    pos = atoms.get_positions()
+    pos[1] = pos[0]
+    return atoms.cell[:], pos, atoms.numbers
+
+
+@pytest.mark.parametrize("mode", ["returns None", "raises SpglibError"])
+def test_two_atoms_at_one_place_are_recorded_failures_in_both_modes(monkeypatch, mode):
+    # spglib's message for this input is "too close distance between atoms" (spglib, checked here
+    # by calling it with exceptions on); in the old mode driftwatch recovers that text too.
+    monkeypatch.delenv("SPGLIB_OLD_ERROR_HANDLING", raising=False)
+    monkeypatch.setattr(spglib.error, "OLD_ERROR_HANDLING", mode == "returns None")
+    S.clear_cache()  # otherwise the other mode's cached spectrum would be returned
+    assert S.versions()["error_mode_now"] == mode
+    before = dict(S.versions()["failures_seen"])
+    cell, pos, num = duplicated_al()
+    spec = S.spectrum(cell, pos, num, symprecs=[1e-4, 1e-2, 0.3])
+    assert spec["group"] == [0, 0, 0]
+    assert spec["lattice"] == ["cP"] * 3  # the lattice alone is fine (simple cubic cell)
+    assert [f["symprec"] for f in spec["failures"]] == spec["symprec"]
+    assert all("too close" in f["message"] for f in spec["failures"])
+    seen = S.versions()["failures_seen"]
+    key = "returned_none" if mode == "returns None" else "raised"
+    assert seen[key] >= before[key] + 3
+    with pytest.raises(SymmetryError, match="too close"):
+        S.displacement_to_group(cell, pos, num, symprec=0.01)
+
+
+def test_error_mode_set_by_environment_and_by_ase_in_a_subprocess():
+    # ASE's symmetry code sets SPGLIB_OLD_ERROR_HANDLING=false for the whole process (ASE source,
+    # ase/utils spglib_new_errorhandling); a plain env var does the same. Both in a child process.
+    code = (
+        "import numpy as np\n"
+        "from ase.build import bulk\n"
+        "from ase.spacegroup.symmetrize import check_symmetry\n"
+        "from driftwatch import symmetry as S\n"
+        "check_symmetry(bulk('Cu'), 1e-3)\n"
+        "a = bulk('Al', 'fcc', a=4.05, cubic=True); p = a.get_positions(); p[1] = p[0]\n"
+        "s = S.spectrum(a.cell[:], p, a.numbers, symprecs=[1e-3, 1e-1])\n"
+        "v = S.versions()\n"
+        "assert s['group'] == [0, 0], s\n"
+        "assert v['failures_seen']['raised'] >= 2, v\n"
+        "print(v['error_mode_now'])\n"
+    )
+    root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+    for extra in ({}, {"SPGLIB_OLD_ERROR_HANDLING": "0"}):
+        env = {k: v for k, v in os.environ.items() if k != "SPGLIB_OLD_ERROR_HANDLING"}
+        env.update(extra, PYTHONPATH=root + os.pathsep + env.get("PYTHONPATH", ""))
+        out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True,
+                             timeout=120)
+        assert out.returncode == 0, out.stderr
+        assert out.stdout.strip() == "raises SpglibError"
+
+
+def test_no_deprecation_warning_leaks():
+    atoms = bulk("Si", "diamond", a=5.43)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        S.spectrum(atoms.cell[:] * 1.0001, atoms.get_positions(), atoms.numbers, symprecs=[1e-3])
+    assert not [w for w in caught if "OLD_ERROR_HANDLING" in str(w.message)]
+
+
+# ---------------------------------------------------------------- displacement to a group
+def test_one_moved_atom_in_fcc_known_displacement():
+    # 32-atom fcc Al supercell, atom 0 moved by delta along u. Under the full Fm-3m group with the
+    # 32 lattice translations, the Reynolds average sends any nearby configuration to the ideal
+    # fcc arrangement (the point-group average of a displacement vanishes: m-3m contains -1), and
+    # the best uniform shift is the mean displacement delta*u/N (least squares). So the moved atom
+    # must move delta*(N-1)/N, each other atom delta/N: max = delta*(N-1)/N, rms = delta*sqrt(N-1)/N.
+    atoms = bulk("Al", "fcc", a=4.05, cubic=True).repeat(2)
+    n, delta = len(atoms), 0.01
+    u = np.array([1.0, 2.0, 3.0]) / math.sqrt(14.0)
+    pos = atoms.get_positions()
+    pos[0] += delta * u
+    d = S.displacement_to_group(atoms.cell[:], pos, atoms.numbers, symprec=5 * delta)
+    assert d["group"] == 225 and d["symbol"] == "Fm-3m"  # International Tables: fcc is Fm-3m
+    assert d["max"] == pytest.approx(delta * (n - 1) / n, rel=1e-9)
+    assert d["rms"] == pytest.approx(delta * math.sqrt(n - 1) / n, rel=1e-9)
+    assert d["max_atom"] == 0 and d["strain"] < 1e-12 and d["complete"]
+    # below delta/2 spglib cannot see Fm-3m (spglib directly): the moved atom breaks it
+    assert spg_group(atoms.cell[:], pos, atoms.numbers, delta / 4)[0] != 225
+    # rigid rotation and a unimodular change of cell basis leave the numbers unchanged
+    rot = np.linalg.qr(np.random.default_rng(0).standard_normal((3, 3)))[0]
+    d_rot = S.displacement_to_group(atoms.cell[:] @ rot.T, pos @ rot.T, atoms.numbers, symprec=5 * delta)
+    unimodular = np.array([[1, 1, 0], [0, 1, 0], [0, 2, 1]])
+    d_basis = S.displacement_to_group(unimodular @ atoms.cell[:], pos, atoms.numbers, symprec=5 * delta)
+    for other in (d_rot, d_basis):
+        assert other["group"] == 225
+        assert other["max"] == pytest.approx(d["max"], rel=1e-9)
+        assert other["rms"] == pytest.approx(d["rms"], rel=1e-9)
+
+
+def test_symmetrized_structure_is_exactly_symmetric_in_a_nonconforming_supercell():
+    # Primitive diamond Si doubled along one vector: the supercell lattice lacks most cubic
+    # operations, so spglib lists only some in the input cell, yet the group is Fd-3m. The
+    # symmetrised structure must have the whole group: spglib at a tiny symprec finds 227.
+    atoms = bulk("Si", "diamond", a=5.43).repeat((1, 1, 2))
+    atoms.rattle(0.004, seed=5)
+    cell, pos, num = atoms.cell[:], atoms.get_positions(), atoms.numbers
+    d = S.displacement_to_group(cell, pos, num, symprec=0.05)
+    assert d["group"] == 227 and d["complete"]
+    new_cell, new_pos, group = S.symmetrize(cell, pos, num, symprec=0.05)
+    assert group == 227 and spg_group(new_cell, new_pos, num, 1e-6)[0] == 227  # spglib
+    moved = np.linalg.norm(new_pos - pos, axis=1)  # the same lattice orientation, small strain
+    assert moved.max() < 0.05
+    assert d["rms"] <= 0.004 * math.sqrt(3)  # rattle is N(0, 0.004) per component (ASE docs)
+
+
+def test_drift_table_covers_every_group_seen():
+    cell, pos, num = rattled_si()
+    spec = S.spectrum(cell, pos, num)
+    table = S.drift_table(cell, pos, num, spec)
+    seen = set(spec["group"]) | {b[k] for b in spec["breakpoints"] if b["kind"] == "group"
+                                 for k in ("from", "to")}
+    assert set(table) == {str(g) for g in seen if g}
+    for key, entry in table.items():
+        assert entry["group"] == int(key)
+        assert entry["rms"] <= entry["max"] + 1e-15
+        assert entry["rms"] >= 0 and entry["strain"] >= 0
+    assert table["1"]["max"] == 0.0  # P1: nothing to move
+    assert table["227"]["max"] > 0.0
+
+
+# ---------------------------------------------------------------- layers
+def layer_along(atoms, axis):
+    """The same slab with its vacuum vector as cell axis ``axis`` (cyclic relabelling)."""
+    order = [(axis + 1) % 3, (axis + 2) % 3, axis]
+    return atoms.cell[:][np.argsort(order)], atoms.get_positions(), atoms.numbers
+
+
+def test_layer_group_same_for_vacuum_along_a_b_c():
+    atoms = mx2("MoS2", vacuum=8.0)
+    atoms.rattle(0.002, seed=1)
+    specs = [S.spectrum(*layer_along(atoms, axis), vacuum_axis=axis) for axis in (0, 1, 2)]
+    for spec in specs[1:]:
+        assert spec["group"] == specs[0]["group"] and spec["lattice"] == specs[0]["lattice"]
+    assert specs[0]["group_kind"] == "layer" and set(specs[0]["lattice"]) == {"hp"}
+    # spglib's layer routine called directly with the vacuum along c gives the same numbers
+    cell, pos, num = layer_along(atoms, 2)
+    assert specs[0]["group"] == [spg_group(cell, pos, num, s, layer_axis=2)[0]
+                                 for s in specs[0]["symprec"]]
+    # 2H-MoS2 monolayer: layer group p-6m2, No. 78 (from memory; spglib agrees above)
+    assert specs[0]["group"][-1] == 78
+
+
+def test_layer_displacement_in_orthohexagonal_cell():
+    # Rectangular (orthohexagonal) supercell of a hexagonal layer: its lattice lacks the 3-fold
+    # axis, but the layer group is still p-6m2 (78); the symmetrised layer must have all of it.
+    atoms = mx2("MoS2", vacuum=8.0)
+    ortho = np.array([[1, 0, 0], [1, 2, 0], [0, 0, 1]]) @ atoms.cell[:]
+    from ase.build import make_supercell
+    rect = make_supercell(atoms, np.array([[1, 0, 0], [1, 2, 0], [0, 0, 1]]))
+    assert np.allclose(rect.cell[:], ortho)
+    rect.rattle(0.003, seed=2)
+    cell, pos, num = rect.cell[:], rect.get_positions(), rect.numbers
+    results = [S.displacement_to_group(*layer_along(rect, axis), symprec=0.05, vacuum_axis=axis)
+               for axis in (0, 1, 2)]
+    for r in results:
+        assert r["group"] == 78 and r["complete"]
+        assert r["max"] == pytest.approx(results[0]["max"], rel=1e-9)
+    new_cell, new_pos, group = S.symmetrize(cell, pos, num, symprec=0.05, vacuum_axis=2)
+    assert spg_group(new_cell, new_pos, num, 1e-5, layer_axis=2)[0] == 78  # spglib, layer routine
+    # "The lattice alone" is the lattice of the cell given: a one-atom orthohexagonal cell is
+    # rectangular (ASE: RECT), although the crystal's translation lattice is hexagonal.
+    spec = S.spectrum(cell, pos, num, vacuum_axis=2)
+    assert set(spec["lattice"]) == {"op"}
+    flat = cell.copy()
+    flat[2] = 0.0
+    assert Cell(flat).get_bravais_lattice(pbc=[1, 1, 0]).name == "RECT"
+
+
+def test_bisection_finds_every_change_of_a_non_monotonic_verdict():
+    # A constructed step function of symprec (not spglib; common practice for testing a search):
+    # A up to 1e-3, B up to 2e-3, A again up to 3e-3, then C. The grid ends 1e-4 (A) and 1e-2 (C)
+    # differ; bisection meets B inside and reports all three changes, including B -> A (down).
+    edges = [(1e-3, "A"), (2e-3, "B"), (3e-3, "A"), (math.inf, "C")]
+
+    def probe(s):
+        return next(v for edge, v in edges if s <= edge)
+
+    values, brackets = S._scan(probe, lambda v: v, (1e-4, 1e-2), True, 1.02)
+    assert values == ["A", "C"]
+    assert [(vlo, vhi) for _, vlo, _, vhi in brackets] == [("A", "B"), ("B", "A"), ("A", "C")]
+    for (lo, vlo, hi, vhi), (edge, _) in zip(brackets, edges):
+        assert lo <= edge < hi and hi / lo <= 1.02
+        assert probe(lo) == vlo and probe(hi) == vhi
+    # documented limit: an excursion between two grid points with equal verdicts is not seen
+    values, brackets = S._scan(probe, lambda v: v, (1e-4, 2.5e-3), True, 1.02)
+    assert values == ["A", "A"] and brackets == []
+
+
+# ---------------------------------------------------------------- symmetrisation across groups
+def _crystals():
+    from ase.spacegroup import crystal
+    # Built by ASE's space-group generator from International Tables settings; the number used to
+    # build each one is what spglib must find (positions are invented, not from any paper).
+    return {
+        154: crystal(["Si", "O"], basis=[(0.47, 0, 0), (0.41, 0.27, 0.12)], spacegroup=154,
+                     cellpar=[4.9, 4.9, 5.4, 90, 90, 120]),  # chiral, trigonal
+        166: crystal(["Bi"], basis=[(0, 0, 0.234)], spacegroup=166,
+                     cellpar=[4.5, 4.5, 11.8, 90, 90, 120]),  # R-3m, hexagonal axes
+        141: crystal(["Ti", "O"], basis=[(0, 0, 0), (0, 0, 0.208)], spacegroup=141,
+                     cellpar=[3.78, 3.78, 9.5, 90, 90, 90]),  # two origin choices
+        12: crystal(["Al", "O"], basis=[(0.1, 0, 0.3), (0.2, 0.5, 0.1)], spacegroup=12,
+                    cellpar=[12.0, 3.0, 5.7, 90, 104, 90]),  # monoclinic C2/m
+        62: crystal(["Ca", "Ti", "O", "O"], basis=[(0.0, 0.25, 0.99), (0, 0, 0.5), (0.07, 0.25, 0.48),
+                                                    (0.29, 0.04, 0.71)], spacegroup=62,
+                    cellpar=[5.4, 7.6, 5.5, 90, 90, 90]),
+        194: bulk("Mg", "hcp", a=3.2, c=5.2),
+    }
+
+
+@pytest.mark.parametrize("number", [154, 166, 141, 12, 62, 194])
+def test_symmetrize_gives_the_group_exactly(number):
+    # rattled, strained, and in a supercell whose lattice lacks some of the operations;
+    # spglib at symprec 1e-6 on the symmetrised structure must find the group (spglib).
+    from ase.build import make_supercell
+    atoms = make_supercell(_crystals()[number], np.array([[1, 1, 0], [0, 1, 0], [0, 0, 2]]))
+    strain = np.eye(3) + 5e-4 * np.random.default_rng(number).standard_normal((3, 3))
+    atoms.set_cell(atoms.cell[:] @ strain.T, scale_atoms=True)
+    atoms.rattle(0.002, seed=number)
+    cell, pos, num = atoms.cell[:], atoms.get_positions(), atoms.numbers
+    d = S.displacement_to_group(cell, pos, num, symprec=0.03)
+    assert d["group"] == number and d["complete"]
+    assert 0 < d["rms"] <= d["max"] < 0.02 and 0 < d["strain"] < 0.01
+    new_cell, new_pos, group = S.symmetrize(cell, pos, num, symprec=0.03)
+    assert group == number and spg_group(new_cell, new_pos, num, 1e-6)[0] == number
+    # the symmetric cell is the input one stretched, not rotated: U = sqrt(F^T F) is symmetric
+    stretch = np.linalg.solve(cell, new_cell)
+    assert np.allclose(stretch, stretch.T, atol=1e-12)
+
+
+def test_graphene_and_an_invented_oblique_layer():
+    from ase.build import graphene
+    sheet = graphene(a=2.46, vacuum=7.0)
+    spec = S.spectrum(sheet.cell[:], sheet.get_positions(), sheet.numbers, vacuum_axis=2,
+                      symprecs=[1e-4, 1e-2])
+    # graphene: layer group p6/mmm, No. 80 (from memory); hexagonal 2D lattice (ASE: HEX2D)
+    assert spec["group"] == [80, 80] and spec["group_symbol"][0] == "p6/mmm"
+    assert spec["lattice"] == ["hp", "hp"]
+    # invented two-element oblique layer (no symmetry beyond p1/p-1 possible for its lattice)
+    cell = np.array([[3.1, 0.0, 0.0], [0.9, 3.7, 0.0], [0.0, 0.0, 18.0]])
+    frac = np.array([[0.0, 0.0, 0.5], [0.37, 0.21, 0.55], [0.63, 0.79, 0.45]])
+    pos = frac @ cell
+    spec = S.spectrum(cell, pos, [42, 16, 16], vacuum_axis=2, symprecs=[1e-4, 1e-2])
+    assert set(spec["lattice"]) == {"mp"}
+    assert spec["group"] == [spg_group(cell, pos, [42, 16, 16], s, layer_axis=2)[0]
+                             for s in spec["symprec"]]  # spglib
+    assert all(g <= 7 for g in spec["group"])  # oblique layer groups are 1-7 (International Tables E)
+
+
+def test_leaning_vacuum_vector_does_not_change_the_layer_group():
+    # A slab's symmetry does not depend on how its vacuum vector leans (it is not a lattice vector
+    # of the layer); spglib called directly on the upright cell is the reference.
+    atoms = mx2("MoS2", vacuum=8.0)
+    atoms.rattle(0.001, seed=2)
+    pos, num = atoms.get_positions(), atoms.numbers
+    upright = atoms.cell[:]
+    leaning = upright.copy()
+    leaning[2] = [1.3, 0.7, upright[2, 2]]
+    grid = [1e-3, 1e-2, 0.1]
+    ref = [spg_group(upright, pos, num, s, layer_axis=2)[0] for s in grid]
+    assert ref[-1] == 78  # p-6m2 (from memory), spglib on the upright cell
+    spec = S.spectrum(leaning, pos, num, vacuum_axis=2, symprecs=grid)
+    assert spec["group"] == ref
+    d_up = S.displacement_to_group(upright, pos, num, 0.1, vacuum_axis=2)
+    d_lean = S.displacement_to_group(leaning, pos, num, 0.1, vacuum_axis=2)
+    assert d_lean["group"] == 78 and d_lean["max"] == pytest.approx(d_up["max"], rel=1e-9)
+    new_cell, new_pos, _ = S.symmetrize(leaning, pos, num, 0.1, vacuum_axis=2)
+    assert np.allclose(new_cell[2], leaning[2])  # the user's vacuum vector comes back
+    assert spg_group(upright, new_pos, num, 1e-5, layer_axis=2)[0] == 78  # spglib
+
+
+def test_drift_table_for_a_layer_uses_the_layer_group():
+    atoms = mx2("MoS2", vacuum=8.0)
+    atoms.rattle(0.002, seed=1)
+    cell, pos, num = atoms.cell[:], atoms.get_positions(), atoms.numbers
+    spec = S.spectrum(cell, pos, num, vacuum_axis=2)
+    table = S.drift_table(cell, pos, num, spec, vacuum_axis=2)
+    assert "78" in table and table["78"]["symbol"] == "p-6m2"  # layer group, as spglib names it
+    with pytest.raises(Exception, match="vacuum_axis"):
+        S.drift_table(cell, pos, num, spec, vacuum_axis=0)
+
+
+def test_lattice_shortcut_agrees_with_asking_spglib_everywhere():
+    # The shortcut assumes the lattice verdict stays at the type found at the largest symprec once
+    # reached; on these cells spglib, asked at every grid point, agrees.
+    eps = 2e-3
+    strained = bulk("Al", "fcc", a=4.05)
+    strained.set_cell(strained.cell[:] @ np.diag([1, 1, 1 + eps]), scale_atoms=True)
+    sheet = mx2("MoS2", vacuum=8.0)
+    cases = [(strained.cell[:], strained.get_positions(), strained.numbers, None),
+             (*rattled_si(), None),
+             (sheet.cell[:], sheet.get_positions(), sheet.numbers, 2)]
+    for cell, pos, num, axis in cases:
+        fast = S.spectrum(cell, pos, num, vacuum_axis=axis)
+        full = S.spectrum(cell, pos, num, vacuum_axis=axis, lattice_shortcut=False)
+        assert fast["lattice"] == full["lattice"] and full["lattice_assumed_from"] is None
+        lat = lambda spec: [b for b in spec["breakpoints"] if b["kind"] == "lattice"]
+        assert lat(fast) == lat(full)
+        assert fast["calls"] <= full["calls"]
+    assert fast["lattice_assumed_from"] is not None  # the flat MoS2 lattice is hp everywhere

@@ -1,0 +1,124 @@
+"""The whole pipeline on real pw.x relaxations made here (tests/data/qe/, example_runs/).
+
+spglib's verdicts in these tests come from spglib itself (called here directly), never restated by hand.
+"""
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+import spglib
+from ase.io import read
+
+import driftwatch
+from driftwatch import config, records, rules
+
+QE = Path(__file__).parent / "data" / "qe"
+
+
+def _spglib_lattice_number(cell, symprec):
+    """spglib space group of a one-atom cell with this lattice (its holohedry)."""
+    ds = spglib.get_symmetry_dataset((cell, [[0, 0, 0]], [1]), symprec=symprec)
+    return ds.number
+
+
+@pytest.fixture(scope="module")
+def hex_record():
+    return driftwatch.analyze(QE / "layer_oblique_to_hex")
+
+
+def test_record_schema_and_per_frame_fields(hex_record):
+    rec = hex_record
+    assert rec["schema"] == records.SCHEMA
+    assert rec["geometry"]["dimension"] == 2
+    # the same file read by ASE's own pw.x reader gives the same number of completed steps
+    frames_ase = read(QE / "layer_oblique_to_hex" / "pw.out", index=":", format="espresso-out")
+    assert rec["run"]["n_frames"] == len(frames_ase)
+    for f in rec["frames"]:
+        ri = f["root_invariant"]
+        assert ri == sorted(ri) and len(ri) == 3
+        assert f["sign"] in (-1, 0, 1)
+        assert set(f["distance"]) == {"op", "oc", "tp", "hp", "mirror"}
+        assert set(f["deformation"]) == set(f["distance"])
+    assert "symmetry" in rec["frames"][0] and "symmetry" in rec["frames"][-1]
+    json.loads(records.dumps(rec))  # standard JSON
+
+
+def test_oblique_layer_that_snapped_to_hexagonal_is_flagged(hex_record):
+    rec = hex_record
+    snap = [f for f in rec["flags"] if f["code"] == "snapped"]
+    assert len(snap) == 1 and snap[0]["type"] == "hp"
+    k = snap[0]["frame"]
+    cells = [a.cell.array for a in read(QE / "layer_oblique_to_hex" / "pw.out", index=":",
+                                        format="espresso-out")]
+    # spglib (one-atom cell of the same lattice, symprec 1e-3 Å): the first frame is not hexagonal,
+    # the flagged frame and the last frame are (P6/mmm, 191, is the holohedry of a hexagonal lattice
+    # with its perpendicular vacuum vector; International Tables Vol. A)
+    assert _spglib_lattice_number(cells[0], 1e-3) != 191
+    assert _spglib_lattice_number(cells[k], 1e-3) == 191
+    assert _spglib_lattice_number(cells[-1], 1e-3) == 191
+    assert rec["summary"]["verdict"] == "snapped"
+    assert rec["summary"]["final"]["type"] == "hp"
+    assert rec["summary"]["initial"]["type"] == "mp"
+
+
+def test_bulk_tetragonal_cell_drifts_to_cubic():
+    rec = driftwatch.analyze(QE / "bulk_tetragonal_to_cubic")
+    assert rec["geometry"]["dimension"] == 3
+    cells = [a.cell.array for a in read(QE / "bulk_tetragonal_to_cubic" / "pw.out", index=":",
+                                        format="espresso-out")]
+    final_number = _spglib_lattice_number(cells[-1], 1e-3)
+    assert final_number >= 195  # spglib: the final lattice is cubic (space groups 195-230)
+    assert _spglib_lattice_number(cells[0], 1e-3) < 195  # ... and the first is not
+    fin = rec["summary"]["final"]["type"]
+    assert fin.startswith("c")
+    assert any(f["code"] in ("snapped", "approaching") for f in rec["flags"])
+
+
+def test_fixed_cell_run_has_no_lattice_drift_but_atomic_drift():
+    rec = driftwatch.analyze(QE / "relax_atoms_to_sites")
+    assert rec["run"]["fixed_cell"] is True
+    assert rec["summary"]["verdict"] == "fixed-cell"
+    assert not [f for f in rec["flags"] if f["code"] in ("snapped", "approaching")]
+    first, last = rec["frames"][0]["symmetry"], rec["frames"][-1]["symmetry"]
+    # spglib itself on the first and last structures read by ASE: the group at 1e-3 Å grows
+    atoms = read(QE / "relax_atoms_to_sites" / "pw.out", index=":", format="espresso-out")
+    n0 = spglib.get_symmetry_dataset((atoms[0].cell.array, atoms[0].get_scaled_positions(),
+                                      atoms[0].numbers), symprec=1e-3).number
+    n1 = spglib.get_symmetry_dataset((atoms[-1].cell.array, atoms[-1].get_scaled_positions(),
+                                      atoms[-1].numbers), symprec=1e-3).number
+    i = int(np.argmin(np.abs(np.log(np.asarray(first["symprec"]) / 1e-3))))
+    assert first["group"][i] == n0 and last["group"][i] == n1
+    if n1 != n0:
+        assert any(f["code"] == "atoms-settled" for f in rec["flags"])
+
+
+def test_gate_and_fail_on():
+    flags = [{"code": "snapped", "level": "warning"}, {"code": "approaching", "level": "info"}]
+    assert rules.gate(flags, ["snapped"]) == flags[:1]
+    assert rules.gate(flags, ["info"]) == flags[1:]
+    assert rules.gate(flags, []) == []
+
+
+@pytest.mark.parametrize("number,symbol,dim,expected", [
+    # International Tables Vol. A: space-group number ranges of the crystal systems and centring letters
+    (225, "Fm-3m", 3, "cF"), (229, "Im-3m", 3, "cI"), (221, "Pm-3m", 3, "cP"),
+    (139, "I4/mmm", 3, "tI"), (123, "P4/mmm", 3, "tP"), (166, "R-3m", 3, "hR"),
+    (191, "P6/mmm", 3, "hP"), (164, "P-3m1", 3, "hP"), (12, "C2/m", 3, "mS"), (2, "P-1", 3, "aP"),
+    (65, "Cmmm", 3, "oS"), (38, "Amm2", 3, "oS"), (71, "Immm", 3, "oI"), (69, "Fmmm", 3, "oF"),
+    # International Tables Vol. E: layer groups 1-7 oblique, 8-48 rectangular (c = centred),
+    # 49-64 square, 65-80 hexagonal
+    (1, "p1", 2, "mp"), (37, "pmmm", 2, "op"), (47, "cmmm", 2, "oc"), (61, "p4/mmm", 2, "tp"),
+    (80, "p6/mmm", 2, "hp")])
+def test_bravais_of_group(number, symbol, dim, expected):
+    assert rules.bravais_of_group(number, symbol, dim) == expected
+
+
+def test_symprec_grid_contains_rule_values():
+    cfg = config.load()
+    from driftwatch.track import symprec_grid
+    grid = symprec_grid(cfg)
+    for x in (1e-3, 1e-2, 0.1, 1e-5):
+        assert min(abs(np.log(np.asarray(grid) / x))) < 1e-9
+    assert grid == sorted(grid) and grid[0] >= 1e-5 and grid[-1] <= 0.5
