@@ -117,9 +117,22 @@ def _matches(spec: RunSpec, patterns) -> bool:
 
 
 def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, globs):
-    """Yield RunSpecs and failed entries (dicts) below ``root`` (depth first, sorted)."""
-    stack = [(root, prefix)]
-    while stack:
+    """Yield RunSpecs and failed entries (dicts) below ``root`` (depth first, sorted).
+
+    Symbolic links (to files or folders) are taken after every real path of the root, so a run
+    reachable both ways is named by its real path; real paths seen are never entered twice.
+    """
+    stack, later_dirs, later_files = [(Path(root), prefix)], [], []
+    while stack or later_dirs or later_files:
+        if not stack:
+            for path, rid, name in later_files:
+                freal = os.path.realpath(path)
+                if freal not in seen_runs and freal not in skip and _is_candidate(path, name, globs):
+                    seen_runs.add(freal)
+                    yield RunSpec(rid, path, "file")
+            later_files = []
+            stack, later_dirs = later_dirs[::-1], []
+            continue
         folder, rid = stack.pop()
         real = os.path.realpath(folder)
         if real in seen_dirs or real in skip:
@@ -141,14 +154,18 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, gl
                 yield RunSpec(rid, str(folder), "folder")
         else:
             for e in files:
-                freal = os.path.realpath(e.path)
-                if freal in seen_runs or freal in skip:
+                path, frid = str(Path(folder) / e.name), f"{rid}/{e.name}"
+                if e.is_symlink():
+                    later_files.append((path, frid, e.name))
                     continue
-                if _is_candidate(e.path, e.name, globs):
+                freal = os.path.realpath(path)
+                if freal not in seen_runs and freal not in skip and _is_candidate(path, e.name,
+                                                                                 globs):
                     seen_runs.add(freal)
-                    yield RunSpec(f"{rid}/{e.name}", str(Path(folder) / e.name), "file")
+                    yield RunSpec(frid, path, "file")
         for e in reversed(dirs):
-            stack.append((Path(folder) / e.name, f"{rid}/{e.name}"))
+            item = (Path(folder) / e.name, f"{rid}/{e.name}")
+            (later_dirs if e.is_symlink() else stack).append(item)
 
 
 def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], list[dict]]:
@@ -219,6 +236,20 @@ def _one_line(exc: BaseException, path: str) -> str:
     return text if len(text) <= 400 else text[:397] + "..."
 
 
+def _split_volatile(rec: dict) -> dict:
+    """Remove what differs between two analyses of the same input and return it: the ``timing``
+    block and each spglib frame's ``calls`` counter (0 when symmetry's in-process cache served the
+    frame, so it depends on what the process analysed before). Written records stay byte-stable."""
+    timing = dict(rec.pop("timing", None) or {})
+    calls = 0
+    for frame in rec.get("frames", []):
+        sym = frame.get("symmetry")
+        if isinstance(sym, dict) and "calls" in sym:
+            calls += int(sym.pop("calls") or 0)
+    timing["spglib_calls"] = calls
+    return timing
+
+
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
     """Analyse one run; never raises (except KeyboardInterrupt/SystemExit).
 
@@ -231,7 +262,7 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
         from .track import analyze
         run = read_run(path)
         rec = analyze(run, cfg)
-        timing = rec.pop("timing", None)
+        timing = _split_volatile(rec)
         structure = {"cell": run.cells[-1].tolist(), "positions": run.positions[-1].tolist(),
                      "numbers": [int(z) for z in run.numbers], "pbc": [bool(p) for p in run.pbc]}
         return {"run": run_id, "source": path, "ok": True,

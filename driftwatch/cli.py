@@ -144,8 +144,12 @@ def _inspect_table(rec: dict) -> str:
     """Per-step table: deformation to the nearest types, sign (layers), spglib at 1e-3 Å."""
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
-    last = frames[-1]["deformation"]
-    shown = sorted((t for t in last if t != "mirror"), key=lambda t: last[t])[:3]
+    s = rec["summary"]
+    if dim == 2:
+        shown = ["op", "oc", "tp", "hp"]
+    else:  # the type the run moved toward, and the nearest types not reached at start and end
+        picks = [(s["drift"] or {}).get("type"), s["initial"]["nearest"], s["final"]["nearest"]]
+        shown = list(dict.fromkeys(t for t in picks if t))
     head = ["step", "energy/eV"] + [f"{t}/Å" for t in shown] + (["sign", "chiral/Å"] if dim == 2 else [])
     head += ["spglib@1e-3"]
     rows = [head]
@@ -164,7 +168,6 @@ def _inspect_table(rec: dict) -> str:
         rows.append(row)
     widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
     lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in rows]
-    s = rec["summary"]
     lines.append("")
     kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
     lines.append(f"{rec['run']['source']}: {kind}, {rec['run']['n_frames']} frames, "

@@ -143,14 +143,21 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP) -> Geometry:
 
 
 def plane_normals(cells, vacuum_axis: int) -> np.ndarray:
-    """(n, 3) unit normals of the layer plane, oriented so that n · c_vac > 0 (the viewing side)."""
+    """(n, 3) unit normals of the layer plane, oriented so that n · c_vac > 0 (the viewing side).
+
+    A zero vacuum vector (ASE's way of writing a 2D cell with pbc False) is read as
+    c_vac = a × b, i.e. the cell is taken as right-handed.
+    """
     cells, _, single = _frames(cells)
     i, j = _INPLANE[int(vacuum_axis)]
     cr = np.cross(cells[:, i], cells[:, j])
     norm = np.linalg.norm(cr, axis=1)
     if np.any(norm < 1e-12):
         raise GeometryError("degenerate in-plane cell vectors (parallel or zero)")
-    side = np.sign(np.einsum("nk,nk->n", cr, cells[:, vacuum_axis]))
+    cvac = cells[:, vacuum_axis]
+    side = np.sign(np.einsum("nk,nk->n", cr, cvac))
+    zero = np.linalg.norm(cvac, axis=1) < 1e-12
+    side[zero] = 1.0            # ASE's 2D convention (c = 0, pbc False): view along a x b
     if np.any(side == 0):
         raise GeometryError("the vacuum cell vector lies in the layer plane")
     n = cr / (norm * side)[:, None]

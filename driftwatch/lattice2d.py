@@ -22,8 +22,9 @@ only while some frame still changes.  Each frame is first scaled by an exact
 power of two (tiny and huge cells behave alike), and b - mu a is formed with an
 exact product (Dekker), so a skewed basis such as rows (1, 0), (1000.001, 0.002)
 reduces with one rounding of the small result: its conorms match exact rational
-arithmetic on the float input to ~1e-16 relative.  Roughly 1e6 frames/s for
-one reduction on one core; ``invariants`` returns everything from one reduction.
+arithmetic on the float input to ~1e-16 relative.  One reduction runs at
+~0.6-1.5e6 frames/s on one core (measured); ``invariants`` returns everything
+from one reduction.
 
 Deformation measure (``deformation``): the root-space distances grow like the
 square root of a strain near r12 = 0 (a right angle off by 0.014 degrees is
@@ -39,24 +40,30 @@ smallest symprec at which spglib's lattice-only verdict becomes the target type;
 R = deformation / critical symprec; test
 ``tests/test_lattice2d.py::test_deformation_calibrated_to_spglib``):
 
-==================================================  ======  ===========  =========
-family (a = 3.1 Å unless stated)                    target  R (l2)       R (linf)
-==================================================  ======  ===========  =========
-square sheared by θ = 1e-5 .. 1e-2 rad              tp      0.500-0.501  same
-rectangle 3 x 4 Å sheared by θ = 1e-5 .. 1e-2 rad   op      0.490-0.491  same
-rectangle, |b|/|a| = 1 + ε, ε = 1e-6 .. 1e-2        tp      1.414        1.000
-rhombic 3 Å, γ = 68.75°, |b| = (1 + ε)|a|           oc      1.563        1.105
-hexagonal a = 2.9 Å, random symmetric strain of     hp      0.94-1.09    0.667
-norm 1e-5 .. 1e-3 (60 samples; median 0.98)
-==================================================  ======  ===========  =========
+=====================================================  ======  ===========  ===========
+family (a = 3.1 Å unless stated)                       target  R (l2)       R (linf)
+=====================================================  ======  ===========  ===========
+square sheared by θ = 1e-5 .. 1e-2 rad                 tp      0.500-0.501  same
+rectangle |b|/|a| = ρ sheared by θ (a = 3 Å):          op      ρ = 4/3: 0.490-0.491,
+  R = sqrt(ρ / (2 (1 + ρ^2))) (derived, matches)               1.05: 0.500, 1.5: 0.480,
+                                                               2.5: 0.415, 4: 0.343
+rectangle, |b|/|a| = 1 + ε, ε = 1e-6 .. 1e-2           tp      1.414        1.000
+rhombic 3 Å, |b| = (1 + ε)|a|, γ = 62 .. 110°          oc      1.43-1.62    1.01-1.14
+  (γ = 68.75°: 1.563 / 1.105; 88°: 1.427 / 1.009)
+hexagonal a = 2.9 Å, random symmetric strain of        hp      0.94-1.09    0.667
+  norm 1e-5 .. 1e-3 (60 samples; median 0.98)
+=====================================================  ======  ===========  ===========
 
-spglib flips a sheared square or rectangle at symprec ≈ 2 sqrt(|a||b|) θ, while
-the deformation is |a||b| θ / ℓ (= a θ for the square); it flips a length mismatch at |b| - |a|,
-where the L2 deformation is √2 (|b| - |a|).  So in L2, deformation / symprec
-lies in 0.49 .. 1.56 on these families: ``deformation <= symprec`` agrees with
-spglib's lattice verdict within a factor of about 2 either way.  Use it (not
-the root distances) for thresholds compared with ``symprec``.  This is an
-agreement measured on these families, not a guarantee: spglib's metric test and
+Why: spglib flips a sheared rectangle at symprec ≈ 2 sqrt(|a||b|) θ, while the
+deformation is |a||b| θ / ℓ (= a θ for the square); it flips a length mismatch
+at |b| - |a|, where the L2 deformation is √2 (|b| - |a|).  So for near-equant
+cells (aspect <= 1.5) deformation / symprec lies in 0.48 .. 1.62 (L2):
+``deformation <= symprec`` agrees with spglib's lattice verdict within a factor
+of about 2 either way.  For elongated cells sheared towards a right angle the
+deformation is smaller than spglib's threshold by the factor above (0.22 at
+aspect 10), because ℓ is an average length.  Use the deformation (not the root
+distances) for thresholds compared with ``symprec``.  This is an agreement
+measured on these families, not a guarantee: spglib's metric test and
 this measure are different functions of the cell.
 """
 
@@ -429,7 +436,8 @@ def deformation(bases, metric="l2"):
     (op: p12 = 0; oc: p12 = p01 or p01 = p02; tp: p12 = 0 and p01 = p02; hp: all
     equal) and ℓ = sqrt((p12 + p01 + p02)/2) Å (= a for a square of side a).
     Roughly the lattice-vector displacement needed to reach the type; calibrated
-    against spglib's symprec in the module docstring (ratio 0.49-1.56 in L2).
+    against spglib's symprec in the module docstring (ratio 0.48-1.62 in L2 for
+    near-equant cells; smaller for elongated sheared rectangles).
     """
     _check_metric(metric)
     _, p, single, _ = _superbase(bases)

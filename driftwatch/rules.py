@@ -23,7 +23,8 @@ spglib-overcall    warning spglib's lattice-only type at ``symprec`` is one the 
 atoms-break-lattice info   the final lattice is within ``within`` of a type, but the structure's group at
                            ``symprec`` has a lower lattice type: the atoms break the lattice symmetry
 atoms-settled      info    the structure's group at ``rules.atoms_settled.symprec`` gained operations
-                           from the first to the last frame (symmetry drift carried by the atoms)
+                           from the first to the last frame while spglib's lattice-only type stayed the
+                           same (symmetry drift carried by the atoms)
 code-imposed       info    the DFT code's own symmetry handling was on and could have held or imposed
                            the final symmetry
 ================== ======= ===========================================================================
@@ -219,8 +220,10 @@ def _settled(frames, r):
     k0, k1 = analysed[0], analysed[-1]
     ops0, sym0 = _at(frames[k0]["symmetry"], r["symprec"], "operations")
     ops1, sym1 = _at(frames[k1]["symmetry"], r["symprec"], "operations")
-    if not (ops0 and ops1 and ops1 > ops0):
-        return []
+    lat0, _ = _at(frames[k0]["symmetry"], r["symprec"], "lattice")
+    lat1, _ = _at(frames[k1]["symmetry"], r["symprec"], "lattice")
+    if not (ops0 and ops1 and ops1 > ops0) or lat0 != lat1:
+        return []  # a gain that comes with a new lattice type is the lattice's (see 'snapped')
     msg = (f"the structure's symmetry at symprec {r['symprec']:.3g} Å rose from {sym0} ({ops0} "
            f"operations) to {sym1} ({ops1} operations): the atoms moved onto more symmetric sites")
     return [_flag("atoms-settled", k1, frames, msg, None, int(ops1), r["symprec"])]

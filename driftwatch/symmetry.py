@@ -127,11 +127,35 @@ def _layer_function():
     return fn
 
 
+_DATASETS: "collections.OrderedDict[tuple, tuple]" = collections.OrderedDict()
+_DATASET_MEMO = 128
+
+
 def _dataset(lattice, frac, numbers, symprec, angle_tolerance, layer):
     """spglib dataset at one symprec, ``(dataset, None)`` or ``(None, message)``.
 
-    For ``layer`` the aperiodic axis must already be c (see ``_to_c_axis``).
+    For ``layer`` the aperiodic axis must already be c (see ``_to_c_axis``). Results are memoised
+    on the exact input bytes (and spglib's error mode), so the displacement step reuses the
+    datasets the spectrum already asked spglib for instead of asking again (no approximation:
+    spglib is deterministic in its input).
     """
+    lattice, frac = np.ascontiguousarray(lattice, float), np.ascontiguousarray(frac, float)
+    numbers = np.ascontiguousarray(numbers, np.intc)
+    key = (lattice.tobytes(), frac.tobytes(), numbers.tobytes(), float(symprec),
+           float(angle_tolerance), bool(layer), getattr(spglib.error, "OLD_ERROR_HANDLING", None),
+           os.environ.get("SPGLIB_OLD_ERROR_HANDLING"))
+    hit = _DATASETS.get(key)
+    if hit is not None:
+        _DATASETS.move_to_end(key)
+        return hit
+    out = _dataset_uncached(lattice, frac, numbers, symprec, angle_tolerance, layer)
+    _DATASETS[key] = out
+    if len(_DATASETS) > _DATASET_MEMO:
+        _DATASETS.popitem(last=False)
+    return out
+
+
+def _dataset_uncached(lattice, frac, numbers, symprec, angle_tolerance, layer):
     cell = (lattice, frac, numbers)
     if not layer:
         return _call(spglib.get_symmetry_dataset, cell, symprec=symprec,
@@ -802,9 +826,10 @@ def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None):
 
 
 def clear_cache():
-    """Forget cached spectra and lattice spectra (they are keyed on exact input bytes)."""
+    """Forget cached spectra, lattice spectra and spglib datasets (keyed on exact input bytes)."""
     _SPECTRUM_CACHE.clear()
     _LATTICE_CACHE.clear()
+    _DATASETS.clear()
 
 
 def versions():

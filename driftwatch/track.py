@@ -30,24 +30,15 @@ def lattice_table(run: Run, geo, metric: str = "l2") -> dict:
     """Invariants of every frame as arrays (n, ...). Layers use the in-plane 2D lattice; bulk the 3D cell."""
     if geo.dimension == 2:
         bases = geometry.inplane_bases(run.cells, geo.vacuum_axis)
-        return {
-            "dimension": 2,
-            "bases": bases,
-            "root_invariant": lattice2d.root_invariant(bases),
-            "sign": lattice2d.sign(bases),
-            "projected": lattice2d.projected(bases),
-            "distance": lattice2d.distances(bases, metric=metric),
-            "distance_projected": lattice2d.distances(bases, metric=metric, space="projected"),
-            "deformation": lattice2d.deformation(bases, metric=metric),
-        }
-    return {
-        "dimension": 3,
-        "bases": run.cells,
-        "root_products": lattice3d.root_products(run.cells),
-        "distance": lattice3d.distances(run.cells, metric=metric),
-        "deformation": lattice3d.deformation(run.cells, metric=metric),
-        "systems": lattice3d.system_distances(run.cells, metric=metric),
-    }
+        inv = lattice2d.invariants(bases, metric=metric)
+        return {"dimension": 2, "bases": bases, "root_invariant": inv["root_invariant"],
+                "sign": inv["sign"], "projected": inv["projected"], "distance": inv["distances"],
+                "distance_projected": inv["distances_projected"], "deformation": inv["deformation"],
+                "chiral_distance": inv["chiral_distance"]}
+    inv = lattice3d.invariants(run.cells, metric=metric)
+    return {"dimension": 3, "bases": run.cells, "root_products": inv["root_products"],
+            "distance": inv["distance"], "deformation": inv["deformation"],
+            "systems": inv["systems"]}
 
 
 def select_frames(deformation: dict, sel: dict) -> list[int]:
@@ -77,14 +68,17 @@ def symprec_grid(cfg: dict) -> list[float]:
              r["spglib_overcall"]["symprec"], r["atoms_break_lattice"]["symprec"],
              r["atoms_settled"]["symprec"], *cfg["report"]["common_symprecs"]]
     out = list(grid)
+    moved = set()
     for x in extra:
         if not s["symprec_min"] <= x <= s["symprec_max"]:
             continue
         i = int(np.argmin(np.abs(np.log(grid / x))))
-        if abs(np.log(grid[i] / x)) < half_step and grid[i] not in (grid[0], grid[-1]):
+        if abs(np.log(grid[i] / x)) < half_step and grid[i] not in (grid[0], grid[-1]) \
+                and (i not in moved or out[i] == x):
             out[i] = x          # move the nearest interior grid point onto the quoted value
+            moved.add(i)
         else:
-            out.append(x)
+            out.append(x)       # (a point already moved onto another quoted value stays there)
     return sorted({round(float(x), 12) for x in out})
 
 
@@ -109,7 +103,7 @@ def _frame_entries(run: Run, table: dict) -> list[dict]:
             f["distance"] = _as_lists(table["distance"], i)
             f["distance_projected"] = _as_lists(table["distance_projected"], i)
             f["deformation"] = _as_lists(table["deformation"], i)
-            f["chiral_distance"] = f["sign"] * f["distance"]["mirror"]
+            f["chiral_distance"] = float(table["chiral_distance"][i])
         else:
             f["root_products"] = [float(x) for x in table["root_products"][i]]
             f["distance"] = _as_lists(table["distance"], i)

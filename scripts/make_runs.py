@@ -274,7 +274,8 @@ QE_RUNS: list[QERun] = [
         name="L01_qe_vcrelax", tree="example_runs", calculation="vc-relax",
         cell=layer_cell(3.70, 3.98, 113.0, 16.0), symbols=["Si", "Si"],
         frac=np.array([[0.0, 0.0, 0.5], [0.36, 0.65, 0.528]]),
-        system={**CONSTANT_CUTOFF, "degauss": 0.01}, cellnl={"cell_dofree": "2Dxy", "press_conv_thr": 0.02},
+        system={**CONSTANT_CUTOFF, "degauss": 0.01}, cellnl={"cell_dofree": "2Dxy", "press_conv_thr": 0.01},
+        control={"etot_conv_thr": 1.0e-8, "forc_conv_thr": 2.0e-5},
         note="SM-L01, buckled Si2 layer from an oblique start, constant-cutoff functional",
     ),
     QERun(
@@ -326,6 +327,119 @@ QE_RUNS: list[QERun] = [
 ]
 
 
+# --------------------------------------------------------------------------------------
+# ASE runs (EMT, shipped with ASE)
+# --------------------------------------------------------------------------------------
+@dataclass
+class ASERun:
+    name: str
+    fmt: str                       # "traj" (the optimizer's own file) or "extxyz" (written from it)
+    build: object                  # () -> ase.Atoms
+    optimizer: str = "BFGS"        # "BFGS" | "FIRE"
+    cell_mask: list | None = None  # FrechetCellFilter mask (Voigt xx yy zz yz xz xy); None = fixed cell
+    fmax: float = 1e-3             # eV/Å (on the filter: forces and scaled stress)
+    steps: int = 400
+    note: str = ""
+
+
+def _flat_layer(symbols, frac2d, a, b, gamma_deg, c=14.0):
+    from ase import Atoms
+    frac = np.array([[x, y, 0.5] for x, y in frac2d])
+    return Atoms(symbols, scaled_positions=frac, cell=layer_cell(a, b, gamma_deg, c), pbc=True)
+
+
+def _hex_net_2x2(symbols, a, b, gamma_deg):
+    """Four-site decoration of a triangular net in a 2x2 cell (all four species distinct: layer group p2)."""
+    return _flat_layer(symbols, [(0, 0), (0.5, 0), (0, 0.5), (0.5, 0.5)], a, b, gamma_deg)
+
+
+def _hex_net_2x3(symbols, a, b, gamma_deg):
+    """Six-site decoration of a triangular net in a 2a1 x 3a2 cell (an oblique supercell)."""
+    sites = [(i / 2, j / 3) for i in range(2) for j in range(3)]
+    return _flat_layer(symbols, sites, a, b, gamma_deg)
+
+
+def _build_l06():
+    return _hex_net_2x2(["Ni", "Cu", "Ag", "Pt"], 5.16, 5.26, 58.77)
+
+
+def _build_l07():
+    return _hex_net_2x3(["Au", "Cu", "Cu", "Cu", "Cu", "Cu"], 5.16, 7.62, 61.5)
+
+
+def _build_l08():
+    return _flat_layer(["Ni", "Au"], [(0.0, 0.0), (0.5, 0.5)], 4.40, 2.62, 100.0)
+
+
+def _build_l09():
+    # fixed 5.2 Å square cell, three atoms in general positions (an asymmetric motif)
+    return _flat_layer(["Cu", "Cu", "Au"], [(0.05, 0.10), (0.52, 0.18), (0.30, 0.62)], 5.2, 5.2, 90.0)
+
+
+def _build_b04():
+    from ase.build import bulk
+    at = bulk("Cu", "fcc", a=3.66, cubic=True) * (1, 1, 2)
+    at.rattle(stdev=0.06, seed=7)
+    return at
+
+
+def _build_b05():
+    from ase import Atoms
+    from ase.build import bulk
+    at = bulk("Pd", "fcc", a=3.9, cubic=True)
+    at.set_cell(np.diag([3.78, 3.92, 4.06]), scale_atoms=True)
+    return at
+
+
+INPLANE = [1, 1, 0, 0, 0, 1]   # xx, yy, xy: in-plane cell only, vacuum axis fixed
+ASE_RUNS: list[ASERun] = [
+    ASERun("L06_emt_bfgs", "traj", _build_l06, "BFGS", INPLANE, 1e-3,
+           note="SM-L06, four-species triangular net (Ni Cu Ag Pt) in a 2x2 cell, start sheared the other way"),
+    ASERun("L07_emt_fire", "traj", _build_l07, "FIRE", INPLANE, 1e-3,
+           note="SM-L07, Cu5Au triangular net in an oblique 2x3 cell"),
+    ASERun("L08_emt_fire_loose", "extxyz", _build_l08, "FIRE", INPLANE, 0.05,
+           note="SM-L08, Ni-Au two-atom layer from a 100 deg start, loosely converged (fmax 0.05 eV/A)"),
+    ASERun("L09_emt_fixed_square", "traj", _build_l09, "BFGS", None, 1e-4,
+           note="SM-L09, three-atom motif relaxed in a fixed square cell"),
+    ASERun("B04_emt_fire_loose", "extxyz", _build_b04, "FIRE", [1, 1, 1, 1, 1, 1], 0.05,
+           note="SM-B04, rattled 8-atom fcc-type Cu cell, loosely converged (fmax 0.05 eV/A)"),
+    ASERun("B05_emt_bfgs", "extxyz", _build_b05, "BFGS", [1, 1, 1, 1, 1, 1], 1e-4,
+           note="SM-B05, 4-atom Pd cell strained orthorhombically (3.78 x 3.92 x 4.06 A)"),
+]
+
+
+def run_ase(run: ASERun, out_root: Path) -> dict:
+    from ase.calculators.emt import EMT
+    from ase.filters import FrechetCellFilter
+    from ase.io import read, write
+    from ase.optimize import BFGS, FIRE
+
+    tree = out_root / "example_runs"
+    tree.mkdir(parents=True, exist_ok=True)
+    atoms = run.build()
+    atoms.calc = EMT()
+    target = tree / f"{run.name}.{run.fmt}"
+    tmp_traj = tree / f".{run.name}.traj.partial"
+    opt_cls = {"BFGS": BFGS, "FIRE": FIRE}[run.optimizer]
+    obj = atoms if run.cell_mask is None else FrechetCellFilter(atoms, mask=run.cell_mask)
+    t0 = time.time()
+    with opt_cls(obj, logfile=None, trajectory=str(tmp_traj)) as opt:
+        converged = opt.run(fmax=run.fmax, steps=run.steps)
+    wall = time.time() - t0
+    if not converged:
+        raise RuntimeError(f"{run.name}: optimizer did not reach fmax {run.fmax} in {run.steps} steps")
+    if run.fmt == "traj":
+        os.replace(tmp_traj, target)
+    else:
+        frames = read(str(tmp_traj), ":")
+        part = tree / f".{run.name}.{run.fmt}.partial"
+        write(str(part), frames, format="extxyz")
+        os.replace(part, target)
+        tmp_traj.unlink()
+    return {"name": run.name, "wall_s": round(wall, 1), "file": str(target.relative_to(out_root)),
+            "bytes": target.stat().st_size}
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--only", action="append", default=[],
@@ -336,14 +450,15 @@ def main(argv=None) -> int:
     args = ap.parse_args(argv)
     if args.np not in (1, 2):
         ap.error("--np must be 1 or 2 (the machine is shared)")
-    runs = [("qe", r) for r in QE_RUNS]
+    runs = [("qe", r) for r in QE_RUNS] + [("ase", r) for r in ASE_RUNS]
     if args.list:
         for kind, r in runs:
-            print(f"{r.name:32s} {kind:4s} {r.tree}  {r.note}")
+            print(f"{r.name:32s} {kind:4s} {getattr(r, 'tree', 'example_runs')}  {r.note}")
         return 0
     selected = []
     for kind, r in runs:
-        groups = {r.name, kind, "qe-fixtures" if r.tree.startswith("tests") else "examples"}
+        tree = getattr(r, "tree", "example_runs")
+        groups = {r.name, kind, "qe-fixtures" if tree.startswith("tests") else "examples"}
         if not args.only or groups & set(args.only):
             selected.append((kind, r))
     known = {r.name for _, r in runs} | {"qe", "ase", "qe-fixtures", "examples"}
@@ -354,6 +469,8 @@ def main(argv=None) -> int:
     for kind, r in selected:
         if kind == "qe":
             res = run_qe(r, args.out, args.np)
+        else:
+            res = run_ase(r, args.out)
         print(f"{res['name']:32s} {res['wall_s']:7.1f} s  {res['bytes']:8d} B  {res['file']}", flush=True)
     print(f"total {time.time() - t0:.1f} s")
     return 0

@@ -239,7 +239,7 @@ def point_group_order(basis, tol=1e-6):
     return count
 
 
-# ----------------------------------------------------------------------------- random Bravais lattices
+# ------------------------------------------------------------------------- random Bravais lattices
 
 def _distinct(rng, k, lo=2.5, hi=6.0, gap=0.25):
     while True:

@@ -103,10 +103,9 @@ def test_discovery_follows_symlinks_once_and_ends_on_loops(tmp_path):
     (camp / "L-link.traj").symlink_to(camp / "layers" / "L-hex.traj")
     runs, failed = discover([camp])
     assert failed == []
-    assert sorted(r.id for r in runs) == ["camp/bad/empty.traj", "camp/bad/garbage.traj",
-                                          "camp/layers/L-hex.traj", "camp/layers/L-obl.traj"] \
-        or sorted(r.id for r in runs) == ["camp/L-link.traj", "camp/bad/empty.traj",
-                                          "camp/bad/garbage.traj", "camp/layers/L-obl.traj"]
+    # each run once, under its real path (links are taken after the real paths)
+    assert [r.id for r in runs] == ["camp/bad/empty.traj", "camp/bad/garbage.traj",
+                                    "camp/layers/L-hex.traj", "camp/layers/L-obl.traj"]
     assert len({os.path.realpath(r.path) for r in runs}) == len(runs) == 4
 
 
@@ -256,7 +255,7 @@ def test_reaudit_uses_cache_then_only_new_and_changed_runs(tmp_path):
     # a corrupt cache entry is ignored and recomputed, giving the same record bytes
     before = record_bytes(out)
     entries = [p for p in (out / ".cache").glob("*.json") if p.name != "digests.json"]
-    assert len(entries) == 7          # 5 current runs (2 failed) + the old L-obl result
+    assert len(entries) == 6          # 5 current runs (2 failed) + the old L-obl result
     for p in entries:
         p.write_text("{ torn")
     s5 = run_audit([camp], out)
@@ -281,11 +280,10 @@ def test_records_of_removed_runs_move_to_stale(tmp_path):
     assert user_file.read_text() == "{}"          # never touched: driftwatch did not write it
 
 
-@pytest.mark.slow
 def test_interrupted_audit_rerun_gives_identical_records(tmp_path):
     camp = make_campaign(tmp_path, qe=True, n_extra=6)
     ref, out = tmp_path / "ref", tmp_path / "out"
-    total = 10
+    total = 12                        # runs, of which 2 fail (no record)
     code = (f"from driftwatch.campaign import audit\n"
             f"audit([{str(camp)!r}], {str(out)!r}, workers=1, report=False, progress='off')\n")
     proc = subprocess.Popen([sys.executable, "-c", code], cwd=REPO)
@@ -399,3 +397,27 @@ def test_progress_and_summary_table(tmp_path, capsys):
     assert any(ln.startswith("2 runs (2 analysed, 0 from cache, 0 failed)") for ln in lines)
     run_audit([camp / "layers"], tmp_path / "out", progress="off")   # batch: stdout stays clean
     assert capsys.readouterr().out == ""
+
+
+def _boom(path):
+    os._exit(3)        # a worker process dying, as on a crash in a native library or an OOM kill
+    yield              # pragma: no cover
+
+
+def test_a_worker_process_that_dies_fails_only_its_run(tmp_path, monkeypatch):
+    import multiprocessing as mp
+
+    from driftwatch import campaign
+    from driftwatch.adapters import registry
+    camp = make_campaign(tmp_path, qe=False, n_extra=3)
+    (camp / "more" / "boom.crash").write_text("x")
+    registry.register("test-crash", _boom, globs=("*.crash",), replace=True)
+    monkeypatch.setattr(campaign, "_mp_context", lambda: mp.get_context("fork"))  # inherit it
+    try:
+        s = run_audit([camp], tmp_path / "out", workers=2)
+    finally:
+        registry._formats.pop("test-crash", None)
+    failed = {f["run"]: f["error"] for f in s["failed"]}
+    assert set(failed) == {"camp/bad/empty.traj", "camp/bad/garbage.traj", "camp/more/boom.crash"}
+    assert "worker process died" in failed["camp/more/boom.crash"]
+    assert len(record_bytes(tmp_path / "out")) == 5 and s["runs"] == 8

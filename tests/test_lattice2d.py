@@ -75,6 +75,22 @@ def test_check_values_math_md(basis, ri, sg, pi, dist):
     assert np.isclose(L.chiral_distance(basis), sg * dist[4], rtol=5e-9, atol=1e-12)
 
 
+def test_check_values_exact_closed_forms():
+    # derived from the closed forms of shared/math.md 1.4 / 1.5 for the section-4 lattices
+    # (the table quotes 9 significant digits, so it is checked above at half a unit of the
+    # last digit; these exact values are checked at 1e-12)
+    d = L.distances([[3, 0], [0, 4.5]])
+    assert np.isclose(d["oc"], 1.5 / S2, rtol=1e-12) and np.isclose(d["tp"], 1.5 / S2, rtol=1e-12)
+    assert np.isclose(d["hp"], np.sqrt(10.5), rtol=1e-12)
+    assert np.isclose(L.distances([[3, 0], [0, 3]])["hp"], np.sqrt(6), rtol=1e-12)
+    A = [[3, 0], [1, 2.5]]  # conorms (3, 4.25, 6) Å^2 (Gram matrix by hand)
+    assert np.allclose(L.conorms(A), (3, 4.25, 6), rtol=1e-14)
+    r = np.sqrt([3, 4.25, 6])
+    assert np.isclose(L.distances(A)["oc"], (r[1] - r[0]) / S2, rtol=1e-12)
+    assert np.isclose(L.distances(A)["hp"], np.linalg.norm(r - r.mean()), rtol=1e-12)
+    assert np.isclose(L.lattice_distance(A, [[3, 0], [1, -2.5]]), S2 * (r[1] - r[0]), rtol=1e-12)
+
+
 def test_check_values_oriented_distance_math_md():
     # source: shared/math.md section 4, oriented lattice distance (L2, root space)
     A, Am, C = [[3, 0], [1, 2.5]], [[3, 0], [1, -2.5]], [[3.2, 0], [-1.1, 2.9]]
@@ -487,7 +503,7 @@ def test_deformation_is_lipschitz_where_root_distance_is_not():
                 assert abs(d1[k] - d2[k]) <= 10 * np.abs(db).max() + 1e-12
 
 
-def _critical_symprec(b, target, lo=1e-12, hi=0.5, steps=45):
+def _critical_symprec(b, target, lo=1e-12, hi=0.02, steps=45):
     """Smallest symprec (Å) where spglib's lattice-only verdict is ``target`` (log bisection)."""
     assert spglib_type(b, lo) != target and spglib_type(b, hi) == target
     for _ in range(steps):
@@ -512,9 +528,17 @@ def test_deformation_calibrated_to_spglib():
         b = rot([[a, 0], [0, a * (1 + e)]], rng.uniform(0, 6))
         cases.append((b, "tp", "l2", 1.413, 1.415))
         cases.append((b, "tp", "linf", 0.999, 1.001))
-    for e in (1e-5, 1e-3):    # rhombic with |b| = (1 + e)|a| -> oc, R = 1.563
+    for rho in (1.5, 2.5, 4.0):  # sheared rectangle of aspect rho -> op, R = sqrt(rho / (2 (1 + rho^2)))
+        R = np.sqrt(rho / (2 * (1 + rho ** 2)))
+        b = rot([[3, 0], [3 * rho * np.sin(1e-4), 3 * rho * np.cos(1e-4)]], rng.uniform(0, 6))
+        cases.append((b, "op", "l2", 0.998 * R, 1.002 * R))
+    for e in (1e-5, 1e-3):    # rhombic with |b| = (1 + e)|a| -> oc, R = 1.563 at gamma = 1.2 rad
         cases.append((rot([[3, 0], [3 * (1 + e) * np.cos(1.2), 3 * (1 + e) * np.sin(1.2)]], rng.uniform(0, 6)),
                        "oc", "l2", 1.561, 1.564))
+    g = np.radians(88)        # rhombic, gamma = 88 deg: R = 1.427 (l2), 1.009 (linf)
+    b = rot([[3, 0], [3 * (1 + 1e-4) * np.cos(g), 3 * (1 + 1e-4) * np.sin(g)]], rng.uniform(0, 6))
+    cases.append((b, "oc", "l2", 1.42, 1.435))
+    cases.append((b, "oc", "linf", 1.0, 1.015))
     H = np.array([[2.9, 0], [1.45, 2.9 * np.sqrt(3) / 2]])
     for _ in range(4):        # strained hexagonal -> hp, R = 0.94-1.09 over 60 samples
         E = rng.normal(size=(2, 2))

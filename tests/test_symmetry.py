@@ -150,6 +150,7 @@ def test_strained_fcc_lattice_breakpoint_and_strain():
 
 
 def test_warm_start_and_cache():
+    # reuse must not change answers: brackets re-checked against spglib (check_brackets)
     cell, pos, num = rattled_si()
     first = S.spectrum(cell, pos, num)
     again = S.spectrum(cell, pos, num)
@@ -172,6 +173,7 @@ def test_no_bisection_and_custom_grid():
 
 
 def test_bad_arguments():
+    # our own contract (errors.py types, one-line messages naming the key); common practice
     cell, pos, num = rattled_si((1, 1, 1))
     with pytest.raises(ConfigError, match="symprecs"):
         S.spectrum(cell, pos, num, symprecs=[0.1, -1.0])
@@ -238,6 +240,8 @@ def test_error_mode_set_by_environment_and_by_ase_in_a_subprocess():
 
 
 def test_no_deprecation_warning_leaks():
+    # spglib 2.8 warns on every call in its old error mode (spglib/error.py, read here); only
+    # that warning is silenced, and only around our calls
     atoms = bulk("Si", "diamond", a=5.43)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -292,6 +296,8 @@ def test_symmetrized_structure_is_exactly_symmetric_in_a_nonconforming_supercell
 
 
 def test_drift_table_covers_every_group_seen():
+    # groups seen = spglib's verdicts on the grid and at bracket ends (spglib via spectrum);
+    # P1 needs no displacement (common practice: every structure has the identity)
     cell, pos, num = rattled_si()
     spec = S.spectrum(cell, pos, num)
     table = S.drift_table(cell, pos, num, spec)

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ase.data import atomic_masses, atomic_numbers, chemical_symbols
+from ase.data import atomic_masses, atomic_numbers
 
 __all__ = ["Trajectory", "drifting_layer", "write_vasprun", "write_outcar", "write_xdatcar",
            "write_poscar", "write_incar", "write_run_folder"]

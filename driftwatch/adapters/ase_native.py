@@ -61,15 +61,16 @@ def read_extxyz(path, ctx: ReadContext):
                                        f"{first.strip()[:40]!r}") from None
             block = [first] + [fh.readline() for _ in range(natoms + 1)]
             if not all(block):
-                ctx.warn(f"truncated after frame {n - 1} ({n} frames): the file ends "
-                         f"inside frame {n}; still being written or cut")
+                where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
+                ctx.warn(f"truncated {where}: the file ends inside frame {n}; "
+                         f"still being written or cut")
                 return
             atoms = ase.io.read(io.StringIO("".join(block)), format="extxyz")
             yield frame_from_atoms(atoms, _step(atoms, n))
             n += 1
         if fh.cut:
-            ctx.warn(f"truncated after frame {n - 1} ({n} frames): the last line is cut; "
-                     f"still being written or cut")
+            where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
+            ctx.warn(f"truncated {where}: the last line is cut; still being written or cut")
 
 
 def read_db(path, ctx: ReadContext):

@@ -21,7 +21,9 @@ A step whose SCF did not converge has no ``!`` energy and is not a completed
 ionic step (ASE would return it without results).
 
 Settings: ``calculation``, ``nosym``, ``noinv``, ``cell_dofree`` from the pw.x input
-next to the output, and ``nsym``, the number of symmetry operations pw.x reports.
+next to the output; ``nsym``, the number of symmetry operations pw.x reports at the start
+(``No symmetry found`` = 1, the identity), and ``nsym_final`` when pw.x reports them again
+later (the final scf of a vc-relax re-detects symmetry on the relaxed cell).
 """
 from __future__ import annotations
 
@@ -48,8 +50,9 @@ _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 class _Config:
     """One configuration of a pw.x output and the results printed after it."""
 
-    def __init__(self, cell, positions, numbers):
+    def __init__(self, cell, positions, numbers, index):
         self.cell, self.positions, self.numbers = cell, positions, numbers
+        self.index = index          # position among the configurations of the file, 0-based
         self.energy = self.forces = self.stress = None
         self.closed = False
         self.emitted = False
@@ -121,7 +124,9 @@ def read_pw_out(path, ctx: ReadContext):
     _, Ry = _units()
 
     _settings_from_input(path, ctx)
-    step = 0
+    step = 0            # completed steps emitted
+    nconf = 0           # configurations seen (the step index of a frame)
+    last_index = None
     prev_kinds: set | None = None
     done = False
     cur: _Config | None = None
@@ -131,16 +136,24 @@ def read_pw_out(path, ctx: ReadContext):
 
     def emit(cfg):
         nonlocal step, prev_kinds
+        nonlocal last_index
         cfg.emitted = True
+        last_index = cfg.index
         prev_kinds = cfg.kinds()
         fr = Frame(cell=cfg.cell, positions=cfg.positions, numbers=cfg.numbers,
-                   pbc=np.ones(3, bool), step=step, energy=cfg.energy, forces=cfg.forces,
+                   pbc=np.ones(3, bool), step=cfg.index, energy=cfg.energy, forces=cfg.forces,
                    stress=cfg.stress)
         step += 1
         return fr
 
     def ready(cfg):
         return cfg is not None and not cfg.emitted and cfg.energy is not None
+
+    def dropped(cfg):
+        """A configuration left behind with results but no converged ('!') energy."""
+        if cfg is not None and not cfg.emitted and cfg.energy is None and cfg.kinds():
+            ctx.warn(f"step {cfg.index} has forces but no converged SCF energy ('!' line); "
+                     f"it is not counted as a completed ionic step")
 
     with Lines(path) as fh:
         while True:
@@ -174,12 +187,18 @@ def read_pw_out(path, ctx: ReadContext):
                         ctx.warn(f"pw.x reports {nsym} symmetry operations in a later run "
                                  f"(first run: {ctx.settings['nsym']})")
                     ctx.settings.setdefault("nsym", nsym)
-                cur, pending_cell = _Config(cell, pos, numbers), None
+                cur, pending_cell = _Config(cell, pos, numbers, nconf), None
+                nconf += 1
                 if "!    total energy" in ln:
                     cur.energy = float(ln.split()[-2]) * Ry
                 continue
             if cur is None:
                 continue
+            if "Sym. Ops." in line or "No symmetry found" in line:   # re-detected (final scf)
+                m = _NSYM.match(line)
+                if m or "No symmetry found" in line:
+                    ctx.settings["nsym_final"] = int(m.group(1)) if m else 1
+                    continue
             if line.startswith("!    total energy"):
                 if not cur.emitted:
                     cur.energy = float(line.split()[-2]) * Ry
@@ -205,6 +224,7 @@ def read_pw_out(path, ctx: ReadContext):
             elif line.startswith("ATOMIC_POSITIONS"):
                 if ready(cur):
                     yield emit(cur)
+                dropped(cur)
                 block = []
                 while len(block) < natoms:
                     ln = fh.readline()
@@ -218,7 +238,8 @@ def read_pw_out(path, ctx: ReadContext):
                 cell = pending_cell if pending_cell is not None else cur.cell
                 card = get_atomic_positions([line] + block, n_atoms=natoms, cell=cell, alat=alat)
                 cur = _Config(np.array(cell, float), np.array([c[1] for c in card], float),
-                              cur.numbers)
+                              cur.numbers, nconf)
+                nconf += 1
                 pending_cell = None
             elif _CLOSER.search(line):
                 if "JOB DONE" in line:
@@ -228,9 +249,10 @@ def read_pw_out(path, ctx: ReadContext):
         if ready(cur) and prev_kinds is not None and cur.kinds() >= prev_kinds:
             yield emit(cur)
         if not seen_start:
-            raise InputError(path, "not a pw.x output: no 'Program PWSCF' line")
+            raise InputError(path, "no completed ionic step (no 'Program PWSCF' line: not a "
+                                   "pw.x output, or cut before its header)")
         if not done:
-            where = f"after step {step - 1} ({step} completed steps)" if step else \
+            where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
             ctx.warn(f"truncated {where}: no JOB DONE; job killed or still running")
 
@@ -306,5 +328,5 @@ def pick_from_folder(folder: Path, format=None):
     ranked = sorted(cands, key=lambda p: (b"JOB DONE" in tail_bytes(p, 4096),
                                           p.stat().st_mtime), reverse=True)
     others = ", ".join(p.name for p in ranked[1:])
-    return ranked[0], "espresso-out", (f"{len(cands)} pw.x outputs in {folder}; "
-                                       f"read {ranked[0].name} (also there: {others})",)
+    return ranked[0], "espresso-out", (f"{folder}: {len(cands)} pw.x outputs; read "
+                                       f"{ranked[0].name} (also there: {others})",)

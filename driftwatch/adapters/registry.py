@@ -21,7 +21,6 @@ from __future__ import annotations
 import fnmatch
 import importlib
 import inspect
-import os
 import re
 import warnings
 from dataclasses import dataclass
@@ -183,15 +182,33 @@ def _pick_folder(path: Path, format=None) -> _Pick:
         if got is not None:
             picks.append(got)
     if not picks:
+        picks = _generic_folder_pick(path, format)
+    if not picks:
         hint = f" readable as {format!r}" if format else ""
         raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "
                                f"CONTCAR/POSCAR) or pw.x output{hint} found")
     if len(picks) > 1:
         names = ", ".join(p[0].name for p in picks)
-        raise InputError(path, f"ambiguous run folder: outputs of several codes ({names}); "
+        raise InputError(path, f"ambiguous run folder: several candidate outputs ({names}); "
                                f"pass the file itself")
     source, fmt, warns = picks[0]
     return _Pick(Path(source), fmt, path, tuple(warns))
+
+
+def _generic_folder_pick(path: Path, format=None) -> list:
+    """A folder holding exactly one trajectory of another registered format (e.g. the
+    ``.traj`` of an ASE-driven relaxation), matched by the formats' globs."""
+    found = []
+    for p in sorted(path.iterdir()):
+        if not p.is_file():
+            continue
+        name = strip_compression(p.name).lower()
+        for f in _formats.values():
+            if (format is None or f.name == format) and \
+                    any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
+                found.append((p, f.name, ()))
+                break
+    return found
 
 
 def detect(path) -> str:
@@ -215,7 +232,8 @@ def _stream(pick: _Pick, ctx: ReadContext) -> Iterator[Frame]:
     except Exception as exc:
         what = fmt.description or pick.format
         if n == 0:
-            raise InputError(pick.source, f"not a {what}: {type(exc).__name__}: {exc}") from exc
+            raise InputError(pick.source, f"cannot be read as {what}: "
+                                          f"{type(exc).__name__}: {exc}") from exc
         ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {exc})")
 
 
@@ -269,11 +287,11 @@ register("espresso-out", _A + "espresso:read_pw_out", globs=("*.pwo", "*pw*.out"
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
          description="ASE trajectory (.traj)")
 register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite format 3\x00",
-         description="rows of an ASE database (SQLite .db or ASE JSON db; file.db@selection)")
+         description="ASE database rows (SQLite .db; file.db@selection picks rows)")
 register("pymatgen-json", _A + "pymatgen_json:read_structures", globs=(),
          magic=rb'"@class"\s*:\s*"Structure"', description="pymatgen Structure list in JSON")
 register("ase-json-db", _A + "ase_native:read_db", globs=("*.json",),
-         magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="rows of an ASE JSON database")
+         magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="ASE database rows (JSON)")
 register("extxyz", _A + "ase_native:read_extxyz", globs=("*.xyz", "*.extxyz"),
          magic=rb"\A\s*\d+[ \t]*\r?\n[^\n]*(Lattice|Properties)=", description="extended XYZ")
 register("vasp-poscar", _A + "vasp:read_poscar", globs=("*POSCAR*", "*CONTCAR*", "*.vasp"),

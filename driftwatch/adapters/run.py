@@ -10,6 +10,7 @@ xx yy zz yz xz xy, ASE's sign convention: positive = tensile).
 """
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 from typing import Iterable, Iterator
 
@@ -96,8 +97,9 @@ class ReadContext:
         self.title: str | None = None
 
     def warn(self, message: str) -> None:
-        """Record a warning; it is prefixed with the file name unless it names it already."""
-        if self.path not in message:
+        """Record a warning, prefixed with the file name unless it starts with a path already."""
+        head = message.split(": ", 1)[0]
+        if head != self.path and not (len(head) < 4096 and os.path.exists(head)):
             message = f"{self.path}: {message}"
         if message not in self.warnings:
             self.warnings.append(message)
@@ -190,7 +192,9 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         raise InputError(path, "no completed ionic step" + detail)
 
     def cat(name, wanted=True):
-        return np.concatenate([getattr(b, name)[: b.n] for b in blocks]) if wanted else None
+        if not wanted:
+            return None
+        return np.concatenate([b.get(name) for b in blocks])
 
     return Run(
         source=str(path), format=fmt,
@@ -205,38 +209,49 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
 
 
 class _Block:
-    """Up to SIZE frames in preallocated arrays (NaN where a frame lacks a result)."""
+    """Up to SIZE frames in preallocated arrays; result arrays are allocated on first use
+    (NaN where a frame lacks the result)."""
 
     SIZE = 64
 
     def __init__(self, natoms):
         m = self.SIZE
         self.n = 0
+        self.natoms = natoms
         self.cells = np.empty((m, 3, 3))
         self.positions = np.empty((m, natoms, 3))
         self.steps = np.empty(m, int)
-        self.energies = np.full(m, np.nan)
-        self.forces = np.full((m, natoms, 3), np.nan)
-        self.stress = np.full((m, 6), np.nan)
+        self.energies = self.forces = self.stress = None
 
     @property
     def full(self):
         return self.n == self.SIZE
+
+    def _shape(self, name):
+        return {"energies": (), "forces": (self.natoms, 3), "stress": (6,)}[name]
+
+    def _put(self, name, value):
+        arr = getattr(self, name)
+        if arr is None:
+            arr = np.full((self.SIZE,) + self._shape(name), np.nan)
+            setattr(self, name, arr)
+        arr[self.n] = value
+
+    def get(self, name):
+        arr = getattr(self, name)
+        if arr is None:
+            return np.full((self.n,) + self._shape(name), np.nan)
+        return arr[: self.n]
 
     def add(self, fr: Frame, have: dict):
         i = self.n
         self.cells[i] = fr.cell
         self.positions[i] = fr.positions
         self.steps[i] = fr.step
-        if fr.energy is not None:
-            self.energies[i] = fr.energy
-            have["energy"] = True
-        if fr.forces is not None:
-            self.forces[i] = fr.forces
-            have["forces"] = True
-        if fr.stress is not None:
-            self.stress[i] = fr.stress
-            have["stress"] = True
+        for key, name, value in (("energy", "energies", fr.energy),
+                                 ("forces", "forces", fr.forces),
+                                 ("stress", "stress", fr.stress)):
+            if value is not None:
+                self._put(name, value)
+                have[key] = True
         self.n += 1
-
-

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from ._io import Lines, open_bytes, strip_compression, tail_bytes
+from ._io import STREAM_ERRORS, Lines, open_bytes, strip_compression, tail_bytes
 from .run import Frame, ReadContext, frame_from_atoms
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
@@ -152,6 +152,8 @@ def read_vasprun(path, ctx: ReadContext):
                 depth += 1
                 if depth == 1:
                     root = el
+                    if el.tag != "modeling":
+                        raise InputError(path, f"not a vasprun.xml: root element <{el.tag}>")
                 elif depth == 2 and el.tag == "calculation":
                     calc, calc_ready = el, False
                 continue
@@ -182,16 +184,18 @@ def read_vasprun(path, ctx: ReadContext):
                 calc_ready = True
             elif depth >= 2 and tag in ("eigenvalues", "dos", "projected"):
                 el.clear()        # large and unused
-    except ET.ParseError as exc:
+    except (ET.ParseError, *STREAM_ERRORS) as exc:      # cut XML, or a cut .gz/.bz2/.xz
         if calc is not None and calc_ready and numbers is not None:
             # cut after the step's energy (eigenvalues/DOS missing): the step itself is complete
             yield _vasprun_frame(calc, step, numbers, params.get("PSTRESS") or 0.0)
             step += 1
         if root is None:
-            raise InputError(path, f"not a vasprun.xml: {exc}") from None
+            raise InputError(path, f"no completed ionic step (the XML ends before its first "
+                                   f"element: {exc})") from None
         where = f"after step {step - 1} ({step} completed steps)" if step else \
             "before the first ionic step completed"
-        ctx.warn(f"truncated {where}: XML ends abnormally ({exc}); job killed or still running")
+        ctx.warn(f"truncated {where}: XML ends abnormally ({type(exc).__name__}: {exc}); "
+                 f"job killed or still running")
         return
     finally:
         fh.close()
@@ -256,24 +260,14 @@ def read_outcar(path, ctx: ReadContext):
         except ParseError:
             if fd.lineno == 0 and not fd.cut:
                 raise InputError(path, "empty file") from None
-            if "vasp" not in "".join(_first_lines(path, 1)).lower():
-                raise InputError(path, "not a VASP OUTCAR: no ionic step header found") from None
+            raise InputError(path, "no completed ionic step (no 'Iteration' line: the file ends "
+                                   "inside the OUTCAR header, or it is not an OUTCAR)") from None
         if not fd.ended:
             where = f"after step {step - 1} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
             extra = "; last line cut" if fd.cut else ""
             ctx.warn(f"truncated {where}: no closing timing section{extra}; "
                      f"job killed or still running")
-
-
-def _first_lines(path, n):
-    out = []
-    with Lines(path) as fh:
-        for line in fh:
-            out.append(line)
-            if len(out) >= n:
-                break
-    return out
 
 
 # ---------------------------------------------------------------- XDATCAR
@@ -402,11 +396,11 @@ def pick_from_folder(folder: Path, format=None):
     if xml is not None and _complete(xml, b"</modeling>"):
         return xml, "vasp-xml", ()
     if out is not None and _complete(out, _OUTCAR_END.encode()):
-        note = (f"{xml.name} is incomplete; read {out.name} instead",) if xml else ()
+        note = (f"{folder}: {xml.name} is incomplete; read {out.name} instead",) if xml else ()
         return out, "vasp-out", note
     for path, fmt in ((out, "vasp-out"), (xml, "vasp-xml"), (xdat, "vasp-xdatcar")):
         if path is not None:
             note = () if fmt == "vasp-xdatcar" and not (xml or out) else \
-                (f"no complete VASP output in {folder}; reading the incomplete {path.name}",)
+                (f"{folder}: no complete VASP output; reading the incomplete {path.name}",)
             return path, fmt, note
-    return single, "vasp-poscar", (f"only {single.name} in {folder}: a single structure",)
+    return single, "vasp-poscar", (f"{folder}: only {single.name}, a single structure",)

@@ -1,10 +1,10 @@
 """Campaign numbers for the report, computed from run records only (no I/O, no matplotlib).
 
-Tolerance advice for a campaign: every run's final-frame tolerance spectrum (spglib's verdict on a log
-grid of symprec, Å, with its breakpoints) is pooled. A symprec is *stable* for the campaign where no run
-changes its group verdict; the recommended value is the geometric centre of the widest such range inside
-the advice window, or, if every value is near some run's breakpoint, the value with the fewest runs
-changing verdict within a factor :data:`NEAR` of it. This is a starting point for the user's own check.
+The campaign's tolerance picture: every run's final-frame tolerance spectrum (spglib's verdict on a log
+grid of symprec, Å, with its breakpoints) is pooled. A symprec range is *stable* for the campaign where
+no run changes its group verdict. The recommended campaign symprec itself comes from
+:func:`driftwatch.campaign.tolerance_advice` (the audit's advice), so the report and the audit quote
+the same value.
 """
 
 from __future__ import annotations
@@ -14,15 +14,11 @@ from collections import Counter
 
 import numpy as np
 
-__all__ = ["DEFAULT_COMMON", "WINDOW", "NEAR", "final_spectrum", "verdict_at", "group_breakpoints",
-           "flag_counts", "tolerance_advice"]
+__all__ = ["DEFAULT_COMMON", "final_spectrum", "verdict_at", "group_breakpoints",
+           "flag_counts", "tolerance_table"]
 
 DEFAULT_COMMON = (1e-5, 1e-3, 1e-2, 0.1)
 """Å, symprec values users commonly pick (used when a record's config has no report.common_symprecs)."""
-WINDOW = (1e-4, 0.2)
-"""Å, the range a recommendation is taken from (as in ``rules.advice``)."""
-NEAR = 3.0
-"""Factor: a breakpoint within this factor of a symprec counts as a verdict change near it."""
 
 
 def final_spectrum(record: dict) -> dict | None:
@@ -58,21 +54,20 @@ def flag_counts(records: list[dict]) -> dict:
     return dict(sorted(c.items(), key=lambda kv: (-kv[1], kv[0])))
 
 
-def tolerance_advice(records: list[dict], common=DEFAULT_COMMON, window=WINDOW) -> dict:
-    """Pooled tolerance advice for runs (final-frame spectra).
+def tolerance_table(records: list[tuple[str, dict]], common=DEFAULT_COMMON) -> dict:
+    """Pooled tolerance picture of runs ``[(name, record), ...]`` (final-frame spectra).
 
-    Returns ``{"n_runs", "n_with_spectrum", "stable_ranges": [[low, high], ...] (widest first, Å),
-    "recommended_symprec", "reason", "runs_near_recommended", "changes": [{"a", "b", "runs":
-    [names]}...], "verdicts": {name: {symprec: "symbol (n)"}}}``; ``records`` is ``[(name, record)]``.
+    Returns ``{"n_runs", "n_with_spectrum", "common", "stable_ranges": [[low, high], ...] (Å, widest
+    first: ranges inside the grids where no run changes its group verdict), "changes": [{"a", "b",
+    "runs": [names]}, ...] for every pair of common symprecs, "verdicts": {name: {symprec: (group,
+    symbol)}}, "breakpoints": {name: [(low, high), ...]}}``.
     """
     spectra = [(name, final_spectrum(r)) for name, r in records]
     spectra = [(n, s) for n, s in spectra if s and s.get("symprec")]
     common = sorted(float(c) for c in common)
     out = {"n_runs": len(records), "n_with_spectrum": len(spectra), "common": common,
-           "stable_ranges": [], "recommended_symprec": None, "runs_near_recommended": None,
-           "changes": [], "verdicts": {}}
+           "stable_ranges": [], "changes": [], "verdicts": {}, "breakpoints": {}}
     if not spectra:
-        out["reason"] = "no run has a tolerance spectrum"
         return out
     for name, spec in spectra:
         out["verdicts"][name] = {c: verdict_at(spec, c) for c in common}
@@ -82,11 +77,9 @@ def tolerance_advice(records: list[dict], common=DEFAULT_COMMON, window=WINDOW) 
             out["changes"].append({"a": a, "b": b, "runs": runs})
     lo = max(min(min(s["symprec"]) for _, s in spectra), 1e-12)
     hi = max(max(s["symprec"]) for _, s in spectra)
-    per_run = {n: group_breakpoints(s) for n, s in spectra}
-    intervals = sorted(iv for bps in per_run.values() for iv in bps)
-    # stable ranges: the gaps between merged breakpoint brackets, inside the grid span
+    out["breakpoints"] = {n: group_breakpoints(s) for n, s in spectra}
     merged = []
-    for a, b in intervals:
+    for a, b in sorted(iv for bps in out["breakpoints"].values() for iv in bps):
         if merged and a <= merged[-1][1]:
             merged[-1][1] = max(merged[-1][1], b)
         else:
@@ -98,40 +91,5 @@ def tolerance_advice(records: list[dict], common=DEFAULT_COMMON, window=WINDOW) 
         cur = max(cur, b)
     if cur < hi:
         gaps.append([cur, hi])
-    gaps.sort(key=lambda g: -math.log(g[1] / g[0]))
-    out["stable_ranges"] = gaps
-    best, width = None, 0.0
-    for a, b in gaps:
-        a2, b2 = max(a, window[0]), min(b, window[1])
-        if b2 > a2 and math.log(b2 / a2) > width:
-            best, width = (a2, b2), math.log(b2 / a2)
-    if best is not None:
-        rec = math.sqrt(best[0] * best[1])
-        out["recommended_symprec"] = rec
-        out["runs_near_recommended"] = _near(per_run, rec)
-        out["reason"] = (f"centre (in log symprec) of the widest range inside {window[0]:g}-"
-                         f"{window[1]:g} Å where no run changes its verdict: {best[0]:.2g} to "
-                         f"{best[1]:.2g} Å (factor {math.exp(width):.0f})")
-        return out
-    cand = np.geomspace(window[0], window[1], 241)
-    scores = [(len(_near(per_run, c)), -_clearance(intervals, c), c) for c in cand]
-    n, _, rec = min(scores)
-    out["recommended_symprec"] = float(rec)
-    out["runs_near_recommended"] = _near(per_run, rec)
-    out["reason"] = (f"no symprec in {window[0]:g}-{window[1]:g} Å is clear of every run's breakpoints; "
-                     f"this value has the fewest runs ({n} of {len(spectra)}) changing verdict within a "
-                     f"factor {NEAR:g} of it")
+    out["stable_ranges"] = sorted(gaps, key=lambda g: -math.log(g[1] / g[0]))
     return out
-
-
-def _near(per_run, s):
-    return [n for n, bps in per_run.items()
-            if any(a / NEAR <= s <= b * NEAR for a, b in bps)]
-
-
-def _clearance(intervals, s):
-    """Log distance (natural) from ``s`` to the nearest breakpoint bracket."""
-    if not intervals:
-        return math.inf
-    return min(0.0 if a <= s <= b else min(abs(math.log(s / a)), abs(math.log(s / b)))
-               for a, b in intervals)

@@ -134,6 +134,7 @@ table { border-collapse: collapse; margin: 6px 0 10px; font-size: 13.5px; }
 #runs td .badge { margin: 1px 0; }
 #runs th, #runs td { padding: 4px 7px; }
 #runs th { white-space: normal; vertical-align: bottom; }
+td.nowrap { white-space: nowrap; }
 th, td { border-bottom: 1px solid var(--line); padding: 4px 10px; text-align: left; vertical-align: top; }
 th { background: var(--soft); font-weight: 600; white-space: nowrap; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
@@ -247,45 +248,73 @@ def _check_record(rec: dict):
         raise ValueError("record has no frames")
 
 
-def _collect(items):
-    """-> (entries [(label, record, origin)], unreadable [(origin, problem)], campaign dict or None)."""
-    entries, bad, found_campaign = [], [], None
-    files = []
+def _sources(items):
+    """Record sources in input order: folders expand to their ``*.json`` files (sorted, not recursive)."""
+    out = []
     for item in items:
         if isinstance(item, dict):
-            files.append(item)
+            out.append(item)
             continue
         p = Path(item)
-        if p.is_dir():
-            files.extend(sorted(p.glob("*.json")))
-        else:
-            files.append(p)
-    for f in files:
-        if isinstance(f, dict):
-            rec, origin = f, None
-            try:
-                _check_record(rec)
-            except ValueError as exc:
-                bad.append(("(record given in memory)", str(exc)))
-                continue
-            entries.append((_label(rec, None), rec, None))
-            continue
-        try:
-            rec = _records.read_json(f)
-            _check_record(rec)
-        except (OSError, UnicodeDecodeError, ValueError) as exc:
-            if found_campaign is None and _maybe_campaign(f):
-                found_campaign = _maybe_campaign(f)
-                continue
-            problem = str(exc)
-            if isinstance(exc, FileNotFoundError):
-                problem = "no such file"
-            elif isinstance(exc, json.JSONDecodeError):
-                problem = f"not JSON ({exc.msg} at line {exc.lineno})"
-            bad.append((str(f), problem.replace(f"{f}: ", "")))
-            continue
-        entries.append((_label(rec, f), rec, str(f)))
-    return entries, bad, found_campaign
+        out.extend(sorted(p.glob("*.json")) if p.is_dir() else [p])
+    return out
+
+
+def _process(source, name, label, out):
+    """Read one source, write its page; -> ("ok", digest) | ("bad", problem) | ("campaign", dict).
+
+    Runs in the building process or in a worker process; only a small digest of the record comes
+    back, so a campaign of thousands of runs is never held in memory at once.
+    """
+    origin = None if isinstance(source, dict) else str(source)
+    try:
+        rec = source if isinstance(source, dict) else _records.read_json(source)
+        _check_record(rec)
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        summary = None if isinstance(source, dict) else _maybe_campaign(source)
+        if summary is not None:
+            return "campaign", summary
+        problem = str(exc)
+        if isinstance(exc, FileNotFoundError):
+            problem = "no such file"
+        elif isinstance(exc, json.JSONDecodeError):
+            problem = f"not JSON ({exc.msg} at line {exc.lineno})"
+        return "bad", problem.replace(f"{source}: ", "")
+    try:
+        text = run_page(name, label, rec, origin)
+    except Exception as exc:  # a malformed record must not stop the report
+        return "bad", f"page could not be built: {type(exc).__name__}: {exc}"
+    _write_file(out, out / "runs" / f"{name}.html", text)
+    return "ok", _digest(rec)
+
+
+def _digest(rec):
+    """What the index needs of a record: everything but the frames in between and the config."""
+    frames = rec["frames"]
+    keep = [0, len(frames) - 1]
+    spec = next((i for i in range(len(frames) - 1, -1, -1) if frames[i].get("symmetry")), None)
+    if spec is not None:
+        keep.append(spec)
+    d = {k: rec.get(k) for k in ("schema", "run", "geometry", "summary", "flags")}
+    d["frames"] = [frames[i] for i in sorted(set(keep))]
+    d["config"] = {"report": (rec.get("config") or {}).get("report") or {}}
+    return d
+
+
+def _mp_context():
+    """fork while this process has one thread (fast); otherwise forkserver or spawn (fork is unsafe)."""
+    import multiprocessing as mp
+    import threading
+    if "fork" in mp.get_all_start_methods() and threading.active_count() == 1:
+        return mp.get_context("fork")
+    return mp.get_context("forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn")
+
+
+def _init_worker():
+    """Worker processes keep the report's matplotlib settings for their whole life."""
+    import matplotlib
+    matplotlib.rcParams.update(plots._RC)
+    plots._active[0] += 1
 
 
 def _maybe_campaign(path):
@@ -306,16 +335,19 @@ def _label(rec, path):
     return "_".join(parts[-2:]) if len(parts) >= 2 else (parts[-1] if parts else "run")
 
 
-def _assign_names(entries):
-    used, out = set(), []
-    for label, rec, origin in entries:
+class _Names:
+    """Unique, file-safe page names (case-insensitively unique, for case-folding file systems)."""
+
+    def __init__(self):
+        self.used = set()
+
+    def __call__(self, label):
         base = _records.safe_name(label)
         name, k = base, 2
-        while name.lower() in used:
+        while name.lower() in self.used:
             name, k = f"{base}-{k}", k + 1
-        used.add(name.lower())
-        out.append((name, label, rec, origin))
-    return out
+        self.used.add(name.lower())
+        return name
 
 
 # ------------------------------------------------------------------------------------------ run page
@@ -359,6 +391,14 @@ def _summary_section(rec):
         rows.append(("drift", f"toward {_type_name(drift.get('type'))}: deformation "
                               f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"
                               + ("" if frac is None else f" ({100 * frac:.0f} % of the way)")))
+    frames = rec.get("frames") or []
+    e0 = _fnum(frames[0].get("energy")) if frames else None
+    e1 = _fnum(frames[-1].get("energy")) if frames else None
+    fmax = _fnum(frames[-1].get("fmax")) if frames else None
+    if e0 is not None and e1 is not None:
+        rows.append(("energy, first → last step", f"{e0:.6f} → {e1:.6f}&nbsp;eV "
+                                                  f"(change {e1 - e0:+.4g}&nbsp;eV)"
+                     + ("" if fmax is None else f"; final max force {_q(fmax, 'eV/Å')}")))
     if dim == 2:
         vs = geo.get("viewing_side")
         if vs:
@@ -396,7 +436,7 @@ def _tolerance_section(rec):
     out = ["<h2>Tolerance advice</h2>"]
     recv = tol.get("recommended_symprec")
     out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> recommended for this run'
-               f"{'' if recv is None else ''}.<br><span class=\"muted\">Reason: {e(tol.get('reason'))}."
+               f".<br><span class=\"muted\">Reason: {e(tol.get('reason'))}."
                " A starting point for your own check, not a guarantee.</span></p>")
     ranges = tol.get("stable_ranges") or []
     if ranges:
@@ -530,6 +570,7 @@ def _how_to_read():
 
 def run_page(name, label, rec, origin) -> str:
     """HTML text of one run's page (linked from ``../index.html``)."""
+    plots.reset_ids()
     run = rec["run"]
     title = run.get("title") or label
     header = (f"<h1>{e(title)}</h1><div class=\"sub\">run {e(label)}"
@@ -543,10 +584,16 @@ def run_page(name, label, rec, origin) -> str:
 
 # -------------------------------------------------------------------------------------------- index
 
-def _index_page(runs, bad, failed, campaign, pages) -> str:
-    recs = [(n, r) for n, _, r, _ in runs if n in pages]
+def _index_page(runs, bad, failed, campaign) -> str:
+    """HTML of the campaign index; ``runs`` is ``[(name, label, digest, origin)]`` of built pages."""
+    plots.reset_ids()
+    recs = [(n, r) for n, _, r, _ in runs]
     common = _common(recs[0][1]) if recs else _camp.DEFAULT_COMMON
-    tol = _camp.tolerance_advice(recs, common)
+    tol = _camp.tolerance_table(recs, common)
+    adv = (campaign or {}).get("tolerance") if isinstance(campaign, dict) else None
+    if not isinstance(adv, dict):
+        from ..campaign import tolerance_advice
+        adv = tolerance_advice([{"run": n, "record": r} for n, r in recs], list(common))
     counts = _camp.flag_counts([r for _, r in recs])
     levels = {}
     for _, r in recs:
@@ -568,26 +615,32 @@ def _index_page(runs, bad, failed, campaign, pages) -> str:
         ("runs with at least one flag", str(n_flagged)),
         ("unreadable inputs / failed runs", f"{len(bad)} / {len(failed)}"),
     ]))
-    parts.append(_campaign_tolerance(tol))
+    parts.append(_campaign_tolerance(tol, adv))
     # plots
     pts = []
     for _, r in recs:
         d = r["summary"].get("drift")
-        if d and _fnum(d.get("initial")) is not None:
-            pts.append((_fnum(d.get("initial")), _fnum(d.get("final")), r["summary"].get("verdict"),
-                        r["geometry"].get("dimension")))
+        t = (d or {}).get("type")
+        if t:
+            f0, f1 = r["frames"][0], r["frames"][-1]
+            pts.append((_fnum(d.get("initial")), _fnum(d.get("final")),
+                        _fnum((f0.get("distance") or {}).get(t)), _fnum((f1.get("distance") or {}).get(t)),
+                        r["summary"].get("verdict"), r["geometry"].get("dimension")))
     gb, lb = [], []
     for _, r in recs:
         spec = _camp.final_spectrum(r)
         if spec:
             gb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "group")]
             lb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "lattice")]
-    parts.append("<h2>Across the campaign</h2><div class=\"grid2\">")
+    parts.append("<h2>Across the campaign</h2>")
     parts.append(_figure(plots.campaign_scatter(pts),
-                         f"Deformation (Å) to the type each run moved toward, at its first against its "
-                         f"last step ({len(pts)} runs; circles layers, squares bulk). Points on the "
-                         f"dashed diagonal did not move; runs that reached the type fall onto the "
-                         f"bottom axis."))
+                         f"Each run's deformation (left; Å of lattice-vector change, what the flags use) "
+                         f"and root-space distance (right; Å) to the type it moved toward, at its first "
+                         f"against its last step ({len(pts)} runs; circles layers, squares bulk). Points "
+                         f"on the dashed diagonal did not move; runs that reached the type fall onto "
+                         f"the bottom axis. Near rectangular lattices the root-space distance is the "
+                         f"larger of the two (it grows like the square root of a deformation)."))
+    parts.append('<div class="grid2">')
     parts.append(_figure(plots.breakpoint_histogram(gb, lb, common),
                          "Where spglib's verdict on each run's final structure changes, pooled over "
                          "runs (log symprec, Å). Dotted lines: common choices. A common choice sitting "
@@ -596,22 +649,20 @@ def _index_page(runs, bad, failed, campaign, pages) -> str:
         parts.append(_figure(plots.flag_bars(counts, levels), "Runs carrying each flag."))
     parts.append("</div>")
     parts.append(_flag_table(counts, levels, campaign))
-    parts.append(_runs_table(runs, pages))
+    parts.append(_runs_table(runs))
     parts.append(_problems(bad, failed))
     parts.append(_how_to_read())
     return _page("driftwatch campaign report", header, "".join(parts), script=True)
 
 
-def _campaign_tolerance(tol):
+def _campaign_tolerance(tol, adv):
     out = ["<h2>Tolerance advice for the campaign</h2>"]
-    rec = tol.get("recommended_symprec")
+    rec = _fnum(adv.get("recommended_symprec"))
     out.append(f'<p><span class="big">symprec ≈ {_q(rec)}</span> for this campaign'
                f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum)."
-               f"<br><span class=\"muted\">Reason: {e(tol.get('reason'))}."
-               + ("" if tol.get("runs_near_recommended") is None else
-                  f" Runs with a breakpoint within a factor {_camp.NEAR:g} of it: "
-                  f"{len(tol['runs_near_recommended'])}.")
-               + " A starting point for your own check, not a guarantee.</span></p>")
+               f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}."
+               + ("" if "starting point" in str(adv.get("reason")).lower() else
+                  " A starting point for your own check, not a guarantee.") + "</span></p>")
     if tol["stable_ranges"]:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
                        for a, b in [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5])
@@ -650,12 +701,10 @@ def _flag_table(counts, levels, campaign):
             + f"<th>meaning</th></tr></thead><tbody>{rows}</tbody></table>")
 
 
-def _runs_table(runs, pages):
+def _runs_table(runs):
     from ..rules import FLAGS as levels
     rows = []
     for name, label, rec, origin in runs:
-        if name not in pages:
-            continue
         s, r, g = rec["summary"], rec["run"], rec["geometry"]
         fin, ini = s.get("final") or {}, s.get("initial") or {}
         tol = s.get("tolerance") or {}
@@ -667,7 +716,8 @@ def _runs_table(runs, pages):
             f'<br><span class="muted">{e(r.get("title") or "")}</span></td>'
             f"<td>{e(r.get('formula'))}<br><span class=\"muted\">{kind}</span></td>"
             f"{_td_num(r.get('n_frames'))}"
-            f"<td data-v=\"{e(ini.get('type'))} {e(fin.get('type'))}\">{e(ini.get('type'))} → "
+            f"<td class=\"nowrap\" data-v=\"{e(ini.get('type'))} {e(fin.get('type'))}\">"
+            f"{e(ini.get('type'))} → "
             f"<b>{e(fin.get('type'))}</b></td>"
             f"<td>{e(fin.get('nearest') or '')}</td>{_td_num(fin.get('deformation'), 'Å')}"
             f"{_td_num(fin.get('distance'), 'Å')}"
@@ -735,41 +785,92 @@ def _inside(root: Path, path: Path) -> Path:
     return path
 
 
-def build(records, output, *, overwrite=False, campaign=None) -> Path:
+def build(records, output, *, overwrite=False, campaign=None, workers=None) -> Path:
     """Build the static HTML report; returns the path of ``OUTPUT/index.html``.
 
     Args:
         records: run-record JSON files and/or folders of them (``*.json``, not recursive); record dicts
-            are accepted too. A file that is not a record is listed on the index as unreadable; an audit
-            summary found among them is used as ``campaign`` when none is given.
+            are accepted too. A file that is not a record is listed on the index as unreadable. An
+            audit summary (``campaign.json``) among them is used as ``campaign`` when none is given,
+            and the records it lists are read too, so an audit's output folder is a valid input.
         output: report folder; created if needed. ``OUTPUT/runs/<name>.html`` holds one page per run.
         overwrite: allow writing into an existing non-empty folder (else :class:`OutputError`).
-        campaign: optional audit summary dict (``failed`` runs and ``flag_counts`` are shown).
+        campaign: optional audit summary dict (its ``failed`` runs, ``flag_counts`` and ``tolerance``
+            advice are shown).
+        workers: processes that build run pages (None: 1 for fewer than 24 inputs, else up to 4).
     """
     if isinstance(records, (str, os.PathLike, dict)):
         records = [records]
     out = _prepare_output(output, overwrite)
-    entries, bad, found = _collect(records)
+    queue = _sources(records)
+    if workers is None:
+        workers = 1 if len(queue) < 24 else max(1, min(4, os.cpu_count() or 1))
+    names, seen = _Names(), set()
+    runs, bad, found = [], [], None
+
+    def key(src):
+        return id(src) if isinstance(src, dict) else os.path.realpath(src)
+
+    def label_of(src):
+        return _label(src, None) if isinstance(src, dict) else Path(src).stem
+
+    def handle(src, name, result):
+        nonlocal found
+        kind, value = result
+        origin = None if isinstance(src, dict) else str(src)
+        if kind == "ok":
+            runs.append((name, label_of(src), value, origin))
+        elif kind == "bad":
+            bad.append((origin or "(record given in memory)", value))
+        else:
+            found = found or value
+            listed = value.get("records")
+            more = [Path(src).parent / str(rel) for rel in
+                    (listed.values() if isinstance(listed, dict) else [])]
+            return [m for m in more if m.is_file()]
+        return []
+
+    def jobs(items):
+        for src in items:
+            if key(src) in seen:
+                continue
+            seen.add(key(src))
+            yield src, names(label_of(src))
+
+    def serial(pending):
+        with plots.session():
+            while pending:
+                src, name = pending.pop(0)
+                pending += list(jobs(handle(src, name, _process(src, name, label_of(src), out))))
+
+    if workers <= 1:
+        serial(list(jobs(queue)))
+    else:
+        from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+        from concurrent.futures.process import BrokenProcessPool
+        futs = {}
+        try:
+            with ProcessPoolExecutor(workers, mp_context=_mp_context(),
+                                     initializer=_init_worker) as pool:
+                futs = {pool.submit(_process, src, name, label_of(src), out): (src, name)
+                        for src, name in jobs(queue)}
+                while futs:
+                    done, _ = wait(futs, return_when=FIRST_COMPLETED)
+                    for fut in done:
+                        src, name = fut_key = futs.pop(fut)
+                        try:
+                            result = fut.result()
+                        except BrokenProcessPool:
+                            futs[fut] = fut_key
+                            raise
+                        for s2, n2 in jobs(handle(src, name, result)):
+                            futs[pool.submit(_process, s2, n2, label_of(s2), out)] = (s2, n2)
+        except BrokenProcessPool:  # e.g. no importable __main__ for the workers: finish here
+            serial(list(futs.values()))
     campaign = campaign if campaign is not None else found
     failed = [f for f in (campaign or {}).get("failed") or [] if isinstance(f, dict)]
-    runs = _assign_names(entries)
-    with plots.session():
-        return _write(out, runs, bad, failed, campaign)
-
-
-def _write(out, runs, bad, failed, campaign):
-    pages = {}
-    for name, label, rec, origin in runs:
-        try:
-            text = run_page(name, label, rec, origin)
-        except Exception as exc:  # a malformed record must not stop the report
-            pages[name] = (f"{type(exc).__name__}: {exc}",)
-            continue
-        _write_file(out, out / "runs" / f"{name}.html", text)
-        pages[name] = f"runs/{name}.html"
-    broken = [(origin or label, f"page could not be built: {pages[name][0]}")
-              for name, label, _, origin in runs if not isinstance(pages[name], str)]
-    ok = {n: p for n, p in pages.items() if isinstance(p, str)}
+    runs.sort(key=lambda r: r[0].lower())
     index = out / "index.html"
-    _write_file(out, index, _index_page(runs, bad + broken, failed, campaign, ok))
+    with plots.session():
+        _write_file(out, index, _index_page(runs, bad, failed, campaign))
     return index

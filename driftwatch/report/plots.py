@@ -17,7 +17,7 @@ import re
 
 import numpy as np
 
-__all__ = ["FLOOR", "layer_map", "deformation_plot", "distance_plot", "spectrum_plot",
+__all__ = ["FLOOR", "session", "reset_ids", "layer_map", "deformation_plot", "distance_plot", "spectrum_plot",
            "displacement_plot", "campaign_scatter", "breakpoint_histogram", "flag_bars", "text_safe"]
 
 FLOOR = 1e-6
@@ -37,6 +37,12 @@ TYPE_COLOURS = dict(zip(["op", "oc", "tp", "hp", "mirror"], PALETTE))
 VERDICT_COLOURS = {"snapped": "#D55E00", "handedness-flip": "#CC79A7", "approaching": "#E69F00",
                    "fixed-cell": "#56B4E9", "steady": "#009E73"}
 _counter = itertools.count(1)
+
+
+def reset_ids():
+    """Start element-id prefixes afresh (call once per page: ids need only be unique in a page)."""
+    global _counter
+    _counter = itertools.count(1)
 
 
 def text_safe(s) -> str:
@@ -206,10 +212,15 @@ def _map_frame(ax, labels):
 def _map_path(ax, h, v, s, xy, steps, big):
     """The path: solid where it is continuous in the signed plane, dotted where it crosses an edge
     that appears once per half (the lattice is the same; the picture jumps to the other half)."""
-    for i in range(len(h) - 1):
-        jump = s[i] != s[i + 1] and _jump(xy[i], xy[i + 1])
-        ax.plot(h[i:i + 2], v[i:i + 2], color="#555555" if jump else "#222222",
-                lw=0.8 if jump else 1.1, ls=(0, (1, 2)) if jump else "-", zorder=2)
+    from matplotlib.collections import LineCollection
+    seg = np.stack([np.stack([h[:-1], v[:-1]], 1), np.stack([h[1:], v[1:]], 1)], 1)
+    jump = np.array([s[i] != s[i + 1] and _jump(xy[i], xy[i + 1]) for i in range(len(h) - 1)],
+                    bool)
+    if (~jump).any():
+        ax.add_collection(LineCollection(seg[~jump], colors="#222222", linewidths=1.1, zorder=2))
+    if jump.any():
+        ax.add_collection(LineCollection(seg[jump], colors="#555555", linewidths=0.8,
+                                         linestyles=[(0, (1, 2))], zorder=2))
     sc = ax.scatter(h, v, c=steps, cmap="viridis", s=16 if big else 26, zorder=5,
                     edgecolors="none")
     ax.scatter(h[:1], v[:1], s=90, facecolors="none", edgecolors="#000000", lw=1.4, zorder=6,
@@ -232,10 +243,15 @@ def layer_map(frames) -> str:
     h, v = s * xy[:, 0], xy[:, 1]
     steps = _steps(frames)
     span = max(np.ptp(h), np.ptp(v))
-    zoom = span < 0.3
+    flips = np.nonzero(s[1:] != s[:-1])[0]
+    if flips.size:  # zoom on the part of the path from the step before the first change of sign
+        k0, equal = int(flips[0]), False
+    else:
+        k0, equal = 0, True
+    zoom = bool(flips.size) or span < 0.3
     with _ctx():
-        fig = _figure(10.5 if zoom else 7.6, 4.3, left=0.06, right=0.95, bottom=0.11, top=0.95,
-                      wspace=0.12)
+        fig = _figure(10.5 if zoom else 7.6, 4.3, left=0.06, right=0.95, bottom=0.11, top=0.93,
+                      wspace=0.14)
         if zoom:
             ax, az = fig.subplots(1, 2, gridspec_kw={"width_ratios": [1.75, 1]})
         else:
@@ -248,16 +264,27 @@ def layer_map(frames) -> str:
         ax.set_xlabel("sign × x   (projected invariant, unitless)")
         ax.set_ylabel("y")
         if az is not None:
-            half = max(0.66 * span, 0.004)
-            cx, cy = (h.max() + h.min()) / 2, (v.max() + v.min()) / 2
             from matplotlib.patches import Rectangle
-            ax.add_patch(Rectangle((cx - half, cy - half), 2 * half, 2 * half, fill=False, lw=0.8,
-                                   ec="#000000", zorder=7))
+            hz, vz = h[k0:], v[k0:]
+            if equal:
+                hx = hy = max(0.66 * span, 0.004)
+            else:
+                hx = max(0.62 * np.ptp(hz), 1e-4)
+                hy = max(0.62 * np.ptp(vz), 1e-4)
+            cx, cy = (hz.max() + hz.min()) / 2, (vz.max() + vz.min()) / 2
+            ax.add_patch(Rectangle((cx - max(hx, 0.01), cy - max(hy, 0.01)), 2 * max(hx, 0.01),
+                                   2 * max(hy, 0.01), fill=False, lw=0.8, ec="#000000", zorder=7))
             _map_frame(az, labels=False)
             sc = _map_path(az, h, v, s, xy, steps, big=False)
-            az.set_xlim(cx - half, cx + half)
-            az.set_ylim(cy - half, cy + half)
-            az.set_title(f"zoom (box on the left), width {2 * half:.3g}", loc="left", fontsize=8)
+            az.set_xlim(cx - hx, cx + hx)
+            az.set_ylim(cy - hy, cy + hy)
+            if equal:
+                az.set_title(f"zoom (box on the left), width {2 * hx:.3g}", loc="left", fontsize=8)
+            else:
+                az.set_aspect("auto")
+                az.set_title(f"zoom from step {steps[k0]:g} (sign changes); not to scale",
+                             loc="left", fontsize=8)
+                az.axvline(0, color=TYPE_COLOURS["oc"], lw=2.2, zorder=1)
             az.set_xlabel("sign × x")
             az.legend(loc="best", frameon=True, framealpha=0.85, fontsize=7)
             fig.colorbar(sc, ax=az, label="ionic step", shrink=0.85, pad=0.02)
@@ -279,7 +306,7 @@ def _series_plot(frames, key, types, ylabel, title, thresholds=(), colours=None,
             ls = (0, (4, 2)) if t == "mirror" else "-"
             ax.plot(steps, vals, marker="o" if len(steps) <= 40 else None, ms=2.5,
                     lw=1.0 if t == "mirror" else 1.4, ls=ls, color="#333333" if t == "mirror" else c,
-                    label="mirror (nearest achiral)" if t == "mirror" else t)
+                    label=t)
         _log_axis(ax, ylabel)
         _thresholds(ax, thresholds)
         ax.set_xlabel("ionic step")
@@ -338,10 +365,16 @@ def spectrum_plot(frames, common=()) -> str:
             rects, cols = [], []
             for st, spec in rows:
                 e = _edges(spec["symprec"])
-                for i in range(len(spec["symprec"])):
+                labs = [_verdict_label(spec, i, what) for i in range(len(spec["symprec"]))]
+                i = 0
+                while i < len(labs):  # one rectangle per run of equal verdicts
+                    j = i
+                    while j + 1 < len(labs) and labs[j + 1] == labs[i]:
+                        j += 1
                     rects.append([(st - width / 2, e[i]), (st + width / 2, e[i]),
-                                  (st + width / 2, e[i + 1]), (st - width / 2, e[i + 1])])
-                    cols.append(colour[_verdict_label(spec, i, what)])
+                                  (st + width / 2, e[j + 1]), (st - width / 2, e[j + 1])])
+                    cols.append(colour[labs[i]])
+                    i = j + 1
                 bps = [b for b in spec.get("breakpoints", []) if b.get("kind") == what]
                 if bps:
                     y = [math.sqrt(b["low"] * b["high"]) for b in bps if b["low"] and b["high"]]
@@ -425,47 +458,53 @@ def _grp(label):
 # ------------------------------------------------------------------------------------------- campaign
 
 def campaign_scatter(points) -> str:
-    """Initial against final deformation (Å) for every run: ``[(initial, final, verdict, dim), ...]``.
+    """Initial against final value for every run, two panels: deformation (Å) and root-space distance
+    (Å) to the type the run moved toward. ``points``: ``[(def0, def1, dist0, dist1, verdict, dim)]``.
 
     Log axes; runs that reached the type (final at or below FLOOR) fall onto the bottom axis.
     """
     with _ctx():
-        fig = _figure(6.2, 4.6, left=0.13, right=0.97, bottom=0.11, top=0.93)
-        ax = fig.add_subplot()
-        if points:
-            ini = _floor([p[0] for p in points])
-            fin = _floor([p[1] for p in points])
-            lo = FLOOR / 1.5
-            hi = max(np.nanmax(ini), np.nanmax(fin), 1e-2) * 2
-            ax.plot([lo, hi], [lo, hi], color="#888888", lw=0.8, ls="--", zorder=1)
-            ax.annotate("no change", (hi / 3, hi / 3), rotation=0, fontsize=7, color="#666666",
-                        ha="right", va="bottom")
-            for verdict in sorted({p[2] for p in points}):
-                for dim, marker in ((2, "o"), (3, "s")):
-                    m = np.array([p[2] == verdict and p[3] == dim for p in points])
-                    if m.any():
-                        ax.scatter(ini[m], fin[m], marker=marker, s=28, alpha=0.85,
-                                   color=VERDICT_COLOURS.get(verdict, "#777777"),
-                                   edgecolors="#222222", linewidths=0.4, zorder=3,
-                                   label=f"{text_safe(verdict)} ({'layer' if dim == 2 else 'bulk'})")
-            ax.set_xscale("log")
-            ax.set_yscale("log")
-            _plain_log(ax, "x")
-            _plain_log(ax, "y")
-            ax.set_xlim(lo, hi)
-            ax.set_ylim(lo, hi)
-            ax.legend(loc="upper left", frameon=False)
-        ax.set_xlabel("initial deformation to the type it moved toward (Å)")
-        ax.set_ylabel("final deformation (Å)")
-        ax.set_title(f"drift of every run (bottom axis: ≤ {FLOOR:g} Å, reached the type)",
-                     loc="left")
+        fig = _figure(10.5, 4.8, left=0.08, right=0.99, bottom=0.11, top=0.93, wspace=0.25)
+        axes = fig.subplots(1, 2)
+        for ax, (i0, i1), what in zip(axes, ((0, 1), (2, 3)),
+                                      ("deformation", "root-space distance")):
+            pts = [p for p in points if p[i0] is not None and p[i1] is not None]
+            if pts:
+                ini = _floor([p[i0] for p in pts])
+                fin = _floor([p[i1] for p in pts])
+                lo = FLOOR / 1.5
+                hi = max(np.nanmax(ini), np.nanmax(fin), 1e-2) * 2
+                ax.plot([lo, hi], [lo, hi], color="#888888", lw=0.8, ls="--", zorder=1)
+                ax.annotate("no change", (hi / 3, hi / 3), fontsize=7, color="#666666",
+                            ha="right", va="bottom")
+                for verdict in sorted({p[4] for p in pts}):
+                    for dim, marker in ((2, "o"), (3, "s")):
+                        m = np.array([p[4] == verdict and p[5] == dim for p in pts])
+                        if m.any():
+                            ax.scatter(ini[m], fin[m], marker=marker, s=30, alpha=0.85,
+                                       color=VERDICT_COLOURS.get(verdict, "#777777"),
+                                       edgecolors="#222222", linewidths=0.4, zorder=3,
+                                       label=f"{text_safe(verdict)} "
+                                             f"({'layer' if dim == 2 else 'bulk'})")
+                ax.set_xscale("log")
+                ax.set_yscale("log")
+                _plain_log(ax, "x")
+                _plain_log(ax, "y")
+                ax.set_xlim(lo, hi)
+                ax.set_ylim(lo, hi)
+                ax.set_aspect("equal")
+                if what == "deformation":
+                    ax.legend(loc="upper left", frameon=False)
+            ax.set_xlabel(f"{what} at the first step (Å)")
+            ax.set_ylabel(f"{what} at the last step (Å)")
+            ax.set_title(f"{what} to the type each run moved toward", loc="left")
     return _svg(fig)
 
 
 def breakpoint_histogram(group_bps, lattice_bps, common=(), span=(1e-5, 0.5)) -> str:
     """Distribution of breakpoint positions (geometric centre, Å) across runs: group and lattice kinds."""
     with _ctx():
-        fig = _figure(6.2, 3.6, left=0.1, right=0.97, bottom=0.14, top=0.88)
+        fig = _figure(6.2, 3.6, left=0.1, right=0.97, bottom=0.14, top=0.86)
         ax = fig.add_subplot()
         allv = [v for v in list(group_bps) + list(lattice_bps) if v and v > 0]
         lo = min([span[0]] + allv) / 1.2
@@ -482,8 +521,8 @@ def breakpoint_histogram(group_bps, lattice_bps, common=(), span=(1e-5, 0.5)) ->
                         xytext=(2, -2), textcoords="offset points", fontsize=7, va="top")
         ax.set_xlabel("symprec where spglib's verdict changes (Å, final frame of each run)")
         ax.set_ylabel("breakpoints")
-        ax.set_title("breakpoints across runs", loc="left")
-        ax.legend(loc="upper left", frameon=False)
+        ax.yaxis.get_major_locator().set_params(integer=True)
+        ax.legend(loc="lower left", bbox_to_anchor=(0.0, 1.04), ncols=2, frameon=False)
     return _svg(fig)
 
 

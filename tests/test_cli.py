@@ -1,0 +1,83 @@
+"""The command line, run as a user runs it (subprocesses of the installed entry point's module)."""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+QE = Path(__file__).parent / "data" / "qe"
+
+
+def dw(*args, cwd=None, timeout=300):
+    return subprocess.run([sys.executable, "-m", "driftwatch", *map(str, args)], capture_output=True,
+                          text=True, cwd=cwd, timeout=timeout)
+
+
+def test_help_is_light_and_lists_subcommands():
+    code = ("import sys; from driftwatch.cli import main\n"
+            "try:\n    main(['--help'])\nexcept SystemExit:\n    pass\n"
+            "heavy = [m for m in ('pymatgen', 'spglib', 'ase', 'matplotlib') if m in sys.modules]\n"
+            "print('HEAVY', heavy)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True).stdout
+    for sub in ("inspect", "audit", "follow", "tolerance", "report"):
+        assert sub in out
+    assert "HEAVY []" in out
+
+
+@pytest.mark.parametrize("sub", ["inspect", "audit", "follow", "tolerance", "report"])
+def test_every_subcommand_has_help_with_examples_and_exit_codes(sub):
+    r = dw(sub, "--help")
+    assert r.returncode == 0
+    assert "examples:" in r.stdout and "exit codes" in r.stdout and "--json" in r.stdout
+
+
+def test_inspect_table_json_and_gate(tmp_path):
+    run = QE / "layer_oblique_to_hex"
+    r = dw("inspect", run)
+    assert r.returncode == 0, r.stderr
+    assert "verdict: snapped" in r.stdout and "flag: [warning] snapped" in r.stdout
+    r = dw("inspect", run, "--json", "-o", tmp_path / "rec.json")
+    rec = json.loads(r.stdout)
+    assert rec["schema"] == "driftwatch/run-1"
+    assert json.loads((tmp_path / "rec.json").read_text())["summary"] == rec["summary"]
+    # pipeline gating: a flag named in --fail-on makes the command exit 3
+    assert dw("inspect", run, "--fail-on", "snapped").returncode == 3
+    assert dw("inspect", run, "--fail-on", "handedness-flip").returncode == 0
+
+
+def test_errors_are_one_line_and_name_the_file(tmp_path):
+    empty = tmp_path / "empty.traj"
+    empty.write_bytes(b"")
+    r = dw("inspect", empty)
+    assert r.returncode == 1
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and str(empty) in lines[0] and "Traceback" not in r.stderr
+    r = dw("inspect", tmp_path / "missing.out")
+    assert r.returncode == 1 and "missing.out" in r.stderr and len(r.stderr.strip().splitlines()) == 1
+    r = dw("inspect", QE / "layer_oblique_to_hex", "--fail-on", "colapsed")
+    assert r.returncode == 1 and "unknown flag code" in r.stderr
+    bad = tmp_path / "bad.yaml"
+    bad.write_text("rules:\n  snapped:\n    within: 0.001\n")
+    r = dw("inspect", QE / "layer_oblique_to_hex", "-c", bad)
+    assert r.returncode == 1 and "rules.snapped.within: missing unit" in r.stderr
+    assert dw("inspect").returncode == 2  # argparse usage error
+
+
+def test_tolerance_subcommand():
+    r = dw("tolerance", QE / "layer_oblique_to_hex", "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert out["dimension"] == 2 and out["spectrum"]["symprec"][0] == pytest.approx(1e-5)
+    r = dw("tolerance", QE / "layer_oblique_to_hex", "--frame", "0")
+    assert r.returncode == 0 and "layer group" in r.stdout
+    r = dw("tolerance", QE / "layer_oblique_to_hex", "--frame", "9999")
+    assert r.returncode == 1 and "out of range" in r.stderr
+
+
+def test_formats_lists_registry():
+    r = dw("formats", "--json")
+    names = json.loads(r.stdout)
+    for name in ("traj", "extxyz", "vasp-xml", "vasp-out", "espresso-out"):
+        assert any(name in k for k in names), name
