@@ -590,7 +590,7 @@ class _Follower:
                 last_sig, last_growth = sig, now
             if changed or self.tracker is None:
                 # the end marker is looked for *before* reading: every step written before it is read
-                end = _end_marker(self.source, self.tracker.format) if self.tracker else None
+                end = _end_marker(self.source or self.path, self._format())
                 if not self.read(ended=bool(end)) and not waited:
                     self.say(f"driftwatch: waiting for a completed ionic step in {self.path} "
                              f"({self.error})")
@@ -605,6 +605,17 @@ class _Follower:
                 self.ended = f"idle: no growth for {idle:g} s"
                 return self.finish()
             time.sleep(poll)
+
+    def _format(self) -> str | None:
+        if self.tracker is not None:
+            return self.tracker.format
+        if self.format or not (self.source or self.path).is_file():
+            return self.format
+        from .adapters import detect
+        try:
+            return detect(self.source or self.path)
+        except DriftwatchError:
+            return None
 
     def read(self, ended: bool = False) -> bool:
         """Re-read the completed steps; print, check and write what is new. False: none yet.

@@ -18,8 +18,8 @@ approaching        info    the deformation to a type fell by ``fraction`` of its
 handedness-flip    warning a layer's 2D lattice changes sign while its mirror deformation is above
                            ``min_chiral`` on both sides
 tolerance-sensitive warning spglib's group for the final frame changes between ``low`` and ``high``
-spglib-overcall    warning spglib's lattice-only type at ``symprec`` is one the lattice is more than
-                           ``far`` (deformation) from
+spglib-overcall    warning spglib's lattice-only type for the final frame at ``symprec`` is one the
+                           lattice is more than ``far`` (deformation) from
 atoms-break-lattice info   the final lattice is within ``within`` of a type, but the structure's group at
                            ``symprec`` has a lower lattice type: the atoms break the lattice symmetry
 atoms-settled      info    the structure's group at ``rules.atoms_settled.symprec`` gained operations
@@ -184,10 +184,9 @@ def _tolerance_sensitive(frames, r):
 
 
 def _overcall(frames, D, r):
-    for k, f in enumerate(frames):
-        spec = f.get("symmetry")
-        if not spec:
-            continue
+    k = len(frames) - 1  # the verdict a user would take from the final structure
+    spec = frames[k].get("symmetry")
+    if spec:
         lat, _ = _at(spec, r["symprec"], "lattice")
         t = _lattice_type(lat)
         if t in D and D[t][k] > r["far"]:

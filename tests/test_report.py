@@ -169,7 +169,7 @@ def test_layer_page_has_map_and_bulk_page_has_13_types(report, real_records):
                 assert f">{t}<" in text, t
         assert "not a proof" in text and "root-invariant space" in text
         if rec["run"]["fixed_cell"]:
-            assert "Fixed cell." in text
+            assert "<b>Fixed cell</b>: every frame has the same cell" in text
 
 
 def test_unreadable_inputs_listed_not_fatal(report):

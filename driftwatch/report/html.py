@@ -386,7 +386,7 @@ def _summary_section(rec):
         ("its distance / deformation", f"{_q(fin.get('distance'))} root space / "
                                        f"{_q(fin.get('deformation'))} deformation"),
     ]
-    if drift:
+    if drift and not run.get("fixed_cell"):
         frac = _fnum(drift.get("fraction"))
         rows.append(("drift", f"toward {_type_name(drift.get('type'))}: deformation "
                               f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"
@@ -408,9 +408,13 @@ def _summary_section(rec):
                            f"(format {e(run.get('format'))})"))
     body = _kv(rows)
     if run.get("fixed_cell"):
-        body += (f'<p class="note"><b>Fixed cell.</b> {e(s.get("lattice_note") or "")} Every frame has '
-                 "the same cell, so the lattice distances cannot change; look at the tolerance spectrum "
-                 "and the displacement to each group for symmetry drift of the atoms.</p>")
+        note = s.get("lattice_note") or ("the lattice cannot drift; symmetry drift is in the atoms "
+                                         "(see the displacement to each group)")
+        note = note[len("fixed cell:"):].strip() if note.lower().startswith("fixed cell:") else note
+        note = note[:1].upper() + note[1:]
+        body += (f'<p class="note"><b>Fixed cell</b>: every frame has the same cell. {e(note)}. The '
+                 "lattice plots are flat by construction; the tolerance spectrum and the displacement "
+                 "plot (shown first below) carry the drift.</p>")
     return "<h2>Summary</h2>" + body
 
 
@@ -503,7 +507,8 @@ def _plots_section(rec):
     dim = rec["geometry"].get("dimension")
     thr = [(_cfg(rec, "rules", "snapped", "within"), "snapped within"),
            (_cfg(rec, "rules", "snapped", "start_away"), "start away")]
-    out = ["<h2>Plots</h2>"]
+    lattice, atoms = [], []
+    out = lattice
     if dim == 2:
         types = [t for t in ("op", "oc", "tp", "hp", "mirror") if t in frames[0].get("deformation", {})]
         out.append(_figure(plots.layer_map(frames),
@@ -537,6 +542,7 @@ def _plots_section(rec):
                                                    title="distance to each lattice system",
                                                    ylabel="distance (Å)"),
                        "Distance (Å, root space) to each lattice system (the nearest of its types)."))
+    out = atoms
     if any(f.get("symmetry") for f in frames):
         out.append(_figure(plots.spectrum_plot(frames, _common(rec)),
                    "Tolerance spectrum: spglib's verdict (colour) at each symprec (log axis, Å) for the "
@@ -550,7 +556,8 @@ def _plots_section(rec):
                    "the atoms reached that symmetry."))
     else:
         out.append("<p>No frame was analysed with spglib: no tolerance spectrum or displacement plot.</p>")
-    return "".join(out)
+    first = atoms + lattice if rec["run"].get("fixed_cell") else lattice + atoms
+    return "<h2>Plots</h2>" + "".join(first)
 
 
 def _provenance_section(rec):
@@ -560,7 +567,7 @@ def _provenance_section(rec):
             ("versions", e(", ".join(f"{k} {_val(x)}" for k, x in v.items()))),
             ("metric", e(((rec.get("config") or {}).get("lattice") or {}).get("metric"))),
             ("time", e(", ".join(f"{k} {x:.3g}" if isinstance(x, float) else f"{k} {x}"
-                                 for k, x in t.items())))]
+                                 for k, x in t.items()) or "—"))]
     return "<h2>Provenance</h2>" + _kv(rows)
 
 
@@ -575,9 +582,11 @@ def run_page(name, label, rec, origin) -> str:
     title = run.get("title") or label
     header = (f"<h1>{e(title)}</h1><div class=\"sub\">run {e(label)}"
               + (f" · record {e(origin)}" if origin else "") + "</div>")
-    body = (f'<p class="note">{e(DISCLAIMER)}</p>' + _summary_section(rec) + _flags_section(rec)
+    warned = bool(run.get("warnings"))  # reading problems go up front, next to the summary
+    body = (f'<p class="note">{e(DISCLAIMER)}</p>' + _summary_section(rec)
+            + (_warnings_section(rec) if warned else "") + _flags_section(rec)
             + _tolerance_section(rec) + _plots_section(rec) + _settings_section(rec)
-            + _warnings_section(rec) + _how_to_read() + _provenance_section(rec))
+            + ("" if warned else _warnings_section(rec)) + _how_to_read() + _provenance_section(rec))
     crumb = '<div class="crumb"><a href="../index.html">← campaign index</a></div>'
     return _page(f"{title} · driftwatch", header, body, crumb=crumb)
 
@@ -713,7 +722,10 @@ def _runs_table(runs):
         kind = "layer" if g.get("dimension") == 2 else "bulk"
         rows.append(
             f'<tr><td><a href="runs/{quote(name)}.html">{e(label)}</a>'
-            f'<br><span class="muted">{e(r.get("title") or "")}</span></td>'
+            f'<br><span class="muted">{e(r.get("title") or "")}</span>'
+            + (f' <span class="badge warning">{len(r["warnings"])} warning'
+               f'{"s" if len(r["warnings"]) > 1 else ""}</span>' if r.get("warnings") else "")
+            + "</td>"
             f"<td>{e(r.get('formula'))}<br><span class=\"muted\">{kind}</span></td>"
             f"{_td_num(r.get('n_frames'))}"
             f"<td class=\"nowrap\" data-v=\"{e(ini.get('type'))} {e(fin.get('type'))}\">"

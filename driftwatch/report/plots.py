@@ -125,15 +125,9 @@ def _plain_log(ax, axis="y"):
 def _log_axis(ax, label):
     ax.set_yscale("log")
     _plain_log(ax)
-    ax.set_ylabel(label)
+    ax.set_ylabel(f"{label}\nbottom axis: ≤ {FLOOR:g} Å")
     lo, hi = ax.get_ylim()
     ax.set_ylim(FLOOR / 1.5, max(hi, 10 * FLOOR))
-
-
-def _floor_note(ax, what):
-    ax.annotate(f"bottom axis: ≤ {FLOOR:g} Å ({what})", xy=(1.0, 1.0), xycoords="axes fraction",
-                xytext=(0, 3), textcoords="offset points", ha="right", va="bottom", fontsize=7,
-                color="#666666")
 
 
 def _steps(frames):
@@ -244,11 +238,12 @@ def layer_map(frames) -> str:
     steps = _steps(frames)
     span = max(np.ptp(h), np.ptp(v))
     flips = np.nonzero(s[1:] != s[:-1])[0]
+    still = span < 1e-9  # a fixed cell: one point, nothing to zoom into
     if flips.size:  # zoom on the part of the path from the step before the first change of sign
         k0, equal = int(flips[0]), False
     else:
         k0, equal = 0, True
-    zoom = bool(flips.size) or span < 0.3
+    zoom = not still and (bool(flips.size) or span < 0.3)
     with _ctx():
         fig = _figure(10.5 if zoom else 7.6, 4.3, left=0.06, right=0.95, bottom=0.11, top=0.93,
                       wspace=0.14)
@@ -295,10 +290,10 @@ def layer_map(frames) -> str:
     return _svg(fig)
 
 
-def _series_plot(frames, key, types, ylabel, title, thresholds=(), colours=None, bottom_note=True):
+def _series_plot(frames, key, types, ylabel, title, thresholds=(), colours=None):
     steps = _steps(frames)
     with _ctx():
-        fig = _figure(7.6, 3.4, left=0.1, right=0.8, bottom=0.14, top=0.91)
+        fig = _figure(7.6, 3.4, left=0.125, right=0.8, bottom=0.14, top=0.91)
         ax = fig.add_subplot()
         for k, t in enumerate(types):
             vals = _floor([f.get(key, {}).get(t) for f in frames])
@@ -313,8 +308,6 @@ def _series_plot(frames, key, types, ylabel, title, thresholds=(), colours=None,
         ax.set_title(title, loc="left")
         ax.legend(loc="center left", bbox_to_anchor=(1.0, 0.5), frameon=False,
                   fontsize=8 if len(types) <= 8 else 7, handlelength=1.6, labelspacing=0.3)
-        if bottom_note:
-            _floor_note(ax, "at the type")
     return _svg(fig)
 
 
@@ -431,7 +424,7 @@ def displacement_plot(frames) -> str | None:
     if not series:
         return None
     with _ctx():
-        fig = _figure(7.6, 3.4, left=0.1, right=0.8, bottom=0.14, top=0.91)
+        fig = _figure(7.6, 3.4, left=0.125, right=0.8, bottom=0.14, top=0.91)
         ax = fig.add_subplot()
         for k, (lab, pts) in enumerate(sorted(series.items(), key=lambda kv: _grp(kv[0]))):
             pts.sort(key=lambda p: p[0])
@@ -446,7 +439,6 @@ def displacement_plot(frames) -> str | None:
                      loc="left")
         ax.legend(loc="center left", bbox_to_anchor=(1.0, 0.5), frameon=False,
                   ncols=1 if len(series) <= 10 else 2)
-        _floor_note(ax, "already symmetric")
     return _svg(fig)
 
 

@@ -1,0 +1,189 @@
+"""custodian integration: a Validator that fails collapsed runs and a monitor that soft-stops them.
+
+Spec-file use (custodian's own YAML; names are dotted paths)::
+
+    handlers:
+      - hdlr: driftwatch.integrations.custodian.SymmetryStopHandler
+        params: {stop_on: [snapped]}
+    validators:
+      - vldr: driftwatch.integrations.custodian.SymmetryValidator
+        params: {fail_on: [snapped, handedness-flip]}
+
+How custodian treats them (read from ``custodian/custodian.py``, checked with real runs in
+``tests/test_integrations.py``):
+
+* ``SymmetryValidator.check(directory)`` runs after a job that ended with no handler errors; True
+  means failure, and custodian then raises ``ValidationError`` out of ``Custodian.run()``.
+* ``SymmetryStopHandler`` is a monitor (``is_monitor=True``) that never lets custodian kill the job
+  (``is_terminating=False``). When a ``stop_on`` flag fires, ``correct`` writes the code's stop file
+  (VASP ``STOPCAR`` / pw.x ``<prefix>.EXIT``) and the code stops itself cleanly. ``correct`` returns
+  ``"actions": None``: a correction *with* actions makes custodian rerun the job, which a collapsed
+  structure does not need. The handler reports once more when the stopped job has written its end
+  marker, so custodian ends the run as an unrecoverable error of this handler: ``Custodian.run()``
+  returns normally and records it (``raises_runtime_error=False``, the default), or raises
+  ``NonRecoverableError`` with ``fail_job=True``. Later jobs of that custodian run are not started.
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+from custodian.custodian import ErrorHandler, Validator
+
+from .. import records, rules
+from ..errors import DriftwatchError, InputError
+from ..live import (Tracker, _codes, _end_marker, _needs_spectra, _read, check_run,
+                    code_of_format, request_stop)
+
+__all__ = ["SymmetryValidator", "SymmetryStopHandler"]
+
+logger = logging.getLogger(__name__)
+
+
+class SymmetryValidator(Validator):
+    """Fails (``check`` returns True) a finished job whose run fired a ``fail_on`` flag.
+
+    Args:
+        fail_on: flag codes or levels (``info``, ``warning``) that fail the job.
+        config: driftwatch preset name, YAML path or mapping (None: the default config).
+        output: also write the run record here (relative paths are inside the job directory).
+        fail_unreadable: a run folder with no readable relaxation also fails (the check could not
+            be made); False lets it pass.
+
+    After ``check``, ``.record`` holds the record and ``.reason`` says why it failed.
+    """
+
+    def __init__(self, fail_on=("snapped",), config=None, output=None, fail_unreadable=True):
+        self.fail_on = _codes(fail_on, "fail_on")
+        self.config = config
+        self.output = output
+        self.fail_unreadable = fail_unreadable
+        self.record = None
+        self.reason = None
+
+    def check(self, directory="./") -> bool:
+        try:
+            passed, rec = check_run(directory, config=self.config, fail_on=self.fail_on)
+        except InputError as exc:
+            self.reason = f"driftwatch could not check the run: {exc}"
+            logger.error(self.reason)
+            return bool(self.fail_unreadable)
+        self.record = rec
+        if self.output:
+            out = Path(self.output)
+            records.write_json(rec, out if out.is_absolute() else Path(directory) / out)
+        if passed:
+            self.reason = None
+            return False
+        hits = rules.gate(rec["flags"], self.fail_on)
+        self.reason = "; ".join(f"{f['code']} (step {f['step']}): {f['message']}" for f in hits)
+        logger.error(f"driftwatch: {self.reason}")
+        return True
+
+
+class SymmetryStopHandler(ErrorHandler):
+    """Monitor: follows the job's output and requests the code's soft stop when a flag fires.
+
+    Args:
+        stop_on: flag codes or levels that request the stop.
+        config: driftwatch preset name, YAML path or mapping.
+        dry_run: only log what would be written; never enters custodian's error handling.
+        fail_job: make custodian raise ``NonRecoverableError`` after the stopped job ended
+            (default: ``Custodian.run()`` returns and the run log records the stop).
+        prefix, outdir: pw.x settings for the ``.EXIT`` file when the input is not in the folder.
+
+    Works for VASP and pw.x run folders (the code is told by the output found there).
+    """
+
+    is_monitor = True
+    is_terminating = False
+    raises_runtime_error = False
+
+    def __init__(self, stop_on=("snapped",), config=None, dry_run=False, fail_job=False,
+                 prefix=None, outdir=None):
+        self.stop_on = _codes(stop_on)
+        self.config = config
+        self.dry_run = dry_run
+        self.fail_job = fail_job
+        self.raises_runtime_error = bool(fail_job)
+        self.prefix = prefix
+        self.outdir = outdir
+        self._tracker = None
+        self._flag = None          # the flag that fired (pending correct)
+        self._stop = None          # the stop request made for this output
+        self._reported_end = False
+        self.dry_runs: list[dict] = []
+
+    def _follow(self, directory) -> dict | None:
+        frames, ctx, _ = _read(directory, None)
+        if not frames:
+            return None
+        from ..adapters import detect
+        fmt = detect(directory)
+        t = self._tracker
+        if t is None or t.source != ctx.path or len(frames) < len(t):
+            t = self._tracker = Tracker(self.config, source=ctx.path, format=fmt,
+                                        run_dir=str(directory))
+            self._stop, self._reported_end = None, False
+        t.warnings, t.code_settings = list(ctx.warnings), dict(ctx.settings)
+        t.replace(frames)
+        return t.record(newest=_needs_spectra(self.stop_on))
+
+    def check(self, directory="./") -> bool:
+        if self._stop is not None:     # stop requested: report once more when the job has ended
+            if not self._reported_end and _end_marker(self._tracker.source, self._tracker.format):
+                self._reported_end = True
+                return True
+            return False
+        try:
+            rec = self._follow(directory)
+        except DriftwatchError as exc:
+            logger.warning(f"driftwatch: cannot follow {directory}: {exc}")
+            return False
+        if rec is None or code_of_format(self._tracker.format) is None:
+            return False
+        hits = rules.gate(rec["flags"], self.stop_on)
+        if not hits:
+            return False
+        if self.dry_run:
+            info = self._request(directory, hits[0], dry_run=True)
+            if not any(d["path"] == info["path"] for d in self.dry_runs):
+                self.dry_runs.append(info)
+                logger.warning(f"driftwatch (dry run): would write {info['path']}: {info['reason']}")
+            return False
+        self._flag = hits[0]
+        return True
+
+    def _request(self, directory, flag, dry_run):
+        reason = (f"flag {flag['code']}{'(' + flag['type'] + ')' if flag['type'] else ''} fired "
+                  f"at ionic step {flag['step']} of {Path(self._tracker.source).name}: "
+                  f"{flag['message']}")
+        return request_stop(directory, code_of_format(self._tracker.format), reason=reason,
+                            dry_run=dry_run, prefix=self.prefix, outdir=self.outdir)
+
+    def correct(self, directory="./") -> dict:
+        if self._stop is None:
+            flag = self._flag
+            self._stop = self._request(directory, flag, dry_run=False)
+            self._stop["flag"] = dict(flag)
+            msg = (f"driftwatch: {flag['code']} at step {flag['step']}: {flag['message']}; "
+                   f"soft stop requested ({self._stop['action']} {self._stop['path']})")
+            return {"errors": [msg], "actions": None, "soft_stop": self._stop}
+        left = self._tidy()
+        msg = (f"driftwatch: the job ended after the soft stop requested at step "
+               f"{self._stop['flag']['step']} ({self._stop['flag']['code']})")
+        return {"errors": [msg], "actions": None, "soft_stop": self._stop,
+                "stop_file_left_by_code": left}
+
+    def _tidy(self) -> bool:
+        """Remove our stop file if the code left it (so a restart does not stop at once)."""
+        p = Path(self._stop["path"])
+        try:
+            if self._stop["action"] == "wrote" and p.is_file() and \
+                    p.read_text(encoding="utf-8") == self._stop["text"]:
+                p.unlink()
+                return True
+        except OSError:
+            pass
+        return False

@@ -1,0 +1,403 @@
+"""Live monitoring against real components: ASE's EMT calculator and optimizers, a real pw.x
+vc-relax followed while it runs, pw.x's own soft stop, and the STOPCAR convention of VASP.
+
+External facts used (source beside each check):
+* ASE optimizer observer semantics (ase/optimize/optimize.py, read in ASE 3.29): observers are
+  called with no arguments at step 0 and every ``interval`` steps; the trajectory writer attached in
+  ``__init__`` runs first; an exception raised by an observer propagates out of ``run()``.
+* ASE's 2D Bravais classification ``Cell.get_bravais_lattice(pbc=...)`` (OBL / HEX2D).
+* pw.x 6.7 (Debian package quantum-espresso 6.7-2): stops cleanly when ``<prefix>.EXIT`` appears,
+  prints "Program stopped by user request", "JOB DONE.", exits with status 2 and deletes the file
+  (measured here; see the report).
+* VASP STOPCAR: ``LSTOP = .TRUE.`` stops after the current ionic step; lines starting with ``#`` are
+  comments (from memory, the INCAR-style reader; custodian's WalltimeHandler writes the same tag).
+  No VASP here: only the file's content and location are checked.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from driftwatch import records
+from driftwatch.adapters import read_run
+from driftwatch.errors import ConfigError, InputError, OutputError
+from driftwatch.live import (SymmetryCollapse, SymmetryDriftWarning, SymmetryWatch, Tracker,
+                             check_run, follow, qe_stop_settings, request_stop)
+from driftwatch.track import analyze
+
+PSEUDO = Path("/usr/share/espresso/pseudo/Al.pz-vbc.UPF")
+
+
+# ---------------------------------------------------------------- helpers
+def content(rec: dict) -> dict:
+    """What must agree between a live record and track.analyze: frames, flags, summary, geometry.
+
+    Dropped: timing, the live section, and spglib's per-spectrum call counter (it depends on
+    symmetry.py's cache, so it differs even between two analyze() calls).
+    """
+    rec = json.loads(records.dumps(rec))
+    for f in rec["frames"]:
+        if "symmetry" in f:
+            f["symmetry"].pop("calls", None)
+    return {k: rec[k] for k in ("frames", "flags", "summary", "geometry", "config")} | {
+        "run": {k: rec["run"][k] for k in ("n_frames", "n_atoms", "formula", "fixed_cell")}}
+
+
+def invented_layer():
+    """An invented one-atom Cu monolayer in a slab cell: oblique in-plane lattice (a 2.50 Å,
+    b 2.62 Å, 64 deg), 14 Å along c, near the close-packed hexagonal layer EMT prefers."""
+    from ase import Atoms
+    from ase.calculators.emt import EMT
+    g = np.radians(64.0)
+    atoms = Atoms("Cu", positions=[[0, 0, 7.0]], pbc=True,
+                  cell=[[2.50, 0, 0], [2.62 * np.cos(g), 2.62 * np.sin(g), 0], [0, 0, 14.0]])
+    atoms.calc = EMT()
+    return atoms
+
+
+def relax(tmp_path, watch_kw=None, *, interval=1, pass_opt=False, steps=200):
+    """A real EMT relaxation of the invented layer, in-plane cell free (FrechetCellFilter)."""
+    from ase.filters import FrechetCellFilter
+    from ase.optimize import BFGS
+    atoms = invented_layer()
+    traj = tmp_path / "relax.traj"
+    opt = BFGS(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), trajectory=str(traj), logfile=None)
+    watch = SymmetryWatch(atoms, **(watch_kw or {}))
+    if pass_opt:
+        opt.attach(watch, interval=interval, optimizer=opt)
+    else:
+        opt.attach(watch, interval=interval)
+    return atoms, opt, watch, traj
+
+
+# ---------------------------------------------------------------- ASE observer
+def test_watch_record_mode_matches_analyze_of_trajectory(tmp_path):
+    out = tmp_path / "live.json"
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record", "output": out})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", SymmetryDriftWarning)     # record mode never warns
+        assert opt.run(fmax=1e-4, steps=200)
+    written = records.read_json(out)
+    assert written["run"]["n_frames"] == opt.nsteps + 1          # step 0 + every step (interval 1)
+    assert content(written) == content(watch.record)
+    # the record equals track.analyze of the trajectory the optimizer wrote
+    assert content(written) == content(analyze(traj))
+    codes = {f["code"] for f in written["flags"]}
+    assert "snapped" in codes and written["summary"]["verdict"] == "snapped"
+    snap = next(f for f in written["flags"] if f["code"] == "snapped")
+    assert snap["type"] == "hp"
+    # external check: ASE's own 2D classification of the first and last in-plane cells
+    from ase.io import read
+    first, last = read(traj, 0), read(traj, -1)
+    assert first.cell.get_bravais_lattice(pbc=[1, 1, 0]).name == "OBL"
+    assert last.cell.get_bravais_lattice(pbc=[1, 1, 0], eps=1e-3).name == "HEX2D"
+    assert watch.fired and watch.fired[0]["code"] == "snapped"     # recorded, not acted on
+
+
+def test_watch_warn_mode_warns_once_per_new_flag(tmp_path):
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "warn", "stop_on": ("snapped", "warning")})
+    with pytest.warns(SymmetryDriftWarning) as got:
+        opt.run(fmax=1e-4, steps=200)
+    ours = [w.message for w in got if isinstance(w.message, SymmetryDriftWarning)]
+    keys = [(w.flag["code"], w.flag["type"]) for w in ours]
+    assert ("snapped", "hp") in keys
+    assert len(keys) == len(set(keys))                       # once per flag, not once per step
+    assert opt.converged(opt.optimizable.get_gradient())      # warn mode lets the relaxation finish
+
+
+def test_watch_stop_mode_raises_with_record_and_trajectory_has_step(tmp_path):
+    from ase.io import Trajectory
+    out = tmp_path / "stop.json"
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "stop", "stop_on": ["snapped"], "output": out},
+                                    pass_opt=True)
+    with pytest.raises(SymmetryCollapse) as exc:
+        opt.run(fmax=1e-4, steps=200)
+    err = exc.value
+    flag = err.flags[0]
+    assert flag["code"] == "snapped" and "step" in str(err)
+    # ASE semantics (ase/optimize/optimize.py): nsteps is the step that fired, the trajectory writer
+    # ran before our observer, so the trajectory already holds that step
+    assert opt.nsteps == err.record["frames"][-1]["step"]
+    with Trajectory(traj) as t:
+        assert len(t) == opt.nsteps + 1
+        assert np.allclose(t[-1].cell.array, atoms.cell.array)
+    assert records.read_json(out)["run"]["n_frames"] == opt.nsteps + 1
+    assert content(records.read_json(out)) == content(err.record)
+    assert content(err.record) == content(analyze(traj))
+
+
+def test_watch_irun_break_alternative_and_interval(tmp_path):
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record"}, interval=2, pass_opt=True)
+    for converged in opt.irun(fmax=1e-4, steps=200):
+        if watch.fired:
+            break
+    assert watch.fired and not converged
+    steps = [f["step"] for f in watch.record["frames"]]
+    assert steps == list(range(0, steps[-1] + 1, 2))          # ASE: calls at nsteps % 2 == 0
+    assert opt.nsteps == steps[-1]                            # stopped right after the firing call
+
+
+def test_watch_takes_the_filter_and_survives_an_unanalysable_structure():
+    from ase import Atoms
+    from ase.calculators.emt import EMT
+    from ase.filters import FrechetCellFilter
+    atoms = invented_layer()
+    assert SymmetryWatch(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1])).atoms is atoms
+    molecule = Atoms("Cu2", positions=[[0, 0, 0], [0, 0, 2.3]], cell=[12, 12, 12], pbc=False)
+    molecule.calc = EMT()
+    watch = SymmetryWatch(molecule, mode="stop")
+    with pytest.warns(RuntimeWarning, match="cannot analyse"):
+        watch()                                               # a 0D cell: no layer, no bulk
+    assert watch.error is not None and watch.record is None
+    with pytest.raises(ConfigError):
+        SymmetryWatch(atoms, mode="halt")
+    with pytest.raises(ConfigError):
+        SymmetryWatch(atoms, stop_on=["collapsed"])
+
+
+# ---------------------------------------------------------------- soft stop files
+def test_stopcar_content_and_location_for_a_vasp_folder(tmp_path):
+    # No VASP here: content and location only. LSTOP = .TRUE. (VASP's documented ionic-step stop,
+    # from memory; custodian's WalltimeHandler writes the same tag), '#' comment line (from memory).
+    info = request_stop(tmp_path, "vasp", reason="flag snapped(cF) fired at ionic step 7")
+    assert info["action"] == "wrote" and Path(info["path"]) == (tmp_path / "STOPCAR").resolve()
+    text = (tmp_path / "STOPCAR").read_text()
+    lines = text.splitlines()
+    assert lines[0] == "LSTOP = .TRUE."
+    assert lines[1].startswith("#") and "snapped(cF)" in lines[1]
+    # an existing stop file is never overwritten
+    (tmp_path / "STOPCAR").write_text("LABORT = .TRUE.\n")
+    again = request_stop(tmp_path, "vasp", reason="second")
+    assert again["action"] == "exists" and (tmp_path / "STOPCAR").read_text() == "LABORT = .TRUE.\n"
+
+
+def test_dry_run_writes_nothing(tmp_path):
+    (tmp_path / "pw.in").write_text("&control\n  prefix = 'L7'\n  outdir = './tmp'\n/\n")
+    before = sorted(p.name for p in tmp_path.rglob("*"))
+    for code in ("vasp", "espresso"):
+        info = request_stop(tmp_path, code, reason="would stop", dry_run=True)
+        assert info["action"] == "dry-run" and "would stop" in info["text"]
+    assert info["path"] == str((tmp_path / "tmp" / "L7.EXIT").resolve())
+    assert sorted(p.name for p in tmp_path.rglob("*")) == before
+
+
+def test_qe_exit_file_settings_and_refusals(tmp_path):
+    # defaults of pw.x's &CONTROL (INPUT_PW, from memory): prefix 'pwscf', outdir './'
+    assert qe_stop_settings(tmp_path)["prefix"] == "pwscf"
+    assert qe_stop_settings(tmp_path)["outdir"] == "./"
+    (tmp_path / "relax.in").write_text("&CONTROL\n  calculation='vc-relax'\n  Prefix = \"X9\"\n"
+                                       "  outdir = '/elsewhere/scratch'\n/\n&system\n/\n")
+    s = qe_stop_settings(tmp_path)
+    assert (s["prefix"], s["outdir"], s["from"]) == ("X9", "/elsewhere/scratch", "relax.in")
+    with pytest.raises(OutputError, match="outside the run folder"):
+        request_stop(tmp_path, "espresso", reason="x")
+    info = request_stop(tmp_path, "qe", reason="collapsed", outdir=".")
+    assert Path(info["path"]) == (tmp_path / "X9.EXIT").resolve()
+    assert (tmp_path / "X9.EXIT").read_text() == "driftwatch soft stop: collapsed\n"
+    with pytest.raises(OutputError, match="outside"):
+        request_stop(tmp_path, "espresso", reason="x", prefix="p", outdir="../")
+    with pytest.raises(ConfigError):
+        request_stop(tmp_path, "castep", reason="x")
+
+
+def test_follow_finished_output_and_check_run(tmp_path):
+    # a real pw.x output shipped with the tests (tests/data/qe): the follower reads it to its
+    # JOB DONE marker at once and gives the same record as analyze()
+    src = Path(__file__).parent / "data" / "qe" / "bulk_tetragonal_to_cubic"
+    shutil.copytree(src, tmp_path / "run")
+    buf = io.StringIO()
+    rec = follow(tmp_path / "run" / "pw.out", stream=buf, poll=0.05, idle=5,
+                 output=tmp_path / "rec.json", stop_on=["snapped"])
+    assert rec["live"]["ended"] == "end marker: JOB DONE."
+    assert rec["live"]["stop"] is None                     # never a stop file for a finished job
+    assert not list((tmp_path / "run").rglob("*.EXIT"))
+    ref = analyze(tmp_path / "run" / "pw.out")
+    assert content(rec) == content(ref)
+    assert content(records.read_json(tmp_path / "rec.json")) == content(ref)
+    lines = buf.getvalue().splitlines()
+    assert sum(line.startswith("step") for line in lines) == ref["run"]["n_frames"]
+    ok, rec2 = check_run(tmp_path / "run", fail_on=("snapped",))
+    assert ok is (not any(f["code"] == "snapped" for f in ref["flags"]))
+    assert check_run(tmp_path / "run", fail_on=())[0] is True
+
+
+def test_follow_gives_up_without_steps_and_refuses_stop_for_traj(tmp_path):
+    with pytest.raises(InputError, match="no completed ionic step"):
+        follow(tmp_path / "missing.out", idle=0.3, poll=0.1, quiet=True)
+    from ase.io import write
+    write(tmp_path / "x.traj", invented_layer())
+    with pytest.raises(InputError, match="cannot soft-stop"):
+        follow(tmp_path / "x.traj", idle=0.2, poll=0.1, quiet=True, stop_on=["snapped"])
+
+
+def test_tracker_partial_and_rewritten_frames():
+    from driftwatch.adapters import iter_frames
+    p = Path(__file__).parent / "data" / "qe" / "layer_oblique_to_hex" / "pw.out"
+    frames = list(iter_frames(p))
+    t = Tracker(None, source=str(p), format="espresso-out")
+    for n in range(1, len(frames) + 1):
+        assert t.replace(frames[:n]) == n - 1
+        t.record(newest=False)
+    full = t.record(newest=True)
+    assert full["timing"]["spglib_frames_computed"] <= 1     # earlier spectra were reused
+    assert content(full) == content(analyze(p)) | {"run": content(full)["run"]}
+    assert t.replace(frames[:3]) == 3 and len(t) == 3         # a restarted output drops the rest
+
+
+# ---------------------------------------------------------------- real pw.x, followed live
+ALUMINIUM_VC_RELAX = """&control
+  calculation = 'vc-relax'
+  prefix = 'al7'
+  pseudo_dir = './'
+  outdir = './scratch'
+  disk_io = 'none'
+  tprnfor = .true.
+  tstress = .true.
+  etot_conv_thr = 1e-06
+  forc_conv_thr = 0.0001
+  nstep = 40
+/
+&system
+  ibrav = 0
+  nat = 1
+  ntyp = 1
+  ecutwfc = 20.0
+  occupations = 'smearing'
+  smearing = 'mv'
+  degauss = 0.02
+  ecfixed = 16.0
+  qcutz = 150.0
+  q2sigma = 2.0
+/
+&electrons
+  conv_thr = 1e-09
+  mixing_beta = 0.5
+/
+&ions
+  ion_dynamics = 'bfgs'
+/
+&cell
+  cell_dynamics = 'bfgs'
+  press_conv_thr = 0.05
+/
+ATOMIC_SPECIES
+  Al 26.9815 Al.pz-vbc.UPF
+CELL_PARAMETERS angstrom
+  0.00 2.00 2.15
+  2.00 0.00 2.15
+  2.00 2.00 0.00
+ATOMIC_POSITIONS crystal
+  Al 0.0 0.0 0.0
+K_POINTS automatic
+  12 12 12 0 0 0
+"""
+# An invented body-centred tetragonal Al cell (c/a of the face-centred setting 1.075) that pw.x
+# relaxes toward the cubic cell (about 12 ionic steps, ~1 s each here).
+
+needs_pwx = pytest.mark.skipif(shutil.which("pw.x") is None, reason="pw.x not on PATH")
+
+
+def start_pwx(folder: Path) -> subprocess.Popen:
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "pw.in").write_text(ALUMINIUM_VC_RELAX)
+    shutil.copy(PSEUDO, folder / PSEUDO.name)
+    env = dict(os.environ, OMP_NUM_THREADS="1")
+    out = open(folder / "pw.out", "w")
+    p = subprocess.Popen(["pw.x", "-in", "pw.in"], cwd=folder, stdout=out,
+                         stderr=subprocess.STDOUT, env=env)
+    out.close()
+    return p
+
+
+@pytest.fixture(scope="module")
+def unstopped(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("pwx") / "run"
+    p = start_pwx(folder)
+    buf = io.StringIO()
+    t0 = time.monotonic()
+    try:
+        rec = follow(folder, stream=buf, poll=0.2, idle=60, output=folder / "live.json")
+        rc = p.wait(timeout=120)
+    finally:
+        if p.poll() is None:
+            p.kill()
+    return {"folder": folder, "record": rec, "rc": rc, "stdout": buf.getvalue(),
+            "seconds": time.monotonic() - t0}
+
+
+@pytest.mark.pwx
+@needs_pwx
+def test_follow_real_pwx_vc_relax_live(unstopped):
+    rec, folder = unstopped["record"], unstopped["folder"]
+    assert unstopped["rc"] == 0
+    assert rec["live"]["ended"] == "end marker: JOB DONE."
+    full = read_run(folder / "pw.out")                     # the whole output, read afterwards
+    assert rec["run"]["n_frames"] == len(full.cells) >= 5
+    assert content(rec) == content(analyze(folder / "pw.out"))
+    assert content(records.read_json(folder / "live.json")) == content(rec)
+    steps = [ln for ln in unstopped["stdout"].splitlines() if ln.startswith("step")]
+    assert len(steps) == len(full.cells)
+    # pw.x relaxes the tetragonal cell toward cubic (see the QE fixture of the same kind)
+    assert rec["summary"]["drift"]["type"] == "cF"
+
+
+@pytest.mark.pwx
+@needs_pwx
+def test_soft_stop_makes_real_pwx_stop_early_and_cleanly(tmp_path, unstopped):
+    folder = tmp_path / "run"
+    p = start_pwx(folder)
+    buf = io.StringIO()
+    try:
+        # 'approaching' fires after a few steps, when the deformation to cF has halved
+        rec = follow(folder / "pw.out", stream=buf, poll=0.1, idle=60, stop_on=["approaching"])
+        rc = p.wait(timeout=120)
+    finally:
+        if p.poll() is None:
+            p.kill()
+    stop = rec["live"]["stop"]
+    assert stop["action"] == "wrote" and stop["code"] == "espresso"
+    # the .EXIT file goes in the run's outdir, named after its prefix (from pw.in)
+    assert Path(stop["path"]) == (folder / "scratch" / "al7.EXIT").resolve()
+    assert "approaching" in stop["text"]
+    text = (folder / "pw.out").read_text()
+    # pw.x 6.7 behaviour (measured): it stops by itself, says why, finishes cleanly, exits 2,
+    # and deletes the .EXIT file it acted on
+    assert "Program stopped by user request" in text
+    assert text.rstrip().endswith("=" * 78) and "JOB DONE." in text[-400:]
+    assert rc == 2
+    assert not Path(stop["path"]).exists() and stop["left_by_code"] is False
+    assert rec["live"]["ended"] == "end marker: JOB DONE."
+    assert rec["run"]["n_frames"] == len(read_run(folder / "pw.out").cells)
+    assert rec["run"]["n_frames"] < unstopped["record"]["run"]["n_frames"]
+    assert "soft stop requested" in buf.getvalue()
+
+
+@pytest.mark.pwx
+@needs_pwx
+def test_follow_dry_run_on_real_pwx_writes_nothing(tmp_path, unstopped):
+    # re-follow the finished unstopped run as if live, from a copy: dry run never writes
+    src = unstopped["folder"]
+    folder = tmp_path / "copy"
+    folder.mkdir()
+    shutil.copy(src / "pw.in", folder)
+    text = (src / "pw.out").read_text()
+    cut = text.index("JOB DONE")                            # as if still running
+    (folder / "pw.out").write_text(text[:cut].rsplit("\n", 1)[0] + "\n")
+    buf = io.StringIO()
+    rec = follow(folder / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["approaching"],
+                 dry_run=True)
+    assert rec["live"]["stop"]["action"] == "dry-run"
+    assert rec["live"]["ended"].startswith("idle")
+    assert sorted(p.name for p in folder.rglob("*")) == ["pw.in", "pw.out"]
+    assert "dry run: would write" in buf.getvalue()
