@@ -17,7 +17,9 @@ stuck with a residual distortion, so the campaign has runs that reach the symmet
 runs that do not.
 
 File layouts: the VASP writers of ``tests/vasp_gen.py`` (modelled on the genuine VASP files in
-ASE's test data), and a pw.x writer templated on the real pw.x 6.7 outputs in ``tests/data/qe/``
+ASE's test data), with each OUTCAR step padded to what a real OUTCAR prints there (5-12
+electronic iterations copied from the genuine ``OUTCAR_example_1``, band energies, the end of the
+SCF loop: ``pad_outcar``), and a pw.x writer templated on the real pw.x 6.7 outputs in ``tests/data/qe/``
 (header, SCF blocks, ``!`` energy, forces, stress, BFGS lines, ``CELL_PARAMETERS`` and
 ``ATOMIC_POSITIONS`` cards, final coordinates, timing, ``JOB DONE``). ``--check N`` reads the
 first N runs of every campaign back with ASE (``ase.io.read(..., index=':')``) and asserts that
@@ -38,6 +40,7 @@ sys.path.insert(0, str(HERE.parent / "tests"))
 from vasp_gen import Trajectory, write_outcar, write_vasprun  # noqa: E402
 
 FORMATS = {"vasprun": "vasprun.xml", "outcar": "OUTCAR", "pwx": "pw.out"}
+GENERATOR = "2"       # bump when the files change: campaigns with another stamp are rewritten
 SIZES = (4, 48, 192)
 
 
@@ -85,6 +88,53 @@ def relaxation(n_atoms: int, steps: int, seed: int) -> Trajectory:
     traj = Trajectory(symbols, cells, frac, energies, forces, s)
     traj.fixed_cell = fixed_cell
     return traj
+
+
+# ------------------------------------------------------------------------------ OUTCAR padding
+_GENUINE_OUTCAR = HERE.parent / "tests" / "data" / "vasp" / "OUTCAR_example_1.gz"
+
+
+def _genuine_blocks():
+    """One electronic-iteration block and the closing lines of an SCF loop, cut from the genuine
+    VASP 5.3.3 OUTCAR in ASE's test data (``OUTCAR_example_1``, copied in tests/data/vasp/)."""
+    import gzip
+    lines = gzip.open(_GENUINE_OUTCAR, "rt").read().split("\n")
+    start = next(i for i, ln in enumerate(lines) if "Iteration    1(   1)" in ln)
+    stop = next(i for i, ln in enumerate(lines) if "Iteration    1(   2)" in ln)
+    abort = next(i for i, ln in enumerate(lines) if "aborting loop because EDIFF" in ln)
+    return lines[start + 1:stop], lines[abort:abort + 10]
+
+
+def pad_outcar(path: Path, traj: Trajectory) -> Path:
+    """Give each ionic step of a ``tests/vasp_gen.py`` OUTCAR what a real OUTCAR prints there:
+    12 (first step) down to 5 electronic iterations (blocks from the genuine file), the Fermi
+    level and band energies at the end of the SCF loop, and the "aborting loop" line. ASE's
+    reader then reads as many lines per step as on a real relaxation."""
+    it_block, closing = _genuine_blocks()
+    nb = 16
+    out = []
+    k = 0
+    rng = np.random.default_rng(len(traj.cells))
+    for line in Path(path).read_text().split("\n"):
+        if "Iteration" in line and "(   1)" in line and line.startswith("---"):
+            k += 1
+            m = max(5, 12 - k // 3)
+            for j in range(1, m):
+                out.append(f"----------------------------------------- Iteration {k:6d}({j:4d})"
+                           "  ---------------------------------------")
+                out += it_block
+            line = line.replace("(   1)", f"({m:4d})")
+        if line.startswith("  FORCE on cell =-STRESS"):
+            bands = np.sort(rng.uniform(-10, 5, nb))
+            out += ["", f" E-fermi : {bands[nb // 2]:8.4f}     XC(G=0):  -1.0024     alpha+bet : "
+                    "-0.5589", "", "", " k-point   1 :       0.0000    0.0000    0.0000",
+                    "  band No.  band energies     occupation"]
+            out += [f"  {b + 1:5d}    {e:9.4f}      {2.0 if b < nb // 2 else 0.0:7.5f}"
+                    for b, e in enumerate(bands)]
+            out += ["", ""] + closing
+        out.append(line)
+    Path(path).write_text("\n".join(out))
+    return Path(path)
 
 
 # ------------------------------------------------------------------------------ pw.x writer
@@ -282,7 +332,8 @@ def write_run(folder: Path, fmt: str, traj: Trajectory) -> Path:
         return write_vasprun(folder / "vasprun.xml", traj, isif=3 if vc else 2,
                              system="invented relaxing supercell")
     if fmt == "outcar":
-        return write_outcar(folder / "OUTCAR", traj, isif=3 if vc else 2)
+        path = write_outcar(folder / "OUTCAR", traj, isif=3 if vc else 2)
+        return pad_outcar(path, traj)
     _pw_input(folder / "pw.in", traj, vc)
     return write_pwout(folder / "pw.out", traj, vc=vc)
 
@@ -295,7 +346,7 @@ def make_campaign(out: Path, fmt: str, n_atoms: int, runs: int, steps: int) -> l
     """Write ``runs`` run folders; an existing campaign of the same shape is kept (a stamp file)."""
     root = campaign_dir(out, fmt, n_atoms)
     stamp = root / ".made"
-    want = f"{runs} {steps}\n"
+    want = f"{runs} {steps} {GENERATOR}\n"
     if stamp.is_file() and stamp.read_text() == want:
         return sorted(root.glob("run-*/" + FORMATS[fmt]))
     paths = []

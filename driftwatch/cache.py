@@ -18,6 +18,7 @@ import fnmatch
 import hashlib
 import json
 import os
+import tempfile
 from pathlib import Path
 
 from . import records
@@ -129,7 +130,7 @@ class Cache:
                 and data.get("key") == key and isinstance(data.get("result"), dict)):
             return None
         res = data["result"]
-        if res.get("ok") is True and not (isinstance(res.get("record"), dict)
+        if res.get("ok") is True and not (isinstance(res.get("record_text"), str)
                                           and isinstance(res.get("structure"), dict)):
             return None
         if res.get("ok") is False and not isinstance(res.get("error"), str):
@@ -137,6 +138,22 @@ class Cache:
         return res
 
     def put(self, key: str, result: dict) -> None:
-        """Store a result atomically (a killed audit leaves the old entry or the new one)."""
-        records.write_text_atomic(self._file(key), json.dumps(
-            {"schema": CACHE_SCHEMA, "key": key, "result": result}, allow_nan=False))
+        """Store a result atomically: a killed audit leaves the old entry or the new one.
+
+        No fsync (unlike records): after a power cut an entry may be empty, which :meth:`get`
+        treats as a miss, so durability is not needed and the audit saves a disk flush per run.
+        """
+        self.folder.mkdir(parents=True, exist_ok=True)
+        target = self._file(key)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=self.folder)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                json.dump({"schema": CACHE_SCHEMA, "key": key, "result": result}, fh,
+                          allow_nan=False)
+            os.replace(tmp, target)
+        except BaseException:
+            try:
+                os.unlink(tmp)
+            except FileNotFoundError:
+                pass
+            raise

@@ -19,9 +19,9 @@
    (a crash in a native library, out of memory) breaks the pool: the runs not finished are re-run
    one at a time so that only the culprit is reported failed.
 5. **Outputs**, each written atomically: ``records/<run>.json`` as results arrive (without the
-   ``timing`` block, which differs between runs, so an interrupted and re-run audit leaves the same
-   bytes as an uninterrupted one; per-run timing stays in the cache entry and the campaign total
-   in ``campaign.json``), ``campaign.csv``, ``runs.db`` (ase.db, one row per run), ``campaign.json``
+   ``timing`` block and spglib's per-frame ``calls`` counter, which differ between two analyses of
+   the same input, so an interrupted and re-run audit leaves the same bytes as an uninterrupted
+   one; per-run timing stays in the cache entry and the campaign total in ``campaign.json``), ``campaign.csv``, ``runs.db`` (ase.db, one row per run), ``campaign.json``
    (the summary returned) and the HTML report. Records of runs no longer in the campaign (or now
    failing) are moved to ``records/stale/``, so ``records/`` holds exactly the current campaign.
 """
@@ -38,12 +38,13 @@ import sys
 import threading
 import time
 from collections import Counter
-from concurrent.futures import Executor, FIRST_COMPLETED, wait
+from concurrent.futures import FIRST_COMPLETED, Executor, wait
 from dataclasses import dataclass
 from pathlib import Path
 
 from . import records
-from .cache import Cache, FileDigests, run_key, versions as _versions
+from .cache import Cache, FileDigests, run_key
+from .cache import versions as _versions
 from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
 
 __all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "DEFAULT_OUTPUT", "tolerance_advice"]
@@ -253,9 +254,11 @@ def _split_volatile(rec: dict) -> dict:
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
     """Analyse one run; never raises (except KeyboardInterrupt/SystemExit).
 
-    Returns ``{"run", "source", "ok": True, "record", "structure", "timing"}`` (record without its
-    ``timing`` block, as plain JSON types; structure = final frame's cell, positions, numbers, pbc)
-    or ``{"run", "source", "ok": False, "error": one line, "cacheable": bool}``.
+    Returns ``{"run", "source", "ok": True, "record_text", "structure", "timing"}`` (the record
+    as the exact JSON text written to ``records/``, without the volatile fields of
+    :func:`_split_volatile`; structure = final frame's cell, positions, numbers, pbc) or
+    ``{"run", "source", "ok": False, "error": one line, "cacheable": bool}``. Serialising here
+    keeps the (pure-Python, indented) JSON encoding in the workers, not in the collecting process.
     """
     try:
         from .adapters import read_run
@@ -266,9 +269,9 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
         structure = {"cell": run.cells[-1].tolist(), "positions": run.positions[-1].tolist(),
                      "numbers": [int(z) for z in run.numbers], "pbc": [bool(p) for p in run.pbc]}
         return {"run": run_id, "source": path, "ok": True,
-                "record": json.loads(records.dumps(rec, indent=None)),
+                "record_text": records.dumps(rec) + "\n",
                 "structure": structure, "timing": json.loads(records.dumps(timing, indent=None))}
-    except Exception as exc:
+    except Exception as exc:  # noqa: BLE001 - a worker must never raise
         # A file that could not be opened (permissions, I/O) or memory exhaustion may go away:
         # do not cache those. Everything else is a property of the inputs and this version.
         transient = isinstance(exc, (MemoryError, OSError)) and not isinstance(exc, DriftwatchError)
@@ -287,8 +290,9 @@ def _chunks(items, size):
 
 
 def _chunk_size(n: int, workers: int) -> int:
-    """About four chunks per worker (load balance), at most 16 runs per chunk (fresh records)."""
-    return max(1, min(16, n // max(1, 4 * workers)))
+    """About four chunks per worker (load balance), at most 4 runs per chunk (records arrive
+    steadily and an interrupt loses little)."""
+    return max(1, min(4, n // max(1, 4 * workers)))
 
 
 def _mp_context():
@@ -301,9 +305,13 @@ def _mp_context():
     return mp.get_context("spawn")
 
 
-def _failed_chunk(chunk, why: str) -> list[dict]:
-    return [{"run": rid, "source": path, "ok": False, "cacheable": False,
-             "error": f"{path}: {why}"} for rid, path in chunk]
+def _failed_chunk(chunk, why: str, broken: bool = False) -> list[dict]:
+    out = [{"run": rid, "source": path, "ok": False, "cacheable": False,
+            "error": f"{path}: {why}"} for rid, path in chunk]
+    if broken:
+        for res in out:
+            res["broken_pool"] = True
+    return out
 
 
 def _drain(executor: Executor, chunks, cfg, *, pass_cfg: bool):
@@ -320,12 +328,23 @@ def _drain(executor: Executor, chunks, cfg, *, pass_cfg: bool):
             for fut in done:
                 try:
                     yield from fut.result()
-                except Exception as exc:
+                except Exception as exc:  # noqa: BLE001 - a lost worker fails its runs only
+                    from concurrent.futures.process import BrokenProcessPool
                     yield from _failed_chunk(futs[fut], f"worker failed ({type(exc).__name__}: "
-                                                        f"{' '.join(str(exc).split())})")
+                                                        f"{' '.join(str(exc).split())})",
+                                             broken=isinstance(exc, BrokenProcessPool))
     finally:
         for fut in pending:
             fut.cancel()
+
+
+def _terminate(ex) -> None:
+    """Stop a process pool's workers at once (results already stored are kept; the rest is
+    recomputed on the next audit)."""
+    ex.shutdown(wait=False, cancel_futures=True)
+    for proc in list((getattr(ex, "_processes", None) or {}).values()):
+        if proc.is_alive():
+            proc.terminate()
 
 
 def _local_pool(todo, cfg, workers):
@@ -339,11 +358,14 @@ def _local_pool(todo, cfg, workers):
     broken = False
     try:
         for res in _drain(ex, _chunks(todo, size), cfg, pass_cfg=False):
-            if "worker failed (BrokenProcessPool" in res.get("error", ""):
+            if res.get("broken_pool"):
                 broken = True
                 continue
             finished.add(res["run"])
             yield res
+    except BaseException:               # interrupted (Ctrl-C, generator closed): stop the workers now
+        _terminate(ex)
+        raise
     finally:
         ex.shutdown(wait=not broken, cancel_futures=True)
     if not broken:
@@ -384,7 +406,7 @@ def _dask(todo, cfg, scheduler):
                           "(dask[distributed])") from exc
     try:
         client = Client(scheduler, timeout="20s")
-    except (OSError, TimeoutError) as exc:
+    except Exception as exc:  # noqa: BLE001 - OSError, TimeoutError, ValueError (bad address)
         raise ConfigError(f"--scheduler {scheduler}: cannot connect ({type(exc).__name__}: {exc})"
                           ) from exc
     try:
@@ -559,14 +581,12 @@ def tolerance_advice(results: list[dict], common: list[float], window=(1e-4, 0.2
     common = sorted(float(s) for s in common)
     per_run = []
     for r in results:
-        rec = r["record"]
-        tol = rec["summary"]["tolerance"]
-        spec = rec["frames"][-1].get("symmetry") or {}
-        grid = spec.get("symprec") or []
+        view = r["view"]
+        tol, grid = view["summary"]["tolerance"], view["grid"]
         if not tol.get("at") or not grid:
             continue
         groups = [tol["at"][_near_key(tol["at"], s)][0] for s in common]
-        per_run.append((r["run"], groups, tol, min(grid), max(grid)))
+        per_run.append((r["run"], groups, tol, grid[0], grid[1]))
     changes = []
     for i in range(len(common) - 1):
         ids = [rid for rid, g, *_ in per_run if g[i] != g[i + 1]]
@@ -606,19 +626,33 @@ def tolerance_advice(results: list[dict], common: list[float], window=(1e-4, 0.2
                reason=f"{len(ok)} of {len(per_run)} runs keep one spglib verdict on the final "
                       f"structure within a factor {SAFE_MARGIN:g} either side of {s:.2g} Å; this is "
                       f"the centre of the widest symprec range ({grid[a]:.2g}-{grid[b]:.2g} Å) where "
-                      f"the most runs are safe. A starting point: check the other runs by hand")
+                      f"the most runs are safe. A starting point for your own check"
+                      + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
     return out
+
+
+def _slim(text: str, run_id: str) -> dict:
+    """What the campaign summary, CSV and database need of a record (the record itself is dropped,
+    so memory stays small for thousands of runs)."""
+    rec = json.loads(text)
+    spec = rec["frames"][-1].get("symmetry") or {}
+    grid = spec.get("symprec") or []
+    return {"summary": rec["summary"], "dimension": rec["geometry"]["dimension"],
+            "flags": [{"code": f["code"], "level": f["level"], "step": f["step"]}
+                      for f in rec["flags"]],
+            "grid": [min(grid), max(grid)] if grid else None,
+            "csv": records.csv_row(rec, run_id), "kv": records.db_key_values(rec, run_id)}
 
 
 def _summary_rows(ok: list[dict], failed: list[dict]) -> list[list[str]]:
     rows = []
     for r in ok:
-        s, rec = r["record"]["summary"], r["record"]
+        s, rec = r["view"]["summary"], r["view"]
         d = s.get("drift") or {}
         drift = (f"{d['type']} {d['initial']:.3g}->{d['final']:.3g}"
                  if d and d.get("initial") is not None and d.get("final") is not None else "-")
         flags = ",".join(sorted({f["code"] for f in rec["flags"]})) or "-"
-        rows.append([r["run"], str(rec["geometry"]["dimension"]) + "D",
+        rows.append([r["run"], str(rec["dimension"]) + "D",
                      f"{s['initial']['type']} -> {s['final']['type']}", drift, s["verdict"], flags])
     for f in failed:
         rows.append([f["run"], "-", "-", "-", "failed", f["error"]])
@@ -632,7 +666,10 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
         shown = [r for r in rows if r[4] not in ("steady", "fixed-cell") or r[5] != "-"]
     widths = [max(len(head[i]), *(len(r[i]) for r in shown)) if shown else len(head[i])
               for i in range(5)]
-    line = lambda r: "  ".join(c.ljust(w) for c, w in zip(r, widths)) + "  " + r[5]  # noqa: E731
+
+    def line(r):
+        return "  ".join(c.ljust(w) for c, w in zip(r, widths)) + "  " + r[5]
+
     print(line(head), file=stream)
     for r in shown:
         print(line(r), file=stream)
@@ -677,7 +714,9 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         config: preset name, YAML path, mapping or loaded config.
         include, exclude: fnmatch globs on run ids and paths.
         workers: local processes (default: the number of cores; 1 = in this process).
-        scheduler: Dask scheduler address (needs ``dask[distributed]``).
+        scheduler: Dask scheduler address (needs ``dask[distributed]``). The workers need
+            driftwatch installed and the runs on a shared filesystem; they are sent absolute paths,
+            so the records of a Dask audit name absolute sources.
         db: ase.db file or URL (default ``OUTPUT/runs.db``).
         use_cache: False: analyse every run again (results are still cached for next time).
         overwrite: allow writing into a folder that is not this campaign's audit.
@@ -686,14 +725,16 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
             "on" or "off".
         fail_on: flag codes or levels; runs where one fires are listed in ``gated``.
         executor: any ``concurrent.futures.Executor`` to run on (overrides workers/scheduler).
-        quiet: True: print no table; None: print unless progress is "off" and stdout is no terminal.
+        quiet: True: print no table; False: print it on stdout; None (default): on stdout when it is
+            a terminal, else on stderr (stdout stays clean for ``--json`` and pipes) unless
+            ``progress`` is "off" (batch jobs: nothing printed).
 
     Returns:
         The campaign summary (schema ``driftwatch/campaign-1``), also written to
         ``OUTPUT/campaign.json``.
     """
     from . import config as _config
-    from .rules import gate
+    from .store import check_lock, db_location
     t0 = time.perf_counter()
     cfg = _config.coerce(config)
     roots = [roots] if isinstance(roots, (str, os.PathLike)) else list(roots)
@@ -701,125 +742,159 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         raise ConfigError("audit: give at least one folder or file to search for runs")
     out = Path(output if output is not None else DEFAULT_OUTPUT)
     roots_abs = sorted(str(Path(r).resolve()) for r in roots)
-    db_name = _db_name(db, out)
-    from .store import check_lock
+    db_name = db_location(db, out)
     check_lock(db_name)                       # fail before hours of analysis, not after
     old_marker = _prepare_output(out, roots_abs, overwrite)
-    rec_dir = out / "records"
-    rec_dir.mkdir(exist_ok=True)
 
-    skip = [out] + ([db_name] if not db_name.startswith(("postgres", "mysql", "mariadb")) else [])
+    skip = [out] + ([] if "://" in db_name else [db_name])
     runs, failed = discover(roots, include=include, exclude=exclude, skip=skip)
-    names = _record_names(runs)
-    cache = Cache(out / ".cache", enabled=use_cache)
-    digests = FileDigests(out / ".cache" / "digests.json")
-    fp, vers = _config.fingerprint(cfg), _versions()
-    results: dict[str, dict] = {}
-    keys: dict[str, str] = {}
-    todo = []
-    for r in runs:
-        try:
-            keys[r.id] = run_key(r.path, r.kind, fp, vers, digests)
-        except OSError as exc:
-            results[r.id] = {"run": r.id, "source": r.path, "ok": False, "cacheable": False,
-                             "error": _one_line(exc, r.path)}
-            continue
-        hit = cache.get(keys[r.id])
-        if hit is not None:
-            results[r.id] = dict(hit, run=r.id, source=r.path, cached=True)
-        else:
-            todo.append((r.id, r.path))
-    digests.save()
-    n_cached = sum(1 for v in results.values() if v.get("cached"))
-
-    def store(res):
-        rid = res["run"]
-        if rid in keys and (res["ok"] or res.get("cacheable")):
-            cache.put(keys[rid], {k: v for k, v in res.items() if k not in ("run", "source")})
-        if res["ok"]:
-            _write_if_changed(_inside(rec_dir, rec_dir / names[rid]),
-                              records.dumps(res["record"]) + "\n")
-        results[rid] = res
-
-    for res in results.values():             # cached records may be missing (deleted by the user)
-        if res["ok"]:
-            _write_if_changed(_inside(rec_dir, rec_dir / names[res["run"]]),
-                              records.dumps(res["record"]) + "\n")
+    if scheduler:      # Dask workers may run elsewhere: give them absolute paths (shared filesystem)
+        runs = [RunSpec(r.id, os.path.abspath(r.path), r.kind) for r in runs]
+    res = _Results(out, _record_names(runs), Cache(out / ".cache", enabled=use_cache))
+    todo = res.lookup(runs, _config.fingerprint(cfg))
+    if (workers or os.cpu_count() or 1) > 1 or scheduler or executor is not None:
+        todo = _largest_first(todo, {r.id: r.kind for r in runs})
     gen, how = _execute(todo, cfg, workers=workers or os.cpu_count() or 1, scheduler=scheduler,
                         executor=executor)
     bar = _Progress(len(runs), _progress_on(progress), initial=len(runs) - len(todo))
     try:
-        for res in gen:
-            store(res)
-            bar.update(res)
+        for r in gen:
+            res.store(r)
+            bar.update(r)
     finally:
         bar.close()
-        close = getattr(gen, "close", None)
-        if close:
-            close()
+        getattr(gen, "close", lambda: None)()
 
-    ok = [results[r.id] for r in runs if results[r.id]["ok"]]
-    failed = failed + [{"run": results[r.id]["run"], "source": r.path,
-                        "error": results[r.id]["error"]} for r in runs if not results[r.id]["ok"]]
-    current = {names[r["run"]] for r in ok}
-    stale = _retire_stale(rec_dir, list(old_marker.get("records", [])), current)
-
-    csv_rows = [records.csv_row(r["record"], r["run"]) for r in ok]
-    csv_rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
-                 for f in failed]
-    records.write_text_atomic(out / "campaign.csv",
-                              _csv_text(sorted(csv_rows, key=lambda row: row["run"])))
-
-    from .store import write_rows
-    rows = [(r["run"], r["structure"], records.db_key_values(r["record"], r["run"])) for r in ok]
-    rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
-                               "dw_error": f["error"][:300]}) for f in failed]
-    db_problems = write_rows(db_name, sorted(rows, key=lambda x: x[0]))
-
-    gated = [{"run": r["run"], "code": f["code"], "step": f["step"]}
-             for r in ok for f in gate(r["record"]["flags"], list(fail_on))]
-    summary = {
-        "schema": SCHEMA,
-        "output": str(out),
-        "roots": [str(r) for r in roots],
-        "runs": len(ok) + len(failed),
-        "analysed": len(todo),
-        "cached": n_cached,
-        "failed": sorted(failed, key=lambda f: f["run"]),
-        "gated": gated,
-        "flag_counts": dict(sorted(Counter(c for r in ok for c in
-                                           {f["code"] for f in r["record"]["flags"]}).items())),
-        "verdict_counts": dict(sorted(Counter([r["record"]["summary"]["verdict"] for r in ok]
-                                              + ["failed"] * len(failed)).items())),
-        "tolerance": tolerance_advice(ok, cfg["report"]["common_symprecs"]),
-        "records": {r["run"]: f"records/{names[r['run']]}" for r in ok},
-        "stale_records": [f"records/stale/{n}" for n in stale],
-        "db": db_name,
-        "db_problems": db_problems,
-        "executor": how,
-        "analysis_s": sum((r.get("timing") or {}).get("total_s", 0.0) for r in ok
-                          if not r.get("cached")),
-        "elapsed_s": 0.0,
-    }
+    ok = [res.results[r.id] for r in runs if res.results[r.id]["ok"]]
+    failed = failed + [{"run": r.id, "source": r.path, "error": res.results[r.id]["error"]}
+                       for r in runs if not res.results[r.id]["ok"]]
+    current = {res.names[r["run"]] for r in ok}
+    stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
+    db_problems = _write_tables(out, db_name, ok, failed)
+    summary = _summary(out, roots, ok, failed, cfg, fail_on, res, len(todo), how, db_name,
+                       db_problems, stale)
     summary["elapsed_s"] = time.perf_counter() - t0
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     _write_marker(out, roots_abs, sorted(current))
     if report:
-        _build_report(out, summary)
-    summary["elapsed_s"] = time.perf_counter() - t0
-    records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-    if quiet is None:
-        quiet = progress in ("off", False) and not getattr(sys.stdout, "isatty", lambda: False)()
-    if not quiet:
+        summary["report"] = str(_build_report(out, summary))
+        summary["elapsed_s"] = time.perf_counter() - t0
+        records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
+    tty = getattr(sys.stdout, "isatty", lambda: False)()
+    if quiet is False or (quiet is None and tty):
         _print_table(summary, _summary_rows(ok, failed), sys.stdout)
+    elif quiet is None and progress not in ("off", False):
+        # stdout is a pipe or file (maybe the JSON of --json): keep it clean, table on stderr
+        _print_table(summary, _summary_rows(ok, failed), sys.stderr)
     return summary
 
 
-def _db_name(db, out: Path) -> str:
-    from .store import db_location
-    return db_location(db, out)
+def _largest_first(todo, kinds):
+    """Order runs by input size, largest first, so a long run does not start last (parallel only;
+    records and tables do not depend on the order)."""
+    from .cache import run_inputs
+
+    def size(item):
+        try:
+            return sum(f.stat().st_size for f in run_inputs(item[1], kinds[item[0]]))
+        except OSError:
+            return 0
+    return sorted(todo, key=lambda item: (-size(item), item[0]))
 
 
-def _build_report(out: Path, summary: dict) -> None:
+class _Results:
+    """Results by run id: cache lookups, cache writes, record files, slim in-memory views."""
+
+    def __init__(self, out: Path, names: dict[str, str], cache: Cache):
+        self.rec_dir = out / "records"
+        self.rec_dir.mkdir(exist_ok=True)
+        self.names, self.cache = names, cache
+        self.digests = FileDigests(out / ".cache" / "digests.json")
+        self.results: dict[str, dict] = {}
+        self.keys: dict[str, str] = {}
+        self.cached = 0
+
+    def lookup(self, runs: list[RunSpec], fingerprint: str) -> list[tuple[str, str]]:
+        """Take cached results; return the (run id, path) pairs left to analyse."""
+        vers, todo = _versions(), []
+        for r in runs:
+            try:
+                self.keys[r.id] = run_key(r.path, r.kind, fingerprint, vers, self.digests)
+            except OSError as exc:
+                self.keep({"run": r.id, "source": r.path, "ok": False, "cacheable": False,
+                           "error": _one_line(exc, r.path)})
+                continue
+            hit = self.cache.get(self.keys[r.id])
+            if hit is None:
+                todo.append((r.id, r.path))
+            else:
+                self.cached += 1
+                self.keep(dict(hit, run=r.id, source=r.path, cached=True))
+        self.digests.save()
+        return todo
+
+    def keep(self, res: dict) -> None:
+        """Write the record (if its bytes changed); keep a slim view, never the whole record."""
+        rid = res["run"]
+        if res["ok"]:
+            _write_if_changed(_inside(self.rec_dir, self.rec_dir / self.names[rid]),
+                              res["record_text"])
+            res = dict(res, view=_slim(res.pop("record_text"), rid))
+        self.results[rid] = res
+
+    def store(self, res: dict) -> None:
+        """A fresh result: cache it (deterministic failures too), then keep it."""
+        rid = res["run"]
+        if rid in self.keys and (res["ok"] or res.get("cacheable")):
+            self.cache.put(self.keys[rid], {k: v for k, v in res.items()
+                                            if k not in ("run", "source")})
+        self.keep(res)
+
+
+def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict]) -> list[str]:
+    """campaign.csv and the database rows (failed runs too: an empty structure, their error)."""
+    from .store import write_rows
+    rows = [r["view"]["csv"] for r in ok]
+    rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
+             for f in failed]
+    records.write_text_atomic(out / "campaign.csv",
+                              _csv_text(sorted(rows, key=lambda row: row["run"])))
+    db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
+    db_rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
+                                  "dw_error": f["error"][:300]}) for f in failed]
+    return write_rows(db_name, sorted(db_rows, key=lambda x: x[0]))
+
+
+def _summary(out, roots, ok, failed, cfg, fail_on, res, n_analysed, how, db_name, db_problems,
+             stale) -> dict:
+    from .rules import gate
+    return {
+        "schema": SCHEMA,
+        "output": str(out),
+        "roots": [str(r) for r in roots],
+        "runs": len(ok) + len(failed),
+        "analysed": n_analysed,
+        "cached": res.cached,
+        "failed": sorted(failed, key=lambda f: f["run"]),
+        "gated": [{"run": r["run"], "code": f["code"], "step": f["step"]}
+                  for r in ok for f in gate(r["view"]["flags"], list(fail_on))],
+        "flag_counts": dict(sorted(Counter(c for r in ok for c in
+                                           {f["code"] for f in r["view"]["flags"]}).items())),
+        "verdict_counts": dict(sorted(Counter([r["view"]["summary"]["verdict"] for r in ok]
+                                              + ["failed"] * len(failed)).items())),
+        "tolerance": tolerance_advice(ok, cfg["report"]["common_symprecs"]),
+        "records": {r["run"]: f"records/{res.names[r['run']]}" for r in ok},
+        "stale_records": [f"records/stale/{n}" for n in stale],
+        "db": db_name,
+        "db_problems": db_problems,
+        "executor": how,
+        "report": None,
+        "analysis_s": sum((r.get("timing") or {}).get("total_s", 0.0) for r in ok
+                          if not r.get("cached")),
+        "elapsed_s": 0.0,
+    }
+
+
+def _build_report(out: Path, summary: dict) -> Path:
     from .report import build
-    build([out / "records"], out / "report", overwrite=True, campaign=summary)
+    return build([out / "records"], out / "report", overwrite=True, campaign=summary)

@@ -76,14 +76,31 @@ class Layer:
     """Å, mean position of the layer's atoms along ``normal`` (stacking order)."""
 
 
+_MAX_LENGTH = 1e50
+"""Å. Longer cell vectors are refused: their cross products overflow in double precision."""
+
+
 def _frames(cells, positions=None):
-    cells = np.asarray(cells, float)
-    single = cells.ndim == 2
-    cells = cells.reshape(-1, 3, 3)
+    try:
+        cells = np.asarray(cells, float)
+        single = cells.ndim == 2
+        cells = cells.reshape(-1, 3, 3)
+    except (TypeError, ValueError) as exc:
+        raise GeometryError(f"cells must be numeric (n, 3, 3) or (3, 3) arrays, Å: {exc}") from None
+    if not np.isfinite(cells).all():
+        raise GeometryError("cell contains non-finite numbers (NaN or inf)")
+    if np.abs(cells).max(initial=0.0) > _MAX_LENGTH:
+        raise GeometryError(f"cell vector component above {_MAX_LENGTH:g} Å: not a physical cell")
     if positions is None:
         return cells, None, single
-    pos = np.asarray(positions, float)
-    pos = pos.reshape(-1, pos.shape[-2], 3)
+    try:
+        pos = np.asarray(positions, float)
+        pos = pos.reshape(-1, pos.shape[-2], 3)
+    except (TypeError, ValueError, IndexError) as exc:
+        raise GeometryError(f"positions must be numeric (n, N, 3) or (N, 3) arrays, Å: {exc}") \
+            from None
+    if not np.isfinite(pos).all():
+        raise GeometryError("positions contain non-finite numbers (NaN or inf)")
     if len(pos) != len(cells):
         raise GeometryError(f"{len(cells)} cells but {len(pos)} position frames")
     return cells, pos, single

@@ -99,6 +99,9 @@ _MAXIT = 10000
 _COLLINEAR = 1e-12  # |det| <= this * |a| |b|: collinear
 _SELLING_TOL = 1e-13  # v_i.v_j > this * max|v|^2 triggers a Selling step
 _NOISE = 8 * np.finfo(float).eps  # conorm rounding bound, see _superbase
+LENGTH_RANGE = (1e-50, 1e50)
+"""Å. Basis vectors outside this range are refused (their conorms and the squared distances
+built from them would underflow or overflow in double precision); every real cell is far inside."""
 _S2 = np.sqrt(2.0)
 
 
@@ -135,6 +138,14 @@ def _scaled(arr, single):
     if not m.all():
         i = int(np.flatnonzero(m == 0)[0])
         raise LatticeError(f"{_where(i, single)}: both basis vectors are zero")
+    lengths = np.sqrt(((arr / m[:, None, None]) ** 2).sum(axis=2)) * m[:, None]  # no overflow
+    out = ((lengths > 0) & (lengths < LENGTH_RANGE[0])) | (lengths > LENGTH_RANGE[1])
+    if out.any():
+        i, k = (int(v) for v in np.argwhere(out)[0])
+        raise LatticeError(f"{_where(i, single)}: basis vector {k} has length "
+                           f"{lengths[i, k]:.3g} Å, outside {LENGTH_RANGE[0]:g}..{LENGTH_RANGE[1]:g} "
+                           f"Å (squares of such lengths lose precision or overflow in double "
+                           f"precision)")
     # exact power-of-two scaling (no rounding): tiny and huge cells behave alike
     scale = np.exp2(np.round(np.log2(m)))
     raw, arr = arr, arr / scale[:, None, None]

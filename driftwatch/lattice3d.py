@@ -178,6 +178,9 @@ _SELLING_TOL = 1e-13  # v_i.v_j > this * max|v|^2 triggers a Selling step
 _LEX_TOL = 1e-9     # canonical form: conorm tie classes (fraction of the largest conorm)
 _MAXIT = 2000
 _EPS = np.finfo(float).eps
+LENGTH_RANGE = (1e-50, 1e50)
+"""Å. Cell vectors outside this range are refused (conorms and squared distances built from them
+would underflow or overflow in double precision); every real cell is far inside."""
 _CHUNK = 256  # frames per block in the cone distances (cache-sized)
 
 
@@ -283,7 +286,11 @@ def _pattern_table():
 # ----------------------------------------------------------------------------- input
 
 def _frames(bases):
-    arr = np.asarray(bases, dtype=float)
+    try:
+        arr = np.asarray(bases, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise LatticeError(f"3D bases must be numeric arrays of shape (n, 3, 3) or (3, 3): "
+                           f"{exc}") from None
     if arr.shape == (3, 3):
         return arr[None], True
     if arr.ndim == 3 and arr.shape[1:] == (3, 3):
@@ -302,11 +309,19 @@ def _validate(arr, single):
         i = int(np.flatnonzero(~finite)[0])
         raise LatticeError(f"{_where(i, single)}: cell contains non-finite numbers "
                            f"(NaN or inf): {arr[i].tolist()}")
-    lengths = np.sqrt(np.einsum("nij,nij->ni", arr, arr))
+    m = np.abs(arr).max(axis=2, keepdims=True)
+    lengths = np.sqrt(np.einsum("nij,nij->ni", arr / np.where(m > 0, m, 1.0),
+                                arr / np.where(m > 0, m, 1.0))) * m[..., 0]   # no overflow
     zero = lengths == 0
     if zero.any():
         i, k = (int(v) for v in np.argwhere(zero)[0])
         raise LatticeError(f"{_where(i, single)}: cell vector {k} is zero: {arr[i].tolist()}")
+    out = (lengths < LENGTH_RANGE[0]) | (lengths > LENGTH_RANGE[1])
+    if out.any():
+        i, k = (int(v) for v in np.argwhere(out)[0])
+        raise LatticeError(f"{_where(i, single)}: cell vector {k} has length {lengths[i, k]:.3g} Å, "
+                           f"outside {LENGTH_RANGE[0]:g}..{LENGTH_RANGE[1]:g} Å (squares of such "
+                           f"lengths lose precision or overflow in double precision)")
     det = np.linalg.det(arr)
     bad = np.abs(det) <= _SINGULAR * lengths.prod(axis=1)
     if bad.any():

@@ -19,6 +19,8 @@ __all__ = ["SCHEMA", "new_record", "write_json", "read_json", "write_text_atomic
            "csv_row", "CSV_COLUMNS", "db_key_values", "safe_name"]
 
 SCHEMA = "driftwatch/run-1"
+_UMASK = os.umask(0)
+os.umask(_UMASK)
 
 
 def _default(obj):
@@ -62,6 +64,7 @@ def write_text_atomic(path, text: str) -> Path:
             fh.write(text)
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the file the user's usual mode
         os.replace(tmp, path)
     except BaseException:
         try:

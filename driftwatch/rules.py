@@ -15,8 +15,9 @@ snapped            warning ends within ``rules.snapped.within`` of a type it sta
                            from which it stays within)
 approaching        info    the deformation to a type fell by ``fraction`` of its initial value (from at
                            least ``start_away``) without reaching it
-handedness-flip    warning a layer's 2D lattice changes sign while its mirror deformation is above
-                           ``min_chiral`` on both sides
+handedness-flip    warning a layer's 2D lattice ends with the opposite sign to its start, its mirror
+                           deformation above ``min_chiral`` at the start and at the end (sign changes of
+                           a lattice settling onto a mirror-symmetric one are not flagged)
 tolerance-sensitive warning spglib's group for the final frame changes between ``low`` and ``high``
 spglib-overcall    warning spglib's lattice-only type for the final frame at ``symprec`` is one the
                            lattice is more than ``far`` (deformation) from
@@ -151,17 +152,19 @@ def _approaching(frames, D, types, r, snapped_within):
 
 
 def _handedness(frames, r):
+    """The run ends with the opposite handedness to its start, clearly chiral at both ends."""
     sign = np.array([f["sign"] for f in frames])
     chiral = np.array([f["deformation"]["mirror"] for f in frames])
     sig = np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
-    if sig.size == 0 or len(set(sign[sig])) < 2:
+    if sig.size == 0 or sig[-1] != len(frames) - 1 or sign[sig[0]] == sign[-1]:
         return []
-    first = sign[sig[0]]
-    k = int(sig[sign[sig] != first][0])
-    msg = (f"the layer's 2D lattice changed handedness ({'+' if first > 0 else '-'} to "
-           f"{'-' if first > 0 else '+'}) at step {frames[k]['step']}; it passed through a "
-           f"mirror-symmetric lattice on the way")
-    return [_flag("handedness-flip", k, frames, msg, None, float(chiral[k]), r["min_chiral"])]
+    first, last = int(sign[sig[0]]), int(sign[-1])
+    k = int(np.nonzero(sign != last)[0][-1] + 1)
+    msg = (f"the layer's 2D lattice ends with the opposite handedness ({'+' if first > 0 else '-'} at "
+           f"the start, {'+' if last > 0 else '-'} from step {frames[k]['step']}; mirror deformation "
+           f"{chiral[sig[0]]:.3g} Å and {chiral[-1]:.3g} Å): it passed through a mirror-symmetric "
+           f"lattice on the way")
+    return [_flag("handedness-flip", k, frames, msg, None, float(chiral[-1]), r["min_chiral"])]
 
 
 def _tolerance_sensitive(frames, r):
@@ -232,7 +235,10 @@ def _code_imposed(record, frames):
     cs = record["run"].get("code_settings") or {}
     code = cs.get("code")
     k = len(frames) - 1
-    if code == "espresso" and not cs.get("nosym") and (cs.get("nsym") or 0) > 1:
+    # pw.x counts point operations; a one-atom slab always has 4 (2/m with the layer mirror) and any
+    # bulk lattice 2 (inversion), which constrain nothing: only more than that can hold a symmetry.
+    floor = 4 if record["geometry"]["dimension"] == 2 else 2
+    if code == "espresso" and not cs.get("nosym") and (cs.get("nsym") or 0) > floor:
         msg = (f"pw.x ran with symmetry on and kept {cs['nsym']} symmetry operations of the starting "
                f"structure (nosym=.false.): the final symmetry may be held by the code, not found by "
                f"the relaxation; rerun with nosym=.true. to test it")

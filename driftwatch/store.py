@@ -70,6 +70,14 @@ def _atoms(structure: dict | None):
                  cell=structure["cell"], pbc=structure["pbc"])
 
 
+def _rows_with_run_id(db):
+    """Every row that has a ``run_id`` (one pass: a per-run query is a full scan, O(n^2))."""
+    try:
+        return list(db.select("run_id", include_data=False, columns=["id", "key_value_pairs"]))
+    except TypeError:        # backends without the columns argument
+        return list(db.select("run_id", include_data=False))
+
+
 def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str]:
     """Upsert rows ``(run_id, structure or None, key_value_pairs)`` in one transaction.
 
@@ -83,10 +91,11 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
     problems = []
     try:
         with db:
+            wanted = {run_id for run_id, _, _ in rows}
+            old = [row.id for row in _rows_with_run_id(db) if row.get("run_id") in wanted]
+            if old:
+                db.delete(old)
             for run_id, structure, kvp in rows:
-                old = [row.id for row in db.select(run_id=run_id)]
-                if old:
-                    db.delete(old)
                 try:
                     db.write(_atoms(structure), key_value_pairs=kvp)
                 except (ValueError, KeyError, TypeError) as exc:

@@ -183,6 +183,15 @@ def _prepare(cell, positions, numbers, vacuum_axis):
     numbers = np.asarray(numbers)
     if cell.shape != (3, 3) or not np.all(np.isfinite(cell)):
         raise LatticeError(f"cell must be a finite (3, 3) array of row vectors in Å, got shape {cell.shape}")
+    if vacuum_axis in (0, 1, 2) and not np.any(cell[vacuum_axis]) and positions.ndim == 2 \
+            and positions.shape[-1:] == (3,) and np.all(np.isfinite(positions)):
+        # ASE's 2D convention (pbc False along a zero vacuum vector): give spglib a slab period
+        cell = cell.copy()
+        normal = np.cross(cell[(vacuum_axis + 1) % 3], cell[(vacuum_axis + 2) % 3])
+        if np.linalg.norm(normal) > 0:
+            normal = normal / np.linalg.norm(normal)
+            heights = positions @ normal
+            cell[vacuum_axis] = normal * (float(np.ptp(heights)) + 20.0)
     volume = abs(np.linalg.det(cell))
     if volume < 1e-9 * max(1.0, float(np.abs(cell).max())) ** 3:
         raise LatticeError("cell is singular (zero volume): its vectors are coplanar or zero")

@@ -17,11 +17,12 @@ import sys
 import time
 from pathlib import Path
 
+import ase
+import ase.db
+import ase.io
 import numpy as np
 import pytest
 from ase import Atoms
-import ase.db
-import ase.io
 
 from driftwatch import records
 from driftwatch.campaign import MARKER, RunSpec, _inside, _record_names, audit, discover
@@ -96,6 +97,22 @@ def test_discovery_counts_run_folders_once_and_skips_hidden_and_unknown(tmp_path
                                          "camp/qe/layer_oblique_to_hex"]
 
 
+def test_vasp_run_folder_counts_once(tmp_path):
+    """Genuine VASP outputs shipped with ASE (ase/test/testdata/vasp) in a run folder."""
+    vasp = Path(ase.__file__).parent / "test" / "testdata" / "vasp"
+    if not (vasp / "OUTCAR_example_1").is_file():
+        pytest.skip("ASE's VASP test data is not installed")
+    run = tmp_path / "camp" / "Si-run"
+    run.mkdir(parents=True)
+    shutil.copy(vasp / "OUTCAR_example_1", run / "OUTCAR")
+    shutil.copy(vasp / "vasprun_pstress.xml", run / "vasprun.xml")
+    write_layer(tmp_path / "camp" / "L.traj")
+    runs, failed = discover([tmp_path / "camp"])
+    assert [(r.id, r.kind) for r in runs] == [("camp/L.traj", "file"), ("camp/Si-run", "folder")]
+    s = run_audit([tmp_path / "camp"], tmp_path / "out")
+    assert s["failed"] == [] and s["runs"] == 2
+
+
 def test_discovery_follows_symlinks_once_and_ends_on_loops(tmp_path):
     camp = make_campaign(tmp_path, qe=False)
     (camp / "layers" / "back").symlink_to(camp, target_is_directory=True)   # a loop
@@ -157,8 +174,16 @@ def audited(tmp_path_factory):
     base = tmp_path_factory.mktemp("audit")
     camp = make_campaign(base)
     out = base / "out"
-    summary = run_audit([camp], out, fail_on=["snapped"])
+    summary = run_audit([camp], out, fail_on=["snapped"], report=True)
     return camp, out, summary
+
+
+def test_report_is_built_from_the_records(audited):
+    _, out, s = audited
+    index = Path(s["report"])
+    assert index == out / "report" / "index.html" and index.is_file()
+    html = index.read_text(encoding="utf-8")
+    assert "garbage.traj" in html            # failed runs are shown with the campaign summary
 
 
 def test_bad_runs_are_listed_and_do_not_stop_the_audit(audited):
@@ -213,7 +238,7 @@ def test_campaign_csv_has_one_row_per_run(audited):
 
 
 def test_ase_db_rows_queryable_with_ase_tools(audited):
-    camp, out, s = audited
+    camp, out, _ = audited
     db = ase.db.connect(out / "runs.db")
     assert db.count() == 6
     snapped = {row.run_id for row in db.select("verdict=snapped")}
@@ -229,7 +254,7 @@ def test_ase_db_rows_queryable_with_ase_tools(audited):
     assert ds.number == 191
     # ASE's own command line (python -m ase db) reads the same rows
     cli = subprocess.run([sys.executable, "-m", "ase", "db", str(out / "runs.db"), "verdict=snapped",
-                          "-c", "+run_id"], capture_output=True, text=True, timeout=120)
+                          "-c", "+run_id"], capture_output=True, text=True, timeout=120, check=False)
     assert cli.returncode == 0, cli.stderr
     assert "camp/layers/L-hex.traj" in cli.stdout and "camp/qe/layer_oblique_to_hex" in cli.stdout
     assert "L-obl" not in cli.stdout
@@ -315,7 +340,8 @@ def test_stale_database_lock_fails_fast_with_a_message(tmp_path):
     t0 = time.monotonic()
     cli = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp / "layers"), "-o",
                           str(tmp_path / "out"), "--db", str(db), "--no-report", "--progress", "off"],
-                         capture_output=True, text=True, timeout=60, cwd=REPO)
+                         capture_output=True, text=True, timeout=60, cwd=REPO,
+                         check=False)
     assert time.monotonic() - t0 < 30
     assert cli.returncode == 1 and str(lock) in cli.stderr and "delete it" in cli.stderr
     assert len(cli.stderr.strip().splitlines()) == 1
@@ -378,6 +404,11 @@ def test_process_pool_and_dask_cluster_give_the_same_records(tmp_path):
                       dashboard_address=None) as cluster:
         dask = run_audit([camp], tmp_path / "dask", scheduler=cluster.scheduler_address)
     assert dask["executor"].startswith("dask ")
+    from concurrent.futures import ProcessPoolExecutor      # any Executor object, passed in
+    with ProcessPoolExecutor(max_workers=2) as ex:
+        given = run_audit([camp], tmp_path / "given", executor=ex)
+    assert given["executor"] == "ProcessPoolExecutor"
+    assert record_bytes(tmp_path / "given") == record_bytes(tmp_path / "serial")
     ref = record_bytes(tmp_path / "serial")
     assert len(ref) == 4
     assert record_bytes(tmp_path / "pool") == ref and record_bytes(tmp_path / "dask") == ref
@@ -390,11 +421,13 @@ def test_progress_and_summary_table(tmp_path, capsys):
     run_audit([camp / "layers"], tmp_path / "out", progress="on")
     got = capsys.readouterr()
     assert "driftwatch audit" in got.err                    # the bar (tqdm) on stderr
-    lines = got.out.splitlines()
+    assert got.out == ""               # stdout is no terminal here: it stays clean (--json, pipes)
+    run_audit([camp / "layers"], tmp_path / "out", quiet=False)
+    lines = capsys.readouterr().out.splitlines()
     assert lines[0].split()[:2] == ["run", "dim"]
     assert any(ln.startswith("layers/L-hex.traj") and "snapped" in ln and "mp -> hp" in ln
                for ln in lines)
-    assert any(ln.startswith("2 runs (2 analysed, 0 from cache, 0 failed)") for ln in lines)
+    assert any(ln.startswith("2 runs (0 analysed, 2 from cache, 0 failed)") for ln in lines)
     run_audit([camp / "layers"], tmp_path / "out", progress="off")   # batch: stdout stays clean
     assert capsys.readouterr().out == ""
 

@@ -61,8 +61,8 @@ def _hostile(rec):
         f["message"] = f["message"] + " " + PWNED_IMG
     for fr in r["frames"]:
         spec = fr.get("symmetry")
-        if spec:  # an unbalanced mathtext string: matplotlib would raise if it parsed it
-            spec["group_symbol"] = [s + r"$\frac{" for s in spec["group_symbol"]]
+        if spec:  # an unbalanced mathtext string (matplotlib would raise if it parsed it) and markup
+            spec["group_symbol"] = [s + r"$\frac{<i>g</i>" for s in spec["group_symbol"]]
     return r
 
 
@@ -227,6 +227,15 @@ def test_overwrite_protection(report, tmp_path, real_records):
     assert not (out / "index.html").exists() and keep.read_text() == "user data"
     assert build([rec], out, overwrite=True) == out / "index.html"
     assert keep.read_text() == "user data"
+    # a rebuild drops run pages of the earlier build that it no longer has; other files stay
+    (old,) = (out / "runs").glob("*.html")
+    mine = out / "runs" / "notes.html"
+    mine.write_text("<p>user page</p>")
+    other = copy.deepcopy(rec)
+    other["run"]["run_dir"] = "/campaign/another_run"
+    build([other], out, overwrite=True)
+    assert not old.exists() and mine.exists() and keep.exists()
+    assert [p.name for p in (out / "runs").glob("*.html") if p != mine] == ["campaign_another_run.html"]
     (tmp_path / "empty").mkdir()
     assert build([rec], tmp_path / "empty").is_file()  # an existing empty folder is fine
     f = tmp_path / "afile"
@@ -283,19 +292,24 @@ def test_campaign_changes_match_spglib(real_records):
             assert all(b <= lo * (1 + 1e-12) or a >= hi * (1 - 1e-12) for a, b in bps)
 
 
-def test_campaign_advice_agrees_with_audit(real_records, tmp_path):
-    # the index quotes the audit's own advice (driftwatch.campaign.tolerance_advice): same value on
-    # both paths, and its consecutive-pair change counts equal the report's own table
-    from driftwatch.campaign import tolerance_advice
-    common = [1e-5, 1e-3, 1e-2, 0.1]
-    adv = tolerance_advice([{"run": n, "record": r} for n, r in real_records.items()], common)
-    table = camp.tolerance_table(list(real_records.items()), common)
+def test_campaign_advice_agrees_with_audit(tmp_path):
+    # a real audit of the pw.x runs (driftwatch.campaign.audit, which builds this report) and a
+    # rebuild from its records quote the same campaign symprec as the audit's campaign.json; the
+    # audit's consecutive-pair change counts equal the report's own table
+    from driftwatch.campaign import audit
+    out = tmp_path / "audit"
+    summary = audit([QE], out, progress="off", quiet=True, use_cache=False)
+    adv = summary["tolerance"]
+    assert adv["recommended_symprec"] is not None
+    expect = f"symprec ≈ {adv['recommended_symprec']:.3g}&nbsp;Å</span> for this campaign"
+    assert expect in (out / "report" / "index.html").read_text(encoding="utf-8")
+    rebuilt = build([out / "records"], tmp_path / "rebuilt")  # no summary: computed again
+    assert expect in rebuilt.read_text(encoding="utf-8")
+    recs = [(p.stem, records.read_json(p)) for p in sorted((out / "records").glob("*.json"))]
+    table = camp.tolerance_table(recs, adv["symprecs"])
     mine = {(c["a"], c["b"]): len(c["runs"]) for c in table["changes"]}
     for c in adv["changes"]:
         assert mine[(c["low"], c["high"])] == c["runs"]
-    index = build(list(real_records.values()), tmp_path / "site")
-    text = index.read_text(encoding="utf-8")
-    assert f"symprec ≈ {adv['recommended_symprec']:.3g}&nbsp;Å</span> for this campaign" in text
 
 
 def test_campaign_summary_failed_runs_listed_escaped(real_records, tmp_path):

@@ -21,6 +21,7 @@ from __future__ import annotations
 import fnmatch
 import importlib
 import inspect
+import os
 import re
 import warnings
 from dataclasses import dataclass
@@ -126,6 +127,9 @@ def _known() -> str:
 def _detect_file(path: Path) -> str:
     head = peek(path, PEEK_BYTES)
     if not head:
+        if path.stat().st_size:
+            raise InputError(path, "compressed file is corrupt or cut before any data "
+                                   "(nothing could be decompressed)")
         raise InputError(path, "empty file")
     for f in _formats.values():
         if f.magic is not None and f.magic.search(head):
@@ -155,10 +159,22 @@ def _resolve(path, format=None) -> _Pick:
         if Path(base).exists():
             path = Path(base)
     if not path.exists():
+        if path.is_symlink():
+            raise InputError(path, "broken symbolic link (its target is missing, or the link "
+                                   "points back to itself)")
         raise InputError(path, "no such file or directory")
     if path.is_dir():
+        try:
+            next(iter(os.scandir(path)), None)
+        except OSError as exc:
+            raise InputError(path, f"cannot list folder ({exc.strerror or exc})") from None
         pick = _pick_folder(path, format)
     else:
+        try:
+            with open(path, "rb"):
+                pass
+        except OSError as exc:
+            raise InputError(path, f"cannot open ({exc.strerror or exc})") from None
         if format is None:
             fmt = _detect_file(path)
         else:

@@ -162,11 +162,45 @@ def checked(frames: Iterable, path) -> Iterator[Frame]:
             raise InputError(path, f"non-finite cell at step {step}")
         if not np.isfinite(pos).all():
             raise InputError(path, f"non-finite positions at step {step}")
+        _check_cell(cell, fr.pbc, path, step)
         if fr.forces is not None and np.shape(fr.forces) != pos.shape:
             raise InputError(path, f"forces of shape {np.shape(fr.forces)} at step {step}")
         if fr.stress is not None and np.shape(fr.stress) != (6,):
             raise InputError(path, f"stress of shape {np.shape(fr.stress)} at step {step}")
         yield fr
+
+
+CELL_LENGTH_RANGE = (0.1, 1e5)
+"""Å. A periodic cell vector outside this range is refused as implausible (usually a wrong length
+unit, e.g. metres or Bohr x 1e10): the Å tolerances of spglib and of the vacuum test would not mean
+what they say. The lattice mathematics itself is scale-covariant far beyond this range."""
+
+
+def _check_cell(cell, pbc, path, step) -> None:
+    """Refuse singular and implausibly sized cells (along periodic axes) with a one-line reason."""
+    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
+    lengths = np.sqrt((cell * cell).sum(axis=1))
+    lo, hi = CELL_LENGTH_RANGE
+    for k in range(3):
+        if not pbc[k]:
+            continue
+        if lengths[k] == 0:
+            raise InputError(path, f"cell vector {k} is zero at step {step} (a periodic axis)")
+        if not lo <= lengths[k] <= hi:
+            raise InputError(path, f"cell vector {k} is {lengths[k]:.3g} Å long at step {step}: "
+                                   f"implausible for a crystal (allowed {lo:g}..{hi:g} Å; a wrong "
+                                   f"length unit?)")
+    per = [k for k in range(3) if pbc[k]]
+    if len(per) == 3:
+        vol = abs(float(np.linalg.det(cell)))
+        if vol <= 1e-10 * float(np.prod(lengths)):
+            raise InputError(path, f"singular cell at step {step}: the cell vectors are coplanar "
+                                   f"(volume {vol:.3g} Å^3)")
+    elif len(per) == 2:
+        area = float(np.linalg.norm(np.cross(cell[per[0]], cell[per[1]])))
+        if area <= 1e-10 * lengths[per[0]] * lengths[per[1]]:
+            raise InputError(path, f"degenerate layer cell at step {step}: the two periodic cell "
+                                   f"vectors are parallel (area {area:.3g} Å^2)")
 
 
 def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,

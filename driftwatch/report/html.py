@@ -170,6 +170,9 @@ footer { color: var(--muted); font-size: 12px; margin-top: 40px; border-top: 1px
 """
 
 
+_GENERATOR = '<meta name="generator" content="driftwatch report">'
+
+
 def e(x) -> str:
     """HTML-escaped text of anything (None -> empty)."""
     return "" if x is None else html.escape(str(x), quote=True)
@@ -214,6 +217,7 @@ def _page(title, header, body, *, crumb="", script=False):
         f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">\n'
         '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
         '<meta name="referrer" content="no-referrer">\n'
+        f"{_GENERATOR}\n"
         f"<title>{e(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
         f'<header class="top">{crumb}{header}</header>\n<main>\n{body}\n'
         f"<footer>driftwatch static report, built from run records; no network access is needed to "
@@ -403,7 +407,7 @@ def _summary_section(rec):
         vs = geo.get("viewing_side")
         if vs:
             rows.append(("viewing side (sign is seen from)",
-                         "(" + ", ".join(f"{float(x):.3g}" for x in vs) + ")"))
+                         "(" + ", ".join(f"{float(x) + 0.0:.3g}" for x in vs) + ")"))
     rows.append(("source", f"<span class=\"mono\">{e(run.get('source'))}</span> "
                            f"(format {e(run.get('format'))})"))
     body = _kv(rows)
@@ -521,7 +525,9 @@ def _plots_section(rec):
                    "(tp) sits at the bottom centre and hexagonal (hp) at the top. Bottom and slanted "
                    "edges appear once per half; a path crossing them continues from the mirror point on "
                    "the other half (dotted). Frames with sign 0 are drawn in the half of the step "
-                   "before them."))
+                   "before them. Sign +1 means the obtuse-superbase vectors v1 → v2 (labelled by "
+                   "ascending conorms) turn counter-clockwise seen from the viewing side; a change of "
+                   "sign within a run is a real change of handedness."))
         thr.append((_cfg(rec, "rules", "handedness_flip", "min_chiral"), "min chiral"))
         out.append(_figure(plots.deformation_plot(frames, types, thr),
                    "Deformation (Å of lattice-vector change, comparable with symprec) to each 2D type "
@@ -601,8 +607,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
     tol = _camp.tolerance_table(recs, common)
     adv = (campaign or {}).get("tolerance") if isinstance(campaign, dict) else None
     if not isinstance(adv, dict):
-        from ..campaign import tolerance_advice
-        adv = tolerance_advice([{"run": n, "record": r} for n, r in recs], list(common))
+        adv = _audit_advice(recs, common)
     counts = _camp.flag_counts([r for _, r in recs])
     levels = {}
     for _, r in recs:
@@ -623,7 +628,9 @@ def _index_page(runs, bad, failed, campaign) -> str:
          or "—"),
         ("runs with at least one flag", str(n_flagged)),
         ("unreadable inputs / failed runs", f"{len(bad)} / {len(failed)}"),
-    ]))
+    ] + ([("audit summary", e(", ".join(f"{k.replace('_', ' ')} {campaign[k]}" for k in
+                                         ("runs", "analysed", "cached") if k in campaign)))]
+         if isinstance(campaign, dict) and "runs" in campaign else [])))
     parts.append(_campaign_tolerance(tol, adv))
     # plots
     pts = []
@@ -662,6 +669,18 @@ def _index_page(runs, bad, failed, campaign) -> str:
     parts.append(_problems(bad, failed))
     parts.append(_how_to_read())
     return _page("driftwatch campaign report", header, "".join(parts), script=True)
+
+
+def _audit_advice(recs, common):
+    """The audit's own campaign advice (``driftwatch.campaign.tolerance_advice``) for these records,
+    so that ``driftwatch report`` and ``driftwatch audit`` quote the same symprec."""
+    from ..campaign import tolerance_advice
+    views = []
+    for name, r in recs:
+        grid = (r["frames"][-1].get("symmetry") or {}).get("symprec") or []
+        views.append({"run": name, "view": {"summary": r["summary"],
+                                            "grid": [min(grid), max(grid)] if grid else None}})
+    return tolerance_advice(views, list(common))
 
 
 def _campaign_tolerance(tol, adv):
@@ -771,12 +790,8 @@ def _problems(bad, failed):
 # -------------------------------------------------------------------------------------------- build
 
 def _write_file(root: Path, path: Path, text: str) -> Path:
-    """Atomic write inside the report folder, readable like any file the user creates (umask)."""
-    _records.write_text_atomic(_inside(root, path), text)
-    mask = os.umask(0)
-    os.umask(mask)
-    os.chmod(path, 0o666 & ~mask)
-    return path
+    """Atomic write inside the report folder (``write_text_atomic`` applies the user's umask)."""
+    return _records.write_text_atomic(_inside(root, path), text)
 
 
 def _prepare_output(output, overwrite):
@@ -881,8 +896,24 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None) -> P
             serial(list(futs.values()))
     campaign = campaign if campaign is not None else found
     failed = [f for f in (campaign or {}).get("failed") or [] if isinstance(f, dict)]
-    runs.sort(key=lambda r: r[0].lower())
+    runs.sort(key=lambda r: r[0].lower())  # completion order varies with workers; pages do not
+    bad.sort()
     index = out / "index.html"
     with plots.session():
         _write_file(out, index, _index_page(runs, bad, failed, campaign))
+    _remove_stale(out, {f"{name}.html" for name, *_ in runs})
     return index
+
+
+def _remove_stale(out: Path, keep: set) -> None:
+    """Delete run pages of an earlier build that this build did not write (only our own pages)."""
+    for page in (out / "runs").glob("*.html"):
+        if page.name in keep:
+            continue
+        try:
+            with open(page, encoding="utf-8", errors="replace") as fh:
+                head = fh.read(600)
+            if _GENERATOR in head:
+                page.unlink()
+        except OSError:
+            pass

@@ -17,21 +17,24 @@ import re
 
 import numpy as np
 
-__all__ = ["FLOOR", "session", "reset_ids", "layer_map", "deformation_plot", "distance_plot", "spectrum_plot",
-           "displacement_plot", "campaign_scatter", "breakpoint_histogram", "flag_bars", "text_safe"]
+__all__ = ["FLOOR", "session", "reset_ids", "layer_map", "deformation_plot", "distance_plot",
+           "spectrum_plot", "displacement_plot", "campaign_scatter", "breakpoint_histogram",
+           "flag_bars", "text_safe"]
 
 FLOOR = 1e-6
 """Å. Log plots draw values at or below this on the bottom axis (a lattice *at* a type has 0)."""
 
 _RC = {"text.parse_math": False, "text.usetex": False, "svg.fonttype": "none",
-       "svg.hashsalt": "driftwatch",
-       "font.family": "sans-serif", "font.sans-serif": ["DejaVu Sans"], "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9,
-       "legend.fontsize": 8, "xtick.labelsize": 8, "ytick.labelsize": 8, "axes.grid": True,
-       "grid.alpha": 0.25, "axes.spines.top": False, "axes.spines.right": False,
-       "figure.dpi": 100}
+       "svg.hashsalt": "driftwatch", "font.family": "sans-serif", "font.sans-serif": ["DejaVu Sans"],
+       "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "legend.fontsize": 8,
+       "xtick.labelsize": 8, "ytick.labelsize": 8, "axes.grid": True, "grid.alpha": 0.25,
+       "axes.spines.top": False, "axes.spines.right": False, "figure.dpi": 100}
+"""matplotlib settings of every report figure: no mathtext/TeX (input text is drawn as is), SVG text
+as <text> elements (small pages, escaped by matplotlib's XML writer), fixed hash salt (same input,
+same bytes)."""
 
-# Colour-blind-safe categorical palette (Okabe-Ito order, then tab10 tints).
-PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000",
+# Categorical palette: Okabe-Ito colours (yellow darkened for contrast on white), then extra tints.
+PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#b8860b", "#000000",
            "#999999", "#8c564b", "#17becf", "#bcbd22", "#6a3d9a", "#1f77b4", "#ff7f0e"]
 TYPE_COLOURS = dict(zip(["op", "oc", "tp", "hp", "mirror"], PALETTE))
 VERDICT_COLOURS = {"snapped": "#D55E00", "handedness-flip": "#CC79A7", "approaching": "#E69F00",

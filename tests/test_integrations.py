@@ -1,0 +1,225 @@
+"""custodian and jobflow integrations, run with the real libraries.
+
+Sources for the behaviour checked (read in the installed packages, see ../shared/ecosystem.md B.3-B.5):
+* custodian/custodian.py: a Validator's ``check`` returning True makes ``Custodian.run()`` raise
+  ``ValidationError`` and skip ``postprocess``; monitors are polled while a ``Popen`` job runs;
+  a correction with ``"actions": None`` from a handler with ``raises_runtime_error=False`` ends the
+  run with a logged ``NonRecoverableError`` (``raises=False``), with True it raises.
+* jobflow: ``Response(stop_children=True)`` keeps the jobs that depend on a job from running
+  (``run_locally``); Makers are MSONable dataclasses.
+* The replayed outputs are genuine pw.x 6.7 outputs (tests/data/qe); the toy job honours
+  ``<prefix>.EXIT`` the way pw.x 6.7 was measured to (stop, "Program stopped by user request",
+  JOB DONE, delete the file, exit status 2). The stop-handler test with pw.x itself runs the real code.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+custodian = pytest.importorskip("custodian")
+jobflow = pytest.importorskip("jobflow")
+
+from custodian.custodian import Custodian, Job, NonRecoverableError, ValidationError  # noqa: E402
+from monty.json import MontyDecoder, MontyEncoder  # noqa: E402
+
+from driftwatch.adapters import read_run  # noqa: E402
+from driftwatch.integrations.custodian import SymmetryStopHandler, SymmetryValidator  # noqa: E402
+from driftwatch.integrations.jobflow import SymmetryCheckMaker, check_relaxation  # noqa: E402
+
+DATA = Path(__file__).parent / "data" / "qe"
+COLLAPSED = DATA / "layer_oblique_to_hex"      # real pw.x: an oblique Si layer that snaps to hp
+STEADY = DATA / "relax_atoms_to_sites"          # real pw.x: fixed-cell relax, no 'snapped'
+
+REPLAY = r'''
+import os, sys, time
+src, delay = sys.argv[1], float(sys.argv[2])
+exits = ["pw.EXIT", os.path.join("scratch", "pw.EXIT")]   # prefix 'pw', outdir './scratch'
+with open(src) as fh, open("pw.out", "w") as out:
+    for line in fh:
+        out.write(line)
+        out.flush()
+        if line.startswith("!    total energy"):
+            time.sleep(delay)
+        if "Self-consistent Calculation" in line:
+            for p in exits:
+                if os.path.exists(p):
+                    os.remove(p)
+                    out.write("\n     Program stopped by user request\n\n"
+                              "=" + "-" * 78 + "=\n   JOB DONE.\n=" + "-" * 78 + "=\n")
+                    sys.exit(2)
+'''
+
+
+class ReplayJob(Job):
+    """Toy custodian job: a Python process that writes a real pw.x output step by step."""
+
+    def __init__(self, source, delay=0.0):
+        self.source = str(source)
+        self.delay = delay
+
+    def setup(self, directory="./"):
+        shutil.copy(Path(self.source).with_name("pw.in"), Path(directory) / "pw.in")
+        (Path(directory) / "replay.py").write_text(REPLAY)
+
+    def run(self, directory="./"):
+        return subprocess.Popen([sys.executable, "replay.py", self.source, str(self.delay)],
+                                cwd=directory)
+
+    def postprocess(self, directory="./"):
+        (Path(directory) / "postprocessed").write_text("ok\n")
+
+
+class PwJob(Job):
+    """custodian job running the real pw.x."""
+
+    def setup(self, directory="./"):
+        pass
+
+    def run(self, directory="./"):
+        env = dict(os.environ, OMP_NUM_THREADS="1")
+        with open(Path(directory) / "pw.out", "w") as out:
+            return subprocess.Popen(["pw.x", "-in", "pw.in"], cwd=directory, stdout=out,
+                                    stderr=subprocess.STDOUT, env=env)
+
+    def postprocess(self, directory="./"):
+        pass
+
+
+# ---------------------------------------------------------------- custodian
+def test_validator_fails_a_collapsed_run_through_custodian(tmp_path):
+    c = Custodian([], [ReplayJob(COLLAPSED / "pw.out")], validators=[SymmetryValidator()],
+                  directory=str(tmp_path), polling_time_step=0.05, monitor_freq=1)
+    with pytest.raises(ValidationError, match="SymmetryValidator"):
+        c.run()
+    assert not (tmp_path / "postprocessed").exists()           # custodian skips postprocess
+    log = json.loads((tmp_path / "custodian.json").read_text())
+    assert log[-1]["validator"]["@class"] == "SymmetryValidator"
+    v = c.validators[0]
+    assert "snapped" in v.reason and v.record["summary"]["verdict"] == "snapped"
+
+
+def test_validator_passes_a_steady_run_and_round_trips(tmp_path):
+    c = Custodian([], [ReplayJob(STEADY / "pw.out")], validators=[SymmetryValidator()],
+                  directory=str(tmp_path), polling_time_step=0.05, monitor_freq=1)
+    c.run()
+    assert (tmp_path / "postprocessed").exists()
+    v = SymmetryValidator(fail_on=["snapped", "warning"], config="monolayer", output="dw.json")
+    again = json.loads(json.dumps(v, cls=MontyEncoder), cls=MontyDecoder)    # MSONable (B.5)
+    assert isinstance(again, SymmetryValidator) and again.fail_on == ["snapped", "warning"]
+    assert again.config == "monolayer" and again.output == "dw.json"
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert SymmetryValidator().check(str(empty)) is True          # cannot check -> fails
+    assert SymmetryValidator(fail_unreadable=False).check(str(empty)) is False
+
+
+def test_stop_handler_soft_stops_a_replayed_run(tmp_path):
+    h = SymmetryStopHandler(stop_on=["snapped"], fail_job=True)
+    assert (h.is_monitor, h.is_terminating) == (True, False)
+    c = Custodian([h], [ReplayJob(COLLAPSED / "pw.out", delay=0.15)], directory=str(tmp_path),
+                  polling_time_step=0.05, monitor_freq=1, max_errors=5)
+    with pytest.raises(NonRecoverableError, match="SymmetryStopHandler"):   # fail_job=True
+        c.run()
+    full = read_run(COLLAPSED / "pw.out")
+    got = read_run(tmp_path / "pw.out")
+    assert len(got.cells) < len(full.cells)                     # stopped early, by itself
+    assert "Program stopped by user request" in (tmp_path / "pw.out").read_text()
+    corr = c.run_log[-1]["corrections"]
+    stop = corr[0]["soft_stop"]
+    assert stop["action"] == "wrote"
+    assert Path(stop["path"]) == (tmp_path / "scratch" / "pw.EXIT").resolve()
+    assert "snapped" in stop["text"] and corr[0]["actions"] is None
+    assert not Path(stop["path"]).exists()                      # the job consumed it
+    again = json.loads(json.dumps(h, cls=MontyEncoder), cls=MontyDecoder)
+    assert isinstance(again, SymmetryStopHandler) and again.fail_job is True
+
+
+def test_stop_handler_dry_run_only_logs(tmp_path):
+    h = SymmetryStopHandler(stop_on=["snapped"], dry_run=True)
+    c = Custodian([h], [ReplayJob(COLLAPSED / "pw.out", delay=0.02)], directory=str(tmp_path),
+                  polling_time_step=0.05, monitor_freq=1)
+    c.run()                                                    # never enters error handling
+    assert h.dry_runs and h.dry_runs[0]["action"] == "dry-run"
+    assert not list(tmp_path.rglob("*.EXIT"))
+    assert len(read_run(tmp_path / "pw.out").cells) == len(read_run(COLLAPSED / "pw.out").cells)
+    assert (tmp_path / "postprocessed").exists()
+
+
+@pytest.mark.pwx
+@pytest.mark.skipif(shutil.which("pw.x") is None, reason="pw.x not on PATH")
+def test_stop_handler_with_real_pwx_under_custodian(tmp_path):
+    from test_live import ALUMINIUM_VC_RELAX, PSEUDO
+    (tmp_path / "pw.in").write_text(ALUMINIUM_VC_RELAX)
+    shutil.copy(PSEUDO, tmp_path / PSEUDO.name)
+    h = SymmetryStopHandler(stop_on=["approaching"])
+    c = Custodian([h], [PwJob()], directory=str(tmp_path), polling_time_step=0.1,
+                  monitor_freq=1, max_errors=5)
+    c.run()                                  # raises_runtime_error=False: returns, logs the stop
+    text = (tmp_path / "pw.out").read_text()
+    assert "Program stopped by user request" in text and "JOB DONE." in text
+    corr = c.run_log[-1]["corrections"]
+    assert corr[0]["soft_stop"]["path"].endswith("al7.EXIT")
+    # custodian ended the run as this handler's unrecoverable error (logged, not raised): whether
+    # the handler's second report ("ended after the soft stop") is polled depends on timing
+    assert isinstance(c.run_log[-1]["handler"], SymmetryStopHandler)
+    assert not list(tmp_path.rglob("*.EXIT"))
+    assert len(read_run(tmp_path / "pw.out").cells) < 10       # the unstopped run takes 12
+
+
+# ---------------------------------------------------------------- jobflow
+def _flow(tmp_path, source):
+    from jobflow import Flow, job
+
+    @job
+    def relaxation(src, folder):
+        """Stands for a relaxation job: puts a real pw.x run folder in place, returns its path."""
+        shutil.copytree(src, folder)
+        return {"dir_name": f"node17:{folder}"}               # atomate2-style host:/path
+
+    @job
+    def downstream(verdict):
+        return f"ran after {verdict}"
+
+    relax = relaxation(str(source), str(tmp_path / "relax"))
+    check = SymmetryCheckMaker(fail_on=["snapped"]).make(relax.output)
+    after = downstream(check.output["verdict"])
+    return Flow([relax, check, after]), relax, check, after
+
+
+def test_jobflow_check_stops_children_of_a_collapsed_run(tmp_path):
+    from jobflow import run_locally
+    flow, relax, check, after = _flow(tmp_path, COLLAPSED)
+    responses = run_locally(flow, log=False)
+    out = responses[check.uuid][1].output
+    assert out["passed"] is False and out["verdict"] == "snapped" and "snapped" in out["flags"]
+    assert responses[check.uuid][1].stop_children is True
+    assert after.uuid not in responses                          # the downstream job never ran
+    assert out["record"]["schema"] == "driftwatch/run-1"
+
+
+def test_jobflow_check_passes_a_steady_run_and_accepts_structures(tmp_path):
+    from jobflow import run_locally
+    flow, relax, check, after = _flow(tmp_path, STEADY)
+    responses = run_locally(flow, log=False)
+    assert responses[check.uuid][1].output["passed"] is True
+    assert responses[after.uuid][1].output.startswith("ran after")
+    # a list of pymatgen Structures (what a relaxation's task document holds per ionic step)
+    from pymatgen.io.ase import AseAtomsAdaptor
+    from ase.io import read
+    structs = [AseAtomsAdaptor.get_structure(a) for a in read(COLLAPSED / "pw.out", ":")]
+    j = check_relaxation(structs)
+    got = run_locally(j, log=False)[j.uuid][1]
+    assert got.output["passed"] is False and got.stop_children
+    # the relaxation produced nothing (OnMissing.NONE): the check fails and says so
+    j = check_relaxation(None)
+    got = run_locally(j, log=False)[j.uuid][1].output
+    assert got["passed"] is False and "no relaxation output" in got["error"]
+    d = SymmetryCheckMaker(fail_on=["warning"]).as_dict()
+    assert d["@class"] == "SymmetryCheckMaker" and d["fail_on"] == ["warning"]
