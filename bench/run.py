@@ -25,6 +25,8 @@ import time
 import warnings
 from pathlib import Path
 
+for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")   # one core per process: CPU times are not inflated by BLAS threads
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
@@ -152,12 +154,22 @@ def section_compare(a):
     for fmt in a.formats:
         for n in a.compare_sizes:
             paths = make_inputs.make_campaign(a.inputs, fmt, n, a.runs, a.steps)[:a.compare_runs]
-            c_naive, w_naive, naive, fr = naive_loop(paths, fmt)
+            # interleaved run by run (naive, then each mode, on the same file), so that a change
+            # in machine load affects every contender alike
+            c_naive, fr, naive, recs_of = 0.0, 0, [], {m: [] for m in modes}
+            c_mode = dict.fromkeys(modes, 0.0)
+            for p in paths:
+                c, _, v, k = naive_loop([p], fmt)
+                c_naive, fr, naive = c_naive + c, fr + k, naive + v
+                for mode, cfg in cfgs.items():
+                    c, _, recs = driftwatch_loop([p], cfg)
+                    c_mode[mode] += c
+                    recs_of[mode] += recs
             nframes += fr
             tot["naive"] += c_naive
             line = [f"{fmt}-{n}: naive {1e3 * c_naive / fr:.2f} ms/frame"]
             for mode, cfg in cfgs.items():
-                c, w, recs = driftwatch_loop(paths, cfg)
+                c, recs = c_mode[mode], recs_of[mode]
                 tot[mode] += c
                 for nv, rec in zip(naive, recs):
                     got = verdicts_of(rec)

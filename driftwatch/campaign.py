@@ -32,7 +32,6 @@ import csv
 import fnmatch
 import io
 import json
-import math
 import os
 import sys
 import threading
@@ -45,15 +44,15 @@ from pathlib import Path
 from . import records
 from .cache import Cache, FileDigests, run_key
 from .cache import versions as _versions
+from .rules import campaign_advice
 from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
 
-__all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "DEFAULT_OUTPUT", "tolerance_advice"]
+__all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "DEFAULT_OUTPUT"]
 
 SCHEMA = "driftwatch/campaign-1"
 MARKER = ".driftwatch-audit.json"
 DEFAULT_OUTPUT = "driftwatch-audit"
 TABLE_LIMIT = 500          # the printed table lists every run up to this many, else only notable ones
-SAFE_MARGIN = 2.0          # campaign symprec advice: verdict constant within this factor either side
 
 
 # ----------------------------------------------------------------------------- discovery
@@ -238,17 +237,9 @@ def _one_line(exc: BaseException, path: str) -> str:
 
 
 def _split_volatile(rec: dict) -> dict:
-    """Remove what differs between two analyses of the same input and return it: the ``timing``
-    block and each spglib frame's ``calls`` counter (0 when symmetry's in-process cache served the
-    frame, so it depends on what the process analysed before). Written records stay byte-stable."""
-    timing = dict(rec.pop("timing", None) or {})
-    calls = 0
-    for frame in rec.get("frames", []):
-        sym = frame.get("symmetry")
-        if isinstance(sym, dict) and "calls" in sym:
-            calls += int(sym.pop("calls") or 0)
-    timing["spglib_calls"] = calls
-    return timing
+    """Remove and return the record's ``timing`` block (it differs between two analyses of the same
+    input), so written records stay byte-stable."""
+    return dict(rec.pop("timing", None) or {})
 
 
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
@@ -549,88 +540,6 @@ def _retire_stale(rec_dir: Path, previous: list[str], current: set[str]) -> list
 
 
 # ----------------------------------------------------------------------------- summary
-def _near_key(at: dict, s: float):
-    if not at:
-        return None
-    keys = list(at)
-    return min(keys, key=lambda k: abs(math.log(float(k) / s)))
-
-
-def _safe_at(spec_ranges, s, lo_end, hi_end, margin=SAFE_MARGIN) -> float | None:
-    """Log margin (>= log margin) of ``s`` inside a one-verdict plateau, or None when not safe."""
-    for lo, hi, group, _ in spec_ranges:
-        if not group or not (lo <= s <= hi):
-            continue
-        a = math.inf if lo <= lo_end * (1 + 1e-9) else math.log(s / lo)
-        b = math.inf if hi >= hi_end * (1 - 1e-9) else math.log(hi / s)
-        m = min(a, b)
-        return m if m >= math.log(margin) else None
-    return None
-
-
-def tolerance_advice(results: list[dict], common: list[float], window=(1e-4, 0.2)) -> dict:
-    """Campaign tolerance advice from the final-frame spectra of the analysed runs.
-
-    ``changes`` counts the runs whose spglib verdict (group number) on the final structure differs
-    between consecutive ``common`` symprecs (Å). A run is *safe* at a symprec when that value sits
-    inside a plateau of one verdict with at least a factor ``SAFE_MARGIN`` to the next breakpoint on
-    both sides (a plateau reaching the end of the run's grid counts as open there). The recommended
-    symprec is the geometric centre of the widest range inside ``window`` (Å) where the most runs are
-    safe. It is a starting point for the user's own check, not a guarantee.
-    """
-    common = sorted(float(s) for s in common)
-    per_run = []
-    for r in results:
-        view = r["view"]
-        tol, grid = view["summary"]["tolerance"], view["grid"]
-        if not tol.get("at") or not grid:
-            continue
-        groups = [tol["at"][_near_key(tol["at"], s)][0] for s in common]
-        per_run.append((r["run"], groups, tol, grid[0], grid[1]))
-    changes = []
-    for i in range(len(common) - 1):
-        ids = [rid for rid, g, *_ in per_run if g[i] != g[i + 1]]
-        changes.append({"low": common[i], "high": common[i + 1], "runs": len(ids),
-                        "run_ids": ids[:50]})
-    varying = [rid for rid, g, *_ in per_run if len(set(g)) > 1]
-    out = {"symprecs": common, "unit": "Å", "runs_considered": len(per_run),
-           "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying[:50],
-           "recommended_symprec": None, "safe_runs": 0, "window": list(window),
-           "reason": "no run has a symmetry spectrum of its final frame"}
-    if not per_run:
-        return out
-
-    def safe(s):
-        return [rid for rid, _, t, lo, hi in per_run
-                if _safe_at(t.get("stable_ranges", []), s, lo, hi) is not None]
-
-    grid = [window[0] * (window[1] / window[0]) ** (i / 96) for i in range(97)]
-    counts = [len(safe(s)) for s in grid]
-    top = max(counts)
-    if top == 0:
-        out["reason"] = (f"no symprec in {window[0]:g}-{window[1]:g} Å keeps one verdict within a "
-                         f"factor {SAFE_MARGIN:g} for any run: check each run's spectrum")
-        return out
-    blocks, start = [], None                 # longest stretch of the top count, in log symprec
-    for i, c in enumerate(counts + [-1]):
-        if c == top and start is None:
-            start = i
-        elif c != top and start is not None:
-            blocks.append((i - start, start, i - 1))
-            start = None
-    _, a, b = max(blocks)
-    s = math.sqrt(grid[a] * grid[b])
-    ok = safe(s)
-    out.update(recommended_symprec=s, safe_runs=len(ok),
-               unsafe_run_ids=[rid for rid, *_ in per_run if rid not in ok][:50],
-               reason=f"{len(ok)} of {len(per_run)} runs keep one spglib verdict on the final "
-                      f"structure within a factor {SAFE_MARGIN:g} either side of {s:.2g} Å; this is "
-                      f"the centre of the widest symprec range ({grid[a]:.2g}-{grid[b]:.2g} Å) where "
-                      f"the most runs are safe. A starting point for your own check"
-                      + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
-    return out
-
-
 def _slim(text: str, run_id: str) -> dict:
     """What the campaign summary, CSV and database need of a record (the record itself is dropped,
     so memory stays small for thousands of runs)."""
@@ -882,7 +791,9 @@ def _summary(out, roots, ok, failed, cfg, fail_on, res, n_analysed, how, db_name
                                            {f["code"] for f in r["view"]["flags"]}).items())),
         "verdict_counts": dict(sorted(Counter([r["view"]["summary"]["verdict"] for r in ok]
                                               + ["failed"] * len(failed)).items())),
-        "tolerance": tolerance_advice(ok, cfg["report"]["common_symprecs"]),
+        "tolerance": campaign_advice([{"run": r["run"], "summary": r["view"]["summary"],
+                                       "grid": r["view"]["grid"]} for r in ok],
+                                     cfg["report"]["common_symprecs"]),
         "records": {r["run"]: f"records/{res.names[r['run']]}" for r in ok},
         "stale_records": [f"records/stale/{n}" for n in stale],
         "db": db_name,

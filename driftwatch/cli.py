@@ -263,7 +263,7 @@ def _cmd_audit(args) -> int:
     result = audit(args.roots, args.output, config=cfg, include=args.include, exclude=args.exclude,
                    workers=args.workers, scheduler=args.scheduler, db=args.db,
                    use_cache=not args.no_cache, overwrite=args.overwrite, report=not args.no_report,
-                   progress=args.progress, fail_on=codes)
+                   progress=args.progress, fail_on=codes, quiet=True if args.json else None)
     if args.json:
         _print_json(result)
     if result.get("gated"):

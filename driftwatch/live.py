@@ -26,7 +26,7 @@ import time
 import warnings
 from pathlib import Path
 
-from . import __version__, config as _config, geometry, records, rules, symmetry, track
+from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.run import Frame, collect, frame_from_atoms
@@ -145,7 +145,6 @@ class Tracker:
         self.title: str | None = None
         self._spectra: dict[int, dict] = {}
         self._spectra_for = None
-        self._grid = track.symprec_grid(self.cfg)
 
     def __len__(self) -> int:
         return len(self.frames)
@@ -189,29 +188,15 @@ class Tracker:
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
         geo = self._geometry(run)
-        table = track.lattice_table(run, geo, cfg["lattice"]["metric"])
-        entries = track._frame_entries(run, table)
-        t1 = time.perf_counter()
-        n = len(entries)
-        chosen = track.select_frames(table["deformation"], cfg["selection"])
+        chosen = track.select_frames(track.lattice_table(run, geo, cfg["lattice"]["metric"])
+                                     ["deformation"], cfg["selection"])
+        n = len(run.cells)
         if not newest and n > 1:
             chosen = [i for i in chosen if i < n - 1]
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
             self._spectra, self._spectra_for = {}, (geo.dimension, geo.vacuum_axis)
-        computed = 0
-        for i in chosen:
-            if i not in self._spectra:
-                self._spectra[i] = track._symmetry_entry(run, i, geo, cfg, self._grid)
-                computed += 1
-            entries[i]["symmetry"] = self._spectra[i]
-        t2 = time.perf_counter()
-        record = records.new_record(run, geo, cfg, entries, fixed_cell=track._fixed_cell(run.cells),
-                                    versions={"driftwatch": __version__, **symmetry.versions()})
-        record["flags"] = rules.evaluate(record, cfg)
-        record["summary"] = rules.summarize(record, cfg)
-        record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
-                            "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen),
-                            "spglib_frames_computed": computed}
+        record = track.record_from_run(run, cfg, geo=geo, frames=chosen, spectra=self._spectra)
+        record["timing"]["total_s"] = time.perf_counter() - t0
         return record
 
 

@@ -39,7 +39,8 @@ import numpy as np
 
 from . import lattice2d, lattice3d
 
-__all__ = ["evaluate", "summarize", "FLAGS", "bravais_of_group", "ORDER", "advice", "gate"]
+__all__ = ["evaluate", "summarize", "FLAGS", "bravais_of_group", "ORDER", "advice", "gate",
+           "campaign_advice", "advice_item", "SAFE_MARGIN"]
 
 FLAGS = {
     "snapped": "warning", "approaching": "info", "handedness-flip": "warning",
@@ -349,6 +350,100 @@ def summarize(record: dict, cfg: dict) -> dict:
             "lattice_note": ("fixed cell: the lattice cannot drift; symmetry drift is in the atoms "
                              "(see the displacement to each group)") if record["run"]["fixed_cell"]
             else None}
+
+
+SAFE_MARGIN = 2.0  # campaign symprec advice: verdict constant within this factor either side
+
+
+def advice_item(run_id: str, record: dict) -> dict:
+    """The input :func:`campaign_advice` needs from one record."""
+    grid = (record["frames"][-1].get("symmetry") or {}).get("symprec") or []
+    return {"run": run_id, "summary": record["summary"], "grid": [min(grid), max(grid)] if grid else None}
+
+
+def _near_key(at: dict, s: float):
+    if not at:
+        return None
+    keys = list(at)
+    return min(keys, key=lambda k: abs(math.log(float(k) / s)))
+
+
+def _safe_at(spec_ranges, s, lo_end, hi_end, margin=None) -> float | None:
+    """Log margin (>= log margin) of ``s`` inside a one-verdict plateau, or None when not safe."""
+    margin = SAFE_MARGIN if margin is None else margin
+    for lo, hi, group, _ in spec_ranges:
+        if not group or not (lo <= s <= hi):
+            continue
+        a = math.inf if lo <= lo_end * (1 + 1e-9) else math.log(s / lo)
+        b = math.inf if hi >= hi_end * (1 - 1e-9) else math.log(hi / s)
+        m = min(a, b)
+        return m if m >= math.log(margin) else None
+    return None
+
+
+def campaign_advice(items: list[dict], common: list[float], window=(1e-4, 0.2)) -> dict:
+    """Campaign tolerance advice from the final-frame spectra of the analysed runs.
+
+    ``items`` are ``{"run": id, "summary": record summary, "grid": [lowest, highest symprec] or None}``
+    (:func:`advice_item` makes one from a record).
+
+    ``changes`` counts the runs whose spglib verdict (group number) on the final structure differs
+    between consecutive ``common`` symprecs (Å). A run is *safe* at a symprec when that value sits
+    inside a plateau of one verdict with at least a factor ``SAFE_MARGIN`` to the next breakpoint on
+    both sides (a plateau reaching the end of the run's grid counts as open there). The recommended
+    symprec is the geometric centre of the widest range inside ``window`` (Å) where the most runs are
+    safe. It is a starting point for the user's own check, not a guarantee.
+    """
+    common = sorted(float(s) for s in common)
+    per_run = []
+    for r in items:
+        tol, grid = r["summary"]["tolerance"], r["grid"]
+        if not tol.get("at") or not grid:
+            continue
+        groups = [tol["at"][_near_key(tol["at"], s)][0] for s in common]
+        per_run.append((r["run"], groups, tol, grid[0], grid[1]))
+    changes = []
+    for i in range(len(common) - 1):
+        ids = [rid for rid, g, *_ in per_run if g[i] != g[i + 1]]
+        changes.append({"low": common[i], "high": common[i + 1], "runs": len(ids),
+                        "run_ids": ids[:50]})
+    varying = [rid for rid, g, *_ in per_run if len(set(g)) > 1]
+    out = {"symprecs": common, "unit": "Å", "runs_considered": len(per_run),
+           "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying[:50],
+           "recommended_symprec": None, "safe_runs": 0, "window": list(window),
+           "reason": "no run has a symmetry spectrum of its final frame"}
+    if not per_run:
+        return out
+
+    def safe(s):
+        return [rid for rid, _, t, lo, hi in per_run
+                if _safe_at(t.get("stable_ranges", []), s, lo, hi) is not None]
+
+    grid = [window[0] * (window[1] / window[0]) ** (i / 96) for i in range(97)]
+    counts = [len(safe(s)) for s in grid]
+    top = max(counts)
+    if top == 0:
+        out["reason"] = (f"no symprec in {window[0]:g}-{window[1]:g} Å keeps one verdict within a "
+                         f"factor {SAFE_MARGIN:g} for any run: check each run's spectrum")
+        return out
+    blocks, start = [], None                 # longest stretch of the top count, in log symprec
+    for i, c in enumerate(counts + [-1]):
+        if c == top and start is None:
+            start = i
+        elif c != top and start is not None:
+            blocks.append((i - start, start, i - 1))
+            start = None
+    _, a, b = max(blocks)
+    s = math.sqrt(grid[a] * grid[b])
+    ok = safe(s)
+    out.update(recommended_symprec=s, safe_runs=len(ok),
+               unsafe_run_ids=[rid for rid, *_ in per_run if rid not in ok][:50],
+               reason=f"{len(ok)} of {len(per_run)} runs keep one spglib verdict on the final "
+                      f"structure within a factor {SAFE_MARGIN:g} either side of {s:.2g} Å; this is "
+                      f"the centre of the widest symprec range ({grid[a]:.2g}-{grid[b]:.2g} Å) where "
+                      f"the most runs are safe. A starting point for your own check"
+                      + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
+    return out
 
 
 def gate(flags: list[dict], fail_on: list[str]) -> list[dict]:

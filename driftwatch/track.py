@@ -16,7 +16,7 @@ from . import __version__, config as _config, geometry, lattice2d, lattice3d, re
 from .adapters import Run, read_run
 from .errors import GeometryError
 
-__all__ = ["analyze", "lattice_table", "select_frames", "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
+__all__ = ["analyze", "record_from_run", "lattice_table", "select_frames", "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
 
 LAYER_TYPES = lattice2d.TYPES
 BULK_TYPES = lattice3d.TYPES
@@ -123,6 +123,46 @@ def _symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float]) -> dict
     return spec
 
 
+def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
+                    spectra: dict | None = None) -> dict:
+    """The record of an already read run.
+
+    Args:
+        run: the frames. cfg: a loaded config. geo: geometry (default: classified from the run).
+        frames: spglib on exactly these frame indices (default: :func:`select_frames`).
+        spectra: a cache {frame index: symmetry entry}; entries found are reused, new ones are added
+            (the live tracker keeps it across growing runs).
+    """
+    t0 = time.perf_counter()
+    if geo is None:
+        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+    if cfg["geometry"]["require_layer"] and geo.dimension != 2:
+        raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
+    table = lattice_table(run, geo, cfg["lattice"]["metric"])
+    entries = _frame_entries(run, table)
+    t1 = time.perf_counter()
+    chosen = sorted(set(frames)) if frames is not None else select_frames(table["deformation"],
+                                                                          cfg["selection"])
+    grid = symprec_grid(cfg)
+    spectra = {} if spectra is None else spectra
+    calls = computed = 0
+    for i in chosen:
+        if i not in spectra:
+            spectra[i] = _symmetry_entry(run, i, geo, cfg, grid)
+            calls += int(spectra[i].pop("calls", 0) or 0)  # process-state dependent: timing only
+            computed += 1
+        entries[i]["symmetry"] = spectra[i]
+    t2 = time.perf_counter()
+    record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
+                                versions={"driftwatch": __version__, **symmetry.versions()})
+    record["flags"] = rules.evaluate(record, cfg)
+    record["summary"] = rules.summarize(record, cfg)
+    record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
+                        "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen),
+                        "spglib_frames_computed": computed, "spglib_calls": calls}
+    return record
+
+
 def analyze(path_or_run, config=None, *, format: str | None = None,
             frames: Iterable[int] | None = None) -> dict:
     """Analyse one run and return its record (schema ``driftwatch/run-1``).
@@ -133,25 +173,6 @@ def analyze(path_or_run, config=None, *, format: str | None = None,
         format: adapter name, overriding detection.
         frames: analyse spglib on exactly these frame indices (default: the config's selection).
     """
-    t0 = time.perf_counter()
     cfg = _config.coerce(config)
     run = path_or_run if isinstance(path_or_run, Run) else read_run(path_or_run, format=format)
-    geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
-    if cfg["geometry"]["require_layer"] and geo.dimension != 2:
-        raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
-    table = lattice_table(run, geo, cfg["lattice"]["metric"])
-    entries = _frame_entries(run, table)
-    t1 = time.perf_counter()
-    chosen = sorted(set(frames)) if frames is not None else select_frames(table["deformation"],
-                                                                          cfg["selection"])
-    grid = symprec_grid(cfg)
-    for i in chosen:
-        entries[i]["symmetry"] = _symmetry_entry(run, i, geo, cfg, grid)
-    t2 = time.perf_counter()
-    record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
-                                versions={"driftwatch": __version__, **symmetry.versions()})
-    record["flags"] = rules.evaluate(record, cfg)
-    record["summary"] = rules.summarize(record, cfg)
-    record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
-                        "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen)}
-    return record
+    return record_from_run(run, cfg, frames=frames)

@@ -21,7 +21,6 @@ import json
 import os
 import shutil
 import subprocess
-import sys
 import time
 import warnings
 from pathlib import Path

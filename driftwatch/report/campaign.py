@@ -3,7 +3,7 @@
 The campaign's tolerance picture: every run's final-frame tolerance spectrum (spglib's verdict on a log
 grid of symprec, Å, with its breakpoints) is pooled. A symprec range is *stable* for the campaign where
 no run changes its group verdict. The recommended campaign symprec itself comes from
-:func:`driftwatch.campaign.tolerance_advice` (the audit's advice), so the report and the audit quote
+:func:`driftwatch.rules.campaign_advice` (the audit's advice), so the report and the audit quote
 the same value.
 """
 

@@ -672,15 +672,10 @@ def _index_page(runs, bad, failed, campaign) -> str:
 
 
 def _audit_advice(recs, common):
-    """The audit's own campaign advice (``driftwatch.campaign.tolerance_advice``) for these records,
-    so that ``driftwatch report`` and ``driftwatch audit`` quote the same symprec."""
-    from ..campaign import tolerance_advice
-    views = []
-    for name, r in recs:
-        grid = (r["frames"][-1].get("symmetry") or {}).get("symprec") or []
-        views.append({"run": name, "view": {"summary": r["summary"],
-                                            "grid": [min(grid), max(grid)] if grid else None}})
-    return tolerance_advice(views, list(common))
+    """The audit's own campaign advice (``rules.campaign_advice``) for these records, so that
+    ``driftwatch report`` and ``driftwatch audit`` quote the same symprec."""
+    from ..rules import advice_item, campaign_advice
+    return campaign_advice([advice_item(name, r) for name, r in recs], list(common))
 
 
 def _campaign_tolerance(tol, adv):
