@@ -266,22 +266,25 @@ def test_one_atom_and_5000_atom_cells_are_analysed(tmp_path):
     rec = driftwatch.analyze(p)
     assert rec["geometry"]["dimension"] == 2
     assert np.allclose(rec["frames"][-1]["root_invariant"], [0, 3, 3], atol=1e-12)
-    # 5000 atoms: an fcc Cu supercell (ASE bulk, a = 3.6 Å), two frames, a three-point symprec grid
+    # 5000 atoms: an fcc Cu supercell (ASE bulk, a = 3.6 Å, 10 x 5 x 25 cubic cells), two frames
     from ase.build import bulk
-    big = bulk("Cu", "fcc", a=3.6, cubic=True).repeat((11, 11, 11))[:5000]
+    from driftwatch import symmetry
+    big = bulk("Cu", "fcc", a=3.6, cubic=True).repeat((10, 5, 25))
     big.rattle(1e-4, seed=3)
     assert len(big) == 5000
     p = tmp_path / "big.traj"
     ase.io.write(p, [big, big])
-    cfg = dwconfig.load("default", {"symmetry.grid_points": 3, "symmetry.bisect": False,
-                                    "report.common_symprecs": ["1e-3 Å"]})
     t0 = time.perf_counter()
-    rec = driftwatch.analyze(p, cfg, frames=[1])
-    assert time.perf_counter() - t0 < 60
+    rec = driftwatch.analyze(p, frames=[])          # invariants of every frame, no spglib
     assert rec["run"]["n_atoms"] == 5000 and rec["geometry"]["dimension"] == 3
-    # the cubic supercell's lattice is cP (ASE bulk cubic=True; International Tables)
-    assert rec["frames"][-1]["distance"]["cP"] < 1e-9
-    assert all(np.isfinite(v) for v in rec["frames"][-1]["deformation"].values())
+    # the 36 x 18 x 90 Å supercell lattice is orthorhombic primitive (oP), not tetragonal
+    d = rec["frames"][-1]["distance"]
+    assert d["oP"] < 1e-9 and d["tP"] > 1 and all(np.isfinite(v) for v in d.values())
+    # spglib on all 5000 atoms at 1e-3 Å: Fm-3m (No. 225), the fcc space group (Int. Tables)
+    s = symmetry.spectrum(big.cell.array, big.positions, big.numbers, symprecs=[1e-3],
+                          bisect=False)
+    assert s["group"] == [225]
+    assert time.perf_counter() - t0 < 30
 
 
 def test_file_growing_while_read_gives_only_prefixes(tmp_path):
@@ -442,6 +445,19 @@ def test_campaign_with_non_utf8_names(tmp_path):
     assert len(s["records"]) == 2
 
 
+def test_looping_and_dangling_symlinks_given_directly(tmp_path, capsys):
+    loop = tmp_path / "loop.traj"
+    os.symlink(loop.name, loop)                          # ln -s loop.traj loop.traj
+    dangling = tmp_path / "OUTCAR"
+    os.symlink(tmp_path / "gone" / "OUTCAR", dangling)
+    for p in (loop, dangling):
+        with pytest.raises(InputError) as err:
+            read_run(p)
+        _one_line_naming(str(err.value), p, r"broken symbolic link")
+        assert cli.main(["inspect", str(p)]) == 1
+        _one_line_naming(capsys.readouterr().err, p, r"broken symbolic link")
+
+
 def test_non_utf8_file_name_inspect(tmp_path):
     p = os.fsencode(tmp_path) + b"/caf\xe9-run\xff.traj"
     shutil.copy(RUNS / "L06_emt_bfgs.traj", p)
@@ -560,9 +576,11 @@ def _outputs(out: Path) -> dict:
 def _check_cache(out: Path) -> int:
     from driftwatch.cache import CACHE_SCHEMA
     n = 0
+    if not (out / ".cache").is_dir():
+        return 0
     for p in sorted((out / ".cache").iterdir()):
-        if p.name.startswith("."):
-            assert not p.name.endswith(".tmp") or True    # temp files of a kill are ignored
+        if p.name.startswith("."):       # a temporary file a kill left: never read as an entry
+            assert p.name.endswith(".tmp"), p
             continue
         data = json.loads(p.read_text(encoding="utf-8"))    # every entry parses
         assert data["schema"] == CACHE_SCHEMA
@@ -616,8 +634,23 @@ def test_audit_killed_at_several_points_then_rerun_matches_uninterrupted(tmp_pat
     assert s["runs"] == r["runs"] == 11 and len(s["failed"]) == len(r["failed"]) == 1
     assert _outputs(out) == _outputs(ref)
     assert _check_cache(out) == _check_cache(ref) == 11
-    assert not list((out / "records").glob(".*.tmp"))
     assert json.loads((out / "campaign.json").read_text())["runs"] == 11
+
+
+@pytest.mark.xfail(strict=True, reason="campaign.audit: temporary files a SIGKILL leaves in "
+                   "OUTPUT/records and OUTPUT/.cache (.NAME.XXXX.tmp of write_text_atomic) are "
+                   "never removed by later audits, so they pile up")
+def test_rerun_removes_temporary_files_left_by_a_kill(tmp_path):
+    from driftwatch.campaign import audit
+    camp = _campaign(tmp_path, 2)
+    out = tmp_path / "out"
+    audit([camp], out, workers=1, report=False, progress="off", quiet=True)
+    left = [out / "records" / ".camp_grp0_L-00.traj.json.k1ll3d.tmp",
+            out / ".cache" / ".0123abcd.json.k1ll3d.tmp"]
+    for p in left:
+        p.write_text('{"schema": "driftwatch/run-1", "fra')           # torn by the kill
+    audit([camp], out, workers=1, report=False, progress="off", quiet=True)
+    assert not [p for p in left if p.exists()]
 
 
 def test_interrupted_write_keeps_the_old_file(tmp_path, monkeypatch):
@@ -776,6 +809,7 @@ def test_report_output_stays_inside_the_output_folder(tmp_path):
     assert not [p for p in before if p.parent == tmp_path / "deep" and p != out]
 
 
+@pytest.mark.slow       # ~22 s: ase.db's own SQLite busy timeout is 20 s
 def test_locked_sqlite_database_fails_cleanly_within_bounded_time(tmp_path):
     """Another process holds a write transaction on the campaign's ase.db file (real SQLite,
     BEGIN EXCLUSIVE): the audit ends with a one-line error naming the database, within a bounded
@@ -826,8 +860,9 @@ def test_script_in_input_files_does_not_run_in_the_report(tmp_path):
     run = camp / "<img src=x onerror=\"document.title='pwned'\">"
     run.mkdir(parents=True)
     frames = ase.io.read(RUNS / "L06_emt_bfgs.traj", ":3")
-    ase.io.write(run / f"<script>{js}</script>.extxyz", frames,
-                 comment=f"<script>{js}</script>")
+    for a in frames:
+        a.info["note"] = f"<script>{js}</script>"
+    ase.io.write(run / "<b onmouseover=\"document.title='pwned'\">relax.extxyz", frames)
     poscar = _poscar_text().replace("invented square layer", f"<script>{js}</script> layer")
     (camp / "vasp").mkdir()
     (camp / "vasp" / "CONTCAR").write_text(poscar)
@@ -846,7 +881,7 @@ def test_script_in_input_files_does_not_run_in_the_report(tmp_path):
         assert res.returncode == 0, res.stderr[-1000:]
         dom = res.stdout
         title = dom[dom.index("<title>") + 7:dom.index("</title>")]
-        assert "pwned" not in title.replace("document.title='pwned'", ""), title
+        assert title != "pwned" and "driftwatch" in title, title   # no script set the title
         from html.parser import HTMLParser
 
         class Tags(HTMLParser):

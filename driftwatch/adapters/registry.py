@@ -247,10 +247,12 @@ def _stream(pick: _Pick, ctx: ReadContext) -> Iterator[Frame]:
         raise
     except Exception as exc:
         what = fmt.description or pick.format
+        why = " ".join(str(exc).split())            # one line, whatever the library printed
+        why = why if len(why) <= 300 else why[:297] + "..."
         if n == 0:
             raise InputError(pick.source, f"cannot be read as {what}: "
-                                          f"{type(exc).__name__}: {exc}") from exc
-        ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {exc})")
+                                          f"{type(exc).__name__}: {why}") from exc
+        ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})")
 
 
 def iter_frames(path, format=None, *, context: ReadContext | None = None) -> Iterator[Frame]:
