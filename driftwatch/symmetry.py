@@ -465,7 +465,6 @@ def spectrum(cell, positions, numbers, *, symprecs=None, angle_tolerance=-1.0, v
     """
     grid = _check_grid(symprecs, precision)
     lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
-    layer = vacuum_axis is not None
     angle_tolerance = float(angle_tolerance)
     hints = _hint_brackets(previous, "group")
     digest = hashlib.sha1(b"".join([

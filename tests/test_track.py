@@ -122,3 +122,25 @@ def test_symprec_grid_contains_rule_values():
     for x in (1e-3, 1e-2, 0.1, 1e-5):
         assert min(abs(np.log(np.asarray(grid) / x))) < 1e-9
     assert grid == sorted(grid) and grid[0] >= 1e-5 and grid[-1] <= 0.5
+
+
+def test_demo_campaign_shows_every_flag_and_one_layer_stays_chiral():
+    """The bundled demo campaign (real pw.x and EMT relaxations made by scripts/make_runs.py) exercises
+    every flag at least once, and its stays-oblique layer gets none (spglib itself calls that layer's
+    final structure P2/m at every tolerance; checked directly here)."""
+    demo = Path(__file__).parent.parent / "example_runs"
+    codes, per_run = set(), {}
+    for run in sorted(p for p in demo.iterdir() if p.name not in ("README.md", "pseudo")):
+        rec = driftwatch.analyze(run)
+        per_run[run.name] = {f["code"] for f in rec["flags"]}
+        codes |= per_run[run.name]
+    assert codes == set(rules.FLAGS)
+    stays = "L07_emt_fire.traj"
+    assert per_run[stays] == set()
+    last = read(demo / stays, index=-1)
+    for symprec in (1e-5, 1e-3, 1e-2, 1e-1):
+        ds = spglib.get_symmetry_dataset((last.cell.array, last.get_scaled_positions(), last.numbers),
+                                         symprec=symprec)
+        assert ds.number == 10  # P2/m: no in-plane mirror, the 2D lattice stays oblique
+    rec = driftwatch.analyze(demo / stays)
+    assert rec["summary"]["final"]["type"] == "mp" and abs(rec["frames"][-1]["chiral_distance"]) > 0.5
