@@ -86,7 +86,24 @@ def _is_pwx(path: str, name: str) -> bool:
     if not _strip(name).endswith(_QE_SUFFIXES):
         return False
     from .adapters._io import peek
-    return b"Program PWSCF" in peek(path, 50_000)
+    try:
+        return b"Program PWSCF" in peek(path, 50_000)
+    except OSError:
+        return False
+
+
+def _entry_kind(e) -> str | None:
+    """'dir', 'file', or None (FIFOs, sockets, devices are skipped: reading them could block). An
+    entry whose type cannot be read (a symbolic link loop) or a dangling link counts as a file, so its
+    reader reports it as a failed run when its name makes it a candidate."""
+    try:
+        if e.is_dir():
+            return "dir"
+        if e.is_file():
+            return "file"
+    except OSError:
+        return "file"
+    return "file" if e.is_symlink() else None
 
 
 def _format_globs() -> list[str]:
@@ -141,8 +158,9 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, gl
         try:
             with os.scandir(folder) as it:
                 entries = sorted((e for e in it if not e.name.startswith(".")), key=lambda e: e.name)
-            files = [e for e in entries if e.is_file()]
-            dirs = [e for e in entries if e.is_dir()]
+            kinds = [(e, _entry_kind(e)) for e in entries]
+            files = [e for e, k in kinds if k == "file"]
+            dirs = [e for e, k in kinds if k == "dir"]
         except OSError as exc:
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot list folder ({exc.strerror or exc})"}
@@ -490,6 +508,8 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool) -> dict:
                               f"--output, or pass --overwrite to replace its audit files")
     try:
         out.mkdir(parents=True, exist_ok=True)
+        for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
+            records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
         _write_marker(out, roots, (marker or {}).get("records", []))
     except OSError as exc:
         raise OutputError(f"{out}: cannot write the output folder ({exc.strerror or exc})") from exc

@@ -144,8 +144,9 @@ def preset_path(name: str) -> Path:
     return CONFIG_DIR / f"{name}.yaml"
 
 
-def _resolve(source, seen=()) -> dict:
-    """Raw (unconverted) tree of a preset name, file path or mapping, with ``extends`` applied."""
+def _resolve(source, seen=(), origins=None) -> dict:
+    """Raw (unconverted) tree of a preset name, file path or mapping, with ``extends`` applied.
+    ``origins`` (dotted key -> file) is filled with where each value came from."""
     if isinstance(source, dict):
         raw, origin = copy.deepcopy(source), "<mapping>"
     else:
@@ -158,11 +159,11 @@ def _resolve(source, seen=()) -> dict:
     parent = raw.pop("extends", None)
     if parent is None and origin != str(preset_path("default")):
         parent = "default"
-    base = _resolve(parent, seen) if parent is not None else {}
-    return _merge(base, raw, origin)
+    base = _resolve(parent, seen, origins) if parent is not None else {}
+    return _merge(base, raw, origin, origins=origins)
 
 
-def _merge(base: dict, over: dict, origin: str, prefix: str = "") -> dict:
+def _merge(base: dict, over: dict, origin: str, prefix: str = "", origins=None) -> dict:
     out = copy.deepcopy(base)
     for key, value in over.items():
         full = f"{prefix}{key}"
@@ -172,13 +173,15 @@ def _merge(base: dict, over: dict, origin: str, prefix: str = "") -> dict:
             if not any(k.startswith(full + ".") for k in _KINDS):
                 raise ConfigError(f"{origin}: unknown key {full!r}")
             out[key] = _merge(out.get(key, {}) if isinstance(out.get(key), dict) else {},
-                              value, origin, full + ".")
+                              value, origin, full + ".", origins)
         else:
             if full not in _KINDS:
                 hint = [k for k in _KINDS if k.rsplit(".", 1)[-1] == key]
                 extra = f" (did you mean {hint[0]!r}?)" if hint else ""
                 raise ConfigError(f"{origin}: unknown key {full!r}{extra}")
             out[key] = value
+            if origins is not None:
+                origins[full] = origin
     return out
 
 
@@ -209,15 +212,21 @@ def load(source=None, overrides: dict | None = None) -> dict:
     """
     if source is None:
         source = os.environ.get("DRIFTWATCH_CONFIG") or "default"
-    raw = _resolve(source)
+    origins: dict = {}
+    raw = _resolve(source, origins=origins)
     for dotted, value in (overrides or {}).items():
         if dotted not in _KINDS:
             raise ConfigError(f"override: unknown key {dotted!r}")
         _set(raw, dotted, value)
+        origins[dotted] = "override"
     out: dict = {}
     raw.pop("_effective", None)
     for dotted, value in _flatten(raw):
-        _set(out, dotted, _convert(dotted, _KINDS[dotted], value))
+        try:
+            _set(out, dotted, _convert(dotted, _KINDS[dotted], value))
+        except ConfigError as exc:
+            where = origins.get(dotted)
+            raise (ConfigError(f"{where}: {exc}") if where else exc) from None
     missing = [k for k in _KINDS if k not in dict(_flatten(out))]
     if missing:
         raise ConfigError(f"config lacks {', '.join(missing)}")

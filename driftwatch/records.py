@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 
 __all__ = ["SCHEMA", "new_record", "write_json", "read_json", "write_text_atomic", "dumps",
+           "remove_stale_temporaries",
            "csv_row", "CSV_COLUMNS", "db_key_values", "safe_name"]
 
 SCHEMA = "driftwatch/run-1"
@@ -60,7 +61,8 @@ def write_text_atomic(path, text: str) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+        # surrogateescape: names that are not UTF-8 on disk are written back as their own bytes
+        with os.fdopen(fd, "w", encoding="utf-8", errors="surrogateescape") as fh:
             fh.write(text)
             fh.flush()
             os.fsync(fh.fileno())
@@ -73,6 +75,25 @@ def write_text_atomic(path, text: str) -> Path:
             pass
         raise
     return path
+
+
+def remove_stale_temporaries(folder) -> list[str]:
+    """Delete temporary files a killed :func:`write_text_atomic` left in ``folder`` (not recursive)."""
+    import re
+    pattern = re.compile(r"^\..+\.tmp$")
+    removed = []
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return removed
+    for e in entries:
+        if pattern.match(e.name) and e.is_file(follow_symlinks=False):
+            try:
+                os.unlink(e.path)
+                removed.append(e.name)
+            except OSError:
+                pass
+    return removed
 
 
 def write_json(record: dict, path) -> Path:

@@ -14,7 +14,7 @@ import numpy as np
 
 from . import __version__, config as _config, geometry, lattice2d, lattice3d, records, rules, symmetry
 from .adapters import Run, read_run
-from .errors import GeometryError
+from .errors import GeometryError, LatticeError, SymmetryError
 
 __all__ = ["analyze", "record_from_run", "lattice_table", "select_frames", "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
 
@@ -175,4 +175,9 @@ def analyze(path_or_run, config=None, *, format: str | None = None,
     """
     cfg = _config.coerce(config)
     run = path_or_run if isinstance(path_or_run, Run) else read_run(path_or_run, format=format)
-    return record_from_run(run, cfg, frames=frames)
+    try:
+        return record_from_run(run, cfg, frames=frames)
+    except (GeometryError, LatticeError, SymmetryError) as exc:
+        if str(run.source) in str(exc):
+            raise
+        raise type(exc)(f"{run.source}: {exc}") from exc

@@ -367,6 +367,9 @@ def _read_checked(path: Path, fmt):
     except InputError as exc:
         assert exc.path and str(path.parent) in str(exc), f"error does not name the file: {exc}"
         assert "\n" not in str(exc).strip(), f"error is not one line: {exc!r}"
+        # a damaged count must not make a reader allocate without bound (run the large campaign
+        # under `ulimit -v` so that such a blow-up shows here instead of as an OOM kill)
+        assert "MemoryError" not in str(exc), exc
         return
     assert np.all(np.isfinite(run.cells)) and np.all(np.isfinite(run.positions))
     assert run.cells.shape[0] >= 1 and run.positions.shape[1] == len(run.numbers) >= 1

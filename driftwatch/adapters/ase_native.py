@@ -7,11 +7,17 @@ a warning from the registry.
 """
 from __future__ import annotations
 
+import re
+
 from ..errors import InputError
 from ._io import Lines
 from .run import ReadContext, frame_from_atoms
 
-__all__ = ["read_traj", "read_extxyz", "read_db"]
+__all__ = ["read_traj", "read_extxyz", "read_db", "MAX_ATOMS"]
+
+MAX_ATOMS = 10_000_000
+"""A frame header announcing more atoms is refused (a damaged count must not make the reader
+allocate or loop without end)."""
 
 
 def _step(atoms, i):
@@ -23,9 +29,26 @@ def _step(atoms, i):
     return i
 
 
+def _check_ulm_header(path) -> None:
+    """Refuse a ULM header whose item count or offset table lies beyond the file: ASE would
+    allocate the (damaged) count first and exhaust memory."""
+    import os
+    import numpy as np
+    size = os.path.getsize(path)
+    with open(path, "rb") as fh:
+        head = fh.read(48)
+    if len(head) < 48:
+        return                               # ASE reports the cut header itself
+    version, nitems, pos0 = (int(x) for x in np.frombuffer(head[24:48], "<i8"))
+    if not (0 <= nitems <= size // 8 and 0 <= pos0 <= size - 8 * nitems):
+        raise InputError(path, f"damaged ASE trajectory header ({nitems} frames, offset table "
+                               f"at byte {pos0}, file of {size} bytes)")
+
+
 def read_traj(path, ctx: ReadContext):
     """An ASE trajectory file (ULM format), frame by frame."""
     from ase.io.trajectory import Trajectory
+    _check_ulm_header(path)
     traj = Trajectory(path, "r")
     try:
         desc = getattr(traj, "description", None) or {}
@@ -59,18 +82,44 @@ def read_extxyz(path, ctx: ReadContext):
             except (ValueError, IndexError):
                 raise InputError(path, f"not an XYZ frame header at line {fh.lineno}: "
                                        f"{first.strip()[:40]!r}") from None
-            block = [first] + [fh.readline() for _ in range(natoms + 1)]
-            if not all(block):
+            if not 0 < natoms <= MAX_ATOMS:
+                raise InputError(path, f"XYZ frame header at line {fh.lineno} gives {natoms} "
+                                       f"atoms (expected 1..{MAX_ATOMS})")
+            block = [first]
+            for _ in range(natoms + 1):      # stops at the end of the file (a cut frame)
+                ln = fh.readline()
+                if not ln:
+                    break
+                block.append(ln)
+            if len(block) < natoms + 2:
                 where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
                 ctx.warn(f"truncated {where}: the file ends inside frame {n}; "
                          f"still being written or cut")
                 return
+            _check_properties(block[1], path, fh.lineno - natoms)
             atoms = ase.io.read(io.StringIO("".join(block)), format="extxyz")
             yield frame_from_atoms(atoms, _step(atoms, n))
             n += 1
         if fh.cut:
             where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
             ctx.warn(f"truncated {where}: the last line is cut; still being written or cut")
+
+
+_PROPERTIES = re.compile(r"(?i)\bproperties=(\"[^\"]*\"|\S+)")
+
+
+def _check_properties(comment: str, path, lineno) -> None:
+    """Refuse a ``Properties=`` spec whose column counts are not small integers: ASE's parser
+    builds one entry per declared column, so a damaged count (``R:99999999999``) exhausts memory."""
+    m = _PROPERTIES.search(comment)
+    if not m:
+        return
+    fields = m.group(1).strip('"').split(":")
+    counts = fields[2::3]
+    if len(fields) % 3 or not all(c.isdigit() and 0 < int(c) <= 1000 for c in counts):
+        raise InputError(path, f"extended XYZ comment line {lineno}: malformed Properties= "
+                               f"({m.group(1)[:60]!r}; expected name:type:count with counts "
+                               f"1..1000)")
 
 
 def read_db(path, ctx: ReadContext):

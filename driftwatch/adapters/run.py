@@ -142,6 +142,8 @@ def checked(frames: Iterable, path) -> Iterator[Frame]:
         if not isinstance(fr, Frame):
             fr = frame_from_atoms(fr, i)
         step = fr.step
+        if not -2**62 < int(step) < 2**62:
+            raise InputError(path, f"ionic step number {str(step)[:30]} out of range")
         cell = np.asarray(fr.cell, float)
         pos = np.asarray(fr.positions, float)
         if cell.shape != (3, 3):

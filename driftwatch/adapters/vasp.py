@@ -305,6 +305,8 @@ def read_xdatcar(path, ctx: ReadContext):
                     symbols = head[5].split()
                     if len(symbols) != len(counts):
                         raise ValueError("element and count lines disagree")
+                    if not all(0 <= c for c in counts) or not 0 < sum(counts) <= 10_000_000:
+                        raise ValueError(f"atom counts {counts[:8]} out of range")
                 except (ValueError, IndexError) as exc:
                     raise InputError(path, f"not a VASP 5 XDATCAR header near line "
                                            f"{fh.lineno}: {exc}") from None
@@ -348,6 +350,11 @@ def read_poscar(path, ctx: ReadContext):
         text = "".join(fh)
     if not text.strip():
         raise InputError(path, "empty file")
+    for line in text.splitlines()[5:7]:           # the atom counts (VASP 4 or 5 layout)
+        if line.split() and all(w.isdigit() for w in line.split()):
+            if not 0 < sum(int(w) for w in line.split()) <= 10_000_000:
+                raise InputError(path, f"atom counts {line.strip()[:40]!r} out of range")
+            break
     atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
     ctx.title = text.splitlines()[0].strip() or None
     ctx.warn("a single structure (POSCAR/CONTCAR), not a trajectory: "
