@@ -37,8 +37,8 @@ def _check_ulm_header(path) -> None:
     size = os.path.getsize(path)
     with open(path, "rb") as fh:
         head = fh.read(48)
-    if len(head) < 48:
-        return                               # ASE reports the cut header itself
+    if len(head) < 48 or head[:8] not in (b"- of Ulm", b"AFFormat"):
+        return                               # ASE reports a cut or foreign header itself
     version, nitems, pos0 = (int(x) for x in np.frombuffer(head[24:48], "<i8"))
     if not (0 <= nitems <= size // 8 and 0 <= pos0 <= size - 8 * nitems):
         raise InputError(path, f"damaged ASE trajectory header ({nitems} frames, offset table "
