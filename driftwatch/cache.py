@@ -18,7 +18,6 @@ import fnmatch
 import hashlib
 import json
 import os
-import tempfile
 from pathlib import Path
 
 from . import records
@@ -143,17 +142,7 @@ class Cache:
         No fsync (unlike records): after a power cut an entry may be empty, which :meth:`get`
         treats as a miss, so durability is not needed and the audit saves a disk flush per run.
         """
-        self.folder.mkdir(parents=True, exist_ok=True)
-        target = self._file(key)
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=self.folder)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                json.dump({"schema": CACHE_SCHEMA, "key": key, "result": result}, fh,
-                          allow_nan=False)
-            os.replace(tmp, target)
-        except BaseException:
-            try:
-                os.unlink(tmp)
-            except FileNotFoundError:
-                pass
-            raise
+        from .records import write_text_atomic
+        write_text_atomic(self._file(key), json.dumps({"schema": CACHE_SCHEMA, "key": key,
+                                                       "result": result}, allow_nan=False),
+                          fsync=False)

@@ -55,8 +55,11 @@ def dumps(record: dict, indent: int | None = 1) -> str:
                       allow_nan=False)
 
 
-def write_text_atomic(path, text: str) -> Path:
-    """Write ``text`` to ``path`` atomically (temp file in the same folder, fsync, rename)."""
+def write_text_atomic(path, text: str, *, fsync: bool = True) -> Path:
+    """Write ``text`` to ``path`` atomically (temp file in the same folder, fsync, rename).
+
+    ``fsync=False`` skips the flush to disk (for caches: after a power cut an entry may be empty,
+    which a reader must treat as missing)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
@@ -64,8 +67,9 @@ def write_text_atomic(path, text: str) -> Path:
         # surrogateescape: names that are not UTF-8 on disk are written back as their own bytes
         with os.fdopen(fd, "w", encoding="utf-8", errors="surrogateescape") as fh:
             fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
+            if fsync:
+                fh.flush()
+                os.fsync(fh.fileno())
         os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the file the user's usual mode
         os.replace(tmp, path)
     except BaseException:
