@@ -127,7 +127,9 @@ def _known() -> str:
 def _detect_file(path: Path) -> str:
     head = peek(path, PEEK_BYTES)
     if not head:
-        if path.stat().st_size:
+        # a compressed file that yields nothing is corrupt; a plain one was empty when peeked
+        # (it may be growing: a live job's output)
+        if strip_compression(path.name) != path.name and path.stat().st_size:
             raise InputError(path, "compressed file is corrupt or cut before any data "
                                    "(nothing could be decompressed)")
         raise InputError(path, "empty file")
