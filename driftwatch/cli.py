@@ -142,7 +142,7 @@ def _fmt(x, spec=".3g"):
 
 def _inspect_table(rec: dict) -> str:
     """Per-step table: deformation to the nearest types, sign (layers), spglib at 1e-3 Å."""
-    from .rules import NAMES
+    from .rules import NAMES, grid_index
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
     if dim == 2:
@@ -160,8 +160,7 @@ def _inspect_table(rec: dict) -> str:
             row += [f"{f['sign']:+d}" if f["sign"] else "0", _fmt(f["chiral_distance"])]
         spec = f.get("symmetry")
         if spec:
-            import numpy as np
-            i = int(np.argmin(np.abs(np.log(np.asarray(spec["symprec"]) / 1e-3))))
+            i = grid_index(spec, 1e-3)
             row.append(f"{spec['group_symbol'][i]} ({spec['group'][i]})")
         else:
             row.append("")
@@ -212,10 +211,10 @@ def _cmd_inspect(args) -> int:
 
 
 def _cmd_tolerance(args) -> int:
-    from . import config as _config, geometry, symmetry
+    from . import config as _config, geometry
     from .adapters import read_run
     from .rules import advice
-    from .track import symprec_grid
+    from .track import symmetry_entry
     cfg = _config.load(args.config)
     run = read_run(args.path, format=args.format)
     n = len(run.cells)
@@ -224,12 +223,8 @@ def _cmd_tolerance(args) -> int:
         from .errors import InputError
         raise InputError(args.path, f"frame {args.frame} out of range (the run has {n} frames)")
     geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
-    s = cfg["symmetry"]
-    spec = symmetry.spectrum(run.cells[i], run.positions[i], run.numbers, symprecs=symprec_grid(cfg),
-                             angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
-                             bisect=s["bisect"], precision=s["precision"])
-    spec["displacement"] = symmetry.drift_table(run.cells[i], run.positions[i], run.numbers, spec,
-                                                vacuum_axis=geo.vacuum_axis)
+    spec = symmetry_entry(run, i, geo, cfg)
+    spec.pop("calls", None)
     adv = advice(spec)
     out = {"source": run.source, "frame": i, "dimension": geo.dimension, "spectrum": spec,
            "advice": adv}

@@ -188,14 +188,10 @@ class Tracker:
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
         geo = self._geometry(run)
-        chosen = track.select_frames(track.lattice_table(run, geo, cfg["lattice"]["metric"])
-                                     ["deformation"], cfg["selection"])
-        n = len(run.cells)
-        if not newest and n > 1:
-            chosen = [i for i in chosen if i < n - 1]
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
             self._spectra, self._spectra_for = {}, (geo.dimension, geo.vacuum_axis)
-        record = track.record_from_run(run, cfg, geo=geo, frames=chosen, spectra=self._spectra)
+        record = track.record_from_run(run, cfg, geo=geo, spectra=self._spectra,
+                                       skip_newest=not newest)
         record["timing"]["total_s"] = time.perf_counter() - t0
         return record
 

@@ -40,7 +40,7 @@ import numpy as np
 from . import lattice2d, lattice3d
 
 __all__ = ["evaluate", "summarize", "FLAGS", "bravais_of_group", "ORDER", "advice", "gate",
-           "campaign_advice", "advice_item", "SAFE_MARGIN"]
+           "campaign_advice", "advice_item", "SAFE_MARGIN", "grid_index"]
 
 FLAGS = {
     "snapped": "warning", "approaching": "info", "handedness-flip": "warning",
@@ -113,10 +113,14 @@ def _flag(code, frame, frames, message, type_=None, value=None, threshold=None):
             "type": type_, "message": message, "value": value, "threshold": threshold}
 
 
+def grid_index(spec: dict, symprec: float) -> int:
+    """Index of the grid value of a spectrum nearest to ``symprec`` (grids include rule values)."""
+    return int(np.argmin(np.abs(np.log(np.asarray(spec["symprec"], float) / symprec))))
+
+
 def _at(spec: dict, symprec: float, key: str):
-    """Verdict of a spectrum at the grid value nearest to ``symprec`` (grids include rule values)."""
-    s = np.asarray(spec["symprec"], float)
-    i = int(np.argmin(np.abs(np.log(s / symprec))))
+    """Verdict of a spectrum at the grid value nearest to ``symprec``, with the group symbol."""
+    i = grid_index(spec, symprec)
     return spec[key][i], spec["group_symbol"][i]
 
 

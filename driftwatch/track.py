@@ -16,7 +16,8 @@ from . import __version__, config as _config, geometry, lattice2d, lattice3d, re
 from .adapters import Run, read_run
 from .errors import GeometryError, LatticeError, SymmetryError
 
-__all__ = ["analyze", "record_from_run", "lattice_table", "select_frames", "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
+__all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "select_frames",
+           "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
 
 LAYER_TYPES = lattice2d.TYPES
 BULK_TYPES = lattice3d.TYPES
@@ -113,7 +114,9 @@ def _frame_entries(run: Run, table: dict) -> list[dict]:
     return out
 
 
-def _symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float]) -> dict:
+def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = None) -> dict:
+    """spglib's tolerance spectrum of frame ``i`` plus the displacement to each group it saw."""
+    grid = symprec_grid(cfg) if grid is None else grid
     s = cfg["symmetry"]
     spec = symmetry.spectrum(run.cells[i], run.positions[i], run.numbers, symprecs=grid,
                              angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
@@ -124,7 +127,7 @@ def _symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float]) -> dict
 
 
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
-                    spectra: dict | None = None) -> dict:
+                    spectra: dict | None = None, skip_newest: bool = False) -> dict:
     """The record of an already read run.
 
     Args:
@@ -132,6 +135,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         frames: spglib on exactly these frame indices (default: :func:`select_frames`).
         spectra: a cache {frame index: symmetry entry}; entries found are reused, new ones are added
             (the live tracker keeps it across growing runs).
+        skip_newest: leave the last frame out of the default selection (a live step not yet final).
     """
     t0 = time.perf_counter()
     if geo is None:
@@ -141,14 +145,18 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     table = lattice_table(run, geo, cfg["lattice"]["metric"])
     entries = _frame_entries(run, table)
     t1 = time.perf_counter()
-    chosen = sorted(set(frames)) if frames is not None else select_frames(table["deformation"],
-                                                                          cfg["selection"])
+    if frames is not None:
+        chosen = sorted(set(frames))
+    else:
+        chosen = select_frames(table["deformation"], cfg["selection"])
+        if skip_newest and len(entries) > 1:
+            chosen = [i for i in chosen if i < len(entries) - 1]
     grid = symprec_grid(cfg)
     spectra = {} if spectra is None else spectra
     calls = computed = 0
     for i in chosen:
         if i not in spectra:
-            spectra[i] = _symmetry_entry(run, i, geo, cfg, grid)
+            spectra[i] = symmetry_entry(run, i, geo, cfg, grid)
             calls += int(spectra[i].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
         entries[i]["symmetry"] = spectra[i]

@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 from collections import Counter
 
-import numpy as np
+from ..rules import grid_index
 
 __all__ = ["DEFAULT_COMMON", "final_spectrum", "verdict_at", "group_breakpoints",
            "flag_counts", "tolerance_table"]
@@ -31,8 +31,7 @@ def final_spectrum(record: dict) -> dict | None:
 
 def verdict_at(spec: dict, symprec: float, key: str = "group"):
     """spglib's verdict (group number, or lattice symbol) at the grid value nearest to ``symprec``."""
-    s = np.asarray(spec["symprec"], float)
-    i = int(np.argmin(np.abs(np.log(s / symprec))))
+    i = grid_index(spec, symprec)
     if key == "group":
         return int(spec["group"][i] or 0), str(spec["group_symbol"][i])
     return spec["lattice"][i]
