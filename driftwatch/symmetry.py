@@ -51,7 +51,12 @@ import os
 import warnings
 
 import numpy as np
-import spglib
+
+# spglib's C code prints "spglib: ssm_get_exact_positions failed." and the like straight to the
+# process's stderr when an internal step fails at one tolerance and it recovers by itself; on an
+# audit that is dozens of meaningless lines on the user's terminal. Off unless the user set it.
+os.environ.setdefault("SPGLIB_WARNING", "OFF")
+import spglib  # noqa: E402
 
 from .errors import ConfigError, GeometryError, LatticeError, SymmetryError
 

@@ -491,3 +491,31 @@ def test_lattice_shortcut_agrees_with_asking_spglib_everywhere():
         assert lat(fast) == lat(full)
         assert fast["calls"] <= full["calls"]
     assert fast["lattice_assumed_from"] is not None  # the flat MoS2 lattice is hp everywhere
+
+
+def test_spglib_c_warnings_do_not_reach_the_terminal():
+    """A near-fcc Al4 cell (invented, from the benchmark generator) on which spglib 2.8's C code
+    prints 'spglib: ssm_get_exact_positions failed.' to stderr at symprec 0.0665 Å and then
+    recovers. Through driftwatch nothing reaches stderr; without the module's SPGLIB_WARNING
+    default the same call prints (checked first, so the test fails if spglib stops printing)."""
+    code = """
+import numpy as np, sys
+cell = np.array([[4.0173716283, -0.0032609382, -0.0099133546],
+                 [-0.0032609382, 4.035694279, 0.0299458273],
+                 [-0.0099133546, 0.0299458273, 4.032050166]])
+frac = np.array([[-0.0129035574, -0.0026871823, -0.0052851861],
+                 [0.0185336113, 0.4888076923, 0.5082698883],
+                 [0.5021442183, 0.0049948107, 0.5007640151],
+                 [0.5037018101, 0.505821095, -0.0041919343]])
+if sys.argv[1] == "raw":
+    import spglib
+    spglib.get_symmetry_dataset((cell, frac, [13] * 4), symprec=0.06651059775050343)
+else:
+    from driftwatch import symmetry
+    symmetry.spectrum(cell, frac @ cell, [13] * 4, symprecs=[0.06651059775050343], bisect=False)
+"""
+    env = {k: v for k, v in os.environ.items() if k != "SPGLIB_WARNING"}
+    run = lambda mode: subprocess.run([sys.executable, "-W", "ignore", "-c", code, mode], env=env,
+                                      capture_output=True, text=True, check=True).stderr
+    assert "spglib:" in run("raw")
+    assert run("driftwatch") == ""
