@@ -287,6 +287,26 @@ def test_genuine_vasp_files_match_ase(path, tmp_path):
     assert run.pbc.all()
 
 
+@pytest.mark.parametrize("which", ["generated", "genuine"])
+def test_outcar_scanner_equals_ases_chunk_parser(which, traj, tmp_path):
+    """The focused OUTCAR scanner reads cells, positions, forces, stress and the free energy of
+    every step exactly as ASE's chunk parser does (ase.io.read 'vasp-out' is the reference),
+    on a generated 8-step variable-cell OUTCAR with stress and on ASE's genuine OUTCAR; and it,
+    not the ASE fallback, read every step."""
+    from ase.io.vasp_parsers.vasp_outcar_parsers import build_header
+    from driftwatch.adapters import vasp
+    path = (vasp_gen.write_outcar(tmp_path / "OUTCAR", traj) if which == "generated"
+            else _unzipped(VASP / "OUTCAR_example_1.gz", tmp_path))
+    run = read_run(path)
+    _assert_same_as_ase(run, path, "vasp-out")
+    with open(path) as fd:
+        build_header(fd)
+        scanned = list(vasp._scan_outcar_steps(fd, len(run.numbers)))
+    assert len(scanned) == len(run) == (len(traj.cells) if which == "generated" else 1)
+    if which == "generated":
+        assert run.stress is not None and np.abs(run.stress).max() > 0
+
+
 def test_genuine_vasp_symmetry_settings():
     """Values as printed in the genuine files (ASE test data): OUTCAR_example_1 has
     'ISYM = 0', the two vasprun.xml files ISYM 2 and SYMPREC 1e-5 in <parameters>."""
