@@ -240,12 +240,21 @@ def _reduce(arr, single):
     return _selling(vx, vy, single)
 
 
-def _superbase(bases):
-    """Labelled obtuse superbase (n, 3, 2), conorms (n, 3), single flag, conorm noise (n,)."""
+def _superbase(bases, labelled=True):
+    """Labelled obtuse superbase (n, 3, 2), conorms (n, 3), single flag, conorm noise (n,).
+
+    ``labelled=False`` returns (None, conorms, single, None): the fast path for invariants.
+    """
     arr, single = _frames(bases)
     arr, scale = _scaled(arr, single)
     vx, vy = _reduce(arr, single)
     n = arr.shape[0]
+    if not labelled:
+        q = -np.stack([vx[:, 1] * vx[:, 2] + vy[:, 1] * vy[:, 2],
+                       vx[:, 0] * vx[:, 2] + vy[:, 0] * vy[:, 2],
+                       vx[:, 0] * vx[:, 1] + vy[:, 0] * vy[:, 1]], axis=1)
+        q.sort(axis=1)
+        return None, np.maximum(q, 0.0) * (scale * scale)[:, None], single, None
     # Rounding the input already carries (Å^2): v_i = sum_j C_ij row_j with integer C,
     # so each input row's rounding (eps |row_j|) reaches v_i as e_i = eps sum_j |C_ij| |row_j|
     # and a conorm -v_i.v_j as ~ e_i |v_j| + e_j |v_i|.  For a reduced input C is small
@@ -291,7 +300,7 @@ def conorms(bases):
 
     Rounding residues below the reduction tolerance (~1e-13 |v|^2) are set to 0.
     """
-    _, p, single, _ = _superbase(bases)
+    _, p, single, _ = _superbase(bases, labelled=False)
     return _out(p, single)
 
 
@@ -301,7 +310,7 @@ def root_invariant(bases):
     Determines the lattice up to isometry (rotation or mirror).  Square of side
     a -> (0, a, a); hexagonal with shortest vector a -> (a/√2, a/√2, a/√2).
     """
-    _, p, single, _ = _superbase(bases)
+    _, p, single, _ = _superbase(bases, labelled=False)
     return _out(np.sqrt(p), single)
 
 
