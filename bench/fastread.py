@@ -1,4 +1,7 @@
-"""Focused line scanners for cells, positions, forces and energies (candidates for driftwatch.adapters).
+"""Focused line scanners for cells, positions, forces and energies (the reference scanners).
+
+The OUTCAR one went into ``driftwatch/adapters/vasp.py`` (``_scan_outcar_steps``, reading ASE's
+own chunks); the pw.x one is still a candidate for ``driftwatch/adapters/espresso.py``.
 
 ASE's OUTCAR reader parses every line of every ionic step with a chain of chunk parsers; the
 scanners here look only for the few markers that carry the per-step structure and results and

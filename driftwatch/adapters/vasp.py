@@ -8,8 +8,10 @@ All readers stream: memory holds one ionic step at a time.
   the tests): energy = ``e_fr_energy`` - PSTRESS*V + (e_0 - e_fr of the last SC step)
   is ASE's ``energy``; we keep ASE's force-consistent ``free_energy``
   = ``e_fr_energy`` - PSTRESS*V.
-* OUTCAR: ASE's own chunk parser (``ase.io.vasp_parsers.vasp_outcar_parsers``),
-  driven one ionic step at a time over complete lines only.
+* OUTCAR: ASE's header parser for the species, then a focused scanner over ASE's own chunks
+  (one ionic step at a time, complete lines only) for cells, positions, forces, stress and the
+  free energy; ASE's chunk parser (``ase.io.vasp_parsers.vasp_outcar_parsers``) reads the rest
+  of the file from the first step the scanner cannot read exactly as ASE would.
 * XDATCAR: a small line scanner (ASE's reader cannot stream and fails on a cut file).
 
 Settings: ISYM, SYMPREC, ISIF, IBRION, NSW as VASP reports them in its output
