@@ -249,12 +249,12 @@ def _superbase(bases, labelled=True):
     arr, scale = _scaled(arr, single)
     vx, vy = _reduce(arr, single)
     n = arr.shape[0]
+    # q_k = conorm of the pair that does not contain k
+    q = -np.stack([vx[:, 1] * vx[:, 2] + vy[:, 1] * vy[:, 2],
+                   vx[:, 0] * vx[:, 2] + vy[:, 0] * vy[:, 2],
+                   vx[:, 0] * vx[:, 1] + vy[:, 0] * vy[:, 1]], axis=1)
     if not labelled:
-        q = -np.stack([vx[:, 1] * vx[:, 2] + vy[:, 1] * vy[:, 2],
-                       vx[:, 0] * vx[:, 2] + vy[:, 0] * vy[:, 2],
-                       vx[:, 0] * vx[:, 1] + vy[:, 0] * vy[:, 1]], axis=1)
-        q.sort(axis=1)
-        return None, np.maximum(q, 0.0) * (scale * scale)[:, None], single, None
+        return None, np.maximum(np.sort(q, axis=1), 0.0) * (scale * scale)[:, None], single, None
     # Rounding the input already carries (Å^2): v_i = sum_j C_ij row_j with integer C,
     # so each input row's rounding (eps |row_j|) reaches v_i as e_i = eps sum_j |C_ij| |row_j|
     # and a conorm -v_i.v_j as ~ e_i |v_j| + e_j |v_i|.  For a reduced input C is small
@@ -265,10 +265,6 @@ def _superbase(bases, labelled=True):
     c1 = np.abs(np.rint((vy * r0x[:, None] - vx * r0y[:, None]) / det))
     e = c0 * np.hypot(r0x, r0y)[:, None] + c1 * np.hypot(r1x, r1y)[:, None]
     noise = _NOISE * 2 * e.max(axis=1) * np.sqrt((vx * vx + vy * vy).max(axis=1))
-    # q_k = conorm of the pair that does not contain k
-    q = -np.stack([vx[:, 1] * vx[:, 2] + vy[:, 1] * vy[:, 2],
-                   vx[:, 0] * vx[:, 2] + vy[:, 0] * vy[:, 2],
-                   vx[:, 0] * vx[:, 1] + vy[:, 0] * vy[:, 1]], axis=1)
     order = np.argsort(q, axis=1, kind="stable")  # k_small, k_mid, k_large
     base = 3 * np.arange(n)[:, None]
     # v0 opposite the smallest conorm, v1 opposite the largest, v2 opposite the middle one
