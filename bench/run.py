@@ -71,17 +71,14 @@ def bench_config(mode: str):
     All modes: the 8 naive tolerances are quoted in ``report.common_symprecs`` (so they are exact
     points of the symprec grid) and spglib's angle tolerance is pymatgen's default (5 deg), so the
     verdicts can be compared with the naive loop's. ``mode``: ``default`` (the shipped frame
-    selection), ``proposed`` (first, last and on-change frames only: ``selection.every: 0``,
-    ``selection.on_change: 0.1 Å``),
+    selection: first, last and on-change frames), ``screen`` (the ``screen`` preset: first and last
+    frames, 8 grid points, no bisection),
     ``ends`` (first and last frame only), ``every`` (spglib on every frame, grid = the 8 tolerances,
     no bisection).
     """
     from driftwatch import config
     over = {"report.common_symprecs": [f"{s!r} Å" for s in NAIVE_TOLS],
             "symmetry.angle_tolerance": f"{ANGLE_TOL} deg"}
-    if mode == "proposed":
-        over["selection.every"] = 0
-        over["selection.on_change"] = "0.1 Å"
     if mode == "ends":
         over["selection.every"] = 0
         over["selection.on_change"] = "1e9 Å"
@@ -94,7 +91,7 @@ def bench_config(mode: str):
                      "rules.spglib_overcall.symprec": f"{NAIVE_TOLS[5]!r} Å",
                      "rules.atoms_break_lattice.symprec": f"{NAIVE_TOLS[3]!r} Å",
                      "rules.atoms_settled.symprec": f"{NAIVE_TOLS[3]!r} Å"})
-    return config.load(overrides=over)
+    return config.load("screen" if mode == "screen" else None, overrides=over)
 
 
 # ----------------------------------------------------------------------------- compare
@@ -146,7 +143,7 @@ def verdicts_of(rec):
 def section_compare(a):
     print("\n[compare] naive ASE + pymatgen loop vs driftwatch (same files, one process)")
     import pymatgen.symmetry.analyzer  # noqa: F401  (import cost shown separately below)
-    modes = ("default", "proposed", "ends", "every")
+    modes = ("default", "screen", "ends", "every")
     cfgs = {m: bench_config(m) for m in modes}
     tot = dict.fromkeys(("naive",) + modes, 0.0)
     mismatches, checked, spglib_frames, calls = ({m: 0 for m in modes} for _ in range(4))
@@ -191,10 +188,10 @@ def section_compare(a):
     row("compare", "naive loop CPU per frame (mean)", 1e3 * tot["naive"] / nframes, "ms", None,
         None, f"of which ASE reading {1e3 * NAIVE_READ[0] / nframes:.2f} ms; spglib calls "
         f"{8 * nframes} (8 per frame)")
-    for mode, target in (("default", 20.0), ("proposed", 20.0), ("ends", None), ("every", 3.0)):
+    for mode, target in (("default", 20.0), ("screen", None), ("ends", None), ("every", 3.0)):
         ratio = tot["naive"] / tot[mode]
         label = {"default": "default audit (shipped config)",
-                 "proposed": "audit with every: 0, on_change: 0.1 Å (proposed)",
+                 "screen": "audit with the screen preset (ends, 8-point grid, no bisection)",
                  "ends": "audit with spglib on first and last frame only",
                  "every": "every-frame mode (8 tolerances)"}[mode]
         row("compare", f"speed-up: {label}", ratio, "x", f">= {target:g}x" if target else None,
@@ -339,7 +336,7 @@ def section_audit(a):
     from driftwatch import symmetry
     make_inputs.make_campaign(Path(a.inputs) / "audit", "vasprun", 4, a.audit_runs, a.steps)
     root = make_inputs.campaign_dir(Path(a.inputs) / "audit", "vasprun", 4)
-    cfg = bench_config("proposed") if a.audit_config == "proposed" else bench_config("default")
+    cfg = bench_config(a.audit_config)
     import shutil
     times, cpus = {}, {}
     for label, kw in (("1 worker", {"workers": 1}), ("2 workers", {"workers": 2})):
@@ -413,7 +410,7 @@ def main(argv=None):
     p.add_argument("--json", type=Path, help="also write the table as JSON")
     p.add_argument("--compare-runs", type=int, help="runs per campaign in the naive comparison")
     p.add_argument("--audit-runs", type=int)
-    p.add_argument("--audit-config", choices=("default", "proposed"), default="proposed")
+    p.add_argument("--audit-config", choices=("default", "screen"), default="default")
     a = p.parse_args(argv)
     a.formats, a.sizes, a.steps = list(make_inputs.FORMATS), list(make_inputs.SIZES), 50
     if a.quick:

@@ -19,6 +19,9 @@ def test_presets_differ_where_documented():
     assert config.load("monolayer")["geometry"]["require_layer"] is True
     assert config.load("tolerance")["selection"]["all_frames"] is True
     assert "snapped" in config.load("bulk")["fail_on"]
+    screen = config.load("screen")
+    assert screen["symmetry"]["bisect"] is False and screen["selection"]["every"] == 0
+    assert screen["symmetry"]["grid_points"] < config.load("default")["symmetry"]["grid_points"]
 
 
 @pytest.mark.parametrize("text,value", [
