@@ -645,3 +645,25 @@ def test_peak_memory_does_not_grow_beyond_the_frames_kept(tmp_path):
               f"file {file_per_frame:.0f} B/frame")
         assert growth < 2.5 * kept + 256
         assert growth < 0.5 * file_per_frame          # the text itself is not kept
+
+
+@pytest.mark.parametrize("units", ["crystal", "bohr", "angstrom", "alat", "", "crystal_sg"])
+def test_plain_positions_equal_ases_card_parser_bit_for_bit(units):
+    """The fast ATOMIC_POSITIONS path gives exactly what ASE's get_atomic_positions gives, for
+    each unit pw.x prints (and the alat default), and hands expressions ('1/3', ASE's infix
+    maths), crystal_sg and malformed if_pos flags back to ASE (None)."""
+    from ase.io.espresso import get_atomic_positions
+    from driftwatch.adapters.espresso import _plain_positions
+    rng = np.random.default_rng(3)
+    cell = np.diag([3.1, 3.3, 17.0]) + rng.normal(scale=0.1, size=(3, 3))
+    rows = [f"Mo  {x:.10f} {y:.10f} {z:.10f}" + ("  1 1 0" if k % 2 else "") + "\n"
+            for k, (x, y, z) in enumerate(rng.random((6, 3)))]
+    header = f"ATOMIC_POSITIONS ({units})\n" if units else "ATOMIC_POSITIONS\n"
+    got = _plain_positions(header, rows, cell, 5.9)
+    if units == "crystal_sg":
+        assert got is None
+        return
+    ref = np.array([c[1] for c in get_atomic_positions([header] + rows, 6, cell=cell, alat=5.9)])
+    assert np.array_equal(got, ref)
+    assert _plain_positions(header, ["Mo 1/3 2/3 0.5\n"] + rows[1:], cell, 5.9) is None
+    assert _plain_positions(header, ["Mo 0.1 0.2 0.3 1 x 0\n"] + rows[1:], cell, 5.9) is None
