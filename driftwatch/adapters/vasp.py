@@ -303,8 +303,7 @@ def read_outcar(path, ctx: ReadContext):
     """
     from ase.data import atomic_numbers
     from ase.io import ParseError
-    from ase.io.vasp_parsers.vasp_outcar_parsers import (OutcarHeaderParser, build_header,
-                                                         outcarchunks)
+    from ase.io.vasp_parsers.vasp_outcar_parsers import OutcarHeaderParser, build_header
 
     reported, ctx.title = _outcar_header(path)
     _merge_incar(path, ctx, reported)
@@ -326,16 +325,17 @@ def read_outcar(path, ctx: ReadContext):
                             energy=free, forces=forces, stress=stress)
                 step += 1
         except _ScanStopped:
-            yield from _outcar_with_ase(path, ctx, outcarchunks, OutcarHeaderParser, skip=step)
+            yield from _outcar_with_ase(path, ctx, skip=step)
             return
         _warn_if_unfinished(fd, step, ctx)
 
 
-def _outcar_with_ase(path, ctx, outcarchunks, header_parser, skip):
+def _outcar_with_ase(path, ctx, skip):
     """ASE's chunk parser over the whole file, yielding the steps from ``skip`` on."""
+    from ase.io.vasp_parsers.vasp_outcar_parsers import OutcarHeaderParser, outcarchunks
     step = 0
     with _WatchedLines(path) as fd:
-        for chunk in outcarchunks(fd, header_parser=header_parser(workdir=None)):
+        for chunk in outcarchunks(fd, header_parser=OutcarHeaderParser(workdir=None)):
             if step >= skip:
                 yield frame_from_atoms(chunk.build(), step)
             step += 1
