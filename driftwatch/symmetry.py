@@ -65,8 +65,10 @@ __all__ = [
     "symmetrize", "versions", "clear_cache",
 ]
 
-#: Default grid: 17 values log-spaced from 1e-5 Å to 0.5 Å (neighbours differ by a factor ~1.97).
-DEFAULT_SYMPRECS = tuple(float(s) for s in np.logspace(-5.0, math.log10(0.5), 17))
+#: Default grid: 17 values log-spaced from 1e-5 Å to 0.3 Å (neighbours differ by a factor ~1.90).
+#: Not higher: at 0.5 Å one spglib call on a rattled 192-atom cell took 1.0 s (0.16 s at 0.3 Å,
+#: 5 ms at 1e-5 Å; bench/README.md), and a tolerance of half an ångström says little about a crystal.
+DEFAULT_SYMPRECS = tuple(float(s) for s in np.logspace(-5.0, math.log10(0.3), 17))
 #: Default bracket precision: every breakpoint has ``high / low <= 1.02``.
 DEFAULT_PRECISION = 1.02
 
@@ -427,7 +429,7 @@ def spectrum(cell, positions, numbers, *, symprecs=None, angle_tolerance=-1.0, v
     ----------
     cell : (3, 3) rows are lattice vectors, Å.  positions : (N, 3) cartesian Å.  numbers : (N,) int.
     symprecs : grid of spglib ``symprec`` values, Å (default ``DEFAULT_SYMPRECS``: 17 log-spaced
-        values, 1e-5 to 0.5 Å). Sorted and de-duplicated.
+        values, 1e-5 to 0.3 Å). Sorted and de-duplicated.
     angle_tolerance : spglib's, degrees (-1: spglib's default). Not applied by spglib 2.8's layer
         routine (see ``angle_tolerance_applied``).
     vacuum_axis : None for bulk (space groups, 3D Pearson symbols), or 0/1/2 for a layer (layer

@@ -9,9 +9,9 @@ from driftwatch.errors import ConfigError
 @pytest.mark.parametrize("name", config.PRESETS)
 def test_presets_load_and_carry_units(name):
     cfg = config.load(name)
-    # lengths come back in Å as floats; the default grid spans 1e-5..0.5 Å (design.md)
+    # lengths come back in Å as floats; the default grid spans 1e-5..0.3 Å (our choice, bench/README.md)
     assert cfg["symmetry"]["symprec_min"] == pytest.approx(1e-5)
-    assert cfg["symmetry"]["symprec_max"] == pytest.approx(0.5)
+    assert cfg["symmetry"]["symprec_max"] == pytest.approx(0.3)
     assert isinstance(cfg["geometry"]["vacuum_gap"], float)
 
 

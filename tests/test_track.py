@@ -121,7 +121,7 @@ def test_symprec_grid_contains_rule_values():
     grid = symprec_grid(cfg)
     for x in (1e-3, 1e-2, 0.1, 1e-5):
         assert min(abs(np.log(np.asarray(grid) / x))) < 1e-9
-    assert grid == sorted(grid) and grid[0] >= 1e-5 and grid[-1] <= 0.5
+    assert grid == sorted(grid) and grid[0] >= 1e-5 and grid[-1] <= 0.3
 
 
 def test_demo_campaign_shows_every_flag_and_one_layer_stays_chiral():
