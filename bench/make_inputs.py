@@ -29,6 +29,7 @@ decimals).
 from __future__ import annotations
 
 import argparse
+import shutil
 import sys
 import time
 from pathlib import Path
@@ -353,6 +354,9 @@ def make_campaign(out: Path, fmt: str, n_atoms: int, runs: int, steps: int) -> l
     for i in range(runs):
         traj = relaxation(n_atoms, steps, seed=i)
         paths.append(write_run(root / f"run-{i:04d}", fmt, traj))
+    for extra in root.glob("run-*"):     # runs left by a larger earlier campaign in this folder
+        if extra.is_dir() and extra.name[4:].isdigit() and int(extra.name[4:]) >= runs:
+            shutil.rmtree(extra)
     stamp.write_text(want)
     return paths
 

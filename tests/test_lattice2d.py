@@ -578,3 +578,18 @@ def test_bad_bases_raise_lattice_error(bad, words):
         L.distances([[1, 0], [0, 2]], metric="l1")
     with pytest.raises(ValueError, match="space"):
         L.distances([[1, 0], [0, 2]], space="ri")
+
+
+def test_blocked_reduction_equals_one_pass(monkeypatch):
+    # the reduction runs in blocks of frames for speed; with tiny blocks (boundaries
+    # everywhere, a ragged last block) the outputs must be bit-identical to one pass.
+    # Inputs mix random bases with exact square and hexagonal ones (ties).
+    rng = np.random.default_rng(53)
+    b = rng.normal(size=(101, 2, 2)) + np.array([[3.0, 0.0], [0.5, 3.2]])
+    b[::6] = [[3.0, 0.0], [0.0, 3.0]]
+    b[1::6] = [[3.0, 0.0], [1.5, 1.5 * 3 ** 0.5]]
+    one = L.obtuse_superbase(b), L.root_invariant(b), L.sign(b), L.distances(b)["hp"]
+    monkeypatch.setattr(L, "_BLOCK", 4)
+    blocked = L.obtuse_superbase(b), L.root_invariant(b), L.sign(b), L.distances(b)["hp"]
+    for x, y in zip(one, blocked):
+        assert x.shape == y.shape and np.array_equal(x, y)

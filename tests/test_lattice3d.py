@@ -613,3 +613,19 @@ def test_scale_covariance_and_empty_input():
     assert L.root_products(empty).shape == (0, 6)
     assert L.distances(empty)["cP"].shape == (0,)
     assert L.invariants(empty)["fano_roots"].shape == (0, 7)
+
+
+def test_blocked_reduction_and_ranking_equal_one_pass(monkeypatch):
+    # the reduction and the relabelling ranking run in blocks of frames for speed; with tiny
+    # blocks (boundaries everywhere, a ragged last block) every output must be bit-identical
+    # to one pass. Inputs mix random cells with exact cubic and fcc cells (ties everywhere).
+    rng = np.random.default_rng(47)
+    b = rng.normal(size=(103, 3, 3)) + np.diag([3.0, 3.5, 4.0])
+    b[::5] = np.eye(3) * 4.0
+    b[1::5] = [[0, 2, 2], [2, 0, 2], [2, 2, 0]]
+    one = L.selling_reduce(b), L.root_products(b), L.distances(b)["cF"]
+    monkeypatch.setattr(L, "_REDUCE_BLOCK", 7)
+    monkeypatch.setattr(L, "_KEY_BLOCK", 5)
+    blocked = L.selling_reduce(b), L.root_products(b), L.distances(b)["cF"]
+    for x, y in zip(one, blocked):
+        assert x.shape == y.shape and np.array_equal(x, y)
