@@ -365,6 +365,13 @@ def _cfg(rec, *keys):
     return _fnum(d)
 
 
+def _span(rec):
+    """The symprec range (Å) the record's config mapped: (symprec_min, symprec_max)."""
+    sym = (rec.get("config") or {}).get("symmetry") or {}
+    lo, hi = _fnum(sym.get("symprec_min")), _fnum(sym.get("symprec_max"))
+    return (lo, hi) if lo and hi and 0 < lo < hi else (1e-5, 0.3)
+
+
 def _common(rec):
     vals = ((rec.get("config") or {}).get("report") or {}).get("common_symprecs")
     vals = [v for v in (_fnum(x) for x in (vals or [])) if v and v > 0]
@@ -657,7 +664,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
                          f"the bottom axis. Near rectangular lattices the root-space distance is the "
                          f"larger of the two (it grows like the square root of a deformation)."))
     parts.append('<div class="grid2">')
-    parts.append(_figure(plots.breakpoint_histogram(gb, lb, common),
+    span = _span(recs[0][1]) if recs else (1e-5, 0.3)
+    parts.append(_figure(plots.breakpoint_histogram(gb, lb, common, span),
                          "Where spglib's verdict on each run's final structure changes, pooled over "
                          "runs (log symprec, Å). Dotted lines: common choices. A common choice sitting "
                          "in a crowd of breakpoints gives verdicts that flip with small changes."))

@@ -496,7 +496,7 @@ def campaign_scatter(points) -> str:
     return _svg(fig)
 
 
-def breakpoint_histogram(group_bps, lattice_bps, common=(), span=(1e-5, 0.5)) -> str:
+def breakpoint_histogram(group_bps, lattice_bps, common=(), span=(1e-5, 0.3)) -> str:
     """Distribution of breakpoint positions (geometric centre, Å) across runs: group and lattice kinds."""
     with _ctx():
         fig = _figure(6.2, 3.6, left=0.1, right=0.97, bottom=0.14, top=0.86)
