@@ -664,8 +664,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
                          f"the bottom axis. Near rectangular lattices the root-space distance is the "
                          f"larger of the two (it grows like the square root of a deformation)."))
     parts.append('<div class="grid2">')
-    span = _span(recs[0][1]) if recs else (1e-5, 0.3)
-    parts.append(_figure(plots.breakpoint_histogram(gb, lb, common, span),
+    parts.append(_figure(plots.breakpoint_histogram(gb, lb, common, _span(recs[0][1] if recs else {})),
                          "Where spglib's verdict on each run's final structure changes, pooled over "
                          "runs (log symprec, Å). Dotted lines: common choices. A common choice sitting "
                          "in a crowd of breakpoints gives verdicts that flip with small changes."))
