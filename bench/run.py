@@ -97,17 +97,19 @@ def bench_config(mode: str):
 # ----------------------------------------------------------------------------- compare
 def naive_loop(paths, fmt):
     """What a user would write: ASE reads each trajectory, pymatgen's SpacegroupAnalyzer per
-    frame at 8 tolerances. Returns (cpu s, wall s, verdicts per run (frames, 8), frames)."""
+    frame at 8 tolerances. Returns (cpu s, wall s, verdicts per run (frames, 8), frames, the
+    trajectories ASE read)."""
     c0, w0 = cpu(), time.perf_counter()
     import ase.io
     from pymatgen.io.ase import AseAtomsAdaptor
     from pymatgen.symmetry.analyzer import SpacegroupAnalyzer
-    out, frames, t_read = [], 0, 0.0
+    out, frames, t_read, trajs = [], 0, 0.0, []
     for p in paths:
         v = []
         c = cpu()
         traj = ase.io.read(p, index=":", format=ASE_FORMAT[fmt])
         t_read += cpu() - c
+        trajs.append(traj)
         for atoms in traj:
             s = AseAtomsAdaptor.get_structure(atoms)
             v.append([SpacegroupAnalyzer(s, symprec=t, angle_tolerance=ANGLE_TOL)
@@ -115,25 +117,23 @@ def naive_loop(paths, fmt):
         out.append(np.array(v))
         frames += len(v)
     NAIVE_READ[0] += t_read
-    return cpu() - c0, time.perf_counter() - w0, out, frames
+    return cpu() - c0, time.perf_counter() - w0, out, frames, trajs
 
 
-def bare_spglib(paths, fmt):
+def bare_spglib(trajs):
     """spglib alone on the naive loop's questions: ``get_symmetry_dataset`` at the 8 tolerances on
-    every frame (the frames read by ASE beforehand, reading not timed). Returns (CPU s on all
-    frames, CPU s on the first and last frames only, verdicts per run (frames, 8)).
+    every frame of the trajectories the naive loop read. Returns (CPU s on all frames, CPU s on
+    the first and last frames only, verdicts per run (frames, 8)).
 
     Any tool that reports spglib's verdicts at these tolerances must make these calls (spglib's
     answer is not predictable without them, see bench/README.md), so naive / all-frames is the
     ceiling of an every-frame speed-up and naive / ends the ceiling of an audit that reports the 8
     verdicts on the first and last frame of each run (the least that says whether a run changed).
     """
-    import ase.io
     import spglib
     c_all = c_ends = 0.0
     out = []
-    for p in paths:
-        traj = ase.io.read(p, index=":", format=ASE_FORMAT[fmt])
+    for traj in trajs:
         v = []
         for i, atoms in enumerate(traj):
             cell = (np.asarray(atoms.cell), atoms.get_scaled_positions(wrap=False), atoms.numbers)
@@ -176,7 +176,7 @@ def section_compare(a):
     cfgs = {m: bench_config(m) for m in modes}
     tot = dict.fromkeys(("naive",) + modes, 0.0)
     mismatches, checked, spglib_frames, calls = ({m: 0 for m in modes} for _ in range(4))
-    nframes, bare, bare_mismatch, nruns = 0, [0.0, 0.0], [0], [0]
+    nframes, bare_all, bare_ends, bare_mismatch, nruns = 0, 0.0, 0.0, 0, 0
     for fmt in a.formats:
         for n in a.compare_sizes:
             paths = make_inputs.make_campaign(a.inputs, fmt, n, a.runs, a.steps)[:a.compare_runs]
@@ -184,24 +184,23 @@ def section_compare(a):
             # in machine load affects every contender alike
             c_naive, fr, naive, recs_of = 0.0, 0, [], {m: [] for m in modes}
             c_mode = dict.fromkeys(modes, 0.0)
-            c_bare = [0.0, 0.0]
+            c_all = c_ends = 0.0
             for p in paths:
-                c, _, v, k = naive_loop([p], fmt)
+                c, _, v, k, trajs = naive_loop([p], fmt)
                 c_naive, fr, naive = c_naive + c, fr + k, naive + v
-                c_all, c_ends, bv = bare_spglib([p], fmt)
-                c_bare = [c_bare[0] + c_all, c_bare[1] + c_ends]
-                bare_mismatch[0] += sum(not np.array_equal(x, y) for x, y in zip(bv, v))
-                nruns[0] += 1
+                t_all, t_ends, bv = bare_spglib(trajs)
+                c_all, c_ends = c_all + t_all, c_ends + t_ends
+                bare_mismatch += sum(not np.array_equal(x, y) for x, y in zip(bv, v))
+                nruns += 1
                 for mode, cfg in cfgs.items():
                     c, _, recs = driftwatch_loop([p], cfg)
                     c_mode[mode] += c
                     recs_of[mode] += recs
             nframes += fr
             tot["naive"] += c_naive
-            bare[0] += c_bare[0]
-            bare[1] += c_bare[1]
+            bare_all, bare_ends = bare_all + c_all, bare_ends + c_ends
             line = [f"{fmt}-{n}: naive {1e3 * c_naive / fr:.2f} ms/frame",
-                    f"ceilings: every x{c_naive / c_bare[0]:.2f}, ends x{c_naive / c_bare[1]:.1f}"]
+                    f"ceilings: every x{c_naive / c_all:.2f}, ends x{c_naive / c_ends:.1f}"]
             for mode, cfg in cfgs.items():
                 c, recs = c_mode[mode], recs_of[mode]
                 tot[mode] += c
@@ -226,14 +225,14 @@ def section_compare(a):
         None, f"of which ASE reading {1e3 * NAIVE_READ[0] / nframes:.2f} ms; spglib calls "
         f"{8 * nframes} (8 per frame)")
     row("compare", "ceiling: naive loop / spglib alone on every frame (8 tolerances)",
-        tot["naive"] / bare[0], "x", None, None,
-        f"{1e3 * bare[0] / nframes:.2f} ms CPU per frame in get_symmetry_dataset; the most any "
+        tot["naive"] / bare_all, "x", None, None,
+        f"{1e3 * bare_all / nframes:.2f} ms CPU per frame in get_symmetry_dataset; the most any "
         "every-frame mode asking spglib the same questions can gain")
     row("compare", "ceiling: naive loop / spglib alone on first and last frames (8 tolerances)",
-        tot["naive"] / bare[1], "x", None, None,
+        tot["naive"] / bare_ends, "x", None, None,
         "the most an audit reporting spglib's 8 verdicts at both ends of every run can gain")
-    row("compare", "  spglib alone equals the naive loop's verdicts", f"{nruns[0] - bare_mismatch[0]}"
-        f"/{nruns[0]}", "runs", "all", bare_mismatch[0] == 0)
+    row("compare", "  spglib alone equals the naive loop's verdicts", f"{nruns - bare_mismatch}"
+        f"/{nruns}", "runs", "all", bare_mismatch == 0)
     for mode, target in (("default", 20.0), ("screen", None), ("ends", None), ("every", 3.0)):
         ratio = tot["naive"] / tot[mode]
         label = {"default": "default audit (shipped config)",

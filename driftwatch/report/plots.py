@@ -496,8 +496,9 @@ def campaign_scatter(points) -> str:
     return _svg(fig)
 
 
-def breakpoint_histogram(group_bps, lattice_bps, common=(), span=(1e-5, 0.3)) -> str:
-    """Distribution of breakpoint positions (geometric centre, Å) across runs: group and lattice kinds."""
+def breakpoint_histogram(group_bps, lattice_bps, common, span) -> str:
+    """Distribution of breakpoint positions (geometric centre, Å) across runs: group and lattice kinds;
+    ``span`` (low, high) Å is the symprec range the audit mapped."""
     with _ctx():
         fig = _figure(6.2, 3.6, left=0.1, right=0.97, bottom=0.14, top=0.86)
         ax = fig.add_subplot()
