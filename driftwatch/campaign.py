@@ -567,44 +567,52 @@ def _slim(text: str, run_id: str) -> dict:
     spec = rec["frames"][-1].get("symmetry") or {}
     grid = spec.get("symprec") or []
     return {"summary": rec["summary"], "dimension": rec["geometry"]["dimension"],
-            "flags": [{"code": f["code"], "level": f["level"], "step": f["step"]}
+            "flags": [{"code": f["code"], "concerns": f.get("concerns"), "step": f["step"]}
                       for f in rec["flags"]],
             "grid": [min(grid), max(grid)] if grid else None,
+            "verdict": records.verdict_fields(rec),
             "csv": records.csv_row(rec, run_id), "kv": records.db_key_values(rec, run_id)}
 
 
+_TABLE_HEAD = ["run", "dim", "verdict", "lattice", "drift/Å (deformation)", "group", "flags"]
+
+
 def _summary_rows(ok: list[dict], failed: list[dict]) -> list[list[str]]:
+    """One row per run, every cell read from the record's verdict (``records.verdict_fields``)."""
     rows = []
     for r in ok:
-        s, rec = r["view"]["summary"], r["view"]
-        d = s.get("drift") or {}
-        drift = (f"{d['type']} {d['initial']:.3g}->{d['final']:.3g}"
-                 if d and d.get("initial") is not None and d.get("final") is not None else "-")
+        v, rec = r["view"]["verdict"], r["view"]
+        lat = (f"{v['lattice_initial']} -> {v['lattice_final']}"
+               if v["lattice_initial"] != v["lattice_final"] else v["lattice_final"])
+        drift = (f"{v['drift_type']} {v['drift_initial']:.3g}->{v['drift_final']:.3g}"
+                 if v.get("drift_type") and v.get("drift_initial") is not None else "-")
+        grp = (v["group_initial"] if v["group_initial"] == v["group_final"] else
+               f"{v['group_initial']} -> {v['group_final']}") or "-"
         flags = ",".join(sorted({f["code"] for f in rec["flags"]})) or "-"
-        rows.append([r["run"], str(rec["dimension"]) + "D",
-                     f"{s['initial']['type']} -> {s['final']['type']}", drift, s["verdict"], flags])
+        rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"], lat, drift, grp, flags])
     for f in failed:
-        rows.append([f["run"], "-", "-", "-", "failed", f["error"]])
+        rows.append([f["run"], "-", "failed", "-", "-", "-", f["error"]])
     return sorted(rows, key=lambda x: x[0])
 
 
 def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
-    head = ["run", "dim", "initial -> final", "drift/Å (deformation)", "verdict", "flags"]
+    head = _TABLE_HEAD
     shown = rows
     if len(rows) > TABLE_LIMIT:
-        shown = [r for r in rows if r[4] not in ("steady", "fixed-cell") or r[5] != "-"]
+        shown = [r for r in rows if r[2] != "kept" or r[6] != "-"]
+    n = len(head) - 1
     widths = [max(len(head[i]), *(len(r[i]) for r in shown)) if shown else len(head[i])
-              for i in range(5)]
+              for i in range(n)]
 
     def line(r):
-        return "  ".join(c.ljust(w) for c, w in zip(r, widths)) + "  " + r[5]
+        return "  ".join(c.ljust(w) for c, w in zip(r, widths)) + "  " + r[n]
 
     print(line(head), file=stream)
     for r in shown:
         print(line(r), file=stream)
     if len(shown) < len(rows):
-        print(f"({len(rows) - len(shown)} steady runs without flags not shown: see campaign.csv)",
-              file=stream)
+        print(f"({len(rows) - len(shown)} runs that kept their symmetry without flags not shown: "
+              f"see campaign.csv)", file=stream)
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
     print(f"\n{summary['runs']} runs ({summary['analysed']} analysed, {summary['cached']} from "
@@ -618,7 +626,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     if tol["recommended_symprec"]:
         print(f"campaign symprec: {tol['recommended_symprec']:.3g} Å ({tol['reason']})",
               file=stream)
-    print("flags and verdicts are diagnostics to check, not proofs of stability or of a phase",
+    print("verdicts and flags are diagnostics to check, not proofs of stability or of a phase",
           file=stream)
     print(f"outputs: {summary['output']}", file=stream)
 
@@ -634,7 +642,7 @@ def _csv_text(rows: list[dict]) -> str:
 
 def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=None,
           scheduler=None, db=None, use_cache=True, overwrite=False, report=True, progress="auto",
-          fail_on=(), executor: Executor | None = None, quiet: bool | None = None) -> dict:
+          reject_on=(), executor: Executor | None = None, quiet: bool | None = None) -> dict:
     """Audit a campaign: every run under ``roots`` analysed (or taken from the cache) and written out.
 
     Args:
@@ -652,7 +660,8 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         report: build the HTML report in ``OUTPUT/report``.
         progress: "auto" (a bar when stderr is a terminal; ``$DRIFTWATCH_PROGRESS`` overrides),
             "on" or "off".
-        fail_on: flag codes or levels; runs where one fires are listed in ``gated``.
+        reject_on: flag codes (or what they concern); runs where one was raised are listed in
+            ``rejected``.
         executor: any ``concurrent.futures.Executor`` to run on (overrides workers/scheduler).
         quiet: True: print no table; False: print it on stdout; None (default): on stdout when it is
             a terminal, else on stderr (stdout stays clean for ``--json`` and pipes) unless
@@ -700,7 +709,7 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
     current = {res.names[r["run"]] for r in ok}
     stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
     db_problems = _write_tables(out, db_name, ok, failed)
-    summary = _summary(out, roots, ok, failed, cfg, fail_on, res, len(todo), how, db_name,
+    summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
                        db_problems, stale)
     summary["elapsed_s"] = time.perf_counter() - t0
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
@@ -790,13 +799,13 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict]) -
                               _csv_text(sorted(rows, key=lambda row: row["run"])))
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
     db_rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
-                                  "dw_error": f["error"][:300]}) for f in failed]
+                                  "error": f["error"][:300]}) for f in failed]
     return write_rows(db_name, sorted(db_rows, key=lambda x: x[0]))
 
 
-def _summary(out, roots, ok, failed, cfg, fail_on, res, n_analysed, how, db_name, db_problems,
+def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_name, db_problems,
              stale) -> dict:
-    from .rules import gate
+    from .rules import select
     return {
         "schema": SCHEMA,
         "output": str(out),
@@ -805,11 +814,11 @@ def _summary(out, roots, ok, failed, cfg, fail_on, res, n_analysed, how, db_name
         "analysed": n_analysed,
         "cached": res.cached,
         "failed": sorted(failed, key=lambda f: f["run"]),
-        "gated": [{"run": r["run"], "code": f["code"], "step": f["step"]}
-                  for r in ok for f in gate(r["view"]["flags"], list(fail_on))],
+        "rejected": [{"run": r["run"], "code": f["code"], "step": f["step"]}
+                     for r in ok for f in select(r["view"]["flags"], list(reject_on))],
         "flag_counts": dict(sorted(Counter(c for r in ok for c in
                                            {f["code"] for f in r["view"]["flags"]}).items())),
-        "verdict_counts": dict(sorted(Counter([r["view"]["summary"]["verdict"] for r in ok]
+        "verdict_counts": dict(sorted(Counter([r["view"]["verdict"]["verdict"] for r in ok]
                                               + ["failed"] * len(failed)).items())),
         "tolerance": campaign_advice([{"run": r["run"], "summary": r["view"]["summary"],
                                        "grid": r["view"]["grid"]} for r in ok],

@@ -4,7 +4,7 @@ Exit codes (all subcommands):
   0  success
   1  an input, config or output problem (one-line message; ``--debug`` for the traceback)
   2  usage error (bad options)
-  3  a flag listed in ``--fail-on`` (or the config's ``fail_on``) fired
+  3  a flag listed in ``--reject-on`` (or the config's ``reject_on``) was raised
   4  audit only: finished, but some runs could not be analysed (see the summary)
 """
 
@@ -16,20 +16,22 @@ import sys
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_GATED, EXIT_PARTIAL = 0, 1, 2, 3, 4
 
 _EPILOG = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
-3 a --fail-on flag fired, 4 (audit) some runs failed.
+3 a flag named in --reject-on was raised, 4 (audit) some runs failed.
+Verdicts: gained, lost, changed or kept symmetry (lattice and spglib group).
 Flags are diagnostics to check, not proofs of stability or of a phase."""
 
 
-def _common(p: argparse.ArgumentParser, gate=True) -> None:
+def _common(p: argparse.ArgumentParser, reject=True) -> None:
     p.add_argument("-c", "--config", metavar="YAML|PRESET",
                    help="config file or preset (default, monolayer, bulk, tolerance); "
                         "default: $DRIFTWATCH_CONFIG or 'default'")
     p.add_argument("--json", action="store_true", help="print machine-readable JSON on stdout")
     p.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
-    if gate:
-        p.add_argument("--fail-on", metavar="CODES", default=None,
-                       help="comma-separated flag codes or levels (info, warning) that make the "
-                            "command exit 3, e.g. 'snapped,handedness-flip'")
+    if reject:
+        p.add_argument("--reject-on", metavar="FLAGS", default=None,
+                       help="comma-separated flag codes (or lattice, structure, tolerance, code, "
+                            "any) that make the command exit with status 3, e.g. "
+                            "'lattice-gained,group-lost'")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -47,7 +49,7 @@ def _parser() -> argparse.ArgumentParser:
                        formatter_class=fmt, epilog="examples:\n"
                        "  driftwatch inspect runs/L-03/            # a QE or VASP run folder\n"
                        "  driftwatch inspect relax.traj --json > record.json\n"
-                       "  driftwatch inspect OUTCAR --all-frames --fail-on snapped\n\n" + _EPILOG)
+                       "  driftwatch inspect OUTCAR --all-frames --reject-on lattice-gained\n\n" + _EPILOG)
     p.add_argument("path", help="trajectory file or run folder")
     p.add_argument("-f", "--format", help="adapter name, overriding detection (see --list-formats)")
     p.add_argument("--all-frames", action="store_true", help="run spglib on every frame")
@@ -81,11 +83,11 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("follow", help="follow a running VASP or QE job (or a growing trajectory)",
                        formatter_class=fmt, epilog="examples:\n"
                        "  driftwatch follow run/pw.out\n"
-                       "  driftwatch follow run/ --stop-on snapped            # soft stop via STOPCAR/.EXIT\n"
-                       "  driftwatch follow run/ --stop-on snapped --dry-run\n\n" + _EPILOG)
+                       "  driftwatch follow run/ --stop-on lattice-gained     # soft stop via STOPCAR/.EXIT\n"
+                       "  driftwatch follow run/ --stop-on lattice-gained --dry-run\n\n" + _EPILOG)
     p.add_argument("path", help="output file or run folder")
     p.add_argument("-f", "--format", help="adapter name, overriding detection")
-    p.add_argument("--stop-on", metavar="CODES", help="request the code's soft stop when one fires")
+    p.add_argument("--stop-on", metavar="FLAGS", help="request the code's soft stop when one of these flags is raised (a change counts once it held for rules.persistence.steps steps)")
     p.add_argument("--dry-run", action="store_true", help="say what the soft stop would do; write nothing")
     p.add_argument("--idle", type=float, default=300.0, metavar="SECONDS",
                    help="end after this long without growth (default 300)")
@@ -100,7 +102,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("path", help="structure or trajectory file, or run folder")
     p.add_argument("-f", "--format", help="adapter name, overriding detection")
     p.add_argument("--frame", type=int, default=-1, help="frame index (default: last)")
-    _common(p, gate=False)
+    _common(p, reject=False)
 
     p = sub.add_parser("report", help="rebuild HTML/CSV reports from saved run records",
                        formatter_class=fmt, epilog="examples:\n"
@@ -108,7 +110,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("records", nargs="+", help="record files (JSON) or folders of them")
     p.add_argument("-o", "--output", metavar="DIR", required=True, help="report folder")
     p.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
-    _common(p, gate=False)
+    _common(p, reject=False)
 
     p = sub.add_parser("formats", help="list the input formats driftwatch reads")
     p.add_argument("--json", action="store_true")
@@ -116,19 +118,11 @@ def _parser() -> argparse.ArgumentParser:
     return top
 
 
-def _fail_codes(args, cfg) -> list[str]:
-    if getattr(args, "fail_on", None):
-        return [c.strip() for c in args.fail_on.split(",") if c.strip()]
-    return list(cfg.get("fail_on", []))
-
-
-def _check_codes(codes):
-    from .errors import ConfigError
-    from .rules import FLAGS
-    bad = [c for c in codes if c not in FLAGS and c not in ("info", "warning")]
-    if bad:
-        raise ConfigError(f"--fail-on: unknown flag code(s) {', '.join(bad)} "
-                          f"(codes: {', '.join(FLAGS)}; levels: info, warning)")
+def _reject_codes(args, cfg) -> list[str]:
+    from .rules import check_codes
+    if getattr(args, "reject_on", None):
+        return check_codes(args.reject_on.split(","), "--reject-on")
+    return check_codes(cfg.get("reject_on", []), "reject_on (config)")
 
 
 def _print_json(obj) -> None:
@@ -140,54 +134,66 @@ def _fmt(x, spec=".3g"):
     return "-" if x is None else format(x, spec)
 
 
+def _shown_types(rec: dict) -> list[str]:
+    """Columns of the per-step table: every type the run started or ended at, gained, lost or
+    neared, and (layers) all four 2D types."""
+    s, dim = rec["summary"], rec["geometry"]["dimension"]
+    if dim == 2:
+        return ["op", "oc", "tp", "hp"]
+    lat = s["verdict"]["lattice"]
+    picks = [lat["initial"], lat["final"], lat["gained"], lat["lost"], lat.get("nearing"),
+             (s["drift"] or {}).get("type"), s["final"]["nearest"]]
+    return list(dict.fromkeys(t for t in picks if t and t != "aP"))
+
+
+def _group_cell(f: dict, symprec: float) -> str:
+    st = f.get("structure")
+    if not st:
+        return ""
+    from .rules import _group_of
+    g = _group_of(f, symprec)
+    return f"{g[1]} ({g[0]})" if g and g[0] else ("failed" if g else "")
+
+
 def _inspect_table(rec: dict) -> str:
-    """Per-step table: deformation to the nearest types, sign (layers), spglib at 1e-3 Å."""
-    from .rules import NAMES, grid_index
+    """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
+    verdict's symprec), then the verdict, flags and advice."""
+    from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
-    if dim == 2:
-        shown = ["op", "oc", "tp", "hp"]
-    else:  # the type the run moved toward, and the nearest types not reached at start and end
-        picks = [(s["drift"] or {}).get("type"), s["initial"]["nearest"], s["final"]["nearest"]]
-        shown = list(dict.fromkeys(t for t in picks if t))
-    head = ["step", "energy/eV"] + [f"{t}/Å" for t in shown] + (["sign", "chiral/Å"] if dim == 2 else [])
-    head += ["spglib@1e-3"]
+    v = s["verdict"]
+    shown = _shown_types(rec)
+    judge_at = v["structure"].get("symprec") or 1e-3
+    head = ["step", "energy/eV", "fmax/(eV/Å)"] + [f"{t}/Å" for t in shown]
+    head += (["sign", "chiral/Å"] if dim == 2 else []) + [f"group@{judge_at:g}Å"]
     rows = [head]
     for f in frames:
-        row = [str(f["step"]), _fmt(f["energy"], ".6f")]
+        row = [str(f["step"]), _fmt(f["energy"], ".6f"), _fmt(f.get("fmax"), ".3g")]
         row += [_fmt(f["deformation"][t]) for t in shown]
         if dim == 2:
             row += [f"{f['sign']:+d}" if f["sign"] else "0", _fmt(f["chiral_distance"])]
-        spec = f.get("symmetry")
-        if spec:
-            i = grid_index(spec, 1e-3)
-            row.append(f"{spec['group_symbol'][i]} ({spec['group'][i]})")
-        else:
-            row.append("")
+        row.append(_group_cell(f, judge_at))
         rows.append(row)
     widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
     lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in rows]
     lines.append("")
     kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
     lines.append(f"{rec['run']['source']}: {kind}, {rec['run']['n_frames']} frames, "
-                 f"{rec['run']['formula']}; deformation columns are Å of lattice-vector change "
-                 f"to each type")
-    for tag in ("initial", "final"):
-        st = s[tag]
-        near = (f"; nearest other type {st['nearest']} ({NAMES[st['nearest']]}) at deformation "
-                f"{_fmt(st['deformation'])} Å, root distance {_fmt(st['distance'])} Å"
-                if st["nearest"] else "")
-        lines.append(f"{tag:>8}: type {st['type']} ({NAMES[st['type']]}){near}")
-    lines.append(f" verdict: {s['verdict']}")
+                 f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
+                 f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")
+    lines.append(f" verdict: {v['text']}")
+    d = s.get("drift")
+    if d:
+        lines.append(f"   drift: deformation to {d['type']} ({NAMES[d['type']]}) "
+                     f"{_fmt(d['initial'])} Å -> {_fmt(d['final'])} Å")
     if s.get("lattice_note"):
         lines.append(f"    note: {s['lattice_note']}")
     tol = s["tolerance"]
-    if tol["recommended_symprec"]:
-        lines.append(f"  symprec: {tol['recommended_symprec']:.2g} Å suggested ({tol['reason']})")
+    lines.append(f" symprec: {tol['reason']}")
     for w in rec["run"]["warnings"]:
         lines.append(f" warning: {w}")
     for fl in rec["flags"]:
-        lines.append(f"    flag: [{fl['level']}] {fl['code']} (step {fl['step']}): {fl['message']}")
+        lines.append(f"    flag: {fl['code']} (step {fl['step']}): {fl['message']}")
     if not rec["flags"]:
         lines.append("   flags: none (a diagnostic, not a proof of stability)")
     return "\n".join(lines)
@@ -198,8 +204,7 @@ def _cmd_inspect(args) -> int:
     from .track import analyze
     overrides = {"selection.all_frames": True} if args.all_frames else None
     cfg = _config.load(args.config, overrides)
-    codes = _fail_codes(args, cfg)
-    _check_codes(codes)
+    codes = _reject_codes(args, cfg)
     rec = analyze(args.path, cfg, format=args.format)
     if args.output:
         records.write_json(rec, args.output)
@@ -207,7 +212,7 @@ def _cmd_inspect(args) -> int:
         _print_json(rec)
     else:
         print(_inspect_table(rec))
-    return EXIT_GATED if rules.gate(rec["flags"], codes) else EXIT_OK
+    return EXIT_GATED if rules.select(rec["flags"], codes) else EXIT_OK
 
 
 def _cmd_tolerance(args) -> int:
@@ -225,7 +230,8 @@ def _cmd_tolerance(args) -> int:
     geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
     spec = symmetry_entry(run, i, geo, cfg)
     spec.pop("calls", None)
-    adv = advice(spec)
+    adv = advice(spec, min_plateau=cfg["tolerance"]["min_plateau"],
+                 precision=getattr(run, "position_precision", None))
     out = {"source": run.source, "frame": i, "dimension": geo.dimension, "spectrum": spec,
            "advice": adv}
     if args.json:
@@ -244,8 +250,7 @@ def _cmd_tolerance(args) -> int:
     for g, d in spec["displacement"].items():
         print(f"to {d['symbol']} ({g}): atoms move rms {d['rms']:.3g} Å, max {d['max']:.3g} Å; "
               f"lattice strain {d['strain']:.2g}")
-    if adv["recommended_symprec"]:
-        print(f"suggested symprec {adv['recommended_symprec']:.2g} Å: {adv['reason']}")
+    print(f"symprec: {adv['reason']}")
     return EXIT_OK
 
 
@@ -253,15 +258,14 @@ def _cmd_audit(args) -> int:
     from . import config as _config
     from .campaign import audit
     cfg = _config.load(args.config)
-    codes = _fail_codes(args, cfg)
-    _check_codes(codes)
+    codes = _reject_codes(args, cfg)
     result = audit(args.roots, args.output, config=cfg, include=args.include, exclude=args.exclude,
                    workers=args.workers, scheduler=args.scheduler, db=args.db,
                    use_cache=not args.no_cache, overwrite=args.overwrite, report=not args.no_report,
-                   progress=args.progress, fail_on=codes, quiet=True if args.json else None)
+                   progress=args.progress, reject_on=codes, quiet=True if args.json else None)
     if args.json:
         _print_json(result)
-    if result.get("gated"):
+    if result.get("rejected"):
         return EXIT_GATED
     return EXIT_PARTIAL if result.get("failed") else EXIT_OK
 
@@ -270,16 +274,15 @@ def _cmd_follow(args) -> int:
     from . import config as _config
     from .live import follow
     cfg = _config.load(args.config)
-    codes = _fail_codes(args, cfg)
-    _check_codes(codes)
-    stop = [c.strip() for c in args.stop_on.split(",")] if args.stop_on else []
-    _check_codes(stop)
+    codes = _reject_codes(args, cfg)
+    from .rules import check_codes
+    stop = check_codes(args.stop_on.split(","), "--stop-on") if args.stop_on else []
     rec = follow(args.path, config=cfg, format=args.format, stop_on=stop, dry_run=args.dry_run,
                  idle=args.idle, poll=args.poll, output=args.output, quiet=args.json)
     if args.json:
         _print_json(rec)
-    from .rules import gate
-    return EXIT_GATED if gate(rec["flags"], codes) else EXIT_OK
+    from .rules import select
+    return EXIT_GATED if select(rec["flags"], codes) else EXIT_OK
 
 
 def _cmd_report(args) -> int:

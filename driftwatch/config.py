@@ -44,21 +44,34 @@ _KINDS = {
     "selection.every": "int",
     "selection.on_change": "length",
     "selection.all_frames": "bool",
-    "rules.snapped.within": "length",
-    "rules.snapped.start_away": "length",
-    "rules.approaching.fraction": "fraction",
-    "rules.approaching.start_away": "length",
+    "rules.lattice.within": "length",
+    "rules.lattice.start_away": "length",
+    "rules.lattice.left_beyond": "length",
+    "rules.lattice.nearing_fraction": "fraction",
+    "rules.structure.symprec": "length",
+    "rules.persistence.steps": "int",
     "rules.handedness_flip.min_chiral": "length",
-    "rules.tolerance_sensitive.low": "length",
-    "rules.tolerance_sensitive.high": "length",
-    "rules.spglib_overcall.symprec": "length",
-    "rules.spglib_overcall.far": "length",
+    "rules.symprec_dependent.low": "length",
+    "rules.symprec_dependent.high": "length",
+    "rules.loose_symprec.symprec": "length",
+    "rules.loose_symprec.far": "length",
     "rules.atoms_break_lattice.within": "length",
     "rules.atoms_break_lattice.symprec": "length",
-    "rules.atoms_settled.symprec": "length",
-    "rules.code_imposed.enabled": "bool",
+    "rules.held_by_code.enabled": "bool",
+    "tolerance.min_plateau": "fraction",
     "report.common_symprecs": ("list", "length"),
-    "fail_on": ("list", "str"),
+    "reject_on": ("list", "str"),
+}
+
+# Keys of driftwatch/config-1 files before the verdict model had a direction (old name -> new).
+_RENAMED = {
+    "rules.snapped": "rules.lattice", "rules.snapped.within": "rules.lattice.within",
+    "rules.snapped.start_away": "rules.lattice.start_away",
+    "rules.approaching": "rules.lattice", "rules.approaching.fraction": "rules.lattice.nearing_fraction",
+    "rules.approaching.start_away": "rules.lattice.start_away",
+    "rules.tolerance_sensitive": "rules.symprec_dependent",
+    "rules.spglib_overcall": "rules.loose_symprec", "rules.atoms_settled": "rules.structure",
+    "rules.code_imposed": "rules.held_by_code", "fail_on": "reject_on",
 }
 
 
@@ -170,11 +183,15 @@ def _merge(base: dict, over: dict, origin: str, prefix: str = "", origins=None) 
         if not isinstance(key, str):
             raise ConfigError(f"{origin}: key {key!r} is not text")
         if isinstance(value, dict):
+            if full in _RENAMED:
+                raise ConfigError(f"{origin}: {full!r} was renamed: use {_RENAMED[full]!r}")
             if not any(k.startswith(full + ".") for k in _KINDS):
                 raise ConfigError(f"{origin}: unknown key {full!r}")
             out[key] = _merge(out.get(key, {}) if isinstance(out.get(key), dict) else {},
                               value, origin, full + ".", origins)
         else:
+            if full in _RENAMED:
+                raise ConfigError(f"{origin}: {full!r} was renamed: use {_RENAMED[full]!r}")
             if full not in _KINDS:
                 hint = [k for k in _KINDS if k.rsplit(".", 1)[-1] == key]
                 extra = f" (did you mean {hint[0]!r}?)" if hint else ""
@@ -250,12 +267,22 @@ def _check_consistency(cfg: dict) -> None:
         raise ConfigError("symmetry.grid_points must be at least 2")
     if sym["precision"] <= 1.0:
         raise ConfigError("symmetry.precision is a ratio high/low and must be > 1")
-    ts = cfg["rules"]["tolerance_sensitive"]
+    r = cfg["rules"]
+    ts = r["symprec_dependent"]
     if not 0 < ts["low"] < ts["high"]:
-        raise ConfigError("rules.tolerance_sensitive.low must be > 0 and below .high")
-    if not 0 < cfg["rules"]["approaching"]["fraction"] <= 1:
-        raise ConfigError("rules.approaching.fraction must be in (0, 1]")
-
+        raise ConfigError("rules.symprec_dependent.low must be > 0 and below .high")
+    lat = r["lattice"]
+    if not 0 < lat["within"] <= lat["left_beyond"]:
+        raise ConfigError("rules.lattice.within must be > 0 and at most rules.lattice.left_beyond "
+                          "(a lost type must end at least as far away as a held one may be)")
+    if not lat["within"] < lat["start_away"]:
+        raise ConfigError("rules.lattice.start_away must be above rules.lattice.within")
+    if not 0 < lat["nearing_fraction"] <= 1:
+        raise ConfigError("rules.lattice.nearing_fraction must be in (0, 1]")
+    if r["persistence"]["steps"] < 1:
+        raise ConfigError("rules.persistence.steps must be at least 1")
+    if cfg["tolerance"]["min_plateau"] < 1:
+        raise ConfigError("tolerance.min_plateau is a factor in symprec and must be >= 1")
 
 def fingerprint(cfg: dict) -> str:
     """Stable hash of an effective (converted) config, for cache keys."""

@@ -4,18 +4,21 @@ documented soft stop, and a pass/fail check for job scripts.
 * :class:`SymmetryWatch` -- attach to any ASE optimizer (``opt.attach(watch, interval=n)``); it
   records each observed step, runs the rules, rewrites the run record atomically, and, by choice,
   only records, warns (:class:`SymmetryDriftWarning`) or stops the optimisation by raising
-  :class:`SymmetryCollapse` when a chosen flag fires.
+  :class:`SymmetryCollapse` when a chosen flag is raised.
 * :func:`follow` -- follow a growing pw.x / VASP output (or any format the adapters read): one line
   per *completed* ionic step, ending at the code's end marker or after ``idle`` seconds without
-  growth; optionally requests the code's soft stop when a chosen flag fires.
+  growth; optionally requests the code's soft stop when a chosen flag is raised.
 * :func:`request_stop` -- VASP: ``STOPCAR`` with ``LSTOP = .TRUE.`` in the run folder; pw.x:
   ``<prefix>.EXIT`` in its ``outdir``. Never kills a process; writes only inside the run folder.
 * :func:`check_run` -- ``(passed, record)`` for a finished run, for job scripts and workflow tools.
 
 The live record is the same record :func:`driftwatch.track.analyze` builds (schema
-``driftwatch/run-1``), plus a ``live`` section (how following ended, the soft stop requested, the
-flags that fired). A flag is a diagnostic that asks for a look, not a proof that a structure is
-(un)stable or that a phase is real: stopping on one is the user's call.
+``driftwatch/run-2``), plus a ``live`` section (how following ended, the soft stop requested, the
+flags raised). While a run goes on, a change of symmetry counts only once it has held for
+``rules.persistence.steps`` consecutive ionic steps (a relaxation passing through a type is not
+stopped there); when the run has ended, its end counts. A flag is a diagnostic that asks for a
+look, not a proof that a structure is (un)stable or that a phase is real: stopping on one is the
+user's call.
 """
 
 from __future__ import annotations
@@ -36,9 +39,9 @@ __all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker
            "request_stop", "check_run", "qe_stop_settings", "code_of_format", "END_MARKERS",
            "SPECTRUM_FLAGS"]
 
-#: Flags whose rules read spglib spectra of the newest frame (the others use invariants only).
-SPECTRUM_FLAGS = frozenset({"tolerance-sensitive", "spglib-overcall", "atoms-break-lattice",
-                            "atoms-settled", "code-imposed"})
+#: Flags whose rules read spglib on the newest frame (the others use invariants only).
+SPECTRUM_FLAGS = frozenset({"symprec-dependent", "loose-symprec", "atoms-break-lattice",
+                            "group-gained", "group-lost", "group-changed", "held-by-code"})
 
 #: Text the codes print once, when a run ends (searched in the last 8 kB of the output).
 #: pw.x: ``JOB DONE.`` (also printed after a soft stop) and its error banner; VASP: the timing block
@@ -54,7 +57,7 @@ END_MARKERS = {
 class SymmetryDriftWarning(UserWarning):
     """Issued by :class:`SymmetryWatch` in mode ``"warn"``, once per newly fired flag.
 
-    ``.flag`` holds the flag dict (``code``, ``level``, ``frame``, ``step``, ``type``, ``message``).
+    ``.flag`` holds the flag dict (``code``, ``concerns``, ``frame``, ``step``, ``type``, ``message``).
     """
 
     def __init__(self, message, flag=None):
@@ -66,7 +69,7 @@ class SymmetryCollapse(DriftwatchError, RuntimeError):
     """Raised by :class:`SymmetryWatch` in mode ``"stop"`` from inside the optimizer's observer call.
 
     ``.record`` is the run record at that step (already written to the watch's ``output``);
-    ``.flags`` the flags that fired.
+    ``.flags`` the flags raised.
     """
 
     def __init__(self, record: dict, flags: list[dict]):
@@ -79,22 +82,17 @@ class SymmetryCollapse(DriftwatchError, RuntimeError):
 
 # ---------------------------------------------------------------- helpers
 def _codes(codes, what="stop_on") -> list[str]:
-    """Flag codes or levels from a comma-separated string or an iterable; unknown ones raise."""
+    """Flag codes (or what they concern) from a comma-separated string or an iterable."""
     if codes is None:
         return []
     if isinstance(codes, str):
         codes = codes.split(",")
-    out = [str(c).strip() for c in codes if str(c).strip()]
-    bad = [c for c in out if c not in rules.FLAGS and c not in ("info", "warning")]
-    if bad:
-        raise ConfigError(f"{what}: unknown flag code(s) {', '.join(bad)} "
-                          f"(codes: {', '.join(rules.FLAGS)}; levels: info, warning)")
-    return out
+    return rules.check_codes([str(c) for c in codes], what)
 
 
 def _needs_spectra(codes) -> bool:
-    """True when a watched code (or level) can only fire with spglib run on the newest frame."""
-    return any(c in SPECTRUM_FLAGS or any(rules.FLAGS[s] == c for s in SPECTRUM_FLAGS)
+    """True when a watched code can only be raised with spglib run on the newest frame."""
+    return any(c in SPECTRUM_FLAGS or c == "any" or any(rules.FLAGS[s] == c for s in SPECTRUM_FLAGS)
                for c in codes)
 
 
@@ -178,8 +176,10 @@ class Tracker:
             geo = geometry.Geometry(3, None, None, f"{geo.reason}; analysed as bulk (layer=False)")
         return geo
 
-    def record(self, *, newest: bool = True) -> dict:
-        """The run record of the frames so far (see the class docstring)."""
+    def record(self, *, newest: bool = True, complete: bool = False) -> dict:
+        """The run record of the frames so far (see the class docstring). ``complete``: the run has
+        ended (its end counts); otherwise a change counts once it held for
+        ``rules.persistence.steps`` steps."""
         if not self.frames:
             raise InputError(self.source, "no completed ionic step yet")
         t0 = time.perf_counter()
@@ -191,7 +191,7 @@ class Tracker:
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
             self._spectra, self._spectra_for = {}, (geo.dimension, geo.vacuum_axis)
         record = track.record_from_run(run, cfg, geo=geo, spectra=self._spectra,
-                                       skip_newest=not newest)
+                                       skip_newest=not newest, complete=complete)
         record["timing"]["total_s"] = time.perf_counter() - t0
         return record
 
@@ -202,13 +202,13 @@ class SymmetryWatch:
 
     Usage::
 
-        watch = SymmetryWatch(atoms, mode="stop", stop_on=("snapped",), output="record.json")
+        watch = SymmetryWatch(atoms, mode="stop", stop_on=("lattice-gained",), output="record.json")
         opt = BFGS(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), trajectory="relax.traj")
         opt.attach(watch, interval=1)          # or interval=n, optimizer=opt (see below)
         try:
             opt.run(fmax=0.01)
         except SymmetryCollapse as exc:
-            print(exc, exc.record["summary"]["verdict"])
+            print(exc, exc.record["summary"]["verdict"]["text"])
 
     Give the *real* ``Atoms`` (not the filter): with a filter the optimizer's ``atoms`` is the filter
     (a filter passed here is unwrapped to its ``.atoms``). ASE calls observers with no arguments
@@ -216,8 +216,11 @@ class SymmetryWatch:
     unless the optimizer is known: pass ``optimizer=opt`` here or through
     ``opt.attach(watch, interval=n, optimizer=opt)`` to number them by ``opt.nsteps``.
 
-    Modes (what happens when a flag matching ``stop_on`` -- codes or the levels ``info``/``warning``
-    -- fires for the first time):
+    Modes (what happens when a flag matching ``stop_on`` -- flag codes, or what they concern:
+    ``lattice``, ``structure``, ``tolerance``, ``code`` -- is raised for the first time). While the
+    optimizer runs, a change counts only once it held for ``rules.persistence.steps`` consecutive
+    steps (default 10), so a relaxation that passes through a type on its way to a higher one is not
+    stopped on the way; :meth:`finish` judges the finished run on its end:
 
     * ``"record"``: nothing besides ``watch.fired`` and the record;
     * ``"warn"``: ``warnings.warn(SymmetryDriftWarning(...))``, once per new flag;
@@ -247,7 +250,7 @@ class SymmetryWatch:
 
     MODES = ("record", "warn", "stop")
 
-    def __init__(self, atoms, *, config=None, mode="record", stop_on=("snapped",), output=None,
+    def __init__(self, atoms, *, config=None, mode="record", stop_on=("lattice-gained",), output=None,
                  layer=None, optimizer=None, lazy=False):
         if mode not in self.MODES:
             raise ConfigError(f"mode: must be one of {', '.join(self.MODES)}, got {mode!r}")
@@ -280,27 +283,28 @@ class SymmetryWatch:
     def finish(self) -> dict | None:
         """The complete record (spglib on the newest frame too), written to ``output``.
 
-        Only needed with ``lazy=True``; flags that only the newest frame's spectrum reveals fire
-        here (warned or raised as in ``__call__``).
+        Call it when the optimizer has finished: the run's end counts from here (a change need not
+        have held ``rules.persistence.steps`` steps), and with ``lazy=True`` the flags that only the
+        newest frame's spectrum reveals are raised here (warned or raised as in ``__call__``).
         """
         if len(self._tracker):
-            self._update(newest=True, stacklevel=3)
+            self._update(newest=True, stacklevel=3, complete=True)
         return self.record
 
-    def _update(self, newest: bool, stacklevel: int) -> None:
+    def _update(self, newest: bool, stacklevel: int, complete: bool = False) -> None:
         try:
-            rec = self._tracker.record(newest=newest)
+            rec = self._tracker.record(newest=newest, complete=complete)
         except DriftwatchError as exc:
             if self.error is None:
                 warnings.warn(f"driftwatch: cannot analyse the relaxation ({exc}); it continues "
                               f"unwatched", RuntimeWarning, stacklevel=stacklevel)
             self.error = exc
             return
-        new = [f for f in rules.gate(rec["flags"], self.stop_on) if _key(f) not in self._seen]
+        new = [f for f in rules.select(rec["flags"], self.stop_on) if _key(f) not in self._seen]
         self._seen.update(_key(f) for f in new)
         self.fired.extend(new)
         rec["live"] = {"observer": {"mode": self.mode, "stop_on": self.stop_on,
-                                    "calls": self._calls, "complete": newest},
+                                    "calls": self._calls, "complete": complete},
                        "fired": [dict(f) for f in self.fired]}
         self.record = rec
         if self.output is not None and _rank() == 0:
@@ -527,7 +531,8 @@ def follow(path, *, config=None, format=None, stop_on=(), dry_run=False, idle=30
         path: output file or run folder (re-resolved while the job writes).
         config: preset, YAML path, mapping or loaded config.
         format: adapter name, overriding detection.
-        stop_on: flag codes or levels; when one fires, request the code's soft stop once
+        stop_on: flag codes (or what they concern); when one is raised (a change that held for
+            ``rules.persistence.steps`` steps), request the code's soft stop once
             (:func:`request_stop`; VASP and pw.x runs only). The job then stops by itself.
         dry_run: say what the soft stop would write, write nothing.
         idle: seconds without growth after which following ends.
@@ -540,7 +545,7 @@ def follow(path, *, config=None, format=None, stop_on=(), dry_run=False, idle=30
     Returns:
         The final record (``track.analyze`` content of all completed steps) with a ``live``
         section: ``ended`` (why following stopped), ``stop`` (the soft-stop request or None),
-        ``stop_on``, ``dry_run``, ``fired`` (the ``stop_on`` flags that fired).
+        ``stop_on``, ``dry_run``, ``fired`` (the ``stop_on`` flags raised).
 
     Raises:
         InputError: no completed step appeared within ``idle`` seconds (names the last problem), or
@@ -648,7 +653,7 @@ class _Follower:
         if self.printed == 0:
             self.say(_header(rec))
         self.report(rec)
-        hits = rules.gate(rec["flags"], self.stop_codes)
+        hits = rules.select(rec["flags"], self.stop_codes)
         for fl in hits:
             if _key(fl) not in {_key(x) for x in self.fired}:
                 self.fired.append(fl)
@@ -680,9 +685,9 @@ class _Follower:
         if frames:
             t.replace(frames)
             t.source, t.warnings, t.code_settings = ctx.path, list(ctx.warnings), dict(ctx.settings)
-        final = t.record(newest=True)
+        final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
-        for fl in rules.gate(final["flags"], self.stop_codes):
+        for fl in rules.select(final["flags"], self.stop_codes):
             if _key(fl) not in {_key(x) for x in self.fired}:
                 self.fired.append(fl)
         if self.ended.startswith("end marker") and self.stop_info:
@@ -690,8 +695,8 @@ class _Follower:
         final["live"] = self.live_section()
         if self.output is not None:
             records.write_json(final, self.output)
-        self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps, verdict "
-                 f"{final['summary']['verdict']}"
+        self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps; "
+                 f"{final['summary']['verdict']['text']}"
                  + (f"; record {self.output}" if self.output is not None else ""))
         return final
 
@@ -724,7 +729,7 @@ def _header(rec: dict) -> str:
 
 def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
-    within = cfg["rules"]["snapped"]["within"]
+    within = cfg["rules"]["lattice"]["within"]
     last = len(frames) - 1
     by_frame: dict[int, list] = {}
     for f in new:
@@ -736,15 +741,15 @@ def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:
             line += "  new: " + " ".join(_flag_text(f) for f in by_frame[i])
         say(line)
         for f in by_frame.get(i, ()):
-            say(f"  flag [{f['level']}] {f['code']} (step {f['step']}): {f['message']}")
+            say(f"  flag {f['code']} (step {f['step']}): {f['message']}")
     if start > last and new:           # flags that appeared without a new step (end of run)
         for f in new:
-            say(f"  flag [{f['level']}] {f['code']} (step {f['step']}): {f['message']}")
+            say(f"  flag {f['code']} (step {f['step']}): {f['message']}")
 
 
 def _soft_stop(tracker: Tracker, flag: dict, dry_run, prefix, outdir, say) -> dict:
     code = code_of_format(tracker.format)
-    reason = (f"flag {_flag_text(flag)} fired at ionic step {flag['step']} of "
+    reason = (f"flag {_flag_text(flag)} raised at ionic step {flag['step']} of "
               f"{Path(tracker.source).name}: {flag['message']}")
     info = request_stop(tracker.run_dir, code, reason=reason, dry_run=dry_run, prefix=prefix,
                         outdir=outdir)
@@ -756,19 +761,20 @@ def _soft_stop(tracker: Tracker, flag: dict, dry_run, prefix, outdir, say) -> di
 
 
 # ---------------------------------------------------------------- job scripts
-def check_run(path, *, config=None, fail_on=("snapped",), format=None) -> tuple[bool, dict]:
-    """Pass/fail verdict of a finished run (file or run folder) and its record.
+def check_run(path, *, config=None, reject_on=("lattice-gained",), format=None) -> tuple[bool, dict]:
+    """Pass/fail of a finished run (file or run folder) and its record.
 
-    ``passed`` is False when a flag listed in ``fail_on`` (codes, or the levels ``info`` /
-    ``warning``) fired. For job scripts and workflow managers, after a relaxation::
+    ``passed`` is False when a flag listed in ``reject_on`` (codes, or what flags concern:
+    ``lattice``, ``structure``, ``tolerance``, ``code``, or ``any``) was raised. For job scripts and
+    workflow managers, after a relaxation::
 
-        ok, record = check_run("relax/", fail_on=("snapped", "handedness-flip"))
+        ok, record = check_run("relax/", reject_on=("lattice-gained", "handedness-flip"))
         if not ok:
             sys.exit(3)
 
-    A pass is not a proof of stability: it only says none of the chosen diagnostics fired.
+    A pass is not a proof of stability: it only says none of the chosen diagnostics was raised.
     Raises ``InputError`` when the run cannot be read.
     """
-    codes = _codes(fail_on, "fail_on")
+    codes = _codes(reject_on, "reject_on")
     record = track.analyze(path, _config.coerce(config), format=format)
-    return not rules.gate(record["flags"], codes), record
+    return not rules.select(record["flags"], codes), record

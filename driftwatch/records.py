@@ -1,4 +1,4 @@
-"""The run record (JSON, schema ``driftwatch/run-1``), its CSV row and its ase.db row.
+"""The run record (JSON, schema ``driftwatch/run-2``), its CSV row and its ase.db row.
 
 The record is documented field by field in ``docs/record.md``. Writers are atomic: a temporary file in
 the destination folder, flushed and fsynced, then renamed over the target, so a killed process leaves
@@ -15,11 +15,12 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["SCHEMA", "new_record", "write_json", "read_json", "write_text_atomic", "dumps",
+__all__ = ["SCHEMA", "OLD_SCHEMAS", "upgrade", "new_record", "write_json", "read_json", "write_text_atomic", "dumps",
            "remove_stale_temporaries",
-           "csv_row", "CSV_COLUMNS", "db_key_values", "safe_name"]
+           "csv_row", "CSV_COLUMNS", "db_key_values", "verdict_fields", "safe_name"]
 
-SCHEMA = "driftwatch/run-1"
+SCHEMA = "driftwatch/run-2"
+OLD_SCHEMAS = ("driftwatch/run-1",)
 _UMASK = os.umask(0)
 os.umask(_UMASK)
 
@@ -111,6 +112,11 @@ def read_json(path) -> dict:
         data = json.load(fh)
     if not isinstance(data, dict) or not str(data.get("schema", "")).startswith("driftwatch/run-"):
         raise ValueError(f"{path}: not a driftwatch run record (no 'schema: driftwatch/run-N')")
+    if data["schema"] != SCHEMA:
+        try:
+            data = upgrade(data)
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ValueError(f"{path}: cannot read record of schema {data['schema']!r} ({exc})") from exc
     return data
 
 
@@ -141,6 +147,7 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
             "code_settings": dict(run.code_settings),
             "warnings": list(run.warnings),
             "fixed_cell": fixed_cell,
+            "position_precision": getattr(run, "position_precision", None),
         },
         "geometry": {
             "dimension": int(geo.dimension),
@@ -155,9 +162,31 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
 
 
 CSV_COLUMNS = ("run", "source", "format", "dimension", "n_frames", "n_atoms", "formula",
-               "fixed_cell", "initial_type", "final_type", "nearest_type", "final_distance_A",
-               "final_deformation_A", "verdict", "flags", "recommended_symprec_A",
-               "final_group_at_1e-3", "warnings", "error")
+               "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
+               "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
+               "group_verdict", "group_symprec_A", "group_initial", "group_final",
+               "group_from_step", "flags", "recommended_symprec_A", "warnings", "error")
+"""Columns of ``campaign.csv``; the same names (without the ``_A`` unit suffix) are the ase.db keys
+(:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed)."""
+
+
+def verdict_fields(record: dict) -> dict:
+    """The verdict of a record as flat fields (Å for lengths): one name and one value per fact,
+    shared by the CSV row, the ase.db keys, the terminal tables and the report."""
+    s = record["summary"]
+    v, d = s["verdict"], s.get("drift") or {}
+    lat, st = v["lattice"], v["structure"]
+    grp = lambda g: f"{g['symbol']} ({g['group']})" if g and g.get("group") else ""
+    return {
+        "verdict": v["direction"], "lattice_verdict": lat["direction"],
+        "lattice_initial": lat["initial"], "lattice_final": lat["final"],
+        "lattice_from_step": lat.get("from_step"),
+        "drift_type": d.get("type"), "drift_initial": d.get("initial"), "drift_final": d.get("final"),
+        "group_verdict": st.get("direction"), "group_symprec": st.get("symprec"),
+        "group_initial": grp(st.get("initial")), "group_final": grp(st.get("final")),
+        "group_from_step": st.get("from_step"),
+        "recommended_symprec": s["tolerance"].get("recommended_symprec"),
+    }
 
 
 def csv_row(record: dict, run_id: str = "") -> dict:
@@ -165,20 +194,16 @@ def csv_row(record: dict, run_id: str = "") -> dict:
     if "error" in record and "summary" not in record:
         return {c: "" for c in CSV_COLUMNS} | {"run": run_id, "source": record.get("source", ""),
                                                 "verdict": "failed", "error": record["error"]}
-    s, r = record["summary"], record["run"]
-    fin = s["final"]
-    return {
-        "run": run_id, "source": r["source"], "format": r["format"],
-        "dimension": record["geometry"]["dimension"], "n_frames": r["n_frames"],
-        "n_atoms": r["n_atoms"], "formula": r["formula"], "fixed_cell": r["fixed_cell"],
-        "initial_type": s["initial"]["type"], "final_type": fin["type"],
-        "nearest_type": fin["nearest"] or "", "final_distance_A": _fmt(fin["distance"]),
-        "final_deformation_A": _fmt(fin["deformation"]), "verdict": s["verdict"],
-        "flags": " ".join(sorted({f["code"] for f in record["flags"]})),
-        "recommended_symprec_A": _fmt(s["tolerance"]["recommended_symprec"]),
-        "final_group_at_1e-3": s["tolerance"].get("group_at_1e-3") or "",
-        "warnings": " | ".join(r["warnings"]), "error": "",
-    }
+    r, v = record["run"], verdict_fields(record)
+    row = {"run": run_id, "source": r["source"], "format": r["format"],
+           "dimension": record["geometry"]["dimension"], "n_frames": r["n_frames"],
+           "n_atoms": r["n_atoms"], "formula": r["formula"], "fixed_cell": r["fixed_cell"],
+           "flags": " ".join(sorted({f["code"] for f in record["flags"]})),
+           "warnings": " | ".join(r["warnings"]), "error": ""}
+    for key, val in v.items():
+        col = key + "_A" if key + "_A" in CSV_COLUMNS else key
+        row[col] = _fmt(val) if isinstance(val, float) else ("" if val is None else val)
+    return row
 
 
 def _fmt(x):
@@ -186,27 +211,53 @@ def _fmt(x):
 
 
 def db_key_values(record: dict, run_id: str) -> dict:
-    """ase.db key-value pairs for a run (names valid for ase.db; no reserved keys, no None)."""
-    s = record["summary"]
-    kv = {
-        "run_id": run_id,
-        "dw_dimension": int(record["geometry"]["dimension"]),
-        "dw_frames": int(record["run"]["n_frames"]),
-        "dw_fixed_cell": bool(record["run"]["fixed_cell"]),
-        "initial_type": s["initial"]["type"],
-        "final_type": s["final"]["type"],
-        "verdict": s["verdict"],
-        "n_flags": len(record["flags"]),
-        "source_format": record["run"]["format"],
-    }
-    if s["final"]["nearest"]:
-        kv["nearest_type"] = s["final"]["nearest"]
-    for key, val in (("final_distance", s["final"]["distance"]),
-                     ("final_deformation", s["final"]["deformation"]),
-                     ("initial_deformation", s["initial"]["deformation"]),
-                     ("recommended_symprec", s["tolerance"]["recommended_symprec"])):
-        if val is not None and math.isfinite(val):
-            kv[key] = float(val)
+    """ase.db key-value pairs for a run: the CSV's names, no unit suffix (lengths in Å), no empty
+    values; ``flag_<code>`` (dashes as underscores) for each flag raised. Documented in
+    ``docs/record.md``; query with ``ase db runs.db "verdict=gained"``."""
+    r = record["run"]
+    kv = {"run_id": run_id, "dimension": int(record["geometry"]["dimension"]),
+          "n_frames": int(r["n_frames"]), "fixed_cell": bool(r["fixed_cell"]),
+          "source_format": r["format"], "n_flags": len(record["flags"])}
+    for key, val in verdict_fields(record).items():
+        if isinstance(val, float):
+            if math.isfinite(val):
+                kv[key] = float(val)
+        elif val not in (None, ""):
+            kv[key] = val
     for code in sorted({f["code"] for f in record["flags"]}):
         kv["flag_" + code.replace("-", "_")] = True
     return kv
+
+
+def upgrade(record: dict, cfg: dict | None = None) -> dict:
+    """A record of an older schema (``driftwatch/run-1``) brought to this one, for reports: flags and
+    summary are judged again from its frames with its own config (the new threshold keys taken from
+    the default where the old config had none). Its frames carry no per-frame group relations, so
+    the structure level is compared by group number and operation count only."""
+    if record.get("schema") == SCHEMA:
+        return record
+    if record.get("schema") not in OLD_SCHEMAS:
+        raise ValueError(f"unknown record schema {record.get('schema')!r}")
+    from . import config as _config, rules, track
+    rec = json.loads(json.dumps(record))
+    cfg = _config.load() if cfg is None else cfg
+    old = rec.get("config") or {}
+    for key, new in (("snapped", "lattice"),):
+        for k in ("within", "start_away"):
+            if k in old.get("rules", {}).get(key, {}):
+                cfg["rules"][new][k] = old["rules"][key][k]
+    precs = track.structure_symprecs(cfg)
+    for f in rec["frames"]:
+        spec = f.get("symmetry")
+        if not spec:
+            continue
+        idx = [rules.grid_index(spec, s) for s in precs]
+        f["structure"] = {"symprec": precs, "group": [spec["group"][i] for i in idx],
+                          "symbol": [spec["group_symbol"][i] for i in idx],
+                          "operations": [spec["operations"][i] for i in idx],
+                          "relation": ["unknown"] * len(idx)}
+    rec["schema"] = SCHEMA
+    rec["run"].setdefault("position_precision", None)
+    rec["flags"], rec["summary"] = rules.judge(rec, cfg)
+    rec["upgraded_from"] = record.get("schema")
+    return rec

@@ -1,34 +1,47 @@
-"""Flags and the run summary, from a record's frames and the config's thresholds.
+"""The verdict (which way a run's symmetry went), its flags, and tolerance advice, from a record.
 
-Every flag is a dict ``{"code", "level", "frame", "step", "type", "message", "value", "threshold"}``.
-Lattice thresholds are compared with the Lipschitz *deformation* measure (Å), never with root-space
-distances (see ``docs/flags.md``). A flag is a diagnostic that asks for a look, not a proof of a phase
-or of (in)stability.
+A run is judged at two levels, and the record holds the judgement once (``summary.verdict``):
 
-Codes (ours):
+* **lattice**: the Lipschitz *deformation* (Å) to every Bravais type on every frame. A type is *held*
+  while its deformation is at most ``rules.lattice.within``. The run *gained* a type it ends holding
+  after starting at least ``start_away`` from it, *lost* a type it held at the start and ends at least
+  ``left_beyond`` from, *changed* when both happened (or, for a layer, when its handedness reversed),
+  and *kept* otherwise. A type held only in the middle of the run was *passed through*.
+* **structure**: spglib's group of the first and last frames at ``rules.structure.symprec`` (and at
+  each of ``report.common_symprecs``), compared by group-subgroup relation
+  (:func:`driftwatch.symmetry.relation`): supergroup = gained, subgroup = lost, neither = changed.
 
-================== ======= ===========================================================================
-code               level   meaning
-================== ======= ===========================================================================
-snapped            warning ends within ``rules.snapped.within`` of a type it started at least
-                           ``start_away`` from (the most specific such type; ``frame`` = first frame
-                           from which it stays within)
-approaching        info    the deformation to a type fell by ``fraction`` of its initial value (from at
-                           least ``start_away``) without reaching it
-handedness-flip    warning a layer's 2D lattice ends with the opposite sign to its start, its mirror
-                           deformation above ``min_chiral`` at the start and at the end (sign changes of
-                           a lattice settling onto a mirror-symmetric one are not flagged)
-tolerance-sensitive warning spglib's group for the final frame changes between ``low`` and ``high``
-spglib-overcall    warning spglib's lattice-only type for the final frame at ``symprec`` is one the
-                           lattice is more than ``far`` (deformation) from
-atoms-break-lattice info   the final lattice is within ``within`` of a type, but the structure's group at
-                           ``symprec`` has a lower lattice type: the atoms break the lattice symmetry
-atoms-settled      info    the structure's group at ``rules.atoms_settled.symprec`` gained operations
-                           from the first to the last frame while spglib's lattice-only type stayed the
-                           same (symmetry drift carried by the atoms)
-code-imposed       info    the DFT code's own symmetry handling was on and could have held or imposed
-                           the final symmetry
-================== ======= ===========================================================================
+The run's direction combines the two: gained (or lost) at one level and not the opposite at the
+other; changed when they disagree or either changed sideways; kept when neither moved. A finished
+run is judged on its last frame; a live run (``complete=False``) counts a change only once it has held
+for ``rules.persistence.steps`` consecutive ionic steps, so a state the relaxation is only passing
+through does not count.
+
+Flag codes (ours); each flag is ``{"code", "concerns", "frame", "step", "type", "message", "value",
+"threshold"}``:
+
+=================== ========== ==========================================================================
+code                concerns   raised when
+=================== ========== ==========================================================================
+lattice-gained      lattice    the lattice ends holding a Bravais type it started clearly away from
+lattice-lost        lattice    the lattice ends clearly away from a type it held at the start
+lattice-changed     lattice    both at once: it left one type and reached another (sideways)
+lattice-nearing     lattice    the deformation to a type fell by ``nearing_fraction`` without reaching it
+passed-through      lattice    a type was held for a stretch of the run, then left again
+handedness-flip     lattice    a layer's 2D lattice ends with the opposite handedness, clearly chiral at
+                               both ends (it passed through a mirror-symmetric lattice)
+group-gained        structure  spglib's group at the end contains the start's (more operations)
+group-lost          structure  spglib's group at the end is a subgroup of the start's
+group-changed       structure  neither contains the other
+atoms-break-lattice structure  the primitive lattice is metrically of a type but the structure's group
+                               has a lower lattice type
+symprec-dependent   tolerance  spglib's group for the final frame changes between two common symprecs
+loose-symprec       tolerance  spglib's lattice type at a loose symprec is one the lattice is far from
+held-by-code        code       the DFT code's own symmetry handling was on and the run kept a
+                               non-trivial group: "kept" is then what the code imposed, not a test
+=================== ========== ==========================================================================
+
+A flag asks for a look at a run; it is not a proof of stability, of instability or of a phase.
 """
 
 from __future__ import annotations
@@ -39,14 +52,25 @@ import numpy as np
 
 from . import lattice2d, lattice3d
 
-__all__ = ["evaluate", "summarize", "FLAGS", "bravais_of_group", "ORDER", "advice", "gate",
-           "campaign_advice", "advice_item", "SAFE_MARGIN", "grid_index"]
+__all__ = ["judge", "evaluate", "summarize", "FLAGS", "RENAMED", "CONCERNS", "DIRECTIONS", "ORDER",
+           "NAMES", "bravais_of_group", "advice", "select", "check_codes", "campaign_advice",
+           "advice_item", "SAFE_MARGIN", "grid_index", "generalises"]
 
 FLAGS = {
-    "snapped": "warning", "approaching": "info", "handedness-flip": "warning",
-    "tolerance-sensitive": "warning", "spglib-overcall": "warning", "atoms-break-lattice": "info",
-    "atoms-settled": "info", "code-imposed": "info",
+    "lattice-gained": "lattice", "lattice-lost": "lattice", "lattice-changed": "lattice",
+    "lattice-nearing": "lattice", "passed-through": "lattice", "handedness-flip": "lattice",
+    "group-gained": "structure", "group-lost": "structure", "group-changed": "structure",
+    "atoms-break-lattice": "structure",
+    "symprec-dependent": "tolerance", "loose-symprec": "tolerance",
+    "held-by-code": "code",
 }
+"""Flag code -> what it concerns."""
+CONCERNS = ("lattice", "structure", "tolerance", "code")
+DIRECTIONS = ("gained", "lost", "changed", "kept")
+#: Flag codes of records written before the verdict had a direction (schema driftwatch/run-1).
+RENAMED = {"snapped": "lattice-gained", "approaching": "lattice-nearing",
+           "tolerance-sensitive": "symprec-dependent", "spglib-overcall": "loose-symprec",
+           "atoms-settled": "group-gained", "code-imposed": "held-by-code"}
 
 # Order of the lattice point group (holohedry) of each Bravais type: International Tables Vol. A,
 # Table 3.1.2.x (3D) and the 2D lattice point groups 2, 2mm, 2mm, 4mm, 6mm.
@@ -62,10 +86,26 @@ NAMES = {"mp": "oblique", "op": "rectangular", "oc": "centred rectangular", "tp"
          "cP": "primitive cubic", "cI": "body-centred cubic", "cF": "face-centred cubic"}
 _LOWEST = {2: "mp", 3: "aP"}
 _ALIASES = {"oC": "oS", "oA": "oS", "oB": "oS", "mC": "mS", "mA": "mS", "mB": "mS", "mI": "mS"}
+_WORD = {"supergroup": "gained", "subgroup": "lost", "unrelated": "changed", "same": "kept"}
 
 
 def _types(dim):
     return lattice2d.TYPES if dim == 2 else lattice3d.TYPES
+
+
+def generalises(general: str, specific: str) -> bool:
+    """True when every lattice of type ``specific`` is also of type ``general`` (the closure of the
+    Bravais specialisation graph, ``SPECIALISES`` of lattice2d / lattice3d), or they are equal."""
+    graph = {**lattice2d.SPECIALISES, **lattice3d.SPECIALISES}
+    todo, seen = [specific], set()
+    while todo:
+        t = todo.pop()
+        if t == general:
+            return True
+        if t not in seen:
+            seen.add(t)
+            todo.extend(graph.get(t, ()))
+    return False
 
 
 def bravais_of_group(number: int, symbol: str, dimension: int) -> str | None:
@@ -104,13 +144,10 @@ def _lattice_type(symbol) -> str | None:
     return _ALIASES.get(symbol, symbol)
 
 
-def _series(frames, key, types):
-    return {t: np.array([f[key][t] for f in frames], dtype=float) for t in types}
-
-
 def _flag(code, frame, frames, message, type_=None, value=None, threshold=None):
-    return {"code": code, "level": FLAGS[code], "frame": int(frame), "step": int(frames[frame]["step"]),
-            "type": type_, "message": message, "value": value, "threshold": threshold}
+    return {"code": code, "concerns": FLAGS[code], "frame": int(frame),
+            "step": int(frames[frame]["step"]), "type": type_, "message": message, "value": value,
+            "threshold": threshold}
 
 
 def grid_index(spec: dict, symprec: float) -> int:
@@ -124,55 +161,269 @@ def _at(spec: dict, symprec: float, key: str):
     return spec[key][i], spec["group_symbol"][i]
 
 
+def _g(x: float) -> str:
+    """One format for every length a message or table quotes (Å)."""
+    return f"{x:.3g}"
+
+
 def _most_specific(types, values, within):
     ok = [t for t in types if values[t] <= within]
     return max(ok, key=lambda t: (ORDER[t], -values[t])) if ok else None
 
 
-def _snapped(frames, D, types, r):
-    cand = [t for t in types if D[t][0] >= r["start_away"] and D[t][-1] <= r["within"]]
-    if not cand:
-        return []
-    t = max(cand, key=lambda t: (ORDER[t], -D[t][-1]))
-    above = np.nonzero(D[t] > r["within"])[0]
-    k = int(above[-1] + 1) if above.size else 0
-    msg = (f"ends at the {NAMES[t]} type {t}: deformation {D[t][0]:.3g} Å at the start, "
-           f"{D[t][-1]:.2g} Å at the end (within {r['within']:.2g} Å from step {frames[k]['step']})")
-    return [_flag("snapped", k, frames, msg, t, float(D[t][-1]), r["within"])]
+def _from_frame(series: np.ndarray, holds) -> int:
+    """First frame from which ``holds(series)`` stays true to the end (series is (n,))."""
+    bad = np.nonzero(~holds(series))[0]
+    return int(bad[-1] + 1) if bad.size else 0
 
 
-def _approaching(frames, D, types, r, snapped_within):
-    cand = []
-    for t in types:
-        d0, d1 = D[t][0], D[t][-1]
-        if d0 >= r["start_away"] and d1 > snapped_within and d1 <= (1 - r["fraction"]) * d0:
-            cand.append(t)
-    if not cand:
-        return []
-    t = min(cand, key=lambda t: (D[t][-1], -ORDER[t]))
-    k = int(np.nonzero(D[t] <= (1 - r["fraction"]) * D[t][0])[0][0])
-    msg = (f"moved toward the {NAMES[t]} type {t}: deformation {D[t][0]:.3g} -> {D[t][-1]:.3g} Å "
-           f"({100 * (1 - D[t][-1] / D[t][0]):.0f} % of the way; not reached)")
-    return [_flag("approaching", k, frames, msg, t, float(D[t][-1]), r["fraction"])]
+def _stretches(states: list[str]) -> list[tuple[str, int, int]]:
+    out, start = [], 0
+    for i in range(1, len(states) + 1):
+        if i == len(states) or states[i] != states[start]:
+            out.append((states[start], start, i - 1))
+            start = i
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# the lattice level
+# ----------------------------------------------------------------------------------------------
+def _lattice_verdict(frames, dim, r, persist, fixed_cell):
+    """Direction of the lattice from the deformation series (and the 2D sign for layers)."""
+    types = _types(dim)
+    D = {t: np.array([f["deformation"][t] for f in frames], dtype=float) for t in types}
+    n, lat = len(frames), r["lattice"]
+    within, away, beyond = lat["within"], lat["start_away"], lat["left_beyond"]
+    held_since = {t: _from_frame(D[t], lambda x: x <= within) for t in types}
+    left_since = {t: _from_frame(D[t], lambda x: x > within) for t in types}
+    # a finished run is judged on its last frame; a live one once the change held `persist` steps
+    steps = [int(f["step"]) for f in frames]
+    lasted = (lambda since: True) if persist is None else (
+        lambda since: since < n and steps[-1] - steps[since] + 1 >= persist)
+    gained = [t for t in types if D[t][0] >= away and D[t][-1] <= within and lasted(held_since[t])]
+    lost = [t for t in types if D[t][0] <= within and D[t][-1] >= beyond and lasted(left_since[t])]
+    top = lambda ts, k: max(ts, key=lambda t: (ORDER[t], -D[t][k])) if ts else None
+    g, lo = top(gained, -1), top(lost, 0)
+    states = [_most_specific(types, {t: D[t][i] for t in types}, within) or _LOWEST[dim]
+              for i in range(n)]
+    first, last = states[0], states[-1]
+    flip = _handedness(frames, r["handedness_flip"]) if dim == 2 else None
+    if flip and persist is not None and not lasted(flip["frame"]):
+        flip = None
+    frm = [held_since[g]] if g else []
+    if lo:
+        frm.append(left_since[lo])
+    if flip:
+        frm.append(flip["frame"])
+    direction = ("changed" if (g and lo) or flip else "gained" if g else "lost" if lo else "kept")
+    passed = [{"type": t, "from_step": int(frames[a]["step"]), "to_step": int(frames[b]["step"]),
+               "frames": b - a + 1}
+              for t, a, b in _stretches(states)[1:-1]
+              if t != _LOWEST[dim] and D[t][-1] > within and D[t][0] > within]
+    nearing = None
+    if not g:
+        cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
+                and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0]]
+        nearing = min(cand, key=lambda t: (D[t][-1], -ORDER[t])) if cand else None
+    # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
+    # (a lattice of no higher type: the nearest higher type, how far it stayed)
+    away_end = [t for t in types if D[t][-1] > within]
+    kept = last if last != _LOWEST[dim] else (
+        min(away_end, key=lambda t: D[t][-1]) if away_end else None)
+    subject = g or lo or nearing or kept
+    k = max(frm) if frm else None
+    out = {"direction": direction, "initial": first, "final": last, "gained": g, "lost": lo,
+           "gained_all": sorted(gained, key=lambda t: -ORDER[t]),
+           "lost_all": sorted(lost, key=lambda t: -ORDER[t]),
+           "from_frame": k, "from_step": None if k is None else int(frames[k]["step"]),
+           "passed_through": sorted(passed, key=lambda p: -p["frames"])[:10],
+           "nearing": nearing, "handedness": flip, "fixed_cell": bool(fixed_cell)}
+    drift = None
+    if subject:
+        d0, d1 = float(D[subject][0]), float(D[subject][-1])
+        drift = {"type": subject, "initial": d0, "final": d1, "change": d1 - d0,
+                 "fraction": None if d0 == 0 else (d0 - d1) / d0}
+    return out, drift, D
 
 
 def _handedness(frames, r):
-    """The run ends with the opposite handedness to its start, clearly chiral at both ends."""
+    """A layer that ends with the opposite handedness to its start, clearly chiral at both ends."""
     sign = np.array([f["sign"] for f in frames])
     chiral = np.array([f["deformation"]["mirror"] for f in frames])
     sig = np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
     if sig.size == 0 or sig[-1] != len(frames) - 1 or sign[sig[0]] == sign[-1]:
-        return []
-    first, last = int(sign[sig[0]]), int(sign[-1])
+        return None
+    last = int(sign[-1])
     k = int(np.nonzero(sign != last)[0][-1] + 1)
-    msg = (f"the layer's 2D lattice ends with the opposite handedness ({'+' if first > 0 else '-'} at "
-           f"the start, {'+' if last > 0 else '-'} from step {frames[k]['step']}; mirror deformation "
-           f"{chiral[sig[0]]:.3g} Å and {chiral[-1]:.3g} Å): it passed through a mirror-symmetric "
-           f"lattice on the way")
-    return [_flag("handedness-flip", k, frames, msg, None, float(chiral[-1]), r["min_chiral"])]
+    return {"initial": int(sign[sig[0]]), "final": last, "frame": k,
+            "mirror_initial": float(chiral[sig[0]]), "mirror_final": float(chiral[-1])}
 
 
-def _tolerance_sensitive(frames, r):
+def _lattice_flags(frames, lv, D, r):
+    within, flags = r["lattice"]["within"], []
+    g, lo = lv["gained"], lv["lost"]
+    kg = _from_frame(D[g], lambda s: s <= within) if g else None
+    kl = _from_frame(D[lo], lambda s: s > within) if lo else None
+    gain_text = (f"became {g} ({NAMES[g]}): deformation {_g(D[g][0])} Å at the start, "
+                 f"{_g(D[g][-1])} Å at the end, within {_g(within)} Å from step "
+                 f"{frames[kg]['step']}") if g else ""
+    loss_text = (f"left {lo} ({NAMES[lo]}): deformation {_g(D[lo][0])} Å at the start, "
+                 f"{_g(D[lo][-1])} Å at the end, beyond {_g(within)} Å from step "
+                 f"{frames[kl]['step']}") if lo else ""
+    if g and lo:   # one sideways change, one flag
+        flags.append(_flag("lattice-changed", max(kg, kl), frames,
+                           f"the lattice changed sideways: it {loss_text}, and {gain_text}", g,
+                           float(D[g][-1]), within))
+    elif g:
+        flags.append(_flag("lattice-gained", kg, frames, f"the lattice {gain_text}", g,
+                           float(D[g][-1]), within))
+    elif lo:
+        flags.append(_flag("lattice-lost", kl, frames, f"the lattice {loss_text}", lo,
+                           float(D[lo][-1]), r["lattice"]["left_beyond"]))
+    if lv["nearing"]:
+        t = lv["nearing"]
+        frac = r["lattice"]["nearing_fraction"]
+        k = int(np.nonzero(D[t] <= (1 - frac) * D[t][0])[0][0])
+        flags.append(_flag("lattice-nearing", k, frames,
+                           f"the lattice moved toward {t} ({NAMES[t]}) without reaching it: "
+                           f"deformation {_g(D[t][0])} -> {_g(D[t][-1])} Å "
+                           f"({100 * (1 - D[t][-1] / D[t][0]):.0f} % of the way)",
+                           t, float(D[t][-1]), frac))
+    for p in lv["passed_through"][:1]:        # the longest stretch; the record lists them all
+        t = p["type"]
+        k = next(i for i, f in enumerate(frames) if f["step"] == p["from_step"])
+        flags.append(_flag("passed-through", k, frames,
+                           f"the lattice was {t} ({NAMES[t]}) from step {p['from_step']} to "
+                           f"{p['to_step']} and left it again"
+                           + (f" ({len(lv['passed_through'])} such stretches)"
+                              if len(lv["passed_through"]) > 1 else ""), t, p["frames"], within))
+    h = lv["handedness"]
+    if h:
+        sg = lambda s: "+" if s > 0 else "-"
+        flags.append(_flag("handedness-flip", h["frame"], frames,
+                           f"the layer's 2D lattice ends with the opposite handedness "
+                           f"({sg(h['initial'])} at the start, {sg(h['final'])} from step "
+                           f"{frames[h['frame']]['step']}; mirror deformation "
+                           f"{_g(h['mirror_initial'])} Å and {_g(h['mirror_final'])} Å): it passed "
+                           f"through a mirror-symmetric lattice", None, h["mirror_final"],
+                           r["handedness_flip"]["min_chiral"]))
+    return flags
+
+
+# ----------------------------------------------------------------------------------------------
+# the structure level
+# ----------------------------------------------------------------------------------------------
+def _group_of(f: dict, symprec: float):
+    """(number, symbol, operations, relation to frame 0) of a frame at ``symprec``, or None."""
+    st = f.get("structure")
+    if not st:
+        return None
+    i = int(np.argmin(np.abs(np.log(np.asarray(st["symprec"], float) / symprec))))
+    if abs(math.log(st["symprec"][i] / symprec)) > 1e-9:
+        return None
+    return st["group"][i], st["symbol"][i], st["operations"][i], st["relation"][i]
+
+
+def _direction_of(first, last) -> tuple[str, str]:
+    """Direction of a group change and how it was decided."""
+    rel = last[3]
+    if rel in _WORD:
+        return _WORD[rel], rel
+    if not first[0] or not last[0]:
+        return "unknown", "spglib failed"
+    if (first[0], first[2]) == (last[0], last[2]):
+        return "kept", "same number and operation count"
+    return ("gained" if last[2] > first[2] else "lost" if last[2] < first[2] else "changed",
+            "operation count")
+
+
+def _structure_at(frames, checked, symprec, persist):
+    first, last = _group_of(frames[checked[0]], symprec), _group_of(frames[checked[-1]], symprec)
+    if first is None or last is None:
+        return None
+    direction, how = _direction_of(first, last)
+    # the first checked frame from which the final group holds, and the checked frame before it
+    hi = checked[-1]
+    for k in reversed(checked[:-1]):
+        gk = _group_of(frames[k], symprec)
+        if gk is None:
+            continue
+        if (gk[0], gk[2]) != (last[0], last[2]):
+            break
+        hi = k
+    lo = max([k for k in checked if k < hi], default=None)
+    if persist is not None and direction != "kept" and \
+            frames[checked[-1]]["step"] - frames[hi]["step"] + 1 < persist:
+        direction, how = "kept", f"not yet held for {persist} steps"
+    return {"symprec": symprec,
+            "initial": {"group": first[0], "symbol": first[1], "operations": first[2]},
+            "final": {"group": last[0], "symbol": last[1], "operations": last[2]},
+            "direction": direction, "relation": how,
+            "from_frame": None if direction == "kept" else hi,
+            "from_step": None if direction == "kept" else int(frames[hi]["step"]),
+            "after_step": None if direction == "kept" or lo is None else int(frames[lo]["step"]),
+            "exact": direction != "kept" and lo is not None and hi - lo == 1}
+
+
+def _structure_verdict(frames, cfg, persist):
+    checked = [k for k, f in enumerate(frames) if f.get("structure")]
+    judge_at = cfg["rules"]["structure"]["symprec"]
+    if not checked or checked[0] != 0:
+        return {"direction": "unknown", "symprec": judge_at, "at": {},
+                "reason": "spglib was not run on the first frame"}
+    out = _structure_at(frames, checked, judge_at, persist) or {
+        "direction": "unknown", "symprec": judge_at, "reason": "no group at this symprec"}
+    out["newest_checked_step"] = int(frames[checked[-1]]["step"])
+    out["at"] = {}
+    for s in cfg["report"]["common_symprecs"]:
+        v = _structure_at(frames, checked, s, persist)
+        if v:
+            out["at"][f"{s:g}"] = {"initial": [v["initial"]["group"], v["initial"]["symbol"]],
+                                   "final": [v["final"]["group"], v["final"]["symbol"]],
+                                   "direction": v["direction"]}
+    return out
+
+
+def _structure_flags(frames, sv):
+    if sv["direction"] not in ("gained", "lost", "changed"):
+        return []
+    a, b, s = sv["initial"], sv["final"], sv["symprec"]
+    when = (f"from step {sv['from_step']}" if sv["exact"] or sv["after_step"] is None else
+            f"between steps {sv['after_step']} and {sv['from_step']} (the frames spglib checked)")
+    what = {"gained": "rose", "lost": "fell", "changed": "changed"}[sv["direction"]]
+    rel = {"supergroup": f"{b['symbol']} contains {a['symbol']}",
+           "subgroup": f"{b['symbol']} is a subgroup of {a['symbol']}",
+           "unrelated": "neither group contains the other"}.get(sv["relation"], sv["relation"])
+    msg = (f"spglib's group at symprec {_g(s)} Å {what} from {a['symbol']} ({a['group']}, "
+           f"{a['operations']} operations) to {b['symbol']} ({b['group']}, {b['operations']} "
+           f"operations) {when}; {rel}")
+    return [_flag(f"group-{sv['direction']}", sv["from_frame"], frames, msg, None, b["group"], s)]
+
+
+def _breaks_lattice(frames, dim, r):
+    """The primitive lattice is metrically of type t, the structure's group has a lower lattice type
+    (containment on the Bravais graph, so R-3m in hexagonal axes is not flagged)."""
+    k = len(frames) - 1
+    spec = frames[k].get("symmetry") or {}
+    prim = spec.get("primitive")
+    if not prim or not prim.get("type"):
+        return []
+    t = prim["type"]
+    group, symbol = _at(spec, r["symprec"], "group")
+    b = bravais_of_group(int(group), str(symbol), dim)
+    if b is None or b == t or not generalises(b, t):
+        return []
+    msg = (f"the primitive lattice is metrically {t} ({NAMES[t]}, deformation "
+           f"{_g(prim['deformation'])} Å) but the structure's group at symprec {_g(r['symprec'])} Å is "
+           f"{symbol} ({group}), lattice type {b}: the atoms break the lattice's symmetry")
+    return [_flag("atoms-break-lattice", k, frames, msg, t, float(prim["deformation"]), r["within"])]
+
+
+# ----------------------------------------------------------------------------------------------
+# tolerance flags
+# ----------------------------------------------------------------------------------------------
+def _symprec_dependent(frames, r):
     k = len(frames) - 1
     spec = frames[k].get("symmetry")
     if not spec:
@@ -186,96 +437,104 @@ def _tolerance_sensitive(frames, r):
     if len(seen) < 2:
         return []
     text = " -> ".join(f"{sym} ({g})" for g, sym in seen)
-    msg = (f"spglib's verdict on the final structure changes between symprec {r['low']:.3g} and "
-           f"{r['high']:.3g} Å: {text}")
-    return [_flag("tolerance-sensitive", k, frames, msg, None, len(seen), [r["low"], r["high"]])]
+    msg = (f"spglib's group for the final structure changes between symprec {_g(r['low'])} and "
+           f"{_g(r['high'])} Å: {text}")
+    return [_flag("symprec-dependent", k, frames, msg, None, len(seen), [r["low"], r["high"]])]
 
 
-def _overcall(frames, D, r):
+def _loose(frames, D, r):
     k = len(frames) - 1  # the verdict a user would take from the final structure
     spec = frames[k].get("symmetry")
     if spec:
         lat, _ = _at(spec, r["symprec"], "lattice")
         t = _lattice_type(lat)
         if t in D and D[t][k] > r["far"]:
-            msg = (f"spglib at symprec {r['symprec']:.3g} Å calls the lattice {t} ({NAMES[t]}) while "
-                   f"its deformation to {t} is {D[t][k]:.3g} Å (> {r['far']:.3g} Å)")
-            return [_flag("spglib-overcall", k, frames, msg, t, float(D[t][k]), r["far"])]
+            msg = (f"spglib at symprec {_g(r['symprec'])} Å calls the lattice {t} ({NAMES[t]}) while "
+                   f"its deformation to {t} is {_g(D[t][k])} Å (> {_g(r['far'])} Å)")
+            return [_flag("loose-symprec", k, frames, msg, t, float(D[t][k]), r["far"])]
     return []
 
 
-def _breaks_lattice(frames, D, types, dim, r):
-    k = len(frames) - 1
-    spec = frames[k].get("symmetry")
-    if not spec:
-        return []
-    t = _most_specific(types, {x: D[x][k] for x in types}, r["within"])
-    group, symbol = _at(spec, r["symprec"], "group")
-    b = bravais_of_group(int(group), str(symbol), dim)
-    if t is None or b is None or ORDER[b] >= ORDER[t]:
-        return []
-    msg = (f"the lattice is metrically {t} ({NAMES[t]}, deformation {D[t][k]:.2g} Å) but the "
-           f"structure's group at symprec {r['symprec']:.3g} Å is {symbol} ({group}), lattice type {b}: "
-           f"the atoms break the lattice symmetry")
-    return [_flag("atoms-break-lattice", k, frames, msg, t, float(D[t][k]), r["within"])]
-
-
-def _settled(frames, r):
-    analysed = [k for k, f in enumerate(frames) if f.get("symmetry")]
-    if len(analysed) < 2:
-        return []
-    k0, k1 = analysed[0], analysed[-1]
-    ops0, sym0 = _at(frames[k0]["symmetry"], r["symprec"], "operations")
-    ops1, sym1 = _at(frames[k1]["symmetry"], r["symprec"], "operations")
-    lat0, _ = _at(frames[k0]["symmetry"], r["symprec"], "lattice")
-    lat1, _ = _at(frames[k1]["symmetry"], r["symprec"], "lattice")
-    if not (ops0 and ops1 and ops1 > ops0) or lat0 != lat1:
-        return []  # a gain that comes with a new lattice type is the lattice's (see 'snapped')
-    msg = (f"the structure's symmetry at symprec {r['symprec']:.3g} Å rose from {sym0} ({ops0} "
-           f"operations) to {sym1} ({ops1} operations): the atoms moved onto more symmetric sites")
-    return [_flag("atoms-settled", k1, frames, msg, None, int(ops1), r["symprec"])]
-
-
-def _code_imposed(record, frames):
-    cs = record["run"].get("code_settings") or {}
+# ----------------------------------------------------------------------------------------------
+# the code's own symmetry
+# ----------------------------------------------------------------------------------------------
+def _code_symmetry(code_settings: dict, dim: int) -> dict | None:
+    """What the DFT code's own symmetry handling did: ``{"operations", "how", "undo"}`` or None."""
+    cs = code_settings or {}
     code = cs.get("code")
-    k = len(frames) - 1
-    # pw.x counts point operations; a one-atom slab always has 4 (2/m with the layer mirror) and any
-    # bulk lattice 2 (inversion), which constrain nothing: only more than that can hold a symmetry.
-    floor = 4 if record["geometry"]["dimension"] == 2 else 2
-    if code == "espresso" and not cs.get("nosym") and (cs.get("nsym") or 0) > floor:
-        msg = (f"pw.x ran with symmetry on and kept {cs['nsym']} symmetry operations of the starting "
-               f"structure (nosym=.false.): the final symmetry may be held by the code, not found by "
-               f"the relaxation; rerun with nosym=.true. to test it")
-        return [_flag("code-imposed", k, frames, msg, None, cs["nsym"], None)]
+    if code == "espresso" and not cs.get("nosym") and cs.get("nsym"):
+        return {"operations": int(cs["nsym"]),
+                "how": f"pw.x kept {cs['nsym']} symmetry operations of the starting structure "
+                       f"(nosym=.false.)", "undo": "nosym=.true."}
     if code == "vasp" and cs.get("ISYM", 2) not in (0, -1):
-        spec = frames[k].get("symmetry")
-        ops = max(spec["operations"]) if spec else 0
-        if ops > 1:
-            msg = (f"VASP ran with ISYM={cs.get('ISYM', 'default')} (symmetry on"
-                   f"{', SYMPREC=' + format(cs['SYMPREC'], 'g') if 'SYMPREC' in cs else ''}): "
-                   f"the final symmetry may be held by the code; rerun with ISYM=0 to test it")
-            return [_flag("code-imposed", k, frames, msg, None, cs.get("ISYM", 2), None)]
-    return []
+        return {"operations": cs.get("nsym"),
+                "how": f"VASP ran with ISYM={cs.get('ISYM', '2 (default)')}"
+                       + (f", SYMPREC={cs['SYMPREC']:g}" if "SYMPREC" in cs else "")
+                       + (f" and found {cs['nsym']} operations" if cs.get("nsym") else ""),
+                "undo": "ISYM=0"}
+    return None
 
 
-def evaluate(record: dict, cfg: dict) -> list[dict]:
-    """All flags of a record, in the order of the table above."""
-    frames, dim = record["frames"], record["geometry"]["dimension"]
-    types = _types(dim)
-    D = _series(frames, "deformation", types)
-    r = cfg["rules"]
-    flags = _snapped(frames, D, types, r["snapped"])
-    flags += _approaching(frames, D, types, r["approaching"], r["snapped"]["within"])
-    if dim == 2:
-        flags += _handedness(frames, r["handedness_flip"])
-    flags += _tolerance_sensitive(frames, r["tolerance_sensitive"])
-    flags += _overcall(frames, D, r["spglib_overcall"])
-    flags += _breaks_lattice(frames, D, types, dim, r["atoms_break_lattice"])
-    flags += _settled(frames, r["atoms_settled"])
-    if r["code_imposed"]["enabled"]:
-        flags += _code_imposed(record, frames)
-    return flags
+def _held_by_code(record, frames, sv):
+    """Only where it changes the reading: a kept non-trivial group under the code's symmetry."""
+    dim = record["geometry"]["dimension"]
+    try:
+        from .adapters import symmetry_setting
+    except ImportError:
+        symmetry_setting = _code_symmetry
+    info = symmetry_setting(record["run"].get("code_settings") or {}, dim)
+    # one-atom slabs always have 4 point operations (2/m with the layer mirror), any bulk lattice 2
+    # (inversion): those constrain nothing, so only more than that can hold a symmetry.
+    floor = 4 if dim == 2 else 2
+    if not info or sv.get("direction") != "kept" or not sv.get("final"):
+        return []
+    ops = sv["final"]["operations"]
+    if info.get("operations") is not None and info["operations"] <= floor:
+        return []
+    if ops <= floor:
+        return []
+    k = len(frames) - 1
+    msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}), but the "
+           f"code could not have lowered it, so 'kept' is not a test of that symmetry; rerun with "
+           f"{info['undo']} (and a slightly displaced start) to test it")
+    return [_flag("held-by-code", k, frames, msg, None, info.get("operations"), None)]
+
+
+# ----------------------------------------------------------------------------------------------
+# the verdict, flags and summary
+# ----------------------------------------------------------------------------------------------
+def _combine(lattice: str, structure: str) -> str:
+    dirs = {lattice, structure} - {"unknown"}
+    if "changed" in dirs or {"gained", "lost"} <= dirs:
+        return "changed"
+    if "gained" in dirs:
+        return "gained"
+    if "lost" in dirs:
+        return "lost"
+    return "kept"
+
+
+def _text(direction, lv, sv) -> str:
+    parts = []
+    if lv["direction"] == "kept":
+        parts.append(f"lattice kept {lv['final']}")
+    else:
+        moved = (f"{lv['initial']} -> {lv['final']}" if lv["initial"] != lv["final"]
+                 else f"{lv['final']}")
+        extra = [f"gained {lv['gained']}" if lv["gained"] else None,
+                 f"lost {lv['lost']}" if lv["lost"] else None,
+                 "handedness reversed" if lv["handedness"] else None]
+        parts.append(f"lattice {moved} ({', '.join(e for e in extra if e)}) from step "
+                     f"{lv['from_step']}")
+    if sv.get("initial") and sv.get("final"):
+        a, b = sv["initial"], sv["final"]
+        grp = (f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else
+               f"{a['symbol']} ({a['group']}) -> {b['symbol']} ({b['group']})")
+        when = "" if sv["direction"] == "kept" else (
+            f" from step {sv['from_step']}" if sv["exact"] or sv["after_step"] is None
+            else f" between steps {sv['after_step']} and {sv['from_step']}")
+        parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
+    return f"{direction}: " + "; ".join(parts)
 
 
 def _state(frame, types, within, dim):
@@ -288,72 +547,137 @@ def _state(frame, types, within, dim):
             "deformation": None if near is None else float(dfm[near])}
 
 
-def advice(spec: dict | None, window=(1e-4, 0.2)) -> dict:
-    """Tolerance advice from one spectrum: plateaus of constant group and a recommended symprec (Å).
+def judge(record: dict, cfg: dict, *, complete: bool = True) -> tuple[list[dict], dict]:
+    """Flags and summary of a record. ``complete=False`` (a live run): a change counts only once it
+    held for ``rules.persistence.steps`` consecutive steps."""
+    frames, dim = record["frames"], record["geometry"]["dimension"]
+    r = cfg["rules"]
+    persist = None if complete else r["persistence"]["steps"]
+    lv, drift, D = _lattice_verdict(frames, dim, r, persist, record["run"]["fixed_cell"])
+    sv = _structure_verdict(frames, cfg, persist)
+    direction = _combine(lv["direction"], sv["direction"])
+    flags = _lattice_flags(frames, lv, D, r)
+    flags += _structure_flags(frames, sv)
+    flags += _breaks_lattice(frames, dim, r["atoms_break_lattice"])
+    flags += _symprec_dependent(frames, r["symprec_dependent"])
+    flags += _loose(frames, D, r["loose_symprec"])
+    if r["held_by_code"]["enabled"]:
+        flags += _held_by_code(record, frames, sv)
+    types, within = _types(dim), r["lattice"]["within"]
+    precision = record["run"].get("position_precision")
+    tol = advice(frames[-1].get("symmetry"), min_plateau=cfg["tolerance"]["min_plateau"],
+                 precision=precision)
+    summary = {
+        "verdict": {"direction": direction, "text": _text(direction, lv, sv), "lattice": lv,
+                    "structure": sv, "complete": complete},
+        "initial": _state(frames[0], types, within, dim),
+        "final": _state(frames[-1], types, within, dim),
+        "drift": drift,
+        "tolerance": tol,
+        "lattice_note": ("fixed cell: the lattice cannot drift; symmetry drift is in the atoms "
+                         "(see the displacement to each group)") if record["run"]["fixed_cell"]
+        else None,
+    }
+    return flags, summary
 
-    The recommendation is the geometric centre of the widest plateau (in log symprec) of one group,
-    clipped to ``window``; it is a starting point for the user's own check, not a guarantee.
-    """
-    if not spec:
-        return {"stable_ranges": [], "recommended_symprec": None, "reason": "no spectrum", "at": {}}
+
+def evaluate(record: dict, cfg: dict, *, complete: bool = True) -> list[dict]:
+    """All flags of a record, in the order of the table above."""
+    return judge(record, cfg, complete=complete)[0]
+
+
+def summarize(record: dict, cfg: dict, *, complete: bool = True) -> dict:
+    """The record's summary: ``verdict`` (direction at both levels), ``initial``/``final`` lattice
+    state, ``drift`` (deformation to the type the verdict is about), ``tolerance`` advice."""
+    return judge(record, cfg, complete=complete)[1]
+
+
+# ----------------------------------------------------------------------------------------------
+# tolerance advice
+# ----------------------------------------------------------------------------------------------
+def _plateaus(spec):
+    """Stretches of one group verdict: [low, high, group, symbol, operations] (Å), bracket ends
+    used where a breakpoint was bisected, grid points otherwise."""
     s = [float(x) for x in spec["symprec"]]
     g = [int(x) for x in spec["group"]]
+    ops = [int(x) for x in spec.get("operations") or [0] * len(g)]
     sym = list(spec["group_symbol"])
-    bps = sorted((b for b in spec.get("breakpoints", []) if b["kind"] == "group"), key=lambda b: b["low"])
+    bps = sorted((b for b in spec.get("breakpoints", []) if b["kind"] == "group"),
+                 key=lambda b: b["low"])
     ranges, lo, i0 = [], s[0], 0
     for i in range(1, len(s) + 1):
-        if i == len(s) or g[i] != g[i0]:
-            hi = s[-1] if i == len(s) else next((b["low"] for b in bps if s[i - 1] <= b["low"] <= s[i]),
-                                                s[i - 1])
-            ranges.append([lo, hi, g[i0], sym[i0]])
+        if i == len(s) or (g[i], ops[i]) != (g[i0], ops[i0]):
+            hi = s[-1] if i == len(s) else next(
+                (b["low"] for b in reversed(bps) if s[i - 1] <= b["low"] <= s[i]), s[i - 1])
+            ranges.append([lo, hi, g[i0], sym[i0], ops[i0]])
             if i < len(s):
                 lo = next((b["high"] for b in bps if s[i - 1] <= b["high"] <= s[i]), s[i])
                 i0 = i
-    best, width = None, -1.0
-    for lo, hi, grp, name in ranges:
-        a, b = max(lo, window[0]), min(hi, window[1])
-        if grp and b > a and math.log(b / a) > width:
-            best, width = (a, b, grp, name), math.log(b / a)
-    at = {f"{x:g}": [int(gg), str(nn)] for x, gg, nn in zip(s, g, sym)}
-    if best is None:
-        return {"stable_ranges": ranges, "recommended_symprec": None, "at": at,
-                "reason": "no plateau of one group inside the window"}
-    rec = math.sqrt(best[0] * best[1])
-    return {"stable_ranges": ranges, "recommended_symprec": rec, "at": at,
-            "reason": f"centre of the widest plateau of one verdict, {best[3]} ({best[2]}), from "
-                      f"{best[0]:.2g} to {best[1]:.2g} Å (factor {math.exp(width):.0f})"}
+    return ranges
 
 
-def summarize(record: dict, cfg: dict) -> dict:
-    """``initial``/``final`` (type, nearest other type, its distance and deformation), drift, verdict."""
-    frames, dim = record["frames"], record["geometry"]["dimension"]
-    types, within = _types(dim), cfg["rules"]["snapped"]["within"]
-    ini, fin = _state(frames[0], types, within, dim), _state(frames[-1], types, within, dim)
-    codes = {f["code"] for f in record["flags"]}
-    snap = next((f for f in record["flags"] if f["code"] == "snapped"), None)
-    appr = next((f for f in record["flags"] if f["code"] == "approaching"), None)
-    target = snap["type"] if snap else appr["type"] if appr else ini["nearest"]
-    drift = None
-    if target:
-        d0, d1 = frames[0]["deformation"][target], frames[-1]["deformation"][target]
-        drift = {"type": target, "initial": d0, "final": d1, "change": d1 - d0,
-                 "fraction": None if d0 == 0 else (d0 - d1) / d0}
-    if snap:
-        verdict = "snapped"
-    elif "handedness-flip" in codes:
-        verdict = "handedness-flip"
-    elif appr:
-        verdict = "approaching"
-    elif record["run"]["fixed_cell"]:
-        verdict = "fixed-cell"
-    else:
-        verdict = "steady"
-    tol = advice(frames[-1].get("symmetry"))
-    tol["group_at_1e-3"] = tol["at"].get("0.001", [None, None])[1] if tol["at"] else None
-    return {"initial": ini, "final": fin, "drift": drift, "verdict": verdict, "tolerance": tol,
-            "lattice_note": ("fixed cell: the lattice cannot drift; symmetry drift is in the atoms "
-                             "(see the displacement to each group)") if record["run"]["fixed_cell"]
-            else None}
+def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | None = None) -> dict:
+    """Tolerance advice from one spectrum (Å): plateaus of one group, and the symprec to use.
+
+    The chosen plateau is the widest (in log symprec), except that a plateau of P1 (layer group p1)
+    gives way to the widest plateau of a real group at least ``min_plateau`` wide (factor high/low):
+    P1 over a wide range below such a group only says the atoms are not symmetric to within those
+    small tolerances. The suggestion is the plateau's geometric centre.
+    Grid points below twice the file's printed ``precision`` (Å; half a unit of the last printed
+    digit of a position) are below what the file can resolve: they are marked and never suggested.
+    One verdict over the whole grid gives no suggestion (any value in the grid gives that verdict).
+    A starting point for the user's own check, not a guarantee.
+    """
+    empty = {"ranges": [], "recommended_symprec": None, "plateau": None, "kind": "none",
+             "reason": "no spectrum", "at": {}, "resolution": None}
+    if not spec:
+        return empty
+    ranges = _plateaus(spec)
+    floor = 2.0 * precision if precision else None
+    at = {f"{x:g}": [int(gg), str(nn)] for x, gg, nn in zip(spec["symprec"], spec["group"],
+                                                              spec["group_symbol"])}
+    out = dict(empty, ranges=ranges, at=at, resolution=floor, reason="")
+    grid_lo, grid_hi = float(spec["symprec"][0]), float(spec["symprec"][-1])
+    usable = []
+    for lo, hi, grp, name, ops in ranges:
+        a = max(lo, floor) if floor else lo
+        if grp and hi > a:
+            usable.append((a, hi, grp, name, ops, hi / a))
+    note = (f"; symprec below {_g(floor)} Å is under the file's printed precision"
+            if floor and floor > grid_lo else "")
+    if len([x for x in ranges if x[2]]) == 1 and len(ranges) == 1 and usable:
+        a, b, grp, name, ops, _ = usable[0]
+        out.update(kind="one-verdict", plateau=_plateau_dict(usable[0], grid_lo, grid_hi),
+                   reason=f"one verdict, {name} ({grp}), at every symprec of the grid "
+                          f"({_g(grid_lo)} to {_g(grid_hi)} Å): any value in it gives that "
+                          f"verdict{note}")
+        return out
+    if not usable:
+        out.update(reason="no plateau of one group" + note)
+        return out
+    best = max(usable, key=lambda u: u[5])
+    why = "the widest plateau of one verdict"
+    real = [u for u in usable if u[2] != 1 and u[5] >= min_plateau]
+    if best[2] == 1 and real:   # P1 (p1) is no verdict to settle on when a real group holds widely
+        trivial = best[3]
+        best = max(real, key=lambda u: u[5])
+        why = (f"the widest plateau of a group other than {trivial} spanning at least a factor "
+               f"{min_plateau:g} ({trivial} at smaller symprec only says the atoms are not symmetric "
+               f"to within those tolerances)")
+    a, b, grp, name, ops, width = best
+    rec = math.sqrt(a * b)
+    out.update(kind="plateau", recommended_symprec=rec,
+               plateau=_plateau_dict(best, grid_lo, grid_hi),
+               reason=f"{_g(rec)} Å is the centre of the plateau of {name} ({grp}, {ops} "
+                      f"operations) from {_g(a)} to {_g(b)} Å (factor {width:.3g}): {why}{note}")
+    return out
+
+
+def _plateau_dict(u, grid_lo, grid_hi):
+    a, b, grp, name, ops, width = u
+    return {"low": a, "high": b, "group": grp, "symbol": name, "operations": ops,
+            "factor": width, "open_low": a <= grid_lo * (1 + 1e-9),
+            "open_high": b >= grid_hi * (1 - 1e-9)}
 
 
 SAFE_MARGIN = 2.0  # campaign symprec advice: verdict constant within this factor either side
@@ -372,10 +696,12 @@ def _near_key(at: dict, s: float):
     return min(keys, key=lambda k: abs(math.log(float(k) / s)))
 
 
-def _safe_at(spec_ranges, s, lo_end, hi_end, margin=None) -> float | None:
+def _safe_at(ranges, s, lo_end, hi_end, margin=None, floor=None) -> float | None:
     """Log margin (>= log margin) of ``s`` inside a one-verdict plateau, or None when not safe."""
     margin = SAFE_MARGIN if margin is None else margin
-    for lo, hi, group, _ in spec_ranges:
+    if floor and s < floor:
+        return None
+    for lo, hi, group, *_ in ranges:
         if not group or not (lo <= s <= hi):
             continue
         a = math.inf if lo <= lo_end * (1 + 1e-9) else math.log(s / lo)
@@ -385,7 +711,7 @@ def _safe_at(spec_ranges, s, lo_end, hi_end, margin=None) -> float | None:
     return None
 
 
-def campaign_advice(items: list[dict], common: list[float], window=(1e-4, 0.2)) -> dict:
+def campaign_advice(items: list[dict], common: list[float], window=None) -> dict:
     """Campaign tolerance advice from the final-frame spectra of the analysed runs.
 
     ``items`` are ``{"run": id, "summary": record summary, "grid": [lowest, highest symprec] or None}``
@@ -394,9 +720,10 @@ def campaign_advice(items: list[dict], common: list[float], window=(1e-4, 0.2)) 
     ``changes`` counts the runs whose spglib verdict (group number) on the final structure differs
     between consecutive ``common`` symprecs (Å). A run is *safe* at a symprec when that value sits
     inside a plateau of one verdict with at least a factor ``SAFE_MARGIN`` to the next breakpoint on
-    both sides (a plateau reaching the end of the run's grid counts as open there). The recommended
-    symprec is the geometric centre of the widest range inside ``window`` (Å) where the most runs are
-    safe. It is a starting point for the user's own check, not a guarantee.
+    both sides (a plateau reaching the end of the run's grid counts as open there) and is not below
+    what its file resolves. The searched range is the runs' own symprec grid (``window`` to narrow
+    it, Å). The recommended symprec is the geometric centre of the widest range where the most runs
+    are safe. A starting point for the user's own check, not a guarantee.
     """
     common = sorted(float(s) for s in common)
     per_run = []
@@ -412,23 +739,29 @@ def campaign_advice(items: list[dict], common: list[float], window=(1e-4, 0.2)) 
         changes.append({"low": common[i], "high": common[i + 1], "runs": len(ids),
                         "run_ids": ids[:50]})
     varying = [rid for rid, g, *_ in per_run if len(set(g)) > 1]
+    if window is None and per_run:
+        window = (min(p[3] for p in per_run), max(p[4] for p in per_run))
     out = {"symprecs": common, "unit": "Å", "runs_considered": len(per_run),
            "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying[:50],
-           "recommended_symprec": None, "safe_runs": 0, "window": list(window),
+           "recommended_symprec": None, "safe_runs": 0,
+           "window": list(window) if window else None,
            "reason": "no run has a symmetry spectrum of its final frame"}
     if not per_run:
         return out
 
+    def ranges_of(t):
+        return t.get("ranges", t.get("stable_ranges", []))
+
     def safe(s):
         return [rid for rid, _, t, lo, hi in per_run
-                if _safe_at(t.get("stable_ranges", []), s, lo, hi) is not None]
+                if _safe_at(ranges_of(t), s, lo, hi, floor=t.get("resolution")) is not None]
 
     grid = [window[0] * (window[1] / window[0]) ** (i / 96) for i in range(97)]
     counts = [len(safe(s)) for s in grid]
     top = max(counts)
     if top == 0:
-        out["reason"] = (f"no symprec in {window[0]:g}-{window[1]:g} Å keeps one verdict within a "
-                         f"factor {SAFE_MARGIN:g} for any run: check each run's spectrum")
+        out["reason"] = (f"no symprec in {_g(window[0])}-{_g(window[1])} Å keeps one verdict within "
+                         f"a factor {SAFE_MARGIN:g} for any run: check each run's spectrum")
         return out
     blocks, start = [], None                 # longest stretch of the top count, in log symprec
     for i, c in enumerate(counts + [-1]):
@@ -438,18 +771,40 @@ def campaign_advice(items: list[dict], common: list[float], window=(1e-4, 0.2)) 
             blocks.append((i - start, start, i - 1))
             start = None
     _, a, b = max(blocks)
+    if a == 0 and b == len(grid) - 1:
+        out.update(safe_runs=top, reason=f"{top} of {len(per_run)} runs keep one spglib verdict on "
+                   f"the final structure at every symprec searched ({_g(window[0])}-"
+                   f"{_g(window[1])} Å): any value in that range gives the same verdicts")
+        return out
     s = math.sqrt(grid[a] * grid[b])
     ok = safe(s)
     out.update(recommended_symprec=s, safe_runs=len(ok),
                unsafe_run_ids=[rid for rid, *_ in per_run if rid not in ok][:50],
                reason=f"{len(ok)} of {len(per_run)} runs keep one spglib verdict on the final "
-                      f"structure within a factor {SAFE_MARGIN:g} either side of {s:.2g} Å; this is "
-                      f"the centre of the widest symprec range ({grid[a]:.2g}-{grid[b]:.2g} Å) where "
-                      f"the most runs are safe. A starting point for your own check"
+                      f"structure within a factor {SAFE_MARGIN:g} either side of {_g(s)} Å; this is "
+                      f"the centre of the widest symprec range ({_g(grid[a])}-{_g(grid[b])} Å, "
+                      f"searched {_g(window[0])}-{_g(window[1])} Å) where the most runs are safe. "
+                      f"A starting point for your own check"
                       + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
     return out
 
 
-def gate(flags: list[dict], fail_on: list[str]) -> list[dict]:
-    """Flags that match ``fail_on`` entries (flag codes, or the levels 'info'/'warning')."""
-    return [f for f in flags if f["code"] in fail_on or f["level"] in fail_on]
+def check_codes(codes, what: str = "--reject-on") -> list[str]:
+    """Validate flag codes (or what they concern); old codes get a hint to their new name."""
+    from .errors import ConfigError
+    codes = [c.strip() for c in codes if c and c.strip()]
+    bad = [c for c in codes if c not in FLAGS and c not in CONCERNS and c != "any"]
+    if bad:
+        hint = "; ".join(f"{c} is now {RENAMED[c]}" for c in bad if c in RENAMED)
+        raise ConfigError(f"{what}: unknown flag code(s) {', '.join(bad)}"
+                          + (f" ({hint})" if hint else "")
+                          + f" (codes: {', '.join(FLAGS)}; or what they concern: "
+                            f"{', '.join(CONCERNS)}; or 'any')")
+    return codes
+
+
+def select(flags: list[dict], codes: list[str]) -> list[dict]:
+    """Flags matching ``codes``: flag codes, what flags concern (lattice, structure, tolerance,
+    code), or ``any``."""
+    return [f for f in flags if f["code"] in codes or "any" in codes
+            or f.get("concerns", FLAGS.get(f["code"])) in codes]

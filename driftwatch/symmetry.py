@@ -62,7 +62,7 @@ from .errors import ConfigError, GeometryError, LatticeError, SymmetryError
 
 __all__ = [
     "DEFAULT_SYMPRECS", "DEFAULT_PRECISION", "spectrum", "displacement_to_group", "drift_table",
-    "symmetrize", "versions", "clear_cache",
+    "symmetrize", "versions", "clear_cache", "group_at", "relation", "primitive_lattice",
 ]
 
 #: Default grid: 17 values log-spaced from 1e-5 Å to 0.3 Å (neighbours differ by a factor ~1.90).
@@ -524,6 +524,83 @@ def _spectrum(lattice, frac, nums, grid, angle_tolerance, vacuum_axis, bisect, r
         "spglib_version": spglib.__version__,
         "calls": prober.calls + (0 if lhit else lcalls),
     }
+
+
+# ----------------------------------------------------------------------------------------------
+# one group at one symprec, and how two groups of one run relate
+# ----------------------------------------------------------------------------------------------
+def group_at(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None) -> dict:
+    """spglib's group of one structure at one ``symprec`` (Å), with what :func:`relation` compares.
+
+    Returns ``{"group", "symbol", "operations", "rotations", "centring"}``: the space-group number
+    (layer group for layers; 0 where spglib failed), its symbol, the number of operations spglib
+    lists for the input cell, the distinct point operations as integer matrices in the input cell's
+    own basis (sorted), and the pure translations (fractional, sorted, each component in [0, 1)).
+    Shares spglib's answers with :func:`spectrum` (memoised on the exact input).
+    """
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    ds, _ = _dataset(lattice, frac, nums, float(symprec), float(angle_tolerance),
+                     vacuum_axis is not None)
+    if ds is None:
+        return {"group": 0, "symbol": "", "operations": 0, "rotations": [], "centring": []}
+    rot = np.asarray(ds.rotations, dtype=int)
+    unique = sorted({tuple(r.ravel()) for r in rot})
+    centring = np.mod(np.round(_pure_translations(ds), 6), 1.0)
+    centring = sorted({tuple(float(x) % 1.0 for x in t) for t in centring})
+    return {"group": int(ds.number), "symbol": str(ds.international), "operations": int(len(rot)),
+            "rotations": [list(r) for r in unique], "centring": [list(t) for t in centring]}
+
+
+def primitive_lattice(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None):
+    """The structure's translation lattice at ``symprec``: the input lattice plus the pure
+    translations spglib finds (rows, cartesian Å, input orientation). For a layer the axes are
+    permuted cyclically so that the vacuum vector is the last row. A supercell of a smaller cell
+    (e.g. R-3m written in hexagonal axes) gives the smaller cell's lattice. Raises SymmetryError
+    when spglib fails at this symprec."""
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    ds, msg = _dataset(lattice, frac, nums, float(symprec), float(angle_tolerance),
+                       vacuum_axis is not None)
+    if ds is None:
+        raise SymmetryError(f"spglib found no symmetry at symprec={symprec:g} Å: {msg}")
+    T = _pure_translations(ds)
+    n = len(T)
+    if n <= 1:
+        return lattice
+    scaled = T * n
+    if np.abs(scaled - np.round(scaled)).max() > 1e-5 * n:
+        return lattice
+    basis = _integer_basis(np.vstack([n * np.eye(3), np.round(scaled)])) / n
+    return basis @ lattice
+
+
+def relation(before: dict, after: dict) -> str:
+    """How the group ``after`` relates to ``before`` (two :func:`group_at` results of one run).
+
+    Both are taken in the run's own cell basis, which a relaxation deforms continuously, so an
+    operation kept by the relaxation is the same integer matrix in both. The comparison is by
+    inclusion of the point operations and of the pure (centring) translations:
+    ``"same"`` (equal sets, same group number), ``"supergroup"`` (``after`` contains ``before``:
+    symmetry gained), ``"subgroup"`` (symmetry lost), ``"unrelated"`` (neither contains the other,
+    or equal sets with another group number, e.g. a screw axis replacing a rotation axis), or
+    ``"unknown"`` when spglib failed on either. Glide and screw parts and origin choices are not
+    compared: an inclusion here is of the point-group-and-centring level (a necessary condition).
+    """
+    if not before.get("group") or not after.get("group"):
+        return "unknown"
+
+    def sets(g):
+        return ({tuple(r) for r in g["rotations"]},
+                {tuple(round(x, 5) % 1.0 for x in t) for t in g["centring"]})
+
+    ra, ta = sets(before)
+    rb, tb = sets(after)
+    if ra == rb and ta == tb:
+        return "same" if before["group"] == after["group"] else "unrelated"
+    if ra <= rb and ta <= tb:
+        return "supergroup"
+    if rb <= ra and tb <= ta:
+        return "subgroup"
+    return "unrelated"
 
 
 # ----------------------------------------------------------------------------------------------

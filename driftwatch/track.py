@@ -1,6 +1,6 @@
 """One run through the pipeline: frames -> invariants on every frame -> spglib on chosen frames -> record.
 
-``analyze(path_or_run, config)`` returns the run record (schema ``driftwatch/run-1``, see
+``analyze(path_or_run, config)`` returns the run record (schema ``driftwatch/run-2``, see
 ``docs/record.md``). The lattice invariants are computed for all frames in one vectorised call; spglib
 runs only on the frames :func:`select_frames` picks.
 """
@@ -17,7 +17,7 @@ from .adapters import Run, read_run
 from .errors import GeometryError, LatticeError, SymmetryError
 
 __all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "select_frames",
-           "symprec_grid", "LAYER_TYPES", "BULK_TYPES"]
+           "symprec_grid", "structure_symprecs", "LAYER_TYPES", "BULK_TYPES"]
 
 LAYER_TYPES = lattice2d.TYPES
 BULK_TYPES = lattice3d.TYPES
@@ -65,9 +65,9 @@ def symprec_grid(cfg: dict) -> list[float]:
     grid = np.geomspace(s["symprec_min"], s["symprec_max"], s["grid_points"])
     half_step = 0.5 * np.log(grid[1] / grid[0])
     r = cfg["rules"]
-    extra = [r["tolerance_sensitive"]["low"], r["tolerance_sensitive"]["high"],
-             r["spglib_overcall"]["symprec"], r["atoms_break_lattice"]["symprec"],
-             r["atoms_settled"]["symprec"], *cfg["report"]["common_symprecs"]]
+    extra = [r["symprec_dependent"]["low"], r["symprec_dependent"]["high"],
+             r["loose_symprec"]["symprec"], r["atoms_break_lattice"]["symprec"],
+             *structure_symprecs(cfg)]
     out = list(grid)
     moved = set()
     for x in extra:
@@ -81,6 +81,81 @@ def symprec_grid(cfg: dict) -> list[float]:
         else:
             out.append(x)       # (a point already moved onto another quoted value stays there)
     return sorted({round(float(x), 12) for x in out})
+
+
+def structure_symprecs(cfg: dict) -> list[float]:
+    """The symprecs (Å) at which the structure's group is compared between frames: the verdict's
+    ``rules.structure.symprec`` and every ``report.common_symprecs``."""
+    return sorted({float(cfg["rules"]["structure"]["symprec"]), *map(float,
+                   cfg["report"]["common_symprecs"])})
+
+
+def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], chosen: list[int]) -> int:
+    """spglib's group at :func:`structure_symprecs` on the chosen frames, each compared with the
+    first frame's (``symmetry.relation``); then, for each of those symprecs, the frame from which the
+    final group holds is located by bisection over the frames between the last checked frame with
+    another group and the first with the final one (one change between them is assumed; the record
+    says which frames were checked). Adds ``structure`` to those frames; returns frames probed."""
+    sym = cfg["symmetry"]
+    precs = structure_symprecs(cfg)
+    cache: dict = {}
+
+    def groups(i):
+        if i not in cache:
+            cache[i] = [symmetry.group_at(run.cells[i], run.positions[i], run.numbers, s,
+                                          angle_tolerance=sym["angle_tolerance"],
+                                          vacuum_axis=geo.vacuum_axis) for s in precs]
+            first = groups(0) if i else cache[i]
+            frames[i]["structure"] = {
+                "symprec": precs, "group": [g["group"] for g in cache[i]],
+                "symbol": [g["symbol"] for g in cache[i]],
+                "operations": [g["operations"] for g in cache[i]],
+                "relation": [symmetry.relation(a, b) for a, b in zip(first, cache[i])]}
+        return cache[i]
+
+    key = lambda g: (g["group"], g["operations"])
+    for i in sorted(set(chosen) | {0}):
+        groups(i)
+    last = max(chosen)
+    for j in range(len(precs)):
+        final = key(groups(last)[j])
+        checked = sorted(cache)
+        hi = last
+        for k in reversed([c for c in checked if c < last]):
+            if key(groups(k)[j]) != final:
+                break
+            hi = k
+        lo = max([c for c in checked if c < hi], default=None)
+        while lo is not None and hi - lo > 1:
+            mid = (lo + hi) // 2
+            if key(groups(mid)[j]) == final:
+                hi = mid
+            else:
+                lo = mid
+    return len(cache)
+
+
+def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
+    """Bravais type of the structure's translation lattice at ``rules.atoms_break_lattice.symprec``
+    (the cell's lattice plus spglib's pure translations), for the atoms-break-lattice rule."""
+    r = cfg["rules"]["atoms_break_lattice"]
+    try:
+        prim = symmetry.primitive_lattice(run.cells[i], run.positions[i], run.numbers, r["symprec"],
+                                          angle_tolerance=cfg["symmetry"]["angle_tolerance"],
+                                          vacuum_axis=geo.vacuum_axis)
+    except (SymmetryError, GeometryError, LatticeError):
+        return None
+    if geo.dimension == 2:
+        dfm = lattice2d.deformation(geometry.inplane_bases(prim[None], 2)[0],
+                                    metric=cfg["lattice"]["metric"])
+        types, low = lattice2d.TYPES, "mp"
+    else:
+        dfm = lattice3d.deformation(prim, metric=cfg["lattice"]["metric"])
+        types, low = lattice3d.TYPES, "aP"
+    dfm = {t: float(dfm[t]) for t in types}
+    held = [t for t in types if dfm[t] <= r["within"]]
+    t = max(held, key=lambda x: (rules.ORDER[x], -dfm[x])) if held else low
+    return {"symprec": r["symprec"], "type": t, "deformation": dfm.get(t, 0.0)}
 
 
 def _fixed_cell(cells: np.ndarray) -> bool:
@@ -127,7 +202,8 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
 
 
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
-                    spectra: dict | None = None, skip_newest: bool = False) -> dict:
+                    spectra: dict | None = None, skip_newest: bool = False,
+                    complete: bool = True) -> dict:
     """The record of an already read run.
 
     Args:
@@ -136,6 +212,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         spectra: a cache {frame index: symmetry entry}; entries found are reused, new ones are added
             (the live tracker keeps it across growing runs).
         skip_newest: leave the last frame out of the default selection (a live step not yet final).
+        complete: False for a run still going (live): a change counts only once it held for
+            ``rules.persistence.steps`` steps (see :mod:`driftwatch.rules`).
     """
     t0 = time.perf_counter()
     if geo is None:
@@ -160,31 +238,38 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
             calls += int(spectra[i].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
         entries[i]["symmetry"] = spectra[i]
+    probed = _group_entries(run, geo, cfg, entries, chosen) if chosen else 0
+    last = max(chosen) if chosen else None
+    if last is not None and "symmetry" in entries[last]:
+        entries[last]["symmetry"] = dict(entries[last]["symmetry"],   # the cached spectrum stays
+                                         primitive=_primitive_entry(run, geo, cfg, last))
     t2 = time.perf_counter()
     record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
                                 versions={"driftwatch": __version__, **symmetry.versions()})
-    record["flags"] = rules.evaluate(record, cfg)
-    record["summary"] = rules.summarize(record, cfg)
+    record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete)
     record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
                         "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen),
-                        "spglib_frames_computed": computed, "spglib_calls": calls}
+                        "spglib_frames_computed": computed, "spglib_calls": calls,
+                        "group_frames": probed}
     return record
 
 
 def analyze(path_or_run, config=None, *, format: str | None = None,
-            frames: Iterable[int] | None = None) -> dict:
-    """Analyse one run and return its record (schema ``driftwatch/run-1``).
+            frames: Iterable[int] | None = None, complete: bool = True) -> dict:
+    """Analyse one run and return its record (schema ``driftwatch/run-2``).
 
     Args:
         path_or_run: a file, a run folder, or a :class:`~driftwatch.adapters.Run`.
         config: preset name, YAML path, mapping, or an already loaded config (None: default).
         format: adapter name, overriding detection.
         frames: analyse spglib on exactly these frame indices (default: the config's selection).
+        complete: False judges the frames as a run still going: a change counts only once it held
+            for ``rules.persistence.steps`` steps (what the live tools do).
     """
     cfg = _config.coerce(config)
     run = path_or_run if isinstance(path_or_run, Run) else read_run(path_or_run, format=format)
     try:
-        return record_from_run(run, cfg, frames=frames)
+        return record_from_run(run, cfg, frames=frames, complete=complete)
     except (GeometryError, LatticeError, SymmetryError) as exc:
         if str(run.source) in str(exc):
             raise

@@ -344,11 +344,12 @@ class ASERun:
     name: str
     fmt: str                       # "traj" (the optimizer's own file) or "extxyz" (written from it)
     build: object                  # () -> ase.Atoms
-    optimizer: str = "BFGS"        # "BFGS" | "FIRE"
+    optimizer: str = "BFGS"        # "BFGS" | "FIRE" | "MDMin"
     cell_mask: list | None = None  # FrechetCellFilter mask (Voigt xx yy zz yz xz xy); None = fixed cell
     fmax: float = 1e-3             # eV/Å (on the filter: forces and scaled stress)
     steps: int = 400
     note: str = ""
+    opt_kwargs: dict | None = None  # extra optimizer arguments (time step, step cap)
 
 
 def _flat_layer(symbols, frac2d, a, b, gamma_deg, c=14.0):
@@ -392,6 +393,22 @@ def _build_b04():
     return at
 
 
+def _build_b06():
+    # one-atom Cu cell 0.02 % off body-centred cubic along c (bcc is a saddle of EMT copper)
+    from ase import Atoms
+    return Atoms("Cu", cell=bcc_primitive(2.87, 2.87 * 1.0002), pbc=True)
+
+
+def _build_b07():
+    # 4-atom Cu cell with an orthorhombic strain and a small a-b shear
+    from ase.build import bulk
+    at = bulk("Cu", "fcc", a=3.61, cubic=True)
+    F = np.eye(3) + np.diag([0.0012, 0.045, -0.0356])
+    F[0, 1] = F[1, 0] = 0.019
+    at.set_cell(at.cell.array @ F, scale_atoms=True)
+    return at
+
+
 def _build_b05():
     from ase.build import bulk
     at = bulk("Pd", "fcc", a=3.9, cubic=True)
@@ -413,6 +430,13 @@ ASE_RUNS: list[ASERun] = [
            note="SM-B04, rattled 8-atom fcc-type Cu cell, loosely converged (fmax 0.05 eV/A)"),
     ASERun("B05_emt_bfgs", "extxyz", _build_b05, "BFGS", [1, 1, 1, 1, 1, 1], 1e-4,
            note="SM-B05, 4-atom Pd cell strained orthorhombically (3.78 x 3.92 x 4.06 A)"),
+    ASERun("L10_emt_mdmin_flip", "traj", _build_l06, "MDMin", INPLANE, 1e-3,
+           opt_kwargs={"dt": 0.05},
+           note="SM-L10, the SM-L06 start relaxed with MDMin: the flip crosses a mirror lattice on a frame"),
+    ASERun("B06_emt_bain", "traj", _build_b06, "FIRE", [1, 1, 1, 1, 1, 1], 1e-6, steps=1000,
+           note="SM-B06, one-atom Cu cell 0.02 % off bcc, slides along the Bain path"),
+    ASERun("B07_emt_fire_path", "traj", _build_b07, "FIRE", [1, 1, 1, 1, 1, 1], 1e-4, steps=400,
+           note="SM-B07, sheared 4-atom Cu cell; FIRE touches oP, oS, tP and leaves them before ending cP"),
 ]
 
 
@@ -420,7 +444,7 @@ def run_ase(run: ASERun, out_root: Path) -> dict:
     from ase.calculators.emt import EMT
     from ase.filters import FrechetCellFilter
     from ase.io import read, write
-    from ase.optimize import BFGS, FIRE
+    from ase.optimize import BFGS, FIRE, MDMin
 
     tree = out_root / "example_runs"
     tree.mkdir(parents=True, exist_ok=True)
@@ -428,10 +452,10 @@ def run_ase(run: ASERun, out_root: Path) -> dict:
     atoms.calc = EMT()
     target = tree / f"{run.name}.{run.fmt}"
     tmp_traj = tree / f".{run.name}.traj.partial"
-    opt_cls = {"BFGS": BFGS, "FIRE": FIRE}[run.optimizer]
+    opt_cls = {"BFGS": BFGS, "FIRE": FIRE, "MDMin": MDMin}[run.optimizer]
     obj = atoms if run.cell_mask is None else FrechetCellFilter(atoms, mask=run.cell_mask)
     t0 = time.time()
-    with opt_cls(obj, logfile=None, trajectory=str(tmp_traj)) as opt:
+    with opt_cls(obj, logfile=None, trajectory=str(tmp_traj), **(run.opt_kwargs or {})) as opt:
         converged = opt.run(fmax=run.fmax, steps=run.steps)
     wall = time.time() - t0
     if not converged:

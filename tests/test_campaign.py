@@ -174,7 +174,7 @@ def audited(tmp_path_factory):
     base = tmp_path_factory.mktemp("audit")
     camp = make_campaign(base)
     out = base / "out"
-    summary = run_audit([camp], out, fail_on=["snapped"], report=True)
+    summary = run_audit([camp], out, reject_on=["lattice-gained"], report=True)
     return camp, out, summary
 
 
@@ -207,15 +207,21 @@ def test_verdicts_and_gating_of_the_campaign(audited):
     recs = {rid: records.read_json(out / f) for rid, f in s["records"].items()}
     # L-hex ends exactly hexagonal (a = b, gamma = 120 deg: International Tables hp lattice);
     # the pw.x layer relaxation drifts from oblique to hexagonal (see tests/data/qe and test_track)
-    assert recs["camp/layers/L-hex.traj"]["summary"]["verdict"] == "snapped"
+    direction = {rid: r["summary"]["verdict"]["direction"] for rid, r in recs.items()}
+    assert direction["camp/layers/L-hex.traj"] == "gained"
     assert recs["camp/layers/L-hex.traj"]["summary"]["final"]["type"] == "hp"
-    assert recs["camp/qe/layer_oblique_to_hex"]["summary"]["verdict"] == "snapped"
-    assert recs["camp/layers/L-obl.traj"]["summary"]["verdict"] == "steady"
-    assert recs["camp/qe/relax_atoms_to_sites"]["summary"]["verdict"] == "fixed-cell"
-    assert s["verdict_counts"] == {"failed": 2, "fixed-cell": 1, "snapped": 2, "steady": 1}
-    assert s["flag_counts"]["snapped"] == 2
-    assert {g["run"] for g in s["gated"]} == {"camp/layers/L-hex.traj",
-                                              "camp/qe/layer_oblique_to_hex"}
+    assert direction["camp/qe/layer_oblique_to_hex"] == "gained"
+    assert direction["camp/layers/L-obl.traj"] == "kept"
+    # fixed cell: the lattice keeps its type by construction, the atoms gain symmetry (spglib's
+    # group at 1e-3 Å rises to Fd-3m, checked in test_track against spglib directly)
+    sites = recs["camp/qe/relax_atoms_to_sites"]["summary"]["verdict"]
+    assert direction["camp/qe/relax_atoms_to_sites"] == "gained"
+    assert sites["lattice"]["direction"] == "kept" and sites["lattice"]["fixed_cell"]
+    assert sites["structure"]["direction"] == "gained"
+    assert s["verdict_counts"] == {"failed": 2, "gained": 3, "kept": 1}
+    assert s["flag_counts"]["lattice-gained"] == 2
+    assert {g["run"] for g in s["rejected"]} == {"camp/layers/L-hex.traj",
+                                                 "camp/qe/layer_oblique_to_hex"}
     assert all("timing" not in r for r in recs.values())      # records are timing-free
     tol = s["tolerance"]
     assert tol["symprecs"] == [1e-5, 1e-3, 1e-2, 0.1] and tol["runs_considered"] == 4
@@ -241,19 +247,24 @@ def test_ase_db_rows_queryable_with_ase_tools(audited):
     camp, out, _ = audited
     db = ase.db.connect(out / "runs.db")
     assert db.count() == 6
-    snapped = {row.run_id for row in db.select("verdict=snapped")}
-    assert snapped == {"camp/layers/L-hex.traj", "camp/qe/layer_oblique_to_hex"}
+    gained = {row.run_id for row in db.select("lattice_verdict=gained")}
+    assert gained == {"camp/layers/L-hex.traj", "camp/qe/layer_oblique_to_hex"}
+    # the drift numbers are the deformation to the type gained: below 'within' at the end
+    assert {row.run_id for row in db.select("drift_final<0.001,lattice_verdict=gained")} == gained
+    # one key scheme, no tool prefix; reserved ase.db names are not used
+    assert not [k for k in db.get(run_id="camp/layers/L-hex.traj").key_value_pairs
+                if k.startswith("dw_")]
     row = db.get(run_id="camp/layers/L-hex.traj")
     final = ase.io.read(camp / "layers" / "L-hex.traj", index=-1)
     assert np.allclose(row.cell, final.cell) and np.allclose(row.positions, final.positions)
-    assert list(row.numbers) == [6] and row.final_type == "hp" and row.flag_snapped
+    assert list(row.numbers) == [6] and row.lattice_final == "hp" and row.flag_lattice_gained
     # spglib on the stored final structure agrees it is hexagonal (P6/mmm, 191) (reference: spglib)
     import spglib
     ds = spglib.get_symmetry_dataset((row.cell, row.positions @ np.linalg.inv(row.cell),
                                       row.numbers), symprec=1e-3)
     assert ds.number == 191
     # ASE's own command line (python -m ase db) reads the same rows
-    cli = subprocess.run([sys.executable, "-m", "ase", "db", str(out / "runs.db"), "verdict=snapped",
+    cli = subprocess.run([sys.executable, "-m", "ase", "db", str(out / "runs.db"), "lattice_verdict=gained",
                           "-c", "+run_id"], capture_output=True, text=True, timeout=120, check=False)
     assert cli.returncode == 0, cli.stderr
     assert "camp/layers/L-hex.traj" in cli.stdout and "camp/qe/layer_oblique_to_hex" in cli.stdout
@@ -425,7 +436,7 @@ def test_progress_and_summary_table(tmp_path, capsys):
     run_audit([camp / "layers"], tmp_path / "out", quiet=False)
     lines = capsys.readouterr().out.splitlines()
     assert lines[0].split()[:2] == ["run", "dim"]
-    assert any(ln.startswith("layers/L-hex.traj") and "snapped" in ln and "mp -> hp" in ln
+    assert any(ln.startswith("layers/L-hex.traj") and " gained " in ln and "mp -> hp" in ln
                for ln in lines)
     assert any(ln.startswith("2 runs (0 analysed, 2 from cache, 0 failed)") for ln in lines)
     run_audit([camp / "layers"], tmp_path / "out", progress="off")   # batch: stdout stays clean

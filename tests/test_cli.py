@@ -37,14 +37,16 @@ def test_inspect_table_json_and_gate(tmp_path):
     run = QE / "layer_oblique_to_hex"
     r = dw("inspect", run)
     assert r.returncode == 0, r.stderr
-    assert "verdict: snapped" in r.stdout and "flag: [warning] snapped" in r.stdout
+    assert "verdict: gained: lattice mp -> hp" in r.stdout
+    assert "flag: lattice-gained (step" in r.stdout
     r = dw("inspect", run, "--json", "-o", tmp_path / "rec.json")
     rec = json.loads(r.stdout)
-    assert rec["schema"] == "driftwatch/run-1"
+    assert rec["schema"] == "driftwatch/run-2"
     assert json.loads((tmp_path / "rec.json").read_text())["summary"] == rec["summary"]
-    # pipeline gating: a flag named in --fail-on makes the command exit 3
-    assert dw("inspect", run, "--fail-on", "snapped").returncode == 3
-    assert dw("inspect", run, "--fail-on", "handedness-flip").returncode == 0
+    # pipeline use: a flag named in --reject-on makes the command exit 3
+    assert dw("inspect", run, "--reject-on", "lattice-gained").returncode == 3
+    assert dw("inspect", run, "--reject-on", "lattice").returncode == 3
+    assert dw("inspect", run, "--reject-on", "handedness-flip").returncode == 0
 
 
 def test_errors_are_one_line_and_name_the_file(tmp_path):
@@ -56,12 +58,17 @@ def test_errors_are_one_line_and_name_the_file(tmp_path):
     assert len(lines) == 1 and str(empty) in lines[0] and "Traceback" not in r.stderr
     r = dw("inspect", tmp_path / "missing.out")
     assert r.returncode == 1 and "missing.out" in r.stderr and len(r.stderr.strip().splitlines()) == 1
-    r = dw("inspect", QE / "layer_oblique_to_hex", "--fail-on", "colapsed")
+    r = dw("inspect", QE / "layer_oblique_to_hex", "--reject-on", "colapsed")
     assert r.returncode == 1 and "unknown flag code" in r.stderr
+    r = dw("inspect", QE / "layer_oblique_to_hex", "--reject-on", "snapped")
+    assert r.returncode == 1 and "snapped is now lattice-gained" in r.stderr
     bad = tmp_path / "bad.yaml"
-    bad.write_text("rules:\n  snapped:\n    within: 0.001\n")
+    bad.write_text("rules:\n  lattice:\n    within: 0.001\n")
     r = dw("inspect", QE / "layer_oblique_to_hex", "-c", bad)
-    assert r.returncode == 1 and "rules.snapped.within: missing unit" in r.stderr
+    assert r.returncode == 1 and "rules.lattice.within: missing unit" in r.stderr
+    bad.write_text("rules:\n  snapped:\n    within: 1e-3 Å\n")
+    r = dw("inspect", QE / "layer_oblique_to_hex", "-c", bad)
+    assert r.returncode == 1 and "'rules.snapped' was renamed: use 'rules.lattice'" in r.stderr
     assert dw("inspect").returncode == 2  # argparse usage error
 
 

@@ -18,7 +18,10 @@ def test_presets_load_and_carry_units(name):
 def test_presets_differ_where_documented():
     assert config.load("monolayer")["geometry"]["require_layer"] is True
     assert config.load("tolerance")["selection"]["all_frames"] is True
-    assert "snapped" in config.load("bulk")["fail_on"]
+    # presets choose thresholds, never which flags fail a command (reject_on stays the user's choice)
+    assert config.load("bulk")["rules"]["lattice"]["within"] > config.load("default")["rules"][
+        "lattice"]["within"]
+    assert all(config.load(p)["reject_on"] == [] for p in config.PRESETS)
     screen = config.load("screen")
     assert screen["symmetry"]["bisect"] is False and screen["selection"]["every"] == 0
     assert screen["symmetry"]["grid_points"] < config.load("default")["symmetry"]["grid_points"]
@@ -40,7 +43,7 @@ def test_length_units(text, value):
     ({"lattice": {"metric": "l3"}}, "lattice.metric: must be one of l2, linf"),
     ({"selection": {"all_frames": "yes"}}, "selection.all_frames: expected true or false"),
     ({"symmetry": {"symprec_min": "1 Å", "symprec_max": "0.5 Å"}}, "symprec_min must be"),
-    ({"rules": {"approaching": {"fraction": "0.5 Å"}}}, "rules.approaching.fraction"),
+    ({"rules": {"lattice": {"nearing_fraction": "0.5 Å"}}}, "rules.lattice.nearing_fraction"),
     ({"gap": "6 Å"}, "unknown key 'gap'"),
 ])
 def test_bad_configs_name_the_key(tree, needle):
@@ -74,11 +77,11 @@ def test_extends_file_chain_and_overrides(tmp_path):
     base = tmp_path / "base.yaml"
     base.write_text("extends: monolayer\nselection:\n  every: 3\n")
     child = tmp_path / "child.yaml"
-    child.write_text(f"extends: {base}\nrules:\n  snapped:\n    within: 2e-3 Å\n")
+    child.write_text(f"extends: {base}\nrules:\n  lattice:\n    within: 2e-3 Å\n")
     cfg = config.load(child, overrides={"selection.all_frames": True})
     assert cfg["geometry"]["require_layer"] is True
     assert cfg["selection"]["every"] == 3
-    assert cfg["rules"]["snapped"]["within"] == pytest.approx(2e-3)
+    assert cfg["rules"]["lattice"]["within"] == pytest.approx(2e-3)
     assert cfg["selection"]["all_frames"] is True
     loop = tmp_path / "loop.yaml"
     loop.write_text(f"extends: {loop}\n")

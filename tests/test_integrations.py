@@ -35,7 +35,8 @@ from driftwatch.integrations.jobflow import SymmetryCheckMaker, check_relaxation
 
 DATA = Path(__file__).parent / "data" / "qe"
 COLLAPSED = DATA / "layer_oblique_to_hex"      # real pw.x: an oblique Si layer that snaps to hp
-STEADY = DATA / "relax_atoms_to_sites"          # real pw.x: fixed-cell relax, no 'snapped'
+STEADY = DATA / "relax_atoms_to_sites"          # real pw.x: fixed-cell relax, no lattice change
+QUICK = {"rules": {"persistence": {"steps": 2}}}  # live changes count after 2 steps (default 10)
 
 REPLAY = r'''
 import os, sys, time
@@ -102,7 +103,8 @@ def test_validator_fails_a_collapsed_run_through_custodian(tmp_path):
     log = json.loads((tmp_path / "custodian.json").read_text())
     assert log[-1]["validator"]["@class"] == "SymmetryValidator"
     v = c.validators[0]
-    assert "snapped" in v.reason and v.record["summary"]["verdict"] == "snapped"
+    assert "lattice-gained" in v.reason
+    assert v.record["summary"]["verdict"]["direction"] == "gained"
 
 
 def test_validator_passes_a_steady_run_and_round_trips(tmp_path):
@@ -110,9 +112,11 @@ def test_validator_passes_a_steady_run_and_round_trips(tmp_path):
                   directory=str(tmp_path), polling_time_step=0.05, monitor_freq=1)
     c.run()
     assert (tmp_path / "postprocessed").exists()
-    v = SymmetryValidator(fail_on=["snapped", "warning"], config="monolayer", output="dw.json")
+    v = SymmetryValidator(reject_on=["lattice-gained", "tolerance"], config="monolayer",
+                          output="dw.json")
     again = json.loads(json.dumps(v, cls=MontyEncoder), cls=MontyDecoder)    # MSONable (B.5)
-    assert isinstance(again, SymmetryValidator) and again.fail_on == ["snapped", "warning"]
+    assert isinstance(again, SymmetryValidator)
+    assert again.reject_on == ["lattice-gained", "tolerance"]
     assert again.config == "monolayer" and again.output == "dw.json"
     empty = tmp_path / "empty"
     empty.mkdir()
@@ -121,7 +125,9 @@ def test_validator_passes_a_steady_run_and_round_trips(tmp_path):
 
 
 def test_stop_handler_soft_stops_a_replayed_run(tmp_path):
-    h = SymmetryStopHandler(stop_on=["snapped"], fail_job=True)
+    # the replayed layer reaches hp three steps before its end: a persistence of 2 steps lets the
+    # soft stop act before the job ends (the default, 10 steps, would wait for the end)
+    h = SymmetryStopHandler(stop_on=["lattice-gained"], fail_job=True, config=QUICK)
     assert (h.is_monitor, h.is_terminating) == (True, False)
     c = Custodian([h], [ReplayJob(COLLAPSED / "pw.out", delay=0.15)], directory=str(tmp_path),
                   polling_time_step=0.05, monitor_freq=1, max_errors=5)
@@ -135,14 +141,14 @@ def test_stop_handler_soft_stops_a_replayed_run(tmp_path):
     stop = corr[0]["soft_stop"]
     assert stop["action"] == "wrote"
     assert Path(stop["path"]) == (tmp_path / "scratch" / "pw.EXIT").resolve()
-    assert "snapped" in stop["text"] and corr[0]["actions"] is None
+    assert "lattice-gained" in stop["text"] and corr[0]["actions"] is None
     assert not Path(stop["path"]).exists()                      # the job consumed it
     again = json.loads(json.dumps(h, cls=MontyEncoder), cls=MontyDecoder)
     assert isinstance(again, SymmetryStopHandler) and again.fail_job is True
 
 
 def test_stop_handler_dry_run_only_logs(tmp_path):
-    h = SymmetryStopHandler(stop_on=["snapped"], dry_run=True)
+    h = SymmetryStopHandler(stop_on=["lattice-gained"], dry_run=True, config=QUICK)
     c = Custodian([h], [ReplayJob(COLLAPSED / "pw.out", delay=0.02)], directory=str(tmp_path),
                   polling_time_step=0.05, monitor_freq=1)
     c.run()                                                    # never enters error handling
@@ -158,7 +164,7 @@ def test_stop_handler_with_real_pwx_under_custodian(tmp_path):
     from test_live import ALUMINIUM_VC_RELAX, PSEUDO
     (tmp_path / "pw.in").write_text(ALUMINIUM_VC_RELAX)
     shutil.copy(PSEUDO, tmp_path / PSEUDO.name)
-    h = SymmetryStopHandler(stop_on=["approaching"])
+    h = SymmetryStopHandler(stop_on=["lattice-nearing"])
     c = Custodian([h], [PwJob()], directory=str(tmp_path), polling_time_step=0.1,
                   monitor_freq=1, max_errors=5)
     c.run()                                  # raises_runtime_error=False: returns, logs the stop
@@ -188,7 +194,7 @@ def _flow(tmp_path, source):
         return f"ran after {verdict}"
 
     relax = relaxation(str(source), str(tmp_path / "relax"))
-    check = SymmetryCheckMaker(fail_on=["snapped"]).make(relax.output)
+    check = SymmetryCheckMaker(reject_on=["lattice-gained"]).make(relax.output)
     after = downstream(check.output["verdict"])
     return Flow([relax, check, after]), relax, check, after
 
@@ -198,10 +204,11 @@ def test_jobflow_check_stops_children_of_a_collapsed_run(tmp_path):
     flow, relax, check, after = _flow(tmp_path, COLLAPSED)
     responses = run_locally(flow, log=False)
     out = responses[check.uuid][1].output
-    assert out["passed"] is False and out["verdict"] == "snapped" and "snapped" in out["flags"]
+    assert out["passed"] is False and out["verdict"] == "gained"
+    assert "lattice-gained" in out["flags"]
     assert responses[check.uuid][1].stop_children is True
     assert after.uuid not in responses                          # the downstream job never ran
-    assert out["record"]["schema"] == "driftwatch/run-1"
+    assert out["record"]["schema"] == "driftwatch/run-2"
 
 
 def test_jobflow_check_passes_a_steady_run_and_accepts_structures(tmp_path):
@@ -221,5 +228,5 @@ def test_jobflow_check_passes_a_steady_run_and_accepts_structures(tmp_path):
     j = check_relaxation(None)
     got = run_locally(j, log=False)[j.uuid][1].output
     assert got["passed"] is False and "no relaxation output" in got["error"]
-    d = SymmetryCheckMaker(fail_on=["warning"]).as_dict()
-    assert d["@class"] == "SymmetryCheckMaker" and d["fail_on"] == ["warning"]
+    d = SymmetryCheckMaker(reject_on=["structure"]).as_dict()
+    assert d["@class"] == "SymmetryCheckMaker" and d["reject_on"] == ["structure"]

@@ -49,6 +49,7 @@ def content(rec: dict) -> dict:
     for f in rec["frames"]:
         if "symmetry" in f:
             f["symmetry"].pop("calls", None)
+    rec["summary"]["verdict"].pop("complete", None)     # live (going on) or ended: compared apart
     return {k: rec[k] for k in ("frames", "flags", "summary", "geometry", "config")} | {
         "run": {k: rec["run"][k] for k in ("n_frames", "n_atoms", "formula", "fixed_cell")}}
 
@@ -92,6 +93,11 @@ def invented_layer():
     return atoms
 
 
+#: The invented layer holds hp for its last 3 steps only: with the default persistence (10 steps) a
+#: live change would count only when the run ends, so these tests let a change count after 2 steps.
+QUICK = {"rules": {"persistence": {"steps": 2}}}
+
+
 def relax(tmp_path, watch_kw=None, *, interval=1, pass_opt=False, steps=200):
     """A real EMT relaxation of the invented layer, in-plane cell free (FrechetCellFilter)."""
     from ase.filters import FrechetCellFilter
@@ -99,7 +105,7 @@ def relax(tmp_path, watch_kw=None, *, interval=1, pass_opt=False, steps=200):
     atoms = invented_layer()
     traj = tmp_path / "relax.traj"
     opt = BFGS(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), trajectory=str(traj), logfile=None)
-    watch = SymmetryWatch(atoms, **(watch_kw or {}))
+    watch = SymmetryWatch(atoms, **({"config": QUICK} | (watch_kw or {})))
     if pass_opt:
         opt.attach(watch, interval=interval, optimizer=opt)
     else:
@@ -114,30 +120,34 @@ def test_watch_record_mode_matches_analyze_of_trajectory(tmp_path):
     with warnings.catch_warnings():
         warnings.simplefilter("error", SymmetryDriftWarning)     # record mode never warns
         assert opt.run(fmax=1e-4, steps=200)
+    assert records.read_json(out)["summary"]["verdict"]["complete"] is False   # still going
+    watch.finish()                                                 # the optimizer has finished
     written = records.read_json(out)
     assert written["run"]["n_frames"] == opt.nsteps + 1          # step 0 + every step (interval 1)
+    assert written["summary"]["verdict"]["complete"] is True
     assert same(written, watch.record)
     # the record equals track.analyze of the trajectory the optimizer wrote
-    assert same(written, analyze(traj))
+    assert same(written, analyze(traj, QUICK))
     codes = {f["code"] for f in written["flags"]}
-    assert "snapped" in codes and written["summary"]["verdict"] == "snapped"
-    snap = next(f for f in written["flags"] if f["code"] == "snapped")
+    assert "lattice-gained" in codes and written["summary"]["verdict"]["direction"] == "gained"
+    snap = next(f for f in written["flags"] if f["code"] == "lattice-gained")
     assert snap["type"] == "hp"
     # external check: ASE's own 2D classification of the first and last in-plane cells
     from ase.io import read
     first, last = read(traj, 0), read(traj, -1)
     assert first.cell.get_bravais_lattice(pbc=[1, 1, 0]).name == "OBL"
     assert last.cell.get_bravais_lattice(pbc=[1, 1, 0], eps=1e-3).name == "HEX2D"
-    assert watch.fired and watch.fired[0]["code"] == "snapped"     # recorded, not acted on
+    assert watch.fired and watch.fired[0]["code"] == "lattice-gained"  # recorded, not acted on
 
 
 def test_watch_warn_mode_warns_once_per_new_flag(tmp_path):
-    atoms, opt, watch, traj = relax(tmp_path, {"mode": "warn", "stop_on": ("snapped", "warning")})
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "warn",
+                                               "stop_on": ("lattice-gained", "structure")})
     with pytest.warns(SymmetryDriftWarning) as got:
         opt.run(fmax=1e-4, steps=200)
     ours = [w.message for w in got if isinstance(w.message, SymmetryDriftWarning)]
     keys = [(w.flag["code"], w.flag["type"]) for w in ours]
-    assert ("snapped", "hp") in keys
+    assert ("lattice-gained", "hp") in keys
     assert len(keys) == len(set(keys))                       # once per flag, not once per step
     assert opt.converged(opt.optimizable.get_gradient())      # warn mode lets the relaxation finish
 
@@ -145,13 +155,14 @@ def test_watch_warn_mode_warns_once_per_new_flag(tmp_path):
 def test_watch_stop_mode_raises_with_record_and_trajectory_has_step(tmp_path):
     from ase.io import Trajectory
     out = tmp_path / "stop.json"
-    atoms, opt, watch, traj = relax(tmp_path, {"mode": "stop", "stop_on": ["snapped"], "output": out},
-                                    pass_opt=True)
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "stop", "stop_on": ["lattice-gained"],
+                                               "output": out}, pass_opt=True)
     with pytest.raises(SymmetryCollapse) as exc:
         opt.run(fmax=1e-4, steps=200)
     err = exc.value
     flag = err.flags[0]
-    assert flag["code"] == "snapped" and "step" in str(err)
+    assert flag["code"] == "lattice-gained" and "step" in str(err)
+    assert err.record["summary"]["verdict"]["complete"] is False
     # ASE semantics (ase/optimize/optimize.py): nsteps is the step that fired, the trajectory writer
     # ran before our observer, so the trajectory already holds that step
     assert opt.nsteps == err.record["frames"][-1]["step"]
@@ -160,11 +171,12 @@ def test_watch_stop_mode_raises_with_record_and_trajectory_has_step(tmp_path):
         assert np.allclose(t[-1].cell.array, atoms.cell.array)
     assert records.read_json(out)["run"]["n_frames"] == opt.nsteps + 1
     assert same(records.read_json(out), err.record)
-    assert same(err.record, analyze(traj))
+    assert same(err.record, analyze(traj, QUICK, complete=False))    # judged as a run going on
 
 
 def test_watch_irun_break_alternative_and_interval(tmp_path):
-    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record"}, interval=2, pass_opt=True)
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record", "config": {
+        "rules": {"persistence": {"steps": 1}}}}, interval=2, pass_opt=True)
     for converged in opt.irun(fmax=1e-4, steps=200):
         if watch.fired:
             break
@@ -181,10 +193,10 @@ def test_watch_lazy_skips_newest_spectrum_until_finish(tmp_path):
     n = watch.record["run"]["n_frames"]
     assert watch.record["live"]["observer"]["complete"] is False
     assert "symmetry" not in watch.record["frames"][-1]          # lagging by the newest spectrum
-    assert watch.fired and watch.fired[0]["code"] == "snapped"    # invariant-only flags still fire
+    assert watch.fired and watch.fired[0]["code"] == "lattice-gained"  # invariant-only flags fire
     rec = watch.finish()
     assert rec["run"]["n_frames"] == n and "symmetry" in rec["frames"][-1]
-    assert same(records.read_json(out), analyze(traj))
+    assert same(records.read_json(out), analyze(traj, QUICK))
 
 
 def test_end_markers_of_genuine_outputs(tmp_path):
@@ -218,18 +230,20 @@ def test_watch_takes_the_filter_and_survives_an_unanalysable_structure():
         SymmetryWatch(atoms, mode="halt")
     with pytest.raises(ConfigError):
         SymmetryWatch(atoms, stop_on=["collapsed"])
+    with pytest.raises(ConfigError, match="snapped is now lattice-gained"):
+        SymmetryWatch(atoms, stop_on=["snapped"])
 
 
 # ---------------------------------------------------------------- soft stop files
 def test_stopcar_content_and_location_for_a_vasp_folder(tmp_path):
     # No VASP here: content and location only. LSTOP = .TRUE. (VASP's documented ionic-step stop,
     # from memory; custodian's WalltimeHandler writes the same tag), '#' comment line (from memory).
-    info = request_stop(tmp_path, "vasp", reason="flag snapped(cF) fired at ionic step 7")
+    info = request_stop(tmp_path, "vasp", reason="flag lattice-gained(cF) raised at ionic step 7")
     assert info["action"] == "wrote" and Path(info["path"]) == (tmp_path / "STOPCAR").resolve()
     text = (tmp_path / "STOPCAR").read_text()
     lines = text.splitlines()
     assert lines[0] == "LSTOP = .TRUE."
-    assert lines[1].startswith("#") and "snapped(cF)" in lines[1]
+    assert lines[1].startswith("#") and "lattice-gained(cF)" in lines[1]
     # an existing stop file is never overwritten
     (tmp_path / "STOPCAR").write_text("LABORT = .TRUE.\n")
     again = request_stop(tmp_path, "vasp", reason="second")
@@ -272,7 +286,7 @@ def test_follow_finished_output_and_check_run(tmp_path):
     shutil.copytree(src, tmp_path / "run")
     buf = io.StringIO()
     rec = follow(tmp_path / "run" / "pw.out", stream=buf, poll=0.05, idle=5,
-                 output=tmp_path / "rec.json", stop_on=["snapped"])
+                 output=tmp_path / "rec.json", stop_on=["lattice-gained"])
     assert rec["live"]["ended"] == "end marker: JOB DONE."
     assert rec["live"]["stop"] is None                     # never a stop file for a finished job
     assert not list((tmp_path / "run").rglob("*.EXIT"))
@@ -281,9 +295,9 @@ def test_follow_finished_output_and_check_run(tmp_path):
     assert same(records.read_json(tmp_path / "rec.json"), ref)
     lines = buf.getvalue().splitlines()
     assert sum(line.startswith("step") for line in lines) == ref["run"]["n_frames"]
-    ok, rec2 = check_run(tmp_path / "run", fail_on=("snapped",))
-    assert ok is (not any(f["code"] == "snapped" for f in ref["flags"]))
-    assert check_run(tmp_path / "run", fail_on=())[0] is True
+    ok, rec2 = check_run(tmp_path / "run", reject_on=("lattice-gained",))
+    assert ok is (not any(f["code"] == "lattice-gained" for f in ref["flags"]))
+    assert check_run(tmp_path / "run", reject_on=())[0] is True
 
 
 def test_follow_gives_up_without_steps_and_refuses_stop_for_traj(tmp_path):
@@ -292,7 +306,7 @@ def test_follow_gives_up_without_steps_and_refuses_stop_for_traj(tmp_path):
     from ase.io import write
     write(tmp_path / "x.traj", invented_layer())
     with pytest.raises(InputError, match="cannot soft-stop"):
-        follow(tmp_path / "x.traj", idle=0.2, poll=0.1, quiet=True, stop_on=["snapped"])
+        follow(tmp_path / "x.traj", idle=0.2, poll=0.1, quiet=True, stop_on=["lattice-gained"])
 
 
 def test_tracker_partial_and_rewritten_frames():
@@ -303,8 +317,10 @@ def test_tracker_partial_and_rewritten_frames():
     for n in range(1, len(frames) + 1):
         assert t.replace(frames[:n]) == n - 1
         t.record(newest=False)
-    full = t.record(newest=True)
-    assert full["timing"]["spglib_frames_computed"] <= 1     # earlier spectra were reused
+    live = t.record(newest=True)                              # judged as a run still going ...
+    full = t.record(newest=True, complete=True)               # ... and as a finished one
+    assert content(live) == content(analyze(p, complete=False)) | {"run": content(live)["run"]}
+    assert full["timing"]["spglib_frames_computed"] == 0     # earlier spectra were reused     # earlier spectra were reused
     assert content(full) == content(analyze(p)) | {"run": content(full)["run"]}
     assert t.replace(frames[:3]) == 3 and len(t) == 3         # a restarted output drops the rest
 
@@ -414,8 +430,8 @@ def test_soft_stop_makes_real_pwx_stop_early_and_cleanly(tmp_path, unstopped):
     p = start_pwx(folder)
     buf = io.StringIO()
     try:
-        # 'approaching' fires after a few steps, when the deformation to cF has halved
-        rec = follow(folder / "pw.out", stream=buf, poll=0.1, idle=60, stop_on=["approaching"])
+        # 'lattice-nearing' is raised after a few steps, when the deformation to cF has halved
+        rec = follow(folder / "pw.out", stream=buf, poll=0.1, idle=60, stop_on=["lattice-nearing"])
         rc = p.wait(timeout=120)
     finally:
         if p.poll() is None:
@@ -424,7 +440,7 @@ def test_soft_stop_makes_real_pwx_stop_early_and_cleanly(tmp_path, unstopped):
     assert stop["action"] == "wrote" and stop["code"] == "espresso"
     # the .EXIT file goes in the run's outdir, named after its prefix (from pw.in)
     assert Path(stop["path"]) == (folder / "scratch" / "al7.EXIT").resolve()
-    assert "approaching" in stop["text"]
+    assert "lattice-nearing" in stop["text"]
     text = (folder / "pw.out").read_text()
     # pw.x 6.7 behaviour (measured): it stops by itself, says why, finishes cleanly, exits 2,
     # and deletes the .EXIT file it acted on
@@ -451,7 +467,7 @@ def test_follow_dry_run_on_real_pwx_writes_nothing(tmp_path, unstopped):
     cut = text.index("JOB DONE")                            # as if still running
     (folder / "pw.out").write_text(text[:cut].rsplit("\n", 1)[0] + "\n")
     buf = io.StringIO()
-    rec = follow(folder / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["approaching"],
+    rec = follow(folder / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-nearing"],
                  dry_run=True)
     assert rec["live"]["stop"]["action"] == "dry-run"
     assert rec["live"]["ended"].startswith("idle")

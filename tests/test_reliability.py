@@ -480,12 +480,14 @@ def test_non_utf8_file_name_inspect(tmp_path):
 
 # ----------------------------------------------------------------------------- YAML configs
 BAD_CONFIGS = {
-    "wrong_key.yaml": ("rules:\n  snaped:\n    within: 1e-3 Å\n", r"unknown key 'rules\.snaped'"),
+    "wrong_key.yaml": ("rules:\n  latice:\n    within: 1e-3 Å\n", r"unknown key 'rules\.latice'"),
     "wrong_top_key.yaml": ("symetry:\n  grid_points: 5\n", r"unknown key 'symetry'"),
     "wrong_type.yaml": ("symmetry:\n  grid_points: many\n", r"symmetry\.grid_points"),
     "bool_as_text.yaml": ("symmetry:\n  bisect: 'yes please'\n", r"symmetry\.bisect"),
-    "missing_unit.yaml": ("rules:\n  snapped:\n    within: 0.001\n",
-                          r"rules\.snapped\.within: missing unit"),
+    "missing_unit.yaml": ("rules:\n  lattice:\n    within: 0.001\n",
+                          r"rules\.lattice\.within: missing unit"),
+    "old_key.yaml": ("rules:\n  snapped:\n    within: 1e-3 Å\n",
+                     r"'rules\.snapped' was renamed: use 'rules\.lattice'"),
     "wrong_unit.yaml": ("geometry:\n  vacuum_gap: 6 furlongs\n", r"geometry\.vacuum_gap.*unit"),
     "angle_as_length.yaml": ("symmetry:\n  angle_tolerance: 5 Å\n", r"symmetry\.angle_tolerance"),
     "not_a_mapping.yaml": ("- just\n- a list\n", r"mapping"),
@@ -514,7 +516,7 @@ def test_bad_yaml_configs_give_one_line_naming_the_key(name, tmp_path, capsys):
 
 def test_config_value_errors_name_the_file(tmp_path):
     p = tmp_path / "site.yaml"
-    p.write_text("rules:\n  snapped:\n    within: 0.001\n", encoding="utf-8")
+    p.write_text("rules:\n  lattice:\n    within: 0.001\n", encoding="utf-8")
     with pytest.raises(ConfigError, match=re.escape(str(p))):
         dwconfig.load(p)
 

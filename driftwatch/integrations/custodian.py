@@ -4,10 +4,10 @@ Spec-file use (custodian's own YAML; names are dotted paths)::
 
     handlers:
       - hdlr: driftwatch.integrations.custodian.SymmetryStopHandler
-        params: {stop_on: [snapped]}
+        params: {stop_on: [lattice-gained]}
     validators:
       - vldr: driftwatch.integrations.custodian.SymmetryValidator
-        params: {fail_on: [snapped, handedness-flip]}
+        params: {reject_on: [lattice-gained, handedness-flip]}
 
 How custodian treats them (read from ``custodian/custodian.py``, checked with real runs in
 ``tests/test_integrations.py``):
@@ -15,7 +15,8 @@ How custodian treats them (read from ``custodian/custodian.py``, checked with re
 * ``SymmetryValidator.check(directory)`` runs after a job that ended with no handler errors; True
   means failure, and custodian then raises ``ValidationError`` out of ``Custodian.run()``.
 * ``SymmetryStopHandler`` is a monitor (``is_monitor=True``) that never lets custodian kill the job
-  (``is_terminating=False``). When a ``stop_on`` flag fires, ``correct`` writes the code's stop file
+  (``is_terminating=False``). When a ``stop_on`` flag is raised (a change that held for
+  ``rules.persistence.steps`` steps), ``correct`` writes the code's stop file
   (VASP ``STOPCAR`` / pw.x ``<prefix>.EXIT``) and the code stops itself cleanly. ``correct`` returns
   ``"actions": None``: a correction *with* actions makes custodian rerun the job, which a collapsed
   structure does not need. The handler reports once more when the stopped job has written its end
@@ -42,10 +43,11 @@ logger = logging.getLogger(__name__)
 
 
 class SymmetryValidator(Validator):
-    """Fails (``check`` returns True) a finished job whose run fired a ``fail_on`` flag.
+    """Fails (``check`` returns True) a finished job whose run raised a ``reject_on`` flag.
 
     Args:
-        fail_on: flag codes or levels (``info``, ``warning``) that fail the job.
+        reject_on: flag codes (or what they concern: lattice, structure, tolerance, code, any)
+            that fail the job.
         config: driftwatch preset name, YAML path or mapping (None: the default config).
         output: also write the run record here (relative paths are inside the job directory).
         fail_unreadable: a run folder with no readable relaxation also fails (the check could not
@@ -54,8 +56,9 @@ class SymmetryValidator(Validator):
     After ``check``, ``.record`` holds the record and ``.reason`` says why it failed.
     """
 
-    def __init__(self, fail_on=("snapped",), config=None, output=None, fail_unreadable=True):
-        self.fail_on = _codes(fail_on, "fail_on")
+    def __init__(self, reject_on=("lattice-gained",), config=None, output=None,
+                 fail_unreadable=True):
+        self.reject_on = _codes(reject_on, "reject_on")
         self.config = config
         self.output = output
         self.fail_unreadable = fail_unreadable
@@ -64,7 +67,7 @@ class SymmetryValidator(Validator):
 
     def check(self, directory="./") -> bool:
         try:
-            passed, rec = check_run(directory, config=self.config, fail_on=self.fail_on)
+            passed, rec = check_run(directory, config=self.config, reject_on=self.reject_on)
         except InputError as exc:
             self.reason = f"driftwatch could not check the run: {exc}"
             logger.error(self.reason)
@@ -76,17 +79,17 @@ class SymmetryValidator(Validator):
         if passed:
             self.reason = None
             return False
-        hits = rules.gate(rec["flags"], self.fail_on)
+        hits = rules.select(rec["flags"], self.reject_on)
         self.reason = "; ".join(f"{f['code']} (step {f['step']}): {f['message']}" for f in hits)
         logger.error(f"driftwatch: {self.reason}")
         return True
 
 
 class SymmetryStopHandler(ErrorHandler):
-    """Monitor: follows the job's output and requests the code's soft stop when a flag fires.
+    """Monitor: follows the job's output and requests the code's soft stop when a flag is raised.
 
     Args:
-        stop_on: flag codes or levels that request the stop.
+        stop_on: flag codes (or what they concern) that request the stop.
         config: driftwatch preset name, YAML path or mapping.
         dry_run: only log what would be written; never enters custodian's error handling.
         fail_job: make custodian raise ``NonRecoverableError`` after the stopped job ended
@@ -100,7 +103,7 @@ class SymmetryStopHandler(ErrorHandler):
     is_terminating = False
     raises_runtime_error = False
 
-    def __init__(self, stop_on=("snapped",), config=None, dry_run=False, fail_job=False,
+    def __init__(self, stop_on=("lattice-gained",), config=None, dry_run=False, fail_job=False,
                  prefix=None, outdir=None):
         self.stop_on = _codes(stop_on)
         self.config = config
@@ -110,7 +113,7 @@ class SymmetryStopHandler(ErrorHandler):
         self.prefix = prefix
         self.outdir = outdir
         self._tracker = None
-        self._flag = None          # the flag that fired (pending correct)
+        self._flag = None          # the flag raised (pending correct)
         self._stop = None          # the stop request made for this output
         self._reported_end = False
         self.dry_runs: list[dict] = []
@@ -143,7 +146,7 @@ class SymmetryStopHandler(ErrorHandler):
             return False
         if rec is None or code_of_format(self._tracker.format) is None:
             return False
-        hits = rules.gate(rec["flags"], self.stop_on)
+        hits = rules.select(rec["flags"], self.stop_on)
         if not hits:
             return False
         if self.dry_run:
@@ -156,7 +159,7 @@ class SymmetryStopHandler(ErrorHandler):
         return True
 
     def _request(self, directory, flag, dry_run):
-        reason = (f"flag {flag['code']}{'(' + flag['type'] + ')' if flag['type'] else ''} fired "
+        reason = (f"flag {flag['code']}{'(' + flag['type'] + ')' if flag['type'] else ''} raised "
                   f"at ionic step {flag['step']} of {Path(self._tracker.source).name}: "
                   f"{flag['message']}")
         return request_stop(directory, code_of_format(self._tracker.format), reason=reason,

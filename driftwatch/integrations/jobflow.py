@@ -5,15 +5,16 @@
     from jobflow import Flow, run_locally
     from driftwatch.integrations.jobflow import SymmetryCheckMaker
 
-    check = SymmetryCheckMaker(fail_on=["snapped"]).make(relax.output)   # a run folder, a task
-    flow = Flow([relax, check, downstream])                             # document, or structures
+    check = SymmetryCheckMaker(reject_on=["lattice-gained"]).make(relax.output)  # a run folder,
+    flow = Flow([relax, check, downstream])                   # a task document, or structures
     run_locally(flow)
 
-The check's output is ``{"passed", "verdict", "flags", "failed_on", "summary", "source", "error",
-"record"}``; when it did not pass (and ``stop_children_on_fail``), it returns
+The check's output is ``{"passed", "verdict", "flags", "rejected_by", "summary", "source", "error",
+"record"}`` (``verdict``: gained, lost, changed or kept); when it did not pass (and ``stop_children_on_fail``), it returns
 ``Response(stop_children=True)`` so the jobs that depend on it do not run. To report on relaxations
 that failed, set ``check.config.on_missing_references = OnMissing.NONE``: the check then receives
-None and fails with ``error`` saying so. A pass only means none of the chosen diagnostics fired.
+None and fails with ``error`` saying so. A pass only means none of the chosen diagnostics was
+raised.
 """
 
 from __future__ import annotations
@@ -71,11 +72,11 @@ def _path_of(run):
     return text, None
 
 
-def _check(run, fail_on, config, include_record):
+def _check(run, reject_on, config, include_record):
     from ..track import analyze
-    codes = _codes(fail_on, "fail_on")
-    out = {"passed": False, "verdict": None, "flags": [], "failed_on": [], "summary": None,
-           "source": None, "error": None, "fail_on": codes}
+    codes = _codes(reject_on, "reject_on")
+    out = {"passed": False, "verdict": None, "flags": [], "rejected_by": [], "summary": None,
+           "source": None, "error": None, "reject_on": codes}
     if run is None:
         out["error"] = "no relaxation output (the relaxation failed or returned nothing)"
         return out
@@ -86,11 +87,11 @@ def _check(run, fail_on, config, include_record):
     except (DriftwatchError, OSError, ValueError) as exc:
         out["error"] = f"{type(exc).__name__}: {exc}"
         return out
-    hits = rules.gate(rec["flags"], codes)
+    hits = rules.select(rec["flags"], codes)
     rec = json.loads(records.dumps(rec))               # plain JSON for the job store
-    out.update(passed=not hits, verdict=rec["summary"]["verdict"],
+    out.update(passed=not hits, verdict=rec["summary"]["verdict"]["direction"],
                flags=sorted({f["code"] for f in rec["flags"]}),
-               failed_on=[f"{f['code']} (step {f['step']}): {f['message']}" for f in hits],
+               rejected_by=[f"{f['code']} (step {f['step']}): {f['message']}" for f in hits],
                summary=rec["summary"], source=rec["run"]["source"])
     if include_record:
         out["record"] = rec
@@ -103,7 +104,7 @@ class SymmetryCheckMaker(Maker):
 
     Args:
         name: job name.
-        fail_on: flag codes or levels that fail the check.
+        reject_on: flag codes (or what they concern) that fail the check.
         config: driftwatch preset name, YAML path or mapping (None: the default).
         stop_children_on_fail: stop the jobs that depend on this one when the check fails.
         include_record: put the whole run record in the output (it grows with the run length).
@@ -114,19 +115,19 @@ class SymmetryCheckMaker(Maker):
     """
 
     name: str = "symmetry check"
-    fail_on: list = field(default_factory=lambda: ["snapped"])
+    reject_on: list = field(default_factory=lambda: ["lattice-gained"])
     config: str | dict | None = None
     stop_children_on_fail: bool = True
     include_record: bool = True
 
     @job
     def make(self, run):
-        out = _check(run, self.fail_on, self.config, self.include_record)
+        out = _check(run, self.reject_on, self.config, self.include_record)
         return Response(output=out, stop_children=self.stop_children_on_fail and not out["passed"])
 
 
 @job
-def check_relaxation(run, fail_on=("snapped",), config=None, stop_children_on_fail=True):
+def check_relaxation(run, reject_on=("lattice-gained",), config=None, stop_children_on_fail=True):
     """Function form of :class:`SymmetryCheckMaker` (same input and output)."""
-    out = _check(run, list(fail_on), config, True)
+    out = _check(run, list(reject_on), config, True)
     return Response(output=out, stop_children=stop_children_on_fail and not out["passed"])

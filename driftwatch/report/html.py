@@ -26,23 +26,29 @@ from . import plots
 __all__ = ["build", "FLAG_TEXT"]
 
 FLAG_TEXT = {
-    "snapped": "the lattice ended on a Bravais type it started clearly away from (deformation below "
-               "the 'within' threshold at the end, above 'start away' at the start)",
-    "approaching": "the lattice moved a large part of the way toward a type without reaching it",
+    "lattice-gained": "the lattice ended on a Bravais type it started clearly away from (deformation "
+                      "within 'within' at the end, at least 'start away' at the start)",
+    "lattice-lost": "the lattice held a Bravais type at the start and ended clearly away from it",
+    "lattice-changed": "the lattice left one type and reached another (a sideways change)",
+    "lattice-nearing": "the lattice moved a large part of the way toward a type without reaching it",
+    "passed-through": "the lattice held a type for part of the run and then left it again",
     "handedness-flip": "the layer's 2D lattice changed handedness, so it passed through a lattice with "
                        "a mirror line on the way",
-    "tolerance-sensitive": "spglib's verdict on the final structure depends on which symprec in the "
-                           "tested band you choose",
-    "spglib-overcall": "spglib assigns a lattice type that, by the continuous deformation, the lattice "
-                       "is still far from",
+    "group-gained": "spglib's group of the final structure contains the starting one: the structure "
+                    "gained symmetry operations",
+    "group-lost": "spglib's group of the final structure is a subgroup of the starting one: the "
+                  "structure lost symmetry operations",
+    "group-changed": "spglib's groups at the start and the end do not contain one another",
     "atoms-break-lattice": "the lattice is metrically close to a type, but the atoms are not: the "
                            "structure's group has a lower lattice type",
-    "atoms-settled": "the atoms moved onto more symmetric sites: the structure's group gained "
-                     "operations during the run",
-    "code-imposed": "the DFT code's own symmetry handling was on and may have held (not found) the "
-                    "final symmetry",
+    "symprec-dependent": "spglib's verdict on the final structure depends on which symprec in the "
+                         "tested band you choose",
+    "loose-symprec": "spglib at a loose symprec assigns a lattice type that, by the continuous "
+                     "deformation, the lattice is still far from",
+    "held-by-code": "the DFT code's own symmetry handling was on and the run kept a symmetric group: "
+                    "the code could not have lowered it, so 'kept' is not a test of it",
 }
-"""Plain-language meaning of each flag code (codes and levels are defined in :mod:`driftwatch.rules`)."""
+"""Plain-language meaning of each flag code (codes are defined in :mod:`driftwatch.rules`)."""
 
 DISCLAIMER = ("A flag is a diagnostic that asks you to look at a run; it is not a proof of stability, "
               "of instability or of a phase. Distances, deformations and spglib verdicts depend on "
@@ -149,11 +155,12 @@ table.sortable th[aria-sort=descending]::after { content: " \\2193"; color: var(
          white-space: nowrap; }
 .warning { background: var(--warnbg); color: var(--warn); }
 .info { background: var(--infobg); color: var(--info); }
-.v-snapped { background: #fde4d6; color: #9a3600; }
-.v-handedness-flip { background: #f7e1ef; color: #8a2d6a; }
-.v-approaching { background: #fff0cc; color: #7a5200; }
-.v-fixed-cell { background: #e0f0fb; color: #1d5f8a; }
-.v-steady { background: #dff3e8; color: var(--ok); }
+.v-gained { background: #fde4d6; color: #9a3600; }
+.v-lost { background: #f7e1ef; color: #8a2d6a; }
+.v-changed { background: #fff0cc; color: #7a5200; }
+.v-kept { background: #dff3e8; color: var(--ok); }
+.c-lattice, .c-structure { background: var(--warnbg); color: var(--warn); }
+.c-tolerance, .c-code { background: var(--infobg); color: var(--info); }
 .v-unreadable, .v-failed { background: #eee; color: #555; }
 figure { margin: 14px 0 22px; }
 figure svg { width: 100%; max-width: 980px; height: auto; display: block; }
@@ -380,28 +387,33 @@ def _common(rec):
 
 def _summary_section(rec):
     run, geo, s = rec["run"], rec["geometry"], rec["summary"]
-    ini, fin = s.get("initial") or {}, s.get("final") or {}
+    fin = s.get("final") or {}
     dim = geo.get("dimension")
     drift = s.get("drift")
-    verdict = s.get("verdict")
+    v = _records.verdict_fields(rec)
+    verdict = v["verdict"]
+    lat = s["verdict"]["lattice"]
     rows = [
-        ("verdict", _badge(verdict, f"v-{verdict}")),
+        ("verdict", _badge(verdict, f"v-{verdict}") + f" <span class=\"muted\">"
+                    f"{e(s['verdict']['text'])}</span>"),
         ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
                       f"{e(run.get('n_frames'))} ionic steps"),
         ("kind", ("layer (2D lattice in the plane; vacuum along axis "
                   f"{e(geo.get('vacuum_axis'))})" if dim == 2 else "bulk (3D lattice)")
          + f"<br><span class=\"muted\">{e(geo.get('reason'))}</span>"),
-        ("type at the start", _type_name(ini.get("type"))),
-        ("type at the end", _type_name(fin.get("type"))),
-        ("nearest other type at the end", _type_name(fin.get("nearest"))),
-        ("its distance / deformation", f"{_q(fin.get('distance'))} root space / "
-                                       f"{_q(fin.get('deformation'))} deformation"),
+        ("lattice", f"{_type_name(lat.get('initial'))} → {_type_name(lat.get('final'))} "
+                    f"({e(lat.get('direction'))})"),
+        ("spglib's group at the start / end",
+         f"{e(v['group_initial'])} → {e(v['group_final'])} at symprec {_q(v['group_symprec'])} "
+         f"({e(v['group_verdict'])})"),
     ]
-    if drift and not run.get("fixed_cell"):
-        frac = _fnum(drift.get("fraction"))
-        rows.append(("drift", f"toward {_type_name(drift.get('type'))}: deformation "
-                              f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"
-                              + ("" if frac is None else f" ({100 * frac:.0f} % of the way)")))
+    if drift:
+        rows.append(("drift", f"deformation to {_type_name(drift.get('type'))}: "
+                              f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"))
+    if fin.get("nearest"):
+        rows.append(("nearest type not held at the end",
+                     f"{_type_name(fin.get('nearest'))}: deformation {_q(fin.get('deformation'))}, "
+                     f"root-space distance {_q(fin.get('distance'))}"))
     frames = rec.get("frames") or []
     e0 = _fnum(frames[0].get("energy")) if frames else None
     e1 = _fnum(frames[-1].get("energy")) if frames else None
@@ -432,16 +444,17 @@ def _summary_section(rec):
 def _flags_section(rec):
     flags = rec.get("flags") or []
     if not flags:
-        return ("<h2>Flags</h2><p>No flag fired for this run at the configured thresholds. That is not "
+        return ("<h2>Flags</h2><p>No flag was raised for this run at the configured thresholds. That is not "
                 "a proof that nothing changed; see the plots below.</p>")
     rows = "".join(
-        f"<tr><td>{_badge(f.get('level'), f.get('level'))}</td><td><b>{e(f.get('code'))}</b></td>"
+        f"<tr><td>{_badge(f.get('concerns'), 'c-' + str(f.get('concerns')))}</td>"
+        f"<td><b>{e(f.get('code'))}</b></td>"
         f"<td class=\"num\">{e(f.get('step'))}</td><td>{e(f.get('type') or '')}</td>"
         f"<td>{e(f.get('message'))}<br><span class=\"muted\">{e(FLAG_TEXT.get(f.get('code'), ''))}"
         f"</span></td></tr>" for f in flags)
     return ("<h2>Flags</h2><p class=\"muted\">Each flag is a diagnostic to be checked, not a proof of "
             "stability or of a phase. 'step' is the first ionic step from which it holds.</p>"
-            "<table><thead><tr><th>level</th><th>code</th><th>step</th><th>type</th><th>what was seen"
+            "<table><thead><tr><th>concerns</th><th>code</th><th>step</th><th>type</th><th>what was seen"
             f"</th></tr></thead><tbody>{rows}</tbody></table>")
 
 
@@ -450,17 +463,23 @@ def _tolerance_section(rec):
     spec = _camp.final_spectrum(rec)
     out = ["<h2>Tolerance advice</h2>"]
     recv = tol.get("recommended_symprec")
-    out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> recommended for this run'
-               f".<br><span class=\"muted\">Reason: {e(tol.get('reason'))}."
+    if recv:
+        out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> suggested for this run.')
+    else:
+        out.append("<p><span class=\"big\">no single symprec suggested</span>.")
+    out.append(f"<br><span class=\"muted\">{e(tol.get('reason'))}."
                " A starting point for your own check, not a guarantee.</span></p>")
-    ranges = tol.get("stable_ranges") or []
+    ranges = tol.get("ranges") or tol.get("stable_ranges") or []
+    floor = _fnum(tol.get("resolution"))
     if ranges:
         rows = "".join(
             f"<tr>{_td_num(r[0], 'Å')}{_td_num(r[1], 'Å')}<td>{e(r[3])} ({e(r[2])})</td>"
-            f"<td class=\"num\">{_ratio(r[0], r[1])}</td></tr>" for r in ranges if len(r) >= 4)
+            f"<td class=\"num\">{_ratio(r[0], r[1])}</td>"
+            f"<td>{'below the file' + chr(39) + 's printed precision' if floor and r[0] < floor else ''}"
+            f"</td></tr>" for r in ranges if len(r) >= 4)
         out.append("<h3>Ranges of symprec with one verdict (final structure)</h3><table><thead><tr>"
-                   "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th></tr></thead>"
-                   f"<tbody>{rows}</tbody></table>")
+                   "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th><th></th>"
+                   f"</tr></thead><tbody>{rows}</tbody></table>")
     if spec:
         common = _common(rec)
         cells = "".join(f"<th>{c:g} Å</th>" for c in common)
@@ -516,8 +535,8 @@ def _warnings_section(rec):
 def _plots_section(rec):
     frames = rec["frames"]
     dim = rec["geometry"].get("dimension")
-    thr = [(_cfg(rec, "rules", "snapped", "within"), "snapped within"),
-           (_cfg(rec, "rules", "snapped", "start_away"), "start away")]
+    thr = [(_cfg(rec, "rules", "lattice", "within"), "held within"),
+           (_cfg(rec, "rules", "lattice", "start_away"), "start away")]
     lattice, atoms = [], []
     out = lattice
     if dim == 2:
@@ -616,14 +635,12 @@ def _index_page(runs, bad, failed, campaign) -> str:
     if not isinstance(adv, dict):
         adv = _audit_advice(recs, common)
     counts = _camp.flag_counts([r for _, r in recs])
-    levels = {}
-    for _, r in recs:
-        for f in r.get("flags") or []:
-            levels[f["code"]] = f.get("level")
+    from ..rules import FLAGS
+    levels = {code: FLAGS.get(code, "") for code in counts}
     n_flagged = sum(1 for _, r in recs if r.get("flags"))
     verdicts = {}
     for _, r in recs:
-        v = r["summary"].get("verdict")
+        v = r["summary"]["verdict"]["direction"]
         verdicts[v] = verdicts.get(v, 0) + 1
     header = ("<h1>driftwatch campaign report</h1><div class=\"sub\">"
               f"{len(recs)} runs · {n_flagged} with flags · {len(bad)} unreadable inputs · "
@@ -648,7 +665,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
             f0, f1 = r["frames"][0], r["frames"][-1]
             pts.append((_fnum(d.get("initial")), _fnum(d.get("final")),
                         _fnum((f0.get("distance") or {}).get(t)), _fnum((f1.get("distance") or {}).get(t)),
-                        r["summary"].get("verdict"), r["geometry"].get("dimension")))
+                        r["summary"]["verdict"]["direction"], r["geometry"].get("dimension")))
     gb, lb = [], []
     for _, r in recs:
         spec = _camp.final_spectrum(r)
@@ -719,28 +736,30 @@ def _campaign_tolerance(tol, adv):
 def _flag_table(counts, levels, campaign):
     ext = (campaign or {}).get("flag_counts") if isinstance(campaign, dict) else None
     if not counts and not ext:
-        return "<h2>Flags</h2><p>No flag fired in any run at the configured thresholds.</p>"
+        return "<h2>Flags</h2><p>No flag was raised in any run at the configured thresholds.</p>"
     codes = list(counts) + [c for c in (ext or {}) if c not in counts]
     rows = "".join(
-        f"<tr><td>{_badge(levels.get(c, ''), levels.get(c, ''))}</td><td><b>{e(c)}</b></td>"
+        f"<tr><td>{_badge(levels.get(c, ''), 'c-' + levels.get(c, ''))}</td><td><b>{e(c)}</b></td>"
         f"<td class=\"num\">{counts.get(c, 0)}</td>"
         + (f"<td class=\"num\">{e(_val(ext.get(c, 0)))}</td>" if ext else "")
         + f"<td>{e(FLAG_TEXT.get(c, ''))}</td></tr>" for c in codes)
-    return ("<h2>Flags</h2><table><thead><tr><th>level</th><th>code</th><th>runs (this report)</th>"
+    return ("<h2>Flags</h2><table><thead><tr><th>concerns</th><th>code</th><th>runs (this report)</th>"
             + ("<th>runs (audit summary)</th>" if ext else "")
             + f"<th>meaning</th></tr></thead><tbody>{rows}</tbody></table>")
 
 
 def _runs_table(runs):
-    from ..rules import FLAGS as levels
+    from .. import records
+    from ..rules import FLAGS as concerns
     rows = []
     for name, label, rec, origin in runs:
-        s, r, g = rec["summary"], rec["run"], rec["geometry"]
-        fin, ini = s.get("final") or {}, s.get("initial") or {}
-        tol = s.get("tolerance") or {}
+        r, g = rec["run"], rec["geometry"]
+        v = records.verdict_fields(rec)
         codes = sorted({f["code"] for f in rec.get("flags") or []})
-        verdict = s.get("verdict")
+        verdict = v["verdict"]
         kind = "layer" if g.get("dimension") == 2 else "bulk"
+        grp = (v["group_initial"] if v["group_initial"] == v["group_final"]
+               else f"{v['group_initial']} → {v['group_final']}")
         rows.append(
             f'<tr><td><a href="runs/{quote(name)}.html">{e(label)}</a>'
             f'<br><span class="muted">{e(r.get("title") or "")}</span>'
@@ -749,22 +768,24 @@ def _runs_table(runs):
             + "</td>"
             f"<td>{e(r.get('formula'))}<br><span class=\"muted\">{kind}</span></td>"
             f"{_td_num(r.get('n_frames'))}"
-            f"<td class=\"nowrap\" data-v=\"{e(ini.get('type'))} {e(fin.get('type'))}\">"
-            f"{e(ini.get('type'))} → "
-            f"<b>{e(fin.get('type'))}</b></td>"
-            f"<td>{e(fin.get('nearest') or '')}</td>{_td_num(fin.get('deformation'), 'Å')}"
-            f"{_td_num(fin.get('distance'), 'Å')}"
             f'<td data-v="{e(verdict)}">{_badge(verdict, f"v-{verdict}")}</td>'
+            f"<td class=\"nowrap\" data-v=\"{e(v['lattice_initial'])} {e(v['lattice_final'])}\">"
+            f"{e(v['lattice_initial'])} → <b>{e(v['lattice_final'])}</b></td>"
+            f"<td>{e(v['drift_type'] or '')}</td>{_td_num(v['drift_initial'], 'Å')}"
+            f"{_td_num(v['drift_final'], 'Å')}"
+            f"<td>{e(grp)}</td>"
             f"<td data-v=\"{len(codes):03d} {e(' '.join(codes))}\">"
-            f"{' '.join(_badge(c, levels.get(c, '')) for c in codes) or '—'}</td>"
-            f"{_td_num(tol.get('recommended_symprec'), 'Å')}<td>{e(tol.get('group_at_1e-3') or '')}</td>"
+            f"{' '.join(_badge(c, 'c-' + concerns.get(c, '')) for c in codes) or '—'}</td>"
+            f"{_td_num(v['recommended_symprec'], 'Å')}"
             "</tr>")
-    head = ("<tr><th>run</th><th>formula</th><th>steps</th><th>start → end type</th>"
-            "<th>nearest</th><th>deformation</th><th>distance</th><th>verdict</th>"
-            "<th>flags</th><th>advised symprec</th><th>group at 1e-3 Å</th></tr>")
-    return ("<h2>Runs</h2><p class=\"muted\">Click a column head to sort. 'nearest' is the nearest type "
-            "the final lattice is not at; deformation (Å, comparable with symprec) and root-space "
-            "distance (Å) are to that type.</p>"
+    head = ("<tr><th>run</th><th>formula</th><th>steps</th><th>verdict</th><th>lattice</th>"
+            "<th>drift type</th><th>drift from</th><th>drift to</th><th>group</th>"
+            "<th>flags</th><th>suggested symprec</th></tr>")
+    return ("<h2>Runs</h2><p class=\"muted\">Click a column head to sort. 'verdict' is which way the "
+            "run's symmetry went (gained, lost, changed, kept) at the lattice and spglib-group levels; "
+            "the drift columns are the deformation (Å, comparable with symprec) to the type the verdict "
+            "is about, at the first and last step; 'group' is spglib's group at the verdict's symprec."
+            "</p>"
             '<p><label>Filter: <input id="filter" type="search" placeholder="name, formula, flag …">'
             "</label></p>"
             f'<div class="wide"><table id="runs" class="sortable"><thead>{head}</thead><tbody>'

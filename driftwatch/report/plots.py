@@ -37,8 +37,8 @@ same bytes)."""
 PALETTE = ["#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#b8860b", "#000000",
            "#999999", "#8c564b", "#17becf", "#bcbd22", "#6a3d9a", "#1f77b4", "#ff7f0e"]
 TYPE_COLOURS = dict(zip(["op", "oc", "tp", "hp", "mirror"], PALETTE))
-VERDICT_COLOURS = {"snapped": "#D55E00", "handedness-flip": "#CC79A7", "approaching": "#E69F00",
-                   "fixed-cell": "#56B4E9", "steady": "#009E73"}
+VERDICT_COLOURS = {"gained": "#D55E00", "lost": "#CC79A7", "changed": "#E69F00",
+                   "kept": "#009E73"}
 _counter = itertools.count(1)
 
 
@@ -523,7 +523,8 @@ def breakpoint_histogram(group_bps, lattice_bps, common, span) -> str:
 
 
 def flag_bars(counts: dict, levels: dict) -> str:
-    """Number of runs carrying each flag code (horizontal bars, warnings in orange, info in blue)."""
+    """Number of runs carrying each flag code (horizontal bars; orange: lattice or structure, blue:
+    tolerance or code). ``levels`` maps a code to what it concerns."""
     codes = list(counts)
     with _ctx():
         h = 0.45 * max(len(codes), 2) + 0.9
@@ -531,12 +532,13 @@ def flag_bars(counts: dict, levels: dict) -> str:
         ax = fig.add_subplot()
         y = np.arange(len(codes))
         ax.barh(y, [counts[c] for c in codes],
-                color=["#E69F00" if levels.get(c) == "warning" else "#56B4E9" for c in codes])
+                color=["#E69F00" if levels.get(c) in ("lattice", "structure") else "#56B4E9"
+                       for c in codes])
         ax.set_yticks(y, [text_safe(c) for c in codes])
         ax.invert_yaxis()
         ax.set_xlabel("runs with the flag")
         ax.xaxis.get_major_locator().set_params(integer=True)
-        ax.set_title("runs per flag (orange: warning, blue: info)", loc="left")
+        ax.set_title("runs per flag (orange: lattice or group, blue: tolerance or code)", loc="left")
         for yy, c in zip(y, codes):
             ax.annotate(str(counts[c]), (counts[c], yy), xytext=(3, 0), textcoords="offset points",
                         va="center", fontsize=8)

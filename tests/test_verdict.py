@@ -1,0 +1,353 @@
+"""The verdict model: which way a run's symmetry went (gained, lost, changed, kept), at the lattice and
+at the spglib-group level, on real relaxations made here (pw.x from Debian's quantum-espresso, ASE's
+EMT), with spglib called directly as the outside reference; live persistence; tolerance advice;
+one verdict read by every output.
+"""
+
+import csv
+import json
+import math
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import ase.db
+import numpy as np
+import pytest
+import spglib
+from ase import Atoms
+from ase.io import read
+
+import driftwatch
+from driftwatch import records, rules, symmetry
+from driftwatch.adapters.run import Frame, ReadContext, collect
+
+DEMO = Path(__file__).parent.parent / "example_runs"
+DATA = Path(__file__).parent / "data"
+
+
+def frames_of(run):
+    """The frames of a demo run as ASE reads them (ASE's own readers: the outside reference)."""
+    path = DEMO / run
+    if path.is_dir():
+        return read(path / "pw.out", index=":", format="espresso-out")
+    return read(path, index=":")
+
+
+def sg(atoms, symprec=1e-3, layer=False):
+    """spglib's dataset of a structure (called directly); ``layer``: its layer group (the demo
+    layers have their vacuum along c)."""
+    cell = (atoms.cell.array, atoms.get_scaled_positions(), atoms.numbers)
+    if layer:
+        return spglib.get_symmetry_layerdataset(cell, aperiodic_dir=2, symprec=symprec)
+    return spglib.get_symmetry_dataset(cell, symprec=symprec)
+
+
+def lattice_number(atoms, symprec=1e-3):
+    """spglib's space group of a one-atom cell with this lattice: its holohedry."""
+    return spglib.get_symmetry_dataset((atoms.cell.array, [[0, 0, 0]], [1]), symprec=symprec).number
+
+
+def rotations(ds):
+    return {tuple(r.ravel()) for r in ds.rotations}
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return {run: driftwatch.analyze(DEMO / run) for run in (
+        "L01_qe_vcrelax", "B01_qe_vcrelax", "B02_qe_vcrelax_sym", "B03_qe_vcrelax_nosym",
+        "B04_emt_fire_loose.extxyz", "B05_emt_bfgs.extxyz", "B06_emt_bain.traj",
+        "L07_emt_fire.traj", "L10_emt_mdmin_flip.traj", "L09_emt_fixed_square.traj")}
+
+
+# ----------------------------------------------------------------------------- directions
+@pytest.mark.parametrize("run,direction,lattice,group", [
+    # pw.x vc-relax of an oblique Si layer that ends hexagonal; EMT Pd cell that ends cubic
+    ("L01_qe_vcrelax", "gained", "gained", "gained"),
+    ("B05_emt_bfgs.extxyz", "gained", "gained", "gained"),
+    # pw.x vc-relax of bcc Al with nosym=.true. on an uneven k-mesh: it leaves cubic at once
+    ("B03_qe_vcrelax_nosym", "lost", "lost", "lost"),
+    # EMT Cu, 1x1x2 fcc cell, loosely relaxed: the cell's tetragonal lattice becomes triclinic
+    ("B04_emt_fire_loose.extxyz", "lost", "lost", "kept"),
+    # EMT Cu one-atom cell started 0.02 % off bcc: it slides along the Bain path to fcc
+    ("B06_emt_bain.traj", "changed", "changed", "changed"),
+    # EMT layer that stays oblique; pw.x bcc Al with symmetry on: stays cubic
+    ("L07_emt_fire.traj", "kept", "kept", "kept"),
+    ("B02_qe_vcrelax_sym", "kept", "kept", "kept"),
+])
+def test_each_direction_on_real_relaxations(demo, run, direction, lattice, group):
+    v = demo[run]["summary"]["verdict"]
+    assert (v["direction"], v["lattice"]["direction"], v["structure"]["direction"]) == (
+        direction, lattice, group)
+    atoms = frames_of(run)
+    layer = demo[run]["geometry"]["dimension"] == 2
+    a, b = sg(atoms[0], layer=layer), sg(atoms[-1], layer=layer)
+    st = v["structure"]
+    # the groups named are spglib's own at symprec 1e-3 Å on the first and last frames
+    assert (st["initial"]["group"], st["final"]["group"]) == (a.number, b.number)
+    # and the relation is read off the operations themselves (same cell basis through the run)
+    ra, rb = rotations(a), rotations(b)
+    expected = {"gained": ra < rb or (ra == rb and len(b.rotations) > len(a.rotations)),
+                "lost": rb < ra or (ra == rb and len(b.rotations) < len(a.rotations)),
+                "changed": not (ra <= rb or rb <= ra), "kept": a.number == b.number}
+    assert expected[group]
+
+
+def test_loss_of_cubic_symmetry_with_its_step(demo):
+    """B03 (pw.x, nosym): cI at the start, left from the step the record names; spglib agrees."""
+    rec = demo["B03_qe_vcrelax_nosym"]
+    lat = rec["summary"]["verdict"]["lattice"]
+    assert lat["lost"] == "cI" and lat["initial"] == "cI"
+    atoms = frames_of("B03_qe_vcrelax_nosym")
+    k = lat["from_frame"]
+    # spglib on a one-atom cell of each lattice: Im-3m (229, the bcc holohedry; International Tables)
+    # on every frame before the step, and not cubic (195-230) on every frame from it
+    assert all(lattice_number(x) == 229 for x in atoms[:k])
+    assert all(lattice_number(x) < 195 for x in atoms[k:])
+    flag = next(f for f in rec["flags"] if f["code"] == "lattice-lost")
+    assert flag["type"] == "cI" and flag["step"] == rec["frames"][k]["step"]
+    # B04: the 1x1x2 fcc cell is metrically tetragonal at the start (P4/mmm one-atom cell) and
+    # spglib at 1e-3 Å calls the final lattice triclinic
+    lat4 = demo["B04_emt_fire_loose.extxyz"]["summary"]["verdict"]["lattice"]
+    a4 = frames_of("B04_emt_fire_loose.extxyz")
+    assert lat4["lost"] == "tP" and lattice_number(a4[0]) == 123 and lattice_number(a4[-1]) == 2
+
+
+def test_group_step_located_over_frames_agrees_with_spglib_on_every_frame(demo):
+    """The first step from which the final group holds, found by bisection over the frames between
+    checked ones, equals spglib asked on every frame (B01, pw.x: Fmmm -> Fm-3m)."""
+    rec = demo["B01_qe_vcrelax"]
+    st = rec["summary"]["verdict"]["structure"]
+    numbers = [sg(a).number for a in frames_of("B01_qe_vcrelax")]
+    first = max(i for i, n in enumerate(numbers) if n != numbers[-1]) + 1
+    assert st["from_frame"] == first and st["exact"]
+    assert st["from_step"] == rec["frames"][first]["step"]
+
+
+@pytest.mark.parametrize("strain,expected,number", [
+    # International Tables Vol. A: I4/mmm (139) and R-3m (166) are maximal subgroups of Fm-3m (225)
+    (np.diag([1.0, 1.0, 1.07]), "lost", 139),
+    (np.eye(3) + 0.02 * (np.ones((3, 3)) - np.eye(3)), "lost", 166),
+])
+def test_rock_salt_distortions_are_losses_at_every_symprec(strain, expected, number):
+    """The issue's example: a rock-salt cell whose c/a goes 1.00 -> 1.07 (an invented NaCl-type cell,
+    a = 5.60 Å) is a loss of symmetry, not 'steady', at every common symprec."""
+    a = 5.60
+    rs = Atoms("Na4Cl4", cell=np.eye(3) * a, pbc=True, scaled_positions=[
+        (0, 0, 0), (0, .5, .5), (.5, 0, .5), (.5, .5, 0), (.5, 0, 0), (0, .5, 0), (0, 0, .5),
+        (.5, .5, .5)])
+    end = rs.copy()
+    end.set_cell(rs.cell.array @ strain, scale_atoms=True)
+    assert sg(rs).number == 225 and sg(end).number == number          # spglib, directly
+    frames = [Frame(cell=x.cell.array, positions=x.positions, numbers=x.numbers, pbc=x.pbc, step=i)
+              for i, x in enumerate((rs, end))]
+    rec = driftwatch.analyze(collect(frames, path="rock-salt", fmt="live", ctx=ReadContext("x")))
+    v = rec["summary"]["verdict"]
+    assert v["direction"] == expected and v["lattice"]["direction"] == "lost"
+    assert v["structure"]["relation"] == "subgroup"
+    for s, at in v["structure"]["at"].items():
+        assert at["direction"] == "lost" and at["final"][0] == number, s
+
+
+def test_relation_is_by_operations_not_numbers():
+    """Same group type, twice the operations (a translation gained): a gain, seen by the relation;
+    two groups with equal operation counts that do not contain one another: changed."""
+    cu = Atoms("Cu2", cell=np.eye(3) * [3.6, 3.6, 7.2], pbc=True,
+               scaled_positions=[(0, 0, 0), (0, 0, 0.47)])
+    sym = cu.copy()
+    sym.set_scaled_positions([(0, 0, 0), (0, 0, 0.5)])     # now a pure translation (0, 0, 1/2)
+    g1 = symmetry.group_at(cu.cell.array, cu.positions, cu.numbers, 1e-3)
+    g2 = symmetry.group_at(sym.cell.array, sym.positions, sym.numbers, 1e-3)
+    assert g1["group"] == sg(cu).number and g2["group"] == sg(sym).number
+    assert symmetry.relation(g1, g2) == "supergroup" and symmetry.relation(g2, g1) == "subgroup"
+    assert g2["operations"] == 2 * len(sg(sym, 1e-3).rotations) // 2 == len(sg(sym).rotations)
+
+
+# ----------------------------------------------------------------------------- rhombohedral
+def bismuth_hexagonal_axes():
+    """Bismuth (A7, R-3m) in hexagonal axes: a = 4.546 Å, c = 11.862 Å, Bi at 6c (0, 0, z) with
+    z = 0.2341 (the commonly quoted room-temperature structure; values from memory)."""
+    a, c, z = 4.546, 11.862, 0.2341
+    cell = [[a, 0, 0], [-a / 2, a * math.sqrt(3) / 2, 0], [0, 0, c]]
+    centring = [(0, 0, 0), (2 / 3, 1 / 3, 1 / 3), (1 / 3, 2 / 3, 2 / 3)]
+    pos = [((x + 0) % 1, (y + 0) % 1, (zz + s * z) % 1) for x, y, zz in centring for s in (1, -1)]
+    return Atoms("Bi6", cell=cell, scaled_positions=pos, pbc=True)
+
+
+def test_rhombohedral_crystal_in_hexagonal_axes_is_not_flagged():
+    bi = bismuth_hexagonal_axes()
+    ds = sg(bi)
+    assert ds.number == 166                                    # spglib: R-3m (International Tables)
+    assert lattice_number(bi) == 191                           # the cell's own lattice is hexagonal
+    frames = [Frame(cell=bi.cell.array, positions=bi.positions, numbers=bi.numbers, pbc=bi.pbc,
+                    step=0)]
+    rec = driftwatch.analyze(collect(frames, path="Bi", fmt="live", ctx=ReadContext("Bi")))
+    prim = rec["frames"][-1]["symmetry"]["primitive"]
+    assert prim["type"] == "hR"                  # the translation lattice: rhombohedral (hR)
+    assert not [f for f in rec["flags"] if f["code"] == "atoms-break-lattice"]
+
+
+def test_atoms_that_break_a_square_lattice_are_flagged(demo):
+    """L09: three atoms in a fixed square cell end in a group whose lattice type is rectangular."""
+    rec = demo["L09_emt_fixed_square.traj"]
+    flag = next(f for f in rec["flags"] if f["code"] == "atoms-break-lattice")
+    assert flag["type"] == "tp"
+    last = frames_of("L09_emt_fixed_square.traj")[-1]
+    assert lattice_number(last) == 123                         # P4/mmm: the square lattice
+    assert sg(last).number < 75                                # spglib: not tetragonal (1-74)
+
+
+# ----------------------------------------------------------------------------- live persistence
+def _path_start():
+    sys.path.insert(0, str(Path(__file__).parent.parent / "scripts"))
+    from make_runs import _build_b07
+    return _build_b07()
+
+
+def _watched_fire(config, tmp_path):
+    from ase.calculators.emt import EMT
+    from ase.filters import FrechetCellFilter
+    from ase.optimize import FIRE
+    from driftwatch.live import SymmetryCollapse, SymmetryWatch
+    atoms = _path_start()
+    atoms.calc = EMT()
+    opt = FIRE(FrechetCellFilter(atoms), logfile=None, trajectory=str(tmp_path / "w.traj"))
+    watch = SymmetryWatch(atoms, mode="stop", stop_on=["lattice-gained"], config=config,
+                          optimizer=opt)
+    opt.attach(watch, interval=1, optimizer=opt)
+    with pytest.raises(SymmetryCollapse) as err:
+        opt.run(fmax=1e-4, steps=400)
+    return err.value.flags[0], opt.nsteps, read(tmp_path / "w.traj", ":")
+
+
+def test_live_stop_waits_for_a_state_the_run_keeps(tmp_path):
+    """A real FIRE + EMT relaxation of a sheared Cu cell (example_runs/B07) touches oP, oS and tP for
+    a step or two each and leaves them, then settles through tP to cP. Stop mode with the default persistence (10 steps) stops
+    on a type the rest of the relaxation never leaves; counting a change at once (persistence 1)
+    stops on oS, which the relaxation leaves again a few steps later."""
+    from driftwatch import lattice3d
+    full = read(DEMO / "B07_emt_fire_path.traj", ":")          # the whole relaxation (same start)
+    D = lattice3d.deformation(np.array([a.cell.array for a in full]))
+    within = driftwatch.config.load()["rules"]["lattice"]["within"]
+
+    flag, step, watched = _watched_fire(None, tmp_path)
+    # the watched run is the same relaxation up to the stop (deterministic optimizer and EMT)
+    assert np.allclose([a.cell.array for a in watched], [a.cell.array for a in full[:len(watched)]],
+                       atol=1e-9)
+    t = flag["type"]
+    assert np.all(D[t][step - 9:] <= within)                   # held 10 steps and never left
+    assert full[-1].cell.cellpar()[0] == pytest.approx(full[-1].cell.cellpar()[2], abs=1e-3)
+
+    eager, step1, _ = _watched_fire({"rules": {"persistence": {"steps": 1}}}, tmp_path)
+    t1 = eager["type"]
+    assert step1 < step and np.any(D[t1][step1:] > within)     # a state the run leaves again
+    assert lattice3d.most_specific({k: D[k][step1] for k in D}, within) == t1
+
+
+def test_a_finished_run_counts_its_end(demo):
+    """The same run judged as finished counts a gain on its last steps; judged as still going, a
+    gain must have held for rules.persistence.steps steps."""
+    run = DEMO / "L01_qe_vcrelax"
+    done = demo["L01_qe_vcrelax"]
+    going = driftwatch.analyze(run, complete=False)
+    k = done["summary"]["verdict"]["lattice"]["from_frame"]
+    held = done["frames"][-1]["step"] - done["frames"][k]["step"] + 1
+    assert done["summary"]["verdict"]["lattice"]["gained"] == "hp"
+    assert held < 10 and going["summary"]["verdict"]["lattice"]["gained"] is None
+    assert going["summary"]["verdict"]["complete"] is False
+
+
+# ----------------------------------------------------------------------------- tolerance advice
+def _numbers(text):
+    return [float(x) for x in re.findall(r"\d+(?:\.\d+)?(?:e[-+]?\d+)?", text)]
+
+
+def test_advice_quotes_its_own_plateau_and_prefers_a_real_group_over_p1(demo):
+    for run, rec in demo.items():
+        tol = rec["summary"]["tolerance"]
+        p = tol["plateau"]
+        if tol["kind"] == "plateau":
+            assert tol["recommended_symprec"] == pytest.approx(math.sqrt(p["low"] * p["high"]))
+            got = _numbers(tol["reason"])
+            for x in (tol["recommended_symprec"], p["low"], p["high"]):
+                assert any(abs(y - float(f"{x:.3g}")) <= 1e-12 * max(1, y) for y in got), (run, x)
+            assert [p["low"], p["high"], p["group"], p["symbol"], p["operations"]][:2] in [
+                r[:2] for r in tol["ranges"]] or p["low"] > tol["ranges"][0][0]
+    # B04: spglib calls the final structure P1 up to ~0.0085 Å and Fm-3m above: the advice sits in
+    # the Fm-3m plateau, and spglib (directly) gives Fm-3m there and P1 at 1e-3 Å
+    tol = demo["B04_emt_fire_loose.extxyz"]["summary"]["tolerance"]
+    last = frames_of("B04_emt_fire_loose.extxyz")[-1]
+    assert tol["plateau"]["symbol"] == "Fm-3m"
+    assert sg(last, tol["recommended_symprec"]).number == 225 and sg(last, 1e-3).number == 1
+    # one verdict over the whole grid: said so, and no number invented for it
+    tol = demo["B02_qe_vcrelax_sym"]["summary"]["tolerance"]
+    assert tol["kind"] == "one-verdict" and tol["recommended_symprec"] is None
+    assert "Im-3m (229)" in tol["reason"] and "every symprec of the grid" in tol["reason"]
+
+
+# ----------------------------------------------------------------------------- the code's symmetry
+def test_held_by_code_only_where_it_changes_the_reading(demo):
+    flags = {run: {f["code"] for f in rec["flags"]} for run, rec in demo.items()}
+    assert "held-by-code" in flags["B02_qe_vcrelax_sym"]       # pw.x kept 48 ops; the run kept Im-3m
+    assert "held-by-code" not in flags["B01_qe_vcrelax"]       # it gained symmetry: not held
+    assert "held-by-code" not in flags["B03_qe_vcrelax_nosym"]  # nosym=.true.
+
+
+# ----------------------------------------------------------------------------- one verdict everywhere
+def test_every_output_reads_the_same_verdict(tmp_path):
+    from driftwatch.campaign import audit
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    for run in ("B03_qe_vcrelax_nosym", "B06_emt_bain.traj", "L07_emt_fire.traj"):
+        src = DEMO / run
+        if src.is_dir():
+            (camp / run).mkdir()
+            for f in src.iterdir():
+                (camp / run / f.name).write_bytes(f.read_bytes())
+        else:
+            (camp / run).write_bytes(src.read_bytes())
+    out = tmp_path / "out"
+    s = audit([camp], out, workers=1, progress="off", report=True)
+    rows = {r["run"]: r for r in csv.DictReader(open(out / "campaign.csv", newline=""))}
+    db = ase.db.connect(out / "runs.db")
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o", str(out)],
+                       capture_output=True, text=True, timeout=300)
+    table = r.stdout + r.stderr
+    for rid, rel in s["records"].items():
+        rec = records.read_json(out / rel)
+        summ = rec["summary"]
+        d = summ["drift"]
+        row, kv = rows[rid], db.get(run_id=rid).key_value_pairs
+        assert row["verdict"] == kv["verdict"] == summ["verdict"]["direction"]
+        assert row["drift_type"] == kv["drift_type"] == d["type"]
+        assert float(row["drift_final_A"]) == pytest.approx(kv["drift_final"], rel=1e-5)
+        assert kv["drift_final"] == pytest.approx(d["final"], rel=1e-12)
+        line = next(ln for ln in table.splitlines() if ln.startswith(rid + " "))
+        assert f" {summ['verdict']['direction']} " in line
+        assert f"{d['type']} {d['initial']:.3g}->{d['final']:.3g}" in line
+        js = json.loads(subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
+                                        str(camp / rid.split("/", 1)[1]), "--json"],
+                                       capture_output=True, text=True, timeout=300).stdout)
+        assert js["summary"] == summ
+    html = (out / "report" / "index.html").read_text(encoding="utf-8")
+    assert 'class="badge v-lost"' in html and 'class="badge v-changed"' in html
+
+
+def test_inspect_shows_every_type_the_run_started_or_ended_at():
+    out = subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
+                          str(DEMO / "B03_qe_vcrelax_nosym")], capture_output=True, text=True,
+                         timeout=300).stdout
+    head = next(ln for ln in out.splitlines() if ln.strip().startswith("step"))
+    assert "cI/Å" in head                                  # it started body-centred cubic
+
+
+# ----------------------------------------------------------------------------- old records
+def test_records_of_the_previous_schema_are_still_read(tmp_path):
+    rec = records.read_json(DATA / "records" / "run1_B03_qe_vcrelax_nosym.json")
+    assert rec["schema"] == records.SCHEMA and rec["upgraded_from"] == "driftwatch/run-1"
+    assert rec["summary"]["verdict"]["direction"] == "lost"
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "report", str(DATA / "records"), "-o",
+                        str(tmp_path / "rep")], capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    assert len(list((tmp_path / "rep" / "runs").glob("*.html"))) == 2
