@@ -136,12 +136,12 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot read folder ({exc.strerror or exc})"}
             continue
-        if kind == "run":
+        if kind in ("run", "ambiguous"):      # an ambiguous folder fails as one run, saying why
             if real not in seen_runs:
                 seen_runs.add(real)
                 yield RunSpec(rid, str(folder), "folder")
             staged = {Path(src).parent.name for _, src, _ in got.stages
-                      if Path(src).parent != Path(folder)}
+                      if Path(src).parent != Path(folder)} if kind == "run" else set()
             dirs = [e for e in dirs if e.name not in staged]      # stage folders are this run
         else:
             wanted = set(got)

@@ -338,7 +338,8 @@ def recognised(path, name: str | None = None) -> bool:
 
 def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None):
     """What a folder holds, as discovery sees it: ``("run", FolderPick)`` when a code claims it as a
-    run folder (its stages included), else ``("files", [file names a format recognises])``.
+    run folder (its stages included), ``("ambiguous", [files])`` when several codes do, else
+    ``("files", [file names a format recognises])``.
 
     ``names``: the folder's non-hidden regular file names (listed here when None).
     """
@@ -349,10 +350,15 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     if names is None:
         names = sorted(e.name for e in os.scandir(folder)
                        if not e.name.startswith(".") and _is_file(e))
+    claims = []
     for code in _codes.values():
         got = code.function("folder")(folder, list(names), format, ctx)
         if got is not None:
-            return "run", got
+            claims.append(got)
+    if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
+        return "ambiguous", [st[1].name for c in claims for st in c.stages]
+    if claims:
+        return "run", claims[0]
     files = []
     for n in names:
         p = folder / n
@@ -384,6 +390,9 @@ def _is_file(entry) -> bool:
 
 def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
     kind, got = scan_folder(path, format=format, ctx=ctx)
+    if kind == "ambiguous":
+        raise InputError(path, f"ambiguous run folder: outputs of several codes ({', '.join(got)}); "
+                               f"pass the file itself")
     if kind == "run":
         return _Pick(list(got.stages), path, tuple(got.warnings))
     if not got:
