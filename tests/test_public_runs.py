@@ -301,21 +301,29 @@ def _quiet_audit(roots, out, **kw):
     return audit(roots, out, report=False, progress="off", **kw)
 
 
+def _record_of(out: Path, name: str) -> dict:
+    recs = [json.loads(p.read_text()) for p in (out / "records").glob("*.json")]
+    return next(r for r in recs if r["run"]["source"].endswith(name))
+
+
 def test_cache_sees_a_changed_log_pwx_output(tmp_path):
-    """Issue 16: a pw.x output named *.log changed between two audits was served from the cache."""
+    """Issue 16: a pw.x output named *.log changed between two audits was served from the cache
+    (the cache's own list of a folder's files had no *.log). Here a folder holds a finished pw.out
+    and a newer relax.log; relax.log is then replaced by another real pw.x output."""
+    import os
     d = tmp_path / "camp" / "L"
     d.mkdir(parents=True)
-    text = (QE / "layer_oblique_to_hex" / "pw.out").read_text()
-    shutil.copy(QE / "layer_oblique_to_hex" / "pw.in", d / "pw.in")
-    (d / "relax.log").write_text(text)
-    first = _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
-    n1 = json.loads((tmp_path / "out" / "records" / "camp_L.json").read_text())["run"]["n_frames"]
-    cut = text[: text.index("ATOMIC_POSITIONS", len(text) // 2)]      # a killed job's output
-    (d / "relax.log").write_text(cut)
+    shutil.copy(QE / "layer_oblique_to_hex" / "pw.out", d / "pw.out")
+    shutil.copy(QE / "relax_atoms_to_sites" / "pw.out", d / "relax.log")
+    os.utime(d / "pw.out", (1e9, 1e9))                                 # relax.log is the newer
+    _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
+    before = _record_of(tmp_path / "out", "relax.log")["run"]
+    shutil.copy(QE / "bulk_tetragonal_to_cubic" / "pw.out", d / "relax.log")
     second = _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
-    n2 = json.loads((tmp_path / "out" / "records" / "camp_L.json").read_text())["run"]["n_frames"]
-    assert first["analysed"] == 1 and second["analysed"] == 1 and second["cached"] == 0
-    assert n2 < n1
+    after = _record_of(tmp_path / "out", "relax.log")["run"]
+    want = read_run(QE / "bulk_tetragonal_to_cubic" / "pw.out")
+    assert (before["n_frames"], before["formula"]) != (after["n_frames"], after["formula"])
+    assert after["n_frames"] == len(want) and second["failed"] == []
 
 
 def test_cache_sees_a_changed_pw_in_beside_two_outputs(tmp_path):
