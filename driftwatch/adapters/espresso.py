@@ -329,8 +329,8 @@ def read_pw_input(path) -> dict:
            "calculation": str(control.get("calculation", "scf")).strip().lower(),
            "nosym": bool(system.get("nosym", False)),
            "noinv": bool(system.get("noinv", False)),
-           "prefix": str(control.get("prefix", "pwscf")).strip(),
-           "outdir": str(control.get("outdir", "./")).strip()}
+           "prefix": str(control.get("prefix", "pwscf")).strip().strip("'\""),
+           "outdir": str(control.get("outdir", "./")).strip().strip("'\"")}
     if out["calculation"] == "vc-relax" or "cell_dofree" in cell:
         out["cell_dofree"] = str(cell.get("cell_dofree", "all")).strip()
     return out
@@ -495,7 +495,8 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
     n = s.get("nsym")
     if n is None and "nosym" not in s:
         return None
-    kept = f"{n} symmetry operations" if n else "the symmetry operations it found"
+    kept = ("1 symmetry operation (the identity only)" if n == 1 else
+           f"{n} symmetry operations" if n else "the symmetry operations it found")
     extra = "" if dimension != 2 else " of the slab's 3D cell"
     return {"operations": None if n is None else int(n),
             "how": f"pw.x kept {kept}{extra} (nosym=.false.)",

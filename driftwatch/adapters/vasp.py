@@ -688,7 +688,8 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
         return None
     n = s.get("nsym")
     prec = s.get("SYMPREC")
-    what = f"{n} symmetry operations" if n else "the symmetry operations it found"
+    what = ("1 symmetry operation (the identity only)" if n == 1 else
+           f"{n} symmetry operations" if n else "the symmetry operations it found")
     cell = " of the slab's 3D cell" if dimension == 2 else ""
     tol = f", SYMPREC = {prec:g} Å" if prec is not None else ""
     return {"operations": None if n is None else int(n),
