@@ -1,10 +1,16 @@
 """Per-run result cache of a campaign audit: ``OUTPUT/.cache/<key>.json``.
 
-The key is the sha256 of everything a run's result depends on: the bytes of the run's input files
-(for a folder run, every file the adapters may read there), the path string the run is read from
-(it appears in the record), the effective configuration (:func:`driftwatch.config.fingerprint`) and
-the versions of driftwatch, spglib and ASE. A changed file, config or version gives a new key, so a
-stale result is never served; an unchanged run is never analysed twice.
+The key is the sha256 of the path string the run is read from (it appears in the record), the
+effective configuration (:func:`driftwatch.config.fingerprint`) and the versions of driftwatch,
+spglib and ASE. The entry also holds the run's *inputs* as the readers recorded them while reading
+(``Run.inputs``: every file opened, with the sha256 of its bytes, or None when it was missing, and
+every folder whose listing decided what was read, with the sha256 of its names). A hit needs every
+one of them unchanged, so a change to any file a reader used (a ``*.log`` pw.x output, a ``pw.in``
+beside two outputs, an INCAR.gz) or a file appearing in a run folder is seen; an unchanged run is
+never analysed twice. A file that changed while it was being read (its stamp differs between the
+read and the digest) makes the result uncacheable, so a failure caused by a file deleted or emptied
+during an audit is never served once the file is back. An entry that is not exactly what this
+version writes (even valid JSON of the right schema) is a miss.
 
 File digests are memoised in ``OUTPUT/.cache/digests.json`` on (size, mtime, ctime, inode): the
 ctime cannot be set back by user tools, so an unchanged stat means unchanged bytes and a re-audit of
@@ -22,16 +28,11 @@ from pathlib import Path
 
 from . import records
 
-__all__ = ["Cache", "FileDigests", "run_inputs", "run_key", "versions", "CACHE_SCHEMA",
-           "FOLDER_INPUT_GLOBS"]
+__all__ = ["Cache", "FileDigests", "run_inputs", "run_key", "versions", "freeze_inputs",
+           "CACHE_SCHEMA"]
 
-CACHE_SCHEMA = "driftwatch/cache-1"
-
-# Files of a run folder that the VASP and pw.x adapters may read (outputs, inputs with the code's
-# symmetry settings). Large binary outputs (WAVECAR, CHGCAR, *.save/) are not among them.
-FOLDER_INPUT_GLOBS = ("vasprun*.xml*", "OUTCAR*", "XDATCAR*", "CONTCAR*", "POSCAR*", "INCAR*",
-                      "OSZICAR*", "*.out", "*.out.gz", "*.out.bz2", "*.out.xz", "*.pwo*", "*.in",
-                      "*.pwi")
+CACHE_SCHEMA = "driftwatch/cache-2"
+_HEX = frozenset("0123456789abcdef")
 
 
 def versions() -> dict:
@@ -44,18 +45,25 @@ def versions() -> dict:
 
 
 def run_inputs(path, kind: str) -> list[Path]:
-    """The files a run is read from: the file itself, or the matching files of a run folder."""
+    """The files a run is likely read from (the file itself, or the files of a run folder matching
+    the code table's ``run_files`` globs): for ordering work by size, not for the cache."""
+    from .adapters.registry import codes
     path = Path(path)
     if kind == "file":
         return [path]
+    globs = [g for c in codes().values() for g in c.run_files]
     out = []
     with os.scandir(path) as it:
         for entry in it:
             if entry.name.startswith(".") or not entry.is_file():
                 continue
-            if any(fnmatch.fnmatchcase(entry.name, g) for g in FOLDER_INPUT_GLOBS):
+            if any(fnmatch.fnmatchcase(entry.name, g) for g in globs):
                 out.append(Path(entry.path))
     return sorted(out, key=lambda p: p.name)
+
+
+def _is_digest(x) -> bool:
+    return isinstance(x, str) and len(x) == 64 and set(x) <= _HEX
 
 
 class FileDigests:
@@ -68,26 +76,37 @@ class FileDigests:
         if self.path is not None and self.path.is_file():
             try:
                 data = json.loads(self.path.read_text(encoding="utf-8"))
-                if isinstance(data, dict) and data.get("schema") == CACHE_SCHEMA:
-                    self._memo = dict(data.get("files", {}))
-            except (OSError, ValueError):
+                files = data.get("files") if isinstance(data, dict) else None
+                if data.get("schema") == CACHE_SCHEMA and isinstance(files, dict):
+                    self._memo = files
+            except (OSError, ValueError, AttributeError):
                 self._memo = {}
 
-    def digest(self, file) -> str:
-        """Hex sha256 of a file's bytes (raises OSError when it cannot be read)."""
+    def stamp_digest(self, file) -> tuple[list | None, str | None]:
+        """(stamp, hex sha256) of a file's bytes; (None, None) when it is missing. The digest is
+        None as well when the file changed while it was hashed. Raises OSError when it exists but
+        cannot be read."""
+        from .adapters.run import file_stamp
         real = os.path.realpath(file)
-        st = os.stat(real)
-        stamp = [st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_ino]
+        stamp = file_stamp(real)
+        if stamp is None:
+            return None, None
         hit = self._memo.get(real)
-        if isinstance(hit, list) and len(hit) == 2 and hit[0] == stamp:
-            return hit[1]
+        if isinstance(hit, list) and len(hit) == 2 and hit[0] == stamp and _is_digest(hit[1]):
+            return stamp, hit[1]
         h = hashlib.sha256()
         with open(real, "rb") as fh:
             for block in iter(lambda: fh.read(1 << 20), b""):
                 h.update(block)
+        if file_stamp(real) != stamp:
+            return stamp, None
         self._memo[real] = [stamp, h.hexdigest()]
         self._dirty = True
-        return h.hexdigest()
+        return stamp, h.hexdigest()
+
+    def digest(self, file) -> str | None:
+        """Hex sha256 of a file's bytes, None when it is missing (OSError when unreadable)."""
+        return self.stamp_digest(file)[1]
 
     def save(self) -> None:
         if self.path is not None and self._dirty:
@@ -96,15 +115,78 @@ class FileDigests:
             self._dirty = False
 
 
-def run_key(path: str, kind: str, fingerprint: str, vers: dict, digests: FileDigests) -> str:
-    """Cache key of a run (hex sha256); raises OSError when an input file cannot be read."""
+def run_key(path: str, kind: str, fingerprint: str, vers: dict) -> str:
+    """Cache key of a run (hex sha256) from its path, kind, config fingerprint and versions; the
+    inputs' bytes are checked against the entry (:meth:`Cache.get`)."""
     h = hashlib.sha256()
     h.update(json.dumps({"schema": CACHE_SCHEMA, "path": str(path), "kind": kind,
                          "config": fingerprint, "versions": vers}, sort_keys=True).encode())
-    for f in run_inputs(path, kind):
-        h.update(b"\0" + f.name.encode("utf-8", "surrogateescape") + b"\0")
-        h.update(digests.digest(f).encode())
     return h.hexdigest()
+
+
+def freeze_inputs(inputs, digests: FileDigests) -> list | None:
+    """The cache's form of ``Run.inputs`` (``[kind, path, stamp]`` recorded while reading):
+    ``[kind, path, sha256 | None]``. None (do not cache) when a file is not what the reader saw:
+    it changed, appeared or vanished since it was read, or cannot be read now."""
+    from .adapters.run import folder_listing
+    out = []
+    try:
+        for kind, path, stamp in inputs or ():
+            if kind == "folder":
+                if folder_listing(path) != stamp:
+                    return None
+                out.append(["folder", str(path), stamp])
+                continue
+            now, digest = digests.stamp_digest(path)
+            if now != (None if stamp is None else list(stamp)) or (now is not None and
+                                                                 digest is None):
+                return None
+            out.append(["file", str(path), digest])
+    except (OSError, TypeError, ValueError):
+        return None
+    return out if out else None
+
+
+def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
+    from .adapters.run import folder_listing
+    if not isinstance(inputs, list) or not inputs:
+        return False
+    for item in inputs:
+        if not (isinstance(item, list) and len(item) == 3 and item[0] in ("file", "folder")
+                and isinstance(item[1], str) and (item[2] is None or _is_digest(item[2]))):
+            return False
+        kind, path, want = item
+        try:
+            have = folder_listing(path) if kind == "folder" else digests.digest(path)
+        except OSError:
+            return False
+        if have != want:
+            return False
+    return True
+
+
+def _valid_result(res) -> bool:
+    """A stored result of the exact shape the audit uses (anything else is a miss)."""
+    if not isinstance(res, dict):
+        return False
+    if res.get("ok") is False:
+        return isinstance(res.get("error"), str)
+    if res.get("ok") is not True or not isinstance(res.get("record_text"), str):
+        return False
+    st = res.get("structure")
+    try:
+        rec = json.loads(res["record_text"])
+        cell, pos, numbers, pbc = st["cell"], st["positions"], st["numbers"], st["pbc"]
+        ok_shapes = (len(cell) == 3 and all(len(r) == 3 for r in cell) and len(pbc) == 3
+                     and len(pos) == len(numbers) > 0 and all(len(r) == 3 for r in pos)
+                     and all(isinstance(z, int) for z in numbers))
+        ok_record = (isinstance(rec, dict) and str(rec.get("schema", "")).startswith("driftwatch/run-")
+                     and isinstance(rec.get("frames"), list) and rec["frames"]
+                     and isinstance(rec.get("summary"), dict) and isinstance(rec.get("flags"), list)
+                     and isinstance(rec.get("geometry"), dict) and isinstance(rec.get("run"), dict))
+    except (TypeError, KeyError, ValueError, AttributeError):
+        return False
+    return bool(ok_shapes and ok_record)
 
 
 class Cache:
@@ -117,8 +199,9 @@ class Cache:
     def _file(self, key: str) -> Path:
         return self.folder / f"{key}.json"
 
-    def get(self, key: str) -> dict | None:
-        """The stored result, or None (missing, unreadable, corrupt or for another key)."""
+    def get(self, key: str, digests: FileDigests | None = None) -> dict | None:
+        """The stored result when every input it was read from is unchanged, else None (also for
+        a missing, unreadable, corrupt or malformed entry, or one for another key)."""
         if not self.enabled:
             return None
         try:
@@ -126,23 +209,20 @@ class Cache:
         except (OSError, ValueError):
             return None
         if not (isinstance(data, dict) and data.get("schema") == CACHE_SCHEMA
-                and data.get("key") == key and isinstance(data.get("result"), dict)):
+                and data.get("key") == key and _valid_result(data.get("result"))):
             return None
-        res = data["result"]
-        if res.get("ok") is True and not (isinstance(res.get("record_text"), str)
-                                          and isinstance(res.get("structure"), dict)):
+        if not _inputs_unchanged(data.get("inputs"), digests or FileDigests()):
             return None
-        if res.get("ok") is False and not isinstance(res.get("error"), str):
-            return None
-        return res
+        return data["result"]
 
-    def put(self, key: str, result: dict) -> None:
-        """Store a result atomically: a killed audit leaves the old entry or the new one.
+    def put(self, key: str, result: dict, inputs: list) -> None:
+        """Store a result with the inputs it was read from, atomically (a killed audit leaves the
+        old entry or the new one).
 
         No fsync (unlike records): after a power cut an entry may be empty, which :meth:`get`
         treats as a miss, so durability is not needed and the audit saves a disk flush per run.
         """
         from .records import write_text_atomic
         write_text_atomic(self._file(key), json.dumps({"schema": CACHE_SCHEMA, "key": key,
-                                                       "result": result}, allow_nan=False),
-                          fsync=False)
+                                                       "inputs": inputs, "result": result},
+                                                      allow_nan=False), fsync=False)

@@ -42,7 +42,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from . import records
-from .cache import Cache, FileDigests, run_key
+from .cache import Cache, FileDigests, freeze_inputs, run_key
 from .cache import versions as _versions
 from .rules import campaign_advice
 from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
@@ -68,28 +68,9 @@ class RunSpec:
     """``"file"`` or ``"folder"``."""
 
 
-_VASP_PREFIXES = ("vasprun", "OUTCAR", "XDATCAR")
-_QE_SUFFIXES = (".out", ".pwo")
-
-
 def _strip(name: str) -> str:
     from .adapters._io import strip_compression
     return strip_compression(name)
-
-
-def _is_vasp(name: str) -> bool:
-    n = _strip(name)
-    return n.startswith(_VASP_PREFIXES) and (not n.startswith("vasprun") or n.endswith(".xml"))
-
-
-def _is_pwx(path: str, name: str) -> bool:
-    if not _strip(name).endswith(_QE_SUFFIXES):
-        return False
-    from .adapters._io import peek
-    try:
-        return b"Program PWSCF" in peek(path, 50_000)
-    except OSError:
-        return False
 
 
 def _entry_kind(e) -> str | None:
@@ -106,24 +87,6 @@ def _entry_kind(e) -> str | None:
     return "file" if e.is_symlink() else None
 
 
-def _format_globs() -> list[str]:
-    from .adapters import registry
-    return [g.lower() for f in getattr(registry, "_formats", {}).values() for g in f.globs]
-
-
-def _is_candidate(path: str, name: str, globs: list[str]) -> bool:
-    """A file an adapter recognises; a broken file counts when its name says what it should be."""
-    from .adapters import detect
-    try:
-        detect(path)
-        return True
-    except UnknownFormatError:
-        return False
-    except (InputError, OSError):
-        low = _strip(name).lower()
-        return any(fnmatch.fnmatchcase(low, g) for g in globs)
-
-
 def _root_name(root: Path) -> str:
     return root.name if root.name not in ("", ".", "..") else (root.resolve().name or "root")
 
@@ -133,18 +96,19 @@ def _matches(spec: RunSpec, patterns) -> bool:
                for p in patterns)
 
 
-def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, globs):
+def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
     """Yield RunSpecs and failed entries (dicts) below ``root`` (depth first, sorted).
 
     Symbolic links (to files or folders) are taken after every real path of the root, so a run
     reachable both ways is named by its real path; real paths seen are never entered twice.
     """
+    from .adapters.registry import recognised
     stack, later_dirs, later_files = [(Path(root), prefix)], [], []
     while stack or later_dirs or later_files:
         if not stack:
             for path, rid, name in later_files:
                 freal = os.path.realpath(path)
-                if freal not in seen_runs and freal not in skip and _is_candidate(path, name, globs):
+                if freal not in seen_runs and freal not in skip and recognised(path, name):
                     seen_runs.add(freal)
                     yield RunSpec(rid, path, "file")
             later_files = []
@@ -165,20 +129,29 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, gl
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot list folder ({exc.strerror or exc})"}
             continue
-        pwx = [e for e in files if _is_pwx(e.path, e.name)]
-        if any(_is_vasp(e.name) for e in files) or len(pwx) == 1:
+        from .adapters.registry import recognised, scan_folder
+        try:
+            kind, got = scan_folder(folder, [e.name for e in files])
+        except OSError as exc:
+            yield {"run": rid, "source": str(folder),
+                   "error": f"{folder}: cannot read folder ({exc.strerror or exc})"}
+            continue
+        if kind in ("run", "ambiguous"):      # an ambiguous folder fails as one run, saying why
             if real not in seen_runs:
                 seen_runs.add(real)
                 yield RunSpec(rid, str(folder), "folder")
+            staged = {Path(src).parent.name for _, src, _ in got.stages
+                      if Path(src).parent != Path(folder)} if kind == "run" else set()
+            dirs = [e for e in dirs if e.name not in staged]      # stage folders are this run
         else:
+            wanted = set(got)
             for e in files:
                 path, frid = str(Path(folder) / e.name), f"{rid}/{e.name}"
                 if e.is_symlink():
                     later_files.append((path, frid, e.name))
                     continue
                 freal = os.path.realpath(path)
-                if freal not in seen_runs and freal not in skip and _is_candidate(path, e.name,
-                                                                                 globs):
+                if freal not in seen_runs and freal not in skip and e.name in wanted:
                     seen_runs.add(freal)
                     yield RunSpec(frid, path, "file")
         for e in reversed(dirs):
@@ -202,7 +175,6 @@ def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], 
         roots = [roots]
     skip_real = {os.path.realpath(p) for p in skip}
     seen_dirs, seen_runs = set(), set()
-    globs = _format_globs()
     runs, failed, ids = [], [], set()
     for root in roots:
         root = Path(root)
@@ -216,7 +188,7 @@ def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], 
             found = [] if real in seen_runs else [RunSpec(name, str(root), "file")]
             seen_runs.add(real)
         else:
-            found = _walk(root, name, skip_real, seen_dirs, seen_runs, globs)
+            found = _walk(root, name, skip_real, seen_dirs, seen_runs)
         for item in found:
             if isinstance(item, dict):
                 if not _matches(RunSpec(item["run"], item["source"], "folder"), exclude):
@@ -260,32 +232,66 @@ def _split_volatile(rec: dict) -> dict:
     return dict(rec.pop("timing", None) or {})
 
 
+def _skip_reason(exc, run, cfg) -> dict | None:
+    """A run driftwatch cannot analyse by its nature (a molecule, cluster or wire: not a layer and
+    not bulk): the reason and the setting that would include it, or None for a real failure."""
+    from . import geometry
+    from .errors import GeometryError
+    if not isinstance(exc, GeometryError) or run is None or "not a layer" not in str(exc):
+        return None
+    pbc = [bool(x) for x in run.pbc]
+    if sum(pbc) <= 1:
+        kind = "a molecule or cluster" if not any(pbc) else "a wire or chain"
+        return {"reason": f"{kind}: periodic along {sum(pbc)} axes (pbc = {pbc}); driftwatch "
+                          f"analyses layers and bulk crystals",
+                "include": "write the file with pbc True along the periodic axes (driftwatch "
+                           "takes pbc from the file)"}
+    gaps = geometry.vacuum_gaps(run.cells[:1], run.positions[:1])[0]
+    top = float(max(gaps))
+    return {"reason": f"vacuum on more than one axis (empty gaps "
+                      f"{', '.join(f'{g:.1f}' for g in gaps)} Å > geometry.vacuum_gap "
+                      f"{cfg['geometry']['vacuum_gap']:g} Å): a molecule, cluster or wire in a box",
+            "include": f"geometry.vacuum_gap: {top + 0.5:.1f} (Å) analyses its cell as bulk"}
+
+
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
     """Analyse one run; never raises (except KeyboardInterrupt/SystemExit).
 
-    Returns ``{"run", "source", "ok": True, "record_text", "structure", "timing"}`` (the record
-    as the exact JSON text written to ``records/``, without the volatile fields of
-    :func:`_split_volatile`; structure = final frame's cell, positions, numbers, pbc) or
-    ``{"run", "source", "ok": False, "error": one line, "cacheable": bool}``. Serialising here
-    keeps the (pure-Python, indented) JSON encoding in the workers, not in the collecting process.
+    Returns ``{"run", "source", "ok": True, "record_text", "structure", "timing", "inputs"}`` (the
+    record as the exact JSON text written to ``records/``, without the volatile fields of
+    :func:`_split_volatile`; structure = final frame's cell, positions, numbers, pbc; inputs = the
+    files and folders the readers used, ``Run.inputs``) or ``{"run", "source", "ok": False,
+    "error": one line, "cacheable": bool, "inputs"}``, plus ``"skipped": {"reason", "include"}``
+    for a run that is not a layer or bulk crystal (a molecule). Serialising here keeps the
+    (pure-Python, indented) JSON encoding in the workers, not in the collecting process.
     """
+    from .adapters import ReadContext
+    ctx = ReadContext(path)
+    run = None
     try:
         from .adapters import read_run
         from .track import analyze
-        run = read_run(path)
+        run = read_run(path, context=ctx)
         rec = analyze(run, cfg)
         timing = _split_volatile(rec)
         structure = {"cell": run.cells[-1].tolist(), "positions": run.positions[-1].tolist(),
                      "numbers": [int(z) for z in run.numbers], "pbc": [bool(p) for p in run.pbc]}
         return {"run": run_id, "source": path, "ok": True,
-                "record_text": records.dumps(rec) + "\n",
+                "record_text": records.dumps(rec) + "\n", "inputs": [list(x) for x in ctx.inputs()],
                 "structure": structure, "timing": json.loads(records.dumps(timing, indent=None))}
     except Exception as exc:  # noqa: BLE001 - a worker must never raise
         # A file that could not be opened (permissions, I/O) or memory exhaustion may go away:
         # do not cache those. Everything else is a property of the inputs and this version.
         transient = isinstance(exc, (MemoryError, OSError)) and not isinstance(exc, DriftwatchError)
-        return {"run": run_id, "source": path, "ok": False, "error": _one_line(exc, path),
-                "cacheable": not transient}
+        out = {"run": run_id, "source": path, "ok": False, "error": _one_line(exc, path),
+               "cacheable": not transient, "inputs": [list(x) for x in ctx.inputs()]}
+        try:
+            skipped = _skip_reason(exc, run, cfg)
+        except Exception:  # noqa: BLE001 - the hint is a courtesy
+            skipped = None
+        if skipped:
+            out["skipped"] = skipped
+        return out
 
 
 def _analyse_chunk(items, cfg=None) -> list[dict]:
@@ -464,6 +470,7 @@ class _Progress:
             self.bar.close()
 
 
+
 def _progress_on(progress) -> bool:
     if progress in (True, "on"):
         return True
@@ -577,7 +584,7 @@ def _slim(text: str, run_id: str) -> dict:
 _TABLE_HEAD = ["run", "dim", "verdict", "lattice", "drift/Å (deformation)", "group", "flags"]
 
 
-def _summary_rows(ok: list[dict], failed: list[dict]) -> list[list[str]]:
+def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[str]]:
     """One row per run, every cell read from the record's verdict (``records.verdict_fields``)."""
     rows = []
     for r in ok:
@@ -592,6 +599,9 @@ def _summary_rows(ok: list[dict], failed: list[dict]) -> list[list[str]]:
         rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"], lat, drift, grp, flags])
     for f in failed:
         rows.append([f["run"], "-", "failed", "-", "-", "-", f["error"]])
+    for k in skipped:
+        rows.append([k["run"], "-", "skipped", "-", "-", "-", f"{k['reason']} (to include: "
+                                                               f"{k['include']})"])
     return sorted(rows, key=lambda x: x[0])
 
 
@@ -615,8 +625,10 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
               f"see campaign.csv)", file=stream)
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
+    skipped = f", {len(summary['skipped'])} skipped" if summary.get("skipped") else ""
     print(f"\n{summary['runs']} runs ({summary['analysed']} analysed, {summary['cached']} from "
-          f"cache, {len(summary['failed'])} failed) in {summary['elapsed_s']:.1f} s", file=stream)
+          f"cache, {len(summary['failed'])} failed{skipped}) in {summary['elapsed_s']:.1f} s",
+          file=stream)
     print(f"verdicts: {vc}", file=stream)
     print(f"flags (runs): {fc}", file=stream)
     tol = summary["tolerance"]
@@ -703,14 +715,18 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         bar.close()
         getattr(gen, "close", lambda: None)()
 
+    res.digests.save()
     ok = [res.results[r.id] for r in runs if res.results[r.id]["ok"]]
+    skipped = [{"run": r.id, "source": r.path, **res.results[r.id]["skipped"]} for r in runs
+               if not res.results[r.id]["ok"] and res.results[r.id].get("skipped")]
     failed = failed + [{"run": r.id, "source": r.path, "error": res.results[r.id]["error"]}
-                       for r in runs if not res.results[r.id]["ok"]]
+                       for r in runs if not res.results[r.id]["ok"]
+                       and not res.results[r.id].get("skipped")]
     current = {res.names[r["run"]] for r in ok}
     stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
-    db_problems = _write_tables(out, db_name, ok, failed)
+    db_problems = _write_tables(out, db_name, ok, failed, skipped)
     summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
-                       db_problems, stale)
+                       db_problems, stale, skipped)
     summary["elapsed_s"] = time.perf_counter() - t0
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     _write_marker(out, roots_abs, sorted(current))
@@ -720,10 +736,10 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     tty = getattr(sys.stdout, "isatty", lambda: False)()
     if quiet is False or (quiet is None and tty):
-        _print_table(summary, _summary_rows(ok, failed), sys.stdout)
+        _print_table(summary, _summary_rows(ok, failed, skipped), sys.stdout)
     elif quiet is None and progress not in ("off", False):
         # stdout is a pipe or file (maybe the JSON of --json): keep it clean, table on stderr
-        _print_table(summary, _summary_rows(ok, failed), sys.stderr)
+        _print_table(summary, _summary_rows(ok, failed, skipped), sys.stderr)
     return summary
 
 
@@ -756,18 +772,16 @@ class _Results:
         """Take cached results; return the (run id, path) pairs left to analyse."""
         vers, todo = _versions(), []
         for r in runs:
-            try:
-                self.keys[r.id] = run_key(r.path, r.kind, fingerprint, vers, self.digests)
-            except OSError as exc:
-                self.keep({"run": r.id, "source": r.path, "ok": False, "cacheable": False,
-                           "error": _one_line(exc, r.path)})
-                continue
-            hit = self.cache.get(self.keys[r.id])
-            if hit is None:
-                todo.append((r.id, r.path))
-            else:
-                self.cached += 1
-                self.keep(dict(hit, run=r.id, source=r.path, cached=True))
+            self.keys[r.id] = run_key(r.path, r.kind, fingerprint, vers)
+            hit = self.cache.get(self.keys[r.id], self.digests)
+            if hit is not None:
+                try:
+                    self.keep(dict(hit, run=r.id, source=r.path, cached=True))
+                    self.cached += 1
+                    continue
+                except Exception:  # noqa: BLE001 - an entry this audit cannot use is a miss
+                    self.results.pop(r.id, None)
+            todo.append((r.id, r.path))
         self.digests.save()
         return todo
 
@@ -783,18 +797,26 @@ class _Results:
     def store(self, res: dict) -> None:
         """A fresh result: cache it (deterministic failures too), then keep it."""
         rid = res["run"]
+        inputs = res.pop("inputs", None)
         if rid in self.keys and (res["ok"] or res.get("cacheable")):
-            self.cache.put(self.keys[rid], {k: v for k, v in res.items()
-                                            if k not in ("run", "source")})
+            frozen = freeze_inputs(inputs, self.digests)
+            if frozen is not None:        # None: an input changed while it was read, or since
+                self.cache.put(self.keys[rid], {k: v for k, v in res.items()
+                                                if k not in ("run", "source")}, frozen)
         self.keep(res)
 
 
-def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict]) -> list[str]:
-    """campaign.csv and the database rows (failed runs too: an empty structure, their error)."""
+def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
+                 skipped=()) -> list[str]:
+    """campaign.csv and the database rows (failed runs too: an empty structure, their error;
+    skipped runs in the CSV with their reason)."""
     from .store import write_rows
     rows = [r["view"]["csv"] for r in ok]
     rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
              for f in failed]
+    rows += [records.csv_row({"error": f"skipped: {k['reason']}; to include: {k['include']}",
+                              "source": k["source"]}, k["run"]) | {"verdict": "skipped"}
+             for k in skipped]
     records.write_text_atomic(out / "campaign.csv",
                               _csv_text(sorted(rows, key=lambda row: row["run"])))
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
@@ -804,22 +826,24 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict]) -
 
 
 def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_name, db_problems,
-             stale) -> dict:
+             stale, skipped=()) -> dict:
     from .rules import select
     return {
         "schema": SCHEMA,
         "output": str(out),
         "roots": [str(r) for r in roots],
-        "runs": len(ok) + len(failed),
+        "runs": len(ok) + len(failed) + len(skipped),
         "analysed": n_analysed,
         "cached": res.cached,
         "failed": sorted(failed, key=lambda f: f["run"]),
+        "skipped": sorted(skipped, key=lambda f: f["run"]),
         "rejected": [{"run": r["run"], "code": f["code"], "step": f["step"]}
                      for r in ok for f in select(r["view"]["flags"], list(reject_on))],
         "flag_counts": dict(sorted(Counter(c for r in ok for c in
                                            {f["code"] for f in r["view"]["flags"]}).items())),
         "verdict_counts": dict(sorted(Counter([r["view"]["verdict"]["verdict"] for r in ok]
-                                              + ["failed"] * len(failed)).items())),
+                                              + ["failed"] * len(failed)
+                                              + ["skipped"] * len(skipped)).items())),
         "tolerance": campaign_advice([{"run": r["run"], "summary": r["view"]["summary"],
                                        "grid": r["view"]["grid"]} for r in ok],
                                      cfg["report"]["common_symprecs"]),

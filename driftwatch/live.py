@@ -23,7 +23,6 @@ user's call.
 
 from __future__ import annotations
 
-import re
 import sys
 import time
 import warnings
@@ -43,15 +42,18 @@ __all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker
 SPECTRUM_FLAGS = frozenset({"symprec-dependent", "loose-symprec", "atoms-break-lattice",
                             "group-gained", "group-lost", "group-changed", "held-by-code"})
 
-#: Text the codes print once, when a run ends (searched in the last 8 kB of the output).
-#: pw.x: ``JOB DONE.`` (also printed after a soft stop) and its error banner; VASP: the timing block
-#: at the end of OUTCAR, the closing tag of vasprun.xml.
-END_MARKERS = {
-    "espresso-out": ((re.compile(rb"JOB DONE\."), "JOB DONE."),
-                     (re.compile(rb"Error in routine[\s\S]*stopping \.\.\."), "pw.x error banner")),
-    "vasp-out": ((re.compile(rb"General timing and accounting"), "General timing and accounting"),),
-    "vasp-xml": ((re.compile(rb"</modeling>"), "</modeling>"),),
-}
+#: Text the codes print once, when a run ends (searched in the last 8 kB of the output), by format:
+#: collected from the code table (each code's module defines its own: pw.x ``JOB DONE.`` and its
+#: error banner; VASP OUTCAR's timing block, vasprun.xml's closing tag).
+def _end_markers() -> dict:
+    from .adapters.registry import codes
+    out = {}
+    for c in codes().values():
+        out.update(c.end_markers)
+    return out
+
+
+END_MARKERS = _end_markers()
 
 
 class SymmetryDriftWarning(UserWarning):
@@ -101,12 +103,11 @@ def _key(flag) -> tuple:
 
 
 def code_of_format(fmt: str | None) -> str | None:
-    """``"espresso"`` for pw.x outputs, ``"vasp"`` for VASP ones, None for formats with no soft stop."""
-    if fmt == "espresso-out":
-        return "espresso"
-    if fmt and fmt.startswith("vasp"):
-        return "vasp"
-    return None
+    """The code table's name (``"espresso"``, ``"vasp"``, ...) of the code whose outputs ``fmt``
+    reads, when that code has a soft stop; None otherwise."""
+    from .adapters.registry import code_of_format as _code
+    code = _code(fmt)
+    return code.name if code is not None and code.soft_stop is not None else None
 
 
 def _same_frame(a: Frame, b: Frame) -> bool:
@@ -141,6 +142,7 @@ class Tracker:
         self.warnings: list[str] = []
         self.code_settings: dict = {}
         self.title: str | None = None
+        self.rounding: tuple | None = None      # the reader's printed precision of positions
         self._spectra: dict[int, dict] = {}
         self._spectra_for = None
 
@@ -186,6 +188,7 @@ class Tracker:
         cfg = self.cfg
         ctx = ReadContext(self.source)
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
+        ctx.rounding = self.rounding
         run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
         geo = self._geometry(run)
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
@@ -329,71 +332,11 @@ def _rank() -> int:
 
 
 # ---------------------------------------------------------------- soft stop
-_NAMELIST_VALUE = r"(?im)^[^!\n]*?\b{key}\s*=\s*(['\"])(.*?)\1"
-_SAVE_DIR = re.compile(rb"Writing output data file (\S*?)([^/\s]+)\.save/?\s*$", re.M)
-
-
-def _pw_inputs(run_dir: Path) -> list[Path]:
-    seen, out = set(), []
-    for pat in ("pw.in", "*.pwi", "*.in", "*.inp"):
-        for p in sorted(run_dir.glob(pat)):
-            if p in seen or not p.is_file():
-                continue
-            seen.add(p)
-            try:
-                head = p.read_bytes()[:50_000].lower()
-            except OSError:
-                continue
-            if b"&control" in head:
-                out.append(p)
-    return out
-
-
-def _control_values(text: str) -> dict:
-    m = re.search(r"(?is)&control\b(.*?)^\s*/\s*$", text, re.M)
-    block = m.group(1) if m else ""
-    got = {}
-    for key in ("prefix", "outdir"):
-        v = re.search(_NAMELIST_VALUE.format(key=key), block)
-        if v:
-            got[key] = v.group(2).strip()
-    return got
-
-
 def qe_stop_settings(run_dir, prefix=None, outdir=None) -> dict:
-    """``{"prefix", "outdir", "from"}`` of a pw.x run folder, for the ``<prefix>.EXIT`` file.
-
-    Explicit arguments win; then ``&CONTROL`` of the folder's pw.x input (``pw.in``, ``*.pwi``,
-    ``*.in``, ``*.inp`` holding ``&control``); then the output's ``Writing output data file
-    OUTDIR/PREFIX.save/`` line; then pw.x's defaults ``pwscf`` and ``./``.
-    """
-    run_dir = Path(run_dir)
-    found: dict = {}
-    where = "pw.x defaults"
-    if prefix is None or outdir is None:
-        sets = {}
-        for p in _pw_inputs(run_dir):
-            vals = _control_values(p.read_text(encoding="utf-8", errors="replace"))
-            sets[p.name] = (vals.get("prefix", "pwscf"), vals.get("outdir", "./"))
-        if len(set(sets.values())) > 1:
-            raise OutputError(f"{run_dir}: several pw.x inputs with different prefix/outdir "
-                              f"({', '.join(sets)}); pass prefix= and outdir=")
-        if sets:
-            name, (pf, od) = next(iter(sets.items()))
-            found, where = {"prefix": pf, "outdir": od}, name
-        else:
-            for out in sorted(run_dir.glob("*.out")) + sorted(run_dir.glob("*.pwo")):
-                m = None
-                for m in _SAVE_DIR.finditer(tail_bytes(out, 200_000)):
-                    pass
-                if m:
-                    od = m.group(1).decode(errors="replace").rstrip("/") or "."
-                    found, where = {"prefix": m.group(2).decode(errors="replace"), "outdir": od}, \
-                        out.name
-                    break
-    return {"prefix": prefix if prefix is not None else found.get("prefix", "pwscf"),
-            "outdir": outdir if outdir is not None else found.get("outdir", "./"),
-            "from": "arguments" if prefix is not None and outdir is not None else where}
+    """``{"prefix", "outdir", "from"}`` of a pw.x run folder, for the ``<prefix>.EXIT`` file
+    (:func:`driftwatch.adapters.espresso.stop_settings`)."""
+    from .adapters.espresso import stop_settings
+    return stop_settings(run_dir, prefix, outdir)
 
 
 def _inside(path: Path, folder: Path) -> bool:
@@ -421,23 +364,19 @@ def request_stop(run_dir, code, *, reason, dry_run=False, prefix=None, outdir=No
     Returns:
         ``{"action": "wrote" | "dry-run" | "exists", "path", "text", "code", "reason"}``.
     """
+    from .adapters.registry import _code_named, codes
     folder = Path(run_dir).resolve()
     if not folder.is_dir():
         raise OutputError(f"{run_dir}: not a run folder (no such directory)")
-    name = str(code).lower()
     why = " ".join(str(reason).split()) or "no reason given"
-    if name == "vasp":
-        target = folder / "STOPCAR"
-        text = f"LSTOP = .TRUE.\n# driftwatch soft stop: {why}\n"
-    elif name in ("espresso", "qe", "pw.x", "pwscf", "quantum-espresso"):
-        name = "espresso"
-        s = qe_stop_settings(folder, prefix, outdir)
-        if not re.fullmatch(r"[\w.+-]+", s["prefix"]) or s["prefix"] in (".", ".."):
-            raise OutputError(f"{folder}: pw.x prefix {s['prefix']!r} is not a plain file name")
-        target = (folder / s["outdir"] / f"{s['prefix']}.EXIT")
-        text = f"driftwatch soft stop: {why}\n"
-    else:
-        raise ConfigError(f"code: no soft stop for {code!r} (known: vasp, espresso)")
+    entry = _code_named(code)
+    fn = entry.function("soft_stop") if entry is not None else None
+    if fn is None:
+        known = ", ".join(c.name for c in codes().values() if c.soft_stop is not None)
+        raise ConfigError(f"code: no soft stop for {code!r} (known: {known})")
+    name = entry.name
+    plan = fn(folder, reason=why, dry_run=dry_run, prefix=prefix, outdir=outdir)
+    target, text = Path(plan["target"]), plan["text"]
     resolved = target.resolve()
     if not _inside(resolved, folder):
         raise OutputError(f"{folder}: the stop file would be {resolved}, outside the run folder "
@@ -641,6 +580,7 @@ class _Follower:
             self.tracker = self._start(ctx)
         self.source = Path(ctx.path)
         t = self.tracker
+        t.rounding = ctx.rounding
         t.source, t.warnings, t.code_settings, t.title = ctx.path, list(ctx.warnings), \
             dict(ctx.settings), ctx.title
         k = t.replace(frames)
@@ -685,6 +625,7 @@ class _Follower:
         if frames:
             t.replace(frames)
             t.source, t.warnings, t.code_settings = ctx.path, list(ctx.warnings), dict(ctx.settings)
+            t.rounding = ctx.rounding
         final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
         for fl in rules.select(final["flags"], self.stop_codes):

@@ -148,6 +148,7 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
             "warnings": list(run.warnings),
             "fixed_cell": fixed_cell,
             "position_precision": getattr(run, "position_precision", None),
+            "stages": [dict(st) for st in getattr(run, "stages", ())],
         },
         "geometry": {
             "dimension": int(geo.dimension),

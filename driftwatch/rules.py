@@ -458,30 +458,10 @@ def _loose(frames, D, r):
 # ----------------------------------------------------------------------------------------------
 # the code's own symmetry
 # ----------------------------------------------------------------------------------------------
-def _code_symmetry(code_settings: dict, dim: int) -> dict | None:
-    """What the DFT code's own symmetry handling did: ``{"operations", "how", "undo"}`` or None."""
-    cs = code_settings or {}
-    code = cs.get("code")
-    if code == "espresso" and not cs.get("nosym") and cs.get("nsym"):
-        return {"operations": int(cs["nsym"]),
-                "how": f"pw.x kept {cs['nsym']} symmetry operations of the starting structure "
-                       f"(nosym=.false.)", "undo": "nosym=.true."}
-    if code == "vasp" and cs.get("ISYM", 2) not in (0, -1):
-        return {"operations": cs.get("nsym"),
-                "how": f"VASP ran with ISYM={cs.get('ISYM', '2 (default)')}"
-                       + (f", SYMPREC={cs['SYMPREC']:g}" if "SYMPREC" in cs else "")
-                       + (f" and found {cs['nsym']} operations" if cs.get("nsym") else ""),
-                "undo": "ISYM=0"}
-    return None
-
-
 def _held_by_code(record, frames, sv):
     """Only where it changes the reading: a kept non-trivial group under the code's symmetry."""
     dim = record["geometry"]["dimension"]
-    try:
-        from .adapters import symmetry_setting
-    except ImportError:
-        symmetry_setting = _code_symmetry
+    from .adapters.registry import symmetry_setting   # each code's own rule, in its adapter
     info = symmetry_setting(record["run"].get("code_settings") or {}, dim)
     # one-atom slabs always have 4 point operations (2/m with the layer mirror), any bulk lattice 2
     # (inversion): those constrain nothing, so only more than that can hold a symmetry.

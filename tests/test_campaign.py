@@ -291,7 +291,7 @@ def test_reaudit_uses_cache_then_only_new_and_changed_runs(tmp_path):
     # a corrupt cache entry is ignored and recomputed, giving the same record bytes
     before = record_bytes(out)
     entries = [p for p in (out / ".cache").glob("*.json") if p.name != "digests.json"]
-    assert len(entries) == 6          # 5 current runs (2 failed) + the old L-obl result
+    assert len(entries) == 5          # one per run (2 failed); the changed L-obl replaced its own
     for p in entries:
         p.write_text("{ torn")
     s5 = run_audit([camp], out)

@@ -312,8 +312,11 @@ def test_follow_gives_up_without_steps_and_refuses_stop_for_traj(tmp_path):
 def test_tracker_partial_and_rewritten_frames():
     from driftwatch.adapters import iter_frames
     p = Path(__file__).parent / "data" / "qe" / "layer_oblique_to_hex" / "pw.out"
-    frames = list(iter_frames(p))
+    from driftwatch.adapters import ReadContext
+    ctx = ReadContext(p)
+    frames = list(iter_frames(p, context=ctx))
     t = Tracker(None, source=str(p), format="espresso-out")
+    t.rounding = ctx.rounding                  # the printed precision, as the follower passes it
     for n in range(1, len(frames) + 1):
         assert t.replace(frames[:n]) == n - 1
         t.record(newest=False)

@@ -107,7 +107,7 @@ def build_corpus(root: Path) -> list[Case]:
     put("poscar_named_xyz", "relax.xyz", poscar.encode(), r"not an XYZ frame header")
     put("qe_input_named_out", "pw.out", (QE / "relax_atoms_to_sites" / "pw.in").read_bytes(),
         r"no completed ionic step")
-    put("json_not_a_database", "rows.json", b'{"runs": [1, 2, 3]}', r"cannot be read")
+    put("json_not_a_database", "rows.json", b'{"runs": [1, 2, 3]}', r"unknown format")
     # real outputs cut inside their header: nothing completed
     pwo = (QE / "relax_atoms_to_sites" / "pw.out").read_bytes()
     put("pwout_cut_in_header", "pw.out", pwo[:pwo.index(b"Self-consistent Calculation") - 200],
@@ -394,6 +394,9 @@ def test_campaign_of_the_corpus_records_every_bad_run_as_failed(corpus, tmp_path
         s = audit([root], out, workers=1, report=True, progress="off", quiet=True)
     assert list(s["records"]) == [f"{root.name}/zz_good/L09.traj"]
     failed = {f["run"]: f for f in s["failed"]}
+    # a *.json file is a run only when its content is recognised (issue 16: parameter files, notes
+    # and our own records are not runs), so the JSON cases of the corpus are not in the campaign
+    corpus = [c for c in corpus if not c.path.name.endswith(".json")]
     for c in corpus:
         rid = next((k for k in failed if k.split("/")[1] == c.name), None)
         assert rid is not None, f"{c.name} is not a failed run of the campaign"

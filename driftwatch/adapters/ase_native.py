@@ -1,4 +1,5 @@
-"""ASE's own containers: trajectory (.traj), extended XYZ, and rows of an ASE database.
+"""ASE's own containers (trajectory, extended XYZ, ASE database rows) and other codes' outputs that
+ASE reads (LAMMPS text dumps, FHI-aims, CASTEP, GPAW): the generic reader path.
 
 All through ASE's readers. ``.traj`` and extended XYZ stream (``ase.io.iread``);
 extended XYZ is handed only complete lines, so a frame cut in the middle of a
@@ -13,7 +14,8 @@ from ..errors import InputError
 from ._io import Lines
 from .run import ReadContext, frame_from_atoms
 
-__all__ = ["read_traj", "read_extxyz", "read_db", "MAX_ATOMS"]
+__all__ = ["read_traj", "read_extxyz", "read_db", "read_lammps_dump", "read_aims",
+           "read_castep", "read_castep_geom", "read_gpaw", "MAX_ATOMS"]
 
 MAX_ATOMS = 10_000_000
 """A frame header announcing more atoms is refused (a damaged count must not make the reader
@@ -97,6 +99,8 @@ def read_extxyz(path, ctx: ReadContext):
                          f"still being written or cut")
                 return
             _check_properties(block[1], path, fh.lineno - natoms)
+            if n == 0:
+                _note_xyz_rounding(block, ctx)
             atoms = ase.io.read(io.StringIO("".join(block)), format="extxyz")
             yield frame_from_atoms(atoms, _step(atoms, n))
             n += 1
@@ -135,3 +139,132 @@ def read_db(path, ctx: ReadContext):
             atoms = row.toatoms()
             step = row.get("step", i)
             yield frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
+
+
+def _note_xyz_rounding(block, ctx: ReadContext) -> None:
+    """Cartesian columns 2-4 of the first atom line: their printed decimals."""
+    from .run import decimals
+    f = block[2].split() if len(block) > 2 else []
+    d = decimals(f[1]) if len(f) > 3 else None
+    if d is not None:
+        ctx.round_to("cartesian", 10.0 ** -d)
+
+
+# ---------------------------------------------------------------- generic path: through ASE
+def _through_ase(path, ctx: ReadContext, ase_format: str, **kwargs):
+    """Every image ASE's reader returns for ``ase_format`` (a plain or compressed file), as Frames.
+
+    ASE's readers of these formats read the whole file; a truncated file is ASE's to judge."""
+    import io
+    import warnings as _w
+
+    import ase.io
+    from ase.io.formats import ioformats
+    with Lines(path) as fh:
+        text = "".join(fh)
+        cut = fh.cut
+    with _w.catch_warnings():
+        _w.simplefilter("ignore")                # ASE's notes on plugins and code warnings
+        if ioformats[ase_format].acceptsfd:
+            images = ase.io.read(io.StringIO(text), ":", format=ase_format, **kwargs)
+        else:                                    # a reader that opens paths only: the complete
+            import os                            # lines, decompressed, in a private temp file
+            import tempfile
+            fd, tmp = tempfile.mkstemp(prefix="driftwatch-", suffix=".txt")
+            try:
+                with os.fdopen(fd, "w", encoding="utf-8") as out:
+                    out.write(text)
+                images = ase.io.read(tmp, ":", format=ase_format, **kwargs)
+            finally:
+                os.unlink(tmp)
+    if not isinstance(images, list):
+        images = [images]
+    if cut:
+        ctx.warn(f"the last line is cut ({len(images)} steps read); job killed or still running")
+    for i, atoms in enumerate(images):
+        yield frame_from_atoms(atoms, _step(atoms, i))
+
+
+def _lammps_type_map(path, ctx: ReadContext) -> list | None:
+    """Elements by LAMMPS type from ``mass TYPE VALUE`` lines of the input script beside the dump
+    (``in.*``, ``*.in``, ``*.lmp``): the element whose standard atomic mass is nearest (within
+    0.1 u). None when there is no such script."""
+    from pathlib import Path
+
+    import numpy as np
+    from ase.data import atomic_masses, chemical_symbols
+    folder = Path(path).parent
+    ctx.lists(folder)
+    for cand in sorted(folder.iterdir()):
+        n = cand.name
+        if not cand.is_file() or not (n.startswith("in.") or n.endswith((".in", ".lmp"))):
+            continue
+        ctx.uses(cand)
+        masses = {}
+        with Lines(cand) as fh:
+            for line in fh:
+                f = line.split("#", 1)[0].split()
+                if len(f) >= 3 and f[0] == "mass" and f[1].isdigit():
+                    try:
+                        masses[int(f[1])] = float(f[2])
+                    except ValueError:
+                        pass
+        if masses:
+            out = []
+            for t in range(1, max(masses) + 1):
+                if t not in masses:
+                    return None
+                z = int(np.argmin(np.abs(atomic_masses[1:] - masses[t]))) + 1
+                if abs(atomic_masses[z] - masses[t]) > 0.1:
+                    return None
+                out.append(chemical_symbols[z])
+            ctx.settings.setdefault("type_map_from", cand.name)
+            return out
+    return None
+
+
+def read_lammps_dump(path, ctx: ReadContext):
+    """A LAMMPS text dump through ASE. Types become elements through the dump's ``element``
+    column (``dump_modify ... element Cu Ni``), else through the ``mass`` lines of the input
+    script next to it; with neither, the run is refused (ASE would take type 1 as hydrogen)."""
+    head = peek_text(path, 4000)
+    kwargs = {}
+    if "element" not in head.split("ITEM: ATOMS", 1)[-1].split("\n", 1)[0].split():
+        order = _lammps_type_map(path, ctx)
+        if order is None:
+            raise InputError(path, "LAMMPS dump without an 'element' column and no input script "
+                                   "with 'mass' lines beside it: the atom types cannot be named "
+                                   "(add 'element' to the dump and dump_modify ... element A B)")
+        kwargs["specorder"] = order
+    ctx.settings.update({"code": "lammps"})
+    yield from _through_ase(path, ctx, "lammps-dump-text", **kwargs)
+
+
+def read_aims(path, ctx: ReadContext):
+    """FHI-aims standard output through ASE (every relaxation step)."""
+    ctx.settings.update({"code": "aims"})
+    ctx.round_to("cartesian", 1e-8)              # aims prints 'atom' lines with %.8f (Å)
+    yield from _through_ase(path, ctx, "aims-output")
+
+
+def read_castep(path, ctx: ReadContext):
+    """CASTEP .castep output through ASE."""
+    ctx.settings.update({"code": "castep"})
+    yield from _through_ase(path, ctx, "castep-castep")
+
+
+def read_castep_geom(path, ctx: ReadContext):
+    """CASTEP .geom (geometry optimisation) through ASE."""
+    ctx.settings.update({"code": "castep"})
+    yield from _through_ase(path, ctx, "castep-geom")
+
+
+def read_gpaw(path, ctx: ReadContext):
+    """GPAW text output through ASE."""
+    ctx.settings.update({"code": "gpaw"})
+    yield from _through_ase(path, ctx, "gpaw-out")
+
+
+def peek_text(path, size: int) -> str:
+    from ._io import peek
+    return peek(path, size).decode("utf-8", "replace")

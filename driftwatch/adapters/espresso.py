@@ -36,9 +36,10 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import Lines, peek, strip_compression, tail_bytes
-from .run import Frame, ReadContext
+from .run import Frame, ReadContext, decimals
 
-__all__ = ["read_pw_out", "read_pw_in_settings", "pick_from_folder"]
+__all__ = ["read_pw_out", "read_pw_input", "read_pw_in_settings", "pick_from_folder",
+           "stop_settings", "symmetry_setting", "END_MARKERS"]
 
 _START = "Program PWSCF"
 _SCF_START = ("Self-consistent Calculation", "iteration #", "!    total energy")
@@ -151,6 +152,24 @@ def _plain_positions(header, rows, cell, alat):
     except (ValueError, IndexError):
         return None
     return np.array(out, float)
+
+
+def _note_rounding(ctx: ReadContext, header: str, row: str, alat) -> None:
+    """The last printed digit of an ATOMIC_POSITIONS card, in its units (see Run.position_precision)."""
+    f = row.split()
+    d = decimals(f[1]) if len(f) > 1 else None
+    if d is None:
+        return
+    low = header.lower()
+    step = 10.0 ** -d
+    if "crystal" in low:
+        ctx.round_to("fractional", step)
+    elif "bohr" in low:
+        ctx.round_to("cartesian", step * _units()[0])
+    elif "angstrom" in low:
+        ctx.round_to("cartesian", step)
+    elif alat is not None:
+        ctx.round_to("cartesian", step * alat)
 
 
 def read_pw_out(path, ctx: ReadContext):
@@ -271,6 +290,7 @@ def read_pw_out(path, ctx: ReadContext):
                 if block is None:
                     break
                 cell = pending_cell if pending_cell is not None else cur.cell
+                _note_rounding(ctx, line, block[0], alat)
                 pos = _plain_positions(line, block, cell, alat)
                 if pos is None:     # expressions, odd units, damaged rows: ASE decides
                     card = get_atomic_positions([line] + block, n_atoms=natoms, cell=cell,
@@ -296,42 +316,67 @@ def read_pw_out(path, ctx: ReadContext):
 
 
 # ---------------------------------------------------------------- settings
-def read_pw_in_settings(path) -> dict:
-    """calculation, nosym, noinv, cell_dofree from a pw.x input file (defaults filled)."""
+def read_pw_input(path) -> dict:
+    """The pw.x input's namelists as ASE's namelist reader reads them (plain or compressed), with
+    pw.x's defaults for what driftwatch uses: ``calculation``, ``nosym``, ``noinv``,
+    ``cell_dofree`` (vc-relax or when given), ``prefix`` ("pwscf") and ``outdir`` ("./")."""
+    import io
     from ase.io.espresso import read_fortran_namelist
     with Lines(path) as fh:
-        import io
         data, _ = read_fortran_namelist(io.StringIO("".join(fh)))
     control, system, cell = (data.get(k, {}) for k in ("control", "system", "cell"))
     out = {"code": "espresso",
            "calculation": str(control.get("calculation", "scf")).strip().lower(),
            "nosym": bool(system.get("nosym", False)),
-           "noinv": bool(system.get("noinv", False))}
+           "noinv": bool(system.get("noinv", False)),
+           "prefix": str(control.get("prefix", "pwscf")).strip().strip("'\""),
+           "outdir": str(control.get("outdir", "./")).strip().strip("'\"")}
     if out["calculation"] == "vc-relax" or "cell_dofree" in cell:
         out["cell_dofree"] = str(cell.get("cell_dofree", "all")).strip()
     return out
 
 
-def _input_for(out_path: Path):
+def read_pw_in_settings(path) -> dict:
+    """The symmetry-related settings of a pw.x input (``read_pw_input`` without prefix/outdir)."""
+    got = read_pw_input(path)
+    got.pop("prefix")
+    got.pop("outdir")
+    return got
+
+
+def _input_for(out_path: Path, ctx: ReadContext | None = None):
+    """The pw.x input of an output: ``<stem>.in``, ``<stem>.pwi``, ``pw.in`` (any compression),
+    else the only ``*.in`` in the folder that holds ``&control`` or ``&system``."""
     folder = out_path.parent
+    if ctx is not None:
+        ctx.lists(folder)
     stem = strip_compression(out_path.name).rsplit(".", 1)[0]
     for name in (stem + ".in", stem + ".pwi", "pw.in"):
-        p = folder / name
-        if p.is_file():
-            return p
-    ins = [p for p in folder.glob("*.in") if _looks_like_pw_in(p)]
+        for ext in ("", ".gz", ".bz2", ".xz"):
+            p = folder / (name + ext)
+            if p.is_file():
+                return p
+    ins = [p for p in sorted(folder.iterdir()) if _is_input_name(p.name) and p.is_file()
+           and _looks_like_pw_in(p, ctx)]
     return ins[0] if len(ins) == 1 else None
 
 
-def _looks_like_pw_in(p: Path) -> bool:
+def _is_input_name(name: str) -> bool:
+    return strip_compression(name).endswith((".in", ".pwi", ".inp"))
+
+
+def _looks_like_pw_in(p: Path, ctx: ReadContext | None = None) -> bool:
+    if ctx is not None:
+        ctx.uses(p)
     head = peek(p, 20000).lower()
     return b"&control" in head or b"&system" in head
 
 
 def _settings_from_input(path, ctx: ReadContext) -> None:
-    pin = _input_for(Path(path))
+    pin = _input_for(Path(path), ctx)
     if pin is None:
         return
+    ctx.uses(pin)
     try:
         got = read_pw_in_settings(pin)
     except Exception as exc:  # a broken input must not stop reading the output
@@ -342,29 +387,133 @@ def _settings_from_input(path, ctx: ReadContext) -> None:
 
 
 # ---------------------------------------------------------------- folders
-def _is_pw_out(p: Path) -> bool:
-    return p.is_file() and b"Program PWSCF" in peek(p, 4000)
+_OUT_SUFFIXES = (".out", ".pwo", ".log")
 
 
-def pick_from_folder(folder: Path, format=None):
-    """The pw.x output of a QE run folder (None if there is none).
+def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
+    if ctx is not None:
+        ctx.uses(p)
+    try:
+        return p.is_file() and b"Program PWSCF" in peek(p, 4000)
+    except OSError:
+        return False
 
-    Candidates: ``*.out``, ``*.pwo``, ``*.log`` (optionally compressed) that start
-    like a pw.x output. With several, the complete ones (JOB DONE) win, then the
-    newest; the others are named in a warning.
-    """
+
+def pw_outputs(folder: Path, names, ctx: ReadContext | None = None) -> list[Path]:
+    """The files of ``folder`` named ``*.out``, ``*.pwo``, ``*.log`` (any compression) that start
+    like a pw.x output."""
+    return [folder / n for n in names
+            if strip_compression(n).endswith(_OUT_SUFFIXES) and _is_pw_out(folder / n, ctx)]
+
+
+def pick_from_folder(folder: Path, names, format=None, ctx=None):
+    """A QE run folder holds exactly one pw.x output (``*.out``, ``*.pwo``, ``*.log``, any
+    compression); its ``pw.in`` (or ``<stem>.in``) gives the settings. A folder with several pw.x
+    outputs is not one run: each output is a run of its own (discovery lists them all)."""
+    from .registry import FolderPick
     if format is not None and format != "espresso-out":
         return None
-    cands = []
-    for pat in ("*.out", "*.pwo", "*.log", "*.out.gz", "*.pwo.gz", "*.out.bz2", "*.out.xz"):
-        cands += [p for p in folder.glob(pat) if _is_pw_out(p)]
-    cands = sorted(set(cands))
-    if not cands:
+    outs = pw_outputs(folder, names, ctx)
+    if len(outs) != 1:
         return None
-    if len(cands) == 1:
-        return cands[0], "espresso-out", ()
-    ranked = sorted(cands, key=lambda p: (b"JOB DONE" in tail_bytes(p, 4096),
-                                          p.stat().st_mtime), reverse=True)
-    others = ", ".join(p.name for p in ranked[1:])
-    return ranked[0], "espresso-out", (f"{folder}: {len(cands)} pw.x outputs; read "
-                                       f"{ranked[0].name} (also there: {others})",)
+    return FolderPick([("", outs[0], "espresso-out")])
+
+
+# ---------------------------------------------------------------- live: end, soft stop
+END_MARKERS = {
+    "espresso-out": ((re.compile(rb"JOB DONE\."), "JOB DONE."),
+                     (re.compile(rb"Error in routine[\s\S]*stopping \.\.\."), "pw.x error banner")),
+}
+_SAVE_DIR = re.compile(rb"Writing output data file (\S*?)([^/\s]+)\.save/?\s*$", re.M)
+
+
+def stop_settings(run_dir, prefix=None, outdir=None) -> dict:
+    """``{"prefix", "outdir", "from"}`` of a pw.x run folder, for the ``<prefix>.EXIT`` file.
+
+    Explicit arguments win; then the folder's pw.x inputs (``pw.in``, ``*.pwi``, ``*.in``,
+    ``*.inp`` holding ``&control``, read by :func:`read_pw_input`); then the output's ``Writing
+    output data file OUTDIR/PREFIX.save/`` line; then pw.x's defaults ``pwscf`` and ``./``.
+    Several inputs with different prefix/outdir raise ``OutputError``.
+    """
+    from ..errors import OutputError
+    run_dir = Path(run_dir)
+    found: dict = {}
+    where = "pw.x defaults"
+    if prefix is None or outdir is None:
+        sets = {}
+        for p in sorted(run_dir.iterdir()):
+            if not (p.is_file() and _is_input_name(p.name)) or b"&control" not in \
+                    peek(p, 50_000).lower():
+                continue
+            try:
+                got = read_pw_input(p)
+            except Exception:  # noqa: BLE001 - not a pw.x input after all
+                continue
+            sets[p.name] = (got["prefix"], got["outdir"])
+        if len(set(sets.values())) > 1:
+            raise OutputError(f"{run_dir}: several pw.x inputs with different prefix/outdir "
+                              f"({', '.join(sets)}); pass prefix= and outdir=")
+        if sets:
+            name, (pf, od) = next(iter(sets.items()))
+            found, where = {"prefix": pf, "outdir": od}, name
+        else:
+            for out in sorted(run_dir.glob("*.out")) + sorted(run_dir.glob("*.pwo")):
+                m = None
+                for m in _SAVE_DIR.finditer(tail_bytes(out, 200_000)):
+                    pass
+                if m:
+                    od = m.group(1).decode(errors="replace").rstrip("/") or "."
+                    found, where = {"prefix": m.group(2).decode(errors="replace"), "outdir": od}, \
+                        out.name
+                    break
+    return {"prefix": prefix if prefix is not None else found.get("prefix", "pwscf"),
+            "outdir": outdir if outdir is not None else found.get("outdir", "./"),
+            "from": "arguments" if prefix is not None and outdir is not None else where}
+
+
+def soft_stop(run_dir, *, reason: str, dry_run: bool = False, prefix=None, outdir=None,
+              **_options) -> dict:
+    """pw.x's documented soft stop: ``<prefix>.EXIT`` in its ``outdir`` (from the folder's input,
+    :func:`stop_settings`), holding the reason. pw.x 6.7 checks for it at each SCF iteration,
+    stops, writes its data and deletes the file. Returns ``{"target", "text"}``."""
+    from ..errors import OutputError
+    s = stop_settings(run_dir, prefix, outdir)
+    if not re.fullmatch(r"[\w.+-]+", s["prefix"]) or s["prefix"] in (".", ".."):
+        raise OutputError(f"{run_dir}: pw.x prefix {s['prefix']!r} is not a plain file name")
+    return {"target": Path(run_dir) / s["outdir"] / f"{s['prefix']}.EXIT",
+            "text": f"driftwatch soft stop: {reason}\n"}
+
+
+# ---------------------------------------------------------------- symmetry setting
+def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
+    """pw.x's own symmetry handling: on unless ``nosym = .true.`` (pw.x then symmetrises forces,
+    stress and charge density with the ``nsym`` operations it kept, and keeps them through a
+    relaxation); None when nosym is set or nothing is known (no input read, no count printed)."""
+    s = code_settings or {}
+    if s.get("nosym") is True:
+        return None
+    n = s.get("nsym")
+    if n is None and "nosym" not in s:
+        return None
+    kept = ("1 symmetry operation (the identity only)" if n == 1 else
+           f"{n} symmetry operations" if n else "the symmetry operations it found")
+    extra = "" if dimension != 2 else " of the slab's 3D cell"
+    return {"operations": None if n is None else int(n),
+            "how": f"pw.x kept {kept}{extra} (nosym=.false.)",
+            "undo": "nosym=.true."}
+
+
+# ---------------------------------------------------------------- registration
+def register_all(register, register_code) -> None:
+    """The pw.x row of the format table and the pw.x entry of the code table."""
+    from .registry import Code
+    register("espresso-out", __name__ + ":read_pw_out", globs=("*.pwo", "*pw*.out"),
+             magic=rb"Program PWSCF", description="Quantum ESPRESSO pw.x output")
+    register_code(Code(
+        name="espresso", label="Quantum ESPRESSO pw.x",
+        aliases=("qe", "pw.x", "pwscf", "quantum-espresso"),
+        formats=("espresso-out",), folder=__name__ + ":pick_from_folder",
+        run_files=("*.out*", "*.pwo*", "*.log*", "*.in*", "*.pwi*"),
+        settings_files=("*.in", "*.pwi", "*.inp"),
+        end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
+        symmetry_setting=__name__ + ":symmetry_setting"), replace=True)

@@ -17,7 +17,7 @@ from ..errors import InputError
 from ._io import open_bytes
 from .run import Frame, ReadContext
 
-__all__ = ["read_structures"]
+__all__ = ["read_structures", "read_task_doc"]
 
 
 def _items(data, path, ctx):
@@ -90,3 +90,79 @@ def read_structures(path, ctx: ReadContext):
             raise InputError(path, f"item {i}: energy/forces are not numbers ({exc})") from None
         yield Frame(cell=cell, positions=positions, numbers=numbers, pbc=pbc, step=i,
                     energy=energy, forces=forces)
+
+
+# ---------------------------------------------------------------- workflow task documents
+_TASK_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW")
+
+
+def _pmg_structure(item, path, where):
+    """Cell, cartesian positions, numbers and pbc of a Structure dict, built by pymatgen from the
+    dict's plain fields (lattice matrix, species, fractional coordinates; never ``from_dict``,
+    whose decoder imports modules a file names)."""
+    from pymatgen.core import Lattice, Structure
+    cell, _, _, pbc = _structure_arrays(item, path, where)
+    species = [str(site["species"][0]["element"]) for site in item["sites"]]
+    frac = [site["abc"] if "abc" in site else None for site in item["sites"]]
+    if any(f is None for f in frac):
+        frac = np.linalg.solve(cell.T, np.array([s["xyz"] for s in item["sites"]], float).T).T
+    st = Structure(Lattice(cell, pbc=tuple(bool(x) for x in pbc)), species, frac)
+    return (np.array(st.lattice.matrix, float), np.array(st.cart_coords, float),
+            np.array(st.atomic_numbers, int), np.array(pbc, bool))
+
+
+def read_task_doc(path, ctx: ReadContext):
+    """A workflow task document (as the Materials Project's workflow tools store them): JSON or
+    JSON.gz with ``calcs_reversed[].output.ionic_steps[]`` (``structure``, ``e_fr_energy``,
+    ``forces``, ``stress`` in kBar). The calculations run oldest first (``calcs_reversed`` is newest
+    first); each is a stage, steps numbered on across them. A list of documents is refused (give
+    one document per file). Structures are built with pymatgen from the plain fields."""
+    from ase.units import GPa
+    with open_bytes(path) as fh:
+        try:
+            doc = json.load(fh)
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise InputError(path, f"not valid JSON ({exc}); a cut file cannot be read "
+                                   f"in part") from None
+    if isinstance(doc, list):
+        raise InputError(path, f"a list of {len(doc)} task documents: driftwatch reads one "
+                               f"document per file")
+    calcs = doc.get("calcs_reversed") if isinstance(doc, dict) else None
+    if not isinstance(calcs, list) or not calcs:
+        raise InputError(path, "no calcs_reversed list: not a task document with ionic steps")
+    title = doc.get("formula_pretty") or doc.get("task_id")
+    ctx.title = None if title is None else str(title)
+    step, stages = 0, []
+    for k, calc in enumerate(reversed(calcs)):
+        out = (calc or {}).get("output") or {}
+        steps = out.get("ionic_steps") or []
+        name = str(calc.get("task_name") or f"calc{k + 1}")
+        params = ((calc.get("input") or {}).get("parameters") or
+                  (calc.get("input") or {}).get("incar") or {})
+        settings = {key: params[key] for key in _TASK_KEYS if params.get(key) is not None}
+        if settings:
+            ctx.settings.update({"code": "vasp", **settings, "settings_from": f"{name} input"})
+        n0 = step
+        for i, ion in enumerate(steps):
+            item = (ion or {}).get("structure")
+            if not isinstance(item, dict):
+                raise InputError(path, f"{name}: ionic step {i} has no structure (a stripped "
+                                       f"document)")
+            cell, pos, numbers, pbc = _pmg_structure(item, path, f"{name} step {i}")
+            energy = ion.get("e_fr_energy", ion.get("e_0_energy"))
+            forces = ion.get("forces")
+            stress = ion.get("stress")
+            try:
+                energy = None if energy is None else float(energy)
+                forces = None if forces is None else np.array(forces, float)
+                if stress is not None:
+                    stress = (np.array(stress, float) * (-0.1 * GPa)).reshape(9)[[0, 4, 8, 5, 2, 1]]
+            except (TypeError, ValueError) as exc:
+                raise InputError(path, f"{name} step {i}: energy/forces/stress are not numbers "
+                                       f"({exc})") from None
+            yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
+                        energy=energy, forces=forces, stress=stress)
+            step += 1
+        stages.append((name, step - n0))
+    if len(stages) > 1:
+        ctx.file_stages = stages

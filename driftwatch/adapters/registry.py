@@ -1,9 +1,18 @@
-"""The adapter registry: one table of formats, detection, and the two entry points.
+"""The adapter registry: a table of formats, a table of codes, detection, and the entry points.
 
-Detection order (first that decides wins):
+**Formats** (:func:`register`) say how one file is read. **Codes** (:func:`register_code`, a
+:class:`Code` per DFT code, defined in the code's own module: ``vasp.py``, ``espresso.py``) say
+everything else a program needs to know about a code: which folders are its run folders and which
+file (or files, one per stage) of such a folder to read, the files its settings live in, the text
+it prints when a job ends, its soft stop, and its own symmetry handling. Discovery
+(:func:`scan_folder`) is shared by ``read_run(folder)``, ``driftwatch inspect`` and the campaign
+audit, so all three see the same runs.
+
+Detection order for a path (first that decides wins):
 
 1. the ``format`` the caller names;
-2. folder rules, when ``path`` is a directory (a VASP or Quantum ESPRESSO run folder);
+2. for a directory: the codes' folder rules (a VASP or pw.x run folder, with its stages), else the
+   one file in it that a format recognises;
 3. "magic": a bytes regular expression searched in the first 50 kB (decompressed);
 4. filename globs, matched case-insensitively on the name without ``.gz/.bz2/.xz``.
 
@@ -24,16 +33,17 @@ import inspect
 import os
 import re
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
 from ..errors import DriftwatchError, InputError, UnknownFormatError
 from ._io import peek, strip_compression
-from .run import Frame, ReadContext, Run, checked, collect
+from .run import Frame, ReadContext, Run, checked, collect, folder_listing, position_precision
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
-           "ENTRY_POINT_GROUP"]
+           "ENTRY_POINT_GROUP", "Code", "FolderPick", "register_code", "codes", "code_of_format",
+           "scan_folder", "symmetry_setting", "recognised"]
 
 PEEK_BYTES = 50_000
 ENTRY_POINT_GROUP = "driftwatch.adapters"
@@ -64,9 +74,57 @@ class Format:
         return reader(path, ctx) if nparams >= 2 else reader(path)
 
 
+@dataclass
+class FolderPick:
+    """What a code's folder rule chose in a run folder: one ``(stage name, file, format)`` per stage
+    in the order the stages ran (one entry, named ``""``, for a single-stage run), and notes."""
+
+    stages: list
+    warnings: tuple = ()
+
+
+@dataclass
+class Code:
+    """Everything driftwatch knows about one DFT code (one row of the code table).
+
+    Functions may be given as ``"module:function"`` strings (imported on first use).
+
+    * ``folder(folder: Path, names: list[str], format: str | None, ctx) -> FolderPick | None``:
+      is this a run folder of the code (``names``: the folder's non-hidden file names), and which
+      file(s) to read. It calls ``ctx.uses(path)`` for every file whose content decides the pick.
+    * ``run_files``: globs of the files a run folder of this code may read (outputs and settings),
+      for ordering work by size; the cache itself keys on the files the readers record.
+    * ``settings_files``: globs of the input files the readers take settings from.
+    * ``end_markers``: ``{format: ((bytes regex, label), ...)}`` printed once when a job ends
+      (searched in the last 8 kB).
+    * ``soft_stop(run_dir, *, reason, dry_run, **options) -> dict``: ask a running job to stop
+      itself cleanly (see :func:`driftwatch.live.request_stop`).
+    * ``symmetry_setting(code_settings, dimension) -> dict | None``: the code's own symmetry
+      handling when it was on (``{"operations", "how", "undo"}``), None when off or unknown.
+    """
+
+    name: str
+    label: str
+    formats: tuple
+    folder: Callable | str
+    run_files: tuple = ()
+    settings_files: tuple = ()
+    end_markers: dict = field(default_factory=dict)
+    soft_stop: Callable | str | None = None
+    symmetry_setting: Callable | str | None = None
+    aliases: tuple = ()
+
+    def function(self, attr: str) -> Callable | None:
+        fn = getattr(self, attr)
+        if isinstance(fn, str):
+            mod, _, name = fn.partition(":")
+            fn = getattr(importlib.import_module(mod), name)
+            setattr(self, attr, fn)
+        return fn
+
+
 _formats: dict[str, Format] = {}
-_folder_rules: list = ["driftwatch.adapters.vasp:pick_from_folder",
-                       "driftwatch.adapters.espresso:pick_from_folder"]
+_codes: dict[str, Code] = {}
 _plugins_loaded = False
 
 
@@ -83,6 +141,43 @@ def register(name: str, reader, *, globs=(), magic=None, description: str = "",
     if isinstance(magic, (bytes, str)):
         magic = re.compile(magic if isinstance(magic, bytes) else magic.encode(), re.M)
     _formats[name] = Format(name, reader, tuple(globs), magic, description)
+
+
+def register_code(code: Code, *, replace: bool = False) -> None:
+    """Add a code to the code table (its formats are registered with :func:`register`)."""
+    if code.name in _codes and not replace:
+        raise ValueError(f"code {code.name!r} is already registered (pass replace=True)")
+    _codes[code.name] = code
+
+
+def codes() -> dict[str, Code]:
+    """The code table: name -> :class:`Code`."""
+    _load_plugins()
+    return dict(_codes)
+
+
+def code_of_format(fmt: str | None) -> Code | None:
+    """The code whose outputs ``fmt`` reads (None for formats of no registered code)."""
+    for c in codes().values():
+        if fmt in c.formats:
+            return c
+    return None
+
+
+def _code_named(name) -> Code | None:
+    name = str(name or "").lower()
+    for c in codes().values():
+        if name == c.name or name in c.aliases:
+            return c
+    return None
+
+
+def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
+    """The code's own symmetry handling of a run (see :class:`Code`), from its ``code_settings``;
+    None when it was off, unknown, or the code has no such rule."""
+    code = _code_named((code_settings or {}).get("code"))
+    fn = code.function("symmetry_setting") if code is not None else None
+    return fn(code_settings, dimension) if fn is not None else None
 
 
 def formats() -> dict[str, str]:
@@ -104,6 +199,17 @@ def _load_plugins() -> None:
         return
     for ep in eps:
         _register_entry_point(ep)
+    try:
+        code_eps = entry_points(group=ENTRY_POINT_GROUP + ".codes")
+    except Exception:  # noqa: BLE001 - as above
+        code_eps = ()
+    for ep in code_eps:
+        try:
+            obj = ep.load()
+            register_code(obj if isinstance(obj, Code) else Code(**dict(obj)))
+        except Exception as exc:  # noqa: BLE001 - a broken plugin warns, never raises
+            warnings.warn(f"driftwatch: failed to register external code {ep.name!r} "
+                          f"({ep.value}): {type(exc).__name__}: {exc}")
 
 
 def _register_entry_point(ep) -> None:
@@ -146,21 +252,35 @@ def _detect_file(path: Path) -> str:
 
 @dataclass
 class _Pick:
-    source: Path
-    format: str
+    stages: list            # [(name, source Path, format)]
     run_dir: Path | None
     warnings: tuple = ()
+    selection: str | None = None
+
+    @property
+    def source(self) -> Path:
+        return self.stages[-1][1]
+
+    @property
+    def format(self) -> str:
+        return self.stages[-1][2]
 
 
-def _resolve(path, format=None) -> _Pick:
-    _load_plugins()
-    path = Path(path)
-    selection = None
-    if not path.exists() and "@" in path.name:          # rows of an ASE database: file.db@key=value
+def _split_selection(path: Path):
+    """``file.db@key=value`` (ase.db rows) or ``FOLDER@stage`` -> (base, selection)."""
+    if not path.exists() and "@" in path.name:
         base, _, selection = str(path).rpartition("@")
         if Path(base).exists():
-            path = Path(base)
+            return Path(base), selection
+    return path, None
+
+
+def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
+    _load_plugins()
+    ctx = ctx if ctx is not None else ReadContext(path)
+    path, selection = _split_selection(Path(path))
     if not path.exists():
+        ctx.uses(path)
         if path.is_symlink():
             raise InputError(path, "broken symbolic link (its target is missing, or the link "
                                    "points back to itself)")
@@ -170,63 +290,123 @@ def _resolve(path, format=None) -> _Pick:
             next(iter(os.scandir(path)), None)
         except OSError as exc:
             raise InputError(path, f"cannot list folder ({exc.strerror or exc})") from None
-        pick = _pick_folder(path, format)
+        pick = _pick_folder(path, format, ctx)
+        if selection:
+            pick = _select_stage(pick, selection, path)
+            selection = None
     else:
+        ctx.uses(path)
         try:
             with open(path, "rb"):
                 pass
         except OSError as exc:
             raise InputError(path, f"cannot open ({exc.strerror or exc})") from None
-        if format is None:
-            fmt = _detect_file(path)
-        else:
-            fmt = format
-        pick = _Pick(path, fmt, None)
-    if pick.format not in _formats:
-        raise UnknownFormatError(pick.source, f"unknown format {pick.format!r} "
-                                              f"(known formats: {_known()})")
-    if selection:
-        pick.source = Path(f"{pick.source}@{selection}")
+        fmt = _detect_file(path) if format is None else format
+        pick = _Pick([("", path, fmt)], None)
+    for _, src, fmt in pick.stages:
+        if fmt not in _formats:
+            raise UnknownFormatError(src, f"unknown format {fmt!r} (known formats: {_known()})")
+    pick.selection = selection
     return pick
 
 
-def _pick_folder(path: Path, format=None) -> _Pick:
-    picks = []
-    for rule in _folder_rules:
-        if isinstance(rule, str):
-            mod, _, fn = rule.partition(":")
-            rule = getattr(importlib.import_module(mod), fn)
-        got = rule(path, format)
+def _select_stage(pick: _Pick, selection: str, folder: Path) -> _Pick:
+    names = [n for n, _, _ in pick.stages]
+    if selection in names:
+        k = names.index(selection)
+    elif selection.isdigit() and 1 <= int(selection) <= len(names):
+        k = int(selection) - 1
+    else:
+        have = ", ".join(n or "(single stage)" for n in names)
+        raise InputError(folder, f"no stage {selection!r} (stages: {have})")
+    return _Pick([pick.stages[k]], pick.run_dir, pick.warnings)
+
+
+def recognised(path, name: str | None = None) -> bool:
+    """True when a format recognises the file (magic or glob); a broken file counts when its name
+    says what it should be (so that its reader reports the problem)."""
+    name = Path(path).name if name is None else name
+    try:
+        detect(path)
+        return True
+    except UnknownFormatError:
+        return False
+    except (InputError, OSError):
+        low = strip_compression(name).lower()
+        return any(fnmatch.fnmatchcase(low, g.lower()) for f in _formats.values() for g in f.globs)
+
+
+def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None):
+    """What a folder holds, as discovery sees it: ``("run", FolderPick)`` when a code claims it as a
+    run folder (its stages included), ``("ambiguous", [files])`` when several codes do, else
+    ``("files", [file names a format recognises])``.
+
+    ``names``: the folder's non-hidden regular file names (listed here when None).
+    """
+    _load_plugins()
+    folder = Path(folder)
+    ctx = ctx if ctx is not None else ReadContext(folder)
+    ctx.lists(folder)
+    if names is None:
+        names = sorted(e.name for e in os.scandir(folder)
+                       if not e.name.startswith(".") and _is_file(e))
+    claims = []
+    for code in _codes.values():
+        got = code.function("folder")(folder, list(names), format, ctx)
         if got is not None:
-            picks.append(got)
-    if not picks:
-        picks = _generic_folder_pick(path, format)
-    if not picks:
+            claims.append(got)
+    if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
+        return "ambiguous", [st[1].name for c in claims for st in c.stages]
+    if claims:
+        return "run", claims[0]
+    files = []
+    for n in names:
+        p = folder / n
+        if format is None:
+            ok = recognised(p, n)
+        else:
+            low = strip_compression(n).lower()
+            f = _formats.get(format)
+            ok = f is not None and any(fnmatch.fnmatchcase(low, g.lower()) for g in f.globs)
+            ok = ok or (_safe_detect(p) == format)
+        if ok:
+            files.append(n)
+    return "files", files
+
+
+def _safe_detect(p):
+    try:
+        return detect(p)
+    except (InputError, OSError):
+        return None
+
+
+def _is_file(entry) -> bool:
+    try:
+        return entry.is_file()
+    except OSError:
+        return False
+
+
+def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
+    kind, got = scan_folder(path, format=format, ctx=ctx)
+    if kind == "ambiguous":
+        raise InputError(path, f"ambiguous run folder: outputs of several codes ({', '.join(got)}); "
+                               f"pass the file itself")
+    if kind == "run":
+        return _Pick(list(got.stages), path, tuple(got.warnings))
+    if not got:
         hint = f" readable as {format!r}" if format else ""
         raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "
-                               f"CONTCAR/POSCAR) or pw.x output{hint} found")
-    if len(picks) > 1:
-        names = ", ".join(p[0].name for p in picks)
-        raise InputError(path, f"ambiguous run folder: several candidate outputs ({names}); "
+                               f"CONTCAR/POSCAR), pw.x output or other trajectory{hint} found")
+    if len(got) > 1:
+        shown = ", ".join(got[:8]) + (f", ... ({len(got)} in all)" if len(got) > 8 else "")
+        raise InputError(path, f"ambiguous run folder: it holds {len(got)} runs ({shown}); "
                                f"pass the file itself")
-    source, fmt, warns = picks[0]
-    return _Pick(Path(source), fmt, path, tuple(warns))
-
-
-def _generic_folder_pick(path: Path, format=None) -> list:
-    """A folder holding exactly one trajectory of another registered format (e.g. the
-    ``.traj`` of an ASE-driven relaxation), matched by the formats' globs."""
-    found = []
-    for p in sorted(path.iterdir()):
-        if not p.is_file():
-            continue
-        name = strip_compression(p.name).lower()
-        for f in _formats.values():
-            if (format is None or f.name == format) and \
-                    any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
-                found.append((p, f.name, ()))
-                break
-    return found
+    source = path / got[0]
+    if ctx is not None:
+        ctx.uses(source)
+    return _Pick([("", source, format or detect(source))], path)
 
 
 def detect(path) -> str:
@@ -235,84 +415,138 @@ def detect(path) -> str:
 
 
 # ---------------------------------------------------------------- reading
-def _stream(pick: _Pick, ctx: ReadContext) -> Iterator[Frame]:
+def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
     """Frames from the reader; reader failures become InputError, or a warning after frames."""
-    fmt = _formats[pick.format]
+    fmt = _formats[fmt_name]
+    ctx.uses(str(source).rpartition("@")[0] if not Path(source).exists() and "@" in str(source)
+             else source)
     n = 0
     last = None
     try:
-        for fr in checked(fmt.open(str(pick.source), ctx), pick.source):
+        for fr in checked(fmt.open(str(source), ctx), source):
             n += 1
             last = fr.step
             yield fr
     except DriftwatchError:
         raise
     except Exception as exc:
-        what = fmt.description or pick.format
+        what = fmt.description or fmt_name
         why = " ".join(str(exc).split())            # one line, whatever the library printed
         why = why if len(why) <= 300 else why[:297] + "..."
         if n == 0:
-            raise InputError(pick.source, f"cannot be read as {what}: "
-                                          f"{type(exc).__name__}: {why}") from exc
+            raise InputError(source, f"cannot be read as {what}: "
+                                     f"{type(exc).__name__}: {why}") from exc
         ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})")
+
+
+def _source_of(pick: _Pick, src: Path) -> str:
+    return f"{src}@{pick.selection}" if pick.selection else str(src)
+
+
+def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> Iterator[Frame]:
+    """Every completed step of every stage, steps numbered on across stages."""
+    import dataclasses
+    offset, index, first_numbers = 0, 0, None
+    for name, src, fmt in pick.stages:
+        ctx.path = _source_of(pick, src)
+        n, last = 0, None
+        for fr in _stream(fmt, ctx.path, ctx):
+            if first_numbers is None:
+                first_numbers = fr.numbers
+            elif len(pick.stages) > 1 and n == 0 and not _same_atoms(first_numbers, fr.numbers):
+                raise InputError(src, f"stage {name} holds other atoms than the stage before it; "
+                                      f"read the stages one by one ({pick.run_dir}@{name})")
+            if offset:
+                fr = dataclasses.replace(fr, step=fr.step + offset)
+            n, last = n + 1, fr.step
+            yield fr
+        if stages_out is not None and len(pick.stages) > 1:
+            stages_out.append({"name": name, "source": str(src), "format": fmt,
+                               "first_frame": index, "n_frames": n, "step_offset": offset})
+        index += n
+        if last is not None:
+            offset = last + 1
+
+
+def _same_atoms(a, b) -> bool:
+    import numpy as np
+    return len(a) == len(b) and bool(np.array_equal(np.asarray(a), np.asarray(b)))
 
 
 def iter_frames(path, format=None, *, context: ReadContext | None = None) -> Iterator[Frame]:
     """Stream the completed ionic steps of ``path`` (a file or run folder) as Frames.
 
-    Never yields an incomplete step, so it is safe on a file that is still being
-    written. Pass a :class:`ReadContext` as ``context`` to receive warnings and the
-    code settings. Raises ``InputError`` when no step is complete.
+    Never yields an incomplete step, so it is safe on a file that is still being written. Stages
+    of a multi-stage run follow each other (steps numbered on). Pass a :class:`ReadContext` as
+    ``context`` to receive warnings, the code settings and the files read. Raises ``InputError``
+    when no step is complete.
     """
-    pick = _resolve(path, format)
-    ctx = context if context is not None else ReadContext(pick.source)
-    ctx.path = str(pick.source)
+    ctx = context if context is not None else ReadContext(path)
+    pick = _resolve(path, format, ctx)
+    ctx.path = _source_of(pick, pick.source)
     for w in pick.warnings:
         ctx.warn(w)
     n = 0
-    for fr in _stream(pick, ctx):
+    for fr in _frames(pick, ctx):
         n += 1
         yield fr
+    ctx.path = _source_of(pick, pick.source)
     if n == 0:
         detail = f" ({ctx.warnings[-1].split(': ', 1)[-1]})" if ctx.warnings else ""
         raise InputError(pick.source, "no completed ionic step" + detail)
 
 
-def read_run(path, format=None) -> Run:
+def read_run(path, format=None, *, context: ReadContext | None = None) -> Run:
     """Read every completed ionic step of a file or run folder into a :class:`Run`.
 
-    ``format`` overrides detection (see :func:`formats`). For a folder, the richest
-    complete output is chosen and ``source`` names it; ``run_dir`` is the folder.
-    A truncated output gives its completed steps plus a warning naming the file.
+    ``format`` overrides detection (see :func:`formats`). For a folder, the richest complete
+    output is chosen and ``source`` names it; ``run_dir`` is the folder. A multi-stage folder
+    (custodian ``vasprun.xml.relax1.gz`` ..., ``relax1/ relax2/`` stage folders) is read as one
+    trajectory with ``stages`` giving the boundaries; ``FOLDER@relax1`` (or ``FOLDER@1``) reads
+    one stage. A truncated output gives its completed steps plus a warning naming the file.
+    ``context``: a :class:`ReadContext` to fill (it keeps the files read even when reading fails).
     """
-    pick = _resolve(path, format)
-    ctx = ReadContext(pick.source)
+    ctx = context if context is not None else ReadContext(path)
+    pick = _resolve(path, format, ctx)
+    ctx.path = _source_of(pick, pick.source)
     for w in pick.warnings:
         ctx.warn(w)
-    return collect(_stream(pick, ctx), path=pick.source, fmt=pick.format, ctx=ctx,
-                   run_dir=pick.run_dir)
+    stages: list = []
+    return collect(_frames(pick, ctx, stages), path=_source_of(pick, pick.source),
+                   fmt=pick.format, ctx=ctx, run_dir=pick.run_dir, stages=stages)
 
 
-# ---------------------------------------------------------------- the table
-# Order matters for magic detection: the most specific patterns first.
+# ---------------------------------------------------------------- the tables
+# Order matters for magic detection: the most specific patterns first. The formats of a code are
+# registered by its module's ``register_all`` (one module per code), then the generic ones.
 _A = "driftwatch.adapters."
-register("vasp-xml", _A + "vasp:read_vasprun", globs=("*vasprun*.xml",), magic=rb"<modeling>",
-         description="VASP vasprun.xml")
-register("vasp-out", _A + "vasp:read_outcar", globs=("*OUTCAR*",), magic=rb"\A\s*vasp\.\d",
-         description="VASP OUTCAR")
-register("vasp-xdatcar", _A + "vasp:read_xdatcar", globs=("*XDATCAR*",),
-         magic=rb"^\s*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
-register("espresso-out", _A + "espresso:read_pw_out", globs=("*.pwo", "*pw*.out"),
-         magic=rb"Program PWSCF", description="Quantum ESPRESSO pw.x output")
+for _module in ("vasp", "espresso"):
+    importlib.import_module(_A + _module).register_all(register, register_code)
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
          description="ASE trajectory (.traj)")
 register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite format 3\x00",
          description="ASE database rows (SQLite .db; file.db@selection picks rows)")
+register("task-doc", _A + "pymatgen_json:read_task_doc", globs=("*task*.json",),
+         magic=rb'"calcs_reversed"\s*:', description="workflow task document (JSON; "
+                                                    "calcs_reversed[].output.ionic_steps)")
 register("pymatgen-json", _A + "pymatgen_json:read_structures", globs=(),
          magic=rb'"@class"\s*:\s*"Structure"', description="pymatgen Structure list in JSON")
-register("ase-json-db", _A + "ase_native:read_db", globs=("*.json",),
+register("ase-json-db", _A + "ase_native:read_db", globs=(),
          magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="ASE database rows (JSON)")
 register("extxyz", _A + "ase_native:read_extxyz", globs=("*.xyz", "*.extxyz"),
          magic=rb"\A\s*\d+[ \t]*\r?\n[^\n]*(Lattice|Properties)=", description="extended XYZ")
+register("lammps-dump", _A + "ase_native:read_lammps_dump", globs=("*.lammpstrj", "*.dump"),
+         magic=rb"\AITEM: TIMESTEP", description="LAMMPS text dump (through ASE; types from an "
+                                                 "element column, else masses in the input script)")
+register("aims-out", _A + "ase_native:read_aims", globs=("*aims*.out",),
+         magic=rb"Invoking FHI-aims|Reading geometry description geometry\.in", description="FHI-aims output (through ASE)")
+register("castep", _A + "ase_native:read_castep", globs=("*.castep",),
+         magic=rb"CCC   AA    SSS  TTTTT  EEEEE  PPPP", description="CASTEP .castep output "
+                                                                   "(through ASE)")
+register("castep-geom", _A + "ase_native:read_castep_geom", globs=("*.geom",),
+         magic=rb"BEGIN header[\s\S]*END header[\s\S]*<-- c", description="CASTEP .geom "
+                                                                         "(through ASE)")
+register("gpaw-out", _A + "ase_native:read_gpaw", globs=(),
+         magic=rb"\|__ \|  _\|___\|_____\|", description="GPAW text output (through ASE)")
 register("vasp-poscar", _A + "vasp:read_poscar", globs=("*POSCAR*", "*CONTCAR*", "*.vasp"),
          description="VASP POSCAR/CONTCAR (a single structure)")

@@ -18,7 +18,8 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["Frame", "Run", "ReadContext", "frame_from_atoms", "collect", "checked"]
+__all__ = ["Frame", "Run", "ReadContext", "frame_from_atoms", "collect", "checked", "file_stamp",
+           "folder_listing", "position_precision", "decimals"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -78,6 +79,20 @@ class Run:
     """A title found in the file (POSCAR comment, system name), else None."""
     run_dir: str | None = None
     """The folder, for folder runs; None when a single file was given."""
+    stages: tuple = ()
+    """Multi-stage runs (custodian ``.relaxN`` files, stage folders, the calculations of a task
+    document): one dict per stage in the order they ran, ``{"name", "source", "format",
+    "first_frame", "n_frames", "step_offset"}`` (frame indices into this run; the code's own step
+    number of a frame is ``steps[i] - step_offset``). Empty for a single-stage run."""
+    position_precision: float | None = None
+    """Å: the largest rounding error of one atom's cartesian position as the file prints it (the
+    Euclidean norm of the error vector: ``sqrt(3) * 0.5 * 10**-d`` for cartesian coordinates with
+    ``d`` decimals, ``0.5 * 10**-d * (|a| + |b| + |c|)`` (largest over frames) for fractional ones).
+    None when unknown or when the file holds binary doubles (``.traj``, ase.db)."""
+    inputs: tuple = ()
+    """What the read depended on, for caches: ``(kind, path, stamp)`` with kind ``"file"`` (stamp
+    = ``[size, mtime_ns, ctime_ns, inode]`` when the reader opened it, None if it was missing) or
+    ``"folder"`` (stamp = sha256 of the sorted entry names it listed)."""
 
     def __len__(self) -> int:
         return len(self.cells)
@@ -87,14 +102,73 @@ class Run:
         return len(self.numbers)
 
 
+def file_stamp(path) -> list | None:
+    """``[size, mtime_ns, ctime_ns, inode]`` of a file (symlinks followed), None if it is missing.
+
+    The ctime cannot be set back by user tools, so an unchanged stamp means unchanged bytes."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return [st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_ino]
+
+
+def folder_listing(folder) -> str | None:
+    """sha256 of the sorted names of a folder's entries (hidden ones included), None if unlistable."""
+    import hashlib
+    try:
+        names = sorted(os.listdir(folder))
+    except OSError:
+        return None
+    h = hashlib.sha256()
+    for n in names:
+        h.update(n.encode("utf-8", "surrogateescape") + b"\0")
+    return h.hexdigest()
+
+
 class ReadContext:
-    """What a reader reports besides frames: warnings, code settings, a title."""
+    """What a reader reports besides frames: warnings, code settings, a title, the files it used.
+
+    Readers call :meth:`uses` for every file they open besides the one they were given (an INCAR,
+    a pw.x input) and :meth:`lists` for every folder whose listing decides what they read; the
+    campaign cache keys a run on exactly these (``Run.inputs``).
+    """
 
     def __init__(self, path):
         self.path = str(path)
         self.warnings: list[str] = []
         self.settings: dict = {}
         self.title: str | None = None
+        self.files: dict[str, list | None] = {}
+        self.folders: dict[str, str | None] = {}
+        self.rounding: tuple | None = None
+        """``("cartesian", step_Å)`` or ``("fractional", step)``: the last printed digit of the
+        positions (see :attr:`Run.position_precision`); None when unknown."""
+        self.file_stages: list = []
+        """``[(name, n_frames), ...]`` when one file holds several stages (a task document's
+        calculations), in the order they ran."""
+
+    def uses(self, path) -> None:
+        """Record that the read depends on ``path`` (stamped now; first use wins)."""
+        key = str(path)
+        if key not in self.files:
+            self.files[key] = file_stamp(key)
+
+    def lists(self, folder) -> None:
+        """Record that the read depends on the names in ``folder``."""
+        key = str(folder)
+        if key not in self.folders:
+            self.folders[key] = folder_listing(key)
+
+    def inputs(self) -> tuple:
+        return tuple([("file", p, s) for p, s in sorted(self.files.items())]
+                     + [("folder", p, s) for p, s in sorted(self.folders.items())])
+
+    def round_to(self, kind: str, step: float) -> None:
+        """Positions are printed to ``step`` (Å for "cartesian", unitless for "fractional");
+        the coarsest seen wins."""
+        if self.rounding is None or (self.rounding[0] == kind and step > self.rounding[1]):
+            self.rounding = (kind, float(step))
 
     def warn(self, message: str) -> None:
         """Record a warning, prefixed with the file name unless it starts with a path already."""
@@ -205,8 +279,28 @@ def _check_cell(cell, pbc, path, step) -> None:
                                    f"vectors are parallel (area {area:.3g} Å^2)")
 
 
+def position_precision(rounding, cells) -> float | None:
+    """Å, from a reader's ``ctx.rounding`` and the run's cells (see Run.position_precision)."""
+    if rounding is None:
+        return None
+    kind, step = rounding
+    if kind == "cartesian":
+        return float(np.sqrt(3.0) * 0.5 * step)
+    lengths = np.sqrt((np.asarray(cells, float) ** 2).sum(-1)).sum(-1)      # (n,)
+    return float(0.5 * step * lengths.max())
+
+
+def decimals(text: str) -> int | None:
+    """Digits after the decimal point of a printed number (``"0.25000000"`` -> 8); None for
+    exponent notation or no point."""
+    t = text.strip()
+    if "." not in t or any(c in t for c in "eEdD"):
+        return None
+    return len(t.rsplit(".", 1)[1])
+
+
 def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
-            run_dir=None) -> Run:
+            run_dir=None, stages=()) -> Run:
     """Stack validated frames into a Run. Zero frames is an InputError.
 
     Frames are copied into fixed-size numpy blocks as they arrive (no per-frame Python
@@ -232,15 +326,28 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
             return None
         return np.concatenate([b.get(name) for b in blocks])
 
+    cells = cat("cells")
+    if not stages and len(ctx.file_stages) > 1:
+        stages, start = [], 0
+        steps = cat("steps")
+        for name, count in ctx.file_stages:
+            count = min(count, n - start)
+            if count <= 0:
+                break
+            stages.append({"name": name, "source": str(path), "format": fmt, "first_frame": start,
+                           "n_frames": count, "step_offset": int(steps[start]) if start else 0})
+            start += count
     return Run(
         source=str(path), format=fmt,
-        cells=cat("cells"), positions=cat("positions"),
+        cells=cells, positions=cat("positions"),
         numbers=np.array(first.numbers, int), pbc=np.array(first.pbc, bool),
         steps=cat("steps"),
         energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
         stress=cat("stress", have["stress"]),
         warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings), title=ctx.title,
         run_dir=None if run_dir is None else str(run_dir),
+        stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
+        inputs=ctx.inputs(),
     )
 
 

@@ -28,7 +28,7 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import STREAM_ERRORS, Lines, open_bytes, strip_compression, tail_bytes
-from .run import Frame, ReadContext, frame_from_atoms
+from .run import Frame, ReadContext, decimals, frame_from_atoms
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
            "pick_from_folder", "SETTING_KEYS"]
@@ -76,15 +76,38 @@ def read_incar(path) -> dict:
     return out
 
 
+def _stage_of(name: str) -> str:
+    """'relax1' for 'vasprun.xml.relax1.gz', '' for 'OUTCAR'."""
+    m = _STAGED.match(strip_compression(name))
+    return (m.group(2) or "") if m else ""
+
+
+def _sibling(path: Path, kind: str, ctx: ReadContext) -> Path | None:
+    """The ``kind`` file (INCAR, OUTCAR) of the same stage as ``path``, plain or compressed: for
+    ``vasprun.xml.relax1.gz`` first ``INCAR.relax1`` (any compression), then ``INCAR``."""
+    stage = _stage_of(path.name)
+    ctx.lists(path.parent)
+    stems = [f"{kind}.{stage}", kind] if stage else [kind]
+    for stem in stems:
+        for ext in ("", ".gz", ".bz2", ".xz"):
+            cand = path.parent / (stem + ext)
+            if cand.is_file() and cand != path:
+                ctx.uses(cand)
+                return cand
+    return None
+
+
 def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
-    """Put the output's settings in ctx; fill from a sibling INCAR; warn on disagreement."""
+    """Put the output's settings in ctx; fill from the INCAR of the same stage (plain or
+    compressed); warn on disagreement. The number of symmetry operations VASP found comes from
+    the OUTCAR of the same stage when the output read is not that OUTCAR."""
     settings = {"code": "vasp", **reported}
     p = Path(path)
-    incar = p.parent / "INCAR"
-    if strip_compression(p.name).startswith(_STD_NAMES) and incar.is_file():
+    if strip_compression(p.name).startswith(_STD_NAMES) or _STAGED.match(strip_compression(p.name)):
+        incar = _sibling(p, "INCAR", ctx)
         try:
-            given = read_incar(incar)
-        except OSError:
+            given = read_incar(incar) if incar is not None else {}
+        except (OSError, *STREAM_ERRORS):
             given = {}
         filled = False
         for k, v in given.items():
@@ -92,10 +115,19 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
                 settings[k] = v
                 filled = True
             elif not np.isclose(settings[k], v):
-                ctx.warn(f"INCAR sets {k} = {v} but the output reports {k} = {settings[k]} "
+                ctx.warn(f"{incar.name} sets {k} = {v} but the output reports {k} = {settings[k]} "
                          f"(the output's value is kept)")
         if filled:
-            settings["settings_from"] = f"{p.name}+INCAR" if reported else "INCAR"
+            settings["settings_from"] = f"{p.name}+{incar.name}" if reported else incar.name
+        if "nsym" not in settings and not strip_compression(p.name).startswith("OUTCAR"):
+            outcar = _sibling(p, "OUTCAR", ctx)
+            if outcar is not None:
+                try:
+                    n = _outcar_header(outcar)[0].get("nsym")
+                except (OSError, *STREAM_ERRORS):
+                    n = None
+                if n is not None:
+                    settings["nsym"] = n
     settings.setdefault("settings_from", p.name)
     if len(settings) > 2:
         ctx.settings.update(settings)
@@ -121,11 +153,17 @@ def _varray(el):
     return np.array([[float(x) for x in v.text.split()] for v in el.findall("v")], float)
 
 
-def _vasprun_frame(calc, step, numbers, pstress):
+def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
     from ase.units import GPa
     st = calc.find("structure")
     cell = _varray(st.find("crystal/varray[@name='basis']"))
-    frac = _varray(st.find("varray[@name='positions']"))
+    pos_el = st.find("varray[@name='positions']")
+    frac = _varray(pos_el)
+    if ctx is not None and ctx.rounding is None:
+        v = pos_el.find("v")
+        d = decimals(v.text.split()[0]) if v is not None and v.text and v.text.split() else None
+        if d is not None:
+            ctx.round_to("fractional", 10.0 ** -d)
     energy = None
     e = calc.find("energy/i[@name='e_fr_energy']")
     if e is not None:
@@ -176,7 +214,7 @@ def read_vasprun(path, ctx: ReadContext):
                     rows = el.findall("array[@name='atoms']/set/rc")
                     numbers = _symbol_numbers([r.find("c").text for r in rows])
                 elif tag == "calculation":
-                    yield _vasprun_frame(el, step, numbers, params.get("PSTRESS") or 0.0)
+                    yield _vasprun_frame(el, step, numbers, params.get("PSTRESS") or 0.0, ctx)
                     step += 1
                     calc = None
                 if root is not None:
@@ -189,7 +227,7 @@ def read_vasprun(path, ctx: ReadContext):
     except (ET.ParseError, *STREAM_ERRORS) as exc:      # cut XML, or a cut .gz/.bz2/.xz
         if calc is not None and calc_ready and numbers is not None:
             # cut after the step's energy (eigenvalues/DOS missing): the step itself is complete
-            yield _vasprun_frame(calc, step, numbers, params.get("PSTRESS") or 0.0)
+            yield _vasprun_frame(calc, step, numbers, params.get("PSTRESS") or 0.0, ctx)
             step += 1
         if root is None:
             raise InputError(path, f"no completed ionic step (the XML ends before its first "
@@ -209,6 +247,8 @@ def read_vasprun(path, ctx: ReadContext):
 _OUT_INT = re.compile(r"^\s*(ISYM|ISIF|IBRION|NSW)\s*=\s*(-?\d+)")
 _OUT_SYMPREC = re.compile(r"SYMPREC\s*=\s*([-+0-9.EeDd]+)")
 _OUT_SYSTEM = re.compile(r"^\s*SYSTEM\s*=\s*(.*\S)")
+# VASP 5.4/6: the last is INISYM's (the operations used); VASP 5.2 ends with MAGSYM's
+_OUT_NSYM = re.compile(r"(?:GETGRP|DYNSYM|MAGSYM|INISYM) returns: Found\s+(\d+) space group operations")
 _OUTCAR_END = "General timing and accounting"
 
 
@@ -230,6 +270,9 @@ def _outcar_header(path):
             m = _OUT_SYSTEM.match(line)
             if m and title is None:
                 title = m.group(1)
+            m = _OUT_NSYM.search(line)
+            if m:
+                reported["nsym"] = int(m.group(1))
     return reported, title
 
 
@@ -289,7 +332,7 @@ def _scan_outcar_steps(fd, natoms):
             raise _ScanStopped from None
         if cell is None or pos is None or cell.shape != (3, 3) or pos.shape != (natoms, 6):
             raise _ScanStopped
-        yield cell, pos[:, :3], pos[:, 3:6], stress, free
+        yield cell, pos[:, :3], pos[:, 3:6], stress, free, decimals(block[0].split()[0])
         lines = []
 
 
@@ -320,7 +363,9 @@ def read_outcar(path, ctx: ReadContext):
         numbers = np.array([atomic_numbers[s] for s in header["symbols"]], int)
         pbc = np.ones(3, bool)
         try:
-            for cell, pos, forces, stress, free in _scan_outcar_steps(fd, len(numbers)):
+            for cell, pos, forces, stress, free, d in _scan_outcar_steps(fd, len(numbers)):
+                if d is not None:
+                    ctx.round_to("cartesian", 10.0 ** -d)
                 yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
                             energy=free, forces=forces, stress=stress)
                 step += 1
@@ -334,6 +379,7 @@ def _outcar_with_ase(path, ctx, skip):
     """ASE's chunk parser over the whole file, yielding the steps from ``skip`` on."""
     from ase.io.vasp_parsers.vasp_outcar_parsers import OutcarHeaderParser, outcarchunks
     step = 0
+    ctx.round_to("cartesian", 1e-5)                     # VASP prints POSITION with f13.5
     with _WatchedLines(path) as fd:
         for chunk in outcarchunks(fd, header_parser=OutcarHeaderParser(workdir=None)):
             if step >= skip:
@@ -416,7 +462,11 @@ def read_xdatcar(path, ctx: ReadContext):
             except ValueError as exc:
                 raise InputError(path, f"bad coordinates in configuration {step + 1}: {exc}") \
                     from None
-            cart = coords @ cell if line.lstrip().lower().startswith("direct") else coords
+            direct = line.lstrip().lower().startswith("direct")
+            cart = coords @ cell if direct else coords
+            d = decimals(rows[0][0]) if rows and rows[0] else None
+            if d is not None:
+                ctx.round_to("fractional" if direct else "cartesian", 10.0 ** -d)
             yield Frame(cell=cell.copy(), positions=cart, numbers=numbers,
                         pbc=np.ones(3, bool), step=step)
             n_done, last_step = n_done + 1, step
@@ -444,51 +494,224 @@ def read_poscar(path, ctx: ReadContext):
 
 
 # ---------------------------------------------------------------- folders
-def _find(folder: Path, stem: str):
-    for cand in (stem, stem + ".gz", stem + ".bz2", stem + ".xz"):
-        p = folder / cand
-        if p.is_file() and p.stat().st_size > 0:
-            return p
-    return None
+_STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
+_STAGE_DIR = re.compile(r"^(relax|stage|restart|run|step)[-_.]?(\d+)$", re.I)
+_OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
+_KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
+                "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
+_MARKER = {"vasp-xml": b"</modeling>", "vasp-out": _OUTCAR_END.encode()}
 
 
 def _complete(path: Path, marker: bytes) -> bool:
     try:
         return marker in tail_bytes(path, 16384)
-    except OSError:
+    except (OSError, *STREAM_ERRORS):
         return False
 
 
-_VASP_FORMATS = {"vasp-xml": "vasprun.xml", "vasp-out": "OUTCAR", "vasp-xdatcar": "XDATCAR"}
+def _stage_order(stage: str):
+    """'' (unsuffixed) last; relaxN and N by number."""
+    if not stage:
+        return (2, 0)
+    digits = "".join(c for c in stage if c.isdigit())
+    return (0 if stage.startswith("relax") else 1, int(digits or 0))
 
 
-def pick_from_folder(folder: Path, format=None):
-    """Choose the richest complete VASP output in ``folder``; None if it is not a VASP folder.
+def _variants(folder: Path, names):
+    """{stage: {kind: [paths]}} of the VASP files in ``names`` (plain and compressed variants)."""
+    out: dict = {}
+    for n in names:
+        m = _STAGED.match(strip_compression(n))
+        if m:
+            p = folder / n
+            out.setdefault(m.group(2) or "", {}).setdefault(m.group(1), []).append(p)
+    return out
 
-    Preference: a complete vasprun.xml, then a complete OUTCAR; when neither is
-    complete (killed job), OUTCAR first (VASP flushes it every ionic step, while
-    vasprun.xml is written through a buffer and lags), then vasprun.xml, then
-    XDATCAR; CONTCAR or POSCAR alone give one structure.
-    """
-    found = {f: _find(folder, stem) for f, stem in _VASP_FORMATS.items()}
-    single = _find(folder, "CONTCAR") or _find(folder, "POSCAR")
+
+def _best_variant(paths, fmt, ctx):
+    """Among plain and compressed copies of one file: a complete one, else the largest; then the
+    newest. Empty files are never chosen."""
+    def key(p):
+        try:
+            st = p.stat()
+        except OSError:
+            return (False, 0, 0)
+        return (_complete(p, _MARKER[fmt]) if fmt in _MARKER and st.st_size else False,
+                st.st_size > 0, st.st_mtime_ns)
+    for p in paths:
+        ctx.uses(p)
+    ranked = sorted(paths, key=key, reverse=True)
+    best = ranked[0]
+    try:
+        return best if best.stat().st_size > 0 else None
+    except OSError:
+        return None
+
+
+def _pick_stage(folder: Path, kinds: dict, format, ctx, staged: bool):
+    """(path, format, note) for one stage: complete vasprun.xml, complete OUTCAR, then OUTCAR,
+    vasprun.xml, XDATCAR; CONTCAR/POSCAR alone (single structure) only for an unstaged folder."""
+    found = {k: _best_variant(v, _KIND_FORMAT[k], ctx) for k, v in kinds.items()}
+    xml, out, xdat = found.get("vasprun.xml"), found.get("OUTCAR"), found.get("XDATCAR")
+    single = found.get("CONTCAR") or found.get("POSCAR")
     if format is not None:
-        if format in found and found[format] is not None:
-            return found[format], format, ()
-        if format == "vasp-poscar" and single is not None:
-            return single, format, ()
+        for k, path in found.items():
+            if path is not None and _KIND_FORMAT[k] == format:
+                return path, format, None
         return None
-    xml, out, xdat = found["vasp-xml"], found["vasp-out"], found["vasp-xdatcar"]
-    if not (xml or out or xdat or single):
-        return None
-    if xml is not None and _complete(xml, b"</modeling>"):
-        return xml, "vasp-xml", ()
-    if out is not None and _complete(out, _OUTCAR_END.encode()):
-        note = (f"{folder}: {xml.name} is incomplete; read {out.name} instead",) if xml else ()
+    if xml is not None and _complete(xml, _MARKER["vasp-xml"]):
+        return xml, "vasp-xml", None
+    if out is not None and _complete(out, _MARKER["vasp-out"]):
+        note = f"{folder}: {xml.name} is incomplete; read {out.name} instead" if xml else None
         return out, "vasp-out", note
     for path, fmt in ((out, "vasp-out"), (xml, "vasp-xml"), (xdat, "vasp-xdatcar")):
         if path is not None:
-            note = () if fmt == "vasp-xdatcar" and not (xml or out) else \
-                (f"{folder}: no complete VASP output; reading the incomplete {path.name}",)
+            note = None if fmt == "vasp-xdatcar" and not (xml or out) else \
+                f"{folder}: no complete VASP output; reading the incomplete {path.name}"
             return path, fmt, note
-    return single, "vasp-poscar", (f"{folder}: only {single.name}, a single structure",)
+    if single is not None and not staged:
+        return single, "vasp-poscar", f"{folder}: only {single.name}, a single structure"
+    return None
+
+
+def pick_from_folder(folder: Path, names, format=None, ctx=None):
+    """The VASP run of ``folder`` (a :class:`~driftwatch.adapters.registry.FolderPick`), or None.
+
+    * Files are grouped by stage: custodian's ``.relax1``, ``.relax2`` suffixes and numbered
+      restarts ``.1``, ``.2`` run in that order, unsuffixed files last; each name may carry
+      ``.gz``/``.bz2``/``.xz`` (of plain and compressed copies, a complete one, else the largest).
+    * Per stage: a complete vasprun.xml, then a complete OUTCAR; when neither is complete (killed
+      job), OUTCAR first (VASP flushes it every ionic step, vasprun.xml lags behind a buffer), then
+      vasprun.xml, then XDATCAR. CONTCAR or POSCAR alone give one structure (unstaged folders only).
+    * Unsuffixed leftovers beside staged files (custodian does not rename XDATCAR) are not read
+      when they hold no vasprun.xml or OUTCAR; a note says so.
+    * A folder with no VASP output of its own whose subfolders ``relax1/``, ``relax2/`` (or
+      ``stage1``, ``restart_2``, ...) are VASP run folders: those subfolders are its stages.
+    """
+    from .registry import FolderPick
+    from .run import ReadContext
+    ctx = ctx if ctx is not None else ReadContext(folder)
+    groups = _variants(folder, names)
+    has_output = any(k in _OUTPUT_KINDS for g in groups.values() for k in g)
+    if not has_output:
+        sub = _stage_folders(folder, format, ctx)
+        if sub is not None:
+            return sub
+        if not groups or format not in (None, "vasp-poscar"):
+            return None
+    staged = any(st for st in groups)
+    stages, notes = [], []
+    for st in sorted(groups, key=_stage_order):
+        kinds = groups[st]
+        if staged and st == "" and not any(k in kinds for k in ("vasprun.xml", "OUTCAR")):
+            left = ", ".join(p.name for v in kinds.values() for p in v)
+            notes.append(f"{folder}: {left} not read (left beside the staged outputs, which are "
+                         f"read instead)")
+            continue
+        got = _pick_stage(folder, kinds, format, ctx, staged)
+        if got is None:
+            continue
+        path, fmt, note = got
+        stages.append((st, path, fmt))
+        if note:
+            notes.append(note)
+    if not stages:
+        return None
+    if len(stages) == 1 and stages[0][0] in ("", None):
+        stages = [("", stages[0][1], stages[0][2])]
+    return FolderPick(stages, tuple(notes))
+
+
+def _stage_folders(folder: Path, format, ctx):
+    """Subfolders relax1/, relax2/ ... that are VASP run folders, as the stages of ``folder``."""
+    from .registry import FolderPick
+    subs = []
+    try:
+        entries = sorted(e for e in folder.iterdir() if e.is_dir() and _STAGE_DIR.match(e.name))
+    except OSError:
+        return None
+    for d in entries:
+        try:
+            names = sorted(p.name for p in d.iterdir() if p.is_file() and not p.name.startswith("."))
+        except OSError:
+            continue
+        if not any(_STAGED.match(strip_compression(n)) and
+                   _STAGED.match(strip_compression(n)).group(1) in _OUTPUT_KINDS for n in names):
+            continue
+        ctx.lists(d)
+        got = pick_from_folder(d, names, format, ctx)
+        if got is None:
+            continue
+        m = _STAGE_DIR.match(d.name)
+        for st, path, fmt in got.stages:
+            subs.append(((m.group(1).lower(), int(m.group(2)), st), f"{d.name}{'.' + st if st else ''}",
+                         path, fmt))
+    if not subs:
+        return None
+    subs.sort(key=lambda x: (x[0][0], x[0][1], _stage_order(x[0][2])))
+    return FolderPick([(name, path, fmt) for _, name, path, fmt in subs])
+
+
+def claims_subfolder(name: str) -> bool:
+    """True for the names of stage subfolders (``relax1``, ``stage_2``, ...)."""
+    return bool(_STAGE_DIR.match(name))
+
+
+# ---------------------------------------------------------------- live: end, soft stop
+END_MARKERS = {
+    "vasp-out": ((re.compile(rb"General timing and accounting"), "General timing and accounting"),),
+    "vasp-xml": ((re.compile(rb"</modeling>"), "</modeling>"),),
+}
+
+
+def soft_stop(run_dir, *, reason: str, dry_run: bool = False, **_options) -> dict:
+    """VASP's documented soft stop: ``STOPCAR`` with ``LSTOP = .TRUE.`` in the run folder (VASP
+    finishes the ionic step, writes its outputs and stops), with a ``#`` line stating why.
+    Returns ``{"target": Path, "text": str}``; the caller writes it (atomically, never over an
+    existing file)."""
+    return {"target": Path(run_dir) / "STOPCAR",
+            "text": f"LSTOP = .TRUE.\n# driftwatch soft stop: {reason}\n"}
+
+
+# ---------------------------------------------------------------- symmetry setting
+def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
+    """VASP's own symmetry handling: on when ``ISYM`` > 0 (VASP symmetrises charge density and
+    forces with the operations it found; ``nsym``: "Found N space group operations" in OUTCAR);
+    None when ISYM <= 0 (off) or unknown (no ISYM reported or set).
+
+    ``dimension`` (2 for a layer, 3 for bulk) only changes the wording: VASP always looks for the
+    operations of the 3D cell.
+    """
+    s = code_settings or {}
+    isym = s.get("ISYM")
+    if isym is None or int(isym) <= 0:
+        return None
+    n = s.get("nsym")
+    prec = s.get("SYMPREC")
+    what = ("1 symmetry operation (the identity only)" if n == 1 else
+           f"{n} symmetry operations" if n else "the symmetry operations it found")
+    cell = " of the slab's 3D cell" if dimension == 2 else ""
+    tol = f", SYMPREC = {prec:g} Å" if prec is not None else ""
+    return {"operations": None if n is None else int(n),
+            "how": f"VASP kept {what}{cell} (ISYM = {int(isym)}{tol})",
+            "undo": "ISYM = 0"}
+
+
+# ---------------------------------------------------------------- registration
+def register_all(register, register_code) -> None:
+    """The VASP rows of the format table and the VASP entry of the code table."""
+    from .registry import Code
+    register("vasp-xml", __name__ + ":read_vasprun", globs=("*vasprun*.xml",), magic=rb"<modeling>",
+             description="VASP vasprun.xml")
+    register("vasp-out", __name__ + ":read_outcar", globs=("*OUTCAR*",), magic=rb"\A\s*vasp\.\d",
+             description="VASP OUTCAR")
+    register("vasp-xdatcar", __name__ + ":read_xdatcar", globs=("*XDATCAR*",),
+             magic=rb"^\s*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
+    register_code(Code(
+        name="vasp", label="VASP", aliases=("vasp5", "vasp6"),
+        formats=("vasp-xml", "vasp-out", "vasp-xdatcar", "vasp-poscar"),
+        folder=__name__ + ":pick_from_folder",
+        run_files=("vasprun*.xml*", "OUTCAR*", "XDATCAR*", "CONTCAR*", "POSCAR*", "INCAR*"),
+        settings_files=("INCAR", "INCAR.*"),
+        end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
+        symmetry_setting=__name__ + ":symmetry_setting"), replace=True)

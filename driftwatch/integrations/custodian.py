@@ -129,7 +129,7 @@ class SymmetryStopHandler(ErrorHandler):
             t = self._tracker = Tracker(self.config, source=ctx.path, format=fmt,
                                         run_dir=str(directory))
             self._stop, self._reported_end = None, False
-        t.warnings, t.code_settings = list(ctx.warnings), dict(ctx.settings)
+        t.warnings, t.code_settings, t.rounding = list(ctx.warnings), dict(ctx.settings), ctx.rounding
         t.replace(frames)
         return t.record(newest=_needs_spectra(self.stop_on))
 

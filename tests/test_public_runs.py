@@ -1,0 +1,400 @@
+"""Real campaigns as they lie on disk: the code table, stages, compressed folders, task documents,
+other codes through ASE, shared discovery, and the cache keyed on the files the readers used.
+
+External references (named beside each check):
+* genuine outputs from public repositories in tests/data/public/ (sources and licences in its
+  README.md): a custodian double relaxation with VASP 5.2.11 OUTCARs (pymatgen-db), relax1/relax2
+  stage folders (pymatgen-db), task documents (pymatgen-db, emmet), FHI-aims / CASTEP / GPAW outputs
+  from ASE's test data, and a real LAMMPS relaxation made here with Debian's lammps;
+* pymatgen's Vasprun and Structure, ASE's own readers (ase.io.read) as reference readers;
+* real pw.x outputs made here (tests/data/qe, pw.x 6.7 from Debian).
+"""
+from __future__ import annotations
+
+import gzip
+import json
+import shutil
+import subprocess
+import sys
+import warnings
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import ase.io
+
+from driftwatch.adapters import read_run
+from driftwatch.adapters import registry
+from driftwatch.adapters.registry import Code, FolderPick, register_code, symmetry_setting
+from driftwatch.campaign import audit, discover
+from driftwatch.errors import InputError
+
+REPO = Path(__file__).resolve().parent.parent
+PUB = REPO / "tests" / "data" / "public"
+QE = REPO / "tests" / "data" / "qe"
+DOUBLE = PUB / "custodian_double_relax"
+
+
+def _vasprun(path):
+    from pymatgen.io.vasp.outputs import Vasprun
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return Vasprun(str(path), parse_dos=False, parse_eigen=False, parse_potcar_file=False)
+
+
+def _same_frames(run, structures, atol=1e-8):
+    assert len(run) == len(structures)
+    np.testing.assert_allclose(run.cells, [s.lattice.matrix for s in structures], atol=atol, rtol=0)
+    np.testing.assert_allclose(run.positions, [s.cart_coords for s in structures], atol=atol,
+                               rtol=0)
+    assert run.numbers.tolist() == list(structures[0].atomic_numbers)
+
+
+# ---------------------------------------------------------------- stages
+def test_custodian_double_relaxation_reads_as_one_trajectory_with_stages():
+    """pymatgen-db's Li2O_aflow folder (custodian .relax1/.relax2, all gzipped, a header-only VASP 4
+    XDATCAR.gz, an empty VASP.out): both stages, in order, each equal to pymatgen's Vasprun."""
+    run = read_run(DOUBLE)
+    v1, v2 = _vasprun(DOUBLE / "vasprun.xml.relax1.gz"), _vasprun(DOUBLE / "vasprun.xml.relax2.gz")
+    _same_frames(run, v1.structures + v2.structures)                         # pymatgen Vasprun
+    np.testing.assert_allclose(run.energies, [s["e_fr_energy"] for s in v1.ionic_steps + v2.ionic_steps])
+    assert [(s["name"], s["first_frame"], s["n_frames"]) for s in run.stages] == \
+        [("relax1", 0, 3), ("relax2", 3, 3)]
+    assert run.steps.tolist() == [0, 1, 2, 3, 4, 5] and run.stages[1]["step_offset"] == 3
+    assert run.source.endswith("vasprun.xml.relax2.gz") and run.run_dir == str(DOUBLE)
+    assert any("XDATCAR.gz not read" in w for w in run.warnings)
+    # settings as printed: ISYM = 2 in vasprun.xml; 48 operations in OUTCAR.relax2.gz
+    # ("MAGSYM returns: Found 48 space group operations", VASP 5.2.11)
+    s = run.code_settings
+    assert s["ISYM"] == 2 and s["SYMPREC"] == pytest.approx(1e-5) and s["nsym"] == 48
+    one = read_run(f"{DOUBLE}@relax1")                                       # one stage on request
+    _same_frames(one, v1.structures)
+    assert one.stages == () and read_run(f"{DOUBLE}@2").source.endswith("vasprun.xml.relax2.gz")
+    with pytest.raises(InputError, match="no stage 'relax7'"):
+        read_run(f"{DOUBLE}@relax7")
+
+
+def test_vasp_52_outcars_equal_vasprun_and_ase():
+    """VASP 5.2.11 OUTCARs (genuine, pymatgen-db): the streaming reader gives ASE's frames exactly
+    and vasprun.xml's frames within the two files' printed precision."""
+    for stage in ("relax1", "relax2"):
+        out = read_run(DOUBLE / f"OUTCAR.{stage}.gz")
+        xml = read_run(DOUBLE / f"vasprun.xml.{stage}.gz")
+        with gzip.open(DOUBLE / f"OUTCAR.{stage}.gz", "rt") as fh:
+            ref = ase.io.read(fh, ":", format="vasp-out")                    # ASE
+        np.testing.assert_array_equal(out.positions, [a.positions for a in ref])
+        tol = out.position_precision + xml.position_precision
+        assert np.abs(out.positions - xml.positions).max() <= tol
+        np.testing.assert_allclose(out.energies, xml.energies, atol=1e-6)   # OUTCAR prints 6 decimals
+        assert out.code_settings["nsym"] == 48 and out.code_settings["ISYM"] == 2
+
+
+def test_stage_folders_are_one_run():
+    """pymatgen-db's success_mp_aflow: relax1/ and relax2/ subfolders (VASP 5.2.11, 60 + 5 steps)."""
+    run = read_run(PUB / "stage_folders")
+    v1 = _vasprun(PUB / "stage_folders" / "relax1" / "vasprun.xml.gz")
+    v2 = _vasprun(PUB / "stage_folders" / "relax2" / "vasprun.xml.gz")
+    _same_frames(run, v1.structures + v2.structures)                         # pymatgen Vasprun
+    assert [(s["name"], s["n_frames"]) for s in run.stages] == [("relax1", 60), ("relax2", 5)]
+    runs, failed = discover([PUB / "stage_folders"])
+    assert [r.kind for r in runs] == ["folder"] and not failed               # not three runs
+
+
+def test_compressed_and_plain_variants_pick_the_complete_one(tmp_path):
+    """A plain copy cut in half beside the complete .gz: the complete one is read."""
+    d = tmp_path / "r"
+    d.mkdir()
+    raw = gzip.decompress((DOUBLE / "vasprun.xml.relax2.gz").read_bytes())
+    (d / "vasprun.xml.gz").write_bytes(gzip.compress(raw))
+    (d / "vasprun.xml").write_bytes(raw[: len(raw) // 2])
+    (d / "INCAR.gz").write_bytes(gzip.compress(b"ISYM = 0\nSYMPREC = 1E-4\n"))
+    run = read_run(d)
+    assert run.source.endswith("vasprun.xml.gz") and len(run) == 3
+    assert any("INCAR.gz sets ISYM = 0" in w for w in run.warnings)          # compressed INCAR read
+
+
+# ---------------------------------------------------------------- task documents
+def test_task_documents_read_with_pymatgen_structures():
+    """Task documents (pymatgen-db GaLa: two calculations; emmet mp-2766060: one): frames equal to
+    pymatgen's Structure.from_dict of each ionic step, oldest calculation first."""
+    from pymatgen.core import Structure
+    for name, stages in (("GaLa.task.json.gz", [9, 1]), ("task_doc_mp-2766060.json.gz", [])):
+        path = PUB / "task_docs" / name
+        doc = json.loads(gzip.decompress(path.read_bytes()))
+        steps = [st for c in reversed(doc["calcs_reversed"]) for st in c["output"]["ionic_steps"]]
+        run = read_run(path)
+        assert run.format == "task-doc"
+        _same_frames(run, [Structure.from_dict(st["structure"]) for st in steps])   # pymatgen
+        np.testing.assert_allclose(run.energies, [st["e_fr_energy"] for st in steps])
+        assert [s["n_frames"] for s in run.stages] == stages
+    s = read_run(PUB / "task_docs" / "task_doc_mp-2766060.json.gz").code_settings
+    assert s["ISYM"] == 2 and s["code"] == "vasp"                            # input.parameters
+
+
+# ---------------------------------------------------------------- other codes through ASE
+@pytest.mark.parametrize("name,fmt,ase_format", [
+    ("ase_generic/aims_relax.out.gz", "aims-out", "aims-output"),
+    ("ase_generic/si8_md.castep.gz", "castep", "castep-castep"),
+    ("ase_generic/gpaw_h2.txt", "gpaw-out", "gpaw-out"),
+    ("lammps_relax/relax.dump.gz", "lammps-dump", "lammps-dump-text"),
+])
+def test_other_codes_through_ase(name, fmt, ase_format, tmp_path):
+    """Genuine FHI-aims, CASTEP and GPAW outputs (ASE's test data) and a real LAMMPS dump made here:
+    detected by content, frames equal to ASE's own reader of that format."""
+    path = PUB / name
+    run = read_run(path)
+    assert run.format == fmt
+    plain = tmp_path / "plain"
+    plain.write_bytes(gzip.decompress(path.read_bytes()) if name.endswith(".gz")
+                      else path.read_bytes())
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = ase.io.read(plain, ":", format=ase_format)                       # ASE
+    assert len(run) == len(ref) > 0
+    np.testing.assert_allclose(run.positions, [a.positions for a in ref], atol=0, rtol=0)
+    np.testing.assert_allclose(run.cells, [a.cell.array for a in ref], atol=0, rtol=0)
+    if fmt == "lammps-dump":                 # the type map: 1 = Cu, 2 = Ni (in.relax, our input)
+        assert set(run.numbers.tolist()) == {29, 28} and len(run) == 36
+
+
+def test_lammps_types_from_the_input_scripts_masses(tmp_path):
+    """Without an element column the types are named by the 'mass' lines of the LAMMPS input beside
+    the dump (Cu 63.546, Ni 58.6934: IUPAC standard atomic weights, as ASE's table has them)."""
+    text = gzip.decompress((PUB / "lammps_relax" / "relax.dump.gz").read_bytes()).decode()
+    lines = []
+    for ln in text.splitlines():
+        f = ln.split()
+        if ln.startswith("ITEM: ATOMS"):
+            ln = "ITEM: ATOMS id type x y z fx fy fz"
+        elif len(f) == 9 and f[2] in ("Cu", "Ni"):
+            ln = " ".join(f[:2] + f[3:])
+        lines.append(ln)
+    (tmp_path / "relax.lammpstrj").write_text("\n".join(lines) + "\n")
+    with pytest.raises(InputError, match="cannot be named"):
+        read_run(tmp_path / "relax.lammpstrj")
+    shutil.copy(PUB / "lammps_relax" / "in.relax", tmp_path / "in.relax")
+    run = read_run(tmp_path / "relax.lammpstrj")
+    ref = read_run(PUB / "lammps_relax" / "relax.dump.gz")
+    assert run.numbers.tolist() == ref.numbers.tolist()
+    np.testing.assert_allclose(run.positions, ref.positions, atol=0)
+
+
+# ---------------------------------------------------------------- discovery
+def test_inspect_and_audit_share_discovery(tmp_path):
+    """A folder of files that are runs by content (custodian keeps vasprun.xml backups under other
+    names): the audit lists each; read_run(folder) reads the only one, or names them all."""
+    d = tmp_path / "unconverged"
+    d.mkdir()
+    raw = gzip.decompress((DOUBLE / "vasprun.xml.relax1.gz").read_bytes())
+    (d / "vasprun.xml.ionic").write_bytes(raw)
+    (d / "notes.json").write_text('{"note": "invented notes", "ok": true}')
+    (d / "params.json").write_text('[1, 2, 3]')
+    assert read_run(d).source == str(d / "vasprun.xml.ionic")               # inspect FOLDER
+    runs, failed = discover([d])
+    assert [Path(r.path).name for r in runs] == ["vasprun.xml.ionic"] and not failed
+    (d / "vasprun.xml.electronic").write_bytes(raw)
+    with pytest.raises(InputError, match="holds 2 runs .*vasprun.xml.electronic, vasprun.xml.ionic"):
+        read_run(d)
+    runs, _ = discover([d])
+    assert len(runs) == 2
+
+
+def test_our_own_records_and_plain_json_are_not_runs(tmp_path):
+    camp = tmp_path / "camp"
+    shutil.copytree(QE / "layer_oblique_to_hex", camp / "L")
+    out = audit([camp], tmp_path / "a1", workers=1, report=False, progress="off")
+    assert out["runs"] == 1 and not out["failed"]
+    shutil.copy(tmp_path / "a1" / "records" / "camp_L.json", camp / "camp_L.json")   # our record
+    (camp / "params.json").write_text('{"ecut": 40, "kpoints": [4, 4, 1]}')
+    (camp / "observer.json").write_text('{"schema": "driftwatch/run-1", "frames": []}')
+    out = audit([camp], tmp_path / "a2", workers=1, report=False, progress="off")
+    assert out["runs"] == 1 and not out["failed"]
+
+
+def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
+    """Every genuine output above plus a real pw.x run, audited through the command line as a user
+    would: no failed run, the two non-periodic systems listed as skipped with the setting that
+    would include them, exit 0."""
+    camp = tmp_path / "mixed"
+    shutil.copytree(PUB, camp, ignore=shutil.ignore_patterns("README.md", "SHA256SUMS"))
+    shutil.copytree(QE / "layer_oblique_to_hex", camp / "qe_layer")
+    shutil.copy(REPO / "tests" / "data" / "vasp" / "OUTCAR_example_1.gz", camp)  # Ni cluster
+    (camp / "params.json").write_text('{"campaign": "invented", "ecut": 40}')
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "-j", "2", "--progress", "on", "--no-report"],
+                          capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["failed"] == [] and summary["runs"] == 10
+    assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
+                                                           "mixed/ase_generic/gpaw_h2.txt"]
+    assert all(k["include"] for k in summary["skipped"])
+    assert "10 runs (10 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stderr
+    rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
+    assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
+    assert rec["run"]["position_precision"] == pytest.approx(
+        read_run(DOUBLE).position_precision)
+
+
+# ---------------------------------------------------------------- position precision, settings
+def test_position_precision_follows_the_printed_digits(tmp_path):
+    """OUTCAR prints cartesian positions with 5 decimals: sqrt(3) x 0.5e-5 Å; vasprun.xml
+    fractional with 8: 0.5e-8 x (|a| + |b| + |c|); ASE .traj holds doubles: None."""
+    out = read_run(DOUBLE / "OUTCAR.relax1.gz")
+    assert out.position_precision == pytest.approx(np.sqrt(3) * 0.5e-5)
+    xml = read_run(DOUBLE / "vasprun.xml.relax1.gz")
+    lengths = np.linalg.norm(xml.cells, axis=-1).sum(-1).max()
+    assert xml.position_precision == pytest.approx(0.5e-8 * lengths)
+    ase.io.write(tmp_path / "r.traj", ase.io.read(DOUBLE / "CONTCAR.relax2.gz", format="vasp"))
+    assert read_run(tmp_path / "r.traj").position_precision is None
+
+
+def test_symmetry_setting_of_each_code():
+    """VASP (ISYM = 2, 48 operations as OUTCAR prints them), VASP with ISYM = 0 (ASE's
+    OUTCAR_example_1), pw.x real outputs (nosym = .false.; 'No symmetry found' = 1 operation)."""
+    got = symmetry_setting(read_run(DOUBLE).code_settings, 3)
+    assert got["operations"] == 48 and got["undo"] == "ISYM = 0" and "ISYM = 2" in got["how"]
+    assert symmetry_setting(read_run(REPO / "tests/data/vasp/OUTCAR_example_1.gz").code_settings,
+                            3) is None
+    qe = read_run(QE / "bulk_tetragonal_to_cubic").code_settings
+    got = symmetry_setting(qe, 3)
+    assert got["operations"] == qe["nsym"] and got["undo"] == "nosym=.true."
+    assert "nosym=.false." in got["how"]
+    assert symmetry_setting(dict(qe, nosym=True), 3) is None
+    assert symmetry_setting({}, 3) is None
+
+
+# ---------------------------------------------------------------- adding a code
+def test_adding_a_code_is_one_module_and_one_registration(tmp_path):
+    """A toy code whose run folders hold 'toy.log' (an extended XYZ inside): one format row and one
+    code row make read_run(folder), discovery and the live end marker see it."""
+    import re
+
+    def toy_folder(folder, names, format=None, ctx=None):
+        if "toy.log" in names:
+            return FolderPick([("", folder / "toy.log", "extxyz")])
+        return None
+
+    saved_codes, saved_formats = dict(registry._codes), dict(registry._formats)
+    try:
+        register_code(Code(name="toy", label="Toy", formats=("extxyz",), folder=toy_folder,
+                           end_markers={"extxyz": ((re.compile(rb"TOY DONE"), "TOY DONE"),)}))
+        d = tmp_path / "camp" / "t1"
+        d.mkdir(parents=True)
+        atoms = ase.io.read(DOUBLE / "CONTCAR.relax2.gz", format="vasp")
+        ase.io.write(d / "toy.log", [atoms, atoms], format="extxyz")
+        assert read_run(d).source == str(d / "toy.log")
+        runs, _ = discover([tmp_path / "camp"])
+        assert [(r.kind, Path(r.path).name) for r in runs] == [("folder", "t1")]
+        assert registry.code_of_format("extxyz").name == "toy"
+    finally:
+        registry._codes.clear()
+        registry._codes.update(saved_codes)
+        registry._formats.clear()
+        registry._formats.update(saved_formats)
+
+
+# ---------------------------------------------------------------- the cache
+def _quiet_audit(roots, out, **kw):
+    return audit(roots, out, report=False, progress="off", **kw)
+
+
+def _record_of(out: Path, name: str) -> dict:
+    recs = [json.loads(p.read_text()) for p in (out / "records").glob("*.json")]
+    return next(r for r in recs if r["run"]["source"].endswith(name))
+
+
+def test_cache_sees_a_changed_log_pwx_output(tmp_path):
+    """Issue 16: a pw.x output named *.log changed between two audits was served from the cache
+    (the cache's own list of a folder's files had no *.log). Here a folder holds a finished pw.out
+    and a newer relax.log; relax.log is then replaced by another real pw.x output."""
+    import os
+    d = tmp_path / "camp" / "L"
+    d.mkdir(parents=True)
+    shutil.copy(QE / "layer_oblique_to_hex" / "pw.out", d / "pw.out")
+    shutil.copy(QE / "relax_atoms_to_sites" / "pw.out", d / "relax.log")
+    os.utime(d / "pw.out", (1e9, 1e9))                                 # relax.log is the newer
+    _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
+    before = _record_of(tmp_path / "out", "relax.log")["run"]
+    shutil.copy(QE / "bulk_tetragonal_to_cubic" / "pw.out", d / "relax.log")
+    second = _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
+    after = _record_of(tmp_path / "out", "relax.log")["run"]
+    want = read_run(QE / "bulk_tetragonal_to_cubic" / "pw.out")
+    assert (before["n_frames"], before["formula"]) != (after["n_frames"], after["formula"])
+    assert after["n_frames"] == len(want) and second["failed"] == []
+
+
+def test_cache_sees_a_changed_pw_in_beside_two_outputs(tmp_path):
+    """Issue 16: a changed pw.in next to two pw.x outputs (two file runs) was served from the cache."""
+    d = tmp_path / "camp" / "two"
+    d.mkdir(parents=True)
+    shutil.copy(QE / "layer_oblique_to_hex" / "pw.out", d / "a.out")
+    shutil.copy(QE / "relax_atoms_to_sites" / "pw.out", d / "b.out")
+    pin = (QE / "layer_oblique_to_hex" / "pw.in").read_text()
+    (d / "pw.in").write_text(pin)
+    _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
+    rec = json.loads((tmp_path / "out" / "records" / "camp_two_a.out.json").read_text())
+    assert rec["run"]["code_settings"]["nosym"] is False
+    assert "nosym" not in pin.lower()
+    (d / "pw.in").write_text(pin.replace("&SYSTEM", "&SYSTEM\n  nosym = .true.", 1)
+                             .replace("&system", "&system\n  nosym = .true.", 1))
+    second = _quiet_audit([tmp_path / "camp"], tmp_path / "out", workers=1)
+    rec = json.loads((tmp_path / "out" / "records" / "camp_two_a.out.json").read_text())
+    assert rec["run"]["code_settings"]["nosym"] is True and second["analysed"] == 2
+
+
+class _Meddler(ThreadPoolExecutor):
+    """A real executor that, as a user might while an audit runs, empties or deletes a file just
+    before the runs are analysed."""
+
+    def __init__(self, victim: Path, how: str):
+        super().__init__(max_workers=1)
+        self.victim, self.how = victim, how
+
+    def submit(self, fn, *args, **kwargs):
+        if self.how == "empty":
+            self.victim.write_bytes(b"")
+        elif self.victim.exists():
+            self.victim.unlink()
+        return super().submit(fn, *args, **kwargs)
+
+
+@pytest.mark.parametrize("how", ["empty", "delete"])
+def test_cache_does_not_keep_a_failure_once_the_file_is_back(how, tmp_path):
+    """Issue 19: a file emptied or deleted during an audit and restored with the same bytes was
+    reported empty/missing by every later audit (the failure was cached under the good bytes)."""
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    src = camp / "relax.pwo"
+    good = (QE / "relax_atoms_to_sites" / "pw.out").read_bytes()
+    src.write_bytes(good)
+    with _Meddler(src, how) as ex:
+        first = _quiet_audit([camp], tmp_path / "out", executor=ex)
+    assert len(first["failed"]) == 1
+    src.write_bytes(good)                                      # restored, the same bytes
+    second = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert second["failed"] == [] and second["analysed"] == 1
+
+
+def test_cache_entry_of_the_right_schema_but_wrong_content_is_a_miss(tmp_path):
+    """Issue 19: a cache entry that is valid JSON but wrong crashed every later audit."""
+    camp = tmp_path / "camp"
+    shutil.copytree(QE / "relax_atoms_to_sites", camp / "R")
+    first = _quiet_audit([camp], tmp_path / "out", workers=1)
+    before = (tmp_path / "out" / "records" / "camp_R.json").read_text()
+    entries = [p for p in (tmp_path / "out" / ".cache").glob("*.json") if p.name != "digests.json"]
+    assert len(entries) == 1
+    data = json.loads(entries[0].read_text())
+    data["result"]["record_text"] = '{"schema": "driftwatch/run-1"}'
+    entries[0].write_text(json.dumps(data))
+    second = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert first["failed"] == second["failed"] == [] and second["analysed"] == 1
+    assert (tmp_path / "out" / "records" / "camp_R.json").read_text() == before
+    data["result"] = {"ok": True, "record_text": before, "structure": {"cell": 5}}
+    entries[0].write_text(json.dumps(data))
+    third = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert third["analysed"] == 1 and third["failed"] == []
+    fourth = _quiet_audit([camp], tmp_path / "out", workers=1)               # a good entry: a hit
+    assert fourth["cached"] == 1 and fourth["analysed"] == 0
