@@ -241,9 +241,11 @@ def _cmd_tolerance(args) -> int:
     print(f"{run.source}, frame {i}: {kind} and lattice type across symprec (Å), "
           f"angle_tolerance {spec['angle_tolerance']:g} deg")
     print(f"{'symprec/Å':>10}  {kind:>22}  {'ops':>4}  lattice")
+    floor = adv.get("resolution")
     for x, g, sym, ops, lat in zip(spec["symprec"], spec["group"], spec["group_symbol"],
                                    spec["operations"], spec["lattice"]):
-        print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}")
+        note = "  (below the file's printed precision)" if floor and x < floor else ""
+        print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}{note}")
     for b in spec["breakpoints"]:
         print(f"breakpoint ({b['kind']}): {b['from']} -> {b['to']} between {b['low']:.4g} and "
               f"{b['high']:.4g} Å")

@@ -286,12 +286,41 @@ def test_advice_quotes_its_own_plateau_and_prefers_a_real_group_over_p1(demo):
     assert "Im-3m (229)" in tol["reason"] and "every symprec of the grid" in tol["reason"]
 
 
+def test_tolerances_below_the_files_printed_precision_are_marked():
+    """The same genuine VASP 5.2 run (custodian double relaxation, tests/data/public) read from its
+    OUTCAR (cartesian positions printed with 5 decimals) and from its vasprun.xml (8 decimals,
+    fractional): only the OUTCAR's grid reaches below what the file resolves."""
+    run = DATA / "public" / "custodian_double_relax"
+    out = driftwatch.analyze(run / "OUTCAR.relax2.gz")
+    xml = driftwatch.analyze(run / "vasprun.xml.relax2.gz")
+    p = out["run"]["position_precision"]
+    assert p == pytest.approx(math.sqrt(3) * 0.5e-5)          # half a unit of the 5th decimal, 3D
+    tol = out["summary"]["tolerance"]
+    assert tol["resolution"] == pytest.approx(2 * p) and tol["resolution"] > 1e-5
+    assert "under the file's printed precision" in tol["reason"]
+    assert xml["summary"]["tolerance"]["resolution"] < 1e-6
+    assert "printed precision" not in xml["summary"]["tolerance"]["reason"]
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "tolerance", str(run / "OUTCAR.relax2.gz")],
+                       capture_output=True, text=True, timeout=300)
+    marked = [ln for ln in r.stdout.splitlines() if "below the file's printed precision" in ln]
+    assert marked and all(float(ln.split()[0]) < tol["resolution"] for ln in marked)
+
+
 # ----------------------------------------------------------------------------- the code's symmetry
 def test_held_by_code_only_where_it_changes_the_reading(demo):
     flags = {run: {f["code"] for f in rec["flags"]} for run, rec in demo.items()}
     assert "held-by-code" in flags["B02_qe_vcrelax_sym"]       # pw.x kept 48 ops; the run kept Im-3m
     assert "held-by-code" not in flags["B01_qe_vcrelax"]       # it gained symmetry: not held
     assert "held-by-code" not in flags["B03_qe_vcrelax_nosym"]  # nosym=.true.
+    # a genuine VASP double relaxation with ISYM = 2 kept Fm-3m: read from its compressed settings
+    rec = driftwatch.analyze(DATA / "public" / "custodian_double_relax")
+    assert rec["run"]["code_settings"]["ISYM"] == 2
+    assert rec["summary"]["verdict"]["direction"] == "kept"
+    assert "held-by-code" in {f["code"] for f in rec["flags"]}
+    # the same settings on a run whose group changed: the code's symmetry is not what it shows
+    changed = json.loads(records.dumps(demo["B06_emt_bain.traj"]))
+    changed["run"]["code_settings"] = dict(rec["run"]["code_settings"])
+    assert "held-by-code" not in {f["code"] for f in rules.evaluate(changed, changed["config"])}
 
 
 # ----------------------------------------------------------------------------- one verdict everywhere
