@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 from ..errors import DriftwatchError, InputError, UnknownFormatError
-from ._io import peek, strip_compression
+from ._io import check_readable, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
@@ -172,11 +172,7 @@ def _resolve(path, format=None) -> _Pick:
             raise InputError(path, f"cannot list folder ({exc.strerror or exc})") from None
         pick = _pick_folder(path, format)
     else:
-        try:
-            with open(path, "rb"):
-                pass
-        except OSError as exc:
-            raise InputError(path, f"cannot open ({exc.strerror or exc})") from None
+        check_readable(path)          # refuses FIFOs and devices without blocking
         if format is None:
             fmt = _detect_file(path)
         else:
@@ -241,7 +237,7 @@ def _stream(pick: _Pick, ctx: ReadContext) -> Iterator[Frame]:
     n = 0
     last = None
     try:
-        for fr in checked(fmt.open(str(pick.source), ctx), pick.source):
+        for fr in checked(quiet_numbers(fmt.open(str(pick.source), ctx), ctx), pick.source):
             n += 1
             last = fr.step
             yield fr
@@ -301,7 +297,7 @@ register("vasp-xml", _A + "vasp:read_vasprun", globs=("*vasprun*.xml",), magic=r
 register("vasp-out", _A + "vasp:read_outcar", globs=("*OUTCAR*",), magic=rb"\A\s*vasp\.\d",
          description="VASP OUTCAR")
 register("vasp-xdatcar", _A + "vasp:read_xdatcar", globs=("*XDATCAR*",),
-         magic=rb"^\s*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
+         magic=rb"^[ \t]*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
 register("espresso-out", _A + "espresso:read_pw_out", globs=("*.pwo", "*pw*.out"),
          magic=rb"Program PWSCF", description="Quantum ESPRESSO pw.x output")
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
