@@ -7,6 +7,7 @@ runs only on the frames :func:`select_frames` picks.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from collections.abc import Iterable
 
@@ -144,6 +145,9 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
     table = lattice_table(run, geo, cfg["lattice"]["metric"])
     entries = _frame_entries(run, table)
+    if odd := geometry.position_warnings(run.cells, run.positions, run.pbc, run.steps):
+        run = dataclasses.replace(run, warnings=(*run.warnings, *(f"{run.source}: {w}"
+                                                                  for w in odd)))
     t1 = time.perf_counter()
     if frames is not None:
         chosen = sorted(set(frames))
