@@ -655,9 +655,28 @@ def _check_not_a_root(out: Path, roots) -> None:
                               f"--output outside it (a folder inside a root is fine)")
 
 
+_HELD_LOCKS: set = set()
+
+
+def _forget_locks_in_child() -> None:
+    """In a forked child (a worker pool, the report's pool): close the inherited lock descriptors,
+    so the lock ends with the audit process, never with a straggling child."""
+    for fd in list(_HELD_LOCKS):
+        try:
+            os.close(fd)
+        except OSError:
+            pass
+    _HELD_LOCKS.clear()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_locks_in_child)
+
+
 class _FolderLock:
     """One audit per output folder: ``fcntl.flock`` on ``OUTPUT/.driftwatch-audit.lock`` (advisory,
-    held until :meth:`release` or the end of the process; the file itself stays)."""
+    held until :meth:`release` or the end of the process; the file itself stays). Forked children
+    close their copy of the descriptor at once, so they never hold the lock."""
 
     def __init__(self):
         self.fd = None
@@ -674,7 +693,8 @@ class _FolderLock:
         except OSError as exc:
             if path.is_symlink():
                 raise _link_error(path) from None
-            raise OutputError(f"{path}: cannot open the audit lock ({exc.strerror or exc})") from exc
+            raise OutputError(f"{path}: cannot open the audit lock ({exc.strerror or exc})"
+                              ) from exc
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
@@ -691,9 +711,11 @@ class _FolderLock:
         os.ftruncate(fd, 0)
         os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
         self.fd = fd
+        _HELD_LOCKS.add(fd)
 
     def release(self) -> None:
         if self.fd is not None:
+            _HELD_LOCKS.discard(self.fd)
             os.close(self.fd)           # closing the last descriptor releases the flock
             self.fd = None
 
@@ -753,7 +775,8 @@ def _record_names(runs: list[RunSpec]) -> dict[str, str]:
     out = {}
     for rid, name in base.items():
         if counts[name.lower()] > 1:
-            name = f"{name[:100]}-{hashlib.sha256(rid.encode('utf-8', 'surrogatepass')).hexdigest()[:10]}"
+            digest = hashlib.sha256(rid.encode("utf-8", "surrogatepass")).hexdigest()
+            name = f"{name[:100]}-{digest[:10]}"
         out[rid] = f"{name}.json"
     return out
 
@@ -773,7 +796,8 @@ def _write_if_changed(path: Path, text: str) -> None:
     """Write ``text`` atomically unless the regular file at ``path`` holds it already (a link or
     special file there is never read through: it is replaced)."""
     try:
-        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0))
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) |
+                     getattr(os, "O_NONBLOCK", 0))
     except OSError:
         fd = None
     if fd is not None:

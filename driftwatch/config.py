@@ -127,13 +127,15 @@ def _check_range(key: str, kind, value) -> None:
 
 def _parse_quantity(text, units: dict, key: str, what: str) -> float:
     if isinstance(text, bool) or not isinstance(text, (str, int, float)):
-        raise ConfigError(f"{key}: expected a {what} with a unit (e.g. '1e-3 Å'), got {_short(text)}")
+        raise ConfigError(f"{key}: expected a {what} with a unit (e.g. '1e-3 Å'), "
+                          f"got {_short(text)}")
     if not isinstance(text, str):
         shown = "Å" if units is _LENGTH_UNITS else "deg"
         raise ConfigError(f"{key}: missing unit: write '{text} {shown}' (units: {', '.join(units)})")
     m = _QUANTITY.match(text)
     if not m:
-        raise ConfigError(f"{key}: cannot read {_short(text)} as a {what} with a unit (e.g. '1e-3 Å')")
+        raise ConfigError(f"{key}: cannot read {_short(text)} as a {what} with a unit "
+                          f"(e.g. '1e-3 Å')")
     unit = m.group(2).lower()
     if unit not in units:
         raise ConfigError(f"{key}: unknown {what} unit {m.group(2)!r} (use one of {', '.join(units)})")

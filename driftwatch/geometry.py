@@ -267,9 +267,9 @@ def position_warnings(cells, positions, pbc, steps=None, *, far: float = FAR_CEL
 
     Atoms more than ``far`` cell lengths outside the cell (every frame is checked; the first frame
     where the largest excursion occurs is named), and pairs of atoms closer than ``same_site`` Å
-    (checked on the first frame, then the last, with ASE's neighbour list; the first found). ``steps`` names frames by
-    the code's step numbers (default: frame indices). An empty list when all is well.
-    """
+    (checked on the first frame, then the last, with ASE's neighbour list; the first found).
+    ``steps`` names frames by the code's step numbers (default: frame indices). An empty list
+    when all is well."""
     cells, pos, _ = _frames(cells, positions)
     pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
     label = "frame" if steps is None else "step"

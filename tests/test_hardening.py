@@ -53,7 +53,8 @@ def _camp(root: Path, n: int = 2, name: str = "camp") -> Path:
     """A small campaign of genuine ASE trajectories (example_runs)."""
     camp = root / name
     camp.mkdir(parents=True)
-    src = [RUNS / "L06_emt_bfgs.traj", RUNS / "L09_emt_fixed_square.traj", RUNS / "L07_emt_fire.traj"]
+    src = [RUNS / "L06_emt_bfgs.traj", RUNS / "L09_emt_fixed_square.traj",
+           RUNS / "L07_emt_fire.traj"]
     for i in range(n):
         shutil.copy(src[i % len(src)], camp / f"run{i}.traj")
     return camp
@@ -63,7 +64,8 @@ def _snapshot(path: Path) -> dict:
     """Every file below ``path`` (or the file itself) with its bytes."""
     if path.is_file():
         return {path.name: path.read_bytes()}
-    return {str(p.relative_to(path)): p.read_bytes() for p in sorted(path.rglob("*")) if p.is_file()}
+    return {str(p.relative_to(path)): p.read_bytes() for p in sorted(path.rglob("*"))
+            if p.is_file()}
 
 
 def _one_line(text: str) -> str:
@@ -75,7 +77,7 @@ def _one_line(text: str) -> str:
 
 # ============================================================================ decompression bombs
 _CHILD = """
-import resource, sys
+import sys
 from driftwatch.adapters import read_run
 from driftwatch.errors import InputError
 try:
@@ -83,7 +85,9 @@ try:
     print("READ")
 except InputError as exc:
     print("REFUSED", exc)
-print("MAXRSS_KB", resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+# the peak resident set of this process image (ru_maxrss would keep the forking parent's peak)
+print("MAXRSS_KB", next(int(line.split()[1]) for line in open("/proc/self/status")
+                        if line.startswith("VmHWM:")))
 """
 
 
@@ -227,7 +231,8 @@ def test_fifo_and_links_to_devices_are_refused_at_open(tmp_path):
         assert str(camp / name) in err and f"not a regular file ({kind})" in err, err
     assert "not a run folder" in failed["camp/v"]                    # the device is not a candidate
     # inspect on a FIFO and on a link to /dev/zero: one line naming the file, exit 1
-    for target, kind in ((tmp_path / "pipe.traj", "FIFO"), (camp / "zero.traj", "character device")):
+    for target, kind in ((tmp_path / "pipe.traj", "FIFO"),
+                         (camp / "zero.traj", "character device")):
         r = _dw("inspect", str(target), timeout=60)
         assert r.returncode == 1
         line = _one_line(r.stderr.decode())
@@ -390,11 +395,17 @@ def test_overwrite_removes_only_driftwatchs_own_temporaries(tmp_path):
     assert not ours.exists()
 
 
-def _lock_holder(out: Path):
-    """A second real process that takes the output folder's lock the way an audit does."""
+def _lock_holder(out: Path, wait: bool = True):
+    """A second real process that takes the output folder's lock the way an audit does (it prints
+    'locked', or 'busy' when ``wait`` is False and another process holds the lock)."""
     code = ("import fcntl, os, sys, time\n"
-            f"fd = os.open({str(out / '.driftwatch-audit.lock')!r}, os.O_RDWR | os.O_CREAT, 0o644)\n"
-            "fcntl.flock(fd, fcntl.LOCK_EX)\nprint('locked', flush=True)\ntime.sleep(300)\n")
+            f"fd = os.open({str(out / '.driftwatch-audit.lock')!r}, os.O_RDWR | os.O_CREAT)\n"
+            "try:\n"
+            f"    fcntl.flock(fd, fcntl.LOCK_EX{'' if wait else ' | fcntl.LOCK_NB'})\n"
+            "except BlockingIOError:\n"
+            "    print('busy', flush=True)\n"
+            "    sys.exit()\n"
+            "print('locked', flush=True)\ntime.sleep(300)\n")
     return subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
 
 
@@ -435,6 +446,30 @@ def test_one_audit_per_output_folder_at_a_time(tmp_path):
     finally:
         holder.kill()
         holder.wait()
+
+
+def test_the_folder_lock_is_never_held_by_a_forked_child(tmp_path):
+    # a worker (here: any child forked by multiprocessing while the lock is held) must not keep
+    # the folder locked after the audit process releases it or dies (flock is shared with forks)
+    import multiprocessing as mp
+    from driftwatch.campaign import _FolderLock
+    out = tmp_path / "out"
+    out.mkdir()
+    lock = _FolderLock()
+    lock.acquire(out)
+    child = mp.get_context("fork").Process(target=time.sleep, args=(60,))
+    child.start()
+    try:
+        lock.release()
+        holder = _lock_holder(out, wait=False)
+        try:
+            assert holder.stdout.readline().strip() == "locked"   # not blocked by the child
+        finally:
+            holder.kill()
+            holder.wait()
+    finally:
+        child.kill()
+        child.join()
 
 
 # ============================================================================ CSV and names
@@ -629,7 +664,8 @@ RANGES = {
     "zero_gap": ("geometry:\n  vacuum_gap: 0 Å\n", r"geometry\.vacuum_gap"),
     "symprec_5A": ("symmetry:\n  symprec_max: 5 Å\n", r"symmetry\.symprec_max"),
     "negative_on_change": ("selection:\n  on_change: -0.1 Å\n", r"selection\.on_change"),
-    "negative_far": ("rules:\n  spglib_overcall:\n    far: -1 Å\n", r"rules\.spglib_overcall\.far"),
+    "negative_far": ("rules:\n  spglib_overcall:\n    far: -1 Å\n",
+                     r"rules\.spglib_overcall\.far"),
     "precision_1000": ("symmetry:\n  precision: 1000\n", r"symmetry\.precision"),
 }
 
@@ -667,14 +703,15 @@ def test_atoms_far_outside_the_cell_and_atoms_on_one_site_are_warned(tmp_path):
     assert len(w) == 1 and "atom 1" in w[0] and str(far) in w[0], rec["run"]["warnings"]
     same = tmp_path / "same.extxyz"
     ase.io.write(same, [Atoms("C3", positions=[(0, 0, 8), (1.5, 1.5, 8), (4.5, 1.5, 8)],
-                              cell=cell, pbc=True)] * 2)       # atoms 1 and 2: one site, one cell apart
+                              cell=cell, pbc=True)] * 2)    # atoms 1 and 2: one site, a cell apart
     rec = driftwatch.analyze(same, frames=[])
     w = [x for x in rec["run"]["warnings"] if "same position" in x]
     assert len(w) == 1 and "atoms 1 and 2" in w[0], rec["run"]["warnings"]
     # genuine runs: no such warning
     for p in (RUNS / "L06_emt_bfgs.traj", QE / "relax_atoms_to_sites"):
         rec = driftwatch.analyze(p)
-        assert not [x for x in rec["run"]["warnings"] if "outside the cell" in x or "same position" in x]
+        assert not [x for x in rec["run"]["warnings"]
+                    if "outside the cell" in x or "same position" in x]
     # the function itself: a few cells out is normal (unwrapped coordinates), 1e6 cells is not
     cells = np.array([cell] * 2)
     pos = np.array([[[0, 0, 8], [3 * 5 + 1, 0, 8]], [[0, 0, 8], [3e6 + 1.5, 0, 8]]], float)
@@ -739,3 +776,16 @@ def test_disk_full_is_an_output_error_naming_the_file(tmp_path):
     finally:
         if mounted:
             subprocess.run(["umount", str(mnt)], check=False)
+
+
+def test_readme_states_the_limits_the_code_has():
+    # one fact, one number: the README's "Limits on inputs and outputs" quotes the constants
+    text = " ".join((REPO / "README.md").read_text(encoding="utf-8").split())
+    lo, hi = dwconfig.RANGES["symmetry.grid_points"][:2]
+    for fact in (f"{_io.MAX_LINE:,} characters", f"decompress to {_io.MAX_DECOMPRESSED / 1e9:g} GB",
+                 f"beyond {_io.RATIO_FLOOR / 1e6:g} MB, to {_io.MAX_RATIO}x",
+                 f"or {_io.MAX_TEXT_RATIO}x for the formats read line by line",
+                 f"may hold {dwconfig.MAX_BYTES / 1e6:g} MB", f"`grid_points` {lo}-{hi}",
+                 f"`symprec` up to {dwconfig.RANGES['symmetry.symprec_max'][1]:g} Å",
+                 "DRIFTWATCH_MAX_DECOMPRESSED"):
+        assert fact in text, fact
