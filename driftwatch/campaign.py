@@ -4,7 +4,13 @@
 
 1. **Output folder** (default ``./driftwatch-audit``): a marker ``.driftwatch-audit.json`` names the
    roots it belongs to. An existing non-empty folder without a marker, or with a marker for other
-   roots, is refused unless ``overwrite=True``. Nothing driftwatch did not write is ever deleted.
+   roots, is refused unless ``overwrite=True``; so is a folder that is or contains a root. Nothing
+   driftwatch did not write is ever deleted. One audit per folder at a time: an advisory lock
+   (``fcntl.flock`` on ``.driftwatch-audit.lock``, held for the whole audit, released by the
+   kernel when the process ends) refuses a second one. driftwatch makes no symbolic links: a link
+   found where it writes (``records/``, ``records/stale/``, ``.cache/``, ``report/``, the
+   database, the summary files) stops the audit before anything is written through it; a link
+   put in place of one record file is replaced by the file (its target is never touched).
 2. **Discovery** (:func:`discover`): run folders (a VASP set, or one pw.x output) count once, their
    files are not counted again; other files count when an adapter recognises them. Hidden entries,
    the output folder and the database file are skipped; symlinked folders are followed once (real
@@ -17,7 +23,10 @@
    any ``concurrent.futures.Executor`` passed as ``executor=``. A worker never raises: it returns
    the record or a one-line error, so one bad run never stops the audit. A worker process that dies
    (a crash in a native library, out of memory) breaks the pool: the runs not finished are re-run
-   one at a time so that only the culprit is reported failed.
+   one at a time so that only the culprit is reported failed. Local workers end with their parent:
+   they ask Linux to kill them when it dies (``PR_SET_PDEATHSIG``) and watch their parent process
+   id. A SIGTERM to the audit kills its workers, says so on stderr and ends the audit by that
+   signal (exit status 143 in a shell); finished runs are kept in the cache.
 5. **Outputs**, each written atomically: ``records/<run>.json`` as results arrive (without the
    ``timing`` block and spglib's per-frame ``calls`` counter, which differ between two analyses of
    the same input, so an interrupted and re-run audit leaves the same bytes as an uninterrupted
@@ -28,11 +37,11 @@
 
 from __future__ import annotations
 
-import csv
 import fnmatch
-import io
 import json
 import os
+import signal
+import stat
 import sys
 import threading
 import time
@@ -47,10 +56,11 @@ from .cache import versions as _versions
 from .rules import campaign_advice
 from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
 
-__all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "DEFAULT_OUTPUT"]
+__all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "LOCK", "DEFAULT_OUTPUT"]
 
 SCHEMA = "driftwatch/campaign-1"
 MARKER = ".driftwatch-audit.json"
+LOCK = ".driftwatch-audit.lock"
 DEFAULT_OUTPUT = "driftwatch-audit"
 TABLE_LIMIT = 500          # the printed table lists every run up to this many, else only notable ones
 
@@ -211,10 +221,73 @@ def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], 
 _WORKER_CFG = None
 
 
-def _init_worker(cfg) -> None:
+def _init_worker(cfg, parent: int | None = None, audit: int | None = None) -> None:
     global _WORKER_CFG
     _WORKER_CFG = cfg
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)     # a forked worker inherits the audit's handler
+    _die_with_parent(parent, audit)
     import driftwatch.track  # noqa: F401  (import once per worker process, not per run)
+
+
+_PR_SET_PDEATHSIG = 1       # <linux/prctl.h>
+
+
+def _process_stamp(pid: int):
+    """(state, start time) of a live process, from /proc (Linux); ("?", None) where /proc is not
+    available but the process exists; None when it is gone."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            data = fh.read()
+    except FileNotFoundError:
+        return None
+    except OSError:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return None
+        except OSError:
+            pass
+        return ("?", None)
+    fields = data[data.rindex(b")") + 2:].split()
+    return fields[0].decode(), fields[19]          # stat fields 3 (state) and 22 (start time)
+
+
+def _die_with_parent(parent: int | None, audit: int | None = None) -> None:
+    """Make this worker end when the audit ends, however it ends (SIGKILL included).
+
+    Linux: ``prctl(PR_SET_PDEATHSIG, SIGKILL)``: the kernel kills the worker when the process that
+    started it exits. Everywhere: a daemon thread that checks once a second that the parent
+    process id is unchanged and that the audit process (``audit``; with a fork server it is not
+    the parent, and the fork server outlives it while workers hold it open) still runs, the same
+    process (same start time) and not a zombie; else the worker exits. ``parent``: the pid the
+    worker must have as parent (None with a fork server); a worker whose parent is already gone
+    exits at once."""
+    ppid = os.getppid()
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+            ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):
+            pass
+    stamp = _process_stamp(audit) if audit is not None else None
+    if (parent is not None and ppid != parent) or ppid == 1 or \
+            (audit is not None and (stamp is None or stamp[0] == "Z")):
+        os._exit(1)
+
+    def gone() -> bool:
+        if os.getppid() != ppid:
+            return True
+        if audit is None:
+            return False
+        now = _process_stamp(audit)
+        return now is None or now[0] == "Z" or now[1] != stamp[1]
+
+    def watch():
+        while not gone():
+            time.sleep(1.0)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="driftwatch-parent-watch", daemon=True).start()
 
 
 def _one_line(exc: BaseException, path: str) -> str:
@@ -355,49 +428,119 @@ def _drain(executor: Executor, chunks, cfg, *, pass_cfg: bool):
 
 def _terminate(ex) -> None:
     """Stop a process pool's workers at once (results already stored are kept; the rest is
-    recomputed on the next audit)."""
+    recomputed on the next audit): SIGTERM, then SIGKILL to any still alive after 2 s."""
+    procs = list((getattr(ex, "_processes", None) or {}).values())
     ex.shutdown(wait=False, cancel_futures=True)
-    for proc in list((getattr(ex, "_processes", None) or {}).values()):
+    for proc in procs:
         if proc.is_alive():
             proc.terminate()
+    deadline = time.monotonic() + 2.0
+    for proc in procs:
+        proc.join(max(0.0, deadline - time.monotonic()))
+        if proc.is_alive():
+            proc.kill()
+            proc.join(1.0)
 
 
-def _local_pool(todo, cfg, workers):
-    """Process pool; after a worker death, the unfinished runs go one at a time in a fresh pool."""
+_POOLS: list = []          # the local process pools now running (for the SIGTERM handler)
+_HANDLER_PID = None
+_SIGTERM_NOTE = b""
+
+
+def _on_sigterm(signum, frame):
+    """SIGTERM while local workers run: kill the workers, say so, and end by the same signal.
+
+    Nothing is unwound (the interrupted code may be inside the executor's own machinery): records
+    and cache entries are written atomically, so what finished is kept; the lock goes with the
+    process. A forked worker that has not yet reset the handler just ends."""
+    if os.getpid() == _HANDLER_PID:
+        for ex in list(_POOLS):
+            for proc in list((getattr(ex, "_processes", None) or {}).values()):
+                try:
+                    os.kill(proc.pid, signal.SIGKILL)
+                except (OSError, AttributeError, TypeError):
+                    pass
+        try:
+            os.write(2, _SIGTERM_NOTE)
+        except OSError:
+            pass
+    signal.signal(signum, signal.SIG_DFL)
+    os.kill(os.getpid(), signum)
+
+
+def _catch_sigterm(note: str = ""):
+    """Handle SIGTERM as :func:`_on_sigterm` while local workers run (main thread only); returns
+    the previous handler to restore, or None when none was installed."""
+    global _HANDLER_PID, _SIGTERM_NOTE
+    if threading.current_thread() is not threading.main_thread():
+        return None
+    _HANDLER_PID = os.getpid()
+    _SIGTERM_NOTE = note.encode("utf-8", "replace")
+    try:
+        return signal.signal(signal.SIGTERM, _on_sigterm)
+    except (ValueError, OSError):
+        return None
+
+
+def _new_pool(workers, cfg):
     from concurrent.futures import ProcessPoolExecutor
+    ctx = _mp_context()
+    parent = os.getpid() if ctx.get_start_method() in ("fork", "spawn") else None
+    ex = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
+                             initargs=(cfg, parent, os.getpid()))
+    _POOLS.append(ex)
+    return ex
+
+
+def _end_pool(ex, *, wait: bool) -> None:
+    ex.shutdown(wait=wait, cancel_futures=True)
+    if ex in _POOLS:
+        _POOLS.remove(ex)
+
+
+def _local_pool(todo, cfg, workers, note: str = ""):
+    """Process pool; after a worker death, the unfinished runs go one at a time in a fresh pool.
+    ``note`` is printed on stderr if SIGTERM ends the audit while the pool runs."""
     from concurrent.futures.process import BrokenProcessPool
     size = _chunk_size(len(todo), workers)
     finished = set()
-    ex = ProcessPoolExecutor(max_workers=workers, mp_context=_mp_context(),
-                             initializer=_init_worker, initargs=(cfg,))
-    broken = False
+    previous = _catch_sigterm(note)
     try:
-        for res in _drain(ex, _chunks(todo, size), cfg, pass_cfg=False):
-            if res.get("broken_pool"):
-                broken = True
-                continue
-            finished.add(res["run"])
-            yield res
-    except BaseException:               # interrupted (Ctrl-C, generator closed): stop the workers now
-        _terminate(ex)
-        raise
-    finally:
-        ex.shutdown(wait=not broken, cancel_futures=True)
-    if not broken:
-        return
-    for rid, path in [t for t in todo if t[0] not in finished]:
-        ex = ProcessPoolExecutor(max_workers=1, mp_context=_mp_context(),
-                                 initializer=_init_worker, initargs=(cfg,))
+        ex = _new_pool(workers, cfg)
+        broken = False
         try:
-            yield ex.submit(_analyse_chunk, [(rid, path)]).result()[0]
-        except BrokenProcessPool:
-            yield _failed_chunk([(rid, path)], "the worker process died while analysing this run "
-                                              "(crash in a native library or out of memory)")[0]
+            for res in _drain(ex, _chunks(todo, size), cfg, pass_cfg=False):
+                if res.get("broken_pool"):
+                    broken = True
+                    continue
+                finished.add(res["run"])
+                yield res
+        except BaseException:       # interrupted (Ctrl-C, generator closed): stop the workers now
+            _terminate(ex)
+            raise
         finally:
-            ex.shutdown(wait=False, cancel_futures=True)
+            _end_pool(ex, wait=not broken)
+        if not broken:
+            return
+        for rid, path in [t for t in todo if t[0] not in finished]:
+            ex = _new_pool(1, cfg)
+            try:
+                yield ex.submit(_analyse_chunk, [(rid, path)]).result()[0]
+            except BrokenProcessPool:
+                yield _failed_chunk([(rid, path)], "the worker process died while analysing this "
+                                                  "run (crash in a native library or out of "
+                                                  "memory)")[0]
+            except BaseException:
+                _terminate(ex)
+                raise
+            finally:
+                _end_pool(ex, wait=False)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
 
 
-def _execute(todo, cfg, *, workers, scheduler, executor):
+def _execute(todo, cfg, *, workers, scheduler, executor, note=""):
     """Yield a result for every (run id, path) in ``todo``. Returns (generator, description)."""
     if not todo:
         return iter(()), "none"
@@ -410,7 +553,7 @@ def _execute(todo, cfg, *, workers, scheduler, executor):
     workers = max(1, min(workers, len(todo)))
     if workers == 1:
         return (analyse_run(rid, path, cfg) for rid, path in todo), "in process"
-    return _local_pool(todo, cfg, workers), f"{workers} local processes"
+    return _local_pool(todo, cfg, workers, note), f"{workers} local processes"
 
 
 def _dask(todo, cfg, scheduler):
@@ -485,6 +628,105 @@ def _progress_on(progress) -> bool:
 
 
 # ----------------------------------------------------------------------------- output folder
+_OWN_PATHS = ("records", "records/stale", ".cache", "report", "report/runs", MARKER, LOCK,
+              "campaign.csv", "campaign.json")
+"""Fixed paths of an audit folder: a symbolic link at any of them is refused (driftwatch makes
+none); so is one at the default database ``runs.db`` and its ``.lock``."""
+
+
+def _link_error(path: Path) -> OutputError:
+    return OutputError(f"{path}: is a symbolic link, which driftwatch did not make; refusing to "
+                       f"write through it (remove the link, or choose another --output)")
+
+
+def _check_links(out: Path, db_name: str | None = None) -> None:
+    """Raise OutputError for a symbolic link at one of the audit folder's own paths."""
+    paths = [out / name for name in _OWN_PATHS]
+    default_db = out / "runs.db"
+    if db_name is None or db_name == str(default_db.absolute()):
+        paths += [default_db, out / "runs.db.lock"]
+    for p in paths:
+        if p.is_symlink():
+            raise _link_error(p)
+
+
+def _check_not_a_root(out: Path, roots) -> None:
+    """Refuse an output folder that is a campaign root or contains one (discovery skips the output
+    folder, so nothing would be audited)."""
+    real = os.path.realpath(out)
+    for root in roots:
+        r = os.path.realpath(root)
+        if r == real or r.startswith(real.rstrip(os.sep) + os.sep):
+            raise OutputError(f"{out}: the output folder is or contains the campaign root {root}, "
+                              f"whose runs would all be skipped as audit outputs; choose an "
+                              f"--output outside it (a folder inside a root is fine)")
+
+
+_HELD_LOCKS: set = set()
+
+
+def _forget_locks_in_child() -> None:
+    """In a forked child (a worker pool, the report's pool): close the inherited lock descriptors,
+    so the lock ends with the audit process, never with a straggling child."""
+    for fd in list(_HELD_LOCKS):
+        try:
+            os.close(fd)
+        except OSError:
+            pass
+    _HELD_LOCKS.clear()
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_forget_locks_in_child)
+
+
+class _FolderLock:
+    """One audit per output folder: ``fcntl.flock`` on ``OUTPUT/.driftwatch-audit.lock`` (advisory,
+    held until :meth:`release` or the end of the process; the file itself stays). Forked children
+    close their copy of the descriptor at once, so they never hold the lock."""
+
+    def __init__(self):
+        self.fd = None
+
+    def acquire(self, out: Path) -> None:
+        try:
+            import fcntl
+        except ImportError:             # no flock on this platform: unprotected, as before
+            return
+        path = out / LOCK
+        flags = os.O_RDWR | os.O_CREAT | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NOFOLLOW", 0)
+        try:
+            fd = os.open(path, flags, 0o644)
+        except OSError as exc:
+            if path.is_symlink():
+                raise _link_error(path) from None
+            raise OutputError(f"{path}: cannot open the audit lock ({exc.strerror or exc})"
+                              ) from exc
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip()
+            os.close(fd)
+            who = f" (process {holder})" if holder.isdigit() else ""
+            raise OutputError(f"{out}: another driftwatch audit{who} is writing into this folder; "
+                              f"wait for it to finish, or choose another --output") from None
+        except OSError as exc:          # a filesystem without locks (some Lustre/NFS mounts)
+            os.close(fd)
+            sys.stderr.write(f"driftwatch: warning: {path}: cannot lock ({exc.strerror or exc}); "
+                             f"make sure no other audit writes into {out} at the same time\n")
+            return
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+        self.fd = fd
+        _HELD_LOCKS.add(fd)
+
+    def release(self) -> None:
+        if self.fd is not None:
+            _HELD_LOCKS.discard(self.fd)
+            os.close(self.fd)           # closing the last descriptor releases the flock
+            self.fd = None
+
+
 def _read_marker(out: Path) -> dict | None:
     try:
         data = json.loads((out / MARKER).read_text(encoding="utf-8"))
@@ -500,12 +742,16 @@ def _write_marker(out: Path, roots: list[str], record_files: list[str]) -> None:
          "records": sorted(record_files)}, indent=1) + "\n")
 
 
-def _prepare_output(out: Path, roots: list[str], overwrite: bool) -> dict:
-    """Check the output folder may be used; create it and its marker. Returns the old marker."""
+def _prepare_output(out: Path, roots: list[str], overwrite: bool,
+                    lock: _FolderLock | None = None, db_name: str | None = None) -> dict:
+    """Check the output folder may be used; create it, lock it and write its marker. Returns the
+    old marker."""
     if out.exists() and not out.is_dir():
         raise OutputError(f"{out}: exists and is not a folder; choose another --output")
+    if out.is_dir():
+        _check_links(out, db_name)
     marker = _read_marker(out) if out.is_dir() else None
-    if out.is_dir() and any(out.iterdir()) and not overwrite:
+    if out.is_dir() and any(p.name != LOCK for p in out.iterdir()) and not overwrite:
         if marker is None:
             raise OutputError(f"{out}: folder exists, is not empty and holds no driftwatch audit; "
                               f"choose another --output, or pass --overwrite to write into it")
@@ -515,9 +761,14 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool) -> dict:
                               f"--output, or pass --overwrite to replace its audit files")
     try:
         out.mkdir(parents=True, exist_ok=True)
+        if lock is not None:
+            lock.acquire(out)
+        _check_links(out, db_name)
         for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
             records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
         _write_marker(out, roots, (marker or {}).get("records", []))
+    except OutputError:
+        raise
     except OSError as exc:
         raise OutputError(f"{out}: cannot write the output folder ({exc.strerror or exc})") from exc
     return marker or {}
@@ -531,39 +782,88 @@ def _record_names(runs: list[RunSpec]) -> dict[str, str]:
     out = {}
     for rid, name in base.items():
         if counts[name.lower()] > 1:
-            name = f"{name[:100]}-{hashlib.sha256(rid.encode()).hexdigest()[:10]}"
+            digest = hashlib.sha256(rid.encode("utf-8", "surrogatepass")).hexdigest()
+            name = f"{name[:100]}-{digest[:10]}"
         out[rid] = f"{name}.json"
     return out
 
 
 def _inside(folder: Path, file: Path) -> Path:
-    f = file.resolve()
-    if not f.is_relative_to(folder.resolve()):
+    """``file`` checked to lie in ``folder`` (itself not a link) or below. The last component is
+    not followed: a link there is replaced by the atomic rename, never written through."""
+    if folder.is_symlink():
+        raise _link_error(folder)
+    parent = file.parent.resolve()
+    if not parent.is_relative_to(folder.resolve()):
         raise OutputError(f"{file}: would be written outside the output folder {folder}")
-    return f
+    return parent / file.name
 
 
 def _write_if_changed(path: Path, text: str) -> None:
+    """Write ``text`` atomically unless the regular file at ``path`` holds it already (a link or
+    special file there is never read through: it is replaced)."""
     try:
-        if path.read_text(encoding="utf-8") == text:
-            return
-    except (OSError, UnicodeDecodeError):
-        pass
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) |
+                     getattr(os, "O_NONBLOCK", 0))
+    except OSError:
+        fd = None
+    if fd is not None:
+        with os.fdopen(fd, "rb") as fh:
+            if stat.S_ISREG(os.fstat(fh.fileno()).st_mode) and \
+                    fh.read() == text.encode("utf-8", "driftwatch-names"):
+                return
     records.write_text_atomic(path, text)
 
 
 def _retire_stale(rec_dir: Path, previous: list[str], current: set[str]) -> list[str]:
     """Move records driftwatch wrote earlier that are no longer current to records/stale/."""
     moved = []
+    stale = rec_dir / "stale"
     for name in previous:
         src = rec_dir / name
-        if name in current or "/" in name or not src.is_file():
+        if name in current or "/" in name or src.is_symlink() or not src.is_file():
             continue
-        dst = rec_dir / "stale" / name
-        dst.parent.mkdir(exist_ok=True)
-        os.replace(src, dst)
+        if stale.is_symlink() or rec_dir.is_symlink():
+            raise _link_error(stale if stale.is_symlink() else rec_dir)
+        try:
+            stale.mkdir(exist_ok=True)
+            os.replace(src, stale / name)
+        except OSError as exc:
+            raise OutputError(f"{src}: cannot move to {stale} ({exc.strerror or exc})") from exc
         moved.append(name)
     return moved
+
+
+def _regular_file_runs(runs: list[RunSpec]) -> tuple[list[RunSpec], list[dict]]:
+    """Split file runs that are FIFOs, devices or sockets (behind a link) off as failed entries:
+    reading or hashing them could block or never end."""
+    from .adapters._io import not_regular
+    keep, bad = [], []
+    for r in runs:
+        if r.kind == "file":
+            try:
+                mode = os.stat(r.path).st_mode
+            except OSError:
+                mode = None              # gone or a broken link: its reader says so
+            if mode is not None and not stat.S_ISREG(mode):
+                bad.append({"run": r.id, "source": r.path, "error": str(not_regular(r.path, mode))})
+                continue
+        keep.append(r)
+    return keep, bad
+
+
+class _Shown:
+    """A text stream that writes names safely (:func:`records.shown_lines`: terminal escapes and
+    undecodable bytes as ``\\xNN``)."""
+
+    def __init__(self, stream):
+        self.stream = stream
+
+    def write(self, text: str) -> int:
+        return self.stream.write(records.shown_lines(text))
+
+    def flush(self) -> None:
+        self.stream.flush()
 
 
 # ----------------------------------------------------------------------------- summary
@@ -645,11 +945,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
 
 # ----------------------------------------------------------------------------- the audit
 def _csv_text(rows: list[dict]) -> str:
-    buf = io.StringIO()
-    w = csv.DictWriter(buf, fieldnames=list(records.CSV_COLUMNS), lineterminator="\n")
-    w.writeheader()
-    w.writerows(rows)
-    return buf.getvalue()
+    return records.csv_text(rows)         # text cells escaped (formulas, control characters)
 
 
 def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=None,
@@ -682,7 +978,23 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
     Returns:
         The campaign summary (schema ``driftwatch/campaign-1``), also written to
         ``OUTPUT/campaign.json``.
+
+    Raises:
+        OutputError: the output folder cannot be used (another audit holds it, a root is inside
+            it, a symbolic link where driftwatch writes, a full disk: the message names the file).
     """
+    lock = _FolderLock()
+    try:
+        return _run_audit(lock, roots, output, config=config, include=include, exclude=exclude,
+                          workers=workers, scheduler=scheduler, db=db, use_cache=use_cache,
+                          overwrite=overwrite, report=report, progress=progress, reject_on=reject_on,
+                          executor=executor, quiet=quiet)
+    finally:
+        lock.release()
+
+
+def _run_audit(lock, roots, output, *, config, include, exclude, workers, scheduler, db,
+               use_cache, overwrite, report, progress, reject_on, executor, quiet) -> dict:
     from . import config as _config
     from .store import check_lock, db_location
     t0 = time.perf_counter()
@@ -693,11 +1005,14 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
     out = Path(output if output is not None else DEFAULT_OUTPUT)
     roots_abs = sorted(str(Path(r).resolve()) for r in roots)
     db_name = db_location(db, out)
+    _check_not_a_root(out, roots)
     check_lock(db_name)                       # fail before hours of analysis, not after
-    old_marker = _prepare_output(out, roots_abs, overwrite)
+    old_marker = _prepare_output(out, roots_abs, overwrite, lock, db_name)
 
     skip = [out] + ([] if "://" in db_name else [db_name])
     runs, failed = discover(roots, include=include, exclude=exclude, skip=skip)
+    runs, not_files = _regular_file_runs(runs)
+    failed += not_files
     if scheduler:      # Dask workers may run elsewhere: give them absolute paths (shared filesystem)
         runs = [RunSpec(r.id, os.path.abspath(r.path), r.kind) for r in runs]
     res = _Results(out, _record_names(runs), Cache(out / ".cache", enabled=use_cache))
@@ -705,7 +1020,9 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
     if (workers or os.cpu_count() or 1) > 1 or scheduler or executor is not None:
         todo = _largest_first(todo, {r.id: r.kind for r in runs})
     gen, how = _execute(todo, cfg, workers=workers or os.cpu_count() or 1, scheduler=scheduler,
-                        executor=executor)
+                        executor=executor, note=f"driftwatch: terminated by SIGTERM: workers "
+                        f"stopped; runs finished so far are kept in {records.shown(out)}/.cache; "
+                        f"re-run the same command to finish\n")
     bar = _Progress(len(runs), _progress_on(progress), initial=len(runs) - len(todo))
     try:
         for r in gen:
@@ -723,6 +1040,7 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
                        for r in runs if not res.results[r.id]["ok"]
                        and not res.results[r.id].get("skipped")]
     current = {res.names[r["run"]] for r in ok}
+    _check_links(out, db_name)                # again: a link planted while the runs were analysed
     stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
     db_problems = _write_tables(out, db_name, ok, failed, skipped)
     summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
@@ -736,10 +1054,10 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     tty = getattr(sys.stdout, "isatty", lambda: False)()
     if quiet is False or (quiet is None and tty):
-        _print_table(summary, _summary_rows(ok, failed, skipped), sys.stdout)
+        _print_table(summary, _summary_rows(ok, failed, skipped), _Shown(sys.stdout))
     elif quiet is None and progress not in ("off", False):
         # stdout is a pipe or file (maybe the JSON of --json): keep it clean, table on stderr
-        _print_table(summary, _summary_rows(ok, failed, skipped), sys.stderr)
+        _print_table(summary, _summary_rows(ok, failed, skipped), _Shown(sys.stderr))
     return summary
 
 

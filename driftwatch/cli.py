@@ -125,6 +125,13 @@ def _reject_codes(args, cfg) -> list[str]:
     return check_codes(cfg.get("reject_on", []), "reject_on (config)")
 
 
+def _shown(text) -> str:
+    """Text safe for a terminal or a log: in names, control characters (terminal escapes) and
+    bytes that are not UTF-8 are shown as ``\\xNN``; line breaks of the text are kept."""
+    from .records import shown_lines
+    return shown_lines(text)
+
+
 def _print_json(obj) -> None:
     from .records import dumps
     sys.stdout.write(dumps(obj) + "\n")
@@ -211,7 +218,7 @@ def _cmd_inspect(args) -> int:
     if args.json:
         _print_json(rec)
     else:
-        print(_inspect_table(rec))
+        print(_shown(_inspect_table(rec)))
     return EXIT_GATED if rules.select(rec["flags"], codes) else EXIT_OK
 
 
@@ -238,7 +245,7 @@ def _cmd_tolerance(args) -> int:
         _print_json(out)
         return EXIT_OK
     kind = "layer group" if geo.dimension == 2 else "space group"
-    print(f"{run.source}, frame {i}: {kind} and lattice type across symprec (Å), "
+    print(f"{_shown(run.source)}, frame {i}: {kind} and lattice type across symprec (Å), "
           f"angle_tolerance {spec['angle_tolerance']:g} deg")
     print(f"{'symprec/Å':>10}  {kind:>22}  {'ops':>4}  lattice")
     floor = adv.get("resolution")
@@ -293,7 +300,7 @@ def _cmd_report(args) -> int:
     if args.json:
         _print_json({"index": str(index)})
     else:
-        print(f"report: {index}")
+        print(_shown(f"report: {index}"))
     return EXIT_OK
 
 
@@ -338,7 +345,8 @@ def main(argv=None) -> int:
             msg = f"{exc.filename}: {exc.strerror or exc}"
         else:
             msg = f"{type(exc).__name__}: {exc} (internal error; rerun with --debug and report it)"
-        print(f"driftwatch: error: {msg}", file=sys.stderr)
+        from .records import shown
+        print(f"driftwatch: error: {shown(msg)}", file=sys.stderr)   # one line, names escaped
         return EXIT_ERROR
 
 

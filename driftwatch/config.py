@@ -3,7 +3,10 @@
 A config file is a partial tree over ``configs/default.yaml``; ``extends: NAME`` starts from a preset
 (``default``, ``monolayer``, ``bulk``, ``tolerance``) or from another file. Quantities with a dimension
 are strings with a unit (``"1e-3 Å"``, ``"5 deg"``); they are converted to Å and degrees on load.
-Unknown keys, wrong types and missing units raise :class:`ConfigError` naming the key.
+Unknown keys, wrong types, missing units and values out of range (:data:`RANGES`) raise
+:class:`ConfigError` naming the key. YAML anchors and aliases (``&name``, ``*name``) are refused: a
+config has no use for them, and nested aliases expand exponentially (a few hundred bytes can stand
+for gigabytes). A config file may hold at most :data:`MAX_BYTES`.
 
 Environment: ``DRIFTWATCH_CONFIG`` names the config used when none is given.
 """
@@ -11,15 +14,19 @@ Environment: ``DRIFTWATCH_CONFIG`` names the config used when none is given.
 from __future__ import annotations
 
 import copy
+import math
+import reprlib
 import os
 import re
+import stat
 from pathlib import Path
 
 import yaml
 
 from .errors import ConfigError
 
-__all__ = ["load", "coerce", "preset_path", "PRESETS", "parse_length", "parse_angle", "fingerprint"]
+__all__ = ["load", "coerce", "preset_path", "PRESETS", "parse_length", "parse_angle", "fingerprint",
+           "RANGES", "MAX_BYTES"]
 
 CONFIG_DIR = Path(__file__).resolve().parent / "configs"
 PRESETS = ("default", "monolayer", "bulk", "tolerance", "screen")
@@ -75,15 +82,75 @@ _RENAMED = {
 }
 
 
+_INF = math.inf
+RANGES = {
+    # key: (low, high, low included, high included); lengths in Å, angles in degrees
+    "geometry.vacuum_gap": (0.0, _INF, False, False),
+    "symmetry.symprec_min": (0.0, 1.0, False, True),
+    "symmetry.symprec_max": (0.0, 1.0, False, True),
+    "symmetry.grid_points": (2, 200, True, True),
+    "symmetry.angle_tolerance": (0.0, 30.0, False, True),      # or exactly -1: spglib's default
+    "symmetry.precision": (1.0, 2.0, False, True),
+    "selection.on_change": (0.0, _INF, True, False),
+    "rules.lattice.within": (0.0, _INF, False, False),
+    "rules.lattice.start_away": (0.0, _INF, True, False),
+    "rules.lattice.left_beyond": (0.0, _INF, False, False),
+    "rules.lattice.nearing_fraction": (0.0, 1.0, False, True),
+    "rules.structure.symprec": (0.0, 1.0, False, True),
+    "rules.persistence.steps": (1, 100_000, True, True),
+    "rules.handedness_flip.min_chiral": (0.0, _INF, True, False),
+    "rules.symprec_dependent.low": (0.0, 1.0, False, True),
+    "rules.symprec_dependent.high": (0.0, 1.0, False, True),
+    "rules.loose_symprec.symprec": (0.0, 1.0, False, True),
+    "rules.loose_symprec.far": (0.0, _INF, True, False),
+    "rules.atoms_break_lattice.within": (0.0, _INF, False, False),
+    "rules.atoms_break_lattice.symprec": (0.0, 1.0, False, True),
+    "tolerance.min_plateau": (1.0, _INF, True, False),
+    "report.common_symprecs": (0.0, 1.0, False, True),
+}
+"""Allowed value of each numeric key. symprec values above 1 Å are meaningless for interatomic
+distances of 1-3 Å and make spglib slow (one call at 0.5 Å: ~1 s on a rattled 192-atom cell);
+angle tolerances above 30 deg would call clearly distorted cells symmetric; more than 200 grid
+points multiply spglib's cost without a gain (bisection locates breakpoints); thresholds are
+positive (a negative one silently disables its flag). Every value must be finite."""
+MAX_BYTES = 1_000_000
+"""The largest config file read (bytes)."""
+
+
+def _unit_of(kind) -> str:
+    return {"length": " Å", "angle": " deg"}.get(kind, "")
+
+
+def _check_range(key: str, kind, value) -> None:
+    base = key.split("[", 1)[0]
+    if isinstance(value, float) and not math.isfinite(value):
+        raise ConfigError(f"{key}: must be a finite number, got {value}")
+    if base not in RANGES:
+        return
+    if base == "symmetry.angle_tolerance" and value == -1.0:
+        return
+    lo, hi, lo_in, hi_in = RANGES[base]
+    ok = (value >= lo if lo_in else value > lo) and (value <= hi if hi_in else value < hi)
+    if not ok:
+        u = _unit_of(kind)
+        low = f"at least {lo:g}{u}" if lo_in else f"more than {lo:g}{u}"
+        span = low if hi == _INF else \
+            f"{low} and {'at most' if hi_in else 'below'} {hi:g}{u}"
+        extra = " (or -1 deg for spglib's default)" if base == "symmetry.angle_tolerance" else ""
+        raise ConfigError(f"{key}: must be {span}{extra}, got {value:g}{u}")
+
+
 def _parse_quantity(text, units: dict, key: str, what: str) -> float:
     if isinstance(text, bool) or not isinstance(text, (str, int, float)):
-        raise ConfigError(f"{key}: expected a {what} with a unit (e.g. '1e-3 Å'), got {text!r}")
+        raise ConfigError(f"{key}: expected a {what} with a unit (e.g. '1e-3 Å'), "
+                          f"got {_short(text)}")
     if not isinstance(text, str):
         shown = "Å" if units is _LENGTH_UNITS else "deg"
         raise ConfigError(f"{key}: missing unit: write '{text} {shown}' (units: {', '.join(units)})")
     m = _QUANTITY.match(text)
     if not m:
-        raise ConfigError(f"{key}: cannot read {text!r} as a {what} with a unit (e.g. '1e-3 Å')")
+        raise ConfigError(f"{key}: cannot read {_short(text)} as a {what} with a unit "
+                          f"(e.g. '1e-3 Å')")
     unit = m.group(2).lower()
     if unit not in units:
         raise ConfigError(f"{key}: unknown {what} unit {m.group(2)!r} (use one of {', '.join(units)})")
@@ -103,46 +170,90 @@ def parse_angle(text, key="angle") -> float:
 def _convert(key, kind, value):
     if isinstance(kind, tuple) and kind[0] == "choice":
         if value not in kind[1]:
-            raise ConfigError(f"{key}: must be one of {', '.join(kind[1])}, got {value!r}")
+            raise ConfigError(f"{key}: must be one of {', '.join(kind[1])}, got {_short(value)}")
         return value
     if isinstance(kind, tuple) and kind[0] == "list":
         if not isinstance(value, list):
             raise ConfigError(f"{key}: expected a list, got {type(value).__name__}")
         return [_convert(f"{key}[{i}]", kind[1], v) for i, v in enumerate(value)]
     if kind == "length":
-        return parse_length(value, key)
+        out = parse_length(value, key)
+        _check_range(key, kind, out)
+        return out
     if kind == "angle":
-        return parse_angle(value, key)
+        out = parse_angle(value, key)
+        _check_range(key, kind, out)
+        return out
     if kind == "bool":
         if not isinstance(value, bool):
-            raise ConfigError(f"{key}: expected true or false, got {value!r}")
+            raise ConfigError(f"{key}: expected true or false, got {_short(value)}")
         return value
     if kind == "int":
         if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-            raise ConfigError(f"{key}: expected a whole number >= 0, got {value!r}")
+            raise ConfigError(f"{key}: expected a whole number >= 0, got {_short(value)}")
+        _check_range(key, kind, value)
         return value
     if kind == "fraction":
         if isinstance(value, bool) or not isinstance(value, (int, float)) or value <= 0:
-            raise ConfigError(f"{key}: expected a positive number (no unit), got {value!r}")
+            raise ConfigError(f"{key}: expected a positive number (no unit), got {_short(value)}")
+        _check_range(key, kind, float(value))
         return float(value)
     if not isinstance(value, str):
-        raise ConfigError(f"{key}: expected text, got {value!r}")
+        raise ConfigError(f"{key}: expected text, got {_short(value)}")
     return value
+
+
+class _AnchorFound(yaml.YAMLError):
+    def __init__(self, what: str, mark):
+        super().__init__(what)
+        self.what, self.mark = what, mark
+
+
+class _PlainLoader(yaml.SafeLoader):
+    """PyYAML's safe loader, refusing anchors and aliases as soon as the composer meets one (before
+    anything is expanded or built)."""
+
+    def compose_node(self, parent, index):
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            raise _AnchorFound(f"an alias (*{event.anchor})", event.start_mark)
+        if getattr(event, "anchor", None) is not None:
+            raise _AnchorFound(f"an anchor (&{event.anchor})", event.start_mark)
+        return super().compose_node(parent, index)
+
+
+def _short(value, limit: int = 60) -> str:
+    """``repr`` of a config value cut to ``limit`` characters (never a huge structure)."""
+    r = reprlib.Repr()
+    r.maxlevel, r.maxlist, r.maxdict, r.maxstring, r.maxother = 2, 4, 4, limit, limit
+    text = r.repr(value)
+    return text if len(text) <= limit else text[:limit - 3] + "..."
 
 
 def _read_yaml(path: Path) -> dict:
     try:
+        if not stat.S_ISREG(os.stat(path).st_mode):
+            raise ConfigError(f"{path}: not a regular file (a config must be a YAML file)")
+        if os.path.getsize(path) > MAX_BYTES:
+            raise ConfigError(f"{path}: larger than {MAX_BYTES:,} bytes: not a config")
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise ConfigError(f"{path}: cannot read config ({exc.strerror or exc})") from exc
     except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: config is not UTF-8 text") from exc
+    loader = _PlainLoader(text)
     try:
-        data = yaml.safe_load(text)
+        data = loader.get_single_data()
+    except _AnchorFound as exc:
+        raise ConfigError(f"{path}: YAML anchors and aliases are not allowed in a config (found "
+                          f"{exc.what[:40]} at line {exc.mark.line + 1}); write each value out"
+                          ) from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" at line {mark.line + 1}" if mark else ""
         raise ConfigError(f"{path}: invalid YAML{where}") from exc
+    finally:
+        loader.dispose()
     if data is None:
         return {}
     if not isinstance(data, dict):
@@ -181,12 +292,12 @@ def _merge(base: dict, over: dict, origin: str, prefix: str = "", origins=None) 
     for key, value in over.items():
         full = f"{prefix}{key}"
         if not isinstance(key, str):
-            raise ConfigError(f"{origin}: key {key!r} is not text")
+            raise ConfigError(f"{origin}: key {_short(key)} is not text")
         if isinstance(value, dict):
             if full in _RENAMED:
                 raise ConfigError(f"{origin}: {full!r} was renamed: use {_RENAMED[full]!r}")
             if not any(k.startswith(full + ".") for k in _KINDS):
-                raise ConfigError(f"{origin}: unknown key {full!r}")
+                raise ConfigError(f"{origin}: unknown key {_short(full)}")
             out[key] = _merge(out.get(key, {}) if isinstance(out.get(key), dict) else {},
                               value, origin, full + ".", origins)
         else:
@@ -195,7 +306,7 @@ def _merge(base: dict, over: dict, origin: str, prefix: str = "", origins=None) 
             if full not in _KINDS:
                 hint = [k for k in _KINDS if k.rsplit(".", 1)[-1] == key]
                 extra = f" (did you mean {hint[0]!r}?)" if hint else ""
-                raise ConfigError(f"{origin}: unknown key {full!r}{extra}")
+                raise ConfigError(f"{origin}: unknown key {_short(full)}{extra}")
             out[key] = value
             if origins is not None:
                 origins[full] = origin

@@ -34,7 +34,8 @@ import numpy as np
 from .errors import GeometryError
 
 __all__ = ["Geometry", "Layer", "classify", "vacuum_gaps", "plane_normals", "inplane_bases",
-           "find_layers", "layers_in_bulk", "DEFAULT_GAP"]
+           "find_layers", "layers_in_bulk", "position_warnings", "DEFAULT_GAP", "FAR_CELLS",
+           "SAME_SITE"]
 
 DEFAULT_GAP = 6.0
 """Å. Vacuum thicker than this along exactly one axis makes a cell a layer (common practice:
@@ -249,3 +250,77 @@ def layers_in_bulk(cell, positions, numbers, kcutoff: float | None = None) -> li
     [] when the crystal is not layered. See :func:`find_layers` for atoms and normals.
     """
     return [L.basis for L in find_layers(cell, positions, numbers, kcutoff)]
+
+
+FAR_CELLS = 1000.0
+"""An atom more than this many cell lengths outside the cell (a fractional coordinate beyond
++-1000) is reported: no relaxation moves an atom that far (a unit or file error), and wrapped
+back into the cell its position loses about |coordinate| x 2e-16 of precision."""
+SAME_SITE = 0.1
+"""Å. Two atoms closer than this (through the periodic images too) are reported as sitting at
+one position (common practice: the shortest bond, H2, is 0.74 Å; a duplicated atom is ~0 Å)."""
+
+
+def position_warnings(cells, positions, pbc, steps=None, *, far: float = FAR_CELLS,
+                      same_site: float = SAME_SITE) -> list[str]:
+    """Warnings (plain sentences) about positions no relaxation produces.
+
+    Atoms more than ``far`` cell lengths outside the cell (every frame is checked; the first frame
+    where the largest excursion occurs is named), and pairs of atoms closer than ``same_site`` Å
+    (checked on the first frame, then the last, with ASE's neighbour list; the first found).
+    ``steps`` names frames by the code's step numbers (default: frame indices). An empty list
+    when all is well."""
+    cells, pos, _ = _frames(cells, positions)
+    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
+    label = "frame" if steps is None else "step"
+    steps = np.arange(len(cells)) if steps is None else np.asarray(steps)
+    out = []
+    if not pbc.all():                       # ASE writes a layer's vacuum vector as 0 (pbc False)
+        from ase.geometry import complete_cell
+        cells = np.array([complete_cell(c) for c in cells])
+    try:
+        with np.errstate(all="ignore"):
+            frac = np.linalg.solve(np.transpose(cells, (0, 2, 1)), np.transpose(pos, (0, 2, 1)))
+    except np.linalg.LinAlgError:
+        return out                          # a singular cell: the readers refuse it already
+    frac = np.transpose(frac, (0, 2, 1))                       # (n, N, 3)
+    excess = np.where(pbc, np.abs(frac), 0.0)
+    excess = np.where(np.isfinite(excess), excess, np.inf)
+    worst = excess.max(axis=2)                                 # (n, N)
+    bad = worst > far
+    if bad.any():
+        i, a = np.unravel_index(int(np.argmax(np.where(bad, worst, -1.0))), worst.shape)
+        n_atoms = int(bad.any(axis=0).sum())
+        w = float(worst[i, a])
+        err = w * float(np.abs(cells[i]).max()) * np.finfo(float).eps
+        others = f" ({n_atoms} atoms in all)" if n_atoms > 1 else ""
+        out.append(f"atom {a} lies {w:.3g} cell lengths outside the cell at {label} "
+                   f"{int(steps[i])}{others}: no relaxation moves an atom that far (a unit or "
+                   f"file error?); wrapped into the cell its position is uncertain by {err:.2g} "
+                   f"Å, so results involving it are not meaningful")
+    for i in sorted({0, len(cells) - 1}):
+        if len(pos[i]) < 2:
+            continue
+        pair = _closest_pair(cells[i], frac[i], pbc, same_site)
+        if pair is not None:
+            a, b, d = pair
+            out.append(f"atoms {a} and {b} are {d:.2g} Å apart at {label} {int(steps[i])} "
+                       f"(through the periodic images): two atoms at the same position (a "
+                       f"duplicated atom?)")
+            break                           # the first frame checked that has one is enough
+    return out
+
+
+def _closest_pair(cell, frac, pbc, cutoff):
+    """(i, j, distance Å) of the closest pair of atoms nearer than ``cutoff``, or None."""
+    from ase.neighborlist import primitive_neighbor_list
+    wrapped = np.where(pbc, frac - np.floor(frac), frac)
+    if not np.isfinite(wrapped).all():
+        return None
+    i, j, d = primitive_neighbor_list("ijd", pbc, cell, wrapped @ cell, cutoff,
+                                      self_interaction=False)
+    keep = i < j
+    if not keep.any():
+        return None
+    k = int(np.argmin(np.where(keep, d, np.inf)))
+    return int(i[k]), int(j[k]), float(d[k])

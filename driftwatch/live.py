@@ -450,8 +450,8 @@ class _Printer:
         self.stream, self.quiet = stream, quiet
 
     def __call__(self, text: str) -> None:
-        if not self.quiet:
-            self.stream.write(text + "\n")
+        if not self.quiet:       # file names in the lines are shown escaped (records.shown)
+            self.stream.write(records.shown_lines(text) + "\n")
             self.stream.flush()
 
 

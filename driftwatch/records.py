@@ -2,22 +2,33 @@
 
 The record is documented field by field in ``docs/record.md``. Writers are atomic: a temporary file in
 the destination folder, flushed and fsynced, then renamed over the target, so a killed process leaves
-either the old file or the new one, never a torn one.
+either the old file or the new one, never a torn one. The rename replaces a symbolic link planted at
+the target; it never writes through it. Temporary files are named ``.driftwatch-XXXXXXXX.tmp``
+(:data:`TEMP_PREFIX`; short, so any target name fits NAME_MAX), and only those are ever cleaned up.
+
+Names from the file system may hold bytes that are not UTF-8 (kept by Python as surrogate escapes)
+and control characters (terminal escapes, tabs, line breaks). :func:`shown` is the one spelling of
+such a name in every text output (terminal, CSV, report, ase.db): ``\\xNN`` for each such byte or
+control character. :func:`csv_cell` also keeps spreadsheets from reading a cell as a formula.
 """
 
 from __future__ import annotations
 
+import codecs
+import csv
+import io
 import json
 import math
 import os
+import re
 import tempfile
 from pathlib import Path
 
 import numpy as np
 
-__all__ = ["SCHEMA", "OLD_SCHEMAS", "upgrade", "new_record", "write_json", "read_json", "write_text_atomic", "dumps",
-           "remove_stale_temporaries",
-           "csv_row", "CSV_COLUMNS", "db_key_values", "verdict_fields", "safe_name"]
+__all__ = ["SCHEMA", "OLD_SCHEMAS", "upgrade", "new_record", "write_json", "read_json",
+           "write_text_atomic", "dumps", "remove_stale_temporaries", "TEMP_PREFIX", "shown", "csv_cell",
+           "csv_text", "csv_row", "CSV_COLUMNS", "db_key_values", "verdict_fields", "safe_name"]
 
 SCHEMA = "driftwatch/run-2"
 OLD_SCHEMAS = ("driftwatch/run-1",)
@@ -56,43 +67,67 @@ def dumps(record: dict, indent: int | None = 1) -> str:
                       allow_nan=False)
 
 
+TEMP_PREFIX = ".driftwatch-"
+"""Temporary files of :func:`write_text_atomic` are ``.driftwatch-XXXXXXXX.tmp`` (8 random
+characters): recognisably driftwatch's, and short enough for any folder."""
+_TEMP_NAME = re.compile(r"^\.driftwatch-[a-z0-9_]{8}\.tmp$")
+
+
+def _name_bytes(exc: UnicodeEncodeError):
+    """Codec error handler: an undecodable byte (surrogate escape) becomes ``\\xNN``, any other
+    lone surrogate ``\\uXXXX``, so the text written is always valid UTF-8."""
+    bad = exc.object[exc.start:exc.end]
+    return "".join(f"\\x{ord(c) - 0xDC00:02x}" if 0xDC80 <= ord(c) <= 0xDCFF else f"\\u{ord(c):04x}"
+                   for c in bad), exc.end
+
+
+codecs.register_error("driftwatch-names", _name_bytes)
+
+
 def write_text_atomic(path, text: str, *, fsync: bool = True) -> Path:
     """Write ``text`` to ``path`` atomically (temp file in the same folder, fsync, rename).
 
+    The file is valid UTF-8: bytes of names that are not UTF-8 are written as ``\\xNN``.
     ``fsync=False`` skips the flush to disk (for caches: after a power cut an entry may be empty,
-    which a reader must treat as missing)."""
+    which a reader must treat as missing). A failure (disk full, permissions, quota) raises
+    :class:`~driftwatch.errors.OutputError` naming the file, and leaves no temporary behind."""
+    from .errors import OutputError
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    tmp = None
     try:
-        # surrogateescape: names that are not UTF-8 on disk are written back as their own bytes
-        with os.fdopen(fd, "w", encoding="utf-8", errors="surrogateescape") as fh:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=TEMP_PREFIX, suffix=".tmp", dir=path.parent)
+        with os.fdopen(fd, "w", encoding="utf-8", errors="driftwatch-names") as fh:
             fh.write(text)
             if fsync:
                 fh.flush()
                 os.fsync(fh.fileno())
         os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the file the user's usual mode
         os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+        tmp = None
+    except OSError as exc:
+        if isinstance(exc, OutputError):
+            raise
+        raise OutputError(f"{path}: cannot write ({exc.strerror or exc})") from exc
+    finally:
+        if tmp is not None:
+            try:
+                os.unlink(tmp)
+            except OSError:
+                pass
     return path
 
 
 def remove_stale_temporaries(folder) -> list[str]:
-    """Delete temporary files a killed :func:`write_text_atomic` left in ``folder`` (not recursive)."""
-    import re
-    pattern = re.compile(r"^\..+\.tmp$")
+    """Delete temporary files a killed :func:`write_text_atomic` left in ``folder`` (not
+    recursive; only driftwatch's own, named ``.driftwatch-XXXXXXXX.tmp``)."""
     removed = []
     try:
         entries = list(os.scandir(folder))
     except OSError:
         return removed
     for e in entries:
-        if pattern.match(e.name) and e.is_file(follow_symlinks=False):
+        if _TEMP_NAME.match(e.name) and e.is_file(follow_symlinks=False):
             try:
                 os.unlink(e.path)
                 removed.append(e.name)
@@ -121,10 +156,64 @@ def read_json(path) -> dict:
 
 
 def safe_name(text: str, limit: int = 120) -> str:
-    """A file-name-safe token from a run id (no separators, no '..', no leading dot)."""
+    """A file-name-safe token from a run id (no separators, no '..', no leading dot), at most
+    ``limit`` bytes of UTF-8 (a name of any script fits a file system's 255-byte limit)."""
     out = "".join(c if c.isalnum() or c in "-_.+=" else "_" for c in str(text))
     out = out.replace("..", "_").lstrip(".") or "run"
-    return out[:limit]
+    return out.encode("utf-8", "surrogatepass")[:limit].decode("utf-8", "ignore") or "run"
+
+
+# C0 and C1 control characters, DEL, and the Unicode bidirectional controls (which reorder what a
+# terminal shows); undecodable bytes (surrogate escapes, U+DC80..U+DCFF) and other lone surrogates
+_SHOWN = {c: f"\\x{c:02x}" for c in (*range(0x20), 0x7F, *range(0x80, 0xA0))}
+_SHOWN.update({0x09: "\\t", 0x0A: "\\n", 0x0D: "\\r"})
+_SHOWN.update({c: f"\\u{c:04x}" for c in (*range(0x202A, 0x202F), *range(0x2066, 0x206A))})
+_SHOWN.update({c: f"\\u{c:04x}" for c in range(0xD800, 0xE000)})
+_SHOWN.update({c: f"\\x{c - 0xDC00:02x}" for c in range(0xDC80, 0xDD00)})
+
+
+def shown(text) -> str:
+    """``text`` safe to show (terminal, CSV cell, report, ase.db value): undecodable bytes and
+    control characters as ``\\xNN`` (``\\t``, ``\\n``, ``\\r``), valid UTF-8, one line."""
+    text = str(text)
+    if text.isascii() and text.isprintable():
+        return text
+    return text.translate(_SHOWN)
+
+
+def shown_lines(text) -> str:
+    """:func:`shown` applied to each line of ``text`` (the line breaks are kept)."""
+    return "\n".join(shown(line) for line in str(text).split("\n"))
+
+
+_FORMULA = ("=", "+", "-", "@")
+
+
+def csv_cell(value):
+    """A CSV cell that a spreadsheet shows as text: names as :func:`shown` (so no tab, CR or line
+    break), and text starting with ``= + - @`` that is not a number behind an apostrophe (OWASP's
+    advice against CSV formula injection). Non-text values pass unchanged."""
+    if not isinstance(value, str):
+        return value
+    text = shown(value)
+    if text.startswith(_FORMULA):
+        try:
+            float(text)
+        except ValueError:
+            text = "'" + text
+    return text
+
+
+def csv_text(rows: list[dict], columns=None) -> str:
+    """CSV text (header and one line per row; columns default to :data:`CSV_COLUMNS`), each cell
+    through :func:`csv_cell`."""
+    columns = list(columns or CSV_COLUMNS)
+    buf = io.StringIO()
+    w = csv.DictWriter(buf, fieldnames=columns, lineterminator="\n")
+    w.writeheader()
+    for row in rows:
+        w.writerow({k: csv_cell(v) for k, v in row.items()})
+    return buf.getvalue()
 
 
 def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, versions: dict) -> dict:

@@ -2,7 +2,9 @@
 
 Any ``ase.db.connect`` name works (``runs.db`` SQLite by default, ``.json``, ``postgresql://...``).
 Rows are keyed by ``run_id``: a re-audit replaces a run's row instead of adding a second one; rows
-of other runs are never touched. All rows go in one ``with db:`` transaction.
+of other runs are never touched. All rows go in one ``with db:`` transaction. Text values are
+stored as :func:`driftwatch.records.shown` spells them (a name that is not UTF-8 on disk gets
+``\\xNN`` for its odd bytes), so the same run always has the same ``run_id``.
 
 ase.db guards a file database with ``<file>.lock`` and waits for it *forever*; a job killed while
 writing leaves that file behind. :func:`check_lock` therefore refuses to start when the lock file
@@ -44,7 +46,7 @@ def lock_path(name: str) -> Path | None:
 def check_lock(name: str) -> None:
     """Raise OutputError when ase.db's lock file of ``name`` exists (ase.db would wait forever)."""
     lock = lock_path(name)
-    if lock is not None and lock.exists():
+    if lock is not None and os.path.lexists(lock):      # a dangling link too (ase.db would wait)
         raise OutputError(f"{lock}: lock file of the results database exists (a killed job leaves "
                           f"one); delete it if no other driftwatch audit or ase.db writer is "
                           f"running, then re-run (finished runs come from the cache)")
@@ -84,6 +86,10 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
     Returns one-line problems for rows ase.db rejected (the other rows are still written).
     Raises OutputError for a locked or unwritable database.
     """
+    from .records import shown
+    rows = [(shown(run_id), structure,
+             {k: shown(v) if isinstance(v, str) else v for k, v in kvp.items()}
+             | {"run_id": shown(run_id)}) for run_id, structure, kvp in rows]
     check_lock(name)
     if not name.startswith(_URL_PREFIXES):
         Path(name).parent.mkdir(parents=True, exist_ok=True)
@@ -92,7 +98,8 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
     try:
         with db:
             wanted = {run_id for run_id, _, _ in rows}
-            old = [row.id for row in _rows_with_run_id(db) if row.get("run_id") in wanted]
+            old = [row.id for row in _rows_with_run_id(db)     # (rows an older version wrote
+                   if shown(row.get("run_id")) in wanted]     # with raw names match too)
             if old:
                 db.delete(old)
             for run_id, structure, kvp in rows:

@@ -7,6 +7,7 @@ runs only on the frames :func:`select_frames` picks.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from collections.abc import Iterable
 
@@ -158,6 +159,14 @@ def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
     return {"symprec": r["symprec"], "type": t, "deformation": dfm.get(t, 0.0)}
 
 
+def _versions() -> dict:
+    """What the record says produced it: driftwatch, spglib and its error mode. Not spglib's
+    failure counter (``symmetry.versions()["failures_seen"]``): it counts the whole process, so a
+    record holding it would depend on what ran earlier in the same process."""
+    v = {k: x for k, x in symmetry.versions().items() if k != "failures_seen"}
+    return {"driftwatch": __version__, **v}
+
+
 def _fixed_cell(cells: np.ndarray) -> bool:
     scale = max(float(np.abs(cells[0]).max()), 1.0)
     return bool(np.all(np.abs(cells - cells[0]) <= 1e-9 * scale))
@@ -222,6 +231,9 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
     table = lattice_table(run, geo, cfg["lattice"]["metric"])
     entries = _frame_entries(run, table)
+    if odd := geometry.position_warnings(run.cells, run.positions, run.pbc, run.steps):
+        run = dataclasses.replace(run, warnings=(*run.warnings, *(f"{run.source}: {w}"
+                                                                  for w in odd)))
     t1 = time.perf_counter()
     if frames is not None:
         chosen = sorted(set(frames))
@@ -245,7 +257,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
                                          primitive=_primitive_entry(run, geo, cfg, last))
     t2 = time.perf_counter()
     record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
-                                versions={"driftwatch": __version__, **symmetry.versions()})
+                                versions=_versions())
     record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete)
     record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
                         "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen),

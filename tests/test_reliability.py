@@ -647,8 +647,8 @@ def test_rerun_removes_temporary_files_left_by_a_kill(tmp_path):
     camp = _campaign(tmp_path, 2)
     out = tmp_path / "out"
     audit([camp], out, workers=1, report=False, progress="off", quiet=True)
-    left = [out / "records" / ".camp_grp0_L-00.traj.json.k1ll3d.tmp",
-            out / ".cache" / ".0123abcd.json.k1ll3d.tmp"]
+    left = [out / "records" / ".driftwatch-k1ll3d01.tmp",             # records.TEMP_PREFIX
+            out / ".cache" / ".driftwatch-k1ll3d02.tmp"]
     for p in left:
         p.write_text('{"schema": "driftwatch/run-1", "fra')           # torn by the kill
     audit([camp], out, workers=1, report=False, progress="off", quiet=True)

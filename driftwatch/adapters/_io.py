@@ -1,8 +1,23 @@
-"""File access for adapters: transparent decompression and complete lines only.
+"""File access for adapters: regular files only, bounded decompression, complete lines only.
 
 A file that is still being written (or was cut by a killed job) usually ends in
 the middle of a line. :class:`Lines` never hands out that partial last line, so
 a number cut in half can never be parsed as a smaller number.
+
+Limits (hostile or broken files must fail fast, in bounded memory):
+
+* Only regular files are opened: a FIFO, a device (``/dev/zero``) or a socket, directly or
+  behind a symbolic link, is refused at open time (it could block or never end).
+* A compressed input (``.gz``, ``.bz2``, ``.xz``) is decompressed in steps of at most
+  :data:`STEP` bytes (never one large buffer re-copied on each read). It may decompress to at
+  most :data:`MAX_DECOMPRESSED` bytes (``$DRIFTWATCH_MAX_DECOMPRESSED`` sets another limit) and,
+  beyond :data:`RATIO_FLOOR` bytes, to at most :data:`MAX_RATIO` times the compressed bytes
+  consumed, or :data:`MAX_TEXT_RATIO` times for text read line by line. Genuine VASP and pw.x
+  outputs compress 5-15x; a stream of zeros or of blank lines 1000x (gzip) to 10^6x (bzip2, xz);
+  a vasprun.xml with large all-zero projection blocks can reach a few hundred.
+* A text line may hold at most :data:`MAX_LINE` characters.
+
+Each limit raises :class:`~driftwatch.errors.InputError` naming the file and the limit.
 """
 from __future__ import annotations
 
@@ -10,14 +25,55 @@ import bz2
 import io
 import lzma
 import os
+import re
+import stat
 import zlib
 
-__all__ = ["COMPRESSED", "STREAM_ERRORS", "open_bytes", "stream_truncated", "peek",
-           "strip_compression", "Lines", "tail_bytes"]
+from ..errors import InputError
+
+__all__ = ["COMPRESSED", "STREAM_ERRORS", "open_bytes", "open_regular", "check_readable",
+           "stream_truncated", "peek", "strip_compression", "Lines", "tail_bytes",
+           "max_decompressed", "quiet_numbers", "NotRegularFile", "MAX_DECOMPRESSED", "MAX_RATIO",
+           "MAX_TEXT_RATIO", "RATIO_FLOOR", "MAX_LINE", "STEP"]
 
 COMPRESSED = (".gz", ".bz2", ".xz")
 _MAGIC = ((b"\x1f\x8b", "gz"), (b"BZh", "bz2"), (b"\xfd7zXZ\x00", "xz"))
 STREAM_ERRORS = (EOFError, zlib.error, OSError, lzma.LZMAError)
+
+MAX_DECOMPRESSED = 4_000_000_000
+"""Bytes (4 GB): the most one compressed input may decompress to. ``$DRIFTWATCH_MAX_DECOMPRESSED``
+overrides it (bytes, or with a decimal suffix: ``500M``, ``16G``)."""
+MAX_RATIO = 1000
+"""Decompressed bytes per compressed byte allowed beyond :data:`RATIO_FLOOR` (a bomb's
+signature)."""
+MAX_TEXT_RATIO = 300
+"""The same for text read line by line (each line costs Python work: a bomb of blank lines must
+stop early). Genuine line-oriented outputs (OUTCAR, pw.x, XDATCAR, extended XYZ) compress 5-15x; a
+generated 2,000-step OUTCAR whose every step repeats the same padding blocks, 38x (gzip) and 113x
+(xz)."""
+RATIO_FLOOR = 1_000_000
+"""Bytes: below this much output any compression ratio is accepted."""
+MAX_LINE = 1 << 20
+"""Characters (1,048,576): the longest text line a reader accepts (simulation outputs stay
+below a few hundred; a line of zeros from a damaged or hostile file would otherwise be held
+whole in memory)."""
+STEP = 1 << 20
+"""Bytes: the most output one decompression step produces (and the decompressor holds)."""
+_IN_CHUNK = 1 << 14
+_SUFFIX = {"": 1, "K": 10**3, "M": 10**6, "G": 10**9, "T": 10**12}
+
+
+def max_decompressed() -> int:
+    """The decompressed-size limit in bytes: ``$DRIFTWATCH_MAX_DECOMPRESSED`` or the default.
+    Raises ValueError for a value that is not a size."""
+    text = os.environ.get("DRIFTWATCH_MAX_DECOMPRESSED", "").strip()
+    if not text:
+        return MAX_DECOMPRESSED
+    m = re.fullmatch(r"(\d+(?:\.\d*)?)\s*([kKmMgGtT]?)[bB]?", text)
+    if not m:
+        raise ValueError(f"$DRIFTWATCH_MAX_DECOMPRESSED={text!r} is not a size (bytes, or with "
+                         f"k, M, G: e.g. 16G)")
+    return int(float(m.group(1)) * _SUFFIX[m.group(2).upper()])
 
 
 def strip_compression(name: str) -> str:
@@ -28,12 +84,63 @@ def strip_compression(name: str) -> str:
     return name
 
 
+# ---------------------------------------------------------------- regular files only
+class NotRegularFile(InputError, OSError):
+    """A FIFO, device, socket or folder where a file was expected (also an OSError, so code that
+    skips unopenable files skips it too)."""
+
+
+_KINDS = ((stat.S_ISFIFO, "FIFO"), (stat.S_ISCHR, "character device"),
+          (stat.S_ISBLK, "block device"), (stat.S_ISSOCK, "socket"), (stat.S_ISDIR, "folder"))
+
+
+def _kind_of(mode: int) -> str:
+    return next((name for test, name in _KINDS if test(mode)), "special file")
+
+
+def not_regular(path, mode: int) -> NotRegularFile:
+    """The error for a path whose ``st_mode`` is not a regular file."""
+    return NotRegularFile(path, f"not a regular file ({_kind_of(mode)}): refused, reading it "
+                                f"could block or never end")
+
+
+def open_regular(path):
+    """Open ``path`` for binary reading if it is a regular file (a symbolic link is followed).
+
+    FIFOs, devices and sockets are refused with :class:`NotRegularFile` without blocking: the
+    file is opened non-blocking and checked with ``fstat`` before anything is read.
+    """
+    path = os.fspath(path)
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_CLOEXEC", 0))
+    try:
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            raise not_regular(path, mode)
+        if hasattr(os, "set_blocking"):
+            os.set_blocking(fd, True)
+        return os.fdopen(fd, "rb")
+    except BaseException:
+        os.close(fd)
+        raise
+
+
+def check_readable(path) -> None:
+    """Raise InputError unless ``path`` is a regular file this process can open."""
+    try:
+        with open_regular(path):
+            pass
+    except InputError:
+        raise
+    except OSError as exc:
+        raise InputError(path, f"cannot open ({exc.strerror or exc})") from None
+
+
 def _kind(path):
     path = os.fspath(path)
     for ext, kind in ((".gz", "gz"), (".bz2", "bz2"), (".xz", "xz")):
         if path.endswith(ext):
             return kind
-    with open(path, "rb") as fh:
+    with open_regular(path) as fh:
         head = fh.read(6)
     for magic, kind in _MAGIC:
         if head.startswith(magic):
@@ -41,48 +148,116 @@ def _kind(path):
     return None
 
 
+# ---------------------------------------------------------------- bounded decompression
 class _Decompressed(io.RawIOBase):
-    """Incremental decompression that survives a cut file: it returns every byte that could
-    be decompressed and then reports EOF, setting ``truncated`` (the stdlib readers raise
-    EOFError instead and drop the last decompressed block)."""
+    """Incremental, bounded decompression that survives a cut file.
+
+    It returns every byte that could be decompressed and then reports EOF, setting
+    ``truncated`` (the stdlib readers raise EOFError instead and drop the last decompressed
+    block). Output comes in steps of at most :data:`STEP` bytes; concatenated members (gzip,
+    bzip2, xz all allow them) are read one after the other. Exceeding :func:`max_decompressed`
+    or ``max_ratio`` (decompressed per compressed byte consumed, beyond :data:`RATIO_FLOOR`)
+    raises InputError naming the file.
+    """
 
     _NEW = {"gz": lambda: zlib.decompressobj(16 + zlib.MAX_WBITS),
             "bz2": bz2.BZ2Decompressor, "xz": lzma.LZMADecompressor}
 
-    def __init__(self, path, kind):
-        self._raw = open(path, "rb")
+    def __init__(self, path, kind, max_ratio: float = MAX_RATIO):
+        self.name = os.fspath(path)
+        self.max_ratio = max_ratio
+        try:
+            self.limit = max_decompressed()
+        except ValueError as exc:
+            raise InputError(path, str(exc)) from None
+        self._raw = open_regular(path)
         self._kind = kind
         self._d = self._NEW[kind]()
-        self._buf = b""
+        self._pending = b""      # compressed bytes not yet handed to the decompressor
+        self._out = b""          # the current step's output ...
+        self._pos = 0            # ... and how much of it was read
         self._eof = False
         self.truncated = False
+        self.produced = 0        # decompressed bytes so far
+        self._read = 0           # compressed bytes read from the file so far
 
     def readable(self):
         return True
 
-    def _fill(self):
-        while not self._buf and not self._eof:
-            chunk = self._raw.read(1 << 16)
-            if not chunk:
-                self._eof = True
-                self.truncated = not self._d.eof
-                return
-            try:
-                out = self._d.decompress(chunk)
-                while self._d.eof and self._d.unused_data:      # concatenated members
-                    rest = self._d.unused_data
-                    self._d = self._NEW[self._kind]()
-                    out += self._d.decompress(rest)
-            except (zlib.error, OSError, EOFError, lzma.LZMAError):
-                self._eof = self.truncated = True
-                return
-            self._buf = out
+    def _read_raw(self) -> bytes:
+        chunk = self._raw.read(_IN_CHUNK)
+        self._read += len(chunk)
+        return chunk
+
+    @property
+    def consumed(self) -> int:
+        """Compressed bytes handed to the decompressor (bzip2 and xz buffer at most one chunk)."""
+        return self._read - len(self._pending)
+
+    def _step(self) -> bytes:
+        """Up to STEP bytes of output; b"" only at the end of the data."""
+        d = self._d
+        while True:
+            if d.eof:                                # end of a member: another one may follow
+                rest = d.unused_data + self._pending
+                self._pending = b""
+                if not rest:
+                    rest = self._read_raw()
+                    if not rest:
+                        return b""
+                d = self._d = self._NEW[self._kind]()
+                self._pending = rest
+            if self._kind == "gz":
+                if not self._pending:
+                    self._pending = self._read_raw()
+                    if not self._pending:            # no more input, member not finished
+                        out = d.flush()
+                        self.truncated = True
+                        return out
+                out = d.decompress(self._pending, STEP)
+                self._pending = d.unconsumed_tail
+            else:
+                if d.needs_input:
+                    if not self._pending:
+                        self._pending = self._read_raw()
+                        if not self._pending:
+                            self.truncated = True
+                            return b""
+                    out = d.decompress(self._pending, STEP)
+                    self._pending = b""
+                else:
+                    out = d.decompress(b"", STEP)
+            if out:
+                return out
+
+    def _fill(self) -> None:
+        if self._pos < len(self._out) or self._eof:
+            return
+        try:
+            out = self._step()
+        except (zlib.error, OSError, EOFError, lzma.LZMAError):
+            out, self.truncated = b"", True
+        self._out, self._pos = out, 0
+        if not out:
+            self._eof = True
+            return
+        self.produced += len(out)
+        if self.produced > self.limit:
+            raise InputError(self.name, f"decompresses to more than {self.limit:,} bytes (the "
+                                        f"limit; set $DRIFTWATCH_MAX_DECOMPRESSED to allow more, "
+                                        f"e.g. 16G)")
+        if self.produced > RATIO_FLOOR and self.produced > self.max_ratio * max(self.consumed, 1):
+            raise InputError(self.name, f"decompresses to more than {self.max_ratio:g}x its "
+                                        f"compressed size ({self.produced:,} bytes from "
+                                        f"{self.consumed:,}): refused as a likely decompression "
+                                        f"bomb (real outputs compress 5-15x); decompress it "
+                                        f"yourself if it is genuine")
 
     def readinto(self, b):
         self._fill()
-        n = min(len(b), len(self._buf))
-        b[:n] = self._buf[:n]
-        self._buf = self._buf[n:]
+        n = min(len(b), len(self._out) - self._pos)
+        b[:n] = self._out[self._pos:self._pos + n]
+        self._pos += n
         return n
 
     def close(self):
@@ -90,15 +265,15 @@ class _Decompressed(io.RawIOBase):
         super().close()
 
 
-def open_bytes(path):
-    """Open a (possibly compressed) file for buffered binary reading.
-
-    ``stream_truncated(fh)`` tells afterwards whether a compressed stream was cut.
+def open_bytes(path, *, max_ratio: float = MAX_RATIO):
+    """Open a regular, possibly compressed file for buffered binary reading (bounded: see the
+    module's limits). ``stream_truncated(fh)`` tells afterwards whether a compressed stream was cut.
     """
     kind = _kind(path)
     if kind is None:
-        return open(os.fspath(path), "rb")
-    return io.BufferedReader(_Decompressed(os.fspath(path), kind), buffer_size=1 << 16)
+        return open_regular(path)
+    return io.BufferedReader(_Decompressed(os.fspath(path), kind, max_ratio),
+                             buffer_size=1 << 16)
 
 
 def stream_truncated(fh) -> bool:
@@ -110,6 +285,8 @@ def peek(path, size: int = 50_000) -> bytes:
     try:
         with open_bytes(path) as fh:
             return fh.read(size)
+    except NotRegularFile:
+        raise
     except STREAM_ERRORS:
         return b""
 
@@ -117,7 +294,7 @@ def peek(path, size: int = 50_000) -> bytes:
 def tail_bytes(path, size: int = 8192) -> bytes:
     """The last ``size`` decompressed bytes; cheap (a seek) for uncompressed files."""
     if _kind(path) is None:
-        with open(path, "rb") as fh:
+        with open_regular(path) as fh:
             fh.seek(0, os.SEEK_END)
             end = fh.tell()
             fh.seek(max(0, end - size))
@@ -130,6 +307,8 @@ def tail_bytes(path, size: int = 8192) -> bytes:
                 if not block:
                     break
                 buf = (buf + block)[-size:]
+    except NotRegularFile:
+        raise
     except STREAM_ERRORS:
         pass
     return buf
@@ -138,15 +317,16 @@ def tail_bytes(path, size: int = 8192) -> bytes:
 class Lines:
     """Iterate over the *complete* lines of a text file (decompressed on the fly).
 
-    Also offers ``readline()`` and ``name`` so it can be handed to ASE readers
-    that expect a text file object. After iteration, ``cut_line`` is True when a
-    partial last line was dropped and ``stream_error`` holds a decompression
-    error (a cut ``.gz``), if any.
+    A line longer than :data:`MAX_LINE` characters raises InputError naming the file and the
+    line number (nothing longer is ever held in memory). Also offers ``readline()`` and ``name``
+    so it can be handed to ASE readers that expect a text file object. After iteration,
+    ``cut_line`` is True when a partial last line was dropped and ``stream_error`` holds a
+    decompression error (a cut ``.gz``), if any.
     """
 
     def __init__(self, path, encoding="utf-8"):
         self.name = os.fspath(path)
-        self._bin = open_bytes(path)
+        self._bin = open_bytes(path, max_ratio=MAX_TEXT_RATIO)
         self._fh = io.TextIOWrapper(self._bin, encoding=encoding, errors="replace", newline=None)
         self.cut_line = False
         self.stream_error: str | None = None
@@ -157,10 +337,16 @@ class Lines:
         if self._done:
             return ""
         try:
-            line = self._fh.readline()
+            line = self._fh.readline(MAX_LINE + 1)
+        except NotRegularFile:
+            raise
         except STREAM_ERRORS as exc:
             self.stream_error = f"{type(exc).__name__}: {exc}"
             line = ""
+        if len(line) > MAX_LINE and not line.endswith("\n"):
+            raise InputError(self.name, f"line {self.lineno + 1} is longer than {MAX_LINE:,} "
+                                        f"characters: not a text output of a simulation code "
+                                        f"(damaged, or binary data)")
         if not line.endswith("\n"):
             self.cut_line = bool(line)
             self._done = True
@@ -190,3 +376,32 @@ class Lines:
 
     def __exit__(self, *exc):
         self.close()
+
+
+def quiet_numbers(frames, ctx):
+    """Iterate a reader's frames with numpy's floating-point warnings caught.
+
+    Values beyond the double range in a file (``1e400``, or a unit conversion of ``1e308``) make
+    numpy print RuntimeWarnings on the terminal; here they become one warning of the run, in
+    words, naming the file (the frames' checks then refuse a non-finite cell or position).
+    """
+    import numpy as np
+    seen: dict = {}
+    done = 0
+
+    def note(kind, _flag):
+        seen.setdefault(kind, done)
+
+    frames = iter(frames)
+    while True:
+        with np.errstate(over="call", invalid="call", divide="call", under="ignore", call=note):
+            try:
+                frame = next(frames)
+            except StopIteration:
+                break
+        yield frame
+        done += 1
+    if seen:
+        kinds = " and ".join(sorted(seen))
+        ctx.warn(f"numbers beyond the floating-point range in the file (numpy: {kinds}, first "
+                 f"after {min(seen.values())} completed steps); those values became inf or NaN")

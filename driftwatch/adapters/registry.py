@@ -38,7 +38,7 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 from ..errors import DriftwatchError, InputError, UnknownFormatError
-from ._io import peek, strip_compression
+from ._io import check_readable, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect, folder_listing, position_precision
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
@@ -296,11 +296,7 @@ def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
             selection = None
     else:
         ctx.uses(path)
-        try:
-            with open(path, "rb"):
-                pass
-        except OSError as exc:
-            raise InputError(path, f"cannot open ({exc.strerror or exc})") from None
+        check_readable(path)          # refuses FIFOs and devices without blocking
         fmt = _detect_file(path) if format is None else format
         pick = _Pick([("", path, fmt)], None)
     for _, src, fmt in pick.stages:
@@ -423,7 +419,7 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
     n = 0
     last = None
     try:
-        for fr in checked(fmt.open(str(source), ctx), source):
+        for fr in checked(quiet_numbers(fmt.open(str(source), ctx), ctx), source):
             n += 1
             last = fr.step
             yield fr

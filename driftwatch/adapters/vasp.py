@@ -706,7 +706,7 @@ def register_all(register, register_code) -> None:
     register("vasp-out", __name__ + ":read_outcar", globs=("*OUTCAR*",), magic=rb"\A\s*vasp\.\d",
              description="VASP OUTCAR")
     register("vasp-xdatcar", __name__ + ":read_xdatcar", globs=("*XDATCAR*",),
-             magic=rb"^\s*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
+             magic=rb"^[ \t]*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
     register_code(Code(
         name="vasp", label="VASP", aliases=("vasp5", "vasp6"),
         formats=("vasp-xml", "vasp-out", "vasp-xdatcar", "vasp-poscar"),
