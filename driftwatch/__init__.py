@@ -25,3 +25,7 @@ def __getattr__(name):
         from .track import analyze
         return analyze
     raise AttributeError(f"module 'driftwatch' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))

@@ -102,8 +102,12 @@ def _root_name(root: Path) -> str:
 
 
 def _matches(spec: RunSpec, patterns) -> bool:
-    return any(fnmatch.fnmatchcase(spec.id, p) or fnmatch.fnmatchcase(spec.path, p)
-               for p in patterns)
+    """A pattern matches the run's path relative to its root (``L0*``, ``*/relax/*``), or its whole
+    id (``campaign/L0*``); an absolute pattern matches the run's absolute path. ``*`` also matches
+    ``/``."""
+    rel = spec.id.split("/", 1)[1] if "/" in spec.id else spec.id
+    return any(fnmatch.fnmatchcase(os.path.abspath(spec.path), p) if os.path.isabs(p) else
+               fnmatch.fnmatchcase(rel, p) or fnmatch.fnmatchcase(spec.id, p) for p in patterns)
 
 
 def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
@@ -174,8 +178,9 @@ def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], 
 
     Args:
         roots: folders or files.
-        include: fnmatch globs; when given, a run is kept only if its id or path matches one.
-        exclude: fnmatch globs; a run whose id or path matches one is dropped.
+        include: fnmatch globs on the run's path relative to its root (or its whole id, which starts
+            with the root's name); when given, a run is kept only if one matches.
+        exclude: the same; a run that one matches is dropped.
         skip: paths never entered or counted (the output folder, the database file).
 
     Returns:
@@ -576,55 +581,82 @@ def _dask(todo, cfg, scheduler):
 
 
 # ----------------------------------------------------------------------------- progress
-class _Progress:
-    """tqdm on stderr when available, else a plain line; nothing when disabled."""
+class Progress:
+    """Progress of a long task on stderr, as the place it goes to wants it.
 
-    def __init__(self, total: int, enabled: bool, initial: int = 0):
-        self.bar = None
+    On a terminal: one line rewritten in place (carriage return), at most 4 times a second. In a
+    file or pipe (a batch job's log): a plain line with the date and time every ``interval``
+    seconds and at the end, never a carriage return. ``enabled=False``: nothing.
+    """
+
+    def __init__(self, total: int, what: str, *, enabled: bool = True, initial: int = 0,
+                 interval: float = 30.0, unit: str = "runs", stream=None):
+        self.stream = sys.stderr if stream is None else stream
         self.enabled = enabled and total > 0
-        self.total, self.n, self.failed = total, initial, 0
-        self._last = 0.0
-        if not self.enabled:
-            return
-        try:
-            from tqdm import tqdm
-            self.bar = tqdm(total=total, initial=initial, unit="run", file=sys.stderr,
-                            desc="driftwatch audit", dynamic_ncols=True, leave=True)
-        except ImportError:
-            self.bar = None
+        self.total, self.n, self.failed, self.what, self.unit = total, initial, 0, what, unit
+        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.interval = 0.25 if self.tty else interval
+        self.t0 = self._last = time.monotonic()
+        self._start = initial
+        if self.enabled and not self.tty:
+            self._line(f"{total} {unit} to do" + (f", {initial} already done (cache)" if initial
+                                                   else ""))
 
-    def update(self, result: dict) -> None:
+    def _line(self, text: str) -> None:
+        stamp = time.strftime("%Y-%m-%d %H:%M:%S")
+        self.stream.write(f"{stamp} {self.what}: {text}\n")
+        self.stream.flush()
+
+    def _text(self) -> str:
+        done = self.n - self._start
+        spent = time.monotonic() - self.t0
+        left = ""
+        if 0 < done and self.n < self.total:
+            left = f", about {_duration(spent / done * (self.total - self.n))} left"
+        failed = f", {self.failed} failed" if self.failed else ""
+        return (f"{self.n}/{self.total} {self.unit} ({100 * self.n // self.total} %){failed}, "
+                f"{_duration(spent)} elapsed{left}")
+
+    def update(self, ok: bool = True) -> None:
         if not self.enabled:
             return
         self.n += 1
-        self.failed += not result["ok"]
-        if self.bar is not None:
-            self.bar.set_postfix_str(f"failed {self.failed}", refresh=False)
-            self.bar.update(1)
-        elif time.monotonic() - self._last > 1.0 or self.n == self.total:
-            self._last = time.monotonic()
-            end = "\n" if self.n == self.total or not sys.stderr.isatty() else ""
-            sys.stderr.write(f"\rdriftwatch audit: {self.n}/{self.total} runs, "
-                             f"{self.failed} failed{end}")
-            sys.stderr.flush()
+        self.failed += not ok
+        now = time.monotonic()
+        if now - self._last < self.interval and self.n < self.total:
+            return
+        self._last = now
+        if self.tty:
+            end = "\n" if self.n == self.total else ""
+            self.stream.write(f"\r{self.what}: {self._text()}\033[K{end}")
+            self.stream.flush()
+        else:
+            self._line(self._text())
 
     def close(self) -> None:
-        if self.bar is not None:
-            self.bar.close()
+        if self.enabled and self.tty and self.n < self.total:
+            self.stream.write("\n")
+            self.stream.flush()
 
+
+def _duration(seconds: float) -> str:
+    seconds = int(round(seconds))
+    if seconds < 120:
+        return f"{seconds} s"
+    if seconds < 7200:
+        return f"{seconds // 60} min"
+    return f"{seconds // 3600} h {seconds % 3600 // 60:02d} min"
 
 
 def _progress_on(progress) -> bool:
+    """``"auto"``: on, unless ``$DRIFTWATCH_PROGRESS`` says off; ``"on"``/``"off"`` as said. Where it
+    goes decides its form (:class:`Progress`)."""
     if progress in (True, "on"):
         return True
     if progress in (False, "off"):
         return False
     env = os.environ.get("DRIFTWATCH_PROGRESS", "").strip().lower()
-    if env in ("0", "off", "false", "no"):
-        return False
-    if env in ("1", "on", "true", "yes"):
-        return True
-    return bool(getattr(sys.stderr, "isatty", lambda: False)())
+    return env not in ("0", "off", "false", "no")
 
 
 # ----------------------------------------------------------------------------- output folder
@@ -950,7 +982,7 @@ def _csv_text(rows: list[dict]) -> str:
 
 def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=None,
           scheduler=None, db=None, use_cache=True, overwrite=False, report=True, progress="auto",
-          reject_on=(), executor: Executor | None = None, quiet: bool | None = None) -> dict:
+          reject_on=(), executor: Executor | None = None, quiet: bool = True) -> dict:
     """Audit a campaign: every run under ``roots`` analysed (or taken from the cache) and written out.
 
     Args:
@@ -966,14 +998,13 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
         use_cache: False: analyse every run again (results are still cached for next time).
         overwrite: allow writing into a folder that is not this campaign's audit.
         report: build the HTML report in ``OUTPUT/report``.
-        progress: "auto" (a bar when stderr is a terminal; ``$DRIFTWATCH_PROGRESS`` overrides),
-            "on" or "off".
+        progress: "auto" or "on" (on stderr: a line updated in place on a terminal, dated lines
+            every 30 s in a log; ``$DRIFTWATCH_PROGRESS=off`` turns "auto" off), or "off".
         reject_on: flag codes (or what they concern); runs where one was raised are listed in
             ``rejected``.
         executor: any ``concurrent.futures.Executor`` to run on (overrides workers/scheduler).
-        quiet: True: print no table; False: print it on stdout; None (default): on stdout when it is
-            a terminal, else on stderr (stdout stays clean for ``--json`` and pipes) unless
-            ``progress`` is "off" (batch jobs: nothing printed).
+        quiet: True (default): print nothing but progress; False: the summary table on stdout
+            (what ``driftwatch audit`` does) and, when runs failed, a one-line notice on stderr.
 
     Returns:
         The campaign summary (schema ``driftwatch/campaign-1``), also written to
@@ -1011,6 +1042,8 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
 
     skip = [out] + ([] if "://" in db_name else [db_name])
     runs, failed = discover(roots, include=include, exclude=exclude, skip=skip)
+    if not runs and not failed:
+        raise InputError(", ".join(str(r) for r in roots), _why_empty(roots, include, exclude, skip))
     runs, not_files = _regular_file_runs(runs)
     failed += not_files
     if scheduler:      # Dask workers may run elsewhere: give them absolute paths (shared filesystem)
@@ -1023,11 +1056,12 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                         executor=executor, note=f"driftwatch: terminated by SIGTERM: workers "
                         f"stopped; runs finished so far are kept in {records.shown(out)}/.cache; "
                         f"re-run the same command to finish\n")
-    bar = _Progress(len(runs), _progress_on(progress), initial=len(runs) - len(todo))
+    bar = Progress(len(runs), "driftwatch audit", enabled=_progress_on(progress),
+                   initial=len(runs) - len(todo))
     try:
         for r in gen:
             res.store(r)
-            bar.update(r)
+            bar.update(r["ok"])
     finally:
         bar.close()
         getattr(gen, "close", lambda: None)()
@@ -1052,13 +1086,26 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         summary["report"] = str(_build_report(out, summary))
         summary["elapsed_s"] = time.perf_counter() - t0
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-    tty = getattr(sys.stdout, "isatty", lambda: False)()
-    if quiet is False or (quiet is None and tty):
+    if not quiet:          # the answer on stdout, as a Unix tool gives it (pipes, redirects)
         _print_table(summary, _summary_rows(ok, failed, skipped), _Shown(sys.stdout))
-    elif quiet is None and progress not in ("off", False):
-        # stdout is a pipe or file (maybe the JSON of --json): keep it clean, table on stderr
-        _print_table(summary, _summary_rows(ok, failed, skipped), _Shown(sys.stderr))
+    if failed and quiet is not True:
+        sys.stderr.write(f"driftwatch audit: {len(failed)} of {summary['runs']} runs could not be "
+                         f"analysed (listed with their error in the table and campaign.csv)\n")
     return summary
+
+
+def _why_empty(roots, include, exclude, skip) -> str:
+    """The reason an audit found nothing to do, in the command line's terms."""
+    if include or exclude:
+        every, _ = discover(roots, skip=skip)
+        if every:
+            pats = " ".join(f"--include '{p}'" for p in include) + \
+                (" " if include and exclude else "") + " ".join(f"--exclude '{p}'" for p in exclude)
+            example = every[0].id.split("/", 1)[-1]
+            return (f"{pats} left none of the {len(every)} runs found (patterns match the path "
+                    f"below the root, e.g. '{example}')")
+    return ("no run found: no file or run folder here is one driftwatch reads (see 'driftwatch "
+            "formats')")
 
 
 def _largest_first(todo, kinds):

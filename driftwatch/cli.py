@@ -22,8 +22,9 @@ Flags are diagnostics to check, not proofs of stability or of a phase."""
 
 
 def _common(p: argparse.ArgumentParser, reject=True) -> None:
+    from .config import PRESETS       # light: PyYAML only
     p.add_argument("-c", "--config", metavar="YAML|PRESET",
-                   help="config file or preset (default, monolayer, bulk, tolerance); "
+                   help=f"config file or preset ({', '.join(PRESETS)}); "
                         "default: $DRIFTWATCH_CONFIG or 'default'")
     p.add_argument("--json", action="store_true", help="print machine-readable JSON on stdout")
     p.add_argument("--debug", action="store_true", help="show full tracebacks on errors")
@@ -51,7 +52,8 @@ def _parser() -> argparse.ArgumentParser:
                        "  driftwatch inspect relax.traj --json > record.json\n"
                        "  driftwatch inspect OUTCAR --all-frames --reject-on lattice-gained\n\n" + _EPILOG)
     p.add_argument("path", help="trajectory file or run folder")
-    p.add_argument("-f", "--format", help="adapter name, overriding detection (see --list-formats)")
+    p.add_argument("-f", "--format", metavar="NAME",
+                   help="input format, overriding detection (names: 'driftwatch formats')")
     p.add_argument("--all-frames", action="store_true", help="run spglib on every frame")
     p.add_argument("-o", "--output", metavar="FILE", help="also write the run record (JSON) here")
     _common(p)
@@ -67,9 +69,10 @@ def _parser() -> argparse.ArgumentParser:
                    help="output folder (default: driftwatch-audit; an existing non-empty folder "
                         "from another campaign is refused unless --overwrite)")
     p.add_argument("--include", action="append", default=[], metavar="GLOB",
-                   help="only runs whose path matches (repeatable)")
+                   help="only runs whose path below the root matches, e.g. 'L0*' or '*/relax*' "
+                        "(repeatable)")
     p.add_argument("--exclude", action="append", default=[], metavar="GLOB",
-                   help="skip runs whose path matches (repeatable)")
+                   help="skip runs whose path below the root matches (repeatable)")
     p.add_argument("-j", "--workers", type=int, default=None,
                    help="local worker processes (default: number of cores)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address (needs dask[distributed])")
@@ -77,7 +80,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--no-cache", action="store_true", help="ignore cached results")
     p.add_argument("--overwrite", action="store_true", help="allow replacing outputs of another campaign")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
-    p.add_argument("--progress", choices=("auto", "on", "off"), default="auto")
+    p.add_argument("--progress", choices=("auto", "on", "off"), default="auto",
+                   help="progress on stderr: updated in place on a terminal, a dated line every "
+                        "30 s in a log (auto, on); off: none. The summary table always goes to "
+                        "stdout (not with --json)")
     _common(p)
 
     p = sub.add_parser("follow", help="follow a running VASP or QE job (or a growing trajectory)",
@@ -271,7 +277,7 @@ def _cmd_audit(args) -> int:
     result = audit(args.roots, args.output, config=cfg, include=args.include, exclude=args.exclude,
                    workers=args.workers, scheduler=args.scheduler, db=args.db,
                    use_cache=not args.no_cache, overwrite=args.overwrite, report=not args.no_report,
-                   progress=args.progress, reject_on=codes, quiet=True if args.json else None)
+                   progress=args.progress, reject_on=codes, quiet=bool(args.json))
     if args.json:
         _print_json(result)
     if result.get("rejected"):

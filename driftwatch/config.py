@@ -67,6 +67,7 @@ _KINDS = {
     "rules.held_by_code.enabled": "bool",
     "tolerance.min_plateau": "fraction",
     "report.common_symprecs": ("list", "length"),
+    "record.structures": ("choice", ("final", "all", "none")),
     "reject_on": ("list", "str"),
 }
 
@@ -144,9 +145,17 @@ def _parse_quantity(text, units: dict, key: str, what: str) -> float:
     if isinstance(text, bool) or not isinstance(text, (str, int, float)):
         raise ConfigError(f"{key}: expected a {what} with a unit (e.g. '1e-3 Å'), "
                           f"got {_short(text)}")
-    if not isinstance(text, str):
+    bare = not isinstance(text, str)
+    if not bare:       # YAML reads 1e-3 (no dot) as text: a bare number all the same
+        try:
+            float(text)
+            bare = True
+        except ValueError:
+            pass
+    if bare:
         shown = "Å" if units is _LENGTH_UNITS else "deg"
-        raise ConfigError(f"{key}: missing unit: write '{text} {shown}' (units: {', '.join(units)})")
+        raise ConfigError(f"{key}: missing unit: write '{str(text).strip()} {shown}' "
+                          f"(units: {', '.join(units)})")
     m = _QUANTITY.match(text)
     if not m:
         raise ConfigError(f"{key}: cannot read {_short(text)} as a {what} with a unit "

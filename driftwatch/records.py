@@ -28,7 +28,8 @@ import numpy as np
 
 __all__ = ["SCHEMA", "OLD_SCHEMAS", "upgrade", "new_record", "write_json", "read_json",
            "write_text_atomic", "dumps", "remove_stale_temporaries", "TEMP_PREFIX", "shown", "csv_cell",
-           "csv_text", "csv_row", "CSV_COLUMNS", "db_key_values", "verdict_fields", "safe_name"]
+           "csv_text", "csv_row", "CSV_COLUMNS", "db_key_values", "verdict_fields", "safe_name",
+           "to_atoms"]
 
 SCHEMA = "driftwatch/run-2"
 OLD_SCHEMAS = ("driftwatch/run-1",)
@@ -248,7 +249,37 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
         "config": {k: v for k, v in cfg.items() if not k.startswith("_")},
         "versions": versions,
         "frames": frames,
+        "structures": _structures(run, (cfg.get("record") or {}).get("structures", "final")),
     }
+
+
+def _structures(run, which: str) -> dict | None:
+    """The structures the record keeps (``record.structures`` in the config): ``final`` (default),
+    ``all`` frames, or ``none``. Cells and cartesian positions in Å, as read."""
+    if which == "none":
+        return None
+    idx = range(len(run.cells)) if which == "all" else [len(run.cells) - 1]
+    return {"numbers": [int(z) for z in run.numbers], "pbc": [bool(p) for p in run.pbc],
+            "frames": {str(i): {"cell": np.asarray(run.cells[i], float).tolist(),
+                                "positions": np.asarray(run.positions[i], float).tolist()}
+                       for i in idx}}
+
+
+def to_atoms(record: dict, i: int = -1):
+    """Frame ``i`` of a record as an ``ase.Atoms``, from the structures the record keeps (the final
+    one by default; every frame with ``record.structures: all``). KeyError names what is kept."""
+    from ase import Atoms
+    st = record.get("structures")
+    n = record["run"]["n_frames"]
+    k = i + n if i < 0 else i
+    if not st or str(k) not in st["frames"]:
+        kept = sorted(int(x) for x in (st or {}).get("frames", {}))
+        raise KeyError(f"frame {i} is not kept in this record (frames kept: {kept or 'none'}; "
+                       f"set record.structures: all to keep every frame)")
+    f = st["frames"][str(k)]
+    atoms = Atoms(numbers=st["numbers"], positions=f["positions"], cell=f["cell"], pbc=st["pbc"])
+    atoms.info["step"] = record["frames"][k]["step"]
+    return atoms
 
 
 CSV_COLUMNS = ("run", "source", "format", "dimension", "n_frames", "n_atoms", "formula",

@@ -1,8 +1,11 @@
 """The campaign's ASE database: one row per run, final structure plus searchable key-value pairs.
 
 Any ``ase.db.connect`` name works (``runs.db`` SQLite by default, ``.json``, ``postgresql://...``).
-Rows are keyed by ``run_id``: a re-audit replaces a run's row instead of adding a second one; rows
-of other runs are never touched. All rows go in one ``with db:`` transaction. Text values are
+Rows are keyed by ``run_id`` and updated in place: a re-audit rewrites a run's row under the same
+row id (its structure and key-value pairs; keys it no longer has are removed), so ``id`` stays
+stable for a run; a run seen for the first time gets a new row. Rows of other runs are never
+touched (a run that left the campaign keeps its last row). All rows go in one ``with db:``
+transaction. Key names are the CSV's column names (``records.db_key_values``). Text values are
 stored as :func:`driftwatch.records.shown` spells them (a name that is not UTF-8 on disk gets
 ``\\xNN`` for its odd bytes), so the same run always has the same ``run_id``.
 
@@ -75,9 +78,17 @@ def _atoms(structure: dict | None):
 def _rows_with_run_id(db):
     """Every row that has a ``run_id`` (one pass: a per-run query is a full scan, O(n^2))."""
     try:
-        return list(db.select("run_id", include_data=False, columns=["id", "key_value_pairs"]))
+        return list(db.select("run_id", include_data=False,
+                              columns=["id", "key_value_pairs", "numbers"]))
     except TypeError:        # backends without the columns argument
         return list(db.select("run_id", include_data=False))
+
+
+def _natoms(row) -> int:
+    try:
+        return int(row.natoms)
+    except (AttributeError, TypeError):      # a backend that did not return the column
+        return 0
 
 
 def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str]:
@@ -98,13 +109,30 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
     try:
         with db:
             wanted = {run_id for run_id, _, _ in rows}
-            old = [row.id for row in _rows_with_run_id(db)     # (rows an older version wrote
-                   if shown(row.get("run_id")) in wanted]     # with raw names match too)
-            if old:
-                db.delete(old)
+            have: dict = {}                        # run_id -> (row id, keys, number of atoms)
+            extra = []                              # second rows of one run (older versions)
+            for row in sorted(_rows_with_run_id(db), key=lambda r: r.id):
+                rid = shown(row.get("run_id"))      # rows written with raw names match too
+                if rid not in wanted:
+                    continue
+                if rid in have:
+                    extra.append(row.id)
+                else:
+                    have[rid] = (row.id, set(row.key_value_pairs), _natoms(row))
+            if extra:
+                db.delete(extra)
             for run_id, structure, kvp in rows:
                 try:
-                    db.write(_atoms(structure), key_value_pairs=kvp)
+                    if run_id not in have:
+                        db.write(_atoms(structure), key_value_pairs=kvp)
+                        continue
+                    row_id, keys, natoms = have[run_id]
+                    if structure is None and natoms:   # ok before, failed now: no structure
+                        db.delete([row_id])            # (ase.db cannot empty a row in place)
+                        db.write(_atoms(None), key_value_pairs=kvp)
+                        continue
+                    db.update(row_id, atoms=_atoms(structure) if structure else None,
+                              delete_keys=sorted(keys - set(kvp)), **kvp)
                 except (ValueError, KeyError, TypeError) as exc:
                     problems.append(f"{run_id}: database row rejected ({exc})")
     except TimeoutError as exc:

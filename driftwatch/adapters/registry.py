@@ -246,8 +246,8 @@ def _detect_file(path: Path) -> str:
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
             return f.name
-    raise UnknownFormatError(path, f"unknown format (known formats: {_known()}; "
-                                   f"pass format=... to choose one)")
+    raise UnknownFormatError(path, f"unknown format (known formats: {_known()}; choose one with "
+                                   f"--format NAME, or format= in Python)")
 
 
 @dataclass

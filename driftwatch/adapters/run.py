@@ -44,7 +44,7 @@ class Frame:
     """(6,) eV/Å³, Voigt (xx, yy, zz, yz, xz, xy), ASE sign convention."""
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class Run:
     """A whole relaxation, frames stacked along a leading axis of length n."""
 
@@ -100,6 +100,53 @@ class Run:
     @property
     def natoms(self) -> int:
         return len(self.numbers)
+
+    def __repr__(self) -> str:
+        from collections import Counter
+
+        from ase.data import chemical_symbols
+        counts = Counter(int(z) for z in self.numbers)
+        formula = "".join(f"{chemical_symbols[z] if 0 < z < len(chemical_symbols) else z}"
+                          f"{n if n > 1 else ''}" for z, n in sorted(counts.items()))
+        extra = f", {len(self.stages)} stages" if self.stages else ""
+        extra += f", {len(self.warnings)} warnings" if self.warnings else ""
+        return (f"<Run {self.source!r} ({self.format}): {len(self)} frames, {formula}, "
+                f"steps {int(self.steps[0])}..{int(self.steps[-1])}{extra}>")
+
+    def _index(self, i: int) -> int:
+        n = len(self)
+        k = int(i) + n if int(i) < 0 else int(i)
+        if not 0 <= k < n:
+            raise IndexError(f"frame {i} out of range: the run has {n} frames")
+        return k
+
+    def to_atoms(self, i: int = -1):
+        """Frame ``i`` as an ``ase.Atoms`` (cell, positions, numbers, pbc), with its energy, forces
+        and stress as a single-point calculator when the file had them."""
+        from ase import Atoms
+        k = self._index(i)
+        atoms = Atoms(numbers=self.numbers, positions=self.positions[k], cell=self.cells[k],
+                      pbc=self.pbc)
+        results = {}
+        if self.energies is not None and np.isfinite(self.energies[k]):
+            results["energy"] = float(self.energies[k])
+        if self.forces is not None and np.all(np.isfinite(self.forces[k])):
+            results["forces"] = np.array(self.forces[k])
+        if self.stress is not None and np.all(np.isfinite(self.stress[k])):
+            results["stress"] = np.array(self.stress[k])
+        if results:
+            from ase.calculators.singlepoint import SinglePointCalculator
+            atoms.calc = SinglePointCalculator(atoms, **results)
+        atoms.info["step"] = int(self.steps[k])
+        return atoms
+
+    def to_structure(self, i: int = -1):
+        """Frame ``i`` as a pymatgen ``Structure`` (needs pymatgen; periodic cells only)."""
+        from pymatgen.core import Lattice, Structure
+        k = self._index(i)
+        return Structure(Lattice(self.cells[k], pbc=tuple(bool(p) for p in self.pbc)),
+                         [int(z) for z in self.numbers], self.positions[k],
+                         coords_are_cartesian=True)
 
 
 def file_stamp(path) -> list | None:

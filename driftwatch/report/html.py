@@ -822,7 +822,8 @@ def _prepare_output(output, overwrite):
     if out.exists() and not out.is_dir():
         raise OutputError(f"{out}: exists and is not a folder")
     if out.is_dir() and any(out.iterdir()) and not overwrite:
-        raise OutputError(f"{out}: folder exists and is not empty; pass overwrite=True (--overwrite) "
+        raise OutputError(f"{out}: folder exists and is not empty; use --overwrite "
+                          f"(overwrite=True in Python) "
                           f"to replace the report in it")
     (out / "runs").mkdir(parents=True, exist_ok=True)
     return out
