@@ -1061,7 +1061,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     try:
         for r in gen:
             res.store(r)
-            bar.update(r["ok"])
+            bar.update(r["ok"] or bool(r.get("skipped")))    # a skipped run has not failed
     finally:
         bar.close()
         getattr(gen, "close", lambda: None)()

@@ -572,7 +572,7 @@ def test_inspect_and_audit_print_non_utf8_names_under_a_utf8_locale(how, tmp_pat
                         os.fsencode(tmp_path) + b"/out", "-j", "1", "--no-report"],
                        capture_output=True, timeout=120, cwd=REPO, env=env)
     assert r.returncode == 0, r.stderr
-    assert b"caf\\xe9-run\\xff.traj" in r.stderr             # the table (stdout is not a terminal)
+    assert b"caf\\xe9-run\\xff.traj" in r.stdout             # the summary table, on stdout
 
 
 def test_terminal_escapes_in_names_are_shown_escaped(tmp_path):
@@ -589,7 +589,8 @@ def test_terminal_escapes_in_names_are_shown_escaped(tmp_path):
     assert r.returncode == 1 and b"\x1b" not in r.stderr and b"bad\\x1b[31m.traj" in r.stderr
     r = _dw("audit", str(camp), "-o", str(tmp_path / "out"), "-j", "1", "--no-report")
     assert r.returncode == 4, r.stderr
-    assert b"\x1b" not in r.stderr and b"\x07" not in r.stderr and b"bad\\x1b[31m.traj" in r.stderr
+    assert b"\x1b" not in r.stdout + r.stderr and b"\x07" not in r.stdout + r.stderr
+    assert b"bad\\x1b[31m.traj" in r.stdout                       # the summary table
 
 
 def test_numeric_overflow_in_a_file_is_a_warning_not_a_runtime_warning(tmp_path):

@@ -102,6 +102,21 @@ def test_stage_folders_are_one_run():
     assert [r.kind for r in runs] == ["folder"] and not failed               # not three runs
 
 
+def test_a_campaign_of_numbered_run_folders_is_not_one_staged_run(tmp_path):
+    """run-0001/ run-0002/ ... (how campaign scripts name their runs) are separate runs; relax1/
+    relax2/ are stages only when numbered 1, 2, ... (at most 20)."""
+    camp = tmp_path / "camp"
+    for i in range(3):
+        shutil.copytree(PUB / "stage_folders" / "relax1", camp / f"run-{i:04d}")
+    runs, failed = discover([camp])
+    assert [r.id for r in runs] == [f"camp/run-{i:04d}" for i in range(3)] and not failed
+    gap = tmp_path / "gap"
+    for n in (1, 3):                        # relax1 and relax3: not a sequence of stages
+        shutil.copytree(PUB / "stage_folders" / "relax1", gap / f"relax{n}")
+    runs, _ = discover([gap])
+    assert sorted(r.id for r in runs) == ["gap/relax1", "gap/relax3"]
+
+
 def test_compressed_and_plain_variants_pick_the_complete_one(tmp_path):
     """A plain copy cut in half beside the complete .gz: the complete one is read."""
     d = tmp_path / "r"
@@ -231,7 +246,7 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "10 runs (10 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stderr
+    assert "10 runs (10 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(

@@ -800,10 +800,11 @@ def test_report_output_stays_inside_the_output_folder(tmp_path):
     # traversing source): every page is written inside the chosen report folder
     from driftwatch.campaign import audit
     camp = tmp_path / "camp"
-    (camp / "..x..").mkdir(parents=True)
-    shutil.copy(RUNS / "L09_emt_fixed_square.traj", camp / "..x.." / "..r..traj")
+    (camp / "x..").mkdir(parents=True)          # (names starting with a dot are hidden: skipped)
+    shutil.copy(RUNS / "L09_emt_fixed_square.traj", camp / "x.." / "r..traj")
     out = tmp_path / "deep" / "out"
-    audit([camp], out, workers=1, report=True, progress="off", quiet=True)
+    s = audit([camp], out, workers=1, report=True, progress="off", quiet=True)
+    assert list(s["records"]) == ["camp/x../r..traj"]
     before = {p for p in tmp_path.rglob("*")}
     written = [p for p in before if str(p).startswith(str(out))]
     assert written and all(p.resolve().is_relative_to(out.resolve()) for p in written)

@@ -495,7 +495,11 @@ def read_poscar(path, ctx: ReadContext):
 
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
-_STAGE_DIR = re.compile(r"^(relax|stage|restart|run|step)[-_.]?(\d+)$", re.I)
+_STAGE_DIR = re.compile(r"^(relax|stage|restart)[-_.]?(\d+)$", re.I)
+_MAX_STAGES = 20
+"""Stage folders: ``relax1/ relax2/`` (workflow managers' double relaxations), ``stage_1/``,
+``restart-2/``, numbered consecutively from 0 or 1, at most this many. A folder of ``run-0001/
+run-0002/ ...`` (or of 500 ``relaxN/``) is a campaign of runs, not the stages of one."""
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
@@ -648,13 +652,14 @@ def _stage_folders(folder: Path, format, ctx):
                          path, fmt))
     if not subs:
         return None
+    numbers = sorted({(k[0], k[1]) for k, *_ in subs})
+    kinds = {k for k, _ in numbers}
+    seq = [n for _, n in numbers]
+    if len(kinds) != 1 or len(seq) > _MAX_STAGES or seq != list(range(seq[0], seq[0] + len(seq))) \
+            or seq[0] not in (0, 1):
+        return None
     subs.sort(key=lambda x: (x[0][0], x[0][1], _stage_order(x[0][2])))
     return FolderPick([(name, path, fmt) for _, name, path, fmt in subs])
-
-
-def claims_subfolder(name: str) -> bool:
-    """True for the names of stage subfolders (``relax1``, ``stage_2``, ...)."""
-    return bool(_STAGE_DIR.match(name))
 
 
 # ---------------------------------------------------------------- live: end, soft stop
