@@ -131,7 +131,7 @@ single-threaded OpenBLAS on a shared 2-core machine): ``selling_reduce`` 0.18 s,
 ``distances`` (L2) 0.31 s, ``distances`` (L-inf) 0.60 s; ``deformation`` about
 1.4x ``distances`` (L2) in either metric; ``invariants`` (superbase, root
 products, Fano roots, 13 distances, 13 deformations, 6 systems from one
-reduction) 0.6-0.8 s (L2; 1.3x what it was with the former deformation, measured
+reduction) 0.5-0.8 s (L2; up to 1.3x what it was with the former deformation, measured
 A/B in bench/README.md).
 """
 
