@@ -29,42 +29,38 @@ from one reduction.
 Deformation measure (``deformation``): the root-space distances grow like the
 square root of a strain near r12 = 0 (a right angle off by 0.014 degrees is
 0.044 Å from ``op`` in root space), so they cannot be compared with spglib's
-``symprec``.  ``deformation`` takes the distance Δp (Å^2) from the conorm vector
-(p12, p01, p02) to the same faces/rays in CONORM space and divides it by
-ℓ = sqrt((p12 + p01 + p02)/2) (ℓ = a for a square of side a).  It is Lipschitz
-in the basis and has units of Å of lattice-vector displacement.
+``symprec``.  ``deformation`` measures, in Å, the discrepancy between the
+lattice and its images under the type's symmetry operations, in the quantities
+spglib's lattice test compares:
 
-Calibration against spglib 2.8.0 (measured here: one-atom cell, perpendicular
-c = 40 Å, ``angle_tolerance`` = -1, 60-step bisection in log symprec for the
-smallest symprec at which spglib's lattice-only verdict becomes the target type;
-R = deformation / critical symprec; test
-``tests/test_lattice2d.py::test_deformation_calibrated_to_spglib``):
+* coordinates: the lengths l_k of the superbase vectors v_k (the shortest
+  vectors of the three cosets of L/2L; l_k^2 = the sum of the two conorms
+  containing k) and, for the pair k = {i, j} (the two vectors other than v_k),
+  a_k = sqrt(l_i l_j) g(p_ij / (l_i l_j)), g = arcsin on [0, 1/2] continued
+  linearly (slope 2/sqrt3): (90 deg - angle) x sqrt(l_i l_j) for a reduced pair;
+* operations: the transposition of v_i and v_j (discrepancies |l_i - l_j| and
+  |a_i - a_j|, combined as the larger for "linf", root-sum-square for "l2") and
+  the mirror across a right angle between v_i and v_j (discrepancy 2 a_k);
+* types: op = min over pairs of the flip; oc = min over transpositions; tp = min
+  over k of the larger of pair k's flip and transposition k; hp = the worst of
+  the three transpositions; mirror = min(op, oc);
+* weights: spglib compares a reduced basis (the two shortest vectors in the
+  plane), so w_k = min(1, l_2nd / l_k)^16, never below 1/2; a pair weighs
+  w_i w_j; a swap uses the larger weight of its two sides;
+* deformation = KAPPA x the above, KAPPA = 0.92 (as in ``lattice3d``).
 
-=====================================================  ======  ===========  ===========
-family (a = 3.1 Å unless stated)                       target  R (l2)       R (linf)
-=====================================================  ======  ===========  ===========
-square sheared by θ = 1e-5 .. 1e-2 rad                 tp      0.500-0.501  same
-rectangle |b|/|a| = ρ sheared by θ (a = 3 Å):          op      ρ = 4/3: 0.490-0.491,
-  R = sqrt(ρ / (2 (1 + ρ^2))) (derived, matches)               1.05: 0.500, 1.5: 0.480,
-                                                               2.5: 0.415, 4: 0.343
-rectangle, |b|/|a| = 1 + ε, ε = 1e-6 .. 1e-2           tp      1.414        1.000
-rhombic 3 Å, |b| = (1 + ε)|a|, γ = 62 .. 110°          oc      1.43-1.62    1.01-1.14
-  (γ = 68.75°: 1.563 / 1.105; 88°: 1.427 / 1.009)
-hexagonal a = 2.9 Å, random symmetric strain of        hp      0.94-1.09    0.667
-  norm 1e-5 .. 1e-3 (60 samples; median 0.98)
-=====================================================  ======  ===========  ===========
-
-Why: spglib flips a sheared rectangle at symprec ≈ 2 sqrt(|a||b|) θ, while the
-deformation is |a||b| θ / ℓ (= a θ for the square); it flips a length mismatch
-at |b| - |a|, where the L2 deformation is √2 (|b| - |a|).  So for near-equant
-cells (aspect <= 1.5) deformation / symprec lies in 0.48 .. 1.62 (L2):
-``deformation <= symprec`` agrees with spglib's lattice verdict within a factor
-of about 2 either way.  For elongated cells sheared towards a right angle the
-deformation is smaller than spglib's threshold by the factor above (0.22 at
-aspect 10), because ℓ is an average length.  Use the deformation (not the root
-distances) for thresholds compared with ``symprec``.  This is an agreement
-measured on these families, not a guarantee: spglib's metric test and
-this measure are different functions of the cell.
+It is 0 on the type and its closure, invariant, continuous (also across
+r12 = 0, where the two obtuse superbases have the same lengths and angles) and
+Lipschitz in the basis: a change delta of the basis entries moves it by at most
+(8 (sqrt(rho) + 1) + 100 D / l_min) delta (rho: longest / shortest superbase
+vector; the bound tested).  Calibration against spglib (one-atom slab cell, 40 Å
+perpendicular axis; ``bench/calibrate_deformation.py``, docs/flags.md): a
+sheared right angle gives R = deformation / critical symprec = KAPPA = 0.92 at
+any aspect ratio (the old measure gave 0.34 for a 1:4 rectangle), a stretched
+square 0.92 (1.13 with "l2"); random cells of every type with aspect up to 4
+stay within 0.5 .. 2 (docs/flags.md has the measured ranges).  spglib ignores
+angle changes below 1e-6 rad, so for smaller deformations R can be larger.  This
+is an agreement measured on random cells, not a guarantee.
 """
 
 from __future__ import annotations
@@ -74,7 +70,7 @@ import numpy as np
 from .errors import LatticeError
 
 __all__ = [
-    "TYPES", "SPECIALISES", "SIGN_TOL", "obtuse_superbase", "conorms",
+    "KAPPA", "TYPES", "SPECIALISES", "SIGN_TOL", "obtuse_superbase", "conorms",
     "root_invariant", "sign", "projected", "distances", "chiral_distance",
     "deformation", "lattice_distance", "invariants", "most_specific",
 ]
@@ -104,6 +100,12 @@ LENGTH_RANGE = (1e-50, 1e50)
 """Å. Basis vectors outside this range are refused (their conorms and the squared distances
 built from them would underflow or overflow in double precision); every real cell is far inside."""
 _S2 = np.sqrt(2.0)
+_W_SQUARINGS = 4  # frame weight (lambda / l)^16 = four squarings of lambda / l ...
+_W_FLOOR = 0.5    # ... never below 1/2
+KAPPA = 0.92
+"""Calibration factor of ``deformation`` (unitless), the same as ``lattice3d.KAPPA``:
+deformation = KAPPA x the largest discrepancy; centres deformation / spglib's critical
+symprec on 1 over random cells of every type (``bench/calibrate_deformation.py``)."""
 
 
 # ----------------------------------------------------------------------------- input
@@ -457,22 +459,67 @@ def chiral_distance(bases, metric="l2", space="root"):
     return _out(d, single)
 
 
+def _power16(x):
+    """x^16 by ``_W_SQUARINGS`` squarings (faster than ``np.power``)."""
+    for _ in range(_W_SQUARINGS):
+        x = x * x
+    return x
+
+
+def _deformation(v, p, metric):
+    """Deformation (Å) of labelled superbases v (n, 3, 2) with conorms p = [p12, p01, p02]."""
+    # vector k of the superbase; pair k = the two vectors other than v_k, conorm c_k.
+    # |v_k| = sqrt of the sum of the two conorms containing k, taken from the vectors
+    # themselves: at extreme aspect ratios (1e16) rounding can zero both conorms
+    c = (p[:, 0], p[:, 2], p[:, 1])                        # p12, p02, p01
+    l = list(np.sqrt(np.einsum("nki,nki->kn", v, v)))
+    other = ((1, 2), (0, 2), (0, 1))
+    lam = l[0] + l[1] + l[2] - np.maximum(np.maximum(l[0], l[1]), l[2]) \
+        - np.minimum(np.minimum(l[0], l[1]), l[2])         # second shortest: the frame
+    w = [np.maximum(_W_FLOOR, _power16(np.minimum(1.0, lam / lk))) for lk in l]
+    wp, angle = [], []
+    for k, (i, j) in enumerate(other):
+        ll = l[i] * l[j]
+        t = c[k] / ll                                     # |cos| of the angle of pair k
+        angle.append((np.arcsin(np.minimum(t, 0.5)) + np.maximum(t - 0.5, 0.0) * (2 / np.sqrt(3)))
+                     * np.sqrt(ll))
+        wp.append(w[i] * w[j])
+    flip, swap = [], []
+    for k, (i, j) in enumerate(other):
+        flip.append(2.0 * wp[k] * angle[k])               # mirror across pair k's right angle
+        dl = np.maximum(w[i], w[j]) * np.abs(l[i] - l[j])   # transposition of v_i and v_j
+        da = np.maximum(wp[i], wp[j]) * np.abs(angle[i] - angle[j])
+        swap.append(np.maximum(dl, da) if metric == "linf" else np.sqrt(dl * dl + da * da))
+    op = np.minimum(np.minimum(flip[0], flip[1]), flip[2])
+    oc = np.minimum(np.minimum(swap[0], swap[1]), swap[2])
+    tp = np.minimum(np.minimum(np.maximum(flip[0], swap[0]), np.maximum(flip[1], swap[1])),
+                    np.maximum(flip[2], swap[2]))
+    hp = np.maximum(np.maximum(swap[0], swap[1]), swap[2])
+    return {"op": KAPPA * op, "oc": KAPPA * oc, "tp": KAPPA * tp, "hp": KAPPA * hp,
+            "mirror": KAPPA * np.minimum(op, oc)}
+
+
 def deformation(bases, metric="l2"):
     """Lipschitz deformation measure, dict ``op oc tp hp mirror`` of (n,) arrays, Å.
 
-    Δp / ℓ, where Δp (Å^2) is the distance (``metric`` "l2" or "linf") from the
-    conorm vector (p12, p01, p02) to the type's faces/rays in conorm space
-    (op: p12 = 0; oc: p12 = p01 or p01 = p02; tp: p12 = 0 and p01 = p02; hp: all
-    equal) and ℓ = sqrt((p12 + p01 + p02)/2) Å (= a for a square of side a).
-    Roughly the lattice-vector displacement needed to reach the type; calibrated
-    against spglib's symprec in the module docstring (ratio 0.48-1.62 in L2 for
-    near-equant cells; smaller for elongated sheared rectangles).
+    KAPPA x the discrepancy between the lattice and its images under the type's
+    symmetry operations, in the lengths l_k of the three superbase vectors (the
+    shortest vectors of the three cosets of L/2L) and the angle coordinates
+    a_k = sqrt(l_i l_j) arcsin(p_ij / (l_i l_j)) of their pairs (p_ij the conorm;
+    arcsin continued linearly above 1/2), both in Å (details in the module
+    docstring).  The transposition of v_i and v_j has discrepancies |l_i - l_j|
+    and |a_ik - a_jk| (larger for "linf", root-sum-square for "l2"); a right angle
+    between v_i and v_j that a mirror flips gives 2 a_ij.  op: min over pairs of the
+    flip; oc: min over transpositions; tp: the same pair's flip and transposition
+    (larger); hp: the worst of the three transpositions; mirror = min(op, oc).
+    Comparisons are weighted by 1 for the two shortest vectors, falling to 1/2 for
+    longer ones.  0 on the type and its closure, Lipschitz in the basis, invariant;
+    comparable with spglib's ``symprec`` (ratio within about 0.5 .. 2, docs/flags.md).
     """
     _check_metric(metric)
-    _, p, single, _ = _superbase(bases)
-    d = _cone(p[:, 0], p[:, 1] - p[:, 0], p[:, 2] - p[:, 1], p[:, 2] - p[:, 0], metric)
-    ell = np.sqrt(p.sum(axis=1) / 2.0)
-    return {k: _out(d[k] / ell, single) for k in _KEYS}
+    v, p, single, _ = _superbase(bases)
+    d = _deformation(v, p, metric)
+    return {k: _out(d[k], single) for k in _KEYS}
 
 
 def _norm(x, metric):
@@ -531,13 +578,11 @@ def invariants(bases, metric="l2"):
     x, y, _, _ = _projected(p)
     d = _distances(p, metric, "root")
     dp = _distances(p, metric, "projected")
-    dd = _cone(p[:, 0], p[:, 1] - p[:, 0], p[:, 2] - p[:, 1], p[:, 2] - p[:, 0], metric)
-    ell = np.sqrt(p.sum(axis=1) / 2.0)
     out = {
         "superbase": v, "conorms": p, "root_invariant": np.sqrt(p), "sign": s,
         "projected": np.stack([x, y], axis=1), "chiral_distance": d["mirror"] * s,
         "distances": d, "distances_projected": dp,
-        "deformation": {k: dd[k] / ell for k in _KEYS},
+        "deformation": _deformation(v, p, metric),
     }
     return {k: ({kk: _out(vv, single) for kk, vv in val.items()} if isinstance(val, dict)
                 else _out(val, single)) for k, val in out.items()}

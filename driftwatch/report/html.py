@@ -59,8 +59,9 @@ READ_ME = [
     "conorms, so near rectangular lattices (a zero conorm) they grow like the square root of a "
     "deformation: a cell a hundredth of a degree from a right angle can be a few hundredths of an "
     "Å away.",
-    "Deformation is Å of lattice-vector change needed to reach the type (Lipschitz in the cell). It is "
-    "comparable with spglib's symprec, and the flag thresholds use it.",
+    "Deformation is Å of lattice-vector change: how much the cell's vector lengths and angles (times a "
+    "length) differ from their images under the type's symmetry operations (Lipschitz in the cell). It "
+    "is comparable with spglib's symprec (within about a factor 2), and the flag thresholds use it.",
     "The tolerance spectrum is spglib's verdict on a log grid of symprec (Å); a breakpoint is a "
     "bracket [low, high] Å in which the verdict changes. Verdicts that change inside the range you "
     "use are fragile.",
