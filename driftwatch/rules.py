@@ -221,11 +221,11 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell):
                "frames": b - a + 1}
               for t, a, b in _stretches(states)[1:-1]
               if t != _LOWEST[dim] and D[t][-1] > within and D[t][0] > within]
-    nearing = None
-    if not g:
-        cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
-                and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0]]
-        nearing = min(cand, key=lambda t: (D[t][-1], -ORDER[t])) if cand else None
+    # a type approached without being reached (beyond the gained one: L ends oc, nearing hp)
+    cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
+            and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0]
+            and (g is None or (t != g and generalises(g, t)))]
+    nearing = min(cand, key=lambda t: (D[t][-1], -ORDER[t])) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
     # (a lattice of no higher type: the nearest higher type, how far it stayed)
     away_end = [t for t in types if D[t][-1] > within]

@@ -373,6 +373,10 @@ def _build_l06():
     return _hex_net_2x2(["Ni", "Cu", "Ag", "Pt"], 5.16, 5.26, 58.77)
 
 
+def _build_l10():
+    return _hex_net_2x2(["Ni", "Cu", "Ag", "Pt"], 5.16, 5.26, 61.5)
+
+
 def _build_l07():
     return _hex_net_2x3(["Au", "Cu", "Cu", "Cu", "Cu", "Cu"], 5.16, 7.62, 61.5)
 
@@ -430,9 +434,10 @@ ASE_RUNS: list[ASERun] = [
            note="SM-B04, rattled 8-atom fcc-type Cu cell, loosely converged (fmax 0.05 eV/A)"),
     ASERun("B05_emt_bfgs", "extxyz", _build_b05, "BFGS", [1, 1, 1, 1, 1, 1], 1e-4,
            note="SM-B05, 4-atom Pd cell strained orthorhombically (3.78 x 3.92 x 4.06 A)"),
-    ASERun("L10_emt_mdmin_flip", "traj", _build_l06, "MDMin", INPLANE, 1e-3,
-           opt_kwargs={"dt": 0.05},
-           note="SM-L10, the SM-L06 start relaxed with MDMin: the flip crosses a mirror lattice on a frame"),
+    ASERun("L10_emt_bfgs_flip", "traj", _build_l10, "BFGS", INPLANE, 1e-3,
+           opt_kwargs={"maxstep": 0.01},
+           note="SM-L10, the SM-L06 net from 61.5 deg, small BFGS steps: the flip crosses a mirror "
+                "lattice on a frame"),
     ASERun("B06_emt_bain", "traj", _build_b06, "FIRE", [1, 1, 1, 1, 1, 1], 1e-6, steps=1000,
            note="SM-B06, one-atom Cu cell 0.02 % off bcc, slides along the Bain path"),
     ASERun("B07_emt_fire_path", "traj", _build_b07, "FIRE", [1, 1, 1, 1, 1, 1], 1e-4, steps=400,
