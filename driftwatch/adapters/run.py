@@ -11,6 +11,7 @@ xx yy zz yz xz xy, ASE's sign convention: positive = tensile).
 from __future__ import annotations
 
 import os
+import re
 from dataclasses import dataclass, field
 from typing import Iterable, Iterator
 
@@ -102,6 +103,11 @@ class Run:
         return len(self.numbers)
 
 
+STAGE_DIR = re.compile(r"^(relax|stage|restart|run|step)[-_.]?(\d+)$", re.I)
+"""Names of stage subfolders (``relax1``, ``stage_2``, ``restart-3``, ...): a folder with no output of
+its own whose stage subfolders are run folders of one code is one multi-stage run."""
+
+
 def file_stamp(path) -> list | None:
     """``[size, mtime_ns, ctime_ns, inode]`` of a file (symlinks followed), None if it is missing.
 
@@ -146,7 +152,11 @@ class ReadContext:
         positions (see :attr:`Run.position_precision`); None when unknown."""
         self.file_stages: list = []
         """``[(name, n_frames), ...]`` when one file holds several stages (a task document's
-        calculations), in the order they ran."""
+        calculations, pw.x runs appended to one output), in the order they ran."""
+        self.carry: dict = {}
+        """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
+        configuration it printed but never evaluated, which a ``restart_mode='restart'`` run
+        continues from without printing it)."""
 
     def uses(self, path) -> None:
         """Record that the read depends on ``path`` (stamped now; first use wins)."""

@@ -28,6 +28,7 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import STREAM_ERRORS, Lines, open_bytes, strip_compression, tail_bytes
+from .run import STAGE_DIR as _STAGE_DIR
 from .run import Frame, ReadContext, decimals, frame_from_atoms
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
@@ -545,7 +546,6 @@ def read_poscar(path, ctx: ReadContext):
 
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
-_STAGE_DIR = re.compile(r"^(relax|stage|restart|run|step)[-_.]?(\d+)$", re.I)
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
