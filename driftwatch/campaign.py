@@ -96,7 +96,17 @@ def _matches(spec: RunSpec, patterns) -> bool:
                for p in patterns)
 
 
-def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
+def _file_runs(path: str, rid: str, keys) -> list[RunSpec]:
+    """The runs of one file: one per structure of a many-structure extended XYZ or ase.db
+    (``FILE::NAME``, :mod:`driftwatch.adapters.batch`), else the file itself."""
+    from .adapters.registry import structures
+    names = structures(path, keys)
+    if not names:
+        return [RunSpec(rid, str(path), "file")]
+    return [RunSpec(f"{rid}::{n}", f"{path}::{n}", "file") for n in names]
+
+
+def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, keys=None):
     """Yield RunSpecs and failed entries (dicts) below ``root`` (depth first, sorted).
 
     Symbolic links (to files or folders) are taken after every real path of the root, so a run
@@ -110,7 +120,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
                 freal = os.path.realpath(path)
                 if freal not in seen_runs and freal not in skip and recognised(path, name):
                     seen_runs.add(freal)
-                    yield RunSpec(rid, path, "file")
+                    yield from _file_runs(path, rid, keys)
             later_files = []
             stack, later_dirs = later_dirs[::-1], []
             continue
@@ -153,14 +163,19 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
                 freal = os.path.realpath(path)
                 if freal not in seen_runs and freal not in skip and e.name in wanted:
                     seen_runs.add(freal)
-                    yield RunSpec(frid, path, "file")
+                    yield from _file_runs(path, frid, keys)
         for e in reversed(dirs):
             item = (Path(folder) / e.name, f"{rid}/{e.name}")
             (later_dirs if e.is_symlink() else stack).append(item)
 
 
-def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], list[dict]]:
+def discover(roots, *, include=(), exclude=(), skip=(),
+             structure_keys=None) -> tuple[list[RunSpec], list[dict]]:
     """Runs under ``roots`` (folders or files) and failed entries for what could not be searched.
+
+    A file of many relaxations (an extended XYZ or ase.db whose frames name their structure by one
+    of ``structure_keys``, default ``adapters.batch.STRUCTURE_KEYS``) gives one run per structure,
+    id and path ``FILE::NAME``.
 
     Args:
         roots: folders or files.
@@ -185,10 +200,10 @@ def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], 
             continue
         if root.is_file():
             real = os.path.realpath(root)
-            found = [] if real in seen_runs else [RunSpec(name, str(root), "file")]
+            found = [] if real in seen_runs else _file_runs(str(root), name, structure_keys)
             seen_runs.add(real)
         else:
-            found = _walk(root, name, skip_real, seen_dirs, seen_runs)
+            found = _walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys)
         for item in found:
             if isinstance(item, dict):
                 if not _matches(RunSpec(item["run"], item["source"], "folder"), exclude):
@@ -271,7 +286,7 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
     try:
         from .adapters import read_run
         from .track import analyze
-        run = read_run(path, context=ctx)
+        run = read_run(path, context=ctx, structure_keys=cfg["inputs"]["structure_keys"])
         rec = analyze(run, cfg)
         timing = _split_volatile(rec)
         structure = {"cell": run.cells[-1].tolist(), "positions": run.positions[-1].tolist(),
@@ -697,7 +712,8 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
     old_marker = _prepare_output(out, roots_abs, overwrite)
 
     skip = [out] + ([] if "://" in db_name else [db_name])
-    runs, failed = discover(roots, include=include, exclude=exclude, skip=skip)
+    runs, failed = discover(roots, include=include, exclude=exclude, skip=skip,
+                            structure_keys=cfg["inputs"]["structure_keys"])
     if scheduler:      # Dask workers may run elsewhere: give them absolute paths (shared filesystem)
         runs = [RunSpec(r.id, os.path.abspath(r.path), r.kind) for r in runs]
     res = _Results(out, _record_names(runs), Cache(out / ".cache", enabled=use_cache))

@@ -61,6 +61,7 @@ _KINDS = {
     "tolerance.min_plateau": "fraction",
     "report.common_symprecs": ("list", "length"),
     "reject_on": ("list", "str"),
+    "inputs.structure_keys": ("list", "str"),
 }
 
 # Keys of driftwatch/config-1 files before the verdict model had a direction (old name -> new).

@@ -17,6 +17,8 @@ Outputs (relative to ``--out``, default: the repository root)::
     tests/data/qe/pseudo/*.UPF                      pseudopotentials those inputs use
     tests/data/qe/restart_numbered/                 pw.out.1 (stopped at nstep) + pw.out (restart)
     tests/data/qe/restart_stage_folders/relax1|2/   soft-stopped run + new run from its last structure
+    tests/data/batch/                               EMT batch: relaxations.extxyz.gz, relaxations.db,
+                                                    pairs.extxyz.gz, pairs.db (--only batch)
     example_runs/<name>/pw.in, pw.out[.gz]          pw.x runs of the demo campaign
     example_runs/<name>.traj, <name>.extxyz         ASE runs of the demo campaign
     example_runs/pseudo/*.UPF
@@ -605,11 +607,128 @@ STAGED_RUNS = {"restart_numbered": make_restart_numbered,
                "restart_stage_folders": make_restart_stage_folders}
 
 
+# --------------------------------------------------------------------------------------
+# many relaxations in one file (tests/data/batch): ASE EMT as a stand-in ML potential
+# --------------------------------------------------------------------------------------
+def _batch_starts():
+    """Invented starting cells of the batch "Ridgeback-6" (ids are ours): bulk cells off a cubic
+    lattice and layers off a hexagonal one."""
+    from ase import Atoms
+    from ase.build import bulk
+    starts = {}
+    starts["Cu-bct-07"] = Atoms("Cu", cell=bcc_primitive(3.10, 3.10 * 1.30), pbc=True)
+    starts["Al-fco-02"] = Atoms("Al", cell=np.array([[0.0, 4.04 / 2, 4.12 / 2], [3.96 / 2, 0.0, 4.12 / 2],
+                                                    [3.96 / 2, 4.04 / 2, 0.0]]), pbc=True)
+    ni = bulk("Ni", "fcc", a=3.52)
+    F = np.eye(3) + 0.02 * (np.ones((3, 3)) - np.eye(3))          # a trigonal strain: hR
+    ni.set_cell(ni.cell.array @ F, scale_atoms=True)
+    starts["Ni-rhombo-03"] = ni
+    cuni = Atoms("CuNi", scaled_positions=[[0, 0, 0], [0.5, 0.5, 0.5]],
+                 cell=np.diag([2.52, 2.52, 3.70]), pbc=True)      # an L1_0-type tP cell
+    starts["CuNi-tP-04"] = cuni
+    starts["Cu-layer-05"] = _flat_layer(["Cu", "Cu"], [(0.0, 0.0), (0.5, 0.5)], 4.30, 2.62, 96.0)
+    starts["Al-layer-06"] = _flat_layer(["Al"], [(0.0, 0.0)], 2.80, 2.95, 84.0)
+    return starts
+
+
+def _batch_mask(atoms):
+    """In-plane cell only for layers (vacuum along c), the whole cell for bulk."""
+    return INPLANE if atoms.cell.lengths()[2] > 10 else [1, 1, 1, 1, 1, 1]
+
+
+def make_batch(out_root: Path) -> dict:
+    """Six EMT relaxations (FrechetCellFilter + BFGS) written as an ML-potential batch workflow
+    writes them: every frame of every relaxation appended to one extended XYZ with ``structure_id``
+    and ``step`` in the frame's info (relaxations one after the other); the same relaxations run
+    batched (one optimizer step of each structure in turn) into one ase.db with ``relax_id`` and
+    ``step`` key-value pairs (rows interleaved); and two files of initial/final pairs (the first
+    and last frames): ``pairs.extxyz`` (``state=initial/final``) and ``pairs.db`` (``relaxed =
+    False/True``, the relaxed row written first, as databases keep the result first)."""
+    from ase.calculators.emt import EMT
+    from ase.calculators.singlepoint import SinglePointCalculator
+    from ase.db import connect
+    from ase.filters import FrechetCellFilter
+    from ase.io import write
+    from ase.optimize import BFGS
+
+    tree = out_root / "tests/data/batch"
+    part = out_root / "tests/data/.batch.partial"
+    shutil.rmtree(part, ignore_errors=True)
+    part.mkdir(parents=True)
+    t0 = time.time()
+    fmax, steps = 2e-3, 300
+
+    def relaxer(name, atoms):
+        atoms = atoms.copy()
+        atoms.calc = EMT()
+        opt = BFGS(FrechetCellFilter(atoms, mask=_batch_mask(atoms)), logfile=None)
+        return atoms, opt
+
+    # 1. one after the other, every step appended to one extended XYZ
+    xyz = part / "relaxations.extxyz"
+    trajectories = {}
+    for name, start in _batch_starts().items():
+        atoms, opt = relaxer(name, start)
+        frames = []
+
+        def keep(atoms=atoms, opt=opt, name=name, frames=frames):
+            at = atoms.copy()                         # the step's results, kept with the frame
+            at.calc = SinglePointCalculator(at, energy=atoms.get_potential_energy(),
+                                            forces=atoms.get_forces(), stress=atoms.get_stress())
+            at.info.update({"structure_id": name, "step": opt.nsteps})
+            frames.append(at)
+            write(xyz, at, format="extxyz", append=True)
+        opt.attach(keep)
+        if not opt.run(fmax=fmax, steps=steps):
+            raise RuntimeError(f"batch: {name} did not converge in {steps} steps")
+        trajectories[name] = frames
+
+    # 2. batched: one step of each structure in turn, every step a row of one ase.db
+    db_path = part / "relaxations.db"
+    with connect(db_path, use_lock_file=False) as db:
+        runs = []
+        for name, start in _batch_starts().items():
+            atoms, opt = relaxer(name, start)
+            opt.attach(lambda atoms=atoms, opt=opt, name=name:
+                       db.write(atoms, relax_id=name, step=opt.nsteps))
+            runs.append(opt.irun(fmax=fmax, steps=steps))
+        while runs:
+            for it in list(runs):
+                try:
+                    if next(it):
+                        runs.remove(it)
+                except StopIteration:
+                    runs.remove(it)
+
+    # 3. initial/final pairs
+    pairs_xyz = part / "pairs.extxyz"
+    with connect(part / "pairs.db", use_lock_file=False) as db:
+        for name, frames in trajectories.items():
+            first, last = frames[0].copy(), frames[-1].copy()
+            for at, state, src in ((first, "initial", frames[0]), (last, "final", frames[-1])):
+                at.calc = src.calc
+                at.info = {"structure_id": name, "state": state}
+                write(pairs_xyz, at, format="extxyz", append=True)
+            db.write(frames[-1], system_name=name, relaxed=True)
+            db.write(frames[0], system_name=name, relaxed=False)
+    for f in (xyz, pairs_xyz):
+        with gzip.GzipFile(f.with_name(f.name + ".gz"), "wb", mtime=0) as gz:
+            gz.write(f.read_bytes())
+        f.unlink()
+    if tree.exists():
+        shutil.rmtree(tree)
+    os.replace(part, tree)
+    files = sorted(tree.iterdir())
+    return {"name": "batch", "wall_s": round(time.time() - t0, 1), "file": str(tree.relative_to(out_root)),
+            "bytes": sum(f.stat().st_size for f in files),
+            "frames": {k: len(v) for k, v in trajectories.items()}}
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--only", action="append", default=[],
-                    help="run name, or a group: qe-fixtures, qe, qe-restarts, ase, examples "
-                         "(repeatable)")
+                    help="run name, or a group: qe-fixtures, qe, qe-restarts, ase, batch, "
+                         "examples (repeatable)")
     ap.add_argument("--out", type=Path, default=REPO, help="output root (default: repository root)")
     ap.add_argument("--np", type=int, default=2, help="MPI processes for pw.x (1 or 2; default 2)")
     ap.add_argument("--list", action="store_true", help="list the runs and exit")
@@ -618,7 +737,9 @@ def main(argv=None) -> int:
         ap.error("--np must be 1 or 2 (the machine is shared)")
     runs = [("qe", r) for r in QE_RUNS] + [("ase", r) for r in ASE_RUNS] + \
         [("qe-restarts", _Named(n, "tests/data/qe", (f.__doc__ or "").split("\n")[0]))
-         for n, f in STAGED_RUNS.items()]
+         for n, f in STAGED_RUNS.items()] + \
+        [("batch", _Named("batch", "tests/data/batch", "six EMT relaxations in one extxyz and one "
+                                                        "ase.db, and initial/final pairs"))]
     if args.list:
         for kind, r in runs:
             print(f"{r.name:32s} {kind:4s} {getattr(r, 'tree', 'example_runs')}  {r.note}")
@@ -631,7 +752,8 @@ def main(argv=None) -> int:
             groups.add("qe")
         if not args.only or groups & set(args.only):
             selected.append((kind, r))
-    known = {r.name for _, r in runs} | {"qe", "ase", "qe-fixtures", "examples", "qe-restarts"}
+    known = {r.name for _, r in runs} | {"qe", "ase", "qe-fixtures", "examples", "qe-restarts",
+                                          "batch"}
     unknown = set(args.only) - known
     if unknown:
         ap.error(f"unknown run name(s): {', '.join(sorted(unknown))} (see --list)")
@@ -641,6 +763,9 @@ def main(argv=None) -> int:
             res = run_qe(r, args.out, args.np)
         elif kind == "qe-restarts":
             res = STAGED_RUNS[r.name](args.out, args.np)
+        elif kind == "batch":
+            res = make_batch(args.out)
+            print(f"  frames per relaxation: {res['frames']}")
         else:
             res = run_ase(r, args.out)
         print(f"{res['name']:32s} {res['wall_s']:7.1f} s  {res['bytes']:8d} B  {res['file']}", flush=True)

@@ -90,6 +90,13 @@ class Run:
     Euclidean norm of the error vector: ``sqrt(3) * 0.5 * 10**-d`` for cartesian coordinates with
     ``d`` decimals, ``0.5 * 10**-d * (|a| + |b| + |c|)`` (largest over frames) for fractional ones).
     None when unknown or when the file holds binary doubles (``.traj``, ase.db)."""
+    kind: str = "trajectory"
+    """``"trajectory"`` (ionic steps as the code wrote them) or ``"end-points"`` (only the initial
+    and the final structure of a relaxation, as databases of initial/final pairs store them: steps
+    0 and 1 are those two structures, not ionic steps)."""
+    structure_key: dict | None = None
+    """For one structure of a many-structure file (``FILE::NAME``): ``{"key": info or key-value name,
+    "value": NAME, "structures": how many the file holds}``; None otherwise."""
     inputs: tuple = ()
     """What the read depended on, for caches: ``(kind, path, stamp)`` with kind ``"file"`` (stamp
     = ``[size, mtime_ns, ctime_ns, inode]`` when the reader opened it, None if it was missing) or
@@ -153,6 +160,14 @@ class ReadContext:
         self.file_stages: list = []
         """``[(name, n_frames), ...]`` when one file holds several stages (a task document's
         calculations, pw.x runs appended to one output), in the order they ran."""
+        from .batch import STRUCTURE_KEYS
+        self.structure_keys: tuple = STRUCTURE_KEYS
+        """Keys naming the structure a frame belongs to in many-structure files (``inputs.
+        structure_keys``; :mod:`driftwatch.adapters.batch`)."""
+        self.kind: str = "trajectory"
+        """``"trajectory"`` or ``"end-points"`` (only an initial and a final structure)."""
+        self.structure: dict | None = None
+        """``{"key", "value", "structures"}`` for one structure of a many-structure file."""
         self.carry: dict = {}
         """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
         configuration it printed but never evaluated, which a ``restart_mode='restart'`` run
@@ -357,7 +372,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings), title=ctx.title,
         run_dir=None if run_dir is None else str(run_dir),
         stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
-        inputs=ctx.inputs(),
+        kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
     )
 
 
