@@ -238,3 +238,225 @@ def test_multistage_pwx_verdict_against_spglib():
     assert v["direction"] == "gained" and v["lattice"]["final"] == "cF"
     assert v["lattice"]["from_step"] >= run.stages[1]["step_offset"]
     assert [s["name"] for s in rec["run"]["stages"]] == ["pw.out.1", "pw.out.gz"]
+
+
+# ---------------------------------------------------------------- many structures in one file
+BATCH = REPO / "tests" / "data" / "batch"
+NAMES = ["Cu-bct-07", "Al-fco-02", "Ni-rhombo-03", "CuNi-tP-04", "Cu-layer-05", "Al-layer-06"]
+
+
+def _ase_extxyz(path):
+    with gzip.open(path, "rt") as fh:
+        return ase.io.read(fh, ":", format="extxyz")                         # ASE
+
+
+def _by(frames, key, name):
+    return [a for a in frames if str(a.info.get(key)) == name]
+
+
+def _same(run, images, atol=0.0):
+    assert len(run) == len(images)
+    np.testing.assert_allclose(run.cells, [a.cell.array for a in images], atol=atol, rtol=0)
+    np.testing.assert_allclose(run.positions, [a.positions for a in images], atol=atol, rtol=0)
+    np.testing.assert_allclose(run.energies, [a.get_potential_energy() for a in images], rtol=1e-12)
+
+
+def test_one_run_per_structure_equal_to_ases_readers():
+    """Six real EMT relaxations (FrechetCellFilter + BFGS) in one extended XYZ (structure_id, step;
+    one after the other) and one ase.db (relax_id, step; rows interleaved as a batched optimizer
+    writes them): each structure read as its own run equals ASE's readers filtered by the key."""
+    import ase.db
+    images = _ase_extxyz(BATCH / "relaxations.extxyz.gz")
+    assert sorted({a.info["structure_id"] for a in images}) == sorted(NAMES)
+    with ase.db.connect(BATCH / "relaxations.db") as db:                      # ASE's ase.db
+        rows = list(db.select(sort="id"))
+    ids = [r.relax_id for r in rows]
+    assert ids[:len(NAMES)] == NAMES                                          # interleaved rows
+    for name in NAMES:
+        xyz = read_run(f"{BATCH / 'relaxations.extxyz.gz'}::{name}")
+        _same(xyz, _by(images, "structure_id", name))
+        assert xyz.steps.tolist() == [a.info["step"] for a in _by(images, "structure_id", name)]
+        assert xyz.structure_key == {"key": "structure_id", "value": name, "structures": 6}
+        mine = sorted((r for r in rows if r.relax_id == name), key=lambda r: r.step)
+        db_run = read_run(f"{BATCH / 'relaxations.db'}::{name}")
+        _same(db_run, [r.toatoms() for r in mine])
+        assert db_run.steps.tolist() == [r.step for r in mine] and db_run.kind == "trajectory"
+        # the two files hold the same deterministic relaxations; extxyz prints 8 decimals
+        np.testing.assert_allclose(xyz.positions, db_run.positions, atol=1e-8, rtol=0)
+
+
+def test_discovery_lists_each_structure_and_reading_the_file_whole_names_them(tmp_path):
+    """An audit and inspect see FILE::NAME for each structure; FILE alone is a one-line error naming
+    the structures (exit 1 from the command line)."""
+    import subprocess
+    import sys
+    from driftwatch.campaign import discover
+    runs, failed = discover([BATCH])
+    assert not failed and len(runs) == 24
+    assert {r.id.split("::")[1] for r in runs} == set(NAMES)
+    assert all(r.path.endswith(r.id.split("::")[1]) for r in runs)
+    for f in ("relaxations.extxyz.gz", "relaxations.db", "pairs.extxyz.gz", "pairs.db"):
+        with pytest.raises(InputError, match=r"holds 6 structures named by .*Cu-bct-07.*::"):
+            read_run(BATCH / f)
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(BATCH / "pairs.db")],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 1 and proc.stderr.count("\n") == 1
+    assert "holds 6 structures named by 'system_name'" in proc.stderr
+    with pytest.raises(InputError, match="no structure 'Fe-bcc-99'"):
+        read_run(f"{BATCH / 'relaxations.db'}::Fe-bcc-99")
+    # a file given as the root of an audit is split the same way
+    runs, _ = discover([BATCH / "relaxations.db"])
+    assert [r.id for r in runs] == sorted(f"relaxations.db::{n}" for n in NAMES)
+
+
+def test_verdicts_of_the_batch_against_spglib():
+    """spglib (symprec 1e-3 Å) on the first and last frames ASE reads of each relaxation: the same
+    groups as the record's verdict, for the extxyz, the ase.db and both files of pairs."""
+    import spglib
+    from driftwatch.track import analyze
+    images = _ase_extxyz(BATCH / "relaxations.extxyz.gz")
+    for name in NAMES:
+        mine = _by(images, "structure_id", name)
+        recs = [analyze(f"{BATCH / f}::{name}") for f in
+                ("relaxations.extxyz.gz", "relaxations.db", "pairs.extxyz.gz", "pairs.db")]
+        for k, a in ((0, mine[0]), (-1, mine[-1])):
+            if recs[0]["geometry"]["dimension"] == 3:                        # spglib space group
+                want = spglib.get_symmetry_dataset((a.cell.array, a.get_scaled_positions(),
+                                                    a.numbers), symprec=1e-3).number
+                for rec in recs:
+                    got = rec["summary"]["verdict"]["structure"]["initial" if k == 0 else "final"]
+                    assert got["group"] == want, (name, k)
+        texts = {r["summary"]["verdict"]["text"].split(":", 1)[1] for r in recs[2:]}
+        assert len(texts) == 1                                                 # both pair files
+
+
+def test_initial_final_pairs_are_end_point_runs():
+    """Files of initial/final pairs (real EMT first and last frames): state=initial/final in an
+    extended XYZ, relaxed=False/True in an ase.db whose relaxed row comes first. Two-frame runs,
+    initial first, reported "initial -> final" with no step numbers; the frames are ASE's first and
+    last frames of the full relaxation."""
+    from driftwatch.track import analyze
+    images = _ase_extxyz(BATCH / "relaxations.extxyz.gz")
+    for f in ("pairs.extxyz.gz", "pairs.db"):
+        for name in NAMES:
+            run = read_run(f"{BATCH / f}::{name}")
+            mine = _by(images, "structure_id", name)
+            assert run.kind == "end-points" and run.steps.tolist() == [0, 1]
+            np.testing.assert_allclose(run.positions, [mine[0].positions, mine[-1].positions],
+                                       atol=1e-8, rtol=0)                      # ASE
+    rec = analyze(f"{BATCH / 'pairs.db'}::Cu-bct-07")
+    assert rec["run"]["kind"] == "end-points" and rec["run"]["n_frames"] == 2
+    assert [f["label"] for f in rec["frames"]] == ["initial", "final"]
+    v = rec["summary"]["verdict"]
+    assert v["text"].startswith("gained (initial -> final structure; no ionic steps between them)")
+    assert "tI -> cF" in v["text"] and "step" not in v["text"].replace("ionic steps", "")
+    assert rec["flags"] and all("at the final structure" in fl["message"] and
+                                " step " not in fl["message"] for fl in rec["flags"])
+    traj = analyze(f"{BATCH / 'relaxations.db'}::Cu-bct-07")
+    assert traj["run"]["kind"] == "trajectory" and "from step" in traj["summary"]["verdict"]["text"]
+    assert "label" not in traj["frames"][0]
+
+
+def test_structure_keys_are_configurable_and_bad_batches_are_one_line_errors(tmp_path):
+    """inputs.structure_keys decides what names a structure; a frame without the key, or two frames
+    of one step under one name, is a one-line error naming the file and the frame."""
+    from driftwatch import config
+    from driftwatch.adapters import batch
+    from driftwatch.campaign import discover
+    assert tuple(config.load()["inputs"]["structure_keys"]) == batch.STRUCTURE_KEYS
+    runs, _ = discover([BATCH / "relaxations.db"], structure_keys=["structure_id"])
+    assert [r.id for r in runs] == ["relaxations.db"]                 # relax_id not tried: one run
+    text = gzip.decompress((BATCH / "relaxations.extxyz.gz").read_bytes()).decode()
+    lines = text.splitlines(keepends=True)
+    # frame 3 loses its structure_id
+    n = int(lines[0])
+    k = 3 * (n + 2) + 1                          # comment line of frame 3 (all frames: 1 atom)
+    assert "structure_id=Cu-bct-07" in lines[k]
+    bad = tmp_path / "bad.extxyz"
+    bad.write_text("".join(lines[:k] + [lines[k].replace("structure_id=Cu-bct-07", "")] +
+                           lines[k + 1:]))
+    with pytest.raises(InputError, match=r"bad.extxyz: frame 3 has no 'structure_id'") as exc:
+        read_run(f"{bad}::Cu-bct-07")
+    assert "\n" not in str(exc.value)
+    dup = tmp_path / "dup.extxyz"
+    dup.write_text("".join(lines[:k] + [lines[k].replace("step=3", "step=2")] + lines[k + 1:]))
+    with pytest.raises(InputError, match=r"two frames of step 2 \(frames 2 and 3\)"):
+        read_run(f"{dup}::Cu-bct-07")
+    # a file naming no structures is one run, as before; asking it for a name says so
+    with pytest.raises(InputError, match="names no structures"):
+        read_run(f"{REPO / 'example_runs' / 'B05_emt_bfgs.extxyz'}::x")
+    with pytest.raises(InputError, match="pw.x output holds one run"):
+        read_run(f"{QE / 'layer_oblique_to_hex' / 'pw.out'}::x")
+
+
+def test_cache_keys_each_structure_on_the_file_and_its_name(tmp_path):
+    """One cache entry per structure; a re-audit serves all from the cache; a changed file (a new
+    structure appended, real frames under a new name) re-reads every structure of it and adds the
+    new one."""
+    from driftwatch.campaign import audit
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    shutil.copy(BATCH / "relaxations.extxyz.gz", camp)
+    kw = dict(workers=1, report=False, progress="off")
+    first = audit([camp], tmp_path / "out", **kw)
+    assert first["runs"] == 6 and not first["failed"]
+    entries = [p for p in (tmp_path / "out" / ".cache").glob("*.json") if p.name != "digests.json"]
+    assert len(entries) == 6
+    again = audit([camp], tmp_path / "out", **kw)
+    assert again["cached"] == 6 and again["analysed"] == 0
+    text = gzip.decompress((camp / "relaxations.extxyz.gz").read_bytes()).decode()
+    extra = "".join(ln.replace("structure_id=Cu-bct-07", "structure_id=Cu-bct-08")
+                    for ln in _frames_of(text, "Cu-bct-07"))
+    (camp / "relaxations.extxyz.gz").write_bytes(gzip.compress((text + extra).encode()))
+    third = audit([camp], tmp_path / "out", **kw)
+    assert third["runs"] == 7 and third["cached"] == 0 and not third["failed"]
+    recs = {p.name for p in (tmp_path / "out" / "records").glob("*.json")}
+    assert "camp_relaxations.extxyz.gz__Cu-bct-08.json" in recs
+    a = json_load(tmp_path / "out" / "records" / "camp_relaxations.extxyz.gz__Cu-bct-07.json")
+    b = json_load(tmp_path / "out" / "records" / "camp_relaxations.extxyz.gz__Cu-bct-08.json")
+    assert a["summary"]["verdict"] == b["summary"]["verdict"]               # the same frames
+
+
+def _frames_of(text, name):
+    lines, out, i = text.splitlines(keepends=True), [], 0
+    while i < len(lines):
+        n = int(lines[i])
+        block = lines[i:i + n + 2]
+        if f"structure_id={name}" in block[1]:
+            out.extend(block)
+        i += n + 2
+    return out
+
+
+def json_load(path):
+    import json
+    return json.loads(Path(path).read_text())
+
+
+def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
+    """Every genuine public output, the real pw.x runs (single and multi-stage), the EMT batch files
+    and pairs, audited through the command line as a user would: no failed run; the two
+    non-periodic systems skipped with the setting that would include them; exit 0."""
+    import json
+    import subprocess
+    import sys
+    camp = tmp_path / "mixed"
+    shutil.copytree(PUB, camp / "public", ignore=shutil.ignore_patterns("README.md", "SHA256SUMS"))
+    for d in ("layer_oblique_to_hex", "restart_numbered", "restart_stage_folders"):
+        shutil.copytree(QE / d, camp / "qe" / d)
+    shutil.copytree(QE / "pseudo", camp / "qe" / "pseudo")
+    shutil.copytree(BATCH, camp / "ml_batch")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "-j", "2", "--no-report"],
+                          capture_output=True, text=True, timeout=900)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["failed"] == []
+    assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/public/ase_generic/gpaw_h2.txt"]
+    runs = {p.stem for p in (tmp_path / "out" / "records").glob("*.json")}
+    assert "mixed_qe_restart_numbered" in runs and "mixed_qe_restart_stage_folders" in runs
+    assert "mixed_public_vasp522_energy_first" in runs
+    assert sum("ml_batch" in r for r in runs) == 24
+    assert summary["runs"] == len(runs) + 1
+    rec = json_load(tmp_path / "out" / "records" / "mixed_ml_batch_pairs.db__Ni-rhombo-03.json")
+    assert rec["run"]["kind"] == "end-points" and rec["summary"]["verdict"]["direction"] == "gained"

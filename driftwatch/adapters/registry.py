@@ -325,6 +325,10 @@ def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
     for _, src, fmt in pick.stages:
         if fmt not in _formats:
             raise UnknownFormatError(src, f"unknown format {fmt!r} (known formats: {_known()})")
+    if selection and selection.startswith(_SEP) and _formats[pick.format].members is None:
+        raise InputError(path, f"{_formats[pick.format].description or pick.format} holds one run; "
+                               f"'{_SEP}NAME' names a structure of an extended XYZ or ase.db of "
+                               f"many relaxations")
     pick.selection = selection
     return pick
 
