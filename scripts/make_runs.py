@@ -636,6 +636,28 @@ def _batch_mask(atoms):
     return INPLANE if atoms.cell.lengths()[2] > 10 else [1, 1, 1, 1, 1, 1]
 
 
+BATCH_README = """# Batch "Ridgeback-6": many relaxations in one file (made here)
+
+Invented starting cells (the ids Cu-bct-07 ... Al-layer-06 and the batch name are ours): bulk cells
+off a cubic lattice (body-centred tetragonal Cu, face-centred orthorhombic Al, rhombohedral Ni), a
+tetragonal CuNi cell, and two layers (Cu2, Al) from oblique starts. Each was relaxed with ASE's own
+EMT calculator (a stand-in for an ML potential) on a `FrechetCellFilter` (in-plane mask for layers)
+with BFGS to fmax {fmax} eV/A, as an ML-potential batch workflow relaxes and writes them:
+
+* `relaxations.extxyz.gz`: every frame of every relaxation, one relaxation after the other, with
+  `structure_id` and `step` in each frame's info (and ASE's energy, forces, stress);
+* `relaxations.db`: the same relaxations run batched (one optimizer step of each structure in turn)
+  into one ase.db (SQLite), `relax_id` and `step` as key-value pairs, rows interleaved;
+* `pairs.extxyz.gz`: the first and last frame of each relaxation, `state=initial` / `final`;
+* `pairs.db`: the same pairs in an ase.db, `system_name` and `relaxed` = False / True, the relaxed
+  row written first.
+
+Frames per relaxation: {counts}. Regenerate with `python scripts/make_runs.py --only batch` (about
+half a minute, mostly ase.db commits). EMT is a toy potential: these files show how a batch is read, not physics of any material.
+Licence: BSD-3-Clause, as the project.
+"""
+
+
 def make_batch(out_root: Path) -> dict:
     """Six EMT relaxations (FrechetCellFilter + BFGS) written as an ML-potential batch workflow
     writes them: every frame of every relaxation appended to one extended XYZ with ``structure_id``
@@ -715,6 +737,8 @@ def make_batch(out_root: Path) -> dict:
         with gzip.GzipFile(f.with_name(f.name + ".gz"), "wb", mtime=0) as gz:
             gz.write(f.read_bytes())
         f.unlink()
+    counts = ", ".join(f"{k} {len(v)}" for k, v in trajectories.items())
+    (part / "README.md").write_text(BATCH_README.format(counts=counts, fmax=fmax))
     if tree.exists():
         shutil.rmtree(tree)
     os.replace(part, tree)
