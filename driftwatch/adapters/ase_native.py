@@ -100,12 +100,20 @@ def read_extxyz(path, ctx: ReadContext):
         return
     wanted = {m.pos: k for k, m in enumerate(chosen)}
     got: dict = {}
-    for n, _comment, lineno, block in batch.extxyz_frames(path):
-        if n is None:
-            truncated(_comment, lineno)
-            break
-        if n in wanted:
-            got[wanted[n]] = parse(block, lineno, not got)
+    _, kept = batch.index_extxyz(path, ctx.structure_keys, keep_lines=True)
+    if kept is not None:                     # the lines are in memory: no second pass
+        for pos, k in sorted(wanted.items(), key=lambda x: x[1]):
+            if pos in kept:
+                got[k] = parse(kept[pos][1], kept[pos][0], not got)
+        if index.cut:
+            truncated(*index.cut)
+    else:
+        for n, _comment, lineno, block in batch.extxyz_frames(path):
+            if n is None:
+                truncated(_comment, lineno)
+                break
+            if n in wanted:
+                got[wanted[n]] = parse(block, lineno, not got)
     for k, m in enumerate(chosen):
         if k in got:
             yield frame_from_atoms(got[k], _member_step(m, k, kind))
