@@ -24,9 +24,10 @@ allocate or loop without end)."""
 
 def _step(atoms, i):
     """The optimizer's step counter when the writer stored one, else the frame index."""
+    import numbers
     info = getattr(atoms, "info", {}) or {}
-    for key in ("step", "nsteps", "ionic_step"):
-        if isinstance(info.get(key), (int,)) and not isinstance(info.get(key), bool):
+    for key in ("step", "nsteps", "ionic_step"):         # ASE's extxyz parser gives numpy ints
+        if isinstance(info.get(key), numbers.Integral) and not isinstance(info.get(key), bool):
             return int(info[key])
     return i
 
@@ -90,12 +91,14 @@ def read_extxyz(path, ctx: ReadContext):
                                            else "the last line is cut")
                  + "; still being written or cut")
 
+    # batch.extxyz_frames yields (n, comment, line number, lines) per complete frame, then
+    # (None, frames read, "frame" | "line", None) when the file ends abnormally
     if chosen is None:                       # the whole file is one run: stream it
-        for n, _comment, lineno, block in batch.extxyz_frames(path):
+        for n, a, b, block in batch.extxyz_frames(path):
             if n is None:
-                truncated(_comment, lineno)
+                truncated(a, b)
                 return
-            atoms = parse(block, lineno, n == 0)
+            atoms = parse(block, b, n == 0)
             yield frame_from_atoms(atoms, _step(atoms, n))
         return
     wanted = {m.pos: k for k, m in enumerate(chosen)}
@@ -108,12 +111,12 @@ def read_extxyz(path, ctx: ReadContext):
         if index.cut:
             truncated(*index.cut)
     else:
-        for n, _comment, lineno, block in batch.extxyz_frames(path):
+        for n, a, b, block in batch.extxyz_frames(path):
             if n is None:
-                truncated(_comment, lineno)
+                truncated(a, b)
                 break
             if n in wanted:
-                got[wanted[n]] = parse(block, lineno, not got)
+                got[wanted[n]] = parse(block, b, not got)
     for k, m in enumerate(chosen):
         if k in got:
             yield frame_from_atoms(got[k], _member_step(m, k, kind))
