@@ -178,11 +178,18 @@ def _inspect_table(rec: dict) -> str:
     lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in rows]
     lines.append("")
     kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
+    n = rec["run"]["n_frames"]
     frames_word = ("2 structures (initial and final only; no ionic steps between them)"
-                   if rec["run"].get("kind") == "end-points" else f"{rec['run']['n_frames']} frames")
+                   if rec["run"].get("kind") == "end-points" else f"{n} frame{'s' if n != 1 else ''}")
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
                  f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")
+    stages = rec["run"].get("stages") or []
+    if stages:
+        lines.append("  stages: " + ", ".join(
+            f"{st['name']} (steps {frames[st['first_frame']]['step']}-"
+            f"{frames[st['first_frame'] + st['n_frames'] - 1]['step']})" for st in stages
+            if st["n_frames"]))
     lines.append(f" verdict: {v['text']}")
     d = s.get("drift")
     if d:
