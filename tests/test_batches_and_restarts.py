@@ -460,3 +460,30 @@ def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
     assert summary["runs"] == len(runs) + 1
     rec = json_load(tmp_path / "out" / "records" / "mixed_ml_batch_pairs.db__Ni-rhombo-03.json")
     assert rec["run"]["kind"] == "end-points" and rec["summary"]["verdict"]["direction"] == "gained"
+
+
+def test_numbered_outputs_and_folders_that_do_not_continue_are_separate_runs(tmp_path):
+    """Stages must continue each other: a rerun from the input beside the first output (numbered
+    copies), run1/ run2/ folders of unrelated pw.x relaxations, and relax1/ relax2/ folders of two
+    different VASP structures (genuine pymatgen-db files) are separate runs, never one run and
+    never a failed one."""
+    from driftwatch.campaign import discover
+    rerun = tmp_path / "rerun"
+    rerun.mkdir()
+    shutil.copy(NUMBERED / "pw.out.1", rerun / "pw.out.1")
+    shutil.copy(NUMBERED / "pw.out.1", rerun / "pw.out")      # started again from the input
+    runs, failed = discover([rerun])
+    assert sorted(r.id for r in runs) == ["rerun/pw.out", "rerun/pw.out.1"] and not failed
+    camp = tmp_path / "camp"
+    shutil.copytree(QE / "bulk_tetragonal_to_cubic", camp / "run1")
+    shutil.copytree(QE / "relax_atoms_to_sites", camp / "run2")
+    runs, failed = discover([camp])
+    assert sorted(r.id for r in runs) == ["camp/run1", "camp/run2"] and not failed
+    vasp = tmp_path / "vasp"
+    shutil.copytree(PUB / "stage_folders" / "relax1", vasp / "relax1")
+    (vasp / "relax2").mkdir()
+    for f in ("vasprun.xml.relax2.gz", "INCAR.relax2.gz"):
+        shutil.copy(PUB / "custodian_double_relax" / f, vasp / "relax2" / f.replace(".relax2", ""))
+    runs, failed = discover([vasp])
+    assert sorted(r.id for r in runs) == ["vasp/relax1", "vasp/relax2"] and not failed
+    assert read_run(vasp / "relax2").natoms != read_run(vasp / "relax1").natoms

@@ -487,21 +487,77 @@ def first_bfgs_step(path) -> int | None:
     return None
 
 
-def _as_stages(outs: list[Path], ctx) -> list | None:
-    """Several pw.x outputs of one folder as the stages of one run, in the order they ran, or None
-    (separate runs). They are stages when they are numbered copies of one name (``pw.out``,
-    ``pw.out.1``, ...) or when every output but the first to start is a restart (its first BFGS
-    step is > 0). Order: the start time each output prints, then the name."""
-    def split(p):                    # 'pw.out.2.gz' -> ('pw.out', 2); 'pw.out' -> ('pw.out', -1)
-        m = _NUMBERED.match(strip_compression(p.name))
-        return (m.group(1), int(m.group(2))) if m else (strip_compression(p.name), -1)
+def _header_structure(path):
+    """(cell, positions, numbers) pw.x prints in a run's header (the input structure), or None."""
+    lines = []
+    with Lines(path) as fh:
+        for line in fh:
+            if any(m in line for m in _SCF_START):
+                break
+            lines.append(line)
+    try:
+        cell, pos, numbers, _, _ = _header_info(lines)
+    except Exception:  # noqa: BLE001 - not a complete header: continues nothing
+        return None
+    return cell, pos, numbers
 
+
+def _end_structures(path) -> list:
+    """The structures a later run may start from: the last completed step of a pw.x output and
+    the configuration it printed last without evaluating it (a stopped relaxation's next step)."""
+    ctx = ReadContext(path)
+    last = None
+    try:
+        for fr in read_pw_out(path, ctx):
+            last = fr
+    except Exception:  # noqa: BLE001 - an unreadable output continues into nothing
+        return []
+    ends = [] if last is None else [(last.cell, last.positions, last.numbers)]
+    if ctx.carry.get("espresso-unevaluated") is not None:
+        ends.append(ctx.carry["espresso-unevaluated"])
+    return ends
+
+
+CONTINUES_TOL = 1e-4
+"""Å: a run whose header structure is this close to where another ended continues it (pw.x prints
+the header cell in alat units with 6 decimals and positions with 7)."""
+
+
+def _same_structure(a, b, tol=CONTINUES_TOL) -> bool:
+    (ca, pa, za), (cb, pb, zb) = a, b
+    if len(za) != len(zb) or not np.array_equal(za, zb) or np.abs(ca - cb).max() > tol:
+        return False
+    frac = (pa - pb) @ np.linalg.inv(cb)
+    frac -= np.round(frac)                    # the same site one lattice vector away
+    return bool(np.abs(frac @ cb).max() <= tol)
+
+
+def continues(prev: Path, nxt: Path) -> bool:
+    """True when pw.x output ``nxt`` continues ``prev``: a BFGS restart (its first step is BFGS step
+    > 0) holding the same atoms, or a new run whose header structure is where ``prev`` ended (its
+    last step, or the next configuration it printed and did not evaluate), within
+    :data:`CONTINUES_TOL`."""
+    head = _header_structure(nxt)
+    ends = _end_structures(prev)
+    if head is None or not ends:
+        return False
+    if (first_bfgs_step(nxt) or 0) > 0:
+        return np.array_equal(head[2], ends[0][2])
+    return any(_same_structure(head, end) for end in ends)
+
+
+def _as_stages(outs: list[Path], ctx) -> list | None:
+    """Several pw.x outputs as the stages of one run, in the order they ran, or None (separate
+    runs). Order: the start time each output prints (``starts on 3Dec2026 at 12:39:11``), then the
+    number of a numbered copy (``pw.out.1``), then the name. They are stages when each continues the
+    one before it (:func:`continues`): numbered copies of a rerun from the input, or unrelated runs
+    side by side, stay separate runs."""
     def order(p):
         t = started(p)
-        return (t is None, t or (), split(p)[1], p.name)
+        m = _NUMBERED.match(strip_compression(p.name))
+        return (t is None, t or (), int(m.group(2)) if m else -1, p.name)
     ranked = sorted(outs, key=order)
-    numbered = len({split(p)[0] for p in outs}) == 1
-    if not numbered and not all((first_bfgs_step(p) or 0) > 0 for p in ranked[1:]):
+    if not all(continues(a, b) for a, b in zip(ranked, ranked[1:])):
         return None
     return [(p.name, p, "espresso-out") for p in ranked]
 
@@ -535,16 +591,19 @@ def _stage_folders(folder: Path, ctx) -> list | None:
     if not found:
         return None
     found.sort(key=lambda x: x[0])
+    paths = [path for _, _, path, _ in found]
+    if not all(continues(a, b) for a, b in zip(paths, paths[1:])):
+        return None                  # separate runs in numbered folders, not stages of one
     return [(label, path, fmt) for _, label, path, fmt in found]
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
     """A QE run folder: exactly one pw.x output (``*.out``, ``*.pwo``, ``*.log``, any compression),
     whose ``pw.in`` (or ``<stem>.in``) gives the settings; or the stages of one multi-stage run:
-    numbered copies (``pw.out``, ``pw.out.1``, ...) or restarts of one relaxation side by side
-    (:func:`_as_stages`), or stage subfolders ``relax1/``, ``relax2/`` with no pw.x output in the
-    folder itself. Other folders with several pw.x outputs are not one run: each output is a run
-    of its own (discovery lists them all)."""
+    outputs that each continue the one before (restarts, numbered copies, new runs from the last
+    structure; :func:`_as_stages`), side by side or in stage subfolders ``relax1/``, ``relax2/``
+    with no pw.x output in the folder itself. Other folders with several pw.x outputs are not one
+    run: each output is a run of its own (discovery lists them all)."""
     from .registry import FolderPick
     if format is not None and format != "espresso-out":
         return None

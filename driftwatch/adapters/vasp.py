@@ -699,7 +699,26 @@ def _stage_folders(folder: Path, format, ctx):
     if not subs:
         return None
     subs.sort(key=lambda x: (x[0][0], x[0][1], _stage_order(x[0][2])))
+    atoms = [_first_numbers(path, fmt) for _, _, path, fmt in subs]
+    if len(subs) > 1 and any(a is None or not np.array_equal(a, atoms[0]) for a in atoms):
+        return None          # numbered folders of different structures: separate runs, not stages
     return FolderPick([(name, path, fmt) for _, name, path, fmt in subs])
+
+
+def _first_numbers(path, fmt):
+    """The atomic numbers of the first completed step of ``path`` (None when it has none): the
+    readers stream, so this reads one ionic step."""
+    from .registry import _formats
+    from .run import ReadContext
+    try:
+        it = _formats[fmt].open(str(path), ReadContext(path))
+        first = next(iter(it), None)
+        close = getattr(it, "close", None)
+        if close is not None:
+            close()
+    except Exception:  # noqa: BLE001 - an unreadable stage: let the reader say why, not discovery
+        return None
+    return None if first is None else np.asarray(first.numbers)
 
 
 def claims_subfolder(name: str) -> bool:
