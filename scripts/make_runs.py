@@ -653,7 +653,8 @@ with BFGS to fmax {fmax} eV/A, as an ML-potential batch workflow relaxes and wri
   row written first.
 
 Frames per relaxation: {counts}. Regenerate with `python scripts/make_runs.py --only batch` (about
-half a minute, mostly ase.db commits). EMT is a toy potential: these files show how a batch is read, not physics of any material.
+half a minute, mostly ase.db commits). EMT is a toy potential: these files show how a batch is
+read, not physics of any material.
 Licence: BSD-3-Clause, as the project.
 """
 
