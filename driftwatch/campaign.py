@@ -110,7 +110,17 @@ def _matches(spec: RunSpec, patterns) -> bool:
                fnmatch.fnmatchcase(rel, p) or fnmatch.fnmatchcase(spec.id, p) for p in patterns)
 
 
-def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
+def _file_runs(path: str, rid: str, keys) -> list[RunSpec]:
+    """The runs of one file: one per structure of a many-structure extended XYZ or ase.db
+    (``FILE::NAME``, :mod:`driftwatch.adapters.batch`), else the file itself."""
+    from .adapters.registry import structures
+    names = structures(path, keys)
+    if not names:
+        return [RunSpec(rid, str(path), "file")]
+    return [RunSpec(f"{rid}::{n}", f"{path}::{n}", "file") for n in names]
+
+
+def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, keys=None):
     """Yield RunSpecs and failed entries (dicts) below ``root`` (depth first, sorted).
 
     Symbolic links (to files or folders) are taken after every real path of the root, so a run
@@ -124,7 +134,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
                 freal = os.path.realpath(path)
                 if freal not in seen_runs and freal not in skip and recognised(path, name):
                     seen_runs.add(freal)
-                    yield RunSpec(rid, path, "file")
+                    yield from _file_runs(path, rid, keys)
             later_files = []
             stack, later_dirs = later_dirs[::-1], []
             continue
@@ -167,14 +177,19 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set):
                 freal = os.path.realpath(path)
                 if freal not in seen_runs and freal not in skip and e.name in wanted:
                     seen_runs.add(freal)
-                    yield RunSpec(frid, path, "file")
+                    yield from _file_runs(path, frid, keys)
         for e in reversed(dirs):
             item = (Path(folder) / e.name, f"{rid}/{e.name}")
             (later_dirs if e.is_symlink() else stack).append(item)
 
 
-def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], list[dict]]:
+def discover(roots, *, include=(), exclude=(), skip=(),
+             structure_keys=None) -> tuple[list[RunSpec], list[dict]]:
     """Runs under ``roots`` (folders or files) and failed entries for what could not be searched.
+
+    A file of many relaxations (an extended XYZ or ase.db whose frames name their structure by one
+    of ``structure_keys``, default ``adapters.batch.STRUCTURE_KEYS``) gives one run per structure,
+    id and path ``FILE::NAME``.
 
     Args:
         roots: folders or files.
@@ -200,10 +215,10 @@ def discover(roots, *, include=(), exclude=(), skip=()) -> tuple[list[RunSpec], 
             continue
         if root.is_file():
             real = os.path.realpath(root)
-            found = [] if real in seen_runs else [RunSpec(name, str(root), "file")]
+            found = [] if real in seen_runs else _file_runs(str(root), name, structure_keys)
             seen_runs.add(real)
         else:
-            found = _walk(root, name, skip_real, seen_dirs, seen_runs)
+            found = _walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys)
         for item in found:
             if isinstance(item, dict):
                 if not _matches(RunSpec(item["run"], item["source"], "folder"), exclude):
@@ -349,7 +364,7 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
     try:
         from .adapters import read_run
         from .track import analyze
-        run = read_run(path, context=ctx)
+        run = read_run(path, context=ctx, structure_keys=cfg["inputs"]["structure_keys"])
         rec = analyze(run, cfg)
         timing = _split_volatile(rec)
         structure = {"cell": run.cells[-1].tolist(), "positions": run.positions[-1].tolist(),
@@ -1041,7 +1056,8 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     old_marker = _prepare_output(out, roots_abs, overwrite, lock, db_name)
 
     skip = [out] + ([] if "://" in db_name else [db_name])
-    runs, failed = discover(roots, include=include, exclude=exclude, skip=skip)
+    runs, failed = discover(roots, include=include, exclude=exclude, skip=skip,
+                            structure_keys=cfg["inputs"]["structure_keys"])
     if not runs and not failed:
         raise InputError(", ".join(str(r) for r in roots), _why_empty(roots, include, exclude, skip))
     runs, not_files = _regular_file_runs(runs)

@@ -181,7 +181,7 @@ def _inspect_table(rec: dict) -> str:
     head += (["sign", "chiral/Å"] if dim == 2 else []) + [f"group@{judge_at:g}Å"]
     rows = [head]
     for f in frames:
-        row = [str(f["step"]), _fmt(f["energy"], ".6f"), _fmt(f.get("fmax"), ".3g")]
+        row = [f.get("label") or str(f["step"]), _fmt(f["energy"], ".6f"), _fmt(f.get("fmax"), ".3g")]
         row += [_fmt(f["deformation"][t]) for t in shown]
         if dim == 2:
             row += [f"{f['sign']:+d}" if f["sign"] else "0", _fmt(f["chiral_distance"])]
@@ -191,9 +191,18 @@ def _inspect_table(rec: dict) -> str:
     lines = ["  ".join(c.rjust(w) for c, w in zip(r, widths)) for r in rows]
     lines.append("")
     kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
-    lines.append(f"{rec['run']['source']}: {kind}, {rec['run']['n_frames']} frames, "
+    n = rec["run"]["n_frames"]
+    frames_word = ("2 structures (initial and final only; no ionic steps between them)"
+                   if rec["run"].get("kind") == "end-points" else f"{n} frame{'s' if n != 1 else ''}")
+    lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
                  f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")
+    stages = rec["run"].get("stages") or []
+    if stages:
+        lines.append("  stages: " + ", ".join(
+            f"{st['name']} (steps {frames[st['first_frame']]['step']}-"
+            f"{frames[st['first_frame'] + st['n_frames'] - 1]['step']})" for st in stages
+            if st["n_frames"]))
     lines.append(f" verdict: {v['text']}")
     d = s.get("drift")
     if d:
@@ -206,7 +215,8 @@ def _inspect_table(rec: dict) -> str:
     for w in rec["run"]["warnings"]:
         lines.append(f" warning: {w}")
     for fl in rec["flags"]:
-        lines.append(f"    flag: {fl['code']} (step {fl['step']}): {fl['message']}")
+        at = frames[fl["frame"]].get("label") or f"step {fl['step']}"
+        lines.append(f"    flag: {fl['code']} ({at}): {fl['message']}")
     if not rec["flags"]:
         lines.append("   flags: none (a diagnostic, not a proof of stability)")
     return "\n".join(lines)

@@ -69,6 +69,7 @@ _KINDS = {
     "report.common_symprecs": ("list", "length"),
     "record.structures": ("choice", ("final", "all", "none")),
     "reject_on": ("list", "str"),
+    "inputs.structure_keys": ("list", "str"),
 }
 
 # Keys of driftwatch/config-1 files before the verdict model had a direction (old name -> new).

@@ -224,6 +224,10 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
     from ase.data import chemical_symbols
     counts = Counter(int(z) for z in run.numbers)
     formula = "".join(f"{chemical_symbols[z]}{n if n > 1 else ''}" for z, n in sorted(counts.items()))
+    kind = getattr(run, "kind", "trajectory")
+    if kind == "end-points":            # the two frames are structures, not ionic steps
+        for f, label in zip(frames, ("initial", "final")):
+            f["label"] = label
     return {
         "schema": SCHEMA,
         "run": {
@@ -239,6 +243,8 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
             "fixed_cell": fixed_cell,
             "position_precision": getattr(run, "position_precision", None),
             "stages": [dict(st) for st in getattr(run, "stages", ())],
+            "kind": kind,
+            "structure_key": getattr(run, "structure_key", None),
         },
         "geometry": {
             "dimension": int(geo.dimension),

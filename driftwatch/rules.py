@@ -166,6 +166,13 @@ def _g(x: float) -> str:
     return f"{x:.3g}"
 
 
+def _from(frames, k) -> str:
+    """"from step N", or for the two structures of an end-points run (frames labelled initial and
+    final: no ionic steps between them) "at the final structure"."""
+    label = frames[k].get("label")
+    return f"at the {label} structure" if label else f"from step {frames[k]['step']}"
+
+
 def _most_specific(types, values, within):
     ok = [t for t in types if values[t] <= within]
     return max(ok, key=lambda t: (ORDER[t], -values[t])) if ok else None
@@ -266,11 +273,11 @@ def _lattice_flags(frames, lv, D, r):
     kg = _from_frame(D[g], lambda s: s <= within) if g else None
     kl = _from_frame(D[lo], lambda s: s > within) if lo else None
     gain_text = (f"became {g} ({NAMES[g]}): deformation {_g(D[g][0])} Å at the start, "
-                 f"{_g(D[g][-1])} Å at the end, within {_g(within)} Å from step "
-                 f"{frames[kg]['step']}") if g else ""
+                 f"{_g(D[g][-1])} Å at the end, within {_g(within)} Å "
+                 f"{_from(frames, kg)}") if g else ""
     loss_text = (f"left {lo} ({NAMES[lo]}): deformation {_g(D[lo][0])} Å at the start, "
-                 f"{_g(D[lo][-1])} Å at the end, beyond {_g(within)} Å from step "
-                 f"{frames[kl]['step']}") if lo else ""
+                 f"{_g(D[lo][-1])} Å at the end, beyond {_g(within)} Å "
+                 f"{_from(frames, kl)}") if lo else ""
     if g and lo:   # one sideways change, one flag
         flags.append(_flag("lattice-changed", max(kg, kl), frames,
                            f"the lattice changed sideways: it {loss_text}, and {gain_text}", g,
@@ -303,8 +310,8 @@ def _lattice_flags(frames, lv, D, r):
         sg = lambda s: "+" if s > 0 else "-"
         flags.append(_flag("handedness-flip", h["frame"], frames,
                            f"the layer's 2D lattice ends with the opposite handedness "
-                           f"({sg(h['initial'])} at the start, {sg(h['final'])} from step "
-                           f"{frames[h['frame']]['step']}; mirror deformation "
+                           f"({sg(h['initial'])} at the start, {sg(h['final'])} "
+                           f"{_from(frames, h['frame'])}; mirror deformation "
                            f"{_g(h['mirror_initial'])} Å and {_g(h['mirror_final'])} Å): it passed "
                            f"through a mirror-symmetric lattice", None, h["mirror_final"],
                            r["handedness_flip"]["min_chiral"]))
@@ -389,7 +396,7 @@ def _structure_flags(frames, sv):
     if sv["direction"] not in ("gained", "lost", "changed"):
         return []
     a, b, s = sv["initial"], sv["final"], sv["symprec"]
-    when = (f"from step {sv['from_step']}" if sv["exact"] or sv["after_step"] is None else
+    when = (_from(frames, sv["from_frame"]) if sv["exact"] or sv["after_step"] is None else
             f"between steps {sv['after_step']} and {sv['from_step']} (the frames spglib checked)")
     what = {"gained": "rose", "lost": "fell", "changed": "changed"}[sv["direction"]]
     rel = {"supergroup": f"{b['symbol']} contains {a['symbol']}",
@@ -494,7 +501,10 @@ def _combine(lattice: str, structure: str) -> str:
     return "kept"
 
 
-def _text(direction, lv, sv) -> str:
+def _text(direction, lv, sv, frames) -> str:
+    """The verdict in one line. An end-points run (two structures, no ionic steps between them)
+    says "initial -> final" and quotes no step numbers."""
+    ends = bool(frames and frames[-1].get("label"))
     parts = []
     if lv["direction"] == "kept":
         parts.append(f"lattice kept {lv['final']}")
@@ -504,17 +514,19 @@ def _text(direction, lv, sv) -> str:
         extra = [f"gained {lv['gained']}" if lv["gained"] else None,
                  f"lost {lv['lost']}" if lv["lost"] else None,
                  "handedness reversed" if lv["handedness"] else None]
-        parts.append(f"lattice {moved} ({', '.join(e for e in extra if e)}) from step "
-                     f"{lv['from_step']}")
+        parts.append(f"lattice {moved} ({', '.join(e for e in extra if e)})"
+                     + ("" if ends else f" {_from(frames, lv['from_frame'])}"))
     if sv.get("initial") and sv.get("final"):
         a, b = sv["initial"], sv["final"]
         grp = (f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else
                f"{a['symbol']} ({a['group']}) -> {b['symbol']} ({b['group']})")
-        when = "" if sv["direction"] == "kept" else (
-            f" from step {sv['from_step']}" if sv["exact"] or sv["after_step"] is None
+        when = "" if sv["direction"] == "kept" or ends else (
+            f" {_from(frames, sv['from_frame'])}" if sv["exact"] or sv["after_step"] is None
             else f" between steps {sv['after_step']} and {sv['from_step']}")
         parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
-    return f"{direction}: " + "; ".join(parts)
+    head = f"{direction} (initial -> final structure; no ionic steps between them)" if ends \
+        else direction
+    return f"{head}: " + "; ".join(parts)
 
 
 def _state(frame, types, within, dim):
@@ -548,7 +560,7 @@ def judge(record: dict, cfg: dict, *, complete: bool = True) -> tuple[list[dict]
     tol = advice(frames[-1].get("symmetry"), min_plateau=cfg["tolerance"]["min_plateau"],
                  precision=precision)
     summary = {
-        "verdict": {"direction": direction, "text": _text(direction, lv, sv), "lattice": lv,
+        "verdict": {"direction": direction, "text": _text(direction, lv, sv, frames), "lattice": lv,
                     "structure": sv, "complete": complete},
         "initial": _state(frames[0], types, within, dim),
         "final": _state(frames[-1], types, within, dim),

@@ -279,7 +279,8 @@ def analyze(path_or_run, config=None, *, format: str | None = None,
             for ``rules.persistence.steps`` steps (what the live tools do).
     """
     cfg = _config.coerce(config)
-    run = path_or_run if isinstance(path_or_run, Run) else read_run(path_or_run, format=format)
+    run = path_or_run if isinstance(path_or_run, Run) else read_run(
+        path_or_run, format=format, structure_keys=cfg["inputs"]["structure_keys"])
     try:
         return record_from_run(run, cfg, frames=frames, complete=complete)
     except (GeometryError, LatticeError, SymmetryError) as exc:

@@ -15,6 +15,10 @@ Outputs (relative to ``--out``, default: the repository root)::
 
     tests/data/qe/<name>/pw.in, pw.out[.gz]        small pw.x fixtures for the adapter tests
     tests/data/qe/pseudo/*.UPF                      pseudopotentials those inputs use
+    tests/data/qe/restart_numbered/                 pw.out.1 (stopped at nstep) + pw.out (restart)
+    tests/data/qe/restart_stage_folders/relax1|2/   soft-stopped run + new run from its last structure
+    tests/data/batch/                               EMT batch: relaxations.extxyz.gz, relaxations.db,
+                                                    pairs.extxyz.gz, pairs.db (--only batch)
     example_runs/<name>/pw.in, pw.out[.gz]          pw.x runs of the demo campaign
     example_runs/<name>.traj, <name>.extxyz         ASE runs of the demo campaign
     example_runs/pseudo/*.UPF
@@ -28,7 +32,8 @@ Usage::
                                                     # 4-5 min wall on 2 idle cores (12 min 45 s measured
                                                     # with the cores shared); the ASE runs take ~2 s
     python scripts/make_runs.py --only L01_qe_vcrelax --only qe-fixtures
-    python scripts/make_runs.py --only ase          # groups: qe-fixtures, examples, qe, ase
+    python scripts/make_runs.py --only ase          # groups: qe-fixtures, examples, qe, ase,
+                                                    # qe-restarts (multi-stage pw.x runs)
     python scripts/make_runs.py --list
     python scripts/make_runs.py --out /tmp/regen    # write somewhere else
 
@@ -477,17 +482,294 @@ def run_ase(run: ASERun, out_root: Path) -> dict:
             "bytes": target.stat().st_size}
 
 
+# --------------------------------------------------------------------------------------
+# multi-stage pw.x runs (restarts), tests/data/qe/restart_*
+# --------------------------------------------------------------------------------------
+def _pw(rundir: Path, inp: str, out: str, np_: int, stop_after_bfgs: int | None = None) -> str:
+    """Run pw.x on ``rundir/inp`` writing ``rundir/out``; with ``stop_after_bfgs``, ask it to stop
+    with driftwatch's own soft stop (``<prefix>.EXIT`` in its outdir) once that many BFGS steps are
+    printed. Returns the output text."""
+    from driftwatch.adapters.espresso import soft_stop
+    env = dict(os.environ, OMP_NUM_THREADS="1")
+    cmd = (["mpirun", "--allow-run-as-root", "-np", str(np_), "pw.x", "-nk", str(np_), "-in", inp]
+           if np_ > 1 else ["pw.x", "-in", inp])
+    with open(rundir / out, "w") as fh:
+        proc = subprocess.Popen(cmd, cwd=rundir, stdout=fh, stderr=subprocess.PIPE, env=env,
+                                text=True)
+        asked = False
+        while proc.poll() is None:
+            time.sleep(0.2)
+            text = (rundir / out).read_text(errors="replace")
+            if stop_after_bfgs and not asked and \
+                    text.count("number of bfgs steps") >= stop_after_bfgs:
+                req = soft_stop(rundir, reason=f"fixture: stop after {stop_after_bfgs} BFGS steps")
+                req["target"].parent.mkdir(parents=True, exist_ok=True)
+                req["target"].write_text(req["text"])
+                asked = True
+        err = proc.stderr.read()
+    text = (rundir / out).read_text()
+    if "JOB DONE" not in text:
+        raise RuntimeError(f"pw.x did not finish in {rundir} ({proc.returncode}): {err[-2000:]}")
+    return text
+
+
+def _last_structure(text: str):
+    """The last CELL_PARAMETERS (Å) and ATOMIC_POSITIONS (crystal) cards a vc-relax output printed."""
+    cell = text.rsplit("CELL_PARAMETERS (angstrom)\n", 1)[1].splitlines()[:3]
+    pos = text.rsplit("ATOMIC_POSITIONS (crystal)\n", 1)[1].splitlines()
+    cell = np.array([[float(x) for x in r.split()] for r in cell])
+    n = next(i for i, r in enumerate(pos) if len(r.split()) != 4)
+    rows = [r.split() for r in pos[:n]]
+    return cell, [r[0] for r in rows], np.array([[float(x) for x in r[1:]] for r in rows])
+
+
+def _finish_tree(rundir: Path, final_dir: Path) -> list[Path]:
+    shutil.rmtree(rundir / "scratch", ignore_errors=True)
+    for sub in [rundir, *[d for d in rundir.iterdir() if d.is_dir()]]:
+        shutil.rmtree(sub / "scratch", ignore_errors=True)
+    files = sorted(p for p in rundir.rglob("*") if p.is_file())
+    for f in files:
+        _check_no_abs_paths(f)
+        if f.stat().st_size > 100_000:          # committed gzipped (the reader takes both)
+            with gzip.GzipFile(f.with_name(f.name + ".gz"), "wb", mtime=0) as gz:
+                gz.write(f.read_bytes())
+            f.unlink()
+    if final_dir.exists():
+        shutil.rmtree(final_dir)
+    os.replace(rundir, final_dir)
+    return sorted(p for p in final_dir.rglob("*") if p.is_file())
+
+
+def make_restart_numbered(out_root: Path, np_: int) -> dict:
+    """An Al vc-relax (bct start, c/a 1.08) stopped after 3 ionic steps (nstep = 3), then continued
+    with restart_mode='restart' into a new output; the first output is kept as ``pw.out.1`` (the
+    numbered copy a job script leaves), ``pw.in`` is the restart input as the user left it."""
+    tree = out_root / "tests/data/qe"
+    run = QERun(name="restart_numbered", tree="tests/data/qe", calculation="vc-relax",
+                cell=fcc_primitive(4.00, 4.32), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
+                kpts=(8, 8, 8, 0, 0, 0), system={**CONSTANT_CUTOFF},
+                control={"nstep": 3, "disk_io": "low"})
+    rundir = tree / ".restart_numbered.partial"
+    shutil.rmtree(rundir, ignore_errors=True)
+    rundir.mkdir(parents=True)
+    t0 = time.time()
+    (rundir / "pw.in").write_text(pw_input(run))
+    first = _pw(rundir, "pw.in", "pw.out.1", np_)
+    if "The maximum number of steps has been reached" not in first:
+        raise RuntimeError("restart_numbered: stage 1 was meant to stop at nstep")
+    run.control = {"nstep": 80, "disk_io": "low", "restart_mode": "restart"}
+    (rundir / "pw.in").write_text(pw_input(run))
+    time.sleep(1.1)                    # a later start time, to the second pw.x prints
+    _pw(rundir, "pw.in", "pw.out", np_)
+    files = _finish_tree(rundir, tree / "restart_numbered")
+    return {"name": "restart_numbered", "wall_s": round(time.time() - t0, 1),
+            "file": str((tree / "restart_numbered").relative_to(out_root)),
+            "bytes": sum(f.stat().st_size for f in files)}
+
+
+def make_restart_stage_folders(out_root: Path, np_: int) -> dict:
+    """A two-atom Si vc-relax (fcc lattice stretched 5 % along c, one atom off its site) stopped by
+    driftwatch's soft stop (pw.EXIT) after 2 BFGS steps in ``relax1/``; ``relax2/`` is a new run
+    from the last structure relax1 printed (restart_mode='from_scratch')."""
+    tree = out_root / "tests/data/qe"
+    pseudo = tree / "pseudo"
+    rundir = tree / ".restart_stage_folders.partial"
+    shutil.rmtree(rundir, ignore_errors=True)
+    (rundir / "relax1").mkdir(parents=True)
+    (rundir / "relax2").mkdir()
+    base = dict(name="restart_stage_folders", tree="tests/data/qe", calculation="vc-relax",
+                kpts=(4, 4, 4, 0, 0, 0), ecutwfc=18.0,
+                system={**CONSTANT_CUTOFF, "occupations": "fixed"},
+                control={"pseudo_dir": "../../pseudo", "disk_io": "low"})
+    one = QERun(cell=fcc_primitive(5.40, 5.67), symbols=["Si", "Si"],
+                frac=np.array([[0.0, 0.0, 0.0], [0.25, 0.25, 0.25]]) + np.array([[0, 0, 0],
+                                                                               [0.02, -0.01, 0.0]]),
+                **base)
+    t0 = time.time()
+    (rundir / "relax1" / "pw.in").write_text(pw_input(one))
+    text = _pw(rundir / "relax1", "pw.in", "pw.out", np_, stop_after_bfgs=2)
+    if "Program stopped by user request" not in text:
+        raise RuntimeError("restart_stage_folders: relax1 was meant to stop on pw.EXIT")
+    cell, symbols, frac = _last_structure(text)
+    two = QERun(cell=cell, symbols=symbols, frac=frac, **base)
+    (rundir / "relax2" / "pw.in").write_text(pw_input(two))
+    _pw(rundir / "relax2", "pw.in", "pw.out", np_)
+    files = _finish_tree(rundir, tree / "restart_stage_folders")
+    assert pseudo.is_dir()
+    return {"name": "restart_stage_folders", "wall_s": round(time.time() - t0, 1),
+            "file": str((tree / "restart_stage_folders").relative_to(out_root)),
+            "bytes": sum(f.stat().st_size for f in files)}
+
+
+@dataclass
+class _Named:
+    name: str
+    tree: str
+    note: str
+
+
+STAGED_RUNS = {"restart_numbered": make_restart_numbered,
+               "restart_stage_folders": make_restart_stage_folders}
+
+
+# --------------------------------------------------------------------------------------
+# many relaxations in one file (tests/data/batch): ASE EMT as a stand-in ML potential
+# --------------------------------------------------------------------------------------
+def _batch_starts():
+    """Invented starting cells of the batch "Ridgeback-6" (ids are ours): bulk cells off a cubic
+    lattice and layers off a hexagonal one."""
+    from ase import Atoms
+    from ase.build import bulk
+    starts = {}
+    starts["Cu-bct-07"] = Atoms("Cu", cell=bcc_primitive(3.10, 3.10 * 1.30), pbc=True)
+    starts["Al-fco-02"] = Atoms("Al", cell=np.array([[0.0, 4.04 / 2, 4.12 / 2], [3.96 / 2, 0.0, 4.12 / 2],
+                                                    [3.96 / 2, 4.04 / 2, 0.0]]), pbc=True)
+    ni = bulk("Ni", "fcc", a=3.52)
+    F = np.eye(3) + 0.02 * (np.ones((3, 3)) - np.eye(3))          # a trigonal strain: hR
+    ni.set_cell(ni.cell.array @ F, scale_atoms=True)
+    starts["Ni-rhombo-03"] = ni
+    cuni = Atoms("CuNi", scaled_positions=[[0, 0, 0], [0.5, 0.5, 0.5]],
+                 cell=np.diag([2.52, 2.52, 3.70]), pbc=True)      # an L1_0-type tP cell
+    starts["CuNi-tP-04"] = cuni
+    starts["Cu-layer-05"] = _flat_layer(["Cu", "Cu"], [(0.0, 0.0), (0.5, 0.5)], 4.30, 2.62, 96.0)
+    starts["Al-layer-06"] = _flat_layer(["Al"], [(0.0, 0.0)], 2.80, 2.95, 84.0)
+    return starts
+
+
+def _batch_mask(atoms):
+    """In-plane cell only for layers (vacuum along c), the whole cell for bulk."""
+    return INPLANE if atoms.cell.lengths()[2] > 10 else [1, 1, 1, 1, 1, 1]
+
+
+BATCH_README = """# Batch "Ridgeback-6": many relaxations in one file (made here)
+
+Invented starting cells (the ids Cu-bct-07 ... Al-layer-06 and the batch name are ours): bulk cells
+off a cubic lattice (body-centred tetragonal Cu, face-centred orthorhombic Al, rhombohedral Ni), a
+tetragonal CuNi cell, and two layers (Cu2, Al) from oblique starts. Each was relaxed with ASE's own
+EMT calculator (a stand-in for an ML potential) on a `FrechetCellFilter` (in-plane mask for layers)
+with BFGS to fmax {fmax} eV/A, as an ML-potential batch workflow relaxes and writes them:
+
+* `relaxations.extxyz.gz`: every frame of every relaxation, one relaxation after the other, with
+  `structure_id` and `step` in each frame's info (and ASE's energy, forces, stress);
+* `relaxations.db`: the same relaxations run batched (one optimizer step of each structure in turn)
+  into one ase.db (SQLite), `relax_id` and `step` as key-value pairs, rows interleaved;
+* `pairs.extxyz.gz`: the first and last frame of each relaxation, `state=initial` / `final`;
+* `pairs.db`: the same pairs in an ase.db, `system_name` and `relaxed` = False / True, the relaxed
+  row written first.
+
+Frames per relaxation: {counts}. Regenerate with `python scripts/make_runs.py --only batch` (about
+half a minute, mostly ase.db commits). EMT is a toy potential: these files show how a batch is
+read, not physics of any material.
+Licence: BSD-3-Clause, as the project.
+"""
+
+
+def make_batch(out_root: Path) -> dict:
+    """Six EMT relaxations (FrechetCellFilter + BFGS) written as an ML-potential batch workflow
+    writes them: every frame of every relaxation appended to one extended XYZ with ``structure_id``
+    and ``step`` in the frame's info (relaxations one after the other); the same relaxations run
+    batched (one optimizer step of each structure in turn) into one ase.db with ``relax_id`` and
+    ``step`` key-value pairs (rows interleaved); and two files of initial/final pairs (the first
+    and last frames): ``pairs.extxyz`` (``state=initial/final``) and ``pairs.db`` (``relaxed =
+    False/True``, the relaxed row written first, as databases keep the result first)."""
+    from ase.calculators.emt import EMT
+    from ase.calculators.singlepoint import SinglePointCalculator
+    from ase.db import connect
+    from ase.filters import FrechetCellFilter
+    from ase.io import write
+    from ase.optimize import BFGS
+
+    tree = out_root / "tests/data/batch"
+    part = out_root / "tests/data/.batch.partial"
+    shutil.rmtree(part, ignore_errors=True)
+    part.mkdir(parents=True)
+    t0 = time.time()
+    fmax, steps = 2e-3, 300
+
+    def relaxer(name, atoms):
+        atoms = atoms.copy()
+        atoms.calc = EMT()
+        opt = BFGS(FrechetCellFilter(atoms, mask=_batch_mask(atoms)), logfile=None)
+        return atoms, opt
+
+    # 1. one after the other, every step appended to one extended XYZ
+    xyz = part / "relaxations.extxyz"
+    trajectories = {}
+    for name, start in _batch_starts().items():
+        atoms, opt = relaxer(name, start)
+        frames = []
+
+        def keep(atoms=atoms, opt=opt, name=name, frames=frames):
+            at = atoms.copy()                         # the step's results, kept with the frame
+            at.calc = SinglePointCalculator(at, energy=atoms.get_potential_energy(),
+                                            forces=atoms.get_forces(), stress=atoms.get_stress())
+            at.info.update({"structure_id": name, "step": opt.nsteps})
+            frames.append(at)
+            write(xyz, at, format="extxyz", append=True)
+        opt.attach(keep)
+        if not opt.run(fmax=fmax, steps=steps):
+            raise RuntimeError(f"batch: {name} did not converge in {steps} steps")
+        trajectories[name] = frames
+
+    # 2. batched: one step of each structure in turn, every step a row of one ase.db
+    db_path = part / "relaxations.db"
+    with connect(db_path, use_lock_file=False) as db:
+        runs = []
+        for name, start in _batch_starts().items():
+            atoms, opt = relaxer(name, start)
+            opt.attach(lambda atoms=atoms, opt=opt, name=name:
+                       db.write(atoms, relax_id=name, step=opt.nsteps))
+            runs.append(opt.irun(fmax=fmax, steps=steps))
+        while runs:
+            for it in list(runs):
+                try:
+                    if next(it):
+                        runs.remove(it)
+                except StopIteration:
+                    runs.remove(it)
+
+    # 3. initial/final pairs
+    pairs_xyz = part / "pairs.extxyz"
+    with connect(part / "pairs.db", use_lock_file=False) as db:
+        for name, frames in trajectories.items():
+            first, last = frames[0].copy(), frames[-1].copy()
+            for at, state, src in ((first, "initial", frames[0]), (last, "final", frames[-1])):
+                at.calc = src.calc
+                at.info = {"structure_id": name, "state": state}
+                write(pairs_xyz, at, format="extxyz", append=True)
+            db.write(frames[-1], system_name=name, relaxed=True)
+            db.write(frames[0], system_name=name, relaxed=False)
+    for f in (xyz, pairs_xyz):
+        with gzip.GzipFile(f.with_name(f.name + ".gz"), "wb", mtime=0) as gz:
+            gz.write(f.read_bytes())
+        f.unlink()
+    counts = ", ".join(f"{k} {len(v)}" for k, v in trajectories.items())
+    (part / "README.md").write_text(BATCH_README.format(counts=counts, fmax=fmax))
+    if tree.exists():
+        shutil.rmtree(tree)
+    os.replace(part, tree)
+    files = sorted(tree.iterdir())
+    return {"name": "batch", "wall_s": round(time.time() - t0, 1), "file": str(tree.relative_to(out_root)),
+            "bytes": sum(f.stat().st_size for f in files),
+            "frames": {k: len(v) for k, v in trajectories.items()}}
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--only", action="append", default=[],
-                    help="run name, or a group: qe-fixtures, qe, ase, examples (repeatable)")
+                    help="run name, or a group: qe-fixtures, qe, qe-restarts, ase, batch, "
+                         "examples (repeatable)")
     ap.add_argument("--out", type=Path, default=REPO, help="output root (default: repository root)")
     ap.add_argument("--np", type=int, default=2, help="MPI processes for pw.x (1 or 2; default 2)")
     ap.add_argument("--list", action="store_true", help="list the runs and exit")
     args = ap.parse_args(argv)
     if args.np not in (1, 2):
         ap.error("--np must be 1 or 2 (the machine is shared)")
-    runs = [("qe", r) for r in QE_RUNS] + [("ase", r) for r in ASE_RUNS]
+    runs = [("qe", r) for r in QE_RUNS] + [("ase", r) for r in ASE_RUNS] + \
+        [("qe-restarts", _Named(n, "tests/data/qe", (f.__doc__ or "").split("\n")[0]))
+         for n, f in STAGED_RUNS.items()] + \
+        [("batch", _Named("batch", "tests/data/batch", "six EMT relaxations in one extxyz and one "
+                                                        "ase.db, and initial/final pairs"))]
     if args.list:
         for kind, r in runs:
             print(f"{r.name:32s} {kind:4s} {getattr(r, 'tree', 'example_runs')}  {r.note}")
@@ -496,9 +778,12 @@ def main(argv=None) -> int:
     for kind, r in runs:
         tree = getattr(r, "tree", "example_runs")
         groups = {r.name, kind, "qe-fixtures" if tree.startswith("tests") else "examples"}
+        if kind == "qe-restarts":
+            groups.add("qe")
         if not args.only or groups & set(args.only):
             selected.append((kind, r))
-    known = {r.name for _, r in runs} | {"qe", "ase", "qe-fixtures", "examples"}
+    known = {r.name for _, r in runs} | {"qe", "ase", "qe-fixtures", "examples", "qe-restarts",
+                                          "batch"}
     unknown = set(args.only) - known
     if unknown:
         ap.error(f"unknown run name(s): {', '.join(sorted(unknown))} (see --list)")
@@ -506,6 +791,11 @@ def main(argv=None) -> int:
     for kind, r in selected:
         if kind == "qe":
             res = run_qe(r, args.out, args.np)
+        elif kind == "qe-restarts":
+            res = STAGED_RUNS[r.name](args.out, args.np)
+        elif kind == "batch":
+            res = make_batch(args.out)
+            print(f"  frames per relaxation: {res['frames']}")
         else:
             res = run_ase(r, args.out)
         print(f"{res['name']:32s} {res['wall_s']:7.1f} s  {res['bytes']:8d} B  {res['file']}", flush=True)

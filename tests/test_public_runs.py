@@ -242,11 +242,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 10
+    assert summary["failed"] == [] and summary["runs"] == 11
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "10 runs (10 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "11 runs (11 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(

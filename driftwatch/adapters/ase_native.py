@@ -24,9 +24,10 @@ allocate or loop without end)."""
 
 def _step(atoms, i):
     """The optimizer's step counter when the writer stored one, else the frame index."""
+    import numbers
     info = getattr(atoms, "info", {}) or {}
-    for key in ("step", "nsteps", "ionic_step"):
-        if isinstance(info.get(key), (int,)) and not isinstance(info.get(key), bool):
+    for key in ("step", "nsteps", "ionic_step"):         # ASE's extxyz parser gives numpy ints
+        if isinstance(info.get(key), numbers.Integral) and not isinstance(info.get(key), bool):
             return int(info[key])
     return i
 
@@ -67,46 +68,86 @@ def read_extxyz(path, ctx: ReadContext):
     """Extended XYZ (or plain XYZ: then the cell is zero and pbc False), one frame at a time.
 
     Each frame's lines are cut out here and parsed by ASE's extxyz reader, so memory
-    holds one frame and a frame cut short is dropped with a warning.
+    holds one frame and a frame cut short is dropped with a warning. A file of many structures
+    (a structure key in the frames' info, :mod:`driftwatch.adapters.batch`) is read one structure
+    at a time (``FILE::NAME``); reading it whole is refused with the names it holds.
     """
     import io
     import ase.io
-    n = 0
-    with Lines(path) as fh:
-        while True:
-            first = fh.readline()
-            if not first.strip():
-                if first:          # blank line between frames
-                    continue
-                break
-            try:
-                natoms = int(first.split()[0])
-            except (ValueError, IndexError):
-                raise InputError(path, f"not an XYZ frame header at line {fh.lineno}: "
-                                       f"{first.strip()[:40]!r}") from None
-            if not 0 < natoms <= MAX_ATOMS:
-                raise InputError(path, f"XYZ frame header at line {fh.lineno} gives {natoms} "
-                                       f"atoms (expected 1..{MAX_ATOMS})")
-            block = [first]
-            for _ in range(natoms + 1):      # stops at the end of the file (a cut frame)
-                ln = fh.readline()
-                if not ln:
-                    break
-                block.append(ln)
-            if len(block) < natoms + 2:
-                where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
-                ctx.warn(f"truncated {where}: the file ends inside frame {n}; "
-                         f"still being written or cut")
+    from . import batch
+    path, name = batch.split(path)
+    index = batch.index_extxyz(path, ctx.structure_keys)
+    chosen, kind = _chosen(index, name, ctx)
+
+    def parse(block, lineno, first):
+        _check_properties(block[1], path, lineno)
+        if first:
+            _note_xyz_rounding(block, ctx)
+        return ase.io.read(io.StringIO("".join(block)), format="extxyz")
+
+    def truncated(n, how):
+        where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
+        ctx.warn(f"truncated {where}: " + (f"the file ends inside frame {n}" if how == "frame"
+                                           else "the last line is cut")
+                 + "; still being written or cut")
+
+    # batch.extxyz_frames yields (n, comment, line number, lines) per complete frame, then
+    # (None, frames read, "frame" | "line", None) when the file ends abnormally
+    if chosen is None:                       # the whole file is one run: stream it
+        for n, a, b, block in batch.extxyz_frames(path):
+            if n is None:
+                truncated(a, b)
                 return
-            _check_properties(block[1], path, fh.lineno - natoms)
-            if n == 0:
-                _note_xyz_rounding(block, ctx)
-            atoms = ase.io.read(io.StringIO("".join(block)), format="extxyz")
+            atoms = parse(block, b, n == 0)
             yield frame_from_atoms(atoms, _step(atoms, n))
-            n += 1
-        if fh.cut:
-            where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
-            ctx.warn(f"truncated {where}: the last line is cut; still being written or cut")
+        return
+    wanted = {m.pos: k for k, m in enumerate(chosen)}
+    got: dict = {}
+    _, kept = batch.index_extxyz(path, ctx.structure_keys, keep_lines=True)
+    if kept is not None:                     # the lines are in memory: no second pass
+        for pos, k in sorted(wanted.items(), key=lambda x: x[1]):
+            if pos in kept:
+                got[k] = parse(kept[pos][1], kept[pos][0], not got)
+        if index.cut:
+            truncated(*index.cut)
+    else:
+        for n, a, b, block in batch.extxyz_frames(path):
+            if n is None:
+                truncated(a, b)
+                break
+            if n in wanted:
+                got[wanted[n]] = parse(block, b, not got)
+    for k, m in enumerate(chosen):
+        if k in got:
+            yield frame_from_atoms(got[k], _member_step(m, k, kind))
+
+
+def _member_step(m, k: int, kind: str) -> int:
+    """Step of the ``k``-th frame of a structure: 0/1 for end points, else its step counter, else k."""
+    if kind == "end-points":
+        return k
+    return m.step if m.step is not None else k
+
+
+def _chosen(index, name, ctx: ReadContext):
+    """(members to read in order, kind) for ``FILE::NAME`` or a one-structure file; (None, kind)
+    when the whole file is one trajectory in file order. Notes the kind and the structure in ctx."""
+    if name is not None and index.key is None:
+        raise InputError(index.path, f"no structure {name!r}: the file names no structures (none "
+                                     f"of the keys {', '.join(ctx.structure_keys)} in its first "
+                                     f"{index.kind})")
+    if name is None and index.many():
+        index.refuse_many()
+    if index.key is None:
+        members, kind = index.structure(None)
+        ctx.kind = kind
+        return (members if kind == "end-points" else None), kind
+    names = index.names()
+    name = names[0] if name is None else name
+    members, kind = index.structure(name)
+    ctx.kind = kind
+    ctx.structure = {"key": index.key, "value": name, "structures": len(names)}
+    return members, kind
 
 
 _PROPERTIES = re.compile(r"(?i)\bproperties=(\"[^\"]*\"|\S+)")
@@ -127,18 +168,26 @@ def _check_properties(comment: str, path, lineno) -> None:
 
 
 def read_db(path, ctx: ReadContext):
-    """Rows of an ASE database in id order; ``file.db@selection`` picks rows (ASE query syntax)."""
-    import ase.db
+    """Rows of an ASE database in id order; ``file.db@selection`` picks rows (ASE query syntax).
+    Rows of many structures (a structure key among the key-value pairs,
+    :mod:`driftwatch.adapters.batch`) are read one structure at a time (``file.db::NAME``)."""
     from pathlib import Path
-    path = str(path)
+    from . import batch
+    path, name = batch.split(str(path))
     selection = None
     if not Path(path).exists() and "@" in path:
         path, _, selection = path.rpartition("@")
-    with ase.db.connect(path, create_indices=False, use_lock_file=False) as db:
-        for i, row in enumerate(db.select(selection, sort="id")):
-            atoms = row.toatoms()
-            step = row.get("step", i)
-            yield frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
+    index = batch.index_db(path, ctx.structure_keys, selection)
+    chosen, kind = _chosen(index, name, ctx)
+    with batch.connect(path) as db:
+        if chosen is None:
+            for i, row in enumerate(db.select(selection, sort="id")):
+                atoms = row.toatoms()
+                step = row.get("step", i)
+                yield frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
+            return
+        for k, m in enumerate(chosen):
+            yield frame_from_atoms(db.get(id=m.pos).toatoms(), _member_step(m, k, kind))
 
 
 def _note_xyz_rounding(block, ctx: ReadContext) -> None:

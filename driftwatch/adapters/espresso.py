@@ -22,6 +22,15 @@ yields a step only when it is complete:
 A step whose SCF did not converge has no ``!`` energy and is not a completed
 ionic step (ASE would return it without results).
 
+Restarts (``restart_mode='restart'``): pw.x prints the *input* structure in the header of the new
+run, but its first SCF is on the structure it restored from its restart files (the last one the
+previous run printed, never evaluated there); the BFGS step counter goes on (``number of bfgs
+steps`` > 0 on the first step). A header configuration followed by such a count is therefore not
+emitted with the header's structure: read with the previous stage (a run folder of stages), the
+first step takes the structure the previous stage printed last (``ReadContext.carry``); read alone,
+that step is left out with a warning. Several runs appended to one output are stages of the file
+(``run1``, ``run2``, ...).
+
 Settings: ``calculation``, ``nosym``, ``noinv``, ``cell_dofree`` from the pw.x input
 next to the output; ``nsym``, the number of symmetry operations pw.x reports at the start
 (``No symmetry found`` = 1, the identity), and ``nsym_final`` when pw.x reports them again
@@ -48,6 +57,7 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "Begin final coordinates", "The maximum number of steps")
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
 _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
+_BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 
 
 class _Config:
@@ -59,6 +69,9 @@ class _Config:
         self.energy = self.forces = self.stress = None
         self.closed = False
         self.emitted = False
+        self.from_header = False    # printed in a run's header (pw.x prints the input structure)
+        self.restored = None        # header configs: the previous run's last unevaluated config
+        self.bfgs_seen = False      # header configs: the first 'number of bfgs steps' line was read
 
     def kinds(self):
         return {k for k in ("energy", "forces", "stress") if getattr(self, k) is not None}
@@ -187,6 +200,8 @@ def read_pw_out(path, ctx: ReadContext):
     alat = natoms = None
     pending_cell = None
     seen_start = False
+    per_run: list[int] = []     # frames emitted per pw.x run (header) in this file
+    carried = ctx.carry.pop("espresso-unevaluated", None)
 
     def emit(cfg):
         nonlocal step, prev_kinds
@@ -198,6 +213,7 @@ def read_pw_out(path, ctx: ReadContext):
                    pbc=np.ones(3, bool), step=cfg.index, energy=cfg.energy, forces=cfg.forces,
                    stress=cfg.stress)
         step += 1
+        per_run[-1] += 1
         return fr
 
     def ready(cfg):
@@ -209,6 +225,25 @@ def read_pw_out(path, ctx: ReadContext):
             ctx.warn(f"step {cfg.index} has forces but no converged SCF energy ('!' line); "
                      f"it is not counted as a completed ionic step")
 
+    def unevaluated(cfg):
+        """The structure of a configuration printed but never evaluated, or None."""
+        if cfg is None or cfg.emitted or cfg.energy is not None or cfg.from_header:
+            return None
+        return cfg.cell, cfg.positions, cfg.numbers
+
+    def restarted(cfg, nbfgs):
+        """A header configuration whose first step is BFGS step ``nbfgs`` > 0: a restart."""
+        prev = cfg.restored
+        if prev is not None and np.array_equal(prev[2], cfg.numbers):
+            cfg.cell, cfg.positions = np.array(prev[0], float), np.array(prev[1], float)
+            return True
+        cfg.emitted = True            # never emitted: its structure is not printed here
+        ctx.warn(f"a restart (restart_mode='restart': the first step is BFGS step {nbfgs}): its "
+                 f"first SCF ran on the structure pw.x restored from its restart files, which "
+                 f"this output does not print (its header shows the input structure); that step "
+                 f"is left out (read the run folder with the previous stage to include it)")
+        return False
+
     with Lines(path) as fh:
         while True:
             line = fh.readline()
@@ -217,6 +252,7 @@ def read_pw_out(path, ctx: ReadContext):
             if _START in line:
                 if ready(cur):
                     yield emit(cur)
+                restored = unevaluated(cur) if cur is not None else carried
                 seen_start = True
                 header = [line]
                 while True:
@@ -242,6 +278,8 @@ def read_pw_out(path, ctx: ReadContext):
                                  f"(first run: {ctx.settings['nsym']})")
                     ctx.settings.setdefault("nsym", nsym)
                 cur, pending_cell = _Config(cell, pos, numbers, nconf), None
+                cur.from_header, cur.restored = True, restored
+                per_run.append(0)
                 nconf += 1
                 if "!    total energy" in ln:
                     cur.energy = float(ln.split()[-2]) * Ry
@@ -299,9 +337,17 @@ def read_pw_out(path, ctx: ReadContext):
                 cur = _Config(np.array(cell, float), pos, cur.numbers, nconf)
                 nconf += 1
                 pending_cell = None
+            elif _BFGS_STEPS.match(line):
+                if cur.from_header and not cur.bfgs_seen:
+                    cur.bfgs_seen = True
+                    n = int(_BFGS_STEPS.match(line).group(1))
+                    if ready(cur) and (n == 0 or restarted(cur, n)):
+                        yield emit(cur)
             elif _CLOSER.search(line):
                 if "JOB DONE" in line:
                     done = True
+                if cur.from_header and not cur.bfgs_seen and "number of scf cycles" in line:
+                    continue          # a restart shows in the BFGS step count on the next line
                 if ready(cur):
                     yield emit(cur)
         if ready(cur) and prev_kinds is not None and cur.kinds() >= prev_kinds:
@@ -309,6 +355,10 @@ def read_pw_out(path, ctx: ReadContext):
         if not seen_start:
             raise InputError(path, "no completed ionic step (no 'Program PWSCF' line: not a "
                                    "pw.x output, or cut before its header)")
+        ctx.carry["espresso-unevaluated"] = unevaluated(cur)
+        runs = [(f"run{k + 1}", n) for k, n in enumerate(per_run) if n]
+        if len(per_run) > 1 and len(runs) > 1:
+            ctx.file_stages = runs
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
@@ -388,6 +438,10 @@ def _settings_from_input(path, ctx: ReadContext) -> None:
 
 # ---------------------------------------------------------------- folders
 _OUT_SUFFIXES = (".out", ".pwo", ".log")
+_NUMBERED = re.compile(r"^(.*)\.(\d+)$")
+_STARTS = re.compile(rb"starts on\s+(\d{1,2})([A-Za-z]{3})(\d{4}) at\s*(\d{1,2}):\s*(\d{1,2}):\s*(\d{1,2})")
+_MONTHS = {m: k for k, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug",
+                                      "Sep", "Oct", "Nov", "Dec"), 1)}
 
 
 def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
@@ -399,24 +453,167 @@ def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
         return False
 
 
+def _output_name(name: str) -> bool:
+    """``*.out``, ``*.pwo``, ``*.log``, also numbered (``pw.out.1``), any compression."""
+    base = strip_compression(name)
+    m = _NUMBERED.match(base)
+    return base.endswith(_OUT_SUFFIXES) or bool(m and m.group(1).endswith(_OUT_SUFFIXES))
+
+
 def pw_outputs(folder: Path, names, ctx: ReadContext | None = None) -> list[Path]:
-    """The files of ``folder`` named ``*.out``, ``*.pwo``, ``*.log`` (any compression) that start
-    like a pw.x output."""
-    return [folder / n for n in names
-            if strip_compression(n).endswith(_OUT_SUFFIXES) and _is_pw_out(folder / n, ctx)]
+    """The files of ``folder`` named ``*.out``, ``*.pwo``, ``*.log`` (also numbered copies such as
+    ``pw.out.1``; any compression) that start like a pw.x output."""
+    return [folder / n for n in names if _output_name(n) and _is_pw_out(folder / n, ctx)]
+
+
+def started(path) -> tuple | None:
+    """(year, month, day, hour, minute, second) of pw.x's ``starts on 3Dec2026 at 12:39:11`` line,
+    or None."""
+    m = _STARTS.search(peek(path, 4000))
+    if not m or m.group(2).decode().title() not in _MONTHS:
+        return None
+    d, mon, y, hh, mm, ss = m.groups()
+    return int(y), _MONTHS[mon.decode().title()], int(d), int(hh), int(mm), int(ss)
+
+
+def first_bfgs_step(path) -> int | None:
+    """The first ``number of bfgs steps = N`` of a pw.x output (N > 0: a restart), None when the
+    output has none (not a BFGS relaxation, or no step finished)."""
+    with Lines(path) as fh:
+        for line in fh:
+            m = _BFGS_STEPS.match(line)
+            if m:
+                return int(m.group(1))
+    return None
+
+
+def _header_structure(path):
+    """(cell, positions, numbers) pw.x prints in a run's header (the input structure), or None."""
+    lines = []
+    with Lines(path) as fh:
+        for line in fh:
+            if any(m in line for m in _SCF_START):
+                break
+            lines.append(line)
+    try:
+        cell, pos, numbers, _, _ = _header_info(lines)
+    except Exception:  # noqa: BLE001 - not a complete header: continues nothing
+        return None
+    return cell, pos, numbers
+
+
+def _end_structures(path) -> list:
+    """The structures a later run may start from: the last completed step of a pw.x output and
+    the configuration it printed last without evaluating it (a stopped relaxation's next step)."""
+    ctx = ReadContext(path)
+    last = None
+    try:
+        for fr in read_pw_out(path, ctx):
+            last = fr
+    except Exception:  # noqa: BLE001 - an unreadable output continues into nothing
+        return []
+    ends = [] if last is None else [(last.cell, last.positions, last.numbers)]
+    if ctx.carry.get("espresso-unevaluated") is not None:
+        ends.append(ctx.carry["espresso-unevaluated"])
+    return ends
+
+
+CONTINUES_TOL = 1e-4
+"""Å: a run whose header structure is this close to where another ended continues it (pw.x prints
+the header cell in alat units with 6 decimals and positions with 7)."""
+
+
+def _same_structure(a, b, tol=CONTINUES_TOL) -> bool:
+    (ca, pa, za), (cb, pb, zb) = a, b
+    if len(za) != len(zb) or not np.array_equal(za, zb) or np.abs(ca - cb).max() > tol:
+        return False
+    frac = (pa - pb) @ np.linalg.inv(cb)
+    frac -= np.round(frac)                    # the same site one lattice vector away
+    return bool(np.abs(frac @ cb).max() <= tol)
+
+
+def continues(prev: Path, nxt: Path) -> bool:
+    """True when pw.x output ``nxt`` continues ``prev``: a BFGS restart (its first step is BFGS step
+    > 0) holding the same atoms, or a new run whose header structure is where ``prev`` ended (its
+    last step, or the next configuration it printed and did not evaluate), within
+    :data:`CONTINUES_TOL`."""
+    head = _header_structure(nxt)
+    ends = _end_structures(prev)
+    if head is None or not ends:
+        return False
+    if (first_bfgs_step(nxt) or 0) > 0:
+        return np.array_equal(head[2], ends[0][2])
+    return any(_same_structure(head, end) for end in ends)
+
+
+def _as_stages(outs: list[Path], ctx) -> list | None:
+    """Several pw.x outputs as the stages of one run, in the order they ran, or None (separate
+    runs). Order: the start time each output prints (``starts on 3Dec2026 at 12:39:11``), then the
+    number of a numbered copy (``pw.out.1``), then the name. They are stages when each continues the
+    one before it (:func:`continues`): numbered copies of a rerun from the input, or unrelated runs
+    side by side, stay separate runs."""
+    def order(p):
+        t = started(p)
+        m = _NUMBERED.match(strip_compression(p.name))
+        return (t is None, t or (), int(m.group(2)) if m else -1, p.name)
+    ranked = sorted(outs, key=order)
+    if not all(continues(a, b) for a, b in zip(ranked, ranked[1:])):
+        return None
+    return [(p.name, p, "espresso-out") for p in ranked]
+
+
+def _stage_folders(folder: Path, ctx) -> list | None:
+    """Subfolders ``relax1/``, ``relax2/`` (any :data:`~driftwatch.adapters.run.STAGE_DIR` name)
+    that each hold the pw.x output(s) of one stage, in their numbered order."""
+    from .run import STAGE_DIR, stage_sequence
+    found = []
+    try:
+        subs = sorted(d for d in folder.iterdir() if d.is_dir() and STAGE_DIR.match(d.name))
+    except OSError:
+        return None
+    if not stage_sequence({d.name for d in subs}):
+        return None                  # run-0001/ run-0002/ ...: a campaign of runs, not stages
+    for d in subs:
+        try:
+            names = sorted(p.name for p in d.iterdir() if p.is_file() and not p.name.startswith("."))
+        except OSError:
+            continue
+        outs = pw_outputs(d, names, ctx)
+        if not outs:
+            continue
+        if ctx is not None:
+            ctx.lists(d)
+        inner = [(f"{d.name}", outs[0], "espresso-out")] if len(outs) == 1 else _as_stages(outs, ctx)
+        if inner is None:
+            continue                 # several separate runs in one stage folder: not a stage
+        m = STAGE_DIR.match(d.name)
+        for k, (name, path, fmt) in enumerate(inner):
+            label = d.name if len(inner) == 1 else f"{d.name}/{name}"
+            found.append(((m.group(1).lower(), int(m.group(2)), k), label, path, fmt))
+    if not found:
+        return None
+    found.sort(key=lambda x: x[0])
+    paths = [path for _, _, path, _ in found]
+    if not all(continues(a, b) for a, b in zip(paths, paths[1:])):
+        return None                  # separate runs in numbered folders, not stages of one
+    return [(label, path, fmt) for _, label, path, fmt in found]
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
-    """A QE run folder holds exactly one pw.x output (``*.out``, ``*.pwo``, ``*.log``, any
-    compression); its ``pw.in`` (or ``<stem>.in``) gives the settings. A folder with several pw.x
-    outputs is not one run: each output is a run of its own (discovery lists them all)."""
+    """A QE run folder: exactly one pw.x output (``*.out``, ``*.pwo``, ``*.log``, any compression),
+    whose ``pw.in`` (or ``<stem>.in``) gives the settings; or the stages of one multi-stage run:
+    outputs that each continue the one before (restarts, numbered copies, new runs from the last
+    structure; :func:`_as_stages`), side by side or in stage subfolders ``relax1/``, ``relax2/``
+    with no pw.x output in the folder itself. Other folders with several pw.x outputs are not one
+    run: each output is a run of its own (discovery lists them all)."""
     from .registry import FolderPick
     if format is not None and format != "espresso-out":
         return None
     outs = pw_outputs(folder, names, ctx)
-    if len(outs) != 1:
-        return None
-    return FolderPick([("", outs[0], "espresso-out")])
+    if len(outs) == 1:
+        return FolderPick([("", outs[0], "espresso-out")])
+    stages = _as_stages(outs, ctx) if outs else _stage_folders(Path(folder), ctx)
+    return FolderPick(stages) if stages else None
 
 
 # ---------------------------------------------------------------- live: end, soft stop

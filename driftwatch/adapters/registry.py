@@ -43,7 +43,7 @@ from .run import Frame, ReadContext, Run, checked, collect, folder_listing, posi
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
            "ENTRY_POINT_GROUP", "Code", "FolderPick", "register_code", "codes", "code_of_format",
-           "scan_folder", "symmetry_setting", "recognised"]
+           "scan_folder", "symmetry_setting", "recognised", "structures"]
 
 PEEK_BYTES = 50_000
 ENTRY_POINT_GROUP = "driftwatch.adapters"
@@ -58,6 +58,9 @@ class Format:
     globs: tuple = ()
     magic: re.Pattern | None = None
     description: str = ""
+    members: Callable | str | None = None
+    """``members(path, structure_keys) -> [names]``: the structures a file of this format holds
+    (several: one run each, ``FILE::NAME``), for formats that can hold many."""
 
     def load(self) -> Callable:
         if isinstance(self.reader, str):
@@ -129,8 +132,10 @@ _plugins_loaded = False
 
 
 def register(name: str, reader, *, globs=(), magic=None, description: str = "",
-             replace: bool = False) -> None:
+             replace: bool = False, members=None) -> None:
     """Add a format. ``magic`` is a bytes regex (or literal bytes) found in the first 50 kB.
+    ``members(path, structure_keys) -> [names]``: for a format that can hold many structures, the
+    names of those a file holds (discovery lists one run per name, ``FILE::NAME``).
 
     Re-registering an existing name raises ``ValueError`` unless ``replace=True``.
     """
@@ -140,7 +145,7 @@ def register(name: str, reader, *, globs=(), magic=None, description: str = "",
         globs = (globs,)
     if isinstance(magic, (bytes, str)):
         magic = re.compile(magic if isinstance(magic, bytes) else magic.encode(), re.M)
-    _formats[name] = Format(name, reader, tuple(globs), magic, description)
+    _formats[name] = Format(name, reader, tuple(globs), magic, description, members)
 
 
 def register_code(code: Code, *, replace: bool = False) -> None:
@@ -268,11 +273,23 @@ class _Pick:
 
 def _split_selection(path: Path):
     """``file.db@key=value`` (ase.db rows) or ``FOLDER@stage`` -> (base, selection)."""
+    if not path.exists() and _SEP in str(path):
+        base, name = _batch_split(str(path))
+        if name is not None:
+            return Path(base), _SEP + name
     if not path.exists() and "@" in path.name:
         base, _, selection = str(path).rpartition("@")
         if Path(base).exists():
             return Path(base), selection
     return path, None
+
+
+def _batch_split(text: str):
+    from .batch import split
+    return split(text)
+
+
+_SEP = "::"      # FILE::NAME: one structure of a many-structure file (adapters/batch.py)
 
 
 def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
@@ -285,6 +302,8 @@ def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
             raise InputError(path, "broken symbolic link (its target is missing, or the link "
                                    "points back to itself)")
         raise InputError(path, "no such file or directory")
+    if path.is_dir() and selection and selection.startswith(_SEP):
+        raise InputError(path, f"a folder holds no structures by name ({selection}): pass the file")
     if path.is_dir():
         try:
             next(iter(os.scandir(path)), None)
@@ -302,6 +321,10 @@ def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
     for _, src, fmt in pick.stages:
         if fmt not in _formats:
             raise UnknownFormatError(src, f"unknown format {fmt!r} (known formats: {_known()})")
+    if selection and selection.startswith(_SEP) and _formats[pick.format].members is None:
+        raise InputError(path, f"{_formats[pick.format].description or pick.format} holds one run; "
+                               f"'{_SEP}NAME' names a structure of an extended XYZ or ase.db of "
+                               f"many relaxations")
     pick.selection = selection
     return pick
 
@@ -370,6 +393,25 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     return "files", files
 
 
+def structures(path, structure_keys=None) -> list[str]:
+    """Names of the structures a file holds when its format can hold many and it holds more than
+    one (discovery lists ``FILE::NAME`` for each); [] otherwise, also for a file that cannot be
+    indexed (reading it reports the problem)."""
+    from .batch import STRUCTURE_KEYS
+    fmt = _formats.get(_safe_detect(path) or "")
+    if fmt is None or fmt.members is None:
+        return []
+    fn = fmt.members
+    if isinstance(fn, str):
+        mod, _, name = fn.partition(":")
+        fn = fmt.members = getattr(importlib.import_module(mod), name)
+    try:
+        names = fn(str(path), tuple(structure_keys or STRUCTURE_KEYS))
+    except Exception:  # noqa: BLE001 - a file that cannot be indexed is one (failing) run
+        return []
+    return list(names) if len(names) > 1 else []
+
+
 def _safe_detect(p):
     try:
         return detect(p)
@@ -414,8 +456,8 @@ def detect(path) -> str:
 def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
     """Frames from the reader; reader failures become InputError, or a warning after frames."""
     fmt = _formats[fmt_name]
-    ctx.uses(str(source).rpartition("@")[0] if not Path(source).exists() and "@" in str(source)
-             else source)
+    base = _batch_split(str(source))[0]
+    ctx.uses(base.rpartition("@")[0] if not Path(base).exists() and "@" in base else base)
     n = 0
     last = None
     try:
@@ -436,7 +478,9 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
 
 
 def _source_of(pick: _Pick, src: Path) -> str:
-    return f"{src}@{pick.selection}" if pick.selection else str(src)
+    if not pick.selection:
+        return str(src)
+    return f"{src}{pick.selection}" if pick.selection.startswith(_SEP) else f"{src}@{pick.selection}"
 
 
 def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> Iterator[Frame]:
@@ -469,7 +513,8 @@ def _same_atoms(a, b) -> bool:
     return len(a) == len(b) and bool(np.array_equal(np.asarray(a), np.asarray(b)))
 
 
-def iter_frames(path, format=None, *, context: ReadContext | None = None) -> Iterator[Frame]:
+def iter_frames(path, format=None, *, context: ReadContext | None = None,
+                structure_keys=None) -> Iterator[Frame]:
     """Stream the completed ionic steps of ``path`` (a file or run folder) as Frames.
 
     Never yields an incomplete step, so it is safe on a file that is still being written. Stages
@@ -478,6 +523,8 @@ def iter_frames(path, format=None, *, context: ReadContext | None = None) -> Ite
     when no step is complete.
     """
     ctx = context if context is not None else ReadContext(path)
+    if structure_keys is not None:
+        ctx.structure_keys = tuple(structure_keys)
     pick = _resolve(path, format, ctx)
     ctx.path = _source_of(pick, pick.source)
     for w in pick.warnings:
@@ -492,7 +539,8 @@ def iter_frames(path, format=None, *, context: ReadContext | None = None) -> Ite
         raise InputError(pick.source, "no completed ionic step" + detail)
 
 
-def read_run(path, format=None, *, context: ReadContext | None = None) -> Run:
+def read_run(path, format=None, *, context: ReadContext | None = None,
+             structure_keys=None) -> Run:
     """Read every completed ionic step of a file or run folder into a :class:`Run`.
 
     ``format`` overrides detection (see :func:`formats`). For a folder, the richest complete
@@ -500,9 +548,14 @@ def read_run(path, format=None, *, context: ReadContext | None = None) -> Run:
     (custodian ``vasprun.xml.relax1.gz`` ..., ``relax1/ relax2/`` stage folders) is read as one
     trajectory with ``stages`` giving the boundaries; ``FOLDER@relax1`` (or ``FOLDER@1``) reads
     one stage. A truncated output gives its completed steps plus a warning naming the file.
+    ``FILE::NAME`` reads one structure of a many-structure extended XYZ or ase.db
+    (:mod:`driftwatch.adapters.batch`; ``structure_keys``: the keys that name structures, default
+    ``batch.STRUCTURE_KEYS``); reading such a file whole is refused with the names it holds.
     ``context``: a :class:`ReadContext` to fill (it keeps the files read even when reading fails).
     """
     ctx = context if context is not None else ReadContext(path)
+    if structure_keys is not None:
+        ctx.structure_keys = tuple(structure_keys)
     pick = _resolve(path, format, ctx)
     ctx.path = _source_of(pick, pick.source)
     for w in pick.warnings:
@@ -521,16 +574,20 @@ for _module in ("vasp", "espresso"):
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
          description="ASE trajectory (.traj)")
 register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite format 3\x00",
-         description="ASE database rows (SQLite .db; file.db@selection picks rows)")
+         description="ASE database rows (SQLite .db; file.db@selection picks rows; "
+                     "file.db::NAME one structure)", members=_A + "batch:db_names")
 register("task-doc", _A + "pymatgen_json:read_task_doc", globs=("*task*.json",),
          magic=rb'"calcs_reversed"\s*:', description="workflow task document (JSON; "
                                                     "calcs_reversed[].output.ionic_steps)")
 register("pymatgen-json", _A + "pymatgen_json:read_structures", globs=(),
          magic=rb'"@class"\s*:\s*"Structure"', description="pymatgen Structure list in JSON")
 register("ase-json-db", _A + "ase_native:read_db", globs=(),
-         magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="ASE database rows (JSON)")
+         magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="ASE database rows (JSON)",
+         members=_A + "batch:db_names")
 register("extxyz", _A + "ase_native:read_extxyz", globs=("*.xyz", "*.extxyz"),
-         magic=rb"\A\s*\d+[ \t]*\r?\n[^\n]*(Lattice|Properties)=", description="extended XYZ")
+         magic=rb"\A\s*\d+[ \t]*\r?\n[^\n]*(Lattice|Properties)=", description="extended XYZ "
+                                                                      "(file::NAME one structure)",
+         members=_A + "batch:extxyz_names")
 register("lammps-dump", _A + "ase_native:read_lammps_dump", globs=("*.lammpstrj", "*.dump"),
          magic=rb"\AITEM: TIMESTEP", description="LAMMPS text dump (through ASE; types from an "
                                                  "element column, else masses in the input script)")

@@ -11,6 +11,7 @@ xx yy zz yz xz xy, ASE's sign convention: positive = tensile).
 from __future__ import annotations
 
 import os
+import re
 from dataclasses import dataclass, field
 from typing import Iterable, Iterator
 
@@ -89,6 +90,13 @@ class Run:
     Euclidean norm of the error vector: ``sqrt(3) * 0.5 * 10**-d`` for cartesian coordinates with
     ``d`` decimals, ``0.5 * 10**-d * (|a| + |b| + |c|)`` (largest over frames) for fractional ones).
     None when unknown or when the file holds binary doubles (``.traj``, ase.db)."""
+    kind: str = "trajectory"
+    """``"trajectory"`` (ionic steps as the code wrote them) or ``"end-points"`` (only the initial
+    and the final structure of a relaxation, as databases of initial/final pairs store them: steps
+    0 and 1 are those two structures, not ionic steps)."""
+    structure_key: dict | None = None
+    """For one structure of a many-structure file (``FILE::NAME``): ``{"key": info or key-value name,
+    "value": NAME, "structures": how many the file holds}``; None otherwise."""
     inputs: tuple = ()
     """What the read depended on, for caches: ``(kind, path, stamp)`` with kind ``"file"`` (stamp
     = ``[size, mtime_ns, ctime_ns, inode]`` when the reader opened it, None if it was missing) or
@@ -149,6 +157,25 @@ class Run:
                          coords_are_cartesian=True)
 
 
+STAGE_DIR = re.compile(r"^(relax|stage|restart)[-_.]?(\d+)$", re.I)
+MAX_STAGES = 20
+"""Stage folders: ``relax1/ relax2/`` (workflow managers' double relaxations), ``stage_1/``,
+``restart-2/``, numbered consecutively from 0 or 1 with one name, at most :data:`MAX_STAGES`. A
+folder of ``run-0001/ run-0002/ ...`` (or of 500 ``relaxN/``) is a campaign of runs, not the stages
+of one (see :func:`stage_sequence`)."""
+
+
+def stage_sequence(names) -> bool:
+    """True when stage-folder names (``STAGE_DIR`` matches) form one run's stages: one word, numbers
+    consecutive from 0 or 1, at most :data:`MAX_STAGES` of them."""
+    got = sorted({(m.group(1).lower(), int(m.group(2))) for m in map(STAGE_DIR.match, names) if m})
+    seq = [n for _, n in got]
+    return (bool(seq) and len({w for w, _ in got}) == 1 and len(seq) <= MAX_STAGES
+            and seq[0] in (0, 1) and seq == list(range(seq[0], seq[0] + len(seq))))
+"""Names of stage subfolders (``relax1``, ``stage_2``, ``restart-3``, ...): a folder with no output of
+its own whose stage subfolders are run folders of one code is one multi-stage run."""
+
+
 def file_stamp(path) -> list | None:
     """``[size, mtime_ns, ctime_ns, inode]`` of a file (symlinks followed), None if it is missing.
 
@@ -193,7 +220,19 @@ class ReadContext:
         positions (see :attr:`Run.position_precision`); None when unknown."""
         self.file_stages: list = []
         """``[(name, n_frames), ...]`` when one file holds several stages (a task document's
-        calculations), in the order they ran."""
+        calculations, pw.x runs appended to one output), in the order they ran."""
+        from .batch import STRUCTURE_KEYS
+        self.structure_keys: tuple = STRUCTURE_KEYS
+        """Keys naming the structure a frame belongs to in many-structure files (``inputs.
+        structure_keys``; :mod:`driftwatch.adapters.batch`)."""
+        self.kind: str = "trajectory"
+        """``"trajectory"`` or ``"end-points"`` (only an initial and a final structure)."""
+        self.structure: dict | None = None
+        """``{"key", "value", "structures"}`` for one structure of a many-structure file."""
+        self.carry: dict = {}
+        """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
+        configuration it printed but never evaluated, which a ``restart_mode='restart'`` run
+        continues from without printing it)."""
 
     def uses(self, path) -> None:
         """Record that the read depends on ``path`` (stamped now; first use wins)."""
@@ -394,7 +433,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings), title=ctx.title,
         run_dir=None if run_dir is None else str(run_dir),
         stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
-        inputs=ctx.inputs(),
+        kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
     )
 
 

@@ -28,6 +28,8 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import STREAM_ERRORS, Lines, open_bytes, strip_compression, tail_bytes
+from .run import STAGE_DIR as _STAGE_DIR
+from .run import stage_sequence
 from .run import Frame, ReadContext, decimals, frame_from_atoms
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
@@ -295,14 +297,26 @@ class _ScanStopped(Exception):
     """The fast scanner met a step it does not read exactly like ASE; ASE takes over there."""
 
 
-def _scan_outcar_steps(fd, natoms):
-    """Yield (cell, positions, forces, stress|None, free_energy) per completed ionic step.
+def _scan_outcar_steps(fd, natoms, state: dict | None = None):
+    """Yield (cell, positions, forces, stress|None, free_energy, decimals) per completed ionic step.
 
-    The same chunks as ASE's ``outcarchunks`` (through the SCF delimiter and 4 more lines; a step
-    cut before them is not complete) and the same lines inside them (last occurrence of each
-    marker), read with one ``float`` conversion per block instead of ASE's ~15 parsers per line.
-    Raises ``_ScanStopped`` on anything unusual so that ASE's parser reads that step.
+    Two layouts of an ionic step are known:
+
+    * ``"ase"`` (VASP 5.2.11 and later): cell, positions and forces are printed before the SCF
+      delimiter ``FREE ENERGIE OF THE ION-ELECTRON SYSTEM``. The chunks are ASE's ``outcarchunks``
+      (through the delimiter and 4 more lines; a step cut before them is not complete) and the same
+      lines inside them (last occurrence of each marker), read with one ``float`` conversion per
+      block instead of ASE's ~15 parsers per line.
+    * ``"energy-first"`` (VASP 4.6 and 5.2.2 print the energy block first, then the stress, the
+      ``VOLUME and BASIS-vectors`` block and ``POSITION ... TOTAL-FORCE``): a step runs from the
+      delimiter through the last row of its POSITION block and is complete only then. ASE's chunk
+      parser cannot read it ("Did not find required property positions").
+
+    The layout is decided on the first step (no POSITION block before its delimiter: energy-first)
+    and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (in the ``"ase"``
+    layout, ASE's parser then reads that step).
     """
+    state = {} if state is None else state
     from ase.io.vasp_parsers.vasp_outcar_parsers import convert_vasp_outcar_stress
     lines = []
     while True:
@@ -317,9 +331,21 @@ def _scan_outcar_steps(fd, natoms):
             if not nxt:
                 return
             lines.append(nxt)
-        cell = pos = stress = None
+        if "layout" not in state:
+            state["layout"] = ("ase" if any("POSITION          " in t for t in lines)
+                               else "energy-first")
+        layout = state["layout"]
+        start = 0
+        if layout == "energy-first":
+            start = len(lines) - 5           # the delimiter: what belongs to this step follows it
+            if not _read_position_block(fd, lines, natoms):
+                return                       # cut before the step's positions were complete
+        cell = pos = stress = block = None
         try:
-            for k, text in enumerate(lines):
+            free = float(lines[start + 2].split()[4] if layout == "energy-first"
+                         else lines[-3].split()[4])
+            for k in range(start, len(lines)):
+                text = lines[k]
                 if "direct lattice vectors" in text:
                     cell = np.array([r.split()[:3] for r in lines[k + 1:k + 4]], float)
                 elif "POSITION          " in text:
@@ -327,7 +353,6 @@ def _scan_outcar_steps(fd, natoms):
                     pos = np.array([r.split() for r in block], float)
                 elif "in kB " in text:
                     stress = convert_vasp_outcar_stress([float(a) for a in text.split()[2:]])
-            free = float(lines[-3].split()[4])
         except (ValueError, IndexError):
             raise _ScanStopped from None
         if cell is None or pos is None or cell.shape != (3, 3) or pos.shape != (natoms, 6):
@@ -336,13 +361,35 @@ def _scan_outcar_steps(fd, natoms):
         lines = []
 
 
+def _read_position_block(fd, lines, natoms) -> bool:
+    """Energy-first layout: read on (into ``lines``) through the step's POSITION block (its header,
+    the dashes, ``natoms`` rows). False when the file ends first, or a new SCF cycle starts first
+    (no positions were printed for this step)."""
+    while True:
+        line = fd.readline()
+        if not line:
+            return False
+        lines.append(line)
+        if "POSITION          " in line:
+            break
+        if "Iteration" in line and "---" in line:
+            raise _ScanStopped
+    for _ in range(natoms + 1):
+        line = fd.readline()
+        if not line:
+            return False
+        lines.append(line)
+    return True
+
+
 def read_outcar(path, ctx: ReadContext):
     """Stream the completed ionic steps of an OUTCAR.
 
     ASE's header parser reads the species; a focused scanner (``_scan_outcar_steps``: reading
     ~3x faster than through ASE's chunk parser, equal to it frame by frame on every test file)
     reads the steps; from the first step it cannot read exactly as ASE would, ASE's own chunk parser reads
-    the rest (so damaged steps behave as with ASE).
+    the rest (so damaged steps behave as with ASE). OUTCARs of VASP 4.6 / 5.2.2, which print the
+    energy block before the positions, are read by the scanner alone (ASE cannot read them).
     """
     from ase.data import atomic_numbers
     from ase.io import ParseError
@@ -362,14 +409,19 @@ def read_outcar(path, ctx: ReadContext):
                                    "inside the OUTCAR header, or it is not an OUTCAR)") from None
         numbers = np.array([atomic_numbers[s] for s in header["symbols"]], int)
         pbc = np.ones(3, bool)
+        state: dict = {}
         try:
-            for cell, pos, forces, stress, free, d in _scan_outcar_steps(fd, len(numbers)):
+            for cell, pos, forces, stress, free, d in _scan_outcar_steps(fd, len(numbers), state):
                 if d is not None:
                     ctx.round_to("cartesian", 10.0 ** -d)
                 yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
                             energy=free, forces=forces, stress=stress)
                 step += 1
         except _ScanStopped:
+            if state.get("layout") == "energy-first":      # ASE cannot read this layout
+                ctx.warn(f"unreadable after step {step - 1} ({step} steps read): an ionic step "
+                         f"of the energy-first OUTCAR layout (VASP 4.6/5.2.2) is not as expected")
+                return
             yield from _outcar_with_ase(path, ctx, skip=step)
             return
         _warn_if_unfinished(fd, step, ctx)
@@ -495,11 +547,6 @@ def read_poscar(path, ctx: ReadContext):
 
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
-_STAGE_DIR = re.compile(r"^(relax|stage|restart)[-_.]?(\d+)$", re.I)
-_MAX_STAGES = 20
-"""Stage folders: ``relax1/ relax2/`` (workflow managers' double relaxations), ``stage_1/``,
-``restart-2/``, numbered consecutively from 0 or 1, at most this many. A folder of ``run-0001/
-run-0002/ ...`` (or of 500 ``relaxN/``) is a campaign of runs, not the stages of one."""
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
@@ -652,14 +699,29 @@ def _stage_folders(folder: Path, format, ctx):
                          path, fmt))
     if not subs:
         return None
-    numbers = sorted({(k[0], k[1]) for k, *_ in subs})
-    kinds = {k for k, _ in numbers}
-    seq = [n for _, n in numbers]
-    if len(kinds) != 1 or len(seq) > _MAX_STAGES or seq != list(range(seq[0], seq[0] + len(seq))) \
-            or seq[0] not in (0, 1):
-        return None
+    if not stage_sequence({d.name for d in entries}):
+        return None          # run-0001/ run-0002/ ...: a campaign of runs, not stages
     subs.sort(key=lambda x: (x[0][0], x[0][1], _stage_order(x[0][2])))
+    atoms = [_first_numbers(path, fmt) for _, _, path, fmt in subs]
+    if len(subs) > 1 and any(a is None or not np.array_equal(a, atoms[0]) for a in atoms):
+        return None          # numbered folders of different structures: separate runs, not stages
     return FolderPick([(name, path, fmt) for _, name, path, fmt in subs])
+
+
+def _first_numbers(path, fmt):
+    """The atomic numbers of the first completed step of ``path`` (None when it has none): the
+    readers stream, so this reads one ionic step."""
+    from .registry import _formats
+    from .run import ReadContext
+    try:
+        it = _formats[fmt].open(str(path), ReadContext(path))
+        first = next(iter(it), None)
+        close = getattr(it, "close", None)
+        if close is not None:
+            close()
+    except Exception:  # noqa: BLE001 - an unreadable stage: let the reader say why, not discovery
+        return None
+    return None if first is None else np.asarray(first.numbers)
 
 
 # ---------------------------------------------------------------- live: end, soft stop

@@ -1,0 +1,489 @@
+"""Inputs as they lie on disk, continued: many relaxations in one file (extended XYZ, ase.db), files of
+initial/final pairs, multi-stage pw.x runs (numbered restarts, stage folders, restart_mode='restart'),
+and VASP OUTCARs that print the energy block before the positions (VASP 4.6 / 5.2.2).
+
+External references (named beside each check):
+* a genuine VASP 5.2.2 OUTCAR (pyiron_atomistics test data; source and licence in
+  tests/data/public/README.md) against pymatgen's Outcar reading of the same file;
+* real ASE EMT relaxations made here (tests/data/batch, scripts/make_runs.py --only batch) against
+  ASE's own extxyz and ase.db readers and spglib on the frames ASE reads;
+* real pw.x 6.7 runs made here (tests/data/qe/restart_*), against ASE's espresso-out reader and a
+  from-scratch pw.x scf of the structure a restart continues from.
+"""
+from __future__ import annotations
+
+import gzip
+import io
+import shutil
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import ase.io
+
+from driftwatch.adapters import read_run
+from driftwatch.errors import InputError
+
+REPO = Path(__file__).resolve().parent.parent
+PUB = REPO / "tests" / "data" / "public"
+OLD_OUTCAR = PUB / "vasp522_energy_first" / "OUTCAR.gz"
+
+
+# ---------------------------------------------------------------- VASP 5.2.2: energy before positions
+def _pymatgen_outcar(path, tmp_path):
+    from pymatgen.io.vasp.outputs import Outcar
+    plain = tmp_path / "OUTCAR"
+    plain.write_bytes(gzip.decompress(path.read_bytes()))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return Outcar(str(plain)), plain
+
+
+def test_vasp_522_outcar_with_the_energy_first_equals_pymatgen(tmp_path):
+    """VASP 5.2.2 prints FREE ENERGIE before the stress, cell and POSITION blocks of a step: ASE's
+    reader fails on it; driftwatch reads it, equal to pymatgen's Outcar reading of the same file."""
+    out, plain = _pymatgen_outcar(OLD_OUTCAR, tmp_path)
+    text = plain.read_text()
+    assert text.index("FREE ENERGIE OF THE ION-ELECTRON") < text.index("POSITION          ")
+    with pytest.raises(Exception, match="positions"):                       # ASE cannot read it
+        ase.io.read(plain, ":", format="vasp-out")
+    run = read_run(OLD_OUTCAR)
+    assert len(run) == 1 and run.warnings == ()
+    assert run.energies[0] == pytest.approx(out.final_fr_energy, abs=1e-9)  # pymatgen: TOTEN
+    table = out.read_table_pattern(                                          # pymatgen's table reader
+        header_pattern=r"\sPOSITION\s+TOTAL-FORCE \(eV/Angst\)\n\s-+",
+        row_pattern=r"\s+([+-]?\d+\.\d+)\s+([+-]?\d+\.\d+)\s+([+-]?\d+\.\d+)\s+([+-]?\d+\.\d+)"
+                    r"\s+([+-]?\d+\.\d+)\s+([+-]?\d+\.\d+)",
+        footer_pattern=r"\s--+", postprocess=float, last_one_only=True)
+    table = np.array(table)
+    np.testing.assert_array_equal(run.positions[0], table[:, :3])            # pymatgen
+    np.testing.assert_array_equal(run.forces[0], table[:, 3:])
+    cell = out.read_table_pattern(header_pattern=r"\s+direct lattice vectors\s+reciprocal "
+                                                 r"lattice vectors\n",
+                                  row_pattern=r"\s+([-\d.]+)\s+([-\d.]+)\s+([-\d.]+)\s+[-\d.]+"
+                                              r"\s+[-\d.]+\s+[-\d.]+",
+                                  footer_pattern=r"\n", postprocess=float, last_one_only=True)
+    np.testing.assert_array_equal(run.cells[0], cell)                        # pymatgen, the step's
+    # the header: H + 32 Ag (POTCAR lines, 'ions per type = 1 32'); 48 operations (DYNSYM line)
+    assert run.numbers.tolist() == [1] + [47] * 32
+    assert run.code_settings["nsym"] == 48 and run.code_settings["ISYM"] == 1
+    assert run.position_precision == pytest.approx(np.sqrt(3) * 0.5e-5)     # f13.5 positions
+
+
+def test_vasp_522_outcar_cut_anywhere_gives_no_wrong_step(tmp_path):
+    """The energy-first layout is complete only after its POSITION block: a file cut anywhere before
+    the end of that block gives no step (a one-line error), after it the step (ase: common practice
+    of the streaming readers, see test_adapters)."""
+    data = gzip.decompress(OLD_OUTCAR.read_bytes())
+    end_of_block = data.index(b"total drift")
+    full = read_run(OLD_OUTCAR)
+    for off in np.unique(np.linspace(data.index(b"Iteration"), len(data) - 1, 30).astype(int)):
+        p = tmp_path / f"OUTCAR.{off}"
+        p.write_bytes(data[:off])
+        try:
+            run = read_run(p)
+        except InputError as exc:
+            assert off < end_of_block and "\n" not in str(exc)
+            continue
+        assert off >= end_of_block and len(run) == 1
+        np.testing.assert_array_equal(run.positions, full.positions)
+        ended = off > data.index(b"General timing and accounting") + 40
+        assert ended or any("truncated" in w for w in run.warnings)
+
+
+# ---------------------------------------------------------------- multi-stage pw.x runs
+QE = REPO / "tests" / "data" / "qe"
+NUMBERED = QE / "restart_numbered"
+STAGED = QE / "restart_stage_folders"
+needs_pwx = pytest.mark.skipif(shutil.which("pw.x") is None, reason="pw.x not on PATH")
+
+
+def _text(path):
+    data = path.read_bytes()
+    return (gzip.decompress(data) if path.suffix == ".gz" else data).decode()
+
+
+def _ase_pw(path):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return ase.io.read(io.StringIO(_text(path)), ":", format="espresso-out")   # ASE
+
+
+def _last_printed(text):
+    """The last CELL_PARAMETERS card (Å) a vc-relax output printed, read by ASE's card parser."""
+    from ase.io.espresso import get_cell_parameters
+    block = text.rsplit("CELL_PARAMETERS", 1)[1].splitlines()[:4]
+    cell, _ = get_cell_parameters(["CELL_PARAMETERS" + block[0] + "\n"] + [b + "\n" for b in block[1:]])
+    return np.array(cell)
+
+
+def test_numbered_pwx_restart_is_one_run_in_the_order_it_ran():
+    """pw.out.1 (stopped at nstep = 3) and pw.out.gz (restart_mode='restart'), real pw.x 6.7: one
+    trajectory, ordered by the start time pw.x prints (not by name), steps numbered on as pw.x's
+    BFGS counter goes on; every frame equal to ASE's reader of its file, except the restart's first,
+    which ASE pairs with the header (the input structure) and driftwatch with the structure the
+    first output printed last (the one pw.x restored)."""
+    run = read_run(NUMBERED)
+    assert [(s["name"], s["n_frames"]) for s in run.stages] == [("pw.out.1", 3), ("pw.out.gz", 21)]
+    assert run.steps.tolist() == list(range(24)) and run.warnings == ()
+    first, second = _ase_pw(NUMBERED / "pw.out.1"), _ase_pw(NUMBERED / "pw.out.gz")
+    np.testing.assert_allclose(run.cells[:3], [a.cell.array for a in first], atol=1e-12)    # ASE
+    np.testing.assert_allclose(run.cells[4:], [a.cell.array for a in second[1:]], atol=1e-12)
+    np.testing.assert_allclose(run.energies[3:], [a.get_potential_energy() for a in second])
+    last_printed = _last_printed(_text(NUMBERED / "pw.out.1"))
+    np.testing.assert_allclose(run.cells[3], last_printed, atol=1e-12)
+    header = second[0].cell.array                      # what the restart's header shows: the input
+    assert np.abs(header - run.cells[0]).max() < 1e-6 and np.abs(header - run.cells[3]).max() > 0.05
+    text = _text(NUMBERED / "pw.out.gz")
+    assert "number of bfgs steps    =   3" in text.split("ATOMIC_POSITIONS", 1)[0]          # pw.x
+    # read alone, the restart leaves out the step whose structure it does not print, and says so
+    alone = read_run(NUMBERED / "pw.out.gz")
+    assert len(alone) == 20 and alone.steps[0] == 1
+    assert any("restart" in w and "left out" in w for w in alone.warnings)
+    one = read_run(f"{NUMBERED}@pw.out.1")                                    # one stage on request
+    assert len(one) == 3 and one.stages == ()
+
+
+@pytest.mark.pwx
+@needs_pwx
+def test_the_restarts_first_energy_belongs_to_the_carried_structure(tmp_path):
+    """Real pw.x: an scf of the structure driftwatch gives the restart's first step reproduces that
+    step's energy within 1e-4 Ry (measured 1.3e-5 Ry: a vc-relax keeps the plane-wave set of its
+    starting cell, a fresh scf builds its own, which is why pw.x ends a vc-relax with a final scf);
+    an scf of the header's structure is off by far more (measured 3.7e-3 Ry)."""
+    run = read_run(NUMBERED)
+    pw_in = (NUMBERED / "pw.in").read_text()
+    pw_in = (pw_in.replace("'vc-relax'", "'scf'").replace("restart_mode = 'restart'", "")
+             .replace("pseudo_dir = '../pseudo'", f"pseudo_dir = '{QE / 'pseudo'}'"))
+
+    def scf(cell):
+        d = tmp_path / f"scf{len(list(tmp_path.iterdir()))}"
+        d.mkdir()
+        head, tail = pw_in.split("CELL_PARAMETERS angstrom\n")
+        rows = "".join("  " + " ".join(f"{x:.10f}" for x in r) + "\n" for r in cell)
+        (d / "pw.in").write_text(head + "CELL_PARAMETERS angstrom\n" + rows +
+                                 tail.split("\n", 3)[3])
+        import subprocess
+        with open(d / "pw.out", "w") as out:
+            subprocess.run(["pw.x", "-in", "pw.in"], cwd=d, stdout=out, stderr=subprocess.STDOUT,
+                           env={**__import__("os").environ, "OMP_NUM_THREADS": "1"}, check=True,
+                           timeout=300)
+        e = read_run(d / "pw.out").energies[-1]
+        print(f"scf energy {e:.6f} eV; restart's first step {run.energies[3]:.6f} eV")
+        return e
+    ry = 13.605693122994                                                      # eV (CODATA 2018)
+    carried, header = scf(run.cells[3]), scf(run.cells[0])
+    assert abs(carried - run.energies[3]) < 1e-4 * ry
+    assert abs(header - run.energies[3]) > 10 * abs(carried - run.energies[3])
+
+
+def test_stage_folders_of_pwx_runs_are_one_run(tmp_path):
+    """relax1/ (stopped by driftwatch's soft stop, pw.EXIT) and relax2/ (a new run from relax1's
+    last printed structure), real pw.x: one run with two stages; discovery lists one run."""
+    from driftwatch.campaign import discover
+    run = read_run(STAGED)
+    names = [s["name"] for s in run.stages]
+    assert names == ["relax1", "relax2"] and run.warnings == ()
+    n1 = run.stages[0]["n_frames"]
+    ref1, ref2 = _ase_pw(STAGED / "relax1" / "pw.out"), _ase_pw(STAGED / "relax2" / "pw.out")
+    assert "Program stopped by user request" in _text(STAGED / "relax1" / "pw.out")     # pw.x
+    np.testing.assert_allclose(run.positions[:n1], [a.positions for a in ref1], atol=1e-12)  # ASE
+    np.testing.assert_allclose(run.positions[n1:], [a.positions for a in ref2], atol=1e-12)
+    # relax2 starts from relax1's last printed cell (its header prints it in alat with 6 decimals)
+    np.testing.assert_allclose(run.cells[n1], _last_printed(_text(STAGED / "relax1" / "pw.out")),
+                               atol=1e-5)
+    runs, failed = discover([STAGED])
+    assert [r.kind for r in runs] == ["folder"] and not failed
+    camp = tmp_path / "camp"
+    shutil.copytree(STAGED, camp / "Si2_strained")
+    shutil.copytree(NUMBERED, camp / "Al_bct")
+    runs, failed = discover([camp])
+    assert sorted(r.id for r in runs) == ["camp/Al_bct", "camp/Si2_strained"] and not failed
+
+
+def test_unrelated_pwx_outputs_in_one_folder_stay_separate_runs(tmp_path):
+    """Two pw.x outputs of different relaxations (neither a restart, not numbered copies) in one
+    folder are two runs, as before; runs appended to one output are stages of that file."""
+    from driftwatch.campaign import discover
+    d = tmp_path / "two"
+    d.mkdir()
+    shutil.copy(QE / "bulk_tetragonal_to_cubic" / "pw.out", d / "al.out")
+    shutil.copy(QE / "relax_atoms_to_sites" / "pw.out", d / "si.out")
+    runs, failed = discover([d])
+    assert len(runs) == 2 and not failed
+    with pytest.raises(InputError, match="holds 2 runs"):
+        read_run(d)
+    # appended: the first run and its restart in one file ('pw.x ... >> pw.out')
+    cat = tmp_path / "appended.out"
+    cat.write_text(_text(NUMBERED / "pw.out.1") + _text(NUMBERED / "pw.out.gz"))
+    joined, staged = read_run(cat), read_run(NUMBERED)
+    assert [(s["name"], s["n_frames"]) for s in joined.stages] == [("run1", 3), ("run2", 21)]
+    np.testing.assert_array_equal(joined.cells, staged.cells)
+    np.testing.assert_array_equal(joined.energies, staged.energies)
+
+
+def test_multistage_pwx_verdict_against_spglib():
+    """The Al restart: the bct start (c/a 1.08) reaches the cubic lattice in the restarted stage;
+    spglib on the first and last frames: I4/mmm (139) -> Fm-3m (225)."""
+    import spglib
+    from driftwatch.track import analyze
+    run = read_run(NUMBERED)
+    rec = analyze(run)
+    v = rec["summary"]["verdict"]
+    cells = lambda i: (run.cells[i], run.positions[i] @ np.linalg.inv(run.cells[i]), run.numbers)
+    assert spglib.get_symmetry_dataset(cells(0), symprec=1e-3).number == 139           # spglib
+    assert spglib.get_symmetry_dataset(cells(-1), symprec=1e-3).number == 225
+    assert v["direction"] == "gained" and v["lattice"]["final"] == "cF"
+    assert v["lattice"]["from_step"] >= run.stages[1]["step_offset"]
+    assert [s["name"] for s in rec["run"]["stages"]] == ["pw.out.1", "pw.out.gz"]
+
+
+# ---------------------------------------------------------------- many structures in one file
+BATCH = REPO / "tests" / "data" / "batch"
+NAMES = ["Cu-bct-07", "Al-fco-02", "Ni-rhombo-03", "CuNi-tP-04", "Cu-layer-05", "Al-layer-06"]
+
+
+def _ase_extxyz(path):
+    with gzip.open(path, "rt") as fh:
+        return ase.io.read(fh, ":", format="extxyz")                         # ASE
+
+
+def _by(frames, key, name):
+    return [a for a in frames if str(a.info.get(key)) == name]
+
+
+def _same(run, images, atol=0.0):
+    assert len(run) == len(images)
+    np.testing.assert_allclose(run.cells, [a.cell.array for a in images], atol=atol, rtol=0)
+    np.testing.assert_allclose(run.positions, [a.positions for a in images], atol=atol, rtol=0)
+    np.testing.assert_allclose(run.energies, [a.get_potential_energy() for a in images], rtol=1e-12)
+
+
+def test_one_run_per_structure_equal_to_ases_readers():
+    """Six real EMT relaxations (FrechetCellFilter + BFGS) in one extended XYZ (structure_id, step;
+    one after the other) and one ase.db (relax_id, step; rows interleaved as a batched optimizer
+    writes them): each structure read as its own run equals ASE's readers filtered by the key."""
+    import ase.db
+    images = _ase_extxyz(BATCH / "relaxations.extxyz.gz")
+    assert sorted({a.info["structure_id"] for a in images}) == sorted(NAMES)
+    with ase.db.connect(BATCH / "relaxations.db") as db:                      # ASE's ase.db
+        rows = list(db.select(sort="id"))
+    ids = [r.relax_id for r in rows]
+    assert ids[:len(NAMES)] == NAMES                                          # interleaved rows
+    for name in NAMES:
+        xyz = read_run(f"{BATCH / 'relaxations.extxyz.gz'}::{name}")
+        _same(xyz, _by(images, "structure_id", name))
+        assert xyz.steps.tolist() == [a.info["step"] for a in _by(images, "structure_id", name)]
+        assert xyz.structure_key == {"key": "structure_id", "value": name, "structures": 6}
+        mine = sorted((r for r in rows if r.relax_id == name), key=lambda r: r.step)
+        db_run = read_run(f"{BATCH / 'relaxations.db'}::{name}")
+        _same(db_run, [r.toatoms() for r in mine])
+        assert db_run.steps.tolist() == [r.step for r in mine] and db_run.kind == "trajectory"
+        # the two files hold the same deterministic relaxations; extxyz prints 8 decimals
+        np.testing.assert_allclose(xyz.positions, db_run.positions, atol=1e-8, rtol=0)
+
+
+def test_discovery_lists_each_structure_and_reading_the_file_whole_names_them(tmp_path):
+    """An audit and inspect see FILE::NAME for each structure; FILE alone is a one-line error naming
+    the structures (exit 1 from the command line)."""
+    import subprocess
+    import sys
+    from driftwatch.campaign import discover
+    runs, failed = discover([BATCH])
+    assert not failed and len(runs) == 24
+    assert {r.id.split("::")[1] for r in runs} == set(NAMES)
+    assert all(r.path.endswith(r.id.split("::")[1]) for r in runs)
+    for f in ("relaxations.extxyz.gz", "relaxations.db", "pairs.extxyz.gz", "pairs.db"):
+        with pytest.raises(InputError, match=r"holds 6 structures named by .*Cu-bct-07.*::"):
+            read_run(BATCH / f)
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(BATCH / "pairs.db")],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 1 and proc.stderr.count("\n") == 1
+    assert "holds 6 structures named by 'system_name'" in proc.stderr
+    with pytest.raises(InputError, match="no structure 'Fe-bcc-99'"):
+        read_run(f"{BATCH / 'relaxations.db'}::Fe-bcc-99")
+    # a file given as the root of an audit is split the same way
+    runs, _ = discover([BATCH / "relaxations.db"])
+    assert [r.id for r in runs] == sorted(f"relaxations.db::{n}" for n in NAMES)
+
+
+def test_verdicts_of_the_batch_against_spglib():
+    """spglib (symprec 1e-3 Å) on the first and last frames ASE reads of each relaxation: the same
+    groups as the record's verdict, for the extxyz, the ase.db and both files of pairs."""
+    import spglib
+    from driftwatch.track import analyze
+    images = _ase_extxyz(BATCH / "relaxations.extxyz.gz")
+    for name in NAMES:
+        mine = _by(images, "structure_id", name)
+        recs = [analyze(f"{BATCH / f}::{name}", "screen") for f in      # first and last frames
+                ("relaxations.extxyz.gz", "relaxations.db", "pairs.extxyz.gz", "pairs.db")]
+        for k, a in ((0, mine[0]), (-1, mine[-1])):
+            if recs[0]["geometry"]["dimension"] == 3:                        # spglib space group
+                want = spglib.get_symmetry_dataset((a.cell.array, a.get_scaled_positions(),
+                                                    a.numbers), symprec=1e-3).number
+                for rec in recs:
+                    got = rec["summary"]["verdict"]["structure"]["initial" if k == 0 else "final"]
+                    assert got["group"] == want, (name, k)
+        texts = {r["summary"]["verdict"]["text"].split(":", 1)[1] for r in recs[2:]}
+        assert len(texts) == 1                                                 # both pair files
+
+
+def test_initial_final_pairs_are_end_point_runs():
+    """Files of initial/final pairs (real EMT first and last frames): state=initial/final in an
+    extended XYZ, relaxed=False/True in an ase.db whose relaxed row comes first. Two-frame runs,
+    initial first, reported "initial -> final" with no step numbers; the frames are ASE's first and
+    last frames of the full relaxation."""
+    from driftwatch.track import analyze
+    images = _ase_extxyz(BATCH / "relaxations.extxyz.gz")
+    for f in ("pairs.extxyz.gz", "pairs.db"):
+        for name in NAMES:
+            run = read_run(f"{BATCH / f}::{name}")
+            mine = _by(images, "structure_id", name)
+            assert run.kind == "end-points" and run.steps.tolist() == [0, 1]
+            np.testing.assert_allclose(run.positions, [mine[0].positions, mine[-1].positions],
+                                       atol=1e-8, rtol=0)                      # ASE
+    rec = analyze(f"{BATCH / 'pairs.db'}::Cu-bct-07")
+    assert rec["run"]["kind"] == "end-points" and rec["run"]["n_frames"] == 2
+    assert [f["label"] for f in rec["frames"]] == ["initial", "final"]
+    v = rec["summary"]["verdict"]
+    assert v["text"].startswith("gained (initial -> final structure; no ionic steps between them)")
+    assert "tI -> cF" in v["text"] and "step" not in v["text"].replace("ionic steps", "")
+    assert rec["flags"] and all("at the final structure" in fl["message"] and
+                                " step " not in fl["message"] for fl in rec["flags"])
+    traj = analyze(f"{BATCH / 'relaxations.db'}::Cu-bct-07")
+    assert traj["run"]["kind"] == "trajectory" and "from step" in traj["summary"]["verdict"]["text"]
+    assert "label" not in traj["frames"][0]
+
+
+def test_structure_keys_are_configurable_and_bad_batches_are_one_line_errors(tmp_path):
+    """inputs.structure_keys decides what names a structure; a frame without the key, or two frames
+    of one step under one name, is a one-line error naming the file and the frame."""
+    from driftwatch import config
+    from driftwatch.adapters import batch
+    from driftwatch.campaign import discover
+    assert tuple(config.load()["inputs"]["structure_keys"]) == batch.STRUCTURE_KEYS
+    runs, _ = discover([BATCH / "relaxations.db"], structure_keys=["structure_id"])
+    assert [r.id for r in runs] == ["relaxations.db"]                 # relax_id not tried: one run
+    text = gzip.decompress((BATCH / "relaxations.extxyz.gz").read_bytes()).decode()
+    lines = text.splitlines(keepends=True)
+    # frame 3 loses its structure_id
+    n = int(lines[0])
+    k = 3 * (n + 2) + 1                          # comment line of frame 3 (all frames: 1 atom)
+    assert "structure_id=Cu-bct-07" in lines[k]
+    bad = tmp_path / "bad.extxyz"
+    bad.write_text("".join(lines[:k] + [lines[k].replace("structure_id=Cu-bct-07", "")] +
+                           lines[k + 1:]))
+    with pytest.raises(InputError, match=r"bad.extxyz: frame 3 has no 'structure_id'") as exc:
+        read_run(f"{bad}::Cu-bct-07")
+    assert "\n" not in str(exc.value)
+    dup = tmp_path / "dup.extxyz"
+    dup.write_text("".join(lines[:k] + [lines[k].replace("step=3", "step=2")] + lines[k + 1:]))
+    with pytest.raises(InputError, match=r"two frames of step 2 \(frames 2 and 3\)"):
+        read_run(f"{dup}::Cu-bct-07")
+    # a file naming no structures is one run, as before; asking it for a name says so
+    with pytest.raises(InputError, match="names no structures"):
+        read_run(f"{REPO / 'example_runs' / 'B05_emt_bfgs.extxyz'}::x")
+    with pytest.raises(InputError, match="pw.x output holds one run"):
+        read_run(f"{QE / 'layer_oblique_to_hex' / 'pw.out'}::x")
+
+
+def test_cache_keys_each_structure_on_the_file_and_its_name(tmp_path):
+    """One cache entry per structure; a re-audit serves all from the cache; a changed file (a new
+    structure appended, real frames under a new name) re-reads every structure of it and adds the
+    new one."""
+    from driftwatch.campaign import audit
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    shutil.copy(BATCH / "relaxations.extxyz.gz", camp)
+    kw = dict(workers=1, report=False, progress="off")
+    first = audit([camp], tmp_path / "out", **kw)
+    assert first["runs"] == 6 and not first["failed"]
+    entries = [p for p in (tmp_path / "out" / ".cache").glob("*.json") if p.name != "digests.json"]
+    assert len(entries) == 6
+    again = audit([camp], tmp_path / "out", **kw)
+    assert again["cached"] == 6 and again["analysed"] == 0
+    text = gzip.decompress((camp / "relaxations.extxyz.gz").read_bytes()).decode()
+    extra = "".join(ln.replace("structure_id=Cu-bct-07", "structure_id=Cu-bct-08")
+                    for ln in _frames_of(text, "Cu-bct-07"))
+    (camp / "relaxations.extxyz.gz").write_bytes(gzip.compress((text + extra).encode()))
+    third = audit([camp], tmp_path / "out", **kw)
+    assert third["runs"] == 7 and third["cached"] == 0 and not third["failed"]
+    recs = {p.name for p in (tmp_path / "out" / "records").glob("*.json")}
+    assert "camp_relaxations.extxyz.gz__Cu-bct-08.json" in recs
+    a = json_load(tmp_path / "out" / "records" / "camp_relaxations.extxyz.gz__Cu-bct-07.json")
+    b = json_load(tmp_path / "out" / "records" / "camp_relaxations.extxyz.gz__Cu-bct-08.json")
+    assert a["summary"]["verdict"] == b["summary"]["verdict"]               # the same frames
+
+
+def _frames_of(text, name):
+    lines, out, i = text.splitlines(keepends=True), [], 0
+    while i < len(lines):
+        n = int(lines[i])
+        block = lines[i:i + n + 2]
+        if f"structure_id={name}" in block[1]:
+            out.extend(block)
+        i += n + 2
+    return out
+
+
+def json_load(path):
+    import json
+    return json.loads(Path(path).read_text())
+
+
+def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
+    """Every genuine public output, the real pw.x runs (single and multi-stage), the EMT batch files
+    and pairs, audited through the command line as a user would: no failed run; the two
+    non-periodic systems skipped with the setting that would include them; exit 0."""
+    import json
+    import subprocess
+    import sys
+    camp = tmp_path / "mixed"
+    shutil.copytree(PUB, camp / "public", ignore=shutil.ignore_patterns("README.md", "SHA256SUMS"))
+    for d in ("layer_oblique_to_hex", "restart_numbered", "restart_stage_folders"):
+        shutil.copytree(QE / d, camp / "qe" / d)
+    shutil.copytree(QE / "pseudo", camp / "qe" / "pseudo")
+    shutil.copytree(BATCH, camp / "ml_batch")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "-j", "2", "--no-report"],
+                          capture_output=True, text=True, timeout=900)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["failed"] == []
+    assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/public/ase_generic/gpaw_h2.txt"]
+    runs = {p.stem for p in (tmp_path / "out" / "records").glob("*.json")}
+    assert "mixed_qe_restart_numbered" in runs and "mixed_qe_restart_stage_folders" in runs
+    assert "mixed_public_vasp522_energy_first" in runs
+    assert sum("ml_batch" in r for r in runs) == 24
+    assert summary["runs"] == len(runs) + 1
+    rec = json_load(tmp_path / "out" / "records" / "mixed_ml_batch_pairs.db__Ni-rhombo-03.json")
+    assert rec["run"]["kind"] == "end-points" and rec["summary"]["verdict"]["direction"] == "gained"
+
+
+def test_numbered_outputs_and_folders_that_do_not_continue_are_separate_runs(tmp_path):
+    """Stages must continue each other: a rerun from the input beside the first output (numbered
+    copies), run1/ run2/ folders of unrelated pw.x relaxations, and relax1/ relax2/ folders of two
+    different VASP structures (genuine pymatgen-db files) are separate runs, never one run and
+    never a failed one."""
+    from driftwatch.campaign import discover
+    rerun = tmp_path / "rerun"
+    rerun.mkdir()
+    shutil.copy(NUMBERED / "pw.out.1", rerun / "pw.out.1")
+    shutil.copy(NUMBERED / "pw.out.1", rerun / "pw.out")      # started again from the input
+    runs, failed = discover([rerun])
+    assert sorted(r.id for r in runs) == ["rerun/pw.out", "rerun/pw.out.1"] and not failed
+    camp = tmp_path / "camp"
+    shutil.copytree(QE / "bulk_tetragonal_to_cubic", camp / "run1")
+    shutil.copytree(QE / "relax_atoms_to_sites", camp / "run2")
+    runs, failed = discover([camp])
+    assert sorted(r.id for r in runs) == ["camp/run1", "camp/run2"] and not failed
+    vasp = tmp_path / "vasp"
+    shutil.copytree(PUB / "stage_folders" / "relax1", vasp / "relax1")
+    (vasp / "relax2").mkdir()
+    for f in ("vasprun.xml.relax2.gz", "INCAR.relax2.gz"):
+        shutil.copy(PUB / "custodian_double_relax" / f, vasp / "relax2" / f.replace(".relax2", ""))
+    runs, failed = discover([vasp])
+    assert sorted(r.id for r in runs) == ["vasp/relax1", "vasp/relax2"] and not failed
+    assert read_run(vasp / "relax2").natoms != read_run(vasp / "relax1").natoms
