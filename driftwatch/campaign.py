@@ -731,7 +731,8 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     _write_marker(out, roots_abs, sorted(current))
     if report:
-        summary["report"] = str(_build_report(out, summary))
+        summary["report"] = str(_build_report(out, summary, workers=workers or os.cpu_count() or 1,
+                                              progress=_progress_on(progress)))
         summary["elapsed_s"] = time.perf_counter() - t0
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     tty = getattr(sys.stdout, "isatty", lambda: False)()
@@ -859,6 +860,9 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
     }
 
 
-def _build_report(out: Path, summary: dict) -> Path:
+def _build_report(out: Path, summary: dict, *, workers=None, progress=False) -> Path:
+    """The HTML report from the records just written; pages of unchanged records are kept, pages
+    are built in ``workers`` processes when there are many, progress on stderr when asked."""
     from .report import build
-    return build([out / "records"], out / "report", overwrite=True, campaign=summary)
+    return build([out / "records"], out / "report", overwrite=True, campaign=summary,
+                 workers=workers, progress=progress)
