@@ -9,9 +9,11 @@ Cell parameters are not stored in the record; :func:`cell_parameters` derives th
 the obtuse superbase's conorms (p_ij = r_ij², the squares of the 2D root invariant or the 3D root
 products). Its vectors satisfy |v_i|² = Σ_j≠i p_ij and v_i · v_j = -p_ij, which give the Gram matrix of
 the **Selling-reduced cell**: the shortest two (2D) or three (3D) vectors of the obtuse superbase,
-sorted so that a ≤ b (≤ c), every angle between them ≥ 90°. It is the same lattice as the run's cell
-(same area or volume) but not its conventional cell: a square lattice gives a = b, γ = 90°; a
-hexagonal one a = b, γ = 120°; a cubic F one a = b = c = a_conv/√2, angles 90°, 120°, 120°.
+sorted so that a ≤ b (≤ c), every angle between them ≥ 90°. In 3D the three angles are given sorted
+(alpha ≤ beta ≤ gamma), not paired with particular vectors: near a = b = c the pairing jumps from
+frame to frame, the sorted values do not. It is the same lattice as the run's cell (same area or
+volume) but not its conventional cell: a square lattice gives a = b, γ = 90°; a hexagonal one a = b,
+γ = 120°; a cubic F one a = b = c = a_conv/√2, angles 90°, 120°, 120°.
 """
 
 from __future__ import annotations
@@ -73,8 +75,11 @@ def cell_parameters(record: dict) -> dict:
     if dim == 2:
         out = {"a": lengths[:, 0], "b": lengths[:, 1], "gamma": angle(0, 1), "area": size}
     else:
-        out = {"a": lengths[:, 0], "b": lengths[:, 1], "c": lengths[:, 2], "alpha": angle(1, 2),
-               "beta": angle(0, 2), "gamma": angle(0, 1), "volume": size}
+        # angles sorted: near a = b = c the pairing of an angle with two vectors jumps from frame to
+        # frame, the sorted three do not (an fcc lattice gives 90, 120, 120)
+        ang = np.sort(np.stack([angle(1, 2), angle(0, 2), angle(0, 1)], axis=1), axis=1)
+        out = {"a": lengths[:, 0], "b": lengths[:, 1], "c": lengths[:, 2], "alpha": ang[:, 0],
+               "beta": ang[:, 1], "gamma": ang[:, 2], "volume": size}
     for v in out.values():
         v[bad] = np.nan
     return out
@@ -169,4 +174,7 @@ def runs_table(records):
             col = key + "_A" if key + "_A" in row else key
             row[col] = val
         rows.append(row)
-    return _pandas().DataFrame(rows, columns=list(_records.CSV_COLUMNS))
+    df = _pandas().DataFrame(rows, columns=list(_records.CSV_COLUMNS))
+    for col in ("dimension", "n_frames", "n_atoms", "lattice_from_step", "group_from_step"):
+        df[col] = _pandas().to_numeric(df[col], errors="coerce").astype("Int64")
+    return df

@@ -7,7 +7,8 @@ Sources named beside each check:
   project) for the campaign's "runs that change verdict between common symprec choices";
 * a real browser: headless Chromium (Debian package ``chromium``) loads the pages, runs their script
   and dumps the resulting DOM; an injected ``<script>``/``<img onerror>`` must stay text;
-* shared/math.md 1.2 and 1.5 for the two-sided projected-invariant map (vertices, edge reflections);
+* the team's maths reference (projected invariant: vertices (0, 0) square, (0, 1) hexagonal; a path
+  between opposite signs reflects in one edge) for the two-sided map;
 * HTML structure checks (links resolve, no external URLs, everything inline): common practice.
 """
 
@@ -27,9 +28,9 @@ import pytest
 import driftwatch
 from driftwatch import records
 from driftwatch.errors import OutputError
-from driftwatch.report import build
+from driftwatch.report import build, charts
 from driftwatch.report import campaign as camp
-from driftwatch.report import plots
+from driftwatch.report.html import DISCLAIMER
 
 QE = Path(__file__).parent / "data" / "qe"
 RUNS = sorted(p.name for p in QE.iterdir() if (p / "pw.out").exists())
@@ -156,7 +157,8 @@ def test_everything_inline_and_no_external_urls(report):
 
 
 def test_layer_page_has_map_and_bulk_page_has_13_types(report, real_records):
-    # shared/math.md 1.2: square (0, 0) and hexagonal (0, 1) vertices, op/oc edges labelled on the map
+    # maths reference (projected invariant): square (0, 0) and hexagonal (0, 1) vertices, op/oc
+    # edges labelled on the map; International Tables Pearson symbols of the 13 bulk types
     for name, rec in real_records.items():
         text = (report["out"] / "runs" / f"{name}.html").read_text(encoding="utf-8")
         if rec["geometry"]["dimension"] == 2:
@@ -165,9 +167,9 @@ def test_layer_page_has_map_and_bulk_page_has_13_types(report, real_records):
                 assert label in text, label
         else:
             assert "deformation to each of the 13 Bravais types" in text
-            for t in ("mP", "oF", "tI", "hR", "cF"):
-                assert f">{t}<" in text, t
-        assert "not a proof" in text and "root-invariant space" in text
+            for t in ("mP", "mS", "oP", "oS", "oI", "oF", "tP", "tI", "hR", "hP", "cP", "cI", "cF"):
+                assert f'class="legend-entry" data-key="{t}"' in text, t   # one legend entry each
+        assert text.count("not a proof") == 1 and "root-invariant space" in text
         if rec["run"]["fixed_cell"]:
             assert "<b>Fixed cell</b>: every frame has the same cell" in text
 
@@ -253,16 +255,17 @@ def test_page_names_stay_inside_output(tmp_path, real_records):
     build([rec, rec2], out)
     pages = sorted(p.name for p in (out / "runs").iterdir())
     assert len(pages) == 2 and all(".." not in p and "/" not in p for p in pages)
-    assert sorted(p.name for p in out.iterdir()) == ["index.html", "runs"]
+    assert sorted(p.name for p in out.iterdir()) == [".pages.json", "index.html", "runs"]
     assert not list(tmp_path.glob("*.html"))
 
 
-def test_matplotlib_text_is_not_parsed(report):
-    # the hostile record's group symbols end in an unbalanced "$\frac{": with mathtext on, matplotlib
-    # raises a ParseException; the page was built, and the SVG draws the dollar literally
+def test_group_symbols_are_drawn_as_text(report):
+    # the hostile record's group symbols end in an unbalanced "$\frac{<i>g</i>": the SVG legend
+    # shows them literally (no mathtext, markup escaped), and no <i> element came from them
     text = (report["out"] / "runs" / "hostile.html").read_text(encoding="utf-8")
     svgs = [chunk.split("</svg>")[0] for chunk in text.split("<svg")[1:]]
-    assert any("$\\frac{" in svg for svg in svgs)
+    assert any("$\\frac{&lt;i&gt;g&lt;/i&gt;" in svg for svg in svgs)
+    assert not [t for t, _ in _parse(text).tags if t == "i"]
 
 
 def test_campaign_changes_match_spglib(real_records):
@@ -337,14 +340,14 @@ def test_flag_counts_match_records(report, real_records):
 
 
 def test_two_sided_map_convention():
-    # shared/math.md 1.5: the shortest path between opposite signs reflects in one edge; only the x = 0
+    # maths reference: the shortest path between opposite signs reflects in one edge; only the x = 0
     # edge is continuous in the sign*x plane, crossings of y = 0 or x + y = 1 jump between the halves
-    assert not plots._jump((0.02, 0.5), (0.03, 0.5))        # across x = 0 (nearest image (-x, y))
-    assert plots._jump((0.4, 0.01), (0.4, 0.02))           # across y = 0
-    assert plots._jump((0.45, 0.54), (0.46, 0.53))         # across x + y = 1
+    assert not charts._jump((0.02, 0.5), (0.03, 0.5))       # across x = 0 (nearest image (-x, y))
+    assert charts._jump((0.4, 0.01), (0.4, 0.02))          # across y = 0
+    assert charts._jump((0.45, 0.54), (0.46, 0.53))        # across x + y = 1
     # sign 0 frames (on a boundary) are drawn in the half of the step before them
-    assert list(plots._effective_signs([0, 1, 0, -1, 0])) == [1, 1, 1, -1, -1]
-    assert list(plots._effective_signs([0, 0, -1])) == [-1, -1, -1]
+    assert list(charts._effective_signs([0, 1, 0, -1, 0])) == [1, 1, 1, -1, -1]
+    assert list(charts._effective_signs([0, 0, -1])) == [-1, -1, -1]
 
 
 # ------------------------------------------------------------------------------------------- browser

@@ -320,7 +320,8 @@ def chirality(rec) -> Chart | None:
 def _cell_panel(steps, cp, keys, label, title, min_span):
     series = [(k, [None if not np.isfinite(v) else float(v) for v in cp[k]],
                style.CELL_STYLE[k]) for k in keys]
-    names = {"alpha": "α", "beta": "β", "gamma": "γ"}
+    names = {"alpha": "α (smallest)", "beta": "β", "gamma": "γ (largest)"} if len(keys) == 3 \
+        else {"gamma": "γ"}
     marks = series_marks(steps, [(names.get(k, k), ys, st) for k, ys, st in series], "linear")
     return Panel(step_axis(steps), Axis(label, min_span=min_span), marks, title=title,
                  legend="below")
@@ -343,7 +344,7 @@ def cell(rec) -> Chart | None:
     else:
         panels = [_cell_panel(steps, cp, ("a", "b", "c"), "length (Å)", "a ≤ b ≤ c", 0.02),
                   _cell_panel(steps, cp, ("alpha", "beta", "gamma"), "angle (°)",
-                              "α, β, γ (all ≥ 90°)", 0.2),
+                              "the three angles, sorted (all ≥ 90°)", 0.2),
                   _cell_panel(steps, cp, ("volume",), "volume (Å³)", "volume",
                               0.005 * float(np.nanmax(cp["volume"])))]
     return Chart("cell", panels, width=980, height=300,
@@ -365,7 +366,16 @@ def energy(rec) -> Chart | None:
                                          "linear"),
                             title=f"energy (last step {last:.6f} eV)", legend=None))
     pos = [v if v is not None and v > 0 else None for v in fm]
-    if any(v is not None for v in pos):
+    if all(v is None for v in pos) and any(v == 0 for v in fm):
+        panels.append(Panel(step_axis(steps), Axis("max force (eV/Å)", lim=(-1, 1), ticks=[0]),
+                            [Mark("hline", y=[0.0], colour=style.CELL_STYLE["fmax"]["colour"],
+                                  width=1.5),
+                             Mark("text", [0.5], [0.6], coords="axes", anchor="middle",
+                                  texts=["the file gives 0 eV/Å at every step",
+                                         "(e.g. every force vanishes by symmetry)"],
+                                  colour="#444444", fontsize=10)],
+                            title="largest force on an atom", legend=None))
+    elif any(v is not None for v in pos):
         vals = [v for v in pos if v is not None]
         lo, hi = min(vals), max(vals)
         lo, hi = (lo / 2, hi * 2) if hi / lo < 100 else (lo / 1.5, hi * 1.5)
@@ -636,6 +646,25 @@ def run_charts(rec, common=()) -> dict:
 
 # ---------------------------------------------------------------------------------------- campaign
 
+def scatter_points(items) -> list:
+    """Points of :func:`campaign_scatter` from ``[(name, href, record or digest), ...]``: the drift
+    (``summary.drift``: the deformation at the first and last step to the verdict's type) and the
+    root-space distance to that type at the first and last frame."""
+    pts = []
+    for name, href, r in items:
+        d = r["summary"].get("drift") or {}
+        t = d.get("type")
+        if not t:
+            continue
+        f0, f1 = r["frames"][0], r["frames"][-1]
+        pts.append({"name": name, "href": href, "type": t,
+                    "verdict": r["summary"]["verdict"]["direction"],
+                    "dim": r["geometry"].get("dimension"), "def0": d.get("initial"),
+                    "def1": d.get("final"), "dist0": (f0.get("distance") or {}).get(t),
+                    "dist1": (f1.get("distance") or {}).get(t)})
+    return pts
+
+
 def campaign_scatter(points) -> Chart:
     """Initial against final deformation (left) and root-space distance (right), Å, to the type each
     run's verdict is about. ``points``: dicts {name, href, verdict, dim, type, def0, def1, dist0,
@@ -650,8 +679,9 @@ def campaign_scatter(points) -> Chart:
         lo = FLOOR / 1.5
         marks.append(Mark("line", [lo, hi], [lo, hi], colour="#999999", dash=(4, 3), width=0.8,
                           z=1))
-        marks.append(Mark("text", [hi / 4], [hi / 4], texts=["no change"], anchor="end",
-                          valign="bottom", colour="#666666", fontsize=8.5, offset=(-4, 2)))
+        mid = math.sqrt(lo * hi)
+        marks.append(Mark("text", [mid], [mid], texts=["no change"], anchor="start",
+                          valign="top", colour="#666666", fontsize=8.5, offset=(4, -4)))
         label = len(pts) <= 30
         for verdict in ("gained", "lost", "changed", "kept"):
             for dim, marker in ((2, "o"), (3, "s")):

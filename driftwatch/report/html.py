@@ -698,7 +698,8 @@ _CAPTIONS = {
                 "a deformation, so it is larger than the deformation there.",
     "cell": "Cell parameters per ionic step, derived from the record's invariants (the conorms of the "
             "obtuse superbase give the Gram matrix): the Selling-reduced cell, i.e. the shortest "
-            "vectors of the obtuse superbase, a ≤ b (≤ c), every angle ≥ 90°. Same lattice (same "
+            "vectors of the obtuse superbase, a ≤ b (≤ c), every angle ≥ 90° (in 3D the three angles "
+            "are sorted, not tied to a pair of vectors). Same lattice (same "
             "area or volume) as the run's cell, not its conventional cell: a hexagonal layer shows "
             "γ = 120°, a cubic F lattice a = b = c = a_conv/√2 with angles 90°, 120°, 120°.",
     "energy": "Energy relative to the last step (eV) and the largest force on an atom (eV/Å, log "
@@ -819,17 +820,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
                                          ("runs", "analysed", "cached") if k in campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])))
     parts.append(_campaign_tolerance(tol, adv, {n: lab for n, lab, _, _ in runs}))
-    pts = []
-    for name, label, r, _ in runs:
-        d = r["summary"].get("drift")
-        t = (d or {}).get("type")
-        if t:
-            f0, f1 = r["frames"][0], r["frames"][-1]
-            pts.append({"name": label, "href": f"runs/{quote(name)}.html", "type": t,
-                        "verdict": r["summary"]["verdict"]["direction"],
-                        "dim": r["geometry"].get("dimension"), "def0": d.get("initial"),
-                        "def1": d.get("final"), "dist0": (f0.get("distance") or {}).get(t),
-                        "dist1": (f1.get("distance") or {}).get(t)})
+    pts = charts.scatter_points((label, f"runs/{quote(name)}.html", r) for name, label, r, _ in runs)
     gb, lb = [], []
     for _, r in recs:
         spec = _camp.final_spectrum(r)

@@ -17,15 +17,15 @@ __all__ = ["SYSTEM_SHADES", "TYPE_STYLE", "SYSTEM_OF_TYPE", "VERDICT_COLOURS", "
            "type_style", "system_style", "group_colour", "group_system", "CELL_STYLE", "VIRIDIS",
            "viridis"]
 
-# Five shades per crystal system (dark to light, interleaved so that neighbouring numbers differ).
+# Five colours per crystal system (shades and neighbouring hues; neighbouring numbers differ).
 SYSTEM_SHADES = {
-    "triclinic": ("#3a3a3a", "#777777", "#b5b5b5", "#5a5a5a", "#d0d0d0"),
-    "monoclinic": ("#08306b", "#2171b5", "#6baed6", "#084594", "#a6cbe6"),
-    "orthorhombic": ("#b8860b", "#e6550d", "#fdae6b", "#7f2704", "#c77c48"),
-    "tetragonal": ("#00441b", "#238b45", "#74c476", "#006d2c", "#b2dfa5"),
-    "trigonal": ("#7a0177", "#c51b8a", "#f768a1", "#ae017e", "#fbb4d9"),
-    "hexagonal": ("#3f007d", "#6a51a3", "#9e9ac8", "#54278f", "#cbc9e2"),
-    "cubic": ("#99000d", "#cb181d", "#fb6a4a", "#67000d", "#fcae91"),
+    "triclinic": ("#3a3a3a", "#777777", "#a0a0a0", "#5a5a5a", "#8c8c8c"),
+    "monoclinic": ("#08306b", "#2171b5", "#6baed6", "#3f4fa8", "#17a2c4"),
+    "orthorhombic": ("#b8860b", "#e6550d", "#f0a04b", "#7f2704", "#c77c48"),
+    "tetragonal": ("#00441b", "#238b45", "#74c476", "#1b9e77", "#66a61e"),
+    "trigonal": ("#7a0177", "#c51b8a", "#f768a1", "#ae017e", "#e7298a"),
+    "hexagonal": ("#3f007d", "#6a51a3", "#9e9ac8", "#54278f", "#8c6bb1"),
+    "cubic": ("#99000d", "#cb181d", "#fb6a4a", "#67000d", "#e34a33"),
 }
 FAILED_COLOUR = "#dddddd"
 

@@ -405,7 +405,8 @@ def _panel(p: Panel, X, Y, W, H, ids) -> str:
         elif m.kind != "key":
             body.append(_mark(m, sx, sy))
             if m.kind == "points" and m.texts:
-                after.append(_point_labels(m, sx, sy, taken, (X, Y, X + W, Y + H)))
+                after.append(_point_labels(m, sx, sy, taken,
+                                           (px0, py0, px0 + plot_w + right - 4, py0 + plot_h)))
     out.append(f'<g clip-path="url(#{clip})">{"".join(body)}</g>')
     # axes frame (left and bottom)
     if p.frame:
