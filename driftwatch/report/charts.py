@@ -320,8 +320,7 @@ def chirality(rec) -> Chart | None:
 def _cell_panel(steps, cp, keys, label, title, min_span):
     series = [(k, [None if not np.isfinite(v) else float(v) for v in cp[k]],
                style.CELL_STYLE[k]) for k in keys]
-    names = {"alpha": "α (smallest)", "beta": "β", "gamma": "γ (largest)"} if len(keys) == 3 \
-        else {"gamma": "γ"}
+    names = {"alpha": "α", "beta": "β", "gamma": "γ"}
     marks = series_marks(steps, [(names.get(k, k), ys, st) for k, ys, st in series], "linear")
     return Panel(step_axis(steps), Axis(label, min_span=min_span), marks, title=title,
                  legend="below")
@@ -344,7 +343,7 @@ def cell(rec) -> Chart | None:
     else:
         panels = [_cell_panel(steps, cp, ("a", "b", "c"), "length (Å)", "a ≤ b ≤ c", 0.02),
                   _cell_panel(steps, cp, ("alpha", "beta", "gamma"), "angle (°)",
-                              "the three angles, sorted (all ≥ 90°)", 0.2),
+                              "angles, sorted: α ≤ β ≤ γ (all ≥ 90°)", 0.2),
                   _cell_panel(steps, cp, ("volume",), "volume (Å³)", "volume",
                               0.005 * float(np.nanmax(cp["volume"])))]
     return Chart("cell", panels, width=980, height=300,
@@ -565,12 +564,20 @@ def _map_frame(labels):
 
 
 def _map_path(h, v, s, xy, steps, big):
+    """The path: solid where it is continuous in the signed plane, dotted where it crosses an edge
+    that appears once per half (the lattice is the same; the picture jumps to the other half)."""
     marks = []
     jump = [bool(s[i] != s[i + 1] and _jump(xy[i], xy[i + 1])) for i in range(len(h) - 1)]
-    for i in range(len(h) - 1):
-        marks.append(Mark("line", [h[i], h[i + 1]], [v[i], v[i + 1]],
-                          colour="#555555" if jump[i] else "#222222",
-                          width=0.9 if jump[i] else 1.2, dash=(1, 2) if jump[i] else None, z=2))
+    for dotted in (False, True):
+        px, py = [], []
+        for i in range(len(h) - 1):
+            if jump[i] == dotted:
+                px += [float(h[i]), float(h[i + 1]), None]
+                py += [float(v[i]), float(v[i + 1]), None]
+        if px:
+            marks.append(Mark("line", px, py, colour="#555555" if dotted else "#222222",
+                              width=0.9 if dotted else 1.2, dash=(1, 2) if dotted else None, z=2,
+                              key="path across an edge" if dotted else "path"))
     lo, hi = min(steps), max(steps)
     cols = [style.viridis(0.0 if hi == lo else (st - lo) / (hi - lo)) for st in steps]
     marks.append(Mark("points", list(h), list(v), marker="o", size=4.5 if big else 6, colours=cols,

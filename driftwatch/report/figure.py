@@ -70,8 +70,8 @@ def _panel(fig, ax, p: Panel, width_px, height_px):
                 handles.append((Patch(facecolor=m.colour, edgecolor="#555555", lw=0.4), m.label))
             else:
                 handles.append((Line2D([], [], color=m.colour, marker=m.marker or "",
-                                       ls=_ls(m.dash), mfc="none" if m.hollow else m.colour),
-                                m.label))
+                                       ls=_ls(m.dash), mfc="none" if m.hollow else m.colour,
+                                       gid="key"), m.label))
     for axis, which, length in ((p.x, "x", width_px * 0.7), (p.y, "y", height_px * 0.6)):
         lo, hi = lims[which]
         a = ax.xaxis if which == "x" else ax.yaxis

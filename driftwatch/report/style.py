@@ -126,15 +126,17 @@ def group_colour(number: int, kind: str = "space") -> str:
     return SYSTEM_SHADES[system][int(number) % 5]
 
 
-# matplotlib's viridis at 0, 0.1, ..., 1 (colours of ionic steps on the layer map)
-VIRIDIS = ("#440154", "#482475", "#414487", "#355f8d", "#2a788e", "#21918c", "#22a884", "#44bf70",
-           "#7ad151", "#bddf26", "#fde725")
+# matplotlib's viridis at 0, 1/16, ..., 1 (colours of ionic steps on the layer map)
+VIRIDIS = ("#440154", "#48186a", "#472d7b", "#424086", "#3b528b", "#33638d", "#2c728e", "#26828e",
+           "#21918c", "#1fa088", "#28ae80", "#3fbc73", "#5ec962", "#84d44b", "#addc30", "#d8e219",
+           "#fde725")
 
 
 def viridis(t: float) -> str:
-    """Hex colour of ``t`` in [0, 1] on viridis (linear between the 11 anchors above)."""
-    t = min(1.0, max(0.0, float(t))) * 10
-    i = min(int(t), 9)
+    """Hex colour of ``t`` in [0, 1] on viridis (linear between the 17 anchors above)."""
+    n = len(VIRIDIS) - 1
+    t = min(1.0, max(0.0, float(t))) * n
+    i = min(int(t), n - 1)
     f = t - i
     a, b = VIRIDIS[i], VIRIDIS[i + 1]
     rgb = [round(int(a[k:k + 2], 16) * (1 - f) + int(b[k:k + 2], 16) * f) for k in (1, 3, 5)]

@@ -581,8 +581,8 @@ def _text(m: Mark, sx, sy, px0, py0, pw, ph) -> str:
 
 def _colorbar(cb, x, y, h, ids) -> str:
     gid = ids()
-    stops = "".join(f'<stop offset="{i / 10:.1f}" stop-color="{c}"/>' for i, c in
-                    enumerate(VIRIDIS))
+    stops = "".join(f'<stop offset="{i / (len(VIRIDIS) - 1):.4f}" stop-color="{c}"/>'
+                    for i, c in enumerate(VIRIDIS))
     lo, hi = float(cb["lo"]), float(cb["hi"])
     ticks, labels = linear_ticks(lo, hi, n=5, integer=True)
     t = []
