@@ -435,3 +435,88 @@ def test_parallel_build_gives_the_same_pages(report, tmp_path):
         a = page.read_text(encoding="utf-8").replace(str(report["src"]), "SRC")
         b = (par / rel).read_text(encoding="utf-8").replace(str(report["src"]), "SRC")
         assert a == b, rel
+
+
+# ------------------------------------------------------------------------ notices, links, caching
+
+def test_one_notice_per_page(report):
+    # the disclaimer (flags are diagnostics, not proofs of stability) appears exactly once on every
+    # page, index and run pages alike
+    pages = [report["index"], *(report["out"] / "runs").glob("*.html")]
+    assert len(pages) >= 4
+    for page in pages:
+        text = page.read_text(encoding="utf-8")
+        assert text.count(html.escape(DISCLAIMER)) == 1, page
+        assert text.count("not a proof") == 1, page
+
+
+def test_campaign_scatter_points_name_and_link_their_run(report):
+    # parsed SVG of the index: every scatter point sits in an <a> whose href is a run page that
+    # exists, and carries a <title> naming that run
+    import re
+    text = report["index"].read_text(encoding="utf-8")
+    chart = text[text.index('data-chart="campaign"'):]
+    chart = chart[:chart.index("</svg>")]
+    links = re.findall(r'<a href="([^"]+)"><path [^>]*><title>([^<:]+):', chart)
+    assert links
+    for href, name in links:
+        assert (report["out"] / href).is_file(), href
+        assert Path(href).stem == name.replace("/", "_")
+    assert {Path(h).stem for h, _ in links} == {n for n in report["names"]
+                                                if (report["out"] / "runs" / f"{n}.html").is_file()}
+
+
+def _stamps(folder):
+    return {p.name: (p.stat().st_mtime_ns, p.stat().st_ino) for p in (folder / "runs").glob("*.html")}
+
+
+def test_unchanged_pages_are_not_rebuilt(real_records, tmp_path, capsys):
+    # a second build from the same records rewrites no run page (same inode and mtime) but the index;
+    # a changed record gets its page rebuilt; kept and rebuilt pages equal a cold build byte for byte.
+    # Progress is printed on stderr when asked for (real output, captured).
+    src = tmp_path / "records"
+    for name, rec in real_records.items():
+        records.write_json(rec, src / f"{name}.json")
+    out = tmp_path / "site"
+    build([src], out, progress="on")
+    err = capsys.readouterr().err
+    assert f"{len(real_records)} run pages (0 unchanged, {len(real_records)} built)" in err
+    before = _stamps(out)
+    build([src], out, overwrite=True, progress="on")
+    assert f"({len(real_records)} unchanged, 0 built)" in capsys.readouterr().err
+    assert _stamps(out) == before
+    name = sorted(real_records)[0]
+    changed = copy.deepcopy(real_records[name])
+    changed["run"]["title"] = "retitled run"
+    records.write_json(changed, src / f"{name}.json")
+    build([src], out, overwrite=True, progress="off")
+    after = _stamps(out)
+    assert after[f"{name}.html"] != before[f"{name}.html"]
+    assert {k: v for k, v in after.items() if k != f"{name}.html"} == \
+        {k: v for k, v in before.items() if k != f"{name}.html"}
+    assert "retitled run" in (out / "runs" / f"{name}.html").read_text(encoding="utf-8")
+    cold = tmp_path / "cold"
+    build([src], cold, progress="off")
+    for page in sorted((cold / "runs").glob("*.html")) + [cold / "index.html"]:
+        assert page.read_bytes() == (out / page.relative_to(cold)).read_bytes(), page.name
+    assert not capsys.readouterr().err          # progress="off": nothing printed
+
+
+def test_warm_audit_keeps_every_run_page(tmp_path):
+    # a real audit twice on the same pw.x runs: the second (everything cached) rewrites no run page
+    from driftwatch.campaign import audit
+    out = tmp_path / "audit"
+    audit([QE], out, workers=1, progress="off", quiet=True)
+    before = _stamps(out / "report")
+    s = audit([QE], out, workers=1, progress="off", quiet=True)
+    assert s["cached"] == s["runs"] and _stamps(out / "report") == before and before
+
+
+@needs_browser
+@pytest.mark.browser
+def test_scatter_links_are_links_in_chromium(report):
+    # real browser: the index's DOM holds the scatter's SVG <a> elements, pointing at run pages
+    dom = _chromium("--dump-dom", report["index"].as_uri())
+    hrefs = [a.get("href") for t, a in _parse(dom).tags if t == "a" and
+             str(a.get("href", "")).startswith("runs/")]
+    assert len(hrefs) >= 2 * len(RUNS)          # table rows and scatter points (both panels)
