@@ -180,27 +180,32 @@ def _span(series):
 
 
 def series_marks(steps, series, scale="log", *, every_max=40) -> list:
-    """Line marks for ``[(key, values, style), ...]`` drawn in that order; later series that
-    coincide with an earlier one are drawn hollow and dashed over it and named in the legend."""
+    """Line marks for ``[(key, values, style), ...]`` (or ``(key, values, style, steps)`` with
+    their own steps) drawn in that order. A series that coincides with earlier ones (same steps,
+    values within the plot's resolution) is drawn hollow and dashed over them, its markers a size
+    larger for each earlier one (concentric, so every colour shows), and its legend entry names the
+    first of them."""
     marks = []
-    span = _span(series) if scale != "log" else None
-    n = len(steps)
-    stride = 1 if n <= every_max else math.ceil(n / 20)
+    span = _span([(k, ys, st) for k, ys, st, *_ in series]) if scale != "log" else None
     drawn = []
-    for k, (key, ys, st) in enumerate(series):
+    for k, (key, ys, st, *own) in enumerate(series):
+        xs = list(own[0]) if own else list(steps)
+        n = len(xs)
+        stride = 1 if n <= every_max else math.ceil(n / 20)
+        under = [(dk, c) for dk, dxs, dys in drawn
+                 if dxs == xs and (c := coincident(dys, ys, scale, span))]
         label = str(key)
-        same = next(((dk, c) for dk, dys in drawn
-                     if (c := coincident(dys, ys, scale, span))), None)
-        if same:
-            label = f"{key} ({same[1]} {same[0]}{' at every step' if n > 1 else ''})"
+        if under:
+            label = f"{key} ({under[0][1]} {under[0][0]}{' at every step' if n > 1 else ''})"
         dash = st.get("dash")
-        if same and not dash:
+        if under and not dash:
             dash = (4, 2)
-        marks.append(Mark("line", list(steps), list(ys), colour=st["colour"], marker=st["marker"],
-                          dash=dash, width=1.1 if same else 1.5, size=6.5 if same else 5.0,
-                          hollow=bool(same) or st["marker"] in ("x", "+"), label=label, key=str(key),
-                          z=3 + k, every=None if stride == 1 else ((k * 3) % stride, stride)))
-        drawn.append((key, ys))
+        marks.append(Mark("line", xs, list(ys), colour=st["colour"], marker=st["marker"],
+                          dash=dash, width=1.1 if under else 1.5, size=5.0 + 2.5 * len(under),
+                          hollow=bool(under) or st["marker"] in ("x", "+"), label=label,
+                          key=str(key), z=3 + k,
+                          every=None if stride == 1 else ((k * 3) % stride, stride)))
+        drawn.append((key, xs, ys))
     return marks
 
 
@@ -484,23 +489,28 @@ def displacement(rec) -> Chart | None:
                                                     d.get("max")))
     if not series:
         return None
-    marks, vals, steps_all = [], [], []
-    for k, ((g, lab), pts) in enumerate(sorted(series.items())):
+    lines, vals, steps_all, maxes = [], [], [], []
+    for (g, lab), pts in sorted(series.items()):
         pts.sort()
         st = [p[0] for p in pts]
         steps_all += st
         rms, mx = _floor([p[1] for p in pts]), _floor([p[2] for p in pts])
         vals += rms + mx
         col = style.group_colour(g, kind)
-        same = coincident(rms, mx, "log")
-        marks.append(Mark("line", st, rms, colour=col, marker="o", width=1.5, z=3 + 2 * k,
-                          label=lab, key=str(g)))
-        marks.append(Mark("line", st, mx, colour=col, marker="v", dash=(4, 2), width=1.0,
-                          hollow=True, size=6.5, z=4 + 2 * k, key=f"{g} max",
-                          label=f"{lab} max (= RMS at every step)" if same else None))
+        same = coincident(rms, mx, "log") is not None
+        lines.append((lab, rms, {"colour": col, "marker": "o", "dash": None}, st, g))
+        if not same:      # max drawn only where it differs from the RMS
+            maxes.append((f"{g} max", mx, {"colour": col, "marker": "v", "dash": (4, 2)}, st))
+    marks = series_marks(None, [ln[:4] for ln in lines])
+    for m, ln in zip(marks, lines):
+        m.key = str(ln[4])
+    for k, (key, mx, st, xs) in enumerate(maxes):
+        marks.append(Mark("line", xs, mx, colour=st["colour"], marker="v", dash=(4, 2), width=1.0,
+                          hollow=True, size=6.0, z=50 + k, key=key))
     marks += [Mark("key", colour="#444444", marker="o", label="solid: RMS"),
               Mark("key", colour="#444444", marker="v", dash=(4, 2), hollow=True,
-                   label="dashed: max")]
+                   label="dashed: max" + (" (not drawn where max = RMS)"
+                                          if len(maxes) < len(lines) else ""))]
     panel = Panel(step_axis(sorted(set(steps_all))), _log_axis("displacement (Å)", vals), marks,
                   title="atomic displacement to each group spglib found" + _FLOOR_NOTE,
                   legend="right")

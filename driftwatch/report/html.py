@@ -571,6 +571,11 @@ def _summary_section(rec):
     rows.append(("source", f"<span class=\"mono\">{e(run.get('source'))}</span> "
                            f"(format {e(run.get('format'))})"))
     body = _kv(rows)
+    if rec.get("upgraded_from"):
+        body += (f'<p class="fact"><b>Older record</b>: written as {e(rec["upgraded_from"])} and '
+                 "judged again here from its own frames with this version's rules (its frames carry "
+                 "no group relations, so the group level compares group numbers and operation "
+                 "counts only).</p>")
     if len(rec.get("frames") or []) == 1:
         body += ('<p class="fact"><b>One frame</b>: the run holds a single structure, so nothing can '
                  "drift; the verdict compares the structure with itself and the plots show that one "
@@ -835,8 +840,9 @@ def _index_page(runs, bad, failed, campaign) -> str:
                          f"({len(pts)} runs; circles layers, squares bulk). Every point links to its "
                          f"run's page and names it on hover"
                          + (" and beside it" if len(pts) <= 30 else "") + ". Points on the dashed "
-                         f"diagonal did not move; runs that reached the type fall onto the bottom "
-                         f"axis. Near rectangular lattices the root-space distance is the larger of "
+                         f"diagonal did not move; values at or below {charts.FLOOR:g} Å are drawn on "
+                         f"the axes (runs that reached the type fall onto the bottom axis, runs that "
+                         f"started at it onto the left one). Near rectangular lattices the root-space distance is the larger of "
                          f"the two (it grows like the square root of a deformation)."))
     parts.append('<div class="grid2">')
     parts.append(_figure(draw(charts.breakpoint_histogram(gb, lb, common,

@@ -54,9 +54,9 @@ def _nice(span, n, integer=False):
 
 
 def _decimals(step):
-    if step >= 1:
+    if step >= 1 and abs(step - round(step)) < 1e-9:
         return 0
-    d = -math.floor(math.log10(step) + 1e-9)
+    d = max(0, -math.floor(math.log10(step) + 1e-9))
     while d < 12 and abs(step * 10 ** d - round(step * 10 ** d)) > 1e-6:
         d += 1
     return d
