@@ -921,12 +921,13 @@ def _runs_table(runs, failed=(), skipped=()):
                                                         f"{f.get('include')})"
         why = str(why or "")
         short = why if len(why) <= 120 else why[:117] + "…"
-        rows.append(f'<tr><td class="err"><span class="mono">{e(f.get("run"))}</span><br>'
+        rows.append((str(f.get("run") or ""),
+                     f'<tr><td class="err"><span class="mono">{e(f.get("run"))}</span><br>'
                     f'<span class="muted" title="{e(why)}">{e(short)}</span></td><td>—</td>'
                     f"{_td_num(None)}"
                     f'<td data-v="{kind}">{_badge(kind, "v-failed")}</td>'
                     + "<td>—</td>" * 2 + _td_num(None) * 2 + "<td>—</td><td data-v=\"\">—</td>"
-                    + _td_num(None) + "</tr>")
+                    + _td_num(None) + "</tr>"))
     for name, label, rec, origin in runs:
         r, g = rec["run"], rec["geometry"]
         v = records.verdict_fields(rec)
@@ -935,7 +936,7 @@ def _runs_table(runs, failed=(), skipped=()):
         kind = "layer" if g.get("dimension") == 2 else "bulk"
         grp = (e(v["group_initial"]) if v["group_initial"] == v["group_final"]
                else f"{e(v['group_initial'])} →<br>{e(v['group_final'])}")
-        rows.append(
+        rows.append((str(label),
             f'<tr><td><a href="runs/{quote(name)}.html">{e(label)}</a>'
             f'<br><span class="muted">{e(r.get("title") or "")}</span>'
             + (f' <span class="badge warning">{len(r["warnings"])} warning'
@@ -952,7 +953,8 @@ def _runs_table(runs, failed=(), skipped=()):
             f"<td data-v=\"{len(codes):03d} {e(' '.join(codes))}\">"
             f"{' '.join(_badge(c, 'c-' + concerns.get(c, '')) for c in codes) or '—'}</td>"
             f"{_td_num(v['recommended_symprec'], 'Å')}"
-            "</tr>")
+            "</tr>"))
+    rows = [html_ for _, html_ in sorted(rows, key=lambda kv: kv[0].lower())]
     head = ("<tr><th>run</th><th>formula</th><th>steps</th><th>verdict</th><th>lattice</th>"
             "<th>drift type</th><th>drift from</th><th>drift to</th><th>group</th>"
             "<th>flags</th><th>suggested symprec</th></tr>")
