@@ -425,11 +425,13 @@ def test_table_sorts_numerically_in_chromium(report):
     assert first == sorted(first) and second == sorted(first, reverse=True)
 
 
-def test_parallel_build_gives_the_same_pages(report, tmp_path):
-    # pages built in worker processes are byte-identical to pages built in this process
+def test_parallel_build_gives_the_same_pages(report, tmp_path, capsys):
+    # pages built in worker processes are byte-identical to pages built in this process (the
+    # progress line counts every page as built: none came from a cache)
     serial = report["out"]
     par = tmp_path / "par"
-    build([report["src"]], par, workers=2)
+    build([report["src"]], par, workers=2, progress="on")
+    assert f"{len(report['names'])} run pages (0 unchanged" in capsys.readouterr().err
     for page in [serial / "index.html", *sorted((serial / "runs").glob("*.html"))]:
         rel = page.relative_to(serial)
         a = page.read_text(encoding="utf-8").replace(str(report["src"]), "SRC")

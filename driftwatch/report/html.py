@@ -1034,7 +1034,7 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
         campaign: optional audit summary dict (its ``failed`` and ``skipped`` runs, ``flag_counts``
             and ``tolerance`` advice are shown).
         workers: processes that build run pages (None: 1 for fewer than 32 pages to build, else up
-            to 4; never more than one per 8 pages to build).
+            to 4; never more than one per 3 pages to build).
         progress: "auto" (on stderr when it is a terminal; ``$DRIFTWATCH_PROGRESS`` overrides), "on"
             or True, "off" or False.
     """
@@ -1114,7 +1114,7 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
     n = len(todo)
     if workers is None:
         workers = 1 if n < 32 else min(4, os.cpu_count() or 1)
-    workers = max(1, min(int(workers), n // 8))
+    workers = max(1, min(int(workers), n // 3))
     if workers <= 1:
         serial(todo)
     else:
