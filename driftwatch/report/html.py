@@ -996,8 +996,9 @@ def _problems(bad, failed, skipped=()):
 # -------------------------------------------------------------------------------------------- build
 
 def _write_file(root: Path, path: Path, text: str) -> Path:
-    """Atomic write inside the report folder (``write_text_atomic`` applies the user's umask)."""
-    return _records.write_text_atomic(_inside(root, path), text)
+    """Atomic write inside the report folder (``write_text_atomic`` applies the user's umask). No
+    fsync: a page lost to a power cut has no key and is built again by the next build."""
+    return _records.write_text_atomic(_inside(root, path), text, fsync=False)
 
 
 def _prepare_output(output, overwrite):

@@ -28,7 +28,8 @@ def _x(s) -> str:
 
 
 def _f(v) -> str:
-    return f"{v:.2f}".rstrip("0").rstrip(".") if abs(v) < 1e6 else f"{v:.0f}"
+    """A coordinate in px: one decimal is a tenth of a pixel."""
+    return "%.1f" % v
 
 
 def _tw(text, size) -> float:
