@@ -6,17 +6,19 @@ Public interface (stable):
 - :mod:`driftwatch.lattice3d` -- root products and distances to the 13 non-triclinic Bravais types.
 - :func:`read_run` -- read a relaxation (file or run folder) into a :class:`~driftwatch.adapters.Run`.
 - :func:`analyze` -- the run record (what ``driftwatch inspect PATH --json`` prints).
+- :mod:`driftwatch.plots` -- matplotlib Figures of a record (what the HTML report draws).
+- :mod:`driftwatch.tables` -- records as pandas DataFrames (per frame, per run).
 
 Heavy modules (ASE readers, spglib) load on first use, so ``import driftwatch`` stays light.
 """
 
 __version__ = "0.1.0"
-__all__ = ["lattice2d", "lattice3d", "read_run", "analyze", "__version__"]
+__all__ = ["lattice2d", "lattice3d", "plots", "tables", "read_run", "analyze", "__version__"]
 
 
 def __getattr__(name):
     import importlib
-    if name in ("lattice2d", "lattice3d"):
+    if name in ("lattice2d", "lattice3d", "plots", "tables"):
         return importlib.import_module(f"driftwatch.{name}")
     if name == "read_run":
         from .adapters import read_run

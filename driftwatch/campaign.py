@@ -53,6 +53,7 @@ from pathlib import Path
 from . import records
 from .cache import Cache, FileDigests, freeze_inputs, run_key
 from .cache import versions as _versions
+from .tasks import Progress, mp_context, progress_on
 from .rules import campaign_advice
 from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
 
@@ -403,16 +404,6 @@ def _chunk_size(n: int, workers: int) -> int:
     return max(1, min(4, n // max(1, 4 * workers)))
 
 
-def _mp_context():
-    import multiprocessing as mp
-    # fork is fastest but unsafe once threads run (a Dask client, a progress monitor): then forkserver.
-    if "fork" in mp.get_all_start_methods() and threading.active_count() == 1:
-        return mp.get_context("fork")
-    if "forkserver" in mp.get_all_start_methods():
-        return mp.get_context("forkserver")
-    return mp.get_context("spawn")
-
-
 def _failed_chunk(chunk, why: str, broken: bool = False) -> list[dict]:
     out = [{"run": rid, "source": path, "ok": False, "cacheable": False,
             "error": f"{path}: {why}"} for rid, path in chunk]
@@ -504,7 +495,7 @@ def _catch_sigterm(note: str = ""):
 
 def _new_pool(workers, cfg):
     from concurrent.futures import ProcessPoolExecutor
-    ctx = _mp_context()
+    ctx = mp_context()
     parent = os.getpid() if ctx.get_start_method() in ("fork", "spawn") else None
     ex = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_worker,
                              initargs=(cfg, parent, os.getpid()))
@@ -596,84 +587,6 @@ def _dask(todo, cfg, scheduler):
 
 
 # ----------------------------------------------------------------------------- progress
-class Progress:
-    """Progress of a long task on stderr, as the place it goes to wants it.
-
-    On a terminal: one line rewritten in place (carriage return), at most 4 times a second. In a
-    file or pipe (a batch job's log): a plain line with the date and time every ``interval``
-    seconds and at the end, never a carriage return. ``enabled=False``: nothing.
-    """
-
-    def __init__(self, total: int, what: str, *, enabled: bool = True, initial: int = 0,
-                 interval: float = 30.0, unit: str = "runs", stream=None):
-        self.stream = sys.stderr if stream is None else stream
-        self.enabled = enabled and total > 0
-        self.total, self.n, self.failed, self.what, self.unit = total, initial, 0, what, unit
-        self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
-        self.interval = 0.25 if self.tty else interval
-        self.t0 = self._last = time.monotonic()
-        self._start = initial
-        if self.enabled and not self.tty:
-            self._line(f"{total} {unit} to do" + (f", {initial} already done (cache)" if initial
-                                                   else ""))
-
-    def _line(self, text: str) -> None:
-        stamp = time.strftime("%Y-%m-%d %H:%M:%S")
-        self.stream.write(f"{stamp} {self.what}: {text}\n")
-        self.stream.flush()
-
-    def _text(self) -> str:
-        done = self.n - self._start
-        spent = time.monotonic() - self.t0
-        left = ""
-        if 0 < done and self.n < self.total:
-            left = f", about {_duration(spent / done * (self.total - self.n))} left"
-        failed = f", {self.failed} failed" if self.failed else ""
-        return (f"{self.n}/{self.total} {self.unit} ({100 * self.n // self.total} %){failed}, "
-                f"{_duration(spent)} elapsed{left}")
-
-    def update(self, ok: bool = True) -> None:
-        if not self.enabled:
-            return
-        self.n += 1
-        self.failed += not ok
-        now = time.monotonic()
-        if now - self._last < self.interval and self.n < self.total:
-            return
-        self._last = now
-        if self.tty:
-            end = "\n" if self.n == self.total else ""
-            self.stream.write(f"\r{self.what}: {self._text()}\033[K{end}")
-            self.stream.flush()
-        else:
-            self._line(self._text())
-
-    def close(self) -> None:
-        if self.enabled and self.tty and self.n < self.total:
-            self.stream.write("\n")
-            self.stream.flush()
-
-
-def _duration(seconds: float) -> str:
-    seconds = int(round(seconds))
-    if seconds < 120:
-        return f"{seconds} s"
-    if seconds < 7200:
-        return f"{seconds // 60} min"
-    return f"{seconds // 3600} h {seconds % 3600 // 60:02d} min"
-
-
-def _progress_on(progress) -> bool:
-    """``"auto"``: on, unless ``$DRIFTWATCH_PROGRESS`` says off; ``"on"``/``"off"`` as said. Where it
-    goes decides its form (:class:`Progress`)."""
-    if progress in (True, "on"):
-        return True
-    if progress in (False, "off"):
-        return False
-    env = os.environ.get("DRIFTWATCH_PROGRESS", "").strip().lower()
-    return env not in ("0", "off", "false", "no")
-
-
 # ----------------------------------------------------------------------------- output folder
 _OWN_PATHS = ("records", "records/stale", ".cache", "report", "report/runs", MARKER, LOCK,
               "campaign.csv", "campaign.json")
@@ -1072,7 +985,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                         executor=executor, note=f"driftwatch: terminated by SIGTERM: workers "
                         f"stopped; runs finished so far are kept in {records.shown(out)}/.cache; "
                         f"re-run the same command to finish\n")
-    bar = Progress(len(runs), "driftwatch audit", enabled=_progress_on(progress),
+    bar = Progress(len(runs), "driftwatch audit", enabled=progress_on(progress),
                    initial=len(runs) - len(todo))
     try:
         for r in gen:
@@ -1099,7 +1012,8 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     _write_marker(out, roots_abs, sorted(current))
     if report:
-        summary["report"] = str(_build_report(out, summary))
+        summary["report"] = str(_build_report(out, summary, workers=workers or os.cpu_count() or 1,
+                                              progress=progress_on(progress)))
         summary["elapsed_s"] = time.perf_counter() - t0
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
     if not quiet:          # the answer on stdout, as a Unix tool gives it (pipes, redirects)
@@ -1240,6 +1154,9 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
     }
 
 
-def _build_report(out: Path, summary: dict) -> Path:
+def _build_report(out: Path, summary: dict, *, workers=None, progress=False) -> Path:
+    """The HTML report from the records just written; pages of unchanged records are kept, pages
+    are built in ``workers`` processes when there are many, progress on stderr when asked."""
     from .report import build
-    return build([out / "records"], out / "report", overwrite=True, campaign=summary)
+    return build([out / "records"], out / "report", overwrite=True, campaign=summary,
+                 workers=workers, progress=progress)

@@ -7,7 +7,8 @@ Sources named beside each check:
   project) for the campaign's "runs that change verdict between common symprec choices";
 * a real browser: headless Chromium (Debian package ``chromium``) loads the pages, runs their script
   and dumps the resulting DOM; an injected ``<script>``/``<img onerror>`` must stay text;
-* shared/math.md 1.2 and 1.5 for the two-sided projected-invariant map (vertices, edge reflections);
+* the team's maths reference (projected invariant: vertices (0, 0) square, (0, 1) hexagonal; a path
+  between opposite signs reflects in one edge) for the two-sided map;
 * HTML structure checks (links resolve, no external URLs, everything inline): common practice.
 """
 
@@ -27,9 +28,9 @@ import pytest
 import driftwatch
 from driftwatch import records
 from driftwatch.errors import OutputError
-from driftwatch.report import build
+from driftwatch.report import build, charts
 from driftwatch.report import campaign as camp
-from driftwatch.report import plots
+from driftwatch.report.html import DISCLAIMER
 
 QE = Path(__file__).parent / "data" / "qe"
 RUNS = sorted(p.name for p in QE.iterdir() if (p / "pw.out").exists())
@@ -156,7 +157,8 @@ def test_everything_inline_and_no_external_urls(report):
 
 
 def test_layer_page_has_map_and_bulk_page_has_13_types(report, real_records):
-    # shared/math.md 1.2: square (0, 0) and hexagonal (0, 1) vertices, op/oc edges labelled on the map
+    # maths reference (projected invariant): square (0, 0) and hexagonal (0, 1) vertices, op/oc
+    # edges labelled on the map; International Tables Pearson symbols of the 13 bulk types
     for name, rec in real_records.items():
         text = (report["out"] / "runs" / f"{name}.html").read_text(encoding="utf-8")
         if rec["geometry"]["dimension"] == 2:
@@ -165,9 +167,9 @@ def test_layer_page_has_map_and_bulk_page_has_13_types(report, real_records):
                 assert label in text, label
         else:
             assert "deformation to each of the 13 Bravais types" in text
-            for t in ("mP", "oF", "tI", "hR", "cF"):
-                assert f">{t}<" in text, t
-        assert "not a proof" in text and "root-invariant space" in text
+            for t in ("mP", "mS", "oP", "oS", "oI", "oF", "tP", "tI", "hR", "hP", "cP", "cI", "cF"):
+                assert f'class="legend-entry" data-key="{t}"' in text, t   # one legend entry each
+        assert text.count("not a proof") == 1 and "root-invariant space" in text
         if rec["run"]["fixed_cell"]:
             assert "<b>Fixed cell</b>: every frame has the same cell" in text
 
@@ -253,16 +255,17 @@ def test_page_names_stay_inside_output(tmp_path, real_records):
     build([rec, rec2], out)
     pages = sorted(p.name for p in (out / "runs").iterdir())
     assert len(pages) == 2 and all(".." not in p and "/" not in p for p in pages)
-    assert sorted(p.name for p in out.iterdir()) == ["index.html", "runs"]
+    assert sorted(p.name for p in out.iterdir()) == [".pages.json", "index.html", "runs"]
     assert not list(tmp_path.glob("*.html"))
 
 
-def test_matplotlib_text_is_not_parsed(report):
-    # the hostile record's group symbols end in an unbalanced "$\frac{": with mathtext on, matplotlib
-    # raises a ParseException; the page was built, and the SVG draws the dollar literally
+def test_group_symbols_are_drawn_as_text(report):
+    # the hostile record's group symbols end in an unbalanced "$\frac{<i>g</i>": the SVG legend
+    # shows them literally (no mathtext, markup escaped), and no <i> element came from them
     text = (report["out"] / "runs" / "hostile.html").read_text(encoding="utf-8")
     svgs = [chunk.split("</svg>")[0] for chunk in text.split("<svg")[1:]]
-    assert any("$\\frac{" in svg for svg in svgs)
+    assert any("$\\frac{&lt;i&gt;g&lt;/i&gt;" in svg for svg in svgs)
+    assert not [t for t, _ in _parse(text).tags if t == "i"]
 
 
 def test_campaign_changes_match_spglib(real_records):
@@ -337,14 +340,14 @@ def test_flag_counts_match_records(report, real_records):
 
 
 def test_two_sided_map_convention():
-    # shared/math.md 1.5: the shortest path between opposite signs reflects in one edge; only the x = 0
+    # maths reference: the shortest path between opposite signs reflects in one edge; only the x = 0
     # edge is continuous in the sign*x plane, crossings of y = 0 or x + y = 1 jump between the halves
-    assert not plots._jump((0.02, 0.5), (0.03, 0.5))        # across x = 0 (nearest image (-x, y))
-    assert plots._jump((0.4, 0.01), (0.4, 0.02))           # across y = 0
-    assert plots._jump((0.45, 0.54), (0.46, 0.53))         # across x + y = 1
+    assert not charts._jump((0.02, 0.5), (0.03, 0.5))       # across x = 0 (nearest image (-x, y))
+    assert charts._jump((0.4, 0.01), (0.4, 0.02))          # across y = 0
+    assert charts._jump((0.45, 0.54), (0.46, 0.53))        # across x + y = 1
     # sign 0 frames (on a boundary) are drawn in the half of the step before them
-    assert list(plots._effective_signs([0, 1, 0, -1, 0])) == [1, 1, 1, -1, -1]
-    assert list(plots._effective_signs([0, 0, -1])) == [-1, -1, -1]
+    assert list(charts._effective_signs([0, 1, 0, -1, 0])) == [1, 1, 1, -1, -1]
+    assert list(charts._effective_signs([0, 0, -1])) == [-1, -1, -1]
 
 
 # ------------------------------------------------------------------------------------------- browser
@@ -422,13 +425,100 @@ def test_table_sorts_numerically_in_chromium(report):
     assert first == sorted(first) and second == sorted(first, reverse=True)
 
 
-def test_parallel_build_gives_the_same_pages(report, tmp_path):
-    # pages built in worker processes are byte-identical to pages built in this process
+def test_parallel_build_gives_the_same_pages(report, tmp_path, capsys):
+    # pages built in worker processes are byte-identical to pages built in this process (the
+    # progress line counts every page as built: none came from a cache)
     serial = report["out"]
     par = tmp_path / "par"
-    build([report["src"]], par, workers=2)
+    build([report["src"]], par, workers=2, progress="on")
+    assert f"{len(report['names'])} run pages (0 unchanged" in capsys.readouterr().err
     for page in [serial / "index.html", *sorted((serial / "runs").glob("*.html"))]:
         rel = page.relative_to(serial)
         a = page.read_text(encoding="utf-8").replace(str(report["src"]), "SRC")
         b = (par / rel).read_text(encoding="utf-8").replace(str(report["src"]), "SRC")
         assert a == b, rel
+
+
+# ------------------------------------------------------------------------ notices, links, caching
+
+def test_one_notice_per_page(report):
+    # the disclaimer (flags are diagnostics, not proofs of stability) appears exactly once on every
+    # page, index and run pages alike
+    pages = [report["index"], *(report["out"] / "runs").glob("*.html")]
+    assert len(pages) >= 4
+    for page in pages:
+        text = page.read_text(encoding="utf-8")
+        assert text.count(html.escape(DISCLAIMER)) == 1, page
+        assert text.count("not a proof") == 1, page
+
+
+def test_campaign_scatter_points_name_and_link_their_run(report):
+    # parsed SVG of the index: every scatter point sits in an <a> whose href is a run page that
+    # exists, and carries a <title> naming that run
+    import re
+    text = report["index"].read_text(encoding="utf-8")
+    chart = text[text.index('data-chart="campaign"'):]
+    chart = chart[:chart.index("</svg>")]
+    links = re.findall(r'<a href="([^"]+)"><path [^>]*><title>([^<:]+):', chart)
+    assert links
+    for href, name in links:
+        assert (report["out"] / href).is_file(), href
+        assert Path(href).stem == name.replace("/", "_")
+    assert {Path(h).stem for h, _ in links} == {n for n in report["names"]
+                                                if (report["out"] / "runs" / f"{n}.html").is_file()}
+
+
+def _stamps(folder):
+    return {p.name: (p.stat().st_mtime_ns, p.stat().st_ino) for p in (folder / "runs").glob("*.html")}
+
+
+def test_unchanged_pages_are_not_rebuilt(real_records, tmp_path, capsys):
+    # a second build from the same records rewrites no run page (same inode and mtime) but the index;
+    # a changed record gets its page rebuilt; kept and rebuilt pages equal a cold build byte for byte.
+    # Progress is printed on stderr when asked for (real output, captured).
+    src = tmp_path / "records"
+    for name, rec in real_records.items():
+        records.write_json(rec, src / f"{name}.json")
+    out = tmp_path / "site"
+    build([src], out, progress="on")
+    err = capsys.readouterr().err
+    assert f"{len(real_records)} run pages (0 unchanged, {len(real_records)} built)" in err
+    before = _stamps(out)
+    build([src], out, overwrite=True, progress="on")
+    assert f"({len(real_records)} unchanged, 0 built)" in capsys.readouterr().err
+    assert _stamps(out) == before
+    name = sorted(real_records)[0]
+    changed = copy.deepcopy(real_records[name])
+    changed["run"]["title"] = "retitled run"
+    records.write_json(changed, src / f"{name}.json")
+    build([src], out, overwrite=True, progress="off")
+    after = _stamps(out)
+    assert after[f"{name}.html"] != before[f"{name}.html"]
+    assert {k: v for k, v in after.items() if k != f"{name}.html"} == \
+        {k: v for k, v in before.items() if k != f"{name}.html"}
+    assert "retitled run" in (out / "runs" / f"{name}.html").read_text(encoding="utf-8")
+    cold = tmp_path / "cold"
+    build([src], cold, progress="off")
+    for page in sorted((cold / "runs").glob("*.html")) + [cold / "index.html"]:
+        assert page.read_bytes() == (out / page.relative_to(cold)).read_bytes(), page.name
+    assert not capsys.readouterr().err          # progress="off": nothing printed
+
+
+def test_warm_audit_keeps_every_run_page(tmp_path):
+    # a real audit twice on the same pw.x runs: the second (everything cached) rewrites no run page
+    from driftwatch.campaign import audit
+    out = tmp_path / "audit"
+    audit([QE], out, workers=1, progress="off", quiet=True)
+    before = _stamps(out / "report")
+    s = audit([QE], out, workers=1, progress="off", quiet=True)
+    assert s["cached"] == s["runs"] and _stamps(out / "report") == before and before
+
+
+@needs_browser
+@pytest.mark.browser
+def test_scatter_links_are_links_in_chromium(report):
+    # real browser: the index's DOM holds the scatter's SVG <a> elements, pointing at run pages
+    dom = _chromium("--dump-dom", report["index"].as_uri())
+    hrefs = [a.get("href") for t, a in _parse(dom).tags if t == "a" and
+             str(a.get("href", "")).startswith("runs/")]
+    assert len(hrefs) >= 2 * len(RUNS)          # table rows and scatter points (both panels)

@@ -1,10 +1,15 @@
 """Static HTML report from run records: ``OUTPUT/index.html`` (the campaign) and ``OUTPUT/runs/<name>.html``.
 
-Everything a page needs is inside the output folder: CSS inline, plots as inline SVG, one small inline
-script (table sorting and filtering) allowed by a Content-Security-Policy hash; pages load nothing from
-the network. Every string that came from an input file (titles, paths, formulas, warnings, flag
-messages, code settings, group symbols) goes through :func:`html.escape`; plots never parse mathtext.
-Reports read records only, never raw run files.
+Everything a page needs is inside the output folder: CSS inline, plots as inline SVG (drawn by
+:mod:`driftwatch.report.svg` from the chart descriptions of :mod:`driftwatch.report.charts`, no
+matplotlib), one small inline script (table sorting and filtering) allowed by a Content-Security-Policy
+hash; pages load nothing from the network. Every string that came from an input file (titles, paths,
+formulas, warnings, flag messages, code settings, group symbols) is escaped. Reports read records only,
+never raw run files.
+
+Pages are cached: each run page carries a key (sha256 of the record's bytes, its name and source, and
+the source code of driftwatch), and ``OUTPUT/.pages.json`` keeps the key and the little the index needs
+of each record, so a rebuild writes only the pages of records that changed.
 """
 
 from __future__ import annotations
@@ -20,8 +25,9 @@ from urllib.parse import quote
 
 from .. import records as _records
 from ..errors import OutputError
+from .. import tasks as _tasks
 from . import campaign as _camp
-from . import plots
+from . import charts, svg
 
 __all__ = ["build", "FLAG_TEXT"]
 
@@ -51,8 +57,11 @@ FLAG_TEXT = {
 """Plain-language meaning of each flag code (codes are defined in :mod:`driftwatch.rules`)."""
 
 DISCLAIMER = ("A flag is a diagnostic that asks you to look at a run; it is not a proof of stability, "
-              "of instability or of a phase. Distances, deformations and spglib verdicts depend on "
-              "thresholds and tolerances; check what matters to you with your own validation.")
+              "of instability or of a phase, and a run without flags is not shown to be stable. "
+              "Distances, deformations and spglib verdicts depend on thresholds and tolerances, and a "
+              "suggested symprec is a starting point, not a guarantee: check what matters to you with "
+              "your own validation.")
+"""The page's one notice (shown once, at the top of every page)."""
 
 READ_ME = [
     "Distances are Euclidean distances in root-invariant space, in Å. They are square roots of "
@@ -68,7 +77,10 @@ READ_ME = [
     "The displacement to a group is how far the atoms must move (RMS and max, Å) to be exactly "
     "symmetric under that group. In a fixed-cell run the lattice cannot drift; its symmetry drift is "
     "in the atoms, and this is where it shows.",
-    DISCLAIMER,
+    "Series that coincide at every step are all drawn (later ones hollow and dashed over earlier "
+    "ones) and the legend says so, e.g. 'mirror (= oc at every step)'. Colours, markers and dash "
+    "patterns are fixed per Bravais type and per group number on every page: the hue says the "
+    "crystal system, the marker the centring.",
 ]
 
 _SCRIPT = """
@@ -135,6 +147,8 @@ h3 { font-size: 15px; margin: 18px 0 6px; }
 p, li { max-width: 80ch; }
 .note { background: var(--warnbg); border-left: 4px solid var(--warn); padding: 8px 12px; margin: 12px 0;
         font-size: 14px; }
+.fact { background: var(--infobg); border-left: 4px solid var(--info); padding: 8px 12px; margin: 12px 0;
+        font-size: 14px; }
 .muted { color: var(--muted); font-size: 13px; }
 table { border-collapse: collapse; margin: 6px 0 10px; font-size: 13.5px; }
 #runs { font-size: 13px; }
@@ -142,6 +156,7 @@ table { border-collapse: collapse; margin: 6px 0 10px; font-size: 13.5px; }
 #runs th, #runs td { padding: 4px 7px; }
 #runs th { white-space: normal; vertical-align: bottom; }
 td.nowrap { white-space: nowrap; }
+td.err { max-width: 26em; overflow-wrap: anywhere; }
 th, td { border-bottom: 1px solid var(--line); padding: 4px 10px; text-align: left; vertical-align: top; }
 th { background: var(--soft); font-weight: 600; white-space: nowrap; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
@@ -164,8 +179,7 @@ table.sortable th[aria-sort=descending]::after { content: " \\2193"; color: var(
 .c-tolerance, .c-code { background: var(--infobg); color: var(--info); }
 .v-unreadable, .v-failed { background: #eee; color: #555; }
 figure { margin: 14px 0 22px; }
-figure svg { width: 100%; max-width: 980px; height: auto; display: block; }
-.grid2 figure svg { max-width: 100%; }
+figure svg { max-width: 100%; height: auto; display: block; }
 figcaption { font-size: 13px; color: var(--muted); max-width: 95ch; margin-top: 4px; }
 .grid2 { display: grid; grid-template-columns: repeat(auto-fit, minmax(480px, 1fr)); gap: 8px 24px; }
 .big { font-size: 20px; font-weight: 600; }
@@ -219,13 +233,15 @@ def _badge(text, cls):
     return f'<span class="badge {e(cls)}">{e(text)}</span>'
 
 
-def _page(title, header, body, *, crumb="", script=False):
+def _page(title, header, body, *, crumb="", script=False, key=""):
     return (
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
-        f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">\n'
+        f"{_GENERATOR}\n"
+        + (f'<meta name="driftwatch-page" content="{e(key)}">\n' if key else "")
+        + f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">\n'
         '<meta name="viewport" content="width=device-width, initial-scale=1">\n'
         '<meta name="referrer" content="no-referrer">\n'
-        f"{_GENERATOR}\n"
+
         f"<title>{e(title)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
         f'<header class="top">{crumb}{header}</header>\n<main>\n{body}\n'
         f"<footer>driftwatch static report, built from run records; no network access is needed to "
@@ -261,18 +277,20 @@ def _check_record(rec: dict):
 
 
 def _sources(items):
-    """Record sources in input order: folders expand to their ``*.json`` files (sorted, not recursive)."""
+    """Record sources in input order: folders expand to their ``*.json`` files (sorted, not recursive;
+    hidden files such as an audit's ``.driftwatch-audit.json`` marker are not records)."""
     out = []
     for item in items:
         if isinstance(item, dict):
             out.append(item)
             continue
         p = Path(item)
-        out.extend(sorted(p.glob("*.json")) if p.is_dir() else [p])
+        out.extend(sorted(f for f in p.glob("*.json") if not f.name.startswith("."))
+                   if p.is_dir() else [p])
     return out
 
 
-def _process(source, name, label, out):
+def _process(source, name, label, out, key=""):
     """Read one source, write its page; -> ("ok", digest) | ("bad", problem) | ("campaign", dict).
 
     Runs in the building process or in a worker process; only a small digest of the record comes
@@ -293,40 +311,92 @@ def _process(source, name, label, out):
             problem = f"not JSON ({exc.msg} at line {exc.lineno})"
         return "bad", problem.replace(f"{source}: ", "")
     try:
-        text = run_page(name, label, rec, origin)
+        text = run_page(name, label, rec, origin, key)
     except Exception as exc:  # a malformed record must not stop the report
         return "bad", f"page could not be built: {type(exc).__name__}: {exc}"
     _write_file(out, out / "runs" / f"{name}.html", text)
     return "ok", _digest(rec)
 
 
+_SPEC_KEYS = ("symprec", "group", "group_symbol", "group_kind", "lattice", "breakpoints", "operations")
+
+
+def _slim(frame):
+    f = {k: frame[k] for k in ("index", "step", "energy", "fmax", "distance", "deformation")
+         if k in frame}
+    if frame.get("symmetry"):
+        f["symmetry"] = {k: frame["symmetry"][k] for k in _SPEC_KEYS if k in frame["symmetry"]}
+    return f
+
+
 def _digest(rec):
-    """What the index needs of a record: everything but the frames in between and the config."""
+    """What the index needs of a record: run, geometry, summary, flags, the first and last frames and
+    the last spglib spectrum (slimmed), the report and symmetry config."""
     frames = rec["frames"]
     keep = [0, len(frames) - 1]
     spec = next((i for i in range(len(frames) - 1, -1, -1) if frames[i].get("symmetry")), None)
     if spec is not None:
         keep.append(spec)
     d = {k: rec.get(k) for k in ("schema", "run", "geometry", "summary", "flags")}
-    d["frames"] = [frames[i] for i in sorted(set(keep))]
-    d["config"] = {"report": (rec.get("config") or {}).get("report") or {}}
+    d["frames"] = [_slim(frames[i]) for i in sorted(set(keep))]
+    cfg = rec.get("config") or {}
+    d["config"] = {k: cfg.get(k) or {} for k in ("report", "symmetry")}
     return d
 
 
-def _mp_context():
-    """fork while this process has one thread (fast); otherwise forkserver or spawn (fork is unsafe)."""
-    import multiprocessing as mp
-    import threading
-    if "fork" in mp.get_all_start_methods() and threading.active_count() == 1:
-        return mp.get_context("fork")
-    return mp.get_context("forkserver" if "forkserver" in mp.get_all_start_methods() else "spawn")
+# ------------------------------------------------------------------------------------------ caching
+
+PAGES_FILE = ".pages.json"
+"""In the report folder: ``{"code": ..., "pages": {name: {"key", "digest"}}}`` of the last build."""
+
+_code_digest = []
 
 
-def _init_worker():
-    """Worker processes keep the report's matplotlib settings for their whole life."""
-    import matplotlib
-    matplotlib.rcParams.update(plots._RC)
-    plots._active[0] += 1
+def _code() -> str:
+    """sha256 of driftwatch's own source files: a page built by other code is built again."""
+    if not _code_digest:
+        h = hashlib.sha256(_records.SCHEMA.encode())
+        root = Path(__file__).resolve().parent.parent
+        for f in sorted(root.rglob("*.py")):
+            h.update(f.relative_to(root).as_posix().encode())
+            h.update(f.read_bytes())
+        _code_digest.append(h.hexdigest())
+    return _code_digest[0]
+
+
+def _key(source, name, label) -> str | None:
+    """Cache key of a run page: the code, the page's name, label and origin, the record's bytes."""
+    try:
+        raw = (_records.dumps(source).encode() if isinstance(source, dict)
+               else Path(source).read_bytes())
+    except (OSError, TypeError, ValueError):
+        return None
+    h = hashlib.sha256(_code().encode())
+    origin = "" if isinstance(source, dict) else str(source)
+    for part in (name, label, origin):
+        h.update(b"\0" + str(part).encode("utf-8", "surrogateescape"))
+    h.update(b"\0" + raw)
+    return h.hexdigest()
+
+
+def _load_pages(out: Path) -> dict:
+    try:
+        data = json.loads((out / PAGES_FILE).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    if not isinstance(data, dict) or data.get("code") != _code():
+        return {}
+    pages = data.get("pages")
+    return pages if isinstance(pages, dict) else {}
+
+
+def _page_has_key(page: Path, key: str) -> bool:
+    try:
+        with open(page, encoding="utf-8", errors="replace") as fh:
+            head = fh.read(700)
+    except OSError:
+        return False
+    return f'<meta name="driftwatch-page" content="{key}">' in head and _GENERATOR in head
 
 
 def _maybe_campaign(path):
@@ -431,12 +501,21 @@ def _summary_section(rec):
     rows.append(("source", f"<span class=\"mono\">{e(run.get('source'))}</span> "
                            f"(format {e(run.get('format'))})"))
     body = _kv(rows)
-    if run.get("fixed_cell"):
+    if rec.get("upgraded_from"):
+        body += (f'<p class="fact"><b>Older record</b>: written as {e(rec["upgraded_from"])} and '
+                 "judged again here from its own frames with this version's rules (its frames carry "
+                 "no group relations, so the group level compares group numbers and operation "
+                 "counts only).</p>")
+    if len(rec.get("frames") or []) == 1:
+        body += ('<p class="fact"><b>One frame</b>: the run holds a single structure, so nothing can '
+                 "drift; the verdict compares the structure with itself and the plots show that one "
+                 "step.</p>")
+    elif run.get("fixed_cell"):
         note = s.get("lattice_note") or ("the lattice cannot drift; symmetry drift is in the atoms "
                                          "(see the displacement to each group)")
         note = note[len("fixed cell:"):].strip() if note.lower().startswith("fixed cell:") else note
         note = note[:1].upper() + note[1:]
-        body += (f'<p class="note"><b>Fixed cell</b>: every frame has the same cell. {e(note)}. The '
+        body += (f'<p class="fact"><b>Fixed cell</b>: every frame has the same cell. {e(note)}. The '
                  "lattice plots are flat by construction; the tolerance spectrum and the displacement "
                  "plot (shown first below) carry the drift.</p>")
     return "<h2>Summary</h2>" + body
@@ -445,16 +524,16 @@ def _summary_section(rec):
 def _flags_section(rec):
     flags = rec.get("flags") or []
     if not flags:
-        return ("<h2>Flags</h2><p>No flag was raised for this run at the configured thresholds. That is not "
-                "a proof that nothing changed; see the plots below.</p>")
+        return ("<h2>Flags</h2><p>No flag was raised for this run at the configured thresholds; the "
+                "plots below show how close it came.</p>")
     rows = "".join(
         f"<tr><td>{_badge(f.get('concerns'), 'c-' + str(f.get('concerns')))}</td>"
         f"<td><b>{e(f.get('code'))}</b></td>"
         f"<td class=\"num\">{e(f.get('step'))}</td><td>{e(f.get('type') or '')}</td>"
         f"<td>{e(f.get('message'))}<br><span class=\"muted\">{e(FLAG_TEXT.get(f.get('code'), ''))}"
         f"</span></td></tr>" for f in flags)
-    return ("<h2>Flags</h2><p class=\"muted\">Each flag is a diagnostic to be checked, not a proof of "
-            "stability or of a phase. 'step' is the first ionic step from which it holds.</p>"
+    return ("<h2>Flags</h2><p class=\"muted\">'step' is the first ionic step from which the flag "
+            "holds.</p>"
             "<table><thead><tr><th>concerns</th><th>code</th><th>step</th><th>type</th><th>what was seen"
             f"</th></tr></thead><tbody>{rows}</tbody></table>")
 
@@ -468,8 +547,7 @@ def _tolerance_section(rec):
         out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> suggested for this run.')
     else:
         out.append("<p><span class=\"big\">no single symprec suggested</span>.")
-    out.append(f"<br><span class=\"muted\">{e(tol.get('reason'))}."
-               " A starting point for your own check, not a guarantee.</span></p>")
+    out.append(f"<br><span class=\"muted\">{e(tol.get('reason'))}.</span></p>")
     ranges = tol.get("ranges") or tol.get("stable_ranges") or []
     floor = _fnum(tol.get("resolution"))
     if ranges:
@@ -533,64 +611,83 @@ def _warnings_section(rec):
     return "<h2>Warnings</h2><ul>" + "".join(f"<li>{e(x)}</li>" for x in w) + "</ul>"
 
 
+_CAPTIONS = {
+    "map": "Path of the layer's 2D lattice on the projected-invariant map, one point per ionic step "
+           "(colour: step), start circled, end starred. Horizontal axis: sign × x, vertical: y, with "
+           "(x, y) = ((r02 − r01)/s, 3 r12/s), s = r12 + r01 + r02. The right half holds lattices of "
+           "sign +1, the left half their mirror images (sign −1), both seen from the viewing side. "
+           "Boundaries are where the sign is 0: the bottom edge is rectangular (op), the vertical "
+           "centre line and both slanted edges are centred rectangular (oc), square (tp) sits at the "
+           "bottom centre and hexagonal (hp) at the top. Bottom and slanted edges appear once per "
+           "half; a path crossing them continues from the mirror point on the other half (dotted). "
+           "Frames with sign 0 are drawn in the half of the step before them. Sign +1 means the "
+           "obtuse-superbase vectors v1 → v2 (labelled by ascending conorms) turn counter-clockwise "
+           "seen from the viewing side.",
+    "chirality": "Handedness against ionic step: the record's chiral distance (sign × root-space "
+                 "distance to the nearest lattice with a mirror line, Å; black) and sign × the "
+                 "deformation to it (Å; what the handedness-flip rule compares with ±min chiral). "
+                 "Zero is a mirror-symmetric lattice; a curve crossing it changed handedness.",
+    "deformation": "Deformation (Å of lattice-vector change, comparable with symprec; what the flags "
+                   "use) to each type against ionic step; dashed lines are the flag thresholds.",
+    "distance": "Root-space distance (Å). Near rectangular lattices it grows like the square root of "
+                "a deformation, so it is larger than the deformation there.",
+    "cell": "Cell parameters per ionic step, derived from the record's invariants (the conorms of the "
+            "obtuse superbase give the Gram matrix): the Selling-reduced cell, i.e. the shortest "
+            "vectors of the obtuse superbase, a ≤ b (≤ c), every angle ≥ 90° (in 3D the three angles "
+            "are sorted, not tied to a pair of vectors). Same lattice (same "
+            "area or volume) as the run's cell, not its conventional cell: a hexagonal layer shows "
+            "γ = 120°, a cubic F lattice a = b = c = a_conv/√2 with angles 90°, 120°, 120°.",
+    "energy": "Energy relative to the last step (eV) and the largest force on an atom (eV/Å, log "
+              "axis) per ionic step, as the file reports them.",
+    "spectrum": "spglib's verdict (colour, with the group number or lattice symbol written in) at each "
+                "symprec (log axis, Å) for the frames analysed with spglib, one column per frame. "
+                "Black bars mark breakpoints (the verdict changes between two symprec values, shown "
+                "at their geometric centre); dotted lines are common choices of symprec. Left: the "
+                "whole structure (layer group for layers); right: the lattice alone.",
+    "displacement": "How far the atoms must move (Å; solid RMS, dashed max) to be exactly symmetric "
+                    "under each group spglib found at some symprec, on the frames analysed with "
+                    "spglib. A curve on the bottom axis means the atoms already have that symmetry.",
+}
+
+
+class _Svg:
+    """Renders the charts of one page with page-unique element ids."""
+
+    def __init__(self):
+        self.n = 0
+
+    def __call__(self, chart):
+        if chart is None:
+            return ""
+        self.n += 1
+        return svg.render(chart, f"{chart.name}{self.n}")
+
+
 def _plots_section(rec):
     frames = rec["frames"]
     dim = rec["geometry"].get("dimension")
-    thr = [(_cfg(rec, "rules", "lattice", "within"), "held within"),
-           (_cfg(rec, "rules", "lattice", "start_away"), "start away")]
-    lattice, atoms = [], []
-    out = lattice
-    if dim == 2:
-        types = [t for t in ("op", "oc", "tp", "hp", "mirror") if t in frames[0].get("deformation", {})]
-        out.append(_figure(plots.layer_map(frames),
-                   "Path of the layer's 2D lattice on the projected-invariant map, one point per ionic "
-                   "step (colour), start circled, end starred. Horizontal axis: sign × x, vertical: y, "
-                   "with (x, y) = ((r02 − r01)/s, 3 r12/s), s = r12 + r01 + r02. The right half holds "
-                   "lattices of sign +1, the left half their mirror images (sign −1), both seen from the "
-                   "viewing side. Boundaries are where the sign is 0: the bottom edge is rectangular (op), "
-                   "the vertical centre line and both slanted edges are centred rectangular (oc), square "
-                   "(tp) sits at the bottom centre and hexagonal (hp) at the top. Bottom and slanted "
-                   "edges appear once per half; a path crossing them continues from the mirror point on "
-                   "the other half (dotted). Frames with sign 0 are drawn in the half of the step "
-                   "before them. Sign +1 means the obtuse-superbase vectors v1 → v2 (labelled by "
-                   "ascending conorms) turn counter-clockwise seen from the viewing side; a change of "
-                   "sign within a run is a real change of handedness."))
-        thr.append((_cfg(rec, "rules", "handedness_flip", "min_chiral"), "min chiral"))
-        out.append(_figure(plots.deformation_plot(frames, types, thr),
-                   "Deformation (Å of lattice-vector change, comparable with symprec) to each 2D type "
-                   "and to the nearest lattice with a mirror, against ionic step; dashed lines are the "
-                   "flag thresholds."))
-        out.append(_figure(plots.distance_plot(frames, types),
-                   "Root-space distance (Å) to each type. Near rectangular lattices it grows like the "
-                   "square root of a deformation, so it is larger than the deformation there."))
-    else:
-        types = list(frames[0].get("deformation", {}))
-        out.append(_figure(plots.deformation_plot(frames, types, thr,
-                                                  title="deformation to each of the 13 Bravais types"),
-                   "Deformation (Å of lattice-vector change, comparable with symprec) to each of the 13 "
-                   "non-triclinic Bravais types against ionic step; dashed lines are the flag "
-                   "thresholds."))
-        if frames[0].get("systems"):
-            out.append(_figure(plots.distance_plot(frames, list(frames[0]["systems"]), key="systems",
-                                                   title="distance to each lattice system",
-                                                   ylabel="distance (Å)"),
-                       "Distance (Å, root space) to each lattice system (the nearest of its types)."))
-    out = atoms
+    draw = _Svg()
+    cs = charts.run_charts(rec, _common(rec))
+
+    def fig(name):
+        return _figure(draw(cs.get(name)), _CAPTIONS[name])
+
+    lattice = ["map", "chirality", "deformation", "distance", "cell"] if dim == 2 else \
+        ["deformation", "distance", "cell"]
+    lattice = [fig(n) for n in lattice]
     if any(f.get("symmetry") for f in frames):
-        out.append(_figure(plots.spectrum_plot(frames, _common(rec)),
-                   "Tolerance spectrum: spglib's verdict (colour) at each symprec (log axis, Å) for the "
-                   "frames analysed with spglib. Black bars mark breakpoints (the verdict changes "
-                   "between two symprec values, shown at their geometric centre); dotted lines are "
-                   "common choices of symprec. Left: the whole structure (layer group for layers); "
-                   "right: the lattice alone."))
-        out.append(_figure(plots.displacement_plot(frames),
-                   "How far the atoms must move (Å; solid RMS, dashed max) to be exactly symmetric under "
-                   "each group spglib found at some symprec. A curve falling to the bottom axis means "
-                   "the atoms reached that symmetry."))
+        atoms = [fig("spectrum"), fig("displacement")]
     else:
-        out.append("<p>No frame was analysed with spglib: no tolerance spectrum or displacement plot.</p>")
-    first = atoms + lattice if rec["run"].get("fixed_cell") else lattice + atoms
-    return "<h2>Plots</h2>" + "".join(first)
+        atoms = ["<p>No frame was analysed with spglib: no tolerance spectrum or displacement "
+                 "plot.</p>"]
+    steps = [fig("energy") or "<p>The file holds no energies or forces.</p>"]
+    if rec["run"].get("fixed_cell") and len(frames) > 1:
+        parts = (["<h3>Atoms (where a fixed-cell run drifts)</h3>"] + atoms + steps
+                 + ["<h3>Lattice (constant by construction)</h3>"] + lattice)
+    else:
+        parts = (["<h3>Lattice</h3>"] + lattice + ["<h3>Energy and forces</h3>"] + steps
+                 + ["<h3>Atoms and spglib</h3>"] + atoms)
+    return "<h2>Plots</h2>" + "".join(parts)
 
 
 def _provenance_section(rec):
@@ -608,9 +705,8 @@ def _how_to_read():
     return "<h2>How to read this</h2><ul>" + "".join(f"<li>{e(x)}</li>" for x in READ_ME) + "</ul>"
 
 
-def run_page(name, label, rec, origin) -> str:
-    """HTML text of one run's page (linked from ``../index.html``)."""
-    plots.reset_ids()
+def run_page(name, label, rec, origin, key="") -> str:
+    """HTML text of one run's page (linked from ``../index.html``); ``key`` marks the cache entry."""
     run = rec["run"]
     title = run.get("title") or label
     header = (f"<h1>{e(title)}</h1><div class=\"sub\">run {e(label)}"
@@ -621,14 +717,16 @@ def run_page(name, label, rec, origin) -> str:
             + _tolerance_section(rec) + _plots_section(rec) + _settings_section(rec)
             + ("" if warned else _warnings_section(rec)) + _how_to_read() + _provenance_section(rec))
     crumb = '<div class="crumb"><a href="../index.html">← campaign index</a></div>'
-    return _page(f"{title} · driftwatch", header, body, crumb=crumb)
+    return _page(f"{title} · driftwatch", header, body, crumb=crumb, key=key)
 
 
 # -------------------------------------------------------------------------------------------- index
 
 def _index_page(runs, bad, failed, campaign) -> str:
     """HTML of the campaign index; ``runs`` is ``[(name, label, digest, origin)]`` of built pages."""
-    plots.reset_ids()
+    draw = _Svg()
+    skipped = [k for k in (campaign or {}).get("skipped") or [] if isinstance(k, dict)] \
+        if isinstance(campaign, dict) else []
     recs = [(n, r) for n, _, r, _ in runs]
     common = _common(recs[0][1]) if recs else _camp.DEFAULT_COMMON
     tol = _camp.tolerance_table(recs, common)
@@ -656,17 +754,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
     ] + ([("audit summary", e(", ".join(f"{k.replace('_', ' ')} {campaign[k]}" for k in
                                          ("runs", "analysed", "cached") if k in campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])))
-    parts.append(_campaign_tolerance(tol, adv))
-    # plots
-    pts = []
-    for _, r in recs:
-        d = r["summary"].get("drift")
-        t = (d or {}).get("type")
-        if t:
-            f0, f1 = r["frames"][0], r["frames"][-1]
-            pts.append((_fnum(d.get("initial")), _fnum(d.get("final")),
-                        _fnum((f0.get("distance") or {}).get(t)), _fnum((f1.get("distance") or {}).get(t)),
-                        r["summary"]["verdict"]["direction"], r["geometry"].get("dimension")))
+    parts.append(_campaign_tolerance(tol, adv, {n: lab for n, lab, _, _ in runs}))
+    pts = charts.scatter_points((label, f"runs/{quote(name)}.html", r) for name, label, r, _ in runs)
     gb, lb = [], []
     for _, r in recs:
         spec = _camp.final_spectrum(r)
@@ -674,24 +763,29 @@ def _index_page(runs, bad, failed, campaign) -> str:
             gb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "group")]
             lb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "lattice")]
     parts.append("<h2>Across the campaign</h2>")
-    parts.append(_figure(plots.campaign_scatter(pts),
+    parts.append(_figure(draw(charts.campaign_scatter(pts)),
                          f"Each run's deformation (left; Å of lattice-vector change, what the flags use) "
-                         f"and root-space distance (right; Å) to the type it moved toward, at its first "
-                         f"against its last step ({len(pts)} runs; circles layers, squares bulk). Points "
-                         f"on the dashed diagonal did not move; runs that reached the type fall onto "
-                         f"the bottom axis. Near rectangular lattices the root-space distance is the "
-                         f"larger of the two (it grows like the square root of a deformation)."))
+                         f"and root-space distance (right; Å) to the type its verdict is about (the "
+                         f"drift columns of the table), at its first against its last step "
+                         f"({len(pts)} runs; circles layers, squares bulk). Every point links to its "
+                         f"run's page and names it on hover"
+                         + (" and beside it" if len(pts) <= 30 else "") + ". Points on the dashed "
+                         f"diagonal did not move; values at or below {charts.FLOOR:g} Å are drawn on "
+                         f"the axes (runs that reached the type fall onto the bottom axis, runs that "
+                         f"started at it onto the left one). Near rectangular lattices the root-space distance is the larger of "
+                         f"the two (it grows like the square root of a deformation)."))
     parts.append('<div class="grid2">')
-    parts.append(_figure(plots.breakpoint_histogram(gb, lb, common, _span(recs[0][1] if recs else {})),
+    parts.append(_figure(draw(charts.breakpoint_histogram(gb, lb, common,
+                                                          _span(recs[0][1] if recs else {}))),
                          "Where spglib's verdict on each run's final structure changes, pooled over "
                          "runs (log symprec, Å). Dotted lines: common choices. A common choice sitting "
                          "in a crowd of breakpoints gives verdicts that flip with small changes."))
     if counts:
-        parts.append(_figure(plots.flag_bars(counts, levels), "Runs carrying each flag."))
+        parts.append(_figure(draw(charts.flag_bars(counts, levels)), "Runs carrying each flag."))
     parts.append("</div>")
     parts.append(_flag_table(counts, levels, campaign))
-    parts.append(_runs_table(runs))
-    parts.append(_problems(bad, failed))
+    parts.append(_runs_table(runs, failed, skipped))
+    parts.append(_problems(bad, failed, skipped))
     parts.append(_how_to_read())
     return _page("driftwatch campaign report", header, "".join(parts), script=True)
 
@@ -703,14 +797,12 @@ def _audit_advice(recs, common):
     return campaign_advice([advice_item(name, r) for name, r in recs], list(common))
 
 
-def _campaign_tolerance(tol, adv):
+def _campaign_tolerance(tol, adv, labels=None):
     out = ["<h2>Tolerance advice for the campaign</h2>"]
     rec = _fnum(adv.get("recommended_symprec"))
     out.append(f'<p><span class="big">symprec ≈ {_q(rec)}</span> for this campaign'
                f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum)."
-               f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}."
-               + ("" if "starting point" in str(adv.get("reason")).lower() else
-                  " A starting point for your own check, not a guarantee.") + "</span></p>")
+               f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}.</span></p>")
     if tol["stable_ranges"]:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
                        for a, b in [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5])
@@ -723,7 +815,8 @@ def _campaign_tolerance(tol, adv):
     if tol["changes"]:
         rows = []
         for c in tol["changes"]:
-            names = ", ".join(e(n) for n in c["runs"][:8]) + (" …" if len(c["runs"]) > 8 else "")
+            names = ", ".join(f'<a href="runs/{quote(n)}.html">{e((labels or {}).get(n, n))}</a>'
+                              for n in c["runs"][:8]) + (" …" if len(c["runs"]) > 8 else "")
             rows.append(f"<tr><td class=\"num\">{c['a']:g} Å</td><td class=\"num\">{c['b']:g} Å</td>"
                         f"<td class=\"num\">{len(c['runs'])}</td><td class=\"mono\">{names}</td></tr>")
         out.append("<h3>Runs whose verdict changes between common choices of symprec</h3><table>"
@@ -749,19 +842,31 @@ def _flag_table(counts, levels, campaign):
             + f"<th>meaning</th></tr></thead><tbody>{rows}</tbody></table>")
 
 
-def _runs_table(runs):
+def _runs_table(runs, failed=(), skipped=()):
     from .. import records
     from ..rules import FLAGS as concerns
     rows = []
+    for f, kind in [(f, "failed") for f in failed] + [(k, "skipped") for k in skipped]:
+        why = f.get("error") if kind == "failed" else f"{f.get('reason')} (to include: " \
+                                                        f"{f.get('include')})"
+        why = str(why or "")
+        short = why if len(why) <= 120 else why[:117] + "…"
+        rows.append((str(f.get("run") or ""),
+                     f'<tr><td class="err"><span class="mono">{e(f.get("run"))}</span><br>'
+                    f'<span class="muted" title="{e(why)}">{e(short)}</span></td><td>—</td>'
+                    f"{_td_num(None)}"
+                    f'<td data-v="{kind}">{_badge(kind, "v-failed")}</td>'
+                    + "<td>—</td>" * 2 + _td_num(None) * 2 + "<td>—</td><td data-v=\"\">—</td>"
+                    + _td_num(None) + "</tr>"))
     for name, label, rec, origin in runs:
         r, g = rec["run"], rec["geometry"]
         v = records.verdict_fields(rec)
         codes = sorted({f["code"] for f in rec.get("flags") or []})
         verdict = v["verdict"]
         kind = "layer" if g.get("dimension") == 2 else "bulk"
-        grp = (v["group_initial"] if v["group_initial"] == v["group_final"]
-               else f"{v['group_initial']} → {v['group_final']}")
-        rows.append(
+        grp = (e(v["group_initial"]) if v["group_initial"] == v["group_final"]
+               else f"{e(v['group_initial'])} →<br>{e(v['group_final'])}")
+        rows.append((str(label),
             f'<tr><td><a href="runs/{quote(name)}.html">{e(label)}</a>'
             f'<br><span class="muted">{e(r.get("title") or "")}</span>'
             + (f' <span class="badge warning">{len(r["warnings"])} warning'
@@ -774,11 +879,12 @@ def _runs_table(runs):
             f"{e(v['lattice_initial'])} → <b>{e(v['lattice_final'])}</b></td>"
             f"<td>{e(v['drift_type'] or '')}</td>{_td_num(v['drift_initial'], 'Å')}"
             f"{_td_num(v['drift_final'], 'Å')}"
-            f"<td>{e(grp)}</td>"
+            f"<td class=\"nowrap\">{grp}</td>"
             f"<td data-v=\"{len(codes):03d} {e(' '.join(codes))}\">"
             f"{' '.join(_badge(c, 'c-' + concerns.get(c, '')) for c in codes) or '—'}</td>"
             f"{_td_num(v['recommended_symprec'], 'Å')}"
-            "</tr>")
+            "</tr>"))
+    rows = [html_ for _, html_ in sorted(rows, key=lambda kv: kv[0].lower())]
     head = ("<tr><th>run</th><th>formula</th><th>steps</th><th>verdict</th><th>lattice</th>"
             "<th>drift type</th><th>drift from</th><th>drift to</th><th>group</th>"
             "<th>flags</th><th>suggested symprec</th></tr>")
@@ -793,8 +899,8 @@ def _runs_table(runs):
             f"{''.join(rows)}</tbody></table></div>")
 
 
-def _problems(bad, failed):
-    if not bad and not failed:
+def _problems(bad, failed, skipped=()):
+    if not bad and not failed and not skipped:
         return ""
     out = ["<h2>Inputs that could not be used</h2>"]
     if bad:
@@ -808,14 +914,21 @@ def _problems(bad, failed):
                        if isinstance(f, dict))
         out.append("<h3>Runs the audit could not analyse</h3><table><thead><tr><th>run</th>"
                    f"<th>source</th><th>error</th></tr></thead><tbody>{rows}</tbody></table>")
+    if skipped:
+        rows = "".join(f"<tr><td class=\"mono\">{e(k.get('run'))}</td><td>{e(k.get('reason'))}</td>"
+                       f"<td>{e(k.get('include'))}</td></tr>" for k in skipped)
+        out.append("<h3>Runs skipped (neither a layer nor bulk)</h3><table><thead><tr><th>run</th>"
+                   "<th>why</th><th>to include it</th></tr></thead>"
+                   f"<tbody>{rows}</tbody></table>")
     return "".join(out)
 
 
 # -------------------------------------------------------------------------------------------- build
 
 def _write_file(root: Path, path: Path, text: str) -> Path:
-    """Atomic write inside the report folder (``write_text_atomic`` applies the user's umask)."""
-    return _records.write_text_atomic(_inside(root, path), text)
+    """Atomic write inside the report folder (``write_text_atomic`` applies the user's umask). No
+    fsync: a page lost to a power cut has no key and is built again by the next build."""
+    return _records.write_text_atomic(_inside(root, path), text, fsync=False)
 
 
 def _prepare_output(output, overwrite):
@@ -837,7 +950,8 @@ def _inside(root: Path, path: Path) -> Path:
     return path
 
 
-def build(records, output, *, overwrite=False, campaign=None, workers=None) -> Path:
+def build(records, output, *, overwrite=False, campaign=None, workers=None,
+          progress="auto") -> Path:
     """Build the static HTML report; returns the path of ``OUTPUT/index.html``.
 
     Args:
@@ -846,77 +960,117 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None) -> P
             audit summary (``campaign.json``) among them is used as ``campaign`` when none is given,
             and the records it lists are read too, so an audit's output folder is a valid input.
         output: report folder; created if needed. ``OUTPUT/runs/<name>.html`` holds one page per run.
+            A page whose record, name and source (and driftwatch's code) did not change since the
+            last build into this folder is kept as it is (``OUTPUT/.pages.json``).
         overwrite: allow writing into an existing non-empty folder (else :class:`OutputError`).
-        campaign: optional audit summary dict (its ``failed`` runs, ``flag_counts`` and ``tolerance``
-            advice are shown).
-        workers: processes that build run pages (None: 1 for fewer than 24 inputs, else up to 4).
+        campaign: optional audit summary dict (its ``failed`` and ``skipped`` runs, ``flag_counts``
+            and ``tolerance`` advice are shown).
+        workers: processes that build run pages (None: 1 for fewer than 32 pages to build, else up
+            to 4; never more than one per 3 pages to build).
+        progress: "auto" (on stderr when it is a terminal; ``$DRIFTWATCH_PROGRESS`` overrides), "on"
+            or True, "off" or False.
     """
     if isinstance(records, (str, os.PathLike, dict)):
         records = [records]
     out = _prepare_output(output, overwrite)
+    known = _load_pages(out)
     queue = _sources(records)
-    if workers is None:
-        workers = 1 if len(queue) < 24 else max(1, min(4, os.cpu_count() or 1))
     names, seen = _Names(), set()
-    runs, bad, found = [], [], None
+    runs, bad, found, cache = [], [], None, {}
+    bar = _tasks.Progress(0, "driftwatch report", enabled=_tasks.progress_on(progress), unit="pages")
+    reused_pages = 0
 
     def key(src):
         return id(src) if isinstance(src, dict) else os.path.realpath(src)
 
-    def label_of(src):
-        return _label(src, None) if isinstance(src, dict) else Path(src).stem
+    ids = {}   # record file -> run id, from an audit summary (the names campaign.csv uses)
 
-    def handle(src, name, result):
-        nonlocal found
+    def learn(summary, base):
+        listed = summary.get("records") if isinstance(summary, dict) else None
+        if isinstance(listed, dict) and base:
+            for rid, rel in listed.items():
+                ids[os.path.realpath(Path(base) / str(rel))] = str(rid)
+
+    def label_of(src):
+        if isinstance(src, dict):
+            return _label(src, None)
+        return ids.get(os.path.realpath(src), Path(src).stem)
+
+    if isinstance(campaign, dict):
+        learn(campaign, campaign.get("output"))
+
+    def handle(src, name, page_key, result, reused=False):
+        nonlocal found, reused_pages
         kind, value = result
         origin = None if isinstance(src, dict) else str(src)
+        reused_pages += reused
+        bar.update()
         if kind == "ok":
             runs.append((name, label_of(src), value, origin))
+            if page_key:
+                cache[name] = {"key": page_key, "digest": value}
         elif kind == "bad":
             bad.append((origin or "(record given in memory)", value))
         else:
             found = found or value
+            learn(value, Path(src).parent)
             listed = value.get("records")
             more = [Path(src).parent / str(rel) for rel in
                     (listed.values() if isinstance(listed, dict) else [])]
             return [m for m in more if m.is_file()]
         return []
 
-    def jobs(items):
+    def triage(items):
+        """Pages that must be built; unchanged ones are handled at once."""
+        todo = []
+        items = [src for src in items if key(src) not in seen]
+        bar.grow(len(items))
         for src in items:
-            if key(src) in seen:
-                continue
             seen.add(key(src))
-            yield src, names(label_of(src))
+            name = names(label_of(src))
+            page_key = _key(src, name, label_of(src))
+            hit = known.get(name)
+            if (page_key and isinstance(hit, dict) and hit.get("key") == page_key
+                    and isinstance(hit.get("digest"), dict)
+                    and _page_has_key(out / "runs" / f"{name}.html", page_key)):
+                todo += triage(handle(src, name, page_key, ("ok", hit["digest"]), reused=True))
+            else:
+                todo.append((src, name, page_key))
+        return todo
 
     def serial(pending):
-        with plots.session():
-            while pending:
-                src, name = pending.pop(0)
-                pending += list(jobs(handle(src, name, _process(src, name, label_of(src), out))))
+        while pending:
+            src, name, page_key = pending.pop(0)
+            result = _process(src, name, label_of(src), out, page_key or "")
+            pending += triage(handle(src, name, page_key, result))
 
+    todo = triage(queue)
+    n = len(todo)
+    if workers is None:
+        workers = 1 if n < 32 else min(4, os.cpu_count() or 1)
+    workers = max(1, min(int(workers), n // 3))
     if workers <= 1:
-        serial(list(jobs(queue)))
+        serial(todo)
     else:
         from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
         from concurrent.futures.process import BrokenProcessPool
         futs = {}
         try:
-            with ProcessPoolExecutor(workers, mp_context=_mp_context(),
-                                     initializer=_init_worker) as pool:
-                futs = {pool.submit(_process, src, name, label_of(src), out): (src, name)
-                        for src, name in jobs(queue)}
+            with ProcessPoolExecutor(workers, mp_context=_tasks.mp_context()) as pool:
+                futs = {pool.submit(_process, src, name, label_of(src), out, k or ""): (src, name, k)
+                        for src, name, k in todo}
                 while futs:
                     done, _ = wait(futs, return_when=FIRST_COMPLETED)
                     for fut in done:
-                        src, name = fut_key = futs.pop(fut)
+                        src, name, k = job = futs.pop(fut)
                         try:
                             result = fut.result()
                         except BrokenProcessPool:
-                            futs[fut] = fut_key
+                            futs[fut] = job
                             raise
-                        for s2, n2 in jobs(handle(src, name, result)):
-                            futs[pool.submit(_process, s2, n2, label_of(s2), out)] = (s2, n2)
+                        for s2, n2, k2 in triage(handle(src, name, k, result)):
+                            futs[pool.submit(_process, s2, n2, label_of(s2), out, k2 or "")] = \
+                                (s2, n2, k2)
         except BrokenProcessPool:  # e.g. no importable __main__ for the workers: finish here
             serial(list(futs.values()))
     campaign = campaign if campaign is not None else found
@@ -924,9 +1078,12 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None) -> P
     runs.sort(key=lambda r: r[0].lower())  # completion order varies with workers; pages do not
     bad.sort()
     index = out / "index.html"
-    with plots.session():
-        _write_file(out, index, _index_page(runs, bad, failed, campaign))
+    _write_file(out, index, _index_page(runs, bad, failed, campaign))
     _remove_stale(out, {f"{name}.html" for name, *_ in runs})
+    _write_file(out, out / PAGES_FILE, json.dumps({"code": _code(), "pages": dict(sorted(
+        cache.items()))}, separators=(",", ":"), ensure_ascii=False) + "\n")
+    bar.close(f"{len(runs)} run pages ({reused_pages} unchanged, {len(runs) - reused_pages} "
+              f"built) and the index: {index}")
     return index
 
 
