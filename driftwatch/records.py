@@ -288,7 +288,7 @@ def to_atoms(record: dict, i: int = -1):
     return atoms
 
 
-CSV_COLUMNS = ("run", "source", "format", "dimension", "n_frames", "n_atoms", "formula",
+CSV_COLUMNS = ("run", "source", "format", "kind", "dimension", "n_frames", "n_atoms", "formula",
                "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
                "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
                "group_verdict", "group_symprec_A", "group_initial", "group_final",
@@ -323,6 +323,7 @@ def csv_row(record: dict, run_id: str = "") -> dict:
                                                 "verdict": "failed", "error": record["error"]}
     r, v = record["run"], verdict_fields(record)
     row = {"run": run_id, "source": r["source"], "format": r["format"],
+           "kind": r.get("kind", "trajectory"),
            "dimension": record["geometry"]["dimension"], "n_frames": r["n_frames"],
            "n_atoms": r["n_atoms"], "formula": r["formula"], "fixed_cell": r["fixed_cell"],
            "flags": " ".join(sorted({f["code"] for f in record["flags"]})),
@@ -344,7 +345,8 @@ def db_key_values(record: dict, run_id: str) -> dict:
     r = record["run"]
     kv = {"run_id": run_id, "dimension": int(record["geometry"]["dimension"]),
           "n_frames": int(r["n_frames"]), "fixed_cell": bool(r["fixed_cell"]),
-          "source_format": r["format"], "n_flags": len(record["flags"])}
+          "source_format": r["format"], "kind": r.get("kind", "trajectory"),
+          "n_flags": len(record["flags"])}
     for key, val in verdict_fields(record).items():
         if isinstance(val, float):
             if math.isfinite(val):
