@@ -118,13 +118,14 @@ def _same_frame(a: Frame, b: Frame) -> bool:
 
 # ---------------------------------------------------------------- incremental record
 class Tracker:
-    """The record of a growing run: invariants on every frame, spglib spectra cached per frame.
+    """The record of a growing run: each frame's invariants, spglib spectra and groups computed once.
 
     ``record(newest=True)`` equals :func:`driftwatch.track.analyze` of the frames so far (same
-    frames, flags and summary): spglib runs on the frames :func:`driftwatch.track.select_frames`
-    picks, and each spectrum is computed once and reused while its frame stays the same.
-    ``newest=False`` skips the newest frame's spectrum (it is picked by ``select_frames`` only
-    because it is last); the flags in :data:`SPECTRUM_FLAGS` then wait for the next record.
+    frames, flags and summary): each frame's invariants, each spectrum and each group spglib gave
+    are computed once and reused while their frame stays the same. ``newest=False`` leaves spglib
+    off the newest frame (the record judges the frames before it at the structure level: spglib
+    runs only where the lattice moved, :func:`driftwatch.track.select_frames`); the flags in
+    :data:`SPECTRUM_FLAGS` then wait for a record with the newest frame.
 
     Args:
         config: preset name, YAML path, mapping or loaded config.
@@ -143,7 +144,9 @@ class Tracker:
         self.code_settings: dict = {}
         self.title: str | None = None
         self.rounding: tuple | None = None      # the reader's printed precision of positions
-        self._spectra: dict[int, dict] = {}
+        self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
+        self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
+        self._table = track.FrameTable()          # each frame's invariants
         self._spectra_for = None
 
     def __len__(self) -> int:
@@ -165,7 +168,9 @@ class Tracker:
                 break
             k += 1
         if k < len(self.frames):
-            self._spectra = {i: s for i, s in self._spectra.items() if i < k}
+            self._spectra = {key: s for key, s in self._spectra.items() if key[0] < k}
+            self._groups = {key: g for key, g in self._groups.items() if key[0] < k}
+            self._table.truncate(k)
         self.frames = frames
         return k
 
@@ -192,8 +197,15 @@ class Tracker:
         run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
         geo = self._geometry(run)
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
-            self._spectra, self._spectra_for = {}, (geo.dimension, geo.vacuum_axis)
+            self._spectra, self._groups = {}, {}
+            self._spectra_for = (geo.dimension, geo.vacuum_axis)
+        # a spectrum with brackets is the last frame's; once a newer frame came, the frame
+        # needs its spectrum without them (kept while it may still be asked for)
+        n = len(self.frames)
+        self._spectra = {key: v for key, v in self._spectra.items() if key[1] is False
+                         or key[0] >= n - 1}
         record = track.record_from_run(run, cfg, geo=geo, spectra=self._spectra,
+                                       groups=self._groups, table=self._table,
                                        skip_newest=not newest, complete=complete)
         record["timing"]["total_s"] = time.perf_counter() - t0
         return record
@@ -239,13 +251,16 @@ class SymmetryWatch:
             if watch.fired:
                 break
 
-    ``watch.record`` is the current record (same content as :func:`driftwatch.track.analyze` of
-    the observed steps: spglib runs on the frames it would choose, which always includes the newest,
-    each spectrum computed once). That costs one tolerance spectrum per call (measured here: ~0.05 s
-    for a 1-atom layer, ~0.08 s for a 27-atom slab, ~0.3 s for a 27-atom bulk cell); with
-    ``lazy=True`` the newest frame's spectrum is skipped unless a ``stop_on`` code needs it, and
-    ``watch.finish()`` after the run completes the record. ``output`` is rewritten atomically on
-    every call (rank 0 only
+    Cost: every call computes the new frame's lattice invariants and judges the run (the lattice
+    flags are current at every step); spglib runs on the first frame, on a frame where the lattice
+    moved (``selection.on_change``: the structure level is judged up to there), and on the newest
+    frame only when asked: when a ``stop_on`` code needs it (:data:`SPECTRUM_FLAGS`), when a
+    ``stop_on`` flag is raised (the record that warns or stops is complete), at :meth:`finish`, or
+    with ``lazy=False`` at every call (one tolerance spectrum per call: measured here ~0.05 s for a
+    1-atom layer, ~0.3 s for a 27-atom bulk cell). ``bench/run.py`` measures the cost per step.
+    ``watch.record`` is the current record; after :meth:`finish` (or a raised flag) it has the
+    same content as :func:`driftwatch.track.analyze` of the observed steps. ``output`` is rewritten
+    atomically on every call (rank 0 only
     under MPI; every rank computes, so every rank raises together). An analysis error
     (e.g. a molecule, which is neither layer nor bulk) never stops the relaxation: it is issued once
     as a ``RuntimeWarning`` and kept in ``watch.error``.
@@ -254,7 +269,7 @@ class SymmetryWatch:
     MODES = ("record", "warn", "stop")
 
     def __init__(self, atoms, *, config=None, mode="record", stop_on=("lattice-gained",), output=None,
-                 layer=None, optimizer=None, lazy=False):
+                 layer=None, optimizer=None, lazy=True):
         if mode not in self.MODES:
             raise ConfigError(f"mode: must be one of {', '.join(self.MODES)}, got {mode!r}")
         inner = getattr(atoms, "atoms", None)
@@ -268,6 +283,7 @@ class SymmetryWatch:
         self.output = None if output is None else Path(output)
         self.optimizer = optimizer
         self.lazy = bool(lazy)
+        self._needs_newest = _needs_spectra(self.stop_on)
         self.fired: list[dict] = []
         self.record: dict | None = None
         self.error: DriftwatchError | None = None
@@ -281,7 +297,7 @@ class SymmetryWatch:
         step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
         self._calls += 1
         self._tracker.append(frame_from_atoms(self.atoms, step))
-        self._update(newest=not self.lazy or _needs_spectra(self.stop_on), stacklevel=3)
+        self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
 
     def finish(self) -> dict | None:
         """The complete record (spglib on the newest frame too), written to ``output``.
@@ -304,6 +320,10 @@ class SymmetryWatch:
             self.error = exc
             return
         new = [f for f in rules.select(rec["flags"], self.stop_on) if _key(f) not in self._seen]
+        if new and not newest:
+            # a flag is raised: the record that warns, stops or is kept is the complete one
+            # (spglib on the newest frame too; its spectrum is cached for the next calls)
+            return self._update(newest=True, stacklevel=stacklevel + 1, complete=complete)
         self._seen.update(_key(f) for f in new)
         self.fired.extend(new)
         rec["live"] = {"observer": {"mode": self.mode, "stop_on": self.stop_on,

@@ -339,9 +339,13 @@ def _direction_of(first, last) -> tuple[str, str]:
 
 
 def _structure_at(frames, checked, symprec, persist):
-    first, last = _group_of(frames[checked[0]], symprec), _group_of(frames[checked[-1]], symprec)
-    if first is None or last is None:
+    # the frames spglib was asked about at this symprec (a frame probed while locating the change
+    # at another symprec carries that symprec only)
+    have = [k for k in checked if _group_of(frames[k], symprec) is not None]
+    if not have or have[0] != checked[0] or have[-1] != checked[-1]:
         return None
+    checked = have
+    first, last = _group_of(frames[checked[0]], symprec), _group_of(frames[checked[-1]], symprec)
     direction, how = _direction_of(first, last)
     # the first checked frame from which the final group holds, and the checked frame before it
     hi = checked[-1]

@@ -156,3 +156,29 @@ def test_demo_campaign_shows_every_flag_and_one_layer_stays_chiral():
         assert ds.number == 10  # P2/m: no in-plane mirror, the 2D lattice stays oblique
     rec = driftwatch.analyze(demo / stays)
     assert rec["summary"]["final"]["type"] == "mp" and abs(rec["frames"][-1]["chiral_distance"]) > 0.5
+
+
+def test_record_json_is_what_the_standard_encoder_writes(hex_record):
+    # records.dumps converts in one pass; its text must be exactly what Python's own json module
+    # writes for the same values once numpy types, tuples and non-finite numbers are made plain
+    # (the reference here is the standard library: json.dumps, then json.loads to read it back).
+    odd = {"a": np.float64(1.5), "b": [np.int64(3), np.nan, float("inf"), np.float32(0.25)],
+           1: "key", 2.5: None, True: (1, np.array([[1.0, np.nan], [2.0, 3.0]])),
+           "p": Path("/x"), "ok": np.bool_(True), "s": "é"}
+    ref = json.loads(json.dumps(odd, default=lambda o: o.tolist() if hasattr(o, "tolist") else str(o)))
+
+    def finite(x):
+        if isinstance(x, float):
+            return x if np.isfinite(x) else None
+        if isinstance(x, dict):
+            return {k: finite(v) for k, v in x.items()}
+        if isinstance(x, list):
+            return [finite(v) for v in x]
+        return x
+    for obj, want in ((odd, finite(ref)), (hex_record, finite(json.loads(json.dumps(
+            hex_record, default=lambda o: o.tolist()))))):
+        for indent in (None, 1):
+            assert records.dumps(obj, indent=indent) == json.dumps(want, indent=indent,
+                                                                   allow_nan=False)
+    with pytest.raises(TypeError):
+        records.dumps({"x": object()})
