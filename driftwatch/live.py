@@ -122,10 +122,11 @@ class Tracker:
 
     ``record(newest=True)`` equals :func:`driftwatch.track.analyze` of the frames so far (same
     frames, flags and summary): each frame's invariants, each spectrum and each group spglib gave
-    are computed once and reused while their frame stays the same. ``newest=False`` leaves spglib
-    off the newest frame (the record judges the frames before it at the structure level: spglib
-    runs only where the lattice moved, :func:`driftwatch.track.select_frames`); the flags in
-    :data:`SPECTRUM_FLAGS` then wait for a record with the newest frame.
+    are computed once and reused while their frame stays the same. ``newest=False`` is the cheap
+    record between the steps spglib is asked about: no tolerance spectra, and the structure level
+    judged up to the newest frame where the lattice moved (:func:`driftwatch.track.select_frames`:
+    spglib runs there, once); the flags in :data:`SPECTRUM_FLAGS` wait for a record with the
+    newest frame.
 
     Args:
         config: preset name, YAML path, mapping or loaded config.
@@ -147,6 +148,7 @@ class Tracker:
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
+        self._gaps: list = []                     # each frame's vacuum gaps (Å, bulk-or-layer test)
         self._spectra_for = None
 
     def __len__(self) -> int:
@@ -171,12 +173,20 @@ class Tracker:
             self._spectra = {key: s for key, s in self._spectra.items() if key[0] < k}
             self._groups = {key: g for key, g in self._groups.items() if key[0] < k}
             self._table.truncate(k)
+            self._gaps = self._gaps[:k]
         self.frames = frames
         return k
 
     def _geometry(self, run):
         cfg = self.cfg
-        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+        gaps = None
+        if run.pbc.all():                       # each frame's vacuum gaps, computed once
+            k = len(self._gaps)
+            if k < len(run.cells):
+                self._gaps += list(geometry.vacuum_gaps(run.cells[k:], run.positions[k:]))
+            gaps = self._gaps[:len(run.cells)]
+        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"],
+                                gaps=gaps)
         if (cfg["geometry"]["require_layer"] or self.layer is True) and geo.dimension != 2:
             raise GeometryError(f"{self.source}: not a layer ({geo.reason}); a layer was required")
         if self.layer is False and geo.dimension == 2:

@@ -57,15 +57,18 @@ def select_frames(deformation: dict, sel: dict) -> list[int]:
     n = d.shape[0]
     if sel["all_frames"]:
         return list(range(n))
-    chosen = {0, n - 1}
+    forced = {0, n - 1}
     if sel["every"]:
-        chosen.update(range(0, n, sel["every"]))
-    last = d[0]
-    for i in range(1, n):
-        if i in chosen or np.max(np.abs(d[i] - last)) > sel["on_change"]:
-            chosen.add(i)
-            last = d[i]
-    return sorted(chosen)
+        forced.update(range(0, n, sel["every"]))
+    forced = sorted(forced)
+    chosen, j = [0], 0
+    while j < n - 1:         # the next frame forced or moved beyond on_change since frame j
+        nxt = forced[np.searchsorted(forced, j, side="right")]
+        moved = np.flatnonzero(np.max(np.abs(d[j + 1:nxt] - d[j]), axis=1) > sel["on_change"]) \
+            if nxt > j + 1 else ()
+        j = j + 1 + int(moved[0]) if len(moved) else nxt
+        chosen.append(j)
+    return chosen
 
 
 def spectrum_frames(n: int, sel: dict) -> list[int]:
@@ -133,6 +136,11 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
                                               vacuum_axis=geo.vacuum_axis)
         return known[(i, s)]
 
+    def relation(i, s):                 # to the first frame's group, kept with the groups
+        if (i, s, "relation") not in known:
+            known[(i, s, "relation")] = symmetry.relation(group(0, s), group(i, s))
+        return known[(i, s, "relation")]
+
     key = lambda g: (g["group"], g["operations"])
     seeds = sorted(set(seeds) | {0})
     last = seeds[-1]
@@ -140,7 +148,7 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
         group(0, s), group(last, s)
     for s in search_at:
         final = group(last, s)
-        if symmetry.relation(group(0, s), final) == "same":
+        if relation(last, s) == "same":
             continue                # kept at s: there is no step to locate
         hi, lo = last, None
         for k in reversed(seeds[:-1]):
@@ -160,7 +168,7 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
         frames[i]["structure"] = {
             "symprec": ss, "group": [g["group"] for g in gs], "symbol": [g["symbol"] for g in gs],
             "operations": [g["operations"] for g in gs],
-            "relation": [symmetry.relation(known[(0, s)], g) for s, g in zip(ss, gs)]}
+            "relation": [relation(i, s) for s in ss]}
     return len(asked)
 
 
@@ -294,7 +302,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         spectra: a cache {(frame index, bracketed): symmetry entry}; groups: a cache {(frame
             index, symprec): group}; table: a :class:`FrameTable`. Entries found are reused, new
             ones are added (the live tracker keeps them across growing runs).
-        skip_newest: leave the last frame out of the default selection (a live step not yet final).
+        skip_newest: a live record between the steps spglib is asked about: no tolerance spectra,
+            and the structure level judged up to the newest frame where the lattice moved.
         complete: False for a run still going (live): a change counts only once it held for
             ``rules.persistence.steps`` steps (see :mod:`driftwatch.rules`), so the step of the
             change is located at every structure symprec, not only at the verdict's.
@@ -316,9 +325,9 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     else:
         seeds = select_frames(table.deformation, cfg["selection"])
         with_spectrum = spectrum_frames(n, cfg["selection"])
-        if skip_newest and n > 1:
-            seeds = [i for i in seeds if i < n - 1]
-            with_spectrum = [i for i in with_spectrum if i < n - 1]
+        if skip_newest:
+            seeds = [i for i in seeds if i < n - 1] or [0]
+            with_spectrum = []
     grid = symprec_grid(cfg)
     spectra = {} if spectra is None else spectra
     calls = computed = 0
