@@ -119,7 +119,9 @@ def vacuum_gaps(cells, positions) -> np.ndarray:
     gmax = np.maximum(wrap, inner.max(axis=2) if inner.shape[2] else 0.0)
     spacing = np.empty((len(cells), 3))
     for k, (i, j) in _INPLANE.items():
-        spacing[:, k] = vol / np.linalg.norm(np.cross(cells[:, i], cells[:, j]), axis=1)
+        a, b = cells[:, i], cells[:, j]          # |a x b| (np.cross is slow on a few frames)
+        cr = a[:, [1, 2, 0]] * b[:, [2, 0, 1]] - a[:, [2, 0, 1]] * b[:, [1, 2, 0]]
+        spacing[:, k] = vol / np.sqrt(np.einsum("ni,ni->n", cr, cr))
     out = gmax * spacing
     return out[0] if single else out
 

@@ -23,15 +23,18 @@ user's call.
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 import time
 import warnings
 from pathlib import Path
 
+import numpy as np
+
 from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
-from .adapters.run import Frame, collect, frame_from_atoms
+from .adapters.run import Frame, collect, frame_from_atoms, position_precision
 from .errors import ConfigError, DriftwatchError, GeometryError, InputError, OutputError
 
 __all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker", "follow",
@@ -111,7 +114,6 @@ def code_of_format(fmt: str | None) -> str | None:
 
 
 def _same_frame(a: Frame, b: Frame) -> bool:
-    import numpy as np
     return (a.step == b.step and a.energy == b.energy and np.array_equal(a.cell, b.cell)
             and np.array_equal(a.positions, b.positions))
 
@@ -149,6 +151,7 @@ class Tracker:
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
         self._gaps: list = []                     # each frame's vacuum gaps (Å, bulk-or-layer test)
+        self._stacked: dict | None = None         # the frames' arrays (see _collect)
         self._spectra_for = None
 
     def __len__(self) -> int:
@@ -174,8 +177,42 @@ class Tracker:
             self._groups = {key: g for key, g in self._groups.items() if key[0] < k}
             self._table.truncate(k)
             self._gaps = self._gaps[:k]
+            if self._stacked and k:
+                self._stacked = {n: (v[:k] if v is not None and n in self._ARRAYS else v)
+                                 for n, v in self._stacked.items()}
+            else:
+                self._stacked = None
         self.frames = frames
         return k
+
+    _ARRAYS = ("cells", "positions", "steps", "energies", "forces", "stress")
+
+    def _collect(self, ctx):
+        """``adapters.collect`` of all frames, stacking only the frames new since the last call
+        onto the arrays kept from it (the same arrays, without a Python loop over every frame)."""
+        k = len(self._stacked["cells"]) if self._stacked else 0
+        if len(ctx.file_stages) > 1 or k > len(self.frames):
+            k, self._stacked = 0, None              # stages: collect decides them over all frames
+        if k < len(self.frames):
+            new = collect(self.frames[k:], path=self.source, fmt=self.format, ctx=ctx,
+                          run_dir=self.run_dir)
+            if not k:
+                self._stacked = {n: getattr(new, n) for n in self._ARRAYS} | {"run": new}
+            else:
+                for n in self._ARRAYS:
+                    a, b = self._stacked[n], getattr(new, n)
+                    if a is None and b is None:
+                        continue
+                    tail = (a if a is not None else b).shape[1:]
+                    a = np.full((k,) + tail, np.nan) if a is None else a
+                    b = np.full((len(new.cells),) + tail, np.nan) if b is None else b
+                    self._stacked[n] = np.concatenate([a, b])
+        st = self._stacked
+        return dataclasses.replace(
+            st["run"], **{n: st[n] for n in self._ARRAYS}, source=str(self.source),
+            format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
+            title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
+            position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs())
 
     def _geometry(self, run):
         cfg = self.cfg
@@ -204,7 +241,7 @@ class Tracker:
         ctx = ReadContext(self.source)
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         ctx.rounding = self.rounding
-        run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
+        run = self._collect(ctx)
         geo = self._geometry(run)
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
             self._spectra, self._groups = {}, {}

@@ -346,10 +346,13 @@ def _group_of(f: dict, symprec: float):
     st = f.get("structure")
     if not st:
         return None
-    gaps = [abs(math.log(x / symprec)) for x in st["symprec"]]
-    i = gaps.index(min(gaps))
-    if gaps[i] > 1e-9:
-        return None
+    if symprec in st["symprec"]:
+        i = st["symprec"].index(symprec)
+    else:
+        gaps = [abs(math.log(x / symprec)) for x in st["symprec"]]
+        i = gaps.index(min(gaps))
+        if gaps[i] > 1e-9:
+            return None
     return st["group"][i], st["symbol"][i], st["operations"][i], st["relation"][i]
 
 
@@ -369,18 +372,17 @@ def _direction_of(first, last) -> tuple[str, str]:
 def _structure_at(frames, checked, symprec, persist):
     # the frames spglib was asked about at this symprec (a frame probed while locating the change
     # at another symprec carries that symprec only)
-    have = [k for k in checked if _group_of(frames[k], symprec) is not None]
+    got = {k: _group_of(frames[k], symprec) for k in checked}
+    have = [k for k in checked if got[k] is not None]
     if not have or have[0] != checked[0] or have[-1] != checked[-1]:
         return None
     checked = have
-    first, last = _group_of(frames[checked[0]], symprec), _group_of(frames[checked[-1]], symprec)
+    first, last = got[checked[0]], got[checked[-1]]
     direction, how = _direction_of(first, last)
     # the first checked frame from which the final group holds, and the checked frame before it
     hi = checked[-1]
     for k in reversed(checked[:-1]):
-        gk = _group_of(frames[k], symprec)
-        if gk is None:
-            continue
+        gk = got[k]
         if (gk[0], gk[2]) != (last[0], last[2]):
             break
         hi = k

@@ -16,6 +16,7 @@ is asked only what the record's answer reads:
 
 from __future__ import annotations
 
+import functools
 import time
 from collections.abc import Iterable
 
@@ -84,13 +85,19 @@ def spectrum_frames(n: int, sel: dict) -> list[int]:
 
 def symprec_grid(cfg: dict) -> list[float]:
     """Log-spaced symprec grid (Å) plus every symprec a rule or the report quotes, so those are exact."""
-    s = cfg["symmetry"]
-    grid = np.geomspace(s["symprec_min"], s["symprec_max"], s["grid_points"])
-    half_step = 0.5 * np.log(grid[1] / grid[0])
-    r = cfg["rules"]
-    extra = [r["symprec_dependent"]["low"], r["symprec_dependent"]["high"],
+    s, r = cfg["symmetry"], cfg["rules"]
+    extra = (r["symprec_dependent"]["low"], r["symprec_dependent"]["high"],
              r["loose_symprec"]["symprec"], r["atoms_break_lattice"]["symprec"],
-             *structure_symprecs(cfg)]
+             *structure_symprecs(cfg))
+    return list(_grid(float(s["symprec_min"]), float(s["symprec_max"]), int(s["grid_points"]),
+                      tuple(float(x) for x in extra)))
+
+
+@functools.lru_cache(maxsize=64)
+def _grid(lo: float, hi: float, points: int, extra: tuple) -> tuple:
+    s = {"symprec_min": lo, "symprec_max": hi}
+    grid = np.geomspace(lo, hi, points)
+    half_step = 0.5 * np.log(grid[1] / grid[0])
     out = list(grid)
     moved = set()
     for x in extra:
@@ -103,7 +110,7 @@ def symprec_grid(cfg: dict) -> list[float]:
             moved.add(i)
         else:
             out.append(x)       # (a point already moved onto another quoted value stays there)
-    return sorted({round(float(x), 12) for x in out})
+    return tuple(sorted({round(float(x), 12) for x in out}))
 
 
 def structure_symprecs(cfg: dict) -> list[float]:
@@ -328,7 +335,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         if skip_newest:
             seeds = [i for i in seeds if i < n - 1] or [0]
             with_spectrum = []
-    grid = symprec_grid(cfg)
+    grid = symprec_grid(cfg) if with_spectrum else None
     spectra = {} if spectra is None else spectra
     calls = computed = 0
     for i in with_spectrum:
