@@ -120,8 +120,17 @@ def structure_symprecs(cfg: dict) -> list[float]:
                    cfg["report"]["common_symprecs"])})
 
 
+def _group_at(run: Run, geo, cfg: dict, i: int, s: float, known: dict) -> dict:
+    """spglib's group of frame ``i`` at symprec ``s`` (``symmetry.group_at``), kept in ``known``."""
+    if (i, s) not in known:
+        known[(i, s)] = symmetry.group_at(run.cells[i], run.positions[i], run.numbers, s,
+                                          angle_tolerance=cfg["symmetry"]["angle_tolerance"],
+                                          vacuum_axis=geo.vacuum_axis)
+    return known[(i, s)]
+
+
 def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int],
-                   search_at: list[float], known: dict | None = None) -> int:
+                   search_at: list[float], known: dict | None = None, full=()) -> int:
     """spglib's group at :func:`structure_symprecs` on the first frame and the last seed, and, at
     each symprec of ``search_at`` where the two groups are not the same (``symmetry.relation``),
     the frame from which the final group holds: the seeds are scanned back from the last until one
@@ -129,19 +138,19 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
     between them is assumed; the record says which frames were checked). Only what this asks is
     computed: a frame probed at one symprec carries that symprec alone in its ``structure`` entry.
     ``known``: {(frame, symprec): group} answers to reuse and extend (the live tracker keeps it).
-    Returns the number of frames spglib was asked about."""
-    sym = cfg["symmetry"]
+    ``full``: frames asked at every structure symprec too (those with a tolerance spectrum: their
+    answers are spglib's memoised ones). Returns the number of frames spglib was asked about."""
     precs = structure_symprecs(cfg)
     known = {} if known is None else known
     asked: dict[int, set] = {}
 
     def group(i, s):
         asked.setdefault(i, set()).add(s)
-        if (i, s) not in known:
-            known[(i, s)] = symmetry.group_at(run.cells[i], run.positions[i], run.numbers, s,
-                                              angle_tolerance=sym["angle_tolerance"],
-                                              vacuum_axis=geo.vacuum_axis)
-        return known[(i, s)]
+        return _group_at(run, geo, cfg, i, s, known)
+
+    for i in full:
+        for s in precs:
+            group(i, s)
 
     def relation(i, s):                 # to the first frame's group, kept with the groups
         if (i, s, "relation") not in known:
@@ -337,6 +346,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
             with_spectrum = []
     grid = symprec_grid(cfg) if with_spectrum else None
     spectra = {} if spectra is None else spectra
+    groups = {} if groups is None else groups
+    precs = structure_symprecs(cfg)
     calls = computed = 0
     for i in with_spectrum:
         key = (i, i == n - 1)               # the structure's brackets on the last frame only
@@ -346,9 +357,11 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
             calls += int(spectra[key].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
         entries[i]["symmetry"] = spectra[key]
+        for s in precs:                     # grid points: spglib's answers are still memoised
+            _group_at(run, geo, cfg, i, s, groups)
     verdict_at = [float(cfg["rules"]["structure"]["symprec"])]
-    probed = _group_entries(run, geo, cfg, entries, seeds, verdict_at if complete
-                            else structure_symprecs(cfg), groups) if seeds else 0
+    probed = _group_entries(run, geo, cfg, entries, seeds, verdict_at if complete else precs,
+                            groups, full=with_spectrum) if seeds else 0
     last = n - 1
     if "symmetry" in entries[last]:
         entries[last]["symmetry"] = dict(entries[last]["symmetry"],   # the cached spectrum stays
