@@ -183,7 +183,31 @@ def _layer_angle_tolerance_applied():
 # ----------------------------------------------------------------------------------------------
 # input checks and the layer permutation
 # ----------------------------------------------------------------------------------------------
+_PREPARED: "collections.OrderedDict[tuple, tuple]" = collections.OrderedDict()
+
+
 def _prepare(cell, positions, numbers, vacuum_axis):
+    """(lattice, fractional positions, numbers) as spglib takes them, checked; memoised on the
+    exact input (a frame's spectrum, groups and displacements share it). Read-only arrays."""
+    try:
+        c, p, z = (np.ascontiguousarray(cell, dtype=float), np.ascontiguousarray(positions, float),
+                   np.ascontiguousarray(numbers))
+        key = (c.shape, c.tobytes(), p.shape, p.tobytes(), z.dtype.str, z.shape, z.tobytes(),
+               vacuum_axis)
+    except (TypeError, ValueError):
+        return _prepare_uncached(cell, positions, numbers, vacuum_axis)
+    hit = _PREPARED.get(key)
+    if hit is None:
+        hit = _prepare_uncached(cell, positions, numbers, vacuum_axis)
+        for a in hit:
+            a.setflags(write=False)
+        _PREPARED[key] = hit
+        if len(_PREPARED) > _DATASET_MEMO:
+            _PREPARED.popitem(last=False)
+    return hit
+
+
+def _prepare_uncached(cell, positions, numbers, vacuum_axis):
     cell = np.asarray(cell, dtype=float)
     positions = np.asarray(positions, dtype=float)
     numbers = np.asarray(numbers)
@@ -559,11 +583,11 @@ def group_at(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_
     if ds is None:
         return {"group": 0, "symbol": "", "operations": 0, "rotations": [], "centring": []}
     rot = np.asarray(ds.rotations, dtype=int)
-    unique = sorted({tuple(r.ravel()) for r in rot})
+    unique = np.unique(rot.reshape(len(rot), 9), axis=0).tolist()   # sorted, as tuples sort
     centring = np.mod(np.round(_pure_translations(ds), 6), 1.0)
     centring = sorted({tuple(float(x) % 1.0 for x in t) for t in centring})
     return {"group": int(ds.number), "symbol": str(ds.international), "operations": int(len(rot)),
-            "rotations": [list(r) for r in unique], "centring": [list(t) for t in centring]}
+            "rotations": unique, "centring": [list(t) for t in centring]}
 
 
 def primitive_lattice(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None):
@@ -580,10 +604,10 @@ def primitive_lattice(cell, positions, numbers, symprec, *, angle_tolerance=-1.0
     T = _pure_translations(ds)
     n = len(T)
     if n <= 1:
-        return lattice
+        return lattice.copy()
     scaled = T * n
     if np.abs(scaled - np.round(scaled)).max() > 1e-5 * n:
-        return lattice
+        return lattice.copy()
     basis = _integer_basis(np.vstack([n * np.eye(3), np.round(scaled)])) / n
     return basis @ lattice
 
@@ -937,6 +961,7 @@ def clear_cache():
     _SPECTRUM_CACHE.clear()
     _LATTICE_CACHE.clear()
     _DATASETS.clear()
+    _PREPARED.clear()
 
 
 def versions():

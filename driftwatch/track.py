@@ -130,7 +130,7 @@ def _group_at(run: Run, geo, cfg: dict, i: int, s: float, known: dict) -> dict:
 
 
 def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int],
-                   search_at: list[float], known: dict | None = None, full=()) -> int:
+                   search_at: list[float], known: dict | None = None, also=()) -> int:
     """spglib's group at :func:`structure_symprecs` on the first frame and the last seed, and, at
     each symprec of ``search_at`` where the two groups are not the same (``symmetry.relation``),
     the frame from which the final group holds: the seeds are scanned back from the last until one
@@ -138,8 +138,8 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
     between them is assumed; the record says which frames were checked). Only what this asks is
     computed: a frame probed at one symprec carries that symprec alone in its ``structure`` entry.
     ``known``: {(frame, symprec): group} answers to reuse and extend (the live tracker keeps it).
-    ``full``: frames asked at every structure symprec too (those with a tolerance spectrum: their
-    answers are spglib's memoised ones). Returns the number of frames spglib was asked about."""
+    ``also``: frames asked at the verdict's symprec too (those with a tolerance spectrum, for the
+    per-step tables: spglib's answer is the spectrum's). Returns the number of frames asked."""
     precs = structure_symprecs(cfg)
     known = {} if known is None else known
     asked: dict[int, set] = {}
@@ -148,9 +148,8 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
         asked.setdefault(i, set()).add(s)
         return _group_at(run, geo, cfg, i, s, known)
 
-    for i in full:
-        for s in precs:
-            group(i, s)
+    for i in also:
+        group(i, float(cfg["rules"]["structure"]["symprec"]))
 
     def relation(i, s):                 # to the first frame's group, kept with the groups
         if (i, s, "relation") not in known:
@@ -348,6 +347,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     spectra = {} if spectra is None else spectra
     groups = {} if groups is None else groups
     precs = structure_symprecs(cfg)
+    verdict_at = [float(cfg["rules"]["structure"]["symprec"])]
     calls = computed = 0
     for i in with_spectrum:
         key = (i, i == n - 1)               # the structure's brackets on the last frame only
@@ -357,11 +357,10 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
             calls += int(spectra[key].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
         entries[i]["symmetry"] = spectra[key]
-        for s in precs:                     # grid points: spglib's answers are still memoised
+        for s in (precs if i in (0, n - 1) else verdict_at):   # spglib's answers still memoised
             _group_at(run, geo, cfg, i, s, groups)
-    verdict_at = [float(cfg["rules"]["structure"]["symprec"])]
     probed = _group_entries(run, geo, cfg, entries, seeds, verdict_at if complete else precs,
-                            groups, full=with_spectrum) if seeds else 0
+                            groups, also=with_spectrum) if seeds else 0
     last = n - 1
     if "symmetry" in entries[last]:
         entries[last]["symmetry"] = dict(entries[last]["symmetry"],   # the cached spectrum stays
