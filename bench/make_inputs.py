@@ -5,8 +5,12 @@ Usage::
     python bench/make_inputs.py OUTDIR [--runs 200] [--steps 50] [--sizes 4,48,192]
                                 [--formats vasprun,outcar,pwx] [--check N]
 
-writes ``OUTDIR/<format>-<atoms>/run-0000/{vasprun.xml|OUTCAR|pw.out}`` (one file per run folder,
-as a campaign audit would find them). Nothing is committed: the files are regenerated on demand.
+writes ``OUTDIR/<format>-<atoms>/calc-0000/{vasprun.xml|OUTCAR|pw.out}`` (one file per run folder,
+as a campaign audit would find them), and for the audit benchmark ``OUTDIR/<cell>-<atoms>/calc-0000/``
+campaigns of one cell kind (``vc``: variable cell, ``fc``: fixed cell) whose runs take the three
+formats in turn (:func:`make_mixed`). Folders are ``calc-*``, not ``run-*``: driftwatch reads a
+folder whose subfolders are named ``run1``, ``run_2``, ``relax1`` ... as the stages of one run.
+Nothing is committed: the files are regenerated on demand.
 
 The trajectories are invented (no published data): an fcc-like 4-atom conventional cell and
 diamond-like 48- and 192-atom supercells (3x2x1 and 3x2x4 of the 8-atom cell), rattled, with a
@@ -41,7 +45,7 @@ sys.path.insert(0, str(HERE.parent / "tests"))
 from vasp_gen import Trajectory, write_outcar, write_vasprun  # noqa: E402
 
 FORMATS = {"vasprun": "vasprun.xml", "outcar": "OUTCAR", "pwx": "pw.out"}
-GENERATOR = "2"       # bump when the files change: campaigns with another stamp are rewritten
+GENERATOR = "3"       # bump when the files change: campaigns with another stamp are rewritten
 SIZES = (4, 48, 192)
 
 
@@ -63,7 +67,8 @@ def _base(n_atoms: int):
 
 
 def relaxation(n_atoms: int, steps: int, seed: int) -> Trajectory:
-    """An invented relaxation of a rattled, strained supercell (seeded)."""
+    """An invented relaxation of a rattled, strained supercell (seeded): a fixed cell when
+    ``seed % 4 == 0``, stuck at 35 % of its distortion when ``seed % 5 == 4``."""
     rng = np.random.default_rng(seed)
     cell0, frac0, symbols = _base(n_atoms)
     nat = len(frac0)
@@ -343,22 +348,40 @@ def campaign_dir(out: Path, fmt: str, n_atoms: int) -> Path:
     return Path(out) / f"{fmt}-{n_atoms}"
 
 
-def make_campaign(out: Path, fmt: str, n_atoms: int, runs: int, steps: int) -> list[Path]:
-    """Write ``runs`` run folders; an existing campaign of the same shape is kept (a stamp file)."""
-    root = campaign_dir(out, fmt, n_atoms)
+def _write_campaign(root: Path, plan: list[tuple[str, int]], n_atoms: int, steps: int) -> list[Path]:
+    """Run folders ``calc-0000`` ... for ``plan`` = [(format, seed), ...]; an existing campaign
+    of the same plan is kept (a stamp file); anything else in the folder is removed first."""
     stamp = root / ".made"
-    want = f"{runs} {steps} {GENERATOR}\n"
+    want = f"{GENERATOR} {steps} {n_atoms} {plan}\n"
+    paths = [root / f"calc-{i:04d}" / FORMATS[fmt] for i, (fmt, _) in enumerate(plan)]
     if stamp.is_file() and stamp.read_text() == want:
-        return sorted(root.glob("run-*/" + FORMATS[fmt]))
-    paths = []
-    for i in range(runs):
-        traj = relaxation(n_atoms, steps, seed=i)
-        paths.append(write_run(root / f"run-{i:04d}", fmt, traj))
-    for extra in root.glob("run-*"):     # runs left by a larger earlier campaign in this folder
-        if extra.is_dir() and extra.name[4:].isdigit() and int(extra.name[4:]) >= runs:
-            shutil.rmtree(extra)
+        return paths
+    if root.exists():
+        shutil.rmtree(root)
+    for i, (fmt, seed) in enumerate(plan):
+        write_run(root / f"calc-{i:04d}", fmt, relaxation(n_atoms, steps, seed=seed))
     stamp.write_text(want)
     return paths
+
+
+def make_campaign(out: Path, fmt: str, n_atoms: int, runs: int, steps: int) -> list[Path]:
+    """``runs`` runs of one format (seeds 0, 1, ...: one in four with a fixed cell)."""
+    return _write_campaign(campaign_dir(out, fmt, n_atoms), [(fmt, i) for i in range(runs)],
+                           n_atoms, steps)
+
+
+def mixed_dir(out: Path, cell: str, n_atoms: int) -> Path:
+    return Path(out) / f"{cell}-{n_atoms}"
+
+
+def make_mixed(out: Path, cell: str, n_atoms: int, runs: int, steps: int) -> list[Path]:
+    """``runs`` runs of one cell kind (``vc`` variable, ``fc`` fixed; the seeds of that kind in
+    order, so one run in five is stuck), taking the formats vasprun.xml, OUTCAR, pw.x in turn."""
+    fixed = {"vc": False, "fc": True}[cell]
+    seeds = [s for s in range(8 * runs + 8) if (s % 4 == 0) == fixed][:runs]
+    fmts = list(FORMATS)
+    return _write_campaign(mixed_dir(out, cell, n_atoms),
+                           [(fmts[i % len(fmts)], s) for i, s in enumerate(seeds)], n_atoms, steps)
 
 
 def check_with_ase(path: Path, fmt: str, traj: Trajectory, tol: float = 1e-6) -> None:

@@ -428,8 +428,8 @@ def _validate(arr, single):
         raise LatticeError(f"{_where(i, single)}: cell contains non-finite numbers "
                            f"(NaN or inf): {arr[i].tolist()}")
     m = np.abs(arr).max(axis=2, keepdims=True)
-    lengths = np.sqrt(np.einsum("nij,nij->ni", arr / np.where(m > 0, m, 1.0),
-                                arr / np.where(m > 0, m, 1.0))) * m[..., 0]   # no overflow
+    scaled = arr / np.where(m > 0, m, 1.0)
+    lengths = np.sqrt(np.einsum("nij,nij->ni", scaled, scaled)) * m[..., 0]   # no overflow
     zero = lengths == 0
     if zero.any():
         i, k = (int(v) for v in np.argwhere(zero)[0])
@@ -658,16 +658,32 @@ def _check_metric(metric):
 
 
 def _cone(x, metric):
-    """(n, 13) distance (L2 or L-inf) from 7-vectors x (n, 7), x >= 0, to each type's closure."""
+    """(n, 13) distance (L2 or L-inf) from 7-vectors x (n, 7), x >= 0, to each type's closure.
+
+    L2: one (K, 28) @ (28, m) product per block of frames, then the minimum over each type's rows
+    (row minima: 1.6x faster than ``minimum.reduceat`` along the rows of a full block). A block's frame count is
+    padded to a multiple of 8 so every frame goes through the same matrix-product kernel: a lone
+    frame would otherwise take BLAS's matrix-vector path and differ in the last bit from the same
+    frame in a batch (the live tracker computes one new frame at a time)."""
     tab = _pattern_table()
     out = np.empty((x.shape[0], len(TYPES)))
+    ends = np.append(tab["starts"][1:], tab["l2w"].shape[0])
     for s in range(0, x.shape[0], _CHUNK):
         xt = np.ascontiguousarray(x[s:s + _CHUNK].T)  # (7, m): rows are gathered
         m = xt.shape[1]
         if metric == "l2":
+            if m % 8:
+                xt = np.concatenate([xt, np.zeros((7, 8 - m % 8))], axis=1)
             di = xt[_DI] - xt[_DJ]
-            feat = np.concatenate([xt * xt, di * di], axis=0)  # (28, m)
-            best = np.minimum.reduceat(tab["l2w"] @ feat, tab["starts"], axis=0)
+            feat = np.concatenate([xt * xt, di * di], axis=0)  # (28, m padded)
+            prod = tab["l2w"] @ feat
+            if m < 64:      # (few frames: one call beats 13)
+                best = np.minimum.reduceat(prod, tab["starts"], axis=0)[:, :m]
+            else:
+                best = np.empty((len(TYPES), prod.shape[1]))
+                for t, (a, b) in enumerate(zip(tab["starts"], ends)):
+                    np.min(prod[a:b], axis=0, out=best[t])
+                best = best[:, :m]
         else:
             zv, bv = xt[tab["zidx"]], xt[tab["bidx"]]
             zf = np.maximum.reduceat(zv, tab["zstart"], axis=0)

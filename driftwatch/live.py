@@ -23,15 +23,18 @@ user's call.
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 import time
 import warnings
 from pathlib import Path
 
+import numpy as np
+
 from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
-from .adapters.run import Frame, collect, frame_from_atoms
+from .adapters.run import Frame, collect, frame_from_atoms, position_precision
 from .errors import ConfigError, DriftwatchError, GeometryError, InputError, OutputError
 
 __all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker", "follow",
@@ -111,20 +114,21 @@ def code_of_format(fmt: str | None) -> str | None:
 
 
 def _same_frame(a: Frame, b: Frame) -> bool:
-    import numpy as np
     return (a.step == b.step and a.energy == b.energy and np.array_equal(a.cell, b.cell)
             and np.array_equal(a.positions, b.positions))
 
 
 # ---------------------------------------------------------------- incremental record
 class Tracker:
-    """The record of a growing run: invariants on every frame, spglib spectra cached per frame.
+    """The record of a growing run: each frame's invariants, spglib spectra and groups computed once.
 
     ``record(newest=True)`` equals :func:`driftwatch.track.analyze` of the frames so far (same
-    frames, flags and summary): spglib runs on the frames :func:`driftwatch.track.select_frames`
-    picks, and each spectrum is computed once and reused while its frame stays the same.
-    ``newest=False`` skips the newest frame's spectrum (it is picked by ``select_frames`` only
-    because it is last); the flags in :data:`SPECTRUM_FLAGS` then wait for the next record.
+    frames, flags and summary): each frame's invariants, each spectrum and each group spglib gave
+    are computed once and reused while their frame stays the same. ``newest=False`` is the cheap
+    record between the steps spglib is asked about: no tolerance spectra, and the structure level
+    judged up to the newest frame where the lattice moved (:func:`driftwatch.track.select_frames`:
+    spglib runs there, once); the flags in :data:`SPECTRUM_FLAGS` wait for a record with the
+    newest frame.
 
     Args:
         config: preset name, YAML path, mapping or loaded config.
@@ -143,7 +147,11 @@ class Tracker:
         self.code_settings: dict = {}
         self.title: str | None = None
         self.rounding: tuple | None = None      # the reader's printed precision of positions
-        self._spectra: dict[int, dict] = {}
+        self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
+        self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
+        self._table = track.FrameTable()          # each frame's invariants
+        self._gaps: list = []                     # each frame's vacuum gaps (Å, bulk-or-layer test)
+        self._stacked: dict | None = None         # the frames' arrays (see _collect)
         self._spectra_for = None
 
     def __len__(self) -> int:
@@ -165,13 +173,57 @@ class Tracker:
                 break
             k += 1
         if k < len(self.frames):
-            self._spectra = {i: s for i, s in self._spectra.items() if i < k}
+            self._spectra = {key: s for key, s in self._spectra.items() if key[0] < k}
+            self._groups = {key: g for key, g in self._groups.items() if key[0] < k}
+            self._table.truncate(k)
+            self._gaps = self._gaps[:k]
+            if self._stacked and k:
+                self._stacked = {n: (v[:k] if v is not None and n in self._ARRAYS else v)
+                                 for n, v in self._stacked.items()}
+            else:
+                self._stacked = None
         self.frames = frames
         return k
 
+    _ARRAYS = ("cells", "positions", "steps", "energies", "forces", "stress")
+
+    def _collect(self, ctx):
+        """``adapters.collect`` of all frames, stacking only the frames new since the last call
+        onto the arrays kept from it (the same arrays, without a Python loop over every frame)."""
+        k = len(self._stacked["cells"]) if self._stacked else 0
+        if len(ctx.file_stages) > 1 or k > len(self.frames):
+            k, self._stacked = 0, None              # stages: collect decides them over all frames
+        if k < len(self.frames):
+            new = collect(self.frames[k:], path=self.source, fmt=self.format, ctx=ctx,
+                          run_dir=self.run_dir)
+            if not k:
+                self._stacked = {n: getattr(new, n) for n in self._ARRAYS} | {"run": new}
+            else:
+                for n in self._ARRAYS:
+                    a, b = self._stacked[n], getattr(new, n)
+                    if a is None and b is None:
+                        continue
+                    tail = (a if a is not None else b).shape[1:]
+                    a = np.full((k,) + tail, np.nan) if a is None else a
+                    b = np.full((len(new.cells),) + tail, np.nan) if b is None else b
+                    self._stacked[n] = np.concatenate([a, b])
+        st = self._stacked
+        return dataclasses.replace(
+            st["run"], **{n: st[n] for n in self._ARRAYS}, source=str(self.source),
+            format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
+            title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
+            position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs())
+
     def _geometry(self, run):
         cfg = self.cfg
-        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+        gaps = None
+        if run.pbc.all():                       # each frame's vacuum gaps, computed once
+            k = len(self._gaps)
+            if k < len(run.cells):
+                self._gaps += list(geometry.vacuum_gaps(run.cells[k:], run.positions[k:]))
+            gaps = self._gaps[:len(run.cells)]
+        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"],
+                                gaps=gaps)
         if (cfg["geometry"]["require_layer"] or self.layer is True) and geo.dimension != 2:
             raise GeometryError(f"{self.source}: not a layer ({geo.reason}); a layer was required")
         if self.layer is False and geo.dimension == 2:
@@ -189,11 +241,18 @@ class Tracker:
         ctx = ReadContext(self.source)
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         ctx.rounding = self.rounding
-        run = collect(self.frames, path=self.source, fmt=self.format, ctx=ctx, run_dir=self.run_dir)
+        run = self._collect(ctx)
         geo = self._geometry(run)
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
-            self._spectra, self._spectra_for = {}, (geo.dimension, geo.vacuum_axis)
+            self._spectra, self._groups = {}, {}
+            self._spectra_for = (geo.dimension, geo.vacuum_axis)
+        # a spectrum with brackets is the last frame's; once a newer frame came, the frame
+        # needs its spectrum without them (kept while it may still be asked for)
+        n = len(self.frames)
+        self._spectra = {key: v for key, v in self._spectra.items() if key[1] is False
+                         or key[0] >= n - 1}
         record = track.record_from_run(run, cfg, geo=geo, spectra=self._spectra,
+                                       groups=self._groups, table=self._table,
                                        skip_newest=not newest, complete=complete)
         record["timing"]["total_s"] = time.perf_counter() - t0
         return record
@@ -239,13 +298,16 @@ class SymmetryWatch:
             if watch.fired:
                 break
 
-    ``watch.record`` is the current record (same content as :func:`driftwatch.track.analyze` of
-    the observed steps: spglib runs on the frames it would choose, which always includes the newest,
-    each spectrum computed once). That costs one tolerance spectrum per call (measured here: ~0.05 s
-    for a 1-atom layer, ~0.08 s for a 27-atom slab, ~0.3 s for a 27-atom bulk cell); with
-    ``lazy=True`` the newest frame's spectrum is skipped unless a ``stop_on`` code needs it, and
-    ``watch.finish()`` after the run completes the record. ``output`` is rewritten atomically on
-    every call (rank 0 only
+    Cost: every call computes the new frame's lattice invariants and judges the run (the lattice
+    flags are current at every step); spglib runs on the first frame, on a frame where the lattice
+    moved (``selection.on_change``: the structure level is judged up to there), and on the newest
+    frame only when asked: when a ``stop_on`` code needs it (:data:`SPECTRUM_FLAGS`), when a
+    ``stop_on`` flag is raised (the record that warns or stops is complete), at :meth:`finish`, or
+    with ``lazy=False`` at every call (one tolerance spectrum per call: measured here ~0.05 s for a
+    1-atom layer, ~0.3 s for a 27-atom bulk cell). ``bench/run.py`` measures the cost per step.
+    ``watch.record`` is the current record; after :meth:`finish` (or a raised flag) it has the
+    same content as :func:`driftwatch.track.analyze` of the observed steps. ``output`` is rewritten
+    atomically on every call (rank 0 only
     under MPI; every rank computes, so every rank raises together). An analysis error
     (e.g. a molecule, which is neither layer nor bulk) never stops the relaxation: it is issued once
     as a ``RuntimeWarning`` and kept in ``watch.error``.
@@ -254,7 +316,7 @@ class SymmetryWatch:
     MODES = ("record", "warn", "stop")
 
     def __init__(self, atoms, *, config=None, mode="record", stop_on=("lattice-gained",), output=None,
-                 layer=None, optimizer=None, lazy=False):
+                 layer=None, optimizer=None, lazy=True):
         if mode not in self.MODES:
             raise ConfigError(f"mode: must be one of {', '.join(self.MODES)}, got {mode!r}")
         inner = getattr(atoms, "atoms", None)
@@ -268,6 +330,7 @@ class SymmetryWatch:
         self.output = None if output is None else Path(output)
         self.optimizer = optimizer
         self.lazy = bool(lazy)
+        self._needs_newest = _needs_spectra(self.stop_on)
         self.fired: list[dict] = []
         self.record: dict | None = None
         self.error: DriftwatchError | None = None
@@ -281,7 +344,7 @@ class SymmetryWatch:
         step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
         self._calls += 1
         self._tracker.append(frame_from_atoms(self.atoms, step))
-        self._update(newest=not self.lazy or _needs_spectra(self.stop_on), stacklevel=3)
+        self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
 
     def finish(self) -> dict | None:
         """The complete record (spglib on the newest frame too), written to ``output``.
@@ -304,6 +367,10 @@ class SymmetryWatch:
             self.error = exc
             return
         new = [f for f in rules.select(rec["flags"], self.stop_on) if _key(f) not in self._seen]
+        if new and not newest:
+            # a flag is raised: the record that warns, stops or is kept is the complete one
+            # (spglib on the newest frame too; its spectrum is cached for the next calls)
+            return self._update(newest=True, stacklevel=stacklevel + 1, complete=complete)
         self._seen.update(_key(f) for f in new)
         self.fired.extend(new)
         rec["live"] = {"observer": {"mode": self.mode, "stop_on": self.stop_on,

@@ -51,21 +51,37 @@ def _default(obj):
     raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
 
 
-def _finite(obj):
-    """Replace NaN/inf by None so the JSON is standard (no bare NaN tokens)."""
-    if isinstance(obj, float):
+def _key(k) -> str:
+    """A dict key as JSON writes it (numbers, booleans and None as their JSON text)."""
+    return next(iter(json.loads(json.dumps({k: 0}))))
+
+
+def _plain(obj):
+    """The record as plain JSON values in one pass: numpy scalars and arrays converted, tuples as
+    lists, NaN/inf as None (standard JSON, no bare NaN tokens), keys as JSON writes them."""
+    t = type(obj)
+    if t is float:
         return obj if math.isfinite(obj) else None
+    if t is str or t is int or t is bool or obj is None:
+        return obj
+    if t is dict:
+        return {k if type(k) is str else _key(k): _plain(v) for k, v in obj.items()}
+    if t is list or t is tuple:
+        return [_plain(v) for v in obj]
+    if isinstance(obj, float):            # numpy float64 and other float subclasses
+        return _plain(float(obj))
+    if isinstance(obj, (str, int)) and not isinstance(obj, np.integer):
+        return obj
     if isinstance(obj, dict):
-        return {k: _finite(v) for k, v in obj.items()}
+        return _plain(dict(obj))
     if isinstance(obj, (list, tuple)):
-        return [_finite(v) for v in obj]
-    return obj
+        return [_plain(v) for v in obj]
+    return _plain(_default(obj))
 
 
 def dumps(record: dict, indent: int | None = 1) -> str:
     """Standard JSON text of a record (numpy scalars converted, non-finite numbers as null)."""
-    return json.dumps(_finite(json.loads(json.dumps(record, default=_default))), indent=indent,
-                      allow_nan=False)
+    return json.dumps(_plain(record), indent=indent, allow_nan=False)
 
 
 TEMP_PREFIX = ".driftwatch-"

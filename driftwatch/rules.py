@@ -178,10 +178,37 @@ def _most_specific(types, values, within):
     return max(ok, key=lambda t: (ORDER[t], -values[t])) if ok else None
 
 
+def _states(D: dict, types, within, lowest) -> list[str]:
+    """:func:`_most_specific` of every frame (``lowest`` where no type is held), vectorised: the
+    highest holohedry order held, the smaller deformation among types of that order (the first
+    in ``types`` on a tie)."""
+    M = np.stack([D[t] for t in types], axis=1)            # (n, types)
+    held = M <= within
+    out = np.full(M.shape[0], lowest, dtype=object)
+    free = np.ones(M.shape[0], bool)
+    for level in sorted({ORDER[t] for t in types}, reverse=True):
+        cols = [j for j, t in enumerate(types) if ORDER[t] == level]
+        h = held[:, cols]
+        rows = free & h.any(axis=1)
+        if rows.any():
+            pick = np.argmin(np.where(h[rows], M[rows][:, cols], np.inf), axis=1)
+            out[rows] = np.array([types[cols[j]] for j in range(len(cols))], dtype=object)[pick]
+            free &= ~rows
+    return out.tolist()
+
+
 def _from_frame(series: np.ndarray, holds) -> int:
     """First frame from which ``holds(series)`` stays true to the end (series is (n,))."""
     bad = np.nonzero(~holds(series))[0]
     return int(bad[-1] + 1) if bad.size else 0
+
+
+def _from_frames(holds: np.ndarray) -> list[int]:
+    """:func:`_from_frame` of every column of a boolean (n, k) array."""
+    n = holds.shape[0]
+    bad = ~holds[::-1]
+    last_bad = n - 1 - bad.argmax(axis=0)              # the last frame where it does not hold
+    return [int(x) for x in np.where(bad.any(axis=0), last_bad + 1, 0)]
 
 
 def _stretches(states: list[str]) -> list[tuple[str, int, int]]:
@@ -199,11 +226,12 @@ def _stretches(states: list[str]) -> list[tuple[str, int, int]]:
 def _lattice_verdict(frames, dim, r, persist, fixed_cell):
     """Direction of the lattice from the deformation series (and the 2D sign for layers)."""
     types = _types(dim)
-    D = {t: np.array([f["deformation"][t] for f in frames], dtype=float) for t in types}
+    M = np.array([[f["deformation"][t] for t in types] for f in frames], dtype=float)  # (n, types)
+    D = {t: M[:, j] for j, t in enumerate(types)}
     n, lat = len(frames), r["lattice"]
     within, away, beyond = lat["within"], lat["start_away"], lat["left_beyond"]
-    held_since = {t: _from_frame(D[t], lambda x: x <= within) for t in types}
-    left_since = {t: _from_frame(D[t], lambda x: x > within) for t in types}
+    held_since = dict(zip(types, _from_frames(M <= within)))
+    left_since = dict(zip(types, _from_frames(M > within)))
     # a finished run is judged on its last frame; a live one once the change held `persist` steps
     steps = [int(f["step"]) for f in frames]
     lasted = (lambda since: True) if persist is None else (
@@ -212,8 +240,7 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell):
     lost = [t for t in types if D[t][0] <= within and D[t][-1] >= beyond and lasted(left_since[t])]
     top = lambda ts, k: max(ts, key=lambda t: (ORDER[t], -D[t][k])) if ts else None
     g, lo = top(gained, -1), top(lost, 0)
-    states = [_most_specific(types, {t: D[t][i] for t in types}, within) or _LOWEST[dim]
-              for i in range(n)]
+    states = _states(D, types, within, _LOWEST[dim])
     first, last = states[0], states[-1]
     flip = _handedness(frames, r["handedness_flip"]) if dim == 2 else None
     if flip and persist is not None and not lasted(flip["frame"]):
@@ -326,9 +353,13 @@ def _group_of(f: dict, symprec: float):
     st = f.get("structure")
     if not st:
         return None
-    i = int(np.argmin(np.abs(np.log(np.asarray(st["symprec"], float) / symprec))))
-    if abs(math.log(st["symprec"][i] / symprec)) > 1e-9:
-        return None
+    if symprec in st["symprec"]:
+        i = st["symprec"].index(symprec)
+    else:
+        gaps = [abs(math.log(x / symprec)) for x in st["symprec"]]
+        i = gaps.index(min(gaps))
+        if gaps[i] > 1e-9:
+            return None
     return st["group"][i], st["symbol"][i], st["operations"][i], st["relation"][i]
 
 
@@ -346,16 +377,19 @@ def _direction_of(first, last) -> tuple[str, str]:
 
 
 def _structure_at(frames, checked, symprec, persist):
-    first, last = _group_of(frames[checked[0]], symprec), _group_of(frames[checked[-1]], symprec)
-    if first is None or last is None:
+    # the frames spglib was asked about at this symprec (a frame probed while locating the change
+    # at another symprec carries that symprec only)
+    got = {k: _group_of(frames[k], symprec) for k in checked}
+    have = [k for k in checked if got[k] is not None]
+    if not have or have[0] != checked[0] or have[-1] != checked[-1]:
         return None
+    checked = have
+    first, last = got[checked[0]], got[checked[-1]]
     direction, how = _direction_of(first, last)
     # the first checked frame from which the final group holds, and the checked frame before it
     hi = checked[-1]
     for k in reversed(checked[:-1]):
-        gk = _group_of(frames[k], symprec)
-        if gk is None:
-            continue
+        gk = got[k]
         if (gk[0], gk[2]) != (last[0], last[2]):
             break
         hi = k

@@ -1,13 +1,23 @@
-"""One run through the pipeline: frames -> invariants on every frame -> spglib on chosen frames -> record.
+"""One run through the pipeline: frames -> invariants on every frame -> spglib where the answer needs it
+-> record.
 
 ``analyze(path_or_run, config)`` returns the run record (schema ``driftwatch/run-2``, see
-``docs/record.md``). The lattice invariants are computed for all frames in one vectorised call; spglib
-runs only on the frames :func:`select_frames` picks.
+``docs/record.md``). The lattice invariants are computed for all frames in one vectorised call. spglib
+is asked only what the record's answer reads:
+
+* a tolerance spectrum (the symprec grid, structure and lattice alone) on the first and last frames
+  (:func:`spectrum_frames`; every Nth with ``selection.every``, all with ``selection.all_frames``),
+  with the structure's breakpoints bracketed on the last frame only (the tolerance advice reads them);
+* the structure's group at :func:`structure_symprecs` on the first and last frames, and, where the two
+  differ at the verdict's symprec, the frame from which the final group holds: the frames
+  :func:`select_frames` picks (first, last, where the lattice moved) are scanned back from the last,
+  then the frames between are bisected (:func:`_group_entries`).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import functools
 import time
 from collections.abc import Iterable
 
@@ -18,57 +28,77 @@ from .adapters import Run, read_run
 from .errors import GeometryError, LatticeError, SymmetryError
 
 __all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "select_frames",
-           "symprec_grid", "structure_symprecs", "LAYER_TYPES", "BULK_TYPES"]
+           "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
+           "BULK_TYPES"]
 
 LAYER_TYPES = lattice2d.TYPES
 BULK_TYPES = lattice3d.TYPES
 
 
-def _as_lists(d: dict, i: int) -> dict:
-    return {k: float(v[i]) for k, v in d.items()}
-
-
-def lattice_table(run: Run, geo, metric: str = "l2") -> dict:
-    """Invariants of every frame as arrays (n, ...). Layers use the in-plane 2D lattice; bulk the 3D cell."""
+def lattice_table(run: Run, geo, metric: str = "l2", start: int = 0) -> dict:
+    """Invariants of frames ``start:`` as arrays (n, ...). Layers use the in-plane 2D lattice; bulk
+    the 3D cell. Each frame's values do not depend on the other frames computed with it."""
+    cells = run.cells[start:]
     if geo.dimension == 2:
-        bases = geometry.inplane_bases(run.cells, geo.vacuum_axis)
+        bases = geometry.inplane_bases(cells, geo.vacuum_axis)
         inv = lattice2d.invariants(bases, metric=metric)
         return {"dimension": 2, "bases": bases, "root_invariant": inv["root_invariant"],
                 "sign": inv["sign"], "projected": inv["projected"], "distance": inv["distances"],
                 "distance_projected": inv["distances_projected"], "deformation": inv["deformation"],
                 "chiral_distance": inv["chiral_distance"]}
-    inv = lattice3d.invariants(run.cells, metric=metric)
-    return {"dimension": 3, "bases": run.cells, "root_products": inv["root_products"],
+    inv = lattice3d.invariants(cells, metric=metric)
+    return {"dimension": 3, "bases": cells, "root_products": inv["root_products"],
             "distance": inv["distance"], "deformation": inv["deformation"],
             "systems": inv["systems"]}
 
 
 def select_frames(deformation: dict, sel: dict) -> list[int]:
-    """Frames for spglib: first, last, every Nth, and where any deformation moved > on_change (Å)."""
+    """Frames the search for the group's change starts from: first, last, every Nth, and where any
+    deformation moved > on_change (Å) since the last one picked (all with ``all_frames``)."""
     d = np.stack([np.asarray(v, float) for v in deformation.values()], axis=1)  # (n, types)
     n = d.shape[0]
+    if sel["all_frames"]:
+        return list(range(n))
+    forced = {0, n - 1}
+    if sel["every"]:
+        forced.update(range(0, n, sel["every"]))
+    forced = sorted(forced)
+    chosen, j = [0], 0
+    while j < n - 1:         # the next frame forced or moved beyond on_change since frame j
+        nxt = forced[np.searchsorted(forced, j, side="right")]
+        moved = np.flatnonzero(np.max(np.abs(d[j + 1:nxt] - d[j]), axis=1) > sel["on_change"]) \
+            if nxt > j + 1 else ()
+        j = j + 1 + int(moved[0]) if len(moved) else nxt
+        chosen.append(j)
+    return chosen
+
+
+def spectrum_frames(n: int, sel: dict) -> list[int]:
+    """Frames that get a tolerance spectrum: the first and last, every Nth (``every``), or all
+    (``all_frames``)."""
     if sel["all_frames"]:
         return list(range(n))
     chosen = {0, n - 1}
     if sel["every"]:
         chosen.update(range(0, n, sel["every"]))
-    last = d[0]
-    for i in range(1, n):
-        if i in chosen or np.max(np.abs(d[i] - last)) > sel["on_change"]:
-            chosen.add(i)
-            last = d[i]
     return sorted(chosen)
 
 
 def symprec_grid(cfg: dict) -> list[float]:
     """Log-spaced symprec grid (Å) plus every symprec a rule or the report quotes, so those are exact."""
-    s = cfg["symmetry"]
-    grid = np.geomspace(s["symprec_min"], s["symprec_max"], s["grid_points"])
-    half_step = 0.5 * np.log(grid[1] / grid[0])
-    r = cfg["rules"]
-    extra = [r["symprec_dependent"]["low"], r["symprec_dependent"]["high"],
+    s, r = cfg["symmetry"], cfg["rules"]
+    extra = (r["symprec_dependent"]["low"], r["symprec_dependent"]["high"],
              r["loose_symprec"]["symprec"], r["atoms_break_lattice"]["symprec"],
-             *structure_symprecs(cfg)]
+             *structure_symprecs(cfg))
+    return list(_grid(float(s["symprec_min"]), float(s["symprec_max"]), int(s["grid_points"]),
+                      tuple(float(x) for x in extra)))
+
+
+@functools.lru_cache(maxsize=64)
+def _grid(lo: float, hi: float, points: int, extra: tuple) -> tuple:
+    s = {"symprec_min": lo, "symprec_max": hi}
+    grid = np.geomspace(lo, hi, points)
+    half_step = 0.5 * np.log(grid[1] / grid[0])
     out = list(grid)
     moved = set()
     for x in extra:
@@ -81,7 +111,7 @@ def symprec_grid(cfg: dict) -> list[float]:
             moved.add(i)
         else:
             out.append(x)       # (a point already moved onto another quoted value stays there)
-    return sorted({round(float(x), 12) for x in out})
+    return tuple(sorted({round(float(x), 12) for x in out}))
 
 
 def structure_symprecs(cfg: dict) -> list[float]:
@@ -91,49 +121,71 @@ def structure_symprecs(cfg: dict) -> list[float]:
                    cfg["report"]["common_symprecs"])})
 
 
-def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], chosen: list[int]) -> int:
-    """spglib's group at :func:`structure_symprecs` on the chosen frames, each compared with the
-    first frame's (``symmetry.relation``); then, for each of those symprecs, the frame from which the
-    final group holds is located by bisection over the frames between the last checked frame with
-    another group and the first with the final one (one change between them is assumed; the record
-    says which frames were checked). Adds ``structure`` to those frames; returns frames probed."""
-    sym = cfg["symmetry"]
-    precs = structure_symprecs(cfg)
-    cache: dict = {}
+def _group_at(run: Run, geo, cfg: dict, i: int, s: float, known: dict) -> dict:
+    """spglib's group of frame ``i`` at symprec ``s`` (``symmetry.group_at``), kept in ``known``."""
+    if (i, s) not in known:
+        known[(i, s)] = symmetry.group_at(run.cells[i], run.positions[i], run.numbers, s,
+                                          angle_tolerance=cfg["symmetry"]["angle_tolerance"],
+                                          vacuum_axis=geo.vacuum_axis)
+    return known[(i, s)]
 
-    def groups(i):
-        if i not in cache:
-            cache[i] = [symmetry.group_at(run.cells[i], run.positions[i], run.numbers, s,
-                                          angle_tolerance=sym["angle_tolerance"],
-                                          vacuum_axis=geo.vacuum_axis) for s in precs]
-            first = groups(0) if i else cache[i]
-            frames[i]["structure"] = {
-                "symprec": precs, "group": [g["group"] for g in cache[i]],
-                "symbol": [g["symbol"] for g in cache[i]],
-                "operations": [g["operations"] for g in cache[i]],
-                "relation": [symmetry.relation(a, b) for a, b in zip(first, cache[i])]}
-        return cache[i]
+
+def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int],
+                   search_at: list[float], known: dict | None = None, also=()) -> int:
+    """spglib's group at :func:`structure_symprecs` on the first frame and the last seed, and, at
+    each symprec of ``search_at`` where the two groups are not the same (``symmetry.relation``),
+    the frame from which the final group holds: the seeds are scanned back from the last until one
+    has another group, then the frames between it and the next seed are bisected (one change
+    between them is assumed; the record says which frames were checked). Only what this asks is
+    computed: a frame probed at one symprec carries that symprec alone in its ``structure`` entry.
+    ``known``: {(frame, symprec): group} answers to reuse and extend (the live tracker keeps it).
+    ``also``: frames asked at the verdict's symprec too (those with a tolerance spectrum, for the
+    per-step tables: spglib's answer is the spectrum's). Returns the number of frames asked."""
+    precs = structure_symprecs(cfg)
+    known = {} if known is None else known
+    asked: dict[int, set] = {}
+
+    def group(i, s):
+        asked.setdefault(i, set()).add(s)
+        return _group_at(run, geo, cfg, i, s, known)
+
+    for i in also:
+        group(i, float(cfg["rules"]["structure"]["symprec"]))
+
+    def relation(i, s):                 # to the first frame's group, kept with the groups
+        if (i, s, "relation") not in known:
+            known[(i, s, "relation")] = symmetry.relation(group(0, s), group(i, s))
+        return known[(i, s, "relation")]
 
     key = lambda g: (g["group"], g["operations"])
-    for i in sorted(set(chosen) | {0}):
-        groups(i)
-    last = max(chosen)
-    for j in range(len(precs)):
-        final = key(groups(last)[j])
-        checked = sorted(cache)
-        hi = last
-        for k in reversed([c for c in checked if c < last]):
-            if key(groups(k)[j]) != final:
+    seeds = sorted(set(seeds) | {0})
+    last = seeds[-1]
+    for s in precs:
+        group(0, s), group(last, s)
+    for s in search_at:
+        final = group(last, s)
+        if relation(last, s) == "same":
+            continue                # kept at s: there is no step to locate
+        hi, lo = last, None
+        for k in reversed(seeds[:-1]):
+            if key(group(k, s)) != key(final):
+                lo = k
                 break
             hi = k
-        lo = max([c for c in checked if c < hi], default=None)
         while lo is not None and hi - lo > 1:
             mid = (lo + hi) // 2
-            if key(groups(mid)[j]) == final:
+            if key(group(mid, s)) == key(final):
                 hi = mid
             else:
                 lo = mid
-    return len(cache)
+    for i, ss in asked.items():
+        ss = sorted(ss)
+        gs = [known[(i, s)] for s in ss]
+        frames[i]["structure"] = {
+            "symprec": ss, "group": [g["group"] for g in gs], "symbol": [g["symbol"] for g in gs],
+            "operations": [g["operations"] for g in gs],
+            "relation": [relation(i, s) for s in ss]}
+    return len(asked)
 
 
 def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
@@ -172,87 +224,159 @@ def _fixed_cell(cells: np.ndarray) -> bool:
     return bool(np.all(np.abs(cells - cells[0]) <= 1e-9 * scale))
 
 
-def _frame_entries(run: Run, table: dict) -> list[dict]:
+def _frame_entries(run: Run, table: dict, start: int = 0) -> list[dict]:
+    """Per-frame record entries of frames ``start:`` (``table`` holds those frames)."""
     n = len(run.cells)
     forces = run.forces
-    fmax = None if forces is None else np.sqrt((np.asarray(forces) ** 2).sum(-1)).max(-1)
+    fmax = None if forces is None else np.sqrt((np.asarray(forces[start:]) ** 2).sum(-1)).max(-1)
+    steps = run.steps[start:].tolist()
+    energies = None if run.energies is None else np.asarray(run.energies[start:], float).tolist()
+    fmax = None if fmax is None else fmax.tolist()
+    cols = lambda d: {k: np.asarray(v, float).tolist() for k, v in d.items()}  # Python floats
+    dim = table["dimension"]
+    if dim == 2:
+        ri, pr = table["root_invariant"].tolist(), table["projected"].tolist()
+        sign, chiral = table["sign"].tolist(), np.asarray(table["chiral_distance"], float).tolist()
+        dist, dproj = cols(table["distance"]), cols(table["distance_projected"])
+    else:
+        rp, dist, systems = table["root_products"].tolist(), cols(table["distance"]), \
+            cols(table["systems"])
+    dfm = cols(table["deformation"])
     out = []
-    for i in range(n):
-        f = {"index": i, "step": int(run.steps[i]),
-             "energy": None if run.energies is None else float(run.energies[i]),
-             "fmax": None if fmax is None else float(fmax[i])}
-        if table["dimension"] == 2:
-            f["root_invariant"] = [float(x) for x in table["root_invariant"][i]]
-            f["sign"] = int(table["sign"][i])
-            f["projected"] = [float(x) for x in table["projected"][i]]
-            f["distance"] = _as_lists(table["distance"], i)
-            f["distance_projected"] = _as_lists(table["distance_projected"], i)
-            f["deformation"] = _as_lists(table["deformation"], i)
-            f["chiral_distance"] = float(table["chiral_distance"][i])
+    for j in range(n - start):
+        f = {"index": start + j, "step": int(steps[j]),
+             "energy": None if energies is None else energies[j],
+             "fmax": None if fmax is None else fmax[j]}
+        if dim == 2:
+            f["root_invariant"] = ri[j]
+            f["sign"] = int(sign[j])
+            f["projected"] = pr[j]
+            f["distance"] = {k: v[j] for k, v in dist.items()}
+            f["distance_projected"] = {k: v[j] for k, v in dproj.items()}
+            f["deformation"] = {k: v[j] for k, v in dfm.items()}
+            f["chiral_distance"] = chiral[j]
         else:
-            f["root_products"] = [float(x) for x in table["root_products"][i]]
-            f["distance"] = _as_lists(table["distance"], i)
-            f["deformation"] = _as_lists(table["deformation"], i)
-            f["systems"] = _as_lists(table["systems"], i)
+            f["root_products"] = rp[j]
+            f["distance"] = {k: v[j] for k, v in dist.items()}
+            f["deformation"] = {k: v[j] for k, v in dfm.items()}
+            f["systems"] = {k: v[j] for k, v in systems.items()}
         out.append(f)
     return out
 
 
-def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = None) -> dict:
-    """spglib's tolerance spectrum of frame ``i`` plus the displacement to each group it saw."""
+class FrameTable:
+    """The per-frame entries of a growing run (index, step, energy, fmax and the invariants), each
+    frame computed once: what the live tracker keeps between records. ``truncate(k)`` forgets the
+    frames from ``k`` on (they changed); ``update`` computes the frames not held yet in one call."""
+
+    def __init__(self):
+        self.entries: list[dict] = []
+        self.deformation: dict[str, np.ndarray] = {}
+        self._key = None
+
+    def truncate(self, k: int) -> None:
+        if k < len(self.entries):
+            self.entries = self.entries[:k]
+            self.deformation = {t: v[:k] for t, v in self.deformation.items()}
+
+    def update(self, run: Run, geo, metric: str) -> None:
+        key = (geo.dimension, geo.vacuum_axis, metric)
+        if key != self._key:
+            self.entries, self.deformation, self._key = [], {}, key
+        start = len(self.entries)
+        if start >= len(run.cells):
+            self.truncate(len(run.cells))
+            return
+        table = lattice_table(run, geo, metric, start)
+        self.entries += _frame_entries(run, table, start)
+        self.deformation = {t: np.concatenate([self.deformation[t], np.asarray(v, float)])
+                            if t in self.deformation else np.asarray(v, float)
+                            for t, v in table["deformation"].items()}
+
+
+def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = None,
+                   brackets: str | None = "all") -> dict:
+    """spglib's tolerance spectrum of frame ``i`` plus the displacement to each group it saw.
+
+    ``brackets`` (when ``symmetry.bisect`` is on): ``"all"`` brackets every breakpoint, of the
+    structure and of the lattice alone (``driftwatch tolerance``); ``"group"`` the structure's only
+    (what the record asks on its last frame: the tolerance advice reads them); None, none (the
+    record's other frames: nothing reads their brackets)."""
     grid = symprec_grid(cfg) if grid is None else grid
     s = cfg["symmetry"]
     spec = symmetry.spectrum(run.cells[i], run.positions[i], run.numbers, symprecs=grid,
                              angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
-                             bisect=s["bisect"], precision=s["precision"])
+                             bisect=bool(s["bisect"] and brackets), precision=s["precision"],
+                             lattice_bisect=bool(s["bisect"] and brackets == "all"))
     spec["displacement"] = symmetry.drift_table(run.cells[i], run.positions[i], run.numbers, spec,
                                                 vacuum_axis=geo.vacuum_axis)
     return spec
 
 
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
-                    spectra: dict | None = None, skip_newest: bool = False,
+                    spectra: dict | None = None, groups: dict | None = None,
+                    table: FrameTable | None = None, skip_newest: bool = False,
                     complete: bool = True) -> dict:
     """The record of an already read run.
 
     Args:
         run: the frames. cfg: a loaded config. geo: geometry (default: classified from the run).
-        frames: spglib on exactly these frame indices (default: :func:`select_frames`).
-        spectra: a cache {frame index: symmetry entry}; entries found are reused, new ones are added
-            (the live tracker keeps it across growing runs).
-        skip_newest: leave the last frame out of the default selection (a live step not yet final).
+        frames: tolerance spectra on exactly these frame indices, and the group's change searched
+            from them (default: :func:`spectrum_frames` and :func:`select_frames`).
+        spectra: a cache {(frame index, bracketed): symmetry entry}; groups: a cache {(frame
+            index, symprec): group}; table: a :class:`FrameTable`. Entries found are reused, new
+            ones are added (the live tracker keeps them across growing runs).
+        skip_newest: a live record between the steps spglib is asked about: no tolerance spectra,
+            and the structure level judged up to the newest frame where the lattice moved.
         complete: False for a run still going (live): a change counts only once it held for
-            ``rules.persistence.steps`` steps (see :mod:`driftwatch.rules`).
+            ``rules.persistence.steps`` steps (see :mod:`driftwatch.rules`), so the step of the
+            change is located at every structure symprec, not only at the verdict's.
     """
     t0 = time.perf_counter()
     if geo is None:
         geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
     if cfg["geometry"]["require_layer"] and geo.dimension != 2:
         raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
-    table = lattice_table(run, geo, cfg["lattice"]["metric"])
-    entries = _frame_entries(run, table)
-    if odd := geometry.position_warnings(run.cells, run.positions, run.pbc, run.steps):
+    if table is None:
+        table = FrameTable()
+    table.update(run, geo, cfg["lattice"]["metric"])
+    entries = [dict(e) for e in table.entries]
+    n = len(entries)
+    odd = [] if skip_newest else geometry.position_warnings(run.cells, run.positions, run.pbc,
+                                                            run.steps)
+    if odd:
         run = dataclasses.replace(run, warnings=(*run.warnings, *(f"{run.source}: {w}"
                                                                   for w in odd)))
     t1 = time.perf_counter()
     if frames is not None:
-        chosen = sorted(set(frames))
+        seeds = sorted(set(frames))
+        with_spectrum = seeds
     else:
-        chosen = select_frames(table["deformation"], cfg["selection"])
-        if skip_newest and len(entries) > 1:
-            chosen = [i for i in chosen if i < len(entries) - 1]
-    grid = symprec_grid(cfg)
+        seeds = select_frames(table.deformation, cfg["selection"])
+        with_spectrum = spectrum_frames(n, cfg["selection"])
+        if skip_newest:
+            seeds = [i for i in seeds if i < n - 1] or [0]
+            with_spectrum = []
+    grid = symprec_grid(cfg) if with_spectrum else None
     spectra = {} if spectra is None else spectra
+    groups = {} if groups is None else groups
+    precs = structure_symprecs(cfg)
+    verdict_at = [float(cfg["rules"]["structure"]["symprec"])]
     calls = computed = 0
-    for i in chosen:
-        if i not in spectra:
-            spectra[i] = symmetry_entry(run, i, geo, cfg, grid)
-            calls += int(spectra[i].pop("calls", 0) or 0)  # process-state dependent: timing only
+    for i in with_spectrum:
+        key = (i, i == n - 1)               # the structure's brackets on the last frame only
+        if key not in spectra:
+            spectra[key] = symmetry_entry(run, i, geo, cfg, grid,
+                                          brackets="group" if key[1] else None)
+            calls += int(spectra[key].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
-        entries[i]["symmetry"] = spectra[i]
-    probed = _group_entries(run, geo, cfg, entries, chosen) if chosen else 0
-    last = max(chosen) if chosen else None
-    if last is not None and "symmetry" in entries[last]:
+        entries[i]["symmetry"] = spectra[key]
+        for s in (precs if i in (0, n - 1) else verdict_at):   # spglib's answers still memoised
+            _group_at(run, geo, cfg, i, s, groups)
+    probed = _group_entries(run, geo, cfg, entries, seeds, verdict_at if complete else precs,
+                            groups, also=with_spectrum) if seeds else 0
+    last = n - 1
+    if "symmetry" in entries[last]:
         entries[last]["symmetry"] = dict(entries[last]["symmetry"],   # the cached spectrum stays
                                          primitive=_primitive_entry(run, geo, cfg, last))
     t2 = time.perf_counter()
@@ -260,7 +384,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
                                 versions=_versions())
     record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete)
     record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
-                        "total_s": time.perf_counter() - t0, "spglib_frames": len(chosen),
+                        "total_s": time.perf_counter() - t0, "spglib_frames": len(with_spectrum),
                         "spglib_frames_computed": computed, "spglib_calls": calls,
                         "group_frames": probed}
     return record

@@ -493,3 +493,32 @@ def test_follow_ends_at_pwx_error_banner(tmp_path):
     with pytest.raises(InputError, match="pw.x error banner"):
         follow(folder / "pw.out", idle=30, poll=0.05, quiet=True)
     assert time.monotonic() - t0 < 10
+
+
+def test_watch_record_mode_asks_spglib_only_where_the_lattice_moved(tmp_path, monkeypatch):
+    # A real EMT relaxation (the invented layer): in record mode each call computes the new
+    # frame's lattice invariants and the flags; spglib is asked on the first frame and where the
+    # lattice moved (the frames track.select_frames picks), not at every step, and finish()
+    # completes the record (which then equals analyze of the trajectory, as tested above).
+    from driftwatch import symmetry, track
+    calls = []
+    orig = symmetry._dataset_uncached
+    monkeypatch.setattr(symmetry, "_dataset_uncached", lambda *a: calls.append(1) or orig(*a))
+    symmetry.clear_cache()
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record", "stop_on": ()})
+    seen = []
+    opt.attach(lambda: seen.append(len(calls)), interval=1)      # runs after the watch
+    opt.run(fmax=1e-4, steps=200)
+    per_call = np.diff([0] + seen)
+    rec = watch.record
+    seeds = track.select_frames({t: [f["deformation"][t] for f in rec["frames"]]
+                                 for t in rec["frames"][0]["deformation"]},
+                                rec["config"]["selection"])
+    asked = int((per_call > 0).sum())
+    assert len(per_call) == rec["run"]["n_frames"] > 10
+    assert 1 <= asked <= len(seeds) < len(per_call)
+    assert not any(f.get("symmetry") for f in rec["frames"])     # no spectra until asked
+    before = len(calls)
+    full = watch.finish()
+    assert len(calls) > before and full["frames"][-1].get("symmetry")
+    assert same(full, analyze(traj, QUICK))
