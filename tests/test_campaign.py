@@ -456,8 +456,8 @@ def test_a_worker_process_that_dies_fails_only_its_run(tmp_path, monkeypatch):
     from driftwatch.adapters import registry
     camp = make_campaign(tmp_path, qe=False, n_extra=3)
     (camp / "more" / "boom.crash").write_text("x")
+    monkeypatch.setattr(campaign, "mp_context", lambda: mp.get_context("fork"))  # inherit it
     registry.register("test-crash", _boom, globs=("*.crash",), replace=True)
-    monkeypatch.setattr(campaign, "_mp_context", lambda: mp.get_context("fork"))  # inherit it
     try:
         s = run_audit([camp], tmp_path / "out", workers=2)
     finally:
