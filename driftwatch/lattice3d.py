@@ -251,6 +251,22 @@ def _parse(spec):
     return frozenset(zs), tuple(frozenset(b) for b in blocks)
 
 
+def _labelled_patterns():
+    """(type index, zero set, classes) of every labelled pattern: each type's patterns under every
+    relabelling of the 7 vectors by GL(3, Z/2), each distinct one once, types in ``TYPES`` order."""
+    g = _gl32()
+    for t, specs in enumerate(_PATTERNS[k] for k in TYPES):
+        seen = set()
+        for spec in specs:
+            z0, b0 = _parse(spec)
+            for perm in g:
+                z = frozenset(int(perm[i]) for i in z0)
+                b = frozenset(frozenset(int(perm[i]) for i in blk) for blk in b0)
+                if (z, b) not in seen:
+                    seen.add((z, b))
+                    yield t, z, b
+
+
 @lru_cache(maxsize=None)
 def _pattern_table():
     """All distinct GL(3, 2)-relabelled patterns of every type, as matrices and index tables.
@@ -269,18 +285,7 @@ def _pattern_table():
       ``groups`` for L-inf: (feature rows (k, c), first index per type, types) for
                  the patterns with c = 1..4 parts.
     """
-    g = _gl32()
-    labelled = []
-    for t, specs in enumerate(_PATTERNS[k] for k in TYPES):
-        seen = set()
-        for spec in specs:
-            z0, b0 = _parse(spec)
-            for perm in g:
-                z = frozenset(int(perm[i]) for i in z0)
-                b = frozenset(frozenset(int(perm[i]) for i in blk) for blk in b0)
-                if (z, b) not in seen:
-                    seen.add((z, b))
-                    labelled.append((t, z, b))
+    labelled = list(_labelled_patterns())
     zero_list = sorted({z for _, z, _ in labelled}, key=sorted)
     block_list = sorted({blk for _, _, b in labelled for blk in b}, key=sorted)
     zindex = {z: i for i, z in enumerate(zero_list)}
@@ -356,27 +361,18 @@ def _deform_table():
         sa += [c for c, _ in swaps]
         sb += [c for _, c in swaps]
     subsets, zeros, ps, pz, types = {}, {}, [], [], []
-    for t, specs in enumerate(_PATTERNS[k] for k in TYPES):
-        seen = set()
-        for spec in specs:
-            z0, b0 = _parse(spec)
-            for perm in g:
-                z = frozenset(int(perm[i]) for i in z0)
-                b = frozenset(frozenset(int(perm[i]) for i in blk) for blk in b0)
-                if (z, b) in seen:
-                    continue
-                seen.add((z, b))
-                free = set(range(7)) - z - set().union(*b)
-                inv = tuple(i for i, q in enumerate(involutions)
-                            if {int(q[j]) for j in z} == z
-                            and all({int(q[j]) for j in blk} == blk for blk in b)
-                            and all(q[j] == j for j in free))
-                flips = tuple(i for i, sh in enumerate(shared) if sh <= z)
-                assert flips or len(z) == 1          # every zero is in a perpendicular pair
-                key = flips if flips else (21 + min(z),)
-                ps.append(subsets.setdefault(inv, len(subsets)))
-                pz.append(zeros.setdefault(key, len(zeros)))
-                types.append(t)
+    for t, z, b in _labelled_patterns():
+        free = set(range(7)) - z - set().union(*b)
+        inv = tuple(i for i, q in enumerate(involutions)
+                    if {int(q[j]) for j in z} == z
+                    and all({int(q[j]) for j in blk} == blk for blk in b)
+                    and all(q[j] == j for j in free))
+        flips = tuple(i for i, sh in enumerate(shared) if sh <= z)
+        assert flips or len(z) == 1          # every zero is in a perpendicular pair
+        key = flips if flips else (21 + min(z),)
+        ps.append(subsets.setdefault(inv, len(subsets)))
+        pz.append(zeros.setdefault(key, len(zeros)))
+        types.append(t)
 
     def by_size(lists):  # [(positions, index rows)] of lists grouped by length
         out = {}

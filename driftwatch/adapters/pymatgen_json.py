@@ -67,13 +67,18 @@ def _structure_arrays(item, path, i):
     return cell, frac @ cell, np.array(numbers, int), pbc
 
 
-def read_structures(path, ctx: ReadContext):
+def _load_json(path):
+    """The JSON value of a file (plain or compressed); InputError naming the file if it is not JSON."""
     with open_bytes(path) as fh:
         try:
-            data = json.load(fh)
+            return json.load(fh)
         except (json.JSONDecodeError, UnicodeDecodeError) as exc:
             raise InputError(path, f"not valid JSON ({exc}); a cut file cannot be read "
                                    f"in part") from None
+
+
+def read_structures(path, ctx: ReadContext):
+    data = _load_json(path)
     for i, item in enumerate(_items(data, path, ctx)):
         extra = {}
         if isinstance(item, dict) and "structure" in item and "@class" not in item:
@@ -118,12 +123,7 @@ def read_task_doc(path, ctx: ReadContext):
     first); each is a stage, steps numbered on across them. A list of documents is refused (give
     one document per file). Structures are built with pymatgen from the plain fields."""
     from ase.units import GPa
-    with open_bytes(path) as fh:
-        try:
-            doc = json.load(fh)
-        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-            raise InputError(path, f"not valid JSON ({exc}); a cut file cannot be read "
-                                   f"in part") from None
+    doc = _load_json(path)
     if isinstance(doc, list):
         raise InputError(path, f"a list of {len(doc)} task documents: driftwatch reads one "
                                f"document per file")

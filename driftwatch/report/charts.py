@@ -113,7 +113,8 @@ class Chart:
 
 # ------------------------------------------------------------------------------------------ helpers
 
-def _num(v):
+def finite(v) -> float | None:
+    """``v`` as a finite float, or None (missing, text, NaN, inf)."""
     try:
         v = float(v)
     except (TypeError, ValueError):
@@ -124,7 +125,7 @@ def _num(v):
 def _floor(values):
     out = []
     for v in values:
-        v = _num(v)
+        v = finite(v)
         out.append(None if v is None else max(v, FLOOR))
     return out
 
@@ -142,13 +143,14 @@ def step_axis(steps, label="ionic step") -> Axis:
     return Axis(label, lim=(lo - pad, hi + pad), integer=True)
 
 
-def _cfg(rec, *keys):
+def config_number(rec, *keys) -> float | None:
+    """The number at ``config[keys...]`` of a record, or None where it is missing or not finite."""
     d = rec.get("config") or {}
     for k in keys:
         if not isinstance(d, dict) or k not in d:
             return None
         d = d[k]
-    return _num(d)
+    return finite(d)
 
 
 def coincident(a, b, scale="log", span=None) -> str | None:
@@ -249,10 +251,10 @@ def deformation(rec) -> Chart:
     frames, dim = rec["frames"], rec["geometry"].get("dimension")
     steps = _steps(frames)
     series = _type_series(rec, "deformation")
-    thr = [(_cfg(rec, "rules", "lattice", "within"), "held within"),
-           (_cfg(rec, "rules", "lattice", "start_away"), "start away")]
+    thr = [(config_number(rec, "rules", "lattice", "within"), "held within"),
+           (config_number(rec, "rules", "lattice", "start_away"), "start away")]
     if dim == 2:
-        thr.append((_cfg(rec, "rules", "handedness_flip", "min_chiral"), "min chiral"))
+        thr.append((config_number(rec, "rules", "handedness_flip", "min_chiral"), "min chiral"))
     marks = _thresholds(thr) + series_marks(steps, series)
     vals = [v for _, ys, _ in series for v in ys]
     what = "each 2D Bravais type and the nearest mirror lattice" if dim == 2 else \
@@ -289,12 +291,12 @@ def chirality(rec) -> Chart | None:
         return None
     frames = rec["frames"]
     steps = _steps(frames)
-    chi = [_num(f.get("chiral_distance")) for f in frames]
-    sdef = [None if _num((f.get("deformation") or {}).get("mirror")) is None else
-            (f.get("sign") or 0) * _num(f["deformation"]["mirror"]) for f in frames]
+    chi = [finite(f.get("chiral_distance")) for f in frames]
+    sdef = [None if finite((f.get("deformation") or {}).get("mirror")) is None else
+            (f.get("sign") or 0) * finite(f["deformation"]["mirror"]) for f in frames]
     if all(v is None for v in chi):
         return None
-    mc = _cfg(rec, "rules", "handedness_flip", "min_chiral")
+    mc = config_number(rec, "rules", "handedness_flip", "min_chiral")
     top = max([abs(v) for v in chi + sdef if v is not None] + [(mc or 0) * 1.5, 1e-3]) * 1.15
     xa = step_axis(steps)
     x0, x1 = xa.lim
@@ -359,8 +361,8 @@ def energy(rec) -> Chart | None:
     """Energy relative to the last step (eV) and the largest force on an atom (eV/Å, log)."""
     frames = rec["frames"]
     steps = _steps(frames)
-    en = [_num(f.get("energy")) for f in frames]
-    fm = [_num(f.get("fmax")) for f in frames]
+    en = [finite(f.get("energy")) for f in frames]
+    fm = [finite(f.get("fmax")) for f in frames]
     panels = []
     if any(v is not None for v in en):
         last = next(v for v in reversed(en) if v is not None)
@@ -690,9 +692,9 @@ def campaign_scatter(points) -> Chart:
     points = [dict(p, short=s) for p, s in zip(points, short)]
     panels = []
     for what, k0, k1 in (("deformation", "def0", "def1"), ("root-space distance", "dist0", "dist1")):
-        pts = [p for p in points if _num(p.get(k0)) is not None and _num(p.get(k1)) is not None]
+        pts = [p for p in points if finite(p.get(k0)) is not None and finite(p.get(k1)) is not None]
         marks = []
-        hi = max([max(_num(p[k0]), _num(p[k1])) for p in pts] + [1e-2]) * 2
+        hi = max([max(finite(p[k0]), finite(p[k1])) for p in pts] + [1e-2]) * 2
         lo = FLOOR / 1.5
         marks.append(Mark("line", [lo, hi], [lo, hi], colour="#999999", dash=(4, 3), width=0.8,
                           z=1))
@@ -706,13 +708,13 @@ def campaign_scatter(points) -> Chart:
                 if not sel:
                     continue
                 marks.append(Mark(
-                    "points", [max(_num(p[k0]), FLOOR) for p in sel],
-                    [max(_num(p[k1]), FLOOR) for p in sel], marker=marker, size=7.5,
+                    "points", [max(finite(p[k0]), FLOOR) for p in sel],
+                    [max(finite(p[k1]), FLOOR) for p in sel], marker=marker, size=7.5,
                     colour=style.VERDICT_COLOURS.get(verdict, "#777777"), edge="#222222", z=3,
                     label=f"{verdict} ({'layer' if dim == 2 else 'bulk'})",
                     links=[p.get("href") for p in sel],
-                    tips=[f"{p['name']}: {verdict}, {p.get('type')} {_num(p[k0]):.3g} → "
-                          f"{_num(p[k1]):.3g} Å" for p in sel],
+                    tips=[f"{p['name']}: {verdict}, {p.get('type')} {finite(p[k0]):.3g} → "
+                          f"{finite(p[k1]):.3g} Å" for p in sel],
                     texts=[p["short"] for p in sel] if label else None, offset=(6, 3),
                     key=f"{verdict}-{dim}"))
         ax = Axis(f"{what} at the first step (Å)", scale="log", lim=(lo, hi))

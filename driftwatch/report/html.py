@@ -200,12 +200,8 @@ def e(x) -> str:
     return "" if x is None else html.escape(str(x), quote=True)
 
 
-def _fnum(x):
-    try:
-        x = float(x)
-    except (TypeError, ValueError):
-        return None
-    return x if math.isfinite(x) else None
+_fnum = charts.finite        # a finite float, or None
+
 
 
 def _q(x, unit="Å", digits=3):
@@ -434,13 +430,7 @@ class _Names:
 
 # ------------------------------------------------------------------------------------------ run page
 
-def _cfg(rec, *keys):
-    d = rec.get("config") or {}
-    for k in keys:
-        if not isinstance(d, dict) or k not in d:
-            return None
-        d = d[k]
-    return _fnum(d)
+_cfg = charts.config_number         # a number from the record's config, or None
 
 
 def _span(rec):

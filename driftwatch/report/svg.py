@@ -305,6 +305,19 @@ def render(chart: Chart, prefix: str = "c") -> str:
     return "".join(out)
 
 
+def _tick(x, y, dx, dy, grid) -> list[str]:
+    """A tick mark from (x, y) to (x + dx, y + dy) and, when ``grid`` is (x1, y1, x2, y2), the grid
+    line under it (px)."""
+    out = []
+    if grid:
+        x1, y1, x2, y2 = grid
+        out.append(f'<line x1="{_f(x1)}" y1="{_f(y1)}" x2="{_f(x2)}" y2="{_f(y2)}" '
+                   f'stroke="#e6e6e6" stroke-width="0.8"/>')
+    out.append(f'<line x1="{_f(x + min(dx, 0))}" y1="{_f(y + min(dy, 0))}" x2="{_f(x + max(dx, 0))}" '
+               f'y2="{_f(y + max(dy, 0))}" stroke="#333" stroke-width="0.8"/>')
+    return out
+
+
 def _panel(p: Panel, X, Y, W, H, ids) -> str:
     xlo, xhi = limits(p.x, p.marks, "x")
     ylo, yhi = limits(p.y, p.marks, "y")
@@ -352,11 +365,7 @@ def _panel(p: Panel, X, Y, W, H, ids) -> str:
         x = sx(t)
         if x is None or not px0 - 0.5 <= x <= px0 + plot_w + 0.5:
             continue
-        if p.x.grid:
-            g.append(f'<line x1="{_f(x)}" y1="{_f(py0)}" x2="{_f(x)}" y2="{_f(py0 + plot_h)}" '
-                     f'stroke="#e6e6e6" stroke-width="0.8"/>')
-        g.append(f'<line x1="{_f(x)}" y1="{_f(py0 + plot_h)}" x2="{_f(x)}" '
-                 f'y2="{_f(py0 + plot_h + 4)}" stroke="#333" stroke-width="0.8"/>')
+        g += _tick(x, py0 + plot_h, 0, 4, p.x.grid and (x, py0, x, py0 + plot_h))
         if lab:
             g.append(f'<text x="{_f(x)}" y="{_f(py0 + plot_h + 15)}" font-size="{TICK_FS}" '
                      f'text-anchor="middle">{_x(lab)}</text>')
@@ -364,11 +373,7 @@ def _panel(p: Panel, X, Y, W, H, ids) -> str:
         y = sy(t)
         if y is None or not py0 - 0.5 <= y <= py0 + plot_h + 0.5:
             continue
-        if p.y.grid:
-            g.append(f'<line x1="{_f(px0)}" y1="{_f(y)}" x2="{_f(px0 + plot_w)}" y2="{_f(y)}" '
-                     f'stroke="#e6e6e6" stroke-width="0.8"/>')
-        g.append(f'<line x1="{_f(px0 - 4)}" y1="{_f(y)}" x2="{_f(px0)}" y2="{_f(y)}" '
-                 f'stroke="#333" stroke-width="0.8"/>')
+        g += _tick(px0, y, -4, 0, p.y.grid and (px0, y, px0 + plot_w, y))
         g.append(f'<text x="{_f(px0 - 6)}" y="{_f(y + 3.6)}" font-size="{TICK_FS}" '
                  f'text-anchor="end">{_x(lab)}</text>')
     out.append("".join(g))
