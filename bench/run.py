@@ -362,6 +362,7 @@ def section_audit(a):
     tree = reference_tree(a)
     table = []       # (size, cell, mode, naive, whole, report, warm, spglib, analysis) CPU s
     targets = {}
+    start = startups(a, work, cfgs)
     for n in a.sizes:
         for cell, runs in (("vc", a.vc_runs), ("fc", a.fc_runs)):
             paths = [p.resolve() for p in make_inputs.make_mixed(a.inputs, cell, n, runs, a.steps)]
@@ -415,20 +416,42 @@ def section_audit(a):
                 if ref_ok is not None:
                     row("audit", f"  {label} {mode}: flags and verdicts equal to reference",
                         f"{len(paths) - len(differ)}/{len(paths)}", "runs", "all", ref_ok)
-                targets[(label, mode)] = (c_naive / c_cold, c_cold / c_spg, analysis / c_spg)
+                s_naive, s_dw = start["naive"], start[mode]
+                per_run = (c_naive - s_naive) / max(c_cold - s_dw, 1e-9)
+                row("audit", f"  {label} {mode}: the same, start-up of both excluded", per_run, "x",
+                    None, None, f"what a campaign of many such runs approaches: naive {c_naive - s_naive:.2f}"
+                    f" s, audit {c_cold - s_dw:.2f} s = x{(c_cold - s_dw) / c_spg:.2f} of spglib alone")
+                targets[(label, mode)] = (c_naive / c_cold, c_cold / c_spg, analysis / c_spg, per_run,
+                                          (c_cold - s_dw) / c_spg)
     _audit_table(table)
     key = "vc-48"
     if (key, "default") in targets:
-        r = targets[(key, "default")][0]
-        row("audit", "target: default audit with report / naive, 48-atom variable cell", r, "x",
-            ">= 10x", r >= 10)
-        r = targets[(key, "screen")][0]
-        row("audit", "target: screen audit with report / naive, 48-atom variable cell", r, "x",
-            ">= 25x", r >= 25)
+        for mode, goal in (("default", 10), ("screen", 25)):
+            r, per_run = targets[(key, mode)][0], targets[(key, mode)][3]
+            row("audit", f"target: {mode} audit with report / naive, 48-atom variable cell", r, "x",
+                f">= {goal}x", r >= goal, f"start-up of both excluded: x{per_run:.1f}")
         for mode in MODES:
-            whole, part = targets[(key, mode)][1:]
+            whole, part, _, amortised = targets[(key, mode)][1:]
             row("audit", f"target: {mode}: whole process / spglib alone (48-atom vc)", whole, "x",
-                "<= 1.15x", whole <= 1.15, f"analysis without the report: x{part:.2f}")
+                "<= 1.15x", whole <= 1.15, f"analysis without the report: x{part:.2f}; start-up "
+                f"excluded: x{amortised:.2f}")
+
+
+def startups(a, work: Path, cfgs) -> dict:
+    """CPU s each process spends whatever the campaign: the naive script given no run (Python,
+    ASE and pymatgen imports), and ``driftwatch audit`` with its report and runs.db on a campaign
+    of one 2-frame 4-atom vasprun.xml run (imports, the report's and the database's set-up) in
+    each mode. Subtracted from both sides, they give what a campaign of many runs approaches."""
+    root = work / "startup-campaign"
+    if not root.is_dir():
+        make_inputs.write_run(root / "calc-0000", "vasprun", make_inputs.relaxation(4, 2, seed=11))
+    out = {"naive": naive_loop([], work)[0]}
+    for mode in MODES:
+        out[mode] = min(audit_process([root], work / "out-startup", cfgs[mode])[0] for _ in range(2))
+    row("audit", "start-up: naive script given no run", out["naive"], "s CPU")
+    for mode in MODES:
+        row("audit", f"start-up: driftwatch audit, one 2-frame run, {mode}", out[mode], "s CPU")
+    return out
 
 
 def _audit_table(table):
