@@ -445,13 +445,14 @@ def startups(a, work: Path, cfgs) -> dict:
     root = work / "startup-campaign"
     if not root.is_dir():
         make_inputs.write_run(root / "calc-0000", "vasprun", make_inputs.relaxation(4, 2, seed=11))
-    out = {"naive": naive_loop([], work)[0]}
-    for mode in MODES:
-        out[mode] = min(audit_process([root], work / "out-startup", cfgs[mode])[0] for _ in range(2))
-    row("audit", "start-up: naive script given no run", out["naive"], "s CPU")
-    for mode in MODES:
-        row("audit", f"start-up: driftwatch audit, one 2-frame run, {mode}", out[mode], "s CPU")
-    return out
+    naive = min(naive_loop([], work)[0] for _ in range(3))
+    seen = {mode: [audit_process([root], work / "out-startup", cfgs[mode])[0] for _ in range(2)]
+            for mode in MODES}
+    audit = min(min(v) for v in seen.values())   # the imports dominate; the modes differ by ms here
+    row("audit", "start-up: naive script given no run (best of 3)", naive, "s CPU")
+    row("audit", "start-up: driftwatch audit, one 2-frame run (best of 2 per mode)", audit, "s CPU",
+        None, None, "; ".join(f"{m} {min(v):.2f} s" for m, v in seen.items()))
+    return {"naive": naive, **{mode: audit for mode in MODES}}
 
 
 def _audit_table(table):

@@ -186,7 +186,10 @@ def _valid_result(res) -> bool:
                      and isinstance(rec.get("geometry"), dict) and isinstance(rec.get("run"), dict))
     except (TypeError, KeyError, ValueError, AttributeError):
         return False
-    return bool(ok_shapes and ok_record)
+    if ok_shapes and ok_record:
+        res["parsed_record"] = rec          # the audit reads it once (not written back)
+        return True
+    return False
 
 
 class Cache:

@@ -840,10 +840,10 @@ class _Shown:
 
 
 # ----------------------------------------------------------------------------- summary
-def _slim(text: str, run_id: str) -> dict:
+def _slim(text: str, run_id: str, rec: dict | None = None) -> dict:
     """What the campaign summary, CSV and database need of a record (the record itself is dropped,
-    so memory stays small for thousands of runs)."""
-    rec = json.loads(text)
+    so memory stays small for thousands of runs). ``rec``: the record already parsed from ``text``."""
+    rec = json.loads(text) if rec is None else rec
     spec = rec["frames"][-1].get("symmetry") or {}
     grid = spec.get("symprec") or []
     return {"summary": rec["summary"], "dimension": rec["geometry"]["dimension"],
@@ -1099,7 +1099,8 @@ class _Results:
         if res["ok"]:
             _write_if_changed(_inside(self.rec_dir, self.rec_dir / self.names[rid]),
                               res["record_text"])
-            res = dict(res, view=_slim(res.pop("record_text"), rid))
+            view = _slim(res.pop("record_text"), rid, res.pop("parsed_record", None))
+            res = dict(res, view=view)
         self.results[rid] = res
 
     def store(self, res: dict) -> None:

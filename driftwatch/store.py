@@ -21,6 +21,8 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+import numpy as np
+
 from .errors import OutputError
 
 __all__ = ["db_location", "lock_path", "check_lock", "write_rows", "LOCK_WAIT_S"]
@@ -79,7 +81,8 @@ def _rows_with_run_id(db):
     """Every row that has a ``run_id`` (one pass: a per-run query is a full scan, O(n^2))."""
     try:
         return list(db.select("run_id", include_data=False,
-                              columns=["id", "key_value_pairs", "numbers"]))
+                              columns=["id", "key_value_pairs", "numbers", "positions", "cell",
+                                       "pbc"]))
     except TypeError:        # backends without the columns argument
         return list(db.select("run_id", include_data=False))
 
@@ -89,6 +92,21 @@ def _natoms(row) -> int:
         return int(row.natoms)
     except (AttributeError, TypeError):      # a backend that did not return the column
         return 0
+
+
+def _same(row, structure: dict | None, kvp: dict) -> bool:
+    """True when a stored row already holds exactly these key-value pairs and this structure."""
+    try:
+        if dict(row.key_value_pairs) != kvp:
+            return False
+        if not structure:
+            return _natoms(row) == 0
+        return (np.array_equal(row.numbers, structure["numbers"])
+                and np.array_equal(row.positions, structure["positions"])
+                and np.array_equal(np.asarray(row.cell), structure["cell"])
+                and np.array_equal(row.pbc, structure["pbc"]))
+    except (AttributeError, TypeError, ValueError, KeyError):
+        return False        # a backend without these columns: rewrite the row
 
 
 def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str]:
@@ -118,7 +136,7 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
                 if rid in have:
                     extra.append(row.id)
                 else:
-                    have[rid] = (row.id, set(row.key_value_pairs), _natoms(row))
+                    have[rid] = (row.id, set(row.key_value_pairs), _natoms(row), row)
             if extra:
                 db.delete(extra)
             for run_id, structure, kvp in rows:
@@ -126,7 +144,9 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
                     if run_id not in have:
                         db.write(_atoms(structure), key_value_pairs=kvp)
                         continue
-                    row_id, keys, natoms = have[run_id]
+                    row_id, keys, natoms, row = have[run_id]
+                    if _same(row, structure, kvp):     # a re-audit of unchanged runs writes nothing
+                        continue
                     if structure is None and natoms:   # ok before, failed now: no structure
                         db.delete([row_id])            # (ase.db cannot empty a row in place)
                         db.write(_atoms(None), key_value_pairs=kvp)

@@ -111,7 +111,10 @@ def test_database_rows_are_updated_in_place(camp, tmp_path):
     audit([camp], out, workers=1, progress="off")
     db = ase.db.connect(out / "runs.db")
     ids = {row.run_id: row.id for row in db.select()}
+    mtimes = {row.run_id: row.mtime for row in db.select()}
     audit([camp], out, workers=1, progress="off", use_cache=False)       # analysed again
+    db = ase.db.connect(out / "runs.db")                                   # nothing changed:
+    assert {row.run_id: row.mtime for row in db.select()} == mtimes        # no row rewritten
     (camp / "L06_emt_bfgs.traj").unlink()
     shutil.copy(DEMO / "L07_emt_fire.traj", camp / "L06_emt_bfgs.traj")  # a changed run
     audit([camp], out, workers=1, progress="off")
@@ -119,6 +122,7 @@ def test_database_rows_are_updated_in_place(camp, tmp_path):
     assert db.count() == 3
     assert {row.run_id: row.id for row in db.select()} == ids               # same rows, same ids
     row = db.get(run_id="camp/L06_emt_bfgs.traj")
+    assert row.mtime > mtimes["camp/L06_emt_bfgs.traj"]                    # the changed run's is
     assert row.natoms == len(read(DEMO / "L07_emt_fire.traj", -1))          # ASE: the new structure
     assert "flag_handedness_flip" not in row.key_value_pairs                # stale key removed
     keys = set().union(*(r.key_value_pairs for r in db.select()))
