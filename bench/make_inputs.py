@@ -8,8 +8,8 @@ Usage::
 writes ``OUTDIR/<format>-<atoms>/calc-0000/{vasprun.xml|OUTCAR|pw.out}`` (one file per run folder,
 as a campaign audit would find them), and for the audit benchmark ``OUTDIR/<cell>-<atoms>/calc-0000/``
 campaigns of one cell kind (``vc``: variable cell, ``fc``: fixed cell) whose runs take the three
-formats in turn (:func:`make_mixed`). Folders are ``calc-*``, not ``run-*``: driftwatch reads a
-folder whose subfolders are named ``run1``, ``run_2``, ``relax1`` ... as the stages of one run.
+formats in turn (:func:`make_mixed`). Folders are ``calc-*`` (driftwatch reads subfolders named
+``relax1``, ``stage_2``, ``restart-3`` ... as the stages of one run; ``calc-*`` are separate runs).
 Nothing is committed: the files are regenerated on demand.
 
 The trajectories are invented (no published data): an fcc-like 4-atom conventional cell and
