@@ -96,13 +96,13 @@ def symprec_grid(cfg: dict) -> list[float]:
 
 @functools.lru_cache(maxsize=64)
 def _grid(lo: float, hi: float, points: int, extra: tuple) -> tuple:
-    s = {"symprec_min": lo, "symprec_max": hi}
+    """The grid of :func:`symprec_grid` (memoised: the live tracker asks for it every step)."""
     grid = np.geomspace(lo, hi, points)
     half_step = 0.5 * np.log(grid[1] / grid[0])
     out = list(grid)
     moved = set()
     for x in extra:
-        if not s["symprec_min"] <= x <= s["symprec_max"]:
+        if not lo <= x <= hi:
             continue
         i = int(np.argmin(np.abs(np.log(grid / x))))
         if abs(np.log(grid[i] / x)) < half_step and grid[i] not in (grid[0], grid[-1]) \
