@@ -165,14 +165,15 @@ def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
     return True
 
 
-def _valid_result(res) -> bool:
-    """A stored result of the exact shape the audit uses (anything else is a miss)."""
+def _checked(res) -> dict | None:
+    """A stored result of the exact shape the audit uses, else None (a miss). A record's result
+    comes back with the record parsed (``parsed_record``), so the audit parses it once."""
     if not isinstance(res, dict):
-        return False
+        return None
     if res.get("ok") is False:
-        return isinstance(res.get("error"), str)
+        return res if isinstance(res.get("error"), str) else None
     if res.get("ok") is not True or not isinstance(res.get("record_text"), str):
-        return False
+        return None
     st = res.get("structure")
     try:
         rec = json.loads(res["record_text"])
@@ -185,11 +186,8 @@ def _valid_result(res) -> bool:
                      and isinstance(rec.get("summary"), dict) and isinstance(rec.get("flags"), list)
                      and isinstance(rec.get("geometry"), dict) and isinstance(rec.get("run"), dict))
     except (TypeError, KeyError, ValueError, AttributeError):
-        return False
-    if ok_shapes and ok_record:
-        res["parsed_record"] = rec          # the audit reads it once (not written back)
-        return True
-    return False
+        return None
+    return dict(res, parsed_record=rec) if ok_shapes and ok_record else None
 
 
 class Cache:
@@ -212,11 +210,11 @@ class Cache:
         except (OSError, ValueError):
             return None
         if not (isinstance(data, dict) and data.get("schema") == CACHE_SCHEMA
-                and data.get("key") == key and _valid_result(data.get("result"))):
+                and data.get("key") == key):
             return None
         if not _inputs_unchanged(data.get("inputs"), digests or FileDigests()):
-            return None
-        return data["result"]
+            return None                     # (checked first: a stale record is not parsed)
+        return _checked(data.get("result"))
 
     def put(self, key: str, result: dict, inputs: list) -> None:
         """Store a result with the inputs it was read from, atomically (a killed audit leaves the

@@ -16,6 +16,7 @@ import ase.db
 import numpy as np
 import pytest
 from ase.io import read
+from demo_runs import copy_demo_runs
 
 import driftwatch
 from driftwatch import records
@@ -32,15 +33,8 @@ def dw(*args, env=None, timeout=300, **kw):
 
 @pytest.fixture()
 def camp(tmp_path):
-    c = tmp_path / "camp"
-    c.mkdir()
-    for name in ("L01_qe_vcrelax", "L06_emt_bfgs.traj", "B05_emt_bfgs.extxyz"):
-        src = DEMO / name
-        if src.is_dir():
-            shutil.copytree(src, c / name)
-        else:
-            shutil.copy(src, c / name)
-    return c
+    return copy_demo_runs(tmp_path / "camp", ("L01_qe_vcrelax", "L06_emt_bfgs.traj",
+                                              "B05_emt_bfgs.extxyz"))
 
 
 # ----------------------------------------------------------------------------- stdout and stderr

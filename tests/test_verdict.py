@@ -18,6 +18,7 @@ import pytest
 import spglib
 from ase import Atoms
 from ase.io import read
+from demo_runs import copy_demo_runs
 
 import driftwatch
 from driftwatch import records, rules, symmetry
@@ -326,16 +327,8 @@ def test_held_by_code_only_where_it_changes_the_reading(demo):
 # ----------------------------------------------------------------------------- one verdict everywhere
 def test_every_output_reads_the_same_verdict(tmp_path):
     from driftwatch.campaign import audit
-    camp = tmp_path / "camp"
-    camp.mkdir()
-    for run in ("B03_qe_vcrelax_nosym", "B06_emt_bain.traj", "L07_emt_fire.traj"):
-        src = DEMO / run
-        if src.is_dir():
-            (camp / run).mkdir()
-            for f in src.iterdir():
-                (camp / run / f.name).write_bytes(f.read_bytes())
-        else:
-            (camp / run).write_bytes(src.read_bytes())
+    camp = copy_demo_runs(tmp_path / "camp", ("B03_qe_vcrelax_nosym", "B06_emt_bain.traj",
+                                              "L07_emt_fire.traj"))
     out = tmp_path / "out"
     s = audit([camp], out, workers=1, progress="off", report=True)
     rows = {r["run"]: r for r in csv.DictReader(open(out / "campaign.csv", newline=""))}
