@@ -55,7 +55,7 @@ from .cache import Cache, FileDigests, freeze_inputs, run_key
 from .cache import versions as _versions
 from .tasks import Progress, mp_context, progress_on
 from .rules import campaign_advice
-from .errors import ConfigError, DriftwatchError, InputError, OutputError, UnknownFormatError
+from .errors import ConfigError, DriftwatchError, InputError, OutputError
 
 __all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "LOCK", "DEFAULT_OUTPUT"]
 

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import bz2
 import csv
-import fcntl
 import gzip
 import json
 import lzma

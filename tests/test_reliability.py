@@ -17,7 +17,6 @@ built from input files carrying script payloads; soft-stop and output path conta
 from __future__ import annotations
 
 import gzip
-import io
 import json
 import os
 import re

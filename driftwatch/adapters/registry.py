@@ -39,7 +39,7 @@ from typing import Callable, Iterator
 
 from ..errors import DriftwatchError, InputError, UnknownFormatError
 from ._io import check_readable, peek, quiet_numbers, strip_compression
-from .run import Frame, ReadContext, Run, checked, collect, folder_listing, position_precision
+from .run import Frame, ReadContext, Run, checked, collect
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
            "ENTRY_POINT_GROUP", "Code", "FolderPick", "register_code", "codes", "code_of_format",

@@ -533,7 +533,7 @@ def _point_labels(m: Mark, sx, sy, taken, bounds) -> str:
         if x is None or y is None or not m.texts[i]:
             continue
         t = str(m.texts[i])
-        w, h = _tw(t, 9), 10.0
+        w = _tw(t, 9)
         r = m.size / 2 + 2
         for dx, dy, anchor in ((r, 3.2, "start"), (-r, 3.2, "end"), (0, -r - 1, "middle"),
                                (0, r + 8, "middle")):
