@@ -35,11 +35,6 @@ def _fig(chart):
     return to_figure(chart)
 
 
-def _common(rec):
-    vals = ((rec.get("config") or {}).get("report") or {}).get("common_symprecs") or ()
-    return tuple(float(v) for v in vals if isinstance(v, (int, float)) and v > 0)
-
-
 def layer_map(record):
     """Layers: the path on the two-sided projected-invariant map (start circled, end starred)."""
     from .report import charts
@@ -80,7 +75,7 @@ def spectrum(record):
     """spglib's verdict across symprec for the frames it was asked about (group; lattice alone)."""
     from .report import charts
     rec = _record(record)
-    return _fig(charts.spectrum(rec, _common(rec)))
+    return _fig(charts.spectrum(rec, charts.common_symprecs(rec)))
 
 
 def displacement(record):
@@ -94,7 +89,7 @@ def figures(record) -> dict:
     distance, cell, energy, spectrum, displacement)."""
     from .report import charts
     rec = _record(record)
-    return {name: _fig(c) for name, c in charts.run_charts(rec, _common(rec)).items()
+    return {name: _fig(c) for name, c in charts.run_charts(rec, charts.common_symprecs(rec)).items()
             if c is not None}
 
 

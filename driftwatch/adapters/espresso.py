@@ -565,19 +565,9 @@ def _as_stages(outs: list[Path], ctx) -> list | None:
 def _stage_folders(folder: Path, ctx) -> list | None:
     """Subfolders ``relax1/``, ``relax2/`` (any :data:`~driftwatch.adapters.run.STAGE_DIR` name)
     that each hold the pw.x output(s) of one stage, in their numbered order."""
-    from .run import STAGE_DIR, stage_sequence
+    from .run import stage_folders
     found = []
-    try:
-        subs = sorted(d for d in folder.iterdir() if d.is_dir() and STAGE_DIR.match(d.name))
-    except OSError:
-        return None
-    if not stage_sequence({d.name for d in subs}):
-        return None                  # run-0001/ run-0002/ ...: a campaign of runs, not stages
-    for d in subs:
-        try:
-            names = sorted(p.name for p in d.iterdir() if p.is_file() and not p.name.startswith("."))
-        except OSError:
-            continue
+    for (word, number), d, names in stage_folders(folder) or ():
         outs = pw_outputs(d, names, ctx)
         if not outs:
             continue
@@ -586,10 +576,9 @@ def _stage_folders(folder: Path, ctx) -> list | None:
         inner = [(f"{d.name}", outs[0], "espresso-out")] if len(outs) == 1 else _as_stages(outs, ctx)
         if inner is None:
             continue                 # several separate runs in one stage folder: not a stage
-        m = STAGE_DIR.match(d.name)
         for k, (name, path, fmt) in enumerate(inner):
             label = d.name if len(inner) == 1 else f"{d.name}/{name}"
-            found.append(((m.group(1).lower(), int(m.group(2)), k), label, path, fmt))
+            found.append(((word, number, k), label, path, fmt))
     if not found:
         return None
     found.sort(key=lambda x: x[0])

@@ -13,6 +13,7 @@ from __future__ import annotations
 import os
 import re
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Iterable, Iterator
 
 import numpy as np
@@ -172,8 +173,29 @@ def stage_sequence(names) -> bool:
     seq = [n for _, n in got]
     return (bool(seq) and len({w for w, _ in got}) == 1 and len(seq) <= MAX_STAGES
             and seq[0] in (0, 1) and seq == list(range(seq[0], seq[0] + len(seq))))
-"""Names of stage subfolders (``relax1``, ``stage_2``, ``restart-3``, ...): a folder with no output of
-its own whose stage subfolders are run folders of one code is one multi-stage run."""
+
+
+def stage_folders(folder) -> list[tuple[tuple[str, int], Path, list[str]]] | None:
+    """The stage subfolders of ``folder`` (``STAGE_DIR`` names forming one :func:`stage_sequence`)
+    as ``((word, number), subfolder, sorted names of its visible files)``, in name order; an
+    unlistable subfolder is left out. None when ``folder`` cannot be listed or its stage-named
+    subfolders are not one run's stages (a campaign of ``run-0001/ run-0002/ ...``). Each code's
+    adapter decides which of them hold a stage of its run."""
+    try:
+        subs = sorted(d for d in Path(folder).iterdir() if d.is_dir() and STAGE_DIR.match(d.name))
+    except OSError:
+        return None
+    if not stage_sequence({d.name for d in subs}):
+        return None
+    out = []
+    for d in subs:
+        try:
+            names = sorted(p.name for p in d.iterdir() if p.is_file() and not p.name.startswith("."))
+        except OSError:
+            continue
+        m = STAGE_DIR.match(d.name)
+        out.append(((m.group(1).lower(), int(m.group(2))), d, names))
+    return out
 
 
 def file_stamp(path) -> list | None:

@@ -28,9 +28,7 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import STREAM_ERRORS, Lines, open_bytes, strip_compression, tail_bytes
-from .run import STAGE_DIR as _STAGE_DIR
-from .run import stage_sequence
-from .run import Frame, ReadContext, decimals, frame_from_atoms
+from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
            "pick_from_folder", "SETTING_KEYS"]
@@ -677,15 +675,7 @@ def _stage_folders(folder: Path, format, ctx):
     """Subfolders relax1/, relax2/ ... that are VASP run folders, as the stages of ``folder``."""
     from .registry import FolderPick
     subs = []
-    try:
-        entries = sorted(e for e in folder.iterdir() if e.is_dir() and _STAGE_DIR.match(e.name))
-    except OSError:
-        return None
-    for d in entries:
-        try:
-            names = sorted(p.name for p in d.iterdir() if p.is_file() and not p.name.startswith("."))
-        except OSError:
-            continue
+    for (word, number), d, names in stage_folders(folder) or ():
         if not any(_STAGED.match(strip_compression(n)) and
                    _STAGED.match(strip_compression(n)).group(1) in _OUTPUT_KINDS for n in names):
             continue
@@ -693,14 +683,10 @@ def _stage_folders(folder: Path, format, ctx):
         got = pick_from_folder(d, names, format, ctx)
         if got is None:
             continue
-        m = _STAGE_DIR.match(d.name)
         for st, path, fmt in got.stages:
-            subs.append(((m.group(1).lower(), int(m.group(2)), st), f"{d.name}{'.' + st if st else ''}",
-                         path, fmt))
+            subs.append(((word, number, st), f"{d.name}{'.' + st if st else ''}", path, fmt))
     if not subs:
         return None
-    if not stage_sequence({d.name for d in entries}):
-        return None          # run-0001/ run-0002/ ...: a campaign of runs, not stages
     subs.sort(key=lambda x: (x[0][0], x[0][1], _stage_order(x[0][2])))
     atoms = [_first_numbers(path, fmt) for _, _, path, fmt in subs]
     if len(subs) > 1 and any(a is None or not np.array_equal(a, atoms[0]) for a in atoms):

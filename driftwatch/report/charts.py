@@ -143,6 +143,12 @@ def step_axis(steps, label="ionic step") -> Axis:
     return Axis(label, lim=(lo - pad, hi + pad), integer=True)
 
 
+def common_symprecs(rec) -> tuple:
+    """The record's ``report.common_symprecs`` (Å): its positive finite numbers, in order."""
+    vals = ((rec.get("config") or {}).get("report") or {}).get("common_symprecs") or ()
+    return tuple(v for v in (finite(x) for x in vals) if v and v > 0)
+
+
 def config_number(rec, *keys) -> float | None:
     """The number at ``config[keys...]`` of a record, or None where it is missing or not finite."""
     d = rec.get("config") or {}

@@ -441,9 +441,7 @@ def _span(rec):
 
 
 def _common(rec):
-    vals = ((rec.get("config") or {}).get("report") or {}).get("common_symprecs")
-    vals = [v for v in (_fnum(x) for x in (vals or [])) if v and v > 0]
-    return tuple(vals) or _camp.DEFAULT_COMMON
+    return charts.common_symprecs(rec) or _camp.DEFAULT_COMMON
 
 
 def _summary_section(rec):
