@@ -493,11 +493,10 @@ def _catch_sigterm(note: str = ""):
         return None
 
 
-#: What every worker imports (the analysis, ASE's parsers behind the OUTCAR and pw.x readers, its
-#: neighbour list behind the position warnings): imported once in the audit process before its
-#: workers fork, so they share it instead of each paying ~0.9 s CPU (the audit imports ASE for
-#: runs.db anyway).
-WORKER_PRELOAD = ("driftwatch.track", "ase.io", "ase.neighborlist")
+#: What every worker imports (the analysis, ASE's parsers behind the OUTCAR and pw.x readers):
+#: imported once in the audit process before its workers fork, so they share it instead of each
+#: paying ~0.9 s CPU (the audit imports ASE for runs.db anyway).
+WORKER_PRELOAD = ("driftwatch.track", "ase.io")
 
 
 def _new_pool(workers, cfg):

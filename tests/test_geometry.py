@@ -14,6 +14,7 @@ from ase import Atoms
 from ase.build import bulk, mx2
 from ase.geometry.dimensionality import isolate_components
 
+from driftwatch import geometry
 from driftwatch.errors import GeometryError
 from driftwatch.geometry import (DEFAULT_GAP, classify, find_layers, inplane_bases,
                                  layers_in_bulk, plane_normals, vacuum_gaps)
@@ -226,3 +227,42 @@ def test_layered_bulk_from_ase_builder_and_non_layered_bulk():
     assert abs(np.linalg.det(got[0])) == pytest.approx(np.linalg.norm(np.cross(cell[0], cell[1])))
     si = bulk("Si", "diamond", a=5.43)
     assert layers_in_bulk(si.cell.array, si.positions, si.numbers) == []
+
+
+# ------------------------------------------------------------------ closest pair (same-site check)
+def _ase_closest(cell, frac, pbc, cutoff):
+    """Reference: ASE's own neighbour list (ase.neighborlist.primitive_neighbor_list)."""
+    from ase.neighborlist import primitive_neighbor_list
+    wrapped = np.where(pbc, frac - np.floor(frac), frac)
+    i, j, d = primitive_neighbor_list("ijd", pbc, cell, wrapped @ cell, cutoff,
+                                      self_interaction=False)
+    keep = i < j
+    return None if not keep.any() else float(d[keep].min())
+
+
+@pytest.mark.parametrize("seed", range(40))
+def test_closest_pair_equals_ase_neighbour_list(seed):
+    """geometry._closest_pair against ASE's neighbour list on random cells: skewed, flat, layers
+    (one axis not periodic), tiny cells where the cutoff spans several images, and planted
+    near-duplicates across the cell boundary."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(2, 120)) if seed % 5 else int(rng.integers(201, 400))
+    cell = np.diag(rng.uniform(2.0, 12.0, 3)) + rng.uniform(-4, 4, (3, 3)) * (seed % 3 > 0)
+    if abs(np.linalg.det(cell)) < 1.0:
+        cell += 3.0 * np.eye(3)
+    cell *= max(1.0, (8.0 * n / abs(np.linalg.det(cell))) ** (1 / 3))    # >= 8 Å^3 per atom
+    pbc = np.array([True, True, seed % 4 != 3])
+    frac = rng.uniform(-1.5, 2.5, (n, 3))
+    for _ in range(int(rng.integers(0, 4))):        # near-duplicates, some a cell image apart
+        a, b = rng.choice(n, 2, replace=False)
+        frac[b] = frac[a] + rng.normal(0, 0.01, 3) + rng.integers(-1, 2, 3) * pbc
+    cutoff = float(rng.choice([0.1, 0.5, 1.5, 2.5] if n <= 200 else [0.1, 0.5]))
+    got = geometry._closest_pair(cell, frac, pbc, cutoff)
+    want = _ase_closest(cell, frac, pbc, cutoff)
+    if want is None:
+        assert got is None
+    else:
+        i, j, d = got
+        assert i < j and d == pytest.approx(want, abs=1e-9)
+        diff = (frac[j] - frac[i]) @ cell                # the pair named is that far apart
+        assert d <= np.linalg.norm(diff) + 1e-9
