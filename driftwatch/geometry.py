@@ -147,7 +147,8 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
         return Geometry(2, k, n, f"pbc = {pbc.tolist()}: axis {k} is non-periodic")
     gaps = vacuum_gaps(cells, pos) if gaps is None else np.asarray(gaps, float)   # (n, 3)
     big = [k for k in range(3) if gaps[0, k] > gap]
-    later = {tuple(int(k) for k in np.flatnonzero(row)) for row in np.unique(gaps[1:] > gap, axis=0)}
+    codes = np.unique((gaps[1:] > gap) @ np.array([1, 2, 4]))         # axes with vacuum, as bits
+    later = {tuple(k for k in range(3) if int(c) >> k & 1) for c in codes}
     drift = "" if later <= {tuple(big)} else \
         f"; later frames have vacuum on axes {sorted(map(list, later - {tuple(big)}))}"
     desc = ", ".join(f"{g:.2f}" for g in gaps[0])
