@@ -184,17 +184,11 @@ def _states(D: dict, types, within, lowest) -> list[str]:
     in ``types`` on a tie)."""
     M = np.stack([D[t] for t in types], axis=1)            # (n, types)
     held = M <= within
-    out = np.full(M.shape[0], lowest, dtype=object)
-    free = np.ones(M.shape[0], bool)
-    for level in sorted({ORDER[t] for t in types}, reverse=True):
-        cols = [j for j, t in enumerate(types) if ORDER[t] == level]
-        h = held[:, cols]
-        rows = free & h.any(axis=1)
-        if rows.any():
-            pick = np.argmin(np.where(h[rows], M[rows][:, cols], np.inf), axis=1)
-            out[rows] = np.array([types[cols[j]] for j in range(len(cols))], dtype=object)[pick]
-            free &= ~rows
-    return out.tolist()
+    order = np.array([ORDER[t] for t in types])
+    level = np.where(held, order, -1).max(axis=1)          # highest order held per frame
+    pick = np.where(held & (order == level[:, None]), M, np.inf).argmin(axis=1)
+    names = np.array(list(types) + [lowest], dtype=object)
+    return names[np.where(level >= 0, pick, len(types))].tolist()
 
 
 def _from_frame(series: np.ndarray, holds) -> int:

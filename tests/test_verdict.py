@@ -373,3 +373,20 @@ def test_records_of_the_previous_schema_are_still_read(tmp_path):
                         str(tmp_path / "rep")], capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     assert len(list((tmp_path / "rep" / "runs").glob("*.html"))) == 2
+
+
+@pytest.mark.parametrize("dim", [2, 3])
+def test_vectorised_frame_states_equal_the_per_frame_rule(dim):
+    """rules._states (all frames at once) equals rules._most_specific frame by frame: the highest
+    holohedry order held, the smaller deformation within it, the first type on a tie; exact ties
+    and values on the threshold included."""
+    rng = np.random.default_rng(dim)
+    types = rules._types(dim)
+    within = 1e-3
+    M = rng.choice([0.0, 5e-4, within, 2e-3, 0.3], size=(400, len(types)))
+    M[::7] += rng.uniform(0, 2e-3, (len(M[::7]), len(types)))
+    D = {t: M[:, j] for j, t in enumerate(types)}
+    got = rules._states(D, types, within, rules._LOWEST[dim])
+    want = [rules._most_specific(types, {t: M[i, j] for j, t in enumerate(types)}, within)
+            or rules._LOWEST[dim] for i in range(len(M))]
+    assert got == want
