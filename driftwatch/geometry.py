@@ -271,7 +271,7 @@ def position_warnings(cells, positions, pbc, steps=None, *, far: float = FAR_CEL
 
     Atoms more than ``far`` cell lengths outside the cell (every frame is checked; the first frame
     where the largest excursion occurs is named), and pairs of atoms closer than ``same_site`` Å
-    (checked on the first frame, then the last, with a cell list; the first found).
+    (checked on the first frame, then the last, by :func:`_closest_pair`; the first found).
     ``steps`` names frames by the code's step numbers (default: frame indices). An empty list
     when all is well."""
     cells, pos, _ = _frames(cells, positions)
