@@ -42,6 +42,8 @@ DEFAULT_GAP = 6.0
 slab models use 10-20 Å of vacuum; interlayer gaps of van der Waals bulk crystals are ~3-4 Å)."""
 
 _INPLANE = {0: (1, 2), 1: (2, 0), 2: (0, 1)}
+_CROSS_A, _CROSS_B = (np.array(x) for x in zip(*_INPLANE.values()))
+_BITS = np.array([1, 2, 4])
 
 
 @dataclass(frozen=True, eq=False)
@@ -111,19 +113,17 @@ def vacuum_gaps(cells, positions) -> np.ndarray:
     """(n, 3) Å: largest empty gap between atom planes along each axis's plane normal."""
     cells, pos, single = _frames(cells, positions)
     vol = np.abs(np.linalg.det(cells))
-    if np.any(vol < 1e-9):
+    if (vol < 1e-9).any():
         raise GeometryError("singular cell: cannot measure vacuum gaps")
     frac = np.linalg.solve(np.transpose(cells, (0, 2, 1)), np.transpose(pos, (0, 2, 1)))
     frac = np.sort(frac % 1.0, axis=2)                        # (n, 3, N)
-    inner = np.diff(frac, axis=2)
+    inner = frac[:, :, 1:] - frac[:, :, :-1]
     wrap = 1.0 - frac[:, :, -1] + frac[:, :, 0]
     gmax = np.maximum(wrap, inner.max(axis=2) if inner.shape[2] else 0.0)
-    spacing = np.empty((len(cells), 3))
-    for k, (i, j) in _INPLANE.items():
-        a, b = cells[:, i], cells[:, j]          # |a x b| (np.cross is slow on a few frames)
-        cr = a[:, [1, 2, 0]] * b[:, [2, 0, 1]] - a[:, [2, 0, 1]] * b[:, [1, 2, 0]]
-        spacing[:, k] = vol / np.sqrt(np.einsum("ni,ni->n", cr, cr))
-    out = gmax * spacing
+    # |a x b| of the two other cell vectors of each axis (np.cross is slow on a few frames)
+    a, b = cells[:, _CROSS_A], cells[:, _CROSS_B]                 # (n, 3 axes, 3)
+    cr = a[..., [1, 2, 0]] * b[..., [2, 0, 1]] - a[..., [2, 0, 1]] * b[..., [1, 2, 0]]
+    out = gmax * (vol[:, None] / np.sqrt(np.einsum("nki,nki->nk", cr, cr)))
     return out[0] if single else out
 
 
@@ -134,8 +134,9 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     Raises ``GeometryError`` for 1D/0D cells (two or three non-periodic axes, or vacuum
     along more than one axis).
     """
-    cells, pos, _ = _frames(cells, positions)
-    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
+    cells, pos, _ = _frames(cells, positions if gaps is None else None)
+    pbc = np.asarray(pbc, bool)
+    pbc = pbc if pbc.shape == (3,) else np.broadcast_to(pbc, (3,))
     free = [k for k in range(3) if not pbc[k]]
     if len(free) >= 2:
         kind = "0D (molecule or cluster)" if len(free) == 3 else "1D (wire or chain)"
@@ -147,7 +148,7 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
         return Geometry(2, k, n, f"pbc = {pbc.tolist()}: axis {k} is non-periodic")
     gaps = vacuum_gaps(cells, pos) if gaps is None else np.asarray(gaps, float)   # (n, 3)
     big = [k for k in range(3) if gaps[0, k] > gap]
-    codes = np.unique((gaps[1:] > gap) @ np.array([1, 2, 4]))         # axes with vacuum, as bits
+    codes = np.flatnonzero(np.bincount((gaps[1:] > gap) @ _BITS, minlength=8))  # vacuum axes, bits
     later = {tuple(k for k in range(3) if int(c) >> k & 1) for c in codes}
     drift = "" if later <= {tuple(big)} else \
         f"; later frames have vacuum on axes {sorted(map(list, later - {tuple(big)}))}"
@@ -275,7 +276,8 @@ def position_warnings(cells, positions, pbc, steps=None, *, far: float = FAR_CEL
     ``steps`` names frames by the code's step numbers (default: frame indices). An empty list
     when all is well."""
     cells, pos, _ = _frames(cells, positions)
-    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
+    pbc = np.asarray(pbc, bool)
+    pbc = pbc if pbc.shape == (3,) else np.broadcast_to(pbc, (3,))
     label = "frame" if steps is None else "step"
     steps = np.arange(len(cells)) if steps is None else np.asarray(steps)
     out = []

@@ -172,6 +172,8 @@ SYSTEMS = {
     "cubic": ("cP", "cI", "cF"),
 }
 """The six non-triclinic lattice systems and their Bravais types."""
+_SYSTEM_COLS = np.array([[TYPES.index(ts[min(k, len(ts) - 1)]) for k in range(4)]
+                         for ts in SYSTEMS.values()])   # (systems, 4) padded with the last type
 
 _LEVEL = {"mP": 4, "mS": 4, "oP": 8, "oS": 8, "oI": 8, "oF": 8, "hR": 12,
           "tP": 16, "tI": 16, "hP": 24, "cP": 48, "cI": 48, "cF": 48}
@@ -215,6 +217,7 @@ _CHUNK = 256  # frames per block in the cone distances (cache-sized)
 _KEY_BLOCK = 4096  # frames per block when ranking the 168 relabellings (a 5.5 MB key table)
 _REDUCE_BLOCK = 16384  # frames per block in the Selling reduction
 _DEF_CHUNK = 192  # frames per block in ``deformation`` (its gathers stay in cache)
+_FLAT_MAX = 8  # up to this many frames ``deformation`` reduces all index lists in one call
 _W_SQUARINGS = 4  # frame weight (lambda / l)^16 = four squarings of lambda / l ...
 _W_FLOOR = 0.5    # ... never below 1/2
 KAPPA = 0.92
@@ -374,11 +377,15 @@ def _deform_table():
         pz.append(zeros.setdefault(key, len(zeros)))
         types.append(t)
 
-    def by_size(lists):  # [(positions, index rows)] of lists grouped by length
-        out = {}
+    def by_size(lists):  # [(positions, index rows)] of the non-empty lists grouped by length,
+        out = {}             # and all of them as (positions, concatenated entries, starts)
         for i, lst in enumerate(lists):
-            out.setdefault(len(lst), []).append(i)
-        return [(np.array(v), np.array([lists[i] for i in v])) for _, v in sorted(out.items())]
+            if lst:
+                out.setdefault(len(lst), []).append(i)
+        full = [x for x in lists if x]
+        flat = (np.flatnonzero([len(x) > 0 for x in lists]), np.concatenate(full).astype(np.intp),
+                np.cumsum([0] + [len(x) for x in full[:-1]]))
+        return [(np.array(v), np.array([lists[i] for i in v])) for _, v in sorted(out.items())], flat
 
     sub_list = sorted(subsets, key=subsets.get)
     zero_list = sorted(zeros, key=zeros.get)
@@ -391,7 +398,7 @@ def _deform_table():
             "pa": np.array([a for a, _ in pairs]), "pb": np.array([b for _, b in pairs]),
             "line3": line3, "swap": np.array([sa, sb, np.add(sa, 28), np.add(sb, 28)]),
             "n_zero": len(zero_list), "zeros": by_size(zero_list),
-            "n_sub": len(sub_list), "subs": [g for g in by_size(sub_list) if g[1].shape[1]],
+            "n_sub": len(sub_list), "subs": by_size(sub_list),
             "n_group": len(keys), "groups": by_size([groups[k] for k in keys]),
             "g_sub": np.array([i for _, i in keys]),
             "starts": np.searchsorted(np.array([t for t, _ in keys]), np.arange(len(TYPES)))}
@@ -465,9 +472,24 @@ def _selling_steps():
 _STEPS = _selling_steps()
 
 
+_PI = np.array([i for i, _ in _PAIRS])
+_PJ = np.array([j for _, j in _PAIRS])
+_GI = np.array([i for i, _ in _GAUSS_PAIRS])
+_GJ = np.array([j for _, j in _GAUSS_PAIRS])
+_GAUSS_I, _GAUSS_J = np.r_[_GI, _GJ], np.r_[_GJ, _GJ]
+_SIGNS = np.array([[1, 1], [1, -1], [-1, 1], [-1, -1]], float)
+_EYE3 = np.eye(3)
+
+
+def _pair_dots(v, i, j):
+    """(n, k) v[:, i[k]] . v[:, j[k]] (one gather and one einsum: every dot product of the
+    reduction goes through this kernel, so a frame gives the same bits alone or in a batch)."""
+    return np.einsum("nki,nki->nk", v[:, i], v[:, j])
+
+
 def _dots(v):
     """(n, 6) v_i . v_j for the pairs (01, 02, 03, 12, 13, 23)."""
-    return np.stack([np.einsum("ni,ni->n", v[:, i], v[:, j]) for i, j in _PAIRS], axis=1)
+    return _pair_dots(v, _PI, _PJ)
 
 
 def _reduce(arr):
@@ -490,15 +512,21 @@ def _reduce_block(arr, first=0):
     """
     n = arr.shape[0]
     noise = 16 * _EPS * np.einsum("nij,nij->ni", arr, arr).max(axis=1)  # Å^2, per frame
-    U = np.broadcast_to(np.eye(3), (n, 3, 3)).copy()  # exact integers in float
+    U = np.repeat(_EYE3[None], n, axis=0)  # exact integers in float
     B = arr.copy()
-    idx = np.arange(n)
+    # a pass changes a frame only if some pair's |mu| exceeds 1/2 (the first pair of a pass sees
+    # the frame unchanged, and so on): frames where none does, at the start, are skipped
+    g = _pair_dots(arr, _GAUSS_I, _GAUSS_J)                  # (n, 12): b_i . b_j, then b_j . b_j
+    idx = np.flatnonzero((np.abs(g[:, :6] / g[:, 6:]) > 0.5 + 1e-9 + noise[:, None] / g[:, 6:])
+                         .any(axis=1))
     for _ in range(_MAXIT):  # pairwise Gauss passes with rounding
+        if not len(idx):
+            break
         b, u, nz_ = B[idx], U[idx], noise[idx]
         changed = np.zeros(len(idx), bool)
         for i, j in _GAUSS_PAIRS:
-            bj2 = np.einsum("ni,ni->n", b[:, j], b[:, j])
-            mu = np.einsum("ni,ni->n", b[:, i], b[:, j]) / bj2
+            bij, bj2 = _pair_dots(b, [i, j], [j, j]).T
+            mu = bij / bj2
             # |mu| = 1/2 (a tie, common in symmetric cells) must not flip back and forth
             m = np.where(np.abs(mu) > 0.5 + 1e-9 + nz_ / bj2, np.rint(mu), 0.0)
             nz = m != 0
@@ -516,13 +544,9 @@ def _reduce_block(arr, first=0):
     # signs of b2, b3 minimising |b1 + b2 + b3|^2 = |v0|^2: the superbase of least
     # sum |v_i|^2 among the sign choices (what Selling steps decrease), so that
     # typical cells need zero or one step
-    g12 = np.einsum("ni,ni->n", B[:, 0], B[:, 1])
-    g13 = np.einsum("ni,ni->n", B[:, 0], B[:, 2])
-    g23 = np.einsum("ni,ni->n", B[:, 1], B[:, 2])
-    signs = np.array([[1, 1], [1, -1], [-1, 1], [-1, -1]], float)
-    cost = signs[:, 0] * g12[:, None] + signs[:, 1] * g13[:, None] \
-        + signs[:, 0] * signs[:, 1] * g23[:, None]
-    best = signs[cost.argmin(axis=1)]
+    g = _pair_dots(B, [0, 0, 1], [1, 2, 2])                     # g12, g13, g23
+    cost = g[:, :1] * _SIGNS[:, 0] + g[:, 1:2] * _SIGNS[:, 1] + g[:, 2:] * (_SIGNS[:, 0] * _SIGNS[:, 1])
+    best = _SIGNS[cost.argmin(axis=1)]
     U[:, 1] *= best[:, :1]
     U[:, 2] *= best[:, 1:]
     C = np.concatenate([-U.sum(axis=1, keepdims=True), U], axis=1)  # (n, 4, 3)
@@ -619,16 +643,18 @@ def _canonical(p6):
     x = _p7(p6)
     # tie classes: sorted values closer than _LEX_TOL * max are equal; rank = class index
     order = np.argsort(x, axis=1, kind="stable")
-    xs = np.take_along_axis(x, order, axis=1)
-    gap = np.diff(xs, axis=1) > (_LEX_TOL * xs[:, -1])[:, None]
-    rank_sorted = np.concatenate([np.zeros((n, 1)), np.cumsum(gap, axis=1)], axis=1)
+    row = np.arange(n)[:, None]
+    xs = x[row, order]
+    gap = xs[:, 1:] - xs[:, :-1] > (_LEX_TOL * xs[:, -1])[:, None]
+    rank_sorted = np.zeros((n, 7))
+    np.cumsum(gap, axis=1, out=rank_sorted[:, 1:])
     rank = np.empty_like(rank_sorted)
-    np.put_along_axis(rank, order, rank_sorted, axis=1)
+    rank[row, order] = rank_sorted
     key = _key_matrix()  # keys are exact integers < 8^7
     # in blocks: a (n, 168) key table is memory-bound (1.3 GB at 10^6 frames; 3.4 s -> 0.2 s)
     best = np.concatenate([(rank[s:s + _KEY_BLOCK] @ key).argmin(axis=1)
                            for s in range(0, n, _KEY_BLOCK)]) if n else np.zeros(0, np.intp)
-    return np.take_along_axis(x, _gl32()[best][:, :6], axis=1)
+    return x[row, _gl32()[best][:, :6]]
 
 
 def root_products(bases):
@@ -663,7 +689,6 @@ def _cone(x, metric):
     frame in a batch (the live tracker computes one new frame at a time)."""
     tab = _pattern_table()
     out = np.empty((x.shape[0], len(TYPES)))
-    ends = np.append(tab["starts"][1:], tab["l2w"].shape[0])
     for s in range(0, x.shape[0], _CHUNK):
         xt = np.ascontiguousarray(x[s:s + _CHUNK].T)  # (7, m): rows are gathered
         m = xt.shape[1]
@@ -677,6 +702,7 @@ def _cone(x, metric):
                 best = np.minimum.reduceat(prod, tab["starts"], axis=0)[:, :m]
             else:
                 best = np.empty((len(TYPES), prod.shape[1]))
+                ends = np.append(tab["starts"][1:], tab["l2w"].shape[0])
                 for t, (a, b) in enumerate(zip(tab["starts"], ends)):
                     np.min(prod[a:b], axis=0, out=best[t])
                 best = best[:, :m]
@@ -702,8 +728,8 @@ def _type_dict(d, single):
 
 
 def _system_dict(d, single):
-    return {s: _out(d[:, [TYPES.index(t) for t in ts]].min(axis=1), single)
-            for s, ts in SYSTEMS.items()}
+    m = d[:, _SYSTEM_COLS].min(axis=2)       # (n, systems): the nearest type of each system
+    return {s: _out(m[:, k], single) for k, s in enumerate(SYSTEMS)}
 
 
 def _deformation(v, p, metric):
@@ -720,6 +746,21 @@ def _deformation(v, p, metric):
         out[s:s + _DEF_CHUNK] = _discrepancy(np.ascontiguousarray(x[s:s + _DEF_CHUNK].T),
                                              np.ascontiguousarray(n2[s:s + _DEF_CHUNK].T),
                                              metric).T
+    return out
+
+
+def _rows(x, table, n, reduce):
+    """(n, m) ``reduce`` (np.maximum or np.minimum) of the rows of ``x`` (k, m) listed by each
+    output row of ``table`` (:func:`_deform_table`'s index lists; an empty list gives 0). A few
+    frames take one gather of all lists and ``reduceat`` (the per-call cost dominates); many take
+    the lists grouped by length, one gather per length (faster on large blocks). Same values."""
+    out = np.zeros((n, x.shape[1]))
+    groups, (ids, flat, starts) = table
+    if x.shape[1] <= _FLAT_MAX:
+        out[ids] = reduce.reduceat(x[flat], starts, axis=0)
+    else:
+        for ids, rows in groups:
+            out[ids] = reduce.reduce(x[rows], axis=1)
     return out
 
 
@@ -755,15 +796,10 @@ def _discrepancy(pt, nt, metric):
     d_len, d_ang = d[:, :2].max(axis=1), d[:, 2:].max(axis=1)
     worst = np.maximum(d_len, d_ang) if metric == "linf" else np.sqrt(d_len ** 2 + d_ang ** 2)
     flips = np.concatenate([2.0 * wp * angle, pt / length.max(axis=0)])   # (28, m)
-    zero = np.empty((tab["n_zero"], m))
-    for ids, rows in tab["zeros"]:               # zero structures: largest flip (or guard)
-        zero[ids] = flips[rows].max(axis=1)
-    sub = np.zeros((tab["n_sub"], m))
-    for ids, rows in tab["subs"]:                # sets of involutions: the worst one
-        sub[ids] = worst[rows].max(axis=1)
-    zmin = np.empty((tab["n_group"], m))
-    for ids, rows in tab["groups"]:              # settings of one type sharing involutions
-        zmin[ids] = zero[rows].min(axis=1)
+    zero = _rows(flips, tab["zeros"], tab["n_zero"], np.maximum)   # zero structures: largest flip
+    sub = _rows(worst, tab["subs"], tab["n_sub"], np.maximum)      # involution sets: the worst
+    zmin = _rows(zero, tab["groups"], tab["n_group"], np.minimum)  # settings of a type, same
+    #                                                                involutions: the best
     return KAPPA * np.minimum.reduceat(np.maximum(sub[tab["g_sub"]], zmin), tab["starts"], axis=0)
 
 

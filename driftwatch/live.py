@@ -150,7 +150,7 @@ class Tracker:
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
-        self._gaps: list = []                     # each frame's vacuum gaps (Å, bulk-or-layer test)
+        self._gaps = np.zeros((0, 3))             # each frame's vacuum gaps (Å, bulk-or-layer test)
         self._stacked: dict | None = None         # the frames' arrays (see _collect)
         self._spectra_for = None
 
@@ -220,7 +220,8 @@ class Tracker:
         if run.pbc.all():                       # each frame's vacuum gaps, computed once
             k = len(self._gaps)
             if k < len(run.cells):
-                self._gaps += list(geometry.vacuum_gaps(run.cells[k:], run.positions[k:]))
+                self._gaps = np.concatenate([self._gaps, geometry.vacuum_gaps(run.cells[k:],
+                                                                              run.positions[k:])])
             gaps = self._gaps[:len(run.cells)]
         geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"],
                                 gaps=gaps)

@@ -178,17 +178,17 @@ def _most_specific(types, values, within):
     return max(ok, key=lambda t: (ORDER[t], -values[t])) if ok else None
 
 
-def _states(D: dict, types, within, lowest) -> list[str]:
+def _states(D, types, within, lowest) -> list[str]:
     """:func:`_most_specific` of every frame (``lowest`` where no type is held), vectorised: the
     highest holohedry order held, the smaller deformation among types of that order (the first
-    in ``types`` on a tie)."""
-    M = np.stack([D[t] for t in types], axis=1)            # (n, types)
+    in ``types`` on a tie). ``D``: {type: (n,)}, or the (n, types) array."""
+    M = D if isinstance(D, np.ndarray) else np.stack([D[t] for t in types], axis=1)
     held = M <= within
     order = np.array([ORDER[t] for t in types])
     level = np.where(held, order, -1).max(axis=1)          # highest order held per frame
     pick = np.where(held & (order == level[:, None]), M, np.inf).argmin(axis=1)
-    names = np.array(list(types) + [lowest], dtype=object)
-    return names[np.where(level >= 0, pick, len(types))].tolist()
+    names = list(types) + [lowest]
+    return [names[i] for i in np.where(level >= 0, pick, len(types)).tolist()]
 
 
 def _from_frame(series: np.ndarray, holds) -> int:
@@ -217,10 +217,12 @@ def _stretches(states: list[str]) -> list[tuple[str, int, int]]:
 # ----------------------------------------------------------------------------------------------
 # the lattice level
 # ----------------------------------------------------------------------------------------------
-def _lattice_verdict(frames, dim, r, persist, fixed_cell):
-    """Direction of the lattice from the deformation series (and the 2D sign for layers)."""
+def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
+    """Direction of the lattice from the deformation series (and the 2D sign for layers).
+    ``series``: {type: (n,)} the frames' deformation as arrays, if at hand (else read from them)."""
     types = _types(dim)
-    M = np.array([[f["deformation"][t] for t in types] for f in frames], dtype=float)  # (n, types)
+    M = np.array([[f["deformation"][t] for t in types] for f in frames], dtype=float) \
+        if series is None else np.stack([series[t] for t in types], axis=1)     # (n, types)
     D = {t: M[:, j] for j, t in enumerate(types)}
     n, lat = len(frames), r["lattice"]
     within, away, beyond = lat["within"], lat["start_away"], lat["left_beyond"]
@@ -234,7 +236,7 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell):
     lost = [t for t in types if D[t][0] <= within and D[t][-1] >= beyond and lasted(left_since[t])]
     top = lambda ts, k: max(ts, key=lambda t: (ORDER[t], -D[t][k])) if ts else None
     g, lo = top(gained, -1), top(lost, 0)
-    states = _states(D, types, within, _LOWEST[dim])
+    states = _states(M, types, within, _LOWEST[dim])
     first, last = states[0], states[-1]
     flip = _handedness(frames, r["handedness_flip"]) if dim == 2 else None
     if flip and persist is not None and not lasted(flip["frame"]):
@@ -567,13 +569,15 @@ def _state(frame, types, within, dim):
             "deformation": None if near is None else float(dfm[near])}
 
 
-def judge(record: dict, cfg: dict, *, complete: bool = True) -> tuple[list[dict], dict]:
+def judge(record: dict, cfg: dict, *, complete: bool = True,
+          series: dict | None = None) -> tuple[list[dict], dict]:
     """Flags and summary of a record. ``complete=False`` (a live run): a change counts only once it
-    held for ``rules.persistence.steps`` consecutive steps."""
+    held for ``rules.persistence.steps`` consecutive steps. ``series``: the frames' deformation as
+    arrays {type: (n,)} (Å) when the caller has them (the same values; saves reading the frames)."""
     frames, dim = record["frames"], record["geometry"]["dimension"]
     r = cfg["rules"]
     persist = None if complete else r["persistence"]["steps"]
-    lv, drift, D = _lattice_verdict(frames, dim, r, persist, record["run"]["fixed_cell"])
+    lv, drift, D = _lattice_verdict(frames, dim, r, persist, record["run"]["fixed_cell"], series)
     sv = _structure_verdict(frames, cfg, persist)
     direction = _combine(lv["direction"], sv["direction"])
     flags = _lattice_flags(frames, lv, D, r)

@@ -52,10 +52,12 @@ def lattice_table(run: Run, geo, metric: str = "l2", start: int = 0) -> dict:
             "systems": inv["systems"]}
 
 
-def select_frames(deformation: dict, sel: dict) -> list[int]:
+def select_frames(deformation, sel: dict) -> list[int]:
     """Frames the search for the group's change starts from: first, last, every Nth, and where any
-    deformation moved > on_change (Å) since the last one picked (all with ``all_frames``)."""
-    d = np.stack([np.asarray(v, float) for v in deformation.values()], axis=1)  # (n, types)
+    deformation moved > on_change (Å) since the last one picked (all with ``all_frames``).
+    ``deformation``: {type: (n,)} or the (n, types) array."""
+    d = deformation if isinstance(deformation, np.ndarray) else \
+        np.stack([np.asarray(v, float) for v in deformation.values()], axis=1)  # (n, types)
     n = d.shape[0]
     if sel["all_frames"]:
         return list(range(n))
@@ -271,27 +273,33 @@ class FrameTable:
 
     def __init__(self):
         self.entries: list[dict] = []
-        self.deformation: dict[str, np.ndarray] = {}
+        self.matrix = np.zeros((0, 0))        # (frames, types) deformation (Å), columns ``types``
+        self.types: tuple[str, ...] = ()
         self._key = None
+
+    @property
+    def deformation(self) -> dict[str, np.ndarray]:
+        """{type: (n,)} the deformation series (views of ``matrix``)."""
+        return {t: self.matrix[:, j] for j, t in enumerate(self.types)}
 
     def truncate(self, k: int) -> None:
         if k < len(self.entries):
             self.entries = self.entries[:k]
-            self.deformation = {t: v[:k] for t, v in self.deformation.items()}
+            self.matrix = self.matrix[:k]
 
     def update(self, run: Run, geo, metric: str) -> None:
         key = (geo.dimension, geo.vacuum_axis, metric)
         if key != self._key:
-            self.entries, self.deformation, self._key = [], {}, key
+            self.entries, self.matrix, self._key = [], np.zeros((0, 0)), key
         start = len(self.entries)
         if start >= len(run.cells):
             self.truncate(len(run.cells))
             return
         table = lattice_table(run, geo, metric, start)
         self.entries += _frame_entries(run, table, start)
-        self.deformation = {t: np.concatenate([self.deformation[t], np.asarray(v, float)])
-                            if t in self.deformation else np.asarray(v, float)
-                            for t, v in table["deformation"].items()}
+        self.types = tuple(table["deformation"])
+        new = np.stack([np.asarray(v, float) for v in table["deformation"].values()], axis=1)
+        self.matrix = np.concatenate([self.matrix, new]) if start else new
 
 
 def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = None,
@@ -352,7 +360,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         seeds = sorted(set(frames))
         with_spectrum = seeds
     else:
-        seeds = select_frames(table.deformation, cfg["selection"])
+        seeds = select_frames(table.matrix, cfg["selection"])
         with_spectrum = spectrum_frames(n, cfg["selection"])
         if skip_newest:
             seeds = [i for i in seeds if i < n - 1] or [0]
@@ -382,7 +390,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     t2 = time.perf_counter()
     record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
                                 versions=_versions())
-    record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete)
+    record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete,
+                                                     series=table.deformation)
     record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
                         "total_s": time.perf_counter() - t0, "spglib_frames": len(with_spectrum),
                         "spglib_frames_computed": computed, "spglib_calls": calls,

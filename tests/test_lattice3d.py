@@ -694,6 +694,7 @@ def test_one_frame_at_a_time_equals_the_batch(metric):
     rng = np.random.default_rng(48)
     b = rng.normal(scale=0.3, size=(300, 3, 3)) + np.diag([3.0, 3.5, 4.0])
     b[::7] = np.eye(3) * 4.0 + rng.normal(scale=1e-7, size=(3, 3))
+    b[5::11] = np.array([[1, 3, 0], [0, 1, -2], [0, 0, 1.0]]) @ b[5::11]  # skewed: Gauss passes run
     full = L.invariants(b, metric)
     for s, e in [(i, i + 1) for i in range(0, 300, 13)] + [(3, 6), (10, 27), (100, 299)]:
         part = L.invariants(b[s:e], metric)
