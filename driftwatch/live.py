@@ -153,6 +153,7 @@ class Tracker:
         self._gaps = np.zeros((0, 3))             # each frame's vacuum gaps (Å, bulk-or-layer test)
         self._stacked: dict | None = None         # the frames' arrays (see _collect)
         self._spectra_for = None
+        self._geo = None                          # the geometry decided on frame 0 (lattice_flags)
 
     def __len__(self) -> int:
         return len(self.frames)
@@ -173,6 +174,7 @@ class Tracker:
                 break
             k += 1
         if k < len(self.frames):
+            self._geo = self._geo if k else None
             self._spectra = {key: s for key, s in self._spectra.items() if key[0] < k}
             self._groups = {key: g for key, g in self._groups.items() if key[0] < k}
             self._table.truncate(k)
@@ -231,6 +233,24 @@ class Tracker:
             geo = geometry.Geometry(3, None, None, f"{geo.reason}; analysed as bulk (layer=False)")
         return geo
 
+    def lattice_flags(self, *, complete: bool = False) -> list[dict]:
+        """The flags about the lattice (:func:`driftwatch.rules.lattice_flags`) of the frames so
+        far, from the invariants alone: each new frame's invariants are computed once (kept for
+        the next record), spglib is not run, and the geometry is the one decided on the first
+        frame (the later frames' vacuum gaps, which only add a note to it, wait for
+        :meth:`record`). The same flags as the record's at this step."""
+        if not self.frames:
+            raise InputError(self.source, "no completed ionic step yet")
+        ctx = ReadContext(self.source)
+        ctx.rounding = self.rounding
+        run = self._collect(ctx)
+        if self._geo is None:
+            self._geo = self._geometry(run)
+        geo = self._geo
+        self._table.update(run, geo, self.cfg["lattice"]["metric"], lattice_only=True)
+        return rules.lattice_flags(self._table.entries, geo.dimension, self.cfg, complete=complete,
+                                   series=self._table.deformation)
+
     def record(self, *, newest: bool = True, complete: bool = False) -> dict:
         """The run record of the frames so far (see the class docstring). ``complete``: the run has
         ended (its end counts); otherwise a change counts once it held for
@@ -243,7 +263,7 @@ class Tracker:
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         ctx.rounding = self.rounding
         run = self._collect(ctx)
-        geo = self._geometry(run)
+        geo = self._geo = self._geometry(run)
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
             self._spectra, self._groups = {}, {}
             self._spectra_for = (geo.dimension, geo.vacuum_axis)
@@ -299,13 +319,19 @@ class SymmetryWatch:
             if watch.fired:
                 break
 
-    Cost: every call computes the new frame's lattice invariants and judges the run (the lattice
-    flags are current at every step); spglib runs on the first frame, on a frame where the lattice
-    moved (``selection.on_change``: the structure level is judged up to there), and on the newest
-    frame only when asked: when a ``stop_on`` code needs it (:data:`SPECTRUM_FLAGS`), when a
-    ``stop_on`` flag is raised (the record that warns or stops is complete), at :meth:`finish`, or
-    with ``lazy=False`` at every call (one tolerance spectrum per call: measured here ~0.05 s for a
-    1-atom layer, ~0.3 s for a 27-atom bulk cell). ``bench/run.py`` measures the cost per step.
+    Cost: every call computes the new frame's lattice invariants and the lattice flags (they are
+    current at every step). When every ``stop_on`` code is about the lattice (the default) and
+    there is no ``output``, that is all a call does (a bulk frame gets only its deformation; its
+    other invariants are computed with the next record): the record is built when
+    ``watch.record`` is read, when a flag is raised, or at :meth:`finish`. Otherwise every call
+    builds the record. Building it runs spglib on the first frame and on frames where the lattice
+    moved (``selection.on_change``: the structure level is judged up to there), each once, and on
+    the newest frame only when asked: when a ``stop_on`` code needs it (:data:`SPECTRUM_FLAGS`),
+    when a ``stop_on`` flag is raised (the record that warns or stops is complete), at
+    :meth:`finish`, or with ``lazy=False`` at every call (one tolerance spectrum per call:
+    measured here ~0.05 s for a 1-atom layer, ~0.3 s for a 27-atom bulk cell). ``bench/run.py``
+    measures the cost per step (about 2 ms at 48 atoms in the default mode; the spglib work moves
+    to the first read of the record or to :meth:`finish`).
     ``watch.record`` is the current record; after :meth:`finish` (or a raised flag) it has the
     same content as :func:`driftwatch.track.analyze` of the observed steps. ``output`` is rewritten
     atomically on every call (rank 0 only
@@ -332,8 +358,13 @@ class SymmetryWatch:
         self.optimizer = optimizer
         self.lazy = bool(lazy)
         self._needs_newest = _needs_spectra(self.stop_on)
+        # every watched code is about the lattice, and no file wants each step's record: a step
+        # checks the lattice flags alone, the record is built when read
+        self._lattice_steps = self.lazy and self.output is None and all(
+            rules.FLAGS.get(c, c) == "lattice" for c in self.stop_on)
+        self._stale = False
         self.fired: list[dict] = []
-        self.record: dict | None = None
+        self._record: dict | None = None
         self.error: DriftwatchError | None = None
         self._seen: set = set()
         self._calls = 0
@@ -345,7 +376,38 @@ class SymmetryWatch:
         step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
         self._calls += 1
         self._tracker.append(frame_from_atoms(self.atoms, step))
-        self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
+        if self._lattice_steps:
+            self._check_lattice(stacklevel=3)
+        else:
+            self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
+
+    @property
+    def record(self) -> dict | None:
+        """The current record (None before the first step or after an analysis error). When every
+        ``stop_on`` code is about the lattice and there is no ``output``, a step only checks the
+        lattice flags and the record of the steps so far is built here, when read."""
+        if self._stale:
+            self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
+        return self._record
+
+    def _check_lattice(self, stacklevel: int) -> None:
+        """One step when only lattice flags are watched: the new frame's invariants and the
+        lattice flags (the record's own, :meth:`Tracker.lattice_flags`); a new flag gets the
+        complete record, warned or raised as in :meth:`_update`."""
+        try:
+            flags = self._tracker.lattice_flags()
+        except DriftwatchError as exc:
+            return self._failed(exc, stacklevel + 1)
+        if any(_key(f) not in self._seen for f in rules.select(flags, self.stop_on)):
+            return self._update(newest=True, stacklevel=stacklevel + 1)
+        self._stale = True
+
+    def _failed(self, exc: DriftwatchError, stacklevel: int) -> None:
+        if self.error is None:
+            warnings.warn(f"driftwatch: cannot analyse the relaxation ({exc}); it continues "
+                          f"unwatched", RuntimeWarning, stacklevel=stacklevel)
+        self.error = exc
+        self._stale = False
 
     def finish(self) -> dict | None:
         """The complete record (spglib on the newest frame too), written to ``output``.
@@ -356,17 +418,14 @@ class SymmetryWatch:
         """
         if len(self._tracker):
             self._update(newest=True, stacklevel=3, complete=True)
-        return self.record
+        return self._record
 
     def _update(self, newest: bool, stacklevel: int, complete: bool = False) -> None:
+        self._stale = False
         try:
             rec = self._tracker.record(newest=newest, complete=complete)
         except DriftwatchError as exc:
-            if self.error is None:
-                warnings.warn(f"driftwatch: cannot analyse the relaxation ({exc}); it continues "
-                              f"unwatched", RuntimeWarning, stacklevel=stacklevel)
-            self.error = exc
-            return
+            return self._failed(exc, stacklevel + 1)
         new = [f for f in rules.select(rec["flags"], self.stop_on) if _key(f) not in self._seen]
         if new and not newest:
             # a flag is raised: the record that warns, stops or is kept is the complete one
@@ -377,7 +436,7 @@ class SymmetryWatch:
         rec["live"] = {"observer": {"mode": self.mode, "stop_on": self.stop_on,
                                     "calls": self._calls, "complete": complete},
                        "fired": [dict(f) for f in self.fired]}
-        self.record = rec
+        self._record = rec
         if self.output is not None and _rank() == 0:
             records.write_json(rec, self.output)
         if not new:

@@ -52,8 +52,8 @@ import numpy as np
 
 from . import lattice2d, lattice3d
 
-__all__ = ["judge", "evaluate", "summarize", "FLAGS", "RENAMED", "CONCERNS", "DIRECTIONS", "ORDER",
-           "NAMES", "bravais_of_group", "advice", "select", "check_codes", "campaign_advice",
+__all__ = ["judge", "lattice_flags", "evaluate", "summarize", "FLAGS", "RENAMED", "CONCERNS",
+           "DIRECTIONS", "ORDER", "NAMES", "bravais_of_group", "advice", "select", "check_codes", "campaign_advice",
            "advice_item", "SAFE_MARGIN", "grid_index", "generalises"]
 
 FLAGS = {
@@ -567,6 +567,17 @@ def _state(frame, types, within, dim):
     return {"type": t, "nearest": near,
             "distance": None if near is None else float(dst[near]),
             "deformation": None if near is None else float(dfm[near])}
+
+
+def lattice_flags(frames: list[dict], dim: int, cfg: dict, *, complete: bool = True,
+                  series: dict | None = None) -> list[dict]:
+    """The flags :func:`judge` raises about the lattice (those whose ``concerns`` is ``lattice``),
+    from the frames' invariants alone (no spglib): what the live observer checks every step.
+    ``frames``: per-frame entries with ``step`` and ``deformation`` (layers: ``sign`` too)."""
+    r = cfg["rules"]
+    persist = None if complete else r["persistence"]["steps"]
+    lv, _, D = _lattice_verdict(frames, dim, r, persist, False, series)
+    return _lattice_flags(frames, lv, D, r)
 
 
 def judge(record: dict, cfg: dict, *, complete: bool = True,

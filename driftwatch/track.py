@@ -269,12 +269,17 @@ def _frame_entries(run: Run, table: dict, start: int = 0) -> list[dict]:
 class FrameTable:
     """The per-frame entries of a growing run (index, step, energy, fmax and the invariants), each
     frame computed once: what the live tracker keeps between records. ``truncate(k)`` forgets the
-    frames from ``k`` on (they changed); ``update`` computes the frames not held yet in one call."""
+    frames from ``k`` on (they changed); ``update`` computes the frames not held yet in one call.
+    ``update(..., lattice_only=True)`` gives a new bulk frame only what the lattice flags read
+    (its step and deformation: one reduction and the 13 deformations, no distances or canonical
+    form); the next full ``update`` completes those frames in one batch (the same values: a frame
+    alone equals the frame in a batch, bit for bit)."""
 
     def __init__(self):
         self.entries: list[dict] = []
         self.matrix = np.zeros((0, 0))        # (frames, types) deformation (Å), columns ``types``
         self.types: tuple[str, ...] = ()
+        self.complete = 0                     # entries[:complete] have every invariant
         self._key = None
 
     @property
@@ -286,20 +291,37 @@ class FrameTable:
         if k < len(self.entries):
             self.entries = self.entries[:k]
             self.matrix = self.matrix[:k]
+            self.complete = min(self.complete, k)
 
-    def update(self, run: Run, geo, metric: str) -> None:
+    def update(self, run: Run, geo, metric: str, *, lattice_only: bool = False) -> None:
         key = (geo.dimension, geo.vacuum_axis, metric)
         if key != self._key:
-            self.entries, self.matrix, self._key = [], np.zeros((0, 0)), key
-        start = len(self.entries)
-        if start >= len(run.cells):
-            self.truncate(len(run.cells))
+            self.entries, self.matrix, self.complete, self._key = [], np.zeros((0, 0)), 0, key
+        n = len(run.cells)
+        self.truncate(n)
+        if lattice_only and geo.dimension == 3:       # (a layer's full invariants cost as much)
+            start = len(self.entries)
+            if start < n:
+                dfm = lattice3d.deformation(run.cells[start:], metric=metric)
+                cols = {t: np.asarray(v, float).tolist() for t, v in dfm.items()}
+                self.entries += [{"index": start + j, "step": int(step),
+                                  "deformation": {t: v[j] for t, v in cols.items()}}
+                                 for j, step in enumerate(run.steps[start:].tolist())]
+                self._append(dfm, start)
+            return
+        start = self.complete
+        if start >= n:
             return
         table = lattice_table(run, geo, metric, start)
-        self.entries += _frame_entries(run, table, start)
-        self.types = tuple(table["deformation"])
-        new = np.stack([np.asarray(v, float) for v in table["deformation"].values()], axis=1)
-        self.matrix = np.concatenate([self.matrix, new]) if start else new
+        self.entries[start:] = _frame_entries(run, table, start)
+        self._append(table["deformation"], start)
+        self.complete = n
+
+    def _append(self, deformation: dict, start: int) -> None:
+        """Rows ``start:`` of the deformation matrix."""
+        self.types = tuple(deformation)
+        new = np.stack([np.asarray(v, float) for v in deformation.values()], axis=1)
+        self.matrix = np.concatenate([self.matrix[:start], new]) if start else new
 
 
 def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = None,

@@ -495,17 +495,21 @@ def test_follow_ends_at_pwx_error_banner(tmp_path):
     assert time.monotonic() - t0 < 10
 
 
-def test_watch_record_mode_asks_spglib_only_where_the_lattice_moved(tmp_path, monkeypatch):
+@pytest.mark.parametrize("output", [False, True])
+def test_watch_record_mode_asks_spglib_only_where_the_lattice_moved(tmp_path, monkeypatch, output):
     # A real EMT relaxation (the invented layer): in record mode each call computes the new
     # frame's lattice invariants and the flags; spglib is asked on the first frame and where the
-    # lattice moved (the frames track.select_frames picks), not at every step, and finish()
-    # completes the record (which then equals analyze of the trajectory, as tested above).
+    # lattice moved (the frames track.select_frames picks), never at every step, and finish()
+    # completes the record (which then equals analyze of the trajectory, as tested above). With
+    # an output file the record is built (and written) at every step; without one, and only
+    # lattice codes watched, a step asks spglib nothing and the record is built when read.
     from driftwatch import symmetry, track
     calls = []
     orig = symmetry._dataset_uncached
     monkeypatch.setattr(symmetry, "_dataset_uncached", lambda *a: calls.append(1) or orig(*a))
     symmetry.clear_cache()
-    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record", "stop_on": ()})
+    kw = {"output": tmp_path / "live.json"} if output else {}
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record", "stop_on": (), **kw})
     seen = []
     opt.attach(lambda: seen.append(len(calls)), interval=1)      # runs after the watch
     opt.run(fmax=1e-4, steps=200)
@@ -516,9 +520,53 @@ def test_watch_record_mode_asks_spglib_only_where_the_lattice_moved(tmp_path, mo
                                 rec["config"]["selection"])
     asked = int((per_call > 0).sum())
     assert len(per_call) == rec["run"]["n_frames"] > 10
-    assert 1 <= asked <= len(seeds) < len(per_call)
+    if output:
+        assert 1 <= asked <= len(seeds) < len(per_call)
+    else:
+        assert asked == 0 and 0 < len(calls) <= 2 * len(seeds) * len(track.structure_symprecs(
+            rec["config"]))                                       # reading the record asked
     assert not any(f.get("symmetry") for f in rec["frames"])     # no spectra until asked
     before = len(calls)
     full = watch.finish()
     assert len(calls) > before and full["frames"][-1].get("symmetry")
     assert same(full, analyze(traj, QUICK))
+
+
+def relax_bulk(tmp_path, watch_kw):
+    """A real EMT relaxation of an invented bulk cell: 4 Cu atoms of an fcc cell (3.6 Å) sheared
+    by up to 2 %, rattled, cell free; EMT takes it back toward cubic."""
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.filters import FrechetCellFilter
+    from ase.optimize import BFGS
+    atoms = bulk("Cu", "fcc", a=3.6, cubic=True)
+    atoms.rattle(0.02, seed=5)
+    shear = np.eye(3) + np.random.default_rng(5).uniform(-0.02, 0.02, (3, 3))
+    atoms.set_cell(atoms.cell.array @ shear, scale_atoms=True)
+    atoms.calc = EMT()
+    opt = BFGS(FrechetCellFilter(atoms), trajectory=str(tmp_path / "relax.traj"), logfile=None)
+    watch = SymmetryWatch(atoms, **({"config": QUICK} | watch_kw))
+    opt.attach(watch, interval=1)
+    return atoms, opt, watch, tmp_path / "relax.traj"
+
+
+@pytest.mark.parametrize("cell", ["layer", "bulk"])
+def test_lattice_steps_fire_as_the_full_record_does(tmp_path, cell):
+    # Only lattice codes watched and no output: a step checks the lattice flags alone (a bulk
+    # frame gets only its deformation) and the record is built when read. The flags fired, the
+    # step each fired at, the record read mid-run and the finished record equal those of a watch
+    # building the full record each step (output written each step).
+    got = {}
+    for name, kw in (("lattice", {}), ("full", {"output": tmp_path / "full.json"})):
+        (tmp_path / name).mkdir()
+        atoms, opt, watch, traj = (relax if cell == "layer" else relax_bulk)(
+            tmp_path / name, {"mode": "record", "stop_on": ("lattice",), **kw})
+        fired, middle = [], []
+        opt.attach(lambda: fired.append(len(watch.fired)), interval=1)
+        opt.attach(lambda: middle.append(watch.record) if len(fired) == 12 else None, interval=1)
+        opt.run(fmax=1e-4, steps=200)
+        assert watch._lattice_steps is (name == "lattice")
+        got[name] = fired, [dict(f) for f in watch.fired], middle[0], watch.finish()
+    (f1, fl1, mid1, end1), (f2, fl2, mid2, end2) = got["lattice"], got["full"]
+    assert f1 == f2 and fl1 == fl2 and fl1                        # the same flags, same steps
+    assert same(mid1, mid2) and same(end1, end2)
