@@ -562,15 +562,15 @@ def section_observer(a):
                 best = (key, got)
         res[mode] = best[1]
     relax = res["none"]["cpu"] / res["none"]["steps"]
-    for mode, what in (("lazy", "record mode (default: spglib on the first frame, where the lattice "
-                                "moved, and when asked)"),
+    for mode, what in (("lazy", "record mode (default: each call the lattice flags; the record, with "
+                                "spglib where the lattice moved, when read or at finish())"),
                        ("output", "record mode, record file rewritten every step"),
                        ("eager", "record mode with lazy=False (a spectrum every step, as before)")):
         per = 1e3 * np.array(res[mode]["per"])
         med = float(np.median(per))
         row("observer", f"{what}: median per step", med, "ms",
             "<= 2 ms" if mode == "lazy" else None, (med <= 2.0) if mode == "lazy" else None,
-            f"mean {per.mean():.2f} ms over {len(per)} calls including spglib (first call "
+            f"mean {per.mean():.2f} ms over {len(per)} calls including any spglib (first call "
             f"{per[0]:.0f} ms; spectra on {res[mode]['spectra']} frames, groups on "
             f"{res[mode]['groups']}); finish() {1e3 * res[mode]['finish']:.0f} ms; the EMT step "
             f"itself {1e3 * relax:.1f} ms (mean x{per.mean() / (1e3 * relax):.2f} of it); verdict "

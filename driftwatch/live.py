@@ -241,13 +241,17 @@ class Tracker:
         :meth:`record`). The same flags as the record's at this step."""
         if not self.frames:
             raise InputError(self.source, "no completed ionic step yet")
-        ctx = ReadContext(self.source)
-        ctx.rounding = self.rounding
-        run = self._collect(ctx)
-        if self._geo is None:
-            self._geo = self._geometry(run)
+        metric = self.cfg["lattice"]["metric"]
+        if self._geo is None or self._geo.dimension == 2:
+            ctx = ReadContext(self.source)
+            ctx.rounding = self.rounding
+            run = self._collect(ctx)
+            self._geo = self._geo or self._geometry(run)
         geo = self._geo
-        self._table.update(run, geo, self.cfg["lattice"]["metric"], lattice_only=True)
+        if geo.dimension == 3:
+            self._table.add_deformation(self.frames, metric)
+        else:                                 # (a layer's full invariants cost as much)
+            self._table.update(run, geo, metric)
         return rules.lattice_flags(self._table.entries, geo.dimension, self.cfg, complete=complete,
                                    series=self._table.deformation)
 

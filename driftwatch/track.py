@@ -270,10 +270,10 @@ class FrameTable:
     """The per-frame entries of a growing run (index, step, energy, fmax and the invariants), each
     frame computed once: what the live tracker keeps between records. ``truncate(k)`` forgets the
     frames from ``k`` on (they changed); ``update`` computes the frames not held yet in one call.
-    ``update(..., lattice_only=True)`` gives a new bulk frame only what the lattice flags read
-    (its step and deformation: one reduction and the 13 deformations, no distances or canonical
-    form); the next full ``update`` completes those frames in one batch (the same values: a frame
-    alone equals the frame in a batch, bit for bit)."""
+    ``add_deformation`` gives new bulk frames only what the lattice flags read (step and
+    deformation: one reduction and the 13 deformations, no distances or canonical form); the next
+    ``update`` completes those frames in one batch (the same values: a frame alone equals the
+    frame in a batch, bit for bit)."""
 
     def __init__(self):
         self.entries: list[dict] = []
@@ -293,22 +293,15 @@ class FrameTable:
             self.matrix = self.matrix[:k]
             self.complete = min(self.complete, k)
 
-    def update(self, run: Run, geo, metric: str, *, lattice_only: bool = False) -> None:
-        key = (geo.dimension, geo.vacuum_axis, metric)
+    def _setting(self, key: tuple, n: int) -> None:
+        """Entries are kept for one (dimension, vacuum axis, metric) and ``n`` frames."""
         if key != self._key:
             self.entries, self.matrix, self.complete, self._key = [], np.zeros((0, 0)), 0, key
-        n = len(run.cells)
         self.truncate(n)
-        if lattice_only and geo.dimension == 3:       # (a layer's full invariants cost as much)
-            start = len(self.entries)
-            if start < n:
-                dfm = lattice3d.deformation(run.cells[start:], metric=metric)
-                cols = {t: np.asarray(v, float).tolist() for t, v in dfm.items()}
-                self.entries += [{"index": start + j, "step": int(step),
-                                  "deformation": {t: v[j] for t, v in cols.items()}}
-                                 for j, step in enumerate(run.steps[start:].tolist())]
-                self._append(dfm, start)
-            return
+
+    def update(self, run: Run, geo, metric: str) -> None:
+        n = len(run.cells)
+        self._setting((geo.dimension, geo.vacuum_axis, metric), n)
         start = self.complete
         if start >= n:
             return
@@ -316,6 +309,21 @@ class FrameTable:
         self.entries[start:] = _frame_entries(run, table, start)
         self._append(table["deformation"], start)
         self.complete = n
+
+    def add_deformation(self, frames, metric: str) -> None:
+        """Index, step and deformation of the bulk frames (objects with ``cell`` and ``step``,
+        all frames so far) after those held."""
+        self._setting((3, None, metric), len(frames))
+        start = len(self.entries)
+        if start >= len(frames):
+            return
+        new = frames[start:]
+        dfm = lattice3d.deformation(np.array([f.cell for f in new], float), metric=metric)
+        cols = {t: np.asarray(v, float).tolist() for t, v in dfm.items()}
+        self.entries += [{"index": start + j, "step": int(f.step),
+                          "deformation": {t: v[j] for t, v in cols.items()}}
+                         for j, f in enumerate(new)]
+        self._append(dfm, start)
 
     def _append(self, deformation: dict, start: int) -> None:
         """Rows ``start:`` of the deformation matrix."""
