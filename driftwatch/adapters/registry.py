@@ -198,14 +198,15 @@ def _load_plugins() -> None:
     _plugins_loaded = True
     from importlib.metadata import entry_points
     try:
-        eps = entry_points(group=ENTRY_POINT_GROUP)
+        every = entry_points()       # one scan of the installed packages' metadata (~25 ms)
+        eps = every.select(group=ENTRY_POINT_GROUP)
     except Exception as exc:  # a broken metadata install must not break reading
         warnings.warn(f"driftwatch: cannot list {ENTRY_POINT_GROUP} entry points: {exc}")
         return
     for ep in eps:
         _register_entry_point(ep)
     try:
-        code_eps = entry_points(group=ENTRY_POINT_GROUP + ".codes")
+        code_eps = every.select(group=ENTRY_POINT_GROUP + ".codes")
     except Exception:  # noqa: BLE001 - as above
         code_eps = ()
     for ep in code_eps:
