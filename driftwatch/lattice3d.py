@@ -217,6 +217,7 @@ _CHUNK = 256  # frames per block in the cone distances (cache-sized)
 _KEY_BLOCK = 4096  # frames per block when ranking the 168 relabellings (a 5.5 MB key table)
 _REDUCE_BLOCK = 16384  # frames per block in the Selling reduction
 _DEF_CHUNK = 192  # frames per block in ``deformation`` (its gathers stay in cache)
+_GATHER_MAX = 64  # up to this many frames a superbase's dot products come from one gather
 _FLAT_MAX = 8  # up to this many frames ``deformation`` reduces all index lists in one call
 _W_SQUARINGS = 4  # frame weight (lambda / l)^16 = four squarings of lambda / l ...
 _W_FLOOR = 0.5    # ... never below 1/2
@@ -482,9 +483,12 @@ _EYE3 = np.eye(3)
 
 
 def _pair_dots(v, i, j):
-    """(n, k) v[:, i[k]] . v[:, j[k]] (one gather and one einsum: every dot product of the
-    reduction goes through this kernel, so a frame gives the same bits alone or in a batch)."""
-    return np.einsum("nki,nki->nk", v[:, i], v[:, j])
+    """(n, k) v[:, i[k]] . v[:, j[k]]. A few frames: one gather and one einsum (per-call cost
+    dominates); many: one einsum per pair on views (no copies of the vectors). Both sum the three
+    products in the same order, so a frame gives the same bits alone or in a batch (tested)."""
+    if v.shape[0] <= _GATHER_MAX:
+        return np.einsum("nki,nki->nk", v[:, i], v[:, j])
+    return np.stack([np.einsum("ni,ni->n", v[:, a], v[:, b]) for a, b in zip(i, j)], axis=1)
 
 
 def _dots(v):
