@@ -201,6 +201,46 @@ def test_line_longer_than_the_cap_is_refused_naming_the_line(tmp_path):
             fh.readline()
 
 
+@pytest.mark.parametrize("block", [1, 2, 3, 7, 1 << 16])
+def test_line_reader_gives_the_lines_python_text_files_give(tmp_path, monkeypatch, block):
+    # Lines splits decoded blocks itself; the reference is the standard library's text file
+    # (io.TextIOWrapper, errors="replace", universal newlines: \r\n and \r read as \n), whose
+    # complete lines it must give one for one, with blocks so small that every \r\n, multibyte
+    # character and bad byte falls across a block boundary; a partial last line is dropped and
+    # marked cut, also from a cut .gz (every complete line before the cut delivered).
+    import io
+    monkeypatch.setattr(_io.Lines, "_READ", block)
+    text = ("first line\r\nsecond\rthird\n\n  é ü 中文 \r\n\r\n".encode() + b"bad \xff\xfe byte\n"
+            + b"x" * 300 + b"\r\n" + "last é".encode())
+    for name, data in (("plain.txt", text), ("ends.txt", text + b"\n"), ("empty.txt", b""),
+                       ("cr.txt", b"a\rb\r"), ("crlf.txt", b"a\r\n\r\nb\r")):
+        p = tmp_path / name
+        p.write_bytes(data)
+        ref = [ln for ln in io.TextIOWrapper(io.BytesIO(data), encoding="utf-8", errors="replace",
+                                             newline=None) if ln.endswith("\n")]
+        with _io.Lines(p) as fh:
+            got = list(fh)
+            assert got == ref, name
+            assert fh.lineno == len(ref)
+            assert fh.cut_line == (not data.endswith((b"\n", b"\r")) and bool(data)), name
+    whole = gzip.compress(text * 200)
+    cut = tmp_path / "cut.txt.gz"
+    cut.write_bytes(whole[: len(whole) * 2 // 3])
+    with gzip.open(cut, "rb") as raw:        # the complete lines before the cut, read by gzip
+        got_bytes = b""
+        try:
+            while chunk := raw.read1(1 << 12):
+                got_bytes += chunk
+        except EOFError:
+            pass
+    ref = [ln for ln in io.TextIOWrapper(io.BytesIO(got_bytes), encoding="utf-8",
+                                         errors="replace", newline=None) if ln.endswith("\n")]
+    with _io.Lines(cut) as fh:
+        got = list(fh)
+        assert fh.cut                          # (a cut stream is marked, not raised)
+    assert got == ref[: len(got)] and len(ref) - len(got) <= 1    # at most the line at the cut
+
+
 def test_blank_lines_are_detected_at_once(tmp_path):
     # 50 kB of blank lines (what the format detection reads): every signature search is linear
     # (a pattern starting with ^\s* under re.M retried from each line start was quadratic: 50 s)

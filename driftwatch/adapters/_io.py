@@ -22,6 +22,7 @@ Each limit raises :class:`~driftwatch.errors.InputError` naming the file and the
 from __future__ import annotations
 
 import bz2
+import codecs
 import io
 import lzma
 import os
@@ -324,35 +325,62 @@ class Lines:
     decompression error (a cut ``.gz``), if any.
     """
 
+    _READ = 1 << 16     # bytes decoded per read: lines are split from each block at once
+
     def __init__(self, path, encoding="utf-8"):
         self.name = os.fspath(path)
         self._bin = open_bytes(path, max_ratio=MAX_TEXT_RATIO)
-        self._fh = io.TextIOWrapper(self._bin, encoding=encoding, errors="replace", newline=None)
+        # what io.TextIOWrapper(errors="replace", newline=None) does: \r\n and \r read as \n
+        self._decode = io.IncrementalNewlineDecoder(
+            codecs.getincrementaldecoder(encoding)(errors="replace"), translate=True).decode
         self.cut_line = False
         self.stream_error: str | None = None
         self.lineno = 0
+        self._lines: list[str] = []     # complete lines read ahead, each ending in "\n"
+        self._next = 0
+        self._part = ""                 # the start of the line after them, not complete yet
+        self._too_long = False          # the line after the buffered ones exceeds MAX_LINE
         self._done = False
 
     def readline(self) -> str:
-        if self._done:
-            return ""
-        try:
-            line = self._fh.readline(MAX_LINE + 1)
-        except NotRegularFile:
-            raise
-        except STREAM_ERRORS as exc:
-            self.stream_error = f"{type(exc).__name__}: {exc}"
-            line = ""
-        if len(line) > MAX_LINE and not line.endswith("\n"):
-            raise InputError(self.name, f"line {self.lineno + 1} is longer than {MAX_LINE:,} "
-                                        f"characters: not a text output of a simulation code "
-                                        f"(damaged, or binary data)")
-        if not line.endswith("\n"):
-            self.cut_line = bool(line)
-            self._done = True
-            return ""
-        self.lineno += 1
-        return line
+        if self._next < len(self._lines):
+            self._next += 1
+            self.lineno += 1
+            return self._lines[self._next - 1]
+        return self._read_ahead()
+
+    def _read_ahead(self) -> str:
+        """Decode the next block (``read1``: what the stream has, so the lines before a cut in a
+        compressed stream are all delivered), keep its complete lines and return the first;
+        "" at the end."""
+        while True:
+            if self._too_long:
+                raise InputError(self.name, f"line {self.lineno + 1} is longer than {MAX_LINE:,} "
+                                            f"characters: not a text output of a simulation code "
+                                            f"(damaged, or binary data)")
+            if self._done:
+                return ""
+            try:
+                data = self._bin.read1(self._READ)
+            except NotRegularFile:
+                raise
+            except STREAM_ERRORS as exc:
+                self.stream_error = f"{type(exc).__name__}: {exc}"
+                data = None
+            lines = (self._part + self._decode(data or b"", not data)).split("\n")
+            self._part = lines.pop()
+            long = next((k for k, ln in enumerate(lines) if len(ln) > MAX_LINE), None)
+            if long is not None:
+                del lines[long:]
+                self._too_long = True
+            elif len(self._part) > MAX_LINE:
+                self._too_long = True
+            elif not data:                  # the end: a partial last line is dropped
+                self.cut_line = bool(self._part) and data is not None
+                self._done = True
+            self._lines, self._next = [ln + "\n" for ln in lines], 0
+            if lines:
+                return self.readline()
 
     def __iter__(self):
         return self
@@ -369,7 +397,7 @@ class Lines:
         return self.cut_line or self.stream_error is not None or stream_truncated(self._bin)
 
     def close(self):
-        self._fh.close()
+        self._bin.close()
 
     def __enter__(self):
         return self
