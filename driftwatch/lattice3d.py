@@ -386,7 +386,8 @@ def _deform_table():
         full = [x for x in lists if x]
         flat = (np.flatnonzero([len(x) > 0 for x in lists]), np.concatenate(full).astype(np.intp),
                 np.cumsum([0] + [len(x) for x in full[:-1]]))
-        return [(np.array(v), np.array([lists[i] for i in v])) for _, v in sorted(out.items())], flat
+        grouped = [(np.array(v), np.array([lists[i] for i in v])) for _, v in sorted(out.items())]
+        return grouped, flat
 
     sub_list = sorted(subsets, key=subsets.get)
     zero_list = sorted(zeros, key=zeros.get)
@@ -549,7 +550,8 @@ def _reduce_block(arr, first=0):
     # sum |v_i|^2 among the sign choices (what Selling steps decrease), so that
     # typical cells need zero or one step
     g = _pair_dots(B, [0, 0, 1], [1, 2, 2])                     # g12, g13, g23
-    cost = g[:, :1] * _SIGNS[:, 0] + g[:, 1:2] * _SIGNS[:, 1] + g[:, 2:] * (_SIGNS[:, 0] * _SIGNS[:, 1])
+    cost = g[:, :1] * _SIGNS[:, 0] + g[:, 1:2] * _SIGNS[:, 1] \
+        + g[:, 2:] * (_SIGNS[:, 0] * _SIGNS[:, 1])
     best = _SIGNS[cost.argmin(axis=1)]
     U[:, 1] *= best[:, :1]
     U[:, 2] *= best[:, 1:]

@@ -53,8 +53,8 @@ import numpy as np
 from . import lattice2d, lattice3d
 
 __all__ = ["judge", "lattice_flags", "evaluate", "summarize", "FLAGS", "RENAMED", "CONCERNS",
-           "DIRECTIONS", "ORDER", "NAMES", "bravais_of_group", "advice", "select", "check_codes", "campaign_advice",
-           "advice_item", "SAFE_MARGIN", "grid_index", "generalises"]
+           "DIRECTIONS", "ORDER", "NAMES", "bravais_of_group", "advice", "select", "check_codes",
+           "campaign_advice", "advice_item", "SAFE_MARGIN", "grid_index", "generalises"]
 
 FLAGS = {
     "lattice-gained": "lattice", "lattice-lost": "lattice", "lattice-changed": "lattice",
