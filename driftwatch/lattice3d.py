@@ -342,7 +342,8 @@ def _deform_table():
     of involutions (``subs``: rows of involution indices, grouped by size) and a zero structure
     (``zeros``: rows into the 28 flip rows, 0-20 the perpendicular pairs, 21-27 the single-zero
     guards).  Settings of one type with the same involutions are grouped (``groups``: their
-    zero structures; ``g_sub``: their involution set), sorted by type (``starts``).
+    zero structures; ``g_sub``: their involution set), sorted by type (``starts``). Each of
+    ``zeros``, ``subs`` and ``groups`` is (lists grouped by length, one flat table): see ``_rows``.
     """
     dot = np.array([[sum(a * b for a, b in zip(xi, x)) % 2 for x in _FANO] for xi in _FANO])
     index = {p: i for i, p in enumerate(_FANO)}
