@@ -109,6 +109,12 @@ def _frames(cells, positions=None):
     return cells, pos, single
 
 
+def _pbc(pbc) -> np.ndarray:
+    """(3,) bool periodicity from a flag or three (no broadcast view when it is already three)."""
+    pbc = np.asarray(pbc, bool)
+    return pbc if pbc.shape == (3,) else np.broadcast_to(pbc, (3,))
+
+
 def vacuum_gaps(cells, positions) -> np.ndarray:
     """(n, 3) Å: largest empty gap between atom planes along each axis's plane normal."""
     cells, pos, single = _frames(cells, positions)
@@ -135,8 +141,7 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     along more than one axis).
     """
     cells, pos, _ = _frames(cells, positions if gaps is None else None)
-    pbc = np.asarray(pbc, bool)
-    pbc = pbc if pbc.shape == (3,) else np.broadcast_to(pbc, (3,))
+    pbc = _pbc(pbc)
     free = [k for k in range(3) if not pbc[k]]
     if len(free) >= 2:
         kind = "0D (molecule or cluster)" if len(free) == 3 else "1D (wire or chain)"
@@ -276,8 +281,7 @@ def position_warnings(cells, positions, pbc, steps=None, *, far: float = FAR_CEL
     ``steps`` names frames by the code's step numbers (default: frame indices). An empty list
     when all is well."""
     cells, pos, _ = _frames(cells, positions)
-    pbc = np.asarray(pbc, bool)
-    pbc = pbc if pbc.shape == (3,) else np.broadcast_to(pbc, (3,))
+    pbc = _pbc(pbc)
     label = "frame" if steps is None else "step"
     steps = np.arange(len(cells)) if steps is None else np.asarray(steps)
     out = []

@@ -216,6 +216,14 @@ class Tracker:
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
             position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs())
 
+    def _run(self):
+        """The frames so far as a Run, with what the reader noted (warnings, settings, title,
+        the printed precision of positions)."""
+        ctx = ReadContext(self.source)
+        ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
+        ctx.rounding = self.rounding
+        return self._collect(ctx)
+
     def _geometry(self, run):
         cfg = self.cfg
         gaps = None
@@ -243,9 +251,7 @@ class Tracker:
             raise InputError(self.source, "no completed ionic step yet")
         metric = self.cfg["lattice"]["metric"]
         if self._geo is None or self._geo.dimension == 2:
-            ctx = ReadContext(self.source)
-            ctx.rounding = self.rounding
-            run = self._collect(ctx)
+            run = self._run()
             self._geo = self._geo or self._geometry(run)
         geo = self._geo
         if geo.dimension == 3:
@@ -263,10 +269,7 @@ class Tracker:
             raise InputError(self.source, "no completed ionic step yet")
         t0 = time.perf_counter()
         cfg = self.cfg
-        ctx = ReadContext(self.source)
-        ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
-        ctx.rounding = self.rounding
-        run = self._collect(ctx)
+        run = self._run()
         geo = self._geo = self._geometry(run)
         if self._spectra_for != (geo.dimension, geo.vacuum_axis):
             self._spectra, self._groups = {}, {}

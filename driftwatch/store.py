@@ -127,7 +127,7 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
     try:
         with db:
             wanted = {run_id for run_id, _, _ in rows}
-            have: dict = {}                        # run_id -> (row id, keys, number of atoms)
+            have: dict = {}                        # run_id -> its stored row
             extra = []                              # second rows of one run (older versions)
             for row in sorted(_rows_with_run_id(db), key=lambda r: r.id):
                 rid = shown(row.get("run_id"))      # rows written with raw names match too
@@ -136,7 +136,7 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
                 if rid in have:
                     extra.append(row.id)
                 else:
-                    have[rid] = (row.id, set(row.key_value_pairs), _natoms(row), row)
+                    have[rid] = row
             if extra:
                 db.delete(extra)
             for run_id, structure, kvp in rows:
@@ -144,15 +144,15 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
                     if run_id not in have:
                         db.write(_atoms(structure), key_value_pairs=kvp)
                         continue
-                    row_id, keys, natoms, row = have[run_id]
+                    row = have[run_id]
                     if _same(row, structure, kvp):     # a re-audit of unchanged runs writes nothing
                         continue
-                    if structure is None and natoms:   # ok before, failed now: no structure
-                        db.delete([row_id])            # (ase.db cannot empty a row in place)
+                    if structure is None and _natoms(row):   # ok before, failed now: no structure
+                        db.delete([row.id])            # (ase.db cannot empty a row in place)
                         db.write(_atoms(None), key_value_pairs=kvp)
                         continue
-                    db.update(row_id, atoms=_atoms(structure) if structure else None,
-                              delete_keys=sorted(keys - set(kvp)), **kvp)
+                    db.update(row.id, atoms=_atoms(structure) if structure else None,
+                              delete_keys=sorted(set(row.key_value_pairs) - set(kvp)), **kvp)
                 except (ValueError, KeyError, TypeError) as exc:
                     problems.append(f"{run_id}: database row rejected ({exc})")
     except TimeoutError as exc:
