@@ -241,6 +241,38 @@ def test_line_reader_gives_the_lines_python_text_files_give(tmp_path, monkeypatc
     assert got == ref[: len(got)] and len(ref) - len(got) <= 1    # at most the line at the cut
 
 
+@pytest.mark.parametrize("block", [1, 5, 64, 1 << 16])
+def test_skipping_to_marked_lines_equals_testing_each_line(tmp_path, monkeypatch, block):
+    # Lines.skip_to finds marked lines with str.find over a decoded block; the reference is the
+    # plain test `any(key in line for key in keys)` on each line of Python's own text file, with
+    # readline calls mixed in (a reader reads the lines after a marker itself) and keys that
+    # overlap, repeat on one line, end a line or fall across a block boundary.
+    import io
+    monkeypatch.setattr(_io.Lines, "_READ", block)
+    keys = ("total energy", "Forces", "ces acting", "é", "\r")
+    rng = np.random.default_rng(5)
+    parts = ["   total energy = 1\n", "Forces acting on atoms\n", "nothing here\n", "é\r\n",
+             "x total energy total energy\n", "\n", "Forces", " tail\n", "ce", "s acting\n"]
+    data = "".join(parts[k] for k in rng.integers(0, len(parts), 400)).encode() + b"\n"
+    p = tmp_path / "marked.txt"
+    p.write_bytes(data)
+    lines = list(io.TextIOWrapper(io.BytesIO(data), encoding="utf-8", newline=None))
+    want, got = [], []
+    k = 0
+    while k < len(lines):                          # the reference walk over the line list
+        if any(key in lines[k] for key in keys):
+            want.append((k + 1, lines[k]))
+            k += 2                                # the line after a marker is read with readline
+        else:
+            k += 1
+    with _io.Lines(p) as fh:
+        while line := fh.skip_to(keys):
+            got.append((fh.lineno, line))
+            fh.readline()
+        assert fh.lineno == len(lines)
+    assert got == want and len(got) > 100
+
+
 def test_blank_lines_are_detected_at_once(tmp_path):
     # 50 kB of blank lines (what the format detection reads): every signature search is linear
     # (a pattern starting with ^\s* under re.M retried from each line start was quadratic: 50 s)

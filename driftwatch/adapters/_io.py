@@ -21,9 +21,11 @@ Each limit raises :class:`~driftwatch.errors.InputError` naming the file and the
 """
 from __future__ import annotations
 
+import bisect
 import bz2
 import codecs
 import io
+import itertools
 import lzma
 import os
 import re
@@ -315,6 +317,19 @@ def tail_bytes(path, size: int = 8192) -> bytes:
     return buf
 
 
+def _lines_with(lines: list, keys: tuple) -> list:
+    """Sorted indices of the ``lines`` (each ending in a newline) containing any of ``keys``."""
+    text = "".join(lines)
+    ends = list(itertools.accumulate(map(len, lines)))
+    hits = set()
+    for key in keys:
+        at = text.find(key)
+        while at >= 0:
+            hits.add(bisect.bisect_right(ends, at))
+            at = text.find(key, at + 1)
+    return sorted(hits)
+
+
 class Lines:
     """Iterate over the *complete* lines of a text file (decompressed on the fly).
 
@@ -340,6 +355,7 @@ class Lines:
         self._next = 0
         self._part = ""                 # the start of the line after them, not complete yet
         self._too_long = False          # the line after the buffered ones exceeds MAX_LINE
+        self._marked: tuple = (None, [])     # (keys, indices of the buffered lines with them)
         self._done = False
 
     def readline(self) -> str:
@@ -348,6 +364,27 @@ class Lines:
             self.lineno += 1
             return self._lines[self._next - 1]
         return self._read_ahead()
+
+    def skip_to(self, keys: tuple) -> str:
+        """The next line containing any of ``keys`` (literal texts without a newline), or "" at
+        the end of the text; the lines before it are passed over (and counted). The same lines
+        as testing ``any(k in line for k in keys)`` line by line, found with one ``str.find``
+        pass per key over each decoded block."""
+        while True:
+            if self._marked[0] is not keys:
+                self._marked = (keys, _lines_with(self._lines, keys))
+            marks = self._marked[1]
+            i = bisect.bisect_left(marks, self._next)
+            if i < len(marks):
+                j = marks[i]
+                self.lineno += j + 1 - self._next
+                self._next = j + 1
+                return self._lines[j]
+            self.lineno += len(self._lines) - self._next
+            self._next = len(self._lines)
+            line = self._read_ahead()           # a new block (its first line already read)
+            if not line or any(k in line for k in keys):
+                return line
 
     def _read_ahead(self) -> str:
         """Decode the next block (``read1``: what the stream has, so the lines before a cut in a
@@ -379,6 +416,7 @@ class Lines:
                 self.cut_line = bool(self._part) and data is not None
                 self._done = True
             self._lines, self._next = [ln + "\n" for ln in lines], 0
+            self._marked = (None, [])
             if lines:
                 return self.readline()
 

@@ -58,6 +58,10 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
 _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
+# every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
+_MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
+          "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
+          *_CLOSERS)
 
 
 class _Config:
@@ -118,10 +122,10 @@ def _read_forces(fh, natoms):
         if not ln:
             return None
         if "force =" in ln:
-            rows.append([float(x) for x in ln.split()[-3:]])
+            rows.append(ln.split()[-3:])
         elif ln.strip() and rows:          # something else interrupted the block
             return None
-    return np.array(rows) * Ry / Bohr
+    return np.array(rows, float) * Ry / Bohr
 
 
 def _read_stress(fh):
@@ -155,16 +159,19 @@ def _plain_positions(header, rows, cell, alat):
         return None
     else:
         m = np.identity(3) * alat
-    out = []
     try:
-        for row in rows:
-            f = row.split()
+        fields = [row.split() for row in rows]
+        for f in fields:
             if len(f) > 4:
                 int(f[4]), int(f[5]), int(f[6])     # ASE reads the if_pos flags and can fail
-            out.append(np.dot((float(f[1]), float(f[2]), float(f[3])), m))
+        c = np.array([f[1:4] for f in fields], float)
     except (ValueError, IndexError):
         return None
-    return np.array(out, float)
+    if c.shape != (len(rows), 3):
+        return None
+    m = np.asarray(m, float)
+    # ASE's per-row np.dot(row, m), in the same order of operations: the same bits
+    return c[:, :1] * m[0] + c[:, 1:2] * m[1] + c[:, 2:3] * m[2]
 
 
 def _note_rounding(ctx: ReadContext, header: str, row: str, alat) -> None:
@@ -246,7 +253,7 @@ def read_pw_out(path, ctx: ReadContext):
 
     with Lines(path) as fh:
         while True:
-            line = fh.readline()
+            line = fh.skip_to(_MARKS)
             if not line:
                 break
             if _START in line:

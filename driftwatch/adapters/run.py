@@ -10,6 +10,7 @@ xx yy zz yz xz xy, ASE's sign convention: positive = tensile).
 """
 from __future__ import annotations
 
+import math
 import os
 import re
 from dataclasses import dataclass, field
@@ -340,7 +341,7 @@ def checked(frames: Iterable, path) -> Iterator[Frame]:
             if len(pos) != len(first.positions):
                 raise InputError(path, f"atoms count changes at step {step} "
                                        f"({len(first.positions)} -> {len(pos)})")
-            if not np.array_equal(fr.numbers, first.numbers):
+            if fr.numbers is not first.numbers and not np.array_equal(fr.numbers, first.numbers):
                 raise InputError(path, f"atomic numbers change at step {step}")
         if not np.isfinite(cell).all():
             raise InputError(path, f"non-finite cell at step {step}")
@@ -362,8 +363,9 @@ what they say. The lattice mathematics itself is scale-covariant far beyond this
 
 def _check_cell(cell, pbc, path, step) -> None:
     """Refuse singular and implausibly sized cells (along periodic axes) with a one-line reason."""
-    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,))
-    lengths = np.sqrt((cell * cell).sum(axis=1))
+    pbc = np.broadcast_to(np.asarray(pbc, bool), (3,)).tolist()
+    a, b, c = cell.tolist()          # Python floats: a 3x3 check costs microseconds per frame
+    lengths = [math.sqrt(x * x + y * y + z * z) for x, y, z in (a, b, c)]
     lo, hi = CELL_LENGTH_RANGE
     for k in range(3):
         if not pbc[k]:
@@ -376,12 +378,14 @@ def _check_cell(cell, pbc, path, step) -> None:
                                    f"length unit?)")
     per = [k for k in range(3) if pbc[k]]
     if len(per) == 3:
-        vol = abs(float(np.linalg.det(cell)))
-        if vol <= 1e-10 * float(np.prod(lengths)):
+        vol = abs(a[0] * (b[1] * c[2] - b[2] * c[1]) - a[1] * (b[0] * c[2] - b[2] * c[0])
+                  + a[2] * (b[0] * c[1] - b[1] * c[0]))
+        if vol <= 1e-10 * lengths[0] * lengths[1] * lengths[2]:
             raise InputError(path, f"singular cell at step {step}: the cell vectors are coplanar "
                                    f"(volume {vol:.3g} Å^3)")
     elif len(per) == 2:
-        area = float(np.linalg.norm(np.cross(cell[per[0]], cell[per[1]])))
+        (x1, y1, z1), (x2, y2, z2) = (a, b, c)[per[0]], (a, b, c)[per[1]]
+        area = math.hypot(y1 * z2 - z1 * y2, z1 * x2 - x1 * z2, x1 * y2 - y1 * x2)
         if area <= 1e-10 * lengths[per[0]] * lengths[per[1]]:
             raise InputError(path, f"degenerate layer cell at step {step}: the two periodic cell "
                                    f"vectors are parallel (area {area:.3g} Å^2)")
@@ -445,13 +449,13 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
             stages.append({"name": name, "source": str(path), "format": fmt, "first_frame": start,
                            "n_frames": count, "step_offset": int(steps[start]) if start else 0})
             start += count
+    arrays = dict(cells=cells, positions=cat("positions"), steps=cat("steps"),
+                  energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
+                  stress=cat("stress", have["stress"]))
+    del blocks, cur         # before anything else is computed: the peak stays at twice the arrays
     return Run(
-        source=str(path), format=fmt,
-        cells=cells, positions=cat("positions"),
+        source=str(path), format=fmt, **arrays,
         numbers=np.array(first.numbers, int), pbc=np.array(first.pbc, bool),
-        steps=cat("steps"),
-        energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
-        stress=cat("stress", have["stress"]),
         warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings), title=ctx.title,
         run_dir=None if run_dir is None else str(run_dir),
         stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
