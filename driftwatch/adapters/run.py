@@ -452,7 +452,8 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
     arrays = dict(cells=cells, positions=cat("positions"), steps=cat("steps"),
                   energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
                   stress=cat("stress", have["stress"]))
-    del blocks, cur         # before anything else is computed: the peak stays at twice the arrays
+    blocks.clear()          # freed before anything else is computed: the peak stays at twice
+    cur = None              # the arrays
     return Run(
         source=str(path), format=fmt, **arrays,
         numbers=np.array(first.numbers, int), pbc=np.array(first.pbc, bool),
