@@ -141,9 +141,10 @@ def _read_stress(fh):
 def _plain_positions(header, rows, cell, alat):
     """ASE's ``get_atomic_positions`` for an ATOMIC_POSITIONS card of plain numbers, bit for bit.
 
-    Same unit rules and the same per-atom ``np.dot``, but ``float`` instead of ASE's
-    ``infix_float`` (which returns ``float(text)`` for text without brackets, through a slow
-    expression evaluator: half of this reader's time on large cells). Returns None for anything
+    Same unit rules; the card's numbers converted in one block instead of ASE's ``infix_float``
+    (``float(text)`` for text without brackets, through a slow expression evaluator), and ASE's
+    per-atom ``np.dot(row, m)`` done for all rows in its order of operations (the same bits:
+    ``tests/test_adapters.py`` compares with ASE bit for bit). Returns None for anything
     else (expressions, ``crystal_sg``, missing alat, malformed rows) so that ASE reads it.
     """
     low = header.lower()
