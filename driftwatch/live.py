@@ -337,7 +337,7 @@ class SymmetryWatch:
     when a ``stop_on`` flag is raised (the record that warns or stops is complete), at
     :meth:`finish`, or with ``lazy=False`` at every call (one tolerance spectrum per call:
     measured here ~0.05 s for a 1-atom layer, ~0.3 s for a 27-atom bulk cell). ``bench/run.py``
-    measures the cost per step (1.1-1.5 ms at 48 atoms in the default mode; the spglib work
+    measures the cost per step (0.9-1.5 ms at 48 atoms in the default mode; the spglib work
     moves to the first read of the record or to :meth:`finish`).
     ``watch.record`` is the current record; after :meth:`finish` (or a raised flag) it has the
     same content as :func:`driftwatch.track.analyze` of the observed steps. ``output`` is rewritten
