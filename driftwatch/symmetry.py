@@ -660,15 +660,37 @@ def _std_operations(ds, layer):
     Returns (rotations, translations) or None.
     """
     if not layer:
-        db, _ = _call(spglib.get_symmetry_from_database, int(ds.hall_number))
-        if db is None:
-            return None
-        return np.array(db["rotations"], dtype=float), np.array(db["translations"], dtype=float)
+        return _database_operations(int(ds.hall_number))
     std, _ = _dataset(np.array(ds.std_lattice), np.array(ds.std_positions),
                       np.array(ds.std_types, dtype=np.intc), 1e-5, -1.0, True)
     if std is None or int(std.number) != int(ds.number):
         return None
     return np.array(std.rotations, dtype=float), np.array(std.translations, dtype=float)
+
+
+@functools.lru_cache(maxsize=None)
+def _database_operations(hall_number):
+    """spglib's operations for a Hall number (its database: the same answer every time), as
+    read-only float arrays, or None."""
+    db, _ = _call(spglib.get_symmetry_from_database, hall_number)
+    if db is None:
+        return None
+    ops = np.array(db["rotations"], dtype=float), np.array(db["translations"], dtype=float)
+    for a in ops:
+        a.setflags(write=False)
+    return ops
+
+
+def _first_of_each(rows):
+    """Sorted indices of the first occurrence of each distinct row (what ``np.unique(...,
+    axis=0, return_index=True)`` then ``np.sort`` give, -0.0 and 0.0 equal), without sorting."""
+    seen, first = set(), []
+    for i, r in enumerate(rows + 0.0):   # + 0.0: -0.0 becomes 0.0, as np.unique compares
+        b = r.tobytes()
+        if b not in seen:
+            seen.add(b)
+            first.append(i)
+    return np.array(first, dtype=np.intp)
 
 
 def _group_in_input_setting(ds, layer):
@@ -693,8 +715,7 @@ def _group_in_input_setting(ds, layer):
         rot = np.einsum("ij,kjl,lm->kim", Pinv, rs, P)
         tr = np.einsum("ij,kj->ki", Pinv, np.einsum("kij,j->ki", rs, p) + ts - p)
         complete = True
-    _, first = np.unique(np.round(rot, 6).reshape(len(rot), -1), axis=0, return_index=True)
-    first = np.sort(first)
+    first = _first_of_each(np.round(rot, 6).reshape(len(rot), -1))
     return rot[first], tr[first], complete
 
 
@@ -792,6 +813,8 @@ def _translation_average(frac, numbers, lattice, T, basis, ds):
     An atom's images under T are the atoms of its primitive class (spglib's mapping_to_primitive),
     so the average is the mean minimum-image offset within each class (O(N |T|) work); if spglib's
     classes do not have |T| members each, every translation is matched explicitly instead."""
+    if len(T) == 1 and not T.any():   # the identity alone: every atom is its own class
+        return frac + 0.0, np.arange(len(frac))
     classes = np.asarray(getattr(ds, "mapping_to_primitive", np.zeros(0)), dtype=int)
     counts = np.bincount(classes) if classes.shape == (len(frac),) else np.zeros(0)
     if len(T) > 1 and counts.size and np.all(counts == len(T)):

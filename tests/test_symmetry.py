@@ -312,6 +312,31 @@ def test_drift_table_covers_every_group_seen():
     assert table["227"]["max"] > 0.0
 
 
+def test_shortcuts_of_the_projection_equal_the_general_steps():
+    # (1) rows deduplicated in a dict equal numpy's unique-then-sort, -0.0 counted as 0.0 (numpy's
+    # reference); (2) the identity as the only pure translation leaves every atom its own class,
+    # the same bits as averaging over it with the general matcher; (3) the cached database
+    # operations equal spglib's own answer for the Hall number, and cannot be modified.
+    rng = np.random.default_rng(7)
+    for _ in range(50):
+        rows = rng.integers(-1, 2, size=(int(rng.integers(1, 60)), 9)).astype(float)
+        rows[rng.random(rows.shape) < 0.2] *= -0.0          # signed zeros where there were zeros
+        _, first = np.unique(rows, axis=0, return_index=True)
+        assert S._first_of_each(rows).tolist() == np.sort(first).tolist()
+    cell, pos, num = rattled_si()
+    lattice, frac, nums = S._prepare(cell, pos, num, None)
+    T = np.zeros((1, 3))
+    y, rep = S._translation_average(frac, nums, lattice, T, np.eye(3), None)
+    y_ref, orbit, _ = S._average(frac, nums, lattice, np.eye(3)[None], T, np.eye(3))
+    assert y.tobytes() == y_ref.tobytes() and rep.tolist() == orbit.min(axis=0).tolist()
+    for hall in (1, 501, 523, 525):   # P1, Pa-3, Fm-3m, Fd-3m origin choice 1 (spglib.get_spacegroup_type)
+        db = spglib.get_symmetry_from_database(hall)
+        rot, tr = S._database_operations(hall)
+        assert np.array_equal(rot, db["rotations"]) and np.array_equal(tr, db["translations"])
+        with pytest.raises(ValueError):
+            rot[0, 0, 0] = 2.0
+
+
 # ---------------------------------------------------------------- layers
 def layer_along(atoms, axis):
     """The same slab with its vacuum vector as cell axis ``axis`` (cyclic relabelling)."""
