@@ -329,7 +329,7 @@ def test_outcar_scanner_equals_ases_chunk_parser(which, traj, tmp_path):
             else _unzipped(VASP / "OUTCAR_example_1.gz", tmp_path))
     run = read_run(path)
     _assert_same_as_ase(run, path, "vasp-out")
-    with open(path) as fd:
+    with vasp._WatchedLines(path) as fd:
         build_header(fd)
         scanned = list(vasp._scan_outcar_steps(fd, len(run.numbers)))
     assert len(scanned) == len(run) == (len(traj.cells) if which == "generated" else 1)

@@ -277,7 +277,8 @@ def _outcar_header(path):
 
 
 class _WatchedLines(Lines):
-    """Lines that notes whether VASP's closing timing section went past."""
+    """Lines that notes whether VASP's closing timing section went past (also when a marker search
+    passes over it: ``skip_to`` keys include it)."""
 
     ended = False
 
@@ -289,95 +290,103 @@ class _WatchedLines(Lines):
 
 
 _SCF_END = "FREE ENERGIE OF THE ION-ELECTRON SYSTEM"   # ASE's chunk delimiter (+4 lines)
+_CELL, _POSITION, _STRESS = "direct lattice vectors", "POSITION          ", "in kB "
+_STEP_KEYS = (_SCF_END, _CELL, _POSITION, _STRESS, _OUTCAR_END)
+_TO_ENERGY_KEYS = (_SCF_END, _OUTCAR_END)            # energy-first: nothing before it is read
+_AFTER_ENERGY_KEYS = (_CELL, _POSITION, _STRESS, "Iteration", _OUTCAR_END)
 
 
 class _ScanStopped(Exception):
     """The fast scanner met a step it does not read exactly like ASE; ASE takes over there."""
 
 
-def _scan_outcar_steps(fd, natoms, state: dict | None = None):
+def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
     """Yield (cell, positions, forces, stress|None, free_energy, decimals) per completed ionic step.
 
-    Two layouts of an ionic step are known:
+    ``fd`` is a ``Lines`` after the header: the scanner jumps between the lines it reads
+    (``Lines.skip_to``), so the ~10^2-10^4 lines of a step's electronic iterations are never
+    handled one by one. Two layouts of an ionic step are known:
 
     * ``"ase"`` (VASP 5.2.11 and later): cell, positions and forces are printed before the SCF
-      delimiter ``FREE ENERGIE OF THE ION-ELECTRON SYSTEM``. The chunks are ASE's ``outcarchunks``
-      (through the delimiter and 4 more lines; a step cut before them is not complete) and the same
-      lines inside them (last occurrence of each marker), read with one ``float`` conversion per
-      block instead of ASE's ~15 parsers per line.
+      delimiter ``FREE ENERGIE OF THE ION-ELECTRON SYSTEM``. A step is ASE's chunk (through the
+      delimiter and 4 more lines; a step cut before them is not complete), read as ASE does: the
+      last cell, POSITION block and stress line of the chunk, the free energy two lines after the
+      delimiter, one ``float`` conversion per block instead of ASE's ~15 parsers per line.
     * ``"energy-first"`` (VASP 4.6 and 5.2.2 print the energy block first, then the stress, the
       ``VOLUME and BASIS-vectors`` block and ``POSITION ... TOTAL-FORCE``): a step runs from the
       delimiter through the last row of its POSITION block and is complete only then. ASE's chunk
       parser cannot read it ("Did not find required property positions").
 
     The layout is decided on the first step (no POSITION block before its delimiter: energy-first)
-    and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (in the ``"ase"``
-    layout, ASE's parser then reads that step).
+    and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (a block cut by
+    the delimiter, a marker among the 4 lines after it, text where numbers belong; in the "ase"
+    layout ASE's parser then reads that step).
     """
     state = {} if state is None else state
     from ase.io.vasp_parsers.vasp_outcar_parsers import convert_vasp_outcar_stress
-    lines = []
+
+    def rows(n):
+        out = [fd.readline() for _ in range(n)]
+        if not out[-1]:
+            return None                      # the file ends inside the block
+        if any(_SCF_END in r for r in out):
+            raise _ScanStopped
+        return out
+
+    def take(line, got):
+        """Read the block a marker line opens into ``got``; False if the file ends inside it."""
+        if _OUTCAR_END in line:
+            fd.ended = True
+        elif _CELL in line:
+            block = rows(3)
+            if block is None:
+                return False
+            got["cell"] = np.array([r.split()[:3] for r in block], float)
+        elif _POSITION in line:
+            block = rows(natoms + 1)
+            if block is None:
+                return False
+            got["pos"], got["first"] = np.array([r.split() for r in block[1:]], float), block[1]
+        elif _STRESS in line:
+            got["stress"] = convert_vasp_outcar_stress([float(a) for a in line.split()[2:]])
+        return True
+
+    got: dict = {}
     while True:
-        line = fd.readline()
-        if not line:
-            return
-        lines.append(line)
-        if _SCF_END not in line:
-            continue
-        for _ in range(4):
-            nxt = fd.readline()
-            if not nxt:
-                return
-            lines.append(nxt)
-        if "layout" not in state:
-            state["layout"] = ("ase" if any("POSITION          " in t for t in lines)
-                               else "energy-first")
-        layout = state["layout"]
-        start = 0
-        if layout == "energy-first":
-            start = len(lines) - 5           # the delimiter: what belongs to this step follows it
-            if not _read_position_block(fd, lines, natoms):
-                return                       # cut before the step's positions were complete
-        cell = pos = stress = block = None
         try:
-            free = float(lines[start + 2].split()[4] if layout == "energy-first"
-                         else lines[-3].split()[4])
-            for k in range(start, len(lines)):
-                text = lines[k]
-                if "direct lattice vectors" in text:
-                    cell = np.array([r.split()[:3] for r in lines[k + 1:k + 4]], float)
-                elif "POSITION          " in text:
-                    block = lines[k + 2:k + 2 + natoms]
-                    pos = np.array([r.split() for r in block], float)
-                elif "in kB " in text:
-                    stress = convert_vasp_outcar_stress([float(a) for a in text.split()[2:]])
+            line = fd.skip_to(_TO_ENERGY_KEYS if state.get("layout") == "energy-first"
+                              else _STEP_KEYS)
+            if not line:
+                return
+            if _SCF_END not in line:
+                if not take(line, got):
+                    return
+                continue
+            tail = rows(4)
+            if tail is None:
+                return
+            if any(k in t for t in tail for k in _STEP_KEYS[1:4]):
+                raise _ScanStopped
+            layout = state.setdefault("layout", "ase" if "pos" in got else "energy-first")
+            if layout == "energy-first":     # what belongs to this step follows the delimiter
+                got = {}
+                while "pos" not in got:
+                    line = fd.skip_to(_AFTER_ENERGY_KEYS)
+                    if not line:
+                        return               # cut before the step's positions were complete
+                    if "Iteration" in line:
+                        if "---" in line:    # a new SCF cycle: no positions for this step
+                            raise _ScanStopped
+                    elif not take(line, got):
+                        return
+            free = float(tail[1].split()[4])
         except (ValueError, IndexError):
             raise _ScanStopped from None
+        cell, pos = got.get("cell"), got.get("pos")
         if cell is None or pos is None or cell.shape != (3, 3) or pos.shape != (natoms, 6):
             raise _ScanStopped
-        yield cell, pos[:, :3], pos[:, 3:6], stress, free, decimals(block[0].split()[0])
-        lines = []
-
-
-def _read_position_block(fd, lines, natoms) -> bool:
-    """Energy-first layout: read on (into ``lines``) through the step's POSITION block (its header,
-    the dashes, ``natoms`` rows). False when the file ends first, or a new SCF cycle starts first
-    (no positions were printed for this step)."""
-    while True:
-        line = fd.readline()
-        if not line:
-            return False
-        lines.append(line)
-        if "POSITION          " in line:
-            break
-        if "Iteration" in line and "---" in line:
-            raise _ScanStopped
-    for _ in range(natoms + 1):
-        line = fd.readline()
-        if not line:
-            return False
-        lines.append(line)
-    return True
+        yield cell, pos[:, :3], pos[:, 3:6], got.get("stress"), free, decimals(got["first"].split()[0])
+        got = {}
 
 
 def read_outcar(path, ctx: ReadContext):
