@@ -245,8 +245,9 @@ def test_line_reader_gives_the_lines_python_text_files_give(tmp_path, monkeypatc
 def test_skipping_to_marked_lines_equals_testing_each_line(tmp_path, monkeypatch, block):
     # Lines.skip_to finds marked lines with str.find over a decoded block; the reference is the
     # plain test `any(key in line for key in keys)` on each line of Python's own text file, with
-    # readline calls mixed in (a reader reads the lines after a marker itself) and keys that
-    # overlap, repeat on one line, end a line or fall across a block boundary.
+    # readline and read_lines calls mixed in (a reader reads the lines after a marker itself,
+    # also across block ends and past the end) and keys that overlap, repeat on one line, end a
+    # line or fall across a block boundary.
     import io
     monkeypatch.setattr(_io.Lines, "_READ", block)
     keys = ("total energy", "Forces", "ces acting", "é", "\r")
@@ -257,20 +258,25 @@ def test_skipping_to_marked_lines_equals_testing_each_line(tmp_path, monkeypatch
     p = tmp_path / "marked.txt"
     p.write_bytes(data)
     lines = list(io.TextIOWrapper(io.BytesIO(data), encoding="utf-8", newline=None))
+    # after each marker the reader reads 0-70 lines itself, with readline or read_lines
+    after = rng.integers(0, 70, 400) * (rng.random(400) < 0.1) + (rng.random(400) < 0.5)
     want, got = [], []
     k = 0
     while k < len(lines):                          # the reference walk over the line list
         if any(key in lines[k] for key in keys):
-            want.append((k + 1, lines[k]))
-            k += 2                                # the line after a marker is read with readline
+            n = int(after[len(want)])
+            want.append((k + 1, lines[k], lines[k + 1:k + 1 + n]))
+            k += 1 + n
         else:
             k += 1
     with _io.Lines(p) as fh:
         while line := fh.skip_to(keys):
-            got.append((fh.lineno, line))
-            fh.readline()
-        assert fh.lineno == len(lines)
-    assert got == want and len(got) > 100
+            at, n = fh.lineno, int(after[len(got)])
+            read = (fh.read_lines(n) if len(got) % 2 else
+                    [ln for ln in (fh.readline() for _ in range(n)) if ln])
+            got.append((at, line, read))
+        assert fh.lineno == len(lines) and fh.read_lines(3) == [] and fh.readline() == ""
+    assert got == want and len(got) > 20 and sum(len(r) > 1 for *_, r in got) > 3
 
 
 def test_blank_lines_are_detected_at_once(tmp_path):

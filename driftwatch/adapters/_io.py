@@ -365,6 +365,19 @@ class Lines:
             return self._lines[self._next - 1]
         return self._read_ahead()
 
+    def read_lines(self, n: int) -> list[str]:
+        """The next ``n`` lines (fewer only at the end of the text): what ``n`` calls of
+        ``readline`` give, sliced from the decoded block where it holds them."""
+        out = self._lines[self._next:self._next + n]
+        self._next += len(out)
+        self.lineno += len(out)
+        while len(out) < n:
+            line = self.readline()
+            if not line:
+                break
+            out.append(line)
+        return out
+
     def skip_to(self, keys: tuple) -> str:
         """The next line containing any of ``keys`` (literal texts without a newline), or "" at
         the end of the text; the lines before it are passed over (and counted). The same lines

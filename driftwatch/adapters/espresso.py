@@ -105,26 +105,24 @@ def _header_info(lines):
 
 def _read_block(fh, n):
     """The next n lines, or None if the file ends first."""
-    out = []
-    for _ in range(n):
-        ln = fh.readline()
-        if not ln:
-            return None
-        out.append(ln)
-    return out
+    out = fh.read_lines(n)
+    return out if len(out) == n else None
 
 
 def _read_forces(fh, natoms):
     Bohr, Ry = _units()
     rows = []
     while len(rows) < natoms:
-        ln = fh.readline()
-        if not ln:
-            return None
-        if "force =" in ln:
-            rows.append(ln.split()[-3:])
-        elif ln.strip() and rows:          # something else interrupted the block
-            return None
+        # each line adds at most one row: reading this many never reads past the block
+        want = natoms - len(rows)
+        lines = fh.read_lines(want)
+        for ln in lines:
+            if "force =" in ln:
+                rows.append(ln.split()[-3:])
+            elif ln.strip() and rows:          # something else interrupted the block
+                return None
+        if len(lines) < want:
+            return None                        # the file ends inside the block
     return np.array(rows, float) * Ry / Bohr
 
 
@@ -326,13 +324,12 @@ def read_pw_out(path, ctx: ReadContext):
                     yield emit(cur)
                 dropped(cur)
                 block = []
-                while len(block) < natoms:
-                    ln = fh.readline()
-                    if not ln:
+                while block is not None and len(block) < natoms:
+                    want = natoms - len(block)       # at most one row per line: never past the card
+                    lines = fh.read_lines(want)
+                    block += [ln for ln in lines if ln.strip() and not ln.startswith("#")]
+                    if len(lines) < want:
                         block = None
-                        break
-                    if ln.strip() and not ln.startswith("#"):
-                        block.append(ln)
                 if block is None:
                     break
                 cell = pending_cell if pending_cell is not None else cur.cell

@@ -288,6 +288,12 @@ class _WatchedLines(Lines):
             self.ended = True
         return line
 
+    def read_lines(self, n):
+        out = super().read_lines(n)
+        if any(_OUTCAR_END in line for line in out):
+            self.ended = True
+        return out
+
 
 _SCF_END = "FREE ENERGIE OF THE ION-ELECTRON SYSTEM"   # ASE's chunk delimiter (+4 lines)
 _CELL, _POSITION, _STRESS = "direct lattice vectors", "POSITION          ", "in kB "
@@ -326,8 +332,8 @@ def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
     from ase.io.vasp_parsers.vasp_outcar_parsers import convert_vasp_outcar_stress
 
     def rows(n):
-        out = [fd.readline() for _ in range(n)]
-        if not out[-1]:
+        out = fd.read_lines(n)
+        if len(out) < n:
             return None                      # the file ends inside the block
         if any(_SCF_END in r for r in out):
             raise _ScanStopped
