@@ -382,11 +382,16 @@ def section_audit(a):
             for mode in MODES:
                 cfg = bench_config(mode, work)
                 out = work / f"out-{label}-{mode}"
+                # spglib alone right before and right after the audit, the smaller time kept:
+                # the machine's speed drifts by 20-50 %, and a slow spell during one replay
+                # must not make the audit look closer to spglib than it is
+                asked, c_inproc = questions_of(paths, cfg)
+                c_spg_before = spglib_alone(asked)
                 c_cold, w_cold = audit_process([root], out, cfgs[mode])
+                c_spg_after = spglib_alone(asked)
+                c_spg = min(c_spg_before, c_spg_after)
                 c_rep, w_rep = report_process(out, work / f"report-{label}-{mode}")
                 c_warm, w_warm = audit_process([root], out, cfgs[mode], fresh=False)
-                asked, c_inproc = questions_of(paths, cfg)
-                c_spg = spglib_alone(asked)
                 recs = records_of(out)
                 checked, bad, notes = verdict_check(recs, naive)
                 ref_note, ref_ok = "", None
@@ -405,7 +410,8 @@ def section_audit(a):
                     c_naive / c_cold, "x", None, None,
                     f"{c_cold:.2f} s CPU ({w_cold:.1f} s wall), of which the report alone "
                     f"{c_rep:.2f} s; warm re-audit with report {c_warm:.2f} s; spglib alone on "
-                    f"the same {len(asked)} questions {c_spg:.2f} s: whole process x"
+                    f"the same {len(asked)} questions {c_spg:.2f} s (before the audit "
+                    f"{c_spg_before:.2f}, after {c_spg_after:.2f}): whole process x"
                     f"{c_cold / c_spg:.2f}, analysis (audit minus report) x{analysis / c_spg:.2f}"
                     f" of it; verdicts equal to naive on {checked - bad}/{checked} frames"
                     + ref_note + f"; load {load():.1f}")
@@ -777,6 +783,18 @@ SECTIONS = {"audit": section_audit, "identity": section_identity, "observer": se
             "scaling": section_scaling, "startup": section_startup}
 
 
+def compiled_bytecode() -> str:
+    """Compile driftwatch's modules to bytecode (``__pycache__``, ignored by git), as ``pip
+    install`` or a first import does, so that no process timed here compiles its sources: with
+    ``PYTHONDONTWRITEBYTECODE=1`` (set on some machines, this one included) every process would
+    compile them anew, ~0.2 s CPU each, while the naive loop's libraries come compiled."""
+    import compileall
+    import driftwatch
+    ok = compileall.compile_dir(Path(driftwatch.__file__).parent, quiet=1)
+    return (f"driftwatch's bytecode compiled ({'ok' if ok else 'FAILED'}; "
+            f"PYTHONDONTWRITEBYTECODE={os.environ.get('PYTHONDONTWRITEBYTECODE', '')!r})")
+
+
 def main(argv=None):
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     p.add_argument("--quick", action="store_true", help="reduced sizes (about 5-10 minutes)")
@@ -809,6 +827,7 @@ def main(argv=None):
     t0 = time.perf_counter()
     print(f"driftwatch benchmark ({'quick' if a.quick else 'full'}); inputs in {a.inputs}; "
           f"{os.cpu_count()} cores, load {load():.1f}")
+    print(compiled_bytecode())
     for name in a.only.split(","):
         SECTIONS[name](a)
     print(f"\ndone in {time.perf_counter() - t0:.0f} s wall; load average now {load():.1f}")
