@@ -235,14 +235,13 @@ def _gl32():
 
     Row g maps point k to point g[k]; a relabelled vector is ``x[..., g]``.
     """
-    pts = np.array(_FANO)
     index = {p: i for i, p in enumerate(_FANO)}
     perms = set()
-    for bits in itertools.product((0, 1), repeat=9):
-        m = np.array(bits).reshape(3, 3)
-        if round(np.linalg.det(m)) % 2 == 0:
-            continue
-        perms.add(tuple(index[tuple(int(c) for c in (m @ p) % 2)] for p in pts))
+    for a, b, c, d, e, f, g, h, k in itertools.product((0, 1), repeat=9):   # rows (a b c), ...
+        if (a * (e * k - f * h) - b * (d * k - f * g) + c * (d * h - e * g)) % 2 == 0:
+            continue                         # singular over Z/2 (integer determinant, exact)
+        perms.add(tuple(index[((a * x + b * y + c * z) % 2, (d * x + e * y + f * z) % 2,
+                               (g * x + h * y + k * z) % 2)] for x, y, z in _FANO))
     out = np.array(sorted(perms), dtype=np.intp)
     assert out.shape == (168, 7)
     return out
@@ -255,20 +254,23 @@ def _parse(spec):
     return frozenset(zs), tuple(frozenset(b) for b in blocks)
 
 
+@lru_cache(maxsize=None)
 def _labelled_patterns():
     """(type index, zero set, classes) of every labelled pattern: each type's patterns under every
     relabelling of the 7 vectors by GL(3, Z/2), each distinct one once, types in ``TYPES`` order."""
-    g = _gl32()
+    out = []
+    g = _gl32().tolist()
     for t, specs in enumerate(_PATTERNS[k] for k in TYPES):
         seen = set()
         for spec in specs:
             z0, b0 = _parse(spec)
             for perm in g:
-                z = frozenset(int(perm[i]) for i in z0)
-                b = frozenset(frozenset(int(perm[i]) for i in blk) for blk in b0)
+                z = frozenset(perm[i] for i in z0)
+                b = frozenset(frozenset(perm[i] for i in blk) for blk in b0)
                 if (z, b) not in seen:
                     seen.add((z, b))
-                    yield t, z, b
+                    out.append((t, z, b))
+    return tuple(out)
 
 
 @lru_cache(maxsize=None)
@@ -289,7 +291,7 @@ def _pattern_table():
       ``groups`` for L-inf: (feature rows (k, c), first index per type, types) for
                  the patterns with c = 1..4 parts.
     """
-    labelled = list(_labelled_patterns())
+    labelled = _labelled_patterns()
     zero_list = sorted({z for _, z, _ in labelled}, key=sorted)
     block_list = sorted({blk for _, _, b in labelled for blk in b}, key=sorted)
     zindex = {z: i for i, z in enumerate(zero_list)}
@@ -366,11 +368,12 @@ def _deform_table():
         sa += [c for c, _ in swaps]
         sb += [c for _, c in swaps]
     subsets, zeros, ps, pz, types = {}, {}, [], [], []
+    as_lists = [q.tolist() for q in involutions]
     for t, z, b in _labelled_patterns():
         free = set(range(7)) - z - set().union(*b)
-        inv = tuple(i for i, q in enumerate(involutions)
-                    if {int(q[j]) for j in z} == z
-                    and all({int(q[j]) for j in blk} == blk for blk in b)
+        inv = tuple(i for i, q in enumerate(as_lists)
+                    if {q[j] for j in z} == z
+                    and all({q[j] for j in blk} == blk for blk in b)
                     and all(q[j] == j for j in free))
         flips = tuple(i for i, sh in enumerate(shared) if sh <= z)
         assert flips or len(z) == 1          # every zero is in a perpendicular pair

@@ -188,6 +188,14 @@ def test_against_spglib_delaunay_and_niggli(seed):
 
 # ----------------------------------------------------------------------------- patterns and types
 
+def test_relabellings_are_the_168_collineations_of_the_fano_plane():
+    # GL(3, 2) built from invertible 0/1 matrices equals the permutations of the 7 points that map
+    # lines to lines, found by trying all 5040 (the collineation group of the Fano plane has order
+    # 168: a handbook fact of finite geometry); the same FANO labels on both sides
+    assert B.FANO == L._FANO
+    assert {tuple(r) for r in L._gl32().tolist()} == {tuple(r) for r in B.fano_collineations().tolist()}
+
+
 def test_pattern_table_rederived_with_spglib():
     """Re-derive the maximal conorm patterns of every type and compare with the module table.
 
