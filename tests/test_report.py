@@ -522,3 +522,23 @@ def test_scatter_links_are_links_in_chromium(report):
     hrefs = [a.get("href") for t, a in _parse(dom).tags if t == "a" and
              str(a.get("href", "")).startswith("runs/")]
     assert len(hrefs) >= 2 * len(RUNS)          # table rows and scatter points (both panels)
+
+
+def test_point_lists_and_markers_are_written_as_one_decimal_each():
+    # the SVG writer formats a point list and a marker's path in one format call each: the same
+    # text as formatting every coordinate on its own (one decimal: a tenth of a pixel)
+    import numpy as np
+    from driftwatch.report import svg
+    rng = np.random.default_rng(3)
+    pts = [(float(a), float(b)) for a, b in rng.normal(0, 300, (200, 2))]
+    pts += [(0.05, -0.05), (-0.04, 1e-9), (2.25, 2.35), (1e6, -1e6)]
+    assert svg._points(pts) == " ".join(f"{svg._f(a)},{svg._f(b)}" for a, b in pts)
+    assert svg._points([]) == ""
+    x, y, s = 12.34, 56.78, 7.0
+    r = s / 2
+    assert svg.marker_path("o", x, y, s) == (
+        f"M{svg._f(x - r)},{svg._f(y)}a{svg._f(r)},{svg._f(r)} 0 1,0 {svg._f(2 * r)},0"
+        f"a{svg._f(r)},{svg._f(r)} 0 1,0 {svg._f(-2 * r)},0Z")
+    q = r * 0.9
+    assert svg.marker_path("s", x, y, s) == "M" + "L".join(
+        f"{svg._f(x + a)},{svg._f(y + b)}" for a, b in [(-q, -q), (q, -q), (q, q), (-q, q)]) + "Z"

@@ -36,6 +36,11 @@ def _tw(text, size) -> float:
     return len(str(text)) * _CH * size
 
 
+def _points(pts) -> str:
+    """``x,y x,y ...`` of (x, y) pairs in px, one decimal (``_f`` each), in one format call."""
+    return ("%.1f,%.1f " * len(pts))[:-1] % tuple(v for q in pts for v in q)
+
+
 def _dash(d) -> str:
     return " ".join(_f(x * DASH_SCALE) for x in d) if d else ""
 
@@ -166,8 +171,8 @@ def marker_path(m, x, y, s) -> str:
     """SVG path data of marker ``m`` (matplotlib's codes) of size ``s`` px centred at (x, y)."""
     r = s / 2
     if m == "o":
-        return f"M{_f(x - r)},{_f(y)}a{_f(r)},{_f(r)} 0 1,0 {_f(2 * r)},0a{_f(r)},{_f(r)} 0 1,0 " \
-               f"{_f(-2 * r)},0Z"
+        return "M%.1f,%.1fa%.1f,%.1f 0 1,0 %.1f,0a%.1f,%.1f 0 1,0 %.1f,0Z" % (
+            x - r, y, r, r, 2 * r, r, r, -2 * r)
     if m in ("x", "+", "_", "|"):
         if m == "x":
             q = r * 0.85
@@ -193,7 +198,7 @@ def marker_path(m, x, y, s) -> str:
                 -(r if i % 2 == 0 else r * 0.42) * math.cos(math.pi * i / 5)) for i in range(10)]
     else:
         return marker_path("o", x, y, s)
-    return "M" + "L".join(f"{_f(x + a)},{_f(y + b)}" for a, b in pts) + "Z"
+    return "M" + "L".join(["%.1f,%.1f" % (x + a, y + b) for a, b in pts]) + "Z"
 
 
 def _stroked_only(m):
@@ -469,7 +474,7 @@ def _mark(m: Mark, sx, sy) -> str:
         da = f' stroke-dasharray="{_dash(m.dash)}"' if m.dash else ""
         for r in runs:
             if len(r) > 1:
-                parts.append(f'<polyline points="{" ".join(f"{_f(a)},{_f(b)}" for a, b in r)}" '
+                parts.append(f'<polyline points="{_points(r)}" '
                              f'fill="none" stroke="{_x(m.colour)}" stroke-width="{_f(m.width)}" '
                              f'stroke-linejoin="round"{da}/>')
         if m.marker:
@@ -517,7 +522,7 @@ def _mark(m: Mark, sx, sy) -> str:
         if all(a is not None and b is not None for a, b in pts):
             fill = _x(m.fill) if m.fill else "none"
             stroke = (f' stroke="{_x(m.edge)}" stroke-width="{_f(m.width)}"' if m.edge else "")
-            parts.append(f'<polygon points="{" ".join(f"{_f(a)},{_f(b)}" for a, b in pts)}" '
+            parts.append(f'<polygon points="{_points(pts)}" '
                          f'fill="{fill}"{stroke}/>')
     parts.append("</g>")
     return "".join(parts)
