@@ -438,7 +438,8 @@ def _validate(arr, single):
                            f"(NaN or inf): {arr[i].tolist()}")
     m = np.abs(arr).max(axis=2, keepdims=True)
     scaled = arr / np.where(m > 0, m, 1.0)
-    lengths = np.sqrt(np.einsum("nij,nij->ni", scaled, scaled)) * m[..., 0]   # no overflow
+    with np.errstate(over="ignore"):   # the squares cannot overflow; a length beyond the double
+        lengths = np.sqrt(np.einsum("nij,nij->ni", scaled, scaled)) * m[..., 0]   # range is inf
     zero = lengths == 0
     if zero.any():
         i, k = (int(v) for v in np.argwhere(zero)[0])

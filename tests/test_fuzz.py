@@ -24,6 +24,7 @@ import json
 import os
 import shutil
 import tempfile
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -222,6 +223,16 @@ def test_3d_any_nine_floats_give_finite_invariants_or_lattice_error(vals):
     inv = _3d_or_error(np.array(vals).reshape(3, 3))
     if inv is not None:
         _check3d(inv)
+
+
+def test_3d_vectors_longer_than_the_double_range_are_a_lattice_error_without_warnings():
+    # a hypothesis draw found it: entries near the largest double (1.7e308) make a length beyond
+    # the double range; that is an out-of-range length (LatticeError), and no RuntimeWarning leaks
+    big = np.finfo(float).max
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises(LatticeError, match="has length inf"):
+            lattice3d.invariants(np.array([[big, big, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]))
 
 
 @FUZZ
