@@ -141,7 +141,8 @@ def _scaled(arr, single):
     if not m.all():
         i = int(np.flatnonzero(m == 0)[0])
         raise LatticeError(f"{_where(i, single)}: both basis vectors are zero")
-    lengths = np.sqrt(((arr / m[:, None, None]) ** 2).sum(axis=2)) * m[:, None]  # no overflow
+    with np.errstate(over="ignore"):   # the squares cannot overflow; a length beyond the double
+        lengths = np.sqrt(((arr / m[:, None, None]) ** 2).sum(axis=2)) * m[:, None]  # range: inf
     out = ((lengths > 0) & (lengths < LENGTH_RANGE[0])) | (lengths > LENGTH_RANGE[1])
     if out.any():
         i, k = (int(v) for v in np.argwhere(out)[0])

@@ -225,7 +225,7 @@ def test_3d_any_nine_floats_give_finite_invariants_or_lattice_error(vals):
         _check3d(inv)
 
 
-def test_3d_vectors_longer_than_the_double_range_are_a_lattice_error_without_warnings():
+def test_vectors_longer_than_the_double_range_are_a_lattice_error_without_warnings():
     # a hypothesis draw found it: entries near the largest double (1.7e308) make a length beyond
     # the double range; that is an out-of-range length (LatticeError), and no RuntimeWarning leaks
     big = np.finfo(float).max
@@ -233,6 +233,8 @@ def test_3d_vectors_longer_than_the_double_range_are_a_lattice_error_without_war
         warnings.simplefilter("error")
         with pytest.raises(LatticeError, match="has length inf"):
             lattice3d.invariants(np.array([[big, big, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]))
+        with pytest.raises(LatticeError, match="has length inf"):
+            lattice2d.invariants(np.array([[big, big], [0.0, 1.0]]))
 
 
 @FUZZ
