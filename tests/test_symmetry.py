@@ -320,7 +320,7 @@ def test_shortcuts_of_the_projection_equal_the_general_steps():
     rng = np.random.default_rng(7)
     for _ in range(50):
         rows = rng.integers(-1, 2, size=(int(rng.integers(1, 60)), 9)).astype(float)
-        rows[rng.random(rows.shape) < 0.2] *= -0.0          # signed zeros where there were zeros
+        rows[rng.random(rows.shape) < 0.2] *= -0.0          # some entries become -0.0
         _, first = np.unique(rows, axis=0, return_index=True)
         assert S._first_of_each(rows).tolist() == np.sort(first).tolist()
     cell, pos, num = rattled_si()
@@ -329,7 +329,8 @@ def test_shortcuts_of_the_projection_equal_the_general_steps():
     y, rep = S._translation_average(frac, nums, lattice, T, np.eye(3), None)
     y_ref, orbit, _ = S._average(frac, nums, lattice, np.eye(3)[None], T, np.eye(3))
     assert y.tobytes() == y_ref.tobytes() and rep.tolist() == orbit.min(axis=0).tolist()
-    for hall in (1, 501, 523, 525):   # P1, Pa-3, Fm-3m, Fd-3m origin choice 1 (spglib.get_spacegroup_type)
+    # Hall numbers of P1, Pa-3, Fm-3m and Fd-3m origin choice 1 (spglib.get_spacegroup_type)
+    for hall in (1, 501, 523, 525):
         db = spglib.get_symmetry_from_database(hall)
         rot, tr = S._database_operations(hall)
         assert np.array_equal(rot, db["rotations"]) and np.array_equal(tr, db["translations"])

@@ -391,7 +391,8 @@ def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
         cell, pos = got.get("cell"), got.get("pos")
         if cell is None or pos is None or cell.shape != (3, 3) or pos.shape != (natoms, 6):
             raise _ScanStopped
-        yield cell, pos[:, :3], pos[:, 3:6], got.get("stress"), free, decimals(got["first"].split()[0])
+        yield (cell, pos[:, :3], pos[:, 3:6], got.get("stress"), free,
+               decimals(got["first"].split()[0]))
         got = {}
 
 
