@@ -385,7 +385,7 @@ def section_audit(a):
                 # spglib alone right before and right after the audit, the smaller time kept:
                 # the machine's speed drifts by 20-50 %, and a slow spell during one replay
                 # must not make the audit look closer to spglib than it is
-                asked, c_inproc = questions_of(paths, cfg)
+                asked, _ = questions_of(paths, cfg)
                 c_spg_before = spglib_alone(asked)
                 c_cold, w_cold = audit_process([root], out, cfgs[mode])
                 c_spg_after = spglib_alone(asked)

@@ -109,21 +109,30 @@ def _read_block(fh, n):
     return out if len(out) == n else None
 
 
-def _read_forces(fh, natoms):
-    Bohr, Ry = _units()
+def _read_rows(fh, n, is_row, interruptible=False):
+    """The next ``n`` lines that ``is_row`` accepts (other lines are passed over), reading no line
+    past the n-th row; None if the file ends first or, when ``interruptible``, a non-blank line
+    that is not a row comes after the first row."""
     rows = []
-    while len(rows) < natoms:
-        # each line adds at most one row: reading this many never reads past the block
-        want = natoms - len(rows)
+    while len(rows) < n:
+        want = n - len(rows)           # each line adds at most one row: never past the block
         lines = fh.read_lines(want)
         for ln in lines:
-            if "force =" in ln:
-                rows.append(ln.split()[-3:])
-            elif ln.strip() and rows:          # something else interrupted the block
+            if is_row(ln):
+                rows.append(ln)
+            elif interruptible and rows and ln.strip():
                 return None
         if len(lines) < want:
-            return None                        # the file ends inside the block
-    return np.array(rows, float) * Ry / Bohr
+            return None
+    return rows
+
+
+def _read_forces(fh, natoms):
+    Bohr, Ry = _units()
+    rows = _read_rows(fh, natoms, lambda ln: "force =" in ln, interruptible=True)
+    if rows is None:
+        return None
+    return np.array([r.split()[-3:] for r in rows], float) * Ry / Bohr
 
 
 def _read_stress(fh):
@@ -323,13 +332,7 @@ def read_pw_out(path, ctx: ReadContext):
                 if ready(cur):
                     yield emit(cur)
                 dropped(cur)
-                block = []
-                while block is not None and len(block) < natoms:
-                    want = natoms - len(block)       # at most one row per line: never past the card
-                    lines = fh.read_lines(want)
-                    block += [ln for ln in lines if ln.strip() and not ln.startswith("#")]
-                    if len(lines) < want:
-                        block = None
+                block = _read_rows(fh, natoms, lambda ln: ln.strip() and not ln.startswith("#"))
                 if block is None:
                     break
                 cell = pending_cell if pending_cell is not None else cur.cell
