@@ -338,6 +338,50 @@ def test_shortcuts_of_the_projection_equal_the_general_steps():
             rot[0, 0, 0] = 2.0
 
 
+def test_cached_setting_and_translation_basis_equal_the_direct_formulas():
+    # The group's operations in the input basis (W = P^-1 W_s P, w = P^-1 (W_s p + w_s - p),
+    # one per distinct W) and the lattice basis of the pure translations are cached on their
+    # exact inputs; each frame's own origin shift p still enters w. Checked against the formulas
+    # computed directly, on a rattled Si supercell (space group), a MoS2 sheet and its
+    # rectangular (orthohexagonal) supercell (layer groups), at three symprecs each, the second
+    # round answered from the caches. The cached arrays cannot be modified.
+    from ase.build import make_supercell
+    sheet = mx2("MoS2", vacuum=8.0)
+    rect = make_supercell(sheet, np.array([[1, 0, 0], [1, 2, 0], [0, 0, 1]]))
+    rect.rattle(0.002, seed=3)
+    cases = [(*rattled_si(), None), (sheet.cell[:], sheet.positions, sheet.numbers, 2),
+             (rect.cell[:], rect.positions, rect.numbers, 2)]
+    for _ in range(2):
+        for cell, pos, num, axis in cases:
+            lattice, frac, nums = S._prepare(cell, pos, num, axis)
+            for symprec in (1e-5, 1e-2, 0.1):
+                ds, _ = S._dataset(lattice, frac, nums, symprec, -1.0, axis is not None)
+                rs, ts = S._std_operations(ds, axis is not None)
+                P = S._snap(np.array(ds.transformation_matrix, dtype=float))
+                p = np.array(ds.origin_shift, dtype=float)
+                Pinv = S._snap(np.linalg.inv(P))
+                rot = np.einsum("ij,kjl,lm->kim", Pinv, rs, P)
+                tr = np.einsum("ij,kj->ki", Pinv, np.einsum("kij,j->ki", rs, p) + ts - p)
+                _, first = np.unique(np.round(rot, 6).reshape(len(rot), -1), axis=0,
+                                     return_index=True)
+                first = np.sort(first)
+                got_rot, got_tr, complete = S._group_in_input_setting(ds, axis is not None)
+                assert complete and got_rot.tobytes() == rot[first].tobytes()
+                assert got_tr.tobytes() == tr[first].tobytes()
+                with pytest.raises(ValueError):
+                    got_rot[0, 0, 0] = 2.0
+                T = S._pure_translations(ds)
+                n = len(T)
+                if n > 1:
+                    rows = np.vstack([n * np.eye(3), np.round(T * n)])
+                    basis = S._translation_basis(T)
+                    assert basis.tobytes() == (S._integer_basis(rows) / n).tobytes()
+                    with pytest.raises(ValueError):
+                        basis[0, 0] = 2.0
+    assert any(len(S._pure_translations(S._dataset(*S._prepare(c, x, z, a), 0.1, -1.0,
+                                                    a is not None)[0])) > 1
+               for c, x, z, a in cases)           # the translation basis was exercised
+
 # ---------------------------------------------------------------- layers
 def layer_along(atoms, axis):
     """The same slab with its vacuum vector as cell axis ``axis`` (cyclic relabelling)."""
