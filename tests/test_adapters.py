@@ -236,6 +236,36 @@ def test_detection_by_content_glob_override_and_compression(traj, tmp_path):
         read_run(xyz, format="nope")
 
 
+def test_a_calculation_without_a_structure_is_not_an_ionic_step(tmp_path):
+    """A genuine VASP GW0 vasprun.xml (nomad-coe/electronic-parsers, tests/data/vasp/README.md):
+    its one <calculation> holds dielectric functions and no structure. pymatgen's Vasprun gives
+    that step no structure (``structure`` None) and ASE's reader fails on it; driftwatch passes
+    over it and says why, in one line naming the file. Among ionic steps (generated file, one
+    step's structure removed) only that step is passed over, with the same warning."""
+    gw = VASP / "vasprun_gw.xml.xz"
+    from pymatgen.io.vasp.outputs import Vasprun
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = Vasprun(str(gw), parse_dos=False, parse_eigen=False, parse_potcar_file=False)
+    assert [s["structure"] for s in ref.ionic_steps] == [None]
+    with pytest.raises(InputError) as e:
+        read_run(gw)
+    msg = str(e.value)
+    assert "\n" not in msg and msg.startswith(str(gw)) and "no completed ionic step" in msg
+    assert "<calculation> without a <structure>" in msg
+    traj = vasp_gen.drifting_layer(nsteps=5)
+    text = vasp_gen.write_vasprun(tmp_path / "vasprun.xml", traj).read_text()
+    calcs = text.split("<calculation>")
+    start, end = calcs[3].index("<structure>"), calcs[3].index("</structure>")
+    calcs[3] = calcs[3][:start] + calcs[3][end + len("</structure>"):]
+    (tmp_path / "vasprun.xml").write_text("<calculation>".join(calcs))
+    run = read_run(tmp_path / "vasprun.xml")
+    kept = [0, 1, 3, 4]                                  # the third step has no structure
+    assert len(run) == 4
+    np.testing.assert_allclose(run.cells, traj.cells[kept], atol=1e-9, rtol=0)  # 10 decimals
+    assert any("<calculation> without a <structure>" in w for w in run.warnings)
+
+
 def test_errors_are_one_line_and_name_the_file(tmp_path):
     (tmp_path / "empty.out").write_text("")
     with pytest.raises(InputError, match="empty.out: empty file"):

@@ -214,8 +214,12 @@ def read_vasprun(path, ctx: ReadContext):
                     rows = el.findall("array[@name='atoms']/set/rc")
                     numbers = _symbol_numbers([r.find("c").text for r in rows])
                 elif tag == "calculation":
-                    yield _vasprun_frame(el, step, numbers, params.get("PSTRESS") or 0.0, ctx)
-                    step += 1
+                    if el.find("structure") is not None:
+                        yield _vasprun_frame(el, step, numbers, params.get("PSTRESS") or 0.0, ctx)
+                        step += 1
+                    else:       # e.g. GW: dielectric functions, no structure, forces or energy
+                        ctx.warn("a <calculation> without a <structure> (a GW or response-"
+                                 "function step?) is not an ionic step: passed over")
                     calc = None
                 if root is not None:
                     root.clear()      # keep memory flat: drop what has been read
