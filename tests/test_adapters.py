@@ -266,6 +266,23 @@ def test_a_calculation_without_a_structure_is_not_an_ionic_step(tmp_path):
     assert any("<calculation> without a <structure>" in w for w in run.warnings)
 
 
+def test_a_complete_outcar_without_an_ionic_step_says_what_is_missing(tmp_path):
+    """A genuine static DFT+U OUTCAR (nomad-coe/electronic-parsers, tests/data/vasp/README.md):
+    complete (its timing section is there) with a free energy but no POSITION/TOTAL-FORCE block.
+    ASE's reader fails on it ("Did not find required property positions"); driftwatch's error is
+    one line naming the file and what is missing."""
+    path = VASP / "OUTCAR_static_no_forces.xz"
+    plain = tmp_path / "OUTCAR"
+    plain.write_bytes(lzma.decompress(path.read_bytes()))
+    with pytest.raises(Exception, match="Did not find required property positions"):
+        ase.io.read(plain, format="vasp-out")
+    with pytest.raises(InputError) as e:
+        read_run(path)
+    msg = str(e.value)
+    assert "\n" not in msg and msg.startswith(str(path)) and "no completed ionic step" in msg
+    assert "complete but no ionic step has both a POSITION/TOTAL-FORCE block" in msg
+
+
 def test_errors_are_one_line_and_name_the_file(tmp_path):
     (tmp_path / "empty.out").write_text("")
     with pytest.raises(InputError, match="empty.out: empty file"):
