@@ -601,6 +601,35 @@ def make_restart_stage_folders(out_root: Path, np_: int) -> dict:
             "bytes": sum(f.stat().st_size for f in files)}
 
 
+def make_nscf_after_scf(out_root: Path, np_: int) -> dict:
+    """A non-self-consistent pw.x run (calculation='nscf', the 'Band Structure Calculation' that
+    band structures and densities of states start from) on the charge density of a two-atom Si
+    scf run; only the nscf run is kept (``pw.in``, ``pw.out``): an output with no ionic step."""
+    tree = out_root / "tests/data/qe"
+    rundir = tree / ".nscf_after_scf.partial"
+    shutil.rmtree(rundir, ignore_errors=True)
+    rundir.mkdir(parents=True)
+    base = dict(name="nscf_after_scf", tree="tests/data/qe", cell=fcc_primitive(5.43),
+                symbols=["Si", "Si"], frac=np.array([[0.0, 0.0, 0.0], [0.25, 0.25, 0.25]]),
+                kpts=(4, 4, 4, 0, 0, 0), ecutwfc=16.0, system={"occupations": "fixed"},
+                control={"disk_io": "low"})          # the scf run's charge density is kept
+    t0 = time.time()
+    (rundir / "scf.in").write_text(pw_input(QERun(calculation="scf", **base)))
+    _pw(rundir, "scf.in", "scf.out", np_)
+    nscf = QERun(calculation="nscf", **{**base, "kpts": (6, 6, 6, 0, 0, 0),
+                                         "system": {"occupations": "fixed", "nbnd": 8}})
+    (rundir / "pw.in").write_text(pw_input(nscf))
+    text = _pw(rundir, "pw.in", "pw.out", np_)
+    if "Band Structure Calculation" not in text:
+        raise RuntimeError("nscf_after_scf: pw.x did not run a band structure calculation")
+    for name in ("scf.in", "scf.out"):
+        (rundir / name).unlink()
+    files = _finish_tree(rundir, tree / "nscf_after_scf")
+    return {"name": "nscf_after_scf", "wall_s": round(time.time() - t0, 1),
+            "file": str((tree / "nscf_after_scf").relative_to(out_root)),
+            "bytes": sum(f.stat().st_size for f in files)}
+
+
 @dataclass
 class _Named:
     name: str
@@ -609,7 +638,8 @@ class _Named:
 
 
 STAGED_RUNS = {"restart_numbered": make_restart_numbered,
-               "restart_stage_folders": make_restart_stage_folders}
+               "restart_stage_folders": make_restart_stage_folders,
+               "nscf_after_scf": make_nscf_after_scf}
 
 
 # --------------------------------------------------------------------------------------

@@ -35,8 +35,9 @@ import vasp_gen
 
 DATA = Path(__file__).parent / "data"
 VASP = DATA / "vasp"
-QE_OUTS = sorted(p for p in (DATA / "qe").glob("*/pw.out*")     # one-output run folders; the
-                 if not p.parent.name.startswith("restart_"))    # multi-stage ones: test_batches_*
+QE_OUTS = sorted(p for p in (DATA / "qe").glob("*/pw.out*")     # one-output relaxations; the
+                 if not p.parent.name.startswith(("restart_", "nscf_")))  # multi-stage ones:
+QE_NSCF = DATA / "qe" / "nscf_after_scf" / "pw.out"            # test_batches_*; no ionic step
 GENUINE_VASP = [VASP / "vasprun_pstress.xml", VASP / "vasprun_dfpt.xml",
                 VASP / "OUTCAR_example_1.gz"]
 needs_qe = pytest.mark.skipif(not QE_OUTS, reason="no pw.x outputs in tests/data/qe yet")
@@ -281,6 +282,23 @@ def test_a_complete_outcar_without_an_ionic_step_says_what_is_missing(tmp_path):
     msg = str(e.value)
     assert "\n" not in msg and msg.startswith(str(path)) and "no completed ionic step" in msg
     assert "complete but no ionic step has both a POSITION/TOTAL-FORCE block" in msg
+
+
+def test_a_non_self_consistent_pw_run_is_not_truncated_but_has_no_ionic_step():
+    """A real pw.x 6.7 nscf run (tests/data/qe/README.md: made here after an scf run of Si2): its
+    header ends at 'Band Structure Calculation', not at an SCF; the file ends with JOB DONE. It has
+    no ionic step (no SCF energy), and it was not cut: the error says so, in one line naming the
+    file. ASE's reader gives the header's structure with no energy."""
+    import ase.io
+    atoms = ase.io.read(QE_NSCF, index=":", format="espresso-out")
+    assert len(atoms) == 1 and "energy" not in atoms[0].calc.results
+    text = QE_NSCF.read_text()
+    assert "Band Structure Calculation" in text and "JOB DONE" in text
+    with pytest.raises(InputError) as e:
+        read_run(QE_NSCF.parent)
+    msg = str(e.value)
+    assert "\n" not in msg and msg.startswith(str(QE_NSCF)) and "no completed ionic step" in msg
+    assert "non-self-consistent run" in msg and "truncated" not in msg
 
 
 def test_errors_are_one_line_and_name_the_file(tmp_path):

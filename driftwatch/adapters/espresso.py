@@ -52,6 +52,7 @@ __all__ = ["read_pw_out", "read_pw_input", "read_pw_in_settings", "pick_from_fol
 
 _START = "Program PWSCF"
 _SCF_START = ("Self-consistent Calculation", "iteration #", "!    total energy")
+_NSCF_START = "Band Structure Calculation"
 _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
             "Begin final coordinates", "The maximum number of steps")
@@ -275,7 +276,7 @@ def read_pw_out(path, ctx: ReadContext):
                     if not ln:
                         header = None
                         break
-                    if any(m in ln for m in _SCF_START):
+                    if any(m in ln for m in _SCF_START) or _NSCF_START in ln:
                         break
                     header.append(ln)
                 if header is None:
@@ -294,6 +295,9 @@ def read_pw_out(path, ctx: ReadContext):
                     ctx.settings.setdefault("nsym", nsym)
                 cur, pending_cell = _Config(cell, pos, numbers, nconf), None
                 cur.from_header, cur.restored = True, restored
+                if _NSCF_START in ln:
+                    ctx.warn("a non-self-consistent run ('Band Structure Calculation': "
+                             "calculation = 'nscf' or 'bands'): no SCF energy, no ionic step")
                 per_run.append(0)
                 nconf += 1
                 if "!    total energy" in ln:
