@@ -148,6 +148,25 @@ def test_task_documents_read_with_pymatgen_structures():
     assert s["ISYM"] == 2 and s["code"] == "vasp"                            # input.parameters
 
 
+def test_a_task_document_without_ionic_steps_says_what_it_is(tmp_path):
+    """Task documents with calculations but no ``output.ionic_steps`` (seen in emmet's test files:
+    molecule documents of a quantum-chemistry workflow; a static or response-function document
+    looks the same): one line naming the file, the number of calculations and what the document
+    probably is. The molecule document here is trimmed to the keys the reader looks at."""
+    mol = {"calcs_reversed": [{"initial_molecule": {"sites": []}, "output": {"final_energy": -1.0}}]}
+    static = {"calcs_reversed": [{"output": {"energy": -1.0}}, {"output": {"ionic_steps": []}}]}
+    for name, doc, kind in (("mol_task.json", mol, "a molecule's task document"),
+                            ("static_task.json", static, "a static, response-function")):
+        path = tmp_path / name
+        path.write_text(json.dumps(doc))
+        with pytest.raises(InputError) as e:
+            read_run(path)
+        msg = str(e.value)
+        assert "\n" not in msg and msg.startswith(str(path)) and kind in msg
+        n = len(doc["calcs_reversed"])
+        assert f"none of its {n} calculations holds output.ionic_steps" in msg
+
+
 # ---------------------------------------------------------------- other codes through ASE
 @pytest.mark.parametrize("name,fmt,ase_format", [
     ("ase_generic/aims_relax.out.gz", "aims-out", "aims-output"),

@@ -164,5 +164,11 @@ def read_task_doc(path, ctx: ReadContext):
                         energy=energy, forces=forces, stress=stress)
             step += 1
         stages.append((name, step - n0))
+    if not step:
+        kind = "a molecule's task document" if any(
+            "molecule" in key for c in calcs if isinstance(c, dict) for key in c) else \
+            "a static, response-function or non-VASP task document?"
+        raise InputError(path, f"no completed ionic step: none of its {len(calcs)} calculations "
+                               f"holds output.ionic_steps ({kind})")
     if len(stages) > 1:
         ctx.file_stages = stages
