@@ -604,7 +604,8 @@ def make_restart_stage_folders(out_root: Path, np_: int) -> dict:
 def make_nscf_after_scf(out_root: Path, np_: int) -> dict:
     """A non-self-consistent pw.x run (calculation='nscf', the 'Band Structure Calculation' that
     band structures and densities of states start from) on the charge density of a two-atom Si
-    scf run; only the nscf run is kept (``pw.in``, ``pw.out``): an output with no ionic step."""
+    scf run; only the nscf run is kept (``pw.in``, ``pw.out``): an output with no ionic step. It
+    goes to ``tests/data/qe_nscf`` (the tests take every folder of tests/data/qe as a relaxation)."""
     tree = out_root / "tests/data/qe"
     rundir = tree / ".nscf_after_scf.partial"
     shutil.rmtree(rundir, ignore_errors=True)
@@ -624,9 +625,10 @@ def make_nscf_after_scf(out_root: Path, np_: int) -> dict:
         raise RuntimeError("nscf_after_scf: pw.x did not run a band structure calculation")
     for name in ("scf.in", "scf.out"):
         (rundir / name).unlink()
-    files = _finish_tree(rundir, tree / "nscf_after_scf")
+    final = out_root / "tests/data/qe_nscf"
+    files = _finish_tree(rundir, final)
     return {"name": "nscf_after_scf", "wall_s": round(time.time() - t0, 1),
-            "file": str((tree / "nscf_after_scf").relative_to(out_root)),
+            "file": str(final.relative_to(out_root)),
             "bytes": sum(f.stat().st_size for f in files)}
 
 

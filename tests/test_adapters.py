@@ -35,9 +35,9 @@ import vasp_gen
 
 DATA = Path(__file__).parent / "data"
 VASP = DATA / "vasp"
-QE_OUTS = sorted(p for p in (DATA / "qe").glob("*/pw.out*")     # one-output relaxations; the
-                 if not p.parent.name.startswith(("restart_", "nscf_")))  # multi-stage ones:
-QE_NSCF = DATA / "qe" / "nscf_after_scf" / "pw.out"            # test_batches_*; no ionic step
+QE_OUTS = sorted(p for p in (DATA / "qe").glob("*/pw.out*")     # one-output run folders; the
+                 if not p.parent.name.startswith("restart_"))    # multi-stage ones: test_batches_*
+QE_NSCF = DATA / "qe_nscf" / "pw.out"                          # an output with no ionic step
 GENUINE_VASP = [VASP / "vasprun_pstress.xml", VASP / "vasprun_dfpt.xml",
                 VASP / "OUTCAR_example_1.gz"]
 needs_qe = pytest.mark.skipif(not QE_OUTS, reason="no pw.x outputs in tests/data/qe yet")
