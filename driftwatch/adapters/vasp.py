@@ -442,7 +442,7 @@ def read_outcar(path, ctx: ReadContext):
                 return
             yield from _outcar_with_ase(path, ctx, skip=step)
             return
-        _warn_if_unfinished(fd, step, ctx)
+        _warn_at_end(fd, step, ctx)
 
 
 def _outcar_with_ase(path, ctx, skip):
@@ -455,10 +455,10 @@ def _outcar_with_ase(path, ctx, skip):
             if step >= skip:
                 yield frame_from_atoms(chunk.build(), step)
             step += 1
-        _warn_if_unfinished(fd, step, ctx)
+        _warn_at_end(fd, step, ctx)
 
 
-def _warn_if_unfinished(fd, step, ctx):
+def _warn_at_end(fd, step, ctx):
     """A warning for a file without its closing timing section, or complete without a step."""
     if fd.ended and not step:
         ctx.warn("the OUTCAR is complete but no ionic step has both a POSITION/TOTAL-FORCE "
