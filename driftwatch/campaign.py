@@ -336,6 +336,11 @@ def _skip_reason(exc, run, cfg) -> dict | None:
     pbc = [bool(x) for x in run.pbc]
     if sum(pbc) <= 1:
         kind = "a molecule or cluster" if not any(pbc) else "a wire or chain"
+        if not run.cells[0].any():      # plain XYZ, or a reader that found no lattice
+            return {"reason": f"{kind} as read: the file gives no cell (pbc = {pbc}); driftwatch "
+                              f"analyses layers and bulk crystals",
+                    "include": "a file with the cell and pbc (e.g. extended XYZ with Lattice= "
+                               "and pbc=)"}
         return {"reason": f"{kind}: periodic along {sum(pbc)} axes (pbc = {pbc}); driftwatch "
                           f"analyses layers and bulk crystals",
                 "include": "write the file with pbc True along the periodic axes (driftwatch "

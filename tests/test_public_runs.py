@@ -272,6 +272,26 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         read_run(DOUBLE).position_precision)
 
 
+def test_a_file_without_a_cell_is_skipped_with_advice_that_fits_it(tmp_path):
+    """ASE's own FHI-aims MD output (ase/test/testdata/aims/md.out in the installed ASE): ASE's
+    reader gives no cell (all zero) and pbc False. driftwatch skips it, saying the file gives no
+    cell and what would include it (not "write pbc True", which a cell-less file cannot use); a
+    cell with pbc False (GPAW's H2 in a box, tests/data/public) keeps the pbc advice."""
+    import ase
+    from driftwatch import config
+    from driftwatch.campaign import analyse_run
+    md = Path(ase.__file__).parent / "test" / "testdata" / "aims" / "md.out"
+    atoms = ase.io.read(md, index=-1, format="aims-output")
+    assert not atoms.pbc.any() and not atoms.cell.array.any()                  # ASE's reading
+    cfg = config.load()
+    out = analyse_run("md", str(md), cfg)
+    assert not out["ok"] and "the file gives no cell" in out["skipped"]["reason"]
+    assert "Lattice=" in out["skipped"]["include"]
+    box = analyse_run("h2", str(PUB / "ase_generic" / "gpaw_h2.txt"), cfg)
+    assert "periodic along 0 axes" in box["skipped"]["reason"]
+    assert "pbc True" in box["skipped"]["include"]
+
+
 # ---------------------------------------------------------------- position precision, settings
 def test_position_precision_follows_the_printed_digits(tmp_path):
     """OUTCAR prints cartesian positions with 5 decimals: sqrt(3) x 0.5e-5 Å; vasprun.xml
