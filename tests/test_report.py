@@ -327,6 +327,16 @@ def test_campaign_summary_failed_runs_listed_escaped(real_records, tmp_path):
     assert "truncated &lt;b&gt;file&lt;/b&gt;" in section
     assert "<script>alert" not in text
     assert "runs (audit summary)" in text
+    # in the runs table, an error that starts with a long path names the file only (the whole
+    # text stays in the row's title and in the section above)
+    long = {"run": "deep", "source": "/a/" + "b" * 150, "error": "/a/" + "b" * 150 +
+            "/vasprun.xml: no completed ionic step (the reason)"}
+    text = build(list(real_records.values()), tmp_path / "site2",
+                 campaign={"runs": 1, "failed": [long]}).read_text(encoding="utf-8")
+    row = text[text.index('<span class="mono">deep</span>'):]
+    row = row[:row.index("</tr>")]
+    assert ">vasprun.xml: no completed ionic step (the reason)</span>" in row
+    assert f'title="{long["error"]}"' in row
 
 
 def test_flag_counts_match_records(report, real_records):

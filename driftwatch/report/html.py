@@ -838,7 +838,9 @@ def _runs_table(runs, failed=(), skipped=()):
         why = f.get("error") if kind == "failed" else f"{f.get('reason')} (to include: " \
                                                         f"{f.get('include')})"
         why = str(why or "")
-        short = why if len(why) <= 120 else why[:117] + "…"
+        head, sep, rest = why.partition(": ")     # the table names the file, not its whole path
+        short = f"{head.rsplit('/', 1)[-1]}: {rest}" if sep and "/" in head else why
+        short = short if len(short) <= 120 else short[:117] + "…"
         rows.append((str(f.get("run") or ""),
                      f'<tr><td class="err"><span class="mono">{e(f.get("run"))}</span><br>'
                     f'<span class="muted" title="{e(why)}">{e(short)}</span></td><td>—</td>'
