@@ -249,6 +249,10 @@ def test_a_calculation_without_a_structure_is_not_an_ionic_step(tmp_path):
         warnings.simplefilter("ignore")
         ref = Vasprun(str(gw), parse_dos=False, parse_eigen=False, parse_potcar_file=False)
     assert [s["structure"] for s in ref.ionic_steps] == [None]
+    plain = tmp_path / "gw.xml"
+    plain.write_bytes(lzma.decompress(gw.read_bytes()))
+    with pytest.raises(TypeError):                     # ASE's reader (3.29): 'NoneType' ...
+        ase.io.read(plain, index=":", format="vasp-xml")
     with pytest.raises(InputError) as e:
         read_run(gw)
     msg = str(e.value)
@@ -289,7 +293,6 @@ def test_a_non_self_consistent_pw_run_is_not_truncated_but_has_no_ionic_step():
     header ends at 'Band Structure Calculation', not at an SCF; the file ends with JOB DONE. It has
     no ionic step (no SCF energy), and it was not cut: the error says so, in one line naming the
     file. ASE's reader gives the header's structure with no energy."""
-    import ase.io
     atoms = ase.io.read(QE_NSCF, index=":", format="espresso-out")
     assert len(atoms) == 1 and "energy" not in atoms[0].calc.results
     text = QE_NSCF.read_text()

@@ -272,7 +272,7 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         read_run(DOUBLE).position_precision)
 
 
-def test_a_file_without_a_cell_is_skipped_with_advice_that_fits_it(tmp_path):
+def test_a_file_without_a_cell_is_skipped_with_advice_that_fits_it():
     """ASE's own FHI-aims MD output (ase/test/testdata/aims/md.out in the installed ASE): ASE's
     reader gives no cell (all zero) and pbc False. driftwatch skips it, saying the file gives no
     cell and what would include it (not "write pbc True", which a cell-less file cannot use); a
