@@ -53,6 +53,7 @@ __all__ = ["read_pw_out", "read_pw_input", "read_pw_in_settings", "pick_from_fol
 _START = "Program PWSCF"
 _SCF_START = ("Self-consistent Calculation", "iteration #", "!    total energy")
 _NSCF_START = "Band Structure Calculation"
+_HEADER_END = (*_SCF_START, _NSCF_START)     # where a run's header ends (an nscf run has no SCF)
 _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
             "Begin final coordinates", "The maximum number of steps")
@@ -276,7 +277,7 @@ def read_pw_out(path, ctx: ReadContext):
                     if not ln:
                         header = None
                         break
-                    if any(m in ln for m in _SCF_START) or _NSCF_START in ln:
+                    if any(m in ln for m in _HEADER_END):
                         break
                     header.append(ln)
                 if header is None:
@@ -504,7 +505,7 @@ def _header_structure(path):
     lines = []
     with Lines(path) as fh:
         for line in fh:
-            if any(m in line for m in _SCF_START):
+            if any(m in line for m in _HEADER_END):
                 break
             lines.append(line)
     try:
