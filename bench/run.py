@@ -458,7 +458,8 @@ def section_audit(a):
                     f"{c_spg_before:.2f}, after {c_spg_after:.2f}): whole process x"
                     f"{c_cold / c_spg:.2f}, analysis (audit minus report) x{analysis / c_spg:.2f}"
                     f" of it; spglib inside the audit process {c_in:.2f} s over {n_in} calls: "
-                    f"whole process x{c_cold / c_in:.2f} of it; verdicts equal to naive on {checked - bad}/{checked} frames"
+                    f"whole process x{c_cold / c_in:.2f} of it; verdicts equal to naive on "
+                    f"{checked - bad}/{checked} frames"
                     + ref_note + f"; load {load():.1f}")
                 for note in notes:
                     print("      verdict differs:", note)

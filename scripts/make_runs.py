@@ -625,7 +625,7 @@ def make_nscf_after_scf(out_root: Path, np_: int) -> dict:
         raise RuntimeError("nscf_after_scf: pw.x did not run a band structure calculation")
     for name in ("scf.in", "scf.out"):
         (rundir / name).unlink()
-    final = out_root / "tests/data/qe_nscf"
+    final = out_root / STAGED_RUNS["nscf_after_scf"][0]
     files = _finish_tree(rundir, final)
     return {"name": "nscf_after_scf", "wall_s": round(time.time() - t0, 1),
             "file": str(final.relative_to(out_root)),
@@ -639,9 +639,10 @@ class _Named:
     note: str
 
 
-STAGED_RUNS = {"restart_numbered": make_restart_numbered,
-               "restart_stage_folders": make_restart_stage_folders,
-               "nscf_after_scf": make_nscf_after_scf}
+STAGED_RUNS = {"restart_numbered": ("tests/data/qe", make_restart_numbered),
+               "restart_stage_folders": ("tests/data/qe", make_restart_stage_folders),
+               "nscf_after_scf": ("tests/data/qe_nscf", make_nscf_after_scf)}
+"""name -> (the folder it goes to, its maker)."""
 
 
 # --------------------------------------------------------------------------------------
@@ -798,8 +799,8 @@ def main(argv=None) -> int:
     if args.np not in (1, 2):
         ap.error("--np must be 1 or 2 (the machine is shared)")
     runs = [("qe", r) for r in QE_RUNS] + [("ase", r) for r in ASE_RUNS] + \
-        [("qe-restarts", _Named(n, "tests/data/qe", (f.__doc__ or "").split("\n")[0]))
-         for n, f in STAGED_RUNS.items()] + \
+        [("qe-restarts", _Named(n, tree, (f.__doc__ or "").split("\n")[0]))
+         for n, (tree, f) in STAGED_RUNS.items()] + \
         [("batch", _Named("batch", "tests/data/batch", "six EMT relaxations in one extxyz and one "
                                                         "ase.db, and initial/final pairs"))]
     if args.list:
@@ -824,7 +825,7 @@ def main(argv=None) -> int:
         if kind == "qe":
             res = run_qe(r, args.out, args.np)
         elif kind == "qe-restarts":
-            res = STAGED_RUNS[r.name](args.out, args.np)
+            res = STAGED_RUNS[r.name][1](args.out, args.np)
         elif kind == "batch":
             res = make_batch(args.out)
             print(f"  frames per relaxation: {res['frames']}")

@@ -460,15 +460,15 @@ def _outcar_with_ase(path, ctx, skip):
 
 def _warn_at_end(fd, step, ctx):
     """A warning for a file without its closing timing section, or complete without a step."""
-    if fd.ended and not step:
-        ctx.warn("the OUTCAR is complete but no ionic step has both a POSITION/TOTAL-FORCE "
-                 "block and the free energy (a GW, response-function or force-less static run?)")
     if not fd.ended:
         where = f"after step {step - 1} ({step} completed steps)" if step else \
             "before the first ionic step completed"
         extra = "; last line cut" if fd.cut else ""
         ctx.warn(f"truncated {where}: no closing timing section{extra}; "
                  f"job killed or still running")
+    elif not step:
+        ctx.warn("the OUTCAR is complete but no ionic step has both a POSITION/TOTAL-FORCE "
+                 "block and the free energy (a GW, response-function or force-less static run?)")
 
 
 # ---------------------------------------------------------------- XDATCAR
