@@ -377,7 +377,7 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
                      "numbers": [int(z) for z in run.numbers], "pbc": [bool(p) for p in run.pbc]}
         return {"run": run_id, "source": path, "ok": True,
                 "record_text": records.dumps(rec) + "\n", "inputs": [list(x) for x in ctx.inputs()],
-                "structure": structure, "timing": json.loads(records.dumps(timing, indent=None))}
+                "structure": structure, "timing": json.loads(records.dumps(timing, indent=False))}
     except Exception as exc:  # noqa: BLE001 - a worker must never raise
         # A file that could not be opened (permissions, I/O) or memory exhaustion may go away:
         # do not cache those. Everything else is a property of the inputs and this version.

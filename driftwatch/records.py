@@ -79,9 +79,28 @@ def _plain(obj):
     return _plain(_default(obj))
 
 
-def dumps(record: dict, indent: int | None = 1) -> str:
-    """Standard JSON text of a record (numpy scalars converted, non-finite numbers as null)."""
-    return json.dumps(_plain(record), indent=indent, allow_nan=False)
+_ONE_LINE = json.JSONEncoder(allow_nan=False, separators=(", ", ": "))   # C encoder (no indent)
+_OPEN_LEVELS = 2
+
+
+def _layout(obj, pad: str = "") -> str:
+    """``obj`` (plain JSON values) as text: the top two levels of dicts and lists open one line per
+    item, indented one space per level; each value below (a frame's entry, a column of numbers)
+    is one line, written by the standard library's C encoder."""
+    if len(pad) < _OPEN_LEVELS and obj and type(obj) in (dict, list):
+        inner = pad + " "
+        if type(obj) is dict:
+            rows = [f"{inner}{_ONE_LINE.encode(k)}: {_layout(v, inner)}" for k, v in obj.items()]
+            return "{\n" + ",\n".join(rows) + f"\n{pad}}}"
+        return "[\n" + ",\n".join(inner + _layout(v, inner) for v in obj) + f"\n{pad}]"
+    return _ONE_LINE.encode(obj)
+
+
+def dumps(record: dict, indent: bool = True) -> str:
+    """Standard JSON text of a record (numpy scalars converted, non-finite numbers as null).
+    ``indent``: the top two levels one line per item (:func:`_layout`); False: one line."""
+    plain = _plain(record)
+    return _layout(plain, "") if indent else _ONE_LINE.encode(plain)
 
 
 TEMP_PREFIX = ".driftwatch-"

@@ -177,9 +177,20 @@ def test_record_json_is_what_the_standard_encoder_writes(hex_record):
         return x
     for obj, want in ((odd, finite(ref)), (hex_record, finite(json.loads(json.dumps(
             hex_record, default=lambda o: o.tolist()))))):
-        for indent in (None, 1):
-            assert records.dumps(obj, indent=indent) == json.dumps(want, indent=indent,
-                                                                   allow_nan=False)
+        assert records.dumps(obj, indent=False) == json.dumps(want, allow_nan=False)
+        text = records.dumps(obj)
+        assert json.loads(text) == want
+        # the layout: one line per item of the top two levels, each deeper value on one line
+        # exactly as the standard encoder writes it
+        lines = [line.rstrip(",") for line in text.splitlines()]
+        assert lines[0] == "{" and lines[-1] == "}"
+        for key, value in want.items():
+            if not isinstance(value, (dict, list)) or not value:
+                assert f" {json.dumps(key)}: {json.dumps(value)}" in lines
+                continue
+            for k, v in (value.items() if isinstance(value, dict) else enumerate(value)):
+                head = f"  {json.dumps(k)}: " if isinstance(value, dict) else "  "
+                assert head + json.dumps(v) in lines, (key, k)
     with pytest.raises(TypeError):
         records.dumps({"x": object()})
 
