@@ -189,8 +189,8 @@ def discover(roots, *, include=(), exclude=(), skip=(),
     """Runs under ``roots`` (folders or files) and failed entries for what could not be searched.
 
     A file of many relaxations (an extended XYZ or ase.db whose frames name their structure by one
-    of ``structure_keys``, default ``adapters.batch.STRUCTURE_KEYS``) gives one run per structure,
-    id and path ``FILE::NAME``.
+    of ``structure_keys``, default ``adapters.batch.STRUCTURE_KEYS``; a JSON list of task
+    documents) gives one run per structure, id and path ``FILE::NAME``.
 
     Args:
         roots: folders or files.

@@ -148,6 +148,45 @@ def test_task_documents_read_with_pymatgen_structures():
     assert s["ISYM"] == 2 and s["code"] == "vasp"                            # input.parameters
 
 
+def test_a_list_of_task_documents_is_one_run_per_document(tmp_path):
+    """A JSON list of task documents (a database export) made of the two genuine documents above:
+    an audit finds one run per document, named FILE::task_id, each with the frames of that document
+    read alone (themselves equal to pymatgen's, above); the file read whole is a one-line error
+    listing the names, and without usable task_ids the documents are named by position."""
+    docs = [json.loads(gzip.decompress((PUB / "task_docs" / n).read_bytes()))
+            for n in ("GaLa.task.json.gz", "task_doc_mp-2766060.json.gz")]
+    export = tmp_path / "campaign" / "tasks.json"
+    export.parent.mkdir()
+    export.write_text(json.dumps(docs))
+    ids = [d["task_id"] for d in docs]
+    assert registry.structures(export) == ids
+    runs, failed = discover([export.parent])
+    assert not failed and sorted(r.id for r in runs) == sorted(f"campaign/tasks.json::{t}" for t in ids)
+    for t, name in zip(ids, ("GaLa.task.json.gz", "task_doc_mp-2766060.json.gz")):
+        one, alone = read_run(f"{export}::{t}"), read_run(PUB / "task_docs" / name)
+        assert one.format == "task-doc" and one.source.endswith(f"::{t}")
+        np.testing.assert_array_equal(one.positions, alone.positions)
+        np.testing.assert_array_equal(one.cells, alone.cells)
+        np.testing.assert_array_equal(one.energies, alone.energies)
+    with pytest.raises(InputError) as e:
+        read_run(export)
+    msg = str(e.value)
+    assert "\n" not in msg and msg.startswith(str(export)) and "holds 2 task documents" in msg
+    assert f"'{export}::{ids[0]}'" in msg
+    with pytest.raises(InputError, match="no task document named 'mp-0'"):
+        read_run(f"{export}::mp-0")
+    for d in docs:
+        del d["task_id"]
+    export.write_text(json.dumps(docs))
+    assert registry.structures(export) == ["doc-1", "doc-2"]
+    np.testing.assert_array_equal(read_run(f"{export}::doc-2").positions, alone.positions)
+    export.write_text(json.dumps(docs[:1]))                      # a list of one: that document
+    assert registry.structures(export) == [] and len(read_run(export)) == 10
+    export.write_text(json.dumps([docs[0], 3]))
+    with pytest.raises(InputError, match="item 2 of the list is not a task document"):
+        read_run(export)
+
+
 def test_a_task_document_without_ionic_steps_says_what_it_is(tmp_path):
     """Task documents with calculations but no ``output.ionic_steps`` (seen in emmet's test files:
     molecule documents of a quantum-chemistry workflow; a static or response-function document

@@ -10,6 +10,7 @@ cannot be streamed: the file is loaded whole.
 from __future__ import annotations
 
 import json
+import os
 
 import numpy as np
 
@@ -17,7 +18,7 @@ from ..errors import InputError
 from ._io import open_bytes
 from .run import Frame, ReadContext
 
-__all__ = ["read_structures", "read_task_doc"]
+__all__ = ["read_structures", "read_task_doc", "task_doc_names"]
 
 
 def _items(data, path, ctx):
@@ -116,17 +117,81 @@ def _pmg_structure(item, path, where):
             np.array(st.atomic_numbers, int), np.array(pbc, bool))
 
 
+_LISTS: dict = {}
+"""The one list of task documents parsed last, keyed by (path, size, mtime): an audit reads each
+member of a list file once, so the file is parsed once per process, not once per member."""
+
+
+def _is_list(path) -> bool:
+    """Whether the file's JSON value is a list (its first non-blank byte is ``[``)."""
+    with open_bytes(path) as fh:
+        return fh.read(4096).lstrip()[:1] == b"["
+
+
+def _task_list(path) -> list:
+    st = os.stat(path)
+    key = (os.fspath(path), st.st_size, st.st_mtime_ns)
+    if key not in _LISTS:
+        _LISTS.clear()
+        _LISTS[key] = _load_json(path)
+    return _LISTS[key]
+
+
+def _task_names(docs: list, path) -> list[str]:
+    """A name for each document of a list: its ``task_id`` when every document has a distinct one,
+    otherwise its position ``doc-1``, ``doc-2``, ... (in file order)."""
+    if not all(isinstance(d, dict) for d in docs):
+        bad = next(i for i, d in enumerate(docs) if not isinstance(d, dict))
+        raise InputError(path, f"item {bad + 1} of the list is not a task document (a JSON "
+                               f"{type(docs[bad]).__name__}, not an object)")
+    ids = [d.get("task_id") for d in docs]
+    names = [str(t) for t in ids]
+    if any(t is None or t == "" for t in ids) or len(set(names)) != len(names):
+        names = [f"doc-{i + 1}" for i in range(len(docs))]
+    return names
+
+
+def task_doc_names(path, structure_keys=()) -> list[str]:
+    """The names of the task documents a JSON list holds (``FILE::NAME`` reads one); [] for a
+    file holding one document."""
+    return _task_names(_task_list(path), path) if _is_list(path) else []
+
+
+def _chosen_document(path):
+    """The document ``path`` (``FILE`` or ``FILE::NAME``) names: the file's own, the list's only
+    member, or the member NAME. A list of several read whole is refused with the names."""
+    from .batch import SEPARATOR, _listing, split
+    base, name = split(str(path))
+    if name is None and not _is_list(base):
+        return _load_json(base)
+    docs = _task_list(base)
+    if not isinstance(docs, list):
+        raise InputError(base, f"holds one task document; '{SEPARATOR}{name}' names a member of "
+                               f"a JSON list of task documents")
+    if not docs:
+        raise InputError(base, "an empty list: no task document to read")
+    names = _task_names(docs, base)
+    if name is None:
+        if len(docs) == 1:
+            return docs[0]
+        raise InputError(base, f"holds {len(docs)} task documents ({_listing(names)}): read one as "
+                               f"FILE{SEPARATOR}NAME, e.g. '{base}{SEPARATOR}{names[0]}'; an audit "
+                               f"lists each")
+    if name not in names:
+        raise InputError(base, f"no task document named {name!r} in the list ({_listing(names)})")
+    return docs[names.index(name)]
+
+
 def read_task_doc(path, ctx: ReadContext):
     """A workflow task document (as the Materials Project's workflow tools store them): JSON or
     JSON.gz with ``calcs_reversed[].output.ionic_steps[]`` (``structure``, ``e_fr_energy``,
     ``forces``, ``stress`` in kBar). The calculations run oldest first (``calcs_reversed`` is newest
-    first); each is a stage, steps numbered on across them. A list of documents is refused (give
-    one document per file). Structures are built with pymatgen from the plain fields."""
+    first); each is a stage, steps numbered on across them. A JSON list of documents (a database
+    export) holds one run per document, read as ``FILE::NAME`` (:func:`task_doc_names`).
+    Structures are built with pymatgen from the plain fields."""
     from ase.units import GPa
-    doc = _load_json(path)
-    if isinstance(doc, list):
-        raise InputError(path, f"a list of {len(doc)} task documents: driftwatch reads one "
-                               f"document per file")
+    doc = _chosen_document(path)
+    path = str(path)
     calcs = doc.get("calcs_reversed") if isinstance(doc, dict) else None
     if not isinstance(calcs, list) or not calcs:
         raise InputError(path, "no calcs_reversed list: not a task document with ionic steps")

@@ -579,7 +579,9 @@ register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite
                      "file.db::NAME one structure)", members=_A + "batch:db_names")
 register("task-doc", _A + "pymatgen_json:read_task_doc", globs=("*task*.json",),
          magic=rb'"calcs_reversed"\s*:', description="workflow task document (JSON; "
-                                                    "calcs_reversed[].output.ionic_steps)")
+                                                    "calcs_reversed[].output.ionic_steps; a list of "
+                                                    "them: file::TASK_ID one document)",
+         members=_A + "pymatgen_json:task_doc_names")
 register("pymatgen-json", _A + "pymatgen_json:read_structures", globs=(),
          magic=rb'"@class"\s*:\s*"Structure"', description="pymatgen Structure list in JSON")
 register("ase-json-db", _A + "ase_native:read_db", globs=(),
