@@ -6,17 +6,23 @@ Exit codes (all subcommands):
   2  usage error (bad options)
   3  a flag listed in ``--reject-on`` (or the config's ``reject_on``) was raised
   4  audit only: finished, but some runs could not be analysed (see the summary)
+  141  the reader of standard output went away (``| head``); nothing more is printed
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_GATED, EXIT_PARTIAL = 0, 1, 2, 3, 4
+EXIT_PIPE = 141
+"""The reader of standard output went away (``driftwatch inspect ... | head``): what a shell
+reports for a tool stopped by SIGPIPE; nothing is printed."""
 
 _EPILOG = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
-3 a flag named in --reject-on was raised, 4 (audit) some runs failed.
+3 a flag named in --reject-on was raised, 4 (audit) some runs failed,
+141 standard output closed early (| head): the rest is not printed.
 Verdicts: gained, lost, changed or kept symmetry (lattice and spglib group).
 Flags are diagnostics to check, not proofs of stability or of a phase."""
 
@@ -347,7 +353,12 @@ def main(argv=None) -> int:
         parser.print_help()
         return EXIT_USAGE
     try:
-        return _COMMANDS[args.command](args)
+        code = _COMMANDS[args.command](args)
+        sys.stdout.flush()            # a closed pipe shows here, not as a warning at exit
+        return code
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())   # nothing left to flush
+        return EXIT_PIPE
     except KeyboardInterrupt:
         print("driftwatch: interrupted", file=sys.stderr)
         return 130

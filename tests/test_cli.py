@@ -33,6 +33,19 @@ def test_every_subcommand_has_help_with_examples_and_exit_codes(sub):
     assert "examples:" in r.stdout and "exit codes" in r.stdout and "--json" in r.stdout
 
 
+def test_a_reader_that_goes_away_stops_the_output_quietly():
+    """``driftwatch inspect RUN | true``: the reader has exited before anything is written, so
+    every write hits a closed pipe. The command stops with 141 (what a shell reports for a tool
+    stopped by SIGPIPE; common practice for Unix filters) and prints no error or traceback."""
+    for args in (["inspect", QE / "layer_oblique_to_hex"], ["inspect", QE / "layer_oblique_to_hex",
+                                                           "--json"], ["formats"]):
+        proc = subprocess.Popen([sys.executable, "-m", "driftwatch", *map(str, args)],
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        proc.stdout.close()                           # the reader is gone before the first write
+        err = proc.stderr.read().decode()
+        assert proc.wait(timeout=300) == 141 and err == "", (args, err)
+
+
 def test_inspect_table_json_and_gate(tmp_path):
     run = QE / "layer_oblique_to_hex"
     r = dw("inspect", run)
