@@ -152,9 +152,9 @@ def _plain_positions(header, rows, cell, alat):
 
     Same unit rules; the card's numbers converted in one block instead of ASE's ``infix_float``
     (``float(text)`` for text without brackets, through a slow expression evaluator), and ASE's
-    per-atom ``np.dot(row, m)`` done for all rows in its order of operations (the same bits:
-    ``tests/test_adapters.py`` compares with ASE bit for bit). Returns None for anything
-    else (expressions, ``crystal_sg``, missing alat, malformed rows) so that ASE reads it.
+    per-atom ``np.dot(row, m)`` done for all rows in one product (the same bits with the numpy
+    of the test run: ``tests/test_adapters.py`` compares with ASE bit for bit). Returns None for
+    anything else (expressions, ``crystal_sg``, missing alat, malformed rows) so that ASE reads it.
     """
     low = header.lower()
     if "crystal_sg" in low:
@@ -179,9 +179,9 @@ def _plain_positions(header, rows, cell, alat):
         return None
     if c.shape != (len(rows), 3):
         return None
-    m = np.asarray(m, float)
-    # ASE's per-row np.dot(row, m), in the same order of operations: the same bits
-    return c[:, :1] * m[0] + c[:, 1:2] * m[1] + c[:, 2:3] * m[2]
+    # ASE's per-row np.dot(row, m) as one product: numpy rounds both alike (numpy 2.4; older
+    # numpy summed a vector-matrix dot left to right, one ulp away from this)
+    return c @ np.asarray(m, float)
 
 
 def _note_rounding(ctx: ReadContext, header: str, row: str, alat) -> None:
