@@ -1,7 +1,7 @@
 """Where an audit's CPU goes once the process has started: reading, the analysis besides spglib,
 spglib itself, and the audit around them (records, runs.db, tables, the report).
 
-    python bench/where_time_goes.py                  # 9 variable-cell 48-atom runs (bench/run.py's)
+    python bench/where_time_goes.py                  # 36 variable-cell 48-atom runs (bench/run.py's)
     python bench/where_time_goes.py --cell fc --atoms 192 --mode screen --rounds 3
 
 Everything is imported (ASE's database, driftwatch, the report) and the lattice tables are built
@@ -33,7 +33,7 @@ def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--cell", choices=("vc", "fc"), default="vc")
     p.add_argument("--atoms", type=int, default=48)
-    p.add_argument("--runs", type=int, default=None, help="default: 9 (vc) or 3 (fc), as bench/run.py")
+    p.add_argument("--runs", type=int, default=None, help="default: as bench/run.py (vc: 36 at 48 atoms, else 9; fc: 3)")
     p.add_argument("--mode", choices=("default", "screen", "every"), default="default",
                    help="bench/run.py's mode (its config: the preset, 8 common symprecs)")
     p.add_argument("--rounds", type=int, default=2)
@@ -45,7 +45,7 @@ def main(argv=None) -> int:
     from driftwatch import adapters, lattice3d, symmetry, track
     from driftwatch.campaign import audit
 
-    runs = a.runs or (9 if a.cell == "vc" else 3)
+    runs = a.runs or ((36 if a.atoms == 48 else 9) if a.cell == "vc" else 3)
     paths = make_inputs.make_mixed(Path(a.inputs), a.cell, a.atoms, runs, 50)
     root = make_inputs.mixed_dir(Path(a.inputs), a.cell, a.atoms)
     cfg = bench_config(a.mode, a.inputs)
