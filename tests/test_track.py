@@ -163,7 +163,7 @@ def test_record_json_is_what_the_standard_encoder_writes(hex_record):
     # writes for the same values once numpy types, tuples and non-finite numbers are made plain
     # (the reference here is the standard library: json.dumps, then json.loads to read it back).
     odd = {"a": np.float64(1.5), "b": [np.int64(3), np.nan, float("inf"), np.float32(0.25)],
-           1: "key", 2.5: None, True: (1, np.array([[1.0, np.nan], [2.0, 3.0]])),
+           1: "key", 2.5: None, False: (1, np.array([[1.0, np.nan], [2.0, 3.0]])),
            "p": Path("/x"), "ok": np.bool_(True), "s": "é"}
     ref = json.loads(json.dumps(odd, default=lambda o: o.tolist() if hasattr(o, "tolist") else str(o)))
 
