@@ -927,16 +927,23 @@ def displacement_to_group(cell, positions, numbers, symprec, *, angle_tolerance=
     """
     lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
     layer = vacuum_axis is not None
-    ds, rot, _, shift, complete = _projection(lattice, frac, nums, float(symprec),
-                                                 float(angle_tolerance), layer)
-    norms = np.linalg.norm(shift, axis=1)
+    ds, _ = _dataset(lattice, frac, nums, float(symprec), float(angle_tolerance), layer)
+    if ds is not None and len(ds.rotations) == 1:
+        # the identity alone (P1 / p1, no pure translation): every configuration is symmetric
+        rms = peak = strain = 0.0
+        worst, operations, complete = 0, 1, True
+    else:
+        ds, rot, _, shift, complete = _projection(lattice, frac, nums, float(symprec),
+                                                  float(angle_tolerance), layer)
+        norms = np.linalg.norm(shift, axis=1)
+        rms, peak = float(np.sqrt(np.mean(norms ** 2))), float(norms.max())
+        worst = int(np.argmax(norms))
+        strain, operations = _strain_norm(lattice, rot, layer), int(len(rot))
     return {
         "group": int(ds.number), "symbol": str(ds.international),
         "symprec": float(symprec), "angle_tolerance": float(angle_tolerance),
-        "rms": float(np.sqrt(np.mean(norms ** 2))), "max": float(norms.max()),
-        "max_atom": int(np.argmax(norms)),
-        "strain": _strain_norm(lattice, rot, layer),
-        "operations": int(len(rot)), "complete": bool(complete),
+        "rms": rms, "max": peak, "max_atom": worst, "strain": strain,
+        "operations": operations, "complete": bool(complete),
     }
 
 

@@ -250,6 +250,27 @@ def test_no_deprecation_warning_leaks():
 
 
 # ---------------------------------------------------------------- displacement to a group
+@pytest.mark.parametrize("vacuum_axis", [None, 2])
+def test_displacement_to_p1_is_zero_as_the_projection_gives(vacuum_axis):
+    """Where spglib finds only the identity (P1 / layer group p1, its dataset with one operation),
+    the displacement is answered without projecting: zero, as the Reynolds average over the
+    identity alone gives (checked here through the general projection on the same structure)."""
+    rng = np.random.default_rng(7)
+    cell = np.diag([4.1, 4.6, 5.3]) + rng.normal(scale=0.2, size=(3, 3))
+    if vacuum_axis is not None:
+        cell[2] = [0.0, 0.0, 21.0]
+        cell[:2, 2] = 0.0
+    frac = rng.random((7, 3)) * ([1, 1, 0.2] if vacuum_axis is not None else 1)
+    pos, numbers = frac @ cell, [8, 8, 22, 22, 22, 3, 8]
+    d = S.displacement_to_group(cell, pos, numbers, symprec=1e-4, vacuum_axis=vacuum_axis)
+    assert d["group"] == 1 and d["operations"] == 1 and d["complete"]       # spglib: P1 / p1
+    assert d["rms"] == d["max"] == d["strain"] == 0.0 and d["max_atom"] == 0
+    lattice, f, nums = S._prepare(cell, pos, numbers, vacuum_axis)
+    _, rot, _, shift, complete = S._projection(lattice, f, nums, 1e-4, -1.0, vacuum_axis is not None)
+    assert len(rot) == 1 and complete and not shift.any()
+    assert S._strain_norm(lattice, rot, vacuum_axis is not None) < 1e-15
+
+
 def test_one_moved_atom_in_fcc_known_displacement():
     # 32-atom fcc Al supercell, atom 0 moved by delta along u. Under the full Fm-3m group with the
     # 32 lattice translations, the Reynolds average sends any nearby configuration to the ideal
