@@ -137,9 +137,9 @@ def _task_list(path) -> list:
     return _LISTS[key]
 
 
-def _task_names(docs: list, path) -> list[str]:
-    """A name for each document of a list: its ``task_id`` when every document has a distinct one,
-    otherwise its position ``doc-1``, ``doc-2``, ... (in file order)."""
+def _task_names(docs: list, path) -> tuple[list[str], str]:
+    """A name for each document of a list, and what names them: its ``task_id`` when every
+    document has a distinct one, otherwise its ``position`` ``doc-1``, ``doc-2``, ... (file order)."""
     if not all(isinstance(d, dict) for d in docs):
         bad = next(i for i, d in enumerate(docs) if not isinstance(d, dict))
         raise InputError(path, f"item {bad + 1} of the list is not a task document (a JSON "
@@ -147,19 +147,20 @@ def _task_names(docs: list, path) -> list[str]:
     ids = [d.get("task_id") for d in docs]
     names = [str(t) for t in ids]
     if any(t is None or t == "" for t in ids) or len(set(names)) != len(names):
-        names = [f"doc-{i + 1}" for i in range(len(docs))]
-    return names
+        return [f"doc-{i + 1}" for i in range(len(docs))], "position"
+    return names, "task_id"
 
 
 def task_doc_names(path, structure_keys=()) -> list[str]:
     """The names of the task documents a JSON list holds (``FILE::NAME`` reads one); [] for a
     file holding one document."""
-    return _task_names(_task_list(path), path) if _is_list(path) else []
+    return _task_names(_task_list(path), path)[0] if _is_list(path) else []
 
 
-def _chosen_document(path):
+def _chosen_document(path, ctx: ReadContext):
     """The document ``path`` (``FILE`` or ``FILE::NAME``) names: the file's own, the list's only
-    member, or the member NAME. A list of several read whole is refused with the names."""
+    member, or the member NAME (then ``ctx.structure`` says which, as for other many-structure
+    files). A list of several read whole is refused with the names."""
     from .batch import SEPARATOR, _listing, split
     base, name = split(str(path))
     if name is None and not _is_list(base):
@@ -170,7 +171,7 @@ def _chosen_document(path):
                                f"a JSON list of task documents")
     if not docs:
         raise InputError(base, "an empty list: no task document to read")
-    names = _task_names(docs, base)
+    names, key = _task_names(docs, base)
     if name is None:
         if len(docs) == 1:
             return docs[0]
@@ -179,6 +180,7 @@ def _chosen_document(path):
                                f"lists each")
     if name not in names:
         raise InputError(base, f"no task document named {name!r} in the list ({_listing(names)})")
+    ctx.structure = {"key": key, "value": name, "structures": len(docs)}
     return docs[names.index(name)]
 
 
@@ -190,7 +192,7 @@ def read_task_doc(path, ctx: ReadContext):
     export) holds one run per document, read as ``FILE::NAME`` (:func:`task_doc_names`).
     Structures are built with pymatgen from the plain fields."""
     from ase.units import GPa
-    doc = _chosen_document(path)
+    doc = _chosen_document(path, ctx)
     path = str(path)
     calcs = doc.get("calcs_reversed") if isinstance(doc, dict) else None
     if not isinstance(calcs, list) or not calcs:
