@@ -48,6 +48,9 @@ MODES = ("default", "screen", "every")
 #: The implementation before issue 18 (spectra with brackets on every checked frame): the
 #: reference whose flags and verdicts every mode must reproduce (--reference).
 REFERENCE = "aaaf488"
+VC_RUNS, FC_RUNS, TARGET_RUNS = 9, 3, 36
+"""Runs per audit campaign (full run): variable-cell, fixed-cell, and the 48-atom variable-cell
+campaign the targets read (large enough that the fixed start-up weighs as in a campaign)."""
 ROWS: list[dict] = []
 CHILD_ENV = dict(os.environ, PYTHONPATH=str(ROOT), PYTHONWARNINGS="ignore")
 
@@ -871,8 +874,8 @@ def main(argv=None):
         a.observer_steps, a.observer_repeats = 60, 1
     else:
         a.runs, a.parse_runs, a.sizes_default = 40, 40, list(make_inputs.SIZES)
-        a.vc_runs, a.fc_runs = a.vc_runs or 9, a.fc_runs or 3
-        a.target_runs = a.target_runs or 36
+        a.vc_runs, a.fc_runs = a.vc_runs or VC_RUNS, a.fc_runs or FC_RUNS
+        a.target_runs = a.target_runs or TARGET_RUNS
         a.audit_runs = a.audit_runs or 400
         a.kernel_frames, a.memory_steps = 1_000_000, (100, 1000, 4000)
         a.observer_steps, a.observer_repeats = 100, 3

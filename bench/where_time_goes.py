@@ -26,7 +26,7 @@ for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import make_inputs  # noqa: E402
-from run import bench_config  # noqa: E402
+from run import FC_RUNS, TARGET_RUNS, VC_RUNS, bench_config  # noqa: E402
 
 
 def main(argv=None) -> int:
@@ -45,7 +45,7 @@ def main(argv=None) -> int:
     from driftwatch import adapters, lattice3d, symmetry, track
     from driftwatch.campaign import audit
 
-    runs = a.runs or ((36 if a.atoms == 48 else 9) if a.cell == "vc" else 3)
+    runs = a.runs or ((TARGET_RUNS if a.atoms == 48 else VC_RUNS) if a.cell == "vc" else FC_RUNS)
     paths = make_inputs.make_mixed(Path(a.inputs), a.cell, a.atoms, runs, 50)
     root = make_inputs.mixed_dir(Path(a.inputs), a.cell, a.atoms)
     cfg = bench_config(a.mode, a.inputs)

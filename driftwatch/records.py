@@ -100,7 +100,7 @@ def dumps(record: dict, indent: bool = True) -> str:
     """Standard JSON text of a record (numpy scalars converted, non-finite numbers as null).
     ``indent``: the top two levels one line per item (:func:`_layout`); False: one line."""
     plain = _plain(record)
-    return _layout(plain, "") if indent else _ONE_LINE.encode(plain)
+    return _layout(plain) if indent else _ONE_LINE.encode(plain)
 
 
 TEMP_PREFIX = ".driftwatch-"

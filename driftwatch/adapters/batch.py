@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 from ..errors import InputError
 
 __all__ = ["STRUCTURE_KEYS", "STEP_KEYS", "END_POINT_MARKERS", "Member", "Index", "split",
+           "refuse_many", "listing",
            "index_extxyz", "index_db", "SEPARATOR"]
 
 STRUCTURE_KEYS = ("structure_id", "relax_id", "material_id", "system_name", "config_type")
@@ -104,7 +105,7 @@ class Index:
             chosen = list(self.groups().get(name, ()))
             if not chosen:
                 raise InputError(self.path, f"no structure {name!r} (by {self.key!r}; "
-                                            f"structures: {_listing(self.names())})")
+                                            f"structures: {listing(self.names())})")
         ends = [m.end for m in chosen]
         if len(chosen) == 2 and sorted(map(str, ends)) == ["final", "initial"]:
             return sorted(chosen, key=lambda m: m.end != "initial"), "end-points"
@@ -122,10 +123,15 @@ class Index:
 
     def refuse_many(self):
         """The one-line error for reading a many-structure file as one run."""
-        names = self.names()
-        raise InputError(self.path, f"holds {len(names)} structures named by {self.key!r} "
-                                    f"({_listing(names)}): read one as FILE{SEPARATOR}NAME, e.g. "
-                                    f"'{self.path}{SEPARATOR}{names[0]}'; an audit lists each")
+        refuse_many(self.path, self.names(), f"structures named by {self.key!r}")
+
+
+def refuse_many(path, names: list[str], what: str):
+    """Raise the one-line error for reading a file of many runs (``names``, ``what`` they are) as
+    one run: what it holds and how to read one (``FILE::NAME``)."""
+    raise InputError(path, f"holds {len(names)} {what} ({listing(names)}): read one as "
+                           f"FILE{SEPARATOR}NAME, e.g. '{path}{SEPARATOR}{names[0]}'; an audit "
+                           f"lists each")
 
 
 def _name(value) -> str:
@@ -136,7 +142,7 @@ def _name(value) -> str:
     return str(value)
 
 
-def _listing(names, limit: int = 8) -> str:
+def listing(names, limit: int = 8) -> str:
     shown = ", ".join(names[:limit])
     return shown + (f", ... ({len(names)} in all)" if len(names) > limit else "")
 

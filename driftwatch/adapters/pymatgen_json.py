@@ -140,8 +140,8 @@ def _task_list(path) -> list:
 def _task_names(docs: list, path) -> tuple[list[str], str]:
     """A name for each document of a list, and what names them: its ``task_id`` when every
     document has a distinct one, otherwise its ``position`` ``doc-1``, ``doc-2``, ... (file order)."""
-    if not all(isinstance(d, dict) for d in docs):
-        bad = next(i for i, d in enumerate(docs) if not isinstance(d, dict))
+    bad = next((i for i, d in enumerate(docs) if not isinstance(d, dict)), None)
+    if bad is not None:
         raise InputError(path, f"item {bad + 1} of the list is not a task document (a JSON "
                                f"{type(docs[bad]).__name__}, not an object)")
     ids = [d.get("task_id") for d in docs]
@@ -161,7 +161,7 @@ def _chosen_document(path, ctx: ReadContext):
     """The document ``path`` (``FILE`` or ``FILE::NAME``) names: the file's own, the list's only
     member, or the member NAME (then ``ctx.structure`` says which, as for other many-structure
     files). A list of several read whole is refused with the names."""
-    from .batch import SEPARATOR, _listing, split
+    from .batch import SEPARATOR, listing, refuse_many, split
     base, name = split(str(path))
     if name is None and not _is_list(base):
         return _load_json(base)
@@ -175,11 +175,9 @@ def _chosen_document(path, ctx: ReadContext):
     if name is None:
         if len(docs) == 1:
             return docs[0]
-        raise InputError(base, f"holds {len(docs)} task documents ({_listing(names)}): read one as "
-                               f"FILE{SEPARATOR}NAME, e.g. '{base}{SEPARATOR}{names[0]}'; an audit "
-                               f"lists each")
+        refuse_many(base, names, "task documents")
     if name not in names:
-        raise InputError(base, f"no task document named {name!r} in the list ({_listing(names)})")
+        raise InputError(base, f"no task document named {name!r} in the list ({listing(names)})")
     ctx.structure = {"key": key, "value": name, "structures": len(docs)}
     return docs[names.index(name)]
 
