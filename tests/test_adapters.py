@@ -28,7 +28,7 @@ from ase import Atoms
 from ase.calculators.singlepoint import SinglePointCalculator
 
 from driftwatch.adapters import Frame, detect, formats, iter_frames, read_run, register
-from driftwatch.adapters import registry
+from driftwatch.adapters import registry, vasp
 from driftwatch.errors import InputError, UnknownFormatError
 
 import vasp_gen
@@ -800,3 +800,41 @@ def test_plain_positions_equal_ases_card_parser_bit_for_bit(units):
     assert np.array_equal(got, ref)
     assert _plain_positions(header, ["Mo 1/3 2/3 0.5\n"] + rows[1:], cell, 5.9) is None
     assert _plain_positions(header, ["Mo 0.1 0.2 0.3 1 x 0\n"] + rows[1:], cell, 5.9) is None
+
+
+@pytest.mark.parametrize("size, longest", [(7, 1 << 20), (4096, 3000), (1 << 18, vasp._BLOCK_MAX)],
+                         ids=["7-byte-reads", "steps-too-long-to-hold", "default"])
+def test_vasprun_reads_the_same_wherever_its_stream_is_cut(size, longest, tmp_path, monkeypatch):
+    """vasprun.xml: each whole <calculation> is parsed in one go and the rest element by element.
+    Where the byte stream's reads end (7 bytes, 4 kB, the default 256 kB) and whether a step is
+    too long to be held whole (a 3000-byte limit: every step is read element by element) change
+    nothing: frames equal to ASE's reader (``ase.io.read`` 'vasp-xml') on a genuine 60-step
+    68-atom VASP 5.2.11 relaxation (pymatgen-db test files, tests/data/public/README.md)."""
+    monkeypatch.setattr(vasp, "_BLOCK_MAX", longest)
+    monkeypatch.setattr(vasp._vasprun_pieces, "__defaults__", (size,))
+    path = _unzipped(DATA / "public" / "stage_folders" / "relax1" / "vasprun.xml.gz", tmp_path)
+    run = read_run(path)
+    assert len(run) == 60 and run.warnings == ()
+    _assert_same_as_ase(run, path)
+
+
+def test_a_broken_vasprun_step_is_reported_where_it_is_in_the_file(tmp_path):
+    """A byte made invalid inside the 7th <calculation> of the genuine 60-step vasprun.xml: the six
+    steps before it are read, and the warning names the line and column that Python's XML parser
+    gives for the whole file (``xml.etree.ElementTree.parse``, the reference), although the steps
+    before were parsed on their own."""
+    import xml.etree.ElementTree as ET
+    raw = gzip.decompress((DATA / "public" / "stage_folders" / "relax1" / "vasprun.xml.gz")
+                          .read_bytes())
+    at = -1
+    for _ in range(7):
+        at = raw.find(b"<calculation>", at + 1)
+    at = raw.find(b"<structure>", at) + 5
+    path = tmp_path / "vasprun.xml"
+    path.write_bytes(raw[:at] + b"&" + raw[at + 1:])
+    with pytest.raises(ET.ParseError) as ref:
+        ET.parse(path)
+    run = read_run(path)
+    assert len(run) == 6
+    (w,) = [w for w in run.warnings if "XML ends abnormally" in w]
+    assert f"line {ref.value.position[0]}, column {ref.value.position[1]}" in w, w

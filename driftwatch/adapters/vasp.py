@@ -2,8 +2,8 @@
 
 All readers stream: memory holds one ionic step at a time.
 
-* vasprun.xml: ``xml.etree.ElementTree.iterparse`` with each ``<calculation>``
-  cleared once read (ASE's ``read_vasp_xml`` keeps every step in memory). Energy,
+* vasprun.xml: each ``<calculation>`` parsed whole by ``xml.etree.ElementTree`` and dropped once
+  read, the rest through its event parser (ASE's ``read_vasp_xml`` keeps every step in memory). Energy,
   forces and stress follow ASE's conventions exactly (checked frame by frame in
   the tests): energy = ``e_fr_energy`` - PSTRESS*V + (e_0 - e_fr of the last SC step)
   is ASE's ``energy``; we keep ASE's force-consistent ``free_energy``
@@ -150,7 +150,11 @@ def _xml_value(el):
 
 
 def _varray(el):
-    return np.array([[float(x) for x in v.text.split()] for v in el.findall("v")], float)
+    rows = [v.text or "" for v in el.findall("v")]
+    values = np.array(" ".join(rows).split(), float)
+    if not rows or values.size != len(rows) * len(rows[0].split()):
+        raise ValueError(f"<varray name='{el.get('name')}'>: rows of unequal length")
+    return values.reshape(len(rows), -1)
 
 
 def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
@@ -178,16 +182,85 @@ def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
                  forces=None if forces is None else _varray(forces), stress=stress)
 
 
+_CALC_OPEN, _CALC_CLOSE = b"<calculation>", b"</calculation>"
+_XML_DECL = re.compile(rb"\s*<\?xml[^>]*\?>")
+_BLOCK_MAX = 8 << 20
+"""Bytes: a ``<calculation>`` longer than this (DOS, projections) is read element by element."""
+
+
+def _vasprun_pieces(fh, at_top, size=1 << 18):
+    """Split a vasprun.xml byte stream, in order, into ``(bytes, True)``: a whole
+    ``<calculation>`` element starting where ``at_top()`` says the parser stands between the root's
+    children, and ``(bytes, False)``: anything else, for the event parser."""
+    buf, pos, more = b"", 0, True
+    while True:
+        i = buf.find(_CALC_OPEN, pos)
+        if i < 0:
+            cut = len(buf) - (len(_CALC_OPEN) - 1 if more else 0)   # keep a split tag's start
+            if cut > pos:
+                yield buf[pos:cut], False
+                pos = cut
+            if not more:
+                return
+            data = fh.read(size)
+            buf, pos, more = buf[pos:] + data, 0, bool(data)
+            continue
+        if i > pos:
+            yield buf[pos:i], False
+            pos = i
+        if not at_top():
+            yield buf[pos:pos + len(_CALC_OPEN)], False
+            pos += len(_CALC_OPEN)
+            continue
+        j = buf.find(_CALC_CLOSE, pos)
+        while j < 0 and more and len(buf) - pos <= _BLOCK_MAX:
+            seen = len(buf) - pos
+            data = fh.read(size)
+            buf, pos, more = buf[pos:] + data, 0, bool(data)
+            j = buf.find(_CALC_CLOSE, max(0, seen - len(_CALC_CLOSE)))
+        if j < 0:                   # cut inside it, or too long to hold: the event parser streams it
+            yield buf[pos:], False
+            pos = len(buf)
+            continue
+        j += len(_CALC_CLOSE)
+        yield buf[pos:j], True
+        pos = j
+
+
+def _blank(piece: bytes) -> bytes:
+    """Whitespace standing for ``piece`` in the event parser: its line and column count stay the
+    file's (so an error after it names the right place)."""
+    n = piece.count(b"\n")
+    return b"\n" * n + b" " * (len(piece) - 1 - piece.rfind(b"\n"))
+
+
 def read_vasprun(path, ctx: ReadContext):
-    """Stream the completed ionic steps of a vasprun.xml (plain or compressed)."""
+    """Stream the completed ionic steps of a vasprun.xml (plain or compressed).
+
+    Each whole ``<calculation>`` between the root's children is parsed in one go
+    (``ET.fromstring``, C speed) and stands as whitespace in the event parser; everything else
+    (the header, a cut or very long step, anything malformed) goes through the event parser,
+    which keeps memory flat and reports errors where they are in the file."""
     numbers, params, step, complete = None, {}, 0, False
-    calc = None          # the <calculation> being read
+    calc = None          # the <calculation> being read event by event
     calc_ready = False   # its structure and energy are closed: a completed step
     depth = 0
     root = None
-    fh = open_bytes(path)
-    try:
-        for event, el in ET.iterparse(fh, events=("start", "end")):
+    decl = b""           # the file's XML declaration (its encoding), put before each block
+    parser = ET.XMLPullParser(events=("start", "end"))
+
+    def calculation(el):
+        nonlocal step
+        if el.find("structure") is not None:
+            step += 1
+            return _vasprun_frame(el, step - 1, numbers, params.get("PSTRESS") or 0.0, ctx)
+        ctx.warn("a <calculation> without a <structure> (a GW or response-function step?) is "
+                 "not an ionic step: passed over")
+        return None
+
+    def events():
+        nonlocal numbers, params, complete, calc, calc_ready, depth, root
+        for event, el in parser.read_events():
             if event == "start":
                 depth += 1
                 if depth == 1:
@@ -214,12 +287,9 @@ def read_vasprun(path, ctx: ReadContext):
                     rows = el.findall("array[@name='atoms']/set/rc")
                     numbers = _symbol_numbers([r.find("c").text for r in rows])
                 elif tag == "calculation":
-                    if el.find("structure") is not None:
-                        yield _vasprun_frame(el, step, numbers, params.get("PSTRESS") or 0.0, ctx)
-                        step += 1
-                    else:       # e.g. GW: dielectric functions, no structure, forces or energy
-                        ctx.warn("a <calculation> without a <structure> (a GW or response-"
-                                 "function step?) is not an ionic step: passed over")
+                    frame = calculation(el)
+                    if frame is not None:
+                        yield frame
                     calc = None
                 if root is not None:
                     root.clear()      # keep memory flat: drop what has been read
@@ -228,6 +298,28 @@ def read_vasprun(path, ctx: ReadContext):
                 calc_ready = True
             elif depth >= 2 and tag in ("eigenvalues", "dos", "projected"):
                 el.clear()        # large and unused
+
+    fh = open_bytes(path)
+    try:
+        for piece, whole in _vasprun_pieces(fh, lambda: depth == 1):
+            if whole:
+                try:
+                    el = ET.fromstring(decl + piece)
+                except ET.ParseError:
+                    el = None           # the event parser reads it and says where it is wrong
+                if el is not None:
+                    frame = calculation(el)
+                    if frame is not None:
+                        yield frame
+                    parser.feed(_blank(piece))
+                    continue
+            elif root is None and not decl:
+                m = _XML_DECL.match(piece)
+                decl = m.group(0).lstrip() if m else b""
+            parser.feed(piece)
+            yield from events()
+        parser.close()
+        yield from events()
     except (ET.ParseError, *STREAM_ERRORS) as exc:      # cut XML, or a cut .gz/.bz2/.xz
         if calc is not None and calc_ready and numbers is not None:
             # cut after the step's energy (eigenvalues/DOS missing): the step itself is complete
