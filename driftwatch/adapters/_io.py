@@ -417,18 +417,19 @@ class Lines:
             except STREAM_ERRORS as exc:
                 self.stream_error = f"{type(exc).__name__}: {exc}"
                 data = None
-            lines = (self._part + self._decode(data or b"", not data)).split("\n")
-            self._part = lines.pop()
-            long = next((k for k, ln in enumerate(lines) if len(ln) > MAX_LINE), None)
-            if long is not None:
-                del lines[long:]
+            text = self._part + self._decode(data or b"", not data)
+            cut = text.rfind("\n") + 1
+            self._part = text[cut:]
+            lines = io.StringIO(text[:cut]).readlines()     # each ending in its "\n"
+            if lines and max(map(len, lines)) > MAX_LINE + 1:
+                del lines[next(k for k, ln in enumerate(lines) if len(ln) > MAX_LINE + 1):]
                 self._too_long = True
             elif len(self._part) > MAX_LINE:
                 self._too_long = True
             elif not data:                  # the end: a partial last line is dropped
                 self.cut_line = bool(self._part) and data is not None
                 self._done = True
-            self._lines, self._next = [ln + "\n" for ln in lines], 0
+            self._lines, self._next = lines, 0
             self._marked = (None, [])
             if lines:
                 return self.readline()
