@@ -3,8 +3,8 @@
 All readers stream: memory holds one ionic step at a time.
 
 * vasprun.xml: each ``<calculation>`` parsed whole by ``xml.etree.ElementTree`` and dropped once
-  read, the rest through its event parser (ASE's ``read_vasp_xml`` keeps every step in memory). Energy,
-  forces and stress follow ASE's conventions exactly (checked frame by frame in
+  read, the rest through its event parser (ASE's ``read_vasp_xml`` keeps every step in memory).
+  Energy, forces and stress follow ASE's conventions exactly (checked frame by frame in
   the tests): energy = ``e_fr_energy`` - PSTRESS*V + (e_0 - e_fr of the last SC step)
   is ASE's ``energy``; we keep ASE's force-consistent ``free_energy``
   = ``e_fr_energy`` - PSTRESS*V.
@@ -151,8 +151,10 @@ def _xml_value(el):
 
 def _varray(el):
     rows = [v.text or "" for v in el.findall("v")]
+    if not rows:
+        return np.array([], float)
     values = np.array(" ".join(rows).split(), float)
-    if not rows or values.size != len(rows) * len(rows[0].split()):
+    if values.size != len(rows) * len(rows[0].split()):
         raise ValueError(f"<varray name='{el.get('name')}'>: rows of unequal length")
     return values.reshape(len(rows), -1)
 
@@ -218,7 +220,7 @@ def _vasprun_pieces(fh, at_top, size=1 << 18):
             data = fh.read(size)
             buf, pos, more = buf[pos:] + data, 0, bool(data)
             j = buf.find(_CALC_CLOSE, max(0, seen - len(_CALC_CLOSE)))
-        if j < 0:                   # cut inside it, or too long to hold: the event parser streams it
+        if j < 0:                   # cut inside it, or too long to hold: the event parser reads it
             yield buf[pos:], False
             pos = len(buf)
             continue
