@@ -727,7 +727,9 @@ def test_peak_memory_does_not_grow_beyond_the_frames_kept(tmp_path):
     of the arrays kept per frame (block buffers + final concatenation), not the file size."""
     t100, t1000 = vasp_gen.drifting_layer(100), vasp_gen.drifting_layer(1000)
     files = [(vasp_gen.write_outcar(tmp_path / "a_OUTCAR", t100),
-              vasp_gen.write_outcar(tmp_path / "b_OUTCAR", t1000))]
+              vasp_gen.write_outcar(tmp_path / "b_OUTCAR", t1000)),
+             (vasp_gen.write_vasprun(tmp_path / "a_vasprun.xml", t100),
+              vasp_gen.write_vasprun(tmp_path / "b_vasprun.xml", t1000))]
     if QE_OUTS:
         files.append((_long_pw_out(tmp_path, 100), _long_pw_out(tmp_path, 1000)))
     for small, big in files:
@@ -802,11 +804,11 @@ def test_plain_positions_equal_ases_card_parser_bit_for_bit(units):
     assert _plain_positions(header, ["Mo 0.1 0.2 0.3 1 x 0\n"] + rows[1:], cell, 5.9) is None
 
 
-@pytest.mark.parametrize("size, longest", [(7, 1 << 20), (4096, 3000), (1 << 18, vasp._BLOCK_MAX)],
+@pytest.mark.parametrize("size, longest", [(7, 1 << 20), (4096, 3000), (1 << 16, vasp._BLOCK_MAX)],
                          ids=["7-byte-reads", "steps-too-long-to-hold", "default"])
 def test_vasprun_reads_the_same_wherever_its_stream_is_cut(size, longest, tmp_path, monkeypatch):
     """vasprun.xml: each whole <calculation> is parsed in one go and the rest element by element.
-    Where the byte stream's reads end (7 bytes, 4 kB, the default 256 kB) and whether a step is
+    Where the byte stream's reads end (7 bytes, 4 kB, the default 64 kB) and whether a step is
     too long to be held whole (a 3000-byte limit: every step is read element by element) change
     nothing: frames equal to ASE's reader (``ase.io.read`` 'vasp-xml') on a genuine 60-step
     68-atom VASP 5.2.11 relaxation (pymatgen-db test files, tests/data/public/README.md)."""

@@ -150,13 +150,7 @@ def _xml_value(el):
 
 
 def _varray(el):
-    rows = [v.text or "" for v in el.findall("v")]
-    if not rows:
-        return np.array([], float)
-    values = np.array(" ".join(rows).split(), float)
-    if values.size != len(rows) * len(rows[0].split()):
-        raise ValueError(f"<varray name='{el.get('name')}'>: rows of unequal length")
-    return values.reshape(len(rows), -1)
+    return np.array([(v.text or "").split() for v in el.findall("v")], float)   # numpy parses
 
 
 def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
@@ -186,11 +180,13 @@ def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
 
 _CALC_OPEN, _CALC_CLOSE = b"<calculation>", b"</calculation>"
 _XML_DECL = re.compile(rb"\s*<\?xml[^>]*\?>")
-_BLOCK_MAX = 8 << 20
-"""Bytes: a ``<calculation>`` longer than this (DOS, projections) is read element by element."""
+_BLOCK_MAX = 2 << 20
+"""Bytes: a ``<calculation>`` longer than this (eigenvalues, DOS, projections) is read element by
+element, its large parts dropped as they end; a step of 10,000 atoms without them fits (its tree
+held at once costs about ten times its bytes)."""
 
 
-def _vasprun_pieces(fh, at_top, size=1 << 18):
+def _vasprun_pieces(fh, at_top, size=1 << 16):
     """Split a vasprun.xml byte stream, in order, into ``(bytes, True)``: a whole
     ``<calculation>`` element starting where ``at_top()`` says the parser stands between the root's
     children, and ``(bytes, False)``: anything else, for the event parser."""
@@ -229,19 +225,22 @@ def _vasprun_pieces(fh, at_top, size=1 << 18):
         pos = j
 
 
-def _blank(piece: bytes) -> bytes:
-    """Whitespace standing for ``piece`` in the event parser: its line and column count stay the
-    file's (so an error after it names the right place)."""
+def _stand_in(piece: bytes) -> bytes:
+    """What the event parser reads for a ``<calculation>`` read whole: an empty element (which
+    ends at the root's level, so the root is cleared and no text piles up) and whitespace, with
+    the piece's line count and last line's length (so an error after it names the file's line
+    and column)."""
     n = piece.count(b"\n")
-    return b"\n" * n + b" " * (len(piece) - 1 - piece.rfind(b"\n"))
+    return b"<_/>" + (b"\n" * n + b" " * (len(piece) - 1 - piece.rfind(b"\n")) if n else
+                      b" " * (len(piece) - 4))
 
 
 def read_vasprun(path, ctx: ReadContext):
     """Stream the completed ionic steps of a vasprun.xml (plain or compressed).
 
     Each whole ``<calculation>`` between the root's children is parsed in one go
-    (``ET.fromstring``, C speed) and stands as whitespace in the event parser; everything else
-    (the header, a cut or very long step, anything malformed) goes through the event parser,
+    (``ET.fromstring``, C speed) and the event parser reads :func:`_stand_in` for it; everything
+    else (the header, a cut or very long step, anything malformed) goes through the event parser,
     which keeps memory flat and reports errors where they are in the file."""
     numbers, params, step, complete = None, {}, 0, False
     calc = None          # the <calculation> being read event by event
@@ -313,7 +312,8 @@ def read_vasprun(path, ctx: ReadContext):
                     frame = calculation(el)
                     if frame is not None:
                         yield frame
-                    parser.feed(_blank(piece))
+                    parser.feed(_stand_in(piece))
+                    yield from events()
                     continue
             elif root is None and not decl:
                 m = _XML_DECL.match(piece)
