@@ -325,8 +325,7 @@ def read_vasprun(path, ctx: ReadContext):
     except (ET.ParseError, *STREAM_ERRORS) as exc:      # cut XML, or a cut .gz/.bz2/.xz
         if calc is not None and calc_ready and numbers is not None:
             # cut after the step's energy (eigenvalues/DOS missing): the step itself is complete
-            yield _vasprun_frame(calc, step, numbers, params.get("PSTRESS") or 0.0, ctx)
-            step += 1
+            yield calculation(calc)
         if root is None:
             raise InputError(path, f"no completed ionic step (the XML ends before its first "
                                    f"element: {exc})") from None
