@@ -346,11 +346,13 @@ def _skip_reason(exc, run, cfg) -> dict | None:
                 "include": "write the file with pbc True along the periodic axes (driftwatch "
                            "takes pbc from the file)"}
     gaps = geometry.vacuum_gaps(run.cells[:1], run.positions[:1])[0]
-    top = float(max(gaps))
+    gap = cfg["geometry"]["vacuum_gap"]
     return {"reason": f"vacuum on more than one axis (empty gaps "
-                      f"{', '.join(f'{g:.1f}' for g in gaps)} Å > geometry.vacuum_gap "
-                      f"{cfg['geometry']['vacuum_gap']:g} Å): a molecule, cluster or wire in a box",
-            "include": f"geometry.vacuum_gap: {top + 0.5:.1f} (Å) analyses its cell as bulk"}
+                      f"{', '.join(f'{g:.1f}' for g in gaps)} Å; > geometry.vacuum_gap {gap:g} Å "
+                      f"along axes {[k for k in range(3) if gaps[k] > gap]}): a molecule, cluster "
+                      f"or wire in a box",
+            "include": f"geometry.vacuum_gap: {geometry.bulk_gap(gaps):.1f} (Å) analyses its cell "
+                       f"as bulk"}
 
 
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:

@@ -160,7 +160,8 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     desc = ", ".join(f"{g:.2f}" for g in gaps[0])
     if len(big) > 1:
         raise GeometryError(f"not a layer: empty gaps > {gap} Å along axes {big} "
-                            f"(gaps {desc} Å): a 1D/0D system in a box")
+                            f"(gaps {desc} Å): a 1D/0D system in a box; geometry.vacuum_gap: "
+                            f"{bulk_gap(gaps[0]):.1f} Å (in a config, -c) analyses its cell as bulk")
     if not big:
         return Geometry(3, None, None, f"bulk: largest empty gaps {desc} Å, none above "
                                        f"{gap} Å{drift}", gaps[0])
@@ -168,6 +169,12 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     n = plane_normals(cells[:1], k)[0]
     return Geometry(2, k, n, f"layer: empty gap {gaps[0, k]:.2f} Å > {gap} Å along axis {k} "
                              f"(gaps {desc} Å){drift}", gaps[0])
+
+
+def bulk_gap(gaps) -> float:
+    """The ``geometry.vacuum_gap`` (Å) that takes a cell with these empty gaps (Å) as bulk: the
+    largest gap plus 0.5 Å, to 0.1 Å."""
+    return round(float(max(gaps)) + 0.5, 1)
 
 
 def plane_normals(cells, vacuum_axis: int) -> np.ndarray:

@@ -838,5 +838,6 @@ def test_a_broken_vasprun_step_is_reported_where_it_is_in_the_file(tmp_path):
         ET.parse(path)
     run = read_run(path)
     assert len(run) == 6
-    (w,) = [w for w in run.warnings if "XML ends abnormally" in w]
+    (w,) = [w for w in run.warnings if "malformed XML" in w]
     assert f"line {ref.value.position[0]}, column {ref.value.position[1]}" in w, w
+    assert "damaged there, not cut off" in w and "truncated" not in w

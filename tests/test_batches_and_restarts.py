@@ -441,7 +441,8 @@ def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
     import subprocess
     import sys
     camp = tmp_path / "mixed"
-    shutil.copytree(PUB, camp / "public", ignore=shutil.ignore_patterns("README.md", "SHA256SUMS"))
+    shutil.copytree(PUB, camp / "public", ignore=shutil.ignore_patterns("README.md", "SHA256SUMS",
+                                                                       "broken"))
     for d in ("layer_oblique_to_hex", "restart_numbered", "restart_stage_folders"):
         shutil.copytree(QE / d, camp / "qe" / d)
     shutil.copytree(QE / "pseudo", camp / "qe" / "pseudo")

@@ -5,7 +5,11 @@ External references (named beside each check):
 * genuine outputs from public repositories in tests/data/public/ (sources and licences in its
   README.md): a custodian double relaxation with VASP 5.2.11 OUTCARs (pymatgen-db), relax1/relax2
   stage folders (pymatgen-db), task documents (pymatgen-db, emmet), FHI-aims / CASTEP / GPAW outputs
-  from ASE's test data, and a real LAMMPS relaxation made here with Debian's lammps;
+  from ASE's test data, a real LAMMPS relaxation made here with Debian's lammps, pw.x 4.1.2 and
+  7.2 outputs (pwtools; Quantum ESPRESSO's own test-suite), and, in broken/, pw.x runs that
+  stopped early (aiida-quantumespresso) and a damaged vasprun.xml (aiida-vasp), a VASP finite-
+  difference run (aiida-vasp) and a VASP NpT molecular dynamics run (custodian);
+* pw.x's own print-out in its output (cell volumes, total energies), where ASE cannot read it;
 * pymatgen's Vasprun and Structure, ASE's own readers (ase.io.read) as reference readers;
 * real pw.x outputs made here (tests/data/qe, pw.x 6.7 from Debian).
 """
@@ -294,7 +298,7 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
     would: no failed run, the two non-periodic systems listed as skipped with the setting that
     would include them, exit 0."""
     camp = tmp_path / "mixed"
-    shutil.copytree(PUB, camp, ignore=shutil.ignore_patterns("README.md", "SHA256SUMS"))
+    shutil.copytree(PUB, camp, ignore=shutil.ignore_patterns("README.md", "SHA256SUMS", "broken"))
     shutil.copytree(QE / "layer_oblique_to_hex", camp / "qe_layer")
     shutil.copy(REPO / "tests" / "data" / "vasp" / "OUTCAR_example_1.gz", camp)  # Ni cluster
     (camp / "params.json").write_text('{"campaign": "invented", "ecut": 40}')
@@ -303,15 +307,154 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 11
+    assert summary["failed"] == [] and summary["runs"] == 15
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "11 runs (11 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "15 runs (15 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
         read_run(DOUBLE).position_precision)
+
+
+def test_a_cluster_in_a_box_is_refused_with_the_setting_that_includes_it(tmp_path):
+    """ASE's genuine OUTCAR_example_1 (a Ni cluster in a box, tests/data/vasp): `driftwatch
+    inspect` refuses it in one line that gives the same geometry.vacuum_gap the audit's skip
+    advice gives, and that value, written in a config, does analyse its cell as bulk."""
+    import re
+    from driftwatch import config
+    from driftwatch.campaign import analyse_run
+    path = REPO / "tests" / "data" / "vasp" / "OUTCAR_example_1.gz"
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(path)],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 1 and proc.stderr.count("\n") == 1, proc.stderr
+    said = re.search(r"geometry\.vacuum_gap: ([\d.]+) Å \(in a config, -c\)", proc.stderr)
+    skipped = analyse_run("ni", str(path), config.load())["skipped"]
+    assert skipped["include"].startswith(f"geometry.vacuum_gap: {said.group(1)} (Å)")
+    assert "along axes [0, 1, 2]" in skipped["reason"]
+    cfg = tmp_path / "wide.yaml"
+    cfg.write_text(f"geometry:\n  vacuum_gap: {said.group(1)} Å\n")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(path), "-c",
+                           str(cfg)], capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0 and "bulk" in proc.stdout, proc.stderr
+
+
+# ---------------------------------------------------------------- other projects' pw.x and VASP files
+def _printed(path, pattern):
+    import re
+    text = gzip.open(path, "rt").read()
+    return [float(m.group(1)) for m in re.finditer(pattern, text)], text
+
+
+def test_a_pwx_41_vc_relax_reads_as_pwx_prints_it():
+    """pwtools' genuine QE 4.1.2 vc-relax output (tests/data/public/qe412_vc_relax): pw.x before
+    5.0 prints ``positions (a_0 units)`` and ``CELL_PARAMETERS (alat)`` with no value; ASE's
+    header parser knows only ``(alat units)``. The reference is pw.x's own print-out in the file:
+    each step's cell volume ("new unit-cell volume = ... ( V Ang^3 )", 5 decimals), the header's
+    "unit-cell volume" in bohr^3 (CODATA 2018 bohr, as ASE's units), and the "!" total energies
+    (Ry, converted with ASE's QE units)."""
+    from ase.io.espresso import units
+    path = PUB / "qe412_vc_relax" / "pw.vc_relax.out.gz"
+    run = read_run(path)
+    volumes, text = _printed(path, r"new unit-cell volume =\s*\S+ a\.u\.\^3 \(\s*(\S+) Ang\^3")
+    energies, _ = _printed(path, r"!\s+total energy\s+=\s+(\S+) Ry")
+    (header,), _ = _printed(path, r"\n\s+unit-cell volume\s+=\s+(\S+) \(a\.u\.\)\^3")
+    assert "Program PWSCF     v.4.1.2" in text and "positions (a_0 units)" in text
+    assert len(run) == 7 and run.numbers.tolist() == [13, 13, 7, 7]           # Al2N2, as printed
+    vol = np.abs(np.linalg.det(run.cells))
+    np.testing.assert_allclose(vol[1:], volumes[:6], atol=6e-6, rtol=0)
+    assert vol[0] == pytest.approx(header * 0.529177210903 ** 3, abs=1e-4)
+    np.testing.assert_allclose(run.energies, np.array(energies[:7]) * units["Ry"], rtol=1e-12)
+
+
+def test_a_pwx_output_named_like_an_input_takes_its_settings_from_the_input(tmp_path):
+    """Quantum ESPRESSO's own test-suite (tests/data/public/qe_testsuite_vc_relax1) names a pw.x
+    output ``benchmark.out.git.inp=vc-relax1.in`` beside its input ``vc-relax1.in``, which writes
+    ``calculation = "vc-relax"`` in double quotes (Fortran namelists take either delimiter:
+    common practice, and pw.x ran it as a vc-relax, which the output shows: the cell volume moves
+    from step to step). The output is never read as its own input; alone, it has no input."""
+    folder = PUB / "qe_testsuite_vc_relax1"
+    out = folder / "benchmark.out.git.inp=vc-relax1.in.gz"
+    for source in (out, folder):
+        s = read_run(source).code_settings
+        assert (s["calculation"], s["cell_dofree"], s["settings_from"]) == \
+            ("vc-relax", "all", "vc-relax1.in"), s
+    vol = np.abs(np.linalg.det(read_run(out).cells))
+    assert np.ptp(vol) > 0.1                                  # the cell moved: a vc-relax
+    alone = tmp_path / out.name
+    shutil.copy(out, alone)
+    assert "settings_from" not in read_run(alone).code_settings
+
+
+@pytest.mark.parametrize("case, said", [
+    ("failed_out_of_walltime", "Maximum CPU time exceeded"),
+    ("relax_failed_electronic", "convergence NOT achieved after   2 iterations: stopping")])
+def test_a_pwx_run_that_stopped_itself_says_why(case, said):
+    """aiida-quantumespresso's genuine pw.x outputs of a run out of CPU time and of a relaxation
+    whose first SCF did not converge (tests/data/public/broken/aiida_pw_stopped): no ionic step
+    completed, and the one-line error quotes pw.x's own reason with its line in the file."""
+    path = PUB / "broken" / "aiida_pw_stopped" / case / "aiida.out.gz"
+    lines = gzip.open(path, "rt").read().splitlines()
+    (n,) = [i + 1 for i, ln in enumerate(lines) if said in ln]
+    with pytest.raises(InputError) as err:
+        read_run(path)
+    msg = str(err.value)
+    assert "no completed ionic step" in msg and f"'{said}' (line {n})" in msg and "\n" not in msg
+
+
+def test_a_damaged_vasprun_is_not_reported_as_cut(tmp_path):
+    """aiida-vasp's genuine NEB vasprun.xml (tests/data/public/broken/aiida_vasp_neb_damaged) has two
+    writes interleaved at line 527 and 3,600 lines after them: the error names the line and column
+    Python's XML parser gives for the whole file (ElementTree.parse, the reference) and calls the
+    file damaged, not cut. The genuine 60-step relax1 vasprun.xml cut in the middle, or ending in
+    NUL bytes (a write its file system did not finish), still reads as cut."""
+    import xml.etree.ElementTree as ET
+    damaged = _unzip(PUB / "broken" / "aiida_vasp_neb_damaged" / "vasprun.xml.gz", tmp_path / "a")
+    with pytest.raises(ET.ParseError) as ref:
+        ET.parse(damaged)
+    with pytest.raises(InputError) as err:
+        read_run(damaged)
+    line, col = ref.value.position
+    assert f"line {line}, column {col}" in str(err.value)
+    assert "damaged there, not cut off" in str(err.value) and "truncated" not in str(err.value)
+    raw = gzip.decompress((PUB / "stage_folders" / "relax1" / "vasprun.xml.gz").read_bytes())
+    half = raw.find(b"<calculation>", len(raw) // 2)
+    for tail, extra in ((b"", ""), (b"\0" * 4096, "ends in NUL bytes")):
+        path = tmp_path / ("nul" if tail else "cut") / "vasprun.xml"
+        path.parent.mkdir()
+        path.write_bytes(raw[:half + 300] + tail)
+        run = read_run(path)
+        assert 0 < len(run) < 60
+        (w,) = [w for w in run.warnings if "XML ends abnormally" in w]
+        assert w.split(": ", 1)[1].startswith("truncated after step") and extra in w
+
+
+@pytest.mark.parametrize("folder, fmt, what", [
+    ("vasp544_finite_differences", "vasp-xml", "finite differences (IBRION = 6)"),
+    ("vasp541_npt_md", "vasp-out", "molecular dynamics (IBRION = 0)")])
+def test_a_run_that_is_no_relaxation_says_so(folder, fmt, what):
+    """Genuine VASP runs whose ionic steps are no relaxation (aiida-vasp's IBRION = 6 finite
+    differences, custodian's IBRION = 0 NpT molecular dynamics; IBRION as the files print it, its
+    meaning from VASP's documentation: common practice): every frame ASE reads, and a warning that
+    the verdict compares first and last frames. The genuine relaxation (relax1, IBRION = 2) has
+    none."""
+    (path,) = (PUB / folder).iterdir()
+    run = read_run(path)
+    assert run.code_settings["IBRION"] == int(what.split("= ")[1][0])
+    assert len(run) == len(ase.io.read(path, index=":", format=fmt))                    # ASE
+    (w,) = [w for w in run.warnings if "not a relaxation" in w]
+    assert what in w and "compares the first and last frames" in w
+    relax = read_run(PUB / "stage_folders" / "relax1")
+    assert relax.code_settings["IBRION"] == 2
+    assert not [w for w in relax.warnings if "not a relaxation" in w]
+
+
+def _unzip(gz, folder):
+    folder.mkdir(parents=True)
+    path = folder / gz.name[:-3]
+    path.write_bytes(gzip.decompress(gz.read_bytes()))
+    return path
 
 
 def test_a_file_without_a_cell_is_skipped_with_advice_that_fits_it():

@@ -38,6 +38,7 @@ later (the final scf of a vc-relax re-detects symmetry on the relaxed cell).
 """
 from __future__ import annotations
 
+import os
 import re
 from pathlib import Path
 
@@ -58,12 +59,14 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
             "Begin final coordinates", "The maximum number of steps")
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
+# pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
+_STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
 _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
 _MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
-          *_CLOSERS)
+          *_CLOSERS, *_STOPS)
 
 
 class _Config:
@@ -89,9 +92,20 @@ def _units():
     return units["Bohr"], units["Ry"]
 
 
+# what ASE's header parser misses, by the key it fails on
+_HEADER_PARTS = {"celldm(1)": "no 'celldm(1)' line", "nat": "no 'number of atoms/cell' line",
+                 "cell": "no 'crystal axes' block",
+                 "symbols": "no 'site n. ... positions (alat units)' block"}
+
+
 def _header_info(lines):
+    """(cell Å, positions Å, numbers, alat Å, nsym) of a pw.x run's header, read by ASE's
+    ``parse_pwo_start``. pw.x before 5.0 prints ``positions (a_0 units)`` where later versions
+    print ``(alat units)``: the same unit, celldm(1) (its ``lattice parameter (a_0)`` line equals
+    celldm(1) in the genuine 4.0.1 and 4.1.2 outputs of ``tests/data/public``)."""
     from ase.data import atomic_numbers
     from ase.io.espresso import parse_pwo_start
+    lines = [ln.replace("positions (a_0 units)", "positions (alat units)") for ln in lines]
     info = parse_pwo_start(lines, 0)
     atoms = info["atoms"]
     nsym = None
@@ -285,7 +299,10 @@ def read_pw_out(path, ctx: ReadContext):
                     break
                 try:
                     cell, pos, numbers, alat, nsym = _header_info(header)
-                except (KeyError, ValueError, IndexError) as exc:
+                except KeyError as exc:
+                    raise InputError(path, "not a complete pw.x header: " + _HEADER_PARTS.get(
+                        exc.args[0], f"no {exc}")) from None
+                except (ValueError, IndexError) as exc:
                     raise InputError(path, f"not a complete pw.x header: {exc}") from None
                 natoms = len(numbers)
                 if nsym is not None:
@@ -332,7 +349,9 @@ def read_pw_out(path, ctx: ReadContext):
                     break
                 if ready(cur):
                     yield emit(cur)
-                pending_cell, _ = get_cell_parameters([line] + block)
+                # "(alat)" with no value (pw.x before 5.0): in units of the header's alat
+                bare = "alat" in line.lower() and "=" not in line
+                pending_cell, _ = get_cell_parameters([line] + block, alat if bare else None)
             elif line.startswith("ATOMIC_POSITIONS"):
                 if ready(cur):
                     yield emit(cur)
@@ -356,6 +375,8 @@ def read_pw_out(path, ctx: ReadContext):
                     n = int(_BFGS_STEPS.match(line).group(1))
                     if ready(cur) and (n == 0 or restarted(cur, n)):
                         yield emit(cur)
+            elif any(m in line for m in _STOPS):
+                ctx.warn(f"pw.x stopped early: '{line.strip()}' (line {fh.lineno})")
             elif _CLOSER.search(line):
                 if "JOB DONE" in line:
                     done = True
@@ -389,14 +410,20 @@ def read_pw_input(path) -> dict:
         data, _ = read_fortran_namelist(io.StringIO("".join(fh)))
     control, system, cell = (data.get(k, {}) for k in ("control", "system", "cell"))
     out = {"code": "espresso",
-           "calculation": str(control.get("calculation", "scf")).strip().lower(),
+           "calculation": _text(control.get("calculation", "scf")).lower(),
            "nosym": bool(system.get("nosym", False)),
            "noinv": bool(system.get("noinv", False)),
-           "prefix": str(control.get("prefix", "pwscf")).strip().strip("'\""),
-           "outdir": str(control.get("outdir", "./")).strip().strip("'\"")}
+           "prefix": _text(control.get("prefix", "pwscf")),
+           "outdir": _text(control.get("outdir", "./"))}
     if out["calculation"] == "vc-relax" or "cell_dofree" in cell:
-        out["cell_dofree"] = str(cell.get("cell_dofree", "all")).strip()
+        out["cell_dofree"] = _text(cell.get("cell_dofree", "all"))
     return out
+
+
+def _text(value) -> str:
+    """A namelist string without its delimiters: Fortran takes 'x' and "x" alike, and ASE's
+    namelist reader keeps double quotes (``calculation = "relax"`` gives '"relax"')."""
+    return str(value).strip().strip("'\"").strip()
 
 
 def read_pw_in_settings(path) -> dict:
@@ -417,11 +444,18 @@ def _input_for(out_path: Path, ctx: ReadContext | None = None):
     for name in (stem + ".in", stem + ".pwi", "pw.in"):
         for ext in ("", ".gz", ".bz2", ".xz"):
             p = folder / (name + ext)
-            if p.is_file():
+            if p.is_file() and not _same_file(p, out_path):   # an output named x.in is no input
                 return p
     ins = [p for p in sorted(folder.iterdir()) if _is_input_name(p.name) and p.is_file()
-           and _looks_like_pw_in(p, ctx)]
+           and not _same_file(p, out_path) and _looks_like_pw_in(p, ctx)]
     return ins[0] if len(ins) == 1 else None
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return False
 
 
 def _is_input_name(name: str) -> bool:
@@ -703,6 +737,12 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
 
 
 # ---------------------------------------------------------------- registration
+def run_kind(code_settings: dict) -> str | None:
+    """What a pw.x run's ionic steps are when they are no relaxation (``calculation``); else None."""
+    calc = (code_settings or {}).get("calculation")
+    return f"molecular dynamics (calculation = '{calc}')" if calc in ("md", "vc-md") else None
+
+
 def register_all(register, register_code) -> None:
     """The pw.x row of the format table and the pw.x entry of the code table."""
     from .registry import Code
@@ -715,4 +755,5 @@ def register_all(register, register_code) -> None:
         run_files=("*.out*", "*.pwo*", "*.log*", "*.in*", "*.pwi*"),
         settings_files=("*.in", "*.pwi", "*.inp"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
-        symmetry_setting=__name__ + ":symmetry_setting"), replace=True)
+        symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind"),
+        replace=True)

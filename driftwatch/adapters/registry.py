@@ -27,6 +27,7 @@ the format name) or to a dict of :func:`register` keyword arguments including
 """
 from __future__ import annotations
 
+import dataclasses
 import fnmatch
 import importlib
 import inspect
@@ -104,6 +105,8 @@ class Code:
       itself cleanly (see :func:`driftwatch.live.request_stop`).
     * ``symmetry_setting(code_settings, dimension) -> dict | None``: the code's own symmetry
       handling when it was on (``{"operations", "how", "undo"}``), None when off or unknown.
+    * ``run_kind(code_settings) -> str | None``: what the run's ionic steps are when they are no
+      relaxation (molecular dynamics, finite differences, ...), None for a relaxation or unknown.
     """
 
     name: str
@@ -115,6 +118,7 @@ class Code:
     end_markers: dict = field(default_factory=dict)
     soft_stop: Callable | str | None = None
     symmetry_setting: Callable | str | None = None
+    run_kind: Callable | str | None = None
     aliases: tuple = ()
 
     def function(self, attr: str) -> Callable | None:
@@ -562,8 +566,21 @@ def read_run(path, format=None, *, context: ReadContext | None = None,
     for w in pick.warnings:
         ctx.warn(w)
     stages: list = []
-    return collect(_frames(pick, ctx, stages), path=_source_of(pick, pick.source),
-                   fmt=pick.format, ctx=ctx, run_dir=pick.run_dir, stages=stages)
+    run = collect(_frames(pick, ctx, stages), path=_source_of(pick, pick.source),
+                  fmt=pick.format, ctx=ctx, run_dir=pick.run_dir, stages=stages)
+    what = run_kind(run.code_settings)
+    if what:
+        run = dataclasses.replace(run, warnings=(*run.warnings, (
+            f"{run.source}: not a relaxation: {what}; its verdict compares the first and last "
+            f"frames (how the structure moved), not where a relaxation ended")))
+    return run
+
+
+def run_kind(code_settings: dict) -> str | None:
+    """What a run's ionic steps are when they are no relaxation (see :class:`Code`), else None."""
+    code = _code_named((code_settings or {}).get("code"))
+    fn = code.function("run_kind") if code is not None else None
+    return fn(code_settings) if fn is not None else None
 
 
 # ---------------------------------------------------------------- the tables

@@ -300,7 +300,7 @@ def read_vasprun(path, ctx: ReadContext):
             elif depth >= 2 and tag in ("eigenvalues", "dos", "projected"):
                 el.clear()        # large and unused
 
-    fh = open_bytes(path)
+    fh, closing = open_bytes(path), False
     try:
         for piece, whole in _vasprun_pieces(fh, lambda: depth == 1):
             if whole:
@@ -320,6 +320,7 @@ def read_vasprun(path, ctx: ReadContext):
                 decl = m.group(0).lstrip() if m else b""
             parser.feed(piece)
             yield from events()
+        closing = True
         parser.close()
         yield from events()
     except (ET.ParseError, *STREAM_ERRORS) as exc:      # cut XML, or a cut .gz/.bz2/.xz
@@ -331,8 +332,18 @@ def read_vasprun(path, ctx: ReadContext):
                                    f"element: {exc})") from None
         where = f"after step {step - 1} ({step} completed steps)" if step else \
             "before the first ionic step completed"
-        ctx.warn(f"truncated {where}: XML ends abnormally ({type(exc).__name__}: {exc}); "
-                 f"job killed or still running")
+        # expat stops on a cut file only when told the input ended (close); while fed, the text
+        # itself is wrong (overlapping writes, a disk error), or the file ends in NUL bytes: cut
+        # mid-write (a node or its file system stopped)
+        wrong = isinstance(exc, ET.ParseError) and not closing
+        nul = wrong and not tail_bytes(path, 64).strip(b"\0")
+        if wrong and not nul:
+            ctx.warn(f"malformed XML {where} ({exc}): the file is damaged there, not cut off; "
+                     f"nothing after it is read")
+        else:
+            ctx.warn(f"truncated {where}: XML ends abnormally ({type(exc).__name__}: {exc})"
+                     + ("; the file ends in NUL bytes (a write its file system did not finish)"
+                        if nul else "") + "; job killed or still running")
         return
     finally:
         fh.close()
@@ -867,6 +878,20 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
             "undo": "ISYM = 0"}
 
 
+# IBRION values whose ionic steps are no relaxation (VASP's documentation of IBRION: common practice)
+_NOT_RELAXING = {0: "molecular dynamics (IBRION = 0)",
+                 5: "finite differences (IBRION = 5): displaced copies of one structure",
+                 6: "finite differences (IBRION = 6): displaced copies of one structure",
+                 7: "linear response (IBRION = 7)", 8: "linear response (IBRION = 8)",
+                 44: "a saddle-point search (IBRION = 44, improved dimer method)"}
+
+
+def run_kind(code_settings: dict) -> str | None:
+    """What a VASP run's ionic steps are when they are no relaxation, from IBRION; else None."""
+    ibrion = (code_settings or {}).get("IBRION")
+    return None if ibrion is None else _NOT_RELAXING.get(int(ibrion))
+
+
 # ---------------------------------------------------------------- registration
 def register_all(register, register_code) -> None:
     """The VASP rows of the format table and the VASP entry of the code table."""
@@ -884,4 +909,5 @@ def register_all(register, register_code) -> None:
         run_files=("vasprun*.xml*", "OUTCAR*", "XDATCAR*", "CONTCAR*", "POSCAR*", "INCAR*"),
         settings_files=("INCAR", "INCAR.*"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
-        symmetry_setting=__name__ + ":symmetry_setting"), replace=True)
+        symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind"),
+        replace=True)
