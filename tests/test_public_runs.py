@@ -8,7 +8,8 @@ External references (named beside each check):
   from ASE's test data, a real LAMMPS relaxation made here with Debian's lammps, pw.x 4.1.2 and
   7.2 outputs (pwtools; Quantum ESPRESSO's own test-suite), and, in broken/, pw.x runs that
   stopped early (aiida-quantumespresso) and a damaged vasprun.xml (aiida-vasp), a VASP finite-
-  difference run (aiida-vasp) and a VASP NpT molecular dynamics run (custodian);
+  difference run (aiida-vasp), a VASP NpT molecular dynamics run and a hybrid relaxation whose
+  SCF never converged (custodian);
 * pw.x's own print-out in its output (cell volumes, total energies), where ASE cannot read it;
 * pymatgen's Vasprun and Structure, ASE's own readers (ase.io.read) as reference readers;
 * real pw.x outputs made here (tests/data/qe, pw.x 6.7 from Debian).
@@ -307,11 +308,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 15
+    assert summary["failed"] == [] and summary["runs"] == 16
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "15 runs (15 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "16 runs (16 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -448,6 +449,36 @@ def test_a_run_that_is_no_relaxation_says_so(folder, fmt, what):
     relax = read_run(PUB / "stage_folders" / "relax1")
     assert relax.code_settings["IBRION"] == 2
     assert not [w for w in relax.warnings if "not a relaxation" in w]
+
+
+def test_steps_whose_scf_hit_nelm_are_named_as_pymatgen_finds_them(tmp_path):
+    """Every genuine vasprun.xml here: the ionic steps driftwatch calls not converged are those
+    pymatgen's Vasprun counts NELM electronic steps for (its ``converged_electronic`` rule: fewer
+    than NELM is converged). custodian's hybrid relaxation (all 5 steps at NELM = 100) has them;
+    the relaxations that converged have no such warning."""
+    import lzma
+    files = [PUB / "custodian_nelm_hybrid" / "vasprun.xml.xz",
+             PUB / "stage_folders" / "relax1" / "vasprun.xml.gz",
+             PUB / "stage_folders" / "relax2" / "vasprun.xml.gz",
+             DOUBLE / "vasprun.xml.relax1.gz", DOUBLE / "vasprun.xml.relax2.gz",
+             REPO / "tests" / "data" / "vasp" / "vasprun_pstress.xml"]
+    seen = {}
+    for k, path in enumerate(files):
+        plain = tmp_path / f"{k}.xml"                       # pymatgen reads it uncompressed
+        with {".gz": gzip.open, ".xz": lzma.open}.get(path.suffix, open)(path, "rb") as fh:
+            plain.write_bytes(fh.read())
+        v = _vasprun(plain)
+        nelm = v.parameters["NELM"]
+        expected = [i for i, s in enumerate(v.ionic_steps) if len(s["electronic_steps"]) >= nelm]
+        (note,) = [w for w in read_run(path).warnings if "NELM" in w] or [None]
+        seen[path.parent.name] = expected
+        if expected:
+            shown = ", ".join(map(str, expected))
+            assert f"NELM = {nelm} steps without converging in {len(expected)} ionic step(s) " \
+                   f"({shown})" in note, note
+        else:
+            assert note is None, note
+    assert seen["custodian_nelm_hybrid"] == [0, 1, 2, 3, 4]
 
 
 def _unzip(gz, folder):

@@ -249,11 +249,15 @@ def read_vasprun(path, ctx: ReadContext):
     root = None
     decl = b""           # the file's XML declaration (its encoding), put before each block
     parser = ET.XMLPullParser(events=("start", "end"))
+    unconverged: list[int] = []     # steps whose SCF ran NELM electronic steps
 
     def calculation(el):
         nonlocal step
         if el.find("structure") is not None:
             step += 1
+            nelm = params.get("NELM")
+            if nelm and not params.get("LEPSILON") and len(el.findall("scstep")) >= nelm:
+                unconverged.append(step - 1)
             return _vasprun_frame(el, step - 1, numbers, params.get("PSTRESS") or 0.0, ctx)
         ctx.warn("a <calculation> without a <structure> (a GW or response-function step?) is "
                  "not an ionic step: passed over")
@@ -347,8 +351,19 @@ def read_vasprun(path, ctx: ReadContext):
         return
     finally:
         fh.close()
+        if unconverged:
+            ctx.warn(_unconverged_note(unconverged, params["NELM"]))
     if not complete:
         ctx.warn(f"truncated after step {step - 1} ({step} completed steps): no </modeling>")
+
+
+def _unconverged_note(steps: list[int], nelm: int) -> str:
+    """The warning for ionic steps whose SCF stopped at NELM (pymatgen's ``converged_electronic``
+    rule: as many electronic steps as NELM is not converged; linear-response runs excepted)."""
+    shown = ", ".join(map(str, steps[:8])) + (f" and {len(steps) - 8} more" if len(steps) > 8
+                                               else "")
+    return (f"the electronic SCF stopped at NELM = {nelm} steps without converging in "
+            f"{len(steps)} ionic step(s) ({shown}): their energies and forces are not converged")
 
 
 # ---------------------------------------------------------------- OUTCAR
