@@ -736,13 +736,13 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
             "undo": "nosym=.true."}
 
 
-# ---------------------------------------------------------------- registration
 def run_kind(code_settings: dict) -> str | None:
     """What a pw.x run's ionic steps are when they are no relaxation (``calculation``); else None."""
     calc = (code_settings or {}).get("calculation")
     return f"molecular dynamics (calculation = '{calc}')" if calc in ("md", "vc-md") else None
 
 
+# ---------------------------------------------------------------- registration
 def register_all(register, register_code) -> None:
     """The pw.x row of the format table and the pw.x entry of the code table."""
     from .registry import Code
