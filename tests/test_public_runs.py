@@ -9,7 +9,8 @@ External references (named beside each check):
   7.2 outputs (pwtools; Quantum ESPRESSO's own test-suite), and, in broken/, pw.x runs that
   stopped early (aiida-quantumespresso) and a damaged vasprun.xml (aiida-vasp), a VASP finite-
   difference run (aiida-vasp), a VASP NpT molecular dynamics run and a hybrid relaxation whose
-  SCF never converged (custodian);
+  SCF never converged (custodian), OUTCAR and vasprun.xml pairs with steps at NELM and a
+  relaxation listing NELM twice (aiida-vasp);
 * pw.x's own print-out in its output (cell volumes, total energies), where ASE cannot read it;
 * pymatgen's Vasprun and Structure, ASE's own readers (ase.io.read) as reference readers;
 * real pw.x outputs made here (tests/data/qe, pw.x 6.7 from Debian).
@@ -308,11 +309,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 16
+    assert summary["failed"] == [] and summary["runs"] == 19
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "16 runs (16 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "19 runs (19 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -458,6 +459,7 @@ def test_steps_whose_scf_hit_nelm_are_named_as_pymatgen_finds_them(tmp_path):
     the relaxations that converged have no such warning."""
     import lzma
     files = [PUB / "custodian_nelm_hybrid" / "vasprun.xml.xz",
+             PUB / "vasp620_nelm" / "vasprun.xml.gz", PUB / "vasp544_nelm" / "vasprun.xml.gz",
              PUB / "stage_folders" / "relax1" / "vasprun.xml.gz",
              PUB / "stage_folders" / "relax2" / "vasprun.xml.gz",
              DOUBLE / "vasprun.xml.relax1.gz", DOUBLE / "vasprun.xml.relax2.gz",
@@ -479,6 +481,35 @@ def test_steps_whose_scf_hit_nelm_are_named_as_pymatgen_finds_them(tmp_path):
         else:
             assert note is None, note
     assert seen["custodian_nelm_hybrid"] == [0, 1, 2, 3, 4]
+    assert seen["vasp620_nelm"] == [0, 3] and seen["vasp544_nelm"] == [0]
+
+
+def test_nelm_is_the_runs_not_the_response_codes(tmp_path):
+    """aiida-vasp's genuine relaxation vasprun.xml lists NELM = 60 under "electronic convergence"
+    and NELM = 1 under "response functions" (pymatgen's Vasprun drops the latter's repeats: its
+    _parse_params; it cannot read this file whole, '******' in an int). Every step ran fewer
+    than 60 electronic steps (counted with ElementTree): no warning."""
+    import xml.etree.ElementTree as ET
+    path = PUB / "vasp544_relax_gw_params" / "vasprun.xml.gz"
+    root = ET.fromstring(gzip.decompress(path.read_bytes()))
+    nelm = [int(i.text) for i in root.find("parameters").iter("i") if i.get("name") == "NELM"]
+    counts = [len(c.findall("scstep")) for c in root.findall("calculation")]
+    assert nelm == [60, 1] and 1 < max(counts) < 60
+    run = read_run(path)
+    assert len(run) == len(counts) == 19 and not [w for w in run.warnings if "NELM" in w]
+
+
+@pytest.mark.parametrize("folder", ["vasp620_nelm", "vasp544_nelm"])
+def test_an_outcar_names_the_same_unconverged_steps_as_its_vasprun(folder):
+    """aiida-vasp's genuine OUTCAR and vasprun.xml of one run each (VASP 6.2.0: steps 0 and 3 ran
+    NELM = 15 electronic steps, and VASP prints "EDIFF was not reached (unconverged)" for step 0;
+    VASP 5.4.4: its one step ran NELM = 8): the same frames, and the same warning from either file
+    (the last "Iteration  i(  n)" line of each step in OUTCAR, the <scstep> count in vasprun.xml)."""
+    out, xml = (read_run(PUB / folder / name) for name in ("OUTCAR.gz", "vasprun.xml.gz"))
+    np.testing.assert_allclose(out.positions, xml.positions, atol=1e-4, rtol=0)  # OUTCAR: 5 decimals
+    (a,) = [w.split(": ", 1)[1] for w in out.warnings if "NELM" in w]
+    (b,) = [w.split(": ", 1)[1] for w in xml.warnings if "NELM" in w]
+    assert a == b
 
 
 def _unzip(gz, folder):

@@ -281,7 +281,7 @@ def read_vasprun(path, ctx: ReadContext):
                 complete = tag == "modeling"
             elif depth == 1:
                 if tag == "parameters":
-                    params = {i.attrib.get("name"): _xml_value(i) for i in el.iter("i")}
+                    params = _vasprun_params(el)
                     _merge_incar(path, ctx, {k: params[k] for k in SETTING_KEYS
                                              if params.get(k) is not None})
                 elif tag == "incar":
@@ -357,6 +357,24 @@ def read_vasprun(path, ctx: ReadContext):
         ctx.warn(f"truncated after step {step - 1} ({step} completed steps): no </modeling>")
 
 
+def _vasprun_params(el) -> dict:
+    """<parameters> as ``{name: value}``, as pymatgen's Vasprun reads them: a later value replaces
+    an earlier one, except in the "response functions" separator, whose own NELM, ... (the
+    response code's, e.g. NELM = 1) do not replace the run's."""
+    out: dict = {}
+
+    def walk(node, keep):
+        for c in node:
+            if c.tag == "i":
+                name = c.attrib.get("name")
+                if not (keep and name in out):
+                    out[name] = _xml_value(c)
+            else:
+                walk(c, keep or c.attrib.get("name") == "response functions")
+    walk(el, False)
+    return out
+
+
 def _unconverged_note(steps: list[int], nelm: int) -> str:
     """The warning for ionic steps whose SCF stopped at NELM (pymatgen's ``converged_electronic``
     rule: as many electronic steps as NELM is not converged; linear-response runs excepted)."""
@@ -370,17 +388,26 @@ def _unconverged_note(steps: list[int], nelm: int) -> str:
 _OUT_INT = re.compile(r"^\s*(ISYM|ISIF|IBRION|NSW)\s*=\s*(-?\d+)")
 _OUT_SYMPREC = re.compile(r"SYMPREC\s*=\s*([-+0-9.EeDd]+)")
 _OUT_SYSTEM = re.compile(r"^\s*SYSTEM\s*=\s*(.*\S)")
+_OUT_NELM = re.compile(r"^\s*NELM\s*=\s*(\d+)")
+_OUT_LEPSILON = re.compile(r"^\s*LEPSILON\s*=\s*T")
+_OUT_ITERATION = re.compile(r"Iteration\s+\d+\(\s*(\d+)\)")     # ionic(electronic) step
 # VASP 5.4/6: the last is INISYM's (the operations used); VASP 5.2 ends with MAGSYM's
 _OUT_NSYM = re.compile(r"(?:GETGRP|DYNSYM|MAGSYM|INISYM) returns: Found\s+(\d+) space group operations")
 _OUTCAR_END = "General timing and accounting"
 
 
 def _outcar_header(path):
-    reported, title = {}, None
+    """(settings VASP reports, SYSTEM title, NELM or None, LEPSILON) from the lines before the
+    first electronic iteration."""
+    reported, title, nelm, lepsilon = {}, None, None, False
     with Lines(path) as fh:
         for line in fh:
             if "Iteration" in line:
                 break
+            m = _OUT_NELM.match(line)
+            if m and nelm is None:
+                nelm = int(m.group(1))
+            lepsilon = lepsilon or bool(_OUT_LEPSILON.match(line))
             m = _OUT_INT.match(line)
             if m and m.group(1) not in reported:
                 reported[m.group(1)] = int(m.group(2))
@@ -396,7 +423,7 @@ def _outcar_header(path):
             m = _OUT_NSYM.search(line)
             if m:
                 reported["nsym"] = int(m.group(1))
-    return reported, title
+    return reported, title, nelm, lepsilon
 
 
 class _WatchedLines(Lines):
@@ -420,8 +447,8 @@ class _WatchedLines(Lines):
 
 _SCF_END = "FREE ENERGIE OF THE ION-ELECTRON SYSTEM"   # ASE's chunk delimiter (+4 lines)
 _CELL, _POSITION, _STRESS = "direct lattice vectors", "POSITION          ", "in kB "
-_STEP_KEYS = (_SCF_END, _CELL, _POSITION, _STRESS, _OUTCAR_END)
-_TO_ENERGY_KEYS = (_SCF_END, _OUTCAR_END)            # energy-first: nothing before it is read
+_STEP_KEYS = (_SCF_END, _CELL, _POSITION, _STRESS, _OUTCAR_END, "Iteration")
+_TO_ENERGY_KEYS = (_SCF_END, _OUTCAR_END, "Iteration")   # energy-first: only its SCF before it
 _AFTER_ENERGY_KEYS = (_CELL, _POSITION, _STRESS, "Iteration", _OUTCAR_END)
 
 
@@ -430,7 +457,8 @@ class _ScanStopped(Exception):
 
 
 def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
-    """Yield (cell, positions, forces, stress|None, free_energy, decimals) per completed ionic step.
+    """Yield (cell, positions, forces, stress|None, free_energy, decimals, electronic steps|None)
+    per completed ionic step (the electronic steps: the last ``Iteration  i(  n)`` line's n).
 
     ``fd`` is a ``Lines`` after the header: the scanner jumps between the lines it reads
     (``Lines.skip_to``), so the ~10^2-10^4 lines of a step's electronic iterations are never
@@ -481,12 +509,16 @@ def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
         return True
 
     got: dict = {}
+    scf = None           # the last electronic iteration line of this step
     while True:
         try:
             line = fd.skip_to(_TO_ENERGY_KEYS if state.get("layout") == "energy-first"
                               else _STEP_KEYS)
             if not line:
                 return
+            if "Iteration" in line:
+                scf = line
+                continue
             if _SCF_END not in line:
                 if not take(line, got):
                     return
@@ -497,6 +529,8 @@ def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
             if any(k in t for t in tail for k in _STEP_KEYS[1:4]):
                 raise _ScanStopped
             layout = state.setdefault("layout", "ase" if "pos" in got else "energy-first")
+            m = _OUT_ITERATION.search(scf or "")
+            electronic, scf = (int(m.group(1)) if m else None), None
             if layout == "energy-first":     # what belongs to this step follows the delimiter
                 got = {}
                 while "pos" not in got:
@@ -515,7 +549,7 @@ def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
         if cell is None or pos is None or cell.shape != (3, 3) or pos.shape != (natoms, 6):
             raise _ScanStopped
         yield (cell, pos[:, :3], pos[:, 3:6], got.get("stress"), free,
-               decimals(got["first"].split()[0]))
+               decimals(got["first"].split()[0]), electronic)
         got = {}
 
 
@@ -532,9 +566,10 @@ def read_outcar(path, ctx: ReadContext):
     from ase.io import ParseError
     from ase.io.vasp_parsers.vasp_outcar_parsers import OutcarHeaderParser, build_header
 
-    reported, ctx.title = _outcar_header(path)
+    reported, ctx.title, nelm, lepsilon = _outcar_header(path)
     _merge_incar(path, ctx, reported)
     step = 0
+    unconverged: list[int] = []     # steps whose SCF ran NELM electronic steps (as vasprun.xml)
     with _WatchedLines(path) as fd:
         try:
             # workdir=None: do not let ASE read constraints from a CONTCAR next to it
@@ -548,9 +583,12 @@ def read_outcar(path, ctx: ReadContext):
         pbc = np.ones(3, bool)
         state: dict = {}
         try:
-            for cell, pos, forces, stress, free, d in _scan_outcar_steps(fd, len(numbers), state):
+            for cell, pos, forces, stress, free, d, electronic in _scan_outcar_steps(
+                    fd, len(numbers), state):
                 if d is not None:
                     ctx.round_to("cartesian", 10.0 ** -d)
+                if nelm and not lepsilon and electronic is not None and electronic >= nelm:
+                    unconverged.append(step)
                 yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
                             energy=free, forces=forces, stress=stress)
                 step += 1
@@ -558,10 +596,13 @@ def read_outcar(path, ctx: ReadContext):
             if state.get("layout") == "energy-first":      # ASE cannot read this layout
                 ctx.warn(f"unreadable after step {step - 1} ({step} steps read): an ionic step "
                          f"of the energy-first OUTCAR layout (VASP 4.6/5.2.2) is not as expected")
-                return
-            yield from _outcar_with_ase(path, ctx, skip=step)
-            return
-        _warn_at_end(fd, step, ctx)
+            else:               # the steps ASE reads from here on are not checked for NELM
+                yield from _outcar_with_ase(path, ctx, skip=step)
+        else:
+            _warn_at_end(fd, step, ctx)
+        finally:
+            if unconverged:
+                ctx.warn(_unconverged_note(unconverged, nelm))
 
 
 def _outcar_with_ase(path, ctx, skip):
