@@ -447,6 +447,9 @@ def test_a_run_that_is_no_relaxation_says_so(folder, fmt, what):
     assert len(run) == len(ase.io.read(path, index=":", format=fmt))                    # ASE
     (w,) = [w for w in run.warnings if "not a relaxation" in w]
     assert what in w and "compares the first and last frames" in w
+    ctx = registry.ReadContext(path)                 # the live follower's reader says it too
+    list(registry.iter_frames(path, context=ctx))
+    assert w in ctx.warnings
     relax = read_run(PUB / "stage_folders" / "relax1")
     assert relax.code_settings["IBRION"] == 2
     assert not [w for w in relax.warnings if "not a relaxation" in w]

@@ -27,7 +27,6 @@ the format name) or to a dict of :func:`register` keyword arguments including
 """
 from __future__ import annotations
 
-import dataclasses
 import fnmatch
 import importlib
 import inspect
@@ -511,6 +510,10 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
         index += n
         if last is not None:
             offset = last + 1
+    what = run_kind(ctx.settings) if index else None
+    if what:
+        ctx.warn(f"not a relaxation: {what}; its verdict compares the first and last frames (how "
+                 f"the structure moved), not where a relaxation ended")
 
 
 def _same_atoms(a, b) -> bool:
@@ -566,14 +569,8 @@ def read_run(path, format=None, *, context: ReadContext | None = None,
     for w in pick.warnings:
         ctx.warn(w)
     stages: list = []
-    run = collect(_frames(pick, ctx, stages), path=_source_of(pick, pick.source),
-                  fmt=pick.format, ctx=ctx, run_dir=pick.run_dir, stages=stages)
-    what = run_kind(run.code_settings)
-    if what:
-        run = dataclasses.replace(run, warnings=(*run.warnings, (
-            f"{run.source}: not a relaxation: {what}; its verdict compares the first and last "
-            f"frames (how the structure moved), not where a relaxation ended")))
-    return run
+    return collect(_frames(pick, ctx, stages), path=_source_of(pick, pick.source),
+                   fmt=pick.format, ctx=ctx, run_dir=pick.run_dir, stages=stages)
 
 
 def run_kind(code_settings: dict) -> str | None:
