@@ -648,6 +648,7 @@ class _Follower:
         self.source: Path | None = None          # the output file, once known
         self.printed = 0
         self.seen: set = set()
+        self.warned: set = set()                 # reader warnings printed
         self.fired: list[dict] = []
         self.stop_info = None
         self.ended = None
@@ -727,6 +728,7 @@ class _Follower:
         if self.printed == 0:
             self.say(_header(rec))
         self.report(rec)
+        self.say_warnings(ctx.warnings, final=False)
         hits = rules.select(rec["flags"], self.stop_codes)
         for fl in hits:
             if _key(fl) not in {_key(x) for x in self.fired}:
@@ -737,6 +739,16 @@ class _Follower:
             rec["live"] = self.live_section()
             records.write_json(rec, self.output)
         return True
+
+    def say_warnings(self, warnings, final: bool) -> None:
+        """Print the reader's warnings not printed yet (an SCF at NELM, pw.x stopping itself, a
+        run that is no relaxation). While the job runs its output is cut by nature: a truncation
+        warning is printed only once it has ended."""
+        for w in warnings:
+            if w in self.warned or (not final and w.split(": ", 1)[-1].startswith("truncated")):
+                continue
+            self.warned.add(w)
+            self.say(f"  warning: {w}")
 
     def report(self, rec: dict) -> None:
         new = [fl for fl in rec["flags"] if _key(fl) not in self.seen]
@@ -762,6 +774,7 @@ class _Follower:
             t.rounding = ctx.rounding
         final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
+        self.say_warnings(t.warnings, final=True)
         for fl in rules.select(final["flags"], self.stop_codes):
             if _key(fl) not in {_key(x) for x in self.fired}:
                 self.fired.append(fl)

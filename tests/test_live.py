@@ -300,6 +300,43 @@ def test_follow_finished_output_and_check_run(tmp_path):
     assert check_run(tmp_path / "run", reject_on=())[0] is True
 
 
+def test_follow_prints_the_readers_warnings_once_but_not_the_cut_of_a_running_file(tmp_path):
+    """aiida-vasp's genuine VASP 6.2.0 vasprun.xml (tests/data/public/vasp620_nelm: steps 0 and 3
+    of 5 ran NELM = 15 electronic steps, as pymatgen counts them), written in two parts while
+    driftwatch follows it: each new text of the NELM warning is printed once, as the steps come;
+    the running file's cut, which every read of it sees, is not printed."""
+    import gzip
+    import threading
+    raw = gzip.decompress((Path(__file__).parent / "data" / "public" / "vasp620_nelm" /
+                           "vasprun.xml.gz").read_bytes())
+    at = -1
+    for _ in range(3):
+        at = raw.find(b"<calculation>", at + 1)
+    path = tmp_path / "vasprun.xml"
+    path.write_bytes(raw[:at + 200])                          # steps 0 and 1 complete
+
+    buf = io.StringIO()
+
+    def grow():                                   # once the first part has been read and said
+        end = time.monotonic() + 60
+        while "NELM" not in buf.getvalue() and time.monotonic() < end:
+            time.sleep(0.05)
+        with open(path, "ab") as fh:
+            fh.write(raw[at + 200:])
+    writer = threading.Thread(target=grow)
+    writer.start()
+    try:
+        rec = follow(path, stream=buf, poll=0.1, idle=30)
+    finally:
+        writer.join()
+    assert rec["live"]["ended"].startswith("end marker") and rec["run"]["n_frames"] == 5
+    lines = buf.getvalue().splitlines()
+    said = [ln.split("NELM = 15 steps without converging in ", 1)[1].split(":")[0]
+            for ln in lines if ln.startswith("  warning:") and "NELM" in ln]
+    assert said == ["1 ionic step(s) (0)", "2 ionic step(s) (0, 3)"], lines
+    assert not [ln for ln in lines if "truncated" in ln]
+
+
 def test_follow_gives_up_without_steps_and_refuses_stop_for_traj(tmp_path):
     with pytest.raises(InputError, match="no completed ionic step"):
         follow(tmp_path / "missing.out", idle=0.3, poll=0.1, quiet=True)
