@@ -405,6 +405,32 @@ def test_outcar_scanner_equals_ases_chunk_parser(which, traj, tmp_path):
         assert run.stress is not None and np.abs(run.stress).max() > 0
 
 
+def test_forces_are_those_ase_optimisers_converge_on(tmp_path):
+    """A real ASE EMT relaxation of a Cu(111) slab with an Au adatom, its two bottom layers held by
+    FixAtoms, written by BFGS's own trajectory: driftwatch's forces equal ASE's
+    ``atoms.get_forces()`` on every frame (zero on the fixed atoms), so the last frame's fmax is
+    below the 0.05 eV/Å BFGS stopped at, which the raw forces on the fixed atoms are not."""
+    from ase.build import add_adsorbate, fcc111
+    from ase.calculators.emt import EMT
+    from ase.constraints import FixAtoms
+    from ase.optimize import BFGS
+    slab = fcc111("Cu", size=(2, 2, 3), vacuum=7.0)
+    add_adsorbate(slab, "Au", 1.9, "fcc")
+    slab.set_constraint(FixAtoms(indices=[a.index for a in slab if a.tag > 1]))
+    slab.calc = EMT()
+    with BFGS(slab, trajectory=str(tmp_path / "relax.traj"), logfile=None) as opt:
+        assert opt.run(fmax=0.05, steps=200)
+    ref = ase.io.read(tmp_path / "relax.traj", index=":")
+    run = read_run(tmp_path / "relax.traj")
+    assert len(run) == len(ref) > 2
+    for got, atoms in zip(run.forces, ref):
+        np.testing.assert_array_equal(got, atoms.get_forces())                 # ASE's own
+    fixed = ref[-1].constraints[0].index
+    assert len(fixed) == 8 and not run.forces[:, fixed].any()
+    raw = np.linalg.norm(ref[-1].get_forces(apply_constraint=False), axis=1).max()
+    assert np.linalg.norm(run.forces[-1], axis=1).max() < 0.05 < raw
+
+
 def test_genuine_vasp_symmetry_settings():
     """Values as printed in the genuine files (ASE test data): OUTCAR_example_1 has
     'ISYM = 0', the two vasprun.xml files ISYM 2 and SYMPREC 1e-5 in <parameters>."""

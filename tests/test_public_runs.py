@@ -10,7 +10,8 @@ External references (named beside each check):
   stopped early (aiida-quantumespresso) and a damaged vasprun.xml (aiida-vasp), a VASP finite-
   difference run (aiida-vasp), a VASP NpT molecular dynamics run and a hybrid relaxation whose
   SCF never converged (custodian), OUTCAR and vasprun.xml pairs with steps at NELM and a
-  relaxation listing NELM twice (aiida-vasp);
+  relaxation listing NELM twice (aiida-vasp), an extended XYZ slab relaxation with fixed atoms
+  (FAIR-Chem);
 * pw.x's own print-out in its output (cell volumes, total energies), where ASE cannot read it;
 * pymatgen's Vasprun and Structure, ASE's own readers (ase.io.read) as reference readers;
 * real pw.x outputs made here (tests/data/qe, pw.x 6.7 from Debian).
@@ -309,11 +310,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 19
+    assert summary["failed"] == [] and summary["runs"] == 20
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "19 runs (19 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "20 runs (20 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -513,6 +514,22 @@ def test_an_outcar_names_the_same_unconverged_steps_as_its_vasprun(folder):
     (a,) = [w.split(": ", 1)[1] for w in out.warnings if "NELM" in w]
     (b,) = [w.split(": ", 1)[1] for w in xml.warnings if "NELM" in w]
     assert a == b
+
+
+def test_a_slab_with_fixed_atoms_reports_the_forces_its_optimiser_saw():
+    """FAIR-Chem's genuine extended XYZ relaxation of propane on a Cu slab, its 18 bottom atoms
+    fixed by the ``move_mask`` column: forces as ASE's ``atoms.get_forces()`` gives them (ASE's
+    reader, the reference), so the record's final fmax is that of the free atoms (0.0132 eV/Å), not
+    the raw 0.146 eV/Å on a fixed one."""
+    path = PUB / "fairchem_slab_relax" / "toy_c3h8_relax.extxyz.xz"
+    ref = ase.io.read(path, index=":")
+    run = read_run(path)
+    assert len(run) == len(ref) == 101
+    np.testing.assert_array_equal(run.forces, [a.get_forces() for a in ref])
+    from driftwatch.track import analyze
+    fmax = analyze(run)["frames"][-1]["fmax"]
+    raw = np.linalg.norm(ref[-1].get_forces(apply_constraint=False), axis=1).max()
+    assert fmax == pytest.approx(0.0132, abs=5e-5) and raw == pytest.approx(0.146, abs=5e-4)
 
 
 def _unzip(gz, folder):

@@ -289,7 +289,11 @@ class ReadContext:
 
 
 def frame_from_atoms(atoms, step: int) -> Frame:
-    """Convert an ``ase.Atoms`` (with an optional single-point calculator) to a Frame."""
+    """Convert an ``ase.Atoms`` (with an optional single-point calculator) to a Frame.
+
+    Forces are those ``atoms.get_forces()`` gives (what ASE's optimisers converge on): the file's
+    constraints applied, so an atom ``FixAtoms`` holds (a slab's fixed layers; extended XYZ
+    ``move_mask``) has zero force and does not count in ``fmax``."""
     energy = forces = stress = None
     calc = atoms.calc
     if calc is not None:
@@ -297,6 +301,11 @@ def frame_from_atoms(atoms, step: int) -> Frame:
         energy = res.get("free_energy", res.get("energy"))
         energy = None if energy is None else float(energy)
         forces = res.get("forces")
+        if forces is not None and atoms.constraints:
+            forces = np.array(forces, float)
+            for c in atoms.constraints:     # as Atoms.get_forces: not the potential-energy terms
+                if not hasattr(c, "adjust_potential_energy"):
+                    c.adjust_forces(atoms, forces)
         stress = res.get("stress")
         if stress is not None:
             stress = np.asarray(stress, float)
