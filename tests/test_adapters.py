@@ -431,6 +431,21 @@ def test_forces_are_those_ase_optimisers_converge_on(tmp_path):
     assert np.linalg.norm(run.forces[-1], axis=1).max() < 0.05 < raw
 
 
+def test_a_database_of_unrelated_structures_says_how_to_pick_rows(tmp_path):
+    """An ase.db (real SQLite through ASE) of two unrelated bulk cells and no structure key: one
+    line saying the atoms change and that FILE@selection picks rows; the rows picked read."""
+    from ase.build import bulk
+    path = tmp_path / "mixed.db"
+    with ase.db.connect(path) as db:
+        db.write(bulk("Cu", "fcc", a=3.6))
+        db.write(bulk("NaCl", "rocksalt", a=5.6))
+    with pytest.raises(InputError) as err:
+        read_run(path)
+    msg = str(err.value)
+    assert "atoms count changes at step 1 (1 -> 2)" in msg and "FILE@selection" in msg, msg
+    assert len(read_run(f"{path}@id=1")) == 1
+
+
 def test_genuine_vasp_symmetry_settings():
     """Values as printed in the genuine files (ASE test data): OUTCAR_example_1 has
     'ISYM = 0', the two vasprun.xml files ISYM 2 and SYMPREC 1e-5 in <parameters>."""

@@ -532,6 +532,26 @@ def test_a_slab_with_fixed_atoms_reports_the_forces_its_optimiser_saw():
     assert fmax == pytest.approx(0.0132, abs=5e-5) and raw == pytest.approx(0.146, abs=5e-4)
 
 
+def test_a_training_set_category_is_refused_as_one_relaxation_with_what_would_split_it():
+    """libAtoms/workflow's genuine boron training set (tests/data/public/broken/
+    libatoms_gap_training_set) groups unrelated structures by ``config_type``, one of the default
+    structure keys: read whole it lists the three names; one name's frames change their atom
+    count, and the one-line error says the key and value are no relaxation and which setting
+    would split them; without structure keys, the whole file is called unrelated structures."""
+    path = PUB / "broken" / "libatoms_gap_training_set" / "B_DFT_data.xyz.gz"
+    with pytest.raises(InputError, match="holds 3 structures named by 'config_type'"):
+        read_run(path)
+    for source, keys, said in (
+            (f"{path}::buildcell", None, "the frames with config_type = 'buildcell' are not one "
+                                         "relaxation"),
+            (str(path), (), "a file of unrelated structures?")):
+        with pytest.raises(InputError) as err:
+            read_run(source, structure_keys=keys)
+        msg = str(err.value)
+        assert "atoms count changes at step 1 (6 -> 8)" in msg and said in msg, msg
+        assert "inputs.structure_keys" in msg and "@selection" not in msg and "\n" not in msg
+
+
 def _unzip(gz, folder):
     folder.mkdir(parents=True)
     path = folder / gz.name[:-3]

@@ -469,6 +469,11 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             n += 1
             last = fr.step
             yield fr
+    except InputError as exc:
+        if not _ATOMS_CHANGE.search(str(exc)):
+            raise
+        raise InputError(source, str(exc).split(": ", 1)[-1] + "; " + _not_one_run(
+            ctx, fmt_name in ("ase-db", "ase-json-db"))) from None
     except DriftwatchError:
         raise
     except Exception as exc:
@@ -479,6 +484,22 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             raise InputError(source, f"cannot be read as {what}: "
                                      f"{type(exc).__name__}: {why}") from exc
         ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})")
+
+
+_ATOMS_CHANGE = re.compile(r"atoms count changes at step \S+ \(\d+ -> \d+\)|atomic numbers "
+                           r"change at step \S+")
+
+
+def _not_one_run(ctx: ReadContext, rows: bool) -> str:
+    """Why frames of other atoms are in one run, and what would split them (``rows``: an ASE
+    database, whose rows ``FILE@selection`` picks)."""
+    got, pick = ctx.structure, " or pick rows with FILE@selection" if rows else ""
+    if got:
+        return (f"the frames with {got['key']} = {got['value']!r} are not one relaxation (a "
+                f"category of a training set?): name structures by another key "
+                f"(inputs.structure_keys){pick}")
+    return (f"a file of unrelated structures? name each with a key of inputs.structure_keys "
+            f"(the frames' info or key-value pairs){pick}")
 
 
 def _source_of(pick: _Pick, src: Path) -> str:
