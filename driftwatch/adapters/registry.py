@@ -469,8 +469,8 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             n += 1
             last = fr.step
             yield fr
-    except InputError as exc:
-        if not _ATOMS_CHANGE.search(str(exc)):
+    except InputError as exc:         # a many-structure format: say what would split it
+        if fmt.members is None or not _ATOMS_CHANGE.search(str(exc)):
             raise
         raise InputError(source, str(exc).split(": ", 1)[-1] + "; " + _not_one_run(
             ctx, fmt_name in ("ase-db", "ase-json-db"))) from None
