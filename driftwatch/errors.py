@@ -6,7 +6,7 @@ the file and the problem.
 """
 
 __all__ = [
-    "DriftwatchError", "LatticeError", "InputError", "UnknownFormatError",
+    "DriftwatchError", "LatticeError", "InputError", "UnknownFormatError", "AtomsChangeError",
     "GeometryError", "ConfigError", "SymmetryError", "OutputError",
 ]
 
@@ -30,6 +30,10 @@ class InputError(DriftwatchError, ValueError):
 
 class UnknownFormatError(InputError):
     """No registered adapter recognises the file."""
+
+
+class AtomsChangeError(InputError):
+    """The frames read as one run hold other atoms (count or elements) from one step on."""
 
 
 class GeometryError(DriftwatchError, ValueError):

@@ -37,7 +37,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
-from ..errors import DriftwatchError, InputError, UnknownFormatError
+from ..errors import AtomsChangeError, DriftwatchError, InputError, UnknownFormatError
 from ._io import check_readable, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect
 
@@ -469,10 +469,10 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             n += 1
             last = fr.step
             yield fr
-    except InputError as exc:         # a many-structure format: say what would split it
-        if fmt.members is None or not _ATOMS_CHANGE.search(str(exc)):
+    except AtomsChangeError as exc:   # a many-structure format: say what would split it
+        if fmt.members is None:
             raise
-        raise InputError(source, str(exc).split(": ", 1)[-1] + "; " + _not_one_run(
+        raise AtomsChangeError(source, f"{exc.problem}; " + _not_one_run(
             ctx, fmt_name in ("ase-db", "ase-json-db"))) from None
     except DriftwatchError:
         raise
@@ -484,10 +484,6 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             raise InputError(source, f"cannot be read as {what}: "
                                      f"{type(exc).__name__}: {why}") from exc
         ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})")
-
-
-_ATOMS_CHANGE = re.compile(r"atoms count changes at step \S+ \(\d+ -> \d+\)|atomic numbers "
-                           r"change at step \S+")
 
 
 def _not_one_run(ctx: ReadContext, rows: bool) -> str:

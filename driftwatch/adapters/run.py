@@ -19,7 +19,7 @@ from typing import Iterable, Iterator
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import AtomsChangeError, InputError
 
 __all__ = ["Frame", "Run", "ReadContext", "frame_from_atoms", "collect", "checked", "file_stamp",
            "folder_listing", "position_precision", "decimals"]
@@ -348,10 +348,10 @@ def checked(frames: Iterable, path) -> Iterator[Frame]:
                 raise InputError(path, f"no atoms at step {step}")
         else:
             if len(pos) != len(first.positions):
-                raise InputError(path, f"atoms count changes at step {step} "
-                                       f"({len(first.positions)} -> {len(pos)})")
+                raise AtomsChangeError(path, f"atoms count changes at step {step} "
+                                             f"({len(first.positions)} -> {len(pos)})")
             if fr.numbers is not first.numbers and not np.array_equal(fr.numbers, first.numbers):
-                raise InputError(path, f"atomic numbers change at step {step}")
+                raise AtomsChangeError(path, f"atomic numbers change at step {step}")
         if not np.isfinite(cell).all():
             raise InputError(path, f"non-finite cell at step {step}")
         if not np.isfinite(pos).all():

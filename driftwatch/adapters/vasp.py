@@ -255,8 +255,7 @@ def read_vasprun(path, ctx: ReadContext):
         nonlocal step
         if el.find("structure") is not None:
             step += 1
-            nelm = params.get("NELM")
-            if nelm and not params.get("LEPSILON") and len(el.findall("scstep")) >= nelm:
+            if _ran_nelm(len(el.findall("scstep")), params.get("NELM"), params.get("LEPSILON")):
                 unconverged.append(step - 1)
             return _vasprun_frame(el, step - 1, numbers, params.get("PSTRESS") or 0.0, ctx)
         ctx.warn("a <calculation> without a <structure> (a GW or response-function step?) is "
@@ -375,9 +374,14 @@ def _vasprun_params(el) -> dict:
     return out
 
 
+def _ran_nelm(electronic: int | None, nelm: int | None, lepsilon) -> bool:
+    """An ionic step whose SCF ran NELM electronic steps: not converged, as pymatgen's
+    ``converged_electronic`` counts it (linear-response runs, LEPSILON, excepted)."""
+    return bool(nelm) and not lepsilon and electronic is not None and electronic >= nelm
+
+
 def _unconverged_note(steps: list[int], nelm: int) -> str:
-    """The warning for ionic steps whose SCF stopped at NELM (pymatgen's ``converged_electronic``
-    rule: as many electronic steps as NELM is not converged; linear-response runs excepted)."""
+    """The warning for the ionic steps :func:`_ran_nelm` finds."""
     shown = ", ".join(map(str, steps[:8])) + (f" and {len(steps) - 8} more" if len(steps) > 8
                                                else "")
     return (f"the electronic SCF stopped at NELM = {nelm} steps without converging in "
@@ -587,7 +591,7 @@ def read_outcar(path, ctx: ReadContext):
                     fd, len(numbers), state):
                 if d is not None:
                     ctx.round_to("cartesian", 10.0 ** -d)
-                if nelm and not lepsilon and electronic is not None and electronic >= nelm:
+                if _ran_nelm(electronic, nelm, lepsilon):
                     unconverged.append(step)
                 yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
                             energy=free, forces=forces, stress=stress)
