@@ -78,16 +78,22 @@ class ReplayJob(Job):
 
 
 class PwJob(Job):
-    """custodian job running the real pw.x."""
+    """custodian job running the real pw.x; ``linger``: seconds the job's process stays after
+    pw.x has ended, with pw.x's exit code (as an MPI launcher finishing slowly would)."""
+
+    def __init__(self, linger=0.0):
+        self.linger = linger
 
     def setup(self, directory="./"):
         pass
 
     def run(self, directory="./"):
         env = dict(os.environ, OMP_NUM_THREADS="1")
+        cmd = ["pw.x", "-in", "pw.in"] if not self.linger else \
+            ["sh", "-c", f"pw.x -in pw.in; rc=$?; sleep {self.linger}; exit $rc"]
         with open(Path(directory) / "pw.out", "w") as out:
-            return subprocess.Popen(["pw.x", "-in", "pw.in"], cwd=directory, stdout=out,
-                                    stderr=subprocess.STDOUT, env=env)
+            return subprocess.Popen(cmd, cwd=directory, stdout=out, stderr=subprocess.STDOUT,
+                                    env=env)
 
     def postprocess(self, directory="./"):
         pass
@@ -160,21 +166,27 @@ def test_stop_handler_dry_run_only_logs(tmp_path):
 
 @pytest.mark.pwx
 @pytest.mark.skipif(shutil.which("pw.x") is None, reason="pw.x not on PATH")
-def test_stop_handler_with_real_pwx_under_custodian(tmp_path):
+@pytest.mark.parametrize("linger", [0.0, 1.0])
+def test_stop_handler_with_real_pwx_under_custodian(tmp_path, linger):
+    """The soft stop ends the custodian run as the handler's logged stop, also when the job's
+    process outlives pw.x's "JOB DONE" by several polls (``linger``): custodian keeps only its
+    last poll's answer, and pw.x stopped mid-SCF exits with code 2, which custodian would raise
+    as ReturnCodeError (seen once under load before the handler reported the end at every
+    check)."""
     from test_live import ALUMINIUM_VC_RELAX, PSEUDO
     (tmp_path / "pw.in").write_text(ALUMINIUM_VC_RELAX)
     shutil.copy(PSEUDO, tmp_path / PSEUDO.name)
     h = SymmetryStopHandler(stop_on=["lattice-nearing"])
-    c = Custodian([h], [PwJob()], directory=str(tmp_path), polling_time_step=0.1,
+    c = Custodian([h], [PwJob(linger)], directory=str(tmp_path), polling_time_step=0.1,
                   monitor_freq=1, max_errors=5)
     c.run()                                  # raises_runtime_error=False: returns, logs the stop
     text = (tmp_path / "pw.out").read_text()
     assert "Program stopped by user request" in text and "JOB DONE." in text
     corr = c.run_log[-1]["corrections"]
     assert corr[0]["soft_stop"]["path"].endswith("al7.EXIT")
-    # custodian ended the run as this handler's unrecoverable error (logged, not raised): whether
-    # the handler's second report ("ended after the soft stop") is polled depends on timing
-    assert isinstance(c.run_log[-1]["handler"], SymmetryStopHandler)
+    if linger:       # polls saw the job ended (with no linger pw.x may exit before the next poll)
+        assert "the job ended after the soft stop" in corr[-1]["errors"][0]
+    assert isinstance(c.run_log[-1]["handler"], SymmetryStopHandler)     # ended on this stop
     assert not list(tmp_path.rglob("*.EXIT"))
     assert len(read_run(tmp_path / "pw.out").cells) < 10       # the unstopped run takes 12
 

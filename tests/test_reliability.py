@@ -178,7 +178,8 @@ def _ids(cases):
     return [c.name for c in cases]
 
 
-CORPUS_NAMES = _ids(build_corpus(Path(tempfile.mkdtemp(prefix="dw-corpus-ids-"))))
+with tempfile.TemporaryDirectory(prefix="dw-corpus-ids-") as _tmp:   # names only; removed at once
+    CORPUS_NAMES = _ids(build_corpus(Path(_tmp)))
 
 
 def _case(corpus, name) -> Case:

@@ -19,10 +19,12 @@ How custodian treats them (read from ``custodian/custodian.py``, checked with re
   ``rules.persistence.steps`` steps), ``correct`` writes the code's stop file
   (VASP ``STOPCAR`` / pw.x ``<prefix>.EXIT``) and the code stops itself cleanly. ``correct`` returns
   ``"actions": None``: a correction *with* actions makes custodian rerun the job, which a collapsed
-  structure does not need. The handler reports once more when the stopped job has written its end
-  marker, so custodian ends the run as an unrecoverable error of this handler: ``Custodian.run()``
-  returns normally and records it (``raises_runtime_error=False``, the default), or raises
-  ``NonRecoverableError`` with ``fail_job=True``. Later jobs of that custodian run are not started.
+  structure does not need. Once the stopped job has written its end marker the handler reports at
+  every check (custodian keeps only its last poll's answer, and a job still exiting would be
+  polled again; pw.x stopped mid-SCF returns a non-zero code, which custodian would raise as
+  ``ReturnCodeError``), so custodian ends the run as an unrecoverable error of this handler:
+  ``Custodian.run()`` returns normally and records it (``raises_runtime_error=False``, the
+  default), or raises ``NonRecoverableError`` with ``fail_job=True``. Later jobs of that custodian run are not started.
 """
 
 from __future__ import annotations
@@ -116,6 +118,7 @@ class SymmetryStopHandler(ErrorHandler):
         self._flag = None          # the flag raised (pending correct)
         self._stop = None          # the stop request made for this output
         self._reported_end = False
+        self._left = False         # whether the code left our stop file (removed at the end)
         self.dry_runs: list[dict] = []
 
     def _follow(self, directory) -> dict | None:
@@ -134,11 +137,12 @@ class SymmetryStopHandler(ErrorHandler):
         return t.record(newest=_needs_spectra(self.stop_on))
 
     def check(self, directory="./") -> bool:
-        if self._stop is not None:     # stop requested: report once more when the job has ended
-            if not self._reported_end and _end_marker(self._tracker.source, self._tracker.format):
-                self._reported_end = True
-                return True
-            return False
+        if self._stop is not None:
+            # stop requested: report the job's end at every check once its end marker is written.
+            # custodian keeps only its last poll's answer, so one report could be cleared by a
+            # poll that comes while the code, done, still exits (pw.x then returns a non-zero code
+            # and custodian would raise ReturnCodeError instead of ending on this stop)
+            return _end_marker(self._tracker.source, self._tracker.format) is not None
         try:
             rec = self._follow(directory)
         except DriftwatchError as exc:
@@ -173,7 +177,9 @@ class SymmetryStopHandler(ErrorHandler):
             msg = (f"driftwatch: {flag['code']} at step {flag['step']}: {flag['message']}; "
                    f"soft stop requested ({self._stop['action']} {self._stop['path']})")
             return {"errors": [msg], "actions": None, "soft_stop": self._stop}
-        left = self._tidy()
+        if not self._reported_end:
+            self._reported_end, self._left = True, self._tidy()
+        left = self._left
         msg = (f"driftwatch: the job ended after the soft stop requested at step "
                f"{self._stop['flag']['step']} ({self._stop['flag']['code']})")
         return {"errors": [msg], "actions": None, "soft_stop": self._stop,
