@@ -154,14 +154,17 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot list folder ({exc.strerror or exc})"}
             continue
-        from .adapters.registry import recognised, scan_folder
+        from .adapters.registry import inputs_only_problem, recognised, scan_folder
         try:
             kind, got = scan_folder(folder, [e.name for e in files])
         except OSError as exc:
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot read folder ({exc.strerror or exc})"}
             continue
-        if kind in ("run", "ambiguous"):      # an ambiguous folder fails as one run, saying why
+        if kind == "inputs":      # failed unless a run lies below it (discover decides)
+            yield {"run": rid, "source": str(folder), "inputs_only": True,
+                   "error": f"{folder}: {inputs_only_problem(*got, folder)}"}
+        elif kind in ("run", "ambiguous"):      # an ambiguous folder fails as one run, saying why
             if real not in seen_runs:
                 seen_runs.add(real)
                 yield RunSpec(rid, str(folder), "folder")
@@ -199,6 +202,10 @@ def discover(roots, *, include=(), exclude=(), skip=(),
         exclude: the same; a run that one matches is dropped.
         skip: paths never entered or counted (the output folder, the database file).
 
+    A folder of a code's job inputs with no output (a job not run yet, or one that stopped
+    before writing) is a failed entry saying so, unless a run lies below it (a campaign's
+    template inputs beside its run folders).
+
     Returns:
         (runs sorted by id, failed entries ``{"run", "source", "error"}``). Ids are unique.
     """
@@ -206,7 +213,7 @@ def discover(roots, *, include=(), exclude=(), skip=(),
         roots = [roots]
     skip_real = {os.path.realpath(p) for p in skip}
     seen_dirs, seen_runs = set(), set()
-    runs, failed, ids = [], [], set()
+    runs, failed, ids, unrun = [], [], set(), []
     for root in roots:
         root = Path(root)
         name = _root_name(root)
@@ -222,7 +229,11 @@ def discover(roots, *, include=(), exclude=(), skip=(),
             found = _walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys)
         for item in found:
             if isinstance(item, dict):
-                if not _matches(RunSpec(item["run"], item["source"], "folder"), exclude):
+                spec = RunSpec(item["run"], item["source"], "folder")
+                if item.pop("inputs_only", False):
+                    if (not include or _matches(spec, include)) and not _matches(spec, exclude):
+                        unrun.append(item)
+                elif not _matches(spec, exclude):
                     failed.append(item)
                 continue
             if include and not _matches(item, include):
@@ -235,6 +246,11 @@ def discover(roots, *, include=(), exclude=(), skip=(),
                 rid = f"{item.id}~{k}"
             ids.add(rid)
             runs.append(RunSpec(rid, item.path, item.kind))
+    below = {os.path.realpath(r.path.split("::")[0]) for r in runs}
+    for item in unrun:
+        top = os.path.join(os.path.realpath(item["source"]), "")
+        if not any(p.startswith(top) for p in below):
+            failed.append(item)
     return sorted(runs, key=lambda r: r.id), failed
 
 

@@ -198,14 +198,16 @@ def _inspect_table(rec: dict) -> str:
     lines.append("")
     kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
     n = rec["run"]["n_frames"]
+    ends = rec["run"].get("kind") == "end-points"
     frames_word = ("2 structures (initial and final only; no ionic steps between them)"
-                   if rec["run"].get("kind") == "end-points" else f"{n} frame{'s' if n != 1 else ''}")
+                   if ends else f"{n} frame{'s' if n != 1 else ''}")
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
                  f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")
     stages = rec["run"].get("stages") or []
     if stages:
         lines.append("  stages: " + ", ".join(
+            f"{st['name']} ({'final' if st['first_frame'] else 'initial'})" if ends else
             f"{st['name']} (steps {frames[st['first_frame']]['step']}-"
             f"{frames[st['first_frame'] + st['n_frames'] - 1]['step']})" for st in stages
             if st["n_frames"]))

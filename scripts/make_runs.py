@@ -151,7 +151,7 @@ def pw_input(run: QERun) -> str:
     electrons = {"conv_thr": 1.0e-9, "mixing_beta": 0.5}
     text = _namelist("control", control) + _namelist("system", system) + _namelist("electrons", electrons)
     text += _namelist("ions", {"ion_dynamics": "bfgs", **run.ions})
-    if run.calculation == "vc-relax":
+    if run.calculation in ("vc-relax", "vc-md"):
         text += _namelist("cell", {"cell_dynamics": "bfgs", "press_conv_thr": 0.05, **run.cellnl})
     text += "ATOMIC_SPECIES\n"
     for s in species:
@@ -632,6 +632,38 @@ def make_nscf_after_scf(out_root: Path, np_: int) -> dict:
             "bytes": sum(f.stat().st_size for f in files)}
 
 
+def make_cell_dynamics(out_root: Path, np_: int) -> dict:
+    """Two variable-cell pw.x runs of an invented two-atom Al cell that use pw.x's cell dynamics
+    instead of BFGS: ``vc_md/`` (calculation='vc-md', Wentzcovitch dynamics, 4 steps; no relaxation)
+    and ``vc_relax_damped/`` (calculation='vc-relax', damped Wentzcovitch dynamics, 3 steps). Their
+    outputs say which they are only in the lines pw.x prints (read without the input). They go to
+    ``tests/data/qe_dynamics`` (not tests/data/qe, whose folders the tests take as relaxations)."""
+    final = out_root / STAGED_RUNS["cell_dynamics"][0]
+    rundir = final.parent / ".qe_dynamics.partial"
+    shutil.rmtree(rundir, ignore_errors=True)
+    base = dict(tree="tests/data/qe_dynamics", symbols=["Al", "Al"], kpts=(4, 4, 3, 0, 0, 0),
+                cell=np.diag([2.90, 2.85, 4.10]), ecutwfc=15.0,
+                frac=np.array([[0.0, 0.0, 0.0], [0.52, 0.49, 0.50]]))
+    runs = {"vc_md": QERun(name="vc_md", calculation="vc-md", control={"nstep": 4, "dt": 20},
+                           ions={"ion_dynamics": "beeman"}, cellnl={"cell_dynamics": "w",
+                                                                    "press": 10.0}, **base),
+            "vc_relax_damped": QERun(name="vc_relax_damped", calculation="vc-relax",
+                                     control={"nstep": 3, "dt": 20}, ions={"ion_dynamics": "damp"},
+                                     cellnl={"cell_dynamics": "damp-w", "press": 10.0}, **base)}
+    t0 = time.time()
+    for name, run in runs.items():
+        (rundir / name).mkdir(parents=True)
+        shutil.copy(out_root / "tests/data/qe/pseudo" / PSEUDO["Al"], rundir / name)
+        (rundir / name / "pw.in").write_text(pw_input(run).replace("'../pseudo'", "'./'"))
+        _pw(rundir / name, "pw.in", "pw.out", 1)
+        for f in (rundir / name).iterdir():      # vc-md also writes pw.e, pw.tv, ... (averages)
+            if f.is_file() and f.name not in ("pw.in", "pw.out"):
+                f.unlink()
+    files = _finish_tree(rundir, final)
+    return {"name": "cell_dynamics", "wall_s": round(time.time() - t0, 1),
+            "file": str(final.relative_to(out_root)), "bytes": sum(f.stat().st_size for f in files)}
+
+
 @dataclass
 class _Named:
     name: str
@@ -641,7 +673,8 @@ class _Named:
 
 STAGED_RUNS = {"restart_numbered": ("tests/data/qe", make_restart_numbered),
                "restart_stage_folders": ("tests/data/qe", make_restart_stage_folders),
-               "nscf_after_scf": ("tests/data/qe_nscf", make_nscf_after_scf)}
+               "nscf_after_scf": ("tests/data/qe_nscf", make_nscf_after_scf),
+               "cell_dynamics": ("tests/data/qe_dynamics", make_cell_dynamics)}
 """name -> (the folder it goes to, its maker)."""
 
 

@@ -310,11 +310,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 20
+    assert summary["failed"] == [] and summary["runs"] == 22
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "20 runs (20 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "22 runs (22 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -739,3 +739,161 @@ def test_cache_entry_of_the_right_schema_but_wrong_content_is_a_miss(tmp_path):
     assert third["analysed"] == 1 and third["failed"] == []
     fourth = _quiet_audit([camp], tmp_path / "out", workers=1)               # a good entry: a hit
     assert fourth["cached"] == 1 and fourth["analysed"] == 0
+
+
+# ---------------------------------------------------------------- job folders without a trajectory
+RELAX1 = PUB / "stage_folders" / "relax1"        # genuine VASP 5.2.11 inputs and outputs
+
+
+def _job(folder: Path, *names, src=RELAX1):
+    folder.mkdir(parents=True)
+    for n in names:
+        shutil.copy(src / n, folder / n)
+    return folder
+
+
+def test_job_folders_with_inputs_and_no_output_are_failed_entries_not_kept_runs(tmp_path):
+    """A campaign as a scheduler leaves it: jobs that never ran (genuine VASP inputs INCAR, KPOINTS,
+    POSCAR of pymatgen-db's relax1; a real pw.x input of example_runs), one that died before its
+    first ionic step (VASP leaves CONTCAR empty: common practice), and template inputs at the
+    campaign's root above its run folders. The unrun jobs are listed as failed with a one-line
+    reason (they were analysed as a one-structure run 'kept', or not listed at all); the
+    template is not a run."""
+    camp = tmp_path / "camp"
+    _job(camp, "INCAR", "KPOINTS")                                     # template at the root
+    shutil.copytree(QE / "relax_atoms_to_sites", camp / "done")
+    _job(camp / "vasp_queued", "INCAR", "KPOINTS", "POSCAR")
+    (_job(camp / "vasp_died", "INCAR", "POSCAR") / "CONTCAR").write_bytes(b"")
+    _job(camp / "qe_queued", "pw.in", src=REPO / "example_runs" / "B01_qe_vcrelax")
+    runs, failed = discover([camp])
+    assert [r.id for r in runs] == ["camp/done"]
+    errors = {f["run"]: f["error"] for f in failed}
+    assert sorted(errors) == ["camp/qe_queued", "camp/vasp_died", "camp/vasp_queued"]
+    for rid, err in errors.items():
+        assert err.startswith(f"{tmp_path / rid}: ") and "\n" not in err
+        assert "a job not run yet, or stopped before writing its output" in err
+        with pytest.raises(InputError) as exc:                   # inspect says the same
+            read_run(tmp_path / rid)
+        assert str(exc.value) == err
+    assert "a pw.x input (pw.in) and no pw.x output" in errors["camp/qe_queued"]
+    assert "VASP inputs (INCAR, KPOINTS, POSCAR) and no VASP output" in errors["camp/vasp_queued"]
+    assert errors["camp/vasp_died"].endswith(f"pass {tmp_path / 'camp/vasp_died/POSCAR'} to read "
+                                             f"that structure alone")
+    assert len(read_run(camp / "vasp_queued" / "POSCAR")) == 1      # the file itself still reads
+    assert len(read_run(camp / "vasp_queued", format="vasp-poscar")) == 1
+    result = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert result["analysed"] == 1 and len(result["failed"]) == 3
+    import csv
+    with open(tmp_path / "out" / "campaign.csv", newline="") as fh:
+        (row,) = [r for r in csv.DictReader(fh) if r["run"] == "camp/vasp_queued"]
+    assert row["verdict"] == "failed" and "VASP inputs" in row["error"]
+
+
+def test_poscar_and_contcar_without_a_trajectory_are_the_runs_end_points(tmp_path):
+    """A VASP folder whose trajectory was cleaned away (genuine relax1 of pymatgen-db without its
+    vasprun.xml): POSCAR and CONTCAR are read as the initial and final structures (an end-points
+    run), equal to the first and last structure pymatgen's Vasprun reads from the deleted
+    vasprun.xml, and spglib's groups of both (spglib called directly) are the verdict's."""
+    import spglib
+    d = _job(tmp_path / "cleaned", "INCAR", "KPOINTS", "POSCAR", "CONTCAR", "OSZICAR")
+    run = read_run(d)
+    assert run.kind == "end-points" and len(run) == 2
+    assert [s["name"] for s in run.stages] == ["POSCAR", "CONTCAR"]
+    v = _vasprun(RELAX1 / "vasprun.xml.gz")
+    _same_frames(run, [v.initial_structure, v.final_structure], atol=1e-5)     # pymatgen
+    (w,) = [w for w in run.warnings if "no VASP trajectory" in w]
+    assert "the steps between are not seen" in w
+    assert not [w for w in run.warnings if "single structure" in w]
+    import driftwatch
+    rec = driftwatch.analyze(d)
+    got = rec["summary"]["verdict"]["structure"]
+    want = [spglib.get_symmetry_dataset((s.lattice.matrix, s.frac_coords, s.atomic_numbers),
+                                        symprec=got["symprec"]).number
+            for s in (v.initial_structure, v.final_structure)]
+    assert [got["initial"]["group"], got["final"]["group"]] == want                 # spglib
+    alone = _job(tmp_path / "contcar_only", "CONTCAR")            # CONTCAR alone: one structure
+    assert len(read_run(alone)) == 1
+    assert any("single structure" in w for w in read_run(alone).warnings)
+
+
+def _ase_pwx_relaxation(folder: Path):
+    """A real BFGS relaxation driven by ASE's Espresso calculator (pw.x 6.7 called once per step,
+    calculation 'scf', as ASE does): an invented rattled Si2 cell."""
+    from ase.build import bulk
+    from ase.calculators.espresso import Espresso, EspressoProfile
+    from ase.optimize import BFGS
+    folder.mkdir()
+    shutil.copy(QE / "pseudo" / "Si.pz-vbc.UPF", folder)
+    atoms = bulk("Si", "diamond", a=5.43)
+    atoms.positions[1] += [0.06, 0.02, -0.03]
+    atoms.calc = Espresso(profile=EspressoProfile(command="pw.x", pseudo_dir="."),
+                          pseudopotentials={"Si": "Si.pz-vbc.UPF"}, directory=str(folder),
+                          input_data={"control": {"tprnfor": True, "disk_io": "none",
+                                                  "outdir": "./scratch"},
+                                      "system": {"ecutwfc": 16}}, kpts=(3, 3, 3))
+    BFGS(atoms, trajectory=str(folder / "relax.traj"), logfile=None).run(fmax=0.02, steps=8)
+    shutil.rmtree(folder / "scratch", ignore_errors=True)
+
+
+@pytest.mark.skipif(shutil.which("pw.x") is None, reason="pw.x not on PATH")
+def test_a_relaxation_driven_by_ase_is_read_from_its_trajectory_not_the_last_scf(tmp_path):
+    """ASE's calculators run the code once per step and overwrite its output: the folder's
+    espresso.pwo holds the last step's scf only (it was analysed as a one-frame run 'kept'). The
+    trajectory beside it is the relaxation: read, equal to ASE's own read of it frame by frame,
+    its last frame the structure of the pw.x output (ASE's espresso-out reader)."""
+    d = tmp_path / "ase_qe"
+    _ase_pwx_relaxation(d)
+    traj = ase.io.read(d / "relax.traj", index=":")
+    assert len(traj) >= 3
+    run = read_run(d)
+    assert Path(run.source).name == "relax.traj" and len(run) == len(traj)
+    np.testing.assert_array_equal(run.positions, [a.positions for a in traj])        # ASE
+    last_scf = ase.io.read(d / "espresso.pwo", format="espresso-out")                # ASE
+    np.testing.assert_allclose(run.positions[-1], last_scf.positions, atol=1e-6)
+    (w,) = [w for w in run.warnings if "single-point calculation" in w]
+    assert "calculation = 'scf'" in w and "espresso.pwo" in w
+    runs, failed = discover([d])
+    assert [r.path for r in runs] == [str(d)] and not failed                      # one run
+    (d / "espresso.pwi").write_text((d / "espresso.pwi").read_text().replace(
+        "&CONTROL", "&CONTROL\n   calculation = 'relax'"))        # a pw.x relaxation: its output
+    assert Path(read_run(d).source).name == "espresso.pwo"
+
+
+def test_a_vasp_single_point_beside_a_trajectory(tmp_path):
+    """The same rule for VASP (ASE's Vasp calculator writes INCAR without NSW): a genuine one-step
+    vasprun.xml (ASE's test data) with INCAR of NSW unset, beside a trajectory, gives the
+    trajectory; with NSW = 40 and IBRION = 2 in INCAR the vasprun.xml is the run."""
+    d = tmp_path / "ase_vasp"
+    d.mkdir()
+    shutil.copy(REPO / "tests" / "data" / "vasp" / "vasprun_pstress.xml", d / "vasprun.xml")
+    (d / "INCAR").write_text("ENCUT = 400\nISMEAR = 0\n")
+    ase.io.write(d / "opt.traj", [ase.io.read(d / "vasprun.xml")] * 2)
+    run = read_run(d)
+    assert Path(run.source).name == "opt.traj" and len(run) == 2
+    assert any("single-point calculation (NSW unset)" in w for w in run.warnings)
+    (d / "INCAR").write_text("NSW = 40\nIBRION = 2\n")
+    assert Path(read_run(d).source).name == "vasprun.xml"
+
+
+@pytest.mark.parametrize("path, calculation", [
+    (PUB / "qe_testsuite_md" / "benchmark.out.git.inp=md.in.args=1.gz", "md"),
+    (PUB / "qe_testsuite_langevin" / "benchmark.out.git.inp=langevin.in.gz", "md"),
+    (QE.parent / "qe_dynamics" / "vc_md" / "pw.out", "vc-md"),
+    (QE.parent / "qe_dynamics" / "vc_relax_damped" / "pw.out", "vc-relax")])
+def test_pwx_dynamics_without_its_input_is_told_from_the_output(tmp_path, path, calculation):
+    """A pw.x output read without its input says what it ran in the lines pw.x prints (QE's
+    PW/src/dynamics_module.f90 and vcsmd.f90): QE's own test-suite outputs of a Verlet and a
+    Langevin molecular dynamics run, and real pw.x 6.7 runs made here of vc-md and of a vc-relax
+    by damped cell dynamics (both print "Entering Dynamics;" every step; only the relaxation
+    prints "... Damped Cell Dynamics Minimization:" first). The dynamics get the "not a
+    relaxation" warning; the damped relaxation does not. Frames: as many as ASE's reader gives."""
+    alone = tmp_path / path.name
+    shutil.copy(path, alone)
+    run = read_run(alone)
+    assert run.code_settings["calculation"] == calculation
+    assert len(run) == len(ase.io.read(alone, index=":", format="espresso-out"))     # ASE
+    warned = [w for w in run.warnings if "not a relaxation" in w]
+    assert bool(warned) == (calculation != "vc-relax")
+    if path.parent.parent.name == "qe_dynamics":       # with its input: the input's calculation
+        assert read_run(path).code_settings["settings_from"] == "pw.in"
+        assert read_run(path).code_settings["calculation"] == calculation

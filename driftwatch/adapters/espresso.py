@@ -61,12 +61,20 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
 _STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
+# how pw.x announces its dynamics (PW/src/dynamics_module.f90 and vcsmd.f90 of QE's sources): the
+# run's calculation when no input says it. A variable-cell run prints "Entering Dynamics;" each
+# step, after "... Damped ... Minimization:" on its first step when it is a vc-relax; its first
+# step with no such line before it is vc-md (a restart's first step, it > 1, decides nothing).
+_DYNAMICS = {"Molecular Dynamics Calculation": "md",
+             "Over-damped Langevin Dynamics Calculation": "md",
+             "Dynamics Minimization:": "vc-relax", "Entering Dynamics;": "vc-md"}
+_VC_FIRST = re.compile(r"Entering Dynamics;\s+it\s*=\s*1\s")
 _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
 _MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
-          *_CLOSERS, *_STOPS)
+          *_CLOSERS, *_STOPS, *_DYNAMICS)
 
 
 class _Config:
@@ -377,6 +385,11 @@ def read_pw_out(path, ctx: ReadContext):
                         yield emit(cur)
             elif any(m in line for m in _STOPS):
                 ctx.warn(f"pw.x stopped early: '{line.strip()}' (line {fh.lineno})")
+            elif any(m in line for m in _DYNAMICS):
+                if "calculation" not in ctx.settings and \
+                        ("Entering Dynamics;" not in line or _VC_FIRST.search(line)):
+                    ctx.settings["calculation"] = next(v for m, v in _DYNAMICS.items()
+                                                       if m in line)
             elif _CLOSER.search(line):
                 if "JOB DONE" in line:
                     done = True
@@ -635,21 +648,53 @@ def _stage_folders(folder: Path, ctx) -> list | None:
     return [(label, path, fmt) for _, label, path, fmt in found]
 
 
+_STATIC = ("scf", "nscf", "bands")
+
+
+def _single_point_traj(folder: Path, names, out: Path, ctx):
+    """The trajectory file beside a single-point pw.x output (``calculation`` scf, nscf or bands in
+    its input), as the folder's pick (see ``registry.beside_single_point``); else None."""
+    from .registry import beside_single_point
+
+    def single_point():
+        pin = _input_for(out, ctx)
+        try:
+            calc = read_pw_input(pin)["calculation"] if pin is not None else None
+        except Exception:  # noqa: BLE001 - an unreadable input: the output is read, as without one
+            return None
+        return f"calculation = '{calc}'" if calc in _STATIC else None
+    return beside_single_point(folder, names, out, single_point, ("espresso-out",), ctx)
+
+
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
     """A QE run folder: exactly one pw.x output (``*.out``, ``*.pwo``, ``*.log``, any compression),
     whose ``pw.in`` (or ``<stem>.in``) gives the settings; or the stages of one multi-stage run:
     outputs that each continue the one before (restarts, numbered copies, new runs from the last
     structure; :func:`_as_stages`), side by side or in stage subfolders ``relax1/``, ``relax2/``
     with no pw.x output in the folder itself. Other folders with several pw.x outputs are not one
-    run: each output is a run of its own (discovery lists them all)."""
+    run: each output is a run of its own (discovery lists them all). A single-point output (an
+    ASE calculator's) beside one trajectory of another format: that trajectory is the run."""
     from .registry import FolderPick
     if format is not None and format != "espresso-out":
         return None
     outs = pw_outputs(folder, names, ctx)
     if len(outs) == 1:
-        return FolderPick([("", outs[0], "espresso-out")])
+        return _single_point_traj(folder, names, outs[0], ctx) or \
+            FolderPick([("", outs[0], "espresso-out")])
     stages = _as_stages(outs, ctx) if outs else _stage_folders(Path(folder), ctx)
     return FolderPick(stages) if stages else None
+
+
+def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
+    """(what the folder holds, those file names) for a folder of pw.x inputs (``*.in``, ``*.pwi``,
+    ``*.inp`` holding ``&control`` or ``&system``) and no pw.x output: a job not run yet, or one
+    that stopped before writing; else None. Called for folders :func:`pick_from_folder` did not
+    take as a run."""
+    got = [n for n in names if _is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)]
+    if not got:
+        return None
+    what = "a pw.x input" if len(got) == 1 else "pw.x inputs"
+    return f"{what} ({', '.join(got)}) and no pw.x output", got
 
 
 # ---------------------------------------------------------------- live: end, soft stop
@@ -755,5 +800,6 @@ def register_all(register, register_code) -> None:
         run_files=("*.out*", "*.pwo*", "*.log*", "*.in*", "*.pwi*"),
         settings_files=("*.in", "*.pwi", "*.inp"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
-        symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind"),
+        symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind",
+        inputs_only=__name__ + ":inputs_only"),
         replace=True)

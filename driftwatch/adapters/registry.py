@@ -106,6 +106,9 @@ class Code:
       handling when it was on (``{"operations", "how", "undo"}``), None when off or unknown.
     * ``run_kind(code_settings) -> str | None``: what the run's ionic steps are when they are no
       relaxation (molecular dynamics, finite differences, ...), None for a relaxation or unknown.
+    * ``inputs_only(folder, names, ctx) -> (str, [names]) | None``: for a folder ``folder`` did not
+      claim, whether it holds the code's job inputs and no output (a job not run yet, or stopped
+      before writing): what it holds, in words, and those files.
     """
 
     name: str
@@ -118,6 +121,7 @@ class Code:
     soft_stop: Callable | str | None = None
     symmetry_setting: Callable | str | None = None
     run_kind: Callable | str | None = None
+    inputs_only: Callable | str | None = None
     aliases: tuple = ()
 
     def function(self, attr: str) -> Callable | None:
@@ -359,10 +363,42 @@ def recognised(path, name: str | None = None) -> bool:
         return any(fnmatch.fnmatchcase(low, g.lower()) for f in _formats.values() for g in f.globs)
 
 
+def beside_single_point(folder, names, output, single_point: Callable[[], str | None],
+                        code_formats, ctx=None):
+    """The pick of a code's folder whose one output is a single-point calculation beside exactly
+    one trajectory of another format: the relaxation an ASE optimiser drove, calling the code once
+    per step (the output holds the last step only). ``single_point()``: what makes the output one
+    (``"calculation = 'scf'"``), or None; asked only when a file named like another format's
+    (``relax.traj``) is there. None when the output is no single point, or no such trajectory, or
+    several, are there."""
+    other = [f for f in _formats.values() if f.name not in code_formats]
+    names = [n for n in names if any(fnmatch.fnmatchcase(strip_compression(n).lower(), g.lower())
+                                     for f in other for g in f.globs)]
+    what = single_point() if names else None
+    if what is None:
+        return None
+    found = []
+    for n in names:
+        p = Path(folder) / n
+        fmt = _safe_detect(p)
+        if fmt is not None and fmt not in code_formats:
+            found.append((p, fmt))
+    if len(found) != 1:
+        return None
+    (path, fmt), = found
+    if ctx is not None:
+        ctx.uses(path)
+    return FolderPick([("", path, fmt)], (
+        f"{output}: a single-point calculation ({what}) beside {path.name}: read {path.name}, the "
+        f"relaxation an ASE optimiser drove (the code's output holds its last step only)",))
+
+
 def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None):
     """What a folder holds, as discovery sees it: ``("run", FolderPick)`` when a code claims it as a
-    run folder (its stages included), ``("ambiguous", [files])`` when several codes do, else
-    ``("files", [file names a format recognises])``.
+    run folder (its stages included), ``("ambiguous", [files])`` when several codes do,
+    ``("inputs", (what, [files a format reads]))`` when it holds a code's job inputs and no output
+    nor other readable file (a job not run yet), else ``("files", [file names a format
+    recognises])``.
 
     ``names``: the folder's non-hidden regular file names (listed here when None).
     """
@@ -394,6 +430,11 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
             ok = ok or (_safe_detect(p) == format)
         if ok:
             files.append(n)
+    for code in _codes.values() if format is None else ():
+        fn = code.function("inputs_only")
+        got = fn(folder, list(names), ctx) if fn is not None else None
+        if got is not None and set(files) <= set(got[1]):
+            return "inputs", (got[0], [n for n in files if _size(folder / n)])
     return "files", files
 
 
@@ -423,11 +464,24 @@ def _safe_detect(p):
         return None
 
 
+def _size(path: Path) -> int:
+    try:
+        return path.stat().st_size
+    except OSError:
+        return 0
+
+
 def _is_file(entry) -> bool:
     try:
         return entry.is_file()
     except OSError:
         return False
+
+
+def inputs_only_problem(what: str, readable, folder) -> str:
+    """The one-line problem of a folder of job inputs and no output (``scan_folder``'s "inputs")."""
+    also = f"; pass {Path(folder) / readable[0]} to read that structure alone" if readable else ""
+    return f"{what}: a job not run yet, or stopped before writing its output{also}"
 
 
 def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
@@ -437,6 +491,8 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
                                f"pass the file itself")
     if kind == "run":
         return _Pick(list(got.stages), path, tuple(got.warnings))
+    if kind == "inputs":
+        raise InputError(path, inputs_only_problem(*got, path))
     if not got:
         hint = f" readable as {format!r}" if format else ""
         raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "

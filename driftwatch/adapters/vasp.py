@@ -726,8 +726,9 @@ def read_poscar(path, ctx: ReadContext):
             break
     atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
     ctx.title = text.splitlines()[0].strip() or None
-    ctx.warn("a single structure (POSCAR/CONTCAR), not a trajectory: "
-             "no drift can be measured from it alone")
+    if ctx.kind != "end-points":              # else one of a run's two end points
+        ctx.warn("a single structure (POSCAR/CONTCAR), not a trajectory: "
+                 "no drift can be measured from it alone")
     yield frame_from_atoms(atoms, 0)
 
 
@@ -807,8 +808,51 @@ def _pick_stage(folder: Path, kinds: dict, format, ctx, staged: bool):
                 f"{folder}: no complete VASP output; reading the incomplete {path.name}"
             return path, fmt, note
     if single is not None and not staged:
-        return single, "vasp-poscar", f"{folder}: only {single.name}, a single structure"
+        return single, "vasp-poscar", f"{folder}: no VASP trajectory; read {single.name} alone"
     return None
+
+
+def _end_points(folder: Path, kinds: dict, job: bool, ctx):
+    """The pick of an unstaged folder with no VASP trajectory: POSCAR then a non-empty CONTCAR as
+    two stages of an end-points run (``ReadContext.kind``); False for POSCAR alone in a job folder
+    (``job``: an INCAR is there; the job's input, not a run); None otherwise (CONTCAR or POSCAR
+    alone is read as one structure)."""
+    from .registry import FolderPick
+    contcar = _best_variant(kinds["CONTCAR"], "vasp-poscar", ctx) if "CONTCAR" in kinds else None
+    poscar = _best_variant(kinds["POSCAR"], "vasp-poscar", ctx) if "POSCAR" in kinds else None
+    if poscar is None or contcar is None:
+        return False if job and contcar is None and poscar is not None else None
+    if ctx is not None:
+        ctx.kind = "end-points"
+    return FolderPick([("POSCAR", poscar, "vasp-poscar"), ("CONTCAR", contcar, "vasp-poscar")],
+                      (f"{folder}: no VASP trajectory (vasprun.xml, OUTCAR, XDATCAR); read "
+                       f"{poscar.name} as the initial structure and {contcar.name} as the final: "
+                       f"the steps between are not seen",))
+
+
+_JOB_INPUTS = ("INCAR", "POSCAR", "KPOINTS", "POTCAR")
+
+
+def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
+    """(what the folder holds, those file names) for a folder of VASP job inputs (an INCAR, with
+    POSCAR, KPOINTS, ...) and no VASP output: a job not run yet, or one that stopped before
+    writing; else None. Called for folders :func:`pick_from_folder` did not take as a run; an
+    empty CONTCAR (VASP stopped before its first ionic step) is among the files. A folder with
+    no INCAR is no job folder (a NEB end point ``00/`` holds only POSCAR): its POSCAR is read as
+    one structure, as any structure file."""
+    got = [n for n in names if strip_compression(n) in _JOB_INPUTS]
+    if not any(strip_compression(n) == "INCAR" for n in got):
+        return None
+    empty = [n for n in names if strip_compression(n) == "CONTCAR" and _empty(Path(folder) / n)]
+    return (f"VASP inputs ({', '.join(got)}) and no VASP output (vasprun.xml, OUTCAR, XDATCAR or a "
+            f"non-empty CONTCAR)", got + empty)
+
+
+def _empty(path: Path) -> bool:
+    try:
+        return path.stat().st_size == 0
+    except OSError:
+        return False
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
@@ -824,6 +868,13 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
       when they hold no vasprun.xml or OUTCAR; a note says so.
     * A folder with no VASP output of its own whose subfolders ``relax1/``, ``relax2/`` (or
       ``stage1``, ``restart_2``, ...) are VASP run folders: those subfolders are its stages.
+    * No trajectory (vasprun.xml, OUTCAR, XDATCAR), e.g. cleaned up after the run: POSCAR and a
+      non-empty CONTCAR are the run's first and last structures (two stages, a warning says the
+      steps between are not seen); CONTCAR alone is one structure. POSCAR alone beside an INCAR is
+      a job's input, not a run (:func:`inputs_only` says so), unless ``format="vasp-poscar"`` asks
+      for it; with no INCAR (a structure folder, a NEB end point) it is one structure.
+    * One single-point output (INCAR: NSW 0 or unset, or IBRION = -1; ASE's calculator) beside one
+      trajectory of another format (``relax.traj``): that trajectory is the run, with a warning.
     """
     from .registry import FolderPick
     from .run import ReadContext
@@ -836,6 +887,11 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
             return sub
         if not groups or format not in (None, "vasp-poscar"):
             return None
+        if format is None and set(groups) == {""}:
+            job = any(strip_compression(n) == "INCAR" for n in names)
+            ends = _end_points(folder, groups[""], job, ctx)
+            if ends is not None:
+                return ends if ends else None       # False: POSCAR alone, a job's input
     staged = any(st for st in groups)
     stages, notes = [], []
     for st in sorted(groups, key=_stage_order):
@@ -856,7 +912,29 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
         return None
     if len(stages) == 1 and stages[0][0] in ("", None):
         stages = [("", stages[0][1], stages[0][2])]
+        if format is None and stages[0][2] in ("vasp-xml", "vasp-out"):
+            traj = _single_point_traj(folder, names, stages[0][1], ctx)
+            if traj is not None:
+                return traj
     return FolderPick(stages, tuple(notes))
+
+
+def _single_point_traj(folder: Path, names, out: Path, ctx):
+    """The trajectory file beside a single-point VASP output (its INCAR: NSW 0 or unset, or
+    IBRION = -1), as the folder's pick (see ``registry.beside_single_point``); else None."""
+    from .registry import beside_single_point
+
+    def single_point():
+        incar = _sibling(out, "INCAR", ctx)
+        try:
+            tags = read_incar(incar) if incar is not None else None
+        except (OSError, *STREAM_ERRORS):
+            tags = None
+        if tags is None or not (tags.get("NSW", 0) <= 0 or tags.get("IBRION") == -1):
+            return None
+        what = f"NSW = {tags['NSW']}" if "NSW" in tags else "NSW unset"
+        return what + (", IBRION = -1" if tags.get("IBRION") == -1 else "")
+    return beside_single_point(folder, names, out, single_point, _CODE_FORMATS, ctx)
 
 
 def _stage_folders(folder: Path, format, ctx):
@@ -953,6 +1031,9 @@ def run_kind(code_settings: dict) -> str | None:
 
 
 # ---------------------------------------------------------------- registration
+_CODE_FORMATS = ("vasp-xml", "vasp-out", "vasp-xdatcar", "vasp-poscar")
+
+
 def register_all(register, register_code) -> None:
     """The VASP rows of the format table and the VASP entry of the code table."""
     from .registry import Code
@@ -963,11 +1044,11 @@ def register_all(register, register_code) -> None:
     register("vasp-xdatcar", __name__ + ":read_xdatcar", globs=("*XDATCAR*",),
              magic=rb"^[ \t]*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
     register_code(Code(
-        name="vasp", label="VASP", aliases=("vasp5", "vasp6"),
-        formats=("vasp-xml", "vasp-out", "vasp-xdatcar", "vasp-poscar"),
+        name="vasp", label="VASP", aliases=("vasp5", "vasp6"), formats=_CODE_FORMATS,
         folder=__name__ + ":pick_from_folder",
         run_files=("vasprun*.xml*", "OUTCAR*", "XDATCAR*", "CONTCAR*", "POSCAR*", "INCAR*"),
         settings_files=("INCAR", "INCAR.*"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
-        symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind"),
+        symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind",
+        inputs_only=__name__ + ":inputs_only"),
         replace=True)
