@@ -177,6 +177,7 @@ def _group_cell(f: dict, symprec: float) -> str:
 def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
+    from .records import END_POINTS
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -199,8 +200,7 @@ def _inspect_table(rec: dict) -> str:
     kind = "layer (2D lattice)" if dim == 2 else "bulk (3D lattice)"
     n = rec["run"]["n_frames"]
     ends = rec["run"].get("kind") == "end-points"
-    frames_word = ("2 structures (initial and final only; no ionic steps between them)"
-                   if ends else f"{n} frame{'s' if n != 1 else ''}")
+    frames_word = END_POINTS if ends else f"{n} frame{'s' if n != 1 else ''}"
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
                  f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")

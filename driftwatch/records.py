@@ -252,6 +252,10 @@ def csv_text(rows: list[dict], columns=None) -> str:
     return buf.getvalue()
 
 
+END_POINTS = "2 structures (initial and final only; no ionic steps between them)"
+"""How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
+
+
 def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, versions: dict) -> dict:
     """Assemble a record from a run, its geometry, the effective config and per-frame entries."""
     from collections import Counter

@@ -811,6 +811,12 @@ def test_poscar_and_contcar_without_a_trajectory_are_the_runs_end_points(tmp_pat
                                         symprec=got["symprec"]).number
             for s in (v.initial_structure, v.final_structure)]
     assert [got["initial"]["group"], got["final"]["group"]] == want                 # spglib
+    from driftwatch.records import END_POINTS
+    audit([d], tmp_path / "out", progress="off")        # the run page names the two structures
+    (page,) = (tmp_path / "out" / "report" / "runs").glob("*.html")
+    html = page.read_text()
+    assert END_POINTS in html and "ionic steps</td>" not in html
+    assert ("'step' 1 is the final structure" in html) == bool(rec["flags"])
     alone = _job(tmp_path / "contcar_only", "CONTCAR")            # CONTCAR alone: one structure
     assert len(read_run(alone)) == 1
     assert any("single structure" in w for w in read_run(alone).warnings)

@@ -456,7 +456,8 @@ def _summary_section(rec):
         ("verdict", _badge(verdict, f"v-{verdict}") + f" <span class=\"muted\">"
                     f"{e(s['verdict']['text'])}</span>"),
         ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
-                      f"{e(run.get('n_frames'))} ionic steps"),
+                      + (e(_records.END_POINTS) if run.get("kind") == "end-points" else
+                         f"{e(run.get('n_frames'))} ionic steps")),
         ("kind", ("layer (2D lattice in the plane; vacuum along axis "
                   f"{e(geo.get('vacuum_axis'))})" if dim == 2 else "bulk (3D lattice)")
          + f"<br><span class=\"muted\">{e(geo.get('reason'))}</span>"),
@@ -520,8 +521,10 @@ def _flags_section(rec):
         f"<td class=\"num\">{e(f.get('step'))}</td><td>{e(f.get('type') or '')}</td>"
         f"<td>{e(f.get('message'))}<br><span class=\"muted\">{e(FLAG_TEXT.get(f.get('code'), ''))}"
         f"</span></td></tr>" for f in flags)
-    return ("<h2>Flags</h2><p class=\"muted\">'step' is the first ionic step from which the flag "
-            "holds.</p>"
+    what = ("'step' 1 is the final structure (an end-points run: no ionic steps between the two)"
+            if (rec.get("run") or {}).get("kind") == "end-points" else
+            "'step' is the first ionic step from which the flag holds")
+    return (f"<h2>Flags</h2><p class=\"muted\">{what}.</p>"
             "<table><thead><tr><th>concerns</th><th>code</th><th>step</th><th>type</th><th>what was seen"
             f"</th></tr></thead><tbody>{rows}</tbody></table>")
 
