@@ -24,7 +24,8 @@ How custodian treats them (read from ``custodian/custodian.py``, checked with re
   polled again; pw.x stopped mid-SCF returns a non-zero code, which custodian would raise as
   ``ReturnCodeError``), so custodian ends the run as an unrecoverable error of this handler:
   ``Custodian.run()`` returns normally and records it (``raises_runtime_error=False``, the
-  default), or raises ``NonRecoverableError`` with ``fail_job=True``. Later jobs of that custodian run are not started.
+  default), or raises ``NonRecoverableError`` with ``fail_job=True``. Later jobs of that
+  custodian run are not started.
 """
 
 from __future__ import annotations
