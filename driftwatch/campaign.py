@@ -246,11 +246,10 @@ def discover(roots, *, include=(), exclude=(), skip=(),
                 rid = f"{item.id}~{k}"
             ids.add(rid)
             runs.append(RunSpec(rid, item.path, item.kind))
-    below = {os.path.realpath(r.path.split("::")[0]) for r in runs}
-    for item in unrun:
-        top = os.path.join(os.path.realpath(item["source"]), "")
-        if not any(p.startswith(top) for p in below):
-            failed.append(item)
+    above = set()                                   # every folder that holds a run below it
+    for r in runs:
+        above.update(Path(os.path.realpath(r.path.split("::")[0])).parents)
+    failed += [item for item in unrun if Path(os.path.realpath(item["source"])) not in above]
     return sorted(runs, key=lambda r: r.id), failed
 
 

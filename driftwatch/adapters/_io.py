@@ -35,7 +35,7 @@ import zlib
 from ..errors import InputError
 
 __all__ = ["COMPRESSED", "STREAM_ERRORS", "open_bytes", "open_regular", "check_readable",
-           "stream_truncated", "peek", "strip_compression", "Lines", "tail_bytes",
+           "stream_truncated", "file_size", "peek", "strip_compression", "Lines", "tail_bytes",
            "max_decompressed", "quiet_numbers", "NotRegularFile", "MAX_DECOMPRESSED", "MAX_RATIO",
            "MAX_TEXT_RATIO", "RATIO_FLOOR", "MAX_LINE", "STEP"]
 
@@ -281,6 +281,14 @@ def open_bytes(path, *, max_ratio: float = MAX_RATIO):
 
 def stream_truncated(fh) -> bool:
     return bool(getattr(getattr(fh, "raw", None), "truncated", False))
+
+
+def file_size(path) -> int:
+    """Bytes of a file on disk (not decompressed); 0 when it is missing or cannot be stat'ed."""
+    try:
+        return os.stat(path).st_size
+    except OSError:
+        return 0
 
 
 def peek(path, size: int = 50_000) -> bytes:

@@ -38,7 +38,7 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 from ..errors import AtomsChangeError, DriftwatchError, InputError, UnknownFormatError
-from ._io import check_readable, peek, quiet_numbers, strip_compression
+from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
@@ -434,7 +434,7 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         fn = code.function("inputs_only")
         got = fn(folder, list(names), ctx) if fn is not None else None
         if got is not None and set(files) <= set(got[1]):
-            return "inputs", (got[0], [n for n in files if _size(folder / n)])
+            return "inputs", (got[0], [n for n in files if file_size(folder / n)])
     return "files", files
 
 
@@ -462,13 +462,6 @@ def _safe_detect(p):
         return detect(p)
     except (InputError, OSError):
         return None
-
-
-def _size(path: Path) -> int:
-    try:
-        return path.stat().st_size
-    except OSError:
-        return 0
 
 
 def _is_file(entry) -> bool:

@@ -27,7 +27,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from ._io import STREAM_ERRORS, Lines, open_bytes, strip_compression, tail_bytes
+from ._io import STREAM_ERRORS, Lines, file_size, open_bytes, strip_compression, tail_bytes
 from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
@@ -843,16 +843,10 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     got = [n for n in names if strip_compression(n) in _JOB_INPUTS]
     if not any(strip_compression(n) == "INCAR" for n in got):
         return None
-    empty = [n for n in names if strip_compression(n) == "CONTCAR" and _empty(Path(folder) / n)]
+    empty = [n for n in names
+             if strip_compression(n) == "CONTCAR" and not file_size(Path(folder) / n)]
     return (f"VASP inputs ({', '.join(got)}) and no VASP output (vasprun.xml, OUTCAR, XDATCAR or a "
             f"non-empty CONTCAR)", got + empty)
-
-
-def _empty(path: Path) -> bool:
-    try:
-        return path.stat().st_size == 0
-    except OSError:
-        return False
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):

@@ -118,8 +118,7 @@ class SymmetryStopHandler(ErrorHandler):
         self._tracker = None
         self._flag = None          # the flag raised (pending correct)
         self._stop = None          # the stop request made for this output
-        self._reported_end = False
-        self._left = False         # whether the code left our stop file (removed at the end)
+        self._left = None          # at the first end report: did the code leave our stop file
         self.dry_runs: list[dict] = []
 
     def _follow(self, directory) -> dict | None:
@@ -132,7 +131,7 @@ class SymmetryStopHandler(ErrorHandler):
         if t is None or t.source != ctx.path or len(frames) < len(t):
             t = self._tracker = Tracker(self.config, source=ctx.path, format=fmt,
                                         run_dir=str(directory))
-            self._stop, self._reported_end = None, False
+            self._stop, self._left = None, None
         t.warnings, t.code_settings, t.rounding = list(ctx.warnings), dict(ctx.settings), ctx.rounding
         t.replace(frames)
         return t.record(newest=_needs_spectra(self.stop_on))
@@ -178,13 +177,12 @@ class SymmetryStopHandler(ErrorHandler):
             msg = (f"driftwatch: {flag['code']} at step {flag['step']}: {flag['message']}; "
                    f"soft stop requested ({self._stop['action']} {self._stop['path']})")
             return {"errors": [msg], "actions": None, "soft_stop": self._stop}
-        if not self._reported_end:
-            self._reported_end, self._left = True, self._tidy()
-        left = self._left
+        if self._left is None:
+            self._left = self._tidy()
         msg = (f"driftwatch: the job ended after the soft stop requested at step "
                f"{self._stop['flag']['step']} ({self._stop['flag']['code']})")
         return {"errors": [msg], "actions": None, "soft_stop": self._stop,
-                "stop_file_left_by_code": left}
+                "stop_file_left_by_code": self._left}
 
     def _tidy(self) -> bool:
         """Remove our stop file if the code left it (so a restart does not stop at once)."""
