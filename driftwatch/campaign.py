@@ -139,7 +139,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             later_files = []
             stack, later_dirs = later_dirs[::-1], []
             continue
-        folder, rid = stack.pop()
+        folder, rid, *end = stack.pop()
         real = os.path.realpath(folder)
         if real in seen_dirs or real in skip:
             continue
@@ -161,7 +161,12 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot read folder ({exc.strerror or exc})"}
             continue
-        if kind == "inputs":      # failed unless a run lies below it (discover decides)
+        ends = ()
+        if end and kind != "run":   # a band's end point holding no run: its fixed input
+            continue
+        if kind == "band":        # no run itself, its images are; its end points hold inputs
+            ends = set(got[1])
+        elif kind == "inputs":    # failed unless a run lies below it (discover decides)
             yield {"run": rid, "source": str(folder), "inputs_only": True,
                    "error": f"{folder}: {inputs_only_problem(*got, folder)}"}
         elif kind in ("run", "ambiguous"):      # an ambiguous folder fails as one run, saying why
@@ -183,7 +188,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
                     seen_runs.add(freal)
                     yield from _file_runs(path, frid, keys)
         for e in reversed(dirs):
-            item = (Path(folder) / e.name, f"{rid}/{e.name}")
+            item = (Path(folder) / e.name, f"{rid}/{e.name}", *(("end",) if e.name in ends else ()))
             (later_dirs if e.is_symlink() else stack).append(item)
 
 
@@ -925,6 +930,13 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
           file=stream)
     print(f"verdicts: {vc}", file=stream)
     print(f"flags (runs): {fc}", file=stream)
+    if summary.get("not_relaxation"):
+        what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
+                       for x in summary["not_relaxation"])
+        print(f"not relaxations: {len(summary['not_relaxation'])} runs ("
+              f"{', '.join(f'{k} {v}' for k, v in sorted(what.items()))}; column not_relaxation "
+              f"of campaign.csv): their verdicts compare how the structure moved from the first "
+              f"frame to the last, not where a relaxation ended", file=stream)
     tol = summary["tolerance"]
     for c in tol["changes"]:
         print(f"spglib verdict changes between symprec {c['low']:g} and {c['high']:g} Å: "
@@ -1167,6 +1179,9 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
         "cached": res.cached,
         "failed": sorted(failed, key=lambda f: f["run"]),
         "skipped": sorted(skipped, key=lambda f: f["run"]),
+        "not_relaxation": [{"run": r["run"], "what": r["view"]["csv"]["not_relaxation"]}
+                           for r in sorted(ok, key=lambda r: r["run"])
+                           if r["view"]["csv"]["not_relaxation"]],
         "rejected": [{"run": r["run"], "code": f["code"], "step": f["step"]}
                      for r in ok for f in select(r["view"]["flags"], list(reject_on))],
         "flag_counts": dict(sorted(Counter(c for r in ok for c in

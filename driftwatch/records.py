@@ -283,6 +283,7 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
             "position_precision": getattr(run, "position_precision", None),
             "stages": [dict(st) for st in getattr(run, "stages", ())],
             "kind": kind,
+            "not_relaxation": getattr(run, "not_relaxation", None),
             "structure_key": getattr(run, "structure_key", None),
         },
         "geometry": {
@@ -327,13 +328,14 @@ def to_atoms(record: dict, i: int = -1):
     return atoms
 
 
-CSV_COLUMNS = ("run", "source", "format", "kind", "dimension", "n_frames", "n_atoms", "formula",
-               "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
+CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "dimension", "n_frames",
+               "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
                "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
                "group_verdict", "group_symprec_A", "group_initial", "group_final",
                "group_from_step", "flags", "recommended_symprec_A", "warnings", "error")
 """Columns of ``campaign.csv``; the same names (without the ``_A`` unit suffix) are the ase.db keys
-(:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed)."""
+(:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed);
+``not_relaxation`` says what the ionic steps are when they are no relaxation (empty otherwise)."""
 
 
 def verdict_fields(record: dict) -> dict:
@@ -362,7 +364,7 @@ def csv_row(record: dict, run_id: str = "") -> dict:
                                                 "verdict": "failed", "error": record["error"]}
     r, v = record["run"], verdict_fields(record)
     row = {"run": run_id, "source": r["source"], "format": r["format"],
-           "kind": r.get("kind", "trajectory"),
+           "kind": r.get("kind", "trajectory"), "not_relaxation": r.get("not_relaxation") or "",
            "dimension": record["geometry"]["dimension"], "n_frames": r["n_frames"],
            "n_atoms": r["n_atoms"], "formula": r["formula"], "fixed_cell": r["fixed_cell"],
            "flags": " ".join(sorted({f["code"] for f in record["flags"]})),
@@ -386,6 +388,8 @@ def db_key_values(record: dict, run_id: str) -> dict:
           "n_frames": int(r["n_frames"]), "fixed_cell": bool(r["fixed_cell"]),
           "source_format": r["format"], "kind": r.get("kind", "trajectory"),
           "n_flags": len(record["flags"])}
+    if r.get("not_relaxation"):
+        kv["not_relaxation"] = r["not_relaxation"]
     for key, val in verdict_fields(record).items():
         if isinstance(val, float):
             if math.isfinite(val):

@@ -310,11 +310,19 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 22
+    assert summary["failed"] == [] and summary["runs"] == 25
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "22 runs (22 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert "25 runs (25 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    # the runs whose steps are no relaxation (their settings, as the files print them) are counted
+    assert ("not relaxations: 7 runs (finite differences 1, molecular dynamics 3, "
+            "nudged-elastic-band image 3; column not_relaxation of campaign.csv)") in proc.stdout
+    assert {x["run"] for x in summary["not_relaxation"]} == {
+        "mixed/vasp544_finite_differences", "mixed/vasp541_npt_md", "mixed/vasp544_neb/01",
+        "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
+        "mixed/qe_testsuite_md/benchmark.out.git.inp=md.in.args=1.gz",
+        "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -448,12 +456,14 @@ def test_a_run_that_is_no_relaxation_says_so(folder, fmt, what):
     assert len(run) == len(ase.io.read(path, index=":", format=fmt))                    # ASE
     (w,) = [w for w in run.warnings if "not a relaxation" in w]
     assert what in w and "compares the first and last frames" in w
+    assert run.not_relaxation.startswith(what)
     ctx = registry.ReadContext(path)                 # the live follower's reader says it too
     list(registry.iter_frames(path, context=ctx))
     assert w in ctx.warnings
     relax = read_run(PUB / "stage_folders" / "relax1")
     assert relax.code_settings["IBRION"] == 2
     assert not [w for w in relax.warnings if "not a relaxation" in w]
+    assert relax.not_relaxation is None
 
 
 def test_steps_whose_scf_hit_nelm_are_named_as_pymatgen_finds_them(tmp_path):
@@ -903,3 +913,99 @@ def test_pwx_dynamics_without_its_input_is_told_from_the_output(tmp_path, path, 
     if path.parent.parent.name == "qe_dynamics":       # with its input: the input's calculation
         assert read_run(path).code_settings["settings_from"] == "pw.in"
         assert read_run(path).code_settings["calculation"] == calculation
+
+
+NEB = PUB / "vasp544_neb"        # genuine VASP 5.4.4 (VTST) nudged-elastic-band folders, IMAGES = 3
+
+
+def _neb_campaign(tmp_path) -> Path:
+    """aiida-vasp's NEB folders as VASP leaves them: the band's own (damaged) vasprun.xml beside the
+    parent INCAR, the end points 00/ and 04/ with POSCAR alone, the images 01/-03/ with output."""
+    camp = tmp_path / "camp"
+    shutil.copytree(NEB, camp / "neb")
+    _unzip(PUB / "broken" / "aiida_vasp_neb_damaged" / "vasprun.xml.gz", tmp_path / "xml")
+    shutil.copy(tmp_path / "xml" / "vasprun.xml", camp / "neb")
+    return camp
+
+
+def test_a_neb_band_is_read_as_its_images_not_as_relaxations(tmp_path):
+    """A nudged-elastic-band calculation as VASP lays it out (INCAR with IMAGES = 3 in the parent,
+    images 01-03 and fixed end points 00, 04: VASP's IMAGES tag, common practice; the genuine
+    aiida-vasp folders of tests/data/public). Before: the parent was a failed run (its vasprun.xml,
+    written by the images together, is damaged), the end points two one-structure runs 'kept',
+    and the images three relaxations. Now: the images are the runs, each with every ionic step
+    ASE's OUTCAR reader gives and the warning that it is no relaxation (its own OUTCAR says it
+    ran the NEB: VTST's "CHAIN: Running the NEB"); the parent and the end points are no runs, and
+    inspecting the parent says why in one line."""
+    camp = _neb_campaign(tmp_path)
+    runs, failed = discover([camp])
+    assert [r.id for r in runs] == ["camp/neb/01", "camp/neb/02", "camp/neb/03"] and failed == []
+    for i in ("01", "02", "03"):
+        run = read_run(camp / "neb" / i)
+        out = _unzip(NEB / i / "OUTCAR.gz", tmp_path / f"o{i}")
+        ref = ase.io.read(out, index=":", format="vasp-out")                             # ASE
+        assert len(run) == len(ref) == 23
+        np.testing.assert_allclose(run.positions, [a.positions for a in ref], atol=1e-8, rtol=0)
+        assert "CHAIN: Running the NEB" in out.read_text()       # VTST: the file says it is NEB
+        assert run.code_settings["IMAGES"] == 3 and run.code_settings["image"] == i
+        assert run.code_settings["IBRION"] == 3                  # from the OUTCAR itself
+        (w,) = [w for w in run.warnings if "not a relaxation" in w]
+        assert f"a nudged-elastic-band image (folder {i} of IMAGES = 3)" in w
+        assert "compares the first and last frames" in w
+    with pytest.raises(InputError) as err:
+        read_run(camp / "neb")
+    msg = str(err.value)
+    assert "parent folder of a nudged-elastic-band calculation (INCAR: IMAGES = 3)" in msg
+    assert "images 01 to 03 are runs of their own" in msg and "vasprun.xml" in msg
+    assert "\n" not in msg
+    assert len(read_run(camp / "neb" / "00")) == 1           # an end point asked for: its POSCAR
+    result = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert result["analysed"] == 3 and result["failed"] == []
+    assert [x["run"] for x in result["not_relaxation"]] == ["camp/neb/01", "camp/neb/02",
+                                                            "camp/neb/03"]
+    import csv
+    with open(tmp_path / "out" / "campaign.csv", newline="") as fh:
+        col = {r["run"]: r["not_relaxation"] for r in csv.DictReader(fh)}
+    from ase.db import connect
+    with connect(tmp_path / "out" / "runs.db") as db:
+        kv = {row.run_id: row.get("not_relaxation") for row in db.select()}
+    assert col == kv and col["camp/neb/03"].startswith("a nudged-elastic-band image (folder 03")
+    rec = _record_of(tmp_path / "out", "neb/02/OUTCAR.gz")
+    assert any("nudged-elastic-band image (folder 02" in w for w in rec["run"]["warnings"])
+    assert rec["run"]["not_relaxation"].startswith("a nudged-elastic-band image (folder 02")
+    (camp / "neb" / "INCAR").write_text((camp / "neb" / "INCAR").read_text() + "# edited\n")
+    again = _quiet_audit([camp], tmp_path / "out", workers=1)   # the images read the parent INCAR
+    assert again["analysed"] == 3 and again["cached"] == 0
+    audit([camp], tmp_path / "out", progress="off")                 # the report marks them
+    index = (tmp_path / "out" / "report" / "index.html").read_text()
+    assert index.count(">not a relaxation</span>") == 3 and "<th>not relaxations</th>" in index
+    page = (tmp_path / "out" / "report" / "runs" / "camp_neb_01.html").read_text()
+    assert "a nudged-elastic-band image (folder 01 of IMAGES = 3)" in page
+
+
+def test_neb_images_not_run_and_end_points_that_ran(tmp_path):
+    """An image folder with its POSCAR and no output (a band not run yet) is a failed entry saying
+    so, not a one-structure run; an end point that holds a relaxation of its own (here the genuine
+    relax1 vasprun.xml of pymatgen-db, as a user may relax an end point in place) is a run. A
+    folder laid out like a band whose INCAR sets no IMAGES is no band: its folders are read as
+    before."""
+    camp = _neb_campaign(tmp_path)
+    for f in ("OUTCAR.gz", "CONTCAR"):
+        (camp / "neb" / "02" / f).unlink()
+    shutil.copy(RELAX1 / "vasprun.xml.gz", camp / "neb" / "04")
+    runs, failed = discover([camp])
+    assert [r.id for r in runs] == ["camp/neb/01", "camp/neb/03", "camp/neb/04"]
+    (entry,) = failed
+    assert entry["run"] == "camp/neb/02"
+    assert "image 02 of a nudged-elastic-band calculation (../INCAR: IMAGES = 3) with POSCAR" in \
+        entry["error"] and "a job not run yet" in entry["error"]
+    with pytest.raises(InputError) as err:
+        read_run(camp / "neb" / "02")
+    assert str(err.value) == entry["error"]
+    end = read_run(camp / "neb" / "04")          # read as its own files say (IBRION = 2)
+    assert end.code_settings["IBRION"] == 2 and "image" not in end.code_settings
+    assert not [w for w in end.warnings if "not a relaxation" in w]
+    (camp / "neb" / "INCAR").write_text("IBRION = 3\nNSW = 50\n")          # no IMAGES: no band
+    runs, failed = discover([camp])
+    assert "camp/neb/00" in [r.id for r in runs]
+    assert not [w for w in read_run(camp / "neb" / "01").warnings if "nudged" in w]

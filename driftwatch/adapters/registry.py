@@ -109,6 +109,10 @@ class Code:
     * ``inputs_only(folder, names, ctx) -> (str, [names]) | None``: for a folder ``folder`` did not
       claim, whether it holds the code's job inputs and no output (a job not run yet, or stopped
       before writing): what it holds, in words, and those files.
+    * ``band(folder, names, ctx) -> (str, [names]) | None``: whether ``folder`` is the parent of a
+      calculation of many images each run in a subfolder of its own (VASP's nudged elastic band):
+      why it is no run, in words, and the subfolders that are the band's fixed inputs rather than
+      runs unless they hold a run (the end points).
     """
 
     name: str
@@ -122,6 +126,7 @@ class Code:
     symmetry_setting: Callable | str | None = None
     run_kind: Callable | str | None = None
     inputs_only: Callable | str | None = None
+    band: Callable | str | None = None
     aliases: tuple = ()
 
     def function(self, attr: str) -> Callable | None:
@@ -396,9 +401,10 @@ def beside_single_point(folder, names, output, single_point: Callable[[], str | 
 def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None):
     """What a folder holds, as discovery sees it: ``("run", FolderPick)`` when a code claims it as a
     run folder (its stages included), ``("ambiguous", [files])`` when several codes do,
-    ``("inputs", (what, [files a format reads]))`` when it holds a code's job inputs and no output
-    nor other readable file (a job not run yet), else ``("files", [file names a format
-    recognises])``.
+    ``("band", (why, [end-point subfolders]))`` when it is the parent of a nudged-elastic-band
+    calculation (its images are runs, it is none), ``("inputs", (what, [files a format reads]))``
+    when it holds a code's job inputs and no output nor other readable file (a job not run yet),
+    else ``("files", [file names a format recognises])``.
 
     ``names``: the folder's non-hidden regular file names (listed here when None).
     """
@@ -418,6 +424,11 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         return "ambiguous", [st[1].name for c in claims for st in c.stages]
     if claims:
         return "run", claims[0]
+    for code in _codes.values() if format is None else ():
+        fn = code.function("band")
+        got = fn(folder, list(names), ctx) if fn is not None else None
+        if got is not None:
+            return "band", got
     files = []
     for n in names:
         p = folder / n
@@ -486,6 +497,8 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
         return _Pick(list(got.stages), path, tuple(got.warnings))
     if kind == "inputs":
         raise InputError(path, inputs_only_problem(*got, path))
+    if kind == "band":
+        raise InputError(path, got[0])
     if not got:
         hint = f" readable as {format!r}" if format else ""
         raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "
@@ -576,7 +589,7 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
         index += n
         if last is not None:
             offset = last + 1
-    what = run_kind(ctx.settings) if index else None
+    what = ctx.not_relaxation = run_kind(ctx.settings) if index else None
     if what:
         ctx.warn(f"not a relaxation: {what}; its verdict compares the first and last frames (how "
                  f"the structure moved), not where a relaxation ended")

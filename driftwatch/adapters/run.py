@@ -96,6 +96,10 @@ class Run:
     """``"trajectory"`` (ionic steps as the code wrote them) or ``"end-points"`` (only the initial
     and the final structure of a relaxation, as databases of initial/final pairs store them: steps
     0 and 1 are those two structures, not ionic steps)."""
+    not_relaxation: str | None = None
+    """What the ionic steps are when they are no relaxation, in words (``"molecular dynamics
+    (IBRION = 0)"``, an image of a nudged elastic band, ...; the code's ``run_kind``); None for a
+    relaxation or when unknown. The verdict then compares how the structure moved, first to last."""
     structure_key: dict | None = None
     """For one structure of a many-structure file (``FILE::NAME``): ``{"key": info or key-value name,
     "value": NAME, "structures": how many the file holds}``; None otherwise."""
@@ -252,6 +256,8 @@ class ReadContext:
         """``"trajectory"`` or ``"end-points"`` (only an initial and a final structure)."""
         self.structure: dict | None = None
         """``{"key", "value", "structures"}`` for one structure of a many-structure file."""
+        self.not_relaxation: str | None = None
+        """What the steps are when they are no relaxation (:attr:`Run.not_relaxation`)."""
         self.carry: dict = {}
         """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
         configuration it printed but never evaluated, which a ``restart_mode='restart'`` run
@@ -470,6 +476,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         run_dir=None if run_dir is None else str(run_dir),
         stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
         kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
+        not_relaxation=ctx.not_relaxation,
     )
 
 

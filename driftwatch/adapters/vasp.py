@@ -33,8 +33,8 @@ from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
            "pick_from_folder", "SETTING_KEYS"]
 
-SETTING_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW")
-_INT_KEYS = {"ISYM", "ISIF", "IBRION", "NSW"}
+SETTING_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW", "IMAGES")
+_INT_KEYS = {"ISYM", "ISIF", "IBRION", "NSW", "IMAGES"}
 _KBAR_TO_EV_A3 = 1e-22 / 1.60217733e-19   # ASE's conversion (ase/io/vasp.py, EVTOJ)
 _STD_NAMES = ("vasprun", "OUTCAR", "XDATCAR", "CONTCAR", "POSCAR")
 
@@ -105,6 +105,13 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
     p = Path(path)
     if strip_compression(p.name).startswith(_STD_NAMES) or _STAGED.match(strip_compression(p.name)):
         incar = _sibling(p, "INCAR", ctx)
+        member = _band_member(p.parent) if incar is None else None
+        if member is not None and not 1 <= member[1] <= member[0]["images"]:
+            member = None                  # an end point: not run by the band
+        if member is not None:             # a band's image: VASP read the parent's INCAR
+            incar = member[0]["incar"]
+            ctx.uses(incar)
+            settings["image"] = p.parent.name
         try:
             given = read_incar(incar) if incar is not None else {}
         except (OSError, *STREAM_ERRORS):
@@ -118,7 +125,8 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
                 ctx.warn(f"{incar.name} sets {k} = {v} but the output reports {k} = {settings[k]} "
                          f"(the output's value is kept)")
         if filled:
-            settings["settings_from"] = f"{p.name}+{incar.name}" if reported else incar.name
+            name = incar.name if member is None else f"../{incar.name}"
+            settings["settings_from"] = f"{p.name}+{name}" if reported else name
         if "nsym" not in settings and not strip_compression(p.name).startswith("OUTCAR"):
             outcar = _sibling(p, "OUTCAR", ctx)
             if outcar is not None:
@@ -833,20 +841,78 @@ def _end_points(folder: Path, kinds: dict, job: bool, ctx):
 _JOB_INPUTS = ("INCAR", "POSCAR", "KPOINTS", "POTCAR")
 
 
+# ---------------------------------------------------------------- nudged-elastic-band folders
+def _band(folder: Path) -> dict | None:
+    """The nudged-elastic-band calculation ``folder`` is the parent of, else None.
+
+    VASP's layout (its IMAGES tag; common practice): the parent holds the INCAR with IMAGES = N
+    and the folders ``00`` to ``N+1``: ``00`` and ``N+1`` the fixed end points (POSCAR only),
+    ``01`` to ``N`` the images, each run in its own folder with the parent's INCAR. Returns
+    ``{"images": N, "incar": path}`` when the INCAR sets IMAGES >= 1 and ``01/`` is a folder."""
+    folder = Path(folder)
+    if not (folder / "01").is_dir():
+        return None
+    incar = next((folder / n for n in ("INCAR", "INCAR.gz", "INCAR.bz2", "INCAR.xz")
+                  if (folder / n).is_file()), None)
+    try:
+        n = read_incar(incar).get("IMAGES") if incar is not None else None
+    except (OSError, *STREAM_ERRORS):
+        return None
+    return {"images": int(n), "incar": incar} if n and n >= 1 else None
+
+
+def _band_member(folder: Path) -> tuple[dict, int] | None:
+    """(band, index) when ``folder`` is one of a band's folders ``00`` .. ``N+1``, else None."""
+    name = Path(folder).name
+    if len(name) != 2 or not name.isdigit():
+        return None
+    band = _band(Path(folder).parent)
+    return (band, int(name)) if band is not None and int(name) <= band["images"] + 1 else None
+
+
+def band(folder: Path, names, ctx=None) -> tuple[str, list] | None:
+    """(the problem, the band's end-point folders) when ``folder`` is the parent of a
+    nudged-elastic-band calculation (:func:`_band`): not a run itself, its images are; the end
+    points (POSCAR alone) are the band's fixed inputs, not runs. Else None."""
+    got = _band(folder)
+    if got is None:
+        return None
+    if ctx is not None:
+        ctx.uses(got["incar"])
+    n = got["images"]
+    others = sorted(x for x in names if strip_compression(x) in _OUTPUT_KINDS)
+    also = (f"; {', '.join(others)} here is not one image's output (the images write to it "
+            f"together) and is not read") if others else ""
+    what = (f"the parent folder of a nudged-elastic-band calculation ({got['incar'].name}: IMAGES "
+            f"= {n}): its images 01 to {n:02d} are runs of their own (pass "
+            f"{Path(folder) / '01'}){also}")
+    return what, ["00", f"{n + 1:02d}"]
+
+
+
+
 def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     """(what the folder holds, those file names) for a folder of VASP job inputs (an INCAR, with
     POSCAR, KPOINTS, ...) and no VASP output: a job not run yet, or one that stopped before
     writing; else None. Called for folders :func:`pick_from_folder` did not take as a run; an
     empty CONTCAR (VASP stopped before its first ionic step) is among the files. A folder with
-    no INCAR is no job folder (a NEB end point ``00/`` holds only POSCAR): its POSCAR is read as
-    one structure, as any structure file."""
+    no INCAR is no job folder (a structure folder): its POSCAR is read as one structure, as any
+    structure file; except an image folder of a nudged-elastic-band calculation (``01/``, whose
+    INCAR is its parent's) with no output: an image not run. A band's end points (``00/``) are
+    none of these: :func:`band` names them."""
     got = [n for n in names if strip_compression(n) in _JOB_INPUTS]
-    if not any(strip_compression(n) == "INCAR" for n in got):
-        return None
     empty = [n for n in names
              if strip_compression(n) == "CONTCAR" and not file_size(Path(folder) / n)]
-    return (f"VASP inputs ({', '.join(got)}) and no VASP output (vasprun.xml, OUTCAR, XDATCAR or a "
-            f"non-empty CONTCAR)", got + empty)
+    no_output = "no VASP output (vasprun.xml, OUTCAR, XDATCAR or a non-empty CONTCAR)"
+    if not any(strip_compression(n) == "INCAR" for n in got):
+        member = _band_member(folder) if got else None
+        if member is None or member[1] in (0, member[0]["images"] + 1):
+            return None                     # a structure folder, or a band's end point
+        incar = member[0]["incar"]
+        return (f"image {Path(folder).name} of a nudged-elastic-band calculation (../{incar.name}: "
+                f"IMAGES = {member[0]['images']}) with {', '.join(got)} and {no_output}",
+                got + empty)
+    return f"VASP inputs ({', '.join(got)}) and {no_output}", got + empty
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
@@ -866,13 +932,18 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
       non-empty CONTCAR are the run's first and last structures (two stages, a warning says the
       steps between are not seen); CONTCAR alone is one structure. POSCAR alone beside an INCAR is
       a job's input, not a run (:func:`inputs_only` says so), unless ``format="vasp-poscar"`` asks
-      for it; with no INCAR (a structure folder, a NEB end point) it is one structure.
+      for it; with no INCAR (a structure folder) it is one structure.
+    * Nudged-elastic-band folders (:func:`band`): the parent (INCAR with IMAGES = N, folders ``00``
+      to ``N+1``) is no run; an image ``01`` .. ``N`` is read with the parent's INCAR, and with no
+      output it is an image not run; an end point with POSCAR alone is no run.
     * One single-point output (INCAR: NSW 0 or unset, or IBRION = -1; ASE's calculator) beside one
       trajectory of another format (``relax.traj``): that trajectory is the run, with a warning.
     """
     from .registry import FolderPick
     from .run import ReadContext
     ctx = ctx if ctx is not None else ReadContext(folder)
+    if format is None and _band(folder) is not None:
+        return None                         # the parent of a band: :func:`band` says so
     groups = _variants(folder, names)
     has_output = any(k in _OUTPUT_KINDS for g in groups.values() for k in g)
     if not has_output:
@@ -881,8 +952,9 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
             return sub
         if not groups or format not in (None, "vasp-poscar"):
             return None
-        if format is None and set(groups) == {""}:
-            job = any(strip_compression(n) == "INCAR" for n in names)
+        if format is None and set(groups) == {""}:     # a band's folders: the parent's INCAR
+            job = any(strip_compression(n) == "INCAR" for n in names) or \
+                _band_member(folder) is not None
             ends = _end_points(folder, groups[""], job, ctx)
             if ends is not None:
                 return ends if ends else None       # False: POSCAR alone, a job's input
@@ -1019,8 +1091,13 @@ _NOT_RELAXING = {0: "molecular dynamics (IBRION = 0)",
 
 
 def run_kind(code_settings: dict) -> str | None:
-    """What a VASP run's ionic steps are when they are no relaxation, from IBRION; else None."""
-    ibrion = (code_settings or {}).get("IBRION")
+    """What a VASP run's ionic steps are when they are no relaxation, from IMAGES (an image of a
+    nudged elastic band: ``image`` names it) and IBRION; else None."""
+    s = code_settings or {}
+    if s.get("image") and (s.get("IMAGES") or 0) >= 1:
+        return (f"a nudged-elastic-band image (folder {s['image']} of IMAGES = "
+                f"{int(s['IMAGES'])}): it moves along a path between two end points")
+    ibrion = s.get("IBRION")
     return None if ibrion is None else _NOT_RELAXING.get(int(ibrion))
 
 
@@ -1044,5 +1121,5 @@ def register_all(register, register_code) -> None:
         settings_files=("INCAR", "INCAR.*"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
         symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind",
-        inputs_only=__name__ + ":inputs_only"),
+        inputs_only=__name__ + ":inputs_only", band=__name__ + ":band"),
         replace=True)

@@ -458,6 +458,10 @@ def _summary_section(rec):
         ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
                       + (e(_records.END_POINTS) if run.get("kind") == "end-points" else
                          f"{e(run.get('n_frames'))} ionic steps")),
+        *([("not a relaxation", f"{e(run['not_relaxation'])}<br><span class=\"muted\">the "
+                                "verdict compares how the structure moved from the first frame "
+                                "to the last, not where a relaxation ended</span>")]
+          if run.get("not_relaxation") else []),
         ("kind", ("layer (2D lattice in the plane; vacuum along axis "
                   f"{e(geo.get('vacuum_axis'))})" if dim == 2 else "bulk (3D lattice)")
          + f"<br><span class=\"muted\">{e(geo.get('reason'))}</span>"),
@@ -728,6 +732,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
     from ..rules import FLAGS
     levels = {code: FLAGS.get(code, "") for code in counts}
     n_flagged = sum(1 for _, r in recs if r.get("flags"))
+    n_moving = sum(1 for _, r in recs if (r.get("run") or {}).get("not_relaxation"))
     verdicts = {}
     for _, r in recs:
         v = r["summary"]["verdict"]["direction"]
@@ -742,7 +747,10 @@ def _index_page(runs, bad, failed, campaign) -> str:
          or "—"),
         ("runs with at least one flag", str(n_flagged)),
         ("unreadable inputs / failed runs", f"{len(bad)} / {len(failed)}"),
-    ] + ([("audit summary", e(", ".join(f"{k.replace('_', ' ')} {campaign[k]}" for k in
+    ] + ([("not relaxations", f"{n_moving} <span class=\"muted\">(molecular dynamics, band "
+                               "images, ...: their verdicts compare how the structure moved "
+                               "from the first frame to the last)</span>")] if n_moving else [])
+      + ([("audit summary", e(", ".join(f"{k.replace('_', ' ')} {campaign[k]}" for k in
                                          ("runs", "analysed", "cached") if k in campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])))
     parts.append(_campaign_tolerance(tol, adv, {n: lab for n, lab, _, _ in runs}))
@@ -867,7 +875,9 @@ def _runs_table(runs, failed=(), skipped=()):
             + "</td>"
             f"<td>{e(r.get('formula'))}<br><span class=\"muted\">{kind}</span></td>"
             f"{_td_num(r.get('n_frames'))}"
-            f'<td data-v="{e(verdict)}">{_badge(verdict, f"v-{verdict}")}</td>'
+            f'<td data-v="{e(verdict)}">{_badge(verdict, f"v-{verdict}")}'
+            + (f'<br><span class="muted" title="{e(r["not_relaxation"])}">not a relaxation</span>'
+               if r.get("not_relaxation") else "") + "</td>"
             f"<td class=\"nowrap\" data-v=\"{e(v['lattice_initial'])} {e(v['lattice_final'])}\">"
             f"{e(v['lattice_initial'])} → <b>{e(v['lattice_final'])}</b></td>"
             f"<td>{e(v['drift_type'] or '')}</td>{_td_num(v['drift_initial'], 'Å')}"
