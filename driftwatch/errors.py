@@ -7,7 +7,7 @@ the file and the problem.
 
 __all__ = [
     "DriftwatchError", "LatticeError", "InputError", "UnknownFormatError", "AtomsChangeError",
-    "GeometryError", "ConfigError", "SymmetryError", "OutputError",
+    "NotARunError", "GeometryError", "ConfigError", "SymmetryError", "OutputError",
 ]
 
 
@@ -34,6 +34,11 @@ class UnknownFormatError(InputError):
 
 class AtomsChangeError(InputError):
     """The frames read as one run hold other atoms (count or elements) from one step on."""
+
+
+class NotARunError(InputError):
+    """The path is no run and will not become one while a job writes (the parent folder of a
+    nudged-elastic-band calculation): following it stops at once instead of waiting."""
 
 
 class GeometryError(DriftwatchError, ValueError):

@@ -35,7 +35,9 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.run import Frame, collect, frame_from_atoms, position_precision
-from .errors import ConfigError, DriftwatchError, GeometryError, InputError, OutputError
+from .adapters.registry import run_kind
+from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
+                     OutputError)
 
 __all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker", "follow",
            "request_stop", "check_run", "qe_stop_settings", "code_of_format", "END_MARKERS",
@@ -214,7 +216,8 @@ class Tracker:
             st["run"], **{n: st[n] for n in self._ARRAYS}, source=str(self.source),
             format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
-            position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs())
+            position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
+            not_relaxation=run_kind(ctx.settings))     # as the reader says it (its warning)
 
     def _run(self):
         """The frames so far as a Run, with what the reader noted (warnings, settings, title,
@@ -548,10 +551,13 @@ def _signature(path: Path):
 
 
 def _read(path, format):
-    """(frames, ctx, error): every completed step readable now, or the InputError why not."""
+    """(frames, ctx, error): every completed step readable now, or the InputError why not (a
+    :class:`NotARunError` is raised: waiting would not change it)."""
     ctx = ReadContext(path)
     try:
         return list(iter_frames(path, format, context=ctx)), ctx, None
+    except NotARunError:
+        raise
     except InputError as exc:
         return [], ctx, exc
 

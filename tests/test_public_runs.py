@@ -959,6 +959,16 @@ def test_a_neb_band_is_read_as_its_images_not_as_relaxations(tmp_path):
     assert "images 01 to 03 are runs of their own" in msg and "vasprun.xml" in msg
     assert "\n" not in msg
     assert len(read_run(camp / "neb" / "00")) == 1           # an end point asked for: its POSCAR
+    import time
+    from driftwatch.errors import NotARunError
+    from driftwatch.live import follow
+    t0 = time.monotonic()
+    with pytest.raises(NotARunError) as err:   # following the parent stops at once, saying why
+        follow(camp / "neb", idle=60, poll=0.1, quiet=True)
+    assert time.monotonic() - t0 < 30 and "nudged-elastic-band" in str(err.value)
+    rec = follow(camp / "neb" / "03", idle=60, poll=0.1, quiet=True)      # an image: to its end
+    assert rec["live"]["ended"].startswith("end marker") and rec["run"]["n_frames"] == 23
+    assert rec["run"]["not_relaxation"].startswith("a nudged-elastic-band image (folder 03")
     result = _quiet_audit([camp], tmp_path / "out", workers=1)
     assert result["analysed"] == 3 and result["failed"] == []
     assert [x["run"] for x in result["not_relaxation"]] == ["camp/neb/01", "camp/neb/02",

@@ -37,7 +37,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
-from ..errors import AtomsChangeError, DriftwatchError, InputError, UnknownFormatError
+from ..errors import (AtomsChangeError, DriftwatchError, InputError, NotARunError,
+                      UnknownFormatError)
 from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect
 
@@ -498,7 +499,7 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
     if kind == "inputs":
         raise InputError(path, inputs_only_problem(*got, path))
     if kind == "band":
-        raise InputError(path, got[0])
+        raise NotARunError(path, got[0])
     if not got:
         hint = f" readable as {format!r}" if format else ""
         raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "
