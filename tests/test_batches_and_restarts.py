@@ -488,3 +488,97 @@ def test_numbered_outputs_and_folders_that_do_not_continue_are_separate_runs(tmp
     runs, failed = discover([vasp])
     assert sorted(r.id for r in runs) == ["vasp/relax1", "vasp/relax2"] and not failed
     assert read_run(vasp / "relax2").natoms != read_run(vasp / "relax1").natoms
+
+
+# ---------------------------------------------------------------- an ASE NEB band in one trajectory
+def _ase_neb(path: Path, optimise: bool = True) -> int:
+    """A real ASE NEB (EMT, FIRE): an invented Pd adatom hopping between two hollow sites of a
+    2x2x3 Ag(100) slab, 3 moving images; the optimiser writes every image of the band, end points
+    included, at each step (ASE's Trajectory.write -> iterimages). Returns the frames per step."""
+    from ase.build import add_adsorbate, fcc100
+    from ase.calculators.emt import EMT
+    from ase.constraints import FixAtoms
+    from ase.mep import NEB
+    from ase.optimize import BFGS, FIRE
+    slab = fcc100("Ag", size=(2, 2, 3), vacuum=6.0)
+    add_adsorbate(slab, "Pd", 1.6, "hollow")
+    slab.set_constraint(FixAtoms(mask=[a.tag > 1 for a in slab]))
+    slab.calc = EMT()
+    BFGS(slab, logfile=None).run(fmax=0.05)
+    final = slab.copy()
+    final.positions[-1, 0] += slab.cell[0, 0] / 2
+    final.calc = EMT()
+    BFGS(final, logfile=None).run(fmax=0.05)
+    images = [slab] + [slab.copy() for _ in range(3)] + [final]
+    for im in images[1:-1]:
+        im.calc = EMT()
+    neb = NEB(images, method="improvedtangent")
+    neb.interpolate()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        FIRE(neb, trajectory=str(path), logfile=None).run(fmax=0.1, steps=20 if optimise else 0)
+    return len(images)
+
+
+def test_an_ase_neb_trajectory_is_read_as_its_moving_images(tmp_path):
+    """A band's trajectory read as one run was a trajectory jumping between images every frame (a
+    'group-lost' verdict between the two end points). Each moving image is now a run of its own,
+    ``FILE::image01`` ..., its frames those ASE reads as ``neb.traj@k::5`` (every 5th frame from
+    the image's place: how ASE's NEB documentation reads a band back; from memory), steps numbered
+    by optimiser step, with the not-a-relaxation note; the file alone is refused naming them."""
+    from driftwatch.adapters.registry import structures
+    from driftwatch.campaign import discover
+    from driftwatch.errors import NotARunError
+    path = tmp_path / "camp" / "hop" / "neb.traj"
+    path.parent.mkdir(parents=True)
+    per_step = _ase_neb(path)
+    frames = ase.io.read(path, index=":")                                                 # ASE
+    assert per_step == 5 and len(frames) % 5 == 0 and len(frames) >= 10
+    assert structures(path) == ["image01", "image02", "image03"]
+    runs, failed = discover([tmp_path / "camp"])
+    assert [r.id for r in runs] == [f"camp/hop/neb.traj::image0{k}" for k in (1, 2, 3)]
+    for k in (1, 2, 3):
+        run = read_run(f"{path}::image0{k}")
+        ref = ase.io.read(path, index=f"{k}::5")
+        assert len(run) == len(ref) == len(frames) // 5
+        np.testing.assert_array_equal(run.positions, [a.positions for a in ref])
+        assert run.steps.tolist() == list(range(len(ref)))
+        assert run.not_relaxation == (f"a nudged-elastic-band image (image0{k} of 3 in an ASE NEB "
+                                      f"trajectory): it moves along a path between two end points")
+        assert any("not a relaxation" in w for w in run.warnings)
+    with pytest.raises(NotARunError) as err:
+        read_run(path)
+    assert "holds 3 moving images of a nudged-elastic-band calculation" in str(err.value)
+    assert f"'{path}::image01'" in str(err.value) and "\n" not in str(err.value)
+    with pytest.raises(InputError, match="no structure 'image04'"):      # an end point is no run
+        read_run(f"{path}::image04")
+    raw = path.read_bytes()                 # cut while writing: the frames it still has, a warning
+    cut = tmp_path / "cut.traj"
+    cut.write_bytes(raw[:int(len(raw) * 0.7)])
+    assert structures(cut) == ["image01", "image02", "image03"]
+    run = read_run(f"{cut}::image02")
+    assert 0 < len(run) < len(frames) // 5 and any("unreadable after step" in w for w in run.warnings)
+
+
+def test_trajectories_that_are_no_band_stay_one_run(tmp_path):
+    """A relaxation trajectory (ASE BFGS of the same slab), a band optimised for no step (one frame
+    per image: too short to tell), and a trajectory whose frames never move are one run each."""
+    from ase.build import add_adsorbate, fcc100
+    from ase.calculators.emt import EMT
+    from ase.io.trajectory import Trajectory
+    from ase.optimize import BFGS
+    from driftwatch.adapters.registry import structures
+    slab = fcc100("Ag", size=(2, 2, 3), vacuum=6.0)
+    add_adsorbate(slab, "Pd", 1.6, "bridge")
+    slab.rattle(0.05, seed=3)
+    slab.calc = EMT()
+    BFGS(slab, trajectory=str(tmp_path / "relax.traj"), logfile=None).run(fmax=0.01, steps=40)
+    assert len(ase.io.read(tmp_path / "relax.traj", index=":")) > 12
+    assert structures(tmp_path / "relax.traj") == []
+    _ase_neb(tmp_path / "short.traj", optimise=False)
+    assert structures(tmp_path / "short.traj") == []
+    assert len(read_run(tmp_path / "short.traj")) == 5
+    with Trajectory(str(tmp_path / "still.traj"), "w") as t:
+        for _ in range(12):
+            t.write(slab)
+    assert structures(tmp_path / "still.traj") == [] and len(read_run(tmp_path / "still.traj")) == 12

@@ -947,7 +947,8 @@ def test_a_neb_band_is_read_as_its_images_not_as_relaxations(tmp_path):
         assert len(run) == len(ref) == 23
         np.testing.assert_allclose(run.positions, [a.positions for a in ref], atol=1e-8, rtol=0)
         assert "CHAIN: Running the NEB" in out.read_text()       # VTST: the file says it is NEB
-        assert run.code_settings["IMAGES"] == 3 and run.code_settings["image"] == i
+        assert run.code_settings["IMAGES"] == 3
+        assert run.code_settings["neb_image"] == f"folder {i} of IMAGES = 3"
         assert run.code_settings["IBRION"] == 3                  # from the OUTCAR itself
         (w,) = [w for w in run.warnings if "not a relaxation" in w]
         assert f"a nudged-elastic-band image (folder {i} of IMAGES = 3)" in w
@@ -1013,7 +1014,7 @@ def test_neb_images_not_run_and_end_points_that_ran(tmp_path):
         read_run(camp / "neb" / "02")
     assert str(err.value) == entry["error"]
     end = read_run(camp / "neb" / "04")          # read as its own files say (IBRION = 2)
-    assert end.code_settings["IBRION"] == 2 and "image" not in end.code_settings
+    assert end.code_settings["IBRION"] == 2 and "neb_image" not in end.code_settings
     assert not [w for w in end.warnings if "not a relaxation" in w]
     (camp / "neb" / "INCAR").write_text("IBRION = 3\nNSW = 50\n")          # no IMAGES: no band
     runs, failed = discover([camp])

@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import re
 
+import numpy as np
+
 from ..errors import InputError
 from ._io import Lines
 from .run import ReadContext, frame_from_atoms
@@ -48,18 +50,113 @@ def _check_ulm_header(path) -> None:
                                f"at byte {pos0}, file of {size} bytes)")
 
 
-def read_traj(path, ctx: ReadContext):
-    """An ASE trajectory file (ULM format), frame by frame."""
-    from ase.io.trajectory import Trajectory
+MAX_BAND = 34
+"""The most frames per optimiser step looked for in an ASE NEB trajectory (32 moving images and
+the two end points)."""
+_BANDS: dict = {}         # (path, stamp) -> frames per optimiser step of a band, or None
+
+
+def _band_period(backend, n: int) -> int | None:
+    """Frames per optimiser step when ``backend`` (ULM, ``n`` frames) is an ASE NEB trajectory.
+
+    ASE's trajectory writes every image of a band at each optimiser step, its fixed end points
+    included (``Trajectory.write`` -> ``atoms.iterimages()``), so frames 0, p, 2p, ... are the same
+    initial image and p - 1, 2p - 1, ... the same final one, bit for bit, the two different. A
+    relaxation does not come back to its first frame's exact positions. Needs two full steps;
+    reads one positions array per frame tried (no Atoms built)."""
+    if n < 6:
+        return None
+    pos = {}
+
+    def at(i):                                   # None: beyond the frames a cut file still has
+        if i not in pos:
+            try:
+                pos[i] = np.asarray(backend[i].get("positions"))
+            except Exception:  # noqa: BLE001 - ULM raises ValueError/OSError/... on a cut frame
+                pos[i] = None
+        return pos[i]
+
+    def same(i, k):
+        return at(i) is not None and at(k) is not None and np.array_equal(at(i), at(k))
+    for p in range(3, min(MAX_BAND, n // 2) + 1):
+        if not same(p, 0):
+            continue
+        if same(p - 1, 0):
+            return None                          # frames that do not move: no band
+        for j in range(1, n // p):
+            if at(j * p) is None or at(j * p + p - 1) is None:
+                break                            # a cut file: the frames it has decide
+            if not (same(j * p, 0) and same(j * p + p - 1, p - 1)):
+                return None
+        return p
+    return None
+
+
+def band_period(path) -> int | None:
+    """:func:`_band_period` of a trajectory file, remembered for its current stamp."""
+    from ase.io import ulm
+    from .run import file_stamp
+    stamp = file_stamp(path)
+    key = None if stamp is None else (str(path), tuple(stamp))
+    if key in _BANDS:
+        return _BANDS[key]
     _check_ulm_header(path)
+    with ulm.Reader(str(path)) as backend:
+        got = _band_period(backend, len(backend))
+    if key is not None:
+        _BANDS[key] = got
+        while len(_BANDS) > 64:
+            _BANDS.pop(next(iter(_BANDS)))
+    return got
+
+
+def _image_names(p: int) -> list[str]:
+    return [f"image{k:02d}" for k in range(1, p - 1)]
+
+
+def traj_names(path, keys=None) -> list[str]:
+    """The moving images of an ASE NEB trajectory (``image01`` ...: one run each), else []."""
+    try:
+        p = band_period(path)
+    except Exception:  # noqa: BLE001 - a file that cannot be indexed is one (failing) run
+        return []
+    return _image_names(p) if p else []
+
+
+def read_traj(path, ctx: ReadContext):
+    """An ASE trajectory file (ULM format), frame by frame. An ASE NEB band's trajectory
+    (:func:`band_period`) holds its images written in turn: ``FILE::image01`` reads one moving
+    image (its frame of each optimiser step, numbered by step); the file alone is refused with the
+    images it holds."""
+    from ase.io.trajectory import Trajectory
+    from . import batch
+    path, name = batch.split(path)
+    _check_ulm_header(path)
+    p = band_period(path)
+    names = _image_names(p) if p else []
+    if name is not None and name not in names:
+        raise InputError(path, f"no structure {name!r}: " + (
+            f"the band's moving images are {batch.listing(names)}" if names else
+            "the file is one trajectory (only an ASE NEB band's file holds images)"))
+    if names and name is None:
+        batch.refuse_many(path, names, f"moving images of a nudged-elastic-band calculation, "
+                                       f"written in turn with its two fixed end points ({p} frames "
+                                       f"per optimiser step: ASE's NEB)")
     traj = Trajectory(path, "r")
     try:
         desc = getattr(traj, "description", None) or {}
         if isinstance(desc, dict) and desc.get("type") == "optimization":
             ctx.settings.update({"code": "ase", "optimizer": desc.get("optimizer")})
         n = len(traj)
-        for i in range(n):
-            yield frame_from_atoms(traj[i], i)
+        if name is None:
+            for i in range(n):
+                yield frame_from_atoms(traj[i], i)
+            return
+        k = names.index(name) + 1
+        ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
+        ctx.structure = {"key": "NEB image", "value": name, "structures": p - 2}
+        for j, i in enumerate(range(k, n, p)):
+            yield frame_from_atoms(traj[i], j)
     finally:
         traj.close()
 

@@ -29,7 +29,7 @@ import numbers
 import re
 from dataclasses import dataclass, field
 
-from ..errors import InputError
+from ..errors import InputError, NotARunError
 
 __all__ = ["STRUCTURE_KEYS", "STEP_KEYS", "END_POINT_MARKERS", "Member", "Index", "split",
            "refuse_many", "listing",
@@ -128,8 +128,9 @@ class Index:
 
 def refuse_many(path, names: list[str], what: str):
     """Raise the one-line error for reading a file of many runs (``names``, ``what`` they are) as
-    one run: what it holds and how to read one (``FILE::NAME``)."""
-    raise InputError(path, f"holds {len(names)} {what} ({listing(names)}): read one as "
+    one run: what it holds and how to read one (``FILE::NAME``). A :class:`NotARunError`: the
+    file will not become one run by growing."""
+    raise NotARunError(path, f"holds {len(names)} {what} ({listing(names)}): read one as "
                            f"FILE{SEPARATOR}NAME, e.g. '{path}{SEPARATOR}{names[0]}'; an audit "
                            f"lists each")
 

@@ -654,10 +654,16 @@ def read_run(path, format=None, *, context: ReadContext | None = None,
 
 
 def run_kind(code_settings: dict) -> str | None:
-    """What a run's ionic steps are when they are no relaxation (see :class:`Code`), else None."""
-    code = _code_named((code_settings or {}).get("code"))
+    """What a run's ionic steps are when they are no relaxation (see :class:`Code`), else None.
+    Any code: ``neb_image`` in the settings (which image of which band, in words) names an image
+    of a nudged-elastic-band calculation (VASP's IMAGES folders, ASE's NEB trajectory)."""
+    s = code_settings or {}
+    if s.get("neb_image"):
+        return (f"a nudged-elastic-band image ({s['neb_image']}): it moves along a path between "
+                f"two end points")
+    code = _code_named(s.get("code"))
     fn = code.function("run_kind") if code is not None else None
-    return fn(code_settings) if fn is not None else None
+    return fn(s) if fn is not None else None
 
 
 # ---------------------------------------------------------------- the tables
@@ -667,7 +673,8 @@ _A = "driftwatch.adapters."
 for _module in ("vasp", "espresso"):
     importlib.import_module(_A + _module).register_all(register, register_code)
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
-         description="ASE trajectory (.traj)")
+         description="ASE trajectory (.traj; an ASE NEB band's file.traj::image01 one image)",
+         members=_A + "ase_native:traj_names")
 register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite format 3\x00",
          description="ASE database rows (SQLite .db; file.db@selection picks rows; "
                      "file.db::NAME one structure)", members=_A + "batch:db_names")

@@ -111,7 +111,7 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
         if member is not None:             # a band's image: VASP read the parent's INCAR
             incar = member[0]["incar"]
             ctx.uses(incar)
-            settings["image"] = p.parent.name
+            settings["neb_image"] = f"folder {p.parent.name} of IMAGES = {member[0]['images']}"
         try:
             given = read_incar(incar) if incar is not None else {}
         except (OSError, *STREAM_ERRORS):
@@ -1091,13 +1091,9 @@ _NOT_RELAXING = {0: "molecular dynamics (IBRION = 0)",
 
 
 def run_kind(code_settings: dict) -> str | None:
-    """What a VASP run's ionic steps are when they are no relaxation, from IMAGES (an image of a
-    nudged elastic band: ``image`` names it) and IBRION; else None."""
-    s = code_settings or {}
-    if s.get("image") and (s.get("IMAGES") or 0) >= 1:
-        return (f"a nudged-elastic-band image (folder {s['image']} of IMAGES = "
-                f"{int(s['IMAGES'])}): it moves along a path between two end points")
-    ibrion = s.get("IBRION")
+    """What a VASP run's ionic steps are when they are no relaxation, from IBRION; else None (a
+    band's image is named by ``registry.run_kind`` from ``neb_image``)."""
+    ibrion = (code_settings or {}).get("IBRION")
     return None if ibrion is None else _NOT_RELAXING.get(int(ibrion))
 
 
