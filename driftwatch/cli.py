@@ -334,8 +334,9 @@ def _cmd_formats(args) -> int:
     if args.json:
         _print_json(table)
     else:
+        width = max(map(len, table), default=0)
         for name, desc in table.items():
-            print(f"{name:14} {desc}")
+            print(f"{name:{width}}  {desc}")
     return EXIT_OK
 
 

@@ -135,6 +135,20 @@ def _write_pmg(t, d):
     return p
 
 
+def _write_error_archive(t, d):
+    """custodian's own backup (custodian.utils.backup) of a VASP attempt, then its correction:
+    CONTCAR copied to POSCAR for the next attempt (custodian's handlers)."""
+    from custodian.utils import backup
+    job = d / "job"
+    job.mkdir()
+    vasp_gen.write_vasprun(job / "vasprun.xml", t)
+    vasp_gen.write_poscar(job / "POSCAR", t.cells[0], t.frac[0], t.symbols)
+    vasp_gen.write_poscar(job / "CONTCAR", t.cells[-1], t.frac[-1], t.symbols)
+    backup(["POSCAR", "CONTCAR", "vasprun.xml"], directory=str(job))
+    shutil.copy(job / "CONTCAR", job / "POSCAR")
+    return job / "error.1.tar.gz"
+
+
 WRITERS = {
     "vasp-xml": _write_vasp_xml, "vasp-out": _write_outcar, "vasp-xdatcar": _write_xdatcar,
     "vasp-poscar": _write_poscar, "traj": _write_traj, "extxyz": _write_extxyz,
@@ -169,6 +183,14 @@ def test_every_registered_format_round_trips(name, traj, tmp_path):
         path = _unzipped(QE_OUTS[0], tmp_path)
         assert detect(path) == name
         _assert_same_as_ase(read_run(path), path)            # real pw.x output vs ASE's reader
+        return
+    if name == "vasp-error-archive":     # no name or magic of its own: a stage of its folder, or -f
+        path = _write_error_archive(traj, tmp_path)
+        run = read_run(path, format=name)
+        assert run.format == name and run.source == str(path) and len(run) == len(traj.cells)
+        np.testing.assert_allclose(run.positions, traj.positions, atol=1e-7, rtol=0)
+        np.testing.assert_allclose(run.energies, traj.energies, atol=1e-7)
+        assert len(list(iter_frames(path, format=name))) == len(run)
         return
     if name in GENUINE_OTHER:
         src, ase_format = GENUINE_OTHER[name]
@@ -207,7 +229,8 @@ def test_registry_has_the_formats_of_the_issue():
     """The formats the issue lists (common practice: names follow ASE's where they exist)."""
     assert {"traj", "extxyz", "vasp-xml", "vasp-out", "vasp-xdatcar", "espresso-out",
             "ase-db", "pymatgen-json"} <= set(formats())
-    assert set(WRITERS) | set(GENUINE_OTHER) | {"espresso-out"} >= set(BUILTIN), \
+    assert set(WRITERS) | set(GENUINE_OTHER) | {"espresso-out", "vasp-error-archive"} >= \
+        set(BUILTIN), \
         "new format without a round trip"
 
 

@@ -1020,3 +1020,67 @@ def test_neb_images_not_run_and_end_points_that_ran(tmp_path):
     runs, failed = discover([camp])
     assert "camp/neb/00" in [r.id for r in runs]
     assert not [w for w in read_run(camp / "neb" / "01").warnings if "nudged" in w]
+
+
+def _custodian_job(tmp_path: Path, *, continued: bool, cut: bool = False) -> Path:
+    """A VASP job as custodian leaves it after one correction: the genuine first attempt
+    (pymatgen-db's relax1, 60 ionic steps) archived by custodian's own ``backup`` into
+    error.1.tar.gz (custodian.utils.backup with custodian's VASP_BACKUP_FILES), then the rerun's
+    outputs (the genuine relax2, 5 steps, whose POSCAR is relax1's CONTCAR, byte for byte).
+    ``continued``: the correction copied CONTCAR to POSCAR (custodian's handlers for ionic
+    errors); else the rerun started again from the job's input POSCAR. ``cut``: the archived
+    vasprun.xml ends mid-run, as a killed attempt leaves it."""
+    from custodian.utils import backup
+    from custodian.vasp.handlers import VASP_BACKUP_FILES
+    job = tmp_path / "job"
+    job.mkdir(parents=True)
+    for f in RELAX1.iterdir():
+        data = f.read_bytes()
+        name = f.name[:-3] if f.name.endswith(".gz") else f.name
+        (job / name).write_bytes(gzip.decompress(data) if f.name.endswith(".gz") else data)
+    if cut:
+        raw = (job / "vasprun.xml").read_bytes()
+        (job / "vasprun.xml").write_bytes(raw[:raw.find(b"<calculation>", len(raw) // 2) + 500])
+    backup(VASP_BACKUP_FILES, directory=str(job))
+    if continued:
+        shutil.copy(job / "CONTCAR", job / "POSCAR")
+    relax2 = PUB / "stage_folders" / "relax2"
+    for f in relax2.iterdir():
+        if f.name != "POSCAR" or continued:
+            data = f.read_bytes()
+            name = f.name[:-3] if f.name.endswith(".gz") else f.name
+            (job / name).write_bytes(gzip.decompress(data) if f.name.endswith(".gz") else data)
+    return job
+
+
+def test_custodian_archives_of_earlier_attempts_are_the_runs_first_stages(tmp_path):
+    """custodian archives a failed attempt (error.N.tar.gz) and reruns, often from the attempt's
+    CONTCAR. Before, only the rerun's 5 steps were read: a symmetry change during the first 60
+    was invisible. Now the archive is the run's first stage: 65 frames equal to pymatgen's
+    Vasprun of relax1 then relax2 (the archived file and the rerun's), steps numbered on, the
+    stages named; ``job@error.1`` reads the attempt alone; the cache keys on the archive."""
+    job = _custodian_job(tmp_path / "a", continued=True)
+    run = read_run(job)
+    assert [(s["name"], s["n_frames"]) for s in run.stages] == [("error.1", 60), ("final", 5)]
+    v1, v2 = _vasprun(RELAX1 / "vasprun.xml.gz"), _vasprun(job / "vasprun.xml")     # pymatgen
+    _same_frames(run, v1.structures + v2.structures, atol=1e-8)
+    assert run.steps.tolist() == list(range(65)) and not run.warnings
+    assert len(read_run(f"{job}@error.1")) == 60
+    files = [p for kind, p, _ in run.inputs if kind == "file"]
+    assert str(job / "error.1.tar.gz") in files and all(p.startswith(str(job)) for p in files)
+
+
+def test_custodian_archives_that_are_no_stage(tmp_path):
+    """An attempt the rerun started again from the job's input POSCAR (custodian changed only the
+    electronic settings) is not part of the trajectory: the rerun's steps alone, and a warning
+    naming the archive. A killed attempt (its archived vasprun.xml cut mid-run) gives the steps
+    it completed, with the truncation named in the archive."""
+    run = read_run(_custodian_job(tmp_path / "b", continued=False))
+    assert len(run) == 5 and run.stages == ()
+    (w,) = [w for w in run.warnings if "error.1.tar.gz" in w]
+    assert "an earlier attempt of this job (custodian's archive) not read" in w
+    assert "started from another structure than its CONTCAR" in w
+    run = read_run(_custodian_job(tmp_path / "c", continued=True, cut=True))
+    first = run.stages[0]
+    assert first["name"] == "error.1" and 0 < first["n_frames"] < 60
+    assert any("error.1.tar.gz" in w and "truncated" in w for w in run.warnings)

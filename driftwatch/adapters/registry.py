@@ -584,12 +584,15 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
                 fr = dataclasses.replace(fr, step=fr.step + offset)
             n, last = n + 1, fr.step
             yield fr
-        if stages_out is not None and len(pick.stages) > 1:
+        # a stage that gave no frame (an archived attempt that is no stage of the run) is not listed
+        if stages_out is not None and len(pick.stages) > 1 and n:
             stages_out.append({"name": name, "source": str(src), "format": fmt,
                                "first_frame": index, "n_frames": n, "step_offset": offset})
         index += n
         if last is not None:
             offset = last + 1
+    if stages_out is not None and len(stages_out) == 1:
+        stages_out.clear()                  # one stage gave every frame: not a multi-stage run
     what = ctx.not_relaxation = run_kind(ctx.settings) if index else None
     if what:
         ctx.warn(f"not a relaxation: {what}; its verdict compares the first and last frames (how "

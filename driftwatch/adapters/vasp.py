@@ -20,6 +20,7 @@ keys the output lacks, and a disagreement between the two is a warning.
 """
 from __future__ import annotations
 
+import os
 import re
 import xml.etree.ElementTree as ET
 from pathlib import Path
@@ -740,6 +741,102 @@ def read_poscar(path, ctx: ReadContext):
     yield frame_from_atoms(atoms, 0)
 
 
+# ---------------------------------------------------------------- custodian's error archives
+_ARCHIVE = re.compile(r"^error\.(\d+)\.tar(?:\.gz|\.bz2|\.xz)?$")
+_ARCHIVED = ("vasprun.xml", "OUTCAR", "XDATCAR", "INCAR")      # what a stage is read from
+
+
+def _error_archives(folder: Path, names) -> list[Path]:
+    """custodian's backups of a job's earlier attempts in ``folder`` (``error.1.tar.gz``, ...,
+    written by ``custodian.utils.backup`` before a correction and a rerun), in order."""
+    got = sorted((int(m.group(1)), n) for n in names if (m := _ARCHIVE.match(n)))
+    return [Path(folder) / n for _, n in got]
+
+
+def _archived_bytes(tar, members: dict, name: str, limit: int = 1 << 26) -> bytes | None:
+    m = members.get(name)
+    if m is None or m.size > limit:
+        return None
+    fh = tar.extractfile(m)
+    return None if fh is None else fh.read()
+
+
+def _next_start(archive: Path) -> bytes | None:
+    """The POSCAR the attempt after ``archive`` started from: the next archive's, else the
+    folder's own (plain or compressed); None when there is none."""
+    import tarfile
+    later = [p for p in _error_archives(archive.parent, sorted(os.listdir(archive.parent)))
+             if int(_ARCHIVE.match(p.name).group(1)) > int(_ARCHIVE.match(archive.name).group(1))]
+    if later:
+        with tarfile.open(later[0], "r:*") as tar:
+            members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
+            return _archived_bytes(tar, members, "POSCAR")
+    for n in ("POSCAR", "POSCAR.gz", "POSCAR.bz2", "POSCAR.xz"):
+        if (archive.parent / n).is_file():
+            with open_bytes(archive.parent / n) as fh:
+                return fh.read(1 << 26)
+    return None
+
+
+def read_error_archive(path, ctx: ReadContext):
+    """The ionic steps of an earlier attempt of a VASP job that custodian archived
+    (``error.N.tar.gz``: INCAR, POSCAR, CONTCAR, OUTCAR, vasprun.xml, ... of the attempt), read as a
+    stage of the run when the attempt after it continued from it: custodian's correction copied
+    its CONTCAR to POSCAR, so the next attempt's POSCAR holds the same bytes (custodian's handlers:
+    ``{"file": "CONTCAR", "action": {"_file_copy": {"dest": "POSCAR"}}}``). An attempt that the
+    next one started again from the same structure (a correction of the electronic settings
+    only) is not part of the trajectory: no steps, and a warning says so."""
+    import shutil
+    import tarfile
+    import tempfile
+    path = Path(path)
+    try:
+        tar = tarfile.open(path, "r:*")
+    except (tarfile.TarError, OSError, EOFError) as exc:
+        raise InputError(path, f"not a readable tar archive ({exc})") from None
+    with tar, tempfile.TemporaryDirectory(prefix="driftwatch-archive-") as tmp:
+        try:
+            members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
+            contcar, nxt = _archived_bytes(tar, members, "CONTCAR"), _next_start(path)
+        except (tarfile.TarError, OSError, EOFError) as exc:
+            raise InputError(path, f"damaged tar archive ({exc})") from None
+        if not contcar or nxt is None or contcar != nxt:
+            why = ("the next attempt started from another structure than its CONTCAR (custodian "
+                   "restarted it from the same input)" if contcar and nxt is not None else
+                   "no CONTCAR in it, or no POSCAR after it, to tell whether the next attempt "
+                   "continued from it")
+            ctx.warn(f"an earlier attempt of this job (custodian's archive) not read: {why}")
+            return
+        kinds = {}
+        for name in _ARCHIVED:
+            if name in members:
+                dest = Path(tmp) / name
+                with tar.extractfile(members[name]) as src, open(dest, "wb") as out:
+                    shutil.copyfileobj(src, out)
+                if name != "INCAR":
+                    kinds[name] = [dest]
+        scratch = ReadContext(path)
+        got = _pick_stage(Path(tmp), kinds, None, scratch, staged=True) if kinds else None
+        if got is None:
+            ctx.warn("an earlier attempt of this job (custodian's archive) holds no VASP "
+                     "trajectory (vasprun.xml, OUTCAR, XDATCAR): not read")
+            return
+        inner, fmt, note = got
+        if note:
+            ctx.warn(note.split(": ", 1)[1])          # (names the scratch folder otherwise)
+        reader = {"vasp-xml": read_vasprun, "vasp-out": read_outcar,
+                  "vasp-xdatcar": read_xdatcar}[fmt]
+        try:
+            yield from reader(inner, ctx)
+        except InputError as exc:
+            raise InputError(path, f"{members[inner.name].name}: {exc.problem}") from None
+        finally:                     # the cache keys on the archive, not on the scratch copies
+            for key in [k for k in ctx.files if k.startswith(tmp)]:
+                del ctx.files[key]
+            for key in [k for k in ctx.folders if k.startswith(tmp)]:
+                del ctx.folders[key]
+
+
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
@@ -933,6 +1030,9 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
       steps between are not seen); CONTCAR alone is one structure. POSCAR alone beside an INCAR is
       a job's input, not a run (:func:`inputs_only` says so), unless ``format="vasp-poscar"`` asks
       for it; with no INCAR (a structure folder) it is one structure.
+    * custodian's archives of earlier attempts (``error.1.tar.gz`` ...) in an unstaged folder are
+      the run's first stages, named ``error.1`` ..., the last attempt ``final``, each read only
+      when the attempt after it continued from it (:func:`read_error_archive`).
     * Nudged-elastic-band folders (:func:`band`): the parent (INCAR with IMAGES = N, folders ``00``
       to ``N+1``) is no run; an image ``01`` .. ``N`` is read with the parent's INCAR, and with no
       output it is an image not run; an end point with POSCAR alone is no run.
@@ -982,6 +1082,14 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
             traj = _single_point_traj(folder, names, stages[0][1], ctx)
             if traj is not None:
                 return traj
+            archived = _error_archives(folder, names)
+            if archived:                    # earlier attempts first; the last one is "final"
+                stages = [(p.name.split(".tar")[0], p, "vasp-error-archive") for p in archived] \
+                    + [("final", stages[0][1], stages[0][2])]
+    elif _error_archives(folder, names):
+        notes.append(f"{folder}: custodian's archives of earlier attempts "
+                     f"({', '.join(p.name for p in _error_archives(folder, names))}) are not read "
+                     f"beside staged outputs (which stage each belongs to is not recorded)")
     return FolderPick(stages, tuple(notes))
 
 
@@ -1110,6 +1218,9 @@ def register_all(register, register_code) -> None:
              description="VASP OUTCAR")
     register("vasp-xdatcar", __name__ + ":read_xdatcar", globs=("*XDATCAR*",),
              magic=rb"^[ \t]*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
+    register("vasp-error-archive", __name__ + ":read_error_archive",
+             description="custodian's archive of an earlier VASP attempt (error.N.tar.gz; read "
+                         "as a stage of its run folder, or given with -f)")
     register_code(Code(
         name="vasp", label="VASP", aliases=("vasp5", "vasp6"), formats=_CODE_FORMATS,
         folder=__name__ + ":pick_from_folder",
