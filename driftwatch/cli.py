@@ -177,7 +177,7 @@ def _group_cell(f: dict, symprec: float) -> str:
 def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
-    from .records import END_POINTS
+    from .records import END_POINTS, stages_text
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -204,13 +204,9 @@ def _inspect_table(rec: dict) -> str:
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
                  f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")
-    stages = rec["run"].get("stages") or []
+    stages = stages_text(rec)
     if stages:
-        lines.append("  stages: " + ", ".join(
-            f"{st['name']} ({'final' if st['first_frame'] else 'initial'})" if ends else
-            f"{st['name']} (steps {frames[st['first_frame']]['step']}-"
-            f"{frames[st['first_frame'] + st['n_frames'] - 1]['step']})" for st in stages
-            if st["n_frames"]))
+        lines.append(f"  stages: {stages}")
     lines.append(f" verdict: {v['text']}")
     d = s.get("drift")
     if d:

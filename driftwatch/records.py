@@ -256,6 +256,23 @@ END_POINTS = "2 structures (initial and final only; no ionic steps between them)
 """How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
 
 
+def stages_text(record: dict) -> str | None:
+    """The stages of a multi-stage run in words, for every output: ``relax1 (steps 0-59),
+    relax2 (steps 60-64)`` (an end-points run: ``POSCAR (initial), CONTCAR (final)``); None for a
+    single stage. A stage without a name is named by its file."""
+    frames, run = record["frames"], record["run"]
+    ends = run.get("kind") == "end-points"
+    parts = []
+    for st in run.get("stages") or []:
+        if not st["n_frames"]:
+            continue
+        name = st["name"] or os.path.basename(st["source"])
+        first, last = frames[st["first_frame"]], frames[st["first_frame"] + st["n_frames"] - 1]
+        parts.append(f"{name} ({'final' if st['first_frame'] else 'initial'})" if ends else
+                     f"{name} (steps {first['step']}-{last['step']})")
+    return ", ".join(parts) or None
+
+
 def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, versions: dict) -> dict:
     """Assemble a record from a run, its geometry, the effective config and per-frame entries."""
     from collections import Counter

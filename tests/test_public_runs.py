@@ -1068,6 +1068,13 @@ def test_custodian_archives_of_earlier_attempts_are_the_runs_first_stages(tmp_pa
     assert len(read_run(f"{job}@error.1")) == 60
     files = [p for kind, p, _ in run.inputs if kind == "file"]
     assert str(job / "error.1.tar.gz") in files and all(p.startswith(str(job)) for p in files)
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(job)],
+                          capture_output=True, text=True, timeout=300)
+    said = "stages: error.1 (steps 0-59), final (steps 60-64)"
+    assert proc.returncode == 0 and said in proc.stdout                 # inspect and the report
+    audit([job], tmp_path / "out", progress="off")
+    (page,) = (tmp_path / "out" / "report" / "runs").glob("*.html")
+    assert f"<th>stages</th><td>{said.split(': ', 1)[1]}</td>" in page.read_text()
 
 
 def test_custodian_archives_that_are_no_stage(tmp_path):
@@ -1084,3 +1091,11 @@ def test_custodian_archives_that_are_no_stage(tmp_path):
     first = run.stages[0]
     assert first["name"] == "error.1" and 0 < first["n_frames"] < 60
     assert any("error.1.tar.gz" in w and "truncated" in w for w in run.warnings)
+    job = _custodian_job(tmp_path / "d", continued=True)      # a damaged archive costs its steps
+    raw = (job / "error.1.tar.gz").read_bytes()
+    for damaged in (raw[:len(raw) // 2], b"not an archive"):
+        (job / "error.1.tar.gz").write_bytes(damaged)
+        run = read_run(job)
+        assert len(run) == 5
+        (w,) = [w for w in run.warnings if "error.1.tar.gz" in w]
+        assert "not read: damaged" in w and "\n" not in w

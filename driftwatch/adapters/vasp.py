@@ -20,15 +20,19 @@ keys the output lacks, and a disagreement between the two is a warning.
 """
 from __future__ import annotations
 
+import lzma
 import os
 import re
+import shutil
 import xml.etree.ElementTree as ET
+import zlib
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError
-from ._io import STREAM_ERRORS, Lines, file_size, open_bytes, strip_compression, tail_bytes
+from ._io import (STREAM_ERRORS, Lines, file_size, max_decompressed, open_bytes,
+                  strip_compression, tail_bytes)
 from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
@@ -744,6 +748,7 @@ def read_poscar(path, ctx: ReadContext):
 # ---------------------------------------------------------------- custodian's error archives
 _ARCHIVE = re.compile(r"^error\.(\d+)\.tar(?:\.gz|\.bz2|\.xz)?$")
 _ARCHIVED = ("vasprun.xml", "OUTCAR", "XDATCAR", "INCAR")      # what a stage is read from
+_TAR_ERRORS = (OSError, EOFError, zlib.error, lzma.LZMAError)   # and tarfile.TarError
 
 
 def _error_archives(folder: Path, names) -> list[Path]:
@@ -786,35 +791,47 @@ def read_error_archive(path, ctx: ReadContext):
     ``{"file": "CONTCAR", "action": {"_file_copy": {"dest": "POSCAR"}}}``). An attempt that the
     next one started again from the same structure (a correction of the electronic settings
     only) is not part of the trajectory: no steps, and a warning says so."""
-    import shutil
     import tarfile
     import tempfile
+    errors = (tarfile.TarError, *_TAR_ERRORS)
     path = Path(path)
-    try:
+    lost = "an earlier attempt of this job (custodian's archive) not read: "
+    tar = None
+    try:                                  # a damaged archive costs its steps, not the run's
         tar = tarfile.open(path, "r:*")
-    except (tarfile.TarError, OSError, EOFError) as exc:
-        raise InputError(path, f"not a readable tar archive ({exc})") from None
+        members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
+        contcar, nxt = _archived_bytes(tar, members, "CONTCAR"), _next_start(path)
+    except errors as exc:
+        if tar is not None:
+            tar.close()
+        ctx.warn(f"{lost}damaged or not a tar archive ({type(exc).__name__}: "
+                 f"{str(exc).splitlines()[0] if str(exc) else ''})")
+        return
     with tar, tempfile.TemporaryDirectory(prefix="driftwatch-archive-") as tmp:
-        try:
-            members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
-            contcar, nxt = _archived_bytes(tar, members, "CONTCAR"), _next_start(path)
-        except (tarfile.TarError, OSError, EOFError) as exc:
-            raise InputError(path, f"damaged tar archive ({exc})") from None
         if not contcar or nxt is None or contcar != nxt:
             why = ("the next attempt started from another structure than its CONTCAR (custodian "
                    "restarted it from the same input)" if contcar and nxt is not None else
                    "no CONTCAR in it, or no POSCAR after it, to tell whether the next attempt "
                    "continued from it")
-            ctx.warn(f"an earlier attempt of this job (custodian's archive) not read: {why}")
+            ctx.warn(lost + why)
             return
         kinds = {}
-        for name in _ARCHIVED:
-            if name in members:
-                dest = Path(tmp) / name
-                with tar.extractfile(members[name]) as src, open(dest, "wb") as out:
-                    shutil.copyfileobj(src, out)
-                if name != "INCAR":
-                    kinds[name] = [dest]
+        try:
+            for name in _ARCHIVED:
+                if name in members:
+                    if members[name].size > max_decompressed():
+                        ctx.warn(f"{lost}its {name} holds {members[name].size} bytes, more than "
+                                 f"$DRIFTWATCH_MAX_DECOMPRESSED allows")
+                        return
+                    dest = Path(tmp) / name
+                    with tar.extractfile(members[name]) as src, open(dest, "wb") as out:
+                        shutil.copyfileobj(src, out)
+                    if name != "INCAR":
+                        kinds[name] = [dest]
+        except errors as exc:
+            ctx.warn(f"{lost}damaged archive ({type(exc).__name__}: "
+                     f"{str(exc).splitlines()[0] if str(exc) else ''})")
+            return
         scratch = ReadContext(path)
         got = _pick_stage(Path(tmp), kinds, None, scratch, staged=True) if kinds else None
         if got is None:
@@ -828,8 +845,9 @@ def read_error_archive(path, ctx: ReadContext):
                   "vasp-xdatcar": read_xdatcar}[fmt]
         try:
             yield from reader(inner, ctx)
-        except InputError as exc:
-            raise InputError(path, f"{members[inner.name].name}: {exc.problem}") from None
+        except InputError as exc:         # after the steps it gave, if any
+            ctx.warn(f"an earlier attempt of this job (custodian's archive), "
+                     f"{members[inner.name].name}: {exc.problem}")
         finally:                     # the cache keys on the archive, not on the scratch copies
             for key in [k for k in ctx.files if k.startswith(tmp)]:
                 del ctx.files[key]

@@ -458,6 +458,7 @@ def _summary_section(rec):
         ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
                       + (e(_records.END_POINTS) if run.get("kind") == "end-points" else
                          f"{e(run.get('n_frames'))} ionic steps")),
+        *([("stages", e(_records.stages_text(rec)))] if _records.stages_text(rec) else []),
         *([("not a relaxation", f"{e(run['not_relaxation'])}<br><span class=\"muted\">the "
                                 "verdict compares how the structure moved from the first frame "
                                 "to the last, not where a relaxation ended</span>")]
