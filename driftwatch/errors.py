@@ -38,7 +38,8 @@ class AtomsChangeError(InputError):
 
 class NotARunError(InputError):
     """The path is no run and will not become one while a job writes (the parent folder of a
-    nudged-elastic-band calculation): following it stops at once instead of waiting."""
+    nudged-elastic-band calculation, a file of many structures read whole): following it stops
+    at once instead of waiting."""
 
 
 class GeometryError(DriftwatchError, ValueError):

@@ -773,14 +773,22 @@ def _next_start(archive: Path) -> bytes | None:
     later = [p for p in _error_archives(archive.parent, sorted(os.listdir(archive.parent)))
              if int(_ARCHIVE.match(p.name).group(1)) > int(_ARCHIVE.match(archive.name).group(1))]
     if later:
-        with tarfile.open(later[0], "r:*") as tar:
-            members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
-            return _archived_bytes(tar, members, "POSCAR")
+        try:
+            with tarfile.open(later[0], "r:*") as tar:
+                members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
+                return _archived_bytes(tar, members, "POSCAR")
+        except (tarfile.TarError, *_TAR_ERRORS):
+            return None                     # (that archive's own read says what is wrong)
     for n in ("POSCAR", "POSCAR.gz", "POSCAR.bz2", "POSCAR.xz"):
         if (archive.parent / n).is_file():
             with open_bytes(archive.parent / n) as fh:
                 return fh.read(1 << 26)
     return None
+
+
+def _one_line(exc) -> str:
+    text = str(exc).strip()
+    return f"{type(exc).__name__}: {text.splitlines()[0]}" if text else type(exc).__name__
 
 
 def read_error_archive(path, ctx: ReadContext):
@@ -790,53 +798,51 @@ def read_error_archive(path, ctx: ReadContext):
     its CONTCAR to POSCAR, so the next attempt's POSCAR holds the same bytes (custodian's handlers:
     ``{"file": "CONTCAR", "action": {"_file_copy": {"dest": "POSCAR"}}}``). An attempt that the
     next one started again from the same structure (a correction of the electronic settings
-    only) is not part of the trajectory: no steps, and a warning says so."""
+    only) is not part of the trajectory: no steps, and a warning says so; so is a damaged archive
+    (the run's other stages are still read)."""
     import tarfile
     import tempfile
     errors = (tarfile.TarError, *_TAR_ERRORS)
     path = Path(path)
-    lost = "an earlier attempt of this job (custodian's archive) not read: "
+    what = "an earlier attempt of this job (custodian's archive)"
     tar = None
-    try:                                  # a damaged archive costs its steps, not the run's
+    try:
         tar = tarfile.open(path, "r:*")
         members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
         contcar, nxt = _archived_bytes(tar, members, "CONTCAR"), _next_start(path)
     except errors as exc:
         if tar is not None:
             tar.close()
-        ctx.warn(f"{lost}damaged or not a tar archive ({type(exc).__name__}: "
-                 f"{str(exc).splitlines()[0] if str(exc) else ''})")
+        ctx.warn(f"{what} not read: damaged or not a tar archive ({_one_line(exc)})")
         return
     with tar, tempfile.TemporaryDirectory(prefix="driftwatch-archive-") as tmp:
         if not contcar or nxt is None or contcar != nxt:
             why = ("the next attempt started from another structure than its CONTCAR (custodian "
                    "restarted it from the same input)" if contcar and nxt is not None else
-                   "no CONTCAR in it, or no POSCAR after it, to tell whether the next attempt "
-                   "continued from it")
-            ctx.warn(lost + why)
+                   "no CONTCAR in it, or no readable POSCAR after it, to tell whether the next "
+                   "attempt continued from it")
+            ctx.warn(f"{what} not read: {why}")
             return
         kinds = {}
         try:
             for name in _ARCHIVED:
-                if name in members:
-                    if members[name].size > max_decompressed():
-                        ctx.warn(f"{lost}its {name} holds {members[name].size} bytes, more than "
-                                 f"$DRIFTWATCH_MAX_DECOMPRESSED allows")
-                        return
-                    dest = Path(tmp) / name
-                    with tar.extractfile(members[name]) as src, open(dest, "wb") as out:
-                        shutil.copyfileobj(src, out)
-                    if name != "INCAR":
-                        kinds[name] = [dest]
+                if name not in members:
+                    continue
+                if members[name].size > max_decompressed():
+                    ctx.warn(f"{what} not read: its {name} holds {members[name].size} bytes, more "
+                             f"than $DRIFTWATCH_MAX_DECOMPRESSED allows")
+                    return
+                dest = Path(tmp) / name
+                with tar.extractfile(members[name]) as src, open(dest, "wb") as out:
+                    shutil.copyfileobj(src, out)
+                if name != "INCAR":
+                    kinds[name] = [dest]
         except errors as exc:
-            ctx.warn(f"{lost}damaged archive ({type(exc).__name__}: "
-                     f"{str(exc).splitlines()[0] if str(exc) else ''})")
+            ctx.warn(f"{what} not read: damaged archive ({_one_line(exc)})")
             return
-        scratch = ReadContext(path)
-        got = _pick_stage(Path(tmp), kinds, None, scratch, staged=True) if kinds else None
+        got = _pick_stage(Path(tmp), kinds, None, ReadContext(path), staged=True) if kinds else None
         if got is None:
-            ctx.warn("an earlier attempt of this job (custodian's archive) holds no VASP "
-                     "trajectory (vasprun.xml, OUTCAR, XDATCAR): not read")
+            ctx.warn(f"{what} not read: no VASP trajectory in it (vasprun.xml, OUTCAR, XDATCAR)")
             return
         inner, fmt, note = got
         if note:
@@ -846,8 +852,7 @@ def read_error_archive(path, ctx: ReadContext):
         try:
             yield from reader(inner, ctx)
         except InputError as exc:         # after the steps it gave, if any
-            ctx.warn(f"an earlier attempt of this job (custodian's archive), "
-                     f"{members[inner.name].name}: {exc.problem}")
+            ctx.warn(f"{what}, {members[inner.name].name}: {exc.problem}")
         finally:                     # the cache keys on the archive, not on the scratch copies
             for key in [k for k in ctx.files if k.startswith(tmp)]:
                 del ctx.files[key]
