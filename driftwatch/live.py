@@ -35,7 +35,6 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.run import Frame, collect, frame_from_atoms, position_precision
-from .adapters.registry import run_kind
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
                      OutputError)
 
@@ -149,6 +148,7 @@ class Tracker:
         self.code_settings: dict = {}
         self.title: str | None = None
         self.rounding: tuple | None = None      # the reader's printed precision of positions
+        self.not_relaxation: str | None = None  # what the reader says the steps are, if no relaxation
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
@@ -217,14 +217,14 @@ class Tracker:
             format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
             position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
-            not_relaxation=run_kind(ctx.settings))     # as the reader says it (its warning)
+            not_relaxation=ctx.not_relaxation)
 
     def _run(self):
         """The frames so far as a Run, with what the reader noted (warnings, settings, title,
         the printed precision of positions)."""
         ctx = ReadContext(self.source)
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
-        ctx.rounding = self.rounding
+        ctx.rounding, ctx.not_relaxation = self.rounding, self.not_relaxation
         return self._collect(ctx)
 
     def _geometry(self, run):
@@ -721,7 +721,7 @@ class _Follower:
             self.tracker = self._start(ctx)
         self.source = Path(ctx.path)
         t = self.tracker
-        t.rounding = ctx.rounding
+        t.rounding, t.not_relaxation = ctx.rounding, ctx.not_relaxation
         t.source, t.warnings, t.code_settings, t.title = ctx.path, list(ctx.warnings), \
             dict(ctx.settings), ctx.title
         k = t.replace(frames)
@@ -777,7 +777,7 @@ class _Follower:
         if frames:
             t.replace(frames)
             t.source, t.warnings, t.code_settings = ctx.path, list(ctx.warnings), dict(ctx.settings)
-            t.rounding = ctx.rounding
+            t.rounding, t.not_relaxation = ctx.rounding, ctx.not_relaxation
         final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
         self.say_warnings(t.warnings, final=True)

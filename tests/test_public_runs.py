@@ -316,10 +316,12 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
     assert all(k["include"] for k in summary["skipped"])
     assert "25 runs (25 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
-    assert ("not relaxations: 7 runs (finite differences 1, molecular dynamics 3, "
-            "nudged-elastic-band image 3; column not_relaxation of campaign.csv)") in proc.stdout
+    assert ("not relaxations: 8 runs (finite differences 1, molecular dynamics 3, "
+            "nudged-elastic-band image 3, single-point calculation 1; column not_relaxation of "
+            "campaign.csv)") in proc.stdout
     assert {x["run"] for x in summary["not_relaxation"]} == {
         "mixed/vasp544_finite_differences", "mixed/vasp541_npt_md", "mixed/vasp544_neb/01",
+        "mixed/vasp544_nelm",                     # NSW = -1: one SCF at NELM, a single point
         "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
         "mixed/qe_testsuite_md/benchmark.out.git.inp=md.in.args=1.gz",
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
@@ -870,6 +872,10 @@ def test_a_relaxation_driven_by_ase_is_read_from_its_trajectory_not_the_last_scf
     assert "calculation = 'scf'" in w and "espresso.pwo" in w
     runs, failed = discover([d])
     assert [r.path for r in runs] == [str(d)] and not failed                      # one run
+    assert run.not_relaxation is None                      # the optimiser's trajectory relaxes
+    alone = read_run(d / "espresso.pwo")                   # the last scf alone: a single point
+    assert alone.not_relaxation == ("a single-point calculation (calculation = 'scf'): one "
+                                    "structure, no ionic steps")
     (d / "espresso.pwi").write_text((d / "espresso.pwi").read_text().replace(
         "&CONTROL", "&CONTROL\n   calculation = 'relax'"))        # a pw.x relaxation: its output
     assert Path(read_run(d).source).name == "espresso.pwo"
@@ -1099,3 +1105,28 @@ def test_custodian_archives_that_are_no_stage(tmp_path):
         assert len(run) == 5
         (w,) = [w for w in run.warnings if "error.1.tar.gz" in w]
         assert "not read: damaged" in w and "\n" not in w
+
+
+def test_single_point_calculations_are_no_relaxation_but_a_static_stage_keeps_one(tmp_path):
+    """A single point (VASP NSW <= 0 or IBRION = -1, VASP's documentation; pw.x calculation 'scf':
+    common practice) has one structure and no ionic step: its 'kept' is no verdict on a
+    relaxation, and it is marked so (the genuine ASE-test-data vasprun_pstress.xml, NSW = 0; a
+    phonopy-style displaced copy would otherwise read as a run with flags). A relaxation whose
+    folder ends with a static stage (tests/vasp_gen.py, modelled on genuine vasprun.xml files:
+    relax1 IBRION = 2, then a one-frame IBRION = -1 vasprun.xml) stays a relaxation."""
+    import vasp_gen
+    run = read_run(REPO / "tests" / "data" / "vasp" / "vasprun_pstress.xml")
+    assert len(run) == 1 and run.code_settings["NSW"] == 0
+    assert run.not_relaxation == "a single-point calculation (NSW = 0): one structure, no ionic steps"
+    t = vasp_gen.drifting_layer(6)
+    job = tmp_path / "job"
+    job.mkdir()
+    vasp_gen.write_vasprun(job / "vasprun.xml.relax1", t, ibrion=2)
+    last = vasp_gen.Trajectory(t.symbols, t.cells[-1:], t.frac[-1:], t.energies[-1:],
+                               t.forces[-1:], t.stress_kb[-1:])
+    vasp_gen.write_vasprun(job / "vasprun.xml", last, ibrion=-1)
+    run = read_run(job)
+    assert len(run) == 7 and [s["name"] for s in run.stages] == ["relax1", ""]
+    assert run.not_relaxation is None and not [w for w in run.warnings if "not a relax" in w]
+    alone = read_run(job / "vasprun.xml")
+    assert alone.not_relaxation.startswith("a single-point calculation (IBRION = -1)")

@@ -784,6 +784,8 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
 def run_kind(code_settings: dict) -> str | None:
     """What a pw.x run's ionic steps are when they are no relaxation (``calculation``); else None."""
     calc = (code_settings or {}).get("calculation")
+    if calc in _STATIC:
+        return f"a single-point calculation (calculation = '{calc}'): one structure, no ionic steps"
     return f"molecular dynamics (calculation = '{calc}')" if calc in ("md", "vc-md") else None
 
 

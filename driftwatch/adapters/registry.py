@@ -570,7 +570,7 @@ def _source_of(pick: _Pick, src: Path) -> str:
 def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> Iterator[Frame]:
     """Every completed step of every stage, steps numbered on across stages."""
     import dataclasses
-    offset, index, first_numbers = 0, 0, None
+    offset, index, first_numbers, kinds = 0, 0, None, []
     for name, src, fmt in pick.stages:
         ctx.path = _source_of(pick, src)
         n, last = 0, None
@@ -591,9 +591,12 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
         index += n
         if last is not None:
             offset = last + 1
+        if n:
+            kinds.append(run_kind(ctx.settings))       # each stage by its own settings
     if stages_out is not None and len(stages_out) == 1:
         stages_out.clear()                  # one stage gave every frame: not a multi-stage run
-    what = ctx.not_relaxation = run_kind(ctx.settings) if index else None
+    # no relaxation when no stage is one (relaxations ending in a static stage are relaxations)
+    what = ctx.not_relaxation = kinds[-1] if kinds and all(kinds) else None
     if what:
         ctx.warn(f"not a relaxation: {what}; its verdict compares the first and last frames (how "
                  f"the structure moved), not where a relaxation ended")

@@ -1222,9 +1222,14 @@ _NOT_RELAXING = {0: "molecular dynamics (IBRION = 0)",
 
 
 def run_kind(code_settings: dict) -> str | None:
-    """What a VASP run's ionic steps are when they are no relaxation, from IBRION; else None (a
+    """What a VASP run's ionic steps are when they are no relaxation, from IBRION and NSW (a
+    single point: NSW <= 0 or IBRION = -1, VASP's documentation; common practice); else None (a
     band's image is named by ``registry.run_kind`` from ``neb_image``)."""
-    ibrion = (code_settings or {}).get("IBRION")
+    s = code_settings or {}
+    ibrion, nsw = s.get("IBRION"), s.get("NSW")
+    if (nsw is not None and int(nsw) <= 0) or (ibrion is not None and int(ibrion) == -1):
+        what = f"NSW = {int(nsw)}" if nsw is not None and int(nsw) <= 0 else "IBRION = -1"
+        return f"a single-point calculation ({what}): one structure, no ionic steps"
     return None if ibrion is None else _NOT_RELAXING.get(int(ibrion))
 
 
