@@ -1088,11 +1088,13 @@ def test_custodian_archives_that_are_no_stage(tmp_path):
     electronic settings) is not part of the trajectory: the rerun's steps alone, and a warning
     naming the archive. A killed attempt (its archived vasprun.xml cut mid-run) gives the steps
     it completed, with the truncation named in the archive."""
-    run = read_run(_custodian_job(tmp_path / "b", continued=False))
+    job = _custodian_job(tmp_path / "b", continued=False)
+    run = read_run(job)
     assert len(run) == 5 and run.stages == ()
     (w,) = [w for w in run.warnings if "error.1.tar.gz" in w]
     assert "an earlier attempt of this job (custodian's archive) not read" in w
     assert "started from another structure than its CONTCAR" in w
+    assert len(read_run(f"{job}@error.1")) == 60          # asked for alone: the attempt's steps
     run = read_run(_custodian_job(tmp_path / "c", continued=True, cut=True))
     first = run.stages[0]
     assert first["name"] == "error.1" and 0 < first["n_frames"] < 60

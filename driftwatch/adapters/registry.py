@@ -571,6 +571,7 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
     """Every completed step of every stage, steps numbered on across stages."""
     import dataclasses
     offset, index, first_numbers, kinds = 0, 0, None, []
+    ctx.stage_count = len(pick.stages)
     for name, src, fmt in pick.stages:
         ctx.path = _source_of(pick, src)
         n, last = 0, None

@@ -258,6 +258,9 @@ class ReadContext:
         """``{"key", "value", "structures"}`` for one structure of a many-structure file."""
         self.not_relaxation: str | None = None
         """What the steps are when they are no relaxation (:attr:`Run.not_relaxation`)."""
+        self.stage_count: int = 1
+        """How many stages are read together (a reader whose file may not belong to the stages
+        after it, an archived attempt, checks that only when there are several)."""
         self.carry: dict = {}
         """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
         configuration it printed but never evaluated, which a ``restart_mode='restart'`` run

@@ -799,7 +799,8 @@ def read_error_archive(path, ctx: ReadContext):
     ``{"file": "CONTCAR", "action": {"_file_copy": {"dest": "POSCAR"}}}``). An attempt that the
     next one started again from the same structure (a correction of the electronic settings
     only) is not part of the trajectory: no steps, and a warning says so; so is a damaged archive
-    (the run's other stages are still read)."""
+    (the run's other stages are still read). Read alone (``FOLDER@error.1``, or ``-f``), its
+    steps are read whatever came after it."""
     import tarfile
     import tempfile
     errors = (tarfile.TarError, *_TAR_ERRORS)
@@ -809,14 +810,15 @@ def read_error_archive(path, ctx: ReadContext):
     try:
         tar = tarfile.open(path, "r:*")
         members = {m.name.rsplit("/", 1)[-1]: m for m in tar.getmembers() if m.isfile()}
-        contcar, nxt = _archived_bytes(tar, members, "CONTCAR"), _next_start(path)
+        contcar = _archived_bytes(tar, members, "CONTCAR")
+        nxt = _next_start(path) if ctx.stage_count > 1 else None
     except errors as exc:
         if tar is not None:
             tar.close()
         ctx.warn(f"{what} not read: damaged or not a tar archive ({_one_line(exc)})")
         return
     with tar, tempfile.TemporaryDirectory(prefix="driftwatch-archive-") as tmp:
-        if not contcar or nxt is None or contcar != nxt:
+        if ctx.stage_count > 1 and (not contcar or nxt is None or contcar != nxt):
             why = ("the next attempt started from another structure than its CONTCAR (custodian "
                    "restarted it from the same input)" if contcar and nxt is not None else
                    "no CONTCAR in it, or no readable POSCAR after it, to tell whether the next "
