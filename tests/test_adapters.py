@@ -406,7 +406,7 @@ def test_genuine_vasp_files_match_ase(path, tmp_path):
     _assert_same_as_ase(run, _unzipped(path, tmp_path))
     assert len(run) == 1 and run.pbc.all()
     # single points (NSW = 0): the one warning says so (VASP's documentation of NSW: common practice)
-    assert run.not_relaxation.startswith("a single-point calculation (NSW = 0)")
+    assert run.not_relaxation.startswith("a single-point calculation (NSW = 0")
     assert [w.split(": ", 1)[1] for w in run.warnings] == [
         f"not a relaxation: {run.not_relaxation}; its verdict compares the first and last frames "
         f"(how the structure moved), not where a relaxation ended"]

@@ -1119,7 +1119,8 @@ def test_single_point_calculations_are_no_relaxation_but_a_static_stage_keeps_on
     import vasp_gen
     run = read_run(REPO / "tests" / "data" / "vasp" / "vasprun_pstress.xml")
     assert len(run) == 1 and run.code_settings["NSW"] == 0
-    assert run.not_relaxation == "a single-point calculation (NSW = 0): one structure, no ionic steps"
+    assert run.not_relaxation == ("a single-point calculation (NSW = 0, IBRION = -1): one "
+                                  "structure, no ionic steps")
     t = vasp_gen.drifting_layer(6)
     job = tmp_path / "job"
     job.mkdir()

@@ -1129,10 +1129,7 @@ def _single_point_traj(folder: Path, names, out: Path, ctx):
             tags = read_incar(incar) if incar is not None else None
         except (OSError, *STREAM_ERRORS):
             tags = None
-        if tags is None or not (tags.get("NSW", 0) <= 0 or tags.get("IBRION") == -1):
-            return None
-        what = f"NSW = {tags['NSW']}" if "NSW" in tags else "NSW unset"
-        return what + (", IBRION = -1" if tags.get("IBRION") == -1 else "")
+        return None if tags is None else _single_point(tags, incar=True)
     return beside_single_point(folder, names, out, single_point, _CODE_FORMATS, ctx)
 
 
@@ -1215,6 +1212,19 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
             "undo": "ISYM = 0"}
 
 
+def _single_point(tags: dict, incar: bool = False) -> str | None:
+    """How VASP settings make a run one structure, in words ("NSW = 0", "NSW unset" in an INCAR,
+    where VASP's default is 0, "IBRION = -1", or both), else None (VASP's documentation of NSW
+    and IBRION: common practice)."""
+    nsw = tags.get("NSW", 0 if incar else None)
+    still = nsw is not None and int(nsw) <= 0
+    fixed = tags.get("IBRION") is not None and int(tags["IBRION"]) == -1
+    if not (still or fixed):
+        return None
+    parts = [f"NSW = {int(tags['NSW'])}" if "NSW" in tags else "NSW unset"] if still else []
+    return ", ".join(parts + (["IBRION = -1"] if fixed else []))
+
+
 # IBRION values whose ionic steps are no relaxation (VASP's documentation of IBRION: common practice)
 _NOT_RELAXING = {0: "molecular dynamics (IBRION = 0)",
                  5: "finite differences (IBRION = 5): displaced copies of one structure",
@@ -1228,11 +1238,10 @@ def run_kind(code_settings: dict) -> str | None:
     single point: NSW <= 0 or IBRION = -1, VASP's documentation; common practice); else None (a
     band's image is named by ``registry.run_kind`` from ``neb_image``)."""
     s = code_settings or {}
-    ibrion, nsw = s.get("IBRION"), s.get("NSW")
-    if (nsw is not None and int(nsw) <= 0) or (ibrion is not None and int(ibrion) == -1):
-        what = f"NSW = {int(nsw)}" if nsw is not None and int(nsw) <= 0 else "IBRION = -1"
+    what = _single_point(s)
+    if what:
         return f"a single-point calculation ({what}): one structure, no ionic steps"
-    return None if ibrion is None else _NOT_RELAXING.get(int(ibrion))
+    return None if s.get("IBRION") is None else _NOT_RELAXING.get(int(s["IBRION"]))
 
 
 # ---------------------------------------------------------------- registration
