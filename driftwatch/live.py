@@ -34,6 +34,7 @@ import numpy as np
 from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
+from .adapters.registry import run_kind
 from .adapters.run import Frame, collect, frame_from_atoms, position_precision
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
                      OutputError)
@@ -384,12 +385,26 @@ class SymmetryWatch:
     def __call__(self, optimizer=None):
         opt = optimizer if optimizer is not None else self.optimizer
         step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
+        if self._calls == 0 and opt is not None:
+            self._note_dynamics(opt)
         self._calls += 1
         self._tracker.append(frame_from_atoms(self.atoms, step))
         if self._lattice_steps:
             self._check_lattice(stacklevel=3)
         else:
             self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
+
+    def _note_dynamics(self, opt) -> None:
+        """An ASE molecular-dynamics object (its ``todict()`` says 'molecular-dynamics', as it
+        writes into a trajectory's description) makes the record no relaxation."""
+        try:
+            d = opt.todict()
+        except Exception:  # noqa: BLE001 - an optimizer without todict: nothing to note
+            return
+        if isinstance(d, dict) and d.get("type") == "molecular-dynamics":
+            t = self._tracker
+            t.code_settings.update({"code": "ase", "dynamics": str(d.get("md-type") or "?")})
+            t.not_relaxation = run_kind(t.code_settings)
 
     @property
     def record(self) -> dict | None:

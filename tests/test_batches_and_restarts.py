@@ -582,3 +582,46 @@ def test_trajectories_that_are_no_band_stay_one_run(tmp_path):
         for _ in range(12):
             t.write(slab)
     assert structures(tmp_path / "still.traj") == [] and len(read_run(tmp_path / "still.traj")) == 12
+
+
+def test_an_ase_molecular_dynamics_trajectory_says_it_is_no_relaxation(tmp_path):
+    """ASE's dynamics write what they are into the trajectory's description (ASE's Dynamics /
+    MolecularDynamics ``todict``: ``type`` 'optimization' or 'molecular-dynamics' with
+    ``md-type``, read back through ASE's own Trajectory): a real VelocityVerlet and a Langevin run
+    (EMT, an invented 32-atom Cu cell) are marked molecular dynamics; a BFGS relaxation is not."""
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.io.trajectory import Trajectory
+    from ase.md.langevin import Langevin
+    from ase.md.verlet import VelocityVerlet
+    from ase.optimize import BFGS
+    from ase import units
+    atoms = bulk("Cu", cubic=True).repeat(2)
+    atoms.rattle(0.05, seed=11)
+    atoms.calc = EMT()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        VelocityVerlet(atoms, 2 * units.fs, trajectory=str(tmp_path / "nve.traj")).run(4)
+        Langevin(atoms, 2 * units.fs, temperature_K=300, friction=0.01, rng=np.random.default_rng(2),
+                 trajectory=str(tmp_path / "nvt.traj")).run(4)
+        BFGS(atoms, trajectory=str(tmp_path / "relax.traj"), logfile=None).run(fmax=0.05, steps=5)
+    for name, md in (("nve", "VelocityVerlet"), ("nvt", "Langevin")):
+        path = tmp_path / f"{name}.traj"
+        with Trajectory(str(path)) as t:                                       # ASE's own reader
+            assert t.description["type"] == "molecular-dynamics" and t.description["md-type"] == md
+        run = read_run(path)
+        assert len(run) == 5 and run.not_relaxation == f"molecular dynamics (ASE's {md})"
+        assert any("not a relaxation" in w for w in run.warnings)
+    relax = read_run(tmp_path / "relax.traj")
+    assert relax.code_settings["optimizer"] == "BFGS" and relax.not_relaxation is None
+    from driftwatch.live import SymmetryWatch         # the observer attached to MD says it too
+    dyn = VelocityVerlet(atoms, 2 * units.fs)
+    watch = SymmetryWatch(atoms, optimizer=dyn)
+    dyn.attach(watch, interval=1)
+    dyn.run(3)
+    assert watch.record["run"]["not_relaxation"] == "molecular dynamics (ASE's VelocityVerlet)"
+    opt = BFGS(atoms, logfile=None)
+    watch = SymmetryWatch(atoms, optimizer=opt)
+    opt.attach(watch, interval=1)
+    opt.run(fmax=0.05, steps=2)
+    assert watch.record["run"]["not_relaxation"] is None

@@ -144,9 +144,11 @@ def read_traj(path, ctx: ReadContext):
                                        f"per optimiser step: ASE's NEB)")
     traj = Trajectory(path, "r")
     try:
-        desc = getattr(traj, "description", None) or {}
+        desc = getattr(traj, "description", None) or {}     # what ASE's dynamics wrote
         if isinstance(desc, dict) and desc.get("type") == "optimization":
             ctx.settings.update({"code": "ase", "optimizer": desc.get("optimizer")})
+        elif isinstance(desc, dict) and desc.get("type") == "molecular-dynamics":
+            ctx.settings.update({"code": "ase", "dynamics": str(desc.get("md-type") or "?")})
         n = len(traj)
         if name is None:
             for i in range(n):

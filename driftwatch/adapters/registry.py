@@ -663,11 +663,14 @@ def read_run(path, format=None, *, context: ReadContext | None = None,
 def run_kind(code_settings: dict) -> str | None:
     """What a run's ionic steps are when they are no relaxation (see :class:`Code`), else None.
     Any code: ``neb_image`` in the settings (which image of which band, in words) names an image
-    of a nudged-elastic-band calculation (VASP's IMAGES folders, ASE's NEB trajectory)."""
+    of a nudged-elastic-band calculation (VASP's IMAGES folders, ASE's NEB trajectory); an ASE
+    trajectory whose description names a molecular-dynamics class (``dynamics``) is MD."""
     s = code_settings or {}
     if s.get("neb_image"):
         return (f"a nudged-elastic-band image ({s['neb_image']}): it moves along a path between "
                 f"two end points")
+    if s.get("code") == "ase" and s.get("dynamics"):      # an ASE MD class wrote the trajectory
+        return f"molecular dynamics (ASE's {s['dynamics']})"
     code = _code_named(s.get("code"))
     fn = code.function("run_kind") if code is not None else None
     return fn(s) if fn is not None else None
