@@ -1005,7 +1005,7 @@ def test_neb_images_not_run_and_end_points_that_ran(tmp_path):
     so, not a one-structure run; an end point that holds a relaxation of its own (here the genuine
     relax1 vasprun.xml of pymatgen-db, as a user may relax an end point in place) is a run. A
     folder laid out like a band whose INCAR sets no IMAGES is no band: its folders are read as
-    before."""
+    before, each image still marked by its own OUTCAR (VTST prints "CHAIN: Running the NEB")."""
     camp = _neb_campaign(tmp_path)
     for f in ("OUTCAR.gz", "CONTCAR"):
         (camp / "neb" / "02" / f).unlink()
@@ -1025,7 +1025,15 @@ def test_neb_images_not_run_and_end_points_that_ran(tmp_path):
     (camp / "neb" / "INCAR").write_text("IBRION = 3\nNSW = 50\n")          # no IMAGES: no band
     runs, failed = discover([camp])
     assert "camp/neb/00" in [r.id for r in runs]
-    assert not [w for w in read_run(camp / "neb" / "01").warnings if "nudged" in w]
+    # ... but VTST's OUTCAR says it runs the NEB, as images copied away from their band show
+    assert read_run(camp / "neb" / "01").not_relaxation.startswith(
+        "a nudged-elastic-band image (VTST's NEB, as its OUTCAR says)")
+    retrieved = tmp_path / "retrieved" / "01"                # a workflow's retrieved outputs
+    retrieved.mkdir(parents=True)
+    shutil.copy(NEB / "01" / "OUTCAR.gz", retrieved)
+    assert read_run(retrieved).not_relaxation.startswith("a nudged-elastic-band image (VTST's")
+    relax = read_run(PUB / "vasp620_nelm")                    # a relaxation's OUTCAR: no mark
+    assert relax.not_relaxation is None
 
 
 def _custodian_job(tmp_path: Path, *, continued: bool, cut: bool = False) -> Path:

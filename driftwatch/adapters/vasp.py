@@ -409,6 +409,8 @@ _OUT_NELM = re.compile(r"^\s*NELM\s*=\s*(\d+)")
 _OUT_LEPSILON = re.compile(r"^\s*LEPSILON\s*=\s*T")
 _OUT_ITERATION = re.compile(r"Iteration\s+\d+\(\s*(\d+)\)")     # ionic(electronic) step
 # VASP 5.4/6: the last is INISYM's (the operations used); VASP 5.2 ends with MAGSYM's
+_OUT_VTST_NEB = "CHAIN: Running the NEB"   # VTST's NEB says so in the OUTCAR header (genuine
+#                                            aiida-vasp NEB, tests/data/public/vasp544_neb)
 _OUT_NSYM = re.compile(r"(?:GETGRP|DYNSYM|MAGSYM|INISYM) returns: Found\s+(\d+) space group operations")
 _OUTCAR_END = "General timing and accounting"
 
@@ -440,6 +442,8 @@ def _outcar_header(path):
             m = _OUT_NSYM.search(line)
             if m:
                 reported["nsym"] = int(m.group(1))
+            if _OUT_VTST_NEB in line:
+                reported["neb_image"] = "VTST's NEB, as its OUTCAR says"
     return reported, title, nelm, lepsilon
 
 
