@@ -408,9 +408,9 @@ _OUT_SYSTEM = re.compile(r"^\s*SYSTEM\s*=\s*(.*\S)")
 _OUT_NELM = re.compile(r"^\s*NELM\s*=\s*(\d+)")
 _OUT_LEPSILON = re.compile(r"^\s*LEPSILON\s*=\s*T")
 _OUT_ITERATION = re.compile(r"Iteration\s+\d+\(\s*(\d+)\)")     # ionic(electronic) step
+# VTST's NEB says so in the OUTCAR header (the genuine aiida-vasp NEB, tests/data/public/vasp544_neb)
+_OUT_VTST_NEB = "CHAIN: Running the NEB"
 # VASP 5.4/6: the last is INISYM's (the operations used); VASP 5.2 ends with MAGSYM's
-_OUT_VTST_NEB = "CHAIN: Running the NEB"   # VTST's NEB says so in the OUTCAR header (genuine
-#                                            aiida-vasp NEB, tests/data/public/vasp544_neb)
 _OUT_NSYM = re.compile(r"(?:GETGRP|DYNSYM|MAGSYM|INISYM) returns: Found\s+(\d+) space group operations")
 _OUTCAR_END = "General timing and accounting"
 
