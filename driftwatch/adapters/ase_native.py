@@ -93,7 +93,8 @@ def _band_period(backend, n: int) -> int | None:
 
 
 def band_period(path) -> int | None:
-    """:func:`_band_period` of a trajectory file, remembered for its current stamp."""
+    """:func:`_band_period` of a trajectory file, remembered for its current stamp; the file's
+    ULM header is checked (:func:`_check_ulm_header`) when it is computed."""
     from ase.io import ulm
     from .run import file_stamp
     stamp = file_stamp(path)
@@ -131,8 +132,7 @@ def read_traj(path, ctx: ReadContext):
     from ase.io.trajectory import Trajectory
     from . import batch
     path, name = batch.split(path)
-    _check_ulm_header(path)
-    p = band_period(path)
+    p = band_period(path)                    # (checks the ULM header of this file stamp)
     names = _image_names(p) if p else []
     if name is not None and name not in names:
         raise InputError(path, f"no structure {name!r}: " + (

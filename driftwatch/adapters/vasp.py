@@ -117,8 +117,9 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
             incar = member[0]["incar"]
             ctx.uses(incar)
             settings["neb_image"] = f"folder {p.parent.name} of IMAGES = {member[0]['images']}"
-        try:
-            given = read_incar(incar) if incar is not None else {}
+        try:                               # (a band's INCAR is read already)
+            given = member[0]["tags"] if member is not None else \
+                read_incar(incar) if incar is not None else {}
         except (OSError, *STREAM_ERRORS):
             given = {}
         filled = False
@@ -974,17 +975,19 @@ def _band(folder: Path) -> dict | None:
     VASP's layout (its IMAGES tag; common practice): the parent holds the INCAR with IMAGES = N
     and the folders ``00`` to ``N+1``: ``00`` and ``N+1`` the fixed end points (POSCAR only),
     ``01`` to ``N`` the images, each run in its own folder with the parent's INCAR. Returns
-    ``{"images": N, "incar": path}`` when the INCAR sets IMAGES >= 1 and ``01/`` is a folder."""
+    ``{"images": N, "incar": path, "tags": read_incar(path)}`` when the INCAR sets IMAGES >= 1
+    and ``01/`` is a folder."""
     folder = Path(folder)
     if not (folder / "01").is_dir():
         return None
     incar = next((folder / n for n in ("INCAR", "INCAR.gz", "INCAR.bz2", "INCAR.xz")
                   if (folder / n).is_file()), None)
     try:
-        n = read_incar(incar).get("IMAGES") if incar is not None else None
+        tags = read_incar(incar) if incar is not None else {}
     except (OSError, *STREAM_ERRORS):
         return None
-    return {"images": int(n), "incar": incar} if n and n >= 1 else None
+    n = tags.get("IMAGES")
+    return {"images": int(n), "incar": incar, "tags": tags} if n and n >= 1 else None
 
 
 def _band_member(folder: Path) -> tuple[dict, int] | None:
@@ -1105,19 +1108,19 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
             notes.append(note)
     if not stages:
         return None
+    archived = _error_archives(folder, names)
     if len(stages) == 1 and stages[0][0] in ("", None):
         stages = [("", stages[0][1], stages[0][2])]
         if format is None and stages[0][2] in ("vasp-xml", "vasp-out"):
             traj = _single_point_traj(folder, names, stages[0][1], ctx)
             if traj is not None:
                 return traj
-            archived = _error_archives(folder, names)
             if archived:                    # earlier attempts first; the last one is "final"
                 stages = [(p.name.split(".tar")[0], p, "vasp-error-archive") for p in archived] \
                     + [("final", stages[0][1], stages[0][2])]
-    elif _error_archives(folder, names):
+    elif archived:
         notes.append(f"{folder}: custodian's archives of earlier attempts "
-                     f"({', '.join(p.name for p in _error_archives(folder, names))}) are not read "
+                     f"({', '.join(p.name for p in archived)}) are not read "
                      f"beside staged outputs (which stage each belongs to is not recorded)")
     return FolderPick(stages, tuple(notes))
 

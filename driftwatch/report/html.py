@@ -452,13 +452,14 @@ def _summary_section(rec):
     v = _records.verdict_fields(rec)
     verdict = v["verdict"]
     lat = s["verdict"]["lattice"]
+    stages = _records.stages_text(rec)
     rows = [
         ("verdict", _badge(verdict, f"v-{verdict}") + f" <span class=\"muted\">"
                     f"{e(s['verdict']['text'])}</span>"),
         ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
                       + (e(_records.END_POINTS) if run.get("kind") == "end-points" else
                          f"{e(run.get('n_frames'))} ionic steps")),
-        *([("stages", e(_records.stages_text(rec)))] if _records.stages_text(rec) else []),
+        *([("stages", e(stages))] if stages else []),
         *([("not a relaxation", f"{e(run['not_relaxation'])}<br><span class=\"muted\">the "
                                 "verdict compares how the structure moved from the first frame "
                                 "to the last, not where a relaxation ended</span>")]
