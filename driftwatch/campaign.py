@@ -941,9 +941,9 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     for c in tol["changes"]:
         print(f"spglib verdict changes between symprec {c['low']:g} and {c['high']:g} Å: "
               f"{c['runs']} of {tol['runs_considered']} runs", file=stream)
-    if tol["recommended_symprec"]:
-        print(f"campaign symprec: {tol['recommended_symprec']:.3g} Å ({tol['reason']})",
-              file=stream)
+    value = (f"{tol['recommended_symprec']:.3g} Å" if tol["recommended_symprec"]
+             else "any in the range searched" if tol.get("safe_runs") else "none to recommend")
+    print(f"campaign symprec: {value} ({tol['reason']})", file=stream)
     print("verdicts and flags are diagnostics to check, not proofs of stability or of a phase",
           file=stream)
     print(f"outputs: {summary['output']}", file=stream)
@@ -1190,7 +1190,9 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
                                               + ["failed"] * len(failed)
                                               + ["skipped"] * len(skipped)).items())),
         "tolerance": campaign_advice([{"run": r["run"], "summary": r["view"]["summary"],
-                                       "grid": r["view"]["grid"]} for r in ok],
+                                       "grid": r["view"]["grid"],
+                                       "not_relaxation": r["view"]["csv"]["not_relaxation"]}
+                                      for r in ok],
                                      cfg["report"]["common_symprecs"]),
         "records": {r["run"]: f"records/{res.names[r['run']]}" for r in ok},
         "stale_records": [f"records/stale/{n}" for n in stale],

@@ -721,7 +721,8 @@ SAFE_MARGIN = 2.0  # campaign symprec advice: verdict constant within this facto
 def advice_item(run_id: str, record: dict) -> dict:
     """The input :func:`campaign_advice` needs from one record."""
     grid = (record["frames"][-1].get("symmetry") or {}).get("symprec") or []
-    return {"run": run_id, "summary": record["summary"], "grid": [min(grid), max(grid)] if grid else None}
+    return {"run": run_id, "summary": record["summary"], "grid": [min(grid), max(grid)] if grid else None,
+            "not_relaxation": (record.get("run") or {}).get("not_relaxation")}
 
 
 def _near_key(at: dict, s: float):
@@ -749,8 +750,10 @@ def _safe_at(ranges, s, lo_end, hi_end, margin=None, floor=None) -> float | None
 def campaign_advice(items: list[dict], common: list[float], window=None) -> dict:
     """Campaign tolerance advice from the final-frame spectra of the analysed runs.
 
-    ``items`` are ``{"run": id, "summary": record summary, "grid": [lowest, highest symprec] or None}``
-    (:func:`advice_item` makes one from a record).
+    ``items`` are ``{"run": id, "summary": record summary, "grid": [lowest, highest symprec] or None,
+    "not_relaxation": what the steps are, or None}`` (:func:`advice_item` makes one from a record).
+    Runs whose steps are no relaxation (molecular dynamics, band images, single points) are left
+    out: their final structures are not relaxed ones (``left_out`` counts them).
 
     ``changes`` counts the runs whose spglib verdict (group number) on the final structure differs
     between consecutive ``common`` symprecs (Å). A run is *safe* at a symprec when that value sits
@@ -761,9 +764,12 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     are safe. A starting point for the user's own check, not a guarantee.
     """
     common = sorted(float(s) for s in common)
+    left_out = [r["run"] for r in items if r.get("not_relaxation")]
     per_run = []
     for r in items:
         tol, grid = r["summary"]["tolerance"], r["grid"]
+        if r.get("not_relaxation"):
+            continue
         if not tol.get("at") or not grid:
             continue
         groups = [tol["at"][_near_key(tol["at"], s)][0] for s in common]
@@ -779,10 +785,11 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     out = {"symprecs": common, "unit": "Å", "runs_considered": len(per_run),
            "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying[:50],
            "recommended_symprec": None, "safe_runs": 0,
-           "window": list(window) if window else None,
+           "window": list(window) if window else None, "left_out": len(left_out),
+           "run_ids_left_out": left_out[:50],
            "reason": "no run has a symmetry spectrum of its final frame"}
     if not per_run:
-        return out
+        return _left_out_said(out)
 
     def ranges_of(t):
         return t.get("ranges", t.get("stable_ranges", []))
@@ -797,7 +804,7 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     if top == 0:
         out["reason"] = (f"no symprec in {_g(window[0])}-{_g(window[1])} Å keeps one verdict within "
                          f"a factor {SAFE_MARGIN:g} for any run: check each run's spectrum")
-        return out
+        return _left_out_said(out)
     blocks, start = [], None                 # longest stretch of the top count, in log symprec
     for i, c in enumerate(counts + [-1]):
         if c == top and start is None:
@@ -810,7 +817,7 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
         out.update(safe_runs=top, reason=f"{top} of {len(per_run)} runs keep one spglib verdict on "
                    f"the final structure at every symprec searched ({_g(window[0])}-"
                    f"{_g(window[1])} Å): any value in that range gives the same verdicts")
-        return out
+        return _left_out_said(out)
     s = math.sqrt(grid[a] * grid[b])
     ok = safe(s)
     out.update(recommended_symprec=s, safe_runs=len(ok),
@@ -821,7 +828,16 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
                       f"searched {_g(window[0])}-{_g(window[1])} Å) where the most runs are safe. "
                       f"A starting point for your own check"
                       + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
-    return out
+    return _left_out_said(out)
+
+
+def _left_out_said(advice: dict) -> dict:
+    """The advice's reason, ending with how many runs were left out as no relaxation."""
+    n = advice["left_out"]
+    if n:
+        advice["reason"] += (f". Left out: {n} run{'s' if n > 1 else ''} whose steps are no "
+                             f"relaxation")
+    return advice
 
 
 def check_codes(codes, what: str = "--reject-on") -> list[str]:

@@ -466,3 +466,26 @@ def test_a_worker_process_that_dies_fails_only_its_run(tmp_path, monkeypatch):
     assert set(failed) == {"camp/bad/empty.traj", "camp/bad/garbage.traj", "camp/more/boom.crash"}
     assert "worker process died" in failed["camp/more/boom.crash"]
     assert len(record_bytes(tmp_path / "out")) == 5 and s["runs"] == 8
+
+
+def test_summary_states_the_campaign_symprec_when_there_is_no_single_value(tmp_path):
+    """The audit's summary always has a "campaign symprec" line: a value, "any" when every run keeps
+    one verdict at every symprec searched, or "none" with the reason. The bundled B06 run ends on an
+    fcc cell (spglib, checked here: Fm-3m (225) from 1e-5 to 0.3 Å); the broken public files give
+    no spectrum at all."""
+    import spglib
+    final = ase.io.read(REPO / "example_runs" / "B06_emt_bain.traj", index=-1)
+    cell = (final.cell[:], final.get_scaled_positions(), final.numbers)
+    assert {spglib.get_symmetry_dataset(cell, symprec=s).number for s in (1e-5, 1e-3, 0.3)} == {225}
+    for src, said in ((REPO / "example_runs" / "B06_emt_bain.traj",
+                       "campaign symprec: any in the range searched (1 of 1 runs keep one spglib "
+                       "verdict on the final structure at every symprec searched (1e-05-0.3 Å)"),
+                      (REPO / "tests" / "data" / "public" / "broken",
+                       "campaign symprec: none to recommend (no run has a symmetry spectrum of its "
+                       "final frame)")):
+        proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(src), "-o",
+                               str(tmp_path / src.name), "--no-report"],
+                              capture_output=True, text=True, timeout=300)
+        assert said in proc.stdout, proc.stdout[-1500:]
+        tol = json.loads((tmp_path / src.name / "campaign.json").read_text())["tolerance"]
+        assert tol["recommended_symprec"] is None

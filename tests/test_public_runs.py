@@ -325,6 +325,21 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
         "mixed/qe_testsuite_md/benchmark.out.git.inp=md.in.args=1.gz",
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
+    # the campaign's tolerance advice is about relaxed structures: those 8 are left out of it
+    tol = summary["tolerance"]
+    assert tol["left_out"] == 8 and set(tol["run_ids_left_out"]) == {
+        x["run"] for x in summary["not_relaxation"]}
+    from driftwatch.rules import advice_item, campaign_advice
+    recs = [(p.name, json.loads(p.read_text()))
+            for p in (tmp_path / "out" / "records").glob("*.json")]
+    alone = campaign_advice([advice_item(n, r) for n, r in recs
+                             if not r["run"]["not_relaxation"]], tol["symprecs"])
+    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 8
+    assert tol["recommended_symprec"] == alone["recommended_symprec"]
+    assert [c["runs"] for c in tol["changes"]] == [c["runs"] for c in alone["changes"]]
+    assert tol["reason"] == alone["reason"] + ". Left out: 8 runs whose steps are no relaxation"
+    assert f"campaign symprec: {tol['recommended_symprec']:.3g} Å (" in proc.stdout
+    assert "Left out: 8 runs whose steps are no relaxation)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -996,6 +1011,7 @@ def test_a_neb_band_is_read_as_its_images_not_as_relaxations(tmp_path):
     audit([camp], tmp_path / "out", progress="off")                 # the report marks them
     index = (tmp_path / "out" / "report" / "index.html").read_text()
     assert index.count(">not a relaxation</span>") == 3 and "<th>not relaxations</th>" in index
+    assert "(0 of 3 runs have a tolerance spectrum; 3 not relaxations left out)." in index
     page = (tmp_path / "out" / "report" / "runs" / "camp_neb_01.html").read_text()
     assert "a nudged-elastic-band image (folder 01 of IMAGES = 3)" in page
 

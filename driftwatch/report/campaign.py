@@ -53,18 +53,26 @@ def flag_counts(records: list[dict]) -> dict:
     return dict(sorted(c.items(), key=lambda kv: (-kv[1], kv[0])))
 
 
+def is_not_relaxation(record: dict) -> bool:
+    """True when the record's steps are no relaxation (molecular dynamics, a band image, ...)."""
+    return bool((record.get("run") or {}).get("not_relaxation"))
+
+
 def tolerance_table(records: list[tuple[str, dict]], common=DEFAULT_COMMON) -> dict:
     """Pooled tolerance picture of runs ``[(name, record), ...]`` (final-frame spectra).
 
-    Returns ``{"n_runs", "n_with_spectrum", "common", "stable_ranges": [[low, high], ...] (Å, widest
+    Runs whose steps are no relaxation are left out (``left_out``), as in the audit's advice.
+    Returns ``{"n_runs", "n_with_spectrum", "left_out", "common", "stable_ranges": [[low, high], ...] (Å, widest
     first: ranges inside the grids where no run changes its group verdict), "changes": [{"a", "b",
     "runs": [names]}, ...] for every pair of common symprecs, "verdicts": {name: {symprec: (group,
     symbol)}}, "breakpoints": {name: [(low, high), ...]}}``.
     """
-    spectra = [(name, final_spectrum(r)) for name, r in records]
+    relaxations = [(name, r) for name, r in records if not is_not_relaxation(r)]
+    spectra = [(name, final_spectrum(r)) for name, r in relaxations]
     spectra = [(n, s) for n, s in spectra if s and s.get("symprec")]
     common = sorted(float(c) for c in common)
     out = {"n_runs": len(records), "n_with_spectrum": len(spectra), "common": common,
+           "left_out": len(records) - len(relaxations),
            "stable_ranges": [], "changes": [], "verdicts": {}, "breakpoints": {}}
     if not spectra:
         return out

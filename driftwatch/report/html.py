@@ -734,7 +734,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
     from ..rules import FLAGS
     levels = {code: FLAGS.get(code, "") for code in counts}
     n_flagged = sum(1 for _, r in recs if r.get("flags"))
-    n_moving = sum(1 for _, r in recs if (r.get("run") or {}).get("not_relaxation"))
+    n_moving = sum(1 for _, r in recs if _camp.is_not_relaxation(r))
     verdicts = {}
     for _, r in recs:
         v = r["summary"]["verdict"]["direction"]
@@ -759,7 +759,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
     pts = charts.scatter_points((label, f"runs/{quote(name)}.html", r) for name, label, r, _ in runs)
     gb, lb = [], []
     for _, r in recs:
-        spec = _camp.final_spectrum(r)
+        spec = None if _camp.is_not_relaxation(r) else _camp.final_spectrum(r)
         if spec:
             gb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "group")]
             lb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "lattice")]
@@ -779,7 +779,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
     parts.append(_figure(draw(charts.breakpoint_histogram(gb, lb, common,
                                                           _span(recs[0][1] if recs else {}))),
                          "Where spglib's verdict on each run's final structure changes, pooled over "
-                         "runs (log symprec, Å). Dotted lines: common choices. A common choice sitting "
+                         "the relaxations (log symprec, Å). Dotted lines: common choices. A common choice sitting "
                          "in a crowd of breakpoints gives verdicts that flip with small changes."))
     if counts:
         parts.append(_figure(draw(charts.flag_bars(counts, levels)), "Runs carrying each flag."))
@@ -802,7 +802,9 @@ def _campaign_tolerance(tol, adv, labels=None):
     out = ["<h2>Tolerance advice for the campaign</h2>"]
     rec = _fnum(adv.get("recommended_symprec"))
     out.append(f'<p><span class="big">symprec ≈ {_q(rec)}</span> for this campaign'
-               f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum)."
+               f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum"
+               + (f"; {tol['left_out']} not relaxations left out" if tol.get("left_out") else "")
+               + ")."
                f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}.</span></p>")
     if tol["stable_ranges"]:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
