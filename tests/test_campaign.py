@@ -316,13 +316,13 @@ def test_records_of_removed_runs_move_to_stale(tmp_path):
     assert user_file.read_text() == "{}"          # never touched: driftwatch did not write it
 
 
-def test_interrupted_audit_rerun_gives_identical_records(tmp_path):
+def test_interrupted_audit_rerun_gives_identical_records(tmp_path, killable_env):
     camp = make_campaign(tmp_path, qe=True, n_extra=6)
     ref, out = tmp_path / "ref", tmp_path / "out"
     total = 12                        # runs, of which 2 fail (no record)
     code = (f"from driftwatch.campaign import audit\n"
             f"audit([{str(camp)!r}], {str(out)!r}, workers=1, report=False, progress='off')\n")
-    proc = subprocess.Popen([sys.executable, "-c", code], cwd=REPO)
+    proc = subprocess.Popen([sys.executable, "-c", code], cwd=REPO, env=killable_env)
     n = 0
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline and proc.poll() is None:

@@ -356,13 +356,13 @@ _CLI = ("import sys, threading, time\n"
 
 @pytest.mark.parametrize("start", ["fork", "forkserver"])
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL], ids=["SIGTERM", "SIGKILL"])
-def test_workers_end_with_their_parent(sig, start, tmp_path):
+def test_workers_end_with_their_parent(sig, start, tmp_path, killable_env):
     camp = tmp_path / "camp"
     shutil.copytree(RUNS, camp, ignore=shutil.ignore_patterns("pseudo", "README.md"))
     out = tmp_path / "out"
     proc = subprocess.Popen([sys.executable, "-c", _CLI, start, "audit", str(camp), "-o", str(out),
                              "-j", "2", "--no-report", "--progress", "off", "-c",
-                             str(_slow_config(tmp_path))], cwd=REPO,
+                             str(_slow_config(tmp_path))], cwd=REPO, env=killable_env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     workers = []
     try:
@@ -487,13 +487,13 @@ def _lock_holder(out: Path, wait: bool = True):
     return subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
 
 
-def test_one_audit_per_output_folder_at_a_time(tmp_path):
+def test_one_audit_per_output_folder_at_a_time(tmp_path, killable_env):
     camp = _camp(tmp_path, 2)
     out = tmp_path / "out"
     # a real audit running (slow config) while a second one starts into the same folder
     slow = subprocess.Popen([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o", str(out),
                              "-j", "1", "--no-report", "--progress", "off", "-c",
-                             str(_slow_config(tmp_path))], cwd=REPO,
+                             str(_slow_config(tmp_path))], cwd=REPO, env=killable_env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     try:
         deadline = time.monotonic() + 60
