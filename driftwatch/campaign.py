@@ -166,6 +166,8 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             continue
         if kind == "band":        # no run itself, its images are; its end points hold inputs
             ends = set(got[1])
+        elif kind == "inputs-of":  # inputs/ beside the job's outputs/: that run's, no run
+            pass
         elif kind == "inputs":    # failed unless a run lies below it (discover decides)
             yield {"run": rid, "source": str(folder), "inputs_only": True,
                    "error": f"{folder}: {inputs_only_problem(*got, folder)}"}
@@ -346,33 +348,13 @@ def _split_volatile(rec: dict) -> dict:
     return dict(rec.pop("timing", None) or {})
 
 
-def _skip_reason(exc, run, cfg) -> dict | None:
+def _skip_reason(exc) -> dict | None:
     """A run driftwatch cannot analyse by its nature (a molecule, cluster or wire: not a layer and
     not bulk): the reason and the setting that would include it, or None for a real failure."""
-    from . import geometry
-    from .errors import GeometryError
-    if not isinstance(exc, GeometryError) or run is None or "not a layer" not in str(exc):
+    from .errors import NotPeriodicError
+    if not isinstance(exc, NotPeriodicError):
         return None
-    pbc = [bool(x) for x in run.pbc]
-    if sum(pbc) <= 1:
-        kind = "a molecule or cluster" if not any(pbc) else "a wire or chain"
-        if not run.cells[0].any():      # plain XYZ, or a reader that found no lattice
-            return {"reason": f"{kind} as read: the file gives no cell (pbc = {pbc}); driftwatch "
-                              f"analyses layers and bulk crystals",
-                    "include": "a file with the cell and pbc (e.g. extended XYZ with Lattice= "
-                               "and pbc=)"}
-        return {"reason": f"{kind}: periodic along {sum(pbc)} axes (pbc = {pbc}); driftwatch "
-                          f"analyses layers and bulk crystals",
-                "include": "write the file with pbc True along the periodic axes (driftwatch "
-                           "takes pbc from the file)"}
-    gaps = geometry.vacuum_gaps(run.cells[:1], run.positions[:1])[0]
-    gap = cfg["geometry"]["vacuum_gap"]
-    return {"reason": f"vacuum on more than one axis (empty gaps "
-                      f"{', '.join(f'{g:.1f}' for g in gaps)} Å; > geometry.vacuum_gap {gap:g} Å "
-                      f"along axes {[k for k in range(3) if gaps[k] > gap]}): a molecule, cluster "
-                      f"or wire in a box",
-            "include": f"geometry.vacuum_gap: {geometry.bulk_gap(gaps):.1f} (Å) analyses its cell "
-                       f"as bulk"}
+    return {"reason": exc.reason, "include": exc.include}
 
 
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
@@ -406,10 +388,7 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
         transient = isinstance(exc, (MemoryError, OSError)) and not isinstance(exc, DriftwatchError)
         out = {"run": run_id, "source": path, "ok": False, "error": _one_line(exc, path),
                "cacheable": not transient, "inputs": [list(x) for x in ctx.inputs()]}
-        try:
-            skipped = _skip_reason(exc, run, cfg)
-        except Exception:  # noqa: BLE001 - the hint is a courtesy
-            skipped = None
+        skipped = _skip_reason(exc)
         if skipped:
             out["skipped"] = skipped
         return out
@@ -925,9 +904,12 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
     skipped = f", {len(summary['skipped'])} skipped" if summary.get("skipped") else ""
-    print(f"\n{summary['runs']} runs ({summary['analysed']} analysed, {summary['cached']} from "
-          f"cache, {len(summary['failed'])} failed{skipped}) in {summary['elapsed_s']:.1f} s",
-          file=stream)
+    n_fail, n_skip = len(summary["failed"]), len(summary.get("skipped") or ())
+    unread = summary["runs"] - summary["analysed"] - summary["cached"]  # failed at discovery
+    print(f"\n{summary['runs']} runs: {summary['runs'] - n_fail - n_skip} with a verdict, "
+          f"{n_fail} failed{skipped} ({summary['analysed']} read now, {summary['cached']} from the "
+          f"cache{f', {unread} failed before reading' if unread else ''}) in "
+          f"{summary['elapsed_s']:.1f} s", file=stream)
     print(f"verdicts: {vc}", file=stream)
     print(f"flags (runs): {fc}", file=stream)
     if summary.get("not_relaxation"):

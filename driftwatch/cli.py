@@ -214,6 +214,8 @@ def _inspect_table(rec: dict) -> str:
                      f"{_fmt(d['initial'])} Å -> {_fmt(d['final'])} Å")
     if s.get("lattice_note"):
         lines.append(f"    note: {s['lattice_note']}")
+    if s.get("supercell"):
+        lines.append(f"    note: {s['supercell']['text']}")
     tol = s["tolerance"]
     lines.append(f" symprec: {tol['reason']}")
     for w in rec["run"]["warnings"]:

@@ -7,7 +7,7 @@ the file and the problem.
 
 __all__ = [
     "DriftwatchError", "LatticeError", "InputError", "UnknownFormatError", "AtomsChangeError",
-    "NotARunError", "GeometryError", "ConfigError", "SymmetryError", "OutputError",
+    "NotARunError", "GeometryError", "NotPeriodicError", "ConfigError", "SymmetryError", "OutputError",
 ]
 
 
@@ -38,12 +38,23 @@ class AtomsChangeError(InputError):
 
 class NotARunError(InputError):
     """The path is no run and will not become one while a job writes (the parent folder of a
-    nudged-elastic-band calculation, a file of many structures read whole): following it stops
-    at once instead of waiting."""
+    nudged-elastic-band calculation, a file of many structures read whole, a job's ``inputs/``
+    beside its ``outputs/``): following it stops at once instead of waiting."""
 
 
 class GeometryError(DriftwatchError, ValueError):
     """The cell is not what the analysis needs (e.g. 1D/0D, or no layer when one is required)."""
+
+
+class NotPeriodicError(GeometryError):
+    """A molecule, cluster or wire (in a box, or by its pbc): neither a layer nor bulk, so not
+    analysed (an audit lists it as skipped: ``reason``, and ``include``, the setting or change
+    that would include it)."""
+
+    def __init__(self, reason: str, include: str, source=None):
+        super().__init__(("" if source is None else f"{source}: ") + f"{reason}: driftwatch "
+                         f"analyses layers and bulk crystals; to include it: {include}")
+        self.reason, self.include = reason, include
 
 
 class ConfigError(DriftwatchError, ValueError):

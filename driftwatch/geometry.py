@@ -3,13 +3,13 @@
 Conventions (binding for the whole project):
 
 * **Vacuum axis.** If ``pbc`` has exactly one False entry, that cell vector is the
-  vacuum axis. Two or three False entries: a 1D/0D system, ``GeometryError``.
+  vacuum axis. Two or three False entries: a 1D/0D system, ``NotPeriodicError``.
   Otherwise (pbc all True, as DFT codes write it) the *empty gap* along each axis
   decides: for cell vector k, project the atoms onto the unit normal of the
   plane of the other two vectors; the largest periodic gap between consecutive
   projected heights, in Å, is the gap of axis k. Exactly one gap above the
   threshold (default 6 Å): a layer with that vacuum axis. None: bulk. Several:
-  ``GeometryError`` naming the axes (a wire or molecule in a box, not a layer).
+  ``NotPeriodicError`` naming the axes (a wire or molecule in a box, not a layer).
   The decision is made on the first frame; later frames are reported in ``reason``
   if they would decide differently.
 * **Viewing side.** A layer is viewed from the side its cell vector along the
@@ -31,7 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import GeometryError
+from .errors import GeometryError, NotPeriodicError
 
 __all__ = ["Geometry", "Layer", "classify", "vacuum_gaps", "plane_normals", "inplane_bases",
            "find_layers", "layers_in_bulk", "position_warnings", "DEFAULT_GAP", "FAR_CELLS",
@@ -144,9 +144,14 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     pbc = _pbc(pbc)
     free = [k for k in range(3) if not pbc[k]]
     if len(free) >= 2:
-        kind = "0D (molecule or cluster)" if len(free) == 3 else "1D (wire or chain)"
-        raise GeometryError(f"not a layer: pbc = {pbc.tolist()} makes the cell {kind}; "
-                            f"driftwatch analyses layers (one non-periodic axis) and bulk")
+        kind = "a molecule or cluster" if len(free) == 3 else "a wire or chain"
+        if not cells[0].any():        # plain XYZ, or a reader that found no lattice
+            raise NotPeriodicError(f"{kind} as read: the file gives no cell (pbc = "
+                                   f"{pbc.tolist()})", "a file with the cell and pbc (e.g. "
+                                                       "extended XYZ with Lattice= and pbc=)")
+        raise NotPeriodicError(f"{kind}: periodic along {3 - len(free)} axes (pbc = "
+                               f"{pbc.tolist()})", "write the file with pbc True along the "
+                                                   "periodic axes (driftwatch takes pbc from it)")
     if len(free) == 1:
         k = free[0]
         n = plane_normals(cells[:1], k)[0]
@@ -159,9 +164,10 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
         f"; later frames have vacuum on axes {sorted(map(list, later - {tuple(big)}))}"
     desc = ", ".join(f"{g:.2f}" for g in gaps[0])
     if len(big) > 1:
-        raise GeometryError(f"not a layer: empty gaps > {gap} Å along axes {big} "
-                            f"(gaps {desc} Å): a 1D/0D system in a box; geometry.vacuum_gap: "
-                            f"{bulk_gap(gaps[0]):.1f} Å (in a config, -c) analyses its cell as bulk")
+        raise NotPeriodicError(f"a molecule, cluster or wire in a box: vacuum on more than one "
+                               f"axis (empty gaps {desc} Å; > geometry.vacuum_gap {gap:g} Å along "
+                               f"axes {big})", f"geometry.vacuum_gap: {bulk_gap(gaps[0]):.1f} (Å, "
+                                              f"in a config, -c) analyses its cell as bulk")
     if not big:
         return Geometry(3, None, None, f"bulk: largest empty gaps {desc} Å, none above "
                                        f"{gap} Å{drift}", gaps[0])

@@ -496,7 +496,11 @@ def _loose(frames, D, r):
 # the code's own symmetry
 # ----------------------------------------------------------------------------------------------
 def _held_by_code(record, frames, sv):
-    """Only where it changes the reading: a kept non-trivial group under the code's symmetry."""
+    """Only where it changes the reading: a kept non-trivial group under the code's symmetry, in
+    a relaxation (a single point, finite differences, MD or a band image is no test of a relaxed
+    structure's symmetry to begin with: its record says what it is)."""
+    if record["run"].get("not_relaxation"):
+        return []
     dim = record["geometry"]["dimension"]
     from .adapters.registry import symmetry_setting   # each code's own rule, in its adapter
     info = symmetry_setting(record["run"].get("code_settings") or {}, dim)
@@ -602,18 +606,48 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
     precision = record["run"].get("position_precision")
     tol = advice(frames[-1].get("symmetry"), min_plateau=cfg["tolerance"]["min_plateau"],
                  precision=precision)
+    final = _state(frames[-1], types, within, dim)
     summary = {
         "verdict": {"direction": direction, "text": _text(direction, lv, sv, frames), "lattice": lv,
                     "structure": sv, "complete": complete},
         "initial": _state(frames[0], types, within, dim),
-        "final": _state(frames[-1], types, within, dim),
+        "final": final,
         "drift": drift,
         "tolerance": tol,
-        "lattice_note": ("fixed cell: the lattice cannot drift; symmetry drift is in the atoms "
-                         "(see the displacement to each group)") if record["run"]["fixed_cell"]
-        else None,
+        "lattice_note": _lattice_note(record["run"]),
+        "supercell": _supercell(frames, final["type"]),
     }
     return flags, summary
+
+
+def _lattice_note(run: dict) -> str | None:
+    """What a cell that is the same in every frame means for the lattice verdict, or None."""
+    if not run.get("fixed_cell"):
+        return None
+    if run.get("n_frames", 2) < 2:
+        return "one frame: nothing to compare it with, no drift can be seen"
+    from .adapters.registry import cell_free          # each code's own rule, in its adapter
+    why = cell_free(run.get("code_settings") or {})
+    atoms = "symmetry drift is in the atoms (see the displacement to each group)"
+    if why:
+        return f"the cell did not move although {why} let it: the lattice did not drift; {atoms}"
+    return f"fixed cell: the lattice cannot drift; {atoms}"
+
+
+def _supercell(frames, cell_type: str) -> dict | None:
+    """When the final structure's translation lattice (cell plus spglib's pure translations) is
+    of another Bravais type than its cell (a conventional or other supercell: eight-atom diamond in
+    its cubic cell, cP against cF), what it is and a sentence saying so; else None."""
+    spec = frames[-1].get("symmetry") or {}
+    prim = spec.get("primitive") or {}
+    t = prim.get("type")
+    if not t or t == cell_type:
+        return None
+    return {"type": t, "cell_type": cell_type, "symprec": prim.get("symprec"),
+            "text": f"the cell is a supercell: with spglib's pure translations (symprec "
+                    f"{_g(prim.get('symprec'))} Å) the structure's lattice is {t} ({NAMES[t]}), the "
+                    f"cell's {cell_type} ({NAMES[cell_type]}); the lattice verdict and columns "
+                    f"describe the cell as given"}
 
 
 def evaluate(record: dict, cfg: dict, *, complete: bool = True) -> list[dict]:

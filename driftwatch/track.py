@@ -25,7 +25,7 @@ import numpy as np
 
 from . import __version__, config as _config, geometry, lattice2d, lattice3d, records, rules, symmetry
 from .adapters import Run, read_run
-from .errors import GeometryError, LatticeError, SymmetryError
+from .errors import GeometryError, LatticeError, NotPeriodicError, SymmetryError
 
 __all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "select_frames",
            "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
@@ -449,4 +449,6 @@ def analyze(path_or_run, config=None, *, format: str | None = None,
     except (GeometryError, LatticeError, SymmetryError) as exc:
         if str(run.source) in str(exc):
             raise
+        if isinstance(exc, NotPeriodicError):
+            raise NotPeriodicError(exc.reason, exc.include, run.source) from exc
         raise type(exc)(f"{run.source}: {exc}") from exc

@@ -438,7 +438,8 @@ def test_progress_and_summary_table(tmp_path, capsys):
     assert lines[0].split()[:2] == ["run", "dim"]
     assert any(ln.startswith("layers/L-hex.traj") and " gained " in ln and "mp -> hp" in ln
                for ln in lines)
-    assert any(ln.startswith("2 runs (0 analysed, 2 from cache, 0 failed)") for ln in lines)
+    assert any(ln.startswith("2 runs: 2 with a verdict, 0 failed (0 read now, 2 from the cache)")
+               for ln in lines)
     run_audit([camp / "layers"], tmp_path / "out", progress="off", quiet=False)
     got = capsys.readouterr()
     assert got.out.startswith("run ") and got.err == ""      # progress off: the table still shown

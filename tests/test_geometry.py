@@ -94,14 +94,14 @@ def test_ase_2d_cell_with_zero_vacuum_vector():
 
 def test_1d_and_0d_cells_are_clear_errors():
     cell, pos = _layer_on_axis(2)
-    with pytest.raises(GeometryError, match="1D"):
+    with pytest.raises(GeometryError, match="a wire or chain: periodic along 1 axes"):
         classify(cell, [True, False, False], pos)
-    with pytest.raises(GeometryError, match="0D"):
+    with pytest.raises(GeometryError, match="a molecule or cluster: periodic along 0 axes"):
         classify(cell, [False] * 3, pos)
     wire = Atoms("C2", positions=[[0, 0, 0], [0, 0, 1.3]], cell=[12, 12, 2.6], pbc=True)
     with pytest.raises(GeometryError, match=r"axes \[0, 1\]"):
         classify(wire.cell.array, wire.pbc, wire.positions)
-    with pytest.raises(GeometryError, match="not a layer"):
+    with pytest.raises(GeometryError, match="a molecule, cluster or wire in a box"):
         classify(np.diag([15.0, 15, 15]), True, [[7, 7, 7], [7, 7, 8.1]])
 
 

@@ -310,16 +310,18 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 25
+    assert summary["failed"] == [] and summary["runs"] == 29
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert "25 runs (25 analysed, 0 from cache, 0 failed, 2 skipped)" in proc.stdout
+    assert ("29 runs: 27 with a verdict, 0 failed, 2 skipped (29 read now, 0 from the cache)"
+            in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
-    assert ("not relaxations: 8 runs (finite differences 1, molecular dynamics 3, "
-            "nudged-elastic-band image 3, single-point calculation 1; column not_relaxation of "
+    assert ("not relaxations: 10 runs (finite differences 1, molecular dynamics 3, "
+            "nudged-elastic-band image 3, single-point calculation 3; column not_relaxation of "
             "campaign.csv)") in proc.stdout
     assert {x["run"] for x in summary["not_relaxation"]} == {
+        "mixed/atomate_si_static/outputs", "mixed/atomate_static_stages/outputs",   # NSW = 0
         "mixed/vasp544_finite_differences", "mixed/vasp541_npt_md", "mixed/vasp544_neb/01",
         "mixed/vasp544_nelm",                     # NSW = -1: one SCF at NELM, a single point
         "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
@@ -327,19 +329,19 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
     # the campaign's tolerance advice is about relaxed structures: those 8 are left out of it
     tol = summary["tolerance"]
-    assert tol["left_out"] == 8 and set(tol["run_ids_left_out"]) == {
+    assert tol["left_out"] == 10 and set(tol["run_ids_left_out"]) == {
         x["run"] for x in summary["not_relaxation"]}
     from driftwatch.rules import advice_item, campaign_advice
     recs = [(p.name, json.loads(p.read_text()))
             for p in (tmp_path / "out" / "records").glob("*.json")]
     alone = campaign_advice([advice_item(n, r) for n, r in recs
                              if not r["run"]["not_relaxation"]], tol["symprecs"])
-    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 8
+    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 10
     assert tol["recommended_symprec"] == alone["recommended_symprec"]
     assert [c["runs"] for c in tol["changes"]] == [c["runs"] for c in alone["changes"]]
-    assert tol["reason"] == alone["reason"] + ". Left out: 8 runs whose steps are no relaxation"
+    assert tol["reason"] == alone["reason"] + ". Left out: 10 runs whose steps are no relaxation"
     assert f"campaign symprec: {tol['recommended_symprec']:.3g} Å (" in proc.stdout
-    assert "Left out: 8 runs whose steps are no relaxation)" in proc.stdout
+    assert "Left out: 10 runs whose steps are no relaxation)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -357,9 +359,12 @@ def test_a_cluster_in_a_box_is_refused_with_the_setting_that_includes_it(tmp_pat
     proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(path)],
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 1 and proc.stderr.count("\n") == 1, proc.stderr
-    said = re.search(r"geometry\.vacuum_gap: ([\d.]+) Å \(in a config, -c\)", proc.stderr)
+    said = re.search(r"geometry\.vacuum_gap: ([\d.]+) \(Å, in a config, -c\)", proc.stderr)
+    assert "a molecule, cluster or wire in a box" in proc.stderr     # the audit's words
     skipped = analyse_run("ni", str(path), config.load())["skipped"]
-    assert skipped["include"].startswith(f"geometry.vacuum_gap: {said.group(1)} (Å)")
+    assert skipped["include"].startswith(f"geometry.vacuum_gap: {said.group(1)} (Å")
+    assert f"{skipped['reason']}: driftwatch analyses layers and bulk crystals; to include it: " \
+           f"{skipped['include']}" in proc.stderr                 # one fact, the same words
     assert "along axes [0, 1, 2]" in skipped["reason"]
     cfg = tmp_path / "wide.yaml"
     cfg.write_text(f"geometry:\n  vacuum_gap: {said.group(1)} Å\n")
@@ -1011,7 +1016,8 @@ def test_a_neb_band_is_read_as_its_images_not_as_relaxations(tmp_path):
     audit([camp], tmp_path / "out", progress="off")                 # the report marks them
     index = (tmp_path / "out" / "report" / "index.html").read_text()
     assert index.count(">not a relaxation</span>") == 3 and "<th>not relaxations</th>" in index
-    assert "(0 of 3 runs have a tolerance spectrum; 3 not relaxations left out)." in index
+    assert ("(0 of 0 relaxations have a tolerance spectrum; 3 runs that are no relaxation are "
+            "left out).") in index
     page = (tmp_path / "out" / "report" / "runs" / "camp_neb_01.html").read_text()
     assert "a nudged-elastic-band image (folder 01 of IMAGES = 3)" in page
 
@@ -1157,3 +1163,127 @@ def test_single_point_calculations_are_no_relaxation_but_a_static_stage_keeps_on
     assert run.not_relaxation is None and not [w for w in run.warnings if "not a relax" in w]
     alone = read_run(job / "vasprun.xml")
     assert alone.not_relaxation.startswith("a single-point calculation (IBRION = -1)")
+
+
+# ---------------------------------------------------------------- atomate's inputs/ outputs/ layout
+ATOMATE = ("atomate_si_static", "atomate_double_relax", "atomate_static_stages",
+           "atomate_conventional_si")
+
+
+def _atomate_campaign(tmp_path) -> Path:
+    camp = tmp_path / "camp"
+    for name in ATOMATE:
+        shutil.copytree(PUB / name, camp / name)
+    return camp
+
+
+def test_inputs_beside_outputs_are_the_runs_inputs_not_runs(tmp_path):
+    """atomate's genuine job folders keep the job's inputs in `inputs/` beside its `outputs/`.
+    Before: every `inputs/` (INCAR, POSCAR, KPOINTS) was a failed run "not run yet" and a POSCAR
+    alone in `inputs/` a one-frame run "kept" that moved the campaign symprec. Now the runs are the
+    four `outputs/`, each with every ionic step pymatgen and ASE read; an `inputs/` beside an
+    `outputs/` that holds no run stays a job not run."""
+    from driftwatch.errors import NotARunError
+    camp = _atomate_campaign(tmp_path)
+    runs, failed = discover([camp])
+    assert failed == [] and sorted(r.id for r in runs) == [f"camp/{n}/outputs" for n in sorted(ATOMATE)]
+    s = audit([camp], tmp_path / "out", workers=1, progress="off")
+    assert s["runs"] == 4 and s["failed"] == [] and s["skipped"] == []
+    pages = tmp_path / "out" / "report" / "runs"
+    page = (pages / "camp_atomate_double_relax_outputs.html").read_text()
+    assert "<b>Cell unchanged</b>: every frame has the same cell. The cell did not move although " \
+           "ISIF = 3 let it" in page and "Lattice (constant in every frame)" in page
+    page = (pages / "camp_atomate_conventional_si_outputs.html").read_text()
+    assert "<b>Supercell</b>: The cell is a supercell" in page
+    static = read_run(camp / "atomate_si_static" / "outputs")
+    _same_frames(static, _vasprun(camp / "atomate_si_static" / "outputs" / "vasprun.xml.gz").structures)
+    double = read_run(camp / "atomate_double_relax" / "outputs")                 # OUTCARs only
+    ase_frames = [a for st in ("relax1", "relax2") for a in ase.io.read(
+        camp / "atomate_double_relax" / "outputs" / f"OUTCAR.{st}.gz", index=":", format="vasp-out")]
+    assert len(double) == len(ase_frames) == 2
+    np.testing.assert_allclose(double.cells, [a.cell.array for a in ase_frames], atol=1e-8)
+    with pytest.raises(NotARunError) as err:
+        read_run(camp / "atomate_si_static" / "inputs")
+    assert "outputs are in outputs/ beside it" in str(err.value)
+    assert str(camp / "atomate_si_static" / "outputs") in str(err.value)
+    with pytest.raises(NotARunError):
+        read_run(camp / "atomate_static_stages" / "inputs")                      # a POSCAR alone
+    with pytest.raises(InputError) as err:                   # the job folder names its run folder
+        read_run(camp / "atomate_si_static")
+    assert "run folders in it: outputs/" in str(err.value)
+    # an outputs/ holding no run: its inputs/ are a job not run yet, as before
+    for f in (camp / "atomate_si_static" / "outputs").iterdir():
+        f.unlink()
+    runs, failed = discover([camp / "atomate_si_static"])
+    assert runs == [] and [f["run"] for f in failed] == ["atomate_si_static/inputs"]
+    assert "a job not run yet" in failed[0]["error"]
+
+
+def test_atomate_runs_read_right_settings_notes_and_flags(tmp_path):
+    """What the genuine atomate runs say, each checked against the files as pymatgen/ASE read them:
+    * the double relaxation (ISIF = 3, IBRION = 2 in its OUTCARs) kept its cell over 1 + 1 steps:
+      the note says the cell did not move although ISIF = 3 let it (was: "the lattice cannot
+      drift"), and its OUTCARs (VASP built with profiling: 33.7 kB after "General timing and
+      accounting", ending "Profiling took ... seconds") are complete, not "incomplete";
+    * the static runs (NSW = 0) are no relaxation, get no held-by-code flag (rerunning a single
+      point with ISYM = 0 tests nothing) and no warning that the INCAR's IBRION = 1 became -1
+      (VASP sets IBRION = -1 when NSW = 0, as the genuine OUTCAR prints);
+    * eight-atom diamond Si in its cubic cell (ISIF = 3): the cell's lattice is cP, spglib's
+      translations make it cF (Fd-3m, International Tables): a supercell note says so."""
+    from driftwatch import analyze
+    from driftwatch.live import _end_marker
+    camp = _atomate_campaign(tmp_path)
+    double = read_run(camp / "atomate_double_relax" / "outputs")
+    head = gzip.open(camp / "atomate_double_relax" / "outputs" / "OUTCAR.relax1.gz", "rt").read()
+    assert "ISIF   =      3" in head and "Profiling took" in head[-200:]
+    assert not [w for w in double.warnings if "incomplete" in w], double.warnings
+    plain = tmp_path / "OUTCAR"                    # a live job's OUTCAR is plain text
+    plain.write_text(head)
+    assert _end_marker(plain, "vasp-out") == "Profiling took ... seconds"
+    rec = analyze(double)
+    assert rec["run"]["fixed_cell"] and rec["run"]["code_settings"]["ISIF"] == 3
+    assert rec["summary"]["lattice_note"].startswith("the cell did not move although ISIF = 3 let it")
+    assert "held-by-code" in {f["code"] for f in rec["flags"]}        # a relaxation under ISYM = 2
+
+    static = read_run(camp / "atomate_si_static" / "outputs")
+    rec = analyze(static)
+    assert rec["run"]["not_relaxation"].startswith("a single-point calculation (NSW = 0")
+    assert rec["summary"]["lattice_note"] == "one frame: nothing to compare it with, no drift can be seen"
+    assert "held-by-code" not in {f["code"] for f in rec["flags"]}
+    stages = read_run(camp / "atomate_static_stages" / "outputs")
+    head = gzip.open(camp / "atomate_static_stages" / "outputs" / "OUTCAR.relax1.gz", "rt").read()
+    assert "IBRION =     -1" in head and "IBRION = 1" in (
+        camp / "atomate_static_stages" / "outputs" / "INCAR.relax1").read_text()
+    assert not [w for w in stages.warnings if "sets IBRION" in w], stages.warnings
+
+    import spglib
+    si8 = read_run(camp / "atomate_conventional_si" / "outputs")
+    cell = (si8.cells[-1], np.linalg.solve(si8.cells[-1].T, si8.positions[-1].T).T, si8.numbers)
+    ds = spglib.get_symmetry_dataset(cell, symprec=1e-3)
+    assert ds.number == 227 and len(si8.numbers) == 8                  # spglib: Fd-3m, 8 atoms
+    rec = analyze(si8)
+    sc = rec["summary"]["supercell"]
+    assert (sc["type"], sc["cell_type"]) == ("cF", "cP") and rec["summary"]["final"]["type"] == "cP"
+    assert "the structure's lattice is cF (face-centred cubic), the cell's cP" in sc["text"]
+    assert analyze(static)["summary"]["supercell"] is None               # the primitive Si2 cell
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
+                           str(camp / "atomate_conventional_si" / "outputs")],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0 and "note: the cell is a supercell" in proc.stdout
+
+
+def test_a_structure_alone_is_no_relaxation_and_left_out_of_the_advice(tmp_path):
+    """A folder with a POSCAR and nothing else (atomate's genuine inputs/POSCAR, moved alone) is read
+    as one structure, marked as such, and left out of the campaign's tolerance advice."""
+    camp = tmp_path / "camp"
+    (camp / "structure").mkdir(parents=True)
+    shutil.copy(PUB / "atomate_static_stages" / "inputs" / "POSCAR", camp / "structure")
+    shutil.copytree(PUB / "atomate_double_relax" / "outputs", camp / "relax")
+    run = read_run(camp / "structure")
+    assert len(run) == 1 and run.not_relaxation == ("a single structure (POSCAR): an input or a "
+                                                    "result, no ionic steps")
+    assert [w.split(": ", 1)[1] for w in run.warnings if "not a relaxation" in w] == [
+        f"not a relaxation: {run.not_relaxation}; one frame: no drift can be measured from it alone"]
+    s = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert [x["run"] for x in s["not_relaxation"]] == ["camp/structure"]
+    assert s["tolerance"]["left_out"] == 1 and s["tolerance"]["runs_considered"] == 1

@@ -789,6 +789,12 @@ def run_kind(code_settings: dict) -> str | None:
     return f"molecular dynamics (calculation = '{calc}')" if calc in ("md", "vc-md") else None
 
 
+def cell_free(code_settings: dict) -> str | None:
+    """``"calculation = 'vc-relax'"`` (or 'vc-md') when pw.x let the cell change, else None."""
+    calc = (code_settings or {}).get("calculation")
+    return f"calculation = '{calc}'" if calc in ("vc-relax", "vc-md") else None
+
+
 # ---------------------------------------------------------------- registration
 def register_all(register, register_code) -> None:
     """The pw.x row of the format table and the pw.x entry of the code table."""
@@ -803,5 +809,6 @@ def register_all(register, register_code) -> None:
         settings_files=("*.in", "*.pwi", "*.inp"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
         symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind",
+        cell_free=__name__ + ":cell_free",
         inputs_only=__name__ + ":inputs_only"),
         replace=True)

@@ -107,6 +107,8 @@ class Code:
       handling when it was on (``{"operations", "how", "undo"}``), None when off or unknown.
     * ``run_kind(code_settings) -> str | None``: what the run's ionic steps are when they are no
       relaxation (molecular dynamics, finite differences, ...), None for a relaxation or unknown.
+    * ``cell_free(code_settings) -> str | None``: the setting that let the cell change, in words
+      (``"ISIF = 3"``), None when the cell was held or nothing is known.
     * ``inputs_only(folder, names, ctx) -> (str, [names]) | None``: for a folder ``folder`` did not
       claim, whether it holds the code's job inputs and no output (a job not run yet, or stopped
       before writing): what it holds, in words, and those files.
@@ -126,6 +128,7 @@ class Code:
     soft_stop: Callable | str | None = None
     symmetry_setting: Callable | str | None = None
     run_kind: Callable | str | None = None
+    cell_free: Callable | str | None = None
     inputs_only: Callable | str | None = None
     band: Callable | str | None = None
     aliases: tuple = ()
@@ -196,6 +199,13 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
     code = _code_named((code_settings or {}).get("code"))
     fn = code.function("symmetry_setting") if code is not None else None
     return fn(code_settings, dimension) if fn is not None else None
+
+
+def cell_free(code_settings: dict) -> str | None:
+    """The code's setting that let the run's cell change, in words (see :class:`Code`), or None."""
+    code = _code_named((code_settings or {}).get("code"))
+    fn = code.function("cell_free") if code is not None else None
+    return fn(code_settings) if fn is not None else None
 
 
 def formats() -> dict[str, str]:
@@ -405,6 +415,8 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     ``("band", (why, [end-point subfolders]))`` when it is the parent of a nudged-elastic-band
     calculation (its images are runs, it is none), ``("inputs", (what, [files a format reads]))``
     when it holds a code's job inputs and no output nor other readable file (a job not run yet),
+    ``("inputs-of", why)`` when those inputs (or a structure alone) sit in ``inputs/`` beside the
+    job's ``outputs/`` (:func:`outputs_beside`: they are that run's inputs, no run of their own),
     else ``("files", [file names a format recognises])``.
 
     ``names``: the folder's non-hidden regular file names (listed here when None).
@@ -424,6 +436,8 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
         return "ambiguous", [st[1].name for c in claims for st in c.stages]
     if claims:
+        if all(fmt == "vasp-poscar" for *_, fmt in claims[0].stages) and outputs_beside(folder):
+            return "inputs-of", _inputs_of_why(folder)        # a structure alone beside outputs/
         return "run", claims[0]
     for code in _codes.values() if format is None else ():
         fn = code.function("band")
@@ -446,8 +460,41 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         fn = code.function("inputs_only")
         got = fn(folder, list(names), ctx) if fn is not None else None
         if got is not None and set(files) <= set(got[1]):
+            if outputs_beside(folder):
+                return "inputs-of", _inputs_of_why(folder)
             return "inputs", (got[0], [n for n in files if file_size(folder / n)])
     return "files", files
+
+
+_INPUT_FOLDERS = ("input", "inputs")
+
+
+def outputs_beside(folder) -> str | None:
+    """The name of the folder beside ``folder`` that holds the run whose inputs ``folder`` keeps,
+    or None: ``folder`` is named ``inputs`` (or ``input``) and a sibling whose name starts with
+    ``output`` (``outputs``, ``outputs_bk``, ...) is a run folder (the layout of workflow test
+    data and of archives that keep a job's inputs apart, e.g. atomate's)."""
+    folder = Path(folder)
+    if folder.name.lower() not in _INPUT_FOLDERS:
+        return None
+    try:
+        with os.scandir(folder.parent) as it:
+            beside = sorted(e.name for e in it if e.name.lower().startswith("output") and e.is_dir())
+    except OSError:
+        return None
+    for name in beside:
+        try:
+            if scan_folder(folder.parent / name)[0] == "run":
+                return name
+        except OSError:
+            continue
+    return None
+
+
+def _inputs_of_why(folder: Path) -> str:
+    out = folder.parent / outputs_beside(folder)
+    return (f"the inputs of the job whose outputs are in {out.name}/ beside it, not a run of their "
+            f"own (pass {out})")
 
 
 def structures(path, structure_keys=None) -> list[str]:
@@ -500,10 +547,15 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
         raise InputError(path, inputs_only_problem(*got, path))
     if kind == "band":
         raise NotARunError(path, got[0])
+    if kind == "inputs-of":
+        raise NotARunError(path, got)
     if not got:
         hint = f" readable as {format!r}" if format else ""
+        below = _runs_in_subfolders(path)
         raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "
-                               f"CONTCAR/POSCAR), pw.x output or other trajectory{hint} found")
+                               f"CONTCAR/POSCAR), pw.x output or other trajectory{hint} found"
+                         + (f"; run folders in it: {', '.join(below)} (pass one; `driftwatch "
+                            f"audit {path}` reads them all)" if below else ""))
     if len(got) > 1:
         shown = ", ".join(got[:8]) + (f", ... ({len(got)} in all)" if len(got) > 8 else "")
         raise InputError(path, f"ambiguous run folder: it holds {len(got)} runs ({shown}); "
@@ -512,6 +564,26 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
     if ctx is not None:
         ctx.uses(source)
     return _Pick([("", source, format or detect(source))], path)
+
+
+def _runs_in_subfolders(path: Path, limit: int = 8) -> list[str]:
+    """Names (``name/``) of the subfolders of ``path`` that are run folders, the first ``limit``."""
+    try:
+        with os.scandir(path) as it:
+            subs = sorted(e.name for e in it if not e.name.startswith(".") and e.is_dir())
+    except OSError:
+        return []
+    out = []
+    for name in subs:
+        try:
+            if scan_folder(path / name)[0] == "run":
+                out.append(f"{name}/")
+        except OSError:
+            continue
+        if len(out) == limit:
+            out.append("...")
+            break
+    return out
 
 
 def detect(path) -> str:
@@ -599,8 +671,10 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
     # no relaxation when no stage is one (relaxations ending in a static stage are relaxations)
     what = ctx.not_relaxation = kinds[-1] if kinds and all(kinds) else None
     if what:
-        ctx.warn(f"not a relaxation: {what}; its verdict compares the first and last frames (how "
-                 f"the structure moved), not where a relaxation ended")
+        ctx.warn(f"not a relaxation: {what}; " + (
+            "one frame: no drift can be measured from it alone" if index == 1 else
+            "its verdict compares the first and last frames (how the structure moved), not where "
+            "a relaxation ended"))
 
 
 def _same_atoms(a, b) -> bool:
@@ -664,8 +738,11 @@ def run_kind(code_settings: dict) -> str | None:
     """What a run's ionic steps are when they are no relaxation (see :class:`Code`), else None.
     Any code: ``neb_image`` in the settings (which image of which band, in words) names an image
     of a nudged-elastic-band calculation (VASP's IMAGES folders, ASE's NEB trajectory); an ASE
-    trajectory whose description names a molecular-dynamics class (``dynamics``) is MD."""
+    trajectory whose description names a molecular-dynamics class (``dynamics``) is MD; a
+    structure file read alone (``single_structure``: its name, e.g. POSCAR) has no steps."""
     s = code_settings or {}
+    if s.get("single_structure"):
+        return f"a single structure ({s['single_structure']}): an input or a result, no ionic steps"
     if s.get("neb_image"):
         return (f"a nudged-elastic-band image ({s['neb_image']}): it moves along a path between "
                 f"two end points")

@@ -127,7 +127,7 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
             if k not in settings:
                 settings[k] = v
                 filled = True
-            elif not np.isclose(settings[k], v):
+            elif not np.isclose(settings[k], v) and not _still_ibrion(k, settings, given):
                 ctx.warn(f"{incar.name} sets {k} = {v} but the output reports {k} = {settings[k]} "
                          f"(the output's value is kept)")
         if filled:
@@ -145,6 +145,14 @@ def _merge_incar(path, ctx: ReadContext, reported: dict) -> None:
     settings.setdefault("settings_from", p.name)
     if len(settings) > 2:
         ctx.settings.update(settings)
+
+
+def _still_ibrion(key: str, reported: dict, given: dict) -> bool:
+    """True for an INCAR's IBRION that VASP replaced by -1 because NSW <= 0 (no ionic steps): not
+    a disagreement worth a warning (the genuine atomate OUTCAR.relax1 of tests/data/public/
+    atomate_static_stages prints IBRION = -1 under an INCAR with IBRION = 1, NSW = 0)."""
+    nsw = reported.get("NSW", given.get("NSW"))
+    return key == "IBRION" and reported[key] == -1 and nsw is not None and int(nsw) <= 0
 
 
 # ---------------------------------------------------------------- vasprun.xml
@@ -744,9 +752,8 @@ def read_poscar(path, ctx: ReadContext):
             break
     atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
     ctx.title = text.splitlines()[0].strip() or None
-    if ctx.kind != "end-points":              # else one of a run's two end points
-        ctx.warn("a single structure (POSCAR/CONTCAR), not a trajectory: "
-                 "no drift can be measured from it alone")
+    if ctx.kind != "end-points":      # one structure alone (else one of a run's two end points):
+        ctx.settings["single_structure"] = strip_compression(Path(path).name)  # warned as such
     yield frame_from_atoms(atoms, 0)
 
 
@@ -872,14 +879,19 @@ _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
-_MARKER = {"vasp-xml": b"</modeling>", "vasp-out": _OUTCAR_END.encode()}
+# What a finished output ends with. VASP built with profiling prints a timing table of some
+# 30 kB after "General timing and accounting", closed by "Profiling took N seconds" (the genuine
+# atomate OUTCAR.relax1 of tests/data/public/atomate_double_relax: 33.7 kB after the first).
+_PROFILED_END = b"Profiling took"
+_MARKER = {"vasp-xml": (b"</modeling>",), "vasp-out": (_OUTCAR_END.encode(), _PROFILED_END)}
 
 
-def _complete(path: Path, marker: bytes) -> bool:
+def _complete(path: Path, markers: tuple) -> bool:
     try:
-        return marker in tail_bytes(path, 16384)
+        tail = tail_bytes(path, 16384)
     except (OSError, *STREAM_ERRORS):
         return False
+    return any(m in tail for m in markers)
 
 
 def _stage_order(stage: str):
@@ -1181,7 +1193,8 @@ def _first_numbers(path, fmt):
 
 # ---------------------------------------------------------------- live: end, soft stop
 END_MARKERS = {
-    "vasp-out": ((re.compile(rb"General timing and accounting"), "General timing and accounting"),),
+    "vasp-out": ((re.compile(rb"General timing and accounting"), "General timing and accounting"),
+                 (re.compile(_PROFILED_END + rb" +[\d.]+ +seconds"), "Profiling took ... seconds")),
     "vasp-xml": ((re.compile(rb"</modeling>"), "</modeling>"),),
 }
 
@@ -1251,6 +1264,13 @@ def run_kind(code_settings: dict) -> str | None:
     return None if s.get("IBRION") is None else _NOT_RELAXING.get(int(s["IBRION"]))
 
 
+def cell_free(code_settings: dict) -> str | None:
+    """``"ISIF = n"`` when ISIF >= 3 let the cell change (shape, volume or both; VASP's
+    documentation of ISIF: common practice), else None."""
+    isif = (code_settings or {}).get("ISIF")
+    return f"ISIF = {int(isif)}" if isif is not None and int(isif) >= 3 else None
+
+
 # ---------------------------------------------------------------- registration
 _CODE_FORMATS = ("vasp-xml", "vasp-out", "vasp-xdatcar", "vasp-poscar")
 
@@ -1274,5 +1294,6 @@ def register_all(register, register_code) -> None:
         settings_files=("INCAR", "INCAR.*"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
         symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind",
+        cell_free=__name__ + ":cell_free",
         inputs_only=__name__ + ":inputs_only", band=__name__ + ":band"),
         replace=True)

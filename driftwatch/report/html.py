@@ -496,6 +496,9 @@ def _summary_section(rec):
     rows.append(("source", f"<span class=\"mono\">{e(run.get('source'))}</span> "
                            f"(format {e(run.get('format'))})"))
     body = _kv(rows)
+    if s.get("supercell"):
+        text = s["supercell"]["text"]
+        body += f'<p class="fact"><b>Supercell</b>: {e(text[:1].upper() + text[1:])}.</p>'
     if rec.get("upgraded_from"):
         body += (f'<p class="fact"><b>Older record</b>: written as {e(rec["upgraded_from"])} and '
                  "judged again here from its own frames with this version's rules (its frames carry "
@@ -506,13 +509,15 @@ def _summary_section(rec):
                  "drift; the verdict compares the structure with itself and the plots show that one "
                  "step.</p>")
     elif run.get("fixed_cell"):
+        free = _cell_free(run)
         note = s.get("lattice_note") or ("the lattice cannot drift; symmetry drift is in the atoms "
                                          "(see the displacement to each group)")
         note = note[len("fixed cell:"):].strip() if note.lower().startswith("fixed cell:") else note
         note = note[:1].upper() + note[1:]
-        body += (f'<p class="fact"><b>Fixed cell</b>: every frame has the same cell. {e(note)}. The '
-                 "lattice plots are flat by construction; the tolerance spectrum and the displacement "
-                 "plot (shown first below) carry the drift.</p>")
+        body += (f'<p class="fact"><b>{"Cell unchanged" if free else "Fixed cell"}</b>: every frame '
+                 f"has the same cell. {e(note)}. The lattice plots are flat "
+                 f"{'(the cell did not move)' if free else 'by construction'}; the tolerance spectrum "
+                 "and the displacement plot (shown first below) carry the drift.</p>")
     return "<h2>Summary</h2>" + body
 
 
@@ -679,12 +684,18 @@ def _plots_section(rec):
                  "plot.</p>"]
     steps = [fig("energy") or "<p>The file holds no energies or forces.</p>"]
     if rec["run"].get("fixed_cell") and len(frames) > 1:
+        flat = "in every frame" if _cell_free(rec["run"]) else "by construction"
         parts = (["<h3>Atoms (where a fixed-cell run drifts)</h3>"] + atoms + steps
-                 + ["<h3>Lattice (constant by construction)</h3>"] + lattice)
+                 + [f"<h3>Lattice (constant {flat})</h3>"] + lattice)
     else:
         parts = (["<h3>Lattice</h3>"] + lattice + ["<h3>Energy and forces</h3>"] + steps
                  + ["<h3>Atoms and spglib</h3>"] + atoms)
     return "<h2>Plots</h2>" + "".join(parts)
+
+
+def _cell_free(run: dict) -> str | None:
+    from ..adapters.registry import cell_free
+    return cell_free(run.get("code_settings") or {})
 
 
 def _provenance_section(rec):
@@ -802,10 +813,11 @@ def _campaign_tolerance(tol, adv, labels=None):
     out = ["<h2>Tolerance advice for the campaign</h2>"]
     rec = _fnum(adv.get("recommended_symprec"))
     out.append(f'<p><span class="big">symprec ≈ {_q(rec)}</span> for this campaign'
-               f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum"
-               + (f"; {tol['left_out']} not relaxations left out" if tol.get("left_out") else "")
-               + ")."
-               f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}.</span></p>")
+               + (f" ({tol['n_with_spectrum']} of {tol['n_runs'] - tol['left_out']} relaxations have "
+                  f"a tolerance spectrum; {tol['left_out']} runs that are no relaxation are left out)."
+                  if tol.get("left_out") else
+                  f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum).")
+               + f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}.</span></p>")
     if tol["stable_ranges"]:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
                        for a, b in [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5])
