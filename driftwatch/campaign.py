@@ -856,7 +856,22 @@ def _slim(text: str, run_id: str, rec: dict | None = None) -> dict:
                       for f in rec["flags"]],
             "grid": [min(grid), max(grid)] if grid else None,
             "verdict": records.verdict_fields(rec),
-            "csv": records.csv_row(rec, run_id), "kv": records.db_key_values(rec, run_id)}
+            "csv": records.csv_row(rec, run_id), "kv": records.db_key_values(rec, run_id),
+            "steps": [[f["step"], f.get("energy"), f.get("fmax")] for f in rec["frames"]],
+            "settings": {k: v for k, v in rec["run"]["code_settings"].items()
+                         if k != "settings_from"}}
+
+
+def _copies(ok: list[dict]) -> list[list[str]]:
+    """Groups of runs that read the same frames (a run folder copied, e.g. ``outputs_bk/``): the
+    same steps, energies and largest forces, the same code settings, and the same final structure
+    bit for bit (a static run after a converged relaxation differs in its settings)."""
+    groups: dict = {}
+    for r in ok:
+        key = json.dumps([r["view"]["steps"], r["view"]["settings"], r["structure"]],
+                         sort_keys=True, default=str)
+        groups.setdefault(key, []).append(r["run"])
+    return sorted(sorted(g) for g in groups.values() if len(g) > 1)
 
 
 _TABLE_HEAD = ["run", "dim", "verdict", "lattice", "drift/Å (deformation)", "group", "flags"]
@@ -912,6 +927,12 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
           f"{summary['elapsed_s']:.1f} s", file=stream)
     print(f"verdicts: {vc}", file=stream)
     print(f"flags (runs): {fc}", file=stream)
+    if summary.get("copies"):
+        groups = summary["copies"]
+        print(f"copies: {len(groups)} group{'s' if len(groups) > 1 else ''} of runs that read the "
+              f"same frames ({'; '.join(' = '.join(g) for g in groups[:5])}"
+              f"{'; ...' if len(groups) > 5 else ''}): each is counted above once per copy",
+              file=stream)
     if summary.get("not_relaxation"):
         what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
                        for x in summary["not_relaxation"])
@@ -1161,6 +1182,7 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
         "cached": res.cached,
         "failed": sorted(failed, key=lambda f: f["run"]),
         "skipped": sorted(skipped, key=lambda f: f["run"]),
+        "copies": _copies(ok),
         "not_relaxation": [{"run": r["run"], "what": r["view"]["csv"]["not_relaxation"]}
                            for r in sorted(ok, key=lambda r: r["run"])
                            if r["view"]["csv"]["not_relaxation"]],

@@ -1287,3 +1287,24 @@ def test_a_structure_alone_is_no_relaxation_and_left_out_of_the_advice(tmp_path)
     s = _quiet_audit([camp], tmp_path / "out", workers=1)
     assert [x["run"] for x in s["not_relaxation"]] == ["camp/structure"]
     assert s["tolerance"]["left_out"] == 1 and s["tolerance"]["runs_considered"] == 1
+
+
+def test_copies_of_a_run_folder_are_named(tmp_path):
+    """A run folder copied beside itself (a backup, as atomate's test data keeps `outputs_bk/`) is
+    read twice; the audit names the copies (same steps, energies, forces, settings and final
+    structure), also from the cache, and a different run is none of them."""
+    camp = tmp_path / "camp"
+    shutil.copytree(DOUBLE, camp / "run")
+    shutil.copytree(DOUBLE, camp / "run_bk")
+    shutil.copytree(PUB / "atomate_double_relax" / "outputs", camp / "other")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out")], capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["copies"] == [["camp/run", "camp/run_bk"]]
+    assert ("copies: 1 group of runs that read the same frames (camp/run = camp/run_bk): each is "
+            "counted above once per copy") in proc.stdout
+    index = (tmp_path / "out" / "report" / "index.html").read_text()
+    assert "copies (runs that read the same frames)" in index and "camp/run = camp/run_bk" in index
+    again = _quiet_audit([camp], tmp_path / "out", workers=1)
+    assert again["cached"] == 3 and again["copies"] == summary["copies"]

@@ -763,6 +763,11 @@ def _index_page(runs, bad, failed, campaign) -> str:
     ] + ([("not relaxations", f"{n_moving} <span class=\"muted\">(molecular dynamics, band "
                                "images, ...: their verdicts compare how the structure moved "
                                "from the first frame to the last)</span>")] if n_moving else [])
+      + ([("copies (runs that read the same frames)",
+           "<br>".join(e(" = ".join(g)) for g in campaign["copies"][:10])
+           + (" …" if len(campaign["copies"]) > 10 else "")
+           + '<br><span class="muted">each copy counts as a run of its own above</span>')]
+         if isinstance(campaign, dict) and campaign.get("copies") else [])
       + ([("audit summary", e(", ".join(f"{k.replace('_', ' ')} {campaign[k]}" for k in
                                          ("runs", "analysed", "cached") if k in campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])))
