@@ -436,8 +436,10 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
         return "ambiguous", [st[1].name for c in claims for st in c.stages]
     if claims:
-        if all(fmt == "vasp-poscar" for *_, fmt in claims[0].stages) and outputs_beside(folder):
-            return "inputs-of", _inputs_of_why(folder)        # a structure alone beside outputs/
+        beside = all(fmt == "vasp-poscar" for *_, fmt in claims[0].stages) and \
+            outputs_beside(folder)
+        if beside:                                      # a structure alone beside outputs/
+            return "inputs-of", _inputs_of_why(folder, beside)
         return "run", claims[0]
     for code in _codes.values() if format is None else ():
         fn = code.function("band")
@@ -460,8 +462,9 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         fn = code.function("inputs_only")
         got = fn(folder, list(names), ctx) if fn is not None else None
         if got is not None and set(files) <= set(got[1]):
-            if outputs_beside(folder):
-                return "inputs-of", _inputs_of_why(folder)
+            beside = outputs_beside(folder)
+            if beside:
+                return "inputs-of", _inputs_of_why(folder, beside)
             return "inputs", (got[0], [n for n in files if file_size(folder / n)])
     return "files", files
 
@@ -491,8 +494,8 @@ def outputs_beside(folder) -> str | None:
     return None
 
 
-def _inputs_of_why(folder: Path) -> str:
-    out = folder.parent / outputs_beside(folder)
+def _inputs_of_why(folder: Path, beside: str) -> str:
+    out = folder.parent / beside
     return (f"the inputs of the job whose outputs are in {out.name}/ beside it, not a run of their "
             f"own (pass {out})")
 
