@@ -640,14 +640,14 @@ def _supercell(frames, cell_type: str) -> dict | None:
     its cubic cell, cP against cF), what it is and a sentence saying so; else None."""
     spec = frames[-1].get("symmetry") or {}
     prim = spec.get("primitive") or {}
-    t = prim.get("type")
-    if not t or t == cell_type:
+    t, n = prim.get("type"), prim.get("multiplicity") or 1
+    if not t or t == cell_type or n < 2:     # no pure translation: the cell is primitive
         return None
-    return {"type": t, "cell_type": cell_type, "symprec": prim.get("symprec"),
-            "text": f"the cell is a supercell: with spglib's pure translations (symprec "
-                    f"{_g(prim.get('symprec'))} Å) the structure's lattice is {t} ({NAMES[t]}), the "
-                    f"cell's {cell_type} ({NAMES[cell_type]}); the lattice verdict and columns "
-                    f"describe the cell as given"}
+    return {"type": t, "cell_type": cell_type, "symprec": prim.get("symprec"), "multiplicity": n,
+            "text": f"the cell is a supercell of {n} primitive cells: with spglib's pure "
+                    f"translations (symprec {_g(prim.get('symprec'))} Å) the structure's lattice "
+                    f"is {t} ({NAMES[t]}), the cell's {cell_type} ({NAMES[cell_type]}); the "
+                    f"lattice verdict and columns describe the cell as given"}
 
 
 def evaluate(record: dict, cfg: dict, *, complete: bool = True) -> list[dict]:

@@ -192,7 +192,9 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
 
 def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
     """Bravais type of the structure's translation lattice at ``rules.atoms_break_lattice.symprec``
-    (the cell's lattice plus spglib's pure translations), for the atoms-break-lattice rule."""
+    (the cell's lattice plus spglib's pure translations), for the atoms-break-lattice rule, and
+    ``multiplicity``: how many primitive cells of that lattice the cell holds (1: no pure
+    translation)."""
     r = cfg["rules"]["atoms_break_lattice"]
     try:
         prim = symmetry.primitive_lattice(run.cells[i], run.positions[i], run.numbers, r["symprec"],
@@ -210,7 +212,9 @@ def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
     dfm = {t: float(dfm[t]) for t in types}
     held = [t for t in types if dfm[t] <= r["within"]]
     t = max(held, key=lambda x: (rules.ORDER[x], -dfm[x])) if held else low
-    return {"symprec": r["symprec"], "type": t, "deformation": dfm.get(t, 0.0)}
+    cells = abs(np.linalg.det(run.cells[i])) / abs(np.linalg.det(prim))   # primitive cells in it
+    return {"symprec": r["symprec"], "type": t, "deformation": dfm.get(t, 0.0),
+            "multiplicity": int(round(cells))}
 
 
 def _versions() -> dict:

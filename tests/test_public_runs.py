@@ -1264,8 +1264,22 @@ def test_atomate_runs_read_right_settings_notes_and_flags(tmp_path):
     rec = analyze(si8)
     sc = rec["summary"]["supercell"]
     assert (sc["type"], sc["cell_type"]) == ("cF", "cP") and rec["summary"]["final"]["type"] == "cP"
+    assert sc["multiplicity"] == 4 == len(si8.numbers) // len(           # spglib's primitive cell
+        spglib.find_primitive(cell, symprec=1e-3)[2])
     assert "the structure's lattice is cF (face-centred cubic), the cell's cP" in sc["text"]
     assert analyze(static)["summary"]["supercell"] is None               # the primitive Si2 cell
+    # the primitive Si2 cell sheared by 1e-4: cF within the lattice column's 1e-3 Å, not within
+    # the 1e-4 Å the translation lattice is judged at; no pure translation, so no supercell note
+    # (it once said "the structure's lattice is aP, the cell's cF")
+    from ase import Atoms
+    shear = np.eye(3) + 1e-4 * np.eye(3)[:, [1, 2, 0]].T * np.eye(3)[0][:, None]
+    sheared = Atoms(numbers=static.numbers, positions=static.positions[-1] @ shear.T,
+                    cell=static.cells[-1] @ shear.T, pbc=True)
+    ase.io.write(tmp_path / "sheared.traj", [sheared, sheared])
+    rec = analyze(tmp_path / "sheared.traj")
+    prim = rec["frames"][-1]["symmetry"]["primitive"]
+    assert rec["summary"]["final"]["type"] == "cF" and prim["type"] == "aP"
+    assert prim["multiplicity"] == 1 and rec["summary"]["supercell"] is None
     proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
                            str(camp / "atomate_conventional_si" / "outputs")],
                           capture_output=True, text=True, timeout=300)
