@@ -380,7 +380,7 @@ def _printed(path, pattern):
     return [float(m.group(1)) for m in re.finditer(pattern, text)], text
 
 
-def test_a_pwx_41_vc_relax_reads_as_pwx_prints_it():
+def test_a_pwx_41_vc_relax_reads_as_pwx_prints_it(tmp_path):
     """pwtools' genuine QE 4.1.2 vc-relax output (tests/data/public/qe412_vc_relax): pw.x before
     5.0 prints ``positions (a_0 units)`` and ``CELL_PARAMETERS (alat)`` with no value; ASE's
     header parser knows only ``(alat units)``. The reference is pw.x's own print-out in the file:
@@ -399,6 +399,17 @@ def test_a_pwx_41_vc_relax_reads_as_pwx_prints_it():
     np.testing.assert_allclose(vol[1:], volumes[:6], atol=6e-6, rtol=0)
     assert vol[0] == pytest.approx(header * 0.529177210903 ** 3, abs=1e-4)
     np.testing.assert_allclose(run.energies, np.array(energies[:7]) * units["Ry"], rtol=1e-12)
+    # complete: pw.x 4 ends with its closing timing ("PWSCF        :  8m53.21s CPU time") and no
+    # JOB DONE, which came later; it was once called truncated, "job killed or still running"
+    assert "JOB DONE" not in text and text.count("     PWSCF        :  8m53.21s CPU time") == 1
+    assert not [w for w in run.warnings if "truncated" in w], run.warnings
+    from driftwatch.live import _end_marker
+    cut = tmp_path / "pw.out"
+    cut.write_text(text[:text.index("     PWSCF        :")])     # the same job before its end
+    assert any("truncated after step" in w for w in read_run(cut).warnings)
+    whole = tmp_path / "whole.out"
+    whole.write_text(text)
+    assert _end_marker(whole, "espresso-out") == "pw.x's closing timing"      # follow stops here
 
 
 def test_a_pwx_output_named_like_an_input_takes_its_settings_from_the_input(tmp_path):

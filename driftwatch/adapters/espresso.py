@@ -55,9 +55,12 @@ _START = "Program PWSCF"
 _SCF_START = ("Self-consistent Calculation", "iteration #", "!    total energy")
 _NSCF_START = "Band Structure Calculation"
 _HEADER_END = (*_SCF_START, _NSCF_START)     # where a run's header ends (an nscf run has no SCF)
+# pw.x's total time, printed once as a run ends (print_clock's layout: "PWSCF", padded, " :"); pw.x
+# before 6 ends with it and no JOB DONE (pwtools' genuine 4.1.2 vc-relax, tests/data/public)
+_CLOCK = "PWSCF        :"
 _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
-            "Begin final coordinates", "The maximum number of steps")
+            "Begin final coordinates", "The maximum number of steps", _CLOCK)
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
 _STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
@@ -391,7 +394,7 @@ def read_pw_out(path, ctx: ReadContext):
                     ctx.settings["calculation"] = next(v for m, v in _DYNAMICS.items()
                                                        if m in line)
             elif _CLOSER.search(line):
-                if "JOB DONE" in line:
+                if "JOB DONE" in line or _CLOCK in line:
                     done = True
                 if cur.from_header and not cur.bfgs_seen and "number of scf cycles" in line:
                     continue          # a restart shows in the BFGS step count on the next line
@@ -409,7 +412,8 @@ def read_pw_out(path, ctx: ReadContext):
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
-            ctx.warn(f"truncated {where}: no JOB DONE; job killed or still running")
+            ctx.warn(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); job killed "
+                     f"or still running")
 
 
 # ---------------------------------------------------------------- settings
@@ -700,6 +704,7 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
 # ---------------------------------------------------------------- live: end, soft stop
 END_MARKERS = {
     "espresso-out": ((re.compile(rb"JOB DONE\."), "JOB DONE."),
+                     (re.compile(_CLOCK.encode() + rb"[^\n]*(CPU|WALL)"), "pw.x's closing timing"),
                      (re.compile(rb"Error in routine[\s\S]*stopping \.\.\."), "pw.x error banner")),
 }
 _SAVE_DIR = re.compile(rb"Writing output data file (\S*?)([^/\s]+)\.save/?\s*$", re.M)
