@@ -814,7 +814,7 @@ def test_job_folders_with_inputs_and_no_output_are_failed_entries_not_kept_runs(
     assert sorted(errors) == ["camp/qe_queued", "camp/vasp_died", "camp/vasp_queued"]
     for rid, err in errors.items():
         assert err.startswith(f"{tmp_path / rid}: ") and "\n" not in err
-        assert "a job not run yet, or stopped before writing its output" in err
+        assert "a job not run yet, or one that stopped before writing an ionic step" in err
         with pytest.raises(InputError) as exc:                   # inspect says the same
             read_run(tmp_path / rid)
         assert str(exc.value) == err
@@ -1333,3 +1333,30 @@ def test_copies_of_a_run_folder_are_named(tmp_path):
     assert "copies (runs that read the same frames)" in index and "camp/run = camp/run_bk" in index
     again = _quiet_audit([camp], tmp_path / "out", workers=1)
     assert again["cached"] == 3 and again["copies"] == summary["copies"]
+
+
+def test_a_pwx_crash_is_a_failed_run_that_quotes_the_crash_file(tmp_path):
+    """aiida-quantumespresso's genuine crashed pw.x runs (an empty output beside pw.x's CRASH file)
+    were no run at all: not listed, not failed, gone from the audit. Now each is a failed run that
+    quotes pw.x's own error; an output cut short beside a CRASH file quotes it too (a real pw.x
+    output of tests/data/qe cut after some steps)."""
+    crashed = PUB / "broken" / "aiida_pw_crashed"
+    s = _quiet_audit([crashed], tmp_path / "out", workers=1)
+    errors = {f["run"]: f["error"] for f in s["failed"]}
+    assert sorted(errors) == ["aiida_pw_crashed/vcrelax_failed_fft_significant_volume_contraction",
+                              "aiida_pw_crashed/vcrelax_failed_symmetry_not_orthogonal"]
+    assert errors["aiida_pw_crashed/vcrelax_failed_symmetry_not_orthogonal"].endswith(
+        "pw.x crashed (CRASH says 'Error in routine checkallsym (2): not orthogonal operation') "
+        "and left no pw.x output with an ionic step")
+    assert ("from scale_h : error # 1 Not enough space allocated for radial FFT" in
+            errors["aiida_pw_crashed/vcrelax_failed_fft_significant_volume_contraction"])
+    with pytest.raises(InputError, match="pw.x crashed"):
+        read_run(crashed / "vcrelax_failed_symmetry_not_orthogonal")
+    cut = tmp_path / "cut"
+    cut.mkdir()
+    text = (QE / "layer_oblique_to_hex" / "pw.out").read_text()
+    (cut / "pw.out").write_text(text[:len(text) // 2])
+    shutil.copy(crashed / "vcrelax_failed_symmetry_not_orthogonal" / "CRASH", cut)
+    (w,) = [w for w in read_run(cut).warnings if "truncated" in w]
+    assert w.endswith("pw.x's CRASH file beside it says 'Error in routine checkallsym (2): not "
+                      "orthogonal operation'")

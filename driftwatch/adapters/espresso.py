@@ -412,8 +412,11 @@ def read_pw_out(path, ctx: ReadContext):
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
-            ctx.warn(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); job killed "
-                     f"or still running")
+            beside = Path(path).parent
+            crash = crash_message(beside, ["CRASH"] if (beside / "CRASH").is_file() else [], ctx)
+            ctx.warn(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); " + (
+                f"pw.x's {crash.replace('CRASH says', 'CRASH file beside it says')}" if crash
+                else "job killed or still running"))
 
 
 # ---------------------------------------------------------------- settings
@@ -695,10 +698,32 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     that stopped before writing; else None. Called for folders :func:`pick_from_folder` did not
     take as a run."""
     got = [n for n in names if _is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)]
+    crash = crash_message(folder, names, ctx)
+    if crash:          # pw.x wrote its CRASH file, and no output holds an ionic step
+        return f"pw.x crashed ({crash}) and left no pw.x output with an ionic step", got + ["CRASH"]
     if not got:
         return None
     what = "a pw.x input" if len(got) == 1 else "pw.x inputs"
     return f"{what} ({', '.join(got)}) and no pw.x output", got
+
+
+def crash_message(folder: Path, names, ctx=None) -> str | None:
+    """The error pw.x wrote in its ``CRASH`` file in ``folder`` (``Error in routine NAME (N):``
+    and the message, on one line, quoted), or None when there is no CRASH file."""
+    if "CRASH" not in names:
+        return None
+    path = Path(folder) / "CRASH"
+    if ctx is not None:
+        ctx.uses(path)
+    try:
+        with open(path, "rb") as fh:
+            text = fh.read(4096).decode("utf-8", "replace")
+    except OSError:
+        return "CRASH unreadable"
+    lines = [" ".join(ln.split()) for ln in text.splitlines()
+             if ln.strip() and not set(ln.strip()) <= {"%"} and not ln.strip().startswith("task #")]
+    said = " ".join(lines[:2])[:200]         # "Error in routine NAME (N):" and the message
+    return f"CRASH says {said!r}" if said else "an empty CRASH file"
 
 
 # ---------------------------------------------------------------- live: end, soft stop

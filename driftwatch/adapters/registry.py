@@ -536,7 +536,9 @@ def _is_file(entry) -> bool:
 def inputs_only_problem(what: str, readable, folder) -> str:
     """The one-line problem of a folder of job inputs and no output (``scan_folder``'s "inputs")."""
     also = f"; pass {Path(folder) / readable[0]} to read that structure alone" if readable else ""
-    return f"{what}: a job not run yet, or stopped before writing its output{also}"
+    if what.startswith("pw.x crashed"):      # the code's own word on why (its CRASH file)
+        return f"{what}{also}"
+    return f"{what}: a job not run yet, or one that stopped before writing an ionic step{also}"
 
 
 def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
