@@ -16,6 +16,7 @@ Outputs (relative to ``--out``, default: the repository root)::
     tests/data/qe/<name>/pw.in, pw.out[.gz]        small pw.x fixtures for the adapter tests
     tests/data/qe/pseudo/*.UPF                      pseudopotentials those inputs use
     tests/data/qe/restart_numbered/                 pw.out.1 (stopped at nstep) + pw.out (restart)
+    tests/data/qe/restart_appended/                 the same, the restart appended to one pw.out
     tests/data/qe/restart_stage_folders/relax1|2/   soft-stopped run + new run from its last structure
     tests/data/batch/                               EMT batch: relaxations.extxyz.gz, relaxations.db,
                                                     pairs.extxyz.gz, pairs.db (--only batch)
@@ -567,6 +568,34 @@ def make_restart_numbered(out_root: Path, np_: int) -> dict:
             "bytes": sum(f.stat().st_size for f in files)}
 
 
+def make_restart_appended(out_root: Path, np_: int) -> dict:
+    """The run of :func:`make_restart_numbered`, its restart appended to the same output (a job
+    script's ``pw.x < pw.in >> pw.out``): one ``pw.out`` holding both runs."""
+    tree = out_root / "tests/data/qe"
+    run = QERun(name="restart_appended", tree="tests/data/qe", calculation="vc-relax",
+                cell=fcc_primitive(4.00, 4.32), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
+                kpts=(8, 8, 8, 0, 0, 0), system={**CONSTANT_CUTOFF},
+                control={"nstep": 3, "disk_io": "low"})
+    rundir = tree / ".restart_appended.partial"
+    shutil.rmtree(rundir, ignore_errors=True)
+    rundir.mkdir(parents=True)
+    t0 = time.time()
+    (rundir / "pw.in").write_text(pw_input(run))
+    first = _pw(rundir, "pw.in", "pw.out", np_)
+    if "The maximum number of steps has been reached" not in first:
+        raise RuntimeError("restart_appended: the first run was meant to stop at nstep")
+    run.control = {"nstep": 80, "disk_io": "low", "restart_mode": "restart"}
+    (rundir / "pw.in").write_text(pw_input(run))
+    time.sleep(1.1)
+    second = _pw(rundir, "pw.in", "pw.out.2", np_)
+    (rundir / "pw.out").write_text(first + second)
+    (rundir / "pw.out.2").unlink()
+    files = _finish_tree(rundir, tree / "restart_appended")
+    return {"name": "restart_appended", "wall_s": round(time.time() - t0, 1),
+            "file": str((tree / "restart_appended").relative_to(out_root)),
+            "bytes": sum(f.stat().st_size for f in files)}
+
+
 def make_restart_stage_folders(out_root: Path, np_: int) -> dict:
     """A two-atom Si vc-relax (fcc lattice stretched 5 % along c, one atom off its site) stopped by
     driftwatch's soft stop (pw.EXIT) after 2 BFGS steps in ``relax1/``; ``relax2/`` is a new run
@@ -672,6 +701,7 @@ class _Named:
 
 
 STAGED_RUNS = {"restart_numbered": ("tests/data/qe", make_restart_numbered),
+               "restart_appended": ("tests/data/qe", make_restart_appended),
                "restart_stage_folders": ("tests/data/qe", make_restart_stage_folders),
                "nscf_after_scf": ("tests/data/qe_nscf", make_nscf_after_scf),
                "cell_dynamics": ("tests/data/qe_dynamics", make_cell_dynamics)}

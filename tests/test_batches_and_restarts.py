@@ -119,6 +119,28 @@ def _last_printed(text):
     return np.array(cell)
 
 
+def test_a_restart_appended_to_its_output_numbers_steps_as_pwx_counts_them():
+    """The run above with its restart appended to the same output (`>> pw.out`; real pw.x 6.7,
+    scripts/make_runs.py restart_appended): the same 24 frames, and each step is pw.x's own SCF
+    count minus one ("number of scf cycles = k" closes step k - 1; the converged BFGS says its
+    last count, the final scf adds one). It once skipped a step at the restart (0, 1, 2, 4, ...):
+    the restart's first SCF, on the structure the first run printed last, took a number of its
+    own."""
+    import re
+    path = QE / "restart_appended" / "pw.out.gz"
+    run = read_run(path)
+    text = _text(path)
+    counts = [int(k) for k in re.findall(r"number of scf cycles\s+=\s+(\d+)", text)]
+    (last,) = re.findall(r"bfgs converged in\s+(\d+) scf cycles", text)
+    assert text.count("Program PWSCF") == 2 and "restart_mode = 'restart'" in (
+        QE / "restart_appended" / "pw.in").read_text()
+    assert run.steps.tolist() == [k - 1 for k in counts] + [int(last) - 1, int(last)]
+    assert [(s["name"], s["n_frames"]) for s in run.stages] == [("run1", 3), ("run2", 21)]
+    numbered = read_run(NUMBERED)                     # the same job written to two files
+    np.testing.assert_allclose(run.energies, numbered.energies, rtol=1e-12)
+    assert run.steps.tolist() == numbered.steps.tolist() == list(range(24))
+
+
 def test_numbered_pwx_restart_is_one_run_in_the_order_it_ran():
     """pw.out.1 (stopped at nstep = 3) and pw.out.gz (restart_mode='restart'), real pw.x 6.7: one
     trajectory, ordered by the start time pw.x prints (not by name), steps numbered on as pw.x's

@@ -91,6 +91,7 @@ class _Config:
         self.emitted = False
         self.from_header = False    # printed in a run's header (pw.x prints the input structure)
         self.restored = None        # header configs: the previous run's last unevaluated config
+        self.restored_index = None  # ... and its index, when that run is in the same file
         self.bfgs_seen = False      # header configs: the first 'number of bfgs steps' line was read
 
     def kinds(self):
@@ -274,10 +275,15 @@ def read_pw_out(path, ctx: ReadContext):
         return cfg.cell, cfg.positions, cfg.numbers
 
     def restarted(cfg, nbfgs):
-        """A header configuration whose first step is BFGS step ``nbfgs`` > 0: a restart."""
+        """A header configuration whose first step is BFGS step ``nbfgs`` > 0: a restart. Its
+        first SCF ran on the configuration the previous run printed last and never evaluated:
+        the same step (in one file, the same index; pw.x's own count agrees)."""
+        nonlocal nconf
         prev = cfg.restored
         if prev is not None and np.array_equal(prev[2], cfg.numbers):
             cfg.cell, cfg.positions = np.array(prev[0], float), np.array(prev[1], float)
+            if cfg.restored_index is not None:
+                cfg.index, nconf = cfg.restored_index, cfg.restored_index + 1
             return True
         cfg.emitted = True            # never emitted: its structure is not printed here
         ctx.warn(f"a restart (restart_mode='restart': the first step is BFGS step {nbfgs}): its "
@@ -295,6 +301,7 @@ def read_pw_out(path, ctx: ReadContext):
                 if ready(cur):
                     yield emit(cur)
                 restored = unevaluated(cur) if cur is not None else carried
+                restored_index = cur.index if cur is not None and restored is not None else None
                 seen_start = True
                 header = [line]
                 while True:
@@ -324,6 +331,7 @@ def read_pw_out(path, ctx: ReadContext):
                     ctx.settings.setdefault("nsym", nsym)
                 cur, pending_cell = _Config(cell, pos, numbers, nconf), None
                 cur.from_header, cur.restored = True, restored
+                cur.restored_index = restored_index
                 if _NSCF_START in ln:
                     ctx.warn("a non-self-consistent run ('Band Structure Calculation': "
                              "calculation = 'nscf' or 'bands'): no SCF energy, no ionic step")
