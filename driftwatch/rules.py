@@ -432,6 +432,11 @@ def _structure_flags(frames, sv):
     rel = {"supergroup": f"{b['symbol']} contains {a['symbol']}",
            "subgroup": f"{b['symbol']} is a subgroup of {a['symbol']}",
            "unrelated": "neither group contains the other"}.get(sv["relation"], sv["relation"])
+    if a["group"] == b["group"] and a["operations"] != b["operations"]:   # the same type
+        more = b["operations"] > a["operations"]
+        rel = (f"the same space-group type with {'more' if more else 'fewer'} operations: pure "
+               f"translations {'gained' if more else 'lost'} (a {'smaller' if more else 'larger'} "
+               f"primitive cell)")
     msg = (f"spglib's group at symprec {_g(s)} Å {what} from {a['symbol']} ({a['group']}, "
            f"{a['operations']} operations) to {b['symbol']} ({b['group']}, {b['operations']} "
            f"operations) {when}; {rel}")
@@ -486,8 +491,9 @@ def _loose(frames, D, r):
         lat, _ = _at(spec, r["symprec"], "lattice")
         t = _lattice_type(lat)
         if t in D and D[t][k] > r["far"]:
-            msg = (f"spglib at symprec {_g(r['symprec'])} Å calls the lattice {t} ({NAMES[t]}) while "
-                   f"its deformation to {t} is {_g(D[t][k])} Å (> {_g(r['far'])} Å)")
+            msg = (f"spglib at symprec {_g(r['symprec'])} Å calls the cell's lattice (one atom per "
+                   f"cell) {t} ({NAMES[t]}) while its deformation to {t} is {_g(D[t][k])} Å "
+                   f"(> {_g(r['far'])} Å)")
             return [_flag("loose-symprec", k, frames, msg, t, float(D[t][k]), r["far"])]
     return []
 
@@ -552,8 +558,10 @@ def _text(direction, lv, sv, frames) -> str:
                      + ("" if ends else f" {_from(frames, lv['from_frame'])}"))
     if sv.get("initial") and sv.get("final"):
         a, b = sv["initial"], sv["final"]
+        # the same type at both ends: the operation counts tell them apart
+        ops = [f", {g['operations']} operations" if a["group"] == b["group"] else "" for g in (a, b)]
         grp = (f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else
-               f"{a['symbol']} ({a['group']}) -> {b['symbol']} ({b['group']})")
+               f"{a['symbol']} ({a['group']}{ops[0]}) -> {b['symbol']} ({b['group']}{ops[1]})")
         when = "" if sv["direction"] == "kept" or ends else (
             f" {_from(frames, sv['from_frame'])}" if sv["exact"] or sv["after_step"] is None
             else f" between steps {sv['after_step']} and {sv['from_step']}")

@@ -504,7 +504,7 @@ def test_follow_dry_run_on_real_pwx_writes_nothing(tmp_path, unstopped):
     folder.mkdir()
     shutil.copy(src / "pw.in", folder)
     text = (src / "pw.out").read_text()
-    cut = text.index("JOB DONE")                            # as if still running
+    cut = text.index("     PWSCF        :")       # as if still running (before its closing timing)
     (folder / "pw.out").write_text(text[:cut].rsplit("\n", 1)[0] + "\n")
     buf = io.StringIO()
     rec = follow(folder / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-nearing"],

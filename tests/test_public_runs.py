@@ -310,18 +310,19 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 29
+    assert summary["failed"] == [] and summary["runs"] == 32
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert ("29 runs: 27 with a verdict, 0 failed, 2 skipped (29 read now, 0 from the cache)"
+    assert ("32 runs: 30 with a verdict, 0 failed, 2 skipped (32 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
-    assert ("not relaxations: 10 runs (finite differences 1, molecular dynamics 3, "
-            "nudged-elastic-band image 3, single-point calculation 3; column not_relaxation of "
+    assert ("not relaxations: 12 runs (finite differences 1, molecular dynamics 3, "
+            "nudged-elastic-band image 3, single-point calculation 5; column not_relaxation of "
             "campaign.csv)") in proc.stdout
     assert {x["run"] for x in summary["not_relaxation"]} == {
         "mixed/atomate_si_static/outputs", "mixed/atomate_static_stages/outputs",   # NSW = 0
+        "mixed/qe71_scf_pair/scf.out.gz", "mixed/qe71_scf_pair/bands.out.gz",       # pw.x scf
         "mixed/vasp544_finite_differences", "mixed/vasp541_npt_md", "mixed/vasp544_neb/01",
         "mixed/vasp544_nelm",                     # NSW = -1: one SCF at NELM, a single point
         "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
@@ -329,19 +330,19 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
     # the campaign's tolerance advice is about relaxed structures: those 8 are left out of it
     tol = summary["tolerance"]
-    assert tol["left_out"] == 10 and set(tol["run_ids_left_out"]) == {
+    assert tol["left_out"] == 12 and set(tol["run_ids_left_out"]) == {
         x["run"] for x in summary["not_relaxation"]}
     from driftwatch.rules import advice_item, campaign_advice
     recs = [(p.name, json.loads(p.read_text()))
             for p in (tmp_path / "out" / "records").glob("*.json")]
     alone = campaign_advice([advice_item(n, r) for n, r in recs
                              if not r["run"]["not_relaxation"]], tol["symprecs"])
-    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 10
+    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 12
     assert tol["recommended_symprec"] == alone["recommended_symprec"]
     assert [c["runs"] for c in tol["changes"]] == [c["runs"] for c in alone["changes"]]
-    assert tol["reason"] == alone["reason"] + ". Left out: 10 runs whose steps are no relaxation"
+    assert tol["reason"] == alone["reason"] + ". Left out: 12 runs whose steps are no relaxation"
     assert f"campaign symprec: {tol['recommended_symprec']:.3g} Å (" in proc.stdout
-    assert "Left out: 10 runs whose steps are no relaxation)" in proc.stdout
+    assert "Left out: 12 runs whose steps are no relaxation)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -1360,3 +1361,49 @@ def test_a_pwx_crash_is_a_failed_run_that_quotes_the_crash_file(tmp_path):
     (w,) = [w for w in read_run(cut).warnings if "truncated" in w]
     assert w.endswith("pw.x's CRASH file beside it says 'Error in routine checkallsym (2): not "
                       "orthogonal operation'")
+
+
+def test_two_calculations_on_one_structure_are_two_runs(tmp_path):
+    """pymatgen-io-espresso's genuine BAs pair (QE 7.1): an scf run and a second scf run on a dense
+    k-path, side by side. The second starts where the first ended, as a stage would, but the first
+    moved nothing: they are two single points, not one run of two stages (they were: 'kept', with
+    stages scf.out and bands.out). Each reads as ASE reads it; a relaxation continued by a static
+    run stays one run (the restart fixtures above)."""
+    folder = PUB / "qe71_scf_pair"
+    runs, failed = discover([folder])
+    assert failed == [] and sorted(r.id for r in runs) == ["qe71_scf_pair/bands.out.gz",
+                                                            "qe71_scf_pair/scf.out.gz"]
+    for name in ("scf.out.gz", "bands.out.gz"):
+        run = read_run(folder / name)
+        with gzip.open(folder / name, "rt") as fh:
+            ref = ase.io.read(fh, index=":", format="espresso-out")                     # ASE
+        assert len(run) == len(ref) == 1 and run.stages == ()
+        assert run.energies[0] == pytest.approx(ref[0].get_potential_energy(), rel=1e-12)
+        assert run.not_relaxation.startswith("a single-point calculation")
+    with pytest.raises(InputError, match="ambiguous run folder: it holds 2 runs"):
+        read_run(folder)
+
+
+def test_a_gain_of_pure_translations_is_said_as_such():
+    """Quantum ESPRESSO's test-suite vc-relax5 (As2, genuine pw.x output): the group stays R-3m
+    while spglib's operations double from step 9 (the primitive cell halves: 2 atoms -> 1, spglib
+    checked here). The verdict gives both operation counts and the flag says pure translations were
+    gained (it said "R-3m (166) -> R-3m (166) ... R-3m contains R-3m"); the loose-symprec flag
+    names what spglib judged: the cell's lattice alone."""
+    import spglib
+    from driftwatch import analyze
+    run = read_run(PUB / "qe_testsuite_vc_relax5")
+    cells = [(c, np.linalg.solve(c.T, p.T).T, run.numbers) for c, p in zip(run.cells, run.positions)]
+    ops = [len(spglib.get_symmetry_dataset(c, symprec=1e-3).rotations) for c in cells]
+    prim = [len(spglib.find_primitive(c, symprec=1e-3)[2]) for c in cells]
+    assert {spglib.get_symmetry_dataset(c, symprec=1e-3).number for c in cells} == {166}
+    assert ops.index(24) == 9 and set(ops[:9]) == {12} and prim[8:10] == [2, 1]     # spglib
+    rec = analyze(run)
+    assert rec["summary"]["verdict"]["text"].endswith(
+        "group gained R-3m (166, 12 operations) -> R-3m (166, 24 operations) at symprec 0.001 Å "
+        "from step 9")
+    (gain,) = [f for f in rec["flags"] if f["code"] == "group-gained"]
+    assert gain["message"].endswith("the same space-group type with more operations: pure "
+                                    "translations gained (a smaller primitive cell)")
+    loose = [f["message"] for f in rec["flags"] if f["code"] == "loose-symprec"]
+    assert all("calls the cell's lattice (one atom per cell)" in m for m in loose)

@@ -239,6 +239,7 @@ def read_pw_out(path, ctx: ReadContext):
     last_index = None
     prev_kinds: set | None = None
     done = False
+    ionic = False       # BFGS or dynamics lines seen: pw.x moved atoms or cell
     cur: _Config | None = None
     alat = natoms = None
     pending_cell = None
@@ -397,6 +398,7 @@ def read_pw_out(path, ctx: ReadContext):
             elif any(m in line for m in _STOPS):
                 ctx.warn(f"pw.x stopped early: '{line.strip()}' (line {fh.lineno})")
             elif any(m in line for m in _DYNAMICS):
+                ionic = True
                 if "calculation" not in ctx.settings and \
                         ("Entering Dynamics;" not in line or _VC_FIRST.search(line)):
                     ctx.settings["calculation"] = next(v for m, v in _DYNAMICS.items()
@@ -404,6 +406,8 @@ def read_pw_out(path, ctx: ReadContext):
             elif _CLOSER.search(line):
                 if "JOB DONE" in line or _CLOCK in line:
                     done = True
+                elif "BFGS Geometry Optimization" in line or "number of scf cycles" in line:
+                    ionic = True
                 if cur.from_header and not cur.bfgs_seen and "number of scf cycles" in line:
                     continue          # a restart shows in the BFGS step count on the next line
                 if ready(cur):
@@ -417,6 +421,9 @@ def read_pw_out(path, ctx: ReadContext):
         runs = [(f"run{k + 1}", n) for k, n in enumerate(per_run) if n]
         if len(per_run) > 1 and len(runs) > 1:
             ctx.file_stages = runs
+        if done and not ionic and step == len(per_run) and "calculation" not in ctx.settings:
+            ctx.settings["calculation"] = "scf"   # one SCF per run, no ionic step: as it shows
+            ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
@@ -611,13 +618,18 @@ def continues(prev: Path, nxt: Path) -> bool:
     """True when pw.x output ``nxt`` continues ``prev``: a BFGS restart (its first step is BFGS step
     > 0) holding the same atoms, or a new run whose header structure is where ``prev`` ended (its
     last step, or the next configuration it printed and did not evaluate), within
-    :data:`CONTINUES_TOL`."""
+    :data:`CONTINUES_TOL`. A run that moved nothing (a single point: it ended where it started)
+    is continued by no new run: two calculations on one structure (an scf and a bands run, a
+    k-point convergence series) are separate runs."""
     head = _header_structure(nxt)
     ends = _end_structures(prev)
     if head is None or not ends:
         return False
     if (first_bfgs_step(nxt) or 0) > 0:
         return np.array_equal(head[2], ends[0][2])
+    start = _header_structure(prev)
+    if start is not None and all(_same_structure(start, end) for end in ends):
+        return False
     return any(_same_structure(head, end) for end in ends)
 
 
@@ -822,6 +834,9 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
 def run_kind(code_settings: dict) -> str | None:
     """What a pw.x run's ionic steps are when they are no relaxation (``calculation``); else None."""
     calc = (code_settings or {}).get("calculation")
+    if calc in _STATIC and code_settings.get("calculation_from"):     # no input: what it shows
+        return (f"a single-point calculation ({code_settings['calculation_from']}): one "
+                f"structure, no ionic steps")
     if calc in _STATIC:
         return f"a single-point calculation (calculation = '{calc}'): one structure, no ionic steps"
     return f"molecular dynamics (calculation = '{calc}')" if calc in ("md", "vc-md") else None
