@@ -889,7 +889,9 @@ def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[s
         grp = (v["group_initial"] if v["group_initial"] == v["group_final"] else
                f"{v['group_initial']} -> {v['group_final']}") or "-"
         flags = ",".join(sorted({f["code"] for f in rec["flags"]})) or "-"
-        rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"], lat, drift, grp, flags])
+        star = "*" if rec["csv"]["unfinished"] else ""      # footnoted below the table
+        rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"] + star, lat, drift, grp,
+                     flags])
     for f in failed:
         rows.append([f["run"], "-", "failed", "-", "-", "-", f["error"]])
     for k in skipped:
@@ -916,6 +918,9 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     if len(shown) < len(rows):
         print(f"({len(rows) - len(shown)} runs that kept their symmetry without flags not shown: "
               f"see campaign.csv)", file=stream)
+    if any(r[2].endswith("*") for r in shown):
+        print("* unfinished: cut short or stopped at its step limit; the verdict compares the "
+              "first frame with a structure that is not a relaxed one", file=stream)
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
     skipped = f", {len(summary['skipped'])} skipped" if summary.get("skipped") else ""
@@ -940,6 +945,11 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
               f"{', '.join(f'{k} {v}' for k, v in sorted(what.items()))}; column not_relaxation "
               f"of campaign.csv): their verdicts compare how the structure moved from the first "
               f"frame to the last, not where a relaxation ended", file=stream)
+    if summary.get("unfinished"):
+        why = Counter(x["why"].split(" (")[0].split(":")[0] for x in summary["unfinished"])
+        print(f"unfinished: {len(summary['unfinished'])} runs ("
+              f"{', '.join(f'{k} {v}' for k, v in sorted(why.items()))}; column unfinished of "
+              f"campaign.csv): their final structures are not relaxed ones", file=stream)
     tol = summary["tolerance"]
     for c in tol["changes"]:
         print(f"spglib verdict changes between symprec {c['low']:g} and {c['high']:g} Å: "
@@ -1186,6 +1196,8 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
         "not_relaxation": [{"run": r["run"], "what": r["view"]["csv"]["not_relaxation"]}
                            for r in sorted(ok, key=lambda r: r["run"])
                            if r["view"]["csv"]["not_relaxation"]],
+        "unfinished": [{"run": r["run"], "why": r["view"]["csv"]["unfinished"]}
+                       for r in sorted(ok, key=lambda r: r["run"]) if r["view"]["csv"]["unfinished"]],
         "rejected": [{"run": r["run"], "code": f["code"], "step": f["step"]}
                      for r in ok for f in select(r["view"]["flags"], list(reject_on))],
         "flag_counts": dict(sorted(Counter(c for r in ok for c in

@@ -150,6 +150,7 @@ class Tracker:
         self.title: str | None = None
         self.rounding: tuple | None = None      # the reader's printed precision of positions
         self.not_relaxation: str | None = None  # what the reader says the steps are, if no relaxation
+        self.unfinished: str | None = None      # why the run ended early (the reader's word)
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
@@ -218,7 +219,7 @@ class Tracker:
             format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
             position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
-            not_relaxation=ctx.not_relaxation)
+            not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished)
 
     def _run(self):
         """The frames so far as a Run, with what the reader noted (warnings, settings, title,
@@ -226,6 +227,7 @@ class Tracker:
         ctx = ReadContext(self.source)
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         ctx.rounding, ctx.not_relaxation = self.rounding, self.not_relaxation
+        ctx.unfinished = self.unfinished
         return self._collect(ctx)
 
     def _geometry(self, run):
@@ -736,7 +738,7 @@ class _Follower:
             self.tracker = self._start(ctx)
         self.source = Path(ctx.path)
         t = self.tracker
-        t.rounding, t.not_relaxation = ctx.rounding, ctx.not_relaxation
+        t.rounding, t.not_relaxation, t.unfinished = ctx.rounding, ctx.not_relaxation, ctx.unfinished
         t.source, t.warnings, t.code_settings, t.title = ctx.path, list(ctx.warnings), \
             dict(ctx.settings), ctx.title
         k = t.replace(frames)
@@ -793,6 +795,7 @@ class _Follower:
             t.replace(frames)
             t.source, t.warnings, t.code_settings = ctx.path, list(ctx.warnings), dict(ctx.settings)
             t.rounding, t.not_relaxation = ctx.rounding, ctx.not_relaxation
+            t.unfinished = ctx.unfinished
         final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
         self.say_warnings(t.warnings, final=True)

@@ -301,6 +301,7 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
             "stages": [dict(st) for st in getattr(run, "stages", ())],
             "kind": kind,
             "not_relaxation": getattr(run, "not_relaxation", None),
+            "unfinished": getattr(run, "unfinished", None),
             "structure_key": getattr(run, "structure_key", None),
         },
         "geometry": {
@@ -345,14 +346,16 @@ def to_atoms(record: dict, i: int = -1):
     return atoms
 
 
-CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "dimension", "n_frames",
+CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "unfinished", "dimension",
+               "n_frames",
                "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
                "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
                "group_verdict", "group_symprec_A", "group_initial", "group_final",
                "group_from_step", "flags", "recommended_symprec_A", "warnings", "error")
 """Columns of ``campaign.csv``; the same names (without the ``_A`` unit suffix) are the ase.db keys
 (:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed);
-``not_relaxation`` says what the ionic steps are when they are no relaxation (empty otherwise)."""
+``not_relaxation`` says what the ionic steps are when they are no relaxation, ``unfinished`` why the
+run ended before the code finished it (cut short, or at its step limit; empty otherwise)."""
 
 
 def verdict_fields(record: dict) -> dict:
@@ -382,6 +385,7 @@ def csv_row(record: dict, run_id: str = "") -> dict:
     r, v = record["run"], verdict_fields(record)
     row = {"run": run_id, "source": r["source"], "format": r["format"],
            "kind": r.get("kind", "trajectory"), "not_relaxation": r.get("not_relaxation") or "",
+           "unfinished": r.get("unfinished") or "",
            "dimension": record["geometry"]["dimension"], "n_frames": r["n_frames"],
            "n_atoms": r["n_atoms"], "formula": r["formula"], "fixed_cell": r["fixed_cell"],
            "flags": " ".join(sorted({f["code"] for f in record["flags"]})),
@@ -405,8 +409,9 @@ def db_key_values(record: dict, run_id: str) -> dict:
           "n_frames": int(r["n_frames"]), "fixed_cell": bool(r["fixed_cell"]),
           "source_format": r["format"], "kind": r.get("kind", "trajectory"),
           "n_flags": len(record["flags"])}
-    if r.get("not_relaxation"):
-        kv["not_relaxation"] = r["not_relaxation"]
+    for key in ("not_relaxation", "unfinished"):
+        if r.get(key):
+            kv[key] = r[key]
     for key, val in verdict_fields(record).items():
         if isinstance(val, float):
             if math.isfinite(val):

@@ -1407,3 +1407,58 @@ def test_a_gain_of_pure_translations_is_said_as_such():
                                     "translations gained (a smaller primitive cell)")
     loose = [f["message"] for f in rec["flags"] if f["code"] == "loose-symprec"]
     assert all("calls the cell's lattice (one atom per cell)" in m for m in loose)
+
+
+def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
+    """A relaxation that stopped at its step limit or was cut short has a final structure that is
+    no relaxed one: the record, campaign.csv, runs.db, the summary and the table say so (they looked
+    like any other verdict). References are the files' own lines: aiida-vasp's genuine NSW = 5
+    relaxation ran 5 steps and its OUTCAR never prints "reached required accuracy"; custodian's
+    relax1 does; pw.x prints "The maximum number of steps has been reached." at nstep, and an MD run
+    ends that way too without being unfinished."""
+    import csv
+    nelm = PUB / "vasp620_nelm"
+    text = gzip.open(nelm / "OUTCAR.gz", "rt").read()
+    assert "reached required accuracy" not in text and "NSW    =      5" in text
+    for path in (nelm / "OUTCAR.gz", nelm / "vasprun.xml.gz", nelm):
+        run = read_run(path)
+        assert len(run) == 5 and run.unfinished == (
+            "stopped at its step limit (VASP ran all NSW = 5 ionic steps and its OUTCAR does not "
+            "say 'reached required accuracy')"), path
+        assert any(w.endswith("; the final structure is not a relaxed one") for w in run.warnings)
+    assert "reached required accuracy" in gzip.open(DOUBLE / "OUTCAR.relax1.gz", "rt").read()
+    assert read_run(DOUBLE).unfinished is None
+    first = QE / "restart_numbered" / "pw.out.1"
+    assert "The maximum number of steps has been reached." in first.read_text()
+    assert read_run(first).unfinished.startswith("stopped at its step limit (pw.x:")
+    whole = read_run(QE / "restart_numbered")                          # the restart finished it
+    assert whole.unfinished is None and not [w for w in whole.warnings if "unfinished" in w]
+    md = PUB / "qe_testsuite_md"
+    assert "The maximum number of steps has been reached." in gzip.open(
+        next(md.iterdir()), "rt").read() and read_run(md).unfinished is None
+    camp = tmp_path / "camp"
+    shutil.copytree(nelm, camp / "nelm")
+    shutil.copytree(QE / "layer_oblique_to_hex", camp / "cut")
+    whole = (camp / "cut" / "pw.out").read_text()
+    (camp / "cut" / "pw.out").write_text(whole[:len(whole) // 2])
+    shutil.copytree(QE / "layer_oblique_to_hex", camp / "done")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report"], capture_output=True, text=True,
+                          timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["unfinished"] == [
+        {"run": "camp/cut", "why": "cut short: job killed or still running"},
+        {"run": "camp/nelm", "why": "stopped at its step limit (VASP ran all NSW = 5 ionic steps "
+                                    "and its OUTCAR does not say 'reached required accuracy')"}]
+    assert ("unfinished: 2 runs (cut short 1, stopped at its step limit 1; column unfinished of "
+            "campaign.csv): their final structures are not relaxed ones") in proc.stdout
+    rows = {ln.split()[0]: ln.split()[2] for ln in proc.stdout.splitlines() if ln.startswith("camp/")}
+    assert rows["camp/cut"].endswith("*") and rows["camp/nelm"].endswith("*")
+    assert not rows["camp/done"].endswith("*") and "* unfinished:" in proc.stdout
+    with open(tmp_path / "out" / "campaign.csv", newline="") as fh:
+        col = {r["run"]: r["unfinished"] for r in csv.DictReader(fh)}
+    from ase.db import connect
+    with connect(tmp_path / "out" / "runs.db") as db:
+        kv = {row.run_id: row.get("unfinished", "") for row in db.select()}
+    assert col == kv and col["camp/done"] == ""

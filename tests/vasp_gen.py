@@ -236,7 +236,9 @@ def write_outcar(path, traj: Trajectory, *, isym=2, isif=3, ibrion=2, finished=T
                 f"  free  energy   TOTEN  = {traj.energies[k]:20.8f} eV", "",
                 f"  energy  without entropy= {traj.energies[k] + 4e-4:18.8f}  "
                 f"energy(sigma->0) = {traj.energies[k] + 2e-4:18.8f}", ""]
-    if finished:
+    if finished:        # a relaxation that converged within NSW says so (as VASP prints it)
+        if ibrion in (1, 2, 3):
+            out += [" reached required accuracy - stopping structural energy minimisation"]
         out += ["", " General timing and accounting informations for this job:",
                 " ========================================================", "",
                 "                  Total CPU time used (sec):        1.000",

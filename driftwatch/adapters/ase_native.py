@@ -186,7 +186,7 @@ def read_extxyz(path, ctx: ReadContext):
 
     def truncated(n, how):
         where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
-        ctx.warn(f"truncated {where}: " + (f"the file ends inside frame {n}" if how == "frame"
+        ctx.truncated(f"truncated {where}: " + (f"the file ends inside frame {n}" if how == "frame"
                                            else "the last line is cut")
                  + "; still being written or cut")
 

@@ -240,6 +240,7 @@ def read_pw_out(path, ctx: ReadContext):
     prev_kinds: set | None = None
     done = False
     ionic = False       # BFGS or dynamics lines seen: pw.x moved atoms or cell
+    at_limit = False    # the last run stopped at nstep ("The maximum number of steps ...")
     cur: _Config | None = None
     alat = natoms = None
     pending_cell = None
@@ -301,6 +302,7 @@ def read_pw_out(path, ctx: ReadContext):
             if _START in line:
                 if ready(cur):
                     yield emit(cur)
+                at_limit = False                  # a new run: its own end decides
                 restored = unevaluated(cur) if cur is not None else carried
                 restored_index = cur.index if cur is not None and restored is not None else None
                 seen_start = True
@@ -408,6 +410,10 @@ def read_pw_out(path, ctx: ReadContext):
                     done = True
                 elif "BFGS Geometry Optimization" in line or "number of scf cycles" in line:
                     ionic = True
+                elif "The maximum number of steps" in line:
+                    at_limit = True
+                elif "bfgs converged" in line:
+                    at_limit = False
                 if cur.from_header and not cur.bfgs_seen and "number of scf cycles" in line:
                     continue          # a restart shows in the BFGS step count on the next line
                 if ready(cur):
@@ -424,12 +430,15 @@ def read_pw_out(path, ctx: ReadContext):
         if done and not ionic and step == len(per_run) and "calculation" not in ctx.settings:
             ctx.settings["calculation"] = "scf"   # one SCF per run, no ionic step: as it shows
             ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
+        if at_limit and ctx.settings.get("calculation") not in ("md", "vc-md"):
+            ctx.unfinished = ("stopped at its step limit (pw.x: 'The maximum number of steps has "
+                              "been reached.')")
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
             beside = Path(path).parent
             crash = crash_message(beside, ["CRASH"] if (beside / "CRASH").is_file() else [], ctx)
-            ctx.warn(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); " + (
+            ctx.truncated(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); " + (
                 f"pw.x's {crash.replace('CRASH says', 'CRASH file beside it says')}" if crash
                 else "job killed or still running"))
 

@@ -652,6 +652,7 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
     for name, src, fmt in pick.stages:
         ctx.path = _source_of(pick, src)
         n, last = 0, None
+        ctx.unfinished = None               # the run's is its last stage's
         for fr in _stream(fmt, ctx.path, ctx):
             if first_numbers is None:
                 first_numbers = fr.numbers
@@ -673,6 +674,8 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
             kinds.append(run_kind(ctx.settings))       # each stage by its own settings
     if stages_out is not None and len(stages_out) == 1:
         stages_out.clear()                  # one stage gave every frame: not a multi-stage run
+    if ctx.unfinished and not ctx.unfinished.startswith("cut short"):   # (warned as truncated)
+        ctx.warn(f"unfinished: {ctx.unfinished}; the final structure is not a relaxed one")
     # no relaxation when no stage is one (relaxations ending in a static stage are relaxations)
     what = ctx.not_relaxation = kinds[-1] if kinds and all(kinds) else None
     if what:

@@ -96,6 +96,10 @@ class Run:
     """``"trajectory"`` (ionic steps as the code wrote them) or ``"end-points"`` (only the initial
     and the final structure of a relaxation, as databases of initial/final pairs store them: steps
     0 and 1 are those two structures, not ionic steps)."""
+    unfinished: str | None = None
+    """Why the run's last stage ended before the code finished it, in words (cut short: a job
+    killed or still running; or stopped at its step limit: pw.x's nstep, VASP's NSW), else None.
+    Its final structure is then not a relaxed one."""
     not_relaxation: str | None = None
     """What the ionic steps are when they are no relaxation, in words (``"molecular dynamics
     (IBRION = 0)"``, an image of a nudged elastic band, ...; the code's ``run_kind``); None for a
@@ -258,6 +262,8 @@ class ReadContext:
         """``{"key", "value", "structures"}`` for one structure of a many-structure file."""
         self.not_relaxation: str | None = None
         """What the steps are when they are no relaxation (:attr:`Run.not_relaxation`)."""
+        self.unfinished: str | None = None
+        """Why the stage being read ended early (:attr:`Run.unfinished`; :meth:`truncated`)."""
         self.stage_count: int = 1
         """How many stages are read together (a reader whose file may not belong to the stages
         after it, an archived attempt, checks that only when there are several)."""
@@ -287,6 +293,12 @@ class ReadContext:
         the coarsest seen wins."""
         if self.rounding is None or (self.rounding[0] == kind and step > self.rounding[1]):
             self.rounding = (kind, float(step))
+
+    def truncated(self, message: str) -> None:
+        """Warn that the file is cut short (``message`` starts "truncated ...") and mark the run
+        unfinished."""
+        self.warn(message)
+        self.unfinished = "cut short: job killed or still running"
 
     def warn(self, message: str) -> None:
         """Record a warning, prefixed with the file name unless it starts with a path already."""
@@ -479,7 +491,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         run_dir=None if run_dir is None else str(run_dir),
         stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
         kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
-        not_relaxation=ctx.not_relaxation,
+        not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished,
     )
 
 

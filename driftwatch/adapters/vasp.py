@@ -366,7 +366,7 @@ def read_vasprun(path, ctx: ReadContext):
             ctx.warn(f"malformed XML {where} ({exc}): the file is damaged there, not cut off; "
                      f"nothing after it is read")
         else:
-            ctx.warn(f"truncated {where}: XML ends abnormally ({type(exc).__name__}: {exc})"
+            ctx.truncated(f"truncated {where}: XML ends abnormally ({type(exc).__name__}: {exc})"
                      + ("; the file ends in NUL bytes (a write its file system did not finish)"
                         if nul else "") + "; job killed or still running")
         return
@@ -375,7 +375,9 @@ def read_vasprun(path, ctx: ReadContext):
         if unconverged:
             ctx.warn(_unconverged_note(unconverged, params["NELM"]))
     if not complete:
-        ctx.warn(f"truncated after step {step - 1} ({step} completed steps): no </modeling>")
+        ctx.truncated(f"truncated after step {step - 1} ({step} completed steps): no </modeling>")
+    else:
+        _at_step_limit(Path(path), step, ctx)
 
 
 def _vasprun_params(el) -> dict:
@@ -648,13 +650,40 @@ def _outcar_with_ase(path, ctx, skip):
         _warn_at_end(fd, step, ctx)
 
 
+_CONVERGED = "reached required accuracy"      # OUTCAR, after a relaxation's last ionic step
+
+
+def _at_step_limit(path: Path, steps: int, ctx) -> None:
+    """Mark a complete relaxation (IBRION 1, 2, 3) that ran all its NSW ionic steps unfinished,
+    unless its OUTCAR (this file or the stage's) says it converged ("reached required accuracy -
+    stopping structural energy minimisation"; VASP's documentation: common practice)."""
+    s = ctx.settings
+    nsw, ibrion = s.get("NSW"), s.get("IBRION")
+    if nsw is None or ibrion not in (1, 2, 3) or not 0 < int(nsw) <= steps:
+        return
+    outcar = path if strip_compression(path.name).startswith("OUTCAR") else \
+        _sibling(path, "OUTCAR", ctx)
+    if outcar is not None:
+        try:
+            with Lines(outcar) as fh:
+                if fh.skip_to((_CONVERGED,)):
+                    return
+        except (OSError, *STREAM_ERRORS):
+            outcar = None
+    ctx.unfinished = (f"stopped at its step limit (VASP ran all NSW = {int(nsw)} ionic steps" + (
+        f" and its OUTCAR does not say '{_CONVERGED}')" if outcar is not None else
+        "; no OUTCAR beside it says whether the last converged)"))
+
+
 def _warn_at_end(fd, step, ctx):
     """A warning for a file without its closing timing section, or complete without a step."""
+    if fd.ended and step:
+        _at_step_limit(Path(fd.name), step, ctx)
     if not fd.ended:
         where = f"after step {step - 1} ({step} completed steps)" if step else \
             "before the first ionic step completed"
         extra = "; last line cut" if fd.cut else ""
-        ctx.warn(f"truncated {where}: no closing timing section{extra}; "
+        ctx.truncated(f"truncated {where}: no closing timing section{extra}; "
                  f"job killed or still running")
     elif not step:
         ctx.warn("the OUTCAR is complete but no ionic step has both a POSITION/TOTAL-FORCE "
@@ -673,7 +702,7 @@ def read_xdatcar(path, ctx: ReadContext):
         def cut(where):
             w = (f"after step {last_step} ({n_done} completed steps)" if n_done
                  else "before the first configuration completed")
-            ctx.warn(f"truncated {w}: file ends inside {where}; job killed or still running")
+            ctx.truncated(f"truncated {w}: file ends inside {where}; job killed or still running")
 
         while True:
             line = fh.readline()

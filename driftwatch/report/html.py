@@ -464,6 +464,9 @@ def _summary_section(rec):
                                 "verdict compares how the structure moved from the first frame "
                                 "to the last, not where a relaxation ended</span>")]
           if run.get("not_relaxation") else []),
+        *([("unfinished", f"{e(run['unfinished'])}<br><span class=\"muted\">the final structure "
+                          "is not a relaxed one: the verdict compares the first frame with where "
+                          "the run stopped</span>")] if run.get("unfinished") else []),
         ("kind", ("layer (2D lattice in the plane; vacuum along axis "
                   f"{e(geo.get('vacuum_axis'))})" if dim == 2 else "bulk (3D lattice)")
          + f"<br><span class=\"muted\">{e(geo.get('reason'))}</span>"),
@@ -746,6 +749,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
     levels = {code: FLAGS.get(code, "") for code in counts}
     n_flagged = sum(1 for _, r in recs if r.get("flags"))
     n_moving = sum(1 for _, r in recs if _camp.is_not_relaxation(r))
+    n_unfinished = sum(1 for _, r in recs if (r.get("run") or {}).get("unfinished"))
     verdicts = {}
     for _, r in recs:
         v = r["summary"]["verdict"]["direction"]
@@ -763,6 +767,9 @@ def _index_page(runs, bad, failed, campaign) -> str:
     ] + ([("not relaxations", f"{n_moving} <span class=\"muted\">(molecular dynamics, band "
                                "images, ...: their verdicts compare how the structure moved "
                                "from the first frame to the last)</span>")] if n_moving else [])
+      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short or stopped at their "
+                          "step limit: their final structures are not relaxed ones)</span>")]
+         if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(" = ".join(g)) for g in campaign["copies"][:10])
            + (" …" if len(campaign["copies"]) > 10 else "")
@@ -898,7 +905,9 @@ def _runs_table(runs, failed=(), skipped=()):
             f"{_td_num(r.get('n_frames'))}"
             f'<td data-v="{e(verdict)}">{_badge(verdict, f"v-{verdict}")}'
             + (f'<br><span class="muted" title="{e(r["not_relaxation"])}">not a relaxation</span>'
-               if r.get("not_relaxation") else "") + "</td>"
+               if r.get("not_relaxation") else "")
+            + (f'<br><span class="muted" title="{e(r["unfinished"])}">unfinished</span>'
+               if r.get("unfinished") else "") + "</td>"
             f"<td class=\"nowrap\" data-v=\"{e(v['lattice_initial'])} {e(v['lattice_final'])}\">"
             f"{e(v['lattice_initial'])} → <b>{e(v['lattice_final'])}</b></td>"
             f"<td>{e(v['drift_type'] or '')}</td>{_td_num(v['drift_initial'], 'Å')}"
