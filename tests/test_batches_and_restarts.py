@@ -647,3 +647,38 @@ def test_an_ase_molecular_dynamics_trajectory_says_it_is_no_relaxation(tmp_path)
     opt.attach(watch, interval=1)
     opt.run(fmax=0.05, steps=2)
     assert watch.record["run"]["not_relaxation"] is None
+
+
+def test_md_frames_written_without_a_description_are_told_by_their_momenta(tmp_path):
+    """A trajectory written frame by frame by another tool (as libAtoms' workflow writes its MD
+    snapshots: no description, atoms with momenta) holds a real VelocityVerlet EMT run here: its
+    momenta change from frame to frame, so it is molecular dynamics. A FIRE relaxation of atoms
+    that carry stale momenta (set before, left alone by the optimiser, as ASE's FIRE keeps its
+    velocities to itself) and a BFGS one written the same way stay relaxations."""
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.io.trajectory import Trajectory
+    from ase.md.velocitydistribution import MaxwellBoltzmannDistribution
+    from ase.md.verlet import VelocityVerlet
+    from ase.optimize import BFGS, FIRE
+    from ase import units
+    atoms = bulk("Cu", cubic=True).repeat(2)
+    atoms.rattle(0.05, seed=5)
+    atoms.calc = EMT()
+    MaxwellBoltzmannDistribution(atoms, temperature_K=300, rng=np.random.default_rng(1))
+    for name, dyn in (("md", VelocityVerlet(atoms, 2 * units.fs)),
+                      ("fire", FIRE(atoms, logfile=None)), ("bfgs", BFGS(atoms, logfile=None))):
+        with Trajectory(str(tmp_path / f"{name}.traj"), "w") as t:    # no description written
+            def snap():
+                t.write(atoms.copy())
+            dyn.attach(snap, interval=1)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                dyn.run(4) if name == "md" else dyn.run(fmax=1e-4, steps=4)
+        with Trajectory(str(tmp_path / f"{name}.traj")) as t:             # ASE's own reader
+            assert not t.description and len(t) == 5
+            p = [a.get_momenta() for a in t]
+        assert np.abs(p[0]).max() > 0 and (np.any(p[0] != p[1]) == (name == "md"))
+        run = read_run(tmp_path / f"{name}.traj")
+        assert run.not_relaxation == ("molecular dynamics (no class named; the frames' atomic "
+                                      "momenta change)" if name == "md" else None), name

@@ -151,8 +151,14 @@ def read_traj(path, ctx: ReadContext):
             ctx.settings.update({"code": "ase", "dynamics": str(desc.get("md-type") or "?")})
         n = len(traj)
         if name is None:
+            first = None
             for i in range(n):
-                yield frame_from_atoms(traj[i], i)
+                atoms = traj[i]
+                if i == 1 and not {"optimizer", "dynamics"} & set(ctx.settings) and \
+                        _moving(first, atoms):        # no description says what wrote it
+                    ctx.settings.update({"code": "ase", "dynamics": _MOMENTA})
+                first = atoms if i == 0 else first
+                yield frame_from_atoms(atoms, i)
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
@@ -161,6 +167,19 @@ def read_traj(path, ctx: ReadContext):
             yield frame_from_atoms(traj[i], j)
     finally:
         traj.close()
+
+
+_MOMENTA = "no class named; the frames' atomic momenta change"
+
+
+def _moving(a, b) -> bool:
+    """True when two frames carry atomic momenta that differ: the atoms moved with velocities
+    (dynamics). An ASE optimiser leaves momenta untouched (FIRE and MDMin keep their velocities to
+    themselves), so a relaxation's frames carry none, or the same stale ones throughout."""
+    import numpy as np
+    pa, pb = a.arrays.get("momenta"), b.arrays.get("momenta")
+    return pa is not None and pb is not None and pa.shape == pb.shape and \
+        bool(np.any(pa != pb))
 
 
 def read_extxyz(path, ctx: ReadContext):
