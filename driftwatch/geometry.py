@@ -166,8 +166,9 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     if len(big) > 1:
         raise NotPeriodicError(f"a molecule, cluster or wire in a box: vacuum on more than one "
                                f"axis (empty gaps {desc} Å; > geometry.vacuum_gap {gap:g} Å along "
-                               f"axes {big})", f"geometry.vacuum_gap: {bulk_gap(gaps[0]):.1f} (Å, "
-                                              f"in a config, -c) analyses its cell as bulk")
+                               f"axes {big})", f"a config (-c) with geometry.vacuum_gap: "
+                                              f"{bulk_gap(gaps[0]):.1f} Å analyses its cell as "
+                                              f"bulk")
     if not big:
         return Geometry(3, None, None, f"bulk: largest empty gaps {desc} Å, none above "
                                        f"{gap} Å{drift}", gaps[0])
