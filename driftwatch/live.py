@@ -799,9 +799,15 @@ class _Follower:
         final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
         self.say_warnings(t.warnings, final=True)
-        for fl in rules.select(final["flags"], self.stop_codes):
-            if _key(fl) not in {_key(x) for x in self.fired}:
-                self.fired.append(fl)
+        late = [fl for fl in rules.select(final["flags"], self.stop_codes)
+                if _key(fl) not in {_key(x) for x in self.fired}]
+        self.fired += late
+        if late and self.stop_info is None:        # held only with the job's end counted
+            names = ", ".join(f"{fl['code']} (from step {fl['step']})" for fl in late)
+            steps = self.cfg["rules"]["persistence"]["steps"]
+            self.say(f"driftwatch: {names} holds once the job's end counts, not for the {steps} "
+                     f"steps a change must hold while it runs (rules.persistence.steps): no stop "
+                     f"was requested")
         if self.ended.startswith("end marker") and self.stop_info:
             self._tidy_stop_file()
         final["live"] = self.live_section()

@@ -607,3 +607,37 @@ def test_lattice_steps_fire_as_the_full_record_does(tmp_path, cell):
     (f1, fl1, mid1, end1), (f2, fl2, mid2, end2) = got["lattice"], got["full"]
     assert f1 == f2 and fl1 == fl2 and fl1                        # the same flags, same steps
     assert same(mid1, mid2) and same(end1, end2)
+
+
+def test_follow_says_when_a_stop_condition_held_only_once_the_job_ended(tmp_path):
+    """A real pw.x output (tests/data/qe/bulk_tetragonal_to_cubic: the lattice reaches cF at step 6
+    of 9) written while it is followed: its last 3 steps are fewer than the 10 a change must hold
+    while the job runs, so no stop is asked for; once the job's end counts the flag holds, and the
+    follower says so instead of ending silently."""
+    import threading
+    src = Path(__file__).parent / "data" / "qe" / "bulk_tetragonal_to_cubic"
+    ref = analyze(src / "pw.out")
+    assert [(f["code"], f["step"]) for f in ref["flags"] if f["code"] == "lattice-gained"] == \
+        [("lattice-gained", 6)] and ref["run"]["n_frames"] == 9
+    (tmp_path / "run").mkdir()
+    shutil.copy(src / "pw.in", tmp_path / "run")
+    text = (src / "pw.out").read_text()
+    cut = text.index("     PWSCF        :")
+    out = tmp_path / "run" / "pw.out"
+    out.write_text(text[:cut])
+
+    def finish():
+        with open(out, "a") as fh:
+            fh.write(text[cut:])
+    timer = threading.Timer(1.0, finish)
+    timer.start()
+    buf = io.StringIO()
+    try:
+        rec = follow(out, stream=buf, poll=0.05, idle=30, stop_on=["lattice-gained"], dry_run=True)
+    finally:
+        timer.join()
+    assert rec["live"]["ended"].startswith("end marker") and rec["live"]["stop"] is None
+    assert [f["code"] for f in rec["live"]["fired"]] == ["lattice-gained"]
+    assert ("driftwatch: lattice-gained (from step 6) holds once the job's end counts, not for the "
+            "10 steps a change must hold while it runs (rules.persistence.steps): no stop was "
+            "requested") in buf.getvalue()
