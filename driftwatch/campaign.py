@@ -900,6 +900,18 @@ def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[s
     return sorted(rows, key=lambda x: x[0])
 
 
+def counts_text(summary: dict) -> str:
+    """The audit's runs in one line, parts that add up: "48 runs: 36 with a verdict, 9 failed, 3
+    skipped (46 read now, 0 from the cache, 2 failed before reading)" (the terminal and the
+    report's index)."""
+    n_fail, n_skip = len(summary["failed"]), len(summary.get("skipped") or ())
+    unread = summary["runs"] - summary["analysed"] - summary["cached"]  # failed at discovery
+    return (f"{summary['runs']} runs: {summary['runs'] - n_fail - n_skip} with a verdict, "
+            f"{n_fail} failed" + (f", {n_skip} skipped" if n_skip else "")
+            + f" ({summary['analysed']} read now, {summary['cached']} from the cache"
+            + (f", {unread} failed before reading" if unread else "") + ")")
+
+
 def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     head = _TABLE_HEAD
     shown = rows
@@ -923,13 +935,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
               "first frame with a structure that is not a relaxed one", file=stream)
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
-    skipped = f", {len(summary['skipped'])} skipped" if summary.get("skipped") else ""
-    n_fail, n_skip = len(summary["failed"]), len(summary.get("skipped") or ())
-    unread = summary["runs"] - summary["analysed"] - summary["cached"]  # failed at discovery
-    print(f"\n{summary['runs']} runs: {summary['runs'] - n_fail - n_skip} with a verdict, "
-          f"{n_fail} failed{skipped} ({summary['analysed']} read now, {summary['cached']} from the "
-          f"cache{f', {unread} failed before reading' if unread else ''}) in "
-          f"{summary['elapsed_s']:.1f} s", file=stream)
+    print(f"\n{counts_text(summary)} in {summary['elapsed_s']:.1f} s", file=stream)
     print(f"verdicts: {vc}", file=stream)
     print(f"flags (runs): {fc}", file=stream)
     if summary.get("copies"):

@@ -1332,6 +1332,8 @@ def test_copies_of_a_run_folder_are_named(tmp_path):
             "counted above once per copy") in proc.stdout
     index = (tmp_path / "out" / "report" / "index.html").read_text()
     assert "copies (runs that read the same frames)" in index and "camp/run = camp/run_bk" in index
+    said = "3 runs: 3 with a verdict, 0 failed (3 read now, 0 from the cache)"   # one line, twice
+    assert f"\n{said} in " in proc.stdout and f"audit summary</th><td>{said}</td>" in index
     again = _quiet_audit([camp], tmp_path / "out", workers=1)
     assert again["cached"] == 3 and again["copies"] == summary["copies"]
 

@@ -775,8 +775,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
            + (" …" if len(campaign["copies"]) > 10 else "")
            + '<br><span class="muted">each copy counts as a run of its own above</span>')]
          if isinstance(campaign, dict) and campaign.get("copies") else [])
-      + ([("audit summary", e(", ".join(f"{k.replace('_', ' ')} {campaign[k]}" for k in
-                                         ("runs", "analysed", "cached") if k in campaign)))]
+      + ([("audit summary", e(_counts_text(campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])))
     parts.append(_campaign_tolerance(tol, adv, {n: lab for n, lab, _, _ in runs}))
     pts = charts.scatter_points((label, f"runs/{quote(name)}.html", r) for name, label, r, _ in runs)
@@ -812,6 +811,17 @@ def _index_page(runs, bad, failed, campaign) -> str:
     parts.append(_problems(bad, failed, skipped))
     parts.append(_how_to_read())
     return _page("driftwatch campaign report", header, "".join(parts), script=True)
+
+
+def _counts_text(campaign: dict) -> str:
+    """The audit's own line of counts (``campaign.counts_text``); a summary of another layout
+    gives its three numbers as they are."""
+    from ..campaign import counts_text
+    try:
+        return counts_text(campaign)
+    except (KeyError, TypeError):
+        return ", ".join(f"{k} {campaign[k]}" for k in ("runs", "analysed", "cached")
+                         if k in campaign)
 
 
 def _audit_advice(recs, common):
