@@ -541,59 +541,45 @@ def _finish_tree(rundir: Path, final_dir: Path) -> list[Path]:
     return sorted(p for p in final_dir.rglob("*") if p.is_file())
 
 
-def make_restart_numbered(out_root: Path, np_: int) -> dict:
+def _al_restart(out_root: Path, np_: int, name: str, appended: bool) -> dict:
     """An Al vc-relax (bct start, c/a 1.08) stopped after 3 ionic steps (nstep = 3), then continued
-    with restart_mode='restart' into a new output; the first output is kept as ``pw.out.1`` (the
-    numbered copy a job script leaves), ``pw.in`` is the restart input as the user left it."""
+    with restart_mode='restart'; ``pw.in`` is the restart input as the user left it. The first
+    output is kept as ``pw.out.1`` beside the restart's ``pw.out`` (a job script's numbered copy),
+    or, ``appended``, the restart is appended to it (``pw.x < pw.in >> pw.out``)."""
     tree = out_root / "tests/data/qe"
-    run = QERun(name="restart_numbered", tree="tests/data/qe", calculation="vc-relax",
+    run = QERun(name=name, tree="tests/data/qe", calculation="vc-relax",
                 cell=fcc_primitive(4.00, 4.32), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
                 kpts=(8, 8, 8, 0, 0, 0), system={**CONSTANT_CUTOFF},
                 control={"nstep": 3, "disk_io": "low"})
-    rundir = tree / ".restart_numbered.partial"
+    rundir = tree / f".{name}.partial"
     shutil.rmtree(rundir, ignore_errors=True)
     rundir.mkdir(parents=True)
     t0 = time.time()
     (rundir / "pw.in").write_text(pw_input(run))
-    first = _pw(rundir, "pw.in", "pw.out.1", np_)
+    first = _pw(rundir, "pw.in", "pw.out" if appended else "pw.out.1", np_)
     if "The maximum number of steps has been reached" not in first:
-        raise RuntimeError("restart_numbered: stage 1 was meant to stop at nstep")
+        raise RuntimeError(f"{name}: the first run was meant to stop at nstep")
     run.control = {"nstep": 80, "disk_io": "low", "restart_mode": "restart"}
     (rundir / "pw.in").write_text(pw_input(run))
     time.sleep(1.1)                    # a later start time, to the second pw.x prints
-    _pw(rundir, "pw.in", "pw.out", np_)
-    files = _finish_tree(rundir, tree / "restart_numbered")
-    return {"name": "restart_numbered", "wall_s": round(time.time() - t0, 1),
-            "file": str((tree / "restart_numbered").relative_to(out_root)),
+    second = _pw(rundir, "pw.in", "pw.out.2" if appended else "pw.out", np_)
+    if appended:
+        (rundir / "pw.out").write_text(first + second)
+        (rundir / "pw.out.2").unlink()
+    files = _finish_tree(rundir, tree / name)
+    return {"name": name, "wall_s": round(time.time() - t0, 1),
+            "file": str((tree / name).relative_to(out_root)),
             "bytes": sum(f.stat().st_size for f in files)}
+
+
+def make_restart_numbered(out_root: Path, np_: int) -> dict:
+    """:func:`_al_restart` into two outputs, ``pw.out.1`` and ``pw.out``."""
+    return _al_restart(out_root, np_, "restart_numbered", appended=False)
 
 
 def make_restart_appended(out_root: Path, np_: int) -> dict:
-    """The run of :func:`make_restart_numbered`, its restart appended to the same output (a job
-    script's ``pw.x < pw.in >> pw.out``): one ``pw.out`` holding both runs."""
-    tree = out_root / "tests/data/qe"
-    run = QERun(name="restart_appended", tree="tests/data/qe", calculation="vc-relax",
-                cell=fcc_primitive(4.00, 4.32), symbols=["Al"], frac=np.array([[0.0, 0.0, 0.0]]),
-                kpts=(8, 8, 8, 0, 0, 0), system={**CONSTANT_CUTOFF},
-                control={"nstep": 3, "disk_io": "low"})
-    rundir = tree / ".restart_appended.partial"
-    shutil.rmtree(rundir, ignore_errors=True)
-    rundir.mkdir(parents=True)
-    t0 = time.time()
-    (rundir / "pw.in").write_text(pw_input(run))
-    first = _pw(rundir, "pw.in", "pw.out", np_)
-    if "The maximum number of steps has been reached" not in first:
-        raise RuntimeError("restart_appended: the first run was meant to stop at nstep")
-    run.control = {"nstep": 80, "disk_io": "low", "restart_mode": "restart"}
-    (rundir / "pw.in").write_text(pw_input(run))
-    time.sleep(1.1)
-    second = _pw(rundir, "pw.in", "pw.out.2", np_)
-    (rundir / "pw.out").write_text(first + second)
-    (rundir / "pw.out.2").unlink()
-    files = _finish_tree(rundir, tree / "restart_appended")
-    return {"name": "restart_appended", "wall_s": round(time.time() - t0, 1),
-            "file": str((tree / "restart_appended").relative_to(out_root)),
-            "bytes": sum(f.stat().st_size for f in files)}
+    """:func:`_al_restart` into one ``pw.out`` holding both runs."""
+    return _al_restart(out_root, np_, "restart_appended", appended=True)
 
 
 def make_restart_stage_folders(out_root: Path, np_: int) -> dict:
