@@ -205,9 +205,9 @@ def read_extxyz(path, ctx: ReadContext):
 
     def truncated(n, how):
         where = f"after frame {n - 1} ({n} frames)" if n else "inside the first frame"
-        ctx.truncated(f"truncated {where}: " + (f"the file ends inside frame {n}" if how == "frame"
-                                           else "the last line is cut")
-                 + "; still being written or cut")
+        ctx.truncated(f"truncated {where}: " + (f"the file ends inside frame {n}"
+                                                if how == "frame" else "the last line is cut")
+                      + "; still being written or cut")
 
     # batch.extxyz_frames yields (n, comment, line number, lines) per complete frame, then
     # (None, frames read, "frame" | "line", None) when the file ends abnormally

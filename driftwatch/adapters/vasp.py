@@ -676,7 +676,8 @@ def _at_step_limit(path: Path, steps: int, ctx) -> None:
 
 
 def _warn_at_end(fd, step, ctx):
-    """A warning for a file without its closing timing section, or complete without a step."""
+    """A warning for a file without its closing timing section, or complete without a step; a
+    complete one that ran all its NSW steps is marked unfinished (:func:`_at_step_limit`)."""
     if fd.ended and step:
         _at_step_limit(Path(fd.name), step, ctx)
     if not fd.ended:
