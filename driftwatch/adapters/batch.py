@@ -256,6 +256,27 @@ def comment_info(comment: str, wanted) -> dict:
     return out
 
 
+_NUMBER = re.compile(r"[-+]?(\d+\.\d*|\.\d+|\d+(?=[eE]))([eE][-+]?\d+)?")   # a measured value
+_NOT_NAMES = {"Lattice", "Properties", "pbc"}
+
+
+def varying_keys(path, limit: int = 5000) -> list[tuple[str, int]]:
+    """Comment-line keys of an extended XYZ file whose values vary among its first ``limit``
+    frames, with their numbers of values: the keys that could name its structures, names before
+    integers, most values first (real numbers, such as energies, arrays, the cell and the columns
+    are left out)."""
+    values: dict = {}
+    for n, comment, _, _ in extxyz_frames(path):
+        if n is None or n >= limit:
+            break
+        for k, v in _PAIR.findall(comment):
+            v = v[1:-1] if v[:1] in "\"'" else v
+            if k not in _NOT_NAMES and not _NUMBER.fullmatch(v) and not any(c.isspace() for c in v):
+                values.setdefault(k, set()).add(v)
+    counted = [(k, len(s), all(x.lstrip("+-").isdigit() for x in s)) for k, s in values.items()]
+    return [(k, n) for k, n, _ in sorted(counted, key=lambda x: (x[2], -x[1])) if n > 1]
+
+
 MEMO_BYTES = 64 << 20
 """Extended XYZ files up to this many bytes (decompressed) keep their frames' lines in memory after
 the index pass, so that reading each of their structures does not scan the file again."""

@@ -613,7 +613,8 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
         if fmt.members is None:
             raise
         raise AtomsChangeError(source, f"{exc.problem}; " + _not_one_run(
-            ctx, fmt_name in ("ase-db", "ase-json-db"))) from None
+            ctx, fmt_name in ("ase-db", "ase-json-db"))
+            + (_keys_that_vary(base, ctx.structure) if fmt_name == "extxyz" else "")) from None
     except DriftwatchError:
         raise
     except Exception as exc:
@@ -624,6 +625,19 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             raise InputError(source, f"cannot be read as {what}: "
                                      f"{type(exc).__name__}: {why}") from exc
         ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})")
+
+
+def _keys_that_vary(path, structure: dict | None) -> str:
+    """The extended XYZ keys that could name the file's structures (other than the one that named
+    this structure), said in words (or "")."""
+    from .batch import varying_keys
+    used = (structure or {}).get("key")
+    try:
+        keys = [(k, n) for k, n in varying_keys(path) if k != used][:4]
+    except (DriftwatchError, OSError):
+        return ""
+    return ("; keys whose value changes between frames: "
+            + ", ".join(f"{k} ({n} values)" for k, n in keys)) if keys else ""
 
 
 def _not_one_run(ctx: ReadContext, rows: bool) -> str:
