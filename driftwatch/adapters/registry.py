@@ -275,8 +275,20 @@ def _detect_file(path: Path) -> str:
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
             return f.name
-    raise UnknownFormatError(path, f"unknown format (known formats: {_known()}; choose one with "
-                                   f"--format NAME, or format= in Python)")
+    seen = next((what for pattern, what in _NOT_TRAJECTORIES if pattern.search(head)), None)
+    raise UnknownFormatError(path, (f"{seen}, not a file of ionic steps; " if seen else "")
+                             + f"unknown format (known formats: {_known()}; choose one with "
+                               f"--format NAME, or format= in Python)")
+
+
+# Files of the trade that are no trajectory, said by name when a user passes one (their first lines
+# as the codes write them: common practice)
+_NOT_TRAJECTORIES = (
+    (re.compile(rb"^\s*&control\b", re.I | re.M), "a pw.x input (pass its output, or the run folder)"),
+    (re.compile(rb"Program PHONON\b"), "a Quantum ESPRESSO ph.x output (phonons)"),
+    (re.compile(rb"^\s*(ISIF|IBRION|NSW|ENCUT|PREC|EDIFF)\s*=", re.I | re.M),
+     "a VASP INCAR (pass the run folder)"),
+)
 
 
 @dataclass
