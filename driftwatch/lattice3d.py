@@ -147,7 +147,7 @@ from .errors import LatticeError
 __all__ = [
     "KAPPA", "TYPES", "SYSTEMS", "SPECIALISES", "selling_reduce", "conorms", "fano_conorms",
     "root_products", "fano_roots", "distances", "deformation", "system_distances",
-    "lattice_distance", "most_specific", "invariants",
+    "lattice_distance", "most_specific", "invariants", "deformation_and_size",
 ]
 
 TYPES = ("mP", "mS", "oP", "oS", "oI", "oF", "tP", "tI", "hR", "hP", "cP", "cI", "cF")
@@ -841,6 +841,16 @@ def deformation(bases, metric="l2"):
     _check_metric(metric)
     v, p, single = _superbase(bases)
     return _type_dict(_deformation(v, p, metric), single)
+
+
+def deformation_and_size(bases, metric="l2"):
+    """:func:`deformation` and the lattice's size (Å, (n,)) from one Selling reduction. The size
+    is sqrt of the sum of the six conorms, sqrt((|v0|^2 + ... + |v3|^2) / 2) of the obtuse
+    superbase: invariant under rotation, reflection and change of basis, proportional to a uniform
+    scaling (what makes the deformation's changes comparable across a cell that shrinks)."""
+    _check_metric(metric)
+    v, p, single = _superbase(bases)
+    return _type_dict(_deformation(v, p, metric), single), _out(np.sqrt(p.sum(axis=1)), single)
 
 
 def system_distances(bases, metric="l2"):

@@ -26,7 +26,8 @@ code                concerns   raised when
 lattice-gained      lattice    the lattice ends holding a Bravais type it started clearly away from
 lattice-lost        lattice    the lattice ends clearly away from a type it held at the start
 lattice-changed     lattice    both at once: it left one type and reached another (sideways)
-lattice-nearing     lattice    the deformation to a type fell by ``nearing_fraction`` without reaching it
+lattice-nearing     lattice    the deformation to a type fell by ``nearing_fraction`` (against the
+                               lattice's size) without reaching it
 passed-through      lattice    a type was held for a stretch of the run, then left again
 handedness-flip     lattice    a layer's 2D lattice ends with the opposite handedness, clearly chiral at
                                both ends (it passed through a mirror-symmetric lattice)
@@ -251,9 +252,12 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
                "frames": b - a + 1}
               for t, a, b in _stretches(states)[1:-1]
               if t != _LOWEST[dim] and D[t][-1] > within and D[t][0] > within]
-    # a type approached without being reached (beyond the gained one: L ends oc, nearing hp)
+    # a type approached without being reached (beyond the gained one: L ends oc, nearing hp), the
+    # deformation measured against the lattice's size: a cell that only shrinks nears nothing
+    s0, s1 = _size(frames[0]), _size(frames[-1])
+    shrink = s1 / s0 if s0 and s1 else 1.0
     cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
-            and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0]
+            and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink
             and (g is None or (t != g and generalises(g, t)))]
     nearing = min(cand, key=lambda t: (D[t][-1], -ORDER[t])) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
@@ -288,6 +292,16 @@ def _handedness(frames, r):
     k = int(np.nonzero(sign != last)[0][-1] + 1)
     return {"initial": int(sign[sig[0]]), "final": last, "frame": k,
             "mirror_initial": float(chiral[sig[0]]), "mirror_final": float(chiral[-1])}
+
+
+def _size(frame) -> float | None:
+    """The lattice's size (Å; :func:`driftwatch.lattice3d.deformation_and_size`) from a frame's
+    root invariants (sqrt of the sum of their squares: of the conorms), or its ``size``; None when
+    the frame holds neither (a record of another layout)."""
+    if "size" in frame:
+        return float(frame["size"])
+    roots = frame.get("root_products", frame.get("root_invariant"))
+    return float(np.sqrt(np.sum(np.square(roots)))) if roots is not None else None
 
 
 def _lattice_flags(frames, lv, D, r):

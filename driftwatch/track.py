@@ -322,9 +322,10 @@ class FrameTable:
         if start >= len(frames):
             return
         new = frames[start:]
-        dfm = lattice3d.deformation(np.array([f.cell for f in new], float), metric=metric)
+        dfm, size = lattice3d.deformation_and_size(np.array([f.cell for f in new], float),
+                                                   metric=metric)
         cols = {t: np.asarray(v, float).tolist() for t, v in dfm.items()}
-        self.entries += [{"index": start + j, "step": int(f.step),
+        self.entries += [{"index": start + j, "step": int(f.step), "size": float(size[j]),
                           "deformation": {t: v[j] for t, v in cols.items()}}
                          for j, f in enumerate(new)]
         self._append(dfm, start)

@@ -713,3 +713,25 @@ def test_one_frame_at_a_time_equals_the_batch(metric):
                 x = v[t][s:e] if t is not None else v[s:e]
                 y = got[t] if t is not None else got
                 assert np.array_equal(x, y), (k, t, s, e)
+
+
+@settings(max_examples=40, deadline=None, database=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(st.integers(0, 10**6), st.sampled_from(ALL14), st.booleans(),
+       st.floats(0.2, 5.0))
+def test_size_is_invariant_and_scales_with_the_cell(seed, kind, reflect, factor):
+    """deformation_and_size: the same deformation as deformation(); the size (sqrt of the conorms'
+    sum) unchanged by rotation, mirror and a unimodular change of basis, times ``factor`` for the
+    cell times ``factor``, equal to sqrt((|v0|^2 + ... + |v3|^2) / 2) of the obtuse superbase (the
+    identity |v_i|^2 = sum_j p_ij of a superbase: common practice, math.md)."""
+    rng = np.random.default_rng(seed)
+    basis = B.random_lattice(kind, rng)
+    u = B.random_unimodular(rng, target=30)
+    other = u @ basis @ B.random_rotation(rng, reflect).T
+    (f0, s0), (f1, s1) = L.deformation_and_size(basis), L.deformation_and_size(other)
+    ref = L.deformation(basis)
+    assert all(f0[t] == ref[t] for t in L.TYPES)
+    v = L.selling_reduce(basis)
+    assert s0 == pytest.approx(np.sqrt((v ** 2).sum() / 2), rel=1e-12)
+    assert s1 == pytest.approx(s0, rel=1e-9)
+    assert L.deformation_and_size(factor * basis)[1] == pytest.approx(factor * s0, rel=1e-12)

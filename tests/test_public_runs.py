@@ -310,11 +310,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 32
+    assert summary["failed"] == [] and summary["runs"] == 33
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert ("32 runs: 30 with a verdict, 0 failed, 2 skipped (32 read now, 0 from the cache)"
+    assert ("33 runs: 31 with a verdict, 0 failed, 2 skipped (33 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
     assert ("not relaxations: 12 runs (finite differences 1, molecular dynamics 3, "
@@ -1488,3 +1488,27 @@ def test_a_file_of_the_trade_that_holds_no_steps_is_named(path, said):
         read_run(path)
     assert f"{said}, not a file of ionic steps; unknown format" in str(err.value)
     assert "\n" not in str(err.value)
+
+
+def test_a_cell_that_only_shrinks_nears_no_type():
+    """custodian's genuine nonconv folder: POSCAR and CONTCAR of one fcc Si cell, the second the
+    first scaled by 0.4994 (same shape; spglib: Fd-3m at both ends). Every deformation halves with
+    the cell, which once read as 'lattice-nearing hP (50 % of the way)'; measured against the
+    lattice's size nothing is neared. A layer that really nears a type still flags it (the bundled
+    L02 run: a real pw.x vc-relax of an invented layer, its cell nearly constant in size)."""
+    import spglib
+    from driftwatch import analyze
+    folder = PUB / "custodian_nonconv"
+    run = read_run(folder)
+    assert run.kind == "end-points" and len(run) == 2
+    ratio = run.cells[1] / np.where(run.cells[0] == 0, np.nan, run.cells[0])
+    assert np.nanmax(np.abs(ratio - 0.49935)) < 1e-4                       # the same shape
+    for c, p in zip(run.cells, run.positions):
+        cell = (c, np.linalg.solve(c.T, p.T).T, run.numbers)
+        assert spglib.get_symmetry_dataset(cell, symprec=1e-3).number == 227    # spglib
+    rec = analyze(run)
+    assert rec["flags"] == [] and rec["summary"]["verdict"]["direction"] == "kept"
+    assert rec["summary"]["verdict"]["lattice"]["nearing"] is None
+    near = analyze(REPO / "example_runs" / "L02_qe_vcrelax")
+    assert near["summary"]["verdict"]["lattice"]["nearing"] == "oc"
+    assert "lattice-nearing" in {f["code"] for f in near["flags"]}
