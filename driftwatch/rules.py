@@ -535,9 +535,16 @@ def _held_by_code(record, frames, sv):
     if ops <= floor:
         return []
     k = len(frames) - 1
-    msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}), but the "
-           f"code could not have lowered it, so 'kept' is not a test of that symmetry; rerun with "
-           f"{info['undo']} (and a slightly displaced start) to test it")
+    held = info.get("operations")
+    if held is not None and held < ops:      # the code held a subgroup (e.g. magnetic moments)
+        msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}, {ops} "
+               f"operations), of which the code held {held}: it could not have lowered the group "
+               f"below those, so 'kept' tests only the other {ops - held}; rerun with "
+               f"{info['undo']} (and a slightly displaced start) to test them all")
+    else:
+        msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}), but "
+               f"the code could not have lowered it, so 'kept' is not a test of that symmetry; "
+               f"rerun with {info['undo']} (and a slightly displaced start) to test it")
     return [_flag("held-by-code", k, frames, msg, None, info.get("operations"), None)]
 
 
