@@ -170,7 +170,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             pass
         elif kind == "inputs":    # failed unless a run lies below it (discover decides)
             yield {"run": rid, "source": str(folder), "inputs_only": True,
-                   "error": f"{folder}: {inputs_only_problem(*got, folder)}"}
+                   "error": f"{folder}: {inputs_only_problem(got, folder)}"}
         elif kind in ("run", "ambiguous"):      # an ambiguous folder fails as one run, saying why
             if real not in seen_runs:
                 seen_runs.add(real)

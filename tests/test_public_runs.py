@@ -1531,3 +1531,22 @@ def test_held_by_code_says_when_the_code_held_only_a_subgroup():
     (flag,) = [f for f in analyze(run)["flags"] if f["code"] == "held-by-code"]
     assert ("the run kept P6_3/mmc (194, 24 operations), of which the code held 8: it could not "
             "have lowered the group below those, so 'kept' tests only the other 16") in flag["message"]
+
+
+def test_a_vasp_job_that_ran_but_left_no_structures_says_what_it_left(tmp_path):
+    """custodian's genuine positive_energy and zpotrf folders: VASP ran (an OSZICAR with a
+    completed step 'F=', or its standard output ending 'LAPACK: Routine ZPOTRF failed!') but left
+    no vasprun.xml, OUTCAR or XDATCAR. The failed run says what the folder shows instead of 'a job
+    not run yet'."""
+    stopped = PUB / "broken" / "custodian_stopped"
+    assert " F= " in (stopped / "positive_energy" / "OSZICAR").read_text()
+    assert (stopped / "zpotrf" / "vasp.out").read_text().rstrip().endswith(
+        "LAPACK: Routine ZPOTRF failed!")
+    s = _quiet_audit([stopped], tmp_path / "out", workers=1)
+    errors = {f["run"]: f["error"] for f in s["failed"]}
+    pos = errors["custodian_stopped/positive_energy"]
+    assert "its OSZICAR holds 1 ionic step (energies, not structures)" in pos
+    assert "not run yet" not in pos and "\n" not in pos
+    assert "vasp.out ends with 'LAPACK: Routine ZPOTRF failed!'" in errors["custodian_stopped/zpotrf"]
+    with pytest.raises(InputError, match="its OSZICAR holds 1 ionic step"):
+        read_run(stopped / "positive_energy")

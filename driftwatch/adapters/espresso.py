@@ -729,7 +729,8 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     got = [n for n in names if _is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)]
     crash = crash_message(folder, names, ctx)
     if crash:          # pw.x wrote its CRASH file, and no output holds an ionic step
-        return f"pw.x crashed ({crash}) and left no pw.x output with an ionic step", got + ["CRASH"]
+        return (f"pw.x crashed ({crash}) and left no pw.x output with an ionic step",
+                got + ["CRASH"], True)
     if not got:
         return None
     what = "a pw.x input" if len(got) == 1 else "pw.x inputs"

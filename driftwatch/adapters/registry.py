@@ -109,9 +109,10 @@ class Code:
       relaxation (molecular dynamics, finite differences, ...), None for a relaxation or unknown.
     * ``cell_free(code_settings) -> str | None``: the setting that let the cell change, in words
       (``"ISIF = 3"``), None when the cell was held or nothing is known.
-    * ``inputs_only(folder, names, ctx) -> (str, [names]) | None``: for a folder ``folder`` did not
-      claim, whether it holds the code's job inputs and no output (a job not run yet, or stopped
-      before writing): what it holds, in words, and those files.
+    * ``inputs_only(folder, names, ctx) -> (str, [names][, ran]) | None``: for a folder ``folder``
+      did not claim, whether it holds the code's job inputs and no output (a job not run yet, or
+      stopped before writing): what it holds, in words, and those files; ``ran`` True when the
+      folder shows the job ran (a crash file, a log) and the words say how.
     * ``band(folder, names, ctx) -> (str, [names]) | None``: whether ``folder`` is the parent of a
       calculation of many images each run in a subfolder of its own (VASP's nudged elastic band):
       why it is no run, in words, and the subfolders that are the band's fixed inputs rather than
@@ -477,7 +478,7 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
             beside = outputs_beside(folder)
             if beside:
                 return "inputs-of", _inputs_of_why(folder, beside)
-            return "inputs", (got[0], [n for n in files if file_size(folder / n)])
+            return "inputs", (got[0], [n for n in files if file_size(folder / n)], *got[2:])
     return "files", files
 
 
@@ -545,10 +546,13 @@ def _is_file(entry) -> bool:
         return False
 
 
-def inputs_only_problem(what: str, readable, folder) -> str:
-    """The one-line problem of a folder of job inputs and no output (``scan_folder``'s "inputs")."""
+def inputs_only_problem(got: tuple, folder) -> str:
+    """The one-line problem of a folder of job inputs and no output: ``got`` is ``scan_folder``'s
+    ``(what, readable files[, ran])`` of "inputs"; ``ran``: the folder shows the job ran (a crash
+    file, a log), and ``what`` says how."""
+    what, readable, ran = (*got, False)[:3]
     also = f"; pass {Path(folder) / readable[0]} to read that structure alone" if readable else ""
-    if what.startswith("pw.x crashed"):      # the code's own word on why (its CRASH file)
+    if ran:
         return f"{what}{also}"
     return f"{what}: a job not run yet, or one that stopped before writing an ionic step{also}"
 
@@ -561,7 +565,7 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
     if kind == "run":
         return _Pick(list(got.stages), path, tuple(got.warnings))
     if kind == "inputs":
-        raise InputError(path, inputs_only_problem(*got, path))
+        raise InputError(path, inputs_only_problem(got, path))
     if kind == "band":
         raise NotARunError(path, got[0])
     if kind == "inputs-of":

@@ -1075,6 +1075,10 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     empty = [n for n in names
              if strip_compression(n) == "CONTCAR" and not file_size(Path(folder) / n)]
     no_output = "no VASP output (vasprun.xml, OUTCAR, XDATCAR or a non-empty CONTCAR)"
+    said = _what_vasp_left(Path(folder), names)
+    if said and any(strip_compression(n) == "INCAR" for n in got):     # it ran, and says so
+        return f"VASP inputs ({', '.join(got)}) and no VASP output of structures: {said}", \
+            got + empty, True
     if not any(strip_compression(n) == "INCAR" for n in got):
         member = _band_member(folder) if got else None
         if member is None or member[1] in (0, member[0]["images"] + 1):
@@ -1084,6 +1088,36 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
                 f"IMAGES = {member[0]['images']}) with {', '.join(got)} and {no_output}",
                 got + empty)
     return f"VASP inputs ({', '.join(got)}) and {no_output}", got + empty
+
+
+_VASP_FAILED = re.compile(r"error|failed|bad news", re.I)
+
+
+def _what_vasp_left(folder: Path, names) -> str | None:
+    """What a folder with no VASP output of structures shows of a job that ran: an OSZICAR's
+    ionic steps ("N F=" lines: energies, no structures) and the last error line of VASP's standard
+    output (``vasp.out``: "LAPACK: Routine ZPOTRF failed!"), in words; None when neither."""
+    parts = []
+    oszicar = next((n for n in names if strip_compression(n) == "OSZICAR"), None)
+    if oszicar is not None:
+        try:
+            with Lines(folder / oszicar) as fh:
+                steps = sum(1 for line in fh if " F= " in line)
+        except (OSError, *STREAM_ERRORS):
+            steps = 0
+        if steps:
+            parts.append(f"its OSZICAR holds {steps} ionic step{'s' if steps > 1 else ''} (energies, "
+                         f"not structures)")
+    log = next((n for n in names if strip_compression(n) == "vasp.out"), None)
+    if log is not None:
+        try:
+            with Lines(folder / log) as fh:
+                bad = [line.strip() for line in fh if _VASP_FAILED.search(line)]
+        except (OSError, *STREAM_ERRORS):
+            bad = []
+        if bad:
+            parts.append(f"{log} ends with {' '.join(bad[-1].split())[:160]!r}")
+    return "; ".join(parts) or None
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
