@@ -542,6 +542,27 @@ def _ase_neb(path: Path, optimise: bool = True) -> int:
     return len(images)
 
 
+def test_a_band_of_images_written_whole_is_no_relaxation(tmp_path):
+    """A band written once as a list of images (as fairchem's CatTSunami tutorial ships its
+    sample_traj.traj): the end points carry no energy, the images between them do. Made here by a
+    real ASE NEB (EMT), its optimised images written with ase.io.write, the end points as plain
+    copies: one run, marked a band of images (the band's own optimiser trajectory reads as its
+    moving images, below)."""
+    from ase.io.trajectory import Trajectory
+    _ase_neb(tmp_path / "opt.traj")
+    with Trajectory(str(tmp_path / "opt.traj")) as t:
+        band = [t[i] for i in range(len(t) - 5, len(t))]          # the last step's five images
+    ase.io.write(tmp_path / "band.traj", [band[0].copy()] + band[1:-1] + [band[-1].copy()])
+    with Trajectory(str(tmp_path / "band.traj")) as t:                    # ASE's own reader
+        has = [a.calc is not None for a in t]
+    assert has == [False, True, True, True, False]
+    run = read_run(tmp_path / "band.traj")
+    assert len(run) == 5 and run.not_relaxation.startswith(
+        "a band of images (its end points carry no energy, the images between them do")
+    assert read_run(tmp_path / "opt.traj::image01").not_relaxation.startswith(
+        "a nudged-elastic-band image")
+
+
 def test_an_ase_neb_trajectory_is_read_as_its_moving_images(tmp_path):
     """A band's trajectory read as one run was a trajectory jumping between images every frame (a
     'group-lost' verdict between the two end points). Each moving image is now a run of its own,

@@ -151,14 +151,20 @@ def read_traj(path, ctx: ReadContext):
             ctx.settings.update({"code": "ase", "dynamics": str(desc.get("md-type") or "?")})
         n = len(traj)
         if name is None:
-            first = None
+            first, energies = None, []
             for i in range(n):
                 atoms = traj[i]
                 if i == 1 and not {"optimizer", "dynamics"} & set(ctx.settings) and \
                         _moving(first, atoms):        # no description says what wrote it
                     ctx.settings.update({"code": "ase", "dynamics": _MOMENTA})
                 first = atoms if i == 0 else first
-                yield frame_from_atoms(atoms, i)
+                fr = frame_from_atoms(atoms, i)
+                energies.append(fr.energy)
+                yield fr
+            if not desc and len(energies) >= 3 and energies[0] is None and \
+                    energies[-1] is None and None not in energies[1:-1]:
+                ctx.settings["band_path"] = ("its end points carry no energy, the images between "
+                                             "them do: a path of images written whole")
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"

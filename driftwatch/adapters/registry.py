@@ -781,6 +781,8 @@ def run_kind(code_settings: dict) -> str | None:
     s = code_settings or {}
     if s.get("single_structure"):
         return f"a single structure ({s['single_structure']}): an input or a result, no ionic steps"
+    if s.get("band_path"):
+        return f"a band of images ({s['band_path']}): its frames are images, not ionic steps"
     if s.get("neb_image"):
         return (f"a nudged-elastic-band image ({s['neb_image']}): it moves along a path between "
                 f"two end points")
