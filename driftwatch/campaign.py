@@ -942,8 +942,8 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
         groups = summary["copies"]
         print(f"copies: {len(groups)} group{'s' if len(groups) > 1 else ''} of runs that read the "
               f"same frames ({'; '.join(' = '.join(g) for g in groups[:5])}"
-              f"{'; ...' if len(groups) > 5 else ''}): each is counted above once per copy",
-              file=stream)
+              f"{'; ...' if len(groups) > 5 else ''}): a folder kept twice, or a rerun that repeated "
+              f"the same steps; each is counted above once per copy", file=stream)
     if summary.get("not_relaxation"):
         what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
                        for x in summary["not_relaxation"])

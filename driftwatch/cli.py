@@ -201,9 +201,12 @@ def _inspect_table(rec: dict) -> str:
     n = rec["run"]["n_frames"]
     ends = rec["run"].get("kind") == "end-points"
     frames_word = END_POINTS if ends else f"{n} frame{'s' if n != 1 else ''}"
+    blank = any(not r[-1] for r in rows[1:])
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
-                 f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å")
+                 f"to each Bravais type; a type is held within {rec['config']['rules']['lattice']['within']:g} Å"
+                 + ("; group column blank where spglib was not asked (--all-frames asks it on every "
+                    "step)" if blank else ""))
     stages = stages_text(rec)
     if stages:
         lines.append(f"  stages: {stages}")

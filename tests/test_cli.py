@@ -101,3 +101,15 @@ def test_formats_lists_registry():
     names = json.loads(r.stdout)
     for name in ("traj", "extxyz", "vasp-xml", "vasp-out", "espresso-out"):
         assert any(name in k for k in names), name
+
+
+def test_inspect_says_why_group_cells_are_blank():
+    """The per-step table leaves the group column blank where spglib was not asked; the caption says
+    so and how to fill it, and with --all-frames every cell is filled and the note goes."""
+    run = Path(__file__).parent.parent / "example_runs" / "L06_emt_bfgs.traj"
+    note = "group column blank where spglib was not asked (--all-frames asks it on every step)"
+    some, every = dw("inspect", run), dw("inspect", run, "--all-frames")
+    assert some.returncode == every.returncode == 0
+    table = [ln for ln in some.stdout.splitlines() if ln.strip()[:1].isdigit()]
+    assert any(len(ln.split()) < len(table[0].split()) for ln in table) and note in some.stdout
+    assert note not in every.stdout

@@ -756,7 +756,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
         verdicts[v] = verdicts.get(v, 0) + 1
     header = ("<h1>driftwatch campaign report</h1><div class=\"sub\">"
               f"{len(recs)} runs · {n_flagged} with flags · {len(bad)} unreadable inputs · "
-              f"{len(failed)} failed runs</div>")
+              f"{len(failed)} failed runs"
+              + (f" · {len(skipped)} skipped" if skipped else "") + "</div>")
     parts = [f'<p class="note">{e(DISCLAIMER)}</p>']
     parts.append("<h2>Overview</h2>" + _kv([
         ("runs in this report", str(len(recs))),
@@ -773,7 +774,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(" = ".join(g)) for g in campaign["copies"][:10])
            + (" …" if len(campaign["copies"]) > 10 else "")
-           + '<br><span class="muted">each copy counts as a run of its own above</span>')]
+           + '<br><span class="muted">a folder kept twice, or a rerun that repeated the same '
+             'steps; each copy counts as a run of its own above</span>')]
          if isinstance(campaign, dict) and campaign.get("copies") else [])
       + ([("audit summary", e(_counts_text(campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])))
