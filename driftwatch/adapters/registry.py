@@ -285,9 +285,11 @@ def _detect_file(path: Path) -> str:
 # Files of the trade that are no trajectory, said by name when a user passes one (their first lines
 # as the codes write them: common practice)
 _NOT_TRAJECTORIES = (
-    (re.compile(rb"^\s*&control\b", re.I | re.M), "a pw.x input (pass its output, or the run folder)"),
+    # [ \t]*, not \s*: a pattern that can cross lines, retried from each line start, is quadratic
+    (re.compile(rb"^[ \t]*&control\b", re.I | re.M), "a pw.x input (pass its output, or the run "
+                                                     "folder)"),
     (re.compile(rb"Program PHONON\b"), "a Quantum ESPRESSO ph.x output (phonons)"),
-    (re.compile(rb"^\s*(ISIF|IBRION|NSW|ENCUT|PREC|EDIFF)\s*=", re.I | re.M),
+    (re.compile(rb"^[ \t]*(ISIF|IBRION|NSW|ENCUT|PREC|EDIFF)[ \t]*=", re.I | re.M),
      "a VASP INCAR (pass the run folder)"),
 )
 
