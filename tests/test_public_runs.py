@@ -1551,3 +1551,19 @@ def test_a_vasp_job_that_ran_but_left_no_structures_says_what_it_left(tmp_path):
     assert "vasp.out ends with 'LAPACK: Routine ZPOTRF failed!'" in errors["custodian_stopped/zpotrf"]
     with pytest.raises(InputError, match="its OSZICAR holds 1 ionic step"):
         read_run(stopped / "positive_energy")
+
+
+def test_other_copies_of_an_output_beside_the_run_are_said_not_read(tmp_path):
+    """A folder that keeps other copies of an output under names no VASP stage uses (as
+    aiida-vasp's test data keeps OUTCAR.converged, OUTCAR.not-converged, ... beside OUTCAR) reads
+    OUTCAR and says the others are not read; passed alone, one is read (genuine OUTCAR of
+    tests/data/public/vasp620_nelm in both roles)."""
+    src = PUB / "vasp620_nelm" / "OUTCAR.gz"
+    (tmp_path / "run").mkdir()
+    shutil.copy(src, tmp_path / "run" / "OUTCAR.gz")
+    shutil.copy(src, tmp_path / "run" / "OUTCAR.converged.gz")
+    run = read_run(tmp_path / "run")
+    assert run.source.endswith("/OUTCAR.gz") and len(run) == 5
+    assert any(w.endswith("OUTCAR.converged.gz not read (other copies beside the run's outputs; "
+                          "pass one to read it)") for w in run.warnings)
+    assert len(read_run(tmp_path / "run" / "OUTCAR.converged.gz")) == 5

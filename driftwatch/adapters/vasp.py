@@ -907,6 +907,7 @@ def read_error_archive(path, ctx: ReadContext):
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
+_OTHER_COPIES = tuple(f"{k}." for k in _OUTPUT_KINDS)
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
 # What a finished output ends with. VASP built with profiling prints a timing table of some
@@ -1184,6 +1185,11 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
             notes.append(note)
     if not stages:
         return None
+    others = [n for n in names if strip_compression(n).startswith(_OTHER_COPIES)
+              and not _STAGED.match(strip_compression(n))]
+    if others:          # OUTCAR.converged, vasprun.xml.bak, ...: no stage names VASP or custodian use
+        notes.append(f"{folder}: {', '.join(others[:6])}{', ...' if len(others) > 6 else ''} not "
+                     f"read (other copies beside the run's outputs; pass one to read it)")
     archived = _error_archives(folder, names)
     if len(stages) == 1 and stages[0][0] in ("", None):
         stages = [("", stages[0][1], stages[0][2])]
