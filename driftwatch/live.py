@@ -441,7 +441,9 @@ class SymmetryWatch:
 
         Call it when the optimizer has finished: the run's end counts from here (a change need not
         have held ``rules.persistence.steps`` steps), and with ``lazy=True`` the flags that only the
-        newest frame's spectrum reveals are raised here (warned or raised as in ``__call__``).
+        newest frame's spectrum reveals are raised here. It never raises ``SymmetryCollapse``: the
+        run has ended, so a ``stop_on`` flag that holds only now is warned (mode ``stop`` and
+        ``warn``), also after a stop was caught.
         """
         if len(self._tracker):
             self._update(newest=True, stacklevel=3, complete=True)
@@ -468,11 +470,12 @@ class SymmetryWatch:
             records.write_json(rec, self.output)
         if not new:
             return
-        if self.mode == "warn":
+        if self.mode == "warn" or (self.mode == "stop" and complete):   # ended: nothing to stop
             for f in new:
                 warnings.warn(SymmetryDriftWarning(
-                    f"driftwatch: {f['code']} at step {f['step']}: {f['message']}", f),
-                    stacklevel=stacklevel)
+                    f"driftwatch: {f['code']} at step {f['step']}: {f['message']}"
+                    + ("; it holds once the run's end counts, after the run ended: no stop"
+                       if self.mode == "stop" else ""), f), stacklevel=stacklevel)
         elif self.mode == "stop":
             raise SymmetryCollapse(rec, new)
 

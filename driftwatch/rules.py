@@ -254,8 +254,7 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
               if t != _LOWEST[dim] and D[t][-1] > within and D[t][0] > within]
     # a type approached without being reached (beyond the gained one: L ends oc, nearing hp), the
     # deformation measured against the lattice's size: a cell that only shrinks nears nothing
-    s0, s1 = _size(frames[0]), _size(frames[-1])
-    shrink = s1 / s0 if s0 and s1 else 1.0
+    shrink = _shrink(frames)[-1]
     cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
             and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink
             and (g is None or (t != g and generalises(g, t)))]
@@ -294,6 +293,14 @@ def _handedness(frames, r):
             "mirror_initial": float(chiral[sig[0]]), "mirror_final": float(chiral[-1])}
 
 
+def _shrink(frames) -> np.ndarray:
+    """Each frame's lattice size over the first frame's ((n,); ones when a frame has no size)."""
+    sizes = [_size(f) for f in frames]
+    if not sizes[0] or any(s is None for s in sizes):
+        return np.ones(len(frames))
+    return np.asarray(sizes, float) / sizes[0]
+
+
 def _size(frame) -> float | None:
     """The lattice's size (Å; :func:`driftwatch.lattice3d.deformation_and_size`) from a frame's
     root invariants (sqrt of the sum of their squares: of the conorms), or its ``size``; None when
@@ -328,11 +335,14 @@ def _lattice_flags(frames, lv, D, r):
     if lv["nearing"]:
         t = lv["nearing"]
         frac = r["lattice"]["nearing_fraction"]
-        k = int(np.nonzero(D[t] <= (1 - frac) * D[t][0])[0][0])
+        shrink = _shrink(frames)                  # the drop measured against the lattice's size
+        near = np.nonzero(D[t] <= (1 - frac) * D[t][0] * shrink)[0]
+        k = int(near[0]) if near.size else len(frames) - 1
+        way = 100 * (1 - D[t][-1] / (D[t][0] * shrink[-1]))
         flags.append(_flag("lattice-nearing", k, frames,
                            f"the lattice moved toward {t} ({NAMES[t]}) without reaching it: "
                            f"deformation {_g(D[t][0])} -> {_g(D[t][-1])} Å "
-                           f"({100 * (1 - D[t][-1] / D[t][0]):.0f} % of the way)",
+                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way)",
                            t, float(D[t][-1]), frac))
     for p in lv["passed_through"][:1]:        # the longest stretch; the record lists them all
         t = p["type"]
@@ -669,14 +679,16 @@ def _supercell(frames, cell_type: str) -> dict | None:
     its cubic cell, cP against cF), what it is and a sentence saying so; else None."""
     spec = frames[-1].get("symmetry") or {}
     prim = spec.get("primitive") or {}
-    t, n = prim.get("type"), prim.get("multiplicity") or 1
+    # the type judged as the cell's is (rules.lattice.within), not atoms-break-lattice's tighter one
+    t, n = prim.get("lattice_type"), prim.get("multiplicity") or 1
     if not t or t == cell_type or n < 2:     # no pure translation: the cell is primitive
         return None
     return {"type": t, "cell_type": cell_type, "symprec": prim.get("symprec"), "multiplicity": n,
             "text": f"the cell is a supercell of {n} primitive cells: with spglib's pure "
                     f"translations (symprec {_g(prim.get('symprec'))} Å) the structure's lattice "
-                    f"is {t} ({NAMES[t]}), the cell's {cell_type} ({NAMES[cell_type]}); the "
-                    f"lattice verdict and columns describe the cell as given"}
+                    f"is {t} ({NAMES[t]}), the cell's {cell_type} ({NAMES[cell_type]}), each the "
+                    f"most specific type held as the lattice columns judge it; the lattice verdict "
+                    f"and columns describe the cell as given"}
 
 
 def evaluate(record: dict, cfg: dict, *, complete: bool = True) -> list[dict]:

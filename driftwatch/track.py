@@ -210,11 +210,15 @@ def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
         dfm = lattice3d.deformation(prim, metric=cfg["lattice"]["metric"])
         types, low = lattice3d.TYPES, "aP"
     dfm = {t: float(dfm[t]) for t in types}
-    held = [t for t in types if dfm[t] <= r["within"]]
-    t = max(held, key=lambda x: (rules.ORDER[x], -dfm[x])) if held else low
+
+    def most_specific(within):
+        held = [t for t in types if dfm[t] <= within]
+        return max(held, key=lambda x: (rules.ORDER[x], -dfm[x])) if held else low
+    t = most_specific(r["within"])
     cells = abs(np.linalg.det(run.cells[i])) / abs(np.linalg.det(prim))   # primitive cells in it
     return {"symprec": r["symprec"], "type": t, "deformation": dfm.get(t, 0.0),
-            "multiplicity": int(round(cells))}
+            "multiplicity": int(round(cells)),
+            "lattice_type": most_specific(cfg["rules"]["lattice"]["within"])}
 
 
 def _versions() -> dict:

@@ -172,6 +172,23 @@ def test_watch_stop_mode_raises_with_record_and_trajectory_has_step(tmp_path):
     assert records.read_json(out)["run"]["n_frames"] == opt.nsteps + 1
     assert same(records.read_json(out), err.record)
     assert same(err.record, analyze(traj, QUICK, complete=False))    # judged as a run going on
+    with warnings.catch_warnings():          # finishing after a caught stop never raises again
+        warnings.simplefilter("ignore", SymmetryDriftWarning)
+        rec = watch.finish()
+    assert rec["live"]["observer"]["complete"] is True
+
+
+def test_watch_stop_mode_finish_warns_a_flag_that_held_only_at_the_end(tmp_path):
+    """A change that never held rules.persistence.steps steps while the run went on stops nothing;
+    at finish() (the run has ended) it holds and is warned, not raised out of the caller's code."""
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "stop", "stop_on": ["lattice-gained"],
+                                               "config": {"rules": {"persistence": {"steps": 10**5}}}},
+                                    pass_opt=True)
+    opt.run(fmax=1e-4, steps=200)                                   # never stopped
+    assert not watch.fired
+    with pytest.warns(SymmetryDriftWarning, match="after the run ended: no stop"):
+        rec = watch.finish()
+    assert [f["code"] for f in rec["live"]["fired"]] == ["lattice-gained"]
 
 
 def test_watch_irun_break_alternative_and_interval(tmp_path):

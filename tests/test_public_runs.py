@@ -1299,6 +1299,18 @@ def test_atomate_runs_read_right_settings_notes_and_flags(tmp_path):
     prim = rec["frames"][-1]["symmetry"]["primitive"]
     assert rec["summary"]["final"]["type"] == "cF" and prim["type"] == "aP"
     assert prim["multiplicity"] == 1 and rec["summary"]["supercell"] is None
+    # the note's type is judged as the lattice columns judge a type (rules.lattice.within): the
+    # bundled B05 (an EMT relaxation of an invented 4-atom fcc cell) ends 2.7e-4 Å from cF in its
+    # primitive cell, tI within the atoms-break-lattice rule's 1e-4 Å; the note once said "tI"
+    from driftwatch import lattice3d
+    b05 = analyze(REPO / "example_runs" / "B05_emt_bfgs.extxyz")
+    last = read_run(REPO / "example_runs" / "B05_emt_bfgs.extxyz")
+    c, p = last.cells[-1], last.positions[-1]
+    lat, _, _ = spglib.standardize_cell((c, np.linalg.solve(c.T, p.T).T, last.numbers),
+                                        to_primitive=True, no_idealize=True, symprec=1e-3)
+    dfm = lattice3d.deformation(lat)
+    assert 1e-4 < dfm["cF"] < 1e-3 and b05["frames"][-1]["symmetry"]["primitive"]["type"] == "tI"
+    assert b05["summary"]["supercell"]["type"] == "cF"
     proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
                            str(camp / "atomate_conventional_si" / "outputs")],
                           capture_output=True, text=True, timeout=300)

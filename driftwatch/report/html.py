@@ -456,9 +456,11 @@ def _summary_section(rec):
     rows = [
         ("verdict", _badge(verdict, f"v-{verdict}") + f" <span class=\"muted\">"
                     f"{e(s['verdict']['text'])}</span>"),
-        ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} atoms, "
+        ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} "
+                      f"atom{'s' if run.get('n_atoms') != 1 else ''}, "
                       + (e(_records.END_POINTS) if run.get("kind") == "end-points" else
-                         f"{e(run.get('n_frames'))} ionic steps")),
+                         f"{e(run.get('n_frames'))} frames (steps "
+                         f"{e(_step_span(rec))})")),
         *([("stages", e(stages))] if stages else []),
         *([("not a relaxation", f"{e(run['not_relaxation'])}<br><span class=\"muted\">the "
                                 "verdict compares how the structure moved from the first frame "
@@ -696,6 +698,11 @@ def _plots_section(rec):
     return "<h2>Plots</h2>" + "".join(parts)
 
 
+def _step_span(rec: dict) -> str:
+    frames = rec.get("frames") or []
+    return f"{frames[0]['step']}-{frames[-1]['step']}" if frames else "—"
+
+
 def _cell_free(run: dict) -> str | None:
     from ..adapters.registry import cell_free
     return cell_free(run.get("code_settings") or {})
@@ -930,9 +937,9 @@ def _runs_table(runs, failed=(), skipped=()):
             f"{_td_num(v['recommended_symprec'], 'Å')}"
             "</tr>"))
     rows = [html_ for _, html_ in sorted(rows, key=lambda kv: kv[0].lower())]
-    head = ("<tr><th>run</th><th>formula</th><th>steps</th><th>verdict</th><th>lattice</th>"
+    head = ("<tr><th>run</th><th>formula</th><th>frames</th><th>verdict</th><th>lattice</th>"
             "<th>drift type</th><th>drift from</th><th>drift to</th><th>group</th>"
-            "<th>flags</th><th>suggested symprec</th></tr>")
+            "<th>flags</th><th>recommended symprec</th></tr>")
     return ("<h2>Runs</h2><p class=\"muted\">Click a column head to sort. 'verdict' is which way the "
             "run's symmetry went (gained, lost, changed, kept) at the lattice and spglib-group levels; "
             "the drift columns are the deformation (Å, comparable with symprec) to the type the verdict "
