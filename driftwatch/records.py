@@ -364,14 +364,19 @@ def verdict_fields(record: dict) -> dict:
     s = record["summary"]
     v, d = s["verdict"], s.get("drift") or {}
     lat, st = v["lattice"], v["structure"]
-    grp = lambda g: f"{g['symbol']} ({g['group']})" if g and g.get("group") else ""
+    a, b = st.get("initial") or {}, st.get("final") or {}
+    # the same group type at both ends with other operation counts (pure translations gained or
+    # lost): the counts tell them apart, as in the verdict's text
+    ops = a.get("group") == b.get("group") and a.get("operations") != b.get("operations")
+    grp = lambda g: (f"{g['symbol']} ({g['group']}" + (f", {g['operations']} operations" if ops
+                                                       else "") + ")") if g.get("group") else ""
     return {
         "verdict": v["direction"], "lattice_verdict": lat["direction"],
         "lattice_initial": lat["initial"], "lattice_final": lat["final"],
         "lattice_from_step": lat.get("from_step"),
         "drift_type": d.get("type"), "drift_initial": d.get("initial"), "drift_final": d.get("final"),
         "group_verdict": st.get("direction"), "group_symprec": st.get("symprec"),
-        "group_initial": grp(st.get("initial")), "group_final": grp(st.get("final")),
+        "group_initial": grp(a), "group_final": grp(b),
         "group_from_step": st.get("from_step"),
         "recommended_symprec": s["tolerance"].get("recommended_symprec"),
     }

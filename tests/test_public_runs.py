@@ -1427,6 +1427,10 @@ def test_a_gain_of_pure_translations_is_said_as_such():
     (gain,) = [f for f in rec["flags"] if f["code"] == "group-gained"]
     assert gain["message"].endswith("the same space-group type with more operations: pure "
                                     "translations gained (a smaller primitive cell)")
+    from driftwatch import records
+    v = records.verdict_fields(rec)          # the CSV, runs.db, tables and report read these
+    assert (v["group_initial"], v["group_final"]) == ("R-3m (166, 12 operations)",
+                                                      "R-3m (166, 24 operations)")
     loose = [f["message"] for f in rec["flags"] if f["code"] == "loose-symprec"]
     assert all("calls the cell's lattice (one atom per cell)" in m for m in loose)
 
