@@ -900,6 +900,10 @@ def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[s
     return sorted(rows, key=lambda x: x[0])
 
 
+def _runs(n: int) -> str:
+    return f"{n} run{'s' if n != 1 else ''}"
+
+
 def counts_text(summary: dict) -> str:
     """The audit's runs in one line, parts that add up: "48 runs: 36 with a verdict, 9 failed, 3
     skipped (46 read now, 0 from the cache, 2 failed before reading)" (the terminal and the
@@ -947,13 +951,13 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     if summary.get("not_relaxation"):
         what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
                        for x in summary["not_relaxation"])
-        print(f"not relaxations: {len(summary['not_relaxation'])} runs ("
+        print(f"not relaxations: {_runs(len(summary['not_relaxation']))} ("
               f"{', '.join(f'{k} {v}' for k, v in sorted(what.items()))}; column not_relaxation "
               f"of campaign.csv): their verdicts compare how the structure moved from the first "
               f"frame to the last, not where a relaxation ended", file=stream)
     if summary.get("unfinished"):
         why = Counter(x["why"].split(" (")[0].split(":")[0] for x in summary["unfinished"])
-        print(f"unfinished: {len(summary['unfinished'])} runs ("
+        print(f"unfinished: {_runs(len(summary['unfinished']))} ("
               f"{', '.join(f'{k} {v}' for k, v in sorted(why.items()))}; column unfinished of "
               f"campaign.csv): their final structures are not relaxed ones", file=stream)
     tol = summary["tolerance"]

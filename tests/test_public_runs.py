@@ -1488,6 +1488,10 @@ def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
     with connect(tmp_path / "out" / "runs.db") as db:
         kv = {row.run_id: row.get("unfinished", "") for row in db.select()}
     assert col == kv and col["camp/done"] == ""
+    one = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp / "nelm"), "-o",
+                          str(tmp_path / "one"), "--no-report"], capture_output=True, text=True,
+                         timeout=600)
+    assert "\nunfinished: 1 run (stopped at its step limit 1;" in one.stdout, one.stdout[-800:]
 
 
 @pytest.mark.parametrize("path, said", [
