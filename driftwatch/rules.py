@@ -254,7 +254,7 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
               if t != _LOWEST[dim] and D[t][-1] > within and D[t][0] > within]
     # a type approached without being reached (beyond the gained one: L ends oc, nearing hp), the
     # deformation measured against the lattice's size: a cell that only shrinks nears nothing
-    shrink = _shrink(frames)[-1]
+    shrink = _shrink([frames[0], frames[-1]])[-1]   # the end frames only: judged every live step
     cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
             and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink
             and (g is None or (t != g and generalises(g, t)))]

@@ -156,7 +156,7 @@ def read_traj(path, ctx: ReadContext):
                 atoms = traj[i]
                 if i == 1 and not {"optimizer", "dynamics"} & set(ctx.settings) and \
                         _moving(first, atoms):        # no description says what wrote it
-                    ctx.settings.update({"code": "ase", "dynamics": _MOMENTA})
+                    ctx.settings.update({"code": "ase", "dynamics_seen": _MOMENTA})
                 first = atoms if i == 0 else first
                 fr = frame_from_atoms(atoms, i)
                 energies.append(fr.energy)
@@ -175,7 +175,7 @@ def read_traj(path, ctx: ReadContext):
         traj.close()
 
 
-_MOMENTA = "no class named; the frames' atomic momenta change"
+_MOMENTA = "no class named; the frames' atomic momenta change"   # what tells MD with no description
 
 
 def _moving(a, b) -> bool:

@@ -437,10 +437,10 @@ def read_pw_out(path, ctx: ReadContext):
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
             beside = Path(path).parent
-            crash = crash_message(beside, ["CRASH"] if (beside / "CRASH").is_file() else [], ctx)
-            ctx.truncated(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); " + (
-                f"pw.x's {crash.replace('CRASH says', 'CRASH file beside it says')}" if crash
-                else "job killed or still running"))
+            crash = crash_message(beside, ["CRASH"] if (beside / "CRASH").is_file() else [], ctx,
+                                  subject="pw.x's CRASH file beside it")
+            ctx.truncated(f"truncated {where}: no JOB DONE (nor pw.x's closing timing); "
+                          + (crash or "job killed or still running"))
 
 
 # ---------------------------------------------------------------- settings
@@ -737,9 +737,10 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     return f"{what} ({', '.join(got)}) and no pw.x output", got
 
 
-def crash_message(folder: Path, names, ctx=None) -> str | None:
-    """The error pw.x wrote in its ``CRASH`` file in ``folder`` (``Error in routine NAME (N):``
-    and the message, on one line, quoted), or None when there is no CRASH file."""
+def crash_message(folder: Path, names, ctx=None, subject: str = "CRASH") -> str | None:
+    """What pw.x wrote in its ``CRASH`` file in ``folder``, in words: "``subject`` says 'Error in
+    routine NAME (N): message'" (one line), or that it is empty or unreadable; None when there is
+    no CRASH file."""
     if "CRASH" not in names:
         return None
     path = Path(folder) / "CRASH"
@@ -749,11 +750,11 @@ def crash_message(folder: Path, names, ctx=None) -> str | None:
         with open(path, "rb") as fh:
             text = fh.read(4096).decode("utf-8", "replace")
     except OSError:
-        return "CRASH unreadable"
+        return f"{subject} is unreadable"
     lines = [" ".join(ln.split()) for ln in text.splitlines()
              if ln.strip() and not set(ln.strip()) <= {"%"} and not ln.strip().startswith("task #")]
     said = " ".join(lines[:2])[:200]         # "Error in routine NAME (N):" and the message
-    return f"CRASH says {said!r}" if said else "an empty CRASH file"
+    return f"{subject} says {said!r}" if said else f"{subject} is empty"
 
 
 # ---------------------------------------------------------------- live: end, soft stop

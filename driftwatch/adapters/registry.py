@@ -789,8 +789,9 @@ def run_kind(code_settings: dict) -> str | None:
         return (f"a nudged-elastic-band image ({s['neb_image']}): it moves along a path between "
                 f"two end points")
     if s.get("code") == "ase" and s.get("dynamics"):      # an ASE MD class wrote the trajectory
-        return (f"molecular dynamics ({s['dynamics']})" if " " in s["dynamics"] else
-                f"molecular dynamics (ASE's {s['dynamics']})")
+        return f"molecular dynamics (ASE's {s['dynamics']})"
+    if s.get("code") == "ase" and s.get("dynamics_seen"):   # no description; what the frames show
+        return f"molecular dynamics ({s['dynamics_seen']})"
     code = _code_named(s.get("code"))
     fn = code.function("run_kind") if code is not None else None
     return fn(s) if fn is not None else None
