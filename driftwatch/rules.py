@@ -258,12 +258,12 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
             and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink
             and (g is None or (t != g and generalises(g, t)))]
-    nearing = min(cand, key=lambda t: (D[t][-1], -ORDER[t])) if cand else None
+    nearing = _nearest(cand, D) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
     # (a lattice of no higher type: the nearest higher type, how far it stayed)
     away_end = [t for t in types if D[t][-1] > within]
     kept = last if last != _LOWEST[dim] else (
-        min(away_end, key=lambda t: D[t][-1]) if away_end else None)
+        _nearest(away_end, D) if away_end else None)
     subject = g or lo or nearing or kept
     k = max(frm) if frm else None
     out = {"direction": direction, "initial": first, "final": last, "gained": g, "lost": lo,
@@ -278,6 +278,14 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
         drift = {"type": subject, "initial": d0, "final": d1, "change": d1 - d0,
                  "fraction": None if d0 == 0 else (d0 - d1) / d0}
     return out, drift, D
+
+
+def _nearest(types, D, rel=1e-6):
+    """The type of ``types`` whose final deformation is smallest; of types within ``rel`` of it
+    (one distance computed along different paths: cF, tI, oF, oI of a cell near cF agree to 1e-8
+    Å), the most specific."""
+    d = min(float(D[t][-1]) for t in types)
+    return max((t for t in types if float(D[t][-1]) <= d * (1 + rel)), key=lambda t: ORDER[t])
 
 
 def _handedness(frames, r):
@@ -494,12 +502,11 @@ def _symprec_dependent(frames, r):
     spec = frames[k].get("symmetry")
     if not spec:
         return []
-    s = np.asarray(spec["symprec"], float)
-    inside = (s >= r["low"] * (1 - 1e-9)) & (s <= r["high"] * (1 + 1e-9))
     seen = []
-    for g, sym in zip(np.asarray(spec["group"])[inside], np.asarray(spec["group_symbol"])[inside]):
-        if g and (g, sym) not in seen:
-            seen.append((int(g), str(sym)))
+    for lo, hi, g, sym, _ in _plateaus(spec):   # groups met between grid points included
+        if g and hi >= r["low"] * (1 - 1e-9) and lo <= r["high"] * (1 + 1e-9) \
+                and (g, sym) not in seen:
+            seen.append((g, sym))
     if len(seen) < 2:
         return []
     text = " -> ".join(f"{sym} ({g})" for g, sym in seen)
@@ -707,22 +714,27 @@ def summarize(record: dict, cfg: dict, *, complete: bool = True) -> dict:
 # ----------------------------------------------------------------------------------------------
 def _plateaus(spec):
     """Stretches of one group verdict: [low, high, group, symbol, operations] (Å), bracket ends
-    used where a breakpoint was bisected, grid points otherwise."""
+    used where a breakpoint was bisected, grid points otherwise. A group met only between two grid
+    points (a bisection found 1 -> 3 -> 111 where the grid shows 1 and 111) is a stretch of its own."""
     s = [float(x) for x in spec["symprec"]]
     g = [int(x) for x in spec["group"]]
     ops = [int(x) for x in spec.get("operations") or [0] * len(g)]
     sym = list(spec["group_symbol"])
     bps = sorted((b for b in spec.get("breakpoints", []) if b["kind"] == "group"),
                  key=lambda b: b["low"])
-    ranges, lo, i0 = [], s[0], 0
-    for i in range(1, len(s) + 1):
-        if i == len(s) or (g[i], ops[i]) != (g[i0], ops[i0]):
-            hi = s[-1] if i == len(s) else next(
-                (b["low"] for b in reversed(bps) if s[i - 1] <= b["low"] <= s[i]), s[i - 1])
-            ranges.append([lo, hi, g[i0], sym[i0], ops[i0]])
-            if i < len(s):
-                lo = next((b["high"] for b in bps if s[i - 1] <= b["high"] <= s[i]), s[i])
-                i0 = i
+    ranges, cur = [], [s[0], None, g[0], sym[0], ops[0]]
+    for i in range(1, len(s)):
+        if (g[i], ops[i]) == (g[i - 1], ops[i - 1]):
+            continue
+        inside = [b for b in bps if s[i - 1] <= b["low"] and b["high"] <= s[i]]
+        for b in inside:            # the bisected chain of changes between the two grid points
+            ranges.append(cur[:1] + [b["low"]] + cur[2:])
+            cur = [b["high"], None, int(b["to"]), str(b.get("to_symbol", "")),
+                   int(b.get("to_operations") or 0)]
+        if not inside or (cur[2], cur[4]) != (g[i], ops[i]):
+            ranges.append(cur[:1] + [s[i - 1] if not inside else cur[0]] + cur[2:])
+            cur = [s[i], None, g[i], sym[i], ops[i]]
+    ranges.append(cur[:1] + [s[-1]] + cur[2:])
     return ranges
 
 

@@ -310,11 +310,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 34
+    assert summary["failed"] == [] and summary["runs"] == 39
     assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
                                                            "mixed/ase_generic/gpaw_h2.txt"]
     assert all(k["include"] for k in summary["skipped"])
-    assert ("34 runs: 32 with a verdict, 0 failed, 2 skipped (34 read now, 0 from the cache)"
+    assert ("39 runs: 37 with a verdict, 0 failed, 2 skipped (39 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
     assert ("not relaxations: 12 runs (finite differences 1, molecular dynamics 3, "
@@ -430,6 +430,31 @@ def test_a_pwx_output_named_like_an_input_takes_its_settings_from_the_input(tmp_
     alone = tmp_path / out.name
     shutil.copy(out, alone)
     assert "settings_from" not in read_run(alone).code_settings
+
+
+def test_a_pwx_input_of_another_calculation_beside_an_output_is_not_used(tmp_path):
+    """A folder can hold the input of another calculation beside an output (found in ShakeNBreak's
+    test data: a 63-atom espresso.pwi beside a 12-atom output that says "Reading input from
+    qe.in"). Its settings (nosym, the calculation) would decide the held-by-code flag and the run's
+    kind. References are the files' own lines: the header's "number of atoms/cell" and "number of
+    atomic types" against the input's nat and ntyp, and "Reading input from NAME". Real pw.x 6.7
+    outputs (tests/data/qe): a 2-atom relax read with the 1-atom vc-relax input of another run."""
+    own, other = QE / "relax_atoms_to_sites", QE / "bulk_tetragonal_to_cubic"
+    text = (own / "pw.out").read_text()
+    assert "Reading input from pw.in" in text and "number of atoms/cell      =            2" in text
+    folder = tmp_path / "run"
+    folder.mkdir()
+    (folder / "run.out").write_text(text)
+    shutil.copy(other / "pw.in", folder / "run.in")         # taken by its name before
+    run = read_run(folder / "run.out")
+    assert "settings_from" not in run.code_settings and "calculation" not in run.code_settings
+    assert any("the pw.x input run.in beside it is not this output's (nat = 1, the output 2): its "
+               "settings are not used" in w for w in run.warnings), run.warnings
+    shutil.copy(own / "pw.in", folder / "pw.in")            # the input the header names wins
+    run = read_run(folder / "run.out")
+    assert (run.code_settings["settings_from"], run.code_settings["calculation"]) == \
+        ("pw.in", "relax")
+    assert not [w for w in run.warnings if "is not this output's" in w]
 
 
 @pytest.mark.parametrize("case, said", [
@@ -1459,6 +1484,15 @@ def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
     assert read_run(first).unfinished.startswith("stopped at its step limit (pw.x:")
     whole = read_run(QE / "restart_numbered")                          # the restart finished it
     assert whole.unfinished is None and not [w for w in whole.warnings if "unfinished" in w]
+    # damped Wentzcovitch cell dynamics says it otherwise (QE's own test-suite, pw.x 7.2: the
+    # vc-relax ran its nstep = 50 steps; QE's PW/src/move_ions.f90 prints this line at nstep)
+    dampw = PUB / "qe_testsuite_vc_relax_scf"
+    assert "cell_dynamics = 'damp-w'" in (dampw / "vc-relax-scf-1.in").read_text()
+    assert "Maximum number of iterations reached, stopping" in gzip.open(
+        next(dampw.glob("benchmark*")), "rt").read()
+    run = read_run(dampw)
+    assert len(run) == 50 and run.unfinished == (
+        "stopped at its step limit (pw.x: 'Maximum number of iterations reached, stopping')")
     md = PUB / "qe_testsuite_md"
     assert "The maximum number of steps has been reached." in gzip.open(
         next(md.iterdir()), "rt").read() and read_run(md).unfinished is None
@@ -1587,3 +1621,75 @@ def test_other_copies_of_an_output_beside_the_run_are_said_not_read(tmp_path):
     assert any(w.endswith("OUTCAR.converged.gz not read (other copies beside the run's outputs; "
                           "pass one to read it)") for w in run.warnings)
     assert len(read_run(tmp_path / "run" / "OUTCAR.converged.gz")) == 5
+
+
+# ----------------------------------------------------------------------------------------------
+# point defects in a fixed host cell: a genuine vacancy campaign's start and end structures
+# ----------------------------------------------------------------------------------------------
+VACANCY = PUB / "shakenbreak_vacancy"   # ShakeNBreak's CdTe Cd-vacancy POSCAR/CONTCAR pairs (MIT)
+
+
+def test_tolerance_stretches_keep_a_group_met_only_between_grid_points():
+    """The relaxed vacancy (-10 % bond distortion) is P1 at the grid's 0.0158 Å and P-42m at
+    0.0329 Å; bisection meets P2 (3) between them. The stretches of one group must include P2's,
+    and each stretch's group must be spglib's at its geometric centre (spglib called directly)."""
+    import math
+    import spglib
+    from driftwatch import rules, symmetry
+    atoms = ase.io.read(VACANCY / "m10" / "CONTCAR")
+    spec = symmetry.spectrum(atoms.cell.array, atoms.positions, atoms.numbers)
+    ranges = rules.advice(spec)["ranges"]
+    assert [r[2] for r in ranges] == [1, 3, 111, 215]
+    cell = (atoms.cell.array, atoms.get_scaled_positions(), atoms.numbers)
+    for lo, hi, group, symbol, ops in ranges:
+        assert lo < hi
+        ds = spglib.get_symmetry_dataset(cell, symprec=math.sqrt(lo * hi), angle_tolerance=-1)
+        assert (ds.number, ds.international, len(ds.rotations)) == (group, symbol, ops)
+    for (_, hi, *_), (lo, *_) in zip(ranges, ranges[1:]):   # consecutive, a bracket apart
+        assert 1 < lo / hi <= 1.02 + 1e-9
+    # the flag that lists the final structure's groups across the common symprecs lists P2 too
+    record = __import__("driftwatch").analyze(VACANCY / "m10")
+    flag = next(f for f in record["flags"] if f["code"] == "symprec-dependent")
+    assert "P1 (1) -> P2 (3) -> P-42m (111) -> P-43m (215)" in flag["message"]
+
+
+CASTEP_SNB = PUB / "shakenbreak_castep"  # ShakeNBreak's genuine CASTEP outputs (MIT)
+
+
+def test_castep_steps_that_ases_reader_leaves_out_are_said():
+    """A CASTEP damped-MD geometry optimisation (rutile TiO2, "DMD: finished iteration 0 ... 22",
+    "Geometry optimization completed successfully") of which ASE 3.29's reader returns only the
+    last structure: the run says it read 1 of the 23 steps instead of passing as one structure.
+    A BFGS cell optimisation whose structures ASE returns (10 for 7 'finished iteration' lines:
+    line-search trials included) gets no such warning."""
+    dmd = CASTEP_SNB / "geom.castep.gz"
+    text = gzip.open(dmd, "rt").read()
+    assert text.count("DMD: finished iteration") == 23
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assert len(ase.io.read(dmd, ":", format="castep-castep")) == 1
+    run = read_run(dmd)
+    assert len(run) == 1 and any(
+        "ASE's CASTEP reader returned 1 structure of the 23 ionic steps the file lists" in w
+        for w in run.warnings), run.warnings
+    bfgs = read_run(CASTEP_SNB / "Si2-cellopt-aniso.castep.gz")
+    assert len(bfgs) == 10 and not [w for w in bfgs.warnings if "ASE's CASTEP reader" in w]
+
+
+def test_the_lattice_a_cell_nears_is_the_most_specific_of_types_at_one_distance():
+    """CASTEP's Si2 cell optimisation (ShakeNBreak, MIT) takes a rhombohedral primitive cell from
+    alpha = 66 to 61.58 degrees (ASE's cell parameters), toward 60 degrees: the primitive cell of
+    face-centred cubic (International Tables). Its deformations to oI, oF, tI and cF are one
+    distance computed along four paths (equal to 1e-7 Å); the flag names cF, not the first of them
+    rounding happens to make smallest."""
+    from driftwatch import analyze
+    path = CASTEP_SNB / "Si2-cellopt-aniso.castep.gz"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        images = ase.io.read(path, ":", format="castep-castep")
+    a0, a1 = images[0].cell.cellpar()[3], images[-1].cell.cellpar()[3]
+    assert a0 == pytest.approx(66.0) and 60 < a1 < 62
+    record = analyze(path)
+    flag = next(f for f in record["flags"] if f["code"] == "lattice-nearing")
+    assert flag["message"].startswith("the lattice moved toward cF (face-centred cubic)"), flag
+    assert record["summary"]["drift"]["type"] == "cF"

@@ -420,10 +420,24 @@ def read_aims(path, ctx: ReadContext):
     yield from _through_ase(path, ctx, "aims-output")
 
 
+# one per ionic step of a geometry optimisation ("BFGS: finished iteration 3 with enthalpy= ...",
+# "DMD: finished iteration", ...) or of MD ("finished MD iteration"), as CASTEP prints them
+_CASTEP_STEP = re.compile(r"^ *\w+: finished (?:MD )?iteration", re.M)
+
+
 def read_castep(path, ctx: ReadContext):
-    """CASTEP .castep output through ASE."""
+    """CASTEP .castep output through ASE; said when ASE returns fewer structures than the ionic
+    steps CASTEP lists (ASE 3.29 returns only the last of a damped-MD optimisation's)."""
     ctx.settings.update({"code": "castep"})
-    yield from _through_ase(path, ctx, "castep-castep")
+    n = 0
+    for n, frame in enumerate(_through_ase(path, ctx, "castep-castep"), 1):
+        yield frame
+    with Lines(path) as fh:
+        steps = len(_CASTEP_STEP.findall("".join(fh)))
+    if n < steps:
+        ctx.warn(f"ASE's CASTEP reader returned {n} structure{'s' if n != 1 else ''} of the "
+                 f"{steps} ionic steps the file lists ('finished iteration' lines): the steps "
+                 f"between are not seen")
 
 
 def read_castep_geom(path, ctx: ReadContext):

@@ -58,9 +58,12 @@ _HEADER_END = (*_SCF_START, _NSCF_START)     # where a run's header ends (an nsc
 # pw.x's total time, printed once as a run ends (print_clock's layout: "PWSCF", padded, " :"); pw.x
 # before 6 ends with it and no JOB DONE (pwtools' genuine 4.1.2 vc-relax, tests/data/public)
 _CLOCK = "PWSCF        :"
+# pw.x at nstep without convergence (PW/src/move_ions.f90 of QE's sources): BFGS and damped ions;
+# variable-cell dynamics (damped Wentzcovitch, and vc-md, for which it is the normal end)
+_LIMITS = ("The maximum number of steps has been reached", "Maximum number of iterations reached")
 _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
-            "Begin final coordinates", "The maximum number of steps", _CLOCK)
+            "Begin final coordinates", *_LIMITS, _CLOCK)
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
 _STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
@@ -233,7 +236,7 @@ def read_pw_out(path, ctx: ReadContext):
     from ase.io.espresso import get_atomic_positions, get_cell_parameters
     _, Ry = _units()
 
-    _settings_from_input(path, ctx)
+    taken = _settings_from_input(path, ctx)
     step = 0            # completed steps emitted
     nconf = 0           # configurations seen (the step index of a frame)
     last_index = None
@@ -326,6 +329,8 @@ def read_pw_out(path, ctx: ReadContext):
                 except (ValueError, IndexError) as exc:
                     raise InputError(path, f"not a complete pw.x header: {exc}") from None
                 natoms = len(numbers)
+                _check_input(taken, header, ctx)
+                taken = None                      # the first header decides
                 if nsym is not None:
                     ctx.settings.setdefault("code", "espresso")
                     if "nsym" in ctx.settings and ctx.settings["nsym"] != nsym:
@@ -410,8 +415,8 @@ def read_pw_out(path, ctx: ReadContext):
                     done = True
                 elif "BFGS Geometry Optimization" in line or "number of scf cycles" in line:
                     ionic = True
-                elif "The maximum number of steps" in line:
-                    at_limit = True
+                elif any(m in line for m in _LIMITS):
+                    at_limit = line.strip()
                 elif "bfgs converged" in line:
                     at_limit = False
                 if cur.from_header and not cur.bfgs_seen and "number of scf cycles" in line:
@@ -431,8 +436,7 @@ def read_pw_out(path, ctx: ReadContext):
             ctx.settings["calculation"] = "scf"   # one SCF per run, no ionic step: as it shows
             ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
         if at_limit and ctx.settings.get("calculation") not in ("md", "vc-md"):
-            ctx.unfinished = ("stopped at its step limit (pw.x: 'The maximum number of steps has "
-                              "been reached.')")
+            ctx.unfinished = f"stopped at its step limit (pw.x: '{at_limit}')"
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
@@ -446,7 +450,7 @@ def read_pw_out(path, ctx: ReadContext):
 # ---------------------------------------------------------------- settings
 def read_pw_input(path) -> dict:
     """The pw.x input's namelists as ASE's namelist reader reads them (plain or compressed), with
-    pw.x's defaults for what driftwatch uses: ``calculation``, ``nosym``, ``noinv``,
+    pw.x's defaults for what driftwatch uses: ``nat``, ``ntyp`` (None when absent), ``calculation``, ``nosym``, ``noinv``,
     ``cell_dofree`` (vc-relax or when given), ``prefix`` ("pwscf") and ``outdir`` ("./")."""
     import io
     from ase.io.espresso import read_fortran_namelist
@@ -454,6 +458,7 @@ def read_pw_input(path) -> dict:
         data, _ = read_fortran_namelist(io.StringIO("".join(fh)))
     control, system, cell = (data.get(k, {}) for k in ("control", "system", "cell"))
     out = {"code": "espresso",
+           "nat": _int(system.get("nat")), "ntyp": _int(system.get("ntyp")),
            "calculation": _text(control.get("calculation", "scf")).lower(),
            "nosym": bool(system.get("nosym", False)),
            "noinv": bool(system.get("noinv", False)),
@@ -462,6 +467,13 @@ def read_pw_input(path) -> dict:
     if out["calculation"] == "vc-relax" or "cell_dofree" in cell:
         out["cell_dofree"] = _text(cell.get("cell_dofree", "all"))
     return out
+
+
+def _int(value) -> int | None:
+    try:
+        return int(value)
+    except (TypeError, ValueError):
+        return None
 
 
 def _text(value) -> str:
@@ -478,12 +490,21 @@ def read_pw_in_settings(path) -> dict:
     return got
 
 
+_READS = re.compile(rb"Reading input from (\S+)[ \t]*\r?$", re.M)
+
+
 def _input_for(out_path: Path, ctx: ReadContext | None = None):
-    """The pw.x input of an output: ``<stem>.in``, ``<stem>.pwi``, ``pw.in`` (any compression),
-    else the only ``*.in`` in the folder that holds ``&control`` or ``&system``."""
+    """The pw.x input of an output: the file its header names ("Reading input from NAME", when it
+    lies beside it), else ``<stem>.in``, ``<stem>.pwi``, ``pw.in`` (any compression), else the only
+    ``*.in`` in the folder that holds ``&control`` or ``&system``."""
     folder = out_path.parent
     if ctx is not None:
         ctx.lists(folder)
+    named = _READS.search(peek(out_path, 8000))
+    if named:
+        p = folder / os.path.basename(named.group(1).decode(errors="replace"))
+        if p.is_file() and not _same_file(p, out_path):
+            return p
     stem = strip_compression(out_path.name).rsplit(".", 1)[0]
     for name in (stem + ".in", stem + ".pwi", "pw.in"):
         for ext in ("", ".gz", ".bz2", ".xz"):
@@ -513,18 +534,44 @@ def _looks_like_pw_in(p: Path, ctx: ReadContext | None = None) -> bool:
     return b"&control" in head or b"&system" in head
 
 
-def _settings_from_input(path, ctx: ReadContext) -> None:
+def _settings_from_input(path, ctx: ReadContext):
+    """Put the settings of the output's pw.x input into ``ctx.settings``; return (input name,
+    settings, its (nat, ntyp)) for :func:`_check_input` to undo, or None."""
     pin = _input_for(Path(path), ctx)
     if pin is None:
-        return
+        return None
     ctx.uses(pin)
     try:
         got = read_pw_in_settings(pin)
     except Exception as exc:  # a broken input must not stop reading the output
         ctx.warn(f"cannot read the pw.x input {pin.name}: {type(exc).__name__}: {exc}")
-        return
+        return None
+    size = got.pop("nat", None), got.pop("ntyp", None)
     ctx.settings.update(got)
     ctx.settings["settings_from"] = pin.name
+    return pin.name, got, size
+
+
+_SIZE = {"nat": re.compile(r"number of atoms/cell\s*=\s*(\d+)"),
+         "ntyp": re.compile(r"number of atomic types\s*=\s*(\d+)")}
+
+
+def _check_input(taken, header, ctx: ReadContext) -> None:
+    """Undo the input's settings when its ``nat`` or ``ntyp`` differ from the output header's: an
+    input of another calculation that lies beside the output (taken by its name)."""
+    if taken is None:
+        return
+    name, got, size = taken
+    text = "".join(header)
+    seen = [(k, int(m.group(1)), want) for (k, rx), want in zip(_SIZE.items(), size)
+            if want is not None and (m := rx.search(text))]
+    wrong = [f"{k} = {want}, the output {n}" for k, n, want in seen if n != want]
+    if not wrong:
+        return
+    for key in (*got, "settings_from"):
+        ctx.settings.pop(key, None)
+    ctx.warn(f"the pw.x input {name} beside it is not this output's ({'; '.join(wrong)}): its "
+             f"settings are not used")
 
 
 # ---------------------------------------------------------------- folders

@@ -510,8 +510,8 @@ def _summary_section(rec):
                  "no group relations, so the group level compares group numbers and operation "
                  "counts only).</p>")
     if len(rec.get("frames") or []) == 1:
-        body += ('<p class="fact"><b>One frame</b>: the run holds a single structure, so nothing can '
-                 "drift; the verdict compares the structure with itself and the plots show that one "
+        body += ('<p class="fact"><b>One frame</b>: one structure was read, so nothing can drift; '
+                 "the verdict compares the structure with itself and the plots show that one "
                  "step.</p>")
     elif run.get("fixed_cell"):
         free = _cell_free(run)
