@@ -350,9 +350,10 @@ def _split_volatile(rec: dict) -> dict:
 
 def _skip_reason(exc) -> dict | None:
     """A run driftwatch cannot analyse by its nature (a molecule, cluster or wire: not a layer and
-    not bulk): the reason and the setting that would include it, or None for a real failure."""
-    from .errors import NotPeriodicError
-    if not isinstance(exc, NotPeriodicError):
+    not bulk; a pw.x band-structure run: no ionic step): the reason and what would include it, or
+    None for a real failure."""
+    from .errors import NoIonicStepError, NotPeriodicError
+    if not isinstance(exc, (NotPeriodicError, NoIonicStepError)):
         return None
     return {"reason": exc.reason, "include": exc.include}
 

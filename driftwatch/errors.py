@@ -57,6 +57,16 @@ class NotPeriodicError(GeometryError):
         self.reason, self.include = reason, include
 
 
+class NoIonicStepError(InputError):
+    """A complete output with no ionic step by its nature (pw.x's non-self-consistent runs): not
+    analysed and not failed (an audit lists it as skipped: ``reason``, and ``include``, what would
+    give a run)."""
+
+    def __init__(self, path, reason: str, include: str):
+        super().__init__(path, f"{reason}; to include it: {include}")
+        self.reason, self.include = reason, include
+
+
 class ConfigError(DriftwatchError, ValueError):
     """A configuration file or value is invalid. The message names the key."""
 

@@ -604,9 +604,24 @@ def _text(direction, lv, sv, frames) -> str:
             f" {_from(frames, sv['from_frame'])}" if sv["exact"] or sv["after_step"] is None
             else f" between steps {sv['after_step']} and {sv['from_step']}")
         parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
+        looser = _looser(sv)
+        if looser:
+            parts.append(looser)
     head = f"{direction} (initial -> final structure; no ionic steps between them)" if ends \
         else direction
     return f"{head}: " + "; ".join(parts)
+
+
+def _looser(sv) -> str | None:
+    """The first common symprec above the verdict's whose group verdict says otherwise (atoms
+    that settled onto a symmetric configuration to within 0.1 Å but not 1e-3 Å: a relaxed defect
+    in a fixed host cell), or None."""
+    for key, v in sorted((sv.get("at") or {}).items(), key=lambda kv: float(kv[0])):
+        if float(key) > sv["symprec"] and v["direction"] != sv["direction"]:
+            (g0, s0), (g1, s1) = v["initial"], v["final"]
+            grp = f"{s0} ({g0})" if v["direction"] == "kept" else f"{s0} ({g0}) -> {s1} ({g1})"
+            return f"at symprec {key} Å: group {v['direction']} {grp}"
+    return None
 
 
 def _state(frame, types, within, dim):

@@ -310,11 +310,12 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 39
-    assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/OUTCAR_example_1.gz",
-                                                           "mixed/ase_generic/gpaw_h2.txt"]
+    assert summary["failed"] == [] and summary["runs"] == 41
+    assert sorted(k["run"] for k in summary["skipped"]) == [
+        "mixed/OUTCAR_example_1.gz", "mixed/ase_generic/gpaw_h2.txt",
+        "mixed/qe_example_h2o_mt", "mixed/qe_example_si_bands"]
     assert all(k["include"] for k in summary["skipped"])
-    assert ("39 runs: 37 with a verdict, 0 failed, 2 skipped (39 read now, 0 from the cache)"
+    assert ("41 runs: 37 with a verdict, 0 failed, 4 skipped (41 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
     assert ("not relaxations: 12 runs (finite differences 1, molecular dynamics 3, "
@@ -1693,3 +1694,54 @@ def test_the_lattice_a_cell_nears_is_the_most_specific_of_types_at_one_distance(
     flag = next(f for f in record["flags"] if f["code"] == "lattice-nearing")
     assert flag["message"].startswith("the lattice moved toward cF (face-centred cubic)"), flag
     assert record["summary"]["drift"]["type"] == "cF"
+
+
+def test_a_defect_that_settled_onto_a_symmetric_configuration_at_a_looser_symprec_is_said():
+    """The rattled Cd vacancy (-30 % bond distortion) starts P1 at every symprec up to 0.1 Å and
+    relaxes, in its fixed cell, to a structure spglib calls Cmm2 (35) at 0.1 Å but P1 at 1e-3 Å
+    (spglib called directly). The verdict at 1e-3 Å stays "kept P1" and adds what 0.1 Å says;
+    judged at 0.1 Å (the user's config), the run gained Cmm2 and raises group-gained."""
+    import spglib
+    from driftwatch import analyze, config
+    case = VACANCY / "m30"
+    groups = {}
+    for name in ("POSCAR", "CONTCAR"):
+        a = ase.io.read(case / name)
+        cell = (a.cell.array, a.get_scaled_positions(), a.numbers)
+        groups[name] = [spglib.get_symmetry_dataset(cell, symprec=s).number for s in (1e-3, 0.1)]
+    assert groups == {"POSCAR": [1, 1], "CONTCAR": [1, 35]}
+    v = analyze(case)["summary"]["verdict"]
+    assert v["direction"] == "kept" and v["text"].endswith(
+        "group kept P1 (1) at symprec 0.001 Å; at symprec 0.1 Å: group gained P1 (1) -> Cmm2 (35)")
+    loose = analyze(case, config.load(overrides={"rules.structure.symprec": "0.1 Å"}))
+    assert loose["summary"]["verdict"]["direction"] == "gained"
+    assert "group-gained" in {f["code"] for f in loose["flags"]}
+
+
+def test_pwx_runs_with_nothing_to_judge_are_skipped_not_failed(tmp_path):
+    """Two genuine pw.x outputs of Quantum ESPRESSO's examples: a water molecule computed as an
+    isolated system (pw.x 6.2 prints "Assuming isolated system, Martyna-Tuckerman method"; in its
+    6.35 Å box no empty gap exceeds 6 Å, so the gap rule alone reads it as a cubic crystal), and a
+    band-structure run of Si ("Band Structure Calculation": no SCF energy, no ionic step). Both are
+    skipped with their reason (they were a 'bulk cP' verdict and a failed run), the audit exits 0."""
+    from driftwatch import geometry
+    from driftwatch.errors import NoIonicStepError, NotPeriodicError
+    h2o = PUB / "qe_example_h2o_mt" / "h2o.out.gz"
+    a = ase.io.read(h2o, format="espresso-out")
+    assert geometry.classify(a.cell.array[None], a.pbc, a.positions[None]).dimension == 3
+    with pytest.raises(NotPeriodicError, match="pw.x computed it as an isolated system"):
+        read_run(h2o)
+    bands = PUB / "qe_example_si_bands" / "si.band.david.out.gz"
+    with pytest.raises(NoIonicStepError, match="a non-self-consistent run"):
+        read_run(bands)
+    camp = tmp_path / "camp"
+    for src in (h2o.parent, bands.parent):
+        shutil.copytree(src, camp / src.name)
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report", "--progress", "off"],
+                          capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["failed"] == [] and [k["run"] for k in summary["skipped"]] == [
+        "camp/qe_example_h2o_mt", "camp/qe_example_si_bands"]
+    assert "2 runs: 0 with a verdict, 0 failed, 2 skipped" in proc.stdout

@@ -44,7 +44,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import InputError, NoIonicStepError, NotPeriodicError
 from ._io import Lines, peek, strip_compression, tail_bytes
 from .run import Frame, ReadContext, decimals
 
@@ -55,6 +55,9 @@ _START = "Program PWSCF"
 _SCF_START = ("Self-consistent Calculation", "iteration #", "!    total energy")
 _NSCF_START = "Band Structure Calculation"
 _HEADER_END = (*_SCF_START, _NSCF_START)     # where a run's header ends (an nscf run has no SCF)
+# printed in the header of a run with assume_isolated = 'martyna-tuckerman' (PW/src/summary.f90 of
+# QE's sources): pw.x's own word that the cell holds an isolated system (a molecule, a cluster)
+_ISOLATED = "Assuming isolated system, Martyna-Tuckerman method"
 # pw.x's total time, printed once as a run ends (print_clock's layout: "PWSCF", padded, " :"); pw.x
 # before 6 ends with it and no JOB DONE (pwtools' genuine 4.1.2 vc-relax, tests/data/public)
 _CLOCK = "PWSCF        :"
@@ -248,6 +251,7 @@ def read_pw_out(path, ctx: ReadContext):
     alat = natoms = None
     pending_cell = None
     seen_start = False
+    nscf = False        # a run of this file was 'Band Structure Calculation'
     per_run: list[int] = []     # frames emitted per pw.x run (header) in this file
     carried = ctx.carry.pop("espresso-unevaluated", None)
 
@@ -340,9 +344,13 @@ def read_pw_out(path, ctx: ReadContext):
                 cur, pending_cell = _Config(cell, pos, numbers, nconf), None
                 cur.from_header, cur.restored = True, restored
                 cur.restored_index = restored_index
+                if _ISOLATED in "".join(header):
+                    raise NotPeriodicError(f"a molecule or cluster: pw.x computed it as an "
+                                           f"isolated system ('{_ISOLATED}')",
+                                           "a periodic calculation of it (no assume_isolated)",
+                                           path)
                 if _NSCF_START in ln:
-                    ctx.warn("a non-self-consistent run ('Band Structure Calculation': "
-                             "calculation = 'nscf' or 'bands'): no SCF energy, no ionic step")
+                    nscf = True
                 per_run.append(0)
                 nconf += 1
                 if "!    total energy" in ln:
@@ -428,6 +436,11 @@ def read_pw_out(path, ctx: ReadContext):
         if not seen_start:
             raise InputError(path, "no completed ionic step (no 'Program PWSCF' line: not a "
                                    "pw.x output, or cut before its header)")
+        if nscf and not step:
+            raise NoIonicStepError(path, "a non-self-consistent run ('Band Structure "
+                                         "Calculation': calculation = 'nscf' or 'bands'): no SCF "
+                                         "energy, no ionic step",
+                                   "its structure is the one of the run it follows: audit that")
         ctx.carry["espresso-unevaluated"] = unevaluated(cur)
         runs = [(f"run{k + 1}", n) for k, n in enumerate(per_run) if n]
         if len(per_run) > 1 and len(runs) > 1:
