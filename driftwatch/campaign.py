@@ -32,7 +32,9 @@
    the same input, so an interrupted and re-run audit leaves the same bytes as an uninterrupted
    one; per-run timing stays in the cache entry and the campaign total in ``campaign.json``), ``campaign.csv``, ``runs.db`` (ase.db, one row per run), ``campaign.json``
    (the summary returned) and the HTML report. Records of runs no longer in the campaign (or now
-   failing) are moved to ``records/stale/``, so ``records/`` holds exactly the current campaign.
+   failing) are moved to ``records/stale/``, so ``records/`` holds exactly the current campaign;
+   their database rows (the run ids the previous audit wrote, kept in the folder's marker) are
+   deleted, so ``runs.db`` holds exactly the current campaign too.
 """
 
 from __future__ import annotations
@@ -714,11 +716,14 @@ def _read_marker(out: Path) -> dict | None:
     return data if isinstance(data, dict) and data.get("tool") == "driftwatch" else None
 
 
-def _write_marker(out: Path, roots: list[str], record_files: list[str]) -> None:
+def _write_marker(out: Path, roots: list[str], record_files: list[str],
+                  db_runs: list[str]) -> None:
+    """The output folder's own marker: what wrote it, and the records and database rows (run ids)
+    this audit wrote, which the next audit retires when their runs are gone."""
     from . import __version__
     records.write_text_atomic(out / MARKER, json.dumps(
         {"tool": "driftwatch", "kind": "campaign audit", "version": __version__, "roots": roots,
-         "records": sorted(record_files)}, indent=1) + "\n")
+         "records": sorted(record_files), "db_runs": sorted(db_runs)}, indent=1) + "\n")
 
 
 def _prepare_output(out: Path, roots: list[str], overwrite: bool,
@@ -745,7 +750,8 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
         _check_links(out, db_name)
         for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
             records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
-        _write_marker(out, roots, (marker or {}).get("records", []))
+        _write_marker(out, roots, (marker or {}).get("records", []),
+                      (marker or {}).get("db_runs", []))
     except OutputError:
         raise
     except OSError as exc:
@@ -1075,12 +1081,13 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     current = {res.names[r["run"]] for r in ok}
     _check_links(out, db_name)                # again: a link planted while the runs were analysed
     stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
-    db_problems = _write_tables(out, db_name, ok, failed, skipped)
+    db_problems, db_runs = _write_tables(out, db_name, ok, failed, skipped,
+                                         gone=old_marker.get("db_runs", []))
     summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
                        db_problems, stale, skipped)
     summary["elapsed_s"] = time.perf_counter() - t0
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-    _write_marker(out, roots_abs, sorted(current))
+    _write_marker(out, roots_abs, sorted(current), db_runs)
     if report:
         summary["report"] = str(_build_report(out, summary, workers=workers or os.cpu_count() or 1,
                                               progress=progress_on(progress)))
@@ -1173,9 +1180,10 @@ class _Results:
 
 
 def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
-                 skipped=()) -> list[str]:
+                 skipped=(), gone=()) -> tuple[list[str], list[str]]:
     """campaign.csv and the database rows (failed runs too: an empty structure, their error;
-    skipped runs in the CSV with their reason)."""
+    skipped runs in the CSV with their reason); the rows of runs in ``gone`` (the previous
+    audit's) that are no run now are deleted. Returns (database problems, run ids written)."""
     from .store import write_rows
     rows = [r["view"]["csv"] for r in ok]
     rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
@@ -1188,7 +1196,9 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
     db_rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
                                   "error": f["error"][:300]}) for f in failed]
-    return write_rows(db_name, sorted(db_rows, key=lambda x: x[0]))
+    ids = sorted(x[0] for x in db_rows)
+    return write_rows(db_name, sorted(db_rows, key=lambda x: x[0]),
+                      remove=sorted(set(gone) - set(ids))), ids
 
 
 def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_name, db_problems,

@@ -109,8 +109,9 @@ def _same(row, structure: dict | None, kvp: dict) -> bool:
         return False        # a backend without these columns: rewrite the row
 
 
-def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str]:
-    """Upsert rows ``(run_id, structure or None, key_value_pairs)`` in one transaction.
+def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) -> list[str]:
+    """Upsert rows ``(run_id, structure or None, key_value_pairs)`` and delete the rows of the run
+    ids in ``remove`` (runs gone from the campaign), in one transaction.
 
     Returns one-line problems for rows ase.db rejected (the other rows are still written).
     Raises OutputError for a locked or unwritable database.
@@ -127,10 +128,13 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]]) -> list[str
     try:
         with db:
             wanted = {run_id for run_id, _, _ in rows}
+            gone = {shown(r) for r in remove} - wanted
             have: dict = {}                        # run_id -> its stored row
             extra = []                              # second rows of one run (older versions)
             for row in sorted(_rows_with_run_id(db), key=lambda r: r.id):
                 rid = shown(row.get("run_id"))      # rows written with raw names match too
+                if rid in gone:
+                    extra.append(row.id)
                 if rid not in wanted:
                     continue
                 if rid in have:

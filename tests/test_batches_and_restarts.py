@@ -703,3 +703,20 @@ def test_md_frames_written_without_a_description_are_told_by_their_momenta(tmp_p
         run = read_run(tmp_path / f"{name}.traj")
         assert run.not_relaxation == ("molecular dynamics (no class named; the frames' atomic "
                                       "momenta change)" if name == "md" else None), name
+
+
+def test_a_new_run_appended_to_one_output_is_numbered_as_the_same_run_in_two_folders(tmp_path):
+    """A run started again from scratch with `pw.x < pw.in >> pw.out` (the real pw.x 6.7 outputs of
+    tests/data/qe/restart_stage_folders written into one file, byte for byte as the shell appends
+    them). The first run's last printed structure was never evaluated; the appended run must not
+    leave a gap for it: its steps are those of the same two runs read as stage folders (and ASE's
+    frames of the joined file, one per step)."""
+    base = QE / "restart_stage_folders"
+    joined = tmp_path / "job" / "pw.out"
+    joined.parent.mkdir()
+    joined.write_text("".join((base / s / "pw.out").read_text() for s in ("relax1", "relax2")))
+    appended, staged = read_run(joined), read_run(base)
+    assert [int(s) for s in appended.steps] == [int(s) for s in staged.steps] == \
+        list(range(len(staged)))
+    assert len(ase.io.read(joined, ":", format="espresso-out")) == len(appended)
+    assert np.allclose(appended.positions, staged.positions)

@@ -308,12 +308,31 @@ def test_records_of_removed_runs_move_to_stale(tmp_path):
     run_audit([camp], out)
     user_file = out / "records" / "my-notes.json"
     user_file.write_text("{}")
-    (camp / "layers" / "L-obl.traj").unlink()
+    rows = {r.run_id: r.id for r in ase.db.connect(out / "runs.db").select()}
+    gone = camp / "layers" / "L-obl.traj"
+    kept_bytes = gone.read_bytes()
+    gone.unlink()
     s = run_audit([camp], out)
     assert not (out / "records" / "camp_layers_L-obl.traj.json").exists()
     assert (out / "records" / "stale" / "camp_layers_L-obl.traj.json").is_file()
     assert s["stale_records"] == ["records/stale/camp_layers_L-obl.traj.json"]
     assert user_file.read_text() == "{}"          # never touched: driftwatch did not write it
+    # runs.db holds the current campaign too: the gone run's row is deleted, the others keep theirs
+    now = {r.run_id: r.id for r in ase.db.connect(out / "runs.db").select()}
+    assert len(now) == s["runs"] == len(rows) - 1 and "camp/layers/L-obl.traj" in rows
+    assert all(rows[k] == v for k, v in now.items())
+    gone.write_bytes(kept_bytes)                  # back again: one row again
+    s = run_audit([camp], out)
+    assert sorted(r.run_id for r in ase.db.connect(out / "runs.db").select()) == sorted(rows)
+    # a database shared with another output folder keeps that folder's rows: only the run ids this
+    # folder's previous audit wrote are deleted
+    other = tmp_path / "other"
+    (other / "x").mkdir(parents=True)
+    shutil.copy(gone, other / "x" / "A.traj")
+    run_audit([other], tmp_path / "out2", db=str(out / "runs.db"))
+    (camp / "layers" / "L-obl.traj").unlink()
+    run_audit([camp], out)
+    assert "other/x/A.traj" in {r.run_id for r in ase.db.connect(out / "runs.db").select()}
 
 
 def test_interrupted_audit_rerun_gives_identical_records(tmp_path, killable_env):

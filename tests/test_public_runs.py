@@ -1745,3 +1745,24 @@ def test_pwx_runs_with_nothing_to_judge_are_skipped_not_failed(tmp_path):
     assert summary["failed"] == [] and [k["run"] for k in summary["skipped"]] == [
         "camp/qe_example_h2o_mt", "camp/qe_example_si_bands"]
     assert "2 runs: 0 with a verdict, 0 failed, 2 skipped" in proc.stdout
+
+
+def test_a_pwx_input_edited_after_the_run_does_not_hide_the_codes_symmetry(tmp_path):
+    """A user adds nosym = .true. to pw.in to prepare a rerun; the output that was run still says
+    pw.x held its symmetry ("48 Sym. Ops." in the bundled B02, a real pw.x 6.7 run), so the
+    held-by-code flag must stay, with a warning that the input is not the one the run read. A run
+    made with nosym (B03) prints "No symmetry found" and gets no such warning."""
+    from driftwatch import analyze
+    case = tmp_path / "B02"
+    shutil.copytree(REPO / "example_runs" / "B02_qe_vcrelax_sym", case)
+    assert "held-by-code" in {f["code"] for f in analyze(case)["flags"]}
+    text = (case / "pw.in").read_text()
+    (case / "pw.in").write_text(text.replace("&system", "&system\n  nosym = .true.", 1))
+    assert "nosym = .true." in (case / "pw.in").read_text()
+    record = analyze(case)
+    assert "held-by-code" in {f["code"] for f in record["flags"]}
+    assert any("says nosym = .true., but this output found 48 symmetry operations" in w
+               for w in record["run"]["warnings"]), record["run"]["warnings"]
+    b03 = REPO / "example_runs" / "B03_qe_vcrelax_nosym"
+    assert "No symmetry found" in (b03 / "pw.out").read_text()
+    assert not [w for w in read_run(b03).warnings if "says nosym" in w]

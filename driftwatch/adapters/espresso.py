@@ -335,12 +335,24 @@ def read_pw_out(path, ctx: ReadContext):
                 natoms = len(numbers)
                 _check_input(taken, header, ctx)
                 taken = None                      # the first header decides
+                if nsym is not None and nsym > 1 and ctx.settings.get("nosym") and \
+                        ctx.settings.get("settings_from"):
+                    ctx.warn(f"the pw.x input {ctx.settings['settings_from']} says nosym = "
+                             f".true., but this output found {nsym} symmetry operations (pw.x "
+                             f"with nosym prints 'No symmetry found'): the input is not the one "
+                             f"this run read (edited since?); its nosym is not used")
+                    ctx.settings["nosym"] = False
                 if nsym is not None:
                     ctx.settings.setdefault("code", "espresso")
                     if "nsym" in ctx.settings and ctx.settings["nsym"] != nsym:
                         ctx.warn(f"pw.x reports {nsym} symmetry operations in a later run "
                                  f"(first run: {ctx.settings['nsym']})")
                     ctx.settings.setdefault("nsym", nsym)
+                # a run appended after a structure pw.x printed but never evaluated (its step
+                # limit, a relax's final coordinates) takes that structure's place in the
+                # numbering, as the next file of a restart written apart does
+                if restored_index is not None:
+                    nconf = restored_index
                 cur, pending_cell = _Config(cell, pos, numbers, nconf), None
                 cur.from_header, cur.restored = True, restored
                 cur.restored_index = restored_index
