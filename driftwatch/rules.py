@@ -859,9 +859,11 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
 
     ``changes`` counts the runs whose spglib verdict (group number) on the final structure differs
     between consecutive ``common`` symprecs (Å). A run is *safe* at a symprec when that value sits
-    inside a plateau of one verdict with at least a factor ``SAFE_MARGIN`` to the next breakpoint on
-    both sides (a plateau reaching the end of the run's grid counts as open there) and is not below
-    what its file resolves. The searched range is the runs' own symprec grid (``window`` to narrow
+    inside the plateau its own advice recommends (:func:`advice`; any plateau when one verdict holds
+    over its whole grid) with at least a factor ``SAFE_MARGIN`` to the next breakpoint on both sides
+    (a plateau reaching the end of the run's grid counts as open there) and is not below what its
+    file resolves: a stretch of P1 below the group a run settles on is not a verdict to recommend
+    for the campaign, any more than for the run. The searched range is the runs' own symprec grid (``window`` to narrow
     it, Å). The recommended symprec is the geometric centre of the widest range where the most runs
     are safe. A starting point for the user's own check, not a guarantee.
     """
@@ -894,7 +896,16 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
         return _left_out_said(out)
 
     def ranges_of(t):
-        return t.get("ranges", t.get("stable_ranges", []))
+        """The stretches a run may be judged in: the plateau its own advice recommends (a
+        stretch of P1 below a real group, or of a lower group below the widest one, is what
+        spglib calls the structure's smallest deviations, not its verdict), or every stretch
+        when one verdict holds over the whole grid."""
+        every = t.get("ranges", t.get("stable_ranges", []))
+        p = t.get("plateau")
+        if t.get("kind") != "plateau" or not p:
+            return every
+        return [r for r in every if r[2] == p["group"] and r[0] <= p["low"] * (1 + 1e-9)
+                and r[1] >= p["high"] * (1 - 1e-9)][:1] or every
 
     def safe(s):
         return [rid for rid, _, t, lo, hi in per_run
@@ -924,11 +935,14 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     ok = safe(s)
     out.update(recommended_symprec=s, safe_runs=len(ok),
                unsafe_run_ids=[rid for rid, *_ in per_run if rid not in ok][:50],
-               reason=f"{len(ok)} of {len(per_run)} runs keep one spglib verdict on the final "
-                      f"structure within a factor {SAFE_MARGIN:g} either side of {_g(s)} Å; this is "
-                      f"the centre of the widest symprec range ({_g(grid[a])}-{_g(grid[b])} Å, "
-                      f"searched {_g(window[0])}-{_g(window[1])} Å) where the most runs are safe. "
-                      f"A starting point for your own check"
+               reason=f"{len(ok)} of {len(per_run)} runs keep the spglib verdict on the final "
+                      f"structure that their own advice recommends within a factor "
+                      f"{SAFE_MARGIN:g} either side of {_g(s)} Å; this is the centre of the widest "
+                      f"symprec range ({_g(grid[a])}-{_g(grid[b])} Å, searched {_g(window[0])}-"
+                      f"{_g(window[1])} Å) where the most runs are safe"
+                      + ("" if a else "; it starts at the bottom of the searched range, where "
+                         "spglib sees the smallest deviations from symmetry")
+                      + ". A starting point for your own check"
                       + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
     return _left_out_said(out)
 

@@ -1766,3 +1766,24 @@ def test_a_pwx_input_edited_after_the_run_does_not_hide_the_codes_symmetry(tmp_p
     b03 = REPO / "example_runs" / "B03_qe_vcrelax_nosym"
     assert "No symmetry found" in (b03 / "pw.out").read_text()
     assert not [w for w in read_run(b03).warnings if "says nosym" in w]
+
+
+def test_the_campaign_symprec_counts_a_run_safe_only_in_the_plateau_its_own_advice_recommends():
+    """Before, a run was 'safe' in any plateau: the rattled-and-relaxed vacancy whose own advice is
+    Cmm2 from 0.018 Å (P1 below it) counted as safe at 1e-4 Å in P1, so the campaign symprec sank to
+    the bottom of the grid where every structure is judged by its smallest deviations. Genuine
+    vacancy relaxations (ShakeNBreak) and the bundled B05 (a real EMT relaxation to Fm-3m)."""
+    from driftwatch import analyze
+    from driftwatch.rules import advice_item, campaign_advice
+    recs = {name: analyze(path) for name, path in (
+        ("m10", VACANCY / "m10"), ("m30", VACANCY / "m30"),
+        ("B05", REPO / "example_runs" / "B05_emt_bfgs.extxyz"))}
+    own = {n: r["summary"]["tolerance"]["plateau"] for n, r in recs.items()}
+    assert (own["m30"]["symbol"], own["m10"]["symbol"]) == ("Cmm2", "P1")
+    tol = campaign_advice([advice_item(n, r) for n, r in recs.items()], [1e-5, 1e-3, 1e-2, 0.1])
+    s = tol["recommended_symprec"]
+    safe = set(recs) - set(tol.get("unsafe_run_ids", []))
+    assert tol["safe_runs"] == len(safe) >= 1
+    for name in safe:                      # each safe run is inside its own recommended plateau
+        assert own[name]["low"] <= s <= own[name]["high"], (name, s, own[name])
+    assert not ("m10" in safe and "m30" in safe)   # their plateaus do not overlap
