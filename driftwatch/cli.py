@@ -177,7 +177,7 @@ def _group_cell(f: dict, symprec: float) -> str:
 def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
-    from .records import END_POINTS, stages_text
+    from .records import END_POINTS, atoms_text, stages_text
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -215,6 +215,9 @@ def _inspect_table(rec: dict) -> str:
     if d:
         lines.append(f"   drift: deformation to {d['type']} ({NAMES[d['type']]}) "
                      f"{_fmt(d['initial'])} Å -> {_fmt(d['final'])} Å")
+    at = s.get("atoms")
+    if at:
+        lines.append(f"   atoms: {atoms_text(at)}")
     if s.get("lattice_note"):
         lines.append(f"    note: {s['lattice_note']}")
     if s.get("supercell"):

@@ -256,6 +256,14 @@ END_POINTS = "2 structures (initial and final only; no ionic steps between them)
 """How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
 
 
+def atoms_text(atoms: dict) -> str:
+    """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output."""
+    a, b = atoms["start"], atoms["end"]
+    return (f"to {atoms['symbol']} ({atoms['group']}), the final structure's group at symprec "
+            f"{atoms['symprec']:.3g} Å: rms {a['rms']:.3g} Å at the start, {b['rms']:.3g} Å at the "
+            f"end (max {a['max']:.3g} -> {b['max']:.3g} Å)")
+
+
 def stages_text(record: dict) -> str | None:
     """The stages of a multi-stage run in words, for every output: ``relax1 (steps 0-59),
     relax2 (steps 60-64)`` (an end-points run: ``POSCAR (initial), CONTCAR (final)``); None for a

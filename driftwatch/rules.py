@@ -677,8 +677,27 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
         "tolerance": tol,
         "lattice_note": _lattice_note(record["run"]),
         "supercell": _supercell(frames, final["type"]),
+        "atoms": _atoms_toward(frames, cfg["rules"]["symprec_dependent"]["high"]),
     }
     return flags, summary
+
+
+def _atoms_toward(frames, loosest) -> dict | None:
+    """Where the atoms came from, for the most symmetric group spglib finds on the final structure
+    at a symprec up to ``loosest`` (Å): the displacement (RMS and max, Å) of the first frame and of
+    the final one to that group's symmetric configuration (the final structure's instance of it).
+    None for one frame, or when no such group beyond P1 (p1) was measured on both."""
+    if len(frames) < 2:
+        return None
+    table = ((frames[-1].get("symmetry") or {}).get("displacement") or {}).values()
+    cand = [d for d in table if isinstance(d, dict) and "rms" in d and d.get("operations", 1) > 1
+            and d["symprec"] <= loosest * (1 + 1e-9) and "rms" in (d.get("start") or {})]
+    if not cand:
+        return None
+    d = max(cand, key=lambda d: (d["operations"], -d["symprec"]))
+    return {"group": d["group"], "symbol": d["symbol"], "symprec": d["symprec"],
+            "start": {"rms": d["start"]["rms"], "max": d["start"]["max"]},
+            "end": {"rms": d["rms"], "max": d["max"]}}
 
 
 def _lattice_note(run: dict) -> str | None:

@@ -60,7 +60,8 @@ import spglib  # noqa: E402
 from .errors import ConfigError, GeometryError, LatticeError, SymmetryError
 
 __all__ = [
-    "DEFAULT_SYMPRECS", "DEFAULT_PRECISION", "spectrum", "displacement_to_group", "drift_table",
+    "DEFAULT_SYMPRECS", "DEFAULT_PRECISION", "spectrum", "displacement_to_group", "displacement_from",
+    "drift_table",
     "symmetrize", "versions", "clear_cache", "group_at", "relation", "primitive_lattice",
 ]
 
@@ -852,12 +853,15 @@ def _translation_average(frac, numbers, lattice, T, basis, ds):
     return y, orbit.min(axis=0)
 
 
-def _projection(lattice, frac, numbers, symprec, angle_tolerance, layer):
+def _projection(lattice, frac, numbers, symprec, angle_tolerance, layer, ds=None):
     """Symmetric positions (input fractional) for the group found at symprec; see
-    ``displacement_to_group``. Returns (dataset, point rotations, xbar, cart shift, complete)."""
-    ds, msg = _dataset(lattice, frac, numbers, symprec, angle_tolerance, layer)
+    ``displacement_to_group``. ``ds``: the dataset of another structure of the same atoms in the
+    same cell basis (an earlier frame of the run), whose instance of the group is projected on.
+    Returns (dataset, point rotations, xbar, cart shift, complete)."""
     if ds is None:
-        raise SymmetryError(f"spglib found no symmetry at symprec={symprec:g} Å: {msg}")
+        ds, msg = _dataset(lattice, frac, numbers, symprec, angle_tolerance, layer)
+        if ds is None:
+            raise SymmetryError(f"spglib found no symmetry at symprec={symprec:g} Å: {msg}")
     rot, tr, complete = _group_in_input_setting(ds, layer)
     T = _pure_translations(ds)
     basis = _primitive_basis(lattice, T) if complete else None
@@ -970,12 +974,38 @@ def symmetrize(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuu
     return new, positions_out, int(ds.number)
 
 
-def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None):
+def displacement_from(start, cell, positions, numbers, symprec, *, angle_tolerance=-1.0,
+                      vacuum_axis=None) -> dict:
+    """How far the atoms of ``start`` (cell, positions: another structure of the same atoms in
+    the same cell basis, e.g. a run's first frame) are from the symmetric configuration of the
+    group spglib finds on this structure at ``symprec``: the projection of ``displacement_to_group``
+    with *this* structure's instance of the group (its operations, its atom classes), applied to
+    ``start``. Returns ``{"rms", "max"}`` Å, or ``{"error"}`` when the operations do not map
+    ``start``'s atoms onto one another (a structure too far from the group)."""
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    layer = vacuum_axis is not None
+    ds, msg = _dataset(lattice, frac, nums, float(symprec), float(angle_tolerance), layer)
+    if ds is None:
+        return {"error": f"spglib found no symmetry at symprec={symprec:g} Å: {msg}"}
+    lat0, frac0, nums0 = _prepare(start[0], start[1], numbers, vacuum_axis)
+    try:
+        _, _, _, shift, _ = _projection(lat0, frac0, nums0, float(symprec),
+                                        float(angle_tolerance), layer, ds=ds)
+    except SymmetryError as exc:
+        return {"error": str(exc)}
+    norms = np.linalg.norm(shift, axis=1)
+    return {"rms": float(np.sqrt(np.mean(norms ** 2))), "max": float(norms.max())}
+
+
+def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None, start=None):
     """Displacement to each group seen in ``spec`` (a ``spectrum`` result for this structure).
 
     Keyed by group number as str; each entry is ``displacement_to_group`` at the smallest symprec
     at which spglib gave that group (grid points and bisection bracket ends), or ``{"group",
     "symprec", "error"}`` when that failed. ``vacuum_axis`` defaults to the spectrum's own.
+    ``start`` (cell, positions of the run's first frame, same atoms): each entry also gets
+    ``start`` = :func:`displacement_from` that frame to the same instance of the group (where the
+    atoms came from: a structure that settled onto the group starts far and ends close).
     """
     axis = spec.get("vacuum_axis") if vacuum_axis is None else vacuum_axis
     if "vacuum_axis" in spec and spec["vacuum_axis"] != axis:
@@ -997,6 +1027,10 @@ def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None):
             table[str(g)] = displacement_to_group(
                 cell, positions, numbers, symprec=s, angle_tolerance=spec["angle_tolerance"],
                 vacuum_axis=axis)
+            if start is not None and table[str(g)]["operations"] > 1:
+                table[str(g)]["start"] = displacement_from(
+                    start, cell, positions, numbers, s, angle_tolerance=spec["angle_tolerance"],
+                    vacuum_axis=axis)
         except SymmetryError as exc:
             table[str(g)] = {"group": g, "symprec": s, "error": str(exc)}
     return table

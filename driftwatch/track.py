@@ -342,8 +342,9 @@ class FrameTable:
 
 
 def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = None,
-                   brackets: str | None = "all") -> dict:
-    """spglib's tolerance spectrum of frame ``i`` plus the displacement to each group it saw.
+                   brackets: str | None = "all", start: int | None = None) -> dict:
+    """spglib's tolerance spectrum of frame ``i`` plus the displacement to each group it saw (and,
+    with ``start``, that frame's displacement to the same instances of those groups).
 
     ``brackets`` (when ``symmetry.bisect`` is on): ``"all"`` brackets every breakpoint, of the
     structure and of the lattice alone (``driftwatch tolerance``); ``"group"`` the structure's only
@@ -355,8 +356,9 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
                              angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
                              bisect=bool(s["bisect"] and brackets), precision=s["precision"],
                              lattice_bisect=bool(s["bisect"] and brackets == "all"))
-    spec["displacement"] = symmetry.drift_table(run.cells[i], run.positions[i], run.numbers, spec,
-                                                vacuum_axis=geo.vacuum_axis)
+    spec["displacement"] = symmetry.drift_table(
+        run.cells[i], run.positions[i], run.numbers, spec, vacuum_axis=geo.vacuum_axis,
+        start=None if start is None else (run.cells[start], run.positions[start]))
     return spec
 
 
@@ -414,7 +416,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         key = (i, i == n - 1)               # the structure's brackets on the last frame only
         if key not in spectra:
             spectra[key] = symmetry_entry(run, i, geo, cfg, grid,
-                                          brackets="group" if key[1] else None)
+                                          brackets="group" if key[1] else None,
+                                          start=0 if key[1] and i else None)
             calls += int(spectra[key].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
         entries[i]["symmetry"] = spectra[key]

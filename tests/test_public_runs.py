@@ -1787,3 +1787,58 @@ def test_the_campaign_symprec_counts_a_run_safe_only_in_the_plateau_its_own_advi
     for name in safe:                      # each safe run is inside its own recommended plateau
         assert own[name]["low"] <= s <= own[name]["high"], (name, s, own[name])
     assert not ("m10" in safe and "m30" in safe)   # their plateaus do not overlap
+
+
+def _orbit_average_rms(frac, cell, numbers, rotations, translations):
+    """Brute force, atom by atom: the RMS distance (Å) of a structure to its average over the
+    given operations (each atom moved onto the mean of the images that land on it), after removing
+    the mean displacement (the origin choice). Independent of driftwatch's vectorised projection."""
+    n = len(frac)
+    acc = np.zeros((n, 3))
+    for W, w in zip(rotations, translations):
+        for i in range(n):
+            img = W @ frac[i] + w
+            best, arg = None, None
+            for j in range(n):
+                if numbers[j] != numbers[i]:
+                    continue
+                d = img - frac[j]
+                d -= np.round(d)
+                dist = np.linalg.norm(d @ cell)
+                if best is None or dist < best:
+                    best, arg, off = dist, j, d
+            acc[arg] += off
+    shift = (acc / len(rotations)) @ cell
+    shift -= shift.mean(axis=0)
+    return float(np.sqrt(np.mean(np.sum(shift ** 2, axis=1))))
+
+
+def test_how_far_the_atoms_came_to_the_final_structures_group():
+    """The relaxed vacancy (-30 %) is Cmm2 at symprec 0.0181 Å; its start (the rattled POSCAR, the
+    same fixed cell) is P1 there. The run's summary gives the displacement of both to the final
+    structure's instance of Cmm2: checked against a brute-force orbit average over spglib's own
+    operations of the final structure (spglib called directly); and the end value is no larger
+    than the distance to ASE's refine_symmetry of it (another symmetric configuration, idealised
+    from spglib's standardised cell: the projection is the least-squares nearest one)."""
+    import spglib
+    from ase.spacegroup.symmetrize import refine_symmetry
+    from driftwatch import analyze
+    rec = analyze(VACANCY / "m30")
+    at = rec["summary"]["atoms"]
+    assert (at["symbol"], at["group"]) == ("Cmm2", 35)
+    start, end = (ase.io.read(VACANCY / "m30" / n) for n in ("POSCAR", "CONTCAR"))
+    cell = end.cell.array
+    ds = spglib.get_symmetry_dataset((cell, end.get_scaled_positions(), end.numbers),
+                                     symprec=at["symprec"])
+    assert ds.number == 35
+    for atoms, value in ((start, at["start"]["rms"]), (end, at["end"]["rms"])):
+        ref = _orbit_average_rms(atoms.get_scaled_positions(), cell, atoms.numbers,
+                                 ds.rotations, ds.translations)
+        assert value == pytest.approx(ref, rel=1e-6, abs=1e-9)
+    assert at["start"]["rms"] > 50 * at["end"]["rms"] > 0     # the atoms settled onto Cmm2
+    refined = end.copy()
+    refine_symmetry(refined, symprec=at["symprec"])
+    d = refined.get_scaled_positions() - end.get_scaled_positions()
+    d = (d - np.round(d)) @ cell
+    d -= d.mean(axis=0)
+    assert at["end"]["rms"] <= np.sqrt(np.mean(np.sum(d ** 2, axis=1))) < 2 * at["end"]["rms"]

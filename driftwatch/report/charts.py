@@ -495,6 +495,13 @@ def displacement(rec) -> Chart | None:
             lab = f"{d.get('symbol', '?')} ({g})"
             series.setdefault((g, lab), []).append((int(f.get("step", i)), d.get("rms"),
                                                     d.get("max")))
+    first = int(frames[0].get("step", 0)) if frames else 0
+    for key, d in ((frames[-1].get("symmetry") or {}).get("displacement") or {}).items():
+        st = d.get("start") if isinstance(d, dict) else None   # the first frame, on the final
+        g = int(d.get("group") or 0) if isinstance(d, dict) else 0   # structure's instance
+        pts = series.get((g, f"{d.get('symbol', '?')} ({g})")) if g else None
+        if pts is not None and "rms" in (st or {}) and all(p[0] != first for p in pts):
+            pts.append((first, st["rms"], st["max"]))
     if not series:
         return None
     lines, vals, steps_all, maxes = [], [], [], []

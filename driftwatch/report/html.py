@@ -504,6 +504,9 @@ def _summary_section(rec):
     if s.get("supercell"):
         text = s["supercell"]["text"]
         body += f'<p class="fact"><b>Supercell</b>: {e(text[:1].upper() + text[1:])}.</p>'
+    if s.get("atoms"):
+        body += (f'<p class="fact"><b>Atoms</b>: the displacement {e(_records.atoms_text(s["atoms"]))}'
+                 "; the displacement plot draws the start on the same instance of the group.</p>")
     if rec.get("upgraded_from"):
         body += (f'<p class="fact"><b>Older record</b>: written as {e(rec["upgraded_from"])} and '
                  "judged again here from its own frames with this version's rules (its frames carry "
