@@ -587,7 +587,8 @@ def _fmt(x, spec=".3g"):
 
 
 def _step_line(f: dict, dim: int, within: float) -> str:
-    """``step  energy  at TYPE  nearest T1 d1, T2 d2  [sign  chiral]`` for one frame entry."""
+    """``step  energy  at TYPE  nearest T1 d1, T2 d2  [sign  chiral]`` for one frame entry
+    (chiral: :func:`driftwatch.records.chiral_deformation`)."""
     dfm = {t: v for t, v in f["deformation"].items() if t != "mirror"}
     at = [t for t, v in dfm.items() if v <= within]
     at_type = max(at, key=lambda t: rules.ORDER[t]) if at else ("mp" if dim == 2 else "aP")
@@ -597,7 +598,7 @@ def _step_line(f: dict, dim: int, within: float) -> str:
             f"nearest {nearest} Å")
     if dim == 2:
         sign = f"{f['sign']:+d}" if f["sign"] else " 0"
-        line += f"  sign {sign}  chiral {f['chiral_distance']:+.3g} Å"
+        line += f"  sign {sign}  chiral {records.chiral_deformation(f):+.3g} Å"
     return line
 
 
@@ -845,7 +846,9 @@ def _header(rec: dict) -> str:
     g = rec["geometry"]
     kind = "layer, 2D lattice" if g["dimension"] == 2 else "bulk, 3D lattice"
     return (f"driftwatch: following {rec['run']['source']} ({rec['run']['format']}; {kind}); "
-            f"deformations are Å of lattice-vector change")
+            f"deformations are Å of lattice-vector change"
+            + ("; chiral: sign × deformation to the nearest lattice with a mirror line"
+               if g["dimension"] == 2 else ""))
 
 
 def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:

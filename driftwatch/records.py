@@ -256,6 +256,13 @@ END_POINTS = "2 structures (initial and final only; no ionic steps between them)
 """How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
 
 
+def chiral_deformation(frame: dict) -> float:
+    """A layer frame's sign times its deformation (Å) to the nearest lattice with a mirror line: the
+    measure ``handedness-flip`` judges, shown as "chiral" in every output (the root-space chiral
+    distance, which grows like the square root of it, is the record's ``chiral_distance``)."""
+    return float(frame["sign"]) * float(frame["deformation"]["mirror"])
+
+
 def atoms_text(atoms: dict) -> str:
     """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output."""
     a, b = atoms["start"], atoms["end"]

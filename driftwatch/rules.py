@@ -251,7 +251,7 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     passed = [{"type": t, "from_step": int(frames[a]["step"]), "to_step": int(frames[b]["step"]),
                "frames": b - a + 1}
               for t, a, b in _stretches(states)[1:-1]
-              if t != _LOWEST[dim] and D[t][-1] > within and D[t][0] > within]
+              if t != _LOWEST[dim] and D[t][-1] > beyond and D[t][0] > within]  # left as lost
     # a type approached without being reached (beyond the gained one: L ends oc, nearing hp), the
     # deformation measured against the lattice's size: a cell that only shrinks nears nothing
     shrink = _shrink([frames[0], frames[-1]])[-1]   # the end frames only: judged every live step

@@ -29,7 +29,7 @@ from ase.calculators.singlepoint import SinglePointCalculator
 
 from driftwatch.adapters import Frame, detect, formats, iter_frames, read_run, register
 from driftwatch.adapters import registry, vasp
-from driftwatch.errors import InputError, UnknownFormatError
+from driftwatch.errors import InputError, NoIonicStepError, UnknownFormatError
 
 import vasp_gen
 
@@ -315,7 +315,8 @@ def test_a_non_self_consistent_pw_run_is_not_truncated_but_has_no_ionic_step():
     """A real pw.x 6.7 nscf run (tests/data/qe/README.md: made here after an scf run of Si2): its
     header ends at 'Band Structure Calculation', not at an SCF; the file ends with JOB DONE. It has
     no ionic step (no SCF energy), and it was not cut: the error says so, in one line naming the
-    file. ASE's reader gives the header's structure with no energy."""
+    file (a NoIonicStepError: an audit skips it, it did not fail). ASE's reader gives the header's
+    structure with no energy."""
     atoms = ase.io.read(QE_NSCF, index=":", format="espresso-out")
     assert len(atoms) == 1 and "energy" not in atoms[0].calc.results
     text = QE_NSCF.read_text()
@@ -323,8 +324,9 @@ def test_a_non_self_consistent_pw_run_is_not_truncated_but_has_no_ionic_step():
     with pytest.raises(InputError) as e:
         read_run(QE_NSCF.parent)
     msg = str(e.value)
-    assert "\n" not in msg and msg.startswith(str(QE_NSCF)) and "no completed ionic step" in msg
+    assert "\n" not in msg and msg.startswith(str(QE_NSCF)) and "no ionic step" in msg
     assert "non-self-consistent run" in msg and "truncated" not in msg
+    assert isinstance(e.value, NoIonicStepError)
 
 
 def test_errors_are_one_line_and_name_the_file(tmp_path):
@@ -909,3 +911,25 @@ def test_a_broken_vasprun_step_is_reported_where_it_is_in_the_file(tmp_path):
     (w,) = [w for w in run.warnings if "malformed XML" in w]
     assert f"line {ref.value.position[0]}, column {ref.value.position[1]}" in w, w
     assert "damaged there, not cut off" in w and "truncated" not in w
+
+
+def test_one_frame_files_that_no_optimiser_wrote_are_single_structures(tmp_path):
+    """A trajectory or extended XYZ of one frame with nothing saying an optimiser wrote it (found in
+    a field trial: a one-frame OC20 .traj counted as a relaxation 'kept' in the campaign advice) is
+    a single structure, as a POSCAR alone is; a one-frame .traj an ASE optimiser wrote (BFGS on an
+    EMT cell already at its minimum: it stops at once) stays a relaxation."""
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.optimize import BFGS
+    atoms = bulk("Cu", "fcc", a=3.6, cubic=True)
+    ase.io.write(tmp_path / "one.traj", atoms)
+    ase.io.write(tmp_path / "one.extxyz", atoms, format="extxyz")
+    for name in ("one.traj", "one.extxyz"):
+        run = read_run(tmp_path / name)
+        assert len(run) == 1 and run.not_relaxation == (
+            f"a single structure ({name}, one frame): an input or a result, no ionic steps")
+    atoms.calc = EMT()
+    with BFGS(atoms, trajectory=str(tmp_path / "opt.traj"), logfile=None) as opt:
+        opt.run(fmax=0.05)
+    run = read_run(tmp_path / "opt.traj")
+    assert len(run) == 1 and run.not_relaxation is None

@@ -457,8 +457,8 @@ def json_load(path):
 
 def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
     """Every genuine public output, the real pw.x runs (single and multi-stage), the EMT batch files
-    and pairs, audited through the command line as a user would: no failed run; the two
-    non-periodic systems skipped with the setting that would include them; exit 0."""
+    and pairs, audited through the command line as a user would: no failed run; the non-periodic
+    systems and the band-structure run skipped with what would include them; exit 0."""
     import json
     import subprocess
     import sys
@@ -475,12 +475,14 @@ def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
     assert proc.returncode == 0, proc.stderr[-3000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
     assert summary["failed"] == []
-    assert sorted(k["run"] for k in summary["skipped"]) == ["mixed/public/ase_generic/gpaw_h2.txt"]
+    assert sorted(k["run"] for k in summary["skipped"]) == [
+        "mixed/public/ase_generic/gpaw_h2.txt", "mixed/public/qe_example_h2o_mt",
+        "mixed/public/qe_example_si_bands"]
     runs = {p.stem for p in (tmp_path / "out" / "records").glob("*.json")}
     assert "mixed_qe_restart_numbered" in runs and "mixed_qe_restart_stage_folders" in runs
     assert "mixed_public_vasp522_energy_first" in runs
     assert sum("ml_batch" in r for r in runs) == 24
-    assert summary["runs"] == len(runs) + 1
+    assert summary["runs"] == len(runs) + 3
     rec = json_load(tmp_path / "out" / "records" / "mixed_ml_batch_pairs.db__Ni-rhombo-03.json")
     assert rec["run"]["kind"] == "end-points" and rec["summary"]["verdict"]["direction"] == "gained"
 

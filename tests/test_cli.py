@@ -113,3 +113,23 @@ def test_inspect_says_why_group_cells_are_blank():
     table = [ln for ln in some.stdout.splitlines() if ln.strip()[:1].isdigit()]
     assert any(len(ln.split()) < len(table[0].split()) for ln in table) and note in some.stdout
     assert note not in every.stdout
+
+
+def test_the_chiral_column_is_the_deformation_the_handedness_rule_judges():
+    """One fact, one number: inspect's and follow's "chiral" for a layer is sign x the deformation
+    to the nearest lattice with a mirror line, the measure the handedness-flip threshold reads; a
+    2D lattice has a mirror line exactly when it is op, oc, tp or hp (International Tables), so it
+    equals the smallest of those four columns, with the frame's sign (was the root-space distance,
+    which grows like its square root: 0.0702 beside oc 0.142)."""
+    path = Path(__file__).parent.parent / "example_runs" / "L10_emt_bfgs_flip.traj"
+    out = dw("inspect", path).stdout.splitlines()
+    head = out[0].split()
+    rows = [ln.split() for ln in out[1:] if ln.strip() and ln.split()[0].isdigit()]
+    assert len(rows) == 31
+    col = {name: head.index(name) for name in ("op/Å", "oc/Å", "tp/Å", "hp/Å", "sign", "chiral/Å")}
+    for r in rows:
+        nearest = min(float(r[col[t]]) for t in ("op/Å", "oc/Å", "tp/Å", "hp/Å"))
+        assert float(r[col["chiral/Å"]]) == pytest.approx(int(r[col["sign"]]) * nearest, rel=2e-3)
+    follow = dw("follow", path, "--idle", "1").stdout
+    assert "step    0  E       3.181602 eV  at mp  nearest oc 0.142, hp 0.344 Å  sign -1  " \
+           "chiral -0.142 Å" in follow

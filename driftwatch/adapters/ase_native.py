@@ -8,6 +8,7 @@ a warning from the registry.
 """
 from __future__ import annotations
 
+import os
 import re
 
 import numpy as np
@@ -165,6 +166,8 @@ def read_traj(path, ctx: ReadContext):
                     energies[-1] is None and None not in energies[1:-1]:
                 ctx.settings["band_path"] = ("its end points carry no energy, the images between "
                                              "them do: a path of images written whole")
+            if n == 1 and not desc:           # no optimiser wrote it: nothing says it relaxed
+                ctx.settings["single_structure"] = f"{os.path.basename(path)}, one frame"
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
@@ -218,12 +221,15 @@ def read_extxyz(path, ctx: ReadContext):
     # batch.extxyz_frames yields (n, comment, line number, lines) per complete frame, then
     # (None, frames read, "frame" | "line", None) when the file ends abnormally
     if chosen is None:                       # the whole file is one run: stream it
+        n = -1
         for n, a, b, block in batch.extxyz_frames(path):
             if n is None:
                 truncated(a, b)
                 return
             atoms = parse(block, b, n == 0)
             yield frame_from_atoms(atoms, _step(atoms, n))
+        if n == 0:                           # one structure: nothing says it relaxed
+            ctx.settings["single_structure"] = f"{os.path.basename(path)}, one frame"
         return
     wanted = {m.pos: k for k, m in enumerate(chosen)}
     got: dict = {}
