@@ -896,8 +896,9 @@ def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[s
         grp = (v["group_initial"] if v["group_initial"] == v["group_final"] else
                f"{v['group_initial']} -> {v['group_final']}") or "-"
         flags = ",".join(sorted({f["code"] for f in rec["flags"]})) or "-"
-        star = "*" if rec["csv"]["unfinished"] else ""      # footnoted below the table
-        rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"] + star, lat, drift, grp,
+        marks = ("~" if rec["csv"]["not_relaxation"] else "") + \
+            ("*" if rec["csv"]["unfinished"] else "")        # footnoted below the table
+        rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"] + marks, lat, drift, grp,
                      flags])
     for f in failed:
         rows.append([f["run"], "-", "failed", "-", "-", "-", f["error"]])
@@ -927,7 +928,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     head = _TABLE_HEAD
     shown = rows
     if len(rows) > TABLE_LIMIT:
-        shown = [r for r in rows if r[2] != "kept" or r[6] != "-"]
+        shown = [r for r in rows if r[2].rstrip("~") != "kept" or r[6] != "-"]
     n = len(head) - 1
     widths = [max(len(head[i]), *(len(r[i]) for r in shown)) if shown else len(head[i])
               for i in range(n)]
@@ -944,6 +945,10 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     if any(r[2].endswith("*") for r in shown):
         print("* unfinished: cut short or stopped at its step limit; the verdict compares the "
               "first frame with a structure that is not a relaxed one", file=stream)
+    if any("~" in r[2] for r in shown):
+        print("~ no relaxation (molecular dynamics, a single point or structure, a band image: "
+              "column not_relaxation of campaign.csv): the verdict compares the first and last "
+              "frames, not where a relaxation ended", file=stream)
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
     print(f"\n{counts_text(summary)} in {summary['elapsed_s']:.1f} s", file=stream)

@@ -315,6 +315,9 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         "mixed/OUTCAR_example_1.gz", "mixed/ase_generic/gpaw_h2.txt",
         "mixed/qe_example_h2o_mt", "mixed/qe_example_si_bands"]
     assert all(k["include"] for k in summary["skipped"])
+    # the table marks the runs that are no relaxation (a grep for "lost" must not read MD as drift)
+    md = next(ln for ln in proc.stdout.splitlines() if ln.startswith("mixed/vasp541_npt_md "))
+    assert md.split()[2] == "lost~" and "~ no relaxation (molecular dynamics" in proc.stdout
     assert ("41 runs: 37 with a verdict, 0 failed, 4 skipped (41 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
