@@ -464,6 +464,12 @@ def _structure_flags(frames, sv):
     rel = {"supergroup": f"{b['symbol']} contains {a['symbol']}",
            "subgroup": f"{b['symbol']} is a subgroup of {a['symbol']}",
            "unrelated": "neither group contains the other"}.get(sv["relation"], sv["relation"])
+    if a["group"] != b["group"] and a["operations"] == b["operations"] and \
+            sv["relation"] in ("supergroup", "subgroup"):   # the same operations in this cell
+        big = b if sv["relation"] == "supergroup" else a
+        rel += (f" (its point group is larger; the cell holds the same {a['operations']} "
+                f"operations of both: {big['symbol']}'s others do not map this cell's lattice onto "
+                f"itself, as in a supercell)")
     if a["group"] == b["group"] and a["operations"] != b["operations"]:   # the same type
         more = b["operations"] > a["operations"]
         rel = (f"the same space-group type with {'more' if more else 'fewer'} operations: pure "

@@ -63,6 +63,7 @@ __all__ = [
     "DEFAULT_SYMPRECS", "DEFAULT_PRECISION", "spectrum", "displacement_to_group", "displacement_from",
     "drift_table",
     "symmetrize", "versions", "clear_cache", "group_at", "relation", "primitive_lattice",
+    "POINT_ORDER",
 ]
 
 #: Default grid: 17 values log-spaced from 1e-5 Å to 0.3 Å (neighbours differ by a factor ~1.90).
@@ -591,7 +592,18 @@ def group_at(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_
     centring = np.mod(np.round(_pure_translations(ds), 6), 1.0)
     centring = sorted({tuple(float(x) % 1.0 for x in t) for t in centring})
     return {"group": int(ds.number), "symbol": str(ds.international), "operations": int(len(rot)),
-            "rotations": unique, "centring": [list(t) for t in centring]}
+            "rotations": unique, "centring": [list(t) for t in centring],
+            "point_order": POINT_ORDER.get(str(getattr(ds, "pointgroup", "")).strip())}
+
+
+# orders of the 32 crystallographic point groups, by the symbols spglib gives them (International
+# Tables for Crystallography Vol. A; the orders written from memory, each the number of its
+# operations: checked in the tests against spglib's own operation counts of primitive cells)
+POINT_ORDER = {"1": 1, "-1": 2, "2": 2, "m": 2, "2/m": 4, "222": 4, "mm2": 4, "mmm": 8,
+               "4": 4, "-4": 4, "4/m": 8, "422": 8, "4mm": 8, "-42m": 8, "4/mmm": 16,
+               "3": 3, "-3": 6, "32": 6, "3m": 6, "-3m": 12, "6": 6, "-6": 6, "6/m": 12,
+               "622": 12, "6mm": 12, "-6m2": 12, "6/mmm": 24,
+               "23": 12, "m-3": 24, "432": 24, "-43m": 24, "m-3m": 48}
 
 
 def primitive_lattice(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None):
@@ -618,8 +630,11 @@ def relation(before: dict, after: dict) -> str:
     inclusion of the point operations and of the pure (centring) translations:
     ``"same"`` (equal sets, same group number), ``"supergroup"`` (``after`` contains ``before``:
     symmetry gained), ``"subgroup"`` (symmetry lost), ``"unrelated"`` (neither contains the other,
-    or equal sets with another group number, e.g. a screw axis replacing a rotation axis), or
-    ``"unknown"`` when spglib failed on either. Glide and screw parts and origin choices are not
+    or equal sets with another group number and point group of the same order, e.g. a screw axis
+    replacing a rotation axis), or ``"unknown"`` when spglib failed on either. Equal sets in the
+    cell with a larger point group (``point_order``) on one side: that group's other operations do
+    not map this cell's lattice onto itself (a supercell: P-1 to C2/m in a doubled cell), and the
+    group with the larger point group contains the other. Glide and screw parts and origin choices are not
     compared: an inclusion here is of the point-group-and-centring level (a necessary condition).
     """
     if not before.get("group") or not after.get("group"):
@@ -632,7 +647,12 @@ def relation(before: dict, after: dict) -> str:
     ra, ta = sets(before)
     rb, tb = sets(after)
     if ra == rb and ta == tb:
-        return "same" if before["group"] == after["group"] else "unrelated"
+        if before["group"] == after["group"]:
+            return "same"
+        na, nb = before.get("point_order"), after.get("point_order")
+        if na and nb and na != nb:
+            return "supergroup" if nb > na else "subgroup"
+        return "unrelated"
     if ra <= rb and ta <= tb:
         return "supergroup"
     if rb <= ra and tb <= ta:

@@ -393,7 +393,7 @@ def test_vectorised_frame_states_equal_the_per_frame_rule(dim):
 
 
 def test_a_lattice_settling_at_the_threshold_has_not_passed_through():
-    """A real pw.x 6.7 2Dxy vc-relax of a one-atom layer (tests/data/qe_hover) holds oc within
+    """A real pw.x 6.7 2Dxy vc-relax of a one-atom layer (tests/data/qe_trials) holds oc within
     1e-3 Å at step 16 and ends 1.29e-3 Å from it: above `within`, below `left_beyond` (2e-3 Å),
     the margin lattice-lost needs before a held type counts as left. It was flagged "was oc from
     step 16 to 16 and left it again"; spglib's lattice-only verdict on the final cell is oc from
@@ -401,7 +401,7 @@ def test_a_lattice_settling_at_the_threshold_has_not_passed_through():
     import spglib
     from driftwatch import analyze
     from driftwatch.adapters import read_run
-    path = Path(__file__).parent / "data" / "qe_hover"
+    path = Path(__file__).parent / "data" / "qe_trials" / "al1_2dxy_hover"
     rec = analyze(path)
     oc = [f["deformation"]["oc"] for f in rec["frames"]]
     lat = rec["config"]["rules"]["lattice"]
@@ -412,3 +412,50 @@ def test_a_lattice_settling_at_the_threshold_has_not_passed_through():
     one = (run.cells[-1], [[0.0, 0.0, 0.0]], [1])
     assert spglib.get_symmetry_layerdataset(one, aperiodic_dir=2, symprec=2e-3).number in (
         47, 48)                                             # cmmm / cmme: a centred rectangular net
+
+
+def test_a_group_gained_in_a_supercell_whose_lattice_lacks_its_new_operations_is_a_gain():
+    """A real pw.x 6.7 2Dxy vc-relax of a four-atom Si layer in a doubled cell
+    (tests/data/qe_trials/si4_2dxy_supercell) ends c2/m11 (18) from p-1 (2): spglib's layer groups
+    called directly below. spglib lists the same 4 operations in the cell at both ends (the new
+    2-fold axis and mirror do not map the doubled cell's lattice), so comparing the cell's
+    operations alone called it "changed: neither group contains the other"; the point groups
+    (-1, order 2; 2/m, order 4) say the gain, and p-1 is a subgroup of c2/m11 (International Tables
+    Vol. E: every centrosymmetric layer group contains p-1; from memory)."""
+    import spglib
+    from driftwatch import analyze
+    from driftwatch.adapters import read_run
+    from driftwatch.symmetry import POINT_ORDER
+    path = Path(__file__).parent / "data" / "qe_trials" / "si4_2dxy_supercell"
+    run = read_run(path)
+    got = []
+    for i in (0, -1):
+        cell = (run.cells[i], np.linalg.solve(run.cells[i].T, run.positions[i].T).T, run.numbers)
+        ds = spglib.get_symmetry_layerdataset(cell, aperiodic_dir=2, symprec=1e-3)
+        got.append((ds.number, len(ds.rotations), ds.pointgroup))
+    assert got == [(2, 4, "-1"), (18, 4, "2/m")]
+    assert (POINT_ORDER["-1"], POINT_ORDER["2/m"]) == (2, 4)
+    rec = analyze(path)
+    sv = rec["summary"]["verdict"]["structure"]
+    assert (sv["direction"], sv["relation"]) == ("gained", "supergroup")
+    flag = next(f for f in rec["flags"] if f["code"] == "group-gained")
+    assert "c2/m11 contains p-1 (its point group is larger; the cell holds the same 4 " \
+           "operations of both" in flag["message"]
+
+
+def test_point_group_orders_are_the_operation_counts_spglib_lists_for_primitive_cells():
+    """The 32 orders of ``POINT_ORDER`` (written from memory) against spglib: for one structure of
+    each point group (spglib's database, one Hall setting per space-group type, standardised to a
+    primitive cell), the operations spglib lists for that cell number the point group's order."""
+    import spglib
+    from driftwatch.symmetry import POINT_ORDER
+    seen = {}
+    for number in range(1, 231):
+        hall = next(h for h in range(1, 531)
+                    if spglib.get_spacegroup_type(h).number == number)
+        sym = spglib.get_spacegroup_type(hall).pointgroup_international
+        db = spglib.get_symmetry_from_database(hall)
+        rots = {tuple(np.asarray(r).ravel()) for r in db["rotations"]}
+        seen.setdefault(sym, set()).add(len(rots))
+    assert set(seen) == set(POINT_ORDER)
+    assert {k: v.pop() for k, v in seen.items() if len(v) == 1} == POINT_ORDER
