@@ -318,6 +318,7 @@ def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, ver
             "not_relaxation": getattr(run, "not_relaxation", None),
             "unfinished": getattr(run, "unfinished", None),
             "structure_key": getattr(run, "structure_key", None),
+            "species": list(run.species) if getattr(run, "species", None) else None,
         },
         "geometry": {
             "dimension": int(geo.dimension),

@@ -126,7 +126,7 @@ def structure_symprecs(cfg: dict) -> list[float]:
 def _group_at(run: Run, geo, cfg: dict, i: int, s: float, known: dict) -> dict:
     """spglib's group of frame ``i`` at symprec ``s`` (``symmetry.group_at``), kept in ``known``."""
     if (i, s) not in known:
-        known[(i, s)] = symmetry.group_at(run.cells[i], run.positions[i], run.numbers, s,
+        known[(i, s)] = symmetry.group_at(run.cells[i], run.positions[i], run.symmetry_types, s,
                                           angle_tolerance=cfg["symmetry"]["angle_tolerance"],
                                           vacuum_axis=geo.vacuum_axis)
     return known[(i, s)]
@@ -197,7 +197,8 @@ def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
     translation)."""
     r = cfg["rules"]["atoms_break_lattice"]
     try:
-        prim = symmetry.primitive_lattice(run.cells[i], run.positions[i], run.numbers, r["symprec"],
+        prim = symmetry.primitive_lattice(run.cells[i], run.positions[i], run.symmetry_types,
+                                          r["symprec"],
                                           angle_tolerance=cfg["symmetry"]["angle_tolerance"],
                                           vacuum_axis=geo.vacuum_axis)
     except (SymmetryError, GeometryError, LatticeError):
@@ -352,12 +353,12 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
     record's other frames: nothing reads their brackets)."""
     grid = symprec_grid(cfg) if grid is None else grid
     s = cfg["symmetry"]
-    spec = symmetry.spectrum(run.cells[i], run.positions[i], run.numbers, symprecs=grid,
+    spec = symmetry.spectrum(run.cells[i], run.positions[i], run.symmetry_types, symprecs=grid,
                              angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
                              bisect=bool(s["bisect"] and brackets), precision=s["precision"],
                              lattice_bisect=bool(s["bisect"] and brackets == "all"))
     spec["displacement"] = symmetry.drift_table(
-        run.cells[i], run.positions[i], run.numbers, spec, vacuum_axis=geo.vacuum_axis,
+        run.cells[i], run.positions[i], run.symmetry_types, spec, vacuum_axis=geo.vacuum_axis,
         start=None if start is None else (run.cells[start], run.positions[start]))
     return spec
 

@@ -310,7 +310,7 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 41
+    assert summary["failed"] == [] and summary["runs"] == 42
     assert sorted(k["run"] for k in summary["skipped"]) == [
         "mixed/OUTCAR_example_1.gz", "mixed/ase_generic/gpaw_h2.txt",
         "mixed/qe_example_h2o_mt", "mixed/qe_example_si_bands"]
@@ -318,35 +318,36 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
     # the table marks the runs that are no relaxation (a grep for "lost" must not read MD as drift)
     md = next(ln for ln in proc.stdout.splitlines() if ln.startswith("mixed/vasp541_npt_md "))
     assert md.split()[2] == "lost~" and "~ no relaxation (molecular dynamics" in proc.stdout
-    assert ("41 runs: 37 with a verdict, 0 failed, 4 skipped (41 read now, 0 from the cache)"
+    assert ("42 runs: 38 with a verdict, 0 failed, 4 skipped (42 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
-    assert ("not relaxations: 12 runs (finite differences 1, molecular dynamics 3, "
-            "nudged-elastic-band image 3, single-point calculation 5; column not_relaxation of "
+    assert ("not relaxations: 13 runs (finite differences 1, molecular dynamics 3, "
+            "nudged-elastic-band image 3, single-point calculation 6; column not_relaxation of "
             "campaign.csv)") in proc.stdout
     assert {x["run"] for x in summary["not_relaxation"]} == {
         "mixed/atomate_si_static/outputs", "mixed/atomate_static_stages/outputs",   # NSW = 0
         "mixed/qe71_scf_pair/scf.out.gz", "mixed/qe71_scf_pair/bands.out.gz",       # pw.x scf
         "mixed/vasp544_finite_differences", "mixed/vasp541_npt_md", "mixed/vasp544_neb/01",
         "mixed/vasp544_nelm",                     # NSW = -1: one SCF at NELM, a single point
+        "mixed/qe_testsuite_lda_u/benchmark.out.git.inp=lda+U.in.gz",              # pw.x scf
         "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
         "mixed/qe_testsuite_md/benchmark.out.git.inp=md.in.args=1.gz",
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
     # the campaign's tolerance advice is about relaxed structures: those 8 are left out of it
     tol = summary["tolerance"]
-    assert tol["left_out"] == 12 and set(tol["run_ids_left_out"]) == {
+    assert tol["left_out"] == 13 and set(tol["run_ids_left_out"]) == {
         x["run"] for x in summary["not_relaxation"]}
     from driftwatch.rules import advice_item, campaign_advice
     recs = [(p.name, json.loads(p.read_text()))
             for p in (tmp_path / "out" / "records").glob("*.json")]
     alone = campaign_advice([advice_item(n, r) for n, r in recs
                              if not r["run"]["not_relaxation"]], tol["symprecs"])
-    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 12
+    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 13
     assert tol["recommended_symprec"] == alone["recommended_symprec"]
     assert [c["runs"] for c in tol["changes"]] == [c["runs"] for c in alone["changes"]]
-    assert tol["reason"] == alone["reason"] + ". Left out: 12 runs whose steps are no relaxation"
+    assert tol["reason"] == alone["reason"] + ". Left out: 13 runs whose steps are no relaxation"
     assert f"campaign symprec: {tol['recommended_symprec']:.3g} Å (" in proc.stdout
-    assert "Left out: 12 runs whose steps are no relaxation)" in proc.stdout
+    assert "Left out: 13 runs whose steps are no relaxation)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -1845,3 +1846,27 @@ def test_how_far_the_atoms_came_to_the_final_structures_group():
     d = (d - np.round(d)) @ cell
     d -= d.mean(axis=0)
     assert at["end"]["rms"] <= np.sqrt(np.mean(np.sum(d ** 2, axis=1))) < 2 * at["end"]["rms"]
+
+
+def test_species_pwx_tells_apart_are_apart_for_spglib():
+    """Quantum ESPRESSO's test-suite lda+U run (pw.x 6.1): antiferromagnetic FeO with species Fe1
+    (starting magnetisation +0.5) and Fe2 (-0.5). pw.x finds "12 Sym. Ops." and spglib with Fe1
+    and Fe2 as two types gives R-3m (166) with 12 operations (spglib called directly); read as
+    plain Fe (as ASE reads it) the structure is Fm-3m in a cell of 2 primitive cells, which is not
+    the structure pw.x computed (the record said Fm-3m and "a supercell of 2 primitive cells")."""
+    import spglib
+    from driftwatch import analyze
+    folder = PUB / "qe_testsuite_lda_u"
+    out = folder / "benchmark.out.git.inp=lda+U.in.gz"
+    assert "12 Sym. Ops., with inversion, found" in gzip.open(out, "rt").read()
+    run = read_run(folder)
+    assert run.species == ("O1", "O1", "Fe1", "Fe2")
+    frac = np.linalg.solve(run.cells[0].T, run.positions[0].T).T
+    apart = spglib.get_symmetry_dataset((run.cells[0], frac, [8, 8, 26, 126]), symprec=1e-3)
+    merged = spglib.get_symmetry_dataset((run.cells[0], frac, run.numbers), symprec=1e-3)
+    assert (apart.number, len(apart.rotations)) == (166, 12) and merged.number == 225
+    rec = analyze(folder)
+    assert rec["summary"]["verdict"]["structure"]["final"] == {
+        "group": 166, "symbol": "R-3m", "operations": 12}
+    assert rec["summary"]["supercell"] is None and rec["run"]["species"] == list(run.species)
+    assert rec["run"]["formula"] == "O2Fe2"

@@ -137,6 +137,21 @@ def _header_info(lines):
     return atoms.cell.array.copy(), atoms.positions.copy(), numbers, info["alat"], nsym
 
 
+_SITE = re.compile(r"^\s*\d+\s+(\S+)\s+tau\(")
+
+
+def _species(header, numbers) -> tuple | None:
+    """The header's species label of each atom ("3  Fe1  tau( 3) = ...") when the run tells atoms
+    of one element apart (two labels of one element: Fe1 and Fe2), else None."""
+    labels = [m.group(1) for ln in header if (m := _SITE.match(ln))]
+    if len(labels) != len(numbers):
+        return None
+    per_element: dict = {}
+    for z, label in zip(numbers, labels):
+        per_element.setdefault(int(z), set()).add(label)
+    return tuple(labels) if any(len(v) > 1 for v in per_element.values()) else None
+
+
 def _read_block(fh, n):
     """The next n lines, or None if the file ends first."""
     out = fh.read_lines(n)
@@ -333,6 +348,8 @@ def read_pw_out(path, ctx: ReadContext):
                 except (ValueError, IndexError) as exc:
                     raise InputError(path, f"not a complete pw.x header: {exc}") from None
                 natoms = len(numbers)
+                if ctx.species is None:
+                    ctx.species = _species(header, numbers)
                 _check_input(taken, header, ctx)
                 taken = None                      # the first header decides
                 if nsym is not None and nsym > 1 and ctx.settings.get("nosym") and \

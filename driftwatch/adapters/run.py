@@ -107,6 +107,10 @@ class Run:
     structure_key: dict | None = None
     """For one structure of a many-structure file (``FILE::NAME``): ``{"key": info or key-value name,
     "value": NAME, "structures": how many the file holds}``; None otherwise."""
+    species: tuple | None = None
+    """(N,) the code's own species labels where it tells atoms of one element apart (pw.x's
+    ATOMIC_SPECIES ``Fe1``, ``Fe2``: other starting magnetisations or Hubbard U), else None. spglib
+    is given one type per label (:attr:`symmetry_types`): the structure the code computed."""
     inputs: tuple = ()
     """What the read depended on, for caches: ``(kind, path, stamp)`` with kind ``"file"`` (stamp
     = ``[size, mtime_ns, ctime_ns, inode]`` when the reader opened it, None if it was missing) or
@@ -118,6 +122,15 @@ class Run:
     @property
     def natoms(self) -> int:
         return len(self.numbers)
+
+    @property
+    def symmetry_types(self) -> np.ndarray:
+        """(N,) int: the atom types spglib is given: the atomic numbers, told apart further by
+        :attr:`species` when the code's labels tell atoms of one element apart."""
+        if self.species is None:
+            return self.numbers
+        _, index = np.unique(np.array(self.species, dtype=str), return_inverse=True)
+        return self.numbers * 1000 + index.astype(int)
 
     def __repr__(self) -> str:
         from collections import Counter
@@ -267,6 +280,9 @@ class ReadContext:
         self.stage_count: int = 1
         """How many stages are read together (a reader whose file may not belong to the stages
         after it, an archived attempt, checks that only when there are several)."""
+        self.species: tuple | None = None
+        """Species labels per atom when the code tells atoms of one element apart
+        (:attr:`Run.species`)."""
         self.carry: dict = {}
         """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
         configuration it printed but never evaluated, which a ``restart_mode='restart'`` run
@@ -491,7 +507,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         run_dir=None if run_dir is None else str(run_dir),
         stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
         kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
-        not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished,
+        not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species,
     )
 
 
