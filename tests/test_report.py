@@ -512,6 +512,13 @@ def test_unchanged_pages_are_not_rebuilt(real_records, tmp_path, capsys):
     for page in sorted((cold / "runs").glob("*.html")) + [cold / "index.html"]:
         assert page.read_bytes() == (out / page.relative_to(cold)).read_bytes(), page.name
     assert not capsys.readouterr().err          # progress="off": nothing printed
+    # a page cut short (a disk filled, a user's editor) is built again although its record is not
+    # changed: the whole page equals a cold build's again
+    page = out / "runs" / f"{name}.html"
+    page.write_bytes(page.read_bytes()[:500])
+    build([src], out, overwrite=True, progress="on")
+    assert f"({len(real_records) - 1} unchanged, 1 built)" in capsys.readouterr().err
+    assert page.read_bytes() == (cold / "runs" / f"{name}.html").read_bytes()
 
 
 def test_warm_audit_keeps_every_run_page(tmp_path):

@@ -387,12 +387,17 @@ def _load_pages(out: Path) -> dict:
 
 
 def _page_has_key(page: Path, key: str) -> bool:
+    """The page was written for ``key`` by driftwatch and is whole (it ends with ``</html>``: a
+    page cut or edited short is built again)."""
     try:
-        with open(page, encoding="utf-8", errors="replace") as fh:
-            head = fh.read(700)
+        with open(page, "rb") as fh:
+            head = fh.read(700).decode("utf-8", errors="replace")
+            fh.seek(max(0, os.fstat(fh.fileno()).st_size - 64))
+            tail = fh.read()
     except OSError:
         return False
-    return f'<meta name="driftwatch-page" content="{key}">' in head and _GENERATOR in head
+    return f'<meta name="driftwatch-page" content="{key}">' in head and _GENERATOR in head \
+        and tail.rstrip().endswith(b"</html>")
 
 
 def _maybe_campaign(path):
