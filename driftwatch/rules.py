@@ -481,9 +481,10 @@ def _structure_flags(frames, sv):
     return [_flag(f"group-{sv['direction']}", sv["from_frame"], frames, msg, None, b["group"], s)]
 
 
-def _breaks_lattice(frames, dim, r):
+def _breaks_lattice(frames, dim, r, fixed=False):
     """The primitive lattice is metrically of type t, the structure's group has a lower lattice type
-    (containment on the Bravais graph, so R-3m in hexagonal axes is not flagged)."""
+    (containment on the Bravais graph, so R-3m in hexagonal axes is not flagged). ``fixed``: the
+    cell never moved, so its lattice is the one the run was given (a host cell around a defect)."""
     k = len(frames) - 1
     spec = frames[k].get("symmetry") or {}
     prim = spec.get("primitive")
@@ -496,7 +497,9 @@ def _breaks_lattice(frames, dim, r):
         return []
     msg = (f"the primitive lattice is metrically {t} ({NAMES[t]}, deformation "
            f"{_g(prim['deformation'])} Å) but the structure's group at symprec {_g(r['symprec'])} Å is "
-           f"{symbol} ({group}), lattice type {b}: the atoms break the lattice's symmetry")
+           f"{symbol} ({group}), lattice type {b}: the atoms break the lattice's symmetry"
+           + ("; the cell never moved, so this is the lattice the run was given (expected when "
+              "the atoms are meant to break it, as around a defect in a host cell)" if fixed else ""))
     return [_flag("atoms-break-lattice", k, frames, msg, t, float(prim["deformation"]), r["within"])]
 
 
@@ -664,7 +667,8 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
     direction = _combine(lv["direction"], sv["direction"])
     flags = _lattice_flags(frames, lv, D, r)
     flags += _structure_flags(frames, sv)
-    flags += _breaks_lattice(frames, dim, r["atoms_break_lattice"])
+    flags += _breaks_lattice(frames, dim, r["atoms_break_lattice"],
+                             len(frames) > 1 and record["run"]["fixed_cell"])
     flags += _symprec_dependent(frames, r["symprec_dependent"])
     flags += _loose(frames, D, r["loose_symprec"])
     if r["held_by_code"]["enabled"]:

@@ -1717,6 +1717,11 @@ def test_a_defect_that_settled_onto_a_symmetric_configuration_at_a_looser_sympre
     v = analyze(case)["summary"]["verdict"]
     assert v["direction"] == "kept" and v["text"].endswith(
         "group kept P1 (1) at symprec 0.001 Å; at symprec 0.1 Å: group gained P1 (1) -> Cmm2 (35)")
+    flags = {f["code"]: f["message"] for f in analyze(case)["flags"]}   # the host cell, given
+    assert flags["atoms-break-lattice"].endswith("the cell never moved, so this is the lattice "
+                                                 "the run was given (expected when the atoms are "
+                                                 "meant to break it, as around a defect in a host "
+                                                 "cell)")
     loose = analyze(case, config.load(overrides={"rules.structure.symprec": "0.1 Å"}))
     assert loose["summary"]["verdict"]["direction"] == "gained"
     assert "group-gained" in {f["code"] for f in loose["flags"]}
