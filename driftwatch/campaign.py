@@ -156,7 +156,8 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             yield {"run": rid, "source": str(folder),
                    "error": f"{folder}: cannot list folder ({exc.strerror or exc})"}
             continue
-        from .adapters.registry import inputs_only_problem, recognised, scan_folder
+        from .adapters.registry import (foreign_output, inputs_only_problem, recognised,
+                                        scan_folder)
         try:
             kind, got = scan_folder(folder, [e.name for e in files])
         except OSError as exc:
@@ -188,9 +189,14 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
                     later_files.append((path, frid, e.name))
                     continue
                 freal = os.path.realpath(path)
-                if freal not in seen_runs and freal not in skip and e.name in wanted:
+                if freal in seen_runs or freal in skip:
+                    continue
+                if e.name in wanted:
                     seen_runs.add(freal)
                     yield from _file_runs(path, frid, keys)
+                elif foreign_output(path):          # listed as skipped: never dropped unsaid
+                    seen_runs.add(freal)
+                    yield RunSpec(frid, path, "file")
         for e in reversed(dirs):
             item = (Path(folder) / e.name, f"{rid}/{e.name}", *(("end",) if e.name in ends else ()))
             (later_dirs if e.is_symlink() else stack).append(item)
@@ -352,10 +358,10 @@ def _split_volatile(rec: dict) -> dict:
 
 def _skip_reason(exc) -> dict | None:
     """A run driftwatch cannot analyse by its nature (a molecule, cluster or wire: not a layer and
-    not bulk; a pw.x band-structure run: no ionic step): the reason and what would include it, or
-    None for a real failure."""
-    from .errors import NoIonicStepError, NotPeriodicError
-    if not isinstance(exc, (NotPeriodicError, NoIonicStepError)):
+    not bulk; a pw.x band-structure run: no ionic step; an output of a code it has no reader for):
+    the reason and what would include it, or None for a real failure."""
+    from .errors import ForeignOutputError, NoIonicStepError, NotPeriodicError
+    if not isinstance(exc, (NotPeriodicError, NoIonicStepError, ForeignOutputError)):
         return None
     return {"reason": exc.reason, "include": exc.include}
 

@@ -32,6 +32,15 @@ class UnknownFormatError(InputError):
     """No registered adapter recognises the file."""
 
 
+class ForeignOutputError(UnknownFormatError):
+    """The output of a code driftwatch has no reader for (its banner says which): not analysed and
+    not failed (an audit lists it as skipped: ``reason``, and ``include``)."""
+
+    def __init__(self, path, reason: str, include: str):
+        super().__init__(path, f"{reason}; to include it: {include}")
+        self.reason, self.include = reason, include
+
+
 class AtomsChangeError(InputError):
     """The frames read as one run hold other atoms (count or elements) from one step on."""
 

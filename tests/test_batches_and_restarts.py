@@ -476,13 +476,14 @@ def test_a_mixed_campaign_of_all_inputs_audits_with_no_failed_run(tmp_path):
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
     assert summary["failed"] == []
     assert sorted(k["run"] for k in summary["skipped"]) == [
-        "mixed/public/ase_generic/gpaw_h2.txt", "mixed/public/qe_example_h2o_mt",
+        "mixed/public/ase_generic/gpaw_h2.txt", "mixed/public/foreign_outputs/cp2k/relax.out.gz",
+        "mixed/public/foreign_outputs/qe_neb/H2+H.out.gz", "mixed/public/qe_example_h2o_mt",
         "mixed/public/qe_example_si_bands"]
     runs = {p.stem for p in (tmp_path / "out" / "records").glob("*.json")}
     assert "mixed_qe_restart_numbered" in runs and "mixed_qe_restart_stage_folders" in runs
     assert "mixed_public_vasp522_energy_first" in runs
     assert sum("ml_batch" in r for r in runs) == 24
-    assert summary["runs"] == len(runs) + 3
+    assert summary["runs"] == len(runs) + 5
     rec = json_load(tmp_path / "out" / "records" / "mixed_ml_batch_pairs.db__Ni-rhombo-03.json")
     assert rec["run"]["kind"] == "end-points" and rec["summary"]["verdict"]["direction"] == "gained"
 

@@ -310,15 +310,16 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 42
+    assert summary["failed"] == [] and summary["runs"] == 44
     assert sorted(k["run"] for k in summary["skipped"]) == [
         "mixed/OUTCAR_example_1.gz", "mixed/ase_generic/gpaw_h2.txt",
+        "mixed/foreign_outputs/cp2k/relax.out.gz", "mixed/foreign_outputs/qe_neb/H2+H.out.gz",
         "mixed/qe_example_h2o_mt", "mixed/qe_example_si_bands"]
     assert all(k["include"] for k in summary["skipped"])
     # the table marks the runs that are no relaxation (a grep for "lost" must not read MD as drift)
     md = next(ln for ln in proc.stdout.splitlines() if ln.startswith("mixed/vasp541_npt_md "))
     assert md.split()[2] == "lost~" and "~ no relaxation (molecular dynamics" in proc.stdout
-    assert ("42 runs: 38 with a verdict, 0 failed, 4 skipped (42 read now, 0 from the cache)"
+    assert ("44 runs: 38 with a verdict, 0 failed, 6 skipped (44 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
     assert ("not relaxations: 13 runs (finite differences 1, molecular dynamics 3, "
@@ -1875,3 +1876,30 @@ def test_species_pwx_tells_apart_are_apart_for_spglib():
         "group": 166, "symbol": "R-3m", "operations": 12}
     assert rec["summary"]["supercell"] is None and rec["run"]["species"] == list(run.species)
     assert rec["run"]["formula"] == "O2Fe2"
+
+
+def test_outputs_of_codes_with_no_reader_are_listed_as_skipped_not_dropped(tmp_path):
+    """A CP2K geometry optimisation (ShakeNBreak's genuine relax.out, with its input and a CIF
+    beside it) and a Quantum ESPRESSO neb.x output (its examples' reference) vanished from the
+    audit: no row, not failed, not skipped, while the index said every run was audited. Each is a
+    skipped run naming the code its banner names ("CP2K| version string:", "Program NEB v."), and
+    `inspect` refuses it in one line."""
+    camp = tmp_path / "camp"
+    shutil.copytree(PUB / "foreign_outputs", camp)
+    (camp / "cp2k" / "structure.cif").write_text("data_invented\n")
+    text = gzip.open(camp / "cp2k" / "relax.out.gz", "rt").read(5000)
+    assert " CP2K| version string:" in text
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report", "--progress", "off"],
+                          capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    got = {k["run"]: k["reason"] for k in summary["skipped"]}
+    assert got == {"camp/cp2k/relax.out.gz": "an output of CP2K, which driftwatch has no reader for",
+                   "camp/qe_neb/H2+H.out.gz": "an output of Quantum ESPRESSO's neb.x, which "
+                                              "driftwatch has no reader for"}
+    assert "2 runs: 0 with a verdict, 0 failed, 2 skipped" in proc.stdout
+    one = subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
+                          str(camp / "cp2k" / "relax.out.gz")], capture_output=True, text=True,
+                         timeout=300)
+    assert one.returncode == 1 and one.stderr.count("\n") == 1 and "an output of CP2K" in one.stderr

@@ -37,8 +37,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
-from ..errors import (AtomsChangeError, DriftwatchError, InputError, NotARunError,
-                      UnknownFormatError)
+from ..errors import (AtomsChangeError, DriftwatchError, ForeignOutputError, InputError,
+                      NotARunError, UnknownFormatError)
 from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect
 
@@ -276,10 +276,41 @@ def _detect_file(path: Path) -> str:
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
             return f.name
+    code = next(((what, how) for pattern, what, how in _FOREIGN if pattern.search(head)), None)
+    if code:
+        raise ForeignOutputError(path, f"an output of {code[0]}, which driftwatch has no reader "
+                                       f"for", code[1])
     seen = next((what for pattern, what in _NOT_TRAJECTORIES if pattern.search(head)), None)
     raise UnknownFormatError(path, (f"{seen}, not a file of ionic steps; " if seen else "")
                              + f"unknown format (known formats: {_known()}; choose one with "
                                f"--format NAME, or format= in Python)")
+
+
+# Outputs of codes with no reader here, by their banners (as the codes print them in genuine
+# outputs: CP2K 2.5's in ShakeNBreak's test data, neb.x 6.0's in Quantum ESPRESSO's examples):
+# an audit lists them as skipped, never drops them unsaid
+_TO_XYZ = "write its ionic steps to extended XYZ (e.g. with ASE, where it reads them) and audit that"
+_FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
+            (re.compile(rb"^[ \t]*Program NEB v\.", re.M), "Quantum ESPRESSO's neb.x",
+             "nothing: its images are points of a path, not a relaxation's steps"))
+_FOREIGN_NAMES = (".out", ".log")       # where discovery looks for them (outputs' usual names)
+
+
+def foreign_code(head: bytes) -> str | None:
+    """The code whose banner starts ``head`` (a file's first bytes) when driftwatch has no reader
+    for it, else None."""
+    return next((what for pattern, what, _ in _FOREIGN if pattern.search(head)), None)
+
+
+def foreign_output(path) -> bool:
+    """True for a file named like an output (``*.out``, ``*.log``, any compression) whose banner
+    is one of a code driftwatch has no reader for."""
+    if not strip_compression(Path(path).name).lower().endswith(_FOREIGN_NAMES):
+        return False
+    try:
+        return foreign_code(peek(path, PEEK_BYTES)) is not None
+    except (OSError, InputError):
+        return False
 
 
 # Files of the trade that are no trajectory, said by name when a user passes one (their first lines
