@@ -962,10 +962,12 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     print(f"flags (runs): {fc}", file=stream)
     if summary.get("copies"):
         groups = summary["copies"]
+        shown = "; ".join(" = ".join(g[:3]) + (f" (and {len(g) - 3} more)" if len(g) > 3 else "")
+                          for g in groups[:3])
         print(f"copies: {len(groups)} group{'s' if len(groups) > 1 else ''} of runs that read the "
-              f"same frames ({'; '.join(' = '.join(g) for g in groups[:5])}"
-              f"{'; ...' if len(groups) > 5 else ''}): a folder kept twice, or a rerun that repeated "
-              f"the same steps; each is counted above once per copy", file=stream)
+              f"same frames ({shown}{'; ...' if len(groups) > 3 else ''}; all in campaign.json "
+              f"copies): a folder kept twice, or a rerun that repeated the same steps; each is "
+              f"counted above once per copy", file=stream)
     if summary.get("not_relaxation"):
         what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
                        for x in summary["not_relaxation"])

@@ -1378,15 +1378,23 @@ def test_copies_of_a_run_folder_are_named(tmp_path):
     assert proc.returncode == 0, proc.stderr
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
     assert summary["copies"] == [["camp/run", "camp/run_bk"]]
-    assert ("copies: 1 group of runs that read the same frames (camp/run = camp/run_bk): a folder "
-            "kept twice, or a rerun that repeated the same steps; each is counted above once per "
-            "copy") in proc.stdout
+    assert ("copies: 1 group of runs that read the same frames (camp/run = camp/run_bk; all in "
+            "campaign.json copies): a folder kept twice, or a rerun that repeated the same steps; "
+            "each is counted above once per copy") in proc.stdout
     index = (tmp_path / "out" / "report" / "index.html").read_text()
     assert "copies (runs that read the same frames)" in index and "camp/run = camp/run_bk" in index
     said = "3 runs: 3 with a verdict, 0 failed (3 read now, 0 from the cache)"   # one line, twice
     assert f"\n{said} in " in proc.stdout and f"audit summary</th><td>{said}</td>" in index
     again = _quiet_audit([camp], tmp_path / "out", workers=1)
     assert again["cached"] == 3 and again["copies"] == summary["copies"]
+    for k in range(2, 6):                    # many copies: the line names three of a group
+        shutil.copytree(DOUBLE, camp / f"run_bk{k}")
+    many = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "many"), "--no-report"], capture_output=True, text=True,
+                          timeout=600).stdout
+    line = next(ln for ln in many.splitlines() if ln.startswith("copies: "))
+    assert "(camp/run = camp/run_bk = camp/run_bk2 (and 3 more); all in campaign.json copies)" \
+        in line and len(line) < 250
 
 
 def test_a_pwx_crash_is_a_failed_run_that_quotes_the_crash_file(tmp_path):
