@@ -30,7 +30,8 @@ lattice-nearing     lattice    the deformation to a type fell by ``nearing_fract
                                lattice's size) without reaching it
 passed-through      lattice    a type was held for a stretch of the run, then left again
 handedness-flip     lattice    a layer's 2D lattice ends with the opposite handedness, clearly chiral at
-                               both ends (it passed through a mirror-symmetric lattice)
+                               both ends (it passed through a mirror-symmetric lattice), or reversed
+                               it at least twice on the way, clearly chiral on each side
 group-gained        structure  spglib's group at the end contains the start's (more operations)
 group-lost          structure  spglib's group at the end is a subgroup of the start's
 group-changed       structure  neither contains the other
@@ -370,7 +371,28 @@ def _lattice_flags(frames, lv, D, r):
                            f"{_g(h['mirror_initial'])} Å and {_g(h['mirror_final'])} Å): it passed "
                            f"through a mirror-symmetric lattice", None, h["mirror_final"],
                            r["handedness_flip"]["min_chiral"]))
+    elif frames and "sign" in frames[0]:      # a layer (its frames carry a 2D sign)
+        rev = _reversals(frames, r["handedness_flip"])
+        if len(rev) >= 2:                     # reversed and came back: the ends agree
+            flags.append(_flag("handedness-flip", rev[0][0], frames,
+                               f"the layer's 2D lattice reversed its handedness {len(rev)} times "
+                               f"(first {_from(frames, rev[0][0])}, last back "
+                               f"{_from(frames, rev[-1][0])}; clearly chiral on each side, mirror "
+                               f"deformation up to {_g(max(x[1] for x in rev))} Å), while its "
+                               f"two ends show no reversal: it passed through mirror-symmetric "
+                               f"lattices on the way", None, len(rev),
+                               r["handedness_flip"]["min_chiral"]))
     return flags
+
+
+def _reversals(frames, r) -> list[tuple[int, float]]:
+    """Where a layer's handedness reversed: (frame, mirror deformation there, Å) at each frame whose
+    sign differs from the one before it among the frames clearly chiral (mirror deformation above
+    ``min_chiral``: a lattice settling onto a mirror-symmetric one flickers below it)."""
+    sign = np.array([f["sign"] for f in frames])
+    chiral = np.array([f["deformation"]["mirror"] for f in frames])
+    sig = np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
+    return [(int(b), float(chiral[b])) for a, b in zip(sig, sig[1:]) if sign[a] != sign[b]]
 
 
 # ----------------------------------------------------------------------------------------------

@@ -459,3 +459,36 @@ def test_point_group_orders_are_the_operation_counts_spglib_lists_for_primitive_
         seen.setdefault(sym, set()).add(len(rots))
     assert set(seen) == set(POINT_ORDER)
     assert {k: v.pop() for k, v in seen.items() if len(v) == 1} == POINT_ORDER
+
+
+def test_handedness_reversed_on_the_way_and_back_is_flagged(tmp_path):
+    """An invented chiral three-atom layer (Cu, Ni, Al in an oblique cell) relaxed for real with
+    EMT, BFGS and a 2D cell filter: its lattice's handedness reverses several times while it
+    settles onto a hexagonal lattice (a field trial counted 8 reversals, its own sign computation
+    agreeing frame by frame), each side clearly chiral (mirror deformation above min_chiral); its
+    ends show no reversal (the end is hexagonal, achiral), so the start-to-end rule saw nothing and
+    the run had no handedness flag."""
+    from ase import Atoms
+    from ase.calculators.emt import EMT
+    from ase.filters import FrechetCellFilter
+    from ase.optimize import BFGS
+    from driftwatch import analyze
+    cell = [[4.1, 0, 0], [1.3, 3.7, 0], [0, 0, 16]]
+    atoms = Atoms("CuNiAl", cell=cell, positions=[[0.3, 0.2, 7.2], [2.6, 0.9, 8.4],
+                                                   [1.4, 2.7, 9.3]], pbc=True)
+    atoms.calc = EMT()
+    path = tmp_path / "chiral.traj"
+    with BFGS(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), trajectory=str(path),
+              logfile=None) as opt:
+        opt.run(fmax=2e-4, steps=600)
+    rec = analyze(path)
+    min_chiral = rec["config"]["rules"]["handedness_flip"]["min_chiral"]
+    clear = [(f["step"], f["sign"]) for f in rec["frames"]
+             if f["sign"] and f["deformation"]["mirror"] > min_chiral]
+    reversals = [b for (_, sa), (b, sb) in zip(clear, clear[1:]) if sa != sb]
+    assert len(reversals) >= 2 and clear[0][1] == clear[-1][1]
+    assert rec["summary"]["verdict"]["lattice"]["handedness"] is None      # ends: no reversal
+    flag = next(f for f in rec["flags"] if f["code"] == "handedness-flip")
+    assert flag["value"] == len(reversals) and flag["step"] == reversals[0]
+    assert flag["message"].startswith(f"the layer's 2D lattice reversed its handedness "
+                                      f"{len(reversals)} times (first from step {reversals[0]}")
