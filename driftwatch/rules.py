@@ -454,7 +454,9 @@ def _structure_at(frames, checked, symprec, persist):
             "from_frame": None if direction == "kept" else hi,
             "from_step": None if direction == "kept" else int(frames[hi]["step"]),
             "after_step": None if direction == "kept" or lo is None else int(frames[lo]["step"]),
-            "exact": direction != "kept" and lo is not None and hi - lo == 1}
+            "exact": direction != "kept" and lo is not None and hi - lo == 1,
+            "checked_after": None if direction == "kept" else
+            set(range(hi, checked[-1] + 1)) <= set(checked)}
 
 
 def _structure_verdict(frames, cfg, persist):
@@ -476,12 +478,21 @@ def _structure_verdict(frames, cfg, persist):
     return out
 
 
+def _when(frames, sv) -> str:
+    """When the final group appeared: "from step N" (between two neighbouring checked frames) or
+    "between steps A and B (the frames spglib checked)"; "(not every later step checked)" when
+    frames after it were not asked (a search over steps: the group is taken to hold from there)."""
+    when = (_from(frames, sv["from_frame"]) if sv["exact"] or sv["after_step"] is None else
+            f"between steps {sv['after_step']} and {sv['from_step']} (the frames spglib checked)")
+    return when + ("" if sv.get("checked_after", True) is not False else
+                   " (not every later step checked)")
+
+
 def _structure_flags(frames, sv):
     if sv["direction"] not in ("gained", "lost", "changed"):
         return []
     a, b, s = sv["initial"], sv["final"], sv["symprec"]
-    when = (_from(frames, sv["from_frame"]) if sv["exact"] or sv["after_step"] is None else
-            f"between steps {sv['after_step']} and {sv['from_step']} (the frames spglib checked)")
+    when = _when(frames, sv)
     what = {"gained": "rose", "lost": "fell", "changed": "changed"}[sv["direction"]]
     rel = {"supergroup": f"{b['symbol']} contains {a['symbol']}",
            "subgroup": f"{b['symbol']} is a subgroup of {a['symbol']}",
@@ -631,9 +642,7 @@ def _text(direction, lv, sv, frames) -> str:
         ops = [f", {g['operations']} operations" if a["group"] == b["group"] else "" for g in (a, b)]
         grp = (f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else
                f"{a['symbol']} ({a['group']}{ops[0]}) -> {b['symbol']} ({b['group']}{ops[1]})")
-        when = "" if sv["direction"] == "kept" or ends else (
-            f" {_from(frames, sv['from_frame'])}" if sv["exact"] or sv["after_step"] is None
-            else f" between steps {sv['after_step']} and {sv['from_step']}")
+        when = "" if sv["direction"] == "kept" or ends else f" {_when(frames, sv)}"
         parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
         looser = _looser(sv)
         if looser:
