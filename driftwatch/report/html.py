@@ -141,7 +141,7 @@ header.top a { color: #cfe1ff; }
 header.top .crumb { font-size: 13px; opacity: .9; }
 header.top h1 { margin: 4px 0 2px; font-size: 22px; font-weight: 600; overflow-wrap: anywhere; }
 header.top .sub { font-size: 13px; color: #c9d3e0; overflow-wrap: anywhere; }
-main { max-width: 1180px; margin: 0 auto; padding: 12px 28px 40px; }
+main { max-width: 1360px; margin: 0 auto; padding: 12px 28px 40px; }
 h2 { font-size: 18px; margin: 28px 0 8px; padding-bottom: 4px; border-bottom: 1px solid var(--line); }
 h3 { font-size: 15px; margin: 18px 0 6px; }
 p, li { max-width: 80ch; }
