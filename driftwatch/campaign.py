@@ -723,13 +723,27 @@ def _read_marker(out: Path) -> dict | None:
 
 
 def _write_marker(out: Path, roots: list[str], record_files: list[str],
-                  db_runs: list[str]) -> None:
-    """The output folder's own marker: what wrote it, and the records and database rows (run ids)
-    this audit wrote, which the next audit retires when their runs are gone."""
+                  db_runs: list[str], runs: list[str] | None) -> None:
+    """The output folder's own marker: what wrote it, the records and database rows (run ids)
+    this audit wrote, which the next audit retires when their runs are gone, and every run id of
+    the audit (``runs``: what the next audit compares its own with)."""
     from . import __version__
-    records.write_text_atomic(out / MARKER, json.dumps(
-        {"tool": "driftwatch", "kind": "campaign audit", "version": __version__, "roots": roots,
-         "records": sorted(record_files), "db_runs": sorted(db_runs)}, indent=1) + "\n")
+    data = {"tool": "driftwatch", "kind": "campaign audit", "version": __version__,
+            "roots": roots, "records": sorted(record_files), "db_runs": sorted(db_runs)}
+    if runs is not None:
+        data["runs"] = sorted(runs)
+    records.write_text_atomic(out / MARKER, json.dumps(data, indent=1) + "\n")
+
+
+def _since_last(old: dict, now: list[str], read_now: set) -> dict | None:
+    """What changed since the audit that wrote ``old`` (the folder's previous marker): runs new,
+    gone, and read again (their files changed, or the cache was not used); None when the previous
+    audit did not list its runs (none, or an older driftwatch)."""
+    if "runs" not in old:
+        return None
+    before, after = set(old["runs"]), set(now)
+    return {"new": sorted(after - before), "gone": sorted(before - after),
+            "read_again": sorted(r for r in after & before if r in read_now)}
 
 
 def _prepare_output(out: Path, roots: list[str], overwrite: bool,
@@ -757,7 +771,7 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
         for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
             records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
         _write_marker(out, roots, (marker or {}).get("records", []),
-                      (marker or {}).get("db_runs", []))
+                      (marker or {}).get("db_runs", []), (marker or {}).get("runs"))
     except OutputError:
         raise
     except OSError as exc:
@@ -930,6 +944,17 @@ def counts_text(summary: dict) -> str:
             + (f", {unread} failed before reading" if unread else "") + ")")
 
 
+def since_text(since: dict) -> str:
+    """The summary's ``since_last`` in words (the terminal and the report's index)."""
+    def some(key, word):
+        ids = since[key]
+        if not ids:
+            return f"0 {word}"
+        return f"{len(ids)} {word} ({', '.join(ids[:3])}{', ...' if len(ids) > 3 else ''})"
+    return (f"{some('new', 'new')}, {some('read_again', 'read again')}, {some('gone', 'gone')} "
+            f"(all in campaign.json since_last; a gone run's record is in records/stale/)")
+
+
 def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     head = _TABLE_HEAD
     shown = rows
@@ -960,6 +985,8 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     print(f"\n{counts_text(summary)} in {summary['elapsed_s']:.1f} s", file=stream)
     print(f"verdicts: {vc}", file=stream)
     print(f"flags (runs): {fc}", file=stream)
+    if summary.get("since_last"):
+        print(f"since the last audit: {since_text(summary['since_last'])}", file=stream)
     if summary.get("copies"):
         groups = summary["copies"]
         shown = "; ".join(" = ".join(g[:3]) + (f" (and {len(g) - 3} more)" if len(g) > 3 else "")
@@ -1098,9 +1125,12 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                                          gone=old_marker.get("db_runs", []))
     summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
                        db_problems, stale, skipped)
+    every = [x["run"] for x in (*ok, *failed, *skipped)]
+    summary["since_last"] = _since_last(old_marker, every, {
+        rid for rid, r in res.results.items() if not r.get("cached")})
     summary["elapsed_s"] = time.perf_counter() - t0
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-    _write_marker(out, roots_abs, sorted(current), db_runs)
+    _write_marker(out, roots_abs, sorted(current), db_runs, every)
     if report:
         summary["report"] = str(_build_report(out, summary, workers=workers or os.cpu_count() or 1,
                                               progress=progress_on(progress)))

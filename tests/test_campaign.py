@@ -509,3 +509,24 @@ def test_summary_states_the_campaign_symprec_when_there_is_no_single_value(tmp_p
         assert said in proc.stdout, proc.stdout[-1500:]
         tol = json.loads((tmp_path / src.name / "campaign.json").read_text())["tolerance"]
         assert tol["recommended_symprec"] is None
+
+
+def test_each_audit_says_what_changed_since_the_last_one(tmp_path):
+    """A campaign audited every evening: the summary, campaign.json and the report's index say
+    which runs are new, which were read again (a file changed) and which are gone since the last
+    audit into the same folder; the first audit has nothing to compare with."""
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    first = run_audit([camp], out)
+    assert first["since_last"] is None
+    assert run_audit([camp], out)["since_last"] == {"new": [], "gone": [], "read_again": []}
+    shutil.copy(camp / "layers" / "L-obl.traj", camp / "layers" / "L-new.traj")
+    (camp / "layers" / "L-obl.traj").unlink()
+    touched = sorted(camp.rglob("*.traj"))[0]
+    touched.write_bytes(touched.read_bytes())          # same bytes: not read again
+    s = run_audit([camp], out, report=True)
+    assert s["since_last"] == {"new": ["camp/layers/L-new.traj"],
+                               "gone": ["camp/layers/L-obl.traj"], "read_again": []}
+    index = (out / "report" / "index.html").read_text(encoding="utf-8")
+    assert "since the last audit</th><td>1 new (camp/layers/L-new.traj), 0 read again, 1 gone " \
+           "(camp/layers/L-obl.traj)" in index

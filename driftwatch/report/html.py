@@ -793,7 +793,9 @@ def _index_page(runs, bad, failed, campaign) -> str:
              'steps; each copy counts as a run of its own above</span>')]
          if isinstance(campaign, dict) and campaign.get("copies") else [])
       + ([("audit summary", e(_counts_text(campaign)))]
-         if isinstance(campaign, dict) and "runs" in campaign else [])))
+         if isinstance(campaign, dict) and "runs" in campaign else [])
+      + ([("since the last audit", e(_since_text(campaign["since_last"])))]
+         if isinstance(campaign, dict) and isinstance(campaign.get("since_last"), dict) else [])))
     parts.append(_campaign_tolerance(tol, adv, {n: lab for n, lab, _, _ in runs}))
     pts = charts.scatter_points((label, f"runs/{quote(name)}.html", r) for name, label, r, _ in runs)
     gb, lb = [], []
@@ -828,6 +830,12 @@ def _index_page(runs, bad, failed, campaign) -> str:
     parts.append(_problems(bad, failed, skipped))
     parts.append(_how_to_read())
     return _page("driftwatch campaign report", header, "".join(parts), script=True)
+
+
+def _since_text(since: dict) -> str:
+    """The audit's line of what changed since the previous audit (``campaign.since_text``)."""
+    from ..campaign import since_text
+    return since_text(since)
 
 
 def _counts_text(campaign: dict) -> str:
