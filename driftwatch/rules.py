@@ -863,10 +863,13 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
                f"to within those tolerances)")
     a, b, grp, name, ops, width = best
     rec = math.sqrt(a * b)
-    out.update(kind="plateau", recommended_symprec=rec,
-               plateau=_plateau_dict(best, grid_lo, grid_hi),
+    plateau = _plateau_dict(best, grid_lo, grid_hi)
+    out.update(kind="plateau", recommended_symprec=rec, plateau=plateau,
                reason=f"{_g(rec)} Å is the centre of the plateau of {name} ({grp}, {ops} "
-                      f"operations) from {_g(a)} to {_g(b)} Å (factor {width:.3g}): {why}{note}")
+                      f"operations) from {_g(a)} to {_g(b)} Å (factor {width:.3g}): {why}"
+                      + ("; it starts at the bottom of the searched range, so its width and "
+                         "centre depend on where the range starts" if plateau["open_low"] else "")
+                      + note)
     return out
 
 

@@ -1661,6 +1661,10 @@ def test_tolerance_stretches_keep_a_group_met_only_between_grid_points():
         assert (ds.number, ds.international, len(ds.rotations)) == (group, symbol, ops)
     for (_, hi, *_), (lo, *_) in zip(ranges, ranges[1:]):   # consecutive, a bracket apart
         assert 1 < lo / hi <= 1.02 + 1e-9
+    # its advice is P1's plateau, which starts where the grid starts: the suggestion says so
+    assert rules.advice(spec)["reason"].endswith(
+        "; it starts at the bottom of the searched range, so its width and centre depend on "
+        "where the range starts")
     # the flag that lists the final structure's groups across the common symprecs lists P2 too
     record = __import__("driftwatch").analyze(VACANCY / "m10")
     flag = next(f for f in record["flags"] if f["code"] == "symprec-dependent")
