@@ -177,7 +177,7 @@ def _group_cell(f: dict, symprec: float) -> str:
 def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
-    from .records import END_POINTS, atoms_text, chiral_deformation, stages_text
+    from .records import CHIRAL_WORDS, END_POINTS, atoms_text, chiral_deformation, stages_text
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -204,7 +204,7 @@ def _inspect_table(rec: dict) -> str:
     blank = any(not r[-1] for r in rows[1:])
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
                  f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
-                 f"to each Bravais type{'; chiral: sign × deformation to the nearest lattice with a mirror line' if dim == 2 else ''}; "
+                 f"to each Bravais type{'; ' + CHIRAL_WORDS if dim == 2 else ''}; "
                  f"a type is held within {rec['config']['rules']['lattice']['within']:g} Å"
                  + ("; group column blank where spglib was not asked (--all-frames asks it on every "
                     "step)" if blank else ""))

@@ -847,8 +847,7 @@ def _header(rec: dict) -> str:
     kind = "layer, 2D lattice" if g["dimension"] == 2 else "bulk, 3D lattice"
     return (f"driftwatch: following {rec['run']['source']} ({rec['run']['format']}; {kind}); "
             f"deformations are Å of lattice-vector change"
-            + ("; chiral: sign × deformation to the nearest lattice with a mirror line"
-               if g["dimension"] == 2 else ""))
+            + (f"; {records.CHIRAL_WORDS}" if g["dimension"] == 2 else ""))
 
 
 def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:

@@ -256,6 +256,10 @@ END_POINTS = "2 structures (initial and final only; no ionic steps between them)
 """How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
 
 
+CHIRAL_WORDS = "chiral: sign × deformation to the nearest lattice with a mirror line"
+"""How the "chiral" column or field is said in every output (:func:`chiral_deformation`)."""
+
+
 def chiral_deformation(frame: dict) -> float:
     """A layer frame's sign times its deformation (Å) to the nearest lattice with a mirror line: the
     measure ``handedness-flip`` judges, shown as "chiral" in every output (the root-space chiral

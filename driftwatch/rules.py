@@ -926,9 +926,9 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     over its whole grid) with at least a factor ``SAFE_MARGIN`` to the next breakpoint on both sides
     (a plateau reaching the end of the run's grid counts as open there) and is not below what its
     file resolves: a stretch of P1 below the group a run settles on is not a verdict to recommend
-    for the campaign, any more than for the run. The searched range is the runs' own symprec grid (``window`` to narrow
-    it, Å). The recommended symprec is the geometric centre of the widest range where the most runs
-    are safe. A starting point for the user's own check, not a guarantee.
+    for the campaign, any more than for the run. The searched range is the runs' own symprec grid
+    (``window`` to narrow it, Å). The recommended symprec is the geometric centre of the widest
+    range where the most runs are safe. A starting point for the user's own check, not a guarantee.
     """
     common = sorted(float(s) for s in common)
     left_out = [r["run"] for r in items if r.get("not_relaxation")]

@@ -634,8 +634,9 @@ def relation(before: dict, after: dict) -> str:
     replacing a rotation axis), or ``"unknown"`` when spglib failed on either. Equal sets in the
     cell with a larger point group (``point_order``) on one side: that group's other operations do
     not map this cell's lattice onto itself (a supercell: P-1 to C2/m in a doubled cell), and the
-    group with the larger point group contains the other. Glide and screw parts and origin choices are not
-    compared: an inclusion here is of the point-group-and-centring level (a necessary condition).
+    group with the larger point group contains the other. Glide and screw parts and origin choices
+    are not compared: an inclusion here is of the point-group-and-centring level (a necessary
+    condition).
     """
     if not before.get("group") or not after.get("group"):
         return "unknown"

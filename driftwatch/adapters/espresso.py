@@ -492,7 +492,8 @@ def read_pw_out(path, ctx: ReadContext):
 # ---------------------------------------------------------------- settings
 def read_pw_input(path) -> dict:
     """The pw.x input's namelists as ASE's namelist reader reads them (plain or compressed), with
-    pw.x's defaults for what driftwatch uses: ``nat``, ``ntyp`` (None when absent), ``calculation``, ``nosym``, ``noinv``,
+    pw.x's defaults for what driftwatch uses: ``nat``, ``ntyp`` (None when absent), ``calculation``,
+    ``nosym``, ``noinv``,
     ``cell_dofree`` (vc-relax or when given), ``prefix`` ("pwscf") and ``outdir`` ("./")."""
     import io
     from ase.io.espresso import read_fortran_namelist
