@@ -530,3 +530,23 @@ def test_each_audit_says_what_changed_since_the_last_one(tmp_path):
     index = (out / "report" / "index.html").read_text(encoding="utf-8")
     assert "since the last audit</th><td>1 new (camp/layers/L-new.traj), 0 read again, 1 gone " \
            "(camp/layers/L-obl.traj)" in index
+
+
+def test_a_run_folder_keeps_its_id_while_a_rerun_has_emptied_its_output(tmp_path):
+    """A resubmitted pw.x job empties its output (`pw.x < pw.in > pw.out` just started): the run
+    is still the folder, failing as an empty file, not a new run named by the file (which left
+    two rows in runs.db, one for a failure that no longer exists). The real pw.x 6.7 run of
+    tests/data/qe/relax_atoms_to_sites."""
+    src = Path(__file__).parent / "data" / "qe" / "relax_atoms_to_sites"
+    camp = tmp_path / "camp"
+    shutil.copytree(src, camp / "job")
+    out = tmp_path / "out"
+    run_audit([camp], out)
+    (camp / "job" / "pw.out").write_text("")
+    s = run_audit([camp], out)
+    assert [f["run"] for f in s["failed"]] == ["camp/job"]
+    assert "empty file (a job that has not written yet" in s["failed"][0]["error"]
+    shutil.copy(src / "pw.out", camp / "job" / "pw.out")
+    s = run_audit([camp], out)
+    assert not s["failed"] and [r.run_id for r in ase.db.connect(out / "runs.db").select()] == \
+        ["camp/job"]

@@ -463,6 +463,9 @@ def read_pw_out(path, ctx: ReadContext):
         if ready(cur) and prev_kinds is not None and cur.kinds() >= prev_kinds:
             yield emit(cur)
         if not seen_start:
+            if not peek(path, 1):
+                raise InputError(path, "empty file (a job that has not written yet, or an "
+                                       "output a rerun emptied)")
             raise InputError(path, "no completed ionic step (no 'Program PWSCF' line: not a "
                                    "pw.x output, or cut before its header)")
         if nscf and not step:
@@ -807,8 +810,24 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
     if len(outs) == 1:
         return _single_point_traj(folder, names, outs[0], ctx) or \
             FolderPick([("", outs[0], "espresso-out")])
+    if not outs:                  # an output emptied by a rerun (`pw.x < pw.in > pw.out` just
+        empty = _emptied_output(folder, names, ctx)        # started): the folder is still the
+        if empty is not None:                              # run, failing as "empty file"
+            return FolderPick([("", empty, "espresso-out")])
     stages = _as_stages(outs, ctx) if outs else _stage_folders(Path(folder), ctx)
     return FolderPick(stages) if stages else None
+
+
+def _emptied_output(folder: Path, names, ctx=None) -> Path | None:
+    """The one empty file named like a pw.x output in a folder that holds a pw.x input, or None."""
+    empty = [Path(folder) / n for n in names if _output_name(n)
+             and (Path(folder) / n).is_file() and (Path(folder) / n).stat().st_size == 0]
+    if len(empty) != 1 or not any(_is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)
+                                  for n in names):
+        return None
+    if ctx is not None:
+        ctx.uses(empty[0])
+    return empty[0]
 
 
 def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
