@@ -821,9 +821,15 @@ def _write_if_changed(path: Path, text: str) -> None:
 
 
 def _retire_stale(rec_dir: Path, previous: list[str], current: set[str]) -> list[str]:
-    """Move records driftwatch wrote earlier that are no longer current to records/stale/."""
+    """Move records driftwatch wrote earlier that are no longer current to records/stale/; drop
+    the stale copy of a run that is current again (its record in records/ is the live one)."""
     moved = []
     stale = rec_dir / "stale"
+    if stale.is_dir() and not stale.is_symlink():
+        for name in current:
+            old = stale / name
+            if old.is_file() and not old.is_symlink():
+                old.unlink()
     for name in previous:
         src = rec_dir / name
         if name in current or "/" in name or src.is_symlink() or not src.is_file():

@@ -31,7 +31,7 @@ lattice-nearing     lattice    the deformation to a type fell by ``nearing_fract
 passed-through      lattice    a type was held for a stretch of the run, then left again
 handedness-flip     lattice    a layer's 2D lattice ends with the opposite handedness, clearly chiral at
                                both ends (it passed through a mirror-symmetric lattice), or reversed
-                               it at least twice on the way, clearly chiral on each side
+                               it at least twice on the way, each side reaching 2 x min_chiral
 group-gained        structure  spglib's group at the end contains the start's (more operations)
 group-lost          structure  spglib's group at the end is a subgroup of the start's
 group-changed       structure  neither contains the other
@@ -377,8 +377,9 @@ def _lattice_flags(frames, lv, D, r):
             flags.append(_flag("handedness-flip", rev[0][0], frames,
                                f"the layer's 2D lattice reversed its handedness {len(rev)} times "
                                f"(first {_from(frames, rev[0][0])}, last back "
-                               f"{_from(frames, rev[-1][0])}; clearly chiral on each side, mirror "
-                               f"deformation up to {_g(max(x[1] for x in rev))} Å), while its "
+                               f"{_from(frames, rev[-1][0])}; each side reaching a mirror "
+                               f"deformation of twice min_chiral, up to "
+                               f"{_g(max(x[1] for x in rev))} Å), while its "
                                f"two ends show no reversal: it passed through mirror-symmetric "
                                f"lattices on the way", None, len(rev),
                                r["handedness_flip"]["min_chiral"]))
@@ -386,13 +387,27 @@ def _lattice_flags(frames, lv, D, r):
 
 
 def _reversals(frames, r) -> list[tuple[int, float]]:
-    """Where a layer's handedness reversed: (frame, mirror deformation there, Å) at each frame whose
-    sign differs from the one before it among the frames clearly chiral (mirror deformation above
-    ``min_chiral``: a lattice settling onto a mirror-symmetric one flickers below it)."""
+    """Where a layer's handedness reversed on the way: (first frame of the new side, the side's
+    largest mirror deformation, Å) for each change of sign between stretches of one sign that
+    reach twice ``min_chiral`` (frames below ``min_chiral`` are no side: a lattice settling onto a
+    mirror-symmetric one flickers there, and overshoots it by a few per cent of it)."""
     sign = np.array([f["sign"] for f in frames])
     chiral = np.array([f["deformation"]["mirror"] for f in frames])
     sig = np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
-    return [(int(b), float(chiral[b])) for a, b in zip(sig, sig[1:]) if sign[a] != sign[b]]
+    sides = []                               # [sign, first frame, peak] of each stretch of one sign
+    for k in sig:
+        if sides and sides[-1][0] == sign[k]:
+            sides[-1][2] = max(sides[-1][2], float(chiral[k]))
+        else:
+            sides.append([int(sign[k]), int(k), float(chiral[k])])
+    clear = [s for s in sides if s[2] >= 2 * r["min_chiral"]]
+    kept = []
+    for s in clear:                          # stretches of one sign joined across faint ones
+        if kept and kept[-1][0] == s[0]:
+            kept[-1][2] = max(kept[-1][2], s[2])
+        else:
+            kept.append(list(s))
+    return [(b[1], b[2]) for a, b in zip(kept, kept[1:])]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -660,6 +675,9 @@ def _looser(sv) -> str | None:
         if float(key) > sv["symprec"] and v["direction"] != sv["direction"]:
             (g0, s0), (g1, s1) = v["initial"], v["final"]
             grp = f"{s0} ({g0})" if v["direction"] == "kept" else f"{s0} ({g0}) -> {s1} ({g1})"
+            if g0 == g1 and v["direction"] in ("gained", "lost"):    # the same type
+                grp += (f", with {'more' if v['direction'] == 'gained' else 'fewer'} operations "
+                        f"(pure translations)")
             return f"at symprec {key} Å: group {v['direction']} {grp}"
     return None
 
@@ -816,8 +834,10 @@ def _plateaus(spec):
 def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | None = None) -> dict:
     """Tolerance advice from one spectrum (Å): plateaus of one group, and the symprec to use.
 
-    The chosen plateau is the widest (in log symprec), except that a plateau of P1 (layer group p1)
-    gives way to the widest plateau of a real group at least ``min_plateau`` wide (factor high/low):
+    The chosen plateau is the widest (in log symprec; of plateaus as wide to within the squared
+    bracket precision, the one with the most operations), except that a plateau of P1 (layer
+    group p1) gives way to the widest plateau of a real group at least ``min_plateau`` wide (factor
+    high/low):
     P1 over a wide range below such a group only says the atoms are not symmetric to within those
     small tolerances. The suggestion is the plateau's geometric centre.
     Grid points below twice the file's printed ``precision`` (Å; half a unit of the last printed
@@ -854,6 +874,14 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
         return out
     best = max(usable, key=lambda u: u[5])
     why = "the widest plateau of one verdict"
+    # widths within the brackets' own uncertainty (each end known to a factor `precision`) are one
+    # width: of those, the group with the most operations
+    tie = float(spec.get("precision") or 1.05) ** 2
+    even = [u for u in usable if u[5] * tie >= best[5] and u[4] > best[4]]
+    if even:
+        best = max(even, key=lambda u: (u[4], u[5]))
+        why = (f"the plateau with the most operations among the widest (widths within a factor "
+               f"{tie:.3g}, the brackets' precision squared, count as one)")
     real = [u for u in usable if u[2] != 1 and u[5] >= min_plateau]
     if best[2] == 1 and real:   # P1 (p1) is no verdict to settle on when a real group holds widely
         trivial = best[3]

@@ -321,9 +321,11 @@ def test_records_of_removed_runs_move_to_stale(tmp_path):
     now = {r.run_id: r.id for r in ase.db.connect(out / "runs.db").select()}
     assert len(now) == s["runs"] == len(rows) - 1 and "camp/layers/L-obl.traj" in rows
     assert all(rows[k] == v for k, v in now.items())
-    gone.write_bytes(kept_bytes)                  # back again: one row again
+    gone.write_bytes(kept_bytes)                  # back again: one row again, no stale copy
     s = run_audit([camp], out)
     assert sorted(r.run_id for r in ase.db.connect(out / "runs.db").select()) == sorted(rows)
+    assert not (out / "records" / "stale" / "camp_layers_L-obl.traj.json").exists()
+    assert (out / "records" / "camp_layers_L-obl.traj.json").is_file()
     # a database shared with another output folder keeps that folder's rows: only the run ids this
     # folder's previous audit wrote are deleted
     other = tmp_path / "other"

@@ -310,7 +310,7 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
-    assert summary["failed"] == [] and summary["runs"] == 44
+    assert summary["failed"] == [] and summary["runs"] == 45
     assert sorted(k["run"] for k in summary["skipped"]) == [
         "mixed/OUTCAR_example_1.gz", "mixed/ase_generic/gpaw_h2.txt",
         "mixed/foreign_outputs/cp2k/relax.out.gz", "mixed/foreign_outputs/qe_neb/H2+H.out.gz",
@@ -319,11 +319,11 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
     # the table marks the runs that are no relaxation (a grep for "lost" must not read MD as drift)
     md = next(ln for ln in proc.stdout.splitlines() if ln.startswith("mixed/vasp541_npt_md "))
     assert md.split()[2] == "lost~" and "~ no relaxation (molecular dynamics" in proc.stdout
-    assert ("44 runs: 38 with a verdict, 0 failed, 6 skipped (44 read now, 0 from the cache)"
+    assert ("45 runs: 39 with a verdict, 0 failed, 6 skipped (45 read now, 0 from the cache)"
             in proc.stdout)
     # the runs whose steps are no relaxation (their settings, as the files print them) are counted
-    assert ("not relaxations: 13 runs (finite differences 1, molecular dynamics 3, "
-            "nudged-elastic-band image 3, single-point calculation 6; column not_relaxation of "
+    assert ("not relaxations: 14 runs (finite differences 1, molecular dynamics 3, "
+            "nudged-elastic-band image 3, single-point calculation 7; column not_relaxation of "
             "campaign.csv)") in proc.stdout
     assert {x["run"] for x in summary["not_relaxation"]} == {
         "mixed/atomate_si_static/outputs", "mixed/atomate_static_stages/outputs",   # NSW = 0
@@ -331,24 +331,25 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         "mixed/vasp544_finite_differences", "mixed/vasp541_npt_md", "mixed/vasp544_neb/01",
         "mixed/vasp544_nelm",                     # NSW = -1: one SCF at NELM, a single point
         "mixed/qe_testsuite_lda_u/benchmark.out.git.inp=lda+U.in.gz",              # pw.x scf
+        "mixed/qe_testsuite_space_group/benchmark.out.git.inp=lattice-wyckoff-sio2.in.gz",
         "mixed/vasp544_neb/02", "mixed/vasp544_neb/03",
         "mixed/qe_testsuite_md/benchmark.out.git.inp=md.in.args=1.gz",
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz"}
     # the campaign's tolerance advice is about relaxed structures: those 8 are left out of it
     tol = summary["tolerance"]
-    assert tol["left_out"] == 13 and set(tol["run_ids_left_out"]) == {
+    assert tol["left_out"] == 14 and set(tol["run_ids_left_out"]) == {
         x["run"] for x in summary["not_relaxation"]}
     from driftwatch.rules import advice_item, campaign_advice
     recs = [(p.name, json.loads(p.read_text()))
             for p in (tmp_path / "out" / "records").glob("*.json")]
     alone = campaign_advice([advice_item(n, r) for n, r in recs
                              if not r["run"]["not_relaxation"]], tol["symprecs"])
-    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 13
+    assert tol["runs_considered"] == alone["runs_considered"] == len(recs) - 14
     assert tol["recommended_symprec"] == alone["recommended_symprec"]
     assert [c["runs"] for c in tol["changes"]] == [c["runs"] for c in alone["changes"]]
-    assert tol["reason"] == alone["reason"] + ". Left out: 13 runs whose steps are no relaxation"
+    assert tol["reason"] == alone["reason"] + ". Left out: 14 runs whose steps are no relaxation"
     assert f"campaign symprec: {tol['recommended_symprec']:.3g} Å (" in proc.stdout
-    assert "Left out: 13 runs whose steps are no relaxation)" in proc.stdout
+    assert "Left out: 14 runs whose steps are no relaxation)" in proc.stdout
     rec = json.loads((tmp_path / "out" / "records" / "mixed_custodian_double_relax.json").read_text())
     assert [s["name"] for s in rec["run"]["stages"]] == ["relax1", "relax2"]
     assert rec["run"]["position_precision"] == pytest.approx(
@@ -460,6 +461,13 @@ def test_a_pwx_input_of_another_calculation_beside_an_output_is_not_used(tmp_pat
     run = read_run(folder / "run.out")
     assert (run.code_settings["settings_from"], run.code_settings["calculation"]) == \
         ("pw.in", "relax")
+    assert not [w for w in run.warnings if "is not this output's" in w]
+    # an input given by space group counts inequivalent atoms in nat (QE's test-suite: nat = 2,
+    # pw.x expands them to 9): it is the run's own input, only ntyp is compared
+    sg = PUB / "qe_testsuite_space_group"
+    assert "space_group=154" in (sg / "lattice-wyckoff-sio2.in").read_text()
+    run = read_run(sg)
+    assert run.natoms == 9 and run.code_settings["settings_from"] == "lattice-wyckoff-sio2.in"
     assert not [w for w in run.warnings if "is not this output's" in w]
 
 

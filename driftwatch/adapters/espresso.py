@@ -504,7 +504,9 @@ def read_pw_input(path) -> dict:
         data, _ = read_fortran_namelist(io.StringIO("".join(fh)))
     control, system, cell = (data.get(k, {}) for k in ("control", "system", "cell"))
     out = {"code": "espresso",
-           "nat": _int(system.get("nat")), "ntyp": _int(system.get("ntyp")),
+           # with space_group, nat counts the inequivalent atoms only (pw.x expands them)
+           "nat": None if "space_group" in system else _int(system.get("nat")),
+           "ntyp": _int(system.get("ntyp")),
            "calculation": _text(control.get("calculation", "scf")).lower(),
            "nosym": bool(system.get("nosym", False)),
            "noinv": bool(system.get("noinv", False)),

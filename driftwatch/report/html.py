@@ -770,7 +770,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
         v = r["summary"]["verdict"]["direction"]
         verdicts[v] = verdicts.get(v, 0) + 1
     header = ("<h1>driftwatch campaign report</h1><div class=\"sub\">"
-              f"{len(recs)} runs · {n_flagged} with flags · {len(bad)} unreadable inputs · "
+              f"{len(recs)} runs with a verdict · {n_flagged} with flags · {len(bad)} unreadable "
+              f"inputs · "
               f"{len(failed)} failed runs"
               + (f" · {len(skipped)} skipped" if skipped else "") + "</div>")
     parts = [f'<p class="note">{e(DISCLAIMER)}</p>']
@@ -787,7 +788,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
                           "step limit: their final structures are not relaxed ones)</span>")]
          if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
-           "<br>".join(e(" = ".join(g)) for g in campaign["copies"][:10])
+           "<br>".join(e(" = ".join(g[:3]) + (f" (and {len(g) - 3} more)" if len(g) > 3 else ""))
+                       for g in campaign["copies"][:10])
            + (" …" if len(campaign["copies"]) > 10 else "")
            + '<br><span class="muted">a folder kept twice, or a rerun that repeated the same '
              'steps; each copy counts as a run of its own above</span>')]
