@@ -259,6 +259,12 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
             and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink
             and (g is None or (t != g and generalises(g, t)))]
+    if persist is not None and cand:          # live: the approach held for the last steps
+        k = len(frames)
+        sh = _shrink([frames[0], *frames[max(0, k - persist):]])[1:]
+        cand = [] if k < persist else [
+            t for t in cand if np.all(D[t][k - persist:] > within)
+            and np.all(D[t][k - persist:] <= (1 - lat["nearing_fraction"]) * D[t][0] * sh)]
     nearing = _nearest(cand, D) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
     # (a lattice of no higher type: the nearest higher type, how far it stayed)
@@ -705,8 +711,10 @@ def lattice_flags(frames: list[dict], dim: int, cfg: dict, *, complete: bool = T
 
 def judge(record: dict, cfg: dict, *, complete: bool = True,
           series: dict | None = None) -> tuple[list[dict], dict]:
-    """Flags and summary of a record. ``complete=False`` (a live run): a change counts only once it
-    held for ``rules.persistence.steps`` consecutive steps. ``series``: the frames' deformation as
+    """Flags and summary of a record. ``complete=False`` (a live run): a change (or a lattice's
+    approach to a type) counts only once it held for ``rules.persistence.steps`` consecutive
+    steps, and the flags that judge the final structure (atoms-break-lattice, symprec-dependent,
+    loose-symprec, held-by-code) wait for the run's end. ``series``: the frames' deformation as
     arrays {type: (n,)} (Å) when the caller has them (the same values; saves reading the frames)."""
     frames, dim = record["frames"], record["geometry"]["dimension"]
     r = cfg["rules"]
@@ -716,12 +724,13 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
     direction = _combine(lv["direction"], sv["direction"])
     flags = _lattice_flags(frames, lv, D, r)
     flags += _structure_flags(frames, sv)
-    flags += _breaks_lattice(frames, dim, r["atoms_break_lattice"],
-                             len(frames) > 1 and record["run"]["fixed_cell"])
-    flags += _symprec_dependent(frames, r["symprec_dependent"])
-    flags += _loose(frames, D, r["loose_symprec"])
-    if r["held_by_code"]["enabled"]:
-        flags += _held_by_code(record, frames, sv)
+    if complete:       # judgements of the final structure: a live run's newest is not one yet
+        flags += _breaks_lattice(frames, dim, r["atoms_break_lattice"],
+                                 len(frames) > 1 and record["run"]["fixed_cell"])
+        flags += _symprec_dependent(frames, r["symprec_dependent"])
+        flags += _loose(frames, D, r["loose_symprec"])
+        if r["held_by_code"]["enabled"]:
+            flags += _held_by_code(record, frames, sv)
     types, within = _types(dim), r["lattice"]["within"]
     precision = record["run"].get("position_precision")
     tol = advice(frames[-1].get("symmetry"), min_plateau=cfg["tolerance"]["min_plateau"],

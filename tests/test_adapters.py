@@ -933,3 +933,23 @@ def test_one_frame_files_that_no_optimiser_wrote_are_single_structures(tmp_path)
         opt.run(fmax=0.05)
     run = read_run(tmp_path / "opt.traj")
     assert len(run) == 1 and run.not_relaxation is None
+
+
+def test_a_pwx_run_stopped_on_request_is_unfinished():
+    """pw.x stops cleanly when it finds its <prefix>.EXIT file (driftwatch's soft stop writes one):
+    "Program stopped by user request", then JOB DONE. Its final structure is no relaxed one, so the
+    run is unfinished (a stopped run read afterwards counted as a finished relaxation). Real pw.x
+    6.7 runs: relax1 of tests/data/qe/restart_stage_folders (stopped after 2 BFGS steps), and a run
+    that found the file when it started (tests/data/qe_trials/si2_exit_at_start): no ionic step,
+    said as such (it read "truncated ... no JOB DONE", both false)."""
+    first = DATA / "qe" / "restart_stage_folders" / "relax1"
+    assert "Program stopped by user request" in (first / "pw.out").read_text()
+    run = read_run(first)
+    assert run.unfinished.startswith("stopped on request (pw.x: 'Program stopped by user request'")
+    assert read_run(DATA / "qe" / "restart_stage_folders").unfinished is None   # relax2 finished
+    early = DATA / "qe_trials" / "si2_exit_at_start"
+    text = gzip.open(early / "pw.out.gz", "rt").read()
+    assert "Program stopped by user request" in text and "JOB DONE." in text
+    with pytest.raises(InputError, match="pw.x stopped on request before its first step") as e:
+        read_run(early)
+    assert "truncated" not in str(e.value) and "\n" not in str(e.value)

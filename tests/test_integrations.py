@@ -153,6 +153,27 @@ def test_stop_handler_soft_stops_a_replayed_run(tmp_path):
     assert isinstance(again, SymmetryStopHandler) and again.fail_job is True
 
 
+def test_stop_handler_leaves_a_finished_job_alone(tmp_path):
+    """custodian checks its monitors once more after the job's process ends (and, with its
+    defaults, only every 300 s while it runs). A job whose output has its end marker (pw.x's JOB
+    DONE) is not stopped: no stop file is written into the finished folder (one left there stopped
+    the next run at once, "Program stopped by user request", found by a field trial), and the
+    validator, not the stop, judges it."""
+    job = tmp_path / "job"
+    shutil.copytree(COLLAPSED, job)
+    assert "JOB DONE." in (job / "pw.out").read_text()
+    h = SymmetryStopHandler(stop_on=["lattice-gained"], config=QUICK)
+    assert h.check(str(job)) is False
+    assert not list(tmp_path.rglob("*.EXIT"))
+    cut = tmp_path / "running"                    # the same output while still being written
+    cut.mkdir()
+    shutil.copy(COLLAPSED / "pw.in", cut / "pw.in")
+    text = (COLLAPSED / "pw.out").read_text()
+    (cut / "pw.out").write_text(text[:text.rindex("End of BFGS")])
+    h = SymmetryStopHandler(stop_on=["lattice-gained"], config=QUICK)
+    assert h.check(str(cut)) is True
+
+
 def test_stop_handler_dry_run_only_logs(tmp_path):
     h = SymmetryStopHandler(stop_on=["lattice-gained"], dry_run=True, config=QUICK)
     c = Custodian([h], [ReplayJob(COLLAPSED / "pw.out", delay=0.02)], directory=str(tmp_path),
@@ -176,7 +197,7 @@ def test_stop_handler_with_real_pwx_under_custodian(tmp_path, linger):
     from test_live import ALUMINIUM_VC_RELAX, PSEUDO
     (tmp_path / "pw.in").write_text(ALUMINIUM_VC_RELAX)
     shutil.copy(PSEUDO, tmp_path / PSEUDO.name)
-    h = SymmetryStopHandler(stop_on=["lattice-nearing"])
+    h = SymmetryStopHandler(stop_on=["lattice-nearing"], config=QUICK)   # nearing held 2 steps
     c = Custodian([h], [PwJob(linger)], directory=str(tmp_path), polling_time_step=0.1,
                   monitor_freq=1, max_errors=5)
     c.run()                                  # raises_runtime_error=False: returns, logs the stop

@@ -488,7 +488,9 @@ def test_soft_stop_makes_real_pwx_stop_early_and_cleanly(tmp_path, unstopped):
     buf = io.StringIO()
     try:
         # 'lattice-nearing' is raised after a few steps, when the deformation to cF has halved
-        rec = follow(folder / "pw.out", stream=buf, poll=0.1, idle=60, stop_on=["lattice-nearing"])
+        # and stayed so for 2 steps (the persistence of a change while the job runs: 2 here)
+        rec = follow(folder / "pw.out", stream=buf, poll=0.1, idle=60, stop_on=["lattice-nearing"],
+                     config={"rules": {"persistence": {"steps": 2}}})
         rc = p.wait(timeout=120)
     finally:
         if p.poll() is None:
@@ -525,7 +527,7 @@ def test_follow_dry_run_on_real_pwx_writes_nothing(tmp_path, unstopped):
     (folder / "pw.out").write_text(text[:cut].rsplit("\n", 1)[0] + "\n")
     buf = io.StringIO()
     rec = follow(folder / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-nearing"],
-                 dry_run=True)
+                 dry_run=True, config={"rules": {"persistence": {"steps": 2}}})
     assert rec["live"]["stop"]["action"] == "dry-run"
     assert rec["live"]["ended"].startswith("idle")
     assert sorted(p.name for p in folder.rglob("*")) == ["pw.in", "pw.out"]
@@ -658,3 +660,49 @@ def test_follow_says_when_a_stop_condition_held_only_once_the_job_ended(tmp_path
     assert ("driftwatch: lattice-gained (from step 6) holds once the job's end counts, not for the "
             "10 steps a change must hold while it runs (rules.persistence.steps): no stop was "
             "requested") in buf.getvalue()
+
+
+def test_a_rattled_start_is_not_stopped_on_its_first_frame(tmp_path):
+    """Rattling a symmetric start is common practice. A stop on what concerns the structure
+    (stop_on=("structure",)) stopped a real EMT relaxation of a rattled fixed-cell Cu32 on its
+    first frame: atoms-break-lattice judged the starting structure as if it were the final one.
+    While the run goes, flags that judge the final structure wait for its end; a change of group
+    stops it once it held for the persistence steps (10 by default)."""
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.optimize import BFGS
+    atoms = bulk("Cu", "fcc", a=3.6, cubic=True).repeat(2)
+    atoms.rattle(0.03, seed=7)
+    atoms.calc = EMT()
+    opt = BFGS(atoms, logfile=None)
+    opt.attach(SymmetryWatch(atoms, mode="stop", stop_on=("structure",)))
+    try:
+        opt.run(fmax=1e-3, steps=60)
+    except SymmetryCollapse as exc:      # a group change that lasted, not the rattled start
+        assert {f["code"] for f in exc.flags} <= {"group-gained", "group-lost", "group-changed"}
+        assert opt.nsteps >= 10
+    assert opt.nsteps > 0
+
+
+def test_a_live_approach_to_a_type_counts_once_it_held():
+    """lattice-nearing stopped a live pw.x layer on the first step its deformation to oc had
+    halved, 14 steps before the layer reached oc (a field trial); while a run goes it counts, like
+    a change, once it held for the persistence steps. The bundled L01 (a real pw.x vc-relax)
+    judged as if live after each step: with a persistence of 4 steps the flag appears 3 steps
+    after it appears with 1, for the same type."""
+    import copy
+    from driftwatch import config as _config, rules
+    rec = analyze(Path(__file__).parent.parent / "example_runs" / "L01_qe_vcrelax")
+
+    def first_seen(steps):
+        cfg = _config.load(overrides={"rules.persistence.steps": steps})
+        for k in range(1, len(rec["frames"]) + 1):
+            part = copy.deepcopy(rec)
+            part["frames"] = part["frames"][:k]
+            hit = [f for f in rules.judge(part, cfg, complete=False)[0]
+                   if f["code"] == "lattice-nearing"]
+            if hit:
+                return k - 1, hit[0]["type"]
+        return None
+    one, four = first_seen(1), first_seen(4)
+    assert one is not None and four == (one[0] + 3, one[1])

@@ -68,6 +68,8 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
             "Begin final coordinates", *_LIMITS, _CLOCK)
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
+# pw.x found its <prefix>.EXIT file (driftwatch's soft stop, or the user's): it stops cleanly
+_ON_REQUEST = "Program stopped by user request"
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
 _STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
 # how pw.x announces its dynamics (PW/src/dynamics_module.f90 and vcsmd.f90 of QE's sources): the
@@ -83,7 +85,7 @@ _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
 _MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
-          *_CLOSERS, *_STOPS, *_DYNAMICS)
+          *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST)
 
 
 class _Config:
@@ -262,6 +264,7 @@ def read_pw_out(path, ctx: ReadContext):
     done = False
     ionic = False       # BFGS or dynamics lines seen: pw.x moved atoms or cell
     at_limit = False    # the last run stopped at nstep ("The maximum number of steps ...")
+    on_request = False  # the last run stopped on request (its .EXIT file)
     cur: _Config | None = None
     alat = natoms = None
     pending_cell = None
@@ -324,20 +327,29 @@ def read_pw_out(path, ctx: ReadContext):
             if _START in line:
                 if ready(cur):
                     yield emit(cur)
-                at_limit = False                  # a new run: its own end decides
+                at_limit = on_request = False     # a new run: its own end decides
                 restored = unevaluated(cur) if cur is not None else carried
                 restored_index = cur.index if cur is not None and restored is not None else None
                 seen_start = True
-                header = [line]
+                header, ended = [line], False
                 while True:
                     ln = fh.readline()
                     if not ln:
-                        header = None
+                        ended = True
                         break
                     if any(m in ln for m in _HEADER_END):
                         break
                     header.append(ln)
-                if header is None:
+                if any(_ON_REQUEST in ln for ln in header):    # its .EXIT file was there at start
+                    if not step:
+                        raise InputError(path, f"no ionic step: pw.x stopped on request before "
+                                               f"its first step ('{_ON_REQUEST}': its "
+                                               f"<prefix>.EXIT stop file was there when it "
+                                               f"started; delete it to run)")
+                    on_request = done = True
+                    cur = None
+                    break
+                if ended:
                     cur = None
                     break
                 try:
@@ -441,6 +453,8 @@ def read_pw_out(path, ctx: ReadContext):
                         yield emit(cur)
             elif any(m in line for m in _STOPS):
                 ctx.warn(f"pw.x stopped early: '{line.strip()}' (line {fh.lineno})")
+            elif _ON_REQUEST in line:
+                on_request = True
             elif any(m in line for m in _DYNAMICS):
                 ionic = True
                 if "calculation" not in ctx.settings and \
@@ -482,6 +496,9 @@ def read_pw_out(path, ctx: ReadContext):
             ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
         if at_limit and ctx.settings.get("calculation") not in ("md", "vc-md"):
             ctx.unfinished = f"stopped at its step limit (pw.x: '{at_limit}')"
+        if on_request:
+            ctx.unfinished = (f"stopped on request (pw.x: '{_ON_REQUEST}': its <prefix>.EXIT "
+                              f"stop file, written by a user or by driftwatch's soft stop)")
         if not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"

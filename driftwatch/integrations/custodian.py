@@ -150,6 +150,8 @@ class SymmetryStopHandler(ErrorHandler):
             return False
         if rec is None or code_of_format(self._tracker.format) is None:
             return False
+        if _end_marker(self._tracker.source, self._tracker.format) is not None:
+            return False       # the job has ended: nothing to stop (the validator judges it)
         hits = rules.select(rec["flags"], self.stop_on)
         if not hits:
             return False
