@@ -1524,6 +1524,7 @@ def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
     whole = (camp / "cut" / "pw.out").read_text()
     (camp / "cut" / "pw.out").write_text(whole[:len(whole) // 2])
     shutil.copytree(QE / "layer_oblique_to_hex", camp / "done")
+    shutil.copytree(QE / "restart_stage_folders" / "relax1", camp / "stopped")  # soft stop
     proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
                            str(tmp_path / "out"), "--no-report"], capture_output=True, text=True,
                           timeout=600)
@@ -1532,9 +1533,14 @@ def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
     assert summary["unfinished"] == [
         {"run": "camp/cut", "why": "cut short: job killed or still running"},
         {"run": "camp/nelm", "why": "stopped at its step limit (VASP ran all NSW = 5 ionic steps "
-                                    "and its OUTCAR does not say 'reached required accuracy')"}]
-    assert ("unfinished: 2 runs (cut short 1, stopped at its step limit 1; column unfinished of "
-            "campaign.csv): their final structures are not relaxed ones") in proc.stdout
+                                    "and its OUTCAR does not say 'reached required accuracy')"},
+        {"run": "camp/stopped", "why": "stopped on request (pw.x: 'Program stopped by user "
+                                       "request': its <prefix>.EXIT stop file, written by a user "
+                                       "or by driftwatch's soft stop)"}]
+    assert ("unfinished: 3 runs (cut short 1, stopped at its step limit 1, stopped on request 1; "
+            "column unfinished of campaign.csv): their final structures are not relaxed ones"
+            ) in proc.stdout
+    assert "* unfinished: cut short, or stopped at its step limit or on request;" in proc.stdout
     rows = {ln.split()[0]: ln.split()[2] for ln in proc.stdout.splitlines() if ln.startswith("camp/")}
     assert rows["camp/cut"].endswith("*") and rows["camp/nelm"].endswith("*")
     assert not rows["camp/done"].endswith("*") and "* unfinished:" in proc.stdout

@@ -784,8 +784,9 @@ def _index_page(runs, bad, failed, campaign) -> str:
     ] + ([("not relaxations", f"{n_moving} <span class=\"muted\">(molecular dynamics, band "
                                "images, ...: their verdicts compare how the structure moved "
                                "from the first frame to the last)</span>")] if n_moving else [])
-      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short or stopped at their "
-                          "step limit: their final structures are not relaxed ones)</span>")]
+      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short, or stopped at "
+                          "their step limit or on request: their final structures are not "
+                          "relaxed ones)</span>")]
          if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(" = ".join(g[:3]) + (f" (and {len(g) - 3} more)" if len(g) > 3 else ""))
