@@ -870,10 +870,17 @@ def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:
             say(f"  flag {f['code']} (step {f['step']}): {f['message']}")
 
 
+def stop_reason(tracker: Tracker, flag: dict) -> str:
+    """Why a stop is asked, as the stop file states it: the flag, the step its change holds from
+    and the newest step read (where it was seen to have lasted), the file, the flag's message."""
+    newest = tracker.frames[-1].step if tracker.frames else flag["step"]
+    return (f"flag {_flag_text(flag)} holds from ionic step {flag['step']} (seen at step "
+            f"{newest}) of {Path(tracker.source).name}: {flag['message']}")
+
+
 def _soft_stop(tracker: Tracker, flag: dict, dry_run, prefix, outdir, say) -> dict:
     code = code_of_format(tracker.format)
-    reason = (f"flag {_flag_text(flag)} raised at ionic step {flag['step']} of "
-              f"{Path(tracker.source).name}: {flag['message']}")
+    reason = stop_reason(tracker, flag)
     info = request_stop(tracker.run_dir, code, reason=reason, dry_run=dry_run, prefix=prefix,
                         outdir=outdir)
     info["flag"] = dict(flag)

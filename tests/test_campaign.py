@@ -552,3 +552,9 @@ def test_a_run_folder_keeps_its_id_while_a_rerun_has_emptied_its_output(tmp_path
     s = run_audit([camp], out)
     assert not s["failed"] and [r.run_id for r in ase.db.connect(out / "runs.db").select()] == \
         ["camp/job"]
+    # an empty log of a script beside a template input above the run is no run (named as no
+    # output of that input: pw.in's would be pw.out)
+    shutil.copy(src / "pw.in", camp / "pw.in")
+    (camp / "run.log").write_text("")
+    s = run_audit([camp], out)
+    assert not s["failed"] and s["runs"] == 1

@@ -148,6 +148,10 @@ def test_stop_handler_soft_stops_a_replayed_run(tmp_path):
     assert stop["action"] == "wrote"
     assert Path(stop["path"]) == (tmp_path / "scratch" / "pw.EXIT").resolve()
     assert "lattice-gained" in stop["text"] and corr[0]["actions"] is None
+    # the stop file says from which step the change held and at which step it was seen to last
+    held, seen = (int(x) for x in __import__("re").search(
+        r"holds from ionic step (\d+) \(seen at step (\d+)\)", stop["text"]).groups())
+    assert seen - held + 1 >= 2                               # QUICK: 2 steps of persistence
     assert not Path(stop["path"]).exists()                      # the job consumed it
     again = json.loads(json.dumps(h, cls=MontyEncoder), cls=MontyDecoder)
     assert isinstance(again, SymmetryStopHandler) and again.fail_job is True

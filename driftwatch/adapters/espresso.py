@@ -838,11 +838,15 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
 
 
 def _emptied_output(folder: Path, names, ctx=None) -> Path | None:
-    """The one empty file named like a pw.x output in a folder that holds a pw.x input, or None."""
+    """The one empty file named as a pw.x input's output (``pw.in`` -> ``pw.out``, ``x.pwi`` ->
+    ``x.pwo``: the same stem) in a folder that holds that input, or None (an empty log of a
+    script or a scheduler beside a template input is no run)."""
+    stems = {strip_compression(n).rsplit(".", 1)[0] for n in names
+             if _is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)}
     empty = [Path(folder) / n for n in names if _output_name(n)
+             and strip_compression(n).rsplit(".", 1)[0] in stems
              and (Path(folder) / n).is_file() and (Path(folder) / n).stat().st_size == 0]
-    if len(empty) != 1 or not any(_is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)
-                                  for n in names):
+    if len(empty) != 1:
         return None
     if ctx is not None:
         ctx.uses(empty[0])

@@ -38,7 +38,7 @@ from custodian.custodian import ErrorHandler, Validator
 from .. import records, rules
 from ..errors import DriftwatchError, InputError
 from ..live import (Tracker, _codes, _end_marker, _needs_spectra, _read, check_run,
-                    code_of_format, request_stop)
+                    code_of_format, request_stop, stop_reason)
 
 __all__ = ["SymmetryValidator", "SymmetryStopHandler"]
 
@@ -165,9 +165,7 @@ class SymmetryStopHandler(ErrorHandler):
         return True
 
     def _request(self, directory, flag, dry_run):
-        reason = (f"flag {flag['code']}{'(' + flag['type'] + ')' if flag['type'] else ''} raised "
-                  f"at ionic step {flag['step']} of {Path(self._tracker.source).name}: "
-                  f"{flag['message']}")
+        reason = stop_reason(self._tracker, flag)
         return request_stop(directory, code_of_format(self._tracker.format), reason=reason,
                             dry_run=dry_run, prefix=self.prefix, outdir=self.outdir)
 
