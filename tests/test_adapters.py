@@ -953,3 +953,20 @@ def test_a_pwx_run_stopped_on_request_is_unfinished():
     with pytest.raises(InputError, match="pw.x stopped on request before its first step") as e:
         read_run(early)
     assert "truncated" not in str(e.value) and "\n" not in str(e.value)
+
+
+def test_a_pwx_bfgs_that_gave_up_is_unfinished_unless_its_thresholds_were_met():
+    """pw.x's BFGS gives up when its trust radius falls below the minimum twice ("history already
+    reset at previous step: stopping", QE's Modules/bfgs_module.f90) and then prints "bfgs
+    converged" whatever its errors. A real pw.x 6.7 vc-relax (tests/data/qe_trials/si2_bfgs_gave_up)
+    ends with a gradient error of 8.7E-06 against a 1.0E-06 threshold: unfinished. The bundled B02
+    (real pw.x too) gave up the same way with every error within its thresholds (1.4E-09 < 1.0E-06,
+    0.0 < 1.0E-04, 2.8E-07 < 5.0E-02): finished."""
+    stalled = DATA / "qe_trials" / "si2_bfgs_gave_up"
+    text = gzip.open(stalled / "pw.out.gz", "rt").read()
+    assert "history already reset at previous step: stopping" in text
+    assert "Gradient error          =      8.7E-06" in text and "force <  1.0E-06" in text
+    assert read_run(stalled).unfinished.startswith("stopped without converging (pw.x's BFGS:")
+    b02 = Path(__file__).parent.parent / "example_runs" / "B02_qe_vcrelax_sym"
+    assert "history already reset at previous step" in (b02 / "pw.out").read_text()
+    assert read_run(b02).unfinished is None

@@ -70,6 +70,13 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
 # pw.x found its <prefix>.EXIT file (driftwatch's soft stop, or the user's): it stops cleanly
 _ON_REQUEST = "Program stopped by user request"
+# pw.x's BFGS gave up (Modules/bfgs_module.f90: the trust radius fell below its minimum twice); it
+# then prints "bfgs converged" although its thresholds were not met
+_GAVE_UP = "history already reset at previous step"
+# the errors pw.x's BFGS prints each step, and the thresholds it prints with "bfgs converged"
+_ERRORS = ("Energy error", "Gradient error", "Cell gradient error")
+_CRITERIA = "(criteria: energy"
+_NUMBER = re.compile(r"[-+]?\d*\.?\d+(?:[EeDd][-+]?\d+)?")
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
 _STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
 # how pw.x announces its dynamics (PW/src/dynamics_module.f90 and vcsmd.f90 of QE's sources): the
@@ -85,7 +92,7 @@ _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
 _MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
-          *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST)
+          *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST, _GAVE_UP, *_ERRORS, _CRITERIA)
 
 
 class _Config:
@@ -265,6 +272,8 @@ def read_pw_out(path, ctx: ReadContext):
     ionic = False       # BFGS or dynamics lines seen: pw.x moved atoms or cell
     at_limit = False    # the last run stopped at nstep ("The maximum number of steps ...")
     on_request = False  # the last run stopped on request (its .EXIT file)
+    gave_up = False     # the last run's BFGS gave up (its "bfgs converged" met no threshold)
+    errors: list = []   # the last BFGS step's errors (energy, gradient[, cell])
     cur: _Config | None = None
     alat = natoms = None
     pending_cell = None
@@ -327,7 +336,7 @@ def read_pw_out(path, ctx: ReadContext):
             if _START in line:
                 if ready(cur):
                     yield emit(cur)
-                at_limit = on_request = False     # a new run: its own end decides
+                at_limit = on_request = gave_up = False     # a new run: its own end decides
                 restored = unevaluated(cur) if cur is not None else carried
                 restored_index = cur.index if cur is not None and restored is not None else None
                 seen_start = True
@@ -455,6 +464,19 @@ def read_pw_out(path, ctx: ReadContext):
                 ctx.warn(f"pw.x stopped early: '{line.strip()}' (line {fh.lineno})")
             elif _ON_REQUEST in line:
                 on_request = True
+            elif _GAVE_UP in line:
+                gave_up = True
+            elif any(line.lstrip().startswith(m) for m in _ERRORS):
+                if line.lstrip().startswith("Energy error"):
+                    errors = []
+                errors += _NUMBER.findall(line.split("=", 1)[-1])[:1]
+            elif _CRITERIA in line and gave_up:   # gave up, yet within every threshold?
+                limits = _NUMBER.findall(line.replace("D", "E"))
+                try:
+                    gave_up = not all(float(e.replace("D", "E")) < float(t)
+                                      for e, t in zip(errors, limits)) or not errors
+                except ValueError:
+                    pass
             elif any(m in line for m in _DYNAMICS):
                 ionic = True
                 if "calculation" not in ctx.settings and \
@@ -496,6 +518,10 @@ def read_pw_out(path, ctx: ReadContext):
             ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
         if at_limit and ctx.settings.get("calculation") not in ("md", "vc-md"):
             ctx.unfinished = f"stopped at its step limit (pw.x: '{at_limit}')"
+        if gave_up:
+            ctx.unfinished = (f"stopped without converging (pw.x's BFGS: '{_GAVE_UP}': its trust "
+                              f"radius fell below the minimum twice; its 'bfgs converged' does "
+                              f"not mean its thresholds were met)")
         if on_request:
             ctx.unfinished = (f"stopped on request (pw.x: '{_ON_REQUEST}': its <prefix>.EXIT "
                               f"stop file, written by a user or by driftwatch's soft stop)")
