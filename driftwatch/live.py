@@ -674,7 +674,8 @@ class _Follower:
         self.tracker: Tracker | None = None
         self.source: Path | None = None          # the output file, once known
         self.printed = 0
-        self.seen: set = set()
+        self.seen: set = set()                   # flags printed (code, type)
+        self.holding: set = set()                # of those, the ones the newest record still has
         self.warned: set = set()                 # reader warnings printed
         self.fired: list[dict] = []
         self.stop_info = None
@@ -782,6 +783,13 @@ class _Follower:
         self.seen.update(_key(fl) for fl in new)
         _print_steps(self.say, rec, self.printed, new, self.cfg)
         self.printed = len(rec["frames"])
+        now = {_key(fl) for fl in rec["flags"]}
+        gone = self.holding - now
+        for code, kind in sorted(gone, key=str):      # said when it came, said when it went
+            self.say(f"  no longer holds: {code}{'(' + kind + ')' if kind else ''} (the newest "
+                     f"steps judge it otherwise)")
+        self.seen -= gone                             # announced again if it comes back
+        self.holding = (self.holding & now) | {_key(fl) for fl in new}
 
     def _start(self, ctx) -> Tracker:
         from .adapters import detect

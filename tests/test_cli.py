@@ -133,3 +133,21 @@ def test_the_chiral_column_is_the_deformation_the_handedness_rule_judges():
     follow = dw("follow", path, "--idle", "1").stdout
     assert "step    0  E       3.181602 eV  at mp  nearest oc 0.142, hp 0.344 Å  sign -1  " \
            "chiral -0.142 Å" in follow
+
+
+def test_follow_says_when_a_flag_it_announced_no_longer_holds():
+    """A live judgement can name one type while the run goes and another once it has ended: the
+    real pw.x vc-relax of tests/data/qe_trials/si2_bfgs_gave_up nears oF while its hR is not yet
+    held for the persistence steps, and nears cF once the end counts (hR gained). follow announced
+    the first and never withdrew it; every flag it announced and the final record does not hold
+    is now said to hold no longer."""
+    path = Path(__file__).parent / "data" / "qe_trials" / "si2_bfgs_gave_up"
+    out = dw("follow", path, "--idle", "1").stdout
+    announced = {w for ln in out.splitlines() if "  new: " in ln
+                 for w in ln.split("  new: ", 1)[1].split()}
+    withdrawn = {ln.split("no longer holds: ", 1)[1].split()[0] for ln in out.splitlines()
+                 if "no longer holds: " in ln}
+    final = json.loads(dw("inspect", path, "--json").stdout)
+    held = {f"{f['code']}({f['type']})" if f["type"] else f["code"] for f in final["flags"]}
+    assert "lattice-nearing(oF)" in announced and "lattice-nearing(cF)" in held
+    assert withdrawn == announced - held and withdrawn
