@@ -124,9 +124,12 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
     _common(p, reject=False)
 
-    p = sub.add_parser("formats", help="list the input formats driftwatch reads")
-    p.add_argument("--json", action="store_true")
-    p.add_argument("--debug", action="store_true")
+    p = sub.add_parser("formats", help="list the input formats driftwatch reads",
+                       formatter_class=fmt, epilog="examples:\n"
+                       "  driftwatch formats\n  driftwatch formats --json | python -m json.tool\n\n"
+                       + _EPILOG)
+    p.add_argument("--json", action="store_true", help="the formats as JSON on stdout")
+    p.add_argument("--debug", action="store_true", help="show the traceback of an error")
     return top
 
 
