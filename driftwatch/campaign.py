@@ -360,8 +360,8 @@ def _skip_reason(exc) -> dict | None:
     """A run driftwatch cannot analyse by its nature (a molecule, cluster or wire: not a layer and
     not bulk; a pw.x band-structure run: no ionic step; an output of a code it has no reader for):
     the reason and what would include it, or None for a real failure."""
-    from .errors import ForeignOutputError, NoIonicStepError, NotPeriodicError
-    if not isinstance(exc, (NotPeriodicError, NoIonicStepError, ForeignOutputError)):
+    from .errors import NotAnalysed
+    if not isinstance(exc, NotAnalysed):
         return None
     return {"reason": exc.reason, "include": exc.include}
 
@@ -723,13 +723,13 @@ def _read_marker(out: Path) -> dict | None:
 
 
 def _write_marker(out: Path, roots: list[str], record_files: list[str],
-                  db_runs: list[str], runs: list[str] | None) -> None:
-    """The output folder's own marker: what wrote it, the records and database rows (run ids)
-    this audit wrote, which the next audit retires when their runs are gone, and every run id of
-    the audit (``runs``: what the next audit compares its own with)."""
+                  runs: list[str] | None) -> None:
+    """The output folder's own marker: what wrote it, the records this audit wrote and every run id
+    of the audit (``runs``): the next audit retires the records and database rows of runs gone
+    since, and says what changed."""
     from . import __version__
     data = {"tool": "driftwatch", "kind": "campaign audit", "version": __version__,
-            "roots": roots, "records": sorted(record_files), "db_runs": sorted(db_runs)}
+            "roots": roots, "records": sorted(record_files)}
     if runs is not None:
         data["runs"] = sorted(runs)
     records.write_text_atomic(out / MARKER, json.dumps(data, indent=1) + "\n")
@@ -770,8 +770,7 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
         _check_links(out, db_name)
         for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
             records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
-        _write_marker(out, roots, (marker or {}).get("records", []),
-                      (marker or {}).get("db_runs", []), (marker or {}).get("runs"))
+        _write_marker(out, roots, (marker or {}).get("records", []), (marker or {}).get("runs"))
     except OutputError:
         raise
     except OSError as exc:
@@ -950,6 +949,11 @@ def counts_text(summary: dict) -> str:
             + (f", {unread} failed before reading" if unread else "") + ")")
 
 
+def copies_text(group: list[str]) -> str:
+    """One group of copies in words, three of its runs named (the terminal and the report)."""
+    return " = ".join(group[:3]) + (f" (and {len(group) - 3} more)" if len(group) > 3 else "")
+
+
 def since_text(since: dict) -> str:
     """The summary's ``since_last`` in words (the terminal and the report's index)."""
     def some(key, word):
@@ -995,8 +999,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
         print(f"since the last audit: {since_text(summary['since_last'])}", file=stream)
     if summary.get("copies"):
         groups = summary["copies"]
-        shown = "; ".join(" = ".join(g[:3]) + (f" (and {len(g) - 3} more)" if len(g) > 3 else "")
-                          for g in groups[:3])
+        shown = "; ".join(copies_text(g) for g in groups[:3])
         print(f"copies: {len(groups)} group{'s' if len(groups) > 1 else ''} of runs that read the "
               f"same frames ({shown}{'; ...' if len(groups) > 3 else ''}; all in campaign.json "
               f"copies): a folder kept twice, or a rerun that repeated the same steps; each is "
@@ -1127,8 +1130,8 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     current = {res.names[r["run"]] for r in ok}
     _check_links(out, db_name)                # again: a link planted while the runs were analysed
     stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
-    db_problems, db_runs = _write_tables(out, db_name, ok, failed, skipped,
-                                         gone=old_marker.get("db_runs", []))
+    db_problems = _write_tables(out, db_name, ok, failed, skipped,
+                                gone=old_marker.get("runs", []))
     summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
                        db_problems, stale, skipped)
     every = [x["run"] for x in (*ok, *failed, *skipped)]
@@ -1136,7 +1139,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         rid for rid, r in res.results.items() if not r.get("cached")})
     summary["elapsed_s"] = time.perf_counter() - t0
     records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-    _write_marker(out, roots_abs, sorted(current), db_runs, every)
+    _write_marker(out, roots_abs, sorted(current), every)
     if report:
         summary["report"] = str(_build_report(out, summary, workers=workers or os.cpu_count() or 1,
                                               progress=progress_on(progress)))
@@ -1229,10 +1232,10 @@ class _Results:
 
 
 def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
-                 skipped=(), gone=()) -> tuple[list[str], list[str]]:
+                 skipped=(), gone=()) -> list[str]:
     """campaign.csv and the database rows (failed runs too: an empty structure, their error;
-    skipped runs in the CSV with their reason); the rows of runs in ``gone`` (the previous
-    audit's) that are no run now are deleted. Returns (database problems, run ids written)."""
+    skipped runs in the CSV with their reason); the rows of the run ids in ``gone`` (the previous
+    audit's runs) that have no row now are deleted. Returns the database's problems."""
     from .store import write_rows
     rows = [r["view"]["csv"] for r in ok]
     rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
@@ -1245,9 +1248,8 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
     db_rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
                                   "error": f["error"][:300]}) for f in failed]
-    ids = sorted(x[0] for x in db_rows)
     return write_rows(db_name, sorted(db_rows, key=lambda x: x[0]),
-                      remove=sorted(set(gone) - set(ids))), ids
+                      remove=sorted(set(gone) - {x[0] for x in db_rows}))
 
 
 def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_name, db_problems,

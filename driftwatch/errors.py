@@ -8,6 +8,7 @@ the file and the problem.
 __all__ = [
     "DriftwatchError", "LatticeError", "InputError", "UnknownFormatError", "AtomsChangeError",
     "NotARunError", "GeometryError", "NotPeriodicError", "ConfigError", "SymmetryError", "OutputError",
+    "NotAnalysed", "NoIonicStepError", "ForeignOutputError",
 ]
 
 
@@ -32,13 +33,21 @@ class UnknownFormatError(InputError):
     """No registered adapter recognises the file."""
 
 
-class ForeignOutputError(UnknownFormatError):
-    """The output of a code driftwatch has no reader for (its banner says which): not analysed and
-    not failed (an audit lists it as skipped: ``reason``, and ``include``)."""
+class NotAnalysed:
+    """Mixin of the errors for a run driftwatch does not analyse by its nature (not a failure): an
+    audit lists it as skipped with ``reason`` and ``include``, what would give a run."""
+    reason: str
+    include: str
 
+
+class _SkippedInput(InputError, NotAnalysed):
     def __init__(self, path, reason: str, include: str):
         super().__init__(path, f"{reason}; to include it: {include}")
         self.reason, self.include = reason, include
+
+
+class ForeignOutputError(_SkippedInput, UnknownFormatError):
+    """The output of a code driftwatch has no reader for (its banner says which)."""
 
 
 class AtomsChangeError(InputError):
@@ -55,7 +64,7 @@ class GeometryError(DriftwatchError, ValueError):
     """The cell is not what the analysis needs (e.g. 1D/0D, or no layer when one is required)."""
 
 
-class NotPeriodicError(GeometryError):
+class NotPeriodicError(GeometryError, NotAnalysed):
     """A molecule, cluster or wire (in a box, or by its pbc): neither a layer nor bulk, so not
     analysed (an audit lists it as skipped: ``reason``, and ``include``, the setting or change
     that would include it)."""
@@ -66,14 +75,8 @@ class NotPeriodicError(GeometryError):
         self.reason, self.include = reason, include
 
 
-class NoIonicStepError(InputError):
-    """A complete output with no ionic step by its nature (pw.x's non-self-consistent runs): not
-    analysed and not failed (an audit lists it as skipped: ``reason``, and ``include``, what would
-    give a run)."""
-
-    def __init__(self, path, reason: str, include: str):
-        super().__init__(path, f"{reason}; to include it: {include}")
-        self.reason, self.include = reason, include
+class NoIonicStepError(_SkippedInput):
+    """A complete output with no ionic step by its nature (pw.x's non-self-consistent runs)."""
 
 
 class ConfigError(DriftwatchError, ValueError):

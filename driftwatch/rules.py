@@ -255,16 +255,13 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
               if t != _LOWEST[dim] and D[t][-1] > beyond and D[t][0] > within]  # left as lost
     # a type approached without being reached (beyond the gained one: L ends oc, nearing hp), the
     # deformation measured against the lattice's size: a cell that only shrinks nears nothing
-    shrink = _shrink([frames[0], frames[-1]])[-1]   # the end frames only: judged every live step
-    cand = [t for t in types if D[t][0] >= away and D[t][-1] > within
-            and D[t][-1] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink
-            and (g is None or (t != g and generalises(g, t)))]
-    if persist is not None and cand:          # live: the approach held for the last steps
-        k = len(frames)
-        sh = _shrink([frames[0], *frames[max(0, k - persist):]])[1:]
-        cand = [] if k < persist else [
-            t for t in cand if np.all(D[t][k - persist:] > within)
-            and np.all(D[t][k - persist:] <= (1 - lat["nearing_fraction"]) * D[t][0] * sh)]
+    # judged on the last frame, or live on the last `persist` frames (the approach must last)
+    win = 1 if persist is None else persist
+    shrink = _shrink([frames[0], *frames[-win:]])[1:]   # the end frames only: judged every step
+    cand = [] if len(frames) < win else [
+        t for t in types if D[t][0] >= away and np.all(D[t][-win:] > within)
+        and np.all(D[t][-win:] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink)
+        and (g is None or (t != g and generalises(g, t)))]
     nearing = _nearest(cand, D) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
     # (a lattice of no higher type: the nearest higher type, how far it stayed)
@@ -295,11 +292,17 @@ def _nearest(types, D, rel=1e-6):
     return max((t for t in types if float(D[t][-1]) <= d * (1 + rel)), key=lambda t: ORDER[t])
 
 
-def _handedness(frames, r):
-    """A layer that ends with the opposite handedness to its start, clearly chiral at both ends."""
+def _chiral_frames(frames, r):
+    """(sign (n,), mirror deformation (n,) Å, indices of the frames clearly chiral: mirror
+    deformation above ``min_chiral`` and a sign)."""
     sign = np.array([f["sign"] for f in frames])
     chiral = np.array([f["deformation"]["mirror"] for f in frames])
-    sig = np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
+    return sign, chiral, np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
+
+
+def _handedness(frames, r):
+    """A layer that ends with the opposite handedness to its start, clearly chiral at both ends."""
+    sign, chiral, sig = _chiral_frames(frames, r)
     if sig.size == 0 or sig[-1] != len(frames) - 1 or sign[sig[0]] == sign[-1]:
         return None
     last = int(sign[-1])
@@ -397,9 +400,7 @@ def _reversals(frames, r) -> list[tuple[int, float]]:
     largest mirror deformation, Å) for each change of sign between stretches of one sign that
     reach twice ``min_chiral`` (frames below ``min_chiral`` are no side: a lattice settling onto a
     mirror-symmetric one flickers there, and overshoots it by a few per cent of it)."""
-    sign = np.array([f["sign"] for f in frames])
-    chiral = np.array([f["deformation"]["mirror"] for f in frames])
-    sig = np.nonzero((chiral > r["min_chiral"]) & (sign != 0))[0]
+    sign, chiral, sig = _chiral_frames(frames, r)
     sides = []                               # [sign, first frame, peak] of each stretch of one sign
     for k in sig:
         if sides and sides[-1][0] == sign[k]:

@@ -130,19 +130,19 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) 
             wanted = {run_id for run_id, _, _ in rows}
             gone = {shown(r) for r in remove} - wanted
             have: dict = {}                        # run_id -> its stored row
-            extra = []                              # second rows of one run (older versions)
+            drop = []                  # rows of gone runs, second rows of one run (older versions)
             for row in sorted(_rows_with_run_id(db), key=lambda r: r.id):
                 rid = shown(row.get("run_id"))      # rows written with raw names match too
                 if rid in gone:
-                    extra.append(row.id)
+                    drop.append(row.id)
                 if rid not in wanted:
                     continue
                 if rid in have:
-                    extra.append(row.id)
+                    drop.append(row.id)
                 else:
                     have[rid] = row
-            if extra:
-                db.delete(extra)
+            if drop:
+                db.delete(drop)
             for run_id, structure, kvp in rows:
                 try:
                     if run_id not in have:

@@ -960,9 +960,7 @@ def displacement_to_group(cell, positions, numbers, symprec, *, angle_tolerance=
     else:
         ds, rot, _, shift, complete = _projection(lattice, frac, nums, float(symprec),
                                                   float(angle_tolerance), layer)
-        norms = np.linalg.norm(shift, axis=1)
-        rms, peak = float(np.sqrt(np.mean(norms ** 2))), float(norms.max())
-        worst = int(np.argmax(norms))
+        rms, peak, worst = _sizes(shift)
         strain, operations = _strain_norm(lattice, rot, layer), int(len(rot))
     return {
         "group": int(ds.number), "symbol": str(ds.international),
@@ -1014,8 +1012,14 @@ def displacement_from(start, cell, positions, numbers, symprec, *, angle_toleran
                                         float(angle_tolerance), layer, ds=ds)
     except SymmetryError as exc:
         return {"error": str(exc)}
+    rms, peak, _ = _sizes(shift)
+    return {"rms": rms, "max": peak}
+
+
+def _sizes(shift):
+    """(RMS Å, max Å, index of the largest) of per-atom displacements (N, 3) cartesian Å."""
     norms = np.linalg.norm(shift, axis=1)
-    return {"rms": float(np.sqrt(np.mean(norms ** 2))), "max": float(norms.max())}
+    return float(np.sqrt(np.mean(norms ** 2))), float(norms.max()), int(np.argmax(norms))
 
 
 def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None, start=None):

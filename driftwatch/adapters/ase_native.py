@@ -330,10 +330,13 @@ def _note_xyz_rounding(block, ctx: ReadContext) -> None:
 
 
 # ---------------------------------------------------------------- generic path: through ASE
-def _through_ase(path, ctx: ReadContext, ase_format: str, **kwargs):
+def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
     """Every image ASE's reader returns for ``ase_format`` (a plain or compressed file), as Frames.
 
-    ASE's readers of these formats read the whole file; a truncated file is ASE's to judge."""
+    ASE's readers of these formats read the whole file; a truncated file is ASE's to judge.
+    ``steps``: (pattern with one match per ionic step the code prints, the code's name, what the
+    matches are in words); fewer images than matches is said in a warning (the steps between are
+    not seen)."""
     import io
     import warnings as _w
 
@@ -360,6 +363,12 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, **kwargs):
         images = [images]
     if cut:
         ctx.warn(f"the last line is cut ({len(images)} steps read); job killed or still running")
+    listed = len(steps[0].findall(text)) if steps is not None else 0
+    if len(images) < listed:
+        n = len(images)
+        ctx.warn(f"ASE's {steps[1]} reader returned {n} structure{'s' if n != 1 else ''} of the "
+                 f"{listed} ionic steps the file lists ({steps[2]}): the steps between are not "
+                 f"seen")
     for i, atoms in enumerate(images):
         yield frame_from_atoms(atoms, _step(atoms, i))
 
@@ -435,15 +444,8 @@ def read_castep(path, ctx: ReadContext):
     """CASTEP .castep output through ASE; said when ASE returns fewer structures than the ionic
     steps CASTEP lists (ASE 3.29 returns only the last of a damped-MD optimisation's)."""
     ctx.settings.update({"code": "castep"})
-    n = 0
-    for n, frame in enumerate(_through_ase(path, ctx, "castep-castep"), 1):
-        yield frame
-    with Lines(path) as fh:
-        steps = len(_CASTEP_STEP.findall("".join(fh)))
-    if n < steps:
-        ctx.warn(f"ASE's CASTEP reader returned {n} structure{'s' if n != 1 else ''} of the "
-                 f"{steps} ionic steps the file lists ('finished iteration' lines): the steps "
-                 f"between are not seen")
+    yield from _through_ase(path, ctx, "castep-castep",
+                            steps=(_CASTEP_STEP, "CASTEP", "'finished iteration' lines"))
 
 
 def read_castep_geom(path, ctx: ReadContext):

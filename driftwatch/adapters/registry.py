@@ -276,7 +276,7 @@ def _detect_file(path: Path) -> str:
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
             return f.name
-    code = next(((what, how) for pattern, what, how in _FOREIGN if pattern.search(head)), None)
+    code = foreign_code(head)
     if code:
         raise ForeignOutputError(path, f"an output of {code[0]}, which driftwatch has no reader "
                                        f"for", code[1])
@@ -296,10 +296,10 @@ _FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
 _FOREIGN_NAMES = (".out", ".log")       # where discovery looks for them (outputs' usual names)
 
 
-def foreign_code(head: bytes) -> str | None:
-    """The code whose banner starts ``head`` (a file's first bytes) when driftwatch has no reader
-    for it, else None."""
-    return next((what for pattern, what, _ in _FOREIGN if pattern.search(head)), None)
+def foreign_code(head: bytes) -> tuple[str, str] | None:
+    """(the code, what would include its run) when ``head`` (a file's first bytes) holds the banner
+    of a code driftwatch has no reader for, else None."""
+    return next(((what, how) for pattern, what, how in _FOREIGN if pattern.search(head)), None)
 
 
 def foreign_output(path) -> bool:

@@ -789,8 +789,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
                           "relaxed ones)</span>")]
          if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
-           "<br>".join(e(" = ".join(g[:3]) + (f" (and {len(g) - 3} more)" if len(g) > 3 else ""))
-                       for g in campaign["copies"][:10])
+           "<br>".join(e(_copies_text(g)) for g in campaign["copies"][:10])
            + (" …" if len(campaign["copies"]) > 10 else "")
            + '<br><span class="muted">a folder kept twice, or a rerun that repeated the same '
              'steps; each copy counts as a run of its own above</span>')]
@@ -839,6 +838,12 @@ def _since_text(since: dict) -> str:
     """The audit's line of what changed since the previous audit (``campaign.since_text``)."""
     from ..campaign import since_text
     return since_text(since)
+
+
+def _copies_text(group: list[str]) -> str:
+    """One group of copies in the audit's words (``campaign.copies_text``)."""
+    from ..campaign import copies_text
+    return copies_text(group)
 
 
 def _counts_text(campaign: dict) -> str:
