@@ -442,3 +442,18 @@ def test_random_bytes_under_every_trusted_name(blob, name):
         _read_checked(p, None)
     finally:
         shutil.rmtree(d, ignore_errors=True)
+
+
+def test_a_poscar_whose_counts_line_was_damaged_into_a_position_is_refused_in_one_line(tmp_path):
+    """Found by the fuzz test above (seed 120): its POSCAR seed (four species) with its counts
+    line replaced by a position line whose first number is 4999999999999999. ASE's POSCAR reader
+    takes leading integers as atom counts and allocated for them (MemoryError); counts beyond the
+    lines the file holds are refused first, in one line naming the file."""
+    blob = (b"Ni Cu Ag Pt\n 1.0\n 5.16 0.0 0.0\n 2.727 4.498 0.0\n 0.0 0.0 14.0\n Ni Cu Ag Pt\n"
+            b"4999999999999999  0.0000000000000000  0.5000000000000000\n 0.0 0.5 0.5\n"
+            b" 0.5 0.5 0.5\n")
+    path = tmp_path / "POSCAR"
+    path.write_bytes(blob)
+    with pytest.raises(InputError, match="atom counts .* out of range") as e:
+        read_run(path)
+    assert str(path) in str(e.value) and "\n" not in str(e.value)

@@ -20,6 +20,7 @@ keys the output lacks, and a disagreement between the two is a warning.
 """
 from __future__ import annotations
 
+import itertools
 import lzma
 import os
 import re
@@ -775,10 +776,13 @@ def read_poscar(path, ctx: ReadContext):
         text = "".join(fh)
     if not text.strip():
         raise InputError(path, "empty file")
-    for line in text.splitlines()[5:7]:           # the atom counts (VASP 4 or 5 layout)
-        if line.split() and all(w.isdigit() for w in line.split()):
-            if not 0 < sum(int(w) for w in line.split()) <= 10_000_000:
-                raise InputError(path, f"atom counts {line.strip()[:40]!r} out of range")
+    lines = text.splitlines()
+    for line in lines[5:7]:           # the atom counts (VASP 4 or 5 layout): one line per atom follows
+        lead = list(itertools.takewhile(str.isdigit, line.split()))
+        if lead:                      # ASE reads leading integers as counts, and allocates for them
+            if not 0 < sum(int(w) for w in lead) <= len(lines):
+                raise InputError(path, f"atom counts {line.strip()[:40]!r} out of range (the "
+                                       f"file has {len(lines)} lines)")
             break
     atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
     ctx.title = text.splitlines()[0].strip() or None
