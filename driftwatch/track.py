@@ -241,8 +241,9 @@ def _frame_entries(run: Run, table: dict, start: int = 0) -> list[dict]:
     forces = run.forces
     fmax = None if forces is None else np.sqrt((np.asarray(forces[start:]) ** 2).sum(-1)).max(-1)
     steps = run.steps[start:].tolist()
-    energies = None if run.energies is None else np.asarray(run.energies[start:], float).tolist()
-    fmax = None if fmax is None else fmax.tolist()
+    finite = lambda a: [x if np.isfinite(x) else None for x in np.asarray(a, float).tolist()]
+    energies = None if run.energies is None else finite(run.energies[start:])   # None: not printed
+    fmax = None if fmax is None else finite(fmax)
     cols = lambda d: {k: np.asarray(v, float).tolist() for k, v in d.items()}  # Python floats
     dim = table["dimension"]
     if dim == 2:

@@ -1,5 +1,5 @@
 """ASE's own containers (trajectory, extended XYZ, ASE database rows) and other codes' outputs that
-ASE reads (LAMMPS text dumps, FHI-aims, CASTEP, GPAW): the generic reader path.
+ASE reads (FHI-aims, CASTEP, GPAW; LAMMPS dumps have their module): the generic reader path.
 
 All through ASE's readers. ``.traj`` and extended XYZ stream (``ase.io.iread``);
 extended XYZ is handed only complete lines, so a frame cut in the middle of a
@@ -17,7 +17,7 @@ from ..errors import InputError
 from ._io import Lines
 from .run import ReadContext, frame_from_atoms
 
-__all__ = ["read_traj", "read_extxyz", "read_db", "read_lammps_dump", "read_aims",
+__all__ = ["read_traj", "read_extxyz", "read_db", "read_aims",
            "read_castep", "read_castep_geom", "read_gpaw", "MAX_ATOMS"]
 
 MAX_ATOMS = 10_000_000
@@ -371,61 +371,6 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
                  f"seen")
     for i, atoms in enumerate(images):
         yield frame_from_atoms(atoms, _step(atoms, i))
-
-
-def _lammps_type_map(path, ctx: ReadContext) -> list | None:
-    """Elements by LAMMPS type from ``mass TYPE VALUE`` lines of the input script beside the dump
-    (``in.*``, ``*.in``, ``*.lmp``): the element whose standard atomic mass is nearest (within
-    0.1 u). None when there is no such script."""
-    from pathlib import Path
-
-    import numpy as np
-    from ase.data import atomic_masses, chemical_symbols
-    folder = Path(path).parent
-    ctx.lists(folder)
-    for cand in sorted(folder.iterdir()):
-        n = cand.name
-        if not cand.is_file() or not (n.startswith("in.") or n.endswith((".in", ".lmp"))):
-            continue
-        ctx.uses(cand)
-        masses = {}
-        with Lines(cand) as fh:
-            for line in fh:
-                f = line.split("#", 1)[0].split()
-                if len(f) >= 3 and f[0] == "mass" and f[1].isdigit():
-                    try:
-                        masses[int(f[1])] = float(f[2])
-                    except ValueError:
-                        pass
-        if masses:
-            out = []
-            for t in range(1, max(masses) + 1):
-                if t not in masses:
-                    return None
-                z = int(np.argmin(np.abs(atomic_masses[1:] - masses[t]))) + 1
-                if abs(atomic_masses[z] - masses[t]) > 0.1:
-                    return None
-                out.append(chemical_symbols[z])
-            ctx.settings.setdefault("type_map_from", cand.name)
-            return out
-    return None
-
-
-def read_lammps_dump(path, ctx: ReadContext):
-    """A LAMMPS text dump through ASE. Types become elements through the dump's ``element``
-    column (``dump_modify ... element Cu Ni``), else through the ``mass`` lines of the input
-    script next to it; with neither, the run is refused (ASE would take type 1 as hydrogen)."""
-    head = peek_text(path, 4000)
-    kwargs = {}
-    if "element" not in head.split("ITEM: ATOMS", 1)[-1].split("\n", 1)[0].split():
-        order = _lammps_type_map(path, ctx)
-        if order is None:
-            raise InputError(path, "LAMMPS dump without an 'element' column and no input script "
-                                   "with 'mass' lines beside it: the atom types cannot be named "
-                                   "(add 'element' to the dump and dump_modify ... element A B)")
-        kwargs["specorder"] = order
-    ctx.settings.update({"code": "lammps"})
-    yield from _through_ase(path, ctx, "lammps-dump-text", **kwargs)
 
 
 def read_aims(path, ctx: ReadContext):

@@ -322,6 +322,9 @@ _NOT_TRAJECTORIES = (
     (re.compile(rb"Program PHONON\b"), "a Quantum ESPRESSO ph.x output (phonons)"),
     (re.compile(rb"^[ \t]*(ISIF|IBRION|NSW|ENCUT|PREC|EDIFF)[ \t]*=", re.I | re.M),
      "a VASP INCAR (pass the run folder)"),
+    (re.compile(rb"^[ \t]*[-+.0-9eE]+[ \t]+[-+.0-9eE]+[ \t]+xlo[ \t]+xhi\b", re.M),
+     "a LAMMPS data file (one structure; pass the job's dump)"),
+    (re.compile(rb"\ALAMMPS \("), "a LAMMPS log (pass the job's dump)"),
 )
 
 
@@ -832,7 +835,7 @@ def run_kind(code_settings: dict) -> str | None:
 # Order matters for magic detection: the most specific patterns first. The formats of a code are
 # registered by its module's ``register_all`` (one module per code), then the generic ones.
 _A = "driftwatch.adapters."
-for _module in ("vasp", "espresso"):
+for _module in ("vasp", "espresso", "lammps"):
     importlib.import_module(_A + _module).register_all(register, register_code)
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
          description="ASE trajectory (.traj; an ASE NEB band's file.traj::image01 one image)",
@@ -854,9 +857,6 @@ register("extxyz", _A + "ase_native:read_extxyz", globs=("*.xyz", "*.extxyz"),
          magic=rb"\A\s*\d+[ \t]*\r?\n[^\n]*(Lattice|Properties)=", description="extended XYZ "
                                                                       "(file::NAME one structure)",
          members=_A + "batch:extxyz_names")
-register("lammps-dump", _A + "ase_native:read_lammps_dump", globs=("*.lammpstrj", "*.dump"),
-         magic=rb"\AITEM: TIMESTEP", description="LAMMPS text dump (through ASE; types from an "
-                                                 "element column, else masses in the input script)")
 register("aims-out", _A + "ase_native:read_aims", globs=("*aims*.out",),
          magic=rb"Invoking FHI-aims|Reading geometry description geometry\.in", description="FHI-aims output (through ASE)")
 register("castep", _A + "ase_native:read_castep", globs=("*.castep",),

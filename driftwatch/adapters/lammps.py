@@ -1,0 +1,439 @@
+"""LAMMPS: text dumps, read with what the job's input script and ``log.lammps`` beside them say.
+
+A dump holds positions and atom types only. The job's commands (its log echoes every command
+LAMMPS ran, includes and loops expanded; else its input script) name the types' elements
+(``mass`` lines, or the Masses section of the ``read_data`` file), the length unit (``units``), a
+relaxed box (``fix ... box/relax``) and what ran (``minimize`` or MD ``run``). The log adds how
+each minimisation stopped ("Stopping criterion = max iterations" is a run at its step limit) and
+the thermo energies at the steps it printed. A script or log counts as the dump's job only when
+it names the dump's file in a ``dump`` or ``write_dump`` command (or is the folder's only one).
+
+Steps are LAMMPS timesteps (``ITEM: TIMESTEP``), so a dump written every N steps keeps the
+minimiser's own count. Frames are read one at a time; a frame cut by a killed or running job is
+dropped and said.
+"""
+from __future__ import annotations
+
+import dataclasses
+import io
+import os
+import re
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from ._io import Lines, peek, strip_compression
+from .ase_native import MAX_ATOMS
+from .run import ReadContext, decimals, frame_from_atoms
+
+__all__ = ["read_lammps_dump", "job_of", "register_all"]
+
+_SCRIPT_NAMES = re.compile(r"(?i)^(in\..+|.+\.in|.+\.lmp|.+\.lammps|.*\blog\.lammps(\.\d+)?|"
+                           r"log\..+\.lammps)$")
+_COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|fix|minimize|run|"
+                      r"min_style)[ \t]+(\S.*)$")
+_STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
+_STEP_LIMIT = ("max iterations", "max force evaluations")
+_CONVERGED = ("energy tolerance", "force tolerance", "forces are zero")
+_TO_EV = {"metal": 1.0, "real": 0.0433641043, "electron": 27.211386245988}
+"""eV per energy unit of a LAMMPS units style (LAMMPS docs, ``units`` command; CODATA 2018)."""
+_ANGSTROM_UNITS = ("metal", "real")
+_FORCE_UNIT = {"metal": "eV/Å", "real": "kcal/mol/Å", "electron": "Hartree/Bohr"}
+
+
+@dataclasses.dataclass
+class Job:
+    """What the job's commands and log say about a dump (see the module doc)."""
+
+    source: Path | None = None          # the log or script read (None: none found)
+    units: str | None = None            # the ``units`` style; LAMMPS's default is lj
+    masses: dict = dataclasses.field(default_factory=dict)   # type -> mass (u)
+    data_file: Path | None = None       # the ``read_data`` file
+    box_relax: str | None = None        # "fix box/relax aniso", ... (words)
+    minimize: list = dataclasses.field(default_factory=list)  # (etol, ftol, maxiter, maxeval)
+    md: bool = False                    # a ``run`` command
+    stops: list = dataclasses.field(default_factory=list)    # (criterion, max force component)
+    finished: bool = False              # the log's "Total wall time"
+    energies: dict = dataclasses.field(default_factory=dict)  # timestep -> energy (eV)
+    names_dump: bool = False
+
+
+def _types(spec: str, ntypes: int) -> range:
+    """LAMMPS type ranges: ``2``, ``*``, ``2*``, ``*3``, ``1*3``."""
+    if "*" not in spec:
+        return range(int(spec), int(spec) + 1)
+    lo, hi = spec.split("*", 1)
+    return range(int(lo) if lo else 1, (int(hi) if hi else ntypes) + 1)
+
+
+def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
+    """Parse the commands (and, for a log, the minimiser's stops and thermo) of one file."""
+    job = Job(source=path)
+    header, thermo_units = None, None
+    last_stop_block: dict | None = None
+    pending_masses = []
+    ctx.uses(path)
+    with Lines(path) as fh:
+        for raw in fh:
+            line = raw.split("#", 1)[0].strip()
+            if header is not None:                    # inside a thermo table
+                f = line.split()
+                if len(f) == len(header) and f[0].lstrip("-").isdigit():
+                    col = "PotEng" if "PotEng" in header else "TotEng" if job.minimize else None
+                    if col in header and thermo_units in _TO_EV:
+                        try:
+                            job.energies[int(f[0])] = float(f[header.index(col)]) * \
+                                _TO_EV[thermo_units]
+                        except ValueError:
+                            pass
+                    continue
+                header = None
+            if line.startswith("Step ") and line.split()[0] == "Step":
+                header, thermo_units = line.split(), job.units or "lj"
+                continue
+            m = _STOP.match(raw)
+            if m:
+                last_stop_block = {"criterion": m.group(1), "fmax": None}
+                job.stops.append(last_stop_block)
+                continue
+            if last_stop_block is not None and line.startswith("Force max component"):
+                try:
+                    last_stop_block["fmax"] = float(line.split()[-1])
+                except ValueError:
+                    pass
+                continue
+            if raw.startswith("Total wall time:"):
+                job.finished = True
+                continue
+            m = _COMMAND.match(line)
+            if not m:
+                continue
+            cmd, args = m.group(1), m.group(2).split()
+            if cmd == "units":
+                job.units = args[0]
+            elif cmd == "mass" and len(args) >= 2:
+                pending_masses.append((args[0], args[1]))
+            elif cmd == "read_data" and (path.parent / args[0]).is_file():   # not the log's
+                job.data_file = path.parent / args[0]             # "read_data CPU = ..." line
+            elif cmd in ("dump", "write_dump"):
+                target = args[4] if cmd == "dump" and len(args) > 4 else \
+                    args[2] if cmd == "write_dump" and len(args) > 2 else ""
+                if os.path.basename(target) == dump_name:
+                    job.names_dump = True
+            elif cmd == "fix" and len(args) >= 3 and args[2] == "box/relax":
+                mode = " ".join(a for a in args[3:] if a in ("iso", "aniso", "tri", "x", "y",
+                                                              "z", "xy", "xz", "yz"))
+                job.box_relax = f"'fix box/relax{' ' + mode if mode else ''}'"
+            elif cmd == "minimize" and len(args) >= 4:
+                try:
+                    job.minimize.append(tuple(float(a) for a in args[:4]))
+                except ValueError:
+                    pass
+            elif cmd == "run" and args[0].isdigit():
+                job.md = True
+    masses = _data_masses(job.data_file, ctx) if job.data_file is not None else {}
+    ntypes = max(masses) if masses else 0
+    for spec, value in pending_masses:
+        try:
+            for t in _types(spec, max(ntypes, int(spec.strip("*") or 0)) or 1):
+                masses[t] = float(value)
+        except ValueError:
+            continue
+    job.masses = masses
+    return job
+
+
+def _data_masses(path: Path, ctx: ReadContext) -> dict:
+    """type -> mass of a LAMMPS data file's ``Masses`` section ({} when missing or unreadable)."""
+    ctx.uses(path)
+    out: dict = {}
+    try:
+        with Lines(path) as fh:
+            inside = False
+            for raw in fh:
+                line = raw.split("#", 1)[0].strip()
+                if not inside:
+                    inside = line == "Masses"
+                    continue
+                f = line.split()
+                if not f:
+                    if out:
+                        break
+                    continue
+                if len(f) < 2 or not f[0].isdigit():
+                    break
+                out[int(f[0])] = float(f[1])
+    except (OSError, InputError, ValueError):
+        return {}
+    return out
+
+
+def job_of(dump: Path, ctx: ReadContext) -> Job:
+    """The job beside ``dump``: the log or input script that names it (a log first: it holds
+    what ran), else the folder's only log or script; an empty :class:`Job` when none."""
+    folder = dump.parent
+    ctx.lists(folder)
+    try:
+        names = sorted(n for n in os.listdir(folder)
+                       if _SCRIPT_NAMES.match(strip_compression(n)) and (folder / n).is_file())
+    except OSError:
+        return Job()
+    logs = [n for n in names if "log" in n.lower() and n.lower().endswith(("lammps", ".lammps"))]
+    ordered = logs + [n for n in names if n not in logs]
+    jobs = []
+    for n in ordered:
+        try:
+            if _looks_like_lammps(folder / n):
+                jobs.append(_read_commands(folder / n, strip_compression(dump.name), ctx))
+        except (OSError, InputError):
+            continue
+    named = [j for j in jobs if j.names_dump]
+    if named:
+        return named[0]
+    return jobs[0] if len(jobs) == 1 else Job()
+
+
+def _looks_like_lammps(path: Path) -> bool:
+    head = peek(path, 8192).decode("utf-8", "replace")
+    return head.startswith("LAMMPS (") or any(
+        _COMMAND.match(ln.split("#", 1)[0].strip()) for ln in head.splitlines()
+        if ln.split("#", 1)[0].strip().split(" ", 1)[0] in ("units", "read_data", "minimize",
+                                                               "run", "mass"))
+
+
+def _elements(masses: dict) -> list | None:
+    """Elements by type 1..n: the standard atomic mass nearest each (within 0.1 u), else None."""
+    from ase.data import atomic_masses, chemical_symbols
+    if not masses:
+        return None
+    out = []
+    for t in range(1, max(masses) + 1):
+        if t not in masses:
+            return None
+        z = int(np.argmin(np.abs(atomic_masses[1:] - masses[t]))) + 1
+        if abs(atomic_masses[z] - masses[t]) > 0.1:
+            return None
+        out.append(chemical_symbols[z])
+    return out
+
+
+def _frames_text(path, ctx: ReadContext):
+    """(timestep, text of one complete frame) in file order; a frame cut short is said and
+    dropped (the frames before it are whole)."""
+    with Lines(path) as fh:
+        n_read = 0
+        while True:
+            head = fh.read_lines(4)
+            if not head:
+                return
+            if len(head) < 4 or not head[0].startswith("ITEM: TIMESTEP") or \
+                    not head[2].startswith("ITEM: NUMBER OF ATOMS"):
+                if len(head) < 4 and all(h.startswith("ITEM") or h.strip().isdigit()
+                                         for h in head):
+                    break
+                raise InputError(path, f"line {fh.lineno - len(head) + 1}: not a LAMMPS dump "
+                                       f"frame header ({head[0].strip()[:60]!r})")
+            try:
+                step, n = int(head[1].split()[0]), int(head[3].split()[0])
+            except (ValueError, IndexError):
+                raise InputError(path, f"line {fh.lineno - 2}: a timestep or atom count that is "
+                                       f"not an integer") from None
+            if not 0 < n <= MAX_ATOMS:
+                raise InputError(path, f"line {fh.lineno}: {n} atoms in a frame")
+            rest = fh.read_lines(5 + n)
+            if len(rest) < 5 + n:
+                got = max(0, len(rest) - 5)
+                ctx.truncated(f"truncated: its last frame (timestep {step}) holds {got} of its "
+                              f"{n} atom lines; {n_read} whole frame{'s' if n_read != 1 else ''} "
+                              f"read (job killed or still running)")
+                return
+            n_read += 1
+            yield step, "".join(head) + "".join(rest)
+        ctx.truncated(f"truncated: its last frame's header is cut; {n_read} whole frame"
+                      f"{'s' if n_read != 1 else ''} read (job killed or still running)")
+
+
+def printed_step(values) -> float | None:
+    """The coarsest rounding step of numbers printed by one C format: fixed decimals (``%f``:
+    the most decimals seen) or significant digits (``%g``, LAMMPS's default: the most digits
+    seen, which the largest value carries at its magnitude); trailing zeros that ``%g`` strips
+    make either count a lower bound, so the coarser of the two is taken. None when no value
+    shows a decimal point."""
+    most_decimals = most_digits = None
+    top = 0.0
+    for v in values:
+        d = decimals(v)
+        if d is None:
+            continue
+        digits = v.strip().lstrip("+-").replace(".", "").lstrip("0")
+        most_decimals = d if most_decimals is None else max(most_decimals, d)
+        most_digits = len(digits) if most_digits is None else max(most_digits, len(digits))
+        top = max(top, abs(float(v)))
+    if most_decimals is None:
+        return None
+    by_digits = 10.0 ** (np.floor(np.log10(top)) - most_digits + 1) if top > 0 else 0.0
+    return float(max(10.0 ** -most_decimals, by_digits))
+
+
+def _note_rounding(text: str, ctx: ReadContext) -> None:
+    """The printed rounding of a frame's coordinate columns (:func:`printed_step`)."""
+    lines = text.split("\n")
+    at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), None)
+    if at is None:
+        return
+    cols = lines[at].split()[2:]
+    for names, kind in ((("x", "y", "z"), "cartesian"), (("xu", "yu", "zu"), "cartesian"),
+                        (("xs", "ys", "zs"), "fractional"), (("xsu", "ysu", "zsu"), "fractional")):
+        if all(c in cols for c in names):
+            idx = [cols.index(c) for c in names]
+            step = printed_step(f[i] for ln in lines[at + 1:] if (f := ln.split())
+                                for i in idx if i < len(f))
+            if step is not None:
+                ctx.round_to(kind, step)
+            return
+
+
+def read_lammps_dump(path, ctx: ReadContext):
+    """A LAMMPS text dump, frame by frame through ASE's parser, with the job beside it (module
+    doc). Types become elements through the dump's ``element`` column, else the job's masses;
+    with neither, the run is refused (ASE would take type 1 as hydrogen)."""
+    import warnings as _w
+
+    from ase.io.lammpsrun import read_lammps_dump_text
+    path = Path(path)
+    job = job_of(path, ctx)
+    head = peek(path, 4000).decode("utf-8", "replace")
+    columns = head.split("ITEM: ATOMS", 1)[-1].split("\n", 1)[0].split()
+    kwargs = {}
+    if job.units in _TO_EV or job.units in ("si", "cgs", "micro", "nano"):
+        kwargs["units"] = job.units                  # ASE converts lengths to Å
+    if "element" not in columns:
+        order = _elements(job.masses) if job.units not in (None, "lj") or job.source is None \
+            else None
+        if order is None:
+            raise InputError(path, _no_types(path, job))
+        ctx.settings.setdefault("type_map_from", job.source.name if job.masses and
+                                not job.data_file else
+                                (job.data_file.name if job.data_file else job.source.name))
+        kwargs["specorder"] = order
+    settings = {"code": "lammps"}
+    if job.source is not None:
+        settings["lammps_job"] = job.source.name
+        settings["units"] = job.units or "lj"
+        if job.box_relax:
+            settings["box_relax"] = job.box_relax
+        settings["ran"] = "minimize" if job.minimize else "run" if job.md else None
+    ctx.settings.update({k: v for k, v in settings.items() if v is not None})
+    if job.source is not None and (job.units or "lj") not in _ANGSTROM_UNITS + ("electron",):
+        ctx.warn(f"LAMMPS units '{job.units or 'lj'}' ({job.source.name}): "
+                 + ("reduced units: lengths in sigma are read as Å and types named by their "
+                    "masses, so every Å threshold applies in sigma" if (job.units or "lj") == "lj"
+                    else "lengths converted to Å by ASE"))
+    _judge_stop(job, ctx)
+    steps, n = [], 0
+    for step, text in _frames_text(path, ctx):
+        if n == 0:
+            _note_rounding(text, ctx)
+        with _w.catch_warnings():
+            _w.simplefilter("ignore")
+            atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
+        fr = frame_from_atoms(atoms, step)
+        # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's, else none
+        fr = dataclasses.replace(fr, energy=job.energies.get(step))
+        if steps and step <= steps[-1]:
+            fr = dataclasses.replace(fr, step=steps[-1] + 1)     # reset_timestep: count on
+        steps.append(fr.step)
+        n += 1
+        yield fr
+    if n == 1:
+        ctx.settings["single_structure"] = f"{path.name}, one frame"
+
+
+def _no_types(path: Path, job: Job) -> str:
+    if job.source is not None and (job.units or "lj") == "lj":
+        return (f"LAMMPS dump without an 'element' column, in reduced units (units "
+                f"{job.units or 'lj'}, {job.source.name}): the atom types name no elements (add "
+                f"'element' to the dump and dump_modify ... element A B)")
+    looked = (f"{job.source.name} gives no mass of every type" +
+              (f" and its data file {job.data_file.name} no Masses" if job.data_file else "")
+              if job.source is not None else
+              "no LAMMPS input script or log.lammps naming it beside it (looked at in.*, *.in, "
+              "*.lmp, *.lammps, log.lammps)")
+    return (f"LAMMPS dump without an 'element' column, and {looked}: the atom types cannot be "
+            f"named (add 'element' to the dump and dump_modify ... element A B)")
+
+
+def _judge_stop(job: Job, ctx: ReadContext) -> None:
+    """Mark the run unfinished when the job's last minimisation stopped at its step limit, or the
+    log ends inside one; warn when it stopped for a reason that is no convergence test."""
+    if not job.minimize or job.source is None or "log" not in job.source.name.lower():
+        return
+    if len(job.stops) < len(job.minimize):
+        if not job.finished:
+            ctx.unfinished = ("cut short: LAMMPS's log ends inside a minimisation (job killed "
+                              "or still running)")
+        return
+    stop = job.stops[-1]
+    crit, fmax = stop["criterion"], stop["fmax"]
+    unit = _FORCE_UNIT.get(job.units or "lj", f"({job.units or 'lj'} units)")
+    force = f"; force max component {fmax:.3g} {unit} at the end" if fmax is not None else ""
+    if crit in _STEP_LIMIT:
+        ctx.unfinished = f"stopped at its step limit (LAMMPS: 'Stopping criterion = {crit}')"
+    elif crit not in _CONVERGED:
+        ctx.warn(f"LAMMPS's last minimisation stopped on 'Stopping criterion = {crit}'{force} "
+                 f"({job.source.name}): no tolerance was met, so the final structure may not be "
+                 f"relaxed")
+
+
+# ---------------------------------------------------------------- code table
+def run_kind(code_settings: dict) -> str | None:
+    """Molecular dynamics when the job ran ``run`` and no ``minimize``."""
+    return "molecular dynamics (LAMMPS 'run')" if code_settings.get("ran") == "run" else None
+
+
+def cell_free(code_settings: dict) -> str | None:
+    """The job's ``fix box/relax``, in words, else None."""
+    return code_settings.get("box_relax")
+
+
+def no_folder(folder, names, format=None, ctx=None):
+    """A dump is a run of its own (discovery lists each file), never its folder."""
+    return None
+
+
+def inputs_only(folder: Path, names, ctx=None):
+    """(what the folder holds, those names[, ran]) for a folder of a LAMMPS job (an input script
+    or log.lammps) and no dump, else None."""
+    from .registry import recognised
+    if any(recognised(Path(folder) / n, n) for n in names):
+        return None
+    got = [n for n in names if _SCRIPT_NAMES.match(strip_compression(n))
+           and _looks_like_lammps(Path(folder) / n)]
+    if not got:
+        return None
+    logs = [n for n in got if "log" in n.lower()]
+    how = "add a dump: dump ID all custom N FILE id type element x y z"
+    if logs:
+        ctx2 = ReadContext(Path(folder) / logs[0])
+        job = _read_commands(Path(folder) / logs[0], "", ctx2)
+        if job.finished:
+            return (f"a LAMMPS job ({', '.join(got)}) that ran and wrote no dump: no ionic steps "
+                    f"to read ({how})", got, True)
+    return f"a LAMMPS job ({', '.join(got)}) and no dump", got
+
+
+def register_all(register, register_code) -> None:
+    """The LAMMPS dump row of the format table and the LAMMPS entry of the code table."""
+    from .registry import Code
+    register("lammps-dump", __name__ + ":read_lammps_dump", globs=("*.lammpstrj", "*.dump"),
+             magic=rb"\AITEM: TIMESTEP", description="LAMMPS text dump (types from an element "
+                                                     "column, else the masses of the job's "
+                                                     "script, log.lammps or data file)")
+    register_code(Code(
+        name="lammps", label="LAMMPS", formats=("lammps-dump",), folder=__name__ + ":no_folder",
+        run_files=("*.lammpstrj*", "*.dump*", "in.*", "*.in", "*.lmp", "*.lammps", "log.*",
+                   "*.data"),
+        settings_files=("in.*", "*.in", "*.lmp", "*.lammps", "log.lammps"),
+        run_kind=__name__ + ":run_kind", cell_free=__name__ + ":cell_free",
+        inputs_only=__name__ + ":inputs_only"), replace=True)

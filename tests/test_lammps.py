@@ -1,0 +1,182 @@
+"""LAMMPS dumps read with their job's script and log: real minimisations made here with Debian's
+LAMMPS (tests/data/lammps_trials/README.md), checked against ASE's reader of the dump and the
+lines LAMMPS printed in its log."""
+from __future__ import annotations
+
+import gzip
+import re
+import shutil
+import warnings
+from pathlib import Path
+
+import ase.io
+import numpy as np
+import pytest
+
+from driftwatch import analyze
+from driftwatch.adapters import read_run
+from driftwatch.adapters.lammps import printed_step
+from driftwatch.campaign import audit
+from driftwatch.errors import InputError
+
+LMP = Path(__file__).parent / "data" / "lammps_trials"
+
+
+def _ase(path: Path, tmp_path: Path, **kw):
+    if path.suffix == ".gz":
+        plain = tmp_path / path.stem
+        plain.write_bytes(gzip.decompress(path.read_bytes()))
+        path = plain
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return ase.io.read(path, ":", format="lammps-dump-text", **kw)
+
+
+def _dump_timesteps(text: str) -> list[int]:
+    lines = text.splitlines()
+    return [int(lines[i + 1]) for i, ln in enumerate(lines) if ln.startswith("ITEM: TIMESTEP")]
+
+
+def test_steps_are_lammps_timesteps_and_frames_equal_ases(tmp_path):
+    """A dump every 3 steps keeps the minimiser's count (ITEM: TIMESTEP), not the frame index; the
+    last frame is the minimiser's last step (47)."""
+    path = LMP / "fe16_tri_linesearch" / "relax.dump"
+    run = read_run(path)
+    ref = _ase(path, tmp_path)                                                     # ASE
+    assert len(run) == len(ref) == 17
+    assert run.steps.tolist() == _dump_timesteps(path.read_text()) == \
+        [a.info["timestep"] for a in ref]
+    assert run.steps.tolist()[:3] == [0, 3, 6] and run.steps[-1] == 47
+    np.testing.assert_array_equal(run.positions, [a.positions for a in ref])
+    np.testing.assert_array_equal(run.cells, [a.cell.array for a in ref])
+
+
+def test_energies_come_from_the_log_not_ases_placeholder(tmp_path):
+    """ASE gives a dump with force columns energy 0.0 on every frame; LAMMPS's log prints the
+    energy of every step (thermo 1): the first is -30.4774565808953 eV ("Energy initial")."""
+    path = LMP / "si8_forces_thermo" / "relax.dump.gz"
+    ref = _ase(path, tmp_path)
+    assert {a.get_potential_energy() for a in ref} == {0.0}                        # ASE
+    log = (LMP / "si8_forces_thermo" / "log.lammps").read_text()
+    initial = float(re.search(r"Energy initial, next-to-last, final = \s*(\S+)", log).group(1))
+    run = read_run(path)
+    assert run.energies[0] == pytest.approx(initial, abs=1e-5)       # thermo prints 8 digits
+    assert run.energies[-1] < run.energies[0] and np.isfinite(run.energies).all()
+    np.testing.assert_allclose(run.forces, [a.get_forces() for a in ref], atol=0)
+    alone = tmp_path / "alone"
+    alone.mkdir()
+    shutil.copy(path, alone / path.name)
+    assert read_run(alone / path.name).energies is None          # no log: no energy, not 0.0
+    rec = analyze(read_run(path))
+    assert rec["frames"][0]["energy"] == pytest.approx(initial, abs=1e-5)
+
+
+def test_a_dump_every_n_steps_has_log_energies_only_where_thermo_printed():
+    """The public fixture's log prints thermo every 20 steps and the dump every 4: frames between
+    have no energy (None in the record, '-' in the table), never NaN or 0."""
+    run = read_run(Path(__file__).parent / "data" / "public" / "lammps_relax" / "relax.dump.gz")
+    rec = analyze(run)
+    energies = {f["step"]: f["energy"] for f in rec["frames"]}
+    assert energies[0] == pytest.approx(-119.211775914374, abs=1e-5)   # log.lammps, step 0
+    assert energies[4] is None and energies[20] is not None
+
+
+def test_step_limit_is_unfinished_and_a_linesearch_stop_is_said():
+    """'Stopping criterion = max iterations' (minimize ... 8 10000) is a run at its step limit,
+    as VASP's NSW and pw.x's nstep; 'linesearch alpha is zero' met no tolerance: a warning
+    quoting the final force max component (log.lammps)."""
+    d = LMP / "si16_aniso_max_iterations"
+    assert "Stopping criterion = max iterations" in (d / "log.lammps").read_text()
+    run = read_run(d / "relax.dump")
+    assert run.unfinished == "stopped at its step limit (LAMMPS: 'Stopping criterion = max " \
+                             "iterations')"
+    assert run.code_settings["box_relax"] == "'fix box/relax aniso'"
+    d = LMP / "fe16_tri_linesearch"
+    assert "Force max component initial, final = 6.2380933 0.10599059" in \
+        " ".join((d / "log.lammps").read_text().split())
+    run = read_run(d / "relax.dump")
+    assert run.unfinished is None
+    (w,) = [w for w in run.warnings if "linesearch alpha is zero" in w]
+    assert "force max component 0.106 eV/Å at the end" in w and "may not be relaxed" in w
+
+
+def test_a_cut_last_frame_is_dropped_and_said(tmp_path):
+    """A job killed while writing leaves part of a frame: the whole frames are read (ASE's reader
+    returns the cut one as a frame of 10 atoms), the run is unfinished, the warning says so."""
+    path = LMP / "si16_cut_frame" / "relax.dump"
+    ref = _ase(path, tmp_path)
+    assert [len(a) for a in ref] == [16] * 8 + [10]                                # ASE
+    run = read_run(path)
+    assert len(run) == 8 and run.unfinished.startswith("cut short")
+    (w,) = [w for w in run.warnings if "truncated" in w]
+    assert "its last frame (timestep 8) holds 10 of its 16 atom lines; 8 whole frames read" in w
+    whole = read_run(LMP / "si16_aniso_max_iterations" / "relax.dump")
+    np.testing.assert_array_equal(run.positions, whole.positions[:8])
+
+
+def test_types_named_by_the_data_file_and_by_a_script_named_dot_lammps(tmp_path):
+    """No element column and no 'mass' line: the Masses of the read_data file (written by ASE:
+    '1 24.304999993747675 # Mg') name type 1; a script named cu.lammps with 'mass 1 63.546'."""
+    run = read_run(LMP / "mg16_masses_from_data" / "relax.dump")
+    assert set(run.numbers.tolist()) == {12}
+    assert run.code_settings["type_map_from"] == "start.data"
+    run = read_run(LMP / "cu32_script_named_lammps" / "relax.lammpstrj")
+    assert set(run.numbers.tolist()) == {29} and run.code_settings["type_map_from"] == "cu.lammps"
+    d = tmp_path / "bare"
+    d.mkdir()
+    shutil.copy(LMP / "mg16_masses_from_data" / "relax.dump", d / "relax.dump")
+    with pytest.raises(InputError, match=r"no LAMMPS input script or log\.lammps naming it"):
+        read_run(d / "relax.dump")
+
+
+def test_reduced_units_are_refused_without_element_names():
+    """units lj, mass 1 1.0: the particles are no hydrogen and sigma is no Å."""
+    with pytest.raises(InputError, match=r"reduced units \(units lj, log\.lammps\)"):
+        read_run(LMP / "lj32_reduced_units" / "relax.dump")
+
+
+def test_one_frame_dump_is_a_single_structure():
+    """write_dump after minimize: one frame (timestep 84), no steps to compare."""
+    run = read_run(LMP / "cdte8_final_only" / "final.dump")
+    assert len(run) == 1 and run.steps.tolist() == [84]
+    assert run.code_settings["single_structure"] == "final.dump, one frame"
+
+
+def test_printed_rounding_of_lammps_default_format():
+    """LAMMPS writes coordinates with %g (6 significant digits) unless told otherwise: the step is
+    that of the largest value's magnitude, not the most decimals of a small one. Common practice
+    (C's printf); values from the cdte8 dump."""
+    assert printed_step(["5.43239", "0.00660101", "12.3456", "0"]) == pytest.approx(1e-4)
+    assert printed_step(["5.431000", "0.000000"]) == pytest.approx(1e-6)           # %f
+    run = read_run(LMP / "cdte8_final_only" / "final.dump")
+    largest = np.abs(run.positions[0]).max()
+    assert 1 < largest < 10
+    assert run.position_precision == pytest.approx(np.sqrt(3) * 0.5 * 1e-5)
+
+
+def test_audit_lists_a_lammps_job_without_a_dump(tmp_path):
+    """A finished minimisation that wrote no dump is a failed entry that says why, never dropped
+    unsaid; the runs beside it are audited."""
+    root = tmp_path / "campaign"
+    for name in ("si8_no_dump", "fe16_tri_linesearch"):
+        shutil.copytree(LMP / name, root / name)
+    s = audit([root], tmp_path / "out", report=False, workers=1, progress="off")
+    errors = {f["run"]: f["error"] for f in s["failed"]}
+    assert "a LAMMPS job (in.relax, log.lammps) that ran and wrote no dump" in \
+        errors["campaign/si8_no_dump"]
+    assert s["runs"] == 2 and len(s["failed"]) == 1
+    assert (tmp_path / "out" / "records").is_dir()
+
+
+def test_data_file_and_log_named_when_passed_alone():
+    with pytest.raises(InputError, match="a LAMMPS log"):
+        read_run(LMP / "si8_no_dump" / "log.lammps")
+    with pytest.raises(InputError, match="a LAMMPS data file"):
+        read_run(LMP / "mg16_masses_from_data" / "start.data")
+
+
+def test_md_run_is_no_relaxation():
+    """A job that ran 'run 50' (NVT) and no minimize: its frames are MD steps."""
+    run = read_run(LMP / "cu32_md_run" / "md.dump")
+    assert run.steps.tolist() == [0, 10, 20, 30, 40, 50]
+    assert run.not_relaxation == "molecular dynamics (LAMMPS 'run')"
