@@ -35,7 +35,7 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.registry import run_kind
-from .adapters.run import Frame, collect, frame_from_atoms, position_precision
+from .adapters.run import Frame, collect, frame_from_atoms, note_fix_symmetry, position_precision
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
                      OutputError)
 
@@ -387,8 +387,10 @@ class SymmetryWatch:
     def __call__(self, optimizer=None):
         opt = optimizer if optimizer is not None else self.optimizer
         step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
-        if self._calls == 0 and opt is not None:
-            self._note_dynamics(opt)
+        if self._calls == 0:
+            note_fix_symmetry(self.atoms, self._tracker.code_settings)
+            if opt is not None:
+                self._note_dynamics(opt)
         self._calls += 1
         self._tracker.append(frame_from_atoms(self.atoms, step))
         if self._lattice_steps:
@@ -825,8 +827,11 @@ class _Follower:
         final["live"] = self.live_section()
         if self.output is not None:
             records.write_json(final, self.output)
+        still = "" if self.ended.startswith("end marker") else (
+            f" (judged as a run still going: no end marker was seen; if the job has ended, "
+            f"`driftwatch inspect {self.source or self.path}` judges it finished)")
         self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps; "
-                 f"{final['summary']['verdict']['text']}"
+                 f"{final['summary']['verdict']['text']}{still}"
                  + (f"; record {self.output}" if self.output is not None else ""))
         return final
 

@@ -234,15 +234,19 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     steps = [int(f["step"]) for f in frames]
     lasted = (lambda since: True) if persist is None else (
         lambda since: since < n and steps[-1] - steps[since] + 1 >= persist)
-    gained = [t for t in types if D[t][0] >= away and D[t][-1] <= within and lasted(held_since[t])]
-    lost = [t for t in types if D[t][0] <= within and D[t][-1] >= beyond and lasted(left_since[t])]
+    reached = [t for t in types if D[t][0] >= away and D[t][-1] <= within]
+    left = [t for t in types if D[t][0] <= within and D[t][-1] >= beyond]
+    gained = [t for t in reached if lasted(held_since[t])]
+    lost = [t for t in left if lasted(left_since[t])]
+    # live: a change seen but not yet held `persist` steps (the verdict says so, not "kept")
+    pending = bool(set(reached) - set(gained) or set(left) - set(lost))
     top = lambda ts, k: max(ts, key=lambda t: (ORDER[t], -D[t][k])) if ts else None
     g, lo = top(gained, -1), top(lost, 0)
     states = _states(M, types, within, _LOWEST[dim])
     first, last = states[0], states[-1]
     flip = _handedness(frames, r["handedness_flip"]) if dim == 2 else None
     if flip and persist is not None and not lasted(flip["frame"]):
-        flip = None
+        flip, pending = None, True
     frm = [held_since[g]] if g else []
     if lo:
         frm.append(left_since[lo])
@@ -275,7 +279,8 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
            "lost_all": sorted(lost, key=lambda t: -ORDER[t]),
            "from_frame": k, "from_step": None if k is None else int(frames[k]["step"]),
            "passed_through": sorted(passed, key=lambda p: -p["frames"])[:10],
-           "nearing": nearing, "handedness": flip, "fixed_cell": bool(fixed_cell)}
+           "nearing": nearing, "handedness": flip, "fixed_cell": bool(fixed_cell),
+           "pending": f"not yet held for {persist} steps" if pending and persist else None}
     drift = None
     if subject:
         d0, d1 = float(D[subject][0]), float(D[subject][-1])
@@ -619,12 +624,14 @@ def _held_by_code(record, frames, sv):
     held = info.get("operations")
     if held is not None and held < ops:      # the code held a subgroup (e.g. magnetic moments)
         msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}, {ops} "
-               f"operations), of which the code held {held}: it could not have lowered the group "
+               f"operations), of which {info.get('who', 'the code')} held {held}: it could not "
+               f"have lowered the group "
                f"below those, so 'kept' tests only the other {ops - held}; rerun with "
                f"{info['undo']} (and a slightly displaced start) to test them all")
     else:
         msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}), but "
-               f"the code could not have lowered it, so 'kept' is not a test of that symmetry; "
+               f"{info.get('who', 'the code')} could not have lowered it, so 'kept' is not a test "
+               f"of that symmetry; "
                f"rerun with {info['undo']} (and a slightly displaced start) to test it")
     return [_flag("held-by-code", k, frames, msg, None, info.get("operations"), None)]
 
@@ -648,7 +655,9 @@ def _text(direction, lv, sv, frames) -> str:
     says "initial -> final" and quotes no step numbers."""
     ends = bool(frames and frames[-1].get("label"))
     parts = []
-    if lv["direction"] == "kept":
+    if lv["direction"] == "kept" and lv.get("pending") and lv["initial"] != lv["final"]:
+        parts.append(f"lattice {lv['initial']} -> {lv['final']} ({lv['pending']})")
+    elif lv["direction"] == "kept":
         parts.append(f"lattice kept {lv['final']}")
     else:
         moved = (f"{lv['initial']} -> {lv['final']}" if lv["initial"] != lv["final"]
@@ -662,15 +671,19 @@ def _text(direction, lv, sv, frames) -> str:
         a, b = sv["initial"], sv["final"]
         # the same type at both ends: the operation counts tell them apart
         ops = [f", {g['operations']} operations" if a["group"] == b["group"] else "" for g in (a, b)]
-        grp = (f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else
-               f"{a['symbol']} ({a['group']}{ops[0]}) -> {b['symbol']} ({b['group']}{ops[1]})")
-        when = "" if sv["direction"] == "kept" or ends else f" {_when(frames, sv)}"
-        parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
+        moved = f"{a['symbol']} ({a['group']}{ops[0]}) -> {b['symbol']} ({b['group']}{ops[1]})"
+        if sv["direction"] == "kept" and str(sv.get("relation", "")).startswith("not yet held"):
+            parts.append(f"group {moved} at symprec {_g(sv['symprec'])} Å ({sv['relation']})")
+        else:
+            grp = f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else moved
+            when = "" if sv["direction"] == "kept" or ends else f" {_when(frames, sv)}"
+            parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
         looser = _looser(sv)
         if looser:
             parts.append(looser)
+    pending = lv.get("pending") or str(sv.get("relation", "")).startswith("not yet held")
     head = f"{direction} (initial -> final structure; no ionic steps between them)" if ends \
-        else direction
+        else "kept so far" if direction == "kept" and pending else direction
     return f"{head}: " + "; ".join(parts)
 
 

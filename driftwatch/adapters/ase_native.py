@@ -15,7 +15,7 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import Lines
-from .run import ReadContext, frame_from_atoms
+from .run import ReadContext, frame_from_atoms, note_fix_symmetry
 
 __all__ = ["read_traj", "read_extxyz", "read_db", "read_aims",
            "read_castep", "read_castep_geom", "read_gpaw", "MAX_ATOMS"]
@@ -158,7 +158,9 @@ def read_traj(path, ctx: ReadContext):
                 if i == 1 and not {"optimizer", "dynamics"} & set(ctx.settings) and \
                         _moving(first, atoms):        # no description says what wrote it
                     ctx.settings.update({"code": "ase", "dynamics_seen": _MOMENTA})
-                first = atoms if i == 0 else first
+                if i == 0:
+                    first = atoms
+                    note_fix_symmetry(atoms, ctx.settings)
                 fr = frame_from_atoms(atoms, i)
                 energies.append(fr.energy)
                 yield fr
@@ -313,6 +315,8 @@ def read_db(path, ctx: ReadContext):
         if chosen is None:
             for i, row in enumerate(db.select(selection, sort="id")):
                 atoms = row.toatoms()
+                if i == 0:
+                    note_fix_symmetry(atoms, ctx.settings)
                 step = row.get("step", i)
                 yield frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
             return

@@ -196,7 +196,15 @@ def _code_named(name) -> Code | None:
 
 def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
     """The code's own symmetry handling of a run (see :class:`Code`), from its ``code_settings``;
-    None when it was off, unknown, or the code has no such rule."""
+    None when it was off, unknown, or the code has no such rule. ASE's ``FixSymmetry``
+    constraint (any calculator, ``fix_symmetry`` in the settings) holds its operations too."""
+    fs = (code_settings or {}).get("fix_symmetry")
+    if fs:
+        n = fs.get("operations")
+        return {"operations": n, "who": "the constraint",
+                "how": f"ASE's FixSymmetry constraint held {n} symmetry operations (its symprec "
+                       f"{fs.get('symprec'):g} Å) through the relaxation",
+                "undo": "no FixSymmetry constraint"}
     code = _code_named((code_settings or {}).get("code"))
     fn = code.function("symmetry_setting") if code is not None else None
     return fn(code_settings, dimension) if fn is not None else None

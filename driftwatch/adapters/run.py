@@ -346,7 +346,7 @@ def frame_from_atoms(atoms, step: int) -> Frame:
         stress = res.get("stress")
         if stress is not None:
             stress = np.asarray(stress, float)
-            if stress.shape == (3, 3):
+            if stress.shape in ((3, 3), (9,)):       # ase.db keeps a 3x3 stress flattened
                 stress = stress.reshape(9)[[0, 4, 8, 5, 2, 1]]
     return Frame(
         cell=np.array(atoms.cell.array, float),
@@ -358,6 +358,18 @@ def frame_from_atoms(atoms, step: int) -> Frame:
         forces=None if forces is None else np.array(forces, float),
         stress=stress,
     )
+
+
+def note_fix_symmetry(atoms, settings: dict) -> None:
+    """Record ASE's ``FixSymmetry`` constraint on ``atoms`` in a run's code settings: the
+    operations it holds (spglib's, at its own symprec, on the structure it was made with), which
+    the relaxation cannot lower (:func:`driftwatch.adapters.registry.symmetry_setting`)."""
+    for c in getattr(atoms, "constraints", None) or ():
+        if type(c).__name__ == "FixSymmetry" and hasattr(c, "rotations"):
+            settings.setdefault("code", "ase")
+            settings["fix_symmetry"] = {"operations": int(len(c.rotations)),
+                                        "symprec": float(getattr(c, "symprec", 0.0))}
+            return
 
 
 def checked(frames: Iterable, path) -> Iterator[Frame]:
