@@ -257,7 +257,7 @@ def _cmd_inspect(args) -> int:
 def _cmd_tolerance(args) -> int:
     from . import config as _config, geometry
     from .adapters import read_run
-    from .rules import advice
+    from .rules import advice, shown_breakpoints
     from .track import symmetry_entry
     cfg = _config.load(args.config)
     run = read_run(args.path, format=args.format)
@@ -285,9 +285,17 @@ def _cmd_tolerance(args) -> int:
                                    spec["operations"], spec["lattice"]):
         note = "  (below the file's printed precision)" if floor and x < floor else ""
         print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}{note}")
-    for b in spec["breakpoints"]:
-        print(f"breakpoint ({b['kind']}): {b['from']} -> {b['to']} between {b['low']:.4g} and "
-              f"{b['high']:.4g} Å")
+    for b in shown_breakpoints(spec["breakpoints"]):
+        if b["changes"] > 1:
+            print(f"breakpoints ({b['kind']}): {b['from']} and {b['to']} alternate, {b['changes']} "
+                  f"changes between {b['low']:.4g} and {b['high']:.4g} Å (spglib flickers)")
+        else:
+            print(f"breakpoint ({b['kind']}): {b['from']} -> {b['to']} between {b['low']:.4g} and "
+                  f"{b['high']:.4g} Å")
+    if spec["breakpoints"]:
+        print(f"(breakpoints are searched between grid points whose verdicts differ, and around a "
+              f"flicker in steps of a factor {spec['precision'] ** 0.25:.3g}; a change that returns "
+              f"between two grid points of one verdict elsewhere is not seen)")
     for g, d in spec["displacement"].items():
         print(f"to {d['symbol']} ({g}): atoms move rms {d['rms']:.3g} Å, max {d['max']:.3g} Å; "
               f"lattice strain {d['strain']:.2g}")

@@ -270,9 +270,14 @@ def chiral_deformation(frame: dict) -> float:
 def atoms_text(atoms: dict) -> str:
     """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output."""
     a, b = atoms["start"], atoms["end"]
-    return (f"to {atoms['symbol']} ({atoms['group']}), the final structure's group at symprec "
-            f"{atoms['symprec']:.3g} Å: rms {a['rms']:.3g} Å at the start, {b['rms']:.3g} Å at the "
-            f"end (max {a['max']:.3g} -> {b['max']:.3g} Å)")
+    head = (f"to {atoms['symbol']} ({atoms['group']}), the final structure's group at symprec "
+            f"{atoms['symprec']:.3g} Å: ")
+    if "rms" not in a:
+        return (head + f"rms {b['rms']:.3g} Å at the end (max {b['max']:.3g} Å); the first frame "
+                       f"could not be measured against it (the group's operations do not pair its "
+                       f"atoms: they were too far from that configuration)")
+    return head + (f"rms {a['rms']:.3g} Å at the start, {b['rms']:.3g} Å at the end (max "
+                   f"{a['max']:.3g} -> {b['max']:.3g} Å)")
 
 
 def stages_text(record: dict) -> str | None:

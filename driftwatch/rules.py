@@ -768,17 +768,21 @@ def _atoms_toward(frames, loosest) -> dict | None:
     """Where the atoms came from, for the most symmetric group spglib finds on the final structure
     at a symprec up to ``loosest`` (Å): the displacement (RMS and max, Å) of the first frame and of
     the final one to that group's symmetric configuration (the final structure's instance of it).
-    None for one frame, or when no such group beyond P1 (p1) was measured on both."""
+    When the first frame cannot be mapped onto that instance (its atoms moved too far for the
+    group's operations to pair them), ``start`` holds ``error`` instead: never a lower group the
+    atoms had all along. None for one frame, or when no group beyond P1 (p1) was measured."""
     if len(frames) < 2:
         return None
     table = ((frames[-1].get("symmetry") or {}).get("displacement") or {}).values()
     cand = [d for d in table if isinstance(d, dict) and "rms" in d and d.get("operations", 1) > 1
-            and d["symprec"] <= loosest * (1 + 1e-9) and "rms" in (d.get("start") or {})]
+            and d["symprec"] <= loosest * (1 + 1e-9)]
     if not cand:
         return None
     d = max(cand, key=lambda d: (d["operations"], -d["symprec"]))
-    return {"group": d["group"], "symbol": d["symbol"], "symprec": d["symprec"],
-            "start": {"rms": d["start"]["rms"], "max": d["start"]["max"]},
+    st = d.get("start") or {}
+    start = {"rms": st["rms"], "max": st["max"]} if "rms" in st else \
+        {"error": st.get("error") or "the first frame was not measured"}
+    return {"group": d["group"], "symbol": d["symbol"], "symprec": d["symprec"], "start": start,
             "end": {"rms": d["rms"], "max": d["max"]}}
 
 
@@ -829,29 +833,89 @@ def summarize(record: dict, cfg: dict, *, complete: bool = True) -> dict:
 # tolerance advice
 # ----------------------------------------------------------------------------------------------
 def _plateaus(spec):
-    """Stretches of one group verdict: [low, high, group, symbol, operations] (Å), bracket ends
-    used where a breakpoint was bisected, grid points otherwise. A group met only between two grid
-    points (a bisection found 1 -> 3 -> 111 where the grid shows 1 and 111) is a stretch of its own."""
-    s = [float(x) for x in spec["symprec"]]
-    g = [int(x) for x in spec["group"]]
-    ops = [int(x) for x in spec.get("operations") or [0] * len(g)]
-    sym = list(spec["group_symbol"])
-    bps = sorted((b for b in spec.get("breakpoints", []) if b["kind"] == "group"),
-                 key=lambda b: b["low"])
-    ranges, cur = [], [s[0], None, g[0], sym[0], ops[0]]
-    for i in range(1, len(s)):
-        if (g[i], ops[i]) == (g[i - 1], ops[i - 1]):
+    """Stretches of one group verdict: [low, high, group, symbol, operations] (Å): the grid points
+    and the two ends of every bisected bracket, in order of symprec, cut where the verdict changes
+    (so a bracket end is a stretch end, and a group met only between two grid points, or a window
+    where spglib flickered between grid points of one verdict, is a stretch of its own)."""
+    ops = spec.get("operations") or [0] * len(spec["group"])
+    pts = [(float(x), int(g), str(n), int(o))
+           for x, g, n, o in zip(spec["symprec"], spec["group"], spec["group_symbol"], ops)]
+    for b in spec.get("breakpoints", []):
+        if b["kind"] == "group":
+            pts.append((float(b["low"]), int(b["from"]), str(b.get("from_symbol", "")),
+                        int(b.get("from_operations") or 0)))
+            pts.append((float(b["high"]), int(b["to"]), str(b.get("to_symbol", "")),
+                        int(b.get("to_operations") or 0)))
+    pts.sort(key=lambda p: p[0])
+    ranges, cur = [], None
+    for x, g, n, o in pts:
+        if cur is not None and (cur[2], cur[4]) == (g, o):
+            cur[1] = x
             continue
-        inside = [b for b in bps if s[i - 1] <= b["low"] and b["high"] <= s[i]]
-        for b in inside:            # the bisected chain of changes between the two grid points
-            ranges.append(cur[:1] + [b["low"]] + cur[2:])
-            cur = [b["high"], None, int(b["to"]), str(b.get("to_symbol", "")),
-                   int(b.get("to_operations") or 0)]
-        if not inside or (cur[2], cur[4]) != (g[i], ops[i]):
-            ranges.append(cur[:1] + [s[i - 1] if not inside else cur[0]] + cur[2:])
-            cur = [s[i], None, g[i], sym[i], ops[i]]
-    ranges.append(cur[:1] + [s[-1]] + cur[2:])
+        if cur is not None:
+            ranges.append(cur)
+        cur = [x, x, g, n, o]
+    ranges.append(cur)
     return ranges
+
+
+def alternating(values, min_len: int = 4) -> list[tuple[int, int]]:
+    """[(i, j)]: the maximal runs ``values[i..j]`` of at least ``min_len`` items that alternate
+    between two values (A B A B ...): where spglib flickers between two verdicts across symprec."""
+    out, i, n = [], 0, len(values)
+    while i < n - 1:
+        if values[i + 1] == values[i]:
+            i += 1
+            continue
+        j = i + 1
+        while j + 1 < n and values[j + 1] == values[j - 1]:
+            j += 1
+        if j - i + 1 >= min_len:
+            out.append((i, j))
+            i = j
+        else:
+            i += 1
+    return out
+
+
+def shown_ranges(ranges) -> list[list]:
+    """:func:`_plateaus` stretches for display: a run of stretches alternating between two groups
+    (spglib flickering) is one row ``[low, high, groups, symbols, operations, stretches]`` whose
+    groups, symbols and operations are pairs; other rows carry ``stretches`` 1."""
+    runs = {i: j for i, j in alternating([(r[2], r[4]) for r in ranges])}
+    out, i = [], 0
+    while i < len(ranges):
+        j = runs.get(i)
+        if j is None:
+            out.append(list(ranges[i]) + [1])
+            i += 1
+            continue
+        a, b = ranges[i], ranges[i + 1]
+        out.append([a[0], ranges[j][1], (a[2], b[2]), (a[3], b[3]), (a[4], b[4]), j - i + 1])
+        i = j + 1
+    return out
+
+
+def shown_breakpoints(breakpoints) -> list[dict]:
+    """The breakpoints for display, each kind in order of symprec: a chain of brackets alternating
+    between two verdicts is one entry with ``changes`` (its count) from the first low to the last
+    high; other entries carry ``changes`` 1."""
+    out = []
+    for kind in dict.fromkeys(b["kind"] for b in breakpoints):
+        bs = sorted((b for b in breakpoints if b["kind"] == kind), key=lambda b: b["low"])
+        values = [bs[0]["from"]] + [b["to"] for b in bs] if bs else []
+        chained = all(bs[k]["from"] == bs[k - 1]["to"] for k in range(1, len(bs)))
+        runs = {i: j for i, j in alternating(values)} if chained else {}
+        k = 0
+        while k < len(bs):
+            j = runs.get(k)
+            if j is None:
+                out.append(dict(bs[k], changes=1))
+                k += 1
+                continue
+            out.append(dict(bs[k], high=bs[j - 1]["high"], changes=j - k))
+            k = j
+    return out
 
 
 def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | None = None) -> dict:
@@ -874,8 +938,9 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
         return empty
     ranges = _plateaus(spec)
     floor = 2.0 * precision if precision else None
-    at = {f"{x:g}": [int(gg), str(nn)] for x, gg, nn in zip(spec["symprec"], spec["group"],
-                                                              spec["group_symbol"])}
+    ops_at = spec.get("operations") or [0] * len(spec["group"])
+    at = {f"{x:g}": [int(gg), str(nn), int(oo)]
+          for x, gg, nn, oo in zip(spec["symprec"], spec["group"], spec["group_symbol"], ops_at)}
     out = dict(empty, ranges=ranges, at=at, resolution=floor, reason="")
     grid_lo, grid_hi = float(spec["symprec"][0]), float(spec["symprec"][-1])
     usable = []
@@ -990,7 +1055,8 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
             continue
         if not tol.get("at") or not grid:
             continue
-        groups = [tol["at"][_near_key(tol["at"], s)][0] for s in common]
+        # a verdict is the group and its operation count (R-3m with 12 or 24 in one cell differ)
+        groups = [tuple(tol["at"][_near_key(tol["at"], s)][0:3:2]) for s in common]
         per_run.append((r["run"], groups, tol, grid[0], grid[1]))
     changes = []
     for i in range(len(common) - 1):

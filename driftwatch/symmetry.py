@@ -341,7 +341,63 @@ def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
         for (s0, v0), (s1, v1) in zip(points, points[1:]):
             if key(v0) != key(v1):
                 brackets += _bisect(probe, key, s0, v0, s1, v1, ratio)
-    return values, brackets
+    return values, _sweep(probe, key, grid, values, brackets, ratio)
+
+
+SWEEP_CALLS = 400
+"""The most spglib calls one scan spends probing the neighbours of a flicker (:func:`_sweep`)."""
+
+
+def _sweep(probe, key, grid, values, brackets, ratio):
+    """``brackets`` completed where spglib flickered.
+
+    spglib's verdict is not monotonic in symprec: where one grid interval holds two or more
+    changes (the verdict went and came back, or passed a third one), it often flickers over a wider
+    range than that interval, in windows of a few per cent that grid points a factor ~2 apart step
+    over. So that interval and its neighbours are probed at steps of ``ratio ** 0.25`` in log
+    symprec, outwards, as long as the probing finds changes the grid did not show (at most
+    :data:`SWEEP_CALLS` calls). Returns all brackets, sorted, those of a probed interval replaced
+    by what its probing found."""
+    n = len(grid) - 1
+    per = [[] for _ in range(n)]
+    for b in brackets:
+        i = min(max(0, int(np.searchsorted(grid, b[0], side="right")) - 1), n - 1)
+        per[i].append(b)
+    busy = [i for i in range(n) if len(per[i]) >= 2]
+    if not busy:
+        return brackets
+    step, calls = ratio ** 0.25, [0]
+
+    def probed(j):
+        lo, hi = grid[j], grid[j + 1]
+        pts = [(lo, values[j])]
+        s = lo * step
+        while s < hi / step ** 0.5 and calls[0] < SWEEP_CALLS:
+            pts.append((s, probe(s)))
+            calls[0] += 1
+            s *= step
+        pts.append((hi, values[j + 1]))
+        out = []
+        for (s0, v0), (s1, v1) in zip(pts, pts[1:]):
+            if key(v0) != key(v1):
+                out += _bisect(probe, key, s0, v0, s1, v1, ratio)
+        return out
+
+    done = set(busy)
+    for i0 in busy:
+        found = probed(i0)                  # the flickering interval itself, then outwards
+        per[i0] = found if len(found) > len(per[i0]) else per[i0]
+        for d in (-1, 1):
+            j = i0 + d
+            while 0 <= j < n and j not in done and calls[0] < SWEEP_CALLS:
+                done.add(j)
+                found = probed(j)
+                more = len(found) > len(per[j])
+                per[j] = found if more else per[j]
+                if not more:
+                    break
+                j += d
+    return sorted((b for bs in per for b in bs), key=lambda b: b[0])
 
 
 def _bisect(probe, key, lo, vlo, hi, vhi, ratio):

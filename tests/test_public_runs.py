@@ -1482,6 +1482,34 @@ def test_a_gain_of_pure_translations_is_said_as_such():
     assert all("calls the cell's lattice (one atom per cell)" in m for m in loose)
 
 
+def test_campaign_counts_a_change_of_operations_as_a_change(tmp_path):
+    """The campaign's "verdict changes between symprec a and b" compares the group and its
+    operation count, as each run's verdict does: vc-relax5's final structure is R-3m with 12
+    operations at 1e-5 Å and with 24 at 1e-3 Å (spglib), one change."""
+    import spglib
+    run = read_run(PUB / "qe_testsuite_vc_relax5")
+    c, p = run.cells[-1], run.positions[-1]
+    cell = (c, np.linalg.solve(c.T, p.T).T, run.numbers)
+    got = [spglib.get_symmetry_dataset(cell, symprec=x) for x in (1e-5, 1e-3)]
+    assert [(d.number, len(d.rotations)) for d in got] == [(166, 12), (166, 24)]    # spglib
+    s = _quiet_audit([PUB / "qe_testsuite_vc_relax5"], tmp_path / "out", workers=1)
+    camp = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    first = camp["tolerance"]["changes"][0]
+    assert (first["low"], first["high"], first["runs"]) == (1e-5, 1e-3, 1) and s["runs"] == 1
+
+
+def test_atoms_line_names_the_most_symmetric_group_even_when_the_start_cannot_be_measured():
+    """The bundled L09 (a fixed-cell EMT layer) gains cm2m (35) from p11m (4); its first frame's
+    atoms cannot be paired by cm2m's operations. The atoms line names cm2m and says the start was
+    not measured, instead of falling back to p11m with 'rms 0 Å at the start, 0 Å at the end'."""
+    from driftwatch import analyze, records
+    rec = analyze(read_run(Path(__file__).parents[1] / "example_runs" /
+                           "L09_emt_fixed_square.traj"))
+    at = rec["summary"]["atoms"]
+    assert (at["group"], at["symbol"]) == (35, "cm2m") and "error" in at["start"]
+    assert "the first frame could not be measured against it" in records.atoms_text(at)
+
+
 def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
     """A relaxation that stopped at its step limit or was cut short has a final structure that is
     no relaxed one: the record, campaign.csv, runs.db, the summary and the table say so (they looked

@@ -610,3 +610,47 @@ else:
                                       capture_output=True, text=True, check=True).stderr
     assert "spglib:" in run("raw")
     assert run("driftwatch") == ""
+
+
+# ---------------------------------------------------------------- where spglib flickers
+DATA = __import__("pathlib").Path(__file__).parent / "data"
+
+
+def test_flicker_is_swept_so_no_stretch_hides_another_group():
+    """A real pw.x vc-relax of one Al atom (tests/data/qe_trials/al1_fcc_vc_relax): spglib's group
+    of the final structure alternates between C2/m and R-3m in windows of ~2 % from 1.77e-3 to
+    4.5e-3 Å, where grid points ~2x apart all show C2/m (a field trial's dense scan). The stretches
+    must hold spglib's group at every point inside them (40 per stretch, spglib called directly)."""
+    from driftwatch.adapters import read_run
+    from driftwatch.rules import _plateaus
+    from driftwatch.track import analyze
+    run = read_run(DATA / "qe_trials" / "al1_fcc_vc_relax")
+    spec = analyze(run)["frames"][-1]["symmetry"]
+    c, p = run.cells[-1], run.positions[-1]
+    cell = (c, np.linalg.solve(c.T, p.T).T, run.numbers)
+    stretches = _plateaus(spec)
+    c2m = next(r for r in stretches if r[2] == 12)
+    assert 0.00177 < c2m[1] < 0.00178             # the first R-3m window starts at 1.773e-3 Å
+    checked = 0
+    for lo, hi, g, _, ops in stretches:
+        for x in np.geomspace(lo, hi, 40)[1:-1] if hi > lo else []:
+            ds = spglib.get_symmetry_dataset(cell, symprec=x, angle_tolerance=-1)       # spglib
+            assert (ds.number, len(ds.rotations)) == (g, ops), (lo, hi, x)
+            checked += 1
+    assert checked > 500
+
+
+def test_alternating_runs_are_one_row_for_display():
+    from driftwatch.rules import alternating, shown_breakpoints, shown_ranges
+    assert alternating(list("ABABAC")) == [(0, 4)]
+    assert alternating(list("ABAC")) == []                    # fewer than 4: not a flicker
+    ranges = [[1, 2, 12, "C2/m", 4], [2.1, 2.2, 166, "R-3m", 12], [2.3, 2.4, 12, "C2/m", 4],
+              [2.5, 2.6, 166, "R-3m", 12], [3, 9, 225, "Fm-3m", 48]]
+    rows = shown_ranges(ranges)
+    assert rows[0][:2] == [1, 2.6] and rows[0][2] == (12, 166) and rows[0][5] == 4
+    assert rows[1] == [3, 9, 225, "Fm-3m", 48, 1]
+    bps = [{"kind": "group", "low": lo, "high": hi, "from": a, "to": b}
+           for lo, hi, a, b in [(2, 2.1, 12, 166), (2.2, 2.3, 166, 12), (2.4, 2.5, 12, 166),
+                                (2.6, 3, 166, 225)]]
+    shown = shown_breakpoints(bps)
+    assert [(b["low"], b["high"], b["changes"]) for b in shown] == [(2, 2.5, 3), (2.6, 3, 1)]

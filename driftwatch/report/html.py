@@ -566,11 +566,18 @@ def _tolerance_section(rec):
     ranges = tol.get("ranges") or tol.get("stable_ranges") or []
     floor = _fnum(tol.get("resolution"))
     if ranges:
+        from ..rules import shown_ranges
+
+        def group(r):
+            if r[5] == 1:
+                return f"{e(r[3])} ({e(r[2])})"
+            return (f"{e(r[3][0])} ({e(r[2][0])}) and {e(r[3][1])} ({e(r[2][1])}) alternate: "
+                    f"{r[5]} stretches (spglib flickers)")
         rows = "".join(
-            f"<tr>{_td_num(r[0], 'Å')}{_td_num(r[1], 'Å')}<td>{e(r[3])} ({e(r[2])})</td>"
+            f"<tr>{_td_num(r[0], 'Å')}{_td_num(r[1], 'Å')}<td>{group(r)}</td>"
             f"<td class=\"num\">{_ratio(r[0], r[1])}</td>"
             f"<td>{'below the file' + chr(39) + 's printed precision' if floor and r[0] < floor else ''}"
-            f"</td></tr>" for r in ranges if len(r) >= 4)
+            f"</td></tr>" for r in shown_ranges([list(r) + [0] * (5 - len(r)) for r in ranges if len(r) >= 4]))
         out.append("<h3>Ranges of symprec with one verdict (final structure)</h3><table><thead><tr>"
                    "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th><th></th>"
                    f"</tr></thead><tbody>{rows}</tbody></table>")
