@@ -188,7 +188,7 @@ def _inspect_table(rec: dict) -> str:
     shown = _shown_types(rec)
     judge_at = v["structure"].get("symprec") or 1e-3
     head = ["step", "energy/eV", "fmax/(eV/Å)"] + [f"{t}/Å" for t in shown]
-    head += (["sign", "chiral/Å"] if dim == 2 else []) + [f"group@{judge_at:g}Å"]
+    head += (["sign", "chiral_def/Å"] if dim == 2 else []) + [f"group@{judge_at:g}Å"]
     rows = [head]
     for f in frames:
         row = [f.get("label") or str(f["step"]), _fmt(f["energy"], ".6f"), _fmt(f.get("fmax"), ".3g")]

@@ -600,7 +600,7 @@ def _step_line(f: dict, dim: int, within: float) -> str:
             f"nearest {nearest} Å")
     if dim == 2:
         sign = f"{f['sign']:+d}" if f["sign"] else " 0"
-        line += f"  sign {sign}  chiral {records.chiral_deformation(f):+.3g} Å"
+        line += f"  sign {sign}  chiral_def {records.chiral_deformation(f):+.3g} Å"
     return line
 
 

@@ -256,13 +256,14 @@ END_POINTS = "2 structures (initial and final only; no ionic steps between them)
 """How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
 
 
-CHIRAL_WORDS = "chiral: sign × deformation to the nearest lattice with a mirror line"
-"""How the "chiral" column or field is said in every output (:func:`chiral_deformation`)."""
+CHIRAL_WORDS = ("chiral_def: sign × deformation to the nearest lattice with a mirror line (the "
+                "record's chiral_distance is sign × root-space distance, another number)")
+"""How the "chiral_def" column or field is said in every output (:func:`chiral_deformation`)."""
 
 
 def chiral_deformation(frame: dict) -> float:
     """A layer frame's sign times its deformation (Å) to the nearest lattice with a mirror line: the
-    measure ``handedness-flip`` judges, shown as "chiral" in every output (the root-space chiral
+    measure ``handedness-flip`` judges, shown as "chiral_def" in every output (the root-space chiral
     distance, which grows like the square root of it, is the record's ``chiral_distance``)."""
     return float(frame["sign"]) * float(frame["deformation"]["mirror"])
 

@@ -343,7 +343,8 @@ def _lattice_flags(frames, lv, D, r):
                  f"{_g(D[g][-1])} Å at the end, within {_g(within)} Å "
                  f"{_from(frames, kg)}") if g else ""
     loss_text = (f"left {lo} ({NAMES[lo]}): deformation {_g(D[lo][0])} Å at the start, "
-                 f"{_g(D[lo][-1])} Å at the end, beyond {_g(within)} Å "
+                 f"{_g(D[lo][-1])} Å at the end (at least {_g(r['lattice']['left_beyond'])} Å "
+                 f"counts as left), no longer within {_g(within)} Å "
                  f"{_from(frames, kl)}") if lo else ""
     if g and lo:   # one sideways change, one flag
         flags.append(_flag("lattice-changed", max(kg, kl), frames,
@@ -401,10 +402,11 @@ def _lattice_flags(frames, lv, D, r):
 
 
 def _reversals(frames, r) -> list[tuple[int, float]]:
-    """Where a layer's handedness reversed on the way: (first frame of the new side, the side's
-    largest mirror deformation, Å) for each change of sign between stretches of one sign that
-    reach twice ``min_chiral`` (frames below ``min_chiral`` are no side: a lattice settling onto a
-    mirror-symmetric one flickers there, and overshoots it by a few per cent of it)."""
+    """Where a layer's handedness reversed on the way: (the frame from which the sign is the new
+    side's, the side's largest mirror deformation, Å) for each change of sign between stretches
+    of one sign that reach twice ``min_chiral`` (frames below ``min_chiral`` are no side: a
+    lattice settling onto a mirror-symmetric one flickers there, and overshoots it by a few per
+    cent of it)."""
     sign, chiral, sig = _chiral_frames(frames, r)
     sides = []                               # [sign, first frame, peak] of each stretch of one sign
     for k in sig:
@@ -419,7 +421,13 @@ def _reversals(frames, r) -> list[tuple[int, float]]:
             kept[-1][2] = max(kept[-1][2], s[2])
         else:
             kept.append(list(s))
-    return [(b[1], b[2]) for a, b in zip(kept, kept[1:])]
+    out = []
+    for _, b in zip(kept, kept[1:]):
+        k = b[1]                 # back to where the sign turned (below min_chiral, as shown)
+        while k > 0 and sign[k - 1] == b[0]:
+            k -= 1
+        out.append((k, b[2]))
+    return out
 
 
 # ----------------------------------------------------------------------------------------------

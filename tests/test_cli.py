@@ -126,13 +126,13 @@ def test_the_chiral_column_is_the_deformation_the_handedness_rule_judges():
     head = out[0].split()
     rows = [ln.split() for ln in out[1:] if ln.strip() and ln.split()[0].isdigit()]
     assert len(rows) == 31
-    col = {name: head.index(name) for name in ("op/Å", "oc/Å", "tp/Å", "hp/Å", "sign", "chiral/Å")}
+    col = {name: head.index(name) for name in ("op/Å", "oc/Å", "tp/Å", "hp/Å", "sign", "chiral_def/Å")}
     for r in rows:
         nearest = min(float(r[col[t]]) for t in ("op/Å", "oc/Å", "tp/Å", "hp/Å"))
-        assert float(r[col["chiral/Å"]]) == pytest.approx(int(r[col["sign"]]) * nearest, rel=2e-3)
+        assert float(r[col["chiral_def/Å"]]) == pytest.approx(int(r[col["sign"]]) * nearest, rel=2e-3)
     follow = dw("follow", path, "--idle", "1").stdout
     assert "step    0  E       3.181602 eV  at mp  nearest oc 0.142, hp 0.344 Å  sign -1  " \
-           "chiral -0.142 Å" in follow
+           "chiral_def -0.142 Å" in follow
 
 
 def test_follow_says_when_a_flag_it_announced_no_longer_holds():

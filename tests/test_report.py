@@ -370,7 +370,7 @@ def test_injected_markup_renders_as_text_in_chromium(report):
     dom = _chromium("--dump-dom", page.as_uri())
     p = _parse(dom)
     title = html.unescape(dom[dom.index("<title>") + 7:dom.index("</title>")])
-    assert title == f"Hostile {PWNED_TITLE} layer · driftwatch"  # not 'pwned' or 'pwned-img'
+    assert title == "hostile · driftwatch"      # the run id; the file's title is text below it
     assert not [a for t, a in p.tags if t == "img"], "an injected <img> became an element"
     assert not [a for t, a in p.tags if t == "script"], "an injected <script> became an element"
     assert not [a for t, a in p.tags if t in ("u", "i")], "injected markup became an element"

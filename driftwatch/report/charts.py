@@ -323,7 +323,7 @@ def chirality(rec) -> Chart | None:
               Mark("text", [0.01], [0.03], texts=["sign −1 (mirror image)"], coords="axes",
                    valign="bottom", colour="#8a4a1d", fontsize=9)]
     marks += series_marks(steps, [("chiral distance (root space)", chi, style.CELL_STYLE["chiral"]),
-                                  ("sign × deformation to mirror", sdef,
+                                  ("chiral_def (sign × deformation to mirror)", sdef,
                                    style.CELL_STYLE["chiral_deformation"])], scale="linear")
     ya = Axis("signed distance to the nearest mirror lattice (Å)", lim=(-top, top), symmetric=True)
     return Chart("chirality", [Panel(xa, ya, marks, title="handedness: signed chiral distance",

@@ -38,8 +38,8 @@ FLAG_TEXT = {
     "lattice-changed": "the lattice left one type and reached another (a sideways change)",
     "lattice-nearing": "the lattice moved a large part of the way toward a type without reaching it",
     "passed-through": "the lattice held a type for part of the run and then left it again",
-    "handedness-flip": "the layer's 2D lattice changed handedness, so it passed through a lattice with "
-                       "a mirror line on the way",
+    "handedness-flip": "the layer's 2D lattice changed handedness (at the end, or on the way and "
+                       "back again), so it passed through a lattice with a mirror line",
     "group-gained": "spglib's group of the final structure contains the starting one: the structure "
                     "gained symmetry operations",
     "group-lost": "spglib's group of the final structure is a subgroup of the starting one: the "
@@ -741,16 +741,17 @@ def _how_to_read():
 def run_page(name, label, rec, origin, key="") -> str:
     """HTML text of one run's page (linked from ``../index.html``); ``key`` marks the cache entry."""
     run = rec["run"]
-    title = run.get("title") or label
-    header = (f"<h1>{e(title)}</h1><div class=\"sub\">run {e(label)}"
-              + (f" · record {e(origin)}" if origin else "") + "</div>")
+    title = run.get("title")        # the file's own title line, below the run id every output uses
+    header = (f"<h1>{e(label)}</h1><div class=\"sub\">"
+              + (f"title {e(title)} · " if title and title != label else "")
+              + (f"record {e(origin)}" if origin else "") + "</div>")
     warned = bool(run.get("warnings"))  # reading problems go up front, next to the summary
     body = (f'<p class="note">{e(DISCLAIMER)}</p>' + _summary_section(rec)
             + (_warnings_section(rec) if warned else "") + _flags_section(rec)
             + _tolerance_section(rec) + _plots_section(rec) + _settings_section(rec)
             + ("" if warned else _warnings_section(rec)) + _how_to_read() + _provenance_section(rec))
     crumb = '<div class="crumb"><a href="../index.html">← campaign index</a></div>'
-    return _page(f"{title} · driftwatch", header, body, crumb=crumb, key=key)
+    return _page(f"{label} · driftwatch", header, body, crumb=crumb, key=key)
 
 
 # -------------------------------------------------------------------------------------------- index
@@ -792,8 +793,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
                                "images, ...: their verdicts compare how the structure moved "
                                "from the first frame to the last)</span>")] if n_moving else [])
       + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short, or stopped at "
-                          "their step limit or on request: their final structures are not "
-                          "relaxed ones)</span>")]
+                          "their step limit, on request or without converging: their final "
+                          "structures are not relaxed ones)</span>")]
          if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(_copies_text(g)) for g in campaign["copies"][:10])
@@ -1040,8 +1041,9 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
     Args:
         records: run-record JSON files and/or folders of them (``*.json``, not recursive); record dicts
             are accepted too. A file that is not a record is listed on the index as unreadable. An
-            audit summary (``campaign.json``) among them is used as ``campaign`` when none is given,
-            and the records it lists are read too, so an audit's output folder is a valid input.
+            audit summary (``campaign.json``) among them, or beside a folder given (an audit's
+            ``records/``), is used as ``campaign`` when none is given, and the records it lists are
+            read too, so an audit's output folder is a valid input.
         output: report folder; created if needed. ``OUTPUT/runs/<name>.html`` holds one page per run.
             A page whose record, name and source (and driftwatch's code) did not change since the
             last build into this folder is kept as it is (``OUTPUT/.pages.json``).
@@ -1055,6 +1057,10 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
     """
     if isinstance(records, (str, os.PathLike, dict)):
         records = [records]
+    if campaign is None:     # an audit's records/ folder: its summary beside it names the runs
+        beside = [Path(r).parent / "campaign.json" for r in records
+                  if not isinstance(r, dict) and Path(r).is_dir()]
+        records = [b for b in dict.fromkeys(beside) if b.is_file()] + list(records)
     out = _prepare_output(output, overwrite)
     known = _load_pages(out)
     queue = _sources(records)
