@@ -204,6 +204,30 @@ def test_audit_folder_with_summary(real_records, tmp_path):
     assert "Unreadable inputs" not in text
 
 
+def test_records_folder_of_an_audit_reads_its_summary(real_records, tmp_path):
+    """`driftwatch report AUDIT/records` (the --help example): the audit's campaign.json beside the
+    folder names the runs by their run ids (not the record files' stems) and lists the failed run;
+    each page is headed by its run id (the file's own title line below it)."""
+    audit = tmp_path / "audit"
+    (audit / "records").mkdir(parents=True)
+    listed = {}
+    for k, (name, rec) in enumerate(real_records.items()):
+        records.write_json(rec, audit / "records" / f"r{k}.json")
+        listed[f"camp/{name}"] = f"records/r{k}.json"
+    summary = {"schema": "driftwatch/campaign-1", "runs": len(listed) + 1, "records": listed,
+               "failed": [{"run": "camp/lost", "source": "/c/lost", "error": "no frames"}],
+               "flag_counts": {}}
+    (audit / "campaign.json").write_text(json.dumps(summary))
+    index = build([audit / "records"], tmp_path / "site")
+    text = index.read_text(encoding="utf-8")
+    assert "1 failed run<" in text and "no frames" in text
+    for rid in listed:
+        assert f">{rid}<" in text
+    page = next((tmp_path / "site" / "runs").glob("*.html")).read_text(encoding="utf-8")
+    h1 = page[page.index("<h1>") + 4:page.index("</h1>")]
+    assert h1 in listed
+
+
 def test_malformed_record_page_listed_not_fatal(real_records, tmp_path):
     # a record that looks complete but breaks its page (a hand-edited spectrum with no verdicts) is
     # listed as unreadable; the other runs still get their pages

@@ -546,3 +546,20 @@ def test_the_looser_verdict_words_a_gain_of_pure_translations_as_such():
                  "0.01": {"initial": [2, "P-1"], "final": [2, "P-1"], "direction": "gained"}}}
     assert _looser(sv) == ("at symprec 0.01 Å: group gained P-1 (2) -> P-1 (2), with more "
                            "operations (pure translations)")
+
+
+def test_flag_steps_and_thresholds_are_the_ones_the_outputs_show():
+    """A lost lattice quotes the threshold it is judged by (left_beyond, 2e-3 Å); a handedness
+    reversal on the way is dated where the sign column turns (the bundled L02: a real pw.x 2Dxy
+    layer, whose sign is -1 from the step the flag names)."""
+    from driftwatch.adapters import read_run
+    from driftwatch.track import analyze
+    rec = analyze(read_run(DEMO / "B03_qe_vcrelax_nosym"))
+    (lost,) = [f for f in rec["flags"] if f["code"] == "lattice-lost"]
+    assert "(at least 0.002 Å counts as left)" in lost["message"] and lost["threshold"] == 0.002
+    rec = analyze(read_run(DEMO / "L02_qe_vcrelax"))
+    (flip,) = [f for f in rec["flags"] if f["code"] == "handedness-flip"]
+    signs = {fr["step"]: fr["sign"] for fr in rec["frames"]}
+    k = flip["step"]
+    assert signs[k] == -signs[0] and signs[k - 1] == signs[0]
+    assert f"first from step {k}," in flip["message"]

@@ -779,8 +779,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
         verdicts[v] = verdicts.get(v, 0) + 1
     header = ("<h1>driftwatch campaign report</h1><div class=\"sub\">"
               f"{len(recs)} runs with a verdict · {n_flagged} with flags · {len(bad)} unreadable "
-              f"inputs · "
-              f"{len(failed)} failed runs"
+              f"input{'s' if len(bad) != 1 else ''} · "
+              f"{len(failed)} failed run{'s' if len(failed) != 1 else ''}"
               + (f" · {len(skipped)} skipped" if skipped else "") + "</div>")
     parts = [f'<p class="note">{e(DISCLAIMER)}</p>']
     parts.append("<h2>Overview</h2>" + _kv([
