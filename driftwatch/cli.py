@@ -86,6 +86,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--no-cache", action="store_true", help="ignore cached results")
     p.add_argument("--overwrite", action="store_true", help="allow replacing outputs of another campaign")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
+    p.add_argument("--all-frames", action="store_true",
+                   help="run spglib on every frame of every run (selection.all_frames)")
     p.add_argument("--progress", choices=("auto", "on", "off"), default="auto",
                    help="progress on stderr: updated in place on a terminal, a dated line every "
                         "30 s in a log (auto, on); off: none. The summary table always goes to "
@@ -298,7 +300,7 @@ def _cmd_tolerance(args) -> int:
               f"between two grid points of one verdict elsewhere is not seen)")
     for g, d in spec["displacement"].items():
         print(f"to {d['symbol']} ({g}): atoms move rms {d['rms']:.3g} Å, max {d['max']:.3g} Å; "
-              f"lattice strain {d['strain']:.2g}")
+              f"lattice strain {d['strain']:.2g} (dimensionless)")
     print(f"symprec: {adv['reason']}")
     return EXIT_OK
 
@@ -306,7 +308,7 @@ def _cmd_tolerance(args) -> int:
 def _cmd_audit(args) -> int:
     from . import config as _config
     from .campaign import audit
-    cfg = _config.load(args.config)
+    cfg = _config.load(args.config, {"selection.all_frames": True} if args.all_frames else None)
     codes = _reject_codes(args, cfg)
     result = audit(args.roots, args.output, config=cfg, include=args.include, exclude=args.exclude,
                    workers=args.workers, scheduler=args.scheduler, db=args.db,

@@ -151,3 +151,12 @@ def test_follow_says_when_a_flag_it_announced_no_longer_holds():
     held = {f"{f['code']}({f['type']})" if f["type"] else f["code"] for f in final["flags"]}
     assert "lattice-nearing(oF)" in announced and "lattice-nearing(cF)" in held
     assert withdrawn == announced - held and withdrawn
+
+
+def test_audit_all_frames_asks_spglib_on_every_frame(tmp_path):
+    """`audit --all-frames` (the README's performance table names it) as inspect's option."""
+    src = Path(__file__).parent / "data" / "ml_trials" / "hbn_chgnet_vacuum_x.traj"
+    p = dw("audit", src, "-o", tmp_path / "out", "--all-frames", "--no-report", "--progress", "off")
+    assert p.returncode == 0, p.stderr
+    (rec,) = [json.loads(f.read_text()) for f in (tmp_path / "out" / "records").glob("*.json")]
+    assert all(f.get("structure") for f in rec["frames"]) and len(rec["frames"]) == 6

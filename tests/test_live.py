@@ -350,7 +350,8 @@ def test_follow_prints_the_readers_warnings_once_but_not_the_cut_of_a_running_fi
     lines = buf.getvalue().splitlines()
     said = [ln.split("NELM = 15 steps without converging in ", 1)[1].split(":")[0]
             for ln in lines if ln.startswith("  warning:") and "NELM" in ln]
-    assert said == ["1 ionic step(s) (0)", "2 ionic step(s) (0, 3)"], lines
+    assert said == ["1 ionic step(s) (0; VASP's own count 1)",
+                    "2 ionic step(s) (0, 3; VASP's own count 1, 4)"], lines    # OUTCAR: 1 and 4
     assert not [ln for ln in lines if "truncated" in ln]
 
 

@@ -407,10 +407,12 @@ def _ran_nelm(electronic: int | None, nelm: int | None, lepsilon) -> bool:
 
 def _unconverged_note(steps: list[int], nelm: int) -> str:
     """The warning for the ionic steps :func:`_ran_nelm` finds."""
-    shown = ", ".join(map(str, steps[:8])) + (f" and {len(steps) - 8} more" if len(steps) > 8
-                                               else "")
+    more = f" and {len(steps) - 8} more" if len(steps) > 8 else ""
+    shown = ", ".join(map(str, steps[:8])) + more
+    vasp = ", ".join(str(k + 1) for k in steps[:8]) + more     # OUTCAR counts from 1
     return (f"the electronic SCF stopped at NELM = {nelm} steps without converging in "
-            f"{len(steps)} ionic step(s) ({shown}): their energies and forces are not converged")
+            f"{len(steps)} ionic step(s) ({shown}; VASP's own count {vasp}): their energies and "
+            f"forces are not converged")
 
 
 # ---------------------------------------------------------------- OUTCAR

@@ -760,7 +760,7 @@ def breakpoint_histogram(group_bps, lattice_bps, common, span) -> Chart:
              Mark("rects", list(edges[:-1]), [int(x) for x in g], x1=list(edges[1:]),
                   y1=[int(a + b) for a, b in zip(g, l_)], key="lattice", edge="#ffffff",
                   colour=style.SYSTEM_SHADES["orthorhombic"][2],
-                  label="lattice alone (type changes)")]
+                  label="lattice alone (type changes)")][:2 if l_.any() else 1]
     for val in common:
         marks.append(Mark("vline", x=[val], colour="#000000", dash=(1, 2), width=0.8,
                           note=f"{val:g}"))

@@ -464,8 +464,9 @@ def _summary_section(rec):
         ("structure", f"{e(run.get('formula'))}, {e(run.get('n_atoms'))} "
                       f"atom{'s' if run.get('n_atoms') != 1 else ''}, "
                       + (e(_records.END_POINTS) if run.get("kind") == "end-points" else
-                         f"{e(run.get('n_frames'))} frames (steps "
-                         f"{e(_step_span(rec))})")),
+                         (f"1 frame (step {e(_step_span(rec).split('-')[0])})"
+                          if run.get("n_frames") == 1 else
+                          f"{e(run.get('n_frames'))} frames (steps {e(_step_span(rec))})"))),
         *([("stages", e(stages))] if stages else []),
         *([("not a relaxation", f"{e(run['not_relaxation'])}<br><span class=\"muted\">the "
                                 "verdict compares how the structure moved from the first frame "
