@@ -630,15 +630,22 @@ def _held_by_code(record, frames, sv):
         return []
     k = len(frames) - 1
     held = info.get("operations")
+    who = info.get("who", "the code")
+    if k == 0:                               # one frame: no change could be seen at all
+        return [_flag("held-by-code", k, frames,
+                      f"{info['how']}: the one structure read has {sv['final']['symbol']} "
+                      f"({sv['final']['group']}, {ops} operations); with one frame nothing was "
+                      f"tested, and {who} could not have lowered the group it held in any case",
+                      None, held, None)]
     if held is not None and held < ops:      # the code held a subgroup (e.g. magnetic moments)
         msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}, {ops} "
-               f"operations), of which {info.get('who', 'the code')} held {held}: it could not "
+               f"operations), of which {who} held {held}: it could not "
                f"have lowered the group "
                f"below those, so 'kept' tests only the other {ops - held}; rerun with "
                f"{info['undo']} (and a slightly displaced start) to test them all")
     else:
         msg = (f"{info['how']}: the run kept {sv['final']['symbol']} ({sv['final']['group']}), but "
-               f"{info.get('who', 'the code')} could not have lowered it, so 'kept' is not a test "
+               f"{who} could not have lowered it, so 'kept' is not a test "
                f"of that symmetry; "
                f"rerun with {info['undo']} (and a slightly displaced start) to test it")
     return [_flag("held-by-code", k, frames, msg, None, info.get("operations"), None)]

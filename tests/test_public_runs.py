@@ -1641,6 +1641,17 @@ def test_held_by_code_says_when_the_code_held_only_a_subgroup():
     ds = spglib.get_symmetry_dataset((c, np.linalg.solve(c.T, p.T).T, run.numbers), symprec=1e-3)
     assert ds.number == 194 and len(ds.rotations) == 24                               # spglib
     (flag,) = [f for f in analyze(run)["flags"] if f["code"] == "held-by-code"]
+    assert len(run) == 1 and flag["value"] == 8                  # the OUTCAR holds one ionic step
+    assert ("the one structure read has P6_3/mmc (194, 24 operations); with one frame nothing was "
+            "tested") in flag["message"]
+    two = read_run(path)                    # the same structure twice: a run that kept the group
+    from driftwatch.adapters.run import Frame, ReadContext, collect
+    fr = [Frame(cell=two.cells[0], positions=two.positions[0], numbers=two.numbers, pbc=two.pbc,
+                step=k) for k in (0, 1)]
+    ctx = ReadContext(str(path))
+    ctx.settings.update(run.code_settings)
+    (flag,) = [f for f in analyze(collect(fr, path=str(path), fmt=run.format, ctx=ctx))["flags"]
+               if f["code"] == "held-by-code"]
     assert ("the run kept P6_3/mmc (194, 24 operations), of which the code held 8: it could not "
             "have lowered the group below those, so 'kept' tests only the other 16") in flag["message"]
 
@@ -1733,6 +1744,7 @@ def test_castep_steps_that_ases_reader_leaves_out_are_said():
     assert len(run) == 1 and any(
         "ASE's CASTEP reader returned 1 structure of the 23 ionic steps the file lists" in w
         for w in run.warnings), run.warnings
+    assert run.steps.tolist() == [22]           # the last iteration's number, not the start's 0
     bfgs = read_run(CASTEP_SNB / "Si2-cellopt-aniso.castep.gz")
     assert len(bfgs) == 10 and not [w for w in bfgs.warnings if "ASE's CASTEP reader" in w]
 

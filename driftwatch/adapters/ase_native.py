@@ -368,13 +368,14 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
     if cut:
         ctx.warn(f"the last line is cut ({len(images)} steps read); job killed or still running")
     listed = len(steps[0].findall(text)) if steps is not None else 0
+    last_only = len(images) == 1 and listed > 1     # ASE gave the last step alone: say its number
     if len(images) < listed:
         n = len(images)
         ctx.warn(f"ASE's {steps[1]} reader returned {n} structure{'s' if n != 1 else ''} of the "
                  f"{listed} ionic steps the file lists ({steps[2]}): the steps between are not "
-                 f"seen")
+                 f"seen" + (f"; the one read is the last, step {listed - 1}" if last_only else ""))
     for i, atoms in enumerate(images):
-        yield frame_from_atoms(atoms, _step(atoms, i))
+        yield frame_from_atoms(atoms, listed - 1 if last_only else _step(atoms, i))
 
 
 def read_aims(path, ctx: ReadContext):
