@@ -146,6 +146,8 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
         if real in seen_dirs or real in skip:
             continue
         seen_dirs.add(real)
+        if os.path.isfile(os.path.join(folder, MARKER)):   # an earlier audit's output folder:
+            continue                                      # its runs.db and records are no runs
         try:
             with os.scandir(folder) as it:
                 entries = sorted((e for e in it if not e.name.startswith(".")), key=lambda e: e.name)

@@ -246,6 +246,8 @@ def _cmd_inspect(args) -> int:
     overrides = {"selection.all_frames": True} if args.all_frames else None
     cfg = _config.load(args.config, overrides)
     codes = _reject_codes(args, cfg)
+    if args.output:
+        records.check_target(args.output)
     rec = analyze(args.path, cfg, format=args.format)
     if args.output:
         records.write_json(rec, args.output)

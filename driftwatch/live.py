@@ -368,6 +368,8 @@ class SymmetryWatch:
         self.mode = mode
         self.stop_on = _codes(stop_on)
         self.output = None if output is None else Path(output)
+        if self.output is not None:
+            records.check_target(self.output)
         self.optimizer = optimizer
         self.lazy = bool(lazy)
         self._needs_newest = _needs_spectra(self.stop_on)
@@ -671,6 +673,8 @@ class _Follower:
         self.path, self.cfg, self.format = Path(path), cfg, format
         self.stop_codes, self.dry_run, self.say = stop_codes, dry_run, say
         self.output = None if output is None else Path(output)
+        if self.output is not None:
+            records.check_target(self.output)
         self.prefix, self.outdir = prefix, outdir
         self.newest = _needs_spectra(stop_codes)
         self.tracker: Tracker | None = None

@@ -172,6 +172,27 @@ def remove_stale_temporaries(folder) -> list[str]:
     return removed
 
 
+def check_target(path) -> None:
+    """Refuse a record's output file (``-o``) that exists and is not a driftwatch run record: a
+    run's own output, one of its inputs, a user's file. Nothing the user had is overwritten."""
+    import re
+    from .errors import OutputError
+    p = Path(path)
+    if p.is_dir():
+        raise OutputError(f"{p}: is a folder; give a file name for the record")
+    if not p.exists():
+        return
+    try:
+        with open(p, "rb") as fh:
+            head = fh.read(4096)
+    except OSError as exc:
+        raise OutputError(f"{p}: cannot read it to check what it is ({exc.strerror or exc})") \
+            from None
+    if not re.search(rb'"schema"\s*:\s*"driftwatch/run-', head):
+        raise OutputError(f"{p}: exists and is not a driftwatch run record; refusing to overwrite "
+                          f"it (remove it, or choose another file for the record)")
+
+
 def write_json(record: dict, path) -> Path:
     """Write a record as JSON, atomically."""
     return write_text_atomic(path, dumps(record) + "\n")

@@ -109,6 +109,22 @@ def _same(row, structure: dict | None, kvp: dict) -> bool:
         return False        # a backend without these columns: rewrite the row
 
 
+def _delete(db, ids) -> None:
+    """Delete rows inside the open transaction. ase.db's SQLite ``delete`` commits and runs VACUUM
+    on its own, so a failure after it would leave the database neither old nor new; its row
+    deletion itself (``_delete`` over every table) is used here, and VACUUM left out (SQLite reuses
+    the freed pages). Other back ends: their ``delete``."""
+    try:
+        from ase.db.sqlite import all_tables
+        tables = db._get_external_table_names() + all_tables[::-1]
+        delete_in = db._delete
+    except (ImportError, AttributeError):
+        db.delete(ids)
+        return
+    with db.managed_connection() as con:
+        delete_in(con.cursor(), ids, tables=tables)
+
+
 def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) -> list[str]:
     """Upsert rows ``(run_id, structure or None, key_value_pairs)`` and delete the rows of the run
     ids in ``remove`` (runs gone from the campaign), in one transaction.
@@ -142,7 +158,7 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) 
                 else:
                     have[rid] = row
             if drop:
-                db.delete(drop)
+                _delete(db, drop)
             for run_id, structure, kvp in rows:
                 try:
                     if run_id not in have:
@@ -152,7 +168,7 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) 
                     if _same(row, structure, kvp):     # a re-audit of unchanged runs writes nothing
                         continue
                     if structure is None and _natoms(row):   # ok before, failed now: no structure
-                        db.delete([row.id])            # (ase.db cannot empty a row in place)
+                        _delete(db, [row.id])          # (ase.db cannot empty a row in place)
                         db.write(_atoms(None), key_value_pairs=kvp)
                         continue
                     db.update(row.id, atoms=_atoms(structure) if structure else None,

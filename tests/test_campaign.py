@@ -558,3 +558,43 @@ def test_a_run_folder_keeps_its_id_while_a_rerun_has_emptied_its_output(tmp_path
     (camp / "run.log").write_text("")
     s = run_audit([camp], out)
     assert not s["failed"] and s["runs"] == 1
+
+
+def test_runs_db_update_is_one_transaction(tmp_path):
+    """Rows of gone runs are deleted inside the update's transaction: when a later write fails
+    (here a real SQLite trigger aborts one insert, as a full disk would), the database keeps its old
+    rows. ase.db's own delete() commits and VACUUMs at once, which left it neither old nor new."""
+    import sqlite3
+
+    import ase.db
+    from driftwatch.errors import OutputError
+    from driftwatch.store import write_rows
+    db = tmp_path / "runs.db"
+    cell = {"numbers": [14], "positions": [[0, 0, 0]], "cell": np.eye(3) * 3, "pbc": [1, 1, 1]}
+    write_rows(str(db), [("a", cell, {"verdict": "kept"}), ("b", cell, {"verdict": "kept"})])
+    con = sqlite3.connect(db)
+    con.execute("CREATE TRIGGER poison BEFORE INSERT ON systems "
+                "WHEN NEW.key_value_pairs LIKE '%poison%' "
+                "BEGIN SELECT RAISE(ABORT, 'write refused'); END")
+    con.commit()
+    con.close()
+    with pytest.raises(OutputError, match="cannot write the results database"):
+        write_rows(str(db), [("a", cell, {"verdict": "kept"}),
+                             ("c", cell, {"verdict": "poison"})], remove=["b"])
+    with ase.db.connect(db) as con:
+        assert sorted(r.run_id for r in con.select()) == ["a", "b"]          # the old rows
+    write_rows(str(db), [("a", cell, {"verdict": "kept"})], remove=["b"])
+    with ase.db.connect(db) as con:
+        assert [r.run_id for r in con.select()] == ["a"]
+
+
+def test_an_earlier_audit_folder_inside_the_campaign_is_no_run(tmp_path):
+    """An audit output kept inside the campaign tree (driftwatch-audit-old/, with its runs.db of
+    many structures) is not audited as a run: its marker file says what it is."""
+    root = tmp_path / "camp"
+    root.mkdir()
+    shutil.copy(REPO / "example_runs" / "L09_emt_fixed_square.traj", root / "L09.traj")
+    first = audit([root], root / "driftwatch-audit-old", report=False, progress="off", workers=1)
+    assert first["runs"] == 1
+    again = audit([root], tmp_path / "new", report=False, progress="off", workers=1)
+    assert again["runs"] == 1 and again["failed"] == []

@@ -212,6 +212,9 @@ def _plain_positions(header, rows, cell, alat):
     of the test run: ``tests/test_adapters.py`` compares with ASE bit for bit). Returns None for
     anything else (expressions, ``crystal_sg``, missing alat, malformed rows) so that ASE reads it.
     """
+    starred = next((r for r in rows if "**" in r), None)
+    if starred is not None:          # Fortran's overflow of a field: no number to read
+        raise ValueError(f"ATOMIC_POSITIONS row {starred.strip()[:80]!r} holds no number")
     low = header.lower()
     if "crystal_sg" in low:
         return None

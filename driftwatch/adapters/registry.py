@@ -684,7 +684,11 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
         if n == 0:
             raise InputError(source, f"cannot be read as {what}: "
                                      f"{type(exc).__name__}: {why}") from exc
-        ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})")
+        stars = " (a field of '*': the code printed a number too wide for its format)" \
+            if "**" in why else ""
+        ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})"
+                 f"{stars}: the steps after it are not seen")
+        ctx.unfinished = f"damaged: unreadable after step {last}{stars}"
 
 
 def _keys_that_vary(path, structure: dict | None) -> str:
