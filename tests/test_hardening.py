@@ -869,3 +869,61 @@ def test_readme_states_the_limits_the_code_has():
                  f"`symprec` up to {dwconfig.RANGES['symmetry.symprec_max'][1]:g} Å",
                  "DRIFTWATCH_MAX_DECOMPRESSED"):
         assert fact in text, fact
+
+
+def test_record_output_never_replaces_a_file_that_is_not_a_record(tmp_path):
+    """`inspect RUN -o FILE` (and follow, and the observer) refuse an existing file that is not a
+    driftwatch record: the run's own pw.x output, its input, a user's notes. A record is replaced."""
+    run = tmp_path / "L01"
+    shutil.copytree(Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax", run)
+    before = (run / "pw.out").read_bytes()
+    for target in (run / "pw.out", run / "pw.in"):
+        p = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", run, "-o", target],
+                           capture_output=True, text=True)
+        assert p.returncode == 1 and p.stdout == ""
+        assert p.stderr.strip() == (f"driftwatch: error: {target}: exists and is not a driftwatch "
+                                    f"run record; refusing to overwrite it (remove it, or choose "
+                                    f"another file for the record)")
+    assert (run / "pw.out").read_bytes() == before
+    rec = tmp_path / "rec.json"
+    for _ in range(2):                                   # a record is refreshed in place
+        p = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", run, "-o", rec],
+                           capture_output=True, text=True)
+        assert p.returncode == 0, p.stderr
+    from driftwatch.errors import OutputError
+    from driftwatch.live import SymmetryWatch
+    notes = tmp_path / "notes.txt"
+    notes.write_text("chapter 1")
+    with pytest.raises(OutputError, match="is not a driftwatch run record"):
+        SymmetryWatch(Atoms("Si2", cell=np.eye(3) * 5, positions=[[0, 0, 0], [1, 1, 1]],
+                            pbc=True), output=notes)
+    assert notes.read_text() == "chapter 1"
+
+
+@pytest.mark.parametrize("fmt", ["pw.x", "OUTCAR"])
+def test_a_field_of_stars_mid_run_marks_the_run_damaged(tmp_path, fmt):
+    """Fortran prints '*****' for a number too wide for its field: a genuine output with one such
+    coordinate mid-run gives the steps before it, marked unfinished ('damaged'), with a warning
+    naming the field; it passed as a finished relaxation (the bundled L03 read 'kept' instead of
+    'gained'). pw.x: the bundled L03; OUTCAR: VASP 6.2.0's (tests/data/public/vasp620_nelm)."""
+    from driftwatch.adapters import read_run
+    if fmt == "pw.x":
+        lines = (Path(__file__).parents[1] / "example_runs" / "L03_qe_vcrelax" / "pw.out"
+                 ).read_text().splitlines(keepends=True)
+        cards = [i for i, ln in enumerate(lines) if ln.startswith("ATOMIC_POSITIONS")]
+        k = cards[len(cards) // 2] + 1
+        f = lines[k].split()
+        lines[k] = f"{f[0]} ********** {' '.join(f[2:])}\n"
+        path = tmp_path / "pw.out"
+    else:
+        lines = gzip.open(Path(__file__).parent / "data" / "public" / "vasp620_nelm" /
+                          "OUTCAR.gz", "rt").read().splitlines(keepends=True)
+        heads = [i for i, ln in enumerate(lines) if ln.lstrip().startswith("POSITION")]
+        k = heads[2] + 2
+        lines[k] = "     ************ " + lines[k][18:]
+        path = tmp_path / "OUTCAR"
+    path.write_text("".join(lines))
+    run = read_run(path)
+    assert run.unfinished.startswith("damaged: unreadable after step")
+    assert "a field of '*'" in run.unfinished
+    assert any("the steps after it are not seen" in w for w in run.warnings)
