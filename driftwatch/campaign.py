@@ -932,7 +932,8 @@ def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[s
     for k in skipped:
         rows.append([k["run"], "-", "skipped", "-", "-", "-", f"{k['reason']} (to include: "
                                                                f"{k['include']})"])
-    return sorted(rows, key=lambda x: x[0])
+    # one line per run, names spelled as in campaign.csv (a line break in a folder name is \n)
+    return sorted(([records.shown(c) for c in row] for row in rows), key=lambda x: x[0])
 
 
 def _runs(n: int) -> str:

@@ -340,7 +340,11 @@ def _cmd_follow(args) -> int:
 
 def _cmd_report(args) -> int:
     from .report import build
-    index = build(args.records, args.output, overwrite=args.overwrite)
+    bad: list = []
+    index = build(args.records, args.output, overwrite=args.overwrite, unusable=bad)
+    for src, why in bad:
+        print(_shown(f"driftwatch: warning: {src}: not used ({' '.join(str(why).split())})"),
+              file=sys.stderr)
     if args.json:
         _print_json({"index": str(index)})
     else:

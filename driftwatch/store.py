@@ -57,8 +57,36 @@ def check_lock(name: str) -> None:
                           f"running, then re-run (finished runs come from the cache)")
 
 
+def _foreign_sqlite(name: str) -> str | None:
+    """The tables of an existing SQLite file that is not an ase.db (another application's
+    database, which ase.db would add its tables to), else None."""
+    import sqlite3
+    p = Path(name)
+    if name.startswith(_URL_PREFIXES) or not p.is_file() or p.stat().st_size == 0:
+        return None
+    with open(p, "rb") as fh:
+        if fh.read(16) != b"SQLite format 3\x00":
+            return None                      # not SQLite at all: ase.db says so itself
+    try:
+        con = sqlite3.connect(f"file:{p}?mode=ro", uri=True)
+        try:
+            tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE "
+                                                "type = 'table'")}
+        finally:
+            con.close()
+    except sqlite3.Error:
+        return None
+    if not tables or {"systems", "information"} <= tables:
+        return None
+    return ", ".join(sorted(tables)[:8])
+
+
 def _connect(name: str):
     import ase.db
+    foreign = _foreign_sqlite(name)
+    if foreign:
+        raise OutputError(f"{name}: a SQLite database that is not an ase.db (tables: {foreign}); "
+                          f"choose another file for the results database (--db)")
     try:
         db = ase.db.connect(name, use_lock_file=lock_path(name) is not None)
     except (ValueError, ImportError, OSError) as exc:

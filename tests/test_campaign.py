@@ -598,3 +598,22 @@ def test_an_earlier_audit_folder_inside_the_campaign_is_no_run(tmp_path):
     assert first["runs"] == 1
     again = audit([root], tmp_path / "new", report=False, progress="off", workers=1)
     assert again["runs"] == 1 and again["failed"] == []
+
+
+def test_db_of_another_application_is_refused_unchanged(tmp_path):
+    """--db naming another application's SQLite file: refused in one line, its bytes unchanged
+    (ase.db would add its seven tables to it)."""
+    import sqlite3
+    from driftwatch.errors import OutputError
+    from driftwatch.store import write_rows
+    lab = tmp_path / "lab.db"
+    con = sqlite3.connect(lab)
+    con.execute("CREATE TABLE results (sample TEXT, value REAL)")
+    con.execute("INSERT INTO results VALUES ('x', 1.0)")
+    con.commit()
+    con.close()
+    before = lab.read_bytes()
+    with pytest.raises(OutputError, match=r"a SQLite database that is not an ase.db \(tables: "
+                                          r"results\)"):
+        write_rows(str(lab), [("a", None, {"verdict": "failed"})])
+    assert lab.read_bytes() == before

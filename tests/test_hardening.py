@@ -927,3 +927,30 @@ def test_a_field_of_stars_mid_run_marks_the_run_damaged(tmp_path, fmt):
     assert run.unfinished.startswith("damaged: unreadable after step")
     assert "a field of '*'" in run.unfinished
     assert any("the steps after it are not seen" in w for w in run.warnings)
+
+
+def test_report_says_which_inputs_it_could_not_use(tmp_path):
+    """`driftwatch report` names each unusable input on stderr (they are on the index too)."""
+    recs = tmp_path / "recs"
+    recs.mkdir()
+    (recs / "cut.json").write_text('{"schema": "driftwatch/run-2", "run": ')
+    (recs / "notes.json").write_text('{"note": "a user file"}')
+    p = subprocess.run([sys.executable, "-m", "driftwatch", "report", recs, "-o", tmp_path / "site"],
+                       capture_output=True, text=True)
+    assert p.returncode == 0, p.stderr
+    said = [ln for ln in p.stderr.splitlines() if ln.startswith("driftwatch: warning:")]
+    assert len(said) == 2 and all(": not used (" in ln for ln in said)
+    assert any("cut.json" in ln for ln in said) and any("notes.json" in ln for ln in said)
+
+
+def test_a_line_break_in_a_run_name_is_one_table_row(tmp_path):
+    """A folder name with a line break: the summary table spells it as campaign.csv does (\\n), one
+    line per run, so grep and awk over the table still see one row."""
+    root = tmp_path / "camp"
+    (root / "new\nline").mkdir(parents=True)
+    shutil.copy(RUNS / "L09_emt_fixed_square.traj", root / "new\nline" / "relax.traj")
+    p = subprocess.run([sys.executable, "-m", "driftwatch", "audit", root, "-o", tmp_path / "out",
+                        "--no-report", "--progress", "off"], capture_output=True, text=True)
+    assert p.returncode == 0, p.stderr
+    rows = [ln for ln in p.stdout.splitlines() if ln.startswith("camp/")]
+    assert len(rows) == 1 and rows[0].startswith("camp/new\\nline/relax.traj ")

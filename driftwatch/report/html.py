@@ -1036,7 +1036,7 @@ def _inside(root: Path, path: Path) -> Path:
 
 
 def build(records, output, *, overwrite=False, campaign=None, workers=None,
-          progress="auto") -> Path:
+          progress="auto", unusable: list | None = None) -> Path:
     """Build the static HTML report; returns the path of ``OUTPUT/index.html``.
 
     Args:
@@ -1055,6 +1055,8 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
             to 4; never more than one per 3 pages to build).
         progress: "auto" (on stderr when it is a terminal; ``$DRIFTWATCH_PROGRESS`` overrides), "on"
             or True, "off" or False.
+        unusable: a list to receive ``(input, why)`` for every input that is not a usable record
+            (they are listed on the index too).
     """
     if isinstance(records, (str, os.PathLike, dict)):
         records = [records]
@@ -1167,6 +1169,8 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
     failed = [f for f in (campaign or {}).get("failed") or [] if isinstance(f, dict)]
     runs.sort(key=lambda r: r[0].lower())  # completion order varies with workers; pages do not
     bad.sort()
+    if unusable is not None:
+        unusable.extend(bad)
     index = out / "index.html"
     _write_file(out, index, _index_page(runs, bad, failed, campaign))
     _remove_stale(out, {f"{name}.html" for name, *_ in runs})
