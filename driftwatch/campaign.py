@@ -539,17 +539,20 @@ def _end_pool(ex, *, wait: bool) -> None:
 
 
 def _local_pool(todo, cfg, workers, note: str = ""):
-    """Process pool; after a worker death, the unfinished runs go one at a time in a fresh pool.
-    ``note`` is printed on stderr if SIGTERM ends the audit while the pool runs."""
+    """Process pool. After a worker death (a crash in a native library, the out-of-memory killer)
+    the unfinished runs are analysed again in a fresh pool, and after a second death one at a time
+    (so only the run that kills its worker fails); each step is said on stderr. ``note`` is printed
+    on stderr if SIGTERM ends the audit while the pool runs."""
     from concurrent.futures.process import BrokenProcessPool
-    size = _chunk_size(len(todo), workers)
     finished = set()
     previous = _catch_sigterm(note)
-    try:
-        ex = _new_pool(workers, cfg)
+
+    def pool(items, width):                # yields results; True at the end if a worker died
+        ex = _new_pool(width, cfg)
         broken = False
         try:
-            for res in _drain(ex, _chunks(todo, size), cfg, pass_cfg=False):
+            for res in _drain(ex, _chunks(items, _chunk_size(len(items), width)), cfg,
+                              pass_cfg=False):
                 if res.get("broken_pool"):
                     broken = True
                     continue
@@ -560,9 +563,24 @@ def _local_pool(todo, cfg, workers, note: str = ""):
             raise
         finally:
             _end_pool(ex, wait=not broken)
-        if not broken:
-            return
-        for rid, path in [t for t in todo if t[0] not in finished]:
+        yield broken
+
+    try:
+        for attempt, width in enumerate((workers, workers)):
+            left = [t for t in todo if t[0] not in finished]
+            if attempt:
+                print(f"driftwatch: a worker process died (a crash in a native library or out of "
+                      f"memory); analysing the {len(left)} unfinished runs again", file=sys.stderr)
+            for res in pool(left, width):
+                if res is True:
+                    break
+                if res is False:
+                    return
+                yield res
+        left = [t for t in todo if t[0] not in finished]
+        print(f"driftwatch: a worker process died again; the {len(left)} unfinished runs go one at "
+              f"a time, so only a run that kills its worker fails", file=sys.stderr)
+        for rid, path in left:
             ex = _new_pool(1, cfg)
             try:
                 yield ex.submit(_analyse_chunk, [(rid, path)]).result()[0]

@@ -21,7 +21,7 @@ EXIT_PIPE = 141
 reports for a tool stopped by SIGPIPE; nothing is printed."""
 
 _EPILOG = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
-3 a flag named in --reject-on was raised, 4 (audit) some runs failed,
+3 a flag named in --reject-on was raised (also when runs failed), 4 (audit) some runs failed,
 141 standard output closed early (| head): the rest is not printed.
 Verdicts: gained, lost, changed or kept symmetry (lattice and spglib group).
 Flags are diagnostics to check, not proofs of stability or of a phase."""
@@ -135,11 +135,25 @@ def _parser() -> argparse.ArgumentParser:
     return top
 
 
+class _UsageError(Exception):
+    """A command-line value argparse could not check (exit 2, as argparse's own errors)."""
+
+
+def _option_codes(text: str, option: str) -> list[str]:
+    from .errors import ConfigError
+    from .rules import check_codes
+    try:
+        return check_codes(text.split(","), option)
+    except ConfigError as exc:
+        raise _UsageError(str(exc)) from None
+
+
 def _reject_codes(args, cfg) -> list[str]:
     from .rules import check_codes
     if getattr(args, "reject_on", None):
-        return check_codes(args.reject_on.split(","), "--reject-on")
-    return check_codes(cfg.get("reject_on", []), "reject_on (config)")
+        return _option_codes(args.reject_on, "--reject-on")
+    where = f"reject_on ({cfg.get('_reject_on_from') or 'config'})"
+    return check_codes(cfg.get("reject_on", []), where)
 
 
 def _shown(text) -> str:
@@ -328,8 +342,7 @@ def _cmd_follow(args) -> int:
     from .live import follow
     cfg = _config.load(args.config)
     codes = _reject_codes(args, cfg)
-    from .rules import check_codes
-    stop = check_codes(args.stop_on.split(","), "--stop-on") if args.stop_on else []
+    stop = _option_codes(args.stop_on, "--stop-on") if args.stop_on else []
     rec = follow(args.path, config=cfg, format=args.format, stop_on=stop, dry_run=args.dry_run,
                  idle=args.idle, poll=args.poll, output=args.output, quiet=args.json)
     if args.json:
@@ -377,7 +390,7 @@ def main(argv=None) -> int:
         print(f"driftwatch {__version__}")
         return EXIT_OK
     if not args.command:
-        parser.print_help()
+        parser.print_help(sys.stderr)
         return EXIT_USAGE
     try:
         code = _COMMANDS[args.command](args)
@@ -389,6 +402,9 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("driftwatch: interrupted", file=sys.stderr)
         return 130
+    except _UsageError as exc:
+        print(_shown(f"driftwatch: error: {exc}"), file=sys.stderr)
+        return EXIT_USAGE
     except Exception as exc:  # one line for the user; the traceback only with --debug
         if args.debug:
             raise

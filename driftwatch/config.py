@@ -37,6 +37,9 @@ _ANGLE_UNITS = {"deg": 1.0, "degree": 1.0, "degrees": 1.0, "°": 1.0, "rad": 57.
 _QUANTITY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*([^\s\d].*?)\s*$")
 
 # Kind of each leaf: "length" (Å), "angle" (deg), "fraction", "int", "bool", "str", "choice", "list".
+SCHEMA = "driftwatch/config-1"
+"""The ``schema`` every config states (presets and user files inheriting from them)."""
+
 _KINDS = {
     "schema": "str",
     "geometry.vacuum_gap": "length",
@@ -303,6 +306,11 @@ def _merge(base: dict, over: dict, origin: str, prefix: str = "", origins=None) 
         full = f"{prefix}{key}"
         if not isinstance(key, str):
             raise ConfigError(f"{origin}: key {_short(key)} is not text")
+        section = any(k.startswith(full + ".") for k in _KINDS)
+        if section and not isinstance(value, dict):
+            got = "empty" if value is None else f"a {type(value).__name__}"
+            raise ConfigError(f"{origin}: {_short(full)} is a section (a mapping of keys), not "
+                              f"{got}")
         if isinstance(value, dict):
             if full in _RENAMED:
                 raise ConfigError(f"{origin}: {full!r} was renamed: use {_RENAMED[full]!r}")
@@ -359,6 +367,7 @@ def load(source=None, overrides: dict | None = None) -> dict:
         origins[dotted] = "override"
     out: dict = {}
     raw.pop("_effective", None)
+    raw.pop("_reject_on_from", None)      # a loaded config given again
     for dotted, value in _flatten(raw):
         try:
             _set(out, dotted, _convert(dotted, _KINDS[dotted], value))
@@ -368,7 +377,17 @@ def load(source=None, overrides: dict | None = None) -> dict:
     missing = [k for k in _KINDS if k not in dict(_flatten(out))]
     if missing:
         raise ConfigError(f"config lacks {', '.join(missing)}")
-    _check_consistency(out)
+    try:
+        _check_consistency(out)
+    except ConfigError as exc:             # name the file that set the first key the check names
+        named = [k for k in _KINDS if k in str(exc) and origins.get(k) not in (None, "override")]
+        where = origins.get(named[0]) if named else None
+        raise (ConfigError(f"{where}: {exc}") if where and not str(where).isidentifier()
+               else exc) from None
+    if out.get("schema") != SCHEMA:
+        raise ConfigError(f"{origins.get('schema', 'config')}: schema {out.get('schema')!r} is "
+                          f"not {SCHEMA!r} (a config of another tool or version)")
+    out["_reject_on_from"] = origins.get("reject_on", "config")
     out["_effective"] = True
     return out
 
@@ -409,4 +428,5 @@ def fingerprint(cfg: dict) -> str:
     """Stable hash of an effective (converted) config, for cache keys."""
     import hashlib
     import json
-    return hashlib.sha256(json.dumps(cfg, sort_keys=True).encode()).hexdigest()[:16]
+    kept = {k: v for k, v in cfg.items() if k != "_reject_on_from"}    # where, not what
+    return hashlib.sha256(json.dumps(kept, sort_keys=True).encode()).hexdigest()[:16]

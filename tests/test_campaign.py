@@ -471,7 +471,10 @@ def _boom(path):
     yield              # pragma: no cover
 
 
-def test_a_worker_process_that_dies_fails_only_its_run(tmp_path, monkeypatch):
+def test_a_worker_process_that_dies_fails_only_its_run(tmp_path, monkeypatch, capsys):
+    """A run whose reader kills its worker process (as a native crash or the out-of-memory killer
+    does): the others are analysed again in a fresh pool, then one at a time, and stderr says so;
+    only that run fails."""
     import multiprocessing as mp
 
     from driftwatch import campaign
@@ -488,6 +491,9 @@ def test_a_worker_process_that_dies_fails_only_its_run(tmp_path, monkeypatch):
     assert set(failed) == {"camp/bad/empty.traj", "camp/bad/garbage.traj", "camp/more/boom.crash"}
     assert "worker process died" in failed["camp/more/boom.crash"]
     assert len(record_bytes(tmp_path / "out")) == 5 and s["runs"] == 8
+    err = capsys.readouterr().err
+    assert "driftwatch: a worker process died (a crash in a native library or out of memory); " \
+           "analysing the" in err and "go one at a time" in err
 
 
 def test_summary_states_the_campaign_symprec_when_there_is_no_single_value(tmp_path):

@@ -71,10 +71,12 @@ def test_errors_are_one_line_and_name_the_file(tmp_path):
     assert len(lines) == 1 and str(empty) in lines[0] and "Traceback" not in r.stderr
     r = dw("inspect", tmp_path / "missing.out")
     assert r.returncode == 1 and "missing.out" in r.stderr and len(r.stderr.strip().splitlines()) == 1
-    r = dw("inspect", QE / "layer_oblique_to_hex", "--reject-on", "colapsed")
-    assert r.returncode == 1 and "unknown flag code" in r.stderr
+    r = dw("inspect", QE / "layer_oblique_to_hex", "--reject-on", "colapsed")   # a usage error
+    assert r.returncode == 2 and "unknown flag code" in r.stderr
     r = dw("inspect", QE / "layer_oblique_to_hex", "--reject-on", "snapped")
-    assert r.returncode == 1 and "snapped is now lattice-gained" in r.stderr
+    assert r.returncode == 2 and "snapped is now lattice-gained" in r.stderr
+    r = dw()                                  # no command: the help, on stderr (a usage error)
+    assert r.returncode == 2 and r.stdout == "" and "usage: driftwatch" in r.stderr
     bad = tmp_path / "bad.yaml"
     bad.write_text("rules:\n  lattice:\n    within: 0.001\n")
     r = dw("inspect", QE / "layer_oblique_to_hex", "-c", bad)

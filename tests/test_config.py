@@ -94,3 +94,26 @@ def test_coerce_and_fingerprint():
     assert config.coerce(cfg) is cfg
     assert config.fingerprint(cfg) == config.fingerprint(config.load("default"))
     assert config.fingerprint(cfg) != config.fingerprint(config.load("bulk"))
+
+
+def test_config_errors_name_the_file_and_the_problem(tmp_path):
+    """A section given as a list or left empty, a schema of another tool, crossed limits and an
+    unknown reject_on code: one line naming the file."""
+    from driftwatch import config
+    from driftwatch.errors import ConfigError
+    cases = {"rules: [1, 2]\n": "'rules' is a section (a mapping of keys), not a list",
+             "symmetry:\n": "'symmetry' is a section (a mapping of keys), not empty",
+             "schema: something-else\n": "schema 'something-else' is not 'driftwatch/config-1'",
+             "symmetry: {symprec_min: 0.5 Å, symprec_max: 0.1 Å}\n":
+                 "symmetry.symprec_min must be > 0 and below symmetry.symprec_max"}
+    for text, said in cases.items():
+        f = tmp_path / "c.yaml"
+        f.write_text(text)
+        with pytest.raises(ConfigError) as err:
+            config.load(str(f))
+        assert str(err.value).startswith(f"{f}: ") and said in str(err.value), str(err.value)
+    f.write_text("reject_on: [lattice-gaind]\n")
+    cfg = config.load(str(f))
+    assert cfg["_reject_on_from"] == str(f)
+    assert config.fingerprint(cfg) == config.fingerprint(config.load({"reject_on":
+                                                                      ["lattice-gaind"]}))
