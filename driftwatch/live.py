@@ -845,10 +845,10 @@ class _Follower:
         ``.EXIT`` file it acts on; VASP does not always delete STOPCAR), so a restart in this folder
         does not stop at once. A file whose content is not ours is left alone."""
         info = self.stop_info
-        p = Path(info["path"])
         info["left_by_code"] = False
-        if info["action"] != "wrote" or not p.is_file():
+        if info["action"] != "wrote" or not Path(info["path"]).is_file():
             return
+        p = Path(info["path"])
         try:
             if p.read_text(encoding="utf-8") == info["text"]:
                 p.unlink()
@@ -898,8 +898,13 @@ def stop_reason(tracker: Tracker, flag: dict) -> str:
 def _soft_stop(tracker: Tracker, flag: dict, dry_run, prefix, outdir, say) -> dict:
     code = code_of_format(tracker.format)
     reason = stop_reason(tracker, flag)
-    info = request_stop(tracker.run_dir, code, reason=reason, dry_run=dry_run, prefix=prefix,
-                        outdir=outdir)
+    try:
+        info = request_stop(tracker.run_dir, code, reason=reason, dry_run=dry_run, prefix=prefix,
+                            outdir=outdir)
+    except OutputError as exc:          # a read-only run folder, a full disk: keep watching
+        say(f"driftwatch: cannot request a soft stop: {exc}; following on (the job keeps "
+            f"running: stop it yourself)")
+        return {"action": "failed", "error": str(exc), "reason": reason, "flag": dict(flag)}
     info["flag"] = dict(flag)
     verb = {"wrote": "soft stop requested: wrote", "dry-run": "dry run: would write",
             "exists": "soft stop already requested:"}[info["action"]]

@@ -707,3 +707,25 @@ def test_a_live_approach_to_a_type_counts_once_it_held():
         return None
     one, four = first_seen(1), first_seen(4)
     assert one is not None and four == (one[0] + 3, one[1])
+
+
+def test_follow_goes_on_when_the_stop_file_cannot_be_written(tmp_path):
+    """A stop asked where driftwatch will not write (the pw.x input's outdir lies outside the run
+    folder): follow says so in one line and keeps watching the job to its end, instead of ending
+    with exit 1 and leaving the job unwatched. The bundled L01 (real pw.x) cut before its end."""
+    run = tmp_path / "run"
+    run.mkdir()
+    src = Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax"
+    (run / "pw.in").write_text((src / "pw.in").read_text().replace("'./scratch'",
+                                                                     "'/elsewhere/scratch'"))
+    text = (src / "pw.out").read_text()
+    cut = [i for i in range(len(text)) if text.startswith("ATOMIC_POSITIONS", i)][-2]
+    (run / "pw.out").write_text(text[:cut])
+    buf = io.StringIO()
+    rec = follow(run / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-gained"],
+                 config={"rules": {"persistence": {"steps": 3}}})
+    said = buf.getvalue()
+    assert "driftwatch: cannot request a soft stop: " in said and "outside the run folder" in said
+    assert "following on (the job keeps running: stop it yourself)" in said
+    assert rec["live"]["ended"].startswith("idle") and rec["live"]["stop"]["action"] == "failed"
+    assert not list(run.rglob("*.EXIT"))
