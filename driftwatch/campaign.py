@@ -1151,22 +1151,27 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                        and not res.results[r.id].get("skipped")]
     current = {res.names[r["run"]] for r in ok}
     _check_links(out, db_name)                # again: a link planted while the runs were analysed
-    stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
-    db_problems = _write_tables(out, db_name, ok, failed, skipped,
-                                gone=old_marker.get("runs", []))
-    summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
-                       db_problems, stale, skipped)
-    every = [x["run"] for x in (*ok, *failed, *skipped)]
-    summary["since_last"] = _since_last(old_marker, every, {
-        rid for rid, r in res.results.items() if not r.get("cached")})
-    summary["elapsed_s"] = time.perf_counter() - t0
-    records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-    _write_marker(out, roots_abs, sorted(current), every)
-    if report:
-        summary["report"] = str(_build_report(out, summary, workers=workers or os.cpu_count() or 1,
-                                              progress=progress_on(progress)))
+    try:
+        db_problems = _write_tables(out, db_name, ok, failed, skipped,
+                                    gone=old_marker.get("runs", []))
+        stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
+        summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
+                           db_problems, stale, skipped)
+        every = [x["run"] for x in (*ok, *failed, *skipped)]
+        summary["since_last"] = _since_last(old_marker, every, {
+            rid for rid, r in res.results.items() if not r.get("cached")})
         summary["elapsed_s"] = time.perf_counter() - t0
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
+        _write_marker(out, roots_abs, sorted(current), every)
+        if report:
+            summary["report"] = str(_build_report(out, summary,
+                                                  workers=workers or os.cpu_count() or 1,
+                                                  progress=progress_on(progress)))
+            summary["elapsed_s"] = time.perf_counter() - t0
+            records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
+    except OutputError as exc:      # every file stays whole, but some are of the last audit
+        raise OutputError(f"{exc} (the audit's outputs in {out} are not all updated; re-run to "
+                          f"complete them: finished runs come from the cache)") from exc
     if not quiet:          # the answer on stdout, as a Unix tool gives it (pipes, redirects)
         _print_table(summary, _summary_rows(ok, failed, skipped), _Shown(sys.stdout))
     if failed and quiet is not True:
@@ -1265,13 +1270,16 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
     rows += [records.csv_row({"error": f"skipped: {k['reason']}; to include: {k['include']}",
                               "source": k["source"]}, k["run"]) | {"verdict": "skipped"}
              for k in skipped]
-    records.write_text_atomic(out / "campaign.csv",
-                              _csv_text(sorted(rows, key=lambda row: row["run"])))
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
     db_rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
                                   "error": f["error"][:300]}) for f in failed]
-    return write_rows(db_name, sorted(db_rows, key=lambda x: x[0]),
-                      remove=sorted(set(gone) - {x[0] for x in db_rows}))
+    # the database first: the output most likely to fail (locked, read-only), so that a failure
+    # leaves the tables as they were
+    problems = write_rows(db_name, sorted(db_rows, key=lambda x: x[0]),
+                          remove=sorted(set(gone) - {x[0] for x in db_rows}))
+    records.write_text_atomic(out / "campaign.csv",
+                              _csv_text(sorted(rows, key=lambda row: row["run"])))
+    return problems
 
 
 def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_name, db_problems,

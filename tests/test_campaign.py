@@ -623,3 +623,27 @@ def test_db_of_another_application_is_refused_unchanged(tmp_path):
                                           r"results\)"):
         write_rows(str(lab), [("a", None, {"verdict": "failed"})])
     assert lab.read_bytes() == before
+
+
+def test_a_failed_database_write_leaves_the_tables_of_the_last_audit(tmp_path):
+    """runs.db is written before campaign.csv, campaign.json and the stale records: when it fails
+    (a real SQLite trigger refuses the new run's row, as a locked or full disk would), those stay
+    the last audit's, and the one-line error says the outputs are not all updated."""
+    import sqlite3
+    from driftwatch.errors import OutputError
+    root = tmp_path / "camp"
+    root.mkdir()
+    shutil.copy(REPO / "example_runs" / "L09_emt_fixed_square.traj", root / "a.traj")
+    out = tmp_path / "out"
+    audit([root], out, report=False, progress="off", workers=1)
+    before = {n: (out / n).read_bytes() for n in ("campaign.csv", "campaign.json")}
+    con = sqlite3.connect(out / "runs.db")
+    con.execute("CREATE TRIGGER refuse BEFORE INSERT ON systems BEGIN "
+                "SELECT RAISE(ABORT, 'write refused'); END")
+    con.commit()
+    con.close()
+    shutil.copy(REPO / "example_runs" / "L06_emt_bfgs.traj", root / "b.traj")
+    with pytest.raises(OutputError, match=r"cannot write the results database .*the audit's "
+                                          r"outputs in .* are not all updated; re-run"):
+        audit([root], out, report=False, progress="off", workers=1)
+    assert {n: (out / n).read_bytes() for n in before} == before
