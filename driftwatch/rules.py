@@ -1128,17 +1128,21 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
         return _left_out_said(out)
     s = math.sqrt(grid[a] * grid[b])
     ok = safe(s)
-    out.update(recommended_symprec=s, safe_runs=len(ok),
-               unsafe_run_ids=[rid for rid, *_ in per_run if rid not in ok][:50],
+    unsafe = [rid for rid, *_ in per_run if rid not in ok]
+    others = "" if not unsafe else (
+        f", above all of the {len(unsafe)} run{'s' if len(unsafe) > 1 else ''} that "
+        f"do{'' if len(unsafe) > 1 else 'es'} not: " + ", ".join(unsafe[:3])
+        + (f" and {len(unsafe) - 3} more (tolerance.unsafe_run_ids in campaign.json)"
+           if len(unsafe) > 3 else ""))
+    out.update(recommended_symprec=s, safe_runs=len(ok), unsafe_run_ids=unsafe[:50],
                reason=f"{len(ok)} of {len(per_run)} runs keep the spglib verdict on the final "
                       f"structure that their own advice recommends within a factor "
                       f"{SAFE_MARGIN:g} either side of {_g(s)} Å; this is the centre of the widest "
                       f"symprec range ({_g(grid[a])}-{_g(grid[b])} Å, searched {_g(window[0])}-"
-                      f"{_g(window[1])} Å) where the most runs are safe"
+                      f"{_g(window[1])} Å) where the most runs keep their verdict"
                       + ("" if a else "; it starts at the bottom of the searched range, where "
                          "spglib sees the smallest deviations from symmetry")
-                      + ". A starting point for your own check"
-                      + ("" if len(ok) == len(per_run) else ", above all of the other runs"))
+                      + ". A starting point for your own check" + others)
     return _left_out_said(out)
 
 
