@@ -287,8 +287,10 @@ def _cmd_tolerance(args) -> int:
     geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
     spec = symmetry_entry(run, i, geo, cfg)
     spec.pop("calls", None)
+    kinds = set(run.symmetry_types.tolist())
     adv = advice(spec, min_plateau=cfg["tolerance"]["min_plateau"],
-                 precision=getattr(run, "position_precision", None))
+                 precision=getattr(run, "position_precision", None),
+                 inversion_by_content=run.natoms == 1 or (run.natoms == 2 and len(kinds) == 1))
     out = {"source": run.source, "frame": i, "dimension": geo.dimension, "spectrum": spec,
            "advice": adv}
     if args.json:

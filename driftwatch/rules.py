@@ -763,7 +763,7 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
     types, within = _types(dim), r["lattice"]["within"]
     precision = record["run"].get("position_precision")
     tol = advice(frames[-1].get("symmetry"), min_plateau=cfg["tolerance"]["min_plateau"],
-                 precision=precision)
+                 precision=precision, inversion_by_content=_inversion_by_content(record["run"]))
     final = _state(frames[-1], types, within, dim)
     summary = {
         "verdict": {"direction": direction, "text": _text(direction, lv, sv, frames), "lattice": lv,
@@ -933,7 +933,18 @@ def shown_breakpoints(breakpoints) -> list[dict]:
     return out
 
 
-def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | None = None) -> dict:
+def _inversion_by_content(run: dict) -> bool:
+    """True when the cell's content alone gives it inversion (P-1, layer group p-1): one atom
+    (inversion through it) or two atoms of one species (through their midpoint)."""
+    import re
+    n = run.get("n_atoms")
+    species = set(run.get("species") or ()) or set(re.findall(r"[A-Z][a-z]?",
+                                                              str(run.get("formula") or "")))
+    return n == 1 or (n == 2 and len(species) == 1)
+
+
+def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | None = None,
+           inversion_by_content: bool = False) -> dict:
     """Tolerance advice from one spectrum (Å): plateaus of one group, and the symprec to use.
 
     The chosen plateau is the widest (in log symprec; of plateaus as wide to within the squared
@@ -945,6 +956,8 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
     Grid points below twice the file's printed ``precision`` (Å; half a unit of the last printed
     digit of a position) are below what the file can resolve: they are marked and never suggested.
     One verdict over the whole grid gives no suggestion (any value in the grid gives that verdict).
+    ``inversion_by_content``: the cell's content alone gives it inversion (one atom, or two of one
+    species); a chosen plateau of group 2 (P-1, p-1) then says so in its reason.
     A starting point for the user's own check, not a guarantee.
     """
     empty = {"ranges": [], "recommended_symprec": None, "plateau": None, "kind": "none",
@@ -1000,6 +1013,9 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
                       f"operations) from {_g(a)} to {_g(b)} Å (factor {width:.3g}): {why}"
                       + ("; it starts at the bottom of the searched range, so its width and "
                          "centre depend on where the range starts" if plateau["open_low"] else "")
+                      + (f"; {name} holds for any cell of one atom or of two atoms of one species "
+                         f"(inversion through the atom or their midpoint), so it says nothing about "
+                         f"this structure" if grp == 2 and inversion_by_content else "")
                       + note)
     return out
 

@@ -563,3 +563,18 @@ def test_flag_steps_and_thresholds_are_the_ones_the_outputs_show():
     k = flip["step"]
     assert signs[k] == -signs[0] and signs[k - 1] == signs[0]
     assert f"first from step {k}," in flip["message"]
+
+
+def test_advice_says_when_its_group_is_given_by_the_cell_content_alone():
+    """Two atoms of one element always have inversion through their midpoint (P-1, layer group
+    p-1; common practice): the bundled L02 (two Si atoms, real pw.x) is advised its p-1 plateau,
+    and the reason says that p-1 says nothing about the structure."""
+    from driftwatch.adapters import read_run
+    from driftwatch.track import analyze
+    run = read_run(DEMO / "L02_qe_vcrelax")
+    assert run.natoms == 2 and len(set(run.numbers.tolist())) == 1
+    tol = analyze(run)["summary"]["tolerance"]
+    assert tol["plateau"]["group"] == 2
+    assert tol["reason"].endswith("so it says nothing about this structure")
+    b05 = analyze(read_run(DEMO / "B05_emt_bfgs.extxyz"))["summary"]["tolerance"]
+    assert "says nothing about" not in b05["reason"]
