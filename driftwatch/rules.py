@@ -30,8 +30,9 @@ lattice-nearing     lattice    the deformation to a type fell by ``nearing_fract
                                lattice's size) without reaching it
 passed-through      lattice    a type was held for a stretch of the run, then left again
 handedness-flip     lattice    a layer's 2D lattice ends with the opposite handedness, clearly chiral at
-                               both ends (it passed through a mirror-symmetric lattice), or reversed
-                               it at least twice on the way, each side reaching 2 x min_chiral
+                               both ends (min_chiral at the start, 2 x min_chiral at the end: it
+                               passed through a mirror-symmetric lattice), or reversed it at least
+                               twice on the way, each side reaching 2 x min_chiral
 group-gained        structure  spglib's group at the end contains the start's (more operations)
 group-lost          structure  spglib's group at the end is a subgroup of the start's
 group-changed       structure  neither contains the other
@@ -306,14 +307,32 @@ def _chiral_frames(frames, r):
 
 
 def _handedness(frames, r):
-    """A layer that ends with the opposite handedness to its start, clearly chiral at both ends."""
+    """A layer that ends with the opposite handedness to its start, clearly chiral at both ends:
+    ``min_chiral`` at the start, twice that at the end (as each side of a reversal on the way
+    must reach): a relaxation settling onto a mirror lattice overshoots it by a few per cent of
+    where it started (graphene relaxed with an ML potential from 92 to 89.93 degrees)."""
     sign, chiral, sig = _chiral_frames(frames, r)
-    if sig.size == 0 or sig[-1] != len(frames) - 1 or sign[sig[0]] == sign[-1]:
+    if sig.size == 0 or sig[-1] != len(frames) - 1 or sign[sig[0]] == sign[-1] or \
+            chiral[-1] < 2 * r["min_chiral"]:
         return None
     last = int(sign[-1])
     k = int(np.nonzero(sign != last)[0][-1] + 1)
     return {"initial": int(sign[sig[0]]), "final": last, "frame": k,
             "mirror_initial": float(chiral[sig[0]]), "mirror_final": float(chiral[-1])}
+
+
+def _overshoot(frames, lv) -> str:
+    """For a layer whose ends have opposite signs without a handedness-flip (the end too near the
+    mirror lattice to count), the words saying so; else ""."""
+    if lv.get("handedness") or not frames or "sign" not in frames[0]:
+        return ""
+    sign = np.array([f["sign"] for f in frames])
+    if sign[0] == 0 or sign[-1] == 0 or sign[0] == sign[-1]:
+        return ""
+    k = int(np.nonzero(sign != sign[-1])[0][-1] + 1)
+    return (f"; its handedness reversed {_from(frames, k)}, ending "
+            f"{_g(float(frames[-1]['deformation']['mirror']))} Å past a mirror-symmetric lattice "
+            f"(an overshoot: under twice min_chiral, no handedness-flip)")
 
 
 def _shrink(frames) -> np.ndarray:
@@ -366,8 +385,8 @@ def _lattice_flags(frames, lv, D, r):
         flags.append(_flag("lattice-nearing", k, frames,
                            f"the lattice moved toward {t} ({NAMES[t]}) without reaching it: "
                            f"deformation {_g(D[t][0])} -> {_g(D[t][-1])} Å "
-                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way)",
-                           t, float(D[t][-1]), frac))
+                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way)"
+                           + _overshoot(frames, lv), t, float(D[t][-1]), frac))
     for p in lv["passed_through"][:1]:        # the longest stretch; the record lists them all
         t = p["type"]
         k = next(i for i, f in enumerate(frames) if f["step"] == p["from_step"])

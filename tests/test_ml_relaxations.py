@@ -100,3 +100,21 @@ def test_following_a_finished_trajectory_says_what_is_not_yet_held():
     assert "judged as a run still going" in buf.getvalue()
     done = analyze(read_run(path))["summary"]["verdict"]["text"]
     assert done.startswith("gained: lattice mp -> hp (gained hp)")
+
+
+def test_a_layer_overshooting_its_mirror_lattice_is_nearing_not_a_flip():
+    """Graphene in its rectangular cell sheared to 92 degrees and relaxed (CHGNet, FIRE, fmax 0.02)
+    ends at 89.93 degrees (ASE's cell parameters): past the right angle by 0.07 degrees, 0.0072 Å of
+    mirror deformation against 0.209 at the start. Not a handedness reversal between its ends
+    ('changed'), but a relaxation onto the rectangular lattice that overshot it."""
+    frames = ase.io.read(ML / "graphene_chgnet_overshoot.traj", ":")
+    gammas = [a.cell.cellpar()[5] for a in frames]                                 # ASE
+    assert abs(gammas[0] - 92.0) < 1e-6 and 89.9 < gammas[-1] < 90.0
+    rec = analyze(read_run(ML / "graphene_chgnet_overshoot.traj"))
+    assert rec["summary"]["verdict"]["lattice"]["direction"] == "kept"
+    codes = {f["code"]: f for f in rec["flags"]}
+    assert "handedness-flip" not in codes
+    near = codes["lattice-nearing"]
+    assert near["type"] == "op" and "an overshoot: under twice min_chiral" in near["message"]
+    signs = [f["sign"] for f in rec["frames"]]
+    assert signs[0] == -signs[-1] != 0
