@@ -242,6 +242,8 @@ def _inspect_table(rec: dict) -> str:
         lines.append(f"    note: {s['lattice_note']}")
     if s.get("supercell"):
         lines.append(f"    note: {s['supercell']['text']}")
+    if s.get("spglib_lattice"):
+        lines.append(f"    note: {s['spglib_lattice']['text']}")
     tol = s["tolerance"]
     lines.append(f" symprec: {tol['reason']}")
     for w in rec["run"]["warnings"]:

@@ -383,7 +383,8 @@ def _lattice_flags(frames, lv, D, r):
         k = int(near[0]) if near.size else len(frames) - 1
         way = 100 * (1 - D[t][-1] / (D[t][0] * shrink[-1]))
         flags.append(_flag("lattice-nearing", k, frames,
-                           f"the lattice moved toward {t} ({NAMES[t]}) without reaching it: "
+                           f"the lattice moved toward {t} ({NAMES[t]}) without reaching it "
+                           f"within {_g(within)} Å: "
                            f"deformation {_g(D[t][0])} -> {_g(D[t][-1])} Å "
                            f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way)"
                            + _overshoot(frames, lv), t, float(D[t][-1]), frac))
@@ -793,6 +794,8 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
         "tolerance": tol,
         "lattice_note": _lattice_note(record["run"]),
         "supercell": _supercell(frames, final["type"]),
+        "spglib_lattice": _spglib_lattice(frames, final["type"], within,
+                                          r["structure"]["symprec"]),
         "atoms": _atoms_toward(frames, cfg["rules"]["symprec_dependent"]["high"]),
     }
     return flags, summary
@@ -832,6 +835,26 @@ def _lattice_note(run: dict) -> str | None:
     if why:
         return f"the cell did not move although {why} let it: the lattice did not drift; {atoms}"
     return f"fixed cell: the lattice cannot drift; {atoms}"
+
+
+def _spglib_lattice(frames, cell_type: str, within: float, symprec: float) -> dict | None:
+    """When spglib, at the verdict's symprec, already calls the final lattice alone a more specific
+    type than the lattice columns hold (its deformation to that type just above ``within``: the
+    two tests differ near the threshold, docs/flags.md), that type and a sentence saying so."""
+    spec = frames[-1].get("symmetry") or {}
+    grid = [float(x) for x in spec.get("symprec") or []]
+    at = [i for i, x in enumerate(grid) if abs(x - symprec) <= 1e-9 * symprec]
+    dfm = frames[-1].get("deformation") or {}
+    t = spec["lattice"][at[0]] if at and spec.get("lattice") else None
+    if not t or t == cell_type or t not in dfm or t not in ORDER or \
+            ORDER[t] <= ORDER.get(cell_type, -1):
+        return None
+    d = float(dfm[t])
+    return {"type": t, "symprec": symprec, "deformation": d,
+            "text": f"spglib at symprec {_g(symprec)} Å already calls the lattice alone {t} "
+                    f"({NAMES[t]}), while its deformation to {t}, {_g(d)} Å, is above "
+                    f"rules.lattice.within ({_g(within)} Å): the lattice columns hold "
+                    f"{cell_type}; the two tests differ near that threshold"}
 
 
 def _supercell(frames, cell_type: str) -> dict | None:

@@ -578,3 +578,25 @@ def test_advice_says_when_its_group_is_given_by_the_cell_content_alone():
     assert tol["reason"].endswith("so it says nothing about this structure")
     b05 = analyze(read_run(DEMO / "B05_emt_bfgs.extxyz"))["summary"]["tolerance"]
     assert "says nothing about" not in b05["reason"]
+
+
+def test_a_lattice_spglib_already_calls_more_specific_is_noted():
+    """The bundled L01 (real pw.x 2Dxy layer) ends 0.00105 Å from hp, just above
+    rules.lattice.within (1e-3 Å): the lattice column says oc while spglib's lattice alone at the
+    verdict's symprec is hp (spglib called here on the one-atom cell of the final lattice, layer
+    routine). The summary says so; the nearing flag says what it did not reach ("within 0.001 Å")."""
+    from driftwatch.adapters import read_run
+    from driftwatch.track import analyze
+    rec = analyze(read_run(DEMO / "L01_qe_vcrelax"))
+    note = rec["summary"]["spglib_lattice"]
+    assert note["type"] == "hp" and rec["summary"]["final"]["type"] == "oc"
+    assert 0.001 < note["deformation"] < 0.0011
+    cell = np.array(rec["frames"][-1]["symmetry"]["symprec"])       # the grid holds 1e-3 Å
+    assert np.isclose(cell, 1e-3).any()
+    run = read_run(DEMO / "L01_qe_vcrelax")
+    c = run.cells[-1].copy()
+    c[2] = np.cross(c[0], c[1]) / np.linalg.norm(np.cross(c[0], c[1])) * np.linalg.norm(c[2])
+    ds = spglib.get_symmetry_layerdataset((c, [[0, 0, 0]], [1]), aperiodic_dir=2, symprec=1e-3)
+    assert ds.hall_number and 72 <= ds.number <= 80                          # hexagonal layer group
+    (near,) = [f for f in rec["flags"] if f["code"] == "lattice-nearing"]
+    assert "without reaching it within 0.001 Å" in near["message"]

@@ -510,6 +510,9 @@ def _summary_section(rec):
     if s.get("supercell"):
         text = s["supercell"]["text"]
         body += f'<p class="fact"><b>Supercell</b>: {e(text[:1].upper() + text[1:])}.</p>'
+    if s.get("spglib_lattice"):
+        text = s["spglib_lattice"]["text"]
+        body += f'<p class="fact"><b>Lattice near a threshold</b>: {e(text[:1].upper() + text[1:])}.</p>'
     if s.get("atoms"):
         body += (f'<p class="fact"><b>Atoms</b>: the displacement {e(_records.atoms_text(s["atoms"]))}'
                  "; the displacement plot draws the start on the same instance of the group.</p>")
