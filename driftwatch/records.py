@@ -321,11 +321,11 @@ def stages_text(record: dict) -> str | None:
 
 def new_record(run, geo, cfg: dict, frames: list[dict], *, fixed_cell: bool, versions: dict) -> dict:
     """Assemble a record from a run, its geometry, the effective config and per-frame entries."""
-    from collections import Counter
-
     from ase.data import chemical_symbols
-    counts = Counter(int(z) for z in run.numbers)
-    formula = "".join(f"{chemical_symbols[z]}{n if n > 1 else ''}" for z, n in sorted(counts.items()))
+    from ase.formula import Formula
+    # Hill's order (C, H, then the others alphabetically; without C, all alphabetically), as
+    # ase.db's formula column of runs.db spells it
+    formula = Formula.from_list([chemical_symbols[int(z)] for z in run.numbers]).format("hill")
     kind = getattr(run, "kind", "trajectory")
     if kind == "end-points":            # the two frames are structures, not ionic steps
         for f, label in zip(frames, ("initial", "final")):
