@@ -436,3 +436,16 @@ def test_tables_match_the_records_and_campaign_csv(tmp_path):
         for t, v in rec["frames"][-1]["deformation"].items():
             assert sub[f"deformation_{t}"].iloc[-1] == v
         assert sub["energy"].tolist() == [f["energy"] for f in rec["frames"]]
+
+
+def test_end_points_runs_label_their_two_structures_not_ionic_steps():
+    """ShakeNBreak's genuine vacancy folder (POSCAR and CONTCAR only): its two frames are the
+    initial and final structures; every step axis says so."""
+    from driftwatch.adapters import read_run
+    from driftwatch.report import charts
+    from driftwatch.track import analyze
+    rec = analyze(read_run(Path(__file__).parent / "data" / "public" / "shakenbreak_vacancy" / "m30"))
+    assert rec["run"]["kind"] == "end-points"
+    for make in (charts.deformation, charts.distance, charts.cell):
+        chart = make(rec)
+        assert all(p.x.label == charts.END_POINTS_AXIS for p in chart.panels)

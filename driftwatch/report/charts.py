@@ -134,8 +134,14 @@ def _steps(frames):
     return [int(f.get("step", f.get("index", i))) for i, f in enumerate(frames)]
 
 
-def step_axis(steps, label="ionic step") -> Axis:
-    """Integer step axis; one frame: that step alone, a step either side."""
+END_POINTS_AXIS = "structure: 0 initial, 1 final (no ionic steps between them)"
+
+
+def step_axis(steps, label="ionic step", rec=None) -> Axis:
+    """Integer step axis; one frame: that step alone, a step either side. An end-points run's
+    (``rec``) two structures are labelled as such, not as ionic steps."""
+    if rec is not None and (rec.get("run") or {}).get("kind") == "end-points":
+        label = END_POINTS_AXIS
     lo, hi = min(steps), max(steps)
     if lo == hi:
         return Axis(label, lim=(lo - 1, hi + 1), ticks=[lo], integer=True)
@@ -265,7 +271,7 @@ def deformation(rec) -> Chart:
     vals = [v for _, ys, _ in series for v in ys]
     what = "each 2D Bravais type and the nearest mirror lattice" if dim == 2 else \
         "each of the 13 Bravais types"
-    panel = Panel(step_axis(steps), _log_axis("deformation (Å)", vals), marks,
+    panel = Panel(step_axis(steps, rec=rec), _log_axis("deformation (Å)", vals), marks,
                   title=f"deformation to {what}{_FLOOR_NOTE}", legend="below")
     return Chart("deformation", [panel], height=360 if dim == 2 else 400)
 
@@ -285,7 +291,7 @@ def distance(rec) -> Chart:
     if not series:
         return None
     vals = [v for _, ys, _ in series for v in ys]
-    panel = Panel(step_axis(steps), _log_axis("distance (Å, root space)", vals),
+    panel = Panel(step_axis(steps, rec=rec), _log_axis("distance (Å, root space)", vals),
                   series_marks(steps, series), title=title, legend="below")
     return Chart("distance", [panel], height=340)
 
@@ -304,7 +310,7 @@ def chirality(rec) -> Chart | None:
         return None
     mc = config_number(rec, "rules", "handedness_flip", "min_chiral")
     top = max([abs(v) for v in chi + sdef if v is not None] + [(mc or 0) * 1.5, 1e-3]) * 1.15
-    xa = step_axis(steps)
+    xa = step_axis(steps, rec=rec)
     x0, x1 = xa.lim
     marks = [Mark("poly", [x0, x1, x1, x0], [0, 0, top, top], fill="#eef4fb", z=0),
              Mark("poly", [x0, x1, x1, x0], [0, 0, -top, -top], fill="#fbf1ea", z=0),
@@ -330,12 +336,12 @@ def chirality(rec) -> Chart | None:
                                      legend="below")], height=340)
 
 
-def _cell_panel(steps, cp, keys, label, title, min_span):
+def _cell_panel(steps, cp, keys, label, title, min_span, rec=None):
     series = [(k, [None if not np.isfinite(v) else float(v) for v in cp[k]],
                style.CELL_STYLE[k]) for k in keys]
     names = {"alpha": "α", "beta": "β", "gamma": "γ"}
     marks = series_marks(steps, [(names.get(k, k), ys, st) for k, ys, st in series], "linear")
-    return Panel(step_axis(steps), Axis(label, min_span=min_span), marks, title=title,
+    return Panel(step_axis(steps, rec=rec), Axis(label, min_span=min_span), marks, title=title,
                  legend="below")
 
 
@@ -349,16 +355,15 @@ def cell(rec) -> Chart | None:
         return None
     steps = _steps(frames)
     if dim == 2:
-        panels = [_cell_panel(steps, cp, ("a", "b"), "length (Å)", "a ≤ b", 0.02),
-                  _cell_panel(steps, cp, ("gamma",), "angle (°)", "γ (obtuse)", 0.2),
-                  _cell_panel(steps, cp, ("area",), "area (Å²)", "area",
-                              0.005 * float(np.nanmax(cp["area"])))]
+        specs = [(("a", "b"), "length (Å)", "a ≤ b", 0.02),
+                 (("gamma",), "angle (°)", "γ (obtuse)", 0.2),
+                 (("area",), "area (Å²)", "area", 0.005 * float(np.nanmax(cp["area"])))]
     else:
-        panels = [_cell_panel(steps, cp, ("a", "b", "c"), "length (Å)", "a ≤ b ≤ c", 0.02),
-                  _cell_panel(steps, cp, ("alpha", "beta", "gamma"), "angle (°)",
-                              "angles, sorted: α ≤ β ≤ γ (all ≥ 90°)", 0.2),
-                  _cell_panel(steps, cp, ("volume",), "volume (Å³)", "volume",
-                              0.005 * float(np.nanmax(cp["volume"])))]
+        specs = [(("a", "b", "c"), "length (Å)", "a ≤ b ≤ c", 0.02),
+                 (("alpha", "beta", "gamma"), "angle (°)", "angles, sorted: α ≤ β ≤ γ (all ≥ 90°)",
+                  0.2),
+                 (("volume",), "volume (Å³)", "volume", 0.005 * float(np.nanmax(cp["volume"])))]
+    panels = [_cell_panel(steps, cp, *spec, rec=rec) for spec in specs]
     return Chart("cell", panels, width=980, height=300,
                  title="Selling-reduced cell (derived from the record's invariants)")
 
@@ -373,13 +378,15 @@ def energy(rec) -> Chart | None:
     if any(v is not None for v in en):
         last = next(v for v in reversed(en) if v is not None)
         rel = [None if v is None else v - last for v in en]
-        panels.append(Panel(step_axis(steps), Axis("E − E(last step) (eV)", min_span=1e-3),
+        panels.append(Panel(step_axis(steps, rec=rec),
+                            Axis("E − E(last step) (eV)", min_span=1e-3),
                             series_marks(steps, [("energy", rel, style.CELL_STYLE["energy"])],
                                          "linear"),
                             title=f"energy (last step {last:.6f} eV)", legend=None))
     pos = [v if v is not None and v > 0 else None for v in fm]
     if all(v is None for v in pos) and any(v == 0 for v in fm):
-        panels.append(Panel(step_axis(steps), Axis("max force (eV/Å)", lim=(-1, 1), ticks=[0]),
+        panels.append(Panel(step_axis(steps, rec=rec),
+                            Axis("max force (eV/Å)", lim=(-1, 1), ticks=[0]),
                             [Mark("hline", y=[0.0], colour=style.CELL_STYLE["fmax"]["colour"],
                                   width=1.5),
                              Mark("text", [0.5], [0.6], coords="axes", anchor="middle",
@@ -391,7 +398,8 @@ def energy(rec) -> Chart | None:
         vals = [v for v in pos if v is not None]
         lo, hi = min(vals), max(vals)
         lo, hi = (lo / 2, hi * 2) if hi / lo < 100 else (lo / 1.5, hi * 1.5)
-        panels.append(Panel(step_axis(steps), Axis("max force (eV/Å)", scale="log", lim=(lo, hi)),
+        panels.append(Panel(step_axis(steps, rec=rec),
+                            Axis("max force (eV/Å)", scale="log", lim=(lo, hi)),
                             series_marks(steps, [("max force", pos, style.CELL_STYLE["fmax"])]),
                             title="largest force on an atom", legend=None))
     if not panels:
@@ -526,7 +534,8 @@ def displacement(rec) -> Chart | None:
               Mark("key", colour="#444444", marker="v", dash=(4, 2), hollow=True,
                    label="dashed: max" + (" (not drawn where max = RMS)"
                                           if len(maxes) < len(lines) else ""))]
-    panel = Panel(step_axis(sorted(set(steps_all))), _log_axis("displacement (Å)", vals), marks,
+    panel = Panel(step_axis(sorted(set(steps_all)), rec=rec), _log_axis("displacement (Å)", vals),
+                  marks,
                   title="atomic displacement to each group spglib found" + _FLOOR_NOTE,
                   legend="right")
     return Chart("displacement", [panel], height=330)
