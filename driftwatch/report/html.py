@@ -51,8 +51,9 @@ FLAG_TEXT = {
                          "tested band you choose",
     "loose-symprec": "spglib at a loose symprec assigns a lattice type that, by the continuous "
                      "deformation, the lattice is still far from",
-    "held-by-code": "the DFT code's own symmetry handling was on and the run kept a symmetric group: "
-                    "the code could not have lowered it, so 'kept' is not a test of it",
+    "held-by-code": "the code's own symmetry handling (or ASE's FixSymmetry constraint) was on and "
+                    "the run kept a symmetric group: it could not have lowered it, so 'kept' is not "
+                    "a test of it",
 }
 """Plain-language meaning of each flag code (codes are defined in :mod:`driftwatch.rules`)."""
 
@@ -157,6 +158,7 @@ table { border-collapse: collapse; margin: 6px 0 10px; font-size: 13.5px; }
 #runs th { white-space: normal; vertical-align: bottom; }
 td.nowrap { white-space: nowrap; }
 td.err { max-width: 26em; overflow-wrap: anywhere; }
+td.run { max-width: 22em; overflow-wrap: anywhere; }
 th, td { border-bottom: 1px solid var(--line); padding: 4px 10px; text-align: left; vertical-align: top; }
 th { background: var(--soft); font-weight: 600; white-space: nowrap; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
@@ -951,7 +953,7 @@ def _runs_table(runs, failed=(), skipped=()):
         grp = (e(v["group_initial"]) if v["group_initial"] == v["group_final"]
                else f"{e(v['group_initial'])} →<br>{e(v['group_final'])}")
         rows.append((str(label),
-            f'<tr><td><a href="runs/{quote(name)}.html">{e(label)}</a>'
+            f'<tr><td class="run"><a href="runs/{quote(name)}.html">{e(label)}</a>'
             f'<br><span class="muted">{e(r.get("title") or "")}</span>'
             + (f' <span class="badge warning">{len(r["warnings"])} warning'
                f'{"s" if len(r["warnings"]) > 1 else ""}</span>' if r.get("warnings") else "")
