@@ -712,7 +712,8 @@ def _text(direction, lv, sv, frames) -> str:
         else:
             grp = f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else moved
             when = "" if sv["direction"] == "kept" or ends else f" {_when(frames, sv)}"
-            parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}")
+            parts.append(f"group {sv['direction']} {grp} at symprec {_g(sv['symprec'])} Å{when}"
+                         + _near_edge(frames, sv["symprec"]))
         looser = _looser(sv)
         if looser:
             parts.append(looser)
@@ -720,6 +721,25 @@ def _text(direction, lv, sv, frames) -> str:
     head = f"{direction} (initial -> final structure; no ionic steps between them)" if ends \
         else "kept so far" if direction == "kept" and pending else direction
     return f"{head}: " + "; ".join(parts)
+
+
+NEAR_EDGE = 1.25
+"""A verdict's symprec this close (as a factor) to a change of the final structure's group is said
+to be near it: a slightly other symprec gives another verdict."""
+
+
+def _near_edge(frames, symprec: float) -> str:
+    """" (the final structure's group changes N % below/above it, at X Å)" when a bracketed change
+    of the final frame's group lies within a factor :data:`NEAR_EDGE` of ``symprec``, else ""."""
+    bps = [b for b in ((frames[-1].get("symmetry") or {}).get("breakpoints") or [])
+           if b.get("kind") == "group" and b.get("low") and b.get("high")]
+    if not bps or not symprec:
+        return ""
+    c = min((math.sqrt(b["low"] * b["high"]) for b in bps), key=lambda c: abs(math.log(c / symprec)))
+    if abs(math.log(c / symprec)) > math.log(NEAR_EDGE):
+        return ""
+    return (f" (the final structure's group changes {abs(c / symprec - 1) * 100:.0f} % "
+            f"{'below' if c < symprec else 'above'} it, at {_g(c)} Å)")
 
 
 def _looser(sv) -> str | None:

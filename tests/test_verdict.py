@@ -600,3 +600,25 @@ def test_a_lattice_spglib_already_calls_more_specific_is_noted():
     assert ds.hall_number and 72 <= ds.number <= 80                          # hexagonal layer group
     (near,) = [f for f in rec["flags"] if f["code"] == "lattice-nearing"]
     assert "without reaching it within 0.001 Å" in near["message"]
+
+
+def test_a_verdict_near_a_change_of_the_final_group_says_so():
+    """The bundled L01's verdict, p-1 -> p-3m1 at symprec 1e-3 Å, sits 12 % above where spglib's
+    group of the final structure changes (c2/m11 -> p-3m1 at 8.9e-4 Å, a field trial's dense scan;
+    spglib called here either side): the verdict line says how near."""
+    from driftwatch.adapters import read_run
+    from driftwatch.track import analyze
+    run = read_run(DEMO / "L01_qe_vcrelax")
+    rec = analyze(run)
+    text = rec["summary"]["verdict"]["text"]
+    m = re.search(r"the final structure's group changes (\d+) % below it, at ([0-9.e-]+) Å", text)
+    assert m and int(m.group(1)) == 12
+    edge = float(m.group(2))
+    c = run.cells[-1].copy()
+    c[2] = np.cross(c[0], c[1]) / np.linalg.norm(np.cross(c[0], c[1])) * np.linalg.norm(c[2])
+    frac = np.linalg.solve(run.cells[-1].T, run.positions[-1].T).T
+    got = [spglib.get_symmetry_layerdataset((c, frac, run.numbers), aperiodic_dir=2,
+                                            symprec=x).number for x in (edge / 1.05, edge * 1.05)]
+    assert got[0] != got[1] and got[1] == 72                                       # spglib
+    b05 = analyze(read_run(DEMO / "B05_emt_bfgs.extxyz"))["summary"]["verdict"]["text"]
+    assert "changes" not in b05
