@@ -1102,7 +1102,7 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
 def _run_audit(lock, roots, output, *, config, include, exclude, workers, scheduler, db,
                use_cache, overwrite, report, progress, reject_on, executor, quiet) -> dict:
     from . import config as _config
-    from .store import check_lock, db_location
+    from .store import check_lock, clear_stale_lock, db_location
     t0 = time.perf_counter()
     cfg = _config.coerce(config)
     roots = [roots] if isinstance(roots, (str, os.PathLike)) else list(roots)
@@ -1112,6 +1112,11 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     roots_abs = sorted(str(Path(r).resolve()) for r in roots)
     db_name = db_location(db, out)
     _check_not_a_root(out, roots)
+    if db is None:   # the folder's own runs.db: only audits of it write it, one at a time
+        stale = clear_stale_lock(db_name)
+        if stale is not None:
+            print(records.shown(f"driftwatch: removed {stale}, left by an audit of this folder "
+                                f"that was killed while writing it"), file=sys.stderr)
     check_lock(db_name)                       # fail before hours of analysis, not after
     old_marker = _prepare_output(out, roots_abs, overwrite, lock, db_name)
 

@@ -48,6 +48,21 @@ def lock_path(name: str) -> Path | None:
     return Path(os.path.abspath(name) + ".lock")
 
 
+def clear_stale_lock(name: str) -> Path | None:
+    """Remove ase.db's lock file of ``name`` and return its path, when it is a plain file (None
+    when there is none). Only for a database no other writer can hold: an audit folder's own
+    runs.db, written by one audit of that folder at a time (its audit lock), so a lock file there
+    was left by a killed audit."""
+    lock = lock_path(name)
+    if lock is None or not lock.is_file() or lock.is_symlink():
+        return None
+    try:
+        lock.unlink()
+    except OSError:
+        return None          # check_lock then names it
+    return lock
+
+
 def check_lock(name: str) -> None:
     """Raise OutputError when ase.db's lock file of ``name`` exists (ase.db would wait forever)."""
     lock = lock_path(name)

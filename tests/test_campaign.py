@@ -382,6 +382,22 @@ def test_stale_database_lock_fails_fast_with_a_message(tmp_path):
         write_rows(str(db), [])
 
 
+def test_a_lock_left_in_the_audit_folders_own_database_is_removed_and_said(tmp_path):
+    """runs.db in the output folder is written only by audits of that folder, one at a time (the
+    audit lock): a runs.db.lock there was left by a killed audit, so the next audit removes it and
+    says so (it was refused until the user deleted it by hand). A shared --db stays refused."""
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    run_audit([camp / "layers"], out)
+    (out / "runs.db.lock").write_text("")            # as a SIGKILL inside ase.db's write leaves it
+    cli = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp / "layers"), "-o",
+                          str(out), "--no-report", "--progress", "off"],
+                         capture_output=True, text=True, timeout=120, cwd=REPO, check=False)
+    assert cli.returncode == 0, cli.stderr
+    assert f"driftwatch: removed {out / 'runs.db.lock'}" in cli.stderr
+    assert not (out / "runs.db.lock").exists()
+
+
 def test_output_folder_safety(tmp_path):
     camp = make_campaign(tmp_path, qe=False)
     other = tmp_path / "other"
