@@ -351,10 +351,9 @@ SWEEP_CALLS = 400
 def _sweep(probe, key, grid, values, brackets, ratio):
     """``brackets`` completed where spglib flickered.
 
-    spglib's verdict is not monotonic in symprec: where one grid interval holds two or more
-    changes (the verdict went and came back, or passed a third one), it often flickers over a wider
-    range than that interval, in windows of a few per cent that grid points a factor ~2 apart step
-    over. So that interval and its neighbours are probed at steps of ``ratio ** 0.25`` in log
+    spglib's verdict is not monotonic in symprec: where one grid interval holds a change and its
+    return (the verdict went A -> B -> A), it often flickers over a wider range than that
+    interval, in windows of a few per cent that grid points a factor ~2 apart step over. So that interval and its neighbours are probed at steps of ``ratio ** 0.25`` in log
     symprec, outwards, as long as the probing finds changes the grid did not show (at most
     :data:`SWEEP_CALLS` calls). Returns all brackets, sorted, those of a probed interval replaced
     by what its probing found."""
@@ -363,7 +362,11 @@ def _sweep(probe, key, grid, values, brackets, ratio):
     for b in brackets:
         i = min(max(0, int(np.searchsorted(grid, b[0], side="right")) - 1), n - 1)
         per[i].append(b)
-    busy = [i for i in range(n) if len(per[i]) >= 2]
+
+    def reverses(i):                 # the verdict came back within the interval: A -> B -> A
+        chain = [key(values[i])] + [key(b[3]) for b in sorted(per[i], key=lambda b: b[0])]
+        return len(set(chain)) < len(chain)
+    busy = [i for i in range(n) if len(per[i]) >= 2 and reverses(i)]
     if not busy:
         return brackets
     step, calls = ratio ** 0.25, [0]
