@@ -344,8 +344,10 @@ def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
     return values, _sweep(probe, key, grid, values, brackets, ratio)
 
 
-SWEEP_CALLS = 400
+SWEEP_CALLS = 200
 """The most spglib calls one scan spends probing the neighbours of a flicker (:func:`_sweep`)."""
+SWEEP_STEP = 0.25
+"""The probing step of :func:`_sweep`: ``precision ** SWEEP_STEP`` in log symprec."""
 
 
 def _sweep(probe, key, grid, values, brackets, ratio):
@@ -353,10 +355,12 @@ def _sweep(probe, key, grid, values, brackets, ratio):
 
     spglib's verdict is not monotonic in symprec: where one grid interval holds a change and its
     return (the verdict went A -> B -> A), it often flickers over a wider range than that
-    interval, in windows of a few per cent that grid points a factor ~2 apart step over. So that interval and its neighbours are probed at steps of ``ratio ** 0.25`` in log
-    symprec, outwards, as long as the probing finds changes the grid did not show (at most
-    :data:`SWEEP_CALLS` calls). Returns all brackets, sorted, those of a probed interval replaced
-    by what its probing found."""
+    interval, in windows of a few per cent that grid points a factor ~2 apart step over. So that
+    interval and its neighbours are probed at steps of ``ratio ** SWEEP_STEP`` (1.2 % for the
+    default 1.05) in log symprec, outwards, as long as the probing finds changes the grid did not
+    show (at most :data:`SWEEP_CALLS` calls per scan). Windows narrower than the step can stay
+    hidden. Returns all brackets, sorted, those of a probed interval replaced by what its probing
+    found."""
     n = len(grid) - 1
     per = [[] for _ in range(n)]
     for b in brackets:
@@ -369,7 +373,7 @@ def _sweep(probe, key, grid, values, brackets, ratio):
     busy = [i for i in range(n) if len(per[i]) >= 2 and reverses(i)]
     if not busy:
         return brackets
-    step, calls = ratio ** 0.25, [0]
+    step, calls = ratio ** SWEEP_STEP, [0]
 
     def probed(j):
         lo, hi = grid[j], grid[j + 1]
