@@ -180,3 +180,30 @@ def test_md_run_is_no_relaxation():
     run = read_run(LMP / "cu32_md_run" / "md.dump")
     assert run.steps.tolist() == [0, 10, 20, 30, 40, 50]
     assert run.not_relaxation == "molecular dynamics (LAMMPS 'run')"
+
+
+def test_default_format_rounding_is_not_taken_from_exact_lattice_sites():
+    """A dump in LAMMPS's default %g format whose first frame holds exact lattice sites ('0',
+    '1.8075': trailing zeros dropped) still prints 6 significant digits (its later frames show
+    them: '1.78831'); the file's precision is that of %g at its largest coordinate, not of the
+    fewest digits seen (it read 1e-4 Å and moved the advice)."""
+    path = LMP / "cu32_md_run" / "md.dump"
+    text = path.read_text()
+    assert "\n2 1 1.8075 1.8075 0\n" in text                      # frame 0, exact sites
+    run = read_run(path)
+    top = np.abs(run.positions).max()
+    assert 1 < top < 10
+    assert run.position_precision == pytest.approx(np.sqrt(3) * 0.5 * 1e-5)
+
+
+def test_log_energies_are_potential_energies_under_a_damped_minimiser():
+    """min_style fire moves atoms with a fictitious kinetic energy that LAMMPS's TotEng includes;
+    the record's energy is the potential energy, E_pair + E_mol of the default thermo (step 6:
+    -31.642599 eV in log.lammps, TotEng -30.860019)."""
+    run = read_run(LMP / "si8_forces_thermo" / "relax.dump.gz")
+    log = (LMP / "si8_forces_thermo" / "log.lammps").read_text()
+    row = next(ln.split() for ln in log.splitlines() if ln.split()[:1] == ["6"]
+               and len(ln.split()) == 6)
+    assert float(row[4]) == pytest.approx(-30.860019) and float(row[2]) == pytest.approx(-31.642599)
+    k = run.steps.tolist().index(6)
+    assert run.energies[k] == pytest.approx(float(row[2]) + float(row[3]))

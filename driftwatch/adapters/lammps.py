@@ -32,7 +32,7 @@ __all__ = ["read_lammps_dump", "job_of", "register_all"]
 _SCRIPT_NAMES = re.compile(r"(?i)^(in\..+|.+\.in|.+\.lmp|.+\.lammps|.*\blog\.lammps(\.\d+)?|"
                            r"log\..+\.lammps)$")
 _COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|fix|minimize|run|"
-                      r"min_style)[ \t]+(\S.*)$")
+                      r"min_style|thermo_modify|dump_modify)[ \t]+(\S.*)$")
 _STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
 _STEP_LIMIT = ("max iterations", "max force evaluations")
 _CONVERGED = ("energy tolerance", "force tolerance", "forces are zero")
@@ -56,6 +56,8 @@ class Job:
     stops: list = dataclasses.field(default_factory=list)    # (criterion, max force component)
     finished: bool = False              # the log's "Total wall time"
     energies: dict = dataclasses.field(default_factory=dict)  # timestep -> energy (eV)
+    per_atom: bool = False              # thermo_modify norm yes: the log's energies per atom
+    dump_format: bool = False           # a dump_modify ... format: not LAMMPS's default %g
     names_dump: bool = False
 
 
@@ -65,6 +67,21 @@ def _types(spec: str, ntypes: int) -> range:
         return range(int(spec), int(spec) + 1)
     lo, hi = spec.split("*", 1)
     return range(int(lo) if lo else 1, (int(hi) if hi else ntypes) + 1)
+
+
+def _potential(header: list, row: list) -> float | None:
+    """The potential energy of a thermo row (the log's units): ``PotEng``, else ``E_pair + E_mol``
+    (LAMMPS's default thermo columns); None when neither is printed. ``TotEng`` is not used: under
+    a damped-dynamics minimiser (``min_style fire``) it holds the minimiser's kinetic energy."""
+    try:
+        if "PotEng" in header:
+            return float(row[header.index("PotEng")])
+        if "E_pair" in header:
+            return float(row[header.index("E_pair")]) + (
+                float(row[header.index("E_mol")]) if "E_mol" in header else 0.0)
+    except ValueError:
+        return None
+    return None
 
 
 def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
@@ -80,13 +97,9 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
             if header is not None:                    # inside a thermo table
                 f = line.split()
                 if len(f) == len(header) and f[0].lstrip("-").isdigit():
-                    col = "PotEng" if "PotEng" in header else "TotEng" if job.minimize else None
-                    if col in header and thermo_units in _TO_EV:
-                        try:
-                            job.energies[int(f[0])] = float(f[header.index(col)]) * \
-                                _TO_EV[thermo_units]
-                        except ValueError:
-                            pass
+                    e = _potential(header, f)
+                    if e is not None and thermo_units in _TO_EV:
+                        job.energies[int(f[0])] = e * _TO_EV[thermo_units]
                     continue
                 header = None
             if line.startswith("Step ") and line.split()[0] == "Step":
@@ -132,6 +145,10 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                     pass
             elif cmd == "run" and args[0].isdigit():
                 job.md = True
+            elif cmd == "dump_modify" and "format" in args:
+                job.dump_format = True
+            elif cmd == "thermo_modify" and "norm" in args[:-1]:
+                job.per_atom = args[args.index("norm") + 1] == "yes"
     masses = _data_masses(job.data_file, ctx) if job.data_file is not None else {}
     ntypes = max(masses) if masses else 0
     for spec, value in pending_masses:
@@ -276,22 +293,47 @@ def printed_step(values) -> float | None:
     return float(max(10.0 ** -most_decimals, by_digits))
 
 
-def _note_rounding(text: str, ctx: ReadContext) -> None:
-    """The printed rounding of a frame's coordinate columns (:func:`printed_step`)."""
-    lines = text.split("\n")
-    at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), None)
-    if at is None:
+DEFAULT_DIGITS = 6
+"""Significant digits of LAMMPS's default dump format for floats, ``%g`` (C's printf; LAMMPS docs,
+``dump_modify format``), which also drops trailing zeros."""
+
+
+def _coordinates(texts) -> tuple[str | None, list[str]]:
+    """(kind "cartesian"/"fractional", the printed coordinate strings) of frames' texts."""
+    kind, values = None, []
+    for text in texts:
+        lines = text.split("\n")
+        at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), None)
+        if at is None:
+            continue
+        cols = lines[at].split()[2:]
+        for names, k in ((("x", "y", "z"), "cartesian"), (("xu", "yu", "zu"), "cartesian"),
+                         (("xs", "ys", "zs"), "fractional"),
+                         (("xsu", "ysu", "zsu"), "fractional")):
+            if all(c in cols for c in names):
+                idx = [cols.index(c) for c in names]
+                kind = k
+                values += [f[i] for ln in lines[at + 1:] if (f := ln.split())
+                           for i in idx if i < len(f)]
+                break
+    return kind, values
+
+
+def _note_rounding(texts, job: Job, ctx: ReadContext) -> None:
+    """The printed rounding of the coordinate columns. LAMMPS's default ``%g``: 6 significant
+    digits at the magnitude of the largest coordinate (trailing zeros are dropped, so an exact
+    lattice site such as ``1.8`` shows fewer); a ``dump_modify ... format``: what the frames
+    given (the first and the last) show (:func:`printed_step`)."""
+    kind, values = _coordinates(texts)
+    if kind is None or not values:
         return
-    cols = lines[at].split()[2:]
-    for names, kind in ((("x", "y", "z"), "cartesian"), (("xu", "yu", "zu"), "cartesian"),
-                        (("xs", "ys", "zs"), "fractional"), (("xsu", "ysu", "zsu"), "fractional")):
-        if all(c in cols for c in names):
-            idx = [cols.index(c) for c in names]
-            step = printed_step(f[i] for ln in lines[at + 1:] if (f := ln.split())
-                                for i in idx if i < len(f))
-            if step is not None:
-                ctx.round_to(kind, step)
-            return
+    if job.dump_format:
+        step = printed_step(values)
+    else:
+        top = max(abs(float(v)) for v in values)
+        step = 10.0 ** (np.floor(np.log10(top)) - DEFAULT_DIGITS + 1) if top > 0 else None
+    if step is not None:
+        ctx.round_to(kind, float(step))
 
 
 def read_lammps_dump(path, ctx: ReadContext):
@@ -334,18 +376,23 @@ def read_lammps_dump(path, ctx: ReadContext):
     steps, n = [], 0
     for step, text in _frames_text(path, ctx):
         if n == 0:
-            _note_rounding(text, ctx)
+            first = text
         with _w.catch_warnings():
             _w.simplefilter("ignore")
             atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
         fr = frame_from_atoms(atoms, step)
         # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's, else none
-        fr = dataclasses.replace(fr, energy=job.energies.get(step))
+        e = job.energies.get(step)
+        fr = dataclasses.replace(fr, energy=None if e is None else
+                                 e * (len(fr.numbers) if job.per_atom else 1))
         if steps and step <= steps[-1]:
             fr = dataclasses.replace(fr, step=steps[-1] + 1)     # reset_timestep: count on
         steps.append(fr.step)
         n += 1
+        last = text
         yield fr
+    if n:
+        _note_rounding((first, last), job, ctx)
     if n == 1:
         ctx.settings["single_structure"] = f"{path.name}, one frame"
 
