@@ -446,6 +446,6 @@ def test_end_points_runs_label_their_two_structures_not_ionic_steps():
     from driftwatch.track import analyze
     rec = analyze(read_run(Path(__file__).parent / "data" / "public" / "shakenbreak_vacancy" / "m30"))
     assert rec["run"]["kind"] == "end-points"
-    for make in (charts.deformation, charts.distance, charts.cell):
+    for make in (charts.deformation, charts.distance, charts.cell, charts.spectrum):
         chart = make(rec)
         assert all(p.x.label == charts.END_POINTS_AXIS for p in chart.panels)

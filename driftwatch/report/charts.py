@@ -134,7 +134,7 @@ def _steps(frames):
     return [int(f.get("step", f.get("index", i))) for i, f in enumerate(frames)]
 
 
-END_POINTS_AXIS = "structure: 0 initial, 1 final (no ionic steps between them)"
+END_POINTS_AXIS = "structure (0 initial, 1 final)"
 
 
 def step_axis(steps, label="ionic step", rec=None) -> Axis:
@@ -479,7 +479,8 @@ def spectrum(rec, common=()) -> Chart | None:
             marks.append(Mark("key", colour="#000000", marker="_", size=14, width=2.0,
                               label="breakpoint (centre of its bracket)"))
         ticks = list(range(len(rows)))
-        xa = Axis("ionic step (frames spglib was asked about)", scale="category",
+        xa = Axis(END_POINTS_AXIS if rec["run"].get("kind") == "end-points" else
+                  "ionic step (frames spglib was asked about)", scale="category",
                   lim=(-0.6, len(rows) - 0.4), ticks=ticks, ticklabels=[str(st) for st, _ in rows],
                   grid=False)
         ya = Axis("symprec (Å)", scale="log", lim=(lo, hi), grid=False)

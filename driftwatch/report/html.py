@@ -697,8 +697,14 @@ def _plots_section(rec):
     draw = _Svg()
     cs = charts.run_charts(rec, _common(rec))
 
+    ends = rec["run"].get("kind") == "end-points"
+
     def fig(name):
-        return _figure(draw(cs.get(name)), _CAPTIONS[name])
+        text = _CAPTIONS[name]
+        if ends:                 # two structures, no ionic steps between them
+            text = text.replace("per ionic step", "per structure (initial, final)").replace(
+                "against ionic step", "against the structure (initial, final)")
+        return _figure(draw(cs.get(name)), text)
 
     lattice = ["map", "chirality", "deformation", "distance", "cell"] if dim == 2 else \
         ["deformation", "distance", "cell"]
