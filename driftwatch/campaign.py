@@ -1127,10 +1127,10 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         raise InputError(", ".join(str(r) for r in roots), _why_empty(roots, include, exclude, skip))
     runs, not_files = _regular_file_runs(runs)
     failed += not_files
-    if scheduler:      # Dask workers may run elsewhere: give them absolute paths (shared filesystem)
-        runs = [RunSpec(r.id, os.path.abspath(r.path), r.kind) for r in runs]
     res = _Results(out, _record_names(runs), Cache(out / ".cache", enabled=use_cache))
-    todo = res.lookup(runs, _config.fingerprint(cfg))
+    todo = res.lookup(runs, _config.fingerprint(cfg))   # keyed on the paths as a local audit's
+    if scheduler:      # Dask workers may run elsewhere: give them absolute paths (shared filesystem)
+        todo = [(rid, os.path.abspath(path)) for rid, path in todo]
     if (workers or os.cpu_count() or 1) > 1 or scheduler or executor is not None:
         todo = _largest_first(todo, {r.id: r.kind for r in runs})
     gen, how = _execute(todo, cfg, workers=workers or os.cpu_count() or 1, scheduler=scheduler,

@@ -464,6 +464,21 @@ def test_process_pool_and_dask_cluster_give_the_same_records(tmp_path):
         assert s["failed"] == serial["failed"] and s["verdict_counts"] == serial["verdict_counts"]
 
 
+def test_a_dask_audit_reuses_what_a_local_audit_of_the_same_folder_found(tmp_path, monkeypatch):
+    """A campaign given by a relative path: the Dask workers get absolute paths, but the cache is
+    keyed on the paths as given, so a Dask audit after a local one reads nothing again (it read
+    every run again and said so)."""
+    from distributed import LocalCluster
+    make_campaign(tmp_path, qe=False, n_extra=1)
+    monkeypatch.chdir(tmp_path)
+    first = run_audit(["camp"], "out", workers=1)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False,
+                      dashboard_address=None) as cluster:
+        again = run_audit(["camp"], "out", scheduler=cluster.scheduler_address)
+    assert first["analysed"] > 0 and again["analysed"] == 0
+    assert again["cached"] == first["analysed"] and again["since_last"]["read_again"] == []
+
+
 def test_progress_and_summary_table(tmp_path, capsys):
     camp = make_campaign(tmp_path, qe=False)
     run_audit([camp / "layers"], tmp_path / "out", progress="on")
