@@ -42,6 +42,7 @@ from __future__ import annotations
 import fnmatch
 import json
 import os
+import re
 import signal
 import stat
 import sys
@@ -1108,6 +1109,9 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     roots = [roots] if isinstance(roots, (str, os.PathLike)) else list(roots)
     if not roots:
         raise ConfigError("audit: give at least one folder or file to search for runs")
+    missing = [r for r in roots if not os.path.lexists(r) and not re.search(r"::|@", str(r))]
+    if missing:                  # a typo in a root is the command's error, not a failed run
+        raise InputError(missing[0], "no such file or folder")
     out = Path(output if output is not None else DEFAULT_OUTPUT)
     roots_abs = sorted(str(Path(r).resolve()) for r in roots)
     db_name = db_location(db, out)

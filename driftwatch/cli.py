@@ -25,6 +25,9 @@ _EPILOG = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
 141 standard output closed early (| head): the rest is not printed.
 Verdicts: gained, lost, changed or kept symmetry (lattice and spglib group).
 Flags are diagnostics to check, not proofs of stability or of a phase."""
+_EPILOG_PLAIN = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
+141 standard output closed early (| head): the rest is not printed."""
+"""For the commands that judge no run against --reject-on (tolerance, report, formats)."""
 
 
 def _common(p: argparse.ArgumentParser, reject=True) -> None:
@@ -112,15 +115,15 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("tolerance", help="tolerance study of one structure: spglib across symprec",
                        formatter_class=fmt, epilog="examples:\n"
                        "  driftwatch tolerance CONTCAR\n"
-                       "  driftwatch tolerance relax.traj --frame 0 --json\n\n" + _EPILOG)
+                       "  driftwatch tolerance relax.traj --frame 0 --json\n\n" + _EPILOG_PLAIN)
     p.add_argument("path", help="structure or trajectory file, or run folder")
     p.add_argument("-f", "--format", help="adapter name, overriding detection")
     p.add_argument("--frame", type=int, default=-1, help="frame index (default: last)")
     _common(p, reject=False)
 
-    p = sub.add_parser("report", help="rebuild HTML/CSV reports from saved run records",
+    p = sub.add_parser("report", help="rebuild the HTML report from saved run records",
                        formatter_class=fmt, epilog="examples:\n"
-                       "  driftwatch report audit-out/records -o audit-out/report\n\n" + _EPILOG)
+                       "  driftwatch report audit-out/records -o audit-out/report\n\n" + _EPILOG_PLAIN)
     p.add_argument("records", nargs="+", help="record files (JSON) or folders of them")
     p.add_argument("-o", "--output", metavar="DIR", required=True, help="report folder")
     p.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
@@ -129,7 +132,7 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("formats", help="list the input formats driftwatch reads",
                        formatter_class=fmt, epilog="examples:\n"
                        "  driftwatch formats\n  driftwatch formats --json | python -m json.tool\n\n"
-                       + _EPILOG)
+                       + _EPILOG_PLAIN)
     p.add_argument("--json", action="store_true", help="the formats as JSON on stdout")
     p.add_argument("--debug", action="store_true", help="show the traceback of an error")
     return top

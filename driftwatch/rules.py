@@ -36,7 +36,7 @@ handedness-flip     lattice    a layer's 2D lattice ends with the opposite hande
 group-gained        structure  spglib's group at the end contains the start's (more operations)
 group-lost          structure  spglib's group at the end is a subgroup of the start's
 group-changed       structure  neither contains the other
-atoms-break-lattice structure  the primitive lattice is metrically of a type but the structure's group
+atoms-break-lattice structure  the translation lattice is metrically of a type but the structure's group
                                has a lower lattice type
 symprec-dependent   tolerance  spglib's group for the final frame changes between two common symprecs
 loose-symprec       tolerance  spglib's lattice type at a loose symprec is one the lattice is far from
@@ -583,7 +583,8 @@ def _breaks_lattice(frames, dim, r, fixed=False):
     b = bravais_of_group(int(group), str(symbol), dim)
     if b is None or b == t or not generalises(b, t):
         return []
-    msg = (f"the primitive lattice is metrically {t} ({NAMES[t]}, deformation "
+    msg = (f"the structure's translation lattice (its primitive cell) is metrically {t} "
+           f"({NAMES[t]}, deformation "
            f"{_g(prim['deformation'])} Å) but the structure's group at symprec {_g(r['symprec'])} Å is "
            f"{symbol} ({group}), lattice type {b}: the atoms break the lattice's symmetry"
            + ("; the cell never moved, so this is the lattice the run was given (expected when "
@@ -816,7 +817,8 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
         "supercell": _supercell(frames, final["type"]),
         "spglib_lattice": _spglib_lattice(frames, final["type"], within,
                                           r["structure"]["symprec"]),
-        "atoms": _atoms_toward(frames, cfg["rules"]["symprec_dependent"]["high"]),
+        "atoms": None if record["run"].get("n_atoms") == 1 else   # one atom: always 0 Å
+        _atoms_toward(frames, cfg["rules"]["symprec_dependent"]["high"]),
     }
     return flags, summary
 

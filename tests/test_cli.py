@@ -162,3 +162,14 @@ def test_audit_all_frames_asks_spglib_on_every_frame(tmp_path):
     assert p.returncode == 0, p.stderr
     (rec,) = [json.loads(f.read_text()) for f in (tmp_path / "out" / "records").glob("*.json")]
     assert all(f.get("structure") for f in rec["frames"]) and len(rec["frames"]) == 6
+
+
+def test_audit_of_a_root_that_does_not_exist_is_a_one_line_error(tmp_path):
+    """A typo in a root is the command's error (exit 1, one line), not a failed run with a
+    report; nothing is written."""
+    r = dw("audit", tmp_path / "camapign", "-o", tmp_path / "out")
+    assert r.returncode == 1 and r.stdout == ""
+    assert r.stderr.strip() == f"driftwatch: error: {tmp_path / 'camapign'}: no such file or folder"
+    assert not (tmp_path / "out").exists()
+    r = dw("tolerance", "--help")
+    assert "exit codes: 0 ok, 1 input/config/output error, 2 usage error,\n141" in r.stdout

@@ -584,7 +584,7 @@ def _tolerance_section(rec):
             f"<td class=\"num\">{_ratio(r[0], r[1])}</td>"
             f"<td>{'below the file' + chr(39) + 's printed precision' if floor and r[0] < floor else ''}"
             f"</td></tr>" for r in shown_ranges([list(r) + [0] * (5 - len(r)) for r in ranges if len(r) >= 4]))
-        out.append("<h3>Ranges of symprec with one verdict (final structure)</h3><table><thead><tr>"
+        out.append("<h3>Ranges of symprec with one spglib group (final structure)</h3><table><thead><tr>"
                    "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th><th></th>"
                    f"</tr></thead><tbody>{rows}</tbody></table>")
     if spec:
@@ -594,7 +594,7 @@ def _tolerance_section(rec):
                     for c in common)
         lat = "".join(f"<td>{e(_camp.verdict_at(spec, c, 'lattice'))}</td>" for c in common) \
             if spec.get("lattice") else ""
-        out.append("<h3>Verdict at common choices of symprec</h3><table><thead><tr><th></th>"
+        out.append("<h3>spglib's group at common choices of symprec</h3><table><thead><tr><th></th>"
                    f"{cells}</tr></thead><tbody><tr><th>structure group</th>{g}</tr>"
                    + (f"<tr><th>lattice alone</th>{lat}</tr>" if lat else "") + "</tbody></table>")
         ang = _fnum(spec.get("angle_tolerance"))
@@ -896,7 +896,7 @@ def _campaign_tolerance(tol, adv, labels=None):
     if tol["stable_ranges"]:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
                        for a, b in [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5])
-        out.append("<h3>Ranges of symprec where no run changes its verdict (widest first, factor "
+        out.append("<h3>Ranges of symprec where no run's spglib group changes (widest first, factor "
                    "≥ 1.5)</h3><table>"
                    "<thead><tr><th>from</th><th>to</th><th>width (factor)</th></tr></thead>"
                    f"<tbody>{rows}</tbody></table>")
@@ -909,7 +909,7 @@ def _campaign_tolerance(tol, adv, labels=None):
                               for n in c["runs"][:8]) + (" …" if len(c["runs"]) > 8 else "")
             rows.append(f"<tr><td class=\"num\">{c['a']:g} Å</td><td class=\"num\">{c['b']:g} Å</td>"
                         f"<td class=\"num\">{len(c['runs'])}</td><td class=\"mono\">{names}</td></tr>")
-        out.append("<h3>Runs whose verdict changes between common choices of symprec</h3><table>"
+        out.append("<h3>Runs whose spglib group changes between common choices of symprec</h3><table>"
                    "<thead><tr><th>symprec</th><th>against</th><th>runs that change</th><th>which</th>"
                    f"</tr></thead><tbody>{''.join(rows)}</tbody></table>"
                    "<p class=\"muted\">Verdict = spglib's space group (layer group for layers) of each "
