@@ -1103,7 +1103,7 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
 def _run_audit(lock, roots, output, *, config, include, exclude, workers, scheduler, db,
                use_cache, overwrite, report, progress, reject_on, executor, quiet) -> dict:
     from . import config as _config
-    from .store import check_lock, clear_stale_lock, db_location
+    from .store import check_foreign, check_lock, clear_stale_lock, db_location
     t0 = time.perf_counter()
     cfg = _config.coerce(config)
     roots = [roots] if isinstance(roots, (str, os.PathLike)) else list(roots)
@@ -1122,6 +1122,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
             print(records.shown(f"driftwatch: removed {stale}, left by an audit of this folder "
                                 f"that was killed while writing it"), file=sys.stderr)
     check_lock(db_name)                       # fail before hours of analysis, not after
+    check_foreign(db_name)
     old_marker = _prepare_output(out, roots_abs, overwrite, lock, db_name)
 
     skip = [out] + ([] if "://" in db_name else [db_name])

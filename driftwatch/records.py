@@ -188,7 +188,7 @@ def check_target(path) -> None:
     except OSError as exc:
         raise OutputError(f"{p}: cannot read it to check what it is ({exc.strerror or exc})") \
             from None
-    if not re.search(rb'"schema"\s*:\s*"driftwatch/run-', head):
+    if not re.match(rb'\s*\{\s*"schema"\s*:\s*"driftwatch/run-', head):    # a record starts so
         raise OutputError(f"{p}: exists and is not a driftwatch run record; refusing to overwrite "
                           f"it (remove it, or choose another file for the record)")
 

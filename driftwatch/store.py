@@ -96,12 +96,17 @@ def _foreign_sqlite(name: str) -> str | None:
     return ", ".join(sorted(tables)[:8])
 
 
-def _connect(name: str):
-    import ase.db
+def check_foreign(name: str) -> None:
+    """Raise OutputError when ``name`` is another application's SQLite database."""
     foreign = _foreign_sqlite(name)
     if foreign:
         raise OutputError(f"{name}: a SQLite database that is not an ase.db (tables: {foreign}); "
                           f"choose another file for the results database (--db)")
+
+
+def _connect(name: str):
+    import ase.db
+    check_foreign(name)
     try:
         db = ase.db.connect(name, use_lock_file=lock_path(name) is not None)
     except (ValueError, ImportError, OSError) as exc:

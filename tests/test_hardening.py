@@ -954,3 +954,32 @@ def test_a_line_break_in_a_run_name_is_one_table_row(tmp_path):
     assert p.returncode == 0, p.stderr
     rows = [ln for ln in p.stdout.splitlines() if ln.startswith("camp/")]
     assert len(rows) == 1 and rows[0].startswith("camp/new\\nline/relax.traj ")
+
+
+def test_a_file_that_only_holds_a_record_somewhere_is_not_replaced(tmp_path):
+    """-o refuses a JSON list of records or notes quoting one: only a file that is a record (its
+    first key the schema) is replaced."""
+    run = RUNS / "L09_emt_fixed_square.traj"
+    notes = tmp_path / "merged.json"
+    notes.write_text('[{"schema": "driftwatch/run-2", "run": {}}]')
+    p = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", run, "-o", notes],
+                       capture_output=True, text=True)
+    assert p.returncode == 1 and "is not a driftwatch run record" in p.stderr
+    assert notes.read_text().startswith("[")
+
+
+def test_xdatcar_with_a_field_of_stars_keeps_the_steps_before_it(tmp_path):
+    """An XDATCAR written by ASE's own writer from the bundled B05 relaxation (a real EMT run),
+    with one coordinate of its third configuration overflowed to stars: the configurations before
+    it stand, the run is damaged (the whole run failed)."""
+    from driftwatch.adapters import read_run
+    frames = ase.io.read(RUNS / "B05_emt_bfgs.extxyz", ":")
+    ase.io.write(tmp_path / "XDATCAR", frames, format="vasp-xdatcar")
+    lines = (tmp_path / "XDATCAR").read_text().splitlines(keepends=True)
+    heads = [i for i, ln in enumerate(lines) if "configuration=" in ln]
+    k = heads[2] + 1
+    f = lines[k].split()
+    lines[k] = f"  ************ {f[1]} {f[2]}\n"
+    (tmp_path / "XDATCAR").write_text("".join(lines))
+    run = read_run(tmp_path / "XDATCAR")
+    assert len(run) == 2 and run.unfinished.startswith("damaged: unreadable after step")

@@ -207,3 +207,96 @@ def test_log_energies_are_potential_energies_under_a_damped_minimiser():
     assert float(row[4]) == pytest.approx(-30.860019) and float(row[2]) == pytest.approx(-31.642599)
     k = run.steps.tolist().index(6)
     assert run.energies[k] == pytest.approx(float(row[2]) + float(row[3]))
+
+
+# ---------------------------------------------------------------- jobs as users write them
+# (real LAMMPS runs of invented Si8 / MgO8 cells from an adversarial review: README of this folder)
+def _log_rows(path: Path) -> list[list[str]]:
+    """The thermo rows of a log (Step first), in order."""
+    out, inside = [], False
+    for ln in path.read_text().splitlines():
+        f = ln.split()
+        if f[:1] == ["Step"]:
+            inside, head = True, f
+            continue
+        if inside and ln.startswith("Loop time"):
+            inside = False
+        elif inside and len(f) == len(head) and f[0].isdigit():
+            out.append(dict(zip(head, f)))
+    return out
+
+
+def test_reset_timestep_drops_the_energies_it_makes_ambiguous_and_counts_steps_on():
+    d = LMP / "si8_reset_timestep"
+    rows = _log_rows(d / "log.lammps")
+    repeated = {r["Step"] for r in rows if [x["Step"] for x in rows].count(r["Step"]) > 1}
+    assert repeated                                     # the log prints step 0 .. twice
+    run = read_run(d / "relax.lammpstrj")
+    assert (np.diff(run.steps) > 0).all()
+    raw = _dump_timesteps((d / "relax.lammpstrj").read_text())
+    for t, e in zip(raw, run.energies):
+        assert (str(t) in repeated) == np.isnan(e)      # never another minimisation's energy
+
+
+def test_a_log_of_another_job_is_not_this_dumps(tmp_path):
+    """One log.lammps in a folder of two jobs names ge.lammpstrj: si.lammpstrj is read with the
+    script that names it (Si, no energies), never with the Ge job's log (its elements, energies and
+    stop); without that script it is refused."""
+    d = LMP / "two_jobs_one_log"
+    assert "ge.lammpstrj" in (d / "log.lammps").read_text()
+    assert "si.lammpstrj" not in (d / "log.lammps").read_text()
+    si = read_run(d / "si.lammpstrj")
+    assert set(si.numbers.tolist()) == {14} and si.energies is None and si.unfinished is None
+    assert set(read_run(d / "ge.lammpstrj").numbers.tolist()) == {32}
+    for name in ("si.lammpstrj", "log.lammps"):
+        shutil.copy(d / name, tmp_path / name)
+    with pytest.raises(InputError, match="no LAMMPS input script or log.lammps naming it"):
+        read_run(tmp_path / "si.lammpstrj")
+
+
+def test_types_named_by_the_data_files_comments_and_apart_when_one_mass():
+    """Masses rounded in a data file ('24.0 # Mg') are named by their comment (as ASE writes data
+    files); two LAMMPS types of one mass (two charged Si sublattices) stay apart for spglib:
+    F-43m, not Fd-3m (spglib on the types, here)."""
+    import spglib
+    run = read_run(LMP / "mgo8_masses_by_comment" / "mgo.lammpstrj")
+    assert sorted(set(run.numbers.tolist())) == [8, 12]
+    run = read_run(LMP / "si8_two_types_one_mass" / "ordered.lammpstrj")
+    assert sorted(set(run.species)) == ["Si1", "Si2"]
+    text = (LMP / "si8_two_types_one_mass" / "ordered.lammpstrj").read_text()
+    ref = _ase(LMP / "si8_two_types_one_mass" / "ordered.lammpstrj", Path("/nonexistent"),
+               specorder=["Si", "Ge"])[-1]                 # types 1, 2 as two kinds
+    ds = spglib.get_symmetry_dataset((ref.cell.array, ref.get_scaled_positions(), ref.numbers),
+                                     symprec=1e-3)
+    assert ds.number == 216 and "ITEM: ATOMS" in text
+    rec = analyze(run)
+    assert rec["summary"]["verdict"]["structure"]["final"]["group"] == 216
+
+
+def test_the_stop_that_counts_is_the_last_while_the_dump_was_written():
+    """minimize, write, undump, then another minimize that ends at max iterations: the dump's
+    run converged ('force tolerance' or 'energy tolerance' while it was written)."""
+    d = LMP / "si8_undump_then_minimize"
+    stops = re.findall(r"Stopping criterion = (.+)", (d / "log.lammps").read_text())
+    assert len(stops) == 2 and stops[-1].strip() == "max iterations"
+    assert read_run(d / "relaxed.lammpstrj").unfinished is None
+
+
+def test_per_atom_thermo_energies_are_cell_energies():
+    """thermo_modify norm yes prints energies per atom: the record's are the cell's (x 8)."""
+    d = LMP / "si8_norm_yes"
+    rows = _log_rows(d / "log.lammps")
+    run = read_run(d / "relax.lammpstrj")
+    first = next(r for r in rows if r["Step"] == str(run.steps[0]))
+    col = "PotEng" if "PotEng" in first else "E_pair"
+    assert run.energies[0] == pytest.approx(8 * float(first[col]), rel=1e-6)
+
+
+def test_minimize_then_md_is_no_relaxation_and_time_units_headers_are_read():
+    run = read_run(LMP / "si8_minimize_then_md" / "traj_el.lammpstrj")
+    assert run.not_relaxation.startswith("a minimisation followed by molecular dynamics")
+    d = LMP / "si8_time_units"
+    text = (d / "si.lammpstrj").read_text()
+    assert text.startswith("ITEM: UNITS") and "ITEM: TIME\n" in text
+    run = read_run(d / "si.lammpstrj")
+    assert len(run) == text.count("ITEM: TIMESTEP") == len(_ase(d / "si.lammpstrj", Path("/x")))

@@ -15,6 +15,7 @@ dropped and said.
 from __future__ import annotations
 
 import dataclasses
+import fnmatch
 import io
 import os
 import re
@@ -31,8 +32,8 @@ __all__ = ["read_lammps_dump", "job_of", "register_all"]
 
 _SCRIPT_NAMES = re.compile(r"(?i)^(in\..+|.+\.in|.+\.lmp|.+\.lammps|.*\blog\.lammps(\.\d+)?|"
                            r"log\..+\.lammps)$")
-_COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|fix|minimize|run|"
-                      r"min_style|thermo_modify|dump_modify)[ \t]+(\S.*)$")
+_COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|undump|fix|minimize|run|"
+                      r"min_style|thermo_modify|dump_modify|create_box)[ \t]+(\S.*)$")
 _STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
 _STEP_LIMIT = ("max iterations", "max force evaluations")
 _CONVERGED = ("energy tolerance", "force tolerance", "forces are zero")
@@ -58,7 +59,15 @@ class Job:
     energies: dict = dataclasses.field(default_factory=dict)  # timestep -> energy (eV)
     per_atom: bool = False              # thermo_modify norm yes: the log's energies per atom
     dump_format: bool = False           # a dump_modify ... format: not LAMMPS's default %g
-    names_dump: bool = False
+    names_dump: bool = False            # a dump/write_dump command names this dump's file
+    names_other: bool = False           # ... names other files only: another job's
+    per_frame: str | None = None        # the dump command's file pattern holds '*': one file a frame
+    ntypes: int = 0                     # create_box N
+    elements: dict = dataclasses.field(default_factory=dict)   # type -> element of a data file's
+    #                                     Masses comment ("1 24.305 # Mg", as ASE writes it)
+    active: list = dataclasses.field(default_factory=list)    # per minimize: was this dump on
+    sequence: list = dataclasses.field(default_factory=list)  # "minimize" / "run", in order
+    repeated: set = dataclasses.field(default_factory=set)    # thermo steps printed twice
 
 
 def _types(spec: str, ntypes: int) -> range:
@@ -90,16 +99,24 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
     header, thermo_units = None, None
     last_stop_block: dict | None = None
     pending_masses = []
+    dump_id, dump_on = None, False
     ctx.uses(path)
     with Lines(path) as fh:
         for raw in fh:
             line = raw.split("#", 1)[0].strip()
-            if header is not None:                    # inside a thermo table
+            if header is not None:                    # inside a thermo table, to "Loop time"
                 f = line.split()
                 if len(f) == len(header) and f[0].lstrip("-").isdigit():
                     e = _potential(header, f)
                     if e is not None and thermo_units in _TO_EV:
-                        job.energies[int(f[0])] = e * _TO_EV[thermo_units]
+                        step = int(f[0])
+                        if step in job.energies or step in job.repeated:   # reset_timestep
+                            job.repeated.add(step)
+                            job.energies.pop(step, None)
+                        else:
+                            job.energies[step] = e * _TO_EV[thermo_units]
+                    continue
+                if not raw.startswith("Loop time"):   # a WARNING, fix print output: go on
                     continue
                 header = None
             if line.startswith("Step ") and line.split()[0] == "Step":
@@ -132,8 +149,18 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
             elif cmd in ("dump", "write_dump"):
                 target = args[4] if cmd == "dump" and len(args) > 4 else \
                     args[2] if cmd == "write_dump" and len(args) > 2 else ""
-                if os.path.basename(target) == dump_name:
+                name = strip_compression(os.path.basename(target))
+                if name == dump_name or ("*" in name and fnmatch.fnmatchcase(dump_name, name)):
                     job.names_dump = True
+                    job.per_frame = name if "*" in name else job.per_frame
+                    dump_id = args[0] if cmd == "dump" else dump_id
+                    dump_on = cmd == "dump"
+                elif target:
+                    job.names_other = True
+            elif cmd == "undump" and args[:1] == [dump_id]:
+                dump_on = False
+            elif cmd == "create_box" and args[0].isdigit():
+                job.ntypes = int(args[0])
             elif cmd == "fix" and len(args) >= 3 and args[2] == "box/relax":
                 mode = " ".join(a for a in args[3:] if a in ("iso", "aniso", "tri", "x", "y",
                                                               "z", "xy", "xz", "yz"))
@@ -141,16 +168,20 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
             elif cmd == "minimize" and len(args) >= 4:
                 try:
                     job.minimize.append(tuple(float(a) for a in args[:4]))
+                    job.active.append(dump_on)
+                    job.sequence.append("minimize")
                 except ValueError:
                     pass
-            elif cmd == "run" and args[0].isdigit():
+            elif cmd == "run" and args[0].isdigit() and int(args[0]) > 0:
                 job.md = True
+                job.sequence.append("run")
             elif cmd == "dump_modify" and "format" in args:
                 job.dump_format = True
             elif cmd == "thermo_modify" and "norm" in args[:-1]:
                 job.per_atom = args[args.index("norm") + 1] == "yes"
-    masses = _data_masses(job.data_file, ctx) if job.data_file is not None else {}
-    ntypes = max(masses) if masses else 0
+    masses, job.elements = _data_masses(job.data_file, ctx) if job.data_file is not None \
+        else ({}, {})
+    ntypes = max([job.ntypes, *masses])
     for spec, value in pending_masses:
         try:
             for t in _types(spec, max(ntypes, int(spec.strip("*") or 0)) or 1):
@@ -161,15 +192,19 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
     return job
 
 
-def _data_masses(path: Path, ctx: ReadContext) -> dict:
-    """type -> mass of a LAMMPS data file's ``Masses`` section ({} when missing or unreadable)."""
+def _data_masses(path: Path, ctx: ReadContext) -> tuple[dict, dict]:
+    """(type -> mass, type -> element its comment names) of a LAMMPS data file's ``Masses``
+    section (``1 24.304999 # Mg``, as ASE writes it); ({}, {}) when missing or unreadable."""
+    from ase.data import chemical_symbols
     ctx.uses(path)
     out: dict = {}
+    names: dict = {}
     try:
         with Lines(path) as fh:
             inside = False
             for raw in fh:
-                line = raw.split("#", 1)[0].strip()
+                line, _, comment = raw.partition("#")
+                line = line.strip()
                 if not inside:
                     inside = line == "Masses"
                     continue
@@ -181,9 +216,12 @@ def _data_masses(path: Path, ctx: ReadContext) -> dict:
                 if len(f) < 2 or not f[0].isdigit():
                     break
                 out[int(f[0])] = float(f[1])
+                word = comment.split()[0] if comment.split() else ""
+                if word in chemical_symbols[1:]:
+                    names[int(f[0])] = word
     except (OSError, InputError, ValueError):
-        return {}
-    return out
+        return {}, {}
+    return out, names
 
 
 def job_of(dump: Path, ctx: ReadContext) -> Job:
@@ -208,7 +246,8 @@ def job_of(dump: Path, ctx: ReadContext) -> Job:
     named = [j for j in jobs if j.names_dump]
     if named:
         return named[0]
-    return jobs[0] if len(jobs) == 1 else Job()
+    alone = [j for j in jobs if not j.names_other]     # one that names other dumps is another job's
+    return alone[0] if len(jobs) == 1 and alone else Job()
 
 
 def _looks_like_lammps(path: Path) -> bool:
@@ -219,13 +258,18 @@ def _looks_like_lammps(path: Path) -> bool:
                                                                "run", "mass"))
 
 
-def _elements(masses: dict) -> list | None:
-    """Elements by type 1..n: the standard atomic mass nearest each (within 0.1 u), else None."""
+def _elements(masses: dict, names: dict | None = None) -> list | None:
+    """Elements by type 1..n: the element a data file's comment names, else the standard atomic
+    mass nearest each (within 0.1 u); None when a type has neither."""
     from ase.data import atomic_masses, chemical_symbols
-    if not masses:
+    names = names or {}
+    if not masses and not names:
         return None
     out = []
-    for t in range(1, max(masses) + 1):
+    for t in range(1, max([*masses, *names]) + 1):
+        if t in names:
+            out.append(names[t])
+            continue
         if t not in masses:
             return None
         z = int(np.argmin(np.abs(atomic_masses[1:] - masses[t]))) + 1
@@ -244,6 +288,11 @@ def _frames_text(path, ctx: ReadContext):
             head = fh.read_lines(4)
             if not head:
                 return
+            extra = []               # dump_modify units yes / time yes: a line each, first
+            while head and head[0].startswith(("ITEM: UNITS", "ITEM: TIME\n", "ITEM: TIME ")) \
+                    and not head[0].startswith("ITEM: TIMESTEP"):
+                extra += head[:2]
+                head = head[2:] + fh.read_lines(2)
             if len(head) < 4 or not head[0].startswith("ITEM: TIMESTEP") or \
                     not head[2].startswith("ITEM: NUMBER OF ATOMS"):
                 if len(head) < 4 and all(h.startswith("ITEM") or h.strip().isdigit()
@@ -266,7 +315,7 @@ def _frames_text(path, ctx: ReadContext):
                               f"read (job killed or still running)")
                 return
             n_read += 1
-            yield step, "".join(head) + "".join(rest)
+            yield step, "".join(extra) + "".join(head) + "".join(rest)
         ctx.truncated(f"truncated: its last frame's header is cut; {n_read} whole frame"
                       f"{'s' if n_read != 1 else ''} read (job killed or still running)")
 
@@ -351,8 +400,8 @@ def read_lammps_dump(path, ctx: ReadContext):
     if job.units in _TO_EV or job.units in ("si", "cgs", "micro", "nano"):
         kwargs["units"] = job.units                  # ASE converts lengths to Å
     if "element" not in columns:
-        order = _elements(job.masses) if job.units not in (None, "lj") or job.source is None \
-            else None
+        order = _elements(job.masses, job.elements) \
+            if job.units not in (None, "lj") or job.source is None else None
         if order is None:
             raise InputError(path, _no_types(path, job))
         ctx.settings.setdefault("type_map_from", job.source.name if job.masses and
@@ -365,29 +414,38 @@ def read_lammps_dump(path, ctx: ReadContext):
         settings["units"] = job.units or "lj"
         if job.box_relax:
             settings["box_relax"] = job.box_relax
-        settings["ran"] = "minimize" if job.minimize else "run" if job.md else None
+        settings["ran"] = ("minimize" if not job.sequence or job.sequence[-1] == "minimize"
+                           else "minimize, then run" if "minimize" in job.sequence else "run")
     ctx.settings.update({k: v for k, v in settings.items() if v is not None})
     if job.source is not None and (job.units or "lj") not in _ANGSTROM_UNITS + ("electron",):
         ctx.warn(f"LAMMPS units '{job.units or 'lj'}' ({job.source.name}): "
                  + ("reduced units: lengths in sigma are read as Å and types named by their "
                     "masses, so every Å threshold applies in sigma" if (job.units or "lj") == "lj"
                     else "lengths converted to Å by ASE"))
-    _judge_stop(job, ctx)
-    steps, n = [], 0
-    for step, text in _frames_text(path, ctx):
+    if not job.per_frame:            # one frame of many files: the job's end is not its end
+        _judge_stop(job, ctx)
+    if job.per_frame:
+        ctx.warn(f"one file of a dump written one file per frame ({job.per_frame}, "
+                 f"{job.source.name}): read alone; to read the trajectory, join the files in "
+                 f"timestep order into one dump")
+    offset, last_step, n = 0, None, 0
+    for raw_step, text in _frames_text(path, ctx):
         if n == 0:
             first = text
+            if "element" not in columns:
+                _note_species(text, kwargs.get("specorder"), ctx)
         with _w.catch_warnings():
             _w.simplefilter("ignore")
             atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
-        fr = frame_from_atoms(atoms, step)
-        # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's, else none
-        e = job.energies.get(step)
-        fr = dataclasses.replace(fr, energy=None if e is None else
-                                 e * (len(fr.numbers) if job.per_atom else 1))
-        if steps and step <= steps[-1]:
-            fr = dataclasses.replace(fr, step=steps[-1] + 1)     # reset_timestep: count on
-        steps.append(fr.step)
+        if last_step is not None and raw_step + offset <= last_step:   # reset_timestep:
+            offset = last_step + 1 - raw_step                          # count on
+        step = raw_step + offset
+        # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's energy at
+        # this timestep (none where the log printed a timestep twice), else none
+        e = job.energies.get(raw_step)
+        fr = dataclasses.replace(frame_from_atoms(atoms, step), energy=None if e is None else
+                                 e * (len(atoms) if job.per_atom else 1))
+        last_step = step
         n += 1
         last = text
         yield fr
@@ -395,6 +453,27 @@ def read_lammps_dump(path, ctx: ReadContext):
         _note_rounding((first, last), job, ctx)
     if n == 1:
         ctx.settings["single_structure"] = f"{path.name}, one frame"
+
+
+def _note_species(text: str, order, ctx: ReadContext) -> None:
+    """When two LAMMPS types are one element (a model of two sublattices: charges, spins), the
+    types are told apart for spglib as the code's species (``Run.species``), in ASE's atom order
+    (by id)."""
+    if not order or len(set(order)) == len(order):
+        return
+    lines = text.split("\n")
+    at = next(i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS"))
+    cols = lines[at].split()[2:]
+    if "type" not in cols:
+        return
+    rows = [ln.split() for ln in lines[at + 1:] if ln.split()]
+    it = cols.index("type")
+    if "id" in cols:                                   # ASE orders the atoms by id
+        rows.sort(key=lambda f: int(f[cols.index("id")]))
+    try:
+        ctx.species = tuple(f"{order[int(f[it]) - 1]}{int(f[it])}" for f in rows)
+    except (ValueError, IndexError):
+        return
 
 
 def _no_types(path: Path, job: Job) -> str:
@@ -420,8 +499,12 @@ def _judge_stop(job: Job, ctx: ReadContext) -> None:
         if not job.finished:
             ctx.unfinished = ("cut short: LAMMPS's log ends inside a minimisation (job killed "
                               "or still running)")
+            ctx.warn(f"{job.source.name} ends inside a minimisation (no 'Stopping criterion' "
+                     f"after its last minimize): job killed or still running")
         return
-    stop = job.stops[-1]
+    # the last minimisation while this dump was written (one after `undump` wrote nothing to it)
+    on = [k for k, a in enumerate(job.active) if a] or [len(job.stops) - 1]
+    stop = job.stops[on[-1]]
     crit, fmax = stop["criterion"], stop["fmax"]
     unit = _FORCE_UNIT.get(job.units or "lj", f"({job.units or 'lj'} units)")
     force = f"; force max component {fmax:.3g} {unit} at the end" if fmax is not None else ""
@@ -435,8 +518,15 @@ def _judge_stop(job: Job, ctx: ReadContext) -> None:
 
 # ---------------------------------------------------------------- code table
 def run_kind(code_settings: dict) -> str | None:
-    """Molecular dynamics when the job ran ``run`` and no ``minimize``."""
-    return "molecular dynamics (LAMMPS 'run')" if code_settings.get("ran") == "run" else None
+    """Molecular dynamics when the job's last command of steps is ``run`` (after a minimisation
+    too: the final frames are MD)."""
+    ran = code_settings.get("ran")
+    if ran == "run":
+        return "molecular dynamics (LAMMPS 'run')"
+    if ran == "minimize, then run":
+        return ("a minimisation followed by molecular dynamics (LAMMPS 'minimize', then 'run'): "
+                "the final frames are MD")
+    return None
 
 
 def cell_free(code_settings: dict) -> str | None:

@@ -757,6 +757,9 @@ def read_xdatcar(path, ctx: ReadContext):
             try:
                 coords = np.array(rows, float)
             except ValueError as exc:
+                if n_done:           # the steps before it stand; the registry marks the damage
+                    raise ValueError(f"bad coordinates in configuration {step + 1}: {exc}") \
+                        from None
                 raise InputError(path, f"bad coordinates in configuration {step + 1}: {exc}") \
                     from None
             direct = line.lstrip().lower().startswith("direct")
