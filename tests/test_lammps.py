@@ -300,3 +300,12 @@ def test_minimize_then_md_is_no_relaxation_and_time_units_headers_are_read():
     assert text.startswith("ITEM: UNITS") and "ITEM: TIME\n" in text
     run = read_run(d / "si.lammpstrj")
     assert len(run) == text.count("ITEM: TIMESTEP") == len(_ase(d / "si.lammpstrj", Path("/x")))
+
+
+def test_mass_type_ranges_as_lammps_reads_them():
+    """LAMMPS's type ranges (``mass`` command docs, from memory): ``*`` every type of
+    ``create_box N``, ``m*n``, ``*n``, ``n*``; a closed range needs no count."""
+    from driftwatch.adapters.lammps import _types
+    assert list(_types("*", 2)) == [1, 2] and list(_types("1*3", 0)) == [1, 2, 3]
+    assert list(_types("*3", 0)) == [1, 2, 3] and list(_types("2*", 4)) == [2, 3, 4]
+    assert list(_types("2", 0)) == [2]

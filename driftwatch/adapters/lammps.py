@@ -5,12 +5,13 @@ LAMMPS ran, includes and loops expanded; else its input script) name the types' 
 (``mass`` lines, or the Masses section of the ``read_data`` file), the length unit (``units``), a
 relaxed box (``fix ... box/relax``) and what ran (``minimize`` or MD ``run``). The log adds how
 each minimisation stopped ("Stopping criterion = max iterations" is a run at its step limit) and
-the thermo energies at the steps it printed. A script or log counts as the dump's job only when
-it names the dump's file in a ``dump`` or ``write_dump`` command (or is the folder's only one).
+the thermo energies at the steps it printed. A script or log counts as the dump's job when it
+names the dump's file in a ``dump`` or ``write_dump`` command (a pattern with ``*``: one file per
+frame), or is the folder's only one and names no other dump.
 
 Steps are LAMMPS timesteps (``ITEM: TIMESTEP``), so a dump written every N steps keeps the
-minimiser's own count. Frames are read one at a time; a frame cut by a killed or running job is
-dropped and said.
+minimiser's own count, counted on across ``reset_timestep``. Frames are read one at a time; a frame
+cut by a killed or running job is dropped and said.
 """
 from __future__ import annotations
 
@@ -53,7 +54,6 @@ class Job:
     data_file: Path | None = None       # the ``read_data`` file
     box_relax: str | None = None        # "fix box/relax aniso", ... (words)
     minimize: list = dataclasses.field(default_factory=list)  # (etol, ftol, maxiter, maxeval)
-    md: bool = False                    # a ``run`` command
     stops: list = dataclasses.field(default_factory=list)    # (criterion, max force component)
     finished: bool = False              # the log's "Total wall time"
     energies: dict = dataclasses.field(default_factory=dict)  # timestep -> energy (eV)
@@ -71,11 +71,13 @@ class Job:
 
 
 def _types(spec: str, ntypes: int) -> range:
-    """LAMMPS type ranges: ``2``, ``*``, ``2*``, ``*3``, ``1*3``."""
+    """LAMMPS type ranges: ``2``, ``*``, ``2*``, ``*3``, ``1*3`` (an open end at ``ntypes``, the
+    number of types, when known; at least the lower bound)."""
     if "*" not in spec:
         return range(int(spec), int(spec) + 1)
     lo, hi = spec.split("*", 1)
-    return range(int(lo) if lo else 1, (int(hi) if hi else ntypes) + 1)
+    first = int(lo) if lo else 1
+    return range(first, max(first, int(hi) if hi else ntypes) + 1)
 
 
 def _potential(header: list, row: list) -> float | None:
@@ -116,7 +118,7 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                         else:
                             job.energies[step] = e * _TO_EV[thermo_units]
                     continue
-                if not raw.startswith("Loop time"):   # a WARNING, fix print output: go on
+                if not raw.startswith(("Loop time", "ERROR")):   # a WARNING, fix print: go on
                     continue
                 header = None
             if line.startswith("Step ") and line.split()[0] == "Step":
@@ -173,7 +175,6 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                 except ValueError:
                     pass
             elif cmd == "run" and args[0].isdigit() and int(args[0]) > 0:
-                job.md = True
                 job.sequence.append("run")
             elif cmd == "dump_modify" and "format" in args:
                 job.dump_format = True
@@ -184,7 +185,7 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
     ntypes = max([job.ntypes, *masses])
     for spec, value in pending_masses:
         try:
-            for t in _types(spec, max(ntypes, int(spec.strip("*") or 0)) or 1):
+            for t in _types(spec, ntypes):
                 masses[t] = float(value)
         except ValueError:
             continue
