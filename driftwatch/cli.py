@@ -281,6 +281,7 @@ def _cmd_tolerance(args) -> int:
     from . import config as _config, geometry
     from .adapters import read_run
     from .rules import advice, shown_breakpoints
+    from .symmetry import SWEEP_STEP
     from .track import symmetry_entry
     cfg = _config.load(args.config)
     run = read_run(args.path, format=args.format)
@@ -319,7 +320,8 @@ def _cmd_tolerance(args) -> int:
                   f"{b['high']:.4g} Å")
     if spec["breakpoints"]:
         print(f"(breakpoints are searched between grid points whose verdicts differ, and around a "
-              f"flicker in steps of a factor {spec['precision'] ** 0.25:.3g}; a change that returns "
+              f"flicker in steps of a factor {spec['precision'] ** SWEEP_STEP:.3g}; a change that "
+              f"returns "
               f"between two grid points of one verdict elsewhere is not seen)")
     for g, d in spec["displacement"].items():
         print(f"to {d['symbol']} ({g}): atoms move rms {d['rms']:.3g} Å, max {d['max']:.3g} Å; "

@@ -736,7 +736,8 @@ def _near_edge(frames, symprec: float) -> str:
            if b.get("kind") == "group" and b.get("low") and b.get("high")]
     if not bps or not symprec:
         return ""
-    c = min((math.sqrt(b["low"] * b["high"]) for b in bps), key=lambda c: abs(math.log(c / symprec)))
+    c = min((math.sqrt(b["low"] * b["high"]) for b in bps),
+            key=lambda c: abs(math.log(c / symprec)))
     if abs(math.log(c / symprec)) > math.log(NEAR_EDGE):
         return ""
     return (f" (the final structure's group changes {abs(c / symprec - 1) * 100:.0f} % "

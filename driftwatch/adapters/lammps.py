@@ -61,7 +61,7 @@ class Job:
     dump_format: bool = False           # a dump_modify ... format: not LAMMPS's default %g
     names_dump: bool = False            # a dump/write_dump command names this dump's file
     names_other: bool = False           # ... names other files only: another job's
-    per_frame: str | None = None        # the dump command's file pattern holds '*': one file a frame
+    per_frame: str | None = None        # the dump's file pattern holds '*': one file a frame
     ntypes: int = 0                     # create_box N
     elements: dict = dataclasses.field(default_factory=dict)   # type -> element of a data file's
     #                                     Masses comment ("1 24.305 # Mg", as ASE writes it)

@@ -514,7 +514,8 @@ def _summary_section(rec):
         body += f'<p class="fact"><b>Supercell</b>: {e(text[:1].upper() + text[1:])}.</p>'
     if s.get("spglib_lattice"):
         text = s["spglib_lattice"]["text"]
-        body += f'<p class="fact"><b>Lattice near a threshold</b>: {e(text[:1].upper() + text[1:])}.</p>'
+        body += (f'<p class="fact"><b>Lattice near a threshold</b>: '
+                 f'{e(text[:1].upper() + text[1:])}.</p>')
     if s.get("atoms"):
         body += (f'<p class="fact"><b>Atoms</b>: the displacement {e(_records.atoms_text(s["atoms"]))}'
                  "; the displacement plot draws the start on the same instance of the group.</p>")
@@ -583,7 +584,8 @@ def _tolerance_section(rec):
             f"<tr>{_td_num(r[0], 'Å')}{_td_num(r[1], 'Å')}<td>{group(r)}</td>"
             f"<td class=\"num\">{_ratio(r[0], r[1])}</td>"
             f"<td>{'below the file' + chr(39) + 's printed precision' if floor and r[0] < floor else ''}"
-            f"</td></tr>" for r in shown_ranges([list(r) + [0] * (5 - len(r)) for r in ranges if len(r) >= 4]))
+            f"</td></tr>"
+            for r in shown_ranges([list(r) + [0] * (5 - len(r)) for r in ranges if len(r) >= 4]))
         out.append("<h3>Ranges of symprec with one spglib group (final structure)</h3><table><thead><tr>"
                    "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th><th></th>"
                    f"</tr></thead><tbody>{rows}</tbody></table>")
