@@ -309,3 +309,11 @@ def test_mass_type_ranges_as_lammps_reads_them():
     assert list(_types("*", 2)) == [1, 2] and list(_types("1*3", 0)) == [1, 2, 3]
     assert list(_types("*3", 0)) == [1, 2, 3] and list(_types("2*", 4)) == [2, 3, 4]
     assert list(_types("2", 0)) == [2]
+
+
+def test_a_dump_of_a_group_says_it_holds_part_of_the_structure():
+    d = LMP / "si8_dump_of_a_group"
+    assert "with 8 atoms" in (d / "log.lammps").read_text()                       # the log
+    run = read_run(d / "sub.lammpstrj")
+    assert run.natoms == 4
+    assert any("the dump holds 4 of the job's 8 atoms" in w for w in run.warnings)

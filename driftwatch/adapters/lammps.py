@@ -36,6 +36,7 @@ _SCRIPT_NAMES = re.compile(r"(?i)^(in\..+|.+\.in|.+\.lmp|.+\.lammps|.*\blog\.lam
 _COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|undump|fix|minimize|run|"
                       r"min_style|thermo_modify|dump_modify|create_box)[ \t]+(\S.*)$")
 _STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
+_LOOP_ATOMS = re.compile(r"^Loop time of .* with (\d+) atoms")
 _STEP_LIMIT = ("max iterations", "max force evaluations")
 _CONVERGED = ("energy tolerance", "force tolerance", "forces are zero")
 _TO_EV = {"metal": 1.0, "real": 0.0433641043, "electron": 27.211386245988}
@@ -68,6 +69,7 @@ class Job:
     active: list = dataclasses.field(default_factory=list)    # per minimize: was this dump on
     sequence: list = dataclasses.field(default_factory=list)  # "minimize" / "run", in order
     repeated: set = dataclasses.field(default_factory=set)    # thermo steps printed twice
+    natoms: int = 0                     # atoms of the job's last run ("Loop time ... with N atoms")
 
 
 def _types(spec: str, ntypes: int) -> range:
@@ -121,6 +123,9 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                 if not raw.startswith(("Loop time", "ERROR")):   # a WARNING, fix print: go on
                     continue
                 header = None
+                m = _LOOP_ATOMS.match(raw)
+                if m:
+                    job.natoms = int(m.group(1))
             if line.startswith("Step ") and line.split()[0] == "Step":
                 header, thermo_units = line.split(), job.units or "lj"
                 continue
@@ -435,6 +440,10 @@ def read_lammps_dump(path, ctx: ReadContext):
             first = text
             if "element" not in columns:
                 _note_species(text, kwargs.get("specorder"), ctx)
+            if job.natoms and len(atoms_of(text)) < job.natoms:
+                ctx.warn(f"the dump holds {len(atoms_of(text))} of the job's {job.natoms} atoms "
+                         f"({job.source.name}: a dump of a group): its symmetry is that of those "
+                         f"atoms alone, not of the structure")
         with _w.catch_warnings():
             _w.simplefilter("ignore")
             atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
@@ -454,6 +463,13 @@ def read_lammps_dump(path, ctx: ReadContext):
         _note_rounding((first, last), job, ctx)
     if n == 1:
         ctx.settings["single_structure"] = f"{path.name}, one frame"
+
+
+def atoms_of(text: str) -> list[str]:
+    """The atom lines of one frame's text."""
+    lines = text.split("\n")
+    at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), len(lines))
+    return [ln for ln in lines[at + 1:] if ln.split()]
 
 
 def _note_species(text: str, order, ctx: ReadContext) -> None:
