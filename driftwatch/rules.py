@@ -1211,8 +1211,8 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     ok = safe(s)
     unsafe = [rid for rid, *_ in per_run if rid not in ok]
     others = "" if not unsafe else (
-        f", above all of the {len(unsafe)} run{'s' if len(unsafe) > 1 else ''} that "
-        f"do{'' if len(unsafe) > 1 else 'es'} not: " + ", ".join(unsafe[:3])
+        (f", above all the {len(unsafe)} runs that do not: " if len(unsafe) > 1 else
+         ", above all the one run that does not: ") + ", ".join(unsafe[:3])
         + (f" and {len(unsafe) - 3} more (tolerance.unsafe_run_ids in campaign.json)"
            if len(unsafe) > 3 else ""))
     out.update(recommended_symprec=s, safe_runs=len(ok), unsafe_run_ids=unsafe[:50],

@@ -1867,8 +1867,8 @@ def test_the_campaign_symprec_counts_a_run_safe_only_in_the_plateau_its_own_advi
     assert not ("m10" in safe and "m30" in safe)   # their plateaus do not overlap
     unsafe = tol["unsafe_run_ids"]                 # the advice names the runs to check first
     assert unsafe and tol["reason"].endswith(
-        f"above all of the {len(unsafe)} run{'s' if len(unsafe) > 1 else ''} that "
-        f"do{'' if len(unsafe) > 1 else 'es'} not: {', '.join(unsafe)}")
+        (f"above all the {len(unsafe)} runs that do not: " if len(unsafe) > 1 else
+         "above all the one run that does not: ") + ", ".join(unsafe))
 
 
 def _orbit_average_rms(frac, cell, numbers, rotations, translations):
