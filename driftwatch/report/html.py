@@ -620,7 +620,8 @@ def _settings_section(rec):
     if not cs:
         body = "<p>The code's own symmetry settings are not known for this run.</p>"
     else:
-        body = ("<table><thead><tr><th>setting</th><th>value</th></tr></thead><tbody>"
+        body = ("<table><thead><tr><th>setting (record key, run.code_settings)</th><th>value</th>"
+                "</tr></thead><tbody>"
                 + "".join(f"<tr><td class=\"mono\">{e(k)}</td><td class=\"mono\">{e(_val(v))}</td></tr>"
                           for k, v in cs.items()) + "</tbody></table>")
     return ("<h2>Code-side symmetry settings</h2><p class=\"muted\">What the DFT code itself did with "
@@ -629,7 +630,7 @@ def _settings_section(rec):
 
 
 def _val(v):
-    if isinstance(v, (dict, list)):
+    if isinstance(v, (dict, list, bool)) or v is None:    # as the record (JSON) spells it
         return json.dumps(v, ensure_ascii=False)
     return str(v)
 
