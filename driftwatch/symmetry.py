@@ -344,9 +344,9 @@ def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
     return values, _sweep(probe, key, grid, values, brackets, ratio)
 
 
-SWEEP_CALLS = 200
+SWEEP_CALLS = 100
 """The most spglib calls one scan spends probing the neighbours of a flicker (:func:`_sweep`)."""
-SWEEP_STEP = 0.25
+SWEEP_STEP = 0.35
 """The probing step of :func:`_sweep`: ``precision ** SWEEP_STEP`` in log symprec."""
 
 
@@ -356,7 +356,7 @@ def _sweep(probe, key, grid, values, brackets, ratio):
     spglib's verdict is not monotonic in symprec: where one grid interval holds a change and its
     return (the verdict went A -> B -> A), it often flickers over a wider range than that
     interval, in windows of a few per cent that grid points a factor ~2 apart step over. So that
-    interval and its neighbours are probed at steps of ``ratio ** SWEEP_STEP`` (1.2 % for the
+    interval and its neighbours are probed at steps of ``ratio ** SWEEP_STEP`` (1.7 % for the
     default 1.05) in log symprec, outwards, as long as the probing finds changes the grid did not
     show (at most :data:`SWEEP_CALLS` calls per scan). Windows narrower than the step can stay
     hidden. Returns all brackets, sorted, those of a probed interval replaced by what its probing
