@@ -216,7 +216,7 @@ def _convert(key, kind, value):
     return value
 
 
-class _AnchorFound(yaml.YAMLError):
+class _Refused(yaml.YAMLError):
     def __init__(self, what: str, mark):
         super().__init__(what)
         self.what, self.mark = what, mark
@@ -224,15 +224,24 @@ class _AnchorFound(yaml.YAMLError):
 
 class _PlainLoader(yaml.SafeLoader):
     """PyYAML's safe loader, refusing anchors and aliases as soon as the composer meets one (before
-    anything is expanded or built)."""
+    anything is expanded or built), and a key given twice in one mapping."""
 
     def compose_node(self, parent, index):
         event = self.peek_event()
         if isinstance(event, yaml.AliasEvent):
-            raise _AnchorFound(f"an alias (*{event.anchor})", event.start_mark)
+            raise _Refused(f"an alias (*{event.anchor})", event.start_mark)
         if getattr(event, "anchor", None) is not None:
-            raise _AnchorFound(f"an anchor (&{event.anchor})", event.start_mark)
+            raise _Refused(f"an anchor (&{event.anchor})", event.start_mark)
         return super().compose_node(parent, index)
+
+    def construct_mapping(self, node, deep=False):
+        seen = set()
+        for key_node, _ in node.value:          # a key given twice: YAML keeps the last silently
+            key = self.construct_object(key_node, deep=True)
+            if key in seen:
+                raise _Refused(f"the key {key!r} twice", key_node.start_mark)
+            seen.add(key)
+        return super().construct_mapping(node, deep=deep)
 
 
 def _short(value, limit: int = 60) -> str:
@@ -257,7 +266,10 @@ def _read_yaml(path: Path) -> dict:
     loader = _PlainLoader(text)
     try:
         data = loader.get_single_data()
-    except _AnchorFound as exc:
+    except _Refused as exc:
+        if exc.what.startswith("the key"):
+            raise ConfigError(f"{path}: {exc.what[:60]} in one mapping (line "
+                              f"{exc.mark.line + 1}); give each key once") from None
         raise ConfigError(f"{path}: YAML anchors and aliases are not allowed in a config (found "
                           f"{exc.what[:40]} at line {exc.mark.line + 1}); write each value out"
                           ) from None

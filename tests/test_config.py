@@ -117,3 +117,13 @@ def test_config_errors_name_the_file_and_the_problem(tmp_path):
     assert cfg["_reject_on_from"] == str(f)
     assert config.fingerprint(cfg) == config.fingerprint(config.load({"reject_on":
                                                                       ["lattice-gaind"]}))
+
+
+def test_a_key_given_twice_is_refused(tmp_path):
+    """YAML keeps the last of two equal keys without a word; a config says which line."""
+    from driftwatch import config
+    from driftwatch.errors import ConfigError
+    f = tmp_path / "c.yaml"
+    f.write_text("rules:\n  lattice:\n    within: 1e-3 Å\n    within: 2e-3 Å\n")
+    with pytest.raises(ConfigError, match=r"the key 'within' twice in one mapping \(line 4\)"):
+        config.load(str(f))
