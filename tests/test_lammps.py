@@ -317,3 +317,12 @@ def test_a_dump_of_a_group_says_it_holds_part_of_the_structure():
     run = read_run(d / "sub.lammpstrj")
     assert run.natoms == 4
     assert any("the dump holds 4 of the job's 8 atoms" in w for w in run.warnings)
+
+
+def test_a_script_alone_is_read_with_its_includes_and_variables():
+    """No log: the script's include file sets units metal and the variables that name the dump
+    and the mass; it was refused as reduced units and as naming no dump."""
+    d = LMP / "si8_script_include_variables"
+    assert "include params.inc" in (d / "in.kx14").read_text()
+    run = read_run(d / "dump.kx14.lammpstrj")
+    assert set(run.numbers.tolist()) == {14} and run.code_settings["units"] == "metal"

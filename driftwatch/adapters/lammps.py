@@ -34,7 +34,7 @@ __all__ = ["read_lammps_dump", "job_of", "register_all"]
 _SCRIPT_NAMES = re.compile(r"(?i)^(in\..+|.+\.in|.+\.lmp|.+\.lammps|.*\blog\.lammps(\.\d+)?|"
                            r"log\..+\.lammps)$")
 _COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|undump|fix|minimize|run|"
-                      r"min_style|thermo_modify|dump_modify|create_box)[ \t]+(\S.*)$")
+                      r"min_style|thermo_modify|dump_modify|create_box|variable)[ \t]+(\S.*)$")
 _STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
 _LOOP_ATOMS = re.compile(r"^Loop time of .* with (\d+) atoms")
 _STEP_LIMIT = ("max iterations", "max force evaluations")
@@ -97,6 +97,27 @@ def _potential(header: list, row: list) -> float | None:
     return None
 
 
+def _with_includes(lines, path: Path, ctx: ReadContext, depth: int = 0):
+    """The lines of an input script with the files its ``include`` commands name inlined."""
+    for raw in lines:
+        yield raw
+        f = raw.split("#", 1)[0].split()
+        if f[:1] == ["include"] and len(f) > 1 and depth < 8:
+            inc = path.parent / f[1]
+            if inc.is_file():
+                ctx.uses(inc)
+                with Lines(inc) as fh:
+                    yield from _with_includes(fh, inc, ctx, depth + 1)
+
+
+def _substituted(line: str, variables: dict) -> str:
+    """``${name}`` and ``$x`` of a command replaced by the values of the script's variables."""
+    if "$" not in line:
+        return line
+    line = re.sub(r"\$\{(\w+)\}", lambda m: variables.get(m.group(1), m.group(0)), line)
+    return re.sub(r"\$([A-Za-z])", lambda m: variables.get(m.group(1), m.group(0)), line)
+
+
 def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
     """Parse the commands (and, for a log, the minimiser's stops and thermo) of one file."""
     job = Job(source=path)
@@ -105,9 +126,11 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
     pending_masses = []
     dump_id, dump_on = None, False
     ctx.uses(path)
+    variables: dict = {}
+    is_log = peek(path, 16).startswith(b"LAMMPS (")        # a log echoes its includes
     with Lines(path) as fh:
-        for raw in fh:
-            line = raw.split("#", 1)[0].strip()
+        for raw in (fh if is_log else _with_includes(fh, path, ctx)):
+            line = _substituted(raw.split("#", 1)[0].strip(), variables)
             if header is not None:                    # inside a thermo table, to "Loop time"
                 f = line.split()
                 if len(f) == len(header) and f[0].lstrip("-").isdigit():
@@ -147,7 +170,9 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
             if not m:
                 continue
             cmd, args = m.group(1), m.group(2).split()
-            if cmd == "units":
+            if cmd == "variable" and len(args) >= 3 and args[1] in ("string", "index", "equal"):
+                variables.setdefault(args[0], args[2].strip('"'))   # LAMMPS keeps the first
+            elif cmd == "units":
                 job.units = args[0]
             elif cmd == "mass" and len(args) >= 2:
                 pending_masses.append((args[0], args[1]))
