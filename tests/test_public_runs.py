@@ -254,11 +254,11 @@ def test_lammps_types_from_the_input_scripts_masses(tmp_path):
         elif len(f) == 9 and f[2] in ("Cu", "Ni"):
             ln = " ".join(f[:2] + f[3:])
         lines.append(ln)
-    (tmp_path / "relax.lammpstrj").write_text("\n".join(lines) + "\n")
+    (tmp_path / "relax.dump").write_text("\n".join(lines) + "\n")     # as in.relax names it
     with pytest.raises(InputError, match="cannot be named"):
-        read_run(tmp_path / "relax.lammpstrj")
+        read_run(tmp_path / "relax.dump")
     shutil.copy(PUB / "lammps_relax" / "in.relax", tmp_path / "in.relax")
-    run = read_run(tmp_path / "relax.lammpstrj")
+    run = read_run(tmp_path / "relax.dump")
     ref = read_run(PUB / "lammps_relax" / "relax.dump.gz")
     assert run.numbers.tolist() == ref.numbers.tolist()
     np.testing.assert_allclose(run.positions, ref.positions, atol=0)
