@@ -730,18 +730,20 @@ to be near it: a slightly other symprec gives another verdict."""
 
 
 def _near_edge(frames, symprec: float) -> str:
-    """" (the final structure's group changes N % below/above it, at X Å)" when a bracketed change
-    of the final frame's group lies within a factor :data:`NEAR_EDGE` of ``symprec``, else ""."""
+    """" (the final structure's group changes N % below/above it, between X and Y Å)" when a
+    bracketed change of the final frame's group lies within a factor :data:`NEAR_EDGE` of
+    ``symprec``, else ""."""
     bps = [b for b in ((frames[-1].get("symmetry") or {}).get("breakpoints") or [])
            if b.get("kind") == "group" and b.get("low") and b.get("high")]
     if not bps or not symprec:
         return ""
-    c = min((math.sqrt(b["low"] * b["high"]) for b in bps),
-            key=lambda c: abs(math.log(c / symprec)))
+    b = min(bps, key=lambda b: abs(math.log(math.sqrt(b["low"] * b["high"]) / symprec)))
+    c = math.sqrt(b["low"] * b["high"])
     if abs(math.log(c / symprec)) > math.log(NEAR_EDGE):
         return ""
     return (f" (the final structure's group changes {abs(c / symprec - 1) * 100:.0f} % "
-            f"{'below' if c < symprec else 'above'} it, at {_g(c)} Å)")
+            f"{'below' if c < symprec else 'above'} it, between {_g(b['low'])} and "
+            f"{_g(b['high'])} Å)")
 
 
 def _looser(sv) -> str | None:

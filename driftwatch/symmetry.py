@@ -347,6 +347,9 @@ def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
 SWEEP_CALLS = 100
 """The most spglib calls one scan spends probing the neighbours of a flicker (:func:`_sweep`)."""
 SWEEP_STEP = 0.35
+SWEEP_PROBES = 2
+"""Probes in each stretch of a grid interval that holds a chain of changes (A -> B -> C), to tell a
+chain from a flicker (:func:`_sweep`)."""
 """The probing step of :func:`_sweep`: ``precision ** SWEEP_STEP`` in log symprec."""
 
 
@@ -354,9 +357,9 @@ def _sweep(probe, key, grid, values, brackets, ratio):
     """``brackets`` completed where spglib flickered.
 
     spglib's verdict is not monotonic in symprec: where one grid interval holds a change and its
-    return (the verdict went A -> B -> A), it often flickers over a wider range than that
-    interval, in windows of a few per cent that grid points a factor ~2 apart step over. So that
-    interval and its neighbours are probed at steps of ``ratio ** SWEEP_STEP`` (1.7 % for the
+    return (the verdict went A -> B -> A), or a chain of changes that a few probes contradict, it
+    often flickers over a wider range than that interval, in windows of a few per cent that grid
+    points a factor ~2 apart step over. So that interval and its neighbours are probed at steps of ``ratio ** SWEEP_STEP`` (1.7 % for the
     default 1.05) in log symprec, outwards, as long as the probing finds changes the grid did not
     show (at most :data:`SWEEP_CALLS` calls per scan). Windows narrower than the step can stay
     hidden. Returns all brackets, sorted, those of a probed interval replaced by what its probing
@@ -367,10 +370,21 @@ def _sweep(probe, key, grid, values, brackets, ratio):
         i = min(max(0, int(np.searchsorted(grid, b[0], side="right")) - 1), n - 1)
         per[i].append(b)
 
-    def reverses(i):                 # the verdict came back within the interval: A -> B -> A
-        chain = [key(values[i])] + [key(b[3]) for b in sorted(per[i], key=lambda b: b[0])]
-        return len(set(chain)) < len(chain)
-    busy = [i for i in range(n) if len(per[i]) >= 2 and reverses(i)]
+    def flickers(i):
+        """The verdict came back within the interval (A -> B -> A); or, for a chain of different
+        verdicts (A -> B -> C), a few probes between its brackets disagree with it."""
+        bs = sorted(per[i], key=lambda b: b[0])
+        chain = [key(values[i])] + [key(b[3]) for b in bs]
+        if len(set(chain)) < len(chain):
+            return True
+        ends = [grid[i]] + [x for b in bs for x in (b[0], b[2])] + [grid[i + 1]]
+        for k in range(0, len(ends), 2):             # the stretches of one verdict between them
+            lo, hi = ends[k], ends[k + 1]
+            for s in np.geomspace(lo, hi, SWEEP_PROBES + 2)[1:-1] if hi / lo > ratio else ():
+                if key(probe(float(s))) != chain[k // 2]:
+                    return True
+        return False
+    busy = [i for i in range(n) if len(per[i]) >= 2 and flickers(i)]
     if not busy:
         return brackets
     step, calls = ratio ** SWEEP_STEP, [0]

@@ -611,9 +611,10 @@ def test_a_verdict_near_a_change_of_the_final_group_says_so():
     run = read_run(DEMO / "L01_qe_vcrelax")
     rec = analyze(run)
     text = rec["summary"]["verdict"]["text"]
-    m = re.search(r"the final structure's group changes (\d+) % below it, at ([0-9.e-]+) Å", text)
+    m = re.search(r"the final structure's group changes (\d+) % below it, between ([0-9.e-]+) "
+                  r"and ([0-9.e-]+) Å", text)
     assert m and int(m.group(1)) == 12
-    edge = float(m.group(2))
+    edge = (float(m.group(2)) * float(m.group(3))) ** 0.5
     c = run.cells[-1].copy()
     c[2] = np.cross(c[0], c[1]) / np.linalg.norm(np.cross(c[0], c[1])) * np.linalg.norm(c[2])
     frac = np.linalg.solve(run.cells[-1].T, run.positions[-1].T).T

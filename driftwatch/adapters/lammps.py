@@ -70,6 +70,7 @@ class Job:
     sequence: list = dataclasses.field(default_factory=list)  # "minimize" / "run", in order
     repeated: set = dataclasses.field(default_factory=set)    # thermo steps printed twice
     natoms: int = 0                     # atoms of the job's last run ("Loop time ... with N atoms")
+    elsewhere: list = dataclasses.field(default_factory=list)  # logs/scripts of other dumps
 
 
 def _types(spec: str, ntypes: int) -> range:
@@ -136,12 +137,13 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                 if len(f) == len(header) and f[0].lstrip("-").isdigit():
                     e = _potential(header, f)
                     if e is not None and thermo_units in _TO_EV:
-                        step = int(f[0])
-                        if step in job.energies or step in job.repeated:   # reset_timestep
-                            job.repeated.add(step)
+                        step, e = int(f[0]), e * _TO_EV[thermo_units]
+                        old = job.energies.get(step)
+                        if step in job.repeated or (old is not None and e != old):
+                            job.repeated.add(step)   # reset_timestep: two energies, one step
                             job.energies.pop(step, None)
-                        else:
-                            job.energies[step] = e * _TO_EV[thermo_units]
+                        else:            # a new minimize or run prints its first step again
+                            job.energies[step] = e
                     continue
                 if not raw.startswith(("Loop time", "ERROR")):   # a WARNING, fix print: go on
                     continue
@@ -265,7 +267,8 @@ def job_of(dump: Path, ctx: ReadContext) -> Job:
                        if _SCRIPT_NAMES.match(strip_compression(n)) and (folder / n).is_file())
     except OSError:
         return Job()
-    logs = [n for n in names if "log" in n.lower() and n.lower().endswith(("lammps", ".lammps"))]
+    logs = [n for n in names if "log" in n.lower()
+            and strip_compression(n).lower().endswith("lammps")]
     ordered = logs + [n for n in names if n not in logs]
     jobs = []
     for n in ordered:
@@ -278,7 +281,9 @@ def job_of(dump: Path, ctx: ReadContext) -> Job:
     if named:
         return named[0]
     alone = [j for j in jobs if not j.names_other]     # one that names other dumps is another job's
-    return alone[0] if len(jobs) == 1 and alone else Job()
+    if len(jobs) == 1 and alone:
+        return alone[0]
+    return Job(elsewhere=[j.source.name for j in jobs if j.names_other])
 
 
 def _looks_like_lammps(path: Path) -> bool:
@@ -474,6 +479,8 @@ def read_lammps_dump(path, ctx: ReadContext):
             atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
         if last_step is not None and raw_step + offset <= last_step:   # reset_timestep:
             offset = last_step + 1 - raw_step                          # count on
+            ctx.warn(f"the dump's timesteps start again at {raw_step} after {last_step} "
+                     f"(reset_timestep): later steps are counted on from {raw_step + offset}")
         step = raw_step + offset
         # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's energy at
         # this timestep (none where the log printed a timestep twice), else none
@@ -527,7 +534,8 @@ def _no_types(path: Path, job: Job) -> str:
               (f" and its data file {job.data_file.name} no Masses" if job.data_file else "")
               if job.source is not None else
               "no LAMMPS input script or log.lammps naming it beside it (looked at in.*, *.in, "
-              "*.lmp, *.lammps, log.lammps)")
+              "*.lmp, *.lammps, log.lammps" + (f"; {', '.join(job.elsewhere)} name other dump "
+                                                f"files" if job.elsewhere else "") + ")")
     return (f"LAMMPS dump without an 'element' column, and {looked}: the atom types cannot be "
             f"named (add 'element' to the dump and dump_modify ... element A B)")
 
@@ -606,7 +614,7 @@ def register_all(register, register_code) -> None:
     """The LAMMPS dump row of the format table and the LAMMPS entry of the code table."""
     from .registry import Code
     register("lammps-dump", __name__ + ":read_lammps_dump", globs=("*.lammpstrj", "*.dump"),
-             magic=rb"\AITEM: TIMESTEP", description="LAMMPS text dump (types from an element "
+             magic=rb"\A(ITEM: UNITS\r?\n[^\n]*\n)?(ITEM: TIME\r?\n[^\n]*\n)?ITEM: TIMESTEP", description="LAMMPS text dump (types from an element "
                                                      "column, else the masses of the job's "
                                                      "script, log.lammps or data file)")
     register_code(Code(
