@@ -614,9 +614,9 @@ def register_all(register, register_code) -> None:
     """The LAMMPS dump row of the format table and the LAMMPS entry of the code table."""
     from .registry import Code
     register("lammps-dump", __name__ + ":read_lammps_dump", globs=("*.lammpstrj", "*.dump"),
-             magic=rb"\A(ITEM: UNITS\r?\n[^\n]*\n)?(ITEM: TIME\r?\n[^\n]*\n)?ITEM: TIMESTEP", description="LAMMPS text dump (types from an element "
-                                                     "column, else the masses of the job's "
-                                                     "script, log.lammps or data file)")
+             magic=rb"\A(ITEM: UNITS\r?\n[^\n]*\n)?(ITEM: TIME\r?\n[^\n]*\n)?ITEM: TIMESTEP",
+             description="LAMMPS text dump (types from an element column, else the masses "
+                         "of the job's script, log.lammps or data file)")
     register_code(Code(
         name="lammps", label="LAMMPS", formats=("lammps-dump",), folder=__name__ + ":no_folder",
         run_files=("*.lammpstrj*", "*.dump*", "in.*", "*.in", "*.lmp", "*.lammps", "log.*",
