@@ -556,8 +556,15 @@ def request_stop(run_dir, code, *, reason, dry_run=False, prefix=None, outdir=No
 
 # ---------------------------------------------------------------- follower
 def _end_marker(source, fmt) -> str | None:
+    if not source or not Path(source).is_file():
+        return None
+    from .adapters.registry import code_of_format as code_reading
+    code = code_reading(fmt)
+    fn = code.function("ended") if code is not None else None
+    if fn is not None:                     # a file beside the output says the job ended
+        return fn(source)
     markers = END_MARKERS.get(fmt)
-    if not markers or not source or not Path(source).is_file():
+    if not markers:
         return None
     tail = tail_bytes(source, 8192)
     for pattern, label in markers:

@@ -355,3 +355,20 @@ def test_a_chain_of_groups_that_flickers_is_swept():
     cell = (c, np.linalg.solve(c.T, p.T).T, run.numbers)
     lo, hi = pm[0][0], pm[0][1]
     assert spglib.get_symmetry_dataset(cell, symprec=(lo * hi) ** 0.5).number == 6    # spglib
+
+
+def test_follow_ends_when_the_jobs_log_says_it_ended(tmp_path):
+    """A dump has no end marker; its job's log.lammps ends with "Total wall time" (LAMMPS prints it
+    last): follow ends there, without waiting out --idle; with that line not written yet, it waits."""
+    import io
+
+    from driftwatch.live import follow
+    d = LMP / "si16_aniso_max_iterations"
+    rec = follow(d / "relax.dump", stream=io.StringIO(), idle=60, poll=0.05)
+    assert rec["live"]["ended"] == "end marker: log.lammps: Total wall time"
+    for name in ("relax.dump", "in.relax"):
+        shutil.copy(d / name, tmp_path / name)
+    log = (d / "log.lammps").read_text()
+    (tmp_path / "log.lammps").write_text(log[:log.index("Total wall time")])
+    rec = follow(tmp_path / "relax.dump", stream=io.StringIO(), idle=0.5, poll=0.05)
+    assert rec["live"]["ended"].startswith("idle")

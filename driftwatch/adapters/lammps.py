@@ -584,6 +584,15 @@ def cell_free(code_settings: dict) -> str | None:
     return code_settings.get("box_relax")
 
 
+def ended(source) -> str | None:
+    """"log.lammps: Total wall time" when the job whose log names the dump ``source`` has ended
+    (LAMMPS prints it last), else None."""
+    job = job_of(Path(source), ReadContext(str(source)))
+    if job.finished and job.source is not None:
+        return f"{job.source.name}: Total wall time"
+    return None
+
+
 def no_folder(folder, names, format=None, ctx=None):
     """A dump is a run of its own (discovery lists each file), never its folder."""
     return None
@@ -623,4 +632,4 @@ def register_all(register, register_code) -> None:
                    "*.data"),
         settings_files=("in.*", "*.in", "*.lmp", "*.lammps", "log.lammps"),
         run_kind=__name__ + ":run_kind", cell_free=__name__ + ":cell_free",
-        inputs_only=__name__ + ":inputs_only"), replace=True)
+        inputs_only=__name__ + ":inputs_only", ended=__name__ + ":ended"), replace=True)

@@ -113,6 +113,8 @@ class Code:
       did not claim, whether it holds the code's job inputs and no output (a job not run yet, or
       stopped before writing): what it holds, in words, and those files; ``ran`` True when the
       folder shows the job ran (a crash file, a log) and the words say how.
+    * ``ended(source) -> str | None``: that the job writing ``source`` has ended, as a file beside
+      it says (LAMMPS's log.lammps: "Total wall time"), in words; None while it may run on.
     * ``band(folder, names, ctx) -> (str, [names]) | None``: whether ``folder`` is the parent of a
       calculation of many images each run in a subfolder of its own (VASP's nudged elastic band):
       why it is no run, in words, and the subfolders that are the band's fixed inputs rather than
@@ -132,6 +134,7 @@ class Code:
     cell_free: Callable | str | None = None
     inputs_only: Callable | str | None = None
     band: Callable | str | None = None
+    ended: Callable | str | None = None
     aliases: tuple = ()
 
     def function(self, attr: str) -> Callable | None:
