@@ -548,11 +548,11 @@ def _local_pool(todo, cfg, workers, note: str = ""):
     finished = set()
     previous = _catch_sigterm(note)
 
-    def pool(items, width):                # yields results; True at the end if a worker died
-        ex = _new_pool(width, cfg)
+    def pool(items):                      # yields results; returns True if a worker died
+        ex = _new_pool(workers, cfg)
         broken = False
         try:
-            for res in _drain(ex, _chunks(items, _chunk_size(len(items), width)), cfg,
+            for res in _drain(ex, _chunks(items, _chunk_size(len(items), workers)), cfg,
                               pass_cfg=False):
                 if res.get("broken_pool"):
                     broken = True
@@ -564,20 +564,16 @@ def _local_pool(todo, cfg, workers, note: str = ""):
             raise
         finally:
             _end_pool(ex, wait=not broken)
-        yield broken
+        return broken
 
     try:
-        for attempt, width in enumerate((workers, workers)):
+        for attempt in range(2):
             left = [t for t in todo if t[0] not in finished]
             if attempt:
                 print(f"driftwatch: a worker process died (a crash in a native library or out of "
                       f"memory); analysing the {len(left)} unfinished runs again", file=sys.stderr)
-            for res in pool(left, width):
-                if res is True:
-                    break
-                if res is False:
-                    return
-                yield res
+            if not (yield from pool(left)):
+                return
         left = [t for t in todo if t[0] not in finished]
         print(f"driftwatch: a worker process died again; the {len(left)} unfinished runs go one at "
               f"a time, so only a run that kills its worker fails", file=sys.stderr)

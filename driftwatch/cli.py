@@ -280,7 +280,7 @@ def _cmd_inspect(args) -> int:
 def _cmd_tolerance(args) -> int:
     from . import config as _config, geometry
     from .adapters import read_run
-    from .rules import advice, shown_breakpoints
+    from .rules import advice, inversion_by_content, shown_breakpoints
     from .symmetry import SWEEP_STEP
     from .track import symmetry_entry
     cfg = _config.load(args.config)
@@ -293,10 +293,10 @@ def _cmd_tolerance(args) -> int:
     geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
     spec = symmetry_entry(run, i, geo, cfg)
     spec.pop("calls", None)
-    kinds = set(run.symmetry_types.tolist())
     adv = advice(spec, min_plateau=cfg["tolerance"]["min_plateau"],
                  precision=getattr(run, "position_precision", None),
-                 inversion_by_content=run.natoms == 1 or (run.natoms == 2 and len(kinds) == 1))
+                 inversion_by_content=inversion_by_content(
+                     run.natoms, len(set(run.symmetry_types.tolist()))))
     out = {"source": run.source, "frame": i, "dimension": geo.dimension, "spectrum": spec,
            "advice": adv}
     if args.json:

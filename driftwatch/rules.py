@@ -807,7 +807,7 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
     types, within = _types(dim), r["lattice"]["within"]
     precision = record["run"].get("position_precision")
     tol = advice(frames[-1].get("symmetry"), min_plateau=cfg["tolerance"]["min_plateau"],
-                 precision=precision, inversion_by_content=_inversion_by_content(record["run"]))
+                 precision=precision, inversion_by_content=_record_inversion_by_content(record["run"]))
     final = _state(frames[-1], types, within, dim)
     summary = {
         "verdict": {"direction": direction, "text": _text(direction, lv, sv, frames), "lattice": lv,
@@ -1000,14 +1000,18 @@ def shown_breakpoints(breakpoints) -> list[dict]:
     return out
 
 
-def _inversion_by_content(run: dict) -> bool:
+def inversion_by_content(n_atoms: int, n_kinds: int) -> bool:
     """True when the cell's content alone gives it inversion (P-1, layer group p-1): one atom
-    (inversion through it) or two atoms of one species (through their midpoint)."""
+    (inversion through it) or two atoms of one kind (through their midpoint)."""
+    return n_atoms == 1 or (n_atoms == 2 and n_kinds == 1)
+
+
+def _record_inversion_by_content(run: dict) -> bool:
+    """:func:`inversion_by_content` of a record's run (its species, else its formula's elements)."""
     import re
-    n = run.get("n_atoms")
-    species = set(run.get("species") or ()) or set(re.findall(r"[A-Z][a-z]?",
-                                                              str(run.get("formula") or "")))
-    return n == 1 or (n == 2 and len(species) == 1)
+    kinds = set(run.get("species") or ()) or set(re.findall(r"[A-Z][a-z]?",
+                                                            str(run.get("formula") or "")))
+    return inversion_by_content(run.get("n_atoms") or 0, len(kinds))
 
 
 def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | None = None,

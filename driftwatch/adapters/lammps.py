@@ -54,7 +54,6 @@ class Job:
     masses: dict = dataclasses.field(default_factory=dict)   # type -> mass (u)
     data_file: Path | None = None       # the ``read_data`` file
     box_relax: str | None = None        # "fix box/relax aniso", ... (words)
-    minimize: list = dataclasses.field(default_factory=list)  # (etol, ftol, maxiter, maxeval)
     stops: list = dataclasses.field(default_factory=list)    # (criterion, max force component)
     finished: bool = False              # the log's "Total wall time"
     energies: dict = dataclasses.field(default_factory=dict)  # timestep -> energy (eV)
@@ -67,6 +66,7 @@ class Job:
     elements: dict = dataclasses.field(default_factory=dict)   # type -> element of a data file's
     #                                     Masses comment ("1 24.305 # Mg", as ASE writes it)
     active: list = dataclasses.field(default_factory=list)    # per minimize: was this dump on
+    #                                     (one entry per minimize command, in order)
     sequence: list = dataclasses.field(default_factory=list)  # "minimize" / "run", in order
     repeated: set = dataclasses.field(default_factory=set)    # thermo steps printed twice
     natoms: int = 0                     # atoms of the job's last run ("Loop time ... with N atoms")
@@ -200,12 +200,8 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                                                               "z", "xy", "xz", "yz"))
                 job.box_relax = f"'fix box/relax{' ' + mode if mode else ''}'"
             elif cmd == "minimize" and len(args) >= 4:
-                try:
-                    job.minimize.append(tuple(float(a) for a in args[:4]))
-                    job.active.append(dump_on)
-                    job.sequence.append("minimize")
-                except ValueError:
-                    pass
+                job.active.append(dump_on)
+                job.sequence.append("minimize")
             elif cmd == "run" and args[0].isdigit() and int(args[0]) > 0:
                 job.sequence.append("run")
             elif cmd == "dump_modify" and "format" in args:
@@ -325,8 +321,7 @@ def _frames_text(path, ctx: ReadContext):
             if not head:
                 return
             extra = []               # dump_modify units yes / time yes: a line each, first
-            while head and head[0].startswith(("ITEM: UNITS", "ITEM: TIME\n", "ITEM: TIME ")) \
-                    and not head[0].startswith("ITEM: TIMESTEP"):
+            while head and head[0].startswith(("ITEM: UNITS", "ITEM: TIME\n")):
                 extra += head[:2]
                 head = head[2:] + fh.read_lines(2)
             if len(head) < 4 or not head[0].startswith("ITEM: TIMESTEP") or \
@@ -383,23 +378,27 @@ DEFAULT_DIGITS = 6
 ``dump_modify format``), which also drops trailing zeros."""
 
 
+def _atom_table(text: str) -> tuple[list[str], list[list[str]]]:
+    """(column names, fields of each atom line) of one frame's text."""
+    lines = text.split("\n")
+    at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), None)
+    if at is None:
+        return [], []
+    return lines[at].split()[2:], [f for ln in lines[at + 1:] if (f := ln.split())]
+
+
 def _coordinates(texts) -> tuple[str | None, list[str]]:
     """(kind "cartesian"/"fractional", the printed coordinate strings) of frames' texts."""
     kind, values = None, []
     for text in texts:
-        lines = text.split("\n")
-        at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), None)
-        if at is None:
-            continue
-        cols = lines[at].split()[2:]
+        cols, rows = _atom_table(text)
         for names, k in ((("x", "y", "z"), "cartesian"), (("xu", "yu", "zu"), "cartesian"),
                          (("xs", "ys", "zs"), "fractional"),
                          (("xsu", "ysu", "zsu"), "fractional")):
             if all(c in cols for c in names):
                 idx = [cols.index(c) for c in names]
                 kind = k
-                values += [f[i] for ln in lines[at + 1:] if (f := ln.split())
-                           for i in idx if i < len(f)]
+                values += [f[i] for f in rows for i in idx if i < len(f)]
                 break
     return kind, values
 
@@ -470,13 +469,13 @@ def read_lammps_dump(path, ctx: ReadContext):
             first = text
             if "element" not in columns:
                 _note_species(text, kwargs.get("specorder"), ctx)
-            if job.natoms and len(atoms_of(text)) < job.natoms:
-                ctx.warn(f"the dump holds {len(atoms_of(text))} of the job's {job.natoms} atoms "
-                         f"({job.source.name}: a dump of a group): its symmetry is that of those "
-                         f"atoms alone, not of the structure")
         with _w.catch_warnings():
             _w.simplefilter("ignore")
             atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
+        if n == 0 and job.natoms and len(atoms) < job.natoms:
+            ctx.warn(f"the dump holds {len(atoms)} of the job's {job.natoms} atoms "
+                     f"({job.source.name}: a dump of a group): its symmetry is that of those "
+                     f"atoms alone, not of the structure")
         if last_step is not None and raw_step + offset <= last_step:   # reset_timestep:
             offset = last_step + 1 - raw_step                          # count on
             ctx.warn(f"the dump's timesteps start again at {raw_step} after {last_step} "
@@ -497,25 +496,15 @@ def read_lammps_dump(path, ctx: ReadContext):
         ctx.settings["single_structure"] = f"{path.name}, one frame"
 
 
-def atoms_of(text: str) -> list[str]:
-    """The atom lines of one frame's text."""
-    lines = text.split("\n")
-    at = next((i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS")), len(lines))
-    return [ln for ln in lines[at + 1:] if ln.split()]
-
-
 def _note_species(text: str, order, ctx: ReadContext) -> None:
     """When two LAMMPS types are one element (a model of two sublattices: charges, spins), the
     types are told apart for spglib as the code's species (``Run.species``), in ASE's atom order
     (by id)."""
     if not order or len(set(order)) == len(order):
         return
-    lines = text.split("\n")
-    at = next(i for i, ln in enumerate(lines) if ln.startswith("ITEM: ATOMS"))
-    cols = lines[at].split()[2:]
+    cols, rows = _atom_table(text)
     if "type" not in cols:
         return
-    rows = [ln.split() for ln in lines[at + 1:] if ln.split()]
     it = cols.index("type")
     if "id" in cols:                                   # ASE orders the atoms by id
         rows.sort(key=lambda f: int(f[cols.index("id")]))
@@ -543,9 +532,9 @@ def _no_types(path: Path, job: Job) -> str:
 def _judge_stop(job: Job, ctx: ReadContext) -> None:
     """Mark the run unfinished when the job's last minimisation stopped at its step limit, or the
     log ends inside one; warn when it stopped for a reason that is no convergence test."""
-    if not job.minimize or job.source is None or "log" not in job.source.name.lower():
+    if not job.active or job.source is None or "log" not in job.source.name.lower():
         return
-    if len(job.stops) < len(job.minimize):
+    if len(job.stops) < len(job.active):
         if not job.finished:
             ctx.unfinished = ("cut short: LAMMPS's log ends inside a minimisation (job killed "
                               "or still running)")
