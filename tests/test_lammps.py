@@ -372,3 +372,60 @@ def test_follow_ends_when_the_jobs_log_says_it_ended(tmp_path):
     (tmp_path / "log.lammps").write_text(log[:log.index("Total wall time")])
     rec = follow(tmp_path / "relax.dump", stream=io.StringIO(), idle=0.5, poll=0.05)
     assert rec["live"]["ended"].startswith("idle")
+
+
+def _series(folder: Path) -> list[Path]:
+    """The files of a one-file-per-frame dump in timestep order (LAMMPS writes the timestep where
+    the pattern has '*', so the files' own order is lexical, not by step)."""
+    return sorted(folder.glob("relax.*.lammpstrj"), key=lambda p: int(p.name.split(".")[1]))
+
+
+@pytest.mark.parametrize("run_dir, dumps", [("si8_dump_per_frame", ""),
+                                            ("si8_dump_per_frame_subfolder", "frames")])
+def test_a_dump_written_one_file_per_frame_is_one_run_of_its_folder(tmp_path, run_dir, dumps):
+    """`dump ... relax.*.lammpstrj` writes one file per frame; the folder of those files is one run,
+    its frames those of ASE's reader on each file in timestep order, its energies the log's (the
+    job's log may sit in the folder above the dumps)."""
+    d = LMP / run_dir
+    files = _series(d / dumps)
+    assert len(files) == 27
+    run = read_run(d / dumps)
+    ref = [_ase(f, tmp_path)[0] for f in files]                                    # ASE
+    steps = [int(f.name.split(".")[1]) for f in files]
+    assert run.steps.tolist() == steps and steps[:3] == [0, 3, 6]
+    np.testing.assert_array_equal(run.positions, [a.positions for a in ref])
+    np.testing.assert_array_equal(run.cells, [a.cell.array for a in ref])
+    thermo = {int(r["Step"]): float(r["E_pair"]) + float(r["E_mol"])                  # LAMMPS
+              for r in _log_rows(d / "log.lammps")}
+    np.testing.assert_allclose(run.energies, [thermo[s] for s in run.steps.tolist()], rtol=1e-12)
+    assert run.unfinished is None and run.code_settings["box_relax"] == "'fix box/relax aniso'"
+    # the final structure: spglib on ASE's last frame gives the run's group
+    import spglib
+    last = ref[-1]
+    group = spglib.get_symmetry_dataset((last.cell[:], last.get_scaled_positions(),
+                                         last.numbers), symprec=1e-3).number
+    rec = analyze(d / dumps)
+    assert rec["summary"]["verdict"]["structure"]["final"]["group"] == group == 227   # Fd-3m
+    # an audit lists one run per job, no failed runs (the log above is that run's job)
+    res = audit([d], tmp_path / "audit", report=False, workers=1, progress="off")
+    assert list(res["records"]) == [f"{run_dir}/{dumps}".rstrip("/")] and not res["failed"]
+
+
+def test_one_file_of_a_per_frame_dump_is_read_alone_and_a_cut_file_ends_the_series(tmp_path):
+    d = LMP / "si8_dump_per_frame"
+    files = _series(d)
+    one = read_run(files[3])
+    assert len(one) == 1 and any("read alone" in w and "all 27 files" in w for w in one.warnings)
+    # a file cut short (the job killed while writing it) ends the series there, and is said
+    copy = tmp_path / "cut"
+    shutil.copytree(d, copy)
+    cut = copy / files[10].name
+    cut.write_text("".join(cut.read_text().splitlines(keepends=True)[:-3]))
+    run = read_run(copy)
+    assert len(run) == 10 and run.steps[-1] == 27 and run.unfinished
+    assert any(f"{files[10].name} is cut short: the 16 files after it" in w for w in run.warnings)
+    # another dump beside the series: no folder run, every file a run of its own
+    shutil.copy(LMP / "cdte8_final_only" / "final.dump", copy / "final.dump")
+    res = audit([copy], tmp_path / "audit", report=False, workers=1, progress="off")
+    ids = list(res["records"]) + [f["run"] for f in res["failed"]]
+    assert "cut/final.dump" in ids and f"cut/{files[0].name}" in ids and res["runs"] == 28

@@ -6,8 +6,10 @@ LAMMPS ran, includes and loops expanded; else its input script) name the types' 
 relaxed box (``fix ... box/relax``) and what ran (``minimize`` or MD ``run``). The log adds how
 each minimisation stopped ("Stopping criterion = max iterations" is a run at its step limit) and
 the thermo energies at the steps it printed. A script or log counts as the dump's job when it
-names the dump's file in a ``dump`` or ``write_dump`` command (a pattern with ``*``: one file per
-frame), or is the folder's only one and names no other dump.
+names the dump's file in a ``dump`` or ``write_dump`` command, or is the folder's only one and
+names no other dump; a log in the folder above counts when it names the dump by its subfolder. A
+pattern with ``*`` writes one file per frame: a folder of those files alone is one run of them all
+(format ``lammps-dump-series``), a file of them passed alone is read alone.
 
 Steps are LAMMPS timesteps (``ITEM: TIMESTEP``), so a dump written every N steps keeps the
 minimiser's own count, counted on across ``reset_timestep``. Frames are read one at a time; a frame
@@ -29,7 +31,7 @@ from ._io import Lines, peek, strip_compression
 from .ase_native import MAX_ATOMS
 from .run import ReadContext, decimals, frame_from_atoms
 
-__all__ = ["read_lammps_dump", "job_of", "register_all"]
+__all__ = ["read_lammps_dump", "read_lammps_series", "job_of", "register_all"]
 
 _SCRIPT_NAMES = re.compile(r"(?i)^(in\..+|.+\.in|.+\.lmp|.+\.lammps|.*\blog\.lammps(\.\d+)?|"
                            r"log\..+\.lammps)$")
@@ -37,6 +39,8 @@ _COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|undump|fix|minimi
                       r"min_style|thermo_modify|dump_modify|create_box|variable)[ \t]+(\S.*)$")
 _STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
 _LOOP_ATOMS = re.compile(r"^Loop time of .* with (\d+) atoms")
+_DUMP_NAMES = ("*.lammpstrj", "*.dump", "dump.*", "*.dump.*", "*.lammpstrj.*")
+"""Names of LAMMPS dump files as users write them (compression suffixes stripped)."""
 _STEP_LIMIT = ("max iterations", "max force evaluations")
 _CONVERGED = ("energy tolerance", "force tolerance", "forces are zero")
 _TO_EV = {"metal": 1.0, "real": 0.0433641043, "electron": 27.211386245988}
@@ -119,8 +123,28 @@ def _substituted(line: str, variables: dict) -> str:
     return re.sub(r"\$([A-Za-z])", lambda m: variables.get(m.group(1), m.group(0)), line)
 
 
+def _named(target: str, dump_name: str) -> str | None:
+    """The file name (a pattern with ``*``: one file a frame) by which a ``dump`` command's
+    ``target`` names the dump ``dump_name`` (its path relative to the script's folder), or None.
+    A target with folders names the dump at that path (or, for a dump beside the script, the
+    file of that name: copied there); an absolute one by its file name."""
+    target = strip_compression(target.strip("'\""))
+    if not target:
+        return None
+    rel = os.path.normpath(target)
+    here = "/" not in dump_name
+    if os.path.isabs(rel) or (here and rel != os.path.basename(rel)):
+        rel, want = os.path.basename(rel), os.path.basename(dump_name)
+    else:
+        want = dump_name
+    if rel == want or ("*" in rel and fnmatch.fnmatchcase(want, rel)):
+        return os.path.basename(rel)
+    return None
+
+
 def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
-    """Parse the commands (and, for a log, the minimiser's stops and thermo) of one file."""
+    """Parse the commands (and, for a log, the minimiser's stops and thermo) of one file;
+    ``dump_name``: the dump's path relative to the file's folder."""
     job = Job(source=path)
     header, thermo_units = None, None
     last_stop_block: dict | None = None
@@ -183,8 +207,8 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
             elif cmd in ("dump", "write_dump"):
                 target = args[4] if cmd == "dump" and len(args) > 4 else \
                     args[2] if cmd == "write_dump" and len(args) > 2 else ""
-                name = strip_compression(os.path.basename(target))
-                if name == dump_name or ("*" in name and fnmatch.fnmatchcase(dump_name, name)):
+                name = _named(target, dump_name)
+                if name is not None:
                     job.names_dump = True
                     job.per_frame = name if "*" in name else job.per_frame
                     dump_id = args[0] if cmd == "dump" else dump_id
@@ -254,32 +278,42 @@ def _data_masses(path: Path, ctx: ReadContext) -> tuple[dict, dict]:
 
 
 def job_of(dump: Path, ctx: ReadContext) -> Job:
-    """The job beside ``dump``: the log or input script that names it (a log first: it holds
-    what ran), else the folder's only log or script; an empty :class:`Job` when none."""
-    folder = dump.parent
-    ctx.lists(folder)
-    try:
-        names = sorted(n for n in os.listdir(folder)
-                       if _SCRIPT_NAMES.match(strip_compression(n)) and (folder / n).is_file())
-    except OSError:
-        return Job()
-    logs = [n for n in names if "log" in n.lower()
-            and strip_compression(n).lower().endswith("lammps")]
-    ordered = logs + [n for n in names if n not in logs]
-    jobs = []
-    for n in ordered:
-        try:
-            if _looks_like_lammps(folder / n):
-                jobs.append(_read_commands(folder / n, strip_compression(dump.name), ctx))
-        except (OSError, InputError):
-            continue
-    named = [j for j in jobs if j.names_dump]
+    """The job of ``dump``: the log or input script beside it that names it (a log first: it
+    holds what ran), else the folder's only log or script; else one in the folder above that names
+    the dump by its subfolder (``dump ... frames/relax.*.lammpstrj``); an empty :class:`Job` when
+    none."""
+    named, jobs = _jobs_in(dump.parent, strip_compression(dump.name), ctx)
     if named:
         return named[0]
     alone = [j for j in jobs if not j.names_other]     # one that names other dumps is another job's
     if len(jobs) == 1 and alone:
         return alone[0]
+    if not jobs and dump.parent.parent != dump.parent:
+        above, _ = _jobs_in(dump.parent.parent,
+                            f"{dump.parent.name}/{strip_compression(dump.name)}", ctx)
+        if above:
+            return above[0]
     return Job(elsewhere=[j.source.name for j in jobs if j.names_other])
+
+
+def _jobs_in(folder: Path, dump_name: str, ctx: ReadContext) -> tuple[list, list]:
+    """(the jobs in ``folder`` that name ``dump_name``, every job there), logs first."""
+    ctx.lists(folder)
+    try:
+        names = sorted(n for n in os.listdir(folder)
+                       if _SCRIPT_NAMES.match(strip_compression(n)) and (folder / n).is_file())
+    except OSError:
+        return [], []
+    logs = [n for n in names if "log" in n.lower()
+            and strip_compression(n).lower().endswith("lammps")]
+    jobs = []
+    for n in logs + [n for n in names if n not in logs]:
+        try:
+            if _looks_like_lammps(folder / n):
+                jobs.append(_read_commands(folder / n, dump_name, ctx))
+        except (OSError, InputError):
+            continue
+    return [j for j in jobs if j.names_dump], jobs
 
 
 def _looks_like_lammps(path: Path) -> bool:
@@ -423,12 +457,49 @@ def _note_rounding(texts, job: Job, ctx: ReadContext) -> None:
 def read_lammps_dump(path, ctx: ReadContext):
     """A LAMMPS text dump, frame by frame through ASE's parser, with the job beside it (module
     doc). Types become elements through the dump's ``element`` column, else the job's masses;
-    with neither, the run is refused (ASE would take type 1 as hydrogen)."""
+    with neither, the run is refused (ASE would take type 1 as hydrogen). One file of a dump
+    written one file a frame is read alone, and said (its folder reads them all)."""
+    path = Path(path)
+    job = job_of(path, ctx)
+    if job.per_frame:
+        ctx.warn(f"one file of a dump written one file per frame ({job.per_frame}, "
+                 f"{job.source.name}): read alone; its folder, when it holds no other dump, is "
+                 f"read as one trajectory of all {len(series(path, job.per_frame))} files")
+    yield from _read([path], job, ctx)
+
+
+def read_lammps_series(path, ctx: ReadContext):
+    """The files of a dump written one file a frame (``dump ... relax.*.lammpstrj``: LAMMPS puts
+    the timestep where the name has ``*``), read in timestep order as one trajectory; ``path`` is
+    one of them (the code table's folder rule, :func:`folder`, picks the first)."""
+    path = Path(path)
+    job = job_of(path, ctx)
+    files = series(path, job.per_frame) if job.per_frame else [path]
+    ctx.settings["dump_files"] = f"{len(files)} ({job.per_frame or path.name})"
+    yield from _read(files, job, ctx, whole=True)
+
+
+def series(dump: Path, pattern: str) -> list[Path]:
+    """The files beside ``dump`` that the one-file-a-frame ``pattern`` (one ``*``) names, in
+    timestep order."""
+    head, _, tail = pattern.partition("*")
+    rx = re.compile(re.escape(head) + r"(\d+)" + re.escape(tail.replace("*", "")) + r"\Z")
+    try:
+        names = os.listdir(dump.parent)
+    except OSError:
+        return [dump]
+    got = sorted((int(m.group(1)), n) for n in names
+                 if (m := rx.match(strip_compression(n))) and (dump.parent / n).is_file())
+    return [dump.parent / n for _, n in got] or [dump]
+
+
+def _read(files: list, job: Job, ctx: ReadContext, whole: bool = False):
+    """Frames of the dump ``files`` (one, or a one-file-a-frame series in timestep order) read
+    with their ``job``; ``whole``: the files are all the job wrote, so its stop is judged."""
     import warnings as _w
 
     from ase.io.lammpsrun import read_lammps_dump_text
-    path = Path(path)
-    job = job_of(path, ctx)
+    path = files[0]
     head = peek(path, 4000).decode("utf-8", "replace")
     columns = head.split("ITEM: ATOMS", 1)[-1].split("\n", 1)[0].split()
     kwargs = {}
@@ -457,39 +528,42 @@ def read_lammps_dump(path, ctx: ReadContext):
                  + ("reduced units: lengths in sigma are read as Å and types named by their "
                     "masses, so every Å threshold applies in sigma" if (job.units or "lj") == "lj"
                     else "lengths converted to Å by ASE"))
-    if not job.per_frame:            # one frame of many files: the job's end is not its end
+    if whole or not job.per_frame:   # one frame of many files: the job's end is not its end
         _judge_stop(job, ctx)
-    if job.per_frame:
-        ctx.warn(f"one file of a dump written one file per frame ({job.per_frame}, "
-                 f"{job.source.name}): read alone; to read the trajectory, join the files in "
-                 f"timestep order into one dump")
     offset, last_step, n = 0, None, 0
-    for raw_step, text in _frames_text(path, ctx):
-        if n == 0:
-            first = text
-            if "element" not in columns:
-                _note_species(text, kwargs.get("specorder"), ctx)
-        with _w.catch_warnings():
-            _w.simplefilter("ignore")
-            atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
-        if n == 0 and job.natoms and len(atoms) < job.natoms:
-            ctx.warn(f"the dump holds {len(atoms)} of the job's {job.natoms} atoms "
-                     f"({job.source.name}: a dump of a group): its symmetry is that of those "
-                     f"atoms alone, not of the structure")
-        if last_step is not None and raw_step + offset <= last_step:   # reset_timestep:
-            offset = last_step + 1 - raw_step                          # count on
-            ctx.warn(f"the dump's timesteps start again at {raw_step} after {last_step} "
-                     f"(reset_timestep): later steps are counted on from {raw_step + offset}")
-        step = raw_step + offset
-        # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's energy at
-        # this timestep (none where the log printed a timestep twice), else none
-        e = job.energies.get(raw_step)
-        fr = dataclasses.replace(frame_from_atoms(atoms, step), energy=None if e is None else
-                                 e * (len(atoms) if job.per_atom else 1))
-        last_step = step
-        n += 1
-        last = text
-        yield fr
+    for file in files:
+        ctx.uses(file)
+        cut = ctx.unfinished
+        for raw_step, text in _frames_text(file, ctx):
+            if n == 0:
+                first = text
+                if "element" not in columns:
+                    _note_species(text, kwargs.get("specorder"), ctx)
+            with _w.catch_warnings():
+                _w.simplefilter("ignore")
+                atoms = read_lammps_dump_text(io.StringIO(text), index=0, **kwargs)
+            if n == 0 and job.natoms and len(atoms) < job.natoms:
+                ctx.warn(f"the dump holds {len(atoms)} of the job's {job.natoms} atoms "
+                         f"({job.source.name}: a dump of a group): its symmetry is that of "
+                         f"those atoms alone, not of the structure")
+            if last_step is not None and raw_step + offset <= last_step:   # reset_timestep:
+                offset = last_step + 1 - raw_step                          # count on
+                ctx.warn(f"the dump's timesteps start again at {raw_step} after {last_step} "
+                         f"(reset_timestep): later steps are counted on from {raw_step + offset}")
+            step = raw_step + offset
+            # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's energy
+            # at this timestep (none where the log printed a timestep twice), else none
+            e = job.energies.get(raw_step)
+            fr = dataclasses.replace(frame_from_atoms(atoms, step), energy=None if e is None else
+                                     e * (len(atoms) if job.per_atom else 1))
+            last_step = step
+            n += 1
+            last = text
+            yield fr
+        if ctx.unfinished != cut and file is not files[-1]:    # a file cut short mid-series
+            ctx.warn(f"{file.name} is cut short: the {len(files) - files.index(file) - 1} files "
+                     f"after it are not read")
+            break
     if n:
         _note_rounding((first, last), job, ctx)
     if n == 1:
@@ -582,9 +656,26 @@ def ended(source) -> str | None:
     return None
 
 
-def no_folder(folder, names, format=None, ctx=None):
-    """A dump is a run of its own (discovery lists each file), never its folder."""
-    return None
+def folder(folder, names, format=None, ctx=None):
+    """A folder whose dumps are the files of one dump written one file a frame (two or more,
+    named by a ``*`` pattern of the job's log or script beside them or in the folder above) is
+    one run of them all; else None: a dump is a run of its own (discovery lists each file)."""
+    if format not in (None, "lammps-dump", "lammps-dump-series"):
+        return None
+    dumps = [n for n in names if not _SCRIPT_NAMES.match(strip_compression(n))
+             and any(fnmatch.fnmatchcase(strip_compression(n).lower(), g) for g in _DUMP_NAMES)]
+    if len(dumps) < 2:
+        return None
+    from .registry import FolderPick
+    first = Path(folder) / dumps[0]
+    ctx = ctx if ctx is not None else ReadContext(str(first))
+    job = job_of(first, ctx)
+    if not job.per_frame:
+        return None
+    files = series(first, job.per_frame)
+    if len(files) < 2 or not set(dumps) <= {f.name for f in files}:
+        return None
+    return FolderPick([("", files[0], "lammps-dump-series")])
 
 
 def inputs_only(folder: Path, names, ctx=None):
@@ -615,8 +706,12 @@ def register_all(register, register_code) -> None:
              magic=rb"\A(ITEM: UNITS\r?\n[^\n]*\n)?(ITEM: TIME\r?\n[^\n]*\n)?ITEM: TIMESTEP",
              description="LAMMPS text dump (types from an element column, else the masses "
                          "of the job's script, log.lammps or data file)")
+    register("lammps-dump-series", __name__ + ":read_lammps_series",
+             description="LAMMPS text dump written one file per frame, its files read in "
+                         "timestep order (picked by a LAMMPS run folder, never detected)")
     register_code(Code(
-        name="lammps", label="LAMMPS", formats=("lammps-dump",), folder=__name__ + ":no_folder",
+        name="lammps", label="LAMMPS", formats=("lammps-dump", "lammps-dump-series"),
+        folder=__name__ + ":folder",
         run_files=("*.lammpstrj*", "*.dump*", "in.*", "*.in", "*.lmp", "*.lammps", "log.*",
                    "*.data"),
         settings_files=("in.*", "*.in", "*.lmp", "*.lammps", "log.lammps"),
