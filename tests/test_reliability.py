@@ -270,6 +270,30 @@ def test_truncated_real_output_gives_a_record_with_a_warning_not_an_error(tmp_pa
         assert a["root_invariant"] == b["root_invariant"]       # the same numbers, never others
 
 
+def test_a_compressed_copy_cut_mid_stream_is_told_from_a_whole_copy_of_a_killed_job(tmp_path):
+    """A real pw.x output cut after its 3rd energy: gzipped whole, the job was killed (the gzip
+    stream ends with its trailer); a gzip copy cut mid-stream (a transfer or copy stopped early)
+    says its stream ends early instead. Either way the steps read are kept."""
+    pwo = (QE / "layer_oblique_to_hex" / "pw.out").read_bytes()
+    marks = [m.start() for m in re.finditer(rb"^!    total energy", pwo, re.M)]
+    killed = tmp_path / "killed" / "pw.out.gz"
+    killed.parent.mkdir()
+    killed.write_bytes(gzip.compress(pwo[:marks[3] + 30]))
+    whole = gzip.compress(pwo)
+    copy = tmp_path / "copy" / "pw.out.gz"
+    copy.parent.mkdir()
+    copy.write_bytes(whole[:len(whole) * 2 // 3])
+    with pytest.raises(EOFError):
+        gzip.decompress(copy.read_bytes())                           # Python's gzip: cut
+    a, b = driftwatch.analyze(killed)["run"], driftwatch.analyze(copy)["run"]
+    assert a["unfinished"] == "cut short: job killed or still running"
+    assert b["unfinished"] == "cut short: its compressed stream ends early: an incomplete copy, " \
+                              "or a job still writing it"
+    assert any("truncated" in w and "compressed stream ends early" in w for w in b["warnings"])
+    assert not any("compressed stream" in w for w in a["warnings"])
+    assert a["n_frames"] >= 1 and b["n_frames"] >= 1
+
+
 def test_one_atom_and_5000_atom_cells_are_analysed(tmp_path):
     # one atom: the lattice alone (square of side 3 Å: root invariant (0, 3, 3), shared/math.md 1.3)
     p = tmp_path / "one.traj"

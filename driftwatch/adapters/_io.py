@@ -35,7 +35,7 @@ import zlib
 from ..errors import InputError
 
 __all__ = ["COMPRESSED", "STREAM_ERRORS", "open_bytes", "open_regular", "check_readable",
-           "stream_truncated", "file_size", "peek", "strip_compression", "Lines", "tail_bytes",
+           "stream_truncated", "cut_stream", "CUT_COPY", "file_size", "peek", "strip_compression", "Lines", "tail_bytes",
            "max_decompressed", "quiet_numbers", "NotRegularFile", "MAX_DECOMPRESSED", "MAX_RATIO",
            "MAX_TEXT_RATIO", "RATIO_FLOOR", "MAX_LINE", "STEP"]
 
@@ -152,6 +152,17 @@ def _kind(path):
 
 
 # ---------------------------------------------------------------- bounded decompression
+_CUT: set = set()
+"""Compressed files (absolute paths) whose stream ended before its end marker when last read."""
+CUT_COPY = "its compressed stream ends early: an incomplete copy, or a job still writing it"
+
+
+def cut_stream(path) -> bool:
+    """Whether the compressed file ``path`` ended mid-stream when it was last read to its end
+    (a copy cut short, not a whole file of a killed job)."""
+    return os.path.abspath(path) in _CUT
+
+
 class _Decompressed(io.RawIOBase):
     """Incremental, bounded decompression that survives a cut file.
 
@@ -197,6 +208,10 @@ class _Decompressed(io.RawIOBase):
         """Compressed bytes handed to the decompressor (bzip2 and xz buffer at most one chunk)."""
         return self._read - len(self._pending)
 
+    def _cut(self) -> None:
+        self.truncated = True
+        _CUT.add(os.path.abspath(self.name))
+
     def _step(self) -> bytes:
         """Up to STEP bytes of output; b"" only at the end of the data."""
         d = self._d
@@ -207,6 +222,7 @@ class _Decompressed(io.RawIOBase):
                 if not rest:
                     rest = self._read_raw()
                     if not rest:
+                        _CUT.discard(os.path.abspath(self.name))
                         return b""
                 d = self._d = self._NEW[self._kind]()
                 self._pending = rest
@@ -214,9 +230,8 @@ class _Decompressed(io.RawIOBase):
                 if not self._pending:
                     self._pending = self._read_raw()
                     if not self._pending:            # no more input, member not finished
-                        out = d.flush()
-                        self.truncated = True
-                        return out
+                        self._cut()
+                        return d.flush()
                 out = d.decompress(self._pending, STEP)
                 self._pending = d.unconsumed_tail
             else:
@@ -224,7 +239,7 @@ class _Decompressed(io.RawIOBase):
                     if not self._pending:
                         self._pending = self._read_raw()
                         if not self._pending:
-                            self.truncated = True
+                            self._cut()
                             return b""
                     out = d.decompress(self._pending, STEP)
                     self._pending = b""
@@ -239,7 +254,8 @@ class _Decompressed(io.RawIOBase):
         try:
             out = self._step()
         except (zlib.error, OSError, EOFError, lzma.LZMAError):
-            out, self.truncated = b"", True
+            out = b""
+            self._cut()
         self._out, self._pos = out, 0
         if not out:
             self._eof = True

@@ -313,6 +313,14 @@ class ReadContext:
     def truncated(self, message: str) -> None:
         """Warn that the file is cut short (``message`` starts "truncated ...") and mark the run
         unfinished."""
+        from ._io import CUT_COPY, cut_stream
+        if cut_stream(self.path.split("::")[0]):   # a compressed copy cut, not a killed job
+            killed = "job killed or still running"
+            message = message.replace(killed, CUT_COPY) if killed in message \
+                else f"{message} ({CUT_COPY})"
+            self.warn(message)
+            self.unfinished = f"cut short: {CUT_COPY}"
+            return
         self.warn(message)
         self.unfinished = "cut short: job killed or still running"
 
