@@ -1140,11 +1140,15 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                         f"re-run the same command to finish\n")
     bar = Progress(len(runs), "driftwatch audit", enabled=progress_on(progress),
                    initial=len(runs) - len(todo))
+    from . import track
+    if how == "in process" and bar.enabled:        # a long run's frames, as they are checked
+        track.frame_progress = bar.within
     try:
         for r in gen:
             res.store(r)
             bar.update(r["ok"] or bool(r.get("skipped")))    # a skipped run has not failed
     finally:
+        track.frame_progress = None
         bar.close()
         getattr(gen, "close", lambda: None)()
 

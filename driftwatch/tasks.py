@@ -62,6 +62,22 @@ class Progress:
         else:
             self._line(self._text())
 
+    def within(self, done: int, total: int, unit: str = "frames") -> None:
+        """Progress inside the current item (a run of many frames asked of spglib one by one),
+        shown beside the items' count at the same pace as :meth:`update`."""
+        if not self.enabled:
+            return
+        now = time.monotonic()
+        if now - self._last < self.interval and done < total:
+            return
+        self._last = now
+        text = f"{self._text()}; this run: {done:,}/{total:,} {unit} checked"
+        if self.tty:
+            self.stream.write(f"\r{self.what}: {text}\033[K")
+            self.stream.flush()
+        else:
+            self._line(text)
+
     def grow(self, k: int) -> None:
         """``k`` more items to do (a task whose size is learnt as it goes)."""
         self.total += k

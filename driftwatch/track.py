@@ -31,6 +31,10 @@ __all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "sel
            "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
            "BULK_TYPES"]
 
+frame_progress = None
+"""``callable(done, total)`` or None: told after each frame whose tolerance spectrum was computed
+(the in-process audit shows a long run's progress with it)."""
+
 LAYER_TYPES = lattice2d.TYPES
 BULK_TYPES = lattice3d.TYPES
 
@@ -414,7 +418,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     precs = structure_symprecs(cfg)
     verdict_at = [float(cfg["rules"]["structure"]["symprec"])]
     calls = computed = 0
-    for i in with_spectrum:
+    tell = frame_progress if len(with_spectrum) > 100 else None
+    for k, i in enumerate(with_spectrum):
         key = (i, i == n - 1)               # the structure's brackets on the last frame only
         if key not in spectra:
             spectra[key] = symmetry_entry(run, i, geo, cfg, grid,
@@ -422,6 +427,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
                                           start=0 if key[1] and i else None)
             calls += int(spectra[key].pop("calls", 0) or 0)  # process-state dependent: timing only
             computed += 1
+            if tell is not None:
+                tell(k + 1, len(with_spectrum))
         entries[i]["symmetry"] = spectra[key]
         for s in (precs if i in (0, n - 1) else verdict_at):   # spglib's answers still memoised
             _group_at(run, geo, cfg, i, s, groups)

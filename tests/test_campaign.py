@@ -497,6 +497,31 @@ def test_progress_and_summary_table(tmp_path, capsys):
     assert got.out.startswith("run ") and got.err == ""      # progress off: the table still shown
 
 
+def test_a_long_run_checked_frame_by_frame_shows_its_progress(tmp_path, monkeypatch):
+    """An every-frame audit of one long run (a genuine 101-frame relaxation, tests/data/public
+    fairchem_slab_relax) prints how many of its frames spglib has checked while it runs, not only
+    when the run ends; the real progress line at no minimum interval."""
+    import io
+    from driftwatch import campaign, tasks, track
+    buf = io.StringIO()
+
+    class Now(tasks.Progress):
+        def __init__(self, *a, **k):
+            super().__init__(*a, **dict(k, stream=buf))
+            self.interval = 0.0
+
+    monkeypatch.setattr(campaign, "Progress", Now)
+    src = REPO / "tests" / "data" / "public" / "fairchem_slab_relax"
+    run_audit([src], tmp_path / "out", progress="on", config={"selection": {"all_frames": True}})
+    lines = buf.getvalue().splitlines()
+    inside = [ln for ln in lines if "this run:" in ln]
+    assert "0/1 runs (0 %)" in inside[0] and \
+        inside[0].endswith("this run: 1/101 frames checked")
+    assert inside[-1].endswith("this run: 101/101 frames checked") and len(inside) == 101
+    assert lines[-1].split("driftwatch audit: ")[1].startswith("1/1 runs (100 %)")
+    assert track.frame_progress is None                  # the hook is the audit's only
+
+
 def _boom(path):
     os._exit(3)        # a worker process dying, as on a crash in a native library or an OOM kill
     yield              # pragma: no cover
