@@ -197,6 +197,15 @@ def test_every_registered_format_round_trips(name, traj, tmp_path):
         np.testing.assert_allclose(run.energies, traj.energies, atol=1e-7)
         assert len(list(iter_frames(path, format=name))) == len(run)
         return
+    if name == "lammps-dump-series":     # never detected: picked by a LAMMPS folder, or -f
+        src = Path(__file__).parent / "data" / "lammps_trials" / "si8_dump_per_frame"
+        shutil.copytree(src, tmp_path / src.name)
+        run = read_run(tmp_path / src.name)          # real LAMMPS files (tests/test_lammps.py)
+        assert run.format == name and len(run) == 27
+        one = tmp_path / src.name / "relax.39.lammpstrj"
+        assert detect(one) == "lammps-dump" and len(read_run(one)) == 1
+        assert len(list(iter_frames(one, format=name))) == len(run)
+        return
     if name in GENUINE_OTHER:
         src, ase_format = GENUINE_OTHER[name]
         path = tmp_path / src.name
