@@ -323,9 +323,14 @@ def _cmd_tolerance(args) -> int:
               f"flicker in steps of a factor {spec['precision'] ** SWEEP_STEP:.3g}; a change that "
               f"returns "
               f"between two grid points of one verdict elsewhere is not seen)")
-    for g, d in spec["displacement"].items():
-        print(f"to {d['symbol']} ({g}): atoms move rms {d['rms']:.3g} Å, max {d['max']:.3g} Å; "
-              f"lattice strain {d['strain']:.2g} (dimensionless)")
+    for d in spec["displacement"].values():
+        if "rms" not in d:
+            print(f"to group {d['group']} ({d.get('operations')} operations, symprec "
+                  f"{d['symprec']:.3g} Å): not measured ({d['error']})")
+            continue
+        print(f"to {d['symbol']} ({d['group']}, {d['operations']} operations): atoms move rms "
+              f"{d['rms']:.3g} Å, max {d['max']:.3g} Å; lattice strain {d['strain']:.2g} "
+              f"(dimensionless)")
     print(f"symprec: {adv['reason']}")
     return EXIT_OK
 

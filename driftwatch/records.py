@@ -292,14 +292,17 @@ def chiral_deformation(frame: dict) -> float:
 def atoms_text(atoms: dict) -> str:
     """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output."""
     a, b = atoms["start"], atoms["end"]
-    head = (f"to {atoms['symbol']} ({atoms['group']}), the final structure's group at symprec "
-            f"{atoms['symprec']:.3g} Å: ")
+    ops = f", {atoms['operations']} operations" if atoms.get("operations") else ""
+    head = (f"to {atoms['symbol']} ({atoms['group']}{ops}), the final structure's group at "
+            f"symprec {atoms['symprec']:.3g} Å: ")
+    own = ("; the atoms alone, each frame in its own cell (the lattice's change is the drift)"
+           if atoms.get("cell_moved") else "")
     if "rms" not in a:
         return (head + f"rms {b['rms']:.3g} Å at the end (max {b['max']:.3g} Å); the first frame "
                        f"could not be measured against it (the group's operations do not pair its "
-                       f"atoms: they were too far from that configuration)")
+                       f"atoms: they were too far from that configuration)" + own)
     return head + (f"rms {a['rms']:.3g} Å at the start, {b['rms']:.3g} Å at the end (max "
-                   f"{a['max']:.3g} -> {b['max']:.3g} Å)")
+                   f"{a['max']:.3g} -> {b['max']:.3g} Å)" + own)
 
 
 def stages_text(record: dict) -> str | None:
@@ -398,18 +401,21 @@ CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "unfinished"
                "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
                "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
                "group_verdict", "group_symprec_A", "group_initial", "group_final",
-               "group_from_step", "flags", "recommended_symprec_A", "warnings", "error")
+               "group_from_step", "atoms_group", "atoms_symprec_A", "atoms_start_rms_A",
+               "atoms_end_rms_A", "flags", "recommended_symprec_A", "warnings", "error")
 """Columns of ``campaign.csv``; the same names (without the ``_A`` unit suffix) are the ase.db keys
 (:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed);
 ``not_relaxation`` says what the ionic steps are when they are no relaxation, ``unfinished`` why the
-run ended before the code finished it (cut short, or at its step limit; empty otherwise)."""
+run ended before the code finished it (cut short, or at its step limit; empty otherwise);
+``atoms_*`` are the summary's ``atoms`` (the displacement of the first and final frames to the most
+symmetric group of the final structure, :func:`atoms_text`)."""
 
 
 def verdict_fields(record: dict) -> dict:
     """The verdict of a record as flat fields (Å for lengths): one name and one value per fact,
     shared by the CSV row, the ase.db keys, the terminal tables and the report."""
     s = record["summary"]
-    v, d = s["verdict"], s.get("drift") or {}
+    v, d, at = s["verdict"], s.get("drift") or {}, s.get("atoms") or {}
     lat, st = v["lattice"], v["structure"]
     a, b = st.get("initial") or {}, st.get("final") or {}
     # the same group type at both ends with other operation counts (pure translations gained or
@@ -425,6 +431,10 @@ def verdict_fields(record: dict) -> dict:
         "group_verdict": st.get("direction"), "group_symprec": st.get("symprec"),
         "group_initial": grp(a), "group_final": grp(b),
         "group_from_step": st.get("from_step"),
+        "atoms_group": f"{at['symbol']} ({at['group']}, {at['operations']} operations)"
+        if at.get("operations") else "",
+        "atoms_symprec": at.get("symprec"), "atoms_start_rms": at.get("start", {}).get("rms"),
+        "atoms_end_rms": at.get("end", {}).get("rms"),
         "recommended_symprec": s["tolerance"].get("recommended_symprec"),
     }
 

@@ -821,22 +821,27 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
         "spglib_lattice": _spglib_lattice(frames, final["type"], within,
                                           r["structure"]["symprec"]),
         "atoms": None if record["run"].get("n_atoms") == 1 else   # one atom: always 0 Å
-        _atoms_toward(frames, cfg["rules"]["symprec_dependent"]["high"]),
+        _atoms_toward(frames, cfg["rules"]["symprec_dependent"]["high"],
+                      bool(record["run"].get("fixed_cell"))),
     }
     return flags, summary
 
 
-def _atoms_toward(frames, loosest) -> dict | None:
+def _atoms_toward(frames, loosest, fixed_cell: bool = True) -> dict | None:
     """Where the atoms came from, for the most symmetric group spglib finds on the final structure
     at a symprec up to ``loosest`` (Å): the displacement (RMS and max, Å) of the first frame and of
     the final one to that group's symmetric configuration (the final structure's instance of it).
-    When the first frame cannot be mapped onto that instance (its atoms moved too far for the
-    group's operations to pair them), ``start`` holds ``error`` instead: never a lower group the
-    atoms had all along. None for one frame, or when no group beyond P1 (p1) was measured."""
+    Most symmetric: the most operations in the cell (pure translations included, so Fm-3m beats
+    Pm-3m in a supercell and P4/mmm with a gained c/2 beats P4/mmm without), then the smaller
+    symprec. When the first frame cannot be mapped onto that instance (its atoms moved too far
+    for the group's operations to pair them), ``start`` holds ``error`` instead: never a lower
+    group the atoms had all along. ``cell_moved``: the cell changed, so the numbers are of the
+    atoms alone, each frame in its own cell. None for one frame, or when no group beyond P1 (p1)
+    was measured."""
     if len(frames) < 2:
         return None
     table = ((frames[-1].get("symmetry") or {}).get("displacement") or {}).values()
-    cand = [d for d in table if isinstance(d, dict) and "rms" in d and d.get("operations", 1) > 1
+    cand = [d for d in table if isinstance(d, dict) and "rms" in d and d.get("group", 1) != 1
             and d["symprec"] <= loosest * (1 + 1e-9)]
     if not cand:
         return None
@@ -844,8 +849,9 @@ def _atoms_toward(frames, loosest) -> dict | None:
     st = d.get("start") or {}
     start = {"rms": st["rms"], "max": st["max"]} if "rms" in st else \
         {"error": st.get("error") or "the first frame was not measured"}
-    return {"group": d["group"], "symbol": d["symbol"], "symprec": d["symprec"], "start": start,
-            "end": {"rms": d["rms"], "max": d["max"]}}
+    return {"group": d["group"], "symbol": d["symbol"], "operations": d["operations"],
+            "symprec": d["symprec"], "start": start, "end": {"rms": d["rms"], "max": d["max"]},
+            "cell_moved": not fixed_cell}
 
 
 def _lattice_note(run: dict) -> str | None:

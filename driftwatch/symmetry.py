@@ -951,6 +951,11 @@ def _translation_average(frac, numbers, lattice, T, basis, ds):
     return y, orbit.min(axis=0)
 
 
+_INVARIANT_TOL = 1e-6
+"""Å: how far a projected configuration's images under its group may lie from its atoms (float
+rounding; a consistent group gives ~1e-13)."""
+
+
 def _projection(lattice, frac, numbers, symprec, angle_tolerance, layer, ds=None):
     """Symmetric positions (input fractional) for the group found at symprec; see
     ``displacement_to_group``. ``ds``: the dataset of another structure of the same atoms in the
@@ -972,6 +977,19 @@ def _projection(lattice, frac, numbers, symprec, angle_tolerance, layer, ds=None
     reps = np.unique(rep_of)
     # 2) one operation per point operation, acting on the classes (modulo the primitive lattice)
     ybar, _, _ = _average(y[reps], numbers[reps], lattice, rot, tr, basis)
+    # spglib's operations at a loose symprec can pair the atoms inconsistently (a dataset naming
+    # a group whose operations it does not all hold, atoms moved by more than half a primitive
+    # cell): the average is then not invariant; refuse it. Checked: each class is one point
+    # modulo the primitive lattice, and the classes' points map onto one another under the
+    # point operations.
+    z = (y - y[rep_of]) @ np.linalg.inv(basis)
+    off = float(np.linalg.norm(((z - np.round(z)) @ basis) @ lattice, axis=1).max())
+    if off <= _INVARIANT_TOL:
+        off = _average(ybar, numbers[reps], lattice, rot, tr, basis)[2]
+    if off > _INVARIANT_TOL:
+        raise SymmetryError(f"spglib's operations at symprec={symprec:g} Å do not form a group of "
+                            f"this structure (its symmetric configuration is {off:.2g} Å off "
+                            f"its own images): no displacement to {ds.international}")
     index = np.searchsorted(reps, rep_of)
     xbar = ybar[index] + (y - y[rep_of])
     # minimum over origin choices: a uniform shift of a symmetric configuration stays symmetric
@@ -1023,9 +1041,13 @@ def displacement_to_group(cell, positions, numbers, symprec, *, angle_tolerance=
     Returns dict: ``group`` (number; layer group for layers), ``symbol``, ``symprec`` Å,
     ``angle_tolerance``, ``rms`` and ``max`` Å (per-atom displacement), ``max_atom`` (index),
     ``strain`` (Frobenius norm of the Green-Lagrange strain to the group-averaged lattice,
-    unitless), ``operations`` (point operations averaged), ``complete`` (False if only the
-    operations integral in the input cell could be used: then the displacement is to a subgroup
-    and may be too small). Raises SymmetryError if spglib fails at this symprec.
+    unitless), ``operations`` (the group's operations in the input cell, pure translations
+    included, as spglib and the spectrum count them), ``point_operations`` (one per point
+    operation: those averaged), ``complete`` (False if only the operations integral in the input
+    cell could be used: then the displacement is to a subgroup and may be too small). ``max`` is
+    taken at the origin that minimises the rms, so one atom of N displaced by d shows
+    (N - 1) d / N. Raises SymmetryError if spglib fails at this symprec, or when its operations
+    there are no group of the structure (an inconsistent dataset at a loose symprec).
     """
     lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
     layer = vacuum_axis is not None
@@ -1033,17 +1055,18 @@ def displacement_to_group(cell, positions, numbers, symprec, *, angle_tolerance=
     if ds is not None and len(ds.rotations) == 1:
         # the identity alone (P1 / p1, no pure translation): every configuration is symmetric
         rms = peak = strain = 0.0
-        worst, operations, complete = 0, 1, True
+        worst, point, complete = 0, 1, True
     else:
         ds, rot, _, shift, complete = _projection(lattice, frac, nums, float(symprec),
                                                   float(angle_tolerance), layer)
         rms, peak, worst = _sizes(shift)
-        strain, operations = _strain_norm(lattice, rot, layer), int(len(rot))
+        strain, point = _strain_norm(lattice, rot, layer), int(len(rot))
     return {
         "group": int(ds.number), "symbol": str(ds.international),
         "symprec": float(symprec), "angle_tolerance": float(angle_tolerance),
         "rms": rms, "max": peak, "max_atom": worst, "strain": strain,
-        "operations": operations, "complete": bool(complete),
+        "operations": int(len(ds.rotations)), "point_operations": point,
+        "complete": bool(complete),
     }
 
 
@@ -1102,8 +1125,11 @@ def _sizes(shift):
 def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None, start=None):
     """Displacement to each group seen in ``spec`` (a ``spectrum`` result for this structure).
 
-    Keyed by group number as str; each entry is ``displacement_to_group`` at the smallest symprec
-    at which spglib gave that group (grid points and bisection bracket ends), or ``{"group",
+    One entry per instance of a group: a group number with an operation count (the same group
+    with more pure translations, a gained c/2 or centring, is another instance), keyed by the
+    group number as str, or ``"number/operations"`` for a further instance of a number already
+    keyed; each entry is ``displacement_to_group`` at the smallest symprec at which spglib gave
+    that instance (grid points and bisection bracket ends), or ``{"group", "operations",
     "symprec", "error"}`` when that failed. ``vacuum_axis`` defaults to the spectrum's own.
     ``start`` (cell, positions of the run's first frame, same atoms): each entry also gets
     ``start`` = :func:`displacement_from` that frame to the same instance of the group (where the
@@ -1114,27 +1140,27 @@ def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None, start=None)
         raise GeometryError(f"vacuum_axis={vacuum_axis!r} but the spectrum was computed with "
                             f"vacuum_axis={spec['vacuum_axis']!r}")
     smallest = {}
-    for s, g in zip(spec["symprec"], spec["group"]):
-        if g and s < smallest.get(g, math.inf):
-            smallest[g] = s
+    seen = [(s, g, k) for s, g, k in zip(spec["symprec"], spec["group"], spec["operations"])]
     for b in spec["breakpoints"]:
-        if b["kind"] != "group":
-            continue
-        for s, g in ((b["low"], b["from"]), (b["high"], b["to"])):
-            if g and s < smallest.get(g, math.inf):
-                smallest[g] = s
+        if b["kind"] == "group":
+            seen += [(b["low"], b["from"], b["from_operations"]),
+                     (b["high"], b["to"], b["to_operations"])]
+    for s, g, k in seen:
+        if g and s < smallest.get((g, k), math.inf):
+            smallest[(g, k)] = s
     table = {}
-    for g, s in sorted(smallest.items(), key=lambda item: item[1]):
+    for (g, k), s in sorted(smallest.items(), key=lambda item: item[1]):
+        key = str(g) if str(g) not in table else f"{g}/{k}"
         try:
-            table[str(g)] = displacement_to_group(
+            table[key] = displacement_to_group(
                 cell, positions, numbers, symprec=s, angle_tolerance=spec["angle_tolerance"],
                 vacuum_axis=axis)
-            if start is not None and table[str(g)]["operations"] > 1:
-                table[str(g)]["start"] = displacement_from(
+            if start is not None and table[key]["operations"] > 1:
+                table[key]["start"] = displacement_from(
                     start, cell, positions, numbers, s, angle_tolerance=spec["angle_tolerance"],
                     vacuum_axis=axis)
         except SymmetryError as exc:
-            table[str(g)] = {"group": g, "symprec": s, "error": str(exc)}
+            table[key] = {"group": g, "operations": k, "symprec": s, "error": str(exc)}
     return table
 
 

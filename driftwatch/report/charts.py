@@ -495,27 +495,29 @@ def displacement(rec) -> Chart | None:
     """RMS (solid) and max (dashed) atomic displacement (Å) to each group spglib found, per step."""
     frames = rec["frames"]
     kind = "layer" if rec["geometry"].get("dimension") == 2 else "space"
-    series = {}
+    series, symbols = {}, {}     # one series per instance of a group: (number, operations)
     for i, f in enumerate(frames):
         disp = (f.get("symmetry") or {}).get("displacement") or {}
         for key, d in disp.items():
-            if not isinstance(d, dict):
+            if not isinstance(d, dict) or "rms" not in d:
                 continue
-            g = int(d.get("group") or (key if str(key).isdigit() else 0) or 0)
-            lab = f"{d.get('symbol', '?')} ({g})"
-            series.setdefault((g, lab), []).append((int(f.get("step", i)), d.get("rms"),
-                                                    d.get("max")))
+            g = int(d.get("group") or str(key).split("/")[0] or 0)
+            symbols[g] = d.get("symbol", "?")
+            series.setdefault((g, d.get("operations")), []).append(
+                (int(f.get("step", i)), d["rms"], d.get("max")))
     first = int(frames[0].get("step", 0)) if frames else 0
-    for key, d in ((frames[-1].get("symmetry") or {}).get("displacement") or {}).items():
+    for d in ((frames[-1].get("symmetry") or {}).get("displacement") or {}).values():
         st = d.get("start") if isinstance(d, dict) else None   # the first frame, on the final
         g = int(d.get("group") or 0) if isinstance(d, dict) else 0   # structure's instance
-        pts = series.get((g, f"{d.get('symbol', '?')} ({g})")) if g else None
+        pts = series.get((g, d.get("operations"))) if g else None
         if pts is not None and "rms" in (st or {}) and all(p[0] != first for p in pts):
             pts.append((first, st["rms"], st["max"]))
     if not series:
         return None
+    several = {g for g, _ in series if sum(1 for h, _ in series if h == g) > 1}
     lines, vals, steps_all, maxes = [], [], [], []
-    for (g, lab), pts in sorted(series.items()):
+    for (g, ops), pts in sorted(series.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0)):
+        lab = f"{symbols[g]} ({g}" + (f", {ops} operations)" if g in several else ")")
         pts.sort()
         st = [p[0] for p in pts]
         steps_all += st
@@ -523,9 +525,12 @@ def displacement(rec) -> Chart | None:
         vals += rms + mx
         col = style.group_colour(g, kind)
         same = coincident(rms, mx, "log") is not None
-        lines.append((lab, rms, {"colour": col, "marker": "o", "dash": None}, st, g))
+        more = g in several and ops != min(k or 0 for h, k in series if h == g)
+        key = f"{g}/{ops}" if more else str(g)     # a further instance: squares, same colour
+        lines.append((lab, rms, {"colour": col, "marker": "s" if more else "o", "dash": None},
+                      st, key))
         if not same:      # max drawn only where it differs from the RMS
-            maxes.append((f"{g} max", mx, {"colour": col, "marker": "v", "dash": (4, 2)}, st))
+            maxes.append((f"{key} max", mx, {"colour": col, "marker": "v", "dash": (4, 2)}, st))
     marks = series_marks(None, [ln[:4] for ln in lines])
     for m, ln in zip(marks, lines):
         m.key = str(ln[4])
