@@ -225,11 +225,13 @@ def _inspect_table(rec: dict) -> str:
     frames_word = END_POINTS if ends else f"{n} frame{'s' if n != 1 else ''}"
     blank = any(not r[-1] for r in rows[1:])
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
-                 f"{rec['run']['formula']}; type columns: deformation (Å of lattice-vector change) "
+                 f"{rec['run']['formula']}; type columns: deformation (Å, on spglib's symprec scale) "
                  f"to each Bravais type{'; ' + CHIRAL_WORDS if dim == 2 else ''}; "
                  f"a type is held within {rec['config']['rules']['lattice']['within']:g} Å"
                  + ("; group column blank where spglib was not asked (--all-frames asks it on every "
                     "step)" if blank else ""))
+    if "stands out" in (rec["geometry"].get("reason") or ""):
+        lines.append(f"    note: {rec['geometry']['reason']}")
     stages = stages_text(rec)
     if stages:
         lines.append(f"  stages: {stages}")

@@ -133,6 +133,11 @@ def vacuum_gaps(cells, positions) -> np.ndarray:
     return out[0] if single else out
 
 
+_THIN_VACUUM = 4.0
+"""Å: the smallest lone empty gap said to stand out in a cell read as bulk (the van der Waals gaps
+between atom planes of bulk layered crystals are ~3-3.5 Å; from memory, common practice)."""
+
+
 def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geometry:
     """Decide whether a run's cell holds a layer (dimension 2) or bulk (3). See the module doc.
 
@@ -170,8 +175,13 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
                                               f"{bulk_gap(gaps[0]):.1f} Å analyses its cell as "
                                               f"bulk")
     if not big:
+        g = np.sort(gaps[0])
+        k = int(np.argmax(gaps[0]))          # one gap that stands out: a layer with thin vacuum?
+        thin = (f"; the {g[2]:.2f} Å gap along axis {k} stands out: a layer with thin vacuum "
+                f"is read as one with geometry.vacuum_gap below {g[2]:.2f} Å"
+                if g[2] >= max(_THIN_VACUUM, 0.5 * gap, 1.5 * g[1]) else "")
         return Geometry(3, None, None, f"bulk: largest empty gaps {desc} Å, none above "
-                                       f"{gap} Å{drift}", gaps[0])
+                                       f"{gap} Å{thin}{drift}", gaps[0])
     k = big[0]
     n = plane_normals(cells[:1], k)[0]
     return Geometry(2, k, n, f"layer: empty gap {gaps[0, k]:.2f} Å > {gap} Å along axis {k} "

@@ -870,7 +870,7 @@ def _header(rec: dict) -> str:
     g = rec["geometry"]
     kind = "layer, 2D lattice" if g["dimension"] == 2 else "bulk, 3D lattice"
     return (f"driftwatch: following {rec['run']['source']} ({rec['run']['format']}; {kind}); "
-            f"deformations are Å of lattice-vector change"
+            f"deformations are Å on spglib's symprec scale"
             + (f"; {records.CHIRAL_WORDS}" if g["dimension"] == 2 else ""))
 
 

@@ -379,14 +379,20 @@ def _lattice_flags(frames, lv, D, r):
         t = lv["nearing"]
         frac = r["lattice"]["nearing_fraction"]
         shrink = _shrink(frames)                  # the drop measured against the lattice's size
-        near = np.nonzero(D[t] <= (1 - frac) * D[t][0] * shrink)[0]
-        k = int(near[0]) if near.size else len(frames) - 1
+        below = D[t] <= (1 - frac) * D[t][0] * shrink
+        k = len(frames) - 1                       # from the first frame of the last stretch
+        while k > 0 and below[k - 1]:             # that stays nearer, as gains are dated
+            k -= 1
         way = 100 * (1 - D[t][-1] / (D[t][0] * shrink[-1]))
+        held = [int(frames[i]["step"]) for i in np.flatnonzero(D[t] <= within)]
+        seen = (f"; it was within {_g(within)} Å at step{'s' if len(held) > 1 else ''} "
+                f"{', '.join(map(str, held[:4]))}{', ...' if len(held) > 4 else ''} on the way "
+                f"and left it" if held else "")
         flags.append(_flag("lattice-nearing", k, frames,
-                           f"the lattice moved toward {t} ({NAMES[t]}) without reaching it "
-                           f"within {_g(within)} Å: "
+                           f"the lattice moved toward {t} ({NAMES[t]}) and ends without reaching "
+                           f"it within {_g(within)} Å: "
                            f"deformation {_g(D[t][0])} -> {_g(D[t][-1])} Å "
-                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way)"
+                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way){seen}"
                            + _overshoot(frames, lv), t, float(D[t][-1]), frac))
     for p in lv["passed_through"][:1]:        # the longest stretch; the record lists them all
         t = p["type"]
@@ -414,9 +420,11 @@ def _lattice_flags(frames, lv, D, r):
                                f"(first {_from(frames, rev[0][0])}, last back "
                                f"{_from(frames, rev[-1][0])}; each side reaching a mirror "
                                f"deformation of twice min_chiral, up to "
-                               f"{_g(max(x[1] for x in rev))} Å), while its "
-                               f"two ends show no reversal: it passed through mirror-symmetric "
-                               f"lattices on the way", None, len(rev),
+                               f"{_g(max(x[1] for x in rev))} Å) and came back: its first "
+                               f"and last stretches more than twice min_chiral from a mirror "
+                               f"lattice have the same handedness (a frame nearer a mirror "
+                               f"lattice has no meaningful sign); it passed through "
+                               f"mirror-symmetric lattices on the way", None, len(rev),
                                r["handedness_flip"]["min_chiral"]))
     return flags
 
@@ -1075,13 +1083,18 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
         best = max(even, key=lambda u: (u[4], u[5]))
         why = (f"the plateau with the most operations among the widest (widths within a factor "
                f"{tie:.3g}, the brackets' precision squared, count as one)")
-    real = [u for u in usable if u[2] != 1 and u[5] >= min_plateau]
-    if best[2] == 1 and real:   # P1 (p1) is no verdict to settle on when a real group holds widely
+    # P1 (p1), and P-1 (p-1) where the content alone gives inversion, are no verdict to settle
+    # on when a real group holds widely
+    trivial_groups = (1, 2) if inversion_by_content else (1,)
+    real = [u for u in usable if u[2] not in trivial_groups and u[5] >= min_plateau]
+    if best[2] in trivial_groups and real:
         trivial = best[3]
+        content = (f"; {trivial} holds for any cell of one atom or of two atoms of one species"
+                   if best[2] == 2 else "")
         best = max(real, key=lambda u: u[5])
         why = (f"the widest plateau of a group other than {trivial} spanning at least a factor "
                f"{min_plateau:g} ({trivial} at smaller symprec only says the atoms are not symmetric "
-               f"to within those tolerances)")
+               f"to within those tolerances{content})")
     a, b, grp, name, ops, width = best
     rec = math.sqrt(a * b)
     plateau = _plateau_dict(best, grid_lo, grid_hi)

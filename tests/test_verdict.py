@@ -567,17 +567,28 @@ def test_flag_steps_and_thresholds_are_the_ones_the_outputs_show():
 
 def test_advice_says_when_its_group_is_given_by_the_cell_content_alone():
     """Two atoms of one element always have inversion through their midpoint (P-1, layer group
-    p-1; common practice): the bundled L02 (two Si atoms, real pw.x) is advised its p-1 plateau,
-    and the reason says that p-1 says nothing about the structure."""
+    p-1; common practice): the bundled L02 (two Si atoms, real pw.x) has a p-1 plateau 800x wide
+    and a p-3m1 one 10.9x wide, and is advised the p-3m1 one (p-1 says nothing about it), as a
+    real buckled Si2 layer of a field trial (tests/data/qe_trials, spglib's layer group p-3m1 from
+    0.025 Å) is; where no other group holds widely, the p-1 plateau's reason says so."""
     from driftwatch.adapters import read_run
+    from driftwatch.rules import advice
     from driftwatch.track import analyze
     run = read_run(DEMO / "L02_qe_vcrelax")
     assert run.natoms == 2 and len(set(run.numbers.tolist())) == 1
-    tol = analyze(run)["summary"]["tolerance"]
-    assert tol["plateau"]["group"] == 2
-    assert tol["reason"].endswith("so it says nothing about this structure")
+    rec = analyze(run)
+    tol = rec["summary"]["tolerance"]
+    assert tol["plateau"]["group"] == 72 and [r[2] for r in tol["ranges"]] == [2, 18, 72]
+    assert tol["reason"].endswith("p-1 holds for any cell of one atom or of two atoms of one "
+                                  "species)")
+    spec = rec["frames"][-1]["symmetry"]
+    only = advice(spec, min_plateau=20.0, inversion_by_content=True)   # p-3m1 too narrow now
+    assert only["plateau"]["group"] == 2
+    assert only["reason"].endswith("so it says nothing about this structure")
     b05 = analyze(read_run(DEMO / "B05_emt_bfgs.extxyz"))["summary"]["tolerance"]
     assert "says nothing about" not in b05["reason"]
+    sibuck = analyze(Path(__file__).parent / "data" / "qe_trials" / "si2_buckled_2dxy_passes_oc")
+    assert sibuck["summary"]["tolerance"]["plateau"]["group"] == 72
 
 
 def test_a_lattice_spglib_already_calls_more_specific_is_noted():
@@ -623,3 +634,49 @@ def test_a_verdict_near_a_change_of_the_final_group_says_so():
     assert got[0] != got[1] and got[1] == 72                                       # spglib
     b05 = analyze(read_run(DEMO / "B05_emt_bfgs.extxyz"))["summary"]["verdict"]["text"]
     assert "changes" not in b05
+
+
+def test_nearing_is_dated_from_the_stretch_it_holds_and_says_where_the_type_was_reached():
+    """A real buckled Si2 layer (pw.x 2Dxy vc-relax, tests/data/qe_trials) is within 1e-3 Å of oc
+    at steps 34 and 41 and ends 0.0115 Å from it: lattice-nearing is dated from the first step of
+    the last stretch nearer than half the start (as gains are), and says the type was reached on
+    the way, as passed-through does."""
+    rec = driftwatch.analyze(Path(__file__).parent / "data" / "qe_trials" /
+                             "si2_buckled_2dxy_passes_oc")
+    dfm = [f["deformation"]["oc"] for f in rec["frames"]]
+    steps = [f["step"] for f in rec["frames"]]
+    held = [s for s, d in zip(steps, dfm) if d <= 1e-3]
+    assert held == [34, 41] and dfm[-1] > 1e-2
+    (near,) = [f for f in rec["flags"] if f["code"] == "lattice-nearing"]
+    half = [d <= 0.5 * dfm[0] for d in dfm]          # nearing_fraction 0.5 (default)
+    k = len(half) - 1
+    while half[k - 1]:
+        k -= 1
+    assert near["step"] == steps[k] and all(half[k:]) and not half[k - 1]
+    assert "it was within 0.001 Å at steps 34, 41 on the way and left it" in near["message"]
+
+
+def test_a_handedness_excursion_ending_on_a_mirror_lattice_is_not_called_a_reversal_of_its_ends():
+    """A real EMT Cu layer (tests/data/layer_trials) swings to the other handedness and back, and
+    ends hexagonal (a mirror lattice, sign meaningless there): the flag speaks of its first and last
+    stretches away from mirror lattices, not of "its two ends"."""
+    rec = driftwatch.analyze(Path(__file__).parent / "data" / "layer_trials" /
+                             "cu1_oblique_frechet" / "relax.traj")
+    assert rec["frames"][0]["sign"] == 1 and rec["frames"][-1]["deformation"]["mirror"] < 1e-4
+    (flip,) = [f for f in rec["flags"] if f["code"] == "handedness-flip"]
+    assert "its first and last stretches more than twice min_chiral from a mirror lattice have " \
+           "the same handedness" in flip["message"] and "two ends" not in flip["message"]
+
+
+def test_a_layer_with_thin_vacuum_is_read_as_bulk_and_the_gap_that_stands_out_is_said(capsys):
+    from driftwatch import cli
+    d = Path(__file__).parent / "data" / "qe_trials" / "al1_thin_vacuum"
+    rec = driftwatch.analyze(d)
+    assert rec["geometry"]["dimension"] == 3
+    assert "the 5.00 Å gap along axis 2 stands out" in rec["geometry"]["reason"]
+    cli.main(["inspect", str(d)])
+    assert "geometry.vacuum_gap below 5.00 Å" in capsys.readouterr().out
+    as_layer = driftwatch.analyze(d, {"geometry": {"vacuum_gap": "4.0 Å"}})
+    assert as_layer["geometry"]["dimension"] == 2
+    fcc = driftwatch.analyze(DEMO / "B05_emt_bfgs.extxyz")             # a bulk crystal: no gap stands out
+    assert "stands out" not in fcc["geometry"]["reason"]

@@ -259,7 +259,7 @@ def _type_series(rec, key):
 
 
 def deformation(rec) -> Chart:
-    """Deformation (Å of lattice-vector change; what the flags use) to each type against step."""
+    """Deformation (Å on spglib's symprec scale; what the flags use) to each type against step."""
     frames, dim = rec["frames"], rec["geometry"].get("dimension")
     steps = _steps(frames)
     series = _type_series(rec, "deformation")

@@ -69,9 +69,12 @@ READ_ME = [
     "conorms, so near rectangular lattices (a zero conorm) they grow like the square root of a "
     "deformation: a cell a hundredth of a degree from a right angle can be a few hundredths of an "
     "Å away.",
-    "Deformation is Å of lattice-vector change: how much the cell's vector lengths and angles (times a "
-    "length) differ from their images under the type's symmetry operations (Lipschitz in the cell). It "
-    "is comparable with spglib's symprec (within about a factor 2), and the flag thresholds use it.",
+    "Deformation is in Å on spglib's symprec scale: how much the cell's vector lengths and angles "
+    "(times a length) differ from their images under the type's symmetry operations (Lipschitz in the "
+    "cell). It is comparable with spglib's symprec (within about a factor 2), and the flag thresholds "
+    "use it. It is not how far a lattice vector must move (a field trial's sheared and hexagonal "
+    "layers needed a third of it or less), and far from a type (above ~0.3 Å) it only orders the "
+    "types.",
     "The tolerance spectrum is spglib's verdict on a log grid of symprec (Å); a breakpoint is a "
     "bracket [low, high] Å in which the verdict changes. Verdicts that change inside the range you "
     "use are fragile.",
@@ -658,7 +661,7 @@ _CAPTIONS = {
                  "distance to the nearest lattice with a mirror line, Å; black) and sign × the "
                  "deformation to it (Å; what the handedness-flip rule compares with ±min chiral). "
                  "Zero is a mirror-symmetric lattice; a curve crossing it changed handedness.",
-    "deformation": "Deformation (Å of lattice-vector change, comparable with symprec; what the flags "
+    "deformation": "Deformation (Å on spglib's symprec scale; what the flags "
                    "use) to each type against ionic step; dashed lines are the flag thresholds.",
     "distance": "Root-space distance (Å). Near rectangular lattices it grows like the square root of "
                 "a deformation, so it is larger than the deformation there.",
@@ -831,7 +834,7 @@ def _index_page(runs, bad, failed, campaign) -> str:
             lb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "lattice")]
     parts.append("<h2>Across the campaign</h2>")
     parts.append(_figure(draw(charts.campaign_scatter(pts)),
-                         f"Each run's deformation (left; Å of lattice-vector change, what the flags use) "
+                         f"Each run's deformation (left; Å on spglib's symprec scale, what the flags use) "
                          f"and root-space distance (right; Å) to the type its verdict is about (the "
                          f"drift columns of the table), at its first against its last step "
                          f"({len(pts)} runs with a verdict; circles layers, squares bulk). Every "
