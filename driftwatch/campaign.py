@@ -911,6 +911,10 @@ def _slim(text: str, run_id: str, rec: dict | None = None) -> dict:
                          if k != "settings_from"}}
 
 
+COPIES_WHY = "a folder kept twice, a rerun of the same steps, or one-frame runs of one start"
+"""What runs that read the same frames may be, in words (the summary and the report)."""
+
+
 def _copies(ok: list[dict]) -> list[list[str]]:
     """Groups of runs that read the same frames (a run folder copied, e.g. ``outputs_bk/``): the
     same steps, energies and largest forces, the same code settings, and the same final structure
@@ -1021,8 +1025,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
         shown = "; ".join(copies_text(g) for g in groups[:3])
         print(f"copies: {len(groups)} group{'s' if len(groups) > 1 else ''} of runs that read the "
               f"same frames ({shown}{'; ...' if len(groups) > 3 else ''}; all in campaign.json "
-              f"copies): a folder kept twice, or a rerun that repeated the same steps; each is "
-              f"counted above once per copy", file=stream)
+              f"copies): {COPIES_WHY}; each is counted above once per copy", file=stream)
     if summary.get("not_relaxation"):
         what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
                        for x in summary["not_relaxation"])

@@ -63,7 +63,9 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("path", help="trajectory file or run folder")
     p.add_argument("-f", "--format", metavar="NAME",
                    help="input format, overriding detection (names: 'driftwatch formats')")
-    p.add_argument("--all-frames", action="store_true", help="run spglib on every frame")
+    p.add_argument("--all-frames", action="store_true",
+                   help="a tolerance spectrum on every frame (15-30 spglib calls a frame: about "
+                        "30x the default's time on a long run)")
     p.add_argument("-o", "--output", metavar="FILE", help="also write the run record (JSON) here")
     _common(p)
 
@@ -90,7 +92,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--overwrite", action="store_true", help="allow replacing outputs of another campaign")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
     p.add_argument("--all-frames", action="store_true",
-                   help="run spglib on every frame of every run (selection.all_frames)")
+                   help="a tolerance spectrum on every frame of every run "
+                        "(selection.all_frames; 15-30 spglib calls a frame)")
     p.add_argument("--progress", choices=("auto", "on", "off"), default="auto",
                    help="progress on stderr: updated in place on a terminal, a dated line every "
                         "30 s in a log (auto, on); off: none. The summary table always goes to "

@@ -368,6 +368,31 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
     return spec
 
 
+ENERGY_JUMP = 1.0
+"""eV per atom: a rise of the energy between two frames of a relaxation said as a likely blow-up
+(a relaxation's energy changes by meV to 0.1 eV/atom a step; common practice)."""
+
+
+def _energy_jumps(run: Run) -> list[str]:
+    """A relaxation whose energy rises by more than :data:`ENERGY_JUMP` per atom between two
+    frames of one stage, said (the largest such rise): its final frames may be a broken run's.
+    (Stages may differ in functional or cutoff, so their boundaries are not compared.)"""
+    e = run.energies
+    if e is None or run.not_relaxation or len(e) < 2 or run.kind == "end-points":
+        return []
+    rise = np.diff(np.asarray(e, float)) / max(run.natoms, 1)
+    for st in run.stages[1:]:
+        rise[int(st["first_frame"]) - 1] = np.nan
+    bad = np.flatnonzero(np.nan_to_num(rise, nan=0.0) > ENERGY_JUMP)
+    if not bad.size:
+        return []
+    k = int(bad[np.argmax(rise[bad])])
+    return [f"the energy rises by {rise[k] * run.natoms:.4g} eV ({rise[k]:.3g} eV/atom) from step "
+            f"{int(run.steps[k])} to step {int(run.steps[k + 1])}: a relaxation blowing up (a "
+            f"too long ionic step, a broken SCF)? Its later frames, and a verdict read from them, "
+            f"describe that; check the run"]
+
+
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
                     spectra: dict | None = None, groups: dict | None = None,
                     table: FrameTable | None = None, skip_newest: bool = False,
@@ -398,7 +423,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     entries = [dict(e) for e in table.entries]
     n = len(entries)
     odd = [] if skip_newest else geometry.position_warnings(run.cells, run.positions, run.pbc,
-                                                            run.steps)
+                                                            run.steps) + _energy_jumps(run)
     if odd:
         run = dataclasses.replace(run, warnings=(*run.warnings, *(f"{run.source}: {w}"
                                                                   for w in odd)))

@@ -243,7 +243,8 @@ def test_registry_has_the_formats_of_the_issue():
     """The formats the issue lists (common practice: names follow ASE's where they exist)."""
     assert {"traj", "extxyz", "vasp-xml", "vasp-out", "vasp-xdatcar", "espresso-out",
             "ase-db", "pymatgen-json"} <= set(formats())
-    assert set(WRITERS) | set(GENUINE_OTHER) | {"espresso-out", "vasp-error-archive"} >= \
+    assert set(WRITERS) | set(GENUINE_OTHER) | {"espresso-out", "vasp-error-archive",
+                                                "lammps-dump-series"} >= \
         set(BUILTIN), \
         "new format without a round trip"
 

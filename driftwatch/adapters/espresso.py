@@ -89,9 +89,11 @@ _DYNAMICS = {"Molecular Dynamics Calculation": "md",
 _VC_FIRST = re.compile(r"Entering Dynamics;\s+it\s*=\s*1\s")
 _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
+_NEW_VOLUME = re.compile(r"new unit-cell volume =.*\(\s*([\d.]+)\s*Ang\^3")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
 _MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
+          "new unit-cell volume",
           *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST, _GAVE_UP, *_ERRORS, _CRITERIA)
 
 
@@ -183,6 +185,27 @@ def _read_rows(fh, n, is_row, interruptible=False):
         if len(lines) < want:
             return None
     return rows
+
+
+def _unitless_cell(block, alat, volume, ctx: ReadContext, lineno: int) -> np.ndarray:
+    """A ``CELL_PARAMETERS`` card printed with no unit (pw.x prints one; an edited output may not):
+    Å from the unit whose volume matches the "new unit-cell volume" printed before it, alat (the
+    header's, as pw.x reads an input card with celldm(1) set) or bohr; said either way."""
+    Bohr, _ = _units()
+    rows = np.array([r.split()[:3] for r in block], float)
+    units = {"alat": alat, "bohr": Bohr} if alat else {"bohr": Bohr}
+    fits = {u: abs(abs(np.linalg.det(rows * f)) / volume - 1) < 1e-3 for u, f in units.items()} \
+        if volume else {}
+    unit = next((u for u, ok in fits.items() if ok), "alat" if alat else "bohr")
+    if fits.get(unit):                         # said once a file (warn keeps one of each)
+        ctx.warn(f"CELL_PARAMETERS without a unit (an edited output?): read in units of {unit}, "
+                 f"whose volume matches the new unit-cell volume printed before each")
+    else:
+        ctx.warn(f"line {lineno}: CELL_PARAMETERS without a unit (an edited output?): read in "
+                 f"units of {unit}; " + (f"the new unit-cell volume printed before it "
+                                         f"({volume:g} Å^3) matches no unit: check this output"
+                                         if volume else "no volume printed before it to check"))
+    return rows * units[unit]
 
 
 def _read_forces(fh, natoms):
@@ -280,6 +303,7 @@ def read_pw_out(path, ctx: ReadContext):
     cur: _Config | None = None
     alat = natoms = None
     pending_cell = None
+    volume = None       # Å^3: the "new unit-cell volume" printed before a CELL_PARAMETERS card
     seen_start = False
     nscf = False        # a run of this file was 'Band Structure Calculation'
     per_run: list[int] = []     # frames emitted per pw.x run (header) in this file
@@ -431,6 +455,9 @@ def read_pw_out(path, ctx: ReadContext):
                     break
                 if not cur.emitted:
                     cur.stress = s
+            elif "new unit-cell volume" in line:
+                m = _NEW_VOLUME.search(line)
+                volume = float(m.group(1)) if m else None
             elif line.startswith("CELL_PARAMETERS"):
                 block = _read_block(fh, 3)
                 if block is None:
@@ -440,6 +467,9 @@ def read_pw_out(path, ctx: ReadContext):
                 # "(alat)" with no value (pw.x before 5.0): in units of the header's alat
                 bare = "alat" in line.lower() and "=" not in line
                 pending_cell, _ = get_cell_parameters([line] + block, alat if bare else None)
+                if "(" not in line:              # no unit (an edited output): the printed volume
+                    pending_cell = _unitless_cell(block, alat, volume, ctx, fh.lineno - 3)
+                volume = None
             elif line.startswith("ATOMIC_POSITIONS"):
                 if ready(cur):
                     yield emit(cur)

@@ -39,6 +39,8 @@ _COMMAND = re.compile(r"^(units|mass|read_data|dump|write_dump|undump|fix|minimi
                       r"min_style|thermo_modify|dump_modify|create_box|variable)[ \t]+(\S.*)$")
 _STOP = re.compile(r"^[ \t]*Stopping criterion = (.+?)[ \t]*$")
 _LOOP_ATOMS = re.compile(r"^Loop time of .* with (\d+) atoms")
+_TEXT_STYLES = ("atom", "custom", "atom/gz", "custom/gz", "atom/zstd", "custom/zstd")
+"""LAMMPS dump styles written as the text frames this module reads."""
 _DUMP_NAMES = ("*.lammpstrj", "*.dump", "dump.*", "*.dump.*", "*.lammpstrj.*")
 """Names of LAMMPS dump files as users write them (compression suffixes stripped)."""
 _STEP_LIMIT = ("max iterations", "max force evaluations")
@@ -75,6 +77,8 @@ class Job:
     repeated: set = dataclasses.field(default_factory=set)    # thermo steps printed twice
     natoms: int = 0                     # atoms of the job's last run ("Loop time ... with N atoms")
     elsewhere: list = dataclasses.field(default_factory=list)  # logs/scripts of other dumps
+    aux: dict = dataclasses.field(default_factory=dict)   # file -> style of the job's dumps
+    #                                     of no text style (xyz, dcd, ...: no cell, or binary)
 
 
 def _types(spec: str, ntypes: int) -> range:
@@ -208,6 +212,9 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
                 target = args[4] if cmd == "dump" and len(args) > 4 else \
                     args[2] if cmd == "write_dump" and len(args) > 2 else ""
                 name = _named(target, dump_name)
+                if cmd == "dump" and len(args) > 4 and args[2] not in _TEXT_STYLES:
+                    job.aux[strip_compression(os.path.basename(target))] = args[2]
+                    continue
                 if name is not None:
                     job.names_dump = True
                     job.per_frame = name if "*" in name else job.per_frame
@@ -664,12 +671,18 @@ def folder(folder, names, format=None, ctx=None):
         return None
     dumps = [n for n in names if not _SCRIPT_NAMES.match(strip_compression(n))
              and any(fnmatch.fnmatchcase(strip_compression(n).lower(), g) for g in _DUMP_NAMES)]
-    if len(dumps) < 2:
+    if not dumps:
         return None
     from .registry import FolderPick
     first = Path(folder) / dumps[0]
     ctx = ctx if ctx is not None else ReadContext(str(first))
-    job = job_of(first, ctx)
+    job = job_of(first, ctx) if len(dumps) > 1 or any(
+        _SCRIPT_NAMES.match(strip_compression(n)) for n in names) else Job()
+    aux = sorted(n for n in names if strip_compression(n) in job.aux and n not in dumps)
+    if len(dumps) == 1 and aux and job.names_dump:  # the job's other dumps: no run of their own
+        return FolderPick([("", first, "lammps-dump")], tuple(
+            f"{n}: the job's '{job.aux[strip_compression(n)]}' dump (no cell, or binary), not "
+            f"read; {dumps[0]} is" for n in aux))
     if not job.per_frame:
         return None
     files = series(first, job.per_frame)

@@ -612,8 +612,10 @@ def read_outcar(path, ctx: ReadContext):
         except ParseError:
             if fd.lineno == 0 and not fd.cut:
                 raise InputError(path, "empty file") from None
+            said = _stdout_error(Path(path).parent)
             raise InputError(path, "no completed ionic step (no 'Iteration' line: the file ends "
-                                   "inside the OUTCAR header, or it is not an OUTCAR)") from None
+                                   "inside the OUTCAR header, or it is not an OUTCAR)"
+                             + (f"; {said}" if said else "")) from None
         numbers = np.array([atomic_numbers[s] for s in header["symbols"]], int)
         pbc = np.ones(3, bool)
         state: dict = {}
@@ -1118,16 +1120,33 @@ def _what_vasp_left(folder: Path, names) -> str | None:
         if steps:
             parts.append(f"its OSZICAR holds {steps} ionic step{'s' if steps > 1 else ''} (energies, "
                          f"not structures)")
-    log = next((n for n in names if strip_compression(n) == "vasp.out"), None)
-    if log is not None:
+    said = _stdout_error(folder, names)
+    if said:
+        parts.append(said)
+    return "; ".join(parts) or None
+
+
+_STDOUT_NAMES = ("vasp.out", "std_err.txt")
+"""VASP's standard output as job scripts and custodian keep it, and custodian's standard error."""
+
+
+def _stdout_error(folder: Path, names=None) -> str | None:
+    """The last error line of VASP's standard output beside its files (``vasp.out``: "LAPACK:
+    Routine ZPOTRF failed!"; custodian's ``std_err.txt``), in words; None when none."""
+    if names is None:
+        try:
+            names = os.listdir(folder)
+        except OSError:
+            return None
+    for log in sorted(n for n in names if strip_compression(n) in _STDOUT_NAMES):
         try:
             with Lines(folder / log) as fh:
                 bad = [line.strip() for line in fh if _VASP_FAILED.search(line)]
         except (OSError, *STREAM_ERRORS):
             bad = []
         if bad:
-            parts.append(f"{log} ends with {' '.join(bad[-1].split())[:160]!r}")
-    return "; ".join(parts) or None
+            return f"{log} ends with {' '.join(bad[-1].split())[:160]!r}"
+    return None
 
 
 def pick_from_folder(folder: Path, names, format=None, ctx=None):

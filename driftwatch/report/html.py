@@ -817,8 +817,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(_copies_text(g)) for g in campaign["copies"][:10])
            + (" …" if len(campaign["copies"]) > 10 else "")
-           + '<br><span class="muted">a folder kept twice, or a rerun that repeated the same '
-             'steps; each copy counts as a run of its own above</span>')]
+           + f'<br><span class="muted">{e(_copies_text(None))}; each copy counts as a run of its '
+             f'own above</span>')]
          if isinstance(campaign, dict) and campaign.get("copies") else [])
       + ([("audit summary", e(_counts_text(campaign)))]
          if isinstance(campaign, dict) and "runs" in campaign else [])
@@ -866,10 +866,11 @@ def _since_text(since: dict) -> str:
     return since_text(since)
 
 
-def _copies_text(group: list[str]) -> str:
-    """One group of copies in the audit's words (``campaign.copies_text``)."""
-    from ..campaign import copies_text
-    return copies_text(group)
+def _copies_text(group: list[str] | None) -> str:
+    """One group of copies in the audit's words (``campaign.copies_text``); None: what copies may
+    be (``campaign.COPIES_WHY``)."""
+    from ..campaign import COPIES_WHY, copies_text
+    return COPIES_WHY if group is None else copies_text(group)
 
 
 def _counts_text(campaign: dict) -> str:
