@@ -325,7 +325,7 @@ def _cmd_tolerance(args) -> int:
                   f"{b['high']:.4g} Å")
     if spec["breakpoints"]:
         print(f"(breakpoints are searched between grid points whose verdicts differ, and around a "
-              f"flicker in steps of a factor {spec['precision'] ** SWEEP_STEP:.3g}; a change that "
+              f"flicker in steps of a factor {spec['precision'] ** SWEEP_STEP:.4g}; a change that "
               f"returns "
               f"between two grid points of one verdict elsewhere is not seen)")
     for d in spec["displacement"].values():

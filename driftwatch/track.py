@@ -369,28 +369,30 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
 
 
 ENERGY_JUMP = 1.0
-"""eV per atom: a rise of the energy between two frames of a relaxation said as a likely blow-up
-(a relaxation's energy changes by meV to 0.1 eV/atom a step; common practice)."""
+"""eV per atom: how far above the lowest energy it reached a relaxation may end before that is said
+as a likely blow-up (a relaxation's energy changes by meV to 0.1 eV/atom a step; common practice)."""
 
 
 def _energy_jumps(run: Run) -> list[str]:
-    """A relaxation whose energy rises by more than :data:`ENERGY_JUMP` per atom between two
-    frames of one stage, said (the largest such rise): its final frames may be a broken run's.
-    (Stages may differ in functional or cutoff, so their boundaries are not compared.)"""
+    """A relaxation whose last stage ends more than :data:`ENERGY_JUMP` per atom above the lowest
+    energy it reached, said: its final frames, and a verdict read from them, may be a broken run's.
+    (Earlier stages may differ in functional or cutoff, so only the last is compared; an uphill
+    step the run recovered from is not said.)"""
     e = run.energies
     if e is None or run.not_relaxation or len(e) < 2 or run.kind == "end-points":
         return []
-    rise = np.diff(np.asarray(e, float)) / max(run.natoms, 1)
-    for st in run.stages[1:]:
-        rise[int(st["first_frame"]) - 1] = np.nan
-    bad = np.flatnonzero(np.nan_to_num(rise, nan=0.0) > ENERGY_JUMP)
-    if not bad.size:
+    first = int(run.stages[-1]["first_frame"]) if run.stages else 0
+    e = np.asarray(e[first:], float)
+    if len(e) < 2 or not np.isfinite(e[-1]) or not np.isfinite(e[:-1]).any():
         return []
-    k = int(bad[np.argmax(rise[bad])])
-    return [f"the energy rises by {rise[k] * run.natoms:.4g} eV ({rise[k]:.3g} eV/atom) from step "
-            f"{int(run.steps[k])} to step {int(run.steps[k + 1])}: a relaxation blowing up (a "
-            f"too long ionic step, a broken SCF)? Its later frames, and a verdict read from them, "
-            f"describe that; check the run"]
+    k = int(np.nanargmin(e[:-1]))
+    rise = (e[-1] - e[k]) / max(run.natoms, 1)
+    if rise <= ENERGY_JUMP:
+        return []
+    return [f"the energy ends {rise * run.natoms:.4g} eV ({rise:.3g} eV/atom) above the lowest it "
+            f"reached (step {int(run.steps[first + k])}): a relaxation that blew up (a too long "
+            f"ionic step, a broken SCF)? Its final frames, and a verdict read from them, describe "
+            f"that; check the run"]
 
 
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,

@@ -331,7 +331,7 @@ def chirality(rec) -> Chart | None:
     marks += series_marks(steps, [("chiral distance (root space)", chi, style.CELL_STYLE["chiral"]),
                                   ("chiral_def (sign × deformation to mirror)", sdef,
                                    style.CELL_STYLE["chiral_deformation"])], scale="linear")
-    ya = Axis("sign × distance or deformation to the nearest mirror lattice (Å)", lim=(-top, top),
+    ya = Axis("sign × distance to mirror lattice (Å)", lim=(-top, top),
               symmetric=True)
     return Chart("chirality", [Panel(xa, ya, marks, title="handedness: signed chiral distance",
                                      legend="below")], height=340)
