@@ -580,7 +580,7 @@ def _tolerance_section(rec):
 
         def group(r):
             if r[5] == 1:
-                return f"{e(r[3])} ({e(r[2])})"
+                return f"{e(r[3])} ({e(r[2])}" + (f", {e(r[4])} operations)" if r[4] else ")")
             return (f"{e(r[3][0])} ({e(r[2][0])}) and {e(r[3][1])} ({e(r[2][1])}) alternate: "
                     f"{r[5]} stretches (spglib flickers)")
         rows = "".join(
@@ -595,8 +595,14 @@ def _tolerance_section(rec):
     if spec:
         common = _common(rec)
         cells = "".join(f"<th>{c:g} Å</th>" for c in common)
-        g = "".join(f"<td>{e(_camp.verdict_at(spec, c)[1])} ({e(_camp.verdict_at(spec, c)[0])})</td>"
-                    for c in common)
+        ops = spec.get("operations") or []
+        several = len({(n, k) for n, k in zip(spec["group"], ops)}) > len(set(spec["group"]))
+
+        def at(c):                 # one group type with two operation counts: say the counts
+            num, sym = _camp.verdict_at(spec, c)
+            k = ops[_camp.grid_index(spec, c)] if several else None
+            return f"{e(sym)} ({e(num)}" + (f", {e(k)} operations)" if k else ")")
+        g = "".join(f"<td>{at(c)}</td>" for c in common)
         lat = "".join(f"<td>{e(_camp.verdict_at(spec, c, 'lattice'))}</td>" for c in common) \
             if spec.get("lattice") else ""
         out.append("<h3>spglib's group at common choices of symprec</h3><table><thead><tr><th></th>"
