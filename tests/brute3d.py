@@ -209,9 +209,14 @@ def basis_from_conorms(p):
 # ----------------------------------------------------------------------------- symmetry references
 
 def pearson(basis, symprec=1e-5):
-    """Bravais type (Pearson symbol) of the lattice by spglib on a one-atom cell."""
-    ds = spglib.get_symmetry_dataset((np.asarray(basis, float), [[0, 0, 0]], [1]),
-                                     symprec=symprec)
+    """Bravais type (Pearson symbol) of the lattice by spglib on a one-atom cell; None where spglib
+    finds none (it returns None, or raises once ASE's symmetry code has set
+    SPGLIB_OLD_ERROR_HANDLING=false for the process)."""
+    try:
+        ds = spglib.get_symmetry_dataset((np.asarray(basis, float), [[0, 0, 0]], [1]),
+                                         symprec=symprec)
+    except spglib.error.SpglibError:
+        return None
     if ds is None:
         return None
     num, c = ds.number, ds.international[0]
