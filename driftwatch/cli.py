@@ -228,7 +228,8 @@ def _inspect_table(rec: dict) -> str:
     frames_word = END_POINTS if ends else f"{n} frame{'s' if n != 1 else ''}"
     blank = any(not r[-1] for r in rows[1:])
     lines.append(f"{rec['run']['source']}: {kind}, {frames_word}, "
-                 f"{rec['run']['formula']}; type columns: deformation (Å, on spglib's symprec scale) "
+                 f"{rec['run']['formula']}; type columns: deformation (Å, on spglib's symprec "
+                 f"scale) "
                  f"to each Bravais type{'; ' + CHIRAL_WORDS if dim == 2 else ''}; "
                  f"a type is held within {rec['config']['rules']['lattice']['within']:g} Å"
                  + ("; group column blank where spglib was not asked (--all-frames asks it on every "

@@ -370,7 +370,8 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
 
 ENERGY_JUMP = 1.0
 """eV per atom: how far above the lowest energy it reached a relaxation may end before that is said
-as a likely blow-up (a relaxation's energy changes by meV to 0.1 eV/atom a step; common practice)."""
+as a likely blow-up (a relaxation's energy changes by meV to 0.1 eV/atom a step; common
+practice)."""
 
 
 def _energy_jumps(run: Run) -> list[str]:

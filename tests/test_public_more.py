@@ -66,7 +66,8 @@ def test_a_relaxation_whose_energy_jumps_up_says_it_may_have_blown_up():
     rise = toten[2] - min(toten[:2])
     assert any(f"the energy ends {rise:.4g} eV" in w and "above the lowest it reached (step 1)"
                in w and "blew up" in w for w in rec["run"]["warnings"])
-    quiet = driftwatch.analyze(Path(__file__).parent.parent / "example_runs" / "B05_emt_bfgs.extxyz")
+    quiet = driftwatch.analyze(Path(__file__).parent.parent / "example_runs" /
+                               "B05_emt_bfgs.extxyz")
     assert not any("blew up" in w for w in quiet["run"]["warnings"])
     # an uphill first step the relaxation recovered from (a real FIRE run of a Lennard-Jones
     # chain, tests/data/atoms_trials: +4.8 eV, then down to -2.0 eV) is not said

@@ -678,5 +678,5 @@ def test_a_layer_with_thin_vacuum_is_read_as_bulk_and_the_gap_that_stands_out_is
     assert "geometry.vacuum_gap below 5.00 Å" in capsys.readouterr().out
     as_layer = driftwatch.analyze(d, {"geometry": {"vacuum_gap": "4.0 Å"}})
     assert as_layer["geometry"]["dimension"] == 2
-    fcc = driftwatch.analyze(DEMO / "B05_emt_bfgs.extxyz")             # a bulk crystal: no gap stands out
+    fcc = driftwatch.analyze(DEMO / "B05_emt_bfgs.extxyz")     # a bulk crystal: no gap stands out
     assert "stands out" not in fcc["geometry"]["reason"]

@@ -35,7 +35,8 @@ import zlib
 from ..errors import InputError
 
 __all__ = ["COMPRESSED", "STREAM_ERRORS", "open_bytes", "open_regular", "check_readable",
-           "stream_truncated", "cut_stream", "CUT_COPY", "file_size", "peek", "strip_compression", "Lines", "tail_bytes",
+           "stream_truncated", "cut_stream", "CUT_COPY", "file_size", "peek", "strip_compression",
+           "Lines", "tail_bytes",
            "max_decompressed", "quiet_numbers", "NotRegularFile", "MAX_DECOMPRESSED", "MAX_RATIO",
            "MAX_TEXT_RATIO", "RATIO_FLOOR", "MAX_LINE", "STEP"]
 

@@ -70,8 +70,9 @@ READ_ME = [
     "deformation: a cell a hundredth of a degree from a right angle can be a few hundredths of an "
     "Å away.",
     "Deformation is in Å on spglib's symprec scale: how much the cell's vector lengths and angles "
-    "(times a length) differ from their images under the type's symmetry operations (Lipschitz in the "
-    "cell). It is comparable with spglib's symprec (within about a factor 2), and the flag thresholds "
+    "(times a length) differ from their images under the type's symmetry operations (Lipschitz in "
+    "the cell). It is comparable with spglib's symprec (within about a factor 2), and the flag "
+    "thresholds "
     "use it. It is not how far a lattice vector must move (a field trial's sheared and hexagonal "
     "layers needed a third of it or less), and far from a type (above ~0.3 Å) it only orders the "
     "types.",
@@ -840,7 +841,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
             lb += [math.sqrt(a * b) for a, b in _camp.group_breakpoints(spec, "lattice")]
     parts.append("<h2>Across the campaign</h2>")
     parts.append(_figure(draw(charts.campaign_scatter(pts)),
-                         f"Each run's deformation (left; Å on spglib's symprec scale, what the flags use) "
+                         f"Each run's deformation (left; Å on spglib's symprec scale, what the "
+                         f"flags use) "
                          f"and root-space distance (right; Å) to the type its verdict is about (the "
                          f"drift columns of the table), at its first against its last step "
                          f"({len(pts)} runs with a verdict; circles layers, squares bulk). Every "
