@@ -181,6 +181,12 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             if real not in seen_runs:
                 seen_runs.add(real)
                 yield RunSpec(rid, str(folder), "folder")
+            for name in got.others if kind == "run" else ():   # another run beside it
+                path = str(Path(folder) / name)
+                freal = os.path.realpath(path)
+                if freal not in seen_runs and freal not in skip:
+                    seen_runs.add(freal)
+                    yield from _file_runs(path, f"{rid}/{name}", keys)
             staged = {Path(src).parent.name for _, src, _ in got.stages
                       if Path(src).parent != Path(folder)} if kind == "run" else set()
             dirs = [e for e in dirs if e.name not in staged]      # stage folders are this run

@@ -840,8 +840,9 @@ def _atoms_toward(frames, loosest, fixed_cell: bool = True) -> dict | None:
     at a symprec up to ``loosest`` (Å): the displacement (RMS and max, Å) of the first frame and of
     the final one to that group's symmetric configuration (the final structure's instance of it).
     Most symmetric: the most operations in the cell (pure translations included, so Fm-3m beats
-    Pm-3m in a supercell and P4/mmm with a gained c/2 beats P4/mmm without), then the smaller
-    symprec. When the first frame cannot be mapped onto that instance (its atoms moved too far
+    Pm-3m in a supercell and P4/mmm with a gained c/2 beats P4/mmm without), then the larger
+    point group (a cell that fits only some of a group's rotations counts only those: p3m1 and
+    cm11 both have 8 in an orthohexagonal 2 x 2 cell), then the smaller symprec. When the first frame cannot be mapped onto that instance (its atoms moved too far
     for the group's operations to pair them), ``start`` holds ``error`` instead: never a lower
     group the atoms had all along. ``cell_moved``: the cell changed, so the numbers are of the
     atoms alone, each frame in its own cell. None for one frame, or when no group beyond P1 (p1)
@@ -853,7 +854,7 @@ def _atoms_toward(frames, loosest, fixed_cell: bool = True) -> dict | None:
             and d["symprec"] <= loosest * (1 + 1e-9)]
     if not cand:
         return None
-    d = max(cand, key=lambda d: (d["operations"], -d["symprec"]))
+    d = max(cand, key=lambda d: (d["operations"], d.get("point_operations", 0), -d["symprec"]))
     st = d.get("start") or {}
     start = {"rms": st["rms"], "max": st["max"]} if "rms" in st else \
         {"error": st.get("error") or "the first frame was not measured"}

@@ -429,3 +429,17 @@ def test_one_file_of_a_per_frame_dump_is_read_alone_and_a_cut_file_ends_the_seri
     res = audit([copy], tmp_path / "audit", report=False, workers=1, progress="off")
     ids = list(res["records"]) + [f["run"] for f in res["failed"]]
     assert "cut/final.dump" in ids and f"cut/{files[0].name}" in ids and res["runs"] == 28
+
+
+@pytest.mark.parametrize("run_dir", ["si8_series_beside_an_extxyz", "si8_xyz_dump_beside_an_extxyz"])
+def test_a_run_beside_a_lammps_job_in_its_folder_is_a_run_of_its_own(tmp_path, run_dir):
+    """A LAMMPS job's folder (a one-file-per-frame series, or a dump with the job's xyz dump) also
+    holding an unrelated ASE relaxation (extended XYZ, 8 frames by ASE's reader): the audit lists
+    both runs; the job's xyz dump is no run."""
+    d = LMP / run_dir
+    ref = ase.io.read(d / "cu_emt_relax.extxyz", ":")                              # ASE
+    res = audit([d], tmp_path / "out", report=False, workers=1, progress="off")
+    assert sorted(res["records"]) == [run_dir, f"{run_dir}/cu_emt_relax.extxyz"]
+    assert not res["failed"] and not res["skipped"]
+    assert len(read_run(d / "cu_emt_relax.extxyz")) == len(ref) == 8
+    assert any("cu_emt_relax.extxyz beside it is another run" in w for w in read_run(d).warnings)

@@ -82,3 +82,17 @@ def test_a_vasp_job_that_died_before_its_first_step_quotes_its_standard_output()
     assert "REAL_OPTLAY: internal error" in (d / "vasp.out").read_text()
     with pytest.raises(InputError, match="vasp.out ends with 'REAL_OPTLAY: internal error"):
         read_run(d / "OUTCAR")
+
+
+def test_the_atoms_line_prefers_the_larger_point_group_when_a_supercell_ties_the_counts():
+    """pyiron's VASP 4.6.28 slab in an orthohexagonal cell: spglib finds cm11 (layer group 8 as
+    the layer, Cm as the crystal) at 1e-5 Å and p3m1 at 0.00115 Å, each with 8 operations in this
+    cell (2 of p3m1's 6 rotations fit the rectangular cell); the atoms line measures p3m1, the
+    more symmetric (its point group, 3m, has order 6 against m's 2: International Tables)."""
+    rec = driftwatch.analyze(MORE / "pyiron_vasp4628_slab")
+    at = rec["summary"]["atoms"]
+    table = rec["frames"][-1]["symmetry"]["displacement"]
+    ops = {d["symbol"]: (d["operations"], d["point_operations"]) for d in table.values()
+           if "rms" in d}
+    assert ops["p3m1"][0] == ops["cm11"][0] and ops["p3m1"][1] > ops["cm11"][1]
+    assert at["symbol"] == "p3m1"

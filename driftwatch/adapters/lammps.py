@@ -682,13 +682,14 @@ def folder(folder, names, format=None, ctx=None):
     if len(dumps) == 1 and aux and job.names_dump:  # the job's other dumps: no run of their own
         return FolderPick([("", first, "lammps-dump")], tuple(
             f"{n}: the job's '{job.aux[strip_compression(n)]}' dump (no cell, or binary), not "
-            f"read; {dumps[0]} is" for n in aux))
+            f"read; {dumps[0]} is" for n in aux), also=tuple(aux))
     if not job.per_frame:
         return None
     files = series(first, job.per_frame)
     if len(files) < 2 or not set(dumps) <= {f.name for f in files}:
         return None
-    return FolderPick([("", files[0], "lammps-dump-series")])
+    return FolderPick([("", files[0], "lammps-dump-series")],
+                      also=tuple(f.name for f in files) + tuple(aux))
 
 
 def inputs_only(folder: Path, names, ctx=None):

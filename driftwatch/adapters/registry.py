@@ -85,6 +85,12 @@ class FolderPick:
 
     stages: list
     warnings: tuple = ()
+    also: tuple = ()
+    """Names of the folder's files the run accounts for besides its stages' (the rest of a LAMMPS
+    dump written one file per frame, a job's dump of no cell)."""
+    others: tuple = ()
+    """Names of files beside the run that another format reads (an ASE trajectory beside a VASP
+    run): runs of their own (set by :func:`scan_folder`)."""
 
 
 @dataclass
@@ -493,6 +499,9 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         got = code.function("folder")(folder, list(names), format, ctx)
         if got is not None:
             claims.append(got)
+            got.others = tuple(_others(folder, names, got, code))
+            got.warnings = tuple(got.warnings) + tuple(
+                f"{n} beside it is another run (read on its own)" for n in got.others)
     if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
         return "ambiguous", [st[1].name for c in claims for st in c.stages]
     if claims:
@@ -602,6 +611,23 @@ def inputs_only_problem(got: tuple, folder) -> str:
     if ran:
         return f"{what}{also}"
     return f"{what}: a job not run yet, or one that stopped before writing an ionic step{also}"
+
+
+def _others(folder: Path, names, pick: FolderPick, code: Code) -> list[str]:
+    """The files beside a code's run that a format of no code or of another code reads, by name
+    first (only those are opened): runs of their own, never dropped unsaid."""
+    used = {Path(src).name for _, src, _ in pick.stages} | set(pick.also)
+    foreign = [f for f in _formats.values() if f.name not in code.formats and f.globs]
+    out = []
+    for n in names:
+        low = strip_compression(n).lower()
+        if n in used or not any(fnmatch.fnmatchcase(low, g.lower()) for f in foreign
+                                for g in f.globs):
+            continue
+        fmt = _safe_detect(Path(folder) / n)
+        if fmt is not None and fmt not in code.formats and fmt != "vasp-error-archive":
+            out.append(n)
+    return out
 
 
 def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
