@@ -238,6 +238,21 @@ def test_layer_plot_names_the_series_that_coincide(recs):
     assert charts.coincident([1.0, None], [1.0, 2.0]) is None
 
 
+def test_a_series_under_another_at_most_steps_is_drawn_over_it_and_said():
+    """A real buckled Si2 layer (pw.x, tests/data/qe_trials): tp equals op on 43 of its 47 frames
+    (the record's values), not on all; tp is drawn hollow over op and its legend says where."""
+    from pathlib import Path
+
+    import driftwatch
+    rec = driftwatch.analyze(Path(__file__).parent / "data" / "qe_trials" /
+                             "si2_buckled_2dxy_passes_oc")
+    same = sum(f["deformation"]["tp"] == f["deformation"]["op"] for f in rec["frames"])
+    assert (same, len(rec["frames"])) == (43, 47)
+    (tp,) = [m for m in charts.deformation(rec).panels[0].marks if m.key == "tp"]
+    assert tp.label == "tp (≈ op at 43 of 47 steps)" and tp.hollow
+    assert charts._close_points([1.0, 2.0, 3.0], [1.0, 2.5, 3.0]) == (2, 3)
+
+
 def test_figures_follow_the_same_styles(recs):
     # matplotlib's artist API on the Figures driftwatch.plots returns: every Line2D keyed by a type
     # has that type's colour, marker and dash; two lines with identical data never share a style;

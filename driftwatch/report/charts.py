@@ -188,6 +188,21 @@ def coincident(a, b, scale="log", span=None) -> str | None:
     return "=" if exact else "≈"
 
 
+def _close_points(a, b, scale="log", span=None) -> tuple[int, int]:
+    """(points where two series lie within the plot's resolution of each other, points both
+    have): a series hidden under another at most of its steps shows it."""
+    close = both = 0
+    for u, v in zip(a, b):
+        if u is None or v is None:
+            continue
+        both += 1
+        if scale == "log":
+            close += abs(math.log10(u) - math.log10(v)) <= LOG_TOL
+        else:
+            close += abs(u - v) <= LIN_TOL * (span or max(abs(u), abs(v), 1e-300))
+    return close, both
+
+
 def _span(series):
     vals = [v for _, ys, _ in series for v in ys if v is not None]
     return (max(vals) - min(vals)) if vals else 0.0
@@ -211,6 +226,12 @@ def series_marks(steps, series, scale="log", *, every_max=40) -> list:
         label = str(key)
         if under:
             label = f"{key} ({under[0][1]} {under[0][0]}{' at every step' if n > 1 else ''})"
+        else:                   # under an earlier series at most steps: drawn over it, and said
+            part = [(dk, *cb) for dk, dxs, dys in drawn if dxs == xs
+                    for cb in [_close_points(dys, ys, scale, span)] if cb[0] >= max(2, cb[1] / 2)]
+            if part:
+                under = part[:1]
+                label = f"{key} (≈ {part[0][0]} at {part[0][1]} of {part[0][2]} steps)"
         dash = st.get("dash")
         if under and not dash:
             dash = (4, 2)
