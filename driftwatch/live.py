@@ -573,6 +573,16 @@ def _end_marker(source, fmt) -> str | None:
     return None
 
 
+def _output_of(folder: Path, fmt=None) -> Path | None:
+    """The output file a run folder's reader would read (None while there is none)."""
+    from .adapters.registry import _resolve
+    try:
+        src = Path(_resolve(folder, fmt).source)
+    except (DriftwatchError, OSError):
+        return None
+    return src if src.is_file() else None
+
+
 def _signature(path: Path):
     try:
         st = path.stat()
@@ -704,6 +714,8 @@ class _Follower:
         last_sig, last_growth, waited = None, time.monotonic(), False
         while True:
             now = time.monotonic()
+            if self.source is None and self.path.is_dir():   # a run folder: its output, so that
+                self.source = _output_of(self.path, self.format)   # a finished job's end shows
             sig = _signature(self.source or self.path)
             changed = sig != last_sig
             if changed:

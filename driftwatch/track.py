@@ -137,7 +137,8 @@ def _group_at(run: Run, geo, cfg: dict, i: int, s: float, known: dict) -> dict:
 
 
 def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int],
-                   search_at: list[float], known: dict | None = None, also=()) -> int:
+                   search_at: list[float], known: dict | None = None, also=(),
+                   persist: int | None = None) -> int:
     """spglib's group at :func:`structure_symprecs` on the first frame and the last seed, and, at
     each symprec of ``search_at`` where the two groups are not the same (``symmetry.relation``),
     the frame from which the final group holds: the seeds are scanned back from the last until one
@@ -146,7 +147,10 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
     computed: a frame probed at one symprec carries that symprec alone in its ``structure`` entry.
     ``known``: {(frame, symprec): group} answers to reuse and extend (the live tracker keeps it).
     ``also``: frames asked at the verdict's symprec too (those with a tolerance spectrum, for the
-    per-step tables: spglib's answer is the spectrum's). Returns the number of frames asked."""
+    per-step tables: spglib's answer is the spectrum's). ``persist`` (a run still going): every
+    frame of the last ``persist`` steps is asked too, so that a change counts as held only where
+    spglib saw it hold (frames a poll brought together are never assumed). Returns the number of
+    frames asked."""
     precs = structure_symprecs(cfg)
     known = {} if known is None else known
     asked: dict[int, set] = {}
@@ -184,6 +188,11 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
                 hi = mid
             else:
                 lo = mid
+        k = last - 1                    # live: the persistence window, frame by frame
+        while persist is not None and k > hi and run.steps[last] - run.steps[k] + 1 <= persist:
+            if key(group(k, s)) != key(final):
+                break
+            k -= 1
     for i, ss in asked.items():
         ss = sorted(ss)
         gs = [known[(i, s)] for s in ss]
@@ -461,7 +470,9 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         for s in (precs if i in (0, n - 1) else verdict_at):   # spglib's answers still memoised
             _group_at(run, geo, cfg, i, s, groups)
     probed = _group_entries(run, geo, cfg, entries, seeds, verdict_at if complete else precs,
-                            groups, also=with_spectrum) if seeds else 0
+                            groups, also=with_spectrum,
+                            persist=None if complete else cfg["rules"]["persistence"]["steps"]) \
+        if seeds else 0
     last = n - 1
     if "symmetry" in entries[last]:
         entries[last]["symmetry"] = dict(entries[last]["symmetry"],   # the cached spectrum stays

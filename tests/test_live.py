@@ -729,3 +729,51 @@ def test_follow_goes_on_when_the_stop_file_cannot_be_written(tmp_path):
     assert "following on (the job keeps running: stop it yourself)" in said
     assert rec["live"]["ended"].startswith("idle") and rec["live"]["stop"]["action"] == "failed"
     assert not list(run.rglob("*.EXIT"))
+
+
+def test_a_change_counts_as_held_only_where_spglib_saw_it_hold(tmp_path):
+    """A real pw.x relax (tests/data/qe_trials/si2_layer_relax_stopped) whose layer group at 1e-3 Å
+    is c2/m11 at step 2, p-1 at step 3 and c2/m11 at step 4 (spglib's layer dataset): read as a run
+    still going with its steps 0-4 (a poll that brought steps 3 and 4 together), the gain has not
+    held 3 steps, so no stop may be asked; step 3 was asked."""
+    import gzip
+
+    import spglib
+    from driftwatch import config as dwconfig
+    from driftwatch.track import record_from_run
+    text = gzip.decompress((Path(__file__).parent / "data" / "qe_trials" /
+                            "si2_layer_relax_stopped" / "pw.out.gz").read_bytes()).decode()
+    live = tmp_path / "pw.out"
+    live.write_text(text[:text.index("Program stopped by user request")])   # no end yet
+    run = read_run(live)
+    assert run.steps.tolist() == [0, 1, 2, 3, 4]
+
+    def layer_group(i):
+        c = run.cells[i].copy()
+        c[2] = np.cross(c[0], c[1]) / np.linalg.norm(np.cross(c[0], c[1])) * np.linalg.norm(c[2])
+        frac = np.linalg.solve(c.T, run.positions[i].T).T
+        return spglib.get_symmetry_layerdataset((c, frac, run.numbers), aperiodic_dir=2,
+                                                symprec=1e-3).number
+    assert [layer_group(i) for i in (2, 3, 4)] == [18, 2, 18]                     # spglib
+    cfg = dwconfig.load(None, {"rules.persistence.steps": 3})
+    rec = record_from_run(run, cfg, complete=False)
+    sv = rec["summary"]["verdict"]["structure"]
+    assert sv["direction"] == "kept" and "not yet held for 3 steps" in (sv.get("relation") or "")
+    assert 1e-3 in rec["frames"][3]["structure"]["symprec"]
+    assert not [f for f in rec["flags"] if f["code"] == "group-gained"]
+
+
+def test_following_a_finished_run_folder_never_asks_it_to_stop(tmp_path):
+    """A real pw.x folder whose job ended (JOB DONE.) and gained a lattice type: followed as a
+    folder with --stop-on lattice-gained and a one-step persistence, no stop file is written (a
+    stop file left for a finished job stops its restart at once); given the folder, the end was
+    looked for only after the stop had been asked."""
+    src = Path(__file__).parent / "data" / "qe" / "bulk_tetragonal_to_cubic"
+    shutil.copytree(src, tmp_path / "run")
+    ref = analyze(tmp_path / "run")
+    assert any(f["code"] == "lattice-gained" for f in ref["flags"])
+    buf = io.StringIO()
+    rec = follow(tmp_path / "run", stream=buf, poll=0.05, idle=5, stop_on=["lattice-gained"],
+                 config={"rules": {"persistence": {"steps": 1}}})
+    assert rec["live"]["ended"] == "end marker: JOB DONE." and rec["live"]["stop"] is None
+    assert not list(tmp_path.rglob("*.EXIT")) and "soft stop requested" not in buf.getvalue()
