@@ -35,7 +35,8 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.registry import run_kind
-from .adapters.run import Frame, collect, frame_from_atoms, note_fix_symmetry, position_precision
+from .adapters.run import (Frame, collect, folder_listing, frame_from_atoms, note_fix_symmetry,
+                           position_precision)
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
                      OutputError)
 
@@ -116,8 +117,16 @@ def code_of_format(fmt: str | None) -> str | None:
 
 
 def _same_frame(a: Frame, b: Frame) -> bool:
-    return (a.step == b.step and a.energy == b.energy and np.array_equal(a.cell, b.cell)
+    """The same structure at the same step (its energy may arrive later: a LAMMPS log flushed
+    after its dump)."""
+    return (a.step == b.step and np.array_equal(a.cell, b.cell)
             and np.array_equal(a.positions, b.positions))
+
+
+def _same_energy(a, b) -> bool:
+    if a is None or b is None:
+        return a is b
+    return a == b or (a != a and b != b)           # NaN: no energy printed, both times
 
 
 # ---------------------------------------------------------------- incremental record
@@ -177,6 +186,11 @@ class Tracker:
             if not _same_frame(old, new):
                 break
             k += 1
+        e = next((j for j, (a, b) in enumerate(zip(self.frames[:k], frames[:k]))
+                  if not _same_energy(a.energy, b.energy)), None)
+        if e is not None:   # energies arrived or changed: the frames' table and arrays again
+            self._table.truncate(e)      # from there; the structures' spectra and groups kept
+            self._stacked = None
         if k < len(self.frames):
             self._geo = self._geo if k else None
             self._spectra = {key: s for key, s in self._spectra.items() if key[0] < k}
@@ -696,6 +710,7 @@ class _Follower:
         self.newest = _needs_spectra(stop_codes)
         self.tracker: Tracker | None = None
         self.source: Path | None = None          # the output file, once known
+        self.folders: list = []                  # folders whose listing the last read depended on
         self.printed = 0
         self.seen: set = set()                   # flags printed (code, type)
         self.holding: set = set()                # of those, the ones the newest record still has
@@ -716,7 +731,9 @@ class _Follower:
             now = time.monotonic()
             if self.source is None and self.path.is_dir():   # a run folder: its output, so that
                 self.source = _output_of(self.path, self.format)   # a finished job's end shows
-            sig = _signature(self.source or self.path)
+            sig = (_signature(self.source or self.path),
+                   tuple(folder_listing(f) for f in self.folders))   # files that appear (a dump
+            #                                                            written one file a frame)
             changed = sig != last_sig
             if changed:
                 last_sig, last_growth = sig, now
@@ -762,6 +779,7 @@ class _Follower:
         frames, ctx, self.error = _read(self.path, self.format)
         if Path(ctx.path).is_file():
             self.source = Path(ctx.path)
+        self.folders = sorted(ctx.folders)
         if not frames:
             return False
         if self.tracker is None:
@@ -852,7 +870,7 @@ class _Follower:
             records.write_json(final, self.output)
         still = "" if self.ended.startswith("end marker") else (
             f" (judged as a run still going: no end marker was seen; if the job has ended, "
-            f"`driftwatch inspect {self.source or self.path}` judges it finished)")
+            f"`driftwatch inspect {self.path}` judges it finished)")
         self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps; "
                  f"{final['summary']['verdict']['text']}{still}"
                  + (f"; record {self.output}" if self.output is not None else ""))

@@ -777,3 +777,43 @@ def test_following_a_finished_run_folder_never_asks_it_to_stop(tmp_path):
                  config={"rules": {"persistence": {"steps": 1}}})
     assert rec["live"]["ended"] == "end marker: JOB DONE." and rec["live"]["stop"] is None
     assert not list(tmp_path.rglob("*.EXIT")) and "soft stop requested" not in buf.getvalue()
+
+
+def test_follow_sees_the_files_of_a_dump_written_one_file_per_frame_as_they_appear(tmp_path):
+    """A real LAMMPS minimisation's dump written one file per frame (tests/data/lammps_trials,
+    27 files) replayed into a folder file by file while follow watches the folder: it reads every
+    frame as its file appears and ends on the log's "Total wall time" (it had watched the first
+    file alone for growth and waited out --idle)."""
+    import threading
+    src = Path(__file__).parent / "data" / "lammps_trials" / "si8_dump_per_frame"
+    files = sorted(src.glob("relax.*.lammpstrj"), key=lambda p: int(p.name.split(".")[1]))
+    run = tmp_path / "run"
+    run.mkdir()
+    shutil.copy(src / "in.relax", run / "in.relax")
+    for f in files[:3]:
+        shutil.copy(f, run / f.name)
+
+    def writer():
+        for f in files[3:]:
+            time.sleep(0.05)
+            shutil.copy(f, run / f.name)
+        time.sleep(0.3)
+        shutil.copy(src / "log.lammps", run / "log.lammps")
+
+    t = threading.Thread(target=writer)
+    t.start()
+    buf = io.StringIO()
+    try:
+        rec = follow(run, stream=buf, poll=0.05, idle=20)
+    finally:
+        t.join()
+    assert rec["live"]["ended"] == "end marker: log.lammps: Total wall time"
+    assert rec["run"]["n_frames"] == 27 and rec["frames"][-1]["step"] == 78
+    # each frame printed once, although the log (the energies) came after the dumps
+    assert sum(line.startswith("step") for line in buf.getvalue().splitlines()) == 27
+    assert "rewritten" not in buf.getvalue()
+    thermo = {int(r[0]): float(r[2]) + float(r[3]) for r in (
+        ln.split() for ln in (src / "log.lammps").read_text().splitlines())
+        if len(r) == 7 and r[0].isdigit()}              # Step Temp E_pair E_mol TotEng Press Volume
+    assert [f["energy"] for f in rec["frames"]] == pytest.approx(
+        [thermo[f["step"]] for f in rec["frames"]], rel=1e-9)
