@@ -958,10 +958,12 @@ def check_run(path, *, config=None, reject_on=("lattice-gained",), format=None) 
     workflow managers, after a relaxation::
 
         ok, record = check_run("relax/", reject_on=("lattice-gained", "handedness-flip"))
-        if not ok:
+        if not ok or record["run"]["unfinished"]:      # a job killed or at its step limit too
             sys.exit(3)
 
     A pass is not a proof of stability: it only says none of the chosen diagnostics was raised.
+    Nor does it say the job finished: a job killed mid-run passes on the steps it wrote, and
+    ``record["run"]["unfinished"]`` says why it did not finish (cut short, at its step limit).
     Raises ``InputError`` when the run cannot be read.
     """
     codes = _codes(reject_on, "reject_on")

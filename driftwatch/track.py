@@ -482,6 +482,12 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
                                 versions=_versions())
     record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete,
                                                      series=table.deformation)
+    asked = [i for i, f in enumerate(record["frames"]) if f.get("structure")]
+    if skip_newest and asked and asked[-1] < n - 1:      # a live record between spglib's steps
+        v, st = record["summary"]["verdict"], int(record["frames"][asked[-1]]["step"])
+        v["groups_as_of_step"] = st
+        v["text"] += (f" (spglib's groups as of step {st}, the newest it was asked about; the "
+                      f"lattice as of step {int(record['frames'][-1]['step'])})")
     record["timing"] = {"invariants_s": t1 - t0, "symmetry_s": t2 - t1,
                         "total_s": time.perf_counter() - t0, "spglib_frames": len(with_spectrum),
                         "spglib_frames_computed": computed, "spglib_calls": calls,

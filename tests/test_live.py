@@ -210,6 +210,10 @@ def test_watch_lazy_skips_newest_spectrum_until_finish(tmp_path):
     n = watch.record["run"]["n_frames"]
     assert watch.record["live"]["observer"]["complete"] is False
     assert "symmetry" not in watch.record["frames"][-1]          # lagging by the newest spectrum
+    v = watch.record["summary"]["verdict"]                          # and it says how far
+    asked = [f["step"] for f in watch.record["frames"] if f.get("structure")]
+    assert asked[-1] < watch.record["frames"][-1]["step"] and v["groups_as_of_step"] == asked[-1]
+    assert f"(spglib's groups as of step {asked[-1]}, the newest it was asked about" in v["text"]
     assert watch.fired and watch.fired[0]["code"] == "lattice-gained"  # invariant-only flags fire
     rec = watch.finish()
     assert rec["run"]["n_frames"] == n and "symmetry" in rec["frames"][-1]
