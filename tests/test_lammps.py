@@ -443,3 +443,26 @@ def test_a_run_beside_a_lammps_job_in_its_folder_is_a_run_of_its_own(tmp_path, r
     assert not res["failed"] and not res["skipped"]
     assert len(read_run(d / "cu_emt_relax.extxyz")) == len(ref) == 8
     assert any("cu_emt_relax.extxyz beside it is another run" in w for w in read_run(d).warnings)
+
+
+def test_a_log_between_two_minimisations_is_a_job_still_going_not_one_at_its_step_limit(tmp_path):
+    """A real job run as a loop of capped minimize commands (tests/data/lammps_trials/
+    si8_minimize_in_chunks): its log cut right after a minimisation that stopped at "max
+    iterations" (a later minimize follows, or the job was killed; LAMMPS prints "Total wall time"
+    when a job ends) is cut short, not a run stopped at its step limit, and says nothing of a
+    final structure while it runs."""
+    d = LMP / "si8_minimize_in_chunks"
+    log = gzip.decompress((d / "log.lammps.gz").read_bytes()).decode()
+    stops = [m.end() for m in re.finditer(r"Stopping criterion = max iterations\n", log)]
+    run_dir = tmp_path / "run"
+    run_dir.mkdir()
+    shutil.copy(d / "in.slow", run_dir / "in.slow")
+    shutil.copy(d / "relax.lammpstrj.gz", run_dir / "relax.lammpstrj.gz")
+    (run_dir / "log.lammps").write_text(log[:stops[3]])
+    assert "Total wall time" not in (run_dir / "log.lammps").read_text()
+    run = read_run(run_dir / "relax.lammpstrj.gz")
+    assert run.unfinished == "cut short: LAMMPS's log has no 'Total wall time' (job killed or " \
+                             "still running)"
+    assert not any("step limit" in w or "not a relaxed one" in w for w in run.warnings)
+    whole = read_run(d / "relax.lammpstrj.gz")                     # the whole log: converged
+    assert whole.unfinished is None

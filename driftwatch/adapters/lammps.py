@@ -622,6 +622,10 @@ def _judge_stop(job: Job, ctx: ReadContext) -> None:
             ctx.warn(f"{job.source.name} ends inside a minimisation (no 'Stopping criterion' "
                      f"after its last minimize): job killed or still running")
         return
+    if not job.finished:        # between two commands: a later minimize may follow (or killed)
+        ctx.unfinished = ("cut short: LAMMPS's log has no 'Total wall time' (job killed or still "
+                          "running)")
+        return
     # the last minimisation while this dump was written (one after `undump` wrote nothing to it)
     on = [k for k, a in enumerate(job.active) if a] or [len(job.stops) - 1]
     stop = job.stops[on[-1]]
