@@ -726,7 +726,7 @@ class _Follower:
                 "fired": [dict(x) for x in self.fired]}
 
     def run(self, idle: float, poll: float) -> dict:
-        last_sig, last_growth, waited = None, time.monotonic(), False
+        last_sig, last_growth, waited, hushed = None, time.monotonic(), False, False
         while True:
             now = time.monotonic()
             if self.source is None and self.path.is_dir():   # a run folder: its output, so that
@@ -751,7 +751,14 @@ class _Follower:
                 if end:
                     self.ended = f"end marker: {end}"
                     return self.finish()
-            if time.monotonic() - last_growth > idle:
+            quiet = time.monotonic() - last_growth
+            if changed:
+                hushed = False
+            elif self.tracker is not None and not hushed and idle >= 20 and quiet > idle / 2:
+                hushed = True                     # said once a quiet spell: a killed job looks so
+                self.say(f"driftwatch: no growth for {quiet:.0f} s (the job may have been "
+                         f"killed); following ends after {idle:g} s without growth (--idle)")
+            if quiet > idle:
                 if self.tracker is None:
                     raise InputError(self.path, f"no completed ionic step after {idle:g} s without "
                                                 f"growth ({self.error or 'nothing to read'})")

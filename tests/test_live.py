@@ -821,3 +821,21 @@ def test_follow_sees_the_files_of_a_dump_written_one_file_per_frame_as_they_appe
         if len(r) == 7 and r[0].isdigit()}              # Step Temp E_pair E_mol TotEng Press Volume
     assert [f["energy"] for f in rec["frames"]] == pytest.approx(
         [thermo[f["step"]] for f in rec["frames"]], rel=1e-9)
+
+
+def test_follow_says_once_when_a_job_has_gone_quiet(tmp_path):
+    """A real pw.x output cut mid-run (a killed job: no end marker, no growth): follow says once,
+    half-way through --idle, that nothing has grown, and ends at --idle."""
+    src = Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax"
+    run = tmp_path / "run"
+    run.mkdir()
+    text = (src / "pw.out").read_text()
+    cut = [i for i in range(len(text)) if text.startswith("ATOMIC_POSITIONS", i)][-2]
+    (run / "pw.out").write_text(text[:cut])
+    buf = io.StringIO()
+    t0 = time.monotonic()
+    rec = follow(run / "pw.out", stream=buf, poll=0.2, idle=20)
+    assert 20 <= time.monotonic() - t0 < 40 and rec["live"]["ended"] == "idle: no growth for 20 s"
+    said = [ln for ln in buf.getvalue().splitlines() if "no growth for" in ln]
+    assert len(said) == 2 and said[0].startswith("driftwatch: no growth for 1")   # 10-19 s
+    assert "(the job may have been killed); following ends after 20 s without growth" in said[0]
