@@ -334,7 +334,8 @@ def _cmd_tolerance(args) -> int:
             print(f"to group {d['group']} ({d.get('operations')} operations, symprec "
                   f"{d['symprec']:.3g} Å): not measured ({d['error']})")
             continue
-        print(f"to {d['symbol']} ({d['group']}, {d['operations']} operations): atoms move rms "
+        print(f"to {d['symbol']} ({d['group']}, {d['operations']} operation"
+              f"{'s' if d['operations'] != 1 else ''}): atoms move rms "
               f"{d['rms']:.3g} Å, max {d['max']:.3g} Å; lattice strain {d['strain']:.2g} "
               f"(dimensionless)")
     print(f"symprec: {adv['reason']}")

@@ -290,8 +290,11 @@ def chiral_deformation(frame: dict) -> float:
 
 
 def atoms_text(atoms: dict) -> str:
-    """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output."""
-    a, b = atoms["start"], atoms["end"]
+    """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output (a
+    displacement below 1e-9 Å, rounding of a symmetric configuration, is said as 0)."""
+    clean = lambda d: {k: (0.0 if isinstance(v, float) and abs(v) < 1e-9 else v)
+                       for k, v in d.items()}
+    a, b = clean(atoms["start"]), clean(atoms["end"])
     ops = f", {atoms['operations']} operations" if atoms.get("operations") else ""
     head = (f"to {atoms['symbol']} ({atoms['group']}{ops}), the final structure's group at "
             f"symprec {atoms['symprec']:.3g} Å: ")

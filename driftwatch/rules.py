@@ -1101,9 +1101,12 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
     plateau = _plateau_dict(best, grid_lo, grid_hi)
     out.update(kind="plateau", recommended_symprec=rec, plateau=plateau,
                reason=f"{_g(rec)} Å is the centre of the plateau of {name} ({grp}, {ops} "
-                      f"operations) from {_g(a)} to {_g(b)} Å (factor {width:.3g}): {why}"
+                      f"operation{'s' if ops != 1 else ''}) from {_g(a)} to {_g(b)} Å (factor "
+                      f"{width:.3g}): {why}"
                       + ("; it starts at the bottom of the searched range, so its width and "
                          "centre depend on where the range starts" if plateau["open_low"] else "")
+                      + ("; it reaches the top of the searched range, so its width and centre "
+                         "depend on where the range ends" if plateau["open_high"] else "")
                       + (f"; {name} holds for any cell of one atom or of two atoms of one species "
                          f"(inversion through the atom or their midpoint), so it says nothing about "
                          f"this structure" if grp == 2 and inversion_by_content else "")

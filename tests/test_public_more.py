@@ -47,8 +47,8 @@ def test_the_jobs_xyz_dump_is_no_run_of_its_own():
     a skipped molecule."""
     run = read_run(MORE / "pwtools_lammps_md_npt")
     assert run.source.endswith("lmp.out.dump.gz") and len(run) == 101
-    assert any("lmp.out.xyz: the job's 'xyz' dump (no cell, or binary), not read" in w
-               for w in run.warnings)
+    assert any(w.endswith("lmp.out.xyz: the job's 'xyz' dump (no cell, or binary), not read: "
+                          "the run is its dump lmp.out.dump.gz") for w in run.warnings)
     xyz = ase.io.read(MORE / "pwtools_lammps_md_npt" / "lmp.out.xyz", ":")        # ASE
     assert len(xyz) == len(run) and not xyz[0].pbc.any()
     assert sorted(xyz[0].get_chemical_symbols()) == sorted(ase.data.chemical_symbols[z]

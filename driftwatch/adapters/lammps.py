@@ -686,7 +686,7 @@ def folder(folder, names, format=None, ctx=None):
     if len(dumps) == 1 and aux and job.names_dump:  # the job's other dumps: no run of their own
         return FolderPick([("", first, "lammps-dump")], tuple(
             f"{n}: the job's '{job.aux[strip_compression(n)]}' dump (no cell, or binary), not "
-            f"read; {dumps[0]} is" for n in aux), also=tuple(aux))
+            f"read: the run is its dump {dumps[0]}" for n in aux), also=tuple(aux))
     if not job.per_frame:
         return None
     files = series(first, job.per_frame)

@@ -73,8 +73,8 @@ READ_ME = [
     "(times a length) differ from their images under the type's symmetry operations (Lipschitz in "
     "the cell). It is comparable with spglib's symprec (within about a factor 2), and the flag "
     "thresholds "
-    "use it. It is not how far a lattice vector must move (a field trial's sheared and hexagonal "
-    "layers needed a third of it or less), and far from a type (above ~0.3 Å) it only orders the "
+    "use it. It is not how far a lattice vector must move (their ratio depends on the cell: "
+    "about 0.9-3.8 on sheared rectangles), and far from a type (above ~0.3 Å) it only orders the "
     "types.",
     "The tolerance spectrum is spglib's verdict on a log grid of symprec (Å); a breakpoint is a "
     "bracket [low, high] Å in which the verdict changes. Verdicts that change inside the range you "
@@ -581,7 +581,8 @@ def _tolerance_section(rec):
 
         def group(r):
             if r[5] == 1:
-                return f"{e(r[3])} ({e(r[2])}" + (f", {e(r[4])} operations)" if r[4] else ")")
+                return f"{e(r[3])} ({e(r[2])}" + (
+                    f", {e(r[4])} operation{'s' if r[4] != 1 else ''})" if r[4] else ")")
             return (f"{e(r[3][0])} ({e(r[2][0])}) and {e(r[3][1])} ({e(r[2][1])}) alternate: "
                     f"{r[5]} stretches (spglib flickers)")
         rows = "".join(
