@@ -842,8 +842,9 @@ def _atoms_toward(frames, loosest, fixed_cell: bool = True) -> dict | None:
     Most symmetric: the most operations in the cell (pure translations included, so Fm-3m beats
     Pm-3m in a supercell and P4/mmm with a gained c/2 beats P4/mmm without), then the larger
     point group (a cell that fits only some of a group's rotations counts only those: p3m1 and
-    cm11 both have 8 in an orthohexagonal 2 x 2 cell), then the smaller symprec. When the first frame cannot be mapped onto that instance (its atoms moved too far
-    for the group's operations to pair them), ``start`` holds ``error`` instead: never a lower
+    cm11 both have 8 in an orthohexagonal slab cell), then the smaller symprec. When the first
+    frame cannot be mapped onto that instance (its atoms moved too far for the group's
+    operations to pair them), ``start`` holds ``error`` instead: never a lower
     group the atoms had all along. ``cell_moved``: the cell changed, so the numbers are of the
     atoms alone, each frame in its own cell. None for one frame, or when no group beyond P1 (p1)
     was measured."""

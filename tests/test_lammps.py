@@ -431,7 +431,8 @@ def test_one_file_of_a_per_frame_dump_is_read_alone_and_a_cut_file_ends_the_seri
     assert "cut/final.dump" in ids and f"cut/{files[0].name}" in ids and res["runs"] == 28
 
 
-@pytest.mark.parametrize("run_dir", ["si8_series_beside_an_extxyz", "si8_xyz_dump_beside_an_extxyz"])
+@pytest.mark.parametrize("run_dir", ["si8_series_beside_an_extxyz",
+                                     "si8_xyz_dump_beside_an_extxyz"])
 def test_a_run_beside_a_lammps_job_in_its_folder_is_a_run_of_its_own(tmp_path, run_dir):
     """A LAMMPS job's folder (a one-file-per-frame series, or a dump with the job's xyz dump) also
     holding an unrelated ASE relaxation (extended XYZ, 8 frames by ASE's reader): the audit lists
