@@ -583,3 +583,28 @@ def test_point_lists_and_markers_are_written_as_one_decimal_each():
     q = r * 0.9
     assert svg.marker_path("s", x, y, s) == "M" + "L".join(
         f"{svg._f(x + a)},{svg._f(y + b)}" for a, b in [(-q, -q), (q, -q), (q, q), (-q, q)]) + "Z"
+
+
+def test_runs_at_one_point_of_the_campaign_scatter_are_all_named_and_drawn(tmp_path):
+    """The bundled campaign's B02 (kept, bulk) and L09 (gained, layer) both end and start on the
+    type of their verdict (deformation <= 1e-6 Å at both steps, from their records): the point
+    names both, and the one drawn under the other shows as a ring (it had been hidden, and its
+    label dropped)."""
+    from driftwatch.report import charts
+    demo = Path(__file__).parent.parent / "example_runs"
+    recs = {n: driftwatch.analyze(demo / n) for n in ("B02_qe_vcrelax_sym",
+                                                      "L09_emt_fixed_square.traj")}
+    pts = []
+    for n, r in recs.items():
+        d = r["summary"]["drift"]
+        assert d["initial"] <= 1e-6 and d["final"] <= 1e-6
+        pts.append({"name": n, "href": n, "verdict": r["summary"]["verdict"]["direction"],
+                    "dim": r["geometry"]["dimension"], "type": d["type"], "def0": d["initial"],
+                    "def1": d["final"], "dist0": d["initial"], "dist1": d["final"]})
+    chart = charts.campaign_scatter(pts)
+    marks = chart.panels[0].marks
+    named = [t for m in marks if m.kind == "points" and m.texts for t in m.texts if t]
+    assert named == ["L09_emt_fixed_square.traj = B02_qe_vcrelax_sym"] or \
+        named == ["B02_qe_vcrelax_sym = L09_emt_fixed_square.traj"]
+    rings = [m for m in marks if m.kind == "points" and m.hollow]
+    assert len(rings) == 1 and rings[0].size > 7.5

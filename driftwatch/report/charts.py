@@ -752,21 +752,39 @@ def campaign_scatter(points) -> Chart:
         marks.append(Mark("text", [mid], [mid], texts=["no change"], anchor="start",
                           valign="top", colour="#666666", fontsize=8.5, offset=(4, -4)))
         label = len(pts) <= 30
-        for verdict in ("gained", "lost", "changed", "kept"):
-            for dim, marker in ((2, "o"), (3, "s")):
-                sel = [p for p in pts if p["verdict"] == verdict and p.get("dim") == dim]
-                if not sel:
-                    continue
-                marks.append(Mark(
-                    "points", [max(finite(p[k0]), FLOOR) for p in sel],
-                    [max(finite(p[k1]), FLOOR) for p in sel], marker=marker, size=7.5,
-                    colour=style.VERDICT_COLOURS.get(verdict, "#777777"), edge="#222222", z=3,
-                    label=f"{verdict} ({'layer' if dim == 2 else 'bulk'})",
-                    links=[p.get("href") for p in sel],
-                    tips=[f"{p['name']}: {verdict}, {p.get('type')} {finite(p[k0]):.3g} → "
-                          f"{finite(p[k1]):.3g} Å" for p in sel],
-                    texts=[p["short"] for p in sel] if label else None, offset=(6, 3),
-                    key=f"{verdict}-{dim}"))
+        groups = [(verdict, dim, marker, [p for p in pts if p["verdict"] == verdict
+                                          and p.get("dim") == dim])
+                  for verdict in ("gained", "lost", "changed", "kept")
+                  for dim, marker in ((2, "o"), (3, "s"))]
+        xy = lambda p: (max(finite(p[k0]), FLOOR), max(finite(p[k1]), FLOOR))
+        at: dict = {}                 # runs at one point, in drawing order (the last on top)
+        for *_, sel in groups:
+            for p in sel:
+                at.setdefault(tuple(round(math.log10(v) / 0.05) for v in xy(p)), []).append(p)
+                #                            (0.05 decade: a few px, where markers hide another)
+        same = {id(p): ps for ps in at.values() if len(ps) > 1 for p in ps}
+        tip = lambda p, verdict: (f"{p['name']}: {verdict}, {p.get('type')} {finite(p[k0]):.3g} "
+                                  f"→ {finite(p[k1]):.3g} Å")
+        for verdict, dim, marker, sel in groups:
+            if not sel:
+                continue
+            colour = style.VERDICT_COLOURS.get(verdict, "#777777")
+            # runs at one point: the top one names them all; those under it show as rings
+            names = [(" = ".join(q["short"] for q in same[id(p)]) if same[id(p)][-1] is p else "")
+                     if id(p) in same else p["short"] for p in sel]
+            marks.append(Mark(
+                "points", [xy(p)[0] for p in sel], [xy(p)[1] for p in sel], marker=marker,
+                size=7.5, colour=colour, edge="#222222", z=3,
+                label=f"{verdict} ({'layer' if dim == 2 else 'bulk'})",
+                links=[p.get("href") for p in sel], tips=[tip(p, verdict) for p in sel],
+                texts=names if label else None, offset=(6, 3), key=f"{verdict}-{dim}"))
+            for p in sel:
+                under = same.get(id(p), [p])
+                k = len(under) - 1 - under.index(p)         # how many runs lie on top of it
+                if k:
+                    marks.append(Mark("points", [xy(p)[0]], [xy(p)[1]], marker=marker,
+                                      size=7.5 + 4.0 * k, colour=colour, hollow=True, z=4,
+                                      links=[p.get("href")], tips=[tip(p, verdict)]))
         ax = Axis(f"{what} at the first step (Å)", scale="log", lim=(lo, hi))
         ay = Axis(f"{what} at the last step (Å)", scale="log", lim=(lo, hi))
         panels.append(Panel(ax, ay, marks, title=f"{what} to the type of each run's verdict",
