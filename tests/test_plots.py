@@ -464,3 +464,25 @@ def test_end_points_runs_label_their_two_structures_not_ionic_steps():
     for make in (charts.deformation, charts.distance, charts.cell, charts.spectrum):
         chart = make(rec)
         assert all(p.x.label == charts.END_POINTS_AXIS for p in chart.panels)
+
+
+def test_a_saved_figure_keeps_the_legend_written_outside_its_axes():
+    """The bundled B06 (an EMT Bain path): its deformation figure's legend, written below and
+    beyond the axes, reaches past the figure's own width; ``savefig`` with no further argument
+    writes the whole of it (matplotlib's tight bounding box), as a notebook shows it."""
+    import io
+
+    from PIL import Image
+
+    from driftwatch import plots
+    fig = plots.deformation(driftwatch.analyze(ROOT / "example_runs" / "B06_emt_bain.traj"))
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    FigureCanvasAgg(fig)
+    renderer = fig.canvas.get_renderer()
+    fig.draw(renderer)
+    legend = fig.axes[0].get_legend().get_window_extent(renderer)
+    assert legend.x1 > fig.bbox.width                         # it would be cut at the edge
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=fig.dpi)
+    width = Image.open(io.BytesIO(buf.getvalue())).size[0]
+    assert width >= legend.x1 - legend.x0 and width > fig.bbox.width

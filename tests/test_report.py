@@ -608,3 +608,21 @@ def test_runs_at_one_point_of_the_campaign_scatter_are_all_named_and_drawn(tmp_p
         named == ["B02_qe_vcrelax_sym = L09_emt_fixed_square.traj"]
     rings = [m for m in marks if m.kind == "points" and m.hollow]
     assert len(rings) == 1 and rings[0].size > 7.5
+
+
+def test_campaign_histogram_places_the_lattice_changes_read_off_the_grid(real_records):
+    """Records bracket the lattice alone nowhere (docs/record.md); its changes on the final
+    spectrum's grid are what the histogram's lattice series shows (real pw.x runs of tests/data/qe;
+    the grid values are spglib's lattice verdicts)."""
+    from driftwatch.report import campaign as camp
+    seen = 0
+    for rec in real_records.values():
+        spec = camp.final_spectrum(rec)
+        if not spec:
+            continue
+        assert not [b for b in spec["breakpoints"] if b["kind"] == "lattice"]
+        lat, grid = spec["lattice"], spec["symprec"]
+        want = [(grid[i], grid[i + 1]) for i in range(len(lat) - 1) if lat[i] != lat[i + 1]]
+        assert camp.group_breakpoints(spec, "lattice") == want
+        seen += len(want)
+    assert seen > 0

@@ -38,13 +38,15 @@ def verdict_at(spec: dict, symprec: float, key: str = "group"):
 
 
 def group_breakpoints(spec: dict, kind: str = "group") -> list[tuple[float, float]]:
-    """``[(low, high), ...]`` Å where the verdict changes; from the breakpoints, else from the grid."""
+    """``[(low, high), ...]`` Å where the verdict changes; from the breakpoints, else from the grid
+    (a record brackets the lattice alone nowhere: its changes are read off the grid)."""
     bps = [(float(b["low"]), float(b["high"])) for b in spec.get("breakpoints") or []
            if b.get("kind") == kind and b.get("low") and b.get("high")]
-    if bps or kind != "group":
+    if bps:
         return bps
-    s, g = spec["symprec"], spec["group"]
-    return [(float(s[i]), float(s[i + 1])) for i in range(len(s) - 1) if g[i] != g[i + 1]]
+    s, g = spec["symprec"], spec.get("group" if kind == "group" else "lattice") or []
+    return [(float(s[i]), float(s[i + 1])) for i in range(len(g) - 1)
+            if g[i] != g[i + 1] and g[i] is not None and g[i + 1] is not None]
 
 
 def flag_counts(records: list[dict]) -> dict:

@@ -26,12 +26,25 @@ RC = {"text.parse_math": False, "text.usetex": False, "svg.fonttype": "none",
 _PX = 0.75   # svg px -> points (marker sizes, line widths are given in px)
 
 
+def _figure_class():
+    from matplotlib.figure import Figure
+
+    class ChartFigure(Figure):
+        """A Figure whose ``savefig`` keeps every legend and note written outside the axes
+        (``bbox_inches="tight"`` unless given), as a notebook shows it."""
+
+        def savefig(self, fname, *args, **kwargs):
+            kwargs.setdefault("bbox_inches", "tight")
+            return super().savefig(fname, *args, **kwargs)
+    return ChartFigure
+
+
 def to_figure(chart: Chart):
     """A matplotlib Figure drawing ``chart``."""
     import matplotlib
-    from matplotlib.figure import Figure
     with matplotlib.rc_context(RC):
-        fig = Figure(figsize=(chart.width / 100, chart.height / 100), layout="constrained")
+        fig = _figure_class()(figsize=(chart.width / 100, chart.height / 100),
+                              layout="constrained")
         gs = fig.add_gridspec(1, len(chart.panels), width_ratios=[p.weight for p in chart.panels])
         total = sum(p.weight for p in chart.panels)
         for p, spec in zip(chart.panels, gs):

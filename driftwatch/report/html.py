@@ -857,8 +857,10 @@ def _index_page(runs, bad, failed, campaign) -> str:
     parts.append(_figure(draw(charts.breakpoint_histogram(gb, lb, common,
                                                           _span(recs[0][1] if recs else {}))),
                          "Where spglib's verdict on each run's final structure changes, pooled over "
-                         "the relaxations (log symprec, Å). Dotted lines: common choices. A common choice sitting "
-                         "in a crowd of breakpoints gives verdicts that flip with small changes."))
+                         "the relaxations (log symprec, Å): the centre of each bracket for the "
+                         "structure, of the grid interval for the lattice alone (never bracketed). "
+                         "Dotted lines: common choices. A common choice sitting in a crowd of "
+                         "breakpoints gives verdicts that flip with small changes."))
     if counts:
         parts.append(_figure(draw(charts.flag_bars(counts, levels)), "Runs carrying each flag."))
     parts.append("</div>")
