@@ -126,7 +126,9 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("report", help="rebuild the HTML report from saved run records",
                        formatter_class=fmt, epilog="examples:\n"
-                       "  driftwatch report audit-out/records -o audit-out/report\n\n" + _EPILOG_PLAIN)
+                       "  driftwatch report audit-out/records -o audit-out/report --overwrite\n"
+                       "      (rebuilds the audit's own report in place)\n"
+                       "  driftwatch report audit-out/records -o my-report\n\n" + _EPILOG_PLAIN)
     p.add_argument("records", nargs="+", help="record files (JSON) or folders of them")
     p.add_argument("-o", "--output", metavar="DIR", required=True, help="report folder")
     p.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
@@ -280,7 +282,21 @@ def _cmd_inspect(args) -> int:
         _print_json(rec)
     else:
         print(_shown(_inspect_table(rec)))
-    return EXIT_GATED if rules.select(rec["flags"], codes) else EXIT_OK
+    return _gated([(rec["run"]["source"], f) for f in rules.select(rec["flags"], codes)])
+
+
+def _gated(hits) -> int:
+    """EXIT_GATED, said on stderr with the runs and flags that caused it, when ``hits`` (pairs of
+    run and flag dict) is not empty; else EXIT_OK."""
+    if not hits:
+        return EXIT_OK
+    runs = list(dict.fromkeys(run for run, _ in hits))
+    shown = "; ".join(f"{run}: " + ", ".join(f"{f['code']} (step {f['step']})"
+                                             for r, f in hits if r == run) for run in runs[:5])
+    print(f"driftwatch: exit {EXIT_GATED}: a flag named by --reject-on was raised on "
+          f"{len(runs)} run{'s' if len(runs) != 1 else ''}: {shown}"
+          + (f"; ... ({len(runs) - 5} more)" if len(runs) > 5 else ""), file=sys.stderr)
+    return EXIT_GATED
 
 
 def _cmd_tolerance(args) -> int:
@@ -354,7 +370,7 @@ def _cmd_audit(args) -> int:
     if args.json:
         _print_json(result)
     if result.get("rejected"):
-        return EXIT_GATED
+        return _gated([(r["run"], r) for r in result["rejected"]])
     return EXIT_PARTIAL if result.get("failed") else EXIT_OK
 
 
@@ -369,7 +385,7 @@ def _cmd_follow(args) -> int:
     if args.json:
         _print_json(rec)
     from .rules import select
-    return EXIT_GATED if select(rec["flags"], codes) else EXIT_OK
+    return _gated([(rec["run"]["source"], f) for f in select(rec["flags"], codes)])
 
 
 def _cmd_report(args) -> int:

@@ -260,7 +260,10 @@ def _read_yaml(path: Path) -> dict:
             raise ConfigError(f"{path}: larger than {MAX_BYTES:,} bytes: not a config")
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
-        raise ConfigError(f"{path}: cannot read config ({exc.strerror or exc})") from exc
+        bare = not path.exists() and path.parent == Path(".") and not path.suffix
+        raise ConfigError(f"{path}: cannot read config ({exc.strerror or exc})"
+                          + (f"; a preset is one of {', '.join(PRESETS)}" if bare else "")) \
+            from exc
     except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: config is not UTF-8 text") from exc
     loader = _PlainLoader(text)

@@ -1085,18 +1085,24 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
         best = max(even, key=lambda u: (u[4], u[5]))
         why = (f"the plateau with the most operations among the widest (widths within a factor "
                f"{tie:.3g}, the brackets' precision squared, count as one)")
-    # P1 (p1), and P-1 (p-1) where the content alone gives inversion, are no verdict to settle
-    # on when a real group holds widely
-    trivial_groups = (1, 2) if inversion_by_content else (1,)
-    real = [u for u in usable if u[2] not in trivial_groups and u[5] >= min_plateau]
-    if best[2] in trivial_groups and real:
+    # P1 (p1) is no verdict to settle on when a real group holds widely
+    real = [u for u in usable if u[2] != 1 and u[5] >= min_plateau]
+    if best[2] == 1 and real:
         trivial = best[3]
-        content = (f"; {trivial} holds for any cell of one atom or of two atoms of one species"
-                   if best[2] == 2 else "")
         best = max(real, key=lambda u: u[5])
         why = (f"the widest plateau of a group other than {trivial} spanning at least a factor "
                f"{min_plateau:g} ({trivial} at smaller symprec only says the atoms are not symmetric "
-               f"to within those tolerances{content})")
+               f"to within those tolerances)")
+    # P-1 (p-1) that the content alone gives stays the advice (another group's plateau may sit
+    # where spglib already blurs the lattice: loose-symprec), and the widest other one is named
+    other = [u for u in usable if u[2] not in (1, 2) and u[5] >= min_plateau] \
+        if best[2] == 2 and inversion_by_content else []
+    also = ""
+    if other:
+        o = max(other, key=lambda u: u[5])
+        also = (f"; the widest plateau of another group is {o[3]} ({o[2]}) from {_g(o[0])} to "
+                f"{_g(o[1])} Å (factor {o[5]:.3g}): check it against the lattice's own "
+                f"deformation before using it (loose-symprec)")
     a, b, grp, name, ops, width = best
     rec = math.sqrt(a * b)
     plateau = _plateau_dict(best, grid_lo, grid_hi)
@@ -1111,7 +1117,7 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
                       + (f"; {name} holds for any cell of one atom or of two atoms of one species "
                          f"(inversion through the atom or their midpoint), so it says nothing about "
                          f"this structure" if grp == 2 and inversion_by_content else "")
-                      + note)
+                      + also + note)
     return out
 
 

@@ -56,8 +56,12 @@ def test_inspect_table_json_and_gate(tmp_path):
     rec = json.loads(r.stdout)
     assert rec["schema"] == "driftwatch/run-2"
     assert json.loads((tmp_path / "rec.json").read_text())["summary"] == rec["summary"]
-    # pipeline use: a flag named in --reject-on makes the command exit 3
-    assert dw("inspect", run, "--reject-on", "lattice-gained").returncode == 3
+    # pipeline use: a flag named in --reject-on makes the command exit 3, and says why on stderr
+    r = dw("inspect", run, "--reject-on", "lattice-gained")
+    step = next(f["step"] for f in rec["flags"] if f["code"] == "lattice-gained")
+    assert r.returncode == 3 and r.stderr.strip().endswith(
+        f"a flag named by --reject-on was raised on 1 run: {rec['run']['source']}: "
+        f"lattice-gained (step {step})")
     assert dw("inspect", run, "--reject-on", "lattice").returncode == 3
     assert dw("inspect", run, "--reject-on", "handedness-flip").returncode == 0
 

@@ -61,8 +61,11 @@ def test_yaml_file_errors(tmp_path):
     notmap.write_text("- 1\n- 2\n")
     with pytest.raises(ConfigError, match="must be a mapping"):
         config.load(notmap)
-    with pytest.raises(ConfigError, match="cannot read config"):
+    with pytest.raises(ConfigError, match="cannot read config") as err:
         config.load(tmp_path / "missing.yaml")
+    assert "preset" not in str(err.value)
+    with pytest.raises(ConfigError, match="a preset is one of default, monolayer, bulk"):
+        config.load("bulkk")                     # a mistyped preset name: the presets are named
 
 
 def test_yaml_is_safe_loaded(tmp_path):
