@@ -172,8 +172,13 @@ def _shown(text) -> str:
 
 
 def _print_json(obj) -> None:
+    """The JSON on stdout, in pieces of 64 kB: a reader that goes away mid-way (``| head -c``)
+    is noticed at the next piece (exit 141) instead of the rest vanishing into a closed pipe."""
     from .records import dumps
-    sys.stdout.write(dumps(obj) + "\n")
+    text, piece = dumps(obj) + "\n", 1 << 16
+    for i in range(0, len(text), piece):
+        sys.stdout.write(text[i:i + piece])
+        sys.stdout.flush()
 
 
 def _fmt(x, spec=".3g"):

@@ -177,3 +177,18 @@ def test_audit_of_a_root_that_does_not_exist_is_a_one_line_error(tmp_path):
     assert not (tmp_path / "out").exists()
     r = dw("tolerance", "--help")
     assert "exit codes: 0 ok, 1 input/config/output error, 2 usage error,\n141" in r.stdout
+
+
+def test_a_reader_that_leaves_mid_way_through_a_large_json_record_gives_141():
+    """``driftwatch inspect RUN --json | head -c 100`` on a record larger than a pipe holds (the
+    bundled B07, a real FIRE run of 86 frames): the reader leaves after 100 bytes; the command
+    notices at its next write and stops with 141 (it had exited 0, the rest written into a closed
+    pipe, found by a new user's field trial)."""
+    import os
+    rec = Path(__file__).parent.parent / "example_runs" / "B07_emt_fire_path.traj"
+    proc = subprocess.Popen([sys.executable, "-m", "driftwatch", "inspect", str(rec), "--json"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    head = os.read(proc.stdout.fileno(), 100)
+    proc.stdout.close()
+    err = proc.stderr.read().decode()
+    assert head.startswith(b"{") and proc.wait(timeout=300) == 141 and err == ""
