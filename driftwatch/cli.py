@@ -307,6 +307,7 @@ def _gated(hits) -> int:
 def _cmd_tolerance(args) -> int:
     from . import config as _config, geometry
     from .adapters import read_run
+    from .records import group_name
     from .rules import advice, inversion_by_content, shown_breakpoints
     from .symmetry import SWEEP_STEP
     from .track import symmetry_entry
@@ -355,8 +356,7 @@ def _cmd_tolerance(args) -> int:
             print(f"to group {d['group']} ({d.get('operations')} operations, symprec "
                   f"{d['symprec']:.3g} Å): not measured ({d['error']})")
             continue
-        print(f"to {d['symbol']} ({d['group']}, {d['operations']} operation"
-              f"{'s' if d['operations'] != 1 else ''}): atoms move rms "
+        print(f"to {group_name(d['symbol'], d['group'], d['operations'])}: atoms move rms "
               f"{d['rms']:.3g} Å, max {d['max']:.3g} Å; lattice strain {d['strain']:.2g} "
               f"(dimensionless)")
     print(f"symprec: {adv['reason']}")

@@ -289,15 +289,23 @@ def chiral_deformation(frame: dict) -> float:
     return float(frame["sign"]) * float(frame["deformation"]["mirror"])
 
 
+def group_name(symbol, number, operations=None) -> str:
+    """A group as every output names it: ``P4/mmm (123)``, or with its operation count in the cell
+    ``P4/mmm (123, 32 operations)`` (what tells a group that gained a pure translation from
+    itself)."""
+    if not operations:
+        return f"{symbol} ({number})"
+    return f"{symbol} ({number}, {operations} operation{'s' if operations != 1 else ''})"
+
+
 def atoms_text(atoms: dict) -> str:
     """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output (a
     displacement below 1e-9 Å, rounding of a symmetric configuration, is said as 0)."""
     clean = lambda d: {k: (0.0 if isinstance(v, float) and abs(v) < 1e-9 else v)
                        for k, v in d.items()}
     a, b = clean(atoms["start"]), clean(atoms["end"])
-    ops = f", {atoms['operations']} operations" if atoms.get("operations") else ""
-    head = (f"to {atoms['symbol']} ({atoms['group']}{ops}), the final structure's group at "
-            f"symprec {atoms['symprec']:.3g} Å: ")
+    head = (f"to {group_name(atoms['symbol'], atoms['group'], atoms.get('operations'))}, the "
+            f"final structure's group at symprec {atoms['symprec']:.3g} Å: ")
     own = ("; the atoms alone, each frame in its own cell (the lattice's change is the drift)"
            if atoms.get("cell_moved") else "")
     if "rms" not in a:
@@ -434,7 +442,7 @@ def verdict_fields(record: dict) -> dict:
         "group_verdict": st.get("direction"), "group_symprec": st.get("symprec"),
         "group_initial": grp(a), "group_final": grp(b),
         "group_from_step": st.get("from_step"),
-        "atoms_group": f"{at['symbol']} ({at['group']}, {at['operations']} operations)"
+        "atoms_group": group_name(at["symbol"], at["group"], at["operations"])
         if at.get("operations") else "",
         "atoms_symprec": at.get("symprec"), "atoms_start_rms": at.get("start", {}).get("rms"),
         "atoms_end_rms": at.get("end", {}).get("rms"),

@@ -54,6 +54,7 @@ import math
 import numpy as np
 
 from . import lattice2d, lattice3d
+from .records import group_name
 
 __all__ = ["judge", "lattice_flags", "evaluate", "summarize", "FLAGS", "RENAMED", "CONCERNS",
            "DIRECTIONS", "ORDER", "NAMES", "bravais_of_group", "advice", "select", "check_codes",
@@ -379,10 +380,8 @@ def _lattice_flags(frames, lv, D, r):
         t = lv["nearing"]
         frac = r["lattice"]["nearing_fraction"]
         shrink = _shrink(frames)                  # the drop measured against the lattice's size
-        below = D[t] <= (1 - frac) * D[t][0] * shrink
-        k = len(frames) - 1                       # from the first frame of the last stretch
-        while k > 0 and below[k - 1]:             # that stays nearer, as gains are dated
-            k -= 1
+        below = D[t] <= (1 - frac) * D[t][0] * shrink   # dated as gains are: from the first
+        k = min(_from_frame(below, lambda b: b), len(frames) - 1)   # frame of the last stretch
         way = 100 * (1 - D[t][-1] / (D[t][0] * shrink[-1]))
         held = [int(frames[i]["step"]) for i in np.flatnonzero(D[t] <= within)]
         seen = (f"; it was within {_g(within)} Å at step{'s' if len(held) > 1 else ''} "
@@ -1107,9 +1106,8 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
     rec = math.sqrt(a * b)
     plateau = _plateau_dict(best, grid_lo, grid_hi)
     out.update(kind="plateau", recommended_symprec=rec, plateau=plateau,
-               reason=f"{_g(rec)} Å is the centre of the plateau of {name} ({grp}, {ops} "
-                      f"operation{'s' if ops != 1 else ''}) from {_g(a)} to {_g(b)} Å (factor "
-                      f"{width:.3g}): {why}"
+               reason=f"{_g(rec)} Å is the centre of the plateau of {group_name(name, grp, ops)} "
+                      f"from {_g(a)} to {_g(b)} Å (factor {width:.3g}): {why}"
                       + ("; it starts at the bottom of the searched range, so its width and "
                          "centre depend on where the range starts" if plateau["open_low"] else "")
                       + ("; it reaches the top of the searched range, so its width and centre "

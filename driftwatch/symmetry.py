@@ -1140,7 +1140,7 @@ def drift_table(cell, positions, numbers, spec, *, vacuum_axis=None, start=None)
         raise GeometryError(f"vacuum_axis={vacuum_axis!r} but the spectrum was computed with "
                             f"vacuum_axis={spec['vacuum_axis']!r}")
     smallest = {}
-    seen = [(s, g, k) for s, g, k in zip(spec["symprec"], spec["group"], spec["operations"])]
+    seen = list(zip(spec["symprec"], spec["group"], spec["operations"]))
     for b in spec["breakpoints"]:
         if b["kind"] == "group":
             seen += [(b["low"], b["from"], b["from_operations"]),

@@ -51,29 +51,25 @@ class Progress:
             return
         self.n += 1
         self.failed += not ok
-        now = time.monotonic()
-        if now - self._last < self.interval and self.n < self.total:
-            return
-        self._last = now
-        if self.tty:
-            end = "\n" if self.n == self.total else ""
-            self.stream.write(f"\r{self.what}: {self._text()}\033[K{end}")
-            self.stream.flush()
-        else:
-            self._line(self._text())
+        self._show(self._text(), last=self.n >= self.total)
 
     def within(self, done: int, total: int, unit: str = "frames") -> None:
         """Progress inside the current item (a run of many frames asked of spglib one by one),
         shown beside the items' count at the same pace as :meth:`update`."""
-        if not self.enabled:
-            return
+        if self.enabled:
+            self._show(f"{self._text()}; this run: {done:,}/{total:,} {unit} checked",
+                       last=done >= total, end="")
+
+    def _show(self, text: str, last: bool, end: str | None = None) -> None:
+        """``text`` at most every ``interval`` seconds (always when ``last``): in place on a
+        terminal (a newline after the last, unless ``end`` says otherwise), else a dated line."""
         now = time.monotonic()
-        if now - self._last < self.interval and done < total:
+        if now - self._last < self.interval and not last:
             return
         self._last = now
-        text = f"{self._text()}; this run: {done:,}/{total:,} {unit} checked"
         if self.tty:
-            self.stream.write(f"\r{self.what}: {text}\033[K")
+            end = ("\n" if last else "") if end is None else end
+            self.stream.write(f"\r{self.what}: {text}\033[K{end}")
             self.stream.flush()
         else:
             self._line(text)

@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..records import group_name
 from . import style
 
 __all__ = ["FLOOR", "Axis", "Mark", "Panel", "Chart", "run_charts", "layer_map", "deformation",
@@ -178,14 +179,19 @@ def coincident(a, b, scale="log", span=None) -> str | None:
             continue
         if u != v:
             exact = False
-        if scale == "log":
-            if abs(math.log10(u) - math.log10(v)) > LOG_TOL:
-                return None
-        elif abs(u - v) > LIN_TOL * (span or max(abs(u), abs(v), 1e-300)):
+        if not _close(u, v, scale, span):
             return None
     if all(u is None for u in a):
         return None
     return "=" if exact else "≈"
+
+
+def _close(u: float, v: float, scale="log", span=None) -> bool:
+    """Two values within the plot's resolution of each other (LOG_TOL decades on log axes,
+    LIN_TOL of ``span`` on linear ones)."""
+    if scale == "log":
+        return abs(math.log10(u) - math.log10(v)) <= LOG_TOL
+    return abs(u - v) <= LIN_TOL * (span or max(abs(u), abs(v), 1e-300))
 
 
 def _close_points(a, b, scale="log", span=None) -> tuple[int, int]:
@@ -196,10 +202,7 @@ def _close_points(a, b, scale="log", span=None) -> tuple[int, int]:
         if u is None or v is None:
             continue
         both += 1
-        if scale == "log":
-            close += abs(math.log10(u) - math.log10(v)) <= LOG_TOL
-        else:
-            close += abs(u - v) <= LIN_TOL * (span or max(abs(u), abs(v), 1e-300))
+        close += _close(u, v, scale, span)
     return close, both
 
 
@@ -538,7 +541,7 @@ def displacement(rec) -> Chart | None:
     several = {g for g, _ in series if sum(1 for h, _ in series if h == g) > 1}
     lines, vals, steps_all, maxes = [], [], [], []
     for (g, ops), pts in sorted(series.items(), key=lambda kv: (kv[0][0], kv[0][1] or 0)):
-        lab = f"{symbols[g]} ({g}" + (f", {ops} operations)" if g in several else ")")
+        lab = group_name(symbols[g], g, ops if g in several else None)
         pts.sort()
         st = [p[0] for p in pts]
         steps_all += st

@@ -581,8 +581,7 @@ def _tolerance_section(rec):
 
         def group(r):
             if r[5] == 1:
-                return f"{e(r[3])} ({e(r[2])}" + (
-                    f", {e(r[4])} operation{'s' if r[4] != 1 else ''})" if r[4] else ")")
+                return e(_records.group_name(r[3], r[2], r[4]))
             return (f"{e(r[3][0])} ({e(r[2][0])}) and {e(r[3][1])} ({e(r[2][1])}) alternate: "
                     f"{r[5]} stretches (spglib flickers)")
         rows = "".join(
@@ -603,7 +602,7 @@ def _tolerance_section(rec):
         def at(c):                 # one group type with two operation counts: say the counts
             num, sym = _camp.verdict_at(spec, c)
             k = ops[_camp.grid_index(spec, c)] if several else None
-            return f"{e(sym)} ({e(num)}" + (f", {e(k)} operations)" if k else ")")
+            return e(_records.group_name(sym, num, k))
         g = "".join(f"<td>{at(c)}</td>" for c in common)
         lat = "".join(f"<td>{e(_camp.verdict_at(spec, c, 'lattice'))}</td>" for c in common) \
             if spec.get("lattice") else ""
