@@ -172,8 +172,8 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
             continue
         if kind == "band":        # no run itself, its images are; its end points hold inputs
             ends = set(got[1])
-        elif kind == "inputs-of":  # inputs/ beside the job's outputs/: that run's, no run
-            pass
+        elif kind == "inputs-of":  # inputs/ beside the job's outputs/: that run's, no run,
+            dirs = []              # and its folders are that run's too (a band's images' inputs)
         elif kind == "inputs":    # failed unless a run lies below it (discover decides)
             yield {"run": rid, "source": str(folder), "inputs_only": True,
                    "error": f"{folder}: {inputs_only_problem(got, folder)}"}
@@ -264,17 +264,28 @@ def discover(roots, *, include=(), exclude=(), skip=(),
                 continue
             if exclude and _matches(item, exclude):
                 continue
-            rid, k = item.id, 1
+            base = _id_text(item.id)
+            rid, k = base, 1
             while rid in ids:
                 k += 1
-                rid = f"{item.id}~{k}"
+                rid = f"{base}~{k}"
             ids.add(rid)
             runs.append(RunSpec(rid, item.path, item.kind))
     above = set()                                   # every folder that holds a run below it
     for r in runs:
         above.update(Path(os.path.realpath(r.path.split("::")[0])).parents)
     failed += [item for item in unrun if Path(os.path.realpath(item["source"])) not in above]
+    for item in failed:
+        item["run"] = _id_text(item["run"])
     return sorted(runs, key=lambda r: r.id), failed
+
+
+def _id_text(name: str) -> str:
+    """A run id as the UTF-8 text of its path's bytes, whatever the locale: Python decodes file
+    names with the locale's encoding, so an ISO-8859-1 batch job would give another id (and
+    record name) than a UTF-8 login shell to the same run (bytes that are no UTF-8 stay escaped
+    as before)."""
+    return os.fsencode(name).decode("utf-8", "surrogateescape")
 
 
 # ----------------------------------------------------------------------------- the worker
@@ -642,6 +653,9 @@ _OWN_PATHS = ("records", "records/stale", ".cache", "report", "report/runs", MAR
               "campaign.csv", "campaign.json")
 """Fixed paths of an audit folder: a symbolic link at any of them is refused (driftwatch makes
 none); so is one at the default database ``runs.db`` and its ``.lock``."""
+_OUTPUT_NAMES = ("campaign.csv", "campaign.json", "records", "report", ".cache")
+"""What an audit writes in its folder (and ``runs.db`` there by default): in a folder no audit
+wrote, any of them is the user's own, and the audit refuses to replace it, even with --overwrite."""
 
 
 def _link_error(path: Path) -> OutputError:
@@ -778,10 +792,23 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
     if out.is_dir():
         _check_links(out, db_name)
     marker = _read_marker(out) if out.is_dir() else None
+    if out.is_dir() and marker is None:     # the user's own folder: nothing of theirs is replaced
+        default_db = out / "runs.db"
+        mine = _OUTPUT_NAMES + (("runs.db",) if db_name is None or
+                                db_name == str(default_db.absolute()) else ())
+        taken = [n + ("/" if (out / n).is_dir() else "") for n in mine
+                 if os.path.lexists(out / n)]
+        if taken:
+            raise OutputError(f"{out}: holds {', '.join(taken)}, which no driftwatch audit of this "
+                              f"folder wrote (it has no {MARKER}); an audit would replace "
+                              f"{'them' if len(taken) > 1 else 'it'}: move "
+                              f"{'them' if len(taken) > 1 else 'it'} away, or choose another "
+                              f"--output")
     if out.is_dir() and any(p.name != LOCK for p in out.iterdir()) and not overwrite:
         if marker is None:
             raise OutputError(f"{out}: folder exists, is not empty and holds no driftwatch audit; "
-                              f"choose another --output, or pass --overwrite to write into it")
+                              f"choose another --output, or pass --overwrite to add the audit's "
+                              f"files to it (your files there are left as they are)")
         if sorted(marker.get("roots", [])) != roots:
             raise OutputError(f"{out}: holds the audit of other roots "
                               f"({', '.join(marker.get('roots', [])) or 'unknown'}); choose another "
@@ -811,7 +838,9 @@ def _record_names(runs: list[RunSpec]) -> dict[str, str]:
         if counts[name.lower()] > 1:
             digest = hashlib.sha256(rid.encode("utf-8", "surrogatepass")).hexdigest()
             name = f"{name[:100]}-{digest[:10]}"
-        out[rid] = f"{name}.json"
+        # the UTF-8 bytes on disk whatever the locale (a name decoded as ISO-8859-1 would be
+        # written as other bytes: another file)
+        out[rid] = os.fsdecode(f"{name}.json".encode("utf-8", "surrogateescape"))
     return out
 
 

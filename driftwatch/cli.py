@@ -89,7 +89,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address (needs dask[distributed])")
     p.add_argument("--db", metavar="URL", help="ase.db file or URL (default: OUTPUT/runs.db)")
     p.add_argument("--no-cache", action="store_true", help="ignore cached results")
-    p.add_argument("--overwrite", action="store_true", help="allow replacing outputs of another campaign")
+    p.add_argument("--overwrite", action="store_true",
+                   help="allow replacing the audit of other roots in the output folder, or adding "
+                        "an audit to a folder of other files (never replacing a file of the "
+                        "audit's names that no audit wrote)")
     p.add_argument("--no-report", action="store_true", help="skip the HTML report")
     p.add_argument("--all-frames", action="store_true",
                    help="a tolerance spectrum on every frame of every run "
@@ -425,6 +428,10 @@ _COMMANDS = {"inspect": _cmd_inspect, "audit": _cmd_audit, "follow": _cmd_follow
 
 def main(argv=None) -> int:
     """Entry point of the ``driftwatch`` console script; returns the exit code."""
+    for stream in (sys.stdout, sys.stderr):   # a non-UTF-8 locale cannot encode every name
+        if (getattr(stream, "encoding", None) or "").lower().replace("-", "") != "utf8" and \
+                hasattr(stream, "reconfigure"):
+            stream.reconfigure(errors="backslashreplace")
     parser = _parser()
     args = parser.parse_args(argv)
     if args.version:

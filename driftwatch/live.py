@@ -160,6 +160,7 @@ class Tracker:
         self.rounding: tuple | None = None      # the reader's printed precision of positions
         self.not_relaxation: str | None = None  # what the reader says the steps are, if no relaxation
         self.unfinished: str | None = None      # why the run ended early (the reader's word)
+        self.species: tuple | None = None       # the code's labels telling atoms of one element apart
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
@@ -233,15 +234,23 @@ class Tracker:
             format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
             position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
-            not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished)
+            not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species)
+
+    def take_notes(self, ctx) -> None:
+        """Keep what a reader noted besides the frames (its ``ReadContext``): the source, warnings,
+        settings, title, printed precision of positions, the code's species labels, and why the
+        steps are no relaxation or the run ended early."""
+        self.source, self.warnings, self.code_settings = ctx.path, list(ctx.warnings), \
+            dict(ctx.settings)
+        self.title, self.rounding, self.species = ctx.title, ctx.rounding, ctx.species
+        self.not_relaxation, self.unfinished = ctx.not_relaxation, ctx.unfinished
 
     def _run(self):
-        """The frames so far as a Run, with what the reader noted (warnings, settings, title,
-        the printed precision of positions)."""
+        """The frames so far as a Run, with what the reader noted (:meth:`take_notes`)."""
         ctx = ReadContext(self.source)
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         ctx.rounding, ctx.not_relaxation = self.rounding, self.not_relaxation
-        ctx.unfinished = self.unfinished
+        ctx.unfinished, ctx.species = self.unfinished, self.species
         return self._collect(ctx)
 
     def _geometry(self, run):
@@ -793,9 +802,7 @@ class _Follower:
             self.tracker = self._start(ctx)
         self.source = Path(ctx.path)
         t = self.tracker
-        t.rounding, t.not_relaxation, t.unfinished = ctx.rounding, ctx.not_relaxation, ctx.unfinished
-        t.source, t.warnings, t.code_settings, t.title = ctx.path, list(ctx.warnings), \
-            dict(ctx.settings), ctx.title
+        t.take_notes(ctx)
         k = t.replace(frames)
         if k < self.printed:
             self.say(f"driftwatch: {ctx.path} was rewritten; re-reading from frame {k}")
@@ -855,9 +862,7 @@ class _Follower:
         t = self.tracker
         if frames:
             t.replace(frames)
-            t.source, t.warnings, t.code_settings = ctx.path, list(ctx.warnings), dict(ctx.settings)
-            t.rounding, t.not_relaxation = ctx.rounding, ctx.not_relaxation
-            t.unfinished = ctx.unfinished
+            t.take_notes(ctx)
         final = t.record(newest=True, complete=self.ended.startswith("end marker"))
         self.report(final)
         self.say_warnings(t.warnings, final=True)

@@ -414,6 +414,25 @@ def test_output_folder_safety(tmp_path):
         run_audit([other], out)
     s = run_audit([camp], foreign, overwrite=True)          # asked for: written, nothing deleted
     assert s["runs"] == 4 and (foreign / "thesis.tex").read_text() == "do not touch"
+    # a folder of the user's own files named as an audit's (its campaign.csv, a report/ and an
+    # ase.db runs.db of its own): refused even with --overwrite, each named, nothing replaced
+    # (they had been replaced, and the audit's rows added to the user's database)
+    own = tmp_path / "own"
+    (own / "report").mkdir(parents=True)
+    for name, text in (("campaign.csv", "mine"), ("report/index.html", "mine"),
+                       ("notes.txt", "mine")):
+        (own / name).write_text(text)
+    from ase import Atoms
+    from ase.db import connect
+    with connect(own / "runs.db") as db:
+        db.write(Atoms("Cu"), note="mine")
+    before = {p: p.read_bytes() for p in own.rglob("*") if p.is_file()}
+    for flag in (False, True):
+        with pytest.raises(OutputError) as e:
+            run_audit([camp], own, overwrite=flag)
+        if flag:
+            assert "holds campaign.csv, report/, runs.db, which no driftwatch audit" in str(e.value)
+    assert {p: p.read_bytes() for p in own.rglob("*") if p.is_file()} == before
     (tmp_path / "afile").write_text("x")
     with pytest.raises(OutputError, match="not a folder"):
         run_audit([camp], tmp_path / "afile")

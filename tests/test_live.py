@@ -839,3 +839,60 @@ def test_follow_says_once_when_a_job_has_gone_quiet(tmp_path):
     said = [ln for ln in buf.getvalue().splitlines() if "no growth for" in ln]
     assert len(said) == 2 and said[0].startswith("driftwatch: no growth for 1")   # 10-19 s
     assert "(the job may have been killed); following ends after 20 s without growth" in said[0]
+
+
+def test_follow_gives_spglib_the_codes_species_labels(tmp_path):
+    """A real antiferromagnetic pw.x relaxation (tests/data/qe_trials/fe2_afm_relax: bcc Fe as
+    species Fe1 and Fe2 of opposite starting magnetisation; pw.x finds "8 Sym. Ops. (no
+    inversion)"): followed, the groups are the labelled structure's, as in analyze(). spglib with
+    Fe1 and Fe2 told apart gives P4mm (99, 8 operations) for the last frame at 1e-3 Å; taken as
+    one element it gives P4/nmm (16), which follow had reported, with a held-by-code message that
+    the code held 8 of 16."""
+    import gzip
+
+    import spglib
+    from ase.io import read as ase_read
+    src = Path(__file__).parent / "data" / "qe_trials" / "fe2_afm_relax"
+    text = gzip.open(src / "pw.out.gz", "rt").read()
+    assert "8 Sym. Ops. (no inversion) found" in text and "JOB DONE." in text
+    shutil.copytree(src, tmp_path / "run")
+    rec = follow(tmp_path / "run", stream=io.StringIO(), poll=0.05, idle=5)
+    ref = analyze(tmp_path / "run")
+    assert same(rec, ref)
+    assert rec["run"]["species"] == ["Fe1", "Fe2"]
+    last = ase_read(io.StringIO(text), index=-1, format="espresso-out")          # ASE
+    cell = (last.cell[:], last.get_scaled_positions(), [1, 2])
+    ds = spglib.get_symmetry_dataset(cell, symprec=1e-3)
+    assert (ds.number, len(ds.rotations)) == (99, 8)
+    final = rec["summary"]["verdict"]["structure"]["final"]
+    assert (final["group"], final["operations"]) == (99, 8)
+    assert not any("of which the code held" in f["message"] for f in rec["flags"])
+
+
+def test_follow_does_not_end_on_a_half_written_closing_line(tmp_path):
+    """A real pw.x output (tests/data/qe/bulk_tetragonal_to_cubic) whose job's write stops inside
+    its closing timing line ("     PWSCF        :     0.94s CPU" without the rest of the line):
+    the follower waits for the whole line, so the record of the finished job is not "cut short"
+    (it had ended there and recorded the job as killed, while the reader of the complete file
+    says it finished)."""
+    import threading
+    src = Path(__file__).parent / "data" / "qe" / "bulk_tetragonal_to_cubic"
+    text = (src / "pw.out").read_text()
+    cut = text.index("CPU", text.index("     PWSCF        :")) + len("CPU ")
+    (tmp_path / "run").mkdir()
+    out = tmp_path / "run" / "pw.out"
+    out.write_text(text[:cut])
+    assert "\n" not in text[text.rfind("\n", 0, cut):cut][1:]          # cut inside the line
+
+    def finish():
+        with open(out, "a") as fh:
+            fh.write(text[cut:])
+    timer = threading.Timer(1.5, finish)
+    timer.start()
+    try:
+        rec = follow(out, stream=io.StringIO(), poll=0.05, idle=30)
+    finally:
+        timer.join()
+    assert rec["live"]["ended"] == "end marker: JOB DONE." or \
+        rec["live"]["ended"] == "end marker: pw.x's closing timing"
+    assert rec["run"]["unfinished"] is None and same(rec, analyze(out))

@@ -96,3 +96,131 @@ def test_the_atoms_line_prefers_the_larger_point_group_when_a_supercell_ties_the
            if "rms" in d}
     assert ops["p3m1"][0] == ops["cm11"][0] and ops["p3m1"][1] > ops["cm11"][1]
     assert at["symbol"] == "p3m1"
+
+
+def test_a_vasp_run_stopped_by_its_stopcar_is_unfinished(tmp_path):
+    """pymatgen's OUTCAR.stopped (VASP 5.2.11, NSW = 200, IBRION = 2): VASP read a STOPCAR with
+    LSTOP after its first ionic step and printed "soft stop encountered!  aborting job ...", never
+    "reached required accuracy" (the file's own lines). Its final structure is its start: the run
+    is unfinished, stopped on request, as pw.x's stop on its .EXIT file is (it read as a finished
+    relaxation). A vasprun.xml has no such line; the same stage's OUTCAR beside it tells (invented
+    files from tests/vasp_gen.py, in VASP's layout, with the genuine line's wording)."""
+    import lzma
+
+    import vasp_gen
+    path = MORE / "vasp5211_soft_stop" / "OUTCAR.xz"
+    text = lzma.open(path, "rt").read()
+    assert " soft stop encountered!  aborting job ..." in text
+    assert "reached required accuracy" not in text and re.search(r"NSW\s*=\s*200\b", text)
+    run = read_run(path)
+    (tmp_path / "OUTCAR").write_text(text)
+    assert len(run) == 1 == len(ase.io.read(tmp_path / "OUTCAR", ":", format="vasp-out"))  # ASE
+    assert run.unfinished == (
+        "stopped on request (VASP: 'soft stop encountered' after 1 of NSW = 200 ionic steps: a "
+        "STOPCAR with LSTOP = .TRUE. in its folder, written by a user or by driftwatch's soft stop)")
+    assert any(w.endswith("; the final structure is not a relaxed one") for w in run.warnings)
+    traj = vasp_gen.drifting_layer(6)
+    line = [ln for ln in text.splitlines() if "soft stop encountered" in ln][0]
+    for converged in (False, True):
+        d = tmp_path / f"converged_{converged}"
+        d.mkdir()
+        vasp_gen.write_vasprun(d / "vasprun.xml", traj)
+        out = vasp_gen.write_outcar(d / "OUTCAR", traj).read_text()
+        if not converged:
+            out = out.replace(" reached required accuracy - stopping structural energy "
+                              "minimisation\n", "")
+        out = out.replace("\n General timing", f"\n{line}\n\n General timing", 1)
+        (d / "OUTCAR").write_text(out)
+        for source in (d, d / "OUTCAR", d / "vasprun.xml"):
+            got = read_run(source).unfinished
+            if converged:          # it converged before VASP read the STOPCAR
+                assert got is None, source
+            else:
+                assert got is not None and got.startswith(
+                    "stopped on request (VASP: 'soft stop encountered' after 6 of NSW = 6 ionic "
+                    "steps"), source
+
+
+def _pymatgen_vasprun(path, tmp_path):
+    import lzma
+    import warnings
+
+    from pymatgen.io.vasp.outputs import Vasprun
+    plain = tmp_path / "vasprun.xml"
+    opener = lzma.open if path.suffix == ".xz" else gzip.open
+    plain.write_bytes(opener(path).read())
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return Vasprun(str(plain), parse_dos=False, parse_eigen=False, parse_potcar_file=False)
+
+
+def test_the_machine_learned_force_fields_steps_are_read_in_file_order(tmp_path):
+    """pymatgen's on-the-fly machine-learned MD (ML_LMLFF = T, NSW = 100): VASP wrote 20 steps in
+    <calculation>s and the force field's 80 between them. All 100 are read, in file order, and
+    equal pymatgen's ``md_data`` (cells, positions, forces, free energies); ASE's reader, like
+    driftwatch before, reads the 20 <calculation>s only, so its last frame is MD step 91."""
+    path = MORE / "vasp_ml_md" / "vasprun.xml.xz"
+    ref = _pymatgen_vasprun(path, tmp_path).md_data
+    run = read_run(path)
+    assert len(ref) == len(run) == 100 and run.steps.tolist() == list(range(100))
+    np.testing.assert_array_equal(run.cells, [m["structure"].lattice.matrix for m in ref])
+    np.testing.assert_allclose(run.positions, [m["structure"].cart_coords for m in ref],
+                               atol=1e-12)
+    np.testing.assert_array_equal(run.forces, [m["forces"] for m in ref])
+    np.testing.assert_array_equal(run.energies, [m["energy"]["e_fr_energy"] for m in ref])
+    assert len(ase.io.read(tmp_path / "vasprun.xml", ":", format="vasp-xml")) == 20      # ASE
+    assert any("80 of the 100 steps read are the machine-learned force field's" in w
+               for w in run.warnings)
+    assert run.not_relaxation.startswith("molecular dynamics (IBRION = 0)")
+
+
+def test_a_static_optics_run_is_one_frame_of_its_final_structure(tmp_path):
+    """pymatgen's LOPTICS vasprun.xml (NSW = 0): its one <calculation> holds no <structure>; the
+    run is the file's finalpos structure, as pymatgen's ``final_structure``, a single-point run
+    (it had failed the audit: "no completed ionic step")."""
+    path = MORE / "vasp_loptics_static" / "vasprun.xml.gz"
+    ref = _pymatgen_vasprun(path, tmp_path)
+    assert [s["structure"] for s in ref.ionic_steps] == [None]
+    run = read_run(path)
+    assert len(run) == 1 and run.energies is None
+    np.testing.assert_allclose(run.cells[0], ref.final_structure.lattice.matrix, atol=1e-12)
+    np.testing.assert_allclose(run.positions[0], ref.final_structure.cart_coords, atol=1e-8)
+    assert [int(z) for z in run.numbers] == [s.specie.Z for s in ref.final_structure]
+    assert run.not_relaxation.startswith("a single-point calculation (NSW = 0")
+
+
+def test_a_relaxation_with_no_convergence_criterion_is_not_unfinished_at_nsw(tmp_path):
+    """pymatgen's EDIFFG = 0 relaxation (IBRION = 1, NSW = 3) ran its 3 steps by design (pymatgen's
+    ``converged_ionic`` is True for it): said so, not marked unfinished at its step limit."""
+    path = MORE / "vasp_ediffg0" / "vasprun.xml.xz"
+    ref = _pymatgen_vasprun(path, tmp_path)
+    assert ref.parameters["EDIFFG"] == 0 and ref.parameters["NSW"] == 3 and ref.converged_ionic
+    run = read_run(path)
+    assert len(run) == 3 and run.unfinished is None and run.code_settings["EDIFFG"] == 0
+    assert any("ran all NSW = 3 ionic steps as set: EDIFFG = 0 gives VASP no convergence "
+               "criterion" in w for w in run.warnings)
+
+
+def test_a_bands_inputs_beside_its_outputs_are_no_runs(tmp_path):
+    """atomate2's NEB job keeps its inputs in ``inputs/`` (an image folder each, ``01/`` to ``03/``
+    holding a POSCAR) beside ``outputs/``, where the images ran (each ``inputs/0N/POSCAR.gz`` is the
+    same file as ``outputs/0N/POSCAR.gz``). The audit lists the three images of ``outputs/`` and
+    nothing of ``inputs/`` (it had failed three "jobs not run yet", exit 4); ``inspect`` of an
+    input image names the output image to pass."""
+    import subprocess
+    import sys
+    neb = MORE / "atomate2_neb" / "Si_NEB" / "NEB"
+    for k in ("01", "02", "03"):
+        assert gzip.decompress((neb / "inputs" / k / "POSCAR.gz").read_bytes()) == \
+            gzip.decompress((neb / "outputs" / k / "POSCAR.gz").read_bytes())
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(MORE / "atomate2_neb"),
+                           "-o", str(tmp_path / "out"), "--no-report"], capture_output=True,
+                          text=True, timeout=600)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    rows = [ln.split()[0] for ln in proc.stdout.splitlines() if ln.startswith("atomate2_neb/")]
+    assert rows == [f"atomate2_neb/Si_NEB/NEB/outputs/{k}" for k in ("01", "02", "03")]
+    for folder, out in ((neb / "inputs" / "01", "../outputs/01"), (neb / "inputs", "outputs")):
+        proc = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(folder)],
+                              capture_output=True, text=True, timeout=600)
+        assert proc.returncode != 0 and proc.stderr.count("\n") == 1, proc.stderr
+        assert f"the inputs of the job whose outputs are in {out}/ beside it" in proc.stderr

@@ -927,3 +927,36 @@ def test_script_in_input_files_does_not_run_in_the_report(tmp_path):
         scripts = [i for i in range(len(p.found)) if p.found[i][0] == "script"]
         assert js not in "".join(str(p.found[i]) for i in scripts)
         assert "pwned" in dom          # the payload is there, as text
+
+
+def test_an_audit_in_an_iso_8859_1_locale_names_runs_as_in_a_utf_8_one(tmp_path):
+    """A campaign under a folder named in UTF-8 ("Ünïcødé ✓", the bytes on disk), audited from a
+    UTF-8 shell and then from a batch job whose locale is ISO-8859-1 (glibc's localedef, Debian's
+    locales): the same run ids, one record file, and no internal error. Python decodes file names
+    and arguments with the locale's encoding; the second audit had crashed printing a name
+    (UnicodeEncodeError) after writing the run under a second, garbled id and record."""
+    import csv
+    camp = tmp_path / "my runs" / "Ünïcødé ✓"
+    shutil.copytree(REPO / "example_runs" / "L01_qe_vcrelax", camp / "L01 qe")
+    (tmp_path / "locale").mkdir()
+    made = subprocess.run(["localedef", "-i", "en_US", "-f", "ISO-8859-1",
+                           str(tmp_path / "locale" / "en_US.ISO-8859-1")],
+                          capture_output=True, text=True, check=False)
+    if not (tmp_path / "locale" / "en_US.ISO-8859-1").is_dir():
+        pytest.skip(f"no ISO-8859-1 locale could be made here: {made.stderr.strip()[:200]}")
+    latin = {**os.environ, "LOCPATH": str(tmp_path / "locale"), "LC_ALL": "en_US.ISO-8859-1"}
+    latin.pop("PYTHONIOENCODING", None)
+    check = subprocess.run([sys.executable, "-c", "import sys; print(sys.getfilesystemencoding())"],
+                           env=latin, capture_output=True, text=True, check=True)
+    assert check.stdout.strip() == "iso8859-1"
+    ids = []
+    for env in (dict(os.environ, LC_ALL="C.UTF-8"), latin):
+        proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", "my runs", "-o", "out",
+                               "--no-report"], cwd=tmp_path, env=env, capture_output=True,
+                              timeout=600, check=False)
+        assert proc.returncode == 0 and b"internal error" not in proc.stderr, proc.stderr
+        with open(tmp_path / "out" / "campaign.csv", newline="", encoding="utf-8") as fh:
+            ids.append([r["run"] for r in csv.DictReader(fh)])
+    assert ids[0] == ids[1] == ["my runs/Ünïcødé ✓/L01 qe"]
+    assert [p.name for p in (tmp_path / "out" / "records").glob("*.json")] == \
+        ["my_runs_Ünïcødé___L01_qe.json"]

@@ -52,6 +52,9 @@ __all__ = ["read_pw_out", "read_pw_input", "read_pw_in_settings", "pick_from_fol
            "stop_settings", "symmetry_setting", "END_MARKERS"]
 
 _START = "Program PWSCF"
+# how every pw.x (4.1 to 7.4 here) starts its output: the banner as a line of its own ("     Program
+# PWSCF v.6.7MaX starts on ..."), not the words quoted in a note
+_BANNER = re.compile(rb"^[ \t]*Program PWSCF\s+v\.", re.M)
 _SCF_START = ("Self-consistent Calculation", "iteration #", "!    total energy")
 _NSCF_START = "Band Structure Calculation"
 _HEADER_END = (*_SCF_START, _NSCF_START)     # where a run's header ends (an nscf run has no SCF)
@@ -79,6 +82,9 @@ _CRITERIA = "(criteria: energy"
 _NUMBER = re.compile(r"[-+]?\d*\.?\d+(?:[EeDd][-+]?\d+)?")
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
 _STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
+# pw.x's error banner (Modules/error_handler.f90): "Error in routine NAME (N):", the message, a
+# line of %, "stopping ..."; it ends the output without JOB DONE (a CRASH file may lie beside it)
+_ERROR = "Error in routine"
 # how pw.x announces its dynamics (PW/src/dynamics_module.f90 and vcsmd.f90 of QE's sources): the
 # run's calculation when no input says it. A variable-cell run prints "Entering Dynamics;" each
 # step, after "... Damped ... Minimization:" on its first step when it is a vc-relax; its first
@@ -94,7 +100,7 @@ _NEW_VOLUME = re.compile(r"new unit-cell volume =.*\(\s*([\d.]+)\s*Ang\^3")
 _MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
           "new unit-cell volume",
-          *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST, _GAVE_UP, *_ERRORS, _CRITERIA)
+          *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST, _GAVE_UP, *_ERRORS, _CRITERIA, _ERROR)
 
 
 class _Config:
@@ -299,6 +305,9 @@ def read_pw_out(path, ctx: ReadContext):
     at_limit = False    # the last run stopped at nstep ("The maximum number of steps ...")
     on_request = False  # the last run stopped on request (its .EXIT file)
     gave_up = False     # the last run's BFGS gave up (its "bfgs converged" met no threshold)
+    halted = None       # pw.x's own early stop (_STOPS) with no converged SCF after it
+    stops: list = []    # what each of those lines says, and where
+    error = None        # the last run's error banner, in one line
     errors: list = []   # the last BFGS step's errors (energy, gradient[, cell])
     cur: _Config | None = None
     alat = natoms = None
@@ -364,6 +373,7 @@ def read_pw_out(path, ctx: ReadContext):
                 if ready(cur):
                     yield emit(cur)
                 at_limit = on_request = gave_up = False     # a new run: its own end decides
+                halted = error = None
                 restored = unevaluated(cur) if cur is not None else carried
                 restored_index = cur.index if cur is not None and restored is not None else None
                 seen_start = True
@@ -441,6 +451,7 @@ def read_pw_out(path, ctx: ReadContext):
                     ctx.settings["nsym_final"] = int(m.group(1)) if m else 1
                     continue
             if line.startswith("!    total energy"):
+                halted = None                               # it went on after a stop line
                 if not cur.emitted:
                     cur.energy = float(line.split()[-2]) * Ry
             elif "Forces acting on atoms" in line:
@@ -493,8 +504,11 @@ def read_pw_out(path, ctx: ReadContext):
                     n = int(_BFGS_STEPS.match(line).group(1))
                     if ready(cur) and (n == 0 or restarted(cur, n)):
                         yield emit(cur)
+            elif line.lstrip().startswith(_ERROR):
+                error = " ".join(f"{line.strip()} {fh.readline().strip()}".split())[:200]
             elif any(m in line for m in _STOPS):
-                ctx.warn(f"pw.x stopped early: '{line.strip()}' (line {fh.lineno})")
+                halted = line.strip()
+                stops.append(f"pw.x stopped early: '{halted}' (line {fh.lineno})")
             elif _ON_REQUEST in line:
                 on_request = True
             elif _GAVE_UP in line:
@@ -549,6 +563,13 @@ def read_pw_out(path, ctx: ReadContext):
         if done and not ionic and step == len(per_run) and "calculation" not in ctx.settings:
             ctx.settings["calculation"] = "scf"   # one SCF per run, no ionic step: as it shows
             ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
+        if halted and step:     # the run's end: said once, as why it is unfinished
+            ctx.unfinished = (f"stopped at its time limit (pw.x: '{halted}': max_seconds)"
+                              if _STOPS[0] in halted else
+                              f"stopped without converging (pw.x: '{halted}')")
+        else:                   # no step to judge (the error quotes it), or it went on after
+            for said in stops:
+                ctx.warn(said)
         if at_limit and ctx.settings.get("calculation") not in ("md", "vc-md"):
             ctx.unfinished = f"stopped at its step limit (pw.x: '{at_limit}')"
         if gave_up:
@@ -558,7 +579,12 @@ def read_pw_out(path, ctx: ReadContext):
         if on_request:
             ctx.unfinished = (f"stopped on request (pw.x: '{_ON_REQUEST}': its <prefix>.EXIT "
                               f"stop file, written by a user or by driftwatch's soft stop)")
-        if not done:
+        if not done and error:      # pw.x ended on its own error: no killed job
+            if step:
+                ctx.unfinished = f"stopped on a pw.x error ('{error}')"
+            else:
+                ctx.warn(f"pw.x stopped on an error: '{error}'")
+        elif not done:
             where = f"after step {last_index} ({step} completed steps)" if step else \
                 "before the first ionic step completed"
             beside = Path(path).parent
@@ -710,7 +736,7 @@ def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
     if ctx is not None:
         ctx.uses(p)
     try:
-        return p.is_file() and b"Program PWSCF" in peek(p, 4000)
+        return p.is_file() and _BANNER.search(peek(p, 4000)) is not None
     except OSError:
         return False
 
@@ -951,7 +977,10 @@ def crash_message(folder: Path, names, ctx=None, subject: str = "CRASH") -> str 
 # ---------------------------------------------------------------- live: end, soft stop
 END_MARKERS = {
     "espresso-out": ((re.compile(rb"JOB DONE\."), "JOB DONE."),
-                     (re.compile(_CLOCK.encode() + rb"[^\n]*(CPU|WALL)"), "pw.x's closing timing"),
+                     # the whole line: a job's last write may stop inside it (the reader,
+                     # rightly, takes a line without its end as cut)
+                     (re.compile(_CLOCK.encode() + rb"[^\n]*(CPU|WALL)[^\n]*\n"),
+                      "pw.x's closing timing"),
                      (re.compile(rb"Error in routine[\s\S]*stopping \.\.\."), "pw.x error banner")),
 }
 _SAVE_DIR = re.compile(rb"Writing output data file (\S*?)([^/\s]+)\.save/?\s*$", re.M)
@@ -1055,7 +1084,7 @@ def register_all(register, register_code) -> None:
     """The pw.x row of the format table and the pw.x entry of the code table."""
     from .registry import Code
     register("espresso-out", __name__ + ":read_pw_out", globs=("*.pwo", "*pw*.out"),
-             magic=rb"Program PWSCF", description="Quantum ESPRESSO pw.x output")
+             magic=_BANNER, description="Quantum ESPRESSO pw.x output")
     register_code(Code(
         name="espresso", label="Quantum ESPRESSO pw.x",
         aliases=("qe", "pw.x", "pwscf", "quantum-espresso"),

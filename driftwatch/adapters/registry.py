@@ -514,7 +514,8 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         fn = code.function("band")
         got = fn(folder, list(names), ctx) if fn is not None else None
         if got is not None:
-            return "band", got
+            beside = outputs_beside(folder)         # a band's inputs beside its outputs
+            return ("inputs-of", _inputs_of_why(folder, beside)) if beside else ("band", got)
     files = []
     for n in names:
         p = folder / n
@@ -541,31 +542,35 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
 _INPUT_FOLDERS = ("input", "inputs")
 
 
-def outputs_beside(folder) -> str | None:
-    """The name of the folder beside ``folder`` that holds the run whose inputs ``folder`` keeps,
-    or None: ``folder`` is named ``inputs`` (or ``input``) and a sibling whose name starts with
-    ``output`` (``outputs``, ``outputs_bk``, ...) is a run folder (the layout of workflow test
-    data and of archives that keep a job's inputs apart, e.g. atomate's)."""
+def outputs_beside(folder) -> Path | None:
+    """The folder holding the run whose inputs ``folder`` keeps, or None: ``folder`` is named
+    ``inputs`` (or ``input``), or lies in one (a band's image ``inputs/01``), and the same place
+    under a sibling whose name starts with ``output`` (``outputs``, ``outputs_bk``, ...) is a run
+    folder or a band's (the layout of workflow test data and of archives that keep a job's inputs
+    apart, e.g. atomate's and atomate2's)."""
     folder = Path(folder)
-    if folder.name.lower() not in _INPUT_FOLDERS:
+    top, below = (folder, ()) if folder.name.lower() in _INPUT_FOLDERS else \
+        (folder.parent, (folder.name,))
+    if top.name.lower() not in _INPUT_FOLDERS:
         return None
     try:
-        with os.scandir(folder.parent) as it:
+        with os.scandir(top.parent) as it:
             beside = sorted(e.name for e in it if e.name.lower().startswith("output") and e.is_dir())
     except OSError:
         return None
     for name in beside:
+        out = top.parent.joinpath(name, *below)
         try:
-            if scan_folder(folder.parent / name)[0] == "run":
-                return name
+            if out.is_dir() and scan_folder(out)[0] in ("run", "band"):
+                return out
         except OSError:
             continue
     return None
 
 
-def _inputs_of_why(folder: Path, beside: str) -> str:
-    out = folder.parent / beside
-    return (f"the inputs of the job whose outputs are in {out.name}/ beside it, not a run of their "
+def _inputs_of_why(folder: Path, out: Path) -> str:
+    where = os.path.relpath(out, folder.parent)
+    return (f"the inputs of the job whose outputs are in {where}/ beside it, not a run of their "
             f"own (pass {out})")
 
 

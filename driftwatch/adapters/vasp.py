@@ -39,7 +39,7 @@ from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
            "pick_from_folder", "SETTING_KEYS"]
 
-SETTING_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW", "IMAGES")
+SETTING_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW", "IMAGES", "EDIFFG")
 _INT_KEYS = {"ISYM", "ISIF", "IBRION", "NSW", "IMAGES"}
 _KBAR_TO_EV_A3 = 1e-22 / 1.60217733e-19   # ASE's conversion (ase/io/vasp.py, EVTOJ)
 _STD_NAMES = ("vasprun", "OUTCAR", "XDATCAR", "CONTCAR", "POSCAR")
@@ -273,6 +273,10 @@ def read_vasprun(path, ctx: ReadContext):
     decl = b""           # the file's XML declaration (its encoding), put before each block
     parser = ET.XMLPullParser(events=("start", "end"))
     unconverged: list[int] = []     # steps whose SCF ran NELM electronic steps
+    learned: dict = {}              # a machine-learned force field's step being read (see below)
+    n_learned = 0
+    structureless: list = []        # <energy> (or None) of each <calculation> without a <structure>
+    final = None                    # <structure name="finalpos">
 
     def calculation(el):
         nonlocal step
@@ -281,12 +285,31 @@ def read_vasprun(path, ctx: ReadContext):
             if _ran_nelm(len(el.findall("scstep")), params.get("NELM"), params.get("LEPSILON")):
                 unconverged.append(step - 1)
             return _vasprun_frame(el, step - 1, numbers, params.get("PSTRESS") or 0.0, ctx)
-        ctx.warn("a <calculation> without a <structure> (a GW or response-function step?) is "
-                 "not an ionic step: passed over")
+        structureless.append(el.find("energy"))
+        return None
+
+    def learned_step(el):
+        """VASP's on-the-fly machine-learned force field (ML_LMLFF) writes the steps it computes
+        itself between the root's children, not in a <calculation>: a <structure> without a name,
+        then its forces (and stress) and <energy>. Read in file order, as pymatgen's md_data."""
+        nonlocal step, n_learned
+        tag, name = el.tag, el.get("name")
+        if tag == "structure" and not name:
+            learned.clear()
+            learned["structure"] = el
+        elif learned and tag == "varray" and name in ("forces", "stress"):
+            learned[name] = el
+        elif learned and tag == "energy":
+            calc_el = ET.Element("calculation")
+            calc_el.extend([learned[k] for k in ("structure", "forces", "stress") if k in learned]
+                           + [el])
+            learned.clear()
+            step, n_learned = step + 1, n_learned + 1
+            return _vasprun_frame(calc_el, step - 1, numbers, params.get("PSTRESS") or 0.0, ctx)
         return None
 
     def events():
-        nonlocal numbers, params, complete, calc, calc_ready, depth, root
+        nonlocal numbers, params, complete, calc, calc_ready, depth, root, final
         for event, el in parser.read_events():
             if event == "start":
                 depth += 1
@@ -318,6 +341,12 @@ def read_vasprun(path, ctx: ReadContext):
                     if frame is not None:
                         yield frame
                     calc = None
+                elif tag == "structure" and el.get("name") == "finalpos":
+                    final = el
+                elif numbers is not None:
+                    frame = learned_step(el)
+                    if frame is not None:
+                        yield frame
                 if root is not None:
                     root.clear()      # keep memory flat: drop what has been read
             elif depth == 2 and calc is not None and tag == "energy" and \
@@ -375,10 +404,26 @@ def read_vasprun(path, ctx: ReadContext):
         fh.close()
         if unconverged:
             ctx.warn(_unconverged_note(unconverged, params["NELM"]))
+        if n_learned:
+            ctx.warn(f"{n_learned} of the {step} steps read are the machine-learned force field's "
+                     f"(ML_LMLFF: VASP writes them between its first-principles steps, outside a "
+                     f"<calculation>); read in file order, with the force field's energies and "
+                     f"forces")
+    if structureless and step:
+        ctx.warn(f"{len(structureless)} <calculation>(s) without a <structure> (GW or response-"
+                 f"function steps?) are no ionic steps: passed over")
+    elif structureless and final is not None and numbers is not None:
+        calc_el = ET.Element("calculation")     # one calculation on the file's final structure
+        calc_el.extend([final] + [e for e in structureless[-1:] if e is not None])
+        ctx.warn("its one <calculation> holds no <structure> (an optics, GW or response-function "
+                 "run): the structure is the file's final one, <structure name=\"finalpos\">"
+                 + ("" if structureless[-1] is not None else ", with no energy"))
+        step = 1
+        yield _vasprun_frame(calc_el, 0, numbers, params.get("PSTRESS") or 0.0, ctx)
     if not complete:
         ctx.truncated(f"truncated after step {step - 1} ({step} completed steps): no </modeling>")
     else:
-        _at_step_limit(Path(path), step, ctx)
+        _at_end(Path(path), step, ctx)
 
 
 def _vasprun_params(el) -> dict:
@@ -418,6 +463,7 @@ def _unconverged_note(steps: list[int], nelm: int) -> str:
 # ---------------------------------------------------------------- OUTCAR
 _OUT_INT = re.compile(r"^\s*(ISYM|ISIF|IBRION|NSW)\s*=\s*(-?\d+)")
 _OUT_SYMPREC = re.compile(r"SYMPREC\s*=\s*([-+0-9.EeDd]+)")
+_OUT_EDIFFG = re.compile(r"^\s*EDIFFG\s*=\s*([-+0-9.EeDd]+)")
 _OUT_SYSTEM = re.compile(r"^\s*SYSTEM\s*=\s*(.*\S)")
 _OUT_NELM = re.compile(r"^\s*NELM\s*=\s*(\d+)")
 _OUT_LEPSILON = re.compile(r"^\s*LEPSILON\s*=\s*T")
@@ -444,12 +490,13 @@ def _outcar_header(path):
             m = _OUT_INT.match(line)
             if m and m.group(1) not in reported:
                 reported[m.group(1)] = int(m.group(2))
-            m = _OUT_SYMPREC.search(line)
-            if m and "SYMPREC" not in reported:
-                try:
-                    reported["SYMPREC"] = _num(m.group(1))
-                except ValueError:
-                    pass
+            for key, pattern in (("SYMPREC", _OUT_SYMPREC), ("EDIFFG", _OUT_EDIFFG)):
+                m = pattern.search(line)
+                if m and key not in reported:
+                    try:
+                        reported[key] = _num(m.group(1))
+                    except ValueError:
+                        pass
             m = _OUT_SYSTEM.match(line)
             if m and title is None:
                 title = m.group(1)
@@ -462,36 +509,52 @@ def _outcar_header(path):
 
 
 class _WatchedLines(Lines):
-    """Lines that notes whether VASP's closing timing section went past (also when a marker search
-    passes over it: ``skip_to`` keys include it)."""
+    """Lines that notes whether VASP's closing timing section, its soft stop and its converged
+    relaxation went past (also when a marker search passes over them: the scanner's ``skip_to``
+    keys include them)."""
 
-    ended = False
+    ended = soft_stop = converged = False
+
+    def _note(self, line):
+        if _OUTCAR_END in line:
+            self.ended = True
+        elif _SOFT_STOP in line:
+            self.soft_stop = True
+        elif _CONVERGED in line:
+            self.converged = True
 
     def readline(self):
         line = super().readline()
-        if _OUTCAR_END in line:
-            self.ended = True
+        self._note(line)
         return line
 
     def read_lines(self, n):
         out = super().read_lines(n)
-        if any(_OUTCAR_END in line for line in out):
-            self.ended = True
+        for line in out:
+            self._note(line)
         return out
+
+    def skip_to(self, keys):
+        line = super().skip_to(keys)
+        self._note(line)
+        return line
 
 
 _SCF_END = "FREE ENERGIE OF THE ION-ELECTRON SYSTEM"   # ASE's chunk delimiter (+4 lines)
 _CELL, _POSITION, _STRESS = "direct lattice vectors", "POSITION          ", "in kB "
-_STEP_KEYS = (_SCF_END, _CELL, _POSITION, _STRESS, _OUTCAR_END, "Iteration")
-_TO_ENERGY_KEYS = (_SCF_END, _OUTCAR_END, "Iteration")   # energy-first: only its SCF before it
-_AFTER_ENERGY_KEYS = (_CELL, _POSITION, _STRESS, "Iteration", _OUTCAR_END)
+_SOFT_STOP = "soft stop encountered"     # VASP read a STOPCAR with LSTOP = .TRUE.
+_CONVERGED = "reached required accuracy"  # after a relaxation's last ionic step
+_MARKS = (_OUTCAR_END, _SOFT_STOP, _CONVERGED)   # noted by _WatchedLines wherever they are met
+_STEP_KEYS = (_SCF_END, _CELL, _POSITION, _STRESS, "Iteration", *_MARKS)
+_TO_ENERGY_KEYS = (_SCF_END, "Iteration", *_MARKS)   # energy-first: only its SCF before it
+_AFTER_ENERGY_KEYS = (_CELL, _POSITION, _STRESS, "Iteration", *_MARKS)
 
 
 class _ScanStopped(Exception):
     """The fast scanner met a step it does not read exactly like ASE; ASE takes over there."""
 
 
-def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
+def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
     """Yield (cell, positions, forces, stress|None, free_energy, decimals, electronic steps|None)
     per completed ionic step (the electronic steps: the last ``Iteration  i(  n)`` line's n).
 
@@ -527,9 +590,7 @@ def _scan_outcar_steps(fd: Lines, natoms, state: dict | None = None):
 
     def take(line, got):
         """Read the block a marker line opens into ``got``; False if the file ends inside it."""
-        if _OUTCAR_END in line:
-            fd.ended = True
-        elif _CELL in line:
+        if _CELL in line:
             block = rows(3)
             if block is None:
                 return False
@@ -655,36 +716,53 @@ def _outcar_with_ase(path, ctx, skip):
         _warn_at_end(fd, step, ctx)
 
 
-_CONVERGED = "reached required accuracy"      # OUTCAR, after a relaxation's last ionic step
+def _outcar_marks(path: Path) -> "_WatchedLines | None":
+    """The OUTCAR read through for its soft stop and converged-relaxation lines (None: unreadable)."""
+    try:
+        with _WatchedLines(path) as fh:
+            while fh.skip_to(_MARKS):
+                pass
+        return fh
+    except (OSError, InputError, *STREAM_ERRORS):
+        return None
 
 
-def _at_step_limit(path: Path, steps: int, ctx) -> None:
-    """Mark a complete relaxation (IBRION 1, 2, 3) that ran all its NSW ionic steps unfinished,
-    unless its OUTCAR (this file or the stage's) says it converged ("reached required accuracy -
-    stopping structural energy minimisation"; VASP's documentation: common practice)."""
+def _at_end(path: Path, steps: int, ctx, read: "_WatchedLines | None" = None) -> None:
+    """Mark a complete run unfinished when VASP stopped it on request (its OUTCAR says
+    "soft stop encountered": a STOPCAR with LSTOP = .TRUE., and not "reached required accuracy"),
+    or when a relaxation (IBRION 1, 2, 3) ran all its NSW ionic steps and its OUTCAR does not say
+    it converged ("reached required accuracy - stopping structural energy minimisation"; VASP's
+    documentation: common practice); with EDIFFG = 0 (no criterion: NSW steps by design, as
+    pymatgen's ``converged_ionic`` takes it) that is said, not marked. ``read``: the OUTCAR just read; otherwise the OUTCAR is this
+    file or the same stage's beside it (a vasprun.xml has neither line)."""
     s = ctx.settings
     nsw, ibrion = s.get("NSW"), s.get("IBRION")
-    if nsw is None or ibrion not in (1, 2, 3) or not 0 < int(nsw) <= steps:
-        return
-    outcar = path if strip_compression(path.name).startswith("OUTCAR") else \
-        _sibling(path, "OUTCAR", ctx)
-    if outcar is not None:
-        try:
-            with Lines(outcar) as fh:
-                if fh.skip_to((_CONVERGED,)):
-                    return
-        except (OSError, *STREAM_ERRORS):
-            outcar = None
-    ctx.unfinished = (f"stopped at its step limit (VASP ran all NSW = {int(nsw)} ionic steps" + (
-        f" and its OUTCAR does not say '{_CONVERGED}')" if outcar is not None else
-        "; no OUTCAR beside it says whether the last converged)"))
+    at_limit = nsw is not None and ibrion in (1, 2, 3) and 0 < int(nsw) <= steps
+    if read is None:
+        outcar = path if strip_compression(path.name).startswith("OUTCAR") else \
+            _sibling(path, "OUTCAR", ctx)
+        read = _outcar_marks(outcar) if outcar is not None else None
+    if read is not None and read.soft_stop and not read.converged:
+        limit = f" of NSW = {int(nsw)}" if nsw is not None else ""
+        ctx.unfinished = (f"stopped on request (VASP: '{_SOFT_STOP}' after {steps}{limit} ionic "
+                          f"steps: a STOPCAR with LSTOP = .TRUE. in its folder, written by a user "
+                          f"or by driftwatch's soft stop)")
+    elif at_limit and s.get("EDIFFG") == 0:
+        ctx.warn(f"ran all NSW = {int(nsw)} ionic steps as set: EDIFFG = 0 gives VASP no "
+                 f"convergence criterion (the run is meant to take NSW steps), so nothing says "
+                 f"its final structure is a relaxed one")
+    elif at_limit and not (read is not None and read.converged):
+        ctx.unfinished = (f"stopped at its step limit (VASP ran all NSW = {int(nsw)} ionic steps"
+                          + (f" and its OUTCAR does not say '{_CONVERGED}')" if read is not None
+                             else "; no OUTCAR beside it says whether the last converged)"))
 
 
 def _warn_at_end(fd, step, ctx):
     """A warning for a file without its closing timing section, or complete without a step; a
-    complete one that ran all its NSW steps is marked unfinished (:func:`_at_step_limit`)."""
+    complete one is marked unfinished where VASP stopped it early or at its step limit
+    (:func:`_at_end`)."""
     if fd.ended and step:
-        _at_step_limit(Path(fd.name), step, ctx)
+        _at_end(Path(fd.name), step, ctx, read=fd)
     if not fd.ended:
         where = f"after step {step - 1} ({step} completed steps)" if step else \
             "before the first ionic step completed"

@@ -1,0 +1,79 @@
+"""Real pw.x runs made here by the sixteenth session's field trial (tests/data/qe_trials, Quantum
+ESPRESSO 6.7 from Debian; each pw.in is the whole input, invented cells), checked against the lines
+pw.x printed and ASE's espresso reader."""
+from __future__ import annotations
+
+import gzip
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import ase.io
+
+from driftwatch.adapters import detect, read_run
+from driftwatch.errors import UnknownFormatError
+
+TRIALS = Path(__file__).parent / "data" / "qe_trials"
+QE = Path(__file__).parent / "data" / "qe"
+
+
+def _text(folder: Path) -> str:
+    return gzip.open(folder / "pw.out.gz", "rt").read()
+
+
+def test_a_relaxation_pw_x_stopped_at_max_seconds_is_unfinished():
+    """pw.x with max_seconds = 25 stopped after 5 completed steps ("Maximum CPU time exceeded",
+    then JOB DONE; the same input without it needs 8): its final structure is not a relaxed one,
+    said once, as why the run is unfinished (it read as finished, with a warning)."""
+    d = TRIALS / "fe2_afm_relax_max_seconds"
+    text = _text(d)
+    assert "max_seconds = 25" in (d / "pw.in").read_text()
+    assert "Maximum CPU time exceeded" in text and "JOB DONE." in text
+    assert "bfgs converged" not in text and text.count("!    total energy") == 5
+    run = read_run(d)
+    assert len(run) == 5 == len(ase.io.read(d / "pw.out.gz", ":", format="espresso-out"))  # ASE
+    assert run.unfinished == ("stopped at its time limit (pw.x: 'Maximum CPU time exceeded': "
+                              "max_seconds)")
+    assert sum("Maximum CPU time exceeded" in w for w in run.warnings) == 1
+
+
+def test_a_run_pw_x_stopped_on_its_own_error_is_no_killed_job(tmp_path):
+    """pw.x 6.7 stopped a relax after its first step on "Error in routine checkallsym (1): some of
+    the original symmetry operations not satisfied" (its banner ends the output, no JOB DONE; its
+    CRASH file says the same). With or without the CRASH file beside it, the run stopped on that
+    error: it is not "job killed or still running"."""
+    d = TRIALS / "si2_ifpos_crash_checkallsym"
+    text = _text(d)
+    assert "Error in routine checkallsym (1):" in text and "JOB DONE" not in text
+    assert "some of the original symmetry operations not satisfied" in (d / "CRASH").read_text()
+    shutil.copytree(d, tmp_path / "with_crash")
+    (tmp_path / "alone").mkdir()
+    shutil.copy(d / "pw.out.gz", tmp_path / "alone")
+    for folder in (tmp_path / "with_crash", tmp_path / "alone"):
+        run = read_run(folder)
+        assert len(run) == 1 and run.unfinished == (
+            "stopped on a pw.x error ('Error in routine checkallsym (1): some of the original "
+            "symmetry operations not satisfied')"), folder
+        assert not any("killed" in w for w in run.warnings)
+
+
+def test_a_note_quoting_pw_x_banner_is_no_pw_x_output(tmp_path):
+    """A campaign's notes that quote pw.x's banner ("Program PWSCF v.6.7MaX") are no output: pw.x
+    prints it as a line of its own, "     Program PWSCF v.6.7MaX starts on ..." (every pw.x
+    output in tests/data, 4.1.2 to 7.4). The notes had become a failed run (exit 4)."""
+    camp = tmp_path / "camp"
+    shutil.copytree(QE / "bulk_tetragonal_to_cubic", camp / "runA")
+    (camp / "NOTES.md").write_text('Campaign notes\nruns made with pw.x (its header says "Program '
+                                   'PWSCF v.6.7MaX").\n')
+    try:
+        got = detect(camp / "NOTES.md")
+    except UnknownFormatError:
+        got = None
+    assert got is None
+    assert detect(camp / "runA" / "pw.out") == "espresso-out"
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report"], capture_output=True, text=True,
+                          timeout=600)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "1 runs: 1 with a verdict, 0 failed" in proc.stdout
