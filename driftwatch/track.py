@@ -172,6 +172,16 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
     last = seeds[-1]
     for s in precs:
         group(0, s), group(last, s)
+
+    def bisect(lo, hi, s, final):       # lo has another group than final, hi has final's
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            if key(group(mid, s)) == key(final):
+                hi = mid
+            else:
+                lo = mid
+        return hi
+
     for s in search_at:
         final = group(last, s)
         if relation(last, s) == "same":
@@ -182,12 +192,11 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
                 lo = k
                 break
             hi = k
-        while lo is not None and hi - lo > 1:
-            mid = (lo + hi) // 2
-            if key(group(mid, s)) == key(final):
-                hi = mid
-            else:
-                lo = mid
+        if lo is not None:
+            hi = bisect(lo, hi, s, final)
+        hi = _went_and_came_back(frames, geo, final, hi, last, seeds,
+                                 lambda k: key(group(k, s)) != key(final),
+                                 lambda lo, hi: bisect(lo, hi, s, final))
         k = last - 1                    # live: the persistence window, frame by frame
         while persist is not None and k > hi and run.steps[last] - run.steps[k] + 1 <= persist:
             if key(group(k, s)) != key(final):
@@ -201,6 +210,33 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
             "operations": [g["operations"] for g in gs],
             "relation": [relation(i, s) for s in ss]}
     return len(asked)
+
+
+RECHECKS = 8
+"""The most frames after a located group change that :func:`_went_and_came_back` asks spglib about,
+per symprec searched."""
+
+
+def _went_and_came_back(frames, geo, final: dict, hi: int, last: int, seeds, other, bisect) -> int:
+    """``hi``, the first frame from which the final group holds, moved later where the group left
+    and came back between two checked frames: spglib is asked on the frames after ``hi`` where the
+    lattice moved away from the final group's Bravais type again (its deformation more than 10 %
+    above the one at ``hi``; at most :data:`RECHECKS`); one that has another group (``other(k)``)
+    is bisected to the next checked frame (``bisect(k, next)``). A group that leaves while the
+    lattice does not move is still not seen (the record's ``checked_after`` says so)."""
+    t = rules.bravais_of_group(final["group"], final["symbol"], geo.dimension)
+    if t is None:
+        return hi
+    dfm = [float((f.get("deformation") or {}).get(t, 0.0)) for f in frames]
+    k, asked = hi + 1, 0
+    while k < last and asked < RECHECKS:
+        if k not in seeds and dfm[k] > 1.1 * dfm[hi]:
+            asked += 1
+            if other(k):
+                hi = bisect(k, min((j for j in seeds if j > k), default=last))
+                k = hi
+        k += 1
+    return hi
 
 
 def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:

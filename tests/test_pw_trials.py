@@ -77,3 +77,28 @@ def test_a_note_quoting_pw_x_banner_is_no_pw_x_output(tmp_path):
                           timeout=600)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert "1 runs: 1 with a verdict, 0 failed" in proc.stdout
+
+
+def test_a_group_that_came_went_and_came_back_is_dated_where_it_stays():
+    """A real one-atom Al vc-relax from a monoclinic cell (ibrav = -12): spglib at 1e-3 Å gives Cmmm
+    at step 7, P2/m at steps 8 and 9 (the lattice moved away from oS again: its deformation rises
+    from 0.00181 to 0.00233 Å) and Cmmm from step 10 to the end. The default search checks few
+    frames; where the lattice moved away after the located step it asks spglib again, so the change
+    is dated from step 10, as with every frame asked (it had said step 7)."""
+    import numpy as np
+    import spglib
+
+    from driftwatch import analyze
+    d = TRIALS / "al1_mono_ibravm12_vc_fine"
+    frames = ase.io.read(d / "pw.out.gz", ":", format="espresso-out")                   # ASE
+    got = [spglib.get_symmetry_dataset((a.cell[:], a.get_scaled_positions(), a.numbers),
+                                       symprec=1e-3).number for a in frames]
+    assert got[6:] == [10, 65, 10, 10, 65, 65]
+    rec = analyze(d)
+    every = analyze(d, frames=range(len(frames)))
+    for r in (rec, every):
+        sv = r["summary"]["verdict"]["structure"]
+        assert (sv["initial"]["group"], sv["final"]["group"], sv["from_step"]) == (10, 65, 10)
+    asked = [i for i, f in enumerate(rec["frames"]) if f.get("structure")]
+    assert len(asked) < len(frames) and {7, 8, 9, 10} <= set(asked)
+    assert np.isclose(rec["frames"][8]["deformation"]["oS"], 0.00233, atol=1e-5)
