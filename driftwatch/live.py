@@ -413,7 +413,9 @@ class SymmetryWatch:
         opt = optimizer if optimizer is not None else self.optimizer
         step = int(opt.nsteps) if opt is not None and hasattr(opt, "nsteps") else self._calls
         if self._calls == 0:
-            note_fix_symmetry(self.atoms, self._tracker.code_settings)
+            t = self._tracker
+            note_fix_symmetry(self.atoms, t.code_settings,
+                              lambda w: t.warnings.append(f"{t.source}: {w}"))
             if opt is not None:
                 self._note_dynamics(opt)
         self._calls += 1

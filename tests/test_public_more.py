@@ -224,3 +224,30 @@ def test_a_bands_inputs_beside_its_outputs_are_no_runs(tmp_path):
                               capture_output=True, text=True, timeout=600)
         assert proc.returncode != 0 and proc.stderr.count("\n") == 1, proc.stderr
         assert f"the inputs of the job whose outputs are in {out}/ beside it" in proc.stderr
+
+
+def test_atoms_the_codes_constraints_hold_are_said_and_leave_fmax(tmp_path):
+    """pymatgen's vasprun.indirect.xml (two atoms, selective dynamics `T T T` / `F F F`, as
+    pymatgen's ``selective_dynamics`` site property reads them): one atom held, said; its force
+    does not count in fmax (as ASE's FixAtoms). FAIR-Chem's slab relaxation (tests/data/public:
+    extended XYZ ``move_mask``, ASE's FixAtoms on 18 atoms) says the same of its 18 atoms."""
+    path = MORE / "vasp_selective_static" / "vasprun.xml.gz"
+    ref = _pymatgen_vasprun(path, tmp_path)
+    flags = ref.final_structure.site_properties["selective_dynamics"]
+    assert [list(map(bool, f)) for f in flags] == [[True] * 3, [False] * 3]
+    run = read_run(path)
+    assert run.code_settings["constrained_atoms"] == 1
+    said = [w for w in run.warnings if "atoms are held" in w]
+    assert len(said) == 1 and "1 of 2 atoms are held (in part or whole) by VASP's selective " \
+        "dynamics" in said[0] and "fmax counts their free force components only" in said[0]
+    np.testing.assert_array_equal(run.forces[0][1], 0.0)
+    np.testing.assert_allclose(run.forces[0][0], ref.ionic_steps[0]["forces"][0], atol=1e-8)
+    slab = Path(__file__).parent / "data" / "public" / "fairchem_slab_relax" / \
+        "toy_c3h8_relax.extxyz.xz"
+    first = ase.io.read(slab, 0)                                                      # ASE
+    fixed = [c for c in first.constraints if type(c).__name__ == "FixAtoms"]
+    assert len(fixed) == 1 and len(fixed[0].index) == 18
+    run = read_run(slab)
+    assert run.code_settings["constrained_atoms"] == 18
+    assert any("18 of 38 atoms are held (in part or whole) by ASE's FixAtoms" in w
+               for w in run.warnings)

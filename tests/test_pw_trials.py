@@ -10,6 +10,7 @@ import sys
 from pathlib import Path
 
 import ase.io
+import numpy as np
 
 from driftwatch.adapters import detect, read_run
 from driftwatch.errors import UnknownFormatError
@@ -85,7 +86,6 @@ def test_a_group_that_came_went_and_came_back_is_dated_where_it_stays():
     from 0.00181 to 0.00233 Å) and Cmmm from step 10 to the end. The default search checks few
     frames; where the lattice moved away after the located step it asks spglib again, so the change
     is dated from step 10, as with every frame asked (it had said step 7)."""
-    import numpy as np
     import spglib
 
     from driftwatch import analyze
@@ -102,3 +102,27 @@ def test_a_group_that_came_went_and_came_back_is_dated_where_it_stays():
     asked = [i for i, f in enumerate(rec["frames"]) if f.get("structure")]
     assert len(asked) < len(frames) and {7, 8, 9, 10} <= set(asked)
     assert np.isclose(rec["frames"][8]["deformation"]["oS"], 0.00233, atol=1e-5)
+
+
+def test_atoms_pw_x_holds_by_if_pos_are_said_and_leave_fmax():
+    """A two-atom Si relax (nosym) with if_pos `0 0 0` and `0 0 1` (the output's own position
+    cards print them): pw.x converged in 4 steps on the free component, atom 2's z, while the
+    forces it prints are the whole ones (1.79 eV/Å on the last step). The run says that its atoms
+    are held, a loss of symmetry may be the constraint's (the same start without the flags,
+    si2_free_nosym, gains), and fmax counts the free components only: atom 2's printed z force."""
+    from ase.units import Bohr, Ry
+    held, free = TRIALS / "si2_ifpos_nosym", TRIALS / "si2_free_nosym"
+    text = _text(held)
+    assert "Si            0.0000000000        0.0000000000        0.0000000000    0   0   0" in text
+    last = [ln for ln in text.splitlines() if "atom    2 type  1   force =" in ln][-1]
+    fz = abs(float(last.split()[-1])) * Ry / Bohr
+    run = read_run(held)
+    frames = ase.io.read(held / "pw.out.gz", ":", format="espresso-out")                # ASE
+    whole = np.linalg.norm(frames[-1].get_forces(), axis=1).max()
+    fmax = np.linalg.norm(run.forces[-1], axis=1).max()
+    assert whole > 1.7 and abs(fmax - fz) < 1e-6 * max(fz, 1e-3)
+    assert run.code_settings["constrained_atoms"] == 2
+    assert any("2 of 2 atoms are held (in part or whole) by pw.x's if_pos flags: a group the "
+               "structure lost, or did not gain, may be the constraint's doing" in w
+               for w in run.warnings)
+    assert not any("atoms are held" in w for w in read_run(free).warnings)

@@ -160,7 +160,7 @@ def read_traj(path, ctx: ReadContext):
                     ctx.settings.update({"code": "ase", "dynamics_seen": _MOMENTA})
                 if i == 0:
                     first = atoms
-                    note_fix_symmetry(atoms, ctx.settings)
+                    note_fix_symmetry(atoms, ctx.settings, ctx.warn)
                 fr = frame_from_atoms(atoms, i)
                 energies.append(fr.energy)
                 yield fr
@@ -229,6 +229,8 @@ def read_extxyz(path, ctx: ReadContext):
                 truncated(a, b)
                 return
             atoms = parse(block, b, n == 0)
+            if n == 0:
+                note_fix_symmetry(atoms, ctx.settings, ctx.warn)
             yield frame_from_atoms(atoms, _step(atoms, n))
         if n == 0:                           # one structure: nothing says it relaxed
             ctx.settings["single_structure"] = f"{os.path.basename(path)}, one frame"
@@ -251,6 +253,8 @@ def read_extxyz(path, ctx: ReadContext):
                 got[wanted[n]] = parse(block, b, not got)
     for k, m in enumerate(chosen):
         if k in got:
+            if k == min(got):
+                note_fix_symmetry(got[k], ctx.settings, ctx.warn)
             yield frame_from_atoms(got[k], _member_step(m, k, kind))
 
 
@@ -316,7 +320,7 @@ def read_db(path, ctx: ReadContext):
             for i, row in enumerate(db.select(selection, sort="id")):
                 atoms = row.toatoms()
                 if i == 0:
-                    note_fix_symmetry(atoms, ctx.settings)
+                    note_fix_symmetry(atoms, ctx.settings, ctx.warn)
                 step = row.get("step", i)
                 yield frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
             return
@@ -375,6 +379,8 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
                  f"{listed} ionic steps the file lists ({steps[2]}): the steps between are not "
                  f"seen" + (f"; the one read is the last, step {listed - 1}" if last_only else ""))
     for i, atoms in enumerate(images):
+        if i == 0:
+            note_fix_symmetry(atoms, ctx.settings, ctx.warn)
         yield frame_from_atoms(atoms, listed - 1 if last_only else _step(atoms, i))
 
 

@@ -272,6 +272,19 @@ def _plain_positions(header, rows, cell, alat):
     return c @ np.asarray(m, float)
 
 
+def _if_pos(rows) -> np.ndarray | None:
+    """(N, 3) the ``if_pos`` flags of an ATOMIC_POSITIONS card's rows (0: that Cartesian
+    component is held; 1 where a row has none), or None when a row's flags are not integers."""
+    out = []
+    for row in rows:
+        f = row.split()
+        try:
+            out.append([int(x) for x in f[4:7]] if len(f) >= 7 else [1, 1, 1])
+        except ValueError:
+            return None
+    return np.array(out)
+
+
 def _note_rounding(ctx: ReadContext, header: str, row: str, alat) -> None:
     """The last printed digit of an ATOMIC_POSITIONS card, in its units (see Run.position_precision)."""
     f = row.split()
@@ -490,6 +503,10 @@ def read_pw_out(path, ctx: ReadContext):
                     break
                 cell = pending_cell if pending_cell is not None else cur.cell
                 _note_rounding(ctx, line, block[0], alat)
+                if ctx.held is None:
+                    flags = _if_pos(block)
+                    if flags is not None:
+                        ctx.hold(flags == 0, "pw.x's if_pos flags")
                 pos = _plain_positions(line, block, cell, alat)
                 if pos is None:     # expressions, odd units, damaged rows: ASE decides
                     card = get_atomic_positions([line] + block, n_atoms=natoms, cell=cell,

@@ -283,6 +283,11 @@ class ReadContext:
         self.species: tuple | None = None
         """Species labels per atom when the code tells atoms of one element apart
         (:attr:`Run.species`)."""
+        self.held: np.ndarray | None = None
+        """(N, 3) bool: the force components the code's own constraints hold (pw.x's ``if_pos``,
+        VASP's selective dynamics); :func:`collect` zeroes them and says so (:meth:`hold`)."""
+        self.held_by: str = ""
+        self.held_zero: np.ndarray | None = None
         self.carry: dict = {}
         """What a reader leaves for the reader of the next stage of the same run (pw.x: the last
         configuration it printed but never evaluated, which a ``restart_mode='restart'`` run
@@ -323,6 +328,14 @@ class ReadContext:
             return
         self.warn(message)
         self.unfinished = "cut short: job killed or still running"
+
+    def hold(self, mask, by: str, zero=None) -> None:
+        """The code's constraints held the components ``mask`` ((N, 3) bool; ``by``: whose flags)
+        fixed; ``zero``: the Cartesian force components that makes zero (default ``mask``)."""
+        mask = np.asarray(mask, bool)
+        if mask.any() and self.held is None:
+            self.held, self.held_by = mask, by
+            self.held_zero = mask if zero is None else np.asarray(zero, bool)
 
     def warn(self, message: str) -> None:
         """Record a warning, prefixed with the file name unless it starts with a path already."""
@@ -368,16 +381,43 @@ def frame_from_atoms(atoms, step: int) -> Frame:
     )
 
 
-def note_fix_symmetry(atoms, settings: dict) -> None:
-    """Record ASE's ``FixSymmetry`` constraint on ``atoms`` in a run's code settings: the
-    operations it holds (spglib's, at its own symprec, on the structure it was made with), which
-    the relaxation cannot lower (:func:`driftwatch.adapters.registry.symmetry_setting`)."""
+def constrained_note(k: int, n: int, by: str, zeroed: bool) -> str:
+    """The warning for a run of ``n`` atoms, ``k`` of them held (in part or whole) by ``by``."""
+    return (f"{k} of {n} atoms are held (in part or whole) by {by}: a group the structure lost, "
+            f"or did not gain, may be the constraint's doing rather than the relaxation's"
+            + ("; fmax counts their free force components only" if zeroed else ""))
+
+
+def note_fix_symmetry(atoms, settings: dict, warn=None) -> None:
+    """Record ASE's constraints on ``atoms`` (a run's first frame) in its code settings:
+    ``FixSymmetry``'s operations (spglib's, at its own symprec, on the structure it was made
+    with), which the relaxation cannot lower (:func:`driftwatch.adapters.registry.
+    symmetry_setting`), and how many atoms the other constraints hold (``FixAtoms``,
+    ``FixCartesian``, extended XYZ's ``move_mask``, ...), said through ``warn`` (the frames'
+    forces already have those constraints applied: :func:`frame_from_atoms`)."""
+    held, names = np.zeros(len(atoms), bool), []
     for c in getattr(atoms, "constraints", None) or ():
-        if type(c).__name__ == "FixSymmetry" and hasattr(c, "rotations"):
+        name = type(c).__name__
+        if name == "FixSymmetry" and hasattr(c, "rotations"):
             settings.setdefault("code", "ase")
             settings["fix_symmetry"] = {"operations": int(len(c.rotations)),
                                         "symprec": float(getattr(c, "symprec", 0.0))}
-            return
+        elif hasattr(c, "adjust_forces") and not hasattr(c, "adjust_potential_energy"):
+            probe = np.random.default_rng(0).normal(size=(len(atoms), 3))
+            moved = probe.copy()
+            try:
+                c.adjust_forces(atoms, moved)
+            except Exception:            # a constraint that cannot act on this frame: unsaid
+                continue
+            now = np.any(np.abs(moved - probe) > 1e-12, axis=1)
+            if now.any():
+                held |= now
+                names.append(name)
+    if held.any():
+        settings["constrained_atoms"] = int(held.sum())
+        if warn is not None:
+            warn(constrained_note(int(held.sum()), len(atoms),
+                                  "ASE's " + " and ".join(dict.fromkeys(names)), True))
 
 
 def checked(frames: Iterable, path) -> Iterator[Frame]:
@@ -518,6 +558,12 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
     arrays = dict(cells=cells, positions=cat("positions"), steps=cat("steps"),
                   energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
                   stress=cat("stress", have["stress"]))
+    held = ctx.held
+    if held is not None and held.shape == (len(first.positions), 3):
+        if arrays["forces"] is not None:     # what the code's optimiser converges on
+            arrays["forces"][:, ctx.held_zero] = 0.0
+        ctx.settings["constrained_atoms"] = int(held.any(axis=1).sum())
+        ctx.warn(constrained_note(int(held.any(axis=1).sum()), len(held), ctx.held_by, True))
     blocks.clear()          # freed before anything else is computed: the peak stays at twice
     cur = None              # the arrays
     return Run(

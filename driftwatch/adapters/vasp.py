@@ -341,8 +341,9 @@ def read_vasprun(path, ctx: ReadContext):
                     if frame is not None:
                         yield frame
                     calc = None
-                elif tag == "structure" and el.get("name") == "finalpos":
-                    final = el
+                elif tag == "structure" and el.get("name") in ("initialpos", "finalpos"):
+                    _selective(el, ctx)
+                    final = el if el.get("name") == "finalpos" else final
                 elif numbers is not None:
                     frame = learned_step(el)
                     if frame is not None:
@@ -424,6 +425,24 @@ def read_vasprun(path, ctx: ReadContext):
         ctx.truncated(f"truncated after step {step - 1} ({step} completed steps): no </modeling>")
     else:
         _at_end(Path(path), step, ctx)
+
+
+def _selective(structure, ctx: ReadContext) -> None:
+    """VASP's selective dynamics (the POSCAR's T/F flags, in vasprun.xml's ``selective`` array):
+    the atoms it holds, said (:meth:`ReadContext.hold`). A flag holds a lattice-vector direction,
+    so only the forces of atoms held in all three are zeroed (as ASE's FixAtoms)."""
+    sel = structure.find("varray[@name='selective']")
+    if sel is None:
+        return
+    try:
+        free = np.array([[x.upper().startswith("T") for x in (v.text or "").split()]
+                         for v in sel.findall("v")], bool)
+    except ValueError:
+        return
+    if free.ndim == 2 and free.shape[1] == 3:
+        whole = (~free).all(axis=1)
+        ctx.hold(~free, "VASP's selective dynamics (the POSCAR's T/F flags)",
+                 zero=np.repeat(whole[:, None], 3, axis=1))
 
 
 def _vasprun_params(el) -> dict:
