@@ -257,8 +257,9 @@ def _inspect_table(rec: dict) -> str:
     at = s.get("atoms")
     if at:
         lines.append(f"   atoms: {atoms_text(at)}")
-    if s.get("lattice_note"):
-        lines.append(f"    note: {s['lattice_note']}")
+    for key in ("lattice_note", "cell_held"):
+        if s.get(key):
+            lines.append(f"    note: {s[key]}")
     if s.get("supercell"):
         lines.append(f"    note: {s['supercell']['text']}")
     if s.get("spglib_lattice"):

@@ -126,3 +126,25 @@ def test_atoms_pw_x_holds_by_if_pos_are_said_and_leave_fmax():
                "structure lost, or did not gain, may be the constraint's doing" in w
                for w in run.warnings)
     assert not any("atoms are held" in w for w in read_run(free).warnings)
+
+
+def test_a_cell_pw_x_moved_only_within_its_ibrav_is_said():
+    """Si2 diamond written in a body-centred tetragonal cell (ibrav = 7), nosym, relaxed with
+    cell_dofree = 'ibrav': every frame's cell keeps the ibrav = 7 form (a/2)(1, -1, c/a),
+    (a/2)(1, 1, c/a), (a/2)(-1, -1, c/a) (ASE's reader), so "lattice kept tI" is no test of the
+    relaxation, and the run says so; with cell_dofree = 'all' (al1_bct_ibrav7_vc_all) nothing is
+    said."""
+    from driftwatch import analyze
+    d = TRIALS / "si2_bct_ibrav7_nosym_dofree_ibrav"
+    assert "cell_dofree = 'ibrav'" in (d / "pw.in").read_text()
+    for a in ase.io.read(d / "pw.out.gz", ":", format="espresso-out"):                   # ASE
+        c = a.cell[:]
+        half, ratio = c[0, 0], c[0, 2] / c[0, 0]
+        np.testing.assert_allclose(c, half * np.array([[1, -1, ratio], [1, 1, ratio],
+                                                       [-1, -1, ratio]]), atol=1e-9)
+    rec = analyze(d)
+    assert rec["summary"]["verdict"]["lattice"]["direction"] == "kept"
+    assert rec["summary"]["cell_held"] == (
+        "pw.x's cell_dofree = 'ibrav' moved only the lattice parameters of its ibrav: the cell "
+        "could not leave its Bravais type; the lattice verdict does not test what the code held")
+    assert analyze(TRIALS / "al1_bct_ibrav7_vc_all")["summary"]["cell_held"] is None

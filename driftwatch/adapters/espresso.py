@@ -1096,6 +1096,29 @@ def cell_free(code_settings: dict) -> str | None:
     return f"calculation = '{calc}'" if calc in ("vc-relax", "vc-md") else None
 
 
+# what each cell_dofree of pw.x's input documentation (INPUT_PW, from memory) leaves held
+_DOFREE_HELD = {
+    "ibrav": "moved only the lattice parameters of its ibrav: the cell could not leave its "
+             "Bravais type",
+    "volume": "only rescaled the cell: its shape, and so its Bravais type, were held",
+    "epitaxial_ab": "held the cell vectors a and b", "epitaxial_ac": "held the cell vectors a and c",
+    "epitaxial_bc": "held the cell vectors b and c",
+    **{k: f"moved only the cell's {' and '.join(f'{c}{c}' for c in k)} component"
+          f"{'s' if len(k) > 1 else ''} (the others held)"
+       for k in ("x", "y", "z", "xy", "xz", "yz", "xyz")},
+}
+
+
+def cell_held(code_settings: dict) -> str | None:
+    """What pw.x's ``cell_dofree`` held of a cell it let change, in words, or None."""
+    s = code_settings or {}
+    dofree = str(s.get("cell_dofree") or "").lower()
+    if cell_free(s) is None or dofree not in _DOFREE_HELD:
+        return None
+    return (f"pw.x's cell_dofree = '{dofree}' {_DOFREE_HELD[dofree]}; the lattice verdict does not "
+            f"test what the code held")
+
+
 # ---------------------------------------------------------------- registration
 def register_all(register, register_code) -> None:
     """The pw.x row of the format table and the pw.x entry of the code table."""
@@ -1110,6 +1133,6 @@ def register_all(register, register_code) -> None:
         settings_files=("*.in", "*.pwi", "*.inp"),
         end_markers=END_MARKERS, soft_stop=__name__ + ":soft_stop",
         symmetry_setting=__name__ + ":symmetry_setting", run_kind=__name__ + ":run_kind",
-        cell_free=__name__ + ":cell_free",
+        cell_free=__name__ + ":cell_free", cell_held=__name__ + ":cell_held",
         inputs_only=__name__ + ":inputs_only"),
         replace=True)

@@ -115,6 +115,8 @@ class Code:
       relaxation (molecular dynamics, finite differences, ...), None for a relaxation or unknown.
     * ``cell_free(code_settings) -> str | None``: the setting that let the cell change, in words
       (``"ISIF = 3"``), None when the cell was held or nothing is known.
+    * ``cell_held(code_settings) -> str | None``: what of a cell it let change the code still held
+      (pw.x's ``cell_dofree``), in words, None when nothing or nothing known.
     * ``inputs_only(folder, names, ctx) -> (str, [names][, ran]) | None``: for a folder ``folder``
       did not claim, whether it holds the code's job inputs and no output (a job not run yet, or
       stopped before writing): what it holds, in words, and those files; ``ran`` True when the
@@ -138,6 +140,7 @@ class Code:
     symmetry_setting: Callable | str | None = None
     run_kind: Callable | str | None = None
     cell_free: Callable | str | None = None
+    cell_held: Callable | str | None = None
     inputs_only: Callable | str | None = None
     band: Callable | str | None = None
     ended: Callable | str | None = None
@@ -223,6 +226,13 @@ def cell_free(code_settings: dict) -> str | None:
     """The code's setting that let the run's cell change, in words (see :class:`Code`), or None."""
     code = _code_named((code_settings or {}).get("code"))
     fn = code.function("cell_free") if code is not None else None
+    return fn(code_settings) if fn is not None else None
+
+
+def cell_held(code_settings: dict) -> str | None:
+    """What of a moving cell the code held, in words (see :class:`Code`), or None."""
+    code = _code_named((code_settings or {}).get("code"))
+    fn = code.function("cell_held") if code is not None else None
     return fn(code_settings) if fn is not None else None
 
 

@@ -532,6 +532,8 @@ def _summary_section(rec):
         body += ('<p class="fact"><b>One frame</b>: one structure was read, so nothing can drift; '
                  "the verdict compares the structure with itself and the plots show that one "
                  "step.</p>")
+    elif s.get("cell_held"):
+        body += f'<p class="fact"><b>Cell held in part</b>: {e(s["cell_held"])}.</p>'
     elif run.get("fixed_cell"):
         free = _cell_free(run)
         note = s.get("lattice_note") or ("the lattice cannot drift; symmetry drift is in the atoms "
