@@ -54,6 +54,11 @@ class AtomsChangeError(InputError):
     """The frames read as one run hold other atoms (count or elements) from one step on."""
 
 
+class DamagedFrameError(InputError):
+    """A frame holds numbers no structure has (not finite, or absurdly far away): a run that blew
+    up, or a damaged file. After good frames the run ends there (:func:`adapters.run.checked`)."""
+
+
 class NotARunError(InputError):
     """The path is no run and will not become one while a job writes (the parent folder of a
     nudged-elastic-band calculation, a file of many structures read whole, a job's ``inputs/``

@@ -378,7 +378,14 @@ def test_consistency_checks(traj, tmp_path):
     k = [i for i, ln in enumerate(x) if "configuration=     3" in ln][0]
     x[k + 1] = "  nan nan nan"
     (tmp_path / "XDATCAR").write_text("\n".join(x) + "\n")
-    with pytest.raises(InputError, match="non-finite positions at step 2"):
+    run = read_run(tmp_path / "XDATCAR")      # a blow-up: the steps before it are the run
+    assert len(run) == 2 and run.unfinished == "damaged: non-finite positions at step 2"
+    assert any("non-finite positions at step 2: a run that blew up, or a damaged file; the 2 "
+               "steps before it are read" in w for w in run.warnings)
+    first = [i for i, ln in enumerate(x) if "configuration=     1" in ln][0]
+    x[first + 1] = "  nan nan nan"
+    (tmp_path / "XDATCAR").write_text("\n".join(x) + "\n")
+    with pytest.raises(InputError, match="non-finite positions at step 0"):
         read_run(tmp_path / "XDATCAR")
 
 

@@ -127,7 +127,6 @@ def build_corpus(root: Path) -> list[Case]:
                _layer_frames(square, pos=((np.inf, 0, 8.0),)), r"non-finite positions")
     put("nan_in_poscar", "POSCAR", poscar.replace("3.0000000000", "NaN", 1).encode(),
         r"non-finite cell|cannot be read")
-    put("nan_in_pwout_positions", "pw.out", _nan_in_pw_positions(pwo), r"non-finite positions")
     # singular, degenerate and nearly singular cells
     put_frames("zero_volume_traj", "relax.traj",
                _layer_frames([[3, 0, 0], [6, 0, 0], [0, 0, 16]]), r"singular cell")
@@ -219,7 +218,7 @@ def _dw(*args, timeout=120, **kw):
                           capture_output=True, text=True, timeout=timeout, cwd=REPO, **kw)
 
 
-@pytest.mark.parametrize("name", ["garbage_relax_traj", "nan_in_pwout_positions",
+@pytest.mark.parametrize("name", ["garbage_relax_traj", "inf_position_extxyz",
                                   "cell_1e-8_angstrom", "empty_OUTCAR_gz"])
 def test_cli_process_one_line_and_traceback_only_with_debug(name, corpus):
     c = _case(corpus, name)
@@ -960,3 +959,15 @@ def test_an_audit_in_an_iso_8859_1_locale_names_runs_as_in_a_utf_8_one(tmp_path)
     assert ids[0] == ids[1] == ["my runs/Ünïcødé ✓/L01 qe"]
     assert [p.name for p in (tmp_path / "out" / "records").glob("*.json")] == \
         ["my_runs_Ünïcødé___L01_qe.json"]
+
+
+def test_a_nan_mid_run_ends_the_run_there(tmp_path):
+    """A real pw.x output whose second ATOMIC_POSITIONS card (step 2) holds a NaN coordinate, as
+    a run that blew up writes: the two steps before it are the run, marked damaged there, in one
+    warning naming the file (the whole run had been refused)."""
+    pwo = (QE / "relax_atoms_to_sites" / "pw.out").read_bytes()
+    (tmp_path / "pw.out").write_bytes(_nan_in_pw_positions(pwo))
+    run = read_run(tmp_path / "pw.out")
+    assert len(run) == 2 and run.unfinished == "damaged: non-finite positions at step 2"
+    said = [w for w in run.warnings if "blew up" in w]
+    assert len(said) == 1 and said[0].startswith(str(tmp_path / "pw.out"))

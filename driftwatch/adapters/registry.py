@@ -37,8 +37,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterator
 
-from ..errors import (AtomsChangeError, DriftwatchError, ForeignOutputError, InputError,
-                      NotARunError, UnknownFormatError)
+from ..errors import (AtomsChangeError, DamagedFrameError, DriftwatchError, ForeignOutputError,
+                      InputError, NotARunError, UnknownFormatError)
 from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
 from .run import Frame, ReadContext, Run, checked, collect
 
@@ -719,6 +719,12 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
         raise AtomsChangeError(source, f"{exc.problem}; " + _not_one_run(
             ctx, fmt_name in ("ase-db", "ase-json-db"))
             + (_keys_that_vary(base, ctx.structure) if fmt_name == "extxyz" else "")) from None
+    except DamagedFrameError as exc:    # a blow-up: the steps before it are the run
+        if n == 0:
+            raise
+        ctx.warn(f"{exc.problem}: a run that blew up, or a damaged file; the {n} steps before it "
+                 f"are read, the steps from there are not")
+        ctx.unfinished = f"damaged: {exc.problem}"
     except DriftwatchError:
         raise
     except Exception as exc:

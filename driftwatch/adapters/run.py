@@ -19,7 +19,7 @@ from typing import Iterable, Iterator
 
 import numpy as np
 
-from ..errors import AtomsChangeError, InputError
+from ..errors import AtomsChangeError, DamagedFrameError, InputError
 
 __all__ = ["Frame", "Run", "ReadContext", "frame_from_atoms", "collect", "checked", "file_stamp",
            "folder_listing", "position_precision", "decimals"]
@@ -450,16 +450,23 @@ def checked(frames: Iterable, path) -> Iterator[Frame]:
             if fr.numbers is not first.numbers and not np.array_equal(fr.numbers, first.numbers):
                 raise AtomsChangeError(path, f"atomic numbers change at step {step}")
         if not np.isfinite(cell).all():
-            raise InputError(path, f"non-finite cell at step {step}")
+            raise DamagedFrameError(path, f"non-finite cell at step {step}")
         if not np.isfinite(pos).all():
-            raise InputError(path, f"non-finite positions at step {step}")
+            raise DamagedFrameError(path, f"non-finite positions at step {step}")
         _check_cell(cell, fr.pbc, path, step)
+        if np.abs(pos).max() > POSITION_LIMIT:
+            raise DamagedFrameError(path, f"a position {np.abs(pos).max():.3g} Å from the origin "
+                                          f"at step {step}")
         if fr.forces is not None and np.shape(fr.forces) != pos.shape:
             raise InputError(path, f"forces of shape {np.shape(fr.forces)} at step {step}")
         if fr.stress is not None and np.shape(fr.stress) != (6,):
             raise InputError(path, f"stress of shape {np.shape(fr.stress)} at step {step}")
         yield fr
 
+
+POSITION_LIMIT = 1e7
+"""Å (a millimetre). A cartesian coordinate beyond it is no atom of a simulation cell: a run that
+blew up, or a damaged number (a finite 1e300 had made a group change out of one corrupt value)."""
 
 CELL_LENGTH_RANGE = (0.1, 1e5)
 """Å. A periodic cell vector outside this range is refused as implausible (usually a wrong length
