@@ -720,7 +720,7 @@ class _FolderLock:
         path = out / LOCK
         flags = os.O_RDWR | os.O_CREAT | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NOFOLLOW", 0)
         try:
-            fd = os.open(path, flags, 0o644)
+            fd = os.open(path, flags, 0o666)    # the user's umask applies (shared folders)
         except OSError as exc:
             if path.is_symlink():
                 raise _link_error(path) from None
@@ -1312,15 +1312,11 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
     skipped runs in the CSV with their reason); the rows of the run ids in ``gone`` (the previous
     audit's runs) that have no row now are deleted. Returns the database's problems."""
     from .store import write_rows
-    rows = [r["view"]["csv"] for r in ok]
-    rows += [records.csv_row({"error": f["error"], "source": f["source"]}, f["run"])
-             for f in failed]
-    rows += [records.csv_row({"error": f"skipped: {k['reason']}; to include: {k['include']}",
-                              "source": k["source"]}, k["run"]) | {"verdict": "skipped"}
-             for k in skipped]
+    rows = [r["view"]["csv"] for r in ok] + records.unanalysed_rows(failed, skipped)
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
-    db_rows += [(f["run"], None, {"run_id": f["run"], "verdict": "failed",
-                                  "error": f["error"][:300]}) for f in failed]
+    db_rows += [(row["run"], None, {"run_id": row["run"], "verdict": row["verdict"],
+                                    "error": row["error"][:300]})
+                for row in records.unanalysed_rows(failed, skipped)]
     # the database first: the output most likely to fail (locked, read-only), so that a failure
     # leaves the tables as they were
     problems = write_rows(db_name, sorted(db_rows, key=lambda x: x[0]),

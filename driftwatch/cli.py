@@ -12,6 +12,7 @@ Exit codes (all subcommands):
 from __future__ import annotations
 
 import argparse
+import errno
 import os
 import sys
 
@@ -42,6 +43,21 @@ def _common(p: argparse.ArgumentParser, reject=True) -> None:
                        help="comma-separated flag codes (or lattice, structure, tolerance, code, "
                             "any) that make the command exit with status 3, e.g. "
                             "'lattice-gained,group-lost'")
+
+
+def _number(kind, low: float, strict: bool):
+    """An argparse type: ``kind`` (int or float) above ``low`` (or at least ``low``)."""
+    def parse(text):
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+        if value != value or value < low or (strict and value == low):
+            raise argparse.ArgumentTypeError(f"{text} is not {'above' if strict else 'at least'} "
+                                             f"{low:g}")
+        return value
+    parse.__name__ = kind.__name__
+    return parse
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -84,7 +100,7 @@ def _parser() -> argparse.ArgumentParser:
                         "(repeatable)")
     p.add_argument("--exclude", action="append", default=[], metavar="GLOB",
                    help="skip runs whose path below the root matches (repeatable)")
-    p.add_argument("-j", "--workers", type=int, default=None,
+    p.add_argument("-j", "--workers", type=_number(int, 1, False), default=None,
                    help="local worker processes (default: number of cores)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address (needs dask[distributed])")
     p.add_argument("--db", metavar="URL", help="ase.db file or URL (default: OUTPUT/runs.db)")
@@ -112,9 +128,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("-f", "--format", help="adapter name, overriding detection")
     p.add_argument("--stop-on", metavar="FLAGS", help="request the code's soft stop when one of these flags is raised (a change counts once it held for rules.persistence.steps steps)")
     p.add_argument("--dry-run", action="store_true", help="say what the soft stop would do; write nothing")
-    p.add_argument("--idle", type=float, default=300.0, metavar="SECONDS",
+    p.add_argument("--idle", type=_number(float, 0, False), default=300.0, metavar="SECONDS",
                    help="end after this long without growth (default 300)")
-    p.add_argument("--poll", type=float, default=2.0, metavar="SECONDS", help="poll interval")
+    p.add_argument("--poll", type=_number(float, 0, True), default=2.0, metavar="SECONDS",
+                   help="poll interval")
     p.add_argument("-o", "--output", metavar="FILE", help="write the run record (JSON) here")
     _common(p)
 
@@ -427,6 +444,11 @@ _COMMANDS = {"inspect": _cmd_inspect, "audit": _cmd_audit, "follow": _cmd_follow
              "tolerance": _cmd_tolerance, "report": _cmd_report, "formats": _cmd_formats}
 
 
+_STREAM_ERRNOS = (errno.ENOSPC, errno.EDQUOT, errno.EIO, errno.EFBIG)
+"""What writing the standard output can fail with once its file system is full or gone (every
+file driftwatch writes itself is named in its own error)."""
+
+
 def main(argv=None) -> int:
     """Entry point of the ``driftwatch`` console script; returns the exit code."""
     for stream in (sys.stdout, sys.stderr):   # a non-UTF-8 locale cannot encode every name
@@ -463,6 +485,9 @@ def main(argv=None) -> int:
             msg = str(exc)
         elif isinstance(exc, OSError) and exc.filename:
             msg = f"{exc.filename}: {exc.strerror or exc}"
+        elif isinstance(exc, OSError) and exc.errno in _STREAM_ERRNOS:   # a full log disk
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())   # nothing to flush
+            msg = f"standard output: {exc.strerror or exc}"
         else:
             msg = f"{type(exc).__name__}: {exc} (internal error; rerun with --debug and report it)"
         from .records import shown

@@ -450,6 +450,15 @@ def verdict_fields(record: dict) -> dict:
     }
 
 
+def unanalysed_rows(failed, skipped) -> list[dict]:
+    """CSV rows of an audit's failed runs (``{run, source, error}``) and skipped ones (``{run,
+    source, reason, include}``), as campaign.csv and ``tables.runs_table`` give them."""
+    return ([csv_row({"error": f["error"], "source": f["source"]}, f["run"]) for f in failed]
+            + [csv_row({"error": f"skipped: {k['reason']}; to include: {k['include']}",
+                        "source": k["source"]}, k["run"]) | {"verdict": "skipped"}
+               for k in skipped])
+
+
 def csv_row(record: dict, run_id: str = "") -> dict:
     """One CSV row (dict keyed by CSV_COLUMNS) of a record, or of a failed run ``{"error": ...}``."""
     if "error" in record and "summary" not in record:

@@ -185,8 +185,10 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) 
              {k: shown(v) if isinstance(v, str) else v for k, v in kvp.items()}
              | {"run_id": shown(run_id)}) for run_id, structure, kvp in rows]
     check_lock(name)
-    if not name.startswith(_URL_PREFIXES):
+    local = not name.startswith(_URL_PREFIXES)
+    if local:
         Path(name).parent.mkdir(parents=True, exist_ok=True)
+    new = local and not os.path.lexists(name)
     db = _connect(name)
     problems = []
     try:
@@ -232,4 +234,7 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) 
     except Exception as exc:  # sqlite3.OperationalError ('database is locked'), disk full, ...
         raise OutputError(f"{name}: cannot write the results database ({type(exc).__name__}: "
                           f"{exc})") from exc
+    if new and os.path.isfile(name):        # SQLite makes it 0644: give it the user's usual mode
+        from .records import _UMASK          # (a group-shared folder: colleagues re-audit)
+        os.chmod(name, 0o666 & ~_UMASK)
     return problems

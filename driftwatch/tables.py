@@ -108,14 +108,27 @@ def _iter_records(items):
 
 def _audit_ids(folder: Path) -> dict:
     """Record file -> run id, from an audit's ``campaign.json`` (the ids campaign.csv uses)."""
-    import json
     for summary in (folder / "campaign.json", folder.parent / "campaign.json"):
-        try:
-            listed = json.loads(summary.read_text(encoding="utf-8")).get("records") or {}
-        except (OSError, ValueError, AttributeError):
-            continue
-        return {(summary.parent / rel).resolve(): rid for rid, rel in listed.items()}
+        listed = _json_dict(summary).get("records")
+        if isinstance(listed, dict):
+            return {(summary.parent / rel).resolve(): rid for rid, rel in listed.items()}
     return {}
+
+
+def _audit_summary(item) -> dict:
+    """An audit output folder's ``campaign.json`` (``{}`` for anything else)."""
+    if isinstance(item, dict) or not Path(item).is_dir():
+        return {}
+    return _json_dict(Path(item) / "campaign.json")
+
+
+def _json_dict(path: Path) -> dict:
+    import json
+    try:
+        got = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    return got if isinstance(got, dict) else {}
 
 
 def _pandas():
@@ -166,7 +179,8 @@ def frames_table(records):
 
 def runs_table(records):
     """One row per run with the columns of ``campaign.csv`` (``records.CSV_COLUMNS``), numbers as
-    numbers (Å for the ``_A`` columns), ``flags`` and ``warnings`` as in the CSV."""
+    numbers (Å for the ``_A`` columns), ``flags`` and ``warnings`` as in the CSV; an audit's
+    output folder also gives its failed and skipped runs, as campaign.csv does."""
     rows = []
     for name, rec in _iter_records(records):
         row = _records.csv_row(rec, name)
@@ -174,6 +188,10 @@ def runs_table(records):
             col = key + "_A" if key + "_A" in row else key
             row[col] = val
         rows.append(row)
+    for item in [records] if isinstance(records, (dict, str, os.PathLike)) else records:
+        summary = _audit_summary(item)
+        rows += _records.unanalysed_rows(summary.get("failed") or (), summary.get("skipped") or ())
+    rows.sort(key=lambda row: row["run"])
     df = _pandas().DataFrame(rows, columns=list(_records.CSV_COLUMNS))
     for col in ("dimension", "n_frames", "n_atoms", "lattice_from_step", "group_from_step"):
         df[col] = _pandas().to_numeric(df[col], errors="coerce").astype("Int64")

@@ -722,3 +722,33 @@ def test_a_failed_database_write_leaves_the_tables_of_the_last_audit(tmp_path):
                                           r"outputs in .* are not all updated; re-run"):
         audit([root], out, report=False, progress="off", workers=1)
     assert {n: (out / n).read_bytes() for n in before} == before
+
+
+def test_failed_and_skipped_runs_are_rows_of_every_table(tmp_path):
+    """One run read, one that failed (a real pw.x job stopped by an EXIT file before its first
+    step) and one skipped (ASE's genuine GPAW output of an H2 molecule: no cell): campaign.csv,
+    runs.db and ``tables.runs_table`` of the audit folder each have the three rows (runs.db had
+    no row for the skipped run, and runs_table none for the failed one)."""
+    import csv
+
+    from ase.db import connect
+
+    from driftwatch import tables
+    data = Path(__file__).parent / "data"
+    camp = tmp_path / "camp"
+    shutil.copytree(data / "qe" / "bulk_tetragonal_to_cubic", camp / "ok")
+    shutil.copytree(data / "qe_trials" / "si2_exit_at_start", camp / "failed")
+    (camp / "molecule").mkdir()
+    shutil.copy(data / "public" / "ase_generic" / "gpaw_h2.txt", camp / "molecule")
+    out = tmp_path / "out"
+    s = run_audit([camp], out)
+    assert [f["run"] for f in s["failed"]] == ["camp/failed"]
+    assert [k["run"] for k in s["skipped"]] == ["camp/molecule/gpaw_h2.txt"]
+    with open(out / "campaign.csv", newline="") as fh:
+        csv_rows = {r["run"]: r["verdict"] for r in csv.DictReader(fh)}
+    with connect(out / "runs.db") as db:
+        db_rows = {r.run_id: r.verdict for r in db.select()}
+    table = tables.runs_table(out)
+    assert csv_rows == db_rows == dict(zip(table["run"], table["verdict"])) == {
+        "camp/failed": "failed", "camp/molecule/gpaw_h2.txt": "skipped",
+        "camp/ok": csv_rows["camp/ok"]}

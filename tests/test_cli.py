@@ -192,3 +192,27 @@ def test_a_reader_that_leaves_mid_way_through_a_large_json_record_gives_141():
     proc.stdout.close()
     err = proc.stderr.read().decode()
     assert head.startswith(b"{") and proc.wait(timeout=300) == 141 and err == ""
+
+
+def test_bad_numbers_for_options_are_usage_errors_naming_the_option():
+    """A negative poll interval had ended in an "internal error" (time.sleep), a negative --idle
+    ran, and -j 0 was taken: each is now a usage error (exit 2) naming the option."""
+    for args, said in ((["follow", QE / "layer_oblique_to_hex", "--poll", "-1"], "--poll"),
+                       (["follow", QE / "layer_oblique_to_hex", "--poll", "0"], "--poll"),
+                       (["follow", QE / "layer_oblique_to_hex", "--idle", "-5"], "--idle"),
+                       (["audit", QE / "layer_oblique_to_hex", "-j", "0"], "-j/--workers"),
+                       (["audit", QE / "layer_oblique_to_hex", "-j", "x"], "-j/--workers")):
+        r = dw(*args)
+        assert r.returncode == 2 and f"argument {said}:" in r.stderr, (args, r.stderr)
+        assert "internal error" not in r.stderr
+
+
+def test_a_full_standard_output_is_said_as_such():
+    """Standard output on a full file system (/dev/full, a batch job's log disk): one line saying
+    it was the standard output, exit 1 (it had been an "internal error")."""
+    with open("/dev/full", "w") as full:
+        r = subprocess.run([sys.executable, "-m", "driftwatch", "inspect",
+                            str(QE / "layer_oblique_to_hex")], stdout=full, stderr=subprocess.PIPE,
+                           text=True, timeout=300)
+    assert r.returncode == 1
+    assert r.stderr == "driftwatch: error: standard output: No space left on device\n"

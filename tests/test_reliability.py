@@ -971,3 +971,21 @@ def test_a_nan_mid_run_ends_the_run_there(tmp_path):
     assert len(run) == 2 and run.unfinished == "damaged: non-finite positions at step 2"
     said = [w for w in run.warnings if "blew up" in w]
     assert len(said) == 1 and said[0].startswith(str(tmp_path / "pw.out"))
+
+
+def test_an_audit_folder_takes_the_users_umask_for_every_file(tmp_path):
+    """In a group-shared project folder (umask 002) every file an audit makes is group-writable,
+    so a colleague of the group can re-audit: the lock file and runs.db had been 0644 (the lock
+    made so, SQLite's default for the database) while the other outputs took the umask."""
+    import stat
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    shutil.copy(RUNS / "L06_emt_bfgs.traj", camp)
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                        str(tmp_path / "out"), "--no-report"], capture_output=True, text=True,
+                       timeout=600, preexec_fn=lambda: os.umask(0o002), check=False)
+    assert r.returncode == 0, r.stderr
+    out = tmp_path / "out"
+    for p in [out / ".driftwatch-audit.lock", out / "runs.db", out / "campaign.csv",
+              *out.glob("records/*.json")]:
+        assert stat.S_IMODE(p.stat().st_mode) == 0o664, (p, oct(p.stat().st_mode))
