@@ -272,10 +272,12 @@ def _primitive_entry(run: Run, geo, cfg: dict, i: int) -> dict | None:
 
 
 def _versions() -> dict:
-    """What the record says produced it: driftwatch, spglib and its error mode. Not spglib's
-    failure counter (``symmetry.versions()["failures_seen"]``): it counts the whole process, so a
-    record holding it would depend on what ran earlier in the same process."""
-    v = {k: x for k, x in symmetry.versions().items() if k != "failures_seen"}
+    """What the record says produced it: driftwatch and spglib. Not spglib's failure counter nor
+    its error mode (``symmetry.versions()``): both are the whole process's (ASE's FixSymmetry
+    switches the mode for good), so a record holding them would depend on what ran earlier in the
+    same process, while the answers do not (``symmetry`` reads both modes alike)."""
+    v = {k: x for k, x in symmetry.versions().items()
+         if k not in ("failures_seen", "error_mode_now")}
     return {"driftwatch": __version__, **v}
 
 

@@ -236,3 +236,27 @@ def test_spglib_is_asked_only_what_the_answer_reads(path):
     assert (st["initial"]["group"], st["initial"]["operations"]) == series[0]
     assert (st["final"]["group"], st["final"]["operations"]) == series[-1]
     assert rec["timing"]["group_frames"] < n      # not every frame was asked
+
+
+def test_a_record_does_not_depend_on_what_ran_before_it_in_the_process():
+    """Reading a trajectory with ASE's FixSymmetry constraint (tests/data/ml_trials) switches
+    spglib's error mode for the whole process (ASE sets SPGLIB_OLD_ERROR_HANDLING=false); a record
+    made after it is the same as one made before (its versions named the mode, so two audits of
+    one campaign differed in 5-16 records, by worker order)."""
+    import os
+    import subprocess
+    import sys
+    code = ("import json, driftwatch, sys\n"
+            "from driftwatch import records\n"
+            "path = sys.argv[1]\n"
+            "a = records.dumps(driftwatch.analyze(path)['versions'])\n"
+            "driftwatch.analyze(sys.argv[2])\n"
+            "b = records.dumps(driftwatch.analyze(path)['versions'])\n"
+            "print(a == b, a)\n")
+    data = Path(__file__).parent / "data"
+    env = {k: v for k, v in os.environ.items() if k != "SPGLIB_OLD_ERROR_HANDLING"}
+    r = subprocess.run([sys.executable, "-c", code, str(data / "qe" / "bulk_tetragonal_to_cubic"),
+                        str(data / "ml_trials" / "al_chgnet_fixsym.traj")], env=env,
+                       capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.startswith("True ") and "error_mode" not in r.stdout, r.stdout
