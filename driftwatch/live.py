@@ -24,6 +24,7 @@ user's call.
 from __future__ import annotations
 
 import dataclasses
+import os
 import sys
 import time
 import warnings
@@ -625,6 +626,9 @@ def _read(path, format):
     except NotARunError:
         raise
     except InputError as exc:
+        p = Path(path)
+        if p.exists() and not os.access(p, os.R_OK | (os.X_OK if p.is_dir() else 0)):
+            raise                                   # no permission: waiting will not give it
         return [], ctx, exc
 
 

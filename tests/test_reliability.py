@@ -989,3 +989,29 @@ def test_an_audit_folder_takes_the_users_umask_for_every_file(tmp_path):
     for p in [out / ".driftwatch-audit.lock", out / "runs.db", out / "campaign.csv",
               *out.glob("records/*.json")]:
         assert stat.S_IMODE(p.stat().st_mode) == 0o664, (p, oct(p.stat().st_mode))
+
+
+@pytest.mark.skipif(IS_ROOT and SETPRIV is None, reason="root without setpriv: permissions "
+                                                         "cannot be enforced")
+def test_follow_stops_at_once_where_waiting_cannot_help(tmp_path):
+    """`follow` waits for a job to write, up to --idle; a file it may not read, a folder of run
+    folders (a campaign) and a folder of several runs will not become a run by waiting: each
+    fails at once in one line (it had waited the whole --idle, 300 s by default)."""
+    locked = tmp_path / "locked.traj"
+    shutil.copy(RUNS / "L06_emt_bfgs.traj", locked)
+    locked.chmod(0)
+    camp = tmp_path / "camp"
+    for name in ("L06_emt_bfgs.traj", "L07_emt_fire.traj"):
+        (camp / name.split("_")[0]).mkdir(parents=True)
+        shutil.copy(RUNS / name, camp / name.split("_")[0])
+    several = tmp_path / "several"
+    several.mkdir()
+    for name in ("L06_emt_bfgs.traj", "L07_emt_fire.traj"):
+        shutil.copy(RUNS / name, several)
+    for path, said in ((locked, "Permission denied"), (camp, "run folders in it: L06/, L07/"),
+                       (several, "ambiguous run folder: it holds 2 runs")):
+        t0 = time.monotonic()
+        r = _unprivileged([sys.executable, "-m", "driftwatch", "follow", str(path),
+                           "--idle", "60"])
+        assert time.monotonic() - t0 < 30 and r.returncode == 1, (path, r.stderr)
+        assert said in r.stderr and r.stderr.startswith(f"driftwatch: error: {path}"), r.stderr

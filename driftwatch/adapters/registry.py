@@ -648,8 +648,8 @@ def _others(folder: Path, names, pick: FolderPick, code: Code) -> list[str]:
 def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
     kind, got = scan_folder(path, format=format, ctx=ctx)
     if kind == "ambiguous":
-        raise InputError(path, f"ambiguous run folder: outputs of several codes ({', '.join(got)}); "
-                               f"pass the file itself")
+        raise NotARunError(path, f"ambiguous run folder: outputs of several codes "
+                                 f"({', '.join(got)}); pass the file itself")
     if kind == "run":
         return _Pick(list(got.stages), path, tuple(got.warnings))
     if kind == "inputs":
@@ -661,14 +661,15 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
     if not got:
         hint = f" readable as {format!r}" if format else ""
         below = _runs_in_subfolders(path)
-        raise InputError(path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, "
-                               f"CONTCAR/POSCAR), pw.x output or other trajectory{hint} found"
-                         + (f"; run folders in it: {', '.join(below)} (pass one; `driftwatch "
-                            f"audit {path}` reads them all)" if below else ""))
+        raise (NotARunError if below else InputError)(   # a campaign's folder: no run to wait for
+            path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, CONTCAR/POSCAR), pw.x "
+                  f"output or other trajectory{hint} found"
+            + (f"; run folders in it: {', '.join(below)} (pass one; `driftwatch audit {path}` "
+               f"reads them all)" if below else ""))
     if len(got) > 1:
         shown = ", ".join(got[:8]) + (f", ... ({len(got)} in all)" if len(got) > 8 else "")
-        raise InputError(path, f"ambiguous run folder: it holds {len(got)} runs ({shown}); "
-                               f"pass the file itself")
+        raise NotARunError(path, f"ambiguous run folder: it holds {len(got)} runs ({shown}); "
+                                 f"pass the file itself")
     source = path / got[0]
     if ctx is not None:
         ctx.uses(source)
@@ -685,7 +686,8 @@ def _runs_in_subfolders(path: Path, limit: int = 8) -> list[str]:
     out = []
     for name in subs:
         try:
-            if scan_folder(path / name)[0] == "run":
+            kind, got = scan_folder(path / name)
+            if kind == "run" or (kind == "files" and got):
                 out.append(f"{name}/")
         except OSError:
             continue
