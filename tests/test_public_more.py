@@ -251,3 +251,31 @@ def test_atoms_the_codes_constraints_hold_are_said_and_leave_fmax(tmp_path):
     assert run.code_settings["constrained_atoms"] == 18
     assert any("18 of 38 atoms are held (in part or whole) by ASE's FixAtoms" in w
                for w in run.warnings)
+
+
+def test_outputs_of_codes_without_a_reader_are_listed_as_skipped(tmp_path):
+    """quacc's ph.x output named ``run1.txt.gz`` (tests/data/public/broken), its Gaussian 16 log
+    and its Psi4 output (their banners: "Program PHONON v.6.0", "Entering Gaussian System",
+    "Psi4: An Open-Source Ab Initio Electronic Structure Package"), beside a pw.x run: the audit
+    lists each as skipped, naming the code (they had been dropped unsaid)."""
+    import json
+    import shutil
+    import subprocess
+    import sys
+    data = Path(__file__).parent / "data"
+    camp = tmp_path / "camp"
+    (camp / "phonons").mkdir(parents=True)
+    shutil.copy(data / "public" / "broken" / "quacc_ph" / "run1.txt.gz", camp / "phonons")
+    shutil.copytree(MORE / "quacc_molecular", camp / "molecular")
+    shutil.copytree(data / "qe" / "bulk_tetragonal_to_cubic", camp / "relax")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report", "--json"], capture_output=True,
+                          text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    skipped = {k["run"]: k["reason"] for k in json.loads(proc.stdout)["skipped"]}
+    assert skipped == {
+        "camp/molecular/Gaussian.log.gz": "an output of Gaussian, which driftwatch has no reader "
+                                          "for",
+        "camp/molecular/psi_test.out.gz": "an output of Psi4, which driftwatch has no reader for",
+        "camp/phonons/run1.txt.gz": "an output of Quantum ESPRESSO's ph.x, which driftwatch has "
+                                    "no reader for"}

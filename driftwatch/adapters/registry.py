@@ -308,19 +308,27 @@ def _detect_file(path: Path) -> str:
         raise ForeignOutputError(path, f"an output of {code[0]}, which driftwatch has no reader "
                                        f"for", code[1])
     seen = next((what for pattern, what in _NOT_TRAJECTORIES if pattern.search(head)), None)
-    raise UnknownFormatError(path, (f"{seen}, not a file of ionic steps; " if seen else "")
-                             + f"unknown format (known formats: {_known()}; choose one with "
-                               f"--format NAME, or format= in Python)")
+    if seen:                    # known for what it is: no format would read it
+        raise UnknownFormatError(path, f"{seen}, not a file of ionic steps")
+    raise UnknownFormatError(path, f"unknown format (known formats: {_known()}; choose one with "
+                                   f"--format NAME, or format= in Python)")
 
 
 # Outputs of codes with no reader here, by their banners (as the codes print them in genuine
-# outputs: CP2K 2.5's in ShakeNBreak's test data, neb.x 6.0's in Quantum ESPRESSO's examples):
-# an audit lists them as skipped, never drops them unsaid
+# outputs: CP2K 2.5's in ShakeNBreak's test data, neb.x 6.0's in Quantum ESPRESSO's examples, ph.x
+# 6.0-6.4's, Gaussian 16's and Psi4 1.2's in quacc's): an audit lists them as skipped, never drops
+# them unsaid
 _TO_XYZ = "write its ionic steps to extended XYZ (e.g. with ASE, where it reads them) and audit that"
+_MOLECULAR = "nothing for a molecule (driftwatch audits periodic cells); a periodic run: " + _TO_XYZ
 _FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
             (re.compile(rb"^[ \t]*Program NEB v\.", re.M), "Quantum ESPRESSO's neb.x",
-             "nothing: its images are points of a path, not a relaxation's steps"))
-_FOREIGN_NAMES = (".out", ".log")       # where discovery looks for them (outputs' usual names)
+             "nothing: its images are points of a path, not a relaxation's steps"),
+            (re.compile(rb"^[ \t]*Program PHONON v\.", re.M), "Quantum ESPRESSO's ph.x",
+             "nothing: phonons of one structure, no ionic steps (audit the pw.x run it follows)"),
+            (re.compile(rb"^ Entering Gaussian System", re.M), "Gaussian", _MOLECULAR),
+            (re.compile(rb"Psi4: An Open-Source Ab Initio Electronic Structure Package"), "Psi4",
+             _MOLECULAR))
+_FOREIGN_NAMES = (".out", ".log", ".txt")   # where discovery looks for them (outputs' usual names)
 
 
 def foreign_code(head: bytes) -> tuple[str, str] | None:
@@ -346,7 +354,6 @@ _NOT_TRAJECTORIES = (
     # [ \t]*, not \s*: a pattern that can cross lines, retried from each line start, is quadratic
     (re.compile(rb"^[ \t]*&control\b", re.I | re.M), "a pw.x input (pass its output, or the run "
                                                      "folder)"),
-    (re.compile(rb"Program PHONON\b"), "a Quantum ESPRESSO ph.x output (phonons)"),
     (re.compile(rb"^[ \t]*(ISIF|IBRION|NSW|ENCUT|PREC|EDIFF)[ \t]*=", re.I | re.M),
      "a VASP INCAR (pass the run folder)"),
     (re.compile(rb"^[ \t]*[-+.0-9eE]+[ \t]+[-+.0-9eE]+[ \t]+xlo[ \t]+xhi\b", re.M),
