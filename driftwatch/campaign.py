@@ -1344,8 +1344,14 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
                            if r["view"]["csv"]["not_relaxation"]],
         "unfinished": [{"run": r["run"], "why": r["view"]["csv"]["unfinished"]}
                        for r in sorted(ok, key=lambda r: r["run"]) if r["view"]["csv"]["unfinished"]],
+        # --reject-on gates relaxations: the steps of MD, single points or band images are no
+        # relaxation, and a flag there is said (not_gated), not a reason to reject
         "rejected": [{"run": r["run"], "code": f["code"], "step": f["step"]}
-                     for r in ok for f in select(r["view"]["flags"], list(reject_on))],
+                     for r in ok if not r["view"]["csv"]["not_relaxation"]
+                     for f in select(r["view"]["flags"], list(reject_on))],
+        "not_gated": [{"run": r["run"], "code": f["code"], "step": f["step"]}
+                      for r in ok if r["view"]["csv"]["not_relaxation"]
+                      for f in select(r["view"]["flags"], list(reject_on))],
         "flag_counts": dict(sorted(Counter(c for r in ok for c in
                                            {f["code"] for f in r["view"]["flags"]}).items())),
         "verdict_counts": dict(sorted(Counter([r["view"]["verdict"]["verdict"] for r in ok]

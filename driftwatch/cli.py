@@ -294,7 +294,7 @@ def _inspect_table(rec: dict) -> str:
 
 
 def _cmd_inspect(args) -> int:
-    from . import config as _config, records, rules
+    from . import config as _config, records
     from .track import analyze
     overrides = {"selection.all_frames": True} if args.all_frames else None
     cfg = _config.load(args.config, overrides)
@@ -308,21 +308,36 @@ def _cmd_inspect(args) -> int:
         _print_json(rec)
     else:
         print(_shown(_inspect_table(rec)))
-    return _gated([(rec["run"]["source"], f) for f in rules.select(rec["flags"], codes)])
+    return _gate_record(rec, codes)
 
 
-def _gated(hits) -> int:
+def _gated(hits, not_gated=()) -> int:
     """EXIT_GATED, said on stderr with the runs and flags that caused it, when ``hits`` (pairs of
-    run and flag dict) is not empty; else EXIT_OK."""
+    run and flag dict) is not empty; else EXIT_OK. ``not_gated``: such pairs of runs that are no
+    relaxation (MD, single points, band images), said and not counted."""
+    def said(pairs):
+        runs = list(dict.fromkeys(run for run, _ in pairs))
+        shown = "; ".join(f"{run}: " + ", ".join(f"{f['code']} (step {f['step']})"
+                                                 for r, f in pairs if r == run)
+                          for run in runs[:5])
+        return (f"{len(runs)} run{'s' if len(runs) != 1 else ''}: {shown}"
+                + (f"; ... ({len(runs) - 5} more)" if len(runs) > 5 else ""))
+    if not_gated:
+        print(f"driftwatch: not gated by --reject-on: flags it names on no relaxation (molecular "
+              f"dynamics, a single point, a band image: marked ~) on {said(not_gated)}",
+              file=sys.stderr)
     if not hits:
         return EXIT_OK
-    runs = list(dict.fromkeys(run for run, _ in hits))
-    shown = "; ".join(f"{run}: " + ", ".join(f"{f['code']} (step {f['step']})"
-                                             for r, f in hits if r == run) for run in runs[:5])
     print(f"driftwatch: exit {EXIT_GATED}: a flag named by --reject-on was raised on "
-          f"{len(runs)} run{'s' if len(runs) != 1 else ''}: {shown}"
-          + (f"; ... ({len(runs) - 5} more)" if len(runs) > 5 else ""), file=sys.stderr)
+          f"{said(hits)}", file=sys.stderr)
     return EXIT_GATED
+
+
+def _gate_record(rec: dict, codes) -> int:
+    """:func:`_gated` for one run's record."""
+    from .rules import select
+    pairs = [(rec["run"]["source"], f) for f in select(rec["flags"], codes)]
+    return _gated(*((pairs, ()) if not rec["run"].get("not_relaxation") else ((), pairs)))
 
 
 def _cmd_tolerance(args) -> int:
@@ -395,8 +410,10 @@ def _cmd_audit(args) -> int:
                    progress=args.progress, reject_on=codes, quiet=bool(args.json))
     if args.json:
         _print_json(result)
-    if result.get("rejected"):
-        return _gated([(r["run"], r) for r in result["rejected"]])
+    code = _gated([(r["run"], r) for r in result.get("rejected") or ()],
+                  [(r["run"], r) for r in result.get("not_gated") or ()])
+    if code:
+        return code
     return EXIT_PARTIAL if result.get("failed") else EXIT_OK
 
 
@@ -410,8 +427,7 @@ def _cmd_follow(args) -> int:
                  idle=args.idle, poll=args.poll, output=args.output, quiet=args.json)
     if args.json:
         _print_json(rec)
-    from .rules import select
-    return _gated([(rec["run"]["source"], f) for f in select(rec["flags"], codes)])
+    return _gate_record(rec, codes)
 
 
 def _cmd_report(args) -> int:

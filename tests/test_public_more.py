@@ -279,3 +279,39 @@ def test_outputs_of_codes_without_a_reader_are_listed_as_skipped(tmp_path):
         "camp/molecular/psi_test.out.gz": "an output of Psi4, which driftwatch has no reader for",
         "camp/phonons/run1.txt.gz": "an output of Quantum ESPRESSO's ph.x, which driftwatch has "
                                     "no reader for"}
+
+
+def test_reject_on_gates_relaxations_and_says_flags_on_md(tmp_path):
+    """atomate2's MD job (IBRION = 0; spglib at 1e-3 Å: Fd-3m at step 0, P-1 from step 1) beside
+    the bundled B03 relaxation that lost its group: ``--reject-on group-lost`` exits 3 for B03
+    alone; the MD run's group-lost is said on stderr as not gated (it had counted, so every MD
+    job from a symmetric start stopped a pipeline)."""
+    import shutil
+    import subprocess
+    import sys
+    import spglib
+    md = MORE / "atomate2_md"
+    xml = tmp_path / "vasprun.xml"
+    xml.write_bytes(gzip.decompress(next(md.rglob("vasprun.xml.gz")).read_bytes()))
+    frames = ase.io.read(xml, ":", format="vasp-xml")                                  # ASE
+    assert [spglib.get_symmetry_dataset((a.cell[:], a.get_scaled_positions(), a.numbers),
+                                        symprec=1e-3).number for a in frames][:2] == [227, 2]
+    camp = tmp_path / "camp"
+    shutil.copytree(md, camp / "md")
+    shutil.copytree(Path(__file__).parents[1] / "example_runs" / "B03_qe_vcrelax_nosym",
+                    camp / "B03")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report", "--reject-on", "group-lost",
+                           "--progress", "off"], capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 3, proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert lines == [
+        "driftwatch: not gated by --reject-on: flags it names on no relaxation (molecular "
+        "dynamics, a single point, a band image: marked ~) on 1 run: "
+        "camp/md/Si_multi_md/molecular_dynamics_1/outputs: group-lost (step 1)",
+        "driftwatch: exit 3: a flag named by --reject-on was raised on 1 run: camp/B03: "
+        "group-lost (step 1)"]
+    alone = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(camp / "md" /
+                            "Si_multi_md" / "molecular_dynamics_1" / "outputs"), "--reject-on",
+                            "group-lost"], capture_output=True, text=True, timeout=600)
+    assert alone.returncode == 0 and "not gated by --reject-on" in alone.stderr
