@@ -998,3 +998,48 @@ def test_a_pwx_bfgs_that_gave_up_is_unfinished_unless_its_thresholds_were_met():
     b02 = Path(__file__).parent.parent / "example_runs" / "B02_qe_vcrelax_sym"
     assert "history already reset at previous step" in (b02 / "pw.out").read_text()
     assert read_run(b02).unfinished is None
+
+
+def test_a_force_printed_as_stars_is_not_a_number_and_a_position_so_is_named(tmp_path):
+    """VASP prints a number too wide for its format as a field of '*' (Fortran; pymatgen's
+    vasprun.sc_overflow test file has one in a force). A force so printed is read as not a
+    number, with a warning, and every step is read, as pymatgen's Vasprun reads it (the same
+    generated file); a position so printed names its step and array."""
+    traj = vasp_gen.drifting_layer(nsteps=4)
+    text = vasp_gen.write_vasprun(tmp_path / "vasprun.xml", traj).read_text()
+    def star(text, array):              # the first number of the first step's array
+        i = text.index(f'<varray name="{array}"', text.index("<calculation>"))
+        j = text.index("<v>", i) + len("<v>")
+        field = text[j:text.index("</v>", j)].split()[0]
+        return text[:j] + text[j:].replace(field, "*" * len(field), 1)
+    starred = star(text, "forces")
+    (tmp_path / "stars").mkdir()
+    (tmp_path / "stars" / "vasprun.xml").write_text(starred)
+    run = read_run(tmp_path / "stars" / "vasprun.xml")
+    from pymatgen.io.vasp.outputs import Vasprun
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = Vasprun(str(tmp_path / "stars" / "vasprun.xml"), parse_dos=False,
+                      parse_eigen=False, parse_potcar_file=False)
+    assert len(run) == len(ref.ionic_steps) == 4
+    assert np.isnan(run.forces[0][0][0]) and np.isnan(ref.ionic_steps[0]["forces"][0][0])
+    assert np.isfinite(run.forces[1:]).all()
+    assert any("step 0: a force printed as a field of '*'" in w for w in run.warnings)
+    (tmp_path / "pos").mkdir()
+    (tmp_path / "pos" / "vasprun.xml").write_text(star(text, "positions"))
+    with pytest.raises(InputError, match=r"step 0's positions hold a field of '\*'"):
+        read_run(tmp_path / "pos" / "vasprun.xml")
+
+
+def test_md_that_ended_cleanly_before_nsw_says_so(tmp_path):
+    """A molecular-dynamics vasprun.xml (IBRION = 0) complete after 4 of its NSW = 300 steps (as
+    pymatgen's vasprun.bad_random_seed test file is after 264 of 300; pymatgen's
+    ``converged_ionic`` is False for it): a warning says it stopped early. It is no relaxation,
+    so nothing is marked unfinished."""
+    traj = vasp_gen.drifting_layer(nsteps=4)
+    text = vasp_gen.write_vasprun(tmp_path / "vasprun.xml", traj, ibrion=0).read_text()
+    (tmp_path / "vasprun.xml").write_text(text.replace('name="NSW">     4<', 'name="NSW">   300<'))
+    run = read_run(tmp_path / "vasprun.xml")
+    assert len(run) == 4 and run.unfinished is None and run.code_settings["NSW"] == 300
+    assert any("the molecular dynamics ran 4 of its NSW = 300 steps and ended cleanly" in w
+               for w in run.warnings)

@@ -176,12 +176,24 @@ def _varray(el):
     return np.array([(v.text or "").split() for v in el.findall("v")], float)   # numpy parses
 
 
+def _stars(el, what: str, step: int):
+    """``_varray(el)``, saying which array of which step holds a field of '*' (Fortran's overflow
+    of a number too wide for its format)."""
+    try:
+        return _varray(el)
+    except ValueError:
+        if any("*" in (v.text or "") for v in el.findall("v")):
+            raise ValueError(f"step {step}'s {what} hold a field of '*' (a number too wide for its "
+                             f"format)") from None
+        raise
+
+
 def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
     from ase.units import GPa
     st = calc.find("structure")
-    cell = _varray(st.find("crystal/varray[@name='basis']"))
+    cell = _stars(st.find("crystal/varray[@name='basis']"), "cell vectors", step)
     pos_el = st.find("varray[@name='positions']")
-    frac = _varray(pos_el)
+    frac = _stars(pos_el, "positions", step)
     if ctx is not None and ctx.rounding is None:
         v = pos_el.find("v")
         d = decimals(v.text.split()[0]) if v is not None and v.text and v.text.split() else None
@@ -192,13 +204,21 @@ def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
     if e is not None:
         energy = float(e.text) - pstress * _KBAR_TO_EV_A3 * abs(np.linalg.det(cell))
     forces = calc.find("varray[@name='forces']")
+    if forces is not None:
+        try:
+            forces = _varray(forces)
+        except ValueError:          # a force too wide for its format: not a number, said
+            forces = np.array([[float(x) if "*" not in x else np.nan for x in (v.text or "").split()]
+                               for v in forces.findall("v")])
+            if ctx is not None:
+                ctx.warn(f"step {step}: a force printed as a field of '*' (too wide for its "
+                         f"format) is read as not a number")
     stress = calc.find("varray[@name='stress']")
     if stress is not None:
         s = _varray(stress) * (-0.1 * GPa)         # kBar -> eV/Å3, ASE's sign and factor
         stress = s.reshape(9)[[0, 4, 8, 5, 2, 1]]
     return Frame(cell=cell, positions=frac @ cell, numbers=numbers,
-                 pbc=np.ones(3, bool), step=step, energy=energy,
-                 forces=None if forces is None else _varray(forces), stress=stress)
+                 pbc=np.ones(3, bool), step=step, energy=energy, forces=forces, stress=stress)
 
 
 _CALC_OPEN, _CALC_CLOSE = b"<calculation>", b"</calculation>"
@@ -766,6 +786,9 @@ def _at_end(path: Path, steps: int, ctx, read: "_WatchedLines | None" = None) ->
         ctx.unfinished = (f"stopped on request (VASP: '{_SOFT_STOP}' after {steps}{limit} ionic "
                           f"steps: a STOPCAR with LSTOP = .TRUE. in its folder, written by a user "
                           f"or by driftwatch's soft stop)")
+    elif ibrion == 0 and nsw is not None and 0 < steps < int(nsw):
+        ctx.warn(f"the molecular dynamics ran {steps} of its NSW = {int(nsw)} steps and ended "
+                 f"cleanly: stopped early (a STOPCAR, a wall-time handler?)")
     elif at_limit and s.get("EDIFFG") == 0:
         ctx.warn(f"ran all NSW = {int(nsw)} ionic steps as set: EDIFFG = 0 gives VASP no "
                  f"convergence criterion (the run is meant to take NSW steps), so nothing says "
