@@ -87,18 +87,17 @@ def _strip(name: str) -> str:
     return strip_compression(name)
 
 
-def _entry_kind(e) -> str | None:
-    """'dir', 'file', or None (FIFOs, sockets, devices are skipped: reading them could block). An
-    entry whose type cannot be read (a symbolic link loop) or a dangling link counts as a file, so its
-    reader reports it as a failed run when its name makes it a candidate."""
+def _entry_kind(e) -> str:
+    """'dir' or 'file'. An entry that is neither (a FIFO, a socket, a device), whose type cannot be
+    read (a symbolic link loop) or a dangling link counts as a file, so its reader reports it as a
+    failed run when its name makes it a candidate (reading such a file is refused before it could
+    block: ``adapters._io``)."""
     try:
         if e.is_dir():
             return "dir"
-        if e.is_file():
-            return "file"
     except OSError:
-        return "file"
-    return "file" if e.is_symlink() else None
+        pass
+    return "file"
 
 
 def _root_name(root: Path) -> str:
@@ -792,6 +791,12 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
     if out.is_dir():
         _check_links(out, db_name)
     marker = _read_marker(out) if out.is_dir() else None
+    if out.is_dir() and marker is None and os.path.lexists(out / MARKER):
+        if not overwrite:
+            raise OutputError(f"{out / MARKER}: the marker of the audit in this folder is "
+                              f"damaged; pass --overwrite to audit into it anew (its audit files "
+                              f"are replaced), or choose another --output")
+        marker = {}                         # an audit's folder all the same
     if out.is_dir() and marker is None:     # the user's own folder: nothing of theirs is replaced
         default_db = out / "runs.db"
         mine = _OUTPUT_NAMES + (("runs.db",) if db_name is None or

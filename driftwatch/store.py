@@ -81,7 +81,7 @@ def _foreign_sqlite(name: str) -> str | None:
         return None
     with open(p, "rb") as fh:
         if fh.read(16) != b"SQLite format 3\x00":
-            return None                      # not SQLite at all: ase.db says so itself
+            return _NOT_SQLITE               # damaged, or another kind of file
     try:
         con = sqlite3.connect(f"file:{p}?mode=ro", uri=True)
         try:
@@ -96,9 +96,17 @@ def _foreign_sqlite(name: str) -> str | None:
     return ", ".join(sorted(tables)[:8])
 
 
+_NOT_SQLITE = "(no SQLite file)"
+
+
 def check_foreign(name: str) -> None:
-    """Raise OutputError when ``name`` is another application's SQLite database."""
+    """Raise OutputError when ``name`` is another application's SQLite database, or no SQLite
+    file at all (a damaged database: re-running would meet it again)."""
     foreign = _foreign_sqlite(name)
+    if foreign == _NOT_SQLITE:
+        raise OutputError(f"{name}: not an SQLite database (damaged, or another kind of file); "
+                          f"move it away (an audit then writes a new one), or choose another "
+                          f"file for the results database (--db)")
     if foreign:
         raise OutputError(f"{name}: a SQLite database that is not an ase.db (tables: {foreign}); "
                           f"choose another file for the results database (--db)")

@@ -315,3 +315,26 @@ def test_reject_on_gates_relaxations_and_says_flags_on_md(tmp_path):
                             "Si_multi_md" / "molecular_dynamics_1" / "outputs"), "--reject-on",
                             "group-lost"], capture_output=True, text=True, timeout=600)
     assert alone.returncode == 0 and "not gated by --reject-on" in alone.stderr
+
+
+def test_a_bands_task_document_and_its_interpolated_images_are_no_relaxation():
+    """atomate2's NEB task document (emmet's NebTaskDoc: ``images``, ``neb_method``) is a
+    skipped file saying what it is (it had failed as "not a pymatgen Structure list"); its list of
+    images interpolated between the end points (each structure the one before moved by the same
+    displacement, pymatgen's own Structures) is a band of images, no relaxation (it had read as
+    a relaxation that kept P-43m)."""
+    import json
+
+    from driftwatch.errors import ForeignOutputError
+    d = MORE / "atomate2_neb_json"
+    doc = json.loads(gzip.decompress((d / "neb_task_doc.json.gz").read_bytes()))
+    assert {"images", "neb_method"} <= set(doc)
+    with pytest.raises(ForeignOutputError, match="a nudged-elastic-band task document"):
+        read_run(d / "neb_task_doc.json.gz")
+    images = json.loads(gzip.decompress((d / "get_images_from_endpoints.json.gz").read_bytes()))
+    frac = np.array([[s["abc"] for s in im["sites"]] for im in images])
+    moves = np.diff(frac, axis=0)
+    assert len(images) == 5 and np.abs(moves - moves[0]).max() < 1e-12        # the file's own
+    run = read_run(d / "get_images_from_endpoints.json.gz")
+    assert len(run) == 5 and run.not_relaxation.startswith("a band of images (its structures are "
+                                                           "equally spaced on one straight line")

@@ -1015,3 +1015,51 @@ def test_follow_stops_at_once_where_waiting_cannot_help(tmp_path):
                            "--idle", "60"])
         assert time.monotonic() - t0 < 30 and r.returncode == 1, (path, r.stderr)
         assert said in r.stderr and r.stderr.startswith(f"driftwatch: error: {path}"), r.stderr
+
+
+def test_a_fifo_named_like_an_output_is_a_failed_run_naming_it(tmp_path):
+    """A FIFO named OUTCAR in a run folder (beside a good run): the audit lists it as a failed
+    run, "not a regular file (FIFO)", and `inspect` of its folder says the same, without reading
+    it (reading a FIFO blocks); it had been dropped unsaid, and inspect had said no OUTCAR was
+    there."""
+    camp = tmp_path / "camp"
+    (camp / "fifo_outcar").mkdir(parents=True)
+    os.mkfifo(camp / "fifo_outcar" / "OUTCAR")
+    (camp / "ok").mkdir()
+    shutil.copy(RUNS / "L06_emt_bfgs.traj", camp / "ok")
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                        str(tmp_path / "out"), "--no-report", "--json"], capture_output=True,
+                       text=True, timeout=120)
+    assert r.returncode == 4, r.stderr
+    failed = json.loads(r.stdout)["failed"]
+    assert [f["run"] for f in failed] == ["camp/fifo_outcar/OUTCAR"]
+    assert "not a regular file (FIFO): refused" in failed[0]["error"]
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(camp / "fifo_outcar")],
+                       capture_output=True, text=True, timeout=120)
+    assert r.returncode == 1 and "OUTCAR: not a regular file (FIFO): refused" in r.stderr
+
+
+def test_a_damaged_marker_or_database_gets_advice_that_helps(tmp_path):
+    """An audit folder whose marker was cut (a copy tool, an editor) is said to hold a damaged
+    marker, and --overwrite audits into it (it had been "holds no driftwatch audit", pointing
+    away from the fix); a runs.db that is no SQLite file is refused before any run is read,
+    saying to move it away (re-running had met the same error after every audit)."""
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    shutil.copy(RUNS / "L06_emt_bfgs.traj", camp)
+    out = tmp_path / "out"
+    args = [sys.executable, "-m", "driftwatch", "audit", str(camp), "-o", str(out),
+            "--no-report", "--progress", "off"]
+    assert subprocess.run(args, capture_output=True, timeout=300).returncode == 0
+    marker = out / ".driftwatch-audit.json"
+    marker.write_text(marker.read_text()[:20])
+    r = subprocess.run(args, capture_output=True, text=True, timeout=300)
+    assert r.returncode == 1 and r.stderr.strip() == (
+        f"driftwatch: error: {marker}: the marker of the audit in this folder is damaged; pass "
+        f"--overwrite to audit into it anew (its audit files are replaced), or choose another "
+        f"--output")
+    assert subprocess.run(args + ["--overwrite"], capture_output=True, timeout=300).returncode == 0
+    (out / "runs.db").write_bytes(b"\x00garbage, not a database" * 40)
+    r = subprocess.run(args, capture_output=True, text=True, timeout=300)
+    assert r.returncode == 1 and "runs.db: not an SQLite database (damaged, or another kind of " \
+        "file); move it away" in r.stderr and "audit:" not in r.stderr

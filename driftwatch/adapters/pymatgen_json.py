@@ -14,7 +14,7 @@ import os
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import ForeignOutputError, InputError
 from ._io import open_bytes
 from .run import Frame, ReadContext
 
@@ -29,7 +29,13 @@ def _items(data, path, ctx):
         return data["structures"]
     if isinstance(data, list):
         return data
-    raise InputError(path, "not a pymatgen Structure list: expected a JSON list of Structure dicts")
+    if isinstance(data, dict) and "neb_method" in data and "images" in data:
+        raise ForeignOutputError(path, "a nudged-elastic-band task document (its images are "
+                                       "points of a path)", "nothing: not a relaxation's steps")
+    what = f"object with keys {', '.join(sorted(data)[:6])}{', ...' if len(data) > 6 else ''}" \
+        if isinstance(data, dict) else type(data).__name__
+    raise InputError(path, f"not a pymatgen Structure list nor a task document with "
+                           f"calcs_reversed: a JSON {what}")
 
 
 def _structure_arrays(item, path, i):
@@ -80,6 +86,7 @@ def _load_json(path):
 
 def read_structures(path, ctx: ReadContext):
     data = _load_json(path)
+    shapes = []                      # (cell, positions) of each structure: a band's images?
     for i, item in enumerate(_items(data, path, ctx)):
         extra = {}
         if isinstance(item, dict) and "structure" in item and "@class" not in item:
@@ -94,8 +101,21 @@ def read_structures(path, ctx: ReadContext):
             forces = None if forces is None else np.array(forces, float)
         except (TypeError, ValueError) as exc:
             raise InputError(path, f"item {i}: energy/forces are not numbers ({exc})") from None
+        shapes.append((cell, positions))
         yield Frame(cell=cell, positions=positions, numbers=numbers, pbc=pbc, step=i,
                     energy=energy, forces=forces)
+    if _interpolated(shapes):
+        ctx.settings["band_path"] = ("its structures are equally spaced on one straight line: "
+                                     "images interpolated between two end points")
+
+
+def _interpolated(shapes, tol=1e-8) -> bool:
+    """Three or more structures of one cell, each the one before moved by the same nonzero
+    displacement (Å, to ``tol``): a linear interpolation (a band's images), no steps of a code."""
+    if len(shapes) < 3 or any(np.abs(c - shapes[0][0]).max() > tol for c, _ in shapes):
+        return False
+    moves = np.diff(np.array([pos for _, pos in shapes]), axis=0)
+    return np.abs(moves[0]).max() > 1e3 * tol and np.abs(moves - moves[0]).max() <= tol
 
 
 # ---------------------------------------------------------------- workflow task documents

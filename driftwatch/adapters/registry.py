@@ -618,10 +618,12 @@ def _safe_detect(p):
 
 
 def _is_file(entry) -> bool:
+    """Not a folder: a regular file, or a FIFO, socket, device or broken link, which a reader then
+    refuses naming it (as discovery lists them: ``campaign._entry_kind``)."""
     try:
-        return entry.is_file()
+        return not entry.is_dir()
     except OSError:
-        return False
+        return True
 
 
 def inputs_only_problem(got: tuple, folder) -> str:
