@@ -338,3 +338,14 @@ def test_a_bands_task_document_and_its_interpolated_images_are_no_relaxation():
     run = read_run(d / "get_images_from_endpoints.json.gz")
     assert len(run) == 5 and run.not_relaxation.startswith("a band of images (its structures are "
                                                            "equally spaced on one straight line")
+
+
+def test_a_vasp_band_structure_run_is_called_non_self_consistent():
+    """atomate2's band-structure job (its OUTCAR prints ICHARG = 11, NSW = 0): "a
+    non-self-consistent run", as pw.x's 'bands' runs are called, not a plain single point."""
+    d = MORE / "atomate2_nscf_line"
+    text = gzip.decompress((d / "OUTCAR.gz").read_bytes()).decode()
+    assert re.search(r"ICHARG =\s+11\b", text)
+    run = read_run(d)
+    assert len(run) == 1 and run.code_settings["ICHARG"] == 11
+    assert run.not_relaxation.startswith("a non-self-consistent run (ICHARG = 11, NSW = 0")

@@ -39,8 +39,8 @@ from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
            "pick_from_folder", "SETTING_KEYS"]
 
-SETTING_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW", "IMAGES", "EDIFFG")
-_INT_KEYS = {"ISYM", "ISIF", "IBRION", "NSW", "IMAGES"}
+SETTING_KEYS = ("ISYM", "SYMPREC", "ISIF", "IBRION", "NSW", "IMAGES", "EDIFFG", "ICHARG")
+_INT_KEYS = {"ISYM", "ISIF", "IBRION", "NSW", "IMAGES", "ICHARG"}
 _KBAR_TO_EV_A3 = 1e-22 / 1.60217733e-19   # ASE's conversion (ase/io/vasp.py, EVTOJ)
 _STD_NAMES = ("vasprun", "OUTCAR", "XDATCAR", "CONTCAR", "POSCAR")
 
@@ -500,7 +500,7 @@ def _unconverged_note(steps: list[int], nelm: int) -> str:
 
 
 # ---------------------------------------------------------------- OUTCAR
-_OUT_INT = re.compile(r"^\s*(ISYM|ISIF|IBRION|NSW)\s*=\s*(-?\d+)")
+_OUT_INT = re.compile(r"^\s*(ISYM|ISIF|IBRION|NSW|ICHARG)\s*=\s*(-?\d+)")
 _OUT_SYMPREC = re.compile(r"SYMPREC\s*=\s*([-+0-9.EeDd]+)")
 _OUT_EDIFFG = re.compile(r"^\s*EDIFFG\s*=\s*([-+0-9.EeDd]+)")
 _OUT_SYSTEM = re.compile(r"^\s*SYSTEM\s*=\s*(.*\S)")
@@ -1477,6 +1477,9 @@ def run_kind(code_settings: dict) -> str | None:
     band's image is named by ``registry.run_kind`` from ``neb_image``)."""
     s = code_settings or {}
     what = _single_point(s)
+    if what and s.get("ICHARG") is not None and int(s["ICHARG"]) >= 10:
+        return (f"a non-self-consistent run (ICHARG = {int(s['ICHARG'])}, {what}: bands or "
+                f"densities on a fixed charge density): one structure, no ionic steps")
     if what:
         return f"a single-point calculation ({what}): one structure, no ionic steps"
     return None if s.get("IBRION") is None else _NOT_RELAXING.get(int(s["IBRION"]))
