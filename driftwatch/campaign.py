@@ -1005,7 +1005,8 @@ def counts_text(summary: dict) -> str:
     report's index)."""
     n_fail, n_skip = len(summary["failed"]), len(summary.get("skipped") or ())
     unread = summary["runs"] - summary["analysed"] - summary["cached"]  # failed at discovery
-    return (f"{summary['runs']} runs: {summary['runs'] - n_fail - n_skip} with a verdict, "
+    n = summary["runs"]
+    return (f"{n} run{'s' if n != 1 else ''}: {n - n_fail - n_skip} with a verdict, "
             f"{n_fail} failed" + (f", {n_skip} skipped" if n_skip else "")
             + f" ({summary['analysed']} read now, {summary['cached']} from the cache"
             + (f", {unread} failed before reading" if unread else "") + ")")

@@ -1259,9 +1259,12 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     out.update(recommended_symprec=s, safe_runs=len(ok), unsafe_run_ids=unsafe[:50],
                reason=f"{len(ok)} of {len(per_run)} runs keep the spglib verdict on the final "
                       f"structure that their own advice recommends within a factor "
-                      f"{SAFE_MARGIN:g} either side of {_g(s)} Å; this is the centre of the widest "
-                      f"symprec range ({_g(grid[a])}-{_g(grid[b])} Å, searched {_g(window[0])}-"
-                      f"{_g(window[1])} Å) where the most runs keep their verdict"
+                      f"{SAFE_MARGIN:g} either side of {_g(s)} Å; "
+                      + (f"this is the centre of the widest symprec range ({_g(grid[a])}-"
+                         f"{_g(grid[b])} Å" if a != b else
+                         f"this is the one symprec of the grid ({_g(s)} Å")
+                      + f", searched {_g(window[0])}-{_g(window[1])} Å) where the most runs keep "
+                        f"their verdict"
                       + ("" if a else "; it starts at the bottom of the searched range, where "
                          "spglib sees the smallest deviations from symmetry")
                       + ". A starting point for your own check" + others)

@@ -24,6 +24,10 @@ class Progress:
         self.enabled = enabled
         self.total, self.n, self.failed, self.what, self.unit = total, initial, 0, what, unit
         self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
+        # a terminal that cannot erase a line (TERM=dumb: an editor's shell, a batch console) gets
+        # the line padded with spaces instead of the erase sequence it would print as ^[[K
+        self._erase = "\033[K" if os.environ.get("TERM", "") != "dumb" else ""
+        self._width = 0
         self.interval = 0.25 if self.tty else interval
         self.t0 = self._last = time.monotonic()
         self._start = initial
@@ -69,7 +73,10 @@ class Progress:
         self._last = now
         if self.tty:
             end = ("\n" if last else "") if end is None else end
-            self.stream.write(f"\r{self.what}: {text}\033[K{end}")
+            line = f"{self.what}: {text}"
+            pad = "" if self._erase else " " * max(0, self._width - len(line))
+            self._width = 0 if end else len(line)
+            self.stream.write(f"\r{line}{pad}{self._erase}{end}")
             self.stream.flush()
         else:
             self._line(text)

@@ -77,7 +77,7 @@ def test_a_note_quoting_pw_x_banner_is_no_pw_x_output(tmp_path):
                            str(tmp_path / "out"), "--no-report"], capture_output=True, text=True,
                           timeout=600)
     assert proc.returncode == 0, proc.stdout + proc.stderr
-    assert "1 runs: 1 with a verdict, 0 failed" in proc.stdout
+    assert "1 run: 1 with a verdict, 0 failed" in proc.stdout
 
 
 def test_a_group_that_came_went_and_came_back_is_dated_where_it_stays():

@@ -173,3 +173,29 @@ def test_declared_dependencies_match_what_the_code_imports():
     assert "tqdm" not in third
     for m in sorted(third):
         assert dist.get(m, m) in declared, f"{m} is imported but not declared"
+
+
+def test_progress_on_a_terminal_that_cannot_erase_pads_its_line(monkeypatch):
+    """On a terminal with TERM=dumb (an editor's shell, a batch console), which prints the erase
+    sequence ESC [ K as ^[[K, the rewritten progress line is padded with spaces instead; on other
+    terminals it ends with the erase sequence (common practice of terminal tools)."""
+    import io
+
+    from driftwatch.tasks import Progress
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+    for term, erase in (("dumb", False), ("xterm-256color", True)):
+        monkeypatch.setenv("TERM", term)
+        out = Tty()
+        p = Progress(3, "audit", stream=out, interval=0.0)
+        p.interval = 0.0
+        for _ in range(3):
+            p.update()
+        text = out.getvalue()
+        assert ("\033[K" in text) is erase and text.endswith("\n")
+        lines = text.split("\r")[1:]
+        assert len(lines) == 3 and all(ln.startswith("audit: ") for ln in lines)
+        if not erase:   # each rewrite covers the one before
+            assert all(len(b.rstrip("\n")) >= len(a) for a, b in zip(lines, lines[1:]))
