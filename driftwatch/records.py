@@ -208,7 +208,9 @@ def read_json(path) -> dict:
         try:
             data = upgrade(data)
         except (KeyError, TypeError, ValueError) as exc:
-            raise ValueError(f"{path}: cannot read record of schema {data['schema']!r} ({exc})") from exc
+            why = f"no {exc.args[0]!r} in it" if isinstance(exc, KeyError) and exc.args else exc
+            raise ValueError(f"{path}: cannot read record of schema {data['schema']!r} "
+                             f"({why})") from exc
     return data
 
 

@@ -349,3 +349,16 @@ def test_a_vasp_band_structure_run_is_called_non_self_consistent():
     run = read_run(d)
     assert len(run) == 1 and run.code_settings["ICHARG"] == 11
     assert run.not_relaxation.startswith("a non-self-consistent run (ICHARG = 11, NSW = 0")
+
+
+def test_an_xdatcar_line_of_two_numbers_run_together_is_named():
+    """pymatgen's XDATCAR.bad_fmt: its line 17 reads "-0.63265286-0.11227753 -0.15402785" (the
+    file's own text). The first configuration is read, and the warning names the line and what
+    is wrong with it (it had quoted numpy's "inhomogeneous shape")."""
+    path = MORE / "xdatcar_fused" / "XDATCAR.gz"
+    assert gzip.decompress(path.read_bytes()).decode().splitlines()[16].startswith(
+        "-0.63265286-0.11227753")
+    run = read_run(path)
+    assert len(run) == 1 and run.unfinished.startswith("damaged:")
+    assert any("line 17 holds '-0.63265286-0.11227753 -0.15402785', not three numbers (two "
+               "numbers run together?)" in w for w in run.warnings)

@@ -711,7 +711,9 @@ def _settings_from_input(path, ctx: ReadContext):
     try:
         got = read_pw_in_settings(pin)
     except Exception as exc:  # a broken input must not stop reading the output
-        ctx.warn(f"cannot read the pw.x input {pin.name}: {type(exc).__name__}: {exc}")
+        why = exc.strerror if isinstance(exc, OSError) and exc.strerror else \
+            f"{type(exc).__name__}: {exc}"
+        ctx.warn(f"cannot read the pw.x input {pin.name}: {why}")
         return None
     size = got.pop("nat", None), got.pop("ntyp", None)
     ctx.settings.update(got)

@@ -816,6 +816,14 @@ def _warn_at_end(fd, step, ctx):
                  "block and the free energy (a GW, response-function or force-less static run?)")
 
 
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
 # ---------------------------------------------------------------- XDATCAR
 def read_xdatcar(path, ctx: ReadContext):
     """Stream an XDATCAR (VASP 5 layout, header repeated for variable-cell runs)."""
@@ -879,10 +887,17 @@ def read_xdatcar(path, ctx: ReadContext):
             try:
                 coords = np.array(rows, float)
             except ValueError as exc:
+                bad = next((k for k, r in enumerate(rows) if len(r) != 3 or not all(
+                    _is_number(x) for x in r)), None)
+                why = exc if bad is None else (
+                    f"line {fh.lineno - total + bad + 1} holds {' '.join(rows[bad])!r}, not three "
+                    f"numbers" + (" (two numbers run together?)" if len(rows[bad]) < 3 and
+                                  any(x.count("-") > 1 or x[1:].count("-") for x in rows[bad])
+                                  else ""))
                 if n_done:           # the steps before it stand; the registry marks the damage
-                    raise ValueError(f"bad coordinates in configuration {step + 1}: {exc}") \
+                    raise ValueError(f"bad coordinates in configuration {step + 1}: {why}") \
                         from None
-                raise InputError(path, f"bad coordinates in configuration {step + 1}: {exc}") \
+                raise InputError(path, f"bad coordinates in configuration {step + 1}: {why}") \
                     from None
             direct = line.lstrip().lower().startswith("direct")
             cart = coords @ cell if direct else coords

@@ -310,7 +310,7 @@ def _process(source, name, label, out, key=""):
         if isinstance(exc, FileNotFoundError):
             problem = "no such file"
         elif isinstance(exc, json.JSONDecodeError):
-            problem = f"not JSON ({exc.msg} at line {exc.lineno})"
+            problem = f"not JSON ({exc.msg}, line {exc.lineno})"   # msg may end "at"
         return "bad", problem.replace(f"{source}: ", "")
     try:
         text = run_page(name, label, rec, origin, key)
