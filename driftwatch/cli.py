@@ -15,6 +15,7 @@ import argparse
 import errno
 import os
 import sys
+from pathlib import Path
 
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_GATED, EXIT_PARTIAL = 0, 1, 2, 3, 4
 EXIT_PIPE = 141
@@ -367,7 +368,13 @@ def _cmd_tolerance(args) -> int:
         _print_json(out)
         return EXIT_OK
     kind = "layer group" if geo.dimension == 2 else "space group"
-    print(f"{_shown(run.source)}, frame {i}: {kind} and lattice type across symprec (Å), "
+    stage = next((st for st in run.stages or () if st["first_frame"] <= i <
+                  st["first_frame"] + st["n_frames"]), None)
+    named = stage and Path(stage["source"]).name
+    where = f"frame {i} (step {int(run.steps[i])}" + (
+        "" if not stage else f", in stage {stage['name']}" if named == stage["name"] else
+        f", in stage {stage['name']}: {named}") + ")"
+    print(f"{_shown(run.source)}, {where}: {kind} and lattice type across symprec (Å), "
           f"angle_tolerance {spec['angle_tolerance']:g} deg")
     print(f"{'symprec/Å':>10}  {kind:>22}  {'ops':>4}  lattice")
     floor = adv.get("resolution")

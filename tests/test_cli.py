@@ -216,3 +216,13 @@ def test_a_full_standard_output_is_said_as_such():
                            text=True, timeout=300)
     assert r.returncode == 1
     assert r.stderr == "driftwatch: error: standard output: No space left on device\n"
+
+
+def test_tolerance_names_the_frame_by_step_and_stage():
+    """custodian's genuine double relaxation (tests/data/public/custodian_double_relax): the last
+    frame is the combined run's frame 5, step 5 of relax2's vasprun.xml: the heading says all
+    three (it said "frame 5" only, a number no file of the run shows)."""
+    r = dw("tolerance", Path(__file__).parent / "data" / "public" / "custodian_double_relax")
+    assert r.returncode == 0, r.stderr
+    assert ", frame 5 (step 5, in stage relax2: vasprun.xml.relax2.gz): space group" in \
+        r.stdout.splitlines()[0]
