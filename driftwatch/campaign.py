@@ -1047,9 +1047,9 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
         print(f"({len(rows) - len(shown)} runs that kept their symmetry without flags not shown: "
               f"see campaign.csv)", file=stream)
     if any(r[2].endswith("*") for r in shown):
-        print("* unfinished: cut short, or stopped at its step limit, on request or without "
-              "converging; the verdict compares the first frame with a structure that is not a "
-              "relaxed one", file=stream)
+        print("* unfinished: cut short, damaged, or stopped at its step or time limit, on "
+              "request, on a code error or without converging; the verdict compares the first "
+              "frame with a structure that is not a relaxed one", file=stream)
     if any("~" in r[2] for r in shown):
         print("~ no relaxation (molecular dynamics, a single point or structure, a band image: "
               "column not_relaxation of campaign.csv): the verdict compares the first and last "

@@ -161,7 +161,8 @@ class Tracker:
         self.rounding: tuple | None = None      # the reader's printed precision of positions
         self.not_relaxation: str | None = None  # what the reader says the steps are, if no relaxation
         self.unfinished: str | None = None      # why the run ended early (the reader's word)
-        self.species: tuple | None = None       # the code's labels telling atoms of one element apart
+        self.species: tuple | None = None       # the code's labels telling one element's atoms
+        #                                         apart (pw.x's Fe1, Fe2)
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants

@@ -117,7 +117,8 @@ def test_a_vasp_run_stopped_by_its_stopcar_is_unfinished(tmp_path):
     assert len(run) == 1 == len(ase.io.read(tmp_path / "OUTCAR", ":", format="vasp-out"))  # ASE
     assert run.unfinished == (
         "stopped on request (VASP: 'soft stop encountered' after 1 of NSW = 200 ionic steps: a "
-        "STOPCAR with LSTOP = .TRUE. in its folder, written by a user or by driftwatch's soft stop)")
+        "STOPCAR with LSTOP = .TRUE. in its folder, written by a user or by driftwatch's soft "
+        "stop)")
     assert any(w.endswith("; the final structure is not a relaxed one") for w in run.warnings)
     traj = vasp_gen.drifting_layer(6)
     line = [ln for ln in text.splitlines() if "soft stop encountered" in ln][0]

@@ -1103,8 +1103,7 @@ _DOFREE_HELD = {
     "ibrav": "moved only the lattice parameters of its ibrav: the cell could not leave its "
              "Bravais type",
     "volume": "only rescaled the cell: its shape, and so its Bravais type, were held",
-    "epitaxial_ab": "held the cell vectors a and b", "epitaxial_ac": "held the cell vectors a and c",
-    "epitaxial_bc": "held the cell vectors b and c",
+    **{f"epitaxial_{v}": f"held the cell vectors {v[0]} and {v[1]}" for v in ("ab", "ac", "bc")},
     **{k: f"moved only the cell's {' and '.join(f'{c}{c}' for c in k)} component"
           f"{'s' if len(k) > 1 else ''} (the others held)"
        for k in ("x", "y", "z", "xy", "xz", "yz", "xyz")},

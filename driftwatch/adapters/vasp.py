@@ -208,7 +208,7 @@ def _vasprun_frame(calc, step, numbers, pstress, ctx=None):
         try:
             forces = _varray(forces)
         except ValueError:          # a force too wide for its format: not a number, said
-            forces = np.array([[float(x) if "*" not in x else np.nan for x in (v.text or "").split()]
+            forces = np.array([[np.nan if "*" in x else float(x) for x in (v.text or "").split()]
                                for v in forces.findall("v")])
             if ctx is not None:
                 ctx.warn(f"step {step}: a force printed as a field of '*' (too wide for its "
@@ -756,7 +756,8 @@ def _outcar_with_ase(path, ctx, skip):
 
 
 def _outcar_marks(path: Path) -> "_WatchedLines | None":
-    """The OUTCAR read through for its soft stop and converged-relaxation lines (None: unreadable)."""
+    """The OUTCAR read through for its soft stop and converged-relaxation lines (None when it
+    cannot be read)."""
     try:
         with _WatchedLines(path) as fh:
             while fh.skip_to(_MARKS):
@@ -772,8 +773,9 @@ def _at_end(path: Path, steps: int, ctx, read: "_WatchedLines | None" = None) ->
     or when a relaxation (IBRION 1, 2, 3) ran all its NSW ionic steps and its OUTCAR does not say
     it converged ("reached required accuracy - stopping structural energy minimisation"; VASP's
     documentation: common practice); with EDIFFG = 0 (no criterion: NSW steps by design, as
-    pymatgen's ``converged_ionic`` takes it) that is said, not marked. ``read``: the OUTCAR just read; otherwise the OUTCAR is this
-    file or the same stage's beside it (a vasprun.xml has neither line)."""
+    pymatgen's ``converged_ionic`` takes it) that is said, not marked. ``read``: the OUTCAR just
+    read; otherwise the OUTCAR is this file or the same stage's beside it (a vasprun.xml has
+    neither line)."""
     s = ctx.settings
     nsw, ibrion = s.get("NSW"), s.get("IBRION")
     at_limit = nsw is not None and ibrion in (1, 2, 3) and 0 < int(nsw) <= steps

@@ -819,9 +819,10 @@ def _index_page(runs, bad, failed, campaign) -> str:
     ] + ([("not relaxations", f"{n_moving} <span class=\"muted\">(molecular dynamics, band "
                                "images, ...: their verdicts compare how the structure moved "
                                "from the first frame to the last)</span>")] if n_moving else [])
-      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short, or stopped at "
-                          "their step limit, on request or without converging: their final "
-                          "structures are not relaxed ones)</span>")]
+      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short, damaged, or "
+                          "stopped at their step or time limit, on request, on a code error or "
+                          "without converging: their final structures are not relaxed "
+                          "ones)</span>")]
          if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(_copies_text(g)) for g in campaign["copies"][:10])
