@@ -27,6 +27,7 @@ import os
 from pathlib import Path
 
 from . import records
+from .errors import OutputError
 
 __all__ = ["Cache", "FileDigests", "run_inputs", "run_key", "versions", "freeze_inputs",
            "CACHE_SCHEMA"]
@@ -73,6 +74,7 @@ class FileDigests:
         self.path = None if index_path is None else Path(index_path)
         self._memo: dict = {}
         self._dirty = False
+        self.problem: str | None = None     # why the index could not be written, if so
         if self.path is not None and self.path.is_file():
             try:
                 data = json.loads(self.path.read_text(encoding="utf-8"))
@@ -109,9 +111,13 @@ class FileDigests:
         return self.stamp_digest(file)[1]
 
     def save(self) -> None:
-        if self.path is not None and self._dirty:
-            records.write_text_atomic(self.path, json.dumps({"schema": CACHE_SCHEMA,
-                                                             "files": self._memo}))
+        """Write the digests (a failure is kept in ``problem``: the cache only saves time)."""
+        if self.path is not None and self._dirty and self.problem is None:
+            try:
+                records.write_text_atomic(self.path, json.dumps({"schema": CACHE_SCHEMA,
+                                                                 "files": self._memo}))
+            except OutputError as exc:
+                self.problem = str(exc)
             self._dirty = False
 
 
@@ -196,6 +202,7 @@ class Cache:
     def __init__(self, folder, enabled: bool = True):
         self.folder = Path(folder)
         self.enabled = enabled
+        self.problem: str | None = None     # the first write that failed: no more are tried
 
     def _file(self, key: str) -> Path:
         return self.folder / f"{key}.json"
@@ -224,6 +231,11 @@ class Cache:
         treats as a miss, so durability is not needed and the audit saves a disk flush per run.
         """
         from .records import write_text_atomic
-        write_text_atomic(self._file(key), json.dumps({"schema": CACHE_SCHEMA, "key": key,
-                                                       "inputs": inputs, "result": result},
-                                                      allow_nan=False), fsync=False)
+        if self.problem is not None:
+            return
+        try:
+            write_text_atomic(self._file(key), json.dumps({"schema": CACHE_SCHEMA, "key": key,
+                                                           "inputs": inputs, "result": result},
+                                                          allow_nan=False), fsync=False)
+        except OutputError as exc:      # a read-only or full .cache/: the audit goes on uncached
+            self.problem = str(exc)

@@ -1197,6 +1197,10 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         getattr(gen, "close", lambda: None)()
 
     res.digests.save()
+    problem = res.cache.problem or res.digests.problem
+    if problem:                       # the cache only saves time: said, the audit goes on
+        print(f"driftwatch: {problem}; this audit's results are not cached (the next audit "
+              f"reads these runs again)", file=sys.stderr)
     ok = [res.results[r.id] for r in runs if res.results[r.id]["ok"]]
     skipped = [{"run": r.id, "source": r.path, **res.results[r.id]["skipped"]} for r in runs
                if not res.results[r.id]["ok"] and res.results[r.id].get("skipped")]

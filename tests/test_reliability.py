@@ -1063,3 +1063,32 @@ def test_a_damaged_marker_or_database_gets_advice_that_helps(tmp_path):
     r = subprocess.run(args, capture_output=True, text=True, timeout=300)
     assert r.returncode == 1 and "runs.db: not an SQLite database (damaged, or another kind of " \
         "file); move it away" in r.stderr and "audit:" not in r.stderr
+
+
+@pytest.mark.skipif(IS_ROOT and SETPRIV is None, reason="root without setpriv: permissions "
+                                                         "cannot be enforced")
+def test_a_cache_that_cannot_be_written_leaves_the_audit_uncached(tmp_path):
+    """A read-only .cache/ (the README calls it safe to delete: it only saves time) in an earlier
+    audit's folder, and a new run: the audit analyses it, says once that its results are not
+    cached, and ends as usual (it had stopped: ".cache/...json: cannot write")."""
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    shutil.copy(RUNS / "L06_emt_bfgs.traj", camp)
+    out = tmp_path / "out"
+    args = [sys.executable, "-m", "driftwatch", "audit", str(camp), "-o", str(out), "--no-report",
+            "--progress", "off"]
+    assert subprocess.run(args, capture_output=True, timeout=300).returncode == 0
+    shutil.copy(RUNS / "L07_emt_fire.traj", camp)
+    cache = out / ".cache"
+    for p in [cache, *cache.iterdir()]:
+        p.chmod(0o555 if p.is_dir() else 0o444)
+    try:
+        r = _unprivileged(args)
+    finally:
+        for p in [cache, *cache.iterdir()]:
+            p.chmod(0o755 if p.is_dir() else 0o644)
+    assert r.returncode == 0, r.stderr
+    said = [ln for ln in r.stderr.splitlines() if "not cached" in ln]
+    assert len(said) == 1 and "cannot write (Permission denied); this audit's results are not " \
+        "cached" in said[0]
+    assert "2 runs: 2 with a verdict, 0 failed (1 read now, 1 from the cache)" in r.stdout
