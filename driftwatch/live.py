@@ -890,8 +890,10 @@ class _Follower:
         still = "" if self.ended.startswith("end marker") else (
             f" (judged as a run still going: no end marker was seen; if the job has ended, "
             f"`driftwatch inspect {self.path}` judges it finished)")
-        self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps; "
-                 f"{final['summary']['verdict']['text']}{still}"
+        why = final["run"].get("unfinished")
+        self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps"
+                 + (f" (unfinished: {why})" if why and self.ended.startswith("end marker")
+                    else "") + f"; {final['summary']['verdict']['text']}{still}"
                  + (f"; record {self.output}" if self.output is not None else ""))
         return final
 

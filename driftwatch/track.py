@@ -221,16 +221,16 @@ def _went_and_came_back(frames, geo, final: dict, hi: int, last: int, seeds, oth
     """``hi``, the first frame from which the final group holds, moved later where the group left
     and came back between two checked frames: spglib is asked on the frames after ``hi`` where the
     lattice moved away from the final group's Bravais type again (its deformation more than 10 %
-    above the one at ``hi``; at most :data:`RECHECKS`); one that has another group (``other(k)``)
-    is bisected to the next checked frame (``bisect(k, next)``). A group that leaves while the
-    lattice does not move is still not seen (the record's ``checked_after`` says so)."""
+    above the one at ``hi``), or on all of them when they are :data:`RECHECKS` or fewer (at most
+    that many in all); one that has another group (``other(k)``) is bisected to the next checked
+    frame (``bisect(k, next)``). Beyond that, a group that leaves while the lattice does not move
+    is still not seen (the record's ``checked_after`` says so)."""
     t = rules.bravais_of_group(final["group"], final["symbol"], geo.dimension)
-    if t is None:
-        return hi
-    dfm = [float((f.get("deformation") or {}).get(t, 0.0)) for f in frames]
+    dfm = [float((f.get("deformation") or {}).get(t, 0.0)) for f in frames] if t else None
+    few = sum(j not in seeds for j in range(hi + 1, last)) <= RECHECKS
     k, asked = hi + 1, 0
     while k < last and asked < RECHECKS:
-        if k not in seeds and dfm[k] > 1.1 * dfm[hi]:
+        if k not in seeds and (few or (dfm is not None and dfm[k] > 1.1 * dfm[hi])):
             asked += 1
             if other(k):
                 hi = bisect(k, min((j for j in seeds if j > k), default=last))

@@ -896,3 +896,18 @@ def test_follow_does_not_end_on_a_half_written_closing_line(tmp_path):
     assert rec["live"]["ended"] == "end marker: JOB DONE." or \
         rec["live"]["ended"] == "end marker: pw.x's closing timing"
     assert rec["run"]["unfinished"] is None and same(rec, analyze(out))
+
+
+def test_follow_says_an_ended_job_did_not_finish(tmp_path):
+    """A real pw.x relaxation stopped by max_seconds ends with JOB DONE (qe_trials); follow's
+    closing line says the job ended and that it is unfinished, as the audit's * does (it had led
+    with "end marker: JOB DONE." alone)."""
+    src = Path(__file__).parent / "data" / "qe_trials" / "fe2_afm_relax_max_seconds"
+    shutil.copytree(src, tmp_path / "run")
+    buf = io.StringIO()
+    rec = follow(tmp_path / "run", stream=buf, poll=0.05, idle=5)
+    last = buf.getvalue().strip().splitlines()[-1]
+    assert last.startswith("driftwatch: end marker: JOB DONE.; 5 completed steps (unfinished: "
+                           "stopped at its time limit (pw.x: 'Maximum CPU time exceeded': "
+                           "max_seconds)); ")
+    assert rec["run"]["unfinished"].startswith("stopped at its time limit")

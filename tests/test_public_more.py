@@ -250,7 +250,8 @@ def test_atoms_the_codes_constraints_hold_are_said_and_leave_fmax(tmp_path):
     assert len(fixed) == 1 and len(fixed[0].index) == 18
     run = read_run(slab)
     assert run.code_settings["constrained_atoms"] == 18
-    assert any("18 of 38 atoms are held (in part or whole) by ASE's FixAtoms" in w
+    assert any("18 of 38 atoms are held (in part or whole) by the file's constraints (ASE's "
+               "FixAtoms, as ASE reads them)" in w
                for w in run.warnings)
 
 

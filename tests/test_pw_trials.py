@@ -148,3 +148,42 @@ def test_a_cell_pw_x_moved_only_within_its_ibrav_is_said():
         "pw.x's cell_dofree = 'ibrav' moved only the lattice parameters of its ibrav: the cell "
         "could not leave its Bravais type; the lattice verdict does not test what the code held")
     assert analyze(TRIALS / "al1_bct_ibrav7_vc_all")["summary"]["cell_held"] is None
+
+
+def test_cell_dofree_ibrav_with_ibrav_0_holds_nothing_and_a_header_error_is_said():
+    """With ibrav = 0, pw.x says cell_dofree = 'ibrav' "does not have any effect" (its own
+    warning), and all six cell parameters change (ASE's reader): no note says the code held the
+    lattice. An input pw.x refuses in its header (cell_dofree = 'volume' on a triclinic cell) is
+    that error, not "job killed or still running", also with no CRASH file beside it."""
+    from driftwatch import analyze
+    from driftwatch.errors import InputError
+    d = TRIALS / "al1_ibrav0_dofree_ibrav"
+    assert "cell_dofree='ibrav' does not have any effect" in _text(d)
+    cells = [a.cell.cellpar() for a in ase.io.read(d / "pw.out.gz", ":", format="espresso-out")]
+    assert (np.abs(cells[-1] - cells[0]) > 1e-4).all()                                   # ASE
+    assert analyze(d)["summary"]["cell_held"] is None
+    bad = TRIALS / "al1_error_in_header"
+    assert "Error in routine cell_dofree (1):" in _text(bad)
+    try:
+        read_run(bad)
+    except InputError as exc:
+        said = str(exc)
+    assert "pw.x stopped on an error: 'Error in routine cell_dofree (1): Isotropic expansion is " \
+        "only allowed for ibrav=1" in said and "killed" not in said
+
+
+def test_a_short_tail_after_a_located_change_is_asked_whole():
+    """A real two-atom Si layer relax stopped after step 4 (qe_trials/si2_layer_relax_stopped):
+    spglib's layer group at 1e-3 Å is p-1, p-1, c2/m11, p-1, c2/m11 over its 5 steps, while the
+    lattice stays hexagonal, so no lattice move points at step 3. With at most 8 frames after the
+    located change, each is asked: the change is dated step 4, as with every frame asked (it
+    said step 2)."""
+    from driftwatch import analyze
+    d = TRIALS / "si2_layer_relax_stopped"
+    rec, every = analyze(d), analyze(d, frames=range(5))
+    groups = [f["structure"]["group"][f["structure"]["symprec"].index(1e-3)]
+              for f in every["frames"]]
+    assert groups == [2, 2, 18, 2, 18]
+    for r in (rec, every):
+        assert r["summary"]["verdict"]["structure"]["from_step"] == 4
+    assert rec["summary"]["verdict"]["structure"]["checked_after"] is True

@@ -398,6 +398,8 @@ def read_pw_out(path, ctx: ReadContext):
                         break
                     if any(m in ln for m in _HEADER_END):
                         break
+                    if ln.lstrip().startswith(_ERROR):     # an input pw.x refused
+                        error = " ".join(f"{ln.strip()} {fh.readline().strip()}".split())[:200]
                     header.append(ln)
                 if any(_ON_REQUEST in ln for ln in header):    # its .EXIT file was there at start
                     if not step:
@@ -633,6 +635,7 @@ def read_pw_input(path) -> dict:
            "outdir": _text(control.get("outdir", "./"))}
     if out["calculation"] == "vc-relax" or "cell_dofree" in cell:
         out["cell_dofree"] = _text(cell.get("cell_dofree", "all"))
+        out["ibrav"] = _int(system.get("ibrav"))
     return out
 
 
@@ -1115,6 +1118,8 @@ def cell_held(code_settings: dict) -> str | None:
     s = code_settings or {}
     dofree = str(s.get("cell_dofree") or "").lower()
     if cell_free(s) is None or dofree not in _DOFREE_HELD:
+        return None
+    if dofree == "ibrav" and s.get("ibrav") == 0:   # pw.x: "does not have any effect" there
         return None
     return (f"pw.x's cell_dofree = '{dofree}' {_DOFREE_HELD[dofree]}; the lattice verdict does not "
             f"test what the code held")

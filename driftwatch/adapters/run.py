@@ -416,8 +416,9 @@ def note_fix_symmetry(atoms, settings: dict, warn=None) -> None:
     if held.any():
         settings["constrained_atoms"] = int(held.sum())
         if warn is not None:
-            warn(constrained_note(int(held.sum()), len(atoms),
-                                  "ASE's " + " and ".join(dict.fromkeys(names)), True))
+            warn(constrained_note(int(held.sum()), len(atoms), "the file's constraints (ASE's "
+                                  + " and ".join(dict.fromkeys(names)) + ", as ASE reads them)",
+                                  True))
 
 
 def checked(frames: Iterable, path) -> Iterator[Frame]:
