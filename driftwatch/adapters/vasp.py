@@ -779,7 +779,8 @@ def _at_end(path: Path, steps: int, ctx, read: "_WatchedLines | None" = None) ->
     s = ctx.settings
     nsw, ibrion = s.get("NSW"), s.get("IBRION")
     at_limit = nsw is not None and ibrion in (1, 2, 3) and 0 < int(nsw) <= steps
-    if read is None:
+    steps_planned = nsw is None or (int(nsw) > 0 and ibrion != -1)   # else no STOPCAR can act
+    if read is None and (at_limit or steps_planned):
         outcar = path if strip_compression(path.name).startswith("OUTCAR") else \
             _sibling(path, "OUTCAR", ctx)
         read = _outcar_marks(outcar) if outcar is not None else None
