@@ -380,6 +380,19 @@ class SymmetryWatch:
 
     MODES = ("record", "warn", "stop")
 
+    def _write(self, rec: dict, stacklevel: int) -> None:
+        """The record file, rewritten; a failure (a full disk) is warned once and tried again at
+        the next step: the watch never stops the relaxation for its own file."""
+        try:
+            records.write_json(rec, self.output)
+        except OutputError as exc:
+            if self._unwritten is None:
+                warnings.warn(f"driftwatch: {exc}; the relaxation goes on, the record is tried "
+                              f"again at each step", RuntimeWarning, stacklevel=stacklevel + 1)
+            self._unwritten = str(exc)
+        else:
+            self._unwritten = None
+
     def __init__(self, atoms, *, config=None, mode="record", stop_on=("lattice-gained",), output=None,
                  layer=None, optimizer=None, lazy=True):
         if mode not in self.MODES:
@@ -393,8 +406,13 @@ class SymmetryWatch:
         self.mode = mode
         self.stop_on = _codes(stop_on)
         self.output = None if output is None else Path(output)
-        if self.output is not None:
+        if self.output is not None:            # refused now, not hours into the relaxation
             records.check_target(self.output)
+            folder = self.output.parent
+            if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
+                raise OutputError(f"{self.output}: cannot write the record there (its folder "
+                                  f"{'is not writable' if folder.is_dir() else 'does not exist'})")
+        self._unwritten: str | None = None      # why the record file was last not written
         self.optimizer = optimizer
         self.lazy = bool(lazy)
         self._needs_newest = _needs_spectra(self.stop_on)
@@ -498,7 +516,7 @@ class SymmetryWatch:
                        "fired": [dict(f) for f in self.fired]}
         self._record = rec
         if self.output is not None and _rank() == 0:
-            records.write_json(rec, self.output)
+            self._write(rec, stacklevel + 1)
         if not new:
             return
         if self.mode == "warn" or (self.mode == "stop" and complete):   # ended: nothing to stop
@@ -720,8 +738,13 @@ class _Follower:
         self.path, self.cfg, self.format = Path(path), cfg, format
         self.stop_codes, self.dry_run, self.say = stop_codes, dry_run, say
         self.output = None if output is None else Path(output)
-        if self.output is not None:
+        if self.output is not None:            # refused now, not hours into the relaxation
             records.check_target(self.output)
+            folder = self.output.parent
+            if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
+                raise OutputError(f"{self.output}: cannot write the record there (its folder "
+                                  f"{'is not writable' if folder.is_dir() else 'does not exist'})")
+        self._unwritten: str | None = None      # why the record file was last not written
         self.prefix, self.outdir = prefix, outdir
         self.newest = _needs_spectra(stop_codes)
         self.tracker: Tracker | None = None

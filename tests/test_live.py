@@ -911,3 +911,27 @@ def test_follow_says_an_ended_job_did_not_finish(tmp_path):
                            "stopped at its time limit (pw.x: 'Maximum CPU time exceeded': "
                            "max_seconds)); ")
     assert rec["run"]["unfinished"].startswith("stopped at its time limit")
+
+
+def test_the_observer_refuses_an_unwritable_record_at_once_and_never_stops_a_relaxation(tmp_path):
+    """A record file in a folder that does not exist is refused when the watch is made, before
+    any step is computed; a record that cannot be written mid-run (here a folder appeared where
+    the file goes: the write fails as on a full disk) is warned once and tried again at each
+    step, and the relaxation runs to its end (it had raised from inside the optimizer: a DFT
+    relaxation would have stopped hours in for the monitor's own file)."""
+    from ase.optimize import BFGS
+    with pytest.raises(OutputError, match="its folder does not exist"):
+        SymmetryWatch(invented_layer(), output=tmp_path / "nowhere" / "rec.json")
+    atoms = invented_layer()
+    out = tmp_path / "rec.json"
+    watch = SymmetryWatch(atoms, output=out)
+    out.mkdir()                                  # every write fails from here on
+    from ase.filters import FrechetCellFilter
+    opt = BFGS(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), logfile=None)
+    opt.attach(watch)
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        opt.run(fmax=1e-4, steps=5)
+    said = [w for w in seen if "the relaxation goes on" in str(w.message)]
+    assert len(said) == 1 and issubclass(said[0].category, RuntimeWarning)
+    assert watch.record["run"]["n_frames"] == 6 and out.is_dir()
