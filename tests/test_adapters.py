@@ -1043,3 +1043,29 @@ def test_md_that_ended_cleanly_before_nsw_says_so(tmp_path):
     assert len(run) == 4 and run.unfinished is None and run.code_settings["NSW"] == 300
     assert any("the molecular dynamics ran 4 of its NSW = 300 steps and ended cleanly" in w
                for w in run.warnings)
+
+
+def test_images_interpolated_on_a_straight_line_are_a_band_in_any_format(tmp_path):
+    """Five images of an invented Cu cell interpolated by ASE's NEB.interpolate between two end
+    points (one atom moved 0.9 Å), written as extended XYZ with no description: each image is the
+    one before moved by the same displacement, so the file is a band of images, no relaxation (it
+    had read as a 5-step relaxation). A real relaxation of the same format is not (L06)."""
+    import warnings as _w
+
+    from ase.build import bulk
+    from ase.mep import NEB
+    a = bulk("Cu", "fcc", a=3.6, cubic=True)
+    b = a.copy()
+    b.positions[0] += [0.9, 0.0, 0.0]
+    images = [a] + [a.copy() for _ in range(3)] + [b]
+    with _w.catch_warnings():
+        _w.simplefilter("ignore")
+        NEB(images, method="improvedtangent").interpolate()
+    ase.io.write(tmp_path / "band.extxyz", images)
+    moves = np.diff([im.positions for im in images], axis=0)                      # ASE's images
+    assert np.abs(moves - moves[0]).max() < 1e-12 and np.abs(moves[0]).max() > 0.2
+    run = read_run(tmp_path / "band.extxyz")
+    assert len(run) == 5 and run.not_relaxation.startswith(
+        "a band of images (its structures are equally spaced on one straight line")
+    relax = read_run(Path(__file__).parents[1] / "example_runs" / "L06_emt_bfgs.traj")
+    assert relax.not_relaxation is None

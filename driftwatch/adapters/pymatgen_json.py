@@ -86,7 +86,6 @@ def _load_json(path):
 
 def read_structures(path, ctx: ReadContext):
     data = _load_json(path)
-    shapes = []                      # (cell, positions) of each structure: a band's images?
     for i, item in enumerate(_items(data, path, ctx)):
         extra = {}
         if isinstance(item, dict) and "structure" in item and "@class" not in item:
@@ -101,21 +100,8 @@ def read_structures(path, ctx: ReadContext):
             forces = None if forces is None else np.array(forces, float)
         except (TypeError, ValueError) as exc:
             raise InputError(path, f"item {i}: energy/forces are not numbers ({exc})") from None
-        shapes.append((cell, positions))
         yield Frame(cell=cell, positions=positions, numbers=numbers, pbc=pbc, step=i,
                     energy=energy, forces=forces)
-    if _interpolated(shapes):
-        ctx.settings["band_path"] = ("its structures are equally spaced on one straight line: "
-                                     "images interpolated between two end points")
-
-
-def _interpolated(shapes, tol=1e-8) -> bool:
-    """Three or more structures of one cell, each the one before moved by the same nonzero
-    displacement (Å, to ``tol``): a linear interpolation (a band's images), no steps of a code."""
-    if len(shapes) < 3 or any(np.abs(c - shapes[0][0]).max() > tol for c, _ in shapes):
-        return False
-    moves = np.diff(np.array([pos for _, pos in shapes]), axis=0)
-    return np.abs(moves[0]).max() > 1e3 * tol and np.abs(moves - moves[0]).max() <= tol
 
 
 # ---------------------------------------------------------------- workflow task documents

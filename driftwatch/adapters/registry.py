@@ -40,7 +40,7 @@ from typing import Callable, Iterator
 from ..errors import (AtomsChangeError, DamagedFrameError, DriftwatchError, ForeignOutputError,
                       InputError, NotARunError, UnknownFormatError)
 from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
-from .run import Frame, ReadContext, Run, checked, collect
+from .run import Frame, ReadContext, Run, StraightLine, checked, collect
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
            "ENTRY_POINT_GROUP", "Code", "FolderPick", "register_code", "codes", "code_of_format",
@@ -792,7 +792,9 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
         ctx.path = _source_of(pick, src)
         n, last = 0, None
         ctx.unfinished = None               # the run's is its last stage's
+        line = StraightLine()
         for fr in _stream(fmt, ctx.path, ctx):
+            line.add(fr)
             if first_numbers is None:
                 first_numbers = fr.numbers
             elif len(pick.stages) > 1 and n == 0 and not _same_atoms(first_numbers, fr.numbers):
@@ -809,6 +811,8 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
         index += n
         if last is not None:
             offset = last + 1
+        if line.band and "band_path" not in ctx.settings:
+            ctx.settings["band_path"] = StraightLine.BAND
         if n:
             kinds.append(run_kind(ctx.settings))       # each stage by its own settings
     if stages_out is not None and len(stages_out) == 1:

@@ -381,6 +381,43 @@ def frame_from_atoms(atoms, step: int) -> Frame:
     )
 
 
+class StraightLine:
+    """Whether the frames seen so far (:meth:`add`) are three or more of one cell, each the one
+    before moved by the same nonzero displacement (Å, to ``tol``): a linear interpolation (a
+    band's images, as NEB set-ups write them), never the steps of a code, whose forces change from
+    step to step."""
+
+    BAND = "its structures are equally spaced on one straight line: images interpolated between " \
+           "two end points"
+
+    def __init__(self, tol: float = 1e-8):
+        self.tol, self.n, self.holds = tol, 0, True
+        self._cell = self._last = self._move = None
+
+    def add(self, frame) -> None:
+        if not self.holds:
+            return
+        pos = np.asarray(frame.positions, float)
+        if self.n == 0:
+            self._cell = np.asarray(frame.cell, float)
+        elif np.shape(pos) != np.shape(self._last) or \
+                np.abs(np.asarray(frame.cell, float) - self._cell).max() > self.tol:
+            self.holds = False
+        else:
+            move = pos - self._last
+            if self._move is None:
+                self.holds = np.abs(move).max() > 1e3 * self.tol
+                self._move = move
+            elif np.abs(move - self._move).max() > self.tol:
+                self.holds = False
+        self.n += 1
+        self._last = pos
+
+    @property
+    def band(self) -> bool:
+        return self.holds and self.n >= 3
+
+
 def constrained_note(k: int, n: int, by: str, zeroed: bool) -> str:
     """The warning for a run of ``n`` atoms, ``k`` of them held (in part or whole) by ``by``."""
     return (f"{k} of {n} atoms are held (in part or whole) by {by}: a group the structure lost, "
