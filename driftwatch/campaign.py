@@ -87,19 +87,6 @@ def _strip(name: str) -> str:
     return strip_compression(name)
 
 
-def _entry_kind(e) -> str:
-    """'dir' or 'file'. An entry that is neither (a FIFO, a socket, a device), whose type cannot be
-    read (a symbolic link loop) or a dangling link counts as a file, so its reader reports it as a
-    failed run when its name makes it a candidate (reading such a file is refused before it could
-    block: ``adapters._io``)."""
-    try:
-        if e.is_dir():
-            return "dir"
-    except OSError:
-        pass
-    return "file"
-
-
 def _root_name(root: Path) -> str:
     return root.name if root.name not in ("", ".", "..") else (root.resolve().name or "root")
 
@@ -129,7 +116,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
     Symbolic links (to files or folders) are taken after every real path of the root, so a run
     reachable both ways is named by its real path; real paths seen are never entered twice.
     """
-    from .adapters.registry import recognised
+    from .adapters.registry import not_folder, recognised
     stack, later_dirs, later_files = [(Path(root), prefix)], [], []
     while stack or later_dirs or later_files:
         if not stack:
@@ -151,7 +138,7 @@ def _walk(root: Path, prefix: str, skip: set, seen_dirs: set, seen_runs: set, ke
         try:
             with os.scandir(folder) as it:
                 entries = sorted((e for e in it if not e.name.startswith(".")), key=lambda e: e.name)
-            kinds = [(e, _entry_kind(e)) for e in entries]
+            kinds = [(e, "file" if not_folder(e) else "dir") for e in entries]
             files = [e for e, k in kinds if k == "file"]
             dirs = [e for e, k in kinds if k == "dir"]
         except OSError as exc:
@@ -1006,7 +993,7 @@ def counts_text(summary: dict) -> str:
     n_fail, n_skip = len(summary["failed"]), len(summary.get("skipped") or ())
     unread = summary["runs"] - summary["analysed"] - summary["cached"]  # failed at discovery
     n = summary["runs"]
-    return (f"{n} run{'s' if n != 1 else ''}: {n - n_fail - n_skip} with a verdict, "
+    return (f"{_runs(n)}: {n - n_fail - n_skip} with a verdict, "
             f"{n_fail} failed" + (f", {n_skip} skipped" if n_skip else "")
             + f" ({summary['analysed']} read now, {summary['cached']} from the cache"
             + (f", {unread} failed before reading" if unread else "") + ")")
@@ -1322,11 +1309,11 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
     skipped runs in the CSV with their reason); the rows of the run ids in ``gone`` (the previous
     audit's runs) that have no row now are deleted. Returns the database's problems."""
     from .store import write_rows
-    rows = [r["view"]["csv"] for r in ok] + records.unanalysed_rows(failed, skipped)
+    unanalysed = records.unanalysed_rows(failed, skipped)
+    rows = [r["view"]["csv"] for r in ok] + unanalysed
     db_rows = [(r["run"], r["structure"], r["view"]["kv"]) for r in ok]
     db_rows += [(row["run"], None, {"run_id": row["run"], "verdict": row["verdict"],
-                                    "error": row["error"][:300]})
-                for row in records.unanalysed_rows(failed, skipped)]
+                                    "error": row["error"][:300]}) for row in unanalysed]
     # the database first: the output most likely to fail (locked, read-only), so that a failure
     # leaves the tables as they were
     problems = write_rows(db_name, sorted(db_rows, key=lambda x: x[0]),
@@ -1338,7 +1325,9 @@ def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],
 
 def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_name, db_problems,
              stale, skipped=()) -> dict:
-    from .rules import select
+    from .rules import gate
+    gates = [(r, gate(r["view"]["flags"], reject_on, r["view"]["csv"]["not_relaxation"]))
+             for r in ok]
     return {
         "schema": SCHEMA,
         "output": str(out),
@@ -1354,14 +1343,10 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
                            if r["view"]["csv"]["not_relaxation"]],
         "unfinished": [{"run": r["run"], "why": r["view"]["csv"]["unfinished"]}
                        for r in sorted(ok, key=lambda r: r["run"]) if r["view"]["csv"]["unfinished"]],
-        # --reject-on gates relaxations: the steps of MD, single points or band images are no
-        # relaxation, and a flag there is said (not_gated), not a reason to reject
         "rejected": [{"run": r["run"], "code": f["code"], "step": f["step"]}
-                     for r in ok if not r["view"]["csv"]["not_relaxation"]
-                     for f in select(r["view"]["flags"], list(reject_on))],
+                     for r, g in gates for f in g[0]],
         "not_gated": [{"run": r["run"], "code": f["code"], "step": f["step"]}
-                      for r in ok if r["view"]["csv"]["not_relaxation"]
-                      for f in select(r["view"]["flags"], list(reject_on))],
+                      for r, g in gates for f in g[1]],
         "flag_counts": dict(sorted(Counter(c for r in ok for c in
                                            {f["code"] for f in r["view"]["flags"]}).items())),
         "verdict_counts": dict(sorted(Counter([r["view"]["verdict"]["verdict"] for r in ok]

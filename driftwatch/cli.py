@@ -335,10 +335,11 @@ def _gated(hits, not_gated=()) -> int:
 
 
 def _gate_record(rec: dict, codes) -> int:
-    """:func:`_gated` for one run's record."""
-    from .rules import select
-    pairs = [(rec["run"]["source"], f) for f in select(rec["flags"], codes)]
-    return _gated(*((pairs, ()) if not rec["run"].get("not_relaxation") else ((), pairs)))
+    """:func:`_gated` for one run's record (``rules.gate``)."""
+    from .rules import gate
+    rejected, said = gate(rec["flags"], codes, rec["run"].get("not_relaxation"))
+    src = rec["run"]["source"]
+    return _gated([(src, f) for f in rejected], [(src, f) for f in said])
 
 
 def _cmd_tolerance(args) -> int:

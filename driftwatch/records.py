@@ -35,6 +35,8 @@ SCHEMA = "driftwatch/run-2"
 OLD_SCHEMAS = ("driftwatch/run-1",)
 _UMASK = os.umask(0)
 os.umask(_UMASK)
+FILE_MODE = 0o666 & ~_UMASK
+"""The mode the user's umask gives a new file (mkstemp and SQLite make theirs 0600 and 0644)."""
 
 
 def _default(obj):
@@ -138,7 +140,7 @@ def write_text_atomic(path, text: str, *, fsync: bool = True) -> Path:
             if fsync:
                 fh.flush()
                 os.fsync(fh.fileno())
-        os.chmod(tmp, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the file the user's usual mode
+        os.chmod(tmp, FILE_MODE)        # mkstemp makes 0600; give the file the user's usual mode
         os.replace(tmp, path)
         tmp = None
     except OSError as exc:

@@ -864,6 +864,14 @@ def _atoms_toward(frames, loosest, fixed_cell: bool = True) -> dict | None:
             "cell_moved": not fixed_cell}
 
 
+def gate(flags, codes, not_relaxation) -> tuple[list, list]:
+    """``(rejected, not_gated)``: the flags ``codes`` name (:func:`select`) that a ``--reject-on``
+    gate counts, and those it only says: a run whose steps are no relaxation (``not_relaxation``:
+    MD, a single point, a band image) moved from a symmetric start by nature, no drift to reject."""
+    hits = select(flags, list(codes))
+    return ([], hits) if not_relaxation else (hits, [])
+
+
 def _lattice_note(run: dict) -> str | None:
     """What a cell that is the same in every frame means for the lattice verdict, or None."""
     if not run.get("fixed_cell"):

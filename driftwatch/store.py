@@ -243,6 +243,6 @@ def write_rows(name: str, rows: list[tuple[str, dict | None, dict]], remove=()) 
         raise OutputError(f"{name}: cannot write the results database ({type(exc).__name__}: "
                           f"{exc})") from exc
     if new and os.path.isfile(name):        # SQLite makes it 0644: give it the user's usual mode
-        from .records import _UMASK          # (a group-shared folder: colleagues re-audit)
-        os.chmod(name, 0o666 & ~_UMASK)
+        from .records import FILE_MODE      # (a group-shared folder: colleagues re-audit)
+        os.chmod(name, FILE_MODE)
     return problems

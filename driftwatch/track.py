@@ -227,6 +227,7 @@ def _went_and_came_back(frames, geo, final: dict, hi: int, last: int, seeds, oth
     is still not seen (the record's ``checked_after`` says so)."""
     t = rules.bravais_of_group(final["group"], final["symbol"], geo.dimension)
     dfm = [float((f.get("deformation") or {}).get(t, 0.0)) for f in frames] if t else None
+    seeds = set(seeds)
     few = sum(j not in seeds for j in range(hi + 1, last)) <= RECHECKS
     k, asked = hi + 1, 0
     while k < last and asked < RECHECKS:

@@ -272,6 +272,12 @@ def _plain_positions(header, rows, cell, alat):
     return c @ np.asarray(m, float)
 
 
+def _banner_said(line: str, fh) -> str:
+    """pw.x's error banner in one line: its "Error in routine NAME (N):" ``line`` and the message
+    on the line after it (read from ``fh``)."""
+    return " ".join(f"{line.strip()} {fh.readline().strip()}".split())[:200]
+
+
 def _if_pos(rows) -> np.ndarray | None:
     """(N, 3) the ``if_pos`` flags of an ATOMIC_POSITIONS card's rows (0: that Cartesian
     component is held; 1 where a row has none), or None when a row's flags are not integers."""
@@ -399,7 +405,7 @@ def read_pw_out(path, ctx: ReadContext):
                     if any(m in ln for m in _HEADER_END):
                         break
                     if ln.lstrip().startswith(_ERROR):     # an input pw.x refused
-                        error = " ".join(f"{ln.strip()} {fh.readline().strip()}".split())[:200]
+                        error = _banner_said(ln, fh)
                     header.append(ln)
                 if any(_ON_REQUEST in ln for ln in header):    # its .EXIT file was there at start
                     if not step:
@@ -524,7 +530,7 @@ def read_pw_out(path, ctx: ReadContext):
                     if ready(cur) and (n == 0 or restarted(cur, n)):
                         yield emit(cur)
             elif line.lstrip().startswith(_ERROR):
-                error = " ".join(f"{line.strip()} {fh.readline().strip()}".split())[:200]
+                error = _banner_said(line, fh)
             elif any(m in line for m in _STOPS):
                 halted = line.strip()
                 stops.append(f"pw.x stopped early: '{halted}' (line {fh.lineno})")

@@ -510,7 +510,7 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     ctx.lists(folder)
     if names is None:
         names = sorted(e.name for e in os.scandir(folder)
-                       if not e.name.startswith(".") and _is_file(e))
+                       if not e.name.startswith(".") and not_folder(e))
     claims = []
     for code in _codes.values():
         got = code.function("folder")(folder, list(names), format, ctx)
@@ -617,9 +617,10 @@ def _safe_detect(p):
         return None
 
 
-def _is_file(entry) -> bool:
-    """Not a folder: a regular file, or a FIFO, socket, device or broken link, which a reader then
-    refuses naming it (as discovery lists them: ``campaign._entry_kind``)."""
+def not_folder(entry) -> bool:
+    """A folder's entry (``os.DirEntry``) that is no folder: a regular file, or a FIFO, socket,
+    device or broken link, which a reader then refuses naming it; an entry whose type cannot be
+    read (a link loop) counts too (discovery and the folder scan list the same entries)."""
     try:
         return not entry.is_dir()
     except OSError:
