@@ -309,6 +309,38 @@ def _process_stamp(pid: int):
     return fields[0].decode(), fields[19]          # stat fields 3 (state) and 22 (start time)
 
 
+def _pdeathsig_setter():
+    """``prctl`` of the C library (Linux), resolved in the parent, or None."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        import ctypes
+        return ctypes.CDLL(None, use_errno=True).prctl
+    except (OSError, AttributeError):
+        return None
+
+
+#: (audit pid, prctl) while a pool of forked workers may start: a child forked then is told to die
+#: with the audit at its first instruction, before the pool's machinery or the initializer runs
+#: (a child that blocked there had outlived a killed audit, its parent watch not yet started).
+_FORK_GUARD: list = [None]
+
+
+def _guard_forked_child() -> None:
+    guard, _FORK_GUARD[0] = _FORK_GUARD[0], None
+    if guard is None:
+        return
+    parent, prctl = guard
+    if prctl is not None:
+        prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+    if os.getppid() != parent:                      # the audit died before the line above
+        os._exit(1)
+
+
+if hasattr(os, "register_at_fork"):
+    os.register_at_fork(after_in_child=_guard_forked_child)
+
+
 def _die_with_parent(parent: int | None, audit: int | None = None) -> None:
     """Make this worker end when the audit ends, however it ends (SIGKILL included).
 
@@ -320,12 +352,9 @@ def _die_with_parent(parent: int | None, audit: int | None = None) -> None:
     worker must have as parent (None with a fork server); a worker whose parent is already gone
     exits at once."""
     ppid = os.getppid()
-    if sys.platform.startswith("linux"):
-        try:
-            import ctypes
-            ctypes.CDLL(None, use_errno=True).prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
-        except (OSError, AttributeError):
-            pass
+    prctl = _pdeathsig_setter()
+    if prctl is not None:
+        prctl(_PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
     stamp = _process_stamp(audit) if audit is not None else None
     if (parent is not None and ppid != parent) or ppid == 1 or \
             (audit is not None and (stamp is None or stamp[0] == "Z")):
@@ -527,6 +556,7 @@ def _new_pool(workers, cfg):
     if ctx.get_start_method() == "fork":
         for name in WORKER_PRELOAD:
             importlib.import_module(name)
+        _FORK_GUARD[0] = (os.getpid(), _pdeathsig_setter())
     elif ctx.get_start_method() == "forkserver":
         ctx.set_forkserver_preload(list(WORKER_PRELOAD))
     parent = os.getpid() if ctx.get_start_method() in ("fork", "spawn") else None
@@ -538,6 +568,7 @@ def _new_pool(workers, cfg):
 
 def _end_pool(ex, *, wait: bool) -> None:
     ex.shutdown(wait=wait, cancel_futures=True)
+    _FORK_GUARD[0] = None
     if ex in _POOLS:
         _POOLS.remove(ex)
 

@@ -394,6 +394,49 @@ def test_workers_end_with_their_parent(sig, start, tmp_path, killable_env):
         proc.stderr.close()
 
 
+# a pool's forked child that blocks before the pool's initializer runs (where the parent watch
+# starts), as a child forked while another thread held a lock would; "guarded": forked while the
+# audit's fork guard is armed, as _new_pool arms it
+_BLOCKED_CHILD = ("import os, sys, time\n"
+                  "from driftwatch import campaign\n"
+                  "if sys.argv[1] == 'guarded':\n"
+                  "    campaign._FORK_GUARD[0] = (os.getpid(), campaign._pdeathsig_setter())\n"
+                  "pid = os.fork()\n"
+                  "if pid == 0:\n"
+                  "    time.sleep(120)\n"
+                  "    os._exit(0)\n"
+                  "print(pid, flush=True)\n"
+                  "time.sleep(120)\n")
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="prctl(PR_SET_PDEATHSIG): Linux")
+@pytest.mark.parametrize("guard", ["guarded", "unguarded"])
+def test_a_forked_worker_dies_with_the_audit_before_its_initializer_runs(guard, tmp_path,
+                                                                          killable_env):
+    """SIGKILL the parent of a forked child that never reached the pool's initializer: with the
+    fork guard the kernel ends the child with it (prctl(2), PR_SET_PDEATHSIG); without, the child
+    outlives it (the control: it shows the test can fail)."""
+    import psutil
+    proc = subprocess.Popen([sys.executable, "-c", _BLOCKED_CHILD, guard], cwd=REPO,
+                            env=killable_env, stdout=subprocess.PIPE)
+    child = None
+    try:
+        child = psutil.Process(int(proc.stdout.readline()))
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(30)
+        deadline = time.monotonic() + 5
+        while _alive([child]) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert bool(_alive([child])) == (guard == "unguarded"), guard
+    finally:
+        if child is not None and _alive([child]):
+            child.kill()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stdout.close()
+
+
 # ============================================================================ the output folder
 @pytest.mark.parametrize("planted", ["records", ".cache", "report", "records/stale", "runs.db",
                                      "campaign.csv", ".driftwatch-audit.json"])
