@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import gzip
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -1493,10 +1494,16 @@ def test_campaign_counts_a_change_of_operations_as_a_change(tmp_path):
     cell = (c, np.linalg.solve(c.T, p.T).T, run.numbers)
     got = [spglib.get_symmetry_dataset(cell, symprec=x) for x in (1e-5, 1e-3)]
     assert [(d.number, len(d.rotations)) for d in got] == [(166, 12), (166, 24)]    # spglib
-    s = _quiet_audit([PUB / "qe_testsuite_vc_relax5"], tmp_path / "out", workers=1)
+    s = audit([PUB / "qe_testsuite_vc_relax5"], tmp_path / "out", workers=1, progress="off")
     camp = json.loads((tmp_path / "out" / "campaign.json").read_text())
     first = camp["tolerance"]["changes"][0]
     assert (first["low"], first["high"], first["runs"]) == (1e-5, 1e-3, 1) and s["runs"] == 1
+    # the report's index counts the same change (it had compared the group numbers only: 0)
+    index = (tmp_path / "out" / "report" / "index.html").read_text(encoding="utf-8")
+    table = index[index.index("Runs whose spglib group changes between common choices"):]
+    row = re.search(r'<td class="num">1e-05 Å</td><td class="num">0\.001 Å</td>'
+                    r'<td class="num">(\d+)</td>', table)
+    assert row and row.group(1) == "1"
 
 
 def test_atoms_line_names_the_most_symmetric_group_even_when_the_start_cannot_be_measured():

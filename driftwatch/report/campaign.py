@@ -30,10 +30,14 @@ def final_spectrum(record: dict) -> dict | None:
 
 
 def verdict_at(spec: dict, symprec: float, key: str = "group"):
-    """spglib's verdict (group number, or lattice symbol) at the grid value nearest to ``symprec``."""
+    """spglib's verdict at the grid value nearest to ``symprec``: (group number, symbol, operation
+    count or None), or the lattice symbol. A verdict is the group and its operation count, as in
+    the audit's advice (R-3m with 12 or 24 operations in one cell differ)."""
     i = grid_index(spec, symprec)
     if key == "group":
-        return int(spec["group"][i] or 0), str(spec["group_symbol"][i])
+        ops = spec.get("operations") or []
+        return int(spec["group"][i] or 0), str(spec["group_symbol"][i]), \
+            (ops[i] if i < len(ops) else None)
     return spec["lattice"][i]
 
 
@@ -67,7 +71,7 @@ def tolerance_table(records: list[tuple[str, dict]], common=DEFAULT_COMMON) -> d
     Returns ``{"n_runs", "n_with_spectrum", "left_out", "common", "stable_ranges": [[low, high], ...] (Å, widest
     first: ranges inside the grids where no run changes its group verdict), "changes": [{"a", "b",
     "runs": [names]}, ...] for every pair of common symprecs, "verdicts": {name: {symprec: (group,
-    symbol)}}, "breakpoints": {name: [(low, high), ...]}}``.
+    symbol, operations)}}, "breakpoints": {name: [(low, high), ...]}}``.
     """
     relaxations = [(name, r) for name, r in records if not is_not_relaxation(r)]
     spectra = [(name, final_spectrum(r)) for name, r in relaxations]
@@ -82,7 +86,7 @@ def tolerance_table(records: list[tuple[str, dict]], common=DEFAULT_COMMON) -> d
         out["verdicts"][name] = {c: verdict_at(spec, c) for c in common}
     for i, a in enumerate(common):
         for b in common[i + 1:]:
-            runs = [n for n in out["verdicts"] if out["verdicts"][n][a][0] != out["verdicts"][n][b][0]]
+            runs = [n for n, v in out["verdicts"].items() if v[a][0::2] != v[b][0::2]]
             out["changes"].append({"a": a, "b": b, "runs": runs})
     lo = max(min(min(s["symprec"]) for _, s in spectra), 1e-12)
     hi = max(max(s["symprec"]) for _, s in spectra)

@@ -602,9 +602,8 @@ def _tolerance_section(rec):
         several = len({(n, k) for n, k in zip(spec["group"], ops)}) > len(set(spec["group"]))
 
         def at(c):                 # one group type with two operation counts: say the counts
-            num, sym = _camp.verdict_at(spec, c)
-            k = ops[_camp.grid_index(spec, c)] if several else None
-            return e(_records.group_name(sym, num, k))
+            num, sym, k = _camp.verdict_at(spec, c)
+            return e(_records.group_name(sym, num, k if several else None))
         g = "".join(f"<td>{at(c)}</td>" for c in common)
         lat = "".join(f"<td>{e(_camp.verdict_at(spec, c, 'lattice'))}</td>" for c in common) \
             if spec.get("lattice") else ""
