@@ -391,14 +391,19 @@ def _split_volatile(rec: dict) -> dict:
     return dict(rec.pop("timing", None) or {})
 
 
-def _skip_reason(exc) -> dict | None:
+def _skip_reason(exc, path: str) -> dict | None:
     """A run driftwatch cannot analyse by its nature (a molecule, cluster or wire: not a layer and
     not bulk; a pw.x band-structure run: no ionic step; an output of a code it has no reader for):
-    the reason and what would include it, or None for a real failure."""
+    the reason and what would include it, or None for a real failure. The reason names the file
+    it comes from when the run is a folder."""
     from .errors import NotAnalysed
     if not isinstance(exc, NotAnalysed):
         return None
-    return {"reason": exc.reason, "include": exc.include}
+    where, reason = getattr(exc, "path", None), exc.reason
+    if where and os.path.normpath(where) != os.path.normpath(path):
+        inside = os.path.normpath(where).startswith(os.path.normpath(path) + os.sep)
+        reason = f"{os.path.relpath(where, path) if inside else where}: {reason}"
+    return {"reason": reason, "include": exc.include}
 
 
 def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
@@ -432,7 +437,7 @@ def analyse_run(run_id: str, path: str, cfg: dict) -> dict:
         transient = isinstance(exc, (MemoryError, OSError)) and not isinstance(exc, DriftwatchError)
         out = {"run": run_id, "source": path, "ok": False, "error": _one_line(exc, path),
                "cacheable": not transient, "inputs": [list(x) for x in ctx.inputs()]}
-        skipped = _skip_reason(exc)
+        skipped = _skip_reason(exc, path)
         if skipped:
             out["skipped"] = skipped
         return out

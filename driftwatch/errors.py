@@ -78,6 +78,7 @@ class NotPeriodicError(GeometryError, NotAnalysed):
         super().__init__(("" if source is None else f"{source}: ") + f"{reason}: driftwatch "
                          f"analyses layers and bulk crystals; to include it: {include}")
         self.reason, self.include = reason, include
+        self.path = None if source is None else str(source)
 
 
 class NoIonicStepError(_SkippedInput):

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import gzip
 import re
+import subprocess
+import sys
 from pathlib import Path
 
 import ase.data
@@ -364,3 +366,76 @@ def test_an_xdatcar_line_of_two_numbers_run_together_is_named():
     assert len(run) == 1 and run.unfinished.startswith("damaged:")
     assert any("line 17 holds '-0.63265286-0.11227753 -0.15402785', not three numbers (two "
                "numbers run together?)" in w for w in run.warnings)
+
+
+# ---------------------------------------------------------------- QE's own test-suite (seventeenth session)
+def _pw_text(folder: str) -> str:
+    return gzip.decompress((MORE / folder / "pw.out.gz").read_bytes()).decode()
+
+
+def test_an_input_of_the_workflows_next_step_is_not_taken_as_the_vc_relaxs_own(tmp_path):
+    """q-e's pw_workflow_vc-relax_dos: step 1's vc-relax output beside step 2's nscf input, as a
+    user's folder holds them after the next step. The output's own lines show 38 '!' energies,
+    'new unit-cell volume' and 'bfgs converged' (ASE reads 38 frames): the input's calculation =
+    'nscf' is not this output's. Before, the run was "a single-point calculation ... no ionic
+    steps" and --reject-on let its lattice-lost through (exit 0)."""
+    d = MORE / "qe_ts_nscf_input_beside_vcrelax"
+    text = _pw_text(d.name)
+    assert re.search(r"calculation\s*=\s*[\"']nscf", (d / "pw.in").read_text())  # the input's own
+    assert len(re.findall(r"^!\s+total energy", text, re.M)) == 38 and "bfgs converged" in text
+    assert len(ase.io.read(gzip.open(d / "pw.out.gz", "rt"), ":", format="espresso-out")) == 38
+    run = read_run(d)
+    assert len(run) == 38 and run.not_relaxation is None
+    assert "settings_from" not in run.code_settings and run.code_settings.get("code") == "espresso"
+    assert any("the pw.x input pw.in beside it is not this output's (calculation = 'nscf', the "
+               "output shows ionic steps)" in w for w in run.warnings)
+    alone = tmp_path / "alone"
+    alone.mkdir()
+    (alone / "pw.out.gz").write_bytes((d / "pw.out.gz").read_bytes())
+    assert driftwatch.analyze(read_run(alone))["flags"] == driftwatch.analyze(run)["flags"]
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(d), "--reject-on",
+                        "lattice-lost"], capture_output=True, text=True)
+    assert r.returncode == 3, r.stderr
+
+
+def test_a_makov_payne_cluster_is_an_isolated_system_skipped_naming_its_file(tmp_path):
+    """q-e's pw_cluster cluster5: assume_isolated = 'makov-payne' in its input, and pw.x prints
+    'MAKOV-PAYNE CORRECTION' after its SCF: an isolated molecule, skipped as the Martyna-Tuckerman
+    ones are (it had been a bulk cP crystal). The audit's reason names the file of the folder."""
+    from driftwatch.campaign import audit
+    from driftwatch.errors import NotPeriodicError
+    d = MORE / "qe_ts_makov_payne_cluster"
+    assert "assume_isolated = 'makov-payne'" in (d / "pw.in").read_text()
+    assert "MAKOV-PAYNE CORRECTION" in _pw_text(d.name)
+    with pytest.raises(NotPeriodicError, match="makov-payne"):
+        read_run(d)
+    s = audit([d], tmp_path / "out", report=False, progress="off", workers=1)
+    (skip,) = s["skipped"]
+    assert skip["reason"].startswith("pw.out.gz: a molecule or cluster: pw.x computed it as an "
+                                     "isolated system (assume_isolated = 'makov-payne'")
+
+
+def test_a_hybrid_run_cut_at_exx_maxstep_is_unfinished_and_its_energy_is_the_double_bang_line():
+    """q-e's pw_workflow_exx_nscf ncpp-gamma-restart-1 sets exx_maxstep = 2 and pw.x prints
+    'Calculation (EXX) stopped after iteration # 2', no 'EXX self-consistency reached': it stopped
+    without converging. pw_b3lyp b3lyp-O converges its EXX loop: its energy is pw.x's final '!!'
+    line (x the Ry of ASE's pw.x reader), not the '!' before it, nor ASE's first '!' (the
+    non-hybrid SCF)."""
+    from ase.io.espresso import units
+    Ry = units["Ry"]
+    text = _pw_text("qe_ts_exx_maxstep")
+    assert "exx_maxstep = 2" in (MORE / "qe_ts_exx_maxstep" / "pw.in").read_text()
+    assert "Calculation (EXX) stopped after iteration" in text
+    assert "EXX self-consistency reached" not in text
+    run = read_run(MORE / "qe_ts_exx_maxstep")
+    assert run.unfinished == ("stopped without converging (pw.x: 'Calculation (EXX) stopped after "
+                              "iteration # 2')")
+    text = _pw_text("qe_ts_exx_energy")
+    final = float(re.search(r"^!!\s+total energy\s+=\s+(\S+) Ry", text, re.M).group(1)) * Ry
+    bangs = [float(v) * Ry for v in re.findall(r"^!\s+total energy\s+=\s+(\S+) Ry", text, re.M)]
+    run = read_run(MORE / "qe_ts_exx_energy")
+    assert len(run) == 1 and run.unfinished is None
+    assert run.energies[-1] == pytest.approx(final, abs=1e-9) and abs(final - bangs[-1]) > 1e-7
+    first = ase.io.read(gzip.open(MORE / "qe_ts_exx_energy" / "pw.out.gz", "rt"),
+                        format="espresso-out").get_potential_energy()
+    assert first == pytest.approx(bangs[0], abs=1e-6) and abs(first - final) > 0.5   # ASE's

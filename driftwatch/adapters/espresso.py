@@ -12,7 +12,8 @@ yields a step only when it is complete:
 
 * a configuration starts at the header of a pw.x run or at an ``ATOMIC_POSITIONS``
   card (with the ``CELL_PARAMETERS`` card printed just before it, in vc-relax);
-* its results are the ``!`` total energy (eV; pw.x's F = E - TS), the forces and
+* its results are the ``!`` total energy (eV; pw.x's F = E - TS; with a hybrid functional
+  the ``!!`` one its EXX loop ends on), the forces and
   the stress that follow it;
 * it is complete when a line that pw.x prints only after all results of a step
   appears (``number of scf cycles``, ``BFGS Geometry Optimization``, ``End of BFGS``,
@@ -61,6 +62,9 @@ _HEADER_END = (*_SCF_START, _NSCF_START)     # where a run's header ends (an nsc
 # printed in the header of a run with assume_isolated = 'martyna-tuckerman' (PW/src/summary.f90 of
 # QE's sources): pw.x's own word that the cell holds an isolated system (a molecule, a cluster)
 _ISOLATED = "Assuming isolated system, Martyna-Tuckerman method"
+# printed after each SCF of a run with assume_isolated = 'makov-payne' (a charged or polar molecule
+# or cluster in a cubic box; QE's test-suite pw_cluster): the same word, said later
+_MAKOV_PAYNE = "MAKOV-PAYNE CORRECTION"
 # pw.x's total time, printed once as a run ends (print_clock's layout: "PWSCF", padded, " :"); pw.x
 # before 6 ends with it and no JOB DONE (pwtools' genuine 4.1.2 vc-relax, tests/data/public)
 _CLOCK = "PWSCF        :"
@@ -81,7 +85,11 @@ _ERRORS = ("Energy error", "Gradient error", "Cell gradient error")
 _CRITERIA = "(criteria: energy"
 _NUMBER = re.compile(r"[-+]?\d*\.?\d+(?:[EeDd][-+]?\d+)?")
 # pw.x's own reasons for stopping early (quoted in a warning: "no completed ionic step" says why)
-_STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved")
+# (and a hybrid functional's EXX loop cut at exx_maxstep: PW/src/electrons.f90, pw.x 6-7)
+_STOPS = ("Maximum CPU time exceeded", "convergence NOT achieved",
+          "Calculation (EXX) stopped after iteration")
+# the total energy of a step: "!" after each SCF; "!!" once a hybrid functional's EXX loop converged
+_ENERGY = ("!    total energy", "!!   total energy")
 # pw.x's error banner (Modules/error_handler.f90): "Error in routine NAME (N):", the message, a
 # line of %, "stopping ..."; it ends the output without JOB DONE (a CRASH file may lie beside it)
 _ERROR = "Error in routine"
@@ -97,9 +105,9 @@ _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 _NEW_VOLUME = re.compile(r"new unit-cell volume =.*\(\s*([\d.]+)\s*Ang\^3")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
-_MARKS = (_START, "Sym. Ops.", "No symmetry found", "!    total energy", "Forces acting on atoms",
+_MARKS = (_START, "Sym. Ops.", "No symmetry found", *_ENERGY, "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
-          "new unit-cell volume",
+          "new unit-cell volume", _MAKOV_PAYNE,
           *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST, _GAVE_UP, *_ERRORS, _CRITERIA, _ERROR)
 
 
@@ -309,12 +317,19 @@ def _note_rounding(ctx: ReadContext, header: str, row: str, alat) -> None:
         ctx.round_to("cartesian", step * alat)
 
 
+def _isolated(path, said: str) -> NotPeriodicError:
+    return NotPeriodicError(f"a molecule or cluster: pw.x computed it as an isolated system "
+                            f"({said})", "a periodic calculation of it (no assume_isolated)", path)
+
+
 def read_pw_out(path, ctx: ReadContext):
     """Stream the completed ionic steps of a pw.x output (plain or compressed)."""
     from ase.io.espresso import get_atomic_positions, get_cell_parameters
     _, Ry = _units()
 
-    taken = _settings_from_input(path, ctx)
+    taken = given = _settings_from_input(path, ctx)
+    shown = None        # the calculation pw.x's own dynamics lines show (_DYNAMICS), or None
+    cell_moved = False  # pw.x printed a new unit-cell volume or variable-cell dynamics
     step = 0            # completed steps emitted
     nconf = 0           # configurations seen (the step index of a frame)
     last_index = None
@@ -453,10 +468,7 @@ def read_pw_out(path, ctx: ReadContext):
                 cur.from_header, cur.restored = True, restored
                 cur.restored_index = restored_index
                 if _ISOLATED in "".join(header):
-                    raise NotPeriodicError(f"a molecule or cluster: pw.x computed it as an "
-                                           f"isolated system ('{_ISOLATED}')",
-                                           "a periodic calculation of it (no assume_isolated)",
-                                           path)
+                    raise _isolated(path, f"'{_ISOLATED}'")
                 if _NSCF_START in ln:
                     nscf = True
                 per_run.append(0)
@@ -471,7 +483,7 @@ def read_pw_out(path, ctx: ReadContext):
                 if m or "No symmetry found" in line:
                     ctx.settings["nsym_final"] = int(m.group(1)) if m else 1
                     continue
-            if line.startswith("!    total energy"):
+            if line.startswith(_ENERGY):
                 halted = None                               # it went on after a stop line
                 if not cur.emitted:
                     cur.energy = float(line.split()[-2]) * Ry
@@ -487,7 +499,10 @@ def read_pw_out(path, ctx: ReadContext):
                     break
                 if not cur.emitted:
                     cur.stress = s
+            elif _MAKOV_PAYNE in line:
+                raise _isolated(path, f"assume_isolated = 'makov-payne': '{_MAKOV_PAYNE}'")
             elif "new unit-cell volume" in line:
+                cell_moved = True
                 m = _NEW_VOLUME.search(line)
                 volume = float(m.group(1)) if m else None
             elif line.startswith("CELL_PARAMETERS"):
@@ -532,7 +547,7 @@ def read_pw_out(path, ctx: ReadContext):
             elif line.lstrip().startswith(_ERROR):
                 error = _banner_said(line, fh)
             elif any(m in line for m in _STOPS):
-                halted = line.strip()
+                halted = " ".join(line.split())
                 stops.append(f"pw.x stopped early: '{halted}' (line {fh.lineno})")
             elif _ON_REQUEST in line:
                 on_request = True
@@ -551,10 +566,11 @@ def read_pw_out(path, ctx: ReadContext):
                     pass
             elif any(m in line for m in _DYNAMICS):
                 ionic = True
-                if "calculation" not in ctx.settings and \
-                        ("Entering Dynamics;" not in line or _VC_FIRST.search(line)):
-                    ctx.settings["calculation"] = next(v for m, v in _DYNAMICS.items()
-                                                       if m in line)
+                said = next(v for m, v in _DYNAMICS.items() if m in line)
+                cell_moved = cell_moved or said.startswith("vc-")
+                if shown is None and ("Entering Dynamics;" not in line or _VC_FIRST.search(line)):
+                    shown = said
+                    ctx.settings.setdefault("calculation", said)
             elif _CLOSER.search(line):
                 if "JOB DONE" in line or _CLOCK in line:
                     done = True
@@ -581,6 +597,11 @@ def read_pw_out(path, ctx: ReadContext):
                                          "Calculation': calculation = 'nscf' or 'bands'): no SCF "
                                          "energy, no ionic step",
                                    "its structure is the one of the run it follows: audit that")
+        contradiction = _input_contradicted(ctx.settings, given, ionic, cell_moved)
+        if contradiction:
+            _undo_input(given, ctx, contradiction)
+            if shown is not None:
+                ctx.settings["calculation"] = shown
         ctx.carry["espresso-unevaluated"] = unevaluated(cur)
         runs = [(f"run{k + 1}", n) for k, n in enumerate(per_run) if n]
         if len(per_run) > 1 and len(runs) > 1:
@@ -739,17 +760,37 @@ def _check_input(taken, header, ctx: ReadContext) -> None:
     input of another calculation that lies beside the output (taken by its name)."""
     if taken is None:
         return
-    name, got, size = taken
+    _, _, size = taken
     text = "".join(header)
     seen = [(k, int(m.group(1)), want) for (k, rx), want in zip(_SIZE.items(), size)
             if want is not None and (m := rx.search(text))]
     wrong = [f"{k} = {want}, the output {n}" for k, n, want in seen if n != want]
-    if not wrong:
-        return
+    if wrong:
+        _undo_input(taken, ctx, "; ".join(wrong))
+
+
+def _input_contradicted(settings: dict, taken, ionic: bool, cell_moved: bool) -> str | None:
+    """Why the input's ``calculation`` cannot be this output's, or None: a single point whose
+    output shows ionic steps, or a fixed cell whose output shows the cell move (a workflow's next
+    step, an nscf after a vc-relax, left beside the output under the name it would take)."""
+    if taken is None or settings.get("settings_from") != taken[0]:
+        return None                        # no input, or undone already
+    calc = settings.get("calculation")
+    if calc in ("scf", "nscf", "bands") and ionic:
+        return f"calculation = '{calc}', the output shows ionic steps"
+    if calc in ("relax", "md") and cell_moved:
+        return f"calculation = '{calc}', the output shows the cell move"
+    return None
+
+
+def _undo_input(taken, ctx: ReadContext, why: str) -> None:
+    name, got, _ = taken
     for key in (*got, "settings_from"):
         ctx.settings.pop(key, None)
-    ctx.warn(f"the pw.x input {name} beside it is not this output's ({'; '.join(wrong)}): its "
-             f"settings are not used")
+    if "nsym" in ctx.settings:                     # as an output read alone says it
+        ctx.settings["code"] = "espresso"
+    ctx.warn(f"the pw.x input {name} beside it is not this output's ({why}): its settings are "
+             f"not used")
 
 
 # ---------------------------------------------------------------- folders
