@@ -383,13 +383,19 @@ def _cmd_tolerance(args) -> int:
                                    spec["operations"], spec["lattice"]):
         note = "  (below the file's printed precision)" if floor and x < floor else ""
         print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}{note}")
-    for b in shown_breakpoints(spec["breakpoints"]):
+    names = {g: group_name(sym, g) for g, sym in zip(spec["group"], spec["group_symbol"])}
+
+    def said(b, end):                        # a group by its name, as every other output says it
+        return names.get(b[end], str(b[end])) if b["kind"] == "group" else str(b[end])
+    for b in shown_breakpoints(spec["breakpoints"], cfg["tolerance"]["min_plateau"],
+                               (min(spec["symprec"]), max(spec["symprec"]))):
         if b["changes"] > 1:
-            print(f"breakpoints ({b['kind']}): {b['from']} and {b['to']} alternate, {b['changes']} "
-                  f"changes between {b['low']:.4g} and {b['high']:.4g} Å (spglib flickers)")
+            print(f"breakpoints ({b['kind']}): {said(b, 'from')} and {said(b, 'to')} alternate, "
+                  f"{b['changes']} changes between {b['low']:.3g} and {b['high']:.3g} Å (spglib "
+                  f"flickers)")
         else:
-            print(f"breakpoint ({b['kind']}): {b['from']} -> {b['to']} between {b['low']:.4g} and "
-                  f"{b['high']:.4g} Å")
+            print(f"breakpoint ({b['kind']}): {said(b, 'from')} -> {said(b, 'to')} between "
+                  f"{b['low']:.3g} and {b['high']:.3g} Å")
     if spec["breakpoints"]:
         print(f"(breakpoints are searched between grid points whose verdicts differ, and around a "
               f"flicker in steps of a factor {spec['precision'] ** SWEEP_STEP:.4g}; a change that "

@@ -990,11 +990,15 @@ def alternating(values, min_len: int = 4) -> list[tuple[int, int]]:
     return out
 
 
-def shown_ranges(ranges) -> list[list]:
+def shown_ranges(ranges, min_plateau: float = 10.0) -> list[list]:
     """:func:`_plateaus` stretches for display: a run of stretches alternating between two groups
     (spglib flickering) is one row ``[low, high, groups, symbols, operations, stretches]`` whose
-    groups, symbols and operations are pairs; other rows carry ``stretches`` 1."""
-    runs = {i: j for i, j in alternating([(r[2], r[4]) for r in ranges])}
+    groups, symbols and operations are pairs; other rows carry ``stretches`` 1. A stretch at least
+    ``min_plateau`` wide (factor in symprec) is a plateau, a row of its own, never folded into a
+    flicker beside it."""
+    keys = [(r[2], r[4]) if r[1] < r[0] * min_plateau else ("plateau", k)
+            for k, r in enumerate(ranges)]
+    runs = {i: j for i, j in alternating(keys)}
     out, i = [], 0
     while i < len(ranges):
         j = runs.get(i)
@@ -1008,14 +1012,21 @@ def shown_ranges(ranges) -> list[list]:
     return out
 
 
-def shown_breakpoints(breakpoints) -> list[dict]:
+def shown_breakpoints(breakpoints, min_plateau: float = 10.0, grid=None) -> list[dict]:
     """The breakpoints for display, each kind in order of symprec: a chain of brackets alternating
     between two verdicts is one entry with ``changes`` (its count) from the first low to the last
-    high; other entries carry ``changes`` 1."""
+    high; other entries carry ``changes`` 1. A verdict holding at least ``min_plateau`` (factor)
+    between two brackets, or between a bracket and an end of ``grid`` (lowest, highest symprec),
+    is a plateau that ends a chain, as in :func:`shown_ranges`."""
+    lo, hi = grid if grid else (math.inf, 0.0)
     out = []
     for kind in dict.fromkeys(b["kind"] for b in breakpoints):
         bs = sorted((b for b in breakpoints if b["kind"] == kind), key=lambda b: b["low"])
-        values = [bs[0]["from"]] + [b["to"] for b in bs] if bs else []
+        ends = [lo] + [b["high"] for b in bs]                  # where each verdict starts ...
+        starts = [b["low"] for b in bs] + [hi]                 # ... and where it ends
+        values = [v if b < a * min_plateau else ("plateau", k)
+                  for k, (v, a, b) in enumerate(zip([bs[0]["from"]] + [b["to"] for b in bs],
+                                                    ends, starts))] if bs else []
         chained = all(bs[k]["from"] == bs[k - 1]["to"] for k in range(1, len(bs)))
         runs = {i: j for i, j in alternating(values)} if chained else {}
         k = 0

@@ -656,6 +656,43 @@ def test_alternating_runs_are_one_row_for_display():
     assert [(b["low"], b["high"], b["changes"]) for b in shown] == [(2, 2.5, 3), (2.6, 3, 1)]
 
 
+def test_a_wide_plateau_beside_a_flicker_stays_its_own_row():
+    """A stretch at least min_plateau wide is a plateau, never folded into the flicker beside it:
+    custodian's genuine VASP NpT MD (tests/data/public/vasp541_npt_md) ends on P1 from 1e-05 to
+    0.156 Å (the plateau its advice recommends), then P1 and P-1 alternate up to 0.2 Å. The run
+    page had shown one row "P1 and P-1 alternate" from 1e-05 to 0.201 Å; `tolerance` one chain."""
+    from driftwatch import analyze
+    from driftwatch.adapters import read_run
+    from driftwatch.rules import shown_breakpoints, shown_ranges
+    ranges = [[1e-5, 0.1, 1, "P1", 1], [0.11, 0.12, 2, "P-1", 2], [0.13, 0.14, 1, "P1", 1],
+              [0.15, 0.16, 2, "P-1", 2], [0.17, 0.18, 1, "P1", 1]]
+    rows = shown_ranges(ranges)
+    assert rows[0] == ranges[0] + [1] and rows[1][:2] == [0.11, 0.18] and rows[1][5] == 4
+    assert shown_ranges(ranges, min_plateau=1e5)[0][5] == 5                 # narrower than that
+    bps = [{"kind": "group", "low": lo, "high": hi, "from": a, "to": b}
+           for lo, hi, a, b in [(0.1, 0.11, 1, 2), (0.12, 0.13, 2, 1), (0.14, 0.15, 1, 2),
+                                (0.16, 0.17, 2, 1)]]
+    shown = shown_breakpoints(bps, grid=(1e-5, 0.3))
+    assert [(b["low"], b["high"], b["changes"]) for b in shown] == [(0.1, 0.11, 1), (0.12, 0.17, 3)]
+    assert shown_breakpoints(bps)[0]["changes"] == 4                         # no grid: unknown
+    from pathlib import Path
+    rec = analyze(read_run(Path(__file__).parent / "data" / "public" / "vasp541_npt_md"))
+    tol = rec["summary"]["tolerance"]
+    rows = shown_ranges(tol["ranges"], rec["config"]["tolerance"]["min_plateau"])
+    plateau = tol["plateau"]
+    assert any(r[5] == 1 and r[0] <= plateau["low"] and r[1] == plateau["high"] for r in rows)
+    assert any(r[5] > 1 for r in rows)              # the flicker above it is still one row
+    import subprocess
+    import sys
+    out = subprocess.run([sys.executable, "-m", "driftwatch", "tolerance",
+                          str(Path(__file__).parent / "data" / "public" / "vasp541_npt_md")],
+                         capture_output=True, text=True, check=True).stdout
+    said = [ln for ln in out.splitlines() if ln.startswith("breakpoint")]
+    # groups named as every output names them, brackets at 3 significant figures as inspect's
+    assert said[0] == (f"breakpoint (group): P1 (1) -> P-1 (2) between {plateau['high']:.3g} and "
+                       f"{rows[1][0]:.3g} Å") and "alternate" in said[1]
+
+
 def test_the_flicker_sweep_runs_only_where_a_verdict_returns():
     """A grid interval holding a chain of different verdicts (P1 -> P2 -> P-42m between two grid
     points, as a relaxed vacancy has) that a few probes confirm is no flicker: it costs those

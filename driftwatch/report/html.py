@@ -455,6 +455,20 @@ def _common(rec):
     return charts.common_symprecs(rec) or _camp.DEFAULT_COMMON
 
 
+def _below_precision(low: float, high: float, floor) -> str:
+    """The note of a symprec range (Å) that reaches below what the file's printed digits resolve."""
+    if not floor or low >= floor:
+        return ""
+    if high <= floor:
+        return "below the file's printed precision"
+    return f"below {floor:.3g} Å, the file's printed precision"
+
+
+def _min_plateau(rec) -> float:
+    """The record's tolerance.min_plateau (factor): a stretch this wide is a plateau."""
+    return float(((rec.get("config") or {}).get("tolerance") or {}).get("min_plateau", 10.0))
+
+
 def _summary_section(rec):
     run, geo, s = rec["run"], rec["geometry"], rec["summary"]
     fin = s.get("final") or {}
@@ -589,9 +603,9 @@ def _tolerance_section(rec):
         rows = "".join(
             f"<tr>{_td_num(r[0], 'Å')}{_td_num(r[1], 'Å')}<td>{group(r)}</td>"
             f"<td class=\"num\">{_ratio(r[0], r[1])}</td>"
-            f"<td>{'below the file' + chr(39) + 's printed precision' if floor and r[0] < floor else ''}"
-            f"</td></tr>"
-            for r in shown_ranges([list(r) + [0] * (5 - len(r)) for r in ranges if len(r) >= 4]))
+            f"<td>{_below_precision(r[0], r[1], floor)}</td></tr>"
+            for r in shown_ranges([list(r) + [0] * (5 - len(r)) for r in ranges if len(r) >= 4],
+                                  _min_plateau(rec)))
         out.append("<h3>Ranges of symprec with one spglib group (final structure)</h3><table><thead><tr>"
                    "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th><th></th>"
                    f"</tr></thead><tbody>{rows}</tbody></table>")
