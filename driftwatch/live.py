@@ -873,6 +873,11 @@ class _Follower:
         now = {_key(fl) for fl in rec["flags"]}
         gone = self.holding - now
         for code, kind in sorted(gone, key=str):      # said when it came, said when it went
+            named = sorted(str(k) for c, k in now if c == code and k)
+            if kind and named:                         # the same flag, about another type
+                self.say(f"  {code} now names {', '.join(named)} (was {kind}; as the run "
+                         f"now reads)")
+                continue
             self.say(f"  no longer holds: {code}{'(' + kind + ')' if kind else ''} (the newest "
                      f"steps judge it otherwise)")
         self.seen -= gone                             # announced again if it comes back
