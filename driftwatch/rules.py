@@ -413,16 +413,20 @@ def _lattice_flags(frames, lv, D, r):
                            r["handedness_flip"]["min_chiral"]))
     elif frames and "sign" in frames[0]:      # a layer (its frames carry a 2D sign)
         rev = _reversals(frames, r["handedness_flip"])
-        if len(rev) >= 2:                     # reversed and came back: the ends agree
+        if len(rev) >= 2:      # even: reversed and came back; odd: the ends are too near a mirror
+            back = len(rev) % 2 == 0
+            ends = ("came back: its first and last stretches more than twice min_chiral from a "
+                    "mirror lattice have the same handedness" if back else
+                    f"its last stretch more than twice min_chiral from a mirror lattice has the "
+                    f"opposite handedness to its first, and it ended "
+                    f"{_g(frames[-1]['deformation']['mirror'])} Å from a mirror lattice")
             flags.append(_flag("handedness-flip", rev[0][0], frames,
                                f"the layer's 2D lattice reversed its handedness {len(rev)} times "
-                               f"(first {_from(frames, rev[0][0])}, last back "
-                               f"{_from(frames, rev[-1][0])}; each side reaching a mirror "
-                               f"deformation of twice min_chiral, up to "
-                               f"{_g(max(x[1] for x in rev))} Å) and came back: its first "
-                               f"and last stretches more than twice min_chiral from a mirror "
-                               f"lattice have the same handedness (a frame nearer a mirror "
-                               f"lattice has no meaningful sign); it passed through "
+                               f"(first {_from(frames, rev[0][0])}, last "
+                               f"{'back ' if back else ''}{_from(frames, rev[-1][0])}; each side "
+                               f"reaching a mirror deformation of twice min_chiral, up to "
+                               f"{_g(max(x[1] for x in rev))} Å) and {ends} (a frame nearer a "
+                               f"mirror lattice has no meaningful sign); it passed through "
                                f"mirror-symmetric lattices on the way", None, len(rev),
                                r["handedness_flip"]["min_chiral"]))
     return flags

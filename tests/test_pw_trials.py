@@ -187,3 +187,28 @@ def test_a_short_tail_after_a_located_change_is_asked_whole():
     for r in (rec, every):
         assert r["summary"]["verdict"]["structure"]["from_step"] == 4
     assert rec["summary"]["verdict"]["structure"]["checked_after"] is True
+
+
+def test_an_odd_number_of_handedness_reversals_is_not_said_to_come_back():
+    """The seventeenth session's real pw.x Mg layer (2Dxy, oblique start): its 2D sign reverses 3
+    times between stretches clearly away from a mirror lattice (+1, -1, +1, -1), then it settles
+    0.002 Å from one. The handedness-flip flag had said it "came back: its first and last
+    stretches ... have the same handedness". The signs are checked against a brute-force
+    enumeration of obtuse superbases (tests/brute2d.py, the sign of math.md)."""
+    from fractions import Fraction
+
+    import brute2d
+    from driftwatch import analyze
+    d = TRIALS / "mg1_layer_odd_reversals"
+    run = read_run(d)
+    rec = analyze(run)
+    mine = [f["sign"] for f in rec["frames"]]
+    brute = [brute2d.sign([[Fraction(float(x)) for x in v[:2]] for v in c[:2]]) for c in run.cells]
+    assert all(a == b for a, b in zip(mine, brute) if a and b) and len(brute) == len(run)
+    (flag,) = [f for f in rec["flags"] if f["code"] == "handedness-flip"]
+    twice = 2 * rec["config"]["rules"]["handedness_flip"]["min_chiral"]
+    away = [b for f, b in zip(rec["frames"], brute) if f["deformation"]["mirror"] >= twice]
+    assert away[0] == -away[-1] != 0                  # the first and last clear stretches differ
+    assert flag["value"] == 3 and "came back" not in flag["message"]
+    assert "its last stretch more than twice min_chiral from a mirror lattice has the opposite " \
+           "handedness to its first" in flag["message"]
