@@ -23,7 +23,7 @@ EXIT_PIPE = 141
 reports for a tool stopped by SIGPIPE; nothing is printed."""
 
 _EPILOG = """exit codes: 0 ok, 1 input/config/output error, 2 usage error,
-3 a flag named in --reject-on was raised (also when runs failed), 4 (audit) some runs failed,
+3 a flag named in --reject-on was raised (3 wins over 4), 4 (audit) some runs failed,
 141 standard output closed early (| head): the rest is not printed.
 Verdicts: gained, lost, changed or kept symmetry (lattice and spglib group).
 Flags are diagnostics to check, not proofs of stability or of a phase."""

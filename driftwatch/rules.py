@@ -566,7 +566,8 @@ def _structure_flags(frames, sv):
     if a["group"] != b["group"] and a["operations"] == b["operations"] and \
             sv["relation"] in ("supergroup", "subgroup"):   # the same operations in this cell
         big = b if sv["relation"] == "supergroup" else a
-        rel += (f" (its point group is larger; the cell holds the same {a['operations']} "
+        rel += (f" ({big['symbol']}'s point group is larger; the cell holds the same "
+                f"{a['operations']} "
                 f"operations of both: {big['symbol']}'s others do not map this cell's lattice onto "
                 f"itself, as in a supercell)")
     if a["group"] == b["group"] and a["operations"] != b["operations"]:   # the same type
@@ -574,9 +575,9 @@ def _structure_flags(frames, sv):
         rel = (f"the same space-group type with {'more' if more else 'fewer'} operations: pure "
                f"translations {'gained' if more else 'lost'} (a {'smaller' if more else 'larger'} "
                f"primitive cell)")
-    msg = (f"spglib's group at symprec {_g(s)} Å {what} from {a['symbol']} ({a['group']}, "
-           f"{a['operations']} operations) to {b['symbol']} ({b['group']}, {b['operations']} "
-           f"operations) {when}; {rel}")
+    msg = (f"spglib's group at symprec {_g(s)} Å {what} from "
+           f"{group_name(a['symbol'], a['group'], a['operations'])} to "
+           f"{group_name(b['symbol'], b['group'], b['operations'])} {when}; {rel}")
     return [_flag(f"group-{sv['direction']}", sv["from_frame"], frames, msg, None, b["group"], s)]
 
 

@@ -32,8 +32,8 @@ class Progress:
         self.t0 = self._last = time.monotonic()
         self._start = initial
         if self.enabled and not self.tty and total:
-            self._line(f"{total} {unit} to do" + (f", {initial} already done (cache)" if initial
-                                                   else ""))
+            self._line(f"{total} {unit[:-1] if total == 1 else unit} to do"
+                       + (f", {initial} already done (cache)" if initial else ""))
 
     def _line(self, text: str) -> None:
         stamp = time.strftime("%Y-%m-%d %H:%M:%S")

@@ -682,6 +682,8 @@ def test_a_wide_plateau_beside_a_flicker_stays_its_own_row():
     plateau = tol["plateau"]
     assert any(r[5] == 1 and r[0] <= plateau["low"] and r[1] == plateau["high"] for r in rows)
     assert any(r[5] > 1 for r in rows)              # the flicker above it is still one row
+    lost = next(f["message"] for f in rec["flags"] if f["code"] == "group-lost")
+    assert "to P1 (1, 1 operation) from" in lost                  # one operation, not "operations"
     import subprocess
     import sys
     out = subprocess.run([sys.executable, "-m", "driftwatch", "tolerance",

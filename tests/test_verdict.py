@@ -439,7 +439,7 @@ def test_a_group_gained_in_a_supercell_whose_lattice_lacks_its_new_operations_is
     sv = rec["summary"]["verdict"]["structure"]
     assert (sv["direction"], sv["relation"]) == ("gained", "supergroup")
     flag = next(f for f in rec["flags"] if f["code"] == "group-gained")
-    assert "c2/m11 contains p-1 (its point group is larger; the cell holds the same 4 " \
+    assert "c2/m11 contains p-1 (c2/m11's point group is larger; the cell holds the same 4 " \
            "operations of both" in flag["message"]
 
 

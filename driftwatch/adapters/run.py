@@ -141,7 +141,8 @@ class Run:
                           f"{n if n > 1 else ''}" for z, n in sorted(counts.items()))
         extra = f", {len(self.stages)} stages" if self.stages else ""
         extra += f", {len(self.warnings)} warnings" if self.warnings else ""
-        return (f"<Run {self.source!r} ({self.format}): {len(self)} frames, {formula}, "
+        return (f"<Run {self.source!r} ({self.format}): {len(self)} "
+                f"frame{'s' if len(self) != 1 else ''}, {formula}, "
                 f"steps {int(self.steps[0])}..{int(self.steps[-1])}{extra}>")
 
     def _index(self, i: int) -> int:

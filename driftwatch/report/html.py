@@ -52,8 +52,8 @@ FLAG_TEXT = {
     "loose-symprec": "spglib at a loose symprec assigns a lattice type that, by the continuous "
                      "deformation, the lattice is still far from",
     "held-by-code": "the code's own symmetry handling (or ASE's FixSymmetry constraint) was on and "
-                    "the run kept a symmetric group: it could not have lowered it, so 'kept' is not "
-                    "a test of it",
+                    "the run kept a symmetric group: it could not have lowered the operations it "
+                    "held, so 'kept' is not a test of those",
 }
 """Plain-language meaning of each flag code (codes are defined in :mod:`driftwatch.rules`)."""
 
