@@ -1193,6 +1193,9 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                             structure_keys=cfg["inputs"]["structure_keys"])
     if not runs and not failed:
         raise InputError(", ".join(str(r) for r in roots), _why_empty(roots, include, exclude, skip))
+    if (include or exclude) and not overwrite and old_marker.get("runs"):
+        _keep_what_the_selection_leaves_out(out, roots, old_marker["runs"], runs, failed, skip,
+                                            cfg)
     runs, not_files = _regular_file_runs(runs)
     failed += not_files
     res = _Results(out, _record_names(runs), Cache(out / ".cache", enabled=use_cache))
@@ -1259,6 +1262,22 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         sys.stderr.write(f"driftwatch audit: {len(failed)} of {summary['runs']} runs could not be "
                          f"analysed (listed with their error in the table and campaign.csv)\n")
     return summary
+
+
+def _keep_what_the_selection_leaves_out(out, roots, before, runs, failed, skip, cfg) -> None:
+    """Refuse to audit an --include/--exclude selection into a folder whose last audit holds runs
+    that still exist but the selection leaves out: the audit would retire their rows of runs.db
+    and their records as gone."""
+    selected = {r.id for r in runs} | {f["run"] for f in failed}
+    every, unread = discover(roots, skip=skip, structure_keys=cfg["inputs"]["structure_keys"])
+    left = sorted((set(before) & ({r.id for r in every} | {f["run"] for f in unread})) - selected)
+    if left:
+        raise OutputError(f"{out}: its last audit holds {_runs(len(left))} this selection "
+                          f"(--include/--exclude) leaves out ({', '.join(left[:3])}"
+                          f"{', ...' if len(left) > 3 else ''}); auditing the selection into it "
+                          f"would retire their rows of runs.db and their records as gone: give "
+                          f"the selection its own --output, audit the whole campaign, or pass "
+                          f"--overwrite to narrow this audit to the selection")
 
 
 def _why_empty(roots, include, exclude, skip) -> str:

@@ -752,3 +752,29 @@ def test_failed_and_skipped_runs_are_rows_of_every_table(tmp_path):
     assert csv_rows == db_rows == dict(zip(table["run"], table["verdict"])) == {
         "camp/failed": "failed", "camp/molecule/gpaw_h2.txt": "skipped",
         "camp/ok": csv_rows["camp/ok"]}
+
+
+def test_a_selection_is_not_audited_into_a_folder_whose_audit_holds_runs_it_leaves_out(tmp_path):
+    """`--include` into the folder of a whole-campaign audit had retired every other run's row of
+    runs.db and record as gone (exit 0): refused, the rows and records untouched; the same
+    selection again, its own folder, or --overwrite are fine."""
+    camp = tmp_path / "camp"
+    for name in ("bulk_tetragonal_to_cubic", "layer_oblique_to_hex", "relax_atoms_to_sites"):
+        shutil.copytree(QE / name, camp / name)
+    out = tmp_path / "out"
+    audit([camp], out, report=False, progress="off", workers=1)
+    rows = {r.run_id: r.id for r in ase.db.connect(out / "runs.db").select()}
+    assert len(rows) == 3
+    with pytest.raises(OutputError, match=r"its last audit holds 2 runs this selection "
+                                          r"\(--include/--exclude\) leaves out"):
+        audit([camp], out, include=["bulk*"], report=False, progress="off", workers=1)
+    assert {r.run_id: r.id for r in ase.db.connect(out / "runs.db").select()} == rows
+    assert len(list((out / "records").glob("*.json"))) == 3
+    assert not (out / "records" / "stale").exists()
+    audit([camp], out, exclude=["nothing*"], report=False, progress="off", workers=1)  # keeps all
+    sel = tmp_path / "sel"
+    audit([camp], sel, include=["bulk*"], report=False, progress="off", workers=1)
+    audit([camp], sel, include=["bulk*"], report=False, progress="off", workers=1)     # again
+    s = audit([camp], out, include=["bulk*"], report=False, progress="off", workers=1,
+              overwrite=True)
+    assert s["runs"] == 1 and len(ase.db.connect(out / "runs.db")) == 1
