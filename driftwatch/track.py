@@ -196,7 +196,9 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
             hi = bisect(lo, hi, s, final)
         hi = _went_and_came_back(frames, geo, final, hi, last, seeds,
                                  lambda k: key(group(k, s)) != key(final),
-                                 lambda lo, hi: bisect(lo, hi, s, final))
+                                 lambda lo, hi: bisect(lo, hi, s, final),
+                                 max(RECHECKS, RECHECK_COST // max(
+                                     run.natoms * int(final["operations"] or 1), 1)))
         k = last - 1                    # live: the persistence window, frame by frame
         while persist is not None and k > hi and run.steps[last] - run.steps[k] + 1 <= persist:
             if key(group(k, s)) != key(final):
@@ -214,23 +216,29 @@ def _group_entries(run: Run, geo, cfg: dict, frames: list[dict], seeds: list[int
 
 RECHECKS = 8
 """The most frames after a located group change that :func:`_went_and_came_back` asks spglib about,
-per symprec searched."""
+per symprec searched, unless they are cheap (:data:`RECHECK_COST`)."""
+RECHECK_COST = 1000
+"""Frames whose spglib call is cheap are asked up to this many atoms x final group's operations
+(in the cell) x frames: spglib's cost grows with both (a two-atom P-1 cell: 250 frames; one atom
+of Fm-3m: 20; a 48-atom cell: 8, :data:`RECHECKS`). Counted, not timed: records do not depend on
+the machine."""
 
 
-def _went_and_came_back(frames, geo, final: dict, hi: int, last: int, seeds, other, bisect) -> int:
+def _went_and_came_back(frames, geo, final: dict, hi: int, last: int, seeds, other, bisect,
+                        most: int = RECHECKS) -> int:
     """``hi``, the first frame from which the final group holds, moved later where the group left
     and came back between two checked frames: spglib is asked on the frames after ``hi`` where the
     lattice moved away from the final group's Bravais type again (its deformation more than 10 %
-    above the one at ``hi``), or on all of them when they are :data:`RECHECKS` or fewer (at most
-    that many in all); one that has another group (``other(k)``) is bisected to the next checked
-    frame (``bisect(k, next)``). Beyond that, a group that leaves while the lattice does not move
-    is still not seen (the record's ``checked_after`` says so)."""
+    above the one at ``hi``), or on all of them when they are ``most`` or fewer (at most that many
+    in all); one that has another group (``other(k)``) is bisected to the next checked frame
+    (``bisect(k, next)``). Beyond that, a group that leaves while the lattice does not move is
+    still not seen (the record's ``checked_after`` says so)."""
     t = rules.bravais_of_group(final["group"], final["symbol"], geo.dimension)
     dfm = [float((f.get("deformation") or {}).get(t, 0.0)) for f in frames] if t else None
     seeds = set(seeds)
-    few = sum(j not in seeds for j in range(hi + 1, last)) <= RECHECKS
+    few = sum(j not in seeds for j in range(hi + 1, last)) <= most
     k, asked = hi + 1, 0
-    while k < last and asked < RECHECKS:
+    while k < last and asked < most:
         if k not in seeds and (few or (dfm is not None and dfm[k] > 1.1 * dfm[hi])):
             asked += 1
             if other(k):

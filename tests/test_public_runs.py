@@ -1986,14 +1986,16 @@ def test_outputs_of_codes_with_no_reader_are_listed_as_skipped_not_dropped(tmp_p
     assert one.returncode == 1 and one.stderr.count("\n") == 1 and "an output of CP2K" in one.stderr
 
 
-def test_the_step_of_a_group_change_says_when_later_steps_were_not_checked():
+def test_the_step_of_a_group_change_says_when_later_steps_were_not_checked(monkeypatch):
     """QE's test-suite vc-relax1 (pw.x 7.2): spglib at 1e-3 Å (called directly on every frame)
     gives P-1 from step 4 to 12, C2/m at step 13 and P-1 again from step 14. The default analysis
     asks spglib at some steps and locates the change between neighbouring checked steps (3 and 4);
-    it did not check step 13, so its "from step 4" must say not every later step was checked;
-    asked on every frame, the final P-1 holds from step 14, with no such words."""
+    on a two-atom P-1 cell it then asks every later frame (cheap: RECHECK_COST), finds step 13
+    and dates the change from step 14, as with every frame asked. Where fewer frames may be asked
+    (a larger cell; here the budget narrowed to 8 frames), step 13 is not checked and "from step
+    4" says not every later step was checked."""
     import spglib
-    from driftwatch import analyze, config
+    from driftwatch import analyze, config, track
     folder = PUB / "qe_testsuite_vc_relax1"
     run = read_run(folder)
     direct = []
@@ -2002,11 +2004,14 @@ def test_the_step_of_a_group_change_says_when_later_steps_were_not_checked():
                                          symprec=1e-3)
         direct.append(ds.number)
     assert direct[3:15] == [12] + [2] * 9 + [12, 2] and set(direct[14:]) == {2}
-    sv = analyze(folder)["summary"]["verdict"]["structure"]
+    for rec in (analyze(folder), analyze(folder, config.load(overrides={
+            "selection.all_frames": True}))):
+        sv = rec["summary"]["verdict"]["structure"]
+        assert (sv["from_step"], sv["checked_after"]) == (14, True)
+        assert "from step 14;" in rec["summary"]["verdict"]["text"] + ";"
+    monkeypatch.setattr(track, "RECHECK_COST", 32)     # 8 frames of two atoms, 2 operations
+    rec = analyze(folder)
+    sv = rec["summary"]["verdict"]["structure"]
     assert (sv["from_step"], sv["exact"], sv["checked_after"]) == (4, True, False)
-    text = analyze(folder)["summary"]["verdict"]["text"]
-    assert "P-1 (2) at symprec 0.001 Å from step 4 (not every later step checked)" in text
-    every = analyze(folder, config.load(overrides={"selection.all_frames": True}))
-    sv = every["summary"]["verdict"]["structure"]
-    assert (sv["from_step"], sv["checked_after"]) == (14, True)
-    assert "from step 14;" in every["summary"]["verdict"]["text"] + ";"
+    assert "P-1 (2) at symprec 0.001 Å from step 4 (not every later step checked)" in \
+        rec["summary"]["verdict"]["text"]
