@@ -12,7 +12,7 @@ import spglib
 from ase.io import read
 
 import driftwatch
-from driftwatch import config, records, rules
+from driftwatch import config, records, rules, track
 
 QE = Path(__file__).parent / "data" / "qe"
 
@@ -235,7 +235,10 @@ def test_spglib_is_asked_only_what_the_answer_reads(path):
     assert st["from_frame"] == changes[0] and st["exact"] is True
     assert (st["initial"]["group"], st["initial"]["operations"]) == series[0]
     assert (st["final"]["group"], st["final"]["operations"]) == series[-1]
-    assert rec["timing"]["group_frames"] < n      # not every frame was asked
+    # not every frame was asked, unless every one after the change is cheap (track.RECHECK_COST:
+    # B03 is one atom of P-1, all asked)
+    cheap = track.RECHECK_COST // (len(run[0]) * st["final"]["operations"]) >= n
+    assert rec["timing"]["group_frames"] < n or cheap
 
 
 def test_a_record_does_not_depend_on_what_ran_before_it_in_the_process():
