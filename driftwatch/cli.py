@@ -397,10 +397,11 @@ def _cmd_tolerance(args) -> int:
             print(f"breakpoint ({b['kind']}): {said(b, 'from')} -> {said(b, 'to')} between "
                   f"{b['low']:.3g} and {b['high']:.3g} Å")
     if spec["breakpoints"]:
-        print(f"(breakpoints are searched between grid points whose verdicts differ, and around a "
-              f"flicker in steps of a factor {spec['precision'] ** SWEEP_STEP:.4g}; a change that "
-              f"returns "
-              f"between two grid points of one verdict elsewhere is not seen)")
+        print(f"(breakpoints are searched between grid points whose verdicts differ, and in steps "
+              f"of a factor {spec['precision'] ** SWEEP_STEP:.4g} around a flicker the probes "
+              f"detect; a window of another verdict that no probe meets, inside a range or "
+              f"between two grid points of one verdict, is not seen: a range is spglib's verdict "
+              f"at the symprecs asked)")
     for d in spec["displacement"].values():
         if "rms" not in d:
             print(f"to group {d['group']} ({d.get('operations')} operations, symprec "
