@@ -439,3 +439,31 @@ def test_a_hybrid_run_cut_at_exx_maxstep_is_unfinished_and_its_energy_is_the_dou
     first = ase.io.read(gzip.open(MORE / "qe_ts_exx_energy" / "pw.out.gz", "rt"),
                         format="espresso-out").get_potential_energy()
     assert first == pytest.approx(bangs[0], abs=1e-6) and abs(first - final) > 0.5   # ASE's
+
+
+# ---------------------------------------------------------------- janus-core's ASE outputs (extxyz)
+def test_extended_xyz_says_what_its_frames_are_as_a_trajectory_file_does():
+    """What the frames alone say is read the same from extended XYZ as from an ASE trajectory
+    (they had been relaxations in extended XYZ only), on stfc/janus-core's genuine files:
+    - the first 12 frames of its MACE-MP molecular dynamics (time_fs 0, 5, 10, ...), whose
+      momenta columns change from frame to frame (ASE's reader): molecular dynamics;
+    - its LiFePO4 band of 7 images, named by system_name, whose end points carry no energy and
+      whose 5 images between do (ASE's reader): a band of images;
+    - its one-frame NaCl result named by system_name: a single structure."""
+    md = MORE / "janus_md_head" / "precomputed_NaCl-traj.first12.xyz.gz"
+    frames = ase.io.read(gzip.open(md, "rt"), ":")
+    assert [a.info["time_fs"] for a in frames[:3]] == [0.0, 5.0, 10.0]
+    assert np.any(frames[0].get_momenta() != frames[1].get_momenta())             # ASE's
+    run = read_run(md)
+    assert len(run) == 12 and run.not_relaxation.startswith("molecular dynamics")
+    band = MORE / "janus_neb_band" / "LiFePO4-neb-band.xyz.gz"
+    images = ase.io.read(gzip.open(band, "rt"), ":")
+    energies = [a.calc.results.get("energy") if a.calc else None for a in images]
+    assert len(images) == 7 and energies[0] is None is energies[-1]
+    assert None not in energies[1:-1] and images[0].info["system_name"] == "LiFePO4_start"
+    run = read_run(band)
+    assert len(run) == 7 and run.not_relaxation.startswith("a band of images")
+    one = MORE / "janus_single_result" / "NaCl-results.extxyz"
+    assert [a.info["system_name"] for a in ase.io.read(one, ":")] == ["NaCl"]
+    run = read_run(one)
+    assert len(run) == 1 and run.not_relaxation.startswith("a single structure")

@@ -152,24 +152,13 @@ def read_traj(path, ctx: ReadContext):
             ctx.settings.update({"code": "ase", "dynamics": str(desc.get("md-type") or "?")})
         n = len(traj)
         if name is None:
-            first, energies = None, []
+            said = _FramesSay(path, ctx, described=bool(desc))
             for i in range(n):
                 atoms = traj[i]
-                if i == 1 and not {"optimizer", "dynamics"} & set(ctx.settings) and \
-                        _moving(first, atoms):        # no description says what wrote it
-                    ctx.settings.update({"code": "ase", "dynamics_seen": _MOMENTA})
-                if i == 0:
-                    first = atoms
-                    note_fix_symmetry(atoms, ctx.settings, ctx.warn)
                 fr = frame_from_atoms(atoms, i)
-                energies.append(fr.energy)
+                said.see(atoms, fr)
                 yield fr
-            if not desc and len(energies) >= 3 and energies[0] is None and \
-                    energies[-1] is None and None not in energies[1:-1]:
-                ctx.settings["band_path"] = ("its end points carry no energy, the images between "
-                                             "them do: a path of images written whole")
-            if n == 1 and not desc:           # no optimiser wrote it: nothing says it relaxed
-                ctx.settings["single_structure"] = f"{os.path.basename(path)}, one frame"
+            said.end()
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
@@ -191,6 +180,37 @@ def _moving(a, b) -> bool:
     pa, pb = a.arrays.get("momenta"), b.arrays.get("momenta")
     return pa is not None and pb is not None and pa.shape == pb.shape and \
         bool(np.any(pa != pb))
+
+
+class _FramesSay:
+    """What the frames of a run read through ASE say it is, where nothing else does (no trajectory
+    description of the optimiser or dynamics that wrote it; an extended XYZ file): molecular
+    dynamics when its first two frames carry atomic momenta that differ; a path of images written
+    whole when its end points carry no energy and every image between them does; a single
+    structure when it has one frame. Also notes ASE's FixSymmetry on its first frame."""
+
+    def __init__(self, path, ctx: ReadContext, described: bool = False):
+        self.name, self.ctx, self.described = os.path.basename(path), ctx, described
+        self.first, self.energies = None, []
+
+    def see(self, atoms, frame) -> None:
+        if self.first is None:
+            self.first = atoms
+            note_fix_symmetry(atoms, self.ctx.settings, self.ctx.warn)
+        elif len(self.energies) == 1 and not {"optimizer", "dynamics"} & set(self.ctx.settings) \
+                and _moving(self.first, atoms):
+            self.ctx.settings.update({"code": "ase", "dynamics_seen": _MOMENTA})
+        self.energies.append(frame.energy)
+
+    def end(self) -> None:
+        e = self.energies
+        if self.described:
+            return
+        if len(e) >= 3 and e[0] is None and e[-1] is None and None not in e[1:-1]:
+            self.ctx.settings["band_path"] = ("its end points carry no energy, the images between "
+                                              "them do: a path of images written whole")
+        if len(e) == 1:                     # no optimiser wrote it: nothing says it relaxed
+            self.ctx.settings["single_structure"] = f"{self.name}, one frame"
 
 
 def read_extxyz(path, ctx: ReadContext):
@@ -222,18 +242,17 @@ def read_extxyz(path, ctx: ReadContext):
 
     # batch.extxyz_frames yields (n, comment, line number, lines) per complete frame, then
     # (None, frames read, "frame" | "line", None) when the file ends abnormally
+    said = _FramesSay(path, ctx)
     if chosen is None:                       # the whole file is one run: stream it
-        n = -1
         for n, a, b, block in batch.extxyz_frames(path):
             if n is None:
                 truncated(a, b)
                 return
             atoms = parse(block, b, n == 0)
-            if n == 0:
-                note_fix_symmetry(atoms, ctx.settings, ctx.warn)
-            yield frame_from_atoms(atoms, _step(atoms, n))
-        if n == 0:                           # one structure: nothing says it relaxed
-            ctx.settings["single_structure"] = f"{os.path.basename(path)}, one frame"
+            fr = frame_from_atoms(atoms, _step(atoms, n))
+            said.see(atoms, fr)
+            yield fr
+        said.end()
         return
     wanted = {m.pos: k for k, m in enumerate(chosen)}
     got: dict = {}
@@ -253,9 +272,11 @@ def read_extxyz(path, ctx: ReadContext):
                 got[wanted[n]] = parse(block, b, not got)
     for k, m in enumerate(chosen):
         if k in got:
-            if k == min(got):
-                note_fix_symmetry(got[k], ctx.settings, ctx.warn)
-            yield frame_from_atoms(got[k], _member_step(m, k, kind))
+            fr = frame_from_atoms(got[k], _member_step(m, k, kind))
+            said.see(got[k], fr)
+            yield fr
+    if kind != "end-points" and not index.cut:
+        said.end()
 
 
 def _member_step(m, k: int, kind: str) -> int:
@@ -315,17 +336,23 @@ def read_db(path, ctx: ReadContext):
         path, _, selection = path.rpartition("@")
     index = batch.index_db(path, ctx.structure_keys, selection)
     chosen, kind = _chosen(index, name, ctx)
+    said = _FramesSay(path, ctx)
     with batch.connect(path) as db:
         if chosen is None:
             for i, row in enumerate(db.select(selection, sort="id")):
                 atoms = row.toatoms()
-                if i == 0:
-                    note_fix_symmetry(atoms, ctx.settings, ctx.warn)
                 step = row.get("step", i)
-                yield frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
-            return
-        for k, m in enumerate(chosen):
-            yield frame_from_atoms(db.get(id=m.pos).toatoms(), _member_step(m, k, kind))
+                fr = frame_from_atoms(atoms, int(step) if isinstance(step, (int, float)) else i)
+                said.see(atoms, fr)
+                yield fr
+        else:
+            for k, m in enumerate(chosen):
+                atoms = db.get(id=m.pos).toatoms()
+                fr = frame_from_atoms(atoms, _member_step(m, k, kind))
+                said.see(atoms, fr)
+                yield fr
+    if kind != "end-points":
+        said.end()
 
 
 def _note_xyz_rounding(block, ctx: ReadContext) -> None:
