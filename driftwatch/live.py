@@ -966,10 +966,10 @@ def _print_steps(say, rec: dict, start: int, new: list[dict], cfg) -> None:
         if i in by_frame:
             line += "  new: " + " ".join(_flag_text(f) for f in by_frame[i])
         say(line)
-        for f in by_frame.get(i, ()):
-            say(f"  flag {f['code']} (step {f['step']}): {f['message']}")
-    if start > last and new:           # flags that appeared without a new step (end of run)
-        for f in new:
+    # each flag in full after the newest step read: its words judge the run as read so far ("ends
+    # without reaching it ... -> 0.0029 Å"), which the line of the step it dates from does not show
+    for i in sorted(by_frame):
+        for f in by_frame[i]:
             say(f"  flag {f['code']} (step {f['step']}): {f['message']}")
 
 
