@@ -404,6 +404,14 @@ def test_structure_keys_are_configurable_and_bad_batches_are_one_line_errors(tmp
     dup.write_text("".join(lines[:k] + [lines[k].replace("step=3", "step=2")] + lines[k + 1:]))
     with pytest.raises(InputError, match=r"two frames of step 2 \(frames 2 and 3\)"):
         read_run(f"{dup}::Cu-bct-07")
+    # the whole file named by a key that is not one of inputs.structure_keys: the error says
+    # which setting reads it as its relaxations
+    other = tmp_path / "other.extxyz"
+    other.write_text(text.replace("structure_id=", "label="))
+    with pytest.raises(InputError, match=r"add it to the config's inputs.structure_keys"):
+        read_run(other)
+    with pytest.raises(InputError, match=r"holds \d+ structures named by 'label'"):
+        read_run(other, structure_keys=["label"])
     # a file naming no structures is one run, as before; asking it for a name says so
     with pytest.raises(InputError, match="names no structures"):
         read_run(f"{REPO / 'example_runs' / 'B05_emt_bfgs.extxyz'}::x")

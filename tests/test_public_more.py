@@ -467,3 +467,24 @@ def test_extended_xyz_says_what_its_frames_are_as_a_trajectory_file_does():
     assert [a.info["system_name"] for a in ase.io.read(one, ":")] == ["NaCl"]
     run = read_run(one)
     assert len(run) == 1 and run.not_relaxation.startswith("a single structure")
+
+
+def test_a_file_named_traj_that_is_no_ulm_trajectory_says_what_it_is(tmp_path):
+    """matgl's MoS_relax.traj is a Python pickle (its first byte 0x80, pickle's protocol mark;
+    common practice), matscipy's aC.traj ASE's old pickle trajectory (it begins
+    'PickleTrajectory'), and a gzipped trajectory begins with gzip's magic: each is said, where
+    ASE's 'This is not an ULM formatted file' had named none."""
+    import gzip as _gzip
+    d = MORE / "not_ulm_traj"
+    assert (d / "MoS_relax.traj").read_bytes()[:1] == b"\x80"
+    assert (d / "aC.first256bytes.traj").read_bytes().startswith(b"PickleTrajectory")
+    with pytest.raises(InputError, match="a Python pickle"):
+        read_run(d / "MoS_relax.traj")
+    with pytest.raises(InputError, match="ASE's old pickle trajectory"):
+        read_run(d / "aC.first256bytes.traj")
+    traj = tmp_path / "x.traj"
+    ase.io.write(traj, ase.Atoms("Cu", cell=[2.5, 2.5, 2.5], pbc=True))
+    packed = tmp_path / "packed.traj"
+    packed.write_bytes(_gzip.compress(traj.read_bytes()))
+    with pytest.raises(InputError, match="gzip-compressed; ASE reads trajectories uncompressed"):
+        read_run(packed)

@@ -35,6 +35,17 @@ def _step(atoms, i):
     return i
 
 
+# what a file named .traj may be instead (its first bytes; common practice for the compressors)
+_NOT_ULM = (
+    (b"PickleTrajectory", "ASE's old pickle trajectory; read it with ASE and write it again as a "
+                          "trajectory to audit it"),
+    (b"\x1f\x8b", "gzip-compressed; ASE reads trajectories uncompressed: gunzip it"),
+    (b"BZh", "bzip2-compressed; ASE reads trajectories uncompressed: bunzip2 it"),
+    (b"\xfd7zXZ\x00", "xz-compressed; ASE reads trajectories uncompressed: unxz it"),
+    (b"\x80", "a Python pickle (another program's record of a run), not ASE's trajectory"),
+)
+
+
 def _check_ulm_header(path) -> None:
     """Refuse a ULM header whose item count or offset table lies beyond the file: ASE would
     allocate the (damaged) count first and exhaust memory."""
@@ -43,6 +54,9 @@ def _check_ulm_header(path) -> None:
     size = os.path.getsize(path)
     with open(path, "rb") as fh:
         head = fh.read(48)
+    for magic, what in _NOT_ULM:
+        if head.startswith(magic):
+            raise InputError(path, f"not an ASE trajectory of the current (ULM) format: {what}")
     if len(head) < 48 or head[:8] not in (b"- of Ulm", b"AFFormat"):
         return                               # ASE reports a cut or foreign header itself
     version, nitems, pos0 = (int(x) for x in np.frombuffer(head[24:48], "<i8"))

@@ -114,9 +114,12 @@ class Index:
             for m in chosen:
                 if m.step in seen:
                     what = f"structure {name!r}" if name is not None else "the file"
+                    hint = "" if name is not None else (
+                        f"; if a key of the {self.kind}s names their structure, add it to the "
+                        f"config's inputs.structure_keys (none of those keys is in the file)")
                     raise InputError(self.path, f"{what} has two {self.kind}s of step {m.step} "
                                                 f"({self.kind}s {seen[m.step]} and {m.pos}): two "
-                                                f"relaxations under one name?")
+                                                f"relaxations under one name?{hint}")
                 seen[m.step] = m.pos
             chosen = sorted(chosen, key=lambda m: m.step)
         return chosen, "trajectory"
