@@ -429,7 +429,7 @@ def test_a_hybrid_run_cut_at_exx_maxstep_is_unfinished_and_its_energy_is_the_dou
     assert "EXX self-consistency reached" not in text
     run = read_run(MORE / "qe_ts_exx_maxstep")
     assert run.unfinished == ("stopped without converging (pw.x: 'Calculation (EXX) stopped after "
-                              "iteration # 2')")
+                              "iteration #     2')")                   # quoted as pw.x prints it
     text = _pw_text("qe_ts_exx_energy")
     final = float(re.search(r"^!!\s+total energy\s+=\s+(\S+) Ry", text, re.M).group(1)) * Ry
     bangs = [float(v) * Ry for v in re.findall(r"^!\s+total energy\s+=\s+(\S+) Ry", text, re.M)]

@@ -547,7 +547,7 @@ def read_pw_out(path, ctx: ReadContext):
             elif line.lstrip().startswith(_ERROR):
                 error = _banner_said(line, fh)
             elif any(m in line for m in _STOPS):
-                halted = " ".join(line.split())
+                halted = line.strip()
                 stops.append(f"pw.x stopped early: '{halted}' (line {fh.lineno})")
             elif _ON_REQUEST in line:
                 on_request = True
