@@ -488,3 +488,25 @@ def test_a_file_named_traj_that_is_no_ulm_trajectory_says_what_it_is(tmp_path):
     packed.write_bytes(_gzip.compress(traj.read_bytes()))
     with pytest.raises(InputError, match="gzip-compressed; ASE reads trajectories uncompressed"):
         read_run(packed)
+
+
+def test_a_copy_named_like_an_output_with_an_underscore_is_said_not_read(tmp_path):
+    """doped's MgO antisite folder keeps an earlier segment of its resubmitted relaxation as
+    vasprun.xml_11_19_39on29_01_24 beside the final OUTCAR: its 26 steps end where the OUTCAR's
+    start (ASE reads both; fractional positions equal to 1e-5). Copies named 'vasprun.xml.<x>'
+    were said; this one, with an underscore, had been left out unsaid."""
+    import io
+    import lzma
+    d = MORE / "doped_resubmitted_segments"
+    seg = ase.io.read(io.BytesIO(lzma.decompress(
+        (d / "vasprun.xml_11_19_39on29_01_24.xz").read_bytes())), ":", format="vasp-xml")
+    outcar = tmp_path / "OUTCAR"
+    outcar.write_bytes(lzma.decompress((d / "OUTCAR.xz").read_bytes()))
+    out = ase.io.read(outcar, ":", format="vasp-out")
+    gap = seg[-1].get_scaled_positions() - out[0].get_scaled_positions()
+    assert len(seg) == 26 and np.abs(gap - np.round(gap)).max() < 1e-5          # ASE's
+    run = read_run(d)
+    assert len(run) == len(out) == 2
+    assert any("vasprun.xml_11_19_39on29_01_24.xz not read (other copies beside the run's "
+               "outputs, e.g. earlier segments of a resubmitted relaxation" in w
+               for w in run.warnings)

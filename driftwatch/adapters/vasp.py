@@ -1056,7 +1056,7 @@ def read_error_archive(path, ctx: ReadContext):
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
-_OTHER_COPIES = tuple(f"{k}." for k in _OUTPUT_KINDS)
+_OTHER_COPIES = tuple(f"{k}{sep}" for k in _OUTPUT_KINDS for sep in "._-")   # (vasprun.xml_<time>: a restart script's)
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
 # What a finished output ends with. VASP built with profiling prints a timing table of some
@@ -1355,7 +1355,9 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
               and not _STAGED.match(strip_compression(n))]
     if others:          # OUTCAR.converged, vasprun.xml.bak, ...: no stage names VASP or custodian use
         notes.append(f"{folder}: {', '.join(others[:6])}{', ...' if len(others) > 6 else ''} not "
-                     f"read (other copies beside the run's outputs; pass one to read it)")
+                     f"read (other copies beside the run's outputs, e.g. earlier segments of a "
+                     f"resubmitted relaxation; pass one to read it, or lay the segments out as "
+                     f"stage folders relax1/, relax2/, ... to read them as one run)")
     archived = _error_archives(folder, names)
     if len(stages) == 1 and stages[0][0] in ("", None):
         stages = [("", stages[0][1], stages[0][2])]
