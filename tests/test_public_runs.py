@@ -636,7 +636,6 @@ def test_a_training_set_category_is_refused_as_one_relaxation_with_what_would_sp
         assert "atoms count changes at step 1 (6 -> 8)" in msg and said in msg, msg
         assert "inputs.structure_keys" in msg and "@selection" not in msg and "\n" not in msg
         # the keys that could name the structures instead, counted in the file's comment lines
-        import re
         text = gzip.open(path, "rt").read()
         rundirs = set(re.findall(r" vasp_rundir=(\S+)", text))
         assert len(rundirs) == 39 and len(re.findall("Lattice=", text)) == 39
