@@ -416,14 +416,17 @@ CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "unfinished"
                "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
                "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
                "group_verdict", "group_symprec_A", "group_initial", "group_final",
-               "group_from_step", "atoms_group", "atoms_symprec_A", "atoms_start_rms_A",
+               "group_from_step", "group_later_steps_checked", "atoms_group", "atoms_symprec_A",
+               "atoms_start_rms_A",
                "atoms_end_rms_A", "flags", "recommended_symprec_A", "warnings", "error")
 """Columns of ``campaign.csv``; the same names (without the ``_A`` unit suffix) are the ase.db keys
 (:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed);
 ``not_relaxation`` says what the ionic steps are when they are no relaxation, ``unfinished`` why the
 run ended before the code finished it (cut short, or at its step limit; empty otherwise);
 ``atoms_*`` are the summary's ``atoms`` (the displacement of the first and final frames to the most
-symmetric group of the final structure, :func:`atoms_text`)."""
+symmetric group of the final structure, :func:`atoms_text`). ``group_later_steps_checked`` is False
+where spglib was not asked on every step after ``group_from_step`` (the verdict's "(not every later
+step checked)": the group may have left and come back there), empty for a kept group."""
 
 
 def verdict_fields(record: dict) -> dict:
@@ -446,6 +449,7 @@ def verdict_fields(record: dict) -> dict:
         "group_verdict": st.get("direction"), "group_symprec": st.get("symprec"),
         "group_initial": grp(a), "group_final": grp(b),
         "group_from_step": st.get("from_step"),
+        "group_later_steps_checked": st.get("checked_after"),
         "atoms_group": group_name(at["symbol"], at["group"], at["operations"])
         if at.get("operations") else "",
         "atoms_symprec": at.get("symprec"), "atoms_start_rms": at.get("start", {}).get("rms"),

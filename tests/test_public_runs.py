@@ -2014,3 +2014,10 @@ def test_the_step_of_a_group_change_says_when_later_steps_were_not_checked(monke
     assert (sv["from_step"], sv["exact"], sv["checked_after"]) == (4, True, False)
     assert "P-1 (2) at symprec 0.001 Å from step 4 (not every later step checked)" in \
         rec["summary"]["verdict"]["text"]
+    # campaign.csv and runs.db say it beside the step, as the text does
+    from driftwatch import records
+    row, kv = records.csv_row(rec, "vc-relax1"), records.db_key_values(rec, "vc-relax1")
+    assert (row["group_from_step"], row["group_later_steps_checked"]) == (4, False)
+    assert (kv["group_from_step"], kv["group_later_steps_checked"]) == (4, False)
+    monkeypatch.undo()
+    assert records.csv_row(analyze(folder), "x")["group_later_steps_checked"] is True
