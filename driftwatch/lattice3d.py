@@ -516,12 +516,24 @@ def _reduce_block(arr, first=0):
 
     Rounding: vectors are recomputed from the exact integer transform, so a
     computed dot product is off by at most ~eps |input row|^2 (a skewed input is
-    itself only that precise).  Decisions (Gauss rounding at |mu| = 1/2, Selling
-    step on v_i . v_j > 0) therefore use that noise floor as a tie margin, so
-    symmetric lattices (ties, zero conorms) cannot cycle between equivalent bases.
+    itself only that precise), plus the input's rounding carried by the transform:
+    ~eps |U| |input row| |b| for a transform of entries |U| (only large for a basis
+    far from reduced: rows of 10^3 |b| need |U| ~ 10^5).  Decisions (Gauss rounding
+    at |mu| = 1/2, Selling step on v_i . v_j > 0) use that noise floor as a tie
+    margin, so symmetric lattices (ties, zero conorms) cannot cycle between
+    equivalent bases.
     """
     n = arr.shape[0]
-    noise = 16 * _EPS * np.einsum("nij,nij->ni", arr, arr).max(axis=1)  # Å^2, per frame
+    rows2 = np.einsum("nij,nij->ni", arr, arr).max(axis=1)
+    noise = 16 * _EPS * rows2                                            # Å^2, per frame
+    rows = np.sqrt(rows2)
+
+    def carried(t, longest2, at):
+        """Å^2: the input's rounding carried by the integer transforms ``t`` (m, k, 3) to
+        vectors of frames ``at`` whose longest has squared length ``longest2``."""
+        return 16 * _EPS * np.abs(t).sum(axis=2).max(axis=1) * rows[at] * np.sqrt(longest2)
+    # (a transform large enough to matter takes many passes to build: the first few, all a
+    # typical cell needs, skip the bound)
     U = np.repeat(_EYE3[None], n, axis=0)  # exact integers in float
     B = arr.copy()
     # a pass changes a frame only if some pair's |mu| exceeds 1/2 (the first pair of a pass sees
@@ -529,10 +541,12 @@ def _reduce_block(arr, first=0):
     g = _pair_dots(arr, _GAUSS_I, _GAUSS_J)                  # (n, 12): b_i . b_j, then b_j . b_j
     idx = np.flatnonzero((np.abs(g[:, :6] / g[:, 6:]) > 0.5 + 1e-9 + noise[:, None] / g[:, 6:])
                          .any(axis=1))
-    for _ in range(_MAXIT):  # pairwise Gauss passes with rounding
+    for it in range(_MAXIT):  # pairwise Gauss passes with rounding
         if not len(idx):
             break
-        b, u, nz_ = B[idx], U[idx], noise[idx]
+        b, u = B[idx], U[idx]
+        nz_ = noise[idx] if it < 8 else \
+            noise[idx] + carried(u, np.einsum("mki,mki->mk", b, b).max(axis=1), idx)
         changed = np.zeros(len(idx), bool)
         for i, j in _GAUSS_PAIRS:
             bij, bj2 = _pair_dots(b, [i, j], [j, j]).T
@@ -563,12 +577,17 @@ def _reduce_block(arr, first=0):
     C = np.concatenate([-U.sum(axis=1, keepdims=True), U], axis=1)  # (n, 4, 3)
     V = C @ arr
     idx = np.arange(n)
+    wide = np.abs(C).sum(axis=2).max(axis=1) > 64        # transforms whose rounding may matter
     for _ in range(_MAXIT):  # Selling steps
         v = V[idx]
         d = _dots(v)
         scale = np.einsum("nki,nki->nk", v, v).max(axis=1)
         k = d.argmax(axis=1)
-        pos = d[np.arange(len(idx)), k] > np.maximum(_SELLING_TOL * scale, noise[idx])
+        margin = noise[idx].copy()
+        w = wide[idx]
+        if w.any():
+            margin[w] += carried(C[idx[w]], scale[w], idx[w])
+        pos = d[np.arange(len(idx)), k] > np.maximum(_SELLING_TOL * scale, margin)
         if not pos.any():
             break
         idx, k = idx[pos], k[pos]

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import spglib
-from hypothesis import given, settings, strategies as st, HealthCheck
+from hypothesis import example, given, settings, strategies as st, HealthCheck
 
 import brute3d as B
 from driftwatch import lattice3d as L
@@ -436,11 +436,16 @@ def test_eps_scaling(kind, perturb, target, power):
 @settings(max_examples=40, deadline=None, database=None,
           suppress_health_check=[HealthCheck.too_slow])
 @given(st.integers(0, 10**6), st.sampled_from(ALL14), st.booleans())
+@example(39146, "tI", False)     # the reduction had cycled between two bases at a tie (|mu| = 1/2)
+@example(1761, "oI", True)       # the cI deformation's rounding at 1.2x the old tol_p / ell
 def test_invariance_rotation_reflection_unimodular(seed, kind, reflect):
     # common practice (math.md 3.1): invariants unchanged by rotation, mirror and a
     # unimodular change of basis.  Large entries (>= 1000): conorms and deformation
     # (linear in the rounding of the input, ~1e-16 |U|^2 |b|^2); moderate entries
     # (>= 30): root-space values, where a zero conorm's rounding is square-rooted.
+    # The deformation reads the conventional cells of the centred types, whose vectors are sums
+    # of up to three reduced ones: its rounding is up to ~4x tol_p / ell (the worst of 1.4e5
+    # random cases here), so it is allowed 16x.
     rng = np.random.default_rng(seed)
     basis = B.random_lattice(kind, rng)
     scale = np.abs(np.linalg.det(basis)) ** (1 / 3)
@@ -453,7 +458,7 @@ def test_invariance_rotation_reflection_unimodular(seed, kind, reflect):
     f0, f1 = L.deformation(basis), L.deformation(other)
     ell = np.sqrt(L.conorms(basis).sum() / 3)
     for t in L.TYPES:
-        assert f1[t] == pytest.approx(f0[t], abs=tol_p / ell)
+        assert f1[t] == pytest.approx(f0[t], abs=16 * tol_p / ell)
     u = B.random_unimodular(rng, target=30)
     mod = u @ basis @ B.random_rotation(rng, reflect).T
     tol = 1e-7 * np.abs(u).max() * scale  # sqrt(1e-16 |U|^2 |b|^2), math.md 2.6
