@@ -212,3 +212,32 @@ def test_an_odd_number_of_handedness_reversals_is_not_said_to_come_back():
     assert flag["value"] == 3 and "came back" not in flag["message"]
     assert "its last stretch more than twice min_chiral from a mirror lattice has the opposite " \
            "handedness to its first" in flag["message"]
+
+
+def test_an_input_of_another_calculation_beside_a_pw_x_output_is_not_its_own(tmp_path):
+    """Real pw.x runs of one Si2 cell: a BFGS relax, an md and an scf output, each beside another
+    run's pw.in (its own input kept as its_own.in.txt). The output's own lines say what it is
+    ('BFGS Geometry Optimization', 'Molecular Dynamics Calculation', one SCF and JOB DONE), so the
+    foreign input is said and not used, and the run reads as the output alone reads: the md had
+    been a relaxation 'stopped at its step limit' (gated by --reject-on), the relax molecular
+    dynamics, the scf a one-frame relaxation."""
+    cases = {"si2_relax_beside_md_input": ("BFGS Geometry Optimization", "md", None),
+             "si2_md_beside_relax_input": ("Molecular Dynamics Calculation", "relax",
+                                           "molecular dynamics"),
+             "si2_scf_beside_relax_input": ("JOB DONE", "relax", "a single-point calculation")}
+    for name, (said, foreign, kind) in cases.items():
+        d = TRIALS / name
+        assert said in _text(d) and f"calculation = '{foreign}'" in (d / "pw.in").read_text()
+        own = (d / "its_own.in.txt").read_text()
+        assert f"calculation = '{foreign}'" not in own
+        run = read_run(d)
+        alone = tmp_path / name
+        alone.mkdir()
+        shutil.copy(d / "pw.out.gz", alone / "pw.out.gz")
+        ref = read_run(alone)
+        assert len(run) == len(ref) == len(ase.io.read(d / "pw.out.gz", ":", format="espresso-out"))
+        assert (run.not_relaxation or "").startswith(kind or "") and \
+            bool(run.not_relaxation) == bool(ref.not_relaxation) == bool(kind), name
+        assert run.unfinished == ref.unfinished is None, name
+        assert any(f"the pw.x input pw.in beside it is not this output's (calculation = "
+                   f"'{foreign}'" in w for w in run.warnings), name

@@ -330,6 +330,7 @@ def read_pw_out(path, ctx: ReadContext):
     taken = given = _settings_from_input(path, ctx)
     shown = None        # the calculation pw.x's own dynamics lines show (_DYNAMICS), or None
     cell_moved = False  # pw.x printed a new unit-cell volume or variable-cell dynamics
+    bfgs = False        # pw.x printed its BFGS geometry optimisation
     step = 0            # completed steps emitted
     nconf = 0           # configurations seen (the step index of a frame)
     last_index = None
@@ -576,6 +577,7 @@ def read_pw_out(path, ctx: ReadContext):
                     done = True
                 elif "BFGS Geometry Optimization" in line or "number of scf cycles" in line:
                     ionic = True
+                    bfgs = bfgs or "BFGS Geometry Optimization" in line
                 elif any(m in line for m in _LIMITS):
                     at_limit = line.strip()
                 elif "bfgs converged" in line:
@@ -597,7 +599,9 @@ def read_pw_out(path, ctx: ReadContext):
                                          "Calculation': calculation = 'nscf' or 'bands'): no SCF "
                                          "energy, no ionic step",
                                    "its structure is the one of the run it follows: audit that")
-        contradiction = _input_contradicted(ctx.settings, given, ionic, cell_moved)
+        contradiction = _input_contradicted(ctx.settings, given, ionic, cell_moved,
+                                            "bfgs" if bfgs else shown,
+                                            done and not (stops or on_request or error), step)
         if contradiction:
             _undo_input(given, ctx, contradiction)
             if shown is not None:
@@ -769,17 +773,30 @@ def _check_input(taken, header, ctx: ReadContext) -> None:
         _undo_input(taken, ctx, "; ".join(wrong))
 
 
-def _input_contradicted(settings: dict, taken, ionic: bool, cell_moved: bool) -> str | None:
+def _input_contradicted(settings: dict, taken, ionic: bool, cell_moved: bool,
+                        how: str | None, clean: bool, steps: int) -> str | None:
     """Why the input's ``calculation`` cannot be this output's, or None: a single point whose
-    output shows ionic steps, or a fixed cell whose output shows the cell move (a workflow's next
-    step, an nscf after a vc-relax, left beside the output under the name it would take)."""
+    output shows ionic steps, or the reverse in an output that ended cleanly (``clean``: JOB DONE,
+    no stop line of pw.x's own, no error); a fixed cell whose output shows
+    the cell move, or the reverse; a relaxation whose output shows molecular dynamics, or the
+    reverse (``how``: "bfgs" when pw.x printed its BFGS optimisation, else the calculation its
+    dynamics lines show, :data:`_DYNAMICS`). Such an input is another run's: a workflow's next
+    step, an nscf after a vc-relax, left beside the output under the name it would take."""
     if taken is None or settings.get("settings_from") != taken[0]:
         return None                        # no input, or undone already
     calc = settings.get("calculation")
     if calc in ("scf", "nscf", "bands") and ionic:
         return f"calculation = '{calc}', the output shows ionic steps"
+    if calc in ("relax", "vc-relax", "md", "vc-md") and clean and not ionic:
+        return f"calculation = '{calc}', the output shows one SCF and no ionic step"
+    if calc == "vc-relax" and how == "bfgs" and not cell_moved and steps > 1:
+        return f"calculation = '{calc}', the output shows a fixed cell"
     if calc in ("relax", "md") and cell_moved:
         return f"calculation = '{calc}', the output shows the cell move"
+    if calc in ("relax", "vc-relax") and how in ("md", "vc-md"):
+        return f"calculation = '{calc}', the output shows molecular dynamics"
+    if calc in ("md", "vc-md") and how in ("bfgs", "vc-relax"):
+        return f"calculation = '{calc}', the output shows a geometry optimisation"
     return None
 
 
