@@ -383,10 +383,11 @@ def _cmd_tolerance(args) -> int:
                                    spec["operations"], spec["lattice"]):
         note = "  (below the file's printed precision)" if floor and x < floor else ""
         print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}{note}")
-    names = {g: group_name(sym, g) for g, sym in zip(spec["group"], spec["group_symbol"])}
-
     def said(b, end):                        # a group by its name, as every other output says it
-        return names.get(b[end], str(b[end])) if b["kind"] == "group" else str(b[end])
+        if b["kind"] != "group" or not b.get(f"{end}_symbol"):
+            return str(b[end])
+        same = b["from"] == b["to"]          # one type, other operation counts: say the counts
+        return group_name(b[f"{end}_symbol"], b[end], b.get(f"{end}_operations") if same else None)
     for b in shown_breakpoints(spec["breakpoints"], cfg["tolerance"]["min_plateau"],
                                (min(spec["symprec"]), max(spec["symprec"]))):
         if b["changes"] > 1:

@@ -1497,6 +1497,12 @@ def test_campaign_counts_a_change_of_operations_as_a_change(tmp_path):
     camp = json.loads((tmp_path / "out" / "campaign.json").read_text())
     first = camp["tolerance"]["changes"][0]
     assert (first["low"], first["high"], first["runs"]) == (1e-5, 1e-3, 1) and s["runs"] == 1
+    # `tolerance` names the change with its counts, as the run page does (it printed R-3m (166)
+    # -> R-3m (166))
+    tol = subprocess.run([sys.executable, "-m", "driftwatch", "tolerance",
+                          str(PUB / "qe_testsuite_vc_relax5")], capture_output=True, text=True,
+                         check=True).stdout
+    assert "breakpoint (group): R-3m (166, 12 operations) -> R-3m (166, 24 operations) " in tol
     # the report's index counts the same change (it had compared the group numbers only: 0)
     index = (tmp_path / "out" / "report" / "index.html").read_text(encoding="utf-8")
     table = index[index.index("Runs whose spglib group changes between common choices"):]

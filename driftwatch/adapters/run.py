@@ -140,7 +140,8 @@ class Run:
         formula = "".join(f"{chemical_symbols[z] if 0 < z < len(chemical_symbols) else z}"
                           f"{n if n > 1 else ''}" for z, n in sorted(counts.items()))
         extra = f", {len(self.stages)} stages" if self.stages else ""
-        extra += f", {len(self.warnings)} warnings" if self.warnings else ""
+        extra += (f", {len(self.warnings)} warning{'s' if len(self.warnings) != 1 else ''}"
+                  if self.warnings else "")
         return (f"<Run {self.source!r} ({self.format}): {len(self)} "
                 f"frame{'s' if len(self) != 1 else ''}, {formula}, "
                 f"steps {int(self.steps[0])}..{int(self.steps[-1])}{extra}>")
