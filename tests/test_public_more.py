@@ -368,7 +368,7 @@ def test_an_xdatcar_line_of_two_numbers_run_together_is_named():
                "numbers run together?)" in w for w in run.warnings)
 
 
-# ---------------------------------------------------------------- QE's own test-suite (seventeenth session)
+# ------------------------------------------------ QE's own test-suite (seventeenth session)
 def _pw_text(folder: str) -> str:
     return gzip.decompress((MORE / folder / "pw.out.gz").read_bytes()).decode()
 

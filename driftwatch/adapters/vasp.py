@@ -1056,7 +1056,8 @@ def read_error_archive(path, ctx: ReadContext):
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
-_OTHER_COPIES = tuple(f"{k}{sep}" for k in _OUTPUT_KINDS for sep in "._-")   # (vasprun.xml_<time>: a restart script's)
+# copies beside the outputs (OUTCAR.bak; vasprun.xml_<time>, a resubmitting job script's)
+_OTHER_COPIES = tuple(f"{k}{sep}" for k in _OUTPUT_KINDS for sep in "._-")
 _KIND_FORMAT = {"vasprun.xml": "vasp-xml", "OUTCAR": "vasp-out", "XDATCAR": "vasp-xdatcar",
                 "CONTCAR": "vasp-poscar", "POSCAR": "vasp-poscar"}
 # What a finished output ends with. VASP built with profiling prints a timing table of some

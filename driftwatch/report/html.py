@@ -609,9 +609,9 @@ def _tolerance_section(rec):
         out.append("<h3>Ranges of symprec with one spglib group (final structure)</h3><table><thead><tr>"
                    "<th>from</th><th>to</th><th>spglib's group</th><th>width (factor)</th><th></th>"
                    f"</tr></thead><tbody>{rows}</tbody></table>"
-                   "<p class=\"muted\">Each range is spglib's verdict at the symprecs asked (the grid, "
-                   "the brackets, the probes around a flicker): spglib can flicker in windows of a "
-                   "few per cent that no probe met.</p>")
+                   "<p class=\"muted\">Each range is spglib's verdict at the symprecs asked (the "
+                   "grid, the brackets, the probes around a flicker): spglib can flicker in "
+                   "windows of a few per cent that no probe met.</p>")
     if spec:
         common = _common(rec)
         cells = "".join(f"<th>{c:g} Å</th>" for c in common)
