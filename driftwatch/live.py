@@ -35,7 +35,7 @@ import numpy as np
 from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
-from .adapters.registry import run_kind
+from .adapters.registry import not_relaxation_note, run_kind
 from .adapters.run import (Frame, collect, folder_listing, frame_from_atoms, note_fix_symmetry,
                            position_precision)
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
@@ -446,16 +446,20 @@ class SymmetryWatch:
             self._update(newest=not self.lazy or self._needs_newest, stacklevel=3)
 
     def _note_dynamics(self, opt) -> None:
-        """An ASE molecular-dynamics object (its ``todict()`` says 'molecular-dynamics', as it
-        writes into a trajectory's description) makes the record no relaxation."""
+        """What ASE's dynamics object is, as it writes into a trajectory's description (its
+        ``todict()``) and an audit of that trajectory records it: an optimizer is named; molecular
+        dynamics makes the record no relaxation, said in a warning as the audit says it."""
         try:
             d = opt.todict()
         except Exception:  # noqa: BLE001 - an optimizer without todict: nothing to note
             return
-        if isinstance(d, dict) and d.get("type") == "molecular-dynamics":
-            t = self._tracker
+        t = self._tracker
+        if isinstance(d, dict) and d.get("type") == "optimization":
+            t.code_settings.update({"code": "ase", "optimizer": d.get("optimizer")})
+        elif isinstance(d, dict) and d.get("type") == "molecular-dynamics":
             t.code_settings.update({"code": "ase", "dynamics": str(d.get("md-type") or "?")})
             t.not_relaxation = run_kind(t.code_settings)
+            t.warnings.append(f"{t.source}: {not_relaxation_note(t.not_relaxation)}")
 
     @property
     def record(self) -> dict | None:

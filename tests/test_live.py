@@ -140,6 +140,37 @@ def test_watch_record_mode_matches_analyze_of_trajectory(tmp_path):
     assert watch.fired and watch.fired[0]["code"] == "lattice-gained"  # recorded, not acted on
 
 
+def test_watch_names_the_dynamics_as_an_audit_of_its_trajectory_does(tmp_path):
+    """The watch given its optimizer records what ASE's dynamics object is, as the trajectory's
+    description tells an audit of it: the optimizer's name; for molecular dynamics (a real EMT
+    VelocityVerlet run of an invented Cu cell) no relaxation, with the audit's warning."""
+    from ase import units
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.md.verlet import VelocityVerlet
+    atoms, opt, watch, traj = relax(tmp_path, {"mode": "record"}, pass_opt=True)
+    opt.run(fmax=1e-3, steps=30)
+    watch.finish()
+    assert watch.record["run"]["code_settings"] == analyze(traj, QUICK)["run"]["code_settings"] \
+        == {"code": "ase", "optimizer": "BFGS"}
+    cu = bulk("Cu", "fcc", a=3.6, cubic=True)
+    cu.rattle(0.05, seed=3)
+    cu.calc = EMT()
+    cu.set_momenta(np.random.default_rng(1).normal(0.0, 0.5, (len(cu), 3)))
+    md_traj = tmp_path / "md.traj"
+    md = VelocityVerlet(cu, 2 * units.fs, trajectory=str(md_traj), logfile=None)
+    md_watch = SymmetryWatch(cu, config=QUICK, optimizer=md)
+    md.attach(md_watch, interval=1)
+    md.run(6)
+    md_watch.finish()
+    live, audited = md_watch.record["run"], analyze(md_traj, QUICK)["run"]
+    assert live["code_settings"] == audited["code_settings"]
+    assert live["not_relaxation"] == audited["not_relaxation"] == \
+        "molecular dynamics (ASE's VelocityVerlet)"
+    said = [w.split(": ", 1)[1] for w in live["warnings"]]
+    assert said == [w.split(": ", 1)[1] for w in audited["warnings"]] and said
+
+
 def test_watch_warn_mode_warns_once_per_new_flag(tmp_path):
     atoms, opt, watch, traj = relax(tmp_path, {"mode": "warn",
                                                "stop_on": ("lattice-gained", "structure")})

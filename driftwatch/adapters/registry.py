@@ -823,10 +823,16 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
     # no relaxation when no stage is one (relaxations ending in a static stage are relaxations)
     what = ctx.not_relaxation = kinds[-1] if kinds and all(kinds) else None
     if what:
-        ctx.warn(f"not a relaxation: {what}; " + (
-            "one frame: no drift can be measured from it alone" if index == 1 else
-            "its verdict compares the first and last frames (how the structure moved), not where "
-            "a relaxation ended"))
+        ctx.warn(not_relaxation_note(what, index))
+
+
+def not_relaxation_note(what: str, frames: int | None = None) -> str:
+    """The warning of a run whose steps are no relaxation (``what`` they are), as every reader and
+    the live watch say it; ``frames``: how many it has, when known."""
+    return f"not a relaxation: {what}; " + (
+        "one frame: no drift can be measured from it alone" if frames == 1 else
+        "its verdict compares the first and last frames (how the structure moved), not where a "
+        "relaxation ended")
 
 
 def _same_atoms(a, b) -> bool:
