@@ -467,3 +467,35 @@ def test_a_log_between_two_minimisations_is_a_job_still_going_not_one_at_its_ste
     assert not any("step limit" in w or "not a relaxed one" in w for w in run.warnings)
     whole = read_run(d / "relax.lammpstrj.gz")                     # the whole log: converged
     assert whole.unfinished is None
+
+
+def test_a_box_flip_is_read_as_the_same_lattice_in_one_basis():
+    """LAMMPS writes a flipped box in another basis of the same lattice (xy -> xy + lx, from the
+    LAMMPS documentation's triclinic convention, from memory). Real runs: an hcp Mg2 relaxation
+    flipped by change_box between two minimizations, and its control with a no-op change_box,
+    identical for steps 0-20 (their logs). ASE reads the dump's cells as LAMMPS wrote them: the
+    flip is an integer change of basis (determinant 1) of the cell before it. The frames from the
+    flip are read in one basis (said in a warning), so the first frame measures against the final
+    group as the control's does (it had 'could not be measured': its operations read in the other
+    basis); a fixed box flipped twice is a fixed cell."""
+    flip, ctrl = LMP / "mg2_relax_flip_between_minimize", LMP / "mg2_relax_noflip_control"
+    raw = [a.cell[:] for a in ase.io.read(flip / "relax.lammpstrj", ":", format="lammps-dump-text")]
+    steps = _dump_timesteps((flip / "relax.lammpstrj").read_text())
+    k = steps.index(21)
+    M = np.rint(raw[k - 1] @ np.linalg.inv(raw[k]))
+    assert round(abs(np.linalg.det(M))) == 1 and not np.array_equal(M, np.eye(3))
+    assert np.abs(M @ raw[k] - raw[k - 1]).max() < 0.1 < np.abs(raw[k] - raw[k - 1]).max()
+    run = read_run(flip)
+    assert any("the cell's basis jumps without the lattice changing at step 21" in w
+               for w in run.warnings)
+    assert np.abs(run.cells[k] - run.cells[k - 1]).max() < 0.1
+    np.testing.assert_allclose(run.positions, np.array(
+        [a.positions for a in ase.io.read(flip / "relax.lammpstrj", ":",
+                                          format="lammps-dump-text")]), atol=1e-9)  # untouched
+    a_flip = analyze(run)["summary"]["atoms"]
+    a_ctrl = analyze(read_run(ctrl))["summary"]["atoms"]
+    assert "error" not in a_flip["start"] and (a_flip["group"], a_ctrl["group"]) == (194, 194)
+    assert a_flip["start"]["rms"] == pytest.approx(a_ctrl["start"]["rms"], abs=1e-4)
+    md = read_run(LMP / "si8_md_change_box_flips")
+    assert any("jumps without the lattice changing at steps" in w for w in md.warnings)
+    assert analyze(md)["run"]["fixed_cell"] is True

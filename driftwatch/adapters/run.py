@@ -592,9 +592,16 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         return np.concatenate([b.get(name) for b in blocks])
 
     cells = cat("cells")
+    steps = cat("steps")
+    flips = continuous_basis(cells, first.pbc)
+    if flips:
+        ctx.warn(f"the cell's basis jumps without the lattice changing at step"
+                 f"{'s' if len(flips) > 1 else ''} {', '.join(str(int(steps[k])) for k in flips[:5])}"
+                 f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an integer "
+                 f"change of basis): those frames are read in a basis continuous with the step "
+                 f"before, the atoms where the file puts them")
     if not stages and len(ctx.file_stages) > 1:
         stages, start = [], 0
-        steps = cat("steps")
         for name, count in ctx.file_stages:
             count = min(count, n - start)
             if count <= 0:
@@ -602,7 +609,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
             stages.append({"name": name, "source": str(path), "format": fmt, "first_frame": start,
                            "n_frames": count, "step_offset": int(steps[start]) if start else 0})
             start += count
-    arrays = dict(cells=cells, positions=cat("positions"), steps=cat("steps"),
+    arrays = dict(cells=cells, positions=cat("positions"), steps=steps,
                   energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
                   stress=cat("stress", have["stress"]))
     held = ctx.held
@@ -622,6 +629,40 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
         not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species,
     )
+
+
+def continuous_basis(cells: np.ndarray, pbc) -> list[int]:
+    """Make a trajectory's cell basis continuous, in place: where frame k's cell is another basis
+    of about the lattice of frame k-1 (an integer matrix M of determinant +-1, not the identity,
+    brings it within a quarter of the change it shows: a box flip, which LAMMPS makes when a tilt
+    passes half a box length), that frame and every later one are multiplied by M. Cartesian
+    positions are untouched, so the structure is the same. The comparisons of the first and last
+    frames read operations as integer matrices in the run's one basis (``symmetry.relation``).
+    Returns the frames where a jump was undone. Cells (n, 3, 3), Å; only fully periodic cells."""
+    if len(cells) < 2 or not np.all(pbc):
+        return []
+    prev, cur = cells[:-1], cells[1:]
+    jump = np.abs(cur - prev).max(axis=(1, 2))
+    size = np.sqrt(np.einsum("nij,nij->ni", prev, prev).min(axis=1))
+    cand = np.flatnonzero(jump > 0.25 * size)       # a flip moves a vector by a whole other one
+    if not len(cand):
+        return []
+    cand = set(cand.tolist())
+    flips, T = [], None
+    for k in range(min(cand) + 1, len(cells)):
+        if T is not None:                   # the flips before: every later frame in one basis
+            cells[k] = T @ cells[k]
+        if k - 1 not in cand:
+            continue
+        a, b = cells[k - 1], cells[k]
+        M = np.rint(a @ np.linalg.inv(b))
+        if np.array_equal(M, np.eye(3)) or round(abs(np.linalg.det(M))) != 1:
+            continue
+        if np.abs(M @ b - a).max() < 0.25 * np.abs(b - a).max():
+            cells[k] = M @ b
+            T = M if T is None else M @ T
+            flips.append(k)
+    return flips
 
 
 class _Block:
