@@ -499,3 +499,12 @@ def test_a_box_flip_is_read_as_the_same_lattice_in_one_basis():
     md = read_run(LMP / "si8_md_change_box_flips")
     assert any("jumps without the lattice changing at steps" in w for w in md.warnings)
     assert analyze(md)["run"]["fixed_cell"] is True
+
+
+def test_box_relax_couple_names_coupled_dimensions_not_relaxed_ones():
+    """`fix box/relax x 0.0 y 0.0 z 0.0 couple xy` (a real LAMMPS job): 'xy' after 'couple' names
+    dimensions coupled; the tilt xy is not relaxed (the log's xy/lx stays -0.5). The record had
+    said 'fix box/relax x y z xy'."""
+    d = LMP / "lj2_hcp_couple_xy"
+    assert "box/relax x 0.0 y 0.0 z 0.0 couple xy" in (d / "in.relax").read_text()
+    assert read_run(d).code_settings["box_relax"] == "'fix box/relax x y z'"

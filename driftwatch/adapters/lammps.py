@@ -227,8 +227,11 @@ def _read_commands(path: Path, dump_name: str, ctx: ReadContext) -> Job:
             elif cmd == "create_box" and args[0].isdigit():
                 job.ntypes = int(args[0])
             elif cmd == "fix" and len(args) >= 3 and args[2] == "box/relax":
-                mode = " ".join(a for a in args[3:] if a in ("iso", "aniso", "tri", "x", "y",
-                                                              "z", "xy", "xz", "yz"))
+                # its keywords (each then a pressure); the value of 'couple' (xy, xyz, ...) names
+                # dimensions coupled, not relaxed
+                mode = " ".join(a for k, a in enumerate(args[3:], 3)
+                                if a in ("iso", "aniso", "tri", "x", "y", "z", "xy", "xz", "yz")
+                                and args[k - 1] != "couple")
                 job.box_relax = f"'fix box/relax{' ' + mode if mode else ''}'"
             elif cmd == "minimize" and len(args) >= 4:
                 job.active.append(dump_on)
