@@ -562,7 +562,7 @@ def _read(files: list, job: Job, ctx: ReadContext, whole: bool = False):
                          f"(reset_timestep): later steps are counted on from {raw_step + offset}")
             step = raw_step + offset
             # ASE gives a dump with force columns energy 0.0 (a placeholder): the log's energy
-            # at this timestep (none where the log printed a timestep twice), else none
+            # at this timestep (none where the log printed a timestep twice with two energies)
             e = job.energies.get(raw_step)
             fr = dataclasses.replace(frame_from_atoms(atoms, step), energy=None if e is None else
                                      e * (len(atoms) if job.per_atom else 1))
