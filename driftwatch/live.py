@@ -780,9 +780,13 @@ class _Follower:
             changed = sig != last_sig
             if changed:
                 last_sig, last_growth = sig, now
-            if changed or self.tracker is None:
-                # the end marker is looked for *before* reading: every step written before it is read
-                end = _end_marker(self.source or self.path, self._format())
+            # the end marker is looked for every poll (a LAMMPS job's log may print it after the
+            # dump's last frame, the dump unchanged) and *before* reading: every step written
+            # before it is read
+            end = _end_marker(self.source or self.path, self._format())
+            if self.tracker is not None and not changed and not end and self._moved():
+                continue
+            if changed or self.tracker is None or end:
                 if not self.read(ended=bool(end)) and not waited:
                     self.say(f"driftwatch: waiting for a completed ionic step in {self.path} "
                              f"({self.error})")
@@ -808,6 +812,21 @@ class _Follower:
                 self.ended = f"idle: no growth for {idle:g} s"
                 return self.finish()
             time.sleep(poll)
+
+    def _moved(self) -> bool:
+        """The followed file is gone (a job script compressing its output at the end: ``pw.out``
+        -> ``pw.out.gz``): follow the compressed file beside it, said, and True; False otherwise
+        (also when nothing took its place: its end is then said by ``--idle``)."""
+        if self.path.is_dir() or self.path.exists():
+            return False
+        for ext in (".gz", ".xz", ".bz2"):
+            beside = self.path.with_name(self.path.name + ext)
+            if beside.is_file():
+                self.say(f"driftwatch: {self.path} was removed and {beside.name} written beside "
+                         f"it (compressed at the job's end?): following {beside}")
+                self.path = self.source = beside
+                return True
+        return False
 
     def _format(self) -> str | None:
         if self.tracker is not None:
@@ -919,9 +938,11 @@ class _Follower:
         final["live"] = self.live_section()
         if self.output is not None:
             records.write_json(final, self.output)
+        gone = not Path(self.path).exists()
         still = "" if self.ended.startswith("end marker") else (
-            f" (judged as a run still going: no end marker was seen; if the job has ended, "
-            f"`driftwatch inspect {self.path}` judges it finished)")
+            f" (judged as a run still going: no end marker was seen; "
+            + (f"{self.path} was removed" if gone else
+               f"if the job has ended, `driftwatch inspect {self.path}` judges it finished") + ")")
         why = final["run"].get("unfinished")
         self.say(f"driftwatch: {self.ended}; {final['run']['n_frames']} completed steps"
                  + (f" (unfinished: {why})" if why and self.ended.startswith("end marker")

@@ -966,3 +966,80 @@ def test_the_observer_refuses_an_unwritable_record_at_once_and_never_stops_a_rel
     said = [w for w in seen if "the relaxation goes on" in str(w.message)]
     assert len(said) == 1 and issubclass(said[0].category, RuntimeWarning)
     assert watch.record["run"]["n_frames"] == 6 and out.is_dir()
+
+
+def _write_later(delay, fn):
+    import threading
+    timer = threading.Timer(delay, fn)
+    timer.start()
+    return timer
+
+
+def test_follow_does_not_end_on_the_job_done_of_the_run_before_an_appended_restart(tmp_path):
+    """A real pw.x output with a restart appended to it (tests/data/qe/restart_appended, pw.x's
+    own 'JOB DONE.' then a second 'Program PWSCF ... starts'): followed while the restart has
+    written only its header, the follower had ended at once on the first run's JOB DONE, still in
+    the file's tail, and recorded 3 of its steps as the finished job."""
+    import gzip
+    text = gzip.decompress((Path(__file__).parent / "data" / "qe" / "restart_appended" /
+                            "pw.out.gz").read_bytes()).decode()
+    second = text.index("Program PWSCF", text.index("JOB DONE."))
+    cut = text.index("\n", second + 2000) + 1          # the restart's header, a few lines of it
+    assert "JOB DONE." in text[:cut][-8192:] and "!    total energy" not in text[second:cut]
+    out = tmp_path / "run" / "pw.out"
+    out.parent.mkdir()
+    out.write_text(text[:cut])
+    timer = _write_later(1.5, lambda: out.open("a").write(text[cut:]))
+    try:
+        rec = follow(out, stream=io.StringIO(), poll=0.05, idle=30)
+    finally:
+        timer.join()
+    assert rec["live"]["ended"] == "end marker: JOB DONE."
+    assert rec["run"]["n_frames"] == len(read_run(out)) == 24 and same(rec, analyze(out))
+
+
+def test_follow_goes_on_with_the_output_a_job_compresses_at_its_end(tmp_path):
+    """A job script that gzips pw.x's output when pw.x ends (pw.x ... > pw.out; gzip pw.out):
+    the followed file goes and pw.out.gz comes. The follower follows it, says so, and ends on its
+    JOB DONE with every step (it had waited out --idle, said the job 'may have been killed' and
+    recorded it cut short). A real pw.x output (tests/data/qe/bulk_tetragonal_to_cubic)."""
+    import gzip
+    text = (Path(__file__).parent / "data" / "qe" / "bulk_tetragonal_to_cubic" /
+            "pw.out").read_text()
+    cut = text.rindex("!    total energy")               # the last step not yet written
+    out = tmp_path / "run" / "pw.out"
+    out.parent.mkdir()
+    out.write_text(text[:cut])
+
+    def compress():
+        (out.parent / "pw.out.gz").write_bytes(gzip.compress(text.encode()))
+        out.unlink()
+    timer = _write_later(1.5, compress)
+    buf = io.StringIO()
+    try:
+        rec = follow(out, stream=buf, poll=0.05, idle=30)
+    finally:
+        timer.join()
+    assert rec["live"]["ended"] == "end marker: JOB DONE." and rec["run"]["unfinished"] is None
+    assert "pw.out was removed and pw.out.gz written beside it" in buf.getvalue()
+    assert same(rec, analyze(out.parent / "pw.out.gz"))
+
+
+def test_follow_ends_when_a_lammps_log_ends_after_the_last_dumped_frame(tmp_path):
+    """A real LAMMPS minimisation (tests/data/lammps_trials/fe16_tri_linesearch) whose log prints
+    'Total wall time' after the dump's last frame (its write_data comes between): the dump does
+    not change again, and the follower had waited out --idle and judged the run as still going."""
+    src = Path(__file__).parent / "data" / "lammps_trials" / "fe16_tri_linesearch"
+    run = tmp_path / "run"
+    shutil.copytree(src, run)
+    log = (run / "log.lammps").read_text()
+    end = log.rindex("Total wall time")
+    (run / "log.lammps").write_text(log[:end])
+    timer = _write_later(1.5, lambda: (run / "log.lammps").open("a").write(log[end:]))
+    t0 = time.monotonic()
+    try:
+        rec = follow(run, stream=io.StringIO(), poll=0.05, idle=30)
+    finally:
+        timer.join()
+    assert rec["live"]["ended"].startswith("end marker") and time.monotonic() - t0 < 20
+    assert same(rec, analyze(run))

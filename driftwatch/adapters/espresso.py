@@ -1061,13 +1061,17 @@ def crash_message(folder: Path, names, ctx=None, subject: str = "CRASH") -> str 
 
 
 # ---------------------------------------------------------------- live: end, soft stop
+# each only when no run starts after it: a restart appended to the same output (pw.x -in ... >>
+# pw.out) is running, though the tail still holds the ending of the run before it
+_NO_RUN_AFTER = rb"(?![\s\S]*^[ \t]*Program PWSCF\s+v\.)"
 END_MARKERS = {
-    "espresso-out": ((re.compile(rb"JOB DONE\."), "JOB DONE."),
+    "espresso-out": ((re.compile(rb"JOB DONE\." + _NO_RUN_AFTER, re.M), "JOB DONE."),
                      # the whole line: a job's last write may stop inside it (the reader,
                      # rightly, takes a line without its end as cut)
-                     (re.compile(_CLOCK.encode() + rb"[^\n]*(CPU|WALL)[^\n]*\n"),
-                      "pw.x's closing timing"),
-                     (re.compile(rb"Error in routine[\s\S]*stopping \.\.\."), "pw.x error banner")),
+                     (re.compile(_CLOCK.encode() + rb"[^\n]*(CPU|WALL)[^\n]*\n" + _NO_RUN_AFTER,
+                                 re.M), "pw.x's closing timing"),
+                     (re.compile(rb"Error in routine[\s\S]*stopping \.\.\." + _NO_RUN_AFTER, re.M),
+                      "pw.x error banner")),
 }
 _SAVE_DIR = re.compile(rb"Writing output data file (\S*?)([^/\s]+)\.save/?\s*$", re.M)
 
