@@ -935,6 +935,11 @@ class _Follower:
                      f"was requested")
         if self.ended.startswith("end marker") and self.stop_info:
             self._tidy_stop_file()
+        elif self.stop_info and self.stop_info["action"] == "wrote" and \
+                Path(self.stop_info["path"]).is_file():
+            self.say(f"driftwatch: the stop file {self.stop_info['path']} is still there, not yet "
+                     f"acted on: it stops the job at its next step; if the job is not running "
+                     f"(killed), delete it, or the next run started in this folder stops at once")
         final["live"] = self.live_section()
         if self.output is not None:
             records.write_json(final, self.output)

@@ -766,6 +766,30 @@ def test_follow_goes_on_when_the_stop_file_cannot_be_written(tmp_path):
     assert not list(run.rglob("*.EXIT"))
 
 
+def test_follow_says_a_stop_file_no_job_acted_on_is_still_there(tmp_path):
+    """A killed job (the bundled L01, real pw.x, cut before its end as kill -9 leaves it) followed
+    with --stop-on: the stop file is written, the job never acts on it, and following ends on
+    --idle. The file stays (the job may only be slow), and the last words say it is there and
+    what it does to the next run in the folder: pw.x started beside it stops at once (pw.x's
+    'Program stopped by user request' before any step, as in tests/data/qe_trials/
+    si2_exit_at_start). It had been left unsaid."""
+    run = tmp_path / "run"
+    src = Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax"
+    shutil.copytree(src, run)
+    text = (src / "pw.out").read_text()
+    cut = [i for i in range(len(text)) if text.startswith("ATOMIC_POSITIONS", i)][-2]
+    (run / "pw.out").write_text(text[:cut])
+    buf = io.StringIO()
+    rec = follow(run / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-gained"],
+                 config={"rules": {"persistence": {"steps": 3}}})
+    stop = rec["live"]["stop"]
+    assert rec["live"]["ended"].startswith("idle") and stop["action"] == "wrote"
+    assert Path(stop["path"]).is_file()
+    said = buf.getvalue()
+    assert f"driftwatch: the stop file {stop['path']} is still there, not yet acted on" in said
+    assert "the next run started in this folder stops at once" in said
+
+
 def test_a_change_counts_as_held_only_where_spglib_saw_it_hold(tmp_path):
     """A real pw.x relax (tests/data/qe_trials/si2_layer_relax_stopped) whose layer group at 1e-3 Å
     is c2/m11 at step 2, p-1 at step 3 and c2/m11 at step 4 (spglib's layer dataset): read as a run
