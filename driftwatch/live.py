@@ -591,7 +591,8 @@ def request_stop(run_dir, code, *, reason, dry_run=False, prefix=None, outdir=No
     if not _inside(resolved, folder):
         raise OutputError(f"{folder}: the stop file would be {resolved}, outside the run folder "
                           f"(pw.x 6.7 also reads <prefix>.EXIT from its working directory: "
-                          f"pass outdir='.' to write it there)")
+                          f"create {target.name} in the run folder yourself, or pass outdir='.' "
+                          f"to driftwatch.live.follow / request_stop)")
     out = {"action": "dry-run", "path": str(resolved), "text": text, "code": name, "reason": why}
     if resolved.exists():
         out["action"] = "exists"
@@ -788,8 +789,10 @@ class _Follower:
                 continue
             if changed or self.tracker is None or end:
                 if not self.read(ended=bool(end)) and not waited:
-                    self.say(f"driftwatch: waiting for a completed ionic step in {self.path} "
-                             f"({self.error})")
+                    why = str(self.error or "")            # a job just started: no reason to say
+                    plain = not why or "no completed ionic step" in why or "no such file" in why
+                    self.say(f"driftwatch: waiting for the first completed ionic step in "
+                             f"{self.path}" + ("" if plain else f" ({why})"))
                     waited = True
                 end = end or _end_marker(self.source, self._format())
                 if end and self.tracker is None:

@@ -1067,3 +1067,23 @@ def test_follow_ends_when_a_lammps_log_ends_after_the_last_dumped_frame(tmp_path
         timer.join()
     assert rec["live"]["ended"].startswith("end marker") and time.monotonic() - t0 < 20
     assert same(rec, analyze(run))
+
+
+def test_follow_waits_for_the_first_step_in_plain_words(tmp_path):
+    """A job that has written only its header (a real pw.x output, tests/data/qe/
+    bulk_tetragonal_to_cubic, cut before its first '!' energy): follow says it waits for the first
+    completed step, without the reader's nested 'truncated ... job killed or still running'."""
+    text = (Path(__file__).parent / "data" / "qe" / "bulk_tetragonal_to_cubic" /
+            "pw.out").read_text()
+    cut = text.index("!    total energy")
+    out = tmp_path / "run" / "pw.out"
+    out.parent.mkdir()
+    out.write_text(text[:cut])
+    timer = _write_later(1.0, lambda: out.open("a").write(text[cut:]))
+    buf = io.StringIO()
+    try:
+        follow(out, stream=buf, poll=0.05, idle=30)
+    finally:
+        timer.join()
+    waiting = [ln for ln in buf.getvalue().splitlines() if "waiting" in ln]
+    assert waiting == [f"driftwatch: waiting for the first completed ionic step in {out}"], waiting
