@@ -948,7 +948,7 @@ class _Follower:
             records.write_json(final, self.output)
         gone = not Path(self.path).exists()
         still = "" if self.ended.startswith("end marker") else (
-            f" (judged as a run still going: no end marker was seen; "
+            " (judged as a run still going: no end marker was seen; "
             + (f"{self.path} was removed" if gone else
                f"if the job has ended, `driftwatch inspect {self.path}` judges it finished") + ")")
         why = final["run"].get("unfinished")

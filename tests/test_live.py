@@ -744,22 +744,29 @@ def test_a_live_approach_to_a_type_counts_once_it_held():
     assert one is not None and four == (one[0] + 3, one[1])
 
 
-def test_follow_goes_on_when_the_stop_file_cannot_be_written(tmp_path):
-    """A stop asked where driftwatch will not write (the pw.x input's outdir lies outside the run
-    folder): follow says so in one line and keeps watching the job to its end, instead of ending
-    with exit 1 and leaving the job unwatched. The bundled L01 (real pw.x) cut before its end."""
+def _follow_killed_l01(tmp_path, outdir=None):
+    """(run folder, record, what follow said) of the bundled L01 (real pw.x) cut before its end,
+    as a killed job leaves it, followed with --stop-on lattice-gained until --idle; ``outdir``:
+    the pw.x input's outdir written in its place."""
     run = tmp_path / "run"
     run.mkdir()
     src = Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax"
-    (run / "pw.in").write_text((src / "pw.in").read_text().replace("'./scratch'",
-                                                                     "'/elsewhere/scratch'"))
+    pw_in = (src / "pw.in").read_text()
+    (run / "pw.in").write_text(pw_in if outdir is None else pw_in.replace("'./scratch'", outdir))
     text = (src / "pw.out").read_text()
     cut = [i for i in range(len(text)) if text.startswith("ATOMIC_POSITIONS", i)][-2]
     (run / "pw.out").write_text(text[:cut])
     buf = io.StringIO()
     rec = follow(run / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-gained"],
                  config={"rules": {"persistence": {"steps": 3}}})
-    said = buf.getvalue()
+    return run, rec, buf.getvalue()
+
+
+def test_follow_goes_on_when_the_stop_file_cannot_be_written(tmp_path):
+    """A stop asked where driftwatch will not write (the pw.x input's outdir lies outside the run
+    folder): follow says so in one line and keeps watching the job to its end, instead of ending
+    with exit 1 and leaving the job unwatched. The bundled L01 (real pw.x) cut before its end."""
+    run, rec, said = _follow_killed_l01(tmp_path, "'/elsewhere/scratch'")
     assert "driftwatch: cannot request a soft stop: " in said and "outside the run folder" in said
     assert "following on (the job keeps running: stop it yourself)" in said
     assert rec["live"]["ended"].startswith("idle") and rec["live"]["stop"]["action"] == "failed"
@@ -773,19 +780,10 @@ def test_follow_says_a_stop_file_no_job_acted_on_is_still_there(tmp_path):
     what it does to the next run in the folder: pw.x started beside it stops at once (pw.x's
     'Program stopped by user request' before any step, as in tests/data/qe_trials/
     si2_exit_at_start). It had been left unsaid."""
-    run = tmp_path / "run"
-    src = Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax"
-    shutil.copytree(src, run)
-    text = (src / "pw.out").read_text()
-    cut = [i for i in range(len(text)) if text.startswith("ATOMIC_POSITIONS", i)][-2]
-    (run / "pw.out").write_text(text[:cut])
-    buf = io.StringIO()
-    rec = follow(run / "pw.out", stream=buf, poll=0.05, idle=0.5, stop_on=["lattice-gained"],
-                 config={"rules": {"persistence": {"steps": 3}}})
+    _, rec, said = _follow_killed_l01(tmp_path)
     stop = rec["live"]["stop"]
     assert rec["live"]["ended"].startswith("idle") and stop["action"] == "wrote"
     assert Path(stop["path"]).is_file()
-    said = buf.getvalue()
     assert f"driftwatch: the stop file {stop['path']} is still there, not yet acted on" in said
     assert "the next run started in this folder stops at once" in said
 
