@@ -163,6 +163,8 @@ class Tracker:
         self.unfinished: str | None = None      # why the run ended early (the reader's word)
         self.species: tuple | None = None       # the code's labels telling one element's atoms
         #                                         apart (pw.x's Fe1, Fe2)
+        self.file_stages: list = []             # the reader's runs of one file (restarts appended)
+        self._flipped = False                   # a box flip was re-based: collect all frames
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
@@ -214,11 +216,16 @@ class Tracker:
         """``adapters.collect`` of all frames, stacking only the frames new since the last call
         onto the arrays kept from it (the same arrays, without a Python loop over every frame)."""
         k = len(self._stacked["cells"]) if self._stacked else 0
-        if len(ctx.file_stages) > 1 or k > len(self.frames):
-            k, self._stacked = 0, None              # stages: collect decides them over all frames
+        if len(ctx.file_stages) > 1 or k > len(self.frames) or self._flipped or \
+                (0 < k < len(self.frames) and self._jump(self._stacked["cells"][-1],
+                                                         self.frames[k].cell)):
+            # stages, and a box flip's one basis (adapters.run.continuous_basis): collect
+            # decides them over all frames
+            k, self._stacked = 0, None
         if k < len(self.frames):
             new = collect(self.frames[k:], path=self.source, fmt=self.format, ctx=ctx,
                           run_dir=self.run_dir)
+            self._flipped = self._flipped or bool(ctx.carry.get("basis_flips"))
             if not k:
                 self._stacked = {n: getattr(new, n) for n in self._ARRAYS} | {"run": new}
             else:
@@ -238,6 +245,13 @@ class Tracker:
             position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
             not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species)
 
+    @staticmethod
+    def _jump(before, cell) -> bool:
+        """A cell that moved by a quarter of the shortest vector in one step: maybe a box flip."""
+        before, cell = np.asarray(before, float), np.asarray(cell, float)
+        return float(np.abs(cell - before).max()) > 0.25 * float(
+            np.sqrt(np.einsum("ij,ij->i", before, before).min()))
+
     def take_notes(self, ctx) -> None:
         """Keep what a reader noted besides the frames (its ``ReadContext``): the source, warnings,
         settings, title, printed precision of positions, the code's species labels, and why the
@@ -246,6 +260,7 @@ class Tracker:
             dict(ctx.settings)
         self.title, self.rounding, self.species = ctx.title, ctx.rounding, ctx.species
         self.not_relaxation, self.unfinished = ctx.not_relaxation, ctx.unfinished
+        self.file_stages = list(ctx.file_stages)
 
     def _run(self):
         """The frames so far as a Run, with what the reader noted (:meth:`take_notes`)."""
@@ -253,6 +268,7 @@ class Tracker:
         ctx.warnings, ctx.settings, ctx.title = list(self.warnings), dict(self.code_settings), self.title
         ctx.rounding, ctx.not_relaxation = self.rounding, self.not_relaxation
         ctx.unfinished, ctx.species = self.unfinished, self.species
+        ctx.file_stages = list(self.file_stages)
         return self._collect(ctx)
 
     def _geometry(self, run):

@@ -1018,6 +1018,7 @@ def test_follow_does_not_end_on_the_job_done_of_the_run_before_an_appended_resta
         timer.join()
     assert rec["live"]["ended"] == "end marker: JOB DONE."
     assert rec["run"]["n_frames"] == len(read_run(out)) == 24 and same(rec, analyze(out))
+    assert [st["name"] for st in rec["run"]["stages"]] == ["run1", "run2"]      # as inspect says
 
 
 def test_follow_goes_on_with_the_output_a_job_compresses_at_its_end(tmp_path):
@@ -1085,3 +1086,34 @@ def test_follow_waits_for_the_first_step_in_plain_words(tmp_path):
         timer.join()
     waiting = [ln for ln in buf.getvalue().splitlines() if "waiting" in ln]
     assert waiting == [f"driftwatch: waiting for the first completed ionic step in {out}"], waiting
+
+
+def test_follow_reads_a_box_flip_in_one_basis_when_it_comes_between_two_polls(tmp_path):
+    """A real LAMMPS relaxation whose box LAMMPS wrote in another basis from timestep 21 (tests/
+    data/lammps_trials/mg2_relax_flip_between_minimize): followed while the dump holds the frames
+    up to timestep 20, then the rest. The live record, stacked poll by poll, reads the frames from
+    the flip in one basis as the audit of the whole file does: the same frames, flags and summary
+    (the first frame measured against the final group)."""
+    src = Path(__file__).parent / "data" / "lammps_trials" / "mg2_relax_flip_between_minimize"
+    run = tmp_path / "run"
+    shutil.copytree(src, run)
+    dump, log = (run / "relax.lammpstrj").read_text(), (run / "log.lammps").read_text()
+    cut, end = dump.index("ITEM: TIMESTEP\n21\n"), log.rindex("Total wall time")
+    (run / "relax.lammpstrj").write_text(dump[:cut])
+    (run / "log.lammps").write_text(log[:end])           # the job goes on
+
+    def rest():
+        with open(run / "relax.lammpstrj", "a") as fh:
+            fh.write(dump[cut:])
+        with open(run / "log.lammps", "a") as fh:
+            fh.write(log[end:])
+    timer = _write_later(1.5, rest)
+    try:
+        rec = follow(run, stream=io.StringIO(), poll=0.05, idle=30)
+    finally:
+        timer.join()
+    ref = analyze(run)
+    assert rec["live"]["ended"].startswith("end marker") and same(rec, ref)
+    assert "error" not in rec["summary"]["atoms"]["start"]
+    assert any("basis jumps without the lattice changing at step 21" in w
+               for w in rec["run"]["warnings"])

@@ -595,6 +595,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
     steps = cat("steps")
     flips = continuous_basis(cells, first.pbc)
     if flips:
+        ctx.carry["basis_flips"] = len(flips)       # (a live tracker then stacks anew each time)
         ctx.warn(f"the cell's basis jumps without the lattice changing at step"
                  f"{'s' if len(flips) > 1 else ''} {', '.join(str(int(steps[k])) for k in flips[:5])}"
                  f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an integer "
