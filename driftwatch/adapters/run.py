@@ -595,9 +595,10 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
     steps = cat("steps")
     flips = continuous_basis(cells, first.pbc)
     if flips:
-        ctx.carry["basis_flips"] = len(flips)       # (a live tracker then stacks anew each time)
+        ctx.carry["basis_flips"] = len(flips)    # (a live tracker then stacks anew each time)
+        at = ", ".join(str(int(steps[k])) for k in flips[:5])
         ctx.warn(f"the cell's basis jumps without the lattice changing at step"
-                 f"{'s' if len(flips) > 1 else ''} {', '.join(str(int(steps[k])) for k in flips[:5])}"
+                 f"{'s' if len(flips) > 1 else ''} {at}"
                  f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an integer "
                  f"change of basis): those frames are read in a basis continuous with the step "
                  f"before, the atoms where the file puts them")
