@@ -599,8 +599,8 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         at = ", ".join(str(int(steps[k])) for k in flips[:5])
         ctx.warn(f"the cell's basis jumps without the lattice changing at step"
                  f"{'s' if len(flips) > 1 else ''} {at}"
-                 f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an integer "
-                 f"change of basis): those frames are read in a basis continuous with the step "
+                 f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an "
+                 f"integer change of basis): those frames are read in a basis continuous with the step "
                  f"before, the atoms where the file puts them")
     if not stages and len(ctx.file_stages) > 1:
         stages, start = [], 0
