@@ -36,8 +36,8 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.registry import not_relaxation_note, run_kind
-from .adapters.run import (Frame, collect, folder_listing, frame_from_atoms, note_fix_symmetry,
-                           position_precision)
+from .adapters.run import (Frame, cell_jumps, collect, folder_listing, frame_from_atoms,
+                           note_fix_symmetry, position_precision)
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
                      OutputError)
 
@@ -164,7 +164,8 @@ class Tracker:
         self.species: tuple | None = None       # the code's labels telling one element's atoms
         #                                         apart (pw.x's Fe1, Fe2)
         self.file_stages: list = []             # the reader's runs of one file (restarts appended)
-        self._flipped = False                   # a box flip was re-based: collect all frames
+        self._flipped = False                   # a box flip was re-based (and is said): collect
+        #                                         all frames each time
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
         self._groups: dict[tuple, dict] = {}      # (frame, symprec) -> spglib's group
         self._table = track.FrameTable()          # each frame's invariants
@@ -216,11 +217,11 @@ class Tracker:
         """``adapters.collect`` of all frames, stacking only the frames new since the last call
         onto the arrays kept from it (the same arrays, without a Python loop over every frame)."""
         k = len(self._stacked["cells"]) if self._stacked else 0
-        if len(ctx.file_stages) > 1 or k > len(self.frames) or self._flipped or \
-                (0 < k < len(self.frames) and self._jump(self._stacked["cells"][-1],
-                                                         self.frames[k].cell)):
-            # stages, and a box flip's one basis (adapters.run.continuous_basis): collect
-            # decides them over all frames
+        flip = 0 < k < len(self.frames) and bool(cell_jumps(
+            self._stacked["cells"][-1:], np.asarray(self.frames[k].cell, float)[None])[0])
+        if len(ctx.file_stages) > 1 or k > len(self.frames) or flip or self._flipped:
+            # stages, and a box flip's one basis (adapters.run.continuous_basis) and its warning:
+            # collect decides them over all frames
             k, self._stacked = 0, None
         if k < len(self.frames):
             new = collect(self.frames[k:], path=self.source, fmt=self.format, ctx=ctx,
@@ -244,13 +245,6 @@ class Tracker:
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
             position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
             not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species)
-
-    @staticmethod
-    def _jump(before, cell) -> bool:
-        """A cell that moved by a quarter of the shortest vector in one step: maybe a box flip."""
-        before, cell = np.asarray(before, float), np.asarray(cell, float)
-        return float(np.abs(cell - before).max()) > 0.25 * float(
-            np.sqrt(np.einsum("ij,ij->i", before, before).min()))
 
     def take_notes(self, ctx) -> None:
         """Keep what a reader noted besides the frames (its ``ReadContext``): the source, warnings,
@@ -334,6 +328,17 @@ class Tracker:
 
 
 # ---------------------------------------------------------------- ASE observer
+def _check_record_file(output: Path | None) -> None:
+    """Refuse a record file that cannot be written now, not hours into the run it records."""
+    if output is None:
+        return
+    records.check_target(output)
+    folder = output.parent
+    if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
+        raise OutputError(f"{output}: cannot write the record there (its folder "
+                          f"{'is not writable' if folder.is_dir() else 'does not exist'})")
+
+
 class SymmetryWatch:
     """ASE optimizer observer: per-step invariants, rules, and the run record as the run goes.
 
@@ -422,12 +427,7 @@ class SymmetryWatch:
         self.mode = mode
         self.stop_on = _codes(stop_on)
         self.output = None if output is None else Path(output)
-        if self.output is not None:            # refused now, not hours into the relaxation
-            records.check_target(self.output)
-            folder = self.output.parent
-            if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
-                raise OutputError(f"{self.output}: cannot write the record there (its folder "
-                                  f"{'is not writable' if folder.is_dir() else 'does not exist'})")
+        _check_record_file(self.output)
         self._unwritten: str | None = None      # why the record file was last not written
         self.optimizer = optimizer
         self.lazy = bool(lazy)
@@ -759,13 +759,7 @@ class _Follower:
         self.path, self.cfg, self.format = Path(path), cfg, format
         self.stop_codes, self.dry_run, self.say = stop_codes, dry_run, say
         self.output = None if output is None else Path(output)
-        if self.output is not None:            # refused now, not hours into the relaxation
-            records.check_target(self.output)
-            folder = self.output.parent
-            if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
-                raise OutputError(f"{self.output}: cannot write the record there (its folder "
-                                  f"{'is not writable' if folder.is_dir() else 'does not exist'})")
-        self._unwritten: str | None = None      # why the record file was last not written
+        _check_record_file(self.output)
         self.prefix, self.outdir = prefix, outdir
         self.newest = _needs_spectra(stop_codes)
         self.tracker: Tracker | None = None

@@ -1027,11 +1027,11 @@ def shown_breakpoints(breakpoints, min_plateau: float = 10.0, grid=None) -> list
     out = []
     for kind in dict.fromkeys(b["kind"] for b in breakpoints):
         bs = sorted((b for b in breakpoints if b["kind"] == kind), key=lambda b: b["low"])
-        ends = [lo] + [b["high"] for b in bs]                  # where each verdict starts ...
-        starts = [b["low"] for b in bs] + [hi]                 # ... and where it ends
+        begins = [lo] + [b["high"] for b in bs]                # where each verdict begins ...
+        stops = [b["low"] for b in bs] + [hi]                  # ... and where it stops
         values = [v if b < a * min_plateau else ("plateau", k)
                   for k, (v, a, b) in enumerate(zip([bs[0]["from"]] + [b["to"] for b in bs],
-                                                    ends, starts))] if bs else []
+                                                    begins, stops))] if bs else []
         chained = all(bs[k]["from"] == bs[k - 1]["to"] for k in range(1, len(bs)))
         runs = {i: j for i, j in alternating(values)} if chained else {}
         k = 0

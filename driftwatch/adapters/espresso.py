@@ -1063,7 +1063,7 @@ def crash_message(folder: Path, names, ctx=None, subject: str = "CRASH") -> str 
 # ---------------------------------------------------------------- live: end, soft stop
 # each only when no run starts after it: a restart appended to the same output (pw.x -in ... >>
 # pw.out) is running, though the tail still holds the ending of the run before it
-_NO_RUN_AFTER = rb"(?![\s\S]*^[ \t]*Program PWSCF\s+v\.)"
+_NO_RUN_AFTER = rb"(?![\s\S]*" + _BANNER.pattern + rb")"
 END_MARKERS = {
     "espresso-out": ((re.compile(rb"JOB DONE\." + _NO_RUN_AFTER, re.M), "JOB DONE."),
                      # the whole line: a job's last write may stop inside it (the reader,

@@ -595,13 +595,13 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
     steps = cat("steps")
     flips = continuous_basis(cells, first.pbc)
     if flips:
-        ctx.carry["basis_flips"] = len(flips)    # (a live tracker then stacks anew each time)
+        ctx.carry["basis_flips"] = len(flips)    # (a live tracker then collects all frames anew)
         at = ", ".join(str(int(steps[k])) for k in flips[:5])
         ctx.warn(f"the cell's basis jumps without the lattice changing at step"
                  f"{'s' if len(flips) > 1 else ''} {at}"
                  f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an "
-                 f"integer change of basis): those frames are read in a basis continuous with the step "
-                 f"before, the atoms where the file puts them")
+                 f"integer change of basis): those frames are read in a basis continuous with "
+                 f"the step before, the atoms where the file puts them")
     if not stages and len(ctx.file_stages) > 1:
         stages, start = [], 0
         for name, count in ctx.file_stages:
@@ -643,10 +643,7 @@ def continuous_basis(cells: np.ndarray, pbc) -> list[int]:
     Returns the frames where a jump was undone. Cells (n, 3, 3), Å; only fully periodic cells."""
     if len(cells) < 2 or not np.all(pbc):
         return []
-    prev, cur = cells[:-1], cells[1:]
-    jump = np.abs(cur - prev).max(axis=(1, 2))
-    size = np.sqrt(np.einsum("nij,nij->ni", prev, prev).min(axis=1))
-    cand = np.flatnonzero(jump > 0.25 * size)       # a flip moves a vector by a whole other one
+    cand = np.flatnonzero(cell_jumps(cells[:-1], cells[1:]))
     if not len(cand):
         return []
     cand = set(cand.tolist())
@@ -665,6 +662,13 @@ def continuous_basis(cells: np.ndarray, pbc) -> list[int]:
             T = M if T is None else M @ T
             flips.append(k)
     return flips
+
+
+def cell_jumps(before: np.ndarray, after: np.ndarray) -> np.ndarray:
+    """Per pair of cells (n, 3, 3), Å: True where a vector moved by more than a quarter of the
+    shortest one of ``before`` in one step, as a box flip moves one by a whole other vector."""
+    size = np.sqrt(np.einsum("nij,nij->ni", before, before).min(axis=1))
+    return np.abs(after - before).max(axis=(1, 2)) > 0.25 * size
 
 
 class _Block:
