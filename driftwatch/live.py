@@ -804,7 +804,8 @@ class _Follower:
                     self.say(f"driftwatch: waiting for the first completed ionic step in "
                              f"{self.path}" + ("" if plain else f" ({why})"))
                     waited = True
-                end = end or _end_marker(self.source, self._format())
+                # (an end marker written after it was looked for waits for the next poll: a read
+                # of the job's last steps may have come before them)
                 if end and self.tracker is None:
                     raise InputError(self.source or self.path, f"the job ended ({end}) with no "
                                                                f"completed ionic step")

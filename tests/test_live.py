@@ -990,6 +990,12 @@ def test_the_observer_refuses_an_unwritable_record_at_once_and_never_stops_a_rel
     assert watch.record["run"]["n_frames"] == 6 and out.is_dir()
 
 
+def _append(path, text):
+    """Append ``text`` and close the file, as a job's write ends (its last bytes flushed)."""
+    with open(path, "a") as fh:
+        fh.write(text)
+
+
 def _write_later(delay, fn):
     import threading
     timer = threading.Timer(delay, fn)
@@ -1011,7 +1017,7 @@ def test_follow_does_not_end_on_the_job_done_of_the_run_before_an_appended_resta
     out = tmp_path / "run" / "pw.out"
     out.parent.mkdir()
     out.write_text(text[:cut])
-    timer = _write_later(1.5, lambda: out.open("a").write(text[cut:]))
+    timer = _write_later(1.5, lambda: _append(out, text[cut:]))
     try:
         rec = follow(out, stream=io.StringIO(), poll=0.05, idle=30)
     finally:
@@ -1058,7 +1064,7 @@ def test_follow_ends_when_a_lammps_log_ends_after_the_last_dumped_frame(tmp_path
     log = (run / "log.lammps").read_text()
     end = log.rindex("Total wall time")
     (run / "log.lammps").write_text(log[:end])
-    timer = _write_later(1.5, lambda: (run / "log.lammps").open("a").write(log[end:]))
+    timer = _write_later(1.5, lambda: _append(run / "log.lammps", log[end:]))
     t0 = time.monotonic()
     try:
         rec = follow(run, stream=io.StringIO(), poll=0.05, idle=30)
@@ -1078,7 +1084,7 @@ def test_follow_waits_for_the_first_step_in_plain_words(tmp_path):
     out = tmp_path / "run" / "pw.out"
     out.parent.mkdir()
     out.write_text(text[:cut])
-    timer = _write_later(1.0, lambda: out.open("a").write(text[cut:]))
+    timer = _write_later(1.0, lambda: _append(out, text[cut:]))
     buf = io.StringIO()
     try:
         follow(out, stream=buf, poll=0.05, idle=30)
