@@ -197,6 +197,13 @@ def test_every_registered_format_round_trips(name, traj, tmp_path):
         np.testing.assert_allclose(run.energies, traj.energies, atol=1e-7)
         assert len(list(iter_frames(path, format=name))) == len(run)
         return
+    if name == "vasp-segment":           # a vasprun.xml's copy under a time-stamped name
+        path = _write_vasp_xml(traj, tmp_path).rename(tmp_path / "vasprun.xml_10_00_00on01_02_24")
+        run = read_run(path, format=name)
+        assert run.format == name and run.source == str(path) and len(run) == len(traj.cells)
+        np.testing.assert_allclose(run.positions, traj.positions, atol=1e-7, rtol=0)
+        np.testing.assert_allclose(run.energies, traj.energies, atol=1e-7)
+        return
     if name == "lammps-dump-series":     # never detected: picked by a LAMMPS folder, or -f
         src = Path(__file__).parent / "data" / "lammps_trials" / "si8_dump_per_frame"
         shutil.copytree(src, tmp_path / src.name)
@@ -244,7 +251,7 @@ def test_registry_has_the_formats_of_the_issue():
     assert {"traj", "extxyz", "vasp-xml", "vasp-out", "vasp-xdatcar", "espresso-out",
             "ase-db", "pymatgen-json"} <= set(formats())
     assert set(WRITERS) | set(GENUINE_OTHER) | {"espresso-out", "vasp-error-archive",
-                                                "lammps-dump-series"} >= \
+                                                "vasp-segment", "lammps-dump-series"} >= \
         set(BUILTIN), \
         "new format without a round trip"
 

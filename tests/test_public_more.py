@@ -490,11 +490,8 @@ def test_a_file_named_traj_that_is_no_ulm_trajectory_says_what_it_is(tmp_path):
         read_run(packed)
 
 
-def test_a_copy_named_like_an_output_with_an_underscore_is_said_not_read(tmp_path):
-    """doped's MgO antisite folder keeps an earlier segment of its resubmitted relaxation as
-    vasprun.xml_11_19_39on29_01_24 beside the final OUTCAR: its 26 steps end where the OUTCAR's
-    start (ASE reads both; fractional positions equal to 1e-5). Copies named 'vasprun.xml.<x>'
-    were said; this one, with an underscore, had been left out unsaid."""
+def _doped_segment_and_outcar(tmp_path):
+    """ASE's reading of doped's saved segment and of the final OUTCAR beside it."""
     import io
     import lzma
     d = MORE / "doped_resubmitted_segments"
@@ -502,11 +499,52 @@ def test_a_copy_named_like_an_output_with_an_underscore_is_said_not_read(tmp_pat
         (d / "vasprun.xml_11_19_39on29_01_24.xz").read_bytes())), ":", format="vasp-xml")
     outcar = tmp_path / "OUTCAR"
     outcar.write_bytes(lzma.decompress((d / "OUTCAR.xz").read_bytes()))
-    out = ase.io.read(outcar, ":", format="vasp-out")
+    return d, seg, ase.io.read(outcar, ":", format="vasp-out")
+
+
+def test_a_saved_segment_of_a_resubmitted_job_is_read_as_its_first_stage(tmp_path):
+    """doped's MgO antisite folder keeps an earlier segment of its resubmitted relaxation as
+    vasprun.xml_11_19_39on29_01_24 (a job script's copy, named by ``date +%H_%M_%Son%d_%m_%y``,
+    the layout of ShakeNBreak's resubmission script) beside the final OUTCAR: its 26 steps end
+    where the OUTCAR's start (ASE reads both; fractional positions equal to 1e-5). It had been
+    said and left out, the run reduced to the OUTCAR's 2 steps; it is the run's first stage."""
+    d, seg, out = _doped_segment_and_outcar(tmp_path)
     gap = seg[-1].get_scaled_positions() - out[0].get_scaled_positions()
     assert len(seg) == 26 and np.abs(gap - np.round(gap)).max() < 1e-5          # ASE's
     run = read_run(d)
-    assert len(run) == len(out) == 2
-    assert any("vasprun.xml_11_19_39on29_01_24.xz not read (other copies beside the run's "
-               "outputs, e.g. earlier segments of a resubmitted relaxation" in w
-               for w in run.warnings)
+    assert len(run) == len(seg) + len(out) == 28
+    assert [(s["name"], s["n_frames"]) for s in run.stages] == \
+        [("11_19_39on29_01_24", 26), ("final", 2)]
+    for k, atoms in enumerate(seg + out):                 # the frames are ASE's, in that order
+        assert np.abs(run.positions[k] - atoms.positions).max() < 1e-4
+        assert np.abs(run.cells[k] - atoms.cell.array).max() < 1e-6
+    assert not any("not read" in w for w in run.warnings)
+    alone = read_run(f"{d}@11_19_39on29_01_24")
+    assert len(alone) == 26
+
+
+def test_a_saved_segment_the_job_started_again_from_is_said_not_read(tmp_path):
+    """The same segment saved before the job started again from its first structure (the
+    current vasprun.xml is the segment's own bytes: its first structure is the segment's first,
+    not its last): the segment is no part of the trajectory, and a warning says why."""
+    d, seg, _ = _doped_segment_and_outcar(tmp_path)
+    run_dir = tmp_path / "restarted"
+    run_dir.mkdir()
+    for name in ("vasprun.xml_11_19_39on29_01_24.xz", "INCAR"):
+        (run_dir / name).write_bytes((d / name).read_bytes())
+    (run_dir / "vasprun.xml.xz").write_bytes((d / "vasprun.xml_11_19_39on29_01_24.xz").read_bytes())
+    run = read_run(run_dir)
+    assert len(run) == len(seg) == 26
+    assert any("a saved segment of a resubmitted job not read: the segment after it started "
+               "from another structure than its last one" in w for w in run.warnings)
+
+
+def test_saved_segments_run_in_the_order_their_times_say():
+    """``date +%H_%M_%Son%d_%m_%y`` (day before month, two-digit year): a segment saved on
+    31 Dec 2023 ran before one saved on 1 Jan 2024 and after one saved earlier that day
+    (common practice: the date format is the script's own, read as GNU date writes it)."""
+    from driftwatch.adapters.vasp import _segments
+    names = ["vasprun.xml_09_00_00on01_01_24", "OUTCAR_23_59_59on31_12_23",
+             "vasprun.xml_08_00_00on31_12_23.gz", "INCAR_08_00_00on31_12_23", "OUTCAR"]
+    assert [w for w, _ in _segments(Path("."), names)] == \
+        ["08_00_00on31_12_23", "23_59_59on31_12_23", "09_00_00on01_01_24"]

@@ -20,6 +20,7 @@ keys the output lacks, and a disagreement between the two is a warning.
 """
 from __future__ import annotations
 
+import contextlib
 import itertools
 import lzma
 import os
@@ -83,17 +84,21 @@ def read_incar(path) -> dict:
 
 
 def _stage_of(name: str) -> str:
-    """'relax1' for 'vasprun.xml.relax1.gz', '' for 'OUTCAR'."""
-    m = _STAGED.match(strip_compression(name))
-    return (m.group(2) or "") if m else ""
+    """'relax1' for 'vasprun.xml.relax1.gz', '' for 'OUTCAR'; '_11_19_39on29_01_24' for a saved
+    segment ``OUTCAR_11_19_39on29_01_24`` (:data:`_SEGMENT`)."""
+    name = strip_compression(name)
+    m = _STAGED.match(name) or _SEGMENT.match(name)
+    return "" if not m else m.group(2) or "" if m.re is _STAGED else name[len(m.group(1)):]
 
 
 def _sibling(path: Path, kind: str, ctx: ReadContext) -> Path | None:
     """The ``kind`` file (INCAR, OUTCAR) of the same stage as ``path``, plain or compressed: for
-    ``vasprun.xml.relax1.gz`` first ``INCAR.relax1`` (any compression), then ``INCAR``."""
+    ``vasprun.xml.relax1.gz`` first ``INCAR.relax1`` (any compression), then ``INCAR``; for a
+    saved segment ``vasprun.xml_<time>`` first ``INCAR_<time>``."""
     stage = _stage_of(path.name)
     ctx.lists(path.parent)
-    stems = [f"{kind}.{stage}", kind] if stage else [kind]
+    stems = [f"{kind}{stage}" if stage.startswith("_") else f"{kind}.{stage}", kind] if stage \
+        else [kind]
     for stem in stems:
         for ext in ("", ".gz", ".bz2", ".xz"):
             cand = path.parent / (stem + ext)
@@ -1053,6 +1058,90 @@ def read_error_archive(path, ctx: ReadContext):
                 del ctx.folders[key]
 
 
+# ---------------------------------------------------------------- saved segments
+# A resubmitting job script's copies of a segment's files before the job continues in the same
+# folder, named for the time they were saved: ``vasprun.xml_11_19_39on29_01_24`` (``date
+# +%H_%M_%Son%d_%m_%y``; ShakeNBreak's resubmission script saves CONTCAR, OUTCAR, XDATCAR, POSCAR,
+# INCAR, OSZICAR and vasprun.xml so, then copies CONTCAR to POSCAR).
+_SEGMENT = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR|INCAR)"
+                      r"_(\d\d)_(\d\d)_(\d\d)on(\d\d)_(\d\d)_(\d\d)$")
+_SAME_PLACE = 1e-4      # Å: a segment's end and the next segment's start are the same structure
+
+
+def _segments(folder: Path, names) -> list[tuple[str, dict]]:
+    """``[(time, {kind: [paths]})]`` of the saved segments in ``folder``, in the order saved
+    (``time`` as in the names, ``11_19_39on29_01_24``)."""
+    got: dict = {}
+    for n in names:
+        m = _SEGMENT.match(strip_compression(n))
+        if m and m.group(1) != "INCAR":
+            when = strip_compression(n)[len(m.group(1)) + 1:]
+            got.setdefault(when, {}).setdefault(m.group(1), []).append(Path(folder) / n)
+
+    def saved(item):
+        hour, minute, second, day, month, year = _SEGMENT.match("OUTCAR_" + item[0]).groups()[1:]
+        return year, month, day, hour, minute, second
+    return sorted(got.items(), key=saved)
+
+
+def _segment_after(path: Path) -> tuple[Path, str] | None:
+    """The output (and its format) of the segment that ran after the saved segment ``path``: the
+    next saved one, else the folder's own outputs; None when there is none to read."""
+    folder, names = path.parent, sorted(os.listdir(path.parent))
+    when = _stage_of(path.name)[1:]
+    segments = [kinds for w, kinds in _segments(folder, names)]
+    order = [w for w, _ in _segments(folder, names)]
+    later = segments[order.index(when) + 1:] if when in order else []
+    kinds = later[0] if later else _variants(folder, names).get("")
+    got = _pick_stage(folder, kinds, None, ReadContext(folder), staged=True) if kinds else None
+    return None if got is None or got[1] == "vasp-poscar" else got[:2]
+
+
+def _same_structure(a: Frame, b: Frame) -> bool:
+    """The same atoms at the same places in the same cell, to :data:`_SAME_PLACE` (Å; positions
+    compared modulo the lattice)."""
+    if a.numbers.shape != b.numbers.shape or (a.numbers != b.numbers).any() or \
+            np.abs(a.cell - b.cell).max() > _SAME_PLACE:
+        return False
+    d = np.linalg.solve(a.cell.T, (a.positions - b.positions).T).T     # fractional
+    return bool(np.linalg.norm((d - np.round(d)) @ a.cell, axis=1).max() <= _SAME_PLACE)
+
+
+def read_segment(path, ctx: ReadContext):
+    """The ionic steps of a saved segment of a resubmitted VASP job (:data:`_SEGMENT`), read as a
+    stage of its run folder when the segment after it continued from where it ended: that
+    segment's first structure is this one's last (or its saved CONTCAR) to 1e-4 Å. A segment the
+    job started again from another structure is no part of the trajectory: no steps, and a
+    warning says so. Read alone (``FOLDER@<time>``, or ``-f``), its steps are read whatever came
+    after it."""
+    path = Path(path)
+    kind = _SEGMENT.match(strip_compression(path.name)).group(1)
+    reader = {"vasprun.xml": read_vasprun, "OUTCAR": read_outcar, "XDATCAR": read_xdatcar}[kind]
+    if ctx.stage_count == 1:
+        yield from reader(path, ctx)
+        return
+    frames = list(reader(path, ctx))
+    after = _segment_after(path)
+    start = None
+    if after is not None and frames:
+        nxt, fmt = after
+        read = {"vasp-xml": read_vasprun, "vasp-out": read_outcar, "vasp-xdatcar": read_xdatcar}
+        with contextlib.closing(read[fmt](nxt, ReadContext(nxt))) as steps:
+            start = next(steps, None)
+    ends = frames[-1:]
+    contcar = _sibling(path, "CONTCAR", ctx)
+    if contcar is not None and _stage_of(contcar.name):
+        ends += list(read_poscar(contcar, ReadContext(contcar)))
+    what = "a saved segment of a resubmitted job"
+    if start is None or not any(_same_structure(e, start) for e in ends):
+        why = ("the segment after it started from another structure than its last one (the job "
+               "started again)" if start is not None else "no segment after it to read, to tell "
+               "whether the job continued from it")
+        ctx.warn(f"{what} not read: {why}")
+        return
+    yield from frames
+
+
 # ---------------------------------------------------------------- folders
 _STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
@@ -1352,24 +1441,31 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
             notes.append(note)
     if not stages:
         return None
-    others = [n for n in names if strip_compression(n).startswith(_OTHER_COPIES)
-              and not _STAGED.match(strip_compression(n))]
-    if others:          # OUTCAR.converged, vasprun.xml.bak, ...: no stage names VASP or custodian use
-        notes.append(f"{folder}: {', '.join(others[:6])}{', ...' if len(others) > 6 else ''} not "
-                     f"read (other copies beside the run's outputs, e.g. earlier segments of a "
-                     f"resubmitted relaxation; pass one to read it, or lay the segments out as "
-                     f"stage folders relax1/, relax2/, ... to read them as one run)")
-    archived = _error_archives(folder, names)
-    if len(stages) == 1 and stages[0][0] in ("", None):
+    archived, saved, used = _error_archives(folder, names), [], set()
+    unstaged = len(stages) == 1 and stages[0][0] in ("", None)
+    if unstaged:
         stages = [("", stages[0][1], stages[0][2])]
         if format is None and stages[0][2] in ("vasp-xml", "vasp-out"):
             traj = _single_point_traj(folder, names, stages[0][1], ctx)
             if traj is not None:
                 return traj
-            if archived:                    # earlier attempts first; the last one is "final"
+            for when, kinds in ([] if archived else _segments(folder, names)):
+                got = _pick_stage(folder, kinds, None, ctx, staged=True)
+                if got is not None:
+                    saved.append((when, got[0], "vasp-segment"))
+                    used.update(p.name for paths in kinds.values() for p in paths)
+                    notes += [got[2]] if got[2] else []
+            if archived or saved:           # earlier attempts first; the last one is "final"
                 stages = [(p.name.split(".tar")[0], p, "vasp-error-archive") for p in archived] \
-                    + [("final", stages[0][1], stages[0][2])]
-    elif archived:
+                    + saved + [("final", stages[0][1], stages[0][2])]
+    others = [n for n in names if strip_compression(n).startswith(_OTHER_COPIES)
+              and not _STAGED.match(strip_compression(n)) and n not in used]
+    if others:          # OUTCAR.converged, vasprun.xml.bak, ...: no stage names VASP or custodian use
+        notes.append(f"{folder}: {', '.join(others[:6])}{', ...' if len(others) > 6 else ''} not "
+                     f"read (other copies beside the run's outputs, e.g. earlier segments of a "
+                     f"resubmitted relaxation; pass one to read it, or lay the segments out as "
+                     f"stage folders relax1/, relax2/, ... to read them as one run)")
+    if archived and not unstaged:
         notes.append(f"{folder}: custodian's archives of earlier attempts "
                      f"({', '.join(p.name for p in archived)}) are not read "
                      f"beside staged outputs (which stage each belongs to is not recorded)")
@@ -1526,6 +1622,10 @@ def register_all(register, register_code) -> None:
              description="VASP OUTCAR")
     register("vasp-xdatcar", __name__ + ":read_xdatcar", globs=("*XDATCAR*",),
              magic=rb"^[ \t]*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
+    register("vasp-segment", __name__ + ":read_segment",
+             description="a saved segment of a resubmitted VASP job (vasprun.xml_<time>, "
+                         "OUTCAR_<time>: a job script's copies, <time> as date +%H_%M_%Son%d_%m_%y; "
+                         "read as a stage of its run folder, or given with -f)")
     register("vasp-error-archive", __name__ + ":read_error_archive",
              description="custodian's archive of an earlier VASP attempt (error.N.tar.gz; read "
                          "as a stage of its run folder, or given with -f)")
