@@ -1460,7 +1460,7 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
                     + saved + [("final", stages[0][1], stages[0][2])]
     others = [n for n in names if strip_compression(n).startswith(_OTHER_COPIES)
               and not _STAGED.match(strip_compression(n)) and n not in used]
-    if others:          # OUTCAR.converged, vasprun.xml.bak, ...: no stage names VASP or custodian use
+    if others:       # OUTCAR.converged, vasprun.xml.bak, ...: no stage names VASP or custodian use
         notes.append(f"{folder}: {', '.join(others[:6])}{', ...' if len(others) > 6 else ''} not "
                      f"read (other copies beside the run's outputs, e.g. earlier segments of a "
                      f"resubmitted relaxation; pass one to read it, or lay the segments out as "
@@ -1624,8 +1624,9 @@ def register_all(register, register_code) -> None:
              magic=rb"^[ \t]*(Direct|Cartesian) configuration=", description="VASP XDATCAR")
     register("vasp-segment", __name__ + ":read_segment",
              description="a saved segment of a resubmitted VASP job (vasprun.xml_<time>, "
-                         "OUTCAR_<time>: a job script's copies, <time> as date +%H_%M_%Son%d_%m_%y; "
-                         "read as a stage of its run folder, or given with -f)")
+                         "OUTCAR_<time>: a job script's copies, <time> as "
+                         "date +%H_%M_%Son%d_%m_%y; read as a stage of its run folder, or given "
+                         "with -f)")
     register("vasp-error-archive", __name__ + ":read_error_archive",
              description="custodian's archive of an earlier VASP attempt (error.N.tar.gz; read "
                          "as a stage of its run folder, or given with -f)")
