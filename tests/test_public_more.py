@@ -548,3 +548,75 @@ def test_saved_segments_run_in_the_order_their_times_say():
              "vasprun.xml_08_00_00on31_12_23.gz", "INCAR_08_00_00on31_12_23", "OUTCAR"]
     assert [w for w, _ in _segments(Path("."), names)] == \
         ["08_00_00on31_12_23", "23_59_59on31_12_23", "09_00_00on01_01_24"]
+
+
+# ---------------------------------------------------------------- CASTEP and FHI-aims through ASE
+def _castep_text(path) -> str:
+    return gzip.decompress(Path(path).read_bytes()).decode()
+
+
+def test_castep_iterations_not_line_minimisation_trials_and_its_step_limit(tmp_path):
+    """aiida-castep's Si2 cell optimisation (tests/data/public_more/README.md): the .castep lists
+    31 'BFGS: finished iteration' lines (0 to 30) and ends 'Geometry optimization failed to converge
+    after 30 steps'. ASE's .castep reader returns 91 configurations, each iteration's two line-
+    minimisation trials among them; its .geom reader the 31 iterations. The folder holding both
+    (as CASTEP writes them) had been refused as two runs, the .castep read as 91 steps, and the run
+    not said unfinished."""
+    d = MORE / "castep_geom_limit"
+    text = _castep_text(d / "aiida.castep.gz")
+    assert len(re.findall(r"BFGS: finished iteration", text)) == 31             # CASTEP's own
+    geom = tmp_path / "aiida.geom"
+    geom.write_bytes(gzip.decompress((d / "aiida.geom.gz").read_bytes()))
+    iterations = ase.io.read(geom, ":", format="castep-geom")                    # ASE's
+    assert len(iterations) == 31
+    run = read_run(d)
+    assert run.source.endswith("aiida.castep.gz") and len(run) == 31
+    assert run.steps.tolist() == list(range(31))
+    for k, atoms in enumerate(iterations):
+        assert np.abs(run.cells[k] - atoms.cell.array).max() < 1e-6
+        f = np.linalg.solve(run.cells[k].T, (run.positions[k] - atoms.positions).T).T
+        assert np.abs(f - np.round(f)).max() < 1e-6
+    assert run.unfinished == ("stopped at its step limit (CASTEP: 'Geometry optimization failed "
+                              "to converge after 30 steps')")
+    assert any("60 line-minimisation trial configurations of CASTEP's optimiser left out" in w
+               for w in run.warnings)
+
+
+def test_castep_frame_energies_are_those_each_iteration_finished_on():
+    """electronic-parsers' Si2_opt.castep: 7 iterations (0-6) and one trial before iteration 1
+    (its 'Final energy = -213.8765829573 eV'); each frame's energy is the last 'Final energy'
+    line before the iteration's 'finished iteration' line (the file's own lines)."""
+    text = _castep_text(MORE / "castep_si2_opt.castep.gz")
+    finished = []
+    energy = None
+    for line in text.splitlines():
+        if line.startswith("Final energy"):
+            energy = float(line.split()[-2])
+        if "BFGS: finished iteration" in line:
+            finished.append(energy)
+    run = read_run(MORE / "castep_si2_opt.castep.gz")
+    assert len(finished) == len(run) == 7
+    np.testing.assert_allclose(run.energies, finished, atol=1e-8, rtol=0)
+    assert -213.8765829573 not in run.energies.tolist()
+    assert run.not_relaxation is None and run.unfinished is None
+
+
+def test_castep_and_fhi_aims_molecular_dynamics_are_no_relaxation(tmp_path):
+    """The header's 'type of calculation : molecular dynamics' (CASTEP) and control.in's
+    'MD_run' (FHI-aims) name the steps: no relaxation, as pw.x's calculation = 'md' and VASP's
+    IBRION = 0 are; the aims run's 4 Å cubic cell (its lattice_vector lines) is every frame's, where
+    ASE's reader gives it to the last of 5 frames only (the run had been refused as 'a molecule or
+    cluster': no cell)."""
+    castep = read_run(MORE / "castep_si8_md_npt.castep.gz")
+    assert castep.not_relaxation == ("molecular dynamics (CASTEP: type of calculation : "
+                                     "molecular dynamics)")
+    path = tmp_path / "H2O_periodic_MD.out"
+    path.write_bytes(gzip.decompress((MORE / "aims_h2o_periodic_md.out.gz").read_bytes()))
+    ase_frames = ase.io.read(path, ":", format="aims-output")                     # ASE's
+    assert [a.pbc.all() for a in ase_frames] == [False] * 4 + [True]
+    aims = read_run(MORE / "aims_h2o_periodic_md.out.gz")
+    assert len(aims) == 5
+    np.testing.assert_allclose(aims.cells, np.broadcast_to(4.0 * np.eye(3), (5, 3, 3)))
+    np.testing.assert_allclose(aims.positions, [a.positions for a in ase_frames], atol=1e-8)
+    assert aims.not_relaxation == ("molecular dynamics (FHI-aims: MD_run 0.005 NVT_nose-hoover "
+                                   "300 900)")

@@ -379,13 +379,14 @@ def _note_xyz_rounding(block, ctx: ReadContext) -> None:
 
 
 # ---------------------------------------------------------------- generic path: through ASE
-def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
+def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, adjust=None, **kwargs):
     """Every image ASE's reader returns for ``ase_format`` (a plain or compressed file), as Frames.
 
     ASE's readers of these formats read the whole file; a truncated file is ASE's to judge.
     ``steps``: (pattern with one match per ionic step the code prints, the code's name, what the
     matches are in words); fewer images than matches is said in a warning (the steps between are
-    not seen)."""
+    not seen). ``adjust(text, images, ctx)``: the images that are ionic steps (the code's own
+    reading of its file: settings and how it ended go in ``ctx``)."""
     import io
     import warnings as _w
 
@@ -410,6 +411,8 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
                 os.unlink(tmp)
     if not isinstance(images, list):
         images = [images]
+    if adjust is not None:
+        images = adjust(text, images, ctx)
     if cut:
         ctx.warn(f"the last line is cut ({len(images)} steps read); job killed or still running")
     listed = len(steps[0].findall(text)) if steps is not None else 0
@@ -425,11 +428,47 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, **kwargs):
         yield frame_from_atoms(atoms, listed - 1 if last_only else _step(atoms, i))
 
 
+_AIMS_MD = re.compile(r"^ *MD_run +(\S.*?) *$", re.M)             # control.in's echo
+_AIMS_LATTICE = re.compile(r"^ *lattice_vector +(\S+) +(\S+) +(\S+)", re.M)   # geometry.in's
+
+
+def _aims_steps(text: str, images: list, ctx: ReadContext) -> list:
+    """FHI-aims' kind of run (``MD_run`` in its control.in echo: molecular dynamics; "Geometry
+    relaxation not requested" and no MD: a single point), and the cell of frames ASE's reader
+    gives none in a periodic run (ASE 3.29 attaches the cell only where the output prints a
+    whole updated geometry: 4 of 5 frames of a periodic MD lacked it): the frame before's, else
+    the ``lattice_vector`` lines of the geometry.in echo."""
+    md = _AIMS_MD.search(text)
+    if md:
+        ctx.settings["calculation"] = f"molecular dynamics (FHI-aims: MD_run {md.group(1)})"
+    elif "Geometry relaxation not requested" in text:
+        ctx.settings["calculation"] = ("a single-point calculation (FHI-aims: \"Geometry "
+                                       "relaxation not requested\"): one structure, no ionic steps")
+    has = [a.pbc.all() and a.cell.rank == 3 for a in images]
+    vectors = _AIMS_LATTICE.findall(text)[:3]
+    if all(has) or not (any(has) or len(vectors) == 3):
+        return images
+    cell = np.array(vectors, float) if len(vectors) == 3 else None
+    lacked = []
+    for k, atoms in enumerate(images):
+        if has[k]:
+            cell = atoms.cell.array
+        elif cell is not None:
+            atoms.set_cell(cell)
+            atoms.pbc = True
+            lacked.append(k)
+    if lacked:
+        ctx.warn(f"ASE's FHI-aims reader gave no cell for {len(lacked)} of {len(images)} frames; "
+                 f"each has the cell before it (the first, geometry.in's lattice_vector lines "
+                 f"as the output echoes them)")
+    return images
+
+
 def read_aims(path, ctx: ReadContext):
-    """FHI-aims standard output through ASE (every relaxation step)."""
+    """FHI-aims standard output through ASE (every relaxation step; :func:`_aims_steps`)."""
     ctx.settings.update({"code": "aims"})
     ctx.round_to("cartesian", 1e-8)              # aims prints 'atom' lines with %.8f (Å)
-    yield from _through_ase(path, ctx, "aims-output")
+    yield from _through_ase(path, ctx, "aims-output", adjust=_aims_steps)
 
 
 # one per ionic step of a geometry optimisation ("BFGS: finished iteration 3 with enthalpy= ...",
@@ -437,12 +476,69 @@ def read_aims(path, ctx: ReadContext):
 _CASTEP_STEP = re.compile(r"^ *\w+: finished (?:MD )?iteration", re.M)
 
 
+# ASE's CASTEP reader (ase.io.castep.castep_reader, read_castep_castep) reads the file's last run
+# (from its last "Welcome ... CASTEP" line to "Finalisation time   =") and ends an image at each
+# line holding one of these, and at the end; an image ended by "improving iteration" is a line
+# minimisation's trial configuration, not the configuration an iteration finished on
+_CASTEP_IMAGE_END = re.compile(r"BFGS: starting iteration|BFGS: (improving) iteration|"
+                               r"Starting MD iteration")
+_CASTEP_KIND = re.compile(r"^ *type of calculation +: *(.+?) *$", re.M)
+_CASTEP_LIMIT = re.compile(r"Geometry optimization failed to converge after +(\d+) steps")
+
+
+def _castep_run(text: str) -> str:
+    """The last run of a .castep file, as ASE's reader delimits it."""
+    lines = text.splitlines()
+    start = max((i for i, line in enumerate(lines)
+                 if ("Welcome" in line or "Materials Studio" in line) and "CASTEP" in line),
+                default=0)
+    end = next((i for i in range(start, len(lines)) if "Finalisation time   =" in lines[i]),
+               len(lines) - 1)
+    return "\n".join(lines[start:end + 1])
+
+
+def _castep_steps(text: str, images: list, ctx: ReadContext) -> list:
+    """The images that are CASTEP's iterations (line-minimisation trials left out: a file of 31
+    BFGS iterations gives ASE 91 images), CASTEP's type of calculation, and a stop at the step
+    limit."""
+    run = _castep_run(text)
+    kind = _CASTEP_KIND.search(run)
+    if kind:
+        ctx.settings["calculation"] = kind.group(1)
+    limit = _CASTEP_LIMIT.search(run)
+    if limit:
+        ctx.unfinished = f"stopped at its step limit (CASTEP: '{' '.join(limit.group(0).split())}')"
+    trial = [bool(m.group(1)) for m in _CASTEP_IMAGE_END.finditer(run)] + [False]
+    if len(trial) != len(images) or not any(trial):
+        return images
+    ctx.warn(f"{sum(trial)} line-minimisation trial configuration{'s' if sum(trial) != 1 else ''} "
+             f"of CASTEP's optimiser left out (ASE's reader returns them among the iterations)")
+    return [atoms for atoms, t in zip(images, trial) if not t]
+
+
 def read_castep(path, ctx: ReadContext):
-    """CASTEP .castep output through ASE; said when ASE returns fewer structures than the ionic
-    steps CASTEP lists (ASE 3.29 returns only the last of a damped-MD optimisation's)."""
+    """CASTEP .castep output through ASE, one frame per iteration (:func:`_castep_steps`); said
+    when ASE returns fewer structures than the ionic steps CASTEP lists (ASE 3.29 returns only
+    the last of a damped-MD optimisation's)."""
     ctx.settings.update({"code": "castep"})
-    yield from _through_ase(path, ctx, "castep-castep",
+    yield from _through_ase(path, ctx, "castep-castep", adjust=_castep_steps,
                             steps=(_CASTEP_STEP, "CASTEP", "'finished iteration' lines"))
+
+
+def run_kind(code_settings: dict) -> str | None:
+    """What the steps of a run read through ASE are when they are no relaxation, else None: a
+    CASTEP run's ``type of calculation`` (geometry optimization is one; a single point or a band
+    structure has no ionic steps), FHI-aims' in words (:func:`_aims_steps`)."""
+    s = code_settings or {}
+    what = s.get("calculation")
+    if what is None or what == "geometry optimization" or s.get("code") not in ("castep", "aims"):
+        return None
+    if s["code"] == "aims":
+        return what
+    said = f"CASTEP: type of calculation : {what}"
+    if what in ("single point energy", "band structure"):
+        return f"a single-point calculation ({said}): one structure, no ionic steps"
+    return f"{what} ({said})"
 
 
 def read_castep_geom(path, ctx: ReadContext):

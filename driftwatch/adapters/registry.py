@@ -553,7 +553,17 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
             if beside:
                 return "inputs-of", _inputs_of_why(folder, beside)
             return "inputs", (got[0], [n for n in files if file_size(folder / n)], *got[2:])
-    return "files", files
+    return "files", _one_per_run(files)
+
+
+def _one_per_run(files: list) -> list:
+    """The files of a folder that are runs: a CASTEP ``NAME.geom`` beside its ``NAME.castep`` (the
+    same optimisation's iterations, which CASTEP writes to both) is not one of its own; the
+    .castep, which also has the run's settings and how it ended, is read."""
+    castep = {strip_compression(n)[:-len(".castep")] for n in files
+              if strip_compression(n).endswith(".castep")}
+    return [n for n in files if not (strip_compression(n).endswith(".geom")
+                                     and strip_compression(n)[:-len(".geom")] in castep)]
 
 
 _INPUT_FOLDERS = ("input", "inputs")
@@ -910,6 +920,9 @@ def run_kind(code_settings: dict) -> str | None:
         return f"molecular dynamics (ASE's {s['dynamics']})"
     if s.get("code") == "ase" and s.get("dynamics_seen"):   # no description; what the frames show
         return f"molecular dynamics ({s['dynamics_seen']})"
+    if s.get("code") in ("castep", "aims"):             # read through ASE: no code table row
+        from .ase_native import run_kind as through_ase
+        return through_ase(s)
     code = _code_named(s.get("code"))
     fn = code.function("run_kind") if code is not None else None
     return fn(s) if fn is not None else None
