@@ -239,7 +239,25 @@ def _prepare_uncached(cell, positions, numbers, vacuum_axis):
     if vacuum_axis is not None:
         lattice = _perpendicular_vacuum(lattice)
     frac = np.linalg.solve(lattice.T, positions.T).T
+    if vacuum_axis is not None:
+        frac[:, 2] += _layer_in_one_piece(frac[:, 2])
     return lattice, np.ascontiguousarray(frac), numbers.astype(np.intc)
+
+
+def _layer_in_one_piece(z):
+    """Whole numbers of slab periods to add to each atom's fractional height ``z`` so that the
+    layer is in one piece (the vacuum, the widest empty gap, between its top and the next
+    period's bottom) with its middle in [0, 1). spglib's layer routine is not invariant under
+    these lattice translations (2.8: a 1H MX2 layer wrapped across z = 0, its atoms at z 0, 0.07
+    and 0.93, is p3m1 (69); in one piece, p-6m2 (78), as 3D spglib's P-6m2 (187) says); a layer
+    already in one piece about the middle of the cell is left as it is."""
+    wrapped = z - np.floor(z)
+    ordered = np.sort(wrapped)
+    gaps = np.diff(np.append(ordered, ordered[0] + 1.0))
+    bottom = ordered[(int(np.argmax(gaps)) + 1) % len(ordered)]
+    piece = wrapped + (wrapped < bottom)                   # [bottom, bottom + 1)
+    piece -= np.floor((piece.min() + piece.max()) / 2)      # its middle in [0, 1)
+    return np.round(piece - z)
 
 
 def _to_c_axis(cell, vacuum_axis):

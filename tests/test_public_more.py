@@ -620,3 +620,58 @@ def test_castep_and_fhi_aims_molecular_dynamics_are_no_relaxation(tmp_path):
     np.testing.assert_allclose(aims.positions, [a.positions for a in ase_frames], atol=1e-8)
     assert aims.not_relaxation == ("molecular dynamics (FHI-aims: MD_run 0.005 NVT_nose-hoover "
                                    "300 900)")
+
+
+# ---------------------------------------------------------------- a layer across the cell boundary
+def test_a_layer_group_does_not_depend_on_where_the_layer_sits_along_its_normal(tmp_path):
+    """spglib's layer test structure (1H MoS2, p-6m2 No. 78; tests/data/public_more/README.md)
+    moved along its normal by whole and half slab periods, its atoms wrapped into the cell or not:
+    a translation, so the layer group is p-6m2 throughout, as 3D spglib's group of the same cells
+    is P-6m2 (187) throughout. spglib 2.8's layer routine, given the wrapped coordinates of the
+    layer across z = 0 (atoms at fractional z 0, 0.07, 0.93), answers p3m1 (69): driftwatch had
+    passed it on."""
+    import spglib
+    from driftwatch import symmetry
+    atoms = ase.io.read(MORE / "spglib_layer_mos2" / "POSCAR-78")
+    cell = atoms.cell.array
+    across = atoms.get_positions() + 0.5 * cell[2]        # the layer about z = 0, then wrapped
+    frac = np.linalg.solve(cell.T, across.T).T % 1.0
+    assert spglib.get_symmetry_layerdataset((cell, frac, atoms.numbers), aperiodic_dir=2,
+                                            symprec=1e-3).number == 69      # spglib's own, raw
+    for shift in (0.0, 0.5, 1.0, -2.0, 3.5):
+        for wrap in (False, True):
+            moved = atoms.get_positions() + shift * cell[2]
+            if wrap:
+                moved = (np.linalg.solve(cell.T, moved.T).T % 1.0) @ cell
+            bulk = spglib.get_symmetry_dataset(
+                (cell, np.linalg.solve(cell.T, moved.T).T, atoms.numbers), symprec=1e-3)
+            assert bulk.number == 187
+            got = symmetry.group_at(cell, moved, atoms.numbers, 1e-3, vacuum_axis=2)
+            assert (got["group"], got["operations"]) == (78, 12), (shift, wrap)
+
+
+def test_a_real_layer_written_about_z0_keeps_its_group_when_a_writer_wraps_it(tmp_path):
+    """A pw.x relax of an AlSi2 layer written about z = 0 (tests/data/qe/README.md); pw.x finds
+    12 symmetry operations (p-6m2's). Read as pw.x wrote it, and with ASE's ``wrap()`` applied to
+    every frame, or to the last only (a run continued from a wrapped structure): p-6m2 (78) at
+    every step, and no group-lost (the wrapped last frame had read p3m1 (69): a false group-lost)."""
+    from driftwatch import analyze
+    run_dir = Path(__file__).parent / "data" / "qe_trials" / "alsi2_layer_across_z0"
+    text = gzip.decompress((run_dir / "pw.out.gz").read_bytes()).decode()
+    assert "12 Sym. Ops. (no inversion) found" in text                        # pw.x's own
+    pw = tmp_path / "pw.out"
+    pw.write_text(text)
+    frames = ase.io.read(pw, ":", format="espresso-out")
+    assert len(frames) == 5
+    for name, wrapped in (("all", range(5)), ("last", [4])):
+        images = [a.copy() for a in frames]
+        for k in wrapped:
+            images[k].wrap()
+        path = tmp_path / f"wrapped_{name}.extxyz"
+        ase.io.write(path, images, format="extxyz")
+        record = analyze(path)
+        groups = {(s["group"], s["symbol"]) for s in record["summary"]["verdict"]["structure"]
+                  .values() if isinstance(s, dict) and "group" in s}
+        assert groups == {(78, "p-6m2")}, (name, record["summary"]["verdict"])
+        assert not [f for f in record["flags"] if f["code"].startswith("group-")], name
+    assert analyze(run_dir)["summary"]["verdict"]["structure"]["final"]["group"] == 78
