@@ -116,6 +116,11 @@ def _write_poscar(t, d):
     return vasp_gen.write_poscar(d / "POSCAR", t.cells[0], t.frac[0], t.symbols)
 
 
+def _write_cif(t, d):
+    ase.io.write(d / "cell.cif", _ase_images(t, pbc=True)[0], format="cif")     # ASE's writer
+    return d / "cell.cif"
+
+
 def _write_traj(t, d):
     ase.io.write(d / "relax.traj", _ase_images(t))
     return d / "relax.traj"
@@ -158,7 +163,7 @@ WRITERS = {
     "vasp-xml": _write_vasp_xml, "vasp-out": _write_outcar, "vasp-xdatcar": _write_xdatcar,
     "vasp-poscar": _write_poscar, "traj": _write_traj, "extxyz": _write_extxyz,
     "ase-db": _write_db, "ase-json-db": lambda t, d: _write_db(t, d, "relax.json"),
-    "pymatgen-json": _write_pmg,
+    "pymatgen-json": _write_pmg, "cif": _write_cif,
 }
 BUILTIN = list(formats())
 # formats with no writer at hand: genuine files (tests/data/public/README.md) are the round trip
@@ -228,7 +233,7 @@ def test_every_registered_format_round_trips(name, traj, tmp_path):
     assert detect(path) == name
     run = read_run(path)
     assert run.format == name and run.source == str(path)
-    n = 1 if name == "vasp-poscar" else len(traj.cells)
+    n = 1 if name in ("vasp-poscar", "cif") else len(traj.cells)
     assert len(run) == n
     # generator values, written as text with >= 8 decimals (extxyz: ASE writes 8)
     np.testing.assert_allclose(run.cells, traj.cells[:n], atol=1e-7, rtol=0)

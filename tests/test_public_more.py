@@ -675,3 +675,27 @@ def test_a_real_layer_written_about_z0_keeps_its_group_when_a_writer_wraps_it(tm
         assert groups == {(78, "p-6m2")}, (name, record["summary"]["verdict"])
         assert not [f for f in record["flags"] if f["code"].startswith("group-")], name
     assert analyze(run_dir)["summary"]["verdict"]["structure"]["final"]["group"] == 78
+
+
+def test_a_cif_is_one_structure_with_the_sites_its_operations_make():
+    """pymatgen's symmetrised CIF of a 12-atom cell (Pm, 2 operations, 8 sites listed;
+    tests/data/public_more/README.md): read as one structure, the sites expanded by the CIF's
+    operations as pymatgen's CifParser expands them (12, the same formula), its group at each
+    symprec the one pymatgen's SpacegroupAnalyzer gives (spglib underneath); a CIF had been 'unknown
+    format'."""
+    from pymatgen.core import Structure
+    from pymatgen.symmetry.analyzer import SpacegroupAnalyzer
+    from driftwatch import symmetry
+    from driftwatch.adapters import detect
+    path = MORE / "pymatgen_cif" / "H6PbCI3N_mp-977013_symmetrized.cif"
+    assert detect(path) == "cif"
+    structure = Structure.from_file(path)                                       # pymatgen's
+    run = read_run(path)
+    assert len(run) == 1 and run.numbers.size == len(structure) == 12
+    assert sorted(run.numbers.tolist()) == sorted(s.specie.Z for s in structure)
+    assert run.not_relaxation.startswith("a single structure (H6PbCI3N_mp-977013_symmetrized.cif)")
+    for symprec in (1e-5, 1e-3, 1e-1):
+        ours = symmetry.group_at(run.cells[0], run.positions[0], run.numbers, symprec)
+        theirs = SpacegroupAnalyzer(structure, symprec=symprec)
+        assert ours["group"] == theirs.get_space_group_number() == 6
+        assert ours["operations"] == len(theirs.get_symmetry_operations()) == 2

@@ -14,7 +14,7 @@ import re
 import numpy as np
 
 from ..errors import InputError
-from ._io import Lines
+from ._io import Lines, strip_compression
 from .run import ReadContext, frame_from_atoms, note_fix_symmetry
 
 __all__ = ["read_traj", "read_extxyz", "read_db", "read_aims",
@@ -545,6 +545,25 @@ def read_castep_geom(path, ctx: ReadContext):
     """CASTEP .geom (geometry optimisation) through ASE."""
     ctx.settings.update({"code": "castep"})
     yield from _through_ase(path, ctx, "castep-geom")
+
+
+def _cif_structure(text: str, images: list, ctx: ReadContext) -> list:
+    """A CIF's one structure; several data blocks, or partial occupancy, refused."""
+    if len(images) != 1:
+        raise InputError(ctx.path, f"a CIF of {len(images)} structures (data blocks): driftwatch "
+                                   f"reads one structure from a CIF; give each its own file")
+    occupancy = images[0].info.get("occupancy") or {}
+    if any(len(site) > 1 or sum(site.values()) < 1 - 1e-3 for site in occupancy.values()):
+        raise InputError(ctx.path, "partial occupancy (a disordered structure) has no single "
+                                   "lattice of atoms to analyse")
+    ctx.settings["single_structure"] = strip_compression(os.path.basename(str(ctx.path)))
+    return images
+
+
+def read_cif(path, ctx: ReadContext):
+    """A CIF: one structure, its sites expanded by the CIF's symmetry operations (ASE's reader,
+    which also takes the space group from the CIF when no operations are listed)."""
+    yield from _through_ase(path, ctx, "cif", adjust=_cif_structure)
 
 
 def read_gpaw(path, ctx: ReadContext):

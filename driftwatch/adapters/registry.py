@@ -964,5 +964,7 @@ register("castep-geom", _A + "ase_native:read_castep_geom", globs=("*.geom",),
                                                                          "(through ASE)")
 register("gpaw-out", _A + "ase_native:read_gpaw", globs=(),
          magic=rb"\|__ \|  _\|___\|_____\|", description="GPAW text output (through ASE)")
+register("cif", _A + "ase_native:read_cif", globs=("*.cif",), magic=rb"^data_\S",
+         description="CIF (a single structure, through ASE)")
 register("vasp-poscar", _A + "vasp:read_poscar", globs=("*POSCAR*", "*CONTCAR*", "*.vasp"),
          description="VASP POSCAR/CONTCAR (a single structure)")
