@@ -699,3 +699,36 @@ def test_a_cif_is_one_structure_with_the_sites_its_operations_make():
         theirs = SpacegroupAnalyzer(structure, symprec=symprec)
         assert ours["group"] == theirs.get_space_group_number() == 6
         assert ours["operations"] == len(theirs.get_symmetry_operations()) == 2
+
+
+# ---------------------------------------------------------------- pw.x runs appended to one output
+def test_single_points_appended_on_moving_structures_are_said_as_such():
+    """Three pw.x runs appended to one output (tests/data/public_more/README.md), each one SCF
+    with forces on a structure the run before moved (the '!' energies fall: -2545.19208,
+    -2545.19429, -2545.19596 Ry): three frames, no relaxation by pw.x's own steps, said as three
+    single points one after another (it had said 'one structure' of a three-frame run)."""
+    path = MORE / "qe_appended_scfs.log.gz"
+    text = gzip.decompress(path.read_bytes()).decode()
+    assert text.count("Program PWSCF") == 3                                     # pw.x's own
+    run = read_run(path)
+    assert len(run) == 3 and [s["name"] for s in run.stages] == ["run1", "run2", "run3"]
+    assert np.abs(np.diff(run.positions, axis=0)).max() > 1e-3                # they moved
+    assert run.not_relaxation == ("a single-point calculation (the output: an SCF and no ionic "
+                                  "step) 3 times, one after another, each on its own structure: "
+                                  "no ionic steps of the code's own")
+    assert "one structure, no ionic steps" not in " ".join(run.warnings)
+
+
+def test_starts_that_stopped_before_a_step_give_no_symmetry_count():
+    """phonopy's Si supercell output (tests/data/public_more/README.md): two pw.x starts stop in
+    their first SCF ('2 Sym. Ops.' each), the third finishes its SCF ('4 Sym. Ops. (no
+    inversion) found'). The run's one frame is the third's: its count is 4 (it had been the first
+    start's 2), and the run is a single point."""
+    path = MORE / "qe_aborted_starts_then_scf.out.gz"
+    text = gzip.decompress(path.read_bytes()).decode()
+    counts = re.findall(r"(\d+) Sym\. Ops\.", text)
+    assert counts == ["2", "2", "4"] and text.count("End of self-consistent calculation") == 1
+    run = read_run(path)
+    assert len(run) == 1 and run.code_settings["nsym"] == 4
+    assert not [w for w in run.warnings if "symmetry operations in a later run" in w]
+    assert run.not_relaxation.startswith("a single-point calculation")

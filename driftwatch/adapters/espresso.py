@@ -177,6 +177,19 @@ def _species(header, numbers) -> tuple | None:
     return tuple(labels) if any(len(v) > 1 for v in per_element.values()) else None
 
 
+def _note_nsym(reported: list, ctx) -> None:
+    """The symmetry operations pw.x reported (``nsym``), from the first run of the file that gave
+    a step (a start that stopped before its first step gives none: its count is not the run's);
+    a later run's other count is said."""
+    if not reported:
+        return
+    if any(n != reported[0] for n in reported):
+        other = next(n for n in reported if n != reported[0])
+        ctx.warn(f"pw.x reports {other} symmetry operations in a later run (first run: "
+                 f"{reported[0]})")
+    ctx.settings.setdefault("nsym", reported[0])
+
+
 def _read_block(fh, n):
     """The next n lines, or None if the file ends first."""
     out = fh.read_lines(n)
@@ -351,6 +364,7 @@ def read_pw_out(path, ctx: ReadContext):
     seen_start = False
     nscf = False        # a run of this file was 'Band Structure Calculation'
     per_run: list[int] = []     # frames emitted per pw.x run (header) in this file
+    run_nsym: list = []         # the symmetry operations each run reported (None: not said)
     carried = ctx.carry.pop("espresso-unevaluated", None)
 
     def emit(cfg):
@@ -456,10 +470,7 @@ def read_pw_out(path, ctx: ReadContext):
                     ctx.settings["nosym"] = False
                 if nsym is not None:
                     ctx.settings.setdefault("code", "espresso")
-                    if "nsym" in ctx.settings and ctx.settings["nsym"] != nsym:
-                        ctx.warn(f"pw.x reports {nsym} symmetry operations in a later run "
-                                 f"(first run: {ctx.settings['nsym']})")
-                    ctx.settings.setdefault("nsym", nsym)
+                run_nsym.append(nsym)
                 # a run appended after a structure pw.x printed but never evaluated (its step
                 # limit, a relax's final coordinates) takes that structure's place in the
                 # numbering, as the next file of a restart written apart does
@@ -599,6 +610,7 @@ def read_pw_out(path, ctx: ReadContext):
                                          "Calculation': calculation = 'nscf' or 'bands'): no SCF "
                                          "energy, no ionic step",
                                    "its structure is the one of the run it follows: audit that")
+        _note_nsym([m for m, n in zip(run_nsym, per_run) if n and m is not None], ctx)
         contradiction = _input_contradicted(ctx.settings, given, ionic, cell_moved,
                                             "bfgs" if bfgs else shown,
                                             done and not (stops or on_request or error), step)
@@ -610,7 +622,8 @@ def read_pw_out(path, ctx: ReadContext):
         runs = [(f"run{k + 1}", n) for k, n in enumerate(per_run) if n]
         if len(per_run) > 1 and len(runs) > 1:
             ctx.file_stages = runs
-        if done and not ionic and step == len(per_run) and "calculation" not in ctx.settings:
+        if done and not ionic and step == len(runs) and max(per_run, default=0) == 1 and \
+                "calculation" not in ctx.settings:
             ctx.settings["calculation"] = "scf"   # one SCF per run, no ionic step: as it shows
             ctx.settings["calculation_from"] = "the output: an SCF and no ionic step"
         if halted and step:     # the run's end: said once, as why it is unfinished

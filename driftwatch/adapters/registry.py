@@ -797,7 +797,10 @@ def _source_of(pick: _Pick, src: Path) -> str:
 def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> Iterator[Frame]:
     """Every completed step of every stage, steps numbered on across stages."""
     import dataclasses
+
+    import numpy as np
     offset, index, first_numbers, kinds = 0, 0, None, []
+    moved, seen = True, None          # moved: no frame's structure is the one before it
     ctx.stage_count = len(pick.stages)
     for name, src, fmt in pick.stages:
         ctx.path = _source_of(pick, src)
@@ -811,6 +814,11 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
             elif len(pick.stages) > 1 and n == 0 and not _same_atoms(first_numbers, fr.numbers):
                 raise InputError(src, f"stage {name} holds other atoms than the stage before it; "
                                       f"read the stages one by one ({pick.run_dir}@{name})")
+            if seen is not None and fr.positions.shape == seen.positions.shape and \
+                    np.allclose(fr.positions, seen.positions, atol=1e-6) and \
+                    np.allclose(fr.cell, seen.cell, atol=1e-6):
+                moved = False
+            seen = fr
             if offset:
                 fr = dataclasses.replace(fr, step=fr.step + offset)
             n, last = n + 1, fr.step
@@ -832,8 +840,16 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
         ctx.warn(f"unfinished: {ctx.unfinished}; the final structure is not a relaxed one")
     # no relaxation when no stage is one (relaxations ending in a static stage are relaxations)
     what = ctx.not_relaxation = kinds[-1] if kinds and all(kinds) else None
+    if what and moved and index > 1 and all(k.endswith(_ONE_STRUCTURE) for k in kinds):
+        # single points run one after another (stages, or runs appended to one output)
+        what = ctx.not_relaxation = (f"{what[:-len(_ONE_STRUCTURE)]} {index} times, one "
+                                     f"after another, each on its own structure: no ionic steps "
+                                     f"of the code's own")
     if what:
         ctx.warn(not_relaxation_note(what, index))
+
+
+_ONE_STRUCTURE = ": one structure, no ionic steps"     # how a single point's words end
 
 
 def not_relaxation_note(what: str, frames: int | None = None) -> str:
