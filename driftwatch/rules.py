@@ -271,8 +271,10 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     nearing = _nearest(cand, D) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
     # (a lattice of no higher type: the nearest higher type, how far it stayed)
+    # (ends of two types inside the margins of a change: the more specific one)
     away_end = [t for t in types if D[t][-1] > within]
-    kept = last if last != _LOWEST[dim] else (
+    ends = [t for t in (first, last) if t != _LOWEST[dim]]
+    kept = max(ends, key=lambda t: ORDER[t]) if ends else (
         _nearest(away_end, D) if away_end else None)
     subject = g or lo or nearing or kept
     k = max(frm) if frm else None
@@ -286,8 +288,9 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     drift = None
     if subject:
         d0, d1 = float(D[subject][0]), float(D[subject][-1])
+        toward = subject in (g, nearing) and d0 > 0      # of the way to a type: gained, neared
         drift = {"type": subject, "initial": d0, "final": d1, "change": d1 - d0,
-                 "fraction": None if d0 == 0 else (d0 - d1) / d0}
+                 "fraction": (d0 - d1) / d0 if toward else None}
     return out, drift, D
 
 
@@ -383,6 +386,8 @@ def _lattice_flags(frames, lv, D, r):
         below = D[t] <= (1 - frac) * D[t][0] * shrink   # dated as gains are: from the first
         k = min(_from_frame(below, lambda b: b), len(frames) - 1)   # frame of the last stretch
         way = 100 * (1 - D[t][-1] / (D[t][0] * shrink[-1]))
+        scaled = (f", from {_g(D[t][0] * shrink[-1])} Å at the lattice's final size"
+                  if abs(shrink[-1] - 1) > 0.01 else "")
         held = [int(frames[i]["step"]) for i in np.flatnonzero(D[t] <= within)]
         seen = (f"; it was within {_g(within)} Å at step{'s' if len(held) > 1 else ''} "
                 f"{', '.join(map(str, held[:4]))}{', ...' if len(held) > 4 else ''} on the way "
@@ -391,7 +396,8 @@ def _lattice_flags(frames, lv, D, r):
                            f"the lattice moved toward {t} ({NAMES[t]}) and ends without reaching "
                            f"it within {_g(within)} Å: "
                            f"deformation {_g(D[t][0])} -> {_g(D[t][-1])} Å "
-                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way){seen}"
+                           f"({'over 99' if way > 99 else f'{way:.0f}'} % of the way"
+                           f"{scaled}){seen}"
                            + _overshoot(frames, lv), t, float(D[t][-1]), frac))
     for p in lv["passed_through"][:1]:        # the longest stretch; the record lists them all
         t = p["type"]
@@ -705,6 +711,9 @@ def _text(direction, lv, sv, frames) -> str:
     parts = []
     if lv["direction"] == "kept" and lv.get("pending") and lv["initial"] != lv["final"]:
         parts.append(f"lattice {lv['initial']} -> {lv['final']} ({lv['pending']})")
+    elif lv["direction"] == "kept" and lv["initial"] != lv["final"]:
+        parts.append(f"lattice {lv['initial']} -> {lv['final']}, counted as kept (a move inside "
+                     f"the margins rules.lattice.start_away and left_beyond)")
     elif lv["direction"] == "kept":
         parts.append(f"lattice kept {lv['final']}")
     else:

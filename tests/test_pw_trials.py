@@ -4,6 +4,7 @@ pw.x printed and ASE's espresso reader."""
 from __future__ import annotations
 
 import gzip
+import re
 import shutil
 import subprocess
 import sys
@@ -241,3 +242,53 @@ def test_an_input_of_another_calculation_beside_a_pw_x_output_is_not_its_own(tmp
         assert run.unfinished == ref.unfinished is None, name
         assert any(f"the pw.x input pw.in beside it is not this output's (calculation = "
                    f"'{foreign}'" in w for w in run.warnings), name
+
+
+def _one_atom_lattice_group(run, k, symprec=1e-3):
+    """spglib's group of frame k's lattice alone (one atom at the origin): its Bravais type."""
+    import spglib
+    return spglib.get_symmetry_dataset((run.cells[k], [[0, 0, 0]], [1]), symprec=symprec).number
+
+
+def test_a_lattice_move_inside_the_margins_is_not_said_kept_as_its_final_type():
+    """Two real one-atom Al vc-relaxes (tests/data/qe/README.md) whose lattice changes type by
+    less than a change must cross (rules.lattice.start_away 0.01 Å, left_beyond 0.002 Å): one
+    from a strained fcc cell spglib calls monoclinic at 1e-3 Å (C2/m, 12) to fcc (Fm-3m, 225); one
+    from a bcc cell (Im-3m, 229) to body-centred tetragonal (I4/mmm, 139). The verdict had said
+    "lattice kept cF" and "lattice kept tI" (the final type, as if held throughout) and the
+    second's drift was tI's 0 -> 0; it names both ends, and the drift follows the cubic type."""
+    from driftwatch import analyze
+    cases = {"al1_tiny_strain_to_cF": ("mS", "cF", 12, 225, "cF"),
+             "al1_bcc_to_bct_inside_margin": ("cI", "tI", 229, 139, "cI")}
+    for name, (first, last, g0, g1, subject) in cases.items():
+        run = read_run(TRIALS / name)
+        assert (_one_atom_lattice_group(run, 0), _one_atom_lattice_group(run, -1)) == (g0, g1)
+        summary = analyze(TRIALS / name)["summary"]
+        lattice = summary["verdict"]["lattice"]
+        assert (lattice["direction"], lattice["initial"], lattice["final"]) == \
+            ("kept", first, last)
+        assert (f"lattice {first} -> {last}, counted as kept (a move inside the margins "
+                f"rules.lattice.start_away and left_beyond)") in summary["verdict"]["text"]
+        assert f"lattice kept {last}" not in summary["verdict"]["text"]
+        assert summary["drift"]["type"] == subject and summary["drift"]["fraction"] is None
+
+
+def test_lattice_nearing_says_its_share_of_the_way_against_the_lattice_size():
+    """A one-atom Al cell far from cF whose volume falls by over a quarter (its pw.x output):
+    the flag's "% of the way" is measured against the lattice's size, and now says the start's
+    deformation at the final size it is taken from (56 % = 1 - 1.44 / 3.28; it had printed
+    4.05 -> 1.44 Å beside 56 %, which a reader could not reproduce)."""
+    from driftwatch import analyze
+    text = gzip.decompress((TRIALS / "al1_mS_far_from_cF_shrinking" / "pw.out.gz").read_bytes())
+    volumes = [float(x) for x in re.findall(rb"new unit-cell volume = +\S+ a\.u\.\^3 \( +(\S+) Ang",
+                                             text)]
+    assert volumes and volumes[-1] < 0.75 * volumes[0]                        # pw.x's own
+    record = analyze(TRIALS / "al1_mS_far_from_cF_shrinking")
+    flag = next(f for f in record["flags"] if f["code"] == "lattice-nearing")
+    got = re.search(r"deformation (\S+) -> (\S+) Å \((\d+) % of the way, from (\S+) Å at the "
+                    r"lattice's final size\)", flag["message"])
+    assert got, flag["message"]
+    d0, d1, way, scaled = float(got[1]), float(got[2]), int(got[3]), float(got[4])
+    assert abs(100 * (1 - d1 / scaled) - way) < 1.0 and scaled < d0
+    drift = record["summary"]["drift"]
+    assert drift["type"] == "cF" and abs(drift["fraction"] - (d0 - d1) / d0) < 0.01

@@ -559,11 +559,13 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
 def _one_per_run(files: list) -> list:
     """The files of a folder that are runs: a CASTEP ``NAME.geom`` beside its ``NAME.castep`` (the
     same optimisation's iterations, which CASTEP writes to both) is not one of its own; the
-    .castep, which also has the run's settings and how it ended, is read."""
+    .castep, which also has the run's settings and how it ended, is read. A CIF is none (read
+    when given)."""
     castep = {strip_compression(n)[:-len(".castep")] for n in files
               if strip_compression(n).endswith(".castep")}
     return [n for n in files if not (strip_compression(n).endswith(".geom")
-                                     and strip_compression(n)[:-len(".geom")] in castep)]
+                                     and strip_compression(n)[:-len(".geom")] in castep)
+            and not strip_compression(n).lower().endswith(".cif")]
 
 
 _INPUT_FOLDERS = ("input", "inputs")
@@ -980,7 +982,8 @@ register("castep-geom", _A + "ase_native:read_castep_geom", globs=("*.geom",),
                                                                          "(through ASE)")
 register("gpaw-out", _A + "ase_native:read_gpaw", globs=(),
          magic=rb"\|__ \|  _\|___\|_____\|", description="GPAW text output (through ASE)")
-register("cif", _A + "ase_native:read_cif", globs=("*.cif",), magic=rb"^data_\S",
-         description="CIF (a single structure, through ASE)")
+register("cif", _A + "ase_native:read_cif", globs=(), magic=rb"^data_\S",
+         description="CIF (a single structure, through ASE; read when given, never a run of an "
+                     "audit: a campaign's CIFs are its inputs and references)")
 register("vasp-poscar", _A + "vasp:read_poscar", globs=("*POSCAR*", "*CONTCAR*", "*.vasp"),
          description="VASP POSCAR/CONTCAR (a single structure)")
