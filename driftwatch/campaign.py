@@ -40,6 +40,7 @@
 from __future__ import annotations
 
 import fnmatch
+import hashlib
 import json
 import os
 import re
@@ -782,27 +783,42 @@ def _read_marker(out: Path) -> dict | None:
 
 
 def _write_marker(out: Path, roots: list[str], record_files: list[str],
-                  runs: list[str] | None) -> None:
+                  runs: dict | list | None) -> None:
     """The output folder's own marker: what wrote it, the records this audit wrote and every run id
-    of the audit (``runs``): the next audit retires the records and database rows of runs gone
-    since, and says what changed."""
+    of the audit with a digest of its answer (``runs``: :func:`_answers`): the next audit retires
+    the records and database rows of runs gone since, and says what changed."""
     from . import __version__
     data = {"tool": "driftwatch", "kind": "campaign audit", "version": __version__,
             "roots": roots, "records": sorted(record_files)}
     if runs is not None:
         data["runs"] = sorted(runs)
+    if isinstance(runs, dict):
+        data["answers"] = dict(sorted(runs.items()))
     records.write_text_atomic(out / MARKER, json.dumps(data, indent=1) + "\n")
 
 
-def _since_last(old: dict, now: list[str], read_now: set) -> dict | None:
+def _digest(text: str) -> str:
+    return hashlib.sha1(text.encode()).hexdigest()[:16]
+
+
+def _answers(results: list[dict]) -> dict:
+    """``{run id: digest}`` of each run's answer (its record, or why it failed or was skipped)."""
+    return {x["run"]: x.get("answer") or _digest(json.dumps(x.get("error") or x.get("skipped"),
+                                                            sort_keys=True, default=str))
+            for x in results}
+
+
+def _since_last(old: dict, now: dict, read_now: set) -> dict | None:
     """What changed since the audit that wrote ``old`` (the folder's previous marker): runs new,
-    gone, and read again (their files changed, or the cache was not used); None when the previous
-    audit did not list its runs (none, or an older driftwatch)."""
+    gone, and read again (their files changed, or the cache was not used, or their answer is not
+    the one that audit gave: read by an audit interrupted since); None when the previous audit
+    did not list its runs (none, or an older driftwatch). ``now``: :func:`_answers`."""
     if "runs" not in old:
         return None
-    before, after = set(old["runs"]), set(now)
+    before, after, answers = set(old["runs"]), set(now), old.get("answers") or {}
     return {"new": sorted(after - before), "gone": sorted(before - after),
-            "read_again": sorted(r for r in after & before if r in read_now)}
+            "read_again": sorted(r for r in after & before if r in read_now
+                                 or answers.get(r, now[r]) != now[r])}
 
 
 def _prepare_output(out: Path, roots: list[str], overwrite: bool,
@@ -848,7 +864,8 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
         _check_links(out, db_name)
         for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
             records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
-        _write_marker(out, roots, (marker or {}).get("records", []), (marker or {}).get("runs"))
+        _write_marker(out, roots, (marker or {}).get("records", []),
+                      (marker or {}).get("answers") or (marker or {}).get("runs"))
     except OutputError:
         raise
     except OSError as exc:
@@ -1241,7 +1258,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         stale = _retire_stale(out / "records", list(old_marker.get("records", [])), current)
         summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
                            db_problems, stale, skipped)
-        every = [x["run"] for x in (*ok, *failed, *skipped)]
+        every = _answers([*ok, *failed, *skipped])
         summary["since_last"] = _since_last(old_marker, every, {
             rid for rid, r in res.results.items() if not r.get("cached")})
         summary["elapsed_s"] = time.perf_counter() - t0
@@ -1342,8 +1359,9 @@ class _Results:
         if res["ok"]:
             _write_if_changed(_inside(self.rec_dir, self.rec_dir / self.names[rid]),
                               res["record_text"])
-            view = _slim(res.pop("record_text"), rid, res.pop("parsed_record", None))
-            res = dict(res, view=view)
+            text = res.pop("record_text")
+            view = _slim(text, rid, res.pop("parsed_record", None))
+            res = dict(res, view=view, answer=_digest(text))
         self.results[rid] = res
 
     def store(self, res: dict) -> None:

@@ -778,3 +778,29 @@ def test_a_selection_is_not_audited_into_a_folder_whose_audit_holds_runs_it_leav
     s = audit([camp], out, include=["bulk*"], report=False, progress="off", workers=1,
               overwrite=True)
     assert s["runs"] == 1 and len(ase.db.connect(out / "runs.db")) == 1
+
+
+def test_runs_read_by_an_interrupted_audit_are_said_read_again_by_the_next(tmp_path, monkeypatch):
+    """An audit interrupted after its runs were analysed (Ctrl-C, a batch system's SIGTERM while
+    the tables are written) leaves their records and cache entries, and the marker of the last
+    complete audit. The next audit reads them from the cache; it had said "0 read again" of a run
+    whose file and answer changed since the last summary the user saw. The interruption is
+    raised where the tables are written (the state a real SIGINT there leaves)."""
+    import driftwatch.campaign as campaign
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    run_audit([camp], out)
+    changed = camp / "layers" / "L-obl.traj"
+    other = next(p for p in sorted(camp.rglob("*.traj")) if p != changed)
+    changed.write_bytes(other.read_bytes())             # the run re-relaxed in place, say
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+    with monkeypatch.context() as m:
+        m.setattr(campaign, "_write_tables", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            run_audit([camp], out)
+    again = run_audit([camp], out)
+    assert again["cached"] == again["runs"]                # every run from the cache
+    assert again["since_last"] == {"new": [], "gone": [], "read_again": ["camp/layers/L-obl.traj"]}
+    assert run_audit([camp], out)["since_last"]["read_again"] == []
