@@ -1232,15 +1232,15 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
     for i in range(len(common) - 1):
         ids = [rid for rid, g, *_ in per_run if g[i] != g[i + 1]]
         changes.append({"low": common[i], "high": common[i + 1], "runs": len(ids),
-                        "run_ids": ids[:50]})
+                        "run_ids": ids})
     varying = [rid for rid, g, *_ in per_run if len(set(g)) > 1]
     if window is None and per_run:
         window = (min(p[3] for p in per_run), max(p[4] for p in per_run))
     out = {"symprecs": common, "unit": "Å", "runs_considered": len(per_run),
-           "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying[:50],
+           "changes": changes, "runs_changing": len(varying), "run_ids_changing": varying,
            "recommended_symprec": None, "safe_runs": 0,
            "window": list(window) if window else None, "left_out": len(left_out),
-           "run_ids_left_out": left_out[:50],
+           "run_ids_left_out": left_out,
            "reason": "no run has a symmetry spectrum of its final frame"}
     if not per_run:
         return _left_out_said(out)
@@ -1289,7 +1289,7 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
          ", above all the one run that does not: ") + ", ".join(unsafe[:3])
         + (f" and {len(unsafe) - 3} more (tolerance.unsafe_run_ids in campaign.json)"
            if len(unsafe) > 3 else ""))
-    out.update(recommended_symprec=s, safe_runs=len(ok), unsafe_run_ids=unsafe[:50],
+    out.update(recommended_symprec=s, safe_runs=len(ok), unsafe_run_ids=unsafe,
                reason=f"{len(ok)} of {len(per_run)} runs keep the spglib verdict on the final "
                       f"structure that their own advice recommends within a factor "
                       f"{SAFE_MARGIN:g} either side of {_g(s)} Å; "

@@ -1884,6 +1884,14 @@ def test_the_campaign_symprec_counts_a_run_safe_only_in_the_plateau_its_own_advi
     assert unsafe and tol["reason"].endswith(
         (f"above all the {len(unsafe)} runs that do not: " if len(unsafe) > 1 else
          "above all the one run that does not: ") + ", ".join(unsafe))
+    # a campaign of 60 copies of each: the ids listed are every run counted (one fact, one number;
+    # the list had been cut at 50 while the text said "and N more")
+    many = [advice_item(f"{n}-{k:02d}", r) for k in range(60) for n, r in recs.items()]
+    big = campaign_advice(many, [1e-5, 1e-3, 1e-2, 0.1])
+    n_unsafe = big["runs_considered"] - big["safe_runs"]
+    assert n_unsafe > 50 and len(big["unsafe_run_ids"]) == n_unsafe
+    assert f"above all the {n_unsafe} runs that do not: " in big["reason"]
+    assert f"and {n_unsafe - 3} more (tolerance.unsafe_run_ids in campaign.json)" in big["reason"]
 
 
 def _orbit_average_rms(frac, cell, numbers, rotations, translations):
