@@ -626,3 +626,16 @@ def test_campaign_histogram_places_the_lattice_changes_read_off_the_grid(real_re
         assert camp.group_breakpoints(spec, "lattice") == want
         seen += len(want)
     assert seen > 0
+
+
+def test_a_campaign_with_no_wide_common_range_says_so(real_records):
+    """The index's table of symprec ranges no run's group changes in lists those of a factor 1.5
+    or more; when every range of the campaign is narrower (thousands of runs: one always changes),
+    it had shown an empty table under its heading. It says so, and names the widest range."""
+    from driftwatch.report import html
+    table = camp.tolerance_table(list(real_records.items()), (1e-5, 1e-3, 1e-2, 0.1))
+    narrow = dict(table, stable_ranges=[[1.0e-4, 1.2e-4], [2.0e-3, 2.8e-3]])
+    text = html._campaign_tolerance(narrow, {"recommended_symprec": None, "reason": "none"})
+    assert "<tbody></tbody>" not in text
+    assert ("No range of symprec of a factor ≥ 1.5 on the grid is free of every run's breakpoints: "
+            "the widest is 0.002-0.0028 Å (factor 1.4).") in text

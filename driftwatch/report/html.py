@@ -929,13 +929,18 @@ def _campaign_tolerance(tol, adv, labels=None):
                   if tol.get("left_out") else
                   f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum).")
                + f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}.</span></p>")
-    if tol["stable_ranges"]:
+    wide = [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5]
+    if wide:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
-                       for a, b in [r for r in tol["stable_ranges"] if r[1] >= 1.5 * r[0]][:5])
+                       for a, b in wide)
         out.append("<h3>Ranges of symprec where no run's spglib group changes (widest first, factor "
                    "≥ 1.5)</h3><table>"
                    "<thead><tr><th>from</th><th>to</th><th>width (factor)</th></tr></thead>"
                    f"<tbody>{rows}</tbody></table>")
+    elif tol["stable_ranges"]:
+        a, b = max(tol["stable_ranges"], key=lambda r: r[1] / r[0])
+        out.append(f"<p>No range of symprec of a factor ≥ 1.5 on the grid is free of every run's "
+                   f"breakpoints: the widest is {a:g}-{b:g} Å (factor {_ratio(a, b)}).</p>")
     elif tol["n_with_spectrum"]:
         out.append("<p>No range of symprec on the grid is free of every run's breakpoints.</p>")
     if tol["changes"]:
