@@ -536,8 +536,8 @@ def _on_sigterm(signum, frame):
 
 
 def _catch_sigterm(note: str = ""):
-    """Handle SIGTERM as :func:`_on_sigterm` while local workers run (main thread only); returns
-    the previous handler to restore, or None when none was installed."""
+    """Handle SIGTERM as :func:`_on_sigterm` while an audit and its local workers run (main thread
+    only); returns the previous handler to restore, or None when none was installed."""
     global _HANDLER_PID, _SIGTERM_NOTE
     if threading.current_thread() is not threading.main_thread():
         return None
@@ -1171,13 +1171,25 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
             it, a symbolic link where driftwatch writes, a full disk: the message names the file).
     """
     lock = _FolderLock()
+    note = _stop_note(Path(output if output is not None else DEFAULT_OUTPUT))
+    previous = _catch_sigterm(f"driftwatch: terminated by SIGTERM: {note}\n")
     try:
         return _run_audit(lock, roots, output, config=config, include=include, exclude=exclude,
                           workers=workers, scheduler=scheduler, db=db, use_cache=use_cache,
                           overwrite=overwrite, report=report, progress=progress, reject_on=reject_on,
                           executor=executor, quiet=quiet)
+    except KeyboardInterrupt:
+        raise KeyboardInterrupt(note) from None
     finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
         lock.release()
+
+
+def _stop_note(out: Path) -> str:
+    """What an audit stopped by Ctrl-C or SIGTERM leaves, and what to do, in words."""
+    return (f"runs finished so far are kept in {records.shown(out)}/.cache, and the folder's "
+            f"tables and report may be partly of this audit; re-run the same command to finish")
 
 
 def _run_audit(lock, roots, output, *, config, include, exclude, workers, scheduler, db,
@@ -1222,9 +1234,8 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     if (workers or os.cpu_count() or 1) > 1 or scheduler or executor is not None:
         todo = _largest_first(todo, {r.id: r.kind for r in runs})
     gen, how = _execute(todo, cfg, workers=workers or os.cpu_count() or 1, scheduler=scheduler,
-                        executor=executor, note=f"driftwatch: terminated by SIGTERM: workers "
-                        f"stopped; runs finished so far are kept in {records.shown(out)}/.cache; "
-                        f"re-run the same command to finish\n")
+                        executor=executor,
+                        note=f"driftwatch: terminated by SIGTERM: {_stop_note(out)}\n")
     bar = Progress(len(runs), "driftwatch audit", enabled=progress_on(progress),
                    initial=len(runs) - len(todo))
     from . import track

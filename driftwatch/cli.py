@@ -503,8 +503,8 @@ def main(argv=None) -> int:
     except BrokenPipeError:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())   # nothing left to flush
         return EXIT_PIPE
-    except KeyboardInterrupt:
-        print("driftwatch: interrupted", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        print(_shown(f"driftwatch: interrupted{f': {exc}' if str(exc) else ''}"), file=sys.stderr)
         return 130
     except _UsageError as exc:
         print(_shown(f"driftwatch: error: {exc}"), file=sys.stderr)

@@ -394,6 +394,39 @@ def test_workers_end_with_their_parent(sig, start, tmp_path, killable_env):
         proc.stderr.close()
 
 
+@pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
+def test_an_audit_stopped_without_workers_says_what_it_leaves(sig, tmp_path):
+    """Ctrl-C or SIGTERM to an audit analysing its runs in process (one worker; or the parent
+    after its pool has ended, writing the tables): it says that the runs finished are kept and a
+    re-run finishes (SIGTERM had ended such an audit with nothing on stderr, and Ctrl-C said only
+    'interrupted'), and the re-run finishes from the cache."""
+    camp = tmp_path / "camp"
+    shutil.copytree(RUNS, camp, ignore=shutil.ignore_patterns("pseudo", "README.md"))
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "driftwatch", "audit", str(camp), "-o", str(out), "-j", "1",
+           "--no-report", "--progress", "off", "-c", str(_slow_config(tmp_path))]
+    proc = subprocess.Popen(cmd, cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and proc.poll() is None and \
+                not list((out / ".cache").glob("*.json")):
+            time.sleep(0.05)
+        assert proc.poll() is None, "the audit ended before a run was cached"
+        proc.send_signal(sig)
+        proc.wait(60)
+        err = proc.stderr.read().decode()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stderr.close()
+    assert proc.returncode == (130 if sig == signal.SIGINT else -signal.SIGTERM), err
+    assert f"runs finished so far are kept in {out}/.cache" in err, err
+    assert "re-run the same command to finish" in err and "Traceback" not in err, err
+    again = subprocess.run(cmd, cwd=REPO, capture_output=True, text=True, timeout=600)
+    assert again.returncode in (0, 3, 4) and "from the cache" in again.stdout, again.stderr
+
+
 # a pool's forked child that blocks before the pool's initializer runs (where the parent watch
 # starts), as a child forked while another thread held a lock would; "guarded": forked while the
 # audit's fork guard is armed, as _new_pool arms it
