@@ -639,3 +639,27 @@ def test_a_campaign_with_no_wide_common_range_says_so(real_records):
     assert "<tbody></tbody>" not in text
     assert ("No range of symprec of a factor ≥ 1.5 on the grid is free of every run's breakpoints: "
             "the widest is 0.002-0.0028 Å (factor 1.4).") in text
+
+
+def test_many_runs_at_one_point_of_the_campaign_scatter_are_counted_not_ringed():
+    """A campaign of many fixed-cell runs that end on their type (the bundled B02 and L09, whose
+    deformations are <= 1e-6 Å at both steps, 150 copies each under other names): a ring for each
+    run under another had reached thousands of pixels; at most charts.RINGS rings are drawn, and
+    the point says how many runs it holds."""
+    from driftwatch.report import charts
+    demo = Path(__file__).parent.parent / "example_runs"
+    pts = []
+    for n in ("B02_qe_vcrelax_sym", "L09_emt_fixed_square.traj"):
+        r = driftwatch.analyze(demo / n)
+        d = r["summary"]["drift"]
+        pts += [{"name": f"{n}-{k:03d}", "href": n, "verdict": r["summary"]["verdict"]["direction"],
+                 "dim": r["geometry"]["dimension"], "type": d["type"], "def0": d["initial"],
+                 "def1": d["final"], "dist0": d["initial"], "dist1": d["final"]}
+                for k in range(150)]
+    for panel in charts.campaign_scatter(pts).panels:
+        rings = [m for m in panel.marks if m.kind == "points" and m.hollow]
+        assert len(rings) == charts.RINGS and max(m.size for m in rings) <= 7.5 + 4.0 * charts.RINGS
+        counts = [t for m in panel.marks if m.kind == "text" for t in m.texts if t.startswith("×")]
+        assert counts == ["×300"]
+        drawn = sum(len(m.x) for m in panel.marks if m.kind == "points" and not m.hollow)
+        assert drawn == 300                                  # every run is still a linked point

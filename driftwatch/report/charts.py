@@ -737,6 +737,12 @@ def scatter_points(items) -> list:
     return pts
 
 
+RINGS = 3
+"""Runs drawn under another at one point of the campaign scatter show as rings, up to this many;
+beyond, the point says how many runs it holds (thousands of runs of one fixed cell end at the
+floor together: a ring each had covered the panel)."""
+
+
 def campaign_scatter(points) -> Chart:
     """Initial against final deformation (left) and root-space distance (right), Å, to the type each
     run's verdict is about. ``points``: dicts {name, href, verdict, dim, type, def0, def1, dist0,
@@ -784,10 +790,16 @@ def campaign_scatter(points) -> Chart:
             for p in sel:
                 under = same.get(id(p), [p])
                 k = len(under) - 1 - under.index(p)         # how many runs lie on top of it
-                if k:
+                if 0 < k <= RINGS:
                     marks.append(Mark("points", [xy(p)[0]], [xy(p)[1]], marker=marker,
                                       size=7.5 + 4.0 * k, colour=colour, hollow=True, z=4,
                                       links=[p.get("href")], tips=[tip(p, verdict)]))
+        for ps in at.values():                # more runs at one point than rings: their count
+            if len(ps) > RINGS + 1:
+                x, y = xy(ps[-1])
+                marks.append(Mark("text", [x], [y], texts=[f"×{len(ps)}"], anchor="start",
+                                  colour="#222222", fontsize=8.5, offset=(7.5 + 4.0 * RINGS, -6),
+                                  z=5))
         ax = Axis(f"{what} at the first step (Å)", scale="log", lim=(lo, hi))
         ay = Axis(f"{what} at the last step (Å)", scale="log", lim=(lo, hi))
         panels.append(Panel(ax, ay, marks, title=f"{what} to the type of each run's verdict",
