@@ -639,6 +639,9 @@ def test_a_campaign_with_no_wide_common_range_says_so(real_records):
     assert "<tbody></tbody>" not in text
     assert ("No range of symprec of a factor ≥ 1.5 on the grid is free of every run's breakpoints: "
             "the widest is 0.002-0.0028 Å (factor 1.4).") in text
+    one = html._campaign_tolerance(dict(table, left_out=1), {"recommended_symprec": None,
+                                                             "reason": "none"})
+    assert "1 run that is no relaxation is left out)." in one       # (it said "1 runs ... are")
 
 
 def test_many_runs_at_one_point_of_the_campaign_scatter_are_counted_not_ringed():

@@ -925,7 +925,9 @@ def _campaign_tolerance(tol, adv, labels=None):
     rec = _fnum(adv.get("recommended_symprec"))
     out.append(f'<p><span class="big">symprec ≈ {_q(rec)}</span> for this campaign'
                + (f" ({tol['n_with_spectrum']} of {tol['n_runs'] - tol['left_out']} relaxations have "
-                  f"a tolerance spectrum; {tol['left_out']} runs that are no relaxation are left out)."
+                  f"a tolerance spectrum; " + (f"{tol['left_out']} runs that are no relaxation are"
+                                                if tol["left_out"] != 1 else
+                                                "1 run that is no relaxation is") + " left out)."
                   if tol.get("left_out") else
                   f" ({tol['n_with_spectrum']} of {tol['n_runs']} runs have a tolerance spectrum).")
                + f"<br><span class=\"muted\">Reason: {e(adv.get('reason'))}.</span></p>")
