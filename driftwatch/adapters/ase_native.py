@@ -69,6 +69,8 @@ MAX_BAND = 34
 """The most frames per optimiser step looked for in an ASE NEB trajectory (32 moving images and
 the two end points)."""
 _BANDS: dict = {}         # (path, stamp) -> frames per optimiser step of a band, or None
+_BANDS_KEPT = 1 << 16     # answers kept (tens of bytes each): a campaign's trajectories, so that
+#                           an audit of a selection, which walks the tree twice, opens each once
 
 
 def _band_period(backend, n: int) -> int | None:
@@ -121,7 +123,7 @@ def band_period(path) -> int | None:
         got = _band_period(backend, len(backend))
     if key is not None:
         _BANDS[key] = got
-        while len(_BANDS) > 64:
+        while len(_BANDS) > _BANDS_KEPT:
             _BANDS.pop(next(iter(_BANDS)))
     return got
 
