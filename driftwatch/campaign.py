@@ -58,7 +58,7 @@ from . import records
 from .cache import Cache, FileDigests, freeze_inputs, run_key
 from .cache import versions as _versions
 from .tasks import Progress, mp_context, progress_on
-from .rules import campaign_advice
+from .rules import FLAGS, campaign_advice
 from .errors import ConfigError, DriftwatchError, InputError, OutputError
 
 __all__ = ["audit", "discover", "RunSpec", "SCHEMA", "MARKER", "LOCK", "DEFAULT_OUTPUT"]
@@ -68,6 +68,7 @@ MARKER = ".driftwatch-audit.json"
 LOCK = ".driftwatch-audit.lock"
 DEFAULT_OUTPUT = "driftwatch-audit"
 TABLE_LIMIT = 500          # the printed table lists every run up to this many, else only notable ones
+_TOLERANCE_FLAGS = tuple(c for c, what in FLAGS.items() if what == "tolerance")  # the symprec's
 
 
 # ----------------------------------------------------------------------------- discovery
@@ -1068,11 +1069,18 @@ def since_text(since: dict) -> str:
             f"(all in campaign.json since_last; a gone run's record is in records/stale/)")
 
 
+def _notable(rows: list[list[str]]) -> list[list[str]]:
+    """The table's rows to print: every one up to :data:`TABLE_LIMIT`, else those of runs that did
+    not keep their symmetry or carry a flag beyond the tolerance's (about which symprec to take)."""
+    if len(rows) <= TABLE_LIMIT:
+        return rows
+    return [r for r in rows if r[2].rstrip("~") != "kept"
+            or set(r[6].split(",")) - {"-", *_TOLERANCE_FLAGS}]
+
+
 def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     head = _TABLE_HEAD
-    shown = rows
-    if len(rows) > TABLE_LIMIT:
-        shown = [r for r in rows if r[2].rstrip("~") != "kept" or r[6] != "-"]
+    shown = _notable(rows)
     n = len(head) - 1
     widths = [max(len(head[i]), *(len(r[i]) for r in shown)) if shown else len(head[i])
               for i in range(n)]
@@ -1084,8 +1092,8 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     for r in shown:
         print(line(r), file=stream)
     if len(shown) < len(rows):
-        print(f"({len(rows) - len(shown)} runs that kept their symmetry without flags not shown: "
-              f"see campaign.csv)", file=stream)
+        print(f"({len(rows) - len(shown)} runs that kept their symmetry, with no flag or only "
+              f"{' or '.join(_TOLERANCE_FLAGS)}, not shown: see campaign.csv)", file=stream)
     if any(r[2].endswith("*") for r in shown):
         print("* unfinished: cut short, damaged, or stopped at its step or time limit, on "
               "request, on a code error or without converging; the verdict compares the first "
