@@ -383,6 +383,12 @@ def _cmd_tolerance(args) -> int:
                                    spec["operations"], spec["lattice"]):
         note = "  (below the file's printed precision)" if floor and x < floor else ""
         print(f"{x:10.3g}  {sym + ' (' + str(g) + ')':>22}  {ops:>4}  {lat}{note}")
+    failed = [f for f in spec.get("failures") or () if f.get("kind") == "group"]
+    if failed:                               # the rows of group 0: spglib's own reason
+        why = sorted({f["message"] for f in failed})
+        print(f"spglib found no {kind} at {len(failed)} of {len(spec['symprec'])} symprecs (shown "
+              f"as (0)): {'; '.join(why)}")
+
     def said(b, end):                        # a group by its name, as every other output says it
         if b["kind"] != "group" or not b.get(f"{end}_symbol"):
             return str(b[end])

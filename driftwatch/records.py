@@ -202,8 +202,11 @@ def write_json(record: dict, path) -> Path:
 
 def read_json(path) -> dict:
     """Read a record; raises ValueError naming the file for non-records."""
-    with open(path, encoding="utf-8") as fh:
-        data = json.load(fh)
+    try:
+        with open(path, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise ValueError(f"{path}: not a driftwatch run record (not JSON text: {exc})") from None
     if not isinstance(data, dict) or not str(data.get("schema", "")).startswith("driftwatch/run-"):
         raise ValueError(f"{path}: not a driftwatch run record (no 'schema: driftwatch/run-N')")
     if data["schema"] != SCHEMA:

@@ -729,7 +729,13 @@ def _text(direction, lv, sv, frames) -> str:
         # the same type at both ends: the operation counts tell them apart
         ops = [f", {g['operations']} operations" if a["group"] == b["group"] else "" for g in (a, b)]
         moved = f"{a['symbol']} ({a['group']}{ops[0]}) -> {b['symbol']} ({b['group']}{ops[1]})"
-        if sv["direction"] == "kept" and str(sv.get("relation", "")).startswith("not yet held"):
+        if not a["group"] or not b["group"]:      # spglib found no group at one end or both
+            where = ("the structure" if len(frames) == 1 else "the first and last frames"
+                     if not a["group"] and not b["group"] else
+                     "the first frame" if not a["group"] else "the last frame")
+            parts.append(f"group unknown at symprec {_g(sv['symprec'])} Å (spglib found none for "
+                         f"{where}: see the warnings)")
+        elif sv["direction"] == "kept" and str(sv.get("relation", "")).startswith("not yet held"):
             parts.append(f"group {moved} at symprec {_g(sv['symprec'])} Å ({sv['relation']})")
         else:
             grp = f"{a['symbol']} ({a['group']})" if sv["direction"] == "kept" else moved

@@ -25,7 +25,7 @@ import numpy as np
 
 from . import __version__, config as _config, geometry, lattice2d, lattice3d, records, rules, symmetry
 from .adapters import Run, read_run
-from .errors import GeometryError, LatticeError, NotPeriodicError, SymmetryError
+from .errors import GeometryError, InputError, LatticeError, NotPeriodicError, SymmetryError
 
 __all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "select_frames",
            "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
@@ -542,6 +542,20 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     return record
 
 
+def _frame_indices(frames, run: Run) -> list[int]:
+    """``frames`` as a list of frame indices of ``run`` (negative from the end), or the error the
+    command line's --frame gives."""
+    import operator
+    try:
+        got = [operator.index(k) for k in ([frames] if isinstance(frames, str) else frames)]
+    except TypeError:
+        raise TypeError(f"frames: frame indices (integers), got {frames!r}") from None
+    for k in got:
+        if not -len(run) <= k < len(run):
+            raise InputError(run.source, f"frame {k} out of range (the run has {len(run)} frames)")
+    return [k % len(run) for k in got]
+
+
 def analyze(path_or_run, config=None, *, format: str | None = None,
             frames: Iterable[int] | None = None, complete: bool = True) -> dict:
     """Analyse one run and return its record (schema ``driftwatch/run-2``).
@@ -554,9 +568,16 @@ def analyze(path_or_run, config=None, *, format: str | None = None,
         complete: False judges the frames as a run still going: a change counts only once it held
             for ``rules.persistence.steps`` steps (what the live tools do).
     """
+    import os
+    if not isinstance(path_or_run, (Run, str, os.PathLike)):
+        raise TypeError(f"analyze needs a file, a run folder or a Run, got "
+                        f"{type(path_or_run).__name__} (ASE Atoms: write the frames to a file "
+                        f"with ase.io.write, or watch a relaxation with driftwatch.live)")
     cfg = _config.coerce(config)
     run = path_or_run if isinstance(path_or_run, Run) else read_run(
         path_or_run, format=format, structure_keys=cfg["inputs"]["structure_keys"])
+    if frames is not None:
+        frames = _frame_indices(frames, run)
     try:
         return record_from_run(run, cfg, frames=frames, complete=complete)
     except (GeometryError, LatticeError, SymmetryError) as exc:

@@ -1065,3 +1065,71 @@ def test_xdatcar_with_a_field_of_stars_keeps_the_steps_before_it(tmp_path):
     (tmp_path / "XDATCAR").write_text("".join(lines))
     run = read_run(tmp_path / "XDATCAR")
     assert len(run) == 2 and run.unfinished.startswith("damaged: unreadable after step")
+
+
+# ---------------------------------------------------------------- what the API and a structure say
+_NAFENIO = Path(__file__).parent / "data" / "public" / "broken" / "custodian_stopped" / "zpotrf"
+
+
+def test_a_cut_poscar_says_where_it_ends(tmp_path):
+    """custodian's genuine Na2FeNiO4 POSCAR (8 atoms; tests/data/public/README.md) cut after 7 of
+    its atom lines, or after its cell: the error says so, not numpy's broadcast message that ASE's
+    reader raises."""
+    lines = (_NAFENIO / "POSCAR").read_text().splitlines(keepends=True)
+    cut = tmp_path / "cut" / "POSCAR"
+    cut.parent.mkdir()
+    cut.write_text("".join(lines[:15]))
+    head = tmp_path / "head" / "POSCAR"
+    head.parent.mkdir()
+    head.write_text("".join(lines[:5]))
+    for path, said in ((cut, "ends after 7 of its 8 atom lines (a file cut while being written?)"),
+                       (head, "5 lines: too short for a POSCAR")):
+        proc = _dw("tolerance", str(path))
+        err = proc.stderr.decode()
+        assert proc.returncode == 1 and said in err and "broadcast" not in err, err
+    assert len(read_run(_NAFENIO / "POSCAR").numbers) == 8                     # the whole file
+
+
+def test_a_structure_spglib_refuses_says_spglib_s_reason(tmp_path):
+    """The same POSCAR with one atom written twice: spglib finds no group at any symprec ("too
+    close distance between atoms", its own message): `tolerance` says so under its table of (0),
+    and the verdict says the group is unknown, not "( 0, 0 operations)"."""
+    import spglib
+    lines = (_NAFENIO / "POSCAR").read_text().splitlines(keepends=True)
+    lines[6] = "3 1 1 4\n"                                     # two Na on one site
+    lines.insert(9, lines[8])
+    twice = tmp_path / "POSCAR"
+    twice.write_text("".join(lines))
+    atoms = ase.io.read(twice, format="vasp")
+    assert spglib.get_symmetry_dataset((atoms.cell.array, atoms.get_scaled_positions(),
+                                        atoms.numbers), symprec=1e-3) is None   # spglib's own
+    proc = _dw("tolerance", str(twice))
+    out = proc.stdout.decode()
+    assert proc.returncode == 0 and ("spglib found no space group at 15 of 15 symprecs (shown as "
+                                     "(0)): too close distance between atoms") in out, out
+    record = driftwatch.analyze(twice)
+    assert ("group unknown at symprec 0.001 Å (spglib found none for the structure: see the "
+            "warnings)") in record["summary"]["verdict"]["text"]
+
+
+def test_the_api_says_what_it_takes(tmp_path):
+    """Mistakes a notebook user makes get driftwatch's own one-line errors: a frame index out of
+    range (as --frame says it), a frame that is no integer, an ASE Atoms object, a file that is
+    not a record, a format name that does not exist given with a run folder (it had been 'not a
+    run folder')."""
+    from ase import Atoms
+    from driftwatch.errors import InputError, UnknownFormatError
+    run = REPO / "example_runs" / "L03_qe_vcrelax"
+    with pytest.raises(InputError, match=r"frame 99 out of range \(the run has 20 frames\)"):
+        driftwatch.analyze(run, frames=[99])
+    with pytest.raises(TypeError, match="frames: frame indices"):
+        driftwatch.analyze(run, frames="0")
+    with pytest.raises(TypeError, match="analyze needs a file, a run folder or a Run, got Atoms"):
+        driftwatch.analyze(Atoms("Cu", cell=[3, 3, 3], pbc=True))
+    assert len(driftwatch.analyze(run, frames=[0, -1])["frames"]) == 20
+    text = tmp_path / "notes.txt"
+    text.write_text("not json\n")
+    with pytest.raises(ValueError, match=r"notes\.txt: not a driftwatch run record \(not JSON"):
+        records.read_json(text)
+    with pytest.raises(UnknownFormatError, match="unknown format 'vasp-outt'"):
+        read_run(run, format="vasp-outt")

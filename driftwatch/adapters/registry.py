@@ -411,6 +411,8 @@ def _resolve(path, format=None, ctx: ReadContext | None = None) -> _Pick:
         raise InputError(path, "no such file or directory")
     if path.is_dir() and selection and selection.startswith(_SEP):
         raise InputError(path, f"a folder holds no structures by name ({selection}): pass the file")
+    if format is not None and format not in _formats:       # a typo, not the folder's fault
+        raise UnknownFormatError(path, f"unknown format {format!r} (known formats: {_known()})")
     if path.is_dir():
         try:
             next(iter(os.scandir(path)), None)

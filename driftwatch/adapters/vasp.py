@@ -927,12 +927,22 @@ def read_poscar(path, ctx: ReadContext):
     if not text.strip():
         raise InputError(path, "empty file")
     lines = text.splitlines()
-    for line in lines[5:7]:           # the atom counts (VASP 4 or 5 layout): one line per atom follows
+    if len(lines) < 8:
+        raise InputError(path, f"{len(lines)} lines: too short for a POSCAR (a title, the scale, "
+                               f"three cell vectors, the atom counts, the coordinate mode and a "
+                               f"line per atom; a file cut while being written?)")
+    for k, line in enumerate(lines[5:7], start=5):   # the atom counts (VASP 4 or 5 layout)
         lead = list(itertools.takewhile(str.isdigit, line.split()))
         if lead:                      # ASE reads leading integers as counts, and allocates for them
-            if not 0 < sum(int(w) for w in lead) <= len(lines):
+            total = sum(int(w) for w in lead)
+            if not 0 < total <= len(lines):
                 raise InputError(path, f"atom counts {line.strip()[:40]!r} out of range (the "
                                        f"file has {len(lines)} lines)")
+            first = k + 2 + (lines[k + 1].strip()[:1] in ("S", "s"))   # Selective dynamics
+            got = sum(1 for ln in lines[first:first + total] if len(ln.split()) >= 3)
+            if got < total:
+                raise InputError(path, f"ends after {got} of its {total} atom lines (a file cut "
+                                       f"while being written?)")
             break
     atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
     ctx.title = text.splitlines()[0].strip() or None
