@@ -732,3 +732,70 @@ def test_starts_that_stopped_before_a_step_give_no_symmetry_count():
     assert len(run) == 1 and run.code_settings["nsym"] == 4
     assert not [w for w in run.warnings if "symmetry operations in a later run" in w]
     assert run.not_relaxation.startswith("a single-point calculation")
+
+
+# ---------------------------------------------------------------- POSCAR species
+def test_a_vasp4_poscar_says_where_its_elements_come_from():
+    """spglib's VASP 4 layout test files (no line of element symbols; tests/data/public_more/
+    README.md): where ASE's reader takes elements from the title line ('FINDSYM finds R3c' gives
+    F, I and N), the run says so; where it finds none ('$cell vectors'), the error says what to
+    add instead of ASE's 'Tried files []'."""
+    from driftwatch.errors import InputError
+    guessed = read_run(MORE / "spglib_vasp4" / "POSCAR-161-1")
+    assert sorted(set(guessed.numbers.tolist())) == [7, 9, 53]                 # N, F, I
+    assert any("VASP 4 layout (no line of element symbols): the elements F, I, N are ASE's "
+               "reading of the title line ('FINDSYM finds R3c')" in w for w in guessed.warnings)
+    with pytest.raises(InputError, match="VASP 4 layout .* add the symbols as line 6"):
+        read_run(MORE / "spglib_vasp4" / "POSCAR-227")
+
+
+def test_an_element_given_as_two_atom_types_keeps_them_apart(tmp_path):
+    """custodian's genuine Na2FeNiO4 POSCAR (tests/data/public/README.md) with its two Na written as
+    two VASP atom types (species line 'Na Na Fe Ni O', counts '1 1 1 1 4'), as an
+    antiferromagnetic or DFT+U set-up writes them: spglib given one type per atom type says Cm
+    where the merged element says C2/m; driftwatch had merged them (C2/m)."""
+    import spglib
+    from driftwatch import symmetry
+    src = Path(__file__).parent / "data" / "public" / "broken" / "custodian_stopped" / "zpotrf"
+    lines = (src / "POSCAR").read_text().splitlines(keepends=True)
+    assert lines[5].split() == ["Na", "Fe", "Ni", "O"] and lines[6].split() == ["2", "1", "1", "4"]
+    lines[5], lines[6] = "Na Na Fe Ni O\n", "1 1 1 1 4\n"
+    poscar = tmp_path / "POSCAR"
+    poscar.write_text("".join(lines))
+    atoms = ase.io.read(poscar, format="vasp")
+    types = np.array([1, 2, 3, 4, 5, 5, 5, 5])
+    cell = (atoms.cell.array, atoms.get_scaled_positions(), types)
+    assert spglib.get_symmetry_dataset(cell, symprec=1e-3).international == "Cm"   # spglib's
+    assert spglib.get_symmetry_dataset((cell[0], cell[1], atoms.numbers),
+                                       symprec=1e-3).international == "C2/m"
+    run = read_run(poscar)
+    assert run.species[:2] == ("Na1", "Na2")
+    assert any("the file gives Na as 2 atom types" in w for w in run.warnings)
+    got = symmetry.group_at(run.cells[0], run.positions[0], run.symmetry_types, 1e-3)
+    assert got["symbol"] == "Cm"
+
+
+def test_a_vasprun_atominfo_of_two_types_of_one_element_keeps_them_apart(tmp_path):
+    """vasprun.xml's atominfo gives each atom its element and atom type (VASP writes the type
+    index beside the symbol); two types of Fe on the two sites of a bcc cell are the CsCl-type
+    arrangement: spglib given one type per atom type says Pm-3m (221), the merged element Im-3m
+    (229). The file here is the tests' own vasprun writer's, its second atom's type set to 2."""
+    import spglib
+    import vasp_gen
+    from driftwatch import symmetry
+    cell = np.eye(3) * 2.87
+    frac = np.array([[[0, 0, 0], [0.5, 0.5, 0.5]]] * 2, float)
+    traj = vasp_gen.Trajectory(["Fe", "Fe"], np.array([cell, cell]), frac, np.array([-16.0, -16.1]),
+                               np.zeros((2, 2, 3)), np.zeros((2, 3, 3)))
+    path = vasp_gen.write_vasprun(tmp_path / "vasprun.xml", traj)
+    text = path.read_text()
+    one = "<rc><c>Fe</c><c>   1</c></rc>"
+    assert text.count(one) == 2
+    path.write_text(text.replace(one, "<rc><c>Fe</c><c>   2</c></rc>").replace(
+        "<rc><c>Fe</c><c>   2</c></rc>", one, 1))
+    assert spglib.get_symmetry_dataset((cell, frac[0], [1, 2]), symprec=1e-3).number == 221
+    assert spglib.get_symmetry_dataset((cell, frac[0], [26, 26]), symprec=1e-3).number == 229
+    run = read_run(path)
+    assert run.species == ("Fe1", "Fe2")
+    assert symmetry.group_at(run.cells[-1], run.positions[-1], run.symmetry_types,
+                             1e-3)["group"] == 221

@@ -58,6 +58,25 @@ def _symbol_numbers(symbols):
     return np.array(out, int)
 
 
+def _type_species(elements, types, ctx: ReadContext) -> None:
+    """One species label per atom (``Fe1``, ``Fe2``: the element and its VASP atom type among
+    those of that element) in ``ctx.species`` when an element is given as several atom types
+    (two blocks of Fe: an antiferromagnetic or DFT+U set-up, each type with its own POTCAR entry),
+    so that spglib is given one type per block, as VASP computes them; said in a warning."""
+    per: dict = {}
+    for el, t in zip(elements, types):
+        if t not in per.setdefault(el, []):
+            per[el].append(t)
+    split = {el: ts for el, ts in per.items() if len(ts) > 1}
+    if not split:
+        return
+    ctx.species = tuple(f"{el}{per[el].index(t) + 1}" if el in split else el
+                        for el, t in zip(elements, types))
+    ctx.warn("the file gives " + ", ".join(f"{el} as {len(ts)} atom types" for el, ts in
+                                           split.items())
+             + ": spglib is given one type per atom type, as VASP computes them")
+
+
 # ---------------------------------------------------------------- settings
 def _num(text: str):
     return float(text.strip().replace("d", "e").replace("D", "E"))
@@ -361,6 +380,10 @@ def read_vasprun(path, ctx: ReadContext):
                 elif tag == "atominfo":
                     rows = el.findall("array[@name='atoms']/set/rc")
                     numbers = _symbol_numbers([r.find("c").text for r in rows])
+                    cols = [r.findall("c") for r in rows]
+                    if ctx.species is None and all(len(c) > 1 for c in cols):
+                        _type_species([c[0].text.strip() for c in cols],
+                                      [c[1].text.strip() for c in cols], ctx)
                 elif tag == "calculation":
                     frame = calculation(el)
                     if frame is not None:
@@ -921,6 +944,7 @@ def read_xdatcar(path, ctx: ReadContext):
 def read_poscar(path, ctx: ReadContext):
     """A POSCAR/CONTCAR: one structure, not a trajectory (said in the warnings)."""
     import ase.io
+    from ase.io import ParseError
     _merge_incar(path, ctx, {})
     with Lines(path) as fh:
         text = "".join(fh)
@@ -931,6 +955,7 @@ def read_poscar(path, ctx: ReadContext):
         raise InputError(path, f"{len(lines)} lines: too short for a POSCAR (a title, the scale, "
                                f"three cell vectors, the atom counts, the coordinate mode and a "
                                f"line per atom; a file cut while being written?)")
+    counts_at = None
     for k, line in enumerate(lines[5:7], start=5):   # the atom counts (VASP 4 or 5 layout)
         lead = list(itertools.takewhile(str.isdigit, line.split()))
         if lead:                      # ASE reads leading integers as counts, and allocates for them
@@ -943,8 +968,28 @@ def read_poscar(path, ctx: ReadContext):
             if got < total:
                 raise InputError(path, f"ends after {got} of its {total} atom lines (a file cut "
                                        f"while being written?)")
+            counts_at = k
             break
-    atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
+    vasp4 = counts_at == 5            # no species line: ASE takes the elements from elsewhere
+    try:
+        atoms = ase.io.read(path, format="vasp")   # a path: ASE may need POTCAR/OUTCAR beside it
+    except ParseError as exc:
+        if vasp4 and "chemical symbols" in str(exc):
+            raise InputError(path, "VASP 4 layout (no line of element symbols above the atom "
+                                   "counts) and no elements in its title line or a POTCAR or "
+                                   "OUTCAR beside it: add the symbols as line 6") from None
+        raise
+    if vasp4:
+        ctx.warn(f"VASP 4 layout (no line of element symbols): the elements "
+                 f"{', '.join(dict.fromkeys(atoms.get_chemical_symbols()))} are ASE's reading of "
+                 f"the title line ({lines[0].strip()[:60]!r}) or of a POTCAR or OUTCAR beside it: "
+                 f"check them")
+    elif counts_at == 6:
+        names = lines[5].split()
+        counts = [int(w) for w in lines[6].split()[:len(names)]]
+        if len(names) == len(counts) and ctx.species is None:
+            _type_species([n for n, c in zip(names, counts) for _ in range(c)],
+                          [j for j, c in enumerate(counts) for _ in range(c)], ctx)
     ctx.title = text.splitlines()[0].strip() or None
     if ctx.kind != "end-points":      # one structure alone (else one of a run's two end points):
         ctx.settings["single_structure"] = strip_compression(Path(path).name)  # warned as such
