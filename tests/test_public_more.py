@@ -799,3 +799,9 @@ def test_a_vasprun_atominfo_of_two_types_of_one_element_keeps_them_apart(tmp_pat
     assert run.species == ("Fe1", "Fe2")
     assert symmetry.group_at(run.cells[-1], run.positions[-1], run.symmetry_types,
                              1e-3)["group"] == 221
+    xdatcar = vasp_gen.write_xdatcar(tmp_path / "XDATCAR", traj)       # and an XDATCAR's blocks
+    lines = xdatcar.read_text().splitlines(keepends=True)
+    assert lines[5].split() == ["Fe"] and lines[6].split() == ["2"]
+    lines[5], lines[6] = "   Fe Fe\n", "   1 1\n"
+    xdatcar.write_text("".join(lines))
+    assert read_run(xdatcar).species == ("Fe1", "Fe2")

@@ -898,6 +898,9 @@ def read_xdatcar(path, ctx: ReadContext):
                 cell = cell * (scale if scale > 0 else
                                (-scale / abs(np.linalg.det(cell))) ** (1 / 3))
                 numbers = np.repeat(_symbol_numbers(symbols), counts)
+                if ctx.species is None:
+                    _type_species(list(np.repeat(symbols, counts)),
+                                  list(np.repeat(np.arange(len(counts)), counts)), ctx)
                 total = len(numbers)
                 header_only = True
                 continue
