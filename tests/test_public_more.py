@@ -805,3 +805,15 @@ def test_a_vasprun_atominfo_of_two_types_of_one_element_keeps_them_apart(tmp_pat
     lines[5], lines[6] = "   Fe Fe\n", "   1 1\n"
     xdatcar.write_text("".join(lines))
     assert read_run(xdatcar).species == ("Fe1", "Fe2")
+
+
+def test_stage_suffixes_of_a_number_and_a_word_are_stages():
+    """dfttk keeps a calculation's files as OUTCAR.3static, CONTCAR.3static beside
+    INCAR.1relax, INCAR.2relax, INCAR.3static (tests/data/public_more/README.md): one static
+    calculation, read from its OUTCAR (NSW = 0, IBRION = -1, as it and INCAR.3static say: a
+    single point); the folder had been refused as 'ambiguous: 2 runs' (the OUTCAR and the CONTCAR)."""
+    d = MORE / "dfttk_suffixed_stage"
+    run = read_run(d)
+    assert run.source.endswith("OUTCAR.3static.gz") and len(run) == 1
+    assert run.code_settings["NSW"] == 0
+    assert run.not_relaxation.startswith("a single-point calculation (NSW = 0, IBRION = -1)")

@@ -1201,7 +1201,10 @@ def read_segment(path, ctx: ReadContext):
 
 
 # ---------------------------------------------------------------- folders
-_STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)(?:\.(relax\d+|\d+))?$")
+# stage suffixes: custodian's .relax1, numbered restarts .1, and a number with a word (dfttk's
+# .1relax, .2relax, .3static)
+_STAGED = re.compile(r"^(vasprun\.xml|OUTCAR|XDATCAR|CONTCAR|POSCAR)"
+                     r"(?:\.(relax\d+|\d+|\d+[A-Za-z]\w*))?$")
 _OUTPUT_KINDS = ("vasprun.xml", "OUTCAR", "XDATCAR")
 # copies beside the outputs (OUTCAR.bak; vasprun.xml_<time>, a resubmitting job script's)
 _OTHER_COPIES = tuple(f"{k}{sep}" for k in _OUTPUT_KINDS for sep in "._-")
@@ -1438,8 +1441,9 @@ def _stdout_error(folder: Path, names=None) -> str | None:
 def pick_from_folder(folder: Path, names, format=None, ctx=None):
     """The VASP run of ``folder`` (a :class:`~driftwatch.adapters.registry.FolderPick`), or None.
 
-    * Files are grouped by stage: custodian's ``.relax1``, ``.relax2`` suffixes and numbered
-      restarts ``.1``, ``.2`` run in that order, unsuffixed files last; each name may carry
+    * Files are grouped by stage: custodian's ``.relax1``, ``.relax2`` suffixes, numbered
+      restarts ``.1``, ``.2`` and numbered words (dfttk's ``.1relax``, ``.3static``) run in that
+      order, unsuffixed files last; each name may carry
       ``.gz``/``.bz2``/``.xz`` (of plain and compressed copies, a complete one, else the largest).
     * Per stage: a complete vasprun.xml, then a complete OUTCAR; when neither is complete (killed
       job), OUTCAR first (VASP flushes it every ionic step, vasprun.xml lags behind a buffer), then
