@@ -817,3 +817,17 @@ def test_stage_suffixes_of_a_number_and_a_word_are_stages():
     assert run.source.endswith("OUTCAR.3static.gz") and len(run) == 1
     assert run.code_settings["NSW"] == 0
     assert run.not_relaxation.startswith("a single-point calculation (NSW = 0, IBRION = -1)")
+
+
+def test_files_of_no_ionic_steps_are_named_for_what_they_are():
+    """GPAW's restart files (its newer and older layouts, by their first bytes) and an output of
+    Quantum ESPRESSO's dos.x ('Program DOS v.7.3'; tests/data/public_more/README.md) had been an
+    'unknown format' beside the list of formats; each is named for what it is."""
+    from driftwatch.errors import UnknownFormatError
+    d = MORE / "not_runs"
+    for name, said in (("Si_pw.first256bytes.gpw2", "a GPAW restart file"),
+                       ("H2.first256bytes.gpw", "a GPAW restart file"),
+                       ("dos.out", "an output of a Quantum ESPRESSO post-processing program")):
+        with pytest.raises(UnknownFormatError, match=f"{said} .*not a file of ionic steps"):
+            read_run(d / name)
+    assert "Program DOS v.7.3" in (d / "dos.out").read_text()

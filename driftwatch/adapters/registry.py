@@ -359,6 +359,10 @@ _NOT_TRAJECTORIES = (
     (re.compile(rb"^[ \t]*[-+.0-9eE]+[ \t]+[-+.0-9eE]+[ \t]+xlo[ \t]+xhi\b", re.M),
      "a LAMMPS data file (one structure; pass the job's dump)"),
     (re.compile(rb"\ALAMMPS \("), "a LAMMPS log (pass the job's dump)"),
+    (re.compile(rb"\A(AFFormatGPAW|AtomicNumbers\x00)"), "a GPAW restart file (one structure and "
+     "its wave functions; pass GPAW's text output)"),
+    (re.compile(rb"^[ \t]*Program (DOS|PROJWFC|POST-PROC|BANDS|DYNMAT|MATDYN|Q2R) v\.", re.M),
+     "an output of a Quantum ESPRESSO post-processing program (pass the pw.x output it follows)"),
 )
 
 
