@@ -89,8 +89,17 @@ angle x sqrt(l_i l_j) for pairs of them):
   involutions of GL(3, 2), each swaps 2 coset lengths and 8 pair angles).  An
   involution's discrepancy: the largest weighted difference of swapped lengths
   and of swapped angles, combined as the larger ("linf") or root-sum-square
-  ("l2").  A right angle of the setting (a coset pair whose 2 conorms are zeros
-  of the pattern) is flipped by a mirror: discrepancy 2 a(x, y).  A setting whose
+  ("l2").  A right angle of the setting (a coset pair whose 2 conorms p(xi), p(eta)
+  are zeros of the pattern) is flipped by a mirror: discrepancy 2 a(x, y).  When the
+  third point xi + eta of their line is a zero of the pattern too (the zero line
+  {01, 23, *} of cF and of hR near it), a is taken from min(p(xi) + p(eta),
+  |p(xi) - p(eta)| + 2 p(xi + eta)) instead of c = p(xi) + p(eta): the |dot product|
+  of the two coset minima is |p(xi) - p(eta)| when xi + eta is the superbase's zero,
+  and c overstated one of the three right angles near cF (p01 + p23 for |p01 - p23|:
+  up to 1.8x R on real relaxations toward fcc).  The min is continuous (the dot
+  product itself jumps at zero-conorm walls), invariant like c, and on a zero line
+  the three flips vanish together only where its three conorms do.
+  A setting whose
   only zero is at xi also counts p(xi) / max l (a guard: a non-zero conorm cannot
   serve as the superbase zero);
 * weights: spglib compares only a reduced basis (the three shortest independent
@@ -342,8 +351,9 @@ def _deform_table():
     21 coset pairs.  ``swap``: for each of the 21 involutions of GL(3, 2), its 10 swapped
     coordinate pairs (2 lengths first, then 8 angles), as rows into [coordinates; weights].  A setting (labelled pattern) has a set
     of involutions (``subs``: rows of involution indices, grouped by size) and a zero structure
-    (``zeros``: rows into the 28 flip rows, 0-20 the perpendicular pairs, 21-27 the single-zero
-    guards).  Settings of one type with the same involutions are grouped (``groups``: their
+    (``zeros``: rows into the 49 flip rows, 0-20 the perpendicular pairs, 21-27 the single-zero
+    guards, 28-48 the perpendicular pairs whose line lies in the zero set; ``shared``: each pair's
+    2 conorm points and the third point of their line).  Settings of one type with the same involutions are grouped (``groups``: their
     zero structures; ``g_sub``: their involution set), sorted by type (``starts``). Each of
     ``zeros``, ``subs`` and ``groups`` is (lists grouped by length, one flat table): see ``_rows``.
     """
@@ -367,6 +377,7 @@ def _deform_table():
         assert len(swaps) == 10 and swaps[1][0] < 7 <= swaps[2][0]   # 2 lengths, 8 angles
         sa += [c for c, _ in swaps]
         sb += [c for _, c in swaps]
+    third = [index[tuple((np.array(_FANO[min(sh)]) + _FANO[max(sh)]) % 2)] for sh in shared]
     subsets, zeros, ps, pz, types = {}, {}, [], [], []
     as_lists = [q.tolist() for q in involutions]
     for t, z, b in _labelled_patterns():
@@ -375,7 +386,7 @@ def _deform_table():
                     if {q[j] for j in z} == z
                     and all({q[j] for j in blk} == blk for blk in b)
                     and all(q[j] == j for j in free))
-        flips = tuple(i for i, sh in enumerate(shared) if sh <= z)
+        flips = tuple(i + 28 * (third[i] in z) for i, sh in enumerate(shared) if sh <= z)
         assert flips or len(z) == 1          # every zero is in a perpendicular pair
         key = flips if flips else (21 + min(z),)
         ps.append(subsets.setdefault(inv, len(subsets)))
@@ -401,6 +412,7 @@ def _deform_table():
         groups.setdefault((t, i), []).append(z)
     keys = sorted(groups)
     return {"both": np.array([[xi in sh for xi in range(7)] for sh in shared], float),
+            "shared": np.array([sorted(sh) + [third[i]] for i, sh in enumerate(shared)]).T,  # (3, 21)
             "pa": np.array([a for a, _ in pairs]), "pb": np.array([b for _, b in pairs]),
             "line3": line3, "swap": np.array([sa, sb, np.add(sa, 28), np.add(sb, 28)]),
             "n_zero": len(zero_list), "zeros": by_size(zero_list),
@@ -794,6 +806,13 @@ def _rows(x, table, n, reduce):
     return out
 
 
+def _angle(c, s):
+    """Pair angle coordinate a (Å) from |dot product| c (Å^2) and s = sqrt(l_x l_y) (Å): s x arcsin
+    of |cos| = c / s^2 on [0, 1/2], continued linearly (slope 2/sqrt3) above."""
+    t = c / (s * s)
+    return (np.arcsin(np.minimum(t, 0.5)) + np.maximum(t - 0.5, 0.0) * (2 / np.sqrt(3))) * s
+
+
 def _discrepancy(pt, nt, metric):
     """KAPPA x the symmetry discrepancy (Å) for each type, (13, m), of Fano conorms pt (7, m)
     with coset vonorms nt (7, m) (Å^2)."""
@@ -802,8 +821,7 @@ def _discrepancy(pt, nt, metric):
     length = np.sqrt(nt)                                      # (7, m) coset lengths, Å
     root = np.sqrt(length)
     s = root[tab["pa"]] * root[tab["pb"]]                     # (21, m) sqrt(l_x l_y)
-    t = (tab["both"] @ pt) / (s * s)                          # |cos| of the pair angle
-    angle = (np.arcsin(np.minimum(t, 0.5)) + np.maximum(t - 0.5, 0.0) * (2 / np.sqrt(3))) * s
+    angle = _angle(tab["both"] @ pt, s)
     # frame weights: 1 up to the third successive minimum (the second one for the coset on
     # the line of the two shortest), then (lambda / l)^16, never below 1/2
     cols = np.arange(m)
@@ -825,7 +843,9 @@ def _discrepancy(pt, nt, metric):
     d = (np.abs(both[0] - both[1]) * np.maximum(both[2], both[3])).reshape(21, 10, m)
     d_len, d_ang = d[:, :2].max(axis=1), d[:, 2:].max(axis=1)
     worst = np.maximum(d_len, d_ang) if metric == "linf" else np.sqrt(d_len ** 2 + d_ang ** 2)
-    flips = np.concatenate([2.0 * wp * angle, pt / length.max(axis=0)])   # (28, m)
+    pa, pb, pc = pt[tab["shared"][0]], pt[tab["shared"][1]], pt[tab["shared"][2]]
+    right = _angle(np.minimum(pa + pb, np.abs(pa - pb) + 2.0 * pc), s)   # |dot| of the minima
+    flips = np.concatenate([2.0 * wp * angle, pt / length.max(axis=0), 2.0 * wp * right])  # (49, m)
     zero = _rows(flips, tab["zeros"], tab["n_zero"], np.maximum)   # zero structures: largest flip
     sub = _rows(worst, tab["subs"], tab["n_sub"], np.maximum)      # involution sets: the worst
     zmin = _rows(zero, tab["groups"], tab["n_group"], np.minimum)  # settings of a type, same
