@@ -1101,8 +1101,13 @@ def test_a_structure_spglib_refuses_says_spglib_s_reason(tmp_path):
     twice = tmp_path / "POSCAR"
     twice.write_text("".join(lines))
     atoms = ase.io.read(twice, format="vasp")
-    assert spglib.get_symmetry_dataset((atoms.cell.array, atoms.get_scaled_positions(),
-                                        atoms.numbers), symprec=1e-3) is None   # spglib's own
+    try:                     # spglib's own: None, or SpglibError in its newer error handling
+        got = spglib.get_symmetry_dataset((atoms.cell.array, atoms.get_scaled_positions(),
+                                           atoms.numbers), symprec=1e-3)
+    except spglib.error.SpglibError as exc:
+        got = None
+        assert "too close distance between atoms" in str(exc)
+    assert got is None
     proc = _dw("tolerance", str(twice))
     out = proc.stdout.decode()
     assert proc.returncode == 0 and ("spglib found no space group at 15 of 15 symprecs (shown as "
