@@ -1173,6 +1173,7 @@ def _plateau_dict(u, grid_lo, grid_hi):
 
 
 SAFE_MARGIN = 2.0  # campaign symprec advice: verdict constant within this factor either side
+NARROW = 1.5       # campaign symprec advice: a widest range narrower than this factor is said so
 
 
 def advice_item(run_id: str, record: dict) -> dict:
@@ -1306,6 +1307,10 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
                         f"their verdict"
                       + ("" if a else "; it starts at the bottom of the searched range, where "
                          "spglib sees the smallest deviations from symmetry")
+                      + ("" if grid[b] >= NARROW * grid[a] else
+                         "; " + (f"a range this narrow (a factor {grid[b] / grid[a]:.2g})"
+                                 if a != b else "one point of the search grid")
+                         + " is no common choice to rely on: judge the runs by their own advice")
                       + ". A starting point for your own check" + others)
     return _left_out_said(out)
 
