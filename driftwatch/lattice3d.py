@@ -348,14 +348,15 @@ def _deform_table():
 
     Cosets x (the 7 non-zero classes of L/2L) and Fano conorm points xi both carry the labels
     of ``_FANO``; xi pairs with x when xi . x is odd.  Coordinates: 7 coset lengths, then the
-    21 coset pairs.  ``swap``: for each of the 21 involutions of GL(3, 2), its 10 swapped
-    coordinate pairs (2 lengths first, then 8 angles), as rows into [coordinates; weights].  A setting (labelled pattern) has a set
-    of involutions (``subs``: rows of involution indices, grouped by size) and a zero structure
-    (``zeros``: rows into the 49 flip rows, 0-20 the perpendicular pairs, 21-27 the single-zero
-    guards, 28-48 the perpendicular pairs whose line lies in the zero set; ``shared``: each pair's
-    2 conorm points and the third point of their line).  Settings of one type with the same involutions are grouped (``groups``: their
-    zero structures; ``g_sub``: their involution set), sorted by type (``starts``). Each of
-    ``zeros``, ``subs`` and ``groups`` is (lists grouped by length, one flat table): see ``_rows``.
+    21 coset pairs. ``swap``: for each of the 21 involutions of GL(3, 2), its 10 swapped coordinate
+    pairs (2 lengths first, then 8 angles), as rows into [coordinates; weights]. A setting (labelled
+    pattern) has a set of involutions (``subs``: rows of involution indices, grouped by size) and a
+    zero structure (``zeros``: rows into the 49 flip rows, 0-20 the perpendicular pairs, 21-27 the
+    single-zero guards, 28-48 the perpendicular pairs whose line lies in the zero set; ``shared``:
+    each pair's 2 conorm points and the third point of their line). Settings of one type with the
+    same involutions are grouped (``groups``: their zero structures; ``g_sub``: their involution
+    set), sorted by type (``starts``). Each of ``zeros``, ``subs`` and ``groups`` is (lists grouped
+    by length, one flat table): see ``_rows``.
     """
     dot = np.array([[sum(a * b for a, b in zip(xi, x)) % 2 for x in _FANO] for xi in _FANO])
     index = {p: i for i, p in enumerate(_FANO)}
@@ -412,7 +413,8 @@ def _deform_table():
         groups.setdefault((t, i), []).append(z)
     keys = sorted(groups)
     return {"both": np.array([[xi in sh for xi in range(7)] for sh in shared], float),
-            "shared": np.array([sorted(sh) + [third[i]] for i, sh in enumerate(shared)]).T,  # (3, 21)
+            "shared": np.array([sorted(sh) + [third[i]] for i, sh in enumerate(shared)]).T,
+            #         (3, 21): the pair's two conorm points and the third point of their line
             "pa": np.array([a for a, _ in pairs]), "pb": np.array([b for _, b in pairs]),
             "line3": line3, "swap": np.array([sa, sb, np.add(sa, 28), np.add(sb, 28)]),
             "n_zero": len(zero_list), "zeros": by_size(zero_list),

@@ -654,7 +654,8 @@ def test_a_real_layer_written_about_z0_keeps_its_group_when_a_writer_wraps_it(tm
     """A pw.x relax of an AlSi2 layer written about z = 0 (tests/data/qe/README.md); pw.x finds
     12 symmetry operations (p-6m2's). Read as pw.x wrote it, and with ASE's ``wrap()`` applied to
     every frame, or to the last only (a run continued from a wrapped structure): p-6m2 (78) at
-    every step, and no group-lost (the wrapped last frame had read p3m1 (69): a false group-lost)."""
+    every step, and no group-lost (the wrapped last frame had read p3m1 (69): a false
+    group-lost)."""
     from driftwatch import analyze
     run_dir = Path(__file__).parent / "data" / "qe_trials" / "alsi2_layer_across_z0"
     text = gzip.decompress((run_dir / "pw.out.gz").read_bytes()).decode()
@@ -811,7 +812,8 @@ def test_stage_suffixes_of_a_number_and_a_word_are_stages():
     """dfttk keeps a calculation's files as OUTCAR.3static, CONTCAR.3static beside
     INCAR.1relax, INCAR.2relax, INCAR.3static (tests/data/public_more/README.md): one static
     calculation, read from its OUTCAR (NSW = 0, IBRION = -1, as it and INCAR.3static say: a
-    single point); the folder had been refused as 'ambiguous: 2 runs' (the OUTCAR and the CONTCAR)."""
+    single point); the folder had been refused as 'ambiguous: 2 runs' (the OUTCAR and the
+    CONTCAR)."""
     d = MORE / "dfttk_suffixed_stage"
     run = read_run(d)
     assert run.source.endswith("OUTCAR.3static.gz") and len(run) == 1
