@@ -90,15 +90,20 @@ angle x sqrt(l_i l_j) for pairs of them):
   involution's discrepancy: the largest weighted difference of swapped lengths
   and of swapped angles, combined as the larger ("linf") or root-sum-square
   ("l2").  A right angle of the setting (a coset pair whose 2 conorms p(xi), p(eta)
-  are zeros of the pattern) is flipped by a mirror: discrepancy 2 a(x, y).  When the
-  third point xi + eta of their line is a zero of the pattern too (the zero line
-  {01, 23, *} of cF and of hR near it), a is taken from min(p(xi) + p(eta),
-  |p(xi) - p(eta)| + 2 p(xi + eta)) instead of c = p(xi) + p(eta): the |dot product|
-  of the two coset minima is |p(xi) - p(eta)| when xi + eta is the superbase's zero,
-  and c overstated one of the three right angles near cF (p01 + p23 for |p01 - p23|:
-  up to 1.8x R on real relaxations toward fcc).  The min is continuous (the dot
-  product itself jumps at zero-conorm walls), invariant like c, and on a zero line
-  the three flips vanish together only where its three conorms do.
+  are zeros of the pattern) is flipped by a mirror: discrepancy 2 a(x, y), a from
+  c = p(xi) + p(eta), which is |v(x) . v(y)| for the coset minima except on the three
+  lines through the superbase's own zero (the seventh Fano point): there |v(x) . v(y)|
+  = |p(xi) - p(eta)| (both identities tested on random superbases).  c overstated one of
+  the three right angles of cF and of hR near alpha = 60 degrees (p01 + p23 for
+  |p01 - p23|: up to 1.8x R on real relaxations toward fcc).  So when the line's third
+  point xi + eta is a zero of the pattern too, a is taken from min(c, |p(xi) - p(eta)|
+  + 2 p(xi + eta)): the exact |v(x) . v(y)| where that point is the superbase's zero,
+  and a continuous bridge between the two identities where it is another zero of the
+  pattern (the dot product itself jumps where the reduction changes superbase; the
+  bridge also lowers some far-from-type deformations to oP, tP and cP, e.g. a Bain
+  path's 1.9 to 1.3 Å, leaving the calibration near those types as it was).  It is
+  invariant like c, and on a zero line the three flips vanish together only where its
+  three conorms do.
   A setting whose
   only zero is at xi also counts p(xi) / max l (a guard: a non-zero conorm cannot
   serve as the superbase zero);

@@ -740,3 +740,31 @@ def test_size_is_invariant_and_scales_with_the_cell(seed, kind, reflect, factor)
     assert s0 == pytest.approx(np.sqrt((v ** 2).sum() / 2), rel=1e-12)
     assert s1 == pytest.approx(s0, rel=1e-9)
     assert L.deformation_and_size(factor * basis)[1] == pytest.approx(factor * s0, rel=1e-12)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.integers(0, 10**6))
+def test_the_dot_product_of_two_coset_minima_from_the_conorms(seed):
+    """The deformation's right angles are read from conorms: for two coset minima whose Fano
+    points share the conorm points a and b, |v(x) . v(y)| is p_a + p_b, except on the three lines
+    through the superbase's zero (the seventh Fano point), where it is |p_a - p_b|. Checked against the dot products of the vectors themselves, on
+    random cells of every shape (an identity of the obtuse superbase, common practice to verify
+    numerically). Where a right angle's line has another zero of the pattern as its third point,
+    the flip bridges the two continuously (module docstring)."""
+    rng = np.random.default_rng(seed)
+    basis = rng.normal(size=(3, 3)) * rng.uniform(0.5, 3.0, size=(3, 1))
+    v, p, _ = L._superbase(basis)
+    pt = L._p7(p)[0]
+    w = np.stack([v[0, 1], v[0, 2], v[0, 3], v[0, 1] + v[0, 2], v[0, 1] + v[0, 3],
+                  v[0, 2] + v[0, 3], v[0, 0]])
+    tab = L._deform_table()
+    scale = float(np.max(np.abs(pt))) or 1.0
+    through = 0
+    for i, (a, b) in enumerate(tab["shared"][:2].T):
+        third = [k for k, f in enumerate(L._FANO)
+                 if f == tuple((np.array(L._FANO[a]) + L._FANO[b]) % 2)][0]
+        dot = abs(float(w[tab["pa"][i]] @ w[tab["pb"][i]]))
+        want = abs(pt[a] - pt[b]) if third == 6 else pt[a] + pt[b]
+        assert abs(dot - want) <= 1e-12 * scale, (i, a, b, third, dot, want)
+        through += third == 6
+    assert through == 3
