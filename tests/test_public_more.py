@@ -518,7 +518,10 @@ def test_a_saved_segment_of_a_resubmitted_job_is_read_as_its_first_stage(tmp_pat
     for k, atoms in enumerate(seg + out):                 # the frames are ASE's, in that order
         assert np.abs(run.positions[k] - atoms.positions).max() < 1e-4
         assert np.abs(run.cells[k] - atoms.cell.array).max() < 1e-6
-    assert not any("not read" in w for w in run.warnings)
+    assert not any("not read" in w or "still running" in w or "no complete VASP output" in w
+                   for w in run.warnings) and run.unfinished is None
+    assert any("a saved segment of a resubmitted job, cut where its job stopped after 26 "
+               "complete ionic steps" in w for w in run.warnings)
     alone = read_run(f"{d}@11_19_39on29_01_24")
     assert len(alone) == 26
 

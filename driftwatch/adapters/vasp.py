@@ -1178,7 +1178,10 @@ def read_segment(path, ctx: ReadContext):
     if ctx.stage_count == 1:
         yield from reader(path, ctx)
         return
+    said = len(ctx.warnings)
     frames = list(reader(path, ctx))
+    cut = [w for w in ctx.warnings[said:] if "truncated after" in w or "is incomplete" in w]
+    ctx.warnings[said:] = [w for w in ctx.warnings[said:] if w not in cut]
     after = _segment_after(path)
     start = None
     if after is not None and frames:
@@ -1197,6 +1200,10 @@ def read_segment(path, ctx: ReadContext):
                "whether the job continued from it")
         ctx.warn(f"{what} not read: {why}")
         return
+    if cut:       # cut where the job stopped: the segment after it went on from its last step
+        ctx.warn(f"{what}, cut where its job stopped after {len(frames)} complete ionic "
+                 f"step{'s' if len(frames) != 1 else ''}: the segment after it continued from the "
+                 f"last")
     yield from frames
 
 
@@ -1513,10 +1520,9 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
                 return traj
             for when, kinds in ([] if archived else _segments(folder, names)):
                 got = _pick_stage(folder, kinds, None, ctx, staged=True)
-                if got is not None:
+                if got is not None:     # (a segment's own output is cut: read_segment says)
                     saved.append((when, got[0], "vasp-segment"))
                     used.update(p.name for paths in kinds.values() for p in paths)
-                    notes += [got[2]] if got[2] else []
             if archived or saved:           # earlier attempts first; the last one is "final"
                 stages = [(p.name.split(".tar")[0], p, "vasp-error-archive") for p in archived] \
                     + saved + [("final", stages[0][1], stages[0][2])]
