@@ -747,10 +747,11 @@ def test_size_is_invariant_and_scales_with_the_cell(seed, kind, reflect, factor)
 def test_the_dot_product_of_two_coset_minima_from_the_conorms(seed):
     """The deformation's right angles are read from conorms: for two coset minima whose Fano
     points share the conorm points a and b, |v(x) . v(y)| is p_a + p_b, except on the three lines
-    through the superbase's zero (the seventh Fano point), where it is |p_a - p_b|. Checked against the dot products of the vectors themselves, on
-    random cells of every shape (an identity of the obtuse superbase, common practice to verify
-    numerically). Where a right angle's line has another zero of the pattern as its third point,
-    the flip bridges the two continuously (module docstring)."""
+    through the superbase's zero (the seventh Fano point), where it is |p_a - p_b|. Checked
+    against the dot products of the vectors themselves, on random cells of every shape (an
+    identity of the obtuse superbase, common practice to verify numerically). Where a right
+    angle's line has another zero of the pattern as its third point, the flip bridges the two
+    continuously (module docstring)."""
     rng = np.random.default_rng(seed)
     basis = rng.normal(size=(3, 3)) * rng.uniform(0.5, 3.0, size=(3, 1))
     v, p, _ = L._superbase(basis)
