@@ -1147,10 +1147,10 @@ def _segment_after(path: Path) -> tuple[Path, str] | None:
     next saved one, else the folder's own outputs; None when there is none to read."""
     folder, names = path.parent, sorted(os.listdir(path.parent))
     when = _stage_of(path.name)[1:]
-    segments = [kinds for w, kinds in _segments(folder, names)]
-    order = [w for w, _ in _segments(folder, names)]
-    later = segments[order.index(when) + 1:] if when in order else []
-    kinds = later[0] if later else _variants(folder, names).get("")
+    saved = _segments(folder, names)
+    order = [w for w, _ in saved]
+    later = saved[order.index(when) + 1:] if when in order else []
+    kinds = later[0][1] if later else _variants(folder, names).get("")
     got = _pick_stage(folder, kinds, None, ReadContext(folder), staged=True) if kinds else None
     return None if got is None or got[1] == "vasp-poscar" else got[:2]
 
