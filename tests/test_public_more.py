@@ -836,3 +836,16 @@ def test_files_of_no_ionic_steps_are_named_for_what_they_are():
         with pytest.raises(UnknownFormatError, match=f"{said} .*not a file of ionic steps"):
             read_run(d / name)
     assert "Program DOS v.7.3" in (d / "dos.out").read_text()
+
+
+def test_a_poscars_selective_dynamics_is_said():
+    """atomate's genuine Li1Mn8O16 POSCAR (tests/data/public/README.md) holds 2 of its 25 atoms
+    with 'F F F' under Selective dynamics (the file's own lines): read alone, the run counts them
+    as a trajectory's constraints are counted (code_settings.constrained_atoms, and a warning)."""
+    path = Path(__file__).parent / "data" / "public" / "atomate_static_stages" / "inputs" / "POSCAR"
+    lines = path.read_text().splitlines()
+    assert lines[7] == "Selective dynamics"
+    assert sum(ln.split()[3:6] == ["F", "F", "F"] for ln in lines[9:34]) == 2
+    run = read_run(path, format="vasp-poscar")
+    assert run.code_settings["constrained_atoms"] == 2
+    assert any("2 of 25 atoms are held" in w for w in run.warnings)

@@ -35,7 +35,8 @@ import numpy as np
 from ..errors import InputError
 from ._io import (STREAM_ERRORS, Lines, file_size, max_decompressed, open_bytes,
                   strip_compression, tail_bytes)
-from .run import Frame, ReadContext, decimals, frame_from_atoms, stage_folders
+from .run import (Frame, ReadContext, decimals, frame_from_atoms, note_fix_symmetry,
+                  stage_folders)
 
 __all__ = ["read_vasprun", "read_outcar", "read_xdatcar", "read_poscar", "read_incar",
            "pick_from_folder", "SETTING_KEYS"]
@@ -994,6 +995,7 @@ def read_poscar(path, ctx: ReadContext):
             _type_species([n for n, c in zip(names, counts) for _ in range(c)],
                           [j for j, c in enumerate(counts) for _ in range(c)], ctx)
     ctx.title = text.splitlines()[0].strip() or None
+    note_fix_symmetry(atoms, ctx.settings, ctx.warn)     # Selective dynamics: ASE's constraints
     if ctx.kind != "end-points":      # one structure alone (else one of a run's two end points):
         ctx.settings["single_structure"] = strip_compression(Path(path).name)  # warned as such
     yield frame_from_atoms(atoms, 0)
