@@ -457,3 +457,12 @@ def test_a_poscar_whose_counts_line_was_damaged_into_a_position_is_refused_in_on
     with pytest.raises(InputError, match="atom counts .* out of range") as e:
         read_run(path)
     assert str(path) in str(e.value) and "\n" not in str(e.value)
+
+
+def test_a_singular_cell_after_a_jump_is_left_to_the_cell_check():
+    """Found by the damaged-file fuzz above (an extended XYZ): a frame whose cell jumped to one
+    that LAPACK finds singular had raised numpy's LinAlgError from the box-flip re-basing; the
+    re-basing leaves it alone (the reader's cell check, or the analysis, names the frame)."""
+    from driftwatch.adapters.run import continuous_basis
+    cells = np.array([np.eye(3) * 3.0, np.zeros((3, 3)), np.eye(3) * 3.0])
+    assert continuous_basis(cells.copy(), np.array([True, True, True])) == []

@@ -654,7 +654,10 @@ def continuous_basis(cells: np.ndarray, pbc) -> list[int]:
         if k - 1 not in cand:
             continue
         a, b = cells[k - 1], cells[k]
-        M = np.rint(a @ np.linalg.inv(b))
+        try:
+            M = np.rint(a @ np.linalg.inv(b))
+        except np.linalg.LinAlgError:       # a singular cell: no basis to re-base onto (the
+            continue                        # analysis refuses it, naming its frame)
         if np.array_equal(M, np.eye(3)) or round(abs(np.linalg.det(M))) != 1:
             continue
         if np.abs(M @ b - a).max() < 0.25 * np.abs(b - a).max():
