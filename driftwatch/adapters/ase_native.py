@@ -533,9 +533,9 @@ def run_kind(code_settings: dict) -> str | None:
     structure has no ionic steps), FHI-aims' in words (:func:`_aims_steps`)."""
     s = code_settings or {}
     what = s.get("calculation")
-    if what is None or what == "geometry optimization" or s.get("code") not in ("castep", "aims"):
+    if what is None or what == "geometry optimization":
         return None
-    if s["code"] == "aims":
+    if s.get("code") == "aims":
         return what
     said = f"CASTEP: type of calculation : {what}"
     if what in ("single point energy", "band structure"):

@@ -1001,6 +1001,10 @@ def read_poscar(path, ctx: ReadContext):
     yield frame_from_atoms(atoms, 0)
 
 
+_READERS = {"vasp-xml": read_vasprun, "vasp-out": read_outcar, "vasp-xdatcar": read_xdatcar}
+"""The trajectory readers by format: a stage read from an archive or a saved segment."""
+
+
 # ---------------------------------------------------------------- custodian's error archives
 _ARCHIVE = re.compile(r"^error\.(\d+)\.tar(?:\.gz|\.bz2|\.xz)?$")
 _ARCHIVED = ("vasprun.xml", "OUTCAR", "XDATCAR", "INCAR")      # what a stage is read from
@@ -1105,8 +1109,7 @@ def read_error_archive(path, ctx: ReadContext):
         inner, fmt, note = got
         if note:
             ctx.warn(note.split(": ", 1)[1])          # (names the scratch folder otherwise)
-        reader = {"vasp-xml": read_vasprun, "vasp-out": read_outcar,
-                  "vasp-xdatcar": read_xdatcar}[fmt]
+        reader = _READERS[fmt]
         try:
             yield from reader(inner, ctx)
         except InputError as exc:         # after the steps it gave, if any
@@ -1176,7 +1179,7 @@ def read_segment(path, ctx: ReadContext):
     after it."""
     path = Path(path)
     kind = _SEGMENT.match(strip_compression(path.name)).group(1)
-    reader = {"vasprun.xml": read_vasprun, "OUTCAR": read_outcar, "XDATCAR": read_xdatcar}[kind]
+    reader = _READERS[_KIND_FORMAT[kind]]
     if ctx.stage_count == 1:
         yield from reader(path, ctx)
         return
@@ -1188,8 +1191,7 @@ def read_segment(path, ctx: ReadContext):
     start = None
     if after is not None and frames:
         nxt, fmt = after
-        read = {"vasp-xml": read_vasprun, "vasp-out": read_outcar, "vasp-xdatcar": read_xdatcar}
-        with contextlib.closing(read[fmt](nxt, ReadContext(nxt))) as steps:
+        with contextlib.closing(_READERS[fmt](nxt, ReadContext(nxt))) as steps:
             start = next(steps, None)
     ends = frames[-1:]
     contcar = _sibling(path, "CONTCAR", ctx)
