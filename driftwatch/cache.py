@@ -143,6 +143,14 @@ def freeze_inputs(inputs, digests: FileDigests) -> list | None:
                     return None
                 out.append(["folder", str(path), stamp])
                 continue
+            if kind == "part":
+                base, fmt, keys, name = path
+                now, digest = digests.stamp_digest(base)
+                part = _part_digest(base, fmt, keys, name) if now == list(stamp or ()) else None
+                if digest is None or part is None or digests.stamp_digest(base)[0] != now:
+                    return None
+                out.append(["part", [str(base), fmt, list(keys), name, digest], part])
+                continue
             now, digest = digests.stamp_digest(path)
             if now != (None if stamp is None else list(stamp)) or (now is not None and
                                                                  digest is None):
@@ -158,6 +166,10 @@ def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
     if not isinstance(inputs, list) or not inputs:
         return False
     for item in inputs:
+        if isinstance(item, list) and len(item) == 3 and item[0] == "part":
+            if not _part_unchanged(item, digests):
+                return False
+            continue
         if not (isinstance(item, list) and len(item) == 3 and item[0] in ("file", "folder")
                 and isinstance(item[1], str) and (item[2] is None or _is_digest(item[2]))):
             return False
@@ -169,6 +181,36 @@ def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
         if have != want:
             return False
     return True
+
+
+def _part_digest(base, fmt, keys, name) -> str | None:
+    """:func:`~driftwatch.adapters.batch.member_digest`, None when the file cannot say (damaged,
+    unreadable, or no longer naming its structures by the same key): a miss."""
+    import sqlite3
+
+    from .adapters.batch import member_digest
+    from .errors import DriftwatchError
+    try:
+        return member_digest(base, fmt, tuple(keys), name)
+    except (DriftwatchError, OSError, ValueError, LookupError, sqlite3.Error):
+        return None
+
+
+def _part_unchanged(item, digests: FileDigests) -> bool:
+    """A ``["part", [file, format, keys, name, file sha256], structure sha256]`` input: the file
+    is unchanged (its memoised digest, no read), or the structure's own frames are."""
+    spec, want = item[1], item[2]
+    if not (isinstance(spec, list) and len(spec) == 5 and all(isinstance(x, str) for x in
+            (spec[0], spec[1], spec[3])) and isinstance(spec[2], list) and _is_digest(spec[4])
+            and _is_digest(want)):
+        return False
+    base, fmt, keys, name, whole = spec
+    try:
+        if digests.digest(base) == whole:
+            return True
+    except OSError:
+        return False
+    return _part_digest(base, fmt, keys, name) == want
 
 
 def _checked(res) -> dict | None:

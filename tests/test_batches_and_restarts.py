@@ -298,7 +298,7 @@ def test_one_run_per_structure_equal_to_ases_readers():
         xyz = read_run(f"{BATCH / 'relaxations.extxyz.gz'}::{name}")
         _same(xyz, _by(images, "structure_id", name))
         assert xyz.steps.tolist() == [a.info["step"] for a in _by(images, "structure_id", name)]
-        assert xyz.structure_key == {"key": "structure_id", "value": name, "structures": 6}
+        assert xyz.structure_key == {"key": "structure_id", "value": name}
         mine = sorted((r for r in rows if r.relax_id == name), key=lambda r: r.step)
         db_run = read_run(f"{BATCH / 'relaxations.db'}::{name}")
         _same(db_run, [r.toatoms() for r in mine])
@@ -419,10 +419,20 @@ def test_structure_keys_are_configurable_and_bad_batches_are_one_line_errors(tmp
         read_run(f"{QE / 'layer_oblique_to_hex' / 'pw.out'}::x")
 
 
-def test_cache_keys_each_structure_on_the_file_and_its_name(tmp_path):
-    """One cache entry per structure; a re-audit serves all from the cache; a changed file (a new
-    structure appended, real frames under a new name) re-reads every structure of it and adds the
-    new one."""
+def _records(folder):
+    """Record files of an audit output -> their content without what differs between audits."""
+    out = {}
+    for p in (Path(folder) / "records").glob("*.json"):
+        rec = json_load(p)
+        rec.pop("timing", None)
+        out[p.name] = rec
+    return out
+
+
+def test_cache_keys_each_structure_on_its_own_frames(tmp_path):
+    """One cache entry per structure; a re-audit serves all from the cache. A relaxation appended
+    to the file (real frames under a new name) is the only new work, and a structure whose own
+    frames changed is read again, alone; every result served equals a fresh audit's."""
     from driftwatch.campaign import audit
     camp = tmp_path / "camp"
     camp.mkdir()
@@ -439,12 +449,61 @@ def test_cache_keys_each_structure_on_the_file_and_its_name(tmp_path):
                     for ln in _frames_of(text, "Cu-bct-07"))
     (camp / "relaxations.extxyz.gz").write_bytes(gzip.compress((text + extra).encode()))
     third = audit([camp], tmp_path / "out", **kw)
-    assert third["runs"] == 7 and third["cached"] == 0 and not third["failed"]
-    recs = {p.name for p in (tmp_path / "out" / "records").glob("*.json")}
-    assert "camp_relaxations.extxyz.gz__Cu-bct-08.json" in recs
-    a = json_load(tmp_path / "out" / "records" / "camp_relaxations.extxyz.gz__Cu-bct-07.json")
-    b = json_load(tmp_path / "out" / "records" / "camp_relaxations.extxyz.gz__Cu-bct-08.json")
+    assert third["runs"] == 7 and third["cached"] == 6 and third["analysed"] == 1
+    assert not third["failed"]
+    recs = _records(tmp_path / "out")
+    a = recs["camp_relaxations.extxyz.gz__Cu-bct-07.json"]
+    b = recs["camp_relaxations.extxyz.gz__Cu-bct-08.json"]
     assert a["summary"]["verdict"] == b["summary"]["verdict"]               # the same frames
+    # one atom of the last frame of Al-fco-02 moved by 0.05 A: that structure alone is read again
+    lines = (text + extra).splitlines(keepends=True)
+    last = max(i for i, ln in enumerate(lines) if "structure_id=Al-fco-02" in ln)
+    f = lines[last + 1].split()
+    f[1] = f"{float(f[1]) + 0.05:.8f}"
+    lines[last + 1] = " ".join(f) + "\n"
+    (camp / "relaxations.extxyz.gz").write_bytes(gzip.compress("".join(lines).encode()))
+    fourth = audit([camp], tmp_path / "out", **kw)
+    assert fourth["cached"] == 6 and fourth["analysed"] == 1 and not fourth["failed"]
+    served = _records(tmp_path / "out")
+    assert served["camp_relaxations.extxyz.gz__Al-fco-02.json"] != recs[
+        "camp_relaxations.extxyz.gz__Al-fco-02.json"]
+    fresh = audit([camp], tmp_path / "fresh", use_cache=False, **kw)
+    assert fresh["analysed"] == 7
+    assert served == _records(tmp_path / "fresh")
+
+
+def test_cache_keys_each_structure_of_an_ase_db_on_its_own_rows(tmp_path):
+    """The same for an ase.db (SQLite, rows interleaved as a batched optimizer writes them): rows
+    of a new relaxation written through ase.db leave the other structures cached; a row rewritten
+    with moved atoms (``db.update(id, atoms=...)``) re-reads its structure alone; results served
+    from the cache equal a fresh audit's (real SQLite through ase.db, real EMT frames)."""
+    import ase.db
+    from driftwatch.campaign import audit
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    db_path = camp / "relaxations.db"
+    shutil.copy(BATCH / "relaxations.db", db_path)
+    kw = dict(workers=1, report=False, progress="off")
+    assert audit([camp], tmp_path / "out", **kw)["runs"] == 6
+    with ase.db.connect(str(db_path)) as db:
+        rows = sorted(db.select(relax_id="Ni-rhombo-03"), key=lambda r: r.step)
+        for r in rows:                                   # the same relaxation under a new name
+            db.write(r.toatoms(), relax_id="Ni-rhombo-09", step=r.step)
+    again = audit([camp], tmp_path / "out", **kw)
+    assert again["runs"] == 7 and again["cached"] == 6 and again["analysed"] == 1
+    before = _records(tmp_path / "out")
+    with ase.db.connect(str(db_path)) as db:
+        last = max(db.select(relax_id="CuNi-tP-04"), key=lambda r: r.step)
+        atoms = last.toatoms()
+        atoms.positions[0] += [0.05, 0.0, 0.0]
+        db.update(last.id, atoms=atoms)
+    third = audit([camp], tmp_path / "out", **kw)
+    assert third["cached"] == 6 and third["analysed"] == 1 and not third["failed"]
+    fresh = audit([camp], tmp_path / "fresh", use_cache=False, **kw)
+    assert fresh["analysed"] == 7 and _records(tmp_path / "out") == _records(tmp_path / "fresh")
+    after = _records(tmp_path / "out")
+    changed = {k for k in after if after[k] != before[k]}
+    assert changed == {"camp_relaxations.db__CuNi-tP-04.json"}
 
 
 def _frames_of(text, name):

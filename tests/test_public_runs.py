@@ -173,7 +173,7 @@ def test_a_list_of_task_documents_is_one_run_per_document(tmp_path):
     for t, name in zip(ids, ("GaLa.task.json.gz", "task_doc_mp-2766060.json.gz")):
         one, alone = read_run(f"{export}::{t}"), read_run(PUB / "task_docs" / name)
         assert one.format == "task-doc" and one.source.endswith(f"::{t}")
-        assert one.structure_key == {"key": "task_id", "value": t, "structures": 2}
+        assert one.structure_key == {"key": "task_id", "value": t}
         np.testing.assert_array_equal(one.positions, alone.positions)
         np.testing.assert_array_equal(one.cells, alone.cells)
         np.testing.assert_array_equal(one.energies, alone.energies)
@@ -190,7 +190,7 @@ def test_a_list_of_task_documents_is_one_run_per_document(tmp_path):
     assert registry.structures(export) == ["doc-1", "doc-2"]
     second = read_run(f"{export}::doc-2")
     np.testing.assert_array_equal(second.positions, alone.positions)
-    assert second.structure_key == {"key": "position", "value": "doc-2", "structures": 2}
+    assert second.structure_key == {"key": "position", "value": "doc-2"}
     export.write_text(json.dumps(docs[:1]))                      # a list of one: that document
     assert registry.structures(export) == [] and len(read_run(export)) == 10
     export.write_text(json.dumps([docs[0], 3]))

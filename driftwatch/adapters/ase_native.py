@@ -178,7 +178,7 @@ def read_traj(path, ctx: ReadContext):
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
-        ctx.structure = {"key": "NEB image", "value": name, "structures": p - 2}
+        ctx.structure = {"key": "NEB image", "value": name}
         for j, i in enumerate(range(k, n, p)):
             yield frame_from_atoms(traj[i], j)
     finally:
@@ -319,7 +319,7 @@ def _chosen(index, name, ctx: ReadContext):
     name = names[0] if name is None else name
     members, kind = index.structure(name)
     ctx.kind = kind
-    ctx.structure = {"key": index.key, "value": name, "structures": len(names)}
+    ctx.structure = {"key": index.key, "value": name}
     return members, kind
 
 

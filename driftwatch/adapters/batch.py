@@ -33,7 +33,7 @@ from ..errors import InputError, NotARunError
 
 __all__ = ["STRUCTURE_KEYS", "STEP_KEYS", "END_POINT_MARKERS", "Member", "Index", "split",
            "refuse_many", "listing",
-           "index_extxyz", "index_db", "SEPARATOR"]
+           "index_extxyz", "index_db", "SEPARATOR", "PART_FORMATS", "member_digest"]
 
 STRUCTURE_KEYS = ("structure_id", "relax_id", "material_id", "system_name", "config_type")
 """Default ``inputs.structure_keys``: the info / key-value names tried, in order, to name the
@@ -366,6 +366,70 @@ def index_db(path, keys=STRUCTURE_KEYS, selection=None) -> Index:
     if key is not None:
         _remember(key, (index, None))
     return index
+
+
+# ---------------------------------------------------------------- what one structure reads
+PART_FORMATS = ("extxyz", "ase-db")
+"""Formats whose ``FILE::NAME`` runs the campaign cache keys on their own frames (or rows), so a
+relaxation appended to the file leaves the others' results in the cache
+(:func:`member_digest`)."""
+
+
+def member_digest(path, fmt: str, keys, name: str) -> str | None:
+    """sha256 (hex) of what structure ``name`` of a many-structure file reads: its frames' lines
+    (extended XYZ, decompressed) or its rows' columns (ase.db), the key naming the structures and
+    whether the file ends cut. None when the file names no structures by ``keys`` or holds no
+    ``name``. One pass over the file serves every structure (remembered for its stamp)."""
+    key = _memo_key("digests-" + fmt, path, keys)
+    hit = _MEMO.get(key) if key is not None else None
+    if hit is None:
+        hit = (_member_digests(path, fmt, tuple(keys)), None)
+        if key is not None:
+            _remember(key, hit)
+    return hit[0].get(name)
+
+
+def _member_digests(path, fmt: str, keys: tuple) -> dict:
+    import hashlib
+    import json
+    index = index_extxyz(path, keys) if fmt == "extxyz" else index_db(path, keys)
+    if index.key is None:
+        return {}
+    of = {m.pos: m.name for m in index.members}
+    hashes = {name: hashlib.sha256() for name in index.names()}
+    if fmt == "extxyz":
+        for n, _, _, block in extxyz_frames(path):
+            if n is None:
+                break
+            if n in of:
+                hashes[of[n]].update("".join(block).encode())
+    else:
+        for row in _db_rows(path):
+            h = hashes.get(of.get(row[0]))
+            if h is not None:
+                for v in row:
+                    h.update(v if isinstance(v, bytes) else repr(v).encode())
+                    h.update(b"\0")
+    tail = json.dumps([index.key, index.cut]).encode()
+    out = {}
+    for name, h in hashes.items():
+        h.update(tail)
+        out[name] = h.hexdigest()
+    return out
+
+
+def _db_rows(path):
+    """Every row of an ase.db's ``systems`` table in id order, id first (SQLite, read-only)."""
+    import sqlite3
+    from urllib.parse import quote
+    con = sqlite3.connect(f"file:{quote(str(path))}?mode=ro", uri=True)
+    try:
+        cur = con.execute("SELECT * FROM systems ORDER BY id")
+        first = [d[0] for d in cur.description].index("id")
+        for row in cur:
+            yield (row[first],) + tuple(row)
+    finally:
+        con.close()
 
 
 # ---------------------------------------------------------------- for discovery (the format table)

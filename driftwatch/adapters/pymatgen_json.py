@@ -184,7 +184,7 @@ def _chosen_document(path, ctx: ReadContext):
         refuse_many(base, names, "task documents")
     if name not in names:
         raise InputError(base, f"no task document named {name!r} in the list ({listing(names)})")
-    ctx.structure = {"key": key, "value": name, "structures": len(docs)}
+    ctx.structure = {"key": key, "value": name}
     return docs[names.index(name)]
 
 

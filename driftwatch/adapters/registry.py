@@ -40,6 +40,7 @@ from typing import Callable, Iterator
 from ..errors import (AtomsChangeError, DamagedFrameError, DriftwatchError, ForeignOutputError,
                       InputError, NotARunError, UnknownFormatError)
 from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
+from .batch import PART_FORMATS
 from .run import Frame, ReadContext, Run, StraightLine, checked, collect
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
@@ -734,8 +735,11 @@ def detect(path) -> str:
 def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
     """Frames from the reader; reader failures become InputError, or a warning after frames."""
     fmt = _formats[fmt_name]
-    base = _batch_split(str(source))[0]
-    ctx.uses(base.rpartition("@")[0] if not Path(base).exists() and "@" in base else base)
+    base, name = _batch_split(str(source))
+    if name is not None and fmt_name in PART_FORMATS and Path(base).exists():
+        ctx.part(base, fmt_name, name)
+    else:
+        ctx.uses(base.rpartition("@")[0] if not Path(base).exists() and "@" in base else base)
     n = 0
     last = None
     try:

@@ -106,7 +106,8 @@ class Run:
     relaxation or when unknown. The verdict then compares how the structure moved, first to last."""
     structure_key: dict | None = None
     """For one structure of a many-structure file (``FILE::NAME``): ``{"key": info or key-value name,
-    "value": NAME, "structures": how many the file holds}``; None otherwise."""
+    "value": NAME}``; None otherwise. (How many structures the file holds is no field: the
+    campaign cache serves a structure's result while others are appended to the file.)"""
     species: tuple | None = None
     """(N,) the code's own species labels where it tells atoms of one element apart (pw.x's
     ATOMIC_SPECIES ``Fe1``, ``Fe2``: other starting magnetisations or Hubbard U), else None. spglib
@@ -261,6 +262,7 @@ class ReadContext:
         self.title: str | None = None
         self.files: dict[str, list | None] = {}
         self.folders: dict[str, str | None] = {}
+        self.parts: dict[str, tuple] = {}
         self.rounding: tuple | None = None
         """``("cartesian", step_Å)`` or ``("fractional", step)``: the last printed digit of the
         positions (see :attr:`Run.position_precision`); None when unknown."""
@@ -274,7 +276,7 @@ class ReadContext:
         self.kind: str = "trajectory"
         """``"trajectory"`` or ``"end-points"`` (only an initial and a final structure)."""
         self.structure: dict | None = None
-        """``{"key", "value", "structures"}`` for one structure of a many-structure file."""
+        """``{"key", "value"}`` for one structure of a many-structure file."""
         self.not_relaxation: str | None = None
         """What the steps are when they are no relaxation (:attr:`Run.not_relaxation`)."""
         self.unfinished: str | None = None
@@ -307,8 +309,22 @@ class ReadContext:
         if key not in self.folders:
             self.folders[key] = folder_listing(key)
 
+    def part(self, path, fmt: str, name: str) -> None:
+        """Record that the read depends only on structure ``name`` of the many-structure file
+        ``path`` (a format of :data:`~driftwatch.adapters.batch.PART_FORMATS`), not on the rest."""
+        self.uses(path)
+        self.parts[str(path)] = (fmt, name)
+
     def inputs(self) -> tuple:
-        return tuple([("file", p, s) for p, s in sorted(self.files.items())]
+        """``(kind, path, stamp)`` of every input: ``("file", path, stamp)``, ``("folder", path,
+        listing digest)`` and, for one structure of a many-structure file, ``("part", (path,
+        format, structure keys, name), stamp)``."""
+        def file(p, s):
+            if p in self.parts:
+                fmt, name = self.parts[p]
+                return "part", (p, fmt, tuple(self.structure_keys), name), s
+            return "file", p, s
+        return tuple([file(p, s) for p, s in sorted(self.files.items())]
                      + [("folder", p, s) for p, s in sorted(self.folders.items())])
 
     def round_to(self, kind: str, step: float) -> None:
