@@ -849,3 +849,108 @@ def test_a_poscars_selective_dynamics_is_said():
     run = read_run(path, format="vasp-poscar")
     assert run.code_settings["constrained_atoms"] == 2
     assert any("2 of 25 atoms are held" in w for w in run.warnings)
+
+
+# ---------------------------------------------------------------- nineteenth session's OUTCARs
+def _file_lines(path):
+    return gzip.open(path, "rt").read().splitlines()
+
+
+def test_an_outcar_cell_component_of_100_angstrom_or_more_is_read():
+    """surfaxe's genuine Y2Ti2S2O5 (001) slab OUTCAR (VASP 5.4.4): c = 113.517567 A, printed in
+    VASP's fixed-width fields as '0.000000000113.517567000'. ASE's reader raises ValueError on it
+    (as driftwatch did); the cell now equals the file's numbers and its own 'volume of cell'."""
+    path = MORE / "surfaxe_slab_c113" / "OUTCAR.gz"
+    lines = _file_lines(path)
+    assert any("0.000000000113.517567000" in ln for ln in lines)
+    with pytest.raises(ValueError):                                    # ASE 3.29's reader
+        ase.io.read(path, format="vasp-out")
+    run = read_run(path)
+    assert len(run) == 1 and run.unfinished is None
+    np.testing.assert_allclose(run.cells[0], np.diag([3.770023, 3.770023, 113.517567]), atol=0)
+    volume = float(next(ln for ln in lines if "volume of cell" in ln).split()[-1])   # 1613.43
+    assert abs(abs(np.linalg.det(run.cells[0])) - volume) < 0.005
+
+
+def test_a_vasp6_outcar_of_force_field_steps_reads_every_ionic_step():
+    """dpdata's genuine VASP 6.3.0 on-the-fly ML_LMLFF OUTCAR (NSW = 10): every ionic step prints
+    a '(ML)' POSITION block and 'free  energy ML TOTEN'; steps 1, 2, 3 and 6 also their
+    first-principles block after the SCF. All 10 steps are read (one frame each, the
+    first-principles energy where VASP computed one, else the force field's), none 'damaged'.
+    driftwatch had read 1 frame; ASE 3.29's reader fails on the file."""
+    path = MORE / "dpdata_vasp63_ml" / "OUTCAR.ch4.ml.gz"
+    lines = _file_lines(path)
+    ml_blocks = [i for i, ln in enumerate(lines) if "POSITION" in ln and "(ML)" in ln]
+    assert len(ml_blocks) == 10 and any(ln.split() == ["NSW", "=", "10"] for ln in lines)
+    energies, ml = [], []                    # the file's own energy line of each ionic step
+    for ln in lines:
+        if "free  energy ML TOTEN" in ln:
+            energies.append(float(ln.split("=")[1].split()[0]))
+            ml.append(True)
+        elif "free  energy   TOTEN" in ln:
+            energies[-1], ml[-1] = float(ln.split("=")[1].split()[0]), False
+    assert len(energies) == 10 and ml.count(True) == 6
+    with pytest.raises(ValueError):                                    # ASE 3.29's reader
+        ase.io.read(path, ":", format="vasp-out")
+    run = read_run(path)
+    assert len(run) == 10 and run.steps.tolist() == list(range(10)) and run.unfinished is None
+    np.testing.assert_allclose(run.energies, energies, rtol=0, atol=1e-8)
+    assert any("6 of 10 ionic steps were computed by VASP's machine-learned force field" in w
+               for w in run.warnings)
+    first = np.array([ln.split()[:3] for ln in lines[ml_blocks[-1] + 2:ml_blocks[-1] + 7]], float)
+    np.testing.assert_allclose(run.positions[-1], first, atol=0)       # the last (ML) step
+
+
+def test_an_outcar_of_nwrite_0_reads_the_two_structures_it_prints():
+    """dpdata's genuine NWRITE = 0 MD (IBRION = 0, NSW = 10): the OUTCAR prints the structure at
+    the first and last ionic step only. Those two are read as steps 0 and 9, equal to the
+    vasprun.xml beside it (pymatgen's Vasprun), and the 8 unprinted steps are said, not called
+    damaged. driftwatch had read 1 frame and called the run 'damaged'."""
+    from pymatgen.io.vasp.outputs import Vasprun
+    folder = MORE / "dpdata_nwrite0"
+    run = read_run(folder / "OUTCAR.gz")
+    assert run.steps.tolist() == [0, 9] and run.unfinished is None
+    ref = Vasprun(str(folder / "vasprun.xml.gz"), parse_dos=False, parse_eigen=False)
+    assert len(ref.ionic_steps) == 10
+    for k, i in enumerate((0, 9)):
+        st = ref.ionic_steps[i]["structure"]
+        np.testing.assert_allclose(run.positions[k], st.cart_coords, atol=1e-5)  # f13.5 printed
+        np.testing.assert_allclose(run.cells[k], st.lattice.matrix, atol=1e-6)
+        assert abs(run.energies[k] - ref.ionic_steps[i]["e_fr_energy"]) < 1e-6
+    assert any("NWRITE = 0" in w and "8 of 10 steps are not seen" in w for w in run.warnings)
+    assert len(read_run(folder)) == 10                      # the folder reads the vasprun.xml
+
+
+def test_an_outcar_of_one_element_as_two_potcar_types_keeps_them_apart():
+    """dpdata's genuine VASP 6.3.0 single point with types Ti, O, Ti ('ions per type = 3 2 3'):
+    the OUTCAR now tells the two Ti types apart as the vasprun.xml beside it does, so both give
+    spglib's group of the structure VASP computed (Pm where merged Ti gives Pmc2_1)."""
+    import spglib
+    from driftwatch import symmetry
+    folder = MORE / "dpdata_two_ti_types"
+    out, xml = read_run(folder / "OUTCAR.gz"), read_run(folder / "vasprun.xml.gz")
+    assert out.species == xml.species == ("Ti1",) * 3 + ("O",) * 2 + ("Ti2",) * 3
+    cell = (out.cells[0], np.linalg.solve(out.cells[0].T, out.positions[0].T).T)
+    assert spglib.get_symmetry_dataset((*cell, [1, 1, 1, 2, 2, 3, 3, 3]),
+                                       symprec=1e-3).number == 6                    # spglib's
+    assert spglib.get_symmetry_dataset((*cell, out.numbers), symprec=1e-3).number == 26
+    for run in (out, xml):
+        assert symmetry.group_at(run.cells[0], run.positions[0], run.symmetry_types,
+                                 1e-3)["group"] == 6
+
+
+def test_an_outcar_with_vdw_columns_is_read():
+    """dpdata's VASP 5.4.4 OUTCAR with a vdW correction ('w/o vdW' energies, a 9-column POSITION
+    block): the energy is the file's 'free  energy   TOTEN' and the positions and forces its
+    first six columns; ASE 3.29 fails on it ('vdW')."""
+    path = MORE / "dpdata_vdw_columns" / "OUTCAR.Ge.vdw.gz"
+    lines = _file_lines(path)
+    with pytest.raises(ValueError):                                    # ASE 3.29's reader
+        ase.io.read(path, format="vasp-out")
+    run = read_run(path)
+    toten = next(ln for ln in lines if "free  energy   TOTEN" in ln)
+    assert run.energies[0] == float(toten.split("=")[1].split()[0]) and "w/o vdW" in toten
+    at = next(i for i, ln in enumerate(lines) if ln.startswith(" POSITION"))
+    rows = np.array([ln.split()[:6] for ln in lines[at + 2:at + 2 + len(run.numbers)]], float)
+    np.testing.assert_allclose(run.positions[0], rows[:, :3], atol=0)
+    np.testing.assert_array_equal(run.forces[0], rows[:, 3:])

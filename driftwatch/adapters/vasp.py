@@ -21,6 +21,7 @@ keys the output lacks, and a disagreement between the two is a warning.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import itertools
 import lzma
 import os
@@ -539,18 +540,23 @@ _OUT_ITERATION = re.compile(r"Iteration\s+\d+\(\s*(\d+)\)")     # ionic(electron
 # VTST's NEB says so in the OUTCAR header (the genuine aiida-vasp NEB, tests/data/public/vasp544_neb)
 _OUT_VTST_NEB = "CHAIN: Running the NEB"
 # VASP 5.4/6: the last is INISYM's (the operations used); VASP 5.2 ends with MAGSYM's
+_OUT_LAYOUT = re.compile(r"^\s*(NWRITE|ions per type)\s*=\s*((?:-?\d+\s*)+)")
 _OUT_NSYM = re.compile(r"(?:GETGRP|DYNSYM|MAGSYM|INISYM) returns: Found\s+(\d+) space group operations")
 _OUTCAR_END = "General timing and accounting"
 
 
 def _outcar_header(path):
-    """(settings VASP reports, SYSTEM title, NELM or None, LEPSILON) from the lines before the
-    first electronic iteration."""
-    reported, title, nelm, lepsilon = {}, None, None, False
+    """(settings VASP reports, SYSTEM title, NELM or None, LEPSILON, layout) from the lines before
+    the first electronic iteration; layout: ``{"nwrite": NWRITE, "types": ions per type}`` as
+    far as the file says them."""
+    reported, title, nelm, lepsilon, layout = {}, None, None, False, {}
     with Lines(path) as fh:
         for line in fh:
             if "Iteration" in line:
                 break
+            m = _OUT_LAYOUT.match(line)
+            if m and m.group(1) not in layout:
+                layout[m.group(1)] = [int(x) for x in m.group(2).split()]
             m = _OUT_NELM.match(line)
             if m and nelm is None:
                 nelm = int(m.group(1))
@@ -573,7 +579,8 @@ def _outcar_header(path):
                 reported["nsym"] = int(m.group(1))
             if _OUT_VTST_NEB in line:
                 reported["neb_image"] = "VTST's NEB, as its OUTCAR says"
-    return reported, title, nelm, lepsilon
+    return reported, title, nelm, lepsilon, {"nwrite": layout.get("NWRITE", [None])[0],
+                                             "types": layout.get("ions per type")}
 
 
 class _WatchedLines(Lines):
@@ -609,6 +616,8 @@ class _WatchedLines(Lines):
 
 
 _SCF_END = "FREE ENERGIE OF THE ION-ELECTRON SYSTEM"   # ASE's chunk delimiter (+4 lines)
+_ML = "(ML)"     # VASP 6's on-the-fly force field: 'POSITION ... TOTAL-FORCE (eV/Angst) (ML)'
+_ML_END = "ML " + _SCF_END                     # ... and its energy block, 'ML FREE ENERGIE ...'
 _CELL, _POSITION, _STRESS = "direct lattice vectors", "POSITION          ", "in kB "
 _SOFT_STOP = "soft stop encountered"     # VASP read a STOPCAR with LSTOP = .TRUE.
 _CONVERGED = "reached required accuracy"  # after a relaxation's last ionic step
@@ -622,9 +631,24 @@ class _ScanStopped(Exception):
     """The fast scanner met a step it does not read exactly like ASE; ASE takes over there."""
 
 
+def _cell_row(line: str) -> list[float]:
+    """A lattice vector of the ``direct lattice vectors`` block (Å). VASP prints the fields in a
+    fixed width (F13.9), so a component of 100 Å or more touches the one before it
+    (``0.000000000113.517567000``: a slab's vacuum axis); such a line is split by the decimals."""
+    fields = line.split()[:3]
+    try:
+        return [float(x) for x in fields]
+    except ValueError:
+        d = decimals(fields[0]) if fields else None
+        got = re.findall(rf"-?\d*\.\d{{{d}}}", line)[:3] if d else []
+        if len(got) < 3:
+            raise
+        return [float(x) for x in got]
+
+
 def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
-    """Yield (cell, positions, forces, stress|None, free_energy, decimals, electronic steps|None)
-    per completed ionic step (the electronic steps: the last ``Iteration  i(  n)`` line's n).
+    """Yield (cell, positions, forces, stress|None, free_energy, decimals, electronic steps|None,
+    force field) per completed ionic step (the electronic steps: the last ``Iteration  i(  n)`` line's n).
 
     ``fd`` is a ``Lines`` after the header: the scanner jumps between the lines it reads
     (``Lines.skip_to``), so the ~10^2-10^4 lines of a step's electronic iterations are never
@@ -640,8 +664,11 @@ def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
       delimiter through the last row of its POSITION block and is complete only then. ASE's chunk
       parser cannot read it ("Did not find required property positions").
 
-    The layout is decided on the first step (no POSITION block before its delimiter: energy-first)
-    and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (a block cut by
+    VASP 6's on-the-fly force field prints a ``POSITION ... (ML)`` block and an ``ML FREE
+    ENERGIE`` delimiter for every step (the last tuple item True), and a first-principles block
+    after it where it ran an SCF; with ``state["nwrite"] == 0`` a step printed with no structure
+    yields None. The layout is decided on the first step (no POSITION block before its delimiter:
+    energy-first) and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (a block cut by
     the delimiter, a marker among the 4 lines after it, text where numbers belong; in the "ase"
     layout ASE's parser then reads that step).
     """
@@ -662,12 +689,13 @@ def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
             block = rows(3)
             if block is None:
                 return False
-            got["cell"] = np.array([r.split()[:3] for r in block], float)
+            got["cell"] = np.array([_cell_row(r) for r in block], float)
         elif _POSITION in line:
             block = rows(natoms + 1)
             if block is None:
                 return False
-            got["pos"], got["first"] = np.array([r.split() for r in block[1:]], float), block[1]
+            got["pos"] = np.array([r.split()[:6] for r in block[1:]], float)
+            got["first"], got["ml"] = block[1], _ML in line
         elif _STRESS in line:
             got["stress"] = convert_vasp_outcar_stress([float(a) for a in line.split()[2:]])
         return True
@@ -706,14 +734,21 @@ def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
                             raise _ScanStopped
                     elif not take(line, got):
                         return
-            free = float(tail[1].split()[4])
+            free = float(tail[1].split("=")[1].split()[0])
         except (ValueError, IndexError):
             raise _ScanStopped from None
         cell, pos = got.get("cell"), got.get("pos")
+        if pos is None and layout == "ase" and state.get("nwrite") == 0 and "pos" in state:
+            yield None                       # NWRITE = 0: a step printed with no structure
+            got = {}
+            continue
         if cell is None or pos is None or cell.shape != (3, 3) or pos.shape != (natoms, 6):
             raise _ScanStopped
+        if (_ML_END in line) != bool(got.get("ml")):
+            raise _ScanStopped               # an ML energy for first-principles positions
+        state["pos"] = True
         yield (cell, pos[:, :3], pos[:, 3:6], got.get("stress"), free,
-               decimals(got["first"].split()[0]), electronic)
+               decimals(got["first"].split()[0]), electronic, bool(got.get("ml")))
         got = {}
 
 
@@ -730,7 +765,7 @@ def read_outcar(path, ctx: ReadContext):
     from ase.io import ParseError
     from ase.io.vasp_parsers.vasp_outcar_parsers import OutcarHeaderParser, build_header
 
-    reported, ctx.title, nelm, lepsilon = _outcar_header(path)
+    reported, ctx.title, nelm, lepsilon, layout = _outcar_header(path)
     _merge_incar(path, ctx, reported)
     step = 0
     unconverged: list[int] = []     # steps whose SCF ran NELM electronic steps (as vasprun.xml)
@@ -746,22 +781,49 @@ def read_outcar(path, ctx: ReadContext):
                                    "inside the OUTCAR header, or it is not an OUTCAR)"
                              + (f"; {said}" if said else "")) from None
         numbers = np.array([atomic_numbers[s] for s in header["symbols"]], int)
+        types = layout["types"]
+        if types and sum(types) == len(numbers):
+            _type_species(header["symbols"], np.repeat(np.arange(len(types)), types), ctx)
         pbc = np.ones(3, bool)
-        state: dict = {}
+        state: dict = {"nwrite": layout["nwrite"]}
+        unprinted, learned = 0, 0     # NWRITE = 0 steps without a structure; force-field steps
+        pending = None                # a force-field step whose first-principles step may follow
         try:
-            for cell, pos, forces, stress, free, d, electronic in _scan_outcar_steps(
-                    fd, len(numbers), state):
+            for got in _scan_outcar_steps(fd, len(numbers), state):
+                if got is None:
+                    unprinted += 1
+                    step += 1
+                    continue
+                cell, pos, forces, stress, free, d, electronic, ml = got
                 if d is not None:
                     ctx.round_to("cartesian", 10.0 ** -d)
+                fr = Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
+                           energy=free, forces=forces, stress=stress)
+                if pending is not None:
+                    if not ml and _same_structure(pending, fr):   # then from first principles
+                        fr, pending = dataclasses.replace(fr, step=pending.step), None
+                        learned -= 1
+                    else:
+                        yield pending
+                        pending = None
                 if _ran_nelm(electronic, nelm, lepsilon):
-                    unconverged.append(step)
-                yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
-                            energy=free, forces=forces, stress=stress)
-                step += 1
+                    unconverged.append(fr.step)
+                if ml:
+                    pending, learned = fr, learned + 1
+                else:
+                    yield fr
+                step = fr.step + 1
+            if pending is not None:
+                yield pending
         except _ScanStopped:
-            if state.get("layout") == "energy-first":      # ASE cannot read this layout
+            if pending is not None:
+                yield pending
+            if state.get("layout") == "energy-first" or learned or unprinted:
+                what = ("of the energy-first OUTCAR layout (VASP 4.6/5.2.2)"
+                        if state.get("layout") == "energy-first" else "after force-field or "
+                        "unprinted steps (ASE cannot read this layout)")
                 ctx.warn(f"unreadable after step {step - 1} ({step} steps read): an ionic step "
-                         f"of the energy-first OUTCAR layout (VASP 4.6/5.2.2) is not as expected")
+                         f"{what} is not as expected")
             else:               # the steps ASE reads from here on are not checked for NELM
                 yield from _outcar_with_ase(path, ctx, skip=step)
         else:
@@ -769,6 +831,14 @@ def read_outcar(path, ctx: ReadContext):
         finally:
             if unconverged:
                 ctx.warn(_unconverged_note(unconverged, nelm))
+            if unprinted:
+                ctx.warn(f"NWRITE = 0: VASP printed the structure at the first and last ionic "
+                         f"step only, so {unprinted} of {step} steps are not seen (vasprun.xml "
+                         f"or XDATCAR hold every step)")
+            if learned:
+                ctx.warn(f"{learned} of {step} ionic steps were computed by VASP's machine-"
+                         f"learned force field (ML_LMLFF; their energies and forces are the "
+                         f"force field's), the others from first principles")
 
 
 def _outcar_with_ase(path, ctx, skip):
