@@ -1005,7 +1005,7 @@ def test_a_field_of_stars_mid_run_marks_the_run_damaged(tmp_path, fmt):
         path = tmp_path / "OUTCAR"
     path.write_text("".join(lines))
     run = read_run(path)
-    assert run.unfinished.startswith("damaged: unreadable after step")
+    assert run.unfinished.startswith("unreadable after step")
     assert "a field of '*'" in run.unfinished
     assert any("the steps after it are not seen" in w for w in run.warnings)
 
@@ -1063,7 +1063,7 @@ def test_xdatcar_with_a_field_of_stars_keeps_the_steps_before_it(tmp_path):
     lines[k] = f"  ************ {f[1]} {f[2]}\n"
     (tmp_path / "XDATCAR").write_text("".join(lines))
     run = read_run(tmp_path / "XDATCAR")
-    assert len(run) == 2 and run.unfinished.startswith("damaged: unreadable after step")
+    assert len(run) == 2 and run.unfinished.startswith("unreadable after step")
 
 
 # ---------------------------------------------------------------- what the API and a structure say

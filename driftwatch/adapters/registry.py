@@ -772,7 +772,8 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
             if "**" in why else ""
         ctx.warn(f"unreadable after step {last} ({n} steps read; {type(exc).__name__}: {why})"
                  f"{stars}: the steps after it are not seen")
-        ctx.unfinished = f"damaged: unreadable after step {last}{stars}"
+        ctx.unfinished = (f"unreadable after step {last}{stars}: a damaged file, or a layout "
+                          f"of it that the reader does not know")
 
 
 def _keys_that_vary(path, structure: dict | None) -> str:
