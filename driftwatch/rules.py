@@ -255,10 +255,12 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     if flip:
         frm.append(flip["frame"])
     direction = ("changed" if (g and lo) or flip else "gained" if g else "lost" if lo else "kept")
+    # a type visited and left (live: left for `persist` steps, as a change must hold)
     passed = [{"type": t, "from_step": int(frames[a]["step"]), "to_step": int(frames[b]["step"]),
                "frames": b - a + 1}
               for t, a, b in _stretches(states)[1:-1]
-              if t != _LOWEST[dim] and D[t][-1] > beyond and D[t][0] > within]  # left as lost
+              if t != _LOWEST[dim] and D[t][-1] > beyond and D[t][0] > within  # left as lost
+              and lasted(b + 1)]
     # a type approached without being reached (beyond the gained one: L ends oc, nearing hp), the
     # deformation measured against the lattice's size: a cell that only shrinks nears nothing
     # judged on the last frame, or live on the last `persist` frames (the approach must last)

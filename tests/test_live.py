@@ -744,6 +744,33 @@ def test_a_live_approach_to_a_type_counts_once_it_held():
     assert one is not None and four == (one[0] + 3, one[1])
 
 
+def test_a_live_visit_counts_as_passed_through_once_the_departure_held():
+    """The bundled L01 (a real pw.x vc-relax) visits oc at step 13, leaves it for steps 14-17 and
+    holds oc from step 18 to its end: finished, it gained oc and passed through nothing. Judged as
+    if live after each step, `passed-through` had been raised at step 14, one step after the
+    departure, against the persistence of 10 steps that a change must hold while a job runs (a
+    field trial: `follow --stop-on passed-through` would have stopped it there). A departure now
+    counts once it held for the persistence steps, as a change does."""
+    import copy
+    from driftwatch import config as _config, rules
+    rec = analyze(Path(__file__).parent.parent / "example_runs" / "L01_qe_vcrelax")
+    assert rec["summary"]["verdict"]["lattice"]["gained"] == "oc"
+    assert not [f for f in rec["flags"] if f["code"] == "passed-through"]
+
+    def passed_at(steps):
+        cfg = _config.load(overrides={"rules.persistence.steps": steps})
+        out = []
+        for k in range(1, len(rec["frames"]) + 1):
+            part = copy.deepcopy(rec)
+            part["frames"] = part["frames"][:k]
+            if any(f["code"] == "passed-through" for f in rules.judge(part, cfg, complete=False)[0]):
+                out.append(k - 1)
+        return out
+    assert passed_at(10) == []              # the 4 steps away never held for 10
+    assert passed_at(4) == [17]             # held for 4 at step 17, gone once oc is back at 18
+    assert passed_at(1) == [14, 15, 16, 17]
+
+
 def _follow_killed_l01(tmp_path, outdir=None):
     """(run folder, record, what follow said) of the bundled L01 (real pw.x) cut before its end,
     as a killed job leaves it, followed with --stop-on lattice-gained until --idle; ``outdir``:
