@@ -30,7 +30,7 @@ from . import records
 from .errors import OutputError
 
 __all__ = ["Cache", "FileDigests", "run_inputs", "run_key", "versions", "freeze_inputs",
-           "CACHE_SCHEMA"]
+           "inputs_digest", "CACHE_SCHEMA"]
 
 CACHE_SCHEMA = "driftwatch/cache-2"
 _HEX = frozenset("0123456789abcdef")
@@ -161,6 +161,16 @@ def freeze_inputs(inputs, digests: FileDigests) -> list | None:
     return out if out else None
 
 
+def inputs_digest(frozen) -> str | None:
+    """A short digest of a run's inputs as :func:`freeze_inputs` gives them (None: unknown): equal
+    digests, the same bytes read. A structure of a many-structure file counts by its own part
+    (not the whole file's digest, which another structure appended changes)."""
+    if not frozen:
+        return None
+    key = [["part", x[1][:4], x[2]] if x[0] == "part" else x for x in frozen]
+    return hashlib.sha1(json.dumps(key).encode()).hexdigest()[:16]
+
+
 def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
     from .adapters.run import folder_listing
     if not isinstance(inputs, list) or not inputs:
@@ -263,7 +273,8 @@ class Cache:
             return None
         if not _inputs_unchanged(data.get("inputs"), digests or FileDigests()):
             return None                     # (checked first: a stale record is not parsed)
-        return _checked(data.get("result"))
+        res = _checked(data.get("result"))
+        return None if res is None else dict(res, inputs_digest=inputs_digest(data["inputs"]))
 
     def put(self, key: str, result: dict, inputs: list) -> None:
         """Store a result with the inputs it was read from, atomically (a killed audit leaves the

@@ -55,7 +55,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from . import records
-from .cache import Cache, FileDigests, freeze_inputs, run_key
+from .cache import Cache, FileDigests, freeze_inputs, inputs_digest, run_key
 from .cache import versions as _versions
 from .tasks import Progress, mp_context, progress_on
 from .rules import FLAGS, campaign_advice
@@ -784,10 +784,11 @@ def _read_marker(out: Path) -> dict | None:
 
 
 def _write_marker(out: Path, roots: list[str], record_files: list[str],
-                  runs: dict | list | None) -> None:
+                  runs: dict | list | None, inputs: dict | None = None) -> None:
     """The output folder's own marker: what wrote it, the records this audit wrote and every run id
-    of the audit with a digest of its answer (``runs``: :func:`_answers`): the next audit retires
-    the records and database rows of runs gone since, and says what changed."""
+    of the audit with a digest of its answer (``runs``: :func:`_answers`) and of the inputs it was
+    read from (``inputs``: :func:`~driftwatch.cache.inputs_digest`): the next audit retires the
+    records and database rows of runs gone since, and says what changed."""
     from . import __version__
     data = {"tool": "driftwatch", "kind": "campaign audit", "version": __version__,
             "roots": roots, "records": sorted(record_files)}
@@ -795,6 +796,8 @@ def _write_marker(out: Path, roots: list[str], record_files: list[str],
         data["runs"] = sorted(runs)
     if isinstance(runs, dict):
         data["answers"] = dict(sorted(runs.items()))
+    if isinstance(inputs, dict) and inputs:
+        data["inputs"] = dict(sorted(inputs.items()))
     records.write_text_atomic(out / MARKER, json.dumps(data, indent=1) + "\n")
 
 
@@ -809,16 +812,22 @@ def _answers(results: list[dict]) -> dict:
             for x in results}
 
 
-def _since_last(old: dict, now: dict, read_now: set) -> dict | None:
+def _since_last(old: dict, now: dict, read_now: dict) -> dict | None:
     """What changed since the audit that wrote ``old`` (the folder's previous marker): runs new,
-    gone, and read again (their files changed, or the cache was not used, or their answer is not
-    the one that audit gave: read by an audit interrupted since); None when the previous audit
-    did not list its runs (none, or an older driftwatch). ``now``: :func:`_answers`."""
+    gone, and read again (their files changed since that audit, or their answer is not the one it
+    gave: read by an audit interrupted since); None when the previous audit did not list its runs
+    (none, or an older driftwatch). ``now``: :func:`_answers`; ``read_now``: {run id: digest of
+    its inputs or None} of the runs analysed now (not from the cache): one read from the same
+    bytes as then (the cache deleted, or not used) is not read again."""
     if "runs" not in old:
         return None
     before, after, answers = set(old["runs"]), set(now), old.get("answers") or {}
+    then = old.get("inputs") or {}
+
+    def changed(r):
+        return r in read_now and (read_now[r] is None or then.get(r) != read_now[r])
     return {"new": sorted(after - before), "gone": sorted(before - after),
-            "read_again": sorted(r for r in after & before if r in read_now
+            "read_again": sorted(r for r in after & before if changed(r)
                                  or answers.get(r, now[r]) != now[r])}
 
 
@@ -866,7 +875,8 @@ def _prepare_output(out: Path, roots: list[str], overwrite: bool,
         for sub in (out, out / "records", out / ".cache", out / "report", out / "report" / "runs"):
             records.remove_stale_temporaries(sub)  # left by a killed audit's atomic writes
         _write_marker(out, roots, (marker or {}).get("records", []),
-                      (marker or {}).get("answers") or (marker or {}).get("runs"))
+                      (marker or {}).get("answers") or (marker or {}).get("runs"),
+                      (marker or {}).get("inputs"))
     except OutputError:
         raise
     except OSError as exc:
@@ -1278,11 +1288,13 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         summary = _summary(out, roots, ok, failed, cfg, reject_on, res, len(todo), how, db_name,
                            db_problems, stale, skipped)
         every = _answers([*ok, *failed, *skipped])
+        read_from = {rid: r.get("inputs_digest") for rid, r in res.results.items()}
         summary["since_last"] = _since_last(old_marker, every, {
-            rid for rid, r in res.results.items() if not r.get("cached")})
+            rid: d for rid, d in read_from.items() if not res.results[rid].get("cached")})
         summary["elapsed_s"] = time.perf_counter() - t0
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
-        _write_marker(out, roots_abs, sorted(current), every)
+        _write_marker(out, roots_abs, sorted(current), every,
+                      {rid: d for rid, d in read_from.items() if d is not None and rid in every})
         if report:
             summary["report"] = str(_build_report(out, summary,
                                                   workers=workers or os.cpu_count() or 1,
@@ -1387,12 +1399,13 @@ class _Results:
         """A fresh result: cache it (deterministic failures too), then keep it."""
         rid = res["run"]
         inputs = res.pop("inputs", None)
+        frozen = None
         if rid in self.keys and (res["ok"] or res.get("cacheable")):
             frozen = freeze_inputs(inputs, self.digests)
             if frozen is not None:        # None: an input changed while it was read, or since
                 self.cache.put(self.keys[rid], {k: v for k, v in res.items()
                                                 if k not in ("run", "source")}, frozen)
-        self.keep(res)
+        self.keep(dict(res, inputs_digest=inputs_digest(frozen)))
 
 
 def _write_tables(out: Path, db_name: str, ok: list[dict], failed: list[dict],

@@ -615,6 +615,29 @@ def test_each_audit_says_what_changed_since_the_last_one(tmp_path):
            "(camp/layers/L-obl.traj)" in index
 
 
+def test_a_deleted_or_unused_cache_reads_nothing_again_that_did_not_change(tmp_path):
+    """`.cache/` is safe to delete: the audit after it (or one with use_cache=False) analyses every
+    run anew, but a run read from the same bytes as the last audit's is not "read again" (a field
+    trial: all 16 example runs had been said read again, as if their files had changed). A run
+    whose file did change still is, with or without the cache."""
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    first = run_audit([camp], out)
+    shutil.rmtree(out / ".cache")
+    again = run_audit([camp], out)
+    assert again["analysed"] == first["runs"] and again["cached"] == 0
+    assert again["since_last"] == {"new": [], "gone": [], "read_again": []}
+    import ase.io
+    changed = camp / "layers" / "L-obl.traj"
+    frames = ase.io.read(changed, ":")
+    frames[-1].positions[0] += 0.01                   # the last frame's first atom, 0.01 A
+    ase.io.write(changed, frames)
+    rid = str(changed.relative_to(tmp_path))
+    third = run_audit([camp], out, use_cache=False)
+    assert third["cached"] == 0 and third["since_last"]["read_again"] == [rid]
+    assert run_audit([camp], out, use_cache=False)["since_last"]["read_again"] == []
+
+
 def test_a_run_folder_keeps_its_id_while_a_rerun_has_emptied_its_output(tmp_path):
     """A resubmitted pw.x job empties its output (`pw.x < pw.in > pw.out` just started): the run
     is still the folder, failing as an empty file, not a new run named by the file (which left
