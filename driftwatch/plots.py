@@ -85,7 +85,7 @@ def displacement(record):
 
 
 def figures(record) -> dict:
-    """Every plot of the run's report page that applies, by name (map, chirality, deformation,
+    """Every plot of the run's report page that applies, by name (layer_map, chirality, deformation,
     distance, cell, energy, spectrum, displacement)."""
     from .report import charts
     rec = _record(record)

@@ -268,7 +268,7 @@ def test_figures_follow_the_same_styles(recs):
                 for p in c.panels for m in p.marks if m.kind == "key"}
         assert {"deformation", "distance", "cell", "energy"} <= set(figs)
         if recs[name]["geometry"]["dimension"] == 2:
-            assert {"map", "chirality"} <= set(figs)
+            assert {"layer_map", "chirality"} <= set(figs)
         for fname, fig in figs.items():
             assert isinstance(fig, Figure)
             for ax in fig.axes:
@@ -325,7 +325,7 @@ def test_step_axes_are_integer_and_one_frame_runs_get_one_tick(recs):
     rec = recs["L06"]
     one = {**rec, "frames": rec["frames"][:1]}
     for cname, c in charts.run_charts(one, (1e-3,)).items():
-        if c is None or cname == "map":
+        if c is None or cname == "layer_map":
             continue
         for p in c.panels:
             lo, hi = svg.limits(p.x, p.marks, "x")

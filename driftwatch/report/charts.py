@@ -683,7 +683,7 @@ def layer_map(rec) -> Chart | None:
     if not zoom:
         main.marks += _map_path(h, v, s, xy, steps, big=True)
         main.colorbar = cbar
-        return Chart("map", [main], width=700, height=400)
+        return Chart("layer_map", [main], width=700, height=400)
     k0 = int(flips[0]) if flips.size else 0
     hz, vz = h[k0:], v[k0:]
     if flips.size:
@@ -704,14 +704,14 @@ def layer_map(rec) -> Chart | None:
     zpanel = Panel(Axis("sign × x", lim=(cx - hx, cx + hx), grid=False),
                    Axis("y", lim=(cy - hy, cy + hy), grid=False), zm, title=note,
                    equal=not flips.size, legend="below", weight=1.0, colorbar=cbar)
-    return Chart("map", [main, zpanel], width=1000, height=430)
+    return Chart("layer_map", [main, zpanel], width=1000, height=430)
 
 
 # ------------------------------------------------------------------------------------ all of a run
 
 def run_charts(rec, common=()) -> dict:
     """Every chart of a run page, by name (None where a chart does not apply)."""
-    return {"map": layer_map(rec), "deformation": deformation(rec), "distance": distance(rec),
+    return {"layer_map": layer_map(rec), "deformation": deformation(rec), "distance": distance(rec),
             "chirality": chirality(rec), "cell": cell(rec), "energy": energy(rec),
             "spectrum": spectrum(rec, common), "displacement": displacement(rec)}
 

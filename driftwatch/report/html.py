@@ -671,7 +671,7 @@ def _warnings_section(rec):
 
 
 _CAPTIONS = {
-    "map": "Path of the layer's 2D lattice on the projected-invariant map, one point per ionic step "
+    "layer_map": "Path of the layer's 2D lattice on the projected-invariant map, one point per ionic step "
            "(colour: step), start circled, end starred. Horizontal axis: sign × x, vertical: y, with "
            "(x, y) = ((r02 − r01)/s, 3 r12/s), s = r12 + r01 + r02. The right half holds lattices of "
            "sign +1, the left half their mirror images (sign −1), both seen from the viewing side. "
@@ -737,7 +737,7 @@ def _plots_section(rec):
                 "against ionic step", "against the structure (initial, final)")
         return _figure(draw(cs.get(name)), text)
 
-    lattice = ["map", "chirality", "deformation", "distance", "cell"] if dim == 2 else \
+    lattice = ["layer_map", "chirality", "deformation", "distance", "cell"] if dim == 2 else \
         ["deformation", "distance", "cell"]
     lattice = [fig(n) for n in lattice]
     if any(f.get("symmetry") for f in frames):
@@ -866,7 +866,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
                          f"drift columns of the table), at its first against its last step "
                          f"({len(pts)} runs with a verdict; circles layers, squares bulk). Every "
                          f"point links to its run's page and names it on hover"
-                         + (" and beside it" if len(pts) <= 30 else "") + ". Points on the dashed "
+                         + (" and beside it where names do not overlap" if len(pts) <= 30
+                            else "") + ". Points on the dashed "
                          f"diagonal did not move; values at or below {charts.FLOOR:g} Å are drawn on "
                          f"the axes (runs that reached the type fall onto the bottom axis, runs that "
                          f"started at it onto the left one). Near rectangular lattices the root-space distance is the larger of "
