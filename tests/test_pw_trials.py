@@ -327,3 +327,31 @@ def test_the_deformation_to_hR_near_fcc_follows_spglibs_symprec():
                 == 166                                                  # spglib's own, at 1e-3
             ratio = float(lattice3d.deformation(cell)["hR"]) / _critical_symprec(cell, holds_hR)
             assert 1.5 < ratio < 2.2, (name, k, ratio)
+
+
+def test_species_labels_of_equal_settings_are_one_type_for_spglib():
+    """Two real pw.x relaxations of one ferromagnetic Fe2 cell (qe_trials/fe2_fm_twolabels and
+    fe2_fm_onelabel): the same input but for naming the two atoms Fe1 and Fe2 with the same
+    pseudopotential, mass and starting magnetisation (0.6), or both Fe. pw.x computes the same
+    structure (the same '!' energies at every step, the same final positions); spglib given the
+    two labels as two types calls the end Pm-3m, by element Im-3m (spglib called directly). The
+    labelled run had been Pm-3m: labels alike in every setting the header prints are now one type,
+    and said; labels of another magnetisation stay apart (qe_trials/fe2_afm_relax)."""
+    import spglib
+    from driftwatch import analyze
+    two, one = TRIALS / "fe2_fm_twolabels", TRIALS / "fe2_fm_onelabel"
+    energies = [[ln for ln in gzip.open(d / "pw.out.gz", "rt") if ln.startswith("!")]
+                for d in (two, one)]
+    assert energies[0] == energies[1] and len(energies[0]) == 6                   # pw.x's own
+    run, ref = read_run(two), read_run(one)
+    np.testing.assert_allclose(run.positions[-1], ref.positions[-1], atol=1e-5)
+    frac = np.linalg.solve(run.cells[-1].T, run.positions[-1].T).T
+    assert spglib.get_symmetry_dataset((run.cells[-1], frac, [1, 2]), 1e-3).number == 221
+    assert spglib.get_symmetry_dataset((run.cells[-1], frac, [26, 26]), 1e-3).number == 229
+    assert run.species is None and any("pw.x species Fe2 has the pseudopotential, mass and "
+                                       "starting magnetisation of Fe1" in w for w in run.warnings)
+    got = [analyze(d)["summary"]["verdict"]["structure"]["final"]["group"] for d in (two, one)]
+    assert got == [229, 229]
+    afm = read_run(TRIALS / "fe2_afm_relax")
+    assert afm.species == ("Fe1", "Fe2")
+    assert any("pw.x tells Fe apart as species Fe1, Fe2" in w for w in afm.warnings)

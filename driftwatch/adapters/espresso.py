@@ -165,16 +165,72 @@ def _header_info(lines):
 _SITE = re.compile(r"^\s*\d+\s+(\S+)\s+tau\(")
 
 
-def _species(header, numbers) -> tuple | None:
+def _species(header, numbers, ctx=None) -> tuple | None:
     """The header's species label of each atom ("3  Fe1  tau( 3) = ...") when the run tells atoms
-    of one element apart (two labels of one element: Fe1 and Fe2), else None."""
+    of one element apart (two labels of one element: Fe1 and Fe2), else None. Labels whose
+    settings the header prints alike (pseudopotential file and checksum, valence, mass, starting
+    magnetisation) are one species here: pw.x keeps them apart in its symmetry search, but the
+    structure it computes does not (with DFT+U or a noncollinear run they stay apart: those
+    settings are not all compared). Said in a warning (``ctx``) either way."""
     labels = [m.group(1) for ln in header if (m := _SITE.match(ln))]
     if len(labels) != len(numbers):
         return None
     per_element: dict = {}
     for z, label in zip(numbers, labels):
-        per_element.setdefault(int(z), set()).add(label)
-    return tuple(labels) if any(len(v) > 1 for v in per_element.values()) else None
+        per_element.setdefault(int(z), {})[label] = None         # labels in order of first site
+    split = {z: list(ls) for z, ls in per_element.items() if len(ls) > 1}
+    if not split:
+        return None
+    sig = _species_settings(header, labels)
+    alike = {}
+    if sig is not None:
+        for ls in split.values():
+            for label in ls:
+                alike[label] = next(k for k in ls if sig[k] == sig[label])
+    same = sorted(k for k, v in alike.items() if v != k)
+    out = tuple(alike.get(label, label) for label in labels)
+    from ase.data import chemical_symbols
+    kept = {z: sorted({alike.get(k, k) for k in ls}) for z, ls in split.items()}
+    apart = {z: ls for z, ls in kept.items() if len(ls) > 1}
+    if ctx is not None and same:
+        ctx.warn(f"pw.x species {', '.join(same)} {'has' if len(same) == 1 else 'have'} the "
+                 f"pseudopotential, mass and starting magnetisation of "
+                 f"{', '.join(sorted({alike[k] for k in same}))}: spglib is given them as one "
+                 f"type (the structure pw.x computed does not tell them apart, though pw.x's own "
+                 f"symmetry search does)")
+    if not apart:
+        return None
+    if ctx is not None:
+        ctx.warn("pw.x tells " + ", ".join(f"{chemical_symbols[z]} apart as species "
+                                           f"{', '.join(ls)}" for z, ls in apart.items())
+                 + ": spglib is given one type per species, as pw.x computes them (by element "
+                   "alone a group can be higher)")
+    return out
+
+
+def _species_settings(header, labels) -> dict | None:
+    """{label: the header's lines about it, the label blanked} with its pseudopotential file and
+    checksum; None when the run has settings per species that are not all printed per label
+    (DFT+U, noncollinear magnetism): then no two labels are taken as alike."""
+    text = "\n".join(header)
+    if re.search(r"(?i)hubbard|lda\+u|dft\+u|noncollinear|spin-orbit", text):
+        return None
+    order = [m.group(1) for ln in header
+             if (m := re.match(r"^\s+(\S+)\s+[\d.]+\s+[\d.]+\s+\S+\s*\(\s*[\d.]+\)", ln))]
+    pseudo = {}
+    for i, ln in enumerate(header):
+        m = re.match(r"^\s*PseudoPot\. #\s*(\d+) for", ln)
+        if m:
+            k = int(m.group(1)) - 1
+            pseudo[k] = tuple(x.strip() for x in header[i + 1:i + 3])
+    out = {}
+    for label in set(labels):
+        word = re.compile(rf"(?<![\w.]){re.escape(label)}(?![\w.])")
+        lines = tuple(word.sub("*", ln).strip() for ln in header
+                      if word.search(ln) and not _SITE.match(ln))
+        k = order.index(label) if label in order else None
+        out[label] = (lines, pseudo.get(k) if k is not None else None)
+    return out
 
 
 def _note_nsym(reported: list, ctx) -> None:
@@ -458,7 +514,7 @@ def read_pw_out(path, ctx: ReadContext):
                     raise InputError(path, f"not a complete pw.x header: {exc}") from None
                 natoms = len(numbers)
                 if ctx.species is None:
-                    ctx.species = _species(header, numbers)
+                    ctx.species = _species(header, numbers, ctx)
                 _check_input(taken, header, ctx)
                 taken = None                      # the first header decides
                 if nsym is not None and nsym > 1 and ctx.settings.get("nosym") and \
@@ -1184,8 +1240,8 @@ def cell_free(code_settings: dict) -> str | None:
 
 # what each cell_dofree of pw.x's input documentation (INPUT_PW, from memory) leaves held
 _DOFREE_HELD = {
-    "ibrav": "moved only the lattice parameters of its ibrav: the cell could not leave its "
-             "Bravais type",
+    "ibrav": "moved only the lattice parameters of its ibrav: the cell could not fall below "
+             "that Bravais type (reaching a higher one is possible)",
     "volume": "only rescaled the cell: its shape, and so its Bravais type, were held",
     **{f"epitaxial_{v}": f"held the cell vectors {v[0]} and {v[1]}" for v in ("ab", "ac", "bc")},
     **{k: f"moved only the cell's {' and '.join(f'{c}{c}' for c in k)} component"
