@@ -356,3 +356,20 @@ def test_species_labels_of_equal_settings_are_one_type_for_spglib():
     afm = read_run(TRIALS / "fe2_afm_relax")
     assert afm.species == ("Fe1", "Fe2")
     assert any("pw.x tells Fe apart as species Fe1, Fe2" in w for w in afm.warnings)
+
+
+def test_cell_dofree_ibrav_of_a_triclinic_ibrav_holds_nothing():
+    """A real one-atom Al vc-relax in an ibrav = 14 (triclinic) cell with cell_dofree = 'ibrav'
+    (qe_trials/al1_ibrav14_dofree_ibrav): all six parameters are free, and the lattice goes aP ->
+    mS (spglib on the first and last cells, one atom: P-1, then C2/m at 1e-3 A). The note that the
+    code held the cell's Bravais type had stood beside a verdict saying it left it: ibrav = 14
+    holds nothing."""
+    import spglib
+    from driftwatch import analyze
+    d = TRIALS / "al1_ibrav14_dofree_ibrav"
+    frames = ase.io.read(d / "pw.out.gz", ":", format="espresso-out")                  # ASE
+    assert [spglib.get_symmetry_dataset((a.cell[:], [[0, 0, 0]], [13]), 1e-3).international
+            for a in (frames[0], frames[-1])] == ["P-1", "C2/m"]                      # spglib's
+    rec = analyze(d)
+    assert rec["summary"]["cell_held"] is None
+    assert rec["summary"]["verdict"]["lattice"]["gained"] == "mS"

@@ -1256,8 +1256,8 @@ def cell_held(code_settings: dict) -> str | None:
     dofree = str(s.get("cell_dofree") or "").lower()
     if cell_free(s) is None or dofree not in _DOFREE_HELD:
         return None
-    if dofree == "ibrav" and s.get("ibrav") == 0:   # pw.x: "does not have any effect" there
-        return None
+    if dofree == "ibrav" and s.get("ibrav") in (0, 14):   # pw.x: "does not have any effect"
+        return None                                          # at 0; 14 (triclinic) holds nothing
     return (f"pw.x's cell_dofree = '{dofree}' {_DOFREE_HELD[dofree]}; the lattice verdict does not "
             f"test what the code held")
 
