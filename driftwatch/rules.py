@@ -562,6 +562,9 @@ def _when(frames, sv) -> str:
                    " (not every later step checked)")
 
 
+_OTHER_AXES = "its operations along other directions of the cell"
+
+
 def _structure_flags(frames, sv):
     if sv["direction"] not in ("gained", "lost", "changed"):
         return []
@@ -583,6 +586,8 @@ def _structure_flags(frames, sv):
         rel = (f"the same space-group type with {'more' if more else 'fewer'} operations: pure "
                f"translations {'gained' if more else 'lost'} (a {'smaller' if more else 'larger'} "
                f"primitive cell)")
+    elif a["group"] == b["group"]:
+        rel = f"the same space-group type, {_OTHER_AXES}"
     msg = (f"spglib's group at symprec {_g(s)} Å {what} from "
            f"{group_name(a['symbol'], a['group'], a['operations'])} to "
            f"{group_name(b['symbol'], b['group'], b['operations'])} {when}; {rel}")
@@ -786,6 +791,8 @@ def _looser(sv) -> str | None:
             if g0 == g1 and v["direction"] in ("gained", "lost"):    # the same type
                 grp += (f", with {'more' if v['direction'] == 'gained' else 'fewer'} operations "
                         f"(pure translations)")
+            elif g0 == g1 and v["direction"] == "changed":
+                grp += f", {_OTHER_AXES}"
             return f"at symprec {key} Å: group {v['direction']} {grp}"
     return None
 
@@ -794,7 +801,9 @@ def _state(frame, types, within, dim):
     dfm, dst = frame["deformation"], frame["distance"]
     t = _most_specific(types, dfm, within) or _LOWEST[dim]
     away = [x for x in types if dfm[x] > within]
-    near = min(away, key=lambda x: dfm[x]) if away else None
+    d = min((dfm[x] for x in away), default=None)    # ties (cP and hR of a cell near cP): the
+    near = None if d is None else max((x for x in away if dfm[x] <= d * (1 + 1e-6)),
+                                      key=lambda x: ORDER[x])               # most specific
     return {"type": t, "nearest": near,
             "distance": None if near is None else float(dst[near]),
             "deformation": None if near is None else float(dfm[near])}

@@ -373,3 +373,40 @@ def test_cell_dofree_ibrav_of_a_triclinic_ibrav_holds_nothing():
     rec = analyze(d)
     assert rec["summary"]["cell_held"] is None
     assert rec["summary"]["verdict"]["lattice"]["gained"] == "mS"
+
+
+def test_a_tetragonal_cell_near_cubic_is_nearest_to_cp_not_hr():
+    """A real one-atom Al vc-relax in an ibrav = 6 cell (a = 2.86 A) with cell_dofree = 'z'
+    (qe_trials/al1_ibrav6_z): c runs from 3.00 A through c = a. A tetragonal cell's nearest
+    rhombohedral lattice is the cubic one (a rhombohedral lattice with alpha = 90 degrees is cubic:
+    International Tables, common practice), so its deformations to hR and cP are one number; the
+    run's nearest type had been named hR. Ties now name the more specific type."""
+    import spglib
+    from driftwatch import analyze
+    d = TRIALS / "al1_ibrav6_z"
+    first = ase.io.read(d / "pw.out.gz", 0, format="espresso-out")                      # ASE
+    assert spglib.get_symmetry_dataset((first.cell[:], [[0, 0, 0]], [13]),
+                                       1e-3).international == "P4/mmm"               # spglib's
+    rec = analyze(d)
+    f0 = rec["frames"][0]["deformation"]
+    assert abs(f0["hR"] - f0["cP"]) < 1e-9 * f0["cP"]
+    assert rec["summary"]["initial"]["type"] == "tP" and rec["summary"]["initial"]["nearest"] == "cP"
+
+
+def test_a_group_changed_to_its_own_type_along_other_axes_says_so():
+    """A real one-atom Al vc-relax in a triclinic ibrav = 0 cell with cell_dofree = 'xyz'
+    (qe_trials/al1_ibrav0_xyz): at symprec 0.01 A spglib calls the first and the last frames C2/m
+    with 4 rotations each, about different cell directions (spglib called directly). The verdict
+    had read 'group changed C2/m (12) -> C2/m (12)', as if a contradiction; it now says why."""
+    import spglib
+    from driftwatch import analyze
+    d = TRIALS / "al1_ibrav0_xyz"
+    frames = ase.io.read(d / "pw.out.gz", ":", format="espresso-out")                  # ASE
+    ds = [spglib.get_symmetry_dataset((a.cell[:], [[0, 0, 0]], [13]), 1e-2)
+          for a in (frames[0], frames[-1])]
+    assert [x.international for x in ds] == ["C2/m", "C2/m"]
+    rot = [{tuple(r.ravel()) for r in x.rotations} for x in ds]
+    assert rot[0] != rot[1] and len(rot[0]) == len(rot[1]) == 4
+    text = analyze(d)["summary"]["verdict"]["text"]
+    assert ("at symprec 0.01 Å: group changed C2/m (12) -> C2/m (12), its operations along other "
+            "directions of the cell") in text
