@@ -1244,7 +1244,8 @@ _DOFREE_HELD = {
              "that Bravais type (reaching a higher one is possible)",
     "volume": "only rescaled the cell: its shape, and so its Bravais type, were held",
     **{f"epitaxial_{v}": f"held the cell vectors {v[0]} and {v[1]}" for v in ("ab", "ac", "bc")},
-    **{k: f"moved only the cell's {' and '.join(f'{c}{c}' for c in k)} component"
+    **{k: f"moved only the cell's {', '.join(f'{c}{c}' for c in k[:-1])}"
+          f"{' and ' if len(k) > 1 else ''}{k[-1] * 2} component"
           f"{'s' if len(k) > 1 else ''} (the others held)"
        for k in ("x", "y", "z", "xy", "xz", "yz", "xyz")},
 }
