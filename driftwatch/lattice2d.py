@@ -96,6 +96,7 @@ _BLOCK = 8192  # frames per block in the reduction (cache-sized)
 _COLLINEAR = 1e-12  # |det| <= this * |a| |b|: collinear
 _SELLING_TOL = 1e-13  # v_i.v_j > this * max|v|^2 triggers a Selling step
 _NOISE = 8 * np.finfo(float).eps  # conorm rounding bound, see _superbase
+_EPS = np.finfo(float).eps
 LENGTH_RANGE = (1e-50, 1e50)
 """Å. Basis vectors outside this range are refused (their conorms and the squared distances
 built from them would underflow or overflow in double precision); every real cell is far inside."""
@@ -269,6 +270,9 @@ def _superbase(bases, labelled=True):
     q = -np.stack([vx[:, 1] * vx[:, 2] + vy[:, 1] * vy[:, 2],
                    vx[:, 0] * vx[:, 2] + vy[:, 0] * vy[:, 2],
                    vx[:, 0] * vx[:, 1] + vy[:, 0] * vy[:, 1]], axis=1)
+    # a conorm within its dot product's rounding (16 eps max|v|^2) is 0: a lattice of a type,
+    # in any orientation or basis, is at distance 0 from it, not ~1e-8 |v|
+    q = np.where(q > 16 * _EPS * (vx * vx + vy * vy).max(axis=1, keepdims=True), q, 0.0)
     if not labelled:
         return None, np.maximum(np.sort(q, axis=1), 0.0) * (scale * scale)[:, None], single, None
     # Rounding the input already carries (Å^2): v_i = sum_j C_ij row_j with integer C,
@@ -310,7 +314,7 @@ def obtuse_superbase(bases):
 def conorms(bases):
     """Conorms [p12, p01, p02] of the obtuse superbase, (n, 3) Å^2, ascending, >= 0.
 
-    Rounding residues below the reduction tolerance (~1e-13 |v|^2) are set to 0.
+    Rounding residues (below 16 eps |v|^2, the rounding of their dot products) are 0.
     """
     _, p, single, _ = _superbase(bases, labelled=False)
     return _out(p, single)

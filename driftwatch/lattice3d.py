@@ -618,11 +618,15 @@ def _reduce_block(arr, first=0):
 
 
 def _superbase(bases):
+    """(superbase (n, 4, 3), conorms (n, 6), single). A conorm within the rounding of its dot
+    product (16 eps max|v_i|^2) is 0: a lattice of a type, in any orientation or basis, has its
+    zero conorms exactly 0, so its root-space distance to the type is 0, not ~1e-8 |v|."""
     arr, single = _frames(bases)
     _validate(arr, single)
     v = _reduce(arr)
     p = -_dots(v)
-    return v, np.maximum(p, 0.0), single
+    floor = 16 * _EPS * np.einsum("nij,nij->ni", v, v).max(axis=1, keepdims=True)
+    return v, np.where(p > floor, p, 0.0), single
 
 
 def _out(x, single):

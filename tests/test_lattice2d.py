@@ -626,3 +626,20 @@ def test_blocked_reduction_equals_one_pass(monkeypatch):
     blocked = L.obtuse_superbase(b), L.root_invariant(b), L.sign(b), L.distances(b)["hp"]
     for x, y in zip(one, blocked):
         assert x.shape == y.shape and np.array_equal(x, y)
+
+
+def test_a_lattice_of_each_2d_type_in_any_orientation_and_basis_is_at_distance_zero():
+    """The four 2D Bravais types with a mirror (International Tables: rectangular, centred
+    rectangular, square, hexagonal), rotated and written in other bases (unimodular changes,
+    common practice): the root-space distance to the lattice's own type is 0 to 1e-12 of its
+    scale, as the deformation is; a rectangular lattice's zero conorm computed as ~1e-16 |v|^2 had
+    made it ~1e-8 |v| (an independent check of the maths)."""
+    cases = {"op": np.diag([3.0, 4.0]), "oc": np.array([[3.0, 0.0], [1.5, 2.2]]),
+             "tp": np.diag([3.0, 3.0]), "hp": np.array([[2.5, 0.0], [1.25, 2.5 * np.sqrt(3) / 2]])}
+    for t, cell in cases.items():
+        for th, u in ((0.0, [[1, 0], [0, 1]]), (0.7, [[1, 1], [2, 3]]), (2.1, [[3, -1], [-2, 1]])):
+            rot = np.array([[np.cos(th), -np.sin(th)], [np.sin(th), np.cos(th)]])
+            c = np.array(u) @ cell @ rot.T
+            scale = np.abs(c).max()
+            assert L.distances(c)[t] <= 1e-12 * scale, (t, th)
+            assert L.deformation(c)[t] <= 1e-12 * scale, (t, th)

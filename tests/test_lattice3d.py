@@ -769,3 +769,36 @@ def test_the_dot_product_of_two_coset_minima_from_the_conorms(seed):
         assert abs(dot - want) <= 1e-12 * scale, (i, a, b, third, dot, want)
         through += third == 6
     assert through == 3
+
+
+def test_a_lattice_of_each_type_in_any_orientation_and_basis_is_at_distance_zero():
+    """ASE's Bravais lattice classes (ase.lattice; International Tables' 14 types) rotated and
+    written in another basis (a unimodular change, common practice): the root-space distance to
+    the lattice's own type is 0 to the rounding of the input (1e-12 of its scale), as the
+    deformation is; a zero conorm computed as ~1e-16 |v|^2 had made it ~1e-8 |v| (an independent
+    check of the maths). To a type the lattice is not, it stays well above."""
+    from ase.lattice import (BCC, BCT, CUB, FCC, HEX, MCL, MCLC, ORC, ORCC, ORCF, ORCI, RHL,
+                             TET)
+    from scipy.spatial.transform import Rotation
+    cases = {"cP": CUB(4.0), "cF": FCC(3.6), "cI": BCC(2.87), "tP": TET(3.0, 5.0),
+             "tI": BCT(3.0, 5.0), "oP": ORC(3.0, 4.0, 5.0), "oF": ORCF(3.0, 4.0, 5.0),
+             "oI": ORCI(3.0, 4.0, 5.0), "oS": ORCC(3.0, 4.0, 5.0), "hP": HEX(2.5, 4.1),
+             "hR": RHL(3.0, 70.0), "mP": MCL(3.0, 4.0, 5.0, 70.0),
+             "mS": MCLC(3.0, 4.0, 5.0, 70.0)}
+    us = [np.eye(3, dtype=int), np.array([[1, 1, 0], [0, 1, 0], [2, 1, 1]]),
+          np.array([[0, 1, 0], [1, 0, 0], [3, -2, 1]])]
+    for k, (t, lat) in enumerate(cases.items()):
+        for j, u in enumerate(us):
+            cell = u @ lat.tocell()[:] @ Rotation.random(random_state=10 * k + j).as_matrix().T
+            scale = np.abs(cell).max()
+            dist, dfm = L.distances(cell), L.deformation(cell)
+            assert dist[t] <= 1e-12 * scale and dfm[t] <= 1e-12 * scale, (t, j, dist[t])
+            above = [x for x in L.TYPES if x != t and x not in _GENERAL[t]]
+            assert all(dist[x] > 1e-3 for x in above), (t, j)
+
+
+_GENERAL = {   # the types each type specialises (a lattice of t is also one of these), Bravais graph
+    "cP": {"tP", "hR", "oP", "oS", "mP", "mS"}, "cF": {"tI", "hR", "oF", "oI", "mS"},
+    "cI": {"tI", "hR", "oF", "oI", "mS"}, "tP": {"oP", "oS", "mP", "mS"},
+    "tI": {"oF", "oI", "mS"}, "oP": {"mP"}, "oF": {"mS"}, "oI": {"mS"}, "oS": {"mP", "mS"},
+    "hP": {"oS", "mP", "mS"}, "hR": {"mS"}, "mP": set(), "mS": set()}
