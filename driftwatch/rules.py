@@ -855,7 +855,8 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
         "drift": drift,
         "tolerance": tol,
         "lattice_note": _lattice_note(record["run"]),
-        "cell_held": None if record["run"].get("fixed_cell") else _cell_held(record["run"]),
+        "cell_held": None if record["run"].get("fixed_cell") else _cell_held(
+            record["run"], record["geometry"]["dimension"]),
         "supercell": _supercell(frames, final["type"]),
         "spglib_lattice": _spglib_lattice(frames, final["type"], within,
                                           r["structure"]["symprec"]),
@@ -917,10 +918,10 @@ def _lattice_note(run: dict) -> str | None:
     return f"fixed cell: the lattice cannot drift; {atoms}"
 
 
-def _cell_held(run: dict) -> str | None:
+def _cell_held(run: dict, dimension: int) -> str | None:
     """What the code held of a cell it let move (pw.x's cell_dofree), in words, or None."""
     from .adapters.registry import cell_held          # each code's own rule, in its adapter
-    return cell_held(run.get("code_settings") or {})
+    return cell_held(run.get("code_settings") or {}, dimension)
 
 
 def _spglib_lattice(frames, cell_type: str, within: float, symprec: float) -> dict | None:

@@ -410,3 +410,23 @@ def test_a_group_changed_to_its_own_type_along_other_axes_says_so():
     text = analyze(d)["summary"]["verdict"]["text"]
     assert ("at symprec 0.01 Å: group changed C2/m (12) -> C2/m (12), its operations along other "
             "directions of the cell") in text
+
+
+def test_cell_dofree_2dxy_on_a_bulk_cell_says_the_third_vector_was_held():
+    """A real one-atom Al vc-relax of a bulk (sheared fcc primitive) cell with cell_dofree = '2Dxy'
+    (qe_trials/al1_bulk_dofree_2dxy): pw.x's printed cells change only in the x and y components of
+    a and b (ASE's reading of its output), the third vector held. The run is bulk, so its lattice
+    verdict is about a cell the code held in part, and the summary now says so; the bundled layer
+    relaxations with '2Dxy' (example_runs L01) get no such note: their 2D lattice was free."""
+    from driftwatch import analyze
+    d = TRIALS / "al1_bulk_dofree_2dxy"
+    frames = ase.io.read(d / "pw.out.gz", ":", format="espresso-out")                  # ASE
+    moved = np.abs(frames[-1].cell[:] - frames[0].cell[:]) > 1e-5      # the header: 1e-6 Å
+    assert moved[:2, :2].any() and not moved[2].any() and not moved[:, 2].any()
+    rec = analyze(d)
+    assert rec["geometry"]["dimension"] == 3
+    assert rec["summary"]["cell_held"] == (
+        "pw.x's cell_dofree = '2Dxy' moved only the in-plane cell vectors a and b (the third held, "
+        "as for a layer); the lattice verdict does not test what the code held")
+    layer = analyze(Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax")
+    assert layer["geometry"]["dimension"] == 2 and layer["summary"]["cell_held"] is None

@@ -1251,16 +1251,25 @@ _DOFREE_HELD = {
 }
 
 
-def cell_held(code_settings: dict) -> str | None:
-    """What pw.x's ``cell_dofree`` held of a cell it let change, in words, or None."""
+_DOFREE_HELD_IN_BULK = {      # a layer's settings: for a layer they hold only the vacuum vector
+    "2dxy": "moved only the in-plane cell vectors a and b (the third held, as for a layer)",
+    "2dshape": "moved only the shape of the cell vectors a and b at a fixed area (the third held, "
+               "as for a layer)",
+}
+
+
+def cell_held(code_settings: dict, dimension: int = 3) -> str | None:
+    """What pw.x's ``cell_dofree`` held of a cell it let change, in words, or None (``dimension``:
+    the run's, 2 for a layer, whose 2D lattice '2Dxy' and '2Dshape' leave free)."""
     s = code_settings or {}
     dofree = str(s.get("cell_dofree") or "").lower()
-    if cell_free(s) is None or dofree not in _DOFREE_HELD:
+    held = dict(_DOFREE_HELD, **(_DOFREE_HELD_IN_BULK if dimension == 3 else {}))
+    if cell_free(s) is None or dofree not in held:
         return None
     if dofree == "ibrav" and s.get("ibrav") in (0, 14):   # pw.x: "does not have any effect"
         return None                                          # at 0; 14 (triclinic) holds nothing
-    return (f"pw.x's cell_dofree = '{dofree}' {_DOFREE_HELD[dofree]}; the lattice verdict does not "
-            f"test what the code held")
+    return (f"pw.x's cell_dofree = '{s.get('cell_dofree')}' {held[dofree]}; the lattice verdict "
+            f"does not test what the code held")
 
 
 # ---------------------------------------------------------------- registration

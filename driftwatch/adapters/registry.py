@@ -116,8 +116,9 @@ class Code:
       relaxation (molecular dynamics, finite differences, ...), None for a relaxation or unknown.
     * ``cell_free(code_settings) -> str | None``: the setting that let the cell change, in words
       (``"ISIF = 3"``), None when the cell was held or nothing is known.
-    * ``cell_held(code_settings) -> str | None``: what of a cell it let change the code still held
-      (pw.x's ``cell_dofree``), in words, None when nothing or nothing known.
+    * ``cell_held(code_settings, dimension) -> str | None``: what of a cell it let change the code
+      still held (pw.x's ``cell_dofree``; ``dimension`` 2 for a layer), in words, None when nothing
+      or nothing known.
     * ``inputs_only(folder, names, ctx) -> (str, [names][, ran]) | None``: for a folder ``folder``
       did not claim, whether it holds the code's job inputs and no output (a job not run yet, or
       stopped before writing): what it holds, in words, and those files; ``ran`` True when the
@@ -230,11 +231,12 @@ def cell_free(code_settings: dict) -> str | None:
     return fn(code_settings) if fn is not None else None
 
 
-def cell_held(code_settings: dict) -> str | None:
-    """What of a moving cell the code held, in words (see :class:`Code`), or None."""
+def cell_held(code_settings: dict, dimension: int = 3) -> str | None:
+    """What of a moving cell the code held, in words (see :class:`Code`), or None; ``dimension``:
+    the run's (2: a layer)."""
     code = _code_named((code_settings or {}).get("code"))
     fn = code.function("cell_held") if code is not None else None
-    return fn(code_settings) if fn is not None else None
+    return fn(code_settings, dimension) if fn is not None else None
 
 
 def formats() -> dict[str, str]:
