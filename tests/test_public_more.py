@@ -363,7 +363,7 @@ def test_an_xdatcar_line_of_two_numbers_run_together_is_named():
     assert gzip.decompress(path.read_bytes()).decode().splitlines()[16].startswith(
         "-0.63265286-0.11227753")
     run = read_run(path)
-    assert len(run) == 1 and run.unfinished.startswith("damaged:")
+    assert len(run) == 1 and run.unfinished.startswith("unreadable after step 0")
     assert any("line 17 holds '-0.63265286-0.11227753 -0.15402785', not three numbers (two "
                "numbers run together?)" in w for w in run.warnings)
 
