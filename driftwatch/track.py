@@ -529,6 +529,8 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
                                 versions=_versions())
     record["flags"], record["summary"] = rules.judge(record, cfg, complete=complete,
                                                      series=table.deformation)
+    if run.species is not None and not skip_newest:
+        _by_element(run, geo, cfg, record["summary"]["verdict"], verdict_at[0])
     asked = [i for i, f in enumerate(record["frames"]) if f.get("structure")]
     if skip_newest and asked and asked[-1] < n - 1:      # a live record between spglib's steps
         v, st = record["summary"]["verdict"], int(record["frames"][asked[-1]]["step"])
@@ -540,6 +542,25 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
                         "spglib_frames_computed": computed, "spglib_calls": calls,
                         "group_frames": probed}
     return record
+
+
+def _by_element(run: Run, geo, cfg: dict, verdict: dict, s: float) -> None:
+    """A run whose code tells atoms of one element apart (species labels, ``run.species``): spglib's
+    group of the final structure by element alone, at the verdict's symprec, in
+    ``verdict["structure"]["by_element"]``, and said in the verdict's text when it differs."""
+    try:
+        g = symmetry.group_at(run.cells[-1], run.positions[-1], run.numbers, s,
+                              angle_tolerance=cfg["symmetry"]["angle_tolerance"],
+                              vacuum_axis=geo.vacuum_axis)
+    except (SymmetryError, GeometryError):
+        return
+    got = {"group": g["group"], "symbol": g["symbol"], "operations": g["operations"]}
+    verdict["structure"]["by_element"] = got
+    if (got["group"], got["operations"]) != (verdict["structure"]["final"]["group"],
+                                            verdict["structure"]["final"]["operations"]):
+        verdict["text"] += (f"; by element alone, not the code's species labels "
+                            f"({', '.join(dict.fromkeys(run.species))}), the final structure is "
+                            f"{got['symbol']} ({got['group']})")
 
 
 def _frame_indices(frames, run: Run) -> list[int]:

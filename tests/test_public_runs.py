@@ -1969,6 +1969,10 @@ def test_species_pwx_tells_apart_are_apart_for_spglib():
     rec = analyze(folder)
     assert rec["summary"]["verdict"]["structure"]["final"] == {
         "group": 166, "symbol": "R-3m", "operations": 12}
+    assert rec["summary"]["verdict"]["structure"]["by_element"] == {
+        "group": merged.number, "symbol": merged.international, "operations": 24}
+    assert "by element alone, not the code's species labels (O1, Fe1, Fe2), the final structure " \
+           "is Fm-3m (225)" in rec["summary"]["verdict"]["text"]
     assert rec["summary"]["supercell"] is None and rec["run"]["species"] == list(run.species)
     assert rec["run"]["formula"] == "Fe2O2"                  # Hill's order, as ase.db's
 
