@@ -184,8 +184,17 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
                                        f"{gap} Å{thin}{drift}", gaps[0])
     k = big[0]
     n = plane_normals(cells[:1], k)[0]
-    return Geometry(2, k, n, f"layer: empty gap {gaps[0, k]:.2f} Å > {gap} Å along axis {k} "
-                             f"(gaps {desc} Å){drift}", gaps[0])
+    return Geometry(2, k, n, f"layer: empty gap {_beside(gaps[0, k], gap)} Å > {gap} Å along "
+                             f"axis {k} (gaps {desc} Å){drift}", gaps[0])
+
+
+def _beside(value: float, limit: float) -> str:
+    """A gap (Å) with 2 decimals, or as many as tell it from ``limit`` when they round alike
+    (6.0000001 Å, a cell of 6 Å printed by the code in other units, is a layer at 6 Å)."""
+    for d in (2, 4, 6, 8):
+        if f"{value:.{d}f}" != f"{limit:.{d}f}":
+            return f"{value:.{d}f}"
+    return f"{value:.10g}"
 
 
 def bulk_gap(gaps) -> float:

@@ -266,3 +266,14 @@ def test_closest_pair_equals_ase_neighbour_list(seed):
         assert i < j and d == pytest.approx(want, abs=1e-9)
         diff = (frac[j] - frac[i]) @ cell                # the pair named is that far apart
         assert d <= np.linalg.norm(diff) + 1e-9
+
+
+def test_a_gap_just_above_the_threshold_is_printed_with_the_digits_that_show_it():
+    """A one-plane cell of c = 6 A that a code prints in other units reads back as 6.0000001 A,
+    just above the default vacuum_gap of 6 A (a pw.x field trial: alat units). The reason had said
+    'empty gap 6.00 A > 6.0 A'; it now prints as many decimals as tell the two apart."""
+    from driftwatch import geometry
+    cell = np.diag([3.0, 3.0, 6.000000104575834])[None]
+    pos = np.array([[[0.0, 0.0, 1.0], [1.5, 1.5, 1.0]]])
+    geo = geometry.classify(cell, np.array([True, True, True]), pos, gap=6.0)
+    assert geo.dimension == 2 and geo.reason.startswith("layer: empty gap 6.00000010 Å > 6.0 Å")
