@@ -424,32 +424,53 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
     return spec
 
 
+RISING_STEPS = 3
+"""Steps: a fixed-cell relaxation whose energy rose at each of at least this many last steps ..."""
+RISING_PER_ATOM = 0.05
+"""eV per moving atom: ... by this much in all is said as one that diverged (a relaxation in a
+fixed cell only lowers its energy; an optimiser's uphill step is one step and meV; common
+practice)."""
 ENERGY_JUMP = 1.0
-"""eV per atom: how far above the lowest energy it reached a relaxation may end before that is said
-as a likely blow-up (a relaxation's energy changes by meV to 0.1 eV/atom a step; common
+"""eV per atom (per moving atom when the code's constraints hold some): how far above the lowest
+energy it reached a relaxation may end before that is said as a likely blow-up (a relaxation's energy changes by meV to 0.1 eV/atom a step; common
 practice)."""
 
 
 def _energy_jumps(run: Run) -> list[str]:
-    """A relaxation whose last stage ends more than :data:`ENERGY_JUMP` per atom above the lowest
-    energy it reached, said: its final frames, and a verdict read from them, may be a broken run's.
-    (Earlier stages may differ in functional or cutoff, so only the last is compared; an uphill
-    step the run recovered from is not said.)"""
+    """A relaxation whose last stage looks like one that blew up, said: it ends more than
+    :data:`ENERGY_JUMP` per moving atom above the lowest energy it reached, or (a fixed cell, whose
+    energy a relaxation only lowers) its energy rose at each of its last :data:`RISING_STEPS` or
+    more steps by :data:`RISING_PER_ATOM` per moving atom in all. Its final frames, and a verdict
+    read from them, may be a broken run's. (Earlier stages may differ in functional or cutoff, so
+    only the last is compared; an uphill step the run recovered from is not said; a run its code
+    says converged is not asked; atoms the code's constraints hold do not dilute the rise.)"""
     e = run.energies
-    if e is None or run.not_relaxation or len(e) < 2 or run.kind == "end-points":
+    if e is None or run.not_relaxation or len(e) < 2 or run.kind == "end-points" or \
+            run.code_settings.get("converged"):
         return []
     first = int(run.stages[-1]["first_frame"]) if run.stages else 0
     e = np.asarray(e[first:], float)
     if len(e) < 2 or not np.isfinite(e[-1]) or not np.isfinite(e[:-1]).any():
         return []
+    moving = max(run.natoms - int(run.code_settings.get("constrained_atoms") or 0), 1)
+    per = "moving atom" if moving < run.natoms else "atom"
     k = int(np.nanargmin(e[:-1]))
-    rise = (e[-1] - e[k]) / max(run.natoms, 1)
-    if rise <= ENERGY_JUMP:
-        return []
-    return [f"the energy ends {rise * run.natoms:.4g} eV ({rise:.3g} eV/atom) above the lowest it "
-            f"reached (step {int(run.steps[first + k])}): a relaxation that blew up (a too long "
-            f"ionic step, a broken SCF)? Its final frames, and a verdict read from them, describe "
-            f"that; check the run"]
+    rise = (e[-1] - e[k]) / moving
+    check = "a too long ionic step, a broken SCF"
+    if rise > ENERGY_JUMP:
+        return [f"the energy ends {rise * moving:.4g} eV ({rise:.3g} eV/{per}) above the lowest it "
+                f"reached (step {int(run.steps[first + k])}): a relaxation that blew up ({check})? "
+                f"Its final frames, and a verdict read from them, describe that; check the run"]
+    up = np.diff(e) > 0
+    n = len(up) - int(np.flatnonzero(~up)[-1]) - 1 if not up.all() else len(up)  # last rises
+    cells = run.cells[first:]
+    fixed = bool(np.abs(cells - cells[0]).max() <= 1e-9 * np.abs(cells[0]).max())
+    if fixed and n >= RISING_STEPS and (e[-1] - e[-1 - n]) / moving > RISING_PER_ATOM:
+        return [f"the energy rose at each of the last {n} steps, {e[-1] - e[-1 - n]:.4g} eV in all "
+                f"({(e[-1] - e[-1 - n]) / moving:.3g} eV/{per}), in a fixed cell, where a "
+                f"relaxation only lowers it: a relaxation that diverged ({check})? Its final "
+                f"frames, and a verdict read from them, describe that; check the run"]
+    return []
 
 
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,

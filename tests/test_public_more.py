@@ -954,3 +954,40 @@ def test_an_outcar_with_vdw_columns_is_read():
     rows = np.array([ln.split()[:6] for ln in lines[at + 2:at + 2 + len(run.numbers)]], float)
     np.testing.assert_allclose(run.positions[0], rows[:, :3], atol=0)
     np.testing.assert_array_equal(run.forces[0], rows[:, 3:])
+
+
+def test_a_castep_optimisation_its_code_says_converged_is_not_asked_whether_it_blew_up():
+    """nomad's CASTEP 16.1 Si2 optimisation (Apache-2.0): its energy ends 3.4 eV (1.7 eV/atom)
+    above its first, under cell constraints and a large starting pressure, and CASTEP says
+    'Geometry optimization completed successfully'. The run had been asked whether it blew up; the
+    code's own word is now recorded and the question not asked."""
+    path = MORE / "castep_nomad_si2_opt" / "Si2_opt.castep.gz"
+    text = gzip.open(path, "rt").read()
+    assert "Geometry optimization completed successfully" in text                  # CASTEP's
+    rec = driftwatch.analyze(path)
+    e = [f["energy"] for f in rec["frames"]]
+    assert (e[-1] - min(e[:-1])) / rec["run"]["n_atoms"] > 1.0
+    assert rec["run"]["code_settings"]["converged"] == (
+        "CASTEP: 'Geometry optimization completed successfully'")
+    assert not any("blew up" in w for w in rec["run"]["warnings"])
+
+
+def test_a_fixed_cell_relaxation_whose_energy_keeps_rising_is_said_to_have_diverged():
+    """The rule (common practice: in a fixed cell a relaxation only lowers its energy). The bundled
+    L09 (a real EMT relaxation of atoms in a fixed square cell) is quiet; the same frames with
+    energies rising at each of the last 4 steps by 0.1 eV/atom in all, as a run whose forces went
+    wrong (a field trial's GPAW slab rose 23.5 eV over 9 steps at 0.37 eV/atom, below the 1 eV/atom
+    a single jump needs), are said to have diverged; a variable-cell run's rising energy is not
+    (under a target pressure it is the enthalpy that falls)."""
+    import dataclasses
+    from driftwatch import track
+    run = read_run(Path(__file__).parent.parent / "example_runs" / "L09_emt_fixed_square.traj")
+    assert track._energy_jumps(run) == []
+    e = run.energies.copy()
+    e[-5:] = e[-5] + np.linspace(0.0, 0.1 * run.natoms, 5)
+    said = track._energy_jumps(dataclasses.replace(run, energies=e))
+    assert len(said) == 1 and said[0].startswith("the energy rose at each of the last 4 steps")
+    assert "a relaxation that diverged" in said[0]
+    cells = run.cells.copy()
+    cells[-1] *= 1.01
+    assert track._energy_jumps(dataclasses.replace(run, energies=e, cells=cells)) == []

@@ -486,6 +486,7 @@ _CASTEP_IMAGE_END = re.compile(r"BFGS: starting iteration|BFGS: (improving) iter
                                r"Starting MD iteration")
 _CASTEP_KIND = re.compile(r"^ *type of calculation +: *(.+?) *$", re.M)
 _CASTEP_LIMIT = re.compile(r"Geometry optimization failed to converge after +(\d+) steps")
+_CASTEP_DONE = re.compile(r"Geometry optimization completed successfully")
 
 
 def _castep_run(text: str) -> str:
@@ -510,6 +511,8 @@ def _castep_steps(text: str, images: list, ctx: ReadContext) -> list:
     limit = _CASTEP_LIMIT.search(run)
     if limit:
         ctx.unfinished = f"stopped at its step limit (CASTEP: '{' '.join(limit.group(0).split())}')"
+    elif _CASTEP_DONE.search(run):
+        ctx.settings["converged"] = "CASTEP: 'Geometry optimization completed successfully'"
     trial = [bool(m.group(1)) for m in _CASTEP_IMAGE_END.finditer(run)] + [False]
     if len(trial) != len(images) or not any(trial):
         return images
