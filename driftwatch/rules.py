@@ -27,7 +27,7 @@ lattice-gained      lattice    the lattice ends holding a Bravais type it starte
 lattice-lost        lattice    the lattice ends clearly away from a type it held at the start
 lattice-changed     lattice    both at once: it left one type and reached another (sideways)
 lattice-nearing     lattice    the deformation to a type fell by ``nearing_fraction`` (against the
-                               lattice's size) without reaching it
+                               lattice's size) to at most ``nearing_within``, without reaching it
 passed-through      lattice    a type was held for a stretch of the run, then left again
 handedness-flip     lattice    a layer's 2D lattice ends with the opposite handedness, clearly chiral at
                                both ends (min_chiral at the start, 2 x min_chiral at the end: it
@@ -269,6 +269,7 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
     cand = [] if len(frames) < win else [
         t for t in types if D[t][0] >= away and np.all(D[t][-win:] > within)
         and np.all(D[t][-win:] <= (1 - lat["nearing_fraction"]) * D[t][0] * shrink)
+        and D[t][-1] <= lat["nearing_within"]                 # near, not only nearer
         and (g is None or (t != g and generalises(g, t)))]
     nearing = _nearest(cand, D) if cand else None
     # the one type the drift numbers are about: gained, else lost, else neared, else the type kept
