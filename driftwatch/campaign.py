@@ -1034,7 +1034,8 @@ def _summary_rows(ok: list[dict], failed: list[dict], skipped=()) -> list[list[s
                f"{v['group_initial']} -> {v['group_final']}") or "-"
         flags = ",".join(sorted({f["code"] for f in rec["flags"]})) or "-"
         marks = ("~" if rec["csv"]["not_relaxation"] else "") + \
-            ("*" if rec["csv"]["unfinished"] else "")        # footnoted below the table
+            ("*" if rec["csv"]["unfinished"] else "") + \
+            ("=" if int(rec["csv"].get("n_frames") or 2) < 2 else "")   # footnoted below
         rows.append([r["run"], str(rec["dimension"]) + "D", v["verdict"] + marks, lat, drift, grp,
                      flags])
     for f in failed:
@@ -1084,7 +1085,7 @@ def _notable(rows: list[list[str]]) -> list[list[str]]:
     not keep their symmetry or carry a flag beyond the tolerance's (about which symprec to take)."""
     if len(rows) <= TABLE_LIMIT:
         return rows
-    return [r for r in rows if r[2].rstrip("~") != "kept"
+    return [r for r in rows if r[2].rstrip("~=") != "kept"
             or set(r[6].split(",")) - {"-", *_TOLERANCE_FLAGS}]
 
 
@@ -1112,6 +1113,10 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
         print("~ no relaxation (molecular dynamics, a single point or structure, a band image: "
               "column not_relaxation of campaign.csv): the verdict compares the first and last "
               "frames, not where a relaxation ended", file=stream)
+    if any("=" in r[2] for r in shown):
+        print("= one frame read (column n_frames; its warnings say why): nothing to compare it "
+              "with, so the verdict says no drift could be seen, not that none happened",
+              file=stream)
     vc = ", ".join(f"{k} {v}" for k, v in sorted(summary["verdict_counts"].items()))
     fc = ", ".join(f"{k} {v}" for k, v in sorted(summary["flag_counts"].items())) or "none"
     print(f"\n{counts_text(summary)} in {summary['elapsed_s']:.1f} s", file=stream)

@@ -991,3 +991,24 @@ def test_a_fixed_cell_relaxation_whose_energy_keeps_rising_is_said_to_have_diver
     cells = run.cells.copy()
     cells[-1] *= 1.01
     assert track._energy_jumps(dataclasses.replace(run, energies=e, cells=cells)) == []
+
+
+def test_a_relaxation_read_as_one_frame_is_marked_in_the_audit_table(tmp_path):
+    """nomad's CASTEP damped-MD optimisation of rutile TiO2 (Apache-2.0): the file lists 23
+    iterations; ASE's reader (called directly) returns one structure, the last. Nothing is
+    compared, so its 'kept' had stood unmarked in the audit table beside real verdicts; it is now
+    marked '=' and footnoted, and its warning says how many steps were not seen."""
+    from driftwatch.campaign import audit
+    src = MORE / "castep_nomad_tio2_dmd" / "TiO2-geom.castep.gz"
+    text = gzip.open(src, "rt").read()
+    assert len(re.findall(r"DMD: finished iteration", text)) == 23                  # CASTEP's
+    assert len(ase.io.read(gzip.open(src, "rt"), ":", format="castep-castep")) == 1  # ASE's
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    (camp / "TiO2-geom.castep").write_text(text)
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                        str(tmp_path / "out"), "--progress", "off"], capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    row = next(ln for ln in r.stdout.splitlines() if "TiO2-geom.castep" in ln)
+    assert " kept= " in row
+    assert "= one frame read (column n_frames; its warnings say why)" in r.stdout
