@@ -1012,3 +1012,22 @@ def test_a_relaxation_read_as_one_frame_is_marked_in_the_audit_table(tmp_path):
     row = next(ln for ln in r.stdout.splitlines() if "TiO2-geom.castep" in ln)
     assert " kept= " in row
     assert "= one frame read (column n_frames; its warnings say why)" in r.stdout
+
+
+def test_a_castep_file_whose_appended_run_is_cut_says_asees_reason():
+    """castep_outputs' test.castep (BSD-3-Clause): two CASTEP 24.1 runs in one file, the second cut
+    before its 'Finalisation time'. ASE given the path raises 'No regular end found'; driftwatch,
+    handing ASE the text, had failed with ASE's own AttributeError ('_io.StringIO' object has no
+    attribute 'name'), which told the user nothing. ASE's reason is now the one line."""
+    from ase.io import ParseError
+    src = MORE / "castep_second_run_cut" / "test.castep.gz"
+    text = gzip.open(src, "rt").read()
+    starts = [i for i in range(len(text)) if text.startswith("Welcome to Academic Release CASTEP",
+                                                             i)]
+    assert len(starts) == 2 and "Finalisation time" not in text[starts[1]:]      # CASTEP's
+    with pytest.raises(InputError) as e:
+        read_run(src)
+    msg = str(e.value)
+    assert "\n" not in msg and "No regular end found" in msg and "AttributeError" not in msg
+    with pytest.raises(ParseError, match="No regular end found"):                       # ASE's
+        ase.io.read(gzip.open(src, "rt"), ":", format="castep-castep")

@@ -400,7 +400,9 @@ def _through_ase(path, ctx: ReadContext, ase_format: str, steps=None, adjust=Non
     with _w.catch_warnings():
         _w.simplefilter("ignore")                # ASE's notes on plugins and code warnings
         if ioformats[ase_format].acceptsfd:
-            images = ase.io.read(io.StringIO(text), ":", format=ase_format, **kwargs)
+            fd = io.StringIO(text)
+            fd.name = str(path)                  # ASE's messages name the file they read
+            images = ase.io.read(fd, ":", format=ase_format, **kwargs)
         else:                                    # a reader that opens paths only: the complete
             import os                            # lines, decompressed, in a private temp file
             import tempfile
