@@ -175,11 +175,23 @@ def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
     from .adapters.run import folder_listing
     if not isinstance(inputs, list) or not inputs:
         return False
+    from .adapters.batch import wal_of
+    parts = {item[1][0] for item in inputs if isinstance(item, list) and len(item) == 3
+             and item[0] == "part" and isinstance(item[1], list) and item[1]}
+    listed = {item[1] for item in inputs if isinstance(item, list) and len(item) == 3
+              and isinstance(item[1], str)}
     for item in inputs:
         if isinstance(item, list) and len(item) == 3 and item[0] == "part":
             if not _part_unchanged(item, digests):
                 return False
             continue
+        if isinstance(item, list) and len(item) == 3 and item[0] == "file" and \
+                item[1] in {wal_of(b) for b in parts}:
+            continue                  # a structure's rows in the log: its part says (SQLite)
+        if isinstance(item, list) and len(item) == 3 and item[0] == "file" and \
+                isinstance(item[1], str) and wal_of(item[1]) not in listed and \
+                os.path.exists(wal_of(item[1])):
+            return False              # an SQLite file now in WAL mode: its bytes may not say
         if not (isinstance(item, list) and len(item) == 3 and item[0] in ("file", "folder")
                 and isinstance(item[1], str) and (item[2] is None or _is_digest(item[2]))):
             return False
@@ -215,9 +227,10 @@ def _part_unchanged(item, digests: FileDigests) -> bool:
             and _is_digest(want)):
         return False
     base, fmt, keys, name, whole = spec
+    from .adapters.batch import wal_of
     try:
-        if digests.digest(base) == whole:
-            return True
+        if digests.digest(base) == whole and not os.path.exists(wal_of(base)):
+            return True               # (in WAL mode new rows leave the file's bytes alone)
     except OSError:
         return False
     return _part_digest(base, fmt, keys, name) == want

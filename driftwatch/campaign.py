@@ -812,20 +812,23 @@ def _answers(results: list[dict]) -> dict:
             for x in results}
 
 
-def _since_last(old: dict, now: dict, read_now: dict) -> dict | None:
+def _since_last(old: dict, now: dict, inputs: dict, read_now: set) -> dict | None:
     """What changed since the audit that wrote ``old`` (the folder's previous marker): runs new,
     gone, and read again (their files changed since that audit, or their answer is not the one it
-    gave: read by an audit interrupted since); None when the previous audit did not list its runs
-    (none, or an older driftwatch). ``now``: :func:`_answers`; ``read_now``: {run id: digest of
-    its inputs or None} of the runs analysed now (not from the cache): one read from the same
-    bytes as then (the cache deleted, or not used) is not read again."""
+    gave); None when the previous audit did not list its runs (none, or an older driftwatch).
+    ``now``: :func:`_answers`; ``inputs``: {run id: digest of its inputs or None}; ``read_now``:
+    the runs analysed now (not from the cache). A run read from the same bytes as then (the cache
+    deleted, or not used) is not read again; one served from the cache of an audit interrupted
+    since, from other bytes, is."""
     if "runs" not in old:
         return None
     before, after, answers = set(old["runs"]), set(now), old.get("answers") or {}
     then = old.get("inputs") or {}
 
     def changed(r):
-        return r in read_now and (read_now[r] is None or then.get(r) != read_now[r])
+        if then.get(r) is not None and inputs.get(r) is not None:
+            return then[r] != inputs[r]
+        return r in read_now                 # (an older marker, or inputs not known)
     return {"new": sorted(after - before), "gone": sorted(before - after),
             "read_again": sorted(r for r in after & before if changed(r)
                                  or answers.get(r, now[r]) != now[r])}
@@ -1294,8 +1297,8 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                            db_problems, stale, skipped)
         every = _answers([*ok, *failed, *skipped])
         read_from = {rid: r.get("inputs_digest") for rid, r in res.results.items()}
-        summary["since_last"] = _since_last(old_marker, every, {
-            rid: d for rid, d in read_from.items() if not res.results[rid].get("cached")})
+        summary["since_last"] = _since_last(old_marker, every, read_from, {
+            rid for rid, r in res.results.items() if not r.get("cached")})
         summary["elapsed_s"] = time.perf_counter() - t0
         records.write_text_atomic(out / "campaign.json", records.dumps(summary) + "\n")
         _write_marker(out, roots_abs, sorted(current), every,

@@ -790,3 +790,119 @@ def test_a_new_run_appended_to_one_output_is_numbered_as_the_same_run_in_two_fol
         list(range(len(staged)))
     assert len(ase.io.read(joined, ":", format="espresso-out")) == len(appended)
     assert np.allclose(appended.positions, staged.positions)
+
+
+def test_an_ase_db_in_wal_mode_is_read_again_when_its_log_holds_new_rows(tmp_path):
+    """An ase.db in SQLite's WAL mode, written while another connection stays open (a running
+    batch job's): the new rows are in ``batch.db-wal``, the file's own bytes and stat unchanged
+    (SQLite's write-ahead log). The cache had served the old answer of the structure whose row was
+    rewritten (a field trial); the structure is now read again, alone, and equals a fresh audit's
+    (real SQLite through ase.db and sqlite3, real EMT frames)."""
+    import sqlite3
+    import ase.db
+    from driftwatch.campaign import audit
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    db_path = camp / "relaxations.db"
+    shutil.copy(BATCH / "relaxations.db", db_path)
+    con = sqlite3.connect(db_path)
+    assert con.execute("PRAGMA journal_mode=WAL").fetchone() == ("wal",)          # SQLite's
+    con.close()
+    kw = dict(workers=1, report=False, progress="off")
+    assert audit([camp], tmp_path / "out", **kw)["runs"] == 6
+    # (reading a WAL-mode file through ase.db may touch it: a result whose file changed while it
+    # was read is not cached, so a second audit settles the cache)
+    assert audit([camp], tmp_path / "out", **kw)["analysed"] <= 1
+    keep = sqlite3.connect(db_path)                    # the job's own open connection
+    keep.execute("select count(*) from systems").fetchone()
+    stat = db_path.stat()
+    with ase.db.connect(str(db_path)) as db:
+        last = max(db.select(relax_id="CuNi-tP-04"), key=lambda r: r.step)
+        atoms = last.toatoms()
+        atoms.positions[0] += [0.05, 0.0, 0.0]
+        db.update(last.id, atoms=atoms)
+    assert (db_path.stat().st_size, db_path.stat().st_mtime_ns) == (stat.st_size, stat.st_mtime_ns)
+    assert Path(f"{db_path}-wal").stat().st_size > 0
+    again = audit([camp], tmp_path / "out", **kw)
+    fresh = audit([camp], tmp_path / "fresh", use_cache=False, **kw)
+    keep.close()
+    assert again["cached"] == 5 and again["analysed"] == 1 and fresh["analysed"] == 6
+    assert _records(tmp_path / "out") == _records(tmp_path / "fresh")
+    assert again["since_last"]["read_again"] == ["camp/relaxations.db::CuNi-tP-04"]
+
+
+def _batch_text():
+    return gzip.decompress((BATCH / "relaxations.extxyz.gz").read_bytes()).decode()
+
+
+def test_a_batch_file_cut_inside_another_structures_frame_leaves_the_others_whole(tmp_path):
+    """A batch writer still writing: the real EMT batch, then half of a new structure's first frame
+    whose comment line names it (Cu-bct-08). The six complete structures had all been marked cut
+    short (and their cache entries dropped each time a writer was mid-frame: a field trial); they
+    are read whole and kept in the cache now. A cut frame whose comment is itself cut names no
+    structure, and every structure is still said to be possibly cut (ASE refuses both files)."""
+    from driftwatch.campaign import audit
+    text = _batch_text()
+    frame = _frames_of(text, "Cu-bct-07")
+    n = int(frame[0])
+    new = [ln.replace("structure_id=Cu-bct-07", "structure_id=Cu-bct-08") for ln in frame[:n + 2]]
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    (camp / "batch.extxyz").write_text(text + "".join(new[:2 + n // 2]))
+    with pytest.raises(Exception):                                                   # ASE's
+        ase.io.read(camp / "batch.extxyz", ":")
+    kw = dict(workers=1, report=False, progress="off")
+    first = audit([camp], tmp_path / "out", **kw)
+    assert first["runs"] == 6 and not first["failed"]
+    recs = _records(tmp_path / "out")
+    assert all(r["run"]["unfinished"] is None for r in recs.values())
+    (camp / "batch.extxyz").write_text(text + "".join(new))         # the frame finished
+    again = audit([camp], tmp_path / "out", **kw)
+    assert again["runs"] == 7 and again["cached"] == 6 and again["analysed"] == 1
+    (camp / "batch.extxyz").write_text(text + new[0] + new[1][:40])    # its comment line cut
+    third = audit([camp], tmp_path / "third", **kw)
+    assert all(r["run"]["unfinished"] == "cut short: job killed or still running"
+               for r in _records(tmp_path / "third").values())
+    assert third["runs"] == 6
+
+
+def test_a_damaged_header_mid_batch_file_is_said_for_every_structure(tmp_path):
+    """The real EMT batch with one frame's atom count damaged ('2x') mid-file: ASE's reader refuses
+    the file there; driftwatch had read every structure's frames before it and said nothing (exit
+    0). Each structure now says the damage and is marked damaged, the frames before it read."""
+    from driftwatch.campaign import audit
+    lines = _batch_text().splitlines(keepends=True)
+    heads = [i for i, ln in enumerate(lines) if ln.strip().isdigit()]
+    k = heads[len(heads) // 2]
+    lines[k] = lines[k].strip() + "x\n"
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    (camp / "batch.extxyz").write_text("".join(lines))
+    with pytest.raises(Exception, match="header"):                                    # ASE's
+        ase.io.read(camp / "batch.extxyz", ":")
+    s = audit([camp], tmp_path / "out", workers=1, report=False, progress="off")
+    recs = _records(tmp_path / "out")
+    assert s["runs"] == len(recs) >= 1
+    for r in recs.values():
+        assert r["run"]["unfinished"].startswith("damaged: not an XYZ frame header at line "
+                                                 f"{k + 1}")
+        assert any("the frames after it are not read, of any structure" in w
+                   for w in r["run"]["warnings"])
+
+
+def test_a_structures_cache_entry_keys_on_where_its_frames_are(tmp_path):
+    """A structure's frames moved in the file (another structure before it removed) re-read it:
+    its failure's message quotes file frame numbers (a field trial: a cached 'frames 5 and 9'
+    where the file now has them at 1 and 5). Frames appended after it move nothing."""
+    from driftwatch.adapters import batch
+    text = _batch_text()
+    path = tmp_path / "b.extxyz"
+    path.write_text(text)
+    keys = batch.STRUCTURE_KEYS
+    before = batch.member_digest(path, "extxyz", keys, "Ni-rhombo-03")
+    path.write_text(text + "".join(ln.replace("Cu-bct-07", "Cu-bct-09")
+                                   for ln in _frames_of(text, "Cu-bct-07")))
+    assert batch.member_digest(path, "extxyz", keys, "Ni-rhombo-03") == before
+    path.write_text("".join(ln for ln in text.splitlines(keepends=True))
+                    .replace("".join(_frames_of(text, "Cu-bct-07")), ""))
+    assert batch.member_digest(path, "extxyz", keys, "Ni-rhombo-03") != before

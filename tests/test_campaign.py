@@ -829,6 +829,35 @@ def test_runs_read_by_an_interrupted_audit_are_said_read_again_by_the_next(tmp_p
     assert run_audit([camp], out)["since_last"]["read_again"] == []
 
 
+def test_a_run_whose_file_changed_but_not_its_answer_is_read_again_after_an_interruption(
+        tmp_path, monkeypatch):
+    """The same, for a change of the file's bytes that leaves the answer as it was (an ase.db row
+    given a new key-value pair, a field trial's case): the run read by the interrupted audit comes
+    from the cache next time, and is still said read again, by its inputs (real SQLite through
+    ase.db, the batch of real EMT relaxations)."""
+    import ase.db
+    import driftwatch.campaign as campaign
+    camp = tmp_path / "camp"
+    camp.mkdir()
+    shutil.copy(Path(__file__).parent / "data" / "batch" / "relaxations.db", camp)
+    out = tmp_path / "out"
+    run_audit([camp], out)
+    with ase.db.connect(str(camp / "relaxations.db")) as db:
+        last = max(db.select(relax_id="Al-fco-02"), key=lambda r: r.step)
+        db.update(last.id, checked=1)
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+    with monkeypatch.context() as m:
+        m.setattr(campaign, "_write_tables", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            run_audit([camp], out)
+    again = run_audit([camp], out)
+    assert again["cached"] == again["runs"] == 6
+    assert again["since_last"]["read_again"] == ["camp/relaxations.db::Al-fco-02"]
+    assert run_audit([camp], out)["since_last"]["read_again"] == []
+
+
 def test_a_large_campaign_table_leaves_out_kept_runs_flagged_only_for_the_tolerance():
     """Beyond campaign.TABLE_LIMIT runs the table lists the notable ones: a run that kept its
     symmetry with only tolerance flags (symprec-dependent, loose-symprec: about which symprec to

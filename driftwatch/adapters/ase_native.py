@@ -272,26 +272,35 @@ def read_extxyz(path, ctx: ReadContext):
         return
     wanted = {m.pos: k for k, m in enumerate(chosen)}
     got: dict = {}
+    # a cut last frame is this structure's only when it names no other (a batch writer still
+    # writing another's frame leaves this one whole)
+    cut = index.cut if index.cut and index.cut_name in (None, (ctx.structure or {}).get(
+        "value")) else None
     _, kept = batch.index_extxyz(path, ctx.structure_keys, keep_lines=True)
     if kept is not None:                     # the lines are in memory: no second pass
         for pos, k in sorted(wanted.items(), key=lambda x: x[1]):
             if pos in kept:
                 got[k] = parse(kept[pos][1], kept[pos][0], not got)
-        if index.cut:
-            truncated(*index.cut)
     else:
-        for n, a, b, block in batch.extxyz_frames(path):
-            if n is None:
-                truncated(a, b)
-                break
-            if n in wanted:
-                got[wanted[n]] = parse(block, b, not got)
+        try:
+            for n, _, b, block in batch.extxyz_frames(path):
+                if n is None:
+                    break
+                if n in wanted:
+                    got[wanted[n]] = parse(block, b, not got)
+        except InputError:
+            pass                             # the damaged header the index met, said below
+    if cut:
+        truncated(*cut)
+    if index.damaged:                        # the frames after it may be any structure's
+        ctx.warn(f"{index.damaged}: the frames after it are not read, of any structure")
+        ctx.unfinished = f"damaged: {index.damaged}"
     for k, m in enumerate(chosen):
         if k in got:
             fr = frame_from_atoms(got[k], _member_step(m, k, kind))
             said.see(got[k], fr)
             yield fr
-    if kind != "end-points" and not index.cut:
+    if kind != "end-points" and not cut and not index.damaged:
         said.end()
 
 

@@ -33,7 +33,7 @@ from ..errors import InputError, NotARunError
 
 __all__ = ["STRUCTURE_KEYS", "STEP_KEYS", "END_POINT_MARKERS", "Member", "Index", "split",
            "refuse_many", "listing",
-           "index_extxyz", "index_db", "SEPARATOR", "PART_FORMATS", "member_digest"]
+           "index_extxyz", "index_db", "SEPARATOR", "PART_FORMATS", "member_digest", "wal_of"]
 
 STRUCTURE_KEYS = ("structure_id", "relax_id", "material_id", "system_name", "config_type")
 """Default ``inputs.structure_keys``: the info / key-value names tried, in order, to name the
@@ -79,6 +79,8 @@ class Index:
     members: list = field(default_factory=list)
     kind: str = "frame"                  # "frame" (extended XYZ) or "row" (ase.db), for messages
     cut: tuple | None = None             # extended XYZ: (frames read, "frame" | "line") if cut
+    cut_name: str | None = None          # ... the structure the cut frame names, when it says
+    damaged: str | None = None           # extended XYZ: why the index stopped at a damaged header
 
     def groups(self) -> dict:
         """Structure name -> its members in file order (names in order of first appearance)."""
@@ -210,8 +212,8 @@ def _members(path, rows, keys, kind) -> Index:
 # ---------------------------------------------------------------- extended XYZ
 def extxyz_frames(path):
     """``(frame number, comment line, first line number, lines)`` of every complete frame, then,
-    for a file that ends abnormally, ``(None, frames read, "frame" | "line", None)``: it ends inside
-    a frame, or its last line is cut. Frame headers are checked (atom count 1..MAX_ATOMS)."""
+    for a file that ends abnormally, ``(None, frames read, "frame" | "line", lines read of the cut
+    frame | None)``: it ends inside a frame, or its last line is cut. Frame headers are checked (atom count 1..MAX_ATOMS)."""
     from ._io import Lines
     from .ase_native import MAX_ATOMS
     n = 0
@@ -237,7 +239,7 @@ def extxyz_frames(path):
                     break
                 block.append(ln)
             if len(block) < natoms + 2:
-                yield None, n, "frame", None
+                yield None, n, "frame", block        # the cut frame's lines (its comment, if any)
                 return
             yield n, block[1], fh.lineno - natoms, block
             n += 1
@@ -296,7 +298,16 @@ def _remember(key, value):
 def _memo_key(kind, path, keys):
     from .run import file_stamp
     stamp = file_stamp(path)
-    return None if stamp is None else (kind, str(path), tuple(stamp), tuple(keys))
+    if stamp is None:
+        return None
+    wal = file_stamp(wal_of(path)) if "db" in kind else None     # an ase.db in WAL mode
+    return kind, str(path), tuple(stamp), tuple(wal or ()), tuple(keys)
+
+
+def wal_of(path) -> str:
+    """The write-ahead log beside an SQLite file (``FILE-wal``): in WAL mode new rows are there,
+    not in the file's bytes, until a checkpoint."""
+    return f"{path}-wal"
 
 
 def index_extxyz(path, keys=STRUCTURE_KEYS, keep_lines: bool = False):
@@ -314,11 +325,13 @@ def index_extxyz(path, keys=STRUCTURE_KEYS, keep_lines: bool = False):
     cut = None
 
     def rows():
-        nonlocal kept, size, cut
+        nonlocal kept, size, cut, cut_name, damaged
         try:
             for n, comment, line, block in extxyz_frames(path):
                 if n is None:
                     cut = (comment, line)
+                    if block and len(block) > 1:          # its comment line is whole: it says
+                        cut_name = comment_info(block[1], wanted)   # which structure it was
                     return
                 if kept is not None:
                     size += sum(map(len, block))
@@ -327,10 +340,14 @@ def index_extxyz(path, keys=STRUCTURE_KEYS, keep_lines: bool = False):
                     else:
                         kept[n] = (line, block)
                 yield n, comment_info(comment, wanted)
-        except InputError:           # a damaged frame header: the reading pass reports it, after
-            return                   # the frames before it
+        except InputError as exc:    # a damaged frame header: the frames before it are indexed,
+            damaged = exc.problem    # and every structure's reading says so
+            return
+    cut_name = damaged = None
     index = _members(path, rows(), keys, "frame")
-    index.cut = cut
+    index.cut, index.damaged = cut, damaged
+    if cut_name and index.key is not None and cut_name.get(index.key) is not None:
+        index.cut_name = _name(cut_name[index.key])
     if key is not None:
         _remember(key, (index, kept))
     return (index, kept) if keep_lines else index
@@ -398,11 +415,13 @@ def _member_digests(path, fmt: str, keys: tuple) -> dict:
     of = {m.pos: m.name for m in index.members}
     hashes = {name: hashlib.sha256() for name in index.names()}
     if fmt == "extxyz":
-        for n, _, _, block in extxyz_frames(path):
-            if n is None:
-                break
-            if n in of:
-                hashes[of[n]].update("".join(block).encode())
+        try:
+            for n, _, _, block in extxyz_frames(path):
+                if n is None or n not in of:             # (the index stopped at a damage)
+                    break
+                hashes[of[n]].update(f"{n}\n".encode() + "".join(block).encode())
+        except InputError:                               # the damage itself: in the tail
+            pass
     else:
         for row in _db_rows(path):
             h = hashes.get(of.get(row[0]))
@@ -410,10 +429,11 @@ def _member_digests(path, fmt: str, keys: tuple) -> dict:
                 for v in row:
                     h.update(v if isinstance(v, bytes) else repr(v).encode())
                     h.update(b"\0")
-    tail = json.dumps([index.key, index.cut]).encode()
+    cut_here = getattr(index, "cut_name", None)
     out = {}
     for name, h in hashes.items():
-        h.update(tail)
+        cut = index.cut if cut_here is None or cut_here == name else None
+        h.update(json.dumps([index.key, cut, getattr(index, "damaged", None)]).encode())
         out[name] = h.hexdigest()
     return out
 

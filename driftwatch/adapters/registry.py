@@ -40,7 +40,7 @@ from typing import Callable, Iterator
 from ..errors import (AtomsChangeError, DamagedFrameError, DriftwatchError, ForeignOutputError,
                       InputError, NotARunError, UnknownFormatError)
 from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
-from .batch import PART_FORMATS
+from .batch import PART_FORMATS, wal_of
 from .run import Frame, ReadContext, Run, StraightLine, checked, collect
 
 __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format", "PEEK_BYTES",
@@ -741,7 +741,10 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
     if name is not None and fmt_name in PART_FORMATS and Path(base).exists():
         ctx.part(base, fmt_name, name)
     else:
-        ctx.uses(base.rpartition("@")[0] if not Path(base).exists() and "@" in base else base)
+        base = base.rpartition("@")[0] if not Path(base).exists() and "@" in base else base
+        ctx.uses(base)
+    if fmt_name == "ase-db" and os.path.exists(wal_of(base)):   # WAL mode: rows in its log
+        ctx.uses(wal_of(base))
     n = 0
     last = None
     try:
