@@ -14,7 +14,8 @@ version writes (even valid JSON of the right schema) is a miss.
 
 File digests are memoised in ``OUTPUT/.cache/digests.json`` on (size, mtime, ctime, inode): the
 ctime cannot be set back by user tools, so an unchanged stat means unchanged bytes and a re-audit of
-a large campaign does not re-read every file. Entries are written atomically; a corrupt or foreign
+a large campaign does not re-read every file (except a file changed within :data:`RACY_NS` before
+it was hashed, whose digest is not saved: timestamps advance in ticks). Entries are written atomically; a corrupt or foreign
 entry is ignored (and recomputed).
 """
 
@@ -24,6 +25,7 @@ import fnmatch
 import hashlib
 import json
 import os
+import time
 from pathlib import Path
 
 from . import records
@@ -33,6 +35,10 @@ __all__ = ["Cache", "FileDigests", "run_inputs", "run_key", "versions", "freeze_
            "inputs_digest", "CACHE_SCHEMA"]
 
 CACHE_SCHEMA = "driftwatch/cache-2"
+RACY_NS = 2_000_000_000
+"""ns: the digest of a file changed this recently before it was hashed is not saved for the next
+audit, which hashes it again (a filesystem's timestamps advance in ticks of milliseconds, so a
+same-size rewrite in the tick after it was hashed would keep size, mtime and ctime)."""
 _HEX = frozenset("0123456789abcdef")
 
 
@@ -73,6 +79,7 @@ class FileDigests:
     def __init__(self, index_path=None):
         self.path = None if index_path is None else Path(index_path)
         self._memo: dict = {}
+        self._racy: set = set()       # digests of files changed just before: not saved
         self._dirty = False
         self.problem: str | None = None     # why the index could not be written, if so
         if self.path is not None and self.path.is_file():
@@ -104,6 +111,8 @@ class FileDigests:
             return stamp, None
         self._memo[real] = [stamp, h.hexdigest()]
         self._dirty = True
+        if time.time_ns() - max(stamp[1], stamp[2]) <= RACY_NS:   # git's "racy clean": a file
+            self._racy.add(real)          # changed in the clock's tick after this keeps its stamp
         return stamp, h.hexdigest()
 
     def digest(self, file) -> str | None:
@@ -114,8 +123,9 @@ class FileDigests:
         """Write the digests (a failure is kept in ``problem``: the cache only saves time)."""
         if self.path is not None and self._dirty and self.problem is None:
             try:
+                keep = {k: v for k, v in self._memo.items() if k not in self._racy}
                 records.write_text_atomic(self.path, json.dumps({"schema": CACHE_SCHEMA,
-                                                                 "files": self._memo}))
+                                                                 "files": keep}))
             except OutputError as exc:
                 self.problem = str(exc)
             self._dirty = False

@@ -875,3 +875,24 @@ def test_a_large_campaign_table_leaves_out_kept_runs_flagged_only_for_the_tolera
     shown = {r[0] for r in campaign._notable(rows)}
     assert shown == {"a/kept-code", "a/lost"}
     assert campaign._notable(rows[:5]) == rows[:5]          # a small campaign: every run
+
+
+def test_a_digest_of_a_file_changed_just_before_it_was_hashed_is_not_kept(tmp_path, monkeypatch):
+    """git's "racy clean" case: file timestamps advance in ticks of milliseconds, so a same-size
+    rewrite just after a file was hashed can keep its size, mtime and ctime (a field trial's
+    point). A digest taken within RACY_NS of the file's last change (its ctime, which no tool sets
+    back) is used in that audit but not saved for the next; an older file's is (RACY_NS set to
+    0.3 s here, 2 s by default)."""
+    import json
+    from driftwatch import cache
+    from driftwatch.cache import FileDigests
+    monkeypatch.setattr(cache, "RACY_NS", 300_000_000)
+    new, old = tmp_path / "new.txt", tmp_path / "old.txt"
+    old.write_text("b" * 100)
+    time.sleep(0.4)
+    new.write_text("a" * 100)
+    d = FileDigests(tmp_path / "digests.json")
+    assert d.digest(new) and d.digest(old)
+    d.save()
+    saved = json.loads((tmp_path / "digests.json").read_text())["files"]
+    assert os.path.realpath(old) in saved and os.path.realpath(new) not in saved
