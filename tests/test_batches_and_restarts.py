@@ -810,9 +810,9 @@ def test_an_ase_db_in_wal_mode_is_read_again_when_its_log_holds_new_rows(tmp_pat
     con.close()
     kw = dict(workers=1, report=False, progress="off")
     assert audit([camp], tmp_path / "out", **kw)["runs"] == 6
-    # (reading a WAL-mode file through ase.db may touch it: a result whose file changed while it
-    # was read is not cached, so a second audit settles the cache)
-    assert audit([camp], tmp_path / "out", **kw)["analysed"] <= 1
+    # (reading a WAL-mode file may touch it, SQLite checkpointing on a last close: a result whose
+    # file changed while it was read is not cached, so the cache settles over a few audits)
+    assert any(audit([camp], tmp_path / "out", **kw)["analysed"] == 0 for _ in range(4))
     keep = sqlite3.connect(db_path)                    # the job's own open connection
     keep.execute("select count(*) from systems").fetchone()
     stat = db_path.stat()
