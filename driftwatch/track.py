@@ -443,7 +443,8 @@ def _energy_jumps(run: Run) -> list[str]:
     more steps by :data:`RISING_PER_ATOM` per moving atom in all. Its final frames, and a verdict
     read from them, may be a broken run's. (Earlier stages may differ in functional or cutoff, so
     only the last is compared; an uphill step the run recovered from is not said; a run its code
-    says converged is not asked; atoms the code's constraints hold do not dilute the rise.)"""
+    says converged is not asked; atoms the code's constraints hold in every direction,
+    ``fixed_atoms``, do not dilute the rise.)"""
     e = run.energies
     if e is None or run.not_relaxation or len(e) < 2 or run.kind == "end-points" or \
             run.code_settings.get("converged"):
@@ -452,7 +453,7 @@ def _energy_jumps(run: Run) -> list[str]:
     e = np.asarray(e[first:], float)
     if len(e) < 2 or not np.isfinite(e[-1]) or not np.isfinite(e[:-1]).any():
         return []
-    moving = max(run.natoms - int(run.code_settings.get("constrained_atoms") or 0), 1)
+    moving = max(run.natoms - int(run.code_settings.get("fixed_atoms") or 0), 1)
     per = "moving atom" if moving < run.natoms else "atom"
     k = int(np.nanargmin(e[:-1]))
     rise = (e[-1] - e[k]) / moving

@@ -1031,3 +1031,31 @@ def test_a_castep_file_whose_appended_run_is_cut_says_asees_reason():
     assert "\n" not in msg and "No regular end found" in msg and "AttributeError" not in msg
     with pytest.raises(ParseError, match="No regular end found"):                       # ASE's
         ase.io.read(gzip.open(src, "rt"), ":", format="castep-castep")
+
+
+def test_the_blow_up_rule_counts_atoms_held_in_part_as_moving(tmp_path):
+    """A real ASE EMT relaxation of a 4-atom Cu cell with FixAtoms on one atom and FixCartesian
+    (z held) on two: ASE's own constraints say one atom is fixed and three move. A regression
+    review found atoms held in one direction counted as fixed, dividing a rise by the wrong number
+    of atoms; the rule now divides by the atoms not held in every direction
+    (code_settings.fixed_atoms). The rule's trigger is set here by raising the last energies."""
+    import dataclasses
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.constraints import FixAtoms, FixCartesian
+    from ase.optimize import BFGS
+    from driftwatch import track
+    atoms = bulk("Cu", "fcc", a=3.6, cubic=True)
+    atoms.rattle(0.05, seed=4)
+    atoms.set_constraint([FixAtoms([0]), FixCartesian([1, 2], mask=(False, False, True))])
+    atoms.calc = EMT()
+    BFGS(atoms, trajectory=str(tmp_path / "relax.traj"), logfile=None).run(fmax=1e-3, steps=8)
+    frames = ase.io.read(tmp_path / "relax.traj", ":")
+    forces = frames[-1].get_forces()
+    assert np.all(forces[0] == 0) and np.all(forces[1:3, 2] == 0)              # ASE's own
+    run = read_run(tmp_path / "relax.traj")
+    assert run.code_settings["constrained_atoms"] == 3 and run.code_settings["fixed_atoms"] == 1
+    e = run.energies.copy()
+    e[-4:] = e[-4] + np.array([0.0, 0.1, 0.2, 0.3])
+    said = track._energy_jumps(dataclasses.replace(run, energies=e))
+    assert said and "(0.1 eV/moving atom)" in said[0]

@@ -450,7 +450,7 @@ def note_fix_symmetry(atoms, settings: dict, warn=None) -> None:
     symmetry_setting`), and how many atoms the other constraints hold (``FixAtoms``,
     ``FixCartesian``, extended XYZ's ``move_mask``, ...), said through ``warn`` (the frames'
     forces already have those constraints applied: :func:`frame_from_atoms`)."""
-    held, names = np.zeros(len(atoms), bool), []
+    held, whole, names = np.zeros(len(atoms), bool), np.zeros(len(atoms), bool), []
     for c in getattr(atoms, "constraints", None) or ():
         name = type(c).__name__
         if name == "FixSymmetry" and hasattr(c, "rotations"):
@@ -464,12 +464,15 @@ def note_fix_symmetry(atoms, settings: dict, warn=None) -> None:
                 c.adjust_forces(atoms, moved)
             except Exception:            # a constraint that cannot act on this frame: unsaid
                 continue
-            now = np.any(np.abs(moved - probe) > 1e-12, axis=1)
+            now = np.abs(moved - probe) > 1e-12
             if now.any():
-                held |= now
+                held |= now.any(axis=1)
+                whole |= now.all(axis=1)
                 names.append(name)
     if held.any():
         settings["constrained_atoms"] = int(held.sum())
+        if whole.any():
+            settings["fixed_atoms"] = int(whole.sum())
         if warn is not None:
             warn(constrained_note(int(held.sum()), len(atoms), "the file's constraints (ASE's "
                                   + " and ".join(dict.fromkeys(names)) + ", as ASE reads them)",
@@ -635,6 +638,8 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         if arrays["forces"] is not None:     # what the code's optimiser converges on
             arrays["forces"][:, ctx.held_zero] = 0.0
         ctx.settings["constrained_atoms"] = int(held.any(axis=1).sum())
+        if held.all(axis=1).any():
+            ctx.settings["fixed_atoms"] = int(held.all(axis=1).sum())
         ctx.warn(constrained_note(int(held.any(axis=1).sum()), len(held), ctx.held_by, True))
     blocks.clear()          # freed before anything else is computed: the peak stays at twice
     cur = None              # the arrays
