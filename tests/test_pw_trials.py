@@ -437,3 +437,27 @@ def test_cell_dofree_2dxy_on_a_bulk_cell_says_the_third_vector_was_held():
         "as for a layer); the lattice verdict does not test what the code held")
     layer = analyze(Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax")
     assert layer["geometry"]["dimension"] == 2 and layer["summary"]["cell_held"] is None
+
+
+def test_species_labels_alike_are_one_type_whatever_their_names_and_files():
+    """Three real pw.x relaxes of one 2-atom Al cell (qe_trials/al2_labels_*), differing only in
+    ATOMIC_SPECIES: labels Al and Al1 alike; Al1 and Al2 with byte-identical pseudopotentials under
+    two file names (pw.x prints the same MD5 for both); Al1 and Al2 of masses 26.98 and 28.00.
+    spglib by element calls the end P4/nmm, by the two labels P4mm (called directly). A regression
+    review found 'Al'/'Al1' kept apart (the label Al matched the element in other header lines);
+    alike labels are now one type by their table rows and the pseudopotential's checksum, and the
+    labels of other masses stay apart, as pw.x computes them."""
+    import spglib
+    from driftwatch import analyze
+    for case, apart in (("prefix", False), ("copyfile", False), ("mass", True)):
+        d = TRIALS / f"al2_labels_{case}"
+        text = gzip.open(d / "pw.out.gz", "rt").read()
+        md5 = re.findall(r"MD5 check sum: (\S+)", text)
+        assert len(md5) == 2 and (md5[0] == md5[1])                              # pw.x's
+        run = read_run(d)
+        frac = np.linalg.solve(run.cells[-1].T, run.positions[-1].T).T
+        by_element = spglib.get_symmetry_dataset((run.cells[-1], frac, [13, 13]), 1e-3).number
+        by_label = spglib.get_symmetry_dataset((run.cells[-1], frac, [1, 2]), 1e-3).number
+        assert (by_element, by_label) == (129, 99)
+        got = analyze(d)["summary"]["verdict"]["structure"]["final"]["group"]
+        assert (run.species is not None) == apart and got == (by_label if apart else by_element)

@@ -209,8 +209,9 @@ def _species(header, numbers, ctx=None) -> tuple | None:
 
 
 def _species_settings(header, labels) -> dict | None:
-    """{label: the header's lines about it, the label blanked} with its pseudopotential file and
-    checksum; None when the run has settings per species that are not all printed per label
+    """{label: the rows of the header's species tables that start with it (valence, mass,
+    pseudopotential's element; starting magnetisation), with its pseudopotential file and
+    checksum}; None when the run has settings per species that are not all printed per label
     (DFT+U, noncollinear magnetism): then no two labels are taken as alike."""
     text = "\n".join(header)
     if re.search(r"(?i)hubbard|lda\+u|dft\+u|noncollinear|spin-orbit", text):
@@ -221,13 +222,12 @@ def _species_settings(header, labels) -> dict | None:
     for i, ln in enumerate(header):
         m = re.match(r"^\s*PseudoPot\. #\s*(\d+) for", ln)
         if m:
-            k = int(m.group(1)) - 1
-            pseudo[k] = tuple(x.strip() for x in header[i + 1:i + 3])
+            k = int(m.group(1)) - 1            # its checksum, else its file name
+            got = [x.strip() for x in header[i + 1:i + 3]]
+            pseudo[k] = next((x for x in got if x.startswith("MD5")), got[0] if got else None)
     out = {}
-    for label in set(labels):
-        word = re.compile(rf"(?<![\w.]){re.escape(label)}(?![\w.])")
-        lines = tuple(word.sub("*", ln).strip() for ln in header
-                      if word.search(ln) and not _SITE.match(ln))
+    for label in set(labels):            # the rows of the header's tables that start with it
+        lines = tuple(tuple(ln.split()[1:]) for ln in header if ln.split()[:1] == [label])
         k = order.index(label) if label in order else None
         out[label] = (lines, pseudo.get(k) if k is not None else None)
     return out
