@@ -154,10 +154,11 @@ def freeze_inputs(inputs, digests: FileDigests) -> list | None:
                 out.append(["folder", str(path), stamp])
                 continue
             if kind == "part":
-                base, fmt, keys, name = path
+                base, fmt, keys, name, when_read = path
                 now, digest = digests.stamp_digest(base)
                 part = _part_digest(base, fmt, keys, name) if now == list(stamp or ()) else None
-                if digest is None or part is None or digests.stamp_digest(base)[0] != now:
+                if digest is None or part is None or digests.stamp_digest(base)[0] != now or \
+                        when_read not in (None, part):       # (WAL mode: rows changed since)
                     return None
                 out.append(["part", [str(base), fmt, list(keys), name, digest], part])
                 continue

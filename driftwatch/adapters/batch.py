@@ -300,8 +300,9 @@ def _memo_key(kind, path, keys):
     stamp = file_stamp(path)
     if stamp is None:
         return None
-    wal = file_stamp(wal_of(path)) if "db" in kind else None     # an ase.db in WAL mode
-    return kind, str(path), tuple(stamp), tuple(wal or ()), tuple(keys)
+    wal = file_stamp(wal_of(path)) if "db" in kind else None     # an ase.db in WAL mode: its
+    return kind, str(path), tuple(stamp), tuple((wal or [])[:2]), tuple(keys)  # size and mtime
+                                                        # (a reader touches the log's ctime)
 
 
 def wal_of(path) -> str:

@@ -739,12 +739,12 @@ def _stream(fmt_name: str, source, ctx: ReadContext) -> Iterator[Frame]:
     fmt = _formats[fmt_name]
     base, name = _batch_split(str(source))
     if name is not None and fmt_name in PART_FORMATS and Path(base).exists():
-        ctx.part(base, fmt_name, name)
+        ctx.part(base, fmt_name, name)     # (WAL mode: the structure's rows say, through SQLite)
     else:
         base = base.rpartition("@")[0] if not Path(base).exists() and "@" in base else base
         ctx.uses(base)
-    if fmt_name == "ase-db" and os.path.exists(wal_of(base)):   # WAL mode: rows in its log
-        ctx.uses(wal_of(base))
+        if fmt_name == "ase-db" and os.path.exists(wal_of(base)):   # WAL mode: rows in its log
+            ctx.uses(wal_of(base))
     n = 0
     last = None
     try:

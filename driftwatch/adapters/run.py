@@ -311,18 +311,24 @@ class ReadContext:
 
     def part(self, path, fmt: str, name: str) -> None:
         """Record that the read depends only on structure ``name`` of the many-structure file
-        ``path`` (a format of :data:`~driftwatch.adapters.batch.PART_FORMATS`), not on the rest."""
+        ``path`` (a format of :data:`~driftwatch.adapters.batch.PART_FORMATS`), not on the rest.
+        An ase.db in WAL mode (its log beside it), whose new rows leave the file's stamp alone, has
+        the structure's digest taken now, so that the cache can tell a change during the read."""
+        from .batch import member_digest, wal_of
         self.uses(path)
-        self.parts[str(path)] = (fmt, name)
+        now = None
+        if os.path.exists(wal_of(path)):
+            now = member_digest(path, fmt, tuple(self.structure_keys), name)
+        self.parts[str(path)] = (fmt, name, now)
 
     def inputs(self) -> tuple:
         """``(kind, path, stamp)`` of every input: ``("file", path, stamp)``, ``("folder", path,
         listing digest)`` and, for one structure of a many-structure file, ``("part", (path,
-        format, structure keys, name), stamp)``."""
+        format, structure keys, name, its digest when read or None), stamp)``."""
         def file(p, s):
             if p in self.parts:
-                fmt, name = self.parts[p]
-                return "part", (p, fmt, tuple(self.structure_keys), name), s
+                fmt, name, now = self.parts[p]
+                return "part", (p, fmt, tuple(self.structure_keys), name, now), s
             return "file", p, s
         return tuple([file(p, s) for p, s in sorted(self.files.items())]
                      + [("folder", p, s) for p, s in sorted(self.folders.items())])
