@@ -1108,10 +1108,11 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     if len(shown) < len(rows):
         print(f"({len(rows) - len(shown)} runs that kept their symmetry, with no flag or only "
               f"{' or '.join(_TOLERANCE_FLAGS)}, not shown: see campaign.csv)", file=stream)
-    if any(r[2].endswith("*") for r in shown):
-        print("* unfinished: cut short, damaged, or stopped at its step or time limit, on "
-              "request, on a code error or without converging; the verdict compares the first "
-              "frame with a structure that is not a relaxed one", file=stream)
+    if any("*" in r[2] for r in shown):
+        print("* unfinished: cut short, damaged or unreadable after a step, or stopped at its "
+              "step or time limit, on request, on a code error or without converging; the "
+              "verdict compares the first frame with a structure that is not a relaxed one",
+              file=stream)
     if any("~" in r[2] for r in shown):
         print("~ no relaxation (molecular dynamics, a single point or structure, a band image: "
               "column not_relaxation of campaign.csv): the verdict compares the first and last "
@@ -1141,7 +1142,8 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
               f"of campaign.csv): their verdicts compare how the structure moved from the first "
               f"frame to the last, not where a relaxation ended", file=stream)
     if summary.get("unfinished"):
-        why = Counter(x["why"].split(" (")[0].split(":")[0] for x in summary["unfinished"])
+        why = Counter(re.sub(r" after step -?\d+$", "", x["why"].split(" (")[0].split(":")[0])
+                      for x in summary["unfinished"])
         print(f"unfinished: {_runs(len(summary['unfinished']))} ("
               f"{', '.join(f'{k} {v}' for k, v in sorted(why.items()))}; column unfinished of "
               f"campaign.csv): their final structures are not relaxed ones", file=stream)

@@ -1059,3 +1059,21 @@ def test_the_blow_up_rule_counts_atoms_held_in_part_as_moving(tmp_path):
     e[-4:] = e[-4] + np.array([0.0, 0.1, 0.2, 0.3])
     said = track._energy_jumps(dataclasses.replace(run, energies=e))
     assert said and "(0.1 eV/moving atom)" in said[0]
+
+
+def test_an_unfinished_run_read_as_one_frame_keeps_both_marks_explained(tmp_path):
+    """pymatgen's genuine XDATCAR whose line 17 runs two numbers together: one frame is read and
+    the run is unfinished ('unreadable after step 0'), marked '*='. A regression review found the
+    '*' footnote dropped (it looked for rows ending in '*') and the summary counting 'unreadable
+    after step 0' as its own kind; both now read right."""
+    src = MORE / "xdatcar_fused" / "XDATCAR.gz"
+    camp = tmp_path / "camp" / "job"
+    camp.mkdir(parents=True)
+    (camp / "XDATCAR.gz").write_bytes(src.read_bytes())
+    r = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp.parent), "-o",
+                        str(tmp_path / "out"), "--progress", "off"], capture_output=True, text=True)
+    row = next(ln for ln in r.stdout.splitlines() if "job" in ln)
+    assert " kept*= " in row, r.stdout
+    assert "* unfinished: cut short, damaged or unreadable after a step" in r.stdout
+    assert "= one frame read" in r.stdout
+    assert "(unreadable 1; column unfinished of campaign.csv)" in r.stdout
