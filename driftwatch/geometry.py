@@ -194,7 +194,7 @@ def _beside(value: float, limit: float) -> str:
     for d in (2, 4, 6, 8):
         if f"{value:.{d}f}" != f"{limit:.{d}f}":
             return f"{value:.{d}f}"
-    return f"{value:.10g}"
+    return repr(float(value))
 
 
 def bulk_gap(gaps) -> float:

@@ -433,8 +433,9 @@ def test_cell_dofree_2dxy_on_a_bulk_cell_says_the_third_vector_was_held():
     rec = analyze(d)
     assert rec["geometry"]["dimension"] == 3
     assert rec["summary"]["cell_held"] == (
-        "pw.x's cell_dofree = '2Dxy' moved only the in-plane cell vectors a and b (the third held, "
-        "as for a layer); the lattice verdict does not test what the code held")
+        "pw.x's cell_dofree = '2Dxy' moved only the x and y components of the cell vectors a and "
+        "b (the third vector and their z components held, as for a layer); the lattice verdict "
+        "does not test what the code held")
     layer = analyze(Path(__file__).parents[1] / "example_runs" / "L01_qe_vcrelax")
     assert layer["geometry"]["dimension"] == 2 and layer["summary"]["cell_held"] is None
 

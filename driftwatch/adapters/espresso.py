@@ -1252,9 +1252,10 @@ _DOFREE_HELD = {
 
 
 _DOFREE_HELD_IN_BULK = {      # a layer's settings: for a layer they hold only the vacuum vector
-    "2dxy": "moved only the in-plane cell vectors a and b (the third held, as for a layer)",
-    "2dshape": "moved only the shape of the cell vectors a and b at a fixed area (the third held, "
-               "as for a layer)",
+    "2dxy": "moved only the x and y components of the cell vectors a and b (the third vector "
+            "and their z components held, as for a layer)",
+    "2dshape": "moved only the x and y components of the cell vectors a and b, at a fixed area "
+               "(the third vector and their z components held, as for a layer)",
 }
 
 
