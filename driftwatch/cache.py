@@ -15,8 +15,8 @@ version writes (even valid JSON of the right schema) is a miss.
 File digests are memoised in ``OUTPUT/.cache/digests.json`` on (size, mtime, ctime, inode): the
 ctime cannot be set back by user tools, so an unchanged stat means unchanged bytes and a re-audit of
 a large campaign does not re-read every file (except a file changed within :data:`RACY_NS` before
-it was hashed, whose digest is not saved: timestamps advance in ticks). Entries are written atomically; a corrupt or foreign
-entry is ignored (and recomputed).
+it was hashed, whose digest is not saved: timestamps advance in ticks). Entries are written
+atomically; a corrupt or foreign entry is ignored (and recomputed).
 """
 
 from __future__ import annotations

@@ -432,8 +432,8 @@ fixed cell only lowers its energy; an optimiser's uphill step is one step and me
 practice)."""
 ENERGY_JUMP = 1.0
 """eV per atom (per moving atom when the code's constraints hold some): how far above the lowest
-energy it reached a relaxation may end before that is said as a likely blow-up (a relaxation's energy changes by meV to 0.1 eV/atom a step; common
-practice)."""
+energy it reached a relaxation may end before that is said as a likely blow-up (a relaxation's
+energy changes by meV to 0.1 eV/atom a step; common practice)."""
 
 
 def _energy_jumps(run: Run) -> list[str]:

@@ -803,19 +803,10 @@ def test_a_selection_is_not_audited_into_a_folder_whose_audit_holds_runs_it_leav
     assert s["runs"] == 1 and len(ase.db.connect(out / "runs.db")) == 1
 
 
-def test_runs_read_by_an_interrupted_audit_are_said_read_again_by_the_next(tmp_path, monkeypatch):
-    """An audit interrupted after its runs were analysed (Ctrl-C, a batch system's SIGTERM while
-    the tables are written) leaves their records and cache entries, and the marker of the last
-    complete audit. The next audit reads them from the cache; it had said "0 read again" of a run
-    whose file and answer changed since the last summary the user saw. The interruption is
-    raised where the tables are written (the state a real SIGINT there leaves)."""
+def _audit_after_an_interrupted_one(camp, out, monkeypatch):
+    """The summary of an audit after one interrupted where the tables are written (the state a
+    real SIGINT there leaves)."""
     import driftwatch.campaign as campaign
-    camp = make_campaign(tmp_path, qe=False)
-    out = tmp_path / "out"
-    run_audit([camp], out)
-    changed = camp / "layers" / "L-obl.traj"
-    other = next(p for p in sorted(camp.rglob("*.traj")) if p != changed)
-    changed.write_bytes(other.read_bytes())             # the run re-relaxed in place, say
 
     def interrupted(*args, **kwargs):
         raise KeyboardInterrupt
@@ -823,7 +814,23 @@ def test_runs_read_by_an_interrupted_audit_are_said_read_again_by_the_next(tmp_p
         m.setattr(campaign, "_write_tables", interrupted)
         with pytest.raises(KeyboardInterrupt):
             run_audit([camp], out)
-    again = run_audit([camp], out)
+    return run_audit([camp], out)
+
+
+def test_runs_read_by_an_interrupted_audit_are_said_read_again_by_the_next(tmp_path, monkeypatch):
+    """An audit interrupted after its runs were analysed (Ctrl-C, a batch system's SIGTERM while
+    the tables are written) leaves their records and cache entries, and the marker of the last
+    complete audit. The next audit reads them from the cache; it had said "0 read again" of a run
+    whose file and answer changed since the last summary the user saw. The interruption is
+    raised where the tables are written (the state a real SIGINT there leaves)."""
+    camp = make_campaign(tmp_path, qe=False)
+    out = tmp_path / "out"
+    run_audit([camp], out)
+    changed = camp / "layers" / "L-obl.traj"
+    other = next(p for p in sorted(camp.rglob("*.traj")) if p != changed)
+    changed.write_bytes(other.read_bytes())             # the run re-relaxed in place, say
+
+    again = _audit_after_an_interrupted_one(camp, out, monkeypatch)
     assert again["cached"] == again["runs"]                # every run from the cache
     assert again["since_last"] == {"new": [], "gone": [], "read_again": ["camp/layers/L-obl.traj"]}
     assert run_audit([camp], out)["since_last"]["read_again"] == []
@@ -836,7 +843,6 @@ def test_a_run_whose_file_changed_but_not_its_answer_is_read_again_after_an_inte
     from the cache next time, and is still said read again, by its inputs (real SQLite through
     ase.db, the batch of real EMT relaxations)."""
     import ase.db
-    import driftwatch.campaign as campaign
     camp = tmp_path / "camp"
     camp.mkdir()
     shutil.copy(Path(__file__).parent / "data" / "batch" / "relaxations.db", camp)
@@ -846,13 +852,7 @@ def test_a_run_whose_file_changed_but_not_its_answer_is_read_again_after_an_inte
         last = max(db.select(relax_id="Al-fco-02"), key=lambda r: r.step)
         db.update(last.id, checked=1)
 
-    def interrupted(*args, **kwargs):
-        raise KeyboardInterrupt
-    with monkeypatch.context() as m:
-        m.setattr(campaign, "_write_tables", interrupted)
-        with pytest.raises(KeyboardInterrupt):
-            run_audit([camp], out)
-    again = run_audit([camp], out)
+    again = _audit_after_an_interrupted_one(camp, out, monkeypatch)
     assert again["cached"] == again["runs"] == 6
     assert again["since_last"]["read_again"] == ["camp/relaxations.db::Al-fco-02"]
     assert run_audit([camp], out)["since_last"]["read_again"] == []

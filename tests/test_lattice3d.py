@@ -797,7 +797,7 @@ def test_a_lattice_of_each_type_in_any_orientation_and_basis_is_at_distance_zero
             assert all(dist[x] > 1e-3 for x in above), (t, j)
 
 
-_GENERAL = {   # the types each type specialises (a lattice of t is also one of these), Bravais graph
+_GENERAL = {   # the types each type specialises (a lattice of t is also one of these)
     "cP": {"tP", "hR", "oP", "oS", "mP", "mS"}, "cF": {"tI", "hR", "oF", "oI", "mS"},
     "cI": {"tI", "hR", "oF", "oI", "mS"}, "tP": {"oP", "oS", "mP", "mS"},
     "tI": {"oF", "oI", "mS"}, "oP": {"mP"}, "oF": {"mS"}, "oI": {"mS"}, "oS": {"mP", "mS"},

@@ -763,7 +763,8 @@ def test_a_live_visit_counts_as_passed_through_once_the_departure_held():
         for k in range(1, len(rec["frames"]) + 1):
             part = copy.deepcopy(rec)
             part["frames"] = part["frames"][:k]
-            if any(f["code"] == "passed-through" for f in rules.judge(part, cfg, complete=False)[0]):
+            flags = rules.judge(part, cfg, complete=False)[0]
+            if any(f["code"] == "passed-through" for f in flags):
                 out.append(k - 1)
         return out
     assert passed_at(10) == []              # the 4 steps away never held for 10

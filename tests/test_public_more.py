@@ -998,7 +998,6 @@ def test_a_relaxation_read_as_one_frame_is_marked_in_the_audit_table(tmp_path):
     iterations; ASE's reader (called directly) returns one structure, the last. Nothing is
     compared, so its 'kept' had stood unmarked in the audit table beside real verdicts; it is now
     marked '=' and footnoted, and its warning says how many steps were not seen."""
-    from driftwatch.campaign import audit
     src = MORE / "castep_nomad_tio2_dmd" / "TiO2-geom.castep.gz"
     text = gzip.open(src, "rt").read()
     assert len(re.findall(r"DMD: finished iteration", text)) == 23                  # CASTEP's

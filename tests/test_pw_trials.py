@@ -397,7 +397,8 @@ def test_a_tetragonal_cell_near_cubic_is_nearest_to_cp_not_hr():
     rec = analyze(d)
     f0 = rec["frames"][0]["deformation"]
     assert abs(f0["hR"] - f0["cP"]) < 1e-9 * f0["cP"]
-    assert rec["summary"]["initial"]["type"] == "tP" and rec["summary"]["initial"]["nearest"] == "cP"
+    initial = rec["summary"]["initial"]
+    assert initial["type"] == "tP" and initial["nearest"] == "cP"
 
 
 def test_a_group_changed_to_its_own_type_along_other_axes_says_so():

@@ -213,7 +213,8 @@ def _members(path, rows, keys, kind) -> Index:
 def extxyz_frames(path):
     """``(frame number, comment line, first line number, lines)`` of every complete frame, then,
     for a file that ends abnormally, ``(None, frames read, "frame" | "line", lines read of the cut
-    frame | None)``: it ends inside a frame, or its last line is cut. Frame headers are checked (atom count 1..MAX_ATOMS)."""
+    frame | None)``: it ends inside a frame, or its last line is cut. Frame headers are checked
+    (atom count 1..MAX_ATOMS)."""
     from ._io import Lines
     from .ase_native import MAX_ATOMS
     n = 0

@@ -648,7 +648,8 @@ def _cell_row(line: str) -> list[float]:
 
 def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
     """Yield (cell, positions, forces, stress|None, free_energy, decimals, electronic steps|None,
-    force field) per completed ionic step (the electronic steps: the last ``Iteration  i(  n)`` line's n).
+    force field) per completed ionic step (the electronic steps: the last ``Iteration  i(  n)``
+    line's n).
 
     ``fd`` is a ``Lines`` after the header: the scanner jumps between the lines it reads
     (``Lines.skip_to``), so the ~10^2-10^4 lines of a step's electronic iterations are never
@@ -668,7 +669,8 @@ def _scan_outcar_steps(fd: "_WatchedLines", natoms, state: dict | None = None):
     ENERGIE`` delimiter for every step (the last tuple item True), and a first-principles block
     after it where it ran an SCF; with ``state["nwrite"] == 0`` a step printed with no structure
     yields None. The layout is decided on the first step (no POSITION block before its delimiter:
-    energy-first) and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (a block cut by
+    energy-first) and put in ``state["layout"]``. Raises ``_ScanStopped`` on anything unusual (a
+    block cut by
     the delimiter, a marker among the 4 lines after it, text where numbers belong; in the "ase"
     layout ASE's parser then reads that step).
     """

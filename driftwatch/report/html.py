@@ -671,8 +671,9 @@ def _warnings_section(rec):
 
 
 _CAPTIONS = {
-    "layer_map": "Path of the layer's 2D lattice on the projected-invariant map, one point per ionic step "
-           "(colour: step), start circled, end starred. Horizontal axis: sign × x, vertical: y, with "
+    "layer_map": "Path of the layer's 2D lattice on the projected-invariant map, one point per "
+           "ionic step (colour: step), start circled, end starred. Horizontal axis: sign × x, "
+           "vertical: y, with "
            "(x, y) = ((r02 − r01)/s, 3 r12/s), s = r12 + r01 + r02. The right half holds lattices of "
            "sign +1, the left half their mirror images (sign −1), both seen from the viewing side. "
            "Boundaries are where the sign is 0: the bottom edge is rectangular (op), the vertical "
