@@ -1582,8 +1582,8 @@ def test_runs_that_ended_before_the_code_finished_are_unfinished(tmp_path):
     assert ("unfinished: 3 runs (cut short 1, stopped at its step limit 1, stopped on request 1; "
             "column unfinished of campaign.csv): their final structures are not relaxed ones"
             ) in proc.stdout
-    assert "* unfinished: cut short, damaged, or stopped at its step or time limit, on " \
-        "request, on a code error or without converging;" in proc.stdout
+    assert "* unfinished: cut short, damaged or unreadable after a step, or stopped at its " \
+        "step or time limit, on request, on a code error or without converging;" in proc.stdout
     rows = {ln.split()[0]: ln.split()[2] for ln in proc.stdout.splitlines() if ln.startswith("camp/")}
     assert rows["camp/cut"].endswith("*") and rows["camp/nelm"].endswith("*")
     assert not rows["camp/done"].endswith("*") and "* unfinished:" in proc.stdout
