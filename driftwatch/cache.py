@@ -157,8 +157,10 @@ def freeze_inputs(inputs, digests: FileDigests) -> list | None:
                 base, fmt, keys, name, when_read = path
                 now, digest = digests.stamp_digest(base)
                 part = _part_digest(base, fmt, keys, name) if now == list(stamp or ()) else None
+                from .adapters.batch import wal_of
+                log = os.path.exists(wal_of(base))   # WAL mode: rows changed since the read?
                 if digest is None or part is None or digests.stamp_digest(base)[0] != now or \
-                        when_read not in (None, part):       # (WAL mode: rows changed since)
+                        when_read != part and (log or when_read is not None):
                     return None
                 out.append(["part", [str(base), fmt, list(keys), name, digest], part])
                 continue
@@ -191,13 +193,14 @@ def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
              and item[0] == "part" and isinstance(item[1], list) and item[1]}
     listed = {item[1] for item in inputs if isinstance(item, list) and len(item) == 3
               and isinstance(item[1], str)}
+    logs = {wal_of(b) for b in parts}
     for item in inputs:
         if isinstance(item, list) and len(item) == 3 and item[0] == "part":
             if not _part_unchanged(item, digests):
                 return False
             continue
         if isinstance(item, list) and len(item) == 3 and item[0] == "file" and \
-                item[1] in {wal_of(b) for b in parts}:
+                item[1] in logs:
             continue                  # a structure's rows in the log: its part says (SQLite)
         if isinstance(item, list) and len(item) == 3 and item[0] == "file" and \
                 isinstance(item[1], str) and wal_of(item[1]) not in listed and \

@@ -168,7 +168,7 @@ _SITE = re.compile(r"^\s*\d+\s+(\S+)\s+tau\(")
 def _species(header, numbers, ctx=None) -> tuple | None:
     """The header's species label of each atom ("3  Fe1  tau( 3) = ...") when the run tells atoms
     of one element apart (two labels of one element: Fe1 and Fe2), else None. Labels whose
-    settings the header prints alike (pseudopotential file and checksum, valence, mass, starting
+    settings the header prints alike (the pseudopotential's checksum, valence, mass, starting
     magnetisation) are one species here: pw.x keeps them apart in its symmetry search, but the
     structure it computes does not (with DFT+U or a noncollinear run they stay apart: those
     settings are not all compared). Said in a warning (``ctx``) either way."""
@@ -210,8 +210,8 @@ def _species(header, numbers, ctx=None) -> tuple | None:
 
 def _species_settings(header, labels) -> dict | None:
     """{label: the rows of the header's species tables that start with it (valence, mass,
-    pseudopotential's element; starting magnetisation), with its pseudopotential file and
-    checksum}; None when the run has settings per species that are not all printed per label
+    pseudopotential's element; starting magnetisation), with its pseudopotential's checksum, or
+    file name when none is printed}; None when the run has settings per species that are not all printed per label
     (DFT+U, noncollinear magnetism): then no two labels are taken as alike."""
     text = "\n".join(header)
     if re.search(r"(?i)hubbard|lda\+u|dft\+u|noncollinear|spin-orbit", text):

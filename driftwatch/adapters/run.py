@@ -314,11 +314,16 @@ class ReadContext:
         ``path`` (a format of :data:`~driftwatch.adapters.batch.PART_FORMATS`), not on the rest.
         An ase.db in WAL mode (its log beside it), whose new rows leave the file's stamp alone, has
         the structure's digest taken now, so that the cache can tell a change during the read."""
+        import sqlite3
+
         from .batch import member_digest, wal_of
         self.uses(path)
         now = None
         if os.path.exists(wal_of(path)):
-            now = member_digest(path, fmt, tuple(self.structure_keys), name)
+            try:
+                now = member_digest(path, fmt, tuple(self.structure_keys), name)
+            except (sqlite3.Error, OSError, ValueError):     # the reader says what is wrong
+                now = None
         self.parts[str(path)] = (fmt, name, now)
 
     def inputs(self) -> tuple:
