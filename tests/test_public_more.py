@@ -1011,6 +1011,8 @@ def test_a_relaxation_read_as_one_frame_is_marked_in_the_audit_table(tmp_path):
     row = next(ln for ln in r.stdout.splitlines() if "TiO2-geom.castep" in ln)
     assert " kept= " in row
     assert "= one frame read (column n_frames; its warnings say why)" in r.stdout
+    index = (tmp_path / "out" / "report" / "index.html").read_text(encoding="utf-8")
+    assert "one frame: nothing compared" in index                 # the same fact, one name
 
 
 def test_a_castep_file_whose_appended_run_is_cut_says_asees_reason():

@@ -836,10 +836,10 @@ def _index_page(runs, bad, failed, campaign) -> str:
     ] + ([("not relaxations", f"{n_moving} <span class=\"muted\">(molecular dynamics, band "
                                "images, ...: their verdicts compare how the structure moved "
                                "from the first frame to the last)</span>")] if n_moving else [])
-      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short, damaged, or "
-                          "stopped at their step or time limit, on request, on a code error or "
-                          "without converging: their final structures are not relaxed "
-                          "ones)</span>")]
+      + ([("unfinished", f"{n_unfinished} <span class=\"muted\">(cut short, damaged or "
+                          "unreadable after a step, or stopped at their step or time limit, on "
+                          "request, on a code error or without converging: their final "
+                          "structures are not relaxed ones)</span>")]
          if n_unfinished else [])
       + ([("copies (runs that read the same frames)",
            "<br>".join(e(_copies_text(g)) for g in campaign["copies"][:10])
@@ -1015,7 +1015,10 @@ def _runs_table(runs, failed=(), skipped=()):
             + (f'<br><span class="muted" title="{e(r["not_relaxation"])}">not a relaxation</span>'
                if r.get("not_relaxation") else "")
             + (f'<br><span class="muted" title="{e(r["unfinished"])}">unfinished</span>'
-               if r.get("unfinished") else "") + "</td>"
+               if r.get("unfinished") else "")
+            + ('<br><span class="muted" title="its reader gave one structure: the run\'s '
+               'warnings say why">one frame: nothing compared</span>'
+               if r.get("n_frames") == 1 else "") + "</td>"
             f"<td class=\"nowrap\" data-v=\"{e(v['lattice_initial'])} {e(v['lattice_final'])}\">"
             f"{e(v['lattice_initial'])} → <b>{e(v['lattice_final'])}</b></td>"
             f"<td>{e(v['drift_type'] or '')}</td>{_td_num(v['drift_initial'], 'Å')}"
