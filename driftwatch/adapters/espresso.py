@@ -211,8 +211,8 @@ def _species(header, numbers, ctx=None) -> tuple | None:
 def _species_settings(header, labels) -> dict | None:
     """{label: the rows of the header's species tables that start with it (valence, mass,
     pseudopotential's element; starting magnetisation), with its pseudopotential's checksum, or
-    file name when none is printed}; None when the run has settings per species that are not all printed per label
-    (DFT+U, noncollinear magnetism): then no two labels are taken as alike."""
+    file name when none is printed}; None when the run has settings per species that are not all
+    printed per label (DFT+U, noncollinear magnetism): then no two labels are taken as alike."""
     text = "\n".join(header)
     if re.search(r"(?i)hubbard|lda\+u|dft\+u|noncollinear|spin-orbit", text):
         return None
