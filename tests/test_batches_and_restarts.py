@@ -408,8 +408,9 @@ def test_structure_keys_are_configurable_and_bad_batches_are_one_line_errors(tmp
     # which setting reads it as its relaxations
     other = tmp_path / "other.extxyz"
     other.write_text(text.replace("structure_id=", "label="))
-    with pytest.raises(InputError, match=r"add it to the config's inputs.structure_keys"):
+    with pytest.raises(InputError, match=r"add it to the config's inputs.structure_keys") as exc:
         read_run(other)
+    assert "keys whose value changes between frames: label (6 values)" in str(exc.value)
     with pytest.raises(InputError, match=r"holds \d+ structures named by 'label'"):
         read_run(other, structure_keys=["label"])
     # a file naming no structures is one run, as before; asking it for a name says so

@@ -118,13 +118,25 @@ class Index:
                     what = f"structure {name!r}" if name is not None else "the file"
                     hint = "" if name is not None else (
                         f"; if a key of the {self.kind}s names their structure, add it to the "
-                        f"config's inputs.structure_keys (none of those keys is in the file)")
+                        f"config's inputs.structure_keys (none of those keys is in the file"
+                        f"{self._varying()})")
                     raise InputError(self.path, f"{what} has two {self.kind}s of step {m.step} "
                                                 f"({self.kind}s {seen[m.step]} and {m.pos}): two "
                                                 f"relaxations under one name?{hint}")
                 seen[m.step] = m.pos
             chosen = sorted(chosen, key=lambda m: m.step)
         return chosen, "trajectory"
+
+    def _varying(self) -> str:
+        """'; keys whose value changes: ...' of an extended XYZ file (or "")."""
+        if self.kind != "frame":
+            return ""
+        try:
+            keys = varying_keys(self.path)[:4]
+        except (InputError, OSError):
+            return ""
+        return ("; keys whose value changes between frames: "
+                + ", ".join(f"{k} ({n} values)" for k, n in keys)) if keys else ""
 
     def refuse_many(self):
         """The one-line error for reading a many-structure file as one run."""
