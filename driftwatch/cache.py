@@ -144,6 +144,7 @@ def freeze_inputs(inputs, digests: FileDigests) -> list | None:
     """The cache's form of ``Run.inputs`` (``[kind, path, stamp]`` recorded while reading):
     ``[kind, path, sha256 | None]``. None (do not cache) when a file is not what the reader saw:
     it changed, appeared or vanished since it was read, or cannot be read now."""
+    from .adapters.batch import wal_of
     from .adapters.run import folder_listing
     out = []
     try:
@@ -157,7 +158,6 @@ def freeze_inputs(inputs, digests: FileDigests) -> list | None:
                 base, fmt, keys, name, when_read = path
                 now, digest = digests.stamp_digest(base)
                 part = _part_digest(base, fmt, keys, name) if now == list(stamp or ()) else None
-                from .adapters.batch import wal_of
                 log = os.path.exists(wal_of(base))   # WAL mode: rows changed since the read?
                 if digest is None or part is None or digests.stamp_digest(base)[0] != now or \
                         when_read != part and (log or when_read is not None):
@@ -189,27 +189,19 @@ def _inputs_unchanged(inputs, digests: FileDigests) -> bool:
     if not isinstance(inputs, list) or not inputs:
         return False
     from .adapters.batch import wal_of
-    parts = {item[1][0] for item in inputs if isinstance(item, list) and len(item) == 3
-             and item[0] == "part" and isinstance(item[1], list) and item[1]}
     listed = {item[1] for item in inputs if isinstance(item, list) and len(item) == 3
               and isinstance(item[1], str)}
-    logs = {wal_of(b) for b in parts}
     for item in inputs:
         if isinstance(item, list) and len(item) == 3 and item[0] == "part":
             if not _part_unchanged(item, digests):
                 return False
             continue
-        if isinstance(item, list) and len(item) == 3 and item[0] == "file" and \
-                item[1] in logs:
-            continue                  # a structure's rows in the log: its part says (SQLite)
-        if isinstance(item, list) and len(item) == 3 and item[0] == "file" and \
-                isinstance(item[1], str) and wal_of(item[1]) not in listed and \
-                os.path.exists(wal_of(item[1])):
-            return False              # an SQLite file now in WAL mode: its bytes may not say
         if not (isinstance(item, list) and len(item) == 3 and item[0] in ("file", "folder")
                 and isinstance(item[1], str) and (item[2] is None or _is_digest(item[2]))):
             return False
         kind, path, want = item
+        if kind == "file" and wal_of(path) not in listed and os.path.exists(wal_of(path)):
+            return False              # an SQLite file now in WAL mode: its bytes may not say
         try:
             have = folder_listing(path) if kind == "folder" else digests.digest(path)
         except OSError:

@@ -818,8 +818,8 @@ def _rows(x, table, n, reduce):
 
 
 def _angle(c, s):
-    """Pair angle coordinate a (Å) from |dot product| c (Å^2) and s = sqrt(l_x l_y) (Å): s x arcsin
-    of |cos| = c / s^2 on [0, 1/2], continued linearly (slope 2/sqrt3) above."""
+    """Pair angle coordinate a (Å) from |dot product| c (Å^2) and s = sqrt(l_x l_y) (Å):
+    s x arcsin of |cos| = c / s^2 on [0, 1/2], continued linearly (slope 2/sqrt3) above."""
     t = c / (s * s)
     return (np.arcsin(np.minimum(t, 0.5)) + np.maximum(t - 0.5, 0.0) * (2 / np.sqrt(3))) * s
 

@@ -451,14 +451,17 @@ def member_digest(path, fmt: str, keys, name: str) -> str | None:
 def _member_digests(path, fmt: str, keys: tuple) -> dict:
     import hashlib
     import json
-    index = index_extxyz(path, keys) if fmt == "extxyz" else index_db(path, keys)
+    index, kept = index_extxyz(path, keys, keep_lines=True) if fmt == "extxyz" else \
+        (index_db(path, keys), None)
     if index.key is None:
         return {}
     of = {m.pos: m.name for m in index.members}
     hashes = {name: hashlib.sha256() for name in index.names()}
-    if fmt == "extxyz":
+    if fmt == "extxyz":                 # the frames' lines the index kept, else a second pass
+        frames = ((n, b) for n, (_, b) in kept.items()) if kept is not None else \
+            ((n, b) for n, _, _, b in extxyz_frames(path))
         try:
-            for n, _, _, block in extxyz_frames(path):
+            for n, block in frames:
                 if n is None or n not in of:             # (the index stopped at a damage)
                     break
                 hashes[of[n]].update(f"{n}\n".encode() + "".join(block).encode())
@@ -471,11 +474,10 @@ def _member_digests(path, fmt: str, keys: tuple) -> dict:
                 for v in row:
                     h.update(v if isinstance(v, bytes) else repr(v).encode())
                     h.update(b"\0")
-    cut_here = getattr(index, "cut_name", None)
     out = {}
     for name, h in hashes.items():
-        cut = index.cut if cut_here is None or cut_here == name else None
-        h.update(json.dumps([index.key, cut, getattr(index, "damaged", None)]).encode())
+        cut = index.cut if index.cut_name in (None, name) else None
+        h.update(json.dumps([index.key, cut, index.damaged]).encode())
         out[name] = h.hexdigest()
     return out
 

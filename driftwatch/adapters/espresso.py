@@ -172,6 +172,7 @@ def _species(header, numbers, ctx=None) -> tuple | None:
     magnetisation) are one species here: pw.x keeps them apart in its symmetry search, but the
     structure it computes does not (with DFT+U or a noncollinear run they stay apart: those
     settings are not all compared). Said in a warning (``ctx``) either way."""
+    from ase.data import chemical_symbols
     labels = [m.group(1) for ln in header if (m := _SITE.match(ln))]
     if len(labels) != len(numbers):
         return None
@@ -189,7 +190,6 @@ def _species(header, numbers, ctx=None) -> tuple | None:
                 alike[label] = next(k for k in ls if sig[k] == sig[label])
     same = sorted(k for k, v in alike.items() if v != k)
     out = tuple(alike.get(label, label) for label in labels)
-    from ase.data import chemical_symbols
     kept = {z: sorted({alike.get(k, k) for k in ls}) for z, ls in split.items()}
     apart = {z: ls for z, ls in kept.items() if len(ls) > 1}
     if ctx is not None and same:
