@@ -37,7 +37,7 @@ from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.registry import not_relaxation_note, run_kind
 from .adapters.run import (Frame, cell_jumps, collect, folder_listing, frame_from_atoms,
-                           note_fix_symmetry, position_precision)
+                           note_calculator, note_fix_symmetry, position_precision)
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
                      OutputError)
 
@@ -452,6 +452,7 @@ class SymmetryWatch:
             t = self._tracker
             note_fix_symmetry(self.atoms, t.code_settings,
                               lambda w: t.warnings.append(f"{t.source}: {w}"))
+            note_calculator(self.atoms, t.code_settings)
             if opt is not None:
                 self._note_dynamics(opt)
         self._calls += 1

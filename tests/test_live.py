@@ -152,7 +152,7 @@ def test_watch_names_the_dynamics_as_an_audit_of_its_trajectory_does(tmp_path):
     opt.run(fmax=1e-3, steps=30)
     watch.finish()
     assert watch.record["run"]["code_settings"] == analyze(traj, QUICK)["run"]["code_settings"] \
-        == {"code": "ase", "optimizer": "BFGS"}
+        == {"code": "ase", "optimizer": "BFGS", "calculator": "emt"}
     cu = bulk("Cu", "fcc", a=3.6, cubic=True)
     cu.rattle(0.05, seed=3)
     cu.calc = EMT()

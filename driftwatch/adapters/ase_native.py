@@ -15,7 +15,7 @@ import numpy as np
 
 from ..errors import InputError
 from ._io import Lines, strip_compression
-from .run import ReadContext, frame_from_atoms, note_fix_symmetry
+from .run import ReadContext, frame_from_atoms, note_calculator, note_fix_symmetry
 
 __all__ = ["read_traj", "read_extxyz", "read_db", "read_aims",
            "read_castep", "read_castep_geom", "read_gpaw", "MAX_ATOMS"]
@@ -213,6 +213,7 @@ class _FramesSay:
         if self.first is None:
             self.first = atoms
             note_fix_symmetry(atoms, self.ctx.settings, self.ctx.warn)
+            note_calculator(atoms, self.ctx.settings)
         elif len(self.energies) == 1 and not {"optimizer", "dynamics"} & set(self.ctx.settings) \
                 and _moving(self.first, atoms):
             self.ctx.settings.update({"code": "ase", "dynamics_seen": _MOMENTA})
@@ -582,10 +583,69 @@ def read_cif(path, ctx: ReadContext):
     yield from _through_ase(path, ctx, "cif", adjust=_cif_structure)
 
 
+# GPAW's text log: a "Positions:" line opens each configuration it calculates (ASE's reader splits
+# the log there); "Symmetries present (total): N" the operations it found for each
+_GPAW_CONFIG = re.compile(r"^Positions:[ \t]*$", re.M)
+_GPAW_SYMMETRIES = re.compile(r"^Symmetries present \(total\): *(\d+)", re.M)
+
+
+def _gpaw_steps(text: str, images: list, ctx: ReadContext) -> list:
+    """GPAW's log: one structure per configuration GPAW calculated, its energy the free energy
+    GPAW prints (``Free energy:``, the energy its forces belong to; ASE's reader gives the energy
+    extrapolated to zero smearing), the operations GPAW found for the last (``nsym``), and a log
+    that ends inside a configuration's calculation (ASE's reader stops before it) cut short."""
+    found = _GPAW_SYMMETRIES.findall(text)
+    if found:
+        ctx.settings["nsym"] = int(found[-1])
+    for atoms in images:
+        calc = atoms.calc
+        free = (getattr(calc, "energy_contributions", None) or {}).get("free energy")
+        if free is not None and "uncorrected_energy" not in (calc.parameters or {}):
+            calc.results["free_energy"] = float(free)    # ASE keeps each line's contribution
+    ctx.warn("a GPAW log holds one structure per configuration GPAW calculated: an ASE "
+             "line-search optimiser's trial configurations are among them (the trajectory the "
+             "optimiser wrote holds its steps alone)")
+    started = len(_GPAW_CONFIG.findall(text))
+    done = len(images) - (bool(images) and (images[-1].calc is None or
+                                            images[-1].calc.results.get("energy") is None))
+    if started > done:
+        where = f"after step {done - 1} ({done} completed steps)" if done else "in its first step"
+        ctx.truncated(f"truncated {where}: GPAW's log ends inside the calculation of "
+                      f"configuration {done + 1}; job killed or still running")
+        return images[:done] if done else images
+    return images
+
+
 def read_gpaw(path, ctx: ReadContext):
-    """GPAW text output through ASE."""
+    """GPAW text output through ASE (:func:`_gpaw_steps`)."""
     ctx.settings.update({"code": "gpaw"})
-    yield from _through_ase(path, ctx, "gpaw-out")
+    yield from _through_ase(path, ctx, "gpaw-out", adjust=_gpaw_steps)
+
+
+def no_folder(folder, names, format, ctx):
+    """GPAW's row of the code table claims no folder: its log is read as a file."""
+    return None
+
+
+def gpaw_symmetry(code_settings: dict, dimension: int = 3) -> dict | None:
+    """GPAW's own symmetry handling: on unless its ``symmetry`` parameter is 'off' or sets
+    ``point_group`` False (GPAW then symmetrises forces and stress with the operations it found,
+    by default those without a fractional translation); ``nsym``: its log's "Symmetries present
+    (total): N". From a trajectory, the calculator's stored parameters (ASE stores those not at
+    their defaults)."""
+    s = code_settings or {}
+    sym = s.get("symmetry")
+    if sym == "off" or (isinstance(sym, dict) and sym.get("point_group") is False):
+        return None
+    n = s.get("nsym")
+    what = ("1 symmetry operation (the identity only)" if n == 1 else
+            f"{n} symmetry operations" if n else "the symmetry operations it found")
+    cell = " of the slab's 3D cell" if dimension == 2 else ""
+    setting = ("its default symmetry setting: the operations without a fractional translation"
+               if sym is None else f"symmetry={sym!r}")
+    return {"operations": None if n is None else int(n),
+            "how": f"GPAW symmetrised forces and stress with {what}{cell} ({setting})",
+            "undo": "symmetry='off'"}
 
 
 def peek_text(path, size: int) -> str:

@@ -214,12 +214,14 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
     constraint (any calculator, ``fix_symmetry`` in the settings) holds its operations too."""
     fs = (code_settings or {}).get("fix_symmetry")
     if fs:
-        n = fs.get("operations")
+        n, prec = fs.get("operations"), fs.get("symprec")
         return {"operations": n, "who": "the constraint",
-                "how": f"ASE's FixSymmetry constraint held {n} symmetry operations (its symprec "
-                       f"{fs.get('symprec'):g} Å) through the relaxation",
+                "how": f"ASE's FixSymmetry constraint held {n} symmetry operations ("
+                       + ("its symprec not recorded" if prec is None else f"its symprec {prec:g} Å")
+                       + ") through the relaxation",
                 "undo": "no FixSymmetry constraint"}
-    code = _code_named((code_settings or {}).get("code"))
+    s = code_settings or {}          # an ASE run: the calculator's code, if it has a rule
+    code = _code_named(s.get("code")) or _code_named(s.get("calculator"))
     fn = code.function("symmetry_setting") if code is not None else None
     return fn(code_settings, dimension) if fn is not None else None
 
@@ -994,6 +996,12 @@ register("castep-geom", _A + "ase_native:read_castep_geom", globs=("*.geom",),
                                                                          "(through ASE)")
 register("gpaw-out", _A + "ase_native:read_gpaw", globs=(),
          magic=rb"\|__ \|  _\|___\|_____\|", description="GPAW text output (through ASE)")
+register_code(Code(
+    name="gpaw", label="GPAW", formats=("gpaw-out",), folder=_A + "ase_native:no_folder",
+    # the timing table GPAW prints when its calculator is done ("Total: ... 100.0%")
+    end_markers={"gpaw-out": ((re.compile(rb"^Total: +[0-9.]+ +100\.0%", re.M),
+                               "GPAW's closing timing table"),)},
+    symmetry_setting=_A + "ase_native:gpaw_symmetry"), replace=True)
 register("cif", _A + "ase_native:read_cif", globs=(), magic=rb"^data_\S",
          description="CIF (a single structure, through ASE; read when given, never a run of an "
                      "audit: a campaign's CIFs are its inputs and references)")

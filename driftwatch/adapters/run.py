@@ -466,8 +466,9 @@ def note_fix_symmetry(atoms, settings: dict, warn=None) -> None:
         name = type(c).__name__
         if name == "FixSymmetry" and hasattr(c, "rotations"):
             settings.setdefault("code", "ase")
+            prec = getattr(c, "symprec", None)        # ASE before 3.23 did not keep it
             settings["fix_symmetry"] = {"operations": int(len(c.rotations)),
-                                        "symprec": float(getattr(c, "symprec", 0.0))}
+                                        "symprec": None if prec is None else float(prec)}
         elif hasattr(c, "adjust_forces") and not hasattr(c, "adjust_potential_energy"):
             probe = np.random.default_rng(0).normal(size=(len(atoms), 3))
             moved = probe.copy()
@@ -488,6 +489,22 @@ def note_fix_symmetry(atoms, settings: dict, warn=None) -> None:
             warn(constrained_note(int(held.sum()), len(atoms), "the file's constraints (ASE's "
                                   + " and ".join(dict.fromkeys(names)) + ", as ASE reads them)",
                                   True))
+
+
+def note_calculator(atoms, settings: dict) -> None:
+    """Record the calculator that computed ``atoms`` (a run's first frame; a trajectory or an
+    ase.db stores its name and the parameters not at their defaults) in its code settings:
+    ``calculator`` (its name) and, for GPAW, its ``symmetry`` parameter when set, which
+    :func:`driftwatch.adapters.registry.symmetry_setting` reads."""
+    calc = getattr(atoms, "calc", None)
+    name = str(getattr(calc, "name", "") or "").lower()
+    if not name or name in ("unknown", "singlepointcalculator"):
+        return
+    settings["calculator"] = name
+    params = getattr(calc, "parameters", None) or {}
+    if name == "gpaw" and params.get("symmetry") is not None:
+        sym = params["symmetry"]
+        settings["symmetry"] = dict(sym) if isinstance(sym, dict) else str(sym)
 
 
 def checked(frames: Iterable, path) -> Iterator[Frame]:
