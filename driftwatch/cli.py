@@ -526,6 +526,8 @@ def main(argv=None) -> int:
         elif isinstance(exc, OSError) and exc.errno in _STREAM_ERRNOS:   # a full log disk
             os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())   # nothing to flush
             msg = f"standard output: {exc.strerror or exc}"
+        elif isinstance(exc, ImportError) and str(exc).startswith("driftwatch needs "):
+            msg = str(exc)                   # a library older than driftwatch runs on
         else:
             msg = f"{type(exc).__name__}: {exc} (internal error; rerun with --debug and report it)"
         from .records import shown

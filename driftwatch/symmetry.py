@@ -47,6 +47,7 @@ import hashlib
 import inspect
 import math
 import os
+import re
 import warnings
 
 import numpy as np
@@ -58,6 +59,22 @@ os.environ.setdefault("SPGLIB_WARNING", "OFF")
 import spglib  # noqa: E402
 
 from .errors import ConfigError, GeometryError, LatticeError, SymmetryError
+
+SPGLIB_MIN = (2, 7)
+"""The oldest spglib driftwatch runs on: ``spglib.error`` (SpglibError raised, the error mode) and
+``get_symmetry_layerdataset`` first ship in 2.7.0 (2.5 and 2.6 return None on failure and name
+the layer function ``get_layergroup``)."""
+
+
+def spglib_supported(version: str) -> bool:
+    """True when a spglib ``__version__`` string is at least :data:`SPGLIB_MIN`."""
+    parts = [int(x) for x in re.findall(r"\d+", version)[:2]]
+    return tuple(parts + [0] * (2 - len(parts))) >= SPGLIB_MIN
+
+
+if not spglib_supported(spglib.__version__):      # fail at import: before a relaxation starts
+    raise ImportError(f"driftwatch needs spglib >= {'.'.join(map(str, SPGLIB_MIN))}, found "
+                      f"{spglib.__version__} ({spglib.__file__}): pip install -U 'spglib>=2.7'")
 
 __all__ = [
     "DEFAULT_SYMPRECS", "DEFAULT_PRECISION", "spectrum", "displacement_to_group", "displacement_from",
@@ -131,7 +148,7 @@ def _layer_function():
     fn = getattr(spglib, "get_symmetry_layerdataset", None)
     if fn is None:
         raise SymmetryError(f"spglib {spglib.__version__} has no layer-group support "
-                            "(get_symmetry_layerdataset); install spglib >= 2.1")
+                            "(get_symmetry_layerdataset); install spglib >= 2.7")
     return fn
 
 

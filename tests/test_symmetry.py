@@ -720,3 +720,14 @@ def test_the_flicker_sweep_runs_only_where_a_verdict_returns():
     calls.clear()
     swept = S._sweep(flick, lambda v: v, grid, values, brackets, 1.05)
     assert calls and [b[1::2] for b in swept] == [b[1::2] for b in brackets]
+
+
+@pytest.mark.parametrize("version, ok", [("2.0.2", False), ("2.5.0", False), ("2.6.0", False),
+                                         ("2.7.0", True), ("2.8.0", True), ("2.10.1", True),
+                                         ("3.0.0rc1", True)])
+def test_spglib_older_than_2_7_is_refused_by_its_version(version, ok):
+    """spglib's release versions on PyPI (2.0.2 is Debian 12's python3-spglib): ``spglib.error``
+    and ``get_symmetry_layerdataset`` first ship in 2.7.0 (the 2.5.0 and 2.6.0 wheels have
+    neither; a field trial's venv failed every run on them). The installed one passes."""
+    assert S.spglib_supported(version) is ok
+    assert S.spglib_supported(spglib.__version__) and hasattr(spglib, "error")
