@@ -215,10 +215,10 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
     fs = (code_settings or {}).get("fix_symmetry")
     if fs:
         n, prec = fs.get("operations"), fs.get("symprec")
+        tol = "its symprec not recorded" if prec is None else f"its symprec {prec:g} Å"
         return {"operations": n, "who": "the constraint",
-                "how": f"ASE's FixSymmetry constraint held {n} symmetry operations ("
-                       + ("its symprec not recorded" if prec is None else f"its symprec {prec:g} Å")
-                       + ") through the relaxation",
+                "how": f"ASE's FixSymmetry constraint held {n} symmetry operations ({tol}) "
+                       f"through the relaxation",
                 "undo": "no FixSymmetry constraint"}
     s = code_settings or {}          # an ASE run: the calculator's code, if it has a rule
     code = _code_named(s.get("code")) or _code_named(s.get("calculator"))
