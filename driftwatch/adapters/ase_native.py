@@ -606,8 +606,9 @@ def _gpaw_steps(text: str, images: list, ctx: ReadContext) -> list:
              "line-search optimiser's trial configurations are among them (the trajectory the "
              "optimiser wrote holds its steps alone)")
     started = len(_GPAW_CONFIG.findall(text))
-    done = len(images) - (bool(images) and (images[-1].calc is None or
-                                            images[-1].calc.results.get("energy") is None))
+    done = len(images)                       # ASE keeps a first configuration with no energy
+    if images and (images[-1].calc is None or images[-1].calc.results.get("energy") is None):
+        done -= 1
     if started > done:
         where = f"after step {done - 1} ({done} completed steps)" if done else "in its first step"
         ctx.truncated(f"truncated {where}: GPAW's log ends inside the calculation of "

@@ -313,9 +313,9 @@ def _memo_key(kind, path, keys):
     stamp = file_stamp(path)
     if stamp is None:
         return None
-    wal = file_stamp(wal_of(path)) if "db" in kind else None     # an ase.db in WAL mode: its
-    return kind, str(path), tuple(stamp), tuple((wal or [])[:2]), tuple(keys)  # size and mtime
-                                                        # (a reader touches the log's ctime)
+    # an ase.db in WAL mode: its log's size and mtime too (a reader touches the log's ctime)
+    wal = file_stamp(wal_of(path)) if "db" in kind else None
+    return kind, str(path), tuple(stamp), tuple((wal or [])[:2]), tuple(keys)
 
 
 def wal_of(path) -> str:
@@ -467,8 +467,8 @@ def _member_digests(path, fmt: str, keys: tuple) -> dict:
                 hashes[of[n]].update(f"{n}\n".encode() + "".join(block).encode())
         except InputError:                               # the damage itself: in the tail
             pass
-    else:
-        for row in _db_rows(path):
+    else:                               # every row of the table in id order (id its first column)
+        for row in _query(path, "SELECT * FROM systems ORDER BY id"):
             h = hashes.get(of.get(row[0]))
             if h is not None:
                 for v in row:
@@ -480,13 +480,6 @@ def _member_digests(path, fmt: str, keys: tuple) -> dict:
         h.update(json.dumps([index.key, cut, index.damaged]).encode())
         out[name] = h.hexdigest()
     return out
-
-
-def _db_rows(path):
-    """Every row of an ase.db's ``systems`` table in id order, id first (SQLite, read-only; ``id``
-    is the table's first column)."""
-    for row in _query(path, "SELECT * FROM systems ORDER BY id"):
-        yield (row[0],) + tuple(row)
 
 
 # ---------------------------------------------------------------- for discovery (the format table)
