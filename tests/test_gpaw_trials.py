@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import gzip
 import re
+import shutil
 from pathlib import Path
 
 import ase.io
@@ -120,3 +121,67 @@ def test_fix_symmetry_without_a_recorded_symprec_says_so():
     assert "its symprec not recorded" in got["how"]
     assert "its symprec 0.01 Å" in symmetry_setting(
         {"fix_symmetry": {"operations": 48, "symprec": 0.01}})["how"]
+
+
+def test_a_gpaw_log_beside_its_relaxations_trajectory_is_no_run_of_its_own():
+    """An ASE optimiser driving GPAW leaves the optimiser's trajectory and GPAW's log of the same
+    relaxation side by side (their first structures equal to the log's 6 printed decimals): one
+    run, the trajectory, which names the log. Five relaxations, five runs (eight before: each log
+    was a run too)."""
+    from driftwatch.campaign import discover
+    runs, failed = discover([DATA])
+    assert not failed
+    assert sorted(r.id for r in runs) == [
+        "gpaw_trials/al_lbfgs", "gpaw_trials/al_line_search", "gpaw_trials/killed_layer",
+        "gpaw_trials/killed_layer/steps.extxyz", "gpaw_trials/layer_finished",
+        "gpaw_trials/si2_gpaw_symmetry"]
+    for case in ("al_lbfgs", "al_line_search", "layer_finished", "si2_gpaw_symmetry"):
+        run = read_run(str(DATA / case))
+        ref = ase.io.read(DATA / case / "relax.traj", ":")                   # ASE's reader
+        assert Path(run.source).name == "relax.traj" and len(run.cells) == len(ref)
+        assert np.array_equal(run.cells, [a.cell[:] for a in ref])
+        assert any("gpaw.txt.gz beside it is this relaxation's GPAW log" in w for w in
+                   run.warnings)
+        assert run.unfinished is None
+    # the line search: the trajectory's 4 steps, not the log's 9 configurations
+    assert len(read_run(str(DATA / "al_line_search")).cells) == 4
+
+
+def test_a_killed_relaxation_read_from_its_trajectory_is_unfinished_as_its_gpaw_log_says():
+    """kill -9 during the 16th configuration: the trajectory holds the 15 steps FIRE completed
+    and nothing says the job died; the log beside it does (16 "Positions:" blocks, 15 finished).
+    The extended XYZ written beside them is named as another run."""
+    run = read_run(str(DATA / "killed_layer"))
+    ref = ase.io.read(DATA / "killed_layer" / "relax.traj", ":")
+    assert Path(run.source).name == "relax.traj" and len(run.cells) == len(ref) == 15
+    assert run.unfinished == "cut short: job killed or still running"
+    assert any("gpaw.txt.gz beside it, this relaxation's GPAW log, ends inside the calculation of "
+               "configuration 16 (job killed or still running)" in w for w in run.warnings)
+    assert any("steps.extxyz beside it is another run" in w for w in run.warnings)
+
+
+def test_the_operations_gpaw_found_come_from_the_log_beside_the_trajectory():
+    flags = _flags(DATA / "si2_gpaw_symmetry")
+    assert "GPAW symmetrised forces and stress with 24 symmetry operations" in \
+        flags["held-by-code"]["message"]
+
+
+def test_a_log_of_another_run_is_not_taken_as_the_trajectorys(tmp_path):
+    """Two real runs of one input: the finished one's trajectory (20 steps) beside the killed
+    one's log (15 configurations, the same first 15 structures to 5e-7 Å): one folder, read from
+    the trajectory, but the log does not hold its last step, so the log's kill is not taken. A
+    log beside a trajectory of another start (Si2 beside Al) is a run of its own."""
+    from driftwatch.adapters.registry import scan_folder
+    mixed = tmp_path / "mixed"
+    mixed.mkdir()
+    shutil.copy(DATA / "layer_finished" / "relax.traj", mixed / "relax.traj")
+    shutil.copy(DATA / "killed_layer" / "gpaw.txt.gz", mixed / "gpaw.txt.gz")
+    run = read_run(str(mixed))
+    assert len(run.cells) == 20 and run.unfinished is None
+    assert any("gpaw.txt.gz beside it does not hold the trajectory's last step" in w
+               for w in run.warnings)
+    other = tmp_path / "other"
+    other.mkdir()
+    shutil.copy(DATA / "si2_gpaw_symmetry" / "relax.traj", other / "relax.traj")
+    shutil.copy(DATA / "al_lbfgs" / "gpaw.txt.gz", other / "gpaw.txt.gz")
+    assert scan_folder(other) == ("files", ["gpaw.txt.gz", "relax.traj"])

@@ -8,12 +8,14 @@ a warning from the registry.
 """
 from __future__ import annotations
 
+import functools
 import os
 import re
+from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError
+from ..errors import DriftwatchError, InputError
 from ._io import Lines, strip_compression
 from .run import ReadContext, frame_from_atoms, note_calculator, note_fix_symmetry
 
@@ -623,9 +625,87 @@ def read_gpaw(path, ctx: ReadContext):
     yield from _through_ase(path, ctx, "gpaw-out", adjust=_gpaw_steps)
 
 
-def no_folder(folder, names, format, ctx):
-    """GPAW's row of the code table claims no folder: its log is read as a file."""
-    return None
+# GPAW prints positions and cell vectors with 6 decimals (Å): equal to this, one structure
+_GPAW_PRINTED = 1e-5
+
+
+def _same_structure(a, b) -> bool:
+    """Two structures (``ase.Atoms`` or Frames) equal to GPAW's printed digits."""
+    na, nb = np.asarray(a.numbers), np.asarray(b.numbers)
+    return na.shape == nb.shape and bool(np.array_equal(na, nb)) and \
+        bool(np.allclose(np.asarray(a.cell), np.asarray(b.cell), rtol=0, atol=_GPAW_PRINTED)) and \
+        bool(np.allclose(a.positions, b.positions, rtol=0, atol=_GPAW_PRINTED))
+
+
+def gpaw_folder(folder, names, format, ctx):
+    """GPAW's folder rule: one GPAW log beside one ASE trajectory whose first frame is the log's
+    first configuration (an ASE optimiser driving GPAW, both files of one relaxation) is that
+    relaxation's run folder. The trajectory, the optimiser's steps, is read; the log, which also
+    holds a line-search optimiser's trial configurations, is named and read for what only it says
+    (:func:`_gpaw_log_says`). Else None: a log alone, or beside a trajectory of another start, is
+    read as a file (a run of its own)."""
+    from .registry import FolderPick, detect
+    if format not in (None, "traj"):
+        return None
+    trajs = [n for n in names if strip_compression(n).lower().endswith(".traj")]
+    if len(trajs) != 1:
+        return None
+    folder = Path(folder)
+    logs = []
+    for n in names:
+        if n != trajs[0]:
+            try:
+                if detect(folder / n) == "gpaw-out":
+                    logs.append(n)
+            except (DriftwatchError, OSError):
+                continue
+    if len(logs) != 1:
+        return None
+    traj, log = folder / trajs[0], folder / logs[0]
+    ctx.uses(traj)
+    ctx.uses(log)
+    try:
+        import io
+        import ase.io
+        from ase.io.trajectory import Trajectory
+        first = ase.io.read(io.StringIO(peek_text(log, 50_000)), index=0, format="gpaw-out")
+        with Trajectory(str(traj), "r") as t:
+            same = len(t) > 0 and _same_structure(t[0], first)
+    except Exception:  # noqa: BLE001 - either file unreadable here: each is read as its own run
+        return None
+    if not same:
+        return None
+    return FolderPick([("", traj, "traj")], (
+        f"{log.name} beside it is this relaxation's GPAW log (its first configuration is the "
+        f"trajectory's first frame): read {traj.name}, the optimiser's steps (the log holds every "
+        f"configuration GPAW calculated, a line-search optimiser's trials among them)",),
+        also=(log.name,), after=functools.partial(_gpaw_log_says, log))
+
+
+def _gpaw_log_says(log: Path, ctx: ReadContext, last) -> None:
+    """What a relaxation's GPAW log says that its trajectory (read, ``last``: its last frame) does
+    not: the operations GPAW found (``nsym``) and a log that ends inside a configuration's
+    calculation (a job killed or still running). Taken only when the log holds the trajectory's
+    last step, else said."""
+    from .registry import iter_frames
+    said = ReadContext(log)
+    try:
+        frames = list(iter_frames(log, "gpaw-out", context=said))
+    except DriftwatchError as exc:
+        ctx.warn(f"{log.name} beside it, this relaxation's GPAW log, cannot be read ({exc.problem})")
+        return
+    if last is None or not any(_same_structure(fr, last) for fr in frames):
+        ctx.warn(f"{log.name} beside it does not hold the trajectory's last step (a log of "
+                 f"another run from the same start?): what it says is not taken")
+        return
+    if "nsym" in said.settings:
+        ctx.settings.setdefault("nsym", said.settings["nsym"])
+    if said.unfinished and not ctx.unfinished:
+        why = said.unfinished.split(": ", 1)[-1]
+        ctx.warn(f"{log.name} beside it, this relaxation's GPAW log, ends inside the calculation "
+                 f"of configuration {len(frames) + 1} ({why}): the trajectory's last step is the "
+                 f"last one GPAW completed")
+        ctx.unfinished = said.unfinished
 
 
 def gpaw_symmetry(code_settings: dict, dimension: int = 3) -> dict | None:

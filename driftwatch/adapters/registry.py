@@ -92,6 +92,9 @@ class FolderPick:
     others: tuple = ()
     """Names of files beside the run that another format reads (an ASE trajectory beside a VASP
     run): runs of their own (set by :func:`scan_folder`)."""
+    after: Callable | None = None
+    """``after(ctx, last_frame)``, called once the stages are read: takes what a file beside them
+    says of the run (a GPAW log beside the trajectory of the relaxation it logged)."""
 
 
 @dataclass
@@ -377,6 +380,7 @@ class _Pick:
     run_dir: Path | None
     warnings: tuple = ()
     selection: str | None = None
+    after: Callable | None = None           # FolderPick.after
 
     @property
     def source(self) -> Path:
@@ -456,7 +460,7 @@ def _select_stage(pick: _Pick, selection: str, folder: Path) -> _Pick:
     else:
         have = ", ".join(n or "(single stage)" for n in names)
         raise InputError(folder, f"no stage {selection!r} (stages: {have})")
-    return _Pick([pick.stages[k]], pick.run_dir, pick.warnings)
+    return _Pick([pick.stages[k]], pick.run_dir, pick.warnings, after=pick.after)
 
 
 def recognised(path, name: str | None = None) -> bool:
@@ -684,7 +688,7 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
         raise NotARunError(path, f"ambiguous run folder: outputs of several codes "
                                  f"({', '.join(got)}); pass the file itself")
     if kind == "run":
-        return _Pick(list(got.stages), path, tuple(got.warnings))
+        return _Pick(list(got.stages), path, tuple(got.warnings), after=got.after)
     if kind == "inputs":
         raise InputError(path, inputs_only_problem(got, path))
     if kind == "band":
@@ -850,6 +854,8 @@ def _frames(pick: _Pick, ctx: ReadContext, stages_out: list | None = None) -> It
             ctx.settings["band_path"] = StraightLine.BAND
         if n:
             kinds.append(run_kind(ctx.settings))       # each stage by its own settings
+    if pick.after is not None and index:
+        pick.after(ctx, fr)
     if stages_out is not None and len(stages_out) == 1:
         stages_out.clear()                  # one stage gave every frame: not a multi-stage run
     if ctx.unfinished and not ctx.unfinished.startswith("cut short"):   # (warned as truncated)
@@ -997,7 +1003,7 @@ register("castep-geom", _A + "ase_native:read_castep_geom", globs=("*.geom",),
 register("gpaw-out", _A + "ase_native:read_gpaw", globs=(),
          magic=rb"\|__ \|  _\|___\|_____\|", description="GPAW text output (through ASE)")
 register_code(Code(
-    name="gpaw", label="GPAW", formats=("gpaw-out",), folder=_A + "ase_native:no_folder",
+    name="gpaw", label="GPAW", formats=("gpaw-out",), folder=_A + "ase_native:gpaw_folder",
     # the timing table GPAW prints when its calculator is done ("Total: ... 100.0%")
     end_markers={"gpaw-out": ((re.compile(rb"^Total: +[0-9.]+ +100\.0%", re.M),
                                "GPAW's closing timing table"),)},
