@@ -692,7 +692,8 @@ def _gpaw_log_says(log: Path, ctx: ReadContext, last) -> None:
     try:
         frames = list(iter_frames(log, "gpaw-out", context=said))
     except DriftwatchError as exc:
-        ctx.warn(f"{log.name} beside it, this relaxation's GPAW log, cannot be read ({exc.problem})")
+        ctx.warn(f"{log.name} beside it, this relaxation's GPAW log, cannot be read "
+                 f"({exc.problem})")
         return
     if last is None or not any(_same_structure(fr, last) for fr in frames):
         ctx.warn(f"{log.name} beside it does not hold the trajectory's last step (a log of "
