@@ -1005,18 +1005,27 @@ def _slim(text: str, run_id: str, rec: dict | None = None) -> dict:
                          if k != "settings_from"}}
 
 
-COPIES_WHY = "a folder kept twice, a rerun of the same steps, or one-frame runs of one start"
+COPIES_WHY = "a folder kept twice, a rerun, two files of one run, one-frame runs of one start"
 """What runs that read the same frames may be, in words (the summary and the report)."""
 
 
 def _copies(ok: list[dict]) -> list[list[str]]:
     """Groups of runs that read the same frames (a run folder copied, e.g. ``outputs_bk/``): the
     same steps, energies and largest forces, the same code settings, and the same final structure
-    bit for bit (a static run after a converged relaxation differs in its settings)."""
+    bit for bit (a static run after a converged relaxation differs in its settings). Runs of
+    several steps, each with an energy, are also the same when those agree to the digits a text
+    format keeps (1e-6 eV, 1e-5 eV/Å, 1e-5 Å), whatever their settings: one relaxation written
+    to two files (an ASE optimiser's trajectory and the extended XYZ an observer appended to)."""
     groups: dict = {}
     for r in ok:
-        key = json.dumps([r["view"]["steps"], r["view"]["settings"], r["structure"]],
-                         sort_keys=True, default=str)
+        steps, st = r["view"]["steps"], r["structure"]
+        if len(steps) > 1 and all(e is not None for _, e, _ in steps):
+            key = json.dumps([[[k, round(e, 6), None if f is None else round(f, 5)]
+                               for k, e, f in steps],
+                              [[round(x, 5) for x in row] for row in st["cell"] + st["positions"]],
+                              st["numbers"], st["pbc"]])
+        else:
+            key = json.dumps([steps, r["view"]["settings"], st], sort_keys=True, default=str)
         groups.setdefault(key, []).append(r["run"])
     return sorted(sorted(g) for g in groups.values() if len(g) > 1)
 

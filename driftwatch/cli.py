@@ -237,7 +237,7 @@ def _inspect_table(rec: dict) -> str:
     v = s["verdict"]
     shown = _shown_types(rec)
     judge_at = v["structure"].get("symprec") or 1e-3
-    head = ["step", "energy/eV", "fmax/(eV/Å)"] + [f"{t}/Å" for t in shown]
+    head = ["step", "energy/eV", "max_force/(eV/Å)"] + [f"{t}/Å" for t in shown]
     head += (["sign", "chiral_def/Å"] if dim == 2 else []) + [f"group@{judge_at:g}Å"]
     rows = [head]
     for f in frames:

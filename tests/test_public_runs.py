@@ -1389,7 +1389,7 @@ def test_copies_of_a_run_folder_are_named(tmp_path):
     summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
     assert summary["copies"] == [["camp/run", "camp/run_bk"]]
     assert ("copies: 1 group of runs that read the same frames (camp/run = camp/run_bk; all in "
-            "campaign.json copies): a folder kept twice, a rerun of the same steps, or one-frame "
+            "campaign.json copies): a folder kept twice, a rerun, two files of one run, one-frame "
             "runs of one start; each is counted above once per copy") in proc.stdout
     index = (tmp_path / "out" / "report" / "index.html").read_text()
     assert "copies (runs that read the same frames)" in index and "camp/run = camp/run_bk" in index

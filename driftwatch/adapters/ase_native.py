@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import DriftwatchError, InputError
-from ._io import Lines, strip_compression
+from ._io import Lines, check_readable, peek, strip_compression
 from .run import ReadContext, frame_from_atoms, note_calculator, note_fix_symmetry
 
 __all__ = ["read_traj", "read_extxyz", "read_db", "read_aims",
@@ -171,12 +171,16 @@ def read_traj(path, ctx: ReadContext):
         n = len(traj)
         if name is None:
             said = _FramesSay(path, ctx, described=bool(desc))
+            first = atoms = None
             for i in range(n):
                 atoms = traj[i]
+                first = atoms if first is None else first
                 fr = frame_from_atoms(atoms, i)
                 said.see(atoms, fr)
                 yield fr
             said.end()
+            if isinstance(desc, dict) and desc.get("type") == "optimization" and n:
+                _optimiser_stopped(desc, n, first, atoms, ctx)
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
@@ -185,6 +189,45 @@ def read_traj(path, ctx: ReadContext):
             yield frame_from_atoms(traj[i], j)
     finally:
         traj.close()
+
+
+# a cell filter's atomic forces may differ from the atoms' by the cell's strain (not recorded):
+# judged unconverged only above this factor of the optimiser's fmax
+_FMAX_MARGIN = 1.25
+
+
+def _optimiser_stopped(desc: dict, n: int, first, last, ctx: ReadContext) -> None:
+    """An ASE optimiser's trajectory records its ``fmax`` and ``max_steps`` (ASE 3.23 on): its
+    last frame's atomic forces above ``fmax`` (as the optimiser saw them: the constraints applied;
+    a cell filter, which the trajectory does not record, turns them by the cell's deformation
+    gradient D from the first frame, so |F| sigma_min(D) is compared, with a margin) mean it did
+    not converge there: it stopped at ``max_steps`` (``max_steps + 1`` frames), or the job was
+    killed or stopped early (an exception: driftwatch's observer in mode "stop" raises one) or is
+    still running. The cell's own convergence is not judged (the filter's cell
+    factor and mask are not recorded), so a run whose atoms converged and cell did not is not
+    caught."""
+    fmax, limit = desc.get("fmax"), desc.get("max_steps")
+    if isinstance(fmax, bool) or not isinstance(fmax, (int, float)) or not fmax > 0:
+        return
+    try:
+        forces = last.get_forces()
+        strain = np.linalg.svd(np.linalg.solve(first.cell[:], last.cell[:]), compute_uv=False)
+    except Exception:  # noqa: BLE001 - no forces stored, or a cell without volume: nothing said
+        return
+    worst = float(np.sqrt((forces ** 2).sum(axis=1)).max()) if len(forces) else 0.0
+    if not worst * float(strain.min()) > _FMAX_MARGIN * fmax:
+        return
+    said = (f"its last step's atomic forces reach {worst:.3g} eV/Å, above the fmax {fmax:g} "
+            f"eV/Å the optimiser's trajectory records")
+    if isinstance(limit, int) and not isinstance(limit, bool) and n >= limit + 1:
+        ctx.unfinished = (f"stopped at its step limit (the ASE optimiser's max_steps = {limit}; "
+                          f"{said})")
+        return
+    why = "job killed, stopped early (an exception, an observer's stop) or still running"
+    ctx.warn(f"cut short: {said}, after {n - 1} of its max_steps "
+             f"{limit if isinstance(limit, int) else '?'} steps: the optimiser had not converged "
+             f"({why})")
+    ctx.unfinished = ctx.unfinished or f"cut short: the ASE optimiser had not converged ({why})"
 
 
 _MOMENTA = "no class named; the frames' atomic momenta change"   # what tells MD with no description
@@ -637,49 +680,147 @@ def _same_structure(a, b) -> bool:
         bool(np.allclose(a.positions, b.positions, rtol=0, atol=_GPAW_PRINTED))
 
 
-def gpaw_folder(folder, names, format, ctx):
-    """GPAW's folder rule: one GPAW log beside one ASE trajectory whose first frame is the log's
-    first configuration (an ASE optimiser driving GPAW, both files of one relaxation) is that
-    relaxation's run folder. The trajectory, the optimiser's steps, is read; the log, which also
-    holds a line-search optimiser's trial configurations, is named and read for what only it says
-    (:func:`_gpaw_log_says`). Else None: a log alone, or beside a trajectory of another start, is
-    read as a file (a run of its own)."""
-    from .registry import FolderPick, detect
+# outputs of codes with no reader here (registry's banners) that an ASE calculator of that code
+# leaves beside the optimiser's trajectory: the code -> (ASE's calculator name, the line the code
+# prints when it ends, whether the calculator runs the code anew for each step, so that an output
+# without that line was cut by a kill: ABINIT's and NWChem's file-I/O calculators; ASE's CP2K keeps
+# one cp2k_shell for the whole run, which prints it when the calculator is closed). The lines as
+# Debian's CP2K 2023.1, ABINIT 9.6.2 and NWChem 7.0.2 print them (tests/data/ase_calc_trials).
+_CALCULATOR_OUTPUTS = {
+    "CP2K": ("cp2k", re.compile(rb"PROGRAM ENDED AT"), "'PROGRAM ENDED AT'", False),
+    "ABINIT": ("abinit", re.compile(rb"^ Calculation completed\.", re.M),
+               "'Calculation completed.'", True),
+    "NWChem": ("nwchem", re.compile(rb"^ Total times", re.M), "'Total times'", True),
+}
+
+
+def calculator_folder(folder, names, format, ctx):
+    """The folder of a relaxation an ASE optimiser drove: one ASE trajectory of its steps and,
+    beside it, what the calculator left of the same relaxation:
+
+    * a GPAW log whose first configuration is the trajectory's first frame (GPAW's log also holds
+      a line-search optimiser's trial configurations);
+    * the output of a code driftwatch has no reader for (CP2K, ABINIT, NWChem) when the
+      trajectory's calculator is that code;
+    * a one-frame trajectory equal to its last frame (a calculator's restart file: ASE's CP2K
+      calculator writes ``cp2k_restart.traj``).
+
+    The trajectory is read and those are named in its warnings; after the steps, what only they
+    say is taken (:func:`_calculator_files_say`). None when the folder holds nothing of these, or
+    anything else that could be another run's (a second trajectory of several frames, a log or
+    output of another relaxation or code): each file is then read as a run of its own."""
+    from .registry import FolderPick, _FOREIGN_NAMES, detect, foreign_code
     if format not in (None, "traj"):
         return None
     trajs = [n for n in names if strip_compression(n).lower().endswith(".traj")]
-    if len(trajs) != 1:
+    if not trajs or len(trajs) == len(names) == 1:      # nothing beside a lone trajectory
         return None
     folder = Path(folder)
-    logs = []
+    opened, main = {}, None
+    for n in trajs:
+        got = _ends_of(folder / n)
+        if got is None:
+            return None                  # a trajectory ASE cannot open: a (failing) run of its own
+        if got[0] > 1:
+            if main is not None:
+                return None              # two of several frames: two runs (a folder of many)
+            main = n
+        opened[n] = got
+    if main is None:
+        return None
+    _, first, last = opened[main]
+    restarts = [n for n in trajs if n != main and _same_structure(opened[n][1], last)]
+    if len(restarts) != len(trajs) - 1:
+        return None
+    calculator = str(getattr(first.calc, "name", "") or "").lower()
+    logs, outputs = [], []
     for n in names:
-        if n != trajs[0]:
+        if n in trajs:
+            continue
+        path = folder / n
+        try:
+            if detect(path) == "gpaw-out":
+                logs.append(n)
+            continue
+        except (DriftwatchError, OSError):
+            pass
+        if strip_compression(n).lower().endswith(_FOREIGN_NAMES):
             try:
-                if detect(folder / n) == "gpaw-out":
-                    logs.append(n)
+                code = foreign_code(peek(path, 50_000))
             except (DriftwatchError, OSError):
-                continue
-    if len(logs) != 1:
+                code = None
+            if code is not None:
+                if _CALCULATOR_OUTPUTS.get(code[0], ("",))[0] != calculator:
+                    return None                 # another code's output: a run of its own
+                outputs.append((n, code[0]))
+    if len(logs) > 1 or not (logs or outputs or restarts):
         return None
-    traj, log = folder / trajs[0], folder / logs[0]
-    ctx.uses(traj)
-    ctx.uses(log)
+    for n in trajs + logs + [n for n, _ in outputs]:
+        ctx.uses(folder / n)
+    if logs:
+        try:
+            import io
+            import ase.io
+            said = ase.io.read(io.StringIO(peek_text(folder / logs[0], 50_000)), index=0,
+                               format="gpaw-out")
+        except Exception:  # noqa: BLE001 - a log ASE cannot read here is a run of its own
+            return None
+        if not _same_structure(said, first):
+            return None
+    traj = folder / main
+    notes = [f"{n} beside it is this relaxation's GPAW log (its first configuration is the "
+             f"trajectory's first frame): read {main}, the optimiser's steps (the log holds every "
+             f"configuration GPAW calculated, a line-search optimiser's trials among them)"
+             for n in logs]
+    notes += [f"{n} beside it is {code}'s output of this relaxation (the trajectory's calculator "
+              f"is {code}): read {main}, the optimiser's steps" for n, code in outputs]
+    notes += [f"{n} beside it is a one-frame copy of the trajectory's last frame (a calculator's "
+              f"restart file), not a run of its own" for n in restarts]
+    return FolderPick([("", traj, "traj")], tuple(notes), also=tuple(logs + restarts) + tuple(
+        n for n, _ in outputs), after=functools.partial(
+            _calculator_files_say, [folder / n for n in logs],
+            [(folder / n, code) for n, code in outputs]))
+
+
+def _ends_of(path: Path):
+    """(frames, first, last) of an ASE trajectory that is a regular file ASE can open, else None
+    (a FIFO is never opened: it would block)."""
+    from ase.io.trajectory import Trajectory
     try:
-        import io
-        import ase.io
-        from ase.io.trajectory import Trajectory
-        first = ase.io.read(io.StringIO(peek_text(log, 50_000)), index=0, format="gpaw-out")
-        with Trajectory(str(traj), "r") as t:
-            same = len(t) > 0 and _same_structure(t[0], first)
-    except Exception:  # noqa: BLE001 - either file unreadable here: each is read as its own run
+        check_readable(path)
+        with Trajectory(str(path), "r") as t:
+            n = len(t)
+            return (n, t[0], t[-1]) if n else None
+    except Exception:  # noqa: BLE001 - anything ASE cannot read is left to its own run
         return None
-    if not same:
-        return None
-    return FolderPick([("", traj, "traj")], (
-        f"{log.name} beside it is this relaxation's GPAW log (its first configuration is the "
-        f"trajectory's first frame): read {traj.name}, the optimiser's steps (the log holds every "
-        f"configuration GPAW calculated, a line-search optimiser's trials among them)",),
-        also=(log.name,), after=functools.partial(_gpaw_log_says, log))
+
+
+def _calculator_files_say(logs: list, outputs: list, ctx: ReadContext, last) -> None:
+    """After the trajectory's steps (``last``: its last frame): what the calculator's files beside
+    it say of the run (see :func:`calculator_folder`): a GPAW log, :func:`_gpaw_log_says`; an
+    output of a code with no reader, that it ends without the code's closing line."""
+    for log in logs:
+        _gpaw_log_says(log, ctx, last)
+    for path, code in outputs:
+        _, ended, line, per_step = _CALCULATOR_OUTPUTS[code]
+        from ._io import tail_bytes
+        if code == "ABINIT":
+            found = _ABINIT_NSYM.findall(peek_text(path, 1 << 22))
+            if found:
+                ctx.settings.setdefault("nsym", int(found[-1]))
+        if ended.search(tail_bytes(path, 16_384)):
+            continue
+        if per_step:
+            why = "job killed or still running"
+            ctx.warn(f"{path.name} beside it, {code}'s output of this relaxation's last "
+                     f"calculation, ends without {code}'s closing line ({line}): the calculation "
+                     f"after the trajectory's last step was cut ({why})")
+            if not ctx.unfinished:
+                ctx.unfinished = f"cut short: {why}"
+        else:
+            ctx.warn(f"{path.name} beside it, {code}'s output of this relaxation, ends without "
+                     f"{code}'s closing line ({line}): the job was killed, is still running, or "
+                     f"its calculator was never closed")
 
 
 def _gpaw_log_says(log: Path, ctx: ReadContext, last) -> None:
@@ -709,6 +850,34 @@ def _gpaw_log_says(log: Path, ctx: ReadContext, last) -> None:
         ctx.unfinished = said.unfinished
 
 
+def no_folder(folder, names, format, ctx):
+    """A row of the code table that claims no folder: GPAW's log is read as a file, ABINIT has no
+    reader (beside the ASE trajectory of the same relaxation, :func:`calculator_folder` claims
+    the folder)."""
+    return None
+
+
+# the operations ABINIT used, as its main output echoes its variables ("nsym 48")
+_ABINIT_NSYM = re.compile(r"^ +nsym +(\d+) *$", re.M)
+
+
+def abinit_symmetry(code_settings: dict, dimension: int = 3) -> dict | None:
+    """ABINIT's own symmetry handling, known only from its main output beside an ASE run
+    (``nsym``: the operations it used; ASE's trajectory stores none of its parameters): by
+    default ABINIT finds the structure's operations within its ``tolsym`` and symmetrises
+    density, forces and stress with them (ABINIT's documentation of nsym and tolsym, from
+    memory; its log says it symmetrised the atomic coordinates). Off with ``nsym 1``."""
+    n = (code_settings or {}).get("nsym")
+    if not n or int(n) == 1:
+        return None
+    cell = " of the slab's 3D cell" if dimension == 2 else ""
+    return {"operations": int(n),
+            "how": f"ABINIT symmetrised forces and stress with the {int(n)} symmetry operations"
+                   f"{cell} it found (its output: nsym {int(n)}; ASE runs ABINIT anew at each "
+                   f"step, which finds them again)",
+            "undo": "nsym 1"}
+
+
 def gpaw_symmetry(code_settings: dict, dimension: int = 3) -> dict | None:
     """GPAW's own symmetry handling: on unless its ``symmetry`` parameter is 'off' or sets
     ``point_group`` False (GPAW then symmetrises forces and stress with the operations it found,
@@ -731,5 +900,4 @@ def gpaw_symmetry(code_settings: dict, dimension: int = 3) -> dict | None:
 
 
 def peek_text(path, size: int) -> str:
-    from ._io import peek
     return peek(path, size).decode("utf-8", "replace")

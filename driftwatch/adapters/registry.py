@@ -14,7 +14,9 @@ Detection order for a path (first that decides wins):
 2. for a directory: the codes' folder rules (a VASP or pw.x run folder, with its stages), else the
    one file in it that a format recognises;
 3. "magic": a bytes regular expression searched in the first 50 kB (decompressed);
-4. filename globs, matched case-insensitively on the name without ``.gz/.bz2/.xz``.
+4. files named like a format's that are none, told by their first bytes (NWChem's run-time
+   database ``nwchem.db``), refused;
+5. filename globs, matched case-insensitively on the name without ``.gz/.bz2/.xz``.
 
 A reader is a generator function ``reader(path)`` or ``reader(path, ctx)`` that
 yields :class:`~driftwatch.adapters.run.Frame` (or ``ase.Atoms``) objects, one per
@@ -307,6 +309,9 @@ def _detect_file(path: Path) -> str:
     for f in _formats.values():
         if f.magic is not None and f.magic.search(head):
             return f.name
+    for pattern, what in _NOT_TRAJECTORIES_BY_CONTENT:     # whatever its name says
+        if pattern.search(head):
+            raise UnknownFormatError(path, f"{what}, not a file of ionic steps")
     name = strip_compression(path.name).lower()
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
@@ -335,8 +340,14 @@ _FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
              "nothing: phonons of one structure, no ionic steps (audit the pw.x run it follows)"),
             (re.compile(rb"^ Entering Gaussian System", re.M), "Gaussian", _MOLECULAR),
             (re.compile(rb"Psi4: An Open-Source Ab Initio Electronic Structure Package"), "Psi4",
-             _MOLECULAR))
-_FOREIGN_NAMES = (".out", ".log", ".txt")   # where discovery looks for them (outputs' usual names)
+             _MOLECULAR),
+            # ABINIT 9.6's main output (.abo; its log, which repeats the banner after a line of
+            # its own, is not listed again); NWChem 7.0's output (as ASE names it, .nwo)
+            (re.compile(rb"\A\s*\.Version \S+ of ABINIT"), "ABINIT", _TO_XYZ),
+            (re.compile(rb"Northwest Computational Chemistry Package \(NWChem\)"), "NWChem",
+             _TO_XYZ))
+# where discovery looks for them (outputs' usual names; ABINIT's .abo, NWChem's .nwo as ASE names it)
+_FOREIGN_NAMES = (".out", ".log", ".txt", ".abo", ".nwo")
 
 
 def foreign_code(head: bytes) -> tuple[str, str] | None:
@@ -371,6 +382,16 @@ _NOT_TRAJECTORIES = (
      "its wave functions; pass GPAW's text output)"),
     (re.compile(rb"^[ \t]*Program (DOS|PROJWFC|POST-PROC|BANDS|DYNMAT|MATDYN|Q2R) v\.", re.M),
      "an output of a Quantum ESPRESSO post-processing program (pass the pw.x output it follows)"),
+    (re.compile(rb"\A[ \t]*ABINIT \d+\.\d+"), "ABINIT's log (its main output, .abo, holds the "
+                                              "run; driftwatch has no reader for ABINIT)"),
+)
+
+# ... and those whose name is a format's (their first bytes decide before the name): NWChem's
+# run-time database, which ASE's NWChem calculator keeps in the run folder's nwchem/ as nwchem.db,
+# named like an ASE database (an SQLite file, whose first bytes the ase-db format's magic knows)
+_NOT_TRAJECTORIES_BY_CONTENT = (
+    (re.compile(rb"\Ahdbm v"), "NWChem's run-time database (pass the ASE trajectory the optimiser "
+                               "wrote)"),
 )
 
 
@@ -1003,11 +1024,17 @@ register("castep-geom", _A + "ase_native:read_castep_geom", globs=("*.geom",),
 register("gpaw-out", _A + "ase_native:read_gpaw", globs=(),
          magic=rb"\|__ \|  _\|___\|_____\|", description="GPAW text output (through ASE)")
 register_code(Code(
-    name="gpaw", label="GPAW", formats=("gpaw-out",), folder=_A + "ase_native:gpaw_folder",
+    name="gpaw", label="GPAW", formats=("gpaw-out",), folder=_A + "ase_native:no_folder",
     # the timing table GPAW prints when its calculator is done ("Total: ... 100.0%")
     end_markers={"gpaw-out": ((re.compile(rb"^Total: +[0-9.]+ +100\.0%", re.M),
                                "GPAW's closing timing table"),)},
     symmetry_setting=_A + "ase_native:gpaw_symmetry"), replace=True)
+register_code(Code(name="abinit", label="ABINIT", formats=(), folder=_A + "ase_native:no_folder",
+                   symmetry_setting=_A + "ase_native:abinit_symmetry"), replace=True)
+# a folder where an ASE optimiser drove a calculator: its trajectory, and the calculator's files of
+# the same relaxation beside it (a GPAW log, another code's output, a restart file)
+register_code(Code(name="ase-driven", label="ASE-driven calculation", formats=(),
+                   folder=_A + "ase_native:calculator_folder"), replace=True)
 register("cif", _A + "ase_native:read_cif", globs=(), magic=rb"^data_\S",
          description="CIF (a single structure, through ASE; read when given, never a run of an "
                      "audit: a campaign's CIFs are its inputs and references)")
