@@ -27,7 +27,7 @@ from driftwatch.adapters import read_run
 from driftwatch.adapters.registry import detect
 from driftwatch.campaign import discover
 from driftwatch.config import load as load_config
-from driftwatch.errors import UnknownFormatError
+from driftwatch.errors import ForeignOutputError, UnknownFormatError
 from driftwatch.track import record_from_run
 
 DATA = Path(__file__).parent / "data" / "ase_calc_trials"
@@ -73,8 +73,9 @@ def test_nwchems_run_time_database_is_no_ase_database():
 def test_abinit_and_nwchem_outputs_are_said_as_codes_with_no_reader(name, code):
     """Their banners, as the codes print them: ".Version 9.6.2 of ABINIT", "Northwest
     Computational Chemistry Package (NWChem) 7.0.2"."""
-    assert re.search(rf"\.Version \S+ of ABINIT|\(NWChem\) \S+", _text(DATA / name))
-    with pytest.raises(Exception, match=f"an output of {code}, which driftwatch has no reader"):
+    assert re.search(r"\.Version \S+ of ABINIT|\(NWChem\) \S+", _text(DATA / name))
+    with pytest.raises(ForeignOutputError, match=f"an output of {code}, which driftwatch has "
+                                                 f"no reader"):
         detect(DATA / name)
 
 

@@ -346,7 +346,8 @@ _FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
             (re.compile(rb"\A\s*\.Version \S+ of ABINIT"), "ABINIT", _TO_XYZ),
             (re.compile(rb"Northwest Computational Chemistry Package \(NWChem\)"), "NWChem",
              _TO_XYZ))
-# where discovery looks for them (outputs' usual names; ABINIT's .abo, NWChem's .nwo as ASE names it)
+# where discovery looks for them (outputs' usual names; ABINIT's .abo, NWChem's .nwo, as ASE
+# names it)
 _FOREIGN_NAMES = (".out", ".log", ".txt", ".abo", ".nwo")
 
 
