@@ -896,9 +896,11 @@ class _Follower:
     def say_warnings(self, warnings, final: bool) -> None:
         """Print the reader's warnings not printed yet (an SCF at NELM, pw.x stopping itself, a
         run that is no relaxation). While the job runs its output is cut by nature: a truncation
-        warning is printed only once it has ended."""
+        warning, or any that says the job may be still running (an ASE optimiser not converged
+        yet, a calculator's log inside a calculation), is printed only once it has ended."""
         for w in warnings:
-            if w in self.warned or (not final and w.split(": ", 1)[-1].startswith("truncated")):
+            live = w.split(": ", 1)[-1].startswith("truncated") or "still running" in w
+            if w in self.warned or (not final and live):
                 continue
             self.warned.add(w)
             self.say(f"  warning: {w}")

@@ -216,3 +216,20 @@ def test_a_converged_optimiser_is_finished(tmp_path, fixed, cell):
     if fixed:
         assert np.linalg.norm(raw.get_forces(apply_constraint=False), axis=1).max() > 0.05
     assert read_run(str(path)).unfinished is None
+
+
+def test_follow_holds_back_what_a_running_job_shows_by_nature(tmp_path):
+    """While a relaxation runs, its optimiser has not converged and its calculator's log is inside
+    a calculation: `follow` prints those warnings once following has ended, not at every poll."""
+    from types import SimpleNamespace
+    from driftwatch import live
+    said: list = []
+    f = SimpleNamespace(warned=set(), say=said.append)
+    waiting = ("relax.traj: cut short: its last step's atomic forces reach 0.457 eV/Å, above the "
+               "fmax 0.02 eV/Å the optimiser's trajectory records, after 2 of its max_steps 40 "
+               "steps: the optimiser had not converged (job killed, stopped early or still running)")
+    other = "relax.traj: steps.extxyz beside it is another run (read on its own)"
+    live._Follower.say_warnings(f, [waiting, other], final=False)
+    assert said == [f"  warning: {other}"]
+    live._Follower.say_warnings(f, [waiting, other], final=True)
+    assert said == [f"  warning: {other}", f"  warning: {waiting}"]

@@ -223,7 +223,7 @@ def _optimiser_stopped(desc: dict, n: int, first, last, ctx: ReadContext) -> Non
         ctx.unfinished = (f"stopped at its step limit (the ASE optimiser's max_steps = {limit}; "
                           f"{said})")
         return
-    why = "job killed, stopped early (an exception, an observer's stop) or still running"
+    why = "job killed, stopped early or still running"
     ctx.warn(f"cut short: {said}, after {n - 1} of its max_steps "
              f"{limit if isinstance(limit, int) else '?'} steps: the optimiser had not converged "
              f"({why})")
