@@ -233,3 +233,17 @@ def test_follow_holds_back_what_a_running_job_shows_by_nature(tmp_path):
     assert said == [f"  warning: {other}"]
     live._Follower.say_warnings(f, [waiting, other], final=True)
     assert said == [f"  warning: {other}", f"  warning: {waiting}"]
+
+
+def test_a_cell_only_relaxation_is_not_judged_by_its_atoms_forces(tmp_path):
+    """ASE's StrainFilter relaxes the cell alone: the atoms keep their fractional coordinates and
+    their forces (1.4 eV/Å here, ASE's) are not what the optimiser converged on (it says True)."""
+    from ase.filters import StrainFilter
+    atoms = bulk("Cu", "fcc", a=3.7, cubic=True).repeat((2, 1, 1))
+    atoms.rattle(0.08, seed=3)
+    atoms.calc = EMT()
+    path = tmp_path / "strain.traj"
+    assert BFGS(StrainFilter(atoms), trajectory=str(path), logfile=None).run(fmax=0.01,
+                                                                              steps=200)
+    assert _largest_force(ase.io.read(path, -1)) > 1.0
+    assert read_run(str(path)).unfinished is None

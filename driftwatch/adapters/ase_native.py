@@ -203,7 +203,8 @@ def _optimiser_stopped(desc: dict, n: int, first, last, ctx: ReadContext) -> Non
     gradient D from the first frame, so |F| sigma_min(D) is compared, with a margin) mean it did
     not converge there: it stopped at ``max_steps`` (``max_steps + 1`` frames), or the job was
     killed or stopped early (an exception: driftwatch's observer in mode "stop" raises one) or is
-    still running. The cell's own convergence is not judged (the filter's cell
+    still running. A run whose atoms kept their fractional coordinates (a cell-only relaxation,
+    ASE's StrainFilter) is not judged. The cell's own convergence is not judged (the filter's cell
     factor and mask are not recorded), so a run whose atoms converged and cell did not is not
     caught."""
     fmax, limit = desc.get("fmax"), desc.get("max_steps")
@@ -212,8 +213,12 @@ def _optimiser_stopped(desc: dict, n: int, first, last, ctx: ReadContext) -> Non
     try:
         forces = last.get_forces()
         strain = np.linalg.svd(np.linalg.solve(first.cell[:], last.cell[:]), compute_uv=False)
+        held = np.allclose(first.get_scaled_positions(wrap=False),
+                           last.get_scaled_positions(wrap=False), rtol=0, atol=1e-12)
     except Exception:  # noqa: BLE001 - no forces stored, or a cell without volume: nothing said
         return
+    if held and n > 1:       # the atoms moved with the cell only (ASE's StrainFilter): their
+        return               # forces were not what the optimiser converged on
     worst = float(np.sqrt((forces ** 2).sum(axis=1)).max()) if len(forces) else 0.0
     if not worst * float(strain.min()) > _FMAX_MARGIN * fmax:
         return
