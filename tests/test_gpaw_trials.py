@@ -168,18 +168,18 @@ def test_the_operations_gpaw_found_come_from_the_log_beside_the_trajectory():
 
 def test_a_log_of_another_run_is_not_taken_as_the_trajectorys(tmp_path):
     """Two real runs of one input: the finished one's trajectory (20 steps) beside the killed
-    one's log (15 configurations, the same first 15 structures to 5e-7 Å): one folder, read from
-    the trajectory, but the log does not hold its last step, so the log's kill is not taken. A
-    log beside a trajectory of another start (Si2 beside Al) is a run of its own."""
+    one's log (15 configurations, the same first 15 structures to 5e-7 Å): the log does not hold
+    the trajectory's last step, so it is no log of that relaxation and each file is a run of its
+    own (a log of a rerun with other settings ends elsewhere and has a verdict of its own). A log
+    beside a trajectory of another start (Si2 beside Al) is a run of its own too."""
     from driftwatch.adapters.registry import scan_folder
     mixed = tmp_path / "mixed"
     mixed.mkdir()
     shutil.copy(DATA / "layer_finished" / "relax.traj", mixed / "relax.traj")
     shutil.copy(DATA / "killed_layer" / "gpaw.txt.gz", mixed / "gpaw.txt.gz")
-    run = read_run(str(mixed))
-    assert len(run.cells) == 20 and run.unfinished is None
-    assert any("gpaw.txt.gz beside it does not hold the trajectory's last step" in w
-               for w in run.warnings)
+    assert scan_folder(mixed) == ("files", ["gpaw.txt.gz", "relax.traj"])
+    assert len(read_run(str(mixed / "relax.traj")).cells) == 20
+    assert len(read_run(str(mixed / "gpaw.txt.gz")).cells) == 15
     other = tmp_path / "other"
     other.mkdir()
     shutil.copy(DATA / "si2_gpaw_symmetry" / "relax.traj", other / "relax.traj")

@@ -172,15 +172,17 @@ def read_traj(path, ctx: ReadContext):
         if name is None:
             said = _FramesSay(path, ctx, described=bool(desc))
             first = atoms = None
+            cells = []
             for i in range(n):
                 atoms = traj[i]
                 first = atoms if first is None else first
                 fr = frame_from_atoms(atoms, i)
+                cells.append(fr.cell)
                 said.see(atoms, fr)
                 yield fr
             said.end()
             if isinstance(desc, dict) and desc.get("type") == "optimization" and n:
-                _optimiser_stopped(desc, n, first, atoms, ctx)
+                _optimiser_stopped(desc, cells, first, atoms, ctx)
             return
         k = names.index(name) + 1
         ctx.settings["neb_image"] = f"{name} of {p - 2} in an ASE NEB trajectory"
@@ -191,48 +193,56 @@ def read_traj(path, ctx: ReadContext):
         traj.close()
 
 
-# a cell filter's atomic forces may differ from the atoms' by the cell's strain (not recorded):
-# judged unconverged only above this factor of the optimiser's fmax
-_FMAX_MARGIN = 1.25
+def _optimiser_stopped(desc: dict, cells: list, first, last, ctx: ReadContext) -> None:
+    """An ASE optimiser's trajectory records its ``fmax`` and ``max_steps`` (ASE 3.23 on; with
+    the file's first frame, so those of its first ``run``). Its last frame's atomic forces above
+    ``fmax`` mean the optimiser had not converged there: it stopped at ``max_steps`` (the file
+    holds ``max_steps + 1`` frames), or the job was killed, stopped early (an exception:
+    driftwatch's observer in mode "stop" raises one) or is still running.
 
-
-def _optimiser_stopped(desc: dict, n: int, first, last, ctx: ReadContext) -> None:
-    """An ASE optimiser's trajectory records its ``fmax`` and ``max_steps`` (ASE 3.23 on): its
-    last frame's atomic forces above ``fmax`` (as the optimiser saw them: the constraints applied;
-    a cell filter, which the trajectory does not record, turns them by the cell's deformation
-    gradient D from the first frame, so |F| sigma_min(D) is compared, with a margin) mean it did
-    not converge there: it stopped at ``max_steps`` (``max_steps + 1`` frames), or the job was
-    killed or stopped early (an exception: driftwatch's observer in mode "stop" raises one) or is
-    still running. A run whose atoms kept their fractional coordinates (a cell-only relaxation,
-    ASE's StrainFilter) is not judged. The cell's own convergence is not judged (the filter's cell
-    factor and mask are not recorded), so a run whose atoms converged and cell did not is not
-    caught."""
-    fmax, limit = desc.get("fmax"), desc.get("max_steps")
+    The forces as the optimiser saw them: the constraints applied (``atoms.get_forces()``), and
+    only atoms that moved (an atom an ASE ``Filter`` hid, or one a ``StrainFilter`` carried with
+    the cell, is none of its concern). A cell filter (not recorded) turns an atom's force F by
+    the deformation gradient D from the cell it was made with, one of the frames': |F D| >=
+    |F| sigma_min(first -> last) / max_k sigma_max(first -> frame k), which is compared, so a
+    force above that proves it. Not judged: a file written every n-th step (``interval``: the
+    final step may be missing), one holding more frames than ``max_steps`` allows (runs appended
+    to it, perhaps with another fmax), and the cell's own convergence (the filter's cell factor
+    and mask are not recorded): a run whose atoms converged and cell did not is not caught."""
+    fmax, limit, every = desc.get("fmax"), desc.get("max_steps"), desc.get("interval", 1)
     if isinstance(fmax, bool) or not isinstance(fmax, (int, float)) or not fmax > 0:
         return
+    n = len(cells)
+    limit = limit if isinstance(limit, int) and not isinstance(limit, bool) and limit > 0 else None
+    if isinstance(every, int) and not isinstance(every, bool) and every > 1:
+        ctx.warn(f"the optimiser wrote every {every}th step to its trajectory (its description's "
+                 f"interval): the last frame need not be its final structure; whether it "
+                 f"converged is not judged")
+        return
+    if limit is not None and n > limit + 1:
+        return                            # several runs appended: the fmax may not be the last's
     try:
         forces = last.get_forces()
-        strain = np.linalg.svd(np.linalg.solve(first.cell[:], last.cell[:]), compute_uv=False)
-        held = np.allclose(first.get_scaled_positions(wrap=False),
-                           last.get_scaled_positions(wrap=False), rtol=0, atol=1e-12)
+        moved = np.abs(last.get_scaled_positions(wrap=False)
+                       - first.get_scaled_positions(wrap=False)).max(axis=1) > 1e-12
+        turn = np.linalg.svd(np.linalg.solve(cells[0], np.asarray(cells)), compute_uv=False)
     except Exception:  # noqa: BLE001 - no forces stored, or a cell without volume: nothing said
         return
-    if held and n > 1:       # the atoms moved with the cell only (ASE's StrainFilter): their
-        return               # forces were not what the optimiser converged on
-    worst = float(np.sqrt((forces ** 2).sum(axis=1)).max()) if len(forces) else 0.0
-    if not worst * float(strain.min()) > _FMAX_MARGIN * fmax:
+    if not moved.any():
+        return
+    worst = float(np.sqrt((forces[moved] ** 2).sum(axis=1)).max())
+    if not worst * turn[-1].min() / turn.max() > fmax * (1 + 1e-9):
         return
     said = (f"its last step's atomic forces reach {worst:.3g} eV/Å, above the fmax {fmax:g} "
-            f"eV/Å the optimiser's trajectory records")
-    if isinstance(limit, int) and not isinstance(limit, bool) and n >= limit + 1:
+            f"eV/Å its trajectory records")
+    if limit is not None and n == limit + 1:
         ctx.unfinished = (f"stopped at its step limit (the ASE optimiser's max_steps = {limit}; "
                           f"{said})")
         return
-    why = "job killed, stopped early or still running"
-    ctx.warn(f"cut short: {said}, after {n - 1} of its max_steps "
-             f"{limit if isinstance(limit, int) else '?'} steps: the optimiser had not converged "
-             f"({why})")
-    ctx.unfinished = ctx.unfinished or f"cut short: the ASE optimiser had not converged ({why})"
+    why = "killed, stopped early or still running"
+    ctx.warn(f"the ASE optimiser had not converged: {said}, after {n - 1} of "
+             f"{'its max_steps ' + str(limit) if limit else 'its'} steps ({why})")
+    ctx.unfinished = ctx.unfinished or f"stopped without converging (the ASE optimiser; {why})"
 
 
 _MOMENTA = "no class named; the frames' atomic momenta change"   # what tells MD with no description
@@ -703,8 +713,8 @@ def calculator_folder(folder, names, format, ctx):
     """The folder of a relaxation an ASE optimiser drove: one ASE trajectory of its steps and,
     beside it, what the calculator left of the same relaxation:
 
-    * a GPAW log whose first configuration is the trajectory's first frame (GPAW's log also holds
-      a line-search optimiser's trial configurations);
+    * a GPAW log that starts at the trajectory's first frame and holds its last
+      (:func:`_gpaw_log_of`; GPAW's log also holds a line-search optimiser's trials);
     * the output of a code driftwatch has no reader for (CP2K, ABINIT, NWChem) when the
       trajectory's calculator is that code;
     * a one-frame trajectory equal to its last frame (a calculator's restart file: ASE's CP2K
@@ -762,19 +772,11 @@ def calculator_folder(folder, names, format, ctx):
         return None
     for n in trajs + logs + [n for n, _ in outputs]:
         ctx.uses(folder / n)
-    if logs:
-        try:
-            import io
-            import ase.io
-            said = ase.io.read(io.StringIO(peek_text(folder / logs[0], 50_000)), index=0,
-                               format="gpaw-out")
-        except Exception:  # noqa: BLE001 - a log ASE cannot read here is a run of its own
-            return None
-        if not _same_structure(said, first):
-            return None
+    if logs and not _gpaw_log_of(folder / logs[0], first, last):
+        return None
     traj = folder / main
-    notes = [f"{n} beside it is this relaxation's GPAW log (its first configuration is the "
-             f"trajectory's first frame): read {main}, the optimiser's steps (the log holds every "
+    notes = [f"{n} beside it is this relaxation's GPAW log (it starts at the trajectory's first "
+             f"frame and holds its last): read {main}, the optimiser's steps (the log holds every "
              f"configuration GPAW calculated, a line-search optimiser's trials among them)"
              for n in logs]
     notes += [f"{n} beside it is {code}'s output of this relaxation (the trajectory's calculator "
@@ -785,6 +787,23 @@ def calculator_folder(folder, names, format, ctx):
         n for n, _ in outputs), after=functools.partial(
             _calculator_files_say, [folder / n for n in logs],
             [(folder / n, code) for n, code in outputs]))
+
+
+def _gpaw_log_of(log: Path, first, last) -> bool:
+    """True when a GPAW log is the log of the relaxation whose trajectory runs from ``first`` to
+    ``last``: its first configuration is ``first`` and it holds ``last`` (a log of another
+    relaxation from the same start, with other settings, ends elsewhere: a run of its own)."""
+    import io
+    import ase.io
+    from .registry import iter_frames
+    try:
+        said = ase.io.read(io.StringIO(peek_text(log, 50_000)), index=0, format="gpaw-out")
+        if not _same_structure(said, first):
+            return False
+        return any(_same_structure(fr, last)
+                   for fr in iter_frames(log, "gpaw-out", context=ReadContext(log)))
+    except Exception:  # noqa: BLE001 - a log that cannot be read here is a run of its own
+        return False
 
 
 def _ends_of(path: Path):
@@ -820,8 +839,8 @@ def _calculator_files_say(logs: list, outputs: list, ctx: ReadContext, last) -> 
             ctx.warn(f"{path.name} beside it, {code}'s output of this relaxation's last "
                      f"calculation, ends without {code}'s closing line ({line}): the calculation "
                      f"after the trajectory's last step was cut ({why})")
-            if not ctx.unfinished:
-                ctx.unfinished = f"cut short: {why}"
+            if not ctx.unfinished or ctx.unfinished.startswith("stopped without converging"):
+                ctx.unfinished = f"cut short: {why}"        # (the more specific reason)
         else:
             ctx.warn(f"{path.name} beside it, {code}'s output of this relaxation, ends without "
                      f"{code}'s closing line ({line}): the job was killed, is still running, or "
