@@ -1014,8 +1014,9 @@ def _copies(ok: list[dict]) -> list[list[str]]:
     same steps, energies and largest forces, the same code settings, and the same final structure
     bit for bit (a static run after a converged relaxation differs in its settings). Runs of
     several steps, each with an energy, are also the same when those agree to the digits a text
-    format keeps (1e-6 eV, 1e-5 eV/Å, 1e-5 Å), whatever their settings: one relaxation written
-    to two files (an ASE optimiser's trajectory and the extended XYZ an observer appended to)."""
+    format keeps (1e-6 eV, 1e-5 eV/Å, 1e-5 Å) and no setting both record differs: one relaxation
+    written to two files (an ASE optimiser's trajectory and the extended XYZ an observer appended
+    to; the second records none), not two inputs that happen to give the same steps."""
     groups: dict = {}
     for r in ok:
         steps, st = r["view"]["steps"], r["structure"]
@@ -1026,8 +1027,21 @@ def _copies(ok: list[dict]) -> list[list[str]]:
                               st["numbers"], st["pbc"]])
         else:
             key = json.dumps([steps, r["view"]["settings"], st], sort_keys=True, default=str)
-        groups.setdefault(key, []).append(r["run"])
-    return sorted(sorted(g) for g in groups.values() if len(g) > 1)
+        clusters = groups.setdefault(key, [])
+        mine = r["view"]["settings"]
+        home = next((c for c in clusters if all(_agree(mine, o) for o in c[1])), None)
+        if home is None:
+            clusters.append(([r["run"]], [mine]))
+        else:
+            home[0].append(r["run"])
+            home[1].append(mine)
+    return sorted(sorted(c[0]) for cs in groups.values() for c in cs if len(c[0]) > 1)
+
+
+def _agree(a: dict, b: dict) -> bool:
+    """No code setting that both runs record differs."""
+    return all(json.dumps(a[k], sort_keys=True, default=str) ==
+               json.dumps(b[k], sort_keys=True, default=str) for k in a.keys() & b.keys())
 
 
 _TABLE_HEAD = ["run", "dim", "verdict", "lattice", "drift/Å (deformation)", "group", "flags"]

@@ -131,9 +131,10 @@ def test_a_killed_cp2k_relaxation_is_cut_short_by_its_optimisers_own_record():
     assert "PROGRAM ENDED AT" not in _text(d / "cp2k.out.gz")
     assert "PROGRAM ENDED AT" in _text(DATA / "cp2k_bulk_vc" / "cp2k.out.gz")
     run = read_run(str(d))
-    assert run.unfinished.startswith("stopped without converging (the ASE optimiser;")
-    assert any("atomic forces reach 0.457 eV/Å, above the fmax 0.02 eV/Å" in w
-               for w in run.warnings)
+    assert run.unfinished.startswith("stopped without converging (the ASE optimiser: its last "
+                                     "step's atomic forces reach 0.457 eV/Å, above the fmax 0.02 "
+                                     "eV/Å its trajectory records, after 2 of its max_steps 40")
+    assert any("unfinished: stopped without converging" in w for w in run.warnings)
     assert any("ends without CP2K's closing line ('PROGRAM ENDED AT')" in w for w in run.warnings)
 
 
@@ -218,21 +219,22 @@ def test_a_converged_optimiser_is_finished(tmp_path, fixed, cell):
     assert read_run(str(path)).unfinished is None
 
 
-def test_follow_holds_back_what_a_running_job_shows_by_nature(tmp_path):
-    """While a relaxation runs, its optimiser has not converged and its calculator's log is inside
-    a calculation: `follow` prints those warnings once following has ended, not at every poll."""
+def test_follow_holds_back_what_a_running_job_shows_by_nature():
+    """While a relaxation runs, its optimiser has not converged and its calculator's output has
+    no closing line yet: `follow` prints those warnings of the reader (here the killed CP2K
+    run's) once following has ended, not at every poll; the others at once."""
     from types import SimpleNamespace
     from driftwatch import live
+    warnings = read_run(str(DATA / "cp2k_killed")).warnings
+    waiting = [w for w in warnings if "stopped without converging" in w or "closing line" in w]
+    other = [w for w in warnings if w not in waiting]
+    assert len(waiting) == 2 and len(other) == 1
     said: list = []
     f = SimpleNamespace(warned=set(), say=said.append)
-    waiting = ("relax.traj: the ASE optimiser had not converged: its last step's atomic forces "
-               "reach 0.457 eV/Å, above the fmax 0.02 eV/Å its trajectory records, after 2 of its "
-               "max_steps 40 steps (killed, stopped early or still running)")
-    other = "relax.traj: steps.extxyz beside it is another run (read on its own)"
-    live._Follower.say_warnings(f, [waiting, other], final=False)
-    assert said == [f"  warning: {other}"]
-    live._Follower.say_warnings(f, [waiting, other], final=True)
-    assert said == [f"  warning: {other}", f"  warning: {waiting}"]
+    live._Follower.say_warnings(f, warnings, final=False)
+    assert said == [f"  warning: {w}" for w in other]
+    live._Follower.say_warnings(f, warnings, final=True)
+    assert said == [f"  warning: {w}" for w in other + waiting]
 
 
 def test_a_cell_only_relaxation_is_not_judged_by_its_atoms_forces(tmp_path):
@@ -305,3 +307,50 @@ def test_a_step_limit_just_above_fmax_is_said(tmp_path):
     assert len(Trajectory(str(cut))) == k + 1
     assert 0.01 < _largest_force(ase.io.read(cut, -1)) < 0.0125
     assert read_run(str(cut)).unfinished.startswith("stopped at its step limit")
+
+
+def test_one_frame_of_another_calculator_is_no_restart_file(tmp_path):
+    """A single point of the relaxed structure with another calculator (ASE's LennardJones beside
+    an EMT relaxation; their energies differ) is a run of its own, not a restart copy."""
+    from ase.calculators.lj import LennardJones
+    from driftwatch.adapters.registry import scan_folder
+    path, converged = _emt_relaxation(tmp_path, "relax", steps=300)
+    check = ase.io.read(path, -1)
+    check.calc = LennardJones()
+    check.get_potential_energy()
+    ase.io.write(tmp_path / "check_lj.traj", check)
+    assert scan_folder(tmp_path) == ("files", ["check_lj.traj", "relax.traj"])
+
+
+def test_two_inputs_that_give_the_same_steps_are_no_copies(tmp_path):
+    """Two real pw.x runs whose inputs differ in cell_dofree ('all', 'ibrav': no effect with
+    ibrav = 0) give the same energies at every step (pw.x's "!" lines): not copies of one run; a
+    folder kept twice is."""
+    pair = Path(__file__).parent / "data" / "qe_trials" / "al1_ibrav0_same_steps"
+    energies = [re.findall(r"^!\s+total energy\s+=\s+(\S+)", _text(pair / d / "pw.out.gz"), re.M)
+                for d in ("dofree_all", "dofree_ibrav")]
+    assert energies[0] == energies[1] and len(energies[0]) == 7
+    camp = tmp_path / "camp"
+    for d in ("dofree_all", "dofree_ibrav"):
+        shutil.copytree(pair / d, camp / d)
+    shutil.copytree(pair / "dofree_all", camp / "dofree_all_bk")
+    proc = subprocess.run([sys.executable, "-m", "driftwatch", "audit", str(camp), "-o",
+                           str(tmp_path / "out"), "--no-report"], capture_output=True, text=True,
+                          timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads((tmp_path / "out" / "campaign.json").read_text())
+    assert summary["copies"] == [["camp/dofree_all", "camp/dofree_all_bk"]]
+
+
+def test_a_codes_run_folder_stays_its_run_with_an_ase_trajectory_and_its_copy_beside(tmp_path):
+    """A real pw.x run folder that also holds an ASE optimiser's trajectory and a one-frame copy
+    of its last frame: the pw.x run is the folder's run, the two trajectories runs of their own
+    (not an ambiguous folder that loses the pw.x run)."""
+    from driftwatch.adapters.registry import scan_folder
+    d = tmp_path / "job"
+    shutil.copytree(Path(__file__).parent / "data" / "qe_trials" / "al1_fcc_vc_relax", d)
+    path, _ = _emt_relaxation(d, "relax", steps=300)
+    ase.io.write(d / "final.traj", ase.io.read(path, -1))
+    kind, pick = scan_folder(d)
+    assert kind == "run" and pick.stages[0][2] == "espresso-out"
+    assert sorted(pick.others) == ["final.traj", "relax.traj"]

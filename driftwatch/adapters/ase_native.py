@@ -239,10 +239,10 @@ def _optimiser_stopped(desc: dict, cells: list, first, last, ctx: ReadContext) -
         ctx.unfinished = (f"stopped at its step limit (the ASE optimiser's max_steps = {limit}; "
                           f"{said})")
         return
-    why = "killed, stopped early or still running"
-    ctx.warn(f"the ASE optimiser had not converged: {said}, after {n - 1} of "
-             f"{'its max_steps ' + str(limit) if limit else 'its'} steps ({why})")
-    ctx.unfinished = ctx.unfinished or f"stopped without converging (the ASE optimiser; {why})"
+    ctx.unfinished = ctx.unfinished or (
+        f"stopped without converging (the ASE optimiser: {said}, after {n - 1} of "
+        f"{'its max_steps ' + str(limit) if limit else 'its'} steps; killed, stopped early or "
+        f"still running)")
 
 
 _MOMENTA = "no class named; the frames' atomic momenta change"   # what tells MD with no description
@@ -731,24 +731,7 @@ def calculator_folder(folder, names, format, ctx):
     if not trajs or len(trajs) == len(names) == 1:      # nothing beside a lone trajectory
         return None
     folder = Path(folder)
-    opened, main = {}, None
-    for n in trajs:
-        got = _ends_of(folder / n)
-        if got is None:
-            return None                  # a trajectory ASE cannot open: a (failing) run of its own
-        if got[0] > 1:
-            if main is not None:
-                return None              # two of several frames: two runs (a folder of many)
-            main = n
-        opened[n] = got
-    if main is None:
-        return None
-    _, first, last = opened[main]
-    restarts = [n for n in trajs if n != main and _same_structure(opened[n][1], last)]
-    if len(restarts) != len(trajs) - 1:
-        return None
-    calculator = str(getattr(first.calc, "name", "") or "").lower()
-    logs, outputs = [], []
+    logs, outputs = [], []               # what beside the trajectories could be the calculator's
     for n in names:
         if n in trajs:
             continue
@@ -765,10 +748,33 @@ def calculator_folder(folder, names, format, ctx):
             except (DriftwatchError, OSError):
                 code = None
             if code is not None:
-                if _CALCULATOR_OUTPUTS.get(code[0], ("",))[0] != calculator:
-                    return None                 # another code's output: a run of its own
                 outputs.append((n, code[0]))
-    if len(logs) > 1 or not (logs or outputs or restarts):
+    if len(logs) > 1 or not (logs or outputs or len(trajs) > 1):
+        return None                      # (no trajectory opened: discovery stays cheap)
+    opened, main, single = {}, None, None
+    for n in trajs:
+        got = _ends_of(folder / n)
+        if got is None:
+            return None                  # a trajectory ASE cannot open: a (failing) run of its own
+        if got[0] > 1:
+            if main is not None:
+                return None              # two of several frames: two runs (a folder of many)
+            main = n
+        elif single is None:
+            single = got[1]
+        elif not _same_structure(single, got[1]):
+            return None                  # one-frame files of two structures: no restart copies
+        opened[n] = got
+    if main is None:
+        return None
+    _, first, last = opened[main]
+    restarts = [n for n in trajs if n != main and _restart_of(opened[n][1], last)]
+    if len(restarts) != len(trajs) - 1:
+        return None
+    calculator = str(getattr(first.calc, "name", "") or "").lower()
+    if any(_CALCULATOR_OUTPUTS.get(code, ("",))[0] != calculator for _, code in outputs):
+        return None                      # another code's output: a run of its own
+    if not (logs or outputs or restarts):
         return None
     for n in trajs + logs + [n for n, _ in outputs]:
         ctx.uses(folder / n)
@@ -803,6 +809,23 @@ def _gpaw_log_of(log: Path, first, last) -> bool:
         return any(_same_structure(fr, last)
                    for fr in iter_frames(log, "gpaw-out", context=ReadContext(log)))
     except Exception:  # noqa: BLE001 - a log that cannot be read here is a run of its own
+        return False
+
+
+def _restart_of(frame, last) -> bool:
+    """A one-frame trajectory is a calculator's restart file of the relaxation that ended at
+    ``last``: the same structure, and no calculator, or the same one with the same energy (a
+    single point of the final structure with another calculator is a run of its own)."""
+    if not _same_structure(frame, last):
+        return False
+    calc = getattr(frame, "calc", None)
+    if calc is None:
+        return True
+    mine = getattr(last, "calc", None)
+    try:
+        return mine is not None and str(calc.name) == str(mine.name) and abs(
+            frame.get_potential_energy() - last.get_potential_energy()) <= 1e-6
+    except Exception:  # noqa: BLE001 - no energy to compare: not the same calculation
         return False
 
 

@@ -552,10 +552,14 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     for code in _codes.values():
         got = code.function("folder")(folder, list(names), format, ctx)
         if got is not None:
-            claims.append(got)
-            got.others = tuple(_others(folder, names, got, code))
-            got.warnings = tuple(got.warnings) + tuple(
-                f"{n} beside it is another run (read on its own)" for n in got.others)
+            claims.append((code, got))
+    if len(claims) > 1:     # a code's run folder is that, an ASE trajectory in it a run of its own
+        claims = [(c, got) for c, got in claims if c.formats] or claims
+    for code, got in claims:
+        got.others = tuple(_others(folder, names, got, code))
+        got.warnings = tuple(got.warnings) + tuple(
+            f"{n} beside it is another run (read on its own)" for n in got.others)
+    claims = [got for _, got in claims]
     if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
         return "ambiguous", [st[1].name for c in claims for st in c.stages]
     if claims:
