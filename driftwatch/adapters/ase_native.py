@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import DriftwatchError, InputError
-from ._io import Lines, check_readable, peek, strip_compression
+from ._io import Lines, check_readable, peek, strip_compression, tail_bytes
 from .run import ReadContext, frame_from_atoms, note_calculator, note_fix_symmetry
 
 __all__ = ["read_traj", "read_extxyz", "read_db", "read_aims",
@@ -717,8 +717,9 @@ def calculator_folder(folder, names, format, ctx):
       (:func:`_gpaw_log_of`; GPAW's log also holds a line-search optimiser's trials);
     * the output of a code driftwatch has no reader for (CP2K, ABINIT, NWChem) when the
       trajectory's calculator is that code;
-    * a one-frame trajectory equal to its last frame (a calculator's restart file: ASE's CP2K
-      calculator writes ``cp2k_restart.traj``).
+    * a one-frame trajectory equal to its last frame, with no calculator or the same one at the
+      same energy (a calculator's restart file: ASE's CP2K calculator writes
+      ``cp2k_restart.traj``; :func:`_restart_of`).
 
     The trajectory is read and those are named in its warnings; after the steps, what only they
     say is taken (:func:`_calculator_files_say`). None when the folder holds nothing of these, or
@@ -850,7 +851,6 @@ def _calculator_files_say(logs: list, outputs: list, ctx: ReadContext, last) -> 
         _gpaw_log_says(log, ctx, last)
     for path, code in outputs:
         _, ended, line, per_step = _CALCULATOR_OUTPUTS[code]
-        from ._io import tail_bytes
         if code == "ABINIT":
             found = _ABINIT_NSYM.findall(peek_text(path, 1 << 22))
             if found:
