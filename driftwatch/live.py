@@ -813,6 +813,10 @@ class _Follower:
                 if end:
                     self.ended = f"end marker: {end}"
                     return self.finish()
+                limit = str(self.tracker.unfinished or "") if self.tracker is not None else ""
+                if limit.startswith("stopped at its step limit"):   # the reader saw the job end
+                    self.ended = "end marker: the run stopped at its step limit, as its reader says"
+                    return self.finish()
             quiet = time.monotonic() - last_growth
             if changed:
                 hushed = False

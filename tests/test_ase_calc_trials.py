@@ -354,3 +354,17 @@ def test_a_codes_run_folder_stays_its_run_with_an_ase_trajectory_and_its_copy_be
     kind, pick = scan_folder(d)
     assert kind == "run" and pick.stages[0][2] == "espresso-out"
     assert sorted(pick.others) == ["final.traj", "relax.traj"]
+
+
+def test_follow_ends_when_the_reader_sees_the_step_limit(tmp_path):
+    """A real EMT relaxation stopped at its step limit (ASE: 3 steps, not converged): `follow`
+    ends at once, judging the run ended, instead of waiting --idle and calling it still going."""
+    import io
+    from driftwatch import live
+    path, converged = _emt_relaxation(tmp_path, "short", steps=3)
+    assert not converged
+    out = io.StringIO()
+    rec = live.follow(path, idle=20, poll=0.2, stream=out)
+    assert rec["live"]["ended"].startswith("end marker: the run stopped at its step limit")
+    assert "judged as a run still going" not in out.getvalue()
+    assert "(unfinished: stopped at its step limit" in out.getvalue()
