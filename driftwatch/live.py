@@ -715,8 +715,9 @@ def follow(path, *, config=None, format=None, stop_on=(), dry_run=False, idle=30
     lattice is at, the two nearest types it is not at with their deformation in Å, and for layers
     the sign and signed chiral deformation), then the flags new at that step. Only completed steps
     are read (the adapters never yield a step still being written). Ends at the code's end marker
-    (:data:`END_MARKERS`: pw.x ``JOB DONE.``, VASP OUTCAR's timing block), or after ``idle`` seconds
-    without growth; while no step is complete it waits (``idle`` bounds that too).
+    (:data:`END_MARKERS`: pw.x ``JOB DONE.``, VASP OUTCAR's timing block), when the reader says the
+    run stopped at its step limit, or after ``idle`` seconds without growth; while no step is
+    complete it waits (``idle`` bounds that too).
 
     Args:
         path: output file or run folder (re-resolved while the job writes).
