@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import DriftwatchError, InputError
+from ..errors import DriftwatchError, ForeignOutputError, InputError
 from ._io import Lines, check_readable, peek, strip_compression, tail_bytes
 from .run import ReadContext, frame_from_atoms, note_calculator, note_fix_symmetry
 
@@ -740,16 +740,12 @@ def calculator_folder(folder, names, format, ctx):
         try:
             if detect(path) == "gpaw-out":
                 logs.append(n)
-            continue
+        except ForeignOutputError:              # an output of a code with no reader here
+            code = foreign_code(peek(path, 50_000))
+            if code is not None and strip_compression(n).lower().endswith(_FOREIGN_NAMES):
+                outputs.append((n, code[0]))
         except (DriftwatchError, OSError):
             pass
-        if strip_compression(n).lower().endswith(_FOREIGN_NAMES):
-            try:
-                code = foreign_code(peek(path, 50_000))
-            except (DriftwatchError, OSError):
-                code = None
-            if code is not None:
-                outputs.append((n, code[0]))
     if len(logs) > 1 or not (logs or outputs or len(trajs) > 1):
         return None                      # (no trajectory opened: discovery stays cheap)
     opened, main, single = {}, None, None
@@ -779,7 +775,8 @@ def calculator_folder(folder, names, format, ctx):
         return None
     for n in trajs + logs + [n for n, _ in outputs]:
         ctx.uses(folder / n)
-    if logs and not _gpaw_log_of(folder / logs[0], first, last):
+    told = [_gpaw_log_of(folder / n, first, last) for n in logs]
+    if None in told:
         return None
     traj = folder / main
     notes = [f"{n} beside it is this relaxation's GPAW log (it starts at the trajectory's first "
@@ -792,25 +789,25 @@ def calculator_folder(folder, names, format, ctx):
               f"restart file), not a run of its own" for n in restarts]
     return FolderPick([("", traj, "traj")], tuple(notes), also=tuple(logs + restarts) + tuple(
         n for n, _ in outputs), after=functools.partial(
-            _calculator_files_say, [folder / n for n in logs],
+            _calculator_files_say, [(folder / n, *t) for n, t in zip(logs, told)],
             [(folder / n, code) for n, code in outputs]))
 
 
-def _gpaw_log_of(log: Path, first, last) -> bool:
-    """True when a GPAW log is the log of the relaxation whose trajectory runs from ``first`` to
-    ``last``: its first configuration is ``first`` and it holds ``last`` (a log of another
-    relaxation from the same start, with other settings, ends elsewhere: a run of its own)."""
-    import io
-    import ase.io
+def _gpaw_log_of(log: Path, first, last):
+    """(its configurations' count, the log's own ReadContext) when a GPAW log is the log of the
+    relaxation whose trajectory runs from ``first`` to ``last``: its first configuration is
+    ``first`` and it holds ``last`` (a log of another relaxation from the same start, with other
+    settings, ends elsewhere: a run of its own); else None."""
     from .registry import iter_frames
+    said = ReadContext(log)
     try:
-        said = ase.io.read(io.StringIO(peek_text(log, 50_000)), index=0, format="gpaw-out")
-        if not _same_structure(said, first):
-            return False
-        return any(_same_structure(fr, last)
-                   for fr in iter_frames(log, "gpaw-out", context=ReadContext(log)))
+        frames = list(iter_frames(log, "gpaw-out", context=said))
     except Exception:  # noqa: BLE001 - a log that cannot be read here is a run of its own
-        return False
+        return None
+    if not (_same_structure(frames[0], first) and any(_same_structure(fr, last)
+                                                      for fr in frames)):
+        return None
+    return len(frames), said
 
 
 def _restart_of(frame, last) -> bool:
@@ -845,10 +842,11 @@ def _ends_of(path: Path):
 
 def _calculator_files_say(logs: list, outputs: list, ctx: ReadContext, last) -> None:
     """After the trajectory's steps (``last``: its last frame): what the calculator's files beside
-    it say of the run (see :func:`calculator_folder`): a GPAW log, :func:`_gpaw_log_says`; an
-    output of a code with no reader, that it ends without the code's closing line."""
-    for log in logs:
-        _gpaw_log_says(log, ctx, last)
+    it say of the run (see :func:`calculator_folder`): a GPAW log (``(path, configurations, its
+    ReadContext)``, read when the folder was picked), :func:`_gpaw_log_says`; an output of a code
+    with no reader, that it ends without the code's closing line."""
+    for log, n, said in logs:
+        _gpaw_log_says(log, n, said, ctx)
     for path, code in outputs:
         _, ended, line, per_step = _CALCULATOR_OUTPUTS[code]
         if code == "ABINIT":
@@ -870,30 +868,17 @@ def _calculator_files_say(logs: list, outputs: list, ctx: ReadContext, last) -> 
                      f"its calculator was never closed")
 
 
-def _gpaw_log_says(log: Path, ctx: ReadContext, last) -> None:
-    """What a relaxation's GPAW log says that its trajectory (read, ``last``: its last frame) does
-    not: the operations GPAW found (``nsym``) and a log that ends inside a configuration's
-    calculation (a job killed or still running). Taken only when the log holds the trajectory's
-    last step, else said."""
-    from .registry import iter_frames
-    said = ReadContext(log)
-    try:
-        frames = list(iter_frames(log, "gpaw-out", context=said))
-    except DriftwatchError as exc:
-        ctx.warn(f"{log.name} beside it, this relaxation's GPAW log, cannot be read "
-                 f"({exc.problem})")
-        return
-    if last is None or not any(_same_structure(fr, last) for fr in frames):
-        ctx.warn(f"{log.name} beside it does not hold the trajectory's last step (a log of "
-                 f"another run from the same start?): what it says is not taken")
-        return
+def _gpaw_log_says(log: Path, n: int, said: ReadContext, ctx: ReadContext) -> None:
+    """What a relaxation's GPAW log (``n`` configurations; ``said``: what reading it noted) says
+    that its trajectory does not: the operations GPAW found (``nsym``) and a log that ends inside
+    a configuration's calculation (a job killed or still running)."""
     if "nsym" in said.settings:
         ctx.settings.setdefault("nsym", said.settings["nsym"])
     if said.unfinished and not ctx.unfinished:
         why = said.unfinished.split(": ", 1)[-1]
         ctx.warn(f"{log.name} beside it, this relaxation's GPAW log, ends inside the calculation "
-                 f"of configuration {len(frames) + 1} ({why}): the trajectory's last step is the "
-                 f"last one GPAW completed")
+                 f"of configuration {n + 1} ({why}): the trajectory's last step is the last one "
+                 f"GPAW completed")
         ctx.unfinished = said.unfinished
 
 
