@@ -145,6 +145,20 @@ def _write_pmg(t, d):
     return p
 
 
+def _write_pmg_trajectory(t, d):
+    """pymatgen's own Trajectory of the frames (a cell per frame, energies and forces per frame),
+    saved as monty's dumpfn saves it (atomate2's traj_file_fmt='pmg')."""
+    from monty.serialization import dumpfn
+    from pymatgen.core.trajectory import Trajectory
+    from pymatgen.io.ase import AseAtomsAdaptor
+    structures = [AseAtomsAdaptor.get_structure(a) for a in _ase_images(t)]
+    props = [{"energy": float(e), "forces": f.tolist()} for e, f in zip(t.energies, t.forces)]
+    traj = Trajectory.from_structures(structures, constant_lattice=False)
+    traj.frame_properties = props
+    dumpfn(traj, d / "trajectory.json")
+    return d / "trajectory.json"
+
+
 def _write_error_archive(t, d):
     """custodian's own backup (custodian.utils.backup) of a VASP attempt, then its correction:
     CONTCAR copied to POSCAR for the next attempt (custodian's handlers)."""
@@ -163,7 +177,7 @@ WRITERS = {
     "vasp-xml": _write_vasp_xml, "vasp-out": _write_outcar, "vasp-xdatcar": _write_xdatcar,
     "vasp-poscar": _write_poscar, "traj": _write_traj, "extxyz": _write_extxyz,
     "ase-db": _write_db, "ase-json-db": lambda t, d: _write_db(t, d, "relax.json"),
-    "pymatgen-json": _write_pmg, "cif": _write_cif,
+    "pymatgen-json": _write_pmg, "cif": _write_cif, "pymatgen-trajectory": _write_pmg_trajectory,
 }
 BUILTIN = list(formats())
 # formats with no writer at hand: genuine files (tests/data/public/README.md) are the round trip
@@ -240,7 +254,8 @@ def test_every_registered_format_round_trips(name, traj, tmp_path):
     np.testing.assert_allclose(run.positions, traj.positions[:n], atol=1e-7, rtol=0)
     assert np.array_equal(run.numbers, traj.numbers)
     assert run.steps.tolist() == list(range(n))
-    if name in ("vasp-xml", "vasp-out", "traj", "extxyz", "ase-db", "ase-json-db"):
+    if name in ("vasp-xml", "vasp-out", "traj", "extxyz", "ase-db", "ase-json-db",
+                "pymatgen-trajectory"):
         np.testing.assert_allclose(run.energies, traj.energies, atol=1e-7)
         np.testing.assert_allclose(run.forces, traj.forces, atol=1e-7)
     if name in ("traj", "extxyz", "ase-db", "ase-json-db", "pymatgen-json"):

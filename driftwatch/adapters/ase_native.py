@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..errors import DriftwatchError, ForeignOutputError, InputError
+from ..errors import DriftwatchError, ForeignOutputError, InputError, NoIonicStepError
 from ._io import Lines, check_readable, peek, strip_compression, tail_bytes
 from .run import ReadContext, frame_from_atoms, note_calculator, note_fix_symmetry
 
@@ -290,6 +290,11 @@ class _FramesSay:
             self.ctx.settings["single_structure"] = f"{self.name}, one frame"
 
 
+# the file atomate2's ASE and force-field jobs append their final structure to
+# (``final_atoms_object_file`` of atomate2 0.1.5's ``AseRelaxer.relax``; tests/data/atomate2_ff)
+FINAL_STRUCTURES = "final_atoms_object.xyz"
+
+
 def read_extxyz(path, ctx: ReadContext):
     """Extended XYZ (or plain XYZ: then the cell is zero and pbc False), one frame at a time.
 
@@ -320,11 +325,17 @@ def read_extxyz(path, ctx: ReadContext):
     # batch.extxyz_frames yields (n, comment, line number, lines) per complete frame, then
     # (None, frames read, "frame" | "line", None) when the file ends abnormally
     said = _FramesSay(path, ctx)
+    finals = strip_compression(os.path.basename(path)) == FINAL_STRUCTURES
     if chosen is None:                       # the whole file is one run: stream it
         for n, a, b, block in batch.extxyz_frames(path):
             if n is None:
                 truncated(a, b)
                 return
+            if n == 1 and finals:
+                raise NoIonicStepError(path, f"atomate2's {FINAL_STRUCTURES} of several jobs "
+                                             f"(each appends its final structure, with nothing "
+                                             f"saying which job wrote it): no relaxation's steps",
+                                       "audit the jobs' task documents or trajectories")
             atoms = parse(block, b, n == 0)
             fr = frame_from_atoms(atoms, _step(atoms, n))
             said.see(atoms, fr)
@@ -605,12 +616,13 @@ def read_castep(path, ctx: ReadContext):
 def run_kind(code_settings: dict) -> str | None:
     """What the steps of a run read through ASE are when they are no relaxation, else None: a
     CASTEP run's ``type of calculation`` (geometry optimization is one; a single point or a band
-    structure has no ionic steps), FHI-aims' in words (:func:`_aims_steps`)."""
+    structure has no ionic steps), FHI-aims' in words (:func:`_aims_steps`), an atomate2
+    task document's (:mod:`driftwatch.adapters.pymatgen_json`)."""
     s = code_settings or {}
     what = s.get("calculation")
     if what is None or what == "geometry optimization":
         return None
-    if s.get("code") == "aims":
+    if s.get("code") in ("aims", "atomate2"):
         return what
     said = f"CASTEP: type of calculation : {what}"
     if what in ("single point energy", "band structure"):
@@ -719,7 +731,8 @@ def calculator_folder(folder, names, format, ctx):
       trajectory's calculator is that code;
     * a one-frame trajectory equal to its last frame, with no calculator or the same one at the
       same energy (a calculator's restart file: ASE's CP2K calculator writes
-      ``cp2k_restart.traj``; :func:`_restart_of`).
+      ``cp2k_restart.traj``; :func:`_restart_of`), or atomate2's one-frame
+      ``final_atoms_object.xyz`` of that frame (:data:`FINAL_STRUCTURES`).
 
     The trajectory is read and those are named in its warnings; after the steps, what only they
     say is taken (:func:`_calculator_files_say`). None when the folder holds nothing of these, or
@@ -733,8 +746,9 @@ def calculator_folder(folder, names, format, ctx):
         return None
     folder = Path(folder)
     logs, outputs = [], []               # what beside the trajectories could be the calculator's
+    finals = [n for n in names if strip_compression(n) == FINAL_STRUCTURES]
     for n in names:
-        if n in trajs:
+        if n in trajs or n in finals:
             continue
         path = folder / n
         try:
@@ -746,7 +760,7 @@ def calculator_folder(folder, names, format, ctx):
                 outputs.append((n, code[0]))
         except (DriftwatchError, OSError):
             pass
-    if len(logs) > 1 or not (logs or outputs or len(trajs) > 1):
+    if len(logs) > 1 or not (logs or outputs or finals or len(trajs) > 1):
         return None                      # (no trajectory opened: discovery stays cheap)
     opened, main, single = {}, None, None
     for n in trajs:
@@ -766,8 +780,9 @@ def calculator_folder(folder, names, format, ctx):
         return None
     _, first, last = opened[main]
     restarts = [n for n in trajs if n != main and _restart_of(opened[n][1], last)]
-    if len(restarts) != len(trajs) - 1:
+    if len(restarts) != len(trajs) - 1 or (finals and not _final_of(folder / finals[0], last)):
         return None
+    restarts += finals
     calculator = str(getattr(first.calc, "name", "") or "").lower()
     if any(_CALCULATOR_OUTPUTS.get(code, ("",))[0] != calculator for _, code in outputs):
         return None                      # another code's output: a run of its own
@@ -786,7 +801,9 @@ def calculator_folder(folder, names, format, ctx):
     notes += [f"{n} beside it is {code}'s output of this relaxation (the trajectory's calculator "
               f"is {code}): read {main}, the optimiser's steps" for n, code in outputs]
     notes += [f"{n} beside it is a one-frame copy of the trajectory's last frame (a calculator's "
-              f"restart file), not a run of its own" for n in restarts]
+              f"restart file), not a run of its own" for n in restarts if n not in finals]
+    notes += [f"{n} beside it is atomate2's copy of the trajectory's last frame, not a run of "
+              f"its own" for n in finals]
     return FolderPick([("", traj, "traj")], tuple(notes), also=tuple(logs + restarts) + tuple(
         n for n, _ in outputs), after=functools.partial(
             _calculator_files_say, [(folder / n, *t) for n, t in zip(logs, told)],
@@ -825,6 +842,18 @@ def _restart_of(frame, last) -> bool:
             frame.get_potential_energy() - last.get_potential_energy()) <= 1e-6
     except Exception:  # noqa: BLE001 - no energy to compare: not the same calculation
         return False
+
+
+def _final_of(path: Path, last) -> bool:
+    """atomate2's ``final_atoms_object.xyz`` holds one frame, ``last`` (its job's final
+    structure) and no other (several: final structures of several jobs, :func:`read_extxyz`)."""
+    import ase.io
+    try:
+        check_readable(path)
+        frames = ase.io.read(str(path), index=":", format="extxyz")
+    except Exception:  # noqa: BLE001 - a file ASE cannot read is a run (a failing one) of its own
+        return False
+    return len(frames) == 1 and _same_structure(frames[0], last)
 
 
 def _ends_of(path: Path):

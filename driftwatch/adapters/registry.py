@@ -221,9 +221,10 @@ def symmetry_setting(code_settings: dict, dimension: int = 3) -> dict | None:
     if fs:
         n, prec = fs.get("operations"), fs.get("symprec")
         tol = "its symprec not recorded" if prec is None else f"its symprec {prec:g} Å"
+        held = "the symmetry operations of the first structure" if n is None else \
+            f"{n} symmetry operations"                 # (an atomate2 document does not count them)
         return {"operations": n, "who": "the constraint",
-                "how": f"ASE's FixSymmetry constraint held {n} symmetry operations ({tol}) "
-                       f"through the relaxation",
+                "how": f"ASE's FixSymmetry constraint held {held} ({tol}) through the relaxation",
                 "undo": "no FixSymmetry constraint"}
     s = code_settings or {}          # an ASE run: the calculator's code, if it has a rule
     code = _code_named(s.get("code")) or _code_named(s.get("calculator"))
@@ -306,12 +307,12 @@ def _detect_file(path: Path) -> str:
             raise InputError(path, "compressed file is corrupt or cut before any data "
                                    "(nothing could be decompressed)")
         raise InputError(path, "empty file")
+    for pattern, what in _NOT_TRAJECTORIES_BY_CONTENT:     # whatever its name and the rest say
+        if pattern.search(head):
+            raise UnknownFormatError(path, f"{what}, not a file of ionic steps")
     for f in _formats.values():
         if f.magic is not None and f.magic.search(head):
             return f.name
-    for pattern, what in _NOT_TRAJECTORIES_BY_CONTENT:     # whatever its name says
-        if pattern.search(head):
-            raise UnknownFormatError(path, f"{what}, not a file of ionic steps")
     name = strip_compression(path.name).lower()
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
@@ -393,6 +394,11 @@ _NOT_TRAJECTORIES = (
 _NOT_TRAJECTORIES_BY_CONTENT = (
     (re.compile(rb"\Ahdbm v"), "NWChem's run-time database (pass the ASE trajectory the optimiser "
                                "wrote)"),
+    # maggma's JSONStore of a JobStore's additional store: a list of {"blob_uuid", "data", ...}
+    # (the Structures in its blobs would match pymatgen-json's magic)
+    (re.compile(rb'\A\s*\[\s*\{[^{}\[\]]{0,400}"blob_uuid"\s*:'),
+     "a jobflow store of large job outputs (blobs; the task documents of the store beside it "
+     "refer to them, and are read with them)"),
 )
 
 
@@ -984,7 +990,7 @@ def run_kind(code_settings: dict) -> str | None:
         return f"molecular dynamics (ASE's {s['dynamics']})"
     if s.get("code") == "ase" and s.get("dynamics_seen"):   # no description; what the frames show
         return f"molecular dynamics ({s['dynamics_seen']})"
-    if s.get("code") in ("castep", "aims"):             # read through ASE: no code table row
+    if s.get("code") in ("castep", "aims", "atomate2"):   # no code table row
         from .ase_native import run_kind as through_ase
         return through_ase(s)
     code = _code_named(s.get("code"))
@@ -1005,10 +1011,15 @@ register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite
          description="ASE database rows (SQLite .db; file.db@selection picks rows; "
                      "file.db::NAME one structure)", members=_A + "batch:db_names")
 register("task-doc", _A + "pymatgen_json:read_task_doc", globs=("*task*.json",),
-         magic=rb'"calcs_reversed"\s*:', description="workflow task document (JSON; "
-                                                    "calcs_reversed[].output.ionic_steps; a list of "
-                                                    "them: file::TASK_ID one document)",
+         magic=rb'"(?:calcs_reversed|ase_calculator_name|forcefield_name)"\s*:',
+         description="workflow task document (JSON; calcs_reversed[].output.ionic_steps, or "
+                     "atomate2's ASE and force-field output.ionic_steps; a list of them, or a "
+                     "jobflow store's: file::NAME one document)",
          members=_A + "pymatgen_json:task_doc_names")
+register("pymatgen-trajectory", _A + "pymatgen_json:read_pmg_trajectory", globs=(),
+         magic=rb'\A\s*\{[^{}\[\]]{0,300}"@class"\s*:\s*"Trajectory"',
+         description="pymatgen Trajectory in JSON (Trajectory.as_dict; atomate2's "
+                     "traj_file_fmt='pmg')")
 register("pymatgen-json", _A + "pymatgen_json:read_structures", globs=(),
          magic=rb'"@class"\s*:\s*"Structure"', description="pymatgen Structure list in JSON")
 register("ase-json-db", _A + "ase_native:read_db", globs=(),
