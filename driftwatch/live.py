@@ -38,8 +38,8 @@ from .adapters._io import tail_bytes
 from .adapters.registry import not_relaxation_note, run_kind
 from .adapters.run import (Frame, cell_jumps, collect, folder_listing, frame_from_atoms,
                            note_calculator, note_fix_symmetry, position_precision)
-from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotARunError,
-                     OutputError)
+from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotAnalysed,
+                     NotARunError, OutputError, UnknownFormatError)
 
 __all__ = ["SymmetryWatch", "SymmetryCollapse", "SymmetryDriftWarning", "Tracker", "follow",
            "request_stop", "check_run", "qe_stop_settings", "code_of_format", "END_MARKERS",
@@ -803,6 +803,9 @@ class _Follower:
                 if not self.read(ended=bool(end)) and not waited:
                     why = str(self.error or "")            # a job just started: no reason to say
                     plain = not why or "no completed ionic step" in why or "no such file" in why
+                    if isinstance(self.error, UnknownFormatError) and \
+                            not isinstance(self.error, NotAnalysed):  # a batch log's prologue,
+                        why = "no code's output in it yet"            # or a file of no format
                     self.say(f"driftwatch: waiting for the first completed ionic step in "
                              f"{self.path}" + ("" if plain else f" ({why})"))
                     waited = True

@@ -308,15 +308,79 @@ def file_size(path) -> int:
         return 0
 
 
-def peek(path, size: int = 50_000) -> bytes:
-    """The first ``size`` decompressed bytes (fewer if the file is shorter or cut)."""
+def peek(path, size: int = 50_000, start: int = 0) -> bytes:
+    """The first ``size`` decompressed bytes (fewer if the file is shorter or cut), from byte
+    ``start`` of the decompressed text."""
     try:
         with open_bytes(path) as fh:
+            _skip(fh, start)
             return fh.read(size)
     except NotRegularFile:
         raise
     except STREAM_ERRORS:
         return b""
+
+
+def _skip(fh, start: int) -> None:
+    """Move a binary stream to byte ``start``: a seek where it can, else read past the bytes."""
+    if not start:
+        return
+    if isinstance(getattr(fh, "raw", None), io.FileIO):        # a plain file
+        fh.seek(start)
+        return
+    while start > 0:
+        got = fh.read(min(start, 1 << 16))
+        if not got:
+            return
+        start -= len(got)
+
+
+def line_offsets(path, pattern: re.Pattern, limit: int | None = None) -> list[int]:
+    """The decompressed byte offsets of the lines where ``pattern`` (a bytes regex anchored with
+    ``^``, ``re.M``) matches, in file order, streamed in blocks; with ``limit``, the first one
+    found within ``limit`` bytes only ([] if none). A cut compressed stream gives what it held."""
+    out, base, carry = [], 0, b""
+    try:
+        with open_bytes(path) as fh:
+            while limit is None or base < limit:
+                block = fh.read(1 << 16)             # (memory stays flat)
+                if not block:
+                    break
+                buf = carry + block
+                cut = buf.rfind(b"\n") + 1
+                out += [base + m.start() for m in pattern.finditer(buf, 0, cut)]
+                base, carry = base + cut, buf[cut:]
+                if limit is not None and out:
+                    return out[:1]
+            out += [base + m.start() for m in pattern.finditer(carry)]
+    except NotRegularFile:
+        raise
+    except STREAM_ERRORS:
+        pass
+    return out[:1] if limit is not None else out
+
+
+class _Window:
+    """The bytes ``[start, end)`` of a binary stream (``end`` None: to its end), read with
+    ``read1`` as :class:`Lines` reads; ``raw`` is the stream's, so a cut stream still shows."""
+
+    def __init__(self, fh, start: int, end: int | None):
+        self._fh, self.raw = fh, getattr(fh, "raw", None)
+        _skip(fh, start)
+        self._left = None if end is None else end - start
+
+    def read1(self, n: int) -> bytes:
+        if self._left is not None:
+            if self._left <= 0:
+                return b""
+            n = min(n, self._left)
+        data = self._fh.read1(n)
+        if self._left is not None:
+            self._left -= len(data)
+        return data
+
+    def close(self):
+        self._fh.close()
 
 
 def tail_bytes(path, size: int = 8192) -> bytes:
@@ -367,9 +431,11 @@ class Lines:
 
     _READ = 1 << 16     # bytes decoded per read: lines are split from each block at once
 
-    def __init__(self, path, encoding="utf-8"):
+    def __init__(self, path, encoding="utf-8", window: tuple | None = None):
         self.name = os.fspath(path)
         self._bin = open_bytes(path, max_ratio=MAX_TEXT_RATIO)
+        if window is not None:              # (start, end) decompressed bytes: a part of the file
+            self._bin = _Window(self._bin, *window)
         # what io.TextIOWrapper(errors="replace", newline=None) does: \r\n and \r read as \n
         self._decode = io.IncrementalNewlineDecoder(
             codecs.getincrementaldecoder(encoding)(errors="replace"), translate=True).decode

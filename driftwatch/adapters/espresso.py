@@ -46,11 +46,11 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError, NoIonicStepError, NotPeriodicError
-from ._io import Lines, peek, strip_compression, tail_bytes
+from ._io import Lines, line_offsets, peek, strip_compression, tail_bytes
 from .run import Frame, ReadContext, decimals
 
 __all__ = ["read_pw_out", "read_pw_input", "read_pw_in_settings", "pick_from_folder",
-           "stop_settings", "symmetry_setting", "END_MARKERS"]
+           "stop_settings", "symmetry_setting", "END_MARKERS", "pw_run_names"]
 
 _START = "Program PWSCF"
 # how every pw.x (4.1 to 7.4 here) starts its output: the banner as a line of its own ("     Program
@@ -75,6 +75,11 @@ _CLOSERS = ("number of scf cycles", "BFGS Geometry Optimization", "End of BFGS",
             "bfgs converged", "Writing output data", "JOB DONE", "init_run     :",
             "Begin final coordinates", *_LIMITS, _CLOCK)
 _CLOSER = re.compile("|".join(map(re.escape, _CLOSERS)))
+# pw.x run with --ipi (i-PI's socket protocol; ASE's Espresso(...).socketio): it prints these
+# lines, computes each structure a driver sends and prints none of them (pw.x 6.7 here)
+_DRIVER = "@ DRIVER MODE:"
+_DRIVER_SAYS = ("pw.x in i-PI driver mode ('@ DRIVER MODE' lines): it computed the structures a "
+                "driver sent over a socket, and prints none of them")
 # pw.x found its <prefix>.EXIT file (driftwatch's soft stop, or the user's): it stops cleanly
 _ON_REQUEST = "Program stopped by user request"
 # pw.x's BFGS gave up (Modules/bfgs_module.f90: the trust radius fell below its minimum twice); it
@@ -392,11 +397,42 @@ def _isolated(path, said: str) -> NotPeriodicError:
 
 
 def read_pw_out(path, ctx: ReadContext):
-    """Stream the completed ionic steps of a pw.x output (plain or compressed)."""
+    """Stream the completed ionic steps of a pw.x output (plain or compressed). An output holding
+    several pw.x runs that do not continue one another (a job script's loop writing into one
+    log, :func:`pw_runs`) holds several runs, ``FILE::run1``, ``FILE::run3``, ...; read whole, it
+    gives its last one, with a warning naming the others."""
+    from .batch import SEPARATOR, listing, split
+    base, name = split(str(path))
+    runs = pw_runs(base)
+    if runs is None:
+        if name is not None:
+            raise InputError(base, f"this pw.x output holds one run (runs appended to it "
+                                   f"continue one another); '{SEPARATOR}{name}' names one of "
+                                   f"several")
+        yield from _read_pw(base, ctx)
+        return
+    names = [n for n, _, _ in runs]
+    if name is None:
+        name = names[-1]
+        ctx.warn(f"it holds {len(runs)} pw.x runs that do not continue one another "
+                 f"({listing(names)}): read here is the last, {name}; each is a run of its own, "
+                 f"read as FILE{SEPARATOR}NAME (an audit lists each)")
+    elif name not in names:
+        raise InputError(base, f"no pw.x run {name!r} in it (its runs: {listing(names)})")
+    _, start, end = runs[names.index(name)]
+    ctx.structure = {"key": "pw.x run", "value": name}
+    yield from _read_pw(base, ctx, (start, end), int(name[3:]) - 1)
+
+
+def _read_pw(path, ctx: ReadContext, window: tuple | None = None, first_run: int = 0):
+    """The steps of the pw.x runs of an output, or of the part ``window`` (decompressed bytes
+    ``(start, end)``) that holds runs ``first_run + 1``, ... of it. Leaves in ``ctx.carry
+    ["espresso-runs"]`` what :func:`pw_runs` needs of each run: its header structure, its first
+    BFGS step, where it ended."""
     from ase.io.espresso import get_atomic_positions, get_cell_parameters
     _, Ry = _units()
 
-    taken = given = _settings_from_input(path, ctx)
+    taken = given = _settings_from_input(path, ctx, None if window is None else window[0])
     shown = None        # the calculation pw.x's own dynamics lines show (_DYNAMICS), or None
     cell_moved = False  # pw.x printed a new unit-cell volume or variable-cell dynamics
     bfgs = False        # pw.x printed its BFGS geometry optimisation
@@ -421,6 +457,7 @@ def read_pw_out(path, ctx: ReadContext):
     nscf = False        # a run of this file was 'Band Structure Calculation'
     per_run: list[int] = []     # frames emitted per pw.x run (header) in this file
     run_nsym: list = []         # the symmetry operations each run reported (None: not said)
+    infos: list[dict] = []      # each run: header structure, first BFGS step, where it ended
     carried = ctx.carry.pop("espresso-unevaluated", None)
 
     def emit(cfg):
@@ -434,6 +471,7 @@ def read_pw_out(path, ctx: ReadContext):
                    stress=cfg.stress)
         step += 1
         per_run[-1] += 1
+        infos[-1]["last"] = (cfg.cell, cfg.positions, cfg.numbers)
         return fr
 
     def ready(cfg):
@@ -469,7 +507,7 @@ def read_pw_out(path, ctx: ReadContext):
                  f"is left out (read the run folder with the previous stage to include it)")
         return False
 
-    with Lines(path) as fh:
+    with Lines(path, window=window) as fh:
         while True:
             line = fh.skip_to(_MARKS)
             if not line:
@@ -480,6 +518,8 @@ def read_pw_out(path, ctx: ReadContext):
                 at_limit = on_request = gave_up = False     # a new run: its own end decides
                 halted = error = None
                 restored = unevaluated(cur) if cur is not None else carried
+                if infos:
+                    infos[-1]["next"] = restored
                 restored_index = cur.index if cur is not None and restored is not None else None
                 seen_start = True
                 header, ended = [line], False
@@ -493,6 +533,9 @@ def read_pw_out(path, ctx: ReadContext):
                     if ln.lstrip().startswith(_ERROR):     # an input pw.x refused
                         error = _banner_said(ln, fh)
                     header.append(ln)
+                if any(_DRIVER in ln for ln in header):
+                    raise NoIonicStepError(path, _DRIVER_SAYS, "audit the driver's trajectory "
+                                           "(an ASE optimiser's, its trajectory= file)")
                 if any(_ON_REQUEST in ln for ln in header):    # its .EXIT file was there at start
                     if not step:
                         raise InputError(path, f"no ionic step: pw.x stopped on request before "
@@ -540,6 +583,8 @@ def read_pw_out(path, ctx: ReadContext):
                 if _NSCF_START in ln:
                     nscf = True
                 per_run.append(0)
+                infos.append({"header": (cell, pos, numbers), "bfgs": None, "last": None,
+                              "next": None})
                 nconf += 1
                 if "!    total energy" in ln:
                     cur.energy = float(ln.split()[-2]) * Ry
@@ -607,6 +652,8 @@ def read_pw_out(path, ctx: ReadContext):
                 nconf += 1
                 pending_cell = None
             elif _BFGS_STEPS.match(line):
+                if infos[-1]["bfgs"] is None:
+                    infos[-1]["bfgs"] = int(_BFGS_STEPS.match(line).group(1))
                 if cur.from_header and not cur.bfgs_seen:
                     cur.bfgs_seen = True
                     n = int(_BFGS_STEPS.match(line).group(1))
@@ -671,11 +718,14 @@ def read_pw_out(path, ctx: ReadContext):
                                             "bfgs" if bfgs else shown,
                                             done and not (stops or on_request or error), step)
         if contradiction:
-            _undo_input(given, ctx, contradiction)
+            _undo_input(given, ctx, contradiction, len(per_run) > 1)
             if shown is not None:
                 ctx.settings["calculation"] = shown
         ctx.carry["espresso-unevaluated"] = unevaluated(cur)
-        runs = [(f"run{k + 1}", n) for k, n in enumerate(per_run) if n]
+        if infos:
+            infos[-1]["next"] = unevaluated(cur)
+        ctx.carry["espresso-runs"] = infos
+        runs = [(f"run{first_run + k + 1}", n) for k, n in enumerate(per_run) if n]
         if len(per_run) > 1 and len(runs) > 1:
             ctx.file_stages = runs
         if done and not ionic and step == len(runs) and max(per_run, default=0) == 1 and \
@@ -763,14 +813,15 @@ def read_pw_in_settings(path) -> dict:
 _READS = re.compile(rb"Reading input from (\S+)[ \t]*\r?$", re.M)
 
 
-def _input_for(out_path: Path, ctx: ReadContext | None = None):
+def _input_for(out_path: Path, ctx: ReadContext | None = None, start: int | None = None):
     """The pw.x input of an output: the file its header names ("Reading input from NAME", when it
-    lies beside it), else ``<stem>.in``, ``<stem>.pwi``, ``pw.in`` (any compression), else the only
-    ``*.in`` in the folder that holds ``&control`` or ``&system``."""
+    lies beside it; the header of the run at ``start``, the first by default), else
+    ``<stem>.in``, ``<stem>.pwi``, ``pw.in`` (any compression), else the only ``*.in`` in the
+    folder that holds ``&control`` or ``&system``."""
     folder = out_path.parent
     if ctx is not None:
         ctx.lists(folder)
-    named = _READS.search(peek(out_path, 8000))
+    named = _READS.search(peek(out_path, 8000, _banner_at(out_path) if start is None else start))
     if named:
         p = folder / os.path.basename(named.group(1).decode(errors="replace"))
         if p.is_file() and not _same_file(p, out_path):
@@ -804,10 +855,11 @@ def _looks_like_pw_in(p: Path, ctx: ReadContext | None = None) -> bool:
     return b"&control" in head or b"&system" in head
 
 
-def _settings_from_input(path, ctx: ReadContext):
+def _settings_from_input(path, ctx: ReadContext, start: int | None = None):
     """Put the settings of the output's pw.x input into ``ctx.settings``; return (input name,
-    settings, its (nat, ntyp)) for :func:`_check_input` to undo, or None."""
-    pin = _input_for(Path(path), ctx)
+    settings, its (nat, ntyp)) for :func:`_check_input` to undo, or None. ``start``: where the
+    run read begins in the output (decompressed bytes), the first banner's by default."""
+    pin = _input_for(Path(path), ctx, start)
     if pin is None:
         return None
     ctx.uses(pin)
@@ -869,14 +921,18 @@ def _input_contradicted(settings: dict, taken, ionic: bool, cell_moved: bool,
     return None
 
 
-def _undo_input(taken, ctx: ReadContext, why: str) -> None:
+def _undo_input(taken, ctx: ReadContext, why: str, several: bool = False) -> None:
+    """Drop the settings taken from the input ``taken`` and say ``why``; ``several``: the run
+    read is several pw.x runs of one output (a restart, a vc-relax after a relax), the input
+    the first one's."""
     name, got, _ = taken
     for key in (*got, "settings_from"):
         ctx.settings.pop(key, None)
     if "nsym" in ctx.settings:                     # as an output read alone says it
         ctx.settings["code"] = "espresso"
-    ctx.warn(f"the pw.x input {name} beside it is not this output's ({why}): its settings are "
-             f"not used")
+    whose = (f"the pw.x input {name} of its first pw.x run does not hold for the runs after it"
+             if several else f"the pw.x input {name} beside it is not this output's")
+    ctx.warn(f"{whose} ({why}): its settings are not used")
 
 
 # ---------------------------------------------------------------- folders
@@ -887,11 +943,22 @@ _MONTHS = {m: k for k, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun",
                                       "Sep", "Oct", "Nov", "Dec"), 1)}
 
 
+_SCAN_LIMIT = 1 << 20
+"""Bytes: how far into a file pw.x's banner is looked for. A batch job's log holds its site's
+prologue first (module lists, an environment dump: 50-200 kB in real logs)."""
+
+
+def _banner_at(path) -> int:
+    """The decompressed byte offset of the first pw.x banner line within :data:`_SCAN_LIMIT`
+    (0 when there is none)."""
+    return (line_offsets(path, _BANNER, _SCAN_LIMIT) or [0])[0]
+
+
 def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
     if ctx is not None:
         ctx.uses(p)
     try:
-        return p.is_file() and _BANNER.search(peek(p, 4000)) is not None
+        return p.is_file() and bool(line_offsets(p, _BANNER, _SCAN_LIMIT))
     except OSError:
         return False
 
@@ -912,7 +979,7 @@ def pw_outputs(folder: Path, names, ctx: ReadContext | None = None) -> list[Path
 def started(path) -> tuple | None:
     """(year, month, day, hour, minute, second) of pw.x's ``starts on 3Dec2026 at 12:39:11`` line,
     or None."""
-    m = _STARTS.search(peek(path, 4000))
+    m = _STARTS.search(peek(path, 4000, _banner_at(path)))
     if not m or m.group(2).decode().title() not in _MONTHS:
         return None
     d, mon, y, hh, mm, ss = m.groups()
@@ -986,12 +1053,81 @@ def continues(prev: Path, nxt: Path) -> bool:
     ends = _end_structures(prev)
     if head is None or not ends:
         return False
-    if (first_bfgs_step(nxt) or 0) > 0:
+    return _continues(_header_structure(prev), ends, head, first_bfgs_step(nxt))
+
+
+def _continues(start, ends: list, head, bfgs: int | None) -> bool:
+    """A run that started at ``start`` and ended at ``ends`` (its last step, and the next
+    configuration it printed unevaluated) is continued by one whose header is ``head`` and whose
+    first BFGS step is ``bfgs``: the rule of :func:`continues`."""
+    if (bfgs or 0) > 0:
         return np.array_equal(head[2], ends[0][2])
-    start = _header_structure(prev)
     if start is not None and all(_same_structure(start, end) for end in ends):
         return False
     return any(_same_structure(head, end) for end in ends)
+
+
+def _run_continues(a: dict, b: dict) -> bool:
+    """Run ``b`` of an output continues run ``a`` before it (their ``_read_pw`` notes): by
+    :func:`continues`' rule, or as single points one after another on structures that moved (a
+    driver outside pw.x computing its steps: nomad-coe's genuine three appended SCFs,
+    tests/data/public_more), which are one run of single points, as they always were."""
+    ends = [e for e in (a["last"], a["next"]) if e is not None]
+    if not ends:
+        return False
+    if _continues(a["header"], ends, b["header"], b["bfgs"]):
+        return True
+    b_ends = [e for e in (b["last"], b["next"]) if e is not None]
+    single = all(_same_structure(a["header"], e) for e in ends) and b_ends and \
+        all(_same_structure(b["header"], e) for e in b_ends)
+    return bool(single) and np.array_equal(a["header"][2], b["header"][2]) and \
+        not _same_structure(a["header"], b["header"])
+
+
+_RUNS: dict = {}
+""":func:`pw_runs` of the outputs seen last, keyed by (path, size, mtime)."""
+
+
+def pw_runs(path) -> list | None:
+    """``[(name, start, end)]``: the runs of a pw.x output that holds several pw.x runs not
+    continuing one another (a job script's loop: an scf then a relax of the same structure, one
+    relaxation at two cutoffs, two structures), each one or more pw.x runs (a restart appended to
+    the same output continues it: :func:`continues`' rule), named by its first pw.x run
+    (``run1``, ``run3``), with its decompressed bytes ``[start, end)``; None when the output is
+    one run."""
+    st = os.stat(path)
+    key = (os.fspath(path), st.st_size, st.st_mtime_ns)
+    if key in _RUNS:
+        return _RUNS[key]
+    offsets, got = line_offsets(path, _BANNER), None
+    if len(offsets) > 1:
+        ctx = ReadContext(path)
+        try:
+            for _ in _read_pw(path, ctx):
+                pass
+            infos = ctx.carry.get("espresso-runs") or []
+        except Exception:  # noqa: BLE001 - an output that cannot be read whole is one run
+            infos = []
+        if len(infos) == len(offsets):
+            groups = [[0]]
+            for k in range(1, len(infos)):
+                if _run_continues(infos[k - 1], infos[k]):
+                    groups[-1].append(k)
+                else:
+                    groups.append([k])
+            if len(groups) > 1:
+                bounds = offsets + [None]
+                got = [(f"run{g[0] + 1}", offsets[g[0]], bounds[g[-1] + 1]) for g in groups]
+    if len(_RUNS) >= 256:
+        _RUNS.clear()
+    _RUNS[key] = got
+    return got
+
+
+def pw_run_names(path, structure_keys=()) -> list[str]:
+    """The runs of a pw.x output of several (:func:`pw_runs`; discovery lists ``FILE::run1``,
+    ...), [] for an output of one run."""
+    return [name for name, _, _ in pw_runs(path) or ()]
 
 
 def _as_stages(outs: list[Path], ctx) -> list | None:
@@ -1045,6 +1181,8 @@ def _single_point_traj(folder: Path, names, out: Path, ctx):
     from .registry import beside_single_point
 
     def single_point():
+        if _DRIVER.encode() in peek(out, 20_000, _banner_at(out)):
+            return "pw.x in i-PI driver mode", "its output prints none of the structures it computed"
         pin = _input_for(out, ctx)
         try:
             calc = read_pw_input(pin)["calculation"] if pin is not None else None
@@ -1067,6 +1205,8 @@ def pick_from_folder(folder: Path, names, format=None, ctx=None):
         return None
     outs = pw_outputs(folder, names, ctx)
     if len(outs) == 1:
+        if pw_runs(outs[0]) is not None:     # a log of several runs: each is listed (FILE::run1)
+            return None
         return _single_point_traj(folder, names, outs[0], ctx) or \
             FolderPick([("", outs[0], "espresso-out")])
     if not outs:                  # an output emptied by a rerun (`pw.x < pw.in > pw.out` just
@@ -1098,6 +1238,8 @@ def inputs_only(folder: Path, names, ctx=None) -> tuple[str, list] | None:
     ``*.inp`` holding ``&control`` or ``&system``) and no pw.x output: a job not run yet, or one
     that stopped before writing; else None. Called for folders :func:`pick_from_folder` did not
     take as a run."""
+    if pw_outputs(folder, names, ctx):      # (a log of several runs, listed one by one)
+        return None
     got = [n for n in names if _is_input_name(n) and _looks_like_pw_in(Path(folder) / n, ctx)]
     crash = crash_message(folder, names, ctx)
     if crash:          # pw.x wrote its CRASH file, and no output holds an ionic step
@@ -1278,7 +1420,9 @@ def register_all(register, register_code) -> None:
     """The pw.x row of the format table and the pw.x entry of the code table."""
     from .registry import Code
     register("espresso-out", __name__ + ":read_pw_out", globs=("*.pwo", "*pw*.out"),
-             magic=_BANNER, description="Quantum ESPRESSO pw.x output")
+             magic=_BANNER, description="Quantum ESPRESSO pw.x output (a log of several pw.x "
+                                        "runs that do not continue one another: file::run1 one)",
+             members=__name__ + ":pw_run_names")
     register_code(Code(
         name="espresso", label="Quantum ESPRESSO pw.x",
         aliases=("qe", "pw.x", "pwscf", "quantum-espresso"),

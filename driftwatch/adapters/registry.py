@@ -50,6 +50,10 @@ __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format",
            "scan_folder", "symmetry_setting", "recognised", "structures"]
 
 PEEK_BYTES = 50_000
+LOG_PEEK_BYTES = 1 << 20
+"""Bytes searched for a format's magic in a file named as a batch job's log (:data:`_LOG_NAME`),
+whose site prologue (module lists, an environment dump) can come before the code's output."""
+_LOG_NAME = re.compile(r"\.(out|log|o\d+)$")      # Slurm's slurm-JOB.out, PBS/SGE's NAME.oJOB
 ENTRY_POINT_GROUP = "driftwatch.adapters"
 
 
@@ -314,6 +318,11 @@ def _detect_file(path: Path) -> str:
         if f.magic is not None and f.magic.search(head):
             return f.name
     name = strip_compression(path.name).lower()
+    if len(head) == PEEK_BYTES and _LOG_NAME.search(name):   # a batch log: a prologue first
+        deeper = peek(path, LOG_PEEK_BYTES)
+        for f in _formats.values():
+            if f.magic is not None and f.magic.search(deeper):
+                return f.name
     for f in _formats.values():
         if any(fnmatch.fnmatchcase(name, g.lower()) for g in f.globs):
             return f.name
@@ -511,8 +520,8 @@ def beside_single_point(folder, names, output, single_point: Callable[[], str | 
     one trajectory of another format: the relaxation an ASE optimiser drove, calling the code once
     per step (the output holds the last step only). ``single_point()``: what makes the output one
     (``"calculation = 'scf'"``), or None; asked only when a file named like another format's
-    (``relax.traj``) is there. None when the output is no single point, or no such trajectory, or
-    several, are there."""
+    (``relax.traj``) is there; or ``(what the output is, what it holds)``. None when the output
+    is no single point, or no such trajectory, or several, are there."""
     other = [f for f in _formats.values() if f.name not in code_formats]
     names = [n for n in names if any(fnmatch.fnmatchcase(strip_compression(n).lower(), g.lower())
                                      for f in other for g in f.globs)]
@@ -530,9 +539,11 @@ def beside_single_point(folder, names, output, single_point: Callable[[], str | 
     (path, fmt), = found
     if ctx is not None:
         ctx.uses(path)
+    what, holds = what if isinstance(what, tuple) else \
+        (f"a single-point calculation ({what})", "the code's output holds its last step only")
     return FolderPick([("", path, fmt)], (
-        f"{output}: a single-point calculation ({what}) beside {path.name}: read {path.name}, the "
-        f"relaxation an ASE optimiser drove (the code's output holds its last step only)",))
+        f"{output}: {what} beside {path.name}: read {path.name}, the relaxation an ASE optimiser "
+        f"drove ({holds})",))
 
 
 def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None):
