@@ -719,6 +719,9 @@ _CALCULATOR_OUTPUTS = {
                "'Calculation completed.'", True),
     "NWChem": ("nwchem", re.compile(rb"^ Total times", re.M), "'Total times'", True),
 }
+CLOSING_LINES = {code: (line, said) for code, (_, line, said, _) in _CALCULATOR_OUTPUTS.items()}
+"""The line each of those codes prints as it ends, and it in words (an output without it was
+cut short: the registry says so of such an output listed alone)."""
 
 
 def calculator_folder(folder, names, format, ctx):

@@ -41,7 +41,7 @@ from typing import Callable, Iterator
 
 from ..errors import (AtomsChangeError, DamagedFrameError, DriftwatchError, ForeignOutputError,
                       InputError, NotARunError, UnknownFormatError)
-from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression
+from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression, tail_bytes
 from .batch import PART_FORMATS, wal_of
 from .run import Frame, ReadContext, Run, StraightLine, checked, collect
 
@@ -314,6 +314,10 @@ def _detect_file(path: Path) -> str:
     for pattern, what in _NOT_TRAJECTORIES_BY_CONTENT:     # whatever its name and the rest say
         if pattern.search(head):
             raise UnknownFormatError(path, f"{what}, not a file of ionic steps")
+    if _CP2K_POSITIONS.search(head):                   # a plain XYZ by its name: no cell in it
+        raise ForeignOutputError(path, "CP2K's positions file of a run (no cell: CP2K writes the "
+                                       "cell of each step to PROJECT-1.cell and its output)",
+                                 _CP2K_TO_XYZ)
     for f in _formats.values():
         if f.magic is not None and f.magic.search(head):
             return f.name
@@ -329,7 +333,7 @@ def _detect_file(path: Path) -> str:
     code = foreign_code(head)
     if code:
         raise ForeignOutputError(path, f"an output of {code[0]}, which driftwatch has no reader "
-                                       f"for", code[1])
+                                       f"for{_cut_short(path, code[0])}", code[1])
     seen = next((what for pattern, what in _NOT_TRAJECTORIES if pattern.search(head)), None)
     if seen:                    # known for what it is: no format would read it
         raise UnknownFormatError(path, f"{seen}, not a file of ionic steps")
@@ -343,7 +347,17 @@ def _detect_file(path: Path) -> str:
 # them unsaid
 _TO_XYZ = "write its ionic steps to extended XYZ (e.g. with ASE, where it reads them) and audit that"
 _MOLECULAR = "nothing for a molecule (driftwatch audits periodic cells); a periodic run: " + _TO_XYZ
-_FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
+# where the steps of each code's own optimiser are (CP2K 2023.1, ABINIT 9.6.2, Elk 8.4.30 runs made
+# here, tests/data/native_trials; ASE 3.29 reads none of the CP2K files, nor ABINIT's steps: its
+# reader of the .abo gives one structure, and its cell without acell)
+_CP2K_TO_XYZ = ("write its steps to extended XYZ with their cells (PROJECT-pos-1.xyz holds the "
+                "positions in Å; PROJECT-1.cell the cell of each step, when MOTION/PRINT/CELL is "
+                "on) and audit that")
+_ABINIT_TO_XYZ = ("write the steps of its *_HIST.nc (rprimd in bohr, xred, etotal in Ha) to "
+                  "extended XYZ and audit that")
+_ELK_TO_XYZ = ("write the steps of its GEOMETRY_OPT.OUT (lattice vectors in bohr, atoms in "
+               "lattice coordinates) to extended XYZ and audit that")
+_FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _CP2K_TO_XYZ),
             (re.compile(rb"^[ \t]*Program NEB v\.", re.M), "Quantum ESPRESSO's neb.x",
              "nothing: its images are points of a path, not a relaxation's steps"),
             (re.compile(rb"^[ \t]*Program PHONON v\.", re.M), "Quantum ESPRESSO's ph.x",
@@ -353,12 +367,33 @@ _FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _TO_XYZ),
              _MOLECULAR),
             # ABINIT 9.6's main output (.abo; its log, which repeats the banner after a line of
             # its own, is not listed again); NWChem 7.0's output (as ASE names it, .nwo)
-            (re.compile(rb"\A\s*\.Version \S+ of ABINIT"), "ABINIT", _TO_XYZ),
+            (re.compile(rb"\A\s*\.Version \S+ of ABINIT"), "ABINIT", _ABINIT_TO_XYZ),
             (re.compile(rb"Northwest Computational Chemistry Package \(NWChem\)"), "NWChem",
-             _TO_XYZ))
+             _TO_XYZ),
+            # Elk's INFO.OUT (its stdout, which repeats the start, is not listed again)
+            (re.compile(rb"\A\+-+\+\s*\| Elk version \S+ started \|"), "Elk", _ELK_TO_XYZ))
 # where discovery looks for them (outputs' usual names; ABINIT's .abo, NWChem's .nwo, as ASE
 # names it)
 _FOREIGN_NAMES = (".out", ".log", ".txt", ".abo", ".nwo")
+
+
+# CP2K's PROJECT-pos-1.xyz of a geometry or cell optimisation: plain XYZ whose comment is
+# "i = N, E = ..." (with ", time = ..." in MD); CP2K 2023.1's, tests/data/native_trials
+_CP2K_POSITIONS = re.compile(rb"\A[ \t]*\d+[ \t]*\r?\n[ \t]*i =[ \t]*\d+,(?:[ \t]*time =[^,\n]*,)?"
+                             rb"[ \t]*E =")
+
+
+def _cut_short(path, code: str) -> str:
+    """", cut short: ..." when the output of ``code`` (a code with no reader here whose closing
+    line is known: :data:`~driftwatch.adapters.ase_native.CLOSING_LINES`) ends without it."""
+    from .ase_native import CLOSING_LINES
+    if code not in CLOSING_LINES:
+        return ""
+    line, said = CLOSING_LINES[code]
+    if line.search(tail_bytes(path, 65536)):
+        return ""
+    return f", cut short: it ends without {code}'s closing {said} (killed, stopped on an " \
+           f"error, or still running)"
 
 
 def foreign_code(head: bytes) -> tuple[str, str] | None:
@@ -611,7 +646,19 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
             if beside:
                 return "inputs-of", _inputs_of_why(folder, beside)
             return "inputs", (got[0], [n for n in files if file_size(folder / n)], *got[2:])
-    return "files", _one_per_run(files)
+    return "files", _one_per_run(_cp2k_parts(folder, names, files))
+
+
+def _cp2k_parts(folder: Path, names, files: list) -> list:
+    """``files`` without CP2K's positions files (``PROJECT-pos-1.xyz``) when an output of CP2K is
+    in the folder: they are that run's, which is listed (skipped) by its output."""
+    parts = [n for n in files if re.search(r"-pos-\d+\.xyz$", strip_compression(n))
+             and _CP2K_POSITIONS.search(peek(folder / n, 256))]
+    if parts and any(strip_compression(n).lower().endswith(_FOREIGN_NAMES) and
+                     (foreign_code(peek(folder / n, PEEK_BYTES)) or ("",))[0] == "CP2K"
+                     for n in names):
+        return [n for n in files if n not in parts]
+    return files
 
 
 def _one_per_run(files: list) -> list:
@@ -710,14 +757,18 @@ def inputs_only_problem(got: tuple, folder) -> str:
 
 def _others(folder: Path, names, pick: FolderPick, code: Code) -> list[str]:
     """The files beside a code's run that a format of no code or of another code reads, by name
-    first (only those are opened): runs of their own, never dropped unsaid."""
+    first (only those are opened), and outputs of codes with no reader (:func:`foreign_output`):
+    runs of their own (those skipped), never dropped unsaid."""
     used = {Path(src).name for _, src, _ in pick.stages} | set(pick.also)
     foreign = [f for f in _formats.values() if f.name not in code.formats and f.globs]
     out = []
     for n in names:
+        if n in used:
+            continue
         low = strip_compression(n).lower()
-        if n in used or not any(fnmatch.fnmatchcase(low, g.lower()) for f in foreign
-                                for g in f.globs):
+        if not any(fnmatch.fnmatchcase(low, g.lower()) for f in foreign for g in f.globs):
+            if foreign_output(Path(folder) / n):
+                out.append(n)
             continue
         fmt = _safe_detect(Path(folder) / n)
         if fmt is not None and fmt not in code.formats and fmt != "vasp-error-archive":
@@ -740,6 +791,9 @@ def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pi
         raise NotARunError(path, got)
     if not got:
         hint = f" readable as {format!r}" if format else ""
+        outputs = [n for n in sorted(os.listdir(path)) if foreign_output(path / n)]
+        if len(outputs) == 1 and format is None:     # a run of a code with no reader: say so
+            detect(path / outputs[0])                 # (raises ForeignOutputError, naming it)
         below = _runs_in_subfolders(path)
         raise (NotARunError if below else InputError)(   # a campaign's folder: no run to wait for
             path, f"not a run folder: no VASP (vasprun.xml, OUTCAR, XDATCAR, CONTCAR/POSCAR), pw.x "
