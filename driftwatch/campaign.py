@@ -238,7 +238,13 @@ def discover(roots, *, include=(), exclude=(), skip=(),
             found = [] if real in seen_runs else _file_runs(str(root), name, structure_keys)
             seen_runs.add(real)
         else:
-            found = _walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys)
+            walked = os.path.realpath(root) in seen_dirs          # (inside a root before it)
+            found = list(_walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys))
+            if not found and not walked and len(roots) > 1:
+                # a folder named beside others that holds nothing driftwatch reads: said, as the
+                # audit of it alone says it
+                failed.append({"run": name, "source": str(root),
+                               "error": f"{root}: " + _why_empty((), (), (), ())})
         for item in found:
             if isinstance(item, dict):
                 spec = RunSpec(item["run"], item["source"], "folder")

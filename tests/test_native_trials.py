@@ -92,3 +92,19 @@ def test_inspecting_a_native_runs_folder_names_its_output(case):
     with pytest.raises(ForeignOutputError, match="an output of (ABINIT|Elk|CP2K)") as exc:
         read_run(DATA / case)
     assert exc.value.path == str(DATA / case / NATIVE[case])
+
+
+def test_a_root_named_beside_others_that_holds_no_run_is_said(tmp_path):
+    """An audit of two roots, one of which holds nothing driftwatch reads (Elk's geometry files
+    without its INFO.OUT): it vanished from the counts, exit 0; it is now a failed entry saying
+    so, as the audit of it alone says it (exit 1 there). A root inside another is no entry."""
+    geometry = tmp_path / "elk_geometry_only"
+    geometry.mkdir()
+    for n in ("GEOMETRY.OUT", "GEOMETRY_OPT.OUT", "TOTENERGY_OPT.OUT"):
+        shutil.copy(DATA / "elk_vc" / n, geometry / n)
+    runs, failed = discover([geometry, DATA / "pw_vc"])
+    assert [r.id for r in runs] == ["pw_vc"]
+    assert [f["run"] for f in failed] == ["elk_geometry_only"]
+    assert "no run found: no file or run folder here is one driftwatch reads" in failed[0]["error"]
+    runs, failed = discover([DATA, DATA / "pw_vc"])
+    assert not failed and len(runs) == 13
