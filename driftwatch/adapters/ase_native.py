@@ -781,7 +781,7 @@ def calculator_folder(folder, names, format, ctx):
         opened[n] = got
     if main is None:
         return None
-    _, first, last = opened[main]
+    _, first, last, described = opened[main]
     restarts = [n for n in trajs if n != main and _restart_of(opened[n][1], last)]
     if len(restarts) != len(trajs) - 1 or (finals and not _final_of(folder / finals[0], last)):
         return None
@@ -806,7 +806,10 @@ def calculator_folder(folder, names, format, ctx):
     notes += [f"{n} beside it is a one-frame copy of the trajectory's last frame (a calculator's "
               f"restart file), not a run of its own" for n in restarts if n not in finals]
     notes += [f"{n} beside it is atomate2's copy of the trajectory's last frame, not a run of "
-              f"its own" for n in finals]
+              f"its own" + ("" if described else "; the trajectory records no optimiser "
+                            "settings (as atomate2 writes it), so whether the relaxation "
+                            "converged is said only by the job's task document (its state)")
+              for n in finals]
     return FolderPick([("", traj, "traj")], tuple(notes), also=tuple(logs + restarts) + tuple(
         n for n, _ in outputs), after=functools.partial(
             _calculator_files_say, [(folder / n, *t) for n, t in zip(logs, told)],
@@ -860,14 +863,15 @@ def _final_of(path: Path, last) -> bool:
 
 
 def _ends_of(path: Path):
-    """(frames, first, last) of an ASE trajectory that is a regular file ASE can open, else None
-    (a FIFO is never opened: it would block)."""
+    """(frames, first, last, whether an ASE optimiser or dynamics described itself in it) of an
+    ASE trajectory that is a regular file ASE can open, else None (a FIFO is never opened: it
+    would block)."""
     from ase.io.trajectory import Trajectory
     try:
         check_readable(path)
         with Trajectory(str(path), "r") as t:
             n = len(t)
-            return (n, t[0], t[-1]) if n else None
+            return (n, t[0], t[-1], bool(getattr(t, "description", None))) if n else None
     except Exception:  # noqa: BLE001 - anything ASE cannot read is left to its own run
         return None
 
