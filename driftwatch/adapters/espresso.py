@@ -951,14 +951,14 @@ prologue first (module lists, an environment dump: 50-200 kB in real logs)."""
 def _banner_at(path) -> int:
     """The decompressed byte offset of the first pw.x banner line within :data:`_SCAN_LIMIT`
     (0 when there is none)."""
-    return (line_offsets(path, _BANNER, _SCAN_LIMIT) or [0])[0]
+    return (line_offsets(path, _BANNER, _SCAN_LIMIT, _START.encode()) or [0])[0]
 
 
 def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
     if ctx is not None:
         ctx.uses(p)
     try:
-        return p.is_file() and bool(line_offsets(p, _BANNER, _SCAN_LIMIT))
+        return p.is_file() and bool(line_offsets(p, _BANNER, _SCAN_LIMIT, _START.encode()))
     except OSError:
         return False
 
@@ -1099,7 +1099,7 @@ def pw_runs(path) -> list | None:
     key = (os.fspath(path), st.st_size, st.st_mtime_ns)
     if key in _RUNS:
         return _RUNS[key]
-    offsets, got = line_offsets(path, _BANNER), None
+    offsets, got = line_offsets(path, _BANNER, key=_START.encode()), None
     if len(offsets) > 1:
         ctx = ReadContext(path)
         try:
