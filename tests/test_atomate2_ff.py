@@ -227,3 +227,16 @@ def test_the_whole_campaign_audits_with_no_failure(tmp_path):
             "stopped at its step limit")
     copies = json.loads((out / "campaign.json").read_text())["copies"]
     assert any({f"atomate2_ff/ff_docs_c01/{f}" for f in FORMS} <= set(group) for group in copies)
+
+
+def test_an_ase_json_database_whose_rows_name_a_force_field_stays_a_database():
+    """An ASE JSON database (ASE 3.29's own writer) whose rows carry a key-value pair named as
+    atomate2 names its force field: the wider task-document detection took it for a task
+    document, which then failed. It is ASE's database, read as ASE reads it."""
+    from ase.db import connect
+    path = DATA / "ase_json_db_ffkey" / "ffrows.json"
+    rows = list(connect(path).select())                                               # ASE
+    assert rows and all(r.key_value_pairs.get("forcefield_name") == "EMT" for r in rows)
+    assert detect(path) == "ase-json-db"
+    run = read_run(path)
+    np.testing.assert_allclose(run.positions, [r.toatoms().positions for r in rows], atol=1e-12)

@@ -15,6 +15,7 @@ import pytest
 
 import driftwatch
 from driftwatch.adapters import read_run
+from driftwatch.campaign import discover
 from driftwatch.errors import InputError
 
 MORE = Path(__file__).parent / "data" / "public_more"
@@ -736,6 +737,11 @@ def test_starts_that_stopped_before_a_step_give_no_symmetry_count():
     assert len(run) == 1 and run.code_settings["nsym"] == 4
     assert not [w for w in run.warnings if "symmetry operations in a later run" in w]
     assert run.not_relaxation.startswith("a single-point calculation")
+    # the three starts print one structure in their headers (pw.x's own): one job started again,
+    # one run, not three of which two failed
+    runs, failed = discover([path])
+    assert [r.path for r in runs] == [str(path)] and not failed
+    assert not [w for w in run.warnings if "do not continue" in w]
 
 
 # ---------------------------------------------------------------- POSCAR species

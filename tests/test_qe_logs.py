@@ -161,3 +161,19 @@ def test_a_second_run_of_a_log_is_listed_when_it_starts(tmp_path):
     (job / "slurm-2002.out").write_bytes(src)
     runs, _ = discover([job])
     assert [r.id for r in runs] == ["job/slurm-2002.out::run1", "job/slurm-2002.out::run2"]
+
+
+def test_a_ph_x_output_beside_its_pw_x_run_is_named_in_the_run_not_a_row():
+    """ph.x beside the pw.x scf it follows (ph.x reads that run's save directory: the same prefix
+    and outdir in both inputs) computes the phonons of that structure: it is named in the run's
+    notes, not listed as another run (the rule for other codes' outputs beside a run)."""
+    folder = DATA / "P6_scf_plus_phx"
+    ph = gzip.open(folder / "ph.out.gz", "rt").read()
+    assert re.search(r"^\s*Program PHONON v\.", ph, re.M)                          # ph.x's own
+    prefix = re.compile(r"prefix\s*=\s*'([^']+)'")
+    assert prefix.search((folder / "ph.in").read_text()).group(1) == \
+        prefix.search((folder / "scf.in").read_text()).group(1)
+    runs, failed = discover([folder])
+    assert [r.id for r in runs] == ["P6_scf_plus_phx"] and not failed
+    assert any("ph.out.gz beside it is an output of Quantum ESPRESSO's ph.x, the phonons of this "
+               "run's structure: no run of its own" in w for w in read_run(folder).warnings)

@@ -1069,12 +1069,14 @@ def _continues(start, ends: list, head, bfgs: int | None) -> bool:
 
 def _run_continues(a: dict, b: dict) -> bool:
     """Run ``b`` of an output continues run ``a`` before it (their ``_read_pw`` notes): by
-    :func:`continues`' rule, or as single points one after another on structures that moved (a
+    :func:`continues`' rule; as single points one after another on structures that moved (a
     driver outside pw.x computing its steps: nomad-coe's genuine three appended SCFs,
-    tests/data/public_more), which are one run of single points, as they always were."""
+    tests/data/public_more), which are one run of single points, as they always were; or as the
+    same job started again after a start that stopped before its first step (phonopy's genuine
+    supercell output there)."""
     ends = [e for e in (a["last"], a["next"]) if e is not None]
-    if not ends:
-        return False
+    if not ends:          # a start cut before its first step, retried on the same structure
+        return _same_structure(a["header"], b["header"])        # (phonopy's genuine example)
     if _continues(a["header"], ends, b["header"], b["bfgs"]):
         return True
     b_ends = [e for e in (b["last"], b["next"]) if e is not None]

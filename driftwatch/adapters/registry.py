@@ -372,6 +372,9 @@ _FOREIGN = ((re.compile(rb"^ CP2K\| version string:", re.M), "CP2K", _CP2K_TO_XY
              _TO_XYZ),
             # Elk's INFO.OUT (its stdout, which repeats the start, is not listed again)
             (re.compile(rb"\A\+-+\+\s*\| Elk version \S+ started \|"), "Elk", _ELK_TO_XYZ))
+# programs of a code with a reader whose outputs beside its run belong to that run: the code
+# table's name, and what the output is
+_COMPANIONS = {"Quantum ESPRESSO's ph.x": ("espresso", "the phonons of this run's structure")}
 # where discovery looks for them (outputs' usual names; ABINIT's .abo, NWChem's .nwo, as ASE
 # names it)
 _FOREIGN_NAMES = (".out", ".log", ".txt", ".abo", ".nwo")
@@ -608,9 +611,12 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
     if len(claims) > 1:     # a code's run folder is that, an ASE trajectory in it a run of its own
         claims = [(c, got) for c, got in claims if c.formats] or claims
     for code, got in claims:
-        got.others = tuple(_others(folder, names, got, code))
+        others, programs = _others(folder, names, got, code)
+        got.others = tuple(others)
         got.warnings = tuple(got.warnings) + tuple(
-            f"{n} beside it is another run (read on its own)" for n in got.others)
+            f"{n} beside it is another run (read on its own)" for n in got.others) + tuple(
+            f"{n} beside it is an output of {what}, {how}: no run of its own"
+            for n, what, how in programs)
     claims = [got for _, got in claims]
     if len(claims) > 1:                      # e.g. an OUTCAR and a pw.x output side by side
         return "ambiguous", [st[1].name for c in claims for st in c.stages]
@@ -755,25 +761,31 @@ def inputs_only_problem(got: tuple, folder) -> str:
     return f"{what}: a job not run yet, or one that stopped before writing an ionic step{also}"
 
 
-def _others(folder: Path, names, pick: FolderPick, code: Code) -> list[str]:
+def _others(folder: Path, names, pick: FolderPick, code: Code) -> tuple[list, list]:
     """The files beside a code's run that a format of no code or of another code reads, by name
     first (only those are opened), and outputs of codes with no reader (:func:`foreign_output`):
-    runs of their own (those skipped), never dropped unsaid."""
+    runs of their own (those skipped), never dropped unsaid; and, apart, ``(name, program,
+    what it is)`` of the outputs of the code's own programs with no ionic steps beside its run
+    (ph.x beside pw.x: the phonons of that run's structure), said in the run's notes."""
     used = {Path(src).name for _, src, _ in pick.stages} | set(pick.also)
     foreign = [f for f in _formats.values() if f.name not in code.formats and f.globs]
-    out = []
+    out, programs = [], []
     for n in names:
         if n in used:
             continue
         low = strip_compression(n).lower()
         if not any(fnmatch.fnmatchcase(low, g.lower()) for f in foreign for g in f.globs):
             if foreign_output(Path(folder) / n):
-                out.append(n)
+                what, _ = foreign_code(peek(Path(folder) / n, PEEK_BYTES))
+                if _COMPANIONS.get(what, ("",))[0] == code.name:
+                    programs.append((n, what, _COMPANIONS[what][1]))
+                else:
+                    out.append(n)
             continue
         fmt = _safe_detect(Path(folder) / n)
         if fmt is not None and fmt not in code.formats and fmt != "vasp-error-archive":
             out.append(n)
-    return out
+    return out, programs
 
 
 def _pick_folder(path: Path, format=None, ctx: ReadContext | None = None) -> _Pick:
@@ -1075,6 +1087,11 @@ register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of
 register("ase-db", _A + "ase_native:read_db", globs=("*.db",), magic=rb"\ASQLite format 3\x00",
          description="ASE database rows (SQLite .db; file.db@selection picks rows; "
                      "file.db::NAME one structure)", members=_A + "batch:db_names")
+# (an ASE JSON database, told by its first bytes, before the task documents' keys, which its
+# rows' key-value pairs may use)
+register("ase-json-db", _A + "ase_native:read_db", globs=(),
+         magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="ASE database rows (JSON)",
+         members=_A + "batch:db_names")
 register("task-doc", _A + "pymatgen_json:read_task_doc", globs=("*task*.json",),
          magic=rb'"(?:calcs_reversed|ase_calculator_name|forcefield_name)"\s*:',
          description="workflow task document (JSON; calcs_reversed[].output.ionic_steps, or "
@@ -1087,9 +1104,6 @@ register("pymatgen-trajectory", _A + "pymatgen_json:read_pmg_trajectory", globs=
                      "traj_file_fmt='pmg')")
 register("pymatgen-json", _A + "pymatgen_json:read_structures", globs=(),
          magic=rb'"@class"\s*:\s*"Structure"', description="pymatgen Structure list in JSON")
-register("ase-json-db", _A + "ase_native:read_db", globs=(),
-         magic=rb'\A\s*\{\s*"1"\s*:\s*\{', description="ASE database rows (JSON)",
-         members=_A + "batch:db_names")
 register("extxyz", _A + "ase_native:read_extxyz", globs=("*.xyz", "*.extxyz"),
          magic=rb"\A\s*\d+[ \t]*\r?\n[^\n]*(Lattice|Properties)=", description="extended XYZ "
                                                                       "(file::NAME one structure)",
