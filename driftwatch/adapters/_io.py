@@ -335,6 +335,17 @@ def _skip(fh, start: int) -> None:
         start -= len(got)
 
 
+_JOB_LOG = re.compile(r"^slurm-.*\.out$|\.o\d+$|\d{4,}[^/]*\.(out|log)$")
+
+
+def job_log_name(name: str) -> bool:
+    """A name a batch system gives a job's log (Slurm's ``slurm-JOB.out``, PBS's and SGE's
+    ``NAME.oJOB``, or an ``*.out``/``*.log`` carrying a job number, as ``#SBATCH -o %x.%j.out``
+    names it): the code's output may come after the site's prologue (module lists, an
+    environment dump), so it is searched further than a plain output's first bytes."""
+    return bool(_JOB_LOG.search(strip_compression(os.path.basename(name))))
+
+
 def line_offsets(path, pattern: re.Pattern, limit: int | None = None,
                  key: bytes = b"") -> list[int]:
     """The decompressed byte offsets of the lines where ``pattern`` (a bytes regex anchored with

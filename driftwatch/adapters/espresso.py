@@ -46,7 +46,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError, NoIonicStepError, NotPeriodicError
-from ._io import Lines, line_offsets, peek, strip_compression, tail_bytes
+from ._io import Lines, job_log_name, line_offsets, peek, strip_compression, tail_bytes
 from .run import Frame, ReadContext, decimals
 
 __all__ = ["read_pw_out", "read_pw_input", "read_pw_in_settings", "pick_from_folder",
@@ -944,21 +944,28 @@ _MONTHS = {m: k for k, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun",
 
 
 _SCAN_LIMIT = 1 << 20
-"""Bytes: how far into a file pw.x's banner is looked for. A batch job's log holds its site's
-prologue first (module lists, an environment dump: 50-200 kB in real logs)."""
+"""Bytes: how far into a batch job's log (:func:`job_log_name`) pw.x's banner is looked for: its
+site's prologue comes first (module lists, an environment dump: 50-200 kB in real logs); another
+output's first 64 kB."""
+
+
+def _first_banner(path) -> list[int]:
+    """[the decompressed byte offset of the first pw.x banner line], or [] (none within
+    :data:`_SCAN_LIMIT` of a batch job's log, or the first 64 kB of another file)."""
+    limit = _SCAN_LIMIT if job_log_name(str(path)) else 1 << 16
+    return line_offsets(path, _BANNER, limit, _START.encode())
 
 
 def _banner_at(path) -> int:
-    """The decompressed byte offset of the first pw.x banner line within :data:`_SCAN_LIMIT`
-    (0 when there is none)."""
-    return (line_offsets(path, _BANNER, _SCAN_LIMIT, _START.encode()) or [0])[0]
+    """The offset of the first pw.x banner line (:func:`_first_banner`), 0 when there is none."""
+    return (_first_banner(path) or [0])[0]
 
 
 def _is_pw_out(p: Path, ctx: ReadContext | None = None) -> bool:
     if ctx is not None:
         ctx.uses(p)
     try:
-        return p.is_file() and bool(line_offsets(p, _BANNER, _SCAN_LIMIT, _START.encode()))
+        return p.is_file() and bool(_first_banner(p))
     except OSError:
         return False
 

@@ -41,7 +41,8 @@ from typing import Callable, Iterator
 
 from ..errors import (AtomsChangeError, DamagedFrameError, DriftwatchError, ForeignOutputError,
                       InputError, NotARunError, UnknownFormatError)
-from ._io import check_readable, file_size, peek, quiet_numbers, strip_compression, tail_bytes
+from ._io import (check_readable, file_size, job_log_name, peek, quiet_numbers,
+                  strip_compression, tail_bytes)
 from .batch import PART_FORMATS, wal_of
 from .run import Frame, ReadContext, Run, StraightLine, checked, collect
 
@@ -51,9 +52,9 @@ __all__ = ["register", "detect", "formats", "read_run", "iter_frames", "Format",
 
 PEEK_BYTES = 50_000
 LOG_PEEK_BYTES = 1 << 20
-"""Bytes searched for a format's magic in a file named as a batch job's log (:data:`_LOG_NAME`),
-whose site prologue (module lists, an environment dump) can come before the code's output."""
-_LOG_NAME = re.compile(r"\.(out|log|o\d+)$")      # Slurm's slurm-JOB.out, PBS/SGE's NAME.oJOB
+"""Bytes searched for a format's magic in a file named as a batch job's log
+(:func:`~driftwatch.adapters._io.job_log_name`), whose site prologue (module lists, an environment
+dump) can come before the code's output."""
 ENTRY_POINT_GROUP = "driftwatch.adapters"
 
 
@@ -322,7 +323,7 @@ def _detect_file(path: Path) -> str:
         if f.magic is not None and f.magic.search(head):
             return f.name
     name = strip_compression(path.name).lower()
-    if len(head) == PEEK_BYTES and _LOG_NAME.search(name):   # a batch log: a prologue first
+    if len(head) == PEEK_BYTES and job_log_name(name):   # a batch log: a prologue first
         deeper = peek(path, LOG_PEEK_BYTES)
         for f in _formats.values():
             if f.magic is not None and f.magic.search(deeper):
@@ -399,10 +400,16 @@ def _cut_short(path, code: str) -> str:
            f"error, or still running)"
 
 
+# a text each line-anchored banner holds, found at bytes.find's speed before its pattern is tried
+_FOREIGN_KEYS = {"CP2K": b"CP2K| version string", "Quantum ESPRESSO's neb.x": b"Program NEB",
+                 "Quantum ESPRESSO's ph.x": b"Program PHONON", "Gaussian": b"Entering Gaussian"}
+
+
 def foreign_code(head: bytes) -> tuple[str, str] | None:
     """(the code, what would include its run) when ``head`` (a file's first bytes) holds the banner
     of a code driftwatch has no reader for, else None."""
-    return next(((what, how) for pattern, what, how in _FOREIGN if pattern.search(head)), None)
+    return next(((what, how) for pattern, what, how in _FOREIGN
+                 if _FOREIGN_KEYS.get(what, b"") in head and pattern.search(head)), None)
 
 
 def foreign_output(path) -> bool:
