@@ -55,7 +55,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from . import records
-from .cache import Cache, FileDigests, freeze_inputs, inputs_digest, run_key
+from .cache import (CACHE_SCHEMA, RACY_NS, Cache, FileDigests, freeze_inputs, inputs_digest,
+                    run_key)
 from .cache import versions as _versions
 from .tasks import Progress, mp_context, progress_on
 from .rules import FLAGS, campaign_advice
@@ -1275,6 +1276,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     old_marker = _prepare_output(out, roots_abs, overwrite, lock, db_name)
 
     skip = [out] + ([] if "://" in db_name else [db_name])
+    memo = _Memo(out / ".cache" / "discovery.index", use_cache)
     runs, failed = discover(roots, include=include, exclude=exclude, skip=skip,
                             structure_keys=cfg["inputs"]["structure_keys"])
     if not runs and not failed:
@@ -1308,6 +1310,7 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
         getattr(gen, "close", lambda: None)()
 
     res.digests.save()
+    memo.save()
     problem = res.cache.problem or res.digests.problem
     if problem:                       # the cache only saves time: said, the audit goes on
         print(f"driftwatch: {problem}; this audit's results are not cached (the next audit "
@@ -1365,6 +1368,39 @@ def _keep_what_the_selection_leaves_out(out, roots, before, runs, failed, skip, 
                           f"would retire their rows of runs.db and their records as gone: give "
                           f"the selection its own --output, audit the whole campaign, or pass "
                           f"--overwrite to narrow this audit to the selection")
+
+
+class _Memo:
+    """What the readers learnt at discovery of files only their bytes decide (the runs of a pw.x
+    output of several: ``registry.discovery_memo``), kept in ``OUTPUT/.cache/discovery.index`` (JSON) for
+    the next audit, each entry with its file's stamp (:func:`adapters.run.file_stamp`); a file
+    changed within ``cache.RACY_NS`` before it was seen is not kept (its stamp may not change)."""
+
+    def __init__(self, path: Path, enabled: bool):
+        from .adapters.registry import remember
+        self.path = path if enabled else None
+        if self.path is not None and self.path.is_file():
+            try:
+                data = json.loads(self.path.read_text(encoding="utf-8"))
+                if data.get("schema") == CACHE_SCHEMA and data.get("versions") == _versions():
+                    remember(data.get("modules"))
+            except (OSError, ValueError, AttributeError):
+                pass
+
+    def save(self) -> None:
+        from .adapters.registry import discovery_memo
+        if self.path is None:
+            return
+        now = time.time_ns()
+        kept = {name: {real: entry for real, entry in got.items()
+                       if now - max(entry[0][1], entry[0][2]) > RACY_NS}
+                for name, got in discovery_memo().items()}
+        try:
+            records.write_text_atomic(self.path, json.dumps({"schema": CACHE_SCHEMA,
+                                                             "versions": _versions(),
+                                                             "modules": kept}))
+        except OutputError:
+            pass                                   # (it only saves time)
 
 
 def _why_empty(roots, include, exclude, skip) -> str:

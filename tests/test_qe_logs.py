@@ -5,6 +5,7 @@ pw.x's own lines, ASE's espresso-out reader and spglib."""
 from __future__ import annotations
 
 import gzip
+import json
 import re
 import shutil
 from pathlib import Path
@@ -177,3 +178,32 @@ def test_a_ph_x_output_beside_its_pw_x_run_is_named_in_the_run_not_a_row():
     assert [r.id for r in runs] == ["P6_scf_plus_phx"] and not failed
     assert any("ph.out.gz beside it is an output of Quantum ESPRESSO's ph.x, the phonons of this "
                "run's structure: no run of its own" in w for w in read_run(folder).warnings)
+
+
+def test_a_re_audit_does_not_parse_a_log_of_several_runs_again(tmp_path):
+    """Finding the runs of an output of several pw.x runs parses it whole; what was found is kept
+    with the output folder's cache (keyed on the file's stamp), so a re-audit with every record
+    cached reads no pw.x output at all. The saved answers are those of the reader itself."""
+    from driftwatch.adapters import espresso
+    from driftwatch.campaign import audit
+    out = tmp_path / "out"
+    roots = [str(DATA / "C_ecut"), str(DATA / "K_resubmit")]
+    audit(roots, str(out), progress="off", quiet=True, report=False)
+    saved = json.loads((out / ".cache" / "discovery.index").read_text())["modules"]["espresso"]
+    c_ecut = str(_log("C_ecut").resolve())
+    assert [name for name, _, _ in saved[c_ecut][1]] == ["run1", "run2"]
+    assert saved[str(_log("K_resubmit").resolve())][1] is None            # one run (a restart)
+    espresso._RUNS.clear()
+    calls = []
+    real = espresso._read_pw
+
+    def counted(*args, **kw):
+        calls.append(args[0])
+        return real(*args, **kw)
+    espresso._read_pw = counted
+    try:
+        audit(roots, str(out), progress="off", quiet=True, report=False)
+    finally:
+        espresso._read_pw = real
+    assert calls == []
+    assert espresso.pw_runs(_log("C_ecut")) == [tuple(r) for r in saved[c_ecut][1]]

@@ -1094,7 +1094,26 @@ def _run_continues(a: dict, b: dict) -> bool:
 
 
 _RUNS: dict = {}
-""":func:`pw_runs` of the outputs seen last, keyed by (path, size, mtime)."""
+""":func:`pw_runs` of the outputs seen: real path -> (its stamp, the runs). Kept between audits of
+one output folder (:func:`memo`, :func:`remember`): an output of several pw.x runs is parsed whole
+to find them, once, not at each audit's discovery."""
+
+
+def memo() -> dict:
+    """:func:`pw_runs`' answers, as JSON values (``{real path: [stamp, runs or None]}``)."""
+    return {real: [stamp, got] for real, (stamp, got) in _RUNS.items()}
+
+
+def remember(saved: dict) -> None:
+    """Take back answers :func:`memo` gave (a malformed entry is ignored: asked again)."""
+    for real, entry in (saved or {}).items():
+        try:
+            stamp, got = entry
+            got = None if got is None else [(str(n), int(a), None if b is None else int(b))
+                                            for n, a, b in got]
+        except (TypeError, ValueError):
+            continue
+        _RUNS.setdefault(str(real), (list(stamp), got))
 
 
 def pw_runs(path) -> list | None:
@@ -1104,10 +1123,14 @@ def pw_runs(path) -> list | None:
     the same output continues it: :func:`continues`' rule), named by its first pw.x run
     (``run1``, ``run3``), with its decompressed bytes ``[start, end)``; None when the output is
     one run."""
-    st = os.stat(path)
-    key = (os.fspath(path), st.st_size, st.st_mtime_ns)
-    if key in _RUNS:
-        return _RUNS[key]
+    from .run import file_stamp
+    real = os.path.realpath(path)
+    stamp = file_stamp(real)
+    if stamp is None:
+        raise FileNotFoundError(path)
+    hit = _RUNS.get(real)
+    if hit is not None and hit[0] == stamp:
+        return hit[1]
     offsets, got = line_offsets(path, _BANNER, key=_START.encode()), None
     if len(offsets) > 1:
         ctx = ReadContext(path)
@@ -1127,9 +1150,8 @@ def pw_runs(path) -> list | None:
             if len(groups) > 1:
                 bounds = offsets + [None]
                 got = [(f"run{g[0] + 1}", offsets[g[0]], bounds[g[-1] + 1]) for g in groups]
-    if len(_RUNS) >= 256:
-        _RUNS.clear()
-    _RUNS[key] = got
+    if file_stamp(real) == stamp:            # (not an answer about a file that changed meanwhile)
+        _RUNS[real] = (stamp, got)
     return got
 
 

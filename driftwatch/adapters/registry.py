@@ -1056,6 +1056,26 @@ def read_run(path, format=None, *, context: ReadContext | None = None,
                    fmt=pick.format, ctx=ctx, run_dir=pick.run_dir, stages=stages)
 
 
+def discovery_memo() -> dict:
+    """What the code modules learnt of files during discovery and reading that only their bytes
+    decide (a module's ``memo()``: espresso's runs of an output of several pw.x runs), as JSON
+    values keyed by module, for the next audit of the same output folder (:func:`remember`)."""
+    out = {}
+    for name in _CODE_MODULES:
+        fn = getattr(importlib.import_module(_A + name), "memo", None)
+        if fn is not None:
+            out[name] = fn()
+    return out
+
+
+def remember(saved: dict) -> None:
+    """Give each code module back what :func:`discovery_memo` saved (its ``remember()``)."""
+    for name in _CODE_MODULES:
+        fn = getattr(importlib.import_module(_A + name), "remember", None)
+        if fn is not None and isinstance((saved or {}).get(name), dict):
+            fn(saved[name])
+
+
 def run_kind(code_settings: dict) -> str | None:
     """What a run's ionic steps are when they are no relaxation (see :class:`Code`), else None.
     Any code: ``neb_image`` in the settings (which image of which band, in words) names an image
@@ -1086,7 +1106,8 @@ def run_kind(code_settings: dict) -> str | None:
 # Order matters for magic detection: the most specific patterns first. The formats of a code are
 # registered by its module's ``register_all`` (one module per code), then the generic ones.
 _A = "driftwatch.adapters."
-for _module in ("vasp", "espresso", "lammps"):
+_CODE_MODULES = ("vasp", "espresso", "lammps")
+for _module in _CODE_MODULES:
     importlib.import_module(_A + _module).register_all(register, register_code)
 register("traj", _A + "ase_native:read_traj", globs=("*.traj",), magic=rb"\A- of UlmASE-Trajectory",
          description="ASE trajectory (.traj; an ASE NEB band's file.traj::image01 one image)",
