@@ -1372,9 +1372,10 @@ def _keep_what_the_selection_leaves_out(out, roots, before, runs, failed, skip, 
 
 class _Memo:
     """What the readers learnt at discovery of files only their bytes decide (the runs of a pw.x
-    output of several: ``registry.discovery_memo``), kept in ``OUTPUT/.cache/discovery.index`` (JSON) for
-    the next audit, each entry with its file's stamp (:func:`adapters.run.file_stamp`); a file
-    changed within ``cache.RACY_NS`` before it was seen is not kept (its stamp may not change)."""
+    output of several: ``registry.discovery_memo``), kept in ``OUTPUT/.cache/discovery.index``
+    (JSON) for the next audit, each entry with its file's stamp (:func:`adapters.run.file_stamp`);
+    a file changed within ``cache.RACY_NS`` before it was seen is not kept (its stamp may not
+    change)."""
 
     def __init__(self, path: Path, enabled: bool):
         from .adapters.registry import remember

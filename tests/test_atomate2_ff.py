@@ -148,7 +148,7 @@ def test_a_static_a_fixed_cell_and_fix_symmetry_are_said_from_the_document():
            "symprec 0.01 Å)" in flag["message"]
     cell = (held.cells[-1], held.positions[-1] @ np.linalg.inv(held.cells[-1]), held.numbers)
     assert spglib.get_symmetry_dataset(cell, symprec=1e-3).number == 139 == \
-        rec["summary"]["verdict"]["structure"]["final"]["group"]                             # spglib
+        rec["summary"]["verdict"]["structure"]["final"]["group"]                      # spglib
 
 
 def test_atomate2s_final_structures_of_several_jobs_are_no_relaxation():
@@ -198,7 +198,8 @@ def test_a_job_folder_with_its_trajectory_and_final_structure_is_one_run(tmp_pat
     assert [r.path for r in runs] == [str(job)] and not failed
     run = read_run(job)
     assert Path(run.source).name == "relax.traj"
-    (note,) = [w for w in run.warnings if "final_atoms_object.xyz beside it is atomate2's copy" in w]
+    (note,) = [w for w in run.warnings
+               if "final_atoms_object.xyz beside it is atomate2's copy" in w]
     assert "records no optimiser settings" in note          # atomate2's trajectory: none (ASE)
     assert not ase.io.Trajectory(str(job / "relax.traj")).description
     other = tmp_path / "job_2"

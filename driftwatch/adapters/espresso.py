@@ -1213,7 +1213,8 @@ def _single_point_traj(folder: Path, names, out: Path, ctx):
 
     def single_point():
         if _DRIVER.encode() in peek(out, 20_000, _banner_at(out)):
-            return "pw.x in i-PI driver mode", "its output prints none of the structures it computed"
+            return ("pw.x in i-PI driver mode",
+                    "its output prints none of the structures it computed")
         pin = _input_for(out, ctx)
         try:
             calc = read_pw_input(pin)["calculation"] if pin is not None else None

@@ -123,6 +123,23 @@ def _pmg_structure(item, path, where):
             np.array(st.atomic_numbers, int), np.array(pbc, bool))
 
 
+def _step_frame(item: dict, energy, ion: dict, path, where: str, step: int) -> Frame:
+    """A task document's ionic step: its Structure dict ``item``, ``energy`` (eV), and the step's
+    ``forces`` (eV/Å) and ``stress`` (3x3 kBar, VASP's sign: pressure positive)."""
+    from ase.units import GPa
+    cell, pos, numbers, pbc = _pmg_structure(item, path, where)
+    forces, stress = ion.get("forces"), ion.get("stress")
+    try:
+        energy = None if energy is None else float(energy)
+        forces = None if forces is None else np.array(forces, float)
+        if stress is not None:
+            stress = (np.array(stress, float) * (-0.1 * GPa)).reshape(9)[[0, 4, 8, 5, 2, 1]]
+    except (TypeError, ValueError) as exc:
+        raise InputError(path, f"{where}: energy/forces/stress are not numbers ({exc})") from None
+    return Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step, energy=energy,
+                 forces=forces, stress=stress)
+
+
 _LISTS: dict = {}
 """The one list of task documents parsed last, keyed by (path, size, mtime): an audit reads each
 member of a list file once, so the file is parsed once per process, not once per member."""
@@ -226,7 +243,6 @@ def read_task_doc(path, ctx: ReadContext):
     first); each is a stage, steps numbered on across them. A JSON list of documents (a database
     export) holds one run per document, read as ``FILE::NAME`` (:func:`task_doc_names`).
     Structures are built with pymatgen from the plain fields."""
-    from ase.units import GPa
     doc = _chosen_document(path, ctx)
     if _is_store_entry(doc) and _is_task_doc(doc.get("output")):
         doc = doc["output"]                    # one jobflow store entry saved alone
@@ -255,20 +271,8 @@ def read_task_doc(path, ctx: ReadContext):
             if not isinstance(item, dict):
                 raise InputError(path, f"{name}: ionic step {i} has no structure (a stripped "
                                        f"document)")
-            cell, pos, numbers, pbc = _pmg_structure(item, path, f"{name} step {i}")
-            energy = ion.get("e_fr_energy", ion.get("e_0_energy"))
-            forces = ion.get("forces")
-            stress = ion.get("stress")
-            try:
-                energy = None if energy is None else float(energy)
-                forces = None if forces is None else np.array(forces, float)
-                if stress is not None:
-                    stress = (np.array(stress, float) * (-0.1 * GPa)).reshape(9)[[0, 4, 8, 5, 2, 1]]
-            except (TypeError, ValueError) as exc:
-                raise InputError(path, f"{name} step {i}: energy/forces/stress are not numbers "
-                                       f"({exc})") from None
-            yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=step,
-                        energy=energy, forces=forces, stress=stress)
+            yield _step_frame(item, ion.get("e_fr_energy", ion.get("e_0_energy")), ion, path,
+                              f"{name} step {i}", step)
             step += 1
         stages.append((name, step - n0))
     if not step:
@@ -331,7 +335,6 @@ def _read_ase_doc(doc: dict, path: str, ctx: ReadContext):
     """The frames of an atomate2 ASE or force-field task document (see above), and what the
     document says of the run: a static (``input.steps`` <= 1) is a single point, ``state``
     "failed" an unfinished run, ``fix_symmetry`` a symmetry held by the constraint."""
-    from ase.units import GPa
     inp, out = doc.get("input") or {}, doc["output"]
     steps = out.get("ionic_steps")
     if isinstance(steps, dict) and "blob_uuid" in steps:
@@ -365,18 +368,7 @@ def _read_ase_doc(doc: dict, path: str, ctx: ReadContext):
         if not isinstance(item, dict):
             raise InputError(path, f"ionic step {i} has no structure (its maker's "
                                    f"ionic_step_data left it out)")
-        cell, pos, numbers, pbc = _pmg_structure(item, path, f"step {i}")
-        try:
-            energy = None if ion.get("energy") is None else float(ion["energy"])
-            forces = None if ion.get("forces") is None else np.array(ion["forces"], float)
-            stress = ion.get("stress")
-            if stress is not None:
-                stress = (np.array(stress, float) * (-0.1 * GPa)).reshape(9)[[0, 4, 8, 5, 2, 1]]
-        except (TypeError, ValueError) as exc:
-            raise InputError(path, f"step {i}: energy/forces/stress are not numbers "
-                                   f"({exc})") from None
-        yield Frame(cell=cell, positions=pos, numbers=numbers, pbc=pbc, step=i,
-                    energy=energy, forces=forces, stress=stress)
+        yield _step_frame(item, ion.get("energy"), ion, path, f"step {i}", i)
 
 
 # ---------------------------------------------------------------- pymatgen Trajectory
