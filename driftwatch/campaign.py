@@ -239,11 +239,14 @@ def discover(roots, *, include=(), exclude=(), skip=(),
             found = [] if real in seen_runs else _file_runs(str(root), name, structure_keys)
             seen_runs.add(real)
         else:
-            walked = os.path.realpath(root) in seen_dirs          # (inside a root before it)
+            real = os.path.realpath(root)
+            walked = real in seen_dirs or any(                  # (inside a root before it, or
+                p == real or p.startswith(real + os.sep)        #  holding one)
+                for p in seen_dirs | {s.split("::")[0] for s in seen_runs})
             found = list(_walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys))
-            if not found and not walked and len(roots) > 1:
-                # a folder named beside others that holds nothing driftwatch reads: said, as the
-                # audit of it alone says it
+            if not found and not walked and len(roots) > 1 and _has_files(root):
+                # a folder named beside others that holds files, none of which driftwatch reads:
+                # said, as the audit of it alone says it (an empty folder is passed over)
                 failed.append({"run": name, "source": str(root),
                                "error": f"{root}: " + _why_empty((), (), (), ())})
         for item in found:
@@ -273,6 +276,14 @@ def discover(roots, *, include=(), exclude=(), skip=(),
     for item in failed:
         item["run"] = _id_text(item["run"])
     return sorted(runs, key=lambda r: r.id), failed
+
+
+def _has_files(folder: Path) -> bool:
+    """Whether ``folder`` holds a file that is not hidden, at any depth."""
+    for _, _, names in os.walk(folder):
+        if any(not n.startswith(".") for n in names):
+            return True
+    return False
 
 
 def _id_text(name: str) -> str:
@@ -1385,7 +1396,7 @@ class _Memo:
                 data = json.loads(self.path.read_text(encoding="utf-8"))
                 if data.get("schema") == CACHE_SCHEMA and data.get("versions") == _versions():
                     remember(data.get("modules"))
-            except (OSError, ValueError, AttributeError):
+            except Exception:  # noqa: BLE001 - anything wrong in the index is a miss
                 pass
 
     def save(self) -> None:
@@ -1393,8 +1404,8 @@ class _Memo:
         if self.path is None:
             return
         now = time.time_ns()
-        kept = {name: {real: entry for real, entry in got.items()
-                       if now - max(entry[0][1], entry[0][2]) > RACY_NS}
+        kept = {name: {real: entry for real, entry in got.items()       # (files gone: dropped)
+                       if now - max(entry[0][1], entry[0][2]) > RACY_NS and os.path.exists(real)}
                 for name, got in discovery_memo().items()}
         try:
             records.write_text_atomic(self.path, json.dumps({"schema": CACHE_SCHEMA,

@@ -108,3 +108,8 @@ def test_a_root_named_beside_others_that_holds_no_run_is_said(tmp_path):
     assert "no run found: no file or run folder here is one driftwatch reads" in failed[0]["error"]
     runs, failed = discover([DATA, DATA / "pw_vc"])
     assert not failed and len(runs) == 13
+    runs, failed = discover([DATA / "pw_vc", DATA])      # a root holding one before it: none
+    assert not failed and len(runs) == 13
+    (tmp_path / "empty").mkdir()                         # an empty folder (a job not started)
+    runs, failed = discover([tmp_path / "empty", DATA / "pw_vc"])
+    assert [r.id for r in runs] == ["pw_vc"] and not failed

@@ -207,3 +207,23 @@ def test_a_re_audit_does_not_parse_a_log_of_several_runs_again(tmp_path):
         espresso._read_pw = real
     assert calls == []
     assert espresso.pw_runs(_log("C_ecut")) == [tuple(r) for r in saved[c_ecut][1]]
+
+
+@pytest.mark.parametrize("stamp", [5, None, "x", [1, 2]])
+def test_a_damaged_discovery_index_is_a_miss(tmp_path, stamp):
+    """An entry of the index that is not what an audit writes (a number, null, text, a short list
+    where the file's stamp belongs) is ignored: the audit asks the file again and gives the
+    answer of a cold audit, and writes the index anew."""
+    from driftwatch.adapters import espresso
+    from driftwatch.campaign import audit
+    out = tmp_path / "out"
+    audit([str(DATA / "C_ecut")], str(out), progress="off", quiet=True, report=False)
+    index = out / ".cache" / "discovery.index"
+    data = json.loads(index.read_text())
+    for entry in data["modules"]["espresso"].values():
+        entry[0] = stamp
+    index.write_text(json.dumps(data))
+    espresso._RUNS.clear()
+    audit([str(DATA / "C_ecut")], str(out), progress="off", quiet=True, report=False)
+    again = json.loads(index.read_text())["modules"]["espresso"]
+    assert [name for name, _, _ in again[str(_log("C_ecut").resolve())][1]] == ["run1", "run2"]

@@ -366,13 +366,14 @@ def line_offsets(path, pattern: re.Pattern, limit: int | None = None,
                     out += [base + m.start() for m in pattern.finditer(buf, 0, cut)]
                 base, carry = base + cut, buf[cut:]
                 if limit is not None and out:
-                    return out[:1]
-            out += [base + m.start() for m in pattern.finditer(carry)]
+                    break
+            if limit is None or not out:
+                out += [base + m.start() for m in pattern.finditer(carry)]
     except NotRegularFile:
         raise
     except STREAM_ERRORS:
         pass
-    return out[:1] if limit is not None else out
+    return [o for o in out if o < limit][:1] if limit is not None else out
 
 
 class _Window:

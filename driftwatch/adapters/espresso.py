@@ -946,13 +946,13 @@ _MONTHS = {m: k for k, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun",
 _SCAN_LIMIT = 1 << 20
 """Bytes: how far into a batch job's log (:func:`job_log_name`) pw.x's banner is looked for: its
 site's prologue comes first (module lists, an environment dump: 50-200 kB in real logs); another
-output's first 64 kB."""
+output's first 50 kB, as detection peeks."""
 
 
 def _first_banner(path) -> list[int]:
     """[the decompressed byte offset of the first pw.x banner line], or [] (none within
-    :data:`_SCAN_LIMIT` of a batch job's log, or the first 64 kB of another file)."""
-    limit = _SCAN_LIMIT if job_log_name(str(path)) else 1 << 16
+    :data:`_SCAN_LIMIT` of a batch job's log, or the first 50 kB of another file)."""
+    limit = _SCAN_LIMIT if job_log_name(str(path)) else 50_000     # (what detection peeks)
     return line_offsets(path, _BANNER, limit, _START.encode())
 
 
@@ -1109,11 +1109,13 @@ def remember(saved: dict) -> None:
     for real, entry in (saved or {}).items():
         try:
             stamp, got = entry
+            stamp = [int(x) for x in stamp]
             got = None if got is None else [(str(n), int(a), None if b is None else int(b))
                                             for n, a, b in got]
         except (TypeError, ValueError):
             continue
-        _RUNS.setdefault(str(real), (list(stamp), got))
+        if len(stamp) == 4:
+            _RUNS.setdefault(str(real), (stamp, got))
 
 
 def pw_runs(path) -> list | None:
