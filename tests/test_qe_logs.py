@@ -227,3 +227,22 @@ def test_a_damaged_discovery_index_is_a_miss(tmp_path, stamp):
     audit([str(DATA / "C_ecut")], str(out), progress="off", quiet=True, report=False)
     again = json.loads(index.read_text())["modules"]["espresso"]
     assert [name for name, _, _ in again[str(_log("C_ecut").resolve())][1]] == ["run1", "run2"]
+
+
+def test_a_killed_relaxation_rerun_from_scratch_into_the_same_log_is_two_runs(tmp_path):
+    """A relaxation killed by its walltime, then the same input run again from the start into the
+    same log (no restart: its first BFGS step is 0, its header the input structure again): two
+    runs, as two outputs side by side are: the first cut short (no JOB DONE before the second
+    banner; its second SCF has its '!' line and no forces, so one step completed, as the same
+    output cut there alone reads), the second whole."""
+    log = DATA / "P3_rerun_scratch" / "job.log.gz"
+    energies = _energies_per_run(log)                                           # pw.x's lines
+    assert len(energies) == 2 and len(energies[0]) == 2
+    first, second = read_run(f"{log}::run1"), read_run(f"{log}::run2")
+    text = gzip.open(log, "rt").read()
+    alone = tmp_path / "cut.out"
+    alone.write_text(text[:[m.start() for m in BANNER.finditer(text)][1]])
+    assert len(first) == len(read_run(alone)) == 1 and len(second) == len(energies[1])
+    assert first.unfinished.startswith("cut short")
+    assert second.unfinished is None
+    np.testing.assert_allclose(first.positions[0], second.positions[0], atol=1e-9)  # one start
