@@ -240,11 +240,11 @@ def discover(roots, *, include=(), exclude=(), skip=(),
             seen_runs.add(real)
         else:
             real = os.path.realpath(root)
-            walked = real in seen_dirs or any(                  # (inside a root before it, or
-                p == real or p.startswith(real + os.sep)        #  holding one)
-                for p in seen_dirs | {s.split("::")[0] for s in seen_runs})
+            inside = real in seen_dirs                          # (inside a root before it)
             found = list(_walk(root, name, skip_real, seen_dirs, seen_runs, structure_keys))
-            if not found and not walked and len(roots) > 1 and _has_files(root):
+            if not found and not inside and len(roots) > 1 and _has_files(root) and not any(
+                    p == real or p.startswith(real + os.sep)    # (nor holding a run read before)
+                    for p in {s.split("::")[0] for s in seen_runs}):
                 # a folder named beside others that holds files, none of which driftwatch reads:
                 # said, as the audit of it alone says it (an empty folder is passed over)
                 failed.append({"run": name, "source": str(root),
