@@ -741,7 +741,7 @@ def calculator_folder(folder, names, format, ctx):
     say is taken (:func:`_calculator_files_say`). None when the folder holds nothing of these, or
     anything else that could be another run's (a second trajectory of several frames, a log or
     output of another relaxation or code): each file is then read as a run of its own."""
-    from .registry import FolderPick, _FOREIGN_NAMES, detect, foreign_code
+    from .registry import FolderPick, detect, output_code
     if format not in (None, "traj"):
         return None
     trajs = [n for n in names if strip_compression(n).lower().endswith(".traj")]
@@ -758,8 +758,8 @@ def calculator_folder(folder, names, format, ctx):
             if detect(path) == "gpaw-out":
                 logs.append(n)
         except ForeignOutputError:              # an output of a code with no reader here
-            code = foreign_code(peek(path, 50_000))
-            if code is not None and strip_compression(n).lower().endswith(_FOREIGN_NAMES):
+            code = output_code(path)
+            if code is not None:
                 outputs.append((n, code[0]))
         except (DriftwatchError, OSError):
             pass

@@ -412,15 +412,21 @@ def foreign_code(head: bytes) -> tuple[str, str] | None:
                  if _FOREIGN_KEYS.get(what, b"") in head and pattern.search(head)), None)
 
 
-def foreign_output(path) -> bool:
-    """True for a file named like an output (``*.out``, ``*.log``, any compression) whose banner
-    is one of a code driftwatch has no reader for."""
+def output_code(path) -> tuple[str, str] | None:
+    """:func:`foreign_code` of a file named like an output (``*.out``, ``*.log``, any
+    compression), None for any other file or one that cannot be read."""
     if not strip_compression(Path(path).name).lower().endswith(_FOREIGN_NAMES):
-        return False
+        return None
     try:
-        return foreign_code(peek(path, PEEK_BYTES)) is not None
+        return foreign_code(peek(path, PEEK_BYTES))
     except (OSError, InputError):
-        return False
+        return None
+
+
+def foreign_output(path) -> bool:
+    """True for a file named like an output whose banner is one of a code driftwatch has no
+    reader for (:func:`output_code`)."""
+    return output_code(path) is not None
 
 
 # Files of the trade that are no trajectory, said by name when a user passes one (their first lines
@@ -667,9 +673,7 @@ def _cp2k_parts(folder: Path, names, files: list) -> list:
     in the folder: they are that run's, which is listed (skipped) by its output."""
     parts = [n for n in files if re.search(r"-pos-\d+\.xyz$", strip_compression(n))
              and _CP2K_POSITIONS.search(peek(folder / n, 256))]
-    if parts and any(strip_compression(n).lower().endswith(_FOREIGN_NAMES) and
-                     (foreign_code(peek(folder / n, PEEK_BYTES)) or ("",))[0] == "CP2K"
-                     for n in names):
+    if parts and any((output_code(folder / n) or ("",))[0] == "CP2K" for n in names):
         return [n for n in files if n not in parts]
     return files
 
@@ -782,8 +786,8 @@ def _others(folder: Path, names, pick: FolderPick, code: Code) -> tuple[list, li
             continue
         low = strip_compression(n).lower()
         if not any(fnmatch.fnmatchcase(low, g.lower()) for f in foreign for g in f.globs):
-            if foreign_output(Path(folder) / n):
-                what, _ = foreign_code(peek(Path(folder) / n, PEEK_BYTES))
+            what = (output_code(Path(folder) / n) or (None,))[0]
+            if what is not None:
                 if _COMPANIONS.get(what, ("",))[0] == code.name:
                     programs.append((n, what, _COMPANIONS[what][1]))
                 else:
