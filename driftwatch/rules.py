@@ -550,6 +550,8 @@ def _structure_verdict(frames, cfg, persist):
             out["at"][f"{s:g}"] = {"initial": [v["initial"]["group"], v["initial"]["symbol"]],
                                    "final": [v["final"]["group"], v["final"]["symbol"]],
                                    "direction": v["direction"]}
+            if v["relation"].startswith("not yet held"):          # live: a change seen, pending
+                out["at"][f"{s:g}"]["pending"] = v["relation"]
     return out
 
 
@@ -788,6 +790,8 @@ def _looser(sv) -> str | None:
     for key, v in sorted((sv.get("at") or {}).items(), key=lambda kv: float(kv[0])):
         if float(key) > sv["symprec"] and v["direction"] != sv["direction"]:
             (g0, s0), (g1, s1) = v["initial"], v["final"]
+            if v.get("pending"):      # live: the change at this symprec has not yet held
+                return f"at symprec {key} Å: group {s0} ({g0}) -> {s1} ({g1}) ({v['pending']})"
             grp = f"{s0} ({g0})" if v["direction"] == "kept" else f"{s0} ({g0}) -> {s1} ({g1})"
             if g0 == g1 and v["direction"] in ("gained", "lost"):    # the same type
                 grp += (f", with {'more' if v['direction'] == 'gained' else 'fewer'} operations "

@@ -209,6 +209,36 @@ def test_watch_stop_mode_raises_with_record_and_trajectory_has_step(tmp_path):
     assert rec["live"]["observer"]["complete"] is True
 
 
+def test_stop_record_names_both_groups_of_a_change_pending_at_a_common_symprec(tmp_path):
+    """A live stop's verdict quotes a common symprec whose group changed too recently to count
+    with both groups and "not yet held", not as "kept" the first frame's group (a new user's field
+    trial: a one-atom LJ layer relaxing from oblique under FIRE, stopped on lattice-gained).
+    Reference: spglib 2.8's layer dataset of the frame the record ends at, at 0.01 A."""
+    import spglib
+    from ase.calculators.lj import LennardJones
+    from ase.filters import FrechetCellFilter
+    from ase.optimize import FIRE
+    from ase import Atoms
+    b1 = np.array([1.05, 0, 0])
+    b2 = 1.15 * np.array([np.cos(np.radians(66)), np.sin(np.radians(66)), 0])
+    atoms = Atoms("Ar", cell=[b1, b2, [0, 0, 12.0]], pbc=True, positions=[[0, 0, 6.0]])
+    atoms.calc = LennardJones(sigma=1.0, epsilon=1.0, rc=3.0, smooth=True)
+    opt = FIRE(FrechetCellFilter(atoms, mask=[1, 1, 0, 0, 0, 1]), logfile=None)
+    opt.attach(SymmetryWatch(atoms, mode="stop", stop_on=("lattice-gained",)))
+    with pytest.raises(SymmetryCollapse) as exc:
+        opt.run(fmax=1e-4, steps=100)
+    v = exc.value.record["summary"]["verdict"]
+    at = v["structure"]["at"]["0.01"]
+    ds = spglib.get_symmetry_layerdataset(
+        (atoms.cell[:], atoms.get_scaled_positions(), atoms.numbers), aperiodic_dir=2,
+        symprec=0.01)
+    assert at["final"][0] == ds.number == 80 and at["initial"][0] == 6    # p112/m -> p6/mmm
+    assert at["direction"] == "kept" and at["pending"] == "not yet held for 10 steps"
+    assert "at symprec 0.01 Å: group p112/m (6) -> p6/mmm (80) (not yet held for 10 steps)" \
+        in v["text"]
+    assert "group kept p112/m" not in v["text"]
+
+
 def test_watch_stop_mode_finish_warns_a_flag_that_held_only_at_the_end(tmp_path):
     """A change that never held rules.persistence.steps steps while the run went on stops nothing;
     at finish() (the run has ended) it holds and is warned, not raised out of the caller's code."""
