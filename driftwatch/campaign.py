@@ -1195,8 +1195,7 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     value = (f"{tol['recommended_symprec']:.3g} Å" if tol["recommended_symprec"]
              else "any in the range searched" if tol.get("safe_runs") else "none to recommend")
     print(f"campaign symprec: {value} ({tol['reason']})", file=stream)
-    print("verdicts and flags are diagnostics to check, not proofs of stability or of a phase",
-          file=stream)
+    print(records.DIAGNOSTICS, file=stream)
     print(f"outputs: {summary['output']}", file=stream)
 
 

@@ -230,7 +230,8 @@ def _group_cell(f: dict, symprec: float) -> str:
 def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
-    from .records import CHIRAL_WORDS, END_POINTS, atoms_text, chiral_deformation, stages_text
+    from .records import (CHIRAL_WORDS, DIAGNOSTICS, END_POINTS, atoms_text, chiral_deformation,
+                          stages_text)
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -290,7 +291,8 @@ def _inspect_table(rec: dict) -> str:
         at = frames[fl["frame"]].get("label") or f"step {fl['step']}"
         lines.append(f"    flag: {fl['code']} ({at}): {fl['message']}")
     if not rec["flags"]:
-        lines.append("   flags: none (a diagnostic, not a proof of stability)")
+        lines.append("   flags: none")
+    lines.append(DIAGNOSTICS)
     return "\n".join(lines)
 
 

@@ -978,6 +978,7 @@ class _Follower:
                  + (f" (unfinished: {why})" if why and self.ended.startswith("end marker")
                     else "") + f"; {final['summary']['verdict']['text']}{still}"
                  + (f"; record {self.output}" if self.output is not None else ""))
+        self.say(records.DIAGNOSTICS)
         return final
 
 

@@ -284,6 +284,9 @@ END_POINTS = "2 structures (initial and final only; no ionic steps between them)
 """How an end-points run's frames are named in every output (``run.kind == "end-points"``)."""
 
 
+DIAGNOSTICS = "verdicts and flags are diagnostics to check, not proofs of stability or of a phase"
+"""The line every text output ends its judgement with (audit, inspect, follow)."""
+
 CHIRAL_WORDS = ("chiral_def: sign × deformation to the nearest lattice with a mirror line (the "
                 "record's chiral_distance is sign × root-space distance, another number)")
 """How the "chiral_def" column or field is said in every output (:func:`chiral_deformation`)."""

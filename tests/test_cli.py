@@ -53,6 +53,11 @@ def test_inspect_table_json_and_gate(tmp_path):
     assert r.returncode == 0, r.stderr
     assert "verdict: gained: lattice mp -> hp" in r.stdout
     assert "flag: lattice-gained (step" in r.stdout
+    # the judgement ends with the line every text output ends it with (audit, inspect, follow),
+    # flags or none (a new user's field trial: inspect, with flags, had none)
+    said = "verdicts and flags are diagnostics to check, not proofs of stability or of a phase"
+    assert r.stdout.rstrip().endswith(said)
+    assert dw("follow", run, "--idle", "1").stdout.rstrip().endswith(said)
     r = dw("inspect", run, "--json", "-o", tmp_path / "rec.json")
     rec = json.loads(r.stdout)
     assert rec["schema"] == "driftwatch/run-2"
