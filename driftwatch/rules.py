@@ -360,16 +360,17 @@ def _size(frame) -> float | None:
     return float(np.sqrt(np.sum(np.square(roots)))) if roots is not None else None
 
 
-def _lattice_flags(frames, lv, D, r):
+def _lattice_flags(frames, lv, D, r, complete=True):
     within, flags = r["lattice"]["within"], []
+    end = "at the end" if complete or not frames else f"at step {frames[-1]['step']} (the newest)"
     g, lo = lv["gained"], lv["lost"]
     kg = _from_frame(D[g], lambda s: s <= within) if g else None
     kl = _from_frame(D[lo], lambda s: s > within) if lo else None
     gain_text = (f"became {g} ({NAMES[g]}): deformation {_g(D[g][0])} Å at the start, "
-                 f"{_g(D[g][-1])} Å at the end, within {_g(within)} Å "
+                 f"{_g(D[g][-1])} Å {end}, within {_g(within)} Å "
                  f"{_from(frames, kg)}") if g else ""
     loss_text = (f"left {lo} ({NAMES[lo]}): deformation {_g(D[lo][0])} Å at the start, "
-                 f"{_g(D[lo][-1])} Å at the end (at least {_g(r['lattice']['left_beyond'])} Å "
+                 f"{_g(D[lo][-1])} Å {end} (at least {_g(r['lattice']['left_beyond'])} Å "
                  f"counts as left), no longer within {_g(within)} Å "
                  f"{_from(frames, kl)}") if lo else ""
     if g and lo:   # one sideways change, one flag
@@ -822,7 +823,7 @@ def lattice_flags(frames: list[dict], dim: int, cfg: dict, *, complete: bool = T
     r = cfg["rules"]
     persist = None if complete else r["persistence"]["steps"]
     lv, _, D = _lattice_verdict(frames, dim, r, persist, False, series)
-    return _lattice_flags(frames, lv, D, r)
+    return _lattice_flags(frames, lv, D, r, complete)
 
 
 def judge(record: dict, cfg: dict, *, complete: bool = True,
@@ -838,7 +839,7 @@ def judge(record: dict, cfg: dict, *, complete: bool = True,
     lv, drift, D = _lattice_verdict(frames, dim, r, persist, record["run"]["fixed_cell"], series)
     sv = _structure_verdict(frames, cfg, persist)
     direction = _combine(lv["direction"], sv["direction"])
-    flags = _lattice_flags(frames, lv, D, r)
+    flags = _lattice_flags(frames, lv, D, r, complete)
     flags += _structure_flags(frames, sv)
     if complete:       # judgements of the final structure: a live run's newest is not one yet
         flags += _breaks_lattice(frames, dim, r["atoms_break_lattice"],

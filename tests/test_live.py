@@ -19,6 +19,7 @@ from __future__ import annotations
 import io
 import json
 import os
+import re
 import shutil
 import subprocess
 import time
@@ -180,6 +181,10 @@ def test_watch_warn_mode_warns_once_per_new_flag(tmp_path):
     keys = [(w.flag["code"], w.flag["type"]) for w in ours]
     assert ("lattice-gained", "hp") in keys
     assert len(keys) == len(set(keys))                       # once per flag, not once per step
+    # said while the run goes on: the newest step, not "the end" (a new user's field trial)
+    gain = next(w for w in ours if w.flag["code"] == "lattice-gained")
+    assert "at the end" not in str(gain) and \
+        re.search(r"Å at step \d+ \(the newest\), within", str(gain))
     assert opt.converged(opt.optimizable.get_gradient())      # warn mode lets the relaxation finish
 
 
@@ -1017,7 +1022,7 @@ def test_follow_says_an_ended_job_did_not_finish(tmp_path):
     shutil.copytree(src, tmp_path / "run")
     buf = io.StringIO()
     rec = follow(tmp_path / "run", stream=buf, poll=0.05, idle=5)
-    last = buf.getvalue().strip().splitlines()[-1]
+    last = buf.getvalue().strip().splitlines()[-2]
     assert last.startswith("driftwatch: end marker: JOB DONE.; 5 completed steps (unfinished: "
                            "stopped at its time limit (pw.x: 'Maximum CPU time exceeded': "
                            "max_seconds)); ")
