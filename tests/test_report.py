@@ -131,7 +131,32 @@ def test_pages_exist_and_links_resolve(report):
         for h in hrefs:
             target = (page.parent / h.split("#")[0]).resolve()
             assert target.is_file(), (page, h)
+            if target.suffix == ".json" and page.parent.name == "runs":
+                continue        # the run's record, relative to its page (checked below)
             assert out.resolve() in target.parents or target.parent == out.resolve()
+
+
+def test_run_page_links_its_record_relative_to_the_page(real_records, tmp_path, monkeypatch):
+    """The run page's header names its record by a path relative to the page, so it leads to the
+    record wherever the report was built from (a new user's field trial: it was relative to the
+    folder the audit ran in); `report --overwrite` of an audit's records from another folder then
+    finds every page unchanged, as the audit keyed it (it rebuilt every page: the runs' names
+    from the audit's summary were learnt after the pages were keyed)."""
+    from driftwatch.campaign import audit
+    out = tmp_path / "audit"
+    monkeypatch.chdir(tmp_path)
+    audit([QE], "audit", workers=1, progress="off", quiet=True)
+    pages = sorted((out / "report" / "runs").glob("*.html"))
+    assert pages
+    for page in pages:
+        got = _parse(page.read_text(encoding="utf-8")).tags
+        href = [a["href"] for t, a in got if t == "a" and a.get("href", "").endswith(".json")]
+        assert len(href) == 1 and href[0].startswith("../../records/")
+        assert (page.parent / href[0]).resolve() == (out / "records" / f"{page.stem}.json")
+    before = _stamps(out / "report")
+    monkeypatch.chdir(out / "records")
+    build(["."], "../report", overwrite=True, progress="off")
+    assert _stamps(out / "report") == before
 
 
 def test_everything_inline_and_no_external_urls(report):

@@ -292,13 +292,26 @@ def _sources(items):
     return out
 
 
+def _origin(source, out) -> str | None:
+    """Where a run page finds its record: the record's path relative to the page's folder
+    (``out/runs``), so the link holds wherever the report was built from; None for a record
+    given in memory."""
+    if isinstance(source, dict):
+        return None
+    try:
+        return Path(os.path.relpath(os.path.abspath(source),
+                                    os.path.abspath(Path(out) / "runs"))).as_posix()
+    except ValueError:                        # (another drive)
+        return os.path.abspath(source)
+
+
 def _process(source, name, label, out, key=""):
     """Read one source, write its page; -> ("ok", digest) | ("bad", problem) | ("campaign", dict).
 
     Runs in the building process or in a worker process; only a small digest of the record comes
     back, so a campaign of thousands of runs is never held in memory at once.
     """
-    origin = None if isinstance(source, dict) else str(source)
+    origin = _origin(source, out)
     try:
         rec = source if isinstance(source, dict) else _records.read_json(source)
         _check_record(rec)
@@ -366,16 +379,16 @@ def _code() -> str:
     return _code_digest[0]
 
 
-def _key(source, name, label) -> str | None:
-    """Cache key of a run page: the code, the page's name, label and origin, the record's bytes."""
+def _key(source, name, label, out) -> str | None:
+    """Cache key of a run page: the code, the page's name, label and origin (:func:`_origin`),
+    the record's bytes."""
     try:
         raw = (_records.dumps(source).encode() if isinstance(source, dict)
                else Path(source).read_bytes())
     except (OSError, TypeError, ValueError):
         return None
     h = hashlib.sha256(_code().encode())
-    origin = "" if isinstance(source, dict) else str(source)
-    for part in (name, label, origin):
+    for part in (name, label, _origin(source, out) or ""):
         h.update(b"\0" + str(part).encode("utf-8", "surrogateescape"))
     h.update(b"\0" + raw)
     return h.hexdigest()
@@ -788,7 +801,8 @@ def run_page(name, label, rec, origin, key="") -> str:
     title = run.get("title")        # the file's own title line, below the run id every output uses
     header = (f"<h1>{e(label)}</h1><div class=\"sub\">"
               + (f"title {e(title)} · " if title and title != label else "")
-              + (f"record {e(origin)}" if origin else "") + "</div>")
+              + (f'record <a href="{e(quote(origin))}">{e(origin)}</a>' if origin else "")
+              + "</div>")
     warned = bool(run.get("warnings"))  # reading problems go up front, next to the summary
     body = (f'<p class="note">{e(DISCLAIMER)}</p>' + _summary_section(rec)
             + (_warnings_section(rec) if warned else "") + _flags_section(rec)
@@ -1119,10 +1133,12 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
     """
     if isinstance(records, (str, os.PathLike, dict)):
         records = [records]
+    beside = []
     if campaign is None:     # an audit's records/ folder: its summary beside it names the runs
-        beside = [Path(r).parent / "campaign.json" for r in records
-                  if not isinstance(r, dict) and Path(r).is_dir()]
-        records = [b for b in dict.fromkeys(beside) if b.is_file()] + list(records)
+        found = (Path(os.path.abspath(r)).parent / "campaign.json" for r in records
+                 if not isinstance(r, dict) and Path(r).is_dir())
+        beside = [b for b in dict.fromkeys(found) if b.is_file()]
+        records = beside + list(records)
     out = _prepare_output(output, overwrite)
     known = _load_pages(out)
     queue = _sources(records)
@@ -1149,6 +1165,8 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
 
     if isinstance(campaign, dict):
         learn(campaign, campaign.get("output"))
+    for b in beside:         # the runs' names before any page is keyed (as the audit keys them)
+        learn(_maybe_campaign(b), b.parent)
 
     def handle(src, name, page_key, result, reused=False):
         nonlocal found, reused_pages
@@ -1179,7 +1197,7 @@ def build(records, output, *, overwrite=False, campaign=None, workers=None,
         for src in items:
             seen.add(key(src))
             name = names(label_of(src))
-            page_key = _key(src, name, label_of(src))
+            page_key = _key(src, name, label_of(src), out)
             hit = known.get(name)
             if (page_key and isinstance(hit, dict) and hit.get("key") == page_key
                     and isinstance(hit.get("digest"), dict)
