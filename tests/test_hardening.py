@@ -1089,6 +1089,28 @@ def test_a_cut_poscar_says_where_it_ends(tmp_path):
     assert len(read_run(_NAFENIO / "POSCAR").numbers) == 8                     # the whole file
 
 
+def test_a_trajectory_cut_before_its_offset_table_says_it_was_cut(tmp_path):
+    """A real ASE trajectory of more than 50 frames (example_runs' EMT FIRE path, 86 frames: ASE's
+    ULM writer moves its offset table to the end after 50 items, ase/io/ulm.py Writer.sync)
+    cut before that table: the error says the file was cut short, not that its header is
+    damaged (a new user's field trial); a header past all sense is still called damaged."""
+    import numpy as np
+    src = Path(__file__).parent.parent / "example_runs" / "B07_emt_fire_path.traj"
+    data = src.read_bytes()
+    nitems, pos0 = (int(x) for x in np.frombuffer(data[32:48], "<i8"))
+    assert nitems == 86 and pos0 > 30_000                # the table past the first 50 frames
+    cut = tmp_path / "cut.traj"
+    cut.write_bytes(data[:20_000])
+    proc = _dw("inspect", str(cut))
+    err = proc.stderr.decode()
+    assert proc.returncode == 1 and "cut.traj: cut short: its header lists 86 frames whose " \
+        f"offset table is at byte {pos0}, past the file's end (20000 bytes)" in err, err
+    bad = tmp_path / "bad.traj"
+    bad.write_bytes(data[:32] + np.array([1 << 40, 48], "<i8").tobytes() + data[48:20_000])
+    err = _dw("inspect", str(bad)).stderr.decode()
+    assert "damaged ASE trajectory header" in err, err
+
+
 def test_a_structure_spglib_refuses_says_spglib_s_reason(tmp_path):
     """The same POSCAR with one atom written twice: spglib finds no group at any symprec ("too
     close distance between atoms", its own message): `tolerance` says so under its table of (0),

@@ -62,6 +62,10 @@ def _check_ulm_header(path) -> None:
     if len(head) < 48 or head[:8] not in (b"- of Ulm", b"AFFormat"):
         return                               # ASE reports a cut or foreign header itself
     version, nitems, pos0 = (int(x) for x in np.frombuffer(head[24:48], "<i8"))
+    if 0 <= nitems <= pos0 and size < pos0 + 8 * nitems:
+        raise InputError(path, f"cut short: its header lists {nitems} frames whose offset table "
+                               f"is at byte {pos0}, past the file's end ({size} bytes): a copy "
+                               f"or a write that stopped early")
     if not (0 <= nitems <= size // 8 and 0 <= pos0 <= size - 8 * nitems):
         raise InputError(path, f"damaged ASE trajectory header ({nitems} frames, offset table "
                                f"at byte {pos0}, file of {size} bytes)")
