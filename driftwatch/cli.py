@@ -231,7 +231,7 @@ def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
     from .records import (CHIRAL_WORDS, DIAGNOSTICS, END_POINTS, atoms_text, chiral_deformation,
-                          stages_text)
+                          peak_text, stages_text)
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -272,7 +272,7 @@ def _inspect_table(rec: dict) -> str:
     d = s.get("drift")
     if d:
         lines.append(f"   drift: deformation to {d['type']} ({NAMES[d['type']]}) "
-                     f"{_fmt(d['initial'])} Å -> {_fmt(d['final'])} Å")
+                     f"{_fmt(d['initial'])} Å -> {_fmt(d['final'])} Å{peak_text(d)}")
     at = s.get("atoms")
     if at:
         lines.append(f"   atoms: {atoms_text(at)}")

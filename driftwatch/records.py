@@ -308,6 +308,15 @@ def group_name(symbol, number, operations=None) -> str:
     return f"{symbol} ({number}, {operations} operation{'s' if operations != 1 else ''})"
 
 
+def peak_text(drift: dict) -> str:
+    """" (at most X Å at step N on the way: it left the type and came back)" for a drift with an
+    excursion (``peak``), else ""."""
+    if not drift or drift.get("peak") is None:
+        return ""
+    return (f" (at most {drift['peak']:.3g} Å at step {drift['peak_step']} on the way: farther "
+            f"than at either end)")
+
+
 def atoms_text(atoms: dict) -> str:
     """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output (a
     displacement below 1e-9 Å, rounding of a symmetric configuration, is said as 0)."""
@@ -421,7 +430,7 @@ CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "unfinished"
                "n_frames",
                "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
                "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
-               "group_verdict", "group_symprec_A", "group_initial", "group_final",
+               "drift_peak_A", "drift_peak_step", "group_verdict", "group_symprec_A", "group_initial", "group_final",
                "group_from_step", "group_later_steps_checked", "atoms_group", "atoms_symprec_A",
                "atoms_start_rms_A",
                "atoms_end_rms_A", "flags", "recommended_symprec_A", "warnings", "error")
@@ -452,6 +461,7 @@ def verdict_fields(record: dict) -> dict:
         "lattice_initial": lat["initial"], "lattice_final": lat["final"],
         "lattice_from_step": lat.get("from_step"),
         "drift_type": d.get("type"), "drift_initial": d.get("initial"), "drift_final": d.get("final"),
+        "drift_peak": d.get("peak"), "drift_peak_step": d.get("peak_step"),
         "group_verdict": st.get("direction"), "group_symprec": st.get("symprec"),
         "group_initial": grp(a), "group_final": grp(b),
         "group_from_step": st.get("from_step"),

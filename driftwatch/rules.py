@@ -293,7 +293,11 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
         d0, d1 = float(D[subject][0]), float(D[subject][-1])
         toward = subject in (g, nearing) and d0 > 0      # of the way to a type: gained, neared
         drift = {"type": subject, "initial": d0, "final": d1, "change": d1 - d0,
-                 "fraction": (d0 - d1) / d0 if toward else None}
+                 "fraction": (d0 - d1) / d0 if toward else None, "peak": None,
+                 "peak_step": None}
+        k = int(np.argmax(D[subject]))      # an excursion: a type held at an end that the
+        if min(d0, d1) <= within and D[subject][k] > max(d0, d1) + beyond:   # lattice left
+            drift.update(peak=float(D[subject][k]), peak_step=int(frames[k]["step"]))
     return out, drift, D
 
 

@@ -738,8 +738,10 @@ def calculator_folder(folder, names, format, ctx):
       trajectory's calculator is that code;
     * a one-frame trajectory equal to its last frame, with no calculator or the same one at the
       same energy (a calculator's restart file: ASE's CP2K calculator writes
-      ``cp2k_restart.traj``; :func:`_restart_of`), or atomate2's one-frame
-      ``final_atoms_object.xyz`` of that frame (:data:`FINAL_STRUCTURES`).
+      ``cp2k_restart.traj``; :func:`_restart_of`);
+    * one-frame structure files (extended XYZ, POSCAR) equal to its first frame (the start a
+      script wrote beside it: ``start.xyz``) or its last (``final.xyz``, atomate2's
+      ``final_atoms_object.xyz``, :data:`FINAL_STRUCTURES`): :func:`_copy_of`.
 
     The trajectory is read and those are named in its warnings; after the steps, what only they
     say is taken (:func:`_calculator_files_say`). None when the folder holds nothing of these, or
@@ -753,21 +755,24 @@ def calculator_folder(folder, names, format, ctx):
         return None
     folder = Path(folder)
     logs, outputs = [], []               # what beside the trajectories could be the calculator's
-    finals = [n for n in names if strip_compression(n) == FINAL_STRUCTURES]
+    copies = {}                          # one-structure files: their format
     for n in names:
-        if n in trajs or n in finals:
+        if n in trajs:
             continue
         path = folder / n
         try:
-            if detect(path) == "gpaw-out":
+            fmt = detect(path)
+            if fmt == "gpaw-out":
                 logs.append(n)
+            elif fmt in _COPY_FORMATS:
+                copies[n] = fmt
         except ForeignOutputError:              # an output of a code with no reader here
             code = output_code(path)
             if code is not None:
                 outputs.append((n, code[0]))
         except (DriftwatchError, OSError):
             pass
-    if len(logs) > 1 or not (logs or outputs or finals or len(trajs) > 1):
+    if len(logs) > 1 or not (logs or outputs or copies or len(trajs) > 1):
         return None                      # (no trajectory opened: discovery stays cheap)
     opened, main, single = {}, None, None
     for n in trajs:
@@ -787,13 +792,14 @@ def calculator_folder(folder, names, format, ctx):
         return None
     _, first, last, described = opened[main]
     restarts = [n for n in trajs if n != main and _restart_of(opened[n][1], last)]
-    if len(restarts) != len(trajs) - 1 or (finals and not _final_of(folder / finals[0], last)):
+    ends = {n: _copy_of(folder / n, fmt, first, last) for n, fmt in copies.items()}
+    ends = {n: what for n, what in ends.items() if what}    # others: runs of their own
+    if len(restarts) != len(trajs) - 1:
         return None
-    restarts += finals
     calculator = str(getattr(first.calc, "name", "") or "").lower()
     if any(_CALCULATOR_OUTPUTS.get(code, ("",))[0] != calculator for _, code in outputs):
         return None                      # another code's output: a run of its own
-    if not (logs or outputs or restarts):
+    if not (logs or outputs or restarts or ends):
         return None
     for n in trajs + logs + [n for n, _ in outputs]:
         ctx.uses(folder / n)
@@ -808,14 +814,16 @@ def calculator_folder(folder, names, format, ctx):
     notes += [f"{n} beside it is {code}'s output of this relaxation (the trajectory's calculator "
               f"is {code}): read {main}, the optimiser's steps" for n, code in outputs]
     notes += [f"{n} beside it is a one-frame copy of the trajectory's last frame (a calculator's "
-              f"restart file), not a run of its own" for n in restarts if n not in finals]
+              f"restart file), not a run of its own" for n in restarts]
     notes += [f"{n} beside it is atomate2's copy of the trajectory's last frame, not a run of "
               f"its own" + ("" if described else "; the trajectory records no optimiser "
                             "settings (as atomate2 writes it), so whether the relaxation "
                             "converged is said only by the job's task document (its state)")
-              for n in finals]
+              if strip_compression(n) == FINAL_STRUCTURES else
+              f"{n} beside it holds the trajectory's {which}, not a run of its own"
+              for n, which in ends.items()]
     return FolderPick([("", traj, "traj")], tuple(notes), also=tuple(logs + restarts) + tuple(
-        n for n, _ in outputs), after=functools.partial(
+        n for n, _ in outputs) + tuple(ends), after=functools.partial(
             _calculator_files_say, [(folder / n, *t) for n, t in zip(logs, told)],
             [(folder / n, code) for n, code in outputs]))
 
@@ -854,16 +862,27 @@ def _restart_of(frame, last) -> bool:
         return False
 
 
-def _final_of(path: Path, last) -> bool:
-    """atomate2's ``final_atoms_object.xyz`` holds one frame, ``last`` (its job's final
-    structure) and no other (several: final structures of several jobs, :func:`read_extxyz`)."""
+_COPY_FORMATS = {"extxyz": "extxyz", "vasp-poscar": "vasp"}
+"""Formats of one-structure files :func:`calculator_folder` takes for copies of a trajectory's
+first or last frame (driftwatch's name -> ASE's)."""
+
+
+def _copy_of(path: Path, fmt: str, first, last) -> str | None:
+    """What a one-structure file beside an ASE trajectory holds of it: "first frame (its start)",
+    "last frame" (atomate2's ``final_atoms_object.xyz``, a script's ``final.xyz``) or "first and
+    last frames" (a relaxation that did not move); None when it holds anything else (another
+    structure, several: atomate2's final structures of several jobs, :func:`read_extxyz`)."""
     import ase.io
     try:
         check_readable(path)
-        frames = ase.io.read(str(path), index=":", format="extxyz")
+        frames = ase.io.read(str(path), index=":", format=_COPY_FORMATS[fmt])
     except Exception:  # noqa: BLE001 - a file ASE cannot read is a run (a failing one) of its own
-        return False
-    return len(frames) == 1 and _same_structure(frames[0], last)
+        return None
+    if len(frames) != 1:
+        return None
+    at_start, at_end = _same_structure(frames[0], first), _same_structure(frames[0], last)
+    return ("first and last frames" if at_start and at_end else "first frame (its start)"
+            if at_start else "last frame" if at_end else None)
 
 
 def _ends_of(path: Path):

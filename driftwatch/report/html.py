@@ -519,7 +519,8 @@ def _summary_section(rec):
     ]
     if drift:
         rows.append(("drift", f"deformation to {_type_name(drift.get('type'))}: "
-                              f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"))
+                              f"{_q(drift.get('initial'))} → {_q(drift.get('final'))}"
+                              f"{e(_records.peak_text(drift))}"))
     if fin.get("nearest"):
         rows.append(("nearest type not held at the end",
                      f"{_type_name(fin.get('nearest'))}: deformation {_q(fin.get('deformation'))}, "

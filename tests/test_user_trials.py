@@ -1,0 +1,80 @@
+"""A new user's own runs (tests/data/user_trials, README there): what the campaign says of them.
+
+External facts used (source beside each check):
+* ASE 3.29's readers (``ase.io.read``: the trajectory, the extended XYZ, pw.x's output) and its
+  Bravais classification ``Cell.get_bravais_lattice(eps=...)`` of a cell;
+* the files' own content: the start structure a script wrote beside its optimiser's trajectory
+  is that trajectory's first frame (compared here with ASE, to the digits written).
+"""
+
+from __future__ import annotations
+
+import csv
+import shutil
+from pathlib import Path
+
+import numpy as np
+from ase.io import read, write
+
+from driftwatch.campaign import audit, discover
+from driftwatch.track import analyze
+
+DATA = Path(__file__).parent / "data" / "user_trials"
+ASE_RUNS = ("FH1_CuAu_layer_emt", "FH2_Cu4_rattled_emt", "FH5_Ni2Pd_fixedcell_emt")
+
+
+def test_a_start_structure_beside_its_trajectory_is_part_of_that_run(tmp_path):
+    """start.xyz beside relax.traj holds the trajectory's first frame (ASE reads both): the folder
+    is one run that names it, not two runs of which one is a 'single structure' whose flags count
+    among the relaxations' (3 runs and 3 single structures before). A POSCAR of the last frame
+    (final.vasp) written beside it is named the same way; a structure of its own beside it stays a
+    run."""
+    for name in ASE_RUNS:
+        start, first = read(DATA / name / "start.xyz"), read(DATA / name / "relax.traj", 0)
+        assert np.allclose(start.positions, first.positions, atol=1e-6)      # ASE: the same
+    runs, failed = discover([DATA])
+    assert not failed
+    ids = sorted(r.id for r in runs)
+    assert ids == sorted([f"user_trials/{n}" for n in ASE_RUNS]
+                         + ["user_trials/si2_vcrelax_excursion"])
+    rec = analyze(DATA / "FH2_Cu4_rattled_emt")
+    assert rec["run"]["n_frames"] == len(read(DATA / "FH2_Cu4_rattled_emt" / "relax.traj", ":"))
+    assert any("start.xyz beside it holds the trajectory's first frame (its start), not a run of "
+               "its own" in w for w in rec["run"]["warnings"])
+    # a copy of the last frame (ASE writes a POSCAR) and another structure beside the trajectory
+    run = tmp_path / "FH2"
+    shutil.copytree(DATA / "FH2_Cu4_rattled_emt", run)
+    last = read(run / "relax.traj", -1)
+    write(run / "final.vasp", last, format="vasp", direct=True)
+    other = last.copy()
+    other.positions[0] += 0.1
+    write(run / "guess.xyz", other, format="extxyz")
+    runs, failed = discover([run])
+    assert not failed and sorted(r.id for r in runs) == ["FH2", "FH2/guess.xyz"]
+    rec = analyze(run)
+    said = " ".join(rec["run"]["warnings"])
+    assert "final.vasp beside it holds the trajectory's last frame" in said
+    assert "guess.xyz beside it is another run (read on its own)" in said
+
+
+def test_a_lattice_that_leaves_its_type_and_comes_back_is_said_with_how_far(tmp_path):
+    """A real pw.x vc-relax of Si2 (displaced atom, cF cell): ASE's classification calls the first
+    and last cells FCC and the cell at step 1 not (eps 1e-3 Å), the run keeps cF end to end;
+    the drift says how far it went on the way (a new user saw 'cF 0 Å -> 0.000621 Å' only)."""
+    run = DATA / "si2_vcrelax_excursion"
+    frames = read(run / "pw.out", ":", format="espresso-out")
+    kinds = [a.cell.get_bravais_lattice(eps=1e-3).name for a in frames]
+    assert kinds[0] == kinds[-1] == "FCC" and kinds[1] != "FCC"
+    rec = analyze(run)
+    d = rec["summary"]["drift"]
+    series = [f["deformation"]["cF"] for f in rec["frames"]]
+    assert d["type"] == "cF" and rec["summary"]["verdict"]["lattice"]["direction"] == "kept"
+    assert d["peak"] == max(series) and d["peak_step"] == 1 and 0.09 < d["peak"] < 0.1
+    assert d["initial"] <= 1e-3 and d["final"] <= 1e-3
+    out = tmp_path / "audit"
+    audit([run], out, workers=1, progress="off", quiet=True, report=False)
+    row = next(csv.DictReader(open(out / "campaign.csv", encoding="utf-8")))
+    assert float(row["drift_peak_A"]) == float(f"{d['peak']:.6g}") and row["drift_peak_step"] == "1"
+    # a run whose type was never held at either end has no excursion to name
+    quiet = analyze(Path(__file__).parent.parent / "example_runs" / "L07_emt_fire.traj")
+    assert quiet["summary"]["drift"]["peak"] is None
