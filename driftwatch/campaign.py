@@ -1178,10 +1178,14 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     if summary.get("not_relaxation"):
         what = Counter(x["what"].split(" (")[0].split(":")[0].removeprefix("a ")
                        for x in summary["not_relaxation"])
+        theirs = Counter(c for x in summary["not_relaxation"] for c in x.get("flags") or ())
         print(f"not relaxations: {_runs(len(summary['not_relaxation']))} ("
               f"{', '.join(f'{k} {v}' for k, v in sorted(what.items()))}; column not_relaxation "
               f"of campaign.csv): their verdicts compare how the structure moved from the first "
-              f"frame to the last, not where a relaxation ended", file=stream)
+              f"frame to the last, not where a relaxation ended"
+              + (f"; of the flags above, theirs: "
+                 f"{', '.join(f'{k} {v}' for k, v in sorted(theirs.items()))}" if theirs else ""),
+              file=stream)
     if summary.get("unfinished"):
         why = Counter(re.sub(r" after step -?\d+$", "", x["why"].split(" (")[0].split(":")[0])
                       for x in summary["unfinished"])
@@ -1529,7 +1533,8 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
         "failed": sorted(failed, key=lambda f: f["run"]),
         "skipped": sorted(skipped, key=lambda f: f["run"]),
         "copies": _copies(ok),
-        "not_relaxation": [{"run": r["run"], "what": r["view"]["csv"]["not_relaxation"]}
+        "not_relaxation": [{"run": r["run"], "what": r["view"]["csv"]["not_relaxation"],
+                            "flags": sorted({f["code"] for f in r["view"]["flags"]})}
                            for r in sorted(ok, key=lambda r: r["run"])
                            if r["view"]["csv"]["not_relaxation"]],
         "unfinished": [{"run": r["run"], "why": r["view"]["csv"]["unfinished"]}

@@ -25,6 +25,7 @@ import shutil
 import subprocess
 import sys
 import warnings
+from collections import Counter
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -337,6 +338,15 @@ def test_mixed_public_campaign_audits_with_no_failed_run(tmp_path):
         "mixed/qe_testsuite_md/benchmark.out.git.inp=md.in.args=1.gz",
         "mixed/qe_testsuite_langevin/benchmark.out.git.inp=langevin.in.gz",
         "mixed/ase_generic/si8_md.castep.gz"}   # CASTEP: type of calculation : molecular dynamics
+    # which of the flags counted above are theirs, said beside them (a new user read the totals
+    # as the relaxations')
+    theirs = Counter(c for x in summary["not_relaxation"] for c in x["flags"])
+    line = next(ln for ln in proc.stdout.splitlines() if ln.startswith("not relaxations: "))
+    assert theirs and line.endswith("; of the flags above, theirs: " + ", ".join(
+        f"{k} {v}" for k, v in sorted(theirs.items())))
+    flags = dict(x.split(" ") for x in next(ln for ln in proc.stdout.splitlines() if ln.startswith(
+        "flags (runs): ")).removeprefix("flags (runs): ").split(", "))
+    assert all(int(flags[k]) >= v for k, v in theirs.items())
     # the campaign's tolerance advice is about relaxed structures: those 15 are left out of it
     tol = summary["tolerance"]
     assert tol["left_out"] == 15 and set(tol["run_ids_left_out"]) == {
