@@ -1322,11 +1322,11 @@ def campaign_advice(items: list[dict], common: list[float], window=None) -> dict
                reason=f"{len(ok)} of {len(per_run)} runs keep the spglib verdict on the final "
                       f"structure that their own advice recommends within a factor "
                       f"{SAFE_MARGIN:g} either side of {_g(s)} Å; "
-                      + (f"this is the centre of the widest symprec range ({_g(grid[a])}-"
-                         f"{_g(grid[b])} Å" if a != b else
-                         f"this is the one symprec of the grid ({_g(s)} Å")
-                      + f", searched {_g(window[0])}-{_g(window[1])} Å) where the most runs keep "
-                        f"their verdict"
+                      + (f"this is the centre of the widest range of such values ("
+                         f"{_g(grid[a])}-{_g(grid[b])} Å" if a != b else
+                         f"this is the one such value of the grid ({_g(s)} Å")
+                      + f", searched {_g(window[0])}-{_g(window[1])} Å) at which the most runs "
+                        f"keep their verdict with that margin"
                       + ("" if a else "; it starts at the bottom of the searched range, where "
                          "spglib sees the smallest deviations from symmetry")
                       + ("" if grid[b] >= NARROW * grid[a] else

@@ -527,6 +527,31 @@ def test_campaign_scatter_points_name_and_link_their_run(report):
                                                 if (report["out"] / "runs" / f"{n}.html").is_file()}
 
 
+def test_campaign_scatter_draws_a_gain_by_the_atoms_hollow_on_the_diagonal():
+    """example_runs' L09 (a fixed square cell: ASE reads the same cell in every frame) gained its
+    group by its atoms and L06 changed its lattice: on the scatter L09 lies on the diagonal, where
+    the caption once said "did not move"; it is drawn hollow under its own legend entry, L06
+    filled (a new user's field trial)."""
+    from ase.io import read
+    from driftwatch.report import charts
+    from driftwatch.track import analyze
+    runs = Path(__file__).parent.parent / "example_runs"
+    cells = {a.cell.cellpar().round(9).tobytes() for a in read(runs / "L09_emt_fixed_square.traj",
+                                                             ":")}
+    assert len(cells) == 1
+    recs = {n: analyze(runs / n) for n in ("L09_emt_fixed_square.traj", "L06_emt_bfgs.traj")}
+    assert recs["L09_emt_fixed_square.traj"]["summary"]["verdict"]["direction"] == "gained"
+    pts = charts.scatter_points((n, f"runs/{n}.html", r) for n, r in recs.items())
+    chart = charts.campaign_scatter(pts)
+    marks = [m for m in chart.panels[0].marks if m.kind == "points" and m.label]
+    by_name = {t.split(":")[0]: m for m in marks for t in m.tips}
+    assert by_name["L09_emt_fixed_square.traj"].hollow
+    assert by_name["L09_emt_fixed_square.traj"].label == "gained (layer, lattice kept)"
+    assert not by_name["L06_emt_bfgs.traj"].hollow
+    texts = [t for m in chart.panels[0].marks if m.kind == "text" for t in m.texts]
+    assert "lattice did not move" in texts and "no change" not in texts
+
+
 def _stamps(folder):
     return {p.name: (p.stat().st_mtime_ns, p.stat().st_ino) for p in (folder / "runs").glob("*.html")}
 

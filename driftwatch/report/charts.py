@@ -729,8 +729,9 @@ def scatter_points(items) -> list:
         if not t:
             continue
         f0, f1 = r["frames"][0], r["frames"][-1]
-        pts.append({"name": name, "href": href, "type": t,
-                    "verdict": r["summary"]["verdict"]["direction"],
+        v = r["summary"]["verdict"]
+        pts.append({"name": name, "href": href, "type": t, "verdict": v["direction"],
+                    "lattice": (v.get("lattice") or {}).get("direction"),
                     "dim": r["geometry"].get("dimension"), "def0": d.get("initial"),
                     "def1": d.get("final"), "dist0": (f0.get("distance") or {}).get(t),
                     "dist1": (f1.get("distance") or {}).get(t)})
@@ -745,8 +746,10 @@ floor together: a ring each had covered the panel)."""
 
 def campaign_scatter(points) -> Chart:
     """Initial against final deformation (left) and root-space distance (right), Å, to the type each
-    run's verdict is about. ``points``: dicts {name, href, verdict, dim, type, def0, def1, dist0,
-    dist1}; every point links to its run page and carries its name (tooltip; label for ≤ 30 runs)."""
+    run's verdict is about. ``points``: dicts {name, href, verdict, lattice, dim, type, def0, def1,
+    dist0, dist1}; every point links to its run page and carries its name (tooltip; label for ≤ 30
+    runs). A run whose verdict is the atoms' alone (its lattice kept: a fixed cell) is drawn
+    hollow: on the diagonal, yet its group changed."""
     short = _short_names([p["name"] for p in points])
     points = [dict(p, short=s) for p, s in zip(points, short)]
     panels = []
@@ -758,12 +761,15 @@ def campaign_scatter(points) -> Chart:
         marks.append(Mark("line", [lo, hi], [lo, hi], colour="#999999", dash=(4, 3), width=0.8,
                           z=1))
         mid = math.sqrt(lo * hi)
-        marks.append(Mark("text", [mid], [mid], texts=["no change"], anchor="start",
+        marks.append(Mark("text", [mid], [mid], texts=["lattice did not move"], anchor="start",
                           valign="top", colour="#666666", fontsize=8.5, offset=(4, -4)))
         label = len(pts) <= 30
-        groups = [(verdict, dim, marker, [p for p in pts if p["verdict"] == verdict
-                                          and p.get("dim") == dim])
+        atoms_only = lambda p: p["verdict"] != "kept" and p.get("lattice") == "kept"
+        groups = [(verdict, dim, marker, by_atoms,
+                   [p for p in pts if p["verdict"] == verdict and p.get("dim") == dim
+                    and atoms_only(p) == by_atoms])
                   for verdict in ("gained", "lost", "changed", "kept")
+                  for by_atoms in ((False, True) if verdict != "kept" else (False,))
                   for dim, marker in ((2, "o"), (3, "s"))]
         xy = lambda p: (max(finite(p[k0]), FLOOR), max(finite(p[k1]), FLOOR))
         at: dict = {}                 # runs at one point, in drawing order (the last on top)
@@ -774,19 +780,20 @@ def campaign_scatter(points) -> Chart:
         same = {id(p): ps for ps in at.values() if len(ps) > 1 for p in ps}
         tip = lambda p, verdict: (f"{p['name']}: {verdict}, {p.get('type')} {finite(p[k0]):.3g} "
                                   f"→ {finite(p[k1]):.3g} Å")
-        for verdict, dim, marker, sel in groups:
+        for verdict, dim, marker, by_atoms, sel in groups:
             if not sel:
                 continue
             colour = style.VERDICT_COLOURS.get(verdict, "#777777")
+            kind = f"{'layer' if dim == 2 else 'bulk'}{', lattice kept' if by_atoms else ''}"
             # runs at one point: the top one names them all; those under it show as rings
             names = [(" = ".join(q["short"] for q in same[id(p)]) if same[id(p)][-1] is p else "")
                      if id(p) in same else p["short"] for p in sel]
             marks.append(Mark(
                 "points", [xy(p)[0] for p in sel], [xy(p)[1] for p in sel], marker=marker,
-                size=7.5, colour=colour, edge="#222222", z=3,
-                label=f"{verdict} ({'layer' if dim == 2 else 'bulk'})",
-                links=[p.get("href") for p in sel], tips=[tip(p, verdict) for p in sel],
-                texts=names if label else None, offset=(6, 3), key=f"{verdict}-{dim}"))
+                size=7.5, colour=colour, edge="#222222", z=3, hollow=by_atoms,
+                label=f"{verdict} ({kind})", links=[p.get("href") for p in sel],
+                tips=[tip(p, verdict) for p in sel], texts=names if label else None,
+                offset=(6, 3), key=f"{verdict}-{dim}{'-atoms' if by_atoms else ''}"))
             for p in sel:
                 under = same.get(id(p), [p])
                 k = len(under) - 1 - under.index(p)         # how many runs lie on top of it
