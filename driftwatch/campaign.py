@@ -58,7 +58,7 @@ from . import records
 from .cache import (CACHE_SCHEMA, RACY_NS, Cache, FileDigests, freeze_inputs, inputs_digest,
                     run_key)
 from .cache import versions as _versions
-from .tasks import Progress, mp_context, progress_on
+from .tasks import Progress, duration, mp_context, progress_on
 from .rules import FLAGS, campaign_advice
 from .errors import ConfigError, DriftwatchError, InputError, OutputError
 
@@ -488,8 +488,14 @@ def _failed_chunk(chunk, why: str, broken: bool = False) -> list[dict]:
     return out
 
 
+HEARTBEAT = 5.0
+"""s: how long :func:`_drain` waits for a result before it yields None (the audit's progress line
+says the workers are busy, at its own pace: every 30 s in a log)."""
+
+
 def _drain(executor: Executor, chunks, cfg, *, pass_cfg: bool):
-    """Yield results of every chunk from an executor, as they complete."""
+    """Yield results of every chunk from an executor, as they complete; None after each
+    :data:`HEARTBEAT` seconds with none."""
     futs = {}
     for chunk in chunks:
         fut = executor.submit(_analyse_chunk, chunk, cfg) if pass_cfg else \
@@ -498,7 +504,9 @@ def _drain(executor: Executor, chunks, cfg, *, pass_cfg: bool):
     pending = set(futs)
     try:
         while pending:
-            done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            done, pending = wait(pending, timeout=HEARTBEAT, return_when=FIRST_COMPLETED)
+            if not done:
+                yield None                # none finished for a while: the caller may say so
             for fut in done:
                 try:
                     yield from fut.result()
@@ -613,6 +621,9 @@ def _local_pool(todo, cfg, workers, note: str = ""):
         try:
             for res in _drain(ex, _chunks(items, _chunk_size(len(items), workers)), cfg,
                               pass_cfg=False):
+                if res is None:
+                    yield None
+                    continue
                 if res.get("broken_pool"):
                     broken = True
                     continue
@@ -1311,15 +1322,26 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                         note=f"driftwatch: terminated by SIGTERM: {_stop_note(out)}\n")
     bar = Progress(len(runs), "driftwatch audit", enabled=progress_on(progress),
                    initial=len(runs) - len(todo))
-    from . import track
+    from . import symmetry, track
+    spent = [0, 0.0]                  # the current run's spglib calls and their seconds
+
+    def asked(symprec, seconds):
+        spent[0] += 1
+        spent[1] += seconds
+        bar.busy(f"this run: {spent[0]} spglib calls, {duration(spent[1])} in spglib (the last "
+                 f"at symprec {symprec:.3g} Å)")
     if how == "in process" and bar.enabled:        # a long run's frames, as they are checked
-        track.frame_progress = bar.within
+        track.frame_progress, symmetry.after_call = bar.within, asked
     try:
         for r in gen:
+            if r is None:             # workers still busy: said at the progress line's pace
+                bar.busy(f"{how}: runs still being analysed")
+                continue
             res.store(r)
             bar.update(r["ok"] or bool(r.get("skipped")))    # a skipped run has not failed
+            spent[:] = [0, 0.0]
     finally:
-        track.frame_progress = None
+        track.frame_progress = symmetry.after_call = None
         bar.close()
         getattr(gen, "close", lambda: None)()
 

@@ -48,6 +48,7 @@ import inspect
 import math
 import os
 import re
+import time
 import warnings
 
 import numpy as np
@@ -180,18 +181,28 @@ def _dataset(lattice, frac, numbers, symprec, angle_tolerance, layer):
     return out
 
 
+after_call = None
+"""Called as ``after_call(symprec, seconds)`` after each spglib call that was not memoised (the
+audit's progress line: a call takes minutes on thousands of atoms at large symprec), or None."""
+
+
 def _dataset_uncached(lattice, frac, numbers, symprec, angle_tolerance, layer):
     cell = (lattice, frac, numbers)
+    t = time.perf_counter()
     if not layer:
-        return _call(spglib.get_symmetry_dataset, cell, symprec=symprec,
-                     angle_tolerance=angle_tolerance)
-    fn = _layer_function()
-    kwargs = {"symprec": symprec}
-    if _accepts(fn, "aperiodic_dir"):
-        kwargs["aperiodic_dir"] = 2
-    if _accepts(fn, "angle_tolerance"):
-        kwargs["angle_tolerance"] = angle_tolerance
-    return _call(fn, cell, **kwargs)
+        out = _call(spglib.get_symmetry_dataset, cell, symprec=symprec,
+                    angle_tolerance=angle_tolerance)
+    else:
+        fn = _layer_function()
+        kwargs = {"symprec": symprec}
+        if _accepts(fn, "aperiodic_dir"):
+            kwargs["aperiodic_dir"] = 2
+        if _accepts(fn, "angle_tolerance"):
+            kwargs["angle_tolerance"] = angle_tolerance
+        out = _call(fn, cell, **kwargs)
+    if after_call is not None:
+        after_call(symprec, time.perf_counter() - t)
+    return out
 
 
 def _layer_angle_tolerance_applied():

@@ -45,10 +45,10 @@ class Progress:
         spent = time.monotonic() - self.t0
         left = ""
         if 0 < done and self.n < self.total:
-            left = f", about {_duration(spent / done * (self.total - self.n))} left"
+            left = f", about {duration(spent / done * (self.total - self.n))} left"
         failed = f", {self.failed} failed" if self.failed else ""
         return (f"{self.n}/{self.total} {self.unit} ({100 * self.n // max(self.total, 1)} %){failed}, "
-                f"{_duration(spent)} elapsed{left}")
+                f"{duration(spent)} elapsed{left}")
 
     def update(self, ok: bool = True) -> None:
         if not self.enabled:
@@ -63,6 +63,12 @@ class Progress:
         if self.enabled:
             self._show(f"{self._text()}; this run: {done:,}/{total:,} {unit} checked",
                        last=done >= total, end="")
+
+    def busy(self, text: str) -> None:
+        """What the current item is doing (spglib's calls on a large cell, runs being analysed by
+        workers), shown beside the items' count at the same pace as :meth:`update`."""
+        if self.enabled:
+            self._show(f"{self._text()}; {text}", last=False, end="")
 
     def _show(self, text: str, last: bool, end: str | None = None) -> None:
         """``text`` at most every ``interval`` seconds (always when ``last``): in place on a
@@ -99,7 +105,7 @@ class Progress:
         self.stream.flush()
 
 
-def _duration(seconds: float) -> str:
+def duration(seconds: float) -> str:
     seconds = int(round(seconds))
     if seconds < 120:
         return f"{seconds} s"

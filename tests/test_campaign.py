@@ -533,12 +533,45 @@ def test_a_long_run_checked_frame_by_frame_shows_its_progress(tmp_path, monkeypa
     src = REPO / "tests" / "data" / "public" / "fairchem_slab_relax"
     run_audit([src], tmp_path / "out", progress="on", config={"selection": {"all_frames": True}})
     lines = buf.getvalue().splitlines()
-    inside = [ln for ln in lines if "this run:" in ln]
+    inside = [ln for ln in lines if "frames checked" in ln]
     assert "0/1 runs (0 %)" in inside[0] and \
         inside[0].endswith("this run: 1/101 frames checked")
     assert inside[-1].endswith("this run: 101/101 frames checked") and len(inside) == 101
     assert lines[-1].split("driftwatch audit: ")[1].startswith("1/1 runs (100 %)")
     assert track.frame_progress is None                  # the hook is the audit's only
+
+
+def test_spglib_calls_and_busy_workers_are_said_while_a_run_is_analysed(tmp_path, monkeypatch):
+    """A run of a large cell can keep spglib busy for many minutes (a field trial: a 2048-atom
+    LAMMPS relaxation, 20 min without a line in a batch log): the progress line says, at its own
+    pace, how many spglib calls the run has made and the time they took; with worker processes,
+    that runs are still being analysed. The real progress line at no minimum interval, on a
+    genuine relaxation (tests/data/public fairchem_slab_relax) and two example runs."""
+    import io
+    import re
+    from driftwatch import campaign, symmetry, tasks
+    buf = io.StringIO()
+
+    class Now(tasks.Progress):
+        def __init__(self, *a, **k):
+            super().__init__(*a, **dict(k, stream=buf))
+            self.interval = 0.0
+
+    monkeypatch.setattr(campaign, "Progress", Now)
+    src = REPO / "tests" / "data" / "public" / "fairchem_slab_relax"
+    symmetry.clear_cache()                 # spglib's answers memoised by an earlier test: asked
+    run_audit([src], tmp_path / "one", progress="on", workers=1, use_cache=False)
+    said = [re.search(r"this run: (\d+) spglib calls?, \d+ s in spglib \(the last at symprec "
+                      r"[0-9.e+-]+ Å\)$", ln) for ln in buf.getvalue().splitlines()]
+    counts = [int(m.group(1)) for m in said if m]
+    assert counts[:3] == [1, 2, 3] and counts == sorted(counts) and counts[-1] >= 30
+    assert symmetry.after_call is None                   # the hook is the audit's only
+    buf.seek(0)
+    buf.truncate()
+    monkeypatch.setattr(campaign, "HEARTBEAT", 0.01)
+    run_audit([src, REPO / "example_runs" / "B06_emt_bain.traj"], tmp_path / "two",
+              progress="on", workers=2, use_cache=False)
+    assert "2 local processes: runs still being analysed" in buf.getvalue()
 
 
 def _boom(path):
