@@ -488,6 +488,9 @@ def _failed_chunk(chunk, why: str, broken: bool = False) -> list[dict]:
     return out
 
 
+SLOW_CALL = 10.0
+"""s: a spglib call this slow makes the progress line name the ``large`` preset."""
+
 HEARTBEAT = 5.0
 """s: how long :func:`_drain` waits for a result before it yields None (the audit's progress line
 says the workers are busy, at its own pace: every 30 s in a log)."""
@@ -1328,8 +1331,10 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
     def asked(symprec, seconds):
         spent[0] += 1
         spent[1] += seconds
-        bar.busy(f"this run: {spent[0]} spglib calls, {duration(spent[1])} in spglib (the last "
-                 f"at symprec {symprec:.3g} Å)")
+        bar.busy(f"this run: {spent[0]} spglib calls, {duration(spent[1])} in spglib (the last, "
+                 f"at symprec {symprec:.3g} Å, {duration(seconds)}"
+                 + ("; on a large cell `-c large` asks fewer" if seconds >= SLOW_CALL else "")
+                 + ")")
     if how == "in process" and bar.enabled:        # a long run's frames, as they are checked
         track.frame_progress, symmetry.after_call = bar.within, asked
     try:

@@ -29,7 +29,7 @@ __all__ = ["load", "coerce", "preset_path", "PRESETS", "parse_length", "parse_an
            "RANGES", "MAX_BYTES"]
 
 CONFIG_DIR = Path(__file__).resolve().parent / "configs"
-PRESETS = ("default", "monolayer", "bulk", "tolerance", "screen")
+PRESETS = ("default", "monolayer", "bulk", "tolerance", "screen", "large")
 
 BOHR = 0.529177210903  # Å (CODATA 2018)
 _LENGTH_UNITS = {"å": 1.0, "a": 1.0, "ang": 1.0, "angstrom": 1.0, "nm": 10.0, "pm": 0.01, "bohr": BOHR}

@@ -11,7 +11,7 @@ def test_presets_load_and_carry_units(name):
     cfg = config.load(name)
     # lengths come back in Å as floats; the default grid spans 1e-5..0.3 Å (our choice, bench/README.md)
     assert cfg["symmetry"]["symprec_min"] == pytest.approx(1e-5)
-    assert cfg["symmetry"]["symprec_max"] == pytest.approx(0.3)
+    assert cfg["symmetry"]["symprec_max"] == pytest.approx(0.1 if name == "large" else 0.3)
     assert isinstance(cfg["geometry"]["vacuum_gap"], float)
 
 
@@ -25,6 +25,13 @@ def test_presets_differ_where_documented():
     screen = config.load("screen")
     assert screen["symmetry"]["bisect"] is False and screen["selection"]["every"] == 0
     assert screen["symmetry"]["grid_points"] < config.load("default")["symmetry"]["grid_points"]
+    # large cells: fewer spglib questions, none above 0.1 Å, the verdicts' symprecs on its grid
+    from driftwatch.track import symprec_grid
+    large = config.load("large")
+    grid = symprec_grid(large)
+    assert len(grid) == 7 and max(grid) == pytest.approx(0.1) and large["symmetry"]["bisect"] is False
+    assert all(any(abs(g / s - 1) < 1e-6 for g in grid)
+               for s in large["report"]["common_symprecs"] + [large["rules"]["structure"]["symprec"]])
 
 
 @pytest.mark.parametrize("text,value", [

@@ -65,7 +65,7 @@ def test_summary_on_stdout_progress_and_notices_on_stderr(camp, tmp_path):
 def test_help_names_real_options_and_presets():
     h = " ".join(dw("inspect", "--help").stdout.split())       # argparse wraps the lines
     assert "driftwatch formats" in h and "--list-formats" not in h
-    for preset in ("default", "monolayer", "bulk", "tolerance", "screen"):
+    for preset in ("default", "monolayer", "bulk", "tolerance", "screen", "large"):
         assert preset in h
     assert "dated line every" in " ".join(dw("audit", "--help").stdout.split())  # --progress
     assert "--reject-on" in h and "--fail-on" not in h
