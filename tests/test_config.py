@@ -137,3 +137,27 @@ def test_a_key_given_twice_is_refused(tmp_path):
     f.write_text("rules:\n  lattice:\n    within: 1e-3 Å\n    within: 2e-3 Å\n")
     with pytest.raises(ConfigError, match=r"the key 'within' twice in one mapping \(line 4\)"):
         config.load(str(f))
+
+
+def test_the_large_preset_gives_the_defaults_verdicts_and_flags():
+    """`large` asks spglib fewer questions (no grid point above 0.1 Å, no bisection), and claims
+    the same verdicts at the common symprecs, the same step of a group change and the same flags
+    as the default: checked on the 17 example runs (real pw.x and EMT relaxations, whose default
+    verdicts are checked against spglib in test_public_runs/test_verdict)."""
+    from pathlib import Path
+
+    from driftwatch.track import analyze
+    runs = sorted(p for p in (Path(__file__).parent.parent / "example_runs").iterdir()
+                  if p.name[:1] in "BL")
+    assert len(runs) == 17
+    for run in runs:
+        a, b = analyze(run, "default"), analyze(run, "large")
+        va, vb = a["summary"]["verdict"], b["summary"]["verdict"]
+        assert va["direction"] == vb["direction"], run     # (the text's brackets: coarser)
+        assert va["structure"]["at"] == vb["structure"]["at"], run
+        assert va["structure"].get("from_step") == vb["structure"].get("from_step"), run
+        flags = [sorted((f["code"], f.get("type"), f["step"]) for f in r["flags"]) for r in (a, b)]
+        assert flags[0] == flags[1], run
+        asked = [max(s for f in r["frames"] if f.get("symmetry") for s in f["symmetry"]["symprec"])
+                 for r in (a, b)]
+        assert asked[0] == pytest.approx(0.3) and asked[1] == pytest.approx(0.1)
