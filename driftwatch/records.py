@@ -309,12 +309,12 @@ def group_name(symbol, number, operations=None) -> str:
 
 
 def peak_text(drift: dict) -> str:
-    """" (at most X Å at step N on the way: it left the type and came back)" for a drift with an
-    excursion (``peak``), else ""."""
+    """" (left it on the way and came back: X Å at step N)" for a drift with an excursion
+    (``peak``), else ""."""
     if not drift or drift.get("peak") is None:
         return ""
-    return (f" (at most {drift['peak']:.3g} Å at step {drift['peak_step']} on the way: farther "
-            f"than at either end)")
+    return (f" (left it on the way and came back: {drift['peak']:.3g} Å at step "
+            f"{drift['peak_step']})")
 
 
 def atoms_text(atoms: dict) -> str:

@@ -295,9 +295,10 @@ def _lattice_verdict(frames, dim, r, persist, fixed_cell, series=None):
         drift = {"type": subject, "initial": d0, "final": d1, "change": d1 - d0,
                  "fraction": (d0 - d1) / d0 if toward else None, "peak": None,
                  "peak_step": None}
-        k = int(np.argmax(D[subject]))      # an excursion: a type held at an end that the
-        if min(d0, d1) <= within and D[subject][k] > max(d0, d1) + beyond:   # lattice left
-            drift.update(peak=float(D[subject][k]), peak_step=int(frames[k]["step"]))
+        k = int(np.argmax(D[subject]))      # an excursion: a type held at both ends that the
+        if max(d0, d1) <= within and D[subject][k] >= beyond:   # lattice left on the way, by
+            drift.update(peak=float(D[subject][k]), peak_step=int(frames[k]["step"]))  # as much
+            #                                                   as a lost type is left
     return out, drift, D
 
 

@@ -106,6 +106,9 @@ class Progress:
 
 
 def duration(seconds: float) -> str:
+    """Seconds in words: "0.4 s", "12 s", "3 min", "2 h 05 min"."""
+    if seconds < 9.95:
+        return f"{seconds:.1f} s"
     seconds = int(round(seconds))
     if seconds < 120:
         return f"{seconds} s"

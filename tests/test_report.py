@@ -530,8 +530,8 @@ def test_campaign_scatter_points_name_and_link_their_run(report):
 def test_campaign_scatter_draws_a_gain_by_the_atoms_hollow_on_the_diagonal():
     """example_runs' L09 (a fixed square cell: ASE reads the same cell in every frame) gained its
     group by its atoms and L06 changed its lattice: on the scatter L09 lies on the diagonal, where
-    the caption once said "did not move"; it is drawn hollow under its own legend entry, L06
-    filled (a new user's field trial)."""
+    the caption once said "did not move"; it is drawn hollow under its own legend entry, L06 and
+    a moving cell whose lattice verdict is 'kept' filled (a new user's field trial)."""
     from ase.io import read
     from driftwatch.report import charts
     from driftwatch.track import analyze
@@ -540,14 +540,20 @@ def test_campaign_scatter_draws_a_gain_by_the_atoms_hollow_on_the_diagonal():
                                                              ":")}
     assert len(cells) == 1
     recs = {n: analyze(runs / n) for n in ("L09_emt_fixed_square.traj", "L06_emt_bfgs.traj")}
+    # a moving cell whose verdict comes from the group while the lattice's is 'kept' (inside the
+    # margins): off the diagonal, filled (the regression review found it drawn hollow)
+    ag = Path(__file__).parent / "data" / "user_trials" / "ag1_strain_bfgs.traj"
+    recs["ag1"] = analyze(ag)
+    assert recs["ag1"]["summary"]["verdict"]["lattice"]["direction"] == "kept"
+    assert len({a.cell.cellpar().round(6).tobytes() for a in read(ag, ":")}) > 1   # ASE: moves
     assert recs["L09_emt_fixed_square.traj"]["summary"]["verdict"]["direction"] == "gained"
     pts = charts.scatter_points((n, f"runs/{n}.html", r) for n, r in recs.items())
     chart = charts.campaign_scatter(pts)
     marks = [m for m in chart.panels[0].marks if m.kind == "points" and m.label]
     by_name = {t.split(":")[0]: m for m in marks for t in m.tips}
     assert by_name["L09_emt_fixed_square.traj"].hollow
-    assert by_name["L09_emt_fixed_square.traj"].label == "gained (layer, lattice kept)"
-    assert not by_name["L06_emt_bfgs.traj"].hollow
+    assert by_name["L09_emt_fixed_square.traj"].label == "gained (layer, fixed cell)"
+    assert not by_name["L06_emt_bfgs.traj"].hollow and not by_name["ag1"].hollow
     texts = [t for m in chart.panels[0].marks if m.kind == "text" for t in m.texts]
     assert "lattice did not move" in texts and "no change" not in texts
 

@@ -36,7 +36,7 @@ def test_a_start_structure_beside_its_trajectory_is_part_of_that_run(tmp_path):
     assert not failed
     ids = sorted(r.id for r in runs)
     assert ids == sorted([f"user_trials/{n}" for n in ASE_RUNS]
-                         + ["user_trials/si2_vcrelax_excursion"])
+                         + ["user_trials/si2_vcrelax_excursion", "user_trials/ag1_strain_bfgs.traj"])
     rec = analyze(DATA / "FH2_Cu4_rattled_emt")
     assert rec["run"]["n_frames"] == len(read(DATA / "FH2_Cu4_rattled_emt" / "relax.traj", ":"))
     assert any("start.xyz beside it holds the trajectory's first frame (its start), not a run of "
@@ -55,6 +55,30 @@ def test_a_start_structure_beside_its_trajectory_is_part_of_that_run(tmp_path):
     said = " ".join(rec["run"]["warnings"])
     assert "final.vasp beside it holds the trajectory's last frame" in said
     assert "guess.xyz beside it is another run (read on its own)" in said
+    # (a regression review) another structure under a name no format's pattern matches is still
+    # a run of its own; the last frame with another calculator's energy is a single point of its
+    # own (ASE's SinglePointCalculator, as a script saves one); a copy replaced by another
+    # structure is no longer called a copy at the next audit (the cache knows the file)
+    from ase.calculators.singlepoint import SinglePointCalculator
+    shutil.copy(run / "guess.xyz", run / "ideal.xyz.orig")
+    (run / "guess.xyz").unlink()
+    sp = last.copy()
+    sp.calc = SinglePointCalculator(sp, energy=last.get_potential_energy() - 1.0)
+    write(run / "sp_other.xyz", sp, format="extxyz")
+    runs, failed = discover([run])
+    assert not failed and sorted(r.id for r in runs) == ["FH2", "FH2/ideal.xyz.orig",
+                                                         "FH2/sp_other.xyz"]
+    out = tmp_path / "audit"
+    audit([run], out, workers=1, progress="off", quiet=True, report=False)
+    first = read(run / "relax.traj", 0)
+    first.positions[0] += 0.2
+    write(run / "start.xyz", first, format="extxyz")
+    s = audit([run], out, workers=1, progress="off", quiet=True, report=False)
+    assert "FH2/start.xyz" in {r["run"] for r in csv.DictReader(open(out / "campaign.csv"))}
+    said = " ".join(analyze(run)["run"]["warnings"])
+    rec = next(p for p in (out / "records").glob("FH2.json"))
+    assert "start.xyz beside it holds" not in rec.read_text() and "start.xyz beside it is " \
+        "another run" in said and s["analysed"] >= 2
 
 
 def test_a_lattice_that_leaves_its_type_and_comes_back_is_said_with_how_far(tmp_path):

@@ -793,7 +793,8 @@ def calculator_folder(folder, names, format, ctx):
     _, first, last, described = opened[main]
     restarts = [n for n in trajs if n != main and _restart_of(opened[n][1], last)]
     ends = {n: _copy_of(folder / n, fmt, first, last) for n, fmt in copies.items()}
-    ends = {n: what for n, what in ends.items() if what}    # others: runs of their own
+    others = tuple(n for n, what in ends.items() if not what)   # runs of their own, said
+    ends = {n: what for n, what in ends.items() if what}
     if len(restarts) != len(trajs) - 1:
         return None
     calculator = str(getattr(first.calc, "name", "") or "").lower()
@@ -801,7 +802,7 @@ def calculator_folder(folder, names, format, ctx):
         return None                      # another code's output: a run of its own
     if not (logs or outputs or restarts or ends):
         return None
-    for n in trajs + logs + [n for n, _ in outputs]:
+    for n in trajs + logs + [n for n, _ in outputs] + list(copies):
         ctx.uses(folder / n)
     told = [_gpaw_log_of(folder / n, first, last) for n in logs]
     if None in told:
@@ -823,7 +824,7 @@ def calculator_folder(folder, names, format, ctx):
               f"{n} beside it holds the trajectory's {which}, not a run of its own"
               for n, which in ends.items()]
     return FolderPick([("", traj, "traj")], tuple(notes), also=tuple(logs + restarts) + tuple(
-        n for n, _ in outputs) + tuple(ends), after=functools.partial(
+        n for n, _ in outputs) + tuple(ends), others=others, after=functools.partial(
             _calculator_files_say, [(folder / n, *t) for n, t in zip(logs, told)],
             [(folder / n, code) for n, code in outputs]))
 
@@ -867,22 +868,49 @@ _COPY_FORMATS = {"extxyz": "extxyz", "vasp-poscar": "vasp"}
 first or last frame (driftwatch's name -> ASE's)."""
 
 
+COPY_BYTES = 1 << 20
+"""A one-structure copy is read only when it fits in this many (decompressed) bytes: a larger
+file beside a trajectory is not opened whole at each discovery, and is a run of its own."""
+
+
 def _copy_of(path: Path, fmt: str, first, last) -> str | None:
     """What a one-structure file beside an ASE trajectory holds of it: "first frame (its start)",
     "last frame" (atomate2's ``final_atoms_object.xyz``, a script's ``final.xyz``) or "first and
     last frames" (a relaxation that did not move); None when it holds anything else (another
-    structure, several: atomate2's final structures of several jobs, :func:`read_extxyz`)."""
+    structure, several: atomate2's final structures of several jobs, :func:`read_extxyz`; the
+    same structure with another energy: a single point of another calculator)."""
     import ase.io
     try:
         check_readable(path)
-        frames = ase.io.read(str(path), index=":", format=_COPY_FORMATS[fmt])
+        text = peek(path, COPY_BYTES + 1)
+        if len(text) > COPY_BYTES:
+            return None
+        if fmt == "extxyz":               # one frame: nothing after its natoms + 2 lines
+            lines = text.splitlines()
+            if any(ln.strip() for ln in lines[int(lines[0].split()[0]) + 2:]):
+                return None
+        frame = ase.io.read(str(path), format=_COPY_FORMATS[fmt])
     except Exception:  # noqa: BLE001 - a file ASE cannot read is a run (a failing one) of its own
         return None
-    if len(frames) != 1:
-        return None
-    at_start, at_end = _same_structure(frames[0], first), _same_structure(frames[0], last)
+    at_start, at_end = (_same_structure(frame, ref) and _same_energy(frame, ref)
+                        for ref in (first, last))
     return ("first and last frames" if at_start and at_end else "first frame (its start)"
             if at_start else "last frame" if at_end else None)
+
+
+def _same_energy(copy, frame) -> bool:
+    """A structure file's energy (when it carries one) is the trajectory frame's, to 1e-5 eV
+    (extended XYZ prints 8 decimals or more)."""
+    if getattr(copy, "calc", None) is None:
+        return True
+    try:
+        mine = copy.get_potential_energy()
+    except Exception:  # noqa: BLE001 - a calculator with no energy: nothing to compare
+        return True
+    try:
+        return abs(mine - frame.get_potential_energy()) <= 1e-5
+    except Exception:  # noqa: BLE001 - an energy the trajectory's frame does not have
+        return False
 
 
 def _ends_of(path: Path):

@@ -98,7 +98,7 @@ class FolderPick:
     dump written one file per frame, a job's dump of no cell)."""
     others: tuple = ()
     """Names of files beside the run that another format reads (an ASE trajectory beside a VASP
-    run): runs of their own (set by :func:`scan_folder`)."""
+    run): runs of their own (set by :func:`scan_folder`, with those the code's rule found)."""
     after: Callable | None = None
     """``after(ctx, last_frame)``, called once the stages are read: takes what a file beside them
     says of the run (a GPAW log beside the trajectory of the relaxation it logged)."""
@@ -625,7 +625,7 @@ def scan_folder(folder, names=None, format=None, ctx: ReadContext | None = None)
         claims = [(c, got) for c, got in claims if c.formats] or claims
     for code, got in claims:
         others, programs = _others(folder, names, got, code)
-        got.others = tuple(others)
+        got.others = tuple(dict.fromkeys(tuple(got.others) + tuple(others)))  # (the rule's own)
         got.warnings = tuple(got.warnings) + tuple(
             f"{n} beside it is another run (read on its own)" for n in got.others) + tuple(
             f"{n} beside it is an output of {what}, {how}: no run of its own"

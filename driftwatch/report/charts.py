@@ -731,7 +731,7 @@ def scatter_points(items) -> list:
         f0, f1 = r["frames"][0], r["frames"][-1]
         v = r["summary"]["verdict"]
         pts.append({"name": name, "href": href, "type": t, "verdict": v["direction"],
-                    "lattice": (v.get("lattice") or {}).get("direction"),
+                    "fixed_cell": bool(r["run"].get("fixed_cell")),
                     "dim": r["geometry"].get("dimension"), "def0": d.get("initial"),
                     "def1": d.get("final"), "dist0": (f0.get("distance") or {}).get(t),
                     "dist1": (f1.get("distance") or {}).get(t)})
@@ -746,10 +746,10 @@ floor together: a ring each had covered the panel)."""
 
 def campaign_scatter(points) -> Chart:
     """Initial against final deformation (left) and root-space distance (right), Å, to the type each
-    run's verdict is about. ``points``: dicts {name, href, verdict, lattice, dim, type, def0, def1,
-    dist0, dist1}; every point links to its run page and carries its name (tooltip; label for ≤ 30
-    runs). A run whose verdict is the atoms' alone (its lattice kept: a fixed cell) is drawn
-    hollow: on the diagonal, yet its group changed."""
+    run's verdict is about. ``points``: dicts {name, href, verdict, fixed_cell, dim, type, def0,
+    def1, dist0, dist1}; every point links to its run page and carries its name (tooltip; label
+    for ≤ 30 runs). A fixed-cell run whose group changed (its atoms moved: its lattice cannot) is
+    drawn hollow: on the diagonal, yet not unchanged."""
     short = _short_names([p["name"] for p in points])
     points = [dict(p, short=s) for p, s in zip(points, short)]
     panels = []
@@ -764,7 +764,7 @@ def campaign_scatter(points) -> Chart:
         marks.append(Mark("text", [mid], [mid], texts=["lattice did not move"], anchor="start",
                           valign="top", colour="#666666", fontsize=8.5, offset=(4, -4)))
         label = len(pts) <= 30
-        atoms_only = lambda p: p["verdict"] != "kept" and p.get("lattice") == "kept"
+        atoms_only = lambda p: p["verdict"] != "kept" and p.get("fixed_cell")
         groups = [(verdict, dim, marker, by_atoms,
                    [p for p in pts if p["verdict"] == verdict and p.get("dim") == dim
                     and atoms_only(p) == by_atoms])
@@ -784,7 +784,7 @@ def campaign_scatter(points) -> Chart:
             if not sel:
                 continue
             colour = style.VERDICT_COLOURS.get(verdict, "#777777")
-            kind = f"{'layer' if dim == 2 else 'bulk'}{', lattice kept' if by_atoms else ''}"
+            kind = f"{'layer' if dim == 2 else 'bulk'}{', fixed cell' if by_atoms else ''}"
             # runs at one point: the top one names them all; those under it show as rings
             names = [(" = ".join(q["short"] for q in same[id(p)]) if same[id(p)][-1] is p else "")
                      if id(p) in same else p["short"] for p in sel]

@@ -884,8 +884,8 @@ def _index_page(runs, bad, failed, campaign) -> str:
                          f"point links to its run's page and names it on hover"
                          + (" and beside it where names do not overlap" if len(pts) <= 30
                             else "") + ". On the dashed diagonal the lattice did not "
-                         f"move: a run whose spglib group changed all the same (its atoms moved, "
-                         f"a fixed cell) is drawn there hollow, in its verdict's colour; "
+                         f"move: a fixed-cell run whose spglib group changed all the same (its "
+                         f"atoms moved) lies there, drawn hollow in its verdict's colour; "
                          f"values at or below {charts.FLOOR:g} Å are drawn on "
                          f"the axes (runs that reached the type fall onto the bottom axis, runs that "
                          f"started at it onto the left one). Near rectangular lattices the root-space distance is the larger of "
