@@ -361,13 +361,15 @@ def _one_atom_cell(lattice, layer):
 # ----------------------------------------------------------------------------------------------
 # scanning a grid and bisecting between neighbours whose verdicts differ
 # ----------------------------------------------------------------------------------------------
-def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
+def _scan(probe, key, grid, bisect, ratio, hints=(), values=None, floor=0.0):
     """Verdicts on ``grid`` and bracketed changes between neighbours.
 
     ``probe(s)`` returns a verdict, ``key(verdict)`` what must change to count as a change.
     ``hints`` are (low, high) brackets from a previous, similar spectrum: they are probed first
     (so a still-valid bracket costs two calls) and the search continues from what they show.
-    ``values`` are grid verdicts already known. Returns (verdicts on the grid, list of
+    ``values`` are grid verdicts already known. A change in a grid interval that ends at or below
+    ``floor`` (Å: what the file's printed positions cannot resolve) keeps that interval as its
+    bracket (not bisected, not swept). Returns (verdicts on the grid, list of
     (low, v_low, high, v_high)).
     """
     values = [probe(s) for s in grid] if values is None else list(values)
@@ -378,6 +380,9 @@ def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
         lo, hi = grid[i], grid[i + 1]
         if key(values[i]) == key(values[i + 1]):
             continue
+        if hi <= floor:
+            brackets.append((lo, values[i], hi, values[i + 1]))
+            continue
         points = [(lo, values[i]), (hi, values[i + 1])]
         for low, high in hints:
             for s in (low, high):
@@ -387,7 +392,7 @@ def _scan(probe, key, grid, bisect, ratio, hints=(), values=None):
         for (s0, v0), (s1, v1) in zip(points, points[1:]):
             if key(v0) != key(v1):
                 brackets += _bisect(probe, key, s0, v0, s1, v1, ratio)
-    return values, _sweep(probe, key, grid, values, brackets, ratio)
+    return values, _sweep(probe, key, grid, values, brackets, ratio, floor)
 
 
 SWEEP_CALLS = 100
@@ -399,7 +404,7 @@ chain from a flicker (:func:`_sweep`)."""
 """The probing step of :func:`_sweep`: ``precision ** SWEEP_STEP`` in log symprec."""
 
 
-def _sweep(probe, key, grid, values, brackets, ratio):
+def _sweep(probe, key, grid, values, brackets, ratio, floor=0.0):
     """``brackets`` completed where spglib flickered.
 
     spglib's verdict is not monotonic in symprec: where one grid interval holds a change and its
@@ -456,7 +461,8 @@ def _sweep(probe, key, grid, values, brackets, ratio):
         per[i0] = found if len(found) > len(per[i0]) else per[i0]
         for d in (-1, 1):
             j = i0 + d
-            while 0 <= j < n and j not in done and calls[0] < SWEEP_CALLS:
+            while (0 <= j < n and j not in done and calls[0] < SWEEP_CALLS
+                   and grid[j + 1] > floor):
                 done.add(j)
                 found = probed(j)
                 more = len(found) > len(per[j])
@@ -574,7 +580,7 @@ def _lattice_spectrum(lattice, angle_tolerance, layer, grid, bisect, ratio, shor
 # ----------------------------------------------------------------------------------------------
 def spectrum(cell, positions, numbers, *, symprecs=None, angle_tolerance=-1.0, vacuum_axis=None,
              bisect=True, precision=DEFAULT_PRECISION, previous=None, lattice_shortcut=True,
-             lattice_bisect=None):
+             lattice_bisect=None, floor=0.0):
     """spglib's verdict across a symprec grid, and where it changes.
 
     Parameters
@@ -590,6 +596,9 @@ def spectrum(cell, positions, numbers, *, symprecs=None, angle_tolerance=-1.0, v
     lattice_bisect : bracket the lattice-only changes too (default: as ``bisect``). The run record
         asks for the structure's brackets of its final frame only (what the tolerance advice reads).
     precision : bracket ratio: each breakpoint has ``high / low <= precision`` (default 1.02).
+    floor : Å; a group change in a grid interval ending at or below it is not bisected (its
+        bracket is that interval): twice the file's printed precision of positions, below which
+        the file cannot tell the verdicts apart (0: bisect every change).
     previous : the spectrum of a similar earlier frame (e.g. the previous ionic step); its group
         breakpoints are probed first, so a bracket that still holds costs two spglib calls instead
         of ~6. The result is still decided by spglib on this frame only (brackets may differ from
@@ -632,11 +641,11 @@ def spectrum(cell, positions, numbers, *, symprecs=None, angle_tolerance=-1.0, v
     digest = hashlib.sha1(b"".join([
         lattice.tobytes(), frac.tobytes(), nums.tobytes(), np.array(grid).tobytes(),
         repr((angle_tolerance, vacuum_axis, bool(bisect), float(precision), hints,
-              bool(lattice_shortcut), lattice_bisect)).encode(),
+              bool(lattice_shortcut), lattice_bisect, float(floor))).encode(),
     ])).digest()
     result, hit = _cached(_SPECTRUM_CACHE, digest, lambda: _spectrum(
         lattice, frac, nums, grid, angle_tolerance, vacuum_axis, bool(bisect), float(precision), hints,
-        bool(lattice_shortcut), lattice_bisect))
+        bool(lattice_shortcut), lattice_bisect, float(floor)))
     result = _copy(result)
     if hit:
         result["calls"] = 0
@@ -655,10 +664,10 @@ def _copy(result):
 
 
 def _spectrum(lattice, frac, nums, grid, angle_tolerance, vacuum_axis, bisect, ratio, hints,
-              lattice_shortcut, lattice_bisect=None):
+              lattice_shortcut, lattice_bisect=None, floor=0.0):
     layer = vacuum_axis is not None
     prober = _Prober("group", lattice, frac, nums, angle_tolerance, layer)
-    groups, gbrackets = _scan(prober, _group_key, grid, bisect, ratio, hints)
+    groups, gbrackets = _scan(prober, _group_key, grid, bisect, ratio, hints, floor=floor)
     (lats, lbrackets, lfail, lcalls, assumed), lhit = _lattice_spectrum(
         lattice, angle_tolerance, layer, grid, bisect if lattice_bisect is None else lattice_bisect,
         ratio, lattice_shortcut)

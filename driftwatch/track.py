@@ -417,7 +417,8 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
     spec = symmetry.spectrum(run.cells[i], run.positions[i], run.symmetry_types, symprecs=grid,
                              angle_tolerance=s["angle_tolerance"], vacuum_axis=geo.vacuum_axis,
                              bisect=bool(s["bisect"] and brackets), precision=s["precision"],
-                             lattice_bisect=bool(s["bisect"] and brackets == "all"))
+                             lattice_bisect=bool(s["bisect"] and brackets == "all"),
+                             floor=2.0 * (run.position_precision or 0.0))
     spec["displacement"] = symmetry.drift_table(
         run.cells[i], run.positions[i], run.symmetry_types, spec, vacuum_axis=geo.vacuum_axis,
         start=None if start is None else (run.cells[start], run.positions[start]))

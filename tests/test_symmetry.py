@@ -731,3 +731,35 @@ def test_spglib_older_than_2_7_is_refused_by_its_version(version, ok):
     neither; a field trial's venv failed every run on them). The installed one passes."""
     assert S.spglib_supported(version) is ok
     assert S.spglib_supported(spglib.__version__) and hasattr(spglib, "error")
+
+
+def test_a_change_below_what_the_file_resolves_is_not_bisected():
+    """A real LAMMPS relaxation of a 256-atom Al supercell (tests/data/lammps_trials/
+    al256_rattled_eam; positions printed to 6 significant digits, 1e-4 Å): spglib's group of the
+    final frame changes P1 -> Fm-3m near 1e-4 Å. With the floor at 2e-4 Å (twice such a
+    precision: what the file cannot resolve), the change keeps its grid interval as its bracket,
+    asks spglib fewer questions, and every grid verdict is spglib's own, as without the floor.
+    ASE's own LAMMPS dump reader gives the same positions (the reference for the frame)."""
+    from ase.io import read
+    from driftwatch.adapters import read_run
+    path = DATA / "lammps_trials" / "al256_rattled_eam" / "al256_rattled.lammpstrj.gz"
+    run = read_run(path)
+    ase_last = read(path, -1, format="lammps-dump-text")
+    assert np.allclose(ase_last.positions, run.positions[-1], atol=1e-9)
+    grid = [1e-05, 2.0883071e-05, 4.3610268e-05, 9.1071633e-05, 1.90185543e-04, 3.9716583e-04,
+            1e-3]
+    got = {}
+    for floor in (0.0, 2e-4):
+        S.clear_cache()
+        got[floor] = S.spectrum(run.cells[-1], run.positions[-1], run.symmetry_types,
+                                       symprecs=grid, floor=floor)
+    a, b = got[0.0], got[2e-4]
+    assert a["group"] == b["group"] == [1, 1, 1, 1, 225, 225, 225]
+    for k, s in enumerate(grid):          # spglib itself, at each grid point
+        ds = spglib.get_symmetry_dataset((run.cells[-1], ase_last.get_scaled_positions(),
+                                          run.numbers), symprec=s)
+        assert ds.number == a["group"][k]
+    (ba,), (bb,) = ([x for x in g["breakpoints"] if x["kind"] == "group"] for g in (a, b))
+    assert ba["high"] / ba["low"] <= 1.05 and grid[3] <= ba["low"] < ba["high"] <= grid[4]
+    assert (bb["low"], bb["high"]) == pytest.approx((grid[3], grid[4]))
+    assert b["calls"] < a["calls"]
