@@ -1274,8 +1274,9 @@ def audit(roots, output=None, *, config=None, include=(), exclude=(), workers=No
 
 def _stop_note(out: Path) -> str:
     """What an audit stopped by Ctrl-C or SIGTERM leaves, and what to do, in words."""
-    return (f"runs finished so far are kept in {records.shown(out)}/.cache, and the folder's "
-            f"tables and report may be partly of this audit; re-run the same command to finish")
+    return (f"runs finished so far, if any, are kept in {records.shown(out)}/.cache (a run cut "
+            f"while being analysed is analysed again), and the folder's tables and report may be "
+            f"partly of this audit; re-run the same command to finish")
 
 
 def _run_audit(lock, roots, output, *, config, include, exclude, workers, scheduler, db,
