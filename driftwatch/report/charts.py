@@ -764,7 +764,7 @@ def campaign_scatter(points) -> Chart:
         marks.append(Mark("text", [mid], [mid], texts=["lattice did not move"], anchor="start",
                           valign="top", colour="#666666", fontsize=8.5, offset=(4, -4)))
         label = len(pts) <= 30
-        atoms_only = lambda p: p["verdict"] != "kept" and p.get("fixed_cell")
+        atoms_only = lambda p: p["verdict"] != "kept" and bool(p.get("fixed_cell"))
         groups = [(verdict, dim, marker, by_atoms,
                    [p for p in pts if p["verdict"] == verdict and p.get("dim") == dim
                     and atoms_only(p) == by_atoms])
