@@ -516,12 +516,10 @@ def test_progress_and_summary_table(tmp_path, capsys):
     assert got.out.startswith("run ") and got.err == ""      # progress off: the table still shown
 
 
-def test_a_long_run_checked_frame_by_frame_shows_its_progress(tmp_path, monkeypatch):
-    """An every-frame audit of one long run (a genuine 101-frame relaxation, tests/data/public
-    fairchem_slab_relax) prints how many of its frames spglib has checked while it runs, not only
-    when the run ends; the real progress line at no minimum interval."""
+def _progress_into_buffer(monkeypatch):
+    """The audit's real progress line written into a buffer at no minimum interval; the buffer."""
     import io
-    from driftwatch import campaign, tasks, track
+    from driftwatch import campaign, tasks
     buf = io.StringIO()
 
     class Now(tasks.Progress):
@@ -530,6 +528,15 @@ def test_a_long_run_checked_frame_by_frame_shows_its_progress(tmp_path, monkeypa
             self.interval = 0.0
 
     monkeypatch.setattr(campaign, "Progress", Now)
+    return buf
+
+
+def test_a_long_run_checked_frame_by_frame_shows_its_progress(tmp_path, monkeypatch):
+    """An every-frame audit of one long run (a genuine 101-frame relaxation, tests/data/public
+    fairchem_slab_relax) prints how many of its frames spglib has checked while it runs, not only
+    when the run ends; the real progress line at no minimum interval."""
+    from driftwatch import track
+    buf = _progress_into_buffer(monkeypatch)
     src = REPO / "tests" / "data" / "public" / "fairchem_slab_relax"
     run_audit([src], tmp_path / "out", progress="on", config={"selection": {"all_frames": True}})
     lines = buf.getvalue().splitlines()
@@ -547,17 +554,9 @@ def test_spglib_calls_and_busy_workers_are_said_while_a_run_is_analysed(tmp_path
     pace, how many spglib calls the run has made and the time they took; with worker processes,
     that runs are still being analysed. The real progress line at no minimum interval, on a
     genuine relaxation (tests/data/public fairchem_slab_relax) and two example runs."""
-    import io
     import re
-    from driftwatch import campaign, symmetry, tasks
-    buf = io.StringIO()
-
-    class Now(tasks.Progress):
-        def __init__(self, *a, **k):
-            super().__init__(*a, **dict(k, stream=buf))
-            self.interval = 0.0
-
-    monkeypatch.setattr(campaign, "Progress", Now)
+    from driftwatch import campaign, symmetry
+    buf = _progress_into_buffer(monkeypatch)
     src = REPO / "tests" / "data" / "public" / "fairchem_slab_relax"
     symmetry.clear_cache()                 # spglib's answers memoised by an earlier test: asked
     run_audit([src], tmp_path / "one", progress="on", workers=1, use_cache=False)
