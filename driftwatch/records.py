@@ -427,13 +427,13 @@ def to_atoms(record: dict, i: int = -1):
 
 
 CSV_COLUMNS = ("run", "source", "format", "kind", "not_relaxation", "unfinished", "dimension",
-               "n_frames",
-               "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict", "lattice_initial", "lattice_final",
-               "lattice_from_step", "drift_type", "drift_initial_A", "drift_final_A",
-               "drift_peak_A", "drift_peak_step", "group_verdict", "group_symprec_A", "group_initial", "group_final",
+               "n_frames", "n_atoms", "formula", "fixed_cell", "verdict", "lattice_verdict",
+               "lattice_initial", "lattice_final", "lattice_from_step", "drift_type",
+               "drift_initial_A", "drift_final_A", "drift_peak_A", "drift_peak_step",
+               "group_verdict", "group_symprec_A", "group_initial", "group_final",
                "group_from_step", "group_later_steps_checked", "atoms_group", "atoms_symprec_A",
-               "atoms_start_rms_A",
-               "atoms_end_rms_A", "flags", "recommended_symprec_A", "warnings", "error")
+               "atoms_start_rms_A", "atoms_end_rms_A", "flags", "recommended_symprec_A",
+               "warnings", "error")
 """Columns of ``campaign.csv``; the same names (without the ``_A`` unit suffix) are the ase.db keys
 (:func:`db_key_values`). ``verdict`` is the run's direction (gained, lost, changed, kept; failed);
 ``not_relaxation`` says what the ionic steps are when they are no relaxation, ``unfinished`` why the

@@ -1,5 +1,5 @@
 """Fernhill-6: an invented demo campaign of small ASE relaxations (EMT / LennardJones).
-Run: PYTHONPATH=/tmp/s23/frozen python make_ase_runs.py   (ASE's EMT and LennardJones, FrechetCellFilter)
+Run: python make_ase_runs.py, driftwatch importable   (ASE's EMT and LennardJones, FrechetCellFilter)
 Each run folder gets its inputs (start.xyz) beside the optimiser trajectory (relax.traj)."""
 import os, warnings
 import numpy as np
