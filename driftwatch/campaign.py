@@ -488,6 +488,11 @@ def _failed_chunk(chunk, why: str, broken: bool = False) -> list[dict]:
     return out
 
 
+SLOWEST = 5
+"""campaign.json's ``slowest``: the runs analysed now that took longest, this many; the summary
+names them when the slowest took :data:`SLOW_RUN` seconds or more."""
+SLOW_RUN = 60.0
+
 SLOW_CALL = 10.0
 """s: a spglib call this slow makes the progress line name the ``large`` preset."""
 
@@ -1183,6 +1188,11 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
     print(f"flags (runs): {fc}", file=stream)
     if summary.get("since_last"):
         print(f"since the last audit: {since_text(summary['since_last'])}", file=stream)
+    slow = [f"{x['run']} ({duration(x['analysis_s'])})" for x in summary.get("slowest") or ()
+            if x["analysis_s"] >= SLOW_RUN]
+    if slow:
+        print(f"slowest to analyse: {', '.join(slow)} (spglib's calls grow steeply with the "
+              f"number of atoms: `-c large` asks fewer; campaign.json slowest)", file=stream)
     if summary.get("copies"):
         groups = summary["copies"]
         shown = "; ".join(copies_text(g) for g in groups[:3])
@@ -1589,6 +1599,10 @@ def _summary(out, roots, ok, failed, cfg, reject_on, res, n_analysed, how, db_na
         "report": None,
         "analysis_s": sum((r.get("timing") or {}).get("total_s", 0.0) for r in ok
                           if not r.get("cached")),
+        "slowest": sorted(({"run": r["run"], "analysis_s": round(r["timing"]["total_s"], 3)}
+                           for r in ok if not r.get("cached") and "total_s" in (r.get("timing")
+                                                                               or {})),
+                          key=lambda x: -x["analysis_s"])[:SLOWEST],
         "elapsed_s": 0.0,
     }
 

@@ -928,3 +928,27 @@ def test_a_digest_of_a_file_changed_just_before_it_was_hashed_is_not_kept(tmp_pa
     d.save()
     saved = json.loads((tmp_path / "digests.json").read_text())["files"]
     assert os.path.realpath(old) in saved and os.path.realpath(new) not in saved
+
+
+def test_the_slowest_runs_are_named(tmp_path, monkeypatch, capsys):
+    """campaign.json lists the runs analysed now that took longest (a field trial's 2048-atom run
+    took minutes beside seconds for the rest, and only the cache kept each run's time); the summary
+    names those over campaign.SLOW_RUN seconds (here 0, so every listed one), slowest first; a
+    re-audit served from the cache analyses none and names none."""
+    import json
+    from driftwatch import campaign
+    monkeypatch.setattr(campaign, "SLOW_RUN", 0.0)
+    demo = REPO / "example_runs"
+    roots = [demo / n for n in ("B06_emt_bain.traj", "L01_qe_vcrelax", "B02_qe_vcrelax_sym",
+                                "L09_emt_fixed_square.traj", "B05_emt_bfgs.extxyz", "L04_qe_relax")]
+    s = run_audit(roots, tmp_path / "out", quiet=False)
+    slow = s["slowest"]
+    assert len(slow) == campaign.SLOWEST and all(x["analysis_s"] > 0 for x in slow)
+    assert [x["analysis_s"] for x in slow] == sorted((x["analysis_s"] for x in slow), reverse=True)
+    line = next(ln for ln in capsys.readouterr().out.splitlines()
+                if ln.startswith("slowest to analyse: "))
+    assert [x["run"] for x in slow] == [part.split(" (")[0] for part in
+                                        line.removeprefix("slowest to analyse: ").split(", ")][:5]
+    assert json.loads((tmp_path / "out" / "campaign.json").read_text())["slowest"] == slow
+    s = run_audit(roots, tmp_path / "out", quiet=False)
+    assert s["slowest"] == [] and "slowest to analyse" not in capsys.readouterr().out
