@@ -68,6 +68,16 @@ def test_a_start_structure_beside_its_trajectory_is_part_of_that_run(tmp_path):
     runs, failed = discover([run])
     assert not failed and sorted(r.id for r in runs) == ["FH2", "FH2/ideal.xyz.orig",
                                                          "FH2/sp_other.xyz"]
+    # a trajectory with no energies (written without its calculator) cannot tell a copy's energy
+    # from another's: the structure decides, as before the energy rule (a second review)
+    bare = tmp_path / "bare"
+    bare.mkdir()
+    frames = read(run / "relax.traj", ":")
+    for a in frames:
+        a.calc = None
+    write(bare / "relax.traj", frames)
+    write(bare / "final.xyz", sp, format="extxyz")
+    assert [r.id for r in discover([bare])[0]] == ["bare"]
     out = tmp_path / "audit"
     audit([run], out, workers=1, progress="off", quiet=True, report=False)
     first = read(run / "relax.traj", 0)

@@ -899,18 +899,15 @@ def _copy_of(path: Path, fmt: str, first, last) -> str | None:
 
 
 def _same_energy(copy, frame) -> bool:
-    """A structure file's energy (when it carries one) is the trajectory frame's, to 1e-5 eV
-    (extended XYZ prints 8 decimals or more)."""
-    if getattr(copy, "calc", None) is None:
-        return True
-    try:
-        mine = copy.get_potential_energy()
-    except Exception:  # noqa: BLE001 - a calculator with no energy: nothing to compare
-        return True
-    try:
-        return abs(mine - frame.get_potential_energy()) <= 1e-5
-    except Exception:  # noqa: BLE001 - an energy the trajectory's frame does not have
-        return False
+    """A structure file's energy is the trajectory frame's, to 1e-5 eV (extended XYZ prints 8
+    decimals or more), when both carry one (either without: nothing to compare)."""
+    energies = []
+    for atoms in (copy, frame):
+        try:
+            energies.append(atoms.get_potential_energy() if atoms.calc is not None else None)
+        except Exception:  # noqa: BLE001 - a calculator with no energy
+            energies.append(None)
+    return None in energies or abs(energies[0] - energies[1]) <= 1e-5
 
 
 def _ends_of(path: Path):
