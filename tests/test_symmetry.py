@@ -763,3 +763,16 @@ def test_a_change_below_what_the_file_resolves_is_not_bisected():
     assert ba["high"] / ba["low"] <= 1.05 and grid[3] <= ba["low"] < ba["high"] <= grid[4]
     assert (bb["low"], bb["high"]) == pytest.approx((grid[3], grid[4]))
     assert b["calls"] < a["calls"]
+    # the audit's own floor: twice the dump's printed precision (8.7e-5 Å); on a grid to 0.1 Å
+    # the final frame's changes fall in intervals below it and keep them as their brackets
+    from driftwatch import config
+    from driftwatch.track import analyze, symprec_grid
+    cfg = config.load("default", {"symmetry.symprec_max": "0.1 Å"})
+    rec = analyze(path, cfg)
+    floor = 2 * rec["run"]["position_precision"]
+    assert floor == pytest.approx(2 * 8.66e-5, rel=1e-3)
+    bps = [x for x in rec["frames"][-1]["symmetry"]["breakpoints"] if x["kind"] == "group"]
+    g = symprec_grid(cfg)
+    assert bps and all(x["high"] <= floor and any(x["low"] == pytest.approx(u) and
+                                                  x["high"] == pytest.approx(v)
+                                                  for u, v in zip(g, g[1:])) for x in bps)
