@@ -736,9 +736,10 @@ def test_spglib_older_than_2_7_is_refused_by_its_version(version, ok):
 def test_a_change_below_what_the_file_resolves_is_not_bisected():
     """A real LAMMPS relaxation of a 256-atom Al supercell (tests/data/lammps_trials/
     al256_rattled_eam; positions printed to 6 significant digits, 1e-4 Å): spglib's group of the
-    final frame changes P1 -> Fm-3m near 1e-4 Å. With the floor at 2e-4 Å (twice such a
-    precision: what the file cannot resolve), the change keeps its grid interval as its bracket,
-    asks spglib fewer questions, and every grid verdict is spglib's own, as without the floor.
+    final frame changes P1 -> Fm-3m near 1e-4 Å. With a floor at 2e-4 Å (about twice what the
+    file prints), the change keeps its grid interval as its bracket, asks spglib fewer questions,
+    and every grid verdict is spglib's own, as without the floor; then the floor the audit itself
+    computes (twice run.position_precision) on a grid where the changes fall below it.
     ASE's own LAMMPS dump reader gives the same positions (the reference for the frame)."""
     from ase.io import read
     from driftwatch.adapters import read_run

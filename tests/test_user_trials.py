@@ -112,3 +112,11 @@ def test_a_lattice_that_leaves_its_type_and_comes_back_is_said_with_how_far(tmp_
     # a run whose type was never held at either end has no excursion to name
     quiet = analyze(Path(__file__).parent.parent / "example_runs" / "L07_emt_fire.traj")
     assert quiet["summary"]["drift"]["peak"] is None
+    # nor a type held at one end only: a relaxation that moved away from the type it then gained
+    # (an ase.db relaxation of tests/data/batch: cF reached at the end, 1.07 Å from it on the way,
+    # farther than at its start) is a gain, not an excursion (the second review)
+    gain = analyze(Path(__file__).parent / "data" / "batch" / "relaxations.db::Cu-bct-07")
+    d = gain["summary"]["drift"]
+    way = max(f["deformation"]["cF"] for f in gain["frames"])
+    assert d["type"] == "cF" and d["final"] <= 1e-3 < d["initial"] + 2e-3 < way
+    assert d["peak"] is None
