@@ -1192,7 +1192,8 @@ def _print_table(summary: dict, rows: list[list[str]], stream) -> None:
             if x["analysis_s"] >= SLOW_RUN]
     if slow:
         print(f"slowest to analyse: {', '.join(slow)} (spglib's calls grow steeply with the "
-              f"number of atoms: `-c large` asks fewer; campaign.json slowest)", file=stream)
+              f"number of atoms: the `large` preset asks fewer than the default; campaign.json "
+              f"slowest)", file=stream)
     if summary.get("copies"):
         groups = summary["copies"]
         shown = "; ".join(copies_text(g) for g in groups[:3])
@@ -1338,14 +1339,16 @@ def _run_audit(lock, roots, output, *, config, include, exclude, workers, schedu
                    initial=len(runs) - len(todo))
     from . import symmetry, track
     spent = [0, 0.0]                  # the current run's spglib calls and their seconds
+    heavy = bool(cfg["symmetry"]["bisect"]) or cfg["symmetry"]["symprec_max"] > 0.1   # not large's
 
     def asked(symprec, seconds):
         spent[0] += 1
         spent[1] += seconds
-        bar.busy(f"this run: {spent[0]} spglib calls, {duration(spent[1])} in spglib (the last, "
-                 f"at symprec {symprec:.3g} Å, {duration(seconds)}"
-                 + ("; on a large cell `-c large` asks fewer" if seconds >= SLOW_CALL else "")
-                 + ")")
+        bar.busy(f"this run: {spent[0]} spglib call{'s' if spent[0] > 1 else ''}, "
+                 f"{duration(spent[1])} in spglib (the last, at symprec {symprec:.3g} Å, "
+                 f"{duration(seconds)}"
+                 + ("; on a large cell `-c large` asks fewer" if seconds >= SLOW_CALL and heavy
+                    else "") + ")")
     if how == "in process" and bar.enabled:        # a long run's frames, as they are checked
         track.frame_progress, symmetry.after_call = bar.within, asked
     try:

@@ -565,6 +565,14 @@ def test_spglib_calls_and_busy_workers_are_said_while_a_run_is_analysed(tmp_path
     counts = [int(m.group(1)) for m in said if m]
     assert counts[:3] == [1, 2, 3] and counts == sorted(counts) and counts[-1] >= 30
     assert symmetry.after_call is None                   # the hook is the audit's only
+    # a slow call names the large preset, unless the audit already asks as few questions
+    monkeypatch.setattr(campaign, "SLOW_CALL", 0.0)
+    for preset, named in (("default", True), ("large", False)):
+        buf.seek(0)
+        buf.truncate()
+        symmetry.clear_cache()
+        run_audit([src], tmp_path / preset, progress="on", config=preset, use_cache=False)
+        assert ("`-c large` asks fewer" in buf.getvalue()) is named
     buf.seek(0)
     buf.truncate()
     monkeypatch.setattr(campaign, "HEARTBEAT", 0.01)
