@@ -650,6 +650,18 @@ def _output_of(folder: Path, fmt=None) -> Path | None:
     return src if src.is_file() else None
 
 
+def _folder_stamps(path: Path) -> tuple:
+    """(name, size, mtime) of a followed folder's regular files, () for a file: the folder's run
+    can move to a file that grows beside the one read so far (a script's start.xyz, then the
+    trajectory its optimiser writes)."""
+    try:
+        with os.scandir(path) as it:
+            return tuple(sorted((e.name, _signature(Path(e.path)))
+                                for e in it if e.is_file() and not e.name.startswith(".")))
+    except (NotADirectoryError, OSError):
+        return ()
+
+
 def _signature(path: Path):
     try:
         st = path.stat()
@@ -788,8 +800,9 @@ class _Follower:
             if self.source is None and self.path.is_dir():   # a run folder: its output, so that
                 self.source = _output_of(self.path, self.format)   # a finished job's end shows
             sig = (_signature(self.source or self.path),
-                   tuple(folder_listing(f) for f in self.folders))   # files that appear (a dump
-            #                                                            written one file a frame)
+                   tuple(folder_listing(f) for f in self.folders),   # files that appear (a dump
+                   _folder_stamps(self.path))                          # written one file a frame;
+            #                                      a folder's other files: a run moving to another)
             changed = sig != last_sig
             if changed:
                 last_sig, last_growth = sig, now
@@ -868,7 +881,13 @@ class _Follower:
         ``ended``: the end marker was already there, so no soft stop is requested (a stop file
         left for a finished job would stop its restart at once).
         """
-        frames, ctx, self.error = _read(self.path, self.format)
+        try:
+            frames, ctx, self.error = _read(self.path, self.format)
+        except NotARunError as exc:
+            if self.tracker is None or not self.path.is_dir():
+                raise
+            self.error = exc      # a file appearing beside the run while the job writes it (the
+            return False          # trajectory an optimiser just opened): asked again next poll
         if Path(ctx.path).is_file():
             self.source = Path(ctx.path)
         self.folders = sorted(ctx.folders)
@@ -878,9 +897,22 @@ class _Follower:
             self.tracker = self._start(ctx)
         self.source = Path(ctx.path)
         t = self.tracker
+        was = Path(t.source)
         t.take_notes(ctx)
         k = t.replace(frames)
-        if k < self.printed:
+        if self.printed and was != self.source and self.path.is_dir() and \
+                self._format_now() != t.format:
+            # the folder's run is another file now (a script's start.xyz, then the trajectory
+            # its optimiser writes): that run, read as its own format
+            self.say(f"driftwatch: {self.path}'s run is now {self.source.name} (was "
+                     f"{was.name}), " + ("from its first step" if not k else
+                                            f"which starts with the {k} step{'s' if k > 1 else ''} "
+                                            f"shown") + ": following it")
+            self.tracker = t = self._start(ctx)
+            t.take_notes(ctx)
+            t.replace(frames)
+            self.printed = min(self.printed, k)
+        elif k < self.printed:
             self.say(f"driftwatch: {ctx.path} was rewritten; re-reading from frame {k}")
             self.printed = k
         if len(frames) <= self.printed:
@@ -930,6 +962,14 @@ class _Follower:
                      f"steps judge it otherwise)")
         self.seen -= gone                             # announced again if it comes back
         self.holding = (self.holding & now) | {_key(fl) for fl in new}
+
+    def _format_now(self) -> str | None:
+        """The format the followed folder's run is read as now (None: not known)."""
+        from .adapters import detect
+        try:
+            return self.format or detect(self.path)
+        except DriftwatchError:
+            return None
 
     def _start(self, ctx) -> Tracker:
         from .adapters import detect

@@ -1186,3 +1186,42 @@ def test_follow_reads_a_box_flip_in_one_basis_when_it_comes_between_two_polls(tm
     assert "error" not in rec["summary"]["atoms"]["start"]
     assert any("basis jumps without the lattice changing at step 21" in w
                for w in rec["run"]["warnings"])
+
+
+def test_follow_moves_from_a_start_file_to_the_trajectory_the_optimiser_writes(tmp_path):
+    """A script writes start.xyz, then runs ASE's BFGS (EMT) writing relax.traj beside it, the
+    folder followed as it grows (a regression review: the switch was said as a rewrite and the
+    trajectory labelled extxyz; and the moment ASE opened relax.traj, before its first frame, the
+    folder held two runs and follow stopped on 'ambiguous run folder'). Reference: ASE's own
+    reading of the trajectory at the end."""
+    import threading
+    from ase.build import bulk
+    from ase.calculators.emt import EMT
+    from ase.filters import FrechetCellFilter
+    from ase.io import read, write
+    from ase.optimize import BFGS
+    run = tmp_path / "job"
+    run.mkdir()
+    atoms = bulk("Cu", "fcc", a=3.61, cubic=True)
+    atoms.rattle(0.06, seed=1)
+    write(run / "start.xyz", atoms, format="extxyz")
+    buf, got = io.StringIO(), {}
+    watcher = threading.Thread(target=lambda: got.update(rec=follow(
+        run, stream=buf, poll=0.05, idle=4.0)))
+    watcher.start()
+    time.sleep(1.0)                          # follow has read start.xyz
+    atoms.calc = EMT()
+    opt = BFGS(FrechetCellFilter(atoms), trajectory=str(run / "relax.traj"), logfile=None)
+    time.sleep(0.5)                          # the trajectory is open, with no frame yet
+    opt.attach(lambda: time.sleep(0.15))
+    opt.run(fmax=1e-3, steps=30)
+    watcher.join(60)
+    said = buf.getvalue()
+    assert "rewritten" not in said and "error" not in said, said
+    assert re.search(rf"driftwatch: {re.escape(str(run))}'s run is now relax\.traj \(was "
+                     r"start\.xyz\), (from its first step|which starts with the 1 step shown): "
+                     r"following it", said), said
+    assert f"driftwatch: following {run / 'relax.traj'} (traj; bulk, 3D lattice)" in said
+    rec = got["rec"]
+    assert rec["run"]["format"] == "traj"
+    assert rec["run"]["n_frames"] == len(read(run / "relax.traj", ":"))
