@@ -9,6 +9,7 @@ a warning from the registry.
 from __future__ import annotations
 
 import functools
+import io
 import os
 import re
 from pathlib import Path
@@ -889,7 +890,8 @@ def _copy_of(path: Path, fmt: str, first, last) -> str | None:
             lines = text.splitlines()
             if any(ln.strip() for ln in lines[int(lines[0].split()[0]) + 2:]):
                 return None
-        frame = ase.io.read(str(path), format=_COPY_FORMATS[fmt])
+        frame = ase.io.read(io.StringIO(text.decode("utf-8", "replace")),   # (read once,
+                            format=_COPY_FORMATS[fmt])                       # decompressed)
     except Exception:  # noqa: BLE001 - a file ASE cannot read is a run (a failing one) of its own
         return None
     at_start, at_end = (_same_structure(frame, ref) and _same_energy(frame, ref)
