@@ -722,3 +722,25 @@ def test_many_runs_at_one_point_of_the_campaign_scatter_are_counted_not_ringed()
         assert counts == ["×300"]
         drawn = sum(len(m.x) for m in panel.marks if m.kind == "points" and not m.hollow)
         assert drawn == 300                                  # every run is still a linked point
+
+
+def test_a_point_label_goes_where_it_covers_no_other_point():
+    """A label beside a point had been placed at the first place free of other labels, over a
+    neighbour's marker if one lay there (the bundled campaign's scatter: L06's name was written
+    across L10's marker). Two points 20 px apart on one row: the left one's name, too long for the
+    gap, goes to its left; the right one's to its right (geometry of the drawn SVG)."""
+    import re
+    from driftwatch.report import svg
+    from driftwatch.report.charts import Axis, Chart, Mark, Panel
+    names = ["a-rather-long-run-name", "its-neighbour"]
+    pts = Mark("points", [5.0, 5.5], [5.0, 5.0], marker="o", size=7.5, texts=names)
+    out = svg.render(Chart("t", [Panel(Axis("x", lim=(0, 10)), Axis("y", lim=(0, 10)), [pts],
+                                       legend=None)], width=400, height=300))
+    marks = [(float(x) + float(r), float(y)) for x, y, r in
+             re.findall(r'<path d="M([\d.]+),([\d.]+)a([\d.]+),', out)]
+    assert len(marks) == 2 and 15 < marks[1][0] - marks[0][0] < 25
+    labels = dict((t, (float(x), anchor)) for x, anchor, t in re.findall(
+        r'<text x="([\d.]+)" y="[\d.]+" font-size="9" fill="#333" text-anchor="(\w+)">([^<]+)<',
+        out))
+    assert labels[names[0]][1] == "end" and labels[names[0]][0] < marks[0][0]
+    assert labels[names[1]][1] == "start" and labels[names[1]][0] > marks[1][0]

@@ -395,6 +395,9 @@ def _panel(p: Panel, X, Y, W, H, ids) -> str:
     body, after = [], []
     note_items = []
     taken = []     # boxes of point labels already placed
+    dots = [(x, y, (m.size or 0) / 2) for m in p.marks if m.kind == "points" and m.size
+            for x, y in ((sx(a), sy(b)) for a, b in zip(m.x, m.y))
+            if x is not None and y is not None]      # markers: a label avoids covering them
     for m in sorted(p.marks, key=lambda m: m.z):
         if m.kind == "text":
             after.append(_text(m, sx, sy, px0, py0, plot_w, plot_h))
@@ -416,7 +419,7 @@ def _panel(p: Panel, X, Y, W, H, ids) -> str:
         elif m.kind != "key":
             body.append(_mark(m, sx, sy))
             if m.kind == "points" and m.texts:
-                after.append(_point_labels(m, sx, sy, taken,
+                after.append(_point_labels(m, sx, sy, taken, dots,
                                            (px0, py0, px0 + plot_w + right - 4, py0 + plot_h)))
     out.append(f'<g clip-path="url(#{clip})">{"".join(body)}</g>')
     # axes frame (left and bottom)
@@ -528,11 +531,14 @@ def _mark(m: Mark, sx, sy) -> str:
     return "".join(parts)
 
 
-def _point_labels(m: Mark, sx, sy, taken, bounds) -> str:
-    """Labels beside points (right, left, above, below: the first place free of earlier labels and
-    inside ``bounds``); a label with no free place is left out (its point keeps its tooltip)."""
+def _point_labels(m: Mark, sx, sy, taken, dots, bounds) -> str:
+    """Labels beside points (right, left, above, below: the first place inside ``bounds`` free of
+    earlier labels and of other points' markers ``dots`` [(x, y, half size) px], else the first
+    free of labels alone); a label with no place free of labels is left out (its point keeps its
+    tooltip)."""
     out = []
     x0b, y0b, x1b, y1b = bounds
+    hit = lambda box, q: box[0] < q[2] and q[0] < box[2] and box[1] < q[3] and q[1] < box[3]
     for i, (a, b) in enumerate(zip(m.x, m.y)):
         x, y = sx(a), sy(b)
         if x is None or y is None or not m.texts[i]:
@@ -540,22 +546,26 @@ def _point_labels(m: Mark, sx, sy, taken, bounds) -> str:
         t = str(m.texts[i])
         w = _tw(t, 9)
         r = m.size / 2 + 2
+        others = [(u - h, v - h, u + h, v + h) for u, v, h in dots
+                  if abs(u - x) > 0.5 or abs(v - y) > 0.5]      # its own stack of rings aside
+        places = []
         for dx, dy, anchor in ((r, 3.2, "start"), (-r, 3.2, "end"), (0, -r - 1, "middle"),
                                (0, r + 8, "middle")):
             left = x + dx - (w if anchor == "end" else w / 2 if anchor == "middle" else 0)
             box = (left, y + dy - 8, left + w, y + dy + 2)
             if box[0] < x0b or box[2] > x1b or box[1] < y0b or box[3] > y1b:
                 continue
-            if any(box[0] < q[2] and q[0] < box[2] and box[1] < q[3] and q[1] < box[3]
-                   for q in taken):
-                continue
-            taken.append(box)
-            el = (f'<text x="{_f(x + dx)}" y="{_f(y + dy)}" font-size="9" fill="#333" '
-                  f'text-anchor="{anchor}">{_x(t)}</text>')
-            if m.links and m.links[i]:
-                el = f'<a href="{_x(m.links[i])}">{el}</a>'
-            out.append(el)
-            break
+            if not any(hit(box, q) for q in taken):
+                places.append((any(hit(box, q) for q in others), dx, dy, anchor, box))
+        if not places:
+            continue
+        _, dx, dy, anchor, box = min(places, key=lambda c: c[0])     # stable: first free place
+        taken.append(box)
+        el = (f'<text x="{_f(x + dx)}" y="{_f(y + dy)}" font-size="9" fill="#333" '
+              f'text-anchor="{anchor}">{_x(t)}</text>')
+        if m.links and m.links[i]:
+            el = f'<a href="{_x(m.links[i])}">{el}</a>'
+        out.append(el)
     return "".join(out)
 
 
