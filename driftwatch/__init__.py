@@ -12,7 +12,7 @@ Public interface (stable):
 Heavy modules (ASE readers, spglib) load on first use, so ``import driftwatch`` stays light.
 """
 
-__version__ = "0.1.14"
+__version__ = "0.1.15"
 __all__ = ["lattice2d", "lattice3d", "plots", "tables", "read_run", "analyze", "__version__"]
 
 

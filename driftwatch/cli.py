@@ -350,7 +350,7 @@ def _cmd_tolerance(args) -> int:
     from .records import group_name
     from .rules import advice, inversion_by_content, shown_breakpoints
     from .symmetry import SWEEP_STEP
-    from .track import symmetry_entry
+    from .track import angle_check_entry, symmetry_entry
     cfg = _config.load(args.config)
     run = read_run(args.path, format=args.format)
     n = len(run.cells)
@@ -361,6 +361,7 @@ def _cmd_tolerance(args) -> int:
     geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
     spec = symmetry_entry(run, i, geo, cfg)
     spec.pop("calls", None)
+    spec["angle_check"] = angle_check_entry(run, geo, cfg, i, spec)
     adv = advice(spec, min_plateau=cfg["tolerance"]["min_plateau"],
                  precision=getattr(run, "position_precision", None),
                  inversion_by_content=inversion_by_content(

@@ -1116,7 +1116,7 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
     A starting point for the user's own check, not a guarantee.
     """
     empty = {"ranges": [], "recommended_symprec": None, "plateau": None, "kind": "none",
-             "reason": "no spectrum", "at": {}, "resolution": None}
+             "reason": "no spectrum", "at": {}, "resolution": None, "angle_check": None}
     if not spec:
         return empty
     ranges = _plateaus(spec)
@@ -1185,7 +1185,28 @@ def advice(spec: dict | None, *, min_plateau: float = 10.0, precision: float | N
                          f"(inversion through the atom or their midpoint), so it says nothing about "
                          f"this structure" if grp == 2 and inversion_by_content else "")
                       + also + note)
+    check = spec.get("angle_check")
+    if check and math.isclose(check["symprec"], rec, rel_tol=1e-12):
+        out["angle_check"] = check
+        if not check["same"]:
+            out["reason"] += _angle_said(check, float(spec.get("angle_tolerance", -1.0)))
     return out
+
+
+def _angle_said(check: dict, angle: float) -> str:
+    """The advice's clause for a group that another common angle_tolerance changes
+    (:func:`driftwatch.symmetry.angle_check`)."""
+    words = lambda a: ("5 degrees (pymatgen's SpacegroupAnalyzer default)" if a == 5.0 else
+                       f"{a:g} degrees" if a >= 0 else "-1 (spglib's default)")
+    alt = check["angle_tolerance"]
+    other = group_name(check["group_symbol"], check["group"], check["operations"])
+    if "at_configured" in check:
+        g, sym, ops = check["at_configured"]
+        return (f"; the slab's 3D space group at this symprec (what spglib's "
+                f"get_symmetry_dataset or pymatgen gives) is {group_name(sym, g, ops)} with "
+                f"angle_tolerance {words(angle)} but {other} with {words(alt)}")
+    return (f"; with angle_tolerance {words(alt)} spglib gives {other} at this symprec: this "
+            f"advice is spglib's with angle_tolerance {words(angle)}")
 
 
 def _plateau_dict(u, grid_lo, grid_hi):

@@ -738,6 +738,43 @@ POINT_ORDER = {"1": 1, "-1": 2, "2": 2, "m": 2, "2/m": 4, "222": 4, "mm2": 4, "m
                "23": 12, "m-3": 24, "432": 24, "-43m": 24, "m-3m": 48}
 
 
+PYMATGEN_ANGLE = 5.0
+"""Degrees: the ``angle_tolerance`` pymatgen's ``SpacegroupAnalyzer`` uses by default (spglib's
+own default, -1, is what the spectra use unless configured). A cell a fraction of a degree from a
+higher lattice is that lattice at 5 degrees whatever the symprec: the tolerance advice is checked
+at it (:func:`angle_check`)."""
+
+
+def angle_check(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None,
+                expect=None) -> dict | None:
+    """Is spglib's group at ``symprec`` (Å) the same with the other common ``angle_tolerance``
+    (:data:`PYMATGEN_ANGLE`, or spglib's default -1 when the spectra use 5 degrees)?
+
+    A bulk cell compares the 3D group at the other angle with ``expect`` (group number, operation
+    count: the advice's plateau, asked at ``angle_tolerance``); a layer (``vacuum_axis``) compares
+    spglib's 3D space group of the slab cell at both angles (spglib's layer routine takes no angle,
+    and a user's 3D library gives the space group). Returns ``{"symprec", "angle_tolerance" (the
+    other one), "group", "group_symbol", "operations", "same", "kind": "space"}`` plus, for a layer,
+    ``"at_configured"`` [group, symbol, operations]; None where spglib fails."""
+    alt = -1.0 if float(angle_tolerance) == PYMATGEN_ANGLE else PYMATGEN_ANGLE
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+
+    def space(angle):
+        ds, _ = _dataset(lattice, frac, nums, float(symprec), float(angle), False)
+        return None if ds is None else (int(ds.number), str(ds.international), len(ds.rotations))
+    other = space(alt)
+    mine = space(angle_tolerance) if vacuum_axis is not None else \
+        (None if expect is None else (int(expect[0]), "", int(expect[1])))
+    if other is None or mine is None:
+        return None
+    out = {"symprec": float(symprec), "angle_tolerance": alt, "group": other[0],
+           "group_symbol": other[1], "operations": other[2], "kind": "space",
+           "same": (other[0], other[2]) == (mine[0], mine[2])}
+    if vacuum_axis is not None:
+        out["at_configured"] = list(mine)
+    return out
+
+
 def primitive_lattice(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacuum_axis=None):
     """The structure's translation lattice at ``symprec``: the input lattice plus the pure
     translations spglib finds (rows, cartesian Å, input orientation). For a layer the axes are

@@ -425,6 +425,24 @@ def symmetry_entry(run: Run, i: int, geo, cfg: dict, grid: list[float] | None = 
     return spec
 
 
+def angle_check_entry(run: Run, geo, cfg: dict, i: int, spec: dict) -> dict | None:
+    """spglib at the tolerance advice's symprec for frame ``i`` with the other common
+    angle_tolerance (:func:`symmetry.angle_check`: pymatgen's 5 degrees against spglib's -1), which
+    the advice then says when the group differs; None with no suggested symprec."""
+    adv = rules.advice(spec, min_plateau=cfg["tolerance"]["min_plateau"],
+                       precision=run.position_precision)
+    rec, plateau = adv["recommended_symprec"], adv["plateau"]
+    if rec is None:
+        return None
+    try:
+        return symmetry.angle_check(run.cells[i], run.positions[i], run.symmetry_types, rec,
+                                    angle_tolerance=cfg["symmetry"]["angle_tolerance"],
+                                    vacuum_axis=geo.vacuum_axis,
+                                    expect=(plateau["group"], plateau["operations"]))
+    except (SymmetryError, GeometryError, LatticeError):
+        return None
+
+
 RISING_STEPS = 3
 """Steps: a fixed-cell relaxation whose energy rose at each of at least this many last steps ..."""
 RISING_PER_ATOM = 0.05
@@ -545,8 +563,9 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
         if seeds else 0
     last = n - 1
     if "symmetry" in entries[last]:
-        entries[last]["symmetry"] = dict(entries[last]["symmetry"],   # the cached spectrum stays
-                                         primitive=_primitive_entry(run, geo, cfg, last))
+        spec = entries[last]["symmetry"]                          # (the cached spectrum stays)
+        entries[last]["symmetry"] = dict(spec, primitive=_primitive_entry(run, geo, cfg, last),
+                                         angle_check=angle_check_entry(run, geo, cfg, last, spec))
     t2 = time.perf_counter()
     record = records.new_record(run, geo, cfg, entries, fixed_cell=_fixed_cell(run.cells),
                                 versions=_versions())

@@ -744,3 +744,19 @@ def test_a_point_label_goes_where_it_covers_no_other_point():
         out))
     assert labels[names[0]][1] == "end" and labels[names[0]][0] < marks[0][0]
     assert labels[names[1]][1] == "start" and labels[names[1]][0] > marks[1][0]
+
+
+def test_the_advice_says_what_it_is_on_the_run_page_and_the_index(report):
+    """A field trial handed each run's suggested symprec to pymatgen (angle_tolerance 5 degrees by
+    default) and checked the index's ranges with spglib at points inside them: the run page now
+    says which angle_tolerance its verdict is spglib's at and that it is no proof of the group; the
+    index's ranges are those where no group changed at the symprecs asked (a comb of P2_1/c windows
+    sat inside one, on a real CHGNet relaxation), and say that windows between them are not seen."""
+    pages = [p.read_text(encoding="utf-8") for p in (report["out"] / "runs").glob("*.html")]
+    said = [t for t in pages if "suggested for this run" in t]
+    assert said and all("(spglib's verdict there, with angle_tolerance -1; a starting point for "
+                        "your own check; it does not establish the structure's group)." in t
+                        for t in said)
+    index = report["index"].read_text(encoding="utf-8")
+    assert "where no run's spglib group changed at the symprecs asked" in index
+    assert "spglib's verdict can change in narrow windows between the symprecs asked" in index

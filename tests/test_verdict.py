@@ -690,3 +690,47 @@ def test_a_layer_with_thin_vacuum_is_read_as_bulk_and_the_gap_that_stands_out_is
     assert as_layer["geometry"]["dimension"] == 2
     fcc = driftwatch.analyze(DEMO / "B05_emt_bfgs.extxyz")     # a bulk crystal: no gap stands out
     assert "stands out" not in fcc["geometry"]["reason"]
+
+
+def test_the_tolerance_advice_says_when_pymatgens_angle_tolerance_gives_another_group():
+    """A user hands the suggested symprec to pymatgen's SpacegroupAnalyzer, whose angle_tolerance
+    is 5 degrees unless told -1 (its signature; spglib's own default is -1, which the spectra use).
+    On the genuine QE test-suite vc-relax (tests/data/public/qe_testsuite_vc_relax5: a rhombohedral
+    cell 0.48 degrees from cubic) the advice is R-3m, pymatgen at that symprec Pm-3m; on the bundled
+    layer L08 the advice is p112/m and pymatgen's space group Pmmm where spglib's 3D one is P2/m
+    (a field trial's finding). The advice now says so; where the angle changes nothing (B01) it is
+    silent. pymatgen and spglib, called directly, are the references."""
+    import inspect
+    from pymatgen.io.ase import AseAtomsAdaptor
+    from pymatgen.symmetry.analyzer import SpacegroupAnalyzer
+    assert inspect.signature(SpacegroupAnalyzer).parameters["angle_tolerance"].default == 5
+    assert symmetry.PYMATGEN_ANGLE == 5.0
+    runs = {"vc5": DATA / "public" / "qe_testsuite_vc_relax5", "L08": DEMO /
+            "L08_emt_fire_loose.extxyz", "B01": DEMO / "B01_qe_vcrelax"}
+    recs = {k: driftwatch.analyze(p) for k, p in runs.items()}
+    for k, rec in recs.items():
+        tol = rec["summary"]["tolerance"]
+        check, s = tol["angle_check"], tol["recommended_symprec"]
+        assert check == rec["frames"][-1]["symmetry"]["angle_check"] and check["symprec"] == s
+        out = {"vc5": "benchmark.out.git.inp=vc-relax5.in.gz", "B01": "pw.out"}.get(k)
+        atoms = read(runs[k] / out if out else runs[k], index=-1,
+                     format="espresso-out" if out else None)
+        pmg = AseAtomsAdaptor.get_structure(atoms)
+        if k == "L08":
+            atoms.cell[2] = [0, 0, 30.0]          # ASE's zero vacuum vector: a slab for pymatgen
+            atoms.pbc = True
+            pmg = AseAtomsAdaptor.get_structure(atoms)
+        at5 = SpacegroupAnalyzer(pmg, symprec=s).get_space_group_symbol()
+        at_1 = SpacegroupAnalyzer(pmg, symprec=s, angle_tolerance=-1).get_space_group_symbol()
+        assert check["group_symbol"] == at5 and check["angle_tolerance"] == 5.0
+        assert check["same"] == (at5 == at_1)
+        said = "with angle_tolerance 5 degrees (pymatgen's SpacegroupAnalyzer default)" in \
+            tol["reason"] or "but " + at5 in tol["reason"]
+        assert said == (not check["same"]), k
+    vc5, l08 = (recs[k]["summary"]["tolerance"] for k in ("vc5", "L08"))
+    assert vc5["plateau"]["symbol"] == "R-3m" and vc5["angle_check"]["group_symbol"] == "Pm-3m"
+    assert "spglib gives Pm-3m (221, 96 operations) at this symprec" in vc5["reason"]
+    assert l08["plateau"]["symbol"] == "p112/m" and l08["angle_check"]["at_configured"][1] == "P2/m"
+    assert "is P2/m (10, 4 operations) with angle_tolerance -1 (spglib's default) but Pmmm (47, " \
+        "8 operations) with 5 degrees" in l08["reason"]
+    assert recs["B01"]["summary"]["tolerance"]["angle_check"]["same"]

@@ -600,7 +600,10 @@ def _tolerance_section(rec):
     out = ["<h2>Tolerance advice</h2>"]
     recv = tol.get("recommended_symprec")
     if recv:
-        out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> suggested for this run.')
+        ang = (spec or {}).get("angle_tolerance", -1.0)
+        out.append(f'<p><span class="big">symprec ≈ {_q(recv)}</span> suggested for this run '
+                   f"(spglib's verdict there, with angle_tolerance {ang:g}; a starting point for "
+                   f"your own check; it does not establish the structure's group).")
     else:
         out.append("<p><span class=\"big\">no single symprec suggested</span>.")
     out.append(f"<br><span class=\"muted\">{e(tol.get('reason'))}.</span></p>")
@@ -954,10 +957,12 @@ def _campaign_tolerance(tol, adv, labels=None):
     if wide:
         rows = "".join(f"<tr>{_td_num(a, 'Å')}{_td_num(b, 'Å')}<td class=\"num\">{_ratio(a, b)}</td></tr>"
                        for a, b in wide)
-        out.append("<h3>Ranges of symprec where no run's spglib group changes (widest first, factor "
-                   "≥ 1.5)</h3><table>"
+        out.append("<h3>Ranges of symprec where no run's spglib group changed at the symprecs "
+                   "asked (widest first, factor ≥ 1.5)</h3><table>"
                    "<thead><tr><th>from</th><th>to</th><th>width (factor)</th></tr></thead>"
-                   f"<tbody>{rows}</tbody></table>")
+                   f"<tbody>{rows}</tbody></table><p class=\"muted\">spglib's verdict can change "
+                   "in narrow windows between the symprecs asked (its grid, the brackets and the "
+                   "flicker probes), inside a range: check the value you choose on your runs.</p>")
     elif tol["stable_ranges"]:
         a, b = max(tol["stable_ranges"], key=lambda r: r[1] / r[0])
         out.append(f"<p>No range of symprec of a factor ≥ 1.5 on the grid is free of every run's "
