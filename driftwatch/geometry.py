@@ -33,7 +33,8 @@ import numpy as np
 
 from .errors import GeometryError, NotPeriodicError
 
-__all__ = ["Geometry", "Layer", "classify", "vacuum_gaps", "plane_normals", "inplane_bases",
+__all__ = ["Geometry", "Layer", "classify", "vacuum_gaps", "plane_gaps", "layer_basis",
+           "plane_normals", "inplane_bases",
            "find_layers", "layers_in_bulk", "position_warnings", "DEFAULT_GAP", "FAR_CELLS",
            "SAME_SITE"]
 
@@ -138,6 +139,60 @@ _THIN_VACUUM = 4.0
 between atom planes of bulk layered crystals are ~3-3.5 Å; from memory, common practice)."""
 
 
+FAMILIES = np.array([h for h in np.ndindex(3, 3, 3) if any(x != 1 for x in h)]) - 1
+FAMILIES = FAMILIES[[next(x for x in h if x) > 0 for h in FAMILIES]]
+"""(13, 3): the lattice-plane families whose Miller indices in a reduced basis are 0 or +-1 (one
+of each +-pair): the planes a layer's vacuum can lie along, whichever basis the file gives."""
+
+
+def plane_gaps(cell, positions) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Largest empty gap (Å) between atom planes of each family of :data:`FAMILIES` in the cell's
+    Minkowski-reduced basis (``ase.geometry.minkowski_reduce``): ``(gaps (13,), normals (13, 3)
+    unit, op)``, the reduced cell being ``op @ cell`` (integer, determinant +1). Independent of
+    the basis the cell is given in (up to ties of the reduction). One frame: cell (3, 3),
+    positions (N, 3), Å."""
+    from ase.geometry import minkowski_reduce
+    cell = np.asarray(cell, float)
+    reduced, op = minkowski_reduce(cell)
+    recip = np.linalg.inv(reduced).T                       # rows b_i, a_i . b_j = delta_ij
+    t = np.sort((np.asarray(positions, float) @ recip.T @ FAMILIES.T) % 1.0, axis=0)  # (N, 13)
+    wrap = 1.0 - t[-1] + t[0]
+    frac = np.maximum(wrap, np.diff(t, axis=0).max(axis=0)) if len(t) > 1 else wrap
+    g = FAMILIES @ recip                                   # (13, 3): |g| = 1 / spacing
+    size = np.linalg.norm(g, axis=1)
+    return frac / size, g / size[:, None], np.asarray(op, int)
+
+
+def layer_basis(cell, positions, stand_out: float = _THIN_VACUUM) -> tuple | None:
+    """A basis that shows a layer's vacuum the cell as given hides: ``(M, gap)``, M an integer
+    matrix of determinant +1 such that the first two vectors of ``M @ cell`` lie in the lattice
+    planes along which the atoms leave their widest empty gap (``gap``, Å), when that gap is at
+    least ``stand_out`` Å and more than 1 Å wider than any of the cell's own three planes shows
+    (:func:`vacuum_gaps`): stacked layers written in a centred lattice's primitive vectors, none
+    of whose pairs spans the layer's plane. None otherwise. One frame, Å."""
+    try:
+        own = float(vacuum_gaps(cell, positions).max())        # (refuses a singular cell)
+        gaps, _, op = plane_gaps(cell, positions)
+    except (GeometryError, np.linalg.LinAlgError, ValueError):
+        return None
+    k = int(np.argmax(gaps))
+    if gaps[k] < stand_out or gaps[k] <= own + 1.0:
+        return None
+    h = FAMILIES[k]
+    red = op @ np.asarray(cell, float)
+    small = np.array([v for v in np.ndindex(5, 5, 5)]) - 2                # (125, 3)
+    small = small[np.abs(small).sum(axis=1) > 0]
+    small = small[np.argsort(np.linalg.norm(small @ red, axis=1), kind="stable")]
+    inplane = small[small @ h == 0]
+    u = inplane[0]
+    v = next(x for x in inplane[1:] if abs(np.cross(u, x) @ h) == 1 and
+             np.array_equal(np.abs(np.cross(u, x)), np.abs(h)))
+    w = next(x for x in small if x @ h == 1)
+    if np.cross(u, v) @ w < 0:
+        u, v = v, u
+    return np.array([u, v, w]) @ op, float(gaps[k])
+
+
 def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geometry:
     """Decide whether a run's cell holds a layer (dimension 2) or bulk (3). See the module doc.
 
@@ -184,6 +239,18 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
                                        f"{gap} Å{thin}{drift}", gaps[0])
     k = big[0]
     n = plane_normals(cells[:1], k)[0]
+    if positions is not None:      # vacuum along planes none of the cell's own pairs span too
+        first = pos[0] if pos is not None else np.asarray(positions[0] if np.ndim(positions) == 3
+                                                          else positions, float)
+        across, normals, _ = plane_gaps(cells[0], first)
+        other = across[(across > gap) & (np.abs(normals @ n) < 1.0 - 1e-6)]
+        if len(other):
+            raise NotPeriodicError(
+                f"a wire or chains in a box: beside the {gaps[0, k]:.2f} Å gap along axis {k}, "
+                f"the atoms leave an empty gap of {other.max():.2f} Å along other lattice planes "
+                f"(> geometry.vacuum_gap {gap:g} Å; gaps along the cell's own planes {desc} Å)",
+                f"a config (-c) with geometry.vacuum_gap: "
+                f"{bulk_gap(np.concatenate([gaps[0], other]))} Å analyses its cell as bulk")
     return Geometry(2, k, n, f"layer: empty gap {_beside(gaps[0, k], gap)} Å > {gap} Å along "
                              f"axis {k} (gaps {desc} Å){drift}", gaps[0])
 

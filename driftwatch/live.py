@@ -36,7 +36,7 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.registry import not_relaxation_note, run_kind
-from .adapters.run import (Frame, cell_jumps, collect, folder_listing, frame_from_atoms,
+from .adapters.run import (Frame, cell_jumps, collect, folder_listing, layer_note, frame_from_atoms,
                            note_calculator, note_fix_symmetry, position_precision)
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotAnalysed,
                      NotARunError, OutputError, UnknownFormatError)
@@ -164,6 +164,7 @@ class Tracker:
         self.species: tuple | None = None       # the code's labels telling one element's atoms
         #                                         apart (pw.x's Fe1, Fe2)
         self.file_stages: list = []             # the reader's runs of one file (restarts appended)
+        self._layer = False                     # collect's layer basis, decided on frame 0
         self._flipped = False                   # a box flip was re-based (and is said): collect
         #                                         all frames each time
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
@@ -225,7 +226,8 @@ class Tracker:
             k, self._stacked = 0, None
         if k < len(self.frames):
             new = collect(self.frames[k:], path=self.source, fmt=self.format, ctx=ctx,
-                          run_dir=self.run_dir)
+                          run_dir=self.run_dir, layer_basis=self._layer if k else None)
+            self._layer = ctx.carry["layer_basis"]     # (decided on frame 0, kept for the rest)
             self._flipped = self._flipped or bool(ctx.carry.get("basis_flips"))
             if not k:
                 self._stacked = {n: getattr(new, n) for n in self._ARRAYS} | {"run": new}
@@ -239,11 +241,15 @@ class Tracker:
                     b = np.full((len(new.cells),) + tail, np.nan) if b is None else b
                     self._stacked[n] = np.concatenate([a, b])
         st = self._stacked
+        if self._layer:                       # (said with no new frame collected too)
+            ctx.warn(layer_note(*self._layer))
+        file_cells = st["cells"] if not self._layer else \
+            np.einsum("ij,njk->nik", np.linalg.inv(self._layer[0]), st["cells"])
         return dataclasses.replace(
             st["run"], **{n: st[n] for n in self._ARRAYS}, source=str(self.source),
             format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
-            position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
+            position_precision=position_precision(ctx.rounding, file_cells), inputs=ctx.inputs(),
             not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species)
 
     def take_notes(self, ctx) -> None:

@@ -146,9 +146,10 @@ def test_a_cell_pw_x_moved_only_within_its_ibrav_is_said():
     rec = analyze(d)
     assert rec["summary"]["verdict"]["lattice"]["direction"] == "kept"
     assert rec["summary"]["cell_held"] == (
-        "pw.x's cell_dofree = 'ibrav' moved only the lattice parameters of its ibrav: the cell "
-        "could not fall below that Bravais type (reaching a higher one is possible); the lattice "
-        "verdict does not test what the code held")
+        "pw.x's cell_dofree = 'ibrav' moved only the lattice parameters of its ibrav (7, tI): "
+        "the cell could not fall below tI (reaching a higher type is possible; a starting cell of "
+        "a higher type than tI means parameters on its boundary); the lattice verdict does not "
+        "test what the code held")
     assert analyze(TRIALS / "al1_bct_ibrav7_vc_all")["summary"]["cell_held"] is None
 
 

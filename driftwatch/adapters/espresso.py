@@ -1445,8 +1445,22 @@ def cell_held(code_settings: dict, dimension: int = 3) -> str | None:
         return None
     if dofree == "ibrav" and s.get("ibrav") in (0, 14):   # pw.x: "does not have any effect"
         return None                                          # at 0; 14 (triclinic) holds nothing
-    return (f"pw.x's cell_dofree = '{s.get('cell_dofree')}' {held[dofree]}; the lattice verdict "
+    said = held[dofree]
+    if dofree == "ibrav" and s.get("ibrav") in IBRAV_TYPES:
+        t = IBRAV_TYPES[s["ibrav"]]
+        said = (f"moved only the lattice parameters of its ibrav ({s['ibrav']}, {t}): the cell "
+                f"could not fall below {t} (reaching a higher type is possible; a starting cell "
+                f"of a higher type than {t} means parameters on its boundary)")
+    return (f"pw.x's cell_dofree = '{s.get('cell_dofree')}' {said}; the lattice verdict "
             f"does not test what the code held")
+
+
+IBRAV_TYPES = {1: "cP", 2: "cF", 3: "cI", -3: "cI", 4: "hP", 5: "hR", -5: "hR", 6: "tP", 7: "tI",
+               8: "oP", 9: "oS", -9: "oS", 91: "oS", 10: "oF", 11: "oI", 12: "mP", -12: "mP",
+               13: "mS", -13: "mS", 14: "aP"}
+"""pw.x's ibrav -> Bravais type (Pearson symbol; INPUT_PW's table of ibrav, its A-centred 91 and
+C-centred 9, 13 as the one-face-centred oS, mS), checked on real pw.x runs of every ibrav
+(tests/data/ibrav_trials: ASE and spglib agree on each first frame)."""
 
 
 # ---------------------------------------------------------------- registration

@@ -1,0 +1,134 @@
+"""pw.x cells of every ibrav, and layers whichever basis they are written in (real pw.x 6.7 runs,
+tests/data/ibrav_trials). References: pw.x's own output, INPUT_PW's ibrav table (as
+adapters.espresso.IBRAV_TYPES), ASE's Bravais classification (``Cell.get_bravais_lattice``),
+spglib's space group, and ASE's basis-independent dimensionality analysis
+(``ase.geometry.dimensionality.analyze_dimensionality``, method RDA)."""
+
+import gzip
+import re
+from pathlib import Path
+
+import numpy as np
+import pytest
+import spglib
+from ase.geometry.dimensionality import analyze_dimensionality
+from ase.io import read, write
+
+from driftwatch import analyze, geometry
+from driftwatch.adapters.espresso import IBRAV_TYPES
+from driftwatch.errors import NotPeriodicError
+
+DATA = Path(__file__).parent / "data" / "ibrav_trials"
+RUNS = sorted((DATA / "runs").iterdir())
+LAYERS = sorted((DATA / "layers").iterdir())
+
+# ASE's lattice names -> Pearson symbols (International Tables' 14 Bravais lattices)
+ASE_PEARSON = {"CUB": "cP", "FCC": "cF", "BCC": "cI", "HEX": "hP", "RHL": "hR", "TET": "tP",
+               "BCT": "tI", "ORC": "oP", "ORCC": "oS", "ORCF": "oF", "ORCI": "oI", "MCL": "mP",
+               "MCLC": "mS", "TRI": "aP"}
+# spglib: crystal system from the space-group number, centring from the symbol's first letter
+SYSTEMS = [(2, "a"), (15, "m"), (74, "o"), (142, "t"), (194, "h"), (230, "c")]
+
+
+def spglib_type(atoms, symprec=1e-5):
+    """The lattice's Bravais type by spglib: the space group of the cell with one atom."""
+    ds = spglib.get_symmetry_dataset((atoms.cell[:], [[0, 0, 0]], [1]), symprec=symprec)
+    system = next(s for top, s in SYSTEMS if ds.number <= top)
+    c = ds.international[0]
+    if c == "R":
+        return "hR"
+    return system + ("S" if c in "ABC" else c)
+
+
+def ibrav_of(run):
+    return int(re.search(r"ibrav\s*=\s*(-?\d+)", (run / "pw.in").read_text()).group(1))
+
+
+def dimensionality(atoms) -> str:
+    """ASE's RDA: the dimensionality of the interval just below 3D, where every atom is bonded
+    within its layer, chain or cluster and no further ('2D' a layer, '1D' chains, '0D' bulk)."""
+    iv = sorted(analyze_dimensionality(atoms, method="RDA"), key=lambda i: i.a)
+    kept = [i for i in iv if i.b > i.a]
+    return kept[[i.dimtype for i in kept].index("3D") - 1].dimtype
+
+
+def test_every_ibrav_reads_as_its_bravais_type():
+    """The first frame of a vc-relax of each ibrav: driftwatch's lattice type = INPUT_PW's type of
+    that ibrav = ASE's = spglib's; frames = pw.x's '!' energies; the cell_dofree = 'ibrav' note
+    names the type the cell could not fall below."""
+    seen = set()
+    for run in RUNS:
+        ibrav = ibrav_of(run)
+        seen.add(ibrav)
+        first = read(run / "pw.out.gz", 0, format="espresso-out")
+        want = IBRAV_TYPES[ibrav]
+        assert ASE_PEARSON[first.cell.get_bravais_lattice(eps=2e-4).name] == want, run.name
+        assert spglib_type(first) == want, run.name
+        rec = analyze(run)
+        assert rec["summary"]["initial"]["type"] == want, run.name
+        with gzip.open(run / "pw.out.gz", "rt") as fh:
+            bangs = sum(1 for line in fh if line.startswith("!"))
+        assert rec["run"]["n_frames"] == bangs, run.name
+        held = rec["summary"]["cell_held"]
+        assert (held is None) == (ibrav == 14 or "'ibrav'" not in (run / "pw.in").read_text())
+        if held:
+            assert f"its ibrav ({ibrav}, {want}): the cell could not fall below {want}" in held
+    assert seen == set(IBRAV_TYPES)                                   # every ibrav pw.x accepts
+
+
+@pytest.mark.parametrize("run", LAYERS, ids=lambda p: p.name)
+def test_stacked_layers_are_layers_in_any_basis(run, tmp_path):
+    """Stacked monolayers 14.5 Å apart are layers for ASE's basis-independent dimensionality
+    analysis, whether pw.x's cell is primitive tetragonal/orthorhombic (two vectors in the layers'
+    plane) or body- or A-centred (no two primitive vectors in it: read as bulk tI / oI / oS before,
+    a field trial's finding). driftwatch reads the centred ones in a basis whose first two vectors
+    lie in the plane and says so; the answer is the same in the file's basis and in ten random
+    unimodular bases of the same structure (the rule: invariance under a change of basis)."""
+    atoms = read(run / "pw.out.gz", -1, format="espresso-out")
+    assert dimensionality(atoms) == "2D"
+    rec = analyze(run)
+    assert rec["geometry"]["dimension"] == 2
+    own = geometry.vacuum_gaps(atoms.cell[:], atoms.positions)
+    said = [w for w in rec["run"]["warnings"] if "no two of the cell's vectors lie" in w]
+    assert bool(said) == (own.max() < 6.0), (run.name, own)     # only where the file hid it
+    want = (rec["summary"]["final"]["type"], rec["summary"]["verdict"]["structure"]["final"]["group"])
+    rng = np.random.default_rng(7)
+    for k in range(10):
+        M = np.eye(3, dtype=int)
+        for _ in range(4):                     # products of elementary shears: det +1
+            i, j = rng.choice(3, 2, replace=False)
+            E = np.eye(3, dtype=int)
+            E[i, j] = rng.choice([-1, 1])
+            M = E @ M
+        other = atoms.copy()
+        other.set_cell(M @ atoms.cell[:], scale_atoms=False)
+        write(tmp_path / f"b{k}.extxyz", other)
+        got = analyze(tmp_path / f"b{k}.extxyz")
+        assert got["geometry"]["dimension"] == 2, (run.name, M.tolist())
+        assert (got["summary"]["final"]["type"],
+                got["summary"]["verdict"]["structure"]["final"]["group"]) == want, M.tolist()
+
+
+def test_chains_in_a_centred_cell_are_no_layer():
+    """One Al atom in an ibrav 11 cell: chains 7 Å apart (ASE's dimensionality analysis: 1D). One
+    plane family of pw.x's vectors shows a 6.97 Å gap, which had made it a layer (oc, cmmm); the
+    other families with such gaps lie along planes no two of its vectors span. Now refused as
+    chains, as the same cell in its reduced basis always was."""
+    run = DATA / "wires" / "rp11_0"
+    atoms = read(run / "pw.out.gz", 0, format="espresso-out")
+    assert dimensionality(atoms) == "1D"
+    gaps, normals, _ = geometry.plane_gaps(atoms.cell[:], atoms.positions)
+    assert (gaps > 6.0).sum() >= 2                                      # two families: chains
+    with pytest.raises(NotPeriodicError, match="a wire or chains in a box"):
+        analyze(run)
+
+
+def test_bulk_runs_of_every_ibrav_are_not_rebased():
+    """No ibrav run (one or two atoms, no vacuum: every plane family's gap under 4 Å) is read in
+    another basis."""
+    for run in RUNS:
+        first = read(run / "pw.out.gz", 0, format="espresso-out")
+        assert geometry.plane_gaps(first.cell[:], first.positions)[0].max() < 4.0, run.name
+        rec = analyze(run)
+        assert rec["geometry"]["dimension"] == 3
+        assert not [w for w in rec["run"]["warnings"] if "no two of the cell's vectors" in w]
