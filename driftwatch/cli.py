@@ -231,7 +231,7 @@ def _inspect_table(rec: dict) -> str:
     """Per-step table (deformation to each type shown, sign for layers, spglib's group at the
     verdict's symprec), then the verdict, flags and advice."""
     from .records import (CHIRAL_WORDS, DIAGNOSTICS, END_POINTS, atoms_text, chiral_deformation,
-                          peak_text, stages_text)
+                          final_scf_text, peak_text, stages_text)
     from .rules import NAMES
     frames, dim = rec["frames"], rec["geometry"]["dimension"]
     s = rec["summary"]
@@ -279,6 +279,8 @@ def _inspect_table(rec: dict) -> str:
     for key in ("lattice_note", "cell_held"):
         if s.get(key):
             lines.append(f"    note: {s[key]}")
+    if final_scf_text(rec):
+        lines.append(f"    note: {final_scf_text(rec)}")
     if s.get("supercell"):
         lines.append(f"    note: {s['supercell']['text']}")
     if s.get("spglib_lattice"):

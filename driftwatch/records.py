@@ -317,6 +317,21 @@ def peak_text(drift: dict) -> str:
             f"{drift['peak_step']})")
 
 
+def final_scf_text(rec: dict) -> str:
+    """The note on a pw.x vc-relax whose last frame is its final scf at the relaxed structure
+    (the reader's ``code_settings.final_scf``), or ""."""
+    frames = rec.get("frames") or []
+    if not (rec.get("run", {}).get("code_settings") or {}).get("final_scf") or len(frames) < 2:
+        return ""
+    a, b = frames[-2], frames[-1]
+    change = ""
+    if isinstance(a.get("energy"), (int, float)) and isinstance(b.get("energy"), (int, float)):
+        change = f" ({b['energy'] - a['energy']:+.4g} eV from that step's)"
+    return (f"step {b['step']}, the last, is pw.x's final scf at the relaxed structure: the "
+            f"structure of step {a['step']}, its energy{change} in a plane-wave basis rebuilt for "
+            f"the final cell")
+
+
 def atoms_text(atoms: dict) -> str:
     """The summary's ``atoms`` (:func:`driftwatch.rules.judge`) in words, for every output (a
     displacement below 1e-9 Å, rounding of a symmetric configuration, is said as 0)."""

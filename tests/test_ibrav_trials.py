@@ -132,3 +132,32 @@ def test_bulk_runs_of_every_ibrav_are_not_rebased():
         rec = analyze(run)
         assert rec["geometry"]["dimension"] == 3
         assert not [w for w in rec["run"]["warnings"] if "no two of the cell's vectors" in w]
+
+
+def test_the_final_scf_of_a_vc_relax_is_said():
+    """A converged vc-relax ends with pw.x's final scf at the relaxed structure ("Final scf
+    calculation at the relaxed structure", pw.x's own line), which ASE's reader, and driftwatch,
+    read as one more frame: the same structure as the step before, its energy in a new basis (a
+    field trial saw it as an unlabelled ionic step). Where pw.x printed that line and a converged
+    energy after it, the record and `inspect` say the last step is that final scf."""
+    import subprocess
+    import sys
+    said = 0
+    for run in RUNS:
+        with gzip.open(run / "pw.out.gz", "rt") as fh:
+            text = fh.read()
+        k = text.find("inal scf calculation at the relaxed structure")
+        has = k >= 0 and "\n!" in text[k:]
+        rec = analyze(run)
+        assert bool(rec["run"]["code_settings"].get("final_scf")) == has, run.name
+        if not has:
+            continue
+        a, b = read(run / "pw.out.gz", slice(-2, None), format="espresso-out")       # ASE
+        assert np.allclose(a.cell[:], b.cell[:], atol=1e-9)
+        assert np.allclose(a.positions, b.positions, atol=1e-9)
+        out = subprocess.run([sys.executable, "-m", "driftwatch", "inspect", str(run)],
+                             capture_output=True, text=True).stdout
+        step = rec["frames"][-1]["step"]
+        assert f"note: step {step}, the last, is pw.x's final scf at the relaxed structure" in out
+        said += 1
+    assert said >= 10

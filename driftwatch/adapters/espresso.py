@@ -110,7 +110,8 @@ _NSYM = re.compile(r"^\s*(\d+)\s+Sym\.\s*Ops\.")
 _BFGS_STEPS = re.compile(r"^\s*number of bfgs steps\s*=\s*(\d+)")
 _NEW_VOLUME = re.compile(r"new unit-cell volume =.*\(\s*([\d.]+)\s*Ang\^3")
 # every line the step loop of read_pw_out acts on contains one of these (the loop tests again)
-_MARKS = (_START, "Sym. Ops.", "No symmetry found", *_ENERGY, "Forces acting on atoms",
+_FINAL_SCF = "inal scf calculation at the relaxed structure"     # ("A final scf", "Final scf")
+_MARKS = (_START, _FINAL_SCF, "Sym. Ops.", "No symmetry found", *_ENERGY, "Forces acting on atoms",
           "total   stress", "CELL_PARAMETERS", "ATOMIC_POSITIONS", "number of bfgs steps",
           "new unit-cell volume", _MAKOV_PAYNE,
           *_CLOSERS, *_STOPS, *_DYNAMICS, _ON_REQUEST, _GAVE_UP, *_ERRORS, _CRITERIA, _ERROR)
@@ -446,6 +447,7 @@ def _read_pw(path, ctx: ReadContext, window: tuple | None = None, first_run: int
     on_request = False  # the last run stopped on request (its .EXIT file)
     gave_up = False     # the last run's BFGS gave up (its "bfgs converged" met no threshold)
     halted = None       # pw.x's own early stop (_STOPS) with no converged SCF after it
+    final_from = None   # steps emitted when the last run began its final scf (vc-relax)
     stops: list = []    # what each of those lines says, and where
     error = None        # the last run's error banner, in one line
     errors: list = []   # the last BFGS step's errors (energy, gradient[, cell])
@@ -516,7 +518,7 @@ def _read_pw(path, ctx: ReadContext, window: tuple | None = None, first_run: int
                 if ready(cur):
                     yield emit(cur)
                 at_limit = on_request = gave_up = False     # a new run: its own end decides
-                halted = error = None
+                halted = error = final_from = None
                 restored = unevaluated(cur) if cur is not None else carried
                 if infos:
                     infos[-1]["next"] = restored
@@ -659,6 +661,8 @@ def _read_pw(path, ctx: ReadContext, window: tuple | None = None, first_run: int
                     n = int(_BFGS_STEPS.match(line).group(1))
                     if ready(cur) and (n == 0 or restarted(cur, n)):
                         yield emit(cur)
+            elif _FINAL_SCF in line:
+                final_from = step
             elif line.lstrip().startswith(_ERROR):
                 error = _banner_said(line, fh)
             elif any(m in line for m in _STOPS):
@@ -721,6 +725,8 @@ def _read_pw(path, ctx: ReadContext, window: tuple | None = None, first_run: int
             _undo_input(given, ctx, contradiction, len(per_run) > 1)
             if shown is not None:
                 ctx.settings["calculation"] = shown
+        if final_from is not None and step > final_from:
+            ctx.settings["final_scf"] = True      # the last frame: pw.x's final scf (a vc-relax)
         ctx.carry["espresso-unevaluated"] = unevaluated(cur)
         if infos:
             infos[-1]["next"] = unevaluated(cur)

@@ -532,7 +532,9 @@ def _summary_section(rec):
     if e0 is not None and e1 is not None:
         rows.append(("energy, first → last step", f"{e0:.6f} → {e1:.6f}&nbsp;eV "
                                                   f"(change {e1 - e0:+.4g}&nbsp;eV)"
-                     + ("" if fmax is None else f"; final max force {_q(fmax, 'eV/Å')}")))
+                     + ("" if fmax is None else f"; final max force {_q(fmax, 'eV/Å')}")
+                     + (f"<br><span class=\"muted\">{e(_records.final_scf_text(rec))}</span>"
+                        if _records.final_scf_text(rec) else "")))
     if dim == 2:
         vs = geo.get("viewing_side")
         if vs:
