@@ -91,7 +91,8 @@ def test_stacked_layers_are_layers_in_any_basis(run, tmp_path):
     own = geometry.vacuum_gaps(atoms.cell[:], atoms.positions)
     said = [w for w in rec["run"]["warnings"] if "no two of the cell's vectors lie" in w]
     assert bool(said) == (own.max() < 6.0), (run.name, own)     # only where the file hid it
-    want = (rec["summary"]["final"]["type"], rec["summary"]["verdict"]["structure"]["final"]["group"])
+    final = rec["summary"]["verdict"]["structure"]["final"]
+    want = (rec["summary"]["final"]["type"], final["group"])
     rng = np.random.default_rng(7)
     for k in range(10):
         M = np.eye(3, dtype=int)
