@@ -190,6 +190,14 @@ def layer_basis(cell, positions, stand_out: float = _THIN_VACUUM) -> tuple | Non
     w = next(x for x in small if x @ h == 1)
     if np.cross(u, v) @ w < 0:
         u, v = v, u
+    # the layer is seen from the side the file's own vectors point to (the one reaching furthest
+    # out of the plane), as a file whose vacuum vector is a cell vector is: the 2D sign of a
+    # layer must not depend on the basis (v, u, -w keeps the determinant)
+    cell = np.asarray(cell, float)
+    m = np.cross(u @ red, v @ red)
+    out = cell @ m
+    if (w @ red @ m) * out[np.argmax(np.abs(out))] < 0:
+        u, v, w = v, u, -w
     return np.array([u, v, w]) @ op, float(gaps[k])
 
 

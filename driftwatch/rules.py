@@ -1202,9 +1202,13 @@ def _angle_said(check: dict, angle: float) -> str:
     other = group_name(check["group_symbol"], check["group"], check["operations"])
     if "at_configured" in check:
         g, sym, ops = check["at_configured"]
-        return (f"; the slab's 3D space group at this symprec (what spglib's "
-                f"get_symmetry_dataset or pymatgen gives) is {group_name(sym, g, ops)} with "
-                f"angle_tolerance {words(angle)} but {other} with {words(alt)}")
+        whose = ("the cell's 3D space group at this symprec (what spglib's get_symmetry_dataset "
+                 "or pymatgen gives for the cell as the file has it)"
+                 if check.get("cell") != "slab" else
+                 "the 3D space group at this symprec of the slab spglib is given (ASE's zero "
+                 "vacuum vector made 20 Å longer than the layer's thickness)")
+        return (f"; {whose} is {group_name(sym, g, ops)} with angle_tolerance {words(angle)} but "
+                f"{other} with {words(alt)}")
     return (f"; with angle_tolerance {words(alt)} spglib gives {other} at this symprec: this "
             f"advice is spglib's with angle_tolerance {words(angle)}")
 

@@ -752,12 +752,16 @@ def angle_check(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacu
 
     A bulk cell compares the 3D group at the other angle with ``expect`` (group number, operation
     count: the advice's plateau, asked at ``angle_tolerance``); a layer (``vacuum_axis``) compares
-    spglib's 3D space group of the slab cell at both angles (spglib's layer routine takes no angle,
-    and a user's 3D library gives the space group). Returns ``{"symprec", "angle_tolerance" (the
-    other one), "group", "group_symbol", "operations", "same", "kind": "space"}`` plus, for a layer,
-    ``"at_configured"`` [group, symbol, operations]; None where spglib fails."""
+    spglib's 3D space group at both angles (spglib's layer routine takes no angle, and a user's 3D
+    library gives the space group) of the cell as given, leaning vacuum vector and all, which is
+    what that library sees (``"cell": "as given"``), or, for ASE's 2D convention (a zero vacuum
+    vector), of the slab spglib's layer routine is given (``"slab"``). Returns ``{"symprec",
+    "angle_tolerance" (the other one), "group", "group_symbol", "operations", "same", "kind":
+    "space"}`` plus, for a layer, ``"at_configured"`` [group, symbol, operations] and ``"cell"``;
+    None where spglib fails."""
     alt = -1.0 if float(angle_tolerance) == PYMATGEN_ANGLE else PYMATGEN_ANGLE
-    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis)
+    slab = vacuum_axis is not None and not np.any(np.asarray(cell, float)[vacuum_axis])
+    lattice, frac, nums = _prepare(cell, positions, numbers, vacuum_axis if slab else None)
 
     def space(angle):
         ds, _ = _dataset(lattice, frac, nums, float(symprec), float(angle), False)
@@ -771,7 +775,7 @@ def angle_check(cell, positions, numbers, symprec, *, angle_tolerance=-1.0, vacu
            "group_symbol": other[1], "operations": other[2], "kind": "space",
            "same": (other[0], other[2]) == (mine[0], mine[2])}
     if vacuum_axis is not None:
-        out["at_configured"] = list(mine)
+        out.update(at_configured=list(mine), cell="slab" if slab else "as given")
     return out
 
 

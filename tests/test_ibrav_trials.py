@@ -162,3 +162,44 @@ def test_the_final_scf_of_a_vc_relax_is_said():
         assert f"note: step {step}, the last, is pw.x's final scf at the relaxed structure" in out
         said += 1
     assert said >= 10
+
+
+@pytest.mark.parametrize("name", ["L06_emt_bfgs.traj", "L10_emt_bfgs_flip.traj"])
+def test_a_chiral_layers_sign_does_not_depend_on_the_basis(name, tmp_path):
+    """math.md 1.3: the 2D sign is the lattice's handedness seen from one side, unchanged by any
+    change of basis; docs: a layer is seen from the side its cell vector out of the plane points
+    to. The bundled oblique EMT relaxations written in random unimodular bases (det +-1, the
+    vectors leaning out of the plane, where driftwatch reads them in another basis): every frame's
+    sign and chiral distance equal the plain file's, times -1 exactly where the file's vector
+    reaching furthest out of the plane points to the other side (a regression review found the
+    first version of the re-basing flipping it on 7 of 12 leaning bases)."""
+    demo = Path(__file__).parent.parent / "example_runs" / name
+    plain = analyze(demo)
+    n = np.asarray(plain["geometry"]["viewing_side"])
+    signs = [f["sign"] for f in plain["frames"]]
+    chiral = np.array([f["chiral_distance"] for f in plain["frames"]])
+    assert set(signs) == {-1, 1}                                        # chiral, both hands
+    frames = read(demo, ":")
+    rng = np.random.default_rng(11)
+    for k in range(6):
+        M = np.eye(3, dtype=int)
+        for _ in range(5):
+            i, j = rng.choice(3, 2, replace=False)
+            E = np.eye(3, dtype=int)
+            E[i, j] = rng.choice([-1, 1])
+            M = E @ M
+        if k % 2:
+            M = M[[1, 0, 2]]                                           # det -1
+        out = []
+        for a in frames:
+            b = a.copy()
+            b.set_cell(M @ a.cell[:], scale_atoms=False)
+            out.append(b)
+        write(tmp_path / f"m{k}.extxyz", out)
+        got = analyze(tmp_path / f"m{k}.extxyz")
+        assert got["geometry"]["dimension"] == 2, M.tolist()
+        heights = out[0].cell[:] @ n
+        side = np.sign(heights[np.argmax(np.abs(heights))])
+        assert [f["sign"] for f in got["frames"]] == [side * s for s in signs], M.tolist()
+        np.testing.assert_allclose([f["chiral_distance"] for f in got["frames"]], side * chiral,
+                                   atol=1e-9)

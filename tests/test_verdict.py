@@ -734,3 +734,32 @@ def test_the_tolerance_advice_says_when_pymatgens_angle_tolerance_gives_another_
     assert "is P2/m (10, 4 operations) with angle_tolerance -1 (spglib's default) but Pmmm (47, " \
         "8 operations) with 5 degrees" in l08["reason"]
     assert recs["B01"]["summary"]["tolerance"]["angle_check"]["same"]
+
+
+def test_the_angle_check_of_a_layer_reads_the_cell_as_the_file_has_it(tmp_path):
+    """A layer whose vacuum vector leans (the bundled L01's final frame, its third vector leaned
+    to (1.3, 0.7, 16) Å, as a field trial did): spglib's layer routine is given the slab with
+    that vector made perpendicular, but a user's spglib or pymatgen reads the file's cell, whose
+    group at the advice's symprec changes with the angle tolerance (P-1 at -1, C2/m at 5
+    degrees, spglib called directly); the first version of the check compared the perpendicular
+    slab and said nothing (a regression review's finding)."""
+    from pymatgen.io.ase import AseAtomsAdaptor
+    from pymatgen.symmetry.analyzer import SpacegroupAnalyzer
+    atoms = frames_of("L01_qe_vcrelax")[-1]
+    cell = atoms.cell[:].copy()
+    assert np.allclose(cell[2], [0, 0, 16.0])
+    cell[2] = [1.3, 0.7, 16.0]
+    atoms.set_cell(cell, scale_atoms=False)
+    atoms.write(tmp_path / "leaning.extxyz")
+    tol = driftwatch.analyze(tmp_path / "leaning.extxyz")["summary"]["tolerance"]
+    check, s = tol["angle_check"], tol["recommended_symprec"]
+    assert check["cell"] == "as given"
+    cell3 = (atoms.cell[:], atoms.get_scaled_positions(), atoms.numbers)
+    at = {a: spglib.get_symmetry_dataset(cell3, symprec=s, angle_tolerance=a) for a in (-1, 5)}
+    assert check["at_configured"][:2] == [at[-1].number, at[-1].international]
+    assert [check["group"], check["group_symbol"]] == [at[5].number, at[5].international]
+    pmg = SpacegroupAnalyzer(AseAtomsAdaptor.get_structure(atoms), symprec=s)
+    assert pmg.get_space_group_symbol() == check["group_symbol"]
+    assert (at[-1].international, at[5].international) == ("P-1", "C2/m") and not check["same"]
+    assert ("for the cell as the file has it) is P-1 (2, 2 operations) with angle_tolerance -1 "
+            "(spglib's default) but C2/m (12, 4 operations) with 5 degrees") in tol["reason"]
