@@ -163,42 +163,44 @@ def plane_gaps(cell, positions) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return frac / size, g / size[:, None], np.asarray(op, int)
 
 
-def layer_basis(cell, positions, stand_out: float = _THIN_VACUUM) -> tuple | None:
-    """A basis that shows a layer's vacuum the cell as given hides: ``(M, gap)``, M an integer
-    matrix of determinant +1 such that the first two vectors of ``M @ cell`` lie in the lattice
-    planes along which the atoms leave their widest empty gap (``gap``, Å), when that gap is at
-    least ``stand_out`` Å and more than 1 Å wider than any of the cell's own three planes shows
-    (:func:`vacuum_gaps`): stacked layers written in a centred lattice's primitive vectors, none
-    of whose pairs spans the layer's plane. None otherwise. One frame, Å."""
+def layer_basis(cell, positions, gap: float = DEFAULT_GAP) -> tuple | None:
+    """A basis that shows a layer's vacuum the cell as given hides: ``(M, vacuum, side)``, M an
+    integer matrix of determinant +1 such that the first two vectors of ``M @ cell`` lie in the
+    lattice planes along which the atoms leave their widest empty gap (``vacuum``, Å), when that
+    gap is wider than ``gap`` (``geometry.vacuum_gap``) while none of the cell's own three planes
+    shows one (:func:`vacuum_gaps`): stacked layers written in a centred lattice's primitive
+    vectors, none of whose pairs spans the layer's plane. The third vector points to the side the
+    file's vector reaching furthest out of the plane points to (index ``side``), from which the
+    layer is seen, as a file whose vacuum vector is a cell vector is seen from that vector's side:
+    the 2D sign does not depend on the basis. None otherwise. One frame, Å."""
     try:
         own = float(vacuum_gaps(cell, positions).max())        # (refuses a singular cell)
         gaps, _, op = plane_gaps(cell, positions)
     except (GeometryError, np.linalg.LinAlgError, ValueError):
         return None
     k = int(np.argmax(gaps))
-    if gaps[k] < stand_out or gaps[k] <= own + 1.0:
+    if gaps[k] <= gap or own > gap:
         return None
     h = FAMILIES[k]
-    red = op @ np.asarray(cell, float)
+    cell = np.asarray(cell, float)
+    red = op @ cell
     small = np.array([v for v in np.ndindex(5, 5, 5)]) - 2                # (125, 3)
     small = small[np.abs(small).sum(axis=1) > 0]
     small = small[np.argsort(np.linalg.norm(small @ red, axis=1), kind="stable")]
     inplane = small[small @ h == 0]
     u = inplane[0]
-    v = next(x for x in inplane[1:] if abs(np.cross(u, x) @ h) == 1 and
-             np.array_equal(np.abs(np.cross(u, x)), np.abs(h)))
-    w = next(x for x in small if x @ h == 1)
+    v = next((x for x in inplane[1:] if np.array_equal(np.abs(np.cross(u, x)), np.abs(h))), None)
+    w = next((x for x in small if x @ h == 1), None)     # (u, v: a basis of the plane's lattice)
+    if v is None or w is None:
+        return None
     if np.cross(u, v) @ w < 0:
         u, v = v, u
-    # the layer is seen from the side the file's own vectors point to (the one reaching furthest
-    # out of the plane), as a file whose vacuum vector is a cell vector is: the 2D sign of a
-    # layer must not depend on the basis (v, u, -w keeps the determinant)
-    cell = np.asarray(cell, float)
     m = np.cross(u @ red, v @ red)
     out = cell @ m
-    if (w @ red @ m) * out[np.argmax(np.abs(out))] < 0:
+    side = int(np.argmax(np.abs(out)))
+    if (w @ red @ m) * out[side] < 0:                 # (v, u, -w keeps the determinant)
         u, v, w = v, u, -w
-    return np.array([u, v, w]) @ op, float(gaps[k])
+    return np.array([u, v, w]) @ op, float(gaps[k]), side
 
 
 def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geometry:
@@ -231,13 +233,23 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     drift = "" if later <= {tuple(big)} else \
         f"; later frames have vacuum on axes {sorted(map(list, later - {tuple(big)}))}"
     desc = ", ".join(f"{g:.2f}" for g in gaps[0])
+    first = pos[0] if pos is not None else np.asarray(positions[0] if np.ndim(positions) == 3
+                                                      else positions, float)
+    across, normals, _ = plane_gaps(cells[0], first)     # the same gaps whichever the basis
+    kind = _enclosed(across, normals, gap)
     if len(big) > 1:
-        raise NotPeriodicError(f"a molecule, cluster or wire in a box: vacuum on more than one "
-                               f"axis (empty gaps {desc} Å; > geometry.vacuum_gap {gap:g} Å along "
-                               f"axes {big})", f"a config (-c) with geometry.vacuum_gap: "
-                                              f"{bulk_gap(gaps[0]):.1f} Å analyses its cell as "
-                                              f"bulk")
+        raise NotPeriodicError(f"{kind or 'a molecule, cluster or wire'} in a box: vacuum on "
+                               f"more than one axis (empty gaps {desc} Å; > geometry.vacuum_gap "
+                               f"{gap:g} Å along axes {big})",
+                               f"a config (-c) with geometry.vacuum_gap: "
+                               f"{bulk_gap(gaps[0]):.1f} Å analyses its cell as bulk")
     if not big:
+        if kind:                                      # gaps along planes its vectors do not span
+            raise NotPeriodicError(f"{kind} in a box: empty gaps wider than geometry.vacuum_gap "
+                                   f"{gap:g} Å along lattice planes of several directions (the "
+                                   f"cell's own planes show {desc} Å)",
+                                   f"a config (-c) with geometry.vacuum_gap: "
+                                   f"{bulk_gap(across)} Å analyses its cell as bulk")
         g = np.sort(gaps[0])
         k = int(np.argmax(gaps[0]))          # one gap that stands out: a layer with thin vacuum?
         thin = (f"; the {g[2]:.2f} Å gap along axis {k} stands out: a layer with thin vacuum "
@@ -247,20 +259,25 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
                                        f"{gap} Å{thin}{drift}", gaps[0])
     k = big[0]
     n = plane_normals(cells[:1], k)[0]
-    if positions is not None:      # vacuum along planes none of the cell's own pairs span too
-        first = pos[0] if pos is not None else np.asarray(positions[0] if np.ndim(positions) == 3
-                                                          else positions, float)
-        across, normals, _ = plane_gaps(cells[0], first)
-        other = across[(across > gap) & (np.abs(normals @ n) < 1.0 - 1e-6)]
-        if len(other):
-            raise NotPeriodicError(
-                f"a wire or chains in a box: beside the {gaps[0, k]:.2f} Å gap along axis {k}, "
-                f"the atoms leave an empty gap of {other.max():.2f} Å along other lattice planes "
-                f"(> geometry.vacuum_gap {gap:g} Å; gaps along the cell's own planes {desc} Å)",
-                f"a config (-c) with geometry.vacuum_gap: "
-                f"{bulk_gap(np.concatenate([gaps[0], other]))} Å analyses its cell as bulk")
+    other = across[(across > gap) & (np.abs(normals @ n) < 1.0 - 1e-6)]  # along planes no pair
+    if len(other):                                                     # of its own vectors spans
+        raise NotPeriodicError(
+            f"{kind or 'a wire or chains'} in a box: beside the {gaps[0, k]:.2f} Å gap "
+            f"along axis {k}, the atoms leave an empty gap of {other.max():.2f} Å along other "
+            f"lattice planes (> geometry.vacuum_gap {gap:g} Å; gaps along the cell's own planes "
+            f"{desc} Å)", f"a config (-c) with geometry.vacuum_gap: "
+                          f"{bulk_gap(np.concatenate([gaps[0], other]))} Å analyses its cell as bulk")
     return Geometry(2, k, n, f"layer: empty gap {_beside(gaps[0, k], gap)} Å > {gap} Å along "
                              f"axis {k} (gaps {desc} Å){drift}", gaps[0])
+
+
+def _enclosed(across, normals, gap: float) -> str | None:
+    """What a cell holds whose atoms leave empty gaps (``across``, Å, along plane families of unit
+    ``normals``: :func:`plane_gaps`) wider than ``gap`` in two or three independent directions
+    (chains; a molecule or cluster), whichever of them the file's vectors span; None for fewer."""
+    big = normals[across > gap]
+    rank = int(np.linalg.matrix_rank(big, tol=1e-6)) if len(big) else 0
+    return {2: "a wire or chains", 3: "a molecule or cluster"}.get(rank)   # (else bulk or layer)
 
 
 def _beside(value: float, limit: float) -> str:

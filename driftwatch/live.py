@@ -36,7 +36,7 @@ from . import config as _config, geometry, records, rules, track
 from .adapters import ReadContext, iter_frames
 from .adapters._io import tail_bytes
 from .adapters.registry import not_relaxation_note, run_kind
-from .adapters.run import (Frame, cell_jumps, collect, folder_listing, layer_note, frame_from_atoms,
+from .adapters.run import (Frame, cell_jumps, collect, folder_listing, frame_from_atoms,
                            note_calculator, note_fix_symmetry, position_precision)
 from .errors import (ConfigError, DriftwatchError, GeometryError, InputError, NotAnalysed,
                      NotARunError, OutputError, UnknownFormatError)
@@ -164,7 +164,7 @@ class Tracker:
         self.species: tuple | None = None       # the code's labels telling one element's atoms
         #                                         apart (pw.x's Fe1, Fe2)
         self.file_stages: list = []             # the reader's runs of one file (restarts appended)
-        self._layer = False                     # collect's layer basis, decided on frame 0
+        self._layer = None                      # track.in_layer_basis's answer on frame 0
         self._flipped = False                   # a box flip was re-based (and is said): collect
         #                                         all frames each time
         self._spectra: dict[tuple, dict] = {}     # (frame, bracketed) -> spectrum
@@ -200,6 +200,7 @@ class Tracker:
             self._stacked = None
         if k < len(self.frames):
             self._geo = self._geo if k else None
+            self._layer = self._layer if k else None
             self._spectra = {key: s for key, s in self._spectra.items() if key[0] < k}
             self._groups = {key: g for key, g in self._groups.items() if key[0] < k}
             self._table.truncate(k)
@@ -226,8 +227,7 @@ class Tracker:
             k, self._stacked = 0, None
         if k < len(self.frames):
             new = collect(self.frames[k:], path=self.source, fmt=self.format, ctx=ctx,
-                          run_dir=self.run_dir, layer_basis=self._layer if k else None)
-            self._layer = ctx.carry["layer_basis"]     # (decided on frame 0, kept for the rest)
+                          run_dir=self.run_dir)
             self._flipped = self._flipped or bool(ctx.carry.get("basis_flips"))
             if not k:
                 self._stacked = {n: getattr(new, n) for n in self._ARRAYS} | {"run": new}
@@ -241,15 +241,11 @@ class Tracker:
                     b = np.full((len(new.cells),) + tail, np.nan) if b is None else b
                     self._stacked[n] = np.concatenate([a, b])
         st = self._stacked
-        if self._layer:                       # (said with no new frame collected too)
-            ctx.warn(layer_note(*self._layer))
-        file_cells = st["cells"] if not self._layer else \
-            np.einsum("ij,njk->nik", np.linalg.inv(self._layer[0]), st["cells"])
         return dataclasses.replace(
             st["run"], **{n: st[n] for n in self._ARRAYS}, source=str(self.source),
             format=self.format, warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings),
             title=ctx.title, run_dir=None if self.run_dir is None else str(self.run_dir),
-            position_precision=position_precision(ctx.rounding, file_cells), inputs=ctx.inputs(),
+            position_precision=position_precision(ctx.rounding, st["cells"]), inputs=ctx.inputs(),
             not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species)
 
     def take_notes(self, ctx) -> None:
@@ -269,7 +265,13 @@ class Tracker:
         ctx.rounding, ctx.not_relaxation = self.rounding, self.not_relaxation
         ctx.unfinished, ctx.species = self.unfinished, self.species
         ctx.file_stages = list(self.file_stages)
-        return self._collect(ctx)
+        run = self._collect(ctx)
+        if self._layer is None:               # decided on the first frame, kept for the rest
+            run, found = track.in_layer_basis(run, self.cfg["geometry"]["vacuum_gap"])
+            self._layer = found or False
+        elif self._layer:
+            run, _ = track.in_layer_basis(run, self.cfg["geometry"]["vacuum_gap"], self._layer)
+        return run
 
     def _geometry(self, run):
         cfg = self.cfg

@@ -27,7 +27,7 @@ from . import __version__, config as _config, geometry, lattice2d, lattice3d, re
 from .adapters import Run, read_run
 from .errors import GeometryError, InputError, LatticeError, NotPeriodicError, SymmetryError
 
-__all__ = ["analyze", "record_from_run", "symmetry_entry", "lattice_table", "select_frames",
+__all__ = ["analyze", "record_from_run", "in_layer_basis", "symmetry_entry", "lattice_table", "select_frames",
            "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
            "BULK_TYPES"]
 
@@ -493,6 +493,27 @@ def _energy_jumps(run: Run) -> list[str]:
     return []
 
 
+def in_layer_basis(run: Run, gap: float, found=None) -> tuple[Run, tuple | None]:
+    """``(run, found)``: the run read in the basis :func:`geometry.layer_basis` finds on its first
+    frame (``found``: that answer, given when already known, as the live tracker keeps it), with a
+    warning saying so, or the run as it is. Cartesian positions are kept: the same structure."""
+    if found is None:
+        if not np.all(run.pbc):
+            return run, None
+        found = geometry.layer_basis(run.cells[0], run.positions[0], gap)
+        if found is None:
+            return run, None
+    M, vacuum, side = found
+    note = (f"{run.source}: no two of the cell's vectors lie in the planes of the atoms' "
+            f"{vacuum:.2f} Å empty gap (> geometry.vacuum_gap {gap:g} Å: a layer's vacuum, "
+            f"written in a centred lattice's primitive vectors?): the frames are read in the basis "
+            f"{np.asarray(M).tolist()} of the file's vectors (an integer change of basis, "
+            f"determinant 1), whose first two lie in those planes, the layer seen from the side "
+            f"the file's vector {'abc'[side]} points to, the atoms where the file puts them")
+    cells = np.einsum("ij,njk->nik", np.asarray(M, float), run.cells)
+    return dataclasses.replace(run, cells=cells, warnings=(*run.warnings, note)), found
+
+
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
                     spectra: dict | None = None, groups: dict | None = None,
                     table: FrameTable | None = None, skip_newest: bool = False,
@@ -514,6 +535,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     """
     t0 = time.perf_counter()
     if geo is None:
+        run, _ = in_layer_basis(run, cfg["geometry"]["vacuum_gap"])
         geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
     if cfg["geometry"]["require_layer"] and geo.dimension != 2:
         raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")

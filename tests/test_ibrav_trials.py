@@ -203,3 +203,67 @@ def test_a_chiral_layers_sign_does_not_depend_on_the_basis(name, tmp_path):
         assert [f["sign"] for f in got["frames"]] == [side * s for s in signs], M.tolist()
         np.testing.assert_allclose([f["chiral_distance"] for f in got["frames"]], side * chiral,
                                    atol=1e-9)
+
+
+def test_the_configured_vacuum_gap_decides_in_every_basis(tmp_path):
+    """AB-stacked graphite-like sheets 3.35 Å apart (invented cell, built here): bulk at the
+    default geometry.vacuum_gap (6 Å) and layers at 2.5 Å, in the file's basis and in six random
+    unimodular ones alike, and the re-basing warning only where the answer is a layer (a field
+    trial found the re-basing blind to a configured gap below 4 Å, so a 2.5 Å config read these
+    sheets as layers in a third of the bases, and saying 'a layer's vacuum' on bulk cells)."""
+    from ase import Atoms
+    a, c = 2.46, 6.70
+    cell = [[a, 0, 0], [-a / 2, a * np.sqrt(3) / 2, 0], [0, 0, c]]
+    sheets = Atoms("C4", cell=cell, pbc=True, scaled_positions=[
+        [0, 0, 0.25], [1 / 3, 2 / 3, 0.25], [0, 0, 0.75], [2 / 3, 1 / 3, 0.75]])
+    rng = np.random.default_rng(5)
+    for k in range(7):
+        M = np.eye(3, dtype=int)
+        for _ in range(5 if k else 0):
+            i, j = rng.choice(3, 2, replace=False)
+            E = np.eye(3, dtype=int)
+            E[i, j] = rng.choice([-1, 1])
+            M = E @ M
+        b = sheets.copy()
+        b.set_cell(M @ sheets.cell[:], scale_atoms=False)
+        write(tmp_path / f"g{k}.extxyz", b)
+        for gap, dim in ((6.0, 3), (2.5, 2)):
+            rec = analyze(tmp_path / f"g{k}.extxyz", {"geometry": {"vacuum_gap": f"{gap} Å"}})
+            assert rec["geometry"]["dimension"] == dim, (gap, M.tolist())
+            said = [w for w in rec["run"]["warnings"] if "no two of the cell's vectors" in w]
+            own = geometry.vacuum_gaps(b.cell[:], b.positions).max()
+            assert bool(said) == (dim == 2 and own <= gap), (gap, M.tolist())
+
+
+def test_bcc_bulk_in_its_cubic_cell_and_a_layer_along_a_diagonal_family(tmp_path):
+    """A regression review's cases for the re-basing: bcc Cs in its conventional cubic cell (ASE's
+    reference a = 6.05 Å; spglib: Im-3m) leaves a 4.28 Å gap along (011), below vacuum_gap: bulk,
+    analysed, not re-based (the first version failed the run with StopIteration); a 4x4 square Al
+    sheet (a = 11.44 Å) stacked 7.5 Å apart with an offset (a/2, a/2), written in vectors none of
+    which lies in the sheet (T, T - A, T - B): a layer, its vacuum along a family of two
+    non-zero indices in the reduced basis, read as the same layer as its plain cell gives."""
+    from ase import Atoms
+    from ase.build import bulk
+    cs = bulk("Cs", "bcc", a=6.05, cubic=True)
+    write(tmp_path / "POSCAR", cs, format="vasp")
+    rec = analyze(tmp_path / "POSCAR")
+    assert rec["geometry"]["dimension"] == 3
+    assert rec["summary"]["verdict"]["structure"]["final"]["group"] == spglib.get_symmetry_dataset(
+        (cs.cell[:], cs.get_scaled_positions(), cs.numbers), symprec=1e-3).number == 229
+    assert not [w for w in rec["run"]["warnings"] if "no two of the cell's vectors" in w]
+    a, d = 11.44, 7.5
+    A, B = np.array([a, 0, 0]), np.array([0, a, 0])
+    T = np.array([a / 2, a / 2, d])
+    xy = [[i * a / 4, j * a / 4, 0] for i in range(4) for j in range(4)]
+    plain = Atoms("Al16", positions=xy, cell=[A, B, T], pbc=True)
+    other = plain.copy()
+    other.set_cell([T, T - A, T - B], scale_atoms=False)
+    assert abs(abs(np.linalg.det(other.cell[:])) - abs(np.linalg.det(plain.cell[:]))) < 1e-9
+    got = {}
+    for name, atoms in (("plain", plain), ("leaning", other)):
+        write(tmp_path / f"{name}.extxyz", atoms)
+        r = analyze(tmp_path / f"{name}.extxyz")
+        assert r["geometry"]["dimension"] == 2, name
+        got[name] = (r["summary"]["final"]["type"],
+                     r["summary"]["verdict"]["structure"]["final"]["group"])
+    assert got["plain"] == got["leaning"] == ("tp", 61)

@@ -380,7 +380,7 @@ def test_a_cluster_in_a_box_is_refused_with_the_setting_that_includes_it(tmp_pat
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 1 and proc.stderr.count("\n") == 1, proc.stderr
     said = re.search(r"a config \(-c\) with geometry\.vacuum_gap: ([\d.]+) Å", proc.stderr)
-    assert "a molecule, cluster or wire in a box" in proc.stderr     # the audit's words
+    assert "a molecule or cluster in a box" in proc.stderr     # the audit's words
     skipped = analyse_run("ni", str(path), config.load())["skipped"]
     assert skipped["include"].startswith(f"a config (-c) with geometry.vacuum_gap: {said.group(1)} Å")
     assert f"{skipped['reason']}: driftwatch analyses layers and bulk crystals; to include it: " \

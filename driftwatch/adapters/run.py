@@ -612,17 +612,12 @@ def decimals(text: str) -> int | None:
 
 
 def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
-            run_dir=None, stages=(), layer_basis=None) -> Run:
+            run_dir=None, stages=()) -> Run:
     """Stack validated frames into a Run. Zero frames is an InputError.
 
     Frames are copied into fixed-size numpy blocks as they arrive (no per-frame Python
     objects are kept), so peak memory is about twice the arrays of the finished Run
     (the blocks plus the final concatenation), whatever the size of the file.
-
-    A periodic cell whose vectors hide a layer's vacuum (``geometry.layer_basis`` of the first
-    frame) is read in a basis that shows it, said in a warning; ``layer_basis``: that decision
-    made before, ``(M, gap)`` or False (a live tracker collecting its new frames), else None
-    (decided here; ``ctx.carry["layer_basis"]`` keeps it).
     """
     blocks, cur, first, n = [], None, None, 0
     have = {"energy": False, "forces": False, "stress": False}
@@ -654,16 +649,6 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
                  f"{', ...' if len(flips) > 5 else ''} (a box flip, as LAMMPS makes one: an "
                  f"integer change of basis): those frames are read in a basis continuous with "
                  f"the step before, the atoms where the file puts them")
-    positions = cat("positions")
-    precision = position_precision(ctx.rounding, cells)       # (of the file's own basis)
-    if layer_basis is None:
-        from ..geometry import layer_basis as find
-        layer_basis = np.all(first.pbc) and find(cells[0], positions[0]) or False
-    ctx.carry["layer_basis"] = layer_basis
-    if layer_basis:
-        M, gap = layer_basis
-        cells = np.einsum("ij,njk->nik", M.astype(float), cells)
-        ctx.warn(layer_note(M, gap))
     if not stages and len(ctx.file_stages) > 1:
         stages, start = [], 0
         for name, count in ctx.file_stages:
@@ -673,7 +658,7 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
             stages.append({"name": name, "source": str(path), "format": fmt, "first_frame": start,
                            "n_frames": count, "step_offset": int(steps[start]) if start else 0})
             start += count
-    arrays = dict(cells=cells, positions=positions, steps=steps,
+    arrays = dict(cells=cells, positions=cat("positions"), steps=steps,
                   energies=cat("energies", have["energy"]), forces=cat("forces", have["forces"]),
                   stress=cat("stress", have["stress"]))
     held = ctx.held
@@ -691,19 +676,10 @@ def collect(frames: Iterable[Frame], *, path, fmt: str, ctx: ReadContext,
         numbers=np.array(first.numbers, int), pbc=np.array(first.pbc, bool),
         warnings=tuple(ctx.warnings), code_settings=dict(ctx.settings), title=ctx.title,
         run_dir=None if run_dir is None else str(run_dir),
-        stages=tuple(stages), position_precision=precision,
+        stages=tuple(stages), position_precision=position_precision(ctx.rounding, cells),
         kind=ctx.kind, structure_key=ctx.structure, inputs=ctx.inputs(),
         not_relaxation=ctx.not_relaxation, unfinished=ctx.unfinished, species=ctx.species,
     )
-
-
-def layer_note(M, gap: float) -> str:
-    """The warning of a run read in a basis that shows its layer's vacuum (:func:`collect`)."""
-    return (f"no two of the cell's vectors lie in the planes of the atoms' {gap:.2f} Å empty gap "
-            f"(a layer's vacuum, in a centred lattice's primitive vectors?): the frames are read "
-            f"in the basis {np.asarray(M).tolist()} of the file's vectors (an integer change of "
-            f"basis, determinant 1), whose first two lie in those planes, the atoms where the "
-            f"file puts them")
 
 
 def continuous_basis(cells: np.ndarray, pbc) -> list[int]:
