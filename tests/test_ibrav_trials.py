@@ -44,6 +44,17 @@ def ibrav_of(run):
     return int(re.search(r"ibrav\s*=\s*(-?\d+)", (run / "pw.in").read_text()).group(1))
 
 
+def shear_basis(rng, n=5) -> np.ndarray:
+    """A random integer change of basis of determinant +1: a product of ``n`` elementary shears."""
+    M = np.eye(3, dtype=int)
+    for _ in range(n):
+        i, j = rng.choice(3, 2, replace=False)
+        E = np.eye(3, dtype=int)
+        E[i, j] = rng.choice([-1, 1])
+        M = E @ M
+    return M
+
+
 def dimensionality(atoms) -> str:
     """ASE's RDA: the dimensionality of the interval just below 3D, where every atom is bonded
     within its layer, chain or cluster and no further ('2D' a layer, '1D' chains, '0D' bulk)."""
@@ -95,12 +106,7 @@ def test_stacked_layers_are_layers_in_any_basis(run, tmp_path):
     want = (rec["summary"]["final"]["type"], final["group"])
     rng = np.random.default_rng(7)
     for k in range(10):
-        M = np.eye(3, dtype=int)
-        for _ in range(4):                     # products of elementary shears: det +1
-            i, j = rng.choice(3, 2, replace=False)
-            E = np.eye(3, dtype=int)
-            E[i, j] = rng.choice([-1, 1])
-            M = E @ M
+        M = shear_basis(rng, 4)
         other = atoms.copy()
         other.set_cell(M @ atoms.cell[:], scale_atoms=False)
         write(tmp_path / f"b{k}.extxyz", other)
@@ -182,12 +188,7 @@ def test_a_chiral_layers_sign_does_not_depend_on_the_basis(name, tmp_path):
     frames = read(demo, ":")
     rng = np.random.default_rng(11)
     for k in range(6):
-        M = np.eye(3, dtype=int)
-        for _ in range(5):
-            i, j = rng.choice(3, 2, replace=False)
-            E = np.eye(3, dtype=int)
-            E[i, j] = rng.choice([-1, 1])
-            M = E @ M
+        M = shear_basis(rng)
         if k % 2:
             M = M[[1, 0, 2]]                                           # det -1
         out = []
@@ -218,12 +219,7 @@ def test_the_configured_vacuum_gap_decides_in_every_basis(tmp_path):
         [0, 0, 0.25], [1 / 3, 2 / 3, 0.25], [0, 0, 0.75], [2 / 3, 1 / 3, 0.75]])
     rng = np.random.default_rng(5)
     for k in range(7):
-        M = np.eye(3, dtype=int)
-        for _ in range(5 if k else 0):
-            i, j = rng.choice(3, 2, replace=False)
-            E = np.eye(3, dtype=int)
-            E[i, j] = rng.choice([-1, 1])
-            M = E @ M
+        M = shear_basis(rng, 5 if k else 0)
         b = sheets.copy()
         b.set_cell(M @ sheets.cell[:], scale_atoms=False)
         write(tmp_path / f"g{k}.extxyz", b)
