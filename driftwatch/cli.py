@@ -279,8 +279,9 @@ def _inspect_table(rec: dict) -> str:
     for key in ("lattice_note", "cell_held"):
         if s.get(key):
             lines.append(f"    note: {s[key]}")
-    if final_scf_text(rec):
-        lines.append(f"    note: {final_scf_text(rec)}")
+    final_scf = final_scf_text(rec)
+    if final_scf:
+        lines.append(f"    note: {final_scf}")
     if s.get("supercell"):
         lines.append(f"    note: {s['supercell']['text']}")
     if s.get("spglib_lattice"):

@@ -530,11 +530,11 @@ def _summary_section(rec):
     e1 = _fnum(frames[-1].get("energy")) if frames else None
     fmax = _fnum(frames[-1].get("fmax")) if frames else None
     if e0 is not None and e1 is not None:
+        final_scf = _records.final_scf_text(rec)
         rows.append(("energy, first → last step", f"{e0:.6f} → {e1:.6f}&nbsp;eV "
                                                   f"(change {e1 - e0:+.4g}&nbsp;eV)"
                      + ("" if fmax is None else f"; final max force {_q(fmax, 'eV/Å')}")
-                     + (f"<br><span class=\"muted\">{e(_records.final_scf_text(rec))}</span>"
-                        if _records.final_scf_text(rec) else "")))
+                     + (f"<br><span class=\"muted\">{e(final_scf)}</span>" if final_scf else "")))
     if dim == 2:
         vs = geo.get("viewing_side")
         if vs:
