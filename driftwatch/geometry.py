@@ -172,7 +172,9 @@ def layer_basis(cell, positions, gap: float = DEFAULT_GAP) -> tuple | None:
     vectors, none of whose pairs spans the layer's plane. The third vector points to the side the
     file's vector reaching furthest out of the plane points to (index ``side``), from which the
     layer is seen, as a file whose vacuum vector is a cell vector is seen from that vector's side:
-    the 2D sign does not depend on the basis. None otherwise. One frame, Å."""
+    the 2D sign does not depend on the basis; when vectors reach as far out on both sides (``side``
+    None), to the side of the Cartesian axis nearest the plane's normal, whatever their order.
+    None otherwise. One frame, Å."""
     try:
         own = float(vacuum_gaps(cell, positions).max())        # (refuses a singular cell)
         gaps, _, op = plane_gaps(cell, positions)
@@ -197,8 +199,13 @@ def layer_basis(cell, positions, gap: float = DEFAULT_GAP) -> tuple | None:
         u, v = v, u
     m = np.cross(u @ red, v @ red)
     out = cell @ m
-    side = int(np.argmax(np.abs(out)))
-    if (w @ red @ m) * out[side] < 0:                 # (v, u, -w keeps the determinant)
+    far = np.abs(out) >= np.abs(out).max() * (1 - 1e-6)
+    if (out[far] > 0).any() and (out[far] < 0).any():   # as far out on both sides (ibrav 13:
+        side, toward = None, m[np.argmax(np.abs(m))]    # (a, 0, -c)/2, (a, 0, c)/2): the side of
+    else:                                               # the Cartesian axis nearest the normal
+        side = int(np.flatnonzero(far)[0])
+        toward = out[side]
+    if (w @ red @ m) * toward < 0:                    # (v, u, -w keeps the determinant)
         u, v, w = v, u, -w
     return np.array([u, v, w]) @ op, float(gaps[k]), side
 
@@ -236,7 +243,8 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
     first = pos[0] if pos is not None else np.asarray(positions[0] if np.ndim(positions) == 3
                                                       else positions, float)
     across, normals, _ = plane_gaps(cells[0], first)     # the same gaps whichever the basis
-    kind = _enclosed(across, normals, gap)
+    wide = max(gap, DEFAULT_GAP)     # (a thin vacuum_gap is for thin vacuum: rows of atoms in a
+    kind = _enclosed(across, normals, wide)                   # layer are not chains at 2.5 Å)
     if len(big) > 1:
         raise NotPeriodicError(f"{kind or 'a molecule, cluster or wire'} in a box: vacuum on "
                                f"more than one axis (empty gaps {desc} Å; > geometry.vacuum_gap "
@@ -245,9 +253,9 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
                                f"{bulk_gap(gaps[0]):.1f} Å analyses its cell as bulk")
     if not big:
         if kind:                                      # gaps along planes its vectors do not span
-            raise NotPeriodicError(f"{kind} in a box: empty gaps wider than geometry.vacuum_gap "
-                                   f"{gap:g} Å along lattice planes of several directions (the "
-                                   f"cell's own planes show {desc} Å)",
+            raise NotPeriodicError(f"{kind} in a box: empty gaps wider than {wide:g} Å along "
+                                   f"lattice planes of several directions (the cell's own planes "
+                                   f"show {desc} Å)",
                                    f"a config (-c) with geometry.vacuum_gap: "
                                    f"{bulk_gap(across)} Å analyses its cell as bulk")
         g = np.sort(gaps[0])
@@ -259,12 +267,12 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
                                        f"{gap} Å{thin}{drift}", gaps[0])
     k = big[0]
     n = plane_normals(cells[:1], k)[0]
-    other = across[(across > gap) & (np.abs(normals @ n) < 1.0 - 1e-6)]  # along planes no pair
+    other = across[(across > wide) & (np.abs(normals @ n) < 1.0 - 1e-6)]  # along planes no pair
     if len(other):                                                     # of its own vectors spans
         raise NotPeriodicError(
-            f"{kind or 'a wire or chains'} in a box: beside the {gaps[0, k]:.2f} Å gap "
+            f"{kind or 'chains or molecules'} in a box: beside the {gaps[0, k]:.2f} Å gap "
             f"along axis {k}, the atoms leave an empty gap of {other.max():.2f} Å along other "
-            f"lattice planes (> geometry.vacuum_gap {gap:g} Å; gaps along the cell's own planes "
+            f"lattice planes (> {wide:g} Å; gaps along the cell's own planes "
             f"{desc} Å)", f"a config (-c) with geometry.vacuum_gap: "
                           f"{bulk_gap(np.concatenate([gaps[0], other]))} Å analyses its cell as bulk")
     return Geometry(2, k, n, f"layer: empty gap {_beside(gaps[0, k], gap)} Å > {gap} Å along "
@@ -274,10 +282,11 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
 def _enclosed(across, normals, gap: float) -> str | None:
     """What a cell holds whose atoms leave empty gaps (``across``, Å, along plane families of unit
     ``normals``: :func:`plane_gaps`) wider than ``gap`` in two or three independent directions
-    (chains; a molecule or cluster), whichever of them the file's vectors span; None for fewer."""
+    (two: rods along one direction, chains or molecules, two water molecules in a box among them;
+    three: a molecule or cluster), whichever of them the file's vectors span; None for fewer."""
     big = normals[across > gap]
     rank = int(np.linalg.matrix_rank(big, tol=1e-6)) if len(big) else 0
-    return {2: "a wire or chains", 3: "a molecule or cluster"}.get(rank)   # (else bulk or layer)
+    return {2: "chains or molecules", 3: "a molecule or cluster"}.get(rank)  # (else bulk, layer)
 
 
 def _beside(value: float, limit: float) -> str:

@@ -509,7 +509,9 @@ def in_layer_basis(run: Run, gap: float, found=None) -> tuple[Run, tuple | None]
             f"written in a centred lattice's primitive vectors?): the frames are read in the basis "
             f"{np.asarray(M).tolist()} of the file's vectors (an integer change of basis, "
             f"determinant 1), whose first two lie in those planes, the layer seen from the side "
-            f"the file's vector {'abc'[side]} points to, the atoms where the file puts them")
+            + (f"the file's vector {'abc'[side]} points to" if side is not None else
+               "of the Cartesian axis nearest its normal (the file's vectors reach as far out on "
+               "both sides)") + ", the atoms where the file puts them")
     cells = np.einsum("ij,njk->nik", np.asarray(M, float), run.cells)
     return dataclasses.replace(run, cells=cells, warnings=(*run.warnings, note)), found
 

@@ -99,14 +99,14 @@ def test_1d_and_0d_cells_are_clear_errors():
     with pytest.raises(GeometryError, match="a molecule or cluster: periodic along 0 axes"):
         classify(cell, [False] * 3, pos)
     wire = Atoms("C2", positions=[[0, 0, 0], [0, 0, 1.3]], cell=[12, 12, 2.6], pbc=True)
-    with pytest.raises(GeometryError, match=r"a wire or chains in a box: .* axes \[0, 1\]"):
+    with pytest.raises(GeometryError, match=r"chains or molecules in a box: .* axes \[0, 1\]"):
         classify(wire.cell.array, wire.pbc, wire.positions)
     with pytest.raises(GeometryError, match="a molecule or cluster in a box"):
         classify(np.diag([15.0, 15, 15]), True, [[7, 7, 7], [7, 7, 8.1]])
     # the kind is the structure's, whichever basis the file writes (a field trial saw a molecule
     # called a wire in some bases): the same two cells in a sheared basis
     M = np.array([[1, 1, 0], [0, 1, 0], [1, 0, 1]])
-    with pytest.raises(GeometryError, match="a wire or chains in a box"):
+    with pytest.raises(GeometryError, match="chains or molecules in a box"):
         classify(M @ wire.cell.array, wire.pbc, wire.positions)
     with pytest.raises(GeometryError, match="a molecule or cluster in a box"):
         classify(M @ np.diag([15.0, 15, 15]), True, [[7, 7, 7], [7, 7, 8.1]])

@@ -126,7 +126,7 @@ def test_chains_in_a_centred_cell_are_no_layer():
     assert dimensionality(atoms) == "1D"
     gaps, normals, _ = geometry.plane_gaps(atoms.cell[:], atoms.positions)
     assert (gaps > 6.0).sum() >= 2                                      # two families: chains
-    with pytest.raises(NotPeriodicError, match="a wire or chains in a box"):
+    with pytest.raises(NotPeriodicError, match="chains or molecules in a box"):
         analyze(run)
 
 
@@ -263,3 +263,51 @@ def test_bcc_bulk_in_its_cubic_cell_and_a_layer_along_a_diagonal_family(tmp_path
         got[name] = (r["summary"]["final"]["type"],
                      r["summary"]["verdict"]["structure"]["final"]["group"])
     assert got["plain"] == got["leaning"] == ("tp", 61)
+
+
+def test_a_tie_of_sides_is_broken_by_the_cartesian_axis_not_the_vectors_order(tmp_path):
+    """pw.x's ibrav 13 vectors of a stacked oblique layer reach exactly as far out of its plane on
+    both sides (a(1) = (a/2, 0, -c/2), a(3) = (a/2, 0, c/2)): the side the layer is seen from had
+    been a(1)'s, so the sign of the ibrav 13 run was the opposite of the same structure's ibrav 12
+    run (conventional cell, vacuum vector +z), and a cyclic reordering of the vectors flipped it (a
+    review's finding). Now: the side of the Cartesian axis nearest the normal, in every order."""
+    runs = DATA / "tie"
+    want = analyze(runs / "mP12")
+    signs = [f["sign"] for f in want["frames"]]
+    assert set(signs) == {-1} and want["geometry"]["viewing_side"] == [0.0, 0.0, 1.0]
+    got = analyze(runs / "mC13")
+    assert [f["sign"] for f in got["frames"]] == signs
+    assert any("as far out on both sides" in w for w in got["run"]["warnings"])
+    atoms = read(runs / "mC13" / "pw.out.gz", ":", format="espresso-out")
+    out = atoms[0].cell[:] @ np.array([0, 0, 1.0])
+    assert np.isclose(out.max(), -out.min())                              # pw.x's own tie
+    for k, order in enumerate(([1, 2, 0], [2, 0, 1])):
+        frames = []
+        for a in atoms:
+            b = a.copy()
+            b.set_cell(a.cell[:][order], scale_atoms=False)
+            frames.append(b)
+        write(tmp_path / f"c{k}.extxyz", frames)
+        assert [f["sign"] for f in analyze(tmp_path / f"c{k}.extxyz")["frames"]] == signs
+
+
+def test_a_thin_vacuum_gap_does_not_make_rows_of_a_layer_chains():
+    """geometry.vacuum_gap 2.5 Å (what the thin-vacuum hint may lead a user to): an oblique layer
+    with 16 Å of vacuum whose rows of atoms leave 2.53 Å between tilted lattice planes had been
+    refused as chains (ASE's dimensionality analysis: 2D); the chains and molecule test counts
+    only gaps wider than the larger of vacuum_gap and 6 Å. Two water molecules in a 10 Å box
+    (invented here; ASE: 0D) are named chains or molecules, not a wire."""
+    from ase import Atoms
+    from ase.build import molecule
+    layer = DATA / "thin_gap" / "s34_oblique_layer.extxyz"
+    assert dimensionality(read(layer)) == "2D"
+    rec = analyze(layer, {"geometry": {"vacuum_gap": "2.5 Å"}})
+    assert rec["geometry"]["dimension"] == 2
+    w1, w2 = molecule("H2O"), molecule("H2O")
+    w1.translate([3.0, 3.0, 3.0])
+    w2.translate([3.0, 3.0, 9.0])                      # stacked along z: under 6 Å apart there
+    pair = Atoms(w1 + w2, cell=[12, 12, 12], pbc=True)
+    first = min(analyze_dimensionality(pair, method="RDA"), key=lambda iv: iv.a)
+    assert first.dimtype == "0D" and first.b > 1.5                  # separate molecules (ASE)
+    with pytest.raises(NotPeriodicError, match="chains or molecules in a box"):
+        geometry.classify(pair.cell[:], pair.pbc, pair.positions)
