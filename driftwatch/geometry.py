@@ -272,9 +272,9 @@ def classify(cells, pbc, positions, gap: float = DEFAULT_GAP, gaps=None) -> Geom
         raise NotPeriodicError(
             f"{kind or 'chains or molecules'} in a box: beside the {gaps[0, k]:.2f} Å gap "
             f"along axis {k}, the atoms leave an empty gap of {other.max():.2f} Å along other "
-            f"lattice planes (> {wide:g} Å; gaps along the cell's own planes "
-            f"{desc} Å)", f"a config (-c) with geometry.vacuum_gap: "
-                          f"{bulk_gap(np.concatenate([gaps[0], other]))} Å analyses its cell as bulk")
+            f"lattice planes (> {wide:g} Å; gaps along the cell's own planes {desc} Å)",
+            f"a config (-c) with geometry.vacuum_gap: "
+            f"{bulk_gap(np.concatenate([gaps[0], other]))} Å analyses its cell as bulk")
     return Geometry(2, k, n, f"layer: empty gap {_beside(gaps[0, k], gap)} Å > {gap} Å along "
                              f"axis {k} (gaps {desc} Å){drift}", gaps[0])
 

@@ -27,8 +27,8 @@ from . import __version__, config as _config, geometry, lattice2d, lattice3d, re
 from .adapters import Run, read_run
 from .errors import GeometryError, InputError, LatticeError, NotPeriodicError, SymmetryError
 
-__all__ = ["analyze", "record_from_run", "in_layer_basis", "symmetry_entry", "lattice_table", "select_frames",
-           "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
+__all__ = ["analyze", "record_from_run", "in_layer_basis", "symmetry_entry", "lattice_table",
+           "select_frames", "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
            "BULK_TYPES"]
 
 frame_progress = None
