@@ -348,12 +348,12 @@ def _gate_record(rec: dict, codes) -> int:
 
 
 def _cmd_tolerance(args) -> int:
-    from . import config as _config, geometry
+    from . import config as _config
     from .adapters import read_run
     from .records import group_name
     from .rules import advice, inversion_by_content, shown_breakpoints
     from .symmetry import SWEEP_STEP
-    from .track import angle_check_entry, in_layer_basis, symmetry_entry
+    from .track import angle_check_entry, classified, symmetry_entry
     cfg = _config.load(args.config)
     run = read_run(args.path, format=args.format)
     n = len(run.cells)
@@ -361,8 +361,7 @@ def _cmd_tolerance(args) -> int:
     if not 0 <= i < n:
         from .errors import InputError
         raise InputError(args.path, f"frame {args.frame} out of range (the run has {n} frames)")
-    run, _ = in_layer_basis(run, cfg["geometry"]["vacuum_gap"])
-    geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+    run, geo = classified(run, cfg)
     spec = symmetry_entry(run, i, geo, cfg)
     spec.pop("calls", None)
     spec["angle_check"] = angle_check_entry(run, geo, cfg, i, spec)

@@ -163,6 +163,11 @@ def plane_gaps(cell, positions) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return frac / size, g / size[:, None], np.asarray(op, int)
 
 
+_SMALL = np.array([v for v in np.ndindex(5, 5, 5) if v != (2, 2, 2)]) - 2
+"""(124, 3): the nonzero integer vectors with entries -2..2, where :func:`layer_basis` looks for
+a basis of the plane's lattice and the third vector (in the reduced basis)."""
+
+
 def layer_basis(cell, positions, gap: float = DEFAULT_GAP) -> tuple | None:
     """A basis that shows a layer's vacuum the cell as given hides: ``(M, vacuum, side)``, M an
     integer matrix of determinant +1 such that the first two vectors of ``M @ cell`` lie in the
@@ -186,9 +191,7 @@ def layer_basis(cell, positions, gap: float = DEFAULT_GAP) -> tuple | None:
     h = FAMILIES[k]
     cell = np.asarray(cell, float)
     red = op @ cell
-    small = np.array([v for v in np.ndindex(5, 5, 5)]) - 2                # (125, 3)
-    small = small[np.abs(small).sum(axis=1) > 0]
-    small = small[np.argsort(np.linalg.norm(small @ red, axis=1), kind="stable")]
+    small = _SMALL[np.argsort(np.linalg.norm(_SMALL @ red, axis=1), kind="stable")]
     inplane = small[small @ h == 0]
     u = inplane[0]
     v = next((x for x in inplane[1:] if np.array_equal(np.abs(np.cross(u, x)), np.abs(h))), None)

@@ -27,9 +27,9 @@ from . import __version__, config as _config, geometry, lattice2d, lattice3d, re
 from .adapters import Run, read_run
 from .errors import GeometryError, InputError, LatticeError, NotPeriodicError, SymmetryError
 
-__all__ = ["analyze", "record_from_run", "in_layer_basis", "symmetry_entry", "lattice_table",
-           "select_frames", "spectrum_frames", "symprec_grid", "structure_symprecs", "FrameTable", "LAYER_TYPES",
-           "BULK_TYPES"]
+__all__ = ["analyze", "record_from_run", "in_layer_basis", "classified", "symmetry_entry",
+           "lattice_table", "select_frames", "spectrum_frames", "symprec_grid",
+           "structure_symprecs", "FrameTable", "LAYER_TYPES", "BULK_TYPES"]
 
 frame_progress = None
 """``callable(done, total)`` or None: told after each frame whose tolerance spectrum was computed
@@ -516,6 +516,14 @@ def in_layer_basis(run: Run, gap: float, found=None) -> tuple[Run, tuple | None]
     return dataclasses.replace(run, cells=cells, warnings=(*run.warnings, note)), found
 
 
+def classified(run: Run, cfg: dict) -> tuple[Run, geometry.Geometry]:
+    """``(run, geometry)``: the run read in a basis that shows a layer's vacuum where its own
+    vectors hide it (:func:`in_layer_basis`), and layer or bulk (:func:`geometry.classify`)."""
+    gap = cfg["geometry"]["vacuum_gap"]
+    run, _ = in_layer_basis(run, gap)
+    return run, geometry.classify(run.cells, run.pbc, run.positions, gap=gap)
+
+
 def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | None = None,
                     spectra: dict | None = None, groups: dict | None = None,
                     table: FrameTable | None = None, skip_newest: bool = False,
@@ -537,8 +545,7 @@ def record_from_run(run: Run, cfg: dict, *, geo=None, frames: Iterable[int] | No
     """
     t0 = time.perf_counter()
     if geo is None:
-        run, _ = in_layer_basis(run, cfg["geometry"]["vacuum_gap"])
-        geo = geometry.classify(run.cells, run.pbc, run.positions, gap=cfg["geometry"]["vacuum_gap"])
+        run, geo = classified(run, cfg)
     if cfg["geometry"]["require_layer"] and geo.dimension != 2:
         raise GeometryError(f"{run.source}: not a layer ({geo.reason}); this config requires one")
     if table is None:
